@@ -1,0 +1,88 @@
+"""The verifier protocol.
+
+A verifier maps a batch of (prompt, response) pairs to verifier scores, and,
+when it knows them (toy tasks, labelled sets), to the true rewards::
+
+    class MyVerifier:
+        def __call__(self, prompts: Sequence[str], responses: Sequence[str]) -> Verdicts | array-like:
+            ...
+
+A plain function with the same signature that returns a list/array of floats
+is a verifier too. :func:`as_verdicts` normalises any return value to
+:class:`Verdicts`. Scores are "higher is better"; best-of-k keeps the sample
+with the highest score. Rewards are what you actually care about (often 0/1).
+
+Caution (reward hacking): best-of-N and the objectives in :mod:`bonft.credit`
+push the policy towards whatever the verifier scores highly. A verifier that
+can be gamed (length, formatting, keywords) will be gamed; check it with
+:func:`bonft.testing.check_verifier` before spending compute.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Any, Protocol, Sequence, runtime_checkable
+
+import numpy as np
+
+
+@dataclass
+class Verdicts:
+    """Scores for a batch of N (prompt, response) pairs.
+
+    scores:   (N,) float64, verifier score, higher is better.
+    rewards:  (N,) float64 true reward, or None when the verifier does not know it.
+    failed:   (N,) bool, True where the verifier failed on that sample
+              (raised, timed out, returned NaN) and ``scores`` holds the failure score.
+    reasons:  length-N list, a short reason string where ``failed`` (else None).
+    """
+
+    scores: np.ndarray
+    rewards: np.ndarray | None = None
+    failed: np.ndarray | None = None
+    reasons: list[str | None] | None = None
+
+    def __post_init__(self) -> None:
+        self.scores = np.asarray(self.scores, dtype=np.float64).reshape(-1)
+        n = self.scores.shape[0]
+        if self.rewards is not None:
+            self.rewards = np.asarray(self.rewards, dtype=np.float64).reshape(-1)
+            if self.rewards.shape[0] != n:
+                raise ValueError(f"rewards must have length {n} like scores, got {self.rewards.shape[0]}")
+        self.failed = np.zeros(n, dtype=bool) if self.failed is None else np.asarray(self.failed, dtype=bool).reshape(-1)
+        if self.failed.shape[0] != n:
+            raise ValueError(f"failed must have length {n} like scores, got {self.failed.shape[0]}")
+        self.reasons = [None] * n if self.reasons is None else list(self.reasons)
+        if len(self.reasons) != n:
+            raise ValueError(f"reasons must have length {n} like scores, got {len(self.reasons)}")
+
+    def __len__(self) -> int:
+        return int(self.scores.shape[0])
+
+    @property
+    def n_failed(self) -> int:
+        return int(self.failed.sum())
+
+
+@runtime_checkable
+class Verifier(Protocol):
+    """Anything callable as ``verifier(prompts, responses)``."""
+
+    def __call__(self, prompts: Sequence[str], responses: Sequence[str]) -> Any: ...
+
+
+def as_verdicts(out: Any, n: int) -> Verdicts:
+    """Normalise a verifier's return value (Verdicts, array of scores, or (scores, rewards))."""
+    if isinstance(out, Verdicts):
+        v = out
+    elif isinstance(out, tuple) and len(out) == 2:
+        v = Verdicts(scores=out[0], rewards=out[1])
+    else:
+        try:
+            v = Verdicts(scores=np.asarray(out, dtype=np.float64))
+        except (TypeError, ValueError):
+            raise TypeError(
+                f"a verifier must return Verdicts, an array of {n} scores or (scores, rewards), got {type(out).__name__}"
+            ) from None
+    if len(v) != n:
+        raise ValueError(f"the verifier returned {len(v)} scores for {n} (prompt, response) pairs")
+    return v

@@ -1,0 +1,44 @@
+"""The shared validation helpers: messages name the argument, expectation and value."""
+import numpy as np
+import pytest
+import torch
+
+from bonft._binom import log_comb, log_comb_torch
+from bonft._checks import check_finite, check_k, check_ks, check_probs
+import math
+
+
+def test_check_k_messages():
+    assert check_k(3, 8) == 3
+    with pytest.raises(ValueError, match=r"k must be <= n \(n=8\), got k=16"):
+        check_k(16, 8)
+    with pytest.raises(ValueError, match=r"k must be >= 1, got k=0"):
+        check_k(0, 8)
+    with pytest.raises(TypeError, match=r"k must be an int"):
+        check_k(2.0, 8)
+    ks, scalar = check_ks([1, 2, 4], 4)
+    assert ks.tolist() == [1, 2, 4] and not scalar
+
+
+def test_check_finite_and_probs():
+    with pytest.raises(ValueError, match=r"scores must be finite, got nan at index \(1,\)"):
+        check_finite("scores", np.array([0.0, np.nan]))
+    with pytest.raises(ValueError, match=r"scores must be finite"):
+        check_finite("scores", torch.tensor([[0.0, float("inf")]]))
+    with pytest.raises(ValueError, match=r"probs must sum to 1"):
+        check_probs("probs", np.array([0.5, 0.6]))
+    with pytest.raises(ValueError, match=r"probs must be non-negative"):
+        check_probs("probs", np.array([1.5, -0.5]))
+
+
+def test_log_comb_matches_math_comb():
+    # Reference: Python's exact integer math.comb (standard library).
+    for n in [0, 1, 5, 30, 200]:
+        for k in range(0, n + 1, max(1, n // 7)):
+            exact = math.log(math.comb(n, k))
+            assert abs(float(log_comb(n, k)) - exact) < 1e-9 * max(1.0, exact)
+            assert abs(float(log_comb_torch(n, k)) - exact) < 1e-9 * max(1.0, exact)
+    assert log_comb(3, 5) == -np.inf and log_comb(3, -1) == -np.inf
+    assert float(log_comb_torch(3, 5)) == -math.inf
+    # n = 10^5, k = 10^4: finite (math.comb has ~14,000 digits here).
+    assert np.isfinite(log_comb(10**5, 10**4))
