@@ -1,4 +1,5 @@
 """Verifiers: the protocol, built-in checkers, a sandboxed code runner, proxies and combinators."""
 from .base import Verdicts, Verifier, as_verdicts
+from .scoring import VerifierError, load_verifier, score_batch
 
-__all__ = ["Verdicts", "Verifier", "as_verdicts"]
+__all__ = ["Verdicts", "Verifier", "as_verdicts", "VerifierError", "load_verifier", "score_batch"]

@@ -1,0 +1,255 @@
+"""Calling a verifier safely on a batch, and loading a verifier by name.
+
+:func:`score_batch` is the one place where the library calls user verifiers.
+A verifier that raises, hangs or returns NaN on one sample must not end a
+long run nor poison an estimate silently: the batch is retried one sample at a
+time to isolate the bad samples, which get ``failure_score``, ``failed=True``
+and a reason; failures are counted and logged (logger ``bonft.verifiers``).
+
+Caution: :func:`load_verifier` imports and runs the named module or file, with
+the rights of the current process. Only load verifiers you have read.
+"""
+from __future__ import annotations
+
+import collections
+import importlib
+import importlib.util
+import logging
+import math
+import numbers
+import os
+import sys
+import threading
+from typing import Any, Callable, Sequence
+
+import numpy as np
+
+from .base import Verdicts, as_verdicts
+
+log = logging.getLogger("bonft.verifiers")
+
+
+class VerifierError(RuntimeError):
+    """Raised by :func:`score_batch` with ``strict=True`` when the verifier fails."""
+
+
+def check_batch(prompts: Any, responses: Any) -> tuple[list[str], list[str]]:
+    """Validate a batch of prompts and responses: two equal-length sequences of str."""
+    out = []
+    for name, seq in (("prompts", prompts), ("responses", responses)):
+        if isinstance(seq, (str, bytes)) or not isinstance(seq, Sequence):
+            raise TypeError(f"{name} must be a sequence of str, got {type(seq).__name__}")
+        for i, s in enumerate(seq):
+            if not isinstance(s, str):
+                raise TypeError(f"{name}[{i}] must be a str, got {type(s).__name__} {s!r:.40}")
+        out.append(list(seq))
+    if len(out[0]) != len(out[1]):
+        raise ValueError(f"responses must have the same length as prompts ({len(out[0])}), got {len(out[1])}")
+    return out[0], out[1]
+
+
+def _check_timeout(timeout: Any) -> float | None:
+    if timeout is None:
+        return None
+    if isinstance(timeout, bool) or not isinstance(timeout, numbers.Real):
+        raise TypeError(f"timeout must be None or a number of seconds, got {type(timeout).__name__} {timeout!r}")
+    if not (math.isfinite(timeout) and timeout > 0):
+        raise ValueError(f"timeout must be a finite number of seconds > 0, got timeout={timeout}")
+    return float(timeout)
+
+
+class _Timeout(Exception):
+    pass
+
+
+def _call(fn: Callable[[], Any], timeout: float | None) -> Any:
+    """Run ``fn()``; with a timeout, in a daemon thread that is abandoned if it overruns.
+
+    Python cannot kill a thread: an overrunning call keeps running in the
+    background until it returns. Verifiers that may hang for long should run
+    their work in a subprocess (as :class:`~bonft.verifiers.CodeRunner` does).
+    """
+    if timeout is None:
+        return fn()
+    box: dict[str, Any] = {}
+
+    def target() -> None:
+        try:
+            box["value"] = fn()
+        except BaseException as e:  # noqa: BLE001 - reported to the caller
+            box["error"] = e
+
+    t = threading.Thread(target=target, name="bonft-verifier-call", daemon=True)
+    t.start()
+    t.join(timeout)
+    if t.is_alive():
+        raise _Timeout(f"timeout after {timeout:g} s")
+    if "error" in box:
+        raise box["error"]
+    return box["value"]
+
+
+def _reason(e: BaseException) -> str:
+    if isinstance(e, _Timeout):
+        return str(e)
+    msg = str(e).strip().splitlines()[0] if str(e).strip() else ""
+    return f"{type(e).__name__}: {msg}"[:200] if msg else type(e).__name__
+
+
+def _one(verifier: Any, prompt: str, response: str, timeout: float | None) -> Verdicts | str:
+    """Score one sample; a Verdicts of length 1 or the failure reason."""
+    try:
+        return as_verdicts(_call(lambda: verifier([prompt], [response]), timeout), 1)
+    except Exception as e:  # noqa: BLE001 - isolated and reported
+        return _reason(e)
+
+
+def score_batch(
+    verifier: Any,
+    prompts: Sequence[str],
+    responses: Sequence[str],
+    *,
+    strict: bool = False,
+    failure_score: float = 0.0,
+    timeout: float | None = None,
+) -> Verdicts:
+    """Score N (prompt, response) pairs, isolating the samples the verifier fails on.
+
+    ``prompts, responses: (N,) str -> Verdicts (N,)``.
+
+    The verifier is called once on the whole batch. If that call raises, times
+    out, or returns the wrong number of scores, it is retried one sample at a
+    time. A sample whose call raises or times out, or whose score (or reward)
+    is NaN or infinite, gets ``scores = failure_score`` (and
+    ``rewards = failure_score`` when the verifier reports rewards),
+    ``failed = True`` and a reason such as ``"ZeroDivisionError: division by
+    zero"`` or ``"timeout after 2 s"``. Samples the verifier itself marked
+    failed keep their flag and reason. The number of failures and the most
+    common reasons are logged as a warning on the ``bonft.verifiers`` logger.
+
+    strict:        raise :class:`VerifierError` on the first failure instead.
+    failure_score: the score given to failed samples (finite).
+    timeout:       seconds allowed for each verifier call (None = no limit).
+                   Calls run in a background thread; one that overruns is
+                   abandoned, not killed (Python cannot kill threads), so a
+                   verifier that may hang should do its work in a subprocess.
+    """
+    if not callable(verifier):
+        raise TypeError(f"verifier must be callable as verifier(prompts, responses), got {type(verifier).__name__}")
+    prompts, responses = check_batch(prompts, responses)
+    if not isinstance(strict, bool):
+        raise TypeError(f"strict must be a bool, got {type(strict).__name__} {strict!r}")
+    if isinstance(failure_score, bool) or not isinstance(failure_score, numbers.Real):
+        raise TypeError(f"failure_score must be a real number, got {type(failure_score).__name__} {failure_score!r}")
+    if not math.isfinite(failure_score):
+        raise ValueError(f"failure_score must be finite, got failure_score={failure_score}")
+    failure_score = float(failure_score)
+    timeout = _check_timeout(timeout)
+    n = len(prompts)
+    if n == 0:
+        return Verdicts(scores=np.zeros(0))
+
+    # 1) the whole batch at once; 2) on any error, one sample at a time
+    try:
+        v = as_verdicts(_call(lambda: verifier(prompts, responses), timeout), n)
+    except Exception as e:  # noqa: BLE001
+        if strict:
+            raise VerifierError(f"the verifier failed on a batch of {n}: {_reason(e)}") from e
+        log.info("verifier failed on a batch of %d (%s); retrying one sample at a time", n, _reason(e))
+        v = _per_sample(verifier, prompts, responses, timeout, failure_score)
+
+    # non-finite scores / rewards are failures too
+    scores = v.scores.copy()
+    rewards = None if v.rewards is None else v.rewards.copy()
+    failed = v.failed.copy()
+    reasons = list(v.reasons)
+    for i in range(n):
+        bad = None
+        if not math.isfinite(scores[i]):
+            bad = f"score is {scores[i]}"
+        elif rewards is not None and not math.isfinite(rewards[i]):
+            bad = f"reward is {rewards[i]}"
+        if bad is not None:
+            if strict:
+                raise VerifierError(f"the verifier failed on sample {i}: {bad}")
+            failed[i], reasons[i] = True, bad
+        if failed[i]:
+            scores[i] = failure_score
+            if rewards is not None:
+                rewards[i] = failure_score
+            if reasons[i] is None:
+                reasons[i] = "marked failed by the verifier"
+    if strict and failed.any():
+        i = int(np.argmax(failed))
+        raise VerifierError(f"the verifier failed on sample {i}: {reasons[i]}")
+    out = Verdicts(scores=scores, rewards=rewards, failed=failed, reasons=reasons)
+    if out.n_failed:
+        common = collections.Counter(r for r, f in zip(reasons, failed) if f).most_common(3)
+        log.warning(
+            "verifier failed on %d of %d samples (scored %g): %s",
+            out.n_failed, n, failure_score, "; ".join(f"{r} x{c}" for r, c in common),
+        )
+    return out
+
+
+def _per_sample(verifier: Any, prompts: list[str], responses: list[str], timeout: float | None,
+                failure_score: float) -> Verdicts:
+    n = len(prompts)
+    scores = np.full(n, failure_score)
+    rewards = np.full(n, failure_score)
+    has_rewards = False
+    failed = np.zeros(n, dtype=bool)
+    reasons: list[str | None] = [None] * n
+    for i in range(n):
+        r = _one(verifier, prompts[i], responses[i], timeout)
+        if isinstance(r, str):
+            failed[i], reasons[i] = True, r
+            continue
+        scores[i] = r.scores[0]
+        failed[i], reasons[i] = bool(r.failed[0]), r.reasons[0]
+        if r.rewards is not None:
+            rewards[i], has_rewards = r.rewards[0], True
+    return Verdicts(scores=scores, rewards=rewards if has_rewards else None, failed=failed, reasons=reasons)
+
+
+def load_verifier(spec: str) -> Callable[..., Any]:
+    """Load a verifier from ``"module:name"`` or ``"path/to/file.py:name"``.
+
+    ``name`` may be dotted (``"pkg.mod:Holder.verify"``). If it names a class,
+    the class is instantiated with no arguments. The result must be callable.
+
+    Caution: this imports and runs the module's code with your rights.
+
+    >>> load_verifier("bonft.verifiers.answers:demo_verifier")  # doctest: +SKIP
+    """
+    if not isinstance(spec, str):
+        raise TypeError(f"spec must be a str like 'module:function', got {type(spec).__name__}")
+    where, sep, attr = spec.rpartition(":")
+    if not sep or not where or not attr:
+        raise ValueError(f"spec must look like 'module:function' or 'path/to/file.py:function', got {spec!r}")
+    if where.endswith(".py") or os.sep in where or "/" in where:
+        if not os.path.isfile(where):
+            raise FileNotFoundError(f"spec names the file {where!r}, which does not exist")
+        name = "bonft_user_verifier_" + os.path.splitext(os.path.basename(where))[0]
+        mspec = importlib.util.spec_from_file_location(name, where)
+        if mspec is None or mspec.loader is None:
+            raise ValueError(f"spec names {where!r}, which cannot be imported as a Python file")
+        module = importlib.util.module_from_spec(mspec)
+        sys.modules[name] = module  # dataclasses / pickling look the module up by name
+        mspec.loader.exec_module(module)
+    else:
+        try:
+            module = importlib.import_module(where)
+        except ModuleNotFoundError as e:
+            raise ValueError(f"spec names the module {where!r}, which cannot be imported ({e})") from None
+    obj: Any = module
+    for part in attr.split("."):
+        try:
+            obj = getattr(obj, part)
+        except AttributeError:
+            raise ValueError(f"spec names {attr!r}, but {where!r} has no attribute {part!r}") from None
+    if isinstance(obj, type):
+        obj = obj()
+    if not callable(obj):
+        raise TypeError(f"spec must name a callable verifier, got {type(obj).__name__} for {spec!r}")
+    return obj

@@ -1,0 +1,123 @@
+"""score_batch isolates failing samples; load_verifier finds verifiers by name."""
+import logging
+import math
+import time
+
+import numpy as np
+import pytest
+
+from bonft.verifiers import Verdicts, VerifierError, load_verifier, score_batch
+
+
+def picky(prompts, responses):
+    """Fails the whole batch if any response is 'boom'; NaN for 'nan'."""
+    out = []
+    for r in responses:
+        if r == "boom":
+            raise ZeroDivisionError("division by zero")
+        out.append(float("nan") if r == "nan" else float(len(r)))
+    return out
+
+
+def test_failures_are_isolated_and_counted(caplog):
+    caplog.set_level(logging.WARNING, logger="bonft.verifiers")
+    v = score_batch(picky, ["p"] * 4, ["ab", "boom", "nan", "abcd"], failure_score=-1.0)
+    # the healthy samples keep their score len(r); the two bad ones get failure_score
+    np.testing.assert_array_equal(v.scores, [2.0, -1.0, -1.0, 4.0])
+    np.testing.assert_array_equal(v.failed, [False, True, True, False])
+    assert v.reasons[1] == "ZeroDivisionError: division by zero"
+    assert v.reasons[2] == "score is nan"
+    assert v.n_failed == 2
+    assert "failed on 2 of 4 samples" in caplog.text
+
+
+def test_strict_raises_with_the_reason():
+    with pytest.raises(VerifierError, match="ZeroDivisionError"):
+        score_batch(picky, ["p"] * 2, ["a", "boom"], strict=True)
+    with pytest.raises(VerifierError, match="sample 1: score is nan"):
+        score_batch(picky, ["p"] * 2, ["a", "nan"], strict=True)
+
+
+def test_timeout_marks_the_slow_sample():
+    def slow(prompts, responses):
+        if "slow" in responses:
+            time.sleep(1.0)
+        return [1.0] * len(responses)
+
+    v = score_batch(slow, ["p", "p"], ["fast", "slow"], timeout=0.2)
+    np.testing.assert_array_equal(v.failed, [False, True])
+    assert v.reasons[1] == "timeout after 0.2 s"
+    assert v.scores[0] == 1.0 and v.scores[1] == 0.0
+
+
+def test_rewards_kept_and_nan_reward_is_a_failure():
+    def with_rewards(prompts, responses):
+        return Verdicts(scores=[0.5, 0.7], rewards=[1.0, float("nan")])
+
+    v = score_batch(with_rewards, ["p", "q"], ["a", "b"])
+    np.testing.assert_array_equal(v.rewards, [1.0, 0.0])
+    assert v.reasons == [None, "reward is nan"]
+    assert not np.isnan(v.scores).any() and not np.isnan(v.rewards).any()
+
+
+def test_wrong_length_falls_back_per_sample():
+    calls = []
+
+    def sometimes_short(prompts, responses):
+        calls.append(len(prompts))
+        return [1.0] if len(prompts) > 1 else [2.0]
+
+    v = score_batch(sometimes_short, ["p"] * 3, ["a", "b", "c"])
+    assert calls == [3, 1, 1, 1]
+    np.testing.assert_array_equal(v.scores, [2.0, 2.0, 2.0])
+
+
+def test_bad_arguments_name_themselves():
+    with pytest.raises(TypeError, match="verifier must be callable"):
+        score_batch(3, ["p"], ["r"])
+    with pytest.raises(ValueError, match=r"responses must have the same length as prompts \(2\), got 1"):
+        score_batch(picky, ["p", "q"], ["r"])
+    with pytest.raises(TypeError, match=r"responses\[0\] must be a str, got int"):
+        score_batch(picky, ["p"], [5])
+    with pytest.raises(TypeError, match="prompts must be a sequence of str, got str"):
+        score_batch(picky, "p", ["r"])
+    with pytest.raises(ValueError, match="failure_score must be finite"):
+        score_batch(picky, ["p"], ["r"], failure_score=math.nan)
+    with pytest.raises(ValueError, match="timeout must be a finite number of seconds > 0, got timeout=0"):
+        score_batch(picky, ["p"], ["r"], timeout=0)
+
+
+def test_empty_batch():
+    assert len(score_batch(picky, [], [])) == 0
+
+
+def test_load_verifier_from_module_and_file(tmp_path):
+    f = tmp_path / "myver.py"
+    f.write_text(
+        "class Length:\n"
+        "    def __call__(self, prompts, responses):\n"
+        "        return [float(len(r)) for r in responses]\n"
+        "def first(prompts, responses):\n"
+        "    return [1.0 if r.startswith('a') else 0.0 for r in responses]\n"
+    )
+    fn = load_verifier(f"{f}:first")
+    assert list(fn(["p", "p"], ["abc", "xyz"])) == [1.0, 0.0]
+    inst = load_verifier(f"{f}:Length")  # a class is instantiated with no arguments
+    assert inst(["p"], ["abcd"]) == [4.0]
+    mod_fn = load_verifier("bonft.verifiers.scoring:score_batch")
+    assert mod_fn is score_batch
+
+
+def test_load_verifier_errors(tmp_path):
+    with pytest.raises(ValueError, match="spec must look like 'module:function'"):
+        load_verifier("no_colon_here")
+    with pytest.raises(TypeError, match="spec must be a str"):
+        load_verifier(3)
+    with pytest.raises(ValueError, match="cannot be imported"):
+        load_verifier("surely_not_a_module_xyz:f")
+    with pytest.raises(ValueError, match="has no attribute 'nope'"):
+        load_verifier("bonft.verifiers.scoring:nope")
+    with pytest.raises(FileNotFoundError, match="does not exist"):
+        load_verifier(str(tmp_path / "missing.py") + ":f")
+    with pytest.raises(TypeError, match="must name a callable verifier, got Logger"):
+        load_verifier("bonft.verifiers.scoring:log")
