@@ -1,0 +1,292 @@
+"""Exact best-of-k calculus on a finite outcome set, differentiable.
+
+Draw ``k`` outcomes i.i.d. from a policy ``pi`` over ``V`` outcomes, let a
+verifier score them, keep the one with the highest score (ties broken
+uniformly at random among the tied *samples*). The kept outcome follows the
+best-of-k policy (Chow et al. 2024, "Inference-Aware Fine-Tuning for Best-of-N
+Sampling in LLMs")::
+
+    pi_bon(v) = pi(v) / P(G_v) * (F(s_v)^k - F_(s_v)^k)
+
+with ``G_v = {u : s_u = s_v}``, ``F(s) = P(score <= s)`` and
+``F_(s) = P(score < s)``. Every function here computes the gain
+``D(v) = pi_bon(v) / pi(v)`` in log space, so k up to 10^4 and probabilities
+down to 1e-30 stay finite, values and gradients alike.
+
+Inputs are numpy arrays or torch tensors of any real dtype; the math runs in
+float64 and results are float64 of the same kind as ``probs`` (numpy in ->
+numpy out, torch in -> torch out on the same device, differentiable w.r.t.
+``probs`` -- hence w.r.t. logits through :func:`softmax_policy` -- and
+``rewards``). Scores are treated as constants: ``pi_bon`` is piecewise
+constant in them.
+
+Caution: best-of-k puts its weight on whatever the verifier ranks highest. A
+policy fine-tuned to raise ``V_k`` against an imperfect verifier learns the
+verifier's blind spots (reward hacking); watch :func:`bon_kl` and evaluate
+with a held-out check. If the verifier runs model-written code, run it
+sandboxed.
+"""
+from __future__ import annotations
+
+import math
+import numbers
+from typing import Any
+
+import numpy as np
+import torch
+
+from bonft._checks import (
+    as_float_array,
+    check_finite,
+    check_int,
+    check_nonempty,
+    check_positive,
+    check_probs,
+    is_tensor,
+)
+
+__all__ = [
+    "softmax_policy",
+    "bon_distribution",
+    "log_bon_distribution",
+    "bon_value",
+    "bon_success",
+    "bon_kl",
+]
+
+_LN2 = math.log(2.0)
+_TINY = 1e-300  # keeps log(-expm1(x)) finite when x rounds to 0
+
+
+# ----------------------------------------------------------------- validation
+
+
+def _as_tensor(name: str, x: Any, device: torch.device | None) -> torch.Tensor:
+    """float64 tensor; keeps autograd for tensors, converts everything else."""
+    if is_tensor(x):
+        if x.is_complex():
+            raise TypeError(f"{name} must be a real array, got complex tensor of dtype {x.dtype}")
+        return x.to(dtype=torch.float64, device=device if device is not None else x.device)
+    arr = as_float_array(name, x)
+    return torch.as_tensor(arr, dtype=torch.float64, device=device)
+
+
+def _check_probs(probs: Any) -> tuple[torch.Tensor, bool]:
+    """Returns (probs as float64 tensor, whether to hand back numpy)."""
+    p = _as_tensor("probs", probs, None)
+    if p.ndim < 1:
+        raise ValueError(f"probs must have at least 1 dimension (..., V), got shape {tuple(p.shape)}")
+    check_nonempty("probs", p)
+    check_probs("probs", p)
+    return p, not is_tensor(probs)
+
+
+def _check_per_outcome(name: str, x: Any, p: torch.Tensor) -> torch.Tensor:
+    """scores / rewards: last axis V like probs, leading axes broadcast."""
+    t = _as_tensor(name, x, p.device)
+    V = p.shape[-1]
+    if t.ndim < 1 or t.shape[-1] != V:
+        raise ValueError(
+            f"{name} must have shape (..., V) with V={V} like probs {tuple(p.shape)}, got shape {tuple(t.shape)}"
+        )
+    try:
+        torch.broadcast_shapes(t.shape, p.shape)
+    except RuntimeError:
+        raise ValueError(
+            f"{name} must broadcast against probs {tuple(p.shape)}, got shape {tuple(t.shape)}"
+        ) from None
+    check_finite(name, t)
+    return t
+
+
+def _check_k(k: Any) -> int:
+    return check_int("k", k, min=1)
+
+
+def _out(t: torch.Tensor, as_numpy: bool):
+    if not as_numpy:
+        return t
+    a = t.detach().cpu().numpy()
+    return a[()] if a.ndim == 0 else a
+
+
+# ----------------------------------------------------------------------- math
+
+
+def _log1mexp(x: torch.Tensor) -> torch.Tensor:
+    """log(1 - exp(x)) for x <= 0 (x may be -inf), both branches NaN-free in grads."""
+    near0 = x > -_LN2
+    xa = torch.where(near0, x, torch.full_like(x, -1.0)).clamp(max=-_TINY)
+    xb = torch.where(near0, torch.full_like(x, -1.0), x)
+    return torch.where(near0, torch.log(-torch.expm1(xa)), torch.log1p(-torch.exp(xb)))
+
+
+def _log_gain(p: torch.Tensor, s: torch.Tensor, k: int) -> tuple[torch.Tensor, torch.Tensor]:
+    """log D(v) = log pi_bon(v) - log pi(v), and the broadcast probs.
+
+    p: (..., V), s: broadcastable to p -> both (L..., V) with L the broadcast
+    leading shape. Where the whole tie group of v has mass 0, D(v) is the
+    limit k F_^(k-1) (the one-sided derivative), so pi_bon = pi * D still
+    holds and the gradient at pi(v) = 0 is right for that entry.
+    """
+    shape = torch.broadcast_shapes(p.shape, s.shape)
+    p = p.expand(shape)
+    if k == 1:  # best-of-1 is the policy itself: D = 1
+        return torch.zeros(shape, dtype=torch.float64, device=p.device), p
+    V = shape[-1]
+    # flatten leading axes: (L..., V) -> (B, V)
+    p2 = p.reshape(-1, V)
+    s2 = s.detach().expand(shape).reshape(-1, V)
+    B = p2.shape[0]
+
+    ss, order = torch.sort(s2, dim=-1, stable=True)  # (B, V) ascending scores
+    ps = p2.gather(-1, order)  # (B, V) probs in score order
+    new = torch.ones_like(ss, dtype=torch.bool)
+    new[:, 1:] = ss[:, 1:] != ss[:, :-1]
+    gid = new.long().cumsum(-1) - 1  # (B, V) tie-group index of each sorted outcome
+    mass = torch.zeros_like(ps).scatter_add(-1, gid, ps)  # (B, V) P(G_j), trailing groups 0
+    below = torch.cat([mass.new_zeros(B, 1), mass.cumsum(-1)[:, :-1]], dim=-1)  # (B, V) F_ per group
+    PG = mass.gather(-1, gid)  # (B, V) P(G_v) per outcome
+    Fex = below.gather(-1, gid)  # (B, V) F_(s_v) per outcome
+
+    pos = PG > 0
+    PG_s = torch.where(pos, PG, torch.ones_like(PG))
+    F_s = torch.where(pos, Fex + PG, torch.ones_like(PG))  # F(s_v) >= P(G_v)
+    r = PG_s / F_s  # 1 - F_/F, in (0, 1]
+    inner = r < 1
+    r_s = torch.where(inner, r, torch.full_like(r, 0.5))
+    # x = k log(F_/F); 1 - exp(x) = (F^k - F_^k) / F^k
+    x = torch.where(inner, k * torch.log1p(-r_s), torch.full_like(r, -math.inf))
+    log_gain_pos = k * torch.log(F_s) + _log1mexp(x) - torch.log(PG_s)
+    # empty group: D = d/dq [(F_ + q)^k] at q = 0 = k F_^(k-1)
+    fz = (~pos) & (Fex > 0)
+    Fex_s = torch.where(fz, Fex, torch.ones_like(Fex))
+    log_gain_zero = torch.where(
+        fz, math.log(k) + (k - 1) * torch.log(Fex_s), torch.full_like(Fex, -math.inf)
+    )
+    lg_sorted = torch.where(pos, log_gain_pos, log_gain_zero)
+    inv = torch.argsort(order, dim=-1)  # (B, V) undo the sort
+    lg = lg_sorted.gather(-1, inv).reshape(shape)  # (B, V) -> (L..., V)
+    return lg, p
+
+
+# ------------------------------------------------------------------ public API
+
+
+def softmax_policy(logits, *, temperature=1.0):
+    """Sampling policy of a softmax at a temperature.
+
+    ``logits: (..., V) -> (..., V)``; ``pi(v) = exp(l_v / T) / sum_u exp(l_u / T)``.
+    Entries of ``-inf`` (masked outcomes) get probability 0; each row needs at
+    least one finite logit. float64, numpy in -> numpy out, torch in -> torch
+    out (differentiable).
+    """
+    T = check_positive("temperature", temperature)
+    z = _as_tensor("logits", logits, None)
+    if z.ndim < 1:
+        raise ValueError(f"logits must have at least 1 dimension (..., V), got shape {tuple(z.shape)}")
+    check_nonempty("logits", z)
+    zd = z.detach()
+    if bool(torch.isnan(zd).any()) or bool((zd == math.inf).any()):
+        bad = torch.nonzero(torch.isnan(zd) | (zd == math.inf))[0].tolist()
+        raise ValueError(f"logits must be finite or -inf, got {float(zd[tuple(bad)])} at index {tuple(bad)}")
+    if bool((zd == -math.inf).all(-1).any()):
+        raise ValueError("logits must have at least one finite entry per row, got a row of all -inf")
+    probs = torch.softmax(z / T, dim=-1)
+    return _out(probs, not is_tensor(logits))
+
+
+def bon_distribution(probs, scores, k):
+    """Distribution of the outcome best-of-k keeps.
+
+    ``probs: (..., V), scores: (..., V) or (V,) -> (..., V)`` (leading axes broadcast).
+
+    ``pi_bon(v) = pi(v) / P(G_v) * (F(s_v)^k - F_(s_v)^k)`` with ties broken
+    uniformly among the tied samples; ``pi(v) = 0`` gives 0.
+    Chow et al. 2024, "Inference-Aware Fine-Tuning for Best-of-N Sampling in LLMs".
+    """
+    p, as_np = _check_probs(probs)
+    s = _check_per_outcome("scores", scores, p)
+    k = _check_k(k)
+    lg, pb = _log_gain(p, s, k)
+    return _out(pb * torch.exp(lg), as_np)
+
+
+def log_bon_distribution(probs, scores, k):
+    """``log pi_bon``: ``(..., V), (..., V) or (V,) -> (..., V)``, ``-inf`` where ``pi_bon = 0``.
+
+    ``log pi_bon(v) = log pi(v) + k log F(s_v) + log(1 - (F_(s_v)/F(s_v))^k) - log P(G_v)``,
+    finite for k up to 10^4 where :func:`bon_distribution` underflows to 0.
+    Chow et al. 2024.
+    """
+    p, as_np = _check_probs(probs)
+    s = _check_per_outcome("scores", scores, p)
+    k = _check_k(k)
+    lg, pb = _log_gain(p, s, k)
+    nz = pb > 0
+    logp = torch.log(torch.where(nz, pb, torch.ones_like(pb)))
+    lg_s = torch.where(nz, lg, torch.zeros_like(lg))
+    out = torch.where(nz, logp + lg_s, torch.full_like(pb, -math.inf))
+    return _out(out, as_np)
+
+
+def bon_value(probs, scores, rewards, k):
+    """Expected reward of the outcome best-of-k keeps.
+
+    ``probs: (..., V), scores, rewards: (..., V) or (V,) -> (...)``.
+    ``V_k = sum_v pi_bon(v) R_v``; k = 1 gives ``E_pi[R]``. When the verifier
+    knows the reward (scores = rewards in {0, 1}) this is
+    ``bon_success(P(R = 1), k)``. Chow et al. 2024.
+    """
+    p, as_np = _check_probs(probs)
+    s = _check_per_outcome("scores", scores, p)
+    R = _check_per_outcome("rewards", rewards, p)
+    k = _check_k(k)
+    lg, pb = _log_gain(p, s, k)
+    return _out((pb * torch.exp(lg) * R).sum(-1), as_np)
+
+
+def bon_success(p, k):
+    """Chance that at least one of k independent tries succeeds.
+
+    ``p: (...) -> (...)``, ``1 - (1 - p)^k = -expm1(k log1p(-p))`` (pass@k of a
+    problem solved with chance p, Chen et al. 2021). Scalars give a float,
+    numpy gives numpy, torch gives a differentiable float64 tensor.
+    """
+    k = _check_k(k)
+    scalar = isinstance(p, numbers.Real) and not isinstance(p, bool)
+    if isinstance(p, bool):
+        raise TypeError("p must be a probability (number or array), got bool")
+    t = _as_tensor("p", p, None)
+    check_finite("p", t)
+    td = t.detach()
+    if t.numel() and bool(((td < 0) | (td > 1)).any()):
+        bad = torch.nonzero((td < 0) | (td > 1))[0].tolist()
+        raise ValueError(f"p must be in [0, 1], got {float(td[tuple(bad)])} at index {tuple(bad)}")
+    if k == 1:
+        out = t
+    else:
+        below1 = t < 1
+        t_s = torch.where(below1, t, torch.zeros_like(t))
+        out = torch.where(below1, -torch.expm1(k * torch.log1p(-t_s)), torch.ones_like(t))
+    if scalar:
+        return float(out)
+    return _out(out, not is_tensor(p))
+
+
+def bon_kl(probs, scores, k):
+    """KL divergence of the best-of-k policy from the policy.
+
+    ``probs: (..., V), scores: (..., V) or (V,) -> (...)``,
+    ``KL(pi_bon || pi) = sum_v pi_bon(v) log(pi_bon(v) / pi(v))``, in nats.
+    Never above ``log k - (k - 1)/k``, reached as the policy spreads over many
+    distinct scores (Beirami et al. 2024, "Theoretical guarantees on the
+    best-of-n alignment policy"). Chow et al. 2024 for ``pi_bon``.
+    """
+    p, as_np = _check_probs(probs)
+    s = _check_per_outcome("scores", scores, p)
+    k = _check_k(k)
+    lg, pb = _log_gain(p, s, k)
+    nz = pb > 0
+    lg_s = torch.where(nz, lg, torch.zeros_like(lg))  # D's log only where pi > 0 (finite there)
+    return _out((pb * torch.exp(lg_s) * lg_s).sum(-1), as_np)
