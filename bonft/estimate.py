@@ -1,0 +1,395 @@
+"""Unbiased best-of-k and pass@k from pools of scored samples, with confidence intervals.
+
+For one prompt we hold a pool of ``n`` samples, each with a verifier ``score``
+(higher is better) and a true ``reward``. Serving best-of-k draws ``k``
+samples and keeps the one with the highest score; its reward is what the user
+gets. The estimators here average that reward over *all* ``C(n, k)``
+k-subsets of the pool (a U-statistic, hence unbiased for the best-of-k value
+of the policy that produced the pool):
+
+    bon@k = sum_i  C(i-1, k-1) / C(n, k) * r_(i)        (samples sorted ascending by score)
+
+where ``r_(i)`` is the reward of the sample with the i-th smallest score. With
+tied scores the verifier has no preference; we take the expectation under
+uniform tie-breaking, which replaces each ``r_(i)`` by the mean reward of its
+tied group (exact, no random draw). With ``scores = rewards`` this is the
+oracle value (best true reward among k); with binary rewards it is pass@k of
+Chen et al. 2021, ``1 - C(n-c, k) / C(n, k)``.
+
+References: Chen et al. 2021 (pass@k estimator); Chow et al. 2024
+"Inference-Aware Fine-Tuning for Best-of-N Sampling in LLMs" (best-of-N as the
+served quantity); Walder & Karkhanis 2025 (U-statistic pass@k).
+
+Cost: one sort per prompt (``O(n log n)``) plus ``O(n)`` per requested k, with
+no Python loop over samples or prompts (ragged pools are grouped by size).
+Binomial ratios go through log-gamma (:mod:`bonft._binom`), so ``n = 10^5``,
+``k = 10^4`` stay finite.
+
+Caution: best-of-k with a verifier measures what the verifier rewards. Compare
+it to the oracle curve; a large gap means the verifier can be gamed (length,
+format, keywords) and fine-tuning towards it would learn to game it.
+"""
+from __future__ import annotations
+
+import json
+import numbers
+from dataclasses import dataclass, field
+from typing import Any, Sequence
+
+import numpy as np
+
+from bonft._binom import log_comb
+from bonft._checks import (
+    as_float_array,
+    check_finite,
+    check_fraction,
+    check_int,
+    check_ks,
+    check_nonempty,
+    check_same_shape,
+    is_tensor,
+)
+
+__all__ = [
+    "bon_at_k",
+    "pass_at_k",
+    "bon_at_k_per_prompt",
+    "oracle_at_k_per_prompt",
+    "bootstrap_ci",
+    "summarize",
+    "default_ks",
+    "CurveSummary",
+]
+
+
+# ----------------------------------------------------------------------------- math core (trusts inputs)
+
+
+def _rank_weights(n: int, ks: np.ndarray) -> np.ndarray:
+    """(K,) -> (K, n): weight of the sample at ascending rank i (0-based) in best-of-k.
+
+    w[k, i] = C(i, k-1) / C(n, k); each row sums to 1 (hockey-stick identity),
+    we renormalise to remove the last rounding of the log-gamma route.
+    """
+    i = np.arange(n, dtype=np.float64)[None, :]  # (1, n) 0-based rank = (1-based rank) - 1
+    kk = ks.astype(np.float64)[:, None]  # (K, 1)
+    w = np.exp(log_comb(i, kk - 1) - log_comb(float(n), kk))  # (K, n)
+    return w / w.sum(axis=1, keepdims=True)
+
+
+def _bon_matrix(scores: np.ndarray, rewards: np.ndarray, ks: np.ndarray) -> np.ndarray:
+    """scores, rewards: (P, n) float64, ks: (K,) int -> (P, K) best-of-k values."""
+    P, n = scores.shape
+    order = np.argsort(scores, axis=1)  # ascending score per prompt
+    r = np.take_along_axis(rewards, order, axis=1)  # (P, n) rewards in score order
+    s = np.take_along_axis(scores, order, axis=1)  # (P, n) sorted scores
+    new = np.ones((P, n), dtype=bool)  # True where a tie group starts
+    new[:, 1:] = s[:, 1:] != s[:, :-1]
+    if not new.all():
+        # ties: every member of a tied group gets the group's mean reward
+        starts = np.flatnonzero(new.ravel())  # group starts in the flattened (P*n,) view
+        sums = np.add.reduceat(r.ravel(), starts)
+        counts = np.diff(np.append(starts, P * n))
+        r = np.repeat(sums / counts, counts).reshape(P, n)  # (P*n,) -> (P, n)
+    return r @ _rank_weights(n, ks).T  # (P, n) @ (n, K) -> (P, K)
+
+
+# ----------------------------------------------------------------------------- validation helpers
+
+
+def _pool_pair(scores: Any, rewards: Any, *, name_s: str = "scores", name_r: str = "rewards"):
+    """One prompt's pool -> two finite (n,) float64 arrays."""
+    s = as_float_array(name_s, scores, ndim=1)
+    r = as_float_array(name_r, rewards, ndim=1)
+    check_same_shape(**{name_s: s, name_r: r})
+    check_nonempty(name_s, s)
+    check_finite(name_s, s)
+    check_finite(name_r, r)
+    return s, r
+
+
+def _is_ragged_list(x: Any) -> bool:
+    return isinstance(x, (list, tuple)) and len(x) > 0 and not isinstance(x[0], numbers.Number)
+
+
+def _pools(scores: Any, rewards: Any) -> tuple[list[np.ndarray], list[np.ndarray]] | tuple[np.ndarray, np.ndarray]:
+    """Validate per-prompt pools: a 2-D pair of arrays, or two lists of 1-D arrays."""
+    if _is_ragged_list(scores) or _is_ragged_list(rewards):
+        for name, x in (("scores", scores), ("rewards", rewards)):
+            if not isinstance(x, (list, tuple)):
+                raise TypeError(f"{name} must be a list of 1-D arrays like the other argument, got {type(x).__name__}")
+        if len(scores) != len(rewards):
+            raise ValueError(f"rewards must hold one pool per prompt like scores ({len(scores)}), got {len(rewards)}")
+        if not scores:
+            raise ValueError("scores must not be empty")
+        ss, rr = [], []
+        for p, (s, r) in enumerate(zip(scores, rewards)):
+            s, r = _pool_pair(s, r, name_s=f"scores[{p}]", name_r=f"rewards[{p}]")
+            ss.append(s)
+            rr.append(r)
+        return ss, rr
+    s = as_float_array("scores", scores, ndim=2)
+    r = as_float_array("rewards", rewards, ndim=2)
+    check_same_shape(scores=s, rewards=r)
+    check_nonempty("scores", s)
+    check_finite("scores", s)
+    check_finite("rewards", r)
+    return s, r
+
+
+def _ragged_bon(ss: list[np.ndarray], rr: list[np.ndarray], ks: np.ndarray) -> np.ndarray:
+    """Lists of (n_p,) pools -> (P, K); pools of equal size go through the 2-D path together."""
+    lengths = np.array([len(s) for s in ss])
+    out = np.empty((len(ss), len(ks)))
+    for n in np.unique(lengths):
+        idx = np.flatnonzero(lengths == n)
+        S = np.stack([ss[i] for i in idx])  # (P_n, n)
+        R = np.stack([rr[i] for i in idx])
+        out[idx] = _bon_matrix(S, R, ks)
+    return out
+
+
+def _n_min(s) -> int:
+    return min(len(x) for x in s) if isinstance(s, list) else s.shape[1]
+
+
+# ----------------------------------------------------------------------------- public estimators
+
+
+def bon_at_k(scores, rewards, k):
+    """Unbiased best-of-k value of one prompt's pool: ``(n,), (n,) -> float`` (or ``(K,)`` for a sequence of k).
+
+    bon@k = sum_i C(i-1, k-1) / C(n, k) * rbar_(i), samples sorted ascending by
+    score, ``rbar`` the mean reward of the tied group (uniform tie-breaking).
+    Chow et al. 2024; pass@k special case: Chen et al. 2021.
+
+    scores:  (n,) verifier scores, higher is better (numpy, torch or list).
+    rewards: (n,) true rewards.
+    k:       int in [1, n], or a sequence of them.
+    """
+    s, r = _pool_pair(scores, rewards)
+    ks, scalar = check_ks(k, len(s), name="k")
+    out = _bon_matrix(s[None, :], r[None, :], ks)[0]  # (1, n) -> (1, K) -> (K,)
+    return float(out[0]) if scalar else out
+
+
+def bon_at_k_per_prompt(scores, rewards, ks):
+    """Best-of-k value of every prompt: ``(P, n), (P, n) -> (P, K)`` (``(P,)`` when ``ks`` is an int).
+
+    ``scores``/``rewards`` are 2-D arrays (every prompt has ``n`` samples) or
+    two lists of 1-D arrays (ragged pools; each k must fit the smallest pool).
+    Same estimator as :func:`bon_at_k`, per prompt, with no loop over prompts.
+    """
+    s, r = _pools(scores, rewards)
+    ks_arr, scalar = check_ks(ks, _n_min(s), name="ks")
+    out = _ragged_bon(s, r, ks_arr) if isinstance(s, list) else _bon_matrix(s, r, ks_arr)
+    return out[:, 0] if scalar else out
+
+
+def oracle_at_k_per_prompt(rewards, ks):
+    """Best true reward among k, averaged over k-subsets: ``(P, n) -> (P, K)``.
+
+    Equals :func:`bon_at_k_per_prompt` with ``scores = rewards``; for binary
+    rewards it is pass@k (Chen et al. 2021), the ceiling any verifier can reach.
+    """
+    if _is_ragged_list(rewards):
+        return bon_at_k_per_prompt(rewards, rewards, ks)
+    r = as_float_array("rewards", rewards, ndim=2)
+    return bon_at_k_per_prompt(r, r, ks)
+
+
+def _int_array(name: str, x: Any) -> np.ndarray:
+    if is_tensor(x):
+        x = x.detach().cpu().numpy()
+    arr = np.asarray(x)
+    if arr.dtype == bool or not (np.issubdtype(arr.dtype, np.integer) or arr.dtype == object):
+        raise TypeError(f"{name} must hold ints, got dtype {arr.dtype}")
+    if arr.dtype == object:
+        for v in arr.ravel():
+            check_int(name, v)
+        arr = arr.astype(np.int64)
+    return arr.astype(np.int64)
+
+
+def pass_at_k(n, c, k):
+    """Unbiased pass@k from ``c`` correct among ``n`` samples (Chen et al. 2021), broadcast elementwise.
+
+    pass@k = 1 - C(n-c, k) / C(n, k), computed as ``-expm1(log C(n-c,k) - log C(n,k))``.
+
+    n, c, k: ints or broadcastable int arrays with 0 <= c <= n and 1 <= k <= n.
+    Returns a float when all three are scalars, else an array of the broadcast shape.
+    """
+    scalar = all(np.ndim(v) == 0 for v in (n, c, k))
+    n_, c_, k_ = (_int_array(nm, v) for nm, v in (("n", n), ("c", c), ("k", k)))
+    try:
+        n_, c_, k_ = np.broadcast_arrays(n_, c_, k_)
+    except ValueError:
+        raise ValueError(
+            f"n, c and k must broadcast together, got shapes {np.shape(n)}, {np.shape(c)}, {np.shape(k)}"
+        ) from None
+    for name, bad, what in (
+        ("c", c_ < 0, "c must be >= 0"),
+        ("c", c_ > n_, "c must be <= n"),
+        ("k", k_ < 1, "k must be >= 1"),
+        ("k", k_ > n_, "k must be <= n"),
+    ):
+        if bad.any():
+            i = tuple(int(j) for j in np.argwhere(bad)[0]) if bad.ndim else ()
+            raise ValueError(f"{what} (n={int(n_[i])}), got {name}={int((c_ if name == 'c' else k_)[i])}")
+    out = -np.expm1(log_comb(n_ - c_, k_) - log_comb(n_, k_))
+    return float(out) if scalar else np.asarray(out, dtype=np.float64)
+
+
+def bootstrap_ci(values, *, confidence: float = 0.95, n_boot: int = 2000, seed: int = 0):
+    """Percentile bootstrap over prompts: ``values (P, K) -> (mean (K,), lo (K,), hi (K,))``.
+
+    Each of ``n_boot`` replicates resamples the P prompts with replacement and
+    takes the column means; ``lo``/``hi`` are the ``(1 -+ confidence)/2``
+    quantiles of those means (Efron & Tibshirani 1993, percentile interval).
+    ``mean`` is the plain mean over prompts. A 1-D ``values (P,)`` gives scalars.
+    Resampling is vectorised (counts matrix @ values), in chunks to bound memory.
+    """
+    v = as_float_array("values", values, ndim=(1, 2))
+    check_nonempty("values", v)
+    check_finite("values", v)
+    confidence = check_fraction("confidence", confidence, open_low=True, open_high=True)
+    n_boot = check_int("n_boot", n_boot, min=1)
+    seed = check_int("seed", seed, min=0)
+    one_d = v.ndim == 1
+    V = v[:, None] if one_d else v  # (P,) -> (P, 1)
+    P = V.shape[0]
+    rng = np.random.default_rng(seed)
+    means = np.empty((n_boot, V.shape[1]))
+    chunk = max(1, min(n_boot, 4_000_000 // P))
+    for b0 in range(0, n_boot, chunk):
+        b = min(chunk, n_boot - b0)
+        idx = rng.integers(0, P, size=(b, P))  # (b, P) resampled prompt indices
+        flat = (idx + np.arange(b)[:, None] * P).ravel()  # offset each replicate's row
+        counts = np.bincount(flat, minlength=b * P).reshape(b, P)  # (b*P,) -> (b, P)
+        means[b0 : b0 + b] = counts @ V / P
+    alpha = (1.0 - confidence) / 2.0
+    lo, hi = np.quantile(means, [alpha, 1.0 - alpha], axis=0)
+    mean = V.mean(axis=0)
+    # a replicate mean cannot stray outside the data range, but keep lo <= mean <= hi exact
+    lo, hi = np.minimum(lo, mean), np.maximum(hi, mean)
+    if one_d:
+        return float(mean[0]), float(lo[0]), float(hi[0])
+    return mean, lo, hi
+
+
+# ----------------------------------------------------------------------------- summary
+
+
+def default_ks(n_min: int) -> list[int]:
+    """1, 2, 4, ... up to ``n_min``, plus ``n_min`` itself when it is not a power of 2."""
+    n_min = check_int("n_min", n_min, min=1)
+    ks = [1 << j for j in range(n_min.bit_length()) if (1 << j) <= n_min]
+    if ks[-1] != n_min:
+        ks.append(n_min)
+    return ks
+
+
+@dataclass
+class CurveSummary:
+    """Best-of-k (verifier-selected) and oracle curves over prompts, with bootstrap intervals.
+
+    ks: (K,) subset sizes; n_prompts: P; n_min: smallest pool size.
+    bon_*: verifier-selected best-of-k mean / lower / upper (K,);
+    oracle_*: best true reward among k (pass@k for binary rewards) (K,).
+    per_prompt_bon, per_prompt_oracle: (P, K).
+    """
+
+    ks: np.ndarray
+    n_prompts: int
+    n_min: int
+    bon_mean: np.ndarray
+    bon_lo: np.ndarray
+    bon_hi: np.ndarray
+    oracle_mean: np.ndarray
+    oracle_lo: np.ndarray
+    oracle_hi: np.ndarray
+    per_prompt_bon: np.ndarray = field(repr=False)
+    per_prompt_oracle: np.ndarray = field(repr=False)
+    confidence: float = 0.95
+    n_boot: int = 2000
+    seed: int = 0
+
+    def table(self) -> str:
+        """A fixed-width text table: one row per k."""
+        pct = f"{100 * self.confidence:g}%"
+        head = f"{'k':>6}  {'best-of-k':>9}  {pct + ' CI':>17}  {'oracle':>7}  {pct + ' CI':>17}  {'gap':>7}"
+        lines = [f"prompts: {self.n_prompts}   smallest pool: {self.n_min}", head]
+        for j, k in enumerate(self.ks):
+            b, o = self.bon_mean[j], self.oracle_mean[j]
+            lines.append(
+                f"{int(k):>6}  {b:>9.4f}  [{self.bon_lo[j]:.4f}, {self.bon_hi[j]:.4f}]"
+                f"  {o:>7.4f}  [{self.oracle_lo[j]:.4f}, {self.oracle_hi[j]:.4f}]  {o - b:>7.4f}"
+            )
+        return "\n".join(lines)
+
+    def to_dict(self) -> dict:
+        """JSON-able dict of the curves (per-prompt matrices as nested lists)."""
+        d = {
+            "ks": [int(k) for k in self.ks],
+            "n_prompts": int(self.n_prompts),
+            "n_min": int(self.n_min),
+            "confidence": float(self.confidence),
+            "n_boot": int(self.n_boot),
+            "seed": int(self.seed),
+        }
+        for name in ("bon_mean", "bon_lo", "bon_hi", "oracle_mean", "oracle_lo", "oracle_hi"):
+            d[name] = [float(x) for x in getattr(self, name)]
+        d["per_prompt_bon"] = np.asarray(self.per_prompt_bon, dtype=float).tolist()
+        d["per_prompt_oracle"] = np.asarray(self.per_prompt_oracle, dtype=float).tolist()
+        json.dumps(d, allow_nan=False)  # refuses NaN instead of writing it
+        return d
+
+    def plot(self, path, *, title: str | None = None) -> str:
+        """Write a PNG of both curves with their intervals against k (log2 axis); returns the path."""
+        import matplotlib
+
+        matplotlib.use("Agg")
+        import matplotlib.pyplot as plt
+
+        path = str(path)
+        fig, ax = plt.subplots(figsize=(6, 4))
+        ks = np.asarray(self.ks)
+        for mean, lo, hi, label in (
+            (self.oracle_mean, self.oracle_lo, self.oracle_hi, "oracle (best true reward among k)"),
+            (self.bon_mean, self.bon_lo, self.bon_hi, "best-of-k (verifier picks)"),
+        ):
+            ax.plot(ks, mean, marker="o", label=label)
+            ax.fill_between(ks, lo, hi, alpha=0.25)
+        if len(ks) > 1:
+            ax.set_xscale("log", base=2)
+        ax.set_xlabel("k (samples drawn)")
+        ax.set_ylabel("expected reward")
+        ax.set_title(title or f"{self.n_prompts} prompts, {100 * self.confidence:g}% bootstrap CI")
+        ax.grid(alpha=0.3)
+        ax.legend()
+        fig.tight_layout()
+        fig.savefig(path, dpi=100)
+        plt.close(fig)
+        return path
+
+
+def summarize(scores, rewards, ks=None, *, confidence: float = 0.95, n_boot: int = 2000, seed: int = 0) -> CurveSummary:
+    """Per-prompt best-of-k and oracle curves plus bootstrap CIs over prompts.
+
+    scores, rewards: (P, n) arrays or lists of 1-D arrays (ragged).
+    ks: int, sequence, or None for :func:`default_ks` of the smallest pool.
+    """
+    s, r = _pools(scores, rewards)
+    n_min = _n_min(s)
+    ks_arr, _ = check_ks(default_ks(n_min) if ks is None else ks, n_min, name="ks")
+    if isinstance(s, list):
+        bon, orc = _ragged_bon(s, r, ks_arr), _ragged_bon(r, r, ks_arr)
+    else:
+        bon, orc = _bon_matrix(s, r, ks_arr), _bon_matrix(r, r, ks_arr)
+    bm, bl, bh = bootstrap_ci(bon, confidence=confidence, n_boot=n_boot, seed=seed)
+    om, ol, oh = bootstrap_ci(orc, confidence=confidence, n_boot=n_boot, seed=seed)
+    return CurveSummary(
+        ks=ks_arr, n_prompts=len(s), n_min=n_min,
+        bon_mean=bm, bon_lo=bl, bon_hi=bh, oracle_mean=om, oracle_lo=ol, oracle_hi=oh,
+        per_prompt_bon=bon, per_prompt_oracle=orc, confidence=confidence, n_boot=n_boot, seed=seed,
+    )

@@ -1,0 +1,257 @@
+"""The samples file: JSON Lines, one scored sample per line.
+
+Written by ``bonft sample``, read by ``bonft estimate`` and ``bonft plan``::
+
+    {"prompt_id": "L017", "score": 0.73, "reward": 1, "temperature": 0.7, "n_tokens": 143, "response": "..."}
+
+- ``prompt_id`` (str or int; ints are keys too, ``3`` and ``"3"`` are the same prompt),
+- ``score`` (number, the verifier's score, higher is better),
+- ``reward`` (number or true/false, the true reward),
+- ``temperature`` (number, optional), ``n_tokens`` (int, optional), ``response`` (str, optional;
+  never read back here, so files with long responses load as fast as short ones).
+
+Field names can be renamed on reading (``score_field="rm_score"`` ...). Blank
+lines are skipped. A malformed line raises ``ValueError`` naming the file and
+line number. Writing is atomic (temp file + ``os.replace``), so a crash never
+leaves a half-written file in place of a good one.
+
+Caution: ``response`` may hold model-written code; nothing here runs it, and
+nothing should run it outside a sandbox.
+"""
+from __future__ import annotations
+
+import json
+import math
+import os
+import tempfile
+from dataclasses import dataclass
+from typing import Any, Iterable
+
+import numpy as np
+
+from bonft._checks import as_float_array
+
+__all__ = ["SampleTable", "read_samples", "write_samples", "group_pools", "temperatures_of"]
+
+
+@dataclass
+class SampleTable:
+    """Columns of a samples file, one entry per sample (N rows).
+
+    prompt_ids: (N,) str keys; scores, rewards: (N,) float64;
+    temperatures: (N,) float64 or None when the file has no temperature field;
+    n_tokens: (N,) int64 or None.
+    """
+
+    prompt_ids: np.ndarray
+    scores: np.ndarray
+    rewards: np.ndarray
+    temperatures: np.ndarray | None = None
+    n_tokens: np.ndarray | None = None
+
+    def __len__(self) -> int:
+        return len(self.scores)
+
+
+# ----------------------------------------------------------------------------- reading
+
+
+def _parse_lines(path: str, lines: list[str], numbers: list[int]) -> list[dict]:
+    """All lines as dicts: one fast ``json.loads`` over a JSON array, per-line only to locate an error."""
+    try:
+        rows = json.loads("[" + ",".join(lines) + "]")
+        if len(rows) == len(lines) and all(type(r) is dict for r in rows):
+            return rows
+    except json.JSONDecodeError:
+        pass
+    name = os.path.basename(path)
+    for text, no in zip(lines, numbers):
+        try:
+            row = json.loads(text)
+        except json.JSONDecodeError as e:
+            raise ValueError(f"{name} line {no}: not valid JSON ({e.msg} at column {e.colno})") from None
+        if type(row) is not dict:
+            raise ValueError(f"{name} line {no}: expected a JSON object, got {type(row).__name__}")
+    raise ValueError(f"{name}: could not parse")  # pragma: no cover - the loop above finds the line
+
+
+def _column(name: str, rows: list[dict], numbers: list[int], field: str, option: str, *, required: bool):
+    """The values of one field, or None when an optional field is absent from every row."""
+    try:
+        return [r[field] for r in rows]
+    except KeyError:
+        pass
+    missing = [i for i, r in enumerate(rows) if field not in r]
+    if not required and len(missing) == len(rows):
+        return None
+    i = missing[0]
+    have = ", ".join(sorted(rows[i])) or "none"
+    raise ValueError(
+        f"{name} line {numbers[i]}: missing field {field!r} (fields there: {have}); "
+        f"if the file calls it something else, pass {option}=NAME (--{option.replace('_', '-')} NAME on the command line)"
+    )
+
+
+def _numbers(name, vals, numbers, field, *, allow_bool: bool, integer: bool = False) -> np.ndarray:
+    ok = (int, bool) if integer else (int, float, bool)
+    kinds = set(map(type, vals))
+    bad_kinds = kinds - set(ok) | ({bool} & kinds if not allow_bool else set())
+    if bad_kinds:
+        i = next(i for i, v in enumerate(vals) if type(v) in bad_kinds)
+        want = "an integer" if integer else "a number"
+        raise ValueError(f"{name} line {numbers[i]}: field {field!r} must be {want}, got {vals[i]!r}")
+    arr = np.array(vals, dtype=np.int64 if integer else np.float64)
+    if not integer:
+        bad = ~np.isfinite(arr)
+        if bad.any():
+            i = int(np.flatnonzero(bad)[0])
+            raise ValueError(f"{name} line {numbers[i]}: field {field!r} must be finite, got {vals[i]!r}")
+    return arr
+
+
+def read_samples(
+    path,
+    *,
+    prompt_field: str = "prompt_id",
+    score_field: str = "score",
+    reward_field: str = "reward",
+    temperature_field: str = "temperature",
+    tokens_field: str = "n_tokens",
+) -> SampleTable:
+    """Load a samples JSONL file into columns.
+
+    ``prompt_field``/``score_field``/``reward_field`` are required on every line;
+    ``temperature_field``/``tokens_field`` are optional but, when present, must be
+    on every line. Raises ``FileNotFoundError`` for a missing file and
+    ``ValueError`` (``samples.jsonl line 17: ...``) for a malformed one.
+    """
+    for opt, v in (("prompt_field", prompt_field), ("score_field", score_field), ("reward_field", reward_field),
+                   ("temperature_field", temperature_field), ("tokens_field", tokens_field)):
+        if not isinstance(v, str) or not v:
+            raise TypeError(f"{opt} must be a non-empty str, got {v!r}")
+    path = os.fspath(path)
+    name = os.path.basename(path)
+    with open(path, encoding="utf-8") as f:
+        raw = f.read().split("\n")
+    numbers = [i + 1 for i, t in enumerate(raw) if t.strip()]
+    lines = [raw[i - 1] for i in numbers]
+    if not lines:
+        raise ValueError(f"{name}: no samples (the file is empty)")
+    rows = _parse_lines(path, lines, numbers)
+
+    ids = _column(name, rows, numbers, prompt_field, "prompt_field", required=True)
+    kinds = set(map(type, ids))
+    if kinds - {str, int}:
+        i = next(i for i, v in enumerate(ids) if type(v) not in (str, int))
+        raise ValueError(f"{name} line {numbers[i]}: field {prompt_field!r} must be a string or an integer, got {ids[i]!r}")
+    prompt_ids = np.array([str(v) for v in ids] if int in kinds else ids, dtype=str)
+
+    scores = _numbers(name, _column(name, rows, numbers, score_field, "score_field", required=True),
+                      numbers, score_field, allow_bool=False)
+    rewards = _numbers(name, _column(name, rows, numbers, reward_field, "reward_field", required=True),
+                       numbers, reward_field, allow_bool=True)
+    temps = _column(name, rows, numbers, temperature_field, "temperature_field", required=False)
+    if temps is not None:
+        temps = _numbers(name, temps, numbers, temperature_field, allow_bool=False)
+    toks = _column(name, rows, numbers, tokens_field, "tokens_field", required=False)
+    if toks is not None:
+        toks = _numbers(name, toks, numbers, tokens_field, allow_bool=False, integer=True)
+    return SampleTable(prompt_ids=prompt_ids, scores=scores, rewards=rewards, temperatures=temps, n_tokens=toks)
+
+
+# ----------------------------------------------------------------------------- writing
+
+
+def _check_row(i: int, row: Any) -> None:
+    if not isinstance(row, dict):
+        raise TypeError(f"rows[{i}] must be a dict, got {type(row).__name__}")
+    for key in ("prompt_id", "score", "reward"):
+        if key not in row:
+            raise ValueError(f"rows[{i}] must have the field {key!r}, got fields {sorted(row)}")
+    if isinstance(row["prompt_id"], bool) or not isinstance(row["prompt_id"], (str, int)):
+        raise TypeError(f"rows[{i}]['prompt_id'] must be a str or int, got {type(row['prompt_id']).__name__}")
+    for key in ("score", "reward", "temperature"):
+        if key in row:
+            v = row[key]
+            if not isinstance(v, (int, float)) or (key == "score" and isinstance(v, bool)):
+                raise TypeError(f"rows[{i}][{key!r}] must be a number, got {type(v).__name__} {v!r}")
+            if not math.isfinite(v):
+                raise ValueError(f"rows[{i}][{key!r}] must be finite, got {v!r}")
+
+
+def _plain(v: Any) -> Any:
+    """numpy scalars -> Python scalars so ``json.dumps`` accepts them."""
+    return v.item() if isinstance(v, np.generic) else v
+
+
+def write_samples(path, rows: Iterable[dict]) -> int:
+    """Write ``rows`` (dicts with at least prompt_id, score, reward) as JSONL; returns the row count.
+
+    Atomic: rows go to a temporary file in the same folder, which replaces
+    ``path`` only once every row is written and flushed. A bad row raises
+    (``rows[12]['score'] must be finite, got nan``) and leaves ``path`` untouched.
+    """
+    path = os.fspath(path)
+    folder = os.path.dirname(os.path.abspath(path))
+    fd, tmp = tempfile.mkstemp(prefix=".samples-", suffix=".tmp", dir=folder)
+    count = 0
+    try:
+        with os.fdopen(fd, "w", encoding="utf-8") as f:
+            for i, row in enumerate(rows):
+                row = {k: _plain(v) for k, v in row.items()} if isinstance(row, dict) else row
+                _check_row(i, row)
+                f.write(json.dumps(row, separators=(",", ":"), allow_nan=False) + "\n")
+                count += 1
+            f.flush()
+            os.fsync(f.fileno())
+        os.replace(tmp, path)
+    except BaseException:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+        raise
+    return count
+
+
+# ----------------------------------------------------------------------------- pools
+
+
+def temperatures_of(table: SampleTable) -> list[float]:
+    """Sorted distinct temperatures in the table ([] when it has no temperature column)."""
+    if not isinstance(table, SampleTable):
+        raise TypeError(f"table must be a SampleTable, got {type(table).__name__}")
+    if table.temperatures is None:
+        return []
+    return [float(t) for t in np.unique(table.temperatures)]
+
+
+def group_pools(table: SampleTable, *, temperature: float | None = None):
+    """Split a table into per-prompt pools: ``-> (keys, score_pools, reward_pools)``.
+
+    keys: list of prompt ids in order of first appearance; ``score_pools[p]``,
+    ``reward_pools[p]``: (n_p,) float64 in file order. With several
+    temperatures in the table, ``temperature`` must pick one (pools mixing
+    temperatures would estimate no real sampling setup).
+    """
+    temps = temperatures_of(table)
+    if temperature is None:
+        if len(temps) > 1:
+            raise ValueError(
+                f"temperature must pick one of the table's temperatures {temps} (pools would mix them), got None"
+            )
+        ids, s, r = table.prompt_ids, table.scores, table.rewards
+    else:
+        temperature = float(as_float_array("temperature", temperature, ndim=0))
+        if table.temperatures is None:
+            raise ValueError(f"temperature must be None for a table without temperatures, got {temperature}")
+        keep = table.temperatures == temperature
+        if not keep.any():
+            raise ValueError(f"temperature must be one of {temps}, got {temperature}")
+        ids, s, r = table.prompt_ids[keep], table.scores[keep], table.rewards[keep]
+    uniq, first, inv = np.unique(ids, return_index=True, return_inverse=True)
+    rank = np.empty(len(uniq), dtype=np.int64)
+    rank[np.argsort(first, kind="stable")] = np.arange(len(uniq))  # unique index -> first-appearance order
+    g = rank[inv]  # (N,) group of each row
+    order = np.argsort(g, kind="stable")  # rows grouped, file order inside a group
+    cuts = np.flatnonzero(np.diff(g[order])) + 1
+    keys = [str(k) for k in uniq[np.argsort(first, kind="stable")]]
+    return keys, np.split(s[order], cuts), np.split(r[order], cuts)
