@@ -1,5 +1,9 @@
 """Verifiers: the protocol, built-in checkers, a sandboxed code runner, proxies and combinators."""
+from .answers import ExactMatch, NumericMatch, extract_answer
 from .base import Verdicts, Verifier, as_verdicts
 from .scoring import VerifierError, load_verifier, score_batch
 
-__all__ = ["Verdicts", "Verifier", "as_verdicts", "VerifierError", "load_verifier", "score_batch"]
+__all__ = [
+    "Verdicts", "Verifier", "as_verdicts", "VerifierError", "load_verifier", "score_batch",
+    "ExactMatch", "NumericMatch", "extract_answer",
+]
