@@ -1,0 +1,311 @@
+"""The trainer's configuration: one dataclass, loaded from TOML, overridable with ``key=value``.
+
+Every field carries its own help text (``field(metadata={"help": ...})``);
+:func:`config_reference` renders them as the markdown table in
+``docs/training.md`` (a test checks that the doc lists every field).
+
+A recipe is a flat TOML file; tables are only used for ``task_params``::
+
+    objective = "pass_at_k"
+    k = 8
+    rl_steps = 200
+
+    [task_params]
+    hard_share = 0.3
+
+``--set key=value`` overrides convert the text to the field's type
+(``--set lr=1e-4``, ``--set eval_ks=1,4,16``, ``--set task_params.hard_share=0.5``).
+"""
+from __future__ import annotations
+
+import dataclasses
+import json
+import numbers
+import sys
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+if sys.version_info >= (3, 11):
+    import tomllib
+else:  # pragma: no cover - Python 3.10
+    import tomli as tomllib
+
+from ._checks import check_choice, check_int, check_positive
+
+# objective name in a recipe -> (loss family in bonft.losses, options); see docs/training.md
+OBJECTIVES = (
+    "loo_reinforce",  # leave-one-out REINFORCE on the mean reward (Kool et al. 2019): the baseline
+    "best_of_k",  # best-of-k with the training verifier selecting (Chow et al. 2024, BoN-RL)
+    "pass_at_k",  # pass@k, unbiased U-statistic credit (Chen et al. 2021; Walder & Karkhanis 2025)
+    "pass_at_k_plugin",  # pass@k, plug-in credit 1-(1-p_hat)^k
+    "pass_at_k_positive",  # pass@k, credit on correct samples only
+    "best_of_k_sft",  # best-of-k-aware supervised fine-tuning on reference answers (Chow et al. 2024, BoN-SFT)
+)
+K_SCHEDULES = ("constant", "linear", "geometric")
+TOKEN_REDUCTIONS = ("sum", "mean")
+
+
+def _f(default: Any, help: str, **kw: Any) -> Any:
+    if isinstance(default, (list, dict)):
+        return field(default_factory=lambda d=default: type(d)(d), metadata={"help": help, **kw})
+    return field(default=default, metadata={"help": help, **kw})
+
+
+@dataclass
+class TrainConfig:
+    """Everything a training run needs; see :func:`config_reference` for the table."""
+
+    # --- run ---
+    name: str = _f("run", "A label for the run, written into metrics and summaries.", group="run")
+    seed: int = _f(0, "Seed of the run. The RNG of every step is derived from (seed, step, rank), so a resumed run draws what an uninterrupted one would.", group="run")
+    out_dir: str = _f("runs/run", "Directory for metrics.jsonl, checkpoints/, plots and summary.json.", group="run")
+    device: str = _f("cpu", "'cpu', 'cuda' or 'auto'.", group="run")
+    threads: int = _f(0, "torch intra-op threads; 0 = min(2, cores).", group="run")
+    # --- model ---
+    init_from: str = _f("", "Start from this model: a bonft checkpoint directory or a local transformers directory. Empty = build a tiny model from the fields below.", group="model")
+    arch: str = _f("gpt2", "Tiny model family when building from scratch: 'gpt2' or 'llama'.", group="model")
+    n_layer: int = _f(2, "Transformer layers of the tiny model.", group="model")
+    d_model: int = _f(128, "Width of the tiny model.", group="model")
+    n_head: int = _f(4, "Attention heads of the tiny model.", group="model")
+    max_positions: int = _f(96, "Context length of the tiny model (prompt + response tokens).", group="model")
+    # --- task ---
+    task: str = _f("ledger", "Built-in task name (see docs/tasks.md), or 'jsonl' to read prompts_file.", group="task")
+    task_params: dict = _f({}, "Task knobs passed to get_task(task, **task_params), e.g. [task_params] hard_share = 0.3.", group="task")
+    prompts_file: str = _f("", "With task = 'jsonl': local JSONL with 'prompt' and 'answer' fields; trained and evaluated by exact match.", group="task")
+    n_train: int = _f(2000, "Training prompts drawn from the task.", group="task")
+    n_eval: int = _f(200, "Held-out evaluation prompts.", group="task")
+    verifier: str = _f("exact", "Verifier that trains: 'exact' (task answer check), 'proxy' (the task's imperfect proxy selects the best sample) or 'module:function'.", group="task")
+    # --- warm start (supervised, on reference responses) ---
+    sft_steps: int = _f(0, "Supervised warm-start steps (NLL of the reference responses) before RL. 0 = skip.", group="warm_start")
+    sft_batch_size: int = _f(128, "Prompts per warm-start step.", group="warm_start")
+    sft_lr: float = _f(3e-3, "Warm-start learning rate (AdamW, cosine decay to 10%).", group="warm_start")
+    # --- RL stage ---
+    objective: str = _f("pass_at_k", f"What the RL stage optimises: one of {', '.join(OBJECTIVES)}.", group="rl")
+    rl_steps: int = _f(0, "RL optimizer steps. 0 = skip the RL stage.", group="rl")
+    prompts_per_step: int = _f(16, "Prompts per RL optimizer step (global, over all ranks).", group="rl")
+    n: int = _f(16, "Responses sampled per prompt.", group="rl")
+    k: int = _f(8, "k of best-of-k / pass@k that the objective targets (1 <= k <= n). Ignored by loo_reinforce.", group="rl")
+    k_final: int = _f(0, "k at the last RL step when annealing k (e.g. from k=16 toward 1). 0 = keep k constant.", group="rl")
+    k_schedule: str = _f("constant", f"How k moves from k to k_final: one of {', '.join(K_SCHEDULES)}.", group="rl")
+    temperature: float = _f(1.0, "Sampling temperature of the training samples; log-probs are taken at the same temperature.", group="rl")
+    top_p: float = _f(1.0, "Nucleus sampling threshold of training samples (1 = off).", group="rl")
+    max_new_tokens: int = _f(8, "Longest response sampled (tokens, EOS included).", group="rl")
+    lr: float = _f(1e-3, "RL learning rate (AdamW, constant after warmup_steps).", group="rl")
+    warmup_steps: int = _f(0, "Linear learning-rate warm-up steps of the RL stage.", group="rl")
+    weight_decay: float = _f(0.0, "AdamW weight decay (both stages).", group="rl")
+    grad_accum: int = _f(1, "Micro-batches per optimizer step; prompts_per_step must divide evenly.", group="rl")
+    clip_grad_norm: float = _f(1.0, "Clip the gradient's global norm to this value; 0 = no clipping.", group="rl")
+    kl_coef: float = _f(0.0, "Weight of the KL penalty to the policy at the start of the RL stage; 0 = none.", group="rl")
+    token_reduction: str = _f("sum", "'sum': sequence log-prob (unbiased policy gradient); 'mean': length-normalised (biased).", group="rl")
+    reward_source: str = _f("rewards", "'rewards': train on the verifier's true rewards where it reports them (task labels; the verifier still selects for best_of_k), else its scores; 'scores': train on the verifier's scores only (e.g. against a reward model; with verifier='proxy' this shows reward hacking).", group="rl")
+    correct_threshold: float = _f(0.5, "A sample counts as correct for pass@k objectives when its reward is >= this.", group="rl")
+    # --- evaluation ---
+    eval_every: int = _f(0, "Evaluate every this many RL steps (and always before and after RL); 0 = only before and after.", group="eval")
+    eval_at_start: bool = _f(True, "Evaluate before the first RL step (the 'before' of a before/after comparison).", group="eval")
+    eval_n: int = _f(64, "Samples per held-out prompt at evaluation.", group="eval")
+    eval_ks: list = _f([1, 4, 16, 32], "k values of the best-of-k / pass@k curves (each <= eval_n).", group="eval")
+    eval_temperature: float = _f(1.0, "Sampling temperature at evaluation.", group="eval")
+    eval_prompts: int = _f(0, "Evaluate on the first this many held-out prompts; 0 = all n_eval.", group="eval")
+    confidence: float = _f(0.95, "Confidence level of the bootstrap intervals.", group="eval")
+    n_boot: int = _f(1000, "Bootstrap resamples of the intervals.", group="eval")
+    # --- checkpoints and logging ---
+    save_every: int = _f(100, "Write a checkpoint every this many optimizer steps (both stages); 0 = only at the end and on Ctrl-C.", group="checkpoint")
+    keep_checkpoints: int = _f(2, "How many recent checkpoints to keep (>= 1).", group="checkpoint")
+    log_every: int = _f(10, "Write a metrics line every this many steps.", group="checkpoint")
+    plots: bool = _f(True, "Write PNG plots of the evaluation curves.", group="checkpoint")
+
+    def __post_init__(self) -> None:
+        validate(self)
+
+    # derived -----------------------------------------------------------------
+    @property
+    def total_steps(self) -> int:
+        return self.sft_steps + self.rl_steps
+
+    def to_dict(self) -> dict:
+        return dataclasses.asdict(self)
+
+
+# ------------------------------------------------------------------- validation
+def _check_real(name: str, value: Any, *, min: float | None = None, strict: bool = False) -> float:
+    if isinstance(value, bool) or not isinstance(value, numbers.Real):
+        raise TypeError(f"{name} must be a real number, got {type(value).__name__} {value!r}")
+    value = float(value)
+    if value != value or value in (float("inf"), float("-inf")):
+        raise ValueError(f"{name} must be finite, got {name}={value}")
+    if min is not None and (value <= min if strict else value < min):
+        raise ValueError(f"{name} must be {'>' if strict else '>='} {min}, got {name}={value}")
+    return value
+
+
+def validate(c: TrainConfig) -> None:
+    """Check every field; raise ``TypeError``/``ValueError`` naming the key."""
+    for f in dataclasses.fields(c):
+        v = getattr(c, f.name)
+        if f.type in ("str", str) and not isinstance(v, str):
+            raise TypeError(f"{f.name} must be a string, got {type(v).__name__} {v!r}")
+        if f.type in ("bool", bool) and not isinstance(v, bool):
+            raise TypeError(f"{f.name} must be true or false, got {type(v).__name__} {v!r}")
+        if f.type in ("int", int):
+            check_int(f.name, v, min=0)
+        if f.type in ("float", float):
+            setattr(c, f.name, _check_real(f.name, v, min=0.0))
+    if not isinstance(c.task_params, dict):
+        raise TypeError(f"task_params must be a table of task knobs, got {type(c.task_params).__name__}")
+    check_choice("objective", c.objective, OBJECTIVES)
+    check_choice("k_schedule", c.k_schedule, K_SCHEDULES)
+    check_choice("token_reduction", c.token_reduction, TOKEN_REDUCTIONS)
+    check_choice("reward_source", c.reward_source, ("rewards", "scores"))
+    check_choice("arch", c.arch, ("gpt2", "llama"))
+    check_choice("device", c.device, ("cpu", "cuda", "auto"))
+    if c.verifier not in ("exact", "proxy") and ":" not in c.verifier:
+        raise ValueError(f"verifier must be 'exact', 'proxy' or 'module:function', got {c.verifier!r}")
+    check_int("n", c.n, min=1)
+    check_int("k", c.k, min=1)
+    if c.k > c.n:
+        raise ValueError(f"k must be <= n (n={c.n}), got k={c.k}")
+    if c.k_final > c.n:
+        raise ValueError(f"k_final must be <= n (n={c.n}), got k_final={c.k_final}")
+    if c.k_schedule != "constant" and c.k_final < 1:
+        raise ValueError(f"k_schedule={c.k_schedule!r} needs k_final >= 1, got k_final={c.k_final}")
+    if c.objective == "loo_reinforce" and c.n < 2:
+        raise ValueError(f"n must be >= 2 for a leave-one-out baseline, got n={c.n}")
+    for name in ("prompts_per_step", "grad_accum", "max_new_tokens", "n_train", "n_eval", "eval_n",
+                 "sft_batch_size", "keep_checkpoints", "n_layer", "d_model", "n_head", "max_positions", "n_boot"):
+        check_int(name, getattr(c, name), min=1)
+    if c.prompts_per_step % c.grad_accum:
+        raise ValueError(f"prompts_per_step must be divisible by grad_accum (grad_accum={c.grad_accum}), got prompts_per_step={c.prompts_per_step}")
+    for name in ("lr", "sft_lr", "temperature", "eval_temperature"):
+        _check_real(name, getattr(c, name), min=0.0, strict=True)
+    if not 0 < c.top_p <= 1:
+        raise ValueError(f"top_p must be in (0, 1], got top_p={c.top_p}")
+    if not 0 < c.confidence < 1:
+        raise ValueError(f"confidence must be in (0, 1), got confidence={c.confidence}")
+    if not isinstance(c.eval_ks, (list, tuple)) or not c.eval_ks:
+        raise TypeError(f"eval_ks must be a non-empty list of ints, got {c.eval_ks!r}")
+    for kk in c.eval_ks:
+        check_int("eval_ks", kk, min=1)
+        if kk > c.eval_n:
+            raise ValueError(f"eval_ks must be <= eval_n (eval_n={c.eval_n}), got eval_ks={list(c.eval_ks)}")
+    c.eval_ks = [int(v) for v in c.eval_ks]
+    if c.eval_prompts > c.n_eval:
+        raise ValueError(f"eval_prompts must be <= n_eval (n_eval={c.n_eval}), got eval_prompts={c.eval_prompts}")
+    if c.task == "jsonl" and not c.prompts_file:
+        raise ValueError("prompts_file must name a JSONL file when task = 'jsonl', got ''")
+    if c.sft_steps == 0 and c.rl_steps == 0 and not c.init_from:
+        raise ValueError("nothing to train: sft_steps and rl_steps are both 0 (set one, e.g. --set rl_steps=100)")
+
+
+# ---------------------------------------------------------------- loading, overrides
+FIELDS = {f.name: f for f in dataclasses.fields(TrainConfig)}
+
+
+def _convert(name: str, text: str, like: Any) -> Any:
+    """Turn override text into the type of the field's default ``like``."""
+    if isinstance(like, bool):
+        low = text.strip().lower()
+        if low not in ("true", "false", "1", "0", "yes", "no"):
+            raise ValueError(f"{name} must be true or false, got {text!r}")
+        return low in ("true", "1", "yes")
+    if isinstance(like, int):
+        try:
+            return int(text)
+        except ValueError:
+            raise ValueError(f"{name} must be an int, got {text!r}") from None
+    if isinstance(like, float):
+        try:
+            return float(text)
+        except ValueError:
+            raise ValueError(f"{name} must be a number, got {text!r}") from None
+    if isinstance(like, list):
+        try:
+            return [int(v) for v in text.replace("[", "").replace("]", "").split(",") if v.strip()]
+        except ValueError:
+            raise ValueError(f"{name} must be a comma-separated list of ints, got {text!r}") from None
+    return text
+
+
+def _parse_scalar(text: str) -> Any:
+    """Task knob values: TOML-like literals (int, float, bool, quoted or bare string)."""
+    try:
+        return tomllib.loads(f"v = {text}")["v"]
+    except tomllib.TOMLDecodeError:
+        return text
+
+
+def apply_overrides(values: dict, overrides: list[str]) -> dict:
+    """Apply ``key=value`` strings to a dict of config values (copied)."""
+    values = dict(values)
+    values["task_params"] = dict(values.get("task_params", {}))
+    for item in overrides:
+        if not isinstance(item, str) or "=" not in item:
+            raise ValueError(f"--set expects key=value, got {item!r}")
+        key, text = item.split("=", 1)
+        key = key.strip()
+        if key.startswith("task_params."):
+            values["task_params"][key.split(".", 1)[1]] = _parse_scalar(text.strip())
+            continue
+        if key not in FIELDS:
+            raise ValueError(f"--set key must be a config field (see docs/training.md), got {key!r}")
+        default = FIELDS[key].default if FIELDS[key].default is not dataclasses.MISSING else FIELDS[key].default_factory()
+        values[key] = _convert(key, text.strip(), default)
+    return values
+
+
+def from_dict(values: dict) -> TrainConfig:
+    """Build and validate a config; unknown keys are an error (typos must not pass silently)."""
+    if not isinstance(values, dict):
+        raise TypeError(f"config must be a dict, got {type(values).__name__}")
+    unknown = sorted(set(values) - set(FIELDS))
+    if unknown:
+        raise ValueError(f"unknown config key(s) {unknown}; known keys are listed in docs/training.md")
+    return TrainConfig(**values)
+
+
+def load_config(path: str | Path | None = None, overrides: list[str] | None = None) -> TrainConfig:
+    """Read a TOML recipe (or start from defaults when ``path`` is None) and apply overrides."""
+    values: dict = {}
+    if path is not None:
+        path = Path(path)
+        if not path.is_file():
+            raise FileNotFoundError(f"recipe not found: {path}")
+        try:
+            values = tomllib.loads(path.read_text())
+        except tomllib.TOMLDecodeError as e:
+            raise ValueError(f"{path}: not valid TOML: {e}") from None
+    return from_dict(apply_overrides(values, list(overrides or [])))
+
+
+def _toml_value(v: Any) -> str:
+    if isinstance(v, bool):
+        return "true" if v else "false"
+    if isinstance(v, (int, float)):
+        return repr(v)
+    if isinstance(v, list):
+        return "[" + ", ".join(_toml_value(x) for x in v) + "]"
+    return json.dumps(str(v))  # a JSON string is a valid TOML basic string
+
+
+def to_toml(c: TrainConfig) -> str:
+    """Serialise a config to TOML that :func:`load_config` reads back to an equal config."""
+    lines = []
+    for name, v in c.to_dict().items():
+        if name != "task_params":
+            lines.append(f"{name} = {_toml_value(v)}")
+    lines.append("\n[task_params]")
+    lines += [f"{k} = {_toml_value(v)}" for k, v in c.task_params.items()]
+    return "\n".join(lines) + "\n"
+
+
+def config_reference() -> str:
+    """The markdown table of every config key (used in docs/training.md)."""
+    rows = ["| key | default | meaning |", "|---|---|---|"]
+    for f in dataclasses.fields(TrainConfig):
+        default = f.default if f.default is not dataclasses.MISSING else f.default_factory()
+        rows.append(f"| `{f.name}` | `{_toml_value(default)}` | {f.metadata['help']} |")
+    return "\n".join(rows)
+
+
+if __name__ == "__main__":  # python -m bonft.config  -> the key table of docs/training.md
+    print(config_reference())
