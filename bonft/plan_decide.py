@@ -1,0 +1,175 @@
+"""Decisions drawn from a (temperature, k) value grid: best temperature, budgets, doubling, the T*(k) fit.
+
+Shared by the sampling and exact modes of :mod:`bonft.plan`; inputs are trusted (validated there).
+"""
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+
+from .plan_result import BudgetChoice, DoublingStep, PlanResult, TemperatureFit
+
+
+def bootstrap_means(per_prompt: list[np.ndarray], *, paired: bool, n_boot: int, seed: int) -> np.ndarray:
+    """Bootstrap means over prompts: T arrays (P_t, K) -> (n_boot, T, K).
+
+    Resampling as a count matrix W (n_boot, P), W[b, i] = times prompt i is drawn in
+    resample b, so one matmul W @ X / P gives every resample's mean of every column.
+    """
+    rng = np.random.default_rng(seed)
+    T, K = len(per_prompt), per_prompt[0].shape[1]
+
+    def counts(P: int) -> np.ndarray:
+        idx = rng.integers(0, P, size=(n_boot, P))  # (B, P) drawn prompt indices
+        flat = (idx + P * np.arange(n_boot)[:, None]).ravel()  # offset row b by b*P to count per row
+        return np.bincount(flat, minlength=n_boot * P).reshape(n_boot, P).astype(np.float64)
+
+    if paired:
+        P = per_prompt[0].shape[0]
+        X = np.stack(per_prompt, axis=1).reshape(P, T * K)  # (P, T, K) -> (P, T*K)
+        return (counts(P) @ X / P).reshape(n_boot, T, K)  # (B, T*K) -> (B, T, K)
+    out = np.empty((n_boot, T, K))
+    for t, v in enumerate(per_prompt):
+        out[:, t, :] = counts(v.shape[0]) @ v / v.shape[0]
+    return out
+
+
+def finish(*, mode, temps, ks, value, lo, hi, boot, confidence, n_boot, paired, n_prompts, pool_min, mean_tokens,
+            b_samples, b_tokens, min_gain, notes) -> PlanResult:
+    T, K = value.shape
+    best_index = np.argmax(value, axis=0)  # (K,) first maximum, i.e. the lowest such temperature
+    cols = np.arange(K)
+    if boot is None:
+        near = value >= value[best_index, cols][None, :] - 1e-12  # exact: only ties
+    else:
+        alpha = 1.0 - confidence
+        diff = boot[:, best_index, cols][:, None, :] - boot  # (B, T, K): best minus each temperature, paired draws
+        near = np.quantile(diff, alpha / 2, axis=0) <= 0.0  # worse only if the whole CI of the gap is above 0
+
+    def cell_gap(t1, k1, t0, k0):  # V(t1, k1) - V(t0, k0) with its CI
+        g = float(value[t1, k1 - 1] - value[t0, k0 - 1])
+        if boot is None:
+            return g, g, g
+        d = boot[:, t1, k1 - 1] - boot[:, t0, k0 - 1]
+        q = np.quantile(d, [(1 - confidence) / 2, 1 - (1 - confidence) / 2])
+        return g, float(q[0]), float(q[1])
+
+    budgets = []
+    for b in b_samples:
+        mask = np.broadcast_to(ks[None, :] <= b, (T, K))
+        note = None if b <= ks[-1] else f"budget exceeds the largest measured k ({ks[-1]}): choice limited to k <= {ks[-1]}"
+        budgets.append(_choose(value, lo, hi, boot, confidence, mask, ks, temps, np.broadcast_to(ks * 1.0, (T, K)),
+                               kind="samples", budget=b, note=note))
+    for b in b_tokens:
+        cost = mean_tokens[:, None] * ks[None, :]  # (T, K) tokens per prompt
+        mask = cost <= b
+        if not mask.any():
+            raise ValueError(
+                f"budget_tokens must afford one sample at some temperature (shortest mean length "
+                f"{mean_tokens.min():.1f} tokens), got budget_tokens={b:g}"
+            )
+        note = None if (mask[:, -1] == False).all() else "budget affords the largest measured k at some temperature: larger N not measured"  # noqa: E712
+        budgets.append(_choose(value, lo, hi, boot, confidence, mask, ks, temps, cost, kind="tokens", budget=b, note=note))
+
+    doubling, stops = [], None
+    k = 1
+    while 2 * k <= K:
+        t0, t1 = int(best_index[k - 1]), int(best_index[2 * k - 1])
+        g, glo, ghi = cell_gap(t1, 2 * k, t0, k)
+        doubling.append(DoublingStep(k=k, temperature_k=float(temps[t0]), temperature_2k=float(temps[t1]), gain=g, lo=glo, hi=ghi))
+        if stops is None and (glo if boot is not None else g) <= min_gain:
+            stops = k
+        k *= 2
+
+    return PlanResult(
+        mode=mode,
+        temperatures=temps,
+        ks=ks,
+        value=value,
+        lo=lo,
+        hi=hi,
+        confidence=confidence,
+        n_boot=n_boot,
+        paired=paired,
+        n_prompts=np.asarray(n_prompts),
+        pool_min=pool_min,
+        mean_tokens=mean_tokens,
+        best_index=best_index,
+        best_temperature=temps[best_index],
+        near_best=near,
+        gain_one=value[:, 1:] - value[:, :-1],  # (T, K-1): V_{k+1} - V_k for k = 1..K-1
+        gain_double=value[:, 2 * np.arange(1, K // 2 + 1) - 1] - value[:, : K // 2],  # (T, K//2): V_2k - V_k, k = 1..K//2
+        doubling=doubling,
+        doubling_stops_at=stops,
+        min_gain=min_gain,
+        budgets=budgets,
+        fit=fit_best_temperature(ks, temps[best_index]),
+        notes=list(notes),
+    )
+
+
+def _choose(value, lo, hi, boot, confidence, mask, ks, temps, cost, *, kind, budget, note) -> BudgetChoice:
+    """Best cell under a budget mask (T, K); ties go to the cheaper cell, then to the lower temperature."""
+    v = np.where(mask, value, -np.inf)
+    top = v.max()
+    cand = np.argwhere(v >= top - 1e-12)  # (m, 2) rows (t, j)
+    t, j = min(cand.tolist(), key=lambda tj: (cost[tj[0], tj[1]], tj[1], tj[0]))
+    alts = []
+    if boot is not None:
+        diff = boot[:, t, j][:, None, None] - boot  # (B, T, K) chosen minus every cell
+        ok = (np.quantile(diff, (1 - confidence) / 2, axis=0) <= 0.0) & mask
+        alts = [(float(temps[a]), int(ks[b])) for a, b in np.argwhere(ok) if (a, b) != (t, j)]
+    return BudgetChoice(
+        kind=kind,
+        budget=budget,
+        temperature=float(temps[t]),
+        k=int(ks[j]),
+        value=float(value[t, j]),
+        lo=float(lo[t, j]),
+        hi=float(hi[t, j]),
+        cost=float(cost[t, j]),
+        alternatives=alts,
+        note=note,
+    )
+
+
+def fit_best_temperature(ks: Any, best_temperature: Any) -> TemperatureFit:
+    """Fit how the best temperature T*(k) moves with log k: a fit of this data, not a law.
+
+    ks: (K,), best_temperature: (K,) -> TemperatureFit. Points: k = 1, 2, 4, ... (and the
+    largest k), evenly spaced in log k so the many large k do not dominate.
+    Line: T* ~ a + b log k by least squares, with R^2 = 1 - SS_res / SS_tot and the RMS residual.
+    Monotone: isotonic regression of T* on log k (scipy.optimize.isotonic_regression),
+    increasing or decreasing, whichever leaves the smaller residual.
+    """
+    from scipy.optimize import isotonic_regression
+
+    ks = np.asarray(ks, dtype=np.int64)
+    tb = np.asarray(best_temperature, dtype=np.float64)
+    pick = sorted(set([int(k) for k in ks if (k & (k - 1)) == 0] + [int(ks[-1])]))
+    idx = np.searchsorted(ks, pick)
+    x, y = np.log(ks[idx].astype(np.float64)), tb[idx]
+    if x.size >= 2:
+        slope, intercept = np.polyfit(x, y, 1)
+    else:
+        slope, intercept = 0.0, float(y[0])
+    resid = y - (intercept + slope * x)
+    ss_res, ss_tot = float((resid**2).sum()), float(((y - y.mean()) ** 2).sum())
+    r2 = None if ss_tot <= 1e-24 else 1.0 - ss_res / ss_tot
+    inc = isotonic_regression(y, increasing=True).x
+    dec = isotonic_regression(y, increasing=False).x
+    sse_inc, sse_dec = float(((y - inc) ** 2).sum()), float(((y - dec) ** 2).sum())
+    direction = "constant" if ss_tot <= 1e-24 else ("increasing" if sse_inc <= sse_dec else "decreasing")
+    iso = inc if sse_inc <= sse_dec else dec
+    return TemperatureFit(
+        ks=ks[idx],
+        best_temperature=y,
+        slope=float(slope),
+        intercept=float(intercept),
+        r2=r2,
+        rmse=float(np.sqrt(ss_res / y.size)),
+        monotone=iso,
+        monotone_direction=direction,
+        monotone_rmse=float(np.sqrt(min(sse_inc, sse_dec) / y.size)),
+    )

@@ -1,0 +1,220 @@
+"""Result objects of :mod:`bonft.plan`: the sweep, budget choices, doubling steps, the T*(k) fit."""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+FIT_CAVEAT = "a fit of this data, not a law"
+
+
+@dataclass
+class BudgetChoice:
+    """The best (temperature, k) under one budget per prompt.
+
+    kind: "samples" (k <= budget) or "tokens" (k * mean_tokens(T) <= budget).
+    value, lo, hi: V_k(T) of the choice and its CI (lo = hi = value in exact mode).
+    cost: samples (kind "samples") or expected generated tokens per prompt (kind "tokens").
+    alternatives: other (temperature, k) cells within the budget not significantly worse.
+    """
+
+    kind: str
+    budget: float
+    temperature: float
+    k: int
+    value: float
+    lo: float
+    hi: float
+    cost: float
+    alternatives: list = field(default_factory=list)
+    note: str | None = None
+
+
+@dataclass
+class DoublingStep:
+    """Gain of doubling N at the best temperatures: V_2k(T*(2k)) - V_k(T*(k)) with its CI."""
+
+    k: int
+    temperature_k: float
+    temperature_2k: float
+    gain: float
+    lo: float
+    hi: float
+
+
+@dataclass
+class TemperatureFit:
+    """How the best temperature moves with k over the grid: a fit of this data, not a law.
+
+    ks, best_temperature: the fitted points (K_fit,). Line T* ~ intercept + slope * log k,
+    r2 (None when T* is constant, where R^2 is undefined), rmse = RMS residual of the line.
+    monotone: isotonic fit at the points, in ``monotone_direction``, with ``monotone_rmse``.
+    """
+
+    ks: np.ndarray
+    best_temperature: np.ndarray
+    slope: float
+    intercept: float
+    r2: float | None
+    rmse: float
+    monotone: np.ndarray
+    monotone_direction: str
+    monotone_rmse: float
+    caveat: str = FIT_CAVEAT
+
+
+@dataclass
+class PlanResult:
+    """A temperature x k sweep of best-of-k value and the decisions drawn from it.
+
+    temperatures: (T,), ks: (K,) = 1..K.
+    value, lo, hi: (T, K) V_k(T) and its CI over prompts (lo = hi = value when mode == "exact").
+    best_index, best_temperature: (K,) argmax over temperatures per k (ties: lowest temperature).
+    near_best: (T, K) bool, True where the temperature is not significantly worse than the best
+        at that k (paired bootstrap of the gap when ``paired``; exact mode: ties only).
+    gain_one: (T, K-1) V_{k+1} - V_k for k = 1..K-1. gain_double: (T, K//2) V_2k - V_k for k = 1..K//2.
+    doubling: DoublingStep for k = 1, 2, 4, ... at the best temperatures; doubling_stops_at: the
+        first such k whose gain is not significantly above ``min_gain`` (None: it kept paying).
+    mean_tokens: (T,) mean generated tokens per response, or None.
+    """
+
+    mode: str
+    temperatures: np.ndarray
+    ks: np.ndarray
+    value: np.ndarray
+    lo: np.ndarray
+    hi: np.ndarray
+    confidence: float | None
+    n_boot: int
+    paired: bool
+    n_prompts: np.ndarray
+    pool_min: np.ndarray | None
+    mean_tokens: np.ndarray | None
+    best_index: np.ndarray
+    best_temperature: np.ndarray
+    near_best: np.ndarray
+    gain_one: np.ndarray
+    gain_double: np.ndarray
+    doubling: list
+    doubling_stops_at: int | None
+    min_gain: float
+    budgets: list
+    fit: TemperatureFit
+    notes: list = field(default_factory=list)
+
+    # ------------------------------------------------------------------ views
+    def value_at(self, temperature: float, k: int) -> float:
+        """V_k(T) at one grid cell."""
+        t = int(np.argmin(np.abs(self.temperatures - float(temperature))))
+        if not np.isclose(self.temperatures[t], float(temperature), rtol=0, atol=1e-9):
+            raise ValueError(f"temperature must be one of {[f'{x:g}' for x in self.temperatures]}, got {temperature}")
+        if not 1 <= int(k) <= int(self.ks[-1]):
+            raise ValueError(f"k must be <= n (n={int(self.ks[-1])}), got k={k}")
+        return float(self.value[t, int(k) - 1])
+
+    def table_ks(self) -> list[int]:
+        """The k shown in the table: 1, 2, 4, ... and the largest k."""
+        K = int(self.ks[-1])
+        out, k = [], 1
+        while k <= K:
+            out.append(k)
+            k *= 2
+        return out if out[-1] == K else out + [K]
+
+    def table(self) -> str:
+        exact = self.mode == "exact"
+        T = self.temperatures
+        head = f"best-of-k value V_k(T), {self.mode} mode, {int(self.n_prompts.max())} prompts"
+        if not exact:
+            head += f", {'paired' if self.paired else 'unpaired'} bootstrap {self.confidence:.0%} CI ({self.n_boot} resamples)"
+        lines = [head, "  * best temperature at k   ~ not significantly worse" if not exact else "  * best temperature at k"]
+        cols = "".join(f"{'T=' + format(t, 'g'):>10}" for t in T)
+        lines.append(f"{'k':>5} {cols}   {'best T':>6}  {'V at best' + ('' if exact else ' [CI]')}")
+        for k in self.table_ks():
+            j = k - 1
+            b = int(self.best_index[j])
+            cells = ""
+            for t in range(T.size):
+                mark = "*" if t == b else ("~" if self.near_best[t, j] else " ")
+                cells += f"{self.value[t, j]:>9.4f}{mark}"
+            ci = "" if exact else f" [{self.lo[b, j]:.4f}, {self.hi[b, j]:.4f}]"
+            lines.append(f"{k:>5} {cells}   {T[b]:>6g}  {self.value[b, j]:.4f}{ci}")
+        if self.mean_tokens is not None:
+            lines.append("mean tokens per response: " + ", ".join(f"T={t:g}: {m:.1f}" for t, m in zip(T, self.mean_tokens)))
+        for c in self.budgets:
+            unit = "samples" if c.kind == "samples" else "tokens"
+            cost = "" if c.kind == "samples" else f", ~{c.cost:.0f} tokens"
+            ci = "" if exact else f" [{c.lo:.4f}, {c.hi:.4f}]"
+            lines.append(f"budget {c.budget:g} {unit}/prompt: T={c.temperature:g}, k={c.k}{cost} -> V={c.value:.4f}{ci}")
+            if c.alternatives:
+                alts = ", ".join(f"(T={t:g}, k={k})" for t, k in c.alternatives[:6])
+                more = f" and {len(c.alternatives) - 6} more" if len(c.alternatives) > 6 else ""
+                lines.append(f"    not significantly worse: {alts}{more}")
+            if c.note:
+                lines.append(f"    note: {c.note}")
+        if self.doubling:
+            lines.append("doubling N at the best temperature: " + ", ".join(f"{d.k}->{2 * d.k}: {d.gain:+.4f}" for d in self.doubling))
+            if self.doubling_stops_at is None:
+                lines.append(f"    doubling kept paying (gain > {self.min_gain:g}) up to k={int(self.ks[-1])}")
+            else:
+                sig = "" if exact else " significantly"
+                lines.append(f"    doubling stops paying at k={self.doubling_stops_at} (gain not{sig} above {self.min_gain:g})")
+        f = self.fit
+        r2 = "undefined (constant)" if f.r2 is None else f"{f.r2:.3f}"
+        lines.append(
+            f"best temperature vs log k ({f.caveat}): T* ~ {f.intercept:.3f} + {f.slope:+.3f} log k, "
+            f"R^2 {r2}, RMS residual {f.rmse:.3f}; monotone fit {f.monotone_direction}, RMS {f.monotone_rmse:.3f}"
+        )
+        lines += [f"note: {n}" for n in self.notes]
+        return "\n".join(lines)
+
+    def to_dict(self) -> dict:
+        """JSON-able dict (lists, floats, None); CIs are null in exact mode."""
+        exact = self.mode == "exact"
+
+        def arr(x):
+            return None if x is None else np.asarray(x).tolist()
+
+        f = self.fit
+        return {
+            "mode": self.mode,
+            "temperatures": arr(self.temperatures),
+            "ks": arr(self.ks),
+            "value": arr(self.value),
+            "lo": None if exact else arr(self.lo),
+            "hi": None if exact else arr(self.hi),
+            "confidence": self.confidence,
+            "n_boot": self.n_boot,
+            "paired": self.paired,
+            "n_prompts": arr(self.n_prompts),
+            "pool_min": arr(self.pool_min),
+            "mean_tokens": arr(self.mean_tokens),
+            "best_temperature": arr(self.best_temperature),
+            "near_best": arr(self.near_best),
+            "gain_one": arr(self.gain_one),
+            "gain_double": arr(self.gain_double),
+            "doubling": [d.__dict__ for d in self.doubling],
+            "doubling_stops_at": self.doubling_stops_at,
+            "min_gain": self.min_gain,
+            "budgets": [dict(c.__dict__, alternatives=[list(a) for a in c.alternatives]) for c in self.budgets],
+            "best_temperature_fit": {
+                "caveat": f.caveat,
+                "ks": arr(f.ks),
+                "best_temperature": arr(f.best_temperature),
+                "line": {"intercept": f.intercept, "slope_per_log_k": f.slope, "r2": f.r2, "rmse": f.rmse},
+                "monotone": {"direction": f.monotone_direction, "values": arr(f.monotone), "rmse": f.monotone_rmse},
+            },
+            "notes": list(self.notes),
+        }
+
+    def plot_heatmap(self, path) -> str:
+        """PNG of V over (temperature, k), best temperature per k marked; returns the path."""
+        from .plan_plots import plot_heatmap
+
+        return plot_heatmap(self, path)
+
+    def plot_curves(self, path) -> str:
+        """PNG of V against k at the best and a few other temperatures, with CI bands; returns the path."""
+        from .plan_plots import plot_curves
+
+        return plot_curves(self, path)
