@@ -1,0 +1,426 @@
+"""Per-sample credit for best-of-N-aware policy gradients.
+
+Setting: for each of ``B`` prompts the policy ``pi`` drew ``n`` samples
+``y_1..y_n``; sample ``i`` has a verifier score ``s_i`` and a true reward
+``R_i``. Best-of-k keeps the sample with the highest score among ``k`` draws
+(ties broken uniformly at random) and ``V_k = E[R of the kept sample]``.
+
+Every function here returns a credit array ``w`` of shape ``(B, n)`` such that
+``sum_i w_i * grad log pi(y_i)`` is a (possibly biased, see each docstring)
+estimate of the gradient of the objective for that prompt. Credit is plain
+data: nothing here calls autograd. Inputs may be numpy arrays, nested lists or
+torch tensors; a torch input gives a torch output on the same device (dtype of
+the reward-like input when it is floating, else float64), anything else gives
+a float64 numpy array. The maths runs in float64.
+
+Caution: credit pushes the policy towards whatever the verifier and reward
+prefer. A verifier that can be fooled (a reward model, an incomplete unit-test
+suite) will be exploited - keep a held-out true reward and watch the gap
+(reward hacking). When rewards come from running model-written code, run it in
+a sandbox.
+
+Papers: Chow et al. 2024 "Inference-Aware Fine-Tuning for Best-of-N Sampling
+in LLMs" (best-of-N RL and SFT objectives); Chen et al. 2021 (the unbiased
+pass@k estimator); Kool et al. 2019 (leave-one-out baselines); Walder &
+Karkhanis 2025 (U-statistic pass@k gradients).
+"""
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+import torch
+
+from bonft._binom import log_comb_torch
+from bonft._checks import check_choice, check_finite, check_k, check_nonempty, is_tensor
+
+__all__ = ["bon_credit", "pass_credit", "sft_credit", "reinforce_credit", "pool_value"]
+
+
+# ----------------------------------------------------------------------------
+# validation helpers (public boundary only)
+# ----------------------------------------------------------------------------
+
+def _as_tensor(name: str, x: Any, *, ndim: int) -> torch.Tensor:
+    """Any array-like -> float64 torch tensor with ``ndim`` dimensions, finite."""
+    if is_tensor(x):
+        t = x.detach()
+        if t.dtype == torch.bool:
+            t = t.to(torch.float64)
+        elif not (t.dtype.is_floating_point or t.dtype in (torch.int8, torch.int16, torch.int32, torch.int64, torch.uint8)):
+            raise TypeError(f"{name} must hold real numbers, got dtype {t.dtype}")
+        t = t.to(torch.float64)
+    else:
+        if isinstance(x, (str, bytes)) or x is None:
+            raise TypeError(f"{name} must be an array of numbers, got {type(x).__name__}")
+        try:
+            arr = np.asarray(x, dtype=np.float64)
+        except (TypeError, ValueError):
+            raise TypeError(f"{name} must be an array of numbers, got {type(x).__name__}") from None
+        t = torch.from_numpy(arr)
+    if t.ndim != ndim:
+        want = "(B, n)" if ndim == 2 else "(B,)"
+        raise ValueError(f"{name} must have shape {want} ({ndim} dimension(s)), got shape {tuple(t.shape)}")
+    check_nonempty(name, t)
+    check_finite(name, t)
+    return t
+
+
+def _out_kind(*xs: Any) -> tuple[bool, torch.dtype, torch.device]:
+    """Output as torch if any input is a tensor (its device, its floating dtype)."""
+    for x in xs:
+        if is_tensor(x):
+            dtype = x.dtype if x.dtype.is_floating_point else torch.float64
+            return True, dtype, x.device
+    return False, torch.float64, torch.device("cpu")
+
+
+def _finish(w: torch.Tensor, kind: tuple[bool, torch.dtype, torch.device]):
+    as_torch, dtype, device = kind
+    if as_torch:
+        return w.to(device=device, dtype=dtype)
+    return w.cpu().numpy()
+
+
+def _check_binary(name: str, t: torch.Tensor) -> None:
+    bad = (t != 0) & (t != 1)
+    if bool(bad.any()):
+        idx = tuple(int(i) for i in torch.nonzero(bad)[0].tolist())
+        raise ValueError(f"{name} must hold only 0/1 (or booleans), got {float(t[idx])} at index {idx}")
+
+
+# ----------------------------------------------------------------------------
+# the sorted-pool machinery behind bon_credit (internal, trusts its inputs)
+# ----------------------------------------------------------------------------
+
+def _tie_groups(s: torch.Tensor):
+    """Sort each row ascending and describe the tie groups.
+
+    s: (B, n) -> order (B, n) sorting permutation, and per *sorted* position:
+    L (samples strictly below its group), m (group size), end (last sorted
+    index of its group), all (B, n) int64.
+    """
+    B, n = s.shape
+    s_sorted, order = torch.sort(s, dim=-1, stable=True)
+    idx = torch.arange(n, device=s.device).expand(B, n)
+    new = torch.ones_like(s_sorted, dtype=torch.bool)
+    new[:, 1:] = s_sorted[:, 1:] != s_sorted[:, :-1]  # first member of a group
+    last = torch.ones_like(new)
+    last[:, :-1] = new[:, 1:]  # last member of a group
+    start = torch.where(new, idx, torch.zeros_like(idx)).cummax(-1).values
+    end_marks = torch.where(last, idx, torch.full_like(idx, n - 1))
+    end = torch.flip(torch.flip(end_marks, [-1]).cummin(-1).values, [-1])  # next group end at or after
+    return order, start, end - start + 1, end
+
+
+def _ratio(a: torch.Tensor, b, log_den: torch.Tensor | float) -> torch.Tensor:
+    """C(a, b) / exp(log_den), 0 where C(a, b) = 0."""
+    return torch.exp(log_comb_torch(a, b) - log_den)
+
+
+def _prefix(x: torch.Tensor) -> torch.Tensor:
+    """(B, n) -> (B, n+1) with P[:, j] = sum of x[:, :j]."""
+    return torch.nn.functional.pad(torch.cumsum(x, -1), (1, 0))
+
+
+def _subset_sums(r: torch.Tensor, L, m, end, k: int, n: int) -> torch.Tensor:
+    """Sorted rewards r (B, n) -> (1/C(n,k)) sum_{|S|=k, S contains i} g(S), sorted order.
+
+    g(S) = mean reward of the top-scored members of S. For sample i in tie
+    group G (size m, L samples below) the sum splits into subsets whose top
+    group is G (i plus t-1 tied mates plus k-t from below) and subsets whose
+    top group H lies above G (i is one of the k-t from below H). Summing over
+    t with Vandermonde's identity gives, before dividing by C(n, k),
+      own:   R_i * (C(m+L,k) - C(L,k))/m
+           + (sum_G R - R_i) * (m C(m+L-1,k-1) - C(m+L,k) + C(L,k)) / (m(m-1))
+      above: sum_{H above G} sum_H R * (C(m_H+L_H-1,k-1) - C(L_H-1,k-1)) / m_H.
+    """
+    den = float(log_comb_torch(n, k))
+    Lf, mf = L.to(r.dtype), m.to(r.dtype)
+    P = _prefix(r)
+    group_sum = P.gather(-1, end + 1) - P.gather(-1, L)  # sum of R over the own tie group
+    a = (_ratio(mf + Lf, k, den) - _ratio(Lf, k, den)) / mf
+    c_num = mf * _ratio(mf + Lf - 1, k - 1, den) - _ratio(mf + Lf, k, den) + _ratio(Lf, k, den)
+    c = torch.where(m > 1, c_num / (mf * (mf - 1)).clamp_min(1.0), torch.zeros_like(c_num))
+    A = (_ratio(mf + Lf - 1, k - 1, den) - _ratio(Lf - 1, k - 1, den)) / mf  # as top group over one fixed lower sample
+    E = _prefix(r * A)
+    above = E[:, -1:] - E.gather(-1, end + 1)  # positions strictly after the own group
+    return r * a + (group_sum - r) * c + above
+
+
+def _loo_values(r: torch.Tensor, L, m, end, k: int, n: int) -> torch.Tensor:
+    """Sorted rewards r (B, n) -> best-of-k U-statistic of the other n-1 samples, sorted order.
+
+    Needs 1 <= k <= n-1. Removing i shrinks its group to m-1 and lowers L by
+    one for every group above; groups below are unchanged.
+    """
+    den = float(log_comb_torch(n - 1, k))
+    Lf, mf = L.to(r.dtype), m.to(r.dtype)
+    P = _prefix(r)
+    group_sum = P.gather(-1, end + 1) - P.gather(-1, L)
+    below_e = _prefix(r * (_ratio(mf + Lf, k, den) - _ratio(Lf, k, den)) / mf)
+    below = below_e.gather(-1, L)  # positions strictly before the own group
+    own_w = (_ratio(mf - 1 + Lf, k, den) - _ratio(Lf, k, den)) / (mf - 1).clamp_min(1.0)
+    own = torch.where(m > 1, (group_sum - r) * own_w, torch.zeros_like(r))
+    above_e = _prefix(r * (_ratio(mf + Lf - 1, k, den) - _ratio(Lf - 1, k, den)) / mf)
+    above = above_e[:, -1:] - above_e.gather(-1, end + 1)
+    return below + own + above
+
+
+def _unsort(x_sorted: torch.Tensor, order: torch.Tensor) -> torch.Tensor:
+    return torch.empty_like(x_sorted).scatter_(-1, order, x_sorted)
+
+
+def _bon_credit_t(s: torch.Tensor, R: torch.Tensor, k: int, baseline: str) -> tuple[torch.Tensor, torch.Tensor]:
+    """Trusted float64 core: (credit (B, n), pool U-statistic V_k (B,))."""
+    B, n = s.shape
+    order, L, m, end = _tie_groups(s)
+    r = R.gather(-1, order)  # rewards in ascending score order
+    W = _subset_sums(r, L, m, end, k, n)
+    pool = W.sum(-1) / k  # sum_i sum_{S contains i} g(S) = k * sum_S g(S)
+    if baseline == "loo" and n > 1:
+        kb = min(k, n - 1)  # k = n: the others can only form best-of-(n-1)
+        W = W - (k / n) * _loo_values(r, L, m, end, kb, n)  # k/n = C(n-1,k-1)/C(n,k)
+    return _unsort(W, order), pool
+
+
+# ----------------------------------------------------------------------------
+# public API
+# ----------------------------------------------------------------------------
+
+def bon_credit(scores, rewards, k, *, baseline="loo"):
+    r"""Unbiased credit for the best-of-k value ``V_k`` with a verifier.
+
+    scores: (B, n), rewards: (B, n) -> credit (B, n).
+
+    .. math::
+        w_i = \frac{1}{\binom nk}\sum_{|S|=k,\ S\ni i} E[R_{\mathrm{sel}(S)}]
+              \;-\; \frac{\binom{n-1}{k-1}}{\binom nk}\, b_i
+
+    where ``E[R_sel(S)]`` is the mean reward of the top-scored members of the
+    k-subset ``S`` (uniform tie-breaking, so exact with tied scores) and
+    ``b_i`` is the leave-one-out baseline: the best-of-k U-statistic of the
+    other ``n-1`` samples, or their best-of-(k-1) value when ``k = n``.
+
+    Why it is unbiased for every ``k <= n``: the U-statistic
+    ``(1/C(n,k)) sum_S g(S)`` has mean ``V_k``; each subset term's
+    score-function gradient only involves the samples in ``S``, so regrouping
+    by sample gives the first term, and ``b_i`` never looks at sample ``i``
+    (``E[b_i grad log pi(y_i)] = 0``). Hence
+    ``E[sum_i w_i grad log pi(y_i)] = grad V_k`` exactly. With ``k = n`` this
+    is the best-of-N policy gradient of Chow et al. 2024 (BoN-RL-V); ``k = 1``
+    is leave-one-out REINFORCE (Kool et al. 2019), see :func:`reinforce_credit`.
+
+    ``baseline="none"`` drops ``b_i`` (same mean, more variance). With the
+    ``"loo"`` baseline, equal rewards give exactly zero credit when ``n >= 2``.
+    A single sample (``n = 1``) has nobody to leave out: its baseline is 0 and
+    its credit is its reward, which keeps the estimate unbiased (plain
+    REINFORCE) rather than silently returning no signal.
+
+    Cost: one sort and a few prefix sums per row, O(n log n), no Python loop
+    over samples; binomials are formed as ratios of ``log_comb`` so
+    ``n = 4096, k = n`` stays finite.
+
+    Caution: optimising best-of-k against a verifier exploits its mistakes
+    (reward hacking); evaluate with a reward the verifier does not see.
+    """
+    kind = _out_kind(rewards, scores)
+    s = _as_tensor("scores", scores, ndim=2)
+    R = _as_tensor("rewards", rewards, ndim=2)
+    if R.shape != s.shape:
+        raise ValueError(f"rewards must have the same shape as scores {tuple(s.shape)}, got {tuple(R.shape)}")
+    k = check_k(k, s.shape[1])
+    check_choice("baseline", baseline, ("loo", "none"))
+    w, _ = _bon_credit_t(s, R.to(s.device), k, baseline)
+    return _finish(w, kind)
+
+
+def pool_value(scores, rewards, k):
+    r"""Best-of-k U-statistic of each pool: scores, rewards (B, n) -> (B,).
+
+    .. math:: \hat V_k = \frac{1}{\binom nk}\sum_{|S|=k} E[R_{\mathrm{sel}(S)}]
+
+    Unbiased for ``V_k`` (exact with ties). Same kinds in/out as :func:`bon_credit`.
+    """
+    kind = _out_kind(rewards, scores)
+    s = _as_tensor("scores", scores, ndim=2)
+    R = _as_tensor("rewards", rewards, ndim=2)
+    if R.shape != s.shape:
+        raise ValueError(f"rewards must have the same shape as scores {tuple(s.shape)}, got {tuple(R.shape)}")
+    k = check_k(k, s.shape[1])
+    _, v = _bon_credit_t(s, R.to(s.device), k, "none")
+    return _finish(v, kind)
+
+
+def _pass_credit_t(c: torch.Tensor, k: int, estimator: str, positive_only: bool) -> torch.Tensor:
+    """Trusted core: binary c (B, n) float64 -> credit (B, n)."""
+    B, n = c.shape
+    tot = c.sum(-1, keepdim=True)  # correct samples per prompt
+    if estimator == "plugin":
+        p = tot / n
+        w = (k / n) * (1 - p) ** (k - 1) * (c - p)
+    else:
+        den = log_comb_torch(n, k)
+        # subset sums over C(n,k): k/n for a correct sample; an incorrect one
+        # needs a correct mate among its k-1 companions
+        miss = torch.exp(log_comb_torch(n - 1 - tot, k - 1) - den)
+        w = k / n - (1 - c) * miss
+        if n > 1:
+            kb = min(k, n - 1)
+            others = tot - c  # correct among the other n-1
+            b = 1 - torch.exp(log_comb_torch(n - 1 - others, kb) - log_comb_torch(n - 1, kb))
+            w = w - (k / n) * b
+    if positive_only:
+        w = w * c
+    return w
+
+
+def pass_credit(correct, k, *, estimator="unbiased", positive_only=False):
+    r"""Credit for pass@k = 1 - (1-p)^k when the verifier is the binary reward.
+
+    correct: (B, n) booleans or 0/1 -> credit (B, n).
+
+    ``estimator="unbiased"`` (default): :func:`bon_credit` with scores =
+    rewards = ``correct``, in closed counts. With ``c`` correct samples,
+    the k-subset sums over ``C(n,k)`` are ``k/n`` for a correct sample and
+    ``(C(n-1,k-1) - C(n-c-1,k-1))/C(n,k)`` for an incorrect one; the
+    leave-one-out baseline is ``(k/n) * pass@k`` of the other samples
+    (Chen et al. 2021 estimator; ``pass@(k-1)`` of the others when ``k = n``).
+    Unbiased for ``grad pass@k`` (Walder & Karkhanis 2025 study this
+    U-statistic gradient).
+
+    ``estimator="plugin"``: the closed-form gradient ``k (1-p)^(k-1) grad p``
+    with ``p`` replaced by the pool rate ``p_hat = c/n``:
+    ``w_i = (k/n) (1-p_hat)^(k-1) (R_i - p_hat)``. **Biased** (the power of an
+    estimate is not the estimate of the power, and ``p_hat`` shares samples
+    with the gradient); consistent as ``n`` grows. Fewer zero-credit prompts
+    only when ``k`` is small; prefer ``"unbiased"``.
+
+    ``positive_only=True``: incorrect samples get zero credit (the positive-only
+    idea of Chow et al. 2024, BoN-RLB(P); the weights here are our own
+    derivation). With the unbiased weights a correct sample's credit is
+    ``(k/n)(1 - b_i)`` and ``b_i`` is independent of sample ``i``, so the
+    estimate has mean
+      * ``k < n``:  ``k (1-p)^k grad p = (1-p) grad pass@k
+        = grad[(k/(k+1)) pass@(k+1)]`` - the same direction as
+        ``grad pass@k``, shrunk by ``1-p``;
+      * ``k = n``:  exactly ``grad pass@k`` (incorrect samples already get
+        zero unbiased credit when the subset is the whole pool).
+    With ``estimator="plugin"`` it estimates the same thing consistently.
+    """
+    kind = _out_kind(correct)
+    c = _as_tensor("correct", correct, ndim=2)
+    _check_binary("correct", c)
+    k = check_k(k, c.shape[1])
+    check_choice("estimator", estimator, ("unbiased", "plugin"))
+    if not isinstance(positive_only, bool):
+        raise TypeError(f"positive_only must be a bool, got {type(positive_only).__name__} {positive_only!r}")
+    return _finish(_pass_credit_t(c, k, estimator, positive_only), kind)
+
+
+def _loo_mean(x: torch.Tensor) -> torch.Tensor:
+    """(B, n) -> mean of the other n-1 entries per position; 0 when n = 1."""
+    n = x.shape[-1]
+    if n == 1:
+        return torch.zeros_like(x)
+    return (x.sum(-1, keepdim=True) - x) / (n - 1)
+
+
+def _sft_credit_t(s: torch.Tensor, s_star: torch.Tensor, k: int, smoothing: float) -> torch.Tensor:
+    """Trusted core: scores (B, n), expert scores (B,) -> sample credit (B, n)."""
+    B, n = s.shape
+    u = (s <= s_star[:, None]).to(s.dtype)  # at or below the expert
+    v = (s < s_star[:, None]).to(s.dtype)  # strictly below
+    F = (u.sum(-1) + smoothing) / (n + smoothing)  # expert counted as `smoothing` pseudo-samples at s*
+    F_ = v.sum(-1) / (n + smoothing)
+    if k == 1:
+        return torch.zeros_like(s)
+    # h = log sum_{j<k} F^j F_^(k-1-j) = (k-1) log F + log sum_{q<k} r^q with r = F_/F <= 1
+    r = (F_ / F)[:, None]
+    q = torch.arange(k, device=s.device, dtype=s.dtype)  # (k,) powers
+    rq = torch.pow(r, q)  # (B, k)
+    z = rq.sum(-1)
+    h_F = ((k - 1 - q) * rq).sum(-1) / (z * F)  # dh/dF
+    h_F_ = (q[1:] * torch.pow(r, q[1:] - 1)).sum(-1) / (z * F)  # dh/dF_
+    # grad F = E[(u - F) grad log pi]; leave-one-out mean as the baseline
+    return (h_F[:, None] * (u - _loo_mean(u)) + h_F_[:, None] * (v - _loo_mean(v))) / n
+
+
+def sft_credit(scores, expert_scores, k, *, smoothing=1.0):
+    r"""Credit for the policy samples in best-of-k-aware SFT on an expert response.
+
+    scores: (B, n) verifier scores of the policy samples, expert_scores: (B,)
+    score ``s*`` of each prompt's expert response -> credit (B, n).
+
+    The objective is the log-probability that best-of-k *selects* the expert
+    response ``y*`` (Chow et al. 2024, BoN-SFT):
+
+    .. math::
+        \log\pi_{bon}(y^*) = \log\pi(y^*) + h(F, F_<),\qquad
+        h = \log\frac{F^k - F_<^k}{F - F_<} = \log\sum_{j<k}F^jF_<^{k-1-j}
+
+    with ``F = P(s <= s*)`` and ``F_< = P(s < s*)`` under ``pi`` (continuous
+    scores: ``h = log k + (k-1) log F``). The ``log pi(y*)`` term is the usual
+    SFT term (see :func:`bonft.losses.bon_sft_loss`); this function returns
+    the credit for the policy samples that estimates ``grad h``:
+
+      ``w_i = (1/n) [h_F (u_i - mean_{-i} u) + h_<(v_i - mean_{-i} v)]``,
+      ``u_i = 1{s_i <= s*}``, ``v_i = 1{s_i < s*}``,
+
+    i.e. ``grad F = E[(1{s <= s*} - F) grad log pi]`` with a leave-one-out
+    baseline, and the partial derivatives ``h_F, h_<`` (both >= 0) evaluated
+    at pool estimates. Samples that beat the expert get negative credit,
+    samples below it positive credit.
+
+    Smoothing: the pool estimates count the expert response itself as
+    ``smoothing`` pseudo-samples at ``s*``:
+    ``F_hat = (#{s_i <= s*} + smoothing)/(n + smoothing)``,
+    ``F<_hat = #{s_i < s*}/(n + smoothing)``. With ``smoothing > 0`` the
+    estimate is finite even when no sample scores at or below the expert;
+    ``smoothing=0`` is allowed but such a row raises ``ValueError``.
+
+    Bias: a ratio estimator (the derivatives of ``h`` are evaluated at
+    estimates), so consistent but **not unbiased**; the bias shrinks as ``n``
+    grows. ``k = 1`` gives zero credit (``h = 0``: plain SFT).
+    """
+    kind = _out_kind(scores)
+    s = _as_tensor("scores", scores, ndim=2)
+    e = _as_tensor("expert_scores", expert_scores, ndim=1)
+    if e.shape[0] != s.shape[0]:
+        raise ValueError(f"expert_scores must have shape (B,) = ({s.shape[0]},) to match scores, got {tuple(e.shape)}")
+    k = check_k(k, s.shape[1])
+    if isinstance(smoothing, bool) or not isinstance(smoothing, (int, float, np.floating, np.integer)):
+        raise TypeError(f"smoothing must be a real number >= 0, got {type(smoothing).__name__} {smoothing!r}")
+    smoothing = float(smoothing)
+    if not np.isfinite(smoothing) or smoothing < 0:
+        raise ValueError(f"smoothing must be a finite number >= 0, got smoothing={smoothing}")
+    e = e.to(s.device)
+    if smoothing == 0 and k > 1:
+        none_below = ~(s <= e[:, None]).any(-1)
+        if bool(none_below.any()):
+            b = int(torch.nonzero(none_below)[0])
+            raise ValueError(
+                f"smoothing=0 needs a sample scoring at or below the expert, got none in row {b}; use smoothing > 0")
+    return _finish(_sft_credit_t(s, e, k, smoothing), kind)
+
+
+def _reinforce_credit_t(R: torch.Tensor, baseline: str) -> torch.Tensor:
+    n = R.shape[-1]
+    if baseline == "loo":
+        return (R - _loo_mean(R)) / n
+    return R / n
+
+
+def reinforce_credit(rewards, *, baseline="loo"):
+    r"""Leave-one-out REINFORCE credit (Kool et al. 2019): rewards (B, n) -> (B, n).
+
+    .. math:: w_i = \frac{1}{n}\Big(R_i - \frac{1}{n-1}\sum_{j\ne i}R_j\Big)
+
+    Unbiased for ``grad E[R]`` (= ``grad V_1``); identical to
+    ``bon_credit(scores, rewards, 1)`` for any scores. ``baseline="none"``:
+    ``w_i = R_i/n``. With ``n = 1`` there are no others and the baseline is 0.
+    """
+    kind = _out_kind(rewards)
+    R = _as_tensor("rewards", rewards, ndim=2)
+    check_choice("baseline", baseline, ("loo", "none"))
+    return _finish(_reinforce_credit_t(R, baseline), kind)
