@@ -1,0 +1,110 @@
+"""``bonft estimate``: best-of-k and oracle pass@k curves, with CIs, from a samples file."""
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import tempfile
+
+HELP = "best-of-k (verifier picks) and oracle pass@k with bootstrap CIs from a samples JSONL file"
+DESCRIPTION = (
+    "Read a samples file (one JSON object a line: prompt_id, score, reward, optional temperature) "
+    "and print, for each k, the unbiased best-of-k value when the verifier picks among k samples, "
+    "and the oracle value (best true reward among k; pass@k for 0/1 rewards), each with a bootstrap "
+    "confidence interval over prompts. One block per temperature when the file has several. "
+    "Try it with --example."
+)
+
+
+def _parse_ks(text: str | None):
+    if text is None:
+        return None
+    try:
+        ks = [int(v) for v in text.split(",") if v.strip()]
+    except ValueError:
+        raise ValueError(f"--k must be comma-separated integers like 1,2,4, got {text!r}") from None
+    if not ks:
+        raise ValueError(f"--k must list at least one integer, got {text!r}")
+    return ks
+
+
+def add_arguments(p: argparse.ArgumentParser) -> None:
+    p.add_argument("samples", nargs="?", help="samples JSONL file (omit with --example)")
+    p.add_argument("--example", action="store_true", help="use the bundled ledger-puzzle example file")
+    p.add_argument("--prompt-field", default="prompt_id", help="field holding the prompt id (default: prompt_id)")
+    p.add_argument("--score-field", default="score", help="field holding the verifier score (default: score)")
+    p.add_argument("--reward-field", default="reward", help="field holding the true reward (default: reward)")
+    p.add_argument("--temperature-field", default="temperature",
+                   help="field holding the sampling temperature, optional in the file (default: temperature)")
+    p.add_argument("--k", default=None, help="comma-separated k values (default: 1,2,4,... up to the smallest pool)")
+    p.add_argument("--confidence", type=float, default=0.95, help="confidence level of the intervals (default: 0.95)")
+    p.add_argument("--boot", type=int, default=2000, help="bootstrap replicates (default: 2000)")
+    p.add_argument("--seed", type=int, default=0, help="bootstrap seed (default: 0)")
+    p.add_argument("--json", metavar="OUT.json", default=None, help="also write the curves as JSON")
+    p.add_argument("--plot", metavar="OUT.png", default=None, help="also write a PNG of the curves")
+
+
+def _write_json_atomic(path: str, obj) -> None:
+    folder = os.path.dirname(os.path.abspath(path))
+    fd, tmp = tempfile.mkstemp(prefix=".estimate-", suffix=".tmp", dir=folder)
+    try:
+        with os.fdopen(fd, "w", encoding="utf-8") as f:
+            json.dump(obj, f, indent=1, allow_nan=False)
+        os.replace(tmp, path)
+    except BaseException:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+        raise
+
+
+def run(args) -> int:
+    from bonft.estimate import default_ks, plot_curves, summarize
+    from bonft.examples import example_samples_path
+    from bonft.samples import group_pools, read_samples, temperatures_of
+
+    if args.example and args.samples:
+        raise ValueError(f"give either SAMPLES or --example, got both ({args.samples!r} and --example)")
+    if not args.example and not args.samples:
+        raise ValueError("SAMPLES must be a samples JSONL file (or pass --example), got nothing")
+    path = example_samples_path() if args.example else args.samples
+    if not os.path.isfile(path):
+        raise FileNotFoundError(f"SAMPLES file not found: {path}")
+    ks = _parse_ks(args.k)
+    table = read_samples(
+        path,
+        prompt_field=args.prompt_field,
+        score_field=args.score_field,
+        reward_field=args.reward_field,
+        temperature_field=args.temperature_field,
+    )
+    temps = temperatures_of(table)
+    print(f"samples: {path} ({len(table)} rows)")
+    curves, blocks = {}, []
+    for t in temps if len(temps) > 1 else [None]:
+        _, s, r = group_pools(table, temperature=t)
+        n_min = min(len(x) for x in s)
+        if ks is not None and max(ks) > n_min:
+            raise ValueError(f"--k must be <= the smallest pool (n={n_min}), got {max(ks)}")
+        if ks is not None and min(ks) < 1:
+            raise ValueError(f"--k must be >= 1, got {min(ks)}")
+        summ = summarize(s, r, ks if ks is not None else default_ks(n_min),
+                         confidence=args.confidence, n_boot=args.boot, seed=args.seed)
+        label = "" if t is None else f"T={t:g}"
+        print()
+        if t is not None:
+            print(f"temperature {t:g}")
+        elif len(temps) == 1:
+            print(f"temperature {temps[0]:g}")
+        print(summ.table())
+        curves[label] = summ
+        blocks.append({"temperature": t if t is not None else (temps[0] if temps else None), **summ.to_dict()})
+    print()
+    print("best-of-k: reward of the sample the verifier scores highest among k (ties split evenly); "
+          "oracle: best true reward among k (pass@k for 0/1 rewards); gap = oracle - best-of-k.")
+    if args.json:
+        _write_json_atomic(args.json, {"samples": os.path.abspath(path), "blocks": blocks})
+        print(f"wrote {args.json}")
+    if args.plot:
+        plot_curves(curves, args.plot, title=os.path.basename(path))
+        print(f"wrote {args.plot}")
+    return 0
