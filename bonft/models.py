@@ -1,0 +1,167 @@
+"""Tiny causal language models built in code, model loading and saving, device choice.
+
+Nothing here downloads: :func:`build_tiny_model` builds a ``transformers``
+config in code and initialises the weights from a seed; :func:`load_model`
+reads a local directory only (``local_files_only=True``).
+
+A bonft checkpoint directory has the layout::
+
+    CKPT/model/       model.save_pretrained(...)   (config.json, model.safetensors)
+    CKPT/tokenizer/   tokenizer.save_pretrained(...)
+"""
+from __future__ import annotations
+
+import os
+import shutil
+import tempfile
+from pathlib import Path
+from typing import Any
+
+import torch
+
+from ._checks import check_choice, check_int
+
+ARCHS = ("gpt2", "llama")
+
+
+def pick_device(preference: str = "auto") -> torch.device:
+    """``"auto"``: cuda when available, else cpu; ``"cpu"``; ``"cuda"`` (error if absent)."""
+    check_choice("preference", preference, ("auto", "cpu", "cuda"))
+    if preference == "cuda" and not torch.cuda.is_available():
+        raise ValueError("preference='cuda' needs a CUDA device, but torch.cuda.is_available() is False")
+    if preference == "auto":
+        return torch.device("cuda" if torch.cuda.is_available() else "cpu")
+    return torch.device(preference)
+
+
+def _check_token_id(name: str, value: Any, vocab_size: int) -> int | None:
+    if value is None:
+        return None
+    return check_int(name, value, min=0, max=vocab_size - 1)
+
+
+def build_tiny_model(
+    arch: str = "gpt2",
+    *,
+    vocab_size: int,
+    n_layer: int = 2,
+    d_model: int = 128,
+    n_head: int = 4,
+    max_positions: int = 128,
+    seed: int = 0,
+    pad_token_id: int | None = None,
+    eos_token_id: int | None = None,
+    bos_token_id: int | None = None,
+):
+    """A randomly initialised causal LM, reproducible from ``seed``.
+
+    ``arch="gpt2"``: ``GPT2LMHeadModel`` (learned positions, LayerNorm, GELU MLP 4x).
+    ``arch="llama"``: ``LlamaForCausalLM`` (rotary positions, RMSNorm, SwiGLU MLP 4x,
+    tied embeddings). Dropout is 0 in both, so train-mode and eval-mode
+    forward passes give the same log-probs (the trainer relies on that).
+
+    The default (2 layers, width 128, 4 heads, vocab ~90) has ~0.4 M parameters.
+    The global torch RNG is left untouched.
+    """
+    check_choice("arch", arch, ARCHS)
+    vocab_size = check_int("vocab_size", vocab_size, min=2)
+    n_layer = check_int("n_layer", n_layer, min=1)
+    d_model = check_int("d_model", d_model, min=1)
+    n_head = check_int("n_head", n_head, min=1)
+    max_positions = check_int("max_positions", max_positions, min=2)
+    seed = check_int("seed", seed, min=0)
+    if d_model % n_head:
+        raise ValueError(f"d_model must be divisible by n_head (n_head={n_head}), got d_model={d_model}")
+    if arch == "llama" and (d_model // n_head) % 2:
+        raise ValueError(f"d_model / n_head must be even for rotary positions (arch='llama'), got {d_model}/{n_head}")
+    ids = {
+        "pad_token_id": _check_token_id("pad_token_id", pad_token_id, vocab_size),
+        "eos_token_id": _check_token_id("eos_token_id", eos_token_id, vocab_size),
+        "bos_token_id": _check_token_id("bos_token_id", bos_token_id, vocab_size),
+    }
+    from transformers import GPT2Config, GPT2LMHeadModel, LlamaConfig, LlamaForCausalLM
+
+    if arch == "gpt2":
+        config = GPT2Config(
+            vocab_size=vocab_size, n_positions=max_positions, n_embd=d_model, n_layer=n_layer, n_head=n_head,
+            resid_pdrop=0.0, embd_pdrop=0.0, attn_pdrop=0.0, **ids,
+        )
+        cls = GPT2LMHeadModel
+    else:
+        config = LlamaConfig(
+            vocab_size=vocab_size, hidden_size=d_model, intermediate_size=4 * d_model, num_hidden_layers=n_layer,
+            num_attention_heads=n_head, num_key_value_heads=n_head, max_position_embeddings=max_positions,
+            attention_dropout=0.0, tie_word_embeddings=True, **ids,
+        )
+        cls = LlamaForCausalLM
+    with torch.random.fork_rng(devices=[]):  # seed the init without touching the caller's RNG
+        torch.manual_seed(seed)
+        model = cls(config)
+    model.eval()
+    return model
+
+
+def _model_dirs(path: Path) -> tuple[Path, Path]:
+    """(model dir, tokenizer dir) for a bonft checkpoint or a plain transformers directory."""
+    if (path / "model").is_dir():
+        tok = path / "tokenizer" if (path / "tokenizer").is_dir() else path / "model"
+        return path / "model", tok
+    return path, path
+
+
+def load_model(path: str | os.PathLike, *, device: str | torch.device | None = None):
+    """``(model, tokenizer)`` from a local directory; never downloads.
+
+    ``path`` is either a bonft checkpoint (``path/model`` and ``path/tokenizer``
+    sub-directories, see :func:`save_model`) or a directory written by
+    ``save_pretrained`` holding both the model and its tokenizer.
+    ``device``: ``None`` -> :func:`pick_device` ``("auto")``. The model is returned in eval mode.
+    """
+    if not isinstance(path, (str, os.PathLike)):
+        raise TypeError(f"path must be a str or os.PathLike, got {type(path).__name__}")
+    path = Path(path)
+    if not path.is_dir():
+        raise FileNotFoundError(f"path must be a model or checkpoint directory, got {str(path)!r} (not a directory)")
+    model_dir, tok_dir = _model_dirs(path)
+    if not (model_dir / "config.json").is_file():
+        raise FileNotFoundError(f"no config.json in {str(model_dir)!r}: path must be a transformers model directory or a bonft checkpoint")
+    if isinstance(device, str):
+        device = pick_device(device) if device in ("auto", "cpu", "cuda") else torch.device(device)
+    elif device is None:
+        device = pick_device("auto")
+    elif not isinstance(device, torch.device):
+        raise TypeError(f"device must be None, a str or a torch.device, got {type(device).__name__}")
+    from transformers import AutoModelForCausalLM, AutoTokenizer
+
+    model = AutoModelForCausalLM.from_pretrained(model_dir, local_files_only=True)
+    tokenizer = AutoTokenizer.from_pretrained(tok_dir, local_files_only=True)
+    model.to(device).eval()
+    return model, tokenizer
+
+
+def save_model(model, tokenizer, path: str | os.PathLike) -> Path:
+    """Write a bonft checkpoint (``path/model``, ``path/tokenizer``, safetensors) and return ``path``.
+
+    The checkpoint is written to a temporary sibling directory and moved into
+    place only when complete; an existing checkpoint at ``path`` is replaced
+    only after the new one is fully on disk, so a crash never leaves neither.
+    """
+    if not isinstance(path, (str, os.PathLike)):
+        raise TypeError(f"path must be a str or os.PathLike, got {type(path).__name__}")
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    tmp = Path(tempfile.mkdtemp(prefix=f".{path.name}.tmp-", dir=path.parent))
+    try:
+        model.save_pretrained(tmp / "model", safe_serialization=True)
+        tokenizer.save_pretrained(tmp / "tokenizer")
+        if path.exists():
+            old = path.with_name(f".{path.name}.old-{os.getpid()}")
+            os.replace(path, old)
+            os.replace(tmp, path)
+            shutil.rmtree(old, ignore_errors=True)
+        else:
+            os.replace(tmp, path)
+    finally:
+        if tmp.exists():
+            shutil.rmtree(tmp, ignore_errors=True)
+    return path

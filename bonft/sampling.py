@@ -1,0 +1,370 @@
+"""Sampling n responses per prompt from a causal LM, and the matching training forward pass.
+
+:func:`sample` runs its own decoding loop over any ``transformers`` causal LM
+(anything whose ``forward(input_ids, attention_mask=, position_ids=,
+past_key_values=, use_cache=)`` returns ``.logits`` and ``.past_key_values``;
+the newer ``cache=`` / ``.cache`` spelling is used where the model has it),
+so that it controls the log-probs, the random stream and top-p.
+:func:`sequence_logprobs` recomputes the same per-token log-probs with
+gradients in one forward pass; the two agree to float32 round-off.
+
+Which policy the log-probs belong to matters. Sampling at temperature ``T``
+(and top-p ``p``) draws from ``pi_T(y_t | x, y_<t) = softmax(logits / T)``
+(truncated to the nucleus and renormalised when ``p < 1``). A score-function
+(REINFORCE-style) gradient of a best-of-k objective,
+``grad V_k = E[ A(y) * grad log pi_T(y | x) ]``, is unbiased for ``V_k`` of the
+policy that actually drew the samples only when ``log pi_T`` is taken at that
+same ``T`` (and ``p``) -- see Chow et al. 2024, "Inference-Aware Fine-Tuning for
+Best-of-N Sampling in LLMs". Log-probs at ``T = 1`` for samples drawn at
+``T != 1`` give a biased gradient. Both functions therefore take the
+temperature, and ``Samples`` records it.
+"""
+from __future__ import annotations
+
+import inspect
+import numbers
+from dataclasses import dataclass
+from typing import Sequence
+
+import torch
+import torch.nn.functional as F
+
+from ._checks import check_fraction, check_int, check_positive
+
+
+@dataclass
+class Samples:
+    """n sampled responses for each of B prompts.
+
+    prompt_ids:     (B, Tp) long, left-padded with the pad id.
+    prompt_mask:    (B, Tp) long, 1 on prompt tokens.
+    response_ids:   (B, n, T) long, right-padded with the pad id.
+    response_mask:  (B, n, T) long, 1 on generated tokens up to and including EOS.
+    token_logprobs: (B, n, T) float, log pi_T of each generated token at the
+                    sampling temperature (top-p renormalised if used), 0 where masked.
+    texts:          B lists of n decoded responses (special tokens removed).
+    temperature:    the sampling temperature T.
+    top_p:          the nucleus mass used (1.0 = none).
+    """
+
+    prompt_ids: torch.Tensor
+    prompt_mask: torch.Tensor
+    response_ids: torch.Tensor
+    response_mask: torch.Tensor
+    token_logprobs: torch.Tensor
+    texts: list[list[str]]
+    temperature: float
+    top_p: float = 1.0
+
+    @property
+    def n(self) -> int:
+        return int(self.response_ids.shape[1])
+
+    def sequence_logprob(self) -> torch.Tensor:
+        """(B, n): log pi_T of each whole response (sum of token log-probs)."""
+        return self.token_logprobs.sum(-1)
+
+    def lengths(self) -> torch.Tensor:
+        """(B, n): number of generated tokens (EOS included)."""
+        return self.response_mask.sum(-1)
+
+
+# ---------------------------------------------------------------- validation
+
+
+def _check_model(model) -> None:
+    if not callable(model):
+        raise TypeError(f"model must be a callable causal LM (e.g. a transformers model), got {type(model).__name__}")
+
+
+def _check_prompts(prompts) -> list[str]:
+    if isinstance(prompts, str):
+        raise TypeError("prompts must be a sequence of str, got a single str (wrap it in a list)")
+    try:
+        items = list(prompts)
+    except TypeError:
+        raise TypeError(f"prompts must be a sequence of str, got {type(prompts).__name__}") from None
+    if not items:
+        raise ValueError("prompts must not be empty")
+    for i, p in enumerate(items):
+        if not isinstance(p, str):
+            raise TypeError(f"prompts must be a sequence of str, got {type(p).__name__} at index {i}")
+    return items
+
+
+def _check_temperature(temperature) -> float:
+    return check_positive("temperature", temperature)
+
+
+def _check_top_p(top_p) -> float:
+    return check_fraction("top_p", top_p, open_low=True)
+
+
+# ---------------------------------------------------------------- helpers
+
+
+def _model_device(model) -> torch.device:
+    try:
+        return next(model.parameters()).device
+    except (AttributeError, StopIteration):
+        return torch.device("cpu")
+
+
+def _special_ids(tokenizer) -> tuple[int, int | None]:
+    """(pad id, eos id); pad falls back to eos, then 0 (GPT-2 tokenizers have no pad)."""
+    eos = tokenizer.eos_token_id
+    pad = tokenizer.pad_token_id
+    if pad is None:
+        pad = eos if eos is not None else 0
+    return int(pad), (None if eos is None else int(eos))
+
+
+def _left_pad(rows: list[list[int]], pad_id: int) -> tuple[torch.Tensor, torch.Tensor]:
+    """Left-pad token lists: (B, Tp) ids and (B, Tp) mask."""
+    Tp = max(len(r) for r in rows)
+    ids = torch.full((len(rows), Tp), pad_id, dtype=torch.long)
+    mask = torch.zeros((len(rows), Tp), dtype=torch.long)
+    for i, r in enumerate(rows):
+        if r:
+            ids[i, Tp - len(r):] = torch.tensor(r, dtype=torch.long)
+            mask[i, Tp - len(r):] = 1
+    return ids, mask
+
+
+def _positions(mask: torch.Tensor) -> torch.Tensor:
+    """Position ids from an attention mask: 0 at each row's first real token (left padding)."""
+    return (mask.cumsum(-1) - 1).clamp(min=0)
+
+
+def _log_policy(logits: torch.Tensor, temperature: float, top_p: float) -> torch.Tensor:
+    """(..., V) logits -> (..., V) log pi_T, restricted to the top-p nucleus and renormalised.
+
+    The nucleus is the smallest set of most likely tokens whose pi_T mass
+    reaches ``top_p`` (the most likely token is always kept); the others get -inf.
+    """
+    logp = F.log_softmax(logits.float() / temperature, dim=-1)
+    if top_p >= 1.0:
+        return logp
+    with torch.no_grad():
+        sorted_logp, order = logp.sort(dim=-1, descending=True)
+        mass_before = sorted_logp.exp().cumsum(-1) - sorted_logp.exp()  # mass of strictly more likely tokens
+        drop_sorted = mass_before >= top_p
+        drop = torch.zeros_like(drop_sorted).scatter(-1, order, drop_sorted)
+    return F.log_softmax(logp.masked_fill(drop, float("-inf")), dim=-1)
+
+
+def _accepts(model, name: str) -> bool:
+    try:
+        return name in inspect.signature(model.forward).parameters
+    except (AttributeError, TypeError, ValueError):
+        return False
+
+
+def _cache_arg(model) -> str:
+    """Keyword of the KV cache: ``cache`` in recent transformers, ``past_key_values`` before."""
+    return "cache" if _accepts(model, "cache") else "past_key_values"
+
+
+def _cache_of(out):
+    cache = getattr(out, "cache", None)
+    return cache if cache is not None else out.past_key_values
+
+
+# ---------------------------------------------------------------- sampling
+
+
+@torch.no_grad()
+def _sample_rows(model, ids, mask, *, temperature, top_p, max_new_tokens, pad_id, eos_id, generator):
+    """Decode one chunk of R rows. ids, mask: (R, Tp) -> tokens, gen_mask, logprobs: (R, t_max)."""
+    R = ids.shape[0]
+    cache_arg = _cache_arg(model)
+    out = model(input_ids=ids, attention_mask=mask, position_ids=_positions(mask), use_cache=True)
+    past, logits = _cache_of(out), out.logits[:, -1, :]
+    pos = _positions(mask)[:, -1]  # (R,) position of each row's last prompt token
+    done = torch.zeros(R, dtype=torch.bool, device=ids.device)
+    toks, gmask, lps = [], [], []
+    for _ in range(max_new_tokens):
+        logp = _log_policy(logits, temperature, top_p)  # (R, V)
+        nxt = torch.multinomial(logp.exp(), 1, generator=generator).squeeze(-1)  # (R,)
+        lp = logp.gather(-1, nxt[:, None]).squeeze(-1)
+        live = ~done
+        nxt = torch.where(live, nxt, torch.full_like(nxt, pad_id))
+        toks.append(nxt)
+        gmask.append(live.long())
+        lps.append(torch.where(live, lp, torch.zeros_like(lp)))
+        if eos_id is not None:
+            done = done | (live & (nxt == eos_id))
+        if bool(done.all()) or len(toks) == max_new_tokens:
+            break
+        mask = torch.cat([mask, torch.ones_like(mask[:, :1])], dim=1)  # (R, Tp + t + 1)
+        pos = pos + 1
+        out = model(input_ids=nxt[:, None], attention_mask=mask, position_ids=pos[:, None],
+                    use_cache=True, **{cache_arg: past})
+        past, logits = _cache_of(out), out.logits[:, -1, :]
+    return torch.stack(toks, 1), torch.stack(gmask, 1), torch.stack(lps, 1)
+
+
+def sample(
+    model,
+    tokenizer,
+    prompts: Sequence[str],
+    *,
+    n: int,
+    temperature: float = 1.0,
+    top_p: float = 1.0,
+    max_new_tokens: int = 32,
+    seed: int | None = None,
+    batch_size: int | None = None,
+) -> Samples:
+    """Draw ``n`` responses for each prompt from the temperature-``T`` policy.
+
+    prompts: B strings -> :class:`Samples` with ``response_ids (B, n, T)``.
+
+    ``pi_T(y_t | x, y_<t) = softmax(logits_t / T)`` (restricted to the top-p
+    nucleus and renormalised when ``top_p < 1``). Each prompt is repeated n
+    times and the ``B * n`` rows are decoded ``batch_size`` rows at a time
+    (default: all at once) with the model's KV cache. A row stops at EOS;
+    afterwards it gets the pad id, mask 0 and log-prob 0. Prompts are
+    tokenized with the tokenizer's own special tokens and left-padded; the
+    attention mask and position ids (counted from each row's first real
+    token) make padding invisible to the model.
+
+    ``token_logprobs`` are log pi_T at the *sampling* temperature: the policy
+    that drew the samples. Use them (or :func:`sequence_logprobs` at the same
+    ``temperature``) in score-function gradients; otherwise the estimate of
+    ``grad V_k`` at ``T`` is biased (Chow et al. 2024).
+
+    ``seed``: an int makes the draw reproducible (same arguments, same device ->
+    same samples) through a private ``torch.Generator``; ``None`` uses torch's
+    global RNG. The model is put in eval mode while sampling and restored after.
+    """
+    _check_model(model)
+    prompts = _check_prompts(prompts)
+    n = check_int("n", n, min=1)
+    temperature = _check_temperature(temperature)
+    top_p = _check_top_p(top_p)
+    max_new_tokens = check_int("max_new_tokens", max_new_tokens, min=1)
+    if seed is not None:
+        seed = check_int("seed", seed, min=0)
+    if batch_size is not None:
+        batch_size = check_int("batch_size", batch_size, min=1)
+
+    pad_id, eos_id = _special_ids(tokenizer)
+    rows = [list(tokenizer(p)["input_ids"]) for p in prompts]
+    for i, r in enumerate(rows):
+        if not r:
+            raise ValueError(f"prompts must encode to at least one token, got an empty encoding at index {i}")
+    device = _model_device(model)
+    prompt_ids, prompt_mask = _left_pad(rows, pad_id)
+    B, Tp = prompt_ids.shape
+    ids = prompt_ids.repeat_interleave(n, dim=0).to(device)  # (B*n, Tp): row b*n + j is sample j of prompt b
+    mask = prompt_mask.repeat_interleave(n, dim=0).to(device)
+    chunk = batch_size or B * n
+    generator = None
+    if seed is not None:
+        generator = torch.Generator(device=device)
+        generator.manual_seed(seed)
+
+    was_training = getattr(model, "training", False)
+    if hasattr(model, "eval"):
+        model.eval()
+    try:
+        parts = []
+        for s in range(0, B * n, chunk):
+            parts.append(_sample_rows(
+                model, ids[s:s + chunk], mask[s:s + chunk], temperature=temperature, top_p=top_p,
+                max_new_tokens=max_new_tokens, pad_id=pad_id, eos_id=eos_id, generator=generator,
+            ))
+    finally:
+        if was_training and hasattr(model, "train"):
+            model.train()
+
+    T = max(p[0].shape[1] for p in parts)
+    resp = torch.full((B * n, T), pad_id, dtype=torch.long, device=device)
+    rmask = torch.zeros((B * n, T), dtype=torch.long, device=device)
+    rlp = torch.zeros((B * n, T), dtype=torch.float32, device=device)
+    r0 = 0
+    for toks, gm, lp in parts:  # chunks may stop at different lengths: right-pad to T
+        r1, t = r0 + toks.shape[0], toks.shape[1]
+        resp[r0:r1, :t], rmask[r0:r1, :t], rlp[r0:r1, :t] = toks, gm, lp
+        r0 = r1
+
+    flat = []
+    for toks, m in zip(resp.tolist(), rmask.tolist()):
+        kept = [t for t, keep in zip(toks, m) if keep and t != eos_id]
+        flat.append(tokenizer.decode(kept, skip_special_tokens=True))
+    texts = [flat[b * n:(b + 1) * n] for b in range(B)]
+    return Samples(
+        prompt_ids=prompt_ids.to(device),
+        prompt_mask=prompt_mask.to(device),
+        response_ids=resp.view(B, n, T),  # (B*n, T) -> (B, n, T)
+        response_mask=rmask.view(B, n, T),
+        token_logprobs=rlp.view(B, n, T),
+        texts=texts,
+        temperature=temperature,
+        top_p=top_p,
+    )
+
+
+# ---------------------------------------------------------------- training forward
+
+
+def _check_long(name: str, x, ndim: int) -> torch.Tensor:
+    if not isinstance(x, torch.Tensor):
+        raise TypeError(f"{name} must be a torch.Tensor, got {type(x).__name__}")
+    if x.dtype.is_floating_point or x.dtype.is_complex:
+        raise TypeError(f"{name} must be an integer tensor, got dtype {x.dtype}")
+    if x.ndim != ndim:
+        raise ValueError(f"{name} must have {ndim} dimensions, got shape {tuple(x.shape)}")
+    return x
+
+
+def sequence_logprobs(
+    model,
+    prompt_ids: torch.Tensor,
+    prompt_mask: torch.Tensor,
+    response_ids: torch.Tensor,
+    response_mask: torch.Tensor,
+    *,
+    temperature: float = 1.0,
+    top_p: float = 1.0,
+) -> torch.Tensor:
+    """Per-token log pi_T of given responses, differentiable: (B, Tp), (B, n, T) -> (B, n, T).
+
+    ``out[b, j, t] = log softmax(logits / T)[response_ids[b, j, t]]`` given the
+    prompt and the earlier response tokens, 0 where ``response_mask`` is 0.
+    One forward pass over the ``B * n`` rows ``[prompt_b ; response_bj]``
+    (each prompt repeated n times), position ids counted from the first real
+    token, so left padding of prompts and right padding of responses change
+    nothing. With the ``temperature`` (and ``top_p``) used by :func:`sample`
+    this reproduces ``Samples.token_logprobs`` to float32 round-off; use the
+    sampling temperature for unbiased score-function gradients (Chow et al. 2024).
+    Runs in whatever mode the model is in (the tiny models have no dropout).
+    """
+    _check_model(model)
+    _check_long("prompt_ids", prompt_ids, 2)
+    _check_long("prompt_mask", prompt_mask, 2)
+    _check_long("response_ids", response_ids, 3)
+    _check_long("response_mask", response_mask, 3)
+    if prompt_mask.shape != prompt_ids.shape:
+        raise ValueError(f"prompt_mask must have the shape of prompt_ids {tuple(prompt_ids.shape)}, got {tuple(prompt_mask.shape)}")
+    if response_mask.shape != response_ids.shape:
+        raise ValueError(f"response_mask must have the shape of response_ids {tuple(response_ids.shape)}, got {tuple(response_mask.shape)}")
+    if response_ids.shape[0] != prompt_ids.shape[0]:
+        raise ValueError(f"response_ids must have B={prompt_ids.shape[0]} rows like prompt_ids, got {response_ids.shape[0]}")
+    temperature = _check_temperature(temperature)
+    top_p = _check_top_p(top_p)
+
+    B, n, T = response_ids.shape
+    Tp = prompt_ids.shape[1]
+    ids = torch.cat([prompt_ids.repeat_interleave(n, 0), response_ids.reshape(B * n, T)], dim=1)  # (B*n, Tp+T)
+    mask = torch.cat([prompt_mask.repeat_interleave(n, 0), response_mask.reshape(B * n, T)], dim=1)
+    kwargs = {}
+    if _accepts(model, "logits_to_keep"):
+        kwargs["logits_to_keep"] = T + 1  # only the positions that predict response tokens (+ the last)
+    logits = model(input_ids=ids, attention_mask=mask, position_ids=_positions(mask), **kwargs).logits
+    logits = logits[:, -(T + 1):-1, :]  # (B*n, T, V): position Tp-1+t predicts response token t
+    logp = _log_policy(logits, temperature, top_p)
+    tok = logp.gather(-1, response_ids.reshape(B * n, T, 1)).squeeze(-1)  # (B*n, T)
+    tok = tok.masked_fill(response_mask.reshape(B * n, T) == 0, 0.0)
+    return tok.view(B, n, T)  # (B*n, T) -> (B, n, T)
