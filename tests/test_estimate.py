@@ -1,0 +1,397 @@
+"""bonft.estimate against outside references: exact integer formulas, brute-force
+enumeration of k-subsets, normal order-statistics tables, scipy integration."""
+import itertools
+import json
+import math
+from fractions import Fraction
+
+import numpy as np
+import pytest
+import torch
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from scipy import integrate, stats
+
+from bonft.estimate import (
+    CurveSummary,
+    bon_at_k,
+    bon_at_k_per_prompt,
+    bootstrap_ci,
+    default_ks,
+    oracle_at_k_per_prompt,
+    pass_at_k,
+    plot_curves,
+    summarize,
+)
+
+
+# ----------------------------------------------------------------------------- references (independent of bonft)
+
+
+def brute_bon(scores, rewards, k) -> Fraction:
+    """Average over all k-subsets of the reward the verifier keeps, ties split uniformly (exact rationals)."""
+    total, count = Fraction(0), 0
+    for sub in itertools.combinations(range(len(scores)), k):
+        top = max(scores[i] for i in sub)
+        best = [Fraction(rewards[i]) for i in sub if scores[i] == top]
+        total += sum(best) / len(best)
+        count += 1
+    return total / count
+
+
+def chen_pass_at_k(n, c, k) -> Fraction:
+    # Chen et al. 2021, "Evaluating Large Language Models Trained on Code", eq. (1): 1 - C(n-c, k) / C(n, k)
+    return 1 - Fraction(math.comb(n - c, k), math.comb(n, k))
+
+
+# ----------------------------------------------------------------------------- pass@k
+
+
+@pytest.mark.parametrize("n,c", [(1, 0), (1, 1), (5, 2), (10, 3), (20, 0), (20, 20), (30, 7)])
+def test_pass_at_k_equals_chen_formula_and_enumeration(n, c):
+    ks = list(range(1, n + 1))
+    got = pass_at_k(n, c, ks)
+    want = [chen_pass_at_k(n, c, k) for k in ks]  # Chen et al. 2021 eq. (1), exact integers
+    np.testing.assert_allclose(got, [float(w) for w in want], rtol=1e-12, atol=1e-14)
+    if n <= 10:
+        # brute force: share of k-subsets holding at least one of the c correct samples (first c indices)
+        for k in ks:
+            subsets = list(itertools.combinations(range(n), k))
+            hits = sum(any(i < c for i in s) for s in subsets)
+            assert got[k - 1] == pytest.approx(hits / len(subsets), abs=1e-12)
+
+
+def test_pass_at_k_broadcasts_and_returns_float_for_scalars():
+    assert isinstance(pass_at_k(10, 3, 2), float)
+    # Chen et al. 2021 eq. (1): 1 - C(7,2)/C(10,2) = 1 - 21/45 = 8/15
+    assert pass_at_k(10, 3, 2) == pytest.approx(8 / 15, abs=1e-14)
+    got = pass_at_k(np.array([[10], [20]]), np.array([3, 5]), 2)
+    want = [[float(chen_pass_at_k(10, 3, 2)), float(chen_pass_at_k(10, 5, 2))],
+            [float(chen_pass_at_k(20, 3, 2)), float(chen_pass_at_k(20, 5, 2))]]
+    np.testing.assert_allclose(got, want, rtol=1e-12)
+    np.testing.assert_allclose(pass_at_k(torch.tensor([10, 20]), torch.tensor([3, 5]), 4),
+                               [float(chen_pass_at_k(10, 3, 4)), float(chen_pass_at_k(20, 5, 4))], rtol=1e-12)
+
+
+def test_pass_at_k_large_n_matches_chen_stable_product():
+    # Chen et al. 2021, Fig. 3 numerically stable form: 1 - prod_{i=n-c+1}^{n} (1 - k / i)
+    n, c, k = 100_000, 3, 10_000
+    want = 1.0 - np.prod(1.0 - k / np.arange(n - c + 1, n + 1))
+    got = pass_at_k(n, c, k)
+    assert math.isfinite(got)
+    assert got == pytest.approx(want, rel=1e-10)
+
+
+def test_pass_at_k_rejects_bad_input():
+    with pytest.raises(ValueError, match=r"k must be <= n \(n=8\), got k=16"):
+        pass_at_k(8, 2, 16)
+    with pytest.raises(ValueError, match=r"k must be >= 1"):
+        pass_at_k(8, 2, 0)
+    with pytest.raises(ValueError, match=r"c must be <= n \(n=8\), got c=9"):
+        pass_at_k(8, 9, 1)
+    with pytest.raises(ValueError, match=r"c must be >= 0"):
+        pass_at_k(8, -1, 1)
+    with pytest.raises(TypeError, match=r"k must hold ints, got dtype float64"):
+        pass_at_k(8, 2, 1.5)
+    with pytest.raises(ValueError, match=r"must broadcast together"):
+        pass_at_k([8, 9], [1, 2, 3], 1)
+
+
+# ----------------------------------------------------------------------------- best-of-k vs brute force
+
+
+def test_bon_at_k_worked_example_with_ties():
+    # hand-enumerated: scores [0.1, .5, .5, .9, .2], rewards [1, 0, 1, 0, 1]
+    s, r = [0.1, 0.5, 0.5, 0.9, 0.2], [1, 0, 1, 0, 1]
+    got = bon_at_k(s, r, [1, 2, 3, 4, 5])
+    want = [float(brute_bon(s, r, k)) for k in range(1, 6)]  # brute-force enumeration of k-subsets
+    np.testing.assert_allclose(got, want, rtol=1e-12, atol=1e-15)
+    # k = 2 by hand: 10 pairs; the 4 pairs containing 0.9 give 0; the pair of the two tied .5 gives 1/2;
+    # (.1,.5a)=0 (.1,.5b)=1 (.2,.5a)=0 (.2,.5b)=1 (.1,.2)=1 -> (0.5 + 3) / 10 = 0.35
+    assert got[1] == pytest.approx(0.35, abs=1e-14)
+
+
+pools = st.integers(1, 8).flatmap(
+    lambda n: st.tuples(
+        st.lists(st.integers(0, 3), min_size=n, max_size=n),  # few distinct scores -> many ties
+        st.lists(st.integers(-3, 5), min_size=n, max_size=n),
+    )
+)
+
+
+@given(pools)
+@settings(max_examples=60)
+def test_bon_at_k_equals_brute_force_enumeration(pool):
+    s, r = pool
+    n = len(s)
+    got = bon_at_k(np.array(s, float), np.array(r, float), list(range(1, n + 1)))
+    want = [float(brute_bon(s, r, k)) for k in range(1, n + 1)]  # brute force, uniform tie-breaking
+    np.testing.assert_allclose(got, want, rtol=1e-10, atol=1e-12)
+
+
+@given(st.lists(st.tuples(st.integers(0, 4), st.integers(0, 1)), min_size=1, max_size=9))
+@settings(max_examples=40)
+def test_oracle_with_binary_rewards_is_chen_pass_at_k(pairs):
+    r = np.array([b for _, b in pairs], float)
+    n, c = len(r), int(r.sum())
+    got = oracle_at_k_per_prompt(r[None, :], list(range(1, n + 1)))[0]
+    want = [float(chen_pass_at_k(n, c, k)) for k in range(1, n + 1)]  # Chen et al. 2021 eq. (1)
+    np.testing.assert_allclose(got, want, rtol=1e-10, atol=1e-12)
+
+
+# ----------------------------------------------------------------------------- expected maximum of k normals
+
+# E[max of k iid N(0,1)]: Harter (1961), "Expected values of normal order statistics", Biometrika 48,
+# table of expected values of the largest order statistic (values quoted from memory to 4 decimals).
+HARTER = {2: 0.5642, 3: 0.8463, 5: 1.1630, 10: 1.5388}
+
+
+def expected_max_normal(k):
+    # E[max] = int x * k * phi(x) * Phi(x)^(k-1) dx (order-statistic density), scipy quadrature
+    f = lambda x: x * k * stats.norm.pdf(x) * stats.norm.cdf(x) ** (k - 1)
+    return integrate.quad(f, -12, 12)[0]
+
+
+def test_harter_table_agrees_with_scipy_integration():
+    for k, v in HARTER.items():
+        assert expected_max_normal(k) == pytest.approx(v, abs=6e-5), k
+
+
+def test_bon_of_normal_draws_matches_expected_maximum():
+    rng = np.random.default_rng(123)
+    P, n = 4000, 20
+    x = rng.standard_normal((P, n))
+    ks = sorted(HARTER)
+    per = bon_at_k_per_prompt(x, x, ks)  # score = reward: best-of-k keeps the max
+    mean = per.mean(0)
+    se = per.std(0, ddof=1) / math.sqrt(P)
+    for j, k in enumerate(ks):
+        # within 4 standard errors of Harter (1961) and of the scipy integral
+        assert abs(mean[j] - HARTER[k]) < 4 * se[j], f"k={k}: {mean[j]:.4f} vs {HARTER[k]} (se {se[j]:.4f})"
+        assert abs(mean[j] - expected_max_normal(k)) < 4 * se[j]
+    # k = 1 is the sample mean of the rewards
+    np.testing.assert_allclose(bon_at_k_per_prompt(x, x, 1), x.mean(1), rtol=1e-12, atol=1e-14)
+
+
+# ----------------------------------------------------------------------------- large n through log-gamma
+
+
+def test_large_pool_matches_expected_max_of_k_subset_of_ranks():
+    # E[max of a uniform k-subset of {1..n}] = k (n + 1) / (k + 1): the classical sampling-without-replacement
+    # maximum (e.g. Goodman 1952 on serial-number estimation; "German tank problem")
+    n, k = 100_000, 10_000
+    ranks = np.random.default_rng(0).permutation(n).astype(float) + 1
+    got = bon_at_k(ranks, ranks, [1, 100, k, n])
+    want = [(kk * (n + 1)) / (kk + 1) for kk in (1, 100, k, n)]
+    assert np.isfinite(got).all()
+    np.testing.assert_allclose(got, want, rtol=1e-9)
+
+
+def test_large_pool_binary_matches_chen_stable_product():
+    n, k = 100_000, 10_000
+    r = np.zeros(n)
+    r[[5, 77, 90_000]] = 1.0
+    got = bon_at_k(r, r, k)  # oracle: reward as score
+    # Chen et al. 2021, Fig. 3 stable product
+    assert got == pytest.approx(1 - np.prod(1 - k / np.arange(n - 2, n + 1)), rel=1e-9)
+
+
+def test_large_pool_matches_exact_integer_sum():
+    # direct sum with exact integers: the sample at ascending score rank j is kept in C(j-1, k-1) of the
+    # C(n, k) subsets (a k-subset's maximum is at rank j iff the other k-1 come from the j-1 below it)
+    n, k = 100_000, 10_000
+    ranks = np.random.default_rng(2).permutation(n) + 1  # scores = ranks, in shuffled order
+    value = {10_000: 1, 50_000: 2, 99_000: 3, 99_999: 4}  # reward of the sample at each rank
+    r = np.zeros(n)
+    for j, v in value.items():
+        r[ranks == j] = v
+    exact = sum(v * math.comb(j - 1, k - 1) for j, v in value.items()) / math.comb(n, k)
+    got = bon_at_k(ranks.astype(float), r, k)
+    assert math.isfinite(got) and exact > 0.09
+    assert got == pytest.approx(exact, rel=1e-9)
+
+
+# ----------------------------------------------------------------------------- properties
+
+grids = st.integers(1, 4).flatmap(
+    lambda P: st.integers(1, 10).flatmap(
+        lambda n: st.tuples(
+            st.lists(st.lists(st.integers(-5, 5), min_size=n, max_size=n), min_size=P, max_size=P),
+            st.lists(st.lists(st.integers(-4, 6), min_size=n, max_size=n), min_size=P, max_size=P),
+            st.randoms(use_true_random=False),
+        )
+    )
+)
+
+
+@given(grids)
+@settings(max_examples=40)
+def test_invariant_to_permuting_samples_and_monotone_score_transform(case):
+    s, r, rnd = case
+    S, R = np.array(s, float), np.array(r, float)
+    P, n = S.shape
+    ks = list(range(1, n + 1))
+    base = bon_at_k_per_prompt(S, R, ks)
+    perm = np.array([rnd.sample(range(n), n) for _ in range(P)])
+    np.testing.assert_allclose(bon_at_k_per_prompt(np.take_along_axis(S, perm, 1), np.take_along_axis(R, perm, 1), ks),
+                               base, rtol=1e-10, atol=1e-12)
+    # strictly increasing transforms keep the verifier's order (and its ties)
+    np.testing.assert_allclose(bon_at_k_per_prompt(np.exp(S / 3.0) * 7 - 2, R, ks), base, rtol=1e-10, atol=1e-12)
+    np.testing.assert_allclose(bon_at_k_per_prompt(S ** 3 + S, R, ks), base, rtol=1e-10, atol=1e-12)
+    # k = 1: the verifier plays no part, the value is the mean reward
+    np.testing.assert_allclose(base[:, 0], R.mean(1), rtol=1e-12, atol=1e-12)
+    # with reward = score the value is the expected max, nondecreasing in k, ending at the pool max
+    orc = oracle_at_k_per_prompt(R, ks)
+    assert (np.diff(orc, axis=1) >= -1e-12).all()
+    np.testing.assert_allclose(orc[:, -1], R.max(1), rtol=1e-12, atol=1e-12)
+    # the value always lies in the range of the pool's rewards
+    assert (base >= R.min(1, keepdims=True) - 1e-12).all() and (base <= R.max(1, keepdims=True) + 1e-12).all()
+
+
+@given(st.lists(st.integers(2, 9), min_size=1, max_size=6), st.integers(0, 10_000))
+@settings(max_examples=30)
+def test_ragged_equals_per_prompt(sizes, seed):
+    rng = np.random.default_rng(seed)
+    ss = [np.round(rng.normal(size=m), 1) for m in sizes]  # rounding makes ties
+    rr = [rng.integers(0, 3, size=m).astype(float) for m in sizes]
+    ks = [1, 2] if min(sizes) >= 2 else [1]
+    got = bon_at_k_per_prompt(ss, rr, ks)
+    want = np.stack([[float(brute_bon(list(s), list(r), k)) for k in ks] for s, r in zip(ss, rr)])
+    np.testing.assert_allclose(got, want, rtol=1e-10, atol=1e-12)
+    np.testing.assert_allclose(got, np.stack([bon_at_k(s, r, ks) for s, r in zip(ss, rr)]), rtol=1e-12)
+
+
+def test_torch_input_and_scalar_k_shapes():
+    rng = np.random.default_rng(5)
+    S, R = rng.normal(size=(3, 6)), rng.normal(size=(3, 6))
+    a = bon_at_k_per_prompt(S, R, [1, 3])
+    b = bon_at_k_per_prompt(torch.from_numpy(S), torch.from_numpy(R), torch.tensor([1, 3]))
+    np.testing.assert_allclose(a, b, rtol=0, atol=0)
+    assert a.shape == (3, 2)
+    assert bon_at_k_per_prompt(S, R, 3).shape == (3,)
+    assert isinstance(bon_at_k(S[0], R[0], 3), float)
+    assert bon_at_k(S[0], R[0], [3]).shape == (1,)
+
+
+# ----------------------------------------------------------------------------- bad input
+
+
+@pytest.mark.parametrize(
+    "call,exc,match",
+    [
+        (lambda: bon_at_k([1.0, np.nan], [0, 1], 1), ValueError, r"scores must be finite, got nan at index \(1,\)"),
+        (lambda: bon_at_k([1.0, 2.0], [0, np.inf], 1), ValueError, r"rewards must be finite, got inf"),
+        (lambda: bon_at_k([1.0, 2.0], [0, 1], 0), ValueError, r"k must be >= 1, got k=0"),
+        (lambda: bon_at_k(np.zeros(8), np.zeros(8), 16), ValueError, r"k must be <= n \(n=8\), got k=16"),
+        (lambda: bon_at_k([1.0, 2.0], [0, 1, 1], 1), ValueError, r"rewards must have the same shape as scores"),
+        (lambda: bon_at_k([], [], 1), ValueError, r"scores must not be empty"),
+        (lambda: bon_at_k([1.0], [1.0], 1.0), TypeError, r"k must be an int or a sequence of ints, got float"),
+        (lambda: bon_at_k("abc", [1.0], 1), TypeError, r"scores must be an array of numbers"),
+        (lambda: bon_at_k(np.zeros((2, 2)), np.zeros((2, 2)), 1), ValueError, r"scores must have 1 dimension"),
+        (lambda: bon_at_k_per_prompt(np.zeros((2, 4)), np.zeros((2, 4)), [1, 5]), ValueError,
+         r"ks must be <= n \(n=4\), got ks=5"),
+        (lambda: bon_at_k_per_prompt([np.zeros(3), np.zeros(2)], [np.zeros(3), np.zeros(3)], 1), ValueError,
+         r"rewards\[1\] must have the same shape as scores\[1\]"),
+        (lambda: bon_at_k_per_prompt([np.zeros(3), np.zeros(2)], [np.zeros(3)], 1), ValueError,
+         r"rewards must hold one pool per prompt like scores \(2\), got 1"),
+        (lambda: bon_at_k_per_prompt([np.zeros(3), np.zeros(2)], [np.zeros(3), np.zeros(2)], 3), ValueError,
+         r"ks must be <= n \(n=2\), got ks=3"),
+        (lambda: bon_at_k_per_prompt([np.zeros(3), np.array([])], [np.zeros(3), np.array([])], 1), ValueError,
+         r"scores\[1\] must not be empty"),
+        (lambda: bon_at_k_per_prompt(np.zeros((0, 3)), np.zeros((0, 3)), 1), ValueError, r"scores must not be empty"),
+        (lambda: bon_at_k_per_prompt(np.zeros((2, 3)), np.zeros((2, 3)), []), ValueError, r"ks must not be empty"),
+        (lambda: bootstrap_ci(np.zeros((3, 2)), confidence=1.0), ValueError, r"confidence must be in \(0, 1\)"),
+        (lambda: bootstrap_ci(np.zeros((3, 2)), n_boot=0), ValueError, r"n_boot must be >= 1"),
+        (lambda: bootstrap_ci(np.array([1.0, np.nan])), ValueError, r"values must be finite"),
+        (lambda: summarize(np.zeros((2, 3)), np.zeros((2, 3)), [4]), ValueError, r"ks must be <= n \(n=3\), got ks=4"),
+    ],
+)
+def test_bad_input_names_the_argument(call, exc, match):
+    with pytest.raises(exc, match=match):
+        call()
+
+
+# ----------------------------------------------------------------------------- bootstrap
+
+
+def test_bootstrap_is_seedable_and_orders_bounds():
+    v = np.random.default_rng(0).normal(size=(50, 3))
+    a, b = bootstrap_ci(v, seed=7, n_boot=500), bootstrap_ci(v, seed=7, n_boot=500)
+    for x, y in zip(a, b):
+        np.testing.assert_array_equal(x, y)
+    c = bootstrap_ci(v, seed=8, n_boot=500)
+    assert not np.array_equal(a[1], c[1])
+    mean, lo, hi = a
+    np.testing.assert_allclose(mean, v.mean(0), rtol=1e-12)
+    assert (lo < mean).all() and (mean < hi).all()
+    # percentile interval width ~ 2 * 1.96 * sd / sqrt(P) for a mean (normal approximation, common practice)
+    want = 2 * 1.96 * v.std(0, ddof=1) / math.sqrt(50)
+    np.testing.assert_allclose(hi - lo, want, rtol=0.2)
+
+
+def test_bootstrap_covers_true_mean_at_nominal_rate():
+    # values ~ N(0.3, 1) per prompt, P = 80: a 90% interval should cover 0.3 in about 90% of repeats
+    repeats, hits = 300, 0
+    for rep in range(repeats):
+        v = np.random.default_rng(1000 + rep).normal(0.3, 1.0, size=80)
+        _, lo, hi = bootstrap_ci(v, confidence=0.9, n_boot=400, seed=rep)
+        hits += lo <= 0.3 <= hi
+    share = hits / repeats
+    # binomial sd of the share at 300 repeats is ~0.017; percentile intervals run slightly narrow at P=80
+    assert 0.84 <= share <= 0.95, f"coverage {share:.3f} ({hits}/{repeats}) for nominal 0.90"
+
+
+def test_bootstrap_single_prompt_and_constant_values():
+    mean, lo, hi = bootstrap_ci(np.full((1, 2), 0.25))
+    np.testing.assert_array_equal(mean, [0.25, 0.25])
+    np.testing.assert_array_equal(lo, mean)
+    np.testing.assert_array_equal(hi, mean)
+
+
+# ----------------------------------------------------------------------------- summary
+
+
+def test_default_ks():
+    assert default_ks(1) == [1]
+    assert default_ks(8) == [1, 2, 4, 8]
+    assert default_ks(12) == [1, 2, 4, 8, 12]
+    with pytest.raises(ValueError, match=r"n_min must be >= 1"):
+        default_ks(0)
+
+
+def test_summarize_binary_rewards_table_dict_and_plot(tmp_path):
+    rng = np.random.default_rng(3)
+    P, n = 40, 12
+    r = (rng.random((P, n)) < rng.random((P, 1))).astype(float)
+    s = r + rng.normal(0, 0.7, (P, n))  # an imperfect verifier
+    summ = summarize(s, r, n_boot=300, seed=1)
+    assert isinstance(summ, CurveSummary)
+    assert list(summ.ks) == [1, 2, 4, 8, 12] and summ.n_prompts == P and summ.n_min == n
+    c = r.sum(1).astype(int)
+    want = np.stack([[float(chen_pass_at_k(n, ci, k)) for k in summ.ks] for ci in c])  # Chen et al. 2021
+    np.testing.assert_allclose(summ.per_prompt_oracle, want, rtol=1e-10, atol=1e-12)
+    np.testing.assert_allclose(summ.oracle_mean, want.mean(0), rtol=1e-10)
+    assert (summ.oracle_mean >= summ.bon_mean - 1e-12).all()  # a verifier cannot beat the oracle
+    assert summ.bon_mean[0] == pytest.approx(r.mean(), abs=1e-12)
+    d = summ.to_dict()
+    back = json.loads(json.dumps(d))
+    assert back["ks"] == [1, 2, 4, 8, 12] and len(back["per_prompt_bon"]) == P
+    assert back["oracle_mean"] == pytest.approx(list(want.mean(0)), rel=1e-10)
+    text = summ.table()
+    assert f"prompts: {P}" in text and f"{summ.bon_mean[-1]:.4f}" in text and "95% CI" in text
+    out = summ.plot(tmp_path / "c.png")
+    assert open(out, "rb").read(8) == b"\x89PNG\r\n\x1a\n"
+    plot_curves({"T=0.6": summ, "T=1": summ}, tmp_path / "two.png")
+    assert (tmp_path / "two.png").stat().st_size > 1000
+    with pytest.raises(TypeError, match=r"curves\['x'\] must be a CurveSummary"):
+        plot_curves({"x": 1}, tmp_path / "bad.png")
+
+
+def test_summarize_ragged_pools():
+    rng = np.random.default_rng(4)
+    ss = [rng.normal(size=m) for m in (5, 9, 5, 7)]
+    rr = [rng.integers(0, 2, size=m).astype(float) for m in (5, 9, 5, 7)]
+    summ = summarize(ss, rr, n_boot=100)
+    assert list(summ.ks) == [1, 2, 4, 5] and summ.n_min == 5
+    want = np.stack([[float(brute_bon(list(s), list(r), k)) for k in (1, 2, 4, 5)] for s, r in zip(ss, rr)])
+    np.testing.assert_allclose(summ.per_prompt_bon, want, rtol=1e-10, atol=1e-12)
