@@ -1,0 +1,160 @@
+"""The sandboxed code runner contains the usual attacks and still runs honest candidates.
+
+Expected behaviour is taken from the Linux manual pages: setrlimit(2) (RLIMIT_AS
+makes allocations fail -> Python MemoryError; RLIMIT_NPROC makes fork fail with
+EAGAIN and "is not enforced for processes with CAP_SYS_ADMIN or CAP_SYS_RESOURCE",
+i.e. root -- hence the uid drop), signal(7) (SIGSEGV = 11), kill(2) (pid -1 reaches
+every process the caller may signal), and PEP 578 for the audit hook.
+"""
+import os
+import signal
+
+import numpy as np
+import pytest
+
+from bonft.verifiers import CodeRunner, RunResult
+from bonft.verifiers.sandbox import _pids_of, extract_code
+
+ROOT = os.geteuid() == 0
+OUTSIDE = "/tmp/bonft_sandbox_escape_test.txt"
+
+
+def _children() -> int:
+    """Number of live child processes of this test process (all threads)."""
+    n = 0
+    for tid in os.listdir("/proc/self/task"):
+        with open(f"/proc/self/task/{tid}/children") as f:
+            n += len(f.read().split())
+    return n
+
+
+ATTACKS = {
+    "correct": ("def add(a, b):\n    return a + b", "assert add(2, 3) == 5"),
+    "incorrect": ("def add(a, b):\n    return a - b", "assert add(2, 3) == 5, 'add(2, 3) should be 5'"),
+    "infinite_loop": ("while True:\n    pass", "pass"),
+    "memory_bomb": ("x = ' ' * (2 ** 34)", "pass"),  # 16 GiB > memory_mb=256
+    "fork_bomb": ("import os\nwhile True:\n    os.fork()", "pass"),
+    "ctypes_fork_bomb": ("import ctypes\nlibc = ctypes.CDLL(None)\nwhile True:\n    libc.fork()", "pass"),
+    "huge_output": ("while True:\n    print('x' * 1000)", "pass"),
+    "write_outside": (f"open({OUTSIDE!r}, 'w').write('escaped')", "pass"),
+    "os_open_outside": (f"import os\nos.open({OUTSIDE!r}, os.O_WRONLY | os.O_CREAT)", "pass"),
+    "write_inside": ("open('notes.txt', 'w').write('ok')\nimport os", "assert os.path.exists('notes.txt')"),
+    "read_secret": ("import os\nseen = os.environ.get('BONFT_TEST_SECRET')", "assert seen is None, seen"),
+    "kill_parent": ("import os, signal\nos.kill(os.getppid(), signal.SIGTERM)", "pass"),
+    "exit_3": ("import sys\nsys.exit(3)", "pass"),
+    "exit_0_early": ("import os\nos._exit(0)", "assert False, 'never reached'"),
+    "segfault": ("import ctypes\nctypes.string_at(0)", "pass"),
+    "unprivileged": ("import os\nuid = os.getuid()", "assert uid != 0" if ROOT else "pass"),
+    "after_attacks": ("def add(a, b):\n    return a + b", "assert add(2, 3) == 5"),
+}
+
+
+@pytest.fixture(scope="module")
+def attack_results():
+    if os.path.exists(OUTSIDE):
+        os.remove(OUTSIDE)
+    os.environ["BONFT_TEST_SECRET"] = "hunter2"
+    runner = CodeRunner({}, wall_time=2.0, memory_mb=256, max_processes=4, max_output_bytes=10_000, workers=4)
+    before = _children()
+    try:
+        results = runner.run_code(list(ATTACKS.values()))
+    finally:
+        del os.environ["BONFT_TEST_SECRET"]
+    return runner, dict(zip(ATTACKS, results)), before
+
+
+def _check(res: RunResult, status: str, reason_part: str | None = None) -> None:
+    assert res.status == status, f"expected {status}, got {res.status} ({res.reason}); stderr: {res.stderr[-300:]}"
+    if reason_part is not None:
+        assert reason_part in (res.reason or ""), f"expected {reason_part!r} in reason {res.reason!r}"
+
+
+def test_honest_candidates(attack_results):
+    _, r, _ = attack_results
+    _check(r["correct"], "pass")
+    assert r["correct"].reason is None
+    _check(r["incorrect"], "fail", "AssertionError: add(2, 3) should be 5")
+    _check(r["after_attacks"], "pass")  # the parent keeps working after the attacks
+    _check(r["write_inside"], "pass")   # its own temporary directory is writable
+
+
+def test_time_and_memory(attack_results):
+    runner, r, _ = attack_results
+    _check(r["infinite_loop"], "timeout", "wall time 2 s")
+    assert r["infinite_loop"].wall_s >= 2.0  # not killed before its limit
+    _check(r["memory_bomb"], "limit-exceeded", "MemoryError")
+
+
+def test_fork_bombs_are_contained(attack_results):
+    runner, r, before = attack_results
+    _check(r["fork_bomb"], "limit-exceeded", "process limit (max_processes=4)")
+    # the ctypes bomb bypasses the audit hook; RLIMIT_NPROC bounds it and the wall clock ends it
+    assert r["ctypes_fork_bomb"].status in ("timeout", "limit-exceeded"), r["ctypes_fork_bomb"]
+    assert _children() == before  # every candidate process was reaped
+    if ROOT:
+        leftover = {s: _pids_of(runner._uid0 + s) for s in range(runner.workers)}
+        assert all(not v for v in leftover.values()), f"sandbox processes left: {leftover}"
+
+
+def test_output_is_capped(attack_results):
+    _, r, _ = attack_results
+    _check(r["huge_output"], "limit-exceeded", "stdout over max_output_bytes=10000")
+    assert len(r["huge_output"].stdout) == 10_000
+
+
+def test_files_env_and_signals(attack_results):
+    _, r, _ = attack_results
+    _check(r["write_outside"], "refused", f"write outside the working directory refused ({OUTSIDE})")
+    _check(r["os_open_outside"], "refused", "write outside the working directory refused")
+    assert not os.path.exists(OUTSIDE)
+    _check(r["read_secret"], "pass")  # the assertion in its tests checks the variable was not visible
+    _check(r["kill_parent"], "refused", "signal to a process outside the sandbox refused")
+    _check(r["unprivileged"], "pass")
+
+
+def test_exits_and_crashes(attack_results):
+    _, r, _ = attack_results
+    _check(r["exit_3"], "fail", "exit code 3")
+    _check(r["exit_0_early"], "crashed", "exited with code 0 before the tests finished")
+    # signal(7): SIGSEGV is signal 11; the child dies by it and the exit status is -11
+    _check(r["segfault"], "crashed", "killed by SIGSEGV")
+    assert r["segfault"].returncode == -signal.SIGSEGV == -11
+
+
+def test_verdicts_from_prompts_and_fenced_code():
+    tests = {"write add": "assert add(1, 2) == 3", "write neg": "assert neg(4) == -4"}
+    runner = CodeRunner(tests, wall_time=2.0, memory_mb=256, workers=2)
+    responses = [
+        "Here it is:\n```python\ndef add(a, b):\n    return a + b\n```\nDone.",
+        "def add(a, b):\n    return 3",           # passes this weak test: the tests decide
+        "```py\ndef neg(x):\n    return x\n```",
+        "```python\ndef neg(x:\n```",             # syntax error in the solution
+    ]
+    v = runner(["write add", "write add", "write neg", "write neg"], responses)
+    np.testing.assert_array_equal(v.scores, [1, 1, 0, 0])
+    np.testing.assert_array_equal(v.rewards, v.scores)
+    assert not v.failed.any()  # candidate outcomes are scores, not verifier failures
+    res = runner.run(["write neg"], [responses[3]])
+    _check(res[0], "crashed", "SyntaxError")
+    again = runner(["write add", "write neg"], [responses[0], responses[2]])
+    np.testing.assert_array_equal(again.scores, [1, 0])  # same input, same verdict
+
+
+def test_extract_code():
+    assert extract_code("a\n```python\nx = 1\n```\nb\n```\ny = 2\n```") == "y = 2\n"
+    assert extract_code("x = 3") == "x = 3"
+
+
+def test_runner_arguments_are_validated():
+    with pytest.raises(ValueError, match=r"tests\['p'\] must be valid Python, got a SyntaxError at line 1"):
+        CodeRunner({"p": "assert ("})
+    with pytest.raises(TypeError, match="tests must be a mapping"):
+        CodeRunner(["assert True"])
+    with pytest.raises(ValueError, match="wall_time must be a finite number >= 0.1, got wall_time=0"):
+        CodeRunner({}, wall_time=0)
+    with pytest.raises(ValueError, match=r"workers must be in \[1, 999\], got workers=0"):
+        CodeRunner({}, workers=0)
+    with pytest.raises(TypeError, match="memory_mb must be an int, got float"):
+        CodeRunner({}, memory_mb=256.0)
+    with pytest.raises(ValueError, match="prompts must all have tests; 1 do not, e.g. 'q'"):
+        CodeRunner({"p": "pass"}).run(["q"], ["x = 1"])
