@@ -1,0 +1,145 @@
+"""Held-out evaluation of a policy: best-of-k and pass@k curves with CIs, length, diversity.
+
+:func:`evaluate_policy` samples ``n`` responses for every held-out prompt,
+scores them with each verifier it is given and summarises with
+:func:`bonft.estimate.summarize`:
+
+* ``pass@k`` -- any of k samples correct (oracle, true rewards; Chen et al. 2021),
+* ``best-of-k[name]`` -- the true reward of the sample that verifier ``name``
+  ranks highest among k (Chow et al. 2024), e.g. under the task's imperfect proxy,
+
+both as U-statistics over all k-subsets of the pool with bootstrap CIs over prompts,
+plus the mean response length, the number of distinct extracted answers per
+prompt and an entropy estimate: the mean negative log-probability of a sampled
+response at the sampling temperature, ``H ~= -(1/(P n)) sum_{b,i} log pi_T(y_bi | x_b)``
+(a Monte-Carlo estimate of the sequence-level entropy, in nats).
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Any, Callable, Sequence
+
+import numpy as np
+import torch
+
+
+@dataclass
+class EvalReport:
+    """One evaluation. Curves map a name to ``CurveSummary.to_dict()``-like dicts."""
+
+    step: int
+    ks: list[int]
+    n_prompts: int
+    n_samples: int
+    temperature: float
+    pass_at_k: dict  # {"mean": [...], "lo": [...], "hi": [...]} per k, true rewards
+    best_of_k: dict = field(default_factory=dict)  # verifier name -> {"mean","lo","hi"}
+    mean_reward: float = 0.0  # mean true reward of a single sample
+    mean_length: float = 0.0  # tokens per response, EOS included
+    distinct_answers: float = 0.0  # distinct extracted answers per prompt (None answers count as one)
+    entropy: float = 0.0  # nats per response, mean -log pi_T(y|x)
+    verifier_failures: int = 0
+
+    def to_dict(self) -> dict:
+        return {k: getattr(self, k) for k in self.__dataclass_fields__}
+
+    def table(self) -> str:
+        """A small text table: one row per curve, one column per k."""
+        head = f"{'':18}" + "".join(f"{'k=' + str(k):>20}" for k in self.ks)
+        rows = [head]
+
+        def row(label: str, c: dict) -> str:
+            cells = [f"{m:.3f} [{lo:.3f},{hi:.3f}]" for m, lo, hi in zip(c["mean"], c["lo"], c["hi"])]
+            return f"{label:18}" + "".join(f"{x:>20}" for x in cells)
+
+        rows.append(row("pass@k", self.pass_at_k))
+        for name, c in self.best_of_k.items():
+            rows.append(row(f"best-of-k {name}", c))
+        rows.append(
+            f"distinct answers/prompt {self.distinct_answers:.2f}   entropy {self.entropy:.2f} nats/response   "
+            f"length {self.mean_length:.2f} tokens   ({self.n_prompts} prompts x {self.n_samples} samples, T={self.temperature:g})"
+        )
+        return "\n".join(rows)
+
+
+def _curve(summary: Any, which: str) -> dict:
+    return {
+        "mean": [float(v) for v in getattr(summary, f"{which}_mean")],
+        "lo": [float(v) for v in getattr(summary, f"{which}_lo")],
+        "hi": [float(v) for v in getattr(summary, f"{which}_hi")],
+    }
+
+
+@torch.no_grad()
+def evaluate_policy(
+    model: Any,
+    tokenizer: Any,
+    prompts: Sequence[str],
+    *,
+    verifiers: dict[str, Callable],
+    extract_answer: Callable[[str], Any] | None = None,
+    n: int = 64,
+    ks: Sequence[int] = (1, 4, 16, 32),
+    temperature: float = 1.0,
+    max_new_tokens: int = 8,
+    seed: int = 0,
+    step: int = 0,
+    confidence: float = 0.95,
+    n_boot: int = 1000,
+    rows_per_chunk: int = 4096,
+) -> tuple[EvalReport, dict]:
+    """Sample ``n`` responses per prompt and summarise them.
+
+    prompts: P strings. verifiers: name -> verifier; ``"exact"`` must be present
+    and report true rewards (its scores are ignored: pass@k uses the rewards);
+    every other verifier gives a best-of-k row, selecting by its scores.
+
+    Returns ``(report, raw)``; ``raw`` holds ``texts`` (P lists of n), the
+    ``scores``/``rewards`` (P, n) arrays per verifier and ``n_tokens`` (P, n),
+    which :mod:`bonft.commands.sample` writes out. Internal callers pass
+    validated arguments (the trainer's config, the eval command's options).
+    """
+    from .estimate import summarize
+    from .sampling import sample
+    from .verifiers.scoring import score_batch
+
+    P = len(prompts)
+    smp = sample(model, tokenizer, list(prompts), n=n, temperature=temperature, max_new_tokens=max_new_tokens,
+                 seed=seed, batch_size=rows_per_chunk)
+    flat_prompts = [p for p in prompts for _ in range(n)]  # row b*n + i is sample i of prompt b
+    flat_texts = [t for row in smp.texts for t in row]
+    n_tokens = smp.response_mask.sum(-1).cpu().numpy()  # (P, n)
+    seq_logp = (smp.token_logprobs * smp.response_mask).sum(-1).cpu().double().numpy()  # (P, n)
+
+    raw: dict = {"texts": smp.texts, "n_tokens": n_tokens, "scores": {}, "rewards": None}
+    failures = 0
+    verdicts = {}
+    for name, ver in verifiers.items():
+        v = score_batch(ver, flat_prompts, flat_texts)
+        failures += v.n_failed
+        verdicts[name] = v
+        raw["scores"][name] = v.scores.reshape(P, n)
+    exact = verdicts["exact"]
+    rewards = (exact.rewards if exact.rewards is not None else exact.scores).reshape(P, n)
+    raw["rewards"] = rewards
+
+    ks = [int(k) for k in ks]
+    pass_sum = summarize(rewards, rewards, ks, confidence=confidence, n_boot=n_boot, seed=seed)
+    best = {}
+    for name, v in verdicts.items():
+        if name == "exact":
+            continue
+        s = summarize(v.scores.reshape(P, n), rewards, ks, confidence=confidence, n_boot=n_boot, seed=seed)
+        best[name] = _curve(s, "bon")
+
+    if extract_answer is not None:
+        distinct = np.mean([len({extract_answer(t) for t in row}) for row in smp.texts])
+    else:
+        distinct = np.mean([len(set(row)) for row in smp.texts])
+    report = EvalReport(
+        step=int(step), ks=ks, n_prompts=P, n_samples=n, temperature=float(temperature),
+        pass_at_k=_curve(pass_sum, "oracle"), best_of_k=best,
+        mean_reward=float(rewards.mean()), mean_length=float(n_tokens.mean()),
+        distinct_answers=float(distinct), entropy=float(-seq_logp.mean()), verifier_failures=int(failures),
+    )
+    return report, raw

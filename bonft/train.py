@@ -1,0 +1,422 @@
+"""The trainer: an optional supervised warm start, then RL on any best-of-N-aware objective.
+
+One run is a sequence of global optimizer steps ``0 .. sft_steps + rl_steps - 1``::
+
+    for step in steps:
+        if step < sft_steps:   loss = NLL of reference responses                  (warm start)
+        else:                  sample n per prompt -> score -> credit -> loss     (RL stage)
+        loss.backward(); clip; optimizer.step()
+        evaluate (pass@k, best-of-k under each verifier) / log / checkpoint when due
+
+Everything random in a step is drawn from seeds derived from ``(seed, step, rank)``,
+so a run resumed from any checkpoint ends with the same weights as an
+uninterrupted one (the optimizer state and the RNG states are in the checkpoint).
+
+Ready for ``torch.distributed``: the global batch of prompt indices is the
+same on every rank and each rank takes ``idx[rank::world]`` (a prompt's n
+samples never leave its rank); losses use ``reduction="sum"`` and are divided
+by the GLOBAL number of prompts, so an all-reduce (sum) of gradients gives the
+single-process gradient; every write goes through ``is_main``. The gradient
+all-reduce itself is the one line marked ``DISTRIBUTED`` below.
+
+Caution: the RL stage optimises what the training verifier rewards. A proxy or
+a user verifier that can be gamed (length, format, keywords) will be gamed;
+compare best-of-k under the verifier with pass@k under true rewards (the
+evaluation prints both). Verifiers that execute model-written code must run it
+in a sandbox (see :mod:`bonft.verifiers`) and, better, in a disposable VM.
+"""
+from __future__ import annotations
+
+import json
+import math
+import time
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import torch
+
+from .config import TrainConfig, to_toml
+
+
+# ----------------------------------------------------------------------------- helpers
+def dist_info() -> tuple[int, int]:
+    """(rank, world size); (0, 1) without an initialised process group."""
+    if torch.distributed.is_available() and torch.distributed.is_initialized():
+        return torch.distributed.get_rank(), torch.distributed.get_world_size()
+    return 0, 1
+
+
+def step_seed(seed: int, step: int, rank: int = 0, stream: int = 0) -> int:
+    """A 63-bit seed for one (seed, step, rank, stream); independent streams, no collisions in practice."""
+    return int(np.random.SeedSequence([seed, step, rank, stream]).generate_state(2, np.uint64)[0] >> np.uint64(1))
+
+
+def k_at(cfg: TrainConfig, rl_step: int) -> int:
+    """k of the RL step ``rl_step`` (0-based) under the k schedule; k -> k_final at the last step."""
+    if cfg.k_schedule == "constant" or cfg.k_final == 0 or cfg.rl_steps <= 1:
+        return cfg.k
+    frac = rl_step / (cfg.rl_steps - 1)
+    if cfg.k_schedule == "linear":
+        k = cfg.k + frac * (cfg.k_final - cfg.k)
+    else:  # geometric: equal ratios per step
+        k = math.exp(math.log(cfg.k) + frac * (math.log(cfg.k_final) - math.log(cfg.k)))
+    return int(min(cfg.n, max(1, round(k))))
+
+
+def lr_at(cfg: TrainConfig, step: int) -> float:
+    """SFT: linear warm-up over 5% then cosine to 10%; RL: linear warm-up then constant."""
+    if step < cfg.sft_steps:
+        warm = max(1, cfg.sft_steps // 20)
+        if step < warm:
+            return cfg.sft_lr * (step + 1) / warm
+        frac = (step - warm) / max(1, cfg.sft_steps - warm)
+        return cfg.sft_lr * (0.1 + 0.9 * 0.5 * (1 + math.cos(math.pi * frac)))
+    rl_step = step - cfg.sft_steps
+    if rl_step < cfg.warmup_steps:
+        return cfg.lr * (rl_step + 1) / cfg.warmup_steps
+    return cfg.lr
+
+
+def encode_pairs(tokenizer: Any, prompts: list[str], responses: list[str], device: torch.device):
+    """Prompts left-padded as the sampler encodes them; responses right-padded with EOS appended.
+
+    Returns prompt_ids (B, Tp), prompt_mask (B, Tp), response_ids (B, 1, T), response_mask (B, 1, T).
+    """
+    rows = [list(tokenizer(p)["input_ids"]) for p in prompts]  # BOS + characters, as sample() encodes
+    Tp = max(len(r) for r in rows)
+    pids = torch.full((len(rows), Tp), tokenizer.pad_token_id, dtype=torch.long)
+    pmask = torch.zeros((len(rows), Tp), dtype=torch.long)
+    for b, r in enumerate(rows):  # left padding: the prompt ends where the response starts
+        pids[b, Tp - len(r):] = torch.tensor(r)
+        pmask[b, Tp - len(r):] = 1
+    resp = [tokenizer(r, add_special_tokens=False)["input_ids"] + [tokenizer.eos_token_id] for r in responses]
+    B, T = len(resp), max(len(r) for r in resp)
+    ids = torch.full((B, T), tokenizer.pad_token_id, dtype=torch.long)
+    mask = torch.zeros((B, T), dtype=torch.long)
+    for b, r in enumerate(resp):
+        ids[b, : len(r)] = torch.tensor(r)
+        mask[b, : len(r)] = 1
+    # (B, T) -> (B, 1, T): one "sample" per prompt, the shape sequence_logprobs takes
+    return pids.to(device), pmask.to(device), ids[:, None].to(device), mask[:, None].to(device)
+
+
+@dataclass
+class Run:
+    """What the loop carries: model, tokenizer, optimizer, data, verifiers."""
+
+    cfg: TrainConfig
+    out: Path
+    model: Any
+    tokenizer: Any
+    task: Any
+    train: list
+    eval: list
+    verifiers: dict  # "train" + evaluation verifiers ("exact", "proxy", user name)
+    device: torch.device
+    rank: int = 0
+    world: int = 1
+    optimizer: Any = None
+    ref_model: Any = None
+
+    @property
+    def is_main(self) -> bool:
+        return self.rank == 0
+
+
+def _make_optimizer(run: Run) -> torch.optim.Optimizer:
+    return torch.optim.AdamW(run.model.parameters(), lr=run.cfg.lr, weight_decay=run.cfg.weight_decay)
+
+
+def _prompt_batch(cfg: TrainConfig, step: int, size: int, n_items: int, rank: int, world: int) -> np.ndarray:
+    """This rank's share of the step's global batch: same global draw everywhere, rank takes idx[rank::world]."""
+    rng = np.random.default_rng(step_seed(cfg.seed, step, 0, stream=1))
+    idx = rng.choice(n_items, size=size, replace=size > n_items)
+    return idx[rank::world]
+
+
+# ----------------------------------------------------------------------------- the two steps
+def sft_step(run: Run, step: int) -> dict:
+    """Warm start: NLL (sum over tokens) of reference responses, divided by the global batch size."""
+    from .losses import nll_loss
+    from .sampling import sequence_logprobs
+
+    cfg = run.cfg
+    B = cfg.sft_batch_size
+    idx = _prompt_batch(cfg, step, B, len(run.train), run.rank, run.world)
+    ex = [run.train[i] for i in idx]
+    pids, pmask, rids, rmask = encode_pairs(run.tokenizer, [e.prompt for e in ex], [e.reference for e in ex], run.device)
+    logp = sequence_logprobs(run.model, pids, pmask, rids, rmask)  # (b, 1, T)
+    # (b, 1, T) -> (b, T): one reference response per prompt
+    loss, info = nll_loss(logp[:, 0], mask=rmask[:, 0], token_reduction="sum", reduction="sum")
+    (loss / B).backward()
+    nll = float(loss.detach())
+    return {"loss": nll / B, "nll_per_token": nll / float(rmask.sum())}
+
+
+def _objective(cfg: TrainConfig, k: int, logp, mask, scores, rewards, ref_logp, sft_terms):
+    """Dispatch to bonft.losses with reduction='sum' (the caller divides by the global batch)."""
+    from . import losses as L
+
+    t = torch.as_tensor
+    kw: dict = {"mask": mask, "token_reduction": cfg.token_reduction, "reduction": "sum"}
+    if ref_logp is not None:
+        kw.update(ref_logprobs=ref_logp, kl_coef=cfg.kl_coef)
+    correct = t(rewards >= cfg.correct_threshold)
+    if cfg.objective == "loo_reinforce":
+        return L.reinforce_loss(logp, t(rewards), baseline="loo", **kw)
+    if cfg.objective == "best_of_k":
+        return L.bon_rl_loss(logp, t(scores), t(rewards), k=k, baseline="loo", **kw)
+    if cfg.objective.startswith("pass_at_k"):
+        est = "plugin" if cfg.objective == "pass_at_k_plugin" else "unbiased"
+        return L.pass_at_k_loss(logp, correct, k=k, estimator=est, positive_only=cfg.objective == "pass_at_k_positive", **kw)
+    expert_logp, expert_mask, expert_scores = sft_terms  # best_of_k_sft
+    return L.bon_sft_loss(expert_logp, logp, t(scores), t(expert_scores), k=k, expert_mask=expert_mask, **kw)
+
+
+def rl_step(run: Run, step: int) -> dict:
+    """Sample n per prompt -> score -> credit -> loss -> backward, over grad_accum micro-batches."""
+    from .sampling import sample, sequence_logprobs
+    from .verifiers.scoring import score_batch
+
+    cfg, n, T = run.cfg, run.cfg.n, run.cfg.temperature
+    B = cfg.prompts_per_step
+    k = k_at(cfg, step - cfg.sft_steps)
+    idx = _prompt_batch(cfg, step, B, len(run.train), run.rank, run.world)
+    tm = {"sample": 0.0, "score": 0.0, "forward_backward": 0.0}
+    acc: dict = {}
+    for j, mb in enumerate(np.array_split(idx, cfg.grad_accum)):
+        ex = [run.train[i] for i in mb]
+        prompts = [e.prompt for e in ex]
+        t0 = time.perf_counter()
+        smp = sample(run.model, run.tokenizer, prompts, n=n, temperature=T, top_p=cfg.top_p,
+                     max_new_tokens=cfg.max_new_tokens, seed=step_seed(cfg.seed, step, run.rank, stream=10 + j))
+        t1 = time.perf_counter()
+        flat_p = [p for p in prompts for _ in range(n)]  # row b*n + i is sample i of prompt b
+        v = score_batch(run.verifiers["train"], flat_p, [s for row in smp.texts for s in row])
+        b = len(ex)
+        scores = v.scores.reshape(b, n)
+        use_scores = cfg.reward_source == "scores" or v.rewards is None
+        rewards = (v.scores if use_scores else v.rewards).reshape(b, n)
+        sft_terms = None
+        if cfg.objective == "best_of_k_sft":
+            ev = score_batch(run.verifiers["train"], prompts, [e.reference for e in ex])
+            pids, pmask, rids, rmask = encode_pairs(run.tokenizer, prompts, [e.reference for e in ex], run.device)
+            elp = sequence_logprobs(run.model, pids, pmask, rids, rmask)
+            sft_terms = [elp[:, 0], rmask[:, 0], ev.scores]  # (b, 1, T) -> (b, T): the expert response
+        t2 = time.perf_counter()
+        logp = sequence_logprobs(run.model, smp.prompt_ids, smp.prompt_mask, smp.response_ids, smp.response_mask, temperature=T)
+        ref_logp = None
+        if run.ref_model is not None:
+            with torch.no_grad():
+                ref_logp = sequence_logprobs(run.ref_model, smp.prompt_ids, smp.prompt_mask, smp.response_ids,
+                                             smp.response_mask, temperature=T)
+        loss, info = _objective(cfg, k, logp, smp.response_mask, scores, rewards, ref_logp, sft_terms)
+        (loss / B).backward()
+        tm["sample"] += t1 - t0
+        tm["score"] += t2 - t1
+        tm["forward_backward"] += time.perf_counter() - t2
+        for key, val in [("loss", float(loss.detach()) / B), ("reward", float(rewards.mean()) * b / B),
+                         ("score", float(scores.mean()) * b / B), ("verifier_failures", v.n_failed)]:
+            acc[key] = acc.get(key, 0.0) + val
+        for key, val in info.items():
+            acc[f"info/{key}"] = acc.get(f"info/{key}", 0.0) + float(val) * b / B
+    acc.update({"k": k, **{f"time/{key}": val for key, val in tm.items()}})
+    return acc
+
+
+# ----------------------------------------------------------------------------- setup
+def build_run(cfg: TrainConfig) -> Run:
+    """Task, data split, verifiers, model and tokenizer for ``cfg`` (no optimizer yet)."""
+    from .models import build_tiny_model, load_model, pick_device
+    from .tasks import build_tokenizer, get_task
+    from .verifiers.scoring import load_verifier
+
+    rank, world = dist_info()
+    device = pick_device(cfg.device)
+    extra = {"path": cfg.prompts_file} if cfg.task == "jsonl" else {}
+    task = get_task(cfg.task, **extra, **cfg.task_params)
+    train, held = task.split(n_train=cfg.n_train, n_eval=cfg.n_eval, seed=cfg.seed)
+    everything = list(train) + list(held)
+    verifiers = {"exact": task.verifier(everything)}
+    proxy = task.proxy_verifier(everything) if hasattr(task, "proxy_verifier") else None
+    if proxy is not None:
+        verifiers["proxy"] = proxy
+    if cfg.verifier in ("exact", "proxy"):
+        if cfg.verifier not in verifiers:
+            raise ValueError(f"verifier='proxy' needs a task with a proxy verifier; task {cfg.task!r} has none")
+        verifiers["train"] = verifiers[cfg.verifier]
+    else:
+        verifiers["train"] = verifiers[cfg.verifier] = load_verifier(cfg.verifier)
+    if cfg.init_from:
+        model, tokenizer = load_model(cfg.init_from, device=device)
+    else:
+        tokenizer = build_tokenizer()
+        model = build_tiny_model(
+            cfg.arch, vocab_size=len(tokenizer), n_layer=cfg.n_layer, d_model=cfg.d_model, n_head=cfg.n_head,
+            max_positions=cfg.max_positions, seed=cfg.seed, pad_token_id=tokenizer.pad_token_id,
+            eos_token_id=tokenizer.eos_token_id, bos_token_id=tokenizer.bos_token_id,
+        ).to(device)
+    return Run(cfg=cfg, out=Path(cfg.out_dir), model=model, tokenizer=tokenizer, task=task, train=list(train),
+               eval=list(held), verifiers=verifiers, device=device, rank=rank, world=world)
+
+
+def evaluate_run(run: Run, step: int):
+    """Evaluate on the held-out prompts (same prompts and seed at every evaluation)."""
+    from .evaluation import evaluate_policy
+
+    cfg = run.cfg
+    held = run.eval[: cfg.eval_prompts or len(run.eval)]
+    vers = {name: v for name, v in run.verifiers.items() if name != "train"}
+    report, _ = evaluate_policy(
+        run.model, run.tokenizer, [e.prompt for e in held], verifiers=vers,
+        extract_answer=getattr(run.task, "extract_answer", None), n=cfg.eval_n, ks=cfg.eval_ks,
+        temperature=cfg.eval_temperature, max_new_tokens=cfg.max_new_tokens,
+        seed=step_seed(cfg.seed, 0, 0, stream=2), step=step, confidence=cfg.confidence, n_boot=cfg.n_boot,
+    )
+    return report
+
+
+# ----------------------------------------------------------------------------- the loop
+def train(cfg: TrainConfig, *, resume: bool = False, progress: bool = True) -> dict:
+    """Run (or resume) a training run; returns the summary also written to ``OUT/summary.json``.
+
+    Ctrl-C writes a checkpoint of the last completed step before re-raising ``KeyboardInterrupt``.
+    """
+    from tqdm.auto import tqdm
+
+    from .checkpoint import latest_checkpoint, load_state, save_checkpoint, set_rng_state
+    from .models import load_model, save_model
+
+    if not isinstance(cfg, TrainConfig):
+        raise TypeError(f"cfg must be a TrainConfig, got {type(cfg).__name__}")
+    torch.set_num_threads(cfg.threads or max(1, min(2, torch.get_num_threads())))
+    run = build_run(cfg)
+    out, total = run.out, cfg.total_steps
+    metrics_path = out / "metrics.jsonl"
+    start, state = 0, None
+    ckpt = latest_checkpoint(out) if resume else None
+    if resume and ckpt is None and (out / "summary.json").exists():
+        raise ValueError(f"--resume: {out} holds a finished run without checkpoints")
+    if ckpt is not None:
+        state = load_state(ckpt)
+        start = state["step"]
+        run.model, run.tokenizer = load_model(ckpt, device=run.device)
+    elif run.is_main and (out / "checkpoints").exists() and not resume:
+        raise ValueError(f"out_dir {str(out)!r} already holds checkpoints; pass --resume or choose another --out")
+    if run.is_main:
+        out.mkdir(parents=True, exist_ok=True)
+        (out / "config.toml").write_text(to_toml(cfg))
+        kept = []
+        if ckpt is not None and metrics_path.exists():  # drop lines of work after the checkpoint (it is redone)
+            kept = [ln for ln in metrics_path.read_text().splitlines() if ln and json.loads(ln)["step"] <= start]
+        metrics_path.write_text("".join(ln + "\n" for ln in kept))
+
+    def log(rec: dict) -> None:
+        if run.is_main:
+            with open(metrics_path, "a") as fh:
+                fh.write(json.dumps(rec) + "\n")
+
+    def stage_of(s: int) -> str:
+        return "sft" if s < cfg.sft_steps else "rl"
+
+    def enter_stage(s: int, opt_state: dict | None) -> None:
+        run.optimizer = _make_optimizer(run)
+        if opt_state is not None:
+            run.optimizer.load_state_dict(opt_state)
+        if stage_of(s) == "rl" and cfg.kl_coef > 0:  # reference = the policy at the start of RL, kept on disk
+            ref_dir = out / "rl_start"
+            if not (ref_dir / "model").is_dir():
+                if run.is_main:
+                    save_model(run.model, run.tokenizer, ref_dir)
+            run.ref_model, _ = load_model(ref_dir, device=run.device)
+            run.ref_model.requires_grad_(False)
+
+    same_stage = state is not None and state["extra"].get("stage") == stage_of(start) and start < total
+    enter_stage(start, state["optimizer"] if same_stage else None)
+    if state is not None:
+        set_rng_state(state["rng"])
+
+    def save(s: int) -> None:
+        if run.is_main:
+            save_checkpoint(out, step=s, model=run.model, tokenizer=run.tokenizer, optimizer=run.optimizer,
+                            config_toml=to_toml(cfg), extra={"stage": stage_of(s - 1) if s else "sft"},
+                            keep=cfg.keep_checkpoints)
+
+    def eval_due(s: int) -> bool:
+        if s == total:
+            return True
+        if cfg.rl_steps == 0 or s < cfg.sft_steps:
+            return False
+        if s == cfg.sft_steps:
+            return cfg.eval_at_start
+        return bool(cfg.eval_every) and (s - cfg.sft_steps) % cfg.eval_every == 0
+
+    reports = []
+
+    def do_eval(s: int) -> None:
+        rep = evaluate_run(run, s)
+        reports.append(rep)
+        log({"kind": "eval", **rep.to_dict()})
+        if progress and run.is_main:
+            tqdm.write(f"[eval @ step {s}]\n{rep.table()}")
+
+    if start == 0 and eval_due(0) and total > 0:
+        do_eval(0)
+    bar = tqdm(total=total, initial=start, desc=cfg.name, disable=not (progress and run.is_main), dynamic_ncols=True)
+    s, in_update = start, False
+    try:
+        while s < total:
+            if s == cfg.sft_steps and s > start:  # warm start done: fresh optimizer for the RL stage
+                enter_stage(s, None)
+            torch.manual_seed(step_seed(cfg.seed, s, run.rank, stream=3))  # anything else random in the step
+            for g in run.optimizer.param_groups:
+                g["lr"] = lr_at(cfg, s)
+            run.model.train()
+            run.optimizer.zero_grad(set_to_none=True)
+            t0 = time.perf_counter()
+            rec = sft_step(run, s) if s < cfg.sft_steps else rl_step(run, s)
+            # DISTRIBUTED: all-reduce (sum) every p.grad here; the losses are already divided by the global batch.
+            if cfg.clip_grad_norm > 0:
+                rec["grad_norm"] = float(torch.nn.utils.clip_grad_norm_(run.model.parameters(), cfg.clip_grad_norm))
+            in_update = True  # an interrupt inside optimizer.step() leaves half-updated weights: do not save those
+            run.optimizer.step()
+            s += 1
+            in_update = False
+            run.model.eval()
+            rec.update({"kind": "train", "stage": stage_of(s - 1), "step": s, "lr": lr_at(cfg, s - 1),
+                        "time/step": time.perf_counter() - t0})
+            if not math.isfinite(rec["loss"]):
+                save(s - 1) if s - 1 > start else None
+                raise ValueError(f"the loss is not finite at step {s} ({rec['loss']}); lower lr (now {rec['lr']:.3g}) or check the verifier")
+            if s % cfg.log_every == 0 or s == total or s == cfg.sft_steps:
+                log(rec)
+            bar.update(1)
+            bar.set_postfix({key: f"{rec[key]:.3g}" for key in ("loss", "reward", "k") if key in rec}, refresh=False)
+            if eval_due(s):
+                do_eval(s)
+            if s == total or s == cfg.sft_steps or (cfg.save_every and s % cfg.save_every == 0):
+                save(s)
+    except KeyboardInterrupt:
+        bar.close()
+        if s > start and not in_update:
+            save(s)
+            if run.is_main:
+                print(f"\ninterrupted: checkpoint of step {s} written to {out}/checkpoints; continue with --resume")
+        raise
+    bar.close()
+    summary = {"name": cfg.name, "steps": total, "out_dir": str(out),
+               "evaluations": [r.to_dict() for r in reports] if reports else []}
+    if run.is_main:
+        # keep evaluations from before a resume too: they are in metrics.jsonl
+        evals = [json.loads(ln) for ln in metrics_path.read_text().splitlines() if ln and '"kind": "eval"' in ln]
+        summary["evaluations"] = evals
+        (out / "summary.json").write_text(json.dumps(summary, indent=1))
+        if cfg.plots and evals:
+            from .plots import plot_evaluations
+
+            plot_evaluations(evals, out / "curves.png", title=cfg.name)
+        if progress and reports:
+            print(f"\n{cfg.name}: final evaluation at step {reports[-1].step}\n{reports[-1].table()}")
+    return summary

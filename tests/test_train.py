@@ -1,0 +1,150 @@
+"""The trainer end to end on a tiny config: both stages, resume equivalence (Ctrl-C and kill -9)."""
+import json
+import os
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import pytest
+import torch
+from safetensors.torch import load_file
+
+import bonft.train as T
+from bonft.checkpoint import latest_checkpoint, load_state
+from bonft.config import from_dict, to_toml
+
+TINY = dict(
+    n_layer=1, d_model=32, n_head=2, max_positions=48, n_train=64, n_eval=6, sft_steps=4, sft_batch_size=8,
+    sft_lr=1e-2, rl_steps=4, prompts_per_step=4, n=4, k=2, lr=1e-2, eval_n=4, eval_ks=[1, 4], n_boot=50,
+    log_every=1, save_every=2, max_new_tokens=6, plots=False, eval_at_start=False, threads=1,
+)
+
+
+def tiny(tmp_path, name="run", **kw):
+    return from_dict({**TINY, "out_dir": str(tmp_path / name), "name": name, **kw})
+
+
+def final_weights(out) -> dict:
+    return load_file(str(latest_checkpoint(out) / "model" / "model.safetensors"))
+
+
+def assert_same_weights(a: dict, b: dict) -> None:
+    assert a.keys() == b.keys()
+    for key in a:
+        assert torch.equal(a[key], b[key]), key
+
+
+@pytest.fixture(scope="module")
+def reference(tmp_path_factory):
+    """One uninterrupted run, shared by the resume tests."""
+    tmp = tmp_path_factory.mktemp("ref")
+    cfg = tiny(tmp, "ref")
+    summary = T.train(cfg, progress=False)
+    return cfg, summary, final_weights(cfg.out_dir)
+
+
+def test_end_to_end_writes_everything(reference):
+    cfg, summary, weights = reference
+    out = Path(cfg.out_dir)
+    lines = [json.loads(ln) for ln in (out / "metrics.jsonl").read_text().splitlines()]
+    train_lines = [r for r in lines if r["kind"] == "train"]
+    assert [r["step"] for r in train_lines] == list(range(1, 9))
+    assert [r["stage"] for r in train_lines] == ["sft"] * 4 + ["rl"] * 4
+    # the warm start lowers the NLL of the reference responses from its random-init value;
+    # a uniform guess over the ~90-character vocabulary costs ln(90) ~ 4.5 nats/token (common practice)
+    assert train_lines[0]["nll_per_token"] > 3.5
+    assert train_lines[3]["nll_per_token"] < train_lines[0]["nll_per_token"]
+    rl = train_lines[4]
+    assert {"time/sample", "time/score", "time/forward_backward", "reward", "k", "grad_norm"} <= rl.keys()
+    (ev,) = [r for r in lines if r["kind"] == "eval"]
+    assert ev["step"] == 8 and ev["ks"] == [1, 4] and ev["n_prompts"] == 6 and "proxy" in ev["best_of_k"]
+    assert 0.0 <= ev["pass_at_k"]["mean"][0] <= ev["pass_at_k"]["mean"][1] <= 1.0  # pass@k grows with k
+    assert 1.0 <= ev["distinct_answers"] <= 4.0 and ev["entropy"] > 0 and 1 <= ev["mean_length"] <= 6
+    assert json.loads((out / "summary.json").read_text())["steps"] == 8
+    state = load_state(latest_checkpoint(out))
+    assert state["step"] == 8 and state["extra"]["stage"] == "rl" and state["optimizer"]["state"]
+    assert (latest_checkpoint(out) / "tokenizer").is_dir() and (latest_checkpoint(out) / "config.toml").is_file()
+
+
+def test_same_seed_same_weights_and_seed_matters(tmp_path, reference):
+    cfg, _, weights = reference
+    again = tiny(tmp_path, "again")
+    T.train(again, progress=False)
+    assert_same_weights(final_weights(again.out_dir), weights)
+
+
+def test_ctrl_c_writes_checkpoint_and_resume_is_exact(tmp_path, reference, monkeypatch):
+    _, _, weights = reference
+    cfg = tiny(tmp_path, "interrupted", save_every=0)  # only the Ctrl-C checkpoint (and the stage boundary)
+    real = T.rl_step
+
+    def interrupt_at_6(run, step):
+        if step == 6:
+            raise KeyboardInterrupt
+        return real(run, step)
+
+    monkeypatch.setattr(T, "rl_step", interrupt_at_6)
+    with pytest.raises(KeyboardInterrupt):
+        T.train(cfg, progress=False)
+    assert load_state(latest_checkpoint(cfg.out_dir))["step"] == 6
+    monkeypatch.setattr(T, "rl_step", real)
+    T.train(cfg, resume=True, progress=False)
+    assert_same_weights(final_weights(cfg.out_dir), weights)
+    steps = [json.loads(ln)["step"] for ln in (Path(cfg.out_dir) / "metrics.jsonl").read_text().splitlines()
+             if '"train"' in ln]
+    assert steps == list(range(1, 9))  # no step logged twice, none lost
+
+
+def test_kill_9_then_resume_is_exact(tmp_path, reference):
+    _, _, weights = reference
+    cfg = tiny(tmp_path, "killed", save_every=1)
+    recipe = tmp_path / "killed.toml"
+    recipe.write_text(to_toml(cfg))
+    cmd = [sys.executable, "-m", "bonft.cli", "train", str(recipe), "--quiet"]
+    proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
+    killed_at = None
+    deadline = time.monotonic() + 120
+    while time.monotonic() < deadline and proc.poll() is None:
+        ck = latest_checkpoint(cfg.out_dir)
+        if ck is not None and int(ck.name.split("-")[1]) >= 2:
+            os.kill(proc.pid, signal.SIGKILL)
+            killed_at = int(ck.name.split("-")[1])
+            break
+        time.sleep(0.02)
+    proc.wait()
+    assert killed_at is not None, f"the run ended before it could be killed: {proc.stderr.read().decode()[-500:]}"
+    assert proc.returncode == -signal.SIGKILL
+    assert load_state(latest_checkpoint(cfg.out_dir))["step"] < 8
+    done = subprocess.run(cmd + ["--resume"], capture_output=True, text=True)
+    assert done.returncode == 0, done.stderr[-2000:]
+    assert_same_weights(final_weights(cfg.out_dir), weights)
+
+
+def test_refuses_to_overwrite_a_run(tmp_path, reference):
+    cfg, _, _ = reference
+    with pytest.raises(ValueError, match="already holds checkpoints; pass --resume"):
+        T.train(cfg, progress=False)
+
+
+@pytest.mark.parametrize(
+    "schedule, k, k_final, expect",
+    [("constant", 8, 0, [8, 8, 8, 8, 8]), ("linear", 16, 1, [16, 12, 8, 5, 1]), ("geometric", 16, 1, [16, 8, 4, 2, 1])],
+)
+def test_k_schedule(tmp_path, schedule, k, k_final, expect):
+    # geometric: 16 * (1/16)^(t/4) = 16, 8, 4, 2, 1 (hand computed); linear: 16 - 15 t / 4 rounded
+    cfg = tiny(tmp_path, rl_steps=5, n=16, k=k, k_final=k_final, k_schedule=schedule)
+    assert [T.k_at(cfg, t) for t in range(5)] == expect
+
+
+def test_step_seeds_differ_by_step_and_rank():
+    seeds = {T.step_seed(0, s, r) for s in range(50) for r in range(4)}
+    assert len(seeds) == 200 and T.step_seed(0, 3, 1) == T.step_seed(0, 3, 1)
+
+
+def test_prompt_sharding_keeps_the_global_batch(tmp_path):
+    cfg = tiny(tmp_path)
+    whole = T._prompt_batch(cfg, 5, 8, 64, 0, 1)
+    parts = [T._prompt_batch(cfg, 5, 8, 64, r, 2) for r in range(2)]
+    assert sorted(whole.tolist()) == sorted(parts[0].tolist() + parts[1].tolist())
