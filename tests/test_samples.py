@@ -1,0 +1,173 @@
+"""bonft.samples: the samples JSONL format, checked against the standard-library json module."""
+import json
+import os
+
+import numpy as np
+import pytest
+
+from bonft.examples import example_samples_path, ledger_rows
+from bonft.samples import SampleTable, group_pools, read_samples, temperatures_of, write_samples
+
+
+def write_lines(path, lines):
+    path.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    return path
+
+
+ROWS = [
+    {"prompt_id": "a", "score": 0.5, "reward": 1, "temperature": 0.7, "n_tokens": 12, "response": "x = 1"},
+    {"prompt_id": "b", "score": -1.25, "reward": 0.0, "temperature": 0.7, "n_tokens": 30},
+    {"prompt_id": "a", "score": 2.0, "reward": False, "temperature": 1.0, "n_tokens": 7},
+    {"prompt_id": 3, "score": 1, "reward": True, "temperature": 1.0, "n_tokens": 9},
+]
+
+
+def test_round_trip_matches_stdlib_json(tmp_path):
+    p = tmp_path / "s.jsonl"
+    assert write_samples(p, ROWS) == 4
+    # the file is plain JSON Lines: the standard library reads back exactly what we wrote
+    back = [json.loads(line) for line in p.read_text().splitlines()]
+    assert back == ROWS
+    t = read_samples(p)
+    assert isinstance(t, SampleTable) and len(t) == 4
+    assert list(t.prompt_ids) == ["a", "b", "a", "3"]
+    np.testing.assert_array_equal(t.scores, [0.5, -1.25, 2.0, 1.0])
+    np.testing.assert_array_equal(t.rewards, [1.0, 0.0, 0.0, 1.0])
+    np.testing.assert_array_equal(t.temperatures, [0.7, 0.7, 1.0, 1.0])
+    np.testing.assert_array_equal(t.n_tokens, [12, 30, 7, 9])
+    assert t.scores.dtype == np.float64 and t.n_tokens.dtype == np.int64
+    assert temperatures_of(t) == [0.7, 1.0]
+
+
+def test_numpy_scalars_are_written_as_plain_numbers(tmp_path):
+    p = tmp_path / "s.jsonl"
+    write_samples(p, [{"prompt_id": np.int64(4), "score": np.float32(0.5), "reward": np.float64(1.0)}])
+    assert json.loads(p.read_text()) == {"prompt_id": 4, "score": 0.5, "reward": 1.0}
+
+
+def test_optional_columns_absent_and_blank_lines(tmp_path):
+    p = write_lines(tmp_path / "s.jsonl", ['{"prompt_id": "a", "score": 1, "reward": 0}', "", "  ",
+                                           '{"prompt_id": "a", "score": 2, "reward": 1}'])
+    t = read_samples(p)
+    assert len(t) == 2 and t.temperatures is None and t.n_tokens is None
+    assert temperatures_of(t) == []
+    keys, s, r = group_pools(t)
+    assert keys == ["a"] and list(s[0]) == [1.0, 2.0] and list(r[0]) == [0.0, 1.0]
+
+
+def test_renamed_fields(tmp_path):
+    p = write_lines(tmp_path / "s.jsonl", [
+        json.dumps({"task": "q1", "rm": 0.2, "ok": 1, "temp": 0.5, "len": 4}),
+        json.dumps({"task": "q1", "rm": 0.9, "ok": 0, "temp": 0.5, "len": 8}),
+    ])
+    t = read_samples(p, prompt_field="task", score_field="rm", reward_field="ok",
+                     temperature_field="temp", tokens_field="len")
+    assert list(t.prompt_ids) == ["q1", "q1"]
+    np.testing.assert_array_equal(t.scores, [0.2, 0.9])
+    np.testing.assert_array_equal(t.rewards, [1.0, 0.0])
+    np.testing.assert_array_equal(t.temperatures, [0.5, 0.5])
+    np.testing.assert_array_equal(t.n_tokens, [4, 8])
+    with pytest.raises(ValueError, match=r"s.jsonl line 1: missing field 'score' \(fields there: len, ok, rm, task, temp\); "
+                                         r"if the file calls it something else, pass score_field=NAME \(--score-field NAME"):
+        read_samples(p, prompt_field="task")
+
+
+@pytest.mark.parametrize(
+    "bad,match",
+    [
+        ('{"prompt_id": "a", "score": 1, reward: 0}', r"bad.jsonl line 3: not valid JSON"),
+        ('[1, 2]', r"bad.jsonl line 3: expected a JSON object, got list"),
+        ('{"prompt_id": "a", "score": 1, "reward": 0}, {"prompt_id": "a", "score": 1, "reward": 0}',
+         r"bad.jsonl line 3: not valid JSON"),
+        ('{"prompt_id": "a", "score": "high", "reward": 0}', r"bad.jsonl line 3: field 'score' must be a number, got 'high'"),
+        ('{"prompt_id": "a", "score": NaN, "reward": 0}', r"bad.jsonl line 3: field 'score' must be finite, got nan"),
+        ('{"prompt_id": "a", "score": 1, "reward": Infinity}', r"bad.jsonl line 3: field 'reward' must be finite"),
+        ('{"prompt_id": "a", "score": true, "reward": 0}', r"bad.jsonl line 3: field 'score' must be a number, got True"),
+        ('{"prompt_id": 1.5, "score": 1, "reward": 0}', r"bad.jsonl line 3: field 'prompt_id' must be a string or an integer"),
+        ('{"prompt_id": "a", "score": 1}', r"bad.jsonl line 3: missing field 'reward'.*reward_field=NAME"),
+        ('{"prompt_id": "a", "score": 1, "reward": 0, "temperature": 1.0}',
+         r"bad.jsonl line 1: missing field 'temperature'.*temperature_field=NAME"),
+        ('{"prompt_id": "a", "score": 1, "reward": 0, "n_tokens": 2.5}', r"line 1: missing field 'n_tokens'"),
+    ],
+)
+def test_malformed_line_reports_its_number(tmp_path, bad, match):
+    good = '{"prompt_id": "a", "score": 1, "reward": 0}'
+    p = write_lines(tmp_path / "bad.jsonl", [good, "", bad, good])  # the bad one is line 3 (line 2 blank)
+    with pytest.raises(ValueError, match=match):
+        read_samples(p)
+
+
+def test_tokens_must_be_integers(tmp_path):
+    p = write_lines(tmp_path / "t.jsonl", ['{"prompt_id": "a", "score": 1, "reward": 0, "n_tokens": 2.5}'])
+    with pytest.raises(ValueError, match=r"t.jsonl line 1: field 'n_tokens' must be an integer, got 2.5"):
+        read_samples(p)
+
+
+def test_empty_and_missing_files(tmp_path):
+    p = write_lines(tmp_path / "e.jsonl", [""])
+    with pytest.raises(ValueError, match=r"e.jsonl: no samples"):
+        read_samples(p)
+    with pytest.raises(FileNotFoundError):
+        read_samples(tmp_path / "nope.jsonl")
+    with pytest.raises(TypeError, match=r"score_field must be a non-empty str, got 3"):
+        read_samples(p, score_field=3)
+
+
+def test_write_is_atomic_and_refuses_bad_rows(tmp_path):
+    p = tmp_path / "s.jsonl"
+    write_samples(p, ROWS)
+    before = p.read_bytes()
+
+    def rows():
+        yield ROWS[0]
+        yield {"prompt_id": "a", "score": float("nan"), "reward": 1}
+
+    with pytest.raises(ValueError, match=r"rows\[1\]\['score'\] must be finite, got nan"):
+        write_samples(p, rows())
+    assert p.read_bytes() == before  # the good file survives a failed write
+    assert os.listdir(tmp_path) == ["s.jsonl"]  # and no temporary file is left behind
+    with pytest.raises(ValueError, match=r"rows\[0\] must have the field 'reward'"):
+        write_samples(p, [{"prompt_id": "a", "score": 1.0}])
+    with pytest.raises(TypeError, match=r"rows\[0\] must be a dict, got list"):
+        write_samples(p, [[1, 2]])
+    with pytest.raises(TypeError, match=r"rows\[0\]\['score'\] must be a number, got str"):
+        write_samples(p, [{"prompt_id": "a", "score": "1", "reward": 0}])
+    assert p.read_bytes() == before
+
+
+def test_group_pools_by_prompt_and_temperature(tmp_path):
+    p = tmp_path / "s.jsonl"
+    write_samples(p, ROWS)
+    t = read_samples(p)
+    with pytest.raises(ValueError, match=r"temperature must pick one of the table's temperatures \[0.7, 1.0\]"):
+        group_pools(t)
+    keys, s, r = group_pools(t, temperature=1.0)
+    assert keys == ["a", "3"]
+    assert [list(x) for x in s] == [[2.0], [1.0]] and [list(x) for x in r] == [[0.0], [1.0]]
+    keys, s, r = group_pools(t, temperature=0.7)
+    assert keys == ["a", "b"]
+    with pytest.raises(ValueError, match=r"temperature must be one of \[0.7, 1.0\], got 0.5"):
+        group_pools(t, temperature=0.5)
+    with pytest.raises(TypeError, match=r"table must be a SampleTable"):
+        temperatures_of({"scores": []})
+
+
+def test_group_pools_keeps_first_appearance_order_and_file_order():
+    t = SampleTable(prompt_ids=np.array(["z", "y", "z", "x", "y", "z"]), scores=np.arange(6.0), rewards=-np.arange(6.0))
+    keys, s, r = group_pools(t)
+    assert keys == ["z", "y", "x"]
+    assert [list(x) for x in s] == [[0.0, 2.0, 5.0], [1.0, 4.0], [3.0]]
+    assert [list(x) for x in r] == [[-0.0, -2.0, -5.0], [-1.0, -4.0], [-3.0]]
+
+
+def test_bundled_example_is_reproducible_and_well_formed():
+    path = example_samples_path()
+    lines = open(path, encoding="utf-8").read().splitlines()
+    # regenerating from the committed script gives the committed file, line for line
+    assert [json.loads(x) for x in lines] == ledger_rows()
+    t = read_samples(path)
+    assert len(t) == 6400 and temperatures_of(t) == [0.6, 1.0]
+    keys, s, r = group_pools(t, temperature=0.6)
+    assert len(keys) == 200 and {len(x) for x in s} == {16}
+    assert set(np.unique(t.rewards)) <= {0.0, 1.0}
+    assert os.path.getsize(path) < 700_000
