@@ -1,0 +1,84 @@
+"""`bonft estimate` end to end on the bundled example and on small files."""
+import json
+import math
+import re
+from collections import defaultdict
+
+import pytest
+
+from bonft.cli import main
+from bonft.examples import example_samples_path
+
+
+def chen_pass_at_k(n, c, k):
+    # Chen et al. 2021, eq. (1), exact integers
+    return 1 - math.comb(n - c, k) / math.comb(n, k)
+
+
+def test_example_prints_table_and_writes_json_and_png(tmp_path, capsys):
+    out_json, out_png = tmp_path / "curves.json", tmp_path / "curves.png"
+    rc = main(["estimate", "--example", "--boot", "300", "--json", str(out_json), "--plot", str(out_png)])
+    text = capsys.readouterr().out
+    assert rc == 0
+    assert "temperature 0.6" in text and "temperature 1" in text
+    assert text.count("prompts: 200   smallest pool: 16") == 2
+    assert "best-of-k" in text and "oracle" in text and "95% CI" in text
+    assert open(out_png, "rb").read(8) == b"\x89PNG\r\n\x1a\n"
+
+    doc = json.loads(out_json.read_text())
+    assert [b["temperature"] for b in doc["blocks"]] == [0.6, 1.0]
+    # the oracle curve must equal Chen et al. pass@k averaged over prompts, recomputed here from the raw file
+    correct = defaultdict(lambda: [0, 0])
+    with open(example_samples_path(), encoding="utf-8") as f:
+        for line in f:
+            row = json.loads(line)
+            cell = correct[(row["temperature"], row["prompt_id"])]
+            cell[0] += 1
+            cell[1] += row["reward"]
+    for block in doc["blocks"]:
+        assert block["ks"] == [1, 2, 4, 8, 16]
+        cells = [v for (t, _), v in correct.items() if t == block["temperature"]]
+        for j, k in enumerate(block["ks"]):
+            want = sum(chen_pass_at_k(n, c, k) for n, c in cells) / len(cells)
+            assert block["oracle_mean"][j] == pytest.approx(want, rel=1e-10)
+            assert block["oracle_lo"][j] <= want <= block["oracle_hi"][j]
+            assert f"{want:.4f}" in text
+        # k = 1: the verifier plays no part, both curves are the mean reward
+        assert block["bon_mean"][0] == pytest.approx(block["oracle_mean"][0], abs=1e-12)
+
+
+def test_single_temperature_file_with_renamed_fields_and_k(tmp_path, capsys):
+    p = tmp_path / "mine.jsonl"
+    rows = []
+    for q in range(6):
+        for i in range(5):
+            rows.append({"q": f"q{q}", "rm": (i * 7 + q) % 5 / 4, "ok": int(i % 2 == 0)})
+    p.write_text("".join(json.dumps(r) + "\n" for r in rows))
+    rc = main(["estimate", str(p), "--prompt-field", "q", "--score-field", "rm", "--reward-field", "ok",
+               "--k", "1,5", "--boot", "50", "--confidence", "0.8", "--json", str(tmp_path / "o.json")])
+    text = capsys.readouterr().out
+    assert rc == 0 and "\ntemperature " not in text  # no temperature column: one block, no header
+    assert "80% CI" in text and "prompts: 6   smallest pool: 5" in text
+    block = json.loads((tmp_path / "o.json").read_text())["blocks"][0]
+    assert block["ks"] == [1, 5] and block["temperature"] is None
+    # 3 of 5 correct per prompt: pass@1 = 0.6 and pass@5 = 1 (Chen et al. 2021 eq. (1))
+    assert block["oracle_mean"] == pytest.approx([chen_pass_at_k(5, 3, 1), chen_pass_at_k(5, 3, 5)])
+
+
+@pytest.mark.parametrize(
+    "argv,match",
+    [
+        (["estimate", "--example", "--k", "1,64"], r"--k must be <= the smallest pool \(n=16\), got 64"),
+        (["estimate", "--example", "--k", "1,two"], r"--k must be comma-separated integers like 1,2,4, got '1,two'"),
+        (["estimate", "--example", "--k", "0,2"], r"--k must be >= 1, got 0"),
+        (["estimate", "--example", "--confidence", "1.5"], r"confidence must be in \(0, 1\), got confidence=1.5"),
+        (["estimate"], r"SAMPLES must be a samples JSONL file \(or pass --example\)"),
+        (["estimate", "nope.jsonl"], r"SAMPLES file not found: nope.jsonl"),
+        (["estimate", "--example", "--score-field", "rm"], r"missing field 'rm'.*--score-field NAME"),
+    ],
+)
+def test_errors_exit_2_with_a_message(argv, match, capsys):
+    assert main(argv) == 2
+    err = capsys.readouterr().err
+    assert err.startswith("bonft estimate: error: ")
+    assert re.search(match, err), err
