@@ -150,12 +150,13 @@ def fit_best_temperature(ks: Any, best_temperature: Any) -> TemperatureFit:
     pick = sorted(set([int(k) for k in ks if (k & (k - 1)) == 0] + [int(ks[-1])]))
     idx = np.searchsorted(ks, pick)
     x, y = np.log(ks[idx].astype(np.float64)), tb[idx]
-    if x.size >= 2:
+    ss_tot = float(((y - y.mean()) ** 2).sum())
+    if x.size >= 2 and ss_tot > 1e-24:
         slope, intercept = np.polyfit(x, y, 1)
-    else:
+    else:  # one point, or T* constant over k: the flat line is exact
         slope, intercept = 0.0, float(y[0])
     resid = y - (intercept + slope * x)
-    ss_res, ss_tot = float((resid**2).sum()), float(((y - y.mean()) ** 2).sum())
+    ss_res = float((resid**2).sum())
     r2 = None if ss_tot <= 1e-24 else 1.0 - ss_res / ss_tot
     inc = isotonic_regression(y, increasing=True).x
     dec = isotonic_regression(y, increasing=False).x

@@ -1,0 +1,345 @@
+"""Tests of bonft.plan: the temperature x k sweep, budgets, doubling, the T*(k) fit.
+
+Outside references used here:
+- brute-force enumeration of all k-tuples of outcomes (the definition of best-of-k with
+  ties broken uniformly among the tied samples), written here with no call into bonft;
+- the pass@k formula of Chen et al. 2021, 1 - C(n-c, k) / C(n, k), in exact integers (math.comb);
+- scipy.stats.linregress for the least-squares line of the fit.
+"""
+from __future__ import annotations
+
+import itertools
+import json
+import math
+
+import numpy as np
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from scipy import stats
+
+from bonft.plan import Pools, fit_best_temperature, plan_exact, plan_pools, plan_samples
+from bonft.samples import read_samples, write_samples
+
+# --------------------------------------------------------------------------- independent references
+
+
+def tempered(logits, t):
+    """softmax(logits / t) in plain Python floats."""
+    z = [x / t for x in logits]
+    m = max(z)
+    e = [math.exp(x - m) for x in z]
+    return [x / sum(e) for x in e]
+
+
+def brute_bon_value(p, s, r, k):
+    """E[reward of best-of-k] by enumerating all V^k ordered k-tuples (definition; uniform tie-break)."""
+    total = 0.0
+    for tup in itertools.product(range(len(p)), repeat=k):
+        w = math.prod(p[i] for i in tup)
+        top = max(s[i] for i in tup)
+        tied = [r[i] for i in tup if s[i] == top]
+        total += w * sum(tied) / len(tied)
+    return total
+
+
+def brute_bon_value_np(p, s, r, k):
+    """Vectorised enumeration of the same definition for larger V^k (numpy only, no bonft)."""
+    V = len(p)
+    tup = np.indices((V,) * k).reshape(k, -1).T  # (V^k, k) every ordered k-tuple
+    w = np.prod(np.asarray(p)[tup], axis=1)
+    sc, rw = np.asarray(s)[tup], np.asarray(r)[tup]
+    tied = sc == sc.max(axis=1, keepdims=True)
+    return float((w * (rw * tied).sum(1) / tied.sum(1)).sum())
+
+
+def chen_pass_at_k(n, c, k):
+    """Chen et al. 2021: pass@k = 1 - C(n-c, k) / C(n, k), exact integers."""
+    return 1.0 - math.comb(n - c, k) / math.comb(n, k)
+
+
+# a two-prompt scenario whose best temperature moves with k (prompt 0: the likely outcome is
+# right, with a score tie against a wrong one; prompt 1: the right outcome is rare but scored highest)
+LOGITS = [[1.5, 0.5, 0.0, -1.0], [1.0, 0.8, 0.0, -1.2]]
+SCORES = [[0.5, 0.2, 0.5, 0.1], [0.3, 0.2, 0.4, 0.9]]
+REWARDS = [[1.0, 0.0, 0.0, 0.0], [0.0, 0.0, 0.0, 1.0]]
+LENGTHS = [[3.0, 9.0, 5.0, 20.0], [4.0, 6.0, 8.0, 30.0]]
+GRID = [0.3, 0.6, 1.0, 1.6, 2.5]
+
+
+def brute_grid(max_k):
+    """(T, K) value grid and (T,) mean lengths by enumeration, averaged over the two prompts."""
+    val = np.zeros((len(GRID), max_k))
+    toks = np.zeros(len(GRID))
+    for i, t in enumerate(GRID):
+        for lg, s, r, ln in zip(LOGITS, SCORES, REWARDS, LENGTHS):
+            p = tempered(lg, t)
+            toks[i] += sum(a * b for a, b in zip(p, ln)) / 2
+            for k in range(1, max_k + 1):
+                val[i, k - 1] += brute_bon_value(p, s, r, k) / 2
+    return val, toks
+
+
+# --------------------------------------------------------------------------- exact mode
+
+
+def test_exact_mode_matches_brute_force_argmax():
+    # reference: enumeration of all k-tuples (definition), argmax by an independent loop
+    max_k = 4
+    val, toks = brute_grid(max_k)
+    res = plan_exact(logits=LOGITS, scores=SCORES, rewards=REWARDS, temperatures=GRID, max_k=max_k,
+                     lengths=LENGTHS, budget_samples=[1, 3], budget_tokens=[12.0, 40.0])
+    np.testing.assert_allclose(res.value, val, rtol=0, atol=1e-10)
+    np.testing.assert_allclose(res.mean_tokens, toks, rtol=0, atol=1e-10)
+    for j in range(max_k):
+        best = max(range(len(GRID)), key=lambda i: val[i, j])
+        assert res.best_temperature[j] == GRID[best], f"k={j + 1}: plan {res.best_temperature[j]} vs brute {GRID[best]}"
+    # the scenario is chosen so that the best temperature moves: low at k=1, high at k=4
+    assert res.best_temperature[0] == 0.3 and res.best_temperature[3] == 2.5
+    for c in res.budgets:
+        cells = [(val[i, j], GRID[i], j + 1) for i in range(len(GRID)) for j in range(max_k)
+                 if ((j + 1) <= c.budget if c.kind == "samples" else (j + 1) * toks[i] <= c.budget)]
+        v, t, k = max(cells)
+        assert (c.temperature, c.k) == (t, k), f"{c.kind} budget {c.budget}: plan ({c.temperature}, {c.k}) vs brute ({t}, {k})"
+        assert c.value == pytest.approx(v, abs=1e-10)
+
+
+def test_exact_mode_probs_input_equals_logits_input():
+    # softmax(log p / T) is the same policy as softmax(logits / T) when p = softmax(logits) (definition)
+    p = np.array([tempered(lg, 1.0) for lg in LOGITS])
+    a = plan_exact(logits=LOGITS, scores=SCORES, rewards=REWARDS, temperatures=GRID, max_k=4)
+    b = plan_exact(probs=p, scores=SCORES, rewards=REWARDS, temperatures=GRID, max_k=4)
+    np.testing.assert_allclose(a.value, b.value, rtol=0, atol=1e-10)
+
+
+def test_exact_doubling_and_marginal_gains_against_enumeration():
+    # reference: enumeration; gain of one more sample V_{k+1} - V_k and of doubling V_2k - V_k
+    val, _ = brute_grid(4)
+    res = plan_exact(logits=LOGITS, scores=SCORES, rewards=REWARDS, temperatures=GRID, max_k=4, min_gain=0.02)
+    np.testing.assert_allclose(res.gain_one, val[:, 1:] - val[:, :-1], atol=1e-10)
+    np.testing.assert_allclose(res.gain_double, val[:, [1, 3]] - val[:, [0, 1]], atol=1e-10)
+    steps = {d.k: d.gain for d in res.doubling}
+    assert steps[1] == pytest.approx(val[:, 1].max() - val[:, 0].max(), abs=1e-10)
+    assert steps[2] == pytest.approx(val[:, 3].max() - val[:, 1].max(), abs=1e-10)
+    # 1 -> 2 gains ~0.017 (< min_gain 0.02), so doubling "stops paying" at k=1
+    assert steps[1] < 0.02 and res.doubling_stops_at == 1
+
+
+# --------------------------------------------------------------------------- sampling mode: CI coverage
+
+
+def test_bootstrap_ci_covers_exact_value():
+    # reference for the truth: enumeration of all k-tuples (definition). 200 seeded repeats of
+    # 60 prompts x 8 samples drawn from the exact tempered policy at 3 temperatures.
+    # n_boot=1000: the percentile endpoints' Monte Carlo error is small next to the CI width.
+    logits, s, r = [1.2, 0.4, 0.0, -0.8], [0.4, 0.9, 0.4, 0.7], [1.0, 0.0, 0.0, 1.0]
+    temps, ks, P, n = [0.5, 1.0, 1.8], [1, 3, 8], 60, 8
+    probs = {t: tempered(logits, t) for t in temps}
+    truth = {(t, k): brute_bon_value_np(probs[t], s, r, k) for t in temps for k in ks}
+    s_a, r_a = np.asarray(s), np.asarray(r)
+    hits = {c: 0 for c in truth}
+    reps = 200
+    for rep in range(reps):
+        rng = np.random.default_rng(1000 + rep)
+        pools = {}
+        for t in temps:
+            idx = rng.choice(4, size=(P, n), p=probs[t])  # (P, n) outcome drawn for each sample
+            pools[t] = Pools(s_a[idx], r_a[idx])
+        res = plan_pools(pools, n_boot=1000, seed=rep)
+        for t, k in truth:
+            i = temps.index(t)
+            hits[(t, k)] += res.lo[i, k - 1] <= truth[(t, k)] <= res.hi[i, k - 1]
+    cover = {c: h / reps for c, h in hits.items()}
+    pooled = sum(hits.values()) / (reps * len(hits))
+    msg = f"pooled coverage {pooled:.3f}; per (T, k): " + ", ".join(f"{c}: {v:.3f}" for c, v in cover.items())
+    assert pooled >= 0.90, msg
+    assert min(cover.values()) >= 0.87, msg  # 9 cells of 200 repeats: binomial sd ~0.017 at 0.94
+
+
+# --------------------------------------------------------------------------- budgets, from a samples file
+
+
+def _pass_at_k_file(path, *, P=40, n=32):
+    """Low T (0.5): half the prompts solved 16/32, half never; short answers (3 or 5 tokens, mean 4).
+    High T (1.2): every prompt solved 4/32; long answers (30 or 34 tokens, mean 32). Score = reward."""
+    rows = []
+    for p in range(P):
+        c_low = 16 if p % 2 == 0 else 0
+        for i in range(n):
+            rows.append({"prompt_id": f"q{p}", "score": float(i < c_low), "reward": float(i < c_low),
+                         "temperature": 0.5, "n_tokens": 3 if i % 2 else 5})
+            rows.append({"prompt_id": f"q{p}", "score": float(i < 4), "reward": float(i < 4),
+                         "temperature": 1.2, "n_tokens": 30 if i % 2 else 34})
+    write_samples(path, rows)
+    return read_samples(path)
+
+
+def chen_grid(n=32):
+    """(2, n) exact V_k: pass@k per prompt type (Chen et al. 2021), averaged over prompts."""
+    low = [0.5 * chen_pass_at_k(n, 16, k) for k in range(1, n + 1)]
+    high = [chen_pass_at_k(n, 4, k) for k in range(1, n + 1)]
+    return np.array([low, high])
+
+
+def test_samples_file_values_and_budgets_sample_vs_token(tmp_path):
+    table = _pass_at_k_file(tmp_path / "s.jsonl")
+    res = plan_samples(table, budget_samples=8, budget_tokens=128, n_boot=500)
+    ref = chen_grid()
+    np.testing.assert_allclose(res.value, ref, rtol=0, atol=1e-12)  # Chen et al. 2021
+    np.testing.assert_allclose(res.mean_tokens, [4.0, 32.0])  # measured from n_tokens
+    assert res.paired
+    by = {c.kind: c for c in res.budgets}
+    # 8 samples: high T at k=8 (0.70) beats low T (0.50)
+    assert (by["samples"].temperature, by["samples"].k) == (1.2, 8)
+    assert by["samples"].value == pytest.approx(chen_pass_at_k(32, 4, 8), abs=1e-12)
+    # 128 tokens: high T affords k=4 (0.43), low T affords k=32 (0.50) -> the answer flips to low T;
+    # low T reaches 0.5 exactly from k=17 on (C(16, k) = 0), and ties go to the cheapest cell
+    assert (by["tokens"].temperature, by["tokens"].k) == (0.5, 17)
+    assert by["tokens"].value == 0.5 and by["tokens"].cost == pytest.approx(17 * 4.0)
+    assert ref[1, 3] < ref[0, 16] == ref[0, 31]
+    # low T is significantly worse at k=8 (0.50 vs 0.70 on 40 prompts)
+    assert not res.near_best[0, 7] and res.near_best[1, 7]
+
+
+@settings(max_examples=25)
+@given(b=st.integers(min_value=1, max_value=40))
+def test_sample_budget_never_exceeds_budget(b, tmp_path_factory):
+    # reference: Chen et al. 2021 values, argmax over cells with k <= b by an independent loop
+    table = _pass_at_k_file(tmp_path_factory.mktemp("b") / "s.jsonl", P=8, n=32)
+    res = plan_samples(table, budget_samples=b, n_boot=50)
+    c = res.budgets[0]
+    assert c.k <= b
+    ref = chen_grid()
+    best = max(ref[i, j] for i in range(2) for j in range(min(b, 32)))
+    assert c.value == pytest.approx(best, abs=1e-12)
+    assert (c.note is not None) == (b > 32)
+
+
+def test_doubling_stops_paying_against_chen(tmp_path):
+    table = _pass_at_k_file(tmp_path / "s.jsonl")
+    res = plan_samples(table, n_boot=300, min_gain=0.06)
+    ref = chen_grid()
+    env = ref.max(axis=0)  # best temperature at each k
+    for d in res.doubling:
+        assert d.gain == pytest.approx(env[2 * d.k - 1] - env[d.k - 1], abs=1e-12), d
+    # 16 -> 32 at T=1.2 gains 1 - pass@16 = 0.0506 < 0.06 (8 -> 16 gains 0.245): all prompts
+    # are alike at T=1.2, so the CI of that gain is a point
+    assert res.doubling_stops_at == 16
+    assert res.best_temperature[0] == 0.5 and res.best_temperature[-1] == 1.2
+
+
+def test_paired_identical_pools_are_never_significantly_different():
+    rng = np.random.default_rng(3)
+    s, r = rng.normal(size=(30, 10)), rng.integers(0, 2, size=(30, 10)).astype(float)
+    res = plan_pools({0.7: Pools(s, r), 1.0: Pools(s.copy(), r.copy())}, n_boot=300)
+    assert res.paired and res.near_best.all()
+    np.testing.assert_allclose(res.value[0], res.value[1])
+
+
+def test_unpaired_when_prompt_sets_differ():
+    rng = np.random.default_rng(4)
+    a = Pools(rng.normal(size=(20, 6)), rng.random((20, 6)), prompt_ids=[f"a{i}" for i in range(20)])
+    b = Pools(rng.normal(size=(25, 6)), rng.random((25, 6)), prompt_ids=[f"b{i}" for i in range(25)])
+    res = plan_pools({0.5: a, 1.0: b}, n_boot=200)
+    assert not res.paired and any("unpaired" in n for n in res.notes)
+    assert list(res.n_prompts) == [20, 25]
+
+
+def test_ragged_pools_cap_k_at_the_smallest_pool():
+    rng = np.random.default_rng(5)
+    s = [rng.normal(size=m) for m in (5, 9, 7)]
+    r = [rng.random(m) for m in (5, 9, 7)]
+    res = plan_pools({1.0: Pools(s, r)}, n_boot=100)
+    assert res.ks[-1] == 5
+    # k=1 is the mean reward of each pool (definition), averaged over prompts
+    assert res.value[0, 0] == pytest.approx(np.mean([x.mean() for x in r]), abs=1e-12)
+
+
+# --------------------------------------------------------------------------- fit, report, plots
+
+
+def test_fit_line_matches_scipy_linregress():
+    ks = np.arange(1, 33)
+    tb = np.array([0.4, 0.4, 0.7, 0.7, 1.0, 1.0, 1.3, 1.3] * 4)[:32]
+    f = fit_best_temperature(ks, tb)
+    pts = [1, 2, 4, 8, 16, 32]
+    ref = stats.linregress(np.log(pts), tb[np.array(pts) - 1])  # reference library
+    assert f.slope == pytest.approx(ref.slope, abs=1e-12)
+    assert f.intercept == pytest.approx(ref.intercept, abs=1e-12)
+    assert f.r2 == pytest.approx(ref.rvalue**2, abs=1e-12)
+    assert f.caveat == "a fit of this data, not a law"
+    const = fit_best_temperature(ks, np.full(32, 0.7))
+    assert const.r2 is None and const.monotone_direction == "constant" and const.rmse == 0.0
+    dec = fit_best_temperature(np.arange(1, 9), [1.3, 1.3, 1.0, 1.0, 1.0, 1.0, 1.0, 0.7])
+    assert dec.monotone_direction == "decreasing" and dec.monotone_rmse == 0.0 and dec.slope < 0
+
+
+def test_table_json_and_plots(tmp_path):
+    table = _pass_at_k_file(tmp_path / "s.jsonl")
+    res = plan_samples(table, budget_samples=[8, 64], budget_tokens=128, n_boot=200)
+    text = res.table()
+    assert "T=0.5" in text and "budget 8 samples/prompt: T=1.2, k=8" in text
+    assert "a fit of this data, not a law" in text and "choice limited to k <= 32" in text
+    d = json.loads(json.dumps(res.to_dict()))
+    assert d["value"][1][7] == pytest.approx(chen_pass_at_k(32, 4, 8), abs=1e-12)
+    assert d["budgets"][2]["temperature"] == 0.5 and d["best_temperature_fit"]["caveat"].startswith("a fit")
+    for name in ("heat.png", "curves.png"):
+        path = tmp_path / "plots" / name
+        (res.plot_heatmap if name == "heat.png" else res.plot_curves)(path)
+        data = path.read_bytes()
+        assert data[:8] == b"\x89PNG\r\n\x1a\n" and len(data) > 5000
+    ex = plan_exact(logits=LOGITS, scores=SCORES, rewards=REWARDS, temperatures=GRID, max_k=4)
+    assert json.loads(json.dumps(ex.to_dict()))["lo"] is None and "[" not in ex.table().splitlines()[3]
+    ex.plot_curves(tmp_path / "ex.png")
+
+
+# --------------------------------------------------------------------------- bad input
+
+
+def _pools(n=8, P=5, nan=False):
+    s = np.arange(P * n, dtype=float).reshape(P, n)
+    if nan:
+        s[2, 3] = np.nan
+    return Pools(s, np.ones((P, n)))
+
+
+def test_bad_input_errors():
+    with pytest.raises(ValueError, match="at least one temperature, got an empty grid"):
+        plan_pools({})
+    with pytest.raises(ValueError, match="at least one temperature, got an empty grid"):
+        plan_exact(logits=LOGITS, scores=SCORES, rewards=REWARDS, temperatures=[])
+    with pytest.raises(ValueError, match=r"max_k must be <= the smallest pool at every temperature \(n=4 at temperature 1\), got max_k=8"):
+        plan_pools({0.5: _pools(8), 1.0: _pools(4)}, max_k=8)
+    with pytest.raises(ValueError, match=r"scores \(temperature 0.5\) must be finite, got nan at index \(2, 3\)"):
+        plan_pools({0.5: _pools(nan=True)})
+    with pytest.raises(ValueError, match="temperature must be a finite number > 0, got temperature=-1"):
+        plan_pools({-1.0: _pools()})
+    with pytest.raises(TypeError, match=r"pools\[0.5\] must be a Pools, got tuple"):
+        plan_pools({0.5: (np.ones((2, 2)), np.ones((2, 2)))})
+    with pytest.raises(ValueError, match="budget_tokens needs the mean response length at every temperature"):
+        plan_pools({0.5: _pools()}, budget_tokens=100)
+    with pytest.raises(ValueError, match="budget_samples must be >= 1, got budget_samples=0"):
+        plan_pools({0.5: _pools()}, budget_samples=0)
+    with pytest.raises(TypeError, match="budget_samples must be an int, got float 2.5"):
+        plan_pools({0.5: _pools()}, budget_samples=2.5)
+    with pytest.raises(ValueError, match=r"confidence must be in \(0, 1\), got confidence=1.5"):
+        plan_pools({0.5: _pools()}, confidence=1.5)
+    with pytest.raises(ValueError, match="budget_tokens must afford one sample at some temperature"):
+        plan_pools({0.5: Pools(np.ones((2, 2)), np.ones((2, 2)), mean_tokens=10.0)}, budget_tokens=5)
+    with pytest.raises(ValueError, match="exactly one of logits or probs, got both"):
+        plan_exact(logits=LOGITS, probs=LOGITS, scores=SCORES, rewards=REWARDS, temperatures=GRID)
+    with pytest.raises(ValueError, match="budget_tokens needs lengths"):
+        plan_exact(logits=LOGITS, scores=SCORES, rewards=REWARDS, temperatures=GRID, budget_tokens=50)
+    with pytest.raises(ValueError, match=r"scores must broadcast against \(2, 4\) outcomes, got shape \(3,\)"):
+        plan_exact(logits=LOGITS, scores=[1, 2, 3], rewards=REWARDS, temperatures=GRID)
+    with pytest.raises(ValueError, match="temperatures must be distinct"):
+        plan_exact(logits=LOGITS, scores=SCORES, rewards=REWARDS, temperatures=[1.0, 1.0])
+
+
+def test_table_without_temperatures_is_refused(tmp_path):
+    write_samples(tmp_path / "s.jsonl", [{"prompt_id": "a", "score": 1.0, "reward": 1.0}])
+    with pytest.raises(ValueError, match="table must have a temperature column"):
+        plan_samples(read_samples(tmp_path / "s.jsonl"))
+    table = _pass_at_k_file(tmp_path / "t.jsonl", P=2, n=4)
+    with pytest.raises(ValueError, match=r"temperature 0.7 is not in the samples file \(present: \['0.5', '1.2'\]\)"):
+        plan_samples(table, temperatures=[0.7])
