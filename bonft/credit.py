@@ -113,9 +113,14 @@ def _tie_groups(s: torch.Tensor):
     return order, start, end - start + 1, end
 
 
-def _ratio(a: torch.Tensor, b, log_den: torch.Tensor | float) -> torch.Tensor:
-    """C(a, b) / exp(log_den), 0 where C(a, b) = 0."""
-    return torch.exp(log_comb_torch(a, b) - log_den)
+def _ratio_table(n: int, k: int, log_den: float, device) -> torch.Tensor:
+    """T[x + 1] = C(x, k) / exp(log_den) for x = -1..n (0 where C(x, k) = 0).
+
+    Every binomial below has a fixed lower index and an integer upper index in
+    [-1, n], so one O(n) table replaces elementwise lgamma calls.
+    """
+    x = torch.arange(-1, n + 1, device=device, dtype=torch.float64)
+    return torch.exp(log_comb_torch(x, k) - log_den)
 
 
 def _prefix(x: torch.Tensor) -> torch.Tensor:
@@ -136,13 +141,16 @@ def _subset_sums(r: torch.Tensor, L, m, end, k: int, n: int) -> torch.Tensor:
       above: sum_{H above G} sum_H R * (C(m_H+L_H-1,k-1) - C(L_H-1,k-1)) / m_H.
     """
     den = float(log_comb_torch(n, k))
-    Lf, mf = L.to(r.dtype), m.to(r.dtype)
+    Ck = _ratio_table(n, k, den, r.device)  # Ck[x + 1] = C(x, k)/C(n, k)
+    Ck1 = _ratio_table(n, k - 1, den, r.device)  # Ck1[x + 1] = C(x, k-1)/C(n, k)
+    mf = m.to(r.dtype)
     P = _prefix(r)
     group_sum = P.gather(-1, end + 1) - P.gather(-1, L)  # sum of R over the own tie group
-    a = (_ratio(mf + Lf, k, den) - _ratio(Lf, k, den)) / mf
-    c_num = mf * _ratio(mf + Lf - 1, k - 1, den) - _ratio(mf + Lf, k, den) + _ratio(Lf, k, den)
+    top_L, top_ml = Ck[L + 1], Ck[m + L + 1]  # C(L,k), C(m+L,k)
+    a = (top_ml - top_L) / mf
+    c_num = mf * Ck1[m + L] - top_ml + top_L
     c = torch.where(m > 1, c_num / (mf * (mf - 1)).clamp_min(1.0), torch.zeros_like(c_num))
-    A = (_ratio(mf + Lf - 1, k - 1, den) - _ratio(Lf - 1, k - 1, den)) / mf  # as top group over one fixed lower sample
+    A = (Ck1[m + L] - Ck1[L]) / mf  # as top group over one fixed lower sample
     E = _prefix(r * A)
     above = E[:, -1:] - E.gather(-1, end + 1)  # positions strictly after the own group
     return r * a + (group_sum - r) * c + above
@@ -155,14 +163,15 @@ def _loo_values(r: torch.Tensor, L, m, end, k: int, n: int) -> torch.Tensor:
     one for every group above; groups below are unchanged.
     """
     den = float(log_comb_torch(n - 1, k))
-    Lf, mf = L.to(r.dtype), m.to(r.dtype)
+    Ck = _ratio_table(n, k, den, r.device)  # Ck[x + 1] = C(x, k)/C(n-1, k)
+    mf = m.to(r.dtype)
     P = _prefix(r)
     group_sum = P.gather(-1, end + 1) - P.gather(-1, L)
-    below_e = _prefix(r * (_ratio(mf + Lf, k, den) - _ratio(Lf, k, den)) / mf)
+    below_e = _prefix(r * (Ck[m + L + 1] - Ck[L + 1]) / mf)
     below = below_e.gather(-1, L)  # positions strictly before the own group
-    own_w = (_ratio(mf - 1 + Lf, k, den) - _ratio(Lf, k, den)) / (mf - 1).clamp_min(1.0)
+    own_w = (Ck[m + L] - Ck[L + 1]) / (mf - 1).clamp_min(1.0)
     own = torch.where(m > 1, (group_sum - r) * own_w, torch.zeros_like(r))
-    above_e = _prefix(r * (_ratio(mf + Lf - 1, k, den) - _ratio(Lf - 1, k, den)) / mf)
+    above_e = _prefix(r * (Ck[m + L] - Ck[L]) / mf)  # L-1 below once i is gone
     above = above_e[:, -1:] - above_e.gather(-1, end + 1)
     return below + own + above
 
@@ -176,11 +185,15 @@ def _bon_credit_t(s: torch.Tensor, R: torch.Tensor, k: int, baseline: str) -> tu
     B, n = s.shape
     order, L, m, end = _tie_groups(s)
     r = R.gather(-1, order)  # rewards in ascending score order
-    W = _subset_sums(r, L, m, end, k, n)
-    pool = W.sum(-1) / k  # sum_i sum_{S contains i} g(S) = k * sum_S g(S)
+    # loo credit is unchanged by a constant shift of a row's rewards (the k/n
+    # terms cancel); shifting by one of the row's own rewards makes all-equal
+    # rewards give exactly 0 and keeps large offsets from cancelling badly
+    shift = R[:, :1] if (baseline == "loo" and n > 1) else torch.zeros_like(R[:, :1])
+    W = _subset_sums(r - shift, L, m, end, k, n)
+    pool = W.sum(-1) / k + shift[:, 0]  # sum_i sum_{S contains i} g(S) = k * sum_S g(S)
     if baseline == "loo" and n > 1:
         kb = min(k, n - 1)  # k = n: the others can only form best-of-(n-1)
-        W = W - (k / n) * _loo_values(r, L, m, end, kb, n)  # k/n = C(n-1,k-1)/C(n,k)
+        W = W - (k / n) * _loo_values(r - shift, L, m, end, kb, n)  # k/n = C(n-1,k-1)/C(n,k)
     return _unsort(W, order), pool
 
 
@@ -260,16 +273,17 @@ def _pass_credit_t(c: torch.Tensor, k: int, estimator: str, positive_only: bool)
         p = tot / n
         w = (k / n) * (1 - p) ** (k - 1) * (c - p)
     else:
-        den = log_comb_torch(n, k)
-        # subset sums over C(n,k): k/n for a correct sample; an incorrect one
-        # needs a correct mate among its k-1 companions
-        miss = torch.exp(log_comb_torch(n - 1 - tot, k - 1) - den)
-        w = k / n - (1 - c) * miss
+        # subset sums over C(n,k) = (k/n) * share of the C(n-1,k-1) subsets
+        # holding i that succeed: all for a correct sample; for an incorrect
+        # one those with a correct mate among its k-1 companions
+        q = torch.exp(log_comb_torch(n - 1 - tot, k - 1) - log_comb_torch(n - 1, k - 1))
+        w = 1 - (1 - c) * q
         if n > 1:
             kb = min(k, n - 1)
             others = tot - c  # correct among the other n-1
             b = 1 - torch.exp(log_comb_torch(n - 1 - others, kb) - log_comb_torch(n - 1, kb))
-            w = w - (k / n) * b
+            w = w - b  # all-equal rows give exactly 1 - 1 or 1 - 1 - 0 = 0
+        w = (k / n) * w
     if positive_only:
         w = w * c
     return w
@@ -407,6 +421,8 @@ def sft_credit(scores, expert_scores, k, *, smoothing=1.0):
 def _reinforce_credit_t(R: torch.Tensor, baseline: str) -> torch.Tensor:
     n = R.shape[-1]
     if baseline == "loo":
+        if n > 1:
+            R = R - R[:, :1]  # same credit, exact zeros for all-equal rewards
         return (R - _loo_mean(R)) / n
     return R / n
 
