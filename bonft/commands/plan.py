@@ -1,0 +1,198 @@
+"""``bonft plan``: choose a sampling temperature and N from a samples file, a model, or an exact outcome set."""
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import tempfile
+
+HELP = "choose temperature and N: best-of-k value over a temperature x k grid, budgets, doubling gains"
+DESCRIPTION = (
+    "Measure the best-of-k value V_k(T) for every k <= n at each temperature of a grid, with bootstrap "
+    "confidence intervals over prompts (paired across temperatures when the prompts are the same). "
+    "Reports the best temperature at each k and those not significantly worse, the best (T, k) for a "
+    "budget of samples or generated tokens per prompt, the gain of doubling N, and a fit of how the best "
+    "temperature moves with k (a fit of this data, not a law). Input: --samples FILE.jsonl (with a "
+    "temperature column), or --model DIR with --task/--prompts and --verifier (sampled and cached), "
+    "or --exact FILE.json (a finite outcome set: logits or probs, scores, rewards)."
+)
+
+DEFAULT_TEMPERATURES = "0.4,0.7,1.0,1.3"
+
+
+def _floats(flag: str, text: str | None) -> list[float] | None:
+    if text is None:
+        return None
+    try:
+        vals = [float(v) for v in text.split(",") if v.strip()]
+    except ValueError:
+        raise ValueError(f"{flag} must be comma-separated numbers like 0.4,0.7,1.0, got {text!r}") from None
+    if not vals:
+        raise ValueError(f"{flag} must list at least one number, got {text!r}")
+    return vals
+
+
+def _ints(flag: str, text: str | None) -> list[int] | None:
+    if text is None:
+        return None
+    try:
+        return [int(v) for v in text.split(",") if v.strip()]
+    except ValueError:
+        raise ValueError(f"{flag} must be comma-separated integers like 8,16, got {text!r}") from None
+
+
+def add_arguments(p: argparse.ArgumentParser) -> None:
+    src = p.add_argument_group("input (one of)")
+    src.add_argument("--samples", metavar="FILE.jsonl", help="samples file with a temperature column")
+    src.add_argument("--model", metavar="DIR", help="bonft checkpoint or local transformers model directory to sample from")
+    src.add_argument("--exact", metavar="FILE.json",
+                     help='finite outcome set: {"logits" or "probs", "scores", "rewards", optional "lengths", "temperatures"}')
+    m = p.add_argument_group("model mode")
+    m.add_argument("--task", default=None, help="built-in task whose held-out prompts to use (e.g. ledger, restock)")
+    m.add_argument("--prompts", metavar="FILE.jsonl", help="your prompts: JSONL with a 'prompt' (and 'answer') field")
+    m.add_argument("--n-prompts", type=int, default=100, help="held-out prompts drawn from --task (default: 100)")
+    m.add_argument("--verifier", default="exact",
+                   help="exact, proxy (built-in task's imperfect verifier) or module:function (default: exact)")
+    m.add_argument("--n", type=int, default=64, help="samples per prompt at each temperature (default: 64)")
+    m.add_argument("--max-new-tokens", type=int, default=32, help="longest response in tokens (default: 32)")
+    m.add_argument("--top-p", type=float, default=1.0, help="nucleus mass, 1 = none (default: 1.0)")
+    m.add_argument("--batch-size", type=int, default=None, help="rows per generation chunk (default: all)")
+    m.add_argument("--cache", metavar="DIR", default=None,
+                   help="cache of sampled pools, one samples JSONL per (model, prompts, verifier, T, n, seed)")
+    m.add_argument("--device", default="cpu", help="cpu, cuda or auto (default: cpu)")
+    f = p.add_argument_group("samples-file fields")
+    f.add_argument("--prompt-field", default="prompt_id", help="default: prompt_id")
+    f.add_argument("--score-field", default="score", help="default: score")
+    f.add_argument("--reward-field", default="reward", help="default: reward")
+    f.add_argument("--temperature-field", default="temperature", help="default: temperature")
+    f.add_argument("--tokens-field", default="n_tokens", help="response length field, for --budget-tokens (default: n_tokens)")
+    p.add_argument("--temperatures", default=None,
+                   help=f"comma-separated grid (default: all in the file; model mode {DEFAULT_TEMPERATURES})")
+    p.add_argument("--max-k", type=int, default=None, help="largest k (default: the smallest pool; exact mode 64)")
+    p.add_argument("--budget-samples", default=None, help="samples per prompt, comma-separated budgets, e.g. 16")
+    p.add_argument("--budget-tokens", default=None, help="generated tokens per prompt, comma-separated budgets")
+    p.add_argument("--min-gain", type=float, default=0.0, help="doubling N pays while its gain is significantly above this")
+    p.add_argument("--confidence", type=float, default=0.95, help="confidence level (default: 0.95)")
+    p.add_argument("--boot", type=int, default=2000, help="bootstrap resamples (default: 2000)")
+    p.add_argument("--seed", type=int, default=0, help="bootstrap and sampling seed (default: 0)")
+    p.add_argument("--json", metavar="OUT.json", default=None, help="write the full result as JSON")
+    p.add_argument("--plot-dir", metavar="DIR", default=None, help="write plan_heatmap.png and plan_curves.png here")
+    p.add_argument("--quiet", action="store_true", help="no progress bar")
+
+
+def _write_json_atomic(path: str, obj) -> None:
+    folder = os.path.dirname(os.path.abspath(path))
+    os.makedirs(folder, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=".plan-", suffix=".tmp", dir=folder)
+    try:
+        with os.fdopen(fd, "w", encoding="utf-8") as fh:
+            json.dump(obj, fh, indent=1, allow_nan=False)
+        os.replace(tmp, path)
+    except BaseException:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+        raise
+
+
+def _prompts_and_verifier(args):
+    """(prompt strings, verifier, verifier name for the cache key) for model mode."""
+    from bonft.tasks import exact_match_verifier, get_task, load_prompts_jsonl
+
+    if (args.task is None) == (args.prompts is None):
+        raise ValueError("model mode needs exactly one of --task NAME or --prompts FILE.jsonl, got "
+                         + ("both" if args.task else "neither"))
+    if args.prompts is not None:
+        examples, task = load_prompts_jsonl(args.prompts), None
+    else:
+        task = get_task(args.task)
+        _, examples = task.split(n_train=0, n_eval=args.n_prompts, seed=args.seed)
+    prompts = [e.prompt for e in examples]
+    v = args.verifier
+    if v == "exact":
+        if task is not None:
+            return prompts, task.verifier(examples), f"task:{args.task}:exact"
+        if any(e.answer is None for e in examples):
+            raise ValueError("--verifier exact needs an 'answer' field in --prompts; give --verifier module:function")
+        return prompts, exact_match_verifier(examples), "prompts:exact"
+    if v == "proxy":
+        proxy = None if task is None else task.proxy_verifier(examples)
+        if proxy is None:
+            raise ValueError(f"--verifier proxy needs a built-in task that ships a proxy verifier, got task {args.task!r}")
+        return prompts, proxy, f"task:{args.task}:proxy"
+    if ":" not in v:
+        raise ValueError(f"--verifier must be exact, proxy or module:function, got {v!r}")
+    from bonft.verifiers import load_verifier
+
+    return prompts, load_verifier(v), v
+
+
+def _plan_kwargs(args) -> dict:
+    return dict(max_k=args.max_k, budget_samples=_ints("--budget-samples", args.budget_samples),
+                budget_tokens=_floats("--budget-tokens", args.budget_tokens), min_gain=args.min_gain)
+
+
+def run(args) -> int:
+    from bonft.plan import plan_exact, plan_samples
+
+    given = [x for x in ("samples", "model", "exact") if getattr(args, x)]
+    if len(given) != 1:
+        raise ValueError(f"give exactly one of --samples, --model or --exact, got {len(given)}"
+                         + (f" ({', '.join('--' + g for g in given)})" if given else ""))
+    temps = _floats("--temperatures", args.temperatures)
+    info = None
+    if args.samples:
+        from bonft.samples import read_samples
+
+        if not os.path.isfile(args.samples):
+            raise FileNotFoundError(f"--samples file not found: {args.samples}")
+        table = read_samples(args.samples, prompt_field=args.prompt_field, score_field=args.score_field,
+                             reward_field=args.reward_field, temperature_field=args.temperature_field,
+                             tokens_field=args.tokens_field)
+        print(f"samples: {args.samples} ({len(table)} rows)")
+        res = plan_samples(table, temperatures=temps, confidence=args.confidence, n_boot=args.boot, seed=args.seed,
+                           **_plan_kwargs(args))
+    elif args.exact:
+        if not os.path.isfile(args.exact):
+            raise FileNotFoundError(f"--exact file not found: {args.exact}")
+        with open(args.exact, encoding="utf-8") as fh:
+            spec = json.load(fh)
+        if not isinstance(spec, dict):
+            raise TypeError(f"--exact must hold a JSON object, got {type(spec).__name__}")
+        unknown = set(spec) - {"logits", "probs", "scores", "rewards", "lengths", "temperatures"}
+        if unknown:
+            raise ValueError(f"--exact file has unknown fields {sorted(unknown)}")
+        for key in ("scores", "rewards"):
+            if key not in spec:
+                raise ValueError(f"--exact file must have a {key!r} field")
+        temps = temps or spec.get("temperatures")
+        if temps is None:
+            raise ValueError("--exact needs temperatures: --temperatures or a 'temperatures' field")
+        kw = _plan_kwargs(args)
+        kw["max_k"] = kw["max_k"] or 64
+        res = plan_exact(logits=spec.get("logits"), probs=spec.get("probs"), scores=spec["scores"],
+                         rewards=spec["rewards"], lengths=spec.get("lengths"), temperatures=temps, **kw)
+    else:
+        from bonft.models import load_model, pick_device
+        from bonft.plan_sampling import plan_model
+
+        model, tokenizer = load_model(args.model, device=pick_device(args.device))
+        prompts, verifier, vname = _prompts_and_verifier(args)
+        temps = temps or _floats("--temperatures", DEFAULT_TEMPERATURES)
+        res, info = plan_model(model, tokenizer, prompts, verifier, temperatures=temps, n=args.n, seed=args.seed,
+                               top_p=args.top_p, max_new_tokens=args.max_new_tokens, batch_size=args.batch_size,
+                               cache_dir=args.cache, verifier_name=vname, progress=not args.quiet,
+                               confidence=args.confidence, n_boot=args.boot, **_plan_kwargs(args))
+        if args.cache:
+            print(f"cache {args.cache}: sampled T={info['sampled']}, reused T={info['cached']}")
+    print(res.table())
+    if args.json:
+        out = res.to_dict()
+        if info is not None:
+            out["sampling"] = {k: info[k] for k in ("sampled", "cached", "failed", "files")}
+        _write_json_atomic(args.json, out)
+        print(f"wrote {args.json}")
+    if args.plot_dir:
+        for path in (res.plot_heatmap(os.path.join(args.plot_dir, "plan_heatmap.png")),
+                     res.plot_curves(os.path.join(args.plot_dir, "plan_curves.png"))):
+            print(f"wrote {path}")
+    return 0

@@ -1,0 +1,203 @@
+"""Model mode of the planner: draw pools at a grid of temperatures, score them, cache them on disk.
+
+One samples JSONL file per (model hash, prompts hash, verifier, temperature, n, seed,
+top_p, max_new_tokens) under ``cache_dir``, so a re-run with more temperatures samples
+only the new ones. Each temperature gets its own seed derived from ``seed`` and T, so a
+cached pool is the same whichever other temperatures are asked for.
+
+Caution: sampled responses are model-written. If the verifier runs them (code,
+tool calls), run it sandboxed (:class:`bonft.verifiers.CodeRunner`), never with
+``exec`` in your own process. A planner run against a gameable verifier finds
+the temperature that games it best (reward hacking): plan on true rewards.
+"""
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+from pathlib import Path
+from typing import Any, Callable, Sequence
+
+import numpy as np
+
+from ._checks import check_fraction, check_int
+
+PROMPT_CHUNK = 16  # prompts per sampling call: the progress bar's step, and part of each chunk's seed
+
+
+def model_fingerprint(model: Any, tokenizer: Any) -> str:
+    """sha256 of the model class, config, every parameter/buffer (name, dtype, shape, bytes) and the vocabulary."""
+    import torch
+
+    h = hashlib.sha256(type(model).__name__.encode())
+    cfg = getattr(model, "config", None)
+    if cfg is not None and hasattr(cfg, "to_json_string"):
+        h.update(cfg.to_json_string(use_diff=False).encode())
+    for name, t in sorted(model.state_dict().items()):
+        t = t.detach().cpu().contiguous()
+        h.update(f"{name}|{t.dtype}|{tuple(t.shape)}".encode())
+        h.update(t.reshape(-1).view(torch.uint8).numpy().tobytes())
+    if hasattr(tokenizer, "get_vocab"):
+        h.update(json.dumps(sorted(tokenizer.get_vocab().items())).encode())
+    return h.hexdigest()
+
+
+def prompts_fingerprint(prompts: Sequence[str]) -> str:
+    return hashlib.sha256(json.dumps(list(prompts)).encode()).hexdigest()
+
+
+def _seed_for(seed: int, temperature: float, chunk: int) -> int:
+    key = f"{seed}/{temperature:.9g}/{chunk}".encode()
+    return int.from_bytes(hashlib.sha256(key).digest()[:4], "little") & 0x7FFFFFFF
+
+
+def cache_file(cache_dir, *, model_hash: str, prompts_hash: str, verifier: str, temperature: float, n: int,
+               seed: int, top_p: float, max_new_tokens: int) -> Path:
+    """The cache file of one temperature's pools: ``plan-T{T}-n{n}-{key}.jsonl`` (key: sha256 of all the fields)."""
+    fields = dict(model=model_hash, prompts=prompts_hash, verifier=verifier, temperature=round(float(temperature), 9),
+                  n=n, seed=seed, top_p=round(float(top_p), 9), max_new_tokens=max_new_tokens, chunk=PROMPT_CHUNK)
+    key = hashlib.sha256(json.dumps(fields, sort_keys=True).encode()).hexdigest()[:16]
+    return Path(cache_dir) / f"plan-T{temperature:g}-n{n}-{key}.jsonl"
+
+
+def draw_samples(
+    model: Any,
+    tokenizer: Any,
+    prompts: Sequence[str],
+    verifier: Callable,
+    *,
+    temperatures: Sequence[float],
+    n: int,
+    seed: int = 0,
+    top_p: float = 1.0,
+    max_new_tokens: int = 32,
+    batch_size: int | None = None,
+    cache_dir: str | os.PathLike | None = None,
+    verifier_name: str | None = None,
+    progress: bool = True,
+):
+    """Sample n responses per prompt at each temperature and score them.
+
+    prompts: P strings; -> (SampleTable with P * n rows per temperature, info), where
+    info = {"sampled": temperatures drawn now, "cached": temperatures read from cache_dir,
+    "failed": verifier failures, "files": cache files}. Prompt ids are "p0", "p1", ... in order.
+    verifier_name: part of the cache key (default: the verifier's qualified name); change it
+    when the verifier's behaviour changes, or old pools would be reused.
+    """
+    from tqdm.auto import tqdm
+
+    from .plan import _check_temperatures
+    from .samples import SampleTable, read_samples, write_samples
+    from .sampling import sample
+    from .verifiers import score_batch
+
+    temps = _check_temperatures(temperatures)
+    n = check_int("n", n, min=1)
+    seed = check_int("seed", seed, min=0)
+    top_p = check_fraction("top_p", top_p, open_low=True)
+    max_new_tokens = check_int("max_new_tokens", max_new_tokens, min=1)
+    if isinstance(prompts, str) or not all(isinstance(p, str) for p in prompts):
+        raise TypeError("prompts must be a sequence of strings")
+    prompts = list(prompts)
+    if not prompts:
+        raise ValueError("prompts must hold at least one prompt, got none")
+    if not callable(verifier):
+        raise TypeError(f"verifier must be callable as verifier(prompts, responses), got {type(verifier).__name__}")
+    if verifier_name is None:
+        verifier_name = f"{getattr(verifier, '__module__', '')}:{getattr(verifier, '__qualname__', type(verifier).__qualname__)}"
+    ids = [f"p{i}" for i in range(len(prompts))]
+
+    files: dict[float, Path] = {}
+    if cache_dir is not None:
+        os.makedirs(cache_dir, exist_ok=True)
+        m_hash, p_hash = model_fingerprint(model, tokenizer), prompts_fingerprint(prompts)
+        for t in temps:
+            files[float(t)] = cache_file(cache_dir, model_hash=m_hash, prompts_hash=p_hash, verifier=verifier_name,
+                                         temperature=float(t), n=n, seed=seed, top_p=top_p, max_new_tokens=max_new_tokens)
+    cols = {k: [] for k in ("prompt_ids", "scores", "rewards", "temperatures", "n_tokens")}
+    info = {"sampled": [], "cached": [], "failed": 0, "no_rewards": False, "files": [str(f) for f in files.values()]}
+
+    def add(tab):
+        cols["prompt_ids"].append(np.asarray(tab.prompt_ids).astype(str))
+        cols["scores"].append(tab.scores), cols["rewards"].append(tab.rewards)
+        cols["temperatures"].append(tab.temperatures), cols["n_tokens"].append(tab.n_tokens)
+
+    todo = []
+    for t in temps:
+        f = files.get(float(t))
+        if f is not None and f.is_file():
+            tab = read_samples(f)
+            if len(tab) == len(prompts) * n and tab.n_tokens is not None:
+                add(tab)
+                info["cached"].append(float(t))
+                continue
+        todo.append(float(t))
+    bar = tqdm(total=len(todo) * len(prompts) * n, unit="sample", desc="sampling", disable=not progress or not todo)
+    for t in todo:
+        rows = []
+        for c in range(0, len(prompts), PROMPT_CHUNK):
+            bar.set_description(f"sampling T={t:g}")
+            part = prompts[c : c + PROMPT_CHUNK]
+            out = sample(model, tokenizer, part, n=n, temperature=t, top_p=top_p, max_new_tokens=max_new_tokens,
+                         seed=_seed_for(seed, t, c // PROMPT_CHUNK), batch_size=batch_size)
+            flat_p = [p for p in part for _ in range(n)]  # (B, n) -> B*n rows, prompt-major
+            flat_r = [txt for row in out.texts for txt in row]
+            lengths = out.response_mask.sum(-1).reshape(-1).tolist()  # (B, n) generated tokens -> B*n
+            v = score_batch(verifier, flat_p, flat_r)
+            info["failed"] += v.n_failed
+            rewards = v.rewards
+            if rewards is None:  # a verifier without true rewards: plan on its scores
+                info["no_rewards"], rewards = True, v.scores
+            for i in range(len(flat_p)):
+                rows.append({"prompt_id": ids[c + i // n], "score": float(v.scores[i]), "reward": float(rewards[i]),
+                             "temperature": t, "n_tokens": int(lengths[i]), "response": flat_r[i]})
+            bar.update(len(part) * n)
+        tab = SampleTable(
+            prompt_ids=np.asarray([r["prompt_id"] for r in rows]),
+            scores=np.asarray([r["score"] for r in rows], dtype=np.float64),
+            rewards=np.asarray([r["reward"] for r in rows], dtype=np.float64),
+            temperatures=np.full(len(rows), t),
+            n_tokens=np.asarray([r["n_tokens"] for r in rows], dtype=np.int64),
+        )
+        if t in files:
+            write_samples(files[t], rows)  # atomic: a crash leaves no half-written cache file
+        add(tab)
+        info["sampled"].append(t)
+    bar.close()
+    table = SampleTable(**{k: np.concatenate(v) for k, v in cols.items()})
+    return table, info
+
+
+def plan_model(
+    model: Any,
+    tokenizer: Any,
+    prompts: Sequence[str],
+    verifier: Callable,
+    *,
+    temperatures: Sequence[float] = (0.4, 0.7, 1.0, 1.3),
+    n: int = 64,
+    seed: int = 0,
+    top_p: float = 1.0,
+    max_new_tokens: int = 32,
+    batch_size: int | None = None,
+    cache_dir: str | os.PathLike | None = None,
+    verifier_name: str | None = None,
+    progress: bool = True,
+    **plan_kwargs: Any,
+):
+    """Draw pools from a model (see :func:`draw_samples`), then :func:`bonft.plan.plan_samples`.
+
+    plan_kwargs: max_k, budget_samples, budget_tokens, confidence, n_boot, min_gain (seed is shared).
+    -> (PlanResult, info).
+    """
+    from .plan import plan_samples
+
+    table, info = draw_samples(model, tokenizer, prompts, verifier, temperatures=temperatures, n=n, seed=seed,
+                               top_p=top_p, max_new_tokens=max_new_tokens, batch_size=batch_size,
+                               cache_dir=cache_dir, verifier_name=verifier_name, progress=progress)
+    res = plan_samples(table, temperatures=temperatures, seed=seed, **plan_kwargs)
+    if info["no_rewards"]:
+        res.notes.append("the verifier reported no true rewards: values are of its scores")
+    if info["failed"]:
+        res.notes.append(f"the verifier failed on {info['failed']} samples (scored as failures)")
+    return res, info

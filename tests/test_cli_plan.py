@@ -1,0 +1,123 @@
+"""`bonft plan` end to end: samples file, exact file, model mode with the on-disk cache.
+
+Outside references: the definition of best-of-k at its two ends, recomputed from the raw
+file with the json module (k = 1: mean reward; k = n: the reward of the top-scored sample,
+tied top scores sharing their mean reward), and enumeration of all k-tuples for exact mode.
+"""
+from __future__ import annotations
+
+import itertools
+import json
+import math
+from collections import defaultdict
+
+import numpy as np
+import pytest
+
+import bonft.sampling
+from bonft.cli import main
+from bonft.examples import ledger_rows
+from bonft.samples import write_samples
+
+
+@pytest.fixture()
+def samples_file(tmp_path):
+    path = tmp_path / "ledger.jsonl"
+    write_samples(path, ledger_rows(n_prompts=40, n_samples=12, temperatures=(0.5, 0.8, 1.2), seed=7))
+    return path
+
+
+def raw_ends(path):
+    """{T: (V_1, V_n)} from the raw rows: mean reward, and the top-scored sample's reward (definition)."""
+    pools = defaultdict(list)
+    with open(path) as f:
+        for line in f:
+            d = json.loads(line)
+            pools[(d["temperature"], d["prompt_id"])].append((d["score"], d["reward"]))
+    out = defaultdict(lambda: ([], []))
+    for (t, _), pool in pools.items():
+        top = max(s for s, _ in pool)
+        tied = [r for s, r in pool if s == top]
+        out[t][0].append(sum(r for _, r in pool) / len(pool))
+        out[t][1].append(sum(tied) / len(tied))
+    return {t: (np.mean(a), np.mean(b)) for t, (a, b) in out.items()}
+
+
+def test_plan_command_on_samples_file(samples_file, tmp_path, capsys):
+    out_json, plots = tmp_path / "plan.json", tmp_path / "plots"
+    rc = main(["plan", "--samples", str(samples_file), "--budget-samples", "4", "--budget-tokens", "600",
+               "--boot", "300", "--json", str(out_json), "--plot-dir", str(plots)])
+    text = capsys.readouterr().out
+    assert rc == 0, text
+    assert "T=0.5" in text and "T=1.2" in text and "budget 4 samples/prompt" in text and "budget 600 tokens/prompt" in text
+    assert "a fit of this data, not a law" in text
+    d = json.loads(out_json.read_text())
+    ref = raw_ends(samples_file)
+    for i, t in enumerate(d["temperatures"]):
+        assert d["value"][i][0] == pytest.approx(ref[t][0], abs=1e-12)  # k = 1: mean reward
+        assert d["value"][i][-1] == pytest.approx(ref[t][1], abs=1e-12)  # k = n = 12: top-scored sample
+    assert d["ks"] == list(range(1, 13)) and d["paired"] is True
+    tokens = [c for c in d["budgets"] if c["kind"] == "tokens"][0]
+    assert tokens["cost"] <= 600
+    for name in ("plan_heatmap.png", "plan_curves.png"):
+        assert (plots / name).read_bytes()[:4] == b"\x89PNG"
+
+
+def test_plan_command_errors(samples_file, tmp_path, capsys):
+    assert main(["plan"]) == 2
+    assert "give exactly one of --samples, --model or --exact, got 0" in capsys.readouterr().err
+    assert main(["plan", "--samples", str(samples_file), "--max-k", "20"]) == 2
+    assert "max_k must be <= the smallest pool at every temperature (n=12" in capsys.readouterr().err
+    assert main(["plan", "--samples", str(samples_file), "--temperatures", "0.5,x"]) == 2
+    assert "--temperatures must be comma-separated numbers" in capsys.readouterr().err
+    assert main(["plan", "--samples", str(tmp_path / "missing.jsonl")]) == 2
+    assert "--samples file not found" in capsys.readouterr().err
+
+
+def test_plan_command_exact_file(tmp_path, capsys):
+    logits, scores, rewards = [1.0, 0.0, -1.0], [0.2, 0.9, 0.5], [1.0, 0.0, 1.0]
+    spec = tmp_path / "exact.json"
+    spec.write_text(json.dumps({"logits": logits, "scores": scores, "rewards": rewards, "temperatures": [0.5, 1.0, 2.0]}))
+    out_json = tmp_path / "exact_plan.json"
+    assert main(["plan", "--exact", str(spec), "--max-k", "3", "--json", str(out_json)]) == 0
+    d = json.loads(out_json.read_text())
+    # reference: enumeration of all k-tuples of softmax(logits / T) (definition, distinct scores)
+    for i, t in enumerate([0.5, 1.0, 2.0]):
+        e = [math.exp(x / t) for x in logits]
+        p = [x / sum(e) for x in e]
+        for k in (1, 2, 3):
+            v = sum(math.prod(p[j] for j in tup) * rewards[max(tup, key=lambda j: scores[j])]
+                    for tup in itertools.product(range(3), repeat=k))
+            assert d["value"][i][k - 1] == pytest.approx(v, abs=1e-10)
+    assert d["lo"] is None and d["mode"] == "exact"
+    capsys.readouterr()
+
+
+def test_plan_command_model_mode_reuses_cache(tmp_path, monkeypatch, capsys):
+    from bonft.models import build_tiny_model, save_model
+    from bonft.tasks import build_tokenizer
+
+    tok = build_tokenizer()
+    model = build_tiny_model(vocab_size=len(tok), n_layer=1, d_model=32, n_head=2, pad_token_id=tok.pad_token_id,
+                             eos_token_id=tok.eos_token_id, bos_token_id=tok.bos_token_id, seed=1)
+    save_model(model, tok, tmp_path / "ckpt")
+    calls = []
+    real = bonft.sampling.sample
+
+    def counting(*a, **kw):
+        calls.append(kw["temperature"])
+        return real(*a, **kw)
+
+    monkeypatch.setattr(bonft.sampling, "sample", counting)
+    common = ["plan", "--model", str(tmp_path / "ckpt"), "--task", "ledger", "--n-prompts", "5", "--n", "3",
+              "--max-new-tokens", "4", "--boot", "100", "--cache", str(tmp_path / "cache"), "--quiet"]
+    assert main(common + ["--temperatures", "0.7,1.0", "--json", str(tmp_path / "a.json")]) == 0
+    assert sorted(set(calls)) == [0.7, 1.0]
+    calls.clear()
+    assert main(common + ["--temperatures", "0.7,1.0,1.3", "--json", str(tmp_path / "b.json")]) == 0
+    assert calls and set(calls) == {1.3}, f"second run sampled at {calls}"
+    assert len(list((tmp_path / "cache").glob("plan-*.jsonl"))) == 3
+    a, b = (json.loads((tmp_path / f).read_text()) for f in ("a.json", "b.json"))
+    assert b["sampling"]["cached"] == [0.7, 1.0] and b["sampling"]["sampled"] == [1.3]
+    np.testing.assert_array_equal(np.asarray(a["value"]), np.asarray(b["value"])[:2])  # same pools reused
+    assert "reused T=[0.7, 1.0]" in capsys.readouterr().out
