@@ -135,7 +135,7 @@ def _sequence_terms(name: str, lp: Tensor, m: Tensor | None, token_reduction: st
     tok = torch.where(m, lp, torch.zeros_like(lp))  # padding contributes exactly 0, even if NaN
     seq = tok.sum(-1)
     if token_reduction == "mean":
-        t_bar = m.sum() / seq.numel()  # mean response length over the batch
+        t_bar = m.sum().to(seq.dtype) / seq.numel()  # mean response length over the batch
         seq = seq / t_bar
     return seq
 

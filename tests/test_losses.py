@@ -1,0 +1,266 @@
+"""Losses: their gradients equal minus the exact objective gradients, in expectation.
+
+Exactness is shown as in tests/test_credit.py: a categorical policy
+softmax(theta), every ordered pool of n samples enumerated (itertools.product)
+and weighted by its probability; the exact objective comes from bonft.bon
+(autograd) and from closed forms (pass@k = 1 - (1-p)^k, Chen et al. 2021).
+"""
+import itertools
+
+import numpy as np
+import pytest
+import torch
+from hypothesis import given, settings, strategies as st
+
+from bonft.bon import bon_value, log_bon_distribution, softmax_policy
+from bonft.credit import bon_credit, pass_credit, sft_credit
+from bonft.estimate import bon_at_k_per_prompt
+from bonft.losses import bon_rl_loss, bon_sft_loss, nll_loss, pass_at_k_loss, reinforce_loss
+
+TOL = 1e-10
+
+
+def all_tuples(V, n):
+    return torch.tensor(list(itertools.product(range(V), repeat=n)), dtype=torch.long)
+
+
+def expected_loss_grad(theta, n, loss_fn):
+    """grad_theta E_pools[loss(pool)]: loss_fn(logprobs (M, n), Y (M, n)) -> (M,) per pool."""
+    V = len(theta)
+    Y = all_tuples(V, n)
+    th = torch.tensor(theta, dtype=torch.float64, requires_grad=True)
+    logp = torch.log_softmax(th, -1)
+    P = torch.exp(logp.detach()[Y].sum(-1))  # pool probabilities, no gradient (score-function form)
+    per_pool = loss_fn(logp[Y], Y)
+    (P * per_pool).sum().backward()
+    return th.grad.numpy()
+
+
+def exact_grad(f, theta):
+    th = torch.tensor(theta, dtype=torch.float64, requires_grad=True)
+    f(th).backward()
+    return th.grad.numpy()
+
+
+@st.composite
+def cfg(draw):
+    V = draw(st.integers(3, 5))
+    n = draw(st.integers(1, 4 if V == 5 else 5))
+    k = draw(st.integers(1, n))
+    return V, n, k, draw(st.integers(0, 2**31 - 1))
+
+
+@settings(max_examples=25)
+@given(cfg())
+def test_bon_rl_loss_gradient_is_minus_grad_vk(c):
+    V, n, k, seed = c
+    rng = np.random.default_rng(seed)
+    theta = rng.normal(size=V)
+    s = torch.tensor(rng.integers(0, 3, size=V).astype(float))
+    R = torch.tensor(rng.normal(size=V))
+    want = -exact_grad(lambda th: bon_value(softmax_policy(th), s, R, k), theta)
+    for baseline in ("loo", "none"):
+        got = expected_loss_grad(theta, n, lambda lp, Y: bon_rl_loss(
+            lp, s[Y], R[Y], k=k, baseline=baseline, reduction="none")[0])
+        assert np.abs(got - want).max() < TOL, (V, n, k, baseline, got, want)
+
+
+@settings(max_examples=25)
+@given(cfg())
+def test_pass_and_reinforce_loss_gradients(c):
+    V, n, k, seed = c
+    rng = np.random.default_rng(seed)
+    theta = rng.normal(size=V)
+    R = torch.tensor((rng.random(V) < 0.5).astype(float))
+
+    def pass_k(th, kk):  # 1 - (1-p)^k, Chen et al. 2021
+        return 1 - (1 - (torch.softmax(th, -1) * R).sum()) ** kk
+
+    got = expected_loss_grad(theta, n, lambda lp, Y: pass_at_k_loss(lp, R[Y], k=k, reduction="none")[0])
+    assert np.abs(got + exact_grad(lambda th: pass_k(th, k), theta)).max() < TOL
+    # positive_only estimates grad[(k/(k+1)) pass@(k+1)] for k < n, grad pass@k for k = n
+    target = (lambda th: k / (k + 1) * pass_k(th, k + 1)) if k < n else (lambda th: pass_k(th, k))
+    got = expected_loss_grad(theta, n, lambda lp, Y: pass_at_k_loss(
+        lp, R[Y], k=k, positive_only=True, reduction="none")[0])
+    assert np.abs(got + exact_grad(target, theta)).max() < TOL
+    # leave-one-out REINFORCE (Kool et al. 2019) is unbiased for grad E[R]
+    Rc = torch.tensor(rng.normal(size=V))
+    got = expected_loss_grad(theta, n, lambda lp, Y: reinforce_loss(lp, Rc[Y], reduction="none")[0])
+    assert np.abs(got + exact_grad(lambda th: (torch.softmax(th, -1) * Rc).sum(), theta)).max() < TOL
+
+
+def test_bon_sft_loss_gradient_matches_credit_and_bias_shrinks():
+    # Target: grad log pi_bon(y*) (Chow et al. 2024), exact via bonft.bon autograd.
+    theta = np.array([0.4, -0.1, 0.2, -0.5])
+    s = torch.tensor([0.0, 1.0, 1.0, 2.0])
+    y_star, k = 1, 3
+    exact = exact_grad(lambda th: log_bon_distribution(softmax_policy(th), s, k)[y_star], theta)
+    errs = []
+    for n in (3, 4, 5, 6):
+        V = len(theta)
+        Y = all_tuples(V, n)
+        th = torch.tensor(theta, dtype=torch.float64, requires_grad=True)
+        logp = torch.log_softmax(th, -1)
+        P = torch.exp(logp.detach()[Y].sum(-1))
+        M = Y.shape[0]
+        per = bon_sft_loss(logp[y_star].expand(M), logp[Y], s[Y], torch.full((M,), float(s[y_star])),
+                           k=k, reduction="none")[0]
+        (P * per).sum().backward()
+        got = -th.grad.numpy()
+        # same number from the credit function directly
+        p = np.exp(theta) / np.exp(theta).sum()
+        w = sft_credit(s[Y].numpy(), np.full(M, float(s[y_star])), k)
+        direct = (np.eye(V)[y_star] - p) + np.einsum("m,mi,miv->v", P.numpy(), w, np.eye(V)[Y.numpy()] - p)
+        np.testing.assert_allclose(got, direct, atol=1e-12)
+        errs.append(float(np.abs(got - exact).max()))
+    assert all(b < a for a, b in zip(errs, errs[1:])) and errs[-1] < 0.7 * errs[0], f"BoN-SFT bias, n=3..6: {errs}"
+
+
+def test_k3_kl_value_and_gradient_by_enumeration():
+    # KL definitions; k3 = exp(d) - d - 1 with d = log ref - log pi (J. Schulman, 2020 note,
+    # from memory): E_pi[k3] = KL(pi||ref); E_pi[grad k3] = grad KL(ref||pi).
+    theta, theta_ref = np.array([0.2, -0.4, 0.9]), torch.tensor([0.0, 0.3, -0.2], dtype=torch.float64)
+    ref_lp = torch.log_softmax(theta_ref, -1)
+    Y = all_tuples(3, 1)
+    got = expected_loss_grad(theta, 1, lambda lp, Yy: reinforce_loss(
+        lp, torch.zeros(len(Yy), 1), ref_logprobs=ref_lp[Yy], kl_coef=1.0, reduction="none")[0])
+
+    def kl_ref_pi(th):
+        lp = torch.log_softmax(th, -1)
+        return (ref_lp.exp() * (ref_lp - lp)).sum()
+
+    np.testing.assert_allclose(got, exact_grad(kl_ref_pi, theta), atol=1e-12)
+    lp = torch.log_softmax(torch.tensor(theta), -1)
+    _, info = reinforce_loss(lp[Y], torch.zeros(3, 1), ref_logprobs=ref_lp[Y], reduction="none")
+    d = (ref_lp - lp).numpy()
+    assert info["kl"] == pytest.approx(float(np.mean(np.expm1(d) - d)), abs=1e-14)
+    kl_pi_ref = float((lp.exp() * (lp - ref_lp)).sum())
+    assert float((lp.exp() * (torch.expm1(ref_lp - lp) - (ref_lp - lp))).sum()) == pytest.approx(kl_pi_ref, abs=1e-14)
+
+
+def token_batch(B=3, n=4, T=6, seed=0):
+    """Random token log-probs with ragged lengths; padding holds NaN and -inf."""
+    g = torch.Generator().manual_seed(seed)
+    lp = -torch.rand(B, n, T, generator=g, dtype=torch.float64)
+    lengths = torch.randint(1, T + 1, (B, n), generator=g)
+    mask = torch.arange(T)[None, None, :] < lengths[..., None]
+    lp = torch.where(mask, lp, torch.tensor(float("nan"), dtype=torch.float64))
+    lp[~mask & (torch.arange(T) % 2 == 0)] = float("-inf")
+    return lp, mask, lengths
+
+
+def sliced_sums(lp, lengths):
+    """Sequence log-probs by slicing each row to its length (the reference for masking)."""
+    B, n, _ = lp.shape
+    return torch.stack([torch.stack([lp[b, i, : lengths[b, i]].sum() for i in range(n)]) for b in range(B)])
+
+
+def test_masks_equal_slicing_and_padding_gets_no_gradient():
+    lp0, mask, lengths = token_batch()
+    B, n, T = lp0.shape
+    g = torch.Generator().manual_seed(1)
+    s = torch.randint(0, 3, (B, n), generator=g).double()
+    R = torch.rand(B, n, generator=g, dtype=torch.float64)
+    for fn in (lambda x, **kw: bon_rl_loss(x, s, R, k=2, **kw),
+               lambda x, **kw: pass_at_k_loss(x, R > 0.5, k=3, **kw),
+               lambda x, **kw: reinforce_loss(x, R, **kw)):
+        lp = lp0.clone().requires_grad_(True)
+        loss, info = fn(lp, mask=mask)
+        loss.backward()
+        assert torch.isfinite(loss) and torch.isfinite(lp.grad).all()
+        assert (lp.grad[~mask] == 0).all()
+        seq = sliced_sums(lp0.detach(), lengths).requires_grad_(True)
+        loss2, info2 = fn(seq)
+        loss2.backward()
+        assert abs(loss.item() - loss2.item()) < 1e-13 and info == info2
+        # each token of sample (b, i) gets the sample's gradient
+        np.testing.assert_allclose(lp.grad.numpy(), (seq.grad[..., None] * mask).numpy(), atol=1e-14)
+        # 'mean' divides every token by the batch's mean response length
+        lp_m = lp0.clone()
+        loss_m, _ = fn(lp_m, mask=mask, token_reduction="mean")
+        t_bar = float(mask.sum()) / (B * n)
+        assert abs(loss_m.item() - loss2.item() / t_bar) < 1e-13
+
+
+def test_reductions_and_info():
+    g = torch.Generator().manual_seed(2)
+    lp = -torch.rand(2, 5, generator=g, dtype=torch.float64)
+    s = torch.randint(0, 4, (2, 5), generator=g).double()
+    R = torch.stack([torch.rand(5, generator=g, dtype=torch.float64), torch.full((5,), 0.3, dtype=torch.float64)])
+    none, info = bon_rl_loss(lp, s, R, k=3, reduction="none")
+    mean, _ = bon_rl_loss(lp, s, R, k=3)
+    total, _ = bon_rl_loss(lp, s, R, k=3, reduction="sum")
+    assert none.shape == (2,)
+    assert abs(float(mean) - float(none.sum()) / 2) < 1e-15 and abs(float(total) - float(none.sum())) < 1e-15
+    w = bon_credit(s, R, 3)
+    np.testing.assert_allclose(none.numpy(), -(w * lp).sum(-1).numpy(), atol=1e-15)
+    assert info["zero_credit_frac"] == 0.5  # second prompt: all rewards equal -> no signal
+    assert info["credit_mean"] == pytest.approx(float(w.mean()), abs=1e-15)
+    # pool value against bonft.estimate's rank formula (Chow et al. 2024)
+    assert info["pool_value"] == pytest.approx(float(bon_at_k_per_prompt(s.numpy(), R.numpy(), 3).mean()), abs=1e-14)
+    _, pinfo = pass_at_k_loss(lp, R > 0.5, k=2)
+    c = (R > 0.5).sum(-1).numpy()
+    # unbiased pass@k 1 - C(n-c,k)/C(n,k) (Chen et al. 2021) for n=5, k=2
+    from math import comb
+    assert pinfo["pool_value"] == pytest.approx(np.mean([1 - comb(5 - ci, 2) / comb(5, 2) for ci in c]), abs=1e-14)
+    assert "kl" not in info
+    # KL term adds kl_coef * mean_i KL_i per prompt
+    ref = lp.detach() + 0.2
+    with_kl, kinfo = bon_rl_loss(lp, s, R, k=3, ref_logprobs=ref, kl_coef=0.5, reduction="none")
+    k3 = np.expm1(0.2) - 0.2
+    np.testing.assert_allclose((with_kl - none).numpy(), [0.5 * k3, 0.5 * k3], atol=1e-14)
+    assert kinfo["kl"] == pytest.approx(k3, abs=1e-14)
+
+
+def test_bon_sft_and_nll_with_masks():
+    lp, mask, lengths = token_batch(B=2, n=3, T=5, seed=3)
+    e_lp, e_mask, e_len = token_batch(B=2, n=1, T=7, seed=4)
+    e_lp, e_mask, e_len = e_lp[:, 0], e_mask[:, 0], e_len[:, 0]
+    s = torch.tensor([[0.0, 1.0, 2.0], [2.0, 2.0, 0.5]], dtype=torch.float64)
+    e_s = torch.tensor([1.0, 1.0], dtype=torch.float64)
+    loss, info = bon_sft_loss(e_lp, lp, s, e_s, k=2, expert_mask=e_mask, mask=mask, reduction="none")
+    seq = sliced_sums(lp, lengths)
+    e_seq = torch.stack([e_lp[b, : e_len[b]].sum() for b in range(2)])
+    w = sft_credit(s, e_s, 2)
+    np.testing.assert_allclose(loss.numpy(), (-(e_seq + (w * seq).sum(-1))).numpy(), atol=1e-13)
+    assert info["beaten_frac"] == pytest.approx(3 / 6) and info["expert_logprob"] == pytest.approx(float(e_seq.mean()))
+    nll, ninfo = nll_loss(e_lp, mask=e_mask)
+    assert float(nll) == pytest.approx(-float(e_seq.mean()), abs=1e-14) and ninfo["tokens"] == float(e_mask.sum())
+    nll_m, _ = nll_loss(e_lp, mask=e_mask, token_reduction="mean", reduction="sum")
+    assert float(nll_m) == pytest.approx(-float(e_seq.sum()) / (float(e_mask.sum()) / 2), abs=1e-13)
+    assert float(nll_loss(torch.tensor([-1.0, -3.0]))[0]) == 2.0
+
+
+def test_bad_input_messages():
+    lp, mask, _ = token_batch(B=2, n=3, T=4)
+    s = torch.zeros(2, 3)
+    bad_mask = mask.clone()
+    bad_mask[1, 2] = False
+    with pytest.raises(ValueError, match=r"mask must mark at least one token per sequence, got an all-zero row at index \(1, 2\)"):
+        bon_rl_loss(lp, s, s, k=2, mask=bad_mask)
+    with pytest.raises(ValueError, match=r"mask must have the same shape as logprobs \(2, 3, 4\), got \(2, 3, 3\)"):
+        reinforce_loss(lp, s, mask=mask[..., :3])
+    with pytest.raises(ValueError, match=r"logprobs must be finite where the mask is 1, got nan at index \(0, 0, 0\)"):
+        reinforce_loss(torch.full((2, 3, 4), float("nan")), s)
+    with pytest.raises(TypeError, match=r"logprobs must be a torch.Tensor, got ndarray"):
+        reinforce_loss(np.zeros((2, 3)), s)
+    with pytest.raises(ValueError, match=r"k must be <= n \(n=3\), got k=4"):
+        bon_rl_loss(lp, s, s, k=4, mask=mask)
+    with pytest.raises(ValueError, match=r"rewards must have shape \(B, n\) = \(2, 3\) to match logprobs, got \(2, 4\)"):
+        bon_rl_loss(lp, s, torch.zeros(2, 4), k=1, mask=mask)
+    with pytest.raises(ValueError, match=r"token_reduction must be one of \('sum', 'mean'\), got 'max'"):
+        reinforce_loss(lp, s, mask=mask, token_reduction="max")
+    with pytest.raises(ValueError, match=r"reduction must be one of \('none', 'mean', 'sum'\), got 'avg'"):
+        nll_loss(lp[:, 0], reduction="avg")
+    with pytest.raises(ValueError, match=r"kl_coef must be a finite number >= 0, got kl_coef=-0.1"):
+        reinforce_loss(lp, s, mask=mask, kl_coef=-0.1)
+    with pytest.raises(ValueError, match=r"token_reduction='mean' needs token log-probs \(3 dimensions\), got logprobs of shape \(2, 3\)"):
+        reinforce_loss(torch.zeros(2, 3), s, token_reduction="mean")
+    with pytest.raises(ValueError, match=r"ref_logprobs must have the same shape as logprobs \(2, 3\), got \(2, 4\)"):
+        reinforce_loss(torch.zeros(2, 3), s, ref_logprobs=torch.zeros(2, 4))
+    with pytest.raises(ValueError, match=r"correct must hold only 0/1 \(or booleans\), got 2.0 at index \(0, 0\)"):
+        pass_at_k_loss(torch.zeros(2, 3), torch.full((2, 3), 2.0), k=1)
+    with pytest.raises(ValueError, match=r"expert_scores must have shape \(B,\) = \(2,\), got \(3,\)"):
+        bon_sft_loss(torch.zeros(2), torch.zeros(2, 3), s, torch.zeros(3), k=1)
+    with pytest.raises(ValueError, match=r"mask needs token log-probs \(3 dimensions\), got logprobs of shape \(2, 3\)"):
+        reinforce_loss(torch.zeros(2, 3), s, mask=torch.ones(2, 3))
