@@ -1,0 +1,130 @@
+"""The report of :func:`bonft.testing.check_verifier`, and the ROC AUC it uses."""
+from __future__ import annotations
+
+import math
+from dataclasses import asdict, dataclass, field
+from typing import Any
+
+import numpy as np
+from scipy.stats import rankdata
+
+
+def roc_auc(scores: Any, labels: Any) -> float | None:
+    """Area under the ROC curve: ``(N,), (N,) bool -> float``, None if a class is empty.
+
+    The Mann-Whitney form (Mann & Whitney 1947): the chance that a random
+    positive scores above a random negative, ties counting one half::
+
+        AUC = (sum of the positives' average ranks - n1 (n1 + 1) / 2) / (n1 * n0)
+    """
+    s = np.asarray(scores, dtype=np.float64).reshape(-1)
+    y = np.asarray(labels, dtype=bool).reshape(-1)
+    n1 = int(y.sum())
+    n0 = y.size - n1
+    if n1 == 0 or n0 == 0:
+        return None
+    ranks = rankdata(s)  # average ranks: ties share the mean of their positions
+    return float((ranks[y].sum() - n1 * (n1 + 1) / 2) / (n1 * n0))
+
+
+@dataclass
+class VerifierReport:
+    """What :func:`bonft.testing.check_verifier` found. ``ok`` is ``not problems``.
+
+    Curves: ``bon[j]`` is the mean true reward of the verifier's pick among
+    ``ks[j]`` samples, ``oracle[j]`` the best true reward among ``ks[j]``
+    (pass@k for 0/1 rewards), both averaged over prompts.
+    """
+
+    n_prompts: int
+    n_samples: int
+    repeats: int
+    n_nondeterministic: int
+    nondeterministic_examples: list[dict] = field(default_factory=list)
+    n_exceptions: int = 0
+    n_nan: int = 0
+    n_timeouts: int = 0
+    failure_examples: list[str] = field(default_factory=list)
+    score_min: float = math.nan
+    score_max: float = math.nan
+    score_mean: float = math.nan
+    latency_ms_per_call: float = math.nan
+    latency_ms_p95: float = math.nan
+    latency_ms_per_sample: float = math.nan
+    n_labelled: int = 0
+    n_positive: int = 0
+    threshold: float = 0.5
+    accuracy: float | None = None
+    auc: float | None = None
+    ks: list[int] = field(default_factory=list)
+    bon: list[float] = field(default_factory=list)
+    oracle: list[float] = field(default_factory=list)
+    problems: list[str] = field(default_factory=list)
+
+    @property
+    def ok(self) -> bool:
+        return not self.problems
+
+    @property
+    def failure_rate(self) -> float:
+        return (self.n_exceptions + self.n_nan + self.n_timeouts) / max(self.n_samples, 1)
+
+    def to_dict(self) -> dict:
+        """Plain JSON-able dict (None where a figure could not be computed)."""
+        d = asdict(self)
+        for k, v in d.items():
+            if isinstance(v, float) and not math.isfinite(v):
+                d[k] = None
+        d["ok"] = self.ok
+        d["failure_rate"] = self.failure_rate
+        return d
+
+    def __str__(self) -> str:
+        def f(x: float | None, spec: str = ".4g") -> str:
+            return "n/a" if x is None or (isinstance(x, float) and not math.isfinite(x)) else format(x, spec)
+
+        n = self.n_samples
+        rows = [
+            ("prompts / samples", f"{self.n_prompts} / {n}"),
+            ("determinism", f"{self.n_nondeterministic} of {n} differ over {self.repeats} runs"),
+            ("failures", f"{self.failure_rate:.1%} (exceptions {self.n_exceptions}, NaN {self.n_nan}, timeouts {self.n_timeouts})"),
+            ("score range", f"[{f(self.score_min)}, {f(self.score_max)}], mean {f(self.score_mean)}"),
+            ("latency", f"{f(self.latency_ms_per_call, '.3g')} ms/call (p95 {f(self.latency_ms_p95, '.3g')}), "
+                        f"{f(self.latency_ms_per_sample, '.3g')} ms/sample"),
+            ("labelled", f"{self.n_labelled} ({self.n_positive} correct)"),
+            (f"accuracy @ {self.threshold:g}", f(self.accuracy, ".3f")),
+            ("ROC AUC", f(self.auc, ".3f")),
+        ]
+        w = max(len(k) for k, _ in rows)
+        lines = ["verifier check: " + ("OK" if self.ok else f"{len(self.problems)} problem(s)")]
+        lines += [f"  {k:<{w}}  {v}" for k, v in rows]
+        if self.ks:
+            lines.append(f"  {'k':>6}  {'best-of-k':>10}  {'oracle':>8}  {'gap':>7}")
+            for k, b, o in zip(self.ks, self.bon, self.oracle):
+                lines.append(f"  {k:>6}  {b:>10.4f}  {o:>8.4f}  {o - b:>7.4f}")
+        lines += [f"  PROBLEM: {p}" for p in self.problems]
+        return "\n".join(lines)
+
+    def plot(self, path: str) -> str:
+        """Plot best-of-k (verifier's pick) against the oracle as k grows, to ``path`` (PNG); returns ``path``."""
+        import matplotlib
+
+        matplotlib.use("Agg")
+        import matplotlib.pyplot as plt
+
+        fig, ax = plt.subplots(figsize=(6, 4))
+        if self.ks:
+            ax.plot(self.ks, self.oracle, "o--", label="oracle (best true reward among k)")
+            ax.plot(self.ks, self.bon, "o-", label="verifier's pick (true reward)")
+            ax.set_xscale("log", base=2)
+            ax.set_xlabel("k (samples per prompt)")
+            ax.set_ylabel("mean true reward")
+            ax.legend(loc="best", fontsize=8)
+        else:
+            ax.text(0.5, 0.5, "no true rewards: no curves", ha="center", va="center")
+        status = "OK" if self.ok else "; ".join(p.split(":")[0] for p in self.problems)
+        ax.set_title(f"verifier check: {status}", fontsize=9)
+        fig.tight_layout()
+        fig.savefig(path, dpi=100)
+        plt.close(fig)
+        return str(path)

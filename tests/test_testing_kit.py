@@ -1,0 +1,207 @@
+"""bonft.testing: check_verifier flags the verifiers it should, with figures; AUC and curves
+are checked against brute-force definitions."""
+import itertools
+import json
+import random
+import re
+from math import comb
+from pathlib import Path
+
+import numpy as np
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from bonft.cli import main as cli_main
+from bonft.testing import check_verifier, read_examples, roc_auc, sample_pools
+from bonft.verifiers import ExactMatch, NoisyProxy, NumericMatch, Verdicts
+
+pytest_plugins = ["bonft.pytest_plugin"]
+
+DOCS = Path(__file__).resolve().parents[1] / "docs" / "verifiers.md"
+EXACT = ExactMatch({"2+2?": "4", "3*3?": "9"})
+POOLS = [
+    {"prompt": "2+2?", "responses": ["answer: 4"] * 3 + ["answer: 5", "answer: 22", "no idea", "answer: 4.", "4"]},
+    {"prompt": "3*3?", "responses": ["answer: 9", "answer: 6", "answer: 33", "9", "answer: nine", "answer: 9", "x", "y"]},
+]
+
+
+def test_a_good_verifier_passes_and_the_report_is_complete(tmp_path):
+    rep = check_verifier(EXACT, POOLS, repeats=3)
+    assert rep.ok, str(rep)
+    assert (rep.n_prompts, rep.n_samples, rep.n_nondeterministic, rep.failure_rate) == (2, 16, 0, 0.0)
+    assert (rep.score_min, rep.score_max) == (0.0, 1.0)
+    # 8 of 16 responses are correct (5 in pool 1, 3 in pool 2 counting the bare "9")
+    assert (rep.n_labelled, rep.n_positive, rep.accuracy, rep.auc) == (16, 8, 1.0, 1.0)
+    # a verifier whose scores are the rewards picks like the oracle: Chen et al. 2021 pass@k
+    # 1 - C(n-c, k)/C(n, k), here n = 8 per pool, c = 5 and 3
+    want = [np.mean([1 - comb(8 - c, k) / comb(8, k) for c in (5, 3)]) for k in (1, 2, 4, 8)]
+    assert rep.ks == [1, 2, 4, 8]
+    np.testing.assert_allclose(rep.oracle, want, rtol=1e-12)
+    np.testing.assert_allclose(rep.bon, want, rtol=1e-12)
+    text = str(rep)
+    assert "verifier check: OK" in text and "ROC AUC            1.000" in text
+    d = rep.to_dict()
+    assert json.loads(json.dumps(d))["ok"] is True and d["latency_ms_per_call"] > 0
+    out = rep.plot(str(tmp_path / "curve.png"))
+    assert Path(out).read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+
+
+def test_non_deterministic_verifier_is_flagged():
+    rng = random.Random(0)
+
+    def jittery(prompts, responses):
+        return [float(r.startswith("answer")) + rng.random() * 1e-3 for r in responses]
+
+    rep = check_verifier(jittery, POOLS)
+    assert not rep.ok
+    msg = rep.problems[0]
+    assert msg.startswith("non-deterministic: 16 of 16 re-scored samples (100.0%) changed score"), msg
+    assert rep.n_nondeterministic == 16
+
+
+def test_batch_order_dependence_is_flagged():
+    def position_bias(prompts, responses):  # the first sample of each batch gets a bonus
+        return [1.0 if i == 0 else 0.0 for i in range(len(responses))]
+
+    rep = check_verifier(position_bias, POOLS)
+    # reversing the batch moves the bonus from the first to the last sample of each pool: 2 changes per pool
+    assert rep.n_nondeterministic == 4, str(rep)
+    assert "non-deterministic: 4 of 16 re-scored samples (25.0%)" in rep.problems[0]
+
+
+def test_crashing_verifier_is_flagged_with_the_rate():
+    def fragile(prompts, responses):
+        return [1.0 / (len(r) - 1) for r in responses]  # "4", "9", "x", "y" have length 1 -> ZeroDivisionError
+
+    rep = check_verifier(fragile, POOLS)
+    assert (rep.n_exceptions, rep.n_nan, rep.n_timeouts) == (4, 0, 0)
+    msg = next(p for p in rep.problems if p.startswith("failures"))
+    assert "failures: 25.0% of 16 samples > max_failure_rate=0 (exceptions 4, NaN 0, timeouts 0)" in msg, msg
+    assert "ZeroDivisionError" in msg
+    rep2 = check_verifier(fragile, POOLS, max_failure_rate=0.3)  # the tolerance is honoured
+    assert not any(p.startswith("failures") for p in rep2.problems), rep2.problems
+
+
+def test_nan_scores_are_counted():
+    rep = check_verifier(lambda p, r: [float("nan") if x == "x" else 1.0 for x in r], POOLS)
+    assert rep.n_nan == 1 and "NaN 1" in rep.problems[0]
+
+
+def test_gameable_length_proxy_bends_down_while_oracle_rises():
+    # 32 responses per prompt: 8 short correct, 22 short wrong, 2 long wrong.
+    # The proxy adds 0.5 per 100 characters, so the long wrong ones outscore everything.
+    answers = {f"q{i}": str(i) for i in range(4)}
+    exact = ExactMatch(answers)
+    pools = []
+    for p, a in answers.items():
+        wrong = [f"answer: {int(a) + 1 + j}" for j in range(22)]
+        long_wrong = ["answer: " + str(int(a) + 50) + " " + "because " * 60 + str(j) for j in range(2)]
+        pools.append({"prompt": p, "responses": [f"answer: {a}"] * 8 + wrong + long_wrong})
+    proxy = NoisyProxy(exact, length_bias=0.5, score_noise=0.01, seed=3)
+    rep = check_verifier(proxy, pools)
+    assert rep.ks == [1, 2, 4, 8, 16, 32]
+    peak = int(np.argmax(rep.bon))
+    assert 0 < peak < len(rep.ks) - 1, f"best-of-k {rep.bon} should rise, then fall"
+    assert rep.bon[-1] == 0.0, f"at k=32 a long wrong answer is always picked, got {rep.bon[-1]}"
+    assert np.all(np.diff(rep.oracle) > 0) and rep.oracle[-1] == 1.0, f"oracle {rep.oracle} should keep rising"
+    msg = next(p for p in rep.problems if p.startswith("over-optimisation"))
+    assert re.search(r"peaks at k=\d+ \(0\.\d{3}\) and falls to 0\.000 at k=32", msg), msg
+    # the same pools scored by the exact checker: no bend
+    assert check_verifier(exact, pools).ok
+
+
+def test_bon_curve_matches_brute_force_subsets():
+    # brute force: average over all C(n, k) subsets of the true reward of the top-scored member
+    scores = [0.9, 0.1, 0.5, 0.7, 0.3]
+    rewards = [0.0, 1.0, 1.0, 0.0, 1.0]
+    resp = [f"r{i}" for i in range(5)]
+    table = dict(zip(resp, zip(scores, rewards)))
+    ver = lambda p, r: Verdicts(scores=[table[x][0] for x in r], rewards=[table[x][1] for x in r])  # noqa: E731
+    rep = check_verifier(ver, [{"prompt": "p", "responses": resp}], ks=[1, 2, 3, 5], min_auc=0.0, bend_tol=1.0)
+    for k, got in zip(rep.ks, rep.bon):
+        subsets = list(itertools.combinations(range(5), k))
+        want = np.mean([rewards[max(s, key=lambda i: scores[i])] for s in subsets])
+        assert got == pytest.approx(want, abs=1e-12), (k, got, want)
+
+
+def test_roc_auc_worked_example():
+    # scikit-learn's roc_auc_score documentation example (from memory): y = [0, 0, 1, 1],
+    # scores = [0.1, 0.4, 0.35, 0.8] -> AUC 0.75
+    assert roc_auc([0.1, 0.4, 0.35, 0.8], [0, 0, 1, 1]) == pytest.approx(0.75)
+    assert roc_auc([1, 2], [1, 1]) is None  # one class only
+
+
+@settings(max_examples=60)
+@given(st.lists(st.tuples(st.integers(0, 4), st.booleans()), min_size=2, max_size=12))
+def test_roc_auc_equals_mann_whitney_pair_count(pairs):
+    # Mann & Whitney 1947: U counts pairs (positive, negative) with the positive higher, ties 1/2;
+    # AUC = U / (n1 * n0). Small integer scores force many ties.
+    s = [float(a) for a, _ in pairs]
+    y = [b for _, b in pairs]
+    pos = [a for a, b in zip(s, y) if b]
+    neg = [a for a, b in zip(s, y) if not b]
+    got = roc_auc(s, y)
+    if not pos or not neg:
+        assert got is None
+        return
+    u = sum(1.0 if a > b else 0.5 if a == b else 0.0 for a in pos for b in neg)
+    assert got == pytest.approx(u / (len(pos) * len(neg)), abs=1e-12)
+
+
+@settings(max_examples=25)
+@given(sample_pools(n=4))
+def test_builtin_checkers_survive_awkward_pools(pools):
+    answers = {p["prompt"]: "42" for p in pools}
+    for verifier in (ExactMatch(answers), NumericMatch(answers)):
+        rep = check_verifier(verifier, pools)
+        assert rep.failure_rate == 0.0 and rep.n_nondeterministic == 0, str(rep)
+        assert 0.0 <= rep.score_min <= rep.score_max <= 1.0
+
+
+def test_docs_example_runs(capsys):
+    code = re.search(r"<!-- example:start -->\n```python\n(.*?)```", DOCS.read_text(), re.S).group(1)
+    assert len(code.strip().splitlines()) == 10
+    exec(compile(code, str(DOCS), "exec"), {})
+    assert "over-optimisation" in capsys.readouterr().out
+
+
+def test_pytest_fixture(verifier_check):
+    rep = verifier_check(EXACT, POOLS)
+    assert rep.auc == 1.0
+    bad = verifier_check(lambda p, r: [1.0] * len(r), POOLS, expect_ok=False)
+    assert "constant scores: all 16 samples score 1" in bad.problems[0]
+
+
+def test_cli_check_verifier(tmp_path, capsys):
+    ver = tmp_path / "myver.py"
+    ver.write_text("def score(prompts, responses):\n    return [float('4' in r) for r in responses]\n")
+    ex = tmp_path / "ex.jsonl"
+    rows = [{"prompt": "2+2?", "response": r, "reward": float(r == "4")} for r in ["4", "5", "4", "x"]]
+    ex.write_text("\n".join(json.dumps(r) for r in rows) + "\n")
+    out_json = tmp_path / "rep.json"
+    assert cli_main(["check-verifier", f"{ver}:score", "--examples", str(ex), "--json", str(out_json)]) == 0
+    assert "verifier check: OK" in capsys.readouterr().out
+    assert json.loads(out_json.read_text())["n_samples"] == 4
+    ver.write_text("def score(prompts, responses):\n    return [1.0 / (r != 'x') for r in responses]\n")
+    assert cli_main(["check-verifier", f"{ver}:score", "--examples", str(ex)]) == 1
+    assert "failures: 25.0% of 4 samples" in capsys.readouterr().out
+    assert cli_main(["check-verifier", f"{ver}:score", "--examples", str(tmp_path / "none.jsonl")]) == 2
+    assert "--examples must be an existing JSONL file" in capsys.readouterr().err
+
+
+def test_examples_and_arguments_are_validated(tmp_path):
+    with pytest.raises(ValueError, match="examples must not be empty"):
+        check_verifier(EXACT, [])
+    with pytest.raises(TypeError, match=r"examples\[0\]\['prompt'\] must be a str, got int"):
+        check_verifier(EXACT, [{"prompt": 3, "response": "x"}])
+    with pytest.raises(ValueError, match=r"examples\[0\]\['rewards'\] must have 2 entries like 'responses', got 1"):
+        check_verifier(EXACT, [{"prompt": "2+2?", "responses": ["a", "b"], "rewards": [1]}])
+    with pytest.raises(ValueError, match="repeats must be >= 2 to test determinism, got repeats=1"):
+        check_verifier(EXACT, POOLS, repeats=1)
+    with pytest.raises(TypeError, match="verifier must be callable"):
+        check_verifier("exact", POOLS)
+    bad = tmp_path / "bad.jsonl"
+    bad.write_text('{"prompt": "p", "response": "r"}\nnot json\n')
+    with pytest.raises(ValueError, match=r"bad.jsonl:2: examples must be JSON objects, got invalid JSON"):
+        read_examples(str(bad))
