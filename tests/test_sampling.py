@@ -1,0 +1,311 @@
+"""Tests of bonft.sampling: the decoding loop and the training forward pass.
+
+References used below:
+- exact next-token law softmax(logits / T) of a model whose logits are a fixed
+  table (computed here with numpy), compared with empirical frequencies by
+  Pearson's chi-square test (scipy.stats.chisquare);
+- top-p (nucleus) truncation as defined by Holtzman et al. 2020, "The Curious
+  Case of Neural Text Degeneration": keep the smallest set of most likely
+  tokens whose mass reaches p, renormalise;
+- the geometric law of the stopping time when EOS has a fixed probability per step.
+"""
+from types import SimpleNamespace
+
+import numpy as np
+import pytest
+import torch
+from scipy import stats
+
+from bonft.models import build_tiny_model
+from bonft.sampling import Samples, sample, sequence_logprobs
+from bonft.tasks.tokenizer import BOS_ID, EOS_ID, PAD_ID, build_tokenizer, char_vocab
+
+TOK = build_tokenizer()
+V = TOK.vocab_size
+
+
+@pytest.fixture(autouse=True, scope="module")
+def _one_thread():
+    # tiny matrices: thread hand-offs cost more than the math (and the CPUs are shared); restore after
+    before = torch.get_num_threads()
+    torch.set_num_threads(1)
+    yield
+    torch.set_num_threads(before)
+CH = char_vocab()
+
+
+class TableLM(torch.nn.Module):
+    """A causal LM whose next-token logits depend only on the last token: logits = table[last token].
+
+    Exposes the interface the sampler needs (input_ids, attention_mask,
+    position_ids, past_key_values, use_cache -> .logits, .past_key_values)."""
+
+    def __init__(self, table):
+        super().__init__()
+        self.table = torch.nn.Parameter(torch.as_tensor(table, dtype=torch.float32), requires_grad=False)
+        self.calls = 0
+
+    def forward(self, input_ids, attention_mask=None, position_ids=None, past_key_values=None, use_cache=None):
+        self.calls += 1
+        return SimpleNamespace(logits=self.table[input_ids], past_key_values=())
+
+
+def _table(rows: dict[int, dict[int, float]]):
+    t = np.full((V, V), -1e9, dtype=np.float64)
+    t[:, EOS_ID] = 0.0  # any other context: stop
+    for ctx, row in rows.items():
+        t[ctx, :] = -1e9
+        for tok, logit in row.items():
+            t[ctx, tok] = logit
+    return t
+
+
+def _softmax(x):
+    e = np.exp(x - x.max())
+    return e / e.sum()
+
+
+FIRST = {CH["a"]: 1.0, CH["b"]: 0.3, CH["c"]: -0.5, CH["d"]: -1.2, CH["e"]: 0.0}
+
+
+@pytest.mark.parametrize("temperature", [1.0, 0.5, 2.0])
+@pytest.mark.parametrize("batch_size", [None, 1000])
+def test_first_token_matches_exact_softmax(temperature, batch_size):
+    model = TableLM(_table({BOS_ID: FIRST}))
+    toks = list(FIRST)
+    p = _softmax(np.array([FIRST[t] for t in toks]) / temperature)  # exact softmax(logits / T)
+    s = sample(model, TOK, [""] , n=6000, temperature=temperature, max_new_tokens=1, seed=3, batch_size=batch_size)
+    first = s.response_ids[0, :, 0].numpy()
+    counts = np.array([(first == t).sum() for t in toks])
+    assert counts.sum() == 6000  # nothing outside the support
+    # Pearson chi-square goodness of fit (scipy.stats.chisquare), 4 d.o.f.
+    assert stats.chisquare(counts, 6000 * p).pvalue > 1e-3
+    # the recorded log-prob of each drawn token is the exact log softmax(logits / T)
+    lp = s.token_logprobs[0, :, 0].numpy()
+    exact = {t: np.log(pi) for t, pi in zip(toks, p)}
+    np.testing.assert_allclose(lp, [exact[t] for t in first], atol=1e-5)
+
+
+def test_two_step_sequences_match_product_law():
+    # a Markov table: law of the pair (y1, y2) is p(y1 | bos) * p(y2 | y1)
+    a, b = CH["a"], CH["b"]
+    model = TableLM(_table({BOS_ID: {a: 0.5, b: 0.0}, a: {a: -1.0, b: 1.0}, b: {a: 0.2, EOS_ID: 0.0}}))
+    s = sample(model, TOK, ["q"], n=8000, temperature=0.8, max_new_tokens=2, seed=11)
+    # TableLM conditions on the last token only: the prompt "q" ends in 'q', so give it the bos row
+    model2 = TableLM(_table({CH["q"]: {a: 0.5, b: 0.0}, a: {a: -1.0, b: 1.0}, b: {a: 0.2, EOS_ID: 0.0}}))
+    s = sample(model2, TOK, ["q"], n=8000, temperature=0.8, max_new_tokens=2, seed=11)
+    p1 = _softmax(np.array([0.5, 0.0]) / 0.8)
+    pa = _softmax(np.array([-1.0, 1.0]) / 0.8)
+    pb = _softmax(np.array([0.2, 0.0]) / 0.8)
+    cells = {(a, a): p1[0] * pa[0], (a, b): p1[0] * pa[1], (b, a): p1[1] * pb[0], (b, EOS_ID): p1[1] * pb[1]}
+    pairs = [tuple(r) for r in s.response_ids[0].tolist()]
+    counts = np.array([pairs.count(c) for c in cells])
+    assert counts.sum() == 8000
+    assert stats.chisquare(counts, 8000 * np.array(list(cells.values()))).pvalue > 1e-3  # scipy chi-square
+    # the whole-sequence log-prob is log p(y1) + log p(y2 | y1)
+    seq_lp = s.sequence_logprob()[0].numpy()
+    exact = {c: np.log(v) for c, v in cells.items()}
+    np.testing.assert_allclose(seq_lp, [exact[c] for c in pairs], atol=1e-5)
+
+
+def test_top_p_truncates_and_renormalises():
+    # probabilities 0.5, 0.25, 0.15, 0.07, 0.03: with p = 0.8 the nucleus is the first three
+    # (0.5 + 0.25 < 0.8 <= 0.5 + 0.25 + 0.15), renormalised by 0.9 (Holtzman et al. 2020)
+    probs = np.array([0.5, 0.25, 0.15, 0.07, 0.03])
+    toks = [CH[c] for c in "vwxyz"]
+    model = TableLM(_table({BOS_ID: dict(zip(toks, np.log(probs)))}))
+    s = sample(model, TOK, [""], n=6000, top_p=0.8, max_new_tokens=1, seed=5)
+    first = s.response_ids[0, :, 0].numpy()
+    counts = np.array([(first == t).sum() for t in toks])
+    assert counts[3] == 0 and counts[4] == 0
+    q = probs[:3] / probs[:3].sum()
+    assert stats.chisquare(counts[:3], 6000 * q).pvalue > 1e-3  # scipy chi-square
+    np.testing.assert_allclose(s.token_logprobs[0, :, 0].numpy(), np.log(q)[[toks.index(t) for t in first]], atol=1e-5)
+    # the training pass with the same top_p gives the same renormalised log-probs
+    lp = sequence_logprobs(model, s.prompt_ids, s.prompt_mask, s.response_ids, s.response_mask, top_p=0.8)
+    torch.testing.assert_close(lp, s.token_logprobs, atol=1e-5, rtol=0)
+
+
+def test_eos_stop_lengths_are_geometric_and_masks_are_right():
+    # after every 'a' the model says 'a' or EOS with probability 1/2 each: P(len = L) = 2^-L
+    a = CH["a"]
+    model = TableLM(_table({BOS_ID: {a: 0.0, EOS_ID: 0.0}, a: {a: 0.0, EOS_ID: 0.0}}))
+    s = sample(model, TOK, [""], n=4000, max_new_tokens=6, seed=2)
+    ids, mask = s.response_ids[0], s.response_mask[0]
+    L = mask.sum(-1)
+    for row, m, ell, text in zip(ids.tolist(), mask.tolist(), L.tolist(), s.texts[0]):
+        assert m == [1] * ell + [0] * (len(m) - ell)  # ones, then zeros
+        assert all(t == PAD_ID for t in row[ell:])  # pad after the end
+        ends_with_eos = row[ell - 1] == EOS_ID
+        assert ends_with_eos or ell == 6  # stopped at EOS or at the cap
+        assert text == "a" * (ell - 1 if ends_with_eos else ell)  # EOS not in the text
+    assert (s.token_logprobs[0][mask == 0] == 0).all()
+    expected = np.array([2.0 ** -k for k in range(1, 6)] + [2.0 ** -5])  # lengths 1..5, and 6 (cap)
+    counts = np.array([(L == k).sum().item() for k in range(1, 7)])
+    assert stats.chisquare(counts, 4000 * expected).pvalue > 1e-3  # geometric law, scipy chi-square
+
+
+def test_loop_stops_when_every_row_is_done():
+    model = TableLM(_table({BOS_ID: {EOS_ID: 0.0}}))
+    s = sample(model, TOK, ["", ""], n=3, max_new_tokens=20, seed=0)
+    assert s.response_ids.shape == (2, 3, 1) and model.calls == 1
+    assert s.texts == [["", "", ""], ["", "", ""]]
+
+
+# ------------------------------------------------------------ tiny transformers models
+
+
+def _tiny(arch, eos_boost=0.0):
+    model = build_tiny_model(arch, vocab_size=V, n_layer=1, d_model=32, n_head=2, max_positions=64, seed=1,
+                             pad_token_id=PAD_ID, eos_token_id=EOS_ID, bos_token_id=BOS_ID)
+    if eos_boost:  # make EOS likely so that rows stop at different times
+        head = model.get_output_embeddings()
+
+        def boost(_mod, _inp, out):
+            out = out.clone()
+            out[..., EOS_ID] += eos_boost
+            return out
+
+        head.register_forward_hook(boost)
+    return model
+
+
+PROMPTS = ["lamps 7 sold 3 ?", "ab", "mugs 12 got 4 sold 9 x2 ?"]
+
+
+@pytest.mark.parametrize("arch", ["gpt2", "llama"])
+def test_shapes_masks_and_texts(arch):
+    model = _tiny(arch, eos_boost=3.0)
+    s = sample(model, TOK, PROMPTS, n=5, max_new_tokens=12, temperature=1.3, seed=0, batch_size=4)
+    assert isinstance(s, Samples) and s.n == 5 and s.temperature == 1.3
+    B, n, T = s.response_ids.shape
+    assert (B, n) == (3, 5) and 1 <= T <= 12
+    assert s.prompt_ids.shape == s.prompt_mask.shape == (3, len(PROMPTS[2]) + 1)  # + <bos>
+    assert s.prompt_mask.sum(-1).tolist() == [len(p) + 1 for p in PROMPTS]
+    assert (s.prompt_mask[:, -1] == 1).all()  # left padding: every prompt ends at the right edge
+    m = s.response_mask
+    assert ((m[..., 1:] <= m[..., :-1])).all()  # ones then zeros
+    assert (s.response_ids[m == 0] == PAD_ID).all()
+    assert (s.token_logprobs[m == 0] == 0).all() and (s.token_logprobs[m == 1] < 0).all()
+    eos = (s.response_ids == EOS_ID) & (m == 1)
+    L = m.sum(-1)
+    stopped = eos.any(-1)
+    assert stopped.float().mean() > 0.5  # the EOS boost makes most rows stop
+    last = s.response_ids.gather(-1, (L - 1).clamp(min=0)[..., None]).squeeze(-1)
+    assert (last[stopped] == EOS_ID).all() and (eos.sum(-1) <= 1).all()  # EOS only as the last token
+    for b in range(B):
+        for j in range(n):
+            toks = [t for t in s.response_ids[b, j, : L[b, j]].tolist() if t != EOS_ID]
+            assert s.texts[b][j] == TOK.decode(toks, skip_special_tokens=True)
+
+
+@pytest.mark.parametrize("arch", ["gpt2", "llama"])
+def test_seed_reproducible(arch):
+    model = _tiny(arch)
+    s1 = sample(model, TOK, PROMPTS, n=4, max_new_tokens=8, seed=7)
+    s2 = sample(model, TOK, PROMPTS, n=4, max_new_tokens=8, seed=7)
+    s3 = sample(model, TOK, PROMPTS, n=4, max_new_tokens=8, seed=8)
+    assert torch.equal(s1.response_ids, s2.response_ids) and s1.texts == s2.texts
+    assert not torch.equal(s1.response_ids, s3.response_ids)
+
+
+@pytest.mark.parametrize("arch", ["gpt2", "llama"])
+@pytest.mark.parametrize("top_p", [1.0, 0.9])
+def test_sequence_logprobs_agree_with_sampler(arch, top_p):
+    model = _tiny(arch, eos_boost=2.0)
+    s = sample(model, TOK, PROMPTS, n=4, max_new_tokens=10, temperature=0.7, top_p=top_p, seed=1)
+    model.train()  # no dropout in the tiny models: the mode must not matter
+    lp = sequence_logprobs(model, s.prompt_ids, s.prompt_mask, s.response_ids, s.response_mask,
+                           temperature=0.7, top_p=top_p)
+    assert lp.shape == s.token_logprobs.shape and lp.requires_grad
+    assert (lp - s.token_logprobs).abs().max().item() < 1e-5
+    lp.sum().backward()
+    grads = [p.grad for p in model.parameters() if p.grad is not None]
+    assert grads and all(torch.isfinite(g).all() for g in grads)
+
+
+@pytest.mark.parametrize("arch", ["gpt2", "llama"])
+def test_padding_changes_nothing(arch):
+    model = _tiny(arch)
+    s = sample(model, TOK, PROMPTS, n=3, max_new_tokens=6, temperature=1.0, seed=4)
+    base = sequence_logprobs(model, s.prompt_ids, s.prompt_mask, s.response_ids, s.response_mask)
+    # extra left padding of prompts and extra right padding of responses
+    pid = torch.cat([torch.full((3, 5), PAD_ID), s.prompt_ids], 1)
+    pm = torch.cat([torch.zeros(3, 5, dtype=torch.long), s.prompt_mask], 1)
+    rid = torch.cat([s.response_ids, torch.full((3, 3, 4), PAD_ID)], 2)
+    rm = torch.cat([s.response_mask, torch.zeros(3, 3, 4, dtype=torch.long)], 2)
+    padded = sequence_logprobs(model, pid, pm, rid, rm)
+    assert (padded[..., :-4] - base).abs().max().item() < 1e-5 and (padded[..., -4:] == 0).all()
+    # each prompt alone (no padding at all) gives the same log-probs as in the padded batch
+    for b, p in enumerate(PROMPTS):
+        ids = torch.tensor([TOK(p)["input_ids"]])
+        alone = sequence_logprobs(model, ids, torch.ones_like(ids), s.response_ids[b:b + 1], s.response_mask[b:b + 1])
+        assert (alone[0] - s.token_logprobs[b]).abs().max().item() < 1e-5
+
+
+@pytest.mark.parametrize("arch", ["gpt2", "llama"])
+def test_padded_prompt_has_the_unpadded_next_token_law(arch):
+    model = _tiny(arch)
+    short = PROMPTS[1]
+    ids = torch.tensor([TOK(short)["input_ids"]])
+    with torch.no_grad():
+        p = torch.softmax(model(input_ids=ids).logits[0, -1].double(), -1).numpy()  # exact law, unpadded
+    # the short prompt sits in a batch with a longer one, so it is left-padded by 23 tokens
+    s = sample(model, TOK, [short, PROMPTS[2]], n=2000, max_new_tokens=1, seed=9)
+    counts = np.bincount(s.response_ids[0, :, 0].numpy(), minlength=V)
+    big = p * 2000 >= 5  # chi-square needs expected counts >= 5: pool the rest into one cell
+    obs, exp = counts[big], p[big] * 2000
+    if (~big).any():
+        obs, exp = np.append(obs, counts[~big].sum()), np.append(exp, p[~big].sum() * 2000)
+    exp = exp * obs.sum() / exp.sum()  # float64 round-off: make the totals equal for scipy
+    assert stats.chisquare(obs, exp).pvalue > 1e-3  # scipy chi-square vs the exact softmax
+
+
+@pytest.mark.parametrize("arch", ["gpt2", "llama"])
+def test_one_row_at_a_time_equals_batched_law(arch):
+    # with batch_size=1 each row is decoded alone; its recorded log-probs must be those of the
+    # unpadded model, as in the batched run (the law of each token given the past is the same)
+    model = _tiny(arch, eos_boost=2.0)
+    s = sample(model, TOK, PROMPTS, n=2, max_new_tokens=8, seed=3, batch_size=1)
+    lp = sequence_logprobs(model, s.prompt_ids, s.prompt_mask, s.response_ids, s.response_mask)
+    assert (lp - s.token_logprobs).abs().max().item() < 1e-5
+
+
+def test_training_mode_is_restored():
+    model = _tiny("gpt2")
+    model.train()
+    sample(model, TOK, ["a"], n=1, max_new_tokens=2, seed=0)
+    assert model.training
+
+
+# ------------------------------------------------------------ bad input
+
+
+def test_bad_input():
+    model = _tiny("gpt2")
+    with pytest.raises(ValueError, match=r"n must be >= 1, got n=0"):
+        sample(model, TOK, ["a"], n=0)
+    with pytest.raises(TypeError, match=r"n must be an int, got float"):
+        sample(model, TOK, ["a"], n=2.0)
+    for t in (0, -1.0, float("nan"), float("inf")):
+        with pytest.raises(ValueError, match=r"temperature must be a finite number > 0"):
+            sample(model, TOK, ["a"], n=1, temperature=t)
+    for p in (0.0, 1.5, -0.1):
+        with pytest.raises(ValueError, match=r"top_p must be in \(0, 1\]"):
+            sample(model, TOK, ["a"], n=1, top_p=p)
+    with pytest.raises(TypeError, match=r"prompts must be a sequence of str, got a single str"):
+        sample(model, TOK, "a", n=1)
+    with pytest.raises(ValueError, match=r"prompts must not be empty"):
+        sample(model, TOK, [], n=1)
+    with pytest.raises(ValueError, match=r"max_new_tokens must be >= 1"):
+        sample(model, TOK, ["a"], n=1, max_new_tokens=0)
+    with pytest.raises(ValueError, match=r"batch_size must be >= 1"):
+        sample(model, TOK, ["a"], n=1, batch_size=0)
+    ids = torch.ones(2, 3, dtype=torch.long)
+    r = torch.ones(2, 1, 2, dtype=torch.long)
+    with pytest.raises(ValueError, match=r"temperature must be a finite number > 0"):
+        sequence_logprobs(model, ids, ids, r, r, temperature=0.0)
+    with pytest.raises(TypeError, match=r"response_ids must be an integer tensor"):
+        sequence_logprobs(model, ids, ids, r.float(), r)
+    with pytest.raises(ValueError, match=r"response_ids must have B=2 rows like prompt_ids, got 1"):
+        sequence_logprobs(model, ids, ids, r[:1], r[:1])
