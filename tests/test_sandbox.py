@@ -28,6 +28,22 @@ def _children() -> int:
     return n
 
 
+def _sandbox_processes() -> list[int]:
+    """Live processes still running the sandbox bootstrap (its text is on their command line)."""
+    out = []
+    for pid in filter(str.isdigit, os.listdir("/proc")):
+        try:
+            with open(f"/proc/{pid}/cmdline", "rb") as f:
+                cmd = f.read()
+            with open(f"/proc/{pid}/stat") as f:
+                state = f.read().rsplit(")", 1)[1].split()[0]
+        except OSError:
+            continue
+        if b"bonft sandbox:" in cmd and state != "Z":
+            out.append(int(pid))
+    return out
+
+
 ATTACKS = {
     "correct": ("def add(a, b):\n    return a + b", "assert add(2, 3) == 5"),
     "incorrect": ("def add(a, b):\n    return a - b", "assert add(2, 3) == 5, 'add(2, 3) should be 5'"),
@@ -91,6 +107,7 @@ def test_fork_bombs_are_contained(attack_results):
     # the ctypes bomb bypasses the audit hook; RLIMIT_NPROC bounds it and the wall clock ends it
     assert r["ctypes_fork_bomb"].status in ("timeout", "limit-exceeded"), r["ctypes_fork_bomb"]
     assert _children() == before  # every candidate process was reaped
+    assert _sandbox_processes() == []  # and none escaped to run on
     if ROOT:
         leftover = {s: _pids_of(runner._uid0 + s) for s in range(runner.workers)}
         assert all(not v for v in leftover.values()), f"sandbox processes left: {leftover}"
@@ -158,3 +175,24 @@ def test_runner_arguments_are_validated():
         CodeRunner({}, memory_mb=256.0)
     with pytest.raises(ValueError, match="prompts must all have tests; 1 do not, e.g. 'q'"):
         CodeRunner({"p": "pass"}).run(["q"], ["x = 1"])
+
+
+def test_fallback_path_without_uid_drop():
+    """The path used when not running as root (no uid drop; cleanup by working directory).
+
+    As root RLIMIT_NPROC is not enforced on this path (setrlimit(2)), so only the audit
+    hook stops the fork bomb here; the point is that the path works and cleans up.
+    """
+    runner = CodeRunner({}, wall_time=2.0, memory_mb=256, max_processes=4, workers=3)
+    runner._root = False  # force the unprivileged code path
+    before = _children()
+    ok, loop, bomb = runner.run_code([
+        ("x = 2", "assert x == 2"),
+        ("import os, time\nif os.fork() == 0:\n    os.setsid()\n    time.sleep(30)\nwhile True:\n    pass", "pass"),
+        ("import os\nwhile True:\n    os.fork()", "pass"),
+    ])
+    _check(ok, "pass")
+    _check(loop, "timeout")  # its child left the process group; found by its working directory and killed
+    _check(bomb, "limit-exceeded", "process limit (max_processes=4)")
+    assert _children() == before
+    assert _sandbox_processes() == []

@@ -158,7 +158,7 @@ class CodeRunner:
                       default ``wall_time + 1`` so that a busy loop reads as a timeout.
     memory_mb:        address-space limit (RLIMIT_AS); MemoryError -> ``limit-exceeded``.
     file_size_mb:     largest file it may write (RLIMIT_FSIZE).
-    max_processes:    processes it may have, itself included (RLIMIT_NPROC + audit hook).
+    max_processes:    processes (and threads) it may have, itself included (RLIMIT_NPROC + audit hook).
     max_output_bytes: stdout and stderr are each cut here; more -> killed, ``limit-exceeded``.
     workers:          candidates run in parallel (threads driving subprocesses).
     python:           interpreter for the candidates. Default: this one, or when
