@@ -205,3 +205,17 @@ def test_examples_and_arguments_are_validated(tmp_path):
     bad.write_text('{"prompt": "p", "response": "r"}\nnot json\n')
     with pytest.raises(ValueError, match=r"bad.jsonl:2: examples must be JSON objects, got invalid JSON"):
         read_examples(str(bad))
+
+
+def test_slow_verifier_timeouts_are_counted():
+    import time
+
+    def slow_on_long(prompts, responses):
+        if any(len(r) > 20 for r in responses):
+            time.sleep(1.0)
+        return [1.0] * len(responses)
+
+    pools = [{"prompt": "p", "responses": ["a", "b", "c" * 30]}]
+    rep = check_verifier(slow_on_long, pools, timeout=0.2)
+    assert (rep.n_timeouts, rep.n_exceptions, rep.n_nan) == (1, 0, 0)
+    assert "timeouts 1), e.g. timeout after 0.2 s" in rep.problems[0], rep.problems
