@@ -89,11 +89,9 @@ def test_first_token_matches_exact_softmax(temperature, batch_size):
 def test_two_step_sequences_match_product_law():
     # a Markov table: law of the pair (y1, y2) is p(y1 | bos) * p(y2 | y1)
     a, b = CH["a"], CH["b"]
-    model = TableLM(_table({BOS_ID: {a: 0.5, b: 0.0}, a: {a: -1.0, b: 1.0}, b: {a: 0.2, EOS_ID: 0.0}}))
+    # TableLM conditions on the last token only: the prompt "q" ends in 'q', whose row starts the chain
+    model = TableLM(_table({CH["q"]: {a: 0.5, b: 0.0}, a: {a: -1.0, b: 1.0}, b: {a: 0.2, EOS_ID: 0.0}}))
     s = sample(model, TOK, ["q"], n=8000, temperature=0.8, max_new_tokens=2, seed=11)
-    # TableLM conditions on the last token only: the prompt "q" ends in 'q', so give it the bos row
-    model2 = TableLM(_table({CH["q"]: {a: 0.5, b: 0.0}, a: {a: -1.0, b: 1.0}, b: {a: 0.2, EOS_ID: 0.0}}))
-    s = sample(model2, TOK, ["q"], n=8000, temperature=0.8, max_new_tokens=2, seed=11)
     p1 = _softmax(np.array([0.5, 0.0]) / 0.8)
     pa = _softmax(np.array([-1.0, 1.0]) / 0.8)
     pb = _softmax(np.array([0.2, 0.0]) / 0.8)

@@ -1,0 +1,115 @@
+"""Tests of bonft.models: tiny models built in code, checkpoints, device choice.
+
+References: the GPT-2 parameter count per block, 12 d^2 + 13 d (attention
+3d^2+3d and d^2+d, MLP 4d^2+4d and 4d^2+d, two LayerNorms 4d), follows from
+the architecture in Radford et al. 2019, "Language Models are Unsupervised
+Multitask Learners" (counted here by hand); the Llama block, 4 d^2 (attention,
+no biases) + 3 * d * 4d (SwiGLU MLP) + 2d (RMSNorms), from Touvron et al.
+2023, "LLaMA: Open and Efficient Foundation Language Models".
+"""
+import pytest
+import torch
+
+from bonft.models import build_tiny_model, load_model, pick_device, save_model
+from bonft.tasks.tokenizer import BOS_ID, EOS_ID, PAD_ID, build_tokenizer
+
+TOK = build_tokenizer()
+V = TOK.vocab_size
+
+
+@pytest.fixture(autouse=True, scope="module")
+def _one_thread():
+    before = torch.get_num_threads()
+    torch.set_num_threads(1)
+    yield
+    torch.set_num_threads(before)
+
+
+def _n_params(model):
+    return sum(p.numel() for p in model.parameters())  # tied weights counted once
+
+
+def test_gpt2_parameter_count_matches_the_architecture():
+    d, L, P = 128, 2, 128
+    model = build_tiny_model("gpt2", vocab_size=V, n_layer=L, d_model=d, max_positions=P)
+    # embeddings V*d + positions P*d, L blocks of 12 d^2 + 13 d, final LayerNorm 2d, tied head (Radford et al. 2019)
+    assert _n_params(model) == V * d + P * d + L * (12 * d * d + 13 * d) + 2 * d
+    assert 0.35e6 < _n_params(model) < 0.45e6  # "0.4 M parameters" for the default size
+
+
+def test_llama_parameter_count_matches_the_architecture():
+    d, L = 64, 3
+    model = build_tiny_model("llama", vocab_size=V, n_layer=L, d_model=d, n_head=4)
+    # tied embeddings V*d, L blocks of 4 d^2 + 3 * d * 4d + 2d, final RMSNorm d (Touvron et al. 2023)
+    assert _n_params(model) == V * d + L * (4 * d * d + 12 * d * d + 2 * d) + d
+
+
+@pytest.mark.parametrize("arch", ["gpt2", "llama"])
+def test_seeded_init_is_reproducible_and_leaves_global_rng_alone(arch):
+    torch.manual_seed(123)
+    expected_next = torch.rand(3)
+    torch.manual_seed(123)
+    a = build_tiny_model(arch, vocab_size=V, n_layer=1, d_model=32, n_head=2, seed=5)
+    assert torch.equal(torch.rand(3), expected_next)  # the caller's RNG stream is untouched
+    b = build_tiny_model(arch, vocab_size=V, n_layer=1, d_model=32, n_head=2, seed=5)
+    c = build_tiny_model(arch, vocab_size=V, n_layer=1, d_model=32, n_head=2, seed=6)
+    sa, sb, sc = a.state_dict(), b.state_dict(), c.state_dict()
+    assert all(torch.equal(sa[k], sb[k]) for k in sa)
+    assert not all(torch.equal(sa[k], sc[k]) for k in sa)
+
+
+@pytest.mark.parametrize("arch", ["gpt2", "llama"])
+def test_checkpoint_round_trip(arch, tmp_path):
+    model = build_tiny_model(arch, vocab_size=V, n_layer=1, d_model=32, n_head=2, seed=2,
+                             pad_token_id=PAD_ID, eos_token_id=EOS_ID, bos_token_id=BOS_ID)
+    ckpt = save_model(model, TOK, tmp_path / "ckpt")
+    assert (ckpt / "model" / "config.json").is_file() and (ckpt / "model" / "model.safetensors").is_file()
+    assert (ckpt / "tokenizer" / "tokenizer.json").is_file()
+    assert not [p for p in tmp_path.iterdir() if p.name.startswith(".")]  # no temporary left behind
+    m2, tok2 = load_model(ckpt, device="cpu")
+    ids = torch.tensor([TOK("lamps 7 sold 3 ?")["input_ids"]])
+    with torch.no_grad():
+        torch.testing.assert_close(m2(input_ids=ids).logits, model(input_ids=ids).logits, atol=0, rtol=0)
+    assert tok2("ab")["input_ids"] == TOK("ab")["input_ids"] and tok2.padding_side == "left"
+    assert m2.config.eos_token_id == EOS_ID and not m2.training
+    # overwrite in place: the new weights replace the old ones
+    other = build_tiny_model(arch, vocab_size=V, n_layer=1, d_model=32, n_head=2, seed=3)
+    save_model(other, TOK, ckpt)
+    m3, _ = load_model(ckpt, device="cpu")
+    with torch.no_grad():
+        torch.testing.assert_close(m3(input_ids=ids).logits, other(input_ids=ids).logits, atol=0, rtol=0)
+
+
+def test_plain_transformers_directory_loads(tmp_path):
+    model = build_tiny_model("gpt2", vocab_size=V, n_layer=1, d_model=32, n_head=2)
+    model.save_pretrained(tmp_path)
+    TOK.save_pretrained(tmp_path)
+    m2, tok2 = load_model(tmp_path, device=torch.device("cpu"))
+    assert type(m2).__name__ == "GPT2LMHeadModel" and tok2.decode(tok2("x y")["input_ids"], skip_special_tokens=True) == "x y"
+
+
+def test_pick_device():
+    assert pick_device("cpu") == torch.device("cpu")
+    assert pick_device("auto") == torch.device("cuda" if torch.cuda.is_available() else "cpu")
+    if not torch.cuda.is_available():
+        with pytest.raises(ValueError, match=r"preference='cuda' needs a CUDA device"):
+            pick_device("cuda")
+    with pytest.raises(ValueError, match=r"preference must be one of \('auto', 'cpu', 'cuda'\), got 'gpu'"):
+        pick_device("gpu")
+
+
+def test_bad_input(tmp_path):
+    with pytest.raises(ValueError, match=r"arch must be one of \('gpt2', 'llama'\), got 'rnn'"):
+        build_tiny_model("rnn", vocab_size=V)
+    with pytest.raises(ValueError, match=r"d_model must be divisible by n_head \(n_head=3\), got d_model=128"):
+        build_tiny_model("gpt2", vocab_size=V, n_head=3)
+    with pytest.raises(ValueError, match=r"d_model / n_head must be even"):
+        build_tiny_model("llama", vocab_size=V, d_model=12, n_head=4)
+    with pytest.raises(ValueError, match=r"eos_token_id must be <= 9, got eos_token_id=10"):
+        build_tiny_model("gpt2", vocab_size=10, eos_token_id=10)
+    with pytest.raises(TypeError, match=r"vocab_size must be an int, got float"):
+        build_tiny_model("gpt2", vocab_size=10.0)
+    with pytest.raises(FileNotFoundError, match=r"not a directory"):
+        load_model(tmp_path / "missing")
+    with pytest.raises(FileNotFoundError, match=r"no config.json"):
+        load_model(tmp_path)
