@@ -81,20 +81,20 @@ def _check_probs(probs: Any) -> tuple[torch.Tensor, bool]:
     return p, not is_tensor(probs)
 
 
-def _check_per_outcome(name: str, x: Any, p: torch.Tensor) -> torch.Tensor:
-    """scores / rewards: last axis V like probs, leading axes broadcast."""
+def _check_per_outcome(name: str, x: Any, p: torch.Tensor, *others: torch.Tensor) -> torch.Tensor:
+    """scores / rewards: last axis V like probs, leading axes broadcast with probs (and others)."""
     t = _as_tensor(name, x, p.device)
     V = p.shape[-1]
     if t.ndim < 1 or t.shape[-1] != V:
         raise ValueError(
             f"{name} must have shape (..., V) with V={V} like probs {tuple(p.shape)}, got shape {tuple(t.shape)}"
         )
+    shapes = [p.shape, *(o.shape for o in others)]
     try:
-        torch.broadcast_shapes(t.shape, p.shape)
+        torch.broadcast_shapes(t.shape, *shapes)
     except RuntimeError:
-        raise ValueError(
-            f"{name} must broadcast against probs {tuple(p.shape)}, got shape {tuple(t.shape)}"
-        ) from None
+        want = " and ".join(str(tuple(sh)) for sh in shapes)
+        raise ValueError(f"{name} must broadcast against probs/scores {want}, got shape {tuple(t.shape)}") from None
     check_finite(name, t)
     return t
 
@@ -240,7 +240,7 @@ def bon_value(probs, scores, rewards, k):
     """
     p, as_np = _check_probs(probs)
     s = _check_per_outcome("scores", scores, p)
-    R = _check_per_outcome("rewards", rewards, p)
+    R = _check_per_outcome("rewards", rewards, p, s)
     k = _check_k(k)
     lg, pb = _log_gain(p, s, k)
     return _out((pb * torch.exp(lg) * R).sum(-1), as_np)

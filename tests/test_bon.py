@@ -222,6 +222,7 @@ def test_invariant_to_increasing_transform_of_scores(ps, k):
     np.testing.assert_allclose(bon_distribution(p, np.exp(s), k), bon_distribution(p, s, k), rtol=1e-13, atol=1e-16)
 
 
+@settings(max_examples=30)
 @given(policy_and_scores())
 def test_value_nondecreasing_in_k_when_reward_is_score(ps):
     # more draws can only raise the kept maximum (common practice)
@@ -260,7 +261,7 @@ SCORES = torch.tensor([0.0, 1.0, 1.0, 2.0, 0.0], dtype=torch.float64)  # with ti
 REWARDS = torch.tensor([0.2, -1.0, 3.0, 0.5, 1.0], dtype=torch.float64)
 
 
-@pytest.mark.parametrize("k", [1, 2, 5, 40])
+@pytest.mark.parametrize("k", [1, 3, 40])
 def test_gradcheck_value_kl_log_through_logits(k):
     # reference: finite differences (torch.autograd.gradcheck)
     l = _logits()
@@ -370,6 +371,7 @@ S3 = np.array([0.0, 1.0, 2.0])
         (lambda: bon_distribution(np.full((2, 3), 1 / 3), np.zeros((4, 3)), 2), ValueError, "scores must broadcast"),
         (lambda: bon_value(P3, S3, np.array([0.0, np.nan, 1.0]), 2), ValueError, "rewards must be finite"),
         (lambda: bon_value(P3, S3, np.arange(2.0), 2), ValueError, "rewards must have shape"),
+        (lambda: bon_value(P3, np.zeros((2, 3)), np.zeros((4, 3)), 2), ValueError, "rewards must broadcast"),
         (lambda: bon_value(P3, S3, S3, 0), ValueError, "k must be >= 1, got k=0"),
         (lambda: bon_kl(P3, S3, 2.0), TypeError, "k must be an int, got float"),
         (lambda: log_bon_distribution(P3, S3, True), TypeError, "k must be an int"),
