@@ -1,0 +1,89 @@
+"""``bonft eval CHECKPOINT``: best-of-k / pass@k curves with CIs of a checkpoint on held-out prompts."""
+from __future__ import annotations
+
+import argparse
+import json
+from pathlib import Path
+
+HELP = "evaluate a checkpoint: pass@k and best-of-k (per verifier) with CIs on held-out prompts"
+DESCRIPTION = (
+    "Sample --n responses for each held-out prompt of the checkpoint's task (the split its run used), "
+    "score them with the exact checker and the task's proxy, and print pass@k and verifier-selected "
+    "best-of-k with bootstrap CIs, plus length and diversity. CHECKPOINT is a checkpoint directory "
+    "or a run directory (its newest checkpoint)."
+)
+
+
+def parse_list(name: str, text: str, cast=int) -> list:
+    try:
+        out = [cast(v) for v in text.split(",") if v.strip()]
+    except ValueError:
+        raise ValueError(f"{name} must be comma-separated numbers like 1,4,16, got {text!r}") from None
+    if not out:
+        raise ValueError(f"{name} must list at least one value, got {text!r}")
+    return out
+
+
+def add_common(p: argparse.ArgumentParser) -> None:
+    p.add_argument("checkpoint", help="checkpoint directory (CKPT/model, CKPT/tokenizer) or run directory")
+    p.add_argument("--n", type=int, default=64, help="samples per prompt (default: 64)")
+    p.add_argument("--prompts", type=int, default=0, help="use the first this many held-out prompts (default: all)")
+    p.add_argument("--seed", type=int, default=0, help="sampling seed (default: 0)")
+    p.add_argument("--set", dest="overrides", action="append", default=[], metavar="KEY=VALUE",
+                   help="override a key of the checkpoint's config, e.g. --set n_eval=500 (repeatable)")
+
+
+def add_arguments(p: argparse.ArgumentParser) -> None:
+    add_common(p)
+    p.add_argument("--ks", default="1,4,16,32", help="comma-separated k values, each <= --n (default: 1,4,16,32)")
+    p.add_argument("--temperature", type=float, default=1.0, help="sampling temperature (default: 1.0)")
+    p.add_argument("--json", metavar="OUT.json", default=None, help="also write the report as JSON")
+    p.add_argument("--plot", metavar="OUT.png", default=None, help="also write a PNG of the curves")
+
+
+def load_for_eval(args: argparse.Namespace, *, n: int, ks: list[int], temperature: float):
+    """The checkpoint's config (its config.toml, else defaults) pointed at the checkpoint, and the Run."""
+    from ..checkpoint import resolve_checkpoint
+    from ..config import FIELDS, apply_overrides, from_dict, load_config
+    from ..train import build_run
+
+    ckpt = resolve_checkpoint(args.checkpoint)
+    base = load_config(ckpt / "config.toml").to_dict() if (ckpt / "config.toml").is_file() else {}
+    values = apply_overrides(base, list(args.overrides))
+    values.update(init_from=str(ckpt), eval_n=n, eval_ks=ks, eval_temperature=temperature,
+                  eval_prompts=args.prompts, seed=values.get("seed", FIELDS["seed"].default))
+    cfg = from_dict(values)
+    return ckpt, cfg, build_run(cfg)
+
+
+def run(args: argparse.Namespace) -> int:
+    import torch
+
+    from .._checks import check_int, check_positive
+    from ..train import evaluate_run
+
+    n = check_int("--n", args.n, min=1)
+    ks = parse_list("--ks", args.ks)
+    if max(ks) > n:
+        raise ValueError(f"--ks must be <= --n (n={n}), got --ks={args.ks}")
+    temperature = check_positive("--temperature", args.temperature)
+    torch.set_num_threads(max(1, min(2, torch.get_num_threads())))
+    ckpt, cfg, r = load_for_eval(args, n=n, ks=ks, temperature=temperature)
+    rep = evaluate_run(r, step=-1) if args.seed == 0 else _eval_seeded(r, args.seed)
+    print(f"{ckpt}\n{rep.table()}")
+    if args.json:
+        Path(args.json).write_text(json.dumps({"checkpoint": str(ckpt), **rep.to_dict()}, indent=1))
+    if args.plot:
+        from ..plots import plot_evaluations
+
+        plot_evaluations([rep.to_dict()], args.plot, title=str(ckpt))
+    return 0
+
+
+def _eval_seeded(r, seed: int):
+    from dataclasses import replace
+
+    from ..train import evaluate_run
+
+    r.cfg = replace(r.cfg, seed=seed)
+    return evaluate_run(r, step=-1)

@@ -1,0 +1,56 @@
+"""``bonft sample CHECKPOINT -o samples.jsonl``: draw responses and write the samples file of bonft estimate / plan."""
+from __future__ import annotations
+
+import argparse
+
+from .evaluate import add_common, load_for_eval, parse_list
+
+HELP = "sample responses from a checkpoint and write a samples JSONL (input of bonft estimate / bonft plan)"
+DESCRIPTION = (
+    "Draw --n responses per held-out prompt at one or more temperatures, score each with a verifier "
+    "(score) and the exact checker (reward), and write one JSON line per response: prompt_id, score, "
+    "reward, temperature, response, n_tokens. Feed the file to `bonft estimate` or `bonft plan`."
+)
+
+
+def add_arguments(p: argparse.ArgumentParser) -> None:
+    add_common(p)
+    p.add_argument("--temperature", default="1.0", help="sampling temperature, or a comma-separated list (default: 1.0)")
+    p.add_argument("--verifier", default="auto",
+                   help="which verifier fills 'score': exact, proxy or a name of the run's verifiers (default: proxy if the task has one, else exact)")
+    p.add_argument("-o", "--output", required=True, help="samples JSONL to write (written atomically)")
+
+
+def run(args: argparse.Namespace) -> int:
+    import torch
+
+    from .._checks import check_int, check_positive
+    from ..evaluation import evaluate_policy
+    from ..samples import write_samples
+    from ..train import step_seed
+
+    n = check_int("--n", args.n, min=1)
+    temps = [check_positive("--temperature", t) for t in parse_list("--temperature", args.temperature, float)]
+    torch.set_num_threads(max(1, min(2, torch.get_num_threads())))
+    ckpt, cfg, r = load_for_eval(args, n=n, ks=[1], temperature=temps[0])
+    names = [k for k in r.verifiers if k != "train"]
+    which = args.verifier if args.verifier != "auto" else ("proxy" if "proxy" in names else "exact")
+    if which not in names:
+        raise ValueError(f"--verifier must be one of {names}, got {args.verifier!r}")
+    held = r.eval[: cfg.eval_prompts or len(r.eval)]
+    rows = []
+    for t in temps:
+        rep, raw = evaluate_policy(
+            r.model, r.tokenizer, [e.prompt for e in held], verifiers={"exact": r.verifiers["exact"], which: r.verifiers[which]},
+            extract_answer=getattr(r.task, "extract_answer", None), n=n, ks=[1], temperature=t,
+            max_new_tokens=cfg.max_new_tokens, seed=step_seed(args.seed, 0, 0, stream=4), n_boot=10,
+        )
+        scores = raw["scores"][which]
+        for b in range(len(held)):
+            for i in range(n):
+                rows.append({"prompt_id": b, "score": float(scores[b, i]), "reward": float(raw["rewards"][b, i]),
+                             "temperature": t, "response": raw["texts"][b][i], "n_tokens": int(raw["n_tokens"][b, i])})
+        print(f"T={t:g}: pass@1 {rep.mean_reward:.3f}, {rep.distinct_answers:.1f} distinct answers/prompt")
+    count = write_samples(args.output, rows)
+    print(f"wrote {count} samples ({len(held)} prompts x {n} x {len(temps)} temperature(s), score = {which}) to {args.output}")
+    return 0

@@ -1,0 +1,62 @@
+"""Commands train / eval / sample end to end, and every recipe's objective runs a few tiny steps."""
+from pathlib import Path
+
+import pytest
+
+from bonft.cli import main
+from bonft.samples import read_samples
+
+RECIPES = sorted((Path(__file__).parent.parent / "recipes").glob("*.toml"))
+SHRINK = ["n_layer=1", "d_model=32", "n_head=2", "max_positions=48", "n_train=32", "n_eval=4", "sft_steps=2",
+          "sft_batch_size=8", "rl_steps=2", "prompts_per_step=4", "n=16", "eval_n=16", "eval_ks=1,16",
+          "eval_every=0", "save_every=0", "plots=false", "n_boot=50", "max_new_tokens=5", "threads=1"]
+
+
+def _set(items):
+    return [a for it in items for a in ("--set", it)]
+
+
+@pytest.mark.parametrize("recipe", RECIPES, ids=[p.stem for p in RECIPES])
+def test_every_recipe_runs_tiny(recipe, tmp_path, capsys):
+    extra = ["kl_coef=0.05"] if recipe.stem == "pass_at_k" else []  # the KL-to-start path too
+    rc = main(["train", str(recipe), "--out", str(tmp_path / "r"), "--quiet", *_set(SHRINK + extra)])
+    assert rc == 0
+    assert (tmp_path / "r" / "checkpoints" / "step-00000004" / "model").is_dir()
+    assert "run directory" in capsys.readouterr().out
+    if extra:
+        assert (tmp_path / "r" / "rl_start" / "model").is_dir()
+        lines = (tmp_path / "r" / "metrics.jsonl").read_text()
+        assert '"info/kl"' in lines
+
+
+def test_eval_and_sample_commands(tmp_path, capsys):
+    run = tmp_path / "run"
+    assert main(["train", str(RECIPES[0]), "--out", str(run), "--quiet", *_set(SHRINK)]) == 0
+    capsys.readouterr()
+    assert main(["eval", str(run), "--n", "8", "--ks", "1,2,8", "--json", str(tmp_path / "e.json")]) == 0
+    out = capsys.readouterr().out
+    assert "pass@k" in out and "best-of-k proxy" in out and (tmp_path / "e.json").is_file()
+    samples = tmp_path / "s.jsonl"
+    assert main(["sample", str(run), "--n", "4", "--temperature", "0.7,1.0", "-o", str(samples)]) == 0
+    table = read_samples(samples)  # the file bonft estimate / bonft plan read
+    assert len(table.scores) == 4 * 4 * 2 and sorted(set(table.temperatures.tolist())) == [0.7, 1.0]
+    assert main(["estimate", str(samples)]) == 0
+
+
+@pytest.mark.parametrize(
+    "argv, message",
+    [
+        (["--set", "k=99"], "k must be <= n"),
+        (["--set", "objective=ppo"], "objective must be one of"),
+        (["--set", "lr=-1"], "lr must be >= 0.0, got lr=-1.0"),
+        (["--set", "colour=red"], "--set key must be a config field"),
+    ],
+)
+def test_bad_recipe_values_exit_2(argv, message, tmp_path, capsys):
+    assert main(["train", str(RECIPES[0]), "--out", str(tmp_path / "x"), "--quiet", *argv]) == 2
+    assert message in capsys.readouterr().err
+
+
+def test_eval_bad_ks(tmp_path, capsys):
+    assert main(["eval", str(tmp_path), "--n", "4", "--ks", "1,8"]) == 2
+    assert "--ks must be <= --n (n=4)" in capsys.readouterr().err
