@@ -78,21 +78,75 @@ def _rank_weights(n: int, ks: np.ndarray) -> np.ndarray:
     return w / w.sum(axis=1, keepdims=True)
 
 
+_FLIP = np.int64(0x7FFFFFFFFFFFFFFF)
+
+
+def _sort_rewards_by_score(scores: np.ndarray, rewards: np.ndarray):
+    """(P, n), (P, n) -> rewards in ascending score order (P, n), plus the rows that may hold ties.
+
+    Returns ``(r, rows, s_rows)``: ``rows`` (T,) indexes the prompts whose pools may hold
+    tied scores and ``s_rows`` (T, n) their sorted scores; every other row has distinct scores.
+
+    Speed: one ``np.sort`` of int64 keys instead of an ``argsort``. Each score is mapped to an
+    int64 with the same order (IEEE-754 bits, negatives flipped), its lowest b = ceil(log2 n)
+    bits are replaced by the sample's column, and the sorted keys give the order and the
+    columns at once. Scores that agree above those b bits (ties, or near-ties within
+    ~2^(b-52) relative) are flagged; their rows are checked against the true scores and
+    re-sorted exactly with ``argsort`` if needed, so the result is always exact.
+    """
+    P, n = scores.shape
+    b = max(1, (n - 1).bit_length())
+    if b > 24:  # huge pools: too few mantissa bits left for the key trick to pay
+        order = np.argsort(scores, axis=1)
+        return np.take_along_axis(rewards, order, 1), np.arange(P), np.take_along_axis(scores, order, 1)
+    low = np.int64((1 << b) - 1)
+    key = (scores + 0.0).view(np.int64)  # new array; -0.0 + 0.0 = +0.0 so both zeros tie
+    sign = key >> 63  # -1 where negative, else 0
+    sign &= _FLIP
+    key ^= sign  # negative floats: flip magnitude bits -> int64 order == float order
+    key &= ~low
+    key |= np.arange(n, dtype=np.int64)  # column in the freed low bits
+    key.sort(axis=1)
+    near = np.diff(key, axis=1) < (1 << b)  # (P, n-1) same high bits (or an int64 wrap: also flagged)
+    order = key  # reuse the buffer: (P, n) columns in ascending score order
+    order &= low
+    order += (np.arange(P, dtype=np.int64) * n)[:, None]  # row offsets into the flattened (P*n,) view
+    r = rewards.ravel().take(order)  # (P, n)
+    rows = np.flatnonzero(near.any(axis=1))
+    if not len(rows):
+        return r, rows, None
+    s_rows = scores.ravel().take(order[rows])  # (T, n) scores in key order
+    bad = (np.diff(s_rows, axis=1) < 0).any(axis=1)  # near-ties the key could not order
+    if bad.any():
+        redo = rows[bad]
+        o = np.argsort(scores[redo], axis=1)
+        r[redo] = np.take_along_axis(rewards[redo], o, 1)
+        s_rows[bad] = np.take_along_axis(scores[redo], o, 1)
+    return r, rows, s_rows
+
+
+def _tie_means(r: np.ndarray, s: np.ndarray) -> np.ndarray:
+    """(T, n) rewards and sorted scores -> rewards with each tied group replaced by its mean."""
+    T, n = s.shape
+    new = np.ones((T, n), dtype=bool)  # True where a tie group starts
+    new[:, 1:] = s[:, 1:] != s[:, :-1]
+    if new.all():
+        return r
+    starts = np.flatnonzero(new.ravel())  # group starts in the flattened (T*n,) view
+    sums = np.add.reduceat(r.ravel(), starts)
+    counts = np.diff(np.append(starts, T * n))
+    return np.repeat(sums / counts, counts).reshape(T, n)  # (T*n,) -> (T, n)
+
+
 def _bon_matrix(scores: np.ndarray, rewards: np.ndarray, ks: np.ndarray) -> np.ndarray:
     """scores, rewards: (P, n) float64, ks: (K,) int -> (P, K) best-of-k values."""
     P, n = scores.shape
-    order = np.argsort(scores, axis=1)  # ascending score per prompt
-    r = np.take_along_axis(rewards, order, axis=1)  # (P, n) rewards in score order
-    s = np.take_along_axis(scores, order, axis=1)  # (P, n) sorted scores
-    new = np.ones((P, n), dtype=bool)  # True where a tie group starts
-    new[:, 1:] = s[:, 1:] != s[:, :-1]
-    if not new.all():
+    r, rows, s_rows = _sort_rewards_by_score(scores, rewards)  # (P, n) rewards in score order
+    if len(rows):
         # ties: every member of a tied group gets the group's mean reward
-        starts = np.flatnonzero(new.ravel())  # group starts in the flattened (P*n,) view
-        sums = np.add.reduceat(r.ravel(), starts)
-        counts = np.diff(np.append(starts, P * n))
-        r = np.repeat(sums / counts, counts).reshape(P, n)  # (P*n,) -> (P, n)
-    return r @ _rank_weights(n, ks).T  # (P, n) @ (n, K) -> (P, K)
+        r[rows] = _tie_means(r[rows], s_rows)
+    w = np.ascontiguousarray(_rank_weights(n, ks).T)  # (n, K)
+    return r @ w  # (P, n) @ (n, K) -> (P, K)
 
 
 # ----------------------------------------------------------------------------- validation helpers

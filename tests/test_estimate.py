@@ -261,6 +261,44 @@ def test_ragged_equals_per_prompt(sizes, seed):
     np.testing.assert_allclose(got, np.stack([bon_at_k(s, r, ks) for s, r in zip(ss, rr)]), rtol=1e-12)
 
 
+@given(st.lists(st.tuples(st.integers(0, 5), st.integers(-3, 3), st.integers(0, 2)), min_size=1, max_size=8),
+       st.sampled_from([1.0, -1.0, 1e300, -1e-300, 0.0]))
+@settings(max_examples=60)
+def test_near_ties_signed_zeros_and_extremes_match_brute_force(items, base):
+    # scores a few ulps apart (the fast sort keys drop low bits, so these must take the exact path),
+    # both signed zeros (equal as numbers, hence tied) and huge magnitudes of both signs
+    s = []
+    for step, sign, kind in items:
+        x = base
+        for _ in range(step):
+            x = np.nextafter(x, np.inf)
+        s.append([x, -0.0 if sign < 0 else 0.0, float(np.sign(sign)) * 1e308][kind])
+    n = len(s)
+    r = [float((7 * i) % 5) for i in range(n)]
+    got = bon_at_k(np.array(s), np.array(r), list(range(1, n + 1)))
+    want = [float(brute_bon(s, r, k)) for k in range(1, n + 1)]  # brute force with Python float comparisons
+    np.testing.assert_allclose(got, want, rtol=1e-10, atol=1e-12)
+
+
+def test_near_ties_in_a_large_pool_match_argsort_reference():
+    # 300 pools of 600 samples whose scores differ by 0..40 ulps: most fall inside one fast-sort key bucket
+    rng = np.random.default_rng(9)
+    P, n = 300, 600
+    S = 1.0 + rng.integers(0, 40, size=(P, n)) * np.spacing(1.0)
+    R = rng.normal(size=(P, n))
+    ks = [1, 3, 50, 600]
+    got = bon_at_k_per_prompt(S, R, ks)
+    # reference: stable argsort + tie-group means + exact integer weights C(i, k-1) / C(n, k)
+    for p in range(0, P, 37):
+        o = np.argsort(S[p], kind="stable")
+        s, r = S[p][o], R[p][o]
+        vals, inv = np.unique(s, return_inverse=True)
+        r = (np.bincount(inv, weights=r) / np.bincount(inv))[inv]
+        for j, k in enumerate(ks):
+            want = sum(Fraction(math.comb(i, k - 1)) * Fraction(float(r[i])) for i in range(n)) / math.comb(n, k)
+            assert got[p, j] == pytest.approx(float(want), rel=1e-9, abs=1e-12)
+
+
 def test_torch_input_and_scalar_k_shapes():
     rng = np.random.default_rng(5)
     S, R = rng.normal(size=(3, 6)), rng.normal(size=(3, 6))
