@@ -57,6 +57,7 @@ from typing import Any, Mapping, Sequence
 
 import numpy as np
 
+from ._procs import kill_by_cwd, kill_uid, pids_of, user_tasks
 from .base import Verdicts
 from .scoring import check_batch
 
@@ -110,38 +111,6 @@ def _int(name: str, value: Any, *, lo: int, hi: int) -> int:
     if not lo <= value <= hi:
         raise ValueError(f"{name} must be in [{lo}, {hi}], got {name}={value}")
     return int(value)
-
-
-def _user_tasks(uid: int) -> int:
-    """Number of tasks (threads) owned by ``uid``, what RLIMIT_NPROC counts."""
-    total = 0
-    for pid in os.listdir("/proc"):
-        if not pid.isdigit():
-            continue
-        try:
-            with open(f"/proc/{pid}/status") as f:
-                fields = dict(line.split(":", 1) for line in f if ":" in line)
-        except OSError:
-            continue
-        if int(fields.get("Uid", "-1").split()[0]) == uid:
-            total += int(fields.get("Threads", "1"))
-    return total
-
-
-def _pids_of(uid: int) -> list[int]:
-    """Live (non-zombie) processes whose real uid is ``uid``."""
-    out = []
-    for pid in os.listdir("/proc"):
-        if not pid.isdigit():
-            continue
-        try:
-            with open(f"/proc/{pid}/status") as f:
-                fields = dict(line.split(":", 1) for line in f if ":" in line)
-        except OSError:
-            continue
-        if int(fields.get("Uid", "-1").split()[0]) == uid and not fields.get("State", "").strip().startswith("Z"):
-            out.append(int(pid))
-    return out
 
 
 class CodeRunner:
@@ -265,7 +234,7 @@ class CodeRunner:
             (resource.RLIMIT_FSIZE, (self.file_size_mb << 20,) * 2),
             (resource.RLIMIT_CORE, (0, 0)),
         ]
-        nproc = self.max_processes if uid is not None else _user_tasks(os.getuid()) + self.max_processes
+        nproc = self.max_processes if uid is not None else user_tasks(os.getuid()) + self.max_processes
         soft, hard = resource.getrlimit(resource.RLIMIT_NPROC)
         if uid is None and hard != resource.RLIM_INFINITY:
             nproc = min(nproc, hard)
@@ -305,45 +274,12 @@ class CodeRunner:
             # kill(-1) as the sandbox uid reaches every process of that uid, even ones
             # that left the process group; repeat until none is left (bounded)
             for _ in range(50):
-                if not _pids_of(uid):
+                if not pids_of(uid):
                     break
-                self._kill_uid(uid)
+                kill_uid(uid)
                 time.sleep(0.01)
         else:
-            self._kill_by_cwd(workdir)
-
-    def _kill_uid(self, uid: int) -> None:
-        def as_uid() -> None:
-            os.setgid(uid)
-            os.setuid(uid)
-            try:
-                os.kill(-1, signal.SIGKILL)
-            except OSError:
-                pass
-
-        try:
-            subprocess.run(["/bin/true"] if os.path.exists("/bin/true") else [sys.executable, "-c", "pass"],
-                           preexec_fn=as_uid, env={}, stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL,
-                           stderr=subprocess.DEVNULL, timeout=5)
-        except (OSError, subprocess.SubprocessError):
-            pass
-
-    @staticmethod
-    def _kill_by_cwd(workdir: str) -> None:
-        """Not root: kill our processes still working in ``workdir`` (escaped the group)."""
-        real = os.path.realpath(workdir)
-        for pid in os.listdir("/proc"):
-            if not pid.isdigit() or int(pid) == os.getpid():
-                continue
-            try:
-                cwd = os.readlink(f"/proc/{pid}/cwd")
-            except OSError:
-                continue
-            if cwd == real or cwd.startswith(real + os.sep):
-                try:
-                    os.kill(int(pid), signal.SIGKILL)
-                except OSError:
-                    pass
+            kill_by_cwd(workdir)
 
     def _spawn(self, python: str, workdir: str, uid: int | None, cfg_r: int, res_w: int) -> subprocess.Popen:
         return subprocess.Popen(
