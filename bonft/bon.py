@@ -32,7 +32,6 @@ import math
 import numbers
 from typing import Any
 
-import numpy as np
 import torch
 
 from bonft._checks import (
