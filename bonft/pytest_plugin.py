@@ -1,7 +1,9 @@
 """A pytest fixture for testing verifiers: ``verifier_check``.
 
-Enable with the ``pytest11`` entry point (installed with bonft) or
-``pytest_plugins = ["bonft.pytest_plugin"]``. In a test::
+Opt in from your top-level ``conftest.py`` (or a test module) with
+``pytest_plugins = ["bonft.pytest_plugin"]``; bonft does not register it
+automatically, so installing bonft never changes other projects' test runs.
+In a test::
 
     def test_my_verifier(verifier_check):
         report = verifier_check(my_verifier, examples)   # fails the test with the report if not ok
