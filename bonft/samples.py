@@ -56,14 +56,24 @@ class SampleTable:
 # ----------------------------------------------------------------------------- reading
 
 
-def _parse_lines(path: str, lines: list[str], numbers: list[int]) -> list[dict]:
-    """All lines as dicts: one fast ``json.loads`` over a JSON array, per-line only to locate an error."""
+def _parse_all(lines: list[str]) -> list[dict] | None:
+    """One fast ``json.loads`` over ``[line,line,...]``; None unless it yields one dict per line."""
+    if not lines:
+        return None
     try:
         rows = json.loads("[" + ",".join(lines) + "]")
-        if len(rows) == len(lines) and all(type(r) is dict for r in rows):
-            return rows
     except json.JSONDecodeError:
-        pass
+        return None
+    if len(rows) == len(lines) and set(map(type, rows)) == {dict}:
+        return rows
+    return None
+
+
+def _parse_lines(path: str, lines: list[str], numbers: list[int]) -> list[dict]:
+    """Non-blank lines as dicts; parses line by line only when the fast route fails, to locate the error."""
+    rows = _parse_all(lines)
+    if rows is not None:
+        return rows
     name = os.path.basename(path)
     for text, no in zip(lines, numbers):
         try:
@@ -132,12 +142,17 @@ def read_samples(
     path = os.fspath(path)
     name = os.path.basename(path)
     with open(path, encoding="utf-8") as f:
-        raw = f.read().split("\n")
-    numbers = [i + 1 for i, t in enumerate(raw) if t.strip()]
-    lines = [raw[i - 1] for i in numbers]
-    if not lines:
-        raise ValueError(f"{name}: no samples (the file is empty)")
-    rows = _parse_lines(path, lines, numbers)
+        lines = f.read().split("\n")
+    if lines and not lines[-1].strip():
+        lines.pop()  # the newline that ends the last line
+    numbers = range(1, len(lines) + 1)  # file line number of each entry of ``lines``
+    rows = _parse_all(lines)
+    if rows is None:  # blank lines or an error: drop blanks, keep their numbers, parse again
+        numbers = [i + 1 for i, t in enumerate(lines) if t.strip()]
+        lines = [lines[i - 1] for i in numbers]
+        if not lines:
+            raise ValueError(f"{name}: no samples (the file is empty)")
+        rows = _parse_lines(path, lines, numbers)
 
     ids = _column(name, rows, numbers, prompt_field, "prompt_field", required=True)
     kinds = set(map(type, ids))
@@ -168,11 +183,12 @@ def _check_row(i: int, row: Any) -> None:
     for key in ("prompt_id", "score", "reward"):
         if key not in row:
             raise ValueError(f"rows[{i}] must have the field {key!r}, got fields {sorted(row)}")
-    if isinstance(row["prompt_id"], bool) or not isinstance(row["prompt_id"], (str, int)):
-        raise TypeError(f"rows[{i}]['prompt_id'] must be a str or int, got {type(row['prompt_id']).__name__}")
+    pid = _plain(row["prompt_id"])
+    if isinstance(pid, bool) or not isinstance(pid, (str, int)):
+        raise TypeError(f"rows[{i}]['prompt_id'] must be a str or int, got {type(pid).__name__}")
     for key in ("score", "reward", "temperature"):
         if key in row:
-            v = row[key]
+            v = _plain(row[key])
             if not isinstance(v, (int, float)) or (key == "score" and isinstance(v, bool)):
                 raise TypeError(f"rows[{i}][{key!r}] must be a number, got {type(v).__name__} {v!r}")
             if not math.isfinite(v):
@@ -180,16 +196,23 @@ def _check_row(i: int, row: Any) -> None:
 
 
 def _plain(v: Any) -> Any:
-    """numpy scalars -> Python scalars so ``json.dumps`` accepts them."""
+    """numpy scalars -> Python scalars (what ``json`` writes)."""
     return v.item() if isinstance(v, np.generic) else v
+
+
+def _json_default(v: Any) -> Any:
+    if isinstance(v, np.generic):
+        return v.item()
+    raise TypeError(f"{type(v).__name__} is not JSON serializable")
 
 
 def write_samples(path, rows: Iterable[dict]) -> int:
     """Write ``rows`` (dicts with at least prompt_id, score, reward) as JSONL; returns the row count.
 
-    Atomic: rows go to a temporary file in the same folder, which replaces
-    ``path`` only once every row is written and flushed. A bad row raises
-    (``rows[12]['score'] must be finite, got nan``) and leaves ``path`` untouched.
+    numpy scalars are written as plain numbers. Atomic: rows go to a temporary
+    file in the same folder, which replaces ``path`` only once every row is
+    written and flushed. A bad row raises (``rows[12]['score'] must be finite,
+    got nan``) and leaves ``path`` untouched.
     """
     path = os.fspath(path)
     folder = os.path.dirname(os.path.abspath(path))
@@ -197,10 +220,13 @@ def write_samples(path, rows: Iterable[dict]) -> int:
     count = 0
     try:
         with os.fdopen(fd, "w", encoding="utf-8") as f:
+            encode = json.JSONEncoder(separators=(",", ":"), allow_nan=False, default=_json_default).encode
             for i, row in enumerate(rows):
-                row = {k: _plain(v) for k, v in row.items()} if isinstance(row, dict) else row
                 _check_row(i, row)
-                f.write(json.dumps(row, separators=(",", ":"), allow_nan=False) + "\n")
+                try:
+                    f.write(encode(row) + "\n")
+                except (TypeError, ValueError) as e:
+                    raise type(e)(f"rows[{i}] cannot be written as JSON: {e}") from None
                 count += 1
             f.flush()
             os.fsync(f.fileno())

@@ -41,8 +41,14 @@ def test_round_trip_matches_stdlib_json(tmp_path):
 
 def test_numpy_scalars_are_written_as_plain_numbers(tmp_path):
     p = tmp_path / "s.jsonl"
-    write_samples(p, [{"prompt_id": np.int64(4), "score": np.float32(0.5), "reward": np.float64(1.0)}])
-    assert json.loads(p.read_text()) == {"prompt_id": 4, "score": 0.5, "reward": 1.0}
+    write_samples(p, [{"prompt_id": np.int64(4), "score": np.float32(0.5), "reward": np.float64(1.0),
+                       "n_tokens": np.int32(17), "passed": np.bool_(True)}])
+    assert json.loads(p.read_text()) == {"prompt_id": 4, "score": 0.5, "reward": 1.0, "n_tokens": 17, "passed": True}
+    with pytest.raises(ValueError, match=r"rows\[0\] cannot be written as JSON: Out of range float"):
+        write_samples(p, [{"prompt_id": 1, "score": 0.5, "reward": 1, "extra": float("inf")}])
+    with pytest.raises(TypeError, match=r"rows\[0\] cannot be written as JSON: set is not JSON serializable"):
+        write_samples(p, [{"prompt_id": 1, "score": 0.5, "reward": 1, "extra": {1}}])
+    assert json.loads(p.read_text())["n_tokens"] == 17  # failed writes left the file as it was
 
 
 def test_optional_columns_absent_and_blank_lines(tmp_path):
