@@ -184,7 +184,7 @@ def rl_step(run: Run, step: int) -> dict:
     B = cfg.prompts_per_step
     k = k_at(cfg, step - cfg.sft_steps)
     idx = _prompt_batch(cfg, step, B, len(run.train), run.rank, run.world)
-    tm = {"sample": 0.0, "score": 0.0, "forward_backward": 0.0}
+    tm = dict.fromkeys(("sample", "score", "forward", "credit", "backward"), 0.0)
     acc: dict = {}
     for j, mb in enumerate(np.array_split(idx, cfg.grad_accum)):
         ex = [run.train[i] for i in mb]
@@ -212,11 +212,13 @@ def rl_step(run: Run, step: int) -> dict:
             with torch.no_grad():
                 ref_logp = sequence_logprobs(run.ref_model, smp.prompt_ids, smp.prompt_mask, smp.response_ids,
                                              smp.response_mask, temperature=T)
+        t3 = time.perf_counter()
         loss, info = _objective(cfg, k, logp, smp.response_mask, scores, rewards, ref_logp, sft_terms)
+        t4 = time.perf_counter()
         (loss / B).backward()
-        tm["sample"] += t1 - t0
-        tm["score"] += t2 - t1
-        tm["forward_backward"] += time.perf_counter() - t2
+        for key, dt in (("sample", t1 - t0), ("score", t2 - t1), ("forward", t3 - t2), ("credit", t4 - t3),
+                        ("backward", time.perf_counter() - t4)):
+            tm[key] += dt
         for key, val in [("loss", float(loss.detach()) / B), ("reward", float(rewards.mean()) * b / B),
                          ("score", float(scores.mean()) * b / B), ("verifier_failures", v.n_failed)]:
             acc[key] = acc.get(key, 0.0) + val

@@ -57,7 +57,7 @@ def test_end_to_end_writes_everything(reference):
     assert train_lines[0]["nll_per_token"] > 3.5
     assert train_lines[3]["nll_per_token"] < train_lines[0]["nll_per_token"]
     rl = train_lines[4]
-    assert {"time/sample", "time/score", "time/forward_backward", "reward", "k", "grad_norm"} <= rl.keys()
+    assert {"time/sample", "time/score", "time/forward", "time/credit", "time/backward", "reward", "k", "grad_norm"} <= rl.keys()
     (ev,) = [r for r in lines if r["kind"] == "eval"]
     assert ev["step"] == 8 and ev["ks"] == [1, 4] and ev["n_prompts"] == 6 and "proxy" in ev["best_of_k"]
     assert 0.0 <= ev["pass_at_k"]["mean"][0] <= ev["pass_at_k"]["mean"][1] <= 1.0  # pass@k grows with k
@@ -117,8 +117,7 @@ def test_kill_9_then_resume_is_exact(tmp_path, reference):
     assert killed_at is not None, f"the run ended before it could be killed: {proc.stderr.read().decode()[-500:]}"
     assert proc.returncode == -signal.SIGKILL
     assert load_state(latest_checkpoint(cfg.out_dir))["step"] < 8
-    done = subprocess.run(cmd + ["--resume"], capture_output=True, text=True)
-    assert done.returncode == 0, done.stderr[-2000:]
+    T.train(cfg, resume=True, progress=False)  # in-process: one interpreter start less
     assert_same_weights(final_weights(cfg.out_dir), weights)
 
 
