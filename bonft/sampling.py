@@ -309,6 +309,46 @@ def sample(
 # ---------------------------------------------------------------- training forward
 
 
+def encode_responses(tokenizer, prompts: Sequence[str], responses, *, add_eos: bool = True):
+    """Token tensors for given texts, in the layout of :class:`Samples` (e.g. for supervised warm-starts).
+
+    prompts: B strings; responses: B lists of n strings (or B strings, n = 1) ->
+    ``(prompt_ids (B, Tp), prompt_mask (B, Tp), response_ids (B, n, T), response_mask (B, n, T))``,
+    prompts left-padded and tokenized with the tokenizer's special tokens, responses
+    without them, right-padded, each followed by EOS when ``add_eos`` (the tokenizer
+    must have one). ``sequence_logprobs(model, *encode_responses(...))`` is then the
+    log-likelihood of each response.
+    """
+    prompts = _check_prompts(prompts)
+    if isinstance(responses, str):
+        raise TypeError("responses must be a sequence (one entry per prompt), got a single str")
+    responses = list(responses)
+    if len(responses) != len(prompts):
+        raise ValueError(f"responses must have one entry per prompt (len(prompts)={len(prompts)}), got {len(responses)}")
+    groups = [[r] if isinstance(r, str) else list(r) for r in responses]
+    n = len(groups[0])
+    for i, g in enumerate(groups):
+        if len(g) != n or n == 0:
+            raise ValueError(f"responses must give the same number n >= 1 of responses per prompt (n={n}), got {len(g)} at index {i}")
+        for r in g:
+            if not isinstance(r, str):
+                raise TypeError(f"responses must hold str, got {type(r).__name__} at index {i}")
+    pad_id, eos_id = _special_ids(tokenizer)
+    if add_eos and eos_id is None:
+        raise ValueError("add_eos=True needs a tokenizer with an eos token, got eos_token_id=None")
+    prompt_ids, prompt_mask = _left_pad([list(tokenizer(p)["input_ids"]) for p in prompts], pad_id)
+    rows = [list(tokenizer(r, add_special_tokens=False)["input_ids"]) + ([eos_id] if add_eos else [])
+            for g in groups for r in g]
+    T = max(1, max(len(r) for r in rows))
+    ids = torch.full((len(rows), T), pad_id, dtype=torch.long)
+    mask = torch.zeros((len(rows), T), dtype=torch.long)
+    for i, r in enumerate(rows):
+        ids[i, :len(r)] = torch.tensor(r, dtype=torch.long)
+        mask[i, :len(r)] = 1
+    B = len(prompts)
+    return prompt_ids, prompt_mask, ids.view(B, n, T), mask.view(B, n, T)  # (B*n, T) -> (B, n, T)
+
+
 def _check_long(name: str, x, ndim: int) -> torch.Tensor:
     if not isinstance(x, torch.Tensor):
         raise TypeError(f"{name} must be a torch.Tensor, got {type(x).__name__}")

@@ -17,7 +17,7 @@ import torch
 from scipy import stats
 
 from bonft.models import build_tiny_model
-from bonft.sampling import Samples, sample, sequence_logprobs
+from bonft.sampling import Samples, encode_responses, sample, sequence_logprobs
 from bonft.tasks.tokenizer import BOS_ID, EOS_ID, PAD_ID, build_tokenizer, char_vocab
 
 TOK = build_tokenizer()
@@ -267,6 +267,23 @@ def test_one_row_at_a_time_equals_batched_law(arch):
     s = sample(model, TOK, PROMPTS, n=2, max_new_tokens=8, seed=3, batch_size=1)
     lp = sequence_logprobs(model, s.prompt_ids, s.prompt_mask, s.response_ids, s.response_mask)
     assert (lp - s.token_logprobs).abs().max().item() < 1e-5
+
+
+@pytest.mark.parametrize("arch", ["gpt2", "llama"])
+def test_encode_responses_reproduces_sampled_tokens(arch):
+    model = _tiny(arch, eos_boost=3.0)
+    s = sample(model, TOK, PROMPTS, n=4, max_new_tokens=10, seed=6)
+    stopped = ((s.response_ids == EOS_ID) & (s.response_mask == 1)).any(-1)  # (B, n)
+    pid, pm, rid, rm = encode_responses(TOK, PROMPTS, s.texts)
+    assert torch.equal(pid, s.prompt_ids) and torch.equal(pm, s.prompt_mask)
+    lp = sequence_logprobs(model, pid, pm, rid, rm).sum(-1)
+    # responses that ended with EOS re-encode to the same tokens, so to the same log-likelihood
+    assert (lp[stopped] - s.sequence_logprob()[stopped]).abs().max().item() < 1e-5
+    assert stopped.sum() >= 6
+    pid, pm, rid, rm = encode_responses(TOK, ["ab"], ["12"])  # one response per prompt
+    assert rid.tolist() == [[[TOK.convert_tokens_to_ids("1"), TOK.convert_tokens_to_ids("2"), EOS_ID]]]
+    with pytest.raises(ValueError, match=r"same number n >= 1 of responses per prompt \(n=2\), got 1 at index 1"):
+        encode_responses(TOK, ["a", "b"], [["x", "y"], ["z"]])
 
 
 def test_training_mode_is_restored():
