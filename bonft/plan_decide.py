@@ -35,6 +35,28 @@ def bootstrap_means(per_prompt: list[np.ndarray], *, paired: bool, n_boot: int, 
     return out
 
 
+def not_worse(diff: np.ndarray, alpha: float) -> np.ndarray:
+    """Percentile-bootstrap test of a gap: diff (B, ...) resampled "best minus this" -> (...) bool.
+
+    True (not significantly worse) unless fewer than a share alpha/2 of the resampled gaps
+    are <= 0, i.e. unless the two-sided (1 - alpha) percentile interval of the gap lies above 0.
+    A count instead of a quantile: same decision, no sort.
+    """
+    return (diff <= 0.0).mean(axis=0) >= alpha / 2
+
+
+def isotonic(y: np.ndarray) -> np.ndarray:
+    """Least-squares non-decreasing fit of y (K,) -> (K,) by pool-adjacent-violators (equal weights)."""
+    blocks: list[list[float]] = []  # [sum, count] of each pooled block, left to right
+    for v in np.asarray(y, dtype=np.float64):
+        blocks.append([float(v), 1.0])
+        while len(blocks) > 1 and blocks[-2][0] / blocks[-2][1] > blocks[-1][0] / blocks[-1][1]:
+            s, c = blocks.pop()
+            blocks[-1][0] += s
+            blocks[-1][1] += c
+    return np.concatenate([np.full(int(c), s / c) for s, c in blocks])
+
+
 def finish(*, mode, temps, ks, value, lo, hi, boot, confidence, n_boot, paired, n_prompts, pool_min, mean_tokens,
             b_samples, b_tokens, min_gain, notes) -> PlanResult:
     T, K = value.shape
@@ -45,7 +67,7 @@ def finish(*, mode, temps, ks, value, lo, hi, boot, confidence, n_boot, paired, 
     else:
         alpha = 1.0 - confidence
         diff = boot[:, best_index, cols][:, None, :] - boot  # (B, T, K): best minus each temperature, paired draws
-        near = np.quantile(diff, alpha / 2, axis=0) <= 0.0  # worse only if the whole CI of the gap is above 0
+        near = not_worse(diff, alpha)
 
     def cell_gap(t1, k1, t0, k0):  # V(t1, k1) - V(t0, k0) with its CI
         g = float(value[t1, k1 - 1] - value[t0, k0 - 1])
@@ -117,9 +139,12 @@ def _choose(value, lo, hi, boot, confidence, mask, ks, temps, cost, *, kind, bud
     t, j = min(cand.tolist(), key=lambda tj: (cost[tj[0], tj[1]], tj[1], tj[0]))
     alts = []
     if boot is not None:
-        diff = boot[:, t, j][:, None, None] - boot  # (B, T, K) chosen minus every cell
-        ok = (np.quantile(diff, (1 - confidence) / 2, axis=0) <= 0.0) & mask
-        alts = [(float(temps[a]), int(ks[b])) for a, b in np.argwhere(ok) if (a, b) != (t, j)]
+        cells = np.argwhere(mask)  # (m, 2) affordable (t, j)
+        diff = boot[:, t, j][:, None] - boot[:, cells[:, 0], cells[:, 1]]  # (B, m) chosen minus each affordable cell
+        ok = not_worse(diff, 1 - confidence)
+        near = [(a, b) for (a, b), keep in zip(cells.tolist(), ok) if keep and (a, b) != (t, j)]
+        near.sort(key=lambda ab: -value[ab[0], ab[1]])  # closest to the choice first
+        alts = [(float(temps[a]), int(ks[b])) for a, b in near]
     return BudgetChoice(
         kind=kind,
         budget=budget,
@@ -140,11 +165,9 @@ def fit_best_temperature(ks: Any, best_temperature: Any) -> TemperatureFit:
     ks: (K,), best_temperature: (K,) -> TemperatureFit. Points: k = 1, 2, 4, ... (and the
     largest k), evenly spaced in log k so the many large k do not dominate.
     Line: T* ~ a + b log k by least squares, with R^2 = 1 - SS_res / SS_tot and the RMS residual.
-    Monotone: isotonic regression of T* on log k (scipy.optimize.isotonic_regression),
+    Monotone: isotonic regression of T* on log k (pool-adjacent-violators, :func:`isotonic`),
     increasing or decreasing, whichever leaves the smaller residual.
     """
-    from scipy.optimize import isotonic_regression
-
     ks = np.asarray(ks, dtype=np.int64)
     tb = np.asarray(best_temperature, dtype=np.float64)
     pick = sorted(set([int(k) for k in ks if (k & (k - 1)) == 0] + [int(ks[-1])]))
@@ -158,8 +181,7 @@ def fit_best_temperature(ks: Any, best_temperature: Any) -> TemperatureFit:
     resid = y - (intercept + slope * x)
     ss_res = float((resid**2).sum())
     r2 = None if ss_tot <= 1e-24 else 1.0 - ss_res / ss_tot
-    inc = isotonic_regression(y, increasing=True).x
-    dec = isotonic_regression(y, increasing=False).x
+    inc, dec = isotonic(y), -isotonic(-y)
     sse_inc, sse_dec = float(((y - inc) ** 2).sum()), float(((y - dec) ** 2).sum())
     direction = "constant" if ss_tot <= 1e-24 else ("increasing" if sse_inc <= sse_dec else "decreasing")
     iso = inc if sse_inc <= sse_dec else dec

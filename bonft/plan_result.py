@@ -15,7 +15,7 @@ class BudgetChoice:
     kind: "samples" (k <= budget) or "tokens" (k * mean_tokens(T) <= budget).
     value, lo, hi: V_k(T) of the choice and its CI (lo = hi = value in exact mode).
     cost: samples (kind "samples") or expected generated tokens per prompt (kind "tokens").
-    alternatives: other (temperature, k) cells within the budget not significantly worse.
+    alternatives: other (temperature, k) cells within the budget not significantly worse, best first.
     """
 
     kind: str
@@ -158,7 +158,9 @@ class PlanResult:
                 lines.append(f"    doubling kept paying (gain > {self.min_gain:g}) up to k={int(self.ks[-1])}")
             else:
                 sig = "" if exact else " significantly"
-                lines.append(f"    doubling stops paying at k={self.doubling_stops_at} (gain not{sig} above {self.min_gain:g})")
+                k = self.doubling_stops_at
+                g = next(d.gain for d in self.doubling if d.k == k)
+                lines.append(f"    doubling stops paying from k={k}: {k}->{2 * k} gains {g:+.4f}, not{sig} above {self.min_gain:g}")
         f = self.fit
         r2 = "undefined (constant)" if f.r2 is None else f"{f.r2:.3f}"
         lines.append(

@@ -4,7 +4,8 @@ Outside references used here:
 - brute-force enumeration of all k-tuples of outcomes (the definition of best-of-k with
   ties broken uniformly among the tied samples), written here with no call into bonft;
 - the pass@k formula of Chen et al. 2021, 1 - C(n-c, k) / C(n, k), in exact integers (math.comb);
-- scipy.stats.linregress for the least-squares line of the fit.
+- scipy.stats.linregress for the least-squares line of the fit, scipy.optimize.isotonic_regression
+  for the monotone fit.
 """
 from __future__ import annotations
 
@@ -272,6 +273,27 @@ def test_fit_line_matches_scipy_linregress():
     assert const.r2 is None and const.monotone_direction == "constant" and const.rmse == 0.0
     dec = fit_best_temperature(np.arange(1, 9), [1.3, 1.3, 1.0, 1.0, 1.0, 1.0, 1.0, 0.7])
     assert dec.monotone_direction == "decreasing" and dec.monotone_rmse == 0.0 and dec.slope < 0
+
+
+@given(y=st.lists(st.floats(min_value=0.1, max_value=3.0, allow_nan=False), min_size=1, max_size=12))
+def test_isotonic_matches_scipy(y):
+    # reference library: scipy.optimize.isotonic_regression (pool-adjacent-violators)
+    from scipy.optimize import isotonic_regression
+
+    from bonft.plan_decide import isotonic
+
+    np.testing.assert_allclose(isotonic(np.array(y)), isotonic_regression(np.array(y)).x, rtol=0, atol=1e-12)
+
+
+def test_not_worse_rule_is_the_percentile_interval():
+    # percentile bootstrap (Efron & Tibshirani 1993, ch. 13, chapter from memory): "significantly worse" iff the
+    # (1 - alpha) interval of the gap lies above 0, i.e. fewer than alpha/2 of the gaps are <= 0
+    from bonft.plan_decide import not_worse
+
+    gaps = np.linspace(-0.1, 1.9, 200)  # 10 of 200 (5%) are <= 0
+    assert not_worse(gaps[:, None], 0.05)[0]  # 5% >= 2.5%: interval reaches 0
+    assert not not_worse(gaps[:, None] + 0.1, 0.05)[0]  # only 1 of 200 <= 0
+    assert np.quantile(gaps + 0.1, 0.025) > 0 and np.quantile(gaps, 0.025) <= 0
 
 
 def test_table_json_and_plots(tmp_path):
