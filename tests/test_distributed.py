@@ -1,0 +1,318 @@
+"""bonft.distributed: prompt sharding, the global loss constant, seeds, and real gloo process groups on 127.0.0.1.
+
+Multi-process tests start their own ranks with subprocess (RANK / WORLD_SIZE /
+MASTER_ADDR=127.0.0.1 / a free MASTER_PORT), so nothing listens beyond the
+loopback interface. Wall-clock bounds below are hang guards (a dead peer must
+not freeze the others), not speed goals.
+"""
+import os
+import re
+import signal
+import socket
+import subprocess
+import sys
+import time
+from datetime import timedelta
+from pathlib import Path
+
+import numpy as np
+import pytest
+import torch
+import torch.distributed as dist
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from bonft.distributed import (DistContext, PeerError, all_gather_objects, barrier, broadcast_object, derive_seed,
+                               gather_objects, global_mean_scale, init_from_env, prompt_seed, reduce_metrics,
+                               shard_bounds, shard_prompts, shutdown, unwrap_model, wrap_model)
+from bonft.losses import reinforce_loss
+
+SCRIPTS = Path(__file__).parent / "dist_scripts"
+sys.path.insert(0, str(SCRIPTS))
+import toy_ddp  # noqa: E402  (tests/dist_scripts/toy_ddp.py)
+
+LAUNCH_VARS = ("RANK", "WORLD_SIZE", "LOCAL_RANK", "MASTER_ADDR", "MASTER_PORT", "TORCHELASTIC_RUN_ID",
+               "TORCHELASTIC_USE_AGENT_STORE")
+
+
+# ----------------------------------------------------------------------------- launching ranks
+def free_port() -> int:
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+def launch(script: str, ranks, world: int, *args, port: int | None = None, extra_env: dict | None = None):
+    """Start the given ranks of a ``world``-rank group on 127.0.0.1; returns the Popen objects."""
+    port = port or free_port()
+    base = {k: v for k, v in os.environ.items() if k not in LAUNCH_VARS}
+    procs = []
+    for r in ranks:
+        env = {**base, "RANK": str(r), "WORLD_SIZE": str(world), "LOCAL_RANK": str(r), "MASTER_ADDR": "127.0.0.1",
+               "MASTER_PORT": str(port), "OMP_NUM_THREADS": "1", **(extra_env or {})}
+        procs.append(subprocess.Popen([sys.executable, str(SCRIPTS / script), *map(str, args)], env=env,
+                                      stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True))
+    return procs
+
+
+def finish(procs, limit: float) -> list[tuple[int, str, str]]:
+    """Wait for every process (hang guard ``limit`` s each); kill leftovers; (returncode, stdout, stderr) each."""
+    res = []
+    try:
+        for p in procs:
+            try:
+                out, err = p.communicate(timeout=limit)
+            except subprocess.TimeoutExpired:
+                pytest.fail(f"a rank was still running after {limit} s (hang)")
+            res.append((p.returncode, out, err))
+    finally:
+        for p in procs:
+            if p.poll() is None:
+                p.kill()
+                p.communicate()
+    return res
+
+
+def wait_ready(flags: Path, ranks, procs, limit: float = 60.0) -> None:
+    t0 = time.monotonic()
+    while not all((flags / f"ready-{r}").exists() for r in ranks):
+        for p in procs:
+            if p.poll() is not None:
+                pytest.fail(f"a rank exited before the run started: {p.communicate()[1][-2000:]}")
+        if time.monotonic() - t0 > limit:
+            pytest.fail(f"ranks not ready after {limit} s")
+        time.sleep(0.05)
+
+
+# ----------------------------------------------------------------------------- sharding by prompt
+@settings(max_examples=60)
+@given(world=st.integers(1, 9), per_rank=st.integers(0, 7), n=st.integers(1, 6))
+def test_shards_keep_groups_whole_disjoint_and_cover_the_batch(world, per_rank, n):
+    B = world * per_rank
+    rows = np.repeat(np.arange(B), n)  # flat layout: row b*n + i belongs to prompt b
+    shards = [shard_prompts(rows, rank=r, world_size=world, group_size=n) for r in range(world)]
+    owner = {}
+    for r, sh in enumerate(shards):
+        assert len(sh) == per_rank * n  # equal shares
+        for b in np.unique(sh):
+            assert b not in owner, f"prompt {b} on ranks {owner[b]} and {r}"
+            owner[b] = r
+            assert (sh == b).sum() == n  # all n samples of prompt b on rank r: the group is never split
+    assert np.array_equal(np.concatenate(shards) if shards else rows, rows)  # union in order = the batch
+    assert sorted(owner) == list(range(B))
+
+
+@settings(max_examples=60)
+@given(world=st.integers(2, 9), B=st.integers(0, 40))
+def test_uneven_policy_refuses_by_default_and_balances_when_allowed(world, B):
+    if B % world:
+        with pytest.raises(ValueError, match=rf"n_prompts must be divisible by the world size \(world_size={world}\).*got n_prompts={B}"):
+            shard_bounds(B, rank=0, world_size=world)
+    bounds = [shard_bounds(B, rank=r, world_size=world, allow_uneven=True) for r in range(world)]
+    sizes = [b - a for a, b in bounds]
+    assert bounds[0][0] == 0 and bounds[-1][1] == B
+    assert all(bounds[r][1] == bounds[r + 1][0] for r in range(world - 1))  # contiguous, disjoint
+    assert max(sizes) - min(sizes) <= 1 and sizes == sorted(sizes, reverse=True)
+    # same split as numpy's array_split (the reference for "first B % W parts one longer")
+    assert sizes == [len(p) for p in np.array_split(np.arange(B), world)]
+
+
+def test_shard_prompts_keeps_the_type_and_refuses_bad_input():
+    t = torch.arange(12).reshape(6, 2)
+    assert torch.equal(shard_prompts(t, rank=1, world_size=3), t[2:4])
+    assert shard_prompts(list("abcdef"), rank=2, world_size=3) == ["e", "f"]
+    with pytest.raises(ValueError, match=r"prompts_per_step must be divisible by the world size \(world_size=3\).*got prompts_per_step=16; use e.g. 15 or 18"):
+        shard_bounds(16, rank=0, world_size=3, name="prompts_per_step")
+    with pytest.raises(ValueError, match=r"items must hold whole groups of group_size=4 rows, got 6 rows"):
+        shard_prompts(list(range(6)), rank=0, world_size=1, group_size=4)
+    with pytest.raises(ValueError, match=r"rank must be < world_size \(world_size=2\), got rank=2"):
+        shard_bounds(4, rank=2, world_size=2)
+    with pytest.raises(TypeError, match=r"items must be a list, tuple, numpy array or tensor, got str"):
+        shard_prompts("abcd", rank=0, world_size=2)
+    with pytest.raises(TypeError, match=r"world_size must be an int, got float 2.0"):
+        shard_bounds(4, rank=0, world_size=2.0)
+
+
+# ----------------------------------------------------------------------------- the global loss constant
+@pytest.mark.parametrize("world", [1, 2, 4])
+def test_averaged_rank_gradients_equal_the_full_batch_gradient(world):
+    """W simulated ranks, gradients averaged as DDP does, equal autograd of the full-batch mean loss."""
+    B, n = 8, 3
+    g = torch.Generator().manual_seed(5)
+    theta = torch.randn(B, n, generator=g, dtype=torch.float64, requires_grad=True)
+    rewards = torch.rand(B, n, generator=g, dtype=torch.float64)
+    # reference: Kool et al. 2019 eq. (8), (1/n) sum_i (R_i - mean_{j!=i} R_j) grad log p_i, mean over all B prompts
+    base = (rewards.sum(1, keepdim=True) - rewards) / (n - 1)
+    ref_loss = -((rewards - base) * torch.log_softmax(theta, 1)).mean(1).mean()
+    (ref,) = torch.autograd.grad(ref_loss, theta)
+    c = global_mean_scale(global_count=B, world_size=world)
+    avg = torch.zeros_like(theta)
+    for r in range(world):
+        a, b = shard_bounds(B, rank=r, world_size=world)
+        loss, _ = reinforce_loss(torch.log_softmax(theta[a:b], 1), rewards[a:b], baseline="loo", reduction="sum")
+        (gr,) = torch.autograd.grad(c * loss, theta)
+        avg += gr / world  # DDP's all-reduce mean
+    torch.testing.assert_close(avg, ref, rtol=0, atol=1e-12)
+    assert global_mean_scale(global_count=8, world_size=4, grads="summed") == 1 / 8
+    with pytest.raises(ValueError, match=r"grads must be one of \('averaged', 'summed'\), got 'mean'"):
+        global_mean_scale(global_count=8, world_size=2, grads="mean")
+    with pytest.raises(ValueError, match=r"global_count must be >= 1, got global_count=0"):
+        global_mean_scale(global_count=0, world_size=2)
+
+
+# ----------------------------------------------------------------------------- seeds
+def test_seeds_are_numpy_seedsequence_reproducible_and_differ_by_rank_and_slot():
+    # reference: numpy's SeedSequence documentation -- entropy list in, generate_state out
+    want = int(np.random.SeedSequence([3, 10, 1, 0]).generate_state(2, np.uint64)[0] >> np.uint64(1))
+    assert derive_seed(3, step=10, rank=1) == want
+    by_rank = {derive_seed(3, step=10, rank=r) for r in range(64)}
+    by_step = {derive_seed(3, step=s, rank=0) for s in range(64)}
+    assert len(by_rank) == 64 and len(by_step) == 64
+    slots = [prompt_seed(3, step=10, slot=j) for j in range(64)]
+    assert len(set(slots)) == 64 and slots == [prompt_seed(3, step=10, slot=j) for j in range(64)]
+    assert not set(slots) & by_rank  # prompt seeds are a stream of their own
+    assert all(0 <= s < 2**63 for s in slots)
+    with pytest.raises(ValueError, match=r"step must be >= 0, got step=-1"):
+        derive_seed(0, step=-1)
+    with pytest.raises(TypeError, match=r"slot must be an int, got float 1.0"):
+        prompt_seed(0, step=0, slot=1.0)
+
+
+# ----------------------------------------------------------------------------- one process, no group
+def test_without_launcher_env_everything_is_a_no_op():
+    ctx = init_from_env(device="cpu", env={})
+    assert (ctx.enabled, ctx.rank, ctx.world_size, ctx.is_main, ctx.device.type) == (False, 0, 1, True, "cpu")
+    m = torch.nn.Linear(2, 2)
+    assert wrap_model(m, ctx) is m and unwrap_model(m) is m
+    assert reduce_metrics({"b": 2, "a": 1.5}, ctx) == {"a": 1.5, "b": 2.0}
+    assert gather_objects({"x": 1}, ctx) == [{"x": 1}] and all_gather_objects(3, ctx) == [3]
+    assert broadcast_object("ckpt", ctx) == "ckpt"
+    t = torch.ones(2)
+    assert reduce_metrics({}, ctx) == {}
+    barrier(ctx)
+    shutdown(ctx)
+    assert not dist.is_initialized() and torch.equal(t, torch.ones(2))
+
+
+def test_bad_launcher_environment_is_named():
+    good = {"RANK": "0", "WORLD_SIZE": "2", "MASTER_ADDR": "127.0.0.1", "MASTER_PORT": "29511"}
+    with pytest.raises(ValueError, match=r"WORLD_SIZE must be an int >= 1, got WORLD_SIZE='two'"):
+        init_from_env(device="cpu", env={**good, "WORLD_SIZE": "two"})
+    with pytest.raises(ValueError, match=r"RANK must be < WORLD_SIZE \(WORLD_SIZE=2\), got RANK=2"):
+        init_from_env(device="cpu", env={**good, "RANK": "2"})
+    with pytest.raises(ValueError, match=r"RANK must be an int >= 0, got RANK=None"):
+        init_from_env(device="cpu", env={"WORLD_SIZE": "2"})
+    with pytest.raises(ValueError, match=r"MASTER_ADDR must name rank 0's host .* got nothing"):
+        init_from_env(device="cpu", env={k: v for k, v in good.items() if k != "MASTER_ADDR"})
+    with pytest.raises(ValueError, match=r"MASTER_PORT must be an int >= 1, got MASTER_PORT=None"):
+        init_from_env(device="cpu", env={k: v for k, v in good.items() if k != "MASTER_PORT"})
+    with pytest.raises(TypeError, match=r"env must be a mapping of environment variables, got list"):
+        init_from_env(device="cpu", env=[("RANK", "0")])
+    with pytest.raises(ValueError, match=r"timeout_s must be a finite number > 0, got timeout_s=0.0"):
+        init_from_env(device="cpu", timeout_s=0, env={})
+    with pytest.raises(ValueError, match=r"device must be one of \('auto', 'cpu', 'cuda'\), got 'tpu'"):
+        init_from_env(device="tpu", env={})
+    assert not dist.is_initialized()
+
+
+def test_a_one_rank_group_binds_its_store_to_loopback_only(monkeypatch):
+    monkeypatch.setenv("GLOO_SOCKET_IFNAME", "lo")
+    port = free_port()
+    env = {"RANK": "0", "WORLD_SIZE": "1", "MASTER_ADDR": "127.0.0.1", "MASTER_PORT": str(port)}
+    ctx = init_from_env(device="cpu", timeout_s=5, env=env)
+    try:
+        assert (ctx.enabled, ctx.backend, ctx.world_size, dist.is_initialized()) == (True, "gloo", 1, True)
+        listening = set()
+        for table in ("/proc/net/tcp", "/proc/net/tcp6"):
+            if os.path.exists(table):  # Linux: local_address, state 0A = LISTEN (proc(5) man page)
+                for line in Path(table).read_text().splitlines()[1:]:
+                    local, state = line.split()[1], line.split()[3]
+                    if state == "0A" and int(local.split(":")[1], 16) == port:
+                        listening.add(local.split(":")[0])
+        if listening:
+            assert listening == {"0100007F"}, listening  # 127.0.0.1 only, not 0.0.0.0 / [::]
+        assert str(ctx) == "rank 0/1 (local 0) on cpu, gloo"
+    finally:
+        shutdown(ctx)
+    assert not dist.is_initialized()
+
+
+# ----------------------------------------------------------------------------- real process groups
+def reference_weights() -> dict:
+    """One process, plain torch: full-batch mean of the leave-one-out REINFORCE loss (Kool et al. 2019)."""
+    x, actions, rewards = toy_ddp.make_data()
+    model = toy_ddp.make_model()
+    opt = torch.optim.SGD(model.parameters(), lr=toy_ddp.LR)
+    n = actions.shape[1]
+    for _ in range(toy_ddp.STEPS):
+        opt.zero_grad()
+        logp = torch.log_softmax(model(x), -1).gather(-1, actions)  # (B, n)
+        base = (rewards.sum(1, keepdim=True) - rewards) / (n - 1)
+        (-((rewards - base) * logp).mean(1).mean()).backward()  # (1/n) sum_i, then mean over prompts
+        opt.step()
+    return model.state_dict()
+
+
+def max_diff(a: dict, b: dict) -> float:
+    assert a.keys() == b.keys()
+    return max(float((a[k] - b[k]).abs().max()) for k in a)
+
+
+def test_two_ranks_under_a_torchrun_style_agent_store_take_the_one_process_steps(tmp_path):
+    """DDP toy: 2 processes (gloo) vs 1 process with the same global batch, to 1e-6 in float32."""
+    # emulate torchrun's agent: it serves the store and tells workers TORCHELASTIC_USE_AGENT_STORE=True
+    sock = socket.socket()
+    sock.bind(("127.0.0.1", 0))
+    sock.listen(16)
+    port = sock.getsockname()[1]
+    store = dist.TCPStore("127.0.0.1", port, None, True, timedelta(seconds=30), wait_for_workers=False,
+                          master_listen_fd=sock.detach())
+    out = tmp_path / "w2.pt"
+    procs = launch("toy_ddp.py", [0, 1], 2, out, port=port, extra_env={"TORCHELASTIC_USE_AGENT_STORE": "True"})
+    res = finish(procs, limit=60)
+    del store
+    assert [rc for rc, _, _ in res] == [0, 0], res[0][2][-3000:] + res[1][2][-3000:]
+    got = torch.load(out)
+    ref = reference_weights()
+    assert got["world"] == 2
+    assert max_diff(got["right"], ref) < 1e-6
+    assert max_diff(toy_ddp.run(DistContext()), ref) < 1e-6  # the same script as one process
+    assert max_diff(got["wrong"], ref) > 1e-3  # 1/B under DDP halves every SGD step: the check can fail
+    # per-rank seeds: reproducible from (seed, step, rank), different across ranks
+    for r in (0, 1):
+        g = torch.Generator().manual_seed(derive_seed(7, step=3, rank=r))
+        assert got["draws"][r] == float(torch.rand(1, generator=g))
+    assert got["draws"][0] != got["draws"][1]
+
+
+@pytest.mark.parametrize("victim,signal_name,message", [
+    (1, "SIGKILL", r"Connection (closed|reset) by peer"),  # killed: its sockets close, noticed at the next collective
+    (0, "SIGSTOP", "Timed out"),  # hung (and it hosts the store): noticed after timeout_s
+])
+def test_a_dead_or_hung_peer_makes_the_other_rank_fail_clearly(tmp_path, victim, signal_name, message):
+    procs = launch("peer_loop.py", [0, 1], 2, 3, tmp_path)
+    survivor = 1 - victim
+    try:
+        wait_ready(tmp_path, [0, 1], procs)
+        os.kill(procs[victim].pid, getattr(signal, signal_name))
+        try:
+            _, err = procs[survivor].communicate(timeout=30)  # hang guard: timeout_s=3 plus slack
+        except subprocess.TimeoutExpired:
+            pytest.fail(f"rank {survivor} still running 30 s after rank {victim} got {signal_name}")
+        assert procs[survivor].returncode != 0
+        assert "PeerError" in err and f"rank {survivor} of 2" in err, err[-3000:]
+        assert "a peer process probably died or stopped responding (process-group timeout 3 s)" in err
+        assert re.search(message, err), err[-3000:]
+    finally:
+        for p in procs:
+            if p.poll() is None:
+                p.kill()
+            p.communicate()
+
+
+def test_a_rank_whose_peers_never_come_fails_after_the_timeout(tmp_path):
+    (p,) = launch("peer_loop.py", [1], 2, 2, tmp_path)  # rank 0 (the store host) is never started
+    rc, _, err = finish([p], limit=30)[0]
+    assert rc != 0
+    assert "PeerError: rank 1 of 2: could not meet its peers at 127.0.0.1:" in err, err[-3000:]
+    assert "within timeout_s=2 s" in err
