@@ -100,19 +100,22 @@ def _sort_rewards_by_score(scores: np.ndarray, rewards: np.ndarray):
         order = np.argsort(scores, axis=1)
         return np.take_along_axis(rewards, order, 1), np.arange(P), np.take_along_axis(scores, order, 1)
     low = np.int64((1 << b) - 1)
-    key = (scores + 0.0).view(np.int64)  # new array; -0.0 + 0.0 = +0.0 so both zeros tie
-    sign = key >> 63  # -1 where negative, else 0
-    sign &= _FLIP
-    key ^= sign  # negative floats: flip magnitude bits -> int64 order == float order
+    key = np.add(scores, 0.0).view(np.int64)  # new array; -0.0 + 0.0 = +0.0 so both zeros tie
+    buf = np.empty((P, n), dtype=np.int64)  # scratch, reused below; ends up holding the sorted rewards
+    np.right_shift(key, 63, out=buf)  # -1 where negative, else 0
+    buf &= _FLIP
+    key ^= buf  # negative floats: flip magnitude bits -> int64 order == float order
     key &= ~low
     key |= np.arange(n, dtype=np.int64)  # column in the freed low bits
     key.sort(axis=1)
-    near = np.diff(key, axis=1) < (1 << b)  # (P, n-1) same high bits (or an int64 wrap: also flagged)
+    gap = np.subtract(key[:, 1:], key[:, :-1], out=buf[:, : n - 1])  # (P, n-1) successive key gaps
+    near = (gap < (1 << b)).any(axis=1)  # (P,) same high bits somewhere (an int64 wrap is flagged too)
     order = key  # reuse the buffer: (P, n) columns in ascending score order
     order &= low
     order += (np.arange(P, dtype=np.int64) * n)[:, None]  # row offsets into the flattened (P*n,) view
-    r = rewards.ravel().take(order)  # (P, n)
-    rows = np.flatnonzero(near.any(axis=1))
+    r = buf.view(np.float64)  # (P, n) rewards in score order
+    np.take(rewards.ravel(), order, out=r, mode="clip")  # indices are in range; 'clip' avoids a buffered copy
+    rows = np.flatnonzero(near)
     if not len(rows):
         return r, rows, None
     s_rows = scores.ravel().take(order[rows])  # (T, n) scores in key order
@@ -433,6 +436,9 @@ def plot_curves(curves: dict, path, *, title: str | None = None) -> str:
             ax.fill_between(ks, lo, hi, color=color, alpha=0.15)
     if max(len(c.ks) for c in curves.values()) > 1:
         ax.set_xscale("log", base=2)
+        ticks = sorted({int(k) for c in curves.values() for k in c.ks})
+        ax.set_xticks(ticks, [str(k) for k in ticks])
+        ax.minorticks_off()
     first = next(iter(curves.values()))
     ax.set_xlabel("k (samples drawn)")
     ax.set_ylabel("expected reward")

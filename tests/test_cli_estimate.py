@@ -72,6 +72,8 @@ def test_single_temperature_file_with_renamed_fields_and_k(tmp_path, capsys):
         (["estimate", "--example", "--k", "1,two"], r"--k must be comma-separated integers like 1,2,4, got '1,two'"),
         (["estimate", "--example", "--k", "0,2"], r"--k must be >= 1, got 0"),
         (["estimate", "--example", "--confidence", "1.5"], r"confidence must be in \(0, 1\), got confidence=1.5"),
+        (["estimate", "--example", "--boot", "0"], r"--boot must be >= 1, got 0"),
+        (["estimate", "--example", "x.jsonl"], r"give either SAMPLES or --example, got both"),
         (["estimate"], r"SAMPLES must be a samples JSONL file \(or pass --example\)"),
         (["estimate", "nope.jsonl"], r"SAMPLES file not found: nope.jsonl"),
         (["estimate", "--example", "--score-field", "rm"], r"missing field 'rm'.*--score-field NAME"),

@@ -70,6 +70,10 @@ def run(args) -> int:
     if not os.path.isfile(path):
         raise FileNotFoundError(f"SAMPLES file not found: {path}")
     ks = _parse_ks(args.k)
+    if args.boot < 1:
+        raise ValueError(f"--boot must be >= 1, got {args.boot}")
+    if args.seed < 0:
+        raise ValueError(f"--seed must be >= 0, got {args.seed}")
     table = read_samples(
         path,
         prompt_field=args.prompt_field,
