@@ -95,6 +95,14 @@ def _check_budgets(name: str, budgets: Any, *, integer: bool) -> list:
     return [check_positive(name, b) for b in items]
 
 
+def _check_real(name: str, value: Any) -> float:
+    if isinstance(value, bool) or not isinstance(value, numbers.Real):
+        raise TypeError(f"{name} must be a real number, got {type(value).__name__} {value!r}")
+    if not np.isfinite(float(value)):
+        raise ValueError(f"{name} must be finite, got {name}={value}")
+    return float(value)
+
+
 def _pool_sizes(scores: Any) -> np.ndarray:
     if isinstance(scores, np.ndarray) and scores.ndim == 2:
         return np.full(scores.shape[0], scores.shape[1], dtype=np.int64)
@@ -159,7 +167,7 @@ def plan_pools(
     confidence = check_fraction("confidence", confidence, open_low=True, open_high=True)
     n_boot = check_int("n_boot", n_boot, min=10)
     seed = check_int("seed", seed, min=0)
-    min_gain = float(min_gain)
+    min_gain = _check_real("min_gain", min_gain)
     b_samples = _check_budgets("budget_samples", budget_samples, integer=True)
     b_tokens = _check_budgets("budget_tokens", budget_tokens, integer=False)
 
@@ -382,6 +390,6 @@ def plan_exact(
         mean_tokens=mean_tokens,
         b_samples=b_samples,
         b_tokens=b_tokens,
-        min_gain=float(min_gain),
+        min_gain=_check_real("min_gain", min_gain),
         notes=[],
     )

@@ -354,6 +354,14 @@ def test_bad_input_errors():
         plan_exact(logits=LOGITS, scores=SCORES, rewards=REWARDS, temperatures=GRID, budget_tokens=50)
     with pytest.raises(ValueError, match=r"scores must broadcast against \(2, 4\) outcomes, got shape \(3,\)"):
         plan_exact(logits=LOGITS, scores=[1, 2, 3], rewards=REWARDS, temperatures=GRID)
+    with pytest.raises(TypeError, match="min_gain must be a real number, got str 'a'"):
+        plan_pools({0.5: _pools()}, min_gain="a")
+    res = plan_pools({0.5: _pools()}, n_boot=20)
+    assert res.value_at(0.5, 1) == 1.0  # every reward is 1
+    with pytest.raises(ValueError, match=r"k must be <= n \(n=8\), got k=9"):
+        res.value_at(0.5, 9)
+    with pytest.raises(ValueError, match="temperature must be one of"):
+        res.value_at(0.7, 1)
     with pytest.raises(ValueError, match="temperatures must be distinct"):
         plan_exact(logits=LOGITS, scores=SCORES, rewards=REWARDS, temperatures=[1.0, 1.0])
 
