@@ -57,7 +57,7 @@ from ._checks import check_choice, check_int, check_positive
 __all__ = [
     "DistContext", "PeerError", "init_from_env", "shutdown", "session", "shard_bounds", "shard_prompts",
     "check_divisible", "global_mean_scale", "derive_seed", "prompt_seed", "wrap_model", "unwrap_model",
-    "reduce_metrics", "all_reduce_", "gather_objects", "all_gather_objects", "broadcast_object", "barrier",
+    "sample_per_prompt", "reduce_metrics", "all_reduce_", "gather_objects", "all_gather_objects", "broadcast_object", "barrier",
 ]
 
 _PROMPT_STREAM = 0x5EED  # tags prompt_seed entropy apart from derive_seed's
@@ -310,6 +310,47 @@ def prompt_seed(seed: int, *, step: int, slot: int, stream: int = 0) -> int:
     vals = [check_int(nm, v, min=0) for nm, v in (("seed", seed), ("step", step), ("slot", slot), ("stream", stream))]
     return int(np.random.SeedSequence([vals[0], vals[1], _PROMPT_STREAM, vals[2], vals[3]])
                .generate_state(2, np.uint64)[0] >> np.uint64(1))
+
+
+def sample_per_prompt(model: Any, tokenizer: Any, prompts: Sequence[str], *, seeds: Sequence[int], n: int,
+                      temperature: float = 1.0, top_p: float = 1.0, max_new_tokens: int = 32) -> Any:
+    """:func:`bonft.sampling.sample` with one generator per prompt: prompt b's n responses come from ``seeds[b]``.
+
+    prompts: B strings, seeds: B ints (e.g. :func:`prompt_seed` of each prompt's
+    global slot) -> ``Samples`` with ``response_ids (B, n, T)``, prompts left-padded
+    to the longest and responses right-padded to the longest, as ``sample`` lays them out.
+
+    A prompt's samples depend only on (model, prompt, seed), not on which other
+    prompts share the call, so W ranks holding different prompts draw exactly what
+    one process would. The price: prompts are decoded one at a time (n rows per
+    decoding loop instead of B*n).
+    """
+    from .sampling import Samples, _special_ids, sample
+
+    if isinstance(prompts, str):
+        raise TypeError("prompts must be a sequence of str, got a single str (wrap it in a list)")
+    prompts = list(prompts)
+    if not prompts:
+        raise ValueError("prompts must not be empty")
+    seeds = [check_int("seeds", s, min=0) for s in seeds]
+    if len(seeds) != len(prompts):
+        raise ValueError(f"seeds must hold one seed per prompt ({len(prompts)} prompts), got {len(seeds)} seeds")
+    parts = [sample(model, tokenizer, [p], n=n, temperature=temperature, top_p=top_p, max_new_tokens=max_new_tokens,
+                    seed=s) for p, s in zip(prompts, seeds)]
+    B, Tp, T = len(parts), max(p.prompt_ids.shape[1] for p in parts), max(p.response_ids.shape[2] for p in parts)
+    first = parts[0]
+    pad = _special_ids(tokenizer)[0]
+    pids = first.prompt_ids.new_full((B, Tp), pad)
+    pmask = first.prompt_mask.new_zeros((B, Tp))
+    rids = first.response_ids.new_full((B, n, T), pad)
+    rmask = first.response_mask.new_zeros((B, n, T))
+    rlp = first.token_logprobs.new_zeros((B, n, T))
+    for b, p in enumerate(parts):  # (1, Tp_b) prompts go right-aligned (left padding); (1, n, T_b) responses left-aligned
+        tp, t = p.prompt_ids.shape[1], p.response_ids.shape[2]
+        pids[b, Tp - tp:], pmask[b, Tp - tp:] = p.prompt_ids[0], p.prompt_mask[0]
+        rids[b, :, :t], rmask[b, :, :t], rlp[b, :, :t] = p.response_ids[0], p.response_mask[0], p.token_logprobs[0]
+    return Samples(prompt_ids=pids, prompt_mask=pmask, response_ids=rids, response_mask=rmask, token_logprobs=rlp,
+                   texts=[p.texts[0] for p in parts], temperature=first.temperature, top_p=first.top_p)
 
 
 # ----------------------------------------------------------------------------- model and collectives

@@ -310,9 +310,47 @@ def test_a_dead_or_hung_peer_makes_the_other_rank_fail_clearly(tmp_path, victim,
             p.communicate()
 
 
-def test_a_rank_whose_peers_never_come_fails_after_the_timeout(tmp_path):
-    (p,) = launch("peer_loop.py", [1], 2, 2, tmp_path)  # rank 0 (the store host) is never started
-    rc, _, err = finish([p], limit=30)[0]
-    assert rc != 0
-    assert "PeerError: rank 1 of 2: could not meet its peers at 127.0.0.1:" in err, err[-3000:]
-    assert "within timeout_s=2 s" in err
+def test_a_rank_whose_peers_never_come_fails_after_the_timeout():
+    env = {"RANK": "1", "WORLD_SIZE": "2", "MASTER_ADDR": "127.0.0.1", "MASTER_PORT": str(free_port())}
+    with pytest.raises(PeerError, match=r"rank 1 of 2: could not meet its peers at 127.0.0.1:\d+ within timeout_s=2 s"):
+        init_from_env(device="cpu", timeout_s=2, env=env)  # rank 0 (the store host) never starts
+    assert not dist.is_initialized()
+
+
+# ----------------------------------------------------------------------------- sampling by prompt slot
+@pytest.fixture(scope="module")
+def tiny_lm():
+    from bonft.models import build_tiny_model
+    from bonft.tasks import build_tokenizer
+
+    tok = build_tokenizer()
+    model = build_tiny_model("gpt2", vocab_size=len(tok), n_layer=1, d_model=32, n_head=2, max_positions=48, seed=0,
+                             pad_token_id=tok.pad_token_id, eos_token_id=tok.eos_token_id, bos_token_id=tok.bos_token_id)
+    return model, tok
+
+
+def test_a_prompts_samples_do_not_depend_on_the_other_prompts_in_the_call(tiny_lm):
+    from bonft.distributed import sample_per_prompt
+    from bonft.sampling import sequence_logprobs
+
+    model, tok = tiny_lm
+    prompts = ["a+b=", "long prompt 12+30=", "x"]
+    seeds = [prompt_seed(0, step=4, slot=j) for j in range(3)]
+    kw = dict(n=5, temperature=1.3, max_new_tokens=6)
+    full = sample_per_prompt(model, tok, prompts, seeds=seeds, **kw)
+    # rank 1 of a 3-rank run holds slot 1 only; a reversed order must not change any prompt's draw either
+    alone = sample_per_prompt(model, tok, prompts[1:2], seeds=seeds[1:2], **kw)
+    rev = sample_per_prompt(model, tok, prompts[::-1], seeds=seeds[::-1], **kw)
+    assert full.texts[1] == alone.texts[0] and rev.texts == full.texts[::-1]
+    t = alone.response_ids.shape[2]
+    assert torch.equal(full.response_ids[1, :, :t], alone.response_ids[0])
+    assert full.response_ids.shape[:2] == (3, 5) and full.prompt_mask.sum(1).tolist() == [5, 19, 2]  # BOS + chars
+    # the padded batch is a valid Samples: one training forward recomputes the sampler's log-probs
+    lp = sequence_logprobs(model, full.prompt_ids, full.prompt_mask, full.response_ids, full.response_mask,
+                           temperature=1.3)
+    torch.testing.assert_close(lp, full.token_logprobs, rtol=0, atol=1e-5)
+    assert len({tuple(r) for r in full.texts}) == 3  # different slots, different streams
+    with pytest.raises(ValueError, match=r"seeds must hold one seed per prompt \(3 prompts\), got 2 seeds"):
+        sample_per_prompt(model, tok, prompts, seeds=seeds[:2], **kw)
+    with pytest.raises(TypeError, match=r"prompts must be a sequence of str, got a single str"):
+        sample_per_prompt(model, tok, "a+b=", seeds=seeds[:1], **kw)
