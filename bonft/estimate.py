@@ -173,9 +173,17 @@ def _is_ragged_list(x: Any) -> bool:
 def _pools(scores: Any, rewards: Any) -> tuple[list[np.ndarray], list[np.ndarray]] | tuple[np.ndarray, np.ndarray]:
     """Validate per-prompt pools: a 2-D pair of arrays, or two lists of 1-D arrays."""
     if _is_ragged_list(scores) or _is_ragged_list(rewards):
+        pair = []
         for name, x in (("scores", scores), ("rewards", rewards)):
             if not isinstance(x, (list, tuple)):
-                raise TypeError(f"{name} must be a list of 1-D arrays like the other argument, got {type(x).__name__}")
+                if np.ndim(x) != 2:
+                    raise TypeError(
+                        f"{name} must be a list of 1-D arrays or a 2-D array like the other argument, "
+                        f"got {type(x).__name__} with {np.ndim(x)} dimension(s)"
+                    )
+                x = list(x)  # (P, n) -> P rows
+            pair.append(x)
+        scores, rewards = pair
         if len(scores) != len(rewards):
             raise ValueError(f"rewards must hold one pool per prompt like scores ({len(scores)}), got {len(rewards)}")
         if not scores:

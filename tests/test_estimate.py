@@ -261,6 +261,16 @@ def test_ragged_equals_per_prompt(sizes, seed):
     np.testing.assert_allclose(got, np.stack([bon_at_k(s, r, ks) for s, r in zip(ss, rr)]), rtol=1e-12)
 
 
+def test_list_of_pools_mixes_with_a_2d_array():
+    S = np.array([[0.1, 0.4, 0.4], [0.9, 0.2, 0.5]])
+    R = np.array([[1.0, 0.0, 1.0], [0.0, 1.0, 1.0]])
+    want = [[float(brute_bon(list(s), list(r), k)) for k in (1, 2)] for s, r in zip(S, R)]  # brute force
+    np.testing.assert_allclose(bon_at_k_per_prompt(list(S), R, [1, 2]), want, rtol=1e-12)
+    np.testing.assert_allclose(bon_at_k_per_prompt(S, [list(r) for r in R], [1, 2]), want, rtol=1e-12)
+    with pytest.raises(TypeError, match=r"rewards must be a list of 1-D arrays or a 2-D array"):
+        bon_at_k_per_prompt(list(S), R[0], 1)
+
+
 @given(st.lists(st.tuples(st.integers(0, 5), st.integers(-3, 3), st.integers(0, 2)), min_size=1, max_size=8),
        st.sampled_from([1.0, -1.0, 1e300, -1e-300, 0.0]))
 @settings(max_examples=60)
