@@ -49,6 +49,12 @@ class DemoConfig:
     eval_n: int = 64
     eval_ks: list = field(default_factory=lambda: [1, 4, 16, 32])
     objectives: tuple = ("loo_reinforce", "pass_at_k")
+    n_layer: int = 2
+    d_model: int = 128
+    n_head: int = 4
+    max_new_tokens: int = 6
+    n_boot: int = 1000
+    threads: int = 0
 
 
 LABELS = {
@@ -64,11 +70,15 @@ LABELS = {
 
 
 def _base(dc: DemoConfig, **kw) -> TrainConfig:
-    return TrainConfig(
+    values = dict(
         seed=dc.seed, task="ledger", task_params=dict(dc.task_params), n_train=dc.n_train, n_eval=dc.n_eval,
         sft_batch_size=dc.sft_batch_size, sft_lr=dc.sft_lr, prompts_per_step=dc.prompts_per_step, n=dc.n,
-        k=dc.k, lr=dc.lr, eval_n=dc.eval_n, eval_ks=list(dc.eval_ks), save_every=0, log_every=10, **kw,
+        k=dc.k, lr=dc.lr, eval_n=dc.eval_n, eval_ks=list(dc.eval_ks), save_every=0, log_every=10,
+        n_layer=dc.n_layer, d_model=dc.d_model, n_head=dc.n_head, max_new_tokens=dc.max_new_tokens,
+        n_boot=dc.n_boot, threads=dc.threads,
     )
+    values.update(kw)
+    return TrainConfig(**values)
 
 
 def _final_eval(run_dir: Path) -> dict | None:
