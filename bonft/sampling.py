@@ -254,6 +254,13 @@ def sample(
     for i, r in enumerate(rows):
         if not r:
             raise ValueError(f"prompts must encode to at least one token, got an empty encoding at index {i}")
+    limit = getattr(getattr(model, "config", None), "max_position_embeddings", None)
+    longest = max(len(r) for r in rows)
+    if isinstance(limit, int) and longest + max_new_tokens > limit:
+        raise ValueError(
+            f"max_new_tokens must be <= {limit - longest} (the model has {limit} positions and the longest "
+            f"prompt takes {longest} tokens), got max_new_tokens={max_new_tokens}"
+        )
     device = _model_device(model)
     prompt_ids, prompt_mask = _left_pad(rows, pad_id)
     B, Tp = prompt_ids.shape

@@ -316,6 +316,8 @@ def test_bad_input():
         sample(model, TOK, ["a"], n=1, max_new_tokens=0)
     with pytest.raises(ValueError, match=r"batch_size must be >= 1"):
         sample(model, TOK, ["a"], n=1, batch_size=0)
+    with pytest.raises(ValueError, match=r"max_new_tokens must be <= 62 \(the model has 64 positions and the longest prompt takes 2 tokens\), got max_new_tokens=63"):
+        sample(model, TOK, ["a"], n=1, max_new_tokens=63)
     ids = torch.ones(2, 3, dtype=torch.long)
     r = torch.ones(2, 1, 2, dtype=torch.long)
     with pytest.raises(ValueError, match=r"temperature must be a finite number > 0"):
