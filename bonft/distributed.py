@@ -358,9 +358,10 @@ def wrap_model(model: torch.nn.Module, ctx: DistContext, **ddp_kwargs: Any) -> t
     """``DistributedDataParallel(model)`` when more than one rank runs, else ``model`` itself.
 
     DDP copies rank 0's weights to every rank here and averages gradients in
-    ``backward()``. ``broadcast_buffers`` defaults to False so the forward pass
-    runs no collective (ranks may make different numbers of no-grad forward
-    calls, e.g. while sampling); language models keep no running statistics.
+    ``backward()``. Buffers are synced here but not in each forward pass
+    (``forward_sync_buffers=False``, formerly ``broadcast_buffers=False``), so
+    ranks may make different numbers of forward calls; language models keep no
+    running statistics.
     Sample with :func:`unwrap_model`'s module, train through the wrapper.
     """
     if not isinstance(model, torch.nn.Module):
@@ -369,9 +370,14 @@ def wrap_model(model: torch.nn.Module, ctx: DistContext, **ddp_kwargs: Any) -> t
         raise TypeError(f"ctx must be a DistContext, got {type(ctx).__name__}")
     if not ctx.enabled or ctx.world_size == 1:
         return model
+    import inspect
+
     from torch.nn.parallel import DistributedDataParallel as DDP
 
-    ddp_kwargs.setdefault("broadcast_buffers", False)
+    # no buffer broadcast in forward (newer torch spells it forward_sync_buffers; both still sync at wrap time)
+    quiet = "forward_sync_buffers" if "forward_sync_buffers" in inspect.signature(DDP.__init__).parameters else "broadcast_buffers"
+    if "broadcast_buffers" not in ddp_kwargs and "forward_sync_buffers" not in ddp_kwargs:
+        ddp_kwargs[quiet] = False
     if ctx.device.type == "cuda":
         ddp_kwargs.setdefault("device_ids", [ctx.device.index])
     with _guard(ctx, "wrapping the model in DistributedDataParallel"):
