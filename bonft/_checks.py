@@ -13,14 +13,15 @@ from typing import Any, Iterable, Sequence
 
 import numpy as np
 
-try:  # torch is a hard dependency, but keep the math importable without it
-    import torch
-except ImportError:  # pragma: no cover
-    torch = None  # type: ignore[assignment]
 
 
 def is_tensor(x: Any) -> bool:
-    return torch is not None and isinstance(x, torch.Tensor)
+    """True for a torch tensor; never imports torch (a cold import costs seconds)."""
+    if not type(x).__module__.startswith("torch"):
+        return False
+    import torch
+
+    return isinstance(x, torch.Tensor)
 
 
 def check_int(name: str, value: Any, *, min: int | None = None, max: int | None = None) -> int:
@@ -117,6 +118,8 @@ def as_float_array(name: str, x: Any, *, ndim: int | Sequence[int] | None = None
 def check_finite(name: str, x: Any) -> None:
     """Raise ``ValueError`` if ``x`` (numpy or torch) holds NaN or +-inf, saying where."""
     if is_tensor(x):
+        import torch
+
         bad = ~torch.isfinite(x.detach())
         if bool(bad.any()):
             idx = tuple(int(i) for i in torch.nonzero(bad)[0].tolist())

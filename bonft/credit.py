@@ -101,7 +101,7 @@ def _tie_groups(s: torch.Tensor):
     index of its group), all (B, n) int64.
     """
     B, n = s.shape
-    s_sorted, order = torch.sort(s, dim=-1, stable=True)
+    s_sorted, order = torch.sort(s, dim=-1)  # ties need no order: groups are handled whole
     idx = torch.arange(n, device=s.device).expand(B, n)
     new = torch.ones_like(s_sorted, dtype=torch.bool)
     new[:, 1:] = s_sorted[:, 1:] != s_sorted[:, :-1]  # first member of a group
@@ -113,88 +113,76 @@ def _tie_groups(s: torch.Tensor):
     return order, start, end - start + 1, end
 
 
-def _ratio_table(n: int, k: int, log_den: float, device) -> torch.Tensor:
+def _table(n: int, k: int, log_den, device) -> torch.Tensor:
     """T[x + 1] = C(x, k) / exp(log_den) for x = -1..n (0 where C(x, k) = 0).
 
-    Every binomial below has a fixed lower index and an integer upper index in
-    [-1, n], so one O(n) table replaces elementwise lgamma calls.
+    Every binomial in the credit has a fixed lower index and an integer upper
+    index in [-1, n], so one O(n) table replaces elementwise lgamma calls.
     """
     x = torch.arange(-1, n + 1, device=device, dtype=torch.float64)
     return torch.exp(log_comb_torch(x, k) - log_den)
 
 
-def _prefix(x: torch.Tensor) -> torch.Tensor:
-    """(B, n) -> (B, n+1) with P[:, j] = sum of x[:, :j]."""
-    return torch.nn.functional.pad(torch.cumsum(x, -1), (1, 0))
+def _lookup(tab: torch.Tensor, x1: torch.Tensor) -> torch.Tensor:
+    """tab (n+2,) at flat int positions x1 = x + 1, shaped like x1."""
+    return tab.index_select(0, x1.reshape(-1)).view(x1.shape)
 
 
-def _subset_sums(r: torch.Tensor, L, m, end, k: int, n: int) -> torch.Tensor:
-    """Sorted rewards r (B, n) -> (1/C(n,k)) sum_{|S|=k, S contains i} g(S), sorted order.
-
-    g(S) = mean reward of the top-scored members of S. For sample i in tie
-    group G (size m, L samples below) the sum splits into subsets whose top
-    group is G (i plus t-1 tied mates plus k-t from below) and subsets whose
-    top group H lies above G (i is one of the k-t from below H). Summing over
-    t with Vandermonde's identity gives, before dividing by C(n, k),
-      own:   R_i * (C(m+L,k) - C(L,k))/m
-           + (sum_G R - R_i) * (m C(m+L-1,k-1) - C(m+L,k) + C(L,k)) / (m(m-1))
-      above: sum_{H above G} sum_H R * (C(m_H+L_H-1,k-1) - C(L_H-1,k-1)) / m_H.
-    """
-    den = float(log_comb_torch(n, k))
-    Ck = _ratio_table(n, k, den, r.device)  # Ck[x + 1] = C(x, k)/C(n, k)
-    Ck1 = _ratio_table(n, k - 1, den, r.device)  # Ck1[x + 1] = C(x, k-1)/C(n, k)
-    mf = m.to(r.dtype)
-    P = _prefix(r)
-    group_sum = P.gather(-1, end + 1) - P.gather(-1, L)  # sum of R over the own tie group
-    top_L, top_ml = Ck[L + 1], Ck[m + L + 1]  # C(L,k), C(m+L,k)
-    a = (top_ml - top_L) / mf
-    c_num = mf * Ck1[m + L] - top_ml + top_L
-    c = torch.where(m > 1, c_num / (mf * (mf - 1)).clamp_min(1.0), torch.zeros_like(c_num))
-    A = (Ck1[m + L] - Ck1[L]) / mf  # as top group over one fixed lower sample
-    E = _prefix(r * A)
-    above = E[:, -1:] - E.gather(-1, end + 1)  # positions strictly after the own group
-    return r * a + (group_sum - r) * c + above
-
-
-def _loo_values(r: torch.Tensor, L, m, end, k: int, n: int) -> torch.Tensor:
-    """Sorted rewards r (B, n) -> best-of-k U-statistic of the other n-1 samples, sorted order.
-
-    Needs 1 <= k <= n-1. Removing i shrinks its group to m-1 and lowers L by
-    one for every group above; groups below are unchanged.
-    """
-    den = float(log_comb_torch(n - 1, k))
-    Ck = _ratio_table(n, k, den, r.device)  # Ck[x + 1] = C(x, k)/C(n-1, k)
-    mf = m.to(r.dtype)
-    P = _prefix(r)
-    group_sum = P.gather(-1, end + 1) - P.gather(-1, L)
-    below_e = _prefix(r * (Ck[m + L + 1] - Ck[L + 1]) / mf)
-    below = below_e.gather(-1, L)  # positions strictly before the own group
-    own_w = (Ck[m + L] - Ck[L + 1]) / (mf - 1).clamp_min(1.0)
-    own = torch.where(m > 1, (group_sum - r) * own_w, torch.zeros_like(r))
-    above_e = _prefix(r * (Ck[m + L] - Ck[L]) / mf)  # L-1 below once i is gone
-    above = above_e[:, -1:] - above_e.gather(-1, end + 1)
-    return below + own + above
-
-
-def _unsort(x_sorted: torch.Tensor, order: torch.Tensor) -> torch.Tensor:
-    return torch.empty_like(x_sorted).scatter_(-1, order, x_sorted)
+def _sums(x: torch.Tensor, start: torch.Tensor, end: torch.Tensor):
+    """Sums of x (B, n) over sorted positions: strictly before, through the end of, and after each own group."""
+    C = torch.cumsum(x, -1)
+    before = (C - x).gather(-1, start)  # exclusive prefix at the group start
+    thru = C.gather(-1, end)
+    return before, thru, C[:, -1:] - thru
 
 
 def _bon_credit_t(s: torch.Tensor, R: torch.Tensor, k: int, baseline: str) -> tuple[torch.Tensor, torch.Tensor]:
-    """Trusted float64 core: (credit (B, n), pool U-statistic V_k (B,))."""
+    """Trusted float64 core: scores, rewards (B, n) -> (credit (B, n), pool U-statistic V_k (B,)).
+
+    Sorted ascending, sample i sits in a tie group G of size m with L samples
+    below. Its k-subset sum splits into subsets whose top group is G (i plus
+    t-1 tied mates plus k-t from below) and subsets whose top group H lies
+    above G (i is one of the k-t from below H). Summing over t with
+    Vandermonde's identity gives, divided by C(n, k),
+      own:   R_i (C(m+L,k) - C(L,k))/m
+           + (sum_G R - R_i) (m C(m+L-1,k-1) - C(m+L,k) + C(L,k)) / (m(m-1))
+      above: sum_{H above G} sum_H R (C(m_H+L_H-1,k-1) - C(L_H-1,k-1)) / m_H.
+    The leave-one-out U-statistic over C(n-1, kb) follows the same way:
+    removing i shrinks G to m-1 and lowers L by one for every group above.
+    """
     B, n = s.shape
+    loo = baseline == "loo" and n > 1
     order, L, m, end = _tie_groups(s)
     r = R.gather(-1, order)  # rewards in ascending score order
     # loo credit is unchanged by a constant shift of a row's rewards (the k/n
     # terms cancel); shifting by one of the row's own rewards makes all-equal
     # rewards give exactly 0 and keeps large offsets from cancelling badly
-    shift = R[:, :1] if (baseline == "loo" and n > 1) else torch.zeros_like(R[:, :1])
-    W = _subset_sums(r - shift, L, m, end, k, n)
+    shift = R[:, :1] if loo else torch.zeros_like(R[:, :1])
+    r = r - shift
+    mf = m.to(r.dtype)
+    top = L + m  # L + m = end + 1, upper index of the own group
+    # table positions (x + 1) for x = L-1, L, L+m-1, L+m
+    x_lo1, x_lo, x_hi1, x_hi = L, L + 1, top, top + 1
+    den = log_comb_torch(n, k)
+    Ck, Ck1 = _table(n, k, den, s.device), _table(n, k - 1, den, s.device)
+    ck_lo, ck_hi = _lookup(Ck, x_lo), _lookup(Ck, x_hi)  # C(L,k), C(L+m,k) over C(n,k)
+    ck1_hi1 = _lookup(Ck1, x_hi1)  # C(L+m-1,k-1) over C(n,k)
+    a = (ck_hi - ck_lo) / mf  # own reward, top group G
+    c = (mf * ck1_hi1 - ck_hi + ck_lo) / (mf * (mf - 1)).clamp_min(1.0)  # each tied mate; m = 1: 0 by Pascal
+    A = (ck1_hi1 - _lookup(Ck1, x_lo1)) / mf  # as a top group over one fixed lower sample
+    before, thru, _ = _sums(r, L, end)
+    mates = thru - before - r  # sum of R over the tied mates
+    W = r * a + mates * c + _sums(r * A, L, end)[2]
     pool = W.sum(-1) / k + shift[:, 0]  # sum_i sum_{S contains i} g(S) = k * sum_S g(S)
-    if baseline == "loo" and n > 1:
+    if loo:
         kb = min(k, n - 1)  # k = n: the others can only form best-of-(n-1)
-        W = W - (k / n) * _loo_values(r - shift, L, m, end, kb, n)  # k/n = C(n-1,k-1)/C(n,k)
-    return _unsort(W, order), pool
+        Cb = _table(n, kb, log_comb_torch(n - 1, kb), s.device)
+        cb_lo1, cb_lo, cb_hi1, cb_hi = (_lookup(Cb, x) for x in (x_lo1, x_lo, x_hi1, x_hi))
+        below = _sums(r * (cb_hi - cb_lo) / mf, L, end)[0]  # groups below keep their L and m
+        own = mates * (cb_hi1 - cb_lo) / (mf - 1).clamp_min(1.0)  # own group shrinks to m-1; m = 1: 0
+        above = _sums(r * (cb_hi1 - cb_lo1) / mf, L, end)[2]  # groups above see L-1 below
+        W = W - (k / n) * (below + own + above)  # k/n = C(n-1,k-1)/C(n,k)
+    return torch.empty_like(W).scatter_(-1, order, W), pool
 
 
 # ----------------------------------------------------------------------------
