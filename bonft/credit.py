@@ -113,14 +113,20 @@ def _tie_groups(s: torch.Tensor):
     return order, start, end - start + 1, end
 
 
-def _table(n: int, k: int, log_den, device) -> torch.Tensor:
-    """T[x + 1] = C(x, k) / exp(log_den) for x = -1..n (0 where C(x, k) = 0).
+def _tables(n: int, k: int, device) -> tuple[torch.Tensor, torch.Tensor, torch.Tensor]:
+    """Three (n+2,) tables, entry x+1 for x = -1..n: C(x,k)/C(n,k), C(x,k-1)/C(n,k), C(x,kb)/C(n-1,kb).
 
-    Every binomial in the credit has a fixed lower index and an integer upper
-    index in [-1, n], so one O(n) table replaces elementwise lgamma calls.
+    kb = min(k, n-1) is the leave-one-out size (k = n: the others can only
+    form best-of-(n-1)); for n = 1 the last table is unused. Every binomial in
+    the credit has one of these lower indices and an integer upper index in
+    [-1, n], so one O(n) table replaces elementwise lgamma calls.
     """
-    x = torch.arange(-1, n + 1, device=device, dtype=torch.float64)
-    return torch.exp(log_comb_torch(x, k) - log_den)
+    kb = max(min(k, n - 1), 0)
+    x = torch.arange(-1, n + 1, device=device, dtype=torch.float64)[:, None]
+    lower = torch.tensor([k, k - 1, kb], device=device, dtype=torch.float64)
+    dens = log_comb_torch(torch.tensor([n, n, n - 1], device=device), lower[[0, 0, 2]])  # C(n,k), C(n,k), C(n-1,kb)
+    tab = torch.exp(log_comb_torch(x, lower) - dens)  # (n+2, 3)
+    return tab[:, 0].contiguous(), tab[:, 1].contiguous(), tab[:, 2].contiguous()
 
 
 def _lookup(tab: torch.Tensor, x1: torch.Tensor) -> torch.Tensor:
@@ -128,12 +134,15 @@ def _lookup(tab: torch.Tensor, x1: torch.Tensor) -> torch.Tensor:
     return tab.index_select(0, x1.reshape(-1)).view(x1.shape)
 
 
-def _sums(x: torch.Tensor, start: torch.Tensor, end: torch.Tensor):
-    """Sums of x (B, n) over sorted positions: strictly before, through the end of, and after each own group."""
+def _before(x: torch.Tensor, start: torch.Tensor) -> torch.Tensor:
+    """Sum of x (B, n) over sorted positions strictly before each own group."""
+    return (torch.cumsum(x, -1) - x).gather(-1, start)  # exclusive prefix at the group start
+
+
+def _after(x: torch.Tensor, end: torch.Tensor) -> torch.Tensor:
+    """Sum of x (B, n) over sorted positions strictly after each own group."""
     C = torch.cumsum(x, -1)
-    before = (C - x).gather(-1, start)  # exclusive prefix at the group start
-    thru = C.gather(-1, end)
-    return before, thru, C[:, -1:] - thru
+    return C[:, -1:] - C.gather(-1, end)
 
 
 def _bon_credit_t(s: torch.Tensor, R: torch.Tensor, k: int, baseline: str) -> tuple[torch.Tensor, torch.Tensor]:
@@ -163,24 +172,21 @@ def _bon_credit_t(s: torch.Tensor, R: torch.Tensor, k: int, baseline: str) -> tu
     top = L + m  # L + m = end + 1, upper index of the own group
     # table positions (x + 1) for x = L-1, L, L+m-1, L+m
     x_lo1, x_lo, x_hi1, x_hi = L, L + 1, top, top + 1
-    den = log_comb_torch(n, k)
-    Ck, Ck1 = _table(n, k, den, s.device), _table(n, k - 1, den, s.device)
+    Ck, Ck1, Cb = _tables(n, k, s.device)
     ck_lo, ck_hi = _lookup(Ck, x_lo), _lookup(Ck, x_hi)  # C(L,k), C(L+m,k) over C(n,k)
     ck1_hi1 = _lookup(Ck1, x_hi1)  # C(L+m-1,k-1) over C(n,k)
     a = (ck_hi - ck_lo) / mf  # own reward, top group G
     c = (mf * ck1_hi1 - ck_hi + ck_lo) / (mf * (mf - 1)).clamp_min(1.0)  # each tied mate; m = 1: 0 by Pascal
     A = (ck1_hi1 - _lookup(Ck1, x_lo1)) / mf  # as a top group over one fixed lower sample
-    before, thru, _ = _sums(r, L, end)
-    mates = thru - before - r  # sum of R over the tied mates
-    W = r * a + mates * c + _sums(r * A, L, end)[2]
+    C = torch.cumsum(r, -1)
+    mates = C.gather(-1, end) - (C - r).gather(-1, L) - r  # sum of R over the tied mates
+    W = r * a + mates * c + _after(r * A, end)
     pool = W.sum(-1) / k + shift[:, 0]  # sum_i sum_{S contains i} g(S) = k * sum_S g(S)
     if loo:
-        kb = min(k, n - 1)  # k = n: the others can only form best-of-(n-1)
-        Cb = _table(n, kb, log_comb_torch(n - 1, kb), s.device)
         cb_lo1, cb_lo, cb_hi1, cb_hi = (_lookup(Cb, x) for x in (x_lo1, x_lo, x_hi1, x_hi))
-        below = _sums(r * (cb_hi - cb_lo) / mf, L, end)[0]  # groups below keep their L and m
+        below = _before(r * (cb_hi - cb_lo) / mf, L)  # groups below keep their L and m
         own = mates * (cb_hi1 - cb_lo) / (mf - 1).clamp_min(1.0)  # own group shrinks to m-1; m = 1: 0
-        above = _sums(r * (cb_hi1 - cb_lo1) / mf, L, end)[2]  # groups above see L-1 below
+        above = _after(r * (cb_hi1 - cb_lo1) / mf, end)  # groups above see L-1 below
         W = W - (k / n) * (below + own + above)  # k/n = C(n-1,k-1)/C(n,k)
     return torch.empty_like(W).scatter_(-1, order, W), pool
 
