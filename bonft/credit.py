@@ -26,67 +26,13 @@ Karkhanis 2025 (U-statistic pass@k gradients).
 """
 from __future__ import annotations
 
-from typing import Any
-
-import numpy as np
 import torch
 
 from bonft._binom import log_comb_torch
-from bonft._checks import check_choice, check_finite, check_k, check_nonempty, is_tensor
+from bonft._checks import check_choice, check_k
+from bonft._credit_inputs import _as_tensor, _check_binary, _check_bool, _check_smoothing, _finish, _out_kind
 
 __all__ = ["bon_credit", "pass_credit", "sft_credit", "reinforce_credit", "pool_value"]
-
-
-# ----------------------------------------------------------------------------
-# validation helpers (public boundary only)
-# ----------------------------------------------------------------------------
-
-def _as_tensor(name: str, x: Any, *, ndim: int) -> torch.Tensor:
-    """Any array-like -> float64 torch tensor with ``ndim`` dimensions, finite."""
-    if is_tensor(x):
-        t = x.detach()
-        if t.dtype == torch.bool:
-            t = t.to(torch.float64)
-        elif not (t.dtype.is_floating_point or t.dtype in (torch.int8, torch.int16, torch.int32, torch.int64, torch.uint8)):
-            raise TypeError(f"{name} must hold real numbers, got dtype {t.dtype}")
-        t = t.to(torch.float64)
-    else:
-        if isinstance(x, (str, bytes)) or x is None:
-            raise TypeError(f"{name} must be an array of numbers, got {type(x).__name__}")
-        try:
-            arr = np.asarray(x, dtype=np.float64)
-        except (TypeError, ValueError):
-            raise TypeError(f"{name} must be an array of numbers, got {type(x).__name__}") from None
-        t = torch.from_numpy(arr)
-    if t.ndim != ndim:
-        want = "(B, n)" if ndim == 2 else "(B,)"
-        raise ValueError(f"{name} must have shape {want} ({ndim} dimension(s)), got shape {tuple(t.shape)}")
-    check_nonempty(name, t)
-    check_finite(name, t)
-    return t
-
-
-def _out_kind(*xs: Any) -> tuple[bool, torch.dtype, torch.device]:
-    """Output as torch if any input is a tensor (its device, its floating dtype)."""
-    for x in xs:
-        if is_tensor(x):
-            dtype = x.dtype if x.dtype.is_floating_point else torch.float64
-            return True, dtype, x.device
-    return False, torch.float64, torch.device("cpu")
-
-
-def _finish(w: torch.Tensor, kind: tuple[bool, torch.dtype, torch.device]):
-    as_torch, dtype, device = kind
-    if as_torch:
-        return w.to(device=device, dtype=dtype)
-    return w.cpu().numpy()
-
-
-def _check_binary(name: str, t: torch.Tensor) -> None:
-    bad = (t != 0) & (t != 1)
-    if bool(bad.any()):
-        idx = tuple(int(i) for i in torch.nonzero(bad)[0].tolist())
-        raise ValueError(f"{name} must hold only 0/1 (or booleans), got {float(t[idx])} at index {idx}")
 
 
 # ----------------------------------------------------------------------------
@@ -321,8 +267,7 @@ def pass_credit(correct, k, *, estimator="unbiased", positive_only=False):
     _check_binary("correct", c)
     k = check_k(k, c.shape[1])
     check_choice("estimator", estimator, ("unbiased", "plugin"))
-    if not isinstance(positive_only, bool):
-        raise TypeError(f"positive_only must be a bool, got {type(positive_only).__name__} {positive_only!r}")
+    _check_bool("positive_only", positive_only)
     return _finish(_pass_credit_t(c, k, estimator, positive_only), kind)
 
 
@@ -352,6 +297,16 @@ def _sft_credit_t(s: torch.Tensor, s_star: torch.Tensor, k: int, smoothing: floa
     h_F_ = (q[1:] * torch.pow(r, q[1:] - 1)).sum(-1) / (z * F)  # dh/dF_
     # grad F = E[(u - F) grad log pi]; leave-one-out mean as the baseline
     return (h_F[:, None] * (u - _loo_mean(u)) + h_F_[:, None] * (v - _loo_mean(v))) / n
+
+
+def _check_expert_reachable(s: torch.Tensor, e: torch.Tensor, k: int, smoothing: float) -> None:
+    """smoothing=0 leaves h undefined for a row where every sample beats the expert."""
+    if smoothing == 0 and k > 1:
+        none_below = ~(s <= e[:, None]).any(-1)
+        if bool(none_below.any()):
+            b = int(torch.nonzero(none_below)[0])
+            raise ValueError(
+                f"smoothing=0 needs a sample scoring at or below the expert, got none in row {b}; use smoothing > 0")
 
 
 def sft_credit(scores, expert_scores, k, *, smoothing=1.0):
@@ -397,18 +352,9 @@ def sft_credit(scores, expert_scores, k, *, smoothing=1.0):
     if e.shape[0] != s.shape[0]:
         raise ValueError(f"expert_scores must have shape (B,) = ({s.shape[0]},) to match scores, got {tuple(e.shape)}")
     k = check_k(k, s.shape[1])
-    if isinstance(smoothing, bool) or not isinstance(smoothing, (int, float, np.floating, np.integer)):
-        raise TypeError(f"smoothing must be a real number >= 0, got {type(smoothing).__name__} {smoothing!r}")
-    smoothing = float(smoothing)
-    if not np.isfinite(smoothing) or smoothing < 0:
-        raise ValueError(f"smoothing must be a finite number >= 0, got smoothing={smoothing}")
+    smoothing = _check_smoothing(smoothing)
     e = e.to(s.device)
-    if smoothing == 0 and k > 1:
-        none_below = ~(s <= e[:, None]).any(-1)
-        if bool(none_below.any()):
-            b = int(torch.nonzero(none_below)[0])
-            raise ValueError(
-                f"smoothing=0 needs a sample scoring at or below the expert, got none in row {b}; use smoothing > 0")
+    _check_expert_reachable(s, e, k, smoothing)
     return _finish(_sft_credit_t(s, e, k, smoothing), kind)
 
 

@@ -49,14 +49,8 @@ from torch import Tensor
 
 from bonft._binom import log_comb_torch
 from bonft._checks import check_choice, check_k, is_tensor
-from bonft.credit import (
-    _as_tensor,
-    _bon_credit_t,
-    _check_binary,
-    _pass_credit_t,
-    _reinforce_credit_t,
-    _sft_credit_t,
-)
+from bonft._credit_inputs import _as_tensor, _check_binary, _check_bool, _check_smoothing
+from bonft.credit import _bon_credit_t, _check_expert_reachable, _pass_credit_t, _reinforce_credit_t, _sft_credit_t
 
 __all__ = ["bon_rl_loss", "pass_at_k_loss", "bon_sft_loss", "reinforce_loss", "nll_loss"]
 
@@ -259,8 +253,7 @@ def pass_at_k_loss(logprobs, correct, *, k, estimator="unbiased", positive_only=
     _check_binary("correct", c)
     k = check_k(k, n)
     check_choice("estimator", estimator, ("unbiased", "plugin"))
-    if not isinstance(positive_only, bool):
-        raise TypeError(f"positive_only must be a bool, got {type(positive_only).__name__} {positive_only!r}")
+    _check_bool("positive_only", positive_only)
     credit = _pass_credit_t(c, k, estimator, positive_only)
     tot = c.sum(-1)
     pool = 1 - torch.exp(log_comb_torch(n - tot, k) - log_comb_torch(n, k))  # Chen et al. 2021 estimator
@@ -326,15 +319,8 @@ def bon_sft_loss(expert_logprobs, sample_logprobs, sample_scores, expert_scores,
     if e.shape[0] != B:
         raise ValueError(f"expert_scores must have shape (B,) = ({B},), got {tuple(e.shape)}")
     k = check_k(k, n)
-    if isinstance(smoothing, bool) or not isinstance(smoothing, (int, float)):
-        raise TypeError(f"smoothing must be a real number >= 0, got {type(smoothing).__name__} {smoothing!r}")
-    smoothing = float(smoothing)
-    if not (smoothing >= 0 and smoothing < float("inf")):
-        raise ValueError(f"smoothing must be a finite number >= 0, got smoothing={smoothing}")
-    if smoothing == 0 and k > 1 and bool((~(s <= e[:, None]).any(-1)).any()):
-        b = int(torch.nonzero(~(s <= e[:, None]).any(-1))[0])
-        raise ValueError(f"smoothing=0 needs a sample scoring at or below the expert, got none in row {b}; "
-                         f"use smoothing > 0")
+    smoothing = _check_smoothing(smoothing)
+    _check_expert_reachable(s, e, k, smoothing)
     credit = _sft_credit_t(s, e, k, smoothing)
     info = {"expert_logprob": float(e_seq.detach().mean()),
             "beaten_frac": float((s > e[:, None]).to(torch.float64).mean())}
