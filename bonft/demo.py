@@ -152,12 +152,17 @@ def comparison_table(results: dict[str, dict]) -> str:
     """Markdown: one row per policy; pass@k and proxy best-of-k per k with 95% CIs, diversity."""
     any_ev = next(iter(results.values()))
     ks = any_ev["ks"]
-    head = ["policy"] + [f"pass@{k}" for k in ks] + [f"proxy best-of-{k}" for k in ks] + ["distinct answers", "entropy (nats)", "length"]
+    groups = sorted(any_ev.get("by_group", {}))
+    head = (["policy"] + [f"pass@{k}" for k in ks] + [f"proxy best-of-{k}" for k in ks]
+            + [f"pass@1 / pass@{ks[-1]} {g}" for g in groups] + ["distinct answers", "entropy (nats)", "length"])
     lines = ["| " + " | ".join(head) + " |", "|" + "---|" * len(head)]
     for name, ev in results.items():
         cells = [LABELS.get(name, name)] + [_cell(ev["pass_at_k"], j) for j in range(len(ks))]
         proxy = ev["best_of_k"].get("proxy")
         cells += [_cell(proxy, j) if proxy else "-" for j in range(len(ks))]
+        for g in groups:
+            d = ev.get("by_group", {}).get(g)
+            cells.append(f"{d['pass_at_k'][0]:.3f} / {d['pass_at_k'][-1]:.3f}" if d else "-")
         cells += [f"{ev['distinct_answers']:.2f}", f"{ev['entropy']:.2f}", f"{ev['mean_length']:.2f}"]
         lines.append("| " + " | ".join(cells) + " |")
     return "\n".join(lines)

@@ -39,6 +39,7 @@ class EvalReport:
     distinct_answers: float = 0.0  # distinct extracted answers per prompt (None answers count as one)
     entropy: float = 0.0  # nats per response, mean -log pi_T(y|x)
     verifier_failures: int = 0
+    by_group: dict = field(default_factory=dict)  # prompt group (e.g. task family) -> {"n_prompts", "pass_at_k" means}
 
     def to_dict(self) -> dict:
         return {k: getattr(self, k) for k in self.__dataclass_fields__}
@@ -55,6 +56,8 @@ class EvalReport:
         rows.append(row("pass@k", self.pass_at_k))
         for name, c in self.best_of_k.items():
             rows.append(row(f"best-of-k {name}", c))
+        for g, d in self.by_group.items():
+            rows.append(f"{'pass@k ' + g:18}" + "".join(f"{m:>20.3f}" for m in d["pass_at_k"]) + f"   ({d['n_prompts']} prompts)")
         rows.append(
             f"distinct answers/prompt {self.distinct_answers:.2f}   entropy {self.entropy:.2f} nats/response   "
             f"length {self.mean_length:.2f} tokens   ({self.n_prompts} prompts x {self.n_samples} samples, T={self.temperature:g})"
@@ -87,6 +90,7 @@ def evaluate_policy(
     confidence: float = 0.95,
     n_boot: int = 1000,
     rows_per_chunk: int = 4096,
+    groups: Sequence[str] | None = None,
 ) -> tuple[EvalReport, dict]:
     """Sample ``n`` responses per prompt and summarise them.
 
@@ -96,7 +100,8 @@ def evaluate_policy(
 
     Returns ``(report, raw)``; ``raw`` holds ``texts`` (P lists of n), the
     ``scores``/``rewards`` (P, n) arrays per verifier and ``n_tokens`` (P, n),
-    which :mod:`bonft.commands.sample` writes out. Internal callers pass
+    which :mod:`bonft.commands.sample` writes out. ``groups`` (P labels, e.g. the
+    task family of each prompt) adds pass@k means per group. Internal callers pass
     validated arguments (the trainer's config, the eval command's options).
     """
     from .estimate import summarize
@@ -136,10 +141,18 @@ def evaluate_policy(
         distinct = np.mean([len({extract_answer(t) for t in row}) for row in smp.texts])
     else:
         distinct = np.mean([len(set(row)) for row in smp.texts])
+    by_group = {}
+    if groups is not None:
+        per = np.asarray(pass_sum.per_prompt_oracle)  # (P, K)
+        labels = np.asarray([str(g) for g in groups])
+        for g in sorted(set(labels.tolist())):
+            sel = labels == g
+            by_group[g] = {"n_prompts": int(sel.sum()), "pass_at_k": [float(v) for v in per[sel].mean(0)]}
     report = EvalReport(
         step=int(step), ks=ks, n_prompts=P, n_samples=n, temperature=float(temperature),
         pass_at_k=_curve(pass_sum, "oracle"), best_of_k=best,
         mean_reward=float(rewards.mean()), mean_length=float(n_tokens.mean()),
         distinct_answers=float(distinct), entropy=float(-seq_logp.mean()), verifier_failures=int(failures),
+        by_group=by_group,
     )
     return report, raw

@@ -27,6 +27,7 @@ in a sandbox (see :mod:`bonft.verifiers`) and, better, in a disposable VM.
 """
 from __future__ import annotations
 
+import contextlib
 import json
 import math
 import time
@@ -41,6 +42,20 @@ from .config import TrainConfig, to_toml
 
 
 # ----------------------------------------------------------------------------- helpers
+@contextlib.contextmanager
+def quiet_transformers():
+    """No transformers progress bars ("Loading weights") inside the trainer's own bar."""
+    from transformers.utils import logging as hf_logging
+
+    was = hf_logging.is_progress_bar_enabled()
+    hf_logging.disable_progress_bar()
+    try:
+        yield
+    finally:
+        if was:
+            hf_logging.enable_progress_bar()
+
+
 def dist_info() -> tuple[int, int]:
     """(rank, world size); (0, 1) without an initialised process group."""
     if torch.distributed.is_available() and torch.distributed.is_initialized():
@@ -252,7 +267,8 @@ def build_run(cfg: TrainConfig) -> Run:
     else:
         verifiers["train"] = verifiers[cfg.verifier] = load_verifier(cfg.verifier)
     if cfg.init_from:
-        model, tokenizer = load_model(cfg.init_from, device=device)
+        with quiet_transformers():
+            model, tokenizer = load_model(cfg.init_from, device=device)
     else:
         tokenizer = build_tokenizer()
         model = build_tiny_model(
@@ -276,6 +292,7 @@ def evaluate_run(run: Run, step: int):
         extract_answer=getattr(run.task, "extract_answer", None), n=cfg.eval_n, ks=cfg.eval_ks,
         temperature=cfg.eval_temperature, max_new_tokens=cfg.max_new_tokens,
         seed=step_seed(cfg.seed, 0, 0, stream=2), step=step, confidence=cfg.confidence, n_boot=cfg.n_boot,
+        groups=[(e.meta or {}).get("family", "all") for e in held],
     )
     return report
 
@@ -304,7 +321,8 @@ def train(cfg: TrainConfig, *, resume: bool = False, progress: bool = True) -> d
     if ckpt is not None:
         state = load_state(ckpt)
         start = state["step"]
-        run.model, run.tokenizer = load_model(ckpt, device=run.device)
+        with quiet_transformers():
+            run.model, run.tokenizer = load_model(ckpt, device=run.device)
     elif run.is_main and (out / "checkpoints").exists() and not resume:
         raise ValueError(f"out_dir {str(out)!r} already holds checkpoints; pass --resume or choose another --out")
     if run.is_main:
@@ -332,7 +350,8 @@ def train(cfg: TrainConfig, *, resume: bool = False, progress: bool = True) -> d
             if not (ref_dir / "model").is_dir():
                 if run.is_main:
                     save_model(run.model, run.tokenizer, ref_dir)
-            run.ref_model, _ = load_model(ref_dir, device=run.device)
+            with quiet_transformers():
+                run.ref_model, _ = load_model(ref_dir, device=run.device)
             run.ref_model.requires_grad_(False)
 
     same_stage = state is not None and state["extra"].get("stage") == stage_of(start) and start < total
