@@ -42,6 +42,7 @@ sandbox.
 """
 from __future__ import annotations
 
+import numbers
 from typing import Any
 
 import torch
@@ -109,7 +110,7 @@ def _check_finite_masked(name: str, x: Tensor, m: Tensor | None) -> None:
 def _check_options(token_reduction: Any, reduction: Any, kl_coef: Any) -> float:
     check_choice("token_reduction", token_reduction, _TOKEN_REDUCTIONS)
     check_choice("reduction", reduction, _REDUCTIONS)
-    if isinstance(kl_coef, bool) or not isinstance(kl_coef, (int, float)):
+    if isinstance(kl_coef, bool) or not isinstance(kl_coef, numbers.Real):
         raise TypeError(f"kl_coef must be a real number >= 0, got {type(kl_coef).__name__} {kl_coef!r}")
     kl_coef = float(kl_coef)
     if not (kl_coef >= 0 and kl_coef < float("inf")):

@@ -13,7 +13,7 @@ import torch
 from hypothesis import given, settings, strategies as st
 
 from bonft.bon import bon_value, log_bon_distribution, softmax_policy
-from bonft.credit import bon_credit, pass_credit, sft_credit
+from bonft.credit import bon_credit, sft_credit
 from bonft.estimate import bon_at_k_per_prompt
 from bonft.losses import bon_rl_loss, bon_sft_loss, nll_loss, pass_at_k_loss, reinforce_loss
 
