@@ -18,7 +18,7 @@ from bonft.train import _make_optimizer, build_run, rl_step
 
 def main() -> None:
     ap = argparse.ArgumentParser()
-    ap.add_argument("--threads", type=int, default=2)
+    ap.add_argument("--threads", type=int, default=1)
     ap.add_argument("--steps", type=int, default=5)
     args = ap.parse_args()
     torch.set_num_threads(args.threads)

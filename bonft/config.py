@@ -61,7 +61,7 @@ class TrainConfig:
     seed: int = _f(0, "Seed of the run. The RNG of every step is derived from (seed, step, rank), so a resumed run draws what an uninterrupted one would.", group="run")
     out_dir: str = _f("runs/run", "Directory for metrics.jsonl, checkpoints/, plots and summary.json.", group="run")
     device: str = _f("cpu", "'cpu', 'cuda' or 'auto'.", group="run")
-    threads: int = _f(0, "torch intra-op threads; 0 = min(2, cores).", group="run")
+    threads: int = _f(1, "torch intra-op threads (>= 1). Tiny models run fastest single-threaded; use the other cores for parallel runs.", group="run")
     # --- model ---
     init_from: str = _f("", "Start from this model: a bonft checkpoint directory or a local transformers directory. Empty = build a tiny model from the fields below.", group="model")
     arch: str = _f("gpt2", "Tiny model family when building from scratch: 'gpt2' or 'llama'.", group="model")
@@ -171,7 +171,7 @@ def validate(c: TrainConfig) -> None:
         raise ValueError(f"k_schedule={c.k_schedule!r} needs k_final >= 1, got k_final={c.k_final}")
     if c.objective == "loo_reinforce" and c.n < 2:
         raise ValueError(f"n must be >= 2 for a leave-one-out baseline, got n={c.n}")
-    for name in ("prompts_per_step", "grad_accum", "max_new_tokens", "n_train", "n_eval", "eval_n",
+    for name in ("threads", "prompts_per_step", "grad_accum", "max_new_tokens", "n_train", "n_eval", "eval_n",
                  "sft_batch_size", "keep_checkpoints", "n_layer", "d_model", "n_head", "max_positions", "n_boot"):
         check_int(name, getattr(c, name), min=1)
     if c.prompts_per_step % c.grad_accum:

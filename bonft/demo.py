@@ -54,7 +54,8 @@ class DemoConfig:
     n_head: int = 4
     max_new_tokens: int = 6
     n_boot: int = 1000
-    threads: int = 0
+    threads: int = 1
+    workers: int = 2  # RL stages run in parallel processes, one core each
 
 
 LABELS = {
@@ -102,6 +103,62 @@ def _stage(cfg: TrainConfig, progress: bool) -> dict:
     return _final_eval(Path(cfg.out_dir))
 
 
+def _stage_in_child(cfg: TrainConfig) -> None:
+    import torch
+
+    torch.set_num_threads(cfg.threads)
+    _stage(cfg, progress=False)
+
+
+def _parallel_stages(cfgs: list[TrainConfig], workers: int, progress: bool) -> dict:
+    """Run stages in ``workers`` processes (one core each); a parent bar follows their metrics files.
+
+    Ctrl-C reaches the children too (same process group): each writes a checkpoint; rerunning the
+    demo resumes them.
+    """
+    import multiprocessing as mp
+
+    from tqdm.auto import tqdm
+
+    ctx = mp.get_context("spawn")
+    pending, running = list(cfgs), []
+    total = sum(c.rl_steps for c in cfgs)
+    bar = tqdm(total=total, desc="RL stages (parallel)", disable=not progress, dynamic_ncols=True)
+
+    def done_steps(c: TrainConfig) -> int:
+        path = Path(c.out_dir) / "metrics.jsonl"
+        if (Path(c.out_dir) / "summary.json").is_file():
+            return c.rl_steps
+        if not path.is_file():
+            return 0
+        steps = [json.loads(ln).get("step", 0) for ln in path.read_text().splitlines() if '"train"' in ln]
+        return max(steps, default=0)
+
+    try:
+        while pending or running:
+            while pending and len(running) < workers:
+                c = pending.pop(0)
+                p = ctx.Process(target=_stage_in_child, args=(c,), name=c.name)
+                p.start()
+                running.append((c, p))
+            time.sleep(1.0)
+            for c, p in list(running):
+                if not p.is_alive():
+                    p.join()
+                    if p.exitcode != 0:
+                        raise RuntimeError(f"stage {c.name} failed (exit code {p.exitcode}); see {c.out_dir}")
+                    running.remove((c, p))
+            bar.n = sum(done_steps(c) for c in cfgs)
+            bar.refresh()
+    except BaseException:
+        for _, p in running:
+            p.join(timeout=60)
+        raise
+    finally:
+        bar.close()
+    return {c.name: _final_eval(Path(c.out_dir)) for c in cfgs}
+
+
 def objective_config(dc: DemoConfig, objective: str, warm: str, out: Path) -> TrainConfig:
     extra = {}
     if objective == "pass_at_k_anneal":  # k annealing: from large k toward 1
@@ -125,10 +182,14 @@ def run_demo(dc: DemoConfig | None = None, *, progress: bool = True) -> dict:
     results = {"warm_start": _stage(warm_cfg, progress)}
     timings = {"warm_start": time.perf_counter() - t0}
     warm = str(latest_checkpoint(out / "warm_start"))
-    for obj in dc.objectives:
-        t1 = time.perf_counter()
-        results[obj] = _stage(objective_config(dc, obj, warm, out), progress)
-        timings[obj] = time.perf_counter() - t1
+    cfgs = [objective_config(dc, obj, warm, out) for obj in dc.objectives]
+    t1 = time.perf_counter()
+    if dc.workers > 1 and len(cfgs) > 1:
+        results.update(_parallel_stages(cfgs, dc.workers, progress))
+    else:
+        for c in cfgs:
+            results[c.name] = _stage(c, progress)
+    timings["rl_stages"] = time.perf_counter() - t1
     table = comparison_table(results)
     summary = {
         "config": {k: (list(v) if isinstance(v, tuple) else v) for k, v in dc.__dict__.items()},

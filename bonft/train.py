@@ -310,7 +310,7 @@ def train(cfg: TrainConfig, *, resume: bool = False, progress: bool = True) -> d
 
     if not isinstance(cfg, TrainConfig):
         raise TypeError(f"cfg must be a TrainConfig, got {type(cfg).__name__}")
-    torch.set_num_threads(cfg.threads or max(1, min(2, torch.get_num_threads())))
+    torch.set_num_threads(cfg.threads)
     run = build_run(cfg)
     out, total = run.out, cfg.total_steps
     metrics_path = out / "metrics.jsonl"

@@ -67,7 +67,7 @@ def run(args: argparse.Namespace) -> int:
     if max(ks) > n:
         raise ValueError(f"--ks must be <= --n (n={n}), got --ks={args.ks}")
     temperature = check_positive("--temperature", args.temperature)
-    torch.set_num_threads(max(1, min(2, torch.get_num_threads())))
+    torch.set_num_threads(1)  # tiny models: one thread is fastest
     ckpt, cfg, r = load_for_eval(args, n=n, ks=ks, temperature=temperature)
     rep = evaluate_run(r, step=-1) if args.seed == 0 else _eval_seeded(r, args.seed)
     print(f"{ckpt}\n{rep.table()}")

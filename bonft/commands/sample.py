@@ -31,7 +31,7 @@ def run(args: argparse.Namespace) -> int:
 
     n = check_int("--n", args.n, min=1)
     temps = [check_positive("--temperature", t) for t in parse_list("--temperature", args.temperature, float)]
-    torch.set_num_threads(max(1, min(2, torch.get_num_threads())))
+    torch.set_num_threads(1)  # tiny models: one thread is fastest
     ckpt, cfg, r = load_for_eval(args, n=n, ks=[1], temperature=temps[0])
     names = [k for k in r.verifiers if k != "train"]
     which = args.verifier if args.verifier != "auto" else ("proxy" if "proxy" in names else "exact")
