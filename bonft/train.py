@@ -95,26 +95,13 @@ def lr_at(cfg: TrainConfig, step: int) -> float:
 
 
 def encode_pairs(tokenizer: Any, prompts: list[str], responses: list[str], device: torch.device):
-    """Prompts left-padded as the sampler encodes them; responses right-padded with EOS appended.
+    """Prompts as the sampler encodes them, one reference response each (EOS appended).
 
     Returns prompt_ids (B, Tp), prompt_mask (B, Tp), response_ids (B, 1, T), response_mask (B, 1, T).
     """
-    rows = [list(tokenizer(p)["input_ids"]) for p in prompts]  # BOS + characters, as sample() encodes
-    Tp = max(len(r) for r in rows)
-    pids = torch.full((len(rows), Tp), tokenizer.pad_token_id, dtype=torch.long)
-    pmask = torch.zeros((len(rows), Tp), dtype=torch.long)
-    for b, r in enumerate(rows):  # left padding: the prompt ends where the response starts
-        pids[b, Tp - len(r):] = torch.tensor(r)
-        pmask[b, Tp - len(r):] = 1
-    resp = [tokenizer(r, add_special_tokens=False)["input_ids"] + [tokenizer.eos_token_id] for r in responses]
-    B, T = len(resp), max(len(r) for r in resp)
-    ids = torch.full((B, T), tokenizer.pad_token_id, dtype=torch.long)
-    mask = torch.zeros((B, T), dtype=torch.long)
-    for b, r in enumerate(resp):
-        ids[b, : len(r)] = torch.tensor(r)
-        mask[b, : len(r)] = 1
-    # (B, T) -> (B, 1, T): one "sample" per prompt, the shape sequence_logprobs takes
-    return pids.to(device), pmask.to(device), ids[:, None].to(device), mask[:, None].to(device)
+    from .sampling import encode_responses
+
+    return tuple(x.to(device) for x in encode_responses(tokenizer, prompts, responses))
 
 
 @dataclass
@@ -221,12 +208,13 @@ def rl_step(run: Run, step: int) -> dict:
             elp = sequence_logprobs(run.model, pids, pmask, rids, rmask)
             sft_terms = [elp[:, 0], rmask[:, 0], ev.scores]  # (b, 1, T) -> (b, T): the expert response
         t2 = time.perf_counter()
-        logp = sequence_logprobs(run.model, smp.prompt_ids, smp.prompt_mask, smp.response_ids, smp.response_mask, temperature=T)
+        # log-probs of the policy that drew the samples: same temperature and top-p
+        rows = (smp.prompt_ids, smp.prompt_mask, smp.response_ids, smp.response_mask)
+        logp = sequence_logprobs(run.model, *rows, temperature=T, top_p=cfg.top_p)
         ref_logp = None
         if run.ref_model is not None:
             with torch.no_grad():
-                ref_logp = sequence_logprobs(run.ref_model, smp.prompt_ids, smp.prompt_mask, smp.response_ids,
-                                             smp.response_mask, temperature=T)
+                ref_logp = sequence_logprobs(run.ref_model, *rows, temperature=T, top_p=cfg.top_p)
         t3 = time.perf_counter()
         loss, info = _objective(cfg, k, logp, smp.response_mask, scores, rewards, ref_logp, sft_terms)
         t4 = time.perf_counter()
