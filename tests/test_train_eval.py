@@ -1,0 +1,59 @@
+"""Held-out evaluation: its numbers against direct computations from the raw samples."""
+import numpy as np
+import pytest
+import torch
+from scipy.special import comb
+
+from bonft.evaluation import evaluate_policy
+from bonft.models import build_tiny_model
+from bonft.sampling import sequence_logprobs
+from bonft.tasks import build_tokenizer, get_task
+
+
+@pytest.fixture(scope="module")
+def setup():
+    torch.set_num_threads(1)
+    tok = build_tokenizer()
+    model = build_tiny_model("gpt2", vocab_size=len(tok), n_layer=1, d_model=32, n_head=2, max_positions=48, seed=1,
+                             pad_token_id=tok.pad_token_id, eos_token_id=tok.eos_token_id, bos_token_id=tok.bos_token_id)
+    task = get_task("ledger")
+    _, held = task.split(n_train=8, n_eval=6, seed=0)
+    return tok, model, task, held
+
+
+def test_eval_numbers_match_direct_computation(setup):
+    tok, model, task, held = setup
+    prompts = [e.prompt for e in held]
+    # a verifier that marks a response correct when it starts with a digit: gives non-trivial pass counts
+    digit = lambda ps, rs: np.array([float(r[:1].isdigit()) for r in rs])
+    rep, raw = evaluate_policy(model, tok, prompts, verifiers={"exact": digit, "proxy": task.proxy_verifier(held)},
+                               extract_answer=task.extract_answer, n=8, ks=[1, 2, 8], max_new_tokens=4, seed=3,
+                               n_boot=200, groups=[e.meta["family"] for e in held])
+    R = raw["rewards"]
+    assert R.shape == (6, 8)
+    c = R.sum(1)
+    for j, k in enumerate([1, 2, 8]):
+        # Chen et al. 2021, unbiased pass@k: 1 - C(n-c, k) / C(n, k), averaged over prompts (scipy.special.comb)
+        direct = np.mean(1 - comb(8 - c, k) / comb(8, k))
+        assert rep.pass_at_k["mean"][j] == pytest.approx(direct, abs=1e-12)
+        assert rep.pass_at_k["lo"][j] <= direct <= rep.pass_at_k["hi"][j]
+    assert rep.mean_reward == pytest.approx(R.mean())
+    # distinct answers: brute force over the decoded texts
+    assert rep.distinct_answers == pytest.approx(np.mean([len({task.extract_answer(t) for t in row}) for row in raw["texts"]]))
+    assert rep.mean_length == pytest.approx(raw["n_tokens"].mean())
+    assert sum(g["n_prompts"] for g in rep.by_group.values()) == 6
+    assert "proxy" in rep.best_of_k and len(rep.best_of_k["proxy"]["mean"]) == 3
+
+
+def test_entropy_estimate_is_mean_negative_logprob(setup):
+    tok, model, _, held = setup
+    from bonft.sampling import sample
+
+    prompts = [e.prompt for e in held[:3]]
+    rep, raw = evaluate_policy(model, tok, prompts, verifiers={"exact": lambda p, r: np.zeros(len(r))}, n=4, ks=[1],
+                               max_new_tokens=4, seed=5, n_boot=20, temperature=0.8)
+    smp = sample(model, tok, prompts, n=4, temperature=0.8, max_new_tokens=4, seed=5, batch_size=4096)
+    with torch.no_grad():  # recomputed with the training forward pass at the same temperature
+        lp = sequence_logprobs(model, smp.prompt_ids, smp.prompt_mask, smp.response_ids, smp.response_mask, temperature=0.8)
+    assert rep.entropy == pytest.approx(float(-lp.sum(-1).mean()), rel=1e-5)
+    assert raw["texts"] == smp.texts
