@@ -45,7 +45,8 @@ class DemoConfig:
     prompts_per_step: int = 16
     n: int = 16
     k: int = 8
-    lr: float = 1e-3
+    lr: float = 1e-4
+    warmup_steps: int = 10
     eval_n: int = 64
     eval_ks: list = field(default_factory=lambda: [1, 4, 16, 32])
     objectives: tuple = ("loo_reinforce", "pass_at_k")
@@ -74,7 +75,7 @@ def _base(dc: DemoConfig, **kw) -> TrainConfig:
     values = dict(
         seed=dc.seed, task="ledger", task_params=dict(dc.task_params), n_train=dc.n_train, n_eval=dc.n_eval,
         sft_batch_size=dc.sft_batch_size, sft_lr=dc.sft_lr, prompts_per_step=dc.prompts_per_step, n=dc.n,
-        k=dc.k, lr=dc.lr, eval_n=dc.eval_n, eval_ks=list(dc.eval_ks), save_every=0, log_every=10,
+        k=dc.k, lr=dc.lr, warmup_steps=dc.warmup_steps, eval_n=dc.eval_n, eval_ks=list(dc.eval_ks), save_every=0, log_every=10,
         n_layer=dc.n_layer, d_model=dc.d_model, n_head=dc.n_head, max_new_tokens=dc.max_new_tokens,
         n_boot=dc.n_boot, threads=dc.threads,
     )
