@@ -426,6 +426,6 @@ def train(cfg: TrainConfig, *, resume: bool = False, progress: bool = True) -> d
             from .plots import plot_evaluations
 
             plot_evaluations(evals, out / "curves.png", title=cfg.name)
-        if progress and reports:
-            print(f"\n{cfg.name}: final evaluation at step {reports[-1].step}\n{reports[-1].table()}")
+        if progress:
+            print(f"{cfg.name}: {total} steps done; metrics, checkpoints and summary.json in {out}")
     return summary
