@@ -35,13 +35,13 @@ class DemoConfig:
 
     out_dir: str = "runs/demo"
     seed: int = 0
-    task_params: dict = field(default_factory=lambda: {"hard_share": 0.3})
+    task_params: dict = field(default_factory=lambda: {"hard_share": 0.3, "max_factor": 6})
     n_train: int = 2000
     n_eval: int = 200
-    sft_steps: int = 600
+    sft_steps: int = 400
     sft_batch_size: int = 128
     sft_lr: float = 3e-3
-    rl_steps: int = 150
+    rl_steps: int = 200
     prompts_per_step: int = 16
     n: int = 16
     k: int = 8
