@@ -35,7 +35,7 @@ class DemoConfig:
 
     out_dir: str = "runs/demo"
     seed: int = 0
-    task_params: dict = field(default_factory=lambda: {"hard_share": 0.3, "max_factor": 6})
+    task_params: dict = field(default_factory=lambda: {"hard_share": 0.3, "max_factor": 9})
     n_train: int = 2000
     n_eval: int = 200
     sft_steps: int = 400
@@ -45,7 +45,7 @@ class DemoConfig:
     prompts_per_step: int = 16
     n: int = 16
     k: int = 8
-    lr: float = 1e-4
+    lr: float = 2e-4
     warmup_steps: int = 10
     eval_n: int = 64
     eval_ks: list = field(default_factory=lambda: [1, 4, 16, 32])
