@@ -19,10 +19,11 @@ def test_tiny_demo_end_to_end(tmp_path, capsys):
     # the RL stages started from the warm start's checkpoint
     rl_cfg = (out / "pass_at_k" / "config.toml").read_text()
     assert "warm_start/checkpoints/step-00000003" in rl_cfg and 'objective = "pass_at_k"' in rl_cfg
-    # a rerun reuses every finished stage
+    # a rerun reuses every finished stage: no stage's summary is rewritten
+    stamps = {p: p.stat().st_mtime_ns for p in out.glob("*/summary.json")}
     again = run_demo(dc, progress=False)
-    assert again["results"] == summary["results"]
-    assert capsys.readouterr().out.count("reusing the finished run") == 3
+    assert again["results"] == summary["results"] and len(stamps) == 3
+    assert {p: p.stat().st_mtime_ns for p in out.glob("*/summary.json")} == stamps
 
 
 def test_study_table_t_interval():

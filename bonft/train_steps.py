@@ -1,0 +1,262 @@
+"""The trainer's parts: seeds, schedules, the warm-start and RL steps, setup and evaluation.
+
+:mod:`bonft.train` holds the loop; this module holds what one step does. See
+:mod:`bonft.train` for the RNG, distributed and caution notes.
+"""
+from __future__ import annotations
+
+import contextlib
+import math
+import time
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import torch
+
+from .config import TrainConfig
+
+
+# ----------------------------------------------------------------------------- helpers
+@contextlib.contextmanager
+def quiet_transformers():
+    """No transformers progress bars ("Loading weights") inside the trainer's own bar."""
+    from transformers.utils import logging as hf_logging
+
+    was = hf_logging.is_progress_bar_enabled()
+    hf_logging.disable_progress_bar()
+    try:
+        yield
+    finally:
+        if was:
+            hf_logging.enable_progress_bar()
+
+
+def dist_info() -> tuple[int, int]:
+    """(rank, world size); (0, 1) without an initialised process group."""
+    if torch.distributed.is_available() and torch.distributed.is_initialized():
+        return torch.distributed.get_rank(), torch.distributed.get_world_size()
+    return 0, 1
+
+
+def step_seed(seed: int, step: int, rank: int = 0, stream: int = 0) -> int:
+    """A 63-bit seed for one (seed, step, rank, stream); independent streams, no collisions in practice."""
+    return int(np.random.SeedSequence([seed, step, rank, stream]).generate_state(2, np.uint64)[0] >> np.uint64(1))
+
+
+def k_at(cfg: TrainConfig, rl_step: int) -> int:
+    """k of the RL step ``rl_step`` (0-based) under the k schedule; k -> k_final at the last step."""
+    if cfg.k_schedule == "constant" or cfg.k_final == 0 or cfg.rl_steps <= 1:
+        return cfg.k
+    frac = rl_step / (cfg.rl_steps - 1)
+    if cfg.k_schedule == "linear":
+        k = cfg.k + frac * (cfg.k_final - cfg.k)
+    else:  # geometric: equal ratios per step
+        k = math.exp(math.log(cfg.k) + frac * (math.log(cfg.k_final) - math.log(cfg.k)))
+    return int(min(cfg.n, max(1, round(k))))
+
+
+def lr_at(cfg: TrainConfig, step: int) -> float:
+    """SFT: linear warm-up over 5% then cosine to 10%; RL: linear warm-up then constant."""
+    if step < cfg.sft_steps:
+        warm = max(1, cfg.sft_steps // 20)
+        if step < warm:
+            return cfg.sft_lr * (step + 1) / warm
+        frac = (step - warm) / max(1, cfg.sft_steps - warm)
+        return cfg.sft_lr * (0.1 + 0.9 * 0.5 * (1 + math.cos(math.pi * frac)))
+    rl_step = step - cfg.sft_steps
+    if rl_step < cfg.warmup_steps:
+        return cfg.lr * (rl_step + 1) / cfg.warmup_steps
+    return cfg.lr
+
+
+def encode_pairs(tokenizer: Any, prompts: list[str], responses: list[str], device: torch.device):
+    """Prompts as the sampler encodes them, one reference response each (EOS appended).
+
+    Returns prompt_ids (B, Tp), prompt_mask (B, Tp), response_ids (B, 1, T), response_mask (B, 1, T).
+    """
+    from .sampling import encode_responses
+
+    return tuple(x.to(device) for x in encode_responses(tokenizer, prompts, responses))
+
+
+@dataclass
+class Run:
+    """What the loop carries: model, tokenizer, optimizer, data, verifiers."""
+
+    cfg: TrainConfig
+    out: Path
+    model: Any
+    tokenizer: Any
+    task: Any
+    train: list
+    eval: list
+    verifiers: dict  # "train" + evaluation verifiers ("exact", "proxy", user name)
+    device: torch.device
+    rank: int = 0
+    world: int = 1
+    optimizer: Any = None
+    ref_model: Any = None
+
+    @property
+    def is_main(self) -> bool:
+        return self.rank == 0
+
+
+def _make_optimizer(run: Run) -> torch.optim.Optimizer:
+    return torch.optim.AdamW(run.model.parameters(), lr=run.cfg.lr, weight_decay=run.cfg.weight_decay)
+
+
+def _prompt_batch(cfg: TrainConfig, step: int, size: int, n_items: int, rank: int, world: int) -> np.ndarray:
+    """This rank's share of the step's global batch: same global draw everywhere, rank takes idx[rank::world]."""
+    rng = np.random.default_rng(step_seed(cfg.seed, step, 0, stream=1))
+    idx = rng.choice(n_items, size=size, replace=size > n_items)
+    return idx[rank::world]
+
+
+# ----------------------------------------------------------------------------- the two steps
+def sft_step(run: Run, step: int) -> dict:
+    """Warm start: NLL (sum over tokens) of reference responses, divided by the global batch size."""
+    from .losses import nll_loss
+    from .sampling import sequence_logprobs
+
+    cfg = run.cfg
+    B = cfg.sft_batch_size
+    idx = _prompt_batch(cfg, step, B, len(run.train), run.rank, run.world)
+    ex = [run.train[i] for i in idx]
+    pids, pmask, rids, rmask = encode_pairs(run.tokenizer, [e.prompt for e in ex], [e.reference for e in ex], run.device)
+    logp = sequence_logprobs(run.model, pids, pmask, rids, rmask)  # (b, 1, T)
+    # (b, 1, T) -> (b, T): one reference response per prompt
+    loss, info = nll_loss(logp[:, 0], mask=rmask[:, 0], token_reduction="sum", reduction="sum")
+    (loss / B).backward()
+    nll = float(loss.detach())
+    return {"loss": nll / B, "nll_per_token": nll / float(rmask.sum())}
+
+
+def _objective(cfg: TrainConfig, k: int, logp, mask, scores, rewards, ref_logp, sft_terms):
+    """Dispatch to bonft.losses with reduction='sum' (the caller divides by the global batch)."""
+    from . import losses as L
+
+    t = torch.as_tensor
+    kw: dict = {"mask": mask, "token_reduction": cfg.token_reduction, "reduction": "sum"}
+    if ref_logp is not None:
+        kw.update(ref_logprobs=ref_logp, kl_coef=cfg.kl_coef)
+    correct = t(rewards >= cfg.correct_threshold)
+    if cfg.objective == "loo_reinforce":
+        return L.reinforce_loss(logp, t(rewards), baseline="loo", **kw)
+    if cfg.objective == "best_of_k":
+        return L.bon_rl_loss(logp, t(scores), t(rewards), k=k, baseline="loo", **kw)
+    if cfg.objective.startswith("pass_at_k"):
+        est = "plugin" if cfg.objective == "pass_at_k_plugin" else "unbiased"
+        return L.pass_at_k_loss(logp, correct, k=k, estimator=est, positive_only=cfg.objective == "pass_at_k_positive", **kw)
+    expert_logp, expert_mask, expert_scores = sft_terms  # best_of_k_sft
+    return L.bon_sft_loss(expert_logp, logp, t(scores), t(expert_scores), k=k, expert_mask=expert_mask, **kw)
+
+
+def rl_step(run: Run, step: int) -> dict:
+    """Sample n per prompt -> score -> credit -> loss -> backward, over grad_accum micro-batches."""
+    from .sampling import sample, sequence_logprobs
+    from .verifiers.scoring import score_batch
+
+    cfg, n, T = run.cfg, run.cfg.n, run.cfg.temperature
+    B = cfg.prompts_per_step
+    k = k_at(cfg, step - cfg.sft_steps)
+    idx = _prompt_batch(cfg, step, B, len(run.train), run.rank, run.world)
+    tm = dict.fromkeys(("sample", "score", "forward", "credit", "backward"), 0.0)
+    acc: dict = {}
+    for j, mb in enumerate(np.array_split(idx, cfg.grad_accum)):
+        ex = [run.train[i] for i in mb]
+        prompts = [e.prompt for e in ex]
+        t0 = time.perf_counter()
+        smp = sample(run.model, run.tokenizer, prompts, n=n, temperature=T, top_p=cfg.top_p,
+                     max_new_tokens=cfg.max_new_tokens, seed=step_seed(cfg.seed, step, run.rank, stream=10 + j))
+        t1 = time.perf_counter()
+        flat_p = [p for p in prompts for _ in range(n)]  # row b*n + i is sample i of prompt b
+        v = score_batch(run.verifiers["train"], flat_p, [s for row in smp.texts for s in row])
+        b = len(ex)
+        scores = v.scores.reshape(b, n)
+        use_scores = cfg.reward_source == "scores" or v.rewards is None
+        rewards = (v.scores if use_scores else v.rewards).reshape(b, n)
+        sft_terms = None
+        if cfg.objective == "best_of_k_sft":
+            ev = score_batch(run.verifiers["train"], prompts, [e.reference for e in ex])
+            pids, pmask, rids, rmask = encode_pairs(run.tokenizer, prompts, [e.reference for e in ex], run.device)
+            elp = sequence_logprobs(run.model, pids, pmask, rids, rmask)
+            sft_terms = [elp[:, 0], rmask[:, 0], ev.scores]  # (b, 1, T) -> (b, T): the expert response
+        t2 = time.perf_counter()
+        # log-probs of the policy that drew the samples: same temperature and top-p
+        rows = (smp.prompt_ids, smp.prompt_mask, smp.response_ids, smp.response_mask)
+        logp = sequence_logprobs(run.model, *rows, temperature=T, top_p=cfg.top_p)
+        ref_logp = None
+        if run.ref_model is not None:
+            with torch.no_grad():
+                ref_logp = sequence_logprobs(run.ref_model, *rows, temperature=T, top_p=cfg.top_p)
+        t3 = time.perf_counter()
+        loss, info = _objective(cfg, k, logp, smp.response_mask, scores, rewards, ref_logp, sft_terms)
+        t4 = time.perf_counter()
+        (loss / B).backward()
+        for key, dt in (("sample", t1 - t0), ("score", t2 - t1), ("forward", t3 - t2), ("credit", t4 - t3),
+                        ("backward", time.perf_counter() - t4)):
+            tm[key] += dt
+        for key, val in [("loss", float(loss.detach()) / B), ("reward", float(rewards.mean()) * b / B),
+                         ("score", float(scores.mean()) * b / B), ("verifier_failures", v.n_failed)]:
+            acc[key] = acc.get(key, 0.0) + val
+        for key, val in info.items():
+            acc[f"info/{key}"] = acc.get(f"info/{key}", 0.0) + float(val) * b / B
+    acc.update({"k": k, **{f"time/{key}": val for key, val in tm.items()}})
+    return acc
+
+
+# ----------------------------------------------------------------------------- setup
+def build_run(cfg: TrainConfig) -> Run:
+    """Task, data split, verifiers, model and tokenizer for ``cfg`` (no optimizer yet)."""
+    from .models import build_tiny_model, load_model, pick_device
+    from .tasks import build_tokenizer, get_task
+    from .verifiers.scoring import load_verifier
+
+    rank, world = dist_info()
+    device = pick_device(cfg.device)
+    extra = {"path": cfg.prompts_file} if cfg.task == "jsonl" else {}
+    task = get_task(cfg.task, **extra, **cfg.task_params)
+    train, held = task.split(n_train=cfg.n_train, n_eval=cfg.n_eval, seed=cfg.seed)
+    everything = list(train) + list(held)
+    verifiers = {"exact": task.verifier(everything)}
+    proxy = task.proxy_verifier(everything) if hasattr(task, "proxy_verifier") else None
+    if proxy is not None:
+        verifiers["proxy"] = proxy
+    if cfg.verifier in ("exact", "proxy"):
+        if cfg.verifier not in verifiers:
+            raise ValueError(f"verifier='proxy' needs a task with a proxy verifier; task {cfg.task!r} has none")
+        verifiers["train"] = verifiers[cfg.verifier]
+    else:
+        verifiers["train"] = verifiers[cfg.verifier] = load_verifier(cfg.verifier)
+    if cfg.init_from:
+        with quiet_transformers():
+            model, tokenizer = load_model(cfg.init_from, device=device)
+    else:
+        tokenizer = build_tokenizer()
+        model = build_tiny_model(
+            cfg.arch, vocab_size=len(tokenizer), n_layer=cfg.n_layer, d_model=cfg.d_model, n_head=cfg.n_head,
+            max_positions=cfg.max_positions, seed=cfg.seed, pad_token_id=tokenizer.pad_token_id,
+            eos_token_id=tokenizer.eos_token_id, bos_token_id=tokenizer.bos_token_id,
+        ).to(device)
+    return Run(cfg=cfg, out=Path(cfg.out_dir), model=model, tokenizer=tokenizer, task=task, train=list(train),
+               eval=list(held), verifiers=verifiers, device=device, rank=rank, world=world)
+
+
+def evaluate_run(run: Run, step: int):
+    """Evaluate on the held-out prompts (same prompts and seed at every evaluation)."""
+    from .evaluation import evaluate_policy
+
+    cfg = run.cfg
+    held = run.eval[: cfg.eval_prompts or len(run.eval)]
+    vers = {name: v for name, v in run.verifiers.items() if name != "train"}
+    report, _ = evaluate_policy(
+        run.model, run.tokenizer, [e.prompt for e in held], verifiers=vers,
+        extract_answer=getattr(run.task, "extract_answer", None), n=cfg.eval_n, ks=cfg.eval_ks,
+        temperature=cfg.eval_temperature, max_new_tokens=cfg.max_new_tokens,
+        seed=step_seed(cfg.seed, 0, 0, stream=2), step=step, confidence=cfg.confidence, n_boot=cfg.n_boot,
+        groups=[(e.meta or {}).get("family", "all") for e in held],
+    )
+    return report
