@@ -1,0 +1,92 @@
+"""TrainConfig: validation messages, TOML round trip, --set overrides, the documented key table."""
+import dataclasses
+import re
+from pathlib import Path
+
+import pytest
+
+from bonft.config import TrainConfig, apply_overrides, config_reference, from_dict, load_config, to_toml
+
+BASE = {"rl_steps": 2}
+
+
+def make(**kw):
+    return from_dict({**BASE, **kw})
+
+
+@pytest.mark.parametrize(
+    "kw, exc, match",
+    [
+        ({"k": 16, "n": 8}, ValueError, r"k must be <= n \(n=8\), got k=16"),
+        ({"objective": "ppo"}, ValueError, r"objective must be one of .*got 'ppo'"),
+        ({"lr": -1e-3}, ValueError, r"lr must be >= 0.0, got lr=-0.001"),
+        ({"lr": 0.0}, ValueError, r"lr must be > 0.0, got lr=0.0"),
+        ({"lr": "fast"}, TypeError, r"lr must be a real number, got str 'fast'"),
+        ({"n": 2.0}, TypeError, r"n must be an int, got float 2.0"),
+        ({"prompts_per_step": 10, "grad_accum": 3}, ValueError, r"prompts_per_step must be divisible by grad_accum \(grad_accum=3\)"),
+        ({"eval_ks": [1, 128]}, ValueError, r"eval_ks must be <= eval_n \(eval_n=64\)"),
+        ({"top_p": 1.5}, ValueError, r"top_p must be in \(0, 1\], got top_p=1.5"),
+        ({"verifier": "oracle"}, ValueError, r"verifier must be 'exact', 'proxy' or 'module:function', got 'oracle'"),
+        ({"k_schedule": "linear"}, ValueError, r"k_schedule='linear' needs k_final >= 1"),
+        ({"k_final": 99}, ValueError, r"k_final must be <= n \(n=16\), got k_final=99"),
+        ({"objective": "loo_reinforce", "n": 1, "k": 1}, ValueError, r"n must be >= 2 for a leave-one-out baseline"),
+        ({"rl_steps": 0}, ValueError, r"nothing to train"),
+        ({"plots": "yes"}, TypeError, r"plots must be true or false, got str 'yes'"),
+        ({"task": "jsonl"}, ValueError, r"prompts_file must name a JSONL file"),
+        ({"temperature": float("nan")}, ValueError, r"temperature must be finite"),
+    ],
+)
+def test_bad_values_name_the_key(kw, exc, match):
+    with pytest.raises(exc, match=match):
+        make(**kw)
+
+
+def test_unknown_key_is_an_error():
+    with pytest.raises(ValueError, match=r"unknown config key\(s\) \['lerning_rate'\]"):
+        from_dict({**BASE, "lerning_rate": 1e-3})
+
+
+def test_overrides_convert_types():
+    v = apply_overrides(BASE, ["lr=2e-4", "n=32", "eval_ks=1,8", "plots=false", "objective=best_of_k", "task_params.hard_share=0.25"])
+    c = from_dict(v)
+    assert (c.lr, c.n, c.eval_ks, c.plots, c.objective) == (2e-4, 32, [1, 8], False, "best_of_k")
+    assert c.task_params == {"hard_share": 0.25}
+
+
+@pytest.mark.parametrize("item, match", [("n", r"--set expects key=value, got 'n'"), ("nn=3", r"--set key must be a config field"), ("n=many", r"n must be an int, got 'many'")])
+def test_bad_overrides(item, match):
+    with pytest.raises(ValueError, match=match):
+        apply_overrides(BASE, [item])
+
+
+def test_toml_round_trip(tmp_path):
+    c = make(objective="pass_at_k_plugin", k=4, k_final=1, k_schedule="geometric", eval_ks=[1, 2, 4], task_params={"hard_share": 0.3, "mode": "x"})
+    p = tmp_path / "r.toml"
+    p.write_text(to_toml(c))
+    assert load_config(p) == c
+    assert load_config(p, ["k=2"]).k == 2
+
+
+def test_missing_and_broken_recipe(tmp_path):
+    with pytest.raises(FileNotFoundError, match="recipe not found"):
+        load_config(tmp_path / "nope.toml")
+    bad = tmp_path / "bad.toml"
+    bad.write_text("k = = 3\n")
+    with pytest.raises(ValueError, match="not valid TOML"):
+        load_config(bad)
+
+
+def test_every_field_documented_in_docs():
+    doc = (Path(__file__).parent.parent / "docs" / "training.md").read_text()
+    missing = [f.name for f in dataclasses.fields(TrainConfig) if f"`{f.name}`" not in doc]
+    assert missing == []
+    assert all(f.metadata.get("help") for f in dataclasses.fields(TrainConfig))
+    # the table in the doc is the generated one (regenerate with python -m bonft.config)
+    assert config_reference() in doc
+
+
+def test_recipes_load():
+    recipes = sorted((Path(__file__).parent.parent / "recipes").glob("*.toml"))
+    assert len(recipes) >= 6
+    objectives = {load_config(p).objective for p in recipes}
+    assert objectives == {"loo_reinforce", "best_of_k", "pass_at_k", "pass_at_k_plugin", "pass_at_k_positive", "best_of_k_sft"}
