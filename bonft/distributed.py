@@ -127,7 +127,7 @@ def _store(addr: str, port: int, rank: int, world: int, timeout: datetime.timede
     return dist.TCPStore(addr, port, world, True, timeout, wait_for_workers=False, master_listen_fd=sock.detach())
 
 
-def init_from_env(*, device: str = "auto", timeout_s: float = 60.0, env: Mapping[str, str] | None = None) -> DistContext:
+def init_from_env(*, device: str = "auto", timeout_s: float | None = None, env: Mapping[str, str] | None = None) -> DistContext:
     """Join the process group described by the launcher's environment, or return a one-process context.
 
     ``RANK`` and ``WORLD_SIZE`` set (torchrun sets them, with ``LOCAL_RANK``,
@@ -138,18 +138,27 @@ def init_from_env(*, device: str = "auto", timeout_s: float = 60.0, env: Mapping
     ``RANK`` (one machine). Calling it again in a process that already joined
     returns the context of the existing group.
 
-    device: ``"auto"`` (CUDA when available), ``"cpu"`` or ``"cuda"``.
+    device: ``"auto"`` (CUDA when available), ``"cpu"`` or ``"cuda"``. timeout_s:
+    None reads ``BONFT_DIST_TIMEOUT_S`` from the environment, else 60 s.
     Raises ``ValueError`` for bad environment values and :class:`PeerError` when
     the peers do not meet within ``timeout_s``.
     """
     from .models import pick_device
 
     check_choice("device", device, ("auto", "cpu", "cuda"))
-    timeout_s = check_positive("timeout_s", timeout_s)
     if env is None:
         env = os.environ
     elif not isinstance(env, Mapping):
         raise TypeError(f"env must be a mapping of environment variables, got {type(env).__name__}")
+    if timeout_s is None:
+        text = env.get("BONFT_DIST_TIMEOUT_S", "60")
+        try:
+            timeout_s = float(text)
+        except ValueError:
+            raise ValueError(f"environment variable BONFT_DIST_TIMEOUT_S must be a number of seconds, got {text!r}") from None
+        if not (timeout_s > 0 and timeout_s < float("inf")):
+            raise ValueError(f"environment variable BONFT_DIST_TIMEOUT_S must be > 0, got {text!r}")
+    timeout_s = check_positive("timeout_s", timeout_s)
     if "RANK" not in env and "WORLD_SIZE" not in env:
         return DistContext(device=pick_device(device), timeout_s=timeout_s)
     world = _env_int(env, "WORLD_SIZE", min=1)
