@@ -50,7 +50,7 @@ def plot_comparison(results: dict[str, dict], path: str | Path, *, title: str = 
         if "proxy" in ev["best_of_k"]:
             _band(ax2, ev["ks"], ev["best_of_k"]["proxy"], name)
     ax1.set_ylabel("pass@k (true reward)")
-    ax2.set_ylabel("best-of-k selected by the proxy verifier (true reward)")
+    ax2.set_ylabel("best-of-k, proxy picks (true reward)")
     for ax in (ax1, ax2):
         ax.set_xscale("log", base=2)
         ax.set_xlabel("k")
