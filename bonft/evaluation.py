@@ -104,43 +104,81 @@ def evaluate_policy(
     task family of each prompt) adds pass@k means per group. Internal callers pass
     validated arguments (the trainer's config, the eval command's options).
     """
-    from .estimate import summarize
+    raw = collect_pools(model, tokenizer, prompts, verifiers=verifiers, extract_answer=extract_answer, n=n,
+                        temperature=temperature, max_new_tokens=max_new_tokens, seed=seed, rows_per_chunk=rows_per_chunk)
+    report = report_from_pools(raw, ks=ks, temperature=temperature, seed=seed, step=step, confidence=confidence,
+                               n_boot=n_boot, groups=groups)
+    return report, raw
+
+
+@torch.no_grad()
+def collect_pools(model: Any, tokenizer: Any, prompts: Sequence[str], *, verifiers: dict[str, Callable],
+                  extract_answer: Callable[[str], Any] | None = None, n: int = 64, temperature: float = 1.0,
+                  max_new_tokens: int = 8, seed: int = 0, rows_per_chunk: int = 4096,
+                  seeds: Sequence[int] | None = None) -> dict:
+    """The sampling and scoring half of :func:`evaluate_policy`: P prompts -> pools of n.
+
+    Returns ``raw`` with ``texts`` (P lists of n), ``n_tokens``, ``seq_logp``
+    (P, n), ``scores`` (verifier name -> (P, n)), ``rewards`` (P, n) of the
+    ``"exact"`` verifier, ``distinct`` (P,) and ``failures``. ``seeds`` (one per
+    prompt) draws each prompt from its own generator
+    (:func:`bonft.distributed.sample_per_prompt`), so pools collected on
+    different ranks are those one process would collect; else one draw from ``seed``.
+    """
     from .sampling import sample
     from .verifiers.scoring import score_batch
 
     P = len(prompts)
-    smp = sample(model, tokenizer, list(prompts), n=n, temperature=temperature, max_new_tokens=max_new_tokens,
-                 seed=seed, batch_size=rows_per_chunk)
+    if seeds is not None:
+        from .distributed import sample_per_prompt
+
+        smp = sample_per_prompt(model, tokenizer, list(prompts), seeds=seeds, n=n, temperature=temperature,
+                                max_new_tokens=max_new_tokens)
+    else:
+        smp = sample(model, tokenizer, list(prompts), n=n, temperature=temperature, max_new_tokens=max_new_tokens,
+                     seed=seed, batch_size=rows_per_chunk)
     flat_prompts = [p for p in prompts for _ in range(n)]  # row b*n + i is sample i of prompt b
     flat_texts = [t for row in smp.texts for t in row]
-    n_tokens = smp.response_mask.sum(-1).cpu().numpy()  # (P, n)
-    seq_logp = (smp.token_logprobs * smp.response_mask).sum(-1).cpu().double().numpy()  # (P, n)
-
-    raw: dict = {"texts": smp.texts, "n_tokens": n_tokens, "scores": {}, "rewards": None}
-    failures = 0
-    verdicts = {}
+    raw: dict = {"texts": smp.texts, "n_tokens": smp.response_mask.sum(-1).cpu().numpy(),  # (P, n)
+                 "seq_logp": (smp.token_logprobs * smp.response_mask).sum(-1).cpu().double().numpy(),  # (P, n)
+                 "scores": {}, "rewards": None, "failures": 0}
     for name, ver in verifiers.items():
         v = score_batch(ver, flat_prompts, flat_texts)
-        failures += v.n_failed
-        verdicts[name] = v
+        raw["failures"] += v.n_failed
         raw["scores"][name] = v.scores.reshape(P, n)
-    exact = verdicts["exact"]
-    rewards = (exact.rewards if exact.rewards is not None else exact.scores).reshape(P, n)
-    raw["rewards"] = rewards
+        if name == "exact":
+            raw["rewards"] = (v.rewards if v.rewards is not None else v.scores).reshape(P, n)
+    if extract_answer is not None:
+        raw["distinct"] = np.array([len({extract_answer(t) for t in row}) for row in smp.texts], dtype=float)
+    else:
+        raw["distinct"] = np.array([len(set(row)) for row in smp.texts], dtype=float)
+    return raw
 
+
+def merge_pools(parts: Sequence[dict]) -> dict:
+    """Concatenate the ``raw`` pools of :func:`collect_pools` (e.g. gathered from ranks) along prompts."""
+    parts = [p for p in parts if p is not None]
+    cat = {key: np.concatenate([p[key] for p in parts]) for key in ("n_tokens", "seq_logp", "rewards", "distinct")}
+    return {**cat, "texts": [row for p in parts for row in p["texts"]],
+            "scores": {name: np.concatenate([p["scores"][name] for p in parts]) for name in parts[0]["scores"]},
+            "failures": sum(p["failures"] for p in parts)}
+
+
+def report_from_pools(raw: dict, *, ks: Sequence[int], temperature: float, seed: int = 0, step: int = 0,
+                      confidence: float = 0.95, n_boot: int = 1000, groups: Sequence[str] | None = None) -> EvalReport:
+    """The summarising half of :func:`evaluate_policy`: estimators and bootstrap CIs over all pools."""
+    from .estimate import summarize
+
+    rewards, n_tokens = raw["rewards"], raw["n_tokens"]
+    P, n = rewards.shape
     ks = [int(k) for k in ks]
     pass_sum = summarize(rewards, rewards, ks, confidence=confidence, n_boot=n_boot, seed=seed)
     best = {}
-    for name, v in verdicts.items():
+    for name, sc in raw["scores"].items():
         if name == "exact":
             continue
-        s = summarize(v.scores.reshape(P, n), rewards, ks, confidence=confidence, n_boot=n_boot, seed=seed)
+        s = summarize(sc, rewards, ks, confidence=confidence, n_boot=n_boot, seed=seed)
         best[name] = _curve(s, "bon")
-
-    if extract_answer is not None:
-        distinct = np.mean([len({extract_answer(t) for t in row}) for row in smp.texts])
-    else:
-        distinct = np.mean([len(set(row)) for row in smp.texts])
     by_group = {}
     if groups is not None:
         per = np.asarray(pass_sum.per_prompt_oracle)  # (P, K)
@@ -148,11 +186,10 @@ def evaluate_policy(
         for g in sorted(set(labels.tolist())):
             sel = labels == g
             by_group[g] = {"n_prompts": int(sel.sum()), "pass_at_k": [float(v) for v in per[sel].mean(0)]}
-    report = EvalReport(
+    return EvalReport(
         step=int(step), ks=ks, n_prompts=P, n_samples=n, temperature=float(temperature),
         pass_at_k=_curve(pass_sum, "oracle"), best_of_k=best,
         mean_reward=float(rewards.mean()), mean_length=float(n_tokens.mean()),
-        distinct_answers=float(distinct), entropy=float(-seq_logp.mean()), verifier_failures=int(failures),
-        by_group=by_group,
+        distinct_answers=float(raw["distinct"].mean()), entropy=float(-raw["seq_logp"].mean()),
+        verifier_failures=int(raw["failures"]), by_group=by_group,
     )
-    return report, raw
