@@ -12,12 +12,14 @@ Everything random in a step is drawn from seeds derived from ``(seed, step, rank
 so a run resumed from any checkpoint ends with the same weights as an
 uninterrupted one (the optimizer state and the RNG states are in the checkpoint).
 
-Ready for ``torch.distributed``: the global batch of prompt indices is the
-same on every rank and each rank takes ``idx[rank::world]`` (a prompt's n
-samples never leave its rank); losses use ``reduction="sum"`` and are divided
-by the GLOBAL number of prompts, so an all-reduce (sum) of gradients gives the
-single-process gradient; every write goes through ``is_main``. The gradient
-all-reduce itself is the one line marked ``DISTRIBUTED`` below.
+Under ``torchrun`` (see docs/scaling.md and :mod:`bonft.distributed`) the
+trainer joins the process group, wraps the model in DDP and gives each rank a
+contiguous block of whole prompts of the same global batch (a prompt's n
+samples never leave its rank). Each prompt samples from a seed of its global
+slot, losses use ``reduction="sum"`` times ``W / B`` (DDP averages gradients
+over W ranks), logged numbers are reduced over ranks, and evaluation pools are
+gathered on rank 0: W processes end with the weights one process ends with.
+Only rank 0 writes; every rank resumes from the checkpoint rank 0 picks.
 
 Caution: the RL stage optimises what the training verifier rewards. A proxy or
 a user verifier that can be gamed (length, format, keywords) will be gamed;
@@ -49,25 +51,39 @@ def train(cfg: TrainConfig, *, resume: bool = False, progress: bool = True) -> d
     from tqdm.auto import tqdm
 
     from .checkpoint import latest_checkpoint, load_state, save_checkpoint, set_rng_state
+    from .distributed import barrier, broadcast_object, check_divisible, shutdown, wrap_model
     from .models import load_model, save_model
 
     if not isinstance(cfg, TrainConfig):
         raise TypeError(f"cfg must be a TrainConfig, got {type(cfg).__name__}")
     torch.set_num_threads(cfg.threads)
+    owns_group = not torch.distributed.is_initialized()
     run = build_run(cfg)
+    if cfg.rl_steps:  # whole prompts, equal shares, equal micro-batches on every rank
+        share = check_divisible("prompts_per_step", cfg.prompts_per_step, run.world)
+        if share % cfg.grad_accum:
+            raise ValueError(f"prompts_per_step must be divisible by world_size * grad_accum (world_size={run.world}, "
+                             f"grad_accum={cfg.grad_accum}), got prompts_per_step={cfg.prompts_per_step}")
+    if cfg.sft_steps:
+        check_divisible("sft_batch_size", cfg.sft_batch_size, run.world)
     out, total = run.out, cfg.total_steps
     metrics_path = out / "metrics.jsonl"
-    start, state = 0, None
-    ckpt = latest_checkpoint(out) if resume else None
-    if resume and ckpt is None and (out / "summary.json").exists():
-        raise ValueError(f"--resume: {out} holds a finished run without checkpoints")
+    start, state, ckpt, problem = 0, None, None, None
+    if run.is_main:  # rank 0 decides; every rank resumes from (or refuses) the same checkpoint
+        ckpt = latest_checkpoint(out) if resume else None
+        if resume and ckpt is None and (out / "summary.json").exists():
+            problem = f"--resume: {out} holds a finished run without checkpoints"
+        elif not resume and (out / "checkpoints").exists():
+            problem = f"out_dir {str(out)!r} already holds checkpoints; pass --resume or choose another --out"
+    ckpt, problem = broadcast_object((ckpt, problem), run.ctx)
+    if problem:
+        raise ValueError(problem)
     if ckpt is not None:
         state = load_state(ckpt)
         start = state["step"]
         with quiet_transformers():
             run.model, run.tokenizer = load_model(ckpt, device=run.device)
-    elif run.is_main and (out / "checkpoints").exists() and not resume:
-        raise ValueError(f"out_dir {str(out)!r} already holds checkpoints; pass --resume or choose another --out")
+    run.ddp = wrap_model(run.model, run.ctx)  # several ranks: DDP (copies rank 0's weights to all); else the model
     if run.is_main:
         out.mkdir(parents=True, exist_ok=True)
         (out / "config.toml").write_text(to_toml(cfg))
@@ -93,6 +109,7 @@ def train(cfg: TrainConfig, *, resume: bool = False, progress: bool = True) -> d
             if not (ref_dir / "model").is_dir():
                 if run.is_main:
                     save_model(run.model, run.tokenizer, ref_dir)
+            barrier(run.ctx, what=f"waiting for rank 0 to write {ref_dir}")
             with quiet_transformers():
                 run.ref_model, _ = load_model(ref_dir, device=run.device)
             run.ref_model.requires_grad_(False)
@@ -120,7 +137,9 @@ def train(cfg: TrainConfig, *, resume: bool = False, progress: bool = True) -> d
     reports = []
 
     def do_eval(s: int) -> None:
-        rep = evaluate_run(run, s)
+        rep = evaluate_run(run, s)  # every rank samples its share; the report is rank 0's
+        if rep is None:
+            return
         reports.append(rep)
         log({"kind": "eval", **rep.to_dict()})
         if progress and run.is_main:
@@ -141,7 +160,7 @@ def train(cfg: TrainConfig, *, resume: bool = False, progress: bool = True) -> d
             run.optimizer.zero_grad(set_to_none=True)
             t0 = time.perf_counter()
             rec = sft_step(run, s) if s < cfg.sft_steps else rl_step(run, s)
-            # DISTRIBUTED: all-reduce (sum) every p.grad here; the losses are already divided by the global batch.
+            # gradients are already the global-batch mean here (DDP averaged them in backward)
             if cfg.clip_grad_norm > 0:
                 rec["grad_norm"] = float(torch.nn.utils.clip_grad_norm_(run.model.parameters(), cfg.clip_grad_norm))
             in_update = True  # an interrupt inside optimizer.step() leaves half-updated weights: do not save those
@@ -183,4 +202,6 @@ def train(cfg: TrainConfig, *, resume: bool = False, progress: bool = True) -> d
             plot_evaluations(evals, out / "curves.png", title=cfg.name)
         if progress:
             print(f"{cfg.name}: {total} steps done; metrics, checkpoints and summary.json in {out}")
+    if owns_group:
+        shutdown(run.ctx)
     return summary

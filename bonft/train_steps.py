@@ -98,6 +98,13 @@ class Run:
     world: int = 1
     optimizer: Any = None
     ref_model: Any = None
+    ctx: Any = None  # bonft.distributed.DistContext
+    ddp: Any = None  # the model as trained: DistributedDataParallel(model) on several ranks, else model
+
+    @property
+    def net(self) -> Any:
+        """What training forward passes go through (gradients are averaged over ranks in backward)."""
+        return self.ddp if self.ddp is not None else self.model
 
     @property
     def is_main(self) -> bool:
@@ -109,15 +116,21 @@ def _make_optimizer(run: Run) -> torch.optim.Optimizer:
 
 
 def _prompt_batch(cfg: TrainConfig, step: int, size: int, n_items: int, rank: int, world: int) -> np.ndarray:
-    """This rank's share of the step's global batch: same global draw everywhere, rank takes idx[rank::world]."""
+    """This rank's share of the step's global batch: same global draw everywhere, rank takes a contiguous block.
+
+    The block is slots ``shard_bounds(size, rank=rank, world_size=world)`` of the global batch (whole prompts).
+    """
+    from .distributed import shard_prompts
+
     rng = np.random.default_rng(step_seed(cfg.seed, step, 0, stream=1))
     idx = rng.choice(n_items, size=size, replace=size > n_items)
-    return idx[rank::world]
+    return shard_prompts(idx, rank=rank, world_size=world)
 
 
 # ----------------------------------------------------------------------------- the two steps
 def sft_step(run: Run, step: int) -> dict:
     """Warm start: NLL (sum over tokens) of reference responses, divided by the global batch size."""
+    from .distributed import reduce_metrics
     from .losses import nll_loss
     from .sampling import sequence_logprobs
 
@@ -126,12 +139,12 @@ def sft_step(run: Run, step: int) -> dict:
     idx = _prompt_batch(cfg, step, B, len(run.train), run.rank, run.world)
     ex = [run.train[i] for i in idx]
     pids, pmask, rids, rmask = encode_pairs(run.tokenizer, [e.prompt for e in ex], [e.reference for e in ex], run.device)
-    logp = sequence_logprobs(run.model, pids, pmask, rids, rmask)  # (b, 1, T)
+    logp = sequence_logprobs(run.net, pids, pmask, rids, rmask)  # (b, 1, T)
     # (b, 1, T) -> (b, T): one reference response per prompt
     loss, info = nll_loss(logp[:, 0], mask=rmask[:, 0], token_reduction="sum", reduction="sum")
-    (loss / B).backward()
-    nll = float(loss.detach())
-    return {"loss": nll / B, "nll_per_token": nll / float(rmask.sum())}
+    (loss * run.world / B).backward()  # x W/B: DDP averages over W ranks (bonft.distributed.global_mean_scale)
+    tot = reduce_metrics({"nll": float(loss.detach()), "tokens": float(rmask.sum())}, run.ctx)
+    return {"loss": tot["nll"] / B, "nll_per_token": tot["nll"] / tot["tokens"]}
 
 
 def _objective(cfg: TrainConfig, k: int, logp, mask, scores, rewards, ref_logp, sft_terms):
@@ -156,21 +169,24 @@ def _objective(cfg: TrainConfig, k: int, logp, mask, scores, rewards, ref_logp, 
 
 def rl_step(run: Run, step: int) -> dict:
     """Sample n per prompt -> score -> credit -> loss -> backward, over grad_accum micro-batches."""
-    from .sampling import sample, sequence_logprobs
+    from .distributed import prompt_seed, reduce_metrics, sample_per_prompt, shard_bounds
+    from .sampling import sequence_logprobs
     from .verifiers.scoring import score_batch
 
     cfg, n, T = run.cfg, run.cfg.n, run.cfg.temperature
     B = cfg.prompts_per_step
     k = k_at(cfg, step - cfg.sft_steps)
     idx = _prompt_batch(cfg, step, B, len(run.train), run.rank, run.world)
+    slots = np.arange(*shard_bounds(B, rank=run.rank, world_size=run.world))  # positions in the global batch
     tm = dict.fromkeys(("sample", "score", "forward", "credit", "backward"), 0.0)
     acc: dict = {}
-    for j, mb in enumerate(np.array_split(idx, cfg.grad_accum)):
+    for mb, sl in zip(np.array_split(idx, cfg.grad_accum), np.array_split(slots, cfg.grad_accum)):
         ex = [run.train[i] for i in mb]
         prompts = [e.prompt for e in ex]
         t0 = time.perf_counter()
-        smp = sample(run.model, run.tokenizer, prompts, n=n, temperature=T, top_p=cfg.top_p,
-                     max_new_tokens=cfg.max_new_tokens, seed=step_seed(cfg.seed, step, run.rank, stream=10 + j))
+        # one generator per global slot: a prompt draws the same samples whichever rank holds it
+        smp = sample_per_prompt(run.model, run.tokenizer, prompts, seeds=[prompt_seed(cfg.seed, step=step, slot=int(j))
+                                for j in sl], n=n, temperature=T, top_p=cfg.top_p, max_new_tokens=cfg.max_new_tokens)
         t1 = time.perf_counter()
         flat_p = [p for p in prompts for _ in range(n)]  # row b*n + i is sample i of prompt b
         v = score_batch(run.verifiers["train"], flat_p, [s for row in smp.texts for s in row])
@@ -182,12 +198,12 @@ def rl_step(run: Run, step: int) -> dict:
         if cfg.objective == "best_of_k_sft":
             ev = score_batch(run.verifiers["train"], prompts, [e.reference for e in ex])
             pids, pmask, rids, rmask = encode_pairs(run.tokenizer, prompts, [e.reference for e in ex], run.device)
-            elp = sequence_logprobs(run.model, pids, pmask, rids, rmask)
+            elp = sequence_logprobs(run.net, pids, pmask, rids, rmask)
             sft_terms = [elp[:, 0], rmask[:, 0], ev.scores]  # (b, 1, T) -> (b, T): the expert response
         t2 = time.perf_counter()
         # log-probs of the policy that drew the samples: same temperature and top-p
         rows = (smp.prompt_ids, smp.prompt_mask, smp.response_ids, smp.response_mask)
-        logp = sequence_logprobs(run.model, *rows, temperature=T, top_p=cfg.top_p)
+        logp = sequence_logprobs(run.net, *rows, temperature=T, top_p=cfg.top_p)
         ref_logp = None
         if run.ref_model is not None:
             with torch.no_grad():
@@ -195,7 +211,7 @@ def rl_step(run: Run, step: int) -> dict:
         t3 = time.perf_counter()
         loss, info = _objective(cfg, k, logp, smp.response_mask, scores, rewards, ref_logp, sft_terms)
         t4 = time.perf_counter()
-        (loss / B).backward()
+        (loss * run.world / B).backward()  # x W/B: DDP averages over W ranks (global_mean_scale)
         for key, dt in (("sample", t1 - t0), ("score", t2 - t1), ("forward", t3 - t2), ("credit", t4 - t3),
                         ("backward", time.perf_counter() - t4)):
             tm[key] += dt
@@ -204,6 +220,7 @@ def rl_step(run: Run, step: int) -> dict:
             acc[key] = acc.get(key, 0.0) + val
         for key, val in info.items():
             acc[f"info/{key}"] = acc.get(f"info/{key}", 0.0) + float(val) * b / B
+    acc = reduce_metrics(acc, run.ctx)  # per-rank parts of global means -> their sum (times stay rank 0's)
     acc.update({"k": k, **{f"time/{key}": val for key, val in tm.items()}})
     return acc
 
@@ -211,12 +228,14 @@ def rl_step(run: Run, step: int) -> dict:
 # ----------------------------------------------------------------------------- setup
 def build_run(cfg: TrainConfig) -> Run:
     """Task, data split, verifiers, model and tokenizer for ``cfg`` (no optimizer yet)."""
-    from .models import build_tiny_model, load_model, pick_device
+    from .models import build_tiny_model, load_model
     from .tasks import build_tokenizer, get_task
     from .verifiers.scoring import load_verifier
 
-    rank, world = dist_info()
-    device = pick_device(cfg.device)
+    from .distributed import init_from_env
+
+    ctx = init_from_env(device=cfg.device)  # a process group under torchrun, else one process
+    rank, world, device = ctx.rank, ctx.world_size, ctx.device
     extra = {"path": cfg.prompts_file} if cfg.task == "jsonl" else {}
     task = get_task(cfg.task, **extra, **cfg.task_params)
     train, held = task.split(n_train=cfg.n_train, n_eval=cfg.n_eval, seed=cfg.seed)
@@ -242,21 +261,32 @@ def build_run(cfg: TrainConfig) -> Run:
             eos_token_id=tokenizer.eos_token_id, bos_token_id=tokenizer.bos_token_id,
         ).to(device)
     return Run(cfg=cfg, out=Path(cfg.out_dir), model=model, tokenizer=tokenizer, task=task, train=list(train),
-               eval=list(held), verifiers=verifiers, device=device, rank=rank, world=world)
+               eval=list(held), verifiers=verifiers, device=device, rank=rank, world=world, ctx=ctx)
 
 
 def evaluate_run(run: Run, step: int):
-    """Evaluate on the held-out prompts (same prompts and seed at every evaluation)."""
-    from .evaluation import evaluate_policy
+    """Evaluate on the held-out prompts (same prompts and seeds at every evaluation); None on ranks > 0.
+
+    Each rank samples and scores its block of the held-out prompts (prompt j from
+    its own seed, so the pools do not depend on the number of ranks); rank 0
+    gathers the pools and runs the estimators once on all of them.
+    """
+    from .distributed import gather_objects, prompt_seed, shard_bounds
+    from .evaluation import collect_pools, merge_pools, report_from_pools
 
     cfg = run.cfg
     held = run.eval[: cfg.eval_prompts or len(run.eval)]
     vers = {name: v for name, v in run.verifiers.items() if name != "train"}
-    report, _ = evaluate_policy(
-        run.model, run.tokenizer, [e.prompt for e in held], verifiers=vers,
-        extract_answer=getattr(run.task, "extract_answer", None), n=cfg.eval_n, ks=cfg.eval_ks,
-        temperature=cfg.eval_temperature, max_new_tokens=cfg.max_new_tokens,
-        seed=step_seed(cfg.seed, 0, 0, stream=2), step=step, confidence=cfg.confidence, n_boot=cfg.n_boot,
-        groups=[(e.meta or {}).get("family", "all") for e in held],
-    )
-    return report
+    a, b = shard_bounds(len(held), rank=run.rank, world_size=run.world, allow_uneven=True)
+    raw = None
+    if b > a:
+        raw = collect_pools(run.model, run.tokenizer, [e.prompt for e in held[a:b]], verifiers=vers,
+                            extract_answer=getattr(run.task, "extract_answer", None), n=cfg.eval_n,
+                            temperature=cfg.eval_temperature, max_new_tokens=cfg.max_new_tokens,
+                            seeds=[prompt_seed(cfg.seed, step=0, slot=j, stream=2) for j in range(a, b)])
+    pools = gather_objects(raw, run.ctx)
+    if not run.is_main:
+        return None
+    return report_from_pools(merge_pools(pools), ks=cfg.eval_ks, temperature=cfg.eval_temperature,
+                             seed=step_seed(cfg.seed, 0, 0, stream=2), step=step, confidence=cfg.confidence,
+                             n_boot=cfg.n_boot, groups=[(e.meta or {}).get("family", "all") for e in held])
