@@ -210,6 +210,12 @@ def test_bad_launcher_environment_is_named():
         init_from_env(device="cpu", env=[("RANK", "0")])
     with pytest.raises(ValueError, match=r"timeout_s must be a finite number > 0, got timeout_s=0.0"):
         init_from_env(device="cpu", timeout_s=0, env={})
+    assert init_from_env(device="cpu", env={"BONFT_DIST_TIMEOUT_S": "7.5"}).timeout_s == 7.5
+    assert init_from_env(device="cpu", env={}).timeout_s == 60.0
+    with pytest.raises(ValueError, match=r"BONFT_DIST_TIMEOUT_S must be a number of seconds, got 'soon'"):
+        init_from_env(device="cpu", env={"BONFT_DIST_TIMEOUT_S": "soon"})
+    with pytest.raises(ValueError, match=r"BONFT_DIST_TIMEOUT_S must be > 0, got '-1'"):
+        init_from_env(device="cpu", env={"BONFT_DIST_TIMEOUT_S": "-1"})
     with pytest.raises(ValueError, match=r"device must be one of \('auto', 'cpu', 'cuda'\), got 'tpu'"):
         init_from_env(device="tpu", env={})
     assert not dist.is_initialized()
@@ -354,3 +360,58 @@ def test_a_prompts_samples_do_not_depend_on_the_other_prompts_in_the_call(tiny_l
         sample_per_prompt(model, tok, prompts, seeds=seeds[:2], **kw)
     with pytest.raises(TypeError, match=r"prompts must be a sequence of str, got a single str"):
         sample_per_prompt(model, tok, "a+b=", seeds=seeds[:1], **kw)
+
+
+# ----------------------------------------------------------------------------- the trainer on 2 processes
+# llama, not gpt2: GPT-2's key bias has an exactly zero true gradient (softmax ignores a shift shared by all
+# keys), so Adam turns float round-off there into full-size steps that differ between any two summation orders.
+# RL lr 1e-3 (the config default): Adam's first step moves a weight by lr * g / (|g| + eps), so a gradient
+# that cancels to ~eps keeps float32 noise of order 1e-4 * lr (measured worst 1.4e-6 at lr=1e-2; it scales with lr).
+TRAIN_CFG = dict(
+    arch="llama", n_layer=1, d_model=32, n_head=2, max_positions=48, n_train=64, n_eval=5, sft_steps=2, sft_batch_size=8,
+    sft_lr=1e-2, rl_steps=2, prompts_per_step=4, n=4, k=2, lr=1e-3, eval_n=4, eval_ks=[1, 4], n_boot=50,
+    log_every=1, save_every=0, keep_checkpoints=2, max_new_tokens=6, plots=False, eval_at_start=False, threads=1,
+    objective="pass_at_k", verifier="toy_verifier:digit_share", correct_threshold=0.2,  # varied rewards from step 1
+)
+
+
+def test_two_trainer_processes_end_with_the_one_process_weights(tmp_path, monkeypatch):
+    """Warm start (NLL) then pass@k RL: 2 gloo ranks vs 1 process, same global batch and seed, to 1e-6."""
+    import json
+
+    from safetensors.torch import load_file
+
+    from bonft.config import from_dict
+    from bonft.train import train
+
+    monkeypatch.syspath_prepend(str(SCRIPTS))  # the toy verifier module, here and in the ranks
+    monkeypatch.setenv("PYTHONPATH", os.pathsep.join([str(SCRIPTS), os.environ.get("PYTHONPATH", "")]))
+    two = {**TRAIN_CFG, "out_dir": str(tmp_path / "two")}
+    (tmp_path / "two.json").write_text(json.dumps(two))
+    procs = launch("train_ranks.py", [0, 1], 2, tmp_path / "two.json")  # runs while the 1-process run trains here
+    train(from_dict({**TRAIN_CFG, "out_dir": str(tmp_path / "one")}), progress=False)
+    res = finish(procs, limit=300)
+    assert [rc for rc, _, _ in res] == [0, 0], res[0][2][-3000:] + res[1][2][-3000:]
+
+    def weights(run: str, step: int) -> dict:
+        return load_file(str(tmp_path / run / "checkpoints" / f"step-{step:08d}" / "model" / "model.safetensors"))
+
+    for step in (2, 4):  # after the warm start (SFT stage), after the RL stage
+        assert max_diff(weights("two", step), weights("one", step)) < 1e-6, step
+    assert max_diff(weights("one", 4), weights("one", 2)) > 1e-4  # the RL steps moved the weights: not a vacuous match
+
+    def lines(run: str) -> list:
+        return [json.loads(ln) for ln in (tmp_path / run / "metrics.jsonl").read_text().splitlines()]
+
+    one, two_ = lines("one"), lines("two")
+    assert [r["kind"] for r in one] == [r["kind"] for r in two_] == ["train"] * 4 + ["eval"]
+    for a, b in zip(one[:4], two_[:4]):  # logged numbers are global: reduced over the 2 ranks
+        for key in ("loss", "grad_norm", "reward", "nll_per_token", "verifier_failures"):
+            if key in a:
+                assert b[key] == pytest.approx(a[key], rel=1e-5, abs=1e-6), key
+    assert 0 < one[2]["reward"] < 1 and one[2]["grad_norm"] > 0  # the RL steps had a signal
+    # evaluation: 5 held-out prompts split 3 + 2, pooled on rank 0, same report as one process
+    ev1, ev2 = one[4], two_[4]
+    assert ev2["n_prompts"] == ev1["n_prompts"] == 5
+    assert ev2["pass_at_k"] == ev1["pass_at_k"] and ev2["mean_reward"] == pytest.approx(ev1["mean_reward"], abs=1e-12)
+    assert sorted(p.name for p in (tmp_path / "two" / "checkpoints").iterdir()) == ["step-00000002", "step-00000004"]
