@@ -8,8 +8,8 @@ One run is a sequence of global optimizer steps ``0 .. sft_steps + rl_steps - 1`
         loss.backward(); clip; optimizer.step()
         evaluate (pass@k, best-of-k under each verifier) / log / checkpoint when due
 
-Everything random in a step is drawn from seeds derived from ``(seed, step, rank)``,
-so a run resumed from any checkpoint ends with the same weights as an
+Everything random in a step is drawn from seeds derived from ``(seed, step, rank)``
+(each prompt's samples from ``(seed, step, global slot of the prompt)``), so a run resumed from any checkpoint ends with the same weights as an
 uninterrupted one (the optimizer state and the RNG states are in the checkpoint).
 
 Under ``torchrun`` (see docs/scaling.md and :mod:`bonft.distributed`) the
