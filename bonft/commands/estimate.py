@@ -2,9 +2,8 @@
 from __future__ import annotations
 
 import argparse
-import json
 import os
-import tempfile
+from ._args import parse_list, write_json_atomic
 
 HELP = "best-of-k (verifier picks) and oracle pass@k with bootstrap CIs from a samples JSONL file"
 DESCRIPTION = (
@@ -14,19 +13,6 @@ DESCRIPTION = (
     "confidence interval over prompts. One block per temperature when the file has several. "
     "Try it with --example."
 )
-
-
-def _parse_ks(text: str | None):
-    if text is None:
-        return None
-    try:
-        ks = [int(v) for v in text.split(",") if v.strip()]
-    except ValueError:
-        raise ValueError(f"--k must be comma-separated integers like 1,2,4, got {text!r}") from None
-    if not ks:
-        raise ValueError(f"--k must list at least one integer, got {text!r}")
-    return ks
-
 
 def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("samples", nargs="?", help="samples JSONL file (omit with --example)")
@@ -44,19 +30,6 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--plot", metavar="OUT.png", default=None, help="also write a PNG of the curves")
 
 
-def _write_json_atomic(path: str, obj) -> None:
-    folder = os.path.dirname(os.path.abspath(path))
-    fd, tmp = tempfile.mkstemp(prefix=".estimate-", suffix=".tmp", dir=folder)
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8") as f:
-            json.dump(obj, f, indent=1, allow_nan=False)
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
-
-
 def run(args) -> int:
     from bonft.estimate import default_ks, plot_curves, summarize
     from bonft.examples import example_samples_path
@@ -69,7 +42,7 @@ def run(args) -> int:
     path = example_samples_path() if args.example else args.samples
     if not os.path.isfile(path):
         raise FileNotFoundError(f"SAMPLES file not found: {path}")
-    ks = _parse_ks(args.k)
+    ks = parse_list("--k", args.k)
     if args.boot < 1:
         raise ValueError(f"--boot must be >= 1, got {args.boot}")
     if args.seed < 0:
@@ -106,7 +79,7 @@ def run(args) -> int:
     print("best-of-k: reward of the sample the verifier scores highest among k (ties split evenly); "
           "oracle: best true reward among k (pass@k for 0/1 rewards); gap = oracle - best-of-k.")
     if args.json:
-        _write_json_atomic(args.json, {"samples": os.path.abspath(path), "blocks": blocks})
+        write_json_atomic(args.json, {"samples": os.path.abspath(path), "blocks": blocks})
         print(f"wrote {args.json}")
     if args.plot:
         plot_curves(curves, args.plot, title=os.path.basename(path))

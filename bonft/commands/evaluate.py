@@ -4,6 +4,7 @@ from __future__ import annotations
 import argparse
 import json
 from pathlib import Path
+from ._args import parse_list
 
 HELP = "evaluate a checkpoint: pass@k and best-of-k (per verifier) with CIs on held-out prompts"
 DESCRIPTION = (
@@ -12,17 +13,6 @@ DESCRIPTION = (
     "best-of-k with bootstrap CIs, plus length and diversity. CHECKPOINT is a checkpoint directory "
     "or a run directory (its newest checkpoint)."
 )
-
-
-def parse_list(name: str, text: str, cast=int) -> list:
-    try:
-        out = [cast(v) for v in text.split(",") if v.strip()]
-    except ValueError:
-        raise ValueError(f"{name} must be comma-separated numbers like 1,4,16, got {text!r}") from None
-    if not out:
-        raise ValueError(f"{name} must list at least one value, got {text!r}")
-    return out
-
 
 def add_common(p: argparse.ArgumentParser) -> None:
     p.add_argument("checkpoint", help="checkpoint directory (CKPT/model, CKPT/tokenizer) or run directory")

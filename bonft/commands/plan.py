@@ -4,7 +4,7 @@ from __future__ import annotations
 import argparse
 import json
 import os
-import tempfile
+from ._args import parse_list, write_json_atomic
 
 HELP = "choose temperature and N: best-of-k value over a temperature x k grid, budgets, doubling gains"
 DESCRIPTION = (
@@ -18,28 +18,6 @@ DESCRIPTION = (
 )
 
 DEFAULT_TEMPERATURES = "0.4,0.7,1.0,1.3"
-
-
-def _floats(flag: str, text: str | None) -> list[float] | None:
-    if text is None:
-        return None
-    try:
-        vals = [float(v) for v in text.split(",") if v.strip()]
-    except ValueError:
-        raise ValueError(f"{flag} must be comma-separated numbers like 0.4,0.7,1.0, got {text!r}") from None
-    if not vals:
-        raise ValueError(f"{flag} must list at least one number, got {text!r}")
-    return vals
-
-
-def _ints(flag: str, text: str | None) -> list[int] | None:
-    if text is None:
-        return None
-    try:
-        return [int(v) for v in text.split(",") if v.strip()]
-    except ValueError:
-        raise ValueError(f"{flag} must be comma-separated integers like 8,16, got {text!r}") from None
-
 
 def add_arguments(p: argparse.ArgumentParser) -> None:
     src = p.add_argument_group("input (one of)")
@@ -80,20 +58,6 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--quiet", action="store_true", help="no progress bar")
 
 
-def _write_json_atomic(path: str, obj) -> None:
-    folder = os.path.dirname(os.path.abspath(path))
-    os.makedirs(folder, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=".plan-", suffix=".tmp", dir=folder)
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8") as fh:
-            json.dump(obj, fh, indent=1, allow_nan=False)
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
-
-
 def _prompts_and_verifier(args):
     """(prompt strings, verifier, verifier name for the cache key) for model mode."""
     from bonft.tasks import exact_match_verifier, get_task, load_prompts_jsonl
@@ -127,8 +91,8 @@ def _prompts_and_verifier(args):
 
 
 def _plan_kwargs(args) -> dict:
-    return dict(max_k=args.max_k, budget_samples=_ints("--budget-samples", args.budget_samples),
-                budget_tokens=_floats("--budget-tokens", args.budget_tokens), min_gain=args.min_gain)
+    return dict(max_k=args.max_k, budget_samples=parse_list("--budget-samples", args.budget_samples),
+                budget_tokens=parse_list("--budget-tokens", args.budget_tokens, float), min_gain=args.min_gain)
 
 
 def run(args) -> int:
@@ -138,7 +102,7 @@ def run(args) -> int:
     if len(given) != 1:
         raise ValueError(f"give exactly one of --samples, --model or --exact, got {len(given)}"
                          + (f" ({', '.join('--' + g for g in given)})" if given else ""))
-    temps = _floats("--temperatures", args.temperatures)
+    temps = parse_list("--temperatures", args.temperatures, float)
     info = None
     if args.samples:
         from bonft.samples import read_samples
@@ -177,7 +141,7 @@ def run(args) -> int:
 
         model, tokenizer = load_model(args.model, device=pick_device(args.device))
         prompts, verifier, vname = _prompts_and_verifier(args)
-        temps = temps or _floats("--temperatures", DEFAULT_TEMPERATURES)
+        temps = temps or parse_list("--temperatures", DEFAULT_TEMPERATURES, float)
         res, info = plan_model(model, tokenizer, prompts, verifier, temperatures=temps, n=args.n, seed=args.seed,
                                top_p=args.top_p, max_new_tokens=args.max_new_tokens, batch_size=args.batch_size,
                                cache_dir=args.cache, verifier_name=vname, progress=not args.quiet,
@@ -189,7 +153,7 @@ def run(args) -> int:
         out = res.to_dict()
         if info is not None:
             out["sampling"] = {k: info[k] for k in ("sampled", "cached", "failed", "files")}
-        _write_json_atomic(args.json, out)
+        write_json_atomic(args.json, out)
         print(f"wrote {args.json}")
     if args.plot_dir:
         for path in (res.plot_heatmap(os.path.join(args.plot_dir, "plan_heatmap.png")),

@@ -3,7 +3,8 @@ from __future__ import annotations
 
 import argparse
 
-from .evaluate import add_common, load_for_eval, parse_list
+from ._args import parse_list
+from .evaluate import add_common, load_for_eval
 
 HELP = "sample responses from a checkpoint and write a samples JSONL (input of bonft estimate / bonft plan)"
 DESCRIPTION = (
