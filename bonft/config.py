@@ -31,7 +31,7 @@ if sys.version_info >= (3, 11):
 else:  # pragma: no cover - Python 3.10
     import tomli as tomllib
 
-from ._checks import check_choice, check_int, check_positive
+from ._checks import check_choice, check_int
 
 # objective name in a recipe -> (loss family in bonft.losses, options); see docs/training.md
 OBJECTIVES = (

@@ -34,7 +34,7 @@ from __future__ import annotations
 import json
 import numbers
 from dataclasses import dataclass, field
-from typing import Any, Sequence
+from typing import Any
 
 import numpy as np
 

@@ -22,7 +22,6 @@ temperature, and ``Samples`` records it.
 from __future__ import annotations
 
 import inspect
-import numbers
 from dataclasses import dataclass
 from typing import Sequence
 
@@ -403,7 +402,6 @@ def sequence_logprobs(
     top_p = _check_top_p(top_p)
 
     B, n, T = response_ids.shape
-    Tp = prompt_ids.shape[1]
     ids = torch.cat([prompt_ids.repeat_interleave(n, 0), response_ids.reshape(B * n, T)], dim=1)  # (B*n, Tp+T)
     mask = torch.cat([prompt_mask.repeat_interleave(n, 0), response_mask.reshape(B * n, T)], dim=1)
     kwargs = {}

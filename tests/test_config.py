@@ -1,6 +1,5 @@
 """TrainConfig: validation messages, TOML round trip, --set overrides, the documented key table."""
 import dataclasses
-import re
 from pathlib import Path
 
 import pytest

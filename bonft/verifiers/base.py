@@ -19,7 +19,7 @@ can be gamed (length, formatting, keywords) will be gamed; check it with
 """
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import Any, Protocol, Sequence, runtime_checkable
 
 import numpy as np
