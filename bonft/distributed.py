@@ -326,15 +326,14 @@ def sample_per_prompt(model: Any, tokenizer: Any, prompts: Sequence[str], *, see
     """:func:`bonft.sampling.sample` with one generator per prompt: prompt b's n responses come from ``seeds[b]``.
 
     prompts: B strings, seeds: B ints (e.g. :func:`prompt_seed` of each prompt's
-    global slot) -> ``Samples`` with ``response_ids (B, n, T)``, prompts left-padded
-    to the longest and responses right-padded to the longest, as ``sample`` lays them out.
+    global slot) -> ``Samples`` with ``response_ids (B, n, T)``, as ``sample`` lays them out.
 
     A prompt's samples depend only on (model, prompt, seed), not on which other
-    prompts share the call, so W ranks holding different prompts draw exactly what
-    one process would. The price: prompts are decoded one at a time (n rows per
-    decoding loop instead of B*n).
+    prompts share the call, so W ranks holding different prompts draw what one
+    process would: all B*n rows are still decoded in one batch, each prompt's
+    uniforms come from its own generator (``sample(..., seeds=...)``).
     """
-    from .sampling import Samples, _special_ids, sample
+    from .sampling import sample
 
     if isinstance(prompts, str):
         raise TypeError("prompts must be a sequence of str, got a single str (wrap it in a list)")
@@ -344,22 +343,8 @@ def sample_per_prompt(model: Any, tokenizer: Any, prompts: Sequence[str], *, see
     seeds = [check_int("seeds", s, min=0) for s in seeds]
     if len(seeds) != len(prompts):
         raise ValueError(f"seeds must hold one seed per prompt ({len(prompts)} prompts), got {len(seeds)} seeds")
-    parts = [sample(model, tokenizer, [p], n=n, temperature=temperature, top_p=top_p, max_new_tokens=max_new_tokens,
-                    seed=s) for p, s in zip(prompts, seeds)]
-    B, Tp, T = len(parts), max(p.prompt_ids.shape[1] for p in parts), max(p.response_ids.shape[2] for p in parts)
-    first = parts[0]
-    pad = _special_ids(tokenizer)[0]
-    pids = first.prompt_ids.new_full((B, Tp), pad)
-    pmask = first.prompt_mask.new_zeros((B, Tp))
-    rids = first.response_ids.new_full((B, n, T), pad)
-    rmask = first.response_mask.new_zeros((B, n, T))
-    rlp = first.token_logprobs.new_zeros((B, n, T))
-    for b, p in enumerate(parts):  # (1, Tp_b) prompts go right-aligned (left padding); (1, n, T_b) responses left-aligned
-        tp, t = p.prompt_ids.shape[1], p.response_ids.shape[2]
-        pids[b, Tp - tp:], pmask[b, Tp - tp:] = p.prompt_ids[0], p.prompt_mask[0]
-        rids[b, :, :t], rmask[b, :, :t], rlp[b, :, :t] = p.response_ids[0], p.response_mask[0], p.token_logprobs[0]
-    return Samples(prompt_ids=pids, prompt_mask=pmask, response_ids=rids, response_mask=rmask, token_logprobs=rlp,
-                   texts=[p.texts[0] for p in parts], temperature=first.temperature, top_p=first.top_p)
+    return sample(model, tokenizer, prompts, n=n, temperature=temperature, top_p=top_p,
+                  max_new_tokens=max_new_tokens, seeds=seeds)
 
 
 # ----------------------------------------------------------------------------- model and collectives

@@ -173,7 +173,25 @@ def _cache_of(out):
 
 
 @torch.no_grad()
-def _sample_rows(model, ids, mask, *, temperature, top_p, max_new_tokens, pad_id, eos_id, generator):
+def _draw(logp: torch.Tensor, generator, generators, n: int) -> torch.Tensor:
+    """One token per row from (R, V) log-probs.
+
+    With ``generators`` (one per prompt, each owning ``n`` consecutive rows) the
+    draw is an inverse-CDF lookup of uniforms taken from each prompt's own
+    generator, so a prompt's samples do not depend on which prompts share the batch.
+    """
+    if generators is None:
+        return torch.multinomial(logp.exp(), 1, generator=generator).squeeze(-1)
+    probs = logp.exp()
+    cdf = probs.cumsum(-1)
+    cdf = cdf / cdf[:, -1:]  # last entry exactly 1
+    u = torch.cat([1.0 - torch.rand(n, generator=g, device=logp.device) for g in generators])  # (R,) in (0, 1]
+    idx = (cdf < u[:, None]).sum(-1)  # first token whose cumulative mass reaches u; zero-mass tokens never chosen
+    return idx.clamp(max=logp.shape[-1] - 1)
+
+
+def _sample_rows(model, ids, mask, *, temperature, top_p, max_new_tokens, pad_id, eos_id, generator,
+                 generators=None, n=1):
     """Decode one chunk of R rows. ids, mask: (R, Tp) -> tokens, gen_mask, logprobs: (R, t_max)."""
     R = ids.shape[0]
     cache_arg = _cache_arg(model)
@@ -184,7 +202,7 @@ def _sample_rows(model, ids, mask, *, temperature, top_p, max_new_tokens, pad_id
     toks, gmask, lps = [], [], []
     for _ in range(max_new_tokens):
         logp = _log_policy(logits, temperature, top_p)  # (R, V)
-        nxt = torch.multinomial(logp.exp(), 1, generator=generator).squeeze(-1)  # (R,)
+        nxt = _draw(logp, generator, generators, n)  # (R,)
         lp = logp.gather(-1, nxt[:, None]).squeeze(-1)
         live = ~done
         nxt = torch.where(live, nxt, torch.full_like(nxt, pad_id))
@@ -213,6 +231,7 @@ def sample(
     top_p: float = 1.0,
     max_new_tokens: int = 32,
     seed: int | None = None,
+    seeds: Sequence[int] | None = None,
     batch_size: int | None = None,
 ) -> Samples:
     """Draw ``n`` responses for each prompt from the temperature-``T`` policy.
@@ -235,7 +254,11 @@ def sample(
 
     ``seed``: an int makes the draw reproducible (same arguments, same device ->
     same samples) through a private ``torch.Generator``; ``None`` uses torch's
-    global RNG. The model is put in eval mode while sampling and restored after.
+    global RNG. ``seeds``: one int per prompt instead; prompt b's responses then
+    depend only on (model, prompt b, seeds[b]), not on the other prompts in the
+    call (up to float round-off of batched kernels), which lets ranks holding
+    different prompts draw what one process would. Chunks then hold whole
+    prompts. The model is put in eval mode while sampling and restored after.
     """
     _check_model(model)
     prompts = _check_prompts(prompts)
@@ -247,6 +270,12 @@ def sample(
         seed = check_int("seed", seed, min=0)
     if batch_size is not None:
         batch_size = check_int("batch_size", batch_size, min=1)
+    if seeds is not None:
+        if seed is not None:
+            raise ValueError("give seed or seeds, not both")
+        seeds = [check_int("seeds", v, min=0) for v in seeds]
+        if len(seeds) != len(prompts):
+            raise ValueError(f"seeds must hold one seed per prompt ({len(prompts)} prompts), got {len(seeds)} seeds")
 
     pad_id, eos_id = _special_ids(tokenizer)
     rows = [list(tokenizer(p)["input_ids"]) for p in prompts]
@@ -266,10 +295,15 @@ def sample(
     ids = prompt_ids.repeat_interleave(n, dim=0).to(device)  # (B*n, Tp): row b*n + j is sample j of prompt b
     mask = prompt_mask.repeat_interleave(n, dim=0).to(device)
     chunk = batch_size or B * n
-    generator = None
+    generator, generators = None, None
     if seed is not None:
         generator = torch.Generator(device=device)
         generator.manual_seed(seed)
+    if seeds is not None:
+        chunk = n * max(1, chunk // n)  # whole prompts per chunk
+        generators = [torch.Generator(device=device) for _ in seeds]
+        for g, v in zip(generators, seeds):
+            g.manual_seed(v)
 
     was_training = getattr(model, "training", False)
     if hasattr(model, "eval"):
@@ -280,6 +314,7 @@ def sample(
             parts.append(_sample_rows(
                 model, ids[s:s + chunk], mask[s:s + chunk], temperature=temperature, top_p=top_p,
                 max_new_tokens=max_new_tokens, pad_id=pad_id, eos_id=eos_id, generator=generator,
+                generators=None if generators is None else generators[s // n:(s + chunk) // n], n=n,
             ))
     finally:
         if was_training and hasattr(model, "train"):

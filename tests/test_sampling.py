@@ -326,3 +326,36 @@ def test_bad_input():
         sequence_logprobs(model, ids, ids, r.float(), r)
     with pytest.raises(ValueError, match=r"response_ids must have B=2 rows like prompt_ids, got 1"):
         sequence_logprobs(model, ids, ids, r[:1], r[:1])
+
+
+@pytest.mark.parametrize("top_p", [1.0, 0.8])
+def test_per_prompt_seeds_draw_the_exact_law(top_p):
+    # the inverse-CDF draw of sample(..., seeds=...) against the exact (top-p renormalised) softmax
+    probs = np.array([0.5, 0.25, 0.15, 0.07, 0.03])
+    toks = [CH[c] for c in "vwxyz"]
+    model = TableLM(_table({BOS_ID: dict(zip(toks, np.log(probs)))}))
+    s = sample(model, TOK, ["", ""], n=3000, top_p=top_p, max_new_tokens=1, seeds=[1, 2])
+    first = s.response_ids[:, :, 0].reshape(-1).numpy()
+    counts = np.array([(first == t).sum() for t in toks])
+    keep = 3 if top_p < 1 else 5  # Holtzman et al. 2020 nucleus, as in test_top_p_truncates_and_renormalises
+    assert counts.sum() == 6000 and counts[keep:].sum() == 0
+    q = probs[:keep] / probs[:keep].sum()
+    assert stats.chisquare(counts[:keep], 6000 * q).pvalue > 1e-3  # scipy chi-square
+
+
+@pytest.mark.parametrize("arch", ["gpt2", "llama"])
+def test_per_prompt_seeds_do_not_depend_on_the_batch(arch):
+    # a prompt's samples depend only on its own seed: alone, in a batch, in another order, in chunks
+    model = _tiny(arch)
+    full = sample(model, TOK, PROMPTS, n=4, max_new_tokens=8, seeds=[10, 11, 12])
+    for b, p in enumerate(PROMPTS):
+        alone = sample(model, TOK, [p], n=4, max_new_tokens=8, seeds=[10 + b])
+        assert alone.texts[0] == full.texts[b]
+    rev = sample(model, TOK, PROMPTS[::-1], n=4, max_new_tokens=8, seeds=[12, 11, 10], batch_size=5)
+    assert rev.texts[::-1] == full.texts
+    other = sample(model, TOK, PROMPTS, n=4, max_new_tokens=8, seeds=[10, 11, 99])
+    assert other.texts[:2] == full.texts[:2] and other.texts[2] != full.texts[2]
+    with pytest.raises(ValueError, match=r"seeds must hold one seed per prompt \(3 prompts\), got 2 seeds"):
+        sample(model, TOK, PROMPTS, n=4, seeds=[1, 2])
+    with pytest.raises(ValueError, match="give seed or seeds, not both"):
+        sample(model, TOK, PROMPTS, n=4, seed=1, seeds=[1, 2, 3])
