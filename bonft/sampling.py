@@ -190,13 +190,49 @@ def _draw(logp: torch.Tensor, generator, generators, n: int) -> torch.Tensor:
     return idx.clamp(max=logp.shape[-1] - 1)
 
 
+def _prompt_pass(model, ids, mask, n, *, grad=False):
+    """Run P distinct prompts once and expand to P*n rows: ids, mask (P, Tp) -> (cache, last logits (P*n, V)).
+
+    The KV cache of each prompt is copied to its n rows (``batch_repeat_interleave``,
+    differentiable) instead of running the prompt n times. Models whose cache
+    cannot be expanded get the plain repeated pass.
+    """
+    kwargs = {"logits_to_keep": 1} if _accepts(model, "logits_to_keep") else {}
+    out = model(input_ids=ids, attention_mask=mask, position_ids=_positions(mask), use_cache=True, **kwargs)
+    past = _repeat_cache(_cache_of(out), n)
+    if past is not _NO_CACHE:
+        return past, out.logits[:, -1, :].repeat_interleave(n, 0)
+    # a cache we cannot expand: repeat the prompt rows instead
+    rep_ids, rep_mask = ids.repeat_interleave(n, 0), mask.repeat_interleave(n, 0)
+    out = model(input_ids=rep_ids, attention_mask=rep_mask, position_ids=_positions(rep_mask), use_cache=True)
+    return _cache_of(out), out.logits[:, -1, :]
+
+
+_NO_CACHE = object()
+
+
+def _repeat_cache(past, n):
+    """Copy each batch row of a KV cache n times (transformers Cache objects, legacy tuples of tensors)."""
+    if n == 1:
+        return past
+    if hasattr(past, "batch_repeat_interleave"):
+        past.batch_repeat_interleave(n)
+        return past
+    if torch.is_tensor(past):
+        return past.repeat_interleave(n, 0)
+    if isinstance(past, (tuple, list)):
+        parts = [_repeat_cache(x, n) for x in past]
+        return _NO_CACHE if any(x is _NO_CACHE for x in parts) else type(past)(parts)
+    return _NO_CACHE
+
+
 def _sample_rows(model, ids, mask, *, temperature, top_p, max_new_tokens, pad_id, eos_id, generator,
                  generators=None, n=1):
-    """Decode one chunk of R rows. ids, mask: (R, Tp) -> tokens, gen_mask, logprobs: (R, t_max)."""
-    R = ids.shape[0]
+    """Decode n samples of each of P prompts. ids, mask: (P, Tp) -> tokens, gen_mask, logprobs: (P*n, t_max)."""
     cache_arg = _cache_arg(model)
-    out = model(input_ids=ids, attention_mask=mask, position_ids=_positions(mask), use_cache=True)
-    past, logits = _cache_of(out), out.logits[:, -1, :]
+    past, logits = _prompt_pass(model, ids, mask, n)  # logits (R, V), R = P*n rows: row p*n + j is sample j of prompt p
+    mask = mask.repeat_interleave(n, 0)  # (R, Tp)
+    R = mask.shape[0]
     pos = _positions(mask)[:, -1]  # (R,) position of each row's last prompt token
     done = torch.zeros(R, dtype=torch.bool, device=ids.device)
     toks, gmask, lps = [], [], []
@@ -241,7 +277,8 @@ def sample(
     ``pi_T(y_t | x, y_<t) = softmax(logits_t / T)`` (restricted to the top-p
     nucleus and renormalised when ``top_p < 1``). Each prompt is repeated n
     times and the ``B * n`` rows are decoded ``batch_size`` rows at a time
-    (default: all at once) with the model's KV cache. A row stops at EOS;
+    (default: all at once; rounded down to whole prompts, at least one) with the
+    model's KV cache; each prompt is run once and its cache copied to its n rows. A row stops at EOS;
     afterwards it gets the pad id, mask 0 and log-prob 0. Prompts are
     tokenized with the tokenizer's own special tokens and left-padded; the
     attention mask and position ids (counted from each row's first real
@@ -292,15 +329,13 @@ def sample(
     device = _model_device(model)
     prompt_ids, prompt_mask = _left_pad(rows, pad_id)
     B, Tp = prompt_ids.shape
-    ids = prompt_ids.repeat_interleave(n, dim=0).to(device)  # (B*n, Tp): row b*n + j is sample j of prompt b
-    mask = prompt_mask.repeat_interleave(n, dim=0).to(device)
-    chunk = batch_size or B * n
+    ids, mask = prompt_ids.to(device), prompt_mask.to(device)  # (B, Tp); each is expanded to n rows when decoded
+    chunk = n * max(1, (batch_size or B * n) // n)  # rows per decoding chunk, whole prompts
     generator, generators = None, None
     if seed is not None:
         generator = torch.Generator(device=device)
         generator.manual_seed(seed)
     if seeds is not None:
-        chunk = n * max(1, chunk // n)  # whole prompts per chunk
         generators = [torch.Generator(device=device) for _ in seeds]
         for g, v in zip(generators, seeds):
             g.manual_seed(v)
@@ -312,7 +347,7 @@ def sample(
         parts = []
         for s in range(0, B * n, chunk):
             parts.append(_sample_rows(
-                model, ids[s:s + chunk], mask[s:s + chunk], temperature=temperature, top_p=top_p,
+                model, ids[s // n:(s + chunk) // n], mask[s // n:(s + chunk) // n], temperature=temperature, top_p=top_p,
                 max_new_tokens=max_new_tokens, pad_id=pad_id, eos_id=eos_id, generator=generator,
                 generators=None if generators is None else generators[s // n:(s + chunk) // n], n=n,
             ))
@@ -414,9 +449,10 @@ def sequence_logprobs(
 
     ``out[b, j, t] = log softmax(logits / T)[response_ids[b, j, t]]`` given the
     prompt and the earlier response tokens, 0 where ``response_mask`` is 0.
-    One forward pass over the ``B * n`` rows ``[prompt_b ; response_bj]``
-    (each prompt repeated n times), position ids counted from the first real
-    token, so left padding of prompts and right padding of responses change
+    Each prompt runs once; its KV cache is copied to its n rows and the
+    ``B * n`` responses run on top of it (models without an expandable cache
+    get one pass over ``[prompt_b ; response_bj]`` rows). Position ids count
+    from the first real token, so left padding of prompts and right padding of responses change
     nothing. With the ``temperature`` (and ``top_p``) used by :func:`sample`
     this reproduces ``Samples.token_logprobs`` to float32 round-off; use the
     sampling temperature for unbiased score-function gradients (Chow et al. 2024).
@@ -437,13 +473,20 @@ def sequence_logprobs(
     top_p = _check_top_p(top_p)
 
     B, n, T = response_ids.shape
-    ids = torch.cat([prompt_ids.repeat_interleave(n, 0), response_ids.reshape(B * n, T)], dim=1)  # (B*n, Tp+T)
-    mask = torch.cat([prompt_mask.repeat_interleave(n, 0), response_mask.reshape(B * n, T)], dim=1)
-    kwargs = {}
-    if _accepts(model, "logits_to_keep"):
-        kwargs["logits_to_keep"] = T + 1  # only the positions that predict response tokens (+ the last)
-    logits = model(input_ids=ids, attention_mask=mask, position_ids=_positions(mask), **kwargs).logits
-    logits = logits[:, -(T + 1):-1, :]  # (B*n, T, V): position Tp-1+t predicts response token t
+    resp = response_ids.reshape(B * n, T)  # (B, n, T) -> (B*n, T): row b*n + j is response j of prompt b
+    mask = torch.cat([prompt_mask.repeat_interleave(n, 0), response_mask.reshape(B * n, T)], dim=1)  # (B*n, Tp+T)
+    past, first = _prompt_pass(model, prompt_ids, prompt_mask, n)  # first (B*n, V) predicts response token 0
+    if past is not None:
+        # the prompt ran once per prompt; the responses attend to its copied cache
+        pos = _positions(prompt_mask)[:, -1:].repeat_interleave(n, 0) + 1 + torch.arange(T, device=resp.device)
+        out = model(input_ids=resp, attention_mask=mask, position_ids=pos, use_cache=True,
+                    **{_cache_arg(model): past})
+        logits = torch.cat([first[:, None, :], out.logits[:, :-1, :]], dim=1)  # (B*n, T, V): token t given < t
+    else:
+        ids = torch.cat([prompt_ids.repeat_interleave(n, 0), resp], dim=1)  # (B*n, Tp+T)
+        kwargs = {"logits_to_keep": T + 1} if _accepts(model, "logits_to_keep") else {}
+        logits = model(input_ids=ids, attention_mask=mask, position_ids=_positions(mask), **kwargs).logits
+        logits = logits[:, -(T + 1):-1, :]  # (B*n, T, V): position Tp-1+t predicts response token t
     logp = _log_policy(logits, temperature, top_p)
     tok = logp.gather(-1, response_ids.reshape(B * n, T, 1)).squeeze(-1)  # (B*n, T)
     tok = tok.masked_fill(response_mask.reshape(B * n, T) == 0, 0.0)

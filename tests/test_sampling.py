@@ -359,3 +359,24 @@ def test_per_prompt_seeds_do_not_depend_on_the_batch(arch):
         sample(model, TOK, PROMPTS, n=4, seeds=[1, 2])
     with pytest.raises(ValueError, match="give seed or seeds, not both"):
         sample(model, TOK, PROMPTS, n=4, seed=1, seeds=[1, 2, 3])
+
+
+@pytest.mark.parametrize("arch", ["gpt2", "llama"])
+def test_shared_prompt_pass_equals_the_plain_forward_with_gradients(arch):
+    # reference: one plain forward over [prompt ; response] rows (each prompt repeated n times),
+    # the definition of the log-probs; the shared-prefix path must match it, gradients included
+    model = _tiny(arch)
+    s = sample(model, TOK, PROMPTS, n=4, max_new_tokens=6, seed=1)
+    lp = sequence_logprobs(model, s.prompt_ids, s.prompt_mask, s.response_ids, s.response_mask)
+    g = torch.autograd.grad(lp.sum(), list(model.parameters()))
+    B, n, T = s.response_ids.shape
+    ids = torch.cat([s.prompt_ids.repeat_interleave(n, 0), s.response_ids.reshape(B * n, T)], 1)
+    mask = torch.cat([s.prompt_mask.repeat_interleave(n, 0), s.response_mask.reshape(B * n, T)], 1)
+    pos = (mask.cumsum(-1) - 1).clamp(min=0)
+    logits = model(input_ids=ids, attention_mask=mask, position_ids=pos).logits[:, -(T + 1):-1]
+    ref = torch.log_softmax(logits, -1).gather(-1, s.response_ids.reshape(B * n, T, 1)).squeeze(-1)
+    ref = ref.masked_fill(s.response_mask.reshape(B * n, T) == 0, 0.0).view(B, n, T)
+    g_ref = torch.autograd.grad(ref.sum(), list(model.parameters()))
+    torch.testing.assert_close(lp, ref, atol=1e-5, rtol=0)
+    for a, b in zip(g, g_ref):
+        torch.testing.assert_close(a, b, atol=1e-4, rtol=1e-4)
