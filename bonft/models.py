@@ -112,8 +112,9 @@ def _model_dirs(path: Path) -> tuple[Path, Path]:
 def load_model(path: str | os.PathLike, *, device: str | torch.device | None = None):
     """``(model, tokenizer)`` from a local directory; never downloads.
 
-    ``path`` is either a bonft checkpoint (``path/model`` and ``path/tokenizer``
-    sub-directories, see :func:`save_model`) or a directory written by
+    ``path`` is a bonft checkpoint (``path/model`` and ``path/tokenizer``
+    sub-directories, see :func:`save_model`), a training run directory (its
+    newest ``checkpoints/step-*``), or a directory written by
     ``save_pretrained`` holding both the model and its tokenizer.
     ``device``: ``None`` -> :func:`pick_device` ``("auto")``. The model is returned in eval mode.
     """
@@ -122,6 +123,10 @@ def load_model(path: str | os.PathLike, *, device: str | torch.device | None = N
     path = Path(path)
     if not path.is_dir():
         raise FileNotFoundError(f"path must be a model or checkpoint directory, got {str(path)!r} (not a directory)")
+    if not (path / "config.json").is_file() and not (path / "model").is_dir() and (path / "checkpoints").is_dir():
+        from .checkpoint import resolve_checkpoint  # a training run directory: its newest checkpoint
+
+        path = resolve_checkpoint(path)
     model_dir, tok_dir = _model_dirs(path)
     if not (model_dir / "config.json").is_file():
         raise FileNotFoundError(f"no config.json in {str(model_dir)!r}: path must be a transformers model directory or a bonft checkpoint")

@@ -113,3 +113,18 @@ def test_bad_input(tmp_path):
         load_model(tmp_path / "missing")
     with pytest.raises(FileNotFoundError, match=r"no config.json"):
         load_model(tmp_path)
+
+
+def test_load_model_accepts_a_run_directory(tmp_path):
+    # a training run directory resolves to its newest checkpoints/step-* (the layout bonft train writes)
+    old = build_tiny_model("gpt2", vocab_size=V, n_layer=1, d_model=32, n_head=2, seed=3)
+    new = build_tiny_model("gpt2", vocab_size=V, n_layer=1, d_model=32, n_head=2, seed=4)
+    for step, m in ((2, old), (10, new)):
+        ckpt = save_model(m, TOK, tmp_path / "run" / "checkpoints" / f"step-{step:08d}")
+        (ckpt / "state.pt").write_bytes(b"")  # the trainer's mark of a complete checkpoint
+    m, _ = load_model(tmp_path / "run", device="cpu")
+    sm, sn = m.state_dict(), new.state_dict()
+    assert all(torch.equal(sm[k], sn[k]) for k in sn)
+    with pytest.raises(FileNotFoundError, match="no checkpoint in"):
+        (tmp_path / "empty" / "checkpoints").mkdir(parents=True)
+        load_model(tmp_path / "empty", device="cpu")
