@@ -11,7 +11,7 @@ from typing import Any
 import numpy as np
 import torch
 
-from bonft._checks import check_finite, check_nonempty, is_tensor
+from bonft._checks import as_float_array, check_finite, check_nonempty, is_tensor
 
 
 def _as_tensor(name: str, x: Any, *, ndim: int) -> torch.Tensor:
@@ -24,13 +24,7 @@ def _as_tensor(name: str, x: Any, *, ndim: int) -> torch.Tensor:
             raise TypeError(f"{name} must hold real numbers, got dtype {t.dtype}")
         t = t.to(torch.float64)
     else:
-        if isinstance(x, (str, bytes)) or x is None:
-            raise TypeError(f"{name} must be an array of numbers, got {type(x).__name__}")
-        try:
-            arr = np.asarray(x, dtype=np.float64)
-        except (TypeError, ValueError):
-            raise TypeError(f"{name} must be an array of numbers, got {type(x).__name__}") from None
-        t = torch.from_numpy(arr)
+        t = torch.from_numpy(as_float_array(name, x))
     if t.ndim != ndim:
         want = "(B, n)" if ndim == 2 else "(B,)"
         raise ValueError(f"{name} must have shape {want} ({ndim} dimension(s)), got shape {tuple(t.shape)}")
