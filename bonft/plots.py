@@ -27,10 +27,16 @@ def plot_evaluations(evals: Sequence[dict], path: str | Path, *, title: str = ""
         _band(ax1, ev["ks"], ev["pass_at_k"], f"step {ev['step']}")
         for name, c in ev["best_of_k"].items():
             _band(ax2, ev["ks"], c, f"step {ev['step']} ({name})")
-    for ax, what in ((ax1, "pass@k (true reward)"), (ax2, "best-of-k, verifier-selected")):
+    ax1.set_ylabel("pass@k (true reward)")
+    ax2.set_ylabel("best-of-k, verifier-selected")
+    return _finish(plt, fig, (ax1, ax2), path, title)
+
+
+def _finish(plt, fig, axes, path, title) -> Path:
+    """Shared styling of the k axes (log2, [0, 1]), then save and close."""
+    for ax in axes:
         ax.set_xscale("log", base=2)
         ax.set_xlabel("k")
-        ax.set_ylabel(what)
         ax.set_ylim(0, 1)
         ax.grid(alpha=0.3)
         if ax.lines:
@@ -51,15 +57,4 @@ def plot_comparison(results: dict[str, dict], path: str | Path, *, title: str = 
             _band(ax2, ev["ks"], ev["best_of_k"]["proxy"], name)
     ax1.set_ylabel("pass@k (true reward)")
     ax2.set_ylabel("best-of-k, proxy picks (true reward)")
-    for ax in (ax1, ax2):
-        ax.set_xscale("log", base=2)
-        ax.set_xlabel("k")
-        ax.set_ylim(0, 1)
-        ax.grid(alpha=0.3)
-        if ax.lines:
-            ax.legend(fontsize=8)
-    fig.suptitle(title)
-    fig.tight_layout()
-    fig.savefig(path, dpi=110)
-    plt.close(fig)
-    return Path(path)
+    return _finish(plt, fig, (ax1, ax2), path, title)

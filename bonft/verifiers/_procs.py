@@ -7,36 +7,30 @@ import subprocess
 import sys
 
 
-def user_tasks(uid: int) -> int:
-    """Number of tasks (threads) owned by ``uid``, what RLIMIT_NPROC counts."""
-    total = 0
+def _statuses():
+    """(pid, fields of /proc/PID/status) for every process still readable."""
     for pid in os.listdir("/proc"):
         if not pid.isdigit():
             continue
         try:
             with open(f"/proc/{pid}/status") as f:
-                fields = dict(line.split(":", 1) for line in f if ":" in line)
+                yield int(pid), dict(line.split(":", 1) for line in f if ":" in line)
         except OSError:
             continue
-        if int(fields.get("Uid", "-1").split()[0]) == uid:
-            total += int(fields.get("Threads", "1"))
-    return total
+
+
+def _uid(fields) -> int:
+    return int(fields.get("Uid", "-1").split()[0])
+
+
+def user_tasks(uid: int) -> int:
+    """Number of tasks (threads) owned by ``uid``, what RLIMIT_NPROC counts."""
+    return sum(int(f.get("Threads", "1")) for _, f in _statuses() if _uid(f) == uid)
 
 
 def pids_of(uid: int) -> list[int]:
     """Live (non-zombie) processes whose real uid is ``uid``."""
-    out = []
-    for pid in os.listdir("/proc"):
-        if not pid.isdigit():
-            continue
-        try:
-            with open(f"/proc/{pid}/status") as f:
-                fields = dict(line.split(":", 1) for line in f if ":" in line)
-        except OSError:
-            continue
-        if int(fields.get("Uid", "-1").split()[0]) == uid and not fields.get("State", "").strip().startswith("Z"):
-            out.append(int(pid))
-    return out
+    return [pid for pid, f in _statuses() if _uid(f) == uid and not f.get("State", "").strip().startswith("Z")]
 
 
 def kill_uid(uid: int) -> None:
