@@ -226,6 +226,7 @@ def _repeat_cache(past, n):
     return _NO_CACHE
 
 
+@torch.no_grad()  # sampling never builds a graph; training log-probs come from sequence_logprobs
 def _sample_rows(model, ids, mask, *, temperature, top_p, max_new_tokens, pad_id, eos_id, generator,
                  generators=None, n=1):
     """Decode n samples of each of P prompts. ids, mask: (P, Tp) -> tokens, gen_mask, logprobs: (P*n, t_max)."""
@@ -284,6 +285,7 @@ def sample(
     attention mask and position ids (counted from each row's first real
     token) make padding invisible to the model.
 
+    Decoding runs under ``torch.no_grad``: the result holds no autograd graph.
     ``token_logprobs`` are log pi_T at the *sampling* temperature: the policy
     that drew the samples. Use them (or :func:`sequence_logprobs` at the same
     ``temperature``) in score-function gradients; otherwise the estimate of

@@ -293,6 +293,18 @@ def test_training_mode_is_restored():
     assert model.training
 
 
+def test_sampling_builds_no_graph_with_grad_enabled():
+    # issue 11: with autograd on, the returned log-probs must carry no graph (a graph would keep every
+    # decoding step's KV cache alive); training log-probs come from sequence_logprobs instead.
+    model = _tiny("gpt2")
+    assert torch.is_grad_enabled()
+    s = sample(model, TOK, ["a", "bb"], n=3, max_new_tokens=4, seed=0)
+    assert not s.token_logprobs.requires_grad and s.token_logprobs.grad_fn is None
+    lp = sequence_logprobs(model, s.prompt_ids, s.prompt_mask, s.response_ids, s.response_mask)
+    assert lp.requires_grad  # the training forward still has its gradient
+    assert torch.allclose(lp.detach(), s.token_logprobs, atol=1e-5)
+
+
 # ------------------------------------------------------------ bad input
 
 
