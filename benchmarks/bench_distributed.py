@@ -31,11 +31,11 @@ def worker(args: argparse.Namespace) -> None:
     import torch
 
     torch.set_num_threads(1)
-    from bonft.distributed import (global_mean_scale, init_from_env, prompt_seed, reduce_metrics, sample_per_prompt,
+    from bonft.trainer.distributed import (global_mean_scale, init_from_env, prompt_seed, reduce_metrics, sample_per_prompt,
                                    shard_bounds, shutdown, unwrap_model, wrap_model)
     from bonft.losses import reinforce_loss
-    from bonft.models import build_tiny_model
-    from bonft.sampling import sequence_logprobs
+    from bonft.trainer.models import build_tiny_model
+    from bonft.trainer.generation import sequence_logprobs
     from bonft.tasks import build_tokenizer
 
     ctx = init_from_env(device="cpu", timeout_s=120)

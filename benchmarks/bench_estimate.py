@@ -18,7 +18,7 @@ import time
 import numpy as np
 
 from bonft.estimate import bon_at_k_per_prompt, summarize
-from bonft.samples import group_pools, read_samples, write_samples
+from bonft.io import group_pools, read_samples, write_samples
 
 
 def best_of(fn, repeats: int) -> tuple[float, float]:

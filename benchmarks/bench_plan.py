@@ -7,7 +7,7 @@ bon_at_k_per_prompt calls timed alone); and as a baseline one np.sort of all the
 scores (the floor any exact best-of-k estimator pays). Goal: table + plots in
 under 5 s after loading, on a 2-core machine.
 
-Data: the simulated ledger-puzzle scenario of bonft.examples, at 8 temperatures.
+Data: the simulated ledger-puzzle scenario of bonft.tasks.examples, at 8 temperatures.
 Run: python benchmarks/bench_plan.py [--prompts 500 --samples 256]
 """
 from __future__ import annotations
@@ -30,9 +30,9 @@ def main() -> int:
     args = ap.parse_args()
 
     from bonft.estimate import bon_at_k_per_prompt
-    from bonft.examples import ledger_rows
+    from bonft.tasks.examples import ledger_rows
     from bonft.plan import plan_samples
-    from bonft.samples import group_pools, read_samples, write_samples
+    from bonft.io import group_pools, read_samples, write_samples
 
     with tempfile.TemporaryDirectory() as tmp:
         path = os.path.join(tmp, "samples.jsonl")

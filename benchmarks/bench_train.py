@@ -11,9 +11,9 @@ import time
 
 import torch
 
-from bonft.config import from_dict
-from bonft.sampling import sample
-from bonft.train import _make_optimizer, build_run, rl_step
+from bonft.trainer.config import from_dict
+from bonft.trainer.generation import sample
+from bonft.trainer.loop import _make_optimizer, build_run, rl_step
 
 
 def main() -> None:

@@ -59,7 +59,6 @@ __all__ = [
     "summarize",
     "default_ks",
     "CurveSummary",
-    "plot_curves",
 ]
 
 
@@ -409,54 +408,6 @@ class CurveSummary:
         d["per_prompt_oracle"] = np.asarray(self.per_prompt_oracle, dtype=float).tolist()
         json.dumps(d, allow_nan=False)  # refuses NaN instead of writing it
         return d
-
-    def plot(self, path, *, title: str | None = None) -> str:
-        """Write a PNG of both curves with their intervals against k (log2 axis); returns the path."""
-        return plot_curves({"": self}, path, title=title)
-
-
-def plot_curves(curves: dict, path, *, title: str | None = None) -> str:
-    """One PNG with the best-of-k and oracle curves of each labelled :class:`CurveSummary`.
-
-    curves: {label: CurveSummary} (e.g. one per temperature); a label prefixes the legend entries.
-    """
-    if not isinstance(curves, dict) or not curves:
-        raise TypeError(f"curves must be a non-empty dict of label -> CurveSummary, got {type(curves).__name__}")
-    for label, c in curves.items():
-        if not isinstance(c, CurveSummary):
-            raise TypeError(f"curves[{label!r}] must be a CurveSummary, got {type(c).__name__}")
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
-
-    path = str(path)
-    fig, ax = plt.subplots(figsize=(6.4, 4.2))
-    for j, (label, c) in enumerate(curves.items()):
-        ks = np.asarray(c.ks)
-        pre = f"{label}: " if label else ""
-        color = f"C{j}"
-        for mean, lo, hi, what, style in (
-            (c.oracle_mean, c.oracle_lo, c.oracle_hi, "oracle (best true reward among k)", "--"),
-            (c.bon_mean, c.bon_lo, c.bon_hi, "best-of-k (verifier picks)", "-"),
-        ):
-            ax.plot(ks, mean, style, marker="o", color=color, label=pre + what)
-            ax.fill_between(ks, lo, hi, color=color, alpha=0.15)
-    if max(len(c.ks) for c in curves.values()) > 1:
-        ax.set_xscale("log", base=2)
-        ticks = sorted({int(k) for c in curves.values() for k in c.ks})
-        ax.set_xticks(ticks, [str(k) for k in ticks])
-        ax.minorticks_off()
-    first = next(iter(curves.values()))
-    ax.set_xlabel("k (samples drawn)")
-    ax.set_ylabel("expected reward")
-    ax.set_title(title or f"{first.n_prompts} prompts, {100 * first.confidence:g}% bootstrap CI")
-    ax.grid(alpha=0.3)
-    ax.legend(fontsize=8)
-    fig.tight_layout()
-    fig.savefig(path, dpi=100)
-    plt.close(fig)
-    return path
 
 
 def summarize(scores, rewards, ks=None, *, confidence: float = 0.95, n_boot: int = 2000, seed: int = 0) -> CurveSummary:

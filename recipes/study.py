@@ -8,7 +8,7 @@ Writes runs/study/study.md, a markdown table of pass@k means over seeds with
 """
 import sys
 
-from bonft.demo import DemoConfig, run_study
+from bonft.trainer.demo import DemoConfig, run_study
 
 if __name__ == "__main__":
     run_study(DemoConfig(out_dir=sys.argv[1] if len(sys.argv) > 1 else "runs/study"), seeds=(0, 1, 2))

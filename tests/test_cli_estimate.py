@@ -7,7 +7,7 @@ from collections import defaultdict
 import pytest
 
 from bonft.cli import main
-from bonft.examples import example_samples_path
+from bonft.tasks.examples import example_samples_path
 
 
 def chen_pass_at_k(n, c, k):

@@ -14,10 +14,10 @@ from collections import defaultdict
 import numpy as np
 import pytest
 
-import bonft.sampling
+import bonft.trainer.generation
 from bonft.cli import main
-from bonft.examples import ledger_rows
-from bonft.samples import write_samples
+from bonft.tasks.examples import ledger_rows
+from bonft.io import write_samples
 
 
 @pytest.fixture()
@@ -94,7 +94,7 @@ def test_plan_command_exact_file(tmp_path, capsys):
 
 
 def test_plan_command_model_mode_reuses_cache(tmp_path, monkeypatch, capsys):
-    from bonft.models import build_tiny_model, save_model
+    from bonft.trainer.models import build_tiny_model, save_model
     from bonft.tasks import build_tokenizer
 
     tok = build_tokenizer()
@@ -102,13 +102,13 @@ def test_plan_command_model_mode_reuses_cache(tmp_path, monkeypatch, capsys):
                              eos_token_id=tok.eos_token_id, bos_token_id=tok.bos_token_id, seed=1)
     save_model(model, tok, tmp_path / "ckpt")
     calls = []
-    real = bonft.sampling.sample
+    real = bonft.trainer.generation.sample
 
     def counting(*a, **kw):
         calls.append(kw["temperature"])
         return real(*a, **kw)
 
-    monkeypatch.setattr(bonft.sampling, "sample", counting)
+    monkeypatch.setattr(bonft.trainer.generation, "sample", counting)
     common = ["plan", "--model", str(tmp_path / "ckpt"), "--task", "ledger", "--n-prompts", "5", "--n", "3",
               "--max-new-tokens", "4", "--boot", "100", "--cache", str(tmp_path / "cache"), "--quiet"]
     assert main(common + ["--temperatures", "0.7,1.0", "--json", str(tmp_path / "a.json")]) == 0

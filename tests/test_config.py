@@ -4,7 +4,7 @@ from pathlib import Path
 
 import pytest
 
-from bonft.config import TrainConfig, apply_overrides, config_reference, from_dict, load_config, to_toml
+from bonft.trainer.config import TrainConfig, apply_overrides, config_reference, from_dict, load_config, to_toml
 
 BASE = {"rl_steps": 2}
 
@@ -80,7 +80,7 @@ def test_every_field_documented_in_docs():
     missing = [f.name for f in dataclasses.fields(TrainConfig) if f"`{f.name}`" not in doc]
     assert missing == []
     assert all(f.metadata.get("help") for f in dataclasses.fields(TrainConfig))
-    # the table in the doc is the generated one (regenerate with python -m bonft.config)
+    # the table in the doc is the generated one (regenerate with python -m bonft.trainer.config)
     assert config_reference() in doc
 
 

@@ -1,4 +1,4 @@
-"""bonft.distributed: prompt sharding, the global loss constant, seeds, and real gloo process groups on 127.0.0.1.
+"""bonft.trainer.distributed: prompt sharding, the global loss constant, seeds, and real gloo process groups on 127.0.0.1.
 
 Multi-process tests start their own ranks with subprocess (RANK / WORLD_SIZE /
 MASTER_ADDR=127.0.0.1 / a free MASTER_PORT), so nothing listens beyond the
@@ -22,7 +22,7 @@ import torch.distributed as dist
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from bonft.distributed import (DistContext, PeerError, all_gather_objects, barrier, broadcast_object, derive_seed,
+from bonft.trainer.distributed import (DistContext, PeerError, all_gather_objects, barrier, broadcast_object, derive_seed,
                                gather_objects, global_mean_scale, init_from_env, prompt_seed, reduce_metrics,
                                shard_bounds, shard_prompts, shutdown, unwrap_model, wrap_model)
 from bonft.losses import reinforce_loss
@@ -326,7 +326,7 @@ def test_a_rank_whose_peers_never_come_fails_after_the_timeout():
 # ----------------------------------------------------------------------------- sampling by prompt slot
 @pytest.fixture(scope="module")
 def tiny_lm():
-    from bonft.models import build_tiny_model
+    from bonft.trainer.models import build_tiny_model
     from bonft.tasks import build_tokenizer
 
     tok = build_tokenizer()
@@ -336,8 +336,8 @@ def tiny_lm():
 
 
 def test_a_prompts_samples_do_not_depend_on_the_other_prompts_in_the_call(tiny_lm):
-    from bonft.distributed import sample_per_prompt
-    from bonft.sampling import sequence_logprobs
+    from bonft.trainer.distributed import sample_per_prompt
+    from bonft.trainer.generation import sequence_logprobs
 
     model, tok = tiny_lm
     prompts = ["a+b=", "long prompt 12+30=", "x"]
@@ -382,8 +382,8 @@ def test_two_trainer_processes_end_with_the_one_process_weights(tmp_path, monkey
 
     from safetensors.torch import load_file
 
-    from bonft.config import from_dict
-    from bonft.train import train
+    from bonft.trainer.config import from_dict
+    from bonft.trainer.loop import train
 
     monkeypatch.syspath_prepend(str(SCRIPTS))  # the toy verifier module, here and in the ranks
     monkeypatch.setenv("PYTHONPATH", os.pathsep.join([str(SCRIPTS), os.environ.get("PYTHONPATH", "")]))

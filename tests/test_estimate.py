@@ -20,9 +20,9 @@ from bonft.estimate import (
     default_ks,
     oracle_at_k_per_prompt,
     pass_at_k,
-    plot_curves,
     summarize,
 )
+from bonft.viz import plot_bon_curves
 
 
 # ----------------------------------------------------------------------------- references (independent of bonft)
@@ -427,12 +427,12 @@ def test_summarize_binary_rewards_table_dict_and_plot(tmp_path):
     assert back["oracle_mean"] == pytest.approx(list(want.mean(0)), rel=1e-10)
     text = summ.table()
     assert f"prompts: {P}" in text and f"{summ.bon_mean[-1]:.4f}" in text and "95% CI" in text
-    out = summ.plot(tmp_path / "c.png")
+    out = plot_bon_curves({"": summ}, tmp_path / "c.png")
     assert open(out, "rb").read(8) == b"\x89PNG\r\n\x1a\n"
-    plot_curves({"T=0.6": summ, "T=1": summ}, tmp_path / "two.png")
+    plot_bon_curves({"T=0.6": summ, "T=1": summ}, tmp_path / "two.png")
     assert (tmp_path / "two.png").stat().st_size > 1000
     with pytest.raises(TypeError, match=r"curves\['x'\] must be a CurveSummary"):
-        plot_curves({"x": 1}, tmp_path / "bad.png")
+        plot_bon_curves({"x": 1}, tmp_path / "bad.png")
 
 
 def test_summarize_ragged_pools():

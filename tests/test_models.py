@@ -1,4 +1,4 @@
-"""Tests of bonft.models: tiny models built in code, checkpoints, device choice.
+"""Tests of bonft.trainer.models: tiny models built in code, checkpoints, device choice.
 
 References: the GPT-2 parameter count per block, 12 d^2 + 13 d (attention
 3d^2+3d and d^2+d, MLP 4d^2+4d and 4d^2+d, two LayerNorms 4d), follows from
@@ -10,7 +10,7 @@ no biases) + 3 * d * 4d (SwiGLU MLP) + 2d (RMSNorms), from Touvron et al.
 import pytest
 import torch
 
-from bonft.models import build_tiny_model, load_model, pick_device, save_model
+from bonft.trainer.models import build_tiny_model, load_model, pick_device, save_model
 from bonft.tasks.tokenizer import BOS_ID, EOS_ID, PAD_ID, build_tokenizer
 
 TOK = build_tokenizer()

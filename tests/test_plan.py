@@ -20,7 +20,7 @@ from hypothesis import strategies as st
 from scipy import stats
 
 from bonft.plan import Pools, fit_best_temperature, plan_exact, plan_pools, plan_samples
-from bonft.samples import read_samples, write_samples
+from bonft.io import read_samples, write_samples
 
 # --------------------------------------------------------------------------- independent references
 
@@ -280,7 +280,7 @@ def test_isotonic_matches_scipy(y):
     # reference library: scipy.optimize.isotonic_regression (pool-adjacent-violators)
     from scipy.optimize import isotonic_regression
 
-    from bonft.plan_decide import isotonic
+    from bonft.plan.decisions import isotonic
 
     np.testing.assert_allclose(isotonic(np.array(y)), isotonic_regression(np.array(y)).x, rtol=0, atol=1e-12)
 
@@ -288,7 +288,7 @@ def test_isotonic_matches_scipy(y):
 def test_not_worse_rule_is_the_percentile_interval():
     # percentile bootstrap (Efron & Tibshirani 1993, ch. 13, chapter from memory): "significantly worse" iff the
     # (1 - alpha) interval of the gap lies above 0, i.e. fewer than alpha/2 of the gaps are <= 0
-    from bonft.plan_decide import not_worse
+    from bonft.plan.decisions import not_worse
 
     gaps = np.linspace(-0.1, 1.9, 200)  # 10 of 200 (5%) are <= 0
     assert not_worse(gaps[:, None], 0.05)[0]  # 5% >= 2.5%: interval reaches 0

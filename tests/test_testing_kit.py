@@ -1,4 +1,4 @@
-"""bonft.testing: check_verifier flags the verifiers it should, with figures; AUC and curves
+"""bonft.verifiers.testkit: check_verifier flags the verifiers it should, with figures; AUC and curves
 are checked against brute-force definitions."""
 import itertools
 import json

@@ -11,9 +11,9 @@ import pytest
 import torch
 from safetensors.torch import load_file
 
-import bonft.train as T
-from bonft.checkpoint import latest_checkpoint, load_state
-from bonft.config import from_dict, to_toml
+import bonft.trainer.loop as T
+from bonft.trainer.checkpoint import latest_checkpoint, load_state
+from bonft.trainer.config import from_dict, to_toml
 
 TINY = dict(
     n_layer=1, d_model=32, n_head=2, max_positions=48, n_train=64, n_eval=6, sft_steps=4, sft_batch_size=8,

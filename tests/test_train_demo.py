@@ -1,7 +1,7 @@
 """The demo pipeline on a tiny scale: warm start once, two objectives from it, one comparison."""
 import json
 
-from bonft.demo import DemoConfig, run_demo, study_table
+from bonft.trainer.demo import DemoConfig, run_demo, study_table
 
 
 def test_tiny_demo_end_to_end(tmp_path, capsys):

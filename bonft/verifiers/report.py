@@ -107,24 +107,6 @@ class VerifierReport:
 
     def plot(self, path: str) -> str:
         """Plot best-of-k (verifier's pick) against the oracle as k grows, to ``path`` (PNG); returns ``path``."""
-        import matplotlib
+        from ..viz import plot_verifier_check
 
-        matplotlib.use("Agg")
-        import matplotlib.pyplot as plt
-
-        fig, ax = plt.subplots(figsize=(6, 4))
-        if self.ks:
-            ax.plot(self.ks, self.oracle, "o--", label="oracle (best true reward among k)")
-            ax.plot(self.ks, self.bon, "o-", label="verifier's pick (true reward)")
-            ax.set_xscale("log", base=2)
-            ax.set_xlabel("k (samples per prompt)")
-            ax.set_ylabel("mean true reward")
-            ax.legend(loc="best", fontsize=8)
-        else:
-            ax.text(0.5, 0.5, "no true rewards: no curves", ha="center", va="center")
-        status = "OK" if self.ok else "; ".join(p.split(":")[0] for p in self.problems)
-        ax.set_title(f"verifier check: {status}", fontsize=9)
-        fig.tight_layout()
-        fig.savefig(path, dpi=100)
-        plt.close(fig)
-        return str(path)
+        return plot_verifier_check(self, path)

@@ -7,7 +7,7 @@ import sys
 import time
 from pathlib import Path
 
-from bonft.distributed import init_from_env, reduce_metrics, shutdown
+from bonft.trainer.distributed import init_from_env, reduce_metrics, shutdown
 
 timeout_s, flags = float(sys.argv[1]), Path(sys.argv[2])
 ctx = init_from_env(device="cpu", timeout_s=timeout_s)

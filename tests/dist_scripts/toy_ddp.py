@@ -12,7 +12,7 @@ import sys
 
 import torch
 
-from bonft.distributed import (all_gather_objects, derive_seed, global_mean_scale, init_from_env, shard_prompts,
+from bonft.trainer.distributed import (all_gather_objects, derive_seed, global_mean_scale, init_from_env, shard_prompts,
                                shutdown, unwrap_model, wrap_model)
 from bonft.losses import reinforce_loss
 

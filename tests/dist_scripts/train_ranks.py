@@ -2,7 +2,7 @@
 import json
 import sys
 
-from bonft.config import from_dict
-from bonft.train import train
+from bonft.trainer.config import from_dict
+from bonft.trainer.loop import train
 
 train(from_dict(json.loads(open(sys.argv[1]).read())), progress=False)

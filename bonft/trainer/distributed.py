@@ -52,7 +52,7 @@ import numpy as np
 import torch
 import torch.distributed as dist
 
-from ._checks import check_choice, check_int, check_positive
+from .._checks import check_choice, check_int, check_positive
 
 __all__ = [
     "DistContext", "PeerError", "init_from_env", "shutdown", "session", "shard_bounds", "shard_prompts",
@@ -323,7 +323,7 @@ def prompt_seed(seed: int, *, step: int, slot: int, stream: int = 0) -> int:
 
 def sample_per_prompt(model: Any, tokenizer: Any, prompts: Sequence[str], *, seeds: Sequence[int], n: int,
                       temperature: float = 1.0, top_p: float = 1.0, max_new_tokens: int = 32) -> Any:
-    """:func:`bonft.sampling.sample` with one generator per prompt: prompt b's n responses come from ``seeds[b]``.
+    """:func:`bonft.trainer.generation.sample` with one generator per prompt: prompt b's n responses come from ``seeds[b]``.
 
     prompts: B strings, seeds: B ints (e.g. :func:`prompt_seed` of each prompt's
     global slot) -> ``Samples`` with ``response_ids (B, n, T)``, as ``sample`` lays them out.
@@ -333,7 +333,7 @@ def sample_per_prompt(model: Any, tokenizer: Any, prompts: Sequence[str], *, see
     process would: all B*n rows are still decoded in one batch, each prompt's
     uniforms come from its own generator (``sample(..., seeds=...)``).
     """
-    from .sampling import sample
+    from .generation import sample
 
     if isinstance(prompts, str):
         raise TypeError("prompts must be a sequence of str, got a single str (wrap it in a list)")

@@ -33,9 +33,9 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 def load_for_eval(args: argparse.Namespace, *, n: int, ks: list[int], temperature: float):
     """The checkpoint's config (its config.toml, else defaults) pointed at the checkpoint, and the Run."""
-    from ..checkpoint import resolve_checkpoint
-    from ..config import FIELDS, apply_overrides, from_dict, load_config
-    from ..train import build_run
+    from ..trainer.checkpoint import resolve_checkpoint
+    from ..trainer.config import FIELDS, apply_overrides, from_dict, load_config
+    from ..trainer.loop import build_run
 
     ckpt = resolve_checkpoint(args.checkpoint)
     base = load_config(ckpt / "config.toml").to_dict() if (ckpt / "config.toml").is_file() else {}
@@ -50,7 +50,7 @@ def run(args: argparse.Namespace) -> int:
     import torch
 
     from .._checks import check_int, check_positive
-    from ..train import evaluate_run
+    from ..trainer.loop import evaluate_run
 
     n = check_int("--n", args.n, min=1)
     ks = parse_list("--ks", args.ks)
@@ -64,7 +64,7 @@ def run(args: argparse.Namespace) -> int:
     if args.json:
         Path(args.json).write_text(json.dumps({"checkpoint": str(ckpt), **rep.to_dict()}, indent=1))
     if args.plot:
-        from ..plots import plot_evaluations
+        from ..viz import plot_evaluations
 
         plot_evaluations([rep.to_dict()], args.plot, title=str(ckpt))
     return 0
@@ -73,7 +73,7 @@ def run(args: argparse.Namespace) -> int:
 def _eval_seeded(r, seed: int):
     from dataclasses import replace
 
-    from ..train import evaluate_run
+    from ..trainer.loop import evaluate_run
 
     r.cfg = replace(r.cfg, seed=seed)
     return evaluate_run(r, step=-1)

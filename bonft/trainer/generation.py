@@ -28,7 +28,7 @@ from typing import Sequence
 import torch
 import torch.nn.functional as F
 
-from ._checks import check_fraction, check_int, check_positive
+from .._checks import check_fraction, check_int, check_positive
 
 
 @dataclass

@@ -31,7 +31,7 @@ if sys.version_info >= (3, 11):
 else:  # pragma: no cover - Python 3.10
     import tomli as tomllib
 
-from ._checks import check_choice, check_int
+from .._checks import check_choice, check_int
 
 # objective name in a recipe -> (loss family in bonft.losses, options); see docs/training.md
 OBJECTIVES = (
@@ -307,5 +307,5 @@ def config_reference() -> str:
     return "\n".join(rows)
 
 
-if __name__ == "__main__":  # python -m bonft.config  -> the key table of docs/training.md
+if __name__ == "__main__":  # python -m bonft.trainer.config  -> the key table of docs/training.md
     print(config_reference())

@@ -100,7 +100,7 @@ def evaluate_policy(
 
     Returns ``(report, raw)``; ``raw`` holds ``texts`` (P lists of n), the
     ``scores``/``rewards`` (P, n) arrays per verifier and ``n_tokens`` (P, n),
-    which :mod:`bonft.commands.sample` writes out. ``groups`` (P labels, e.g. the
+    which :mod:`bonft.cli.sample` writes out. ``groups`` (P labels, e.g. the
     task family of each prompt) adds pass@k means per group. Internal callers pass
     validated arguments (the trainer's config, the eval command's options).
     """
@@ -122,11 +122,11 @@ def collect_pools(model: Any, tokenizer: Any, prompts: Sequence[str], *, verifie
     (P, n), ``scores`` (verifier name -> (P, n)), ``rewards`` (P, n) of the
     ``"exact"`` verifier, ``distinct`` (P,) and ``failures``. ``seeds`` (one per
     prompt) draws each prompt from its own generator
-    (:func:`bonft.distributed.sample_per_prompt`), so pools collected on
+    (:func:`bonft.trainer.distributed.sample_per_prompt`), so pools collected on
     different ranks are those one process would collect; else one draw from ``seed``.
     """
-    from .sampling import sample
-    from .verifiers.scoring import score_batch
+    from .generation import sample
+    from ..verifiers.scoring import score_batch
 
     P = len(prompts)
     if seeds is not None:
@@ -167,7 +167,7 @@ def merge_pools(parts: Sequence[dict]) -> dict:
 def report_from_pools(raw: dict, *, ks: Sequence[int], temperature: float, seed: int = 0, step: int = 0,
                       confidence: float = 0.95, n_boot: int = 1000, groups: Sequence[str] | None = None) -> EvalReport:
     """The summarising half of :func:`evaluate_policy`: estimators and bootstrap CIs over all pools."""
-    from .estimate import summarize
+    from ..estimate import summarize
 
     rewards, n_tokens = raw["rewards"], raw["n_tokens"]
     P, n = rewards.shape

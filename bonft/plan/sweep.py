@@ -24,10 +24,10 @@ that "wins" with a gameable verifier may win by finding its loopholes
 verifier's gap (``bonft estimate`` shows oracle pass@k beside best-of-k).
 
 Entry points: :func:`plan_samples` (a samples file read with
-:func:`bonft.samples.read_samples`), :func:`plan_pools` (arrays per
+:func:`bonft.io.read_samples`), :func:`plan_pools` (arrays per
 temperature), :func:`plan_exact` (a finite outcome set) and
-:func:`bonft.plan_sampling.plan_model` (draw from a model through
-:mod:`bonft.sampling`, cached on disk).
+:func:`bonft.plan.from_model.plan_model` (draw from a model through
+:mod:`bonft.trainer.generation`, cached on disk).
 """
 from __future__ import annotations
 
@@ -37,9 +37,9 @@ from typing import Any, Mapping, Sequence
 
 import numpy as np
 
-from ._checks import as_float_array, check_finite, check_fraction, check_int, check_positive
-from .plan_decide import bootstrap_means, finish, fit_best_temperature
-from .plan_result import BudgetChoice, DoublingStep, PlanResult, TemperatureFit
+from .._checks import as_float_array, check_finite, check_fraction, check_int, check_positive
+from .decisions import bootstrap_means, finish, fit_best_temperature
+from .result import BudgetChoice, DoublingStep, PlanResult, TemperatureFit
 
 __all__ = [
     "Pools",
@@ -155,7 +155,7 @@ def plan_pools(
 
     Reference: Chow et al. 2024 (best-of-N value), Chen et al. 2021 (unbiased estimators).
     """
-    from .estimate import bon_at_k_per_prompt
+    from ..estimate import bon_at_k_per_prompt
 
     if not isinstance(pools, Mapping):
         raise TypeError(f"pools must be a mapping {{temperature: Pools}}, got {type(pools).__name__}")
@@ -252,13 +252,13 @@ def plan_samples(
     seed: int = 0,
     min_gain: float = 0.0,
 ) -> PlanResult:
-    """Plan from a :class:`bonft.samples.SampleTable` with a temperature column.
+    """Plan from a :class:`bonft.io.SampleTable` with a temperature column.
 
     table: rows (prompt_id, score, reward, temperature[, n_tokens]) -> see :func:`plan_pools`.
     temperatures: a subset of the temperatures in the table (default: all of them).
     Mean response length per temperature comes from the ``n_tokens`` column when present.
     """
-    from .samples import group_pools, temperatures_of
+    from ..io import group_pools, temperatures_of
 
     if getattr(table, "temperatures", None) is None:
         raise ValueError("table must have a temperature column (temperature_field) to plan over temperatures, got none")
@@ -322,7 +322,7 @@ def plan_exact(
     V_k(T) = sum_v pi_bon,T(v) r_v, pi_bon from :func:`bonft.bon.bon_value` (ties broken
     uniformly among the tied top samples). Reference: Chow et al. 2024.
     """
-    from .bon import bon_value, softmax_policy
+    from ..bon import bon_value, softmax_policy
 
     temps = _check_temperatures(temperatures)
     if (logits is None) == (probs is None):
@@ -335,7 +335,7 @@ def plan_exact(
         check_finite("logits", base)
     else:
         base = as_float_array("probs", probs, ndim=(1, 2))
-        from ._checks import check_probs
+        from .._checks import check_probs
 
         check_probs("probs", base)
     base = base.reshape(-1, base.shape[-1])  # (V,) -> (1, V); (P, V) stays

@@ -105,7 +105,7 @@ def run(args) -> int:
     temps = parse_list("--temperatures", args.temperatures, float)
     info = None
     if args.samples:
-        from bonft.samples import read_samples
+        from bonft.io import read_samples
 
         if not os.path.isfile(args.samples):
             raise FileNotFoundError(f"--samples file not found: {args.samples}")
@@ -136,8 +136,8 @@ def run(args) -> int:
         res = plan_exact(logits=spec.get("logits"), probs=spec.get("probs"), scores=spec["scores"],
                          rewards=spec["rewards"], lengths=spec.get("lengths"), temperatures=temps, **kw)
     else:
-        from bonft.models import load_model, pick_device
-        from bonft.plan_sampling import plan_model
+        from bonft.trainer.models import load_model, pick_device
+        from bonft.plan.from_model import plan_model
 
         model, tokenizer = load_model(args.model, device=pick_device(args.device))
         prompts, verifier, vname = _prompts_and_verifier(args)

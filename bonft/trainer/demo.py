@@ -93,7 +93,7 @@ def _final_eval(run_dir: Path) -> dict | None:
 
 def _stage(cfg: TrainConfig, progress: bool) -> dict:
     """Run one trainer stage, or reuse it when its run directory already holds a finished run."""
-    from .train import train
+    from .loop import train
 
     done = _final_eval(Path(cfg.out_dir))
     if done is not None:
@@ -173,7 +173,7 @@ def objective_config(dc: DemoConfig, objective: str, warm: str, out: Path) -> Tr
 def run_demo(dc: DemoConfig | None = None, *, progress: bool = True) -> dict:
     """Warm start once, then each objective from the same warm start; returns the summary dict."""
     from .checkpoint import latest_checkpoint
-    from .plots import plot_comparison
+    from ..viz import plot_comparison
 
     dc = dc or DemoConfig()
     out = Path(dc.out_dir)

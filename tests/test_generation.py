@@ -1,4 +1,4 @@
-"""Tests of bonft.sampling: the decoding loop and the training forward pass.
+"""Tests of bonft.trainer.generation: the decoding loop and the training forward pass.
 
 References used below:
 - exact next-token law softmax(logits / T) of a model whose logits are a fixed
@@ -16,8 +16,8 @@ import pytest
 import torch
 from scipy import stats
 
-from bonft.models import build_tiny_model
-from bonft.sampling import Samples, encode_responses, sample, sequence_logprobs
+from bonft.trainer.models import build_tiny_model
+from bonft.trainer.generation import Samples, encode_responses, sample, sequence_logprobs
 from bonft.tasks.tokenizer import BOS_ID, EOS_ID, PAD_ID, build_tokenizer, char_vocab
 
 TOK = build_tokenizer()

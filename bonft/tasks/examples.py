@@ -12,7 +12,7 @@ The gap between the oracle curve and best-of-k shows that verifier's cost;
 fine-tuning against such a verifier would push answers to grow longer
 (reward hacking), which is why both curves are reported.
 
-Regenerate the file with ``python -m bonft.examples`` (deterministic).
+Regenerate the file with ``python -m bonft.tasks.examples`` (deterministic).
 """
 from __future__ import annotations
 
@@ -25,7 +25,7 @@ from bonft._checks import check_int
 
 __all__ = ["EXAMPLE_SAMPLES", "example_samples_path", "ledger_rows"]
 
-EXAMPLE_SAMPLES = Path(__file__).parent / "data" / "example_samples.jsonl"
+EXAMPLE_SAMPLES = Path(__file__).resolve().parents[1] / "data" / "example_samples.jsonl"
 
 
 def example_samples_path() -> str:
@@ -69,7 +69,7 @@ def ledger_rows(*, n_prompts: int = 200, n_samples: int = 16, temperatures=(0.6,
 
 
 def main() -> int:
-    from bonft.samples import write_samples
+    from bonft.io import write_samples
 
     os.makedirs(EXAMPLE_SAMPLES.parent, exist_ok=True)
     n = write_samples(EXAMPLE_SAMPLES, ledger_rows())

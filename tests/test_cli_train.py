@@ -4,7 +4,7 @@ from pathlib import Path
 import pytest
 
 from bonft.cli import main
-from bonft.samples import read_samples
+from bonft.io import read_samples
 
 RECIPES = sorted((Path(__file__).parent.parent / "recipes").glob("*.toml"))
 SHRINK = ["n_layer=1", "d_model=32", "n_head=2", "max_positions=48", "n_train=32", "n_eval=4", "sft_steps=2",

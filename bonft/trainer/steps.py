@@ -1,7 +1,7 @@
 """The trainer's parts: seeds, schedules, the warm-start and RL steps, setup and evaluation.
 
-:mod:`bonft.train` holds the loop; this module holds what one step does. See
-:mod:`bonft.train` for the RNG, distributed and caution notes.
+:mod:`bonft.trainer.loop` holds the loop; this module holds what one step does. See
+:mod:`bonft.trainer.loop` for the RNG, distributed and caution notes.
 """
 from __future__ import annotations
 
@@ -76,7 +76,7 @@ def encode_pairs(tokenizer: Any, prompts: list[str], responses: list[str], devic
 
     Returns prompt_ids (B, Tp), prompt_mask (B, Tp), response_ids (B, 1, T), response_mask (B, 1, T).
     """
-    from .sampling import encode_responses
+    from .generation import encode_responses
 
     return tuple(x.to(device) for x in encode_responses(tokenizer, prompts, responses))
 
@@ -98,7 +98,7 @@ class Run:
     world: int = 1
     optimizer: Any = None
     ref_model: Any = None
-    ctx: Any = None  # bonft.distributed.DistContext
+    ctx: Any = None  # bonft.trainer.distributed.DistContext
     ddp: Any = None  # the model as trained: DistributedDataParallel(model) on several ranks, else model
 
     @property
@@ -131,8 +131,8 @@ def _prompt_batch(cfg: TrainConfig, step: int, size: int, n_items: int, rank: in
 def sft_step(run: Run, step: int) -> dict:
     """Warm start: NLL (sum over tokens) of reference responses, divided by the global batch size."""
     from .distributed import reduce_metrics
-    from .losses import nll_loss
-    from .sampling import sequence_logprobs
+    from ..losses import nll_loss
+    from .generation import sequence_logprobs
 
     cfg = run.cfg
     B = cfg.sft_batch_size
@@ -142,14 +142,14 @@ def sft_step(run: Run, step: int) -> dict:
     logp = sequence_logprobs(run.net, pids, pmask, rids, rmask)  # (b, 1, T)
     # (b, 1, T) -> (b, T): one reference response per prompt
     loss, info = nll_loss(logp[:, 0], mask=rmask[:, 0], token_reduction="sum", reduction="sum")
-    (loss * run.world / B).backward()  # x W/B: DDP averages over W ranks (bonft.distributed.global_mean_scale)
+    (loss * run.world / B).backward()  # x W/B: DDP averages over W ranks (bonft.trainer.distributed.global_mean_scale)
     tot = reduce_metrics({"nll": float(loss.detach()), "tokens": float(rmask.sum())}, run.ctx)
     return {"loss": tot["nll"] / B, "nll_per_token": tot["nll"] / tot["tokens"]}
 
 
 def _objective(cfg: TrainConfig, k: int, logp, mask, scores, rewards, ref_logp, sft_terms):
     """Dispatch to bonft.losses with reduction='sum' (the caller divides by the global batch)."""
-    from . import losses as L
+    from .. import losses as L
 
     t = torch.as_tensor
     kw: dict = {"mask": mask, "token_reduction": cfg.token_reduction, "reduction": "sum"}
@@ -170,8 +170,8 @@ def _objective(cfg: TrainConfig, k: int, logp, mask, scores, rewards, ref_logp, 
 def rl_step(run: Run, step: int) -> dict:
     """Sample n per prompt -> score -> credit -> loss -> backward, over grad_accum micro-batches."""
     from .distributed import prompt_seed, reduce_metrics, sample_per_prompt, shard_bounds
-    from .sampling import sequence_logprobs
-    from .verifiers.scoring import score_batch
+    from .generation import sequence_logprobs
+    from ..verifiers.scoring import score_batch
 
     cfg, n, T = run.cfg, run.cfg.n, run.cfg.temperature
     B = cfg.prompts_per_step
@@ -229,8 +229,8 @@ def rl_step(run: Run, step: int) -> dict:
 def build_run(cfg: TrainConfig) -> Run:
     """Task, data split, verifiers, model and tokenizer for ``cfg`` (no optimizer yet)."""
     from .models import build_tiny_model, load_model
-    from .tasks import build_tokenizer, get_task
-    from .verifiers.scoring import load_verifier
+    from ..tasks import build_tokenizer, get_task
+    from ..verifiers.scoring import load_verifier
 
     from .distributed import init_from_env
 

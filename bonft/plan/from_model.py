@@ -20,7 +20,7 @@ from typing import Any, Callable, Sequence
 
 import numpy as np
 
-from ._checks import check_fraction, check_int
+from .._checks import check_fraction, check_int
 
 PROMPT_CHUNK = 16  # prompts per sampling call: the progress bar's step, and part of each chunk's seed
 
@@ -86,10 +86,10 @@ def draw_samples(
     """
     from tqdm.auto import tqdm
 
-    from .plan import _check_temperatures
-    from .samples import SampleTable, read_samples, write_samples
-    from .sampling import sample
-    from .verifiers import score_batch
+    from .sweep import _check_temperatures
+    from ..io import SampleTable, read_samples, write_samples
+    from ..trainer.generation import sample
+    from ..verifiers import score_batch
 
     temps = _check_temperatures(temperatures)
     n = check_int("n", n, min=1)
@@ -185,12 +185,12 @@ def plan_model(
     progress: bool = True,
     **plan_kwargs: Any,
 ):
-    """Draw pools from a model (see :func:`draw_samples`), then :func:`bonft.plan.plan_samples`.
+    """Draw pools from a model (see :func:`draw_samples`), then :func:`bonft.plan.sweep.plan_samples`.
 
     plan_kwargs: max_k, budget_samples, budget_tokens, confidence, n_boot, min_gain (seed is shared).
     -> (PlanResult, info).
     """
-    from .plan import plan_samples
+    from .sweep import plan_samples
 
     table, info = draw_samples(model, tokenizer, prompts, verifier, temperatures=temperatures, n=n, seed=seed,
                                top_p=top_p, max_new_tokens=max_new_tokens, batch_size=batch_size,

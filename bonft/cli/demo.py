@@ -17,7 +17,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--out", default="runs/demo", help="output directory (default: runs/demo)")
     p.add_argument("--seed", type=int, default=0, help="seed of model init, data split and sampling (default: 0)")
     p.add_argument("--set", dest="overrides", action="append", default=[], metavar="KEY=VALUE",
-                   help="override a demo knob, e.g. --set rl_steps=300 (see bonft.demo.DemoConfig)")
+                   help="override a demo knob, e.g. --set rl_steps=300 (see bonft.trainer.demo.DemoConfig)")
     p.add_argument("--study", action="store_true", help="3 seeds x all objectives (incl. k annealing); writes study.md")
     p.add_argument("--quiet", action="store_true", help="no progress bars")
 
@@ -25,8 +25,8 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 def _demo_config(args):
     import dataclasses
 
-    from ..config import _convert, _parse_scalar
-    from ..demo import DemoConfig
+    from ..trainer.config import _convert, _parse_scalar
+    from ..trainer.demo import DemoConfig
 
     dc = DemoConfig(out_dir=args.out, seed=args.seed)
     fields = {f.name: f for f in dataclasses.fields(DemoConfig)}
@@ -47,7 +47,7 @@ def _demo_config(args):
 
 def run(args: argparse.Namespace) -> int:
     from .._checks import check_int
-    from ..demo import run_demo, run_study
+    from ..trainer.demo import run_demo, run_study
 
     check_int("--seed", args.seed, min=0)
     dc = _demo_config(args)

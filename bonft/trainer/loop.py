@@ -12,7 +12,7 @@ Everything random in a step is drawn from seeds derived from ``(seed, step, rank
 (each prompt's samples from ``(seed, step, global slot of the prompt)``), so a run resumed from any checkpoint ends with the same weights as an
 uninterrupted one (the optimizer state and the RNG states are in the checkpoint).
 
-Under ``torchrun`` (see docs/scaling.md and :mod:`bonft.distributed`) the
+Under ``torchrun`` (see docs/scaling.md and :mod:`bonft.trainer.distributed`) the
 trainer joins the process group, wraps the model in DDP and gives each rank a
 contiguous block of whole prompts of the same global batch (a prompt's n
 samples never leave its rank). Each prompt samples from a seed of its global
@@ -36,7 +36,7 @@ import time
 import torch
 
 from .config import TrainConfig, to_toml
-from .train_steps import (  # noqa: F401  (re-exported: the loop's parts)
+from .steps import (  # noqa: F401  (re-exported: the loop's parts)
     Run, _make_optimizer, _prompt_batch, build_run, dist_info, encode_pairs, evaluate_run, k_at, lr_at,
     quiet_transformers, rl_step, sft_step, step_seed,
 )
@@ -197,7 +197,7 @@ def train(cfg: TrainConfig, *, resume: bool = False, progress: bool = True) -> d
         summary["evaluations"] = evals
         (out / "summary.json").write_text(json.dumps(summary, indent=1))
         if cfg.plots and evals:
-            from .plots import plot_evaluations
+            from ..viz import plot_evaluations
 
             plot_evaluations(evals, out / "curves.png", title=cfg.name)
         if progress:

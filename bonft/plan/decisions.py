@@ -1,6 +1,6 @@
 """Decisions drawn from a (temperature, k) value grid: best temperature, budgets, doubling, the T*(k) fit.
 
-Shared by the sampling and exact modes of :mod:`bonft.plan`; inputs are trusted (validated there).
+Shared by the sampling and exact modes of :mod:`bonft.plan.sweep`; inputs are trusted (validated there).
 """
 from __future__ import annotations
 
@@ -8,7 +8,7 @@ from typing import Any
 
 import numpy as np
 
-from .plan_result import BudgetChoice, DoublingStep, PlanResult, TemperatureFit
+from .result import BudgetChoice, DoublingStep, PlanResult, TemperatureFit
 
 
 def bootstrap_means(per_prompt: list[np.ndarray], *, paired: bool, n_boot: int, seed: int) -> np.ndarray:

@@ -31,9 +31,10 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 
 def run(args) -> int:
-    from bonft.estimate import default_ks, plot_curves, summarize
-    from bonft.examples import example_samples_path
-    from bonft.samples import group_pools, read_samples, temperatures_of
+    from bonft.estimate import default_ks, summarize
+    from bonft.viz import plot_bon_curves
+    from bonft.tasks.examples import example_samples_path
+    from bonft.io import group_pools, read_samples, temperatures_of
 
     if args.example and args.samples:
         raise ValueError(f"give either SAMPLES or --example, got both ({args.samples!r} and --example)")
@@ -82,6 +83,6 @@ def run(args) -> int:
         write_json_atomic(args.json, {"samples": os.path.abspath(path), "blocks": blocks})
         print(f"wrote {args.json}")
     if args.plot:
-        plot_curves(curves, args.plot, title=os.path.basename(path))
+        plot_bon_curves(curves, args.plot, title=os.path.basename(path))
         print(f"wrote {args.plot}")
     return 0

@@ -1,12 +1,12 @@
-"""bonft.samples: the samples JSONL format, checked against the standard-library json module."""
+"""bonft.io: the samples JSONL format, checked against the standard-library json module."""
 import json
 import os
 
 import numpy as np
 import pytest
 
-from bonft.examples import example_samples_path, ledger_rows
-from bonft.samples import SampleTable, group_pools, read_samples, temperatures_of, write_samples
+from bonft.tasks.examples import example_samples_path, ledger_rows
+from bonft.io import SampleTable, group_pools, read_samples, temperatures_of, write_samples
 
 
 def write_lines(path, lines):

@@ -1,4 +1,4 @@
-"""Result objects of :mod:`bonft.plan`: the sweep, budget choices, doubling steps, the T*(k) fit."""
+"""Result objects of :mod:`bonft.plan.sweep`: the sweep, budget choices, doubling steps, the T*(k) fit."""
 from __future__ import annotations
 
 from dataclasses import dataclass, field
@@ -211,12 +211,12 @@ class PlanResult:
 
     def plot_heatmap(self, path) -> str:
         """PNG of V over (temperature, k), best temperature per k marked; returns the path."""
-        from .plan_plots import plot_heatmap
+        from ..viz import plot_plan_heatmap
 
-        return plot_heatmap(self, path)
+        return plot_plan_heatmap(self, path)
 
     def plot_curves(self, path) -> str:
         """PNG of V against k at the best and a few other temperatures, with CI bands; returns the path."""
-        from .plan_plots import plot_curves
+        from ..viz import plot_plan_curves
 
-        return plot_curves(self, path)
+        return plot_plan_curves(self, path)

@@ -22,8 +22,8 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    from ..config import load_config
-    from ..train import train
+    from ..trainer.config import load_config
+    from ..trainer.loop import train
 
     overrides = list(args.overrides) + ([f"out_dir={args.out}"] if args.out else [])
     cfg = load_config(args.recipe, overrides)

@@ -26,9 +26,9 @@ def run(args: argparse.Namespace) -> int:
     import torch
 
     from .._checks import check_int, check_positive
-    from ..evaluation import evaluate_policy
-    from ..samples import write_samples
-    from ..train import step_seed
+    from ..trainer.evaluation import evaluate_policy
+    from ..io import write_samples
+    from ..trainer.loop import step_seed
 
     n = check_int("--n", args.n, min=1)
     temps = [check_positive("--temperature", t) for t in parse_list("--temperature", args.temperature, float)]

@@ -1,11 +1,11 @@
-"""The ``bonft`` command: a thin dispatcher over :mod:`bonft.commands`."""
+"""The ``bonft`` command: a thin dispatcher over :mod:`bonft.cli`."""
 from __future__ import annotations
 
 import argparse
 import importlib
 import sys
 
-# name on the command line -> module in bonft.commands
+# name on the command line -> module in bonft.cli
 COMMANDS = {
     "demo": "demo",
     "estimate": "estimate",
@@ -25,9 +25,9 @@ def build_parser() -> argparse.ArgumentParser:
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
     for name, module in COMMANDS.items():
         try:
-            mod = importlib.import_module(f"bonft.commands.{module}")
+            mod = importlib.import_module(f"bonft.cli.{module}")
         except ModuleNotFoundError as e:  # a command whose module is not there yet
-            if e.name != f"bonft.commands.{module}":
+            if e.name != f"bonft.cli.{module}":
                 raise
             continue
         p = sub.add_parser(name, help=mod.HELP, description=getattr(mod, "DESCRIPTION", mod.HELP))

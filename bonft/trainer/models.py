@@ -19,7 +19,7 @@ from typing import Any
 
 import torch
 
-from ._checks import check_choice, check_int
+from .._checks import check_choice, check_int
 
 ARCHS = ("gpt2", "llama")
 

@@ -1,0 +1,24 @@
+"""The temperature x N planner: which temperature and how many samples for a budget.
+
+Modules: :mod:`.sweep` (the temperature x k table from pools, a pool file or a
+finite outcome set), :mod:`.decisions` (paired bootstrap, budget choices, the
+T*(k) fit), :mod:`.result` (:class:`PlanResult` and its parts),
+:mod:`.from_model` (draw pools from a model, cached on disk). Figures live in
+:mod:`bonft.viz`. See :mod:`bonft.plan.sweep` for the method and its references.
+"""
+from .decisions import fit_best_temperature
+from .result import BudgetChoice, DoublingStep, PlanResult, TemperatureFit
+from .sweep import Pools, plan_exact, plan_pools, plan_samples
+
+__all__ = [
+    "Pools", "PlanResult", "BudgetChoice", "DoublingStep", "TemperatureFit",
+    "plan_pools", "plan_samples", "plan_exact", "fit_best_temperature", "plan_model",
+]
+
+
+def __getattr__(name):  # plan_model pulls in torch and the sampler: import it on first use
+    if name == "plan_model":
+        from .from_model import plan_model
+
+        return plan_model
+    raise AttributeError(f"module 'bonft.plan' has no attribute {name!r}")

@@ -1,0 +1,329 @@
+"""A kit to unit-test verifiers before spending compute on best-of-N.
+
+A verifier that crashes, is non-deterministic, or can be gamed silently ruins
+every number downstream. :func:`check_verifier` measures, on example pools:
+
+* determinism: every sample scored ``repeats`` times (later runs in a
+  different batch order) must get the same score;
+* failures: exceptions, NaN and timeouts (through
+  :func:`bonft.verifiers.score_batch`), as a rate;
+* score range and latency per call;
+* agreement with labels: accuracy at ``threshold`` and ROC AUC;
+* over-optimisation: the true reward of the verifier's best-of-k as k grows,
+  against the oracle (pass@k for 0/1 rewards). Where best-of-k bends down while
+  the oracle keeps rising, larger N selects the verifier's errors -- it is
+  being gamed (reward hacking).
+
+Hypothesis strategies (:func:`prompts`, :func:`responses`,
+:func:`sample_pools`) generate awkward inputs (empty, unicode, huge numbers,
+markers, code fences) for property tests of your own verifier.
+
+Example pools: a list of dicts, either one pool per prompt
+``{"prompt": str, "responses": [str, ...], "rewards": [float, ...], "labels": [bool, ...]}``
+or one sample per item ``{"prompt", "response", "reward", "label"}`` (grouped
+by prompt); ``rewards`` and ``labels`` are optional. :func:`read_examples`
+reads the per-sample form from JSON Lines.
+"""
+from __future__ import annotations
+
+import json
+import math
+import numbers
+import time
+from typing import Any, Mapping, Sequence
+
+import numpy as np
+
+from bonft.verifiers.report import VerifierReport, roc_auc
+from bonft.verifiers.scoring import score_batch
+
+__all__ = ["check_verifier", "read_examples", "VerifierReport", "roc_auc", "prompts", "responses", "sample_pools"]
+
+_TRICKY = [
+    "", " ", "answer:", "answer: ", "answer: 42", "The answer is −7.", "answer: ４２", "#### 1,234",
+    "1e309", "-0", "nan", "inf", "NaN answer: nan", "\x00", "\u200f\u202e42", "```python\nprint(1)\n```",
+    "answer: 1\nanswer: 2", "9" * 400, "💥" * 20, "\\boxed{3}", "a" * 2000,
+]
+
+
+# ----------------------------------------------------------------------------- strategies
+def prompts(*, max_size: int = 80):
+    """Hypothesis strategy of prompt strings: random unicode text and a few tricky fixed ones."""
+    from hypothesis import strategies as st
+
+    return st.one_of(st.text(max_size=max_size), st.sampled_from(["", "What is 2+2?", "Q: ½ of 10?", "日本語の質問"]))
+
+
+def responses(*, max_size: int = 200):
+    """Hypothesis strategy of response strings: random text, answer-like text and edge cases."""
+    from hypothesis import strategies as st
+
+    numberish = st.builds(lambda x, pre: f"{pre}{x}", st.one_of(st.integers(), st.floats(allow_nan=True)),
+                          st.sampled_from(["", "answer: ", "The answer is ", "#### "]))
+    return st.one_of(st.text(max_size=max_size), numberish, st.sampled_from(_TRICKY))
+
+
+def sample_pools(n: int = 4, *, max_prompts: int = 3, rewards: bool = True):
+    """Hypothesis strategy of example pools: 1..max_prompts dicts ``{"prompt", "responses", "rewards"}``,
+    each with ``n`` responses (and 0/1 rewards when ``rewards``)."""
+    from hypothesis import strategies as st
+
+    def pool(p: str):
+        parts = {"prompt": st.just(p), "responses": st.lists(responses(), min_size=n, max_size=n)}
+        if rewards:
+            parts["rewards"] = st.lists(st.sampled_from([0.0, 1.0]), min_size=n, max_size=n)
+        return st.fixed_dictionaries(parts)
+
+    names = st.lists(prompts(), min_size=1, max_size=max_prompts, unique=True)
+    return names.flatmap(lambda ps: st.tuples(*[pool(p) for p in ps]).map(list))
+
+
+# ----------------------------------------------------------------------------- examples
+def read_examples(path: str) -> list[dict]:
+    """Per-sample JSON Lines ``{"prompt", "response", "reward"?, "label"?}`` -> list of dicts."""
+    out = []
+    with open(path, encoding="utf-8") as f:
+        for i, line in enumerate(f, 1):
+            if not line.strip():
+                continue
+            try:
+                row = json.loads(line)
+            except ValueError as e:
+                raise ValueError(f"{path}:{i}: examples must be JSON objects, got invalid JSON ({e})") from None
+            if not isinstance(row, dict):
+                raise ValueError(f"{path}:{i}: examples must be JSON objects, got {type(row).__name__}")
+            out.append(row)
+    if not out:
+        raise ValueError(f"examples file {path} must hold at least one example, got none")
+    return out
+
+
+def _pools(examples: Any, labels: Any) -> list[dict]:
+    """Normalise examples to pools ``{"prompt", "responses", "rewards" | None, "labels" | None}``."""
+    if isinstance(examples, (str, bytes, Mapping)) or not isinstance(examples, Sequence):
+        raise TypeError(f"examples must be a list of dicts (pools or samples), got {type(examples).__name__}")
+    if not examples:
+        raise ValueError("examples must not be empty")
+    pools: dict[str, dict] = {}
+    for i, ex in enumerate(examples):
+        if not isinstance(ex, Mapping):
+            raise TypeError(f"examples[{i}] must be a dict, got {type(ex).__name__}")
+        p = ex.get("prompt")
+        if not isinstance(p, str):
+            raise TypeError(f"examples[{i}]['prompt'] must be a str, got {type(p).__name__}")
+        if "responses" in ex:
+            rs = ex["responses"]
+            if isinstance(rs, str) or not isinstance(rs, Sequence) or not all(isinstance(r, str) for r in rs):
+                raise TypeError(f"examples[{i}]['responses'] must be a list of str")
+            rw, lb = ex.get("rewards"), ex.get("labels")
+            for key, vals in (("rewards", rw), ("labels", lb)):
+                if vals is not None and len(vals) != len(rs):
+                    raise ValueError(f"examples[{i}]['{key}'] must have {len(rs)} entries like 'responses', got {len(vals)}")
+            items = [(r, None if rw is None else rw[j], None if lb is None else lb[j]) for j, r in enumerate(rs)]
+        elif "response" in ex:
+            if not isinstance(ex["response"], str):
+                raise TypeError(f"examples[{i}]['response'] must be a str, got {type(ex['response']).__name__}")
+            items = [(ex["response"], ex.get("reward"), ex.get("label"))]
+        else:
+            raise ValueError(f"examples[{i}] must have a 'responses' list or a 'response', got keys {sorted(ex)}")
+        pool = pools.setdefault(p, {"prompt": p, "responses": [], "rewards": [], "labels": []})
+        for r, rw, lb in items:
+            if rw is not None and (isinstance(rw, str) or not isinstance(rw, numbers.Real) or not math.isfinite(rw)):
+                raise ValueError(f"examples[{i}] rewards must be finite numbers, got {rw!r}")
+            pool["responses"].append(r)
+            pool["rewards"].append(None if rw is None else float(rw))
+            pool["labels"].append(None if lb is None else bool(lb))
+    out = list(pools.values())
+    if labels is not None:
+        if len(labels) != len(out):
+            raise ValueError(f"labels must have one list per prompt ({len(out)}), got {len(labels)}")
+        for pool, lb in zip(out, labels):
+            if len(lb) != len(pool["responses"]):
+                raise ValueError(f"labels for prompt {pool['prompt']!r:.40} must have {len(pool['responses'])} entries, got {len(lb)}")
+            pool["labels"] = [bool(x) for x in lb]
+    return out
+
+
+def _check_kw(threshold, repeats, timeout, max_failure_rate, min_auc, bend_tol, pool_size) -> None:
+    for name, v in (("threshold", threshold), ("max_failure_rate", max_failure_rate), ("min_auc", min_auc),
+                    ("bend_tol", bend_tol)):
+        if isinstance(v, bool) or not isinstance(v, numbers.Real) or not math.isfinite(v):
+            raise TypeError(f"{name} must be a finite real number, got {type(v).__name__} {v!r}")
+    if not 0 <= max_failure_rate <= 1:
+        raise ValueError(f"max_failure_rate must be in [0, 1], got max_failure_rate={max_failure_rate}")
+    if isinstance(repeats, bool) or not isinstance(repeats, numbers.Integral):
+        raise TypeError(f"repeats must be an int, got {type(repeats).__name__} {repeats!r}")
+    if repeats < 2:
+        raise ValueError(f"repeats must be >= 2 to test determinism, got repeats={repeats}")
+    if pool_size is not None and (isinstance(pool_size, bool) or not isinstance(pool_size, numbers.Integral) or pool_size < 1):
+        raise ValueError(f"pool_size must be None or an int >= 1, got pool_size={pool_size!r}")
+
+
+# ----------------------------------------------------------------------------- the check
+def check_verifier(
+    verifier: Any,
+    examples: Sequence[Mapping[str, Any]],
+    *,
+    labels: Sequence[Sequence[bool]] | None = None,
+    threshold: float = 0.5,
+    repeats: int = 2,
+    ks: Sequence[int] | None = None,
+    pool_size: int | None = None,
+    timeout: float | None = None,
+    max_failure_rate: float = 0.0,
+    min_auc: float = 0.6,
+    bend_tol: float = 0.02,
+    rtol: float = 1e-6,
+) -> VerifierReport:
+    """Test ``verifier`` on example pools; returns a :class:`VerifierReport` (``.ok``, ``.problems``).
+
+    examples:   pools per prompt (see the module docstring).
+    labels:     one list of bools per pool (in order of first appearance);
+                default the examples' labels, else ``reward > 0.5``.
+    threshold:  a sample is predicted correct when its score is >= threshold.
+    repeats:    times each sample is scored (>= 2); runs after the first
+                reverse the batch order, so batch-dependent scores show up.
+    ks:         best-of-k curve points; default 1, 2, 4, ... up to the smallest pool.
+    pool_size:  use at most this many responses per prompt (the first ones).
+    timeout:    seconds per verifier call, passed to :func:`bonft.verifiers.score_batch`.
+    max_failure_rate, min_auc, bend_tol, rtol: what counts as a problem --
+                failure rate above ``max_failure_rate``; AUC below ``min_auc``;
+                best-of-k true reward falling more than ``bend_tol`` below its
+                peak at the largest k; scores differing by more than ``rtol``
+                (relative, or 1e-12 absolute) between runs.
+
+    True rewards are the examples' rewards, else the rewards the verifier
+    reports (e.g. :class:`~bonft.verifiers.NoisyProxy`); without either there
+    are no curves. The curve uses ``bonft.estimate.bon_at_k_per_prompt`` and
+    ``oracle_at_k_per_prompt`` (all k-subsets of each pool, exactly).
+    """
+    if not callable(verifier):
+        raise TypeError(f"verifier must be callable as verifier(prompts, responses), got {type(verifier).__name__}")
+    _check_kw(threshold, repeats, timeout, max_failure_rate, min_auc, bend_tol, pool_size)
+    pools = _pools(examples, labels)
+    if pool_size is not None:
+        for pool in pools:
+            for key in ("responses", "rewards", "labels"):
+                pool[key] = pool[key][:pool_size]
+
+    # 1) score every pool `repeats` times, one call per pool; later runs in reverse order
+    runs: list[list[Any]] = []
+    latencies: list[float] = []
+    for rep in range(repeats):
+        per_pool = []
+        for pool in pools:
+            rs = pool["responses"] if rep == 0 else pool["responses"][::-1]
+            t0 = time.perf_counter()
+            v = score_batch(verifier, [pool["prompt"]] * len(rs), rs, timeout=timeout)
+            latencies.append(time.perf_counter() - t0)
+            if rep > 0:  # back to the original order
+                v.scores, v.failed = v.scores[::-1], v.failed[::-1]
+                v.rewards = None if v.rewards is None else v.rewards[::-1]
+                v.reasons = v.reasons[::-1]
+            per_pool.append(v)
+        runs.append(per_pool)
+    first = runs[0]
+    n = sum(len(p["responses"]) for p in pools)
+    rep = VerifierReport(n_prompts=len(pools), n_samples=n, repeats=repeats, n_nondeterministic=0, threshold=float(threshold))
+
+    # 2) determinism
+    for later in runs[1:]:
+        for pool, a, b in zip(pools, first, later):
+            same = np.isclose(a.scores, b.scores, rtol=rtol, atol=1e-12) & (a.failed == b.failed)
+            for j in np.flatnonzero(~same):
+                rep.n_nondeterministic += 1
+                if len(rep.nondeterministic_examples) < 3:
+                    rep.nondeterministic_examples.append({"prompt": pool["prompt"][:80], "response": pool["responses"][j][:80],
+                                                          "first": float(a.scores[j]), "again": float(b.scores[j])})
+    # 3) failures (first run)
+    for v in first:
+        for j in np.flatnonzero(v.failed):
+            reason = v.reasons[j] or "failed"
+            if reason.startswith("timeout"):
+                rep.n_timeouts += 1
+            elif reason.startswith(("score is", "reward is")):
+                rep.n_nan += 1
+            else:
+                rep.n_exceptions += 1
+            if len(rep.failure_examples) < 3:
+                rep.failure_examples.append(reason)
+    # 4) scores and latency
+    scores = [v.scores for v in first]
+    flat = np.concatenate(scores)
+    ok = ~np.concatenate([v.failed for v in first])
+    good = flat[ok] if ok.any() else flat
+    rep.score_min, rep.score_max, rep.score_mean = float(good.min()), float(good.max()), float(good.mean())
+    lat = np.array(latencies) * 1000.0
+    rep.latency_ms_per_call = float(lat.mean())
+    rep.latency_ms_p95 = float(np.percentile(lat, 95))
+    rep.latency_ms_per_sample = float(lat.sum() / (n * repeats))
+
+    # true rewards: the examples', else the verifier's own
+    true: list[np.ndarray] | None = []
+    for pool, v in zip(pools, first):
+        if all(r is not None for r in pool["rewards"]):
+            true.append(np.array(pool["rewards"], dtype=np.float64))
+        elif v.rewards is not None:
+            true.append(v.rewards)
+        else:
+            true = None
+            break
+
+    # 5) agreement with labels
+    lab_s, lab_y = [], []
+    for i, pool in enumerate(pools):
+        for j, lb in enumerate(pool["labels"]):
+            if lb is None and true is not None:
+                lb = bool(true[i][j] > 0.5)
+            if lb is not None:
+                lab_s.append(scores[i][j])
+                lab_y.append(lb)
+    if lab_y:
+        s_arr, y_arr = np.array(lab_s), np.array(lab_y, dtype=bool)
+        rep.n_labelled, rep.n_positive = len(y_arr), int(y_arr.sum())
+        rep.accuracy = float(((s_arr >= threshold) == y_arr).mean())
+        rep.auc = roc_auc(s_arr, y_arr)
+
+    # 6) over-optimisation curve
+    if true is not None:
+        from bonft.estimate import bon_at_k_per_prompt, default_ks, oracle_at_k_per_prompt
+
+        n_min = min(len(t) for t in true)
+        kk = default_ks(n_min) if ks is None else list(ks)
+        bon = bon_at_k_per_prompt(scores, true, kk).mean(axis=0)
+        orc = oracle_at_k_per_prompt(true, kk).mean(axis=0)
+        rep.ks, rep.bon, rep.oracle = [int(k) for k in kk], [float(x) for x in bon], [float(x) for x in orc]
+
+    _problems(rep, max_failure_rate=max_failure_rate, min_auc=min_auc, bend_tol=bend_tol)
+    return rep
+
+
+def _problems(rep: VerifierReport, *, max_failure_rate: float, min_auc: float, bend_tol: float) -> None:
+    n = rep.n_samples
+    if rep.n_nondeterministic:
+        e = rep.nondeterministic_examples[0]
+        rep.problems.append(
+            f"non-deterministic: {rep.n_nondeterministic} of {n * (rep.repeats - 1)} re-scored samples "
+            f"({rep.n_nondeterministic / (n * (rep.repeats - 1)):.1%}) changed score, e.g. {e['first']:.6g} then {e['again']:.6g}"
+        )
+    if rep.failure_rate > max_failure_rate:
+        rep.problems.append(
+            f"failures: {rep.failure_rate:.1%} of {n} samples > max_failure_rate={max_failure_rate:g} "
+            f"(exceptions {rep.n_exceptions}, NaN {rep.n_nan}, timeouts {rep.n_timeouts}), e.g. {rep.failure_examples[0]}"
+        )
+    if n > 1 and rep.score_min == rep.score_max:
+        rep.problems.append(f"constant scores: all {n} samples score {rep.score_min:g}, so best-of-k cannot select")
+    if rep.auc is not None and rep.auc < min_auc:
+        rep.problems.append(
+            f"low agreement: ROC AUC {rep.auc:.3f} < min_auc={min_auc:g} on {rep.n_labelled} labelled samples "
+            f"({rep.n_positive} correct), accuracy {rep.accuracy:.3f} at threshold {rep.threshold:g}"
+        )
+    if len(rep.ks) >= 2:
+        peak = int(np.argmax(rep.bon))
+        drop = rep.bon[peak] - rep.bon[-1]
+        if peak < len(rep.ks) - 1 and drop > bend_tol:
+            rep.problems.append(
+                f"over-optimisation: best-of-k true reward peaks at k={rep.ks[peak]} ({rep.bon[peak]:.3f}) and falls to "
+                f"{rep.bon[-1]:.3f} at k={rep.ks[-1]} while the oracle goes {rep.oracle[peak]:.3f} -> {rep.oracle[-1]:.3f}: "
+                "larger N selects the verifier's errors (it is being gamed)"
+            )

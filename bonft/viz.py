@@ -1,0 +1,263 @@
+"""Every figure bonft draws (matplotlib, Agg backend, PNG).
+
+* :func:`plot_bon_curves` -- best-of-k and oracle pass@k curves of
+  :class:`bonft.estimate.CurveSummary` objects, with their intervals (``bonft estimate --plot``);
+* :func:`plot_plan_heatmap`, :func:`plot_plan_curves` -- a :class:`bonft.plan.PlanResult`
+  over temperature and k (``bonft plan --plot-dir``);
+* :func:`plot_evaluations`, :func:`plot_comparison` -- the trainer's evaluations of one
+  run and of several policies (``bonft train``, ``bonft eval --plot``, ``bonft demo``);
+* :func:`plot_verifier_check` -- a verifier check's best-of-k against the oracle.
+
+matplotlib is imported inside each function, so importing this module is cheap.
+"""
+from __future__ import annotations
+
+import os
+from pathlib import Path
+from typing import Sequence
+
+import numpy as np
+
+from .estimate import CurveSummary
+
+__all__ = ["plot_bon_curves", "plot_verifier_check", "plot_plan_heatmap", "plot_plan_curves", "plot_evaluations", "plot_comparison"]
+
+
+# ------------------------------------------------------------------ estimator curves
+
+def plot_bon_curves(curves: dict, path, *, title: str | None = None) -> str:
+    """One PNG with the best-of-k and oracle curves of each labelled :class:`CurveSummary`.
+
+    curves: {label: CurveSummary} (e.g. one per temperature); a label prefixes the legend entries.
+    """
+    if not isinstance(curves, dict) or not curves:
+        raise TypeError(f"curves must be a non-empty dict of label -> CurveSummary, got {type(curves).__name__}")
+    for label, c in curves.items():
+        if not isinstance(c, CurveSummary):
+            raise TypeError(f"curves[{label!r}] must be a CurveSummary, got {type(c).__name__}")
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    path = str(path)
+    fig, ax = plt.subplots(figsize=(6.4, 4.2))
+    for j, (label, c) in enumerate(curves.items()):
+        ks = np.asarray(c.ks)
+        pre = f"{label}: " if label else ""
+        color = f"C{j}"
+        for mean, lo, hi, what, style in (
+            (c.oracle_mean, c.oracle_lo, c.oracle_hi, "oracle (best true reward among k)", "--"),
+            (c.bon_mean, c.bon_lo, c.bon_hi, "best-of-k (verifier picks)", "-"),
+        ):
+            ax.plot(ks, mean, style, marker="o", color=color, label=pre + what)
+            ax.fill_between(ks, lo, hi, color=color, alpha=0.15)
+    if max(len(c.ks) for c in curves.values()) > 1:
+        ax.set_xscale("log", base=2)
+        ticks = sorted({int(k) for c in curves.values() for k in c.ks})
+        ax.set_xticks(ticks, [str(k) for k in ticks])
+        ax.minorticks_off()
+    first = next(iter(curves.values()))
+    ax.set_xlabel("k (samples drawn)")
+    ax.set_ylabel("expected reward")
+    ax.set_title(title or f"{first.n_prompts} prompts, {100 * first.confidence:g}% bootstrap CI")
+    ax.grid(alpha=0.3)
+    ax.legend(fontsize=8)
+    fig.tight_layout()
+    fig.savefig(path, dpi=100)
+    plt.close(fig)
+    return path
+
+
+# ------------------------------------------------------------------ the trainer's evaluations
+
+
+def _axes(n: int):
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    fig, axes = plt.subplots(1, n, figsize=(5 * n, 4), squeeze=False)
+    return plt, fig, axes[0]
+
+
+def _band(ax, ks, curve: dict, label: str, **kw) -> None:
+    ax.plot(ks, curve["mean"], marker="o", label=label, **kw)
+    ax.fill_between(ks, curve["lo"], curve["hi"], alpha=0.15, color=ax.lines[-1].get_color())
+
+
+def plot_evaluations(evals: Sequence[dict], path: str | Path, *, title: str = "") -> Path:
+    """One run: pass@k (left) and best-of-k per verifier (right) versus k, one line per evaluation step."""
+    plt, fig, (ax1, ax2) = _axes(2)
+    for ev in evals:
+        _band(ax1, ev["ks"], ev["pass_at_k"], f"step {ev['step']}")
+        for name, c in ev["best_of_k"].items():
+            _band(ax2, ev["ks"], c, f"step {ev['step']} ({name})")
+    ax1.set_ylabel("pass@k (true reward)")
+    ax2.set_ylabel("best-of-k, verifier-selected")
+    return _finish(plt, fig, (ax1, ax2), path, title)
+
+
+def _finish(plt, fig, axes, path, title) -> Path:
+    """Shared styling of the k axes (log2, [0, 1]), then save and close."""
+    for ax in axes:
+        ax.set_xscale("log", base=2)
+        ax.set_xlabel("k")
+        ax.set_ylim(0, 1)
+        ax.grid(alpha=0.3)
+        if ax.lines:
+            ax.legend(fontsize=8)
+    fig.suptitle(title)
+    fig.tight_layout()
+    fig.savefig(path, dpi=110)
+    plt.close(fig)
+    return Path(path)
+
+
+def plot_comparison(results: dict[str, dict], path: str | Path, *, title: str = "") -> Path:
+    """Several policies (name -> one evaluation dict): pass@k and best-of-k under the proxy, with CIs."""
+    plt, fig, (ax1, ax2) = _axes(2)
+    for name, ev in results.items():
+        _band(ax1, ev["ks"], ev["pass_at_k"], name)
+        if "proxy" in ev["best_of_k"]:
+            _band(ax2, ev["ks"], ev["best_of_k"]["proxy"], name)
+    ax1.set_ylabel("pass@k (true reward)")
+    ax2.set_ylabel("best-of-k, proxy picks (true reward)")
+    return _finish(plt, fig, (ax1, ax2), path, title)
+
+
+# ------------------------------------------------------------------ the planner
+
+
+def _plt():
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    return plt
+
+
+def _out(path) -> str:
+    path = os.fspath(path)
+    d = os.path.dirname(path)
+    if d:
+        os.makedirs(d, exist_ok=True)
+    return path
+
+
+def _log2_k_axis(ax, kmax: int) -> None:
+    """k on a log axis with ticks 1, 2, 4, ... labelled as plain numbers (no minor ticks)."""
+    from matplotlib.ticker import FixedLocator, NullLocator
+
+    ax.set_xscale("log")
+    ticks = [2**i for i in range(int(np.log2(kmax)) + 1)]
+    ax.xaxis.set_major_locator(FixedLocator(ticks))
+    ax.xaxis.set_minor_locator(NullLocator())
+    ax.set_xticklabels([str(t) for t in ticks])
+
+
+def plot_plan_heatmap(res, path) -> str:
+    """V over (temperature rows, k columns on a log axis); circles mark the best temperature per k."""
+    plt = _plt()
+    path = _out(path)
+    T, ks = res.temperatures, res.ks
+    # cell edges: k on a log axis (edges at k -/+ 0.5), temperatures at midpoints between grid values
+    k_edges = np.concatenate([[0.5], ks + 0.5])
+    order = np.argsort(T)
+    t_sorted = T[order]
+    mids = (t_sorted[1:] + t_sorted[:-1]) / 2 if T.size > 1 else np.array([])
+    lo_edge = t_sorted[0] - (mids[0] - t_sorted[0] if mids.size else 0.1)
+    hi_edge = t_sorted[-1] + (t_sorted[-1] - mids[-1] if mids.size else 0.1)
+    t_edges = np.concatenate([[lo_edge], mids, [hi_edge]])
+    fig, ax = plt.subplots(figsize=(8, 4.2), dpi=110)
+    mesh = ax.pcolormesh(k_edges, t_edges, res.value[order], cmap="viridis", shading="flat")
+    fig.colorbar(mesh, ax=ax, label="best-of-k value V_k(T)")
+    ax.plot(ks, res.best_temperature, "o", ms=3 if ks.size > 40 else 5, mfc="white", mec="black", label="best T at k")
+    if res.mode != "exact":
+        near_t = [(k, t) for i, t in enumerate(T) for j, k in enumerate(ks) if res.near_best[i, j] and i != res.best_index[j]]
+        if near_t:
+            nk, nt = zip(*near_t)
+            ax.plot(nk, nt, ".", ms=2, color="white", alpha=0.6, label="not significantly worse")
+    _log2_k_axis(ax, int(ks[-1]))
+    ax.set_xlim(k_edges[0], k_edges[-1])
+    ax.set_yticks(t_sorted)
+    ax.set_xlabel("k (samples per prompt)")
+    ax.set_ylabel("temperature T")
+    ax.set_title(f"best-of-k value over (temperature, k), {res.mode} mode")
+    ax.legend(loc="upper left", fontsize=8, framealpha=0.8)
+    fig.subplots_adjust(left=0.09, right=0.98, bottom=0.12, top=0.92)  # fixed margins: tight_layout costs seconds
+    fig.savefig(path)
+    plt.close(fig)
+    return path
+
+
+def curve_temperatures(res, n_other: int = 3) -> list[int]:
+    """Indices of temperatures to draw: the best at the largest and smallest k, then spread over the grid."""
+    picks = [int(res.best_index[-1]), int(res.best_index[0])]
+    for t in np.linspace(0, res.temperatures.size - 1, n_other + 2).round().astype(int):
+        if len(set(picks)) >= 2 + n_other:
+            break
+        picks.append(int(t))
+    return list(dict.fromkeys(picks))
+
+
+def plot_plan_curves(res, path) -> str:
+    """V against k (log axis) at the best temperatures and a few others, CI bands in sampling mode."""
+    plt = _plt()
+    path = _out(path)
+    fig, ax = plt.subplots(figsize=(7, 4.2), dpi=110)
+    ks = res.ks
+    for i in curve_temperatures(res):
+        t = res.temperatures[i]
+        label = f"T={t:g}"
+        if i == res.best_index[-1]:
+            label += f" (best at k={ks[-1]})"
+        elif i == res.best_index[0]:
+            label += " (best at k=1)"
+        (line,) = ax.plot(ks, res.value[i], lw=1.6, label=label)
+        if res.mode != "exact":
+            ax.fill_between(ks, res.lo[i], res.hi[i], color=line.get_color(), alpha=0.18, lw=0)
+    env = res.value[res.best_index, np.arange(ks.size)]
+    ax.plot(ks, env, "k--", lw=1, label="best T at each k")
+    for c in res.budgets:
+        ax.plot([c.k], [c.value], "kx", ms=7)
+        ax.annotate(f"{c.budget:g} {c.kind}", (c.k, c.value), textcoords="offset points", xytext=(4, -10), fontsize=7)
+    _log2_k_axis(ax, int(ks[-1]))
+    ax.set_xlabel("k (samples per prompt)")
+    ax.set_ylabel("best-of-k value V_k(T)")
+    band = "" if res.mode == "exact" else f", bands: {res.confidence:.0%} CI over prompts"
+    ax.set_title(f"best-of-k value against k{band}", fontsize=10)
+    ax.grid(alpha=0.3)
+    ax.legend(fontsize=8)
+    fig.subplots_adjust(left=0.1, right=0.98, bottom=0.12, top=0.92)
+    fig.savefig(path)
+    plt.close(fig)
+    return path
+
+
+# ------------------------------------------------------------------ verifier checks
+def plot_verifier_check(report, path) -> str:
+    """A :class:`bonft.verifiers.VerifierReport`: plot best-of-k (verifier's pick) against the oracle as k grows, to ``path`` (PNG); returns ``path``."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    fig, ax = plt.subplots(figsize=(6, 4))
+    if report.ks:
+        ax.plot(report.ks, report.oracle, "o--", label="oracle (best true reward among k)")
+        ax.plot(report.ks, report.bon, "o-", label="verifier's pick (true reward)")
+        ax.set_xscale("log", base=2)
+        ax.set_xlabel("k (samples per prompt)")
+        ax.set_ylabel("mean true reward")
+        ax.legend(loc="best", fontsize=8)
+    else:
+        ax.text(0.5, 0.5, "no true rewards: no curves", ha="center", va="center")
+    status = "OK" if report.ok else "; ".join(p.split(":")[0] for p in report.problems)
+    ax.set_title(f"verifier check: {status}", fontsize=9)
+    fig.tight_layout()
+    fig.savefig(path, dpi=100)
+    plt.close(fig)
+    return str(path)
