@@ -40,7 +40,7 @@ def worker(args: argparse.Namespace) -> None:
 
     ctx = init_from_env(device="cpu", timeout_s=120)
     tok = build_tokenizer()
-    model = build_tiny_model("gpt2", vocab_size=len(tok), n_layer=2, d_model=args.d_model, n_head=4, max_positions=64,
+    model = build_tiny_model("gpt2", vocab_size=len(tok), layers=2, width=args.width, heads=4, max_positions=64,
                              seed=0, pad_token_id=tok.pad_token_id, eos_token_id=tok.eos_token_id,
                              bos_token_id=tok.bos_token_id)
     ddp = wrap_model(model, ctx)
@@ -56,8 +56,8 @@ def worker(args: argparse.Namespace) -> None:
         smp = sample_per_prompt(unwrap_model(ddp), tok, mine, seeds=[prompt_seed(0, step=s, slot=j) for j in range(start, stop)],
                                 n=n, temperature=1.0, max_new_tokens=args.max_new_tokens)
         rewards = torch.tensor([[float(any(c.isdigit() for c in t)) for t in row] for row in smp.texts])  # (b, n)
-        logp = sequence_logprobs(ddp, smp.prompt_ids, smp.prompt_mask, smp.response_ids, smp.response_mask)
-        loss, _ = reinforce_loss(logp, rewards, baseline="loo", mask=smp.response_mask, reduction="sum")
+        logp = sequence_logprobs(ddp, smp.prompt_tokens, smp.prompt_valid, smp.reply_tokens, smp.reply_valid)
+        loss, _ = reinforce_loss(logp, rewards, baseline="loo", mask=smp.reply_valid, reduction="sum")
         (loss * scale).backward()
         opt.step()
 
@@ -114,14 +114,14 @@ def main() -> None:
         args.steps, args.prompts, args.n = 2, 8, 8
     if args.worker:
         return worker(args)
-    argv = [f"--steps={args.steps}", f"--prompts={args.prompts}", f"--n={args.n}", f"--d-model={args.d_model}",
+    argv = [f"--steps={args.steps}", f"--prompts={args.prompts}", f"--n={args.n}", f"--d-model={args.width}",
             f"--max-new-tokens={args.max_new_tokens}"]
     load0 = os.getloadavg()[0]
     one = launch(1, argv)
     two = launch(2, argv)
     load1 = os.getloadavg()[0]
     ratio = two["samples_per_s"] / one["samples_per_s"]
-    print(f"global batch {args.prompts} prompts x n={args.n}, {args.steps} timed steps, d_model={args.d_model}, "
+    print(f"global batch {args.prompts} prompts x n={args.n}, {args.steps} timed steps, width={args.width}, "
           f"{os.cpu_count()} cores, load average {load0:.1f} -> {load1:.1f}")
     for r in (one, two):
         print(f"  {r['world']} process(es): {r['samples_per_s']:8.1f} samples/s   wall {r['wall_s']:6.2f} s   "

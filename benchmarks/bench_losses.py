@@ -96,7 +96,7 @@ def main(argv=None) -> int:
     # --- share of a training step -------------------------------------------
     from transformers import GPT2Config, GPT2LMHeadModel
 
-    cfg = GPT2Config(vocab_size=64, n_positions=64, n_embd=64, n_layer=2, n_head=2, bos_token_id=0, eos_token_id=0)
+    cfg = GPT2Config(vocab_size=64, n_positions=64, n_embd=64, layers=2, heads=2, bos_token_id=0, eos_token_id=0)
     model = GPT2LMHeadModel(cfg)
     opt = torch.optim.AdamW(model.parameters(), lr=1e-4)
     P, micro = 8, 16  # prompt length; prompts per micro-batch (gradient accumulation, as on a CPU)

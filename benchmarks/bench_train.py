@@ -24,7 +24,7 @@ def main() -> None:
     torch.set_num_threads(args.threads)
     # the demo's RL step: 16 prompts x 16 samples, the default 0.4 M-parameter tiny GPT-2
     cfg = from_dict(dict(rl_steps=args.steps, prompts_per_step=16, n=16, k=8, objective="pass_at_k",
-                         n_train=256, n_eval=16, out_dir="/tmp/bench_train"))
+                         n_train=256, n_eval=16, run_dir="/tmp/bench_train"))
     run = build_run(cfg)
     run.optimizer = _make_optimizer(run)
     rl_step(run, 0)  # warm-up

@@ -38,12 +38,12 @@ __all__ = ["SampleTable", "read_samples", "write_samples", "group_pools", "tempe
 class SampleTable:
     """Columns of a samples file, one entry per sample (N rows).
 
-    prompt_ids: (N,) str keys; scores, rewards: (N,) float64;
+    prompt_keys: (N,) str keys; scores, rewards: (N,) float64;
     temperatures: (N,) float64 or None when the file has no temperature field;
     n_tokens: (N,) int64 or None.
     """
 
-    prompt_ids: np.ndarray
+    prompt_keys: np.ndarray
     scores: np.ndarray
     rewards: np.ndarray
     temperatures: np.ndarray | None = None
@@ -159,7 +159,7 @@ def read_samples(
     if kinds - {str, int}:
         i = next(i for i, v in enumerate(ids) if type(v) not in (str, int))
         raise ValueError(f"{name} line {numbers[i]}: field {prompt_field!r} must be a string or an integer, got {ids[i]!r}")
-    prompt_ids = np.array([str(v) for v in ids] if int in kinds else ids, dtype=str)
+    prompt_keys = np.array([str(v) for v in ids] if int in kinds else ids, dtype=str)
 
     scores = _numbers(name, _column(name, rows, numbers, score_field, "score_field", required=True),
                       numbers, score_field, allow_bool=False)
@@ -171,7 +171,7 @@ def read_samples(
     toks = _column(name, rows, numbers, tokens_field, "tokens_field", required=False)
     if toks is not None:
         toks = _numbers(name, toks, numbers, tokens_field, allow_bool=False, integer=True)
-    return SampleTable(prompt_ids=prompt_ids, scores=scores, rewards=rewards, temperatures=temps, n_tokens=toks)
+    return SampleTable(prompt_keys=prompt_keys, scores=scores, rewards=rewards, temperatures=temps, n_tokens=toks)
 
 
 # ----------------------------------------------------------------------------- writing
@@ -264,7 +264,7 @@ def group_pools(table: SampleTable, *, temperature: float | None = None):
             raise ValueError(
                 f"temperature must pick one of the table's temperatures {temps} (pools would mix them), got None"
             )
-        ids, s, r = table.prompt_ids, table.scores, table.rewards
+        ids, s, r = table.prompt_keys, table.scores, table.rewards
     else:
         temperature = float(as_float_array("temperature", temperature, ndim=0))
         if table.temperatures is None:
@@ -272,7 +272,7 @@ def group_pools(table: SampleTable, *, temperature: float | None = None):
         keep = table.temperatures == temperature
         if not keep.any():
             raise ValueError(f"temperature must be one of {temps}, got {temperature}")
-        ids, s, r = table.prompt_ids[keep], table.scores[keep], table.rewards[keep]
+        ids, s, r = table.prompt_keys[keep], table.scores[keep], table.rewards[keep]
     uniq, first, inv = np.unique(ids, return_index=True, return_inverse=True)
     rank = np.empty(len(uniq), dtype=np.int64)
     rank[np.argsort(first, kind="stable")] = np.arange(len(uniq))  # unique index -> first-appearance order

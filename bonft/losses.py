@@ -22,15 +22,15 @@ token, 0 = padding). Padding tokens change nothing, even if they hold NaN or
     take smaller steps, so the expected gradient is ``E[g_hat/T_bar]``, not
     ``grad V / E[T]`` (length-normalised, biased). Needs token log-probs.
 
-KL penalty (common practice): with ``ref_logprobs`` of the same shape as
-``logprobs`` the loss adds ``kl_coef * (1/n) sum_i KL_i`` where ``KL_i``
+KL penalty (common practice): with ``anchor_logprobs`` of the same shape as
+``logprobs`` the loss adds ``anchor_weight * (1/n) sum_i KL_i`` where ``KL_i``
 aggregates the per-token "k3" estimator ``exp(d) - d - 1``, ``d = ref - logp``
 (non-negative; from memory: J. Schulman's 2020 note "Approximating KL
 divergence") with the same ``token_reduction``. Its *value* is an unbiased
 estimate of KL(pi || ref) per token on on-policy samples; its *gradient* as a
 loss has mean ``grad KL(ref || pi)`` (per token), which also pulls ``pi``
 towards the reference. ``info["kl"]`` reports the per-token mean of the k3
-value whenever ``ref_logprobs`` is given.
+value whenever ``anchor_logprobs`` is given.
 
 ``reduction``: ``"mean"`` divides the per-prompt losses by ``B`` (the number
 of prompts), ``"sum"`` adds them, ``"none"`` returns them, shape ``(B,)``.
@@ -107,15 +107,15 @@ def _check_finite_masked(name: str, x: Tensor, m: Tensor | None) -> None:
         raise ValueError(f"{name} must be finite where the mask is 1, got {float(x.detach()[idx])} at index {idx}")
 
 
-def _check_options(token_reduction: Any, reduction: Any, kl_coef: Any) -> float:
+def _check_options(token_reduction: Any, reduction: Any, anchor_weight: Any) -> float:
     check_choice("token_reduction", token_reduction, _TOKEN_REDUCTIONS)
     check_choice("reduction", reduction, _REDUCTIONS)
-    if isinstance(kl_coef, bool) or not isinstance(kl_coef, numbers.Real):
-        raise TypeError(f"kl_coef must be a real number >= 0, got {type(kl_coef).__name__} {kl_coef!r}")
-    kl_coef = float(kl_coef)
-    if not (kl_coef >= 0 and kl_coef < float("inf")):
-        raise ValueError(f"kl_coef must be a finite number >= 0, got kl_coef={kl_coef}")
-    return kl_coef
+    if isinstance(anchor_weight, bool) or not isinstance(anchor_weight, numbers.Real):
+        raise TypeError(f"anchor_weight must be a real number >= 0, got {type(anchor_weight).__name__} {anchor_weight!r}")
+    anchor_weight = float(anchor_weight)
+    if not (anchor_weight >= 0 and anchor_weight < float("inf")):
+        raise ValueError(f"anchor_weight must be a finite number >= 0, got anchor_weight={anchor_weight}")
+    return anchor_weight
 
 
 def _sequence_terms(name: str, lp: Tensor, m: Tensor | None, token_reduction: str, seq_ndim: int) -> Tensor:
@@ -145,10 +145,10 @@ def _prepare(name: str, lp: Any, mask_name: str, mask: Any, token_reduction: str
 def _kl(lp: Tensor, ref: Any, m: Tensor | None, token_reduction: str) -> tuple[Tensor, float]:
     """k3 estimator exp(d) - d - 1, d = ref - logp -> per-prompt mean over samples (B,), per-token mean value."""
     if not is_tensor(ref):
-        raise TypeError(f"ref_logprobs must be a torch.Tensor, got {type(ref).__name__}")
+        raise TypeError(f"anchor_logprobs must be a torch.Tensor, got {type(ref).__name__}")
     if tuple(ref.shape) != tuple(lp.shape):
-        raise ValueError(f"ref_logprobs must have the same shape as logprobs {tuple(lp.shape)}, got {tuple(ref.shape)}")
-    _check_finite_masked("ref_logprobs", ref, m)
+        raise ValueError(f"anchor_logprobs must have the same shape as logprobs {tuple(lp.shape)}, got {tuple(ref.shape)}")
+    _check_finite_masked("anchor_logprobs", ref, m)
     d = ref.detach().to(lp.dtype) - lp
     if m is not None:
         d = torch.where(m, d, torch.zeros_like(d))  # exp(0) - 0 - 1 = 0 on padding
@@ -168,7 +168,7 @@ def _reduce(per_prompt: Tensor, reduction: str) -> Tensor:
     return per_prompt
 
 
-def _pg_loss(seq: Tensor, credit: Tensor, lp: Tensor, m, ref, kl_coef: float,
+def _pg_loss(seq: Tensor, credit: Tensor, lp: Tensor, m, ref, anchor_weight: float,
              token_reduction: str, reduction: str, info: dict) -> tuple[Tensor, dict]:
     """-(sum_i w_i * seq_i) per prompt (+ KL), reduced; fills the shared info keys."""
     w = credit.to(device=seq.device, dtype=seq.dtype)
@@ -178,8 +178,8 @@ def _pg_loss(seq: Tensor, credit: Tensor, lp: Tensor, m, ref, kl_coef: float,
     if ref is not None:
         kl_b, kl_tok = _kl(lp, ref, m, token_reduction)
         info["kl"] = kl_tok
-        if kl_coef:
-            per_prompt = per_prompt + kl_coef * kl_b
+        if anchor_weight:
+            per_prompt = per_prompt + anchor_weight * kl_b
     loss = _reduce(per_prompt, reduction)
     return loss, info
 
@@ -196,7 +196,7 @@ def _pair(name: str, x: Any, B: int, n: int, device) -> Tensor:
 # ----------------------------------------------------------------------------
 
 def bon_rl_loss(logprobs, scores, rewards, *, k, mask=None, baseline="loo", token_reduction="sum",
-                ref_logprobs=None, kl_coef=0.0, reduction="mean") -> tuple[Tensor, dict[str, float]]:
+                anchor_logprobs=None, anchor_weight=0.0, reduction="mean") -> tuple[Tensor, dict[str, float]]:
     r"""Best-of-k policy-gradient loss with a verifier.
 
     logprobs: (B, n) or (B, n, T) [+ mask (B, n, T)], scores, rewards: (B, n)
@@ -211,11 +211,11 @@ def bon_rl_loss(logprobs, scores, rewards, *, k, mask=None, baseline="loo", toke
 
     info: ``credit_mean`` (mean of w), ``zero_credit_frac`` (prompts whose
     credit is all zero: no signal), ``pool_value`` (mean best-of-k U-statistic
-    of the pools), ``kl`` (per-token k3 value, when ``ref_logprobs`` given).
+    of the pools), ``kl`` (per-token k3 value, when ``anchor_logprobs`` given).
 
     Caution: a verifier that can be gamed will be gamed (reward hacking).
     """
-    kl_coef = _check_options(token_reduction, reduction, kl_coef)
+    anchor_weight = _check_options(token_reduction, reduction, anchor_weight)
     lp, m, seq = _prepare("logprobs", logprobs, "mask", mask, token_reduction, 2)
     B, n = seq.shape
     s = _pair("scores", scores, B, n, lp.device)
@@ -224,11 +224,11 @@ def bon_rl_loss(logprobs, scores, rewards, *, k, mask=None, baseline="loo", toke
     check_choice("baseline", baseline, ("loo", "none"))
     credit, pool = _bon_credit_t(s, R, k, baseline)
     info = {"pool_value": float(pool.mean())}
-    return _pg_loss(seq, credit, lp, m, ref_logprobs, kl_coef, token_reduction, reduction, info)
+    return _pg_loss(seq, credit, lp, m, anchor_logprobs, anchor_weight, token_reduction, reduction, info)
 
 
 def pass_at_k_loss(logprobs, correct, *, k, estimator="unbiased", positive_only=False, mask=None,
-                   token_reduction="sum", ref_logprobs=None, kl_coef=0.0,
+                   token_reduction="sum", anchor_logprobs=None, anchor_weight=0.0,
                    reduction="mean") -> tuple[Tensor, dict[str, float]]:
     r"""pass@k policy-gradient loss for a binary reward.
 
@@ -247,7 +247,7 @@ def pass_at_k_loss(logprobs, correct, *, k, estimator="unbiased", positive_only=
     Caution: when ``correct`` comes from executing model-written code, run
     it in a sandbox; tests that miss cases are exploited (reward hacking).
     """
-    kl_coef = _check_options(token_reduction, reduction, kl_coef)
+    anchor_weight = _check_options(token_reduction, reduction, anchor_weight)
     lp, m, seq = _prepare("logprobs", logprobs, "mask", mask, token_reduction, 2)
     B, n = seq.shape
     c = _pair("correct", correct, B, n, lp.device)
@@ -259,11 +259,11 @@ def pass_at_k_loss(logprobs, correct, *, k, estimator="unbiased", positive_only=
     tot = c.sum(-1)
     pool = 1 - torch.exp(log_comb_torch(n - tot, k) - log_comb_torch(n, k))  # Chen et al. 2021 estimator
     info = {"pool_value": float(pool.mean())}
-    return _pg_loss(seq, credit, lp, m, ref_logprobs, kl_coef, token_reduction, reduction, info)
+    return _pg_loss(seq, credit, lp, m, anchor_logprobs, anchor_weight, token_reduction, reduction, info)
 
 
 def reinforce_loss(logprobs, rewards, *, baseline="loo", mask=None, token_reduction="sum",
-                   ref_logprobs=None, kl_coef=0.0, reduction="mean") -> tuple[Tensor, dict[str, float]]:
+                   anchor_logprobs=None, anchor_weight=0.0, reduction="mean") -> tuple[Tensor, dict[str, float]]:
     r"""Leave-one-out REINFORCE loss (Kool et al. 2019), the best-of-1 case.
 
     logprobs: (B, n) or (B, n, T) [+ mask], rewards: (B, n) -> loss, info.
@@ -274,18 +274,18 @@ def reinforce_loss(logprobs, rewards, *, baseline="loo", mask=None, token_reduct
     ``credit_mean``, ``zero_credit_frac``, ``pool_value`` (mean reward),
     ``kl`` if used.
     """
-    kl_coef = _check_options(token_reduction, reduction, kl_coef)
+    anchor_weight = _check_options(token_reduction, reduction, anchor_weight)
     lp, m, seq = _prepare("logprobs", logprobs, "mask", mask, token_reduction, 2)
     B, n = seq.shape
     R = _pair("rewards", rewards, B, n, lp.device)
     check_choice("baseline", baseline, ("loo", "none"))
     credit = _reinforce_credit_t(R, baseline)
     info = {"pool_value": float(R.mean())}
-    return _pg_loss(seq, credit, lp, m, ref_logprobs, kl_coef, token_reduction, reduction, info)
+    return _pg_loss(seq, credit, lp, m, anchor_logprobs, anchor_weight, token_reduction, reduction, info)
 
 
 def bon_sft_loss(expert_logprobs, sample_logprobs, sample_scores, expert_scores, *, k, expert_mask=None,
-                 mask=None, smoothing=1.0, token_reduction="sum", ref_logprobs=None, kl_coef=0.0,
+                 mask=None, smoothing=1.0, token_reduction="sum", anchor_logprobs=None, anchor_weight=0.0,
                  reduction="mean") -> tuple[Tensor, dict[str, float]]:
     r"""Best-of-k-aware SFT loss: raise the chance that best-of-k selects the expert response.
 
@@ -299,7 +299,7 @@ def bon_sft_loss(expert_logprobs, sample_logprobs, sample_scores, expert_scores,
     ``-grad loss`` estimates ``grad mean_b log pi_bon(y*_b)`` (Chow et al.
     2024, BoN-SFT): the expert term is exact, the sample term is a consistent
     ratio estimator (biased for finite n; see :func:`bonft.credit.sft_credit`
-    for the smoothing). ``k = 1`` is plain SFT. ``ref_logprobs`` (shape of
+    for the smoothing). ``k = 1`` is plain SFT. ``anchor_logprobs`` (shape of
     ``sample_logprobs``) adds the KL penalty on the policy samples.
 
     info: ``expert_logprob`` (mean expert term), ``credit_mean``,
@@ -309,7 +309,7 @@ def bon_sft_loss(expert_logprobs, sample_logprobs, sample_scores, expert_scores,
     Caution: the verifier decides which samples "beat" the expert; a gamed
     verifier pushes the policy away from the expert for the wrong reasons.
     """
-    kl_coef = _check_options(token_reduction, reduction, kl_coef)
+    anchor_weight = _check_options(token_reduction, reduction, anchor_weight)
     elp, _, e_seq = _prepare("expert_logprobs", expert_logprobs, "expert_mask", expert_mask, token_reduction, 1)
     lp, m, seq = _prepare("sample_logprobs", sample_logprobs, "mask", mask, token_reduction, 2)
     B, n = seq.shape
@@ -325,7 +325,7 @@ def bon_sft_loss(expert_logprobs, sample_logprobs, sample_scores, expert_scores,
     credit = _sft_credit_t(s, e, k, smoothing)
     info = {"expert_logprob": float(e_seq.detach().mean()),
             "beaten_frac": float((s > e[:, None]).to(torch.float64).mean())}
-    loss, info = _pg_loss(seq, credit, lp, m, ref_logprobs, kl_coef, token_reduction, "none", info)
+    loss, info = _pg_loss(seq, credit, lp, m, anchor_logprobs, anchor_weight, token_reduction, "none", info)
     per_prompt = loss - e_seq.to(loss.dtype)
     return _reduce(per_prompt, reduction), info
 

@@ -11,4 +11,4 @@ import sys
 from bonft.trainer.demo import DemoConfig, run_study
 
 if __name__ == "__main__":
-    run_study(DemoConfig(out_dir=sys.argv[1] if len(sys.argv) > 1 else "runs/study"), seeds=(0, 1, 2))
+    run_study(DemoConfig(run_dir=sys.argv[1] if len(sys.argv) > 1 else "runs/study"), seeds=(0, 1, 2))

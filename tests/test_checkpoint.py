@@ -13,7 +13,7 @@ from bonft.tasks.tokenizer import build_tokenizer
 @pytest.fixture()
 def parts():
     tok = build_tokenizer()
-    model = build_tiny_model("gpt2", vocab_size=len(tok), n_layer=1, d_model=16, n_head=2, max_positions=32, seed=3)
+    model = build_tiny_model("gpt2", vocab_size=len(tok), layers=1, width=16, heads=2, max_positions=32, seed=3)
     opt = torch.optim.AdamW(model.parameters(), lr=1e-2)
     model(torch.tensor([[1, 5, 6]]), labels=torch.tensor([[1, 5, 6]])).loss.backward()
     opt.step()

@@ -55,7 +55,7 @@ def test_single_temperature_file_with_renamed_fields_and_k(tmp_path, capsys):
             rows.append({"q": f"q{q}", "rm": (i * 7 + q) % 5 / 4, "ok": int(i % 2 == 0)})
     p.write_text("".join(json.dumps(r) + "\n" for r in rows))
     rc = main(["estimate", str(p), "--prompt-field", "q", "--score-field", "rm", "--reward-field", "ok",
-               "--k", "1,5", "--boot", "50", "--confidence", "0.8", "--json", str(tmp_path / "o.json")])
+               "--ks", "1,5", "--boot", "50", "--confidence", "0.8", "--json", str(tmp_path / "o.json")])
     text = capsys.readouterr().out
     assert rc == 0 and "\ntemperature " not in text  # no temperature column: one block, no header
     assert "80% CI" in text and "prompts: 6   smallest pool: 5" in text
@@ -68,14 +68,14 @@ def test_single_temperature_file_with_renamed_fields_and_k(tmp_path, capsys):
 @pytest.mark.parametrize(
     "argv,match",
     [
-        (["estimate", "--example", "--k", "1,64"], r"--k must be <= the smallest pool \(n=16\), got 64"),
-        (["estimate", "--example", "--k", "1,two"], r"--k must be comma-separated integers like 1,2,4, got '1,two'"),
-        (["estimate", "--example", "--k", "0,2"], r"--k must be >= 1, got 0"),
+        (["estimate", "--example", "--ks", "1,64"], r"--ks must be <= the smallest pool \(n=16\), got 64"),
+        (["estimate", "--example", "--ks", "1,two"], r"--ks must be comma-separated integers like 1,2,4, got '1,two'"),
+        (["estimate", "--example", "--ks", "0,2"], r"--ks must be >= 1, got 0"),
         (["estimate", "--example", "--confidence", "1.5"], r"confidence must be in \(0, 1\), got confidence=1.5"),
         (["estimate", "--example", "--boot", "0"], r"--boot must be >= 1, got 0"),
-        (["estimate", "--example", "x.jsonl"], r"give either SAMPLES or --example, got both"),
-        (["estimate"], r"SAMPLES must be a samples JSONL file \(or pass --example\)"),
-        (["estimate", "nope.jsonl"], r"SAMPLES file not found: nope.jsonl"),
+        (["estimate", "--example", "x.jsonl"], r"give either POOLS or --example, got both"),
+        (["estimate"], r"POOLS must be a pool file \(JSONL of scored samples\) \(or pass --example\)"),
+        (["estimate", "nope.jsonl"], r"POOLS file not found: nope.jsonl"),
         (["estimate", "--example", "--score-field", "rm"], r"missing field 'rm'.*--score-field NAME"),
     ],
 )

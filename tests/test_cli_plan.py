@@ -98,7 +98,7 @@ def test_plan_command_model_mode_reuses_cache(tmp_path, monkeypatch, capsys):
     from bonft.tasks import build_tokenizer
 
     tok = build_tokenizer()
-    model = build_tiny_model(vocab_size=len(tok), n_layer=1, d_model=32, n_head=2, pad_token_id=tok.pad_token_id,
+    model = build_tiny_model(vocab_size=len(tok), layers=1, width=32, heads=2, pad_token_id=tok.pad_token_id,
                              eos_token_id=tok.eos_token_id, bos_token_id=tok.bos_token_id, seed=1)
     save_model(model, tok, tmp_path / "ckpt")
     calls = []

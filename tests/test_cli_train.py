@@ -7,7 +7,7 @@ from bonft.cli import main
 from bonft.io import read_samples
 
 RECIPES = sorted((Path(__file__).parent.parent / "recipes").glob("*.toml"))
-SHRINK = ["n_layer=1", "d_model=32", "n_head=2", "max_positions=48", "n_train=32", "n_eval=4", "sft_steps=2",
+SHRINK = ["layers=1", "width=32", "heads=2", "max_positions=48", "n_train=32", "n_eval=4", "sft_steps=2",
           "sft_batch_size=8", "rl_steps=2", "prompts_per_step=4", "n=16", "eval_n=16", "eval_ks=1,16",
           "eval_every=0", "save_every=0", "plots=false", "n_boot=50", "max_new_tokens=5", "threads=1"]
 
@@ -18,7 +18,7 @@ def _set(items):
 
 @pytest.mark.parametrize("recipe", RECIPES, ids=[p.stem for p in RECIPES])
 def test_every_recipe_runs_tiny(recipe, tmp_path, capsys):
-    extra = ["kl_coef=0.05"] if recipe.stem == "pass_at_k" else []  # the KL-to-start path too
+    extra = ["anchor_weight=0.05"] if recipe.stem == "pass_at_k" else []  # the KL-to-start path too
     rc = main(["train", str(recipe), "--out", str(tmp_path / "r"), "--quiet", *_set(SHRINK + extra)])
     assert rc == 0
     assert (tmp_path / "r" / "checkpoints" / "step-00000004" / "model").is_dir()

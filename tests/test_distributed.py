@@ -330,7 +330,7 @@ def tiny_lm():
     from bonft.tasks import build_tokenizer
 
     tok = build_tokenizer()
-    model = build_tiny_model("gpt2", vocab_size=len(tok), n_layer=1, d_model=32, n_head=2, max_positions=48, seed=0,
+    model = build_tiny_model("gpt2", vocab_size=len(tok), layers=1, width=32, heads=2, max_positions=48, seed=0,
                              pad_token_id=tok.pad_token_id, eos_token_id=tok.eos_token_id, bos_token_id=tok.bos_token_id)
     return model, tok
 
@@ -348,11 +348,11 @@ def test_a_prompts_samples_do_not_depend_on_the_other_prompts_in_the_call(tiny_l
     alone = sample_per_prompt(model, tok, prompts[1:2], seeds=seeds[1:2], **kw)
     rev = sample_per_prompt(model, tok, prompts[::-1], seeds=seeds[::-1], **kw)
     assert full.texts[1] == alone.texts[0] and rev.texts == full.texts[::-1]
-    t = alone.response_ids.shape[2]
-    assert torch.equal(full.response_ids[1, :, :t], alone.response_ids[0])
-    assert full.response_ids.shape[:2] == (3, 5) and full.prompt_mask.sum(1).tolist() == [5, 19, 2]  # BOS + chars
+    t = alone.reply_tokens.shape[2]
+    assert torch.equal(full.reply_tokens[1, :, :t], alone.reply_tokens[0])
+    assert full.reply_tokens.shape[:2] == (3, 5) and full.prompt_valid.sum(1).tolist() == [5, 19, 2]  # BOS + chars
     # the padded batch is a valid Samples: one training forward recomputes the sampler's log-probs
-    lp = sequence_logprobs(model, full.prompt_ids, full.prompt_mask, full.response_ids, full.response_mask,
+    lp = sequence_logprobs(model, full.prompt_tokens, full.prompt_valid, full.reply_tokens, full.reply_valid,
                            temperature=1.3)
     torch.testing.assert_close(lp, full.token_logprobs, rtol=0, atol=1e-5)
     assert len({tuple(r) for r in full.texts}) == 3  # different slots, different streams
@@ -369,7 +369,7 @@ def test_a_prompts_samples_do_not_depend_on_the_other_prompts_in_the_call(tiny_l
 # that cancels to ~eps keeps float32 noise of order 1e-4 * lr (measured worst 1.4e-6 at lr=1e-2; it scales with lr).
 # Hence sft_lr 3e-3 too: at 1e-2 the warm start's worst weight differed by 1.47e-6 once the prompt pass ran per prompt.
 TRAIN_CFG = dict(
-    arch="llama", n_layer=1, d_model=32, n_head=2, max_positions=48, n_train=64, n_eval=5, sft_steps=2, sft_batch_size=8,
+    arch="llama", layers=1, width=32, heads=2, max_positions=48, n_train=64, n_eval=5, sft_steps=2, sft_batch_size=8,
     sft_lr=3e-3, rl_steps=2, prompts_per_step=4, n=4, k=2, lr=1e-3, eval_n=4, eval_ks=[1, 4], n_boot=50,
     log_every=1, save_every=0, keep_checkpoints=2, max_new_tokens=6, plots=False, eval_at_start=False, threads=1,
     objective="pass_at_k", verifier="toy_verifier:digit_share", correct_threshold=0.2,  # varied rewards from step 1
@@ -387,10 +387,10 @@ def test_two_trainer_processes_end_with_the_one_process_weights(tmp_path, monkey
 
     monkeypatch.syspath_prepend(str(SCRIPTS))  # the toy verifier module, here and in the ranks
     monkeypatch.setenv("PYTHONPATH", os.pathsep.join([str(SCRIPTS), os.environ.get("PYTHONPATH", "")]))
-    two = {**TRAIN_CFG, "out_dir": str(tmp_path / "two")}
+    two = {**TRAIN_CFG, "run_dir": str(tmp_path / "two")}
     (tmp_path / "two.json").write_text(json.dumps(two))
     procs = launch("train_ranks.py", [0, 1], 2, tmp_path / "two.json")  # runs while the 1-process run trains here
-    train(from_dict({**TRAIN_CFG, "out_dir": str(tmp_path / "one")}), progress=False)
+    train(from_dict({**TRAIN_CFG, "run_dir": str(tmp_path / "one")}), progress=False)
     res = finish(procs, limit=300)
     assert [rc for rc, _, _ in res] == [0, 0], res[0][2][-3000:] + res[1][2][-3000:]
 

@@ -30,7 +30,7 @@ def test_round_trip_matches_stdlib_json(tmp_path):
     assert back == ROWS
     t = read_samples(p)
     assert isinstance(t, SampleTable) and len(t) == 4
-    assert list(t.prompt_ids) == ["a", "b", "a", "3"]
+    assert list(t.prompt_keys) == ["a", "b", "a", "3"]
     np.testing.assert_array_equal(t.scores, [0.5, -1.25, 2.0, 1.0])
     np.testing.assert_array_equal(t.rewards, [1.0, 0.0, 0.0, 1.0])
     np.testing.assert_array_equal(t.temperatures, [0.7, 0.7, 1.0, 1.0])
@@ -68,7 +68,7 @@ def test_renamed_fields(tmp_path):
     ])
     t = read_samples(p, prompt_field="task", score_field="rm", reward_field="ok",
                      temperature_field="temp", tokens_field="len")
-    assert list(t.prompt_ids) == ["q1", "q1"]
+    assert list(t.prompt_keys) == ["q1", "q1"]
     np.testing.assert_array_equal(t.scores, [0.2, 0.9])
     np.testing.assert_array_equal(t.rewards, [1.0, 0.0])
     np.testing.assert_array_equal(t.temperatures, [0.5, 0.5])
@@ -159,7 +159,7 @@ def test_group_pools_by_prompt_and_temperature(tmp_path):
 
 
 def test_group_pools_keeps_first_appearance_order_and_file_order():
-    t = SampleTable(prompt_ids=np.array(["z", "y", "z", "x", "y", "z"]), scores=np.arange(6.0), rewards=-np.arange(6.0))
+    t = SampleTable(prompt_keys=np.array(["z", "y", "z", "x", "y", "z"]), scores=np.arange(6.0), rewards=-np.arange(6.0))
     keys, s, r = group_pools(t)
     assert keys == ["z", "y", "x"]
     assert [list(x) for x in s] == [[0.0, 2.0, 5.0], [1.0, 4.0], [3.0]]

@@ -123,7 +123,7 @@ def test_k3_kl_value_and_gradient_by_enumeration():
     ref_lp = torch.log_softmax(theta_ref, -1)
     Y = all_tuples(3, 1)
     got = expected_loss_grad(theta, 1, lambda lp, Yy: reinforce_loss(
-        lp, torch.zeros(len(Yy), 1), ref_logprobs=ref_lp[Yy], kl_coef=1.0, reduction="none")[0])
+        lp, torch.zeros(len(Yy), 1), anchor_logprobs=ref_lp[Yy], anchor_weight=1.0, reduction="none")[0])
 
     def kl_ref_pi(th):
         lp = torch.log_softmax(th, -1)
@@ -131,7 +131,7 @@ def test_k3_kl_value_and_gradient_by_enumeration():
 
     np.testing.assert_allclose(got, exact_grad(kl_ref_pi, theta), atol=1e-12)
     lp = torch.log_softmax(torch.tensor(theta), -1)
-    _, info = reinforce_loss(lp[Y], torch.zeros(3, 1), ref_logprobs=ref_lp[Y], reduction="none")
+    _, info = reinforce_loss(lp[Y], torch.zeros(3, 1), anchor_logprobs=ref_lp[Y], reduction="none")
     d = (ref_lp - lp).numpy()
     assert info["kl"] == pytest.approx(float(np.mean(np.expm1(d) - d)), abs=1e-14)
     kl_pi_ref = float((lp.exp() * (lp - ref_lp)).sum())
@@ -204,9 +204,9 @@ def test_reductions_and_info():
     from math import comb
     assert pinfo["pool_value"] == pytest.approx(np.mean([1 - comb(5 - ci, 2) / comb(5, 2) for ci in c]), abs=1e-14)
     assert "kl" not in info
-    # KL term adds kl_coef * mean_i KL_i per prompt
+    # KL term adds anchor_weight * mean_i KL_i per prompt
     ref = lp.detach() + 0.2
-    with_kl, kinfo = bon_rl_loss(lp, s, R, k=3, ref_logprobs=ref, kl_coef=0.5, reduction="none")
+    with_kl, kinfo = bon_rl_loss(lp, s, R, k=3, anchor_logprobs=ref, anchor_weight=0.5, reduction="none")
     k3 = np.expm1(0.2) - 0.2
     np.testing.assert_allclose((with_kl - none).numpy(), [0.5 * k3, 0.5 * k3], atol=1e-14)
     assert kinfo["kl"] == pytest.approx(k3, abs=1e-14)
@@ -252,12 +252,12 @@ def test_bad_input_messages():
         reinforce_loss(lp, s, mask=mask, token_reduction="max")
     with pytest.raises(ValueError, match=r"reduction must be one of \('none', 'mean', 'sum'\), got 'avg'"):
         nll_loss(lp[:, 0], reduction="avg")
-    with pytest.raises(ValueError, match=r"kl_coef must be a finite number >= 0, got kl_coef=-0.1"):
-        reinforce_loss(lp, s, mask=mask, kl_coef=-0.1)
+    with pytest.raises(ValueError, match=r"anchor_weight must be a finite number >= 0, got anchor_weight=-0.1"):
+        reinforce_loss(lp, s, mask=mask, anchor_weight=-0.1)
     with pytest.raises(ValueError, match=r"token_reduction='mean' needs token log-probs \(3 dimensions\), got logprobs of shape \(2, 3\)"):
         reinforce_loss(torch.zeros(2, 3), s, token_reduction="mean")
-    with pytest.raises(ValueError, match=r"ref_logprobs must have the same shape as logprobs \(2, 3\), got \(2, 4\)"):
-        reinforce_loss(torch.zeros(2, 3), s, ref_logprobs=torch.zeros(2, 4))
+    with pytest.raises(ValueError, match=r"anchor_logprobs must have the same shape as logprobs \(2, 3\), got \(2, 4\)"):
+        reinforce_loss(torch.zeros(2, 3), s, anchor_logprobs=torch.zeros(2, 4))
     with pytest.raises(ValueError, match=r"correct must hold only 0/1 \(or booleans\), got 2.0 at index \(0, 0\)"):
         pass_at_k_loss(torch.zeros(2, 3), torch.full((2, 3), 2.0), k=1)
     with pytest.raises(ValueError, match=r"expert_scores must have shape \(B,\) = \(2,\), got \(3,\)"):

@@ -31,7 +31,7 @@ def _n_params(model):
 
 def test_gpt2_parameter_count_matches_the_architecture():
     d, L, P = 128, 2, 128
-    model = build_tiny_model("gpt2", vocab_size=V, n_layer=L, d_model=d, max_positions=P)
+    model = build_tiny_model("gpt2", vocab_size=V, layers=L, width=d, max_positions=P)
     # embeddings V*d + positions P*d, L blocks of 12 d^2 + 13 d, final LayerNorm 2d, tied head (Radford et al. 2019)
     assert _n_params(model) == V * d + P * d + L * (12 * d * d + 13 * d) + 2 * d
     assert 0.35e6 < _n_params(model) < 0.45e6  # "0.4 M parameters" for the default size
@@ -39,7 +39,7 @@ def test_gpt2_parameter_count_matches_the_architecture():
 
 def test_llama_parameter_count_matches_the_architecture():
     d, L = 64, 3
-    model = build_tiny_model("llama", vocab_size=V, n_layer=L, d_model=d, n_head=4)
+    model = build_tiny_model("llama", vocab_size=V, layers=L, width=d, heads=4)
     # tied embeddings V*d, L blocks of 4 d^2 + 3 * d * 4d + 2d, final RMSNorm d (Touvron et al. 2023)
     assert _n_params(model) == V * d + L * (4 * d * d + 12 * d * d + 2 * d) + d
 
@@ -49,10 +49,10 @@ def test_seeded_init_is_reproducible_and_leaves_global_rng_alone(arch):
     torch.manual_seed(123)
     expected_next = torch.rand(3)
     torch.manual_seed(123)
-    a = build_tiny_model(arch, vocab_size=V, n_layer=1, d_model=32, n_head=2, seed=5)
+    a = build_tiny_model(arch, vocab_size=V, layers=1, width=32, heads=2, seed=5)
     assert torch.equal(torch.rand(3), expected_next)  # the caller's RNG stream is untouched
-    b = build_tiny_model(arch, vocab_size=V, n_layer=1, d_model=32, n_head=2, seed=5)
-    c = build_tiny_model(arch, vocab_size=V, n_layer=1, d_model=32, n_head=2, seed=6)
+    b = build_tiny_model(arch, vocab_size=V, layers=1, width=32, heads=2, seed=5)
+    c = build_tiny_model(arch, vocab_size=V, layers=1, width=32, heads=2, seed=6)
     sa, sb, sc = a.state_dict(), b.state_dict(), c.state_dict()
     assert all(torch.equal(sa[k], sb[k]) for k in sa)
     assert not all(torch.equal(sa[k], sc[k]) for k in sa)
@@ -60,7 +60,7 @@ def test_seeded_init_is_reproducible_and_leaves_global_rng_alone(arch):
 
 @pytest.mark.parametrize("arch", ["gpt2", "llama"])
 def test_checkpoint_round_trip(arch, tmp_path):
-    model = build_tiny_model(arch, vocab_size=V, n_layer=1, d_model=32, n_head=2, seed=2,
+    model = build_tiny_model(arch, vocab_size=V, layers=1, width=32, heads=2, seed=2,
                              pad_token_id=PAD_ID, eos_token_id=EOS_ID, bos_token_id=BOS_ID)
     ckpt = save_model(model, TOK, tmp_path / "ckpt")
     assert (ckpt / "model" / "config.json").is_file() and (ckpt / "model" / "model.safetensors").is_file()
@@ -73,7 +73,7 @@ def test_checkpoint_round_trip(arch, tmp_path):
     assert tok2("ab")["input_ids"] == TOK("ab")["input_ids"] and tok2.padding_side == "left"
     assert m2.config.eos_token_id == EOS_ID and not m2.training
     # overwrite in place: the new weights replace the old ones
-    other = build_tiny_model(arch, vocab_size=V, n_layer=1, d_model=32, n_head=2, seed=3)
+    other = build_tiny_model(arch, vocab_size=V, layers=1, width=32, heads=2, seed=3)
     save_model(other, TOK, ckpt)
     m3, _ = load_model(ckpt, device="cpu")
     with torch.no_grad():
@@ -81,7 +81,7 @@ def test_checkpoint_round_trip(arch, tmp_path):
 
 
 def test_plain_transformers_directory_loads(tmp_path):
-    model = build_tiny_model("gpt2", vocab_size=V, n_layer=1, d_model=32, n_head=2)
+    model = build_tiny_model("gpt2", vocab_size=V, layers=1, width=32, heads=2)
     model.save_pretrained(tmp_path)
     TOK.save_pretrained(tmp_path)
     m2, tok2 = load_model(tmp_path, device=torch.device("cpu"))
@@ -101,10 +101,10 @@ def test_pick_device():
 def test_bad_input(tmp_path):
     with pytest.raises(ValueError, match=r"arch must be one of \('gpt2', 'llama'\), got 'rnn'"):
         build_tiny_model("rnn", vocab_size=V)
-    with pytest.raises(ValueError, match=r"d_model must be divisible by n_head \(n_head=3\), got d_model=128"):
-        build_tiny_model("gpt2", vocab_size=V, n_head=3)
-    with pytest.raises(ValueError, match=r"d_model / n_head must be even"):
-        build_tiny_model("llama", vocab_size=V, d_model=12, n_head=4)
+    with pytest.raises(ValueError, match=r"width must be divisible by heads \(heads=3\), got width=128"):
+        build_tiny_model("gpt2", vocab_size=V, heads=3)
+    with pytest.raises(ValueError, match=r"width / heads must be even"):
+        build_tiny_model("llama", vocab_size=V, width=12, heads=4)
     with pytest.raises(ValueError, match=r"eos_token_id must be <= 9, got eos_token_id=10"):
         build_tiny_model("gpt2", vocab_size=10, eos_token_id=10)
     with pytest.raises(TypeError, match=r"vocab_size must be an int, got float"):
@@ -117,8 +117,8 @@ def test_bad_input(tmp_path):
 
 def test_load_model_accepts_a_run_directory(tmp_path):
     # a training run directory resolves to its newest checkpoints/step-* (the layout bonft train writes)
-    old = build_tiny_model("gpt2", vocab_size=V, n_layer=1, d_model=32, n_head=2, seed=3)
-    new = build_tiny_model("gpt2", vocab_size=V, n_layer=1, d_model=32, n_head=2, seed=4)
+    old = build_tiny_model("gpt2", vocab_size=V, layers=1, width=32, heads=2, seed=3)
+    new = build_tiny_model("gpt2", vocab_size=V, layers=1, width=32, heads=2, seed=4)
     for step, m in ((2, old), (10, new)):
         ckpt = save_model(m, TOK, tmp_path / "run" / "checkpoints" / f"step-{step:08d}")
         (ckpt / "state.pt").write_bytes(b"")  # the trainer's mark of a complete checkpoint

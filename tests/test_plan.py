@@ -239,8 +239,8 @@ def test_paired_identical_pools_are_never_significantly_different():
 
 def test_unpaired_when_prompt_sets_differ():
     rng = np.random.default_rng(4)
-    a = Pools(rng.normal(size=(20, 6)), rng.random((20, 6)), prompt_ids=[f"a{i}" for i in range(20)])
-    b = Pools(rng.normal(size=(25, 6)), rng.random((25, 6)), prompt_ids=[f"b{i}" for i in range(25)])
+    a = Pools(rng.normal(size=(20, 6)), rng.random((20, 6)), prompt_keys=[f"a{i}" for i in range(20)])
+    b = Pools(rng.normal(size=(25, 6)), rng.random((25, 6)), prompt_keys=[f"b{i}" for i in range(25)])
     res = plan_pools({0.5: a, 1.0: b}, n_boot=200)
     assert not res.paired and any("unpaired" in n for n in res.notes)
     assert list(res.n_prompts) == [20, 25]

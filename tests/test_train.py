@@ -16,14 +16,14 @@ from bonft.trainer.checkpoint import latest_checkpoint, load_state
 from bonft.trainer.config import from_dict, to_toml
 
 TINY = dict(
-    n_layer=1, d_model=32, n_head=2, max_positions=48, n_train=64, n_eval=6, sft_steps=4, sft_batch_size=8,
+    layers=1, width=32, heads=2, max_positions=48, n_train=64, n_eval=6, sft_steps=4, sft_batch_size=8,
     sft_lr=1e-2, rl_steps=4, prompts_per_step=4, n=4, k=2, lr=1e-2, eval_n=4, eval_ks=[1, 4], n_boot=50,
     log_every=1, save_every=2, max_new_tokens=6, plots=False, eval_at_start=False, threads=1,
 )
 
 
 def tiny(tmp_path, name="run", **kw):
-    return from_dict({**TINY, "out_dir": str(tmp_path / name), "name": name, **kw})
+    return from_dict({**TINY, "run_dir": str(tmp_path / name), "name": name, **kw})
 
 
 def final_weights(out) -> dict:
@@ -42,12 +42,12 @@ def reference(tmp_path_factory):
     tmp = tmp_path_factory.mktemp("ref")
     cfg = tiny(tmp, "ref")
     summary = T.train(cfg, progress=False)
-    return cfg, summary, final_weights(cfg.out_dir)
+    return cfg, summary, final_weights(cfg.run_dir)
 
 
 def test_end_to_end_writes_everything(reference):
     cfg, summary, weights = reference
-    out = Path(cfg.out_dir)
+    out = Path(cfg.run_dir)
     lines = [json.loads(ln) for ln in (out / "metrics.jsonl").read_text().splitlines()]
     train_lines = [r for r in lines if r["kind"] == "train"]
     assert [r["step"] for r in train_lines] == list(range(1, 9))
@@ -72,7 +72,7 @@ def test_same_seed_same_weights_and_seed_matters(tmp_path, reference):
     cfg, _, weights = reference
     again = tiny(tmp_path, "again")
     T.train(again, progress=False)
-    assert_same_weights(final_weights(again.out_dir), weights)
+    assert_same_weights(final_weights(again.run_dir), weights)
 
 
 def test_ctrl_c_writes_checkpoint_and_resume_is_exact(tmp_path, reference, monkeypatch):
@@ -88,11 +88,11 @@ def test_ctrl_c_writes_checkpoint_and_resume_is_exact(tmp_path, reference, monke
     monkeypatch.setattr(T, "rl_step", interrupt_at_6)
     with pytest.raises(KeyboardInterrupt):
         T.train(cfg, progress=False)
-    assert load_state(latest_checkpoint(cfg.out_dir))["step"] == 6
+    assert load_state(latest_checkpoint(cfg.run_dir))["step"] == 6
     monkeypatch.setattr(T, "rl_step", real)
     T.train(cfg, resume=True, progress=False)
-    assert_same_weights(final_weights(cfg.out_dir), weights)
-    steps = [json.loads(ln)["step"] for ln in (Path(cfg.out_dir) / "metrics.jsonl").read_text().splitlines()
+    assert_same_weights(final_weights(cfg.run_dir), weights)
+    steps = [json.loads(ln)["step"] for ln in (Path(cfg.run_dir) / "metrics.jsonl").read_text().splitlines()
              if '"train"' in ln]
     assert steps == list(range(1, 9))  # no step logged twice, none lost
 
@@ -107,7 +107,7 @@ def test_kill_9_then_resume_is_exact(tmp_path, reference):
     killed_at = None
     deadline = time.monotonic() + 120
     while time.monotonic() < deadline and proc.poll() is None:
-        ck = latest_checkpoint(cfg.out_dir)
+        ck = latest_checkpoint(cfg.run_dir)
         if ck is not None and int(ck.name.split("-")[1]) >= 2:
             os.kill(proc.pid, signal.SIGKILL)
             killed_at = int(ck.name.split("-")[1])
@@ -116,9 +116,9 @@ def test_kill_9_then_resume_is_exact(tmp_path, reference):
     proc.wait()
     assert killed_at is not None, f"the run ended before it could be killed: {proc.stderr.read().decode()[-500:]}"
     assert proc.returncode == -signal.SIGKILL
-    assert load_state(latest_checkpoint(cfg.out_dir))["step"] < 8
+    assert load_state(latest_checkpoint(cfg.run_dir))["step"] < 8
     T.train(cfg, resume=True, progress=False)  # in-process: one interpreter start less
-    assert_same_weights(final_weights(cfg.out_dir), weights)
+    assert_same_weights(final_weights(cfg.run_dir), weights)
 
 
 def test_refuses_to_overwrite_a_run(tmp_path, reference):

@@ -5,8 +5,8 @@ from bonft.trainer.demo import DemoConfig, run_demo, study_table
 
 
 def test_tiny_demo_end_to_end(tmp_path, capsys):
-    dc = DemoConfig(out_dir=str(tmp_path / "demo"), n_train=32, n_eval=4, sft_steps=3, sft_batch_size=8, rl_steps=2,
-                    prompts_per_step=4, n=8, k=4, eval_n=8, eval_ks=[1, 8], n_layer=1, d_model=32, n_head=2,
+    dc = DemoConfig(run_dir=str(tmp_path / "demo"), n_train=32, n_eval=4, sft_steps=3, sft_batch_size=8, rl_steps=2,
+                    prompts_per_step=4, n=8, k=4, eval_n=8, eval_ks=[1, 8], layers=1, width=32, heads=2,
                     max_new_tokens=5, n_boot=50, threads=1)
     summary = run_demo(dc, progress=False)
     out = tmp_path / "demo"

@@ -14,7 +14,7 @@ from bonft.tasks import build_tokenizer, get_task
 def setup():
     torch.set_num_threads(1)
     tok = build_tokenizer()
-    model = build_tiny_model("gpt2", vocab_size=len(tok), n_layer=1, d_model=32, n_head=2, max_positions=48, seed=1,
+    model = build_tiny_model("gpt2", vocab_size=len(tok), layers=1, width=32, heads=2, max_positions=48, seed=1,
                              pad_token_id=tok.pad_token_id, eos_token_id=tok.eos_token_id, bos_token_id=tok.bos_token_id)
     task = get_task("ledger")
     _, held = task.split(n_train=8, n_eval=6, seed=0)
@@ -54,6 +54,6 @@ def test_entropy_estimate_is_mean_negative_logprob(setup):
                                max_new_tokens=4, seed=5, n_boot=20, temperature=0.8)
     smp = sample(model, tok, prompts, n=4, temperature=0.8, max_new_tokens=4, seed=5, batch_size=4096)
     with torch.no_grad():  # recomputed with the training forward pass at the same temperature
-        lp = sequence_logprobs(model, smp.prompt_ids, smp.prompt_mask, smp.response_ids, smp.response_mask, temperature=0.8)
+        lp = sequence_logprobs(model, smp.prompt_tokens, smp.prompt_valid, smp.reply_tokens, smp.reply_valid, temperature=0.8)
     assert rep.entropy == pytest.approx(float(-lp.sum(-1).mean()), rel=1e-5)
     assert raw["texts"] == smp.texts

@@ -5,7 +5,7 @@ import numpy as np
 import pytest
 
 from bonft.verifiers import ExactMatch, NumericMatch, extract_answer, score_batch
-from bonft.verifiers.answers import normalize_answer, parse_number
+from bonft.verifiers.answers import canonical_answer, parse_number
 
 
 @pytest.mark.parametrize(
@@ -63,7 +63,7 @@ def test_exact_match_scores_and_rewards():
     np.testing.assert_array_equal(out.rewards, out.scores)
     strict = ExactMatch({"q": "Paris"}, normalize=None)
     np.testing.assert_array_equal(strict(["q", "q"], ["answer: paris", "answer: Paris"]).scores, [0, 1])
-    assert normalize_answer("  New   York. ") == "new york"
+    assert canonical_answer("  New   York. ") == "new york"
 
 
 def test_numeric_match_tolerances():

@@ -28,7 +28,7 @@ def _demo_config(args):
     from ..trainer.config import _convert, _parse_scalar
     from ..trainer.demo import DemoConfig
 
-    dc = DemoConfig(out_dir=args.out, seed=args.seed)
+    dc = DemoConfig(run_dir=args.out, seed=args.seed)
     fields = {f.name: f for f in dataclasses.fields(DemoConfig)}
     for item in args.overrides:
         if "=" not in item:
@@ -38,10 +38,10 @@ def _demo_config(args):
             dc.task_params[key.split(".", 1)[1]] = _parse_scalar(text)
         elif key == "objectives":
             dc.objectives = tuple(v.strip() for v in text.split(",") if v.strip())
-        elif key in fields and key not in ("out_dir", "seed"):
+        elif key in fields and key not in ("run_dir", "seed"):
             setattr(dc, key, _convert(key, text, getattr(dc, key)))
         else:
-            raise ValueError(f"--set key must be a demo knob among {sorted(set(fields) - {'out_dir', 'seed'})}, got {key!r}")
+            raise ValueError(f"--set key must be a demo knob among {sorted(set(fields) - {'run_dir', 'seed'})}, got {key!r}")
     return dc
 
 

@@ -5,7 +5,7 @@ import argparse
 import os
 from ._args import parse_list, write_json_atomic
 
-HELP = "best-of-k (verifier picks) and oracle pass@k with bootstrap CIs from a samples JSONL file"
+HELP = "best-of-k (verifier picks) and oracle pass@k with bootstrap CIs from a pool file (JSONL of scored samples)"
 DESCRIPTION = (
     "Read a samples file (one JSON object a line: prompt_id, score, reward, optional temperature) "
     "and print, for each k, the unbiased best-of-k value when the verifier picks among k samples, "
@@ -22,7 +22,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--reward-field", default="reward", help="field holding the true reward (default: reward)")
     p.add_argument("--temperature-field", default="temperature",
                    help="field holding the sampling temperature, optional in the file (default: temperature)")
-    p.add_argument("--k", default=None, help="comma-separated k values (default: 1,2,4,... up to the smallest pool)")
+    p.add_argument("--ks", default=None, help="comma-separated k values (default: 1,2,4,... up to the smallest pool)")
     p.add_argument("--confidence", type=float, default=0.95, help="confidence level of the intervals (default: 0.95)")
     p.add_argument("--boot", type=int, default=2000, help="bootstrap replicates (default: 2000)")
     p.add_argument("--seed", type=int, default=0, help="bootstrap seed (default: 0)")
@@ -37,13 +37,13 @@ def run(args) -> int:
     from bonft.io import group_pools, read_samples, temperatures_of
 
     if args.example and args.samples:
-        raise ValueError(f"give either SAMPLES or --example, got both ({args.samples!r} and --example)")
+        raise ValueError(f"give either POOLS or --example, got both ({args.samples!r} and --example)")
     if not args.example and not args.samples:
-        raise ValueError("SAMPLES must be a samples JSONL file (or pass --example), got nothing")
+        raise ValueError("POOLS must be a pool file (JSONL of scored samples) (or pass --example), got nothing")
     path = example_samples_path() if args.example else args.samples
     if not os.path.isfile(path):
-        raise FileNotFoundError(f"SAMPLES file not found: {path}")
-    ks = parse_list("--k", args.k)
+        raise FileNotFoundError(f"POOLS file not found: {path}")
+    ks = parse_list("--ks", args.ks)
     if args.boot < 1:
         raise ValueError(f"--boot must be >= 1, got {args.boot}")
     if args.seed < 0:
@@ -62,9 +62,9 @@ def run(args) -> int:
         _, s, r = group_pools(table, temperature=t)
         n_min = min(len(x) for x in s)
         if ks is not None and max(ks) > n_min:
-            raise ValueError(f"--k must be <= the smallest pool (n={n_min}), got {max(ks)}")
+            raise ValueError(f"--ks must be <= the smallest pool (n={n_min}), got {max(ks)}")
         if ks is not None and min(ks) < 1:
-            raise ValueError(f"--k must be >= 1, got {min(ks)}")
+            raise ValueError(f"--ks must be >= 1, got {min(ks)}")
         summ = summarize(s, r, ks if ks is not None else default_ks(n_min),
                          confidence=args.confidence, n_boot=args.boot, seed=args.seed)
         label = "" if t is None else f"T={t:g}"

@@ -40,7 +40,7 @@ def load_for_eval(args: argparse.Namespace, *, n: int, ks: list[int], temperatur
     ckpt = resolve_checkpoint(args.checkpoint)
     base = load_config(ckpt / "config.toml").to_dict() if (ckpt / "config.toml").is_file() else {}
     values = apply_overrides(base, list(args.overrides))
-    values.update(init_from=str(ckpt), eval_n=n, eval_ks=ks, eval_temperature=temperature,
+    values.update(start_from=str(ckpt), eval_n=n, eval_ks=ks, eval_temperature=temperature,
                   eval_prompts=args.prompts, seed=values.get("seed", FIELDS["seed"].default))
     cfg = from_dict(values)
     return ckpt, cfg, build_run(cfg)

@@ -114,11 +114,11 @@ def draw_samples(
         for t in temps:
             files[float(t)] = cache_file(cache_dir, model_hash=m_hash, prompts_hash=p_hash, verifier=verifier_name,
                                          temperature=float(t), n=n, seed=seed, top_p=top_p, max_new_tokens=max_new_tokens)
-    cols = {k: [] for k in ("prompt_ids", "scores", "rewards", "temperatures", "n_tokens")}
+    cols = {k: [] for k in ("prompt_keys", "scores", "rewards", "temperatures", "n_tokens")}
     info = {"sampled": [], "cached": [], "failed": 0, "no_rewards": False, "files": [str(f) for f in files.values()]}
 
     def add(tab):
-        cols["prompt_ids"].append(np.asarray(tab.prompt_ids).astype(str))
+        cols["prompt_keys"].append(np.asarray(tab.prompt_keys).astype(str))
         cols["scores"].append(tab.scores), cols["rewards"].append(tab.rewards)
         cols["temperatures"].append(tab.temperatures), cols["n_tokens"].append(tab.n_tokens)
 
@@ -142,7 +142,7 @@ def draw_samples(
                          seed=_seed_for(seed, t, c // PROMPT_CHUNK), batch_size=batch_size)
             flat_p = [p for p in part for _ in range(n)]  # (B, n) -> B*n rows, prompt-major
             flat_r = [txt for row in out.texts for txt in row]
-            lengths = out.response_mask.sum(-1).reshape(-1).tolist()  # (B, n) generated tokens -> B*n
+            lengths = out.reply_valid.sum(-1).reshape(-1).tolist()  # (B, n) generated tokens -> B*n
             v = score_batch(verifier, flat_p, flat_r)
             info["failed"] += v.n_failed
             rewards = v.rewards
@@ -153,7 +153,7 @@ def draw_samples(
                              "temperature": t, "n_tokens": int(lengths[i]), "response": flat_r[i]})
             bar.update(len(part) * n)
         tab = SampleTable(
-            prompt_ids=np.asarray([r["prompt_id"] for r in rows]),
+            prompt_keys=np.asarray([r["prompt_id"] for r in rows]),
             scores=np.asarray([r["score"] for r in rows], dtype=np.float64),
             rewards=np.asarray([r["reward"] for r in rows], dtype=np.float64),
             temperatures=np.full(len(rows), t),

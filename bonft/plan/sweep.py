@@ -60,7 +60,7 @@ class Pools:
 
     scores:      (P, n) array, or a list of P 1-D arrays (ragged pools), verifier scores.
     rewards:     same layout as ``scores``, true rewards.
-    prompt_ids:  (P,) prompt keys, or None: row i is prompt i, the same prompts in the
+    prompt_keys:  (P,) prompt keys, or None: row i is prompt i, the same prompts in the
                  same order at every temperature.
     mean_tokens: mean generated tokens per response at this temperature (for token
                  budgets), or None when unknown.
@@ -68,7 +68,7 @@ class Pools:
 
     scores: Any
     rewards: Any
-    prompt_ids: Any = None
+    prompt_keys: Any = None
     mean_tokens: float | None = None
 
 
@@ -182,11 +182,11 @@ def plan_pools(
             raise ValueError(f"pools at temperature {t:g} must hold at least one prompt, got none")
         if ns.min() < 1:
             raise ValueError(f"every pool must hold at least one sample, got an empty pool at temperature {t:g}")
-        keys = np.arange(ns.size) if p.prompt_ids is None else np.asarray(p.prompt_ids).astype(str)
+        keys = np.arange(ns.size) if p.prompt_keys is None else np.asarray(p.prompt_keys).astype(str)
         if keys.shape[0] != ns.size:
-            raise ValueError(f"prompt_ids must have {ns.size} entries at temperature {t:g}, got {keys.shape[0]}")
+            raise ValueError(f"prompt_keys must have {ns.size} entries at temperature {t:g}, got {keys.shape[0]}")
         if np.unique(keys).size != keys.size:
-            raise ValueError(f"prompt_ids must be distinct at temperature {t:g}")
+            raise ValueError(f"prompt_keys must be distinct at temperature {t:g}")
         scores_l.append(s), rewards_l.append(r), keys_l.append(keys), n_min.append(int(ns.min()))
     n_min = np.asarray(n_min, dtype=np.int64)
     k_cap = int(n_min.min())
@@ -283,7 +283,7 @@ def plan_samples(
             s_pools, r_pools = np.stack(s_pools), np.stack(r_pools)
         else:
             s_pools, r_pools = list(s_pools), list(r_pools)
-        pools[float(t)] = Pools(s_pools, r_pools, prompt_ids=np.asarray(keys), mean_tokens=mean_tokens)
+        pools[float(t)] = Pools(s_pools, r_pools, prompt_keys=np.asarray(keys), mean_tokens=mean_tokens)
     return plan_pools(
         pools,
         max_k=max_k,

@@ -59,15 +59,15 @@ class TrainConfig:
     # --- run ---
     name: str = _f("run", "A label for the run, written into metrics and summaries.", group="run")
     seed: int = _f(0, "Seed of the run. The RNG of every step is derived from (seed, step, rank), so a resumed run draws what an uninterrupted one would.", group="run")
-    out_dir: str = _f("runs/run", "Directory for metrics.jsonl, checkpoints/, plots and summary.json.", group="run")
+    run_dir: str = _f("runs/run", "Directory for metrics.jsonl, checkpoints/, plots and summary.json.", group="run")
     device: str = _f("cpu", "'cpu', 'cuda' or 'auto'.", group="run")
     threads: int = _f(1, "torch intra-op threads (>= 1). Tiny models run fastest single-threaded; use the other cores for parallel runs.", group="run")
     # --- model ---
-    init_from: str = _f("", "Start from this model: a bonft checkpoint directory or a local transformers directory. Empty = build a tiny model from the fields below.", group="model")
+    start_from: str = _f("", "Start from this model: a bonft checkpoint directory or a local transformers directory. Empty = build a tiny model from the fields below.", group="model")
     arch: str = _f("gpt2", "Tiny model family when building from scratch: 'gpt2' or 'llama'.", group="model")
-    n_layer: int = _f(2, "Transformer layers of the tiny model.", group="model")
-    d_model: int = _f(128, "Width of the tiny model.", group="model")
-    n_head: int = _f(4, "Attention heads of the tiny model.", group="model")
+    layers: int = _f(2, "Transformer layers of the tiny model.", group="model")
+    width: int = _f(128, "Width of the tiny model.", group="model")
+    heads: int = _f(4, "Attention heads of the tiny model.", group="model")
     max_positions: int = _f(96, "Context length of the tiny model (prompt + response tokens).", group="model")
     # --- task ---
     task: str = _f("ledger", "Built-in task name (see docs/tasks.md), or 'jsonl' to read prompts_file.", group="task")
@@ -96,7 +96,7 @@ class TrainConfig:
     weight_decay: float = _f(0.0, "AdamW weight decay (both stages).", group="rl")
     grad_accum: int = _f(1, "Micro-batches per optimizer step; prompts_per_step must divide evenly.", group="rl")
     clip_grad_norm: float = _f(1.0, "Clip the gradient's global norm to this value; 0 = no clipping.", group="rl")
-    kl_coef: float = _f(0.0, "Weight of the KL penalty to the policy at the start of the RL stage; 0 = none.", group="rl")
+    anchor_weight: float = _f(0.0, "Weight of the KL penalty to the policy at the start of the RL stage; 0 = none.", group="rl")
     token_reduction: str = _f("sum", "'sum': sequence log-prob (unbiased policy gradient); 'mean': length-normalised (biased).", group="rl")
     reward_source: str = _f("rewards", "'rewards': train on the verifier's true rewards where it reports them (task labels; the verifier still selects for best_of_k), else its scores; 'scores': train on the verifier's scores only (e.g. against a reward model; with verifier='proxy' this shows reward hacking).", group="rl")
     correct_threshold: float = _f(0.5, "A sample counts as correct for pass@k objectives when its reward is >= this.", group="rl")
@@ -172,7 +172,7 @@ def validate(c: TrainConfig) -> None:
     if c.objective == "loo_reinforce" and c.n < 2:
         raise ValueError(f"n must be >= 2 for a leave-one-out baseline, got n={c.n}")
     for name in ("threads", "prompts_per_step", "grad_accum", "max_new_tokens", "n_train", "n_eval", "eval_n",
-                 "sft_batch_size", "keep_checkpoints", "n_layer", "d_model", "n_head", "max_positions", "n_boot"):
+                 "sft_batch_size", "keep_checkpoints", "layers", "width", "heads", "max_positions", "n_boot"):
         check_int(name, getattr(c, name), min=1)
     if c.prompts_per_step % c.grad_accum:
         raise ValueError(f"prompts_per_step must be divisible by grad_accum (grad_accum={c.grad_accum}), got prompts_per_step={c.prompts_per_step}")
@@ -193,7 +193,7 @@ def validate(c: TrainConfig) -> None:
         raise ValueError(f"eval_prompts must be <= n_eval (n_eval={c.n_eval}), got eval_prompts={c.eval_prompts}")
     if c.task == "jsonl" and not c.prompts_file:
         raise ValueError("prompts_file must name a JSONL file when task = 'jsonl', got ''")
-    if c.sft_steps == 0 and c.rl_steps == 0 and not c.init_from:
+    if c.sft_steps == 0 and c.rl_steps == 0 and not c.start_from:
         raise ValueError("nothing to train: sft_steps and rl_steps are both 0 (set one, e.g. --set rl_steps=100)")
 
 

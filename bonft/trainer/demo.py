@@ -33,7 +33,7 @@ from .config import TrainConfig
 class DemoConfig:
     """Knobs of the demo (the defaults fit ~10 minutes on 2 CPU cores)."""
 
-    out_dir: str = "runs/demo"
+    run_dir: str = "runs/demo"
     seed: int = 0
     task_params: dict = field(default_factory=lambda: {"hard_share": 0.3, "max_factor": 9})
     n_train: int = 2000
@@ -50,9 +50,9 @@ class DemoConfig:
     eval_n: int = 64
     eval_ks: list = field(default_factory=lambda: [1, 4, 16, 32])
     objectives: tuple = ("loo_reinforce", "pass_at_k")
-    n_layer: int = 2
-    d_model: int = 128
-    n_head: int = 4
+    layers: int = 2
+    width: int = 128
+    heads: int = 4
     max_new_tokens: int = 6
     n_boot: int = 1000
     threads: int = 1
@@ -76,7 +76,7 @@ def _base(dc: DemoConfig, **kw) -> TrainConfig:
         seed=dc.seed, task="ledger", task_params=dict(dc.task_params), n_train=dc.n_train, n_eval=dc.n_eval,
         sft_batch_size=dc.sft_batch_size, sft_lr=dc.sft_lr, prompts_per_step=dc.prompts_per_step, n=dc.n,
         k=dc.k, lr=dc.lr, warmup_steps=dc.warmup_steps, eval_n=dc.eval_n, eval_ks=list(dc.eval_ks), save_every=0, log_every=10,
-        n_layer=dc.n_layer, d_model=dc.d_model, n_head=dc.n_head, max_new_tokens=dc.max_new_tokens,
+        layers=dc.layers, width=dc.width, heads=dc.heads, max_new_tokens=dc.max_new_tokens,
         n_boot=dc.n_boot, threads=dc.threads,
     )
     values.update(kw)
@@ -95,13 +95,13 @@ def _stage(cfg: TrainConfig, progress: bool) -> dict:
     """Run one trainer stage, or reuse it when its run directory already holds a finished run."""
     from .loop import train
 
-    done = _final_eval(Path(cfg.out_dir))
+    done = _final_eval(Path(cfg.run_dir))
     if done is not None:
-        print(f"{cfg.name}: reusing the finished run in {cfg.out_dir}")
+        print(f"{cfg.name}: reusing the finished run in {cfg.run_dir}")
         return done
-    resume = (Path(cfg.out_dir) / "checkpoints").exists()
+    resume = (Path(cfg.run_dir) / "checkpoints").exists()
     train(cfg, resume=resume, progress=progress)
-    return _final_eval(Path(cfg.out_dir))
+    return _final_eval(Path(cfg.run_dir))
 
 
 def _stage_in_child(cfg: TrainConfig) -> None:
@@ -127,8 +127,8 @@ def _parallel_stages(cfgs: list[TrainConfig], workers: int, progress: bool) -> d
     bar = tqdm(total=total, desc="RL stages (parallel)", disable=not progress, dynamic_ncols=True)
 
     def done_steps(c: TrainConfig) -> int:
-        path = Path(c.out_dir) / "metrics.jsonl"
-        if (Path(c.out_dir) / "summary.json").is_file():
+        path = Path(c.run_dir) / "metrics.jsonl"
+        if (Path(c.run_dir) / "summary.json").is_file():
             return c.rl_steps
         if not path.is_file():
             return 0
@@ -147,7 +147,7 @@ def _parallel_stages(cfgs: list[TrainConfig], workers: int, progress: bool) -> d
                 if not p.is_alive():
                     p.join()
                     if p.exitcode != 0:
-                        raise RuntimeError(f"stage {c.name} failed (exit code {p.exitcode}); see {c.out_dir}")
+                        raise RuntimeError(f"stage {c.name} failed (exit code {p.exitcode}); see {c.run_dir}")
                     running.remove((c, p))
             bar.n = sum(done_steps(c) for c in cfgs)
             bar.refresh()
@@ -157,7 +157,7 @@ def _parallel_stages(cfgs: list[TrainConfig], workers: int, progress: bool) -> d
         raise
     finally:
         bar.close()
-    return {c.name: _final_eval(Path(c.out_dir)) for c in cfgs}
+    return {c.name: _final_eval(Path(c.run_dir)) for c in cfgs}
 
 
 def objective_config(dc: DemoConfig, objective: str, warm: str, out: Path) -> TrainConfig:
@@ -166,7 +166,7 @@ def objective_config(dc: DemoConfig, objective: str, warm: str, out: Path) -> Tr
         extra = {"objective": "pass_at_k", "k": min(16, dc.n), "k_final": 1, "k_schedule": "geometric"}
     else:
         extra = {"objective": objective, "k": 1 if objective == "loo_reinforce" else dc.k}
-    return _base(dc, name=objective, out_dir=str(out / objective), init_from=warm, rl_steps=dc.rl_steps,
+    return _base(dc, name=objective, run_dir=str(out / objective), start_from=warm, rl_steps=dc.rl_steps,
                  eval_at_start=False, **extra)
 
 
@@ -176,10 +176,10 @@ def run_demo(dc: DemoConfig | None = None, *, progress: bool = True) -> dict:
     from ..viz import plot_comparison
 
     dc = dc or DemoConfig()
-    out = Path(dc.out_dir)
+    out = Path(dc.run_dir)
     out.mkdir(parents=True, exist_ok=True)
     t0 = time.perf_counter()
-    warm_cfg = _base(dc, name="warm_start", out_dir=str(out / "warm_start"), sft_steps=dc.sft_steps, rl_steps=0)
+    warm_cfg = _base(dc, name="warm_start", run_dir=str(out / "warm_start"), sft_steps=dc.sft_steps, rl_steps=0)
     results = {"warm_start": _stage(warm_cfg, progress)}
     timings = {"warm_start": time.perf_counter() - t0}
     warm = str(latest_checkpoint(out / "warm_start"))
@@ -242,10 +242,10 @@ def run_study(dc: DemoConfig | None = None, *, seeds=(0, 1, 2), objectives=STUDY
     Slow: about (1 + len(objectives)) trainer stages per seed.
     """
     dc = dc or DemoConfig()
-    root = Path(dc.out_dir)
+    root = Path(dc.run_dir)
     per = {}
     for s in seeds:
-        res = run_demo(replace(dc, seed=s, out_dir=str(root / f"seed{s}"), objectives=tuple(objectives)), progress=progress)
+        res = run_demo(replace(dc, seed=s, run_dir=str(root / f"seed{s}"), objectives=tuple(objectives)), progress=progress)
         per[s] = res["results"]
     table = study_table(per)
     (root / "study.md").write_text(table + "\n")

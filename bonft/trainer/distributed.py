@@ -326,7 +326,7 @@ def sample_per_prompt(model: Any, tokenizer: Any, prompts: Sequence[str], *, see
     """:func:`bonft.trainer.generation.sample` with one generator per prompt: prompt b's n responses come from ``seeds[b]``.
 
     prompts: B strings, seeds: B ints (e.g. :func:`prompt_seed` of each prompt's
-    global slot) -> ``Samples`` with ``response_ids (B, n, T)``, as ``sample`` lays them out.
+    global slot) -> ``Samples`` with ``reply_tokens (B, n, T)``, as ``sample`` lays them out.
 
     A prompt's samples depend only on (model, prompt, seed), not on which other
     prompts share the call, so W ranks holding different prompts draw what one

@@ -35,10 +35,10 @@ from .._checks import check_fraction, check_int, check_positive
 class Samples:
     """n sampled responses for each of B prompts.
 
-    prompt_ids:     (B, Tp) long, left-padded with the pad id.
-    prompt_mask:    (B, Tp) long, 1 on prompt tokens.
-    response_ids:   (B, n, T) long, right-padded with the pad id.
-    response_mask:  (B, n, T) long, 1 on generated tokens up to and including EOS.
+    prompt_tokens:     (B, Tp) long, left-padded with the pad id.
+    prompt_valid:    (B, Tp) long, 1 on prompt tokens.
+    reply_tokens:   (B, n, T) long, right-padded with the pad id.
+    reply_valid:  (B, n, T) long, 1 on generated tokens up to and including EOS.
     token_logprobs: (B, n, T) float, log pi_T of each generated token at the
                     sampling temperature (top-p renormalised if used), 0 where masked.
     texts:          B lists of n decoded responses (special tokens removed).
@@ -46,10 +46,10 @@ class Samples:
     top_p:          the nucleus mass used (1.0 = none).
     """
 
-    prompt_ids: torch.Tensor
-    prompt_mask: torch.Tensor
-    response_ids: torch.Tensor
-    response_mask: torch.Tensor
+    prompt_tokens: torch.Tensor
+    prompt_valid: torch.Tensor
+    reply_tokens: torch.Tensor
+    reply_valid: torch.Tensor
     token_logprobs: torch.Tensor
     texts: list[list[str]]
     temperature: float
@@ -57,7 +57,7 @@ class Samples:
 
     @property
     def n(self) -> int:
-        return int(self.response_ids.shape[1])
+        return int(self.reply_tokens.shape[1])
 
     def sequence_logprob(self) -> torch.Tensor:
         """(B, n): log pi_T of each whole response (sum of token log-probs)."""
@@ -65,7 +65,7 @@ class Samples:
 
     def lengths(self) -> torch.Tensor:
         """(B, n): number of generated tokens (EOS included)."""
-        return self.response_mask.sum(-1)
+        return self.reply_valid.sum(-1)
 
 
 # ---------------------------------------------------------------- validation
@@ -273,7 +273,7 @@ def sample(
 ) -> Samples:
     """Draw ``n`` responses for each prompt from the temperature-``T`` policy.
 
-    prompts: B strings -> :class:`Samples` with ``response_ids (B, n, T)``.
+    prompts: B strings -> :class:`Samples` with ``reply_tokens (B, n, T)``.
 
     ``pi_T(y_t | x, y_<t) = softmax(logits_t / T)`` (restricted to the top-p
     nucleus and renormalised when ``top_p < 1``). Each prompt is repeated n
@@ -329,9 +329,9 @@ def sample(
             f"prompt takes {longest} tokens), got max_new_tokens={max_new_tokens}"
         )
     device = _model_device(model)
-    prompt_ids, prompt_mask = _left_pad(rows, pad_id)
-    B, Tp = prompt_ids.shape
-    ids, mask = prompt_ids.to(device), prompt_mask.to(device)  # (B, Tp); each is expanded to n rows when decoded
+    prompt_tokens, prompt_valid = _left_pad(rows, pad_id)
+    B, Tp = prompt_tokens.shape
+    ids, mask = prompt_tokens.to(device), prompt_valid.to(device)  # (B, Tp); each is expanded to n rows when decoded
     chunk = n * max(1, (batch_size or B * n) // n)  # rows per decoding chunk, whole prompts
     generator, generators = None, None
     if seed is not None:
@@ -373,10 +373,10 @@ def sample(
         flat.append(tokenizer.decode(kept, skip_special_tokens=True))
     texts = [flat[b * n:(b + 1) * n] for b in range(B)]
     return Samples(
-        prompt_ids=prompt_ids.to(device),
-        prompt_mask=prompt_mask.to(device),
-        response_ids=resp.view(B, n, T),  # (B*n, T) -> (B, n, T)
-        response_mask=rmask.view(B, n, T),
+        prompt_tokens=prompt_tokens.to(device),
+        prompt_valid=prompt_valid.to(device),
+        reply_tokens=resp.view(B, n, T),  # (B*n, T) -> (B, n, T)
+        reply_valid=rmask.view(B, n, T),
         token_logprobs=rlp.view(B, n, T),
         texts=texts,
         temperature=temperature,
@@ -391,7 +391,7 @@ def encode_responses(tokenizer, prompts: Sequence[str], responses, *, add_eos: b
     """Token tensors for given texts, in the layout of :class:`Samples` (e.g. for supervised warm-starts).
 
     prompts: B strings; responses: B lists of n strings (or B strings, n = 1) ->
-    ``(prompt_ids (B, Tp), prompt_mask (B, Tp), response_ids (B, n, T), response_mask (B, n, T))``,
+    ``(prompt_tokens (B, Tp), prompt_valid (B, Tp), reply_tokens (B, n, T), reply_valid (B, n, T))``,
     prompts left-padded and tokenized with the tokenizer's special tokens, responses
     without them, right-padded, each followed by EOS when ``add_eos`` (the tokenizer
     must have one). ``sequence_logprobs(model, *encode_responses(...))`` is then the
@@ -414,7 +414,7 @@ def encode_responses(tokenizer, prompts: Sequence[str], responses, *, add_eos: b
     pad_id, eos_id = _special_ids(tokenizer)
     if add_eos and eos_id is None:
         raise ValueError("add_eos=True needs a tokenizer with an eos token, got eos_token_id=None")
-    prompt_ids, prompt_mask = _left_pad([list(tokenizer(p)["input_ids"]) for p in prompts], pad_id)
+    prompt_tokens, prompt_valid = _left_pad([list(tokenizer(p)["input_ids"]) for p in prompts], pad_id)
     rows = [list(tokenizer(r, add_special_tokens=False)["input_ids"]) + ([eos_id] if add_eos else [])
             for g in groups for r in g]
     T = max(1, max(len(r) for r in rows))
@@ -424,7 +424,7 @@ def encode_responses(tokenizer, prompts: Sequence[str], responses, *, add_eos: b
         ids[i, :len(r)] = torch.tensor(r, dtype=torch.long)
         mask[i, :len(r)] = 1
     B = len(prompts)
-    return prompt_ids, prompt_mask, ids.view(B, n, T), mask.view(B, n, T)  # (B*n, T) -> (B, n, T)
+    return prompt_tokens, prompt_valid, ids.view(B, n, T), mask.view(B, n, T)  # (B*n, T) -> (B, n, T)
 
 
 def _check_long(name: str, x, ndim: int) -> torch.Tensor:
@@ -439,18 +439,18 @@ def _check_long(name: str, x, ndim: int) -> torch.Tensor:
 
 def sequence_logprobs(
     model,
-    prompt_ids: torch.Tensor,
-    prompt_mask: torch.Tensor,
-    response_ids: torch.Tensor,
-    response_mask: torch.Tensor,
+    prompt_tokens: torch.Tensor,
+    prompt_valid: torch.Tensor,
+    reply_tokens: torch.Tensor,
+    reply_valid: torch.Tensor,
     *,
     temperature: float = 1.0,
     top_p: float = 1.0,
 ) -> torch.Tensor:
     """Per-token log pi_T of given responses, differentiable: (B, Tp), (B, n, T) -> (B, n, T).
 
-    ``out[b, j, t] = log softmax(logits / T)[response_ids[b, j, t]]`` given the
-    prompt and the earlier response tokens, 0 where ``response_mask`` is 0.
+    ``out[b, j, t] = log softmax(logits / T)[reply_tokens[b, j, t]]`` given the
+    prompt and the earlier response tokens, 0 where ``reply_valid`` is 0.
     Each prompt runs once; its KV cache is copied to its n rows and the
     ``B * n`` responses run on top of it (models without an expandable cache
     get one pass over ``[prompt_b ; response_bj]`` rows). Position ids count
@@ -461,35 +461,35 @@ def sequence_logprobs(
     Runs in whatever mode the model is in (the tiny models have no dropout).
     """
     _check_model(model)
-    _check_long("prompt_ids", prompt_ids, 2)
-    _check_long("prompt_mask", prompt_mask, 2)
-    _check_long("response_ids", response_ids, 3)
-    _check_long("response_mask", response_mask, 3)
-    if prompt_mask.shape != prompt_ids.shape:
-        raise ValueError(f"prompt_mask must have the shape of prompt_ids {tuple(prompt_ids.shape)}, got {tuple(prompt_mask.shape)}")
-    if response_mask.shape != response_ids.shape:
-        raise ValueError(f"response_mask must have the shape of response_ids {tuple(response_ids.shape)}, got {tuple(response_mask.shape)}")
-    if response_ids.shape[0] != prompt_ids.shape[0]:
-        raise ValueError(f"response_ids must have B={prompt_ids.shape[0]} rows like prompt_ids, got {response_ids.shape[0]}")
+    _check_long("prompt_tokens", prompt_tokens, 2)
+    _check_long("prompt_valid", prompt_valid, 2)
+    _check_long("reply_tokens", reply_tokens, 3)
+    _check_long("reply_valid", reply_valid, 3)
+    if prompt_valid.shape != prompt_tokens.shape:
+        raise ValueError(f"prompt_valid must have the shape of prompt_tokens {tuple(prompt_tokens.shape)}, got {tuple(prompt_valid.shape)}")
+    if reply_valid.shape != reply_tokens.shape:
+        raise ValueError(f"reply_valid must have the shape of reply_tokens {tuple(reply_tokens.shape)}, got {tuple(reply_valid.shape)}")
+    if reply_tokens.shape[0] != prompt_tokens.shape[0]:
+        raise ValueError(f"reply_tokens must have B={prompt_tokens.shape[0]} rows like prompt_tokens, got {reply_tokens.shape[0]}")
     temperature = _check_temperature(temperature)
     top_p = _check_top_p(top_p)
 
-    B, n, T = response_ids.shape
-    resp = response_ids.reshape(B * n, T)  # (B, n, T) -> (B*n, T): row b*n + j is response j of prompt b
-    mask = torch.cat([prompt_mask.repeat_interleave(n, 0), response_mask.reshape(B * n, T)], dim=1)  # (B*n, Tp+T)
-    past, first = _prompt_pass(model, prompt_ids, prompt_mask, n)  # first (B*n, V) predicts response token 0
+    B, n, T = reply_tokens.shape
+    resp = reply_tokens.reshape(B * n, T)  # (B, n, T) -> (B*n, T): row b*n + j is response j of prompt b
+    mask = torch.cat([prompt_valid.repeat_interleave(n, 0), reply_valid.reshape(B * n, T)], dim=1)  # (B*n, Tp+T)
+    past, first = _prompt_pass(model, prompt_tokens, prompt_valid, n)  # first (B*n, V) predicts response token 0
     if past is not None:
         # the prompt ran once per prompt; the responses attend to its copied cache
-        pos = _positions(prompt_mask)[:, -1:].repeat_interleave(n, 0) + 1 + torch.arange(T, device=resp.device)
+        pos = _positions(prompt_valid)[:, -1:].repeat_interleave(n, 0) + 1 + torch.arange(T, device=resp.device)
         out = model(input_ids=resp, attention_mask=mask, position_ids=pos, use_cache=True,
                     **{_cache_arg(model): past})
         logits = torch.cat([first[:, None, :], out.logits[:, :-1, :]], dim=1)  # (B*n, T, V): token t given < t
     else:
-        ids = torch.cat([prompt_ids.repeat_interleave(n, 0), resp], dim=1)  # (B*n, Tp+T)
+        ids = torch.cat([prompt_tokens.repeat_interleave(n, 0), resp], dim=1)  # (B*n, Tp+T)
         kwargs = {"logits_to_keep": T + 1} if _accepts(model, "logits_to_keep") else {}
         logits = model(input_ids=ids, attention_mask=mask, position_ids=_positions(mask), **kwargs).logits
         logits = logits[:, -(T + 1):-1, :]  # (B*n, T, V): position Tp-1+t predicts response token t
     logp = _log_policy(logits, temperature, top_p)
-    tok = logp.gather(-1, response_ids.reshape(B * n, T, 1)).squeeze(-1)  # (B*n, T)
-    tok = tok.masked_fill(response_mask.reshape(B * n, T) == 0, 0.0)
+    tok = logp.gather(-1, reply_tokens.reshape(B * n, T, 1)).squeeze(-1)  # (B*n, T)
+    tok = tok.masked_fill(reply_valid.reshape(B * n, T) == 0, 0.0)
     return tok.view(B, n, T)  # (B*n, T) -> (B, n, T)

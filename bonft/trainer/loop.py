@@ -74,7 +74,7 @@ def train(cfg: TrainConfig, *, resume: bool = False, progress: bool = True) -> d
         if resume and ckpt is None and (out / "summary.json").exists():
             problem = f"--resume: {out} holds a finished run without checkpoints"
         elif not resume and (out / "checkpoints").exists():
-            problem = f"out_dir {str(out)!r} already holds checkpoints; pass --resume or choose another --out"
+            problem = f"run_dir {str(out)!r} already holds checkpoints; pass --resume or choose another --out"
     ckpt, problem = broadcast_object((ckpt, problem), run.ctx)
     if problem:
         raise ValueError(problem)
@@ -104,15 +104,15 @@ def train(cfg: TrainConfig, *, resume: bool = False, progress: bool = True) -> d
         run.optimizer = _make_optimizer(run)
         if opt_state is not None:
             run.optimizer.load_state_dict(opt_state)
-        if stage_of(s) == "rl" and cfg.kl_coef > 0:  # reference = the policy at the start of RL, kept on disk
+        if stage_of(s) == "rl" and cfg.anchor_weight > 0:  # reference = the policy at the start of RL, kept on disk
             ref_dir = out / "rl_start"
             if not (ref_dir / "model").is_dir():
                 if run.is_main:
                     save_model(run.model, run.tokenizer, ref_dir)
             barrier(run.ctx, what=f"waiting for rank 0 to write {ref_dir}")
             with quiet_transformers():
-                run.ref_model, _ = load_model(ref_dir, device=run.device)
-            run.ref_model.requires_grad_(False)
+                run.anchor_model, _ = load_model(ref_dir, device=run.device)
+            run.anchor_model.requires_grad_(False)
 
     same_stage = state is not None and state["extra"].get("stage") == stage_of(start) and start < total
     enter_stage(start, state["optimizer"] if same_stage else None)
@@ -189,7 +189,7 @@ def train(cfg: TrainConfig, *, resume: bool = False, progress: bool = True) -> d
                 print(f"\ninterrupted: checkpoint of step {s} written to {out}/checkpoints; continue with --resume")
         raise
     bar.close()
-    summary = {"name": cfg.name, "steps": total, "out_dir": str(out),
+    summary = {"name": cfg.name, "steps": total, "run_dir": str(out),
                "evaluations": [r.to_dict() for r in reports] if reports else []}
     if run.is_main:
         # keep evaluations from before a resume too: they are in metrics.jsonl

@@ -44,9 +44,9 @@ def build_tiny_model(
     arch: str = "gpt2",
     *,
     vocab_size: int,
-    n_layer: int = 2,
-    d_model: int = 128,
-    n_head: int = 4,
+    layers: int = 2,
+    width: int = 128,
+    heads: int = 4,
     max_positions: int = 128,
     seed: int = 0,
     pad_token_id: int | None = None,
@@ -65,15 +65,15 @@ def build_tiny_model(
     """
     check_choice("arch", arch, ARCHS)
     vocab_size = check_int("vocab_size", vocab_size, min=2)
-    n_layer = check_int("n_layer", n_layer, min=1)
-    d_model = check_int("d_model", d_model, min=1)
-    n_head = check_int("n_head", n_head, min=1)
+    layers = check_int("layers", layers, min=1)
+    width = check_int("width", width, min=1)
+    heads = check_int("heads", heads, min=1)
     max_positions = check_int("max_positions", max_positions, min=2)
     seed = check_int("seed", seed, min=0)
-    if d_model % n_head:
-        raise ValueError(f"d_model must be divisible by n_head (n_head={n_head}), got d_model={d_model}")
-    if arch == "llama" and (d_model // n_head) % 2:
-        raise ValueError(f"d_model / n_head must be even for rotary positions (arch='llama'), got {d_model}/{n_head}")
+    if width % heads:
+        raise ValueError(f"width must be divisible by heads (heads={heads}), got width={width}")
+    if arch == "llama" and (width // heads) % 2:
+        raise ValueError(f"width / heads must be even for rotary positions (arch='llama'), got {width}/{heads}")
     ids = {
         "pad_token_id": _check_token_id("pad_token_id", pad_token_id, vocab_size),
         "eos_token_id": _check_token_id("eos_token_id", eos_token_id, vocab_size),
@@ -83,14 +83,15 @@ def build_tiny_model(
 
     if arch == "gpt2":
         config = GPT2Config(
-            vocab_size=vocab_size, n_positions=max_positions, n_embd=d_model, n_layer=n_layer, n_head=n_head,
-            resid_pdrop=0.0, embd_pdrop=0.0, attn_pdrop=0.0, **ids,
+            vocab_size=vocab_size, n_positions=max_positions, resid_pdrop=0.0, embd_pdrop=0.0, attn_pdrop=0.0, **ids,
         )
+        # the standard names; GPT2Config maps each onto its own field when set (its attribute_map)
+        config.hidden_size, config.num_hidden_layers, config.num_attention_heads = width, layers, heads
         cls = GPT2LMHeadModel
     else:
         config = LlamaConfig(
-            vocab_size=vocab_size, hidden_size=d_model, intermediate_size=4 * d_model, num_hidden_layers=n_layer,
-            num_attention_heads=n_head, num_key_value_heads=n_head, max_position_embeddings=max_positions,
+            vocab_size=vocab_size, hidden_size=width, intermediate_size=4 * width, num_hidden_layers=layers,
+            num_attention_heads=heads, num_key_value_heads=heads, max_position_embeddings=max_positions,
             attention_dropout=0.0, tie_word_embeddings=True, **ids,
         )
         cls = LlamaForCausalLM

@@ -74,7 +74,7 @@ def lr_at(cfg: TrainConfig, step: int) -> float:
 def encode_pairs(tokenizer: Any, prompts: list[str], responses: list[str], device: torch.device):
     """Prompts as the sampler encodes them, one reference response each (EOS appended).
 
-    Returns prompt_ids (B, Tp), prompt_mask (B, Tp), response_ids (B, 1, T), response_mask (B, 1, T).
+    Returns prompt_tokens (B, Tp), prompt_valid (B, Tp), reply_tokens (B, 1, T), reply_valid (B, 1, T).
     """
     from .generation import encode_responses
 
@@ -97,7 +97,7 @@ class Run:
     rank: int = 0
     world: int = 1
     optimizer: Any = None
-    ref_model: Any = None
+    anchor_model: Any = None
     ctx: Any = None  # bonft.trainer.distributed.DistContext
     ddp: Any = None  # the model as trained: DistributedDataParallel(model) on several ranks, else model
 
@@ -147,14 +147,14 @@ def sft_step(run: Run, step: int) -> dict:
     return {"loss": tot["nll"] / B, "nll_per_token": tot["nll"] / tot["tokens"]}
 
 
-def _objective(cfg: TrainConfig, k: int, logp, mask, scores, rewards, ref_logp, sft_terms):
+def _objective(cfg: TrainConfig, k: int, logp, mask, scores, rewards, anchor_logp, sft_terms):
     """Dispatch to bonft.losses with reduction='sum' (the caller divides by the global batch)."""
     from .. import losses as L
 
     t = torch.as_tensor
     kw: dict = {"mask": mask, "token_reduction": cfg.token_reduction, "reduction": "sum"}
-    if ref_logp is not None:
-        kw.update(ref_logprobs=ref_logp, kl_coef=cfg.kl_coef)
+    if anchor_logp is not None:
+        kw.update(anchor_logprobs=anchor_logp, anchor_weight=cfg.anchor_weight)
     correct = t(rewards >= cfg.correct_threshold)
     if cfg.objective == "loo_reinforce":
         return L.reinforce_loss(logp, t(rewards), baseline="loo", **kw)
@@ -202,14 +202,14 @@ def rl_step(run: Run, step: int) -> dict:
             sft_terms = [elp[:, 0], rmask[:, 0], ev.scores]  # (b, 1, T) -> (b, T): the expert response
         t2 = time.perf_counter()
         # log-probs of the policy that drew the samples: same temperature and top-p
-        rows = (smp.prompt_ids, smp.prompt_mask, smp.response_ids, smp.response_mask)
+        rows = (smp.prompt_tokens, smp.prompt_valid, smp.reply_tokens, smp.reply_valid)
         logp = sequence_logprobs(run.net, *rows, temperature=T, top_p=cfg.top_p)
-        ref_logp = None
-        if run.ref_model is not None:
+        anchor_logp = None
+        if run.anchor_model is not None:
             with torch.no_grad():
-                ref_logp = sequence_logprobs(run.ref_model, *rows, temperature=T, top_p=cfg.top_p)
+                anchor_logp = sequence_logprobs(run.anchor_model, *rows, temperature=T, top_p=cfg.top_p)
         t3 = time.perf_counter()
-        loss, info = _objective(cfg, k, logp, smp.response_mask, scores, rewards, ref_logp, sft_terms)
+        loss, info = _objective(cfg, k, logp, smp.reply_valid, scores, rewards, anchor_logp, sft_terms)
         t4 = time.perf_counter()
         (loss * run.world / B).backward()  # x W/B: DDP averages over W ranks (global_mean_scale)
         for key, dt in (("sample", t1 - t0), ("score", t2 - t1), ("forward", t3 - t2), ("credit", t4 - t3),
@@ -250,17 +250,17 @@ def build_run(cfg: TrainConfig) -> Run:
         verifiers["train"] = verifiers[cfg.verifier]
     else:
         verifiers["train"] = verifiers[cfg.verifier] = load_verifier(cfg.verifier)
-    if cfg.init_from:
+    if cfg.start_from:
         with quiet_transformers():
-            model, tokenizer = load_model(cfg.init_from, device=device)
+            model, tokenizer = load_model(cfg.start_from, device=device)
     else:
         tokenizer = build_tokenizer()
         model = build_tiny_model(
-            cfg.arch, vocab_size=len(tokenizer), n_layer=cfg.n_layer, d_model=cfg.d_model, n_head=cfg.n_head,
+            cfg.arch, vocab_size=len(tokenizer), layers=cfg.layers, width=cfg.width, heads=cfg.heads,
             max_positions=cfg.max_positions, seed=cfg.seed, pad_token_id=tokenizer.pad_token_id,
             eos_token_id=tokenizer.eos_token_id, bos_token_id=tokenizer.bos_token_id,
         ).to(device)
-    return Run(cfg=cfg, out=Path(cfg.out_dir), model=model, tokenizer=tokenizer, task=task, train=list(train),
+    return Run(cfg=cfg, out=Path(cfg.run_dir), model=model, tokenizer=tokenizer, task=task, train=list(train),
                eval=list(held), verifiers=verifiers, device=device, rank=rank, world=world, ctx=ctx)
 
 

@@ -117,7 +117,7 @@ def parse_number(text: str | None) -> float | None:
     return value if math.isfinite(value) else None
 
 
-def normalize_answer(text: str) -> str:
+def canonical_answer(text: str) -> str:
     """Default normalisation for :class:`ExactMatch`: NFKC, minus signs, trim,
     collapse whitespace, casefold, drop one trailing ``.``."""
     text = " ".join(unify_text(text).split()).casefold()
@@ -163,7 +163,7 @@ class ExactMatch:
     """
 
     def __init__(self, answers: Mapping[str, str | int], *, pattern: str | re.Pattern[str] | None = None,
-                 normalize: Callable[[str], str] | None = normalize_answer) -> None:
+                 normalize: Callable[[str], str] | None = canonical_answer) -> None:
         self.answers = _check_answers(answers, numeric=False)
         self.pattern = _check_pattern(pattern)
         if normalize is not None and not callable(normalize):
