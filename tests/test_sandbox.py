@@ -30,7 +30,7 @@ def _children() -> int:
 
 
 def _sandbox_processes() -> list[int]:
-    """Live processes still running the sandbox bootstrap (its text is on their command line)."""
+    """Live processes still running a sandbox bootstrap (the wire protocol's text is on their command line)."""
     out = []
     for pid in filter(str.isdigit, os.listdir("/proc")):
         try:
@@ -40,7 +40,7 @@ def _sandbox_processes() -> list[int]:
                 state = f.read().rsplit(")", 1)[1].split()[0]
         except OSError:
             continue
-        if b"bonft sandbox:" in cmd and state != "Z":
+        if b"def wire_send(" in cmd and state != "Z":
             out.append(int(pid))
     return out
 
@@ -110,7 +110,8 @@ def test_fork_bombs_are_contained(attack_results):
     assert _children() == before  # every candidate process was reaped
     assert _sandbox_processes() == []  # and none escaped to run on
     if ROOT:
-        leftover = {s: _pids_of(runner._uid0 + s) for s in range(runner.workers)}
+        uids = [runner._uid(s) + k for s in range(runner.workers) for k in (0, 1)]  # candidate, tests
+        leftover = {u: _pids_of(u) for u in uids}
         assert all(not v for v in leftover.values()), f"sandbox processes left: {leftover}"
 
 
@@ -185,7 +186,7 @@ def test_fallback_path_without_uid_drop():
     hook stops the fork bomb here; the point is that the path works and cleans up.
     """
     runner = CodeRunner({}, wall_time=2.0, memory_mb=256, max_processes=4, workers=3)
-    runner._root = False  # force the unprivileged code path
+    runner._root = runner._mountns = False  # force the unprivileged code path
     before = _children()
     ok, loop, bomb = runner.run_code([
         ("x = 2", "assert x == 2"),

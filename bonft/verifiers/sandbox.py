@@ -1,14 +1,24 @@
-"""A sandboxed Python unit-test runner: one limited process per candidate.
+"""A sandboxed Python unit-test runner: two processes per candidate, the verdict in the trusted one.
 
 **Caution -- this lowers risk, it is not a security boundary.** Model-written
-code can do anything your user can do. The layers below make accidents and
-casual reward hacking (infinite loops, memory or fork bombs, writing files,
-reading secrets from the environment, exiting early with status 0) harmless
-on a development machine; a determined attacker can get round them (ctypes
-alone bypasses the Python-level layer). Run model-written code at scale in a
-disposable container or VM with no credentials and no network.
+code runs with real system calls; ctypes alone bypasses the Python-level
+layer. Run model-written code at scale in a disposable container or VM with
+no credentials and no network. See docs/verifiers.md for what is enforced
+and what is not.
 
-Layers, from the outside in, for each candidate:
+The verdict. The candidate's code runs in its own sandboxed process only as a
+callee. The tests run in a second, trusted process (started first, under a
+uid of its own as root, non-dumpable) that resolves the solution's names and
+calls its functions over a pair of pipes (:mod:`bonft.verifiers._wire`:
+length-prefixed JSON, capped frames, a strict decoder, no pickle). Only plain
+values come back, rebuilt as the trusted process's own ``int``, ``list``...;
+other objects stay behind as references whose calls are forwarded but whose
+``==`` and truth value are not. The tests' ``assert`` statements are
+evaluated there, and the verdict travels on a pipe only that process and this
+runner hold. The candidate never sees the tests' text. An exit, crash or
+protocol error of the candidate during the tests is sticky: never ``pass``.
+
+The sandbox, from the outside in, for each candidate's process:
 
 1. a fresh temporary working directory, removed afterwards;
 2. a scrubbed environment built from scratch (no inherited variables, so no
@@ -18,19 +28,16 @@ Layers, from the outside in, for each candidate:
    also catches processes that left the group;
 4. resource limits set before exec (``resource.setrlimit``): CPU seconds,
    address space, file size, process count, no core dumps;
-5. when running as root: a fresh network namespace with no interfaces (when
-   the kernel allows it), then a drop to an unprivileged uid of its own
-   (a per-worker uid in a high range, so ``max_processes`` counts only this
-   candidate's processes and it cannot signal or read its neighbours) with
-   ``no_new_privs`` set. RLIMIT_NPROC is not enforced for root, so without
-   this drop the process limit would not bite. Not as root, the process limit
-   counts all of your user's processes and is set to the current count +
-   ``max_processes`` -- a loose bound;
+5. when running as root: a private mount namespace in which /tmp, /var/tmp,
+   /dev/shm and /run/lock are fresh tmpfs (gone with the run), a fresh network
+   namespace with no interfaces, then a drop to an unprivileged uid of its own
+   (a per-worker uid in a high range) with ``no_new_privs``. RLIMIT_NPROC is
+   not enforced for root, so without this drop the process limit would not
+   bite. Not as root none of these exist (``RunResult.os_layers`` says which
+   took effect) and the process limit counts all of your user's processes;
 6. inside the interpreter, an audit hook (PEP 578) refusing writes outside
    the working directory, network use, signals to other processes and
-   process creation beyond ``max_processes``;
-7. a result record on a private pipe tagged with a per-run nonce: a candidate
-   that exits early (even with status 0) does not pass.
+   process creation beyond ``max_processes``.
 """
 from __future__ import annotations
 
@@ -42,6 +49,7 @@ import os
 import re
 import resource
 import secrets
+import select
 import selectors
 import shutil
 import signal
@@ -57,15 +65,15 @@ from typing import Any, Mapping, Sequence
 
 import numpy as np
 
+from ._oslayer import LAYER_NAMES, env, make_preexec, rlimits
 from ._procs import kill_by_cwd, kill_uid, pids_of, user_tasks
 from .base import Verdicts
 from .scoring import check_batch
 
 STATUSES = ("pass", "fail", "timeout", "crashed", "limit-exceeded", "refused")
-_UID_BASE = 1_000_000_000  # sandbox uids: _UID_BASE + 1000 * (random run id) + worker slot
-_CHILD_SOURCE = os.path.join(os.path.dirname(os.path.abspath(__file__)), "_sandbox_child.py")
-_CLONE_NEWNET = 0x40000000
-_PR_SET_PDEATHSIG, _PR_SET_NO_NEW_PRIVS = 1, 38
+_UID_BASE = 1_000_000_000  # sandbox uids: _UID_BASE + 2000 * (random run id) + 2 * worker slot (+ 1: tests)
+_HERE = os.path.dirname(os.path.abspath(__file__))
+_FRAME_CAP = 4 << 20  # bytes of one message between the two processes
 _FENCE = re.compile(r"```[ \t]*(?:python|py|python3)?[ \t]*\n(.*?)```", re.DOTALL | re.IGNORECASE)
 
 
@@ -76,7 +84,12 @@ class RunResult:
     status: one of ``pass, fail, timeout, crashed, limit-exceeded, refused``.
     reason: e.g. ``"AssertionError: ..."``, ``"killed by SIGSEGV"``,
             ``"wall time 2 s"``, ``"MemoryError (memory limit)"``; None on pass.
-    stdout, stderr: captured output, each cut at ``max_output_bytes``.
+    stdout, stderr: captured output, each cut at ``max_output_bytes`` (the
+            candidate's, then the tests' process's: a failing assertion's traceback).
+    os_layers: the OS layers that took effect for this run, from ``own-uid``,
+            ``no-network``, ``private-tmp`` (all three as root on Linux with
+            namespaces; none otherwise -- then the candidate can write to the
+            shared /tmp and use the network, and only the audit hook objects).
     """
 
     status: str
@@ -86,9 +99,31 @@ class RunResult:
     stderr: str
     wall_s: float
 
+    os_layers: tuple[str, ...] = ()
+
     @property
     def passed(self) -> bool:
         return self.status == "pass"
+
+
+def _boot(name: str) -> str:
+    """Bootstrap source: the wire protocol's text, then the named child file's."""
+    with open(os.path.join(_HERE, "_wire.py"), encoding="utf-8") as f:
+        wire = f.read()
+    with open(os.path.join(_HERE, name), encoding="utf-8") as f:
+        return wire + "\n" + f.read()
+
+
+def _frame(buf: bytes) -> dict | None:
+    """The first complete frame in ``buf`` (the trusted tests' process wrote it), or None."""
+    head, sep, rest = buf.partition(b"\n")
+    if not sep or not head.isdigit() or len(rest) < int(head):
+        return None
+    try:
+        msg = json.loads(rest[:int(head)])
+    except ValueError:
+        return None
+    return msg if isinstance(msg, dict) else None
 
 
 def extract_code(text: str) -> str:
@@ -118,10 +153,13 @@ class CodeRunner:
 
     ``prompts, responses: (N,) -> Verdicts(scores (N,) 1.0 = all tests pass, rewards = scores)``.
 
-    tests:            prompt -> test code (plain Python using ``assert``), run
-                      after the solution in the same namespace. The tests pass
-                      when they run to the end; an exit (even status 0), an
-                      exception or a limit hit before that is not a pass.
+    tests:            prompt -> test code (plain Python using ``assert``). It runs
+                      in a separate trusted process; the solution's names
+                      (functions, classes, constants) resolve after builtins and
+                      the tests' own names, and calls into them are forwarded to
+                      the candidate's process, which returns plain values. The
+                      tests pass when they run to the end; an exit (even status
+                      0), an exception or a limit hit before that is not a pass.
     wall_time:        seconds of wall clock per candidate (then SIGKILL -> ``timeout``).
     cpu_time:         CPU seconds (RLIMIT_CPU; SIGXCPU -> ``limit-exceeded``);
                       default ``wall_time + 1`` so that a busy loop reads as a timeout.
@@ -173,11 +211,11 @@ class CodeRunner:
         self.isolate_network = bool(isolate_network)
         self.code_from_fence = bool(code_from_fence)
         self._root = os.geteuid() == 0
-        self._uid0 = _UID_BASE + 1000 * secrets.randbelow(1_000_000)
+        self._uid0 = _UID_BASE + 2000 * secrets.randbelow(1_000_000)
         self._lock = threading.Lock()
         self._chosen_python: str | None = None
-        with open(_CHILD_SOURCE, encoding="utf-8") as f:
-            self._boot = f.read()
+        self._boot_candidate, self._boot_judge = _boot("_sandbox_child.py"), _boot("_judge_child.py")
+        self._mountns = self._root
         try:
             self._libc = ctypes.CDLL(None, use_errno=True)
         except OSError:  # pragma: no cover - non-glibc platforms
@@ -225,45 +263,170 @@ class CodeRunner:
 
     # -- one candidate ----------------------------------------------------------------------
     def _uid(self, slot: int) -> int | None:
-        return self._uid0 + slot if self._root else None
+        """The candidate's uid for worker ``slot`` (root only); the test process gets the next one."""
+        return self._uid0 + 2 * slot if self._root else None
 
-    def _preexec(self, uid: int | None):
-        limits = [
-            (resource.RLIMIT_CPU, (math.ceil(self.cpu_time), math.ceil(self.cpu_time) + 1)),
-            (resource.RLIMIT_AS, (self.memory_mb << 20,) * 2),
-            (resource.RLIMIT_FSIZE, (self.file_size_mb << 20,) * 2),
-            (resource.RLIMIT_CORE, (0, 0)),
-        ]
+    def _spawn(self, python: str, boot: str, fds: tuple[int, ...], cwd: str, uid: int | None, *,
+               sandbox: bool, report_fd: int | None = None) -> subprocess.Popen:
         nproc = self.max_processes if uid is not None else user_tasks(os.getuid()) + self.max_processes
         soft, hard = resource.getrlimit(resource.RLIMIT_NPROC)
         if uid is None and hard != resource.RLIM_INFINITY:
             nproc = min(nproc, hard)
-        limits.append((resource.RLIMIT_NPROC, (nproc, nproc)))
-        libc, netns = self._libc, self.isolate_network and uid is not None
+        limits = rlimits(cpu_time=self.cpu_time, memory_mb=self.memory_mb, file_size_mb=self.file_size_mb, nproc=nproc)
+        pre = make_preexec(limits=limits, uid=uid, libc=self._libc, netns=sandbox and self.isolate_network,
+                           mountns=sandbox and self._mountns, workdir=cwd, tmpfs_mb=self.file_size_mb,
+                           report_fd=report_fd)
+        return subprocess.Popen(
+            [python, "-s", "-B", "-c", boot, *map(str, fds)], cwd=cwd, env=env(cwd), stdin=subprocess.DEVNULL,
+            stdout=subprocess.PIPE, stderr=subprocess.PIPE, pass_fds=fds + ((report_fd,) if report_fd else ()),
+            start_new_session=True, preexec_fn=pre,
+        )
 
-        def fn() -> None:  # runs in the child between fork and exec: no imports, no locks
-            for res, val in limits:
-                resource.setrlimit(res, val)
-            if libc is not None:
-                libc.prctl(_PR_SET_PDEATHSIG, signal.SIGKILL, 0, 0, 0)
-                if netns:
-                    libc.unshare(_CLONE_NEWNET)  # best effort: fails quietly where not allowed
-            if uid is not None:
-                os.setgroups([])
-                os.setgid(uid)
-                os.setuid(uid)
-            if libc is not None:
-                libc.prctl(_PR_SET_NO_NEW_PRIVS, 1, 0, 0, 0)
+    def _start_candidate(self, python: str, workdir: str, uid: int | None, fds: tuple[int, ...]):
+        """Start the candidate's process; (Popen, layers that took effect). Falls back without the
+        private mount namespace (once, for this runner) if it cannot be set up."""
+        while True:
+            rep_r, rep_w = os.pipe()
+            try:
+                proc = self._spawn(python, self._boot_candidate, fds, workdir, uid, sandbox=True, report_fd=rep_w)
+            except subprocess.SubprocessError:
+                if not self._mountns:
+                    raise
+                self._mountns = False  # preexec failed (MountSetupError): run without it, and say so
+                continue
+            finally:
+                os.close(rep_w)
+                done = b""
+                while chunk := os.read(rep_r, 16):
+                    done += chunk
+                os.close(rep_r)
+            return proc, tuple(LAYER_NAMES[c] for c in done.decode("ascii", "replace") if c in LAYER_NAMES)
 
-        return fn
+    def _run_one(self, solution: str, tests: str, slot: int, python: str) -> RunResult:
+        cuid = self._uid(slot)
+        juid = None if cuid is None else cuid + 1
+        workdir = tempfile.mkdtemp(prefix="bonft-sandbox-")
+        judgedir = tempfile.mkdtemp(prefix="bonft-tests-")
+        t0 = time.monotonic()
+        procs: list[tuple[subprocess.Popen, int | None, str]] = []
+        pipes = [os.pipe() for _ in range(5)]  # judge cfg, verdict, requests, replies, candidate cfg
+        (jcfg_r, jcfg_w), (ver_r, ver_w), (req_r, req_w), (rep_r, rep_w), (ccfg_r, ccfg_w) = pipes
+        open_fds = {fd for p in pipes for fd in p}
 
-    def _env(self, workdir: str) -> dict[str, str]:
-        # built from scratch: nothing of the parent's environment is inherited
-        return {
-            "PATH": "/usr/local/bin:/usr/bin:/bin", "HOME": workdir, "TMPDIR": workdir,
-            "LANG": "C.UTF-8", "LC_ALL": "C.UTF-8", "PYTHONHASHSEED": "0",
-            "PYTHONDONTWRITEBYTECODE": "1", "PYTHONNOUSERSITE": "1", "PYTHONIOENCODING": "utf-8",
-        }
+        def close(*fds: int) -> None:
+            for fd in fds:
+                if fd in open_fds:
+                    open_fds.discard(fd)
+                    os.close(fd)
+
+        def feed(fd: int, cfg: dict) -> None:
+            close_after = os.fdopen(fd, "wb")
+            open_fds.discard(fd)
+            try:
+                with close_after as f:
+                    f.write(json.dumps(cfg).encode("utf-8"))
+            except OSError:
+                pass  # the child died before reading: its exit status tells why
+
+        layers: tuple[str, ...] = ()
+        try:
+            if cuid is not None:
+                os.chown(workdir, cuid, cuid)
+                os.chown(judgedir, juid, juid)
+            try:
+                judge = self._spawn(python, self._boot_judge, (jcfg_r, ver_w, req_w, rep_r), judgedir, juid, sandbox=False)
+                procs.append((judge, juid, judgedir))
+                close(jcfg_r, ver_w, req_w, rep_r)
+                feed(jcfg_w, {"tests": tests, "frame_cap": _FRAME_CAP})
+                if not self._await_start(ver_r, t0):
+                    raise OSError("the tests' process did not start")
+                cand, layers = self._start_candidate(python, workdir, cuid, (ccfg_r, req_r, rep_w))
+                procs.append((cand, cuid, workdir))
+                close(ccfg_r, req_r, rep_w)
+            except (OSError, subprocess.SubprocessError) as e:
+                return RunResult("crashed", f"runner: could not start {python}: {e}", None, "", "", 0.0, layers)
+            feed(ccfg_w, {"solution": solution, "max_processes": self.max_processes, "frame_cap": _FRAME_CAP})
+            out, verdict, timed_out, over = self._collect(judge, cand, cuid, workdir, ver_r, t0)
+            if verdict.get("status") == "gone" and not timed_out:
+                try:  # the candidate's process ended during the tests: let its exit status arrive
+                    cand.wait(timeout=max(0.0, min(0.5, t0 + self.wall_time - time.monotonic())))
+                except subprocess.TimeoutExpired:
+                    pass
+        finally:
+            for proc, uid, cwd in reversed(procs):
+                self._kill(proc, uid, cwd)
+            rcs = [proc.wait() for proc, _, _ in procs]
+            close(*list(open_fds))
+            shutil.rmtree(workdir, ignore_errors=True)
+            shutil.rmtree(judgedir, ignore_errors=True)
+        wall = time.monotonic() - t0
+        stdout = (out["c_out"] + out["j_out"]).decode("utf-8", "replace")
+        stderr = (out["c_err"] + out["j_err"]).decode("utf-8", "replace")
+        status, reason = self._classify(verdict, rcs[1], rcs[0], timed_out, over)
+        return RunResult(status, reason, rcs[1], stdout, stderr, wall, layers)
+
+    def _await_start(self, ver_r: int, t0: float) -> bool:
+        """Wait for the tests' process to say it is running (and non-dumpable) before the candidate starts."""
+        buf = b""
+        while time.monotonic() < t0 + self.wall_time:
+            r, _, _ = select.select([ver_r], [], [], 0.05)
+            if r:
+                chunk = os.read(ver_r, 1)
+                if not chunk:
+                    return False
+                buf += chunk
+                frame = _frame(buf)
+                if frame is not None:
+                    return frame.get("started") is True
+        return False
+
+    def _collect(self, judge, cand, cuid, workdir, ver_r: int, t0: float):
+        """Read both processes' output and the verdict until the verdict, the deadline or the output cap."""
+        cap = self.max_output_bytes
+        streams = {judge.stdout.fileno(): "j_out", judge.stderr.fileno(): "j_err",
+                   cand.stdout.fileno(): "c_out", cand.stderr.fileno(): "c_err", ver_r: "verdict"}
+        bufs = {name: bytearray() for name in streams.values()}
+        sel = selectors.DefaultSelector()
+        for fd, name in streams.items():
+            sel.register(fd, selectors.EVENT_READ, name)
+        deadline = t0 + self.wall_time
+        timed_out, over, verdict, done_at, cand_exit, killed = False, None, None, None, None, False
+        while len(sel.get_map()):
+            now = time.monotonic()
+            if now >= deadline:
+                timed_out = verdict is None
+                break
+            if done_at is not None and now - done_at > 0.1:
+                break  # the verdict is in; leftover processes may hold the output pipes
+            if cand_exit is None and cand.poll() is not None:
+                cand_exit = now
+            if verdict is None and cand_exit is not None and now - cand_exit > 0.2 and not killed:
+                self._kill(cand, cuid, workdir)  # its leftovers may hold the reply pipe open
+                killed = True
+            for key, _ in sel.select(timeout=min(0.05, deadline - now)):
+                chunk = os.read(key.fd, 65536)
+                if not chunk:
+                    sel.unregister(key.fd)
+                    if key.data == "verdict" and done_at is None:
+                        done_at = time.monotonic()
+                    continue
+                buf = bufs[key.data]
+                limit = _FRAME_CAP if key.data == "verdict" else cap
+                room = limit - len(buf)
+                buf += chunk[:max(room, 0)]
+                if len(chunk) > room and key.data != "verdict":
+                    over = f"{'stdout' if key.data.endswith('out') else 'stderr'} over max_output_bytes={cap}"
+                if key.data == "verdict" and verdict is None:
+                    verdict = _frame(bytes(buf))
+                    if verdict is not None:
+                        done_at = time.monotonic()
+            if over:
+                break
+        sel.close()
+        for p in (judge, cand):
+            p.stdout.close()
+            p.stderr.close()
+        return {k: bytes(v) for k, v in bufs.items() if k != "verdict"}, verdict or {}, timed_out, over
 
     def _kill(self, proc: subprocess.Popen, uid: int | None, workdir: str) -> None:
         try:
@@ -281,101 +444,18 @@ class CodeRunner:
         else:
             kill_by_cwd(workdir)
 
-    def _spawn(self, python: str, workdir: str, uid: int | None, cfg_r: int, res_w: int) -> subprocess.Popen:
-        return subprocess.Popen(
-            [python, "-s", "-B", "-c", self._boot, str(cfg_r), str(res_w)],
-            cwd=workdir, env=self._env(workdir), stdin=subprocess.DEVNULL,
-            stdout=subprocess.PIPE, stderr=subprocess.PIPE, pass_fds=(cfg_r, res_w),
-            start_new_session=True, preexec_fn=self._preexec(uid),
-        )
-
-    def _run_one(self, solution: str, tests: str, slot: int, python: str) -> RunResult:
-        uid = self._uid(slot)
-        workdir = tempfile.mkdtemp(prefix="bonft-sandbox-")
-        nonce = secrets.token_hex(16)
-        t0 = time.monotonic()
-        try:
-            if uid is not None:
-                os.chown(workdir, uid, uid)
-            cfg_r, cfg_w = os.pipe()
-            res_r, res_w = os.pipe()
-            try:
-                proc = self._spawn(python, workdir, uid, cfg_r, res_w)
-            except OSError as e:
-                for fd in (cfg_r, cfg_w, res_r, res_w):
-                    os.close(fd)
-                return RunResult("crashed", f"runner: could not start {python}: {e}", None, "", "", 0.0)
-            os.close(cfg_r)
-            os.close(res_w)
-            try:
-                with os.fdopen(cfg_w, "wb") as f:
-                    f.write(json.dumps({"nonce": nonce, "solution": solution, "tests": tests,
-                                        "max_processes": self.max_processes}).encode("utf-8"))
-            except OSError:
-                pass  # the child died before reading: its exit status tells why
-            out, timed_out, over = self._collect(proc, res_r, t0)
-            self._kill(proc, uid, workdir)
-            rc = proc.wait()
-            os.close(res_r)
-        finally:
-            shutil.rmtree(workdir, ignore_errors=True)
-        wall = time.monotonic() - t0
-        stdout = out["stdout"].decode("utf-8", "replace")
-        stderr = out["stderr"].decode("utf-8", "replace")
-        status, reason = self._classify(out["result"], nonce, rc, timed_out, over)
-        return RunResult(status, reason, rc, stdout, stderr, wall)
-
-    def _collect(self, proc: subprocess.Popen, res_r: int, t0: float) -> tuple[dict[str, bytes], bool, str | None]:
-        """Read stdout, stderr and the result pipe until EOF, the deadline or the output cap."""
-        cap = self.max_output_bytes
-        bufs = {"stdout": bytearray(), "stderr": bytearray(), "result": bytearray()}
-        sel = selectors.DefaultSelector()
-        sel.register(proc.stdout.fileno(), selectors.EVENT_READ, "stdout")
-        sel.register(proc.stderr.fileno(), selectors.EVENT_READ, "stderr")
-        sel.register(res_r, selectors.EVENT_READ, "result")
-        deadline = t0 + self.wall_time
-        timed_out, over, exited_at = False, None, None
-        open_fds = 3
-        while open_fds:
-            now = time.monotonic()
-            if now >= deadline:
-                timed_out = True
-                break
-            if exited_at is None and proc.poll() is not None:
-                exited_at = now
-            if exited_at is not None and now - exited_at > 0.2:
-                break  # the candidate exited; leftover processes hold the pipes
-            for key, _ in sel.select(timeout=min(0.05, deadline - now)):
-                chunk = os.read(key.fd, 65536)
-                if not chunk:
-                    sel.unregister(key.fd)
-                    open_fds -= 1
-                    continue
-                buf = bufs[key.data]
-                room = (cap if key.data != "result" else 65536) - len(buf)
-                buf += chunk[:max(room, 0)]
-                if len(chunk) > room and key.data != "result":
-                    over = f"{key.data} over max_output_bytes={cap}"
-            if over:
-                break
-        sel.close()
-        proc.stdout.close()
-        proc.stderr.close()
-        return {k: bytes(v) for k, v in bufs.items()}, timed_out, over
-
-    def _classify(self, record: bytes, nonce: str, rc: int, timed_out: bool, over: str | None) -> tuple[str, str | None]:
+    def _classify(self, verdict: dict, rc: int | None, judge_rc: int | None, timed_out: bool,
+                  over: str | None) -> tuple[str, str | None]:
         if over:
             return "limit-exceeded", over
-        for line in record.splitlines():
-            try:
-                rec = json.loads(line)
-            except ValueError:
-                continue
-            if isinstance(rec, dict) and rec.get("nonce") == nonce and rec.get("status") in STATUSES:
-                return rec["status"], rec.get("reason")
+        status, reason = verdict.get("status"), verdict.get("reason")
+        if status in STATUSES:
+            return status, reason
         if timed_out:
             return "timeout", f"wall time {self.wall_time:g} s"
-        if rc < 0:
+        if status != "gone":
+            return "crashed", f"the tests' process ended without a verdict (exit status {judge_rc})"
+        if rc is not None and rc < 0:
             name = signal.Signals(-rc).name if -rc in signal.valid_signals() else f"signal {-rc}"
             if name == "SIGXCPU":
                 return "limit-exceeded", f"cpu time limit {math.ceil(self.cpu_time)} s (SIGXCPU)"

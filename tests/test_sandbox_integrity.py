@@ -1,0 +1,137 @@
+"""Issue 13: a verdict the candidate cannot forge, and an OS layer that holds without the Python one.
+
+Every solution in tests/sandbox_attacks.py except ``correct`` is wrong, so a
+``pass`` among them would be a forged verdict. Expected behaviour of the OS
+layer is taken from the Linux manual pages: mount_namespaces(7) (mounts made
+in a private namespace are invisible outside it and go away with it) and
+tmpfs(5) (a tmpfs lives in memory and its contents vanish when unmounted).
+"""
+import os
+
+import pytest
+
+from bonft.verifiers import CodeRunner
+from sandbox_attacks import ATTACKS, ESCAPE_PATHS
+
+ROOT = os.geteuid() == 0
+
+
+@pytest.fixture(scope="module")
+def attacks():
+    for p in ESCAPE_PATHS:
+        if os.path.exists(p):
+            os.remove(p)
+    runner = CodeRunner({}, wall_time=3.0, memory_mb=256, max_processes=4, workers=4)
+    results = dict(zip(ATTACKS, runner.run_code(list(ATTACKS.values()))))
+    left = [p for p in ESCAPE_PATHS if os.path.exists(p)]
+    for p in left:
+        os.remove(p)
+    return results, left
+
+
+def test_no_attack_gets_a_pass(attacks):
+    r, _ = attacks
+    assert r["correct"].status == "pass", r["correct"]
+    forged = {k: v.reason for k, v in r.items() if v.passed and k not in ("correct", "audit_hook_off_writes_tmp_shm")}
+    assert forged == {}
+    # the lying __eq__ never reaches the comparison: the trusted side compares a plain value (or a reference)
+    assert r["lying_eq_object"].status == "fail" and r["lying_eq_object"].reason == "AssertionError"
+    assert r["lying_eq_int_subclass"].status == "fail"  # arrived as the plain int 0
+    assert r["monkeypatch_harness"].status == "fail"  # patched json/os only change what the candidate sends
+    assert r["tested_function_raises_SystemExit_0"].status == "fail"
+    assert "SystemExit(0) raised by the solution during the tests" in r["tested_function_raises_SystemExit_0"].reason
+    for name in ("exit_0_early", "tested_function_calls_os_exit_0"):
+        assert (r[name].status, r[name].reason) == ("crashed", "exited with code 0 before the tests finished"), r[name]
+    assert r["forged_records_every_fd"].status == "crashed"
+    assert "broke the call protocol" in r["forged_records_every_fd"].reason
+    for name in ("frame_walk_reporter", "gc_walk_reporter", "patched_isinstance_and_lying_eq"):
+        assert r[name].status in ("fail", "crashed"), r[name]
+
+
+def test_files_written_with_the_audit_hook_off_do_not_outlive_the_run(attacks):
+    r, left = attacks
+    res = r["audit_hook_off_writes_tmp_shm"]
+    if not ROOT:
+        assert "private-tmp" not in res.os_layers  # said so in the result; the files may have landed
+        pytest.skip("private /tmp needs root (mount namespaces)")
+    # the candidate's wrong-free code still passes: the layer below the audit hook is what holds
+    assert res.status == "pass" and set(res.os_layers) == {"private-tmp", "no-network", "own-uid"}
+    assert left == []
+
+
+@pytest.mark.skipif(not ROOT, reason="private /tmp needs root (mount namespaces)")
+def test_each_run_sees_its_own_empty_tmp():
+    plant = ("import ctypes, os\nlibc = ctypes.CDLL(None)\n"  # ctypes: past the audit hook
+             "for d in ('/tmp', '/dev/shm', '/var/tmp'):\n"
+             "    libc.close(libc.open(os.path.join(d, 'planted').encode(), os.O_WRONLY | os.O_CREAT, 0o644))\n"
+             "def listing(d):\n    return sorted(os.listdir(d))\n")
+    look = "import os\ndef listing(d):\n    return sorted(os.listdir(d))\n"
+    tests = ("assert listing('/dev/shm') == {shm}\nassert listing('/var/tmp') == {var}\n"
+             "assert [n for n in listing('/tmp') if not n.startswith('bonft-sandbox-')] == {tmp}")
+    runner = CodeRunner({}, wall_time=3.0, memory_mb=256, workers=1)
+    first, second = runner.run_code([
+        (plant, tests.format(shm=["planted"], var=["planted"], tmp=["planted"])),
+        (look, tests.format(shm=[], var=[], tmp=[])),  # the next run starts from empty dirs
+    ])
+    assert first.status == "pass", (first.reason, first.stderr)
+    assert second.status == "pass", (second.reason, second.stderr)
+    assert not any(os.path.exists(os.path.join(d, "planted")) for d in ("/tmp", "/dev/shm", "/var/tmp"))
+
+
+STACK = """
+class Stack:
+    def __init__(self):
+        self.items = []
+    def push(self, x):
+        self.items.append(x)
+    def pop(self):
+        return self.items.pop()
+    def __len__(self):
+        return len(self.items)
+def squares(n):
+    for i in range(n):
+        yield i * i
+def sort_in_place(xs):
+    xs.sort()
+def shout(s):
+    print(s.upper())
+def parse(s):
+    return int(s)
+def counts(s):
+    import collections
+    return collections.Counter(s)
+def len(x):
+    return -1
+class Thing:
+    pass
+def thing():
+    return Thing()
+def apply(f, x):
+    return f(x)
+LIMIT = 10
+"""
+
+SEMANTICS = {
+    "objects_stay_behind": "s = Stack()\ns.push(3)\ns.push(4)\nassert s.pop() == 4\nassert len([1]) == 1\n"
+                           "assert s.items == [3]\ns.items = [7]\nassert s.pop() == 7",
+    "iteration": "assert list(squares(4)) == [0, 1, 4, 9]\nassert [x for x in squares(3)] == [0, 1, 4]",
+    "mutated_argument": "xs = [3, 1, 2]\nsort_in_place(xs)\nassert xs == [1, 2, 3]",
+    "printed_output": "import io, contextlib\nbuf = io.StringIO()\nwith contextlib.redirect_stdout(buf):\n"
+                      "    shout('hi')\nassert buf.getvalue() == 'HI\\n'",
+    "exceptions_by_type": "try:\n    parse('x')\nexcept ValueError:\n    pass\nelse:\n    raise AssertionError",
+    "plain_types": "c = counts('aab')\nassert type(c) is dict and c == {'a': 2, 'b': 1}\nassert LIMIT == 10",
+    "truth_of_an_object": "assert thing()",
+    "callable_argument": "assert apply(lambda x: x + 1, 1) == 2",
+}
+
+
+def test_forwarded_calls_keep_the_tests_meaning():
+    runner = CodeRunner({}, wall_time=3.0, memory_mb=256, workers=4)
+    r = dict(zip(SEMANTICS, runner.run_code([(STACK, t) for t in SEMANTICS.values()])))
+    for name in ("objects_stay_behind", "iteration", "mutated_argument", "printed_output",
+                 "exceptions_by_type", "plain_types"):
+        assert r[name].status == "pass", (name, r[name].reason, r[name].stderr[-400:])
+    assert r["truth_of_an_object"].status == "crashed"
+    assert "truth value of the solution's Thing object" in r["truth_of_an_object"].reason
+    assert r["callable_argument"].status == "crashed"
+    assert "got function" in r["callable_argument"].reason
