@@ -3,7 +3,9 @@
 Re-exports :mod:`bonft.verifiers.testkit`: :func:`check_verifier`, its
 :class:`VerifierReport`, :func:`read_examples`, :func:`roc_auc` and hypothesis
 strategies (:func:`prompts`, :func:`responses`, :func:`sample_pools`) for
-property tests of your own verifier.
+property tests of your own verifier; and :mod:`bonft.verifiers.probes`:
+:func:`probe_code_tests`, which runs gaming candidates against your unit tests
+(can they be passed without solving the task?), and its :class:`CodeTestsReport`.
 """
 from .verifiers.testkit import (  # noqa: F401
     VerifierReport,
@@ -14,5 +16,7 @@ from .verifiers.testkit import (  # noqa: F401
     roc_auc,
     sample_pools,
 )
+from .verifiers.probes import PROBES, CodeTestsReport, probe_code_tests  # noqa: F401
 
-__all__ = ["check_verifier", "read_examples", "VerifierReport", "roc_auc", "prompts", "responses", "sample_pools"]
+__all__ = ["check_verifier", "read_examples", "VerifierReport", "roc_auc", "prompts", "responses", "sample_pools",
+           "probe_code_tests", "CodeTestsReport", "PROBES"]

@@ -135,3 +135,38 @@ def test_forwarded_calls_keep_the_tests_meaning():
     assert "truth value of the solution's Thing object" in r["truth_of_an_object"].reason
     assert r["callable_argument"].status == "crashed"
     assert "got function" in r["callable_argument"].reason
+
+
+REACH = """
+import ctypes, os
+libc = ctypes.CDLL(None, use_errno=True)
+def reach():
+    got = []
+    for pid in filter(str.isdigit, os.listdir('/proc')):
+        try:
+            with open('/proc/%s/cmdline' % pid, 'rb') as f:
+                if b'def _run_tests(' not in f.read():
+                    continue
+        except OSError:
+            continue
+        got.append('found')
+        for what, path, flags in (('environ', 'environ', os.O_RDONLY), ('mem', 'mem', os.O_RDWR), ('fd', 'fd/3', os.O_RDONLY)):
+            fd = libc.open(('/proc/%s/%s' % (pid, path)).encode(), flags)
+            if fd >= 0:
+                got.append(what)
+                libc.close(fd)
+        if libc.ptrace(16, int(pid), None, None) == 0:  # PTRACE_ATTACH
+            got.append('ptrace')
+        if libc.kill(int(pid), 0) == 0:  # may it be signalled?
+            got.append('signal')
+    return got
+"""
+
+
+@pytest.mark.skipif(not ROOT, reason="the tests' process has a uid of its own only as root")
+def test_the_candidate_cannot_reach_into_the_tests_process():
+    # ptrace(2) "Ptrace access mode checking": another uid and a non-dumpable target -> EPERM;
+    # proc(5): /proc/PID/mem, environ and fd need that same access; kill(2): EPERM across uids
+    runner = CodeRunner({}, wall_time=3.0, memory_mb=256, workers=1)
+    res = runner.run_code([(REACH, "assert reach() == ['found']")])[0]
+    assert res.status == "pass", (res.reason, res.stderr[-400:])

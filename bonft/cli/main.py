@@ -14,6 +14,7 @@ COMMANDS = {
     "eval": "evaluate",
     "sample": "sample",
     "check-verifier": "check_verifier",
+    "check-tests": "check_tests",
 }
 
 

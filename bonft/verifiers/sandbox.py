@@ -106,12 +106,16 @@ class RunResult:
         return self.status == "pass"
 
 
+_PRELUDE = "import sys\nif sys.path and sys.path[0] in ('', '.'):\n    del sys.path[0]\n"
+
+
 def _boot(name: str) -> str:
-    """Bootstrap source: the wire protocol's text, then the named child file's."""
+    """Bootstrap source: the working directory off ``sys.path`` before any import (nothing
+    planted there is ever imported), then the wire protocol's text, then the named child file's."""
     with open(os.path.join(_HERE, "_wire.py"), encoding="utf-8") as f:
         wire = f.read()
     with open(os.path.join(_HERE, name), encoding="utf-8") as f:
-        return wire + "\n" + f.read()
+        return _PRELUDE + wire + "\n" + f.read()
 
 
 def _frame(buf: bytes) -> dict | None:

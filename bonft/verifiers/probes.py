@@ -1,0 +1,282 @@
+"""Can these unit tests be passed without solving the task? Gaming candidates, run for real.
+
+Unit tests become a reward, and a policy trained against a reward searches for
+whatever earns it. :func:`probe_code_tests` answers, per prompt and before any
+compute is spent, whether a generic gaming candidate -- one that never tries
+to solve the task -- passes the prompt's tests when run through
+:class:`~bonft.verifiers.CodeRunner`. Each probe is built from the test text
+alone (as a policy that saw the tests in its prompt could), defining every
+name the tests take from the solution:
+
+``equal_to_anything``  every function returns an object whose ``__eq__`` is
+                       always true (and ``__bool__`` true). CodeRunner keeps
+                       such objects in the candidate's process and never lets
+                       them decide a comparison, so this passes only tests
+                       that do not look at results at all.
+``constant_reply``     every function returns one constant: each literal the
+                       asserts compare against, and ``True, False, None, 0, 1,
+                       "", []``, one candidate per constant.
+``memorised_asserts``  a lookup table read from the asserts: the exact literal
+                       inputs of each ``f(...) == expected`` (also ``assert
+                       f(...)``, ``assert not f(...)``, ``is``) return the
+                       expected value; anything else returns None.
+``silent_none``        accepts any arguments, does nothing, returns None.
+``raise_everywhere``   every call raises ``ValueError``: passes tests that
+                       catch and swallow exceptions around their asserts.
+``echo_expected``      prints every literal found in the asserts, returns None:
+                       passes tests that check printed output loosely.
+``early_exit``         exits with status 0 at import, or raises SystemExit(0)
+                       from every call. CodeRunner never passes an exit; a
+                       check of the runner too.
+
+A probe that passes gets a recommendation (:data:`ADVICE`): hidden inputs
+drawn at random from a seeded generator and compared with a reference,
+several inputs with different answers, type checks (``type(r) is int``),
+property checks, exact output comparisons, no try/except around asserts.
+"""
+from __future__ import annotations
+
+import ast
+import builtins
+import json
+from dataclasses import dataclass, field
+from typing import Mapping
+
+from .sandbox import CodeRunner
+
+PROBES = ("equal_to_anything", "constant_reply", "memorised_asserts", "silent_none", "raise_everywhere",
+          "echo_expected", "early_exit")
+ADVICE = {
+    "equal_to_anything": "an object that claims to equal anything passes, so some results are never "
+                         "compared (CodeRunner never lets its __eq__ decide): assert on every result",
+    "constant_reply": "one constant passes: test several inputs whose expected results differ",
+    "memorised_asserts": "a lookup table of the asserted inputs passes: add hidden inputs drawn from a "
+                         "seeded random generator and compare with a reference implementation or a property",
+    "silent_none": "a function that does nothing passes: assert on every result, and check its type",
+    "raise_everywhere": "raising an exception passes: do not wrap asserts in try/except; check expected "
+                        "exceptions explicitly",
+    "echo_expected": "printing the expected literals passes: compare the exact printed output for several inputs",
+    "early_exit": "exiting early passes: the runner should never allow this; report it as a bonft bug",
+}
+_DEFAULT_CONSTANTS = (True, False, None, 0, 1, "", [])
+_MAX_CONSTANTS = 12
+
+
+@dataclass(frozen=True)
+class ProbeResult:
+    """One prompt's probes: ``passed`` names the probes that passed; ``statuses[probe]`` lists the
+    runner's statuses of that probe's candidates; ``advice`` one sentence per passing probe."""
+
+    prompt: str
+    passed: tuple[str, ...]
+    statuses: dict[str, tuple[str, ...]]
+    advice: tuple[str, ...]
+
+
+@dataclass(frozen=True)
+class CodeTestsReport:
+    """Probe results per prompt. ``ok`` when no probe passed anywhere; ``str()`` is one line per
+    prompt and a summary table (probe -> prompts it passed)."""
+
+    results: list[ProbeResult] = field(default_factory=list)
+
+    @property
+    def ok(self) -> bool:
+        return not any(r.passed for r in self.results)
+
+    def to_dict(self) -> dict:
+        return {"ok": self.ok, "prompts": [
+            {"prompt": r.prompt, "passed": list(r.passed), "statuses": {k: list(v) for k, v in r.statuses.items()},
+             "advice": list(r.advice)} for r in self.results]}
+
+    def __str__(self) -> str:
+        lines = []
+        for r in self.results:
+            head = r.prompt.replace("\n", " ")
+            head = head if len(head) <= 50 else head[:47] + "..."
+            if r.passed:
+                lines.append(f"GAMEABLE  {head}: passed by {', '.join(r.passed)}")
+                lines += [f"          - {a}" for a in r.advice]
+            else:
+                lines.append(f"ok        {head}: no probe passed")
+        n = len(self.results)
+        lines += ["", f"{'probe':<20} {'prompts passed':>14}"]
+        for p in PROBES:
+            k = sum(p in r.passed for r in self.results)
+            lines.append(f"{p:<20} {f'{k}/{n}':>14}")
+        gameable = sum(bool(r.passed) for r in self.results)
+        lines.append(f"{gameable}/{n} prompts have tests a probe passes")
+        return "\n".join(lines)
+
+
+# ----------------------------------------------------------------------------- reading the tests
+def solution_names(tests: str) -> list[str]:
+    """Names the tests read but never define, import or take from builtins: the solution's, sorted."""
+    tree = ast.parse(tests)
+    loaded, defined = set(), set()
+    for node in ast.walk(tree):
+        if isinstance(node, ast.Name):
+            (loaded if isinstance(node.ctx, ast.Load) else defined).add(node.id)
+        elif isinstance(node, (ast.FunctionDef, ast.AsyncFunctionDef, ast.ClassDef)):
+            defined.add(node.name)
+            a = node.args if not isinstance(node, ast.ClassDef) else None
+            if a is not None:
+                defined.update(x.arg for x in a.args + a.kwonlyargs + a.posonlyargs)
+                defined.update(x.arg for x in (a.vararg, a.kwarg) if x is not None)
+        elif isinstance(node, (ast.Import, ast.ImportFrom)):
+            defined.update((al.asname or al.name).split(".")[0] for al in node.names)
+        elif isinstance(node, ast.ExceptHandler) and node.name:
+            defined.add(node.name)
+        elif isinstance(node, ast.arg):
+            defined.add(node.arg)
+    return sorted(loaded - defined - set(vars(builtins)))
+
+
+def _literal(node):
+    try:
+        return True, ast.literal_eval(node)
+    except (ValueError, TypeError, SyntaxError, MemoryError, RecursionError):
+        return False, None
+
+
+def _call_of(node, names):
+    if isinstance(node, ast.Call) and isinstance(node.func, ast.Name) and node.func.id in names:
+        args = [_literal(a) for a in node.args]
+        kws = [(k.arg, _literal(k.value)) for k in node.keywords if k.arg is not None]
+        if all(ok for ok, _ in args) and all(ok for _, (ok, _) in kws):
+            return node.func.id, tuple(v for _, v in args), tuple(sorted((k, v) for k, (_, v) in kws))
+    return None
+
+
+def asserted_cases(tests: str, names) -> list[tuple[str, tuple, tuple, object]]:
+    """``(function, args, kwargs, expected)`` for each assert on a call with literal arguments."""
+    names, out = set(names), []
+    for node in ast.walk(ast.parse(tests)):
+        if not isinstance(node, ast.Assert):
+            continue
+        t = node.test
+        if isinstance(t, ast.UnaryOp) and isinstance(t.op, ast.Not) and _call_of(t.operand, names):
+            out.append(_call_of(t.operand, names) + (False,))
+        elif _call_of(t, names):
+            out.append(_call_of(t, names) + (True,))
+        elif isinstance(t, ast.Compare) and len(t.ops) == 1 and isinstance(t.ops[0], (ast.Eq, ast.Is)):
+            for call, other in ((t.left, t.comparators[0]), (t.comparators[0], t.left)):
+                ok, value = _literal(other)
+                if ok and _call_of(call, names):
+                    out.append(_call_of(call, names) + (value,))
+                    break
+    return out
+
+
+def _literals(tests: str) -> list:
+    """Literal values the asserts compare against, in order of first appearance."""
+    seen = []
+    for node in ast.walk(ast.parse(tests)):
+        if isinstance(node, ast.Assert):
+            for sub in ast.walk(node.test):
+                if isinstance(sub, (ast.Constant, ast.List, ast.Tuple, ast.Dict, ast.Set, ast.UnaryOp)):
+                    ok, v = _literal(sub)
+                    if ok and not any(type(v) is type(s) and v == s for s in seen):
+                        seen.append(v)
+    return seen
+
+
+# ----------------------------------------------------------------------------- building probes
+def _define(names, body: str, prefix: str = "") -> str:
+    defs = "".join(f"def {n}(*args, **kwargs):\n    {body}\n" for n in names)
+    return prefix + defs
+
+
+def build_probes(tests: str) -> dict[str, list[str]]:
+    """Probe name -> the solution sources that make it up, for one prompt's tests."""
+    names = solution_names(tests)
+    lits = _literals(tests)
+    consts = []
+    for v in lits + list(_DEFAULT_CONSTANTS):
+        if not any(type(v) is type(c) and v == c for c in consts):
+            consts.append(v)
+    table = {}
+    for fn, args, kwargs, expected in asserted_cases(tests, names):
+        table.setdefault(fn, {}).setdefault(repr((args, kwargs)), expected)
+    memo = "".join(
+        f"def {n}(*args, **kwargs):\n    return {table.get(n, {})!r}.get(repr((args, tuple(sorted(kwargs.items())))))\n"
+        for n in names)
+    anything = ("class _Anything:\n    def __eq__(self, other):\n        return True\n"
+                "    def __ne__(self, other):\n        return False\n    def __bool__(self):\n        return True\n"
+                "    __hash__ = object.__hash__\n")
+    echo = "\n".join(f"    print({str(v)!r})" for v in lits) or "    pass"
+    return {
+        "equal_to_anything": [_define(names, "return _Anything()", anything)],
+        "constant_reply": [_define(names, f"return {c!r}") for c in consts[:_MAX_CONSTANTS]],
+        "memorised_asserts": [memo],
+        "silent_none": [_define(names, "return None")],
+        "raise_everywhere": [_define(names, "raise ValueError('probe')")],
+        "echo_expected": ["".join(f"def {n}(*args, **kwargs):\n{echo}\n" for n in names)],
+        "early_exit": ["import os\nos._exit(0)\n", _define(names, "raise SystemExit(0)")],
+    }
+
+
+# ----------------------------------------------------------------------------- running
+def probe_code_tests(tests: Mapping[str, str] | CodeRunner, *, probes=PROBES, runner: CodeRunner | None = None,
+                     progress: bool = False) -> CodeTestsReport:
+    """Run the gaming probes against each prompt's tests; ``(P prompts) -> CodeTestsReport``.
+
+    tests:  prompt -> test code, or a :class:`CodeRunner` (its tests and limits are used).
+    probes: which probes to run (names from :data:`PROBES`).
+    runner: the runner to use with a tests mapping (default ``CodeRunner(tests, wall_time=5)``).
+
+    Caution: a clean report means these generic probes fail, not that the tests cannot be
+    gamed; a policy under optimisation pressure searches far wider. It runs only our probe
+    code, never model output, but it does run your tests.
+    """
+    if isinstance(tests, CodeRunner):
+        runner, tests = tests, tests.tests
+    if not isinstance(tests, Mapping):
+        raise TypeError(f"tests must be a mapping prompt -> test code or a CodeRunner, got {type(tests).__name__}")
+    if isinstance(probes, str) or not all(p in PROBES for p in probes) or not probes:
+        raise ValueError(f"probes must be a non-empty list from {', '.join(PROBES)}, got {probes!r}")
+    if runner is None:
+        runner = CodeRunner(tests)
+    elif not isinstance(runner, CodeRunner):
+        raise TypeError(f"runner must be a CodeRunner, got {type(runner).__name__}")
+    jobs, owners = [], []
+    for prompt, code in tests.items():
+        for probe, sources in build_probes(code).items():
+            if probe in probes:
+                jobs += [(src, code) for src in sources]
+                owners += [(prompt, probe)] * len(sources)
+    results = runner.run_code(jobs, progress=progress)
+    statuses: dict[str, dict[str, list[str]]] = {p: {} for p in tests}
+    for (prompt, probe), res in zip(owners, results):
+        statuses[prompt].setdefault(probe, []).append(res.status)
+    out = []
+    for prompt in tests:
+        passed = tuple(p for p in probes if "pass" in statuses[prompt].get(p, ()))
+        out.append(ProbeResult(prompt, passed, {k: tuple(v) for k, v in statuses[prompt].items()},
+                               tuple(ADVICE[p] for p in passed)))
+    return CodeTestsReport(out)
+
+
+def read_code_tests(path: str) -> dict[str, str]:
+    """Read a tests file: JSON Lines, one ``{"prompt": str, "tests": str}`` per line."""
+    out = {}
+    with open(path, encoding="utf-8") as f:
+        for i, line in enumerate(f, 1):
+            if not line.strip():
+                continue
+            try:
+                rec = json.loads(line)
+            except ValueError as e:
+                raise ValueError(f"{path} line {i} must be a JSON object, got invalid JSON ({e})") from None
+            if not isinstance(rec, dict) or not isinstance(rec.get("prompt"), str) or not isinstance(rec.get("tests"), str):
+                raise ValueError(f"{path} line {i} must be {{\"prompt\": str, \"tests\": str}}, got {line.strip()[:80]}")
+            out[rec["prompt"]] = rec["tests"]
+    return out
+
+
+def write_code_tests(path: str, tests: Mapping[str, str]) -> str:
+    """Write ``prompt -> tests`` as the JSON Lines file :func:`read_code_tests` reads; returns ``path``."""
+    with open(path, "w", encoding="utf-8") as f:
+        for prompt, code in tests.items():
+            f.write(json.dumps({"prompt": prompt, "tests": code}) + "\n")
+    return path

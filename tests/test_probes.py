@@ -1,0 +1,126 @@
+"""The probe kit finds weak unit tests and leaves strong ones alone (issue 13, section 3).
+
+Which probe should pass which test follows from the test text alone (worked
+out by hand below, beside each case): a test that checks one literal input is
+passed by a lookup table of that input; a test that never compares a result is
+passed by anything that does not raise; a try/except around the assert swallows
+the failure. Strong tests (several inputs with different answers, type checks,
+hidden inputs from a seeded generator compared with a reference) follow common
+practice for test design; each is also checked to pass an honest solution, so
+"no probe passed" is not bought by tests that nothing can pass.
+"""
+import json
+
+import pytest
+
+from bonft.testing import CodeTestsReport, probe_code_tests
+from bonft.verifiers import CodeRunner
+from bonft.verifiers.probes import asserted_cases, build_probes, read_code_tests, solution_names, write_code_tests
+
+WEAK = {
+    # one input, == a literal: the constant 5 and a table {(2, 3): 5} both pass
+    "write add(a, b)": "assert add(2, 3) == 5",
+    # results never compared: anything that does not raise passes, raising does not
+    "write sort_list(xs)": "sort_list([3, 1, 2])",
+    # the assert sits in try/except Exception: even raising passes
+    "write halve(x)": "try:\n    assert halve(8) == 4\nexcept Exception:\n    pass",
+}
+STRONG = {
+    "write add(a, b)": (
+        "import random\n"
+        "assert add(2, 3) == 5 and add(-4, 1) == -3 and add(0, 0) == 0\n"
+        "rng = random.Random(20261202)\n"
+        "for _ in range(30):\n"
+        "    a, b = rng.randint(-10**9, 10**9), rng.randint(-10**9, 10**9)\n"
+        "    r = add(a, b)\n"
+        "    assert type(r) is int and r == a + b, (a, b, r)\n"
+    ),
+    "write sort_list(xs)": (
+        "import random\n"
+        "rng = random.Random(7)\n"
+        "for n in (0, 1, 5, 20):\n"
+        "    xs = [rng.randint(-50, 50) for _ in range(n)]\n"
+        "    out = sort_list(list(xs))\n"
+        "    assert type(out) is list and out == sorted(xs), (xs, out)\n"
+    ),
+}
+HONEST = {"write add(a, b)": "def add(a, b):\n    return a + b",
+          "write sort_list(xs)": "def sort_list(xs):\n    return sorted(xs)"}
+
+
+@pytest.fixture(scope="module")
+def runner():
+    return CodeRunner({}, wall_time=3.0, memory_mb=256)
+
+
+def test_reading_the_test_text():
+    assert solution_names("import math\nx = 3\nassert add(x, math.pi) == f(len([1]))") == ["add", "f"]
+    assert solution_names("def helper(n):\n    return n\nassert g(helper(1), key=lambda v: v)") == ["g"]
+    cases = asserted_cases("assert add(2, 3) == 5\nassert 7 == add(3, 4)\nassert is_odd(3)\nassert not is_odd(2)\n"
+                           "assert add(a, 1) == 2", ["add", "is_odd"])
+    assert cases == [("add", (2, 3), (), 5), ("add", (3, 4), (), 7), ("is_odd", (3,), (), True),
+                     ("is_odd", (2,), (), False)]
+    probes = build_probes(WEAK["write add(a, b)"])
+    # 5 (compared with the call), 2, 3 (its arguments), then True, False, None, 0, 1, "", []
+    # (True and 1 differ in type: both kept)
+    assert [s.split("return ")[1].strip() for s in probes["constant_reply"]] == \
+        ["5", "2", "3", "True", "False", "None", "0", "1", "''", "[]"]
+    assert "{'((2, 3), ())': 5}" in probes["memorised_asserts"][0]
+
+
+def test_weak_tests_are_caught(runner):
+    report = probe_code_tests(WEAK, runner=CodeRunner(WEAK, wall_time=3.0, memory_mb=256))
+    got = {r.prompt: set(r.passed) for r in report.results}
+    assert {"constant_reply", "memorised_asserts"} <= got["write add(a, b)"]
+    assert not {"silent_none", "raise_everywhere", "equal_to_anything", "echo_expected"} & got["write add(a, b)"]
+    assert {"silent_none", "constant_reply", "memorised_asserts", "equal_to_anything",
+            "echo_expected"} <= got["write sort_list(xs)"]
+    assert "raise_everywhere" not in got["write sort_list(xs)"]
+    assert "raise_everywhere" in got["write halve(x)"]  # the try/except swallowed the failure
+    assert not any("early_exit" in g for g in got.values())  # the runner never passes an exit
+    assert not report.ok
+    lines = str(report).splitlines()
+    assert lines[0].startswith("GAMEABLE  write add(a, b): passed by constant_reply, memorised_asserts")
+    assert "3/3 prompts have tests a probe passes" in lines[-1]
+    assert json.loads(json.dumps(report.to_dict()))["ok"] is False
+
+
+def test_strong_tests_pass_no_probe_and_an_honest_solution(runner, tmp_path):
+    honest = runner.run_code([(HONEST[p], t) for p, t in STRONG.items()])
+    assert [r.status for r in honest] == ["pass", "pass"], [(r.reason, r.stderr[-300:]) for r in honest]
+    path = write_code_tests(str(tmp_path / "tests.jsonl"), STRONG)
+    assert read_code_tests(path) == STRONG
+    report = probe_code_tests(CodeRunner(read_code_tests(path), wall_time=3.0, memory_mb=256))
+    assert isinstance(report, CodeTestsReport) and report.ok, str(report)
+    assert all(r.passed == () and r.advice == () for r in report.results)
+    assert "0/2 prompts have tests a probe passes" in str(report)
+
+
+def test_probe_arguments_are_validated(tmp_path):
+    with pytest.raises(TypeError, match="tests must be a mapping prompt -> test code or a CodeRunner, got list"):
+        probe_code_tests(["assert True"])
+    with pytest.raises(ValueError, match="probes must be a non-empty list from equal_to_anything, .*got \\['guess'\\]"):
+        probe_code_tests({"p": "pass"}, probes=["guess"])
+    bad = tmp_path / "bad.jsonl"
+    bad.write_text('{"prompt": "p"}\n')
+    with pytest.raises(ValueError, match='line 1 must be {"prompt": str, "tests": str}'):
+        read_code_tests(str(bad))
+
+
+def test_check_tests_command(tmp_path, capsys):
+    from bonft.cli import main
+
+    weak = write_code_tests(str(tmp_path / "weak.jsonl"), {"write add(a, b)": WEAK["write add(a, b)"],
+                                                           "write sort_list(xs)": STRONG["write sort_list(xs)"]})
+    args = ["--probes", "memorised_asserts,silent_none", "--wall-time", "3", "--memory-mb", "256"]
+    out_json = tmp_path / "report.json"
+    assert main(["check-tests", weak, *args, "--json", str(out_json)]) == 1
+    lines = capsys.readouterr().out.splitlines()
+    assert lines[0] == "GAMEABLE  write add(a, b): passed by memorised_asserts"
+    assert lines[2] == "ok        write sort_list(xs): no probe passed"
+    assert "memorised_asserts               1/2" in lines and "silent_none                     0/2" in lines
+    assert json.loads(out_json.read_text())["prompts"][0]["passed"] == ["memorised_asserts"]
+    strong = write_code_tests(str(tmp_path / "strong.jsonl"), {"write sort_list(xs)": STRONG["write sort_list(xs)"]})
+    assert main(["check-tests", strong, *args]) == 0
+    assert main(["check-tests", str(tmp_path / "none.jsonl")]) == 2
+    assert "TESTS.jsonl must be an existing file" in capsys.readouterr().err
