@@ -226,13 +226,68 @@ def _repeat_cache(past, n):
     return _NO_CACHE
 
 
+def _reserve(past, extra: int):
+    """Give each plain dynamic layer of a transformers KV cache room for ``extra`` more positions.
+
+    The stock dynamic layer grows by ``torch.cat`` at every decoding step, which copies the
+    whole cache each time (quadratic in the response length; most of a long decode on CPU).
+    A reserved layer writes each step into a buffer allocated once and hands the attention a
+    view of the filled part. Caches of other kinds (legacy tuples, sliding windows, models
+    with their own cache classes) are left as they are.
+    """
+    layers = getattr(past, "layers", None)
+    if not isinstance(layers, list):
+        return past
+    for i, layer in enumerate(layers):
+        if type(layer) is _DynamicLayer and layer.is_initialized and layer.keys is not None and layer.keys.dim() == 4:
+            layers[i] = _ReservedLayer(layer, extra)
+    return past
+
+
+try:  # transformers >= 5: caches are lists of layers
+    from transformers.cache_utils import DynamicLayer as _DynamicLayer
+except ImportError:  # pragma: no cover - older transformers: keep the stock cache
+    _DynamicLayer = None
+else:
+    class _ReservedLayer(_DynamicLayer):
+        """A dynamic cache layer with preallocated room: update writes in place, returns views."""
+
+        def __init__(self, layer, extra: int):
+            super().__init__()
+            k, v = layer.keys, layer.values  # (R, heads, t, head_dim)
+            R, H, t, d = k.shape
+            self._k = k.new_empty(R, H, t + extra, d)
+            self._v = v.new_empty(R, H, t + extra, v.shape[-1])
+            self._k[:, :, :t], self._v[:, :, :t] = k, v
+            self._len = t
+            self.device, self.is_initialized = k.device, True
+            self.keys, self.values = self._k[:, :, :t], self._v[:, :, :t]
+
+        def update(self, key_states, value_states, *args, **kwargs):
+            t, s = self._len, key_states.shape[-2]
+            if t + s > self._k.shape[-2]:  # out of room: behave like the stock layer
+                return super().update(key_states, value_states, *args, **kwargs)
+            self._k[:, :, t:t + s], self._v[:, :, t:t + s] = key_states, value_states
+            self._len = t + s
+            self.keys, self.values = self._k[:, :, :t + s], self._v[:, :, :t + s]
+            return self.keys, self.values
+
+        def get_seq_length(self) -> int:
+            return self._len if self.keys is not None else 0
+
+
 @torch.no_grad()  # sampling never builds a graph; training log-probs come from sequence_logprobs
 def _sample_rows(model, ids, mask, *, temperature, top_p, max_new_tokens, pad_id, eos_id, generator,
                  generators=None, n=1):
     """Decode n samples of each of P prompts. ids, mask: (P, Tp) -> tokens, gen_mask, logprobs: (P*n, t_max)."""
     cache_arg = _cache_arg(model)
     past, logits = _prompt_pass(model, ids, mask, n)  # logits (R, V), R = P*n rows: row p*n + j is sample j of prompt p
-    mask = mask.repeat_interleave(n, 0)  # (R, Tp)
+    if _DynamicLayer is not None:
+        past = _reserve(past, max_new_tokens)
+    Tp = mask.shape[1]
+    full = torch.ones((ids.shape[0] * n, Tp + max_new_tokens), dtype=mask.dtype, device=mask.device)
+    full[:, :Tp] = mask.repeat_interleave(n, 0)  # (R, Tp + max_new_tokens): generated positions are all real
+    mask = full[:, :Tp]  # (R, Tp), grows by one column a step as a view
     R = mask.shape[0]
     pos = _positions(mask)[:, -1]  # (R,) position of each row's last prompt token
     done = torch.zeros(R, dtype=torch.bool, device=ids.device)
@@ -250,7 +305,7 @@ def _sample_rows(model, ids, mask, *, temperature, top_p, max_new_tokens, pad_id
             done = done | (live & (nxt == eos_id))
         if bool(done.all()) or len(toks) == max_new_tokens:
             break
-        mask = torch.cat([mask, torch.ones_like(mask[:, :1])], dim=1)  # (R, Tp + t + 1)
+        mask = full[:, :mask.shape[1] + 1]  # (R, Tp + t + 1)
         pos = pos + 1
         out = model(input_ids=nxt[:, None], attention_mask=mask, position_ids=pos[:, None],
                     use_cache=True, **{cache_arg: past})

@@ -1,0 +1,137 @@
+"""Sampling speed and memory against transformers' own ``generate`` on the same model and prompts.
+
+What a user would otherwise call: ``model.generate(..., do_sample=True, top_k=0, top_p=1.0,
+num_return_sequences=n)`` with left padding. Both run under ``torch.no_grad`` (generate does so
+itself), with EOS off and the same number of new tokens, one thread, interleaved repetitions,
+medians. Goals (issue 11): bonft's ``sample`` >= 1.5x generate's samples/s on every shape, and
+peak memory <= generate's for 1 prompt x n = 1024 x 32 tokens on the 6 x 384 model (each method
+measured in a fresh process: peak RSS growth over the loaded model).
+
+    python benchmarks/bench_sampling.py [--reps 3] [--skip-memory]
+"""
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import statistics
+import subprocess
+import sys
+import time
+import types
+
+import torch
+
+from bonft.tasks import build_tokenizer, get_task
+from bonft.trainer.generation import sample
+from bonft.trainer.models import build_tiny_model
+
+
+class NoEos:
+    """The char tokenizer with EOS switched off, so both samplers draw exactly max_new_tokens."""
+
+    def __init__(self, tok):
+        self._tok = tok
+        self.eos_token_id = None
+        self.pad_token_id = tok.pad_token_id
+
+    def __call__(self, *a, **kw):
+        return self._tok(*a, **kw)
+
+    def decode(self, *a, **kw):
+        return self._tok.decode(*a, **kw)
+
+
+def build(shape: str):
+    tok = build_tokenizer()
+    layers, width, heads = {"tiny": (2, 128, 4), "6x384": (6, 384, 6)}[shape]
+    torch.manual_seed(0)
+    model = build_tiny_model("gpt2", vocab_size=len(tok), pad_token_id=tok.pad_token_id, eos_token_id=tok.eos_token_id,
+                             bos_token_id=tok.bos_token_id, layers=layers, width=width, heads=heads, max_positions=160)
+    model.eval()
+    return model, tok
+
+
+def run_generate(model, tok, prompts, n, T, seed):
+    enc = [tok(p)["input_ids"] for p in prompts]
+    Tp = max(map(len, enc))
+    ids = torch.full((len(enc), Tp), tok.pad_token_id, dtype=torch.long)
+    mask = torch.zeros_like(ids)
+    for i, r in enumerate(enc):  # left padding, as generate expects for decoder-only models
+        ids[i, Tp - len(r):] = torch.tensor(r)
+        mask[i, Tp - len(r):] = 1
+    torch.manual_seed(seed)
+    out = model.generate(input_ids=ids, attention_mask=mask, do_sample=True, top_k=0, top_p=1.0, temperature=1.0,
+                         num_return_sequences=n, max_new_tokens=T, min_new_tokens=T, eos_token_id=None,
+                         pad_token_id=tok.pad_token_id)
+    assert out.shape == (len(prompts) * n, Tp + T)
+    return out
+
+
+def run_bonft(model, tok, prompts, n, T, seed):
+    s = sample(model, NoEos(tok), prompts, n=n, max_new_tokens=T, seed=seed)
+    assert s.reply_tokens.shape == (len(prompts), n, T)
+    return s
+
+
+def speed(shape, P, n, T, reps):
+    model, tok = build(shape)
+    prompts = [ex.prompt for ex in get_task("ledger").split(n_train=P, n_eval=1, seed=0)[0][:P]]
+    times = {"generate": [], "bonft": []}
+    run_generate(model, tok, prompts[:1], 2, 2, 0), run_bonft(model, tok, prompts[:1], 2, 2, 0)  # warm-up
+    for r in range(reps):  # interleaved
+        for name, fn in (("generate", run_generate), ("bonft", run_bonft)):
+            t0 = time.perf_counter()
+            fn(model, tok, prompts, n, T, r)
+            times[name].append(time.perf_counter() - t0)
+    g, b = statistics.median(times["generate"]), statistics.median(times["bonft"])
+    return P * n / g, P * n / b
+
+
+def _rss_mb() -> float:
+    with open("/proc/self/status") as f:
+        for line in f:
+            if line.startswith("VmHWM:"):
+                return int(line.split()[1]) / 1024
+    return float("nan")
+
+
+def memory_child(method: str) -> None:
+    torch.set_num_threads(1)
+    model, tok = build("6x384")
+    prompts = [get_task("ledger").split(n_train=1, n_eval=1, seed=0)[0][0].prompt]
+    base = _rss_mb()
+    t0 = time.perf_counter()
+    (run_generate if method == "generate" else run_bonft)(model, tok, prompts, 1024, 32, 0)
+    print(json.dumps({"peak_mb": _rss_mb() - base, "s": time.perf_counter() - t0}))
+
+
+def memory(method: str) -> dict:
+    out = subprocess.run([sys.executable, __file__, "--memory-child", method], capture_output=True, text=True,
+                         check=True, env={**os.environ, "OMP_NUM_THREADS": "1"})
+    return json.loads(out.stdout.strip().splitlines()[-1])
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser()
+    ap.add_argument("--reps", type=int, default=3)
+    ap.add_argument("--skip-memory", action="store_true")
+    ap.add_argument("--memory-child", default=None, help=argparse.SUPPRESS)
+    args = ap.parse_args()
+    if args.memory_child:
+        return memory_child(args.memory_child)
+    torch.set_num_threads(1)
+    print(f"load average at start: {os.getloadavg()[0]:.2f}")
+    print(f"{'model':6s} {'prompts x n x tokens':>22s} {'generate/s':>11s} {'bonft/s':>9s} {'ratio':>6s}  (goal >= 1.5x)")
+    for shape, P, n, T in (("tiny", 16, 16, 8), ("tiny", 8, 16, 64), ("6x384", 8, 16, 16), ("6x384", 8, 16, 64),
+                           ("6x384", 1, 64, 64)):
+        g, b = speed(shape, P, n, T, args.reps)
+        print(f"{shape:6s} {f'{P} x {n} x {T}':>22s} {g:11.1f} {b:9.1f} {b / g:5.2f}x")
+    if not args.skip_memory:
+        mg, mb = memory("generate"), memory("bonft")
+        print(f"peak memory, 6x384, 1 x 1024 x 32: generate +{mg['peak_mb']:.0f} MB ({mg['s']:.1f} s), "
+              f"bonft +{mb['peak_mb']:.0f} MB ({mb['s']:.1f} s), ratio {mb['peak_mb'] / mg['peak_mb']:.2f} (goal <= 1)")
+
+
+if __name__ == "__main__":
+    main()
