@@ -1,0 +1,214 @@
+"""Dynamic programmes over answer counts for majority vote (private; inputs are trusted).
+
+Majority vote over ``k`` samples returns the answer held by the most samples,
+ties broken uniformly among the tied answers. Two settings share one
+generating-function identity:
+
+* a **pool** of ``n`` samples, ``k`` of them drawn without replacement: answer
+  ``a`` appears ``c`` times with weight ``C(n_a, c)`` (hypergeometric);
+* a **policy** over answers with masses ``q_a``, ``k`` draws with replacement:
+  weight ``q_a^c / c!`` and a final factor ``k!`` (multinomial).
+
+For a threshold ``c`` (the winner's count), every other answer ``b`` holds at
+most ``c`` samples; those holding exactly ``c`` are marked by a variable
+``u``. Answer ``a`` wins with share ``1/(1 + T)`` when ``T`` others tie with
+it, and ``1/(1 + T) = int_0^1 u^T du``:
+
+.. math::
+    P_k(a\\text{ wins}) \\propto \\sum_{c\\ge1} [x^k]\\; w_a(c)\\,x^c
+        \\int_0^1 \\prod_{b\\ne a}\\Big(\\sum_{m<c} w_b(m)\\,x^m + u\\,w_b(c)\\,x^c\\Big)\\,du
+
+The integrand is a polynomial of degree ``A - 1`` in ``u`` (``A`` the answers
+that can reach ``c``), so Gauss-Legendre quadrature with ``ceil(A/2)`` nodes
+integrates it exactly (Abramowitz & Stegun 1964, 25.4.29). The coefficient of
+``x^k`` gives every ``k`` at once. No k-tuple or k-subset is enumerated.
+
+References: Wang et al. 2023, "Self-Consistency Improves Chain of Thought
+Reasoning in Language Models" (majority vote over sampled answers);
+Hoeffding 1948 (U-statistics).
+"""
+from __future__ import annotations
+
+import math
+from functools import lru_cache
+
+import numpy as np
+import torch
+
+
+@lru_cache(maxsize=256)
+def _gauss_legendre(m: int) -> tuple[np.ndarray, np.ndarray]:
+    """m nodes and weights on [0, 1]: exact for polynomials of degree <= 2m - 1."""
+    x, w = np.polynomial.legendre.leggauss(max(m, 1))
+    return (x + 1.0) / 2.0, w / 2.0
+
+
+@lru_cache(maxsize=4096)
+def _comb_row(d: int) -> np.ndarray:
+    """(d+1,) binomials C(d, 0..d) as float64 (exact below 2^53, then correctly rounded)."""
+    return np.array([float(math.comb(d, m)) for m in range(d + 1)])
+
+
+def _pmul(a: np.ndarray, b: np.ndarray, K: int) -> np.ndarray:
+    """Batched polynomial product truncated at degree K: (U, La), (U, Lb) -> (U, min(La+Lb-1, K+1))."""
+    if a.shape[1] < b.shape[1]:
+        a, b = b, a
+    L = min(a.shape[1] + b.shape[1] - 1, K + 1)
+    out = np.zeros((a.shape[0], L))
+    for j in range(min(b.shape[1], L)):
+        span = min(a.shape[1], L - j)
+        out[:, j : j + span] += a[:, :span] * b[:, j : j + 1]
+    return out
+
+
+def _ppow(f: np.ndarray, m: int, K: int) -> np.ndarray:
+    """f^m by repeated squaring, truncated at degree K; f^0 = 1."""
+    out = np.ones((f.shape[0], 1))
+    base = f
+    while m:
+        if m & 1:
+            out = _pmul(out, base, K)
+        m >>= 1
+        if m:
+            base = _pmul(base, base, K)
+    return out
+
+
+def class_win_counts(d: np.ndarray, m: np.ndarray, K: int) -> np.ndarray:
+    """Tie-weighted number of k-subsets a given answer wins, for each count class.
+
+    ``d: (J,)`` distinct answer counts in the pool, ``m: (J,)`` how many answers
+    have each count (answers with equal counts are exchangeable)
+    -> ``(J, K+1)``: entry ``[j, k]`` is ``sum_S share_a(S)`` over the k-subsets
+    ``S`` of the pool, for one answer ``a`` of class ``j``. Divide by
+    ``C(n, k)`` for the win probability.
+
+    Cost: for each threshold ``c`` a product of the classes that reach ``c``,
+    batched over the quadrature nodes; ``O(sum_c A_c * n * c)`` flops.
+    """
+    d = np.asarray(d, dtype=np.int64)
+    m = np.asarray(m, dtype=np.int64)
+    J = len(d)
+    W = np.zeros((J, K + 1))
+    for c in range(1, int(d.max()) + 1):
+        act = np.flatnonzero(d >= c)
+        below = int((d[d < c] * m[d < c]).sum())  # samples of answers that cannot reach c
+        A = int(m[act].sum())
+        u, g = _gauss_legendre((A + 1) // 2)
+        U = len(u)
+        pw, pw1, head = [], [], []
+        for j in act:
+            row = _comb_row(int(d[j]))
+            f = np.empty((U, c + 1))
+            f[:, :c] = row[:c]
+            f[:, c] = u * row[c]
+            p1 = _ppow(f, int(m[j]) - 1, K)
+            pw1.append(p1)
+            pw.append(_pmul(p1, f, K))
+            head.append(row[c])
+        # prefix / suffix products over the active classes
+        L = len(act)
+        pre = [np.ones((U, 1))]
+        for i in range(L):
+            pre.append(_pmul(pre[-1], pw[i], K))
+        suf = [np.ones((U, 1))]
+        for i in range(L - 1, -1, -1):
+            suf.append(_pmul(suf[-1], pw[i], K))
+        suf = suf[::-1]  # suf[i] = product of classes i..L-1
+        binom_below = _comb_row(below)[: K + 1]
+        for i, j in enumerate(act):
+            rest = _pmul(_pmul(pre[i], suf[i + 1], K), pw1[i], K)  # (U, ...) everyone but this answer
+            poly = g @ rest  # integrate over u
+            poly = np.convolve(poly, binom_below)[: K + 1 - c]
+            W[j, c : c + len(poly)] += head[i] * poly
+    return W
+
+
+def pool_win_probs(counts: np.ndarray, K: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Win probabilities of every answer of a pool: counts (A,) > 0 -> (A, K+1).
+
+    Returns ``(P, classes, cls_of)``: ``P[a, k]`` is the chance answer ``a``
+    wins majority vote on a uniform k-subset (ties shared), ``P[:, 0] = 0``.
+    """
+    counts = np.asarray(counts, dtype=np.int64)
+    n = int(counts.sum())
+    d, cls_of, mult = np.unique(counts, return_inverse=True, return_counts=True)
+    W = class_win_counts(d, mult, K)
+    tot = np.array([float(math.comb(n, k)) for k in range(K + 1)])
+    Pc = W / tot
+    return Pc[cls_of], d, cls_of
+
+
+# ---------------------------------------------------------------------------- finite policy (torch)
+
+
+def _tmul(a: torch.Tensor, b: torch.Tensor, K: int) -> torch.Tensor:
+    """Polynomial product on the last axis, both of length K+1, truncated at degree K."""
+    out = a * b[..., :1]
+    parts = [out]
+    for j in range(1, K + 1):
+        parts.append(torch.nn.functional.pad(a[..., : K + 1 - j] * b[..., j : j + 1], (j, 0)))
+    return torch.stack(parts, 0).sum(0)
+
+
+def policy_majority_value(q: torch.Tensor, qr: torch.Tensor, k: int) -> torch.Tensor:
+    """Exact majority-vote value of a policy over answers, differentiable.
+
+    ``q: (L, A)`` answer masses, ``qr: (L, A)`` their reward mass
+    ``sum_{v in a} pi(v) R_v`` -> ``(L,)``:
+
+    .. math:: V_k = \\sum_a P_k(a\\text{ wins})\\,\\bar R_a,\\quad
+              \\bar R_a = qr_a / q_a
+
+    computed as ``k! [x^k] sum_c int_0^1 d/de prod_b (f_b(x, u) + e h_b(x))``
+    with ``f_b = sum_{m<c} q_b^m x^m/m! + u q_b^c x^c/c!`` and
+    ``h_b = qr_b q_b^(c-1) x^c / c!``, so no division by ``q_a``.
+    """
+    L, A = q.shape
+    dt = q.dtype
+    u_np, g_np = _gauss_legendre((A + 1) // 2)
+    u = torch.as_tensor(u_np, dtype=dt, device=q.device)
+    g = torch.as_tensor(g_np, dtype=dt, device=q.device)
+    U = len(u_np)
+    mpow = torch.arange(k + 1, dtype=dt, device=q.device)
+    steps = q[..., None] / mpow[1:]  # (L, A, k): q/1, q/2, ..., q/k
+    qpow = torch.cat([torch.ones_like(q[..., None]), torch.cumprod(steps, -1)], -1)  # (L, A, k+1) q^m/m!
+    cs = torch.arange(1, k + 1, device=q.device)  # thresholds (C,)
+    below = (mpow[None, :] < cs[:, None]).to(dt)  # (C, k+1)
+    at = (mpow[None, :] == cs[:, None]).to(dt)  # (C, k+1)
+    # f[l, a, c, u, m] = q^m/m! for m < c, u q^c/c! for m = c
+    f = qpow[:, :, None, None, :] * (below[:, None, :] + at[:, None, :] * u[None, :, None])
+    hcoef = qr[..., None] * qpow[..., :k] / cs.to(dt)  # (L, A, C): qr q^(c-1)/c!
+    h = (hcoef[..., None] * at[None, None]).unsqueeze(3)  # (L, A, C, 1, k+1)
+    C = len(cs)
+    val = torch.zeros(L, C, U, k + 1, dtype=dt, device=q.device)
+    val[..., 0] = 1.0
+    der = torch.zeros_like(val)
+    for b in range(A):
+        fb, hb = f[:, b], h[:, b].expand(L, C, U, k + 1)
+        der = _tmul(der, fb, k) + _tmul(val, hb, k)
+        val = _tmul(val, fb, k)
+    coef = der[..., k]  # (L, C, U)
+    return math.factorial(k) * (coef * g).sum(-1).sum(-1)
+
+
+# ---------------------------------------------------------------------------- weighted vote
+
+
+def weighted_vote_weights(cnt: np.ndarray, codes: np.ndarray, s: np.ndarray) -> np.ndarray:
+    """Weight of each outcome in the served reward of a weighted vote.
+
+    ``cnt: (N, V)`` how often each outcome (or pool sample, 0/1) is in each draw,
+    ``codes: (V,)`` answer ids, ``s: (V,)`` scores -> ``(N, V)`` weights ``w`` with
+    served expected reward ``w @ R``: the answers with the largest total score
+    (equal to 1e-12 relative) share the win, and the winner's samples share it.
+    """
+    A = int(codes.max()) + 1
+    onehot = np.zeros((len(codes), A))
+    onehot[np.arange(len(codes)), codes] = 1.0
+    num = cnt @ onehot  # (N, A) samples per answer
+    present = num > 0
+    tot = np.where(present, (cnt * s) @ onehot, -np.inf)  # (N, A) total score per answer
+    win = present & np.isclose(tot, tot.max(1, keepdims=True), rtol=1e-12, atol=1e-12)
+    share = win / np.where(present, num, 1.0) / win.sum(1, keepdims=True)  # (N, A) per sample of each answer
+    return cnt * share[:, codes]

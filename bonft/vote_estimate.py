@@ -1,0 +1,355 @@
+r"""Unbiased strategy values and per-sample credit from pools of samples.
+
+For one prompt we hold a pool of ``n`` samples, each with an answer key, a verifier score and a
+true reward. The estimate of ``V_k`` averages the served reward over all ``C(n, k)`` k-subsets of
+the pool (a U-statistic, Hoeffding 1948), so it is unbiased for the strategy's value under the
+policy that produced the pool:
+
+.. math:: \hat V_k = \binom nk^{-1}\sum_{|S|=k} f(S)
+
+* majority vote: exact for every ``k <= n`` at once by a dynamic programme over answer counts
+  (:mod:`bonft._votes`); ``f(S) = sum_a share_a(S) * mean reward of a's samples in S``;
+* weighted vote: exact over all k-subsets while ``C(n, k) <= max_subsets``, otherwise the mean of
+  ``max_subsets`` uniform random k-subsets, still unbiased, with its standard error;
+* best-of-k and pass@k: the closed forms of :mod:`bonft.estimate`.
+
+Credit. With ``kb = min(k, n-1)``, the per-sample credit
+
+.. math::
+    w_i = \frac kn\Big(\mathrm{mean}_{S\ni i,|S|=k} f(S) - \mathrm{mean}_{S\not\ni i,|S|=kb} f(S)\Big)
+        = \hat V_k(\text{pool}) - \hat V_{kb}(\text{pool} \setminus i)
+
+gives ``E[sum_i w_i grad log pi(y_i)] = grad V_k`` exactly: the first term regroups the
+U-statistic of the score-function gradient by sample, the second (a leave-one-out baseline) never
+looks at sample ``i``. The second form holds for ``k < n`` and for ``k = n``
+(``C(n-1, n) = 0``). The sampled weighted-vote credit
+``w_i = mean_m f(S_m)(1{i in S_m} - k/(n-k) 1{i not in S_m})`` is unbiased for the same ``w_i``.
+
+References: Hoeffding 1948 (U-statistics); Kool et al. 2019 (leave-one-out baselines);
+Chow et al. 2024 (best-of-N policy gradients); Walder & Karkhanis 2025 (U-statistic pass@k
+gradients); Wang et al. 2023 (majority vote).
+
+Caution: credit for a vote pushes the policy towards answers the extraction or the verifier
+favours, right or wrong (reward hacking); watch a held-out true reward.
+"""
+from __future__ import annotations
+
+import itertools
+import math
+
+import numpy as np
+import torch
+
+from bonft import credit as _credit
+from bonft import estimate as _estimate
+from bonft._checks import as_float_array, check_finite, check_int, check_k, check_ks, is_tensor
+from bonft._credit_inputs import _finish, _out_kind
+from bonft._votes import class_win_counts, weighted_vote_weights
+
+__all__ = [
+    "vote_at_k_per_prompt", "weighted_vote_at_k_per_prompt", "vote_credit", "weighted_vote_credit",
+    "strategy_at_k", "strategy_credit",
+]
+
+_MAX_N_EXACT = 1000  # binomials of the count DP stay inside float64 (2^1000 ~ 1e301)
+
+
+# ---------------------------------------------------------------------------- inputs
+
+
+def _rows(name: str, x, *, numeric: bool) -> list[np.ndarray]:
+    """(P, n) array or a list of 1-D per-prompt arrays -> list of 1-D arrays."""
+    if is_tensor(x):
+        x = x.detach().cpu().numpy()
+    if isinstance(x, np.ndarray) and x.ndim == 2:
+        rows = list(x)
+    elif isinstance(x, (list, tuple)) and x and not np.isscalar(x[0]):
+        rows = [r.detach().cpu().numpy() if is_tensor(r) else np.asarray(r) for r in x]
+    else:
+        arr = np.asarray(x)
+        if arr.ndim != 2:
+            raise ValueError(f"{name} must have shape (P, n) or be a list of per-prompt arrays, got shape {arr.shape}")
+        rows = list(arr)
+    out = []
+    for p, r in enumerate(rows):
+        if r.ndim != 1 or len(r) == 0:
+            raise ValueError(f"{name}[{p}] must be a non-empty 1-D pool, got shape {r.shape}")
+        if numeric:
+            r = as_float_array(f"{name}[{p}]", r)
+            check_finite(f"{name}[{p}]", r)
+        out.append(r)
+    return out
+
+
+def _codes(answers: list[np.ndarray]) -> list[np.ndarray]:
+    """Answer keys of any comparable kind -> int codes 0..A-1 per pool."""
+    out = []
+    for p, a in enumerate(answers):
+        try:
+            out.append(np.unique(a, return_inverse=True)[1].reshape(-1))
+        except TypeError:
+            raise TypeError(f"answers[{p}] must hold comparable keys (ints or strings), got dtype {a.dtype}") from None
+    return out
+
+
+def _same_lengths(**pools: list[np.ndarray]) -> None:
+    items = list(pools.items())
+    n0, first = items[0]
+    for name, rows in items[1:]:
+        if len(rows) != len(first):
+            raise ValueError(f"{name} must hold {len(first)} pools like {n0}, got {len(rows)}")
+        for p, (a, b) in enumerate(zip(first, rows)):
+            if len(a) != len(b):
+                raise ValueError(f"{name}[{p}] must have {len(a)} samples like {n0}[{p}], got {len(b)}")
+
+
+# ---------------------------------------------------------------------------- majority vote
+
+
+def _class_probs(counts: dict[int, int], K: int) -> dict[int, float]:
+    """{count: multiplicity} -> {count: chance one answer of that count wins on a K-subset}."""
+    d = np.array(sorted(counts))
+    m = np.array([counts[v] for v in d])
+    n = int((d * m).sum())
+    W = class_win_counts(d, m, K)[:, K] / float(math.comb(n, K))
+    return dict(zip(d.tolist(), W.tolist()))
+
+
+def _vote_pool(codes: np.ndarray, r: np.ndarray, ks: np.ndarray) -> np.ndarray:
+    """One pool -> (K,) majority-vote values."""
+    counts = np.bincount(codes)
+    rbar = np.bincount(codes, weights=r) / counts
+    d, cls, mult = np.unique(counts, return_inverse=True, return_counts=True)
+    K = int(ks.max())
+    W = class_win_counts(d, mult, K)  # (J, K+1)
+    tot = np.array([float(math.comb(len(r), k)) for k in ks])
+    per_class_r = np.bincount(cls.reshape(-1), weights=rbar, minlength=len(d))  # (J,) sum of rbar per class
+    return (per_class_r @ W[:, ks]) / tot
+
+
+def vote_at_k_per_prompt(answers, rewards, *, ks):
+    r"""Unbiased majority-vote value of every pool: ``(P, n), (P, n) -> (P, K)`` (``(P,)`` for an int ``ks``).
+
+    .. math:: \hat V_k = \sum_a \hat P_k(a\ \text{wins})\,\bar r_a,\quad
+              \hat P_k(a\ \text{wins}) = \binom nk^{-1}\sum_{|S|=k}\frac{1\{c_a(S)=\max\}}{\#\{b: c_b(S)=\max\}}
+
+    ``answers`` are any comparable keys (ints, strings); ``rbar_a`` is the mean reward of the
+    pool's samples with answer ``a``. Exact U-statistic over all k-subsets by a dynamic
+    programme over answer counts (every k <= n in one pass); pools up to n = 1000.
+    Ragged pools: lists of 1-D arrays. References: Wang et al. 2023; Hoeffding 1948.
+    """
+    ans = _rows("answers", answers, numeric=False)
+    rew = _rows("rewards", rewards, numeric=True)
+    _same_lengths(answers=ans, rewards=rew)
+    n_min, n_max = min(len(a) for a in ans), max(len(a) for a in ans)
+    if n_max > _MAX_N_EXACT:
+        raise ValueError(f"answers pools must have n <= {_MAX_N_EXACT} for the exact vote estimate, got n={n_max}")
+    ks_arr, scalar = check_ks(ks, n_min, name="ks")
+    out = np.stack([_vote_pool(c, r, ks_arr) for c, r in zip(_codes(ans), rew)])
+    return out[:, 0] if scalar else out
+
+
+def _vote_credit_pool(codes: np.ndarray, r: np.ndarray, k: int) -> np.ndarray:
+    """One pool (n,) -> (n,) majority-vote credit V_k(pool) - V_kb(pool - i)."""
+    n = len(r)
+    if n == 1:
+        return r.copy()
+    counts = np.bincount(codes)
+    rsum = np.bincount(codes, weights=r)
+    rbar = rsum / counts
+    classes = {int(v): int(c) for v, c in zip(*np.unique(counts, return_counts=True))}
+    full = _class_probs(classes, k)
+    vk = sum(full[int(counts[a])] * rbar[a] for a in range(len(counts)))
+    kb = min(k, n - 1)
+    loo = np.empty(n)
+    for d in classes:  # one dynamic programme per count class: pool minus one sample of a d-answer
+        mod = dict(classes)
+        mod[d] -= 1
+        if d > 1:
+            mod[d - 1] = mod.get(d - 1, 0) + 1
+        mod = {v: c for v, c in mod.items() if c}
+        pm = _class_probs(mod, kb)
+        base = sum(pm.get(int(counts[b]), 0.0) * rbar[b] for b in range(len(counts)))
+        for a in np.flatnonzero(counts == d):
+            idx = np.flatnonzero(codes == a)
+            v = base - pm.get(d, 0.0) * rbar[a]  # a no longer holds d samples
+            if d > 1:
+                v = v + pm[d - 1] * (rsum[a] - r[idx]) / (d - 1)  # a's mean reward without sample i
+            loo[idx] = v
+    return vk - loo
+
+
+def vote_credit(answers, rewards, *, k):
+    r"""Majority-vote credit with a leave-one-out baseline: ``(B, n), (B, n) -> (B, n)``.
+
+    .. math:: w_i = \hat V_k(\text{pool}) - \hat V_{\min(k,n-1)}(\text{pool}\setminus i)
+
+    ``E[sum_i w_i grad log pi(y_i)] = grad V_k`` exactly (module docstring). Equal rewards give
+    zero credit; ``n = 1`` gives ``w = R``. One count DP per distinct answer count per pool.
+    numpy/list in -> float64 numpy; torch in -> torch (device, floating dtype of ``rewards``).
+    References: Hoeffding 1948; Kool et al. 2019; Wang et al. 2023.
+    """
+    kind = _out_kind(rewards)
+    ans = _rows("answers", answers, numeric=False)
+    rew = _rows("rewards", rewards, numeric=True)
+    _same_lengths(answers=ans, rewards=rew)
+    n = len(rew[0])
+    if any(len(r) != n for r in rew):
+        raise ValueError("rewards must have shape (B, n): every pool the same size for credit")
+    if n > _MAX_N_EXACT:
+        raise ValueError(f"rewards must have n <= {_MAX_N_EXACT} samples per prompt, got n={n}")
+    k = check_k(k, n)
+    w = np.stack([_vote_credit_pool(c, r, k) for c, r in zip(_codes(ans), rew)])
+    return _finish(torch.from_numpy(w), kind)
+
+
+# ---------------------------------------------------------------------------- weighted vote
+
+
+def _subsets(n: int, k: int, max_subsets: int, rng) -> tuple[np.ndarray, bool]:
+    """Indicator matrix (N, n) of all k-subsets (exact) or of max_subsets uniform ones."""
+    if math.comb(n, k) <= max_subsets:
+        ind = np.zeros((math.comb(n, k), n))
+        for row, S in enumerate(itertools.combinations(range(n), k)):
+            ind[row, list(S)] = 1.0
+        return ind, True
+    idx = np.argsort(rng.random((max_subsets, n)), axis=1)[:, :k]
+    ind = np.zeros((max_subsets, n))
+    np.put_along_axis(ind, idx, 1.0, axis=1)
+    return ind, False
+
+
+def _weighted_f(ind: np.ndarray, codes: np.ndarray, s: np.ndarray, r: np.ndarray) -> np.ndarray:
+    return weighted_vote_weights(ind, codes, s) @ r
+
+
+def _check_budget(max_subsets, seed) -> tuple[int, int]:
+    return check_int("max_subsets", max_subsets, min=2), check_int("seed", seed, min=0)
+
+
+def weighted_vote_at_k_per_prompt(answers, scores, rewards, *, ks, max_subsets=20_000, seed=0):
+    r"""Unbiased verifier-weighted vote value of every pool and its standard error.
+
+    ``(P, n) x 3 -> (values (P, K), stderr (P, K))``. The served answer maximises the total
+    score of its samples among the k. While ``C(n, k) <= max_subsets`` the U-statistic runs
+    over every k-subset (stderr 0); above, over ``max_subsets`` uniform random k-subsets (seeded),
+    unbiased with standard error ``sd(f)/sqrt(max_subsets)``.
+
+    .. math:: \hat V_k = \binom nk^{-1}\sum_{|S|=k} f(S)
+
+    References: Li et al. 2023 (verifier-weighted voting); Hoeffding 1948.
+    """
+    ans = _rows("answers", answers, numeric=False)
+    sc = _rows("scores", scores, numeric=True)
+    rew = _rows("rewards", rewards, numeric=True)
+    _same_lengths(answers=ans, scores=sc, rewards=rew)
+    ks_arr, _ = check_ks(ks, min(len(a) for a in ans), name="ks")
+    max_subsets, seed = _check_budget(max_subsets, seed)
+    rng = np.random.default_rng(seed)
+    val = np.zeros((len(ans), len(ks_arr)))
+    se = np.zeros_like(val)
+    for p, (c, s, r) in enumerate(zip(_codes(ans), sc, rew)):
+        for j, k in enumerate(ks_arr):
+            ind, exact = _subsets(len(r), int(k), max_subsets, rng)
+            f = _weighted_f(ind, c, s, r)
+            val[p, j] = f.mean()
+            se[p, j] = 0.0 if exact else f.std(ddof=1) / math.sqrt(len(f))
+    return val, se
+
+
+def weighted_vote_credit(answers, scores, rewards, *, k, max_subsets=20_000, seed=0):
+    r"""Weighted-vote credit with a leave-one-out baseline: ``(B, n) x 3 -> (B, n)``.
+
+    .. math:: w_i = \frac kn\Big(\mathrm{mean}_{S\ni i} f(S) - \mathrm{mean}_{S\not\ni i,|S|=kb} f(S)\Big)
+
+    over every k-subset while ``C(n, k) <= max_subsets``; above, the unbiased sampled form
+    ``w_i = mean_m f(S_m)(1{i in S_m} - k/(n-k) 1{i not in S_m})`` over ``max_subsets``
+    uniform k-subsets. Either way ``E[sum_i w_i grad log pi(y_i)] = grad V_k``.
+    References: Kool et al. 2019; Hoeffding 1948; Li et al. 2023.
+    """
+    kind = _out_kind(rewards, scores)
+    ans = _rows("answers", answers, numeric=False)
+    sc = _rows("scores", scores, numeric=True)
+    rew = _rows("rewards", rewards, numeric=True)
+    _same_lengths(answers=ans, scores=sc, rewards=rew)
+    n = len(rew[0])
+    if any(len(r) != n for r in rew):
+        raise ValueError("rewards must have shape (B, n): every pool the same size for credit")
+    k = check_k(k, n)
+    max_subsets, seed = _check_budget(max_subsets, seed)
+    rng = np.random.default_rng(seed)
+    out = np.zeros((len(rew), n))
+    for p, (c, s, r) in enumerate(zip(_codes(ans), sc, rew)):
+        if n == 1:
+            out[p] = r
+            continue
+        ind, exact = _subsets(n, k, max_subsets, rng)
+        f = _weighted_f(ind, c, s, r)
+        if not exact:  # k < n here
+            out[p] = (f @ ind - (k / (n - k)) * (f @ (1.0 - ind))) / len(f)
+            continue
+        with_i = (f @ ind) / ind.sum(0)
+        if k < n:
+            without_i = (f @ (1.0 - ind)) / (1.0 - ind).sum(0)
+        else:  # the baseline is the pool without i, all n-1 of it
+            without_i = _weighted_f(1.0 - np.eye(n), c, s, r)
+        out[p] = (k / n) * (with_i - without_i)
+    return _finish(torch.from_numpy(out), kind)
+
+
+# ---------------------------------------------------------------------------- any strategy
+
+
+def _need(st, scores, answers) -> None:
+    if st.uses_scores and scores is None:
+        raise ValueError(f"scores must be given for strategy {st.name!r}, got None")
+    if st.uses_answers and answers is None:
+        raise ValueError(f"answers must be given for strategy {st.name!r}, got None")
+
+
+def strategy_at_k(strategy, *, ks, rewards, scores=None, answers=None, max_subsets=20_000, seed=0):
+    """Unbiased ``V_k`` of any strategy for every pool: ``-> (values (P, K), stderr (P, K))``.
+
+    best-of-k: :func:`bonft.estimate.bon_at_k_per_prompt`; pass: the oracle curve
+    (:func:`bonft.estimate.oracle_at_k_per_prompt`, Chen et al. 2021 for 0/1 rewards);
+    majority: :func:`vote_at_k_per_prompt`; weighted: :func:`weighted_vote_at_k_per_prompt`.
+    stderr is 0 wherever the estimate is exact. ``ks`` must be a sequence.
+    """
+    from bonft.strategies import get_strategy
+
+    st = get_strategy(strategy)
+    _need(st, scores, answers)
+    if st.name == "weighted":
+        return weighted_vote_at_k_per_prompt(answers, scores, rewards, ks=ks, max_subsets=max_subsets, seed=seed)
+    if st.name == "majority":
+        v = vote_at_k_per_prompt(answers, rewards, ks=ks)
+    elif st.name == "pass":
+        v = _estimate.oracle_at_k_per_prompt(rewards, ks)
+    else:
+        v = _estimate.bon_at_k_per_prompt(scores, rewards, ks)
+    v = np.asarray(v).reshape(len(v), -1)
+    return v, np.zeros_like(v)
+
+
+def _bon_credit(scores, rewards, *, k):
+    fn = getattr(_credit, "bon_rl_credit", None) or getattr(_credit, "bon_credit")
+    return fn(scores, rewards, k=k)
+
+
+def strategy_credit(strategy, scores, rewards, *, k, answers=None, max_subsets=20_000, seed=0):
+    """Per-sample credit ``(B, n)`` of any strategy, unbiased for ``grad V_k``, leave-one-out baseline.
+
+    best-of-k: :mod:`bonft.credit`'s best-of-k credit; pass: the same with ``scores = rewards``;
+    majority: :func:`vote_credit`; weighted: :func:`weighted_vote_credit`.
+    """
+    from bonft.strategies import get_strategy
+
+    st = get_strategy(strategy)
+    _need(st, scores, answers)
+    if st.name == "majority":
+        return vote_credit(answers, rewards, k=k)
+    if st.name == "weighted":
+        return weighted_vote_credit(answers, scores, rewards, k=k, max_subsets=max_subsets, seed=seed)
+    if st.name == "pass":
+        return _bon_credit(rewards, rewards, k=k)
+    return _bon_credit(scores, rewards, k=k)
