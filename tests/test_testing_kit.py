@@ -126,8 +126,8 @@ def test_bon_curve_matches_brute_force_subsets():
 
 
 def test_roc_auc_worked_example():
-    # scikit-learn's roc_auc_score documentation example (from memory): y = [0, 0, 1, 1],
-    # scores = [0.1, 0.4, 0.35, 0.8] -> AUC 0.75
+    # Hanley & McNeil 1982: the AUC is the Mann-Whitney probability P(s_pos > s_neg). Positives
+    # {0.35, 0.8} against negatives {0.1, 0.4}: 3 of the 4 pairs are ordered (0.35 < 0.4 is not) -> 0.75
     assert roc_auc([0.1, 0.4, 0.35, 0.8], [0, 0, 1, 1]) == pytest.approx(0.75)
     assert roc_auc([1, 2], [1, 1]) is None  # one class only
 
