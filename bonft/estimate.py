@@ -354,6 +354,12 @@ def default_ks(n_min: int) -> list[int]:
     return ks
 
 
+# Fewest prompts for which CurveSummary prints bootstrap intervals. The percentile bootstrap is a large-sample
+# method: with P prompts a replicate can take only C(2P-1, P) distinct values (3 for P=2, 92378 for P=10), and
+# with one prompt every replicate equals the data, a zero-width interval. 10 is common practice, not a theorem.
+MIN_BOOT_PROMPTS = 10
+
+
 @dataclass
 class CurveSummary:
     """Best-of-k (verifier-selected) and oracle curves over prompts, with bootstrap intervals.
@@ -379,17 +385,30 @@ class CurveSummary:
     n_boot: int = 2000
     seed: int = 0
 
+    @property
+    def intervals_valid(self) -> bool:
+        """False below ``MIN_BOOT_PROMPTS`` prompts: a bootstrap over so few prompts gives no honest interval."""
+        return self.n_prompts >= MIN_BOOT_PROMPTS
+
     def table(self) -> str:
-        """A fixed-width text table: one row per k."""
+        """A fixed-width text table: one row per k; intervals print as ``n/a`` below ``MIN_BOOT_PROMPTS`` prompts."""
         pct = f"{100 * self.confidence:g}%"
         head = f"{'k':>6}  {'best-of-k':>9}  {pct + ' CI':>17}  {'oracle':>7}  {pct + ' CI':>17}  {'gap':>7}"
         lines = [f"prompts: {self.n_prompts}   smallest pool: {self.n_min}", head]
+        ok = self.intervals_valid
+
+        def ci(lo: float, hi: float) -> str:
+            return f"[{lo:.4f}, {hi:.4f}]" if ok else f"{'n/a':^16}"
+
         for j, k in enumerate(self.ks):
             b, o = self.bon_mean[j], self.oracle_mean[j]
             lines.append(
-                f"{int(k):>6}  {b:>9.4f}  [{self.bon_lo[j]:.4f}, {self.bon_hi[j]:.4f}]"
-                f"  {o:>7.4f}  [{self.oracle_lo[j]:.4f}, {self.oracle_hi[j]:.4f}]  {o - b:>7.4f}"
+                f"{int(k):>6}  {b:>9.4f}  {ci(self.bon_lo[j], self.bon_hi[j])}"
+                f"  {o:>7.4f}  {ci(self.oracle_lo[j], self.oracle_hi[j])}  {o - b:>7.4f}"
             )
+        if not ok:
+            lines.append(f"intervals n/a: {self.n_prompts} prompt(s); a bootstrap over prompts needs at least "
+                         f"{MIN_BOOT_PROMPTS} (see docs/estimate.md)")
         return "\n".join(lines)
 
     def to_dict(self) -> dict:
@@ -401,7 +420,11 @@ class CurveSummary:
             "confidence": float(self.confidence),
             "n_boot": int(self.n_boot),
             "seed": int(self.seed),
+            "intervals_valid": self.intervals_valid,
         }
+        if not self.intervals_valid:
+            d["intervals_note"] = (f"{self.n_prompts} prompt(s): a bootstrap over prompts needs at least "
+                                   f"{MIN_BOOT_PROMPTS}; the *_lo/*_hi values are not confidence intervals")
         for name in ("bon_mean", "bon_lo", "bon_hi", "oracle_mean", "oracle_lo", "oracle_hi"):
             d[name] = [float(x) for x in getattr(self, name)]
         d["per_prompt_bon"] = np.asarray(self.per_prompt_bon, dtype=float).tolist()

@@ -11,8 +11,9 @@ Written by ``bonft sample``, read by ``bonft estimate`` and ``bonft plan``::
   never read back here, so files with long responses load as fast as short ones).
 
 Field names can be renamed on reading (``score_field="rm_score"`` ...). Blank
-lines are skipped. A malformed line raises ``ValueError`` naming the file and
-line number. Writing is atomic (temp file + ``os.replace``), so a crash never
+lines are skipped. A malformed line (bad JSON, nested too deeply, not UTF-8)
+raises ``ValueError`` naming the file and line number; rows repeated exactly
+are reported (``duplicates=``). Writing is atomic (temp file + ``os.replace``), so a crash never
 leaves a half-written file in place of a good one.
 
 Caution: ``response`` may hold model-written code; nothing here runs it, and
@@ -24,6 +25,7 @@ import json
 import math
 import os
 import tempfile
+import warnings
 from dataclasses import dataclass
 from typing import Any, Iterable
 
@@ -31,7 +33,7 @@ import numpy as np
 
 from bonft._checks import as_float_array
 
-__all__ = ["SampleTable", "read_samples", "write_samples", "group_pools", "temperatures_of"]
+__all__ = ["SampleTable", "DuplicateRowsWarning", "read_samples", "write_samples", "group_pools", "temperatures_of"]
 
 
 @dataclass
@@ -62,7 +64,7 @@ def _parse_all(lines: list[str]) -> list[dict] | None:
         return None
     try:
         rows = json.loads("[" + ",".join(lines) + "]")
-    except json.JSONDecodeError:
+    except (json.JSONDecodeError, RecursionError):
         return None
     if len(rows) == len(lines) and set(map(type, rows)) == {dict}:
         return rows
@@ -80,6 +82,8 @@ def _parse_lines(path: str, lines: list[str], numbers: list[int]) -> list[dict]:
             row = json.loads(text)
         except json.JSONDecodeError as e:
             raise ValueError(f"{name} line {no}: not valid JSON ({e.msg} at column {e.colno})") from None
+        except RecursionError:
+            raise ValueError(f"{name} line {no}: JSON nested too deeply (a sample is one flat JSON object)") from None
         if type(row) is not dict:
             raise ValueError(f"{name} line {no}: expected a JSON object, got {type(row).__name__}")
     raise ValueError(f"{name}: could not parse")  # pragma: no cover - the loop above finds the line
@@ -119,6 +123,33 @@ def _numbers(name, vals, numbers, field, *, allow_bool: bool, integer: bool = Fa
     return arr
 
 
+DUPLICATES = ("warn", "error", "allow")
+
+
+class DuplicateRowsWarning(UserWarning):
+    """A samples file repeats some rows exactly."""
+
+
+def _check_duplicates(name: str, lines: list[str], numbers, mode: str) -> None:
+    """Warn or raise when a non-blank line repeats an earlier one exactly (after trimming spaces)."""
+    keys = [t.strip() for t in lines]
+    extra = len(keys) - len(set(keys))
+    if not extra:
+        return
+    first: dict[str, int] = {}
+    for key, no in zip(keys, numbers):
+        if key in first:
+            pair = f"line {no} repeats line {first[key]}"
+            break
+        first[key] = no
+    msg = (f"{name}: {extra} of {len(keys)} rows repeat an earlier row exactly ({pair}); a file concatenated with "
+           f"itself doubles its pools. If they are distinct samples that happen to be identical, allow them "
+           f"(duplicates='allow', --allow-duplicates on the command line)")
+    if mode == "error":
+        raise ValueError(msg)
+    warnings.warn(msg, DuplicateRowsWarning, stacklevel=3)
+
+
 def read_samples(
     path,
     *,
@@ -127,22 +158,40 @@ def read_samples(
     reward_field: str = "reward",
     temperature_field: str = "temperature",
     tokens_field: str = "n_tokens",
+    duplicates: str = "warn",
 ) -> SampleTable:
     """Load a samples JSONL file into columns.
 
     ``prompt_field``/``score_field``/``reward_field`` are required on every line;
     ``temperature_field``/``tokens_field`` are optional but, when present, must be
     on every line. Raises ``FileNotFoundError`` for a missing file and
-    ``ValueError`` (``samples.jsonl line 17: ...``) for a malformed one.
+    ``ValueError`` (``samples.jsonl line 17: ...``) for a malformed one: bad JSON,
+    JSON nested too deeply, or bytes that are not UTF-8.
+
+    duplicates: what to do with lines that repeat an earlier line exactly (a file
+    concatenated with itself doubles every pool): ``"warn"`` (a
+    :class:`DuplicateRowsWarning` with their count), ``"error"`` (``ValueError``)
+    or ``"allow"`` (distinct samples that happen to be identical, e.g. short
+    answers in a file without a sample index; ``bonft sample`` writes one).
     """
     for opt, v in (("prompt_field", prompt_field), ("score_field", score_field), ("reward_field", reward_field),
                    ("temperature_field", temperature_field), ("tokens_field", tokens_field)):
         if not isinstance(v, str) or not v:
             raise TypeError(f"{opt} must be a non-empty str, got {v!r}")
+    if duplicates not in DUPLICATES:
+        raise ValueError(f"duplicates must be one of {DUPLICATES}, got {duplicates!r}")
     path = os.fspath(path)
     name = os.path.basename(path)
-    with open(path, encoding="utf-8") as f:
-        lines = f.read().split("\n")
+    with open(path, "rb") as f:
+        raw = f.read()
+    try:
+        text = raw.decode("utf-8")
+    except UnicodeDecodeError as e:
+        line = raw.count(b"\n", 0, e.start) + 1
+        col = e.start - (raw.rfind(b"\n", 0, e.start) + 1) + 1
+        raise ValueError(f"{name} line {line}: not UTF-8 text (byte {raw[e.start]:#04x} at column {col}); "
+                         f"save the file as UTF-8") from None
+    lines = text.split("\n")
     if lines and not lines[-1].strip():
         lines.pop()  # the newline that ends the last line
     numbers = range(1, len(lines) + 1)  # file line number of each entry of ``lines``
@@ -171,6 +220,11 @@ def read_samples(
     toks = _column(name, rows, numbers, tokens_field, "tokens_field", required=False)
     if toks is not None:
         toks = _numbers(name, toks, numbers, tokens_field, allow_bool=False, integer=True)
+        if (toks < 0).any():
+            i = int(np.flatnonzero(toks < 0)[0])
+            raise ValueError(f"{name} line {numbers[i]}: field {tokens_field!r} must be >= 0 tokens, got {int(toks[i])}")
+    if duplicates != "allow":  # after the checks of every field: a malformed file errors first
+        _check_duplicates(name, lines, numbers, duplicates)
     return SampleTable(prompt_keys=prompt_keys, scores=scores, rewards=rewards, temperatures=temps, n_tokens=toks)
 
 

@@ -20,6 +20,22 @@ def parse_list(flag: str, text: str | None, cast=int) -> list | None:
     return out
 
 
+MAX_BOOT = 1_000_000
+
+
+def check_boot(flag: str, value: int) -> int:
+    """Bootstrap replicates in ``[1, MAX_BOOT]``: more cost time and memory (replicates x k values) and do not
+    move a percentile interval measurably."""
+    if value < 1 or value > MAX_BOOT:
+        raise ValueError(f"{flag} must be between 1 and {MAX_BOOT:,} bootstrap replicates, got {value:,}")
+    return value
+
+
+def add_duplicates_flag(p) -> None:
+    p.add_argument("--allow-duplicates", action="store_true",
+                   help="accept rows that repeat an earlier row exactly (default: warn with their count)")
+
+
 def write_json_atomic(path: str, obj) -> None:
     """Write JSON to a temporary file beside ``path``, then rename: a crash never leaves half a file."""
     folder = os.path.dirname(os.path.abspath(path))

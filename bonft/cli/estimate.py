@@ -3,7 +3,7 @@ from __future__ import annotations
 
 import argparse
 import os
-from ._args import parse_list, write_json_atomic
+from ._args import add_duplicates_flag, check_boot, parse_list, write_json_atomic
 
 HELP = "best-of-k (verifier picks) and oracle pass@k with bootstrap CIs from a pool file (JSONL of scored samples)"
 DESCRIPTION = (
@@ -26,6 +26,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--confidence", type=float, default=0.95, help="confidence level of the intervals (default: 0.95)")
     p.add_argument("--boot", type=int, default=2000, help="bootstrap replicates (default: 2000)")
     p.add_argument("--seed", type=int, default=0, help="bootstrap seed (default: 0)")
+    add_duplicates_flag(p)
     p.add_argument("--json", metavar="OUT.json", default=None, help="also write the curves as JSON")
     p.add_argument("--plot", metavar="OUT.png", default=None, help="also write a PNG of the curves")
 
@@ -44,8 +45,7 @@ def run(args) -> int:
     if not os.path.isfile(path):
         raise FileNotFoundError(f"POOLS file not found: {path}")
     ks = parse_list("--ks", args.ks)
-    if args.boot < 1:
-        raise ValueError(f"--boot must be >= 1, got {args.boot}")
+    check_boot("--boot", args.boot)
     if args.seed < 0:
         raise ValueError(f"--seed must be >= 0, got {args.seed}")
     table = read_samples(
@@ -54,6 +54,7 @@ def run(args) -> int:
         score_field=args.score_field,
         reward_field=args.reward_field,
         temperature_field=args.temperature_field,
+        duplicates="allow" if args.allow_duplicates else "warn",
     )
     temps = temperatures_of(table)
     print(f"samples: {path} ({len(table)} rows)")

@@ -4,7 +4,7 @@ from __future__ import annotations
 import argparse
 import json
 import os
-from ._args import parse_list, write_json_atomic
+from ._args import add_duplicates_flag, check_boot, parse_list, write_json_atomic
 
 HELP = "choose temperature and N: best-of-k value over a temperature x k grid, budgets, doubling gains"
 DESCRIPTION = (
@@ -44,6 +44,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     f.add_argument("--reward-field", default="reward", help="default: reward")
     f.add_argument("--temperature-field", default="temperature", help="default: temperature")
     f.add_argument("--tokens-field", default="n_tokens", help="response length field, for --budget-tokens (default: n_tokens)")
+    add_duplicates_flag(f)
     p.add_argument("--temperatures", default=None,
                    help=f"comma-separated grid (default: all in the file; model mode {DEFAULT_TEMPERATURES})")
     p.add_argument("--max-k", type=int, default=None, help="largest k (default: the smallest pool; exact mode 64)")
@@ -90,6 +91,22 @@ def _prompts_and_verifier(args):
     return prompts, load_verifier(v), v
 
 
+def _check_lengths(args, table) -> None:
+    """--budget-tokens needs positive mean response lengths at every temperature of the file."""
+    import numpy as np
+
+    if table.n_tokens is None:
+        raise ValueError(f"--budget-tokens needs response lengths: {args.samples} has no {args.tokens_field!r} field "
+                         f"(name it with --tokens-field)")
+    temps = table.temperatures if table.temperatures is not None else np.zeros(len(table))
+    for t in np.unique(temps):
+        mean = float(table.n_tokens[temps == t].mean())
+        if not mean > 0:
+            at = f" at temperature {t:g}" if table.temperatures is not None else ""
+            raise ValueError(f"--budget-tokens needs positive response lengths, but field {args.tokens_field!r} of "
+                             f"{args.samples} averages {mean:g} tokens{at}")
+
+
 def _plan_kwargs(args) -> dict:
     return dict(max_k=args.max_k, budget_samples=parse_list("--budget-samples", args.budget_samples),
                 budget_tokens=parse_list("--budget-tokens", args.budget_tokens, float), min_gain=args.min_gain)
@@ -103,6 +120,7 @@ def run(args) -> int:
         raise ValueError(f"give exactly one of --samples, --model or --exact, got {len(given)}"
                          + (f" ({', '.join('--' + g for g in given)})" if given else ""))
     temps = parse_list("--temperatures", args.temperatures, float)
+    check_boot("--boot", args.boot)
     info = None
     if args.samples:
         from bonft.io import read_samples
@@ -111,15 +129,21 @@ def run(args) -> int:
             raise FileNotFoundError(f"--samples file not found: {args.samples}")
         table = read_samples(args.samples, prompt_field=args.prompt_field, score_field=args.score_field,
                              reward_field=args.reward_field, temperature_field=args.temperature_field,
-                             tokens_field=args.tokens_field)
+                             tokens_field=args.tokens_field, duplicates="allow" if args.allow_duplicates else "warn")
+        if args.budget_tokens is not None:
+            _check_lengths(args, table)
         print(f"samples: {args.samples} ({len(table)} rows)")
         res = plan_samples(table, temperatures=temps, confidence=args.confidence, n_boot=args.boot, seed=args.seed,
                            **_plan_kwargs(args))
     elif args.exact:
         if not os.path.isfile(args.exact):
             raise FileNotFoundError(f"--exact file not found: {args.exact}")
-        with open(args.exact, encoding="utf-8") as fh:
-            spec = json.load(fh)
+        try:
+            with open(args.exact, encoding="utf-8") as fh:
+                spec = json.load(fh)
+        except (UnicodeDecodeError, json.JSONDecodeError, RecursionError) as e:
+            where = f" (line {e.lineno}, column {e.colno}: {e.msg})" if isinstance(e, json.JSONDecodeError) else ""
+            raise ValueError(f"--exact file {args.exact} must hold one JSON object in UTF-8{where}") from None
         if not isinstance(spec, dict):
             raise TypeError(f"--exact must hold a JSON object, got {type(spec).__name__}")
         unknown = set(spec) - {"logits", "probs", "scores", "rewards", "lengths", "temperatures"}

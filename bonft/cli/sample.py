@@ -10,7 +10,8 @@ HELP = "sample responses from a checkpoint and write a samples JSONL (input of b
 DESCRIPTION = (
     "Draw --n responses per held-out prompt at one or more temperatures, score each with a verifier "
     "(score) and the exact checker (reward), and write one JSON line per response: prompt_id, score, "
-    "reward, temperature, response, n_tokens. Feed the file to `bonft estimate` or `bonft plan`."
+    "reward, temperature, response, n_tokens, and sample (its index in the prompt's pool, so that identical "
+    "responses are not mistaken for repeated rows). Feed the file to `bonft estimate` or `bonft plan`."
 )
 
 
@@ -49,7 +50,7 @@ def run(args: argparse.Namespace) -> int:
         scores = raw["scores"][which]
         for b in range(len(held)):
             for i in range(n):
-                rows.append({"prompt_id": b, "score": float(scores[b, i]), "reward": float(raw["rewards"][b, i]),
+                rows.append({"prompt_id": b, "sample": i, "score": float(scores[b, i]), "reward": float(raw["rewards"][b, i]),
                              "temperature": t, "response": raw["texts"][b][i], "n_tokens": int(raw["n_tokens"][b, i])})
         print(f"T={t:g}: pass@1 {rep.mean_reward:.3f}, {rep.distinct_answers:.1f} distinct answers/prompt")
     count = write_samples(args.output, rows)

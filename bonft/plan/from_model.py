@@ -126,7 +126,7 @@ def draw_samples(
     for t in temps:
         f = files.get(float(t))
         if f is not None and f.is_file():
-            tab = read_samples(f)
+            tab = read_samples(f, duplicates="allow")  # identical short responses are expected
             if len(tab) == len(prompts) * n and tab.n_tokens is not None:
                 add(tab)
                 info["cached"].append(float(t))

@@ -115,6 +115,15 @@ def family_counts(n: int, shares: dict[str, float]) -> dict[str, int]:
     return counts
 
 
+def _progress(total: int, desc: str):
+    """A progress bar on stderr for generating ``total`` prompts when that takes more than about a second."""
+    if total < 200_000:
+        return None
+    from tqdm.auto import tqdm
+
+    return tqdm(total=total, desc=desc, unit=" prompts", unit_scale=True, leave=False)
+
+
 class Task:
     """A generator of prompts with exact answers, and its verifiers.
 
@@ -158,12 +167,17 @@ class Task:
             rng = random.Random(f"{self.name}/{seed}/{fam}")  # one stream per family: stable under other families' counts
             need, seen, pool = c_eval[fam] + c_train[fam], set(), []
             attempts = 0
+            bar = _progress(need, f"{self.name} {fam!r} prompts")  # None below ~1 s of work
             while len(pool) < need and attempts < 200 * need + 1000:
                 ex = self._make(rng, fam)
                 attempts += 1
                 if ex.prompt not in seen:
                     seen.add(ex.prompt)
                     pool.append(ex)
+                    if bar is not None and len(pool) % 10_000 == 0:
+                        bar.update(10_000)
+            if bar is not None:
+                bar.close()
             if len(pool) < need:
                 raise ValueError(
                     f"n_train + n_eval asks for {need} distinct {fam!r} prompts, but {self!r} made only "

@@ -1,8 +1,8 @@
 """Your own prompts: a local JSONL file with a prompt field and (optionally) an answer field.
 
-One JSON object per line, e.g. ``{"prompt": "2+2=", "answer": "4"}``. Read with
-``datasets.load_dataset("json", data_files=path)`` (a local file; nothing is
-downloaded). With answers present, :func:`exact_match_verifier` scores a
+One JSON object per line, e.g. ``{"prompt": "2+2=", "answer": "4"}``; blank lines
+are skipped, and a malformed line (not UTF-8, not JSON, not an object, nested too
+deeply, no prompt) raises ``ValueError`` naming the file and the line. With answers present, :func:`exact_match_verifier` scores a
 response 1 when it equals the answer after trimming and collapsing whitespace.
 
 Caution: an exact-match verifier is only as good as the answers in the file,
@@ -49,20 +49,18 @@ def load_prompts_jsonl(
     path = Path(path)
     if not path.is_file():
         raise FileNotFoundError(f"path must be a JSONL file, got {str(path)!r} (no such file)")
-    from datasets import load_dataset
-
-    ds = load_dataset("json", data_files=str(path), split="train")
-    cols = set(ds.column_names)
-    if prompt_field not in cols:
+    numbered = _read_jsonl(path)
+    cols = set().union(*(row for _, row in numbered)) if numbered else set()
+    if numbered and prompt_field not in cols:
         raise ValueError(f"prompt_field must name a field of {str(path)!r} (fields: {sorted(cols)}), got {prompt_field!r}")
     has_answer = answer_field in cols
     out = []
-    for i, row in enumerate(ds):
-        prompt = row[prompt_field]
+    for no, row in numbered:
+        prompt = row.get(prompt_field)
         if not isinstance(prompt, str) or not prompt:
-            raise ValueError(f"{prompt_field!r} must be a non-empty string on every line, got {prompt!r} on line {i + 1}")
+            raise ValueError(f"{path} line {no}: field {prompt_field!r} must be a non-empty string, got {prompt!r}")
         answer = None
-        if has_answer and row[answer_field] is not None:
+        if has_answer and row.get(answer_field) is not None:
             answer = normalize_text(str(row[answer_field]))
         ref = row.get(reference_field) if reference_field in cols else None
         reference = str(ref) if ref is not None else (answer or "")
@@ -70,6 +68,33 @@ def load_prompts_jsonl(
         out.append(Example(prompt=prompt, answer=answer, reference=reference, meta=meta))
     if not out:
         raise ValueError(f"path must hold at least one JSON line, got an empty file {str(path)!r}")
+    return out
+
+
+def _read_jsonl(path: Path) -> list[tuple[int, dict]]:
+    """``(line number, object)`` for each non-blank line; errors name the file and the line."""
+    import json
+
+    raw = path.read_bytes()
+    try:
+        text = raw.decode("utf-8")
+    except UnicodeDecodeError as e:
+        line = raw.count(b"\n", 0, e.start) + 1
+        raise ValueError(f"{path} line {line}: not UTF-8 text "
+                         f"(byte {raw[e.start]:#04x}); save the file as UTF-8") from None
+    out = []
+    for no, line in enumerate(text.split("\n"), start=1):
+        if not line.strip():
+            continue
+        try:
+            row = json.loads(line)
+        except json.JSONDecodeError as e:
+            raise ValueError(f"{path} line {no}: not valid JSON ({e.msg} at column {e.colno})") from None
+        except RecursionError:
+            raise ValueError(f"{path} line {no}: JSON nested too deeply (a prompt is one flat JSON object)") from None
+        if not isinstance(row, dict):
+            raise ValueError(f"{path} line {no}: expected a JSON object with a prompt field, got {type(row).__name__}")
+        out.append((no, row))
     return out
 
 

@@ -1,31 +1,57 @@
-"""Checkpoints that survive crashes: written into a temp directory, then renamed into place.
+"""Checkpoints that survive crashes and are checked before use.
 
 Layout of one checkpoint ``RUN/checkpoints/step-00000120/``::
 
-    model/        save_pretrained (safetensors)
-    tokenizer/    save_pretrained
-    state.pt      optimizer state, RNG states (torch, numpy, python), step, stage, extra
-    config.toml   the run's configuration
+    model/         save_pretrained (safetensors)
+    tokenizer/     save_pretrained
+    state.pt       optimizer state, RNG states (torch, numpy, python), step, extra: tensors and plain
+                   values only, read with ``torch.load(weights_only=True)``
+    config.toml    the run's configuration
+    manifest.json  size and SHA-256 of every file above
 
 A checkpoint is complete once its directory name has no ``.tmp`` suffix: the
-files are written and fsync'ed inside ``step-XXXXXXXX.tmp-PID``, which is then
-renamed (atomic on POSIX). Older checkpoints are deleted only after the new one
-is in place, so a crash or ``kill -9`` at any moment leaves the previous
-checkpoint loadable. Leftover ``.tmp-*`` directories are ignored and cleaned.
+files are written and fsync'ed inside ``step-XXXXXXXX.tmp-PID``, the manifest
+last, and the directory is then renamed (atomic on POSIX). Older checkpoints
+are deleted only after the new one is in place, so a crash or ``kill -9`` at
+any moment leaves the previous checkpoint loadable. Leftover ``.tmp-*``
+directories are ignored and cleaned.
+
+Reading checks the manifest (every listed file present, with its size and
+hash): :func:`latest_checkpoint` skips a damaged newest checkpoint with a
+:class:`CheckpointWarning` naming it and returns the newest good one, and
+raises :class:`CheckpointError` when checkpoints exist but none is good.
+
+Caution: ``state.pt`` is never unpickled as arbitrary objects, since a
+checkpoint may come from someone else; a file holding anything but tensors and
+plain values is refused (:class:`CheckpointError`).
 """
 from __future__ import annotations
 
+import hashlib
+import json
 import os
+import pickle
 import random
 import re
 import shutil
+import warnings
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 import torch
 
+MANIFEST = "manifest.json"
+FORMAT = "bonft-checkpoint/1"
 _STEP_DIR = re.compile(r"^step-(\d{8})$")
+
+
+class CheckpointError(ValueError):
+    """A checkpoint is missing a file, is truncated or corrupt, or holds something other than plain data."""
+
+
+class CheckpointWarning(UserWarning):
+    """A damaged checkpoint was skipped in favour of an older good one."""
 
 
 def _fsync_tree(root: Path) -> None:
@@ -35,36 +61,149 @@ def _fsync_tree(root: Path) -> None:
                 os.fsync(fh.fileno())
 
 
+def _sha256(path: Path) -> str:
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for block in iter(lambda: fh.read(1 << 20), b""):
+            h.update(block)
+    return h.hexdigest()
+
+
+# ----------------------------------------------------------------------------- RNG state as plain values
 def rng_state() -> dict:
-    """The global RNG states of python, numpy and torch."""
-    return {"python": random.getstate(), "numpy": np.random.get_state(), "torch": torch.get_rng_state()}
+    """The global RNG states of python, numpy and torch, as tensors and plain values only."""
+    kind, keys, pos, has_gauss, gauss = np.random.get_state()
+    version, internal, py_gauss = random.getstate()
+    return {
+        "python": {"version": int(version), "state": torch.tensor(internal, dtype=torch.int64), "gauss": py_gauss},
+        "numpy": {"kind": str(kind), "keys": torch.from_numpy(keys.astype(np.int64)), "pos": int(pos),
+                  "has_gauss": int(has_gauss), "gauss": float(gauss)},
+        "torch": torch.get_rng_state(),
+    }
 
 
 def set_rng_state(state: dict) -> None:
-    random.setstate(state["python"])
-    np.random.set_state(state["numpy"])
+    """Restore what :func:`rng_state` returned."""
+    py, npy = state["python"], state["numpy"]
+    random.setstate((py["version"], tuple(int(v) for v in py["state"].tolist()), py["gauss"]))
+    np.random.set_state((npy["kind"], npy["keys"].numpy().astype(np.uint32), npy["pos"], npy["has_gauss"], npy["gauss"]))
     torch.set_rng_state(state["torch"])
 
 
+# ----------------------------------------------------------------------------- manifest
+def _write_manifest(ckpt: Path, step: int) -> None:
+    files = {}
+    for p in sorted(ckpt.rglob("*")):
+        if p.is_file() and p.name != MANIFEST:
+            files[p.relative_to(ckpt).as_posix()] = {"bytes": p.stat().st_size, "sha256": _sha256(p)}
+    text = json.dumps({"format": FORMAT, "step": int(step), "files": files}, indent=1)
+    with open(ckpt / MANIFEST, "w", encoding="utf-8") as fh:
+        fh.write(text)
+
+
+def _read_manifest(ckpt: Path) -> dict:
+    path = ckpt / MANIFEST
+    if not path.is_file():
+        raise CheckpointError(f"checkpoint {ckpt} is damaged: no {MANIFEST} (written last; the save did not finish, "
+                              f"or the checkpoint predates bonft 0.2)")
+    try:
+        man = json.loads(path.read_text(encoding="utf-8"))
+    except (UnicodeDecodeError, json.JSONDecodeError, RecursionError) as e:
+        raise CheckpointError(f"checkpoint {ckpt} is damaged: {MANIFEST} is not valid JSON ({type(e).__name__})") from None
+    if not isinstance(man, dict) or man.get("format") != FORMAT or not isinstance(man.get("files"), dict):
+        raise CheckpointError(f"checkpoint {ckpt} is damaged: {MANIFEST} is not a {FORMAT} manifest")
+    return man
+
+
+_VERIFIED: dict[str, tuple] = {}  # checkpoint path -> stat signature of its files when last verified
+
+
+def _signature(ckpt: Path, names) -> tuple:
+    out = []
+    for name in [MANIFEST, *names]:
+        st = (ckpt / name).stat()
+        out.append((name, st.st_size, st.st_mtime_ns, st.st_ino))
+    return tuple(out)
+
+
+def verify_checkpoint(ckpt: str | Path, *, only: tuple[str, ...] | None = None) -> Path:
+    """Check a checkpoint against its manifest; return its path or raise :class:`CheckpointError`.
+
+    Every file the manifest lists must exist with the listed size and SHA-256
+    (``only``: check just these names). The message names the directory, the
+    file and what is wrong. A result is cached until a file's size or mtime changes.
+    """
+    ckpt = Path(ckpt)
+    if not ckpt.is_dir():
+        raise FileNotFoundError(f"checkpoint must be a directory, got {str(ckpt)!r} (no such directory)")
+    man = _read_manifest(ckpt)
+    names = [n for n in man["files"] if only is None or n in only]
+    if only is not None and len(names) != len(only):
+        missing = sorted(set(only) - set(names))
+        raise CheckpointError(f"checkpoint {ckpt} is damaged: {MANIFEST} does not list {', '.join(missing)}")
+    for name in names:
+        if not (ckpt / name).is_file():
+            raise CheckpointError(f"checkpoint {ckpt} is damaged: {name} is missing")
+    key = f"{ckpt.resolve()}|{only}"
+    sig = _signature(ckpt, names)
+    if _VERIFIED.get(key) == sig:
+        return ckpt
+    for name in names:
+        want, path = man["files"][name], ckpt / name
+        size = path.stat().st_size
+        if size != want.get("bytes"):
+            raise CheckpointError(f"checkpoint {ckpt} is damaged: {name} has {size} bytes, the manifest says "
+                                  f"{want.get('bytes')} (truncated or overwritten)")
+        if _sha256(path) != want.get("sha256"):
+            raise CheckpointError(f"checkpoint {ckpt} is damaged: {name} does not match its SHA-256 in {MANIFEST} (corrupt)")
+    _VERIFIED[key] = sig
+    return ckpt
+
+
+def is_verified_checkpoint(path: str | Path) -> bool:
+    """True when ``path`` carries a bonft manifest (a trainer checkpoint, as opposed to a bare model directory)."""
+    return (Path(path) / MANIFEST).is_file()
+
+
+# ----------------------------------------------------------------------------- finding checkpoints
 def list_checkpoints(run_dir: str | Path) -> list[Path]:
-    """Complete checkpoints of a run, oldest first."""
+    """Checkpoint directories of a run (renamed into place, not yet verified), oldest first."""
     root = Path(run_dir) / "checkpoints"
     if not root.is_dir():
         return []
-    found = [p for p in root.iterdir() if p.is_dir() and _STEP_DIR.match(p.name) and (p / "state.pt").is_file()]
+    found = [p for p in root.iterdir() if p.is_dir() and _STEP_DIR.match(p.name)]
     return sorted(found, key=lambda p: int(_STEP_DIR.match(p.name).group(1)))
 
 
 def latest_checkpoint(run_dir: str | Path) -> Path | None:
-    """The newest complete checkpoint of a run directory, or None."""
+    """The newest checkpoint of a run that passes :func:`verify_checkpoint`; None when the run has none.
+
+    A damaged newer checkpoint is skipped with a :class:`CheckpointWarning`
+    naming it and what is wrong; when checkpoints exist but none is good,
+    :class:`CheckpointError` lists each with its problem.
+    """
     found = list_checkpoints(run_dir)
-    return found[-1] if found else None
+    problems = []
+    for ckpt in reversed(found):
+        try:
+            verify_checkpoint(ckpt)
+        except CheckpointError as e:
+            problems.append(str(e))
+            continue
+        for text in problems:
+            warnings.warn(f"{text}; using the newest good checkpoint {ckpt} instead", CheckpointWarning, stacklevel=2)
+        return ckpt
+    if problems:
+        raise CheckpointError(f"no good checkpoint in {Path(run_dir) / 'checkpoints'}: " + "; ".join(problems))
+    return None
 
 
 def resolve_checkpoint(path: str | Path) -> Path:
-    """Accept a checkpoint directory or a run directory (-> its newest checkpoint)."""
+    """Accept a checkpoint directory (verified when it has a manifest) or a run directory (-> its newest good checkpoint)."""
     path = Path(path)
     if (path / "model").is_dir():
+        if is_verified_checkpoint(path) or _STEP_DIR.match(path.name):
+            verify_checkpoint(path)
         return path
     latest = latest_checkpoint(path)
     if latest is None:
@@ -72,6 +211,7 @@ def resolve_checkpoint(path: str | Path) -> Path:
     return latest
 
 
+# ----------------------------------------------------------------------------- writing and reading
 def save_checkpoint(
     run_dir: str | Path,
     *,
@@ -83,8 +223,10 @@ def save_checkpoint(
     extra: dict | None = None,
     keep: int = 2,
 ) -> Path:
-    """Write checkpoint ``step`` atomically, then prune to the ``keep`` newest. Returns its path.
+    """Write checkpoint ``step`` atomically with its manifest, then prune to the ``keep`` newest. Returns its path.
 
+    Pruning only removes checkpoints older than ``step``; a newer one (left by a
+    run resumed from an older checkpoint) stays until this run overwrites it.
     Call it on the main rank only (the trainer's ``is_main`` gate).
     """
     root = Path(run_dir) / "checkpoints"
@@ -112,6 +254,7 @@ def save_checkpoint(
     }
     torch.save(state, tmp / "state.pt")
     (tmp / "config.toml").write_text(config_toml)
+    _write_manifest(tmp, step)  # last: a directory with a manifest was written completely
     _fsync_tree(tmp)
     if final.exists():  # the same step saved twice (e.g. Ctrl-C right after a periodic save)
         old = root / f"{final.name}.old-{os.getpid()}"
@@ -125,7 +268,8 @@ def save_checkpoint(
         os.fsync(dir_fd)
     finally:
         os.close(dir_fd)
-    for old in list_checkpoints(run_dir)[:-keep]:
+    older = [p for p in list_checkpoints(run_dir) if int(p.name[5:]) <= step]
+    for old in older[:-keep]:
         shutil.rmtree(old, ignore_errors=True)
     for stale in root.glob("*.tmp-*"):  # leftovers of a crashed save
         if stale != tmp:
@@ -134,9 +278,21 @@ def save_checkpoint(
 
 
 def load_state(ckpt: str | Path) -> dict:
-    """Read ``state.pt`` of a checkpoint (optimizer, RNG, step, extra)."""
+    """Read ``state.pt`` of a checkpoint (optimizer, RNG, step, extra), checked against the manifest.
+
+    Loaded with ``torch.load(weights_only=True)``: tensors and plain values
+    only. Anything else (a crafted or foreign pickle) raises :class:`CheckpointError`
+    without running it.
+    """
     path = Path(ckpt) / "state.pt"
     if not path.is_file():
         raise FileNotFoundError(f"not a bonft checkpoint (no state.pt): {ckpt}")
-    # weights_only=False: the RNG states hold numpy arrays and python tuples; only load your own checkpoints.
-    return torch.load(path, map_location="cpu", weights_only=False)
+    verify_checkpoint(ckpt, only=("state.pt",))
+    try:
+        return torch.load(path, map_location="cpu", weights_only=True)
+    except pickle.UnpicklingError as e:
+        first = str(e).strip().splitlines()[0] if str(e).strip() else type(e).__name__
+        raise CheckpointError(f"refusing {path}: it holds objects other than tensors and plain values, and bonft "
+                              f"never unpickles those (they can run code); was it written by bonft 0.2? ({first})") from None
+    except (RuntimeError, EOFError, OSError) as e:
+        raise CheckpointError(f"checkpoint {Path(ckpt)} is damaged: state.pt cannot be read ({e})") from None

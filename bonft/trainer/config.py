@@ -174,6 +174,7 @@ def validate(c: TrainConfig) -> None:
     for name in ("threads", "prompts_per_step", "grad_accum", "max_new_tokens", "n_train", "n_eval", "eval_n",
                  "sft_batch_size", "keep_checkpoints", "layers", "width", "heads", "max_positions", "n_boot"):
         check_int(name, getattr(c, name), min=1)
+    check_int("n_boot", c.n_boot, max=1_000_000)  # more replicates cost memory and time and move no interval
     if c.prompts_per_step % c.grad_accum:
         raise ValueError(f"prompts_per_step must be divisible by grad_accum (grad_accum={c.grad_accum}), got prompts_per_step={c.prompts_per_step}")
     for name in ("lr", "sft_lr", "temperature", "eval_temperature"):
@@ -195,6 +196,47 @@ def validate(c: TrainConfig) -> None:
         raise ValueError("prompts_file must name a JSONL file when task = 'jsonl', got ''")
     if c.sft_steps == 0 and c.rl_steps == 0 and not c.start_from:
         raise ValueError("nothing to train: sft_steps and rl_steps are both 0 (set one, e.g. --set rl_steps=100)")
+    check_task_sizes(c)
+
+
+PROBE_DRAWS = 50_000  # sizes above this are checked against a probe of the task before any prompt is kept
+
+
+def check_task_sizes(c: TrainConfig) -> None:
+    """Refuse ``n_train + n_eval`` far beyond the distinct prompts a built-in task can make, before generating.
+
+    Small sizes (<= ``PROBE_DRAWS`` per family) pass untouched: generating them
+    takes well under a second and ``Task.split`` reports a shortfall exactly.
+    Larger ones draw ``PROBE_DRAWS`` prompts of each family and estimate how
+    many distinct prompts the family has with the Chao1 richness estimator
+    ``d + f1 (f1 - 1) / (2 (f2 + 1))`` (Chao 1984, Scand. J. Statist. 11; d distinct,
+    f1 seen once, f2 seen twice), a lower bound; a family asked for more than
+    twice that is refused. ``task = 'jsonl'`` is checked exactly by the task itself.
+    """
+    if c.task == "jsonl" or c.n_train + c.n_eval <= PROBE_DRAWS:
+        return
+    import collections
+    import random
+
+    from ..tasks import get_task
+    from ..tasks.base import family_counts
+
+    task = get_task(c.task, **c.task_params)
+    shares = task._families()
+    c_train, c_eval = family_counts(c.n_train, shares), family_counts(c.n_eval, shares)
+    for fam in shares:
+        need = c_train[fam] + c_eval[fam]
+        if need <= PROBE_DRAWS:
+            continue
+        rng = random.Random(f"{task.name}/probe/{fam}")
+        seen = collections.Counter(task._make(rng, fam).prompt for _ in range(PROBE_DRAWS))
+        f = collections.Counter(seen.values())
+        richness = len(seen) + f[1] * (f[1] - 1) / (2 * (f[2] + 1))
+        if need > 2 * richness:
+            raise ValueError(
+                f"n_train + n_eval asks for {need:,} distinct {fam!r} prompts of task {c.task!r}, but it makes about "
+                f"{int(richness):,} ({len(seen):,} distinct in {PROBE_DRAWS:,} draws); lower n_train (now {c.n_train:,}) "
+                f"or n_eval (now {c.n_eval:,}), or widen the task (task_params)")
 
 
 # ---------------------------------------------------------------- loading, overrides

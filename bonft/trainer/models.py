@@ -102,6 +102,45 @@ def build_tiny_model(
     return model
 
 
+_TOKENIZER_FILES = ("tokenizer_config.json", "tokenizer.json", "vocab.json", "tokenizer.model", "vocab.txt")
+
+
+def context_length(model) -> int | None:
+    """Positions the model can attend to (``max_position_embeddings``; GPT-2's ``n_positions``), None if unknown."""
+    limit = getattr(getattr(model, "config", None), "max_position_embeddings", None)
+    return limit if isinstance(limit, int) and not isinstance(limit, bool) else None
+
+
+def check_context(model, tokenizer, prompts, *, max_new_tokens: int, references=(), knob: str = "max_positions") -> None:
+    """Refuse, before any work, prompts that cannot fit the model's context with their responses.
+
+    prompts: P strings (encoded as the sampler encodes them); references: reference
+    responses (+ EOS) a warm start trains on, paired with the prompts or empty.
+    Needs ``len(prompt) + max(max_new_tokens, len(reference) + 1) <= context`` for
+    every prompt. ``knob`` names the setting that sets the context (``max_positions`` for tiny models).
+    """
+    limit = context_length(model)
+    prompts = list(prompts)
+    if limit is None or not prompts:
+        return
+    lens = [len(ids) for ids in tokenizer(prompts)["input_ids"]]
+    i = max(range(len(lens)), key=lens.__getitem__)
+    if lens[i] + max_new_tokens > limit:
+        room = limit - lens[i]
+        fix = f"lower max_new_tokens to <= {room} or raise {knob}" if room >= 1 else f"raise {knob}"
+        raise ValueError(f"{knob} must fit the longest prompt plus max_new_tokens: prompt {prompts[i]!r} takes {lens[i]} "
+                         f"tokens + max_new_tokens={max_new_tokens} = {lens[i] + max_new_tokens} > {limit} positions "
+                         f"of the model; {fix}")
+    refs = list(references)
+    if refs:
+        total = [n + len(ids) + 1 for n, ids in zip(lens, tokenizer(refs, add_special_tokens=False)["input_ids"])]
+        j = max(range(len(total)), key=total.__getitem__)
+        if total[j] > limit:
+            raise ValueError(f"{knob} must fit each warm-start prompt with its reference response: prompt {prompts[j]!r} "
+                             f"with reference {refs[j]!r} and EOS takes {total[j]} tokens > {limit} positions of the model; "
+                             f"raise {knob}")
+
+
 def _model_dirs(path: Path) -> tuple[Path, Path]:
     """(model dir, tokenizer dir) for a bonft checkpoint or a plain transformers directory."""
     if (path / "model").is_dir():
@@ -128,9 +167,17 @@ def load_model(path: str | os.PathLike, *, device: str | torch.device | None = N
         from .checkpoint import resolve_checkpoint  # a training run directory: its newest checkpoint
 
         path = resolve_checkpoint(path)
+    from .checkpoint import is_verified_checkpoint, verify_checkpoint
+
+    if is_verified_checkpoint(path):  # a trainer checkpoint: sizes and hashes against its manifest
+        verify_checkpoint(path)
     model_dir, tok_dir = _model_dirs(path)
     if not (model_dir / "config.json").is_file():
         raise FileNotFoundError(f"no config.json in {str(model_dir)!r}: path must be a transformers model directory or a bonft checkpoint")
+    if not any((tok_dir / f).is_file() for f in _TOKENIZER_FILES):
+        where = f"{path / 'tokenizer'}/ or {model_dir}/" if tok_dir == model_dir and model_dir != path else f"{tok_dir}/"
+        raise FileNotFoundError(f"no tokenizer for the model in {str(path)!r}: expected tokenizer files "
+                                f"({', '.join(_TOKENIZER_FILES[:2])}) in {where} (save it with tokenizer.save_pretrained)")
     if isinstance(device, str):
         device = pick_device(device) if device in ("auto", "cpu", "cuda") else torch.device(device)
     elif device is None:
