@@ -24,6 +24,7 @@ COMMANDS = {
     "eval": "evaluate",
     "sample": "sample",
     "check-verifier": "check_verifier",
+    "check-tests": "check_tests",
 }
 
 
