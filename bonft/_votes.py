@@ -54,6 +54,10 @@ def _pmul(a: np.ndarray, b: np.ndarray, K: int) -> np.ndarray:
     if a.shape[1] < b.shape[1]:
         a, b = b, a
     L = min(a.shape[1] + b.shape[1] - 1, K + 1)
+    if b.shape[1] == 1:
+        return a[:, :L] * b
+    if b.shape[1] > a.shape[0]:  # long factors: one direct (non-FFT) convolution per row
+        return np.stack([np.convolve(x, y)[:L] for x, y in zip(a, b)])
     out = np.zeros((a.shape[0], L))
     for j in range(min(b.shape[1], L)):
         span = min(a.shape[1], L - j)
@@ -90,7 +94,18 @@ def class_win_counts(d: np.ndarray, m: np.ndarray, K: int) -> np.ndarray:
     m = np.asarray(m, dtype=np.int64)
     J = len(d)
     W = np.zeros((J, K + 1))
-    for c in range(1, int(d.max()) + 1):
+    n = int((d * m).sum())
+    top = int(np.argmax(d))
+    # above the second-largest count only a lone top answer can reach c: it wins iff it holds c,
+    # W[top, c + t] += C(d, c) C(n - d, t) (the others hold any t of their n - d samples)
+    second = int(np.sort(np.repeat(d, m))[-2]) if m.sum() > 1 else 0
+    c_dp = min(second, K) if m[top] == 1 else min(int(d[top]), K)
+    if c_dp < min(int(d[top]), K):
+        c0, c1 = c_dp + 1, min(int(d[top]), K)
+        head = np.zeros(K + 1)
+        head[c0 : c1 + 1] = _comb_row(int(d[top]))[c0 : c1 + 1]
+        W[top] += np.convolve(head, _comb_row(n - int(d[top])))[: K + 1]
+    for c in range(1, c_dp + 1):
         act = np.flatnonzero(d >= c)
         below = int((d[d < c] * m[d < c]).sum())  # samples of answers that cannot reach c
         A = int(m[act].sum())

@@ -49,7 +49,7 @@ from bonft._votes import policy_majority_value, weighted_vote_weights
 
 __all__ = [
     "Strategy", "BestOfK", "MajorityVote", "WeightedVote", "PassAtK", "STRATEGY_NAMES", "get_strategy",
-    "vote_value", "weighted_vote_value", "strategy_value",
+    "vote_value", "weighted_vote_value", "strategy_value", "strategy_loss",
 ]
 
 _MAX_K_EXACT = 150  # k! and q^m/m! stay inside float64
@@ -263,3 +263,45 @@ def strategy_value(strategy, probs, *, k, rewards, scores=None, answers=None):
     if st.name == "majority":
         return vote_value(probs, answers, rewards, k=k)
     return weighted_vote_value(probs, answers, scores, rewards, k=k)
+
+
+# ---------------------------------------------------------------------------- loss
+
+
+def strategy_loss(logprobs, scores, rewards, *, strategy, k, answers=None, mask=None, return_info=False,
+                  max_subsets=20_000, seed=0, **options):
+    r"""Policy-gradient loss for a strategy's value: credit from :func:`bonft.vote_estimate.strategy_credit`.
+
+    ``logprobs: (B, n)`` sequence log-probs or ``(B, n, T)`` token log-probs [+ ``mask``];
+    ``scores, rewards, answers: (B, n)`` -> loss (a tensor), or ``(loss, info)`` with
+    ``return_info=True``.
+
+    .. math:: \ell = -\frac1B\sum_b\sum_i w_{bi}\,\log\pi(y_{bi}),\qquad
+              E[-\nabla\ell] = \nabla\,\mathrm{mean}_b V_k
+
+    The credit ``w`` is plain data; the loss itself is :func:`bonft.losses.policy_gradient_loss`
+    (``mask`` and ``options`` such as the anchor KL term go there). info adds ``pool_value``,
+    the mean over prompts of the unbiased pool estimate of ``V_k`` (detached).
+    References: Chow et al. 2024; Kool et al. 2019; Wang et al. 2023.
+
+    Caution: see the module docstring on reward hacking.
+    """
+    from bonft import losses as _losses
+    from bonft.vote_estimate import strategy_at_k, strategy_credit
+
+    if not isinstance(logprobs, torch.Tensor):
+        raise TypeError(f"logprobs must be a torch tensor (B, n) or (B, n, T), got {type(logprobs).__name__}")
+    st = get_strategy(strategy)
+    w = strategy_credit(st, scores, rewards, k=k, answers=answers, max_subsets=max_subsets, seed=seed)
+    w = torch.as_tensor(np.asarray(w.detach().cpu() if isinstance(w, torch.Tensor) else w),
+                        dtype=logprobs.dtype, device=logprobs.device)
+    if w.shape != logprobs.shape[:2]:
+        raise ValueError(f"logprobs must have (B, n) = {tuple(w.shape)} leading axes like rewards, got {tuple(logprobs.shape)}")
+    out = _losses.policy_gradient_loss(logprobs, w, mask=mask, return_info=return_info, **options)
+    if not return_info:
+        return out
+    loss, info = out
+    v, _ = strategy_at_k(st, ks=[k], rewards=rewards, scores=scores, answers=answers, max_subsets=max_subsets, seed=seed)
+    info = dict(info)
+    info["pool_value"] = torch.tensor(float(np.mean(v)), dtype=torch.float64)
+    return loss, info

@@ -40,10 +40,8 @@ import math
 import numpy as np
 import torch
 
-from bonft import credit as _credit
 from bonft import estimate as _estimate
 from bonft._checks import as_float_array, check_finite, check_int, check_k, check_ks, is_tensor
-from bonft._credit_inputs import _finish, _out_kind
 from bonft._votes import class_win_counts, weighted_vote_weights
 
 __all__ = [
@@ -55,6 +53,18 @@ _MAX_N_EXACT = 1000  # binomials of the count DP stay inside float64 (2^1000 ~ 1
 
 
 # ---------------------------------------------------------------------------- inputs
+
+
+def _out_kind(*xs):
+    """Torch out when an input is a tensor (its device, its floating dtype or float64), else numpy."""
+    for x in xs:
+        if is_tensor(x):
+            return x.device, (x.dtype if x.dtype.is_floating_point else torch.float64)
+    return None
+
+
+def _finish(w: np.ndarray, kind):
+    return w if kind is None else torch.as_tensor(w, dtype=kind[1], device=kind[0])
 
 
 def _rows(name: str, x, *, numeric: bool) -> list[np.ndarray]:
@@ -200,7 +210,7 @@ def vote_credit(answers, rewards, *, k):
         raise ValueError(f"rewards must have n <= {_MAX_N_EXACT} samples per prompt, got n={n}")
     k = check_k(k, n)
     w = np.stack([_vote_credit_pool(c, r, k) for c, r in zip(_codes(ans), rew)])
-    return _finish(torch.from_numpy(w), kind)
+    return _finish(w, kind)
 
 
 # ---------------------------------------------------------------------------- weighted vote
@@ -294,7 +304,7 @@ def weighted_vote_credit(answers, scores, rewards, *, k, max_subsets=20_000, see
         else:  # the baseline is the pool without i, all n-1 of it
             without_i = _weighted_f(1.0 - np.eye(n), c, s, r)
         out[p] = (k / n) * (with_i - without_i)
-    return _finish(torch.from_numpy(out), kind)
+    return _finish(out, kind)
 
 
 # ---------------------------------------------------------------------------- any strategy
@@ -332,6 +342,8 @@ def strategy_at_k(strategy, *, ks, rewards, scores=None, answers=None, max_subse
 
 
 def _bon_credit(scores, rewards, *, k):
+    from bonft import credit as _credit
+
     fn = getattr(_credit, "bon_rl_credit", None) or getattr(_credit, "bon_credit")
     return fn(scores, rewards, k=k)
 
