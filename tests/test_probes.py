@@ -10,6 +10,8 @@ practice for test design; each is also checked to pass an honest solution, so
 "no probe passed" is not bought by tests that nothing can pass.
 """
 import json
+import re
+from pathlib import Path
 
 import pytest
 
@@ -107,20 +109,30 @@ def test_probe_arguments_are_validated(tmp_path):
         read_code_tests(str(bad))
 
 
-def test_check_tests_command(tmp_path, capsys):
+def _documented_example() -> str:
+    """The probe example of the README, which docs/verifiers.md must show verbatim."""
+    root = Path(__file__).resolve().parents[1]
+    block = re.search(r"```python\n(from bonft.testing import probe_code_tests\n.*?)```",
+                      (root / "README.md").read_text(), re.S).group(1)
+    assert block in (root / "docs" / "verifiers.md").read_text()
+    return block
+
+
+def test_check_tests_command_on_the_readme_example(tmp_path, capsys):
     from bonft.cli import main
 
-    weak = write_code_tests(str(tmp_path / "weak.jsonl"), {"write add(a, b)": WEAK["write add(a, b)"],
-                                                           "write sort_list(xs)": STRONG["write sort_list(xs)"]})
-    args = ["--probes", "memorised_asserts,silent_none", "--wall-time", "3", "--memory-mb", "256"]
+    ns = {}
+    exec(_documented_example().split("report = ")[0], ns)  # the tests mapping only; test_readme runs the rest
+    path = write_code_tests(str(tmp_path / "tests.jsonl"), ns["tests"])
     out_json = tmp_path / "report.json"
-    assert main(["check-tests", weak, *args, "--json", str(out_json)]) == 1
+    assert main(["check-tests", path, "--wall-time", "3", "--memory-mb", "256", "--json", str(out_json)]) == 1
     lines = capsys.readouterr().out.splitlines()
-    assert lines[0] == "GAMEABLE  write add(a, b): passed by memorised_asserts"
-    assert lines[2] == "ok        write sort_list(xs): no probe passed"
+    assert lines[0] == "GAMEABLE  Write add(a, b).: passed by constant_reply, memorised_asserts"
+    assert lines[3] == "ok        Write add3(a, b, c).: no probe passed"
     assert "memorised_asserts               1/2" in lines and "silent_none                     0/2" in lines
-    assert json.loads(out_json.read_text())["prompts"][0]["passed"] == ["memorised_asserts"]
+    assert lines[-2:] == ["1/2 prompts have tests a probe passes", f"json: {out_json}"]
+    assert json.loads(out_json.read_text())["prompts"][1]["passed"] == []
     strong = write_code_tests(str(tmp_path / "strong.jsonl"), {"write sort_list(xs)": STRONG["write sort_list(xs)"]})
-    assert main(["check-tests", strong, *args]) == 0
+    assert main(["check-tests", strong, "--probes", "memorised_asserts,silent_none", "--wall-time", "3"]) == 0
     assert main(["check-tests", str(tmp_path / "none.jsonl")]) == 2
     assert "TESTS.jsonl must be an existing file" in capsys.readouterr().err

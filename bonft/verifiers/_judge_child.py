@@ -1,10 +1,10 @@
 """Bootstrap of the trusted test process (``python -c <_wire.py + this file>``).
 
 Not imported by the library. :mod:`bonft.verifiers.sandbox` starts this
-process before the candidate's, under a uid of its own when running as root,
-and makes it non-dumpable first (PR_SET_DUMPABLE 0: no ptrace, no
-/proc/PID/mem for processes without CAP_SYS_PTRACE), so the candidate cannot
-reach into it. It runs the tests (user code, trusted) and decides the verdict:
+process under a uid of its own when running as root; otherwise the process
+makes itself non-dumpable (PR_SET_DUMPABLE 0: no ptrace, no /proc/PID/mem for
+processes without CAP_SYS_PTRACE) before the runner starts the candidate's, so
+the candidate cannot reach into it. It runs the tests (user code, trusted) and decides the verdict:
 
 * the tests' names resolve to: the tests' own names, then builtins, then the
   solution's globals, fetched over the pipe. A name of the solution arrives as
@@ -320,15 +320,16 @@ def _main(cfg_fd, verdict_fd, req_fd, resp_fd):
     import json
 
     global _conn
-    try:  # PR_SET_DUMPABLE = 4: no ptrace or /proc/PID/mem from the candidate's process
-        import ctypes
-
-        ctypes.CDLL(None).prctl(4, 0, 0, 0, 0)
-    except Exception:
-        pass
     with os.fdopen(cfg_fd, "rb") as f:
         cfg = json.loads(f.read().decode("utf-8"))
-    wire_send(verdict_fd, {"started": True})
+    if cfg.get("same_uid"):  # the candidate runs as our uid: shut it out, then let the runner start it
+        try:  # PR_SET_DUMPABLE = 4: no ptrace or /proc/PID/mem without CAP_SYS_PTRACE
+            import ctypes
+
+            ctypes.CDLL(None).prctl(4, 0, 0, 0, 0)
+        except Exception:
+            pass
+        wire_send(verdict_fd, {"started": True})
     _conn = _Conn(req_fd, resp_fd, int(cfg["frame_cap"]))
     _conn.tests = cfg["tests"]
     try:

@@ -7,8 +7,8 @@ no credentials and no network. See docs/verifiers.md for what is enforced
 and what is not.
 
 The verdict. The candidate's code runs in its own sandboxed process only as a
-callee. The tests run in a second, trusted process (started first, under a
-uid of its own as root, non-dumpable) that resolves the solution's names and
+callee. The tests run in a second, trusted process (under a uid of its own
+as root; otherwise started first and made non-dumpable) that resolves the solution's names and
 calls its functions over a pair of pipes (:mod:`bonft.verifiers._wire`:
 length-prefixed JSON, capped frames, a strict decoder, no pickle). Only plain
 values come back, rebuilt as the trusted process's own ``int``, ``list``...;
@@ -341,8 +341,8 @@ class CodeRunner:
                 judge = self._spawn(python, self._boot_judge, (jcfg_r, ver_w, req_w, rep_r), judgedir, juid, sandbox=False)
                 procs.append((judge, juid, judgedir))
                 close(jcfg_r, ver_w, req_w, rep_r)
-                feed(jcfg_w, {"tests": tests, "frame_cap": _FRAME_CAP})
-                if not self._await_start(ver_r, t0):
+                feed(jcfg_w, {"tests": tests, "frame_cap": _FRAME_CAP, "same_uid": cuid is None})
+                if cuid is None and not self._await_start(ver_r, t0):
                     raise OSError("the tests' process did not start")
                 cand, layers = self._start_candidate(python, workdir, cuid, (ccfg_r, req_r, rep_w))
                 procs.append((cand, cuid, workdir))
@@ -351,11 +351,16 @@ class CodeRunner:
                 return RunResult("crashed", f"runner: could not start {python}: {e}", None, "", "", 0.0, layers)
             feed(ccfg_w, {"solution": solution, "max_processes": self.max_processes, "frame_cap": _FRAME_CAP})
             out, verdict, timed_out, over = self._collect(judge, cand, cuid, workdir, ver_r, t0)
-            if verdict.get("status") == "gone" and not timed_out:
-                try:  # the candidate's process ended during the tests: let its exit status arrive
-                    cand.wait(timeout=max(0.0, min(0.5, t0 + self.wall_time - time.monotonic())))
-                except subprocess.TimeoutExpired:
-                    pass
+            if verdict and not over:
+                # both processes end by themselves after a verdict (and a candidate that died during
+                # the tests must report its own exit status): a short wait saves a kill sweep
+                grace = 0.5 if verdict.get("status") == "gone" else 0.1
+                end = min(time.monotonic() + grace, t0 + self.wall_time)
+                for proc in (judge, cand):
+                    try:
+                        proc.wait(timeout=max(0.0, end - time.monotonic()))
+                    except subprocess.TimeoutExpired:
+                        pass
         finally:
             for proc, uid, cwd in reversed(procs):
                 self._kill(proc, uid, cwd)
@@ -433,7 +438,7 @@ class CodeRunner:
         return {k: bytes(v) for k, v in bufs.items() if k != "verdict"}, verdict or {}, timed_out, over
 
     def _kill(self, proc: subprocess.Popen, uid: int | None, workdir: str) -> None:
-        try:
+        try:  # the group outlives its leader while members are left
             os.killpg(proc.pid, signal.SIGKILL)
         except (ProcessLookupError, PermissionError):
             pass
