@@ -170,3 +170,69 @@ def test_the_candidate_cannot_reach_into_the_tests_process():
     runner = CodeRunner({}, wall_time=3.0, memory_mb=256, workers=1)
     res = runner.run_code([(REACH, "assert reach() == ['found']")])[0]
     assert res.status == "pass", (res.reason, res.stderr[-400:])
+
+
+def test_wire_rebuilds_plain_values_and_refuses_anything_else():
+    """The strict decoder of the pipe protocol (bonft/verifiers/_wire.py), in process.
+
+    Round trips follow the Python docs: float.hex/float.fromhex are exact (incl. inf, nan),
+    hex(int) has no digit limit. RFC 8259 section 6: NaN and Infinity are not JSON, so the
+    JSON constants must be refused.
+    """
+    import collections
+    import fractions
+    import math
+
+    from bonft.verifiers._wire import WireClosed, WireError, wire_decode, wire_encode, wire_recv, wire_send
+
+    def no_ref(obj):
+        raise TypeError(type(obj).__name__)
+
+    class Liar(int):
+        def __eq__(self, other):
+            return True
+
+        __hash__ = int.__hash__
+
+    value = [None, True, 3 ** 5000, -0.0, math.inf, 1 + 2j, "é", b"\x00", bytearray(b"a"), (1, [2]),
+             {"k": {1, 2}}, frozenset({3}), fractions.Fraction(1, 3), collections.Counter("aab"), Liar(0)]
+    back = wire_decode(wire_encode(value, no_ref), None)
+    assert back == value[:-2] + [{"a": 2, "b": 1}, 0]
+    assert type(back[-2]) is dict and type(back[-1]) is int  # subclasses arrive as their base value
+    assert math.copysign(1, back[3]) == -1 and math.isnan(wire_decode(["f", "nan"], None))
+    assert wire_decode(["h", 7, "Thing"], lambda ref, t: (ref, t)) == (7, "Thing")
+    with pytest.raises(TypeError, match="function"):
+        wire_encode([len, lambda: 0], no_ref)
+    for bad in (["x"], ["i", 5], ["i", "12g"], ["s", 1], ["l", "ab"], ["d", [[["l", []], ["N"]]]],
+                ["q", "0x1", "0x0"], ["b", 1], "N", [], ["N", 1], ["h", "1", "t"]):
+        with pytest.raises(WireError):
+            wire_decode(bad, lambda ref, t: None)
+    deep = ["N"]
+    for _ in range(80):
+        deep = ["l", [deep]]
+    with pytest.raises(WireError, match="nested deeper"):
+        wire_decode(deep, None)
+
+    r, w = os.pipe()
+    try:
+        wire_send(w, {"id": 1})
+        for raw in (b"2\n[]", b"x\n{}", b"9\n{}", b"3\nNaN", b"99999999\n"):
+            os.write(w, raw)
+        assert wire_recv(r, 100) == {"id": 1}
+        with pytest.raises(WireError, match="not an object"):
+            wire_recv(r, 100)
+        with pytest.raises(WireError, match="bad frame header"):
+            wire_recv(r, 100)
+    finally:
+        os.close(w)
+        os.close(r)
+    r, w = os.pipe()
+    os.write(w, b"3\nNaN99999999\n")
+    os.close(w)
+    with pytest.raises(WireError, match="JSON constant NaN"):
+        wire_recv(r, 100)
+    with pytest.raises(WireError, match="over the 100-byte cap"):
+        wire_recv(r, 100)
+    with pytest.raises(WireClosed):
+        wire_recv(r, 100)
+    os.close(r)
