@@ -16,6 +16,19 @@ from sandbox_attacks import ATTACKS, ESCAPE_PATHS
 ROOT = os.geteuid() == 0
 
 
+def _kernel_allows(flag: int) -> bool:
+    """Whether unshare(2) with ``flag`` succeeds here (a container may refuse it even to root)."""
+    import subprocess
+    import sys
+
+    code = f"import ctypes, sys; sys.exit(ctypes.CDLL(None).unshare({flag}) != 0)"
+    return subprocess.run([sys.executable, "-c", code]).returncode == 0
+
+
+MOUNT_NS = ROOT and _kernel_allows(0x00020000)  # CLONE_NEWNS
+NET_NS = ROOT and _kernel_allows(0x40000000)  # CLONE_NEWNET
+
+
 @pytest.fixture(scope="module")
 def attacks():
     for p in ESCAPE_PATHS:
@@ -51,15 +64,15 @@ def test_no_attack_gets_a_pass(attacks):
 def test_files_written_with_the_audit_hook_off_do_not_outlive_the_run(attacks):
     r, left = attacks
     res = r["audit_hook_off_writes_tmp_shm"]
-    if not ROOT:
+    if not MOUNT_NS:
         assert "private-tmp" not in res.os_layers  # said so in the result; the files may have landed
-        pytest.skip("private /tmp needs root (mount namespaces)")
-    # the candidate's wrong-free code still passes: the layer below the audit hook is what holds
-    assert res.status == "pass" and set(res.os_layers) == {"private-tmp", "no-network", "own-uid"}
+        pytest.skip("private /tmp needs root and a kernel that allows mount namespaces")
+    # its code is correct, so it passes: the layer below the audit hook is what holds
+    assert res.status == "pass" and set(res.os_layers) == {"private-tmp", "own-uid"} | ({"no-network"} if NET_NS else set())
     assert left == []
 
 
-@pytest.mark.skipif(not ROOT, reason="private /tmp needs root (mount namespaces)")
+@pytest.mark.skipif(not MOUNT_NS, reason="private /tmp needs root and mount namespaces")
 def test_each_run_sees_its_own_empty_tmp():
     plant = ("import ctypes, os\nlibc = ctypes.CDLL(None)\n"  # ctypes: past the audit hook
              "for d in ('/tmp', '/dev/shm', '/var/tmp'):\n"
