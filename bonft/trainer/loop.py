@@ -51,7 +51,7 @@ def train(cfg: TrainConfig, *, resume: bool = False, progress: bool = True) -> d
     from tqdm.auto import tqdm
 
     from .checkpoint import latest_checkpoint, load_state, save_checkpoint, set_rng_state
-    from .distributed import barrier, broadcast_object, check_divisible, shutdown, wrap_model
+    from .distributed import barrier, broadcast_object, check_divisible, shutdown, step_guard, wrap_model
     from .models import load_model, save_model
 
     if not isinstance(cfg, TrainConfig):
@@ -159,7 +159,8 @@ def train(cfg: TrainConfig, *, resume: bool = False, progress: bool = True) -> d
             run.model.train()
             run.optimizer.zero_grad(set_to_none=True)
             t0 = time.perf_counter()
-            rec = sft_step(run, s) if s < cfg.sft_steps else rl_step(run, s)
+            with step_guard(run.ctx, step=s + 1, run_dir=out):  # a peer lost mid-step -> PeerError
+                rec = sft_step(run, s) if s < cfg.sft_steps else rl_step(run, s)
             # gradients are already the global-batch mean here (DDP averaged them in backward)
             if cfg.clip_grad_norm > 0:
                 rec["grad_norm"] = float(torch.nn.utils.clip_grad_norm_(run.model.parameters(), cfg.clip_grad_norm))

@@ -228,7 +228,7 @@ def rl_step(run: Run, step: int) -> dict:
 # ----------------------------------------------------------------------------- setup
 def build_run(cfg: TrainConfig) -> Run:
     """Task, data split, verifiers, model and tokenizer for ``cfg`` (no optimizer yet)."""
-    from .models import build_tiny_model, load_model
+    from .models import build_tiny_model, check_context, load_model
     from ..tasks import build_tokenizer, get_task
     from ..verifiers.scoring import load_verifier
 
@@ -260,6 +260,9 @@ def build_run(cfg: TrainConfig) -> Run:
             max_positions=cfg.max_positions, seed=cfg.seed, pad_token_id=tokenizer.pad_token_id,
             eos_token_id=tokenizer.eos_token_id, bos_token_id=tokenizer.bos_token_id,
         ).to(device)
+    check_context(model, tokenizer, [e.prompt for e in everything], max_new_tokens=cfg.max_new_tokens,  # before any work
+                  references=[e.reference for e in train] if cfg.sft_steps else (),
+                  knob="start_from's context" if cfg.start_from else "max_positions")
     return Run(cfg=cfg, out=Path(cfg.run_dir), model=model, tokenizer=tokenizer, task=task, train=list(train),
                eval=list(held), verifiers=verifiers, device=device, rank=rank, world=world, ctx=ctx)
 
