@@ -6,7 +6,8 @@
   over temperature and k (``bonft plan --plot-dir``);
 * :func:`plot_evaluations`, :func:`plot_comparison` -- the trainer's evaluations of one
   run and of several policies (``bonft train``, ``bonft eval --plot``, ``bonft demo``);
-* :func:`plot_verifier_check` -- a verifier check's best-of-k against the oracle.
+* :func:`plot_verifier_check` -- a verifier check's best-of-k against the oracle;
+* :func:`plot_objective_check` -- an objective check's estimated against exact gradient components.
 
 matplotlib is imported inside each function, so importing this module is cheap.
 """
@@ -20,7 +21,7 @@ import numpy as np
 
 from .estimate import CurveSummary
 
-__all__ = ["plot_bon_curves", "plot_verifier_check", "plot_plan_heatmap", "plot_plan_curves", "plot_evaluations", "plot_comparison"]
+__all__ = ["plot_bon_curves", "plot_verifier_check", "plot_plan_heatmap", "plot_plan_curves", "plot_evaluations", "plot_comparison", "plot_objective_check"]
 
 
 # ------------------------------------------------------------------ estimator curves
@@ -261,3 +262,47 @@ def plot_verifier_check(report, path) -> str:
     fig.savefig(path, dpi=100)
     plt.close(fig)
     return str(path)
+
+
+# ------------------------------------------------------------------ objective checks
+def plot_objective_check(report, path) -> str:
+    """A :class:`bonft.testing.ObjectiveReport`: mean estimated against exact gradient components, each
+    divided by the norm of its exact gradient (every categorical policy's logits; the transformer's
+    directional derivatives, over their norm, with their Monte Carlo intervals), on the diagonal when the credit is
+    unbiased; to ``path`` (PNG); returns ``path``."""
+    plt = _plt()
+    path = _out(path)
+    fig, ax = plt.subplots(figsize=(5.6, 5.0))
+    pts = []
+    for j, c in enumerate(report.cases):
+        scale = max(float(np.linalg.norm(c["exact"])), 1e-12)
+        ex, est = np.asarray(c["exact"]) / scale, np.asarray(c["estimate"]) / scale
+        ax.plot(ex, est, "o", ms=5, alpha=0.8, label=f"policy {j + 1}: logits" if j < 6 else None)
+        pts += [*ex, *est]
+    tr = report.transformer
+    if tr:
+        rows = tr["directions"]
+        scale = max(float(np.linalg.norm([r["finite_diff"] for r in rows])), 1e-12)  # norm over the directions
+        ex = np.array([r["finite_diff"] for r in rows]) / scale
+        mc = np.array([r["mc_mean"] for r in rows]) / scale
+        err = np.array([[r["mc_mean"] - r["mc_lo"] for r in rows], [r["mc_hi"] - r["mc_mean"] for r in rows]]) / scale
+        ax.errorbar(ex, mc, yerr=err, fmt="s", color="black", ms=5, capsize=3,
+                    label="transformer: Monte Carlo mean, 99.9% interval")
+        if rows[0]["expected"] is not None:
+            ax.plot(ex, np.array([r["expected"] for r in rows]) / scale, "x", color="red", ms=8,
+                    label="transformer: exact mean")
+        pts += [*ex, *(mc - err[0]), *(mc + err[1])]
+    lim = max(abs(v) for v in pts) * 1.08 if pts else 1.0
+    ax.plot([-lim, lim], [-lim, lim], "k--", lw=0.8, label="unbiased (estimate = exact)")
+    ax.set_xlim(-lim, lim)
+    ax.set_ylim(-lim, lim)
+    ax.set_xlabel("exact gradient component / |exact gradient|\n(transformer: finite differences along a direction)")
+    ax.set_ylabel("mean of the credit's gradient estimate / |exact gradient|")
+    status = "OK" if report.ok else f"{len(report.problems)} problem(s), relative bias {report.max_rel_error:.3g}"
+    ax.set_title(f"objective check, {report.target}, k={report.k}, n={report.n}: {status}", fontsize=9)
+    ax.grid(alpha=0.3)
+    ax.legend(fontsize=7, loc="upper left")
+    fig.subplots_adjust(left=0.14, right=0.97, bottom=0.14, top=0.93)
+    fig.savefig(path, dpi=100)
+    plt.close(fig)
+    return path

@@ -1,8 +1,10 @@
 """Candidates that try to forge a ``pass`` or to leave files behind (issue 13).
 
-Shared by tests/test_sandbox_integrity.py and benchmarks/attack_table.py. Each
-entry is ``name -> (solution, tests)``; every solution except ``correct`` is
-wrong (``add`` does not add), so any ``pass`` among them is a forged verdict.
+Used by tests/test_sandbox_integrity.py and for the before/after table in
+docs/verifiers.md. Each entry is ``name -> (solution, tests)``; every solution
+except ``correct`` and ``audit_hook_off_writes_tmp_shm`` is wrong (``add`` does
+not add), so any ``pass`` among them is a forged verdict; the latter is judged
+by the files it leaves behind.
 """
 ESCAPE_TAG = "bonft_i13_escape"
 ESCAPE_PATHS = (f"/tmp/{ESCAPE_TAG}", f"/dev/shm/{ESCAPE_TAG}", f"/var/tmp/{ESCAPE_TAG}")
