@@ -6,6 +6,8 @@ strategies (:func:`prompts`, :func:`responses`, :func:`sample_pools`) for
 property tests of your own verifier; and :mod:`bonft.verifiers.probes`:
 :func:`probe_code_tests`, which runs gaming candidates against your unit tests
 (can they be passed without solving the task?), and its :class:`CodeTestsReport`.
+For objectives: :func:`check_objective` (:mod:`bonft.objcheck`), its :class:`ObjectiveReport` and
+:class:`ToyPolicy`: is your credit an unbiased gradient of the target it claims?
 """
 from .verifiers.testkit import (  # noqa: F401
     VerifierReport,
@@ -18,5 +20,14 @@ from .verifiers.testkit import (  # noqa: F401
 )
 from .verifiers.probes import PROBES, CodeTestsReport, probe_code_tests  # noqa: F401
 
-__all__ = ["check_verifier", "read_examples", "VerifierReport", "roc_auc", "prompts", "responses", "sample_pools",
+__all__ = ["check_objective", "ObjectiveReport", "ToyPolicy", "check_verifier", "read_examples", "VerifierReport", "roc_auc", "prompts", "responses", "sample_pools",
            "probe_code_tests", "CodeTestsReport", "PROBES"]
+
+
+def __getattr__(name: str):
+    """check_objective, ObjectiveReport, ToyPolicy load torch: import them on first use (PEP 562)."""
+    if name in ("check_objective", "ObjectiveReport", "ToyPolicy"):
+        from . import objcheck
+
+        return getattr(objcheck, name)
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")

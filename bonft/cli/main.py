@@ -25,6 +25,7 @@ COMMANDS = {
     "sample": "sample",
     "check-verifier": "check_verifier",
     "check-tests": "check_tests",
+    "check-objective": "check_objective",
 }
 
 
