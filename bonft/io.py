@@ -7,6 +7,8 @@ Written by ``bonft sample``, read by ``bonft estimate`` and ``bonft plan``::
 - ``prompt_id`` (str or int; ints are keys too, ``3`` and ``"3"`` are the same prompt),
 - ``score`` (number, the verifier's score, higher is better),
 - ``reward`` (number or true/false, the true reward),
+- ``answer`` (str or int, optional): the final answer extracted from the response, the key that
+  majority and weighted vote count (``bonft.strategies``); surface forms of one answer share it,
 - ``temperature`` (number, optional), ``n_tokens`` (int, optional), ``response`` (str, optional;
   never read back here, so files with long responses load as fast as short ones).
 
@@ -42,7 +44,7 @@ class SampleTable:
 
     prompt_keys: (N,) str keys; scores, rewards: (N,) float64;
     temperatures: (N,) float64 or None when the file has no temperature field;
-    n_tokens: (N,) int64 or None.
+    n_tokens: (N,) int64 or None; answers: (N,) str answer keys or None.
     """
 
     prompt_keys: np.ndarray
@@ -50,6 +52,7 @@ class SampleTable:
     rewards: np.ndarray
     temperatures: np.ndarray | None = None
     n_tokens: np.ndarray | None = None
+    answers: np.ndarray | None = None
 
     def __len__(self) -> int:
         return len(self.scores)
@@ -159,11 +162,12 @@ def read_samples(
     temperature_field: str = "temperature",
     tokens_field: str = "n_tokens",
     duplicates: str = "warn",
+    answer_field: str = "answer",
 ) -> SampleTable:
     """Load a samples JSONL file into columns.
 
     ``prompt_field``/``score_field``/``reward_field`` are required on every line;
-    ``temperature_field``/``tokens_field`` are optional but, when present, must be
+    ``temperature_field``/``tokens_field``/``answer_field`` are optional but, when present, must be
     on every line. Raises ``FileNotFoundError`` for a missing file and
     ``ValueError`` (``samples.jsonl line 17: ...``) for a malformed one: bad JSON,
     JSON nested too deeply, or bytes that are not UTF-8.
@@ -175,7 +179,8 @@ def read_samples(
     answers in a file without a sample index; ``bonft sample`` writes one).
     """
     for opt, v in (("prompt_field", prompt_field), ("score_field", score_field), ("reward_field", reward_field),
-                   ("temperature_field", temperature_field), ("tokens_field", tokens_field)):
+                   ("temperature_field", temperature_field), ("tokens_field", tokens_field),
+                   ("answer_field", answer_field)):
         if not isinstance(v, str) or not v:
             raise TypeError(f"{opt} must be a non-empty str, got {v!r}")
     if duplicates not in DUPLICATES:
@@ -223,9 +228,17 @@ def read_samples(
         if (toks < 0).any():
             i = int(np.flatnonzero(toks < 0)[0])
             raise ValueError(f"{name} line {numbers[i]}: field {tokens_field!r} must be >= 0 tokens, got {int(toks[i])}")
+    answers = _column(name, rows, numbers, answer_field, "answer_field", required=False)
+    if answers is not None:
+        bad = [i for i, v in enumerate(answers) if type(v) not in (str, int)]
+        if bad:
+            raise ValueError(f"{name} line {numbers[bad[0]]}: field {answer_field!r} must be a string or an integer, "
+                             f"got {answers[bad[0]]!r}")
+        answers = np.array([str(v) for v in answers], dtype=str)
     if duplicates != "allow":  # after the checks of every field: a malformed file errors first
         _check_duplicates(name, lines, numbers, duplicates)
-    return SampleTable(prompt_keys=prompt_keys, scores=scores, rewards=rewards, temperatures=temps, n_tokens=toks)
+    return SampleTable(prompt_keys=prompt_keys, scores=scores, rewards=rewards, temperatures=temps, n_tokens=toks,
+                       answers=answers)
 
 
 # ----------------------------------------------------------------------------- writing
@@ -304,8 +317,11 @@ def temperatures_of(table: SampleTable) -> list[float]:
     return [float(t) for t in np.unique(table.temperatures)]
 
 
-def group_pools(table: SampleTable, *, temperature: float | None = None):
+def group_pools(table: SampleTable, *, temperature: float | None = None, with_answers: bool = False):
     """Split a table into per-prompt pools: ``-> (keys, score_pools, reward_pools)``.
+
+    ``with_answers=True`` appends ``answer_pools`` (str keys; ``ValueError`` when the table
+    has no answer column).
 
     keys: list of prompt ids in order of first appearance; ``score_pools[p]``,
     ``reward_pools[p]``: (n_p,) float64 in file order. With several
@@ -313,6 +329,9 @@ def group_pools(table: SampleTable, *, temperature: float | None = None):
     temperatures would estimate no real sampling setup).
     """
     temps = temperatures_of(table)
+    if with_answers and table.answers is None:
+        raise ValueError("table must have an 'answer' column for answer pools (majority / weighted vote), got none")
+    keep = np.ones(len(table), dtype=bool)
     if temperature is None:
         if len(temps) > 1:
             raise ValueError(
@@ -334,4 +353,6 @@ def group_pools(table: SampleTable, *, temperature: float | None = None):
     order = np.argsort(g, kind="stable")  # rows grouped, file order inside a group
     cuts = np.flatnonzero(np.diff(g[order])) + 1
     keys = [str(k) for k in uniq[np.argsort(first, kind="stable")]]
+    if with_answers:
+        return keys, np.split(s[order], cuts), np.split(r[order], cuts), np.split(table.answers[keep][order], cuts)
     return keys, np.split(s[order], cuts), np.split(r[order], cuts)

@@ -306,3 +306,40 @@ def plot_objective_check(report, path) -> str:
     fig.savefig(path, dpi=100)
     plt.close(fig)
     return path
+
+
+# ------------------------------------------------------------------ strategies side by side
+
+
+def plot_strategy_curves(curves: dict, path, *, title: str | None = None) -> str:
+    """V_k against k for each strategy of each labelled :class:`bonft.strategy_curves.StrategyCurves`.
+
+    One panel per label (a temperature, a policy), one line per strategy with its bootstrap band
+    (``bonft estimate --strategy ... --plot``, ``bonft plan --strategy ... --plot-dir``).
+    """
+    plt = _plt()
+    labels = list(curves)
+    fig, axes = plt.subplots(1, len(labels), figsize=(4.6 * len(labels), 3.8), squeeze=False, sharey=True)
+    colors = {"best-of-k": "tab:blue", "majority": "tab:orange", "weighted": "tab:green", "pass": "0.4"}
+    for ax, lab in zip(axes[0], labels):
+        c = curves[lab]
+        ks = np.asarray(c.ks, dtype=float)
+        for s in c.names:
+            style = "--" if s == "pass" else "-"
+            ax.plot(ks, c.mean[s], style, marker="o", ms=3, color=colors.get(s), label=s)
+            if c.intervals_valid:
+                ax.fill_between(ks, c.lo[s], c.hi[s], color=colors.get(s), alpha=0.15, lw=0)
+        if ks.max() > 1:
+            _log2_k_axis(ax, int(ks.max()))
+        ax.set_xlabel("k (samples per prompt)")
+        ax.set_title(lab or "")
+        ax.grid(alpha=0.3)
+    axes[0][0].set_ylabel("V_k: mean reward served")
+    axes[0][-1].legend(fontsize=8, loc="lower right")
+    if title:
+        fig.suptitle(title)
+    fig.tight_layout()
+    path = _out(path)
+    fig.savefig(path, dpi=100)
+    plt.close(fig)
+    return str(path)

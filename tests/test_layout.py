@@ -11,7 +11,7 @@ from pathlib import Path
 import pytest
 
 PKG = Path(__file__).resolve().parents[1] / "bonft"
-MATH = ("bon", "estimate", "credit", "losses", "strategies", "vote_estimate")
+MATH = ("bon", "estimate", "credit", "losses", "strategies", "vote_estimate", "strategy_curves")
 BELOW = ("trainer", "plan", "cli", "viz", "tasks")
 
 

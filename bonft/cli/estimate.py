@@ -3,6 +3,7 @@ from __future__ import annotations
 
 import argparse
 import os
+from ._strategies import add_strategy_arguments, run_estimate as _run_strategies
 from ._args import add_duplicates_flag, check_boot, parse_list, write_json_atomic
 
 HELP = "best-of-k (verifier picks) and oracle pass@k with bootstrap CIs from a pool file (JSONL of scored samples)"
@@ -27,6 +28,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--boot", type=int, default=2000, help="bootstrap replicates (default: 2000)")
     p.add_argument("--seed", type=int, default=0, help="bootstrap seed (default: 0)")
     add_duplicates_flag(p)
+    add_strategy_arguments(p)
     p.add_argument("--json", metavar="OUT.json", default=None, help="also write the curves as JSON")
     p.add_argument("--plot", metavar="OUT.png", default=None, help="also write a PNG of the curves")
 
@@ -55,9 +57,12 @@ def run(args) -> int:
         reward_field=args.reward_field,
         temperature_field=args.temperature_field,
         duplicates="allow" if args.allow_duplicates else "warn",
+        answer_field=args.answer_field,
     )
     temps = temperatures_of(table)
     print(f"samples: {path} ({len(table)} rows)")
+    if args.strategy:
+        return _run_strategies(args, table, path, temps, ks)
     curves, blocks = {}, []
     for t in temps if len(temps) > 1 else [None]:
         _, s, r = group_pools(table, temperature=t)

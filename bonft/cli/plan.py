@@ -4,6 +4,7 @@ from __future__ import annotations
 import argparse
 import json
 import os
+from ._strategies import add_strategy_arguments, run_plan as _run_strategies
 from ._args import add_duplicates_flag, check_boot, parse_list, write_json_atomic
 
 HELP = "choose temperature and N: best-of-k value over a temperature x k grid, budgets, doubling gains"
@@ -57,6 +58,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--json", metavar="OUT.json", default=None, help="write the full result as JSON")
     p.add_argument("--plot-dir", metavar="DIR", default=None, help="write plan_heatmap.png and plan_curves.png here")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
+    add_strategy_arguments(p)
 
 
 def _prompts_and_verifier(args):
@@ -120,6 +122,8 @@ def run(args) -> int:
         raise ValueError(f"give exactly one of --samples, --model or --exact, got {len(given)}"
                          + (f" ({', '.join('--' + g for g in given)})" if given else ""))
     temps = parse_list("--temperatures", args.temperatures, float)
+    if args.strategy and not args.samples:
+        raise ValueError(f"--strategy needs --samples FILE.jsonl (pools with an answer field), got --{given[0]}")
     check_boot("--boot", args.boot)
     info = None
     if args.samples:
@@ -129,7 +133,11 @@ def run(args) -> int:
             raise FileNotFoundError(f"--samples file not found: {args.samples}")
         table = read_samples(args.samples, prompt_field=args.prompt_field, score_field=args.score_field,
                              reward_field=args.reward_field, temperature_field=args.temperature_field,
-                             tokens_field=args.tokens_field, duplicates="allow" if args.allow_duplicates else "warn")
+                             tokens_field=args.tokens_field, duplicates="allow" if args.allow_duplicates else "warn",
+                             answer_field=args.answer_field)
+        if args.strategy:
+            print(f"samples: {args.samples} ({len(table)} rows)")
+            return _run_strategies(args, table, temps)
         if args.budget_tokens is not None:
             _check_lengths(args, table)
         print(f"samples: {args.samples} ({len(table)} rows)")

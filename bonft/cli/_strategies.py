@@ -1,0 +1,126 @@
+"""``--strategy`` for ``bonft estimate`` and ``bonft plan``: several inference strategies side by side."""
+from __future__ import annotations
+
+import argparse
+import os
+
+from ._args import parse_list, write_json_atomic
+
+STRATEGY_HELP = ("comma-separated inference strategies to compare: best-of-k (verifier picks), majority "
+                 "(most frequent answer), weighted (answer with the largest total score), pass (oracle); "
+                 "majority and weighted need an answer field in the file")
+
+
+def add_strategy_arguments(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--strategy", default=None, metavar="NAMES", help=STRATEGY_HELP)
+    p.add_argument("--answer-field", default="answer",
+                   help="field holding each sample's extracted answer key (default: answer)")
+    p.add_argument("--max-subsets", type=int, default=20000,
+                   help="weighted vote: exact over all k-subsets up to this many, else this many sampled (default: 20000)")
+
+
+def strategy_names(text: str | None) -> list[str] | None:
+    from bonft.strategies import get_strategy
+
+    names = parse_list("--strategy", text, str)
+    if names is None:
+        return None
+    out = []
+    for s in names:
+        try:
+            out.append(get_strategy(s.strip()).name)
+        except ValueError:
+            from bonft.strategies import STRATEGY_NAMES
+
+            raise ValueError(f"--strategy must list names from {', '.join(STRATEGY_NAMES)}, got {s.strip()!r}") from None
+    return list(dict.fromkeys(out))
+
+
+def _curves(table, t, names, ks, args):
+    from bonft.estimate import default_ks
+    from bonft.io import group_pools
+    from bonft.strategy_curves import compare_strategies
+
+    need_answers = any(n in ("majority", "weighted") for n in names)
+    if need_answers and table.answers is None:
+        raise ValueError(f"--strategy {','.join(names)} needs an answer field ({args.answer_field!r}) on every line "
+                         f"of the pool file, got none")
+    pools = group_pools(table, temperature=t, with_answers=need_answers)
+    s, r = pools[1], pools[2]
+    a = pools[3] if need_answers else None
+    n_min = min(len(x) for x in s)
+    if ks is not None and (max(ks) > n_min or min(ks) < 1):
+        raise ValueError(f"--ks must be in [1, n] with n = {n_min} (the smallest pool), got {ks}")
+    use = ks if ks is not None else default_ks(n_min)
+    return compare_strategies(names, ks=use, rewards=r, scores=s, answers=a, confidence=args.confidence,
+                              n_boot=args.boot, seed=args.seed, max_subsets=args.max_subsets)
+
+
+def run_estimate(args, table, path: str, temps: list, ks) -> int:
+    """``bonft estimate --strategy``: one table per temperature, every strategy a column block."""
+    names = strategy_names(args.strategy)
+    blocks, curves = [], {}
+    for t in temps if len(temps) > 1 else [None]:
+        sc = _curves(table, t, names, ks, args)
+        print()
+        tt = t if t is not None else (temps[0] if temps else None)
+        if tt is not None:
+            print(f"temperature {tt:g}")
+        print(sc.table())
+        curves["" if t is None else f"T={t:g}"] = sc
+        blocks.append({"temperature": tt, **sc.to_dict()})
+    print()
+    print("V_k: the unbiased mean reward of what each strategy serves from k samples (all k-subsets of each pool); "
+          "best: the strategy with the highest mean at that k.")
+    if args.json:
+        write_json_atomic(args.json, {"samples": os.path.abspath(path), "blocks": blocks})
+        print(f"wrote {args.json}")
+    if args.plot:
+        from bonft.viz import plot_strategy_curves
+
+        plot_strategy_curves(curves, args.plot, title=os.path.basename(path))
+        print(f"wrote {args.plot}")
+    return 0
+
+
+def run_plan(args, table, temps_wanted) -> int:
+    """``bonft plan --samples F --strategy ...``: the best (strategy, temperature, k) at each k and per budget."""
+    from bonft.io import temperatures_of
+
+    names = strategy_names(args.strategy)
+    temps = temperatures_of(table) or [None]
+    if temps_wanted:
+        missing = [t for t in temps_wanted if t not in temps]
+        if missing:
+            raise ValueError(f"--temperatures must be in the file's {temps}, got {missing}")
+        temps = list(temps_wanted)
+    ks = None if args.max_k is None else list(range(1, args.max_k + 1))
+    grid = {t: _curves(table, t if len(temperatures_of(table)) > 1 else None, names, ks, args) for t in temps}
+    first = next(iter(grid.values()))
+    print(f"{'k':>6}  {'best strategy':>14}  {'T':>5}  {'V_k':>7}  {'interval':>17}")
+    rows = []
+    for j, k in enumerate(first.ks):
+        best = max(((t, s) for t in grid for s in names), key=lambda ts: grid[ts[0]].mean[ts[1]][j])
+        c = grid[best[0]]
+        t_txt = "-" if best[0] is None else f"{best[0]:g}"
+        print(f"{int(k):>6}  {best[1]:>14}  {t_txt:>5}  {c.mean[best[1]][j]:>7.4f}  "
+              f"[{c.lo[best[1]][j]:.4f}, {c.hi[best[1]][j]:.4f}]")
+        rows.append({"k": int(k), "strategy": best[1], "temperature": best[0], "value": float(c.mean[best[1]][j]),
+                     "lo": float(c.lo[best[1]][j]), "hi": float(c.hi[best[1]][j])})
+    budgets = parse_list("--budget-samples", args.budget_samples) or []
+    for b in budgets:
+        ok = [r for r in rows if r["k"] <= b]
+        if ok:
+            r = max(ok, key=lambda r: r["value"])
+            print(f"budget {b} samples/prompt: {r['strategy']} at T={r['temperature']} with k={r['k']}: "
+                  f"V_k = {r['value']:.4f} [{r['lo']:.4f}, {r['hi']:.4f}]")
+    if args.json:
+        write_json_atomic(args.json, {"best_by_k": rows, "grid": {str(t): g.to_dict() for t, g in grid.items()}})
+        print(f"wrote {args.json}")
+    if args.plot_dir:
+        from bonft.viz import plot_strategy_curves
+
+        path = os.path.join(args.plot_dir, "plan_strategies.png")
+        plot_strategy_curves({("" if t is None else f"T={t:g}"): g for t, g in grid.items()}, path)
+        print(f"wrote {path}")
+    return 0

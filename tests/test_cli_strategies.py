@@ -1,0 +1,103 @@
+"""``bonft estimate --strategy`` / ``bonft plan --strategy`` and the pool file's answer field.
+
+Reference values: majority vote and best-of-k computed here straight from their definitions over
+every k-subset of each pool (the U-statistic, Hoeffding 1948; majority vote with ties split
+uniformly, Wang et al. 2023).
+"""
+from __future__ import annotations
+
+import itertools
+import json
+from collections import Counter
+
+import numpy as np
+import pytest
+
+from bonft.cli import main
+from bonft.io import group_pools, read_samples
+
+POOLS = {  # prompt -> [(answer, score, reward)]
+    "p1": [("12", 0.9, 1), ("12", 0.2, 1), ("7", 0.8, 0), ("x", 0.8, 0), ("7", 0.1, 0)],
+    "p2": [("3", 0.5, 0), ("4", 0.6, 1), ("3", 0.5, 0), ("4", 0.1, 1), ("5", 0.7, 0)],
+}
+
+
+def _write(path, with_answer=True):
+    rows = [{"prompt_id": p, "i": i, "score": s, "reward": r, **({"answer": a} if with_answer else {})}
+            for p, pool in POOLS.items() for i, (a, s, r) in enumerate(pool)]
+    path.write_text("\n".join(json.dumps(r) for r in rows) + "\n")
+    return path
+
+
+def _majority(pool, k):
+    vals = []
+    for S in itertools.combinations(pool, k):
+        c = Counter(a for a, _, _ in S)
+        top = max(c.values())
+        win = [a for a in c if c[a] == top]
+        vals.append(np.mean([np.mean([r for a2, _, r in S if a2 == a]) for a in win]))
+    return np.mean(vals)
+
+
+def _best_of_k(pool, k):
+    vals = []
+    for S in itertools.combinations(pool, k):
+        top = max(s for _, s, _ in S)
+        vals.append(np.mean([r for _, s, r in S if s == top]))
+    return np.mean(vals)
+
+
+def test_answer_field_is_read_and_grouped(tmp_path):
+    t = read_samples(_write(tmp_path / "p.jsonl"))
+    keys, s, r, a = group_pools(t, with_answers=True)
+    assert keys == ["p1", "p2"] and list(a[0]) == ["12", "12", "7", "x", "7"]
+    with pytest.raises(ValueError, match="answer"):
+        group_pools(read_samples(_write(tmp_path / "q.jsonl", with_answer=False)), with_answers=True)
+
+
+def test_estimate_strategies_side_by_side(tmp_path, capsys):
+    out = tmp_path / "o.json"
+    rc = main(["estimate", str(_write(tmp_path / "p.jsonl")), "--strategy", "majority,best-of-k",
+               "--ks", "1,2,3,5", "--boot", "50", "--json", str(out)])
+    assert rc == 0
+    assert "majority" in capsys.readouterr().out
+    d = json.loads(out.read_text())["blocks"][0]["strategies"]
+    for j, k in enumerate([1, 2, 3, 5]):
+        want_m = np.mean([_majority(p, k) for p in POOLS.values()])
+        want_b = np.mean([_best_of_k(p, k) for p in POOLS.values()])
+        assert abs(d["majority"]["mean"][j] - want_m) < 1e-12
+        assert abs(d["best-of-k"]["mean"][j] - want_b) < 1e-12
+
+
+def _args(f, strategy):
+    import argparse
+
+    from bonft.cli import estimate
+
+    p = argparse.ArgumentParser()
+    estimate.add_arguments(p)
+    return p.parse_args([str(f), "--strategy", strategy, "--boot", "50"])
+
+
+def test_strategy_needs_answers_and_known_names(tmp_path):
+    from bonft.cli import estimate
+
+    f = _write(tmp_path / "p.jsonl", with_answer=False)
+    with pytest.raises(ValueError, match="needs an answer field"):
+        estimate.run(_args(f, "majority"))
+    with pytest.raises(ValueError, match="--strategy must list names"):
+        estimate.run(_args(f, "vote"))
+
+
+def test_plan_strategies_picks_best(tmp_path, capsys):
+    out = tmp_path / "plan.json"
+    rc = main(["plan", "--samples", str(_write(tmp_path / "p.jsonl")), "--strategy", "majority,best-of-k",
+               "--max-k", "5", "--boot", "50", "--budget-samples", "3", "--json", str(out)])
+    assert rc == 0
+    rows = json.loads(out.read_text())["best_by_k"]
+    for row in rows:
+        k = row["k"]
+        vals = {"majority": np.mean([_majority(p, k) for p in POOLS.values()]),
+                "best-of-k": np.mean([_best_of_k(p, k) for p in POOLS.values()])}
+        assert abs(row["value"] - max(vals.values())) < 1e-12
+    assert "budget 3 samples/prompt" in capsys.readouterr().out
