@@ -46,7 +46,7 @@ import numpy as np
 import torch
 from scipy.special import gammaln
 
-from bonft._checks import check_int, check_positive
+from bonft._checks import check_int, check_k, check_positive
 from bonft._objcheck_report import ObjectiveReport
 from bonft.bon import bon_success, bon_value, log_bon_distribution
 
@@ -296,10 +296,12 @@ def check_objective(credit, *, target, k, n, policies=4, outcomes=4, seed=0, tra
         raise TypeError(f"credit must be callable (scores, rewards, *, k) -> credit, got {type(credit).__name__}")
     t = _resolve_target(target)
     n = check_int("n", n, min=1)
-    k = check_int("k", k, min=1, max=n)
+    k = check_k(k, n)
     seed = check_int("seed", seed, min=0)
     tolerance = check_positive("tolerance", tolerance)
-    if isinstance(transformer, bool) is False:
+    directions = check_int("directions", directions, min=1)
+    mc_pools = check_int("mc_pools", mc_pools, min=2)
+    if not isinstance(transformer, bool):
         raise TypeError(f"transformer must be a bool, got {type(transformer).__name__} {transformer!r}")
     rng = np.random.default_rng(seed)
     if isinstance(policies, (list, tuple)):
@@ -319,9 +321,8 @@ def check_objective(credit, *, target, k, n, policies=4, outcomes=4, seed=0, tra
 
             ordered = any(c["ordered_pools"] for c in report.cases)
             report.transformer = transformer_check(credit, t, k, n, ordered=ordered, seed=seed, tolerance=tolerance,
-                                                   directions=check_int("directions", directions, min=1),
-                                                   mc_pools=check_int("mc_pools", mc_pools, min=2))
-    except (ValueError, TypeError, ArithmeticError) as e:
+                                                   directions=directions, mc_pools=mc_pools)
+    except Exception as e:  # the user's credit or payoff failed: a finding, reported with what it said
         report.problems.append(f"the check could not run: {type(e).__name__}: {e}")
     report.judge()
     return report

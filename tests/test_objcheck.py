@@ -248,7 +248,12 @@ def test_bad_credit_and_bad_arguments():
     rep = check_objective(lambda s, r, *, k: np.where(r > 1, np.nan, r), target="best_of_k", k=1, n=2,
                           policies=[ToyPolicy([0.0, 0.1], [0.0, 1.0], [0.5, 2.0])], transformer=False)
     assert not rep.ok and "credit returned nan at pool 1 (scores [0.0, 1.0], rewards [0.5, 2.0])" in rep.problems[0]
-    with pytest.raises(ValueError, match=r"k must be <= 3, got k=4"):
+    def broken(scores, rewards, *, k):
+        return rewards[:, [0, 1, 2, 3]]  # IndexError for n = 3
+
+    rep = check_objective(broken, target="best_of_k", k=1, n=3, transformer=False)
+    assert rep.problems == ["the check could not run: IndexError: index 3 is out of bounds for axis 1 with size 3"]
+    with pytest.raises(ValueError, match=r"k must be <= n \(n=3\), got k=4"):
         check_objective(builtin.bon_rl, target="best_of_k", k=4, n=3)
     with pytest.raises(ValueError, match=r"target must be one of \('best_of_k', 'pass_at_k', 'bon_sft'\)"):
         check_objective(builtin.bon_rl, target="pass@k", k=1, n=3)
@@ -270,7 +275,7 @@ def test_cli_exit_status(tmp_path, capsys):
             "--skip-transformer"]
     assert main(good) == 0 and "OK" in capsys.readouterr().out
     assert main(["check-objective", f"{f}:credit", "--target", "pass_at_k", "--k", "5", "--n", "4"]) == 2
-    assert "k must be <= 4, got k=5" in capsys.readouterr().err
+    assert "k must be <= n (n=4), got k=5" in capsys.readouterr().err
 
 
 def test_pytest_fixture(objective_check):
