@@ -416,3 +416,40 @@ def test_two_trainer_processes_end_with_the_one_process_weights(tmp_path, monkey
     assert ev2["n_prompts"] == ev1["n_prompts"] == 5
     assert ev2["pass_at_k"] == ev1["pass_at_k"] and ev2["mean_reward"] == pytest.approx(ev1["mean_reward"], abs=1e-12)
     assert sorted(p.name for p in (tmp_path / "two" / "checkpoints").iterdir()) == ["step-00000002", "step-00000004"]
+
+
+def test_a_peer_killed_mid_step_is_named_with_the_step_and_the_intact_checkpoint(tmp_path, monkeypatch):
+    """SIGKILL rank 1 while the trainer runs: rank 0 reports PeerError with rank 1, the step and the last checkpoint."""
+    import json
+
+    from bonft.trainer.checkpoint import verify_checkpoint
+
+    monkeypatch.setenv("PYTHONPATH", os.pathsep.join([str(SCRIPTS), os.environ.get("PYTHONPATH", "")]))
+    run = tmp_path / "run"
+    cfg = {**TRAIN_CFG, "sft_steps": 0, "rl_steps": 500, "save_every": 1, "run_dir": str(run)}
+    (tmp_path / "cfg.json").write_text(json.dumps(cfg))
+    procs = launch("train_ranks.py", [0, 1], 2, tmp_path / "cfg.json", extra_env={"BONFT_DIST_TIMEOUT_S": "10"})
+    try:
+        deadline = time.monotonic() + 120
+        while not (run / "checkpoints" / "step-00000002").is_dir():
+            if any(p.poll() is not None for p in procs) or time.monotonic() > deadline:
+                pytest.fail(f"no checkpoint of step 2: {procs[0].communicate(timeout=5)[1][-2000:]}")
+            time.sleep(0.02)
+        os.kill(procs[1].pid, signal.SIGKILL)  # mid-run: rank 0 is sampling, in backward or in a reduction
+        try:
+            _, err = procs[0].communicate(timeout=60)  # hang guard: gloo notices a closed socket at once
+        except subprocess.TimeoutExpired:
+            pytest.fail("rank 0 still running 60 s after rank 1 was killed")
+    finally:
+        for p in procs:
+            if p.poll() is None:
+                p.kill()
+            p.communicate()
+    assert procs[0].returncode != 0
+    m = re.search(r"PeerError: rank 1 of 2 stopped during training step (\d+); rank 0 noticed it and stops too\. "
+                  r"The last checkpoint (\S+) is intact \(checked against its manifest\); restart every rank with "
+                  r"--resume", err)
+    assert m, err[-3000:]
+    step, ckpt = int(m.group(1)), Path(m.group(2))
+    assert ckpt.name == f"step-{step - 1:08d}"  # save_every=1: the step before the failed one, written whole
+    assert verify_checkpoint(ckpt) == ckpt

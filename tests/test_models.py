@@ -119,9 +119,10 @@ def test_load_model_accepts_a_run_directory(tmp_path):
     # a training run directory resolves to its newest checkpoints/step-* (the layout bonft train writes)
     old = build_tiny_model("gpt2", vocab_size=V, layers=1, width=32, heads=2, seed=3)
     new = build_tiny_model("gpt2", vocab_size=V, layers=1, width=32, heads=2, seed=4)
+    from bonft.trainer.checkpoint import save_checkpoint
+
     for step, m in ((2, old), (10, new)):
-        ckpt = save_model(m, TOK, tmp_path / "run" / "checkpoints" / f"step-{step:08d}")
-        (ckpt / "state.pt").write_bytes(b"")  # the trainer's mark of a complete checkpoint
+        save_checkpoint(tmp_path / "run", step=step, model=m, tokenizer=TOK, optimizer=None, config_toml="", keep=5)
     m, _ = load_model(tmp_path / "run", device="cpu")
     sm, sn = m.state_dict(), new.state_dict()
     assert all(torch.equal(sm[k], sn[k]) for k in sn)

@@ -56,7 +56,7 @@ from .._checks import check_choice, check_int, check_positive
 
 __all__ = [
     "DistContext", "PeerError", "init_from_env", "shutdown", "session", "shard_bounds", "shard_prompts",
-    "check_divisible", "global_mean_scale", "derive_seed", "prompt_seed", "wrap_model", "unwrap_model",
+    "check_divisible", "step_guard", "stopped_ranks", "global_mean_scale", "derive_seed", "prompt_seed", "wrap_model", "unwrap_model",
     "sample_per_prompt", "reduce_metrics", "all_reduce_", "gather_objects", "all_gather_objects", "broadcast_object", "barrier",
 ]
 
@@ -473,3 +473,5 @@ def barrier(ctx: DistContext, *, what: str = "barrier") -> None:
         else:
             dist.barrier(device_ids=[ctx.device.index] if ctx.device.type == "cuda" else None)
 
+
+from ._stopped import step_guard, stopped_ranks  # noqa: E402  (they raise this module's PeerError)
