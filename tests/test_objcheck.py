@@ -197,6 +197,13 @@ def test_self_including_baseline_is_caught_with_the_right_size():
         assert f"shrinks the exact gradient to {(n - 1) / n:.3f} x" in rep.problems[0]
 
 
+def test_flat_rewards_give_a_zero_gradient_that_passes():
+    flat = ToyPolicy([0.2, -0.4, 0.9], [0.0, 1.0, 1.0], [0.7, 0.7, 0.7])  # V_k does not depend on theta
+    for name in ("bon_rl", "bon_rl_no_baseline"):
+        rep = check_objective(getattr(builtin, name), target="best_of_k", k=2, n=3, policies=[flat], transformer=False)
+        assert rep.ok and np.abs(rep.cases[0]["exact"]).max() < 1e-15, str(rep)
+
+
 def test_order_dependent_credit_uses_ordered_pools():
     def first_vs_second(scores, rewards, *, k):  # unbiased for grad E[R], but looks at positions
         w = np.zeros_like(rewards)
