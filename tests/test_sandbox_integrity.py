@@ -249,3 +249,50 @@ def test_wire_rebuilds_plain_values_and_refuses_anything_else():
     with pytest.raises(WireClosed):
         wire_recv(r, 100)
     os.close(r)
+
+
+def _plain_values():
+    from hypothesis import strategies as st
+
+    leaves = st.one_of(st.none(), st.booleans(), st.integers(), st.floats(allow_nan=False), st.text(max_size=8),
+                       st.binary(max_size=8), st.complex_numbers(allow_nan=False), st.fractions())
+    keys = st.one_of(st.integers(), st.text(max_size=4), st.tuples(st.integers()))
+    return st.recursive(leaves, lambda inner: st.one_of(
+        st.lists(inner, max_size=4), st.tuples(inner, inner), st.dictionaries(keys, inner, max_size=3),
+        st.frozensets(st.integers(), max_size=3)), max_leaves=20)
+
+
+def _json_like():
+    from hypothesis import strategies as st
+
+    leaves = st.one_of(st.none(), st.booleans(), st.integers(), st.text(max_size=6),
+                       st.sampled_from(["N", "b", "i", "f", "s", "l", "d", "h", "q", "0x10", "nan", "-0x1p+3"]))
+    return st.recursive(leaves, lambda inner: st.one_of(st.lists(inner, max_size=4),
+                                                        st.dictionaries(st.text(max_size=3), inner, max_size=2)),
+                        max_leaves=15)
+
+
+def test_wire_round_trip_and_strictness_properties():
+    """Any plain value comes back equal and of the same type; any JSON value decodes or raises
+    WireError, never another exception (common practice for strict decoders: a single error type)."""
+    from hypothesis import given
+
+    from bonft.verifiers._wire import WireError, wire_decode, wire_encode
+
+    def no_ref(obj):
+        raise TypeError(type(obj).__name__)
+
+    @given(_plain_values())
+    def round_trip(v):
+        back = wire_decode(wire_encode(v, no_ref), None)
+        assert back == v and type(back) is type(v)
+
+    @given(_json_like())
+    def strict(node):
+        try:
+            wire_decode(node, lambda ref, t: None)
+        except WireError:
+            pass
+
+    round_trip()
+    strict()
