@@ -33,6 +33,12 @@ def make(**kw):
         ({"plots": "yes"}, TypeError, r"plots must be true or false, got str 'yes'"),
         ({"task": "jsonl"}, ValueError, r"prompts_file must name a JSONL file"),
         ({"temperature": float("nan")}, ValueError, r"temperature must be finite"),
+        ({"optimizer": "adam"}, ValueError, r"optimizer must be one of \('adamw', 'sgd'\), got 'adam'"),
+        ({"adam_eps": 0.0}, ValueError, r"adam_eps must be > 0.0, got adam_eps=0.0"),
+        ({"momentum": 0.9}, ValueError, r"momentum applies to optimizer='sgd' only, got momentum=0.9 with optimizer='adamw'"),
+        ({"momentum": 1.0, "optimizer": "sgd"}, ValueError, r"momentum must be in \[0, 1\), got momentum=1.0"),
+        ({"placebo": 1}, TypeError, r"placebo must be true or false, got int 1"),
+        ({"snr_every": -1}, ValueError, r"snr_every must be >= 0, got"),
     ],
 )
 def test_bad_values_name_the_key(kw, exc, match):
@@ -46,9 +52,11 @@ def test_unknown_key_is_an_error():
 
 
 def test_overrides_convert_types():
-    v = apply_overrides(BASE, ["lr=2e-4", "n=32", "eval_ks=1,8", "plots=false", "objective=best_of_k", "task_params.hard_share=0.25"])
+    v = apply_overrides(BASE, ["lr=2e-4", "n=32", "eval_ks=1,8", "plots=false", "objective=best_of_k", "task_params.hard_share=0.25",
+                               "placebo=true", "optimizer=sgd", "momentum=0.5", "snr_every=10"])
     c = from_dict(v)
     assert (c.lr, c.n, c.eval_ks, c.plots, c.objective) == (2e-4, 32, [1, 8], False, "best_of_k")
+    assert (c.placebo, c.optimizer, c.momentum, c.snr_every, c.adam_eps) == (True, "sgd", 0.5, 10, 1e-8)
     assert c.task_params == {"hard_share": 0.25}
 
 

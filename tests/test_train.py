@@ -57,7 +57,14 @@ def test_end_to_end_writes_everything(reference):
     assert train_lines[0]["nll_per_token"] > 3.5
     assert train_lines[3]["nll_per_token"] < train_lines[0]["nll_per_token"]
     rl = train_lines[4]
-    assert {"time/sample", "time/score", "time/forward", "time/credit", "time/backward", "reward", "k", "grad_norm"} <= rl.keys()
+    assert {"time/sample", "time/score", "time/forward", "time/credit", "time/backward", "time/optimizer", "time/step",
+            "samples_per_s", "reward", "k", "grad_norm", "clipped"} <= rl.keys()
+    assert "grad_snr" not in rl  # opt-in (snr_every)
+    # the split adds up to the step: its phases are disjoint parts of time/step
+    parts = sum(rl[f"time/{p}"] for p in ("sample", "score", "forward", "credit", "backward", "optimizer"))
+    assert parts <= rl["time/step"] and rl["samples_per_s"] == pytest.approx(4 * 4 / rl["time/step"])
+    # clipped says whether the norm before clipping exceeded clip_grad_norm (1.0)
+    assert all(r["clipped"] == int(r["grad_norm"] > 1.0) for r in train_lines)
     (ev,) = [r for r in lines if r["kind"] == "eval"]
     assert ev["step"] == 8 and ev["ks"] == [1, 4] and ev["n_prompts"] == 6 and "proxy" in ev["best_of_k"]
     assert 0.0 <= ev["pass_at_k"]["mean"][0] <= ev["pass_at_k"]["mean"][1] <= 1.0  # pass@k grows with k
@@ -80,10 +87,10 @@ def test_ctrl_c_writes_checkpoint_and_resume_is_exact(tmp_path, reference, monke
     cfg = tiny(tmp_path, "interrupted", save_every=0)  # only the Ctrl-C checkpoint (and the stage boundary)
     real = T.rl_step
 
-    def interrupt_at_6(run, step):
+    def interrupt_at_6(run, step, clock):
         if step == 6:
             raise KeyboardInterrupt
-        return real(run, step)
+        return real(run, step, clock)
 
     monkeypatch.setattr(T, "rl_step", interrupt_at_6)
     with pytest.raises(KeyboardInterrupt):
@@ -147,3 +154,32 @@ def test_prompt_sharding_keeps_the_global_batch(tmp_path):
     whole = T._prompt_batch(cfg, 5, 8, 64, 0, 1)
     parts = [T._prompt_batch(cfg, 5, 8, 64, r, 2) for r in range(2)]
     assert sorted(whole.tolist()) == sorted(parts[0].tolist() + parts[1].tolist())
+
+
+@pytest.mark.parametrize("poison", ["loss", "gradient"])
+def test_non_finite_step_stops_before_the_update_and_keeps_good_checkpoints(tmp_path, monkeypatch, poison):
+    # the bug this guards against: the check used to run after optimizer.step(), so the weights
+    # updated by the bad step were saved under the previous step's label and a resume applied it twice
+    ref = tiny(tmp_path, "ref", rl_steps=0, sft_steps=6, save_every=1, keep_checkpoints=10)
+    T.train(ref, progress=False)
+    at = lambda out, s: load_file(str(Path(out) / "checkpoints" / f"step-{s:08d}" / "model" / "model.safetensors"))
+    cfg = tiny(tmp_path, "bad", rl_steps=0, sft_steps=6, save_every=2)
+    real = T.sft_step
+
+    def bad_at_3(run, step, clock):  # the 4th step (0-based step 3) goes wrong
+        rec = real(run, step, clock)
+        if step == 3 and poison == "loss":
+            rec["loss"] = float("nan")
+        if step == 3 and poison == "gradient":
+            next(run.module.parameters()).grad.view(-1)[0] = float("inf")
+        return rec
+
+    monkeypatch.setattr(T, "sft_step", bad_at_3)
+    with pytest.raises(ValueError, match=rf"step 4 has a non-finite {poison}.*not applied, checkpoint step-00000003"):
+        T.train(cfg, progress=False)
+    assert sorted(p.name for p in (Path(cfg.run_dir) / "checkpoints").iterdir()) == ["step-00000002", "step-00000003"]
+    assert_same_weights(at(cfg.run_dir, 2), at(ref.run_dir, 2))  # the earlier checkpoint is intact
+    assert_same_weights(at(cfg.run_dir, 3), at(ref.run_dir, 3))  # and step-3 holds exactly 3 updates
+    monkeypatch.setattr(T, "sft_step", real)
+    T.train(cfg, resume=True, progress=False)  # resuming applies each step once
+    assert_same_weights(final_weights(cfg.run_dir), at(ref.run_dir, 6))

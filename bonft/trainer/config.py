@@ -33,16 +33,10 @@ else:  # pragma: no cover - Python 3.10
 
 from .._checks import check_choice, check_int
 
-# objective name in a recipe -> (loss family in bonft.losses, options); see docs/training.md
-OBJECTIVES = (
-    "loo_reinforce",  # leave-one-out REINFORCE on the mean reward (Kool et al. 2019): the baseline
-    "best_of_k",  # best-of-k with the training verifier selecting (Chow et al. 2024, BoN-RL)
-    "pass_at_k",  # pass@k, unbiased U-statistic credit (Chen et al. 2021; Walder & Karkhanis 2025)
-    "pass_at_k_plugin",  # pass@k, plug-in credit 1-(1-p_hat)^k
-    "pass_at_k_positive",  # pass@k, credit on correct samples only
-    "best_of_k_sft",  # best-of-k-aware supervised fine-tuning on reference answers (Chow et al. 2024, BoN-SFT)
-)
+from .objectives import OBJECTIVES  # the registry: objective name -> credit function + options
+
 K_SCHEDULES = ("constant", "linear", "geometric")
+OPTIMIZERS = ("adamw", "sgd")
 TOKEN_REDUCTIONS = ("sum", "mean")
 
 
@@ -91,12 +85,17 @@ class TrainConfig:
     temperature: float = _f(1.0, "Sampling temperature of the training samples; log-probs are taken at the same temperature.", group="rl")
     top_p: float = _f(1.0, "Nucleus sampling threshold of training samples (1 = off).", group="rl")
     max_new_tokens: int = _f(8, "Longest response sampled (tokens, EOS included).", group="rl")
-    lr: float = _f(1e-4, "RL learning rate (AdamW, constant after warmup_steps). Keep it well below the warm start's last learning rate: the RL stage starts with fresh AdamW moments, whose first steps move every weight by about lr.", group="rl")
+    lr: float = _f(1e-4, "RL learning rate (constant after warmup_steps). With AdamW keep it well below the warm start's last learning rate: the RL stage starts with fresh moments, whose first steps move every weight by about lr.", group="rl")
     warmup_steps: int = _f(10, "Linear learning-rate warm-up steps of the RL stage.", group="rl")
-    weight_decay: float = _f(0.0, "AdamW weight decay (both stages).", group="rl")
+    optimizer: str = _f("adamw", f"Optimizer of the RL stage: one of {', '.join(OPTIMIZERS)}. AdamW moves every weight by about lr per step even when the gradient is pure noise; SGD's step shrinks with the gradient. The warm start always uses AdamW.", group="rl")
+    adam_eps: float = _f(1e-8, "AdamW's epsilon in the RL stage (> 0). Large values (e.g. 1e-3) make steps of weights with small, noisy gradients proportional to the gradient, as SGD.", group="rl")
+    momentum: float = _f(0.0, "SGD momentum in [0, 1) (optimizer = 'sgd' only).", group="rl")
+    weight_decay: float = _f(0.0, "Weight decay (both stages; decoupled for AdamW, L2 for SGD).", group="rl")
     grad_accum: int = _f(1, "Micro-batches per optimizer step; prompts_per_step must divide evenly.", group="rl")
     clip_grad_norm: float = _f(1.0, "Clip the gradient's global norm to this value; 0 = no clipping.", group="rl")
-    anchor_weight: float = _f(0.0, "Weight of the KL penalty to the policy at the start of the RL stage; 0 = none.", group="rl")
+    anchor_weight: float = _f(0.0, "Weight of the KL penalty to the anchor, the policy at the start of the RL stage (saved in RUN/rl_start); 0 = none.", group="rl")
+    placebo: bool = _f(False, "Placebo control: shuffle the outcomes (score and reward together) within each pool before the credit, one seeded permutation per pool. Same credit sizes, zero expected update for leave-one-out credit: what noise alone does to the policy.", group="rl")
+    snr_every: int = _f(0, "Measure the gradient signal-to-noise ratio (metric grad_snr, see docs/training.md) every this many RL steps on the step's own samples; costs one extra forward and backward per prompt. 0 = never.", group="rl")
     token_reduction: str = _f("sum", "'sum': sequence log-prob (unbiased policy gradient); 'mean': length-normalised (biased).", group="rl")
     reward_source: str = _f("rewards", "'rewards': train on the verifier's true rewards where it reports them (task labels; the verifier still selects for best_of_k), else its scores; 'scores': train on the verifier's scores only (e.g. against a reward model; with verifier='proxy' this shows reward hacking).", group="rl")
     correct_threshold: float = _f(0.5, "A sample counts as correct for pass@k objectives when its reward is >= this.", group="rl")
@@ -153,7 +152,13 @@ def validate(c: TrainConfig) -> None:
             setattr(c, f.name, _check_real(f.name, v, min=0.0))
     if not isinstance(c.task_params, dict):
         raise TypeError(f"task_params must be a table of task knobs, got {type(c.task_params).__name__}")
-    check_choice("objective", c.objective, OBJECTIVES)
+    check_choice("objective", c.objective, tuple(OBJECTIVES))
+    check_choice("optimizer", c.optimizer, OPTIMIZERS)
+    _check_real("adam_eps", c.adam_eps, min=0.0, strict=True)
+    if not c.momentum < 1:
+        raise ValueError(f"momentum must be in [0, 1), got momentum={c.momentum}")
+    if c.momentum and c.optimizer != "sgd":
+        raise ValueError(f"momentum applies to optimizer='sgd' only, got momentum={c.momentum} with optimizer={c.optimizer!r}")
     check_choice("k_schedule", c.k_schedule, K_SCHEDULES)
     check_choice("token_reduction", c.token_reduction, TOKEN_REDUCTIONS)
     check_choice("reward_source", c.reward_source, ("rewards", "scores"))

@@ -21,7 +21,7 @@ from __future__ import annotations
 import json
 import math
 import time
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, field, fields, replace
 from pathlib import Path
 
 import numpy as np
@@ -30,32 +30,18 @@ from .config import TrainConfig
 
 
 @dataclass
-class DemoConfig:
-    """Knobs of the demo (the defaults fit ~10 minutes on 2 CPU cores)."""
+class DemoConfig(TrainConfig):
+    """The demo's knobs: every :class:`TrainConfig` key (passed on to each stage), with the demo's
+    defaults where they differ (the defaults fit ~10 minutes on 2 CPU cores), plus two of its own."""
 
     run_dir: str = "runs/demo"
-    seed: int = 0
     task_params: dict = field(default_factory=lambda: {"hard_share": 0.3, "max_factor": 9})
-    n_train: int = 2000
-    n_eval: int = 200
     sft_steps: int = 400
-    sft_batch_size: int = 128
-    sft_lr: float = 3e-3
     rl_steps: int = 200
-    prompts_per_step: int = 16
-    n: int = 16
-    k: int = 8
     lr: float = 2e-4
-    warmup_steps: int = 10
-    eval_n: int = 64
-    eval_ks: list = field(default_factory=lambda: [1, 4, 16, 32])
-    objectives: tuple = ("loo_reinforce", "pass_at_k")
-    layers: int = 2
-    width: int = 128
-    heads: int = 4
     max_new_tokens: int = 6
-    n_boot: int = 1000
-    threads: int = 1
+    save_every: int = 0
+    objectives: tuple = ("loo_reinforce", "pass_at_k")
     workers: int = 2  # RL stages run in parallel processes, one core each
 
 
@@ -72,13 +58,9 @@ LABELS = {
 
 
 def _base(dc: DemoConfig, **kw) -> TrainConfig:
-    values = dict(
-        seed=dc.seed, task="ledger", task_params=dict(dc.task_params), n_train=dc.n_train, n_eval=dc.n_eval,
-        sft_batch_size=dc.sft_batch_size, sft_lr=dc.sft_lr, prompts_per_step=dc.prompts_per_step, n=dc.n,
-        k=dc.k, lr=dc.lr, warmup_steps=dc.warmup_steps, eval_n=dc.eval_n, eval_ks=list(dc.eval_ks), save_every=0, log_every=10,
-        layers=dc.layers, width=dc.width, heads=dc.heads, max_new_tokens=dc.max_new_tokens,
-        n_boot=dc.n_boot, threads=dc.threads,
-    )
+    """A stage's TrainConfig: the demo's values of every trainer key, then the stage's own (``kw``)."""
+    values = {f.name: getattr(dc, f.name) for f in fields(TrainConfig)}
+    values.update(task_params=dict(dc.task_params), eval_ks=list(dc.eval_ks))
     values.update(kw)
     return TrainConfig(**values)
 
@@ -166,7 +148,7 @@ def objective_config(dc: DemoConfig, objective: str, warm: str, out: Path) -> Tr
         extra = {"objective": "pass_at_k", "k": min(16, dc.n), "k_final": 1, "k_schedule": "geometric"}
     else:
         extra = {"objective": objective, "k": 1 if objective == "loo_reinforce" else dc.k}
-    return _base(dc, name=objective, run_dir=str(out / objective), start_from=warm, rl_steps=dc.rl_steps,
+    return _base(dc, name=objective, run_dir=str(out / objective), start_from=warm, sft_steps=0, rl_steps=dc.rl_steps,
                  eval_at_start=False, **extra)
 
 

@@ -1,16 +1,19 @@
 """The trainer: an optional supervised warm start, then RL on any best-of-N-aware objective.
 
-One run is a sequence of global optimizer steps ``0 .. sft_steps + rl_steps - 1``::
+One run is a sequence of global optimizer steps ``0 .. sft_steps + rl_steps - 1`` in two stages::
 
-    for step in steps:
-        if step < sft_steps:   loss = NLL of reference responses                  (warm start)
-        else:                  sample n per prompt -> score -> credit -> loss     (RL stage)
-        loss.backward(); clip; optimizer.step()
-        evaluate (pass@k, best-of-k under each verifier) / log / checkpoint when due
+    for stage in (warm start, RL):              # each stage starts with a fresh optimizer
+        for step in stage:
+            set lr; run the step (warm start: NLL of references;
+                                  RL: sample n per prompt -> score -> credit -> loss -> backward)
+            check loss and gradient are finite  (before anything changes the weights)
+            clip; optimizer step; log; evaluate when due; save when due
 
 Everything random in a step is drawn from seeds derived from ``(seed, step, rank)``
-(each prompt's samples from ``(seed, step, global slot of the prompt)``), so a run resumed from any checkpoint ends with the same weights as an
-uninterrupted one (the optimizer state and the RNG states are in the checkpoint).
+(each prompt's samples from ``(seed, step, global slot of the prompt)``), so a run
+resumed from any checkpoint ends with the same weights as an uninterrupted one (the
+optimizer state and the RNG states are in the checkpoint). A checkpoint labelled
+``step-S`` always holds the weights after exactly S optimizer steps.
 
 Under ``torchrun`` (see docs/scaling.md and :mod:`bonft.trainer.distributed`) the
 trainer joins the process group, wraps the model in DDP and gives each rank a
@@ -31,45 +34,136 @@ from __future__ import annotations
 
 import json
 import math
-import time
 
 import torch
 
 from .config import TrainConfig, to_toml
+from .measure import Stopwatch
 from .steps import (  # noqa: F401  (re-exported: the loop's parts)
-    Run, _make_optimizer, _prompt_batch, build_run, dist_info, encode_pairs, evaluate_run, k_at, lr_at,
+    Run, _prompt_batch, build_run, dist_info, encode_pairs, evaluate_run, k_at, lr_at, make_optimizer,
     quiet_transformers, rl_step, sft_step, step_seed,
 )
 
 
-# ----------------------------------------------------------------------------- the loop
+class NonFiniteStep(ValueError):
+    """A step's loss or gradient is NaN or infinite; raised before the optimizer could apply it."""
+
+
 def train(cfg: TrainConfig, *, resume: bool = False, progress: bool = True) -> dict:
-    """Run (or resume) a training run; returns the summary also written to ``OUT/summary.json``.
+    """Run (or resume) a training run; returns the summary also written to ``RUN/summary.json``.
 
     Ctrl-C writes a checkpoint of the last completed step before re-raising ``KeyboardInterrupt``.
+    A non-finite loss or gradient stops the run with ``ValueError`` before the optimizer step;
+    the checkpoint then written holds the weights of the last good step (the failed step is not applied).
     """
     from tqdm.auto import tqdm
 
-    from .checkpoint import latest_checkpoint, load_state, save_checkpoint, set_rng_state
-    from .distributed import barrier, broadcast_object, check_divisible, shutdown, step_guard, wrap_model
-    from .models import load_model, save_model
+    from .distributed import shutdown, wrap_model
 
     if not isinstance(cfg, TrainConfig):
         raise TypeError(f"cfg must be a TrainConfig, got {type(cfg).__name__}")
     torch.set_num_threads(cfg.threads)
     owns_group = not torch.distributed.is_initialized()
     run = build_run(cfg)
-    if cfg.rl_steps:  # whole prompts, equal shares, equal micro-batches on every rank
-        share = check_divisible("prompts_per_step", cfg.prompts_per_step, run.world)
+    _check_shares(cfg, run.world)
+    start, state = _restore(run, resume)
+    run.model = wrap_model(run.model, run.ctx)  # several ranks: DDP (copies rank 0's weights to all)
+    bar = tqdm(total=cfg.total_steps, initial=start, desc=cfg.name, disable=not (progress and run.is_main), dynamic_ncols=True)
+    s = start  # optimizer steps completed = the weights' step label
+    try:
+        if start == 0 and _eval_due(cfg, 0):
+            _evaluate(run, 0, progress)
+        for stage, end in (("sft", cfg.sft_steps), ("rl", cfg.total_steps)):
+            if s >= end:
+                continue
+            _enter_stage(run, stage, state if s == start else None)
+            for step in range(s, end):
+                rec = _one_step(run, stage, step)
+                s = step + 1  # the weights are now those of step s
+                if s % cfg.log_every == 0 or s == cfg.total_steps or s == cfg.sft_steps:
+                    _log(run, rec)
+                bar.update(1)
+                bar.set_postfix({key: f"{rec[key]:.3g}" for key in ("loss", "reward", "k") if key in rec}, refresh=False)
+                if _eval_due(cfg, s):
+                    _evaluate(run, s, progress)
+                if s == cfg.total_steps or s == cfg.sft_steps or (cfg.save_every and s % cfg.save_every == 0):
+                    _save(run, s)
+    except NonFiniteStep as err:  # nothing was applied: the weights are still those of step s
+        bar.close()
+        if s > start and _finite_weights(run):
+            raise ValueError(f"{err}; the update was not applied, {_save(run, s)} holds the last good weights") from None
+        raise ValueError(f"{err}; the update was not applied, no checkpoint was written or changed") from None
+    except KeyboardInterrupt:
+        bar.close()
+        if s > start and not run.updating:  # mid optimizer.step(): half-updated weights, do not save
+            _save(run, s)
+            if run.is_main:
+                print(f"\ninterrupted: checkpoint of step {s} written to {run.out}/checkpoints; continue with --resume")
+        raise
+    bar.close()
+    summary = _finish(run, progress)
+    if owns_group:
+        shutdown(run.ctx)
+    return summary
+
+
+# ----------------------------------------------------------------------------- one step
+def _one_step(run: Run, stage: str, s: int) -> dict:
+    """Step ``s``: lr, the stage's step (through backward), finite check, clip, optimizer step; its metrics."""
+    cfg, clock = run.cfg, Stopwatch(run.device)
+    lr = lr_at(cfg, s)
+    for g in run.optimizer.param_groups:
+        g["lr"] = lr
+    torch.manual_seed(step_seed(cfg.seed, s, run.rank, stream=3))  # anything else random in the step
+    run.model.train()
+    run.optimizer.zero_grad(set_to_none=True)
+    with clock("step"):
+        rec = (sft_step if stage == "sft" else rl_step)(run, s, clock)  # gradients: the global-batch mean (DDP)
+        with clock("optimizer"):
+            grads = [p.grad for p in run.module.parameters() if p.grad is not None]
+            norm = torch.nn.utils.get_total_norm(grads)  # one device sync per step, for the check
+            grad_norm = float(norm)
+            if not (math.isfinite(rec["loss"]) and math.isfinite(grad_norm)):
+                run.optimizer.zero_grad(set_to_none=True)
+                raise NonFiniteStep(f"step {s + 1} has a non-finite {'loss' if not math.isfinite(rec['loss']) else 'gradient'} "
+                                    f"(loss {rec['loss']}, gradient norm {grad_norm}); lower lr (now {lr:.3g}) or check the verifier")
+            clipped = 0 < cfg.clip_grad_norm < grad_norm
+            if clipped:
+                torch.nn.utils.clip_grads_with_norm_(grads, cfg.clip_grad_norm, norm)
+            run.updating = True  # an interrupt inside optimizer.step() leaves half-updated weights
+            run.optimizer.step()
+            run.updating = False
+    run.model.eval()
+    times = clock.metrics()
+    rec.update({"kind": "train", "stage": stage, "step": s + 1, "lr": lr, "grad_norm": grad_norm,
+                "clipped": int(clipped), **times})
+    if stage == "rl":
+        rec["samples_per_s"] = cfg.prompts_per_step * cfg.n / times["time/step"]
+    return rec
+
+
+# ----------------------------------------------------------------------------- setup and restore
+def _check_shares(cfg: TrainConfig, world: int) -> None:
+    """Whole prompts, equal shares, equal micro-batches on every rank."""
+    from .distributed import check_divisible
+
+    if cfg.rl_steps:
+        share = check_divisible("prompts_per_step", cfg.prompts_per_step, world)
         if share % cfg.grad_accum:
-            raise ValueError(f"prompts_per_step must be divisible by world_size * grad_accum (world_size={run.world}, "
+            raise ValueError(f"prompts_per_step must be divisible by world_size * grad_accum (world_size={world}, "
                              f"grad_accum={cfg.grad_accum}), got prompts_per_step={cfg.prompts_per_step}")
     if cfg.sft_steps:
-        check_divisible("sft_batch_size", cfg.sft_batch_size, run.world)
-    out, total = run.out, cfg.total_steps
-    metrics_path = out / "metrics.jsonl"
-    start, state, ckpt, problem = 0, None, None, None
-    if run.is_main:  # rank 0 decides; every rank resumes from (or refuses) the same checkpoint
+        check_divisible("sft_batch_size", cfg.sft_batch_size, world)
+
+
+def _restore(run: Run, resume: bool) -> tuple[int, dict | None]:
+    """Rank 0 picks the checkpoint (or refuses); every rank loads it. Writes config.toml, trims metrics.jsonl."""
+    from .checkpoint import latest_checkpoint, load_state, set_rng_state
+    from .distributed import broadcast_object
+    from .models import load_model
+
+    out, ckpt, problem = run.out, None, None
+    if run.is_main:
         ckpt = latest_checkpoint(out) if resume else None
         if resume and ckpt is None and (out / "summary.json").exists():
             problem = f"--resume: {out} holds a finished run without checkpoints"
@@ -78,131 +172,99 @@ def train(cfg: TrainConfig, *, resume: bool = False, progress: bool = True) -> d
     ckpt, problem = broadcast_object((ckpt, problem), run.ctx)
     if problem:
         raise ValueError(problem)
+    start, state = 0, None
     if ckpt is not None:
         state = load_state(ckpt)
         start = state["step"]
         with quiet_transformers():
             run.model, run.tokenizer = load_model(ckpt, device=run.device)
-    run.ddp = wrap_model(run.model, run.ctx)  # several ranks: DDP (copies rank 0's weights to all); else the model
+        set_rng_state(state["rng"])
     if run.is_main:
         out.mkdir(parents=True, exist_ok=True)
-        (out / "config.toml").write_text(to_toml(cfg))
-        kept = []
-        if ckpt is not None and metrics_path.exists():  # drop lines of work after the checkpoint (it is redone)
-            kept = [ln for ln in metrics_path.read_text().splitlines() if ln and json.loads(ln)["step"] <= start]
-        metrics_path.write_text("".join(ln + "\n" for ln in kept))
+        (out / "config.toml").write_text(to_toml(run.cfg))
+        path, kept = out / "metrics.jsonl", []
+        if ckpt is not None and path.exists():  # drop lines of work after the checkpoint (it is redone)
+            kept = [ln for ln in path.read_text().splitlines() if ln and json.loads(ln)["step"] <= start]
+        path.write_text("".join(ln + "\n" for ln in kept))
+    return start, state
 
-    def log(rec: dict) -> None:
-        if run.is_main:
-            with open(metrics_path, "a") as fh:
-                fh.write(json.dumps(rec) + "\n")
 
-    def stage_of(s: int) -> str:
-        return "sft" if s < cfg.sft_steps else "rl"
+def _enter_stage(run: Run, stage: str, state: dict | None) -> None:
+    """A fresh optimizer (its saved state when resuming inside the stage); RL with an anchor: load it."""
+    from .distributed import barrier
+    from .models import load_model, save_model
 
-    def enter_stage(s: int, opt_state: dict | None) -> None:
-        run.optimizer = _make_optimizer(run)
-        if opt_state is not None:
-            run.optimizer.load_state_dict(opt_state)
-        if stage_of(s) == "rl" and cfg.anchor_weight > 0:  # reference = the policy at the start of RL, kept on disk
-            ref_dir = out / "rl_start"
-            if not (ref_dir / "model").is_dir():
-                if run.is_main:
-                    save_model(run.model, run.tokenizer, ref_dir)
-            barrier(run.ctx, what=f"waiting for rank 0 to write {ref_dir}")
-            with quiet_transformers():
-                run.anchor_model, _ = load_model(ref_dir, device=run.device)
-            run.anchor_model.requires_grad_(False)
+    run.optimizer = make_optimizer(run, stage)
+    if state is not None and state["extra"].get("stage") == stage:
+        run.optimizer.load_state_dict(state["optimizer"])
+    if stage == "rl" and run.cfg.anchor_weight > 0:  # the anchor = the policy at the start of RL, kept on disk
+        ref_dir = run.out / "rl_start"
+        if not (ref_dir / "model").is_dir() and run.is_main:
+            save_model(run.module, run.tokenizer, ref_dir)
+        barrier(run.ctx, what=f"waiting for rank 0 to write {ref_dir}")
+        with quiet_transformers():
+            run.anchor_model, _ = load_model(ref_dir, device=run.device)
+        run.anchor_model.requires_grad_(False)
 
-    same_stage = state is not None and state["extra"].get("stage") == stage_of(start) and start < total
-    enter_stage(start, state["optimizer"] if same_stage else None)
-    if state is not None:
-        set_rng_state(state["rng"])
 
-    def save(s: int) -> None:
-        if run.is_main:
-            save_checkpoint(out, step=s, model=run.model, tokenizer=run.tokenizer, optimizer=run.optimizer,
-                            config_toml=to_toml(cfg), extra={"stage": stage_of(s - 1) if s else "sft"},
-                            keep=cfg.keep_checkpoints)
+# ----------------------------------------------------------------------------- log, evaluate, save
+def _log(run: Run, rec: dict) -> None:
+    """One line of metrics.jsonl (rank 0)."""
+    if run.is_main:
+        with open(run.out / "metrics.jsonl", "a") as fh:
+            fh.write(json.dumps(rec) + "\n")
 
-    def eval_due(s: int) -> bool:
-        if s == total:
-            return True
-        if cfg.rl_steps == 0 or s < cfg.sft_steps:
-            return False
-        if s == cfg.sft_steps:
-            return cfg.eval_at_start
-        return bool(cfg.eval_every) and (s - cfg.sft_steps) % cfg.eval_every == 0
 
-    reports = []
+def _eval_due(cfg: TrainConfig, s: int) -> bool:
+    """Evaluate the weights of step s: at the end, before RL (eval_at_start), every eval_every RL steps."""
+    if cfg.total_steps == 0:
+        return False
+    if s == cfg.total_steps:
+        return True
+    if cfg.rl_steps == 0 or s < cfg.sft_steps:
+        return False
+    if s == cfg.sft_steps:
+        return cfg.eval_at_start
+    return bool(cfg.eval_every) and (s - cfg.sft_steps) % cfg.eval_every == 0
 
-    def do_eval(s: int) -> None:
-        rep = evaluate_run(run, s)  # every rank samples its share; the report is rank 0's
-        if rep is None:
-            return
-        reports.append(rep)
-        log({"kind": "eval", **rep.to_dict()})
-        if progress and run.is_main:
+
+def _evaluate(run: Run, s: int, progress: bool) -> None:
+    from tqdm.auto import tqdm
+
+    rep = evaluate_run(run, s)  # every rank samples its share; the report is rank 0's
+    if rep is not None:
+        _log(run, {"kind": "eval", **rep.to_dict()})
+        if progress:
             tqdm.write(f"[eval @ step {s}]\n{rep.table()}")
 
-    if start == 0 and eval_due(0) and total > 0:
-        do_eval(0)
-    bar = tqdm(total=total, initial=start, desc=cfg.name, disable=not (progress and run.is_main), dynamic_ncols=True)
-    s, in_update = start, False
-    try:
-        while s < total:
-            if s == cfg.sft_steps and s > start:  # warm start done: fresh optimizer for the RL stage
-                enter_stage(s, None)
-            torch.manual_seed(step_seed(cfg.seed, s, run.rank, stream=3))  # anything else random in the step
-            for g in run.optimizer.param_groups:
-                g["lr"] = lr_at(cfg, s)
-            run.model.train()
-            run.optimizer.zero_grad(set_to_none=True)
-            t0 = time.perf_counter()
-            with step_guard(run.ctx, step=s + 1, run_dir=out):  # a peer lost mid-step -> PeerError
-                rec = sft_step(run, s) if s < cfg.sft_steps else rl_step(run, s)
-            # gradients are already the global-batch mean here (DDP averaged them in backward)
-            if cfg.clip_grad_norm > 0:
-                rec["grad_norm"] = float(torch.nn.utils.clip_grad_norm_(run.model.parameters(), cfg.clip_grad_norm))
-            in_update = True  # an interrupt inside optimizer.step() leaves half-updated weights: do not save those
-            run.optimizer.step()
-            s += 1
-            in_update = False
-            run.model.eval()
-            rec.update({"kind": "train", "stage": stage_of(s - 1), "step": s, "lr": lr_at(cfg, s - 1),
-                        "time/step": time.perf_counter() - t0})
-            if not math.isfinite(rec["loss"]):
-                save(s - 1) if s - 1 > start else None
-                raise ValueError(f"the loss is not finite at step {s} ({rec['loss']}); lower lr (now {rec['lr']:.3g}) or check the verifier")
-            if s % cfg.log_every == 0 or s == total or s == cfg.sft_steps:
-                log(rec)
-            bar.update(1)
-            bar.set_postfix({key: f"{rec[key]:.3g}" for key in ("loss", "reward", "k") if key in rec}, refresh=False)
-            if eval_due(s):
-                do_eval(s)
-            if s == total or s == cfg.sft_steps or (cfg.save_every and s % cfg.save_every == 0):
-                save(s)
-    except KeyboardInterrupt:
-        bar.close()
-        if s > start and not in_update:
-            save(s)
-            if run.is_main:
-                print(f"\ninterrupted: checkpoint of step {s} written to {out}/checkpoints; continue with --resume")
-        raise
-    bar.close()
-    summary = {"name": cfg.name, "steps": total, "run_dir": str(out),
-               "evaluations": [r.to_dict() for r in reports] if reports else []}
+
+def _save(run: Run, s: int) -> str:
+    """Checkpoint ``step-s``: the weights after s optimizer steps (rank 0 writes)."""
+    from .checkpoint import save_checkpoint
+
     if run.is_main:
-        # keep evaluations from before a resume too: they are in metrics.jsonl
-        evals = [json.loads(ln) for ln in metrics_path.read_text().splitlines() if ln and '"kind": "eval"' in ln]
-        summary["evaluations"] = evals
-        (out / "summary.json").write_text(json.dumps(summary, indent=1))
+        stage = "sft" if s == 0 or s - 1 < run.cfg.sft_steps else "rl"
+        save_checkpoint(run.out, step=s, model=run.module, tokenizer=run.tokenizer, optimizer=run.optimizer,
+                        config_toml=to_toml(run.cfg), extra={"stage": stage}, keep=run.cfg.keep_checkpoints)
+    return f"checkpoint step-{s:08d}"
+
+
+def _finite_weights(run: Run) -> bool:
+    return all(bool(torch.isfinite(p).all()) for p in run.module.parameters())
+
+
+def _finish(run: Run, progress: bool) -> dict:
+    """summary.json (every evaluation, including those before a resume) and the curves plot."""
+    cfg = run.cfg
+    summary = {"name": cfg.name, "steps": cfg.total_steps, "run_dir": str(run.out), "evaluations": []}
+    if run.is_main:
+        lines = (run.out / "metrics.jsonl").read_text().splitlines()
+        summary["evaluations"] = evals = [json.loads(ln) for ln in lines if ln and '"kind": "eval"' in ln]
+        (run.out / "summary.json").write_text(json.dumps(summary, indent=1))
         if cfg.plots and evals:
             from ..viz import plot_evaluations
 
-            plot_evaluations(evals, out / "curves.png", title=cfg.name)
+            plot_evaluations(evals, run.out / "curves.png", title=cfg.name)
         if progress:
-            print(f"{cfg.name}: {total} steps done; metrics, checkpoints and summary.json in {out}")
-    if owns_group:
-        shutdown(run.ctx)
+            print(f"{cfg.name}: {cfg.total_steps} steps done; metrics, checkpoints and summary.json in {run.out}")
     return summary

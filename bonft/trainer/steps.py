@@ -1,13 +1,13 @@
-"""The trainer's parts: seeds, schedules, the warm-start and RL steps, setup and evaluation.
+"""The trainer's parts: seeds, schedules, the optimizer, the warm-start and RL steps, setup and evaluation.
 
-:mod:`bonft.trainer.loop` holds the loop; this module holds what one step does. See
+:mod:`bonft.trainer.loop` holds the loop; this module holds what one step does
+(up to and including ``backward()``; the loop checks, clips and steps). See
 :mod:`bonft.trainer.loop` for the RNG, distributed and caution notes.
 """
 from __future__ import annotations
 
 import contextlib
 import math
-import time
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -16,6 +16,10 @@ import numpy as np
 import torch
 
 from .config import TrainConfig
+from .measure import GradientMoments, Stopwatch
+from .objectives import OBJECTIVES, Pools, policy_loss, shuffle_pools
+
+PLACEBO_STREAM = 5  # prompt_seed stream of the placebo's permutations (0: sampling, 2: evaluation)
 
 
 # ----------------------------------------------------------------------------- helpers
@@ -83,7 +87,12 @@ def encode_pairs(tokenizer: Any, prompts: list[str], responses: list[str], devic
 
 @dataclass
 class Run:
-    """What the loop carries: model, tokenizer, optimizer, data, verifiers."""
+    """What the loop carries: the model, tokenizer, optimizer, data, verifiers.
+
+    ``model`` is the model as trained: on several ranks it is wrapped in DDP (which
+    averages gradients in backward), so training forward passes go through it;
+    sampling, evaluation and saving use :attr:`module`, the plain model inside.
+    """
 
     cfg: TrainConfig
     out: Path
@@ -99,20 +108,30 @@ class Run:
     optimizer: Any = None
     anchor_model: Any = None
     ctx: Any = None  # bonft.trainer.distributed.DistContext
-    ddp: Any = None  # the model as trained: DistributedDataParallel(model) on several ranks, else model
+    updating: bool = False  # inside optimizer.step(): the weights are half-updated
 
     @property
-    def net(self) -> Any:
-        """What training forward passes go through (gradients are averaged over ranks in backward)."""
-        return self.ddp if self.ddp is not None else self.model
+    def module(self) -> Any:
+        """The plain model (inside DDP on several ranks)."""
+        from .distributed import unwrap_model
+
+        return unwrap_model(self.model)
 
     @property
     def is_main(self) -> bool:
         return self.rank == 0
 
 
-def _make_optimizer(run: Run) -> torch.optim.Optimizer:
-    return torch.optim.AdamW(run.model.parameters(), lr=run.cfg.lr, weight_decay=run.cfg.weight_decay)
+def make_optimizer(run: Run, stage: str) -> torch.optim.Optimizer:
+    """The warm start: AdamW; the RL stage: ``cfg.optimizer`` (AdamW with ``adam_eps``, or SGD with ``momentum``).
+
+    The learning rate is set by the loop before every step (:func:`lr_at`).
+    """
+    cfg, params = run.cfg, run.module.parameters()
+    if stage == "rl" and cfg.optimizer == "sgd":
+        return torch.optim.SGD(params, lr=cfg.lr, momentum=cfg.momentum, weight_decay=cfg.weight_decay)
+    eps = cfg.adam_eps if stage == "rl" else 1e-8
+    return torch.optim.AdamW(params, lr=cfg.lr, eps=eps, weight_decay=cfg.weight_decay)
 
 
 def _prompt_batch(cfg: TrainConfig, step: int, size: int, n_items: int, rank: int, world: int) -> np.ndarray:
@@ -128,7 +147,7 @@ def _prompt_batch(cfg: TrainConfig, step: int, size: int, n_items: int, rank: in
 
 
 # ----------------------------------------------------------------------------- the two steps
-def sft_step(run: Run, step: int) -> dict:
+def sft_step(run: Run, step: int, clock: Stopwatch) -> dict:
     """Warm start: NLL (sum over tokens) of reference responses, divided by the global batch size."""
     from .distributed import reduce_metrics
     from ..losses import nll_loss
@@ -139,92 +158,104 @@ def sft_step(run: Run, step: int) -> dict:
     idx = _prompt_batch(cfg, step, B, len(run.train), run.rank, run.world)
     ex = [run.train[i] for i in idx]
     pids, pmask, rids, rmask = encode_pairs(run.tokenizer, [e.prompt for e in ex], [e.reference for e in ex], run.device)
-    logp = sequence_logprobs(run.net, pids, pmask, rids, rmask)  # (b, 1, T)
-    # (b, 1, T) -> (b, T): one reference response per prompt
-    loss, info = nll_loss(logp[:, 0], mask=rmask[:, 0], token_reduction="sum", reduction="sum")
-    (loss * run.world / B).backward()  # x W/B: DDP averages over W ranks (bonft.trainer.distributed.global_mean_scale)
+    with clock("forward"):
+        logp = sequence_logprobs(run.model, pids, pmask, rids, rmask)  # (b, 1, T)
+        out = nll_loss(logp[:, 0], mask=rmask[:, 0], token_reduction="sum", reduction="sum")  # (b, 1, T) -> (b, T)
+        loss = out[0] if isinstance(out, tuple) else out
+    with clock("backward"):
+        (loss * run.world / B).backward()  # x W/B: DDP averages over W ranks (bonft.trainer.distributed.global_mean_scale)
     tot = reduce_metrics({"nll": float(loss.detach()), "tokens": float(rmask.sum())}, run.ctx)
     return {"loss": tot["nll"] / B, "nll_per_token": tot["nll"] / tot["tokens"]}
 
 
-def _objective(cfg: TrainConfig, k: int, logp, mask, scores, rewards, anchor_logp, sft_terms):
-    """Dispatch to bonft.losses with reduction='sum' (the caller divides by the global batch)."""
-    from .. import losses as L
-
-    t = torch.as_tensor
-    kw: dict = {"mask": mask, "token_reduction": cfg.token_reduction, "reduction": "sum"}
-    if anchor_logp is not None:
-        kw.update(anchor_logprobs=anchor_logp, anchor_weight=cfg.anchor_weight)
-    correct = t(rewards >= cfg.correct_threshold)
-    if cfg.objective == "loo_reinforce":
-        return L.reinforce_loss(logp, t(rewards), baseline="loo", **kw)
-    if cfg.objective == "best_of_k":
-        return L.bon_rl_loss(logp, t(scores), t(rewards), k=k, baseline="loo", **kw)
-    if cfg.objective.startswith("pass_at_k"):
-        est = "plugin" if cfg.objective == "pass_at_k_plugin" else "unbiased"
-        return L.pass_at_k_loss(logp, correct, k=k, estimator=est, positive_only=cfg.objective == "pass_at_k_positive", **kw)
-    expert_logp, expert_mask, expert_scores = sft_terms  # best_of_k_sft
-    return L.bon_sft_loss(expert_logp, logp, t(scores), t(expert_scores), k=k, expert_mask=expert_mask, **kw)
-
-
-def rl_step(run: Run, step: int) -> dict:
-    """Sample n per prompt -> score -> credit -> loss -> backward, over grad_accum micro-batches."""
-    from .distributed import prompt_seed, reduce_metrics, sample_per_prompt, shard_bounds
-    from .generation import sequence_logprobs
+def _score(run: Run, prompts: list[str], texts: list[list[str]], references: list[str] | None, seeds: list[int]):
+    """Score the pools -> Pools on the device (and the verifier's failure count); placebo-shuffled if asked."""
     from ..verifiers.scoring import score_batch
 
+    cfg, n = run.cfg, len(texts[0])
+    v = score_batch(run.verifiers["train"], [p for p in prompts for _ in range(n)], [s for row in texts for s in row])
+    scores = np.asarray(v.scores, dtype=np.float64).reshape(len(prompts), n)  # row b*n + i is sample i of prompt b
+    rewards = scores if cfg.reward_source == "scores" or v.rewards is None else np.asarray(v.rewards, np.float64).reshape(scores.shape)
+    if cfg.placebo:
+        scores, rewards = shuffle_pools(seeds, scores, rewards)
+    t = lambda x: torch.as_tensor(x, dtype=torch.float64, device=run.device)
+    expert = None
+    if references is not None:
+        expert = t(score_batch(run.verifiers["train"], prompts, references).scores)
+    pools = Pools(scores=t(scores), rewards=t(rewards), correct=t(rewards >= cfg.correct_threshold), expert_scores=expert)
+    return pools, v.n_failed
+
+
+def rl_step(run: Run, step: int, clock: Stopwatch) -> dict:
+    """Sample n per prompt -> score -> credit -> loss -> backward, over grad_accum micro-batches.
+
+    With ``snr_every`` due, also the per-prompt gradients of the same samples (``grad_snr``).
+    """
+    from .distributed import prompt_seed, reduce_metrics, sample_per_prompt, shard_bounds
+    from .generation import sequence_logprobs
+
     cfg, n, T = run.cfg, run.cfg.n, run.cfg.temperature
-    B = cfg.prompts_per_step
+    B, obj = cfg.prompts_per_step, OBJECTIVES[cfg.objective]
     k = k_at(cfg, step - cfg.sft_steps)
     idx = _prompt_batch(cfg, step, B, len(run.train), run.rank, run.world)
     slots = np.arange(*shard_bounds(B, rank=run.rank, world_size=run.world))  # positions in the global batch
-    tm = dict.fromkeys(("sample", "score", "forward", "credit", "backward"), 0.0)
+    moments = GradientMoments() if cfg.snr_every and (step - cfg.sft_steps) % cfg.snr_every == 0 else None
     acc: dict = {}
     for mb, sl in zip(np.array_split(idx, cfg.grad_accum), np.array_split(slots, cfg.grad_accum)):
         ex = [run.train[i] for i in mb]
-        prompts = [e.prompt for e in ex]
-        t0 = time.perf_counter()
-        # one generator per global slot: a prompt draws the same samples whichever rank holds it
-        smp = sample_per_prompt(run.model, run.tokenizer, prompts, seeds=[prompt_seed(cfg.seed, step=step, slot=int(j))
-                                for j in sl], n=n, temperature=T, top_p=cfg.top_p, max_new_tokens=cfg.max_new_tokens)
-        t1 = time.perf_counter()
-        flat_p = [p for p in prompts for _ in range(n)]  # row b*n + i is sample i of prompt b
-        v = score_batch(run.verifiers["train"], flat_p, [s for row in smp.texts for s in row])
-        b = len(ex)
-        scores = v.scores.reshape(b, n)
-        use_scores = cfg.reward_source == "scores" or v.rewards is None
-        rewards = (v.scores if use_scores else v.rewards).reshape(b, n)
-        sft_terms = None
-        if cfg.objective == "best_of_k_sft":
-            ev = score_batch(run.verifiers["train"], prompts, [e.reference for e in ex])
-            pids, pmask, rids, rmask = encode_pairs(run.tokenizer, prompts, [e.reference for e in ex], run.device)
-            elp = sequence_logprobs(run.net, pids, pmask, rids, rmask)
-            sft_terms = [elp[:, 0], rmask[:, 0], ev.scores]  # (b, 1, T) -> (b, T): the expert response
-        t2 = time.perf_counter()
-        # log-probs of the policy that drew the samples: same temperature and top-p
+        prompts, b = [e.prompt for e in ex], len(ex)
+        with clock("sample"):  # one generator per global slot: a prompt draws the same samples whichever rank holds it
+            smp = sample_per_prompt(run.module, run.tokenizer, prompts, seeds=[prompt_seed(cfg.seed, step=step, slot=int(j))
+                                    for j in sl], n=n, temperature=T, top_p=cfg.top_p, max_new_tokens=cfg.max_new_tokens)
+        with clock("score"):
+            refs = [e.reference for e in ex] if obj.expert else None
+            pools, failed = _score(run, prompts, smp.texts, refs,
+                                   [prompt_seed(cfg.seed, step=step, slot=int(j), stream=PLACEBO_STREAM) for j in sl])
         rows = (smp.prompt_tokens, smp.prompt_valid, smp.reply_tokens, smp.reply_valid)
-        logp = sequence_logprobs(run.net, *rows, temperature=T, top_p=cfg.top_p)
-        anchor_logp = None
-        if run.anchor_model is not None:
-            with torch.no_grad():
-                anchor_logp = sequence_logprobs(run.anchor_model, *rows, temperature=T, top_p=cfg.top_p)
-        t3 = time.perf_counter()
-        loss, info = _objective(cfg, k, logp, smp.reply_valid, scores, rewards, anchor_logp, sft_terms)
-        t4 = time.perf_counter()
-        (loss * run.world / B).backward()  # x W/B: DDP averages over W ranks (global_mean_scale)
-        for key, dt in (("sample", t1 - t0), ("score", t2 - t1), ("forward", t3 - t2), ("credit", t4 - t3),
-                        ("backward", time.perf_counter() - t4)):
-            tm[key] += dt
-        for key, val in [("loss", float(loss.detach()) / B), ("reward", float(rewards.mean()) * b / B),
-                         ("score", float(scores.mean()) * b / B), ("verifier_failures", v.n_failed)]:
+        expert_rows = encode_pairs(run.tokenizer, prompts, refs, run.device) if obj.expert else None
+
+        def loss_of(model, rows, expert_rows, credit, anchor_logp):
+            """Summed loss of the prompts in ``rows`` (all of the micro-batch, or one for the SNR)."""
+            # log-probs of the policy that drew the samples: same temperature and top-p
+            logp = sequence_logprobs(model, *rows, temperature=T, top_p=cfg.top_p)
+            e_lp = e_mask = None
+            if expert_rows is not None:  # (b, 1, T) -> (b, T): the reference response
+                e_lp, e_mask = sequence_logprobs(model, *expert_rows)[:, 0], expert_rows[3][:, 0]
+            return policy_loss(logp, credit, mask=rows[3], token_reduction=cfg.token_reduction,
+                               anchor_logprobs=anchor_logp, anchor_weight=cfg.anchor_weight,
+                               expert_logprobs=e_lp, expert_mask=e_mask)
+
+        with clock("credit"):
+            credit = obj.credit(pools, k)
+            value = obj.value(pools, k) if obj.value is not None else None
+        with clock("forward"):
+            anchor_logp = None
+            if run.anchor_model is not None:
+                with torch.no_grad():
+                    anchor_logp = sequence_logprobs(run.anchor_model, *rows, temperature=T, top_p=cfg.top_p)
+            loss, info = loss_of(run.model, rows, expert_rows, credit, anchor_logp)
+        with clock("backward"):
+            (loss * run.world / B).backward()  # x W/B: DDP averages over W ranks (global_mean_scale)
+        if moments is not None:
+            with clock("snr"):
+                params = [p for p in run.module.parameters() if p.requires_grad]
+                one = lambda x, j: tuple(r[j:j + 1] for r in x) if x is not None else None
+                for j in range(b):
+                    lj, _ = loss_of(run.module, one(rows, j), one(expert_rows, j), credit[j:j + 1],
+                                    anchor_logp[j:j + 1] if anchor_logp is not None else None)
+                    moments.add(torch.autograd.grad(lj, params, allow_unused=True, materialize_grads=True))
+        info.update({"pool_value": float(value.mean())} if value is not None else {})
+        if obj.expert:
+            info["beaten_frac"] = float((pools.scores > pools.expert_scores[:, None]).double().mean())
+        for key, val in [("loss", float(loss.detach()) / B), ("reward", float(pools.rewards.mean()) * b / B),
+                         ("score", float(pools.scores.mean()) * b / B), ("verifier_failures", failed),
+                         *((f"info/{key}", float(v) * b / B) for key, v in info.items())]:
             acc[key] = acc.get(key, 0.0) + val
-        for key, val in info.items():
-            acc[f"info/{key}"] = acc.get(f"info/{key}", 0.0) + float(val) * b / B
-    acc = reduce_metrics(acc, run.ctx)  # per-rank parts of global means -> their sum (times stay rank 0's)
-    acc.update({"k": k, **{f"time/{key}": val for key, val in tm.items()}})
+    acc = reduce_metrics(acc, run.ctx)  # per-rank parts of global means -> their sum
+    acc["k"] = k
+    if moments is not None:
+        acc["grad_snr"] = moments.snr(run.ctx)
     return acc
-
-
 # ----------------------------------------------------------------------------- setup
 def build_run(cfg: TrainConfig) -> Run:
     """Task, data split, verifiers, model and tokenizer for ``cfg`` (no optimizer yet)."""
@@ -283,7 +314,7 @@ def evaluate_run(run: Run, step: int):
     a, b = shard_bounds(len(held), rank=run.rank, world_size=run.world, allow_uneven=True)
     raw = None
     if b > a:
-        raw = collect_pools(run.model, run.tokenizer, [e.prompt for e in held[a:b]], verifiers=vers,
+        raw = collect_pools(run.module, run.tokenizer, [e.prompt for e in held[a:b]], verifiers=vers,
                             extract_answer=getattr(run.task, "extract_answer", None), n=cfg.eval_n,
                             temperature=cfg.eval_temperature, max_new_tokens=cfg.max_new_tokens,
                             seeds=[prompt_seed(cfg.seed, step=0, slot=j, stream=2) for j in range(a, b)])

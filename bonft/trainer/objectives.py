@@ -1,0 +1,152 @@
+"""The RL objectives of the trainer: a registry of name -> credit function + options.
+
+Every objective is the same policy-gradient loss with a different per-sample
+credit ``w`` (:mod:`bonft.credit`); for prompt ``b`` with samples ``y_b1..y_bn``
+
+.. math:: \\ell_b = -\\sum_i w_{bi} \\log\\pi(y_{bi})\\ \\ [+\\ \\text{anchor KL}]\\ \\ [-\\ \\log\\pi(y^*_b)\\ \\text{for best\\_of\\_k\\_sft}]
+
+so the trainer only needs, per objective, how to turn a scored pool into credit
+(:class:`Objective`). ``OBJECTIVES`` is the registry the config key
+``objective`` names; :func:`register_objective` adds one of your own.
+
+The placebo control (:func:`shuffle_pools`, config key ``placebo``) permutes the
+outcomes of each pool before the credit is computed: the credit keeps its sizes
+(the same multiset per pool) but is assigned to samples at random, so for credit
+that sums to zero in each pool (every leave-one-out objective here) the expected
+update given the samples is exactly zero. Any drift a placebo run shows is what
+noise alone does to the policy.
+
+References: Kool et al. 2019 (leave-one-out REINFORCE); Chen et al. 2021 (unbiased
+pass@k); Chow et al. 2024 (best-of-N-aware RL and SFT); Walder & Karkhanis 2025
+(pass@k policy gradients).
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Callable, Sequence
+
+import numpy as np
+import torch
+
+from .. import credit as C
+from .. import losses as L
+
+
+@dataclass
+class Pools:
+    """The scored samples of ``b`` prompts, as float64 tensors on the training device.
+
+    scores, rewards: (b, n); correct: (b, n) 0/1 (reward >= the correctness threshold);
+    expert_scores: (b,) verifier score of each prompt's reference response (best_of_k_sft only).
+    """
+
+    scores: torch.Tensor
+    rewards: torch.Tensor
+    correct: torch.Tensor
+    expert_scores: torch.Tensor | None = None
+
+
+@dataclass(frozen=True)
+class Objective:
+    """One entry of the registry: ``credit(pools, k) -> (b, n)``, ``value(pools, k) -> (b,)`` or None.
+
+    ``value`` is the pool's own estimate of the targeted quantity (logged as
+    ``info/pool_value``); ``expert``: the loss adds ``-log pi(reference)`` per prompt.
+    """
+
+    credit: Callable[[Pools, int], torch.Tensor]
+    value: Callable[[Pools, int], torch.Tensor] | None
+    summary: str
+    uses_k: bool = True
+    expert: bool = False
+
+
+def _credit_fn(new: str, old: str) -> Callable:
+    """The credit function under its 0.2 name, or its former name while the rename lands (k passed by keyword)."""
+    return getattr(C, new, None) or getattr(C, old)
+
+
+def _pass_at_k(estimator: str, positive_only: bool) -> Callable:
+    return lambda p, k: _credit_fn("pass_at_k_credit", "pass_credit")(
+        p.correct, k=k, estimator=estimator, positive_only=positive_only)
+
+
+def _pass_value(p: Pools, k: int) -> torch.Tensor:
+    # selecting by correctness, best-of-k is correct iff one of the k is: the U-statistic is unbiased pass@k
+    return C.pool_value(p.correct, p.correct, k=k)
+
+
+OBJECTIVES: dict[str, Objective] = {
+    "loo_reinforce": Objective(
+        credit=lambda p, k: C.reinforce_credit(p.rewards, baseline="loo"), value=lambda p, k: p.rewards.mean(-1),
+        summary="mean reward (pass@1), leave-one-out REINFORCE (Kool et al. 2019): the baseline", uses_k=False),
+    "best_of_k": Objective(
+        credit=lambda p, k: _credit_fn("bon_rl_credit", "bon_credit")(p.scores, p.rewards, k=k, baseline="loo"),
+        value=lambda p, k: C.pool_value(p.scores, p.rewards, k=k),
+        summary="best-of-k with the training verifier selecting (Chow et al. 2024, BoN-RL)"),
+    "pass_at_k": Objective(
+        credit=_pass_at_k("unbiased", False), value=_pass_value,
+        summary="pass@k, unbiased U-statistic credit (Chen et al. 2021; Walder & Karkhanis 2025)"),
+    "pass_at_k_plugin": Objective(
+        credit=_pass_at_k("plugin", False), value=_pass_value, summary="pass@k, plug-in credit 1-(1-p_hat)^k"),
+    "pass_at_k_positive": Objective(
+        credit=_pass_at_k("unbiased", True), value=_pass_value, summary="pass@k, credit on correct samples only"),
+    "best_of_k_sft": Objective(
+        credit=lambda p, k: _credit_fn("bon_sft_credit", "sft_credit")(p.scores, p.expert_scores, k=k),
+        value=None, expert=True,
+        summary="best-of-k-aware supervised fine-tuning on reference answers (Chow et al. 2024, BoN-SFT)"),
+}
+
+
+def register_objective(name: str, objective: Objective) -> None:
+    """Add an objective under ``name`` (then ``objective = "name"`` in a recipe selects it)."""
+    if not isinstance(name, str) or not name:
+        raise TypeError(f"name must be a non-empty str, got {type(name).__name__} {name!r}")
+    if not isinstance(objective, Objective):
+        raise TypeError(f"objective must be a bonft.trainer.objectives.Objective, got {type(objective).__name__}")
+    if name in OBJECTIVES:
+        raise ValueError(f"name must not be taken already, got {name!r} (registered: {sorted(OBJECTIVES)})")
+    OBJECTIVES[name] = objective
+
+
+def shuffle_pools(seeds: Sequence[int], *arrays: np.ndarray) -> tuple[np.ndarray, ...]:
+    """The placebo: permute the samples' outcomes within each pool, one permutation per pool.
+
+    seeds: b ints (one generator per pool); arrays: each (b, n) -> the same arrays with row
+    ``j`` permuted by ``default_rng(seeds[j]).permutation(n)`` (the same permutation for
+    every array, so a sample's score and reward stay paired). Pools are shuffled
+    independently; each sample's outcome is replaced by a uniformly random one of its pool.
+    """
+    out = [np.array(a, copy=True) for a in arrays]
+    n = out[0].shape[1]
+    for j, s in enumerate(seeds):
+        perm = np.random.default_rng(int(s)).permutation(n)
+        for a in out:
+            a[j] = a[j][perm]
+    return tuple(out)
+
+
+def policy_loss(logprobs: torch.Tensor, credit: torch.Tensor, *, mask: torch.Tensor | None, token_reduction: str,
+                anchor_logprobs: torch.Tensor | None = None, anchor_weight: float = 0.0,
+                expert_logprobs: torch.Tensor | None = None, expert_mask: torch.Tensor | None = None,
+                ) -> tuple[torch.Tensor, dict]:
+    """Sum over prompts of ``-sum_i w_bi log pi(y_bi)`` (+ anchor KL) (``- log pi(y*_b)`` with an expert).
+
+    logprobs, mask, anchor_logprobs: (b, n, T); credit: (b, n); expert_logprobs, expert_mask: (b, T)
+    -> loss (), info (name -> number; ``kl`` when an anchor is given).
+    """
+    core = getattr(L, "policy_gradient_loss", None)
+    kw = dict(mask=mask, token_reduction=token_reduction, reduction="sum", anchor_logprobs=anchor_logprobs,
+              anchor_weight=anchor_weight)
+    if core is not None:
+        loss, info = core(logprobs, credit, return_info=True, **kw)
+    else:  # until bonft.losses exposes its core: the same core through its internal helpers
+        lp, m, seq = L._prepare("logprobs", logprobs, "mask", mask, token_reduction, 2)
+        loss, info = L._pg_loss(seq, credit, lp, m, anchor_logprobs, float(anchor_weight), token_reduction, "sum", {})
+    info = {key: float(v) for key, v in info.items()}
+    if expert_logprobs is not None:
+        out = L.nll_loss(expert_logprobs, mask=expert_mask, token_reduction=token_reduction, reduction="sum")
+        nll = out[0] if isinstance(out, tuple) else out
+        loss = loss + nll
+        info["expert_logprob"] = -float(nll.detach()) / expert_logprobs.shape[0]
+    return loss, info

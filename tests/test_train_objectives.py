@@ -1,0 +1,183 @@
+"""The trainer's objective registry, the placebo control, the gradient SNR and the optimizer choice."""
+import itertools
+import math
+
+import numpy as np
+import pytest
+import torch
+
+from bonft.trainer.config import from_dict
+from bonft.trainer.measure import GradientMoments
+from bonft.trainer.objectives import OBJECTIVES, Pools, policy_loss, shuffle_pools
+
+f64 = lambda x: torch.as_tensor(np.asarray(x), dtype=torch.float64)
+
+
+def pools_of(scores, rewards, expert=None):
+    return Pools(scores=f64(scores), rewards=f64(rewards), correct=f64(np.asarray(rewards) >= 0.5),
+                 expert_scores=None if expert is None else f64(expert))
+
+
+@pytest.fixture
+def batch():
+    rng = np.random.default_rng(0)
+    scores = rng.integers(0, 4, size=(5, 8)).astype(float)  # ties on purpose
+    rewards = (rng.random((5, 8)) < 0.4).astype(float)
+    return scores, rewards, np.full(5, 2.5)
+
+
+@pytest.mark.parametrize("name", sorted(OBJECTIVES))
+def test_placebo_keeps_each_pools_credit_sizes(batch, name):
+    scores, rewards, expert = batch
+    seeds = list(range(100, 105))
+    s2, r2 = shuffle_pools(seeds, scores, rewards)
+    for j in range(5):  # each pool: same outcomes, score and reward still paired
+        assert sorted(zip(s2[j], r2[j])) == sorted(zip(scores[j], rewards[j]))
+    assert not np.array_equal(r2, rewards)
+    obj = OBJECTIVES[name]
+    c = obj.credit(pools_of(scores, rewards, expert), 4).numpy()
+    c2 = obj.credit(pools_of(s2, r2, expert), 4).numpy()
+    # permuting a pool's samples permutes its credit: the same multiset of credits per pool
+    np.testing.assert_allclose(np.sort(c2, axis=1), np.sort(c, axis=1), atol=1e-12)
+
+
+def test_placebo_permutations_are_independent_per_pool():
+    same = np.tile(np.arange(8.0), (4, 1))
+    (out,) = shuffle_pools([1, 2, 3, 4], same)
+    assert len({tuple(row) for row in out}) == 4  # identical pools, four different orders
+    (again,) = shuffle_pools([1, 2, 3, 4], same)
+    assert np.array_equal(out, again)  # seeded
+
+
+def _toy_gradient(name, y, scores, rewards, theta, *, seed=None):
+    """Gradient wrt the logits of a 5-action softmax policy of the loss on one fixed pool."""
+    th = theta.clone().requires_grad_(True)
+    logp = torch.log_softmax(th, -1)[y][None]  # (1, n) sequence log-probs
+    if seed is not None:
+        scores, rewards = shuffle_pools([seed], scores, rewards)
+    credit = OBJECTIVES[name].credit(pools_of(scores, rewards), 3)
+    loss, _ = policy_loss(logp, credit, mask=None, token_reduction="sum")
+    (g,) = torch.autograd.grad(loss, th)
+    return g.numpy()
+
+
+@pytest.mark.parametrize("name", ["loo_reinforce", "pass_at_k", "best_of_k", "pass_at_k_positive"])
+def test_placebo_update_has_zero_mean_on_a_fixed_pool(name):
+    theta = torch.tensor([0.3, -0.2, 0.5, 0.0, -0.6], dtype=torch.float64)
+    y = torch.tensor([0, 1, 2, 2, 3, 4, 0, 2])
+    rewards = np.array([[1.0, 0, 0, 0, 1, 0, 1, 0]])
+    scores = np.array([[0.9, 0.1, 0.4, 0.3, 0.7, 0.2, 0.8, 0.5]])
+    real = _toy_gradient(name, y, scores, rewards, theta)
+    G = np.stack([_toy_gradient(name, y, scores, rewards, theta, seed=s) for s in range(3000)])
+    se = G.std(0, ddof=1) / math.sqrt(len(G))
+    # a uniformly random permutation gives each sample the pool's mean credit cbar, so the expected
+    # update is cbar * sum_i grad log pi(y_i) (score-function identity; common practice): zero when the
+    # credit sums to zero in the pool (leave-one-out credit), not for positive-only pass@k credit
+    credit = OBJECTIVES[name].credit(pools_of(scores, rewards), 3).numpy()[0]
+    th = theta.clone().requires_grad_(True)
+    (sum_score,) = torch.autograd.grad(torch.log_softmax(th, -1)[y].sum(), th)
+    expected = -credit.mean() * sum_score.numpy()
+    assert np.all(np.abs(G.mean(0) - expected) < 5 * se + 1e-12)
+    assert np.linalg.norm(real - expected) > 10 * np.linalg.norm(se)  # the real update is far from it
+    if name != "pass_at_k_positive":
+        assert abs(credit.sum()) < 1e-12 and np.linalg.norm(expected) < 1e-12
+
+
+def test_placebo_exact_average_over_all_permutations():
+    # brute force over all 6! orders of a 6-sample pool: the mean credit of every sample is the pool's mean
+    rewards = np.array([[1.0, 0, 1, 0, 0, 0]])
+    scores = np.array([[0.2, 0.9, 0.4, 0.4, 0.1, 0.7]])
+    for name in ("best_of_k", "pass_at_k", "loo_reinforce"):
+        tot = np.zeros(6)
+        for perm in itertools.permutations(range(6)):
+            tot += OBJECTIVES[name].credit(pools_of(scores[:, perm], rewards[:, perm]), 3).numpy()[0]
+        np.testing.assert_allclose(tot / 720, 0.0, atol=1e-12)
+
+
+def _moments(G):
+    m = GradientMoments()
+    for g in G:
+        m.add([torch.as_tensor(g)])
+    return m.snr()
+
+
+def test_grad_snr_of_pure_noise_is_one_over_sqrt_B():
+    # mean of B iid zero-mean vectors: E||gbar||^2 = sigma^2 / B, while the deviations' unbiased
+    # variance estimates sigma^2 (standard sampling theory; common practice) -> SNR ~ 1/sqrt(B)
+    rng = np.random.default_rng(1)
+    for B in (4, 16, 64):
+        G = rng.normal(size=(B, 20000))
+        assert _moments(G) == pytest.approx(1 / math.sqrt(B), rel=0.05)
+    # signal with ||mu||^2 = sigma^2 (per-prompt noise norm): E SNR^2 ~ 1 + 1/B
+    G = rng.normal(size=(16, 20000)) + 1.0
+    assert _moments(G) == pytest.approx(math.sqrt(1 + 1 / 16), rel=0.03)
+    # the streamed sums against the formula on the stored vectors (numpy)
+    G = rng.normal(size=(8, 50)) + 0.3
+    mean = G.mean(0)
+    direct = np.linalg.norm(mean) / math.sqrt(((G - mean) ** 2).sum() / 7)
+    assert _moments(G) == pytest.approx(direct, rel=1e-10)
+
+
+def _tiny_run(tmp_path, **kw):
+    from bonft.trainer.loop import build_run
+
+    torch.set_num_threads(1)
+    cfg = from_dict({**dict(layers=1, width=32, heads=2, max_positions=48, n_train=32, n_eval=4, rl_steps=2,
+                            prompts_per_step=4, n=4, k=2, max_new_tokens=5, verifier="proxy",
+                            run_dir=str(tmp_path / "r")), **kw})
+    return build_run(cfg)
+
+
+@pytest.mark.parametrize("objective", ["pass_at_k", "best_of_k_sft"])
+def test_snr_uses_the_steps_own_per_prompt_gradients(tmp_path, monkeypatch, objective):
+    import bonft.trainer.steps as S
+    from bonft.trainer.measure import Stopwatch
+
+    run = _tiny_run(tmp_path, objective=objective, snr_every=1, reward_source="scores")
+    run.verifiers["train"] = lambda ps, rs: np.array([float(len(r) % 2) for r in rs])  # mixed outcomes at random init
+    seen = []
+    monkeypatch.setattr(S, "GradientMoments", lambda: seen.append(GradientMoments()) or seen[-1])
+    run.module.zero_grad(set_to_none=True)
+    clock = Stopwatch()
+    rec = S.rl_step(run, 0, clock)
+    (m,) = seen
+    assert m.count == 4 and rec["grad_snr"] == pytest.approx(m.snr()) and 0 < rec["grad_snr"] < 10
+    # the step's gradient is the mean of the per-prompt gradients the SNR is computed from
+    params = [p for p in run.module.parameters() if p.requires_grad]
+    for p, tot in zip(params, m.total):
+        torch.testing.assert_close(p.grad.double(), tot / 4, atol=1e-7, rtol=1e-4)
+    assert sum(float(p.grad.abs().sum()) for p in params) > 1e-3  # a real gradient, not zeros
+    assert clock.totals["snr"] > 0 and "grad_snr" not in S.rl_step(_tiny_run(tmp_path, snr_every=2), 1, Stopwatch())
+
+
+def test_placebo_step_moves_credit_not_the_pools(tmp_path):
+    from bonft.trainer.measure import Stopwatch
+    from bonft.trainer.steps import rl_step
+
+    recs = []
+    for placebo in (False, True):
+        run = _tiny_run(tmp_path, objective="best_of_k", placebo=placebo, n=8, reward_source="scores")
+        run.verifiers["train"] = lambda ps, rs: np.array([float(len(r)) for r in rs])  # varied scores at random init
+        recs.append(rl_step(run, 0, Stopwatch()))
+    plain, placebo = recs
+    # the same samples (same weights and seeds): same reward and pool value, different credit assignment
+    assert placebo["reward"] == plain["reward"] and placebo["info/pool_value"] == pytest.approx(plain["info/pool_value"])
+    assert placebo["loss"] != pytest.approx(plain["loss"])
+
+
+def test_optimizer_choice(tmp_path):
+    from bonft.trainer.steps import make_optimizer
+
+    run = _tiny_run(tmp_path, optimizer="sgd", lr=0.1)
+    assert isinstance(make_optimizer(run, "sft"), torch.optim.AdamW)  # the warm start is always AdamW
+    opt = make_optimizer(run, "rl")
+    assert isinstance(opt, torch.optim.SGD)
+    p = next(run.module.parameters())
+    before = p.detach().clone()
+    for q in run.module.parameters():
+        q.grad = torch.full_like(q, 0.5)
+    opt.step()
+    # plain SGD: theta <- theta - lr * g (Robbins & Monro 1951)
+    torch.testing.assert_close(p.detach(), before - 0.1 * 0.5)
+    run = _tiny_run(tmp_path, adam_eps=1e-3)
+    assert make_optimizer(run, "rl").param_groups[0]["eps"] == 1e-3
