@@ -213,6 +213,10 @@ def test_wire_rebuilds_plain_values_and_refuses_anything_else():
     assert back == value[:-2] + [{"a": 2, "b": 1}, 0]
     assert type(back[-2]) is dict and type(back[-1]) is int  # subclasses arrive as their base value
     assert math.copysign(1, back[3]) == -1 and math.isnan(wire_decode(["f", "nan"], None))
+    import numpy as np
+
+    scalars = wire_decode(wire_encode([np.int64(5), np.float32(0.5), np.bool_(True)], no_ref), None)
+    assert scalars == [5, 0.5, True] and [type(x) for x in scalars] == [int, float, bool]
     assert wire_decode(["h", 7, "Thing"], lambda ref, t: (ref, t)) == (7, "Thing")
     with pytest.raises(TypeError, match="function"):
         wire_encode([len, lambda: 0], no_ref)

@@ -22,7 +22,8 @@ Values, each a JSON list ``[tag, ...]``::
     ["h", ref, "typename"] a reference to an object that stays in the solution's process
 
 Subclasses of these types travel as their base value (a ``Counter`` arrives
-as a ``dict``, an ``int`` subclass as a plain ``int``).
+as a ``dict``, an ``int`` subclass as a plain ``int``), numpy scalars as
+their Python value (``numpy.int64(5)`` as ``5``).
 """
 import base64
 import json
@@ -135,7 +136,11 @@ def wire_encode(value, ref_of, depth=0):
         return ["S", [wire_encode(v, ref_of, d) for v in set.__iter__(value)]]
     import sys
 
-    fractions, decimal = sys.modules.get("fractions"), sys.modules.get("decimal")
+    fractions, decimal, numpy = sys.modules.get("fractions"), sys.modules.get("decimal"), sys.modules.get("numpy")
+    if numpy is not None and isinstance(value, numpy.generic):  # a numpy scalar: its Python value
+        item = value.item()
+        if not isinstance(item, numpy.generic):
+            return wire_encode(item, ref_of, d)
     if fractions is not None and isinstance(value, fractions.Fraction):
         return ["q", _hexint(int(value.numerator)), _hexint(int(value.denominator))]
     if decimal is not None and isinstance(value, decimal.Decimal):
