@@ -171,8 +171,8 @@ def run(args) -> int:
         from bonft.trainer.models import load_model, pick_device
         from bonft.plan.from_model import plan_model
 
+        prompts, verifier, vname = _prompts_and_verifier(args)  # the user's files first: errors before a slow load
         model, tokenizer = load_model(args.model, device=pick_device(args.device))
-        prompts, verifier, vname = _prompts_and_verifier(args)
         temps = temps or parse_list("--temperatures", DEFAULT_TEMPERATURES, float)
         res, info = plan_model(model, tokenizer, prompts, verifier, temperatures=temps, n=args.n, seed=args.seed,
                                top_p=args.top_p, max_new_tokens=args.max_new_tokens, batch_size=args.batch_size,

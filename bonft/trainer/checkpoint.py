@@ -289,10 +289,13 @@ def load_state(ckpt: str | Path) -> dict:
         raise FileNotFoundError(f"not a bonft checkpoint (no state.pt): {ckpt}")
     verify_checkpoint(ckpt, only=("state.pt",))
     try:
-        return torch.load(path, map_location="cpu", weights_only=True)
+        with warnings.catch_warnings():  # torch's note on the pickle protocol of a foreign file adds nothing here
+            warnings.simplefilter("ignore", UserWarning)
+            return torch.load(path, map_location="cpu", weights_only=True)
     except pickle.UnpicklingError as e:
-        first = str(e).strip().splitlines()[0] if str(e).strip() else type(e).__name__
-        raise CheckpointError(f"refusing {path}: it holds objects other than tensors and plain values, and bonft "
-                              f"never unpickles those (they can run code); was it written by bonft 0.2? ({first})") from None
+        found = re.search(r"WeightsUnpickler error:\s*(.+?)\s*(?:Check the documentation|$)", str(e), re.S)
+        what = " ".join(found.group(1).split()) if found else type(e).__name__
+        raise CheckpointError(f"refusing {path}: it holds objects other than tensors and plain values ({what}); "
+                              f"bonft never unpickles those, since loading them can run code. Was it written by bonft 0.2?") from None
     except (RuntimeError, EOFError, OSError) as e:
         raise CheckpointError(f"checkpoint {Path(ckpt)} is damaged: state.pt cannot be read ({e})") from None

@@ -1,0 +1,244 @@
+"""Every user error of the command line ends in one clear line on stderr, never a Python traceback (issue 14).
+
+Each case runs ``bonft`` the way the console script does (``main(argv)``); an exception escaping
+``main`` is printed as the interpreter would print it, so "Traceback" in stderr means a raw
+traceback reached the user. Two cases run in a real subprocess: a closed pipe (``| head``) and a
+sample of the error cases, to check the console entry point itself.
+"""
+import contextlib
+import hashlib
+import io
+import json
+import os
+import pickle
+import re
+import shutil
+import subprocess
+import sys
+import traceback
+from pathlib import Path
+
+import pytest
+
+from bonft.cli.main import main
+from bonft.trainer.config import from_dict, to_toml
+
+RUN = dict(layers=1, width=16, heads=2, max_positions=40, n_train=16, n_eval=2, sft_steps=0, rl_steps=2,
+           prompts_per_step=2, n=2, k=2, lr=1e-2, eval_n=2, eval_ks=[1], n_boot=10, log_every=1, save_every=1,
+           keep_checkpoints=2, max_new_tokens=4, plots=False, eval_at_start=False, threads=1)
+
+
+def bonft(*argv) -> tuple[int, str, str]:
+    """(exit status, stdout, stderr) of ``bonft ARGV``, run in this process."""
+    out, err = io.StringIO(), io.StringIO()
+    with contextlib.redirect_stdout(out), contextlib.redirect_stderr(err):
+        try:
+            code = main([str(a) for a in argv])
+        except SystemExit as e:
+            code = e.code
+        except BaseException:  # what the interpreter would show the user
+            traceback.print_exc()
+            code = 1
+    return code, out.getvalue(), err.getvalue()
+
+
+def expect_error(argv, pattern: str) -> str:
+    code, _, err = bonft(*argv)
+    assert "Traceback" not in err, err
+    assert code == 2, (code, err)
+    lines = [ln for ln in err.splitlines() if ln.strip()]
+    assert len(lines) == 1 and lines[0].startswith(f"bonft {argv[0]}: error: "), err
+    assert re.search(pattern, lines[0]), lines[0]
+    return lines[0]
+
+
+# ----------------------------------------------------------------------------- files
+@pytest.fixture(scope="module")
+def files(tmp_path_factory):
+    d = tmp_path_factory.mktemp("files")
+    ok = '{"prompt_id": 1, "score": 1, "reward": 1, "temperature": 1.0, "n_tokens": 3}\n'
+    (d / "bad8.jsonl").write_bytes(ok.encode() + b'{"prompt_id": 2, "score": 1, "reward": \xff1}\n')
+    (d / "deep.jsonl").write_text(ok + '{"prompt_id": ' + "[" * 100_000 + "]" * 100_000 + "}\n")
+    rows = [{"prompt_id": p, "score": s, "reward": s, "temperature": 1.0, "n_tokens": 0} for p in (1, 2) for s in (0, 1)]
+    (d / "zero_tokens.jsonl").write_text("".join(json.dumps(r) + "\n" for r in rows))
+    (d / "neg_tokens.jsonl").write_text(ok + ok.replace('"n_tokens": 3', '"n_tokens": -3'))
+    twice = "".join(json.dumps({"prompt_id": p, "score": s, "reward": s}) + "\n" for p in (1, 2) for s in (0, 1))
+    (d / "twice.jsonl").write_text(twice + twice)  # a file concatenated with itself
+    (d / "one_prompt.jsonl").write_text("".join(json.dumps({"prompt_id": "a", "score": s, "reward": r}) + "\n"
+                                                for s, r in ((0.9, 1), (0.2, 0), (0.5, 1), (0.1, 0))))
+    (d / "exact.json").write_text('{"scores": [1, 2], "rewards": [0, 1],\n  "logits": [0, 0}')
+    (d / "prompts.jsonl").write_text('{"prompt": "lamps 3 ?", "answer": "3"}\n{"prompt": "mugs 2 ?", "answer": 2\n')
+    (d / "prompts8.jsonl").write_bytes(b'{"prompt": "lamps 3 ?", "answer": "3"}\n{"prompt": "caf\xe9", "answer": "1"}\n')
+    (d / "recipe.toml").write_text(to_toml(from_dict(RUN)))
+    (d / "not.toml").write_text("rl_steps = = 3\n")
+    (d / "a_dir").mkdir()
+    return d
+
+
+@pytest.fixture(scope="module")
+def trained(tmp_path_factory):
+    """A finished tiny run with checkpoints step-1 and step-2 (a source for damaged copies)."""
+    from bonft.trainer.loop import train
+
+    run = tmp_path_factory.mktemp("trained") / "run"
+    train(from_dict({**RUN, "run_dir": str(run)}), progress=False)
+    return run
+
+
+def damaged_copy(trained: Path, dest: Path, *, which=("step-00000002",), remove="model/model.safetensors") -> Path:
+    shutil.copytree(trained, dest)
+    for name in which:
+        target = dest / "checkpoints" / name / remove
+        shutil.rmtree(target) if target.is_dir() else target.write_bytes(target.read_bytes()[:10])
+    return dest
+
+
+@pytest.fixture(scope="module")
+def model_without_tokenizer(tmp_path_factory):
+    from bonft.tasks import build_tokenizer
+    from bonft.trainer.models import build_tiny_model
+
+    d = tmp_path_factory.mktemp("bare") / "model"
+    build_tiny_model("gpt2", vocab_size=len(build_tokenizer()), layers=1, width=16, heads=2).save_pretrained(d)
+    return d
+
+
+# ----------------------------------------------------------------------------- the cases
+def test_pool_files(files):
+    expect_error(["estimate", files / "bad8.jsonl"], r"bad8.jsonl line 2: not UTF-8 text \(byte 0xff at column 40\)")
+    expect_error(["estimate", files / "deep.jsonl"], r"deep.jsonl line 2: JSON nested too deeply")
+    expect_error(["estimate", files / "missing.jsonl"], r"POOLS file not found: .*missing.jsonl")
+    expect_error(["plan", "--samples", files / "neg_tokens.jsonl"], r"neg_tokens.jsonl line 2: field 'n_tokens' must be >= 0 tokens, got -3")
+    expect_error(["plan", "--samples", files / "deep.jsonl"], r"deep.jsonl line 2: JSON nested too deeply")
+
+
+def test_too_many_bootstrap_replicates(files):
+    expect_error(["estimate", "--example", "--boot", "100000000000"],
+                 r"--boot must be between 1 and 1,000,000 bootstrap replicates, got 100,000,000,000")
+    expect_error(["plan", "--samples", files / "zero_tokens.jsonl", "--boot", "100000000000"], r"--boot must be between 1")
+    expect_error(["train", files / "recipe.toml", "--set", "n_boot=100000000000"], r"n_boot must be <= 1000000, got n_boot=100000000000")
+
+
+def test_token_budget_with_zero_lengths_says_so(files):
+    expect_error(["plan", "--samples", files / "zero_tokens.jsonl", "--budget-tokens", "100"],
+                 r"--budget-tokens needs positive response lengths, but field 'n_tokens' of .*zero_tokens.jsonl "
+                 r"averages 0 tokens at temperature 1")
+    expect_error(["plan", "--samples", files / "twice.jsonl", "--budget-tokens", "100", "--allow-duplicates"],
+                 r"--budget-tokens needs response lengths: .*twice.jsonl has no 'n_tokens' field")
+
+
+def test_exact_file_that_is_not_json(files):
+    expect_error(["plan", "--exact", files / "exact.json"], r"--exact file .*exact.json must hold one JSON object in UTF-8 \(line 2, column")
+
+
+def test_repeated_rows_warn_with_their_count_and_the_flag_silences_it(files):
+    code, out, err = bonft("estimate", files / "twice.jsonl")
+    assert code == 0 and "Traceback" not in err
+    assert err.strip() == ("bonft estimate: warning: twice.jsonl: 4 of 8 rows repeat an earlier row exactly (line 5 repeats "
+                           "line 1); a file concatenated with itself doubles its pools. If they are distinct samples that "
+                           "happen to be identical, allow them (duplicates='allow', --allow-duplicates on the command line)")
+    code, out, err = bonft("estimate", files / "twice.jsonl", "--allow-duplicates")
+    assert code == 0 and err == ""
+
+
+def test_one_prompt_prints_no_interval(files):
+    code, out, err = bonft("estimate", files / "one_prompt.jsonl", "--ks", "1,2")
+    assert code == 0 and err == ""
+    rows = [ln for ln in out.splitlines() if re.match(r"\s+[12]\s", ln)]
+    assert len(rows) == 2 and all(ln.count("n/a") == 2 and "[" not in ln for ln in rows), out
+    assert "intervals n/a: 1 prompt(s); a bootstrap over prompts needs at least 10 (see docs/estimate.md)" in out
+    # best-of-1 is the pool's mean reward: (1 + 0 + 1 + 0) / 4 = 0.5, printed even without an interval
+    assert re.search(r"^\s+1\s+0\.5000\s", rows[0]), rows[0]
+
+
+def test_output_path_that_is_a_directory(files):
+    expect_error(["estimate", "--example", "--json", files / "a_dir"], r"(Is a directory|Directory not empty|File exists)")
+
+
+def test_recipes(files):
+    expect_error(["train", files / "nope.toml"], r"recipe not found: .*nope.toml")
+    expect_error(["train", files / "not.toml"], r"not.toml: not valid TOML")
+    expect_error(["train", files / "recipe.toml", "--set", "n_train=100000000"],
+                 r"n_train \+ n_eval asks for 75,000,002 distinct 'easy' prompts of task 'ledger', but it makes about 1\d,\d{3}")
+
+
+def test_context_too_short_is_refused_before_any_work(files, tmp_path):
+    for arch in ("gpt2", "llama"):
+        out = tmp_path / arch
+        expect_error(["train", files / "recipe.toml", "--set", "max_positions=4", "--set", f"arch={arch}", "--out", out],
+                     r"max_positions must fit the longest prompt plus max_new_tokens: prompt '.*' takes \d+ tokens "
+                     r"\+ max_new_tokens=4 = \d+ > 4 positions of the model; raise max_positions")
+        assert not (out / "checkpoints").exists() and not (out / "metrics.jsonl").exists()
+
+
+def test_malformed_prompts_files(files, tmp_path, trained):
+    for name, pattern in (("prompts.jsonl", r"prompts.jsonl line 2: not valid JSON \(Expecting ',' delimiter"),
+                          ("prompts8.jsonl", r"prompts8.jsonl line 2: not UTF-8 text \(byte 0xe9\)")):
+        expect_error(["train", files / "recipe.toml", "--set", "task=jsonl", "--set", f"prompts_file={files / name}",
+                      "--out", tmp_path / name], pattern)
+        expect_error(["plan", "--model", trained, "--prompts", files / name, "--n", "2"], pattern)
+
+
+def test_model_directory_without_its_tokenizer(model_without_tokenizer, trained, tmp_path):
+    expect_error(["plan", "--model", model_without_tokenizer, "--task", "ledger"],
+                 rf"no tokenizer for the model in '{model_without_tokenizer}': expected tokenizer files "
+                 r"\(tokenizer_config.json, tokenizer.json\)")
+    run = damaged_copy(trained, tmp_path / "no_tok", which=("step-00000001", "step-00000002"), remove="tokenizer")
+    expect_error(["eval", run, "--n", "2", "--ks", "1"], r"no good checkpoint in .*checkpoints: checkpoint .*step-00000002 is damaged: "
+                                           r"tokenizer/\S+ is missing")
+
+
+def test_damaged_newest_checkpoint_falls_back_with_one_warning(trained, tmp_path):
+    run = damaged_copy(trained, tmp_path / "newest_bad")
+    code, out, err = bonft("eval", run, "--n", "2", "--ks", "1,2")
+    assert code == 0 and "Traceback" not in err, err
+    warn = [ln for ln in err.splitlines() if "warning" in ln]
+    assert len(warn) == 1 and re.match(r"bonft eval: warning: checkpoint \S+step-00000002 is damaged: model/model.safetensors "
+                                       r"has 10 bytes, the manifest says \d+ \(truncated or overwritten\); using the newest "
+                                       r"good checkpoint \S+step-00000001 instead$", warn[0]), err
+    assert out.startswith(str(run / "checkpoints" / "step-00000001"))
+    code, out, err = bonft("sample", run, "--n", "2", "-o", tmp_path / "s.jsonl")
+    assert code == 0 and "step-00000002 is damaged" in err and "Traceback" not in err
+    rows = [json.loads(ln) for ln in (tmp_path / "s.jsonl").read_text().splitlines()]
+    assert [r["sample"] for r in rows] == [0, 1, 0, 1]  # a sample index: identical answers are not repeated rows
+    all_bad = damaged_copy(trained, tmp_path / "all_bad", which=("step-00000001", "step-00000002"))
+    for cmd in (["eval", all_bad, "--n", "2", "--ks", "1"], ["sample", all_bad, "-o", tmp_path / "t.jsonl"], ["plan", "--model", all_bad, "--task", "ledger"],
+                ["train", all_bad / "config.toml", "--resume", "--out", all_bad]):
+        expect_error(cmd, r"no good checkpoint in \S+checkpoints: checkpoint \S+step-00000002 is damaged: .*; "
+                          r"checkpoint \S+step-00000001 is damaged: model/model.safetensors has 10 bytes")
+
+
+class _Payload:
+    marker = ""
+
+    def __reduce__(self):
+        return (os.mkdir, (self.marker,))
+
+
+def test_resume_refuses_a_crafted_state_pickle(trained, tmp_path):
+    run = tmp_path / "crafted"
+    shutil.copytree(trained, run)
+    shutil.rmtree(run / "checkpoints" / "step-00000002")
+    ckpt = run / "checkpoints" / "step-00000001"
+    _Payload.marker = str(tmp_path / "pwned")
+    (ckpt / "state.pt").write_bytes(pickle.dumps({"step": 1, "extra": _Payload()}))
+    man = json.loads((ckpt / "manifest.json").read_text())
+    data = (ckpt / "state.pt").read_bytes()
+    man["files"]["state.pt"] = {"bytes": len(data), "sha256": hashlib.sha256(data).hexdigest()}
+    (ckpt / "manifest.json").write_text(json.dumps(man))
+    expect_error(["train", run / "config.toml", "--resume", "--out", run],
+                 r"refusing \S+state.pt: it holds objects other than tensors and plain values")
+    assert not (tmp_path / "pwned").exists()
+
+
+# ----------------------------------------------------------------------------- a real process
+def test_console_entry_point_closed_pipe_and_errors(files):
+    cmd = f"{sys.executable} -m bonft.cli estimate --example --boot 20 | head -3"
+    res = subprocess.run(["bash", "-o", "pipefail", "-c", cmd], capture_output=True, text=True, timeout=120)
+    assert "Traceback" not in res.stderr and "BrokenPipeError" not in res.stderr, res.stderr
+    assert len(res.stdout.splitlines()) == 3 and res.stdout.startswith("samples: ")
+    assert res.returncode in (0, 141)  # 141 = 128 + SIGPIPE, what a command killed by the closed pipe reports
+    res = subprocess.run([sys.executable, "-m", "bonft.cli", "estimate", str(files / "bad8.jsonl")],
+                         capture_output=True, text=True, timeout=120)
+    assert res.returncode == 2 and res.stderr.startswith("bonft estimate: error: bad8.jsonl line 2: not UTF-8")
+    assert "Traceback" not in res.stderr
