@@ -49,8 +49,6 @@ import os
 import re
 import resource
 import secrets
-import select
-import selectors
 import shutil
 import signal
 import subprocess
@@ -66,11 +64,11 @@ from typing import Any, Mapping, Sequence
 import numpy as np
 
 from ._oslayer import LAYER_NAMES, env, make_preexec, rlimits
+from ._outcome import STATUSES, await_start, classify, collect  # noqa: F401 - STATUSES is public here
 from ._procs import kill_by_cwd, kill_uid, pids_of, user_tasks
 from .base import Verdicts
 from .scoring import check_batch
 
-STATUSES = ("pass", "fail", "timeout", "crashed", "limit-exceeded", "refused")
 _UID_BASE = 1_000_000_000  # sandbox uids: _UID_BASE + 2000 * (random run id) + 2 * worker slot (+ 1: tests)
 _HERE = os.path.dirname(os.path.abspath(__file__))
 _FRAME_CAP = 4 << 20  # bytes of one message between the two processes
@@ -116,18 +114,6 @@ def _boot(name: str) -> str:
         wire = f.read()
     with open(os.path.join(_HERE, name), encoding="utf-8") as f:
         return _PRELUDE + wire + "\n" + f.read()
-
-
-def _frame(buf: bytes) -> dict | None:
-    """The first complete frame in ``buf`` (the trusted tests' process wrote it), or None."""
-    head, sep, rest = buf.partition(b"\n")
-    if not sep or not head.isdigit() or len(rest) < int(head):
-        return None
-    try:
-        msg = json.loads(rest[:int(head)])
-    except ValueError:
-        return None
-    return msg if isinstance(msg, dict) else None
 
 
 def extract_code(text: str) -> str:
@@ -342,7 +328,7 @@ class CodeRunner:
                 procs.append((judge, juid, judgedir))
                 close(jcfg_r, ver_w, req_w, rep_r)
                 feed(jcfg_w, {"tests": tests, "frame_cap": _FRAME_CAP, "same_uid": cuid is None})
-                if cuid is None and not self._await_start(ver_r, t0):
+                if cuid is None and not await_start(ver_r, t0 + self.wall_time):
                     raise OSError("the tests' process did not start")
                 cand, layers = self._start_candidate(python, workdir, cuid, (ccfg_r, req_r, rep_w))
                 procs.append((cand, cuid, workdir))
@@ -350,7 +336,9 @@ class CodeRunner:
             except (OSError, subprocess.SubprocessError) as e:
                 return RunResult("crashed", f"runner: could not start {python}: {e}", None, "", "", 0.0, layers)
             feed(ccfg_w, {"solution": solution, "max_processes": self.max_processes, "frame_cap": _FRAME_CAP})
-            out, verdict, timed_out, over = self._collect(judge, cand, cuid, workdir, ver_r, t0)
+            out, verdict, timed_out, over = collect(
+                judge, cand, ver_r, deadline=t0 + self.wall_time, cap=self.max_output_bytes, frame_cap=_FRAME_CAP,
+                on_candidate_exit=lambda: self._kill(cand, cuid, workdir))
             if verdict and not over:
                 # both processes end by themselves after a verdict (and a candidate that died during
                 # the tests must report its own exit status): a short wait saves a kill sweep
@@ -371,71 +359,9 @@ class CodeRunner:
         wall = time.monotonic() - t0
         stdout = (out["c_out"] + out["j_out"]).decode("utf-8", "replace")
         stderr = (out["c_err"] + out["j_err"]).decode("utf-8", "replace")
-        status, reason = self._classify(verdict, rcs[1], rcs[0], timed_out, over)
+        status, reason = classify(verdict, rcs[1], rcs[0], timed_out=timed_out, over=over, wall_time=self.wall_time,
+                                  cpu_time=self.cpu_time, file_size_mb=self.file_size_mb)
         return RunResult(status, reason, rcs[1], stdout, stderr, wall, layers)
-
-    def _await_start(self, ver_r: int, t0: float) -> bool:
-        """Wait for the tests' process to say it is running (and non-dumpable) before the candidate starts."""
-        buf = b""
-        while time.monotonic() < t0 + self.wall_time:
-            r, _, _ = select.select([ver_r], [], [], 0.05)
-            if r:
-                chunk = os.read(ver_r, 1)
-                if not chunk:
-                    return False
-                buf += chunk
-                frame = _frame(buf)
-                if frame is not None:
-                    return frame.get("started") is True
-        return False
-
-    def _collect(self, judge, cand, cuid, workdir, ver_r: int, t0: float):
-        """Read both processes' output and the verdict until the verdict, the deadline or the output cap."""
-        cap = self.max_output_bytes
-        streams = {judge.stdout.fileno(): "j_out", judge.stderr.fileno(): "j_err",
-                   cand.stdout.fileno(): "c_out", cand.stderr.fileno(): "c_err", ver_r: "verdict"}
-        bufs = {name: bytearray() for name in streams.values()}
-        sel = selectors.DefaultSelector()
-        for fd, name in streams.items():
-            sel.register(fd, selectors.EVENT_READ, name)
-        deadline = t0 + self.wall_time
-        timed_out, over, verdict, done_at, cand_exit, killed = False, None, None, None, None, False
-        while len(sel.get_map()):
-            now = time.monotonic()
-            if now >= deadline:
-                timed_out = verdict is None
-                break
-            if done_at is not None and now - done_at > 0.1:
-                break  # the verdict is in; leftover processes may hold the output pipes
-            if cand_exit is None and cand.poll() is not None:
-                cand_exit = now
-            if verdict is None and cand_exit is not None and now - cand_exit > 0.2 and not killed:
-                self._kill(cand, cuid, workdir)  # its leftovers may hold the reply pipe open
-                killed = True
-            for key, _ in sel.select(timeout=min(0.05, deadline - now)):
-                chunk = os.read(key.fd, 65536)
-                if not chunk:
-                    sel.unregister(key.fd)
-                    if key.data == "verdict" and done_at is None:
-                        done_at = time.monotonic()
-                    continue
-                buf = bufs[key.data]
-                limit = _FRAME_CAP if key.data == "verdict" else cap
-                room = limit - len(buf)
-                buf += chunk[:max(room, 0)]
-                if len(chunk) > room and key.data != "verdict":
-                    over = f"{'stdout' if key.data.endswith('out') else 'stderr'} over max_output_bytes={cap}"
-                if key.data == "verdict" and verdict is None:
-                    verdict = _frame(bytes(buf))
-                    if verdict is not None:
-                        done_at = time.monotonic()
-            if over:
-                break
-        sel.close()
-        for p in (judge, cand):
-            p.stdout.close()
-            p.stderr.close()
-        return {k: bytes(v) for k, v in bufs.items() if k != "verdict"}, verdict or {}, timed_out, over
 
     def _kill(self, proc: subprocess.Popen, uid: int | None, workdir: str) -> None:
         try:  # the group outlives its leader while members are left
@@ -452,26 +378,6 @@ class CodeRunner:
                 time.sleep(0.01)
         else:
             kill_by_cwd(workdir)
-
-    def _classify(self, verdict: dict, rc: int | None, judge_rc: int | None, timed_out: bool,
-                  over: str | None) -> tuple[str, str | None]:
-        if over:
-            return "limit-exceeded", over
-        status, reason = verdict.get("status"), verdict.get("reason")
-        if status in STATUSES:
-            return status, reason
-        if timed_out:
-            return "timeout", f"wall time {self.wall_time:g} s"
-        if status != "gone":
-            return "crashed", f"the tests' process ended without a verdict (exit status {judge_rc})"
-        if rc is not None and rc < 0:
-            name = signal.Signals(-rc).name if -rc in signal.valid_signals() else f"signal {-rc}"
-            if name == "SIGXCPU":
-                return "limit-exceeded", f"cpu time limit {math.ceil(self.cpu_time)} s (SIGXCPU)"
-            if name == "SIGXFSZ":
-                return "limit-exceeded", f"file size limit {self.file_size_mb} MB (SIGXFSZ)"
-            return "crashed", f"killed by {name}"
-        return "crashed", f"exited with code {rc} before the tests finished"
 
     # -- interpreter ------------------------------------------------------------------------
     def _interpreter(self) -> str:
