@@ -1,0 +1,155 @@
+"""Bad input found before any work, with the file and the line (issue 14): pool files, prompt files,
+too few prompts for an interval, task sizes, the model's context, progress on long generation."""
+import json
+import warnings
+
+import numpy as np
+import pytest
+
+from bonft.estimate import MIN_BOOT_PROMPTS, summarize
+from bonft.io import DuplicateRowsWarning, read_samples
+from bonft.tasks import load_prompts_jsonl
+
+
+# ----------------------------------------------------------------------------- pool files
+def test_non_utf8_bytes_name_the_line_and_column(tmp_path):
+    p = tmp_path / "latin1.jsonl"
+    p.write_bytes(b'{"prompt_id": 1, "score": 1, "reward": 1}\n\n{"prompt_id": "caf\xe9", "score": 1, "reward": 1}\n')
+    with pytest.raises(ValueError, match=r"^latin1.jsonl line 3: not UTF-8 text \(byte 0xe9 at column 19\); save the file as UTF-8$"):
+        read_samples(p)
+
+
+def test_deeply_nested_line_is_a_value_error_not_recursion(tmp_path):
+    p = tmp_path / "deep.jsonl"
+    p.write_text('{"prompt_id": 1, "score": 1, "reward": 1}\n{"prompt_id": ' + "[" * 200_000 + "]" * 200_000 + "}\n")
+    with pytest.raises(ValueError, match=r"^deep.jsonl line 2: JSON nested too deeply"):
+        read_samples(p)
+
+
+def test_repeated_rows_warn_error_or_pass(tmp_path):
+    rows = [{"prompt_id": p, "score": s, "reward": s} for p in ("a", "b") for s in (0.25, 0.75)]
+    text = "".join(json.dumps(r) + "\n" for r in rows)
+    p = tmp_path / "twice.jsonl"
+    p.write_text(text + "\n" + text)  # concatenated with itself (and a blank line between)
+    with pytest.warns(DuplicateRowsWarning, match=r"twice.jsonl: 4 of 8 rows repeat an earlier row exactly \(line 6 repeats line 1\)"):
+        table = read_samples(p)
+    assert len(table) == 8  # a warning, not a silent fix: the rows are still all there
+    with pytest.raises(ValueError, match=r"4 of 8 rows repeat an earlier row exactly"):
+        read_samples(p, duplicates="error")
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        assert len(read_samples(p, duplicates="allow")) == 8
+        once = tmp_path / "once.jsonl"
+        once.write_text(text)
+        assert len(read_samples(once)) == 4  # no repeats, no warning
+    with pytest.raises(ValueError, match=r"duplicates must be one of \('warn', 'error', 'allow'\), got 'drop'"):
+        read_samples(p, duplicates="drop")
+
+
+def test_negative_token_counts_are_refused_with_the_line(tmp_path):
+    p = tmp_path / "t.jsonl"
+    p.write_text('{"prompt_id": 1, "score": 1, "reward": 1, "n_tokens": 4}\n{"prompt_id": 1, "score": 0, "reward": 0, "n_tokens": -1}\n')
+    with pytest.raises(ValueError, match=r"^t.jsonl line 2: field 'n_tokens' must be >= 0 tokens, got -1$"):
+        read_samples(p)
+
+
+# ----------------------------------------------------------------------------- prompt files
+@pytest.mark.parametrize("body,pattern", [
+    (b'{"prompt": "a", "answer": "1"}\n{"prompt": "b" "answer": "2"}\n', r"p.jsonl line 2: not valid JSON \(Expecting ',' delimiter at column 16\)"),
+    (b'{"prompt": "a", "answer": "1"}\n\n["b", "2"]\n', r"p.jsonl line 3: expected a JSON object with a prompt field, got list"),
+    (b'{"prompt": "a", "answer": "1"}\n{"prompt": "", "answer": "2"}\n', r"p.jsonl line 2: field 'prompt' must be a non-empty string, got ''"),
+    (b'{"prompt": "a", "answer": "1"}\n{"answer": "2"}\n', r"p.jsonl line 2: field 'prompt' must be a non-empty string, got None"),
+    (b'{"prompt": "a\xff"}\n', r"p.jsonl line 1: not UTF-8 text \(byte 0xff\)"),
+    (b'{"prompt": ' + b"[" * 100_000 + b"]" * 100_000 + b"}\n", r"p.jsonl line 1: JSON nested too deeply"),
+])
+def test_malformed_prompt_files_name_file_and_line(tmp_path, body, pattern):
+    p = tmp_path / "p.jsonl"
+    p.write_bytes(body)
+    with pytest.raises(ValueError, match=pattern):
+        load_prompts_jsonl(p)
+
+
+def test_prompt_file_fields_and_blank_lines(tmp_path):
+    p = tmp_path / "p.jsonl"
+    p.write_text('{"prompt": "2+2=", "answer": 4, "level": 1}\n\n{"prompt": "3+3="}\n')
+    a, b = load_prompts_jsonl(p)
+    assert (a.prompt, a.answer, a.reference, a.meta) == ("2+2=", "4", "4", {"level": 1})
+    assert (b.prompt, b.answer, b.reference) == ("3+3=", None, "")
+
+
+# ----------------------------------------------------------------------------- too few prompts for an interval
+def test_intervals_are_na_below_the_minimum_number_of_prompts():
+    rng = np.random.default_rng(0)
+    s, r = rng.random((3, 4)), (rng.random((3, 4)) < 0.5).astype(float)
+    few = summarize(s, r, ks=[1, 2], n_boot=200)
+    text = few.table()
+    assert text.count("n/a") == 2 * 2 + 1 and "[" not in text
+    assert f"intervals n/a: 3 prompt(s); a bootstrap over prompts needs at least {MIN_BOOT_PROMPTS}" in text
+    d = few.to_dict()
+    assert d["intervals_valid"] is False and "3 prompt(s)" in d["intervals_note"]
+    # the means are still printed: best-of-1 is the mean reward over every sample (Chen et al. 2021, pass@1)
+    assert f"{r.mean():.4f}" in text.splitlines()[2]
+    many = summarize(rng.random((MIN_BOOT_PROMPTS, 4)), np.ones((MIN_BOOT_PROMPTS, 4)), ks=[1], n_boot=50)
+    assert "n/a" not in many.table() and many.to_dict()["intervals_valid"] is True and "intervals_note" not in many.to_dict()
+
+
+# ----------------------------------------------------------------------------- sizes and context
+def _ledger_prompt_count(n_moves: int, max_qty: int, items: int = 8) -> int:
+    """Distinct easy ledger prompts by brute-force enumeration of every opening stock and move sequence."""
+    def paths(stock, left):
+        if left == 0:
+            return 1
+        total = sum(paths(stock + q, left - 1) for q in range(1, max_qty + 1))  # "got q"
+        if stock > 0:
+            total += sum(paths(stock - q, left - 1) for q in range(1, min(max_qty, stock) + 1))  # "sold q"
+        return total
+    return items * sum(paths(s, n_moves) for s in range(max_qty + 1))
+
+
+def test_task_sizes_beyond_what_the_task_makes_are_refused_before_generating():
+    from bonft.trainer.config import PROBE_DRAWS, from_dict
+
+    exact = _ledger_prompt_count(2, 9)
+    assert exact == 16200
+    with pytest.raises(ValueError) as err:
+        from_dict({"rl_steps": 1, "n_train": 100_000_000})
+    msg = str(err.value)
+    assert msg.startswith("n_train + n_eval asks for 75,000,150 distinct 'easy' prompts of task 'ledger', but it makes about ")
+    about = int(msg.split("makes about ")[1].split(" ")[0].replace(",", ""))
+    assert 0.9 * exact <= about <= 1.1 * exact  # the Chao1 estimate against the enumerated count
+    from_dict({"rl_steps": 1, "n_train": PROBE_DRAWS})  # small sizes are left to Task.split, which is exact
+    from_dict({"rl_steps": 1, "n_train": 200_000, "task_params": {"max_qty": 99}})  # a wide task has room
+
+
+def test_context_check_names_the_prompt_and_the_fix():
+    from bonft.tasks import build_tokenizer
+    from bonft.trainer.models import build_tiny_model, check_context, context_length
+
+    tok = build_tokenizer()
+    model = build_tiny_model("llama", vocab_size=len(tok), layers=1, width=16, heads=2, max_positions=12)
+    assert context_length(model) == 12
+    check_context(model, tok, ["ab ?"], max_new_tokens=7)  # BOS + 4 characters + 7 = 12
+    with pytest.raises(ValueError, match=r"prompt 'ab \?' takes 5 tokens \+ max_new_tokens=8 = 13 > 12 positions of the model; "
+                                         r"lower max_new_tokens to <= 7 or raise max_positions"):
+        check_context(model, tok, ["a", "ab ?"], max_new_tokens=8)
+    with pytest.raises(ValueError, match=r"with reference '1234567' and EOS takes 13 tokens > 12"):
+        check_context(model, tok, ["ab ?"], max_new_tokens=2, references=["1234567"])
+
+
+def test_long_generation_shows_progress():
+    from bonft.tasks.base import _progress
+
+    assert _progress(199_999, "x") is None  # well under a second of work: no bar
+    bar = _progress(200_000, "ledger 'easy' prompts")
+    try:
+        assert bar.total == 200_000 and bar.desc.startswith("ledger 'easy' prompts")
+    finally:
+        bar.close()
+
+
+def test_step_guard_is_a_no_op_for_one_process():
+    from bonft.trainer.distributed import DistContext, step_guard
+
+    with pytest.raises(RuntimeError, match="^boom$"):  # no peers: the error is not relabelled
+        with step_guard(DistContext(), step=3, run_dir=None):
+            raise RuntimeError("boom")
