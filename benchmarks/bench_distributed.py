@@ -57,7 +57,7 @@ def worker(args: argparse.Namespace) -> None:
                                 n=n, temperature=1.0, max_new_tokens=args.max_new_tokens)
         rewards = torch.tensor([[float(any(c.isdigit() for c in t)) for t in row] for row in smp.texts])  # (b, n)
         logp = sequence_logprobs(ddp, smp.prompt_tokens, smp.prompt_valid, smp.reply_tokens, smp.reply_valid)
-        loss, _ = reinforce_loss(logp, rewards, baseline="loo", mask=smp.reply_valid, reduction="sum")
+        loss = reinforce_loss(logp, rewards, baseline="loo", mask=smp.reply_valid, reduction="sum")
         (loss * scale).backward()
         opt.step()
 

@@ -66,7 +66,7 @@ def main() -> int:
         ks = np.arange(1, args.samples + 1)
         t0, c0 = time.perf_counter(), time.process_time()
         for s, r in pools:
-            bon_at_k_per_prompt(s, r, ks)
+            bon_at_k_per_prompt(s, r, ks=ks)
         t_est, c_est = time.perf_counter() - t0, time.process_time() - c0
         # baseline: one sort of every pool (the floor of an exact estimator)
         all_scores = np.stack([s for s, _ in pools])  # (T, P, n)

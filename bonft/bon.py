@@ -43,6 +43,8 @@ from bonft._checks import (
     check_probs,
     is_tensor,
 )
+from bonft._passk import pass_at_k_prob
+from bonft._ties import first_of_group, group_ids
 
 __all__ = [
     "softmax_policy",
@@ -140,9 +142,7 @@ def _log_gain(p: torch.Tensor, s: torch.Tensor, k: int) -> tuple[torch.Tensor, t
 
     ss, order = torch.sort(s2, dim=-1, stable=True)  # (B, V) ascending scores
     ps = p2.gather(-1, order)  # (B, V) probs in score order
-    new = torch.ones_like(ss, dtype=torch.bool)
-    new[:, 1:] = ss[:, 1:] != ss[:, :-1]
-    gid = new.long().cumsum(-1) - 1  # (B, V) tie-group index of each sorted outcome
+    gid = group_ids(first_of_group(ss))  # (B, V) tie-group index of each sorted outcome
     mass = torch.zeros_like(ps).scatter_add(-1, gid, ps)  # (B, V) P(G_j), trailing groups 0
     below = torch.cat([mass.new_zeros(B, 1), mass.cumsum(-1)[:, :-1]], dim=-1)  # (B, V) F_ per group
     PG = mass.gather(-1, gid)  # (B, V) P(G_v) per outcome
@@ -173,12 +173,17 @@ def _log_gain(p: torch.Tensor, s: torch.Tensor, k: int) -> tuple[torch.Tensor, t
 
 
 def softmax_policy(logits, *, temperature=1.0):
-    """Sampling policy of a softmax at a temperature.
+    r"""Sampling policy of a softmax at a temperature.
 
-    ``logits: (..., V) -> (..., V)``; ``pi(v) = exp(l_v / T) / sum_u exp(l_u / T)``.
+    Shape: ``logits (..., V) -> (..., V)``.
+
+    .. math:: \pi(v) = \frac{\exp(l_v / T)}{\sum_u \exp(l_u / T)}
+
     Entries of ``-inf`` (masked outcomes) get probability 0; each row needs at
     least one finite logit. float64, numpy in -> numpy out, torch in -> torch
     out (differentiable).
+
+    References: Bridle 1990 (softmax); temperature sampling is common practice.
     """
     T = check_positive("temperature", temperature)
     z = _as_tensor("logits", logits, None)
@@ -195,14 +200,16 @@ def softmax_policy(logits, *, temperature=1.0):
     return _out(probs, not is_tensor(logits))
 
 
-def bon_distribution(probs, scores, k):
-    """Distribution of the outcome best-of-k keeps.
+def bon_distribution(probs, scores, *, k):
+    r"""Distribution of the outcome best-of-k keeps.
 
-    ``probs: (..., V), scores: (..., V) or (V,) -> (..., V)`` (leading axes broadcast).
+    Shape: ``probs (..., V), scores (..., V) or (V,) -> (..., V)`` (leading axes broadcast).
 
-    ``pi_bon(v) = pi(v) / P(G_v) * (F(s_v)^k - F_(s_v)^k)`` with ties broken
-    uniformly among the tied samples; ``pi(v) = 0`` gives 0.
-    Chow et al. 2024, "Inference-Aware Fine-Tuning for Best-of-N Sampling in LLMs".
+    .. math:: \pi_{bon}(v) = \frac{\pi(v)}{P(G_v)}\big(F(s_v)^k - F_<(s_v)^k\big)
+
+    with ties broken uniformly among the tied samples; ``pi(v) = 0`` gives 0.
+
+    References: Chow et al. 2024, "Inference-Aware Fine-Tuning for Best-of-N Sampling in LLMs".
     """
     p, as_np = _check_probs(probs)
     s = _check_per_outcome("scores", scores, p)
@@ -211,12 +218,16 @@ def bon_distribution(probs, scores, k):
     return _out(pb * torch.exp(lg), as_np)
 
 
-def log_bon_distribution(probs, scores, k):
-    """``log pi_bon``: ``(..., V), (..., V) or (V,) -> (..., V)``, ``-inf`` where ``pi_bon = 0``.
+def log_bon_distribution(probs, scores, *, k):
+    r"""``log pi_bon``, ``-inf`` where ``pi_bon = 0``.
 
-    ``log pi_bon(v) = log pi(v) + k log F(s_v) + log(1 - (F_(s_v)/F(s_v))^k) - log P(G_v)``,
+    Shape: ``probs (..., V), scores (..., V) or (V,) -> (..., V)``.
+
+    .. math:: \log\pi_{bon}(v) = \log\pi(v) + k\log F(s_v) + \log\big(1 - (F_<(s_v)/F(s_v))^k\big) - \log P(G_v)
+
     finite for k up to 10^4 where :func:`bon_distribution` underflows to 0.
-    Chow et al. 2024.
+
+    References: Chow et al. 2024.
     """
     p, as_np = _check_probs(probs)
     s = _check_per_outcome("scores", scores, p)
@@ -229,13 +240,17 @@ def log_bon_distribution(probs, scores, k):
     return _out(out, as_np)
 
 
-def bon_value(probs, scores, rewards, k):
-    """Expected reward of the outcome best-of-k keeps.
+def bon_value(probs, scores, rewards, *, k):
+    r"""Expected reward of the outcome best-of-k keeps.
 
-    ``probs: (..., V), scores, rewards: (..., V) or (V,) -> (...)``.
-    ``V_k = sum_v pi_bon(v) R_v``; k = 1 gives ``E_pi[R]``. When the verifier
-    knows the reward (scores = rewards in {0, 1}) this is
-    ``bon_success(P(R = 1), k)``. Chow et al. 2024.
+    Shape: ``probs (..., V), scores, rewards (..., V) or (V,) -> (...)``.
+
+    .. math:: V_k = \sum_v \pi_{bon}(v) R_v
+
+    k = 1 gives ``E_pi[R]``. When the verifier knows the reward (scores =
+    rewards in {0, 1}) this is ``bon_success(P(R = 1), k=k)``.
+
+    References: Chow et al. 2024.
     """
     p, as_np = _check_probs(probs)
     s = _check_per_outcome("scores", scores, p)
@@ -245,12 +260,17 @@ def bon_value(probs, scores, rewards, k):
     return _out((pb * torch.exp(lg) * R).sum(-1), as_np)
 
 
-def bon_success(p, k):
-    """Chance that at least one of k independent tries succeeds.
+def bon_success(p, *, k):
+    r"""Chance that at least one of k independent tries succeeds.
 
-    ``p: (...) -> (...)``, ``1 - (1 - p)^k = -expm1(k log1p(-p))`` (pass@k of a
-    problem solved with chance p, Chen et al. 2021). Scalars give a float,
+    Shape: ``p (...) -> (...)``.
+
+    .. math:: 1 - (1 - p)^k = -\mathrm{expm1}(k\,\mathrm{log1p}(-p))
+
+    (pass@k of a problem solved with chance p). Scalars give a float,
     numpy gives numpy, torch gives a differentiable float64 tensor.
+
+    References: Chen et al. 2021, "Evaluating Large Language Models Trained on Code".
     """
     k = _check_k(k)
     scalar = isinstance(p, numbers.Real) and not isinstance(p, bool)
@@ -262,25 +282,24 @@ def bon_success(p, k):
     if t.numel() and bool(((td < 0) | (td > 1)).any()):
         bad = torch.nonzero((td < 0) | (td > 1))[0].tolist()
         raise ValueError(f"p must be in [0, 1], got {float(td[tuple(bad)])} at index {tuple(bad)}")
-    if k == 1:
-        out = t
-    else:
-        below1 = t < 1
-        t_s = torch.where(below1, t, torch.zeros_like(t))
-        out = torch.where(below1, -torch.expm1(k * torch.log1p(-t_s)), torch.ones_like(t))
+    out = t if k == 1 else pass_at_k_prob(t, k, torch)
     if scalar:
         return float(out)
     return _out(out, not is_tensor(p))
 
 
-def bon_kl(probs, scores, k):
-    """KL divergence of the best-of-k policy from the policy.
+def bon_kl(probs, scores, *, k):
+    r"""KL divergence of the best-of-k policy from the policy, in nats.
 
-    ``probs: (..., V), scores: (..., V) or (V,) -> (...)``,
-    ``KL(pi_bon || pi) = sum_v pi_bon(v) log(pi_bon(v) / pi(v))``, in nats.
+    Shape: ``probs (..., V), scores (..., V) or (V,) -> (...)``.
+
+    .. math:: \mathrm{KL}(\pi_{bon}\,\|\,\pi) = \sum_v \pi_{bon}(v)\log\frac{\pi_{bon}(v)}{\pi(v)}
+
     Never above ``log k - (k - 1)/k``, reached as the policy spreads over many
-    distinct scores (Beirami et al. 2024, "Theoretical guarantees on the
-    best-of-n alignment policy"). Chow et al. 2024 for ``pi_bon``.
+    distinct scores.
+
+    References: Beirami et al. 2024, "Theoretical guarantees on the best-of-n
+    alignment policy"; Chow et al. 2024 for ``pi_bon``.
     """
     p, as_np = _check_probs(probs)
     s = _check_per_outcome("scores", scores, p)

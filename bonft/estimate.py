@@ -22,8 +22,10 @@ served quantity); Walder & Karkhanis 2025 (U-statistic pass@k).
 
 Cost: one sort per prompt (``O(n log n)``) plus ``O(n)`` per requested k, with
 no Python loop over samples or prompts (ragged pools are grouped by size).
-Binomial ratios go through log-gamma (:mod:`bonft._binom`), so ``n = 10^5``,
-``k = 10^4`` stay finite.
+The weights come from :mod:`bonft._ustat` and pass@k from :mod:`bonft._passk`
+(no log-gamma differences), so ``n = 10^5, k = 10^4`` stay finite and pass@k
+is exact to ~1e-14 relative for any n in int64. Hyper-parameters (``k``,
+``ks``, ...) are keyword-only.
 
 Caution: best-of-k with a verifier measures what the verifier rewards. Compare
 it to the oracle curve; a large gap means the verifier can be gamed (length,
@@ -38,7 +40,7 @@ from typing import Any
 
 import numpy as np
 
-from bonft._binom import log_comb
+from bonft._boot import resample_counts
 from bonft._checks import (
     as_float_array,
     check_finite,
@@ -49,6 +51,9 @@ from bonft._checks import (
     check_same_shape,
     is_tensor,
 )
+from bonft._passk import INT64_MAX, pass_at_k_counts
+from bonft._ties import first_of_group, tie_means
+from bonft._ustat import rank_weights
 
 __all__ = [
     "bon_at_k",
@@ -63,18 +68,6 @@ __all__ = [
 
 
 # ----------------------------------------------------------------------------- math core (trusts inputs)
-
-
-def _rank_weights(n: int, ks: np.ndarray) -> np.ndarray:
-    """(K,) -> (K, n): weight of the sample at ascending rank i (0-based) in best-of-k.
-
-    w[k, i] = C(i, k-1) / C(n, k); each row sums to 1 (hockey-stick identity),
-    we renormalise to remove the last rounding of the log-gamma route.
-    """
-    i = np.arange(n, dtype=np.float64)[None, :]  # (1, n) 0-based rank = (1-based rank) - 1
-    kk = ks.astype(np.float64)[:, None]  # (K, 1)
-    w = np.exp(log_comb(i, kk - 1) - log_comb(float(n), kk))  # (K, n)
-    return w / w.sum(axis=1, keepdims=True)
 
 
 _FLIP = np.int64(0x7FFFFFFFFFFFFFFF)
@@ -127,27 +120,14 @@ def _sort_rewards_by_score(scores: np.ndarray, rewards: np.ndarray):
     return r, rows, s_rows
 
 
-def _tie_means(r: np.ndarray, s: np.ndarray) -> np.ndarray:
-    """(T, n) rewards and sorted scores -> rewards with each tied group replaced by its mean."""
-    T, n = s.shape
-    new = np.ones((T, n), dtype=bool)  # True where a tie group starts
-    new[:, 1:] = s[:, 1:] != s[:, :-1]
-    if new.all():
-        return r
-    starts = np.flatnonzero(new.ravel())  # group starts in the flattened (T*n,) view
-    sums = np.add.reduceat(r.ravel(), starts)
-    counts = np.diff(np.append(starts, T * n))
-    return np.repeat(sums / counts, counts).reshape(T, n)  # (T*n,) -> (T, n)
-
-
 def _bon_matrix(scores: np.ndarray, rewards: np.ndarray, ks: np.ndarray) -> np.ndarray:
     """scores, rewards: (P, n) float64, ks: (K,) int -> (P, K) best-of-k values."""
     P, n = scores.shape
     r, rows, s_rows = _sort_rewards_by_score(scores, rewards)  # (P, n) rewards in score order
     if len(rows):
         # ties: every member of a tied group gets the group's mean reward
-        r[rows] = _tie_means(r[rows], s_rows)
-    w = np.ascontiguousarray(_rank_weights(n, ks).T)  # (n, K)
+        r[rows] = tie_means(r[rows], first_of_group(s_rows))
+    w = np.ascontiguousarray(rank_weights(n, ks).T)  # (n, K)
     return r @ w  # (P, n) @ (n, K) -> (P, K)
 
 
@@ -221,16 +201,18 @@ def _n_min(s) -> int:
 # ----------------------------------------------------------------------------- public estimators
 
 
-def bon_at_k(scores, rewards, k):
-    """Unbiased best-of-k value of one prompt's pool: ``(n,), (n,) -> float`` (or ``(K,)`` for a sequence of k).
+def bon_at_k(scores, rewards, *, k):
+    r"""Unbiased best-of-k value of one prompt's pool.
 
-    bon@k = sum_i C(i-1, k-1) / C(n, k) * rbar_(i), samples sorted ascending by
-    score, ``rbar`` the mean reward of the tied group (uniform tie-breaking).
-    Chow et al. 2024; pass@k special case: Chen et al. 2021.
+    Shape: ``scores (n,), rewards (n,) -> float`` (``(K,)`` for a sequence of k).
 
-    scores:  (n,) verifier scores, higher is better (numpy, torch or list).
-    rewards: (n,) true rewards.
-    k:       int in [1, n], or a sequence of them.
+    .. math:: \widehat{\mathrm{bon}@k} = \sum_{i=1}^{n} \frac{\binom{i-1}{k-1}}{\binom nk}\,\bar r_{(i)}
+
+    samples sorted ascending by score, ``rbar`` the mean reward of the tied
+    group (uniform tie-breaking). ``k``: int in [1, n], or a sequence of them.
+
+    References: Chow et al. 2024, "Inference-Aware Fine-Tuning for Best-of-N
+    Sampling in LLMs"; pass@k special case: Chen et al. 2021.
     """
     s, r = _pool_pair(scores, rewards)
     ks, scalar = check_ks(k, len(s), name="k")
@@ -238,12 +220,18 @@ def bon_at_k(scores, rewards, k):
     return float(out[0]) if scalar else out
 
 
-def bon_at_k_per_prompt(scores, rewards, ks):
-    """Best-of-k value of every prompt: ``(P, n), (P, n) -> (P, K)`` (``(P,)`` when ``ks`` is an int).
+def bon_at_k_per_prompt(scores, rewards, *, ks):
+    r"""Best-of-k value of every prompt.
+
+    Shape: ``scores (P, n), rewards (P, n) -> (P, K)`` (``(P,)`` when ``ks`` is an int).
+
+    .. math:: V_{pk} = \sum_i \frac{\binom{i-1}{k-1}}{\binom nk}\,\bar r_{p,(i)}
 
     ``scores``/``rewards`` are 2-D arrays (every prompt has ``n`` samples) or
     two lists of 1-D arrays (ragged pools; each k must fit the smallest pool).
     Same estimator as :func:`bon_at_k`, per prompt, with no loop over prompts.
+
+    References: Chow et al. 2024; Chen et al. 2021.
     """
     s, r = _pools(scores, rewards)
     ks_arr, scalar = check_ks(ks, _n_min(s), name="ks")
@@ -251,38 +239,56 @@ def bon_at_k_per_prompt(scores, rewards, ks):
     return out[:, 0] if scalar else out
 
 
-def oracle_at_k_per_prompt(rewards, ks):
-    """Best true reward among k, averaged over k-subsets: ``(P, n) -> (P, K)``.
+def oracle_at_k_per_prompt(rewards, *, ks):
+    r"""Best true reward among k, averaged over k-subsets.
+
+    Shape: ``rewards (P, n) -> (P, K)`` (``(P,)`` when ``ks`` is an int).
+
+    .. math:: O_{pk} = \sum_i \frac{\binom{i-1}{k-1}}{\binom nk}\, r_{p,(i)} \quad\text{(sorted by reward)}
 
     Equals :func:`bon_at_k_per_prompt` with ``scores = rewards``; for binary
-    rewards it is pass@k (Chen et al. 2021), the ceiling any verifier can reach.
+    rewards it is pass@k, the ceiling any verifier can reach.
+
+    References: Chen et al. 2021, "Evaluating Large Language Models Trained on Code".
     """
     if _is_ragged_list(rewards):
-        return bon_at_k_per_prompt(rewards, rewards, ks)
+        return bon_at_k_per_prompt(rewards, rewards, ks=ks)
     r = as_float_array("rewards", rewards, ndim=2)
-    return bon_at_k_per_prompt(r, r, ks)
+    return bon_at_k_per_prompt(r, r, ks=ks)
 
 
 def _int_array(name: str, x: Any) -> np.ndarray:
+    """Ints (numpy, torch, Python, object arrays) -> int64; values beyond int64 are refused, not wrapped."""
     if is_tensor(x):
         x = x.detach().cpu().numpy()
-    arr = np.asarray(x)
+    arr = np.asarray(x) if not isinstance(x, int) or abs(x) <= INT64_MAX else np.asarray(x, dtype=object)
     if arr.dtype == bool or not (np.issubdtype(arr.dtype, np.integer) or arr.dtype == object):
         raise TypeError(f"{name} must hold ints, got dtype {arr.dtype}")
     if arr.dtype == object:
         for v in arr.ravel():
             check_int(name, v)
-        arr = arr.astype(np.int64)
+        big = [int(v) for v in arr.ravel() if abs(int(v)) > INT64_MAX]
+        if big:
+            raise ValueError(f"{name} must fit in int64 (|{name}| <= 2**63 - 1), got {name}={big[0]}")
+        return arr.astype(np.int64)
+    if arr.dtype == np.uint64 and arr.size and int(arr.max()) > INT64_MAX:
+        raise ValueError(f"{name} must fit in int64 (|{name}| <= 2**63 - 1), got {name}={int(arr.max())}")
     return arr.astype(np.int64)
 
 
-def pass_at_k(n, c, k):
-    """Unbiased pass@k from ``c`` correct among ``n`` samples (Chen et al. 2021), broadcast elementwise.
+def pass_at_k(n, c, *, k):
+    r"""Unbiased pass@k from ``c`` correct among ``n`` samples, broadcast elementwise.
 
-    pass@k = 1 - C(n-c, k) / C(n, k), computed as ``-expm1(log C(n-c,k) - log C(n,k))``.
+    Shape: ``n, c, k`` ints or broadcastable int arrays ``-> float`` (all
+    scalars) or an array of the broadcast shape; ``0 <= c <= n``, ``1 <= k <= n``.
 
-    n, c, k: ints or broadcastable int arrays with 0 <= c <= n and 1 <= k <= n.
-    Returns a float when all three are scalars, else an array of the broadcast shape.
+    .. math:: \mathrm{pass@}k = 1 - \binom{n-c}{k} \Big/ \binom nk
+
+    Exact to ~1e-14 relative for any n that fits in int64 (the ratio through
+    :func:`bonft._passk.log_miss`, no log-gamma differences: checked against
+    ``fractions`` up to n = 10^18); larger Python ints raise ``ValueError``.
+
+    References: Chen et al. 2021, "Evaluating Large Language Models Trained on Code".
     """
     scalar = all(np.ndim(v) == 0 for v in (n, c, k))
     n_, c_, k_ = (_int_array(nm, v) for nm, v in (("n", n), ("c", c), ("k", k)))
@@ -301,18 +307,23 @@ def pass_at_k(n, c, k):
         if bad.any():
             i = tuple(int(j) for j in np.argwhere(bad)[0]) if bad.ndim else ()
             raise ValueError(f"{what} (n={int(n_[i])}), got {name}={int((c_ if name == 'c' else k_)[i])}")
-    out = -np.expm1(log_comb(n_ - c_, k_) - log_comb(n_, k_))
+    out = pass_at_k_counts(n_, c_, k_)
     return float(out) if scalar else np.asarray(out, dtype=np.float64)
 
 
 def bootstrap_ci(values, *, confidence: float = 0.95, n_boot: int = 2000, seed: int = 0):
-    """Percentile bootstrap over prompts: ``values (P, K) -> (mean (K,), lo (K,), hi (K,))``.
+    """Percentile bootstrap over prompts.
+
+    Shape: ``values (P, K) -> (mean (K,), lo (K,), hi (K,))``; ``(P,)`` gives three floats.
 
     Each of ``n_boot`` replicates resamples the P prompts with replacement and
     takes the column means; ``lo``/``hi`` are the ``(1 -+ confidence)/2``
     quantiles of those means (Efron & Tibshirani 1993, percentile interval).
     ``mean`` is the plain mean over prompts. A 1-D ``values (P,)`` gives scalars.
-    Resampling is vectorised (counts matrix @ values), in chunks to bound memory.
+    Resampling is vectorised (counts matrix @ values, :mod:`bonft._boot`), in
+    chunks to bound memory.
+
+    References: Efron & Tibshirani 1993, "An Introduction to the Bootstrap".
     """
     v = as_float_array("values", values, ndim=(1, 2))
     check_nonempty("values", v)
@@ -328,10 +339,7 @@ def bootstrap_ci(values, *, confidence: float = 0.95, n_boot: int = 2000, seed: 
     chunk = max(1, min(n_boot, 4_000_000 // P))
     for b0 in range(0, n_boot, chunk):
         b = min(chunk, n_boot - b0)
-        idx = rng.integers(0, P, size=(b, P))  # (b, P) resampled prompt indices
-        flat = (idx + np.arange(b)[:, None] * P).ravel()  # offset each replicate's row
-        counts = np.bincount(flat, minlength=b * P).reshape(b, P)  # (b*P,) -> (b, P)
-        means[b0 : b0 + b] = counts @ V / P
+        means[b0 : b0 + b] = resample_counts(rng, P, b) @ V / P  # (b, P) counts: one matmul per chunk
     alpha = (1.0 - confidence) / 2.0
     lo, hi = np.quantile(means, [alpha, 1.0 - alpha], axis=0)
     mean = V.mean(axis=0)
@@ -433,11 +441,16 @@ class CurveSummary:
         return d
 
 
-def summarize(scores, rewards, ks=None, *, confidence: float = 0.95, n_boot: int = 2000, seed: int = 0) -> CurveSummary:
+def summarize(scores, rewards, *, ks=None, confidence: float = 0.95, n_boot: int = 2000,
+              seed: int = 0) -> CurveSummary:
     """Per-prompt best-of-k and oracle curves plus bootstrap CIs over prompts.
 
-    scores, rewards: (P, n) arrays or lists of 1-D arrays (ragged).
-    ks: int, sequence, or None for :func:`default_ks` of the smallest pool.
+    Shape: ``scores, rewards (P, n)`` arrays or lists of 1-D arrays (ragged)
+    ``-> CurveSummary`` with ``(K,)`` curves and ``(P, K)`` per-prompt values.
+    ``ks``: int, sequence, or None for :func:`default_ks` of the smallest pool.
+
+    References: Chow et al. 2024 (best-of-k); Chen et al. 2021 (pass@k);
+    Efron & Tibshirani 1993 (percentile bootstrap).
     """
     s, r = _pools(scores, rewards)
     n_min = _n_min(s)

@@ -1,16 +1,17 @@
-"""PyTorch losses for best-of-N-aware fine-tuning, built on :mod:`bonft.credit`.
+"""PyTorch losses for best-of-N-aware fine-tuning: a credit function + one policy-gradient core.
 
-Each loss is a scalar (or ``(B,)`` with ``reduction="none"``) whose gradient is
+Every named loss is :func:`policy_gradient_loss` applied to the credit of
+:mod:`bonft.credit` (no gradient through it), so its gradient is
 
     -(1/B) * sum_b sum_i w_bi * grad log pi(y_bi)       (reduction="mean")
 
-with the credit ``w`` of :mod:`bonft.credit` (no gradient through it), so
-minimising the loss ascends the objective averaged over prompts.
+and minimising it ascends the objective averaged over prompts. Plug your own
+credit into :func:`policy_gradient_loss` the same way.
 
 Log-probabilities come either per sequence, ``logprobs: (B, n)``, or per token,
-``logprobs: (B, n, T)`` with an optional ``mask: (B, n, T)`` (1 = response
-token, 0 = padding). Padding tokens change nothing, even if they hold NaN or
--inf; a sample whose mask row is all zero raises ``ValueError``.
+``logprobs: (B, n, T)`` with an optional ``mask: (B, n, T)`` (True/1 = response
+token, False/0 = padding). Padding tokens change nothing, even if they hold NaN
+or -inf.
 
 ``token_reduction``:
   * ``"sum"`` (default): the sequence log-prob is the sum of its token
@@ -22,18 +23,33 @@ token, 0 = padding). Padding tokens change nothing, even if they hold NaN or
     take smaller steps, so the expected gradient is ``E[g_hat/T_bar]``, not
     ``grad V / E[T]`` (length-normalised, biased). Needs token log-probs.
 
-KL penalty (common practice): with ``anchor_logprobs`` of the same shape as
-``logprobs`` the loss adds ``anchor_weight * (1/n) sum_i KL_i`` where ``KL_i``
-aggregates the per-token "k3" estimator ``exp(d) - d - 1``, ``d = ref - logp``
-(non-negative; from memory: J. Schulman's 2020 note "Approximating KL
+KL penalty to the anchor (common practice): with ``anchor_logprobs`` of the
+same shape as ``logprobs`` (the starting policy's log-probs of the same
+tokens) the loss adds ``anchor_weight * (1/n) sum_i KL_i`` where ``KL_i``
+aggregates the per-token "k3" estimator ``exp(d) - d - 1``, ``d = anchor -
+logp`` (non-negative; from memory: J. Schulman's 2020 note "Approximating KL
 divergence") with the same ``token_reduction``. Its *value* is an unbiased
-estimate of KL(pi || ref) per token on on-policy samples; its *gradient* as a
-loss has mean ``grad KL(ref || pi)`` (per token), which also pulls ``pi``
-towards the reference. ``info["kl"]`` reports the per-token mean of the k3
-value whenever ``anchor_logprobs`` is given.
+estimate of KL(pi || anchor) per token on on-policy samples; its *gradient*
+as a loss has mean ``grad KL(anchor || pi)`` (per token), which also pulls
+``pi`` towards the anchor.
 
 ``reduction``: ``"mean"`` divides the per-prompt losses by ``B`` (the number
 of prompts), ``"sum"`` adds them, ``"none"`` returns them, shape ``(B,)``.
+
+Return value: the loss tensor; with ``return_info=True`` a pair ``(loss,
+info)`` where ``info`` maps names to *detached tensors* (no ``float()``, so
+no device sync): ``credit_mean``, ``zero_credit_frac`` (prompts whose credit
+is all zero: no signal), ``pool_value`` (the objective's unbiased pool
+estimate), ``kl`` (per-token k3 value, when ``anchor_logprobs`` is given).
+
+Cost and checks: validation is O(B n) and reads no (B, n, T) tensor; credit
+is computed in float64 numpy on the host (scores and rewards come from
+verifiers) and copied to the log-probs' device once, so the hot path has no
+device sync when scores/rewards are host arrays. ``check_tokens=True`` adds
+the O(B n T) checks (a 0/1 mask, no empty response, finite log-probs under
+the mask; each a sync on an accelerator). Without it a non-finite log-prob
+under the mask gives a non-finite loss (never hidden): check the loss before
+the optimizer step, as the trainer does.
 
 Caution: these losses maximise what the verifier rewards. An imperfect
 verifier (learned reward model, weak unit tests) will be exploited (reward
@@ -45,25 +61,28 @@ from __future__ import annotations
 import numbers
 from typing import Any
 
+import numpy as np
 import torch
 from torch import Tensor
 
-from bonft._binom import log_comb_torch
 from bonft._checks import check_choice, check_k, is_tensor
-from bonft._credit_inputs import _as_tensor, _check_binary, _check_bool, _check_smoothing
-from bonft.credit import _bon_credit_t, _check_expert_reachable, _pass_credit_t, _reinforce_credit_t, _sft_credit_t
+from bonft._credit_inputs import as_host, check_bool
+from bonft._passk import pass_at_k_counts
+from bonft.credit import (
+    _bon_rl_core, _bon_sft_core, _correct_pool, _expert_pool, _pass_at_k_core, _reinforce_core, _scored_pool,
+)
 
-__all__ = ["bon_rl_loss", "pass_at_k_loss", "bon_sft_loss", "reinforce_loss", "nll_loss"]
+__all__ = ["policy_gradient_loss", "bon_rl_loss", "pass_at_k_loss", "bon_sft_loss", "reinforce_loss", "nll_loss"]
 
 _TOKEN_REDUCTIONS = ("sum", "mean")
 _REDUCTIONS = ("none", "mean", "sum")
 
 
 # ----------------------------------------------------------------------------
-# validation and shared pieces
+# validation (O(B n) by default; O(B n T) only with check_tokens=True)
 # ----------------------------------------------------------------------------
 
-def _check_logprobs(name: str, lp: Any, *, seq_ndim: int) -> Tensor:
+def _check_logprobs(name: str, lp: Any, seq_ndim: int) -> Tensor:
     if not is_tensor(lp):
         raise TypeError(f"{name} must be a torch.Tensor, got {type(lp).__name__}")
     if not lp.dtype.is_floating_point:
@@ -78,7 +97,7 @@ def _check_logprobs(name: str, lp: Any, *, seq_ndim: int) -> Tensor:
 
 
 def _check_mask(mask_name: str, mask: Any, lp_name: str, lp: Tensor, seq_ndim: int) -> Tensor | None:
-    """Return a bool mask (token log-probs) or None (all tokens count)."""
+    """A bool mask on lp's device (token log-probs) or None (all tokens count); shape and type only."""
     if mask is None:
         return None
     if lp.ndim == seq_ndim:
@@ -88,28 +107,39 @@ def _check_mask(mask_name: str, mask: Any, lp_name: str, lp: Tensor, seq_ndim: i
         raise TypeError(f"{mask_name} must be a torch.Tensor, got {type(mask).__name__}")
     if tuple(mask.shape) != tuple(lp.shape):
         raise ValueError(f"{mask_name} must have the same shape as {lp_name} {tuple(lp.shape)}, got {tuple(mask.shape)}")
-    if mask.dtype != torch.bool:
-        _check_binary(mask_name, mask.detach())
-    m = mask.detach().to(device=lp.device) != 0
-    empty = ~m.any(-1)
-    if bool(empty.any()):
-        idx = tuple(int(i) for i in torch.nonzero(empty)[0].tolist())
-        raise ValueError(f"{mask_name} must mark at least one token per sequence, got an all-zero row at index {idx}")
-    return m
+    if mask.dtype.is_complex:
+        raise TypeError(f"{mask_name} must be a bool or 0/1 tensor, got dtype {mask.dtype}")
+    m = mask.detach().to(device=lp.device)
+    return m if m.dtype == torch.bool else m != 0
 
 
-def _check_finite_masked(name: str, x: Tensor, m: Tensor | None) -> None:
-    bad = ~torch.isfinite(x.detach())
+def _check_tokens(name: str, lp: Tensor, mask_name: str, mask: Any, m: Tensor | None) -> None:
+    """The O(B n T) checks of check_tokens=True."""
+    if m is not None:
+        if mask.dtype != torch.bool:
+            bad = (mask != 0) & (mask != 1)
+            if bool(bad.any()):
+                idx = tuple(int(i) for i in torch.nonzero(bad)[0].tolist())
+                raise ValueError(f"{mask_name} must hold only 0/1 (or booleans), got {float(mask[idx])} at index {idx}")
+        empty = ~m.any(-1)
+        if bool(empty.any()):
+            idx = tuple(int(i) for i in torch.nonzero(empty)[0].tolist())
+            raise ValueError(f"{mask_name} must mark at least one token per sequence, got an all-zero row at index {idx}")
+    bad = ~torch.isfinite(lp.detach())
     if m is not None:
         bad = bad & m
     if bool(bad.any()):
         idx = tuple(int(i) for i in torch.nonzero(bad)[0].tolist())
-        raise ValueError(f"{name} must be finite where the mask is 1, got {float(x.detach()[idx])} at index {idx}")
+        where = " where the mask is 1" if m is not None else ""
+        raise ValueError(f"{name} must be finite{where}, got {float(lp.detach()[idx])} at index {idx}")
 
 
-def _check_options(token_reduction: Any, reduction: Any, anchor_weight: Any) -> float:
+def _check_options(token_reduction: Any, reduction: Any, anchor_weight: Any, check_tokens: Any,
+                   return_info: Any) -> float:
     check_choice("token_reduction", token_reduction, _TOKEN_REDUCTIONS)
     check_choice("reduction", reduction, _REDUCTIONS)
+    check_bool("check_tokens", check_tokens)
+    check_bool("return_info", return_info)
     if isinstance(anchor_weight, bool) or not isinstance(anchor_weight, numbers.Real):
         raise TypeError(f"anchor_weight must be a real number >= 0, got {type(anchor_weight).__name__} {anchor_weight!r}")
     anchor_weight = float(anchor_weight)
@@ -125,39 +155,43 @@ def _sequence_terms(name: str, lp: Tensor, m: Tensor | None, token_reduction: st
             raise ValueError(f"token_reduction='mean' needs token log-probs ({seq_ndim + 1} dimensions), "
                              f"got {name} of shape {tuple(lp.shape)}")
         return lp
-    if m is None:
-        m = torch.ones_like(lp, dtype=torch.bool)
-    tok = torch.where(m, lp, torch.zeros_like(lp))  # padding contributes exactly 0, even if NaN
-    seq = tok.sum(-1)
+    seq = (lp if m is None else torch.where(m, lp, 0.0)).sum(-1)  # padding contributes exactly 0, even if NaN
     if token_reduction == "mean":
-        t_bar = m.sum().to(seq.dtype) / seq.numel()  # mean response length over the batch
-        seq = seq / t_bar
+        count = m.sum() if m is not None else torch.tensor(lp.numel(), device=lp.device)
+        seq = seq * (seq.numel() / count.to(seq.dtype))  # / mean response length over the batch
     return seq
 
 
-def _prepare(name: str, lp: Any, mask_name: str, mask: Any, token_reduction: str, seq_ndim: int):
-    lp = _check_logprobs(name, lp, seq_ndim=seq_ndim)
+def _prepare(name: str, lp: Any, mask_name: str, mask: Any, token_reduction: str, seq_ndim: int,
+             check_tokens: bool):
+    lp = _check_logprobs(name, lp, seq_ndim)
     m = _check_mask(mask_name, mask, name, lp, seq_ndim)
-    _check_finite_masked(name, lp, m)
+    if check_tokens:
+        _check_tokens(name, lp, mask_name, mask, m)
     return lp, m, _sequence_terms(name, lp, m, token_reduction, seq_ndim)
 
 
-def _kl(lp: Tensor, ref: Any, m: Tensor | None, token_reduction: str) -> tuple[Tensor, float]:
-    """k3 estimator exp(d) - d - 1, d = ref - logp -> per-prompt mean over samples (B,), per-token mean value."""
-    if not is_tensor(ref):
-        raise TypeError(f"anchor_logprobs must be a torch.Tensor, got {type(ref).__name__}")
-    if tuple(ref.shape) != tuple(lp.shape):
-        raise ValueError(f"anchor_logprobs must have the same shape as logprobs {tuple(lp.shape)}, got {tuple(ref.shape)}")
-    _check_finite_masked("anchor_logprobs", ref, m)
-    d = ref.detach().to(lp.dtype) - lp
+def _lead_shape(name: str, lp: Any, seq_ndim: int) -> tuple[int, ...]:
+    return tuple(_check_logprobs(name, lp, seq_ndim).shape[:seq_ndim])
+
+
+def _kl(lp: Tensor, anchor: Any, m: Tensor | None, token_reduction: str, check_tokens: bool) -> tuple[Tensor, Tensor]:
+    """k3 estimator exp(d) - d - 1, d = anchor - logp -> per-prompt mean over samples (B,), per-token mean value."""
+    if not is_tensor(anchor):
+        raise TypeError(f"anchor_logprobs must be a torch.Tensor, got {type(anchor).__name__}")
+    if tuple(anchor.shape) != tuple(lp.shape):
+        raise ValueError(f"anchor_logprobs must have the same shape as logprobs {tuple(lp.shape)}, got {tuple(anchor.shape)}")
+    if check_tokens:
+        _check_tokens("anchor_logprobs", anchor, "mask", None, m)
+    d = anchor.detach().to(lp.dtype) - lp
     if m is not None:
-        d = torch.where(m, d, torch.zeros_like(d))  # exp(0) - 0 - 1 = 0 on padding
+        d = torch.where(m, d, 0.0)  # exp(0) - 0 - 1 = 0 on padding
     k3 = torch.expm1(d) - d
     if lp.ndim == 2:  # sequence level: one "token" per sample
-        return k3.mean(-1), float(k3.detach().mean())
+        return k3.mean(-1), k3.detach().mean()
     per_seq = _sequence_terms("logprobs", k3, m, token_reduction, 2)  # (B, n)
-    count = float(m.sum()) if m is not None else float(k3.numel())
-    return per_seq.mean(-1), float(k3.detach().sum()) / count
+    count = m.sum() if m is not None else torch.tensor(k3.numel(), device=k3.device)
+    return per_seq.mean(-1), k3.detach().sum() / count
 
 
 def _reduce(per_prompt: Tensor, reduction: str) -> Tensor:
@@ -168,187 +202,274 @@ def _reduce(per_prompt: Tensor, reduction: str) -> Tensor:
     return per_prompt
 
 
-def _pg_loss(seq: Tensor, credit: Tensor, lp: Tensor, m, ref, anchor_weight: float,
-             token_reduction: str, reduction: str, info: dict) -> tuple[Tensor, dict]:
-    """-(sum_i w_i * seq_i) per prompt (+ KL), reduced; fills the shared info keys."""
-    w = credit.to(device=seq.device, dtype=seq.dtype)
+def _credit_tensor(credit: Any, B: int, n: int, seq: Tensor, check_tokens: bool) -> Tensor:
+    """Credit (B, n) as a detached tensor on seq's device and dtype; host credit is checked (O(B n))."""
+    if is_tensor(credit):
+        w = credit.detach()
+        host = w.device.type == "cpu"
+    else:
+        try:
+            w = torch.from_numpy(np.asarray(credit, dtype=np.float64))
+        except (TypeError, ValueError):
+            raise TypeError(f"credit must be an array of numbers, got {type(credit).__name__}") from None
+        host = True
+    if tuple(w.shape) != (B, n):
+        raise ValueError(f"credit must have shape (B, n) = ({B}, {n}) to match logprobs, got {tuple(w.shape)}")
+    if host or check_tokens:
+        bad = ~torch.isfinite(w)
+        if bool(bad.any()):
+            idx = tuple(int(i) for i in torch.nonzero(bad)[0].tolist())
+            raise ValueError(f"credit must be finite, got {float(w[idx])} at index {idx}")
+    return w.to(device=seq.device, dtype=seq.dtype, non_blocking=True)
+
+
+def _core(lp: Tensor, m, seq: Tensor, w: Tensor, anchor_logprobs, anchor_weight: float, token_reduction: str,
+          check_tokens: bool, return_info: bool) -> tuple[Tensor, dict]:
+    """Per-prompt -(sum_i w_i seq_i) (+ anchor KL) -> (B,), and the shared info."""
     per_prompt = -(w * seq).sum(-1)  # (B,)
-    info["credit_mean"] = float(credit.mean())
-    info["zero_credit_frac"] = float((credit == 0).all(-1).to(torch.float64).mean())
-    if ref is not None:
-        kl_b, kl_tok = _kl(lp, ref, m, token_reduction)
-        info["kl"] = kl_tok
+    info: dict[str, Tensor] = {}
+    if anchor_logprobs is not None:
+        kl_b, kl_tok = _kl(lp, anchor_logprobs, m, token_reduction, check_tokens)
         if anchor_weight:
             per_prompt = per_prompt + anchor_weight * kl_b
+        info["kl"] = kl_tok
+    if return_info:
+        info["credit_mean"] = w.mean()
+        info["zero_credit_frac"] = (w == 0).all(-1).to(w.dtype).mean()
+    return per_prompt, info
+
+
+def _finish(per_prompt: Tensor, reduction: str, info: dict, return_info: bool):
     loss = _reduce(per_prompt, reduction)
-    return loss, info
+    return (loss, info) if return_info else loss
 
 
-def _pair(name: str, x: Any, B: int, n: int, device) -> Tensor:
-    t = _as_tensor(name, x, ndim=2)
-    if tuple(t.shape) != (B, n):
-        raise ValueError(f"{name} must have shape (B, n) = ({B}, {n}) to match logprobs, got {tuple(t.shape)}")
-    return t.to(device)
+def _host_info(info: dict, **values: np.ndarray) -> dict:
+    """Means of host arrays as 0-d CPU tensors (no device involved)."""
+    for key, v in values.items():
+        info[key] = torch.tensor(float(np.mean(v)), dtype=torch.float64)
+    return info
 
 
 # ----------------------------------------------------------------------------
-# losses
+# the core
 # ----------------------------------------------------------------------------
 
-def bon_rl_loss(logprobs, scores, rewards, *, k, mask=None, baseline="loo", token_reduction="sum",
-                anchor_logprobs=None, anchor_weight=0.0, reduction="mean") -> tuple[Tensor, dict[str, float]]:
+def policy_gradient_loss(logprobs, credit, *, mask=None, token_reduction="sum", reduction="mean",
+                         anchor_logprobs=None, anchor_weight=0.0, check_tokens=False, return_info=False):
+    r"""Policy-gradient loss for a given per-sample credit (the core every named loss wraps).
+
+    Shape: ``logprobs (B, n)`` or ``(B, n, T)`` [+ ``mask (B, n, T)``,
+    ``anchor_logprobs`` like ``logprobs``], ``credit (B, n)`` ``-> loss ()``,
+    or ``(B,)`` with ``reduction="none"``.
+
+    .. math::
+        \ell = \frac1B\sum_b\Big(-\sum_i w_{bi}\log\pi(y_{bi})
+               + \beta\,\frac1n\sum_i \mathrm{KL}_{bi}\Big)
+
+    ``credit`` (numpy, list or tensor; no gradient flows through it) is any
+    weight ``w`` such that ``sum_i w_i grad log pi(y_i)`` estimates the
+    gradient you want, e.g. from :mod:`bonft.credit`; ``beta`` is
+    ``anchor_weight``. Host credit is checked finite (O(B n)); a device
+    tensor only with ``check_tokens=True`` (a sync).
+
+    References: Williams 1992 (REINFORCE, the score-function gradient);
+    Kool et al. 2019 (leave-one-out baselines).
+    """
+    anchor_weight = _check_options(token_reduction, reduction, anchor_weight, check_tokens, return_info)
+    lp, m, seq = _prepare("logprobs", logprobs, "mask", mask, token_reduction, 2, check_tokens)
+    w = _credit_tensor(credit, *seq.shape, seq, check_tokens)
+    per_prompt, info = _core(lp, m, seq, w, anchor_logprobs, anchor_weight, token_reduction, check_tokens, return_info)
+    return _finish(per_prompt, reduction, info, return_info)
+
+
+# ----------------------------------------------------------------------------
+# named losses: credit function + core
+# ----------------------------------------------------------------------------
+
+def bon_rl_loss(logprobs, scores, rewards, *, k, baseline="loo", mask=None, token_reduction="sum",
+                reduction="mean", anchor_logprobs=None, anchor_weight=0.0, check_tokens=False, return_info=False):
     r"""Best-of-k policy-gradient loss with a verifier.
 
-    logprobs: (B, n) or (B, n, T) [+ mask (B, n, T)], scores, rewards: (B, n)
-    -> loss () or (B,) with ``reduction="none"``, and an info dict.
+    Shape: ``logprobs (B, n)`` or ``(B, n, T)`` [+ ``mask (B, n, T)``],
+    ``scores (B, n), rewards (B, n) -> loss ()`` (``(B,)`` with ``reduction="none"``).
 
     .. math:: \ell = -\frac1B\sum_b\sum_i w_{bi}\,\log\pi(y_{bi}),\quad
-              w = \mathrm{bon\_credit}(s, R, k)
+              w = \mathrm{bon\_rl\_credit}(s, R, k)
 
     ``-grad loss`` is an unbiased estimate of ``grad (1/B) sum_b V_k(prompt b)``
     (``token_reduction="sum"``, no KL); ``k = n`` is BoN-RL-V of Chow et al.
-    2024, ``k = 1`` leave-one-out REINFORCE (Kool et al. 2019).
-
-    info: ``credit_mean`` (mean of w), ``zero_credit_frac`` (prompts whose
-    credit is all zero: no signal), ``pool_value`` (mean best-of-k U-statistic
-    of the pools), ``kl`` (per-token k3 value, when ``anchor_logprobs`` given).
+    2024, ``k = 1`` leave-one-out REINFORCE. ``info["pool_value"]``: mean
+    best-of-k U-statistic of the pools.
 
     Caution: a verifier that can be gamed will be gamed (reward hacking).
+
+    References: Chow et al. 2024, "Inference-Aware Fine-Tuning for Best-of-N
+    Sampling in LLMs"; Kool et al. 2019.
     """
-    anchor_weight = _check_options(token_reduction, reduction, anchor_weight)
-    lp, m, seq = _prepare("logprobs", logprobs, "mask", mask, token_reduction, 2)
-    B, n = seq.shape
-    s = _pair("scores", scores, B, n, lp.device)
-    R = _pair("rewards", rewards, B, n, lp.device)
+    anchor_weight = _check_options(token_reduction, reduction, anchor_weight, check_tokens, return_info)
+    B, n = _lead_shape("logprobs", logprobs, 2)
+    s, R = _scored_pool(scores, rewards, shape=(B, n))
     k = check_k(k, n)
     check_choice("baseline", baseline, ("loo", "none"))
-    credit, pool = _bon_credit_t(s, R, k, baseline)
-    info = {"pool_value": float(pool.mean())}
-    return _pg_loss(seq, credit, lp, m, anchor_logprobs, anchor_weight, token_reduction, reduction, info)
+    credit, pool = _bon_rl_core(s, R, k, baseline)
+    return _named(logprobs, credit, mask, token_reduction, reduction, anchor_logprobs, anchor_weight, check_tokens,
+                  return_info, pool_value=pool)
 
 
 def pass_at_k_loss(logprobs, correct, *, k, estimator="unbiased", positive_only=False, mask=None,
-                   token_reduction="sum", anchor_logprobs=None, anchor_weight=0.0,
-                   reduction="mean") -> tuple[Tensor, dict[str, float]]:
+                   token_reduction="sum", reduction="mean", anchor_logprobs=None, anchor_weight=0.0,
+                   check_tokens=False, return_info=False):
     r"""pass@k policy-gradient loss for a binary reward.
 
-    logprobs: (B, n) or (B, n, T) [+ mask], correct: (B, n) 0/1 -> loss, info.
+    Shape: ``logprobs (B, n)`` or ``(B, n, T)`` [+ ``mask``], ``correct (B, n)``
+    0/1 ``-> loss ()`` (``(B,)`` with ``reduction="none"``).
 
     .. math:: \ell = -\frac1B\sum_b\sum_i w_{bi}\log\pi(y_{bi}),\quad
-              w = \mathrm{pass\_credit}(c, k)
+              w = \mathrm{pass\_at\_k\_credit}(c, k)
 
     ``estimator="unbiased"``: ``-grad loss`` is unbiased for
     ``grad mean_b pass@k``; ``"plugin"``: biased, consistent;
     ``positive_only=True``: estimates ``(1-p) grad pass@k`` for ``k < n`` and
-    ``grad pass@k`` for ``k = n`` (see :func:`bonft.credit.pass_credit`).
-    info: ``credit_mean``, ``zero_credit_frac``, ``pool_value`` (mean
-    unbiased pass@k of the pools, Chen et al. 2021), ``kl`` if used.
+    ``grad pass@k`` for ``k = n`` (see :func:`bonft.credit.pass_at_k_credit`).
+    ``info["pool_value"]``: mean unbiased pass@k of the pools.
 
     Caution: when ``correct`` comes from executing model-written code, run
     it in a sandbox; tests that miss cases are exploited (reward hacking).
+
+    References: Chen et al. 2021, "Evaluating Large Language Models Trained
+    on Code"; Walder & Karkhanis 2025.
     """
-    anchor_weight = _check_options(token_reduction, reduction, anchor_weight)
-    lp, m, seq = _prepare("logprobs", logprobs, "mask", mask, token_reduction, 2)
-    B, n = seq.shape
-    c = _pair("correct", correct, B, n, lp.device)
-    _check_binary("correct", c)
+    anchor_weight = _check_options(token_reduction, reduction, anchor_weight, check_tokens, return_info)
+    B, n = _lead_shape("logprobs", logprobs, 2)
+    c = _correct_pool(correct, shape=(B, n))
     k = check_k(k, n)
     check_choice("estimator", estimator, ("unbiased", "plugin"))
-    _check_bool("positive_only", positive_only)
-    credit = _pass_credit_t(c, k, estimator, positive_only)
-    tot = c.sum(-1)
-    pool = 1 - torch.exp(log_comb_torch(n - tot, k) - log_comb_torch(n, k))  # Chen et al. 2021 estimator
-    info = {"pool_value": float(pool.mean())}
-    return _pg_loss(seq, credit, lp, m, anchor_logprobs, anchor_weight, token_reduction, reduction, info)
+    check_bool("positive_only", positive_only)
+    credit = _pass_at_k_core(c, k, estimator, positive_only)
+    pool = pass_at_k_counts(n, c.sum(-1).astype(np.int64), k) if return_info else None
+    return _named(logprobs, credit, mask, token_reduction, reduction, anchor_logprobs, anchor_weight, check_tokens,
+                  return_info, pool_value=pool)
 
 
-def reinforce_loss(logprobs, rewards, *, baseline="loo", mask=None, token_reduction="sum",
-                   anchor_logprobs=None, anchor_weight=0.0, reduction="mean") -> tuple[Tensor, dict[str, float]]:
-    r"""Leave-one-out REINFORCE loss (Kool et al. 2019), the best-of-1 case.
+def reinforce_loss(logprobs, rewards, *, baseline="loo", mask=None, token_reduction="sum", reduction="mean",
+                   anchor_logprobs=None, anchor_weight=0.0, check_tokens=False, return_info=False):
+    r"""Leave-one-out REINFORCE loss, the best-of-1 case.
 
-    logprobs: (B, n) or (B, n, T) [+ mask], rewards: (B, n) -> loss, info.
+    Shape: ``logprobs (B, n)`` or ``(B, n, T)`` [+ ``mask``], ``rewards (B, n)
+    -> loss ()`` (``(B,)`` with ``reduction="none"``).
 
     .. math:: \ell = -\frac1B\sum_b\sum_i \frac{R_{bi}-\bar R_{b,-i}}{n}\log\pi(y_{bi})
 
-    ``-grad loss`` is unbiased for ``grad mean_b E[R]``. info:
-    ``credit_mean``, ``zero_credit_frac``, ``pool_value`` (mean reward),
-    ``kl`` if used.
+    ``-grad loss`` is unbiased for ``grad mean_b E[R]``.
+    ``info["pool_value"]``: mean reward.
+
+    References: Kool et al. 2019, "Buy 4 REINFORCE samples, get a baseline for free!".
     """
-    anchor_weight = _check_options(token_reduction, reduction, anchor_weight)
-    lp, m, seq = _prepare("logprobs", logprobs, "mask", mask, token_reduction, 2)
-    B, n = seq.shape
-    R = _pair("rewards", rewards, B, n, lp.device)
+    anchor_weight = _check_options(token_reduction, reduction, anchor_weight, check_tokens, return_info)
+    B, n = _lead_shape("logprobs", logprobs, 2)
+    R = _rewards(rewards, (B, n))
     check_choice("baseline", baseline, ("loo", "none"))
-    credit = _reinforce_credit_t(R, baseline)
-    info = {"pool_value": float(R.mean())}
-    return _pg_loss(seq, credit, lp, m, anchor_logprobs, anchor_weight, token_reduction, reduction, info)
+    credit = _reinforce_core(R, baseline)
+    return _named(logprobs, credit, mask, token_reduction, reduction, anchor_logprobs, anchor_weight, check_tokens,
+                  return_info, pool_value=R)
 
 
-def bon_sft_loss(expert_logprobs, sample_logprobs, sample_scores, expert_scores, *, k, expert_mask=None,
-                 mask=None, smoothing=1.0, token_reduction="sum", anchor_logprobs=None, anchor_weight=0.0,
-                 reduction="mean") -> tuple[Tensor, dict[str, float]]:
+def bon_sft_loss(logprobs, scores, expert_logprobs, expert_scores, *, k, smoothing=1.0, mask=None, expert_mask=None,
+                 token_reduction="sum", reduction="mean", anchor_logprobs=None, anchor_weight=0.0, check_tokens=False,
+                 return_info=False):
     r"""Best-of-k-aware SFT loss: raise the chance that best-of-k selects the expert response.
 
-    expert_logprobs: (B,) or (B, T) [+ expert_mask (B, T)];
-    sample_logprobs: (B, n) or (B, n, T) [+ mask (B, n, T)] of n policy samples;
-    sample_scores: (B, n); expert_scores: (B,) -> loss, info.
+    Shape: ``logprobs (B, n)`` or ``(B, n, T)`` [+ ``mask (B, n, T)``] of n
+    policy samples, ``scores (B, n)``; ``expert_logprobs (B,)`` or ``(B, T)``
+    [+ ``expert_mask (B, T)``], ``expert_scores (B,) -> loss ()`` (``(B,)``
+    with ``reduction="none"``).
 
     .. math:: \ell_b = -\Big(\log\pi(y^*_b) + \sum_i w_{bi}\log\pi(y_{bi})\Big),\quad
-              w = \mathrm{sft\_credit}(s, s^*, k)
+              w = \mathrm{bon\_sft\_credit}(s, s^*, k)
 
-    ``-grad loss`` estimates ``grad mean_b log pi_bon(y*_b)`` (Chow et al.
-    2024, BoN-SFT): the expert term is exact, the sample term is a consistent
-    ratio estimator (biased for finite n; see :func:`bonft.credit.sft_credit`
-    for the smoothing). ``k = 1`` is plain SFT. ``anchor_logprobs`` (shape of
-    ``sample_logprobs``) adds the KL penalty on the policy samples.
-
-    info: ``expert_logprob`` (mean expert term), ``credit_mean``,
-    ``zero_credit_frac``, ``beaten_frac`` (share of samples scoring above
-    the expert), ``kl`` if used.
+    ``-grad loss`` estimates ``grad mean_b log pi_bon(y*_b)``: the expert term
+    is exact, the sample term a consistent ratio estimator (biased for finite
+    n; see :func:`bonft.credit.bon_sft_credit` for the smoothing). ``k = 1``
+    is plain SFT. ``anchor_logprobs`` (shape of ``logprobs``) adds the KL
+    penalty on the policy samples. info adds ``expert_logprob`` (mean expert
+    term) and ``beaten_frac`` (share of samples scoring above the expert).
 
     Caution: the verifier decides which samples "beat" the expert; a gamed
     verifier pushes the policy away from the expert for the wrong reasons.
+
+    References: Chow et al. 2024, "Inference-Aware Fine-Tuning for Best-of-N
+    Sampling in LLMs" (BoN-SFT).
     """
-    anchor_weight = _check_options(token_reduction, reduction, anchor_weight)
-    elp, _, e_seq = _prepare("expert_logprobs", expert_logprobs, "expert_mask", expert_mask, token_reduction, 1)
-    lp, m, seq = _prepare("sample_logprobs", sample_logprobs, "mask", mask, token_reduction, 2)
-    B, n = seq.shape
+    anchor_weight = _check_options(token_reduction, reduction, anchor_weight, check_tokens, return_info)
+    B, n = _lead_shape("logprobs", logprobs, 2)
+    elp, _, e_seq = _prepare("expert_logprobs", expert_logprobs, "expert_mask", expert_mask, token_reduction, 1,
+                             check_tokens)
     if e_seq.shape[0] != B:
-        raise ValueError(f"expert_logprobs must have B = {B} rows to match sample_logprobs, got {tuple(elp.shape)}")
-    s = _pair("sample_scores", sample_scores, B, n, lp.device)
-    e = _as_tensor("expert_scores", expert_scores, ndim=1).to(lp.device)
-    if e.shape[0] != B:
-        raise ValueError(f"expert_scores must have shape (B,) = ({B},), got {tuple(e.shape)}")
-    k = check_k(k, n)
-    smoothing = _check_smoothing(smoothing)
-    _check_expert_reachable(s, e, k, smoothing)
-    credit = _sft_credit_t(s, e, k, smoothing)
-    info = {"expert_logprob": float(e_seq.detach().mean()),
-            "beaten_frac": float((s > e[:, None]).to(torch.float64).mean())}
-    loss, info = _pg_loss(seq, credit, lp, m, anchor_logprobs, anchor_weight, token_reduction, "none", info)
-    per_prompt = loss - e_seq.to(loss.dtype)
-    return _reduce(per_prompt, reduction), info
+        raise ValueError(f"expert_logprobs must have B = {B} rows to match logprobs, got {tuple(elp.shape)}")
+    s, e, k, smoothing = _expert_pool(scores, expert_scores, k, smoothing, shape=(B, n))
+    credit = _bon_sft_core(s, e, k, smoothing)
+    per_prompt, info = _per_prompt(logprobs, credit, mask, token_reduction, anchor_logprobs, anchor_weight,
+                                   check_tokens, return_info)
+    per_prompt = per_prompt - e_seq.to(per_prompt.dtype)
+    if return_info:
+        info["expert_logprob"] = e_seq.detach().mean()
+        _host_info(info, beaten_frac=(s > e[:, None]))
+    return _finish(per_prompt, reduction, info, return_info)
 
 
-def nll_loss(logprobs, *, mask=None, token_reduction="sum", reduction="mean") -> tuple[Tensor, dict[str, float]]:
+def nll_loss(logprobs, *, mask=None, token_reduction="sum", reduction="mean", check_tokens=False, return_info=False):
     r"""Negative log-likelihood (plain SFT) of given responses.
 
-    logprobs: (B,) sequence log-probs or (B, T) token log-probs [+ mask (B, T)]
-    -> loss () or (B,), info.
+    Shape: ``logprobs (B,)`` sequence log-probs or ``(B, T)`` token log-probs
+    [+ ``mask (B, T)``] ``-> loss ()`` (``(B,)`` with ``reduction="none"``).
 
     .. math:: \ell = -\frac1B\sum_b \log\pi(y_b)
 
     ``token_reduction="mean"`` divides every token log-prob by the batch's mean
     response length (see the module docstring). info: ``nll`` (mean per-row
     loss), ``tokens`` (response tokens counted).
+
+    References: maximum likelihood (common practice).
     """
     check_choice("token_reduction", token_reduction, _TOKEN_REDUCTIONS)
     check_choice("reduction", reduction, _REDUCTIONS)
-    lp, m, seq = _prepare("logprobs", logprobs, "mask", mask, token_reduction, 1)
+    check_bool("check_tokens", check_tokens)
+    check_bool("return_info", return_info)
+    lp, m, seq = _prepare("logprobs", logprobs, "mask", mask, token_reduction, 1, check_tokens)
     per = -seq
-    if lp.ndim == 1:
-        tokens = float(lp.shape[0])
-    else:
-        tokens = float(m.sum()) if m is not None else float(lp.numel())
-    info = {"nll": float(per.detach().mean()), "tokens": tokens}
-    return _reduce(per, reduction), info
+    info: dict[str, Tensor] = {}
+    if return_info:
+        if lp.ndim == 1:
+            tokens = torch.tensor(float(lp.shape[0]))
+        else:
+            tokens = m.sum().to(torch.float64) if m is not None else torch.tensor(float(lp.numel()))
+        info = {"nll": per.detach().mean(), "tokens": tokens}
+    return _finish(per, reduction, info, return_info)
+
+
+# ----------------------------------------------------------------------------
+# shared tails of the named losses
+# ----------------------------------------------------------------------------
+
+def _rewards(rewards: Any, shape: tuple[int, int]) -> np.ndarray:
+    R = as_host("rewards", rewards, ndim=2)
+    if tuple(R.shape) != shape:
+        raise ValueError(f"rewards must have shape (B, n) of logprobs {shape}, got {tuple(R.shape)}")
+    return R
+
+
+def _per_prompt(logprobs, credit: np.ndarray, mask, token_reduction, anchor_logprobs, anchor_weight, check_tokens,
+                return_info):
+    lp, m, seq = _prepare("logprobs", logprobs, "mask", mask, token_reduction, 2, check_tokens)
+    w = torch.from_numpy(credit).to(device=seq.device, dtype=seq.dtype, non_blocking=True)
+    return _core(lp, m, seq, w, anchor_logprobs, anchor_weight, token_reduction, check_tokens, return_info)
+
+
+def _named(logprobs, credit: np.ndarray, mask, token_reduction, reduction, anchor_logprobs, anchor_weight,
+           check_tokens, return_info, *, pool_value):
+    per_prompt, info = _per_prompt(logprobs, credit, mask, token_reduction, anchor_logprobs, anchor_weight,
+                                   check_tokens, return_info)
+    if return_info:
+        _host_info(info, pool_value=pool_value)
+    return _finish(per_prompt, reduction, info, return_info)

@@ -17,7 +17,7 @@ import torch
 from hypothesis import given, settings, strategies as st
 
 from bonft.bon import bon_value, log_bon_distribution, softmax_policy
-from bonft.credit import bon_credit, pass_credit, pool_value, reinforce_credit, sft_credit
+from bonft.credit import bon_rl_credit, pass_at_k_credit, pool_value, reinforce_credit, bon_sft_credit
 from bonft.estimate import bon_at_k
 
 TOL = 1e-10
@@ -93,11 +93,11 @@ def problem(V, seed, binary=False):
     return theta, s, R
 
 
-# ---------------------------------------------------------------- bon_credit
+# ---------------------------------------------------------------- bon_rl_credit
 
 @settings(max_examples=40)
 @given(st.integers(1, 7), st.data())
-def test_bon_credit_equals_subset_definition(n, data):
+def test_bon_rl_credit_equals_subset_definition(n, data):
     # Reference: the k-subset sum of the brief, written out by enumeration.
     k = data.draw(st.integers(1, n))
     seed = data.draw(st.integers(0, 2**31 - 1))
@@ -105,23 +105,23 @@ def test_bon_credit_equals_subset_definition(n, data):
     s = rng.integers(0, 3, size=n).astype(float)
     R = rng.normal(size=n)
     for baseline in ("loo", "none"):
-        w = bon_credit(s[None], R[None], k, baseline=baseline)[0]
+        w = bon_rl_credit(s[None], R[None], k=k, baseline=baseline)[0]
         np.testing.assert_allclose(w, subset_credit(s, R, k, baseline == "loo"), atol=1e-13)
     # pool U-statistic against the sorted-rank formula (Chow et al. 2024) in bonft.estimate
-    assert abs(pool_value(s[None], R[None], k)[0] - bon_at_k(s, R, k)) < 1e-13
+    assert abs(pool_value(s[None], R[None], k=k)[0] - bon_at_k(s, R, k=k)) < 1e-13
 
 
 @settings(max_examples=40)
 @given(settings_vnk())
-def test_bon_credit_is_exactly_unbiased(cfg):
+def test_bon_rl_credit_is_exactly_unbiased(cfg):
     V, n, k, seed = cfg
     theta, s, R = problem(V, seed)
     Y = all_tuples(V, n)
     g_brute = exact_grad(lambda th: brute_value(th, s, R, k), theta)
-    g_bon = exact_grad(lambda th: bon_value(softmax_policy(th), torch.tensor(s), torch.tensor(R), k), theta)
+    g_bon = exact_grad(lambda th: bon_value(softmax_policy(th), torch.tensor(s), torch.tensor(R), k=k), theta)
     np.testing.assert_allclose(g_bon, g_brute, atol=1e-12)  # two independent exact gradients agree
     for baseline in ("loo", "none"):
-        w = bon_credit(s[Y], R[Y], k, baseline=baseline)
+        w = bon_rl_credit(s[Y], R[Y], k=k, baseline=baseline)
         est = expected_estimate(theta, Y, w)
         assert np.abs(est - g_brute).max() < TOL, (V, n, k, baseline, est, g_brute)
 
@@ -132,7 +132,7 @@ def test_grad_vk_gradcheck():
     th = torch.tensor(theta, requires_grad=True)
     for k in (1, 2, 5):
         assert torch.autograd.gradcheck(
-            lambda t: bon_value(softmax_policy(t), torch.tensor(s), torch.tensor(R), k), (th,))
+            lambda t: bon_value(softmax_policy(t), torch.tensor(s), torch.tensor(R), k=k), (th,))
         assert torch.autograd.gradcheck(lambda t: brute_value(t, s, R, k), (th,))
 
 
@@ -141,30 +141,30 @@ def test_worked_example_by_hand():
     # Pairs: {0,1} -> 1, {0,2} -> 0, {1,2} -> tie -> 1/2. C(3,2) = 3.
     # No-baseline credit: w0 = (1+0)/3, w1 = (1+1/2)/3, w2 = (0+1/2)/3.
     s, R = np.array([[1.0, 2, 2]]), np.array([[0.0, 1, 0]])
-    np.testing.assert_allclose(bon_credit(s, R, 2, baseline="none")[0], [1 / 3, 1 / 2, 1 / 6], atol=1e-15)
+    np.testing.assert_allclose(bon_rl_credit(s, R, k=2, baseline="none")[0], [1 / 3, 1 / 2, 1 / 6], atol=1e-15)
     # loo: b_i = best-of-2 of the other two: b0 = 1/2, b1 = 0, b2 = 1; factor C(2,1)/C(3,2) = 2/3.
-    np.testing.assert_allclose(bon_credit(s, R, 2)[0], [1 / 3 - 1 / 3, 1 / 2, 1 / 6 - 2 / 3], atol=1e-15)
-    assert abs(pool_value(s, R, 2)[0] - 0.5) < 1e-15  # (1 + 0 + 1/2)/3
+    np.testing.assert_allclose(bon_rl_credit(s, R, k=2)[0], [1 / 3 - 1 / 3, 1 / 2, 1 / 6 - 2 / 3], atol=1e-15)
+    assert abs(pool_value(s, R, k=2)[0] - 0.5) < 1e-15  # (1 + 0 + 1/2)/3
 
 
-def test_reinforce_is_bon_credit_at_k1():
+def test_reinforce_is_bon_rl_credit_at_k1():
     # Kool et al. 2019 leave-one-out REINFORCE: w_i = (R_i - mean of others)/n.
     rng = np.random.default_rng(1)
     s, R = rng.normal(size=(6, 5)), rng.normal(size=(6, 5))
     want = (R - (R.sum(1, keepdims=True) - R) / 4) / 5
     np.testing.assert_allclose(reinforce_credit(R), want, atol=1e-14)
-    np.testing.assert_allclose(bon_credit(s, R, 1), want, atol=1e-14)
+    np.testing.assert_allclose(bon_rl_credit(s, R, k=1), want, atol=1e-14)
     np.testing.assert_allclose(reinforce_credit(R, baseline="none"), R / 5, atol=1e-15)
-    np.testing.assert_allclose(bon_credit(s, R, 1, baseline="none"), R / 5, atol=1e-15)
+    np.testing.assert_allclose(bon_rl_credit(s, R, k=1, baseline="none"), R / 5, atol=1e-15)
 
 
 def test_single_sample_keeps_unbiased_reward():
     # n = k = 1: nobody to leave out, baseline 0, credit = reward (plain REINFORCE).
-    assert bon_credit([[0.3]], [[0.7]], 1)[0, 0] == pytest.approx(0.7, abs=1e-15)
+    assert bon_rl_credit([[0.3]], [[0.7]], k=1)[0, 0] == pytest.approx(0.7, abs=1e-15)
     assert reinforce_credit([[0.7]])[0, 0] == pytest.approx(0.7, abs=1e-15)
 
 
-# ---------------------------------------------------------------- pass_credit
+# ---------------------------------------------------------------- pass_at_k_credit
 
 def pass_at_k_exact(theta, correct_outcomes, k):
     # pass@k = 1 - (1 - p)^k for a single-try success chance p (Chen et al. 2021).
@@ -174,32 +174,32 @@ def pass_at_k_exact(theta, correct_outcomes, k):
 
 @settings(max_examples=40)
 @given(settings_vnk())
-def test_pass_credit_unbiased_and_positive_only_estimand(cfg):
+def test_pass_at_k_credit_unbiased_and_positive_only_estimand(cfg):
     V, n, k, seed = cfg
     theta, _, R = problem(V, seed, binary=True)
     Y = all_tuples(V, n)
     good = np.flatnonzero(R == 1)
     g = exact_grad(lambda th: pass_at_k_exact(th, good, k), theta)
     c = R[Y]
-    est = expected_estimate(theta, Y, pass_credit(c, k))
+    est = expected_estimate(theta, Y, pass_at_k_credit(c, k=k))
     assert np.abs(est - g).max() < TOL, (V, n, k, est, g)
-    np.testing.assert_allclose(pass_credit(c, k), bon_credit(c, c, k), atol=1e-13)
-    # positive_only (derived in bonft.credit.pass_credit): k < n estimates
+    np.testing.assert_allclose(pass_at_k_credit(c, k=k), bon_rl_credit(c, c, k=k), atol=1e-13)
+    # positive_only (derived in bonft.credit.pass_at_k_credit): k < n estimates
     # grad[(k/(k+1)) pass@(k+1)] = (1-p) grad pass@k; k = n estimates grad pass@k.
     if k < n:
         target = exact_grad(lambda th: k / (k + 1) * pass_at_k_exact(th, good, k + 1), theta)
     else:
         target = g
-    est_pos = expected_estimate(theta, Y, pass_credit(c, k, positive_only=True))
+    est_pos = expected_estimate(theta, Y, pass_at_k_credit(c, k=k, positive_only=True))
     assert np.abs(est_pos - target).max() < TOL, (V, n, k, est_pos, target)
-    assert (pass_credit(c, k, positive_only=True)[c == 0] == 0).all()
+    assert (pass_at_k_credit(c, k=k, positive_only=True)[c == 0] == 0).all()
 
 
 def plugin_bias(theta, good, V, n, k):
     Y = all_tuples(V, n)
     c = np.isin(Y, good).astype(float)
     g = exact_grad(lambda th: pass_at_k_exact(th, good, k), theta)
-    return np.abs(expected_estimate(theta, Y, pass_credit(c, k, estimator="plugin")) - g).max()
+    return np.abs(expected_estimate(theta, Y, pass_at_k_credit(c, k=k, estimator="plugin")) - g).max()
 
 
 def test_plugin_bias_shrinks_with_n():
@@ -211,26 +211,26 @@ def test_plugin_bias_shrinks_with_n():
     assert biases[-1] < 0.4 * biases[0], f"plugin bias by n=2..7: {biases}"
 
 
-def test_pass_credit_closed_counts_example():
+def test_pass_at_k_credit_closed_counts_example():
     # Hand computation, n = 4, c = 1 correct (sample 0), k = 2:
     # correct: C(3,1)/C(4,2) = 1/2; incorrect: (C(3,1) - C(2,1))/C(4,2) = 1/6.
     # loo baseline (k/n) * pass@2 of the others: for sample 0 others have c=0 -> 0;
     # for an incorrect sample others have 1 correct of 3: 1 - C(2,2)/C(3,2) = 2/3 -> (1/2)(2/3) = 1/3.
-    w = pass_credit([[1, 0, 0, 0]], 2)[0]
+    w = pass_at_k_credit([[1, 0, 0, 0]], k=2)[0]
     np.testing.assert_allclose(w, [1 / 2, 1 / 6 - 1 / 3, 1 / 6 - 1 / 3, 1 / 6 - 1 / 3], atol=1e-15)
     # plugin: p_hat = 1/4, (k/n)(1-p)^(k-1)(R - p) = (1/2)(3/4)(R - 1/4)
-    np.testing.assert_allclose(pass_credit([[1, 0, 0, 0]], 2, estimator="plugin")[0],
+    np.testing.assert_allclose(pass_at_k_credit([[1, 0, 0, 0]], k=2, estimator="plugin")[0],
                                [0.375 * 0.75, -0.375 * 0.25, -0.375 * 0.25, -0.375 * 0.25], atol=1e-15)
 
 
-# ---------------------------------------------------------------- sft_credit
+# ---------------------------------------------------------------- bon_sft_credit
 
 def sft_bias(theta, s, y_star, k, n):
     V = len(theta)
     Y = all_tuples(V, n)
-    exact = exact_grad(lambda th: log_bon_distribution(softmax_policy(th), torch.tensor(s), k)[y_star], theta)
+    exact = exact_grad(lambda th: log_bon_distribution(softmax_policy(th), torch.tensor(s), k=k)[y_star], theta)
     p = np.exp(theta) / np.exp(theta).sum()
-    w = sft_credit(s[Y], np.full(len(Y), s[y_star]), k)
+    w = bon_sft_credit(s[Y], np.full(len(Y), s[y_star]), k=k)
     est = (np.eye(V)[y_star] - p) + expected_estimate(theta, Y, w)  # exact expert term + sample term
     return np.abs(est - exact).max()
 
@@ -244,27 +244,27 @@ def test_sft_bias_shrinks_with_n():
     assert biases[-1] < 0.7 * biases[0], f"sft bias by n=3..6: {biases}"
 
 
-def test_sft_credit_continuous_case_formula():
+def test_bon_sft_credit_continuous_case_formula():
     # No ties at s* and smoothing=0: h = log k + (k-1) log F (Chow et al. 2024, continuous
     # scores), so dh/dF = (k-1)/F and w_i = (1/n)(k-1)/F_hat * (u_i - mean_{-i} u).
     s = np.array([[0.1, 0.5, 0.9, 1.3, 0.2]])
     u = (s[0] <= 0.7).astype(float)  # expert score 0.7, F_hat = 3/5
     k, n, F = 4, 5, 3 / 5
     want = (k - 1) / F * (u - (u.sum() - u) / (n - 1)) / n
-    np.testing.assert_allclose(sft_credit(s, [0.7], k, smoothing=0.0)[0], want, atol=1e-14)
-    w = sft_credit(s, [0.7], k)
+    np.testing.assert_allclose(bon_sft_credit(s, [0.7], k=k, smoothing=0.0)[0], want, atol=1e-14)
+    w = bon_sft_credit(s, [0.7], k=k)
     assert (w[0, s[0] > 0.7] < 0).all() and (w[0, s[0] < 0.7] > 0).all()
-    np.testing.assert_array_equal(sft_credit(s, [0.7], 1), np.zeros_like(s))  # k = 1 -> plain SFT
+    np.testing.assert_array_equal(bon_sft_credit(s, [0.7], k=1), np.zeros_like(s))  # k = 1 -> plain SFT
 
 
 def test_sft_smoothing_when_expert_beats_nothing():
     s = np.array([[2.0, 3.0, 4.0]])  # every sample beats the expert at 1.0
-    w = sft_credit(s, [1.0], 3)  # smoothing=1: F_hat = 1/4, F<_hat = 0 -> r = 0, h_F = (k-1)/F = 8
+    w = bon_sft_credit(s, [1.0], k=3)  # smoothing=1: F_hat = 1/4, F<_hat = 0 -> r = 0, h_F = (k-1)/F = 8
     np.testing.assert_allclose(w, np.zeros((1, 3)), atol=1e-15)  # u = v = 0 for all: no contrast
     with pytest.raises(ValueError, match=r"smoothing=0 needs a sample scoring at or below the expert, got none in row 0"):
-        sft_credit(s, [1.0], 3, smoothing=0)
+        bon_sft_credit(s, [1.0], k=3, smoothing=0)
     s2 = np.array([[0.0, 3.0, 4.0]])  # one sample below: F_hat = 2/4, r = 1/2
-    w2 = sft_credit(s2, [1.0], 2)[0]
+    w2 = bon_sft_credit(s2, [1.0], k=2)[0]
     # k = 2: h = log(F + F_), h_F = h_< = 1/(F + F_) = 1/(2/4 + 1/4) = 4/3
     u = np.array([1.0, 0, 0])
     loo = (u.sum() - u) / 2
@@ -282,19 +282,19 @@ def test_equal_rewards_shift_and_permutation(n, seed, shift):
     R = rng.normal(size=(3, n))
     const = np.full((3, n), rng.normal())
     # common practice: a leave-one-out baseline gives no signal when all rewards agree
-    assert (bon_credit(s, const, k) == 0).all()
+    assert (bon_rl_credit(s, const, k=k) == 0).all()
     assert (reinforce_credit(const) == 0).all()
-    assert (pass_credit(np.ones((3, n)), k) == 0).all() and (pass_credit(np.zeros((3, n)), k) == 0).all()
+    assert (pass_at_k_credit(np.ones((3, n)), k=k) == 0).all() and (pass_at_k_credit(np.zeros((3, n)), k=k) == 0).all()
     # shifting every reward by a constant leaves loo credit unchanged (the k/n terms cancel)
-    np.testing.assert_allclose(bon_credit(s, R + shift, k), bon_credit(s, R, k), atol=1e-11)
+    np.testing.assert_allclose(bon_rl_credit(s, R + shift, k=k), bon_rl_credit(s, R, k=k), atol=1e-11)
     np.testing.assert_allclose(reinforce_credit(R + shift), reinforce_credit(R), atol=1e-11)
     # permutation equivariance: samples are exchangeable
     perm = rng.permutation(n)
-    np.testing.assert_allclose(bon_credit(s[:, perm], R[:, perm], k), bon_credit(s, R, k)[:, perm], atol=1e-13)
+    np.testing.assert_allclose(bon_rl_credit(s[:, perm], R[:, perm], k=k), bon_rl_credit(s, R, k=k)[:, perm], atol=1e-13)
     c = (R > 0).astype(float)
-    np.testing.assert_allclose(pass_credit(c[:, perm], k), pass_credit(c, k)[:, perm], atol=1e-14)
+    np.testing.assert_allclose(pass_at_k_credit(c[:, perm], k=k), pass_at_k_credit(c, k=k)[:, perm], atol=1e-14)
     e = rng.integers(0, 3, size=3).astype(float)
-    np.testing.assert_allclose(sft_credit(s[:, perm], e, k), sft_credit(s, e, k)[:, perm], atol=1e-14)
+    np.testing.assert_allclose(bon_sft_credit(s[:, perm], e, k=k), bon_sft_credit(s, e, k=k)[:, perm], atol=1e-14)
 
 
 def test_large_pools_stay_finite_and_exact():
@@ -305,22 +305,22 @@ def test_large_pools_stay_finite_and_exact():
     top, second = np.argsort(s[0])[-1], np.argsort(s[0])[-2]
     for k in (1, 64, 4095, 4096):
         for baseline in ("loo", "none"):
-            w = bon_credit(s, R, k, baseline=baseline)
+            w = bon_rl_credit(s, R, k=k, baseline=baseline)
             assert np.isfinite(w).all(), (k, baseline)
         # sum of no-baseline credit = k * U-statistic; U-statistic by bonft.estimate's rank formula
-        v = bon_credit(s, R, k, baseline="none").sum() / k
-        assert abs(v - bon_at_k(s[0], R[0], k)) < 1e-9, k
-        assert np.isfinite(pass_credit((R > 0), k)).all() and np.isfinite(sft_credit(s, [2000.0], k)).all()
+        v = bon_rl_credit(s, R, k=k, baseline="none").sum() / k
+        assert abs(v - bon_at_k(s[0], R[0], k=k)) < 1e-9, k
+        assert np.isfinite(pass_at_k_credit((R > 0), k=k)).all() and np.isfinite(bon_sft_credit(s, [2000.0], k=k)).all()
     # k = n: every subset is the whole pool, so credit is R_top for all (no baseline) and,
     # with loo, 0 except the top sample, which gets R_top - R_second.
-    np.testing.assert_allclose(bon_credit(s, R, n, baseline="none")[0], np.full(n, R[0, top]), atol=1e-12)
+    np.testing.assert_allclose(bon_rl_credit(s, R, k=n, baseline="none")[0], np.full(n, R[0, top]), atol=1e-12)
     want = np.zeros(n)
     want[top] = R[0, top] - R[0, second]
-    np.testing.assert_allclose(bon_credit(s, R, n)[0], want, atol=1e-12)
+    np.testing.assert_allclose(bon_rl_credit(s, R, k=n)[0], want, atol=1e-12)
     # heavy ties: two score levels only
     s2 = (rng.random((2, n)) < 0.5).astype(float)
     for k in (3, 4096):
-        w = bon_credit(s2, rng.normal(size=(2, n)), k)
+        w = bon_rl_credit(s2, rng.normal(size=(2, n)), k=k)
         assert np.isfinite(w).all()
 
 
@@ -328,45 +328,45 @@ def test_large_pools_stay_finite_and_exact():
 
 def test_numpy_in_numpy_out_torch_in_torch_out():
     s, R = np.array([[1.0, 2.0, 0.0]]), np.array([[0.0, 1.0, 1.0]])
-    out_np = bon_credit(s, R, 2)
-    out_t = bon_credit(torch.tensor(s, dtype=torch.float32), torch.tensor(R, dtype=torch.float32), 2)
+    out_np = bon_rl_credit(s, R, k=2)
+    out_t = bon_rl_credit(torch.tensor(s, dtype=torch.float32), torch.tensor(R, dtype=torch.float32), k=2)
     assert isinstance(out_np, np.ndarray) and out_np.dtype == np.float64
     assert isinstance(out_t, torch.Tensor) and out_t.dtype == torch.float32
     np.testing.assert_allclose(out_t.numpy(), out_np, atol=1e-7)
-    assert isinstance(pass_credit(torch.tensor([[True, False]]), 1), torch.Tensor)
-    assert pass_credit(torch.tensor([[True, False]]), 1).dtype == torch.float64
-    assert isinstance(bon_credit([[1.0, 2.0]], [[0.0, 1.0]], 1), np.ndarray)  # lists -> numpy
+    assert isinstance(pass_at_k_credit(torch.tensor([[True, False]]), k=1), torch.Tensor)
+    assert pass_at_k_credit(torch.tensor([[True, False]]), k=1).dtype == torch.float64
+    assert isinstance(bon_rl_credit([[1.0, 2.0]], [[0.0, 1.0]], k=1), np.ndarray)  # lists -> numpy
 
 
 def test_bad_input_messages():
     s, R = np.zeros((2, 4)), np.zeros((2, 4))
     with pytest.raises(ValueError, match=r"k must be <= n \(n=4\), got k=5"):
-        bon_credit(s, R, 5)
+        bon_rl_credit(s, R, k=5)
     with pytest.raises(ValueError, match=r"k must be >= 1, got k=0"):
-        pass_credit(s, 0)
+        pass_at_k_credit(s, k=0)
     with pytest.raises(TypeError, match=r"k must be an int, got float 2.0"):
-        bon_credit(s, R, 2.0)
+        bon_rl_credit(s, R, k=2.0)
     with pytest.raises(ValueError, match=r"rewards must have the same shape as scores \(2, 4\), got \(2, 3\)"):
-        bon_credit(s, np.zeros((2, 3)), 1)
+        bon_rl_credit(s, np.zeros((2, 3)), k=1)
     with pytest.raises(ValueError, match=r"scores must have shape \(B, n\) \(2 dimension\(s\)\), got shape \(4,\)"):
-        bon_credit(np.zeros(4), np.zeros(4), 1)
+        bon_rl_credit(np.zeros(4), np.zeros(4), k=1)
     bad = R.copy()
     bad[1, 2] = np.nan
     with pytest.raises(ValueError, match=r"rewards must be finite, got nan at index \(1, 2\)"):
-        bon_credit(s, bad, 1)
+        bon_rl_credit(s, bad, k=1)
     with pytest.raises(ValueError, match=r"baseline must be one of \('loo', 'none'\), got 'mean'"):
-        bon_credit(s, R, 1, baseline="mean")
+        bon_rl_credit(s, R, k=1, baseline="mean")
     with pytest.raises(ValueError, match=r"estimator must be one of \('unbiased', 'plugin'\), got 'exact'"):
-        pass_credit(s, 1, estimator="exact")
+        pass_at_k_credit(s, k=1, estimator="exact")
     with pytest.raises(ValueError, match=r"correct must hold only 0/1 \(or booleans\), got 0.5 at index \(0, 1\)"):
-        pass_credit([[1, 0.5]], 1)
+        pass_at_k_credit([[1, 0.5]], k=1)
     with pytest.raises(TypeError, match=r"positive_only must be a bool, got int 1"):
-        pass_credit(s, 1, positive_only=1)
+        pass_at_k_credit(s, k=1, positive_only=1)
     with pytest.raises(ValueError, match=r"expert_scores must have shape \(B,\) = \(2,\) to match scores, got \(3,\)"):
-        sft_credit(s, np.zeros(3), 1)
+        bon_sft_credit(s, np.zeros(3), k=1)
     with pytest.raises(ValueError, match=r"smoothing must be a finite number >= 0, got smoothing=-1.0"):
-        sft_credit(s, np.zeros(2), 1, smoothing=-1.0)
+        bon_sft_credit(s, np.zeros(2), k=1, smoothing=-1.0)
     with pytest.raises(TypeError, match=r"scores must be an array of numbers, got str"):
-        bon_credit("abc", R, 1)
+        bon_rl_credit("abc", R, k=1)
     with pytest.raises(ValueError, match=r"rewards must not be empty"):
         reinforce_credit(np.zeros((2, 0)))

@@ -70,3 +70,40 @@ def test_rule_catches_a_forbidden_import(tmp_path):
 @pytest.mark.parametrize("package", ["trainer", "plan", "cli", "verifiers", "tasks"])
 def test_packages_exist(package):
     assert (PKG / package / "__init__.py").exists()
+
+
+# ---------------------------------------------------------------- one calling convention (issue 12, section 3)
+DATA_ARGS = {  # the positional (data) parameters of each public function; everything else is keyword-only
+    "bon": {"softmax_policy": ["logits"], "bon_distribution": ["probs", "scores"],
+            "log_bon_distribution": ["probs", "scores"], "bon_value": ["probs", "scores", "rewards"],
+            "bon_success": ["p"], "bon_kl": ["probs", "scores"]},
+    "estimate": {"bon_at_k": ["scores", "rewards"], "bon_at_k_per_prompt": ["scores", "rewards"],
+                 "oracle_at_k_per_prompt": ["rewards"], "pass_at_k": ["n", "c"], "bootstrap_ci": ["values"],
+                 "summarize": ["scores", "rewards"], "default_ks": ["n_min"]},
+    "credit": {"bon_rl_credit": ["scores", "rewards"], "pass_at_k_credit": ["correct"],
+               "bon_sft_credit": ["scores", "expert_scores"], "reinforce_credit": ["rewards"],
+               "pool_value": ["scores", "rewards"]},
+    "losses": {"policy_gradient_loss": ["logprobs", "credit"], "bon_rl_loss": ["logprobs", "scores", "rewards"],
+               "pass_at_k_loss": ["logprobs", "correct"],
+               "bon_sft_loss": ["logprobs", "scores", "expert_logprobs", "expert_scores"],
+               "reinforce_loss": ["logprobs", "rewards"], "nll_loss": ["logprobs"]},
+}
+
+
+@pytest.mark.parametrize("module", sorted(DATA_ARGS))
+def test_public_functions_take_hyper_parameters_by_keyword_only(module):
+    import importlib
+    import inspect
+
+    mod = importlib.import_module(f"bonft.{module}")
+    public = {name: obj for name, obj in vars(mod).items()
+              if inspect.isfunction(obj) and obj.__module__ == mod.__name__ and not name.startswith("_")}
+    assert set(public) == set(DATA_ARGS[module]), "a new public function needs its data arguments listed here"
+    for name, fn in public.items():
+        params = list(inspect.signature(fn).parameters.values())
+        positional = [p.name for p in params if p.kind in (p.POSITIONAL_ONLY, p.POSITIONAL_OR_KEYWORD)]
+        assert positional == DATA_ARGS[module][name], f"{module}.{name}: positional {positional}"
+        rest = [p for p in params if p.name not in positional]
+        assert all(p.kind == p.KEYWORD_ONLY for p in rest), f"{module}.{name}: {[(p.name, p.kind) for p in rest]}"
+        if module == "losses":  # the loss convention: logprobs first, info only on request
+            assert positional[0] == "logprobs" and "return_info" in {p.name for p in rest}, name

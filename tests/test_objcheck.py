@@ -20,19 +20,10 @@ import pytest
 import torch
 
 import bonft.credit as _credit
-import bonft.losses as _losses
 from bonft.cli.main import main
 from bonft.objcheck import ToyPolicy, builtin, check_objective
 
 pytest_plugins = ["bonft.pytest_plugin"]
-
-# Local adapter until the renamed credit functions and policy_gradient_loss land (remove then).
-if not hasattr(_credit, "bon_rl_credit"):
-    _credit.bon_rl_credit = lambda s, r, *, k, **kw: _credit.bon_credit(s, r, k, **kw)
-    _credit.pass_at_k_credit = lambda c, *, k, **kw: _credit.pass_credit(c, k, **kw)
-    _credit.bon_sft_credit = lambda s, e, *, k, **kw: _credit.sft_credit(s, e, k, **kw)
-if not hasattr(_losses, "policy_gradient_loss"):
-    _losses.policy_gradient_loss = lambda lp, w, **kw: (-(torch.as_tensor(w, dtype=lp.dtype) * lp).sum(-1).mean(), {})
 
 DOC = pathlib.Path(__file__).resolve().parents[1] / "docs" / "objectives.md"
 

@@ -71,7 +71,7 @@ def run(args) -> int:
             raise ValueError(f"--ks must be <= the smallest pool (n={n_min}), got {max(ks)}")
         if ks is not None and min(ks) < 1:
             raise ValueError(f"--ks must be >= 1, got {min(ks)}")
-        summ = summarize(s, r, ks if ks is not None else default_ks(n_min),
+        summ = summarize(s, r, ks=ks if ks is not None else default_ks(n_min),
                          confidence=args.confidence, n_boot=args.boot, seed=args.seed)
         label = "" if t is None else f"T={t:g}"
         print()

@@ -20,10 +20,10 @@ def bootstrap_means(per_prompt: list[np.ndarray], *, paired: bool, n_boot: int, 
     rng = np.random.default_rng(seed)
     T, K = len(per_prompt), per_prompt[0].shape[1]
 
+    from .._boot import resample_counts
+
     def counts(P: int) -> np.ndarray:
-        idx = rng.integers(0, P, size=(n_boot, P))  # (B, P) drawn prompt indices
-        flat = (idx + P * np.arange(n_boot)[:, None]).ravel()  # offset row b by b*P to count per row
-        return np.bincount(flat, minlength=n_boot * P).reshape(n_boot, P).astype(np.float64)
+        return resample_counts(rng, P, n_boot)  # (B, P) times each prompt is drawn
 
     if paired:
         P = per_prompt[0].shape[0]

@@ -47,8 +47,9 @@ def prompts_fingerprint(prompts: Sequence[str]) -> str:
 
 
 def _seed_for(seed: int, temperature: float, chunk: int) -> int:
-    key = f"{seed}/{temperature:.9g}/{chunk}".encode()
-    return int.from_bytes(hashlib.sha256(key).digest()[:4], "little") & 0x7FFFFFFF
+    from .._seeds import derive_seed, float_key
+
+    return derive_seed(seed, float_key(temperature), chunk, bits=31)
 
 
 def cache_file(cache_dir, *, model_hash: str, prompts_hash: str, verifier: str, temperature: float, n: int,

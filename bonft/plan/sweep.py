@@ -208,7 +208,7 @@ def plan_pools(
     ks = np.arange(1, max_k + 1)
     per_prompt = []  # T arrays of (P_t, K)
     for t, s, r in zip(temps, scores_l, rewards_l):
-        per_prompt.append(np.asarray(bon_at_k_per_prompt(s, r, ks), dtype=np.float64))
+        per_prompt.append(np.asarray(bon_at_k_per_prompt(s, r, ks=ks), dtype=np.float64))
 
     # paired when all temperatures hold the same prompt set: align rows by key
     paired = all(k.shape == keys_l[0].shape and set(k.tolist()) == set(keys_l[0].tolist()) for k in keys_l)
@@ -371,7 +371,7 @@ def plan_exact(
             z = z - z.max(axis=-1, keepdims=True)
             p_t = np.exp(z) / np.exp(z).sum(axis=-1, keepdims=True)
         for j, k in enumerate(ks):
-            value[i, j] = float(np.mean(bon_value(p_t, s_b, r_b, int(k))))
+            value[i, j] = float(np.mean(bon_value(p_t, s_b, r_b, k=int(k))))
         if lens is not None:
             mean_tokens[i] = float(np.mean((p_t * lens).sum(-1)))
     return finish(

@@ -305,8 +305,9 @@ def derive_seed(seed: int, *, step: int, rank: int = 0, stream: int = 0) -> int:
     Different ranks (or streams) get independent streams; the same arguments
     always give the same seed, so a run (and a resumed run) is reproducible.
     """
-    vals = [check_int(nm, v, min=0) for nm, v in (("seed", seed), ("step", step), ("rank", rank), ("stream", stream))]
-    return int(np.random.SeedSequence(vals).generate_state(2, np.uint64)[0] >> np.uint64(1))
+    from .._seeds import derive_seed as _derive
+
+    return _derive(*[check_int(nm, v, min=0) for nm, v in (("seed", seed), ("step", step), ("rank", rank), ("stream", stream))])
 
 
 def prompt_seed(seed: int, *, step: int, slot: int, stream: int = 0) -> int:
@@ -316,9 +317,10 @@ def prompt_seed(seed: int, *, step: int, slot: int, stream: int = 0) -> int:
     rank holds the prompt (so W processes reproduce one process exactly), while
     ranks still draw differently because they hold different slots.
     """
+    from .._seeds import derive_seed as _derive
+
     vals = [check_int(nm, v, min=0) for nm, v in (("seed", seed), ("step", step), ("slot", slot), ("stream", stream))]
-    return int(np.random.SeedSequence([vals[0], vals[1], _PROMPT_STREAM, vals[2], vals[3]])
-               .generate_state(2, np.uint64)[0] >> np.uint64(1))
+    return _derive(vals[0], vals[1], _PROMPT_STREAM, vals[2], vals[3])
 
 
 def sample_per_prompt(model: Any, tokenizer: Any, prompts: Sequence[str], *, seeds: Sequence[int], n: int,

@@ -172,12 +172,12 @@ def report_from_pools(raw: dict, *, ks: Sequence[int], temperature: float, seed:
     rewards, n_tokens = raw["rewards"], raw["n_tokens"]
     P, n = rewards.shape
     ks = [int(k) for k in ks]
-    pass_sum = summarize(rewards, rewards, ks, confidence=confidence, n_boot=n_boot, seed=seed)
+    pass_sum = summarize(rewards, rewards, ks=ks, confidence=confidence, n_boot=n_boot, seed=seed)
     best = {}
     for name, sc in raw["scores"].items():
         if name == "exact":
             continue
-        s = summarize(sc, rewards, ks, confidence=confidence, n_boot=n_boot, seed=seed)
+        s = summarize(sc, rewards, ks=ks, confidence=confidence, n_boot=n_boot, seed=seed)
         best[name] = _curve(s, "bon")
     by_group = {}
     if groups is not None:

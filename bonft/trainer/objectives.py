@@ -61,13 +61,8 @@ class Objective:
     expert: bool = False
 
 
-def _credit_fn(new: str, old: str) -> Callable:
-    """The credit function under its 0.2 name, or its former name while the rename lands (k passed by keyword)."""
-    return getattr(C, new, None) or getattr(C, old)
-
-
 def _pass_at_k(estimator: str, positive_only: bool) -> Callable:
-    return lambda p, k: _credit_fn("pass_at_k_credit", "pass_credit")(
+    return lambda p, k: C.pass_at_k_credit(
         p.correct, k=k, estimator=estimator, positive_only=positive_only)
 
 
@@ -81,7 +76,7 @@ OBJECTIVES: dict[str, Objective] = {
         credit=lambda p, k: C.reinforce_credit(p.rewards, baseline="loo"), value=lambda p, k: p.rewards.mean(-1),
         summary="mean reward (pass@1), leave-one-out REINFORCE (Kool et al. 2019): the baseline", uses_k=False),
     "best_of_k": Objective(
-        credit=lambda p, k: _credit_fn("bon_rl_credit", "bon_credit")(p.scores, p.rewards, k=k, baseline="loo"),
+        credit=lambda p, k: C.bon_rl_credit(p.scores, p.rewards, k=k, baseline="loo"),
         value=lambda p, k: C.pool_value(p.scores, p.rewards, k=k),
         summary="best-of-k with the training verifier selecting (Chow et al. 2024, BoN-RL)"),
     "pass_at_k": Objective(
@@ -92,7 +87,7 @@ OBJECTIVES: dict[str, Objective] = {
     "pass_at_k_positive": Objective(
         credit=_pass_at_k("unbiased", True), value=_pass_value, summary="pass@k, credit on correct samples only"),
     "best_of_k_sft": Objective(
-        credit=lambda p, k: _credit_fn("bon_sft_credit", "sft_credit")(p.scores, p.expert_scores, k=k),
+        credit=lambda p, k: C.bon_sft_credit(p.scores, p.expert_scores, k=k),
         value=None, expert=True,
         summary="best-of-k-aware supervised fine-tuning on reference answers (Chow et al. 2024, BoN-SFT)"),
 }
@@ -135,18 +130,11 @@ def policy_loss(logprobs: torch.Tensor, credit: torch.Tensor, *, mask: torch.Ten
     logprobs, mask, anchor_logprobs: (b, n, T); credit: (b, n); expert_logprobs, expert_mask: (b, T)
     -> loss (), info (name -> number; ``kl`` when an anchor is given).
     """
-    core = getattr(L, "policy_gradient_loss", None)
-    kw = dict(mask=mask, token_reduction=token_reduction, reduction="sum", anchor_logprobs=anchor_logprobs,
-              anchor_weight=anchor_weight)
-    if core is not None:
-        loss, info = core(logprobs, credit, return_info=True, **kw)
-    else:  # until bonft.losses exposes its core: the same core through its internal helpers
-        lp, m, seq = L._prepare("logprobs", logprobs, "mask", mask, token_reduction, 2)
-        loss, info = L._pg_loss(seq, credit, lp, m, anchor_logprobs, float(anchor_weight), token_reduction, "sum", {})
+    loss, info = L.policy_gradient_loss(logprobs, credit, mask=mask, token_reduction=token_reduction, reduction="sum",
+                                        anchor_logprobs=anchor_logprobs, anchor_weight=anchor_weight, return_info=True)
     info = {key: float(v) for key, v in info.items()}
     if expert_logprobs is not None:
-        out = L.nll_loss(expert_logprobs, mask=expert_mask, token_reduction=token_reduction, reduction="sum")
-        nll = out[0] if isinstance(out, tuple) else out
+        nll = L.nll_loss(expert_logprobs, mask=expert_mask, token_reduction=token_reduction, reduction="sum")
         loss = loss + nll
         info["expert_logprob"] = -float(nll.detach()) / expert_logprobs.shape[0]
     return loss, info

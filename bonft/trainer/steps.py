@@ -46,7 +46,9 @@ def dist_info() -> tuple[int, int]:
 
 def step_seed(seed: int, step: int, rank: int = 0, stream: int = 0) -> int:
     """A 63-bit seed for one (seed, step, rank, stream); independent streams, no collisions in practice."""
-    return int(np.random.SeedSequence([seed, step, rank, stream]).generate_state(2, np.uint64)[0] >> np.uint64(1))
+    from .._seeds import derive_seed
+
+    return derive_seed(seed, step, rank, stream)
 
 
 def k_at(cfg: TrainConfig, rl_step: int) -> int:

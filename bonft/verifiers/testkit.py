@@ -290,8 +290,8 @@ def check_verifier(
 
         n_min = min(len(t) for t in true)
         kk = default_ks(n_min) if ks is None else list(ks)
-        bon = bon_at_k_per_prompt(scores, true, kk).mean(axis=0)
-        orc = oracle_at_k_per_prompt(true, kk).mean(axis=0)
+        bon = bon_at_k_per_prompt(scores, true, ks=kk).mean(axis=0)
+        orc = oracle_at_k_per_prompt(true, ks=kk).mean(axis=0)
         rep.ks, rep.bon, rep.oracle = [int(k) for k in kk], [float(x) for x in bon], [float(x) for x in orc]
 
     _problems(rep, max_failure_rate=max_failure_rate, min_auc=min_auc, bend_tol=bend_tol)

@@ -44,7 +44,7 @@ def run(ctx, scale_mode="right"):
     for _ in range(STEPS):
         opt.zero_grad()
         logp = torch.log_softmax(model(x), -1).gather(-1, actions)  # (b, A) -> (b, n)
-        loss, _ = reinforce_loss(logp, rewards, baseline="loo", reduction="sum")
+        loss = reinforce_loss(logp, rewards, baseline="loo", reduction="sum")
         (loss * scale).backward()
         opt.step()
     return {k: v.detach().clone() for k, v in unwrap_model(model).state_dict().items()}
