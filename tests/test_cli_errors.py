@@ -242,3 +242,15 @@ def test_console_entry_point_closed_pipe_and_errors(files):
                          capture_output=True, text=True, timeout=120)
     assert res.returncode == 2 and res.stderr.startswith("bonft estimate: error: bad8.jsonl line 2: not UTF-8")
     assert "Traceback" not in res.stderr
+
+
+def test_verifier_examples_that_are_not_utf8(files, tmp_path):
+    (tmp_path / "v.py").write_text("def judge(prompts, responses):\n    return [1.0] * len(responses)\n")
+    (tmp_path / "ex.jsonl").write_bytes(b'{"prompt": "a", "response": "1"}\n{"prompt": "b\xff", "response": "2"}\n')
+    expect_error(["check-verifier", f"{tmp_path / 'v.py'}:judge", "--examples", tmp_path / "ex.jsonl"],
+                 r"--examples file \S+ex.jsonl line 2: not UTF-8 text \(byte 0xff\)")
+
+
+def test_sampling_commands_say_what_they_draw(trained, tmp_path):
+    code, out, err = bonft("eval", trained, "--n", "2", "--ks", "1,2")
+    assert code == 0 and err == "sampling 2 responses for each of 2 held-out prompts at temperature 1 (4 samples)...\n"

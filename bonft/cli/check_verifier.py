@@ -31,6 +31,14 @@ def run(args) -> int:
 
     if not os.path.isfile(args.examples):
         raise FileNotFoundError(f"--examples must be an existing JSONL file, got {args.examples!r}")
+    with open(args.examples, "rb") as fh:
+        raw = fh.read()
+    try:
+        raw.decode("utf-8")
+    except UnicodeDecodeError as e:
+        line = raw.count(b"\n", 0, e.start) + 1
+        raise ValueError(f"--examples file {args.examples} line {line}: not UTF-8 text "
+                         f"(byte {raw[e.start]:#04x}); save the file as UTF-8") from None
     verifier = load_verifier(args.verifier)
     report = check_verifier(verifier, read_examples(args.examples), repeats=args.repeats, threshold=args.threshold,
                             timeout=args.timeout, max_failure_rate=args.max_failure_rate)

@@ -46,6 +46,16 @@ def load_for_eval(args: argparse.Namespace, *, n: int, ks: list[int], temperatur
     return ckpt, cfg, build_run(cfg)
 
 
+def announce(r, *, n: int, temperatures: list[float]) -> None:
+    """One line on stderr before the sampling starts: what is drawn, so a long run is not silent."""
+    import sys
+
+    held = len(r.eval[: r.cfg.eval_prompts or len(r.eval)])
+    temps = ", ".join(f"{t:g}" for t in temperatures)
+    print(f"sampling {n} responses for each of {held} held-out prompts at temperature {temps} "
+          f"({n * held * len(temperatures):,} samples)...", file=sys.stderr, flush=True)
+
+
 def run(args: argparse.Namespace) -> int:
     import torch
 
@@ -59,6 +69,7 @@ def run(args: argparse.Namespace) -> int:
     temperature = check_positive("--temperature", args.temperature)
     torch.set_num_threads(1)  # tiny models: one thread is fastest
     ckpt, cfg, r = load_for_eval(args, n=n, ks=ks, temperature=temperature)
+    announce(r, n=n, temperatures=[temperature])
     rep = evaluate_run(r, step=-1) if args.seed == 0 else _eval_seeded(r, args.seed)
     print(f"{ckpt}\n{rep.table()}")
     if args.json:

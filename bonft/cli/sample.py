@@ -4,7 +4,7 @@ from __future__ import annotations
 import argparse
 
 from ._args import parse_list
-from .evaluate import add_common, load_for_eval
+from .evaluate import add_common, announce, load_for_eval
 
 HELP = "sample responses from a checkpoint and write a samples JSONL (input of bonft estimate / bonft plan)"
 DESCRIPTION = (
@@ -40,6 +40,7 @@ def run(args: argparse.Namespace) -> int:
     if which not in names:
         raise ValueError(f"--verifier must be one of {names}, got {args.verifier!r}")
     held = r.eval[: cfg.eval_prompts or len(r.eval)]
+    announce(r, n=n, temperatures=temps)
     rows = []
     for t in temps:
         rep, raw = evaluate_policy(
