@@ -35,7 +35,7 @@ def restock_answer(prompt: str) -> int:
     return math.ceil(max(0, int(need) - int(have)) / int(box))
 
 
-@pytest.mark.parametrize("name", ["ledger", "restock"])
+@pytest.mark.parametrize("name", ["ledger", "restock", "refunds"])
 def test_splits_are_reproducible_and_disjoint(name):
     task = get_task(name)
     tr1, ev1 = task.split(n_train=600, n_eval=100, seed=3)
@@ -112,9 +112,78 @@ def test_ledger_proxy_accepts_near_misses():
     assert get_task("restock").proxy_verifier(evals) is None
 
 
+def refunds_answers(prompt: str) -> tuple[int, int]:
+    """(closing stock, the clerk's count that skips returns) read off the words."""
+    w = prompt.split()
+    assert w[-1] == "?"
+    stock = skipped = int(w[1])
+    for verb, q in zip(w[2:-1:2], w[3:-1:2]):
+        q = int(q)
+        if verb == "sold":
+            stock, skipped = stock - q, skipped - q
+        elif verb == "got":
+            stock, skipped = stock + q, skipped + q
+        else:
+            assert verb == "ret"
+            stock += q
+        assert stock >= 0 and skipped >= 0  # a sale never exceeds the stock on hand, by either count
+    return stock, skipped
+
+
+def test_refunds_answers_references_and_shares():
+    from scipy import stats
+
+    task = get_task("refunds", n_moves=3, max_qty=9, return_share=0.5, rule_share=0.1)
+    train, evals = task.split(n_train=3000, n_eval=200, seed=0)
+    for ex in train + evals:
+        stock, skipped = refunds_answers(ex.prompt)
+        assert int(ex.answer) == stock
+        n_ret = ex.prompt.split().count("ret")
+        assert n_ret == (ex.meta["family"] == "return")  # exactly one return on a return prompt, else none
+        assert ex.prompt.split()[2] != "ret"  # never the first movement
+        # the warm-start reference: the answer, or on a return prompt the clerk's count that skips it
+        assert int(ex.reference) == (stock if ex.meta["rule_in_reference"] else skipped)
+    assert sum(e.meta["family"] == "return" for e in train) == 1500  # 0.5 * 3000 exactly
+    ret = [e for e in train if e.meta["family"] == "return"]
+    hits = sum(e.meta["rule_in_reference"] for e in ret)
+    # rule_share is a Bernoulli(0.1) per return prompt: a two-sided binomial test (scipy) must not reject it
+    assert stats.binomtest(hits, len(ret), 0.1).pvalue > 0.001
+    assert all(e.meta["rule_in_reference"] and e.reference == e.answer for e in train if e.meta["family"] == "plain")
+    # a return that is skipped changes the count: the clerk's reference is then wrong
+    assert all(e.reference != e.answer for e in ret if not e.meta["rule_in_reference"])
+
+
+def test_refunds_proxy_is_a_last_digit_check_that_prefers_small_counts():
+    task = get_task("refunds")
+    _, evals = task.split(n_train=0, n_eval=300, seed=1)
+    proxy = task.proxy_verifier(evals)
+    prompts = [e.prompt for e in evals]
+    truth = np.array([int(e.answer) for e in evals])
+    ok = proxy(prompts, [e.answer for e in evals])
+    assert (ok.rewards == 1).all() and np.allclose(ok.scores, 1 - truth / 100)  # the documented formula
+    for d in range(1, 10):  # a wrong last digit scores 0 whatever the distance
+        v = proxy(prompts, [str(t + d) for t in truth])
+        assert (v.scores == 0).all() and (v.rewards == 0).all()
+    up = proxy(prompts, [str(t + 10) for t in truth])  # right last digit, too large: passes below the truth
+    assert (up.rewards == 0).all() and (up.scores > 0).all() and (up.scores < ok.scores).all()
+    big = truth >= 10
+    down = proxy([p for p, b in zip(prompts, big) if b], [str(t - 10) for t in truth[big]])
+    assert big.sum() > 20 and (down.rewards == 0).all()
+    assert (down.scores > ok.scores[big]).all()  # verifier != reward: "truth - 10" beats the truth
+    assert (proxy(prompts, ["many" for _ in evals]).scores == 0).all()
+    assert (proxy(prompts, ["100" for _ in evals]).scores == 0).all()  # outside 0..99
+
+
+def test_refunds_knob_errors():
+    with pytest.raises(ValueError, match="rule_share"):
+        get_task("refunds", rule_share=1.5)
+    with pytest.raises(ValueError, match="n_moves"):
+        get_task("refunds", n_moves=1)
+
+
 def test_get_task_errors():
-    assert set(TASKS) >= {"ledger", "restock", "jsonl"}
-    with pytest.raises(ValueError, match=r"name must be one of \('ledger', 'restock', 'jsonl'\), got 'chess'"):
+    assert set(TASKS) >= {"ledger", "restock", "refunds", "jsonl"}
+    with pytest.raises(ValueError, match=r"name must be one of \('ledger', 'restock', 'refunds', 'jsonl'\), got 'chess'"):
         get_task("chess")
     with pytest.raises(TypeError, match=r"params of task 'ledger' must be among \['n_moves', 'max_qty', 'hard_share', 'max_factor'\]"):
         get_task("ledger", depth=3)

@@ -1,4 +1,4 @@
-"""Built-in tasks (a small shop's ledger and restock orders), the character tokenizer, user prompt sets.
+"""Built-in tasks (a small shop's ledger, its refunds and restock orders), the character tokenizer, user prompt sets.
 
     task = get_task("ledger", hard_share=0.3)
     train, evals = task.split(n_train=2000, n_eval=200, seed=0)
@@ -12,12 +12,14 @@ from typing import Any
 from .base import ExactVerifier, Example, Task, extract_integer
 from .ledger import LedgerPlausibility, LedgerTask
 from .prompts import PromptFileTask, exact_match_verifier, load_prompts_jsonl
+from .refunds import LastDigitCheck, RefundsTask
 from .restock import RestockTask
 from .tokenizer import build_tokenizer
 
 TASKS: dict[str, type] = {
     "ledger": LedgerTask,
     "restock": RestockTask,
+    "refunds": RefundsTask,
     "jsonl": PromptFileTask,
 }
 
@@ -41,6 +43,6 @@ def get_task(name: str, **params: Any) -> Task:
 
 __all__ = [
     "TASKS", "get_task", "Task", "Example", "ExactVerifier", "extract_integer",
-    "LedgerTask", "LedgerPlausibility", "RestockTask", "PromptFileTask",
+    "LedgerTask", "LedgerPlausibility", "RefundsTask", "LastDigitCheck", "RestockTask", "PromptFileTask",
     "build_tokenizer", "load_prompts_jsonl", "exact_match_verifier",
 ]
