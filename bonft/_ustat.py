@@ -46,6 +46,47 @@ def rank_weights(n: int, ks) -> np.ndarray:
     return np.ascontiguousarray(w[:, n - 1 :: -1]) if n > 0 else w[:, :0]
 
 
+_TAIL = 2.0**-60  # total weight a banded product may drop: below float64 rounding of the result
+_BAND = 32  # subset sizes per band
+
+
+@functools.lru_cache(maxsize=32)
+def banded_weights(n: int, ks: tuple[int, ...]) -> tuple[tuple[int, int, int, np.ndarray], ...]:
+    """The weights of ``ks`` as bands ``(k0, k1, start, W (n - start, k1 - k0))`` for ``r[:, start:] @ W``.
+
+    For k >= 2 the lowest ranks carry almost no weight (``w_k(i) ~ (i/n)^(k-1)``); each band of
+    ``_BAND`` consecutive subset sizes starts at the first rank where the weight below it reaches
+    ``2^-60`` for its smallest k, so a product over the band drops at most ``2^-60 max|r|`` -
+    below the rounding of the result - and large k cost ~``n/k`` instead of ``n`` per prompt.
+    Cached per ``(n, ks)`` (planners and evaluations ask for the same few), read-only.
+    """
+    w = rank_weights(n, ks)  # (K, n)
+    below = np.cumsum(w, axis=1)  # weight of the ranks <= i
+    cut = (below < _TAIL).sum(axis=1)  # first rank to keep, per k
+    bands = []
+    for k0 in range(0, len(ks), _BAND):
+        k1 = min(k0 + _BAND, len(ks))
+        start = int(cut[k0:k1].min())
+        W = np.ascontiguousarray(w[k0:k1, start:].T)  # (n - start, k1 - k0)
+        W.flags.writeable = False
+        bands.append((k0, k1, start, W))
+    return tuple(bands)
+
+
+def weighted_ranks(r: np.ndarray, ks) -> np.ndarray:
+    """Rewards in ascending score order ``(P, n)`` -> best-of-k values ``(P, K)``: ``sum_i w_k(i) r_(i)``."""
+    P, n = r.shape
+    ks = np.asarray(ks, dtype=np.int64)
+    out = np.empty((P, len(ks)))
+    if np.all(ks[1:] >= ks[:-1]):  # the usual case: ascending k, bands are column slices
+        for k0, k1, start, W in banded_weights(n, tuple(ks.tolist())):
+            np.matmul(r[:, start:], W, out=out[:, k0:k1])
+        return out
+    order = np.argsort(ks, kind="stable")  # bands of nearby k share most of their support
+    out[:, order] = weighted_ranks(r, ks[order])
+    return out
+
+
 @functools.lru_cache(maxsize=256)
 def count_tables(n: int, k: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Three ``(n+2,)`` tables, entry ``x+1`` for ``x = -1..n``:

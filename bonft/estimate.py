@@ -53,7 +53,7 @@ from bonft._checks import (
 )
 from bonft._passk import INT64_MAX, pass_at_k_counts
 from bonft._ties import first_of_group, tie_means
-from bonft._ustat import rank_weights
+from bonft._ustat import weighted_ranks
 
 __all__ = [
     "bon_at_k",
@@ -127,8 +127,7 @@ def _bon_matrix(scores: np.ndarray, rewards: np.ndarray, ks: np.ndarray) -> np.n
     if len(rows):
         # ties: every member of a tied group gets the group's mean reward
         r[rows] = tie_means(r[rows], first_of_group(s_rows))
-    w = np.ascontiguousarray(rank_weights(n, ks).T)  # (n, K)
-    return r @ w  # (P, n) @ (n, K) -> (P, K)
+    return weighted_ranks(r, ks)  # (P, n) -> (P, K), banded products of the cached weights
 
 
 # ----------------------------------------------------------------------------- validation helpers
@@ -270,10 +269,10 @@ def _int_array(name: str, x: Any) -> np.ndarray:
         big = [int(v) for v in arr.ravel() if abs(int(v)) > INT64_MAX]
         if big:
             raise ValueError(f"{name} must fit in int64 (|{name}| <= 2**63 - 1), got {name}={big[0]}")
-        return arr.astype(np.int64)
+        return arr.astype(np.int64, copy=False)
     if arr.dtype == np.uint64 and arr.size and int(arr.max()) > INT64_MAX:
         raise ValueError(f"{name} must fit in int64 (|{name}| <= 2**63 - 1), got {name}={int(arr.max())}")
-    return arr.astype(np.int64)
+    return arr.astype(np.int64, copy=False)
 
 
 def pass_at_k(n, c, *, k):
@@ -307,8 +306,31 @@ def pass_at_k(n, c, *, k):
         if bad.any():
             i = tuple(int(j) for j in np.argwhere(bad)[0]) if bad.ndim else ()
             raise ValueError(f"{what} (n={int(n_[i])}), got {name}={int((c_ if name == 'c' else k_)[i])}")
-    out = pass_at_k_counts(n_, c_, k_)
+    out = _pass_at_k_shared(n_, c_, k_) if n_.size > 4096 else pass_at_k_counts(n_, c_, k_)
     return float(out) if scalar else np.asarray(out, dtype=np.float64)
+
+
+def _pass_at_k_shared(n: np.ndarray, c: np.ndarray, k: np.ndarray) -> np.ndarray:
+    """Large arrays: evaluate each distinct (n, c, k) once (pools of one size share at most n+1 values)."""
+    n_lo, n_hi, k_lo, k_hi = n.min(), n.max(), k.min(), k.max()
+    if k_lo == k_hi and n_hi < 4 * n.size:  # one k, small pools: a table over (pool size, c)
+        sizes = np.flatnonzero(np.bincount(n.ravel(), minlength=int(n_hi) + 1))  # distinct pool sizes
+        if len(sizes) <= 64:
+            row = np.zeros(int(n_hi) + 1, dtype=np.int64)
+            row[sizes] = np.arange(len(sizes))
+            cs = np.arange(n_hi + 1)
+            table = pass_at_k_counts(sizes[:, None], np.minimum(cs[None, :], sizes[:, None]), k_hi)  # (S, n_hi+1)
+            return table.ravel().take(row.take(n) * (n_hi + 1) + c)
+    span = (int(n_hi) + 1) * (int(n_hi) + 1) * (int(k_hi) + 1)
+    if span >= 2**62:  # no int64 key: every element on its own
+        return pass_at_k_counts(n, c, k)
+    key = (n * (n_hi + 1) + c) * (k_hi + 1) + k
+    uniq, inv = np.unique(key, return_inverse=True)
+    if len(uniq) > n.size // 4:
+        return pass_at_k_counts(n, c, k)
+    kk = uniq % (k_hi + 1)
+    cc = (uniq // (k_hi + 1)) % (n_hi + 1)
+    return pass_at_k_counts(uniq // ((k_hi + 1) * (n_hi + 1)), cc, kk).take(inv).reshape(n.shape)
 
 
 def bootstrap_ci(values, *, confidence: float = 0.95, n_boot: int = 2000, seed: int = 0):

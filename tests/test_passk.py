@@ -120,3 +120,31 @@ def test_rank_weights_and_count_tables_match_fractions():
                     if den:
                         v = float(Fraction(num, den))
                         assert tab[x + 1] == pytest.approx(v, rel=REL, abs=1e-280), (n, k, x)
+
+
+def test_large_arrays_share_values_and_stay_exact():
+    # > 4096 elements take the shared-table path (one evaluation per distinct (n, c, k)); same numbers
+    rng = np.random.default_rng(2)
+    n = rng.choice([16, 64, 1000], 20000)
+    c = (rng.random(20000) * (n + 1)).astype(np.int64)
+    for k in (1, 8, np.minimum(n, 12)):
+        got = pass_at_k(n, c, k=k)
+        np.testing.assert_array_equal(got, pass_at_k_counts(n, c, k))
+        for j in range(0, 20000, 997):
+            kj = int(np.broadcast_to(k, n.shape)[j])
+            assert got[j] == pytest.approx(float(exact_pass(int(n[j]), int(c[j]), kj)), rel=REL, abs=0)
+
+
+def test_banded_best_of_k_matches_exact_sums():
+    # all k in 1..n on n = 300: the banded weighted sums against exact rational sums (fractions)
+    from bonft.estimate import bon_at_k_per_prompt
+
+    rng = np.random.default_rng(3)
+    n = 300
+    scores = rng.permutation(n)[None, :].astype(float)
+    rewards = rng.integers(0, 5, (1, n)).astype(float)
+    got = bon_at_k_per_prompt(scores, rewards, ks=list(range(1, n + 1)))[0]
+    r = rewards[0][np.argsort(scores[0])].astype(int)
+    for k in (1, 2, 17, 150, 299, 300):
+        want = Fraction(sum(math.comb(i, k - 1) * int(r[i]) for i in range(n)), math.comb(n, k))
+        assert got[k - 1] == pytest.approx(float(want), rel=1e-13, abs=1e-15), k

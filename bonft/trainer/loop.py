@@ -158,14 +158,19 @@ def _check_shares(cfg: TrainConfig, world: int) -> None:
 
 def _restore(run: Run, resume: bool) -> tuple[int, dict | None]:
     """Rank 0 picks the checkpoint (or refuses); every rank loads it. Writes config.toml, trims metrics.jsonl."""
-    from .checkpoint import latest_checkpoint, load_state, set_rng_state
+    from .checkpoint import CheckpointError, latest_checkpoint, load_state, set_rng_state
     from .distributed import broadcast_object
     from .models import load_model
 
     out, ckpt, problem = run.out, None, None
     if run.is_main:
-        ckpt = latest_checkpoint(out) if resume else None
-        if resume and ckpt is None and (out / "summary.json").exists():
+        try:  # a checkpoint error goes to every rank, so none waits out the process-group timeout
+            ckpt = latest_checkpoint(out) if resume else None
+        except CheckpointError as e:
+            ckpt, problem = None, str(e)
+        if problem:
+            pass
+        elif resume and ckpt is None and (out / "summary.json").exists():
             problem = f"--resume: {out} holds a finished run without checkpoints"
         elif not resume and (out / "checkpoints").exists():
             problem = f"run_dir {str(out)!r} already holds checkpoints; pass --resume or choose another --out"
