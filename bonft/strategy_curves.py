@@ -41,8 +41,9 @@ class StrategyCurves:
         return self.n_prompts >= MIN_BOOT_PROMPTS
 
     def best(self) -> list[str]:
-        """The strategy with the highest mean at each k."""
-        return [max(self.names, key=lambda s: self.mean[s][j]) for j in range(len(self.ks))]
+        """The servable strategy with the highest mean at each k (``pass`` is an oracle, not servable)."""
+        names = [s for s in self.names if s != "pass"] or self.names
+        return [max(names, key=lambda s: self.mean[s][j]) for j in range(len(self.ks))]
 
     def table(self) -> str:
         """One row per k, one column block per strategy (mean and interval), and the best one."""

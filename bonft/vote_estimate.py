@@ -334,24 +334,23 @@ def strategy_at_k(strategy, *, ks, rewards, scores=None, answers=None, max_subse
     if st.name == "majority":
         v = vote_at_k_per_prompt(answers, rewards, ks=ks)
     elif st.name == "pass":
-        v = _estimate.oracle_at_k_per_prompt(rewards, ks)
+        v = _estimate.oracle_at_k_per_prompt(rewards, ks=ks)
     else:
-        v = _estimate.bon_at_k_per_prompt(scores, rewards, ks)
+        v = _estimate.bon_at_k_per_prompt(scores, rewards, ks=ks)
     v = np.asarray(v).reshape(len(v), -1)
     return v, np.zeros_like(v)
 
 
 def _bon_credit(scores, rewards, *, k):
-    from bonft import credit as _credit
+    from bonft.credit import bon_rl_credit
 
-    fn = getattr(_credit, "bon_rl_credit", None) or getattr(_credit, "bon_credit")
-    return fn(scores, rewards, k=k)
+    return bon_rl_credit(scores, rewards, k=k)
 
 
 def strategy_credit(strategy, scores, rewards, *, k, answers=None, max_subsets=20_000, seed=0):
     """Per-sample credit ``(B, n)`` of any strategy, unbiased for ``grad V_k``, leave-one-out baseline.
 
-    best-of-k: :mod:`bonft.credit`'s best-of-k credit; pass: the same with ``scores = rewards``;
+    best-of-k: :func:`bonft.credit.bon_rl_credit`; pass: the same with ``scores = rewards``;
     majority: :func:`vote_credit`; weighted: :func:`weighted_vote_credit`.
     """
     from bonft.strategies import get_strategy

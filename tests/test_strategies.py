@@ -19,7 +19,6 @@ import pytest
 import torch
 
 from bonft import credit as C
-from bonft.estimate import bon_at_k_per_prompt
 from bonft.strategies import (MajorityVote, WeightedVote, get_strategy, strategy_value, vote_value,
                               weighted_vote_value)
 from bonft.vote_estimate import (strategy_at_k, strategy_credit, vote_at_k_per_prompt, vote_credit,
@@ -183,8 +182,7 @@ def test_weighted_credit_sampled_is_unbiased_for_exact():
 
 def test_best_of_k_credit_is_the_library_credit():
     a, s, r = _pool(6, 8)
-    fn = getattr(C, "bon_rl_credit", None) or C.bon_credit
-    np.testing.assert_allclose(strategy_credit("best-of-k", [s], [r], k=3), fn([s], [r], k=3), atol=0)
+    np.testing.assert_allclose(strategy_credit("best-of-k", [s], [r], k=3), C.bon_rl_credit([s], [r], k=3), atol=0)
 
 
 def test_torch_in_torch_out():

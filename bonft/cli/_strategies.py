@@ -97,10 +97,12 @@ def run_plan(args, table, temps_wanted) -> int:
     ks = None if args.max_k is None else list(range(1, args.max_k + 1))
     grid = {t: _curves(table, t if len(temperatures_of(table)) > 1 else None, names, ks, args) for t in temps}
     first = next(iter(grid.values()))
+    print("best servable strategy (pass, the oracle, is a ceiling only):")
     print(f"{'k':>6}  {'best strategy':>14}  {'T':>5}  {'V_k':>7}  {'interval':>17}")
     rows = []
     for j, k in enumerate(first.ks):
-        best = max(((t, s) for t in grid for s in names), key=lambda ts: grid[ts[0]].mean[ts[1]][j])
+        servable = [s for s in names if s != "pass"] or names  # pass is an oracle
+        best = max(((t, s) for t in grid for s in servable), key=lambda ts: grid[ts[0]].mean[ts[1]][j])
         c = grid[best[0]]
         t_txt = "-" if best[0] is None else f"{best[0]:g}"
         print(f"{int(k):>6}  {best[1]:>14}  {t_txt:>5}  {c.mean[best[1]][j]:>7.4f}  "
