@@ -31,7 +31,7 @@ if sys.version_info >= (3, 11):
 else:  # pragma: no cover - Python 3.10
     import tomli as tomllib
 
-from .._checks import check_choice, check_int
+from .._checks import check_choice, check_fraction, check_int, check_positive
 
 from .objectives import OBJECTIVES  # the registry: objective name -> credit function + options
 
@@ -127,14 +127,15 @@ class TrainConfig:
 
 
 # ------------------------------------------------------------------- validation
-def _check_real(name: str, value: Any, *, min: float | None = None, strict: bool = False) -> float:
+def _check_real(name: str, value: Any) -> float:
+    """Every float key: a finite real number >= 0 (keys with tighter ranges are checked again below)."""
     if isinstance(value, bool) or not isinstance(value, numbers.Real):
         raise TypeError(f"{name} must be a real number, got {type(value).__name__} {value!r}")
     value = float(value)
     if value != value or value in (float("inf"), float("-inf")):
         raise ValueError(f"{name} must be finite, got {name}={value}")
-    if min is not None and (value <= min if strict else value < min):
-        raise ValueError(f"{name} must be {'>' if strict else '>='} {min}, got {name}={value}")
+    if value < 0:
+        raise ValueError(f"{name} must be >= 0.0, got {name}={value}")
     return value
 
 
@@ -149,14 +150,12 @@ def validate(c: TrainConfig) -> None:
         if f.type in ("int", int):
             check_int(f.name, v, min=0)
         if f.type in ("float", float):
-            setattr(c, f.name, _check_real(f.name, v, min=0.0))
+            setattr(c, f.name, _check_real(f.name, v))
     if not isinstance(c.task_params, dict):
         raise TypeError(f"task_params must be a table of task knobs, got {type(c.task_params).__name__}")
     check_choice("objective", c.objective, tuple(OBJECTIVES))
     check_choice("optimizer", c.optimizer, OPTIMIZERS)
-    _check_real("adam_eps", c.adam_eps, min=0.0, strict=True)
-    if not c.momentum < 1:
-        raise ValueError(f"momentum must be in [0, 1), got momentum={c.momentum}")
+    check_fraction("momentum", c.momentum, open_high=True)
     if c.momentum and c.optimizer != "sgd":
         raise ValueError(f"momentum applies to optimizer='sgd' only, got momentum={c.momentum} with optimizer={c.optimizer!r}")
     check_choice("k_schedule", c.k_schedule, K_SCHEDULES)
@@ -182,12 +181,10 @@ def validate(c: TrainConfig) -> None:
     check_int("n_boot", c.n_boot, max=1_000_000)  # more replicates cost memory and time and move no interval
     if c.prompts_per_step % c.grad_accum:
         raise ValueError(f"prompts_per_step must be divisible by grad_accum (grad_accum={c.grad_accum}), got prompts_per_step={c.prompts_per_step}")
-    for name in ("lr", "sft_lr", "temperature", "eval_temperature"):
-        _check_real(name, getattr(c, name), min=0.0, strict=True)
-    if not 0 < c.top_p <= 1:
-        raise ValueError(f"top_p must be in (0, 1], got top_p={c.top_p}")
-    if not 0 < c.confidence < 1:
-        raise ValueError(f"confidence must be in (0, 1), got confidence={c.confidence}")
+    for name in ("lr", "sft_lr", "temperature", "eval_temperature", "adam_eps"):
+        check_positive(name, getattr(c, name))
+    check_fraction("top_p", c.top_p, open_low=True)
+    check_fraction("confidence", c.confidence, open_low=True, open_high=True)
     if not isinstance(c.eval_ks, (list, tuple)) or not c.eval_ks:
         raise TypeError(f"eval_ks must be a non-empty list of ints, got {c.eval_ks!r}")
     for kk in c.eval_ks:

@@ -58,7 +58,7 @@ def train(cfg: TrainConfig, *, resume: bool = False, progress: bool = True) -> d
     """
     from tqdm.auto import tqdm
 
-    from .distributed import shutdown, wrap_model
+    from .distributed import shutdown, step_guard, wrap_model
 
     if not isinstance(cfg, TrainConfig):
         raise TypeError(f"cfg must be a TrainConfig, got {type(cfg).__name__}")
@@ -78,7 +78,8 @@ def train(cfg: TrainConfig, *, resume: bool = False, progress: bool = True) -> d
                 continue
             _enter_stage(run, stage, state if s == start else None)
             for step in range(s, end):
-                rec = _one_step(run, stage, step)
+                with step_guard(run.ctx, step=step + 1, run_dir=run.out):  # a peer lost mid-step -> PeerError
+                    rec = _one_step(run, stage, step)
                 s = step + 1  # the weights are now those of step s
                 if s % cfg.log_every == 0 or s == cfg.total_steps or s == cfg.sft_steps:
                     _log(run, rec)

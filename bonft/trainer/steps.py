@@ -162,8 +162,7 @@ def sft_step(run: Run, step: int, clock: Stopwatch) -> dict:
     pids, pmask, rids, rmask = encode_pairs(run.tokenizer, [e.prompt for e in ex], [e.reference for e in ex], run.device)
     with clock("forward"):
         logp = sequence_logprobs(run.model, pids, pmask, rids, rmask)  # (b, 1, T)
-        out = nll_loss(logp[:, 0], mask=rmask[:, 0], token_reduction="sum", reduction="sum")  # (b, 1, T) -> (b, T)
-        loss = out[0] if isinstance(out, tuple) else out
+        loss = nll_loss(logp[:, 0], mask=rmask[:, 0], token_reduction="sum", reduction="sum")  # (b, 1, T) -> (b, T)
     with clock("backward"):
         (loss * run.world / B).backward()  # x W/B: DDP averages over W ranks (bonft.trainer.distributed.global_mean_scale)
     tot = reduce_metrics({"nll": float(loss.detach()), "tokens": float(rmask.sum())}, run.ctx)
