@@ -57,7 +57,6 @@ class Objective:
     credit: Callable[[Pools, int], torch.Tensor]
     value: Callable[[Pools, int], torch.Tensor] | None
     summary: str
-    uses_k: bool = True
     expert: bool = False
 
 
@@ -74,7 +73,7 @@ def _pass_value(p: Pools, k: int) -> torch.Tensor:
 OBJECTIVES: dict[str, Objective] = {
     "loo_reinforce": Objective(
         credit=lambda p, k: C.reinforce_credit(p.rewards, baseline="loo"), value=lambda p, k: p.rewards.mean(-1),
-        summary="mean reward (pass@1), leave-one-out REINFORCE (Kool et al. 2019): the baseline", uses_k=False),
+        summary="mean reward (pass@1), leave-one-out REINFORCE (Kool et al. 2019): the baseline"),
     "best_of_k": Objective(
         credit=lambda p, k: C.bon_rl_credit(p.scores, p.rewards, k=k, baseline="loo"),
         value=lambda p, k: C.pool_value(p.scores, p.rewards, k=k),
