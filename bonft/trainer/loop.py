@@ -168,10 +168,8 @@ def _restore(run: Run, resume: bool) -> tuple[int, dict | None]:
         try:  # a checkpoint error goes to every rank, so none waits out the process-group timeout
             ckpt = latest_checkpoint(out) if resume else None
         except CheckpointError as e:
-            ckpt, problem = None, str(e)
-        if problem:
-            pass
-        elif resume and ckpt is None and (out / "summary.json").exists():
+            problem = str(e)
+        if resume and ckpt is None and not problem and (out / "summary.json").exists():
             problem = f"--resume: {out} holds a finished run without checkpoints"
         elif not resume and (out / "checkpoints").exists():
             problem = f"run_dir {str(out)!r} already holds checkpoints; pass --resume or choose another --out"
