@@ -123,11 +123,12 @@ def check_context(model, tokenizer, prompts, *, max_new_tokens: int, references=
     prompts = list(prompts)
     if limit is None or not prompts:
         return
+    longer = f"raise {knob}" if knob.isidentifier() else "use a model with a longer context"
     lens = [len(ids) for ids in tokenizer(prompts)["input_ids"]]
     i = max(range(len(lens)), key=lens.__getitem__)
     if lens[i] + max_new_tokens > limit:
         room = limit - lens[i]
-        fix = f"lower max_new_tokens to <= {room} or raise {knob}" if room >= 1 else f"raise {knob}"
+        fix = f"lower max_new_tokens to <= {room} or {longer}" if room >= 1 else longer
         raise ValueError(f"{knob} must fit the longest prompt plus max_new_tokens: prompt {prompts[i]!r} takes {lens[i]} "
                          f"tokens + max_new_tokens={max_new_tokens} = {lens[i] + max_new_tokens} > {limit} positions "
                          f"of the model; {fix}")
@@ -138,7 +139,7 @@ def check_context(model, tokenizer, prompts, *, max_new_tokens: int, references=
         if total[j] > limit:
             raise ValueError(f"{knob} must fit each warm-start prompt with its reference response: prompt {prompts[j]!r} "
                              f"with reference {refs[j]!r} and EOS takes {total[j]} tokens > {limit} positions of the model; "
-                             f"raise {knob}")
+                             f"{longer}")
 
 
 def _model_dirs(path: Path) -> tuple[Path, Path]:
