@@ -13,9 +13,10 @@ from bonft.trainer.objectives import OBJECTIVES, Pools, policy_loss, shuffle_poo
 f64 = lambda x: torch.as_tensor(np.asarray(x), dtype=torch.float64)
 
 
-def pools_of(scores, rewards, expert=None):
+def pools_of(scores, rewards, expert=None, answers=None):
+    extra = {} if answers is None else {"answers": answers}  # answer keys: vote objectives only
     return Pools(scores=f64(scores), rewards=f64(rewards), correct=f64(np.asarray(rewards) >= 0.5),
-                 expert_scores=None if expert is None else f64(expert))
+                 expert_scores=None if expert is None else f64(expert), **extra)
 
 
 @pytest.fixture
@@ -29,14 +30,17 @@ def batch():
 @pytest.mark.parametrize("name", sorted(OBJECTIVES))
 def test_placebo_keeps_each_pools_credit_sizes(batch, name):
     scores, rewards, expert = batch
+    answers = np.where(rewards > 0, "right", scores.astype(int).astype(str)).astype(object)  # a key per sample
     seeds = list(range(100, 105))
-    s2, r2 = shuffle_pools(seeds, scores, rewards)
-    for j in range(5):  # each pool: same outcomes, score and reward still paired
-        assert sorted(zip(s2[j], r2[j])) == sorted(zip(scores[j], rewards[j]))
+    s2, r2, a2 = shuffle_pools(seeds, scores, rewards, answers)
+    for j in range(5):  # each pool: same outcomes, score, reward and answer still together
+        assert sorted(zip(s2[j], r2[j], a2[j])) == sorted(zip(scores[j], rewards[j], answers[j]))
     assert not np.array_equal(r2, rewards)
     obj = OBJECTIVES[name]
-    c = obj.credit(pools_of(scores, rewards, expert), 4).numpy()
-    c2 = obj.credit(pools_of(s2, r2, expert), 4).numpy()
+    with_answers = getattr(obj, "answers", False)
+    c = obj.credit(pools_of(scores, rewards, expert, answers if with_answers else None), 4)
+    c2 = obj.credit(pools_of(s2, r2, expert, a2 if with_answers else None), 4)
+    c, c2 = np.asarray(c), np.asarray(c2)
     # permuting a pool's samples permutes its credit: the same multiset of credits per pool
     np.testing.assert_allclose(np.sort(c2, axis=1), np.sort(c, axis=1), atol=1e-12)
 
