@@ -97,4 +97,5 @@ def test_recipes_load():
     recipes = sorted((Path(__file__).parent.parent / "recipes").glob("*.toml"))
     assert len(recipes) >= 6
     objectives = {load_config(p).objective for p in recipes}
-    assert objectives == {"loo_reinforce", "best_of_k", "pass_at_k", "pass_at_k_plugin", "pass_at_k_positive", "best_of_k_sft"}
+    assert objectives == {"loo_reinforce", "best_of_k", "pass_at_k", "pass_at_k_plugin", "pass_at_k_positive", "best_of_k_sft",
+                          "majority_vote"}

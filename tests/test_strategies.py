@@ -246,3 +246,22 @@ def test_strategy_loss_gradient_is_minus_credit(monkeypatch):
     np.testing.assert_allclose(lp.grad.numpy(), -vote_credit(a, r, k=3) / 2, atol=1e-15)
     np.testing.assert_allclose(float(info["pool_value"]), vote_at_k_per_prompt(a, r, ks=3).mean(), atol=1e-15)
     assert isinstance(strategy_loss(lp.detach(), None, r, strategy="majority", k=3, answers=a), torch.Tensor)
+
+
+# ---------------------------------------------------------------------------- trainer registry
+
+
+def test_trainer_registers_vote_objectives():
+    # the registry's majority-vote credit is the library's, as a tensor on the pools' device
+    from bonft.trainer.objectives import OBJECTIVES, Pools
+
+    a = np.array([["3", "3", "4", "5"], ["1", "2", "2", "2"]], dtype=object)
+    r = torch.tensor([[1.0, 1.0, 0.0, 0.0], [1.0, 0.0, 0.0, 0.0]], dtype=torch.float64)
+    p = Pools(scores=r.clone(), rewards=r, correct=r, answers=a)
+    obj = OBJECTIVES["majority_vote"]
+    assert obj.answers and not OBJECTIVES["best_of_k"].answers
+    w = obj.credit(p, 3)
+    assert isinstance(w, torch.Tensor)
+    np.testing.assert_allclose(w.numpy(), vote_credit(a, r.numpy(), k=3), atol=0)
+    np.testing.assert_allclose(obj.value(p, 3).numpy(), [_brute_pool("majority", a[b], r[b].numpy(), r[b].numpy(), 3)
+                                                          for b in range(2)], atol=1e-13)

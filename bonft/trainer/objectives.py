@@ -37,13 +37,15 @@ class Pools:
     """The scored samples of ``b`` prompts, as float64 tensors on the training device.
 
     scores, rewards: (b, n); correct: (b, n) 0/1 (reward >= the correctness threshold);
-    expert_scores: (b,) verifier score of each prompt's reference response (best_of_k_sft only).
+    expert_scores: (b,) verifier score of each prompt's reference response (best_of_k_sft only);
+    answers: (b, n) answer keys extracted from the responses (vote objectives only).
     """
 
     scores: torch.Tensor
     rewards: torch.Tensor
     correct: torch.Tensor
     expert_scores: torch.Tensor | None = None
+    answers: np.ndarray | None = None
 
 
 @dataclass(frozen=True)
@@ -51,13 +53,15 @@ class Objective:
     """One entry of the registry: ``credit(pools, k) -> (b, n)``, ``value(pools, k) -> (b,)`` or None.
 
     ``value`` is the pool's own estimate of the targeted quantity (logged as
-    ``info/pool_value``); ``expert``: the loss adds ``-log pi(reference)`` per prompt.
+    ``info/pool_value``); ``expert``: the loss adds ``-log pi(reference)`` per prompt;
+    ``answers``: the pools must carry answer keys (:attr:`Pools.answers`, extracted by the task).
     """
 
     credit: Callable[[Pools, int], torch.Tensor]
     value: Callable[[Pools, int], torch.Tensor] | None
     summary: str
     expert: bool = False
+    answers: bool = False
 
 
 def _pass_at_k(estimator: str, positive_only: bool) -> Callable:
@@ -68,6 +72,20 @@ def _pass_at_k(estimator: str, positive_only: bool) -> Callable:
 def _pass_value(p: Pools, k: int) -> torch.Tensor:
     # selecting by correctness, best-of-k is correct iff one of the k is: the U-statistic is unbiased pass@k
     return C.pool_value(p.correct, p.correct, k=k)
+
+
+def _vote(name: str) -> tuple[Callable, Callable]:
+    """Credit and pool value of a vote strategy (:mod:`bonft.vote_estimate`), as tensors on the pools' device."""
+    from ..vote_estimate import strategy_at_k, strategy_credit
+
+    def credit(p: Pools, k: int) -> torch.Tensor:
+        return strategy_credit(name, p.scores, p.rewards, k=k, answers=p.answers)
+
+    def value(p: Pools, k: int) -> torch.Tensor:
+        v, _ = strategy_at_k(name, ks=[k], rewards=p.rewards, scores=p.scores, answers=p.answers)
+        return torch.as_tensor(v[:, 0], dtype=p.rewards.dtype, device=p.rewards.device)
+
+    return credit, value
 
 
 OBJECTIVES: dict[str, Objective] = {
@@ -89,6 +107,12 @@ OBJECTIVES: dict[str, Objective] = {
         credit=lambda p, k: C.bon_sft_credit(p.scores, p.expert_scores, k=k),
         value=None, expert=True,
         summary="best-of-k-aware supervised fine-tuning on reference answers (Chow et al. 2024, BoN-SFT)"),
+    "majority_vote": Objective(
+        *_vote("majority"), answers=True,
+        summary="majority vote over k answers, exact U-statistic credit by a count DP (Wang et al. 2023 self-consistency)"),
+    "weighted_vote": Objective(
+        *_vote("weighted"), answers=True,
+        summary="verifier-weighted vote over k answers (Li et al. 2023), U-statistic credit (sampled k-subsets when C(n,k) is large)"),
 }
 
 

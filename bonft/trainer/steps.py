@@ -177,13 +177,21 @@ def _score(run: Run, prompts: list[str], texts: list[list[str]], references: lis
     v = score_batch(run.verifiers["train"], [p for p in prompts for _ in range(n)], [s for row in texts for s in row])
     scores = np.asarray(v.scores, dtype=np.float64).reshape(len(prompts), n)  # row b*n + i is sample i of prompt b
     rewards = scores if cfg.reward_source == "scores" or v.rewards is None else np.asarray(v.rewards, np.float64).reshape(scores.shape)
+    answers = None
+    if OBJECTIVES[cfg.objective].answers:  # vote objectives: a failed extraction votes alone (a key of its own)
+        extract = run.task.extract_answer
+        answers = np.array([[str(a) if (a := extract(y)) is not None else f"\x00none{i}" for i, y in enumerate(row)]
+                            for row in texts], dtype=object)
     if cfg.placebo:
         scores, rewards = shuffle_pools(seeds, scores, rewards)
+        if answers is not None:  # the same permutation as scores and rewards (same seeds)
+            (answers,) = shuffle_pools(seeds, answers)
     t = lambda x: torch.as_tensor(x, dtype=torch.float64, device=run.device)
     expert = None
     if references is not None:
         expert = t(score_batch(run.verifiers["train"], prompts, references).scores)
-    pools = Pools(scores=t(scores), rewards=t(rewards), correct=t(rewards >= cfg.correct_threshold), expert_scores=expert)
+    pools = Pools(scores=t(scores), rewards=t(rewards), correct=t(rewards >= cfg.correct_threshold), expert_scores=expert,
+                  answers=answers)
     return pools, v.n_failed
 
 
