@@ -185,3 +185,46 @@ def test_optimizer_choice(tmp_path):
     torch.testing.assert_close(p.detach(), before - 0.1 * 0.5)
     run = _tiny_run(tmp_path, adam_eps=1e-3)
     assert make_optimizer(run, "rl").param_groups[0]["eps"] == 1e-3
+
+
+def test_snr_and_placebo_on_two_ranks_match_one_process(tmp_path, monkeypatch):
+    """2 gloo ranks vs 1 process: the SNR sums are all-reduced, the placebo's permutations follow the global slot."""
+    import json
+    import os
+    import socket
+    import subprocess
+    import sys
+    from pathlib import Path
+
+    from bonft.trainer.loop import train
+
+    scripts = Path(__file__).parent / "dist_scripts"
+    monkeypatch.syspath_prepend(str(scripts))  # the toy verifier, here and in the ranks
+    cfg = dict(arch="llama", layers=1, width=32, heads=2, max_positions=48, n_train=64, n_eval=4, rl_steps=2,
+               prompts_per_step=4, n=4, k=2, lr=1e-3, eval_n=4, eval_ks=[1, 4], n_boot=50, log_every=1, save_every=0,
+               max_new_tokens=6, plots=False, eval_at_start=False, objective="pass_at_k", correct_threshold=0.2,
+               verifier="toy_verifier:digit_share", snr_every=1, placebo=True)
+    (tmp_path / "two.json").write_text(json.dumps({**cfg, "run_dir": str(tmp_path / "two")}))
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        port = s.getsockname()[1]
+    base = {k: v for k, v in os.environ.items() if k not in ("RANK", "WORLD_SIZE", "LOCAL_RANK", "MASTER_ADDR", "MASTER_PORT")}
+    base["PYTHONPATH"] = os.pathsep.join([str(scripts), os.environ.get("PYTHONPATH", "")])
+    procs = [subprocess.Popen([sys.executable, str(scripts / "train_ranks.py"), str(tmp_path / "two.json")],
+                              env={**base, "RANK": str(r), "WORLD_SIZE": "2", "LOCAL_RANK": str(r), "MASTER_ADDR": "127.0.0.1",
+                                   "MASTER_PORT": str(port), "OMP_NUM_THREADS": "1"},
+                              stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True) for r in range(2)]
+    try:
+        train(from_dict({**cfg, "run_dir": str(tmp_path / "one")}), progress=False)
+        res = [p.communicate(timeout=300) + (p.returncode,) for p in procs]
+    finally:
+        for p in procs:
+            if p.poll() is None:
+                p.kill()
+    assert [rc for _, _, rc in res] == [0, 0], res[0][1][-2000:] + res[1][1][-2000:]
+    rows = {run: [json.loads(ln) for ln in (tmp_path / run / "metrics.jsonl").read_text().splitlines() if '"train"' in ln]
+            for run in ("one", "two")}
+    assert len(rows["one"]) == len(rows["two"]) == 2
+    for a, b in zip(rows["one"], rows["two"]):
+        assert 0 < a["grad_snr"] < 10 and b["grad_snr"] == pytest.approx(a["grad_snr"], rel=1e-5)
+        assert b["loss"] == pytest.approx(a["loss"], rel=1e-5, abs=1e-6) and b["reward"] == pytest.approx(a["reward"])
