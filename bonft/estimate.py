@@ -334,9 +334,12 @@ def _pass_at_k_shared(n: np.ndarray, c: np.ndarray, k: np.ndarray) -> np.ndarray
 
 
 def bootstrap_ci(values, *, confidence: float = 0.95, n_boot: int = 2000, seed: int = 0):
-    """Percentile bootstrap over prompts.
+    r"""Percentile bootstrap over prompts.
 
     Shape: ``values (P, K) -> (mean (K,), lo (K,), hi (K,))``; ``(P,)`` gives three floats.
+
+    .. math:: \bar v^{*}_b = \frac1P \sum_p W_{bp} v_p,\quad
+              [lo, hi] = \mathrm{quantile}_{(1\mp c)/2}\{\bar v^{*}_b\}
 
     Each of ``n_boot`` replicates resamples the P prompts with replacement and
     takes the column means; ``lo``/``hi`` are the ``(1 -+ confidence)/2``
@@ -376,7 +379,14 @@ def bootstrap_ci(values, *, confidence: float = 0.95, n_boot: int = 2000, seed: 
 
 
 def default_ks(n_min: int) -> list[int]:
-    """1, 2, 4, ... up to ``n_min``, plus ``n_min`` itself when it is not a power of 2."""
+    r"""1, 2, 4, ... up to ``n_min``, plus ``n_min`` itself when it is not a power of 2.
+
+    Shape: ``int -> list of K ints``.
+
+    .. math:: \{2^j : 2^j \le n_{min}\} \cup \{n_{min}\}
+
+    References: common practice (pass@k curves are read on a log-k axis, Chen et al. 2021).
+    """
     n_min = check_int("n_min", n_min, min=1)
     ks = [1 << j for j in range(n_min.bit_length()) if (1 << j) <= n_min]
     if ks[-1] != n_min:
@@ -465,10 +475,13 @@ class CurveSummary:
 
 def summarize(scores, rewards, *, ks=None, confidence: float = 0.95, n_boot: int = 2000,
               seed: int = 0) -> CurveSummary:
-    """Per-prompt best-of-k and oracle curves plus bootstrap CIs over prompts.
+    r"""Per-prompt best-of-k and oracle curves plus bootstrap CIs over prompts.
 
     Shape: ``scores, rewards (P, n)`` arrays or lists of 1-D arrays (ragged)
     ``-> CurveSummary`` with ``(K,)`` curves and ``(P, K)`` per-prompt values.
+
+    .. math:: \mathrm{bon}_k = \frac1P\sum_p V_{pk}(s, r),\qquad \mathrm{oracle}_k = \frac1P\sum_p V_{pk}(r, r)
+
     ``ks``: int, sequence, or None for :func:`default_ks` of the smallest pool.
 
     References: Chow et al. 2024 (best-of-k); Chen et al. 2021 (pass@k);

@@ -107,3 +107,15 @@ def test_public_functions_take_hyper_parameters_by_keyword_only(module):
         assert all(p.kind == p.KEYWORD_ONLY for p in rest), f"{module}.{name}: {[(p.name, p.kind) for p in rest]}"
         if module == "losses":  # the loss convention: logprobs first, info only on request
             assert positional[0] == "logprobs" and "return_info" in {p.name for p in rest}, name
+
+
+
+@pytest.mark.parametrize("module", sorted(DATA_ARGS))
+def test_public_docstrings_give_shape_math_and_references(module):
+    import importlib
+
+    mod = importlib.import_module(f"bonft.{module}")
+    for name in DATA_ARGS[module]:
+        doc = getattr(mod, name).__doc__ or ""
+        for part in ("Shape:", "References:", ".. math::"):
+            assert part in doc, f"{module}.{name} lacks {part!r}"
