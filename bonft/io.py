@@ -7,8 +7,9 @@ Written by ``bonft sample``, read by ``bonft estimate`` and ``bonft plan``::
 - ``prompt_id`` (str or int; ints are keys too, ``3`` and ``"3"`` are the same prompt),
 - ``score`` (number, the verifier's score, higher is better),
 - ``reward`` (number or true/false, the true reward),
-- ``answer`` (str or int, optional): the final answer extracted from the response, the key that
-  majority and weighted vote count (``bonft.strategies``); surface forms of one answer share it,
+- ``answer`` (str, int or null, optional): the final answer extracted from the response, the key that
+  majority and weighted vote count (``bonft.strategies``); surface forms of one answer share it;
+  null (no answer could be extracted) votes alone: it gets a key of its own,
 - ``temperature`` (number, optional), ``n_tokens`` (int, optional), ``response`` (str, optional;
   never read back here, so files with long responses load as fast as short ones).
 
@@ -230,11 +231,11 @@ def read_samples(
             raise ValueError(f"{name} line {numbers[i]}: field {tokens_field!r} must be >= 0 tokens, got {int(toks[i])}")
     answers = _column(name, rows, numbers, answer_field, "answer_field", required=False)
     if answers is not None:
-        bad = [i for i, v in enumerate(answers) if type(v) not in (str, int)]
+        bad = [i for i, v in enumerate(answers) if v is not None and type(v) not in (str, int)]
         if bad:
-            raise ValueError(f"{name} line {numbers[bad[0]]}: field {answer_field!r} must be a string or an integer, "
-                             f"got {answers[bad[0]]!r}")
-        answers = np.array([str(v) for v in answers], dtype=str)
+            raise ValueError(f"{name} line {numbers[bad[0]]}: field {answer_field!r} must be a string, an integer or "
+                             f"null, got {answers[bad[0]]!r}")
+        answers = np.array([str(v) if v is not None else f"\x00none{no}" for v, no in zip(answers, numbers)], dtype=str)
     if duplicates != "allow":  # after the checks of every field: a malformed file errors first
         _check_duplicates(name, lines, numbers, duplicates)
     return SampleTable(prompt_keys=prompt_keys, scores=scores, rewards=rewards, temperatures=temps, n_tokens=toks,

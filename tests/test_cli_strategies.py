@@ -101,3 +101,18 @@ def test_plan_strategies_picks_best(tmp_path, capsys):
                 "best-of-k": np.mean([_best_of_k(p, k) for p in POOLS.values()])}
         assert abs(row["value"] - max(vals.values())) < 1e-12
     assert "budget 3 samples/prompt" in capsys.readouterr().out
+
+
+def test_null_answers_vote_alone(tmp_path):
+    # two failed extractions must not agree with each other: with k = 2 drawn from {null, null, "5"}
+    # majority ties every pair (each answer once), so V_2 = mean over pairs of the mean reward = E[R]
+    f = tmp_path / "n.jsonl"
+    rows = [{"prompt_id": 0, "i": 0, "score": 0.1, "reward": 0, "answer": None},
+            {"prompt_id": 0, "i": 1, "score": 0.2, "reward": 0, "answer": None},
+            {"prompt_id": 0, "i": 2, "score": 0.3, "reward": 1, "answer": "5"}]
+    f.write_text("\n".join(json.dumps(r) for r in rows) + "\n")
+    _, s, r, a = group_pools(read_samples(f), with_answers=True)
+    assert len(set(a[0])) == 3
+    from bonft.vote_estimate import vote_at_k_per_prompt
+
+    assert abs(vote_at_k_per_prompt(a, r, ks=[2])[0, 0] - 1 / 3) < 1e-15

@@ -10,7 +10,7 @@ HELP = "sample responses from a checkpoint and write a samples JSONL (input of b
 DESCRIPTION = (
     "Draw --n responses per held-out prompt at one or more temperatures, score each with a verifier "
     "(score) and the exact checker (reward), and write one JSON line per response: prompt_id, score, "
-    "reward, temperature, response, n_tokens, and sample (its index in the prompt's pool, so that identical "
+    "reward, temperature, response, n_tokens, answer (the task's extracted answer, for --strategy majority/weighted), and sample (its index in the prompt's pool, so that identical "
     "responses are not mistaken for repeated rows). Feed the file to `bonft estimate` or `bonft plan`."
 )
 
@@ -49,10 +49,12 @@ def run(args: argparse.Namespace) -> int:
             max_new_tokens=cfg.max_new_tokens, seed=step_seed(args.seed, 0, 0, stream=4), n_boot=10,
         )
         scores = raw["scores"][which]
+        extract = getattr(r.task, "extract_answer", None)
         for b in range(len(held)):
             for i in range(n):
                 rows.append({"prompt_id": b, "sample": i, "score": float(scores[b, i]), "reward": float(raw["rewards"][b, i]),
-                             "temperature": t, "response": raw["texts"][b][i], "n_tokens": int(raw["n_tokens"][b, i])})
+                             "temperature": t, "response": raw["texts"][b][i], "n_tokens": int(raw["n_tokens"][b, i]),
+                             **({"answer": extract(raw["texts"][b][i])} if extract is not None else {})})
         print(f"T={t:g}: pass@1 {rep.mean_reward:.3f}, {rep.distinct_answers:.1f} distinct answers/prompt")
     count = write_samples(args.output, rows)
     print(f"wrote {count} samples ({len(held)} prompts x {n} x {len(temps)} temperature(s), score = {which}) to {args.output}")
