@@ -19,7 +19,6 @@ import numpy as np
 import pytest
 import torch
 
-import bonft.credit as _credit
 from bonft.cli.main import main
 from bonft.objcheck import ToyPolicy, builtin, check_objective
 
