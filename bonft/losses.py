@@ -65,7 +65,7 @@ import numpy as np
 import torch
 from torch import Tensor
 
-from bonft._checks import check_choice, check_k, is_tensor
+from bonft._checks import check_choice, check_finite, check_k, is_tensor
 from bonft._credit_inputs import as_host, check_bool
 from bonft._passk import pass_at_k_counts
 from bonft.credit import (
@@ -203,23 +203,24 @@ def _reduce(per_prompt: Tensor, reduction: str) -> Tensor:
 
 
 def _credit_tensor(credit: Any, B: int, n: int, seq: Tensor, check_tokens: bool) -> Tensor:
-    """Credit (B, n) as a detached tensor on seq's device and dtype; host credit is checked (O(B n))."""
+    """Credit (B, n) as a detached tensor on seq's device and dtype; host credit is checked (O(B n), numpy)."""
     if is_tensor(credit):
         w = credit.detach()
-        host = w.device.type == "cpu"
+        if w.dtype.is_complex or w.dtype == torch.bool:
+            raise TypeError(f"credit must hold real numbers, got dtype {w.dtype}")
+        host = w.to(torch.float64).numpy() if w.device.type == "cpu" else None
     else:
         try:
-            w = torch.from_numpy(np.asarray(credit, dtype=np.float64))
+            host = np.asarray(credit, dtype=np.float64)
         except (TypeError, ValueError):
             raise TypeError(f"credit must be an array of numbers, got {type(credit).__name__}") from None
-        host = True
+        w = torch.from_numpy(host)
     if tuple(w.shape) != (B, n):
         raise ValueError(f"credit must have shape (B, n) = ({B}, {n}) to match logprobs, got {tuple(w.shape)}")
-    if host or check_tokens:
-        bad = ~torch.isfinite(w)
-        if bool(bad.any()):
-            idx = tuple(int(i) for i in torch.nonzero(bad)[0].tolist())
-            raise ValueError(f"credit must be finite, got {float(w[idx])} at index {idx}")
+    if host is not None:
+        check_finite("credit", host)
+    elif check_tokens:
+        check_finite("credit", w)  # a device tensor: one sync, so only on request
     return w.to(device=seq.device, dtype=seq.dtype, non_blocking=True)
 
 

@@ -269,3 +269,70 @@ def test_bad_input_messages():
         bon_sft_loss(torch.zeros(2, 3), s, torch.zeros(2), torch.zeros(3), k=1)
     with pytest.raises(ValueError, match=r"mask needs token log-probs \(3 dimensions\), got logprobs of shape \(2, 3\)"):
         reinforce_loss(torch.zeros(2, 3), s, mask=torch.ones(2, 3))
+
+
+def test_default_path_reads_no_tensor_value_on_the_host():
+    # A device sync happens when Python reads a tensor's value (bool, float, int, item, tolist,
+    # numpy, nonzero). With host scores/rewards the named losses and the core must do none of that
+    # (O(B n) checks on host arrays only); check_tokens=True is the opt-in that may.
+    from torch.overrides import TorchFunctionMode
+
+    from bonft.losses import policy_gradient_loss
+
+    reads = {torch.Tensor.__bool__, torch.Tensor.__float__, torch.Tensor.__int__, torch.Tensor.item,
+             torch.Tensor.tolist, torch.Tensor.numpy, torch.Tensor.nonzero, torch.nonzero}
+
+    class NoHostReads(TorchFunctionMode):
+        def __torch_function__(self, func, types, args=(), kwargs=None):
+            if func in reads:
+                raise AssertionError(f"host read of a tensor value: {func}")
+            return func(*args, **(kwargs or {}))
+
+    lp0, mask, _ = token_batch(B=3, n=4, T=5)
+    rng = np.random.default_rng(0)
+    s, R = rng.integers(0, 3, (3, 4)).astype(float), (rng.random((3, 4)) < 0.5).astype(float)
+    e_lp, e_s = -torch.rand(3, 5, dtype=torch.float64), rng.integers(0, 3, 3).astype(float)
+    anchor = lp0 - 0.1
+    calls = [
+        lambda lp: bon_rl_loss(lp, s, R, k=2, mask=mask, anchor_logprobs=anchor, anchor_weight=0.1, return_info=True),
+        lambda lp: pass_at_k_loss(lp, R, k=2, mask=mask, token_reduction="mean", return_info=True),
+        lambda lp: reinforce_loss(lp, R, mask=mask, return_info=True),
+        lambda lp: bon_sft_loss(lp, s, e_lp, e_s, k=2, mask=mask, expert_mask=mask[:, 0], return_info=True),
+        lambda lp: policy_gradient_loss(lp, R, mask=mask, return_info=True),
+        lambda lp: nll_loss(lp[:, 0], mask=mask[:, 0], return_info=True),
+    ]
+    for call in calls:
+        lp = lp0.clone().requires_grad_(True)
+        with NoHostReads():
+            loss, info = call(lp)
+        loss.backward()
+        assert torch.isfinite(loss) and all(not v.requires_grad for v in info.values())
+    with pytest.raises(AssertionError, match="host read"), NoHostReads():  # the opt-in checks do read
+        reinforce_loss(lp0, R, mask=mask, check_tokens=True)
+
+
+def test_named_losses_are_their_credit_through_the_core():
+    # each named loss = policy_gradient_loss(logprobs, <its credit function>(...)), values and gradients
+    from bonft.credit import pass_at_k_credit, reinforce_credit
+    from bonft.losses import policy_gradient_loss
+
+    lp0, mask, _ = token_batch(B=3, n=5, T=4)
+    rng = np.random.default_rng(1)
+    s, R = rng.integers(0, 3, (3, 5)).astype(float), (rng.random((3, 5)) < 0.5).astype(float)
+    pairs = [
+        (lambda lp, **kw: bon_rl_loss(lp, s, R, k=3, **kw), bon_rl_credit(s, R, k=3)),
+        (lambda lp, **kw: pass_at_k_loss(lp, R, k=2, **kw), pass_at_k_credit(R, k=2)),
+        (lambda lp, **kw: reinforce_loss(lp, R, **kw), reinforce_credit(R)),
+    ]
+    for named, credit in pairs:
+        for kw in ({"mask": mask}, {"mask": mask, "token_reduction": "mean", "reduction": "none"}):
+            a, b = lp0.clone().requires_grad_(True), lp0.clone().requires_grad_(True)
+            la, lb = named(a, **kw), policy_gradient_loss(b, credit, **kw)
+            la.sum().backward()
+            lb.sum().backward()
+            torch.testing.assert_close(la, lb, rtol=0, atol=1e-14)
+            torch.testing.assert_close(a.grad, b.grad, rtol=0, atol=1e-14)
+    with pytest.raises(ValueError, match=r"credit must have shape \(B, n\) = \(3, 5\) to match logprobs, got \(3, 4\)"):
+        policy_gradient_loss(lp0, np.zeros((3, 4)), mask=mask)
+    with pytest.raises(ValueError, match=r"credit must be finite, got nan at index \(0, 1\)"):
+        policy_gradient_loss(lp0, np.array([[0, np.nan, 0, 0, 0]] * 3), mask=mask)
