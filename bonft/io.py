@@ -147,7 +147,8 @@ def _check_duplicates(name: str, lines: list[str], numbers, mode: str) -> None:
             break
         first[key] = no
     msg = (f"{name}: {extra} of {len(keys)} rows repeat an earlier row exactly ({pair}); a file concatenated with "
-           f"itself doubles its pools. If they are distinct samples that happen to be identical, allow them "
+           f"itself doubles its pools. If they are distinct samples that happen to be identical (common for "
+           f"rows without a response or a sample index), allow them "
            f"(duplicates='allow', --allow-duplicates on the command line)")
     if mode == "error":
         raise ValueError(msg)

@@ -136,7 +136,8 @@ def test_repeated_rows_warn_with_their_count_and_the_flag_silences_it(files):
     assert code == 0 and "Traceback" not in err
     assert err.strip() == ("bonft estimate: warning: twice.jsonl: 4 of 8 rows repeat an earlier row exactly (line 5 repeats "
                            "line 1); a file concatenated with itself doubles its pools. If they are distinct samples that "
-                           "happen to be identical, allow them (duplicates='allow', --allow-duplicates on the command line)")
+                           "happen to be identical (common for rows without a response or a sample index), allow them "
+                           "(duplicates='allow', --allow-duplicates on the command line)")
     code, out, err = bonft("estimate", files / "twice.jsonl", "--allow-duplicates")
     assert code == 0 and err == ""
 
