@@ -108,7 +108,8 @@ def class_win_counts(d: np.ndarray, m: np.ndarray, K: int) -> np.ndarray:
     for c in range(1, c_dp + 1):
         act = np.flatnonzero(d >= c)
         below = int((d[d < c] * m[d < c]).sum())  # samples of answers that cannot reach c
-        A = int(m[act].sum())
+        # the u-degree of [x^j] is at most min(A, K // c) - 1: each tied answer takes c of the <= K slots
+        A = min(int(m[act].sum()), K // c)
         u, g = _gauss_legendre((A + 1) // 2)
         U = len(u)
         pw, pw1, head = [], [], []
@@ -181,7 +182,7 @@ def policy_majority_value(q: torch.Tensor, qr: torch.Tensor, k: int) -> torch.Te
     """
     L, A = q.shape
     dt = q.dtype
-    u_np, g_np = _gauss_legendre((A + 1) // 2)
+    u_np, g_np = _gauss_legendre((min(A, k) + 1) // 2)  # at most k answers can tie
     u = torch.as_tensor(u_np, dtype=dt, device=q.device)
     g = torch.as_tensor(g_np, dtype=dt, device=q.device)
     U = len(u_np)
@@ -227,3 +228,89 @@ def weighted_vote_weights(cnt: np.ndarray, codes: np.ndarray, s: np.ndarray) -> 
     win = present & np.isclose(tot, tot.max(1, keepdims=True), rtol=1e-12, atol=1e-12)
     share = win / np.where(present, num, 1.0) / win.sum(1, keepdims=True)  # (N, A) per sample of each answer
     return cnt * share[:, codes]
+
+
+# ---------------------------------------------------------------------------- credit, batched over pools
+
+
+def vote_credit_batched(codes: np.ndarray, rewards: np.ndarray, k: int) -> np.ndarray:
+    """Majority-vote credit ``w_i = V_k(pool) - V_kb(pool - i)`` for B pools at once: (B, n) -> (B, n).
+
+    ``codes``: answer ids ``0..A_b-1`` per row. Every answer ``a`` has a factor
+    ``f_a(x, u)`` per threshold ``c`` (module docstring); the pools' generating function
+    ``prod_a f_a`` is multilinear in the factors, so removing one sample of answer ``a``
+    (binomials ``C(n_a, m) -> C(n_a - 1, m)``) only swaps ``f_a`` for its reduced factor:
+    prefix and suffix products over the answers give every leave-one-out value, a dual part
+    carries the reward-weighted wins. Thresholds, quadrature nodes and pools are batch axes;
+    memory ``O(B A k^3)``.
+    """
+    B, n = codes.shape
+    kb = min(k, n - 1)
+    K = k
+    A = int(codes.max()) + 1
+    cnt = np.zeros((B, A))
+    np.add.at(cnt, (np.repeat(np.arange(B), n), codes.ravel()), 1.0)
+    rsum = np.zeros((B, A))
+    np.add.at(rsum, (np.repeat(np.arange(B), n), codes.ravel()), rewards.ravel())
+    rbar = np.where(cnt > 0, rsum / np.where(cnt > 0, cnt, 1), 0.0)
+    u_np, g_np = _gauss_legendre((min(A, K) + 1) // 2)
+    u, g = torch.as_tensor(u_np), torch.as_tensor(g_np)
+    dt = torch.float64
+    m = torch.arange(K + 1, dtype=dt)
+    cs = torch.arange(1, K + 1, dtype=dt)  # thresholds c = 1..K
+
+    def binom(N: torch.Tensor) -> torch.Tensor:  # (B, A) counts -> (B, A, K+1) C(N, m), 0 for m > N
+        N1 = N[..., None]
+        val = torch.exp(torch.lgamma(N1 + 1) - torch.lgamma(m + 1) - torch.lgamma((N1 - m).clamp(min=0) + 1))
+        return torch.where(m <= N1, torch.round(val), torch.zeros_like(val))
+
+    def factors(N: torch.Tensor):
+        """f (B, A, C, U, K+1) and the win term h (B, A, C, K+1) of answers with counts N."""
+        bc = binom(N)  # (B, A, K+1)
+        below = (m[None, :] < cs[:, None]).to(dt)  # (C, K+1)
+        at = (m[None, :] == cs[:, None]).to(dt)
+        f = bc[:, :, None, None, :] * (below[:, None, :] + at[:, None, :] * u[None, :, None])
+        h = bc[:, :, None, :] * at  # (B, A, C, K+1)
+        return f, h
+
+    N = torch.as_tensor(cnt)
+    f, h = factors(N)  # (B, A, C, U, K+1), (B, A, C, K+1)
+    f_red, h_red = factors((N - 1).clamp(min=0))  # one sample of the answer removed
+    rb = torch.as_tensor(rbar)
+    U, K1 = len(u_np), K + 1
+    hr = (rb[:, :, None, None] * h)[:, :, :, None, :]  # (B, A, C, 1, K+1) reward-weighted win terms
+    one = torch.zeros(B, K, U, K1, dtype=dt)
+    one[..., 0] = 1.0
+    zero = torch.zeros_like(one)
+
+    def mul(x: torch.Tensor, y: torch.Tensor) -> torch.Tensor:
+        """Polynomial product on the last axis truncated at degree K (y broadcasts against x)."""
+        out = x * y[..., :1]
+        for j in range(1, K1):
+            out[..., j:] += x[..., : K1 - j] * y[..., j : j + 1]
+        return out
+
+    pv, pd = [one], [zero]  # prefix products over answers: value and dual (reward-weighted wins) parts
+    for a in range(A):
+        pd.append(mul(pd[-1], f[:, a]) + mul(pv[-1], hr[:, a]))
+        pv.append(mul(pv[-1], f[:, a]))
+    sv, sd = [one], [zero]  # suffix products, built from the last answer back
+    for a in range(A - 1, -1, -1):
+        sd.append(mul(sd[-1], f[:, a]) + mul(sv[-1], hr[:, a]))
+        sv.append(mul(sv[-1], f[:, a]))
+    full_d = pd[-1]  # the whole pool's dual part
+    pv, pd = torch.stack(pv[:-1], 1), torch.stack(pd[:-1], 1)  # (B, A, C, U, K+1): answers before a
+    sv, sd = torch.stack(sv[:-1][::-1], 1), torch.stack(sd[:-1][::-1], 1)  # answers after a
+    gw = g[None, :]
+    Vk = (full_d[..., k] * gw).sum((1, 2)).numpy() / float(math.comb(n, k))  # (B,)
+    flip = lambda x: x[..., : kb + 1].flip(-1)  # noqa: E731  [x^kb](p * q) = sum_j p[j] q[kb - j]
+    sv_fr, sd_fr = mul(sv, f_red), mul(sd, f_red)  # suffix times the reduced factor
+    phi = ((pd[..., : kb + 1] * flip(sv_fr) + pv[..., : kb + 1] * flip(sd_fr)).sum(-1) * gw).sum((2, 3))
+    sv_hr = mul(sv, h_red[:, :, :, None, :])
+    psi = ((pv[..., : kb + 1] * flip(sv_hr)).sum(-1) * gw).sum((2, 3))
+    phi, psi = phi.numpy(), psi.numpy()  # (B, A): others' wins / a's own wins, with a reduced
+    rows = np.arange(B)[:, None]
+    d = cnt[rows, codes]  # (B, n) count of each sample's answer
+    r_minus = np.where(d > 1, (rsum[rows, codes] - rewards) / np.where(d > 1, d - 1, 1), 0.0)
+    loo = (phi[rows, codes] + r_minus * psi[rows, codes]) / float(math.comb(n - 1, kb))
+    return Vk[:, None] - loo

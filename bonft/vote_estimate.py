@@ -42,7 +42,7 @@ import torch
 
 from bonft import estimate as _estimate
 from bonft._checks import as_float_array, check_finite, check_int, check_k, check_ks, is_tensor
-from bonft._votes import class_win_counts, weighted_vote_weights
+from bonft._votes import class_win_counts, vote_credit_batched, weighted_vote_weights
 
 __all__ = [
     "vote_at_k_per_prompt", "weighted_vote_at_k_per_prompt", "vote_credit", "weighted_vote_credit",
@@ -116,15 +116,6 @@ def _same_lengths(**pools: list[np.ndarray]) -> None:
 # ---------------------------------------------------------------------------- majority vote
 
 
-def _class_probs(counts: dict[int, int], K: int) -> dict[int, float]:
-    """{count: multiplicity} -> {count: chance one answer of that count wins on a K-subset}."""
-    d = np.array(sorted(counts))
-    m = np.array([counts[v] for v in d])
-    n = int((d * m).sum())
-    W = class_win_counts(d, m, K)[:, K] / float(math.comb(n, K))
-    return dict(zip(d.tolist(), W.tolist()))
-
-
 def _vote_pool(codes: np.ndarray, r: np.ndarray, ks: np.ndarray) -> np.ndarray:
     """One pool -> (K,) majority-vote values."""
     counts = np.bincount(codes)
@@ -159,43 +150,14 @@ def vote_at_k_per_prompt(answers, rewards, *, ks):
     return out[:, 0] if scalar else out
 
 
-def _vote_credit_pool(codes: np.ndarray, r: np.ndarray, k: int) -> np.ndarray:
-    """One pool (n,) -> (n,) majority-vote credit V_k(pool) - V_kb(pool - i)."""
-    n = len(r)
-    if n == 1:
-        return r.copy()
-    counts = np.bincount(codes)
-    rsum = np.bincount(codes, weights=r)
-    rbar = rsum / counts
-    classes = {int(v): int(c) for v, c in zip(*np.unique(counts, return_counts=True))}
-    full = _class_probs(classes, k)
-    vk = sum(full[int(counts[a])] * rbar[a] for a in range(len(counts)))
-    kb = min(k, n - 1)
-    loo = np.empty(n)
-    for d in classes:  # one dynamic programme per count class: pool minus one sample of a d-answer
-        mod = dict(classes)
-        mod[d] -= 1
-        if d > 1:
-            mod[d - 1] = mod.get(d - 1, 0) + 1
-        mod = {v: c for v, c in mod.items() if c}
-        pm = _class_probs(mod, kb)
-        base = sum(pm.get(int(counts[b]), 0.0) * rbar[b] for b in range(len(counts)))
-        for a in np.flatnonzero(counts == d):
-            idx = np.flatnonzero(codes == a)
-            v = base - pm.get(d, 0.0) * rbar[a]  # a no longer holds d samples
-            if d > 1:
-                v = v + pm[d - 1] * (rsum[a] - r[idx]) / (d - 1)  # a's mean reward without sample i
-            loo[idx] = v
-    return vk - loo
-
-
 def vote_credit(answers, rewards, *, k):
     r"""Majority-vote credit with a leave-one-out baseline: ``(B, n), (B, n) -> (B, n)``.
 
     .. math:: w_i = \hat V_k(\text{pool}) - \hat V_{\min(k,n-1)}(\text{pool}\setminus i)
 
     ``E[sum_i w_i grad log pi(y_i)] = grad V_k`` exactly (module docstring). Equal rewards give
-    zero credit; ``n = 1`` gives ``w = R``. One count DP per distinct answer count per pool.
+    zero credit; ``n = 1`` gives ``w = R``. All pools in one batched count DP: prefix and suffix
+    products over the answers give every leave-one-out value (:func:`bonft._votes.vote_credit_batched`).
     numpy/list in -> float64 numpy; torch in -> torch (device, floating dtype of ``rewards``).
     References: Hoeffding 1948; Kool et al. 2019; Wang et al. 2023.
     """
@@ -209,7 +171,15 @@ def vote_credit(answers, rewards, *, k):
     if n > _MAX_N_EXACT:
         raise ValueError(f"rewards must have n <= {_MAX_N_EXACT} samples per prompt, got n={n}")
     k = check_k(k, n)
-    w = np.stack([_vote_credit_pool(c, r, k) for c, r in zip(_codes(ans), rew)])
+    if n == 1:
+        return _finish(np.stack(rew), kind)
+    codes = np.stack(_codes(ans))
+    r = np.stack(rew)
+    # chunks of pools keep the (pools, answers, thresholds, nodes, degree) tensors near 20M numbers
+    A = int(codes.max()) + 1
+    size = A * k * ((min(A, k) + 1) // 2) * (k + 1)
+    step = max(1, 20_000_000 // size)
+    w = np.concatenate([vote_credit_batched(codes[i : i + step], r[i : i + step], k) for i in range(0, len(r), step)])
     return _finish(w, kind)
 
 
