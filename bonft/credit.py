@@ -27,6 +27,8 @@ Karkhanis 2025 (U-statistic pass@k gradients).
 """
 from __future__ import annotations
 
+import functools
+
 import numpy as np
 
 from bonft._checks import check_choice, check_k
@@ -76,30 +78,59 @@ def _bon_rl_core(s: np.ndarray, R: np.ndarray, k: int, baseline: str) -> tuple[n
         cx = np.cumsum(x) - x
         return cx - cx[row_first]
 
-    r = R.ravel().take(fo)
     # loo credit is unchanged by a constant shift of a row's rewards (the k/n terms cancel);
     # shifting by one of the row's own rewards makes all-equal rewards give exactly 0
     shift = R[:, 0] if loo else np.zeros(B)
-    r -= np.repeat(shift, n)
+    sg = shift.take(starts // n)  # (G,) shift of each group's row
+    r = R.ravel().take(fo)  # (B*n,) rewards in score order
+    r -= sg.take(gid)  # equal rewards become exact zeros, so their credit is exactly 0
     mf = m.astype(np.float64)
+    gsum = np.add.reduceat(r, starts)  # (G,) reward sum of each group
     Ck, Ck1, Cb = count_tables(n, k)  # entry x+1 for x = -1..n
     ck_lo, ck_hi, ck1_hi1 = Ck.take(gL + 1), Ck.take(gend + 2), Ck1.take(gend + 1)  # C(L,k), C(L+m,k), C(L+m-1,k-1)
     a = (ck_hi - ck_lo) / mf  # own reward, top group G
     c = (mf * ck1_hi1 - ck_hi + ck_lo) / np.maximum(mf * (mf - 1), 1.0)  # each tied mate; m = 1: 0 by Pascal
     A = (ck1_hi1 - Ck1.take(gL)) / mf  # as a top group over one fixed lower sample
-    gsum = np.add.reduceat(r, starts)  # (G,) reward sum of each group
-    mates = gsum[gid] - r  # sum of R over the tied mates
-    W = r * a[gid] + mates * c[gid] + above(gsum * A)[gid]
-    pool = np.add.reduceat(W, np.arange(0, B * n, n)) / k + shift  # sum_i sum_{S contains i} g(S) = k sum_S g(S)
+    # every term is (own reward) x (group coefficient) + (group constant): W_i = r_i alpha_G + beta_G
+    alpha = a - c
+    beta = gsum * c + above(gsum * A)  # tied mates' sum is gsum - r_i
+    group_total = gsum * alpha + mf * beta  # sum of W over the group's members
+    pool = np.add.reduceat(group_total, np.cumsum(per_row) - per_row) / k + shift  # sum_S g(S) = (1/k) sum_i W_i
     if loo:
         cb_lo1, cb_lo, cb_hi1, cb_hi = Cb.take(gL), Cb.take(gL + 1), Cb.take(gend + 1), Cb.take(gend + 2)
         own = (cb_hi1 - cb_lo) / np.maximum(mf - 1, 1.0)  # own group shrinks to m-1; m = 1: 0
         # groups below keep their L and m; groups above see L-1 below
         outside = below(gsum * (cb_hi - cb_lo) / mf) + above(gsum * (cb_hi1 - cb_lo1) / mf)
-        W -= (k / n) * (outside[gid] + mates * own[gid])  # k/n = C(n-1,k-1)/C(n,k)
+        kn = k / n  # C(n-1,k-1)/C(n,k)
+        alpha = alpha + kn * own
+        beta = beta - kn * (outside + gsum * own)
+    W = r * alpha.take(gid)
+    W += beta.take(gid)
     out = np.empty(B * n)
     out[fo] = W
     return out.reshape(B, n), pool
+
+
+@functools.lru_cache(maxsize=256)
+def _pass_tables(n: int, k: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(n+1,) tables over c = correct samples in the pool, for the unbiased pass@k credit.
+
+    ``q[c] = C(n-1-c, k-1)/C(n-1, k-1)`` (an incorrect sample's k-1 companions miss every correct
+    one), ``b1[c]``, ``b0[c]``: pass@kb of the other n-1 samples when the sample is correct /
+    incorrect (the leave-one-out baseline, Chen et al. 2021's estimator, ``kb = min(k, n-1)``).
+    Cached per ``(n, k)``: a run asks for the same few.
+    """
+    c = np.arange(n + 1)
+    q = np.exp(log_miss(n - 1, np.minimum(c, n - 1), k - 1))  # only used where c <= n-1
+    if n > 1:
+        kb = min(k, n - 1)
+        b1 = pass_at_k_counts(n - 1, np.maximum(c - 1, 0), kb)
+        b0 = pass_at_k_counts(n - 1, np.minimum(c, n - 1), kb)
+    else:
+        b1 = b0 = np.zeros(n + 1)
+    for t in (q, b1, b0):
+        t.flags.writeable = False
+    return q, b1, b0
 
 
 def _pass_at_k_core(c: np.ndarray, k: int, estimator: str, positive_only: bool) -> np.ndarray:
@@ -112,17 +143,11 @@ def _pass_at_k_core(c: np.ndarray, k: int, estimator: str, positive_only: bool) 
     else:
         # subset sums over C(n,k) = (k/n) * share of the C(n-1,k-1) subsets holding i that
         # succeed: all for a correct sample; for an incorrect one those with a correct mate
-        # among its k-1 companions, 1 - C(n-1-tot, k-1)/C(n-1, k-1)
+        # among its k-1 companions; minus the leave-one-out baseline (all-equal rows give 0)
+        q, b1, b0 = _pass_tables(n, k)
         ti = tot.astype(np.int64)
-        q = np.exp(log_miss(n - 1, np.minimum(ti, n - 1), k - 1))  # only used where tot <= n-1
-        w = 1 - (1 - c) * q
-        if n > 1:
-            kb = min(k, n - 1)
-            # leave-one-out baseline: pass@kb of the other n-1 (Chen et al. 2021); two values per row
-            b_correct = pass_at_k_counts(n - 1, np.maximum(ti - 1, 0), kb)
-            b_wrong = pass_at_k_counts(n - 1, np.minimum(ti, n - 1), kb)
-            w = w - np.where(c > 0, b_correct, b_wrong)  # all-equal rows give exactly 1 - 1 or 0 - 0 = 0
-        w = (k / n) * w
+        w = np.where(c > 0, 1.0 - b1.take(ti), 1.0 - q.take(ti) - b0.take(ti))
+        w *= k / n
     if positive_only:
         w = w * c
     return w
