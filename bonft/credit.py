@@ -64,6 +64,8 @@ def _bon_rl_core(s: np.ndarray, R: np.ndarray, k: int, baseline: str) -> tuple[n
     # flat (B*n,) views throughout: row b occupies [b*n, (b+1)*n); every group lies inside one row
     fo = (np.argsort(s, axis=-1) + (np.arange(B, dtype=np.int64) * n)[:, None]).ravel()  # ties: any order
     starts, gid, m = flat_groups(first_of_group(s.ravel().take(fo).reshape(B, n)))  # tie groups, row by row
+    if len(starts) == B * n:  # no tied scores (e.g. a reward model's): each group is one sample
+        return _bon_rl_distinct(R.ravel().take(fo).reshape(B, n), fo, R[:, 0] if loo else np.zeros(B), k, loo)
     gL = starts % n  # samples strictly below the group in its row
     gend = gL + m - 1  # last sorted index of the group in its row
     per_row = np.bincount(starts // n, minlength=B)  # groups per row
@@ -108,6 +110,36 @@ def _bon_rl_core(s: np.ndarray, R: np.ndarray, k: int, baseline: str) -> tuple[n
     W += beta.take(gid)
     out = np.empty(B * n)
     out[fo] = W
+    return out.reshape(B, n), pool
+
+
+def _bon_rl_distinct(r: np.ndarray, fo: np.ndarray, shift: np.ndarray, k: int,
+                     loo: bool) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`_bon_rl_core` without ties: rewards in score order (B, n), every group one sample at rank L.
+
+    With m = 1 the tied-mate terms vanish and each coefficient depends on the rank alone:
+    ``W_L = r_L w_k(L) + sum_{j>L} r_j (C(j,k-1) - C(j-1,k-1))/C(n,k)``, minus, with the
+    leave-one-out baseline, ``k/n`` times the same sums over the other n-1 samples.
+    """
+    B, n = r.shape
+    r = r - shift[:, None]  # equal rewards become exact zeros (loo); a no-op shift otherwise
+    Ck, Ck1, Cb = count_tables(n, k)  # entry x+1 for x = -1..n
+    a = Ck[2:] - Ck[1:-1]  # (n,) own reward as the top of the subset: w_k(L)
+    A = Ck1[1:-1] - Ck1[:-2]  # (n,) as one of the k-1 below a higher top
+
+    def above(x):  # sum over the ranks above each rank, per row
+        cx = np.cumsum(x, axis=1)
+        return cx[:, -1:] - cx
+
+    W = r * a
+    W += above(r * A)
+    pool = W.sum(axis=1) / k + shift  # sum_S g(S) = (1/k) sum_i W_i
+    if loo:
+        x = r * (Cb[2:] - Cb[1:-1])  # ranks below keep their place
+        below = np.cumsum(x, axis=1) - x
+        W -= (k / n) * (below + above(r * (Cb[1:-1] - Cb[:-2])))  # ranks above move down by one
+    out = np.empty(B * n)
+    out[fo] = W.ravel()
     return out.reshape(B, n), pool
 
 

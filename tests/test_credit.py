@@ -102,13 +102,14 @@ def test_bon_rl_credit_equals_subset_definition(n, data):
     k = data.draw(st.integers(1, n))
     seed = data.draw(st.integers(0, 2**31 - 1))
     rng = np.random.default_rng(seed)
-    s = rng.integers(0, 3, size=n).astype(float)
     R = rng.normal(size=n)
-    for baseline in ("loo", "none"):
-        w = bon_rl_credit(s[None], R[None], k=k, baseline=baseline)[0]
-        np.testing.assert_allclose(w, subset_credit(s, R, k, baseline == "loo"), atol=1e-13)
-    # pool U-statistic against the sorted-rank formula (Chow et al. 2024) in bonft.estimate
-    assert abs(pool_value(s[None], R[None], k=k)[0] - bon_at_k(s, R, k=k)) < 1e-13
+    # tied scores (the grouped path) and distinct scores (the path without ties)
+    for s in (rng.integers(0, 3, size=n).astype(float), rng.permutation(n).astype(float)):
+        for baseline in ("loo", "none"):
+            w = bon_rl_credit(s[None], R[None], k=k, baseline=baseline)[0]
+            np.testing.assert_allclose(w, subset_credit(s, R, k, baseline == "loo"), atol=1e-13)
+        # pool U-statistic against the sorted-rank formula (Chow et al. 2024) in bonft.estimate
+        assert abs(pool_value(s[None], R[None], k=k)[0] - bon_at_k(s, R, k=k)) < 1e-13
 
 
 @settings(max_examples=40)
