@@ -1,34 +1,106 @@
-"""The demo pipeline on a tiny scale: warm start once, two objectives from it, one comparison."""
+"""The demo pipeline on a tiny scale (warm start once, REINFORCE, pass@k and the placebo from it, one
+comparison) and the study's statistics against outside references."""
+import itertools
 import json
+from math import comb
 
-from bonft.trainer.demo import DemoConfig, run_demo, study_table
+import numpy as np
+import pytest
+
+from bonft.trainer.demo import DemoConfig, run_demo
+from bonft.trainer.demo_stats import best_temperatures, paired_bootstrap, per_prompt_curves, study_table, t_interval
 
 
-def test_tiny_demo_end_to_end(tmp_path, capsys):
+def test_tiny_demo_end_to_end(tmp_path):
     dc = DemoConfig(run_dir=str(tmp_path / "demo"), n_train=32, n_eval=4, sft_steps=3, sft_batch_size=8, rl_steps=2,
                     prompts_per_step=4, n=8, k=4, eval_n=8, eval_ks=[1, 8], layers=1, width=32, heads=2,
-                    max_new_tokens=5, n_boot=50, threads=1)
+                    max_new_tokens=4, n_boot=50, threads=1, workers=1, snr_every=1, log_every=1, plan_temperatures=(0.7, 1.3),
+                    plan_prompts=4, plan_n=8, plan_policies=("warm_start", "pass_at_k"))
     summary = run_demo(dc, progress=False)
     out = tmp_path / "demo"
-    assert set(summary["results"]) == {"warm_start", "loo_reinforce", "pass_at_k"}
-    assert (out / "comparison.png").stat().st_size > 0 and (out / "comparison.md").is_file()
-    saved = json.loads((out / "summary.json").read_text())
-    assert saved["table"].count("\n") == 4  # header, rule, three policies
-    for ev in saved["results"].values():  # all evaluated on the same held-out prompts and budget
+    assert set(summary["results"]) == {"warm_start", "loo_reinforce", "pass_at_k", "placebo"}
+    assert (out / "comparison.png").stat().st_size > 0
+    md = (out / "comparison.md").read_text()
+    assert "Paired difference from warm start" in md and "Paired difference from leave-one-out REINFORCE" in md
+    assert "placebo (pass@k, outcomes shuffled)" in md and "best temperature" in md
+    for ev in summary["results"].values():  # all evaluated on the same held-out prompts and budget
         assert ev["n_prompts"] == 4 and ev["n_samples"] == 8 and ev["ks"] == [1, 8]
-    # the RL stages started from the warm start's checkpoint
-    rl_cfg = (out / "pass_at_k" / "config.toml").read_text()
-    assert "warm_start/checkpoints/step-00000003" in rl_cfg and 'objective = "pass_at_k"' in rl_cfg
+    # the demo's own pools are the trainer's final evaluation (same policy, same per-prompt seeds)
+    for name, ev in summary["results"].items():
+        pools = np.load(out / name / "pools-T1-P4-n8.npz")
+        assert pools["rewards"].mean() == pytest.approx(ev["mean_reward"], abs=1e-12)
+        assert pools["rewards"].shape == (4, 8) and pools["proxy"].shape == (4, 8)
+    # the RL stages started from the warm start's checkpoint; the placebo is pass@k with shuffled outcomes
+    placebo = (out / "placebo" / "config.toml").read_text()
+    assert "warm_start/checkpoints/step-00000003" in placebo and "placebo = true" in placebo
+    assert 'objective = "pass_at_k"' in placebo and 'optimizer = "sgd"' in placebo
+    for name in ("loo_reinforce", "pass_at_k", "placebo"):
+        g = summary["gradients"][name]
+        assert g["grad_snr"] > 0 and g["grad_norm"] > 0 and g["clipped"] == 0.0  # clipping is off by default
+    assert set(summary["best_temperature"]) == {"warm_start", "pass_at_k"}
+    assert set(summary["best_temperature"]["pass_at_k"].values()) <= {0.7, 1.3}
     # a rerun reuses every finished stage: no stage's summary is rewritten
     stamps = {p: p.stat().st_mtime_ns for p in out.glob("*/summary.json")}
     again = run_demo(dc, progress=False)
-    assert again["results"] == summary["results"] and len(stamps) == 3
+    assert again["results"] == summary["results"] and len(stamps) == 4
     assert {p: p.stat().st_mtime_ns for p in out.glob("*/summary.json")} == stamps
 
 
-def test_study_table_t_interval():
-    ev = lambda m: {"ks": [1], "pass_at_k": {"mean": [m]}, "distinct_answers": 2.0}
-    table = study_table({0: {"a": ev(0.2)}, 1: {"a": ev(0.4)}, 2: {"a": ev(0.3)}})
+def test_t_interval_matches_a_t_table():
     # mean 0.3, sd 0.1, n 3: half-width t_{0.975,2} * 0.1 / sqrt(3) = 4.3027 * 0.05774 = 0.2484
     # (t quantile 4.303 from a Student-t table, e.g. NIST/SEMATECH e-Handbook, Table 1.4.2 of t critical values)
-    assert "0.300 [0.052, 0.548]" in table
+    m, lo, hi = t_interval([0.2, 0.4, 0.3])
+    assert (m, lo, hi) == pytest.approx((0.3, 0.0516, 0.5484), abs=1e-4)
+    # 5 seeds: t_{0.975,4} = 2.776 (same table)
+    v = np.array([0.01, 0.03, 0.02, 0.05, 0.04])
+    assert t_interval(v)[2] - v.mean() == pytest.approx(2.776 * v.std(ddof=1) / np.sqrt(5), abs=1e-3)
+
+
+def test_paired_bootstrap_agrees_with_scipy():
+    from scipy import stats
+
+    rng = np.random.default_rng(0)
+    a = rng.random(200)
+    b = a - 0.05 + 0.1 * rng.standard_normal(200)
+    m, lo, hi = paired_bootstrap(a, b, n_boot=4000, seed=1)
+    ref = stats.bootstrap((a - b,), np.mean, n_resamples=4000, method="percentile", random_state=2).confidence_interval
+    assert m == pytest.approx(np.mean(a - b), abs=1e-12)
+    assert lo == pytest.approx(ref.low, abs=0.004) and hi == pytest.approx(ref.high, abs=0.004)
+
+
+def test_per_prompt_curves_match_enumeration():
+    rewards = np.array([[1, 0, 0, 0, 1], [0, 0, 0, 0, 0], [1, 1, 1, 0, 1]], dtype=float)
+    proxy = np.array([[0.2, 0.9, 0.1, 0.5, 0.3], [0.1, 0.2, 0.3, 0.4, 0.5], [0.5, 0.1, 0.9, 0.95, 0.2]])
+    c = per_prompt_curves({"rewards": rewards, "proxy": proxy}, [1, 2, 5])
+    for p in range(3):
+        for j, k in enumerate([1, 2, 5]):  # brute force over every k-subset of the pool
+            subsets = list(itertools.combinations(range(5), k))
+            assert c["pass"][p, j] == pytest.approx(np.mean([rewards[p, list(s)].max() for s in subsets]))
+            best = [rewards[p, max(s, key=lambda i: proxy[p, i])] for s in subsets]  # no ties in these scores
+            assert c["proxy"][p, j] == pytest.approx(np.mean(best))
+    # Chen et al. 2021: pass@k = 1 - C(n - c, k) / C(n, k); prompt 0 has c = 2 of n = 5
+    assert c["pass"][0, 1] == pytest.approx(1 - comb(3, 2) / comb(5, 2))
+
+
+def test_best_temperatures_follow_the_pools():
+    rng = np.random.default_rng(0)
+    # T = 0.5: half the prompts at 0.6 per sample, half never solved -> pass@16 ~ 0.5;
+    # T = 1.5: every prompt at 0.3 -> pass@16 = 1 - 0.7^16 ~ 0.997 (Chen et al. 2021 formula)
+    lo = (rng.random((300, 32)) < 0.6).astype(float)
+    lo[150:] = 0.0
+    hi = (rng.random((300, 32)) < 0.3).astype(float)
+    best = best_temperatures({0.5: lo, 1.5: hi}, [16], n_boot=100)
+    assert best[16] == 1.5
+
+
+def test_study_table_pairs_by_seed():
+    def curves(p1, p32):
+        return {"pass": np.array([[p1, p32]] * 4), "proxy": np.array([[p1, p32]] * 4)}
+
+    per_seed = {s: {"warm_start": curves(0.2, 0.6), "loo_reinforce": curves(0.3, 0.6 + 0.01 * s),
+                    "pass_at_k": curves(0.25, 0.7 + 0.01 * s)} for s in range(3)}
+    table = study_table(per_seed, [1, 32])
+    # pass@k - REINFORCE at pass@32 is exactly 0.1 on every seed: a zero-width interval, marked
+    assert "+0.100 [+0.100, +0.100] *" in table
+    # pass@k - warm start at pass@32: 0.10, 0.11, 0.12 -> mean 0.11, sd 0.01, t_{0.975,2} = 4.303
+    assert "+0.110 [+0.085, +0.135] *" in table
