@@ -78,81 +78,64 @@ def _ppow(f: np.ndarray, m: int, K: int) -> np.ndarray:
     return out
 
 
-def class_win_counts(d: np.ndarray, m: np.ndarray, K: int) -> np.ndarray:
-    """Tie-weighted number of k-subsets a given answer wins, for each count class.
+def pool_vote_sums(d: np.ndarray, m: np.ndarray, R: np.ndarray, K: int) -> np.ndarray:
+    """Reward of majority vote summed over the k-subsets of a pool, for every k <= K.
 
-    ``d: (J,)`` distinct answer counts in the pool, ``m: (J,)`` how many answers
-    have each count (answers with equal counts are exchangeable)
-    -> ``(J, K+1)``: entry ``[j, k]`` is ``sum_S share_a(S)`` over the k-subsets
-    ``S`` of the pool, for one answer ``a`` of class ``j``. Divide by
-    ``C(n, k)`` for the win probability.
+    ``d: (J,)`` distinct answer counts, ``m: (J,)`` answers with each count, ``R: (J,)`` sum of
+    the mean rewards of those answers -> ``(K+1,)``: entry ``k`` is
+    ``sum_{|S|=k} sum_a share_a(S) rbar_a``; divide by ``C(n, k)`` for the estimate.
 
-    Cost: for each threshold ``c`` a product of the classes that reach ``c``,
-    batched over the quadrature nodes; ``O(sum_c A_c * n * c)`` flops.
+    Per threshold ``c`` one product over the count classes carries a dual part
+    ``d/de prod_a (f_a + e rbar_a h_a)``; answers of one class are exchangeable, so a class
+    contributes ``(f^m, R h f^(m-1))``. Answers that cannot reach ``c`` give ``(1+x)^below``;
+    at ``c = 1`` every answer of the subset ties (share ``1/k``), so no quadrature is needed.
+    Cost: ``O(sum_c J_c n c)`` flops.
     """
     d = np.asarray(d, dtype=np.int64)
     m = np.asarray(m, dtype=np.int64)
-    J = len(d)
-    W = np.zeros((J, K + 1))
+    R = np.asarray(R, dtype=np.float64)
     n = int((d * m).sum())
+    out = np.zeros(K + 1)
     top = int(np.argmax(d))
-    # above the second-largest count only a lone top answer can reach c: it wins iff it holds c,
-    # W[top, c + t] += C(d, c) C(n - d, t) (the others hold any t of their n - d samples)
+    # above the second-largest count only a lone top answer can reach c: it wins iff it holds c
     second = int(np.sort(np.repeat(d, m))[-2]) if m.sum() > 1 else 0
     c_dp = min(second, K) if m[top] == 1 else min(int(d[top]), K)
     if c_dp < min(int(d[top]), K):
         c0, c1 = c_dp + 1, min(int(d[top]), K)
         head = np.zeros(K + 1)
         head[c0 : c1 + 1] = _comb_row(int(d[top]))[c0 : c1 + 1]
-        W[top] += np.convolve(head, _comb_row(n - int(d[top])))[: K + 1]
+        out += R[top] * np.convolve(head, _comb_row(n - int(d[top])))[: K + 1]
     for c in range(1, c_dp + 1):
         act = np.flatnonzero(d >= c)
-        below = int((d[d < c] * m[d < c]).sum())  # samples of answers that cannot reach c
-        # the u-degree of [x^j] is at most min(A, K // c) - 1: each tied answer takes c of the <= K slots
-        A = min(int(m[act].sum()), K // c)
-        u, g = _gauss_legendre((A + 1) // 2)
+        below = int((d[d < c] * m[d < c]).sum())
+        if c == 1:  # every sampled answer appears once: all tie, share 1/k, no u needed
+            u, g = np.ones(1), np.ones(1)
+        else:
+            A = min(int(m[act].sum()), K // c)  # u-degree of [x^j] <= min(A, K // c) - 1
+            u, g = _gauss_legendre((A + 1) // 2)
         U = len(u)
-        pw, pw1, head = [], [], []
+        val = np.ones((U, 1))
+        der = np.zeros((U, 1))
         for j in act:
             row = _comb_row(int(d[j]))
             f = np.empty((U, c + 1))
             f[:, :c] = row[:c]
-            f[:, c] = u * row[c]
-            p1 = _ppow(f, int(m[j]) - 1, K)
-            pw1.append(p1)
-            pw.append(_pmul(p1, f, K))
-            head.append(row[c])
-        # prefix / suffix products over the active classes
-        L = len(act)
-        pre = [np.ones((U, 1))]
-        for i in range(L):
-            pre.append(_pmul(pre[-1], pw[i], K))
-        suf = [np.ones((U, 1))]
-        for i in range(L - 1, -1, -1):
-            suf.append(_pmul(suf[-1], pw[i], K))
-        suf = suf[::-1]  # suf[i] = product of classes i..L-1
-        binom_below = _comb_row(below)[: K + 1]
-        for i, j in enumerate(act):
-            rest = _pmul(_pmul(pre[i], suf[i + 1], K), pw1[i], K)  # (U, ...) everyone but this answer
-            poly = g @ rest  # integrate over u
-            poly = np.convolve(poly, binom_below)[: K + 1 - c]
-            W[j, c : c + len(poly)] += head[i] * poly
-    return W
-
-
-def pool_win_probs(counts: np.ndarray, K: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Win probabilities of every answer of a pool: counts (A,) > 0 -> (A, K+1).
-
-    Returns ``(P, classes, cls_of)``: ``P[a, k]`` is the chance answer ``a``
-    wins majority vote on a uniform k-subset (ties shared), ``P[:, 0] = 0``.
-    """
-    counts = np.asarray(counts, dtype=np.int64)
-    n = int(counts.sum())
-    d, cls_of, mult = np.unique(counts, return_inverse=True, return_counts=True)
-    W = class_win_counts(d, mult, K)
-    tot = np.array([float(math.comb(n, k)) for k in range(K + 1)])
-    Pc = W / tot
-    return Pc[cls_of], d, cls_of
+            f[:, c] = (u if c > 1 else 1.0) * row[c]
+            p1 = _ppow(f, int(m[j]) - 1, K)  # f^(m-1)
+            hp = np.zeros((U, min(p1.shape[1] + c, K + 1)))
+            hp[:, c:] = R[j] * row[c] * p1[:, : hp.shape[1] - c]  # R h f^(m-1), h = C(d, c) x^c
+            fm = _pmul(p1, f, K)
+            der = _pmul(der, fm, K)
+            tmp = _pmul(val, hp, K)
+            if tmp.shape[1] > der.shape[1]:
+                der = np.pad(der, ((0, 0), (0, tmp.shape[1] - der.shape[1])))
+            der[:, : tmp.shape[1]] += tmp
+            val = _pmul(val, fm, K)
+        poly = np.convolve(g @ der, _comb_row(below))[: K + 1]
+        if c == 1:  # share 1/k of the k tied answers
+            poly = poly / np.maximum(np.arange(len(poly)), 1)
+        out[: len(poly)] += poly
+    return out
 
 
 # ---------------------------------------------------------------------------- finite policy (torch)

@@ -46,6 +46,7 @@ import torch
 from bonft import bon as _bon
 from bonft._checks import check_choice, check_int, is_tensor
 from bonft._votes import policy_majority_value, weighted_vote_weights
+from bonft.vote_estimate import MAX_SUBSETS
 
 __all__ = [
     "Strategy", "BestOfK", "MajorityVote", "WeightedVote", "PassAtK", "STRATEGY_NAMES", "get_strategy",
@@ -269,7 +270,7 @@ def strategy_value(strategy, probs, *, k, rewards, scores=None, answers=None):
 
 
 def strategy_loss(logprobs, scores, rewards, *, strategy, k, answers=None, mask=None, return_info=False,
-                  max_subsets=20_000, seed=0, **options):
+                  max_subsets=MAX_SUBSETS, seed=0, **options):
     r"""Policy-gradient loss for a strategy's value: credit from :func:`bonft.vote_estimate.strategy_credit`.
 
     ``logprobs: (B, n)`` sequence log-probs or ``(B, n, T)`` token log-probs [+ ``mask``];

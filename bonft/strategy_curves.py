@@ -17,7 +17,7 @@ import numpy as np
 
 from bonft.estimate import MIN_BOOT_PROMPTS, bootstrap_ci
 from bonft.strategies import get_strategy
-from bonft.vote_estimate import strategy_at_k
+from bonft.vote_estimate import MAX_SUBSETS, strategy_at_k
 
 __all__ = ["StrategyCurves", "compare_strategies"]
 
@@ -76,7 +76,7 @@ class StrategyCurves:
 
 
 def compare_strategies(strategies, *, ks, rewards, scores=None, answers=None, confidence=0.95, n_boot=2000, seed=0,
-                       max_subsets=20_000) -> StrategyCurves:
+                       max_subsets=MAX_SUBSETS) -> StrategyCurves:
     """Estimate each strategy on the same pools: ``(P, n)`` pools (or lists) -> :class:`StrategyCurves`.
 
     ``strategies``: names or :class:`bonft.strategies.Strategy` objects. Values are the unbiased

@@ -42,7 +42,7 @@ import torch
 
 from bonft import estimate as _estimate
 from bonft._checks import as_float_array, check_finite, check_int, check_k, check_ks, is_tensor
-from bonft._votes import class_win_counts, vote_credit_batched, weighted_vote_weights
+from bonft._votes import pool_vote_sums, vote_credit_batched, weighted_vote_weights
 
 __all__ = [
     "vote_at_k_per_prompt", "weighted_vote_at_k_per_prompt", "vote_credit", "weighted_vote_credit",
@@ -50,6 +50,7 @@ __all__ = [
 ]
 
 _MAX_N_EXACT = 1000  # binomials of the count DP stay inside float64 (2^1000 ~ 1e301)
+MAX_SUBSETS = 4000  # weighted vote: exact over all k-subsets up to this many, else this many sampled
 
 
 # ---------------------------------------------------------------------------- inputs
@@ -121,11 +122,9 @@ def _vote_pool(codes: np.ndarray, r: np.ndarray, ks: np.ndarray) -> np.ndarray:
     counts = np.bincount(codes)
     rbar = np.bincount(codes, weights=r) / counts
     d, cls, mult = np.unique(counts, return_inverse=True, return_counts=True)
-    K = int(ks.max())
-    W = class_win_counts(d, mult, K)  # (J, K+1)
-    tot = np.array([float(math.comb(len(r), k)) for k in ks])
     per_class_r = np.bincount(cls.reshape(-1), weights=rbar, minlength=len(d))  # (J,) sum of rbar per class
-    return (per_class_r @ W[:, ks]) / tot
+    sums = pool_vote_sums(d, mult, per_class_r, int(ks.max()))
+    return sums[ks] / np.array([float(math.comb(len(r), k)) for k in ks])
 
 
 def vote_at_k_per_prompt(answers, rewards, *, ks):
@@ -207,7 +206,7 @@ def _check_budget(max_subsets, seed) -> tuple[int, int]:
     return check_int("max_subsets", max_subsets, min=2), check_int("seed", seed, min=0)
 
 
-def weighted_vote_at_k_per_prompt(answers, scores, rewards, *, ks, max_subsets=20_000, seed=0):
+def weighted_vote_at_k_per_prompt(answers, scores, rewards, *, ks, max_subsets=MAX_SUBSETS, seed=0):
     r"""Unbiased verifier-weighted vote value of every pool and its standard error.
 
     ``(P, n) x 3 -> (values (P, K), stderr (P, K))``. The served answer maximises the total
@@ -237,7 +236,7 @@ def weighted_vote_at_k_per_prompt(answers, scores, rewards, *, ks, max_subsets=2
     return val, se
 
 
-def weighted_vote_credit(answers, scores, rewards, *, k, max_subsets=20_000, seed=0):
+def weighted_vote_credit(answers, scores, rewards, *, k, max_subsets=MAX_SUBSETS, seed=0):
     r"""Weighted-vote credit with a leave-one-out baseline: ``(B, n) x 3 -> (B, n)``.
 
     .. math:: w_i = \frac kn\Big(\mathrm{mean}_{S\ni i} f(S) - \mathrm{mean}_{S\not\ni i,|S|=kb} f(S)\Big)
@@ -287,7 +286,7 @@ def _need(st, scores, answers) -> None:
         raise ValueError(f"answers must be given for strategy {st.name!r}, got None")
 
 
-def strategy_at_k(strategy, *, ks, rewards, scores=None, answers=None, max_subsets=20_000, seed=0):
+def strategy_at_k(strategy, *, ks, rewards, scores=None, answers=None, max_subsets=MAX_SUBSETS, seed=0):
     """Unbiased ``V_k`` of any strategy for every pool: ``-> (values (P, K), stderr (P, K))``.
 
     best-of-k: :func:`bonft.estimate.bon_at_k_per_prompt`; pass: the oracle curve
@@ -317,7 +316,7 @@ def _bon_credit(scores, rewards, *, k):
     return bon_rl_credit(scores, rewards, k=k)
 
 
-def strategy_credit(strategy, scores, rewards, *, k, answers=None, max_subsets=20_000, seed=0):
+def strategy_credit(strategy, scores, rewards, *, k, answers=None, max_subsets=MAX_SUBSETS, seed=0):
     """Per-sample credit ``(B, n)`` of any strategy, unbiased for ``grad V_k``, leave-one-out baseline.
 
     best-of-k: :func:`bonft.credit.bon_rl_credit`; pass: the same with ``scores = rewards``;

@@ -15,8 +15,8 @@ def add_strategy_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--strategy", default=None, metavar="NAMES", help=STRATEGY_HELP)
     p.add_argument("--answer-field", default="answer",
                    help="field holding each sample's extracted answer key (default: answer)")
-    p.add_argument("--max-subsets", type=int, default=20000,
-                   help="weighted vote: exact over all k-subsets up to this many, else this many sampled (default: 20000)")
+    p.add_argument("--max-subsets", type=int, default=None,
+                   help="weighted vote: exact over all k-subsets up to this many, else this many sampled (default: 4000)")
 
 
 def strategy_names(text: str | None) -> list[str] | None:
@@ -40,6 +40,7 @@ def _curves(table, t, names, ks, args):
     from bonft.estimate import default_ks
     from bonft.io import group_pools
     from bonft.strategy_curves import compare_strategies
+    from bonft.vote_estimate import MAX_SUBSETS
 
     need_answers = any(n in ("majority", "weighted") for n in names)
     if need_answers and table.answers is None:
@@ -53,7 +54,8 @@ def _curves(table, t, names, ks, args):
         raise ValueError(f"--ks must be in [1, n] with n = {n_min} (the smallest pool), got {ks}")
     use = ks if ks is not None else default_ks(n_min)
     return compare_strategies(names, ks=use, rewards=r, scores=s, answers=a, confidence=args.confidence,
-                              n_boot=args.boot, seed=args.seed, max_subsets=args.max_subsets)
+                              n_boot=args.boot, seed=args.seed,
+                              max_subsets=args.max_subsets if args.max_subsets is not None else MAX_SUBSETS)
 
 
 def run_estimate(args, table, path: str, temps: list, ks) -> int:
