@@ -17,6 +17,8 @@ from collections import Counter
 import numpy as np
 import pytest
 import torch
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from bonft import credit as C
 from bonft.strategies import (MajorityVote, WeightedVote, get_strategy, strategy_value, vote_value,
@@ -136,6 +138,23 @@ def test_strategy_at_k_matches_closed_forms():
         np.testing.assert_allclose(v[0], [_brute_pool(rule, a, s, r, k) for k in (1, 4, 8)], atol=1e-13)
 
 
+@settings(max_examples=30)
+@given(st.lists(st.integers(0, 4), min_size=2, max_size=9), st.integers(0, 2**31 - 1))
+def test_majority_estimator_and_credit_property(answers, seed):
+    # reference: every k-subset (the U-statistic) for the value, and for the credit its definition
+    # w_i = V_k(pool) - V_kb(pool without i), each value by enumeration
+    a = np.array(answers)
+    n = len(a)
+    r = np.random.default_rng(seed).integers(0, 3, n) / 2.0  # ties in rewards too
+    got = vote_at_k_per_prompt([a], [r], ks=range(1, n + 1))[0]
+    np.testing.assert_allclose(got, [_brute_pool("majority", a, a, r, k) for k in range(1, n + 1)], atol=1e-12)
+    k = 1 + seed % n
+    kb = min(k, n - 1)
+    want = [_brute_pool("majority", a, a, r, k)
+            - _brute_pool("majority", np.delete(a, i), None, np.delete(r, i), kb) for i in range(n)]
+    np.testing.assert_allclose(vote_credit([a], [r], k=k)[0], want, atol=1e-12)
+
+
 # ---------------------------------------------------------------------------- credit: expected gradient
 
 
@@ -144,11 +163,10 @@ def _all_pools(n):
     return pools
 
 
-@pytest.mark.parametrize("rule", ["majority", "weighted", "best-of-k", "pass"])
-def test_credit_expected_gradient_equals_exact_gradient(rule):
-    # reference: E over every ordered pool of n = 4 draws of sum_i w_i grad log pi(y_i),
-    # against autograd of the exact V_k; max error over k = 1..4 below 1e-10
-    n = 4
+@pytest.mark.parametrize("rule,n", [("majority", 4), ("majority", 5), ("weighted", 4), ("best-of-k", 4), ("pass", 4)])
+def test_credit_expected_gradient_equals_exact_gradient(rule, n):
+    # reference: E over every ordered pool of n draws (6^n pools) of sum_i w_i grad log pi(y_i),
+    # against autograd of the exact V_k; max error over k = 1..n below 1e-10
     pools = _all_pools(n)
     z = torch.tensor(LOGITS, dtype=torch.float64, requires_grad=True)
     pnp = torch.softmax(z, -1).detach().numpy()
@@ -160,7 +178,7 @@ def test_credit_expected_gradient_equals_exact_gradient(rule):
         g_est = np.einsum("p,pn,pnv->v", prob, w, onehot - pnp)
         (g_true,) = torch.autograd.grad(strategy_value(rule, torch.softmax(z, -1), k=k, rewards=RW, scores=SC, answers=ANS), z)
         worst = max(worst, float(np.abs(g_est - g_true.numpy()).max()))
-    print(f"{rule}: max |E[credit gradient] - grad V_k| = {worst:.2e}")
+    print(f"{rule}, n={n}: max |E[credit gradient] - grad V_k| = {worst:.2e}")
     assert worst < 1e-10
 
 
