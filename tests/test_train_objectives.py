@@ -115,6 +115,11 @@ def test_grad_snr_of_pure_noise_is_one_over_sqrt_B():
     # signal with ||mu||^2 = sigma^2 (per-prompt noise norm): E SNR^2 ~ 1 + 1/B
     G = rng.normal(size=(16, 20000)) + 1.0
     assert _moments(G) == pytest.approx(math.sqrt(1 + 1 / 16), rel=0.03)
+    # one prompt with a gradient, B - 1 without: gbar = g/B and sum ||d_b||^2 = ||g||^2 (B-1)/B, so exactly 1/sqrt(B)
+    G = np.zeros((16, 30))
+    G[3] = rng.normal(size=30)
+    assert _moments(G) == pytest.approx(0.25, rel=1e-12)
+    assert _moments(np.zeros((16, 30))) == 0.0  # no credit anywhere: no signal
     # the streamed sums against the formula on the stored vectors (numpy)
     G = rng.normal(size=(8, 50)) + 0.3
     mean = G.mean(0)

@@ -47,7 +47,9 @@ class GradientMoments:
     The denominator is the unbiased estimate of ``E||g_b - E g||^2`` (sigma^2), and
     ``E||gbar||^2 = ||E g||^2 + sigma^2 / B``, so ``E[SNR^2] ~ ||E g||^2 / sigma^2 + 1/B``:
     a pure-noise gradient (``E g = 0``) gives about ``1/sqrt(B)``; the signal share
-    ``||E g||^2 / sigma^2`` is estimated by ``SNR^2 - 1/B``. Sums are streamed
+    ``||E g||^2 / sigma^2`` is estimated by ``SNR^2 - 1/B``. A step where a single prompt has a
+    non-zero gradient gives exactly ``1/sqrt(B)`` (one prompt cannot tell signal from noise); one
+    where none has gives 0. Sums are streamed
     (``sum_b g_b`` and ``sum_b ||g_b||^2``), so memory is one gradient, not B.
     """
 
@@ -80,4 +82,6 @@ class GradientMoments:
             raise ValueError(f"the gradient SNR needs at least 2 prompts, got {int(B)}")
         mean_sq = float(flat.pow(2).sum()) / B**2  # ||gbar||^2
         dev_sq = max(sq - B * mean_sq, 0.0) / (B - 1)  # sum_b ||g_b - gbar||^2 = sum_b ||g_b||^2 - B ||gbar||^2
-        return math.sqrt(mean_sq / dev_sq) if dev_sq > 0 else float("inf")
+        if mean_sq == 0:  # every per-prompt gradient is zero (no credit anywhere): no signal
+            return 0.0
+        return math.sqrt(mean_sq / dev_sq) if dev_sq > 0 else float("inf")  # inf: B identical gradients
