@@ -25,7 +25,7 @@ the value is their mean: one of them is served uniformly at random. For majority
 ``sum_a P_k(a wins) * Rbar_a`` with ``Rbar_a = sum_{v in a} pi(v) R_v / pi(a)``.
 
 References: Wang et al. 2023 "Self-Consistency Improves Chain of Thought Reasoning in Language
-Models" (majority vote); Li et al. 2023 "Making Large Language Models Better Reasoners with
+Models" (majority vote); Li et al. 2023 "Making Language Models Better Reasoners with
 Step-Aware Verifier" (verifier-weighted vote); Chow et al. 2024 "Inference-Aware Fine-Tuning for
 Best-of-N Sampling in LLMs" (best-of-N objectives and their gradients); Chen et al. 2021 (pass@k).
 
@@ -91,7 +91,7 @@ def _check_k_exact(k) -> int:
 def vote_value(probs, answers, rewards, *, k):
     r"""Exact majority-vote value on a finite outcome set, differentiable.
 
-    ``probs: (..., V), answers: (V,), rewards: (..., V) or (V,) -> (...)``
+    Shape: ``probs (..., V), answers (V,), rewards (..., V) or (V,) -> (...)``.
 
     .. math::
         V_k = \sum_a P_k(a\ \text{wins})\,\bar R_a,\qquad
@@ -102,7 +102,9 @@ def vote_value(probs, answers, rewards, *, k):
     ``A`` answers, never enumerating k-tuples. numpy in -> numpy out; torch in -> torch out,
     differentiable w.r.t. ``probs`` (and ``rewards``). ``k <= 150``.
 
-    References: Wang et al. 2023 (self-consistency); Chow et al. 2024 (inference-aware objectives).
+    References: Wang et al. 2023, "Self-Consistency Improves Chain of Thought Reasoning in
+    Language Models"; Chow et al. 2024 (inference-aware objectives); Abramowitz & Stegun 1964,
+    25.4.29 (Gauss-Legendre quadrature, exact for the tie integral).
     """
     p, as_np = _policy(probs)
     V = p.shape[-1]
@@ -130,7 +132,7 @@ def _compositions(k: int, V: int) -> np.ndarray:
 def weighted_vote_value(probs, answers, scores, rewards, *, k):
     r"""Exact verifier-weighted vote value on a finite outcome set, differentiable in ``probs``.
 
-    ``probs: (..., V), answers: (V,), scores, rewards: (..., V) or (V,) -> (...)``
+    Shape: ``probs (..., V), answers (V,), scores, rewards (..., V) or (V,) -> (...)``.
 
     .. math::
         V_k = \sum_{c:\ |c|=k} \frac{k!}{\prod_v c_v!}\prod_v \pi(v)^{c_v}\,
@@ -140,7 +142,9 @@ def weighted_vote_value(probs, answers, scores, rewards, *, k):
     The served answer depends on score sums, not only on counts, so this sums over the
     ``C(k+V-1, V-1)`` count vectors of the outcomes (not the ``V^k`` ordered tuples); refused
     above 200,000 of them. Totals equal to 1e-12 relative tie.
-    References: Li et al. 2023 (verifier-weighted voting); Wang et al. 2023.
+
+    References: Li et al. 2023, "Making Language Models Better Reasoners with Step-Aware
+    Verifier" (verifier-weighted voting); Wang et al. 2023 (majority vote).
     """
     p, as_np = _policy(probs)
     V = p.shape[-1]
@@ -246,11 +250,16 @@ def get_strategy(strategy) -> Strategy:
 
 
 def strategy_value(strategy, probs, *, k, rewards, scores=None, answers=None):
-    """Exact ``V_k`` of any strategy on a finite outcome set: ``probs (..., V) -> (...)``.
+    r"""Exact ``V_k`` of any strategy on a finite outcome set.
+
+    Shape: ``probs (..., V)``, ``scores, rewards (..., V) or (V,)``, ``answers (V,) -> (...)``.
+
+    .. math:: V_k = E_{y_1..y_k \sim \pi}\,[R(\mathrm{sel}(y_1..y_k))]
 
     best-of-k: :func:`bonft.bon.bon_value`; pass: best-of-k with ``scores = rewards``;
     majority: :func:`vote_value`; weighted: :func:`weighted_vote_value`.
-    References: Chow et al. 2024; Wang et al. 2023; Chen et al. 2021.
+
+    References: Chow et al. 2024; Wang et al. 2023; Li et al. 2023; Chen et al. 2021.
     """
     st = get_strategy(strategy)
     if st.uses_scores and scores is None:
@@ -273,9 +282,8 @@ def strategy_loss(logprobs, scores, rewards, *, strategy, k, answers=None, mask=
                   max_subsets=MAX_SUBSETS, seed=0, **options):
     r"""Policy-gradient loss for a strategy's value: credit from :func:`bonft.vote_estimate.strategy_credit`.
 
-    ``logprobs: (B, n)`` sequence log-probs or ``(B, n, T)`` token log-probs [+ ``mask``];
-    ``scores, rewards, answers: (B, n)`` -> loss (a tensor), or ``(loss, info)`` with
-    ``return_info=True``.
+    Shape: ``logprobs (B, n)`` sequence log-probs or ``(B, n, T)`` token log-probs [+ ``mask``],
+    ``scores, rewards, answers (B, n) -> loss ()``; ``(loss, info)`` with ``return_info=True``.
 
     .. math:: \ell = -\frac1B\sum_b\sum_i w_{bi}\,\log\pi(y_{bi}),\qquad
               E[-\nabla\ell] = \nabla\,\mathrm{mean}_b V_k
@@ -283,6 +291,7 @@ def strategy_loss(logprobs, scores, rewards, *, strategy, k, answers=None, mask=
     The credit ``w`` is plain data; the loss itself is :func:`bonft.losses.policy_gradient_loss`
     (``mask`` and ``options`` such as the anchor KL term go there). info adds ``pool_value``,
     the mean over prompts of the unbiased pool estimate of ``V_k`` (detached).
+
     References: Chow et al. 2024; Kool et al. 2019; Wang et al. 2023.
 
     Caution: see the module docstring on reward hacking.

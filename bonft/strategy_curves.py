@@ -77,11 +77,18 @@ class StrategyCurves:
 
 def compare_strategies(strategies, *, ks, rewards, scores=None, answers=None, confidence=0.95, n_boot=2000, seed=0,
                        max_subsets=MAX_SUBSETS) -> StrategyCurves:
-    """Estimate each strategy on the same pools: ``(P, n)`` pools (or lists) -> :class:`StrategyCurves`.
+    r"""Estimate each strategy on the same pools, with paired bootstrap intervals over prompts.
+
+    Shape: ``rewards, scores, answers (P, n)`` (or lists of per-prompt arrays) -> :class:`StrategyCurves`
+    of ``(K,)`` curves per strategy.
+
+    .. math:: \bar V_k = \frac1P\sum_p \hat V_k^{(p)}
 
     ``strategies``: names or :class:`bonft.strategies.Strategy` objects. Values are the unbiased
     per-prompt estimates of :func:`bonft.vote_estimate.strategy_at_k`; intervals are the paired
     percentile bootstrap of :func:`bonft.estimate.bootstrap_ci` over prompts.
+
+    References: Efron & Tibshirani 1993; Hoeffding 1948.
     """
     sts = [get_strategy(s) for s in strategies]
     if not sts:

@@ -128,7 +128,9 @@ def _vote_pool(codes: np.ndarray, r: np.ndarray, ks: np.ndarray) -> np.ndarray:
 
 
 def vote_at_k_per_prompt(answers, rewards, *, ks):
-    r"""Unbiased majority-vote value of every pool: ``(P, n), (P, n) -> (P, K)`` (``(P,)`` for an int ``ks``).
+    r"""Unbiased majority-vote value of every pool.
+
+    Shape: ``answers (P, n), rewards (P, n) -> (P, K)`` (``(P,)`` for an int ``ks``).
 
     .. math:: \hat V_k = \sum_a \hat P_k(a\ \text{wins})\,\bar r_a,\quad
               \hat P_k(a\ \text{wins}) = \binom nk^{-1}\sum_{|S|=k}\frac{1\{c_a(S)=\max\}}{\#\{b: c_b(S)=\max\}}
@@ -136,7 +138,9 @@ def vote_at_k_per_prompt(answers, rewards, *, ks):
     ``answers`` are any comparable keys (ints, strings); ``rbar_a`` is the mean reward of the
     pool's samples with answer ``a``. Exact U-statistic over all k-subsets by a dynamic
     programme over answer counts (every k <= n in one pass); pools up to n = 1000.
-    Ragged pools: lists of 1-D arrays. References: Wang et al. 2023; Hoeffding 1948.
+    Ragged pools: lists of 1-D arrays.
+
+    References: Wang et al. 2023 (majority vote); Hoeffding 1948 (U-statistics).
     """
     ans = _rows("answers", answers, numeric=False)
     rew = _rows("rewards", rewards, numeric=True)
@@ -150,7 +154,9 @@ def vote_at_k_per_prompt(answers, rewards, *, ks):
 
 
 def vote_credit(answers, rewards, *, k):
-    r"""Majority-vote credit with a leave-one-out baseline: ``(B, n), (B, n) -> (B, n)``.
+    r"""Majority-vote credit with a leave-one-out baseline.
+
+    Shape: ``answers (B, n), rewards (B, n) -> credit (B, n)``.
 
     .. math:: w_i = \hat V_k(\text{pool}) - \hat V_{\min(k,n-1)}(\text{pool}\setminus i)
 
@@ -158,6 +164,7 @@ def vote_credit(answers, rewards, *, k):
     zero credit; ``n = 1`` gives ``w = R``. All pools in one batched count DP: prefix and suffix
     products over the answers give every leave-one-out value (:func:`bonft._votes.vote_credit_batched`).
     numpy/list in -> float64 numpy; torch in -> torch (device, floating dtype of ``rewards``).
+
     References: Hoeffding 1948; Kool et al. 2019; Wang et al. 2023.
     """
     kind = _out_kind(rewards)
@@ -209,7 +216,7 @@ def _check_budget(max_subsets, seed) -> tuple[int, int]:
 def weighted_vote_at_k_per_prompt(answers, scores, rewards, *, ks, max_subsets=MAX_SUBSETS, seed=0):
     r"""Unbiased verifier-weighted vote value of every pool and its standard error.
 
-    ``(P, n) x 3 -> (values (P, K), stderr (P, K))``. The served answer maximises the total
+    Shape: ``answers, scores, rewards (P, n) -> (values (P, K), stderr (P, K))``. The served answer maximises the total
     score of its samples among the k. While ``C(n, k) <= max_subsets`` the U-statistic runs
     over every k-subset (stderr 0); above, over ``max_subsets`` uniform random k-subsets (seeded),
     unbiased with standard error ``sd(f)/sqrt(max_subsets)``.
@@ -237,13 +244,16 @@ def weighted_vote_at_k_per_prompt(answers, scores, rewards, *, ks, max_subsets=M
 
 
 def weighted_vote_credit(answers, scores, rewards, *, k, max_subsets=MAX_SUBSETS, seed=0):
-    r"""Weighted-vote credit with a leave-one-out baseline: ``(B, n) x 3 -> (B, n)``.
+    r"""Weighted-vote credit with a leave-one-out baseline.
+
+    Shape: ``answers, scores, rewards (B, n) -> credit (B, n)``.
 
     .. math:: w_i = \frac kn\Big(\mathrm{mean}_{S\ni i} f(S) - \mathrm{mean}_{S\not\ni i,|S|=kb} f(S)\Big)
 
     over every k-subset while ``C(n, k) <= max_subsets``; above, the unbiased sampled form
     ``w_i = mean_m f(S_m)(1{i in S_m} - k/(n-k) 1{i not in S_m})`` over ``max_subsets``
     uniform k-subsets. Either way ``E[sum_i w_i grad log pi(y_i)] = grad V_k``.
+
     References: Kool et al. 2019; Hoeffding 1948; Li et al. 2023.
     """
     kind = _out_kind(rewards, scores)
@@ -287,12 +297,18 @@ def _need(st, scores, answers) -> None:
 
 
 def strategy_at_k(strategy, *, ks, rewards, scores=None, answers=None, max_subsets=MAX_SUBSETS, seed=0):
-    """Unbiased ``V_k`` of any strategy for every pool: ``-> (values (P, K), stderr (P, K))``.
+    r"""Unbiased ``V_k`` of any strategy for every pool, with the Monte-Carlo standard error.
+
+    Shape: ``rewards, scores, answers (P, n) -> (values (P, K), stderr (P, K))``.
+
+    .. math:: \hat V_k = \binom nk^{-1}\sum_{|S|=k} f(S)
 
     best-of-k: :func:`bonft.estimate.bon_at_k_per_prompt`; pass: the oracle curve
     (:func:`bonft.estimate.oracle_at_k_per_prompt`, Chen et al. 2021 for 0/1 rewards);
     majority: :func:`vote_at_k_per_prompt`; weighted: :func:`weighted_vote_at_k_per_prompt`.
     stderr is 0 wherever the estimate is exact. ``ks`` must be a sequence.
+
+    References: Hoeffding 1948; Chen et al. 2021; Chow et al. 2024; Wang et al. 2023.
     """
     from bonft.strategies import get_strategy
 
@@ -317,10 +333,16 @@ def _bon_credit(scores, rewards, *, k):
 
 
 def strategy_credit(strategy, scores, rewards, *, k, answers=None, max_subsets=MAX_SUBSETS, seed=0):
-    """Per-sample credit ``(B, n)`` of any strategy, unbiased for ``grad V_k``, leave-one-out baseline.
+    r"""Per-sample credit of any strategy, unbiased for ``grad V_k``, with a leave-one-out baseline.
+
+    Shape: ``scores, rewards, answers (B, n) -> credit (B, n)``.
+
+    .. math:: w_i = \hat V_k(\text{pool}) - \hat V_{\min(k,n-1)}(\text{pool}\setminus i)
 
     best-of-k: :func:`bonft.credit.bon_rl_credit`; pass: the same with ``scores = rewards``;
     majority: :func:`vote_credit`; weighted: :func:`weighted_vote_credit`.
+
+    References: Kool et al. 2019; Chow et al. 2024; Hoeffding 1948.
     """
     from bonft.strategies import get_strategy
 
