@@ -75,6 +75,39 @@ def check_positive(name: str, value: Any) -> float:
     return value
 
 
+def check_nonnegative(name: str, value: Any) -> float:
+    """A finite real number >= 0 (0 allowed, unlike :func:`check_positive`)."""
+    if isinstance(value, bool) or not isinstance(value, numbers.Real):
+        raise TypeError(f"{name} must be a real number >= 0, got {type(value).__name__} {value!r}")
+    value = float(value)
+    if not np.isfinite(value) or value < 0:
+        raise ValueError(f"{name} must be a finite number >= 0, got {name}={value}")
+    return value
+
+
+def check_bool(name: str, value: Any) -> bool:
+    if not isinstance(value, bool):
+        raise TypeError(f"{name} must be a bool, got {type(value).__name__} {value!r}")
+    return value
+
+
+def check_binary(name: str, a: Any) -> None:
+    """Every entry 0 or 1 (numpy or torch), saying where one is not."""
+    if is_tensor(a):
+        import torch
+
+        bad = (a != 0) & (a != 1)
+        if bool(bad.any()):
+            idx = tuple(int(i) for i in torch.nonzero(bad)[0].tolist())
+            raise ValueError(f"{name} must hold only 0/1 (or booleans), got {float(a[idx])} at index {idx}")
+        return
+    a = np.asarray(a)
+    bad = (a != 0) & (a != 1)
+    if bad.any():
+        idx = tuple(int(i) for i in np.argwhere(bad)[0])
+        raise ValueError(f"{name} must hold only 0/1 (or booleans), got {float(a[idx])} at index {idx}")
+
+
 def check_fraction(name: str, value: Any, *, open_low: bool = False, open_high: bool = False) -> float:
     """A real number in [0, 1] (ends optionally open)."""
     if isinstance(value, bool) or not isinstance(value, numbers.Real):

@@ -10,7 +10,6 @@ at their boundary; the cores trust their inputs. Every check is O(B n).
 """
 from __future__ import annotations
 
-import numbers
 from typing import Any
 
 import numpy as np
@@ -54,26 +53,3 @@ def finish(w: np.ndarray, kind):
 
         return torch.from_numpy(w).to(device=device, dtype=dtype)
     return w
-
-
-def check_binary(name: str, a: np.ndarray) -> None:
-    bad = (a != 0) & (a != 1)
-    if bad.any():
-        idx = tuple(int(i) for i in np.argwhere(bad)[0])
-        raise ValueError(f"{name} must hold only 0/1 (or booleans), got {float(a[idx])} at index {idx}")
-
-
-def check_bool(name: str, value: Any) -> bool:
-    if not isinstance(value, bool):
-        raise TypeError(f"{name} must be a bool, got {type(value).__name__} {value!r}")
-    return value
-
-
-def check_smoothing(smoothing: Any) -> float:
-    """A finite real number >= 0 (0 is allowed, unlike _checks.check_positive)."""
-    if isinstance(smoothing, bool) or not isinstance(smoothing, numbers.Real):
-        raise TypeError(f"smoothing must be a real number >= 0, got {type(smoothing).__name__} {smoothing!r}")
-    smoothing = float(smoothing)
-    if not np.isfinite(smoothing) or smoothing < 0:
-        raise ValueError(f"smoothing must be a finite number >= 0, got smoothing={smoothing}")
-    return smoothing

@@ -31,8 +31,8 @@ import functools
 
 import numpy as np
 
-from bonft._checks import check_choice, check_k
-from bonft._credit_inputs import as_host, check_binary, check_bool, check_smoothing, finish, out_kind
+from bonft._checks import check_binary, check_bool, check_choice, check_k, check_nonnegative
+from bonft._credit_inputs import as_host, finish, out_kind
 from bonft._passk import log_miss, pass_at_k_counts
 from bonft._ties import first_of_group, flat_groups
 from bonft._ustat import count_tables
@@ -253,7 +253,7 @@ def _expert_pool(scores, expert_scores, k, smoothing, *, shape=None) -> tuple[np
     if e.shape[0] != s.shape[0]:
         raise ValueError(f"expert_scores must have shape (B,) = ({s.shape[0]},) to match scores, got {tuple(e.shape)}")
     k = check_k(k, s.shape[1])
-    smoothing = check_smoothing(smoothing)
+    smoothing = check_nonnegative("smoothing", smoothing)
     if smoothing == 0 and k > 1:  # h is undefined for a row where every sample beats the expert
         none_below = ~(s <= e[:, None]).any(-1)
         if none_below.any():

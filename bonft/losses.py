@@ -58,15 +58,14 @@ sandbox.
 """
 from __future__ import annotations
 
-import numbers
 from typing import Any
 
 import numpy as np
 import torch
 from torch import Tensor
 
-from bonft._checks import check_choice, check_finite, check_k, is_tensor
-from bonft._credit_inputs import as_host, check_bool
+from bonft._checks import check_binary, check_bool, check_choice, check_finite, check_k, check_nonnegative, is_tensor
+from bonft._credit_inputs import as_host
 from bonft._passk import pass_at_k_counts
 from bonft.credit import (
     _bon_rl_core, _bon_sft_core, _correct_pool, _expert_pool, _pass_at_k_core, _reinforce_core, _scored_pool,
@@ -117,10 +116,7 @@ def _check_tokens(name: str, lp: Tensor, mask_name: str, mask: Any, m: Tensor | 
     """The O(B n T) checks of check_tokens=True."""
     if m is not None:
         if mask.dtype != torch.bool:
-            bad = (mask != 0) & (mask != 1)
-            if bool(bad.any()):
-                idx = tuple(int(i) for i in torch.nonzero(bad)[0].tolist())
-                raise ValueError(f"{mask_name} must hold only 0/1 (or booleans), got {float(mask[idx])} at index {idx}")
+            check_binary(mask_name, mask.detach())
         empty = ~m.any(-1)
         if bool(empty.any()):
             idx = tuple(int(i) for i in torch.nonzero(empty)[0].tolist())
@@ -140,12 +136,7 @@ def _check_options(token_reduction: Any, reduction: Any, anchor_weight: Any, che
     check_choice("reduction", reduction, _REDUCTIONS)
     check_bool("check_tokens", check_tokens)
     check_bool("return_info", return_info)
-    if isinstance(anchor_weight, bool) or not isinstance(anchor_weight, numbers.Real):
-        raise TypeError(f"anchor_weight must be a real number >= 0, got {type(anchor_weight).__name__} {anchor_weight!r}")
-    anchor_weight = float(anchor_weight)
-    if not (anchor_weight >= 0 and anchor_weight < float("inf")):
-        raise ValueError(f"anchor_weight must be a finite number >= 0, got anchor_weight={anchor_weight}")
-    return anchor_weight
+    return check_nonnegative("anchor_weight", anchor_weight)
 
 
 def _sequence_terms(name: str, lp: Tensor, m: Tensor | None, token_reduction: str, seq_ndim: int) -> Tensor:

@@ -27,3 +27,19 @@ def test_check_finite_and_probs():
         check_probs("probs", np.array([0.5, 0.6]))
     with pytest.raises(ValueError, match=r"probs must be non-negative"):
         check_probs("probs", np.array([1.5, -0.5]))
+
+
+def test_bool_nonnegative_and_binary_messages():
+    from bonft._checks import check_binary, check_bool, check_nonnegative
+
+    assert check_bool("return_info", True) is True and check_nonnegative("anchor_weight", 0) == 0.0
+    with pytest.raises(TypeError, match=r"return_info must be a bool, got int 1"):
+        check_bool("return_info", 1)
+    with pytest.raises(ValueError, match=r"anchor_weight must be a finite number >= 0, got anchor_weight=-0.5"):
+        check_nonnegative("anchor_weight", -0.5)
+    with pytest.raises(TypeError, match=r"smoothing must be a real number >= 0, got str"):
+        check_nonnegative("smoothing", "1")
+    with pytest.raises(ValueError, match=r"correct must hold only 0/1 \(or booleans\), got 2.0 at index \(1, 0\)"):
+        check_binary("correct", np.array([[1, 0], [2, 1]]))
+    with pytest.raises(ValueError, match=r"mask must hold only 0/1 \(or booleans\), got 0.5 at index \(0, 1\)"):
+        check_binary("mask", torch.tensor([[1.0, 0.5]]))
