@@ -36,7 +36,8 @@ def test_tiny_demo_end_to_end(tmp_path):
     assert 'objective = "pass_at_k"' in placebo and 'optimizer = "sgd"' in placebo
     for name in ("loo_reinforce", "pass_at_k", "placebo"):
         g = summary["gradients"][name]
-        assert g["grad_snr"] > 0 and g["grad_norm"] > 0 and g["clipped"] == 0.0  # clipping is off by default
+        # grad_snr is 0 when no prompt of this tiny run earns credit (the step then only moves by round-off)
+        assert g["grad_snr"] >= 0 and g["grad_norm"] > 0 and g["clipped"] == 0.0  # clipping is off by default
     assert set(summary["best_temperature"]) == {"warm_start", "pass_at_k"}
     assert set(summary["best_temperature"]["pass_at_k"].values()) <= {0.7, 1.3}
     # a rerun reuses every finished stage: no stage's summary is rewritten
