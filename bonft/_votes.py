@@ -216,31 +216,14 @@ def weighted_vote_weights(cnt: np.ndarray, codes: np.ndarray, s: np.ndarray) -> 
 # ---------------------------------------------------------------------------- credit, batched over pools
 
 
-def vote_credit_batched(codes: np.ndarray, rewards: np.ndarray, k: int) -> np.ndarray:
-    """Majority-vote credit ``w_i = V_k(pool) - V_kb(pool - i)`` for B pools at once: (B, n) -> (B, n).
-
-    ``codes``: answer ids ``0..A_b-1`` per row. Every answer ``a`` has a factor
-    ``f_a(x, u)`` per threshold ``c`` (module docstring); the pools' generating function
-    ``prod_a f_a`` is multilinear in the factors, so removing one sample of answer ``a``
-    (binomials ``C(n_a, m) -> C(n_a - 1, m)``) only swaps ``f_a`` for its reduced factor:
-    prefix and suffix products over the answers give every leave-one-out value, a dual part
-    carries the reward-weighted wins. Thresholds, quadrature nodes and pools are batch axes;
-    memory ``O(B A k^3)``.
-    """
-    B, n = codes.shape
-    kb = min(k, n - 1)
-    K = k
-    A = int(codes.max()) + 1
-    cnt = np.zeros((B, A))
-    np.add.at(cnt, (np.repeat(np.arange(B), n), codes.ravel()), 1.0)
-    rsum = np.zeros((B, A))
-    np.add.at(rsum, (np.repeat(np.arange(B), n), codes.ravel()), rewards.ravel())
-    rbar = np.where(cnt > 0, rsum / np.where(cnt > 0, cnt, 1), 0.0)
-    u_np, g_np = _gauss_legendre((min(A, K) + 1) // 2)
+def _credit_terms(cnt: np.ndarray, rbar: np.ndarray, cs, u_np, g_np, K: int, k: int, kb: int):
+    """Thresholds ``cs`` of the batched credit: numerators of V_k (B,), and per answer (B, A) of
+    the others' reward-weighted wins and the answer's own wins once it loses one sample."""
     u, g = torch.as_tensor(u_np), torch.as_tensor(g_np)
     dt = torch.float64
     m = torch.arange(K + 1, dtype=dt)
-    cs = torch.arange(1, K + 1, dtype=dt)  # thresholds c = 1..K
+    cs = torch.as_tensor(cs, dtype=dt)  # the thresholds of this group
+    B, A = cnt.shape
 
     def binom(N: torch.Tensor) -> torch.Tensor:  # (B, A) counts -> (B, A, K+1) C(N, m), 0 for m > N
         N1 = N[..., None]
@@ -262,7 +245,7 @@ def vote_credit_batched(codes: np.ndarray, rewards: np.ndarray, k: int) -> np.nd
     rb = torch.as_tensor(rbar)
     U, K1 = len(u_np), K + 1
     hr = (rb[:, :, None, None] * h)[:, :, :, None, :]  # (B, A, C, 1, K+1) reward-weighted win terms
-    one = torch.zeros(B, K, U, K1, dtype=dt)
+    one = torch.zeros(B, len(cs), U, K1, dtype=dt)
     one[..., 0] = 1.0
     zero = torch.zeros_like(one)
 
@@ -285,13 +268,50 @@ def vote_credit_batched(codes: np.ndarray, rewards: np.ndarray, k: int) -> np.nd
     pv, pd = torch.stack(pv[:-1], 1), torch.stack(pd[:-1], 1)  # (B, A, C, U, K+1): answers before a
     sv, sd = torch.stack(sv[:-1][::-1], 1), torch.stack(sd[:-1][::-1], 1)  # answers after a
     gw = g[None, :]
-    Vk = (full_d[..., k] * gw).sum((1, 2)).numpy() / float(math.comb(n, k))  # (B,)
+    vk = (full_d[..., k] * gw).sum((1, 2)).numpy()  # (B,) numerator of V_k
     flip = lambda x: x[..., : kb + 1].flip(-1)  # noqa: E731  [x^kb](p * q) = sum_j p[j] q[kb - j]
     sv_fr, sd_fr = mul(sv, f_red), mul(sd, f_red)  # suffix times the reduced factor
     phi = ((pd[..., : kb + 1] * flip(sv_fr) + pv[..., : kb + 1] * flip(sd_fr)).sum(-1) * gw).sum((2, 3))
     sv_hr = mul(sv, h_red[:, :, :, None, :])
     psi = ((pv[..., : kb + 1] * flip(sv_hr)).sum(-1) * gw).sum((2, 3))
-    phi, psi = phi.numpy(), psi.numpy()  # (B, A): others' wins / a's own wins, with a reduced
+    return vk, phi.numpy(), psi.numpy()  # (B, A): others' wins / a's own wins, with a reduced
+
+
+def vote_credit_batched(codes: np.ndarray, rewards: np.ndarray, k: int) -> np.ndarray:
+    """Majority-vote credit ``w_i = V_k(pool) - V_kb(pool - i)`` for B pools at once: (B, n) -> (B, n).
+
+    ``codes``: answer ids ``0..A_b-1`` per row. Every answer ``a`` has a factor
+    ``f_a(x, u)`` per threshold ``c`` (module docstring); the pools' generating function
+    ``prod_a f_a`` is multilinear in the factors, so removing one sample of answer ``a``
+    (binomials ``C(n_a, m) -> C(n_a - 1, m)``) only swaps ``f_a`` for its reduced factor:
+    prefix and suffix products over the answers give every leave-one-out value, a dual part
+    carries the reward-weighted wins. Thresholds, quadrature nodes and pools are batch axes;
+    memory ``O(B A k^3)``.
+    """
+    B, n = codes.shape
+    kb = min(k, n - 1)
+    K = k
+    A = int(codes.max()) + 1
+    cnt = np.zeros((B, A))
+    np.add.at(cnt, (np.repeat(np.arange(B), n), codes.ravel()), 1.0)
+    rsum = np.zeros((B, A))
+    np.add.at(rsum, (np.repeat(np.arange(B), n), codes.ravel()), rewards.ravel())
+    rbar = np.where(cnt > 0, rsum / np.where(cnt > 0, cnt, 1), 0.0)
+    # thresholds grouped by the quadrature they need: at c = 1 all j answers of a j-subset tie
+    # (share 1/j, no u); above, min(A, K // c) answers can tie at c, so ceil(of that / 2) nodes
+    top = int(min(K, cnt.max()))
+    vk_num, phi, psi = np.zeros(B), np.zeros((B, A)), np.zeros((B, A))
+    groups: dict[int, list[int]] = {}
+    for c in range(2, top + 1):
+        groups.setdefault((min(A, K // c) + 1) // 2, []).append(c)
+    parts = [([1], np.ones(1), np.ones(1), True)]
+    parts += [(cs, *_gauss_legendre(nodes), False) for nodes, cs in groups.items()]
+    for cs, u_np, g_np, tie_all in parts:
+        v, f_, s_ = _credit_terms(cnt, rbar, cs, u_np, g_np, K, k, kb)
+        if tie_all:
+            v, f_, s_ = v / k, f_ / kb, s_ / kb
+        vk_num, phi, psi = vk_num + v, phi + f_, psi + s_
+    Vk = vk_num / float(math.comb(n, k))
     rows = np.arange(B)[:, None]
     d = cnt[rows, codes]  # (B, n) count of each sample's answer
     r_minus = np.where(d > 1, (rsum[rows, codes] - rewards) / np.where(d > 1, d - 1, 1), 0.0)
