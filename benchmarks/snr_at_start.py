@@ -1,4 +1,4 @@
-"""Gradient signal-to-noise ratio of each objective (and the placebo) at the demo's warm start.
+"""Gradient signal-to-noise ratio of each objective (and the placebo) at the demo's warm start (its current defaults).
 
 Trains the demo's warm start once (or reuses it in RUN_DIR/warm_start), then runs the RL step
 (``bonft.trainer.steps.rl_step`` with ``snr_every = 1``) on several batches *without updating
