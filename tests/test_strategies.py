@@ -283,3 +283,14 @@ def test_trainer_registers_vote_objectives():
     np.testing.assert_allclose(w.numpy(), vote_credit(a, r.numpy(), k=3), atol=0)
     np.testing.assert_allclose(obj.value(p, 3).numpy(), [_brute_pool("majority", a[b], r[b].numpy(), r[b].numpy(), 3)
                                                           for b in range(2)], atol=1e-13)
+
+
+def test_weighted_vote_known_cases():
+    # by hand: two outcomes, one answer each, scores 0.9 > 0.4, k = 2: answer 0 wins unless both
+    # draws are outcome 1, so V_2 = 1 - (1 - p)^2 for R = (1, 0)
+    p = 0.3
+    assert abs(float(weighted_vote_value([p, 1 - p], [0, 1], [0.9, 0.4], [1.0, 0.0], k=2)) - (1 - (1 - p) ** 2)) < 1e-15
+    # two samples of answer 1 (0.5 + 0.5) outvote one of answer 0 (0.9); one of each loses to 0.9:
+    # V_2 = P(both draws from answer 1) = 0.5^2
+    v = weighted_vote_value([0.5, 0.25, 0.25], ["x", "y", "y"], [0.9, 0.5, 0.5], [0.0, 1.0, 1.0], k=2)
+    assert abs(float(v) - 0.25) < 1e-15
