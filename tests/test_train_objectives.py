@@ -137,12 +137,19 @@ def _tiny_run(tmp_path, **kw):
     return build_run(cfg)
 
 
-@pytest.mark.parametrize("objective", ["pass_at_k", "best_of_k_sft"])
-def test_snr_uses_the_steps_own_per_prompt_gradients(tmp_path, monkeypatch, objective):
+@pytest.mark.parametrize("objective, anchor", [("pass_at_k", False), ("best_of_k_sft", False), ("pass_at_k", True)])
+def test_snr_uses_the_steps_own_per_prompt_gradients(tmp_path, monkeypatch, objective, anchor):
+    import copy
+
     import bonft.trainer.steps as S
     from bonft.trainer.measure import Stopwatch
 
-    run = _tiny_run(tmp_path, objective=objective, snr_every=1, reward_source="scores")
+    run = _tiny_run(tmp_path, objective=objective, snr_every=1, reward_source="scores", anchor_weight=0.5 if anchor else 0.0)
+    if anchor:  # an anchor away from the policy: the KL term has a gradient of its own
+        run.anchor_model = copy.deepcopy(run.module).requires_grad_(False)
+        with torch.no_grad():
+            for p in run.anchor_model.parameters():
+                p.add_(0.05 * torch.randn_like(p))
     run.verifiers["train"] = lambda ps, rs: np.array([float(len(r) % 2) for r in rs])  # mixed outcomes at random init
     seen = []
     monkeypatch.setattr(S, "GradientMoments", lambda: seen.append(GradientMoments()) or seen[-1])

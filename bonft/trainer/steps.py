@@ -195,6 +195,35 @@ def _score(run: Run, prompts: list[str], texts: list[list[str]], references: lis
     return pools, v.n_failed
 
 
+def _pool_loss(run: Run, model: Any, rows: tuple, expert_rows: tuple | None, credit: torch.Tensor,
+               anchor_logp: torch.Tensor | None) -> tuple[torch.Tensor, dict]:
+    """Summed loss of the prompts in ``rows`` (prompt_tokens, prompt_valid, reply_tokens, reply_valid)."""
+    from .generation import sequence_logprobs
+
+    cfg = run.cfg
+    # log-probs of the policy that drew the samples: same temperature and top-p
+    logp = sequence_logprobs(model, *rows, temperature=cfg.temperature, top_p=cfg.top_p)
+    e_lp = e_mask = None
+    if expert_rows is not None:  # (b, 1, T) -> (b, T): the reference response
+        e_lp, e_mask = sequence_logprobs(model, *expert_rows)[:, 0], expert_rows[3][:, 0]
+    return policy_loss(logp, credit, mask=rows[3], token_reduction=cfg.token_reduction, anchor_logprobs=anchor_logp,
+                       anchor_weight=cfg.anchor_weight, expert_logprobs=e_lp, expert_mask=e_mask)
+
+
+def _add_prompt_gradients(run: Run, moments: GradientMoments, rows: tuple, expert_rows: tuple | None,
+                          credit: torch.Tensor, anchor_logp: torch.Tensor | None) -> None:
+    """Each prompt's own gradient of its loss term (one forward + backward per prompt) into ``moments``.
+
+    Through the plain model with ``autograd.grad``: the parameters' ``.grad`` (the step's) stay untouched.
+    """
+    params = [p for p in run.module.parameters() if p.requires_grad]
+    one = lambda x, j: tuple(r[j:j + 1] for r in x) if x is not None else None
+    for j in range(credit.shape[0]):
+        anchor_j = anchor_logp[j:j + 1] if anchor_logp is not None else None
+        loss, _ = _pool_loss(run, run.module, one(rows, j), one(expert_rows, j), credit[j:j + 1], anchor_j)
+        moments.add(torch.autograd.grad(loss, params, allow_unused=True, materialize_grads=True))
+
+
 def rl_step(run: Run, step: int, clock: Stopwatch) -> dict:
     """Sample n per prompt -> score -> credit -> loss -> backward, over grad_accum micro-batches.
 
@@ -222,18 +251,6 @@ def rl_step(run: Run, step: int, clock: Stopwatch) -> dict:
                                    [prompt_seed(cfg.seed, step=step, slot=int(j), stream=PLACEBO_STREAM) for j in sl])
         rows = (smp.prompt_tokens, smp.prompt_valid, smp.reply_tokens, smp.reply_valid)
         expert_rows = encode_pairs(run.tokenizer, prompts, refs, run.device) if obj.expert else None
-
-        def loss_of(model, rows, expert_rows, credit, anchor_logp):
-            """Summed loss of the prompts in ``rows`` (all of the micro-batch, or one for the SNR)."""
-            # log-probs of the policy that drew the samples: same temperature and top-p
-            logp = sequence_logprobs(model, *rows, temperature=T, top_p=cfg.top_p)
-            e_lp = e_mask = None
-            if expert_rows is not None:  # (b, 1, T) -> (b, T): the reference response
-                e_lp, e_mask = sequence_logprobs(model, *expert_rows)[:, 0], expert_rows[3][:, 0]
-            return policy_loss(logp, credit, mask=rows[3], token_reduction=cfg.token_reduction,
-                               anchor_logprobs=anchor_logp, anchor_weight=cfg.anchor_weight,
-                               expert_logprobs=e_lp, expert_mask=e_mask)
-
         with clock("credit"):
             credit = obj.credit(pools, k)
             value = obj.value(pools, k) if obj.value is not None else None
@@ -242,17 +259,12 @@ def rl_step(run: Run, step: int, clock: Stopwatch) -> dict:
             if run.anchor_model is not None:
                 with torch.no_grad():
                     anchor_logp = sequence_logprobs(run.anchor_model, *rows, temperature=T, top_p=cfg.top_p)
-            loss, info = loss_of(run.model, rows, expert_rows, credit, anchor_logp)
+            loss, info = _pool_loss(run, run.model, rows, expert_rows, credit, anchor_logp)
         with clock("backward"):
             (loss * run.world / B).backward()  # x W/B: DDP averages over W ranks (global_mean_scale)
         if moments is not None:
             with clock("snr"):
-                params = [p for p in run.module.parameters() if p.requires_grad]
-                one = lambda x, j: tuple(r[j:j + 1] for r in x) if x is not None else None
-                for j in range(b):
-                    lj, _ = loss_of(run.module, one(rows, j), one(expert_rows, j), credit[j:j + 1],
-                                    anchor_logp[j:j + 1] if anchor_logp is not None else None)
-                    moments.add(torch.autograd.grad(lj, params, allow_unused=True, materialize_grads=True))
+                _add_prompt_gradients(run, moments, rows, expert_rows, credit, anchor_logp)
         info.update({"pool_value": float(value.mean())} if value is not None else {})
         if obj.expert:
             info["beaten_frac"] = float((pools.scores > pools.expert_scores[:, None]).double().mean())
