@@ -240,3 +240,27 @@ def test_snr_and_placebo_on_two_ranks_match_one_process(tmp_path, monkeypatch):
     for a, b in zip(rows["one"], rows["two"]):
         assert 0 < a["grad_snr"] < 10 and b["grad_snr"] == pytest.approx(a["grad_snr"], rel=1e-5)
         assert b["loss"] == pytest.approx(a["loss"], rel=1e-5, abs=1e-6) and b["reward"] == pytest.approx(a["reward"])
+
+
+def test_a_registered_objective_trains_like_the_builtin_with_the_same_credit(tmp_path):
+    from bonft import credit as C
+    from bonft.trainer.measure import Stopwatch
+    from bonft.trainer.objectives import Objective, register_objective
+    from bonft.trainer.steps import rl_step
+
+    with pytest.raises(ValueError, match=r"name must not be taken already, got 'pass_at_k'"):
+        register_objective("pass_at_k", OBJECTIVES["pass_at_k"])
+    with pytest.raises(TypeError, match=r"objective must be a bonft.trainer.objectives.Objective, got function"):
+        register_objective("mine", lambda p, k: p.rewards)
+    register_objective("my_reinforce", Objective(credit=lambda p, k: C.reinforce_credit(p.rewards), value=None, summary="mine"))
+    try:
+        recs = []
+        for name in ("loo_reinforce", "my_reinforce"):
+            run = _tiny_run(tmp_path, objective=name, reward_source="scores")
+            run.verifiers["train"] = lambda ps, rs: np.array([float(len(r) % 2) for r in rs])
+            recs.append(rl_step(run, 0, Stopwatch()))
+            recs[-1]["grad"] = torch.cat([p.grad.reshape(-1) for p in run.module.parameters() if p.grad is not None])
+        assert recs[0]["loss"] == recs[1]["loss"] and torch.equal(recs[0]["grad"], recs[1]["grad"])
+        assert recs[0]["grad"].abs().sum() > 0 and "info/pool_value" not in recs[1]
+    finally:
+        del OBJECTIVES["my_reinforce"]
