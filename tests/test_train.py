@@ -183,3 +183,26 @@ def test_non_finite_step_stops_before_the_update_and_keeps_good_checkpoints(tmp_
     monkeypatch.setattr(T, "sft_step", real)
     T.train(cfg, resume=True, progress=False)  # resuming applies each step once
     assert_same_weights(final_weights(cfg.run_dir), at(ref.run_dir, 6))
+
+
+def test_resume_with_sgd_momentum_is_exact(tmp_path, monkeypatch):
+    # the momentum buffers travel in the checkpoint like AdamW's moments (placebo on: its permutations too)
+    kw = dict(optimizer="sgd", momentum=0.9, lr=0.05, placebo=True, save_every=0)
+    whole = tiny(tmp_path, "whole", **kw)
+    T.train(whole, progress=False)
+    cfg = tiny(tmp_path, "cut", **kw)
+    real = T.rl_step
+
+    def interrupt_at_6(run, step, clock):
+        if step == 6:
+            raise KeyboardInterrupt
+        return real(run, step, clock)
+
+    monkeypatch.setattr(T, "rl_step", interrupt_at_6)
+    with pytest.raises(KeyboardInterrupt):
+        T.train(cfg, progress=False)
+    monkeypatch.setattr(T, "rl_step", real)
+    state = load_state(latest_checkpoint(cfg.run_dir))
+    assert state["step"] == 6 and any("momentum_buffer" in v for v in state["optimizer"]["state"].values())
+    T.train(cfg, resume=True, progress=False)
+    assert_same_weights(final_weights(cfg.run_dir), final_weights(whole.run_dir))
