@@ -55,17 +55,18 @@ class GradientMoments:
 
     def __init__(self) -> None:
         self.total: list[torch.Tensor] | None = None
-        self.sq = 0.0
+        self.sq: torch.Tensor | float = 0.0  # sum_b ||g_b||^2, kept on the gradients' device (no sync per prompt)
         self.count = 0
 
     def add(self, grads: Sequence[torch.Tensor]) -> None:
         """One prompt's gradient (one tensor per parameter)."""
+        g64 = [g.detach().to(torch.float64) for g in grads]
         if self.total is None:
-            self.total = [g.detach().to(torch.float64).clone() for g in grads]
+            self.total = [g.clone() for g in g64]
         else:
-            for t, g in zip(self.total, grads):
-                t.add_(g.detach().to(torch.float64))
-        self.sq += sum(float(g.detach().to(torch.float64).pow(2).sum()) for g in grads)
+            for t, g in zip(self.total, g64):
+                t.add_(g)
+        self.sq = self.sq + sum(g.pow(2).sum() for g in g64)
         self.count += 1
 
     def snr(self, ctx=None) -> float:
@@ -73,7 +74,7 @@ class GradientMoments:
         from .distributed import all_reduce_
 
         flat = torch.cat([t.reshape(-1) for t in self.total]) if self.total else torch.zeros(1, dtype=torch.float64)
-        stats = torch.tensor([self.sq, float(self.count)], dtype=torch.float64)
+        stats = torch.tensor([float(self.sq), float(self.count)], dtype=torch.float64)
         if ctx is not None and ctx.enabled and ctx.world_size > 1:
             dev = ctx.device if ctx.backend == "nccl" else torch.device("cpu")
             flat, stats = all_reduce_(flat.to(dev), ctx).cpu(), all_reduce_(stats.to(dev), ctx).cpu()
