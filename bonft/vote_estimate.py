@@ -181,11 +181,16 @@ def vote_credit(answers, rewards, *, k):
         return _finish(np.stack(rew), kind)
     codes = np.stack(_codes(ans))
     r = np.stack(rew)
-    # chunks of pools keep the (pools, answers, thresholds, nodes, degree) tensors near 20M numbers
-    A = int(codes.max()) + 1
-    size = A * k * ((min(A, k) + 1) // 2) * (k + 1)
-    step = max(1, 20_000_000 // size)
-    w = np.concatenate([vote_credit_batched(codes[i : i + step], r[i : i + step], k) for i in range(0, len(r), step)])
+    w = np.zeros_like(r)
+    live = np.flatnonzero(r.max(1) > r.min(1))  # equal rewards serve the same reward whatever wins: w = 0
+    if len(live):
+        codes, r = codes[live], r[live]
+        # chunks of pools keep the (pools, answers, thresholds, nodes, degree) tensors near 20M numbers
+        A = int(codes.max()) + 1
+        size = A * k * ((min(A, k) + 1) // 2) * (k + 1)
+        step = max(1, 20_000_000 // size)
+        w[live] = np.concatenate([vote_credit_batched(codes[i : i + step], r[i : i + step], k)
+                                  for i in range(0, len(r), step)])
     return _finish(w, kind)
 
 

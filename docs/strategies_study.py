@@ -2,15 +2,18 @@
 
 Reproduce (about 15 minutes on 2 busy CPU cores)::
 
-    bonft train recipes/majority_vote.toml --out runs/sv/majority_vote --set eval_every=100
-    bonft train recipes/best_of_k.toml     --out runs/sv/best_of_k     --set eval_every=100
     bonft train recipes/majority_vote.toml --out runs/sv/warm --set rl_steps=0 --set eval_every=400
-    for p in warm majority_vote best_of_k; do
+    bonft train recipes/majority_vote.toml --out runs/sv/majority_vote --set eval_every=100
+    bonft train recipes/majority_vote.toml --out runs/sv/mv_lr1e3 --set lr=1e-3 --set rl_steps=300 --set eval_every=100
+    bonft train recipes/majority_vote.toml --out runs/sv/weighted_vote --set objective=weighted_vote --set eval_every=100
+    bonft train recipes/best_of_k.toml     --out runs/sv/best_of_k     --set eval_every=100
+    bonft train recipes/pass_at_k.toml     --out runs/sv/pass_at_k     --set eval_every=100
+    for p in warm majority_vote mv_lr1e3 weighted_vote best_of_k pass_at_k; do
         bonft sample runs/sv/$p --n 32 --prompts 200 -o runs/sv/$p.jsonl
     done
-    python docs/strategies_study.py runs/sv
+    python docs/strategies_study.py runs/sv majority_vote mv_lr1e3 weighted_vote best_of_k pass_at_k
 
-The three runs share the warm start (same seed and supervised stage; their step-400 evaluations
+The runs share the warm start (same seed and supervised stage; their step-400 evaluations
 are identical). ``bonft sample`` scores with the task's proxy verifier and writes each response's
 extracted answer. The table gives each strategy's unbiased V_1 and V_8 over the same 200 held-out
 prompts with 95% bootstrap intervals, and the paired change against the warm start.
@@ -24,18 +27,16 @@ from bonft.io import group_pools, read_samples
 from bonft.vote_estimate import strategy_at_k
 
 NAMES = ["best-of-k", "majority", "weighted", "pass"]
-POLICIES = ["warm", "majority_vote", "best_of_k"]
-
-
-def main(root: str) -> None:
+def main(root: str, trained: list[str]) -> None:
+    policies = ["warm", *trained]
     vals = {}
-    for pol in POLICIES:
+    for pol in policies:
         keys, s, r, a = group_pools(read_samples(f"{root}/{pol}.jsonl"), with_answers=True)
         for st in NAMES:
             vals[pol, st] = (keys,) + strategy_at_k(st, ks=[1, 8], rewards=r, scores=s, answers=a)
     print("| policy | k | " + " | ".join(NAMES) + " |")
     print("|---|---|" + "---|" * len(NAMES))
-    for pol in POLICIES:
+    for pol in policies:
         for j, k in enumerate([1, 8]):
             cells = []
             for st in NAMES:
@@ -45,7 +46,7 @@ def main(root: str) -> None:
     print("\nchange at k = 8 against the warm start (paired over the same prompts):")
     print("| trained for | " + " | ".join(NAMES) + " |")
     print("|---|" + "---|" * len(NAMES))
-    for pol in POLICIES[1:]:
+    for pol in policies[1:]:
         cells = []
         for st in NAMES:
             k0, v0, _ = vals["warm", st]
@@ -58,4 +59,4 @@ def main(root: str) -> None:
 
 
 if __name__ == "__main__":
-    main(sys.argv[1] if len(sys.argv) > 1 else "runs/sv")
+    main(sys.argv[1] if len(sys.argv) > 1 else "runs/sv", sys.argv[2:] or ["majority_vote", "best_of_k"])
