@@ -236,33 +236,40 @@ def _credit_terms(cnt: np.ndarray, rbar: np.ndarray, cs, u_np, g_np, K: int, k: 
         below = (m[None, :] < cs[:, None]).to(dt)  # (C, K+1)
         at = (m[None, :] == cs[:, None]).to(dt)
         f = bc[:, :, None, None, :] * (below[:, None, :] + at[:, None, :] * u[None, :, None])
-        h = bc[:, :, None, :] * at  # (B, A, C, K+1)
-        return f, h
+        return f, bc[:, :, cs.long()]  # (B, A, C, U, K+1) factors, (B, A, C) C(N, c): win term C(N, c) x^c
 
     N = torch.as_tensor(cnt)
     f, h = factors(N)  # (B, A, C, U, K+1), (B, A, C, K+1)
     f_red, h_red = factors((N - 1).clamp(min=0))  # one sample of the answer removed
     rb = torch.as_tensor(rbar)
     U, K1 = len(u_np), K + 1
-    hr = (rb[:, :, None, None] * h)[:, :, :, None, :]  # (B, A, C, 1, K+1) reward-weighted win terms
+    hr = (rb[:, :, None] * h)[..., None, None]  # (B, A, C, 1, 1) reward-weighted win coefficients
+    top = int(cs.max())  # factors have no coefficient above the largest threshold
+    idx = torch.arange(K1)[None, :] - cs.long()[:, None]  # (C, K+1): x^c shifts coefficient j - c to j
+    keep = (idx >= 0).to(dt)[:, None, :]
+    idx = idx.clamp(min=0)[:, None, :]  # (C, 1, K+1)
     one = torch.zeros(B, len(cs), U, K1, dtype=dt)
     one[..., 0] = 1.0
     zero = torch.zeros_like(one)
 
     def mul(x: torch.Tensor, y: torch.Tensor) -> torch.Tensor:
-        """Polynomial product on the last axis truncated at degree K (y broadcasts against x)."""
+        """Polynomial product on the last axis truncated at degree K (y broadcasts, degree <= top)."""
         out = x * y[..., :1]
-        for j in range(1, K1):
+        for j in range(1, top + 1):
             out[..., j:] += x[..., : K1 - j] * y[..., j : j + 1]
         return out
 
+    def shift(x: torch.Tensor, w: torch.Tensor) -> torch.Tensor:
+        """x times w x^c for each threshold c (axis -3 of x), truncated at degree K."""
+        return torch.gather(x, -1, idx.expand(x.shape)) * keep * w
+
     pv, pd = [one], [zero]  # prefix products over answers: value and dual (reward-weighted wins) parts
     for a in range(A):
-        pd.append(mul(pd[-1], f[:, a]) + mul(pv[-1], hr[:, a]))
+        pd.append(mul(pd[-1], f[:, a]) + shift(pv[-1], hr[:, a]))
         pv.append(mul(pv[-1], f[:, a]))
     sv, sd = [one], [zero]  # suffix products, built from the last answer back
     for a in range(A - 1, -1, -1):
-        sd.append(mul(sd[-1], f[:, a]) + mul(sv[-1], hr[:, a]))
+        sd.append(mul(sd[-1], f[:, a]) + shift(sv[-1], hr[:, a]))
         sv.append(mul(sv[-1], f[:, a]))
     full_d = pd[-1]  # the whole pool's dual part
     pv, pd = torch.stack(pv[:-1], 1), torch.stack(pd[:-1], 1)  # (B, A, C, U, K+1): answers before a
@@ -272,7 +279,7 @@ def _credit_terms(cnt: np.ndarray, rbar: np.ndarray, cs, u_np, g_np, K: int, k: 
     flip = lambda x: x[..., : kb + 1].flip(-1)  # noqa: E731  [x^kb](p * q) = sum_j p[j] q[kb - j]
     sv_fr, sd_fr = mul(sv, f_red), mul(sd, f_red)  # suffix times the reduced factor
     phi = ((pd[..., : kb + 1] * flip(sv_fr) + pv[..., : kb + 1] * flip(sd_fr)).sum(-1) * gw).sum((2, 3))
-    sv_hr = mul(sv, h_red[:, :, :, None, :])
+    sv_hr = shift(sv, h_red[..., None, None])
     psi = ((pv[..., : kb + 1] * flip(sv_hr)).sum(-1) * gw).sum((2, 3))
     return vk, phi.numpy(), psi.numpy()  # (B, A): others' wins / a's own wins, with a reduced
 
@@ -292,10 +299,9 @@ def vote_credit_batched(codes: np.ndarray, rewards: np.ndarray, k: int) -> np.nd
     kb = min(k, n - 1)
     K = k
     A = int(codes.max()) + 1
-    cnt = np.zeros((B, A))
-    np.add.at(cnt, (np.repeat(np.arange(B), n), codes.ravel()), 1.0)
-    rsum = np.zeros((B, A))
-    np.add.at(rsum, (np.repeat(np.arange(B), n), codes.ravel()), rewards.ravel())
+    flat = (codes + A * np.arange(B)[:, None]).ravel()  # (B*n,) pool-and-answer slots
+    cnt = np.bincount(flat, minlength=B * A).reshape(B, A).astype(np.float64)
+    rsum = np.bincount(flat, weights=rewards.ravel(), minlength=B * A).reshape(B, A)
     rbar = np.where(cnt > 0, rsum / np.where(cnt > 0, cnt, 1), 0.0)
     # thresholds grouped by the quadrature they need: at c = 1 all j answers of a j-subset tie
     # (share 1/j, no u); above, min(A, K // c) answers can tie at c, so ceil(of that / 2) nodes
