@@ -308,11 +308,11 @@ def test_sampling_builds_no_graph_with_grad_enabled():
 @pytest.mark.parametrize("arch", ["gpt2", "llama"])
 def test_reserved_cache_draws_what_the_stock_cache_draws(arch, monkeypatch):
     # the preallocated cache layer is a speed change only: same seed -> same tokens and log-probs
-    import bonft.trainer.generation as gen
+    import bonft.trainer._kvcache as kv
 
     model = _tiny(arch)
     a = sample(model, TOK, ["ab", "c", "dddd"], n=4, max_new_tokens=12, seed=3)
-    monkeypatch.setattr(gen, "_DynamicLayer", None)  # the stock transformers cache, grown by torch.cat
+    monkeypatch.setattr(kv, "_DynamicLayer", None)  # the stock transformers cache, grown by torch.cat
     b = sample(model, TOK, ["ab", "c", "dddd"], n=4, max_new_tokens=12, seed=3)
     assert torch.equal(a.reply_tokens, b.reply_tokens) and torch.equal(a.reply_valid, b.reply_valid)
     assert torch.allclose(a.token_logprobs, b.token_logprobs, atol=1e-5)
