@@ -116,3 +116,27 @@ def test_null_answers_vote_alone(tmp_path):
     from bonft.vote_estimate import vote_at_k_per_prompt
 
     assert abs(vote_at_k_per_prompt(a, r, ks=[2])[0, 0] - 1 / 3) < 1e-15
+
+
+def test_plan_exact_strategies(tmp_path):
+    # reference: majority vote over every ordered 3-tuple of a 4-outcome softmax policy at T = 0.5
+    spec = {"logits": [1.0, 0.2, 0.8, -0.5], "answers": ["7", "7", "3", "9"], "scores": [0.9, 0.3, 0.8, 0.2],
+            "rewards": [1, 1, 0, 0]}
+    f = tmp_path / "e.json"
+    f.write_text(json.dumps(spec))
+    out = tmp_path / "o.json"
+    rc = main(["plan", "--exact", str(f), "--temperatures", "0.5", "--strategy", "majority,best-of-k",
+               "--max-k", "3", "--json", str(out)])
+    assert rc == 0
+    z = np.array(spec["logits"]) / 0.5
+    p = np.exp(z - z.max())
+    p /= p.sum()
+    want = 0.0
+    for t in itertools.product(range(4), repeat=3):
+        c = Counter(spec["answers"][i] for i in t)
+        top = max(c.values())
+        win = [a for a in c if c[a] == top]
+        want += np.prod(p[list(t)]) * np.mean([np.mean([spec["rewards"][i] for i in t if spec["answers"][i] == a])
+                                                for a in win])
+    got = json.loads(out.read_text())["values"]["majority@T=0.5"][2]
+    assert abs(got - want) < 1e-12

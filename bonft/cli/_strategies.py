@@ -128,3 +128,51 @@ def run_plan(args, table, temps_wanted) -> int:
         plot_strategy_curves({("" if t is None else f"T={t:g}"): g for t, g in grid.items()}, path)
         print(f"wrote {path}")
     return 0
+
+
+def run_plan_exact(args, spec: dict, temps: list) -> int:
+    """``bonft plan --exact F --strategy ...``: exact V_k of each strategy over temperature x k, the best per k."""
+    import numpy as np
+
+    from bonft.bon import softmax_policy
+    from bonft.strategies import strategy_value
+
+    names = strategy_names(args.strategy)
+    if "logits" not in spec:
+        raise ValueError("--exact with --strategy needs 'logits' (temperatures rescale them), got none")
+    if any(s in ("majority", "weighted") for s in names) and "answers" not in spec:
+        raise ValueError("--exact with --strategy majority/weighted needs an 'answers' field (one key per outcome)")
+    max_k = args.max_k or 64
+    grid = {}  # (T, strategy) -> (K,) values, nan where not computable (weighted vote beyond its limit)
+    for t in temps:
+        probs = softmax_policy(np.asarray(spec["logits"], dtype=float), temperature=t)
+        for s in names:
+            row = []
+            for k in range(1, max_k + 1):
+                try:
+                    row.append(float(strategy_value(s, probs, k=k, rewards=spec["rewards"], scores=spec["scores"],
+                                                    answers=spec.get("answers"))))
+                except ValueError:  # weighted vote: too many count vectors for this k
+                    row.append(float("nan"))
+            grid[t, s] = np.array(row)
+    servable = [s for s in names if s != "pass"] or names
+    print("exact V_k; best servable strategy (pass, the oracle, is a ceiling only); then each strategy at its best T:")
+    print(f"{'k':>6}  {'best strategy':>14}  {'T':>5}  {'V_k':>7}  " + "  ".join(f"{s:>9}" for s in names))
+    rows = []
+    for j in range(max_k):
+        cands = [(t, s) for t in temps for s in servable if np.isfinite(grid[t, s][j])]
+        t, s = max(cands, key=lambda ts: grid[ts][j])
+        best_each = [np.nanmax([grid[tt, x][j] for tt in temps]) if any(np.isfinite(grid[tt, x][j]) for tt in temps)
+                     else float("nan") for x in names]
+        print(f"{j + 1:>6}  {s:>14}  {t:>5g}  {grid[t, s][j]:>7.4f}  " + "  ".join(f"{v:>9.4f}" for v in best_each))
+        rows.append({"k": j + 1, "strategy": s, "temperature": t, "value": float(grid[t, s][j])})
+    for b in parse_list("--budget-samples", args.budget_samples) or []:
+        ok = [r for r in rows if r["k"] <= b]
+        if ok:
+            r = max(ok, key=lambda r: r["value"])
+            print(f"budget {b} samples/prompt: {r['strategy']} at T={r['temperature']:g} with k={r['k']}: V_k = {r['value']:.4f}")
+    if args.json:
+        write_json_atomic(args.json, {"best_by_k": rows, "values": {f"{s}@T={t:g}": [None if not np.isfinite(v) else float(v)
+                                                                                    for v in grid[t, s]] for (t, s) in grid}})
+        print(f"wrote {args.json}")
+    return 0

@@ -122,8 +122,8 @@ def run(args) -> int:
         raise ValueError(f"give exactly one of --samples, --model or --exact, got {len(given)}"
                          + (f" ({', '.join('--' + g for g in given)})" if given else ""))
     temps = parse_list("--temperatures", args.temperatures, float)
-    if args.strategy and not args.samples:
-        raise ValueError(f"--strategy needs --samples FILE.jsonl (pools with an answer field), got --{given[0]}")
+    if args.strategy and args.model:
+        raise ValueError("--strategy needs --samples FILE.jsonl or --exact FILE.json, got --model")
     check_boot("--boot", args.boot)
     info = None
     if args.samples:
@@ -154,7 +154,7 @@ def run(args) -> int:
             raise ValueError(f"--exact file {args.exact} must hold one JSON object in UTF-8{where}") from None
         if not isinstance(spec, dict):
             raise TypeError(f"--exact must hold a JSON object, got {type(spec).__name__}")
-        unknown = set(spec) - {"logits", "probs", "scores", "rewards", "lengths", "temperatures"}
+        unknown = set(spec) - {"logits", "probs", "scores", "rewards", "lengths", "temperatures", "answers"}
         if unknown:
             raise ValueError(f"--exact file has unknown fields {sorted(unknown)}")
         for key in ("scores", "rewards"):
@@ -163,6 +163,10 @@ def run(args) -> int:
         temps = temps or spec.get("temperatures")
         if temps is None:
             raise ValueError("--exact needs temperatures: --temperatures or a 'temperatures' field")
+        if args.strategy:
+            from ._strategies import run_plan_exact
+
+            return run_plan_exact(args, spec, temps)
         kw = _plan_kwargs(args)
         kw["max_k"] = kw["max_k"] or 64
         res = plan_exact(logits=spec.get("logits"), probs=spec.get("probs"), scores=spec["scores"],
