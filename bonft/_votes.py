@@ -18,10 +18,18 @@ it, and ``1/(1 + T) = int_0^1 u^T du``:
     P_k(a\\text{ wins}) \\propto \\sum_{c\\ge1} [x^k]\\; w_a(c)\\,x^c
         \\int_0^1 \\prod_{b\\ne a}\\Big(\\sum_{m<c} w_b(m)\\,x^m + u\\,w_b(c)\\,x^c\\Big)\\,du
 
-The integrand is a polynomial of degree ``A - 1`` in ``u`` (``A`` the answers
-that can reach ``c``), so Gauss-Legendre quadrature with ``ceil(A/2)`` nodes
-integrates it exactly (Abramowitz & Stegun 1964, 25.4.29). The coefficient of
-``x^k`` gives every ``k`` at once. No k-tuple or k-subset is enumerated.
+The integrand's coefficient of ``x^j`` is a polynomial of degree at most
+``min(A, j // c) - 1`` in ``u`` (``A`` the answers that can reach ``c``; each
+tied answer takes ``c`` of the ``j`` slots), so Gauss-Legendre quadrature with
+half as many nodes integrates it exactly (Abramowitz & Stegun 1964, 25.4.29);
+at ``c = 1`` every sampled answer ties and the share is ``1/j``, no quadrature.
+The coefficient of ``x^k`` gives every ``k`` at once. No k-tuple or k-subset is
+enumerated.
+
+Here: :func:`pool_vote_sums` (the pool estimator, every k), :func:`vote_credit_batched`
+(the leave-one-out credit of many pools at once), :func:`policy_majority_value`
+(the exact, differentiable value of a policy), :func:`weighted_vote_weights`
+(the served-reward weights of a weighted vote, for enumeration or sampling).
 
 References: Wang et al. 2023, "Self-Consistency Improves Chain of Thought
 Reasoning in Language Models" (majority vote over sampled answers);
