@@ -28,7 +28,7 @@ enumerated.
 
 Here: :func:`pool_vote_sums` (the pool estimator, every k), :func:`vote_credit_batched`
 (the leave-one-out credit of many pools at once), :func:`policy_majority_value`
-(the exact, differentiable value of a policy), :func:`weighted_vote_weights`
+(the exact, differentiable value of a policy), :func:`weighted_slot_weights`
 (the served-reward weights of a weighted vote, for enumeration or sampling).
 
 References: Wang et al. 2023, "Self-Consistency Improves Chain of Thought
@@ -202,23 +202,32 @@ def policy_majority_value(q: torch.Tensor, qr: torch.Tensor, k: int) -> torch.Te
 # ---------------------------------------------------------------------------- weighted vote
 
 
-def weighted_vote_weights(cnt: np.ndarray, codes: np.ndarray, s: np.ndarray) -> np.ndarray:
-    """Weight of each outcome in the served reward of a weighted vote.
+def weighted_slot_weights(a: np.ndarray, s: np.ndarray) -> np.ndarray:
+    """Weight of each drawn sample in the served reward of a weighted vote.
 
-    ``cnt: (N, V)`` how often each outcome (or pool sample, 0/1) is in each draw,
-    ``codes: (V,)`` answer ids, ``s: (V,)`` scores -> ``(N, V)`` weights ``w`` with
-    served expected reward ``w @ R``: the answers with the largest total score
-    (equal to 1e-12 relative) share the win, and the winner's samples share it.
+    ``a: (M, k)`` answer ids and ``s: (M, k)`` scores of ``M`` draws of ``k`` samples ->
+    ``(M, k)`` weights ``w`` with served expected reward ``sum_j w_j R_j``: the answers with
+    the largest total score (equal to 1e-12 relative) share the win, and the winner's samples
+    share it evenly.
     """
-    A = int(codes.max()) + 1
-    onehot = np.zeros((len(codes), A))
-    onehot[np.arange(len(codes)), codes] = 1.0
-    num = cnt @ onehot  # (N, A) samples per answer
+    M, k = a.shape
+    A = int(a.max()) + 1
+    flat = (a + A * np.arange(M)[:, None]).ravel()
+    num = np.bincount(flat, minlength=M * A).reshape(M, A).astype(np.float64)  # samples per answer
     present = num > 0
-    tot = np.where(present, (cnt * s) @ onehot, -np.inf)  # (N, A) total score per answer
+    tot = np.where(present, np.bincount(flat, weights=s.ravel(), minlength=M * A).reshape(M, A), -np.inf)
     win = present & np.isclose(tot, tot.max(1, keepdims=True), rtol=1e-12, atol=1e-12)
-    share = win / np.where(present, num, 1.0) / win.sum(1, keepdims=True)  # (N, A) per sample of each answer
-    return cnt * share[:, codes]
+    share = win / np.where(present, num, 1.0) / win.sum(1, keepdims=True)  # (M, A) per sample of each answer
+    return np.take_along_axis(share, a, 1)
+
+
+def weighted_vote_weights(cnt: np.ndarray, codes: np.ndarray, s: np.ndarray) -> np.ndarray:
+    """:func:`weighted_slot_weights` for count vectors: ``cnt (N, V)`` draws of the ``V`` outcomes
+    (each row sums to k), ``codes (V,)`` answers, ``s (V,)`` scores -> ``(N, V)`` weight per outcome."""
+    N, V = cnt.shape
+    ids = np.repeat(np.tile(np.arange(V), N), cnt.ravel()).reshape(N, -1)  # (N, k) outcome of each draw
+    w = weighted_slot_weights(codes[ids], s[ids])
+    return np.bincount((ids + V * np.arange(N)[:, None]).ravel(), weights=w.ravel(), minlength=N * V).reshape(N, V)
 
 
 # ---------------------------------------------------------------------------- credit, batched over pools

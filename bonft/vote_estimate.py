@@ -42,7 +42,7 @@ import torch
 
 from bonft import estimate as _estimate
 from bonft._checks import as_float_array, check_finite, check_int, check_k, check_ks, is_tensor
-from bonft._votes import pool_vote_sums, vote_credit_batched, weighted_vote_weights
+from bonft._votes import pool_vote_sums, vote_credit_batched, weighted_slot_weights
 
 __all__ = [
     "vote_at_k_per_prompt", "weighted_vote_at_k_per_prompt", "vote_credit", "weighted_vote_credit",
@@ -198,20 +198,15 @@ def vote_credit(answers, rewards, *, k):
 
 
 def _subsets(n: int, k: int, max_subsets: int, rng) -> tuple[np.ndarray, bool]:
-    """Indicator matrix (N, n) of all k-subsets (exact) or of max_subsets uniform ones."""
+    """Sample indices (N, k) of all k-subsets (exact) or of max_subsets uniform ones."""
     if math.comb(n, k) <= max_subsets:
-        ind = np.zeros((math.comb(n, k), n))
-        for row, S in enumerate(itertools.combinations(range(n), k)):
-            ind[row, list(S)] = 1.0
-        return ind, True
-    idx = np.argsort(rng.random((max_subsets, n)), axis=1)[:, :k]
-    ind = np.zeros((max_subsets, n))
-    np.put_along_axis(ind, idx, 1.0, axis=1)
-    return ind, False
+        return np.array(list(itertools.combinations(range(n), k)), dtype=np.int64).reshape(-1, k), True
+    return np.argpartition(rng.random((max_subsets, n)), k - 1, axis=1)[:, :k], False  # the k smallest of iid keys
 
 
-def _weighted_f(ind: np.ndarray, codes: np.ndarray, s: np.ndarray, r: np.ndarray) -> np.ndarray:
-    return weighted_vote_weights(ind, codes, s) @ r
+def _weighted_f(idx: np.ndarray, codes: np.ndarray, s: np.ndarray, r: np.ndarray) -> np.ndarray:
+    """Served reward of a weighted vote on each subset idx (N, k) -> (N,)."""
+    return (weighted_slot_weights(codes[idx], s[idx]) * r[idx]).sum(1)
 
 
 def _check_budget(max_subsets, seed) -> tuple[int, int]:
@@ -241,8 +236,8 @@ def weighted_vote_at_k_per_prompt(answers, scores, rewards, *, ks, max_subsets=M
     se = np.zeros_like(val)
     for p, (c, s, r) in enumerate(zip(_codes(ans), sc, rew)):
         for j, k in enumerate(ks_arr):
-            ind, exact = _subsets(len(r), int(k), max_subsets, rng)
-            f = _weighted_f(ind, c, s, r)
+            idx, exact = _subsets(len(r), int(k), max_subsets, rng)
+            f = _weighted_f(idx, c, s, r)
             val[p, j] = f.mean()
             se[p, j] = 0.0 if exact else f.std(ddof=1) / math.sqrt(len(f))
     return val, se
@@ -277,17 +272,20 @@ def weighted_vote_credit(answers, scores, rewards, *, k, max_subsets=MAX_SUBSETS
         if n == 1:
             out[p] = r
             continue
-        ind, exact = _subsets(n, k, max_subsets, rng)
-        f = _weighted_f(ind, c, s, r)
+        idx, exact = _subsets(n, k, max_subsets, rng)
+        f = _weighted_f(idx, c, s, r)
+        sum_with = np.bincount(idx.ravel(), weights=np.repeat(f, k), minlength=n)  # (n,) sum of f over S holding i
+        n_with = np.bincount(idx.ravel(), minlength=n).astype(np.float64)
+        sum_without, n_without = f.sum() - sum_with, len(f) - n_with
         if not exact:  # k < n here
-            out[p] = (f @ ind - (k / (n - k)) * (f @ (1.0 - ind))) / len(f)
+            out[p] = (sum_with - (k / (n - k)) * sum_without) / len(f)
             continue
-        with_i = (f @ ind) / ind.sum(0)
         if k < n:
-            without_i = (f @ (1.0 - ind)) / (1.0 - ind).sum(0)
+            without_i = sum_without / n_without
         else:  # the baseline is the pool without i, all n-1 of it
-            without_i = _weighted_f(1.0 - np.eye(n), c, s, r)
-        out[p] = (k / n) * (with_i - without_i)
+            others = np.array([np.delete(np.arange(n), i) for i in range(n)])  # (n, n-1)
+            without_i = _weighted_f(others, c, s, r)
+        out[p] = (k / n) * (sum_with / n_with - without_i)
     return _finish(out, kind)
 
 
