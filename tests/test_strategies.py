@@ -294,3 +294,26 @@ def test_weighted_vote_known_cases():
     # V_2 = P(both draws from answer 1) = 0.5^2
     v = weighted_vote_value([0.5, 0.25, 0.25], ["x", "y", "y"], [0.9, 0.5, 0.5], [0.0, 1.0, 1.0], k=2)
     assert abs(float(v) - 0.25) < 1e-15
+
+
+def test_training_with_majority_credit_raises_majority_value():
+    # a categorical policy whose plurality answer is wrong (correct mass 0.14 over two surface
+    # forms): Adam on strategy_loss with sampled pools must drive the exact majority@8 from 0.07
+    # to near 1 (the policy-gradient identity in use, Williams 1992; exact value by vote_value)
+    from bonft.strategies import strategy_loss
+
+    ans = np.array([0, 0, 1, 1, 2, 2, 3, 3])
+    R = np.array([1.0, 1.0, 0, 0, 0, 0, 0, 0])
+    z = torch.tensor([0.0, -0.5, 0.9, 0.5, 0.7, 0.2, 0.3, 0.0], dtype=torch.float64, requires_grad=True)
+    before = float(vote_value(torch.softmax(z, -1).detach(), ans, R, k=8))
+    opt = torch.optim.Adam([z], lr=0.02)
+    rng = np.random.default_rng(0)
+    for _ in range(150):
+        p = torch.softmax(z, -1)
+        y = rng.choice(8, size=(8, 16), p=p.detach().numpy())  # 8 prompts' pools of 16 samples
+        loss = strategy_loss(torch.log(p)[y], None, R[y], strategy="majority", k=8, answers=ans[y])
+        opt.zero_grad()
+        loss.backward()
+        opt.step()
+    after = float(vote_value(torch.softmax(z, -1).detach(), ans, R, k=8))
+    assert before < 0.1 and after > 0.9
