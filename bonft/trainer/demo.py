@@ -62,13 +62,14 @@ class DemoConfig(TrainConfig):
     snr_every: int = 10
     max_new_tokens: int = 4
     save_every: int = 0
-    log_every: int = 5
+    log_every: int = 1  # every step: grad_snr (measured every snr_every steps) is only in the lines written
     objectives: tuple = ("loo_reinforce", "pass_at_k", "placebo")
     workers: int = 2  # stages run in parallel processes, one core each
     plan_temperatures: tuple = (0.6, 0.8, 1.0, 1.2, 1.4)  # the planner's sweep; () = skip it
     plan_prompts: int = 100  # held-out prompts of the sweep (the first ones)
     plan_n: int = 32  # samples per prompt and temperature in the sweep
     plan_policies: tuple = ("warm_start", "loo_reinforce", "pass_at_k", "best_of_k")
+    warm_start_clip: float = 1.0  # clip_grad_norm of the warm-start stage (clip_grad_norm is the RL stages')
 
 
 def _base(dc: DemoConfig, **kw) -> TrainConfig:
@@ -173,7 +174,8 @@ def objective_config(dc: DemoConfig, objective: str, warm: str, out: Path) -> Tr
 
 
 def warm_config(dc: DemoConfig, out: Path) -> TrainConfig:
-    return _base(dc, name="warm_start", run_dir=str(out / "warm_start"), sft_steps=dc.sft_steps, rl_steps=0)
+    return _base(dc, name="warm_start", run_dir=str(out / "warm_start"), sft_steps=dc.sft_steps, rl_steps=0,
+                 clip_grad_norm=dc.warm_start_clip)
 
 
 def collect_stage_pools(dc: DemoConfig, stage_dir: Path, *, temperature: float, n_prompts: int, n: int) -> dict:
