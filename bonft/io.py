@@ -35,6 +35,7 @@ from typing import Any, Iterable
 import numpy as np
 
 from bonft._checks import as_float_array
+from bonft._jsonl import decode_utf8, parse_object
 
 __all__ = ["SampleTable", "DuplicateRowsWarning", "read_samples", "write_samples", "group_pools", "temperatures_of"]
 
@@ -82,14 +83,7 @@ def _parse_lines(path: str, lines: list[str], numbers: list[int]) -> list[dict]:
         return rows
     name = os.path.basename(path)
     for text, no in zip(lines, numbers):
-        try:
-            row = json.loads(text)
-        except json.JSONDecodeError as e:
-            raise ValueError(f"{name} line {no}: not valid JSON ({e.msg} at column {e.colno})") from None
-        except RecursionError:
-            raise ValueError(f"{name} line {no}: JSON nested too deeply (a sample is one flat JSON object)") from None
-        if type(row) is not dict:
-            raise ValueError(f"{name} line {no}: expected a JSON object, got {type(row).__name__}")
+        parse_object(text, name, no, "a sample")
     raise ValueError(f"{name}: could not parse")  # pragma: no cover - the loop above finds the line
 
 
@@ -191,13 +185,7 @@ def read_samples(
     name = os.path.basename(path)
     with open(path, "rb") as f:
         raw = f.read()
-    try:
-        text = raw.decode("utf-8")
-    except UnicodeDecodeError as e:
-        line = raw.count(b"\n", 0, e.start) + 1
-        col = e.start - (raw.rfind(b"\n", 0, e.start) + 1) + 1
-        raise ValueError(f"{name} line {line}: not UTF-8 text (byte {raw[e.start]:#04x} at column {col}); "
-                         f"save the file as UTF-8") from None
+    text = decode_utf8(raw, name)
     lines = text.split("\n")
     if lines and not lines[-1].strip():
         lines.pop()  # the newline that ends the last line

@@ -56,10 +56,10 @@ def test_negative_token_counts_are_refused_with_the_line(tmp_path):
 # ----------------------------------------------------------------------------- prompt files
 @pytest.mark.parametrize("body,pattern", [
     (b'{"prompt": "a", "answer": "1"}\n{"prompt": "b" "answer": "2"}\n', r"p.jsonl line 2: not valid JSON \(Expecting ',' delimiter at column 16\)"),
-    (b'{"prompt": "a", "answer": "1"}\n\n["b", "2"]\n', r"p.jsonl line 3: expected a JSON object with a prompt field, got list"),
+    (b'{"prompt": "a", "answer": "1"}\n\n["b", "2"]\n', r"p.jsonl line 3: expected a JSON object \(a prompt with its fields\), got list"),
     (b'{"prompt": "a", "answer": "1"}\n{"prompt": "", "answer": "2"}\n', r"p.jsonl line 2: field 'prompt' must be a non-empty string, got ''"),
     (b'{"prompt": "a", "answer": "1"}\n{"answer": "2"}\n', r"p.jsonl line 2: field 'prompt' must be a non-empty string, got None"),
-    (b'{"prompt": "a\xff"}\n', r"p.jsonl line 1: not UTF-8 text \(byte 0xff\)"),
+    (b'{"prompt": "a\xff"}\n', r"p.jsonl line 1: not UTF-8 text \(byte 0xff at column \d+\)"),
     (b'{"prompt": ' + b"[" * 100_000 + b"]" * 100_000 + b"}\n", r"p.jsonl line 1: JSON nested too deeply"),
 ])
 def test_malformed_prompt_files_name_file_and_line(tmp_path, body, pattern):

@@ -82,7 +82,7 @@ def test_renamed_fields(tmp_path):
     "bad,match",
     [
         ('{"prompt_id": "a", "score": 1, reward: 0}', r"bad.jsonl line 3: not valid JSON"),
-        ('[1, 2]', r"bad.jsonl line 3: expected a JSON object, got list"),
+        ('[1, 2]', r"bad.jsonl line 3: expected a JSON object \(a sample\), got list"),
         ('{"prompt_id": "a", "score": 1, "reward": 0}, {"prompt_id": "a", "score": 1, "reward": 0}',
          r"bad.jsonl line 3: not valid JSON"),
         ('{"prompt_id": "a", "score": "high", "reward": 0}', r"bad.jsonl line 3: field 'score' must be a number, got 'high'"),

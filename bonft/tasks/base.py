@@ -95,6 +95,31 @@ class AnswerLookup:
         return np.array([float(self.extract(r) == t) for r, t in zip(responses, truth)])
 
 
+class NumericProxy(AnswerLookup):
+    """Base of the tasks' imperfect proxies: ``Verdicts(scores=proxy score, rewards=exact match)``.
+
+    A subclass gives :meth:`proxy_score` of an extracted integer answer against the truth; a
+    response without an answer scores 0. The true reward (exact match) rides along, so best-of-k
+    under the proxy can be compared with pass@k under the truth.
+    """
+
+    def proxy_score(self, answer: int, truth: int) -> float:  # pragma: no cover - abstract
+        raise NotImplementedError
+
+    def __call__(self, prompts: Sequence[str], responses: Sequence[str]) -> Verdicts:
+        prompts, responses = _check_pairs(prompts, responses)
+        truth = self._truth(prompts)
+        scores = np.zeros(len(prompts))
+        rewards = np.zeros(len(prompts))
+        for i, (r, t) in enumerate(zip(responses, truth)):
+            got = self.extract(r)
+            if got is None:
+                continue
+            scores[i] = self.proxy_score(int(got), int(t))
+            rewards[i] = float(got == t)
+        return Verdicts(scores=scores, rewards=rewards)
+
+
 class ExactVerifier(AnswerLookup):
     """``verifier(prompts, responses) -> Verdicts(scores=reward, rewards=reward)``, reward in {0, 1}:
     1 when the answer extracted from the response equals the example's answer."""

@@ -26,11 +26,8 @@ from __future__ import annotations
 import random
 from typing import Sequence
 
-import numpy as np
-
 from .._checks import check_fraction, check_int
-from ..verifiers.base import Verdicts
-from .base import AnswerLookup, Example, Task, _check_pairs
+from .base import Example, NumericProxy, Task
 
 ITEMS = ("lamps", "mugs", "pens", "hats", "bowls", "socks", "jars", "kites")
 
@@ -86,7 +83,7 @@ class LedgerTask(Task):
         return LedgerPlausibility(examples, self.extract_answer)
 
 
-class LedgerPlausibility(AnswerLookup):
+class LedgerPlausibility(NumericProxy):
     """A cheap, imperfect ledger check: ``Verdicts(scores=proxy, rewards=exact)``.
 
     ``proxy = 0.5 * [parity of the answer is right] + 0.5 * [|answer - truth| <= tol]``
@@ -101,16 +98,5 @@ class LedgerPlausibility(AnswerLookup):
     proxy picks near misses; a policy trained on it learns to hit "about right".
     """
 
-    def __call__(self, prompts: Sequence[str], responses: Sequence[str]) -> Verdicts:
-        prompts, responses = _check_pairs(prompts, responses)
-        truth = self._truth(prompts)
-        scores = np.zeros(len(prompts))
-        rewards = np.zeros(len(prompts))
-        for i, (r, t) in enumerate(zip(responses, truth)):
-            got = self.extract(r)
-            if got is None:
-                continue
-            a, b = int(got), int(t)
-            scores[i] = 0.5 * ((a - b) % 2 == 0) + 0.5 * (abs(a - b) <= max(2, b // 5))
-            rewards[i] = float(got == t)
-        return Verdicts(scores=scores, rewards=rewards)
+    def proxy_score(self, answer: int, truth: int) -> float:
+        return 0.5 * ((answer - truth) % 2 == 0) + 0.5 * (abs(answer - truth) <= max(2, truth // 5))

@@ -18,6 +18,7 @@ from pathlib import Path
 from typing import Sequence
 
 from .._checks import check_int
+from .._jsonl import decode_utf8, parse_object
 from .base import ExactVerifier, Example, Task, _check_examples
 
 
@@ -73,29 +74,9 @@ def load_prompts_jsonl(
 
 def _read_jsonl(path: Path) -> list[tuple[int, dict]]:
     """``(line number, object)`` for each non-blank line; errors name the file and the line."""
-    import json
-
-    raw = path.read_bytes()
-    try:
-        text = raw.decode("utf-8")
-    except UnicodeDecodeError as e:
-        line = raw.count(b"\n", 0, e.start) + 1
-        raise ValueError(f"{path} line {line}: not UTF-8 text "
-                         f"(byte {raw[e.start]:#04x}); save the file as UTF-8") from None
-    out = []
-    for no, line in enumerate(text.split("\n"), start=1):
-        if not line.strip():
-            continue
-        try:
-            row = json.loads(line)
-        except json.JSONDecodeError as e:
-            raise ValueError(f"{path} line {no}: not valid JSON ({e.msg} at column {e.colno})") from None
-        except RecursionError:
-            raise ValueError(f"{path} line {no}: JSON nested too deeply (a prompt is one flat JSON object)") from None
-        if not isinstance(row, dict):
-            raise ValueError(f"{path} line {no}: expected a JSON object with a prompt field, got {type(row).__name__}")
-        out.append((no, row))
-    return out
+    text = decode_utf8(path.read_bytes(), str(path))
+    return [(no, parse_object(line, str(path), no, "a prompt with its fields"))
+            for no, line in enumerate(text.split("\n"), start=1) if line.strip()]
 
 
 def exact_match_verifier(examples: Sequence[Example]) -> ExactVerifier:

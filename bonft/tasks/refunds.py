@@ -17,11 +17,8 @@ from __future__ import annotations
 import random
 from typing import Sequence
 
-import numpy as np
-
 from .._checks import check_fraction, check_int
-from ..verifiers.base import Verdicts
-from .base import AnswerLookup, Example, Task, _check_pairs
+from .base import Example, NumericProxy, Task
 from .ledger import ITEMS
 
 
@@ -82,7 +79,7 @@ class RefundsTask(Task):
         return LastDigitCheck(examples, self.extract_answer)
 
 
-class LastDigitCheck(AnswerLookup):
+class LastDigitCheck(NumericProxy):
     """A cheap, imperfect stock-take: ``Verdicts(scores=proxy, rewards=exact)``.
 
     ``proxy = [last digit of the answer equals the truth's] * (1 - answer / 100)`` for an integer
@@ -96,17 +93,5 @@ class LastDigitCheck(AnswerLookup):
     proxy can be gamed at large k.
     """
 
-    def __call__(self, prompts: Sequence[str], responses: Sequence[str]) -> Verdicts:
-        prompts, responses = _check_pairs(prompts, responses)
-        truth = self._truth(prompts)
-        scores = np.zeros(len(prompts))
-        rewards = np.zeros(len(prompts))
-        for i, (r, t) in enumerate(zip(responses, truth)):
-            got = self.extract(r)
-            if got is None:
-                continue
-            a, b = int(got), int(t)
-            if 0 <= a <= 99 and a % 10 == b % 10:
-                scores[i] = 1.0 - a / 100.0
-            rewards[i] = float(got == t)
-        return Verdicts(scores=scores, rewards=rewards)
+    def proxy_score(self, answer: int, truth: int) -> float:
+        return 1.0 - answer / 100.0 if 0 <= answer <= 99 and answer % 10 == truth % 10 else 0.0
