@@ -48,15 +48,15 @@ def simulate(regime: str, *, prompts: int = 200, n: int = 64, seed: int = 0) -> 
     return rows
 
 
-def main(out_dir: str, figure: str | None = None) -> None:
+def main(folder: str, figure: str | None = None) -> None:
     from bonft.io import group_pools, read_samples
     from bonft.strategy_curves import compare_strategies
     from bonft.viz import plot_strategy_curves
 
-    os.makedirs(out_dir, exist_ok=True)
+    os.makedirs(folder, exist_ok=True)
     curves = {}
     for regime in REGIMES:
-        path = os.path.join(out_dir, f"{regime}.jsonl")
+        path = os.path.join(folder, f"{regime}.jsonl")
         with open(path, "w", encoding="utf-8") as f:
             for row in simulate(regime):
                 f.write(json.dumps(row) + "\n")

@@ -49,3 +49,13 @@ def write_json_atomic(path: str, obj) -> None:
         if os.path.exists(tmp):
             os.unlink(tmp)
         raise
+
+
+def write_curve_outputs(args, path: str, blocks: list, curves: dict, plot) -> None:
+    """``--json`` (every block of the table) and ``--plot`` (``plot(curves, out, title=)``) of a curves command."""
+    if args.json:
+        write_json_atomic(args.json, {"samples": os.path.abspath(path), "blocks": blocks})
+        print(f"wrote {args.json}")
+    if args.plot:
+        plot(curves, args.plot, title=os.path.basename(path))
+        print(f"wrote {args.plot}")

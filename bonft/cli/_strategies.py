@@ -4,7 +4,7 @@ from __future__ import annotations
 import argparse
 import os
 
-from ._args import parse_list, write_json_atomic
+from ._args import parse_list, write_curve_outputs, write_json_atomic
 
 STRATEGY_HELP = ("comma-separated inference strategies to compare: best-of-k (verifier picks), majority "
                  "(most frequent answer), weighted (answer with the largest total score), pass (oracle); "
@@ -74,14 +74,9 @@ def run_estimate(args, table, path: str, temps: list, ks) -> int:
     print()
     print("V_k: the unbiased mean reward of what each strategy serves from k samples (all k-subsets of each pool); "
           "best: the strategy with the highest mean at that k.")
-    if args.json:
-        write_json_atomic(args.json, {"samples": os.path.abspath(path), "blocks": blocks})
-        print(f"wrote {args.json}")
-    if args.plot:
-        from bonft.viz import plot_strategy_curves
+    from bonft.viz import plot_strategy_curves
 
-        plot_strategy_curves(curves, args.plot, title=os.path.basename(path))
-        print(f"wrote {args.plot}")
+    write_curve_outputs(args, path, blocks, curves, plot_strategy_curves)
     return 0
 
 

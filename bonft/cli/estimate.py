@@ -4,7 +4,7 @@ from __future__ import annotations
 import argparse
 import os
 from ._strategies import add_strategy_arguments, run_estimate as _run_strategies
-from ._args import add_duplicates_flag, check_boot, parse_list, write_json_atomic
+from ._args import add_duplicates_flag, check_boot, parse_list, write_curve_outputs
 
 HELP = "best-of-k (verifier picks) and oracle pass@k with bootstrap CIs from a pool file (JSONL of scored samples)"
 DESCRIPTION = (
@@ -85,10 +85,5 @@ def run(args) -> int:
     print()
     print("best-of-k: reward of the sample the verifier scores highest among k (ties split evenly); "
           "oracle: best true reward among k (pass@k for 0/1 rewards); gap = oracle - best-of-k.")
-    if args.json:
-        write_json_atomic(args.json, {"samples": os.path.abspath(path), "blocks": blocks})
-        print(f"wrote {args.json}")
-    if args.plot:
-        plot_bon_curves(curves, args.plot, title=os.path.basename(path))
-        print(f"wrote {args.plot}")
+    write_curve_outputs(args, path, blocks, curves, plot_bon_curves)
     return 0
