@@ -373,3 +373,16 @@ def test_table_without_temperatures_is_refused(tmp_path):
     table = _pass_at_k_file(tmp_path / "t.jsonl", P=2, n=4)
     with pytest.raises(ValueError, match=r"temperature 0.7 is not in the samples file \(present: \['0.5', '1.2'\]\)"):
         plan_samples(table, temperatures=[0.7])
+
+
+def test_too_few_prompts_print_no_interval():
+    # issue 14: a bootstrap over 4 prompts is no confidence interval; the table says n/a instead of a
+    # zero-width or misleading band, and 12 prompts print the band again
+    rng = np.random.default_rng(0)
+    few = plan_pools({0.7: Pools(rng.normal(size=(4, 8)), rng.random((4, 8))),
+                      1.0: Pools(rng.normal(size=(4, 8)), rng.random((4, 8)))}, budget_samples=4, n_boot=50)
+    text = few.table()
+    assert "[n/a]" in text and "intervals n/a: 4 prompt(s)" in text
+    many = plan_pools({0.7: Pools(rng.normal(size=(12, 8)), rng.random((12, 8))),
+                       1.0: Pools(rng.normal(size=(12, 8)), rng.random((12, 8)))}, budget_samples=4, n_boot=50)
+    assert "n/a" not in many.table()

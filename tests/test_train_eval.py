@@ -57,3 +57,16 @@ def test_entropy_estimate_is_mean_negative_logprob(setup):
         lp = sequence_logprobs(model, smp.prompt_tokens, smp.prompt_valid, smp.reply_tokens, smp.reply_valid, temperature=0.8)
     assert rep.entropy == pytest.approx(float(-lp.sum(-1).mean()), rel=1e-5)
     assert raw["texts"] == smp.texts
+
+
+def test_report_table_prints_no_interval_below_ten_prompts():
+    # issue 14: intervals over fewer than MIN_BOOT_PROMPTS prompts print n/a, with the count
+    from bonft.trainer.evaluation import EvalReport
+
+    curve = {"mean": [0.5, 0.75], "lo": [0.5, 0.75], "hi": [0.5, 0.75]}
+    few = EvalReport(step=0, ks=[1, 4], n_prompts=1, n_samples=4, temperature=1.0, pass_at_k=curve,
+                     best_of_k={"proxy": curve})
+    assert "[n/a]" in few.table() and "intervals n/a: 1 prompt(s)" in few.table()
+    assert "[0.500,0.500]" not in few.table()
+    many = EvalReport(step=0, ks=[1, 4], n_prompts=12, n_samples=4, temperature=1.0, pass_at_k=curve)
+    assert "[0.500,0.500]" in many.table() and "n/a" not in many.table()

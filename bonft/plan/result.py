@@ -5,6 +5,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from ..estimate import MIN_BOOT_PROMPTS
+
 FIT_CAVEAT = "a fit of this data, not a law"
 
 
@@ -123,6 +125,7 @@ class PlanResult:
 
     def table(self) -> str:
         exact = self.mode == "exact"
+        few = not exact and int(np.min(self.n_prompts)) < MIN_BOOT_PROMPTS  # too few prompts for an interval
         T = self.temperatures
         head = f"best-of-k value V_k(T), {self.mode} mode, {int(self.n_prompts.max())} prompts"
         if not exact:
@@ -137,14 +140,17 @@ class PlanResult:
             for t in range(T.size):
                 mark = "*" if t == b else ("~" if self.near_best[t, j] else " ")
                 cells += f"{self.value[t, j]:>9.4f}{mark}"
-            ci = "" if exact else f" [{self.lo[b, j]:.4f}, {self.hi[b, j]:.4f}]"
+            ci = "" if exact else (" [n/a]" if few else f" [{self.lo[b, j]:.4f}, {self.hi[b, j]:.4f}]")
             lines.append(f"{k:>5} {cells}   {T[b]:>6g}  {self.value[b, j]:.4f}{ci}")
+        if few:
+            lines.append(f"intervals n/a: {int(np.min(self.n_prompts))} prompt(s) at some temperature; a bootstrap over "
+                         f"prompts needs at least {MIN_BOOT_PROMPTS} (the choices above are not significance-tested)")
         if self.mean_tokens is not None:
             lines.append("mean tokens per response: " + ", ".join(f"T={t:g}: {m:.1f}" for t, m in zip(T, self.mean_tokens)))
         for c in self.budgets:
             unit = "samples" if c.kind == "samples" else "tokens"
             cost = "" if c.kind == "samples" else f", ~{c.cost:.0f} tokens"
-            ci = "" if exact else f" [{c.lo:.4f}, {c.hi:.4f}]"
+            ci = "" if exact else (" [n/a]" if few else f" [{c.lo:.4f}, {c.hi:.4f}]")
             lines.append(f"budget {c.budget:g} {unit}/prompt: T={c.temperature:g}, k={c.k}{cost} -> V={c.value:.4f}{ci}")
             if c.alternatives:
                 alts = ", ".join(f"(T={t:g}, k={k})" for t, k in c.alternatives[:6])

@@ -22,6 +22,8 @@ from typing import Any, Callable, Sequence
 import numpy as np
 import torch
 
+from ..estimate import MIN_BOOT_PROMPTS
+
 
 @dataclass
 class EvalReport:
@@ -49,8 +51,11 @@ class EvalReport:
         head = f"{'':18}" + "".join(f"{'k=' + str(k):>20}" for k in self.ks)
         rows = [head]
 
+        honest = self.n_prompts >= MIN_BOOT_PROMPTS  # a bootstrap over fewer prompts is no interval
+
         def row(label: str, c: dict) -> str:
-            cells = [f"{m:.3f} [{lo:.3f},{hi:.3f}]" for m, lo, hi in zip(c["mean"], c["lo"], c["hi"])]
+            cells = [f"{m:.3f} [{lo:.3f},{hi:.3f}]" if honest else f"{m:.3f} [n/a]"
+                     for m, lo, hi in zip(c["mean"], c["lo"], c["hi"])]
             return f"{label:18}" + "".join(f"{x:>20}" for x in cells)
 
         rows.append(row("pass@k", self.pass_at_k))
@@ -62,6 +67,8 @@ class EvalReport:
             f"distinct answers/prompt {self.distinct_answers:.2f}   entropy {self.entropy:.2f} nats/response   "
             f"length {self.mean_length:.2f} tokens   ({self.n_prompts} prompts x {self.n_samples} samples, T={self.temperature:g})"
         )
+        if not honest:
+            rows.append(f"intervals n/a: {self.n_prompts} prompt(s); a bootstrap over prompts needs at least {MIN_BOOT_PROMPTS}")
         return "\n".join(rows)
 
 
