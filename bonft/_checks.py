@@ -66,6 +66,22 @@ def check_ks(ks: Any, n: int, *, name: str = "k") -> tuple[np.ndarray, bool]:
     return np.array([check_k(v, n, name=name) for v in items], dtype=np.int64), False
 
 
+def check_real(name: str, value: Any, *, min: float | None = None, max: float | None = None) -> float:
+    """A finite real number, optionally within ``[min, max]``; bools are refused."""
+    if isinstance(value, bool) or not isinstance(value, numbers.Real):
+        raise TypeError(f"{name} must be a real number, got {type(value).__name__} {value!r}")
+    value = float(value)
+    if np.isfinite(value) and (min is None or value >= min) and (max is None or value <= max):
+        return value
+    if min is not None and max is not None:
+        span = f"a finite number in [{min:g}, {max:g}]"
+    elif min is not None or max is not None:
+        span = f"a finite number {'>=' if min is not None else '<='} {min if min is not None else max:g}"
+    else:
+        span = "a finite number"
+    raise ValueError(f"{name} must be {span}, got {name}={value}")
+
+
 def check_positive(name: str, value: Any) -> float:
     if isinstance(value, bool) or not isinstance(value, numbers.Real):
         raise TypeError(f"{name} must be a real number, got {type(value).__name__} {value!r}")

@@ -43,3 +43,30 @@ def test_bool_nonnegative_and_binary_messages():
         check_binary("correct", np.array([[1, 0], [2, 1]]))
     with pytest.raises(ValueError, match=r"mask must hold only 0/1 \(or booleans\), got 0.5 at index \(0, 1\)"):
         check_binary("mask", torch.tensor([[1.0, 0.5]]))
+
+
+def test_check_real_one_policy_for_every_real_argument():
+    from bonft._checks import check_real
+
+    assert check_real("x", 3) == 3.0 and check_real("x", 0.5, min=0.0, max=1.0) == 0.5
+    with pytest.raises(TypeError, match=r"x must be a real number, got bool True"):
+        check_real("x", True)
+    with pytest.raises(TypeError, match=r"x must be a real number, got str '1'"):
+        check_real("x", "1")
+    with pytest.raises(ValueError, match=r"x must be a finite number, got x=nan"):
+        check_real("x", float("nan"))
+    with pytest.raises(ValueError, match=r"x must be a finite number >= 0, got x=-1.0"):
+        check_real("x", -1, min=0.0)
+    with pytest.raises(ValueError, match=r"x must be a finite number in \[0, 1\], got x=inf"):
+        check_real("x", float("inf"), min=0.0, max=1.0)
+
+
+def test_verifier_kit_arguments_follow_the_exception_policy():
+    # issue 12: a NaN threshold is a wrong value (ValueError), a str pool size a wrong type (TypeError)
+    from bonft.testing import check_verifier
+
+    ex = [{"prompt": "p", "responses": ["a", "b"], "labels": [True, False]}]
+    with pytest.raises(ValueError, match=r"threshold must be a finite number, got threshold=nan"):
+        check_verifier(lambda p, r: [1.0] * len(r), ex, threshold=float("nan"))
+    with pytest.raises(TypeError, match=r"pool_size must be an int, got str 'x'"):
+        check_verifier(lambda p, r: [1.0] * len(r), ex, pool_size="x")

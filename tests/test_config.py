@@ -18,7 +18,7 @@ def make(**kw):
     [
         ({"k": 16, "n": 8}, ValueError, r"k must be <= n \(n=8\), got k=16"),
         ({"objective": "ppo"}, ValueError, r"objective must be one of .*got 'ppo'"),
-        ({"lr": -1e-3}, ValueError, r"lr must be >= 0.0, got lr=-0.001"),
+        ({"lr": -1e-3}, ValueError, r"lr must be a finite number >= 0, got lr=-0.001"),
         ({"lr": 0.0}, ValueError, r"lr must be a finite number > 0, got lr=0.0"),
         ({"lr": "fast"}, TypeError, r"lr must be a real number, got str 'fast'"),
         ({"n": 2.0}, TypeError, r"n must be an int, got float 2.0"),
@@ -32,7 +32,7 @@ def make(**kw):
         ({"rl_steps": 0}, ValueError, r"nothing to train"),
         ({"plots": "yes"}, TypeError, r"plots must be true or false, got str 'yes'"),
         ({"task": "jsonl"}, ValueError, r"prompts_file must name a JSONL file"),
-        ({"temperature": float("nan")}, ValueError, r"temperature must be finite"),
+        ({"temperature": float("nan")}, ValueError, r"temperature must be a finite number"),
         ({"optimizer": "adam"}, ValueError, r"optimizer must be one of \('adamw', 'sgd'\), got 'adam'"),
         ({"adam_eps": 0.0}, ValueError, r"adam_eps must be a finite number > 0, got adam_eps=0.0"),
         ({"confidence": 1.0}, ValueError, r"confidence must be in \(0, 1\), got confidence=1.0"),

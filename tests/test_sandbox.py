@@ -171,7 +171,7 @@ def test_runner_arguments_are_validated():
         CodeRunner(["assert True"])
     with pytest.raises(ValueError, match="wall_time must be a finite number >= 0.1, got wall_time=0"):
         CodeRunner({}, wall_time=0)
-    with pytest.raises(ValueError, match=r"workers must be in \[1, 999\], got workers=0"):
+    with pytest.raises(ValueError, match=r"workers must be >= 1, got workers=0"):
         CodeRunner({}, workers=0)
     with pytest.raises(TypeError, match="memory_mb must be an int, got float"):
         CodeRunner({}, memory_mb=256.0)

@@ -57,9 +57,9 @@ def test_seed_changes_the_noise():
 
 
 def test_proxy_arguments():
-    with pytest.raises(ValueError, match=r"flip_rate must be in \[0, 1\], got flip_rate=1.5"):
+    with pytest.raises(ValueError, match=r"flip_rate must be a finite number in \[0, 1\], got flip_rate=1.5"):
         NoisyProxy(truth, flip_rate=1.5)
-    with pytest.raises(ValueError, match="score_noise must be >= 0, got score_noise=-1.0"):
+    with pytest.raises(ValueError, match="score_noise must be a finite number >= 0, got score_noise=-1.0"):
         NoisyProxy(truth, score_noise=-1)
     with pytest.raises(TypeError, match=r"feature_bias must be a \(regex, weight\) tuple"):
         NoisyProxy(truth, feature_bias="x")
@@ -81,7 +81,7 @@ def test_weighted_sum_and_min():
     np.testing.assert_allclose(mn.scores, [0.9, 0.0])
     with pytest.raises(ValueError, match="parts must not be empty"):
         WeightedSum([])
-    with pytest.raises(ValueError, match=r"parts\[0\] weight must be a finite real number, got nan"):
+    with pytest.raises(ValueError, match=r"parts\[0\] weight must be a finite number, got parts\[0\] weight=nan"):
         WeightedSum([(exact, float("nan"))])
     with pytest.raises(TypeError, match=r"verifiers\[1\] must be a verifier"):
         MinOf([exact, "exact"])

@@ -81,7 +81,7 @@ def test_bad_arguments_name_themselves():
         score_batch(picky, ["p"], [5])
     with pytest.raises(TypeError, match="prompts must be a sequence of str, got str"):
         score_batch(picky, "p", ["r"])
-    with pytest.raises(ValueError, match="failure_score must be finite"):
+    with pytest.raises(ValueError, match="failure_score must be a finite number"):
         score_batch(picky, ["p"], ["r"], failure_score=math.nan)
     with pytest.raises(ValueError, match="timeout must be a finite number of seconds > 0, got timeout=0"):
         score_batch(picky, ["p"], ["r"], timeout=0)

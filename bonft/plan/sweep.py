@@ -37,7 +37,7 @@ from typing import Any, Mapping, Sequence
 
 import numpy as np
 
-from .._checks import as_float_array, check_finite, check_fraction, check_int, check_positive
+from .._checks import as_float_array, check_finite, check_fraction, check_int, check_positive, check_real
 from .decisions import bootstrap_means, finish, fit_best_temperature
 from .result import BudgetChoice, DoublingStep, PlanResult, TemperatureFit
 
@@ -93,14 +93,6 @@ def _check_budgets(name: str, budgets: Any, *, integer: bool) -> list:
     if integer:
         return [check_int(name, b, min=1) for b in items]
     return [check_positive(name, b) for b in items]
-
-
-def _check_real(name: str, value: Any) -> float:
-    if isinstance(value, bool) or not isinstance(value, numbers.Real):
-        raise TypeError(f"{name} must be a real number, got {type(value).__name__} {value!r}")
-    if not np.isfinite(float(value)):
-        raise ValueError(f"{name} must be finite, got {name}={value}")
-    return float(value)
 
 
 def _pool_sizes(scores: Any) -> np.ndarray:
@@ -167,7 +159,7 @@ def plan_pools(
     confidence = check_fraction("confidence", confidence, open_low=True, open_high=True)
     n_boot = check_int("n_boot", n_boot, min=10)
     seed = check_int("seed", seed, min=0)
-    min_gain = _check_real("min_gain", min_gain)
+    min_gain = check_real("min_gain", min_gain)
     b_samples = _check_budgets("budget_samples", budget_samples, integer=True)
     b_tokens = _check_budgets("budget_tokens", budget_tokens, integer=False)
 
@@ -390,6 +382,6 @@ def plan_exact(
         mean_tokens=mean_tokens,
         b_samples=b_samples,
         b_tokens=b_tokens,
-        min_gain=_check_real("min_gain", min_gain),
+        min_gain=check_real("min_gain", min_gain),
         notes=[],
     )

@@ -20,7 +20,6 @@ from __future__ import annotations
 
 import dataclasses
 import json
-import numbers
 import sys
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -31,7 +30,7 @@ if sys.version_info >= (3, 11):
 else:  # pragma: no cover - Python 3.10
     import tomli as tomllib
 
-from .._checks import check_choice, check_fraction, check_int, check_positive
+from .._checks import check_choice, check_fraction, check_int, check_positive, check_real
 
 from .objectives import OBJECTIVES  # the registry: objective name -> credit function + options
 
@@ -127,16 +126,9 @@ class TrainConfig:
 
 
 # ------------------------------------------------------------------- validation
-def _check_real(name: str, value: Any) -> float:
+def _nonneg_real(name: str, value: Any) -> float:
     """Every float key: a finite real number >= 0 (keys with tighter ranges are checked again below)."""
-    if isinstance(value, bool) or not isinstance(value, numbers.Real):
-        raise TypeError(f"{name} must be a real number, got {type(value).__name__} {value!r}")
-    value = float(value)
-    if value != value or value in (float("inf"), float("-inf")):
-        raise ValueError(f"{name} must be finite, got {name}={value}")
-    if value < 0:
-        raise ValueError(f"{name} must be >= 0.0, got {name}={value}")
-    return value
+    return check_real(name, value, min=0.0)
 
 
 def validate(c: TrainConfig) -> None:
@@ -150,7 +142,7 @@ def validate(c: TrainConfig) -> None:
         if f.type in ("int", int):
             check_int(f.name, v, min=0)
         if f.type in ("float", float):
-            setattr(c, f.name, _check_real(f.name, v))
+            setattr(c, f.name, _nonneg_real(f.name, v))
     if not isinstance(c.task_params, dict):
         raise TypeError(f"task_params must be a table of task knobs, got {type(c.task_params).__name__}")
     check_choice("objective", c.objective, tuple(OBJECTIVES))

@@ -31,6 +31,7 @@ from typing import Any, Callable, Mapping, Sequence
 
 import numpy as np
 
+from .._checks import check_nonnegative
 from .base import Verdicts
 from .scoring import check_batch
 
@@ -194,12 +195,7 @@ class NumericMatch:
     def __init__(self, answers: Mapping[str, float | str], *, abs_tol: float = 1e-6, rel_tol: float = 1e-9,
                  pattern: str | re.Pattern[str] | None = None) -> None:
         self.answers = _check_answers(answers, numeric=True)
-        for name, tol in (("abs_tol", abs_tol), ("rel_tol", rel_tol)):
-            if isinstance(tol, bool) or not isinstance(tol, numbers.Real):
-                raise TypeError(f"{name} must be a real number, got {type(tol).__name__} {tol!r}")
-            if not (math.isfinite(tol) and tol >= 0):
-                raise ValueError(f"{name} must be a finite number >= 0, got {name}={tol}")
-        self.abs_tol, self.rel_tol = float(abs_tol), float(rel_tol)
+        self.abs_tol, self.rel_tol = check_nonnegative("abs_tol", abs_tol), check_nonnegative("rel_tol", rel_tol)
         self.pattern = _check_pattern(pattern)
 
     def __call__(self, prompts: Sequence[str], responses: Sequence[str]) -> Verdicts:

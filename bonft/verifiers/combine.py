@@ -6,14 +6,13 @@ component does. A sample is failed when any component failed on it.
 """
 from __future__ import annotations
 
-import math
-import numbers
 import threading
 from collections import OrderedDict
 from typing import Any, Sequence
 
 import numpy as np
 
+from .._checks import check_int, check_real
 from .base import Verdicts, as_verdicts
 from .scoring import check_batch
 
@@ -49,9 +48,7 @@ class WeightedSum:
             if not (isinstance(item, tuple) and len(item) == 2):
                 raise TypeError(f"parts[{j}] must be a (verifier, weight) pair, got {type(item).__name__} {item!r:.60}")
             v, w = item
-            if isinstance(w, bool) or not isinstance(w, numbers.Real) or not math.isfinite(w):
-                raise ValueError(f"parts[{j}] weight must be a finite real number, got {w!r}")
-            self.parts.append((_check_verifier(f"parts[{j}] verifier", v), float(w)))
+            self.parts.append((_check_verifier(f"parts[{j}] verifier", v), check_real(f"parts[{j}] weight", w)))
 
     def __call__(self, prompts: Sequence[str], responses: Sequence[str]) -> Verdicts:
         prompts, responses = check_batch(prompts, responses)
@@ -88,11 +85,7 @@ class Cached:
 
     def __init__(self, verifier: Any, *, maxsize: int = 100_000) -> None:
         self.verifier = _check_verifier("verifier", verifier)
-        if isinstance(maxsize, bool) or not isinstance(maxsize, numbers.Integral):
-            raise TypeError(f"maxsize must be an int, got {type(maxsize).__name__} {maxsize!r}")
-        if maxsize < 1:
-            raise ValueError(f"maxsize must be >= 1, got maxsize={maxsize}")
-        self.maxsize = int(maxsize)
+        self.maxsize = check_int("maxsize", maxsize, min=1)
         self._store: OrderedDict[tuple[str, str], tuple[float, float | None]] = OrderedDict()
         self._lock = threading.Lock()
         self.hits = self.misses = 0

@@ -20,18 +20,13 @@ from typing import Any, Sequence
 
 import numpy as np
 
+from .._checks import check_real
 from .base import Verdicts, as_verdicts
 from .scoring import check_batch
 
 
 def _real(name: str, value: Any, *, lo: float | None = None, hi: float | None = None) -> float:
-    if isinstance(value, bool) or not isinstance(value, numbers.Real):
-        raise TypeError(f"{name} must be a real number, got {type(value).__name__} {value!r}")
-    value = float(value)
-    if not math.isfinite(value) or (lo is not None and value < lo) or (hi is not None and value > hi):
-        span = f"in [{lo:g}, {hi:g}]" if lo is not None and hi is not None else (f">= {lo:g}" if lo is not None else "finite")
-        raise ValueError(f"{name} must be {span}, got {name}={value}")
-    return value
+    return check_real(name, value, min=lo, max=hi)
 
 
 def _uniforms(seed: int, prompt: str, response: str) -> tuple[float, float, float]:

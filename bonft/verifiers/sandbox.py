@@ -43,8 +43,6 @@ from __future__ import annotations
 
 import ctypes
 import json
-import math
-import numbers
 import os
 import re
 import resource
@@ -63,6 +61,7 @@ from typing import Any, Mapping, Sequence
 
 import numpy as np
 
+from .._checks import check_int, check_real
 from ._oslayer import LAYER_NAMES, env, make_preexec, rlimits
 from ._outcome import STATUSES, await_start, classify, collect  # noqa: F401 - STATUSES is public here
 from ._procs import kill_by_cwd, kill_uid, pids_of, user_tasks
@@ -123,19 +122,11 @@ def extract_code(text: str) -> str:
 
 
 def _real(name: str, value: Any, *, minimum: float) -> float:
-    if isinstance(value, bool) or not isinstance(value, numbers.Real):
-        raise TypeError(f"{name} must be a number, got {type(value).__name__} {value!r}")
-    if not (math.isfinite(value) and value >= minimum):
-        raise ValueError(f"{name} must be a finite number >= {minimum:g}, got {name}={value}")
-    return float(value)
+    return check_real(name, value, min=minimum)
 
 
 def _int(name: str, value: Any, *, lo: int, hi: int) -> int:
-    if isinstance(value, bool) or not isinstance(value, numbers.Integral):
-        raise TypeError(f"{name} must be an int, got {type(value).__name__} {value!r}")
-    if not lo <= value <= hi:
-        raise ValueError(f"{name} must be in [{lo}, {hi}], got {name}={value}")
-    return int(value)
+    return check_int(name, value, min=lo, max=hi)
 
 
 class CodeRunner:

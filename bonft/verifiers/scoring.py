@@ -24,6 +24,7 @@ from typing import Any, Callable, Sequence
 
 import numpy as np
 
+from .._checks import check_real
 from .base import Verdicts, as_verdicts
 
 log = logging.getLogger("bonft.verifiers")
@@ -139,11 +140,7 @@ def score_batch(
     prompts, responses = check_batch(prompts, responses)
     if not isinstance(strict, bool):
         raise TypeError(f"strict must be a bool, got {type(strict).__name__} {strict!r}")
-    if isinstance(failure_score, bool) or not isinstance(failure_score, numbers.Real):
-        raise TypeError(f"failure_score must be a real number, got {type(failure_score).__name__} {failure_score!r}")
-    if not math.isfinite(failure_score):
-        raise ValueError(f"failure_score must be finite, got failure_score={failure_score}")
-    failure_score = float(failure_score)
+    failure_score = check_real("failure_score", failure_score)
     timeout = _check_timeout(timeout)
     n = len(prompts)
     if n == 0:

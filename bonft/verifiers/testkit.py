@@ -34,6 +34,7 @@ from typing import Any, Mapping, Sequence
 
 import numpy as np
 
+from bonft._checks import check_int, check_real
 from bonft.verifiers.report import VerifierReport, roc_auc
 from bonft.verifiers.scoring import score_batch
 
@@ -145,18 +146,13 @@ def _pools(examples: Any, labels: Any) -> list[dict]:
 
 
 def _check_kw(threshold, repeats, timeout, max_failure_rate, min_auc, bend_tol, pool_size) -> None:
-    for name, v in (("threshold", threshold), ("max_failure_rate", max_failure_rate), ("min_auc", min_auc),
-                    ("bend_tol", bend_tol)):
-        if isinstance(v, bool) or not isinstance(v, numbers.Real) or not math.isfinite(v):
-            raise TypeError(f"{name} must be a finite real number, got {type(v).__name__} {v!r}")
-    if not 0 <= max_failure_rate <= 1:
-        raise ValueError(f"max_failure_rate must be in [0, 1], got max_failure_rate={max_failure_rate}")
-    if isinstance(repeats, bool) or not isinstance(repeats, numbers.Integral):
-        raise TypeError(f"repeats must be an int, got {type(repeats).__name__} {repeats!r}")
-    if repeats < 2:
+    for name, v in (("threshold", threshold), ("min_auc", min_auc), ("bend_tol", bend_tol)):
+        check_real(name, v)
+    check_real("max_failure_rate", max_failure_rate, min=0.0, max=1.0)
+    if check_int("repeats", repeats) < 2:
         raise ValueError(f"repeats must be >= 2 to test determinism, got repeats={repeats}")
-    if pool_size is not None and (isinstance(pool_size, bool) or not isinstance(pool_size, numbers.Integral) or pool_size < 1):
-        raise ValueError(f"pool_size must be None or an int >= 1, got pool_size={pool_size!r}")
+    if pool_size is not None:
+        check_int("pool_size", pool_size, min=1)
 
 
 # ----------------------------------------------------------------------------- the check
