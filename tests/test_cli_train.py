@@ -48,7 +48,7 @@ def test_eval_and_sample_commands(tmp_path, capsys):
     [
         (["--set", "k=99"], "k must be <= n"),
         (["--set", "objective=ppo"], "objective must be one of"),
-        (["--set", "lr=-1"], "lr must be >= 0.0, got lr=-1.0"),
+        (["--set", "lr=-1"], "lr must be a finite number >= 0, got lr=-1.0"),
         (["--set", "colour=red"], "--set key must be a config field"),
     ],
 )
