@@ -24,13 +24,7 @@ TOK = build_tokenizer()
 V = TOK.vocab_size
 
 
-@pytest.fixture(autouse=True, scope="module")
-def _one_thread():
-    # tiny matrices: thread hand-offs cost more than the math (and the CPUs are shared); restore after
-    before = torch.get_num_threads()
-    torch.set_num_threads(1)
-    yield
-    torch.set_num_threads(before)
+pytestmark = pytest.mark.usefixtures("one_thread")
 CH = char_vocab()
 
 

@@ -17,12 +17,7 @@ TOK = build_tokenizer()
 V = TOK.vocab_size
 
 
-@pytest.fixture(autouse=True, scope="module")
-def _one_thread():
-    before = torch.get_num_threads()
-    torch.set_num_threads(1)
-    yield
-    torch.set_num_threads(before)
+pytestmark = pytest.mark.usefixtures("one_thread")
 
 
 def _n_params(model):

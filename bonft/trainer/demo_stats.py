@@ -87,6 +87,11 @@ def _columns(ks: Sequence[int], has_proxy: bool) -> list[tuple[str, str, int]]:
     return cols
 
 
+def _head(title: str, cols) -> list[str]:
+    """A markdown table's title line, blank line, header and rule for a policy column plus ``cols``."""
+    return [title, "", "| policy | " + " | ".join(c[0] for c in cols) + " |", "|---" * (len(cols) + 1) + "|"]
+
+
 def seed_table(curves: Mapping[str, Mapping[str, np.ndarray]], ks: Sequence[int], *,
                baselines: Sequence[str] = ("warm_start", "loo_reinforce"), n_boot: int = 2000, seed: int = 0,
                confidence: float = 0.95) -> str:
@@ -97,8 +102,7 @@ def seed_table(curves: Mapping[str, Mapping[str, np.ndarray]], ks: Sequence[int]
     names = list(curves)
     cols = _columns(ks, all("proxy" in c for c in curves.values()))
     pct = round(100 * confidence)
-    lines = [f"Mean over {len(next(iter(curves.values()))['pass'])} held-out prompts [{pct}% bootstrap CI over prompts]", "",
-             "| policy | " + " | ".join(c[0] for c in cols) + " |", "|---" * (len(cols) + 1) + "|"]
+    lines = _head(f"Mean over {len(next(iter(curves.values()))['pass'])} held-out prompts [{pct}% bootstrap CI over prompts]", cols)
     for name in names:
         cells = [_fmt(*bootstrap_mean(curves[name][kind][:, j], n_boot=n_boot, seed=seed, confidence=confidence))
                  for _, kind, j in cols]
@@ -106,8 +110,7 @@ def seed_table(curves: Mapping[str, Mapping[str, np.ndarray]], ks: Sequence[int]
     for base in baselines:
         if base not in curves:
             continue
-        lines += ["", f"Paired difference from {LABELS.get(base, base)} (same prompts; * = interval excludes 0)", "",
-                  "| policy | " + " | ".join(c[0] for c in cols) + " |", "|---" * (len(cols) + 1) + "|"]
+        lines += [""] + _head(f"Paired difference from {LABELS.get(base, base)} (same prompts; * = interval excludes 0)", cols)
         for name in names:
             if name == base:
                 continue
@@ -128,16 +131,14 @@ def study_table(per_seed: Mapping[int, Mapping[str, Mapping[str, np.ndarray]]], 
     cols = _columns(ks, all("proxy" in c for s in seeds for c in per_seed[s].values()))
     mean = {(s, n, kind, j): float(per_seed[s][n][kind][:, j].mean()) for s in seeds for n in names for _, kind, j in cols}
     pct = round(100 * confidence)
-    lines = [f"Mean over {len(seeds)} seeds (seeds {', '.join(map(str, seeds))}) [{pct}% Student-t interval over seeds]", "",
-             "| policy | " + " | ".join(c[0] for c in cols) + " |", "|---" * (len(cols) + 1) + "|"]
+    lines = _head(f"Mean over {len(seeds)} seeds (seeds {', '.join(map(str, seeds))}) [{pct}% Student-t interval over seeds]", cols)
     for n in names:
         cells = [_fmt(*t_interval([mean[s, n, kind, j] for s in seeds], confidence=confidence)) for _, kind, j in cols]
         lines.append(f"| {LABELS.get(n, n)} | " + " | ".join(cells) + " |")
     for base in baselines:
         if base not in names:
             continue
-        lines += ["", f"Paired difference from {LABELS.get(base, base)}, per seed then over seeds (* = interval excludes 0)", "",
-                  "| policy | " + " | ".join(c[0] for c in cols) + " |", "|---" * (len(cols) + 1) + "|"]
+        lines += [""] + _head(f"Paired difference from {LABELS.get(base, base)}, per seed then over seeds (* = interval excludes 0)", cols)
         for n in names:
             if n == base:
                 continue
