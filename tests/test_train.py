@@ -82,19 +82,25 @@ def test_same_seed_same_weights_and_seed_matters(tmp_path, reference):
     assert_same_weights(final_weights(again.run_dir), weights)
 
 
-def test_ctrl_c_writes_checkpoint_and_resume_is_exact(tmp_path, reference, monkeypatch):
-    _, _, weights = reference
-    cfg = tiny(tmp_path, "interrupted", save_every=0)  # only the Ctrl-C checkpoint (and the stage boundary)
+def _interrupt_at(monkeypatch, cfg, at: int):
+    """Run ``cfg`` until a Ctrl-C at RL step ``at``; returns the real step function (to restore it)."""
     real = T.rl_step
 
-    def interrupt_at_6(run, step, clock):
-        if step == 6:
+    def interrupt(run, step, clock):
+        if step == at:
             raise KeyboardInterrupt
         return real(run, step, clock)
 
-    monkeypatch.setattr(T, "rl_step", interrupt_at_6)
+    monkeypatch.setattr(T, "rl_step", interrupt)
     with pytest.raises(KeyboardInterrupt):
         T.train(cfg, progress=False)
+    return real
+
+
+def test_ctrl_c_writes_checkpoint_and_resume_is_exact(tmp_path, reference, monkeypatch):
+    _, _, weights = reference
+    cfg = tiny(tmp_path, "interrupted", save_every=0)  # only the Ctrl-C checkpoint (and the stage boundary)
+    real = _interrupt_at(monkeypatch, cfg, 6)
     assert load_state(latest_checkpoint(cfg.run_dir))["step"] == 6
     monkeypatch.setattr(T, "rl_step", real)
     T.train(cfg, resume=True, progress=False)
@@ -191,16 +197,7 @@ def test_resume_with_sgd_momentum_is_exact(tmp_path, monkeypatch):
     whole = tiny(tmp_path, "whole", **kw)
     T.train(whole, progress=False)
     cfg = tiny(tmp_path, "cut", **kw)
-    real = T.rl_step
-
-    def interrupt_at_6(run, step, clock):
-        if step == 6:
-            raise KeyboardInterrupt
-        return real(run, step, clock)
-
-    monkeypatch.setattr(T, "rl_step", interrupt_at_6)
-    with pytest.raises(KeyboardInterrupt):
-        T.train(cfg, progress=False)
+    real = _interrupt_at(monkeypatch, cfg, 6)
     monkeypatch.setattr(T, "rl_step", real)
     state = load_state(latest_checkpoint(cfg.run_dir))
     assert state["step"] == 6 and any("momentum_buffer" in v for v in state["optimizer"]["state"].values())
