@@ -299,17 +299,126 @@ def test_sampling_builds_no_graph_with_grad_enabled():
     assert torch.allclose(lp.detach(), s.token_logprobs, atol=1e-5)
 
 
-@pytest.mark.parametrize("arch", ["gpt2", "llama"])
-def test_reserved_cache_draws_what_the_stock_cache_draws(arch, monkeypatch):
-    # the preallocated cache layer is a speed change only: same seed -> same tokens and log-probs
-    import bonft.trainer._kvcache as kv
+def _gqa_llama():
+    """A llama with 2 key/value heads for 4 query heads (grouped-query attention)."""
+    from transformers import LlamaConfig, LlamaForCausalLM
 
-    model = _tiny(arch)
-    a = sample(model, TOK, ["ab", "c", "dddd"], n=4, max_new_tokens=12, seed=3)
-    monkeypatch.setattr(kv, "_DynamicLayer", None)  # the stock transformers cache, grown by torch.cat
-    b = sample(model, TOK, ["ab", "c", "dddd"], n=4, max_new_tokens=12, seed=3)
-    assert torch.equal(a.reply_tokens, b.reply_tokens) and torch.equal(a.reply_valid, b.reply_valid)
-    assert torch.allclose(a.token_logprobs, b.token_logprobs, atol=1e-5)
+    torch.manual_seed(2)
+    cfg = LlamaConfig(vocab_size=V, hidden_size=32, intermediate_size=64, num_hidden_layers=2, num_attention_heads=4,
+                      num_key_value_heads=2, max_position_embeddings=64, pad_token_id=PAD_ID, eos_token_id=EOS_ID,
+                      bos_token_id=BOS_ID, attn_implementation="sdpa")
+    return LlamaForCausalLM(cfg).eval()
+
+
+def _paths(monkeypatch):
+    """Switches between the three KV caches the sampler can decode on; all must draw the same."""
+    import bonft.trainer._kvcache as kv
+    import bonft.trainer._prefix_attn as pa
+
+    def use(path):
+        monkeypatch.setattr(pa, "supported", (lambda m, p: False) if path != "shared" else _SUPPORTED)
+        monkeypatch.setattr(kv, "_DynamicLayer", None if path == "stock" else _DYNAMIC)
+    return use
+
+
+import bonft.trainer._kvcache as _kv  # noqa: E402
+import bonft.trainer._prefix_attn as _pa  # noqa: E402
+
+_SUPPORTED, _DYNAMIC = _pa.supported, _kv._DynamicLayer
+
+
+@pytest.mark.parametrize("arch", ["gpt2", "llama", "llama-gqa"])
+def test_kv_cache_paths_draw_the_same(arch, monkeypatch):
+    # The shared-prompt cache (one copy of each prompt for its n rows, _prefix_attn), the reserved cache
+    # and transformers' stock cache grown by torch.cat are speed changes only: same seed -> same tokens,
+    # log-probs equal to float32 round-off, across prompts of different lengths (left padding), EOS,
+    # chunks and top-p.
+    model = _gqa_llama() if arch == "llama-gqa" else _tiny(arch.split("-")[0], eos_boost=1.5)
+    checks = []
+    monkeypatch.setattr(_pa.decoding, "check", lambda self, f=_pa.decoding.check: checks.append(1) or f(self))
+    use = _paths(monkeypatch)
+    prompts = ["ab", "c", "dddd", "ef"]
+    out = {}
+    for path in ("shared", "reserved", "stock"):
+        use(path)
+        checks.clear()
+        out[path] = [sample(model, TOK, prompts, n=4, max_new_tokens=12, seed=3),
+                     sample(model, TOK, prompts, n=3, max_new_tokens=9, top_p=0.8, seeds=[5, 6, 7, 8], batch_size=6)]
+        assert (len(checks) > 0) == (path == "shared")  # the shared path really ran, and only there
+        assert model.config._attn_implementation == "sdpa"  # switched back after decoding
+    for path in ("reserved", "stock"):
+        for a, b in zip(out["shared"], out[path]):
+            assert torch.equal(a.reply_tokens, b.reply_tokens) and torch.equal(a.reply_valid, b.reply_valid)
+            assert torch.allclose(a.token_logprobs, b.token_logprobs, atol=1e-5)
+    s = out["shared"][0]
+    assert s.reply_valid.sum(-1).min() < 12  # EOS stopped some rows early
+    ref = sequence_logprobs(model, s.prompt_tokens, s.prompt_valid, s.reply_tokens, s.reply_valid)
+    assert torch.allclose(ref, s.token_logprobs, atol=1e-5)
+
+
+def test_model_that_bypasses_the_attention_registry_falls_back(monkeypatch):
+    # A model whose attention layers do not follow model.config (here: each keeps a private copy) never
+    # calls the shared-prompt attention; the first check sees it, the chunk is redone on the stock cache
+    # from the same random state, and the draw equals the stock path's.
+    import copy
+
+    model = _tiny("gpt2")
+    for block in model.transformer.h:
+        block.attn.config = copy.copy(model.config)
+    use = _paths(monkeypatch)
+    fallbacks = []
+    real = _kv._prompt_pass
+    monkeypatch.setattr(_kv, "_prompt_pass", lambda *a, **k: fallbacks.append(1) or real(*a, **k))
+    a = sample(model, TOK, ["ab", "c"], n=3, max_new_tokens=8, seed=4)
+    b = sample(model, TOK, ["ab", "c"], n=3, max_new_tokens=8, seed=4, batch_size=3)  # two chunks, two redos
+    assert len(fallbacks) == 3
+    use("stock")
+    c = sample(model, TOK, ["ab", "c"], n=3, max_new_tokens=8, seed=4)
+    d = sample(model, TOK, ["ab", "c"], n=3, max_new_tokens=8, seed=4, batch_size=3)
+    assert torch.equal(a.reply_tokens, c.reply_tokens) and torch.equal(b.reply_tokens, d.reply_tokens)
+    assert torch.allclose(a.token_logprobs, c.token_logprobs, atol=1e-5)
+    assert model.config._attn_implementation == "sdpa" and not _pa._switched
+
+
+def test_attention_implementation_restored_when_decoding_fails():
+    model = _tiny("gpt2")
+    calls = []
+
+    def fail_on_third(_mod, _inp, _out):
+        calls.append(1)
+        if len(calls) == 3:
+            raise KeyboardInterrupt
+
+    handle = model.transformer.register_forward_hook(fail_on_third)
+    with pytest.raises(KeyboardInterrupt):
+        sample(model, TOK, ["ab"], n=2, max_new_tokens=8, seed=0)
+    handle.remove()
+    assert model.config._attn_implementation == "sdpa" and not _pa._switched
+
+
+def test_two_threads_sampling_one_model_draw_what_one_thread_draws():
+    # The attention switch is counted per model and its state is per thread: a second thread decoding
+    # on the same model meanwhile (shared path or not) draws exactly what it draws alone.
+    import threading
+
+    model = _tiny("gpt2")
+    jobs = [(["ab", "c"], 7), (["dddd"], 8), (["e", "ff", "g"], 9)]
+    alone = [sample(model, TOK, p, n=5, max_new_tokens=20, seed=s) for p, s in jobs]
+    together = [None] * len(jobs)
+
+    def run(i):
+        p, s = jobs[i]
+        together[i] = sample(model, TOK, p, n=5, max_new_tokens=20, seed=s)
+
+    threads = [threading.Thread(target=run, args=(i,)) for i in range(len(jobs))]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join()
+    for a, b in zip(alone, together):
+        assert torch.equal(a.reply_tokens, b.reply_tokens)
+        assert torch.allclose(a.token_logprobs, b.token_logprobs, atol=1e-5)
+    assert model.config._attn_implementation == "sdpa" and not _pa._switched
 
 
 # ------------------------------------------------------------ bad input

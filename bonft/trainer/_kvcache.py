@@ -11,6 +11,8 @@ import inspect
 
 import torch
 
+from . import _prefix_attn
+
 
 def _positions(mask: torch.Tensor) -> torch.Tensor:
     """Position ids from an attention mask: 0 at each row's first real token (left padding)."""
@@ -50,6 +52,26 @@ def _prompt_pass(model, ids, mask, n, *, grad=False):
     rep_ids, rep_mask = ids.repeat_interleave(n, 0), mask.repeat_interleave(n, 0)
     out = model(input_ids=rep_ids, attention_mask=rep_mask, position_ids=_positions(rep_mask), use_cache=True)
     return _cache_of(out), out.logits[:, -1, :]
+
+
+def _decode_cache(model, ids, mask, n, extra, *, shared_prefix=True):
+    """The cache a sampler decodes on: ids, mask (P, Tp) -> (cache, logits (P*n, V), shared-prompt state or None).
+
+    With ``shared_prefix`` and a model whose cache and attention allow it, each prompt's keys
+    and values stay one copy for its n rows (``_prefix_attn``); otherwise they are copied to the
+    n rows and, for stock dynamic layers, given reserved room for ``extra`` reply tokens.
+    """
+    if shared_prefix:
+        kwargs = {"logits_to_keep": 1} if _accepts(model, "logits_to_keep") else {}
+        out = model(input_ids=ids, attention_mask=mask, position_ids=_positions(mask), use_cache=True, **kwargs)
+        past, logits = _cache_of(out), out.logits[:, -1, :].repeat_interleave(n, 0)
+        if _prefix_attn.supported(model, past):
+            return past, logits, _prefix_attn.install(past, mask, n, extra)
+        expanded = _repeat_cache(past, n)
+        if expanded is not _NO_CACHE:
+            return _reserve(expanded, extra), logits, None
+    past, logits = _prompt_pass(model, ids, mask, n)
+    return _reserve(past, extra), logits, None
 
 
 _NO_CACHE = object()

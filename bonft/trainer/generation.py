@@ -21,13 +21,15 @@ temperature, and ``Samples`` records it.
 """
 from __future__ import annotations
 
+import contextlib
 from dataclasses import dataclass
 from typing import Sequence
 
 import torch
 import torch.nn.functional as F
 
-from ._kvcache import _accepts, _cache_arg, _cache_of, _positions, _prompt_pass, _reserve
+from . import _prefix_attn
+from ._kvcache import _accepts, _cache_arg, _cache_of, _decode_cache, _positions, _prompt_pass
 from .._checks import check_fraction, check_int, check_positive
 
 
@@ -170,11 +172,15 @@ def _draw(logp: torch.Tensor, generator, generators, n: int) -> torch.Tensor:
 
 @torch.no_grad()  # sampling never builds a graph; training log-probs come from sequence_logprobs
 def _sample_rows(model, ids, mask, *, temperature, top_p, max_new_tokens, pad_id, eos_id, generator,
-                 generators=None, n=1):
-    """Decode n samples of each of P prompts. ids, mask: (P, Tp) -> tokens, gen_mask, logprobs: (P*n, t_max)."""
+                 generators=None, n=1, shared_prefix=True):
+    """Decode n samples of each of P prompts. ids, mask: (P, Tp) -> tokens, gen_mask, logprobs: (P*n, t_max).
+
+    ``shared_prefix``: keep one copy of each prompt's KV cache for its n rows (``_prefix_attn``);
+    raises ``PrefixUnsupported`` after the first step if the model does not use it.
+    """
     cache_arg = _cache_arg(model)
-    past, logits = _prompt_pass(model, ids, mask, n)  # logits (R, V), R = P*n rows: row p*n + j is sample j of prompt p
-    past = _reserve(past, max_new_tokens)
+    past, logits, state = _decode_cache(model, ids, mask, n, max_new_tokens, shared_prefix=shared_prefix)
+    # logits (R, V), R = P*n rows: row p*n + j is sample j of prompt p
     Tp = mask.shape[1]
     full = torch.ones((ids.shape[0] * n, Tp + max_new_tokens), dtype=mask.dtype, device=mask.device)
     full[:, :Tp] = mask.repeat_interleave(n, 0)  # (R, Tp + max_new_tokens): generated positions are all real
@@ -183,25 +189,54 @@ def _sample_rows(model, ids, mask, *, temperature, top_p, max_new_tokens, pad_id
     pos = _positions(mask)[:, -1]  # (R,) position of each row's last prompt token
     done = torch.zeros(R, dtype=torch.bool, device=ids.device)
     toks, gmask, lps = [], [], []
-    for _ in range(max_new_tokens):
-        logp = _log_policy(logits, temperature, top_p)  # (R, V)
-        nxt = _draw(logp, generator, generators, n)  # (R,)
-        lp = logp.gather(-1, nxt[:, None]).squeeze(-1)
-        live = ~done
-        nxt = torch.where(live, nxt, torch.full_like(nxt, pad_id))
-        toks.append(nxt)
-        gmask.append(live.long())
-        lps.append(torch.where(live, lp, torch.zeros_like(lp)))
-        if eos_id is not None:
-            done = done | (live & (nxt == eos_id))
-        if bool(done.all()) or len(toks) == max_new_tokens:
-            break
-        mask = full[:, :mask.shape[1] + 1]  # (R, Tp + t + 1)
-        pos = pos + 1
-        out = model(input_ids=nxt[:, None], attention_mask=mask, position_ids=pos[:, None],
-                    use_cache=True, **{cache_arg: past})
-        past, logits = _cache_of(out), out.logits[:, -1, :]
+    with (_prefix_attn.decoding(model, state) if state is not None else contextlib.nullcontext()) as shared:
+        for _ in range(max_new_tokens):
+            logp = _log_policy(logits, temperature, top_p)  # (R, V)
+            nxt = _draw(logp, generator, generators, n)  # (R,)
+            lp = logp.gather(-1, nxt[:, None]).squeeze(-1)
+            live = ~done
+            nxt = torch.where(live, nxt, torch.full_like(nxt, pad_id))
+            toks.append(nxt)
+            gmask.append(live.long())
+            lps.append(torch.where(live, lp, torch.zeros_like(lp)))
+            if eos_id is not None:
+                done = done | (live & (nxt == eos_id))
+            if bool(done.all()) or len(toks) == max_new_tokens:
+                break
+            mask = full[:, :mask.shape[1] + 1]  # (R, Tp + t + 1)
+            pos = pos + 1
+            try:
+                out = model(input_ids=nxt[:, None], attention_mask=mask, position_ids=pos[:, None],
+                            use_cache=True, **{cache_arg: past})
+            except Exception as e:  # a model that cannot decode on the shared-prompt cache: the caller redoes the chunk
+                if shared and len(toks) == 1:
+                    raise _prefix_attn.PrefixUnsupported(f"the first step failed: {e}") from e
+                raise
+            if shared:
+                shared.check()  # every layer used the shared-prompt attention, else the caller redoes the chunk
+            past, logits = _cache_of(out), out.logits[:, -1, :]
     return torch.stack(toks, 1), torch.stack(gmask, 1), torch.stack(lps, 1)
+
+
+def _rng_state(generator, generators, device):
+    """The state of every random stream a draw may use, to replay a chunk exactly."""
+    if generators is not None:
+        return [g.get_state() for g in generators]
+    if generator is not None:
+        return generator.get_state()
+    return torch.cuda.get_rng_state(device) if device.type == "cuda" else torch.get_rng_state()
+
+
+def _set_rng_state(state, generator, generators, device) -> None:
+    if generators is not None:
+        for g, st in zip(generators, state):
+            g.set_state(st)
+    elif generator is not None:
+        generator.set_state(state)
+    elif device.type == "cuda":
+        torch.cuda.set_rng_state(state, device)
+    else:
+        torch.set_rng_state(state)
 
 
 def sample(
@@ -294,11 +329,16 @@ def sample(
     try:
         parts = []
         for s in range(0, B * n, chunk):
-            parts.append(_sample_rows(
-                model, ids[s // n:(s + chunk) // n], mask[s // n:(s + chunk) // n], temperature=temperature, top_p=top_p,
-                max_new_tokens=max_new_tokens, pad_id=pad_id, eos_id=eos_id, generator=generator,
-                generators=None if generators is None else generators[s // n:(s + chunk) // n], n=n,
-            ))
+            kw = dict(temperature=temperature, top_p=top_p, max_new_tokens=max_new_tokens, pad_id=pad_id,
+                      eos_id=eos_id, generator=generator, n=n,
+                      generators=None if generators is None else generators[s // n:(s + chunk) // n])
+            rows_ids, rows_mask = ids[s // n:(s + chunk) // n], mask[s // n:(s + chunk) // n]
+            rng = _rng_state(generator, kw["generators"], device)
+            try:
+                parts.append(_sample_rows(model, rows_ids, rows_mask, **kw))
+            except _prefix_attn.PrefixUnsupported:  # the model bypassed our attention: redo with the stock cache
+                _set_rng_state(rng, generator, kw["generators"], device)
+                parts.append(_sample_rows(model, rows_ids, rows_mask, shared_prefix=False, **kw))
     finally:
         if was_training and hasattr(model, "train"):
             model.train()
