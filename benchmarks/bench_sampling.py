@@ -7,6 +7,11 @@ medians. Goals (issue 11): bonft's ``sample`` >= 1.5x generate's samples/s on ev
 peak memory <= generate's for 1 prompt x n = 1024 x 32 tokens on the 6 x 384 model (each method
 measured in a fresh process: peak RSS growth over the loaded model).
 
+Beside each shape it prints a ceiling: the samples/s of the model's linear layers alone on the same
+shapes (every sampler that runs the model's own forward pays at least these matmuls), so
+ceiling / generate is the largest ratio any such sampler can reach, and bonft / ceiling says how
+much of the rest (attention, norms, activations, the draw, Python) is left.
+
     python benchmarks/bench_sampling.py [--reps 3] [--skip-memory]
 """
 from __future__ import annotations
@@ -74,6 +79,35 @@ def run_bonft(model, tok, prompts, n, T, seed):
     return s
 
 
+def linear_floor(model, tok, prompts, n, T, reps=5) -> float:
+    """Seconds that the model's weight matrices alone take for this draw: a lower bound on any sampler.
+
+    Every sampler that runs the model's own forward must push each new token of each of the P*n
+    rows through every linear layer (T - 1 decoding steps after the prompt pass), and each prompt
+    through them once. Here only those matmuls run (the layers' own modules on random inputs of
+    the same shapes; attention, norms, activations, sampling and Python are left out).
+    """
+    from transformers.pytorch_utils import Conv1D
+
+    layers = [m for m in model.modules() if isinstance(m, (torch.nn.Linear, Conv1D))]
+    width = lambda m: m.weight.shape[1] if isinstance(m, torch.nn.Linear) else m.weight.shape[0]
+    Tp = max(len(tok(p)["input_ids"]) for p in prompts)
+    step_x = [torch.randn(len(prompts) * n, 1, width(m)) for m in layers]
+    prompt_x = [torch.randn(len(prompts), Tp, width(m)) for m in layers]
+
+    def run(xs):
+        t0 = time.perf_counter()
+        for m, x in zip(layers, xs):
+            m(x)
+        return time.perf_counter() - t0
+
+    with torch.no_grad():
+        run(step_x), run(prompt_x)  # warm-up
+        step = statistics.median(run(step_x) for _ in range(reps))
+        prompt = statistics.median(run(prompt_x) for _ in range(reps))
+    return prompt + (T - 1) * step
+
+
 def speed(shape, P, n, T, reps):
     model, tok = build(shape)
     prompts = [ex.prompt for ex in get_task("ledger").split(n_train=P, n_eval=1, seed=0)[0][:P]]
@@ -85,7 +119,7 @@ def speed(shape, P, n, T, reps):
             fn(model, tok, prompts, n, T, r)
             times[name].append(time.perf_counter() - t0)
     g, b = statistics.median(times["generate"]), statistics.median(times["bonft"])
-    return P * n / g, P * n / b
+    return P * n / g, P * n / b, P * n / linear_floor(model, tok, prompts, n, T)
 
 
 def _rss_mb() -> float:
@@ -122,11 +156,15 @@ def main() -> None:
         return memory_child(args.memory_child)
     torch.set_num_threads(1)
     print(f"load average at start: {os.getloadavg()[0]:.2f}")
-    print(f"{'model':6s} {'prompts x n x tokens':>22s} {'generate/s':>11s} {'bonft/s':>9s} {'ratio':>6s}  (goal >= 1.5x)")
+    print("ceiling: samples/s if only the model's linear layers ran (no attention, norms, activations, sampling,")
+    print("Python); ceiling / generate is the largest ratio any sampler that runs the model's own layers can reach.")
+    print(f"{'model':6s} {'prompts x n x tokens':>22s} {'generate/s':>11s} {'bonft/s':>9s} {'ratio':>6s}  (goal >= 1.5x)"
+          f" {'ceiling/s':>10s} {'ceiling/generate':>17s} {'bonft/ceiling':>14s}")
     for shape, P, n, T in (("tiny", 16, 16, 8), ("tiny", 8, 16, 64), ("6x384", 8, 16, 16), ("6x384", 8, 16, 64),
                            ("6x384", 1, 64, 64)):
-        g, b = speed(shape, P, n, T, args.reps)
-        print(f"{shape:6s} {f'{P} x {n} x {T}':>22s} {g:11.1f} {b:9.1f} {b / g:5.2f}x")
+        g, b, c = speed(shape, P, n, T, args.reps)
+        print(f"{shape:6s} {f'{P} x {n} x {T}':>22s} {g:11.1f} {b:9.1f} {b / g:5.2f}x"
+              f"{'':15s} {c:10.1f} {c / g:16.2f}x {b / c:13.2f}")
     if not args.skip_memory:
         mg, mb = memory("generate"), memory("bonft")
         print(f"peak memory, 6x384, 1 x 1024 x 32: generate +{mg['peak_mb']:.0f} MB ({mg['s']:.1f} s), "
