@@ -356,6 +356,22 @@ def test_kv_cache_paths_draw_the_same(arch, monkeypatch):
     assert torch.allclose(ref, s.token_logprobs, atol=1e-5)
 
 
+def test_shared_prompt_cache_only_for_cpu_transformers_models_with_stock_layers():
+    # measured on the CPU only; other devices, other attention implementations and other cache kinds keep
+    # the copied cache
+    model = _tiny("gpt2")
+    ids, mask = torch.tensor([[1, 4, 5]]), torch.ones(1, 3, dtype=torch.long)
+    past = model(input_ids=ids, attention_mask=mask, use_cache=True).past_key_values
+    assert _pa.supported(model, past)
+    assert not _pa.supported(torch.nn.Linear(2, 2), past)  # no transformers config
+    model.config._attn_implementation = "flex_attention"
+    assert not _pa.supported(model, past)
+    model.config._attn_implementation = "sdpa"
+    layer = past.layers[0]
+    layer.keys = layer.keys.to("meta")
+    assert not _pa.supported(model, past)
+
+
 def test_model_that_bypasses_the_attention_registry_falls_back(monkeypatch):
     # A model whose attention layers do not follow model.config (here: each keeps a private copy) never
     # calls the shared-prompt attention; the first check sees it, the chunk is redone on the stock cache

@@ -120,7 +120,11 @@ else:
 
 
 def supported(model, past) -> bool:
-    """Whether the shared-prompt decoding can be tried: a transformers model, stock dynamic cache layers."""
+    """Whether the shared-prompt decoding can be tried: a transformers model on the CPU, stock dynamic cache layers.
+
+    CPU only: it was measured there (benchmarks/bench_sampling.py). On a GPU, fused attention kernels
+    and kernel-launch costs change the balance, and it has not been measured; the copied cache is used.
+    """
     if _DynamicLayer is None:
         return False
     cfg = getattr(model, "config", None)
@@ -130,7 +134,8 @@ def supported(model, past) -> bool:
         return False
     layers = getattr(past, "layers", None)
     return isinstance(layers, list) and bool(layers) and all(
-        type(x) is _DynamicLayer and x.is_initialized and x.keys is not None and x.keys.dim() == 4 for x in layers)
+        type(x) is _DynamicLayer and x.is_initialized and x.keys is not None and x.keys.dim() == 4
+        and x.keys.device.type == "cpu" for x in layers)
 
 
 def install(past, prompt_mask: torch.Tensor, n: int, extra: int) -> _PrefixState:

@@ -260,8 +260,8 @@ def sample(
     nucleus and renormalised when ``top_p < 1``). Each prompt is repeated n
     times and the ``B * n`` rows are decoded ``batch_size`` rows at a time
     (default: all at once; rounded down to whole prompts, at least one) with the
-    model's KV cache; each prompt is run once. On transformers models with the stock dynamic cache and
-    sdpa or eager attention, the n rows of a prompt share one copy of its keys and values, read by
+    model's KV cache; each prompt is run once. On transformers models on the CPU with the stock dynamic
+    cache and sdpa or eager attention, the n rows of a prompt share one copy of its keys and values, read by
     bonft's own decoding attention (registered under ``"bonft_shared_prefix"`` and switched on only
     while decoding); other models get the prompt's cache copied to its n rows. A row stops at EOS;
     afterwards it gets the pad id, mask 0 and log-prob 0. Prompts are
