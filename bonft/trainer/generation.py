@@ -29,8 +29,11 @@ import torch
 import torch.nn.functional as F
 
 from . import _prefix_attn
+from ._gen_inputs import (
+    _check_long, _check_model, _check_prompts, _check_temperature, _check_top_p, _left_pad, _model_device, _rng_state, _set_rng_state, _special_ids,
+)
 from ._kvcache import _accepts, _cache_arg, _cache_of, _decode_cache, _positions, _prompt_pass
-from .._checks import check_fraction, check_int, check_positive
+from .._checks import check_int
 
 
 @dataclass
@@ -70,66 +73,7 @@ class Samples:
         return self.reply_valid.sum(-1)
 
 
-# ---------------------------------------------------------------- validation
-
-
-def _check_model(model) -> None:
-    if not callable(model):
-        raise TypeError(f"model must be a callable causal LM (e.g. a transformers model), got {type(model).__name__}")
-
-
-def _check_prompts(prompts) -> list[str]:
-    if isinstance(prompts, str):
-        raise TypeError("prompts must be a sequence of str, got a single str (wrap it in a list)")
-    try:
-        items = list(prompts)
-    except TypeError:
-        raise TypeError(f"prompts must be a sequence of str, got {type(prompts).__name__}") from None
-    if not items:
-        raise ValueError("prompts must not be empty")
-    for i, p in enumerate(items):
-        if not isinstance(p, str):
-            raise TypeError(f"prompts must be a sequence of str, got {type(p).__name__} at index {i}")
-    return items
-
-
-def _check_temperature(temperature) -> float:
-    return check_positive("temperature", temperature)
-
-
-def _check_top_p(top_p) -> float:
-    return check_fraction("top_p", top_p, open_low=True)
-
-
-# ---------------------------------------------------------------- helpers
-
-
-def _model_device(model) -> torch.device:
-    try:
-        return next(model.parameters()).device
-    except (AttributeError, StopIteration):
-        return torch.device("cpu")
-
-
-def _special_ids(tokenizer) -> tuple[int, int | None]:
-    """(pad id, eos id); pad falls back to eos, then 0 (GPT-2 tokenizers have no pad)."""
-    eos = tokenizer.eos_token_id
-    pad = tokenizer.pad_token_id
-    if pad is None:
-        pad = eos if eos is not None else 0
-    return int(pad), (None if eos is None else int(eos))
-
-
-def _left_pad(rows: list[list[int]], pad_id: int) -> tuple[torch.Tensor, torch.Tensor]:
-    """Left-pad token lists: (B, Tp) ids and (B, Tp) mask."""
-    Tp = max(len(r) for r in rows)
-    ids = torch.full((len(rows), Tp), pad_id, dtype=torch.long)
-    mask = torch.zeros((len(rows), Tp), dtype=torch.long)
-    for i, r in enumerate(rows):
-        if r:
-            ids[i, Tp - len(r):] = torch.tensor(r, dtype=torch.long)
-            mask[i, Tp - len(r):] = 1
-    return ids, mask
+# ---------------------------------------------------------------- the sampling policy
 
 
 def _log_policy(logits: torch.Tensor, temperature: float, top_p: float) -> torch.Tensor:
@@ -216,27 +160,6 @@ def _sample_rows(model, ids, mask, *, temperature, top_p, max_new_tokens, pad_id
                 shared.check()  # every layer used the shared-prompt attention, else the caller redoes the chunk
             past, logits = _cache_of(out), out.logits[:, -1, :]
     return torch.stack(toks, 1), torch.stack(gmask, 1), torch.stack(lps, 1)
-
-
-def _rng_state(generator, generators, device):
-    """The state of every random stream a draw may use, to replay a chunk exactly."""
-    if generators is not None:
-        return [g.get_state() for g in generators]
-    if generator is not None:
-        return generator.get_state()
-    return torch.cuda.get_rng_state(device) if device.type == "cuda" else torch.get_rng_state()
-
-
-def _set_rng_state(state, generator, generators, device) -> None:
-    if generators is not None:
-        for g, st in zip(generators, state):
-            g.set_state(st)
-    elif generator is not None:
-        generator.set_state(state)
-    elif device.type == "cuda":
-        torch.cuda.set_rng_state(state, device)
-    else:
-        torch.set_rng_state(state)
 
 
 def sample(
@@ -414,16 +337,6 @@ def encode_responses(tokenizer, prompts: Sequence[str], responses, *, add_eos: b
         mask[i, :len(r)] = 1
     B = len(prompts)
     return prompt_tokens, prompt_valid, ids.view(B, n, T), mask.view(B, n, T)  # (B*n, T) -> (B, n, T)
-
-
-def _check_long(name: str, x, ndim: int) -> torch.Tensor:
-    if not isinstance(x, torch.Tensor):
-        raise TypeError(f"{name} must be a torch.Tensor, got {type(x).__name__}")
-    if x.dtype.is_floating_point or x.dtype.is_complex:
-        raise TypeError(f"{name} must be an integer tensor, got dtype {x.dtype}")
-    if x.ndim != ndim:
-        raise ValueError(f"{name} must have {ndim} dimensions, got shape {tuple(x.shape)}")
-    return x
 
 
 def sequence_logprobs(
