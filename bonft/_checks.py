@@ -191,6 +191,25 @@ def check_same_shape(**arrays: Any) -> tuple[int, ...]:
     return first
 
 
+def check_items(name: str, x: Any, kind: type, what: str) -> list:
+    """A non-empty sequence whose items are all ``kind`` (named ``what`` in messages) -> a list.
+
+    A single str is refused even where str items are wanted (it would be read letter by letter).
+    """
+    if isinstance(x, str):
+        raise TypeError(f"{name} must be a sequence of {what}, got a single str (wrap it in a list)")
+    try:
+        items = list(x)
+    except TypeError:
+        raise TypeError(f"{name} must be a sequence of {what}, got {type(x).__name__}") from None
+    if not items:
+        raise ValueError(f"{name} must not be empty")
+    for i, item in enumerate(items):
+        if not isinstance(item, kind):
+            raise TypeError(f"{name} must be a sequence of {what}, got {type(item).__name__} at index {i}")
+    return items
+
+
 def check_nonempty(name: str, x: Any) -> None:
     if int(np.prod(getattr(x, "shape", (len(x),)))) == 0:
         raise ValueError(f"{name} must not be empty")

@@ -3,7 +3,7 @@ import numpy as np
 import pytest
 import torch
 
-from bonft._checks import check_finite, check_k, check_ks, check_probs
+from bonft._checks import check_finite, check_items, check_k, check_ks, check_probs
 
 
 def test_check_k_messages():
@@ -70,3 +70,15 @@ def test_verifier_kit_arguments_follow_the_exception_policy():
         check_verifier(lambda p, r: [1.0] * len(r), ex, threshold=float("nan"))
     with pytest.raises(TypeError, match=r"pool_size must be an int, got str 'x'"):
         check_verifier(lambda p, r: [1.0] * len(r), ex, pool_size="x")
+
+
+def test_check_items_messages():
+    assert check_items("prompts", ("a", "b"), str, "str") == ["a", "b"]
+    with pytest.raises(TypeError, match=r"prompts must be a sequence of str, got a single str \(wrap it in a list\)"):
+        check_items("prompts", "ab", str, "str")
+    with pytest.raises(TypeError, match=r"prompts must be a sequence of str, got int$"):
+        check_items("prompts", 3, str, "str")
+    with pytest.raises(ValueError, match=r"prompts must not be empty"):
+        check_items("prompts", [], str, "str")
+    with pytest.raises(TypeError, match=r"examples must be a sequence of Example, got int at index 1"):
+        check_items("examples", [1.5, 2], float, "Example")

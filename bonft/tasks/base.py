@@ -8,7 +8,7 @@ from typing import Any, Callable, Sequence
 
 import numpy as np
 
-from .._checks import check_int
+from .._checks import check_int, check_items
 from ..verifiers.base import Verdicts
 
 _INT = re.compile(r"-?\d+")
@@ -43,16 +43,7 @@ class Example:
 
 
 def _check_examples(examples: Any) -> list[Example]:
-    try:
-        items = list(examples)
-    except TypeError:
-        raise TypeError(f"examples must be a sequence of Example, got {type(examples).__name__}") from None
-    if not items:
-        raise ValueError("examples must not be empty")
-    for i, ex in enumerate(items):
-        if not isinstance(ex, Example):
-            raise TypeError(f"examples must be a sequence of Example, got {type(ex).__name__} at index {i}")
-    return items
+    return check_items("examples", examples, Example, "Example")
 
 
 def _answer_table(examples: list[Example]) -> dict[str, str]:

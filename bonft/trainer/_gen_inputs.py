@@ -5,7 +5,7 @@ from __future__ import annotations
 
 import torch
 
-from .._checks import check_fraction, check_positive
+from .._checks import check_fraction, check_items, check_positive
 
 
 # ---------------------------------------------------------------- validation
@@ -17,18 +17,7 @@ def _check_model(model) -> None:
 
 
 def _check_prompts(prompts) -> list[str]:
-    if isinstance(prompts, str):
-        raise TypeError("prompts must be a sequence of str, got a single str (wrap it in a list)")
-    try:
-        items = list(prompts)
-    except TypeError:
-        raise TypeError(f"prompts must be a sequence of str, got {type(prompts).__name__}") from None
-    if not items:
-        raise ValueError("prompts must not be empty")
-    for i, p in enumerate(items):
-        if not isinstance(p, str):
-            raise TypeError(f"prompts must be a sequence of str, got {type(p).__name__} at index {i}")
-    return items
+    return check_items("prompts", prompts, str, "str")
 
 
 def _check_temperature(temperature) -> float:
