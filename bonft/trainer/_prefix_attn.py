@@ -132,6 +132,8 @@ def supported(model, past) -> bool:
         return False
     if getattr(cfg, "is_encoder_decoder", False) or getattr(cfg, "add_cross_attention", False):
         return False
+    if getattr(cfg, "sub_configs", None):  # switching back would overwrite each sub-config's own choice
+        return False
     layers = getattr(past, "layers", None)
     return isinstance(layers, list) and bool(layers) and all(
         type(x) is _DynamicLayer and x.is_initialized and x.keys is not None and x.keys.dim() == 4
