@@ -68,7 +68,7 @@ from bonft._loss_core import (
     _prepare, _rewards,
 )
 from bonft._passk import pass_at_k_counts
-from bonft.credit import (
+from bonft._credit_core import (
     _bon_rl_core, _bon_sft_core, _correct_pool, _expert_pool, _pass_at_k_core, _reinforce_core, _scored_pool,
 )
 
