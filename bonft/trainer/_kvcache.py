@@ -36,15 +36,20 @@ def _cache_of(out):
     return cache if cache is not None else out.past_key_values
 
 
-def _prompt_pass(model, ids, mask, n, *, grad=False):
+def _run_prompts(model, ids, mask):
+    """One forward pass over P left-padded prompts with the cache on, logits of the last position only."""
+    kwargs = {"logits_to_keep": 1} if _accepts(model, "logits_to_keep") else {}
+    return model(input_ids=ids, attention_mask=mask, position_ids=_positions(mask), use_cache=True, **kwargs)
+
+
+def _prompt_pass(model, ids, mask, n, *, out=None):
     """Run P distinct prompts once and expand to P*n rows: ids, mask (P, Tp) -> (cache, last logits (P*n, V)).
 
     The KV cache of each prompt is copied to its n rows (``batch_repeat_interleave``,
     differentiable) instead of running the prompt n times. Models whose cache
-    cannot be expanded get the plain repeated pass.
+    cannot be expanded get the plain repeated pass. ``out``: the prompts' forward, if already run.
     """
-    kwargs = {"logits_to_keep": 1} if _accepts(model, "logits_to_keep") else {}
-    out = model(input_ids=ids, attention_mask=mask, position_ids=_positions(mask), use_cache=True, **kwargs)
+    out = _run_prompts(model, ids, mask) if out is None else out
     past = _repeat_cache(_cache_of(out), n)
     if past is not _NO_CACHE:
         return past, out.logits[:, -1, :].repeat_interleave(n, 0)
@@ -61,16 +66,11 @@ def _decode_cache(model, ids, mask, n, extra, *, shared_prefix=True):
     and values stay one copy for its n rows (``_prefix_attn``); otherwise they are copied to the
     n rows and, for stock dynamic layers, given reserved room for ``extra`` reply tokens.
     """
-    if shared_prefix:
-        kwargs = {"logits_to_keep": 1} if _accepts(model, "logits_to_keep") else {}
-        out = model(input_ids=ids, attention_mask=mask, position_ids=_positions(mask), use_cache=True, **kwargs)
-        past, logits = _cache_of(out), out.logits[:, -1, :].repeat_interleave(n, 0)
-        if _prefix_attn.supported(model, past):
-            return past, logits, _prefix_attn.install(past, mask, n, extra)
-        expanded = _repeat_cache(past, n)
-        if expanded is not _NO_CACHE:
-            return _reserve(expanded, extra), logits, None
-    past, logits = _prompt_pass(model, ids, mask, n)
+    out = _run_prompts(model, ids, mask)
+    past = _cache_of(out)
+    if shared_prefix and _prefix_attn.supported(model, past):
+        return past, out.logits[:, -1, :].repeat_interleave(n, 0), _prefix_attn.install(past, mask, n, extra)
+    past, logits = _prompt_pass(model, ids, mask, n, out=out)
     return _reserve(past, extra), logits, None
 
 
