@@ -17,7 +17,6 @@ from __future__ import annotations
 import argparse
 import math
 import os
-import statistics
 import tempfile
 import time
 
@@ -25,6 +24,8 @@ import numpy as np
 
 from bonft.estimate import bon_at_k_per_prompt, pass_at_k, summarize
 from bonft.io import group_pools, read_samples, write_samples
+
+from _timing import interleaved_medians
 
 
 def best_of(fn, repeats: int) -> tuple[float, float]:
@@ -75,19 +76,6 @@ def bench_estimator(P: int, n: int, loop_prompts: int, repeats: int) -> dict:
           f" the floor; CPU time is the steadier figure on a loaded machine, it also counts BLAS helper threads)")
     print(f"  max |vectorised - loop| = {err:.2e}")
     return {"vec": t_vec, "sort": t_sort, "loop": t_loop, "vec_cpu": c_vec, "sort_cpu": c_sort}
-
-
-def interleaved_medians(fns: dict, repeats: int) -> dict:
-    """Median wall time of each function, called in turn so that load spikes hit all alike."""
-    for fn in fns.values():
-        fn()
-    ts: dict = {name: [] for name in fns}
-    for _ in range(repeats):
-        for name, fn in fns.items():
-            t0 = time.perf_counter()
-            fn()
-            ts[name].append(time.perf_counter() - t0)
-    return {name: statistics.median(v) for name, v in ts.items()}
 
 
 def bench_all_k(P: int, n: int, repeats: int) -> None:

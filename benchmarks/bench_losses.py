@@ -20,7 +20,6 @@ from __future__ import annotations
 
 import argparse
 import os
-import statistics
 import time
 
 import torch
@@ -30,6 +29,8 @@ from bonft.losses import (
     bon_rl_loss, bon_sft_loss, nll_loss, pass_at_k_loss, policy_gradient_loss, reinforce_loss,
 )
 
+from _timing import interleaved_medians
+
 
 def hand_written_loo(lp, rewards, mask):
     """The baseline: leave-one-out REINFORCE in five lines (Kool et al. 2019)."""
@@ -38,19 +39,6 @@ def hand_written_loo(lp, rewards, mask):
     others = (rewards.sum(-1, keepdim=True) - rewards) / (n - 1)  # mean reward of the other n-1
     credit = (rewards - others) / n
     return -(credit * seq).sum(-1).mean()
-
-
-def interleaved_medians(fns: dict, repeats: int, clock=time.perf_counter) -> dict:
-    """Median time of each function, calling them in turn so that load spikes hit all alike."""
-    for fn in fns.values():
-        fn()  # warm-up
-    times: dict = {name: [] for name in fns}
-    for _ in range(repeats):
-        for name, fn in fns.items():
-            t0 = clock()
-            fn()
-            times[name].append(clock() - t0)
-    return {name: statistics.median(ts) for name, ts in times.items()}
 
 
 def loss_step(loss_fn, lp0):

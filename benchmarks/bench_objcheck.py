@@ -14,7 +14,6 @@ from __future__ import annotations
 
 import argparse
 import itertools
-import time
 
 import numpy as np
 import torch
@@ -23,16 +22,7 @@ from bonft._objcheck_lm import transformer_check
 from bonft.objcheck import _resolve_target, builtin, check_objective
 from bonft.trainer.models import build_tiny_model
 
-
-def best_time(fn, repeats: int) -> float:
-    """Minimum wall time of `repeats` calls (after one warm-up call)."""
-    fn()
-    best = float("inf")
-    for _ in range(repeats):
-        t0 = time.perf_counter()
-        fn()
-        best = min(best, time.perf_counter() - t0)
-    return best
+from _timing import min_time
 
 
 def enumeration_loop(V=4, n=6, k=3, seed=0):
@@ -57,7 +47,7 @@ def main() -> None:
     torch.set_num_threads(1)
     reps = 2 if args.quick else 5
 
-    base = best_time(enumeration_loop, reps)
+    base = min_time(enumeration_loop, reps, warmup=True)
     cat = {
         "bon_rl, best_of_k": lambda: check_objective(builtin.bon_rl, target="best_of_k", k=3, n=6, policies=1,
                                                      transformer=False),
@@ -69,7 +59,7 @@ def main() -> None:
     print("1. exact categorical check, V=4, n=6 (4,096 ordered pools), one policy, k=3, one core")
     print(f"   baseline: enumeration loop over 4,096 ordered pools  {base * 1e3:8.1f} ms")
     for name, fn in cat.items():
-        t = best_time(fn, reps)
+        t = min_time(fn, reps, warmup=True)
         print(f"   check_objective ({name:<20})  {t * 1e3:8.1f} ms  = {t / base:5.2f}x the loop")
 
     model = build_tiny_model("gpt2", vocab_size=4, layers=1, width=16, heads=2, max_positions=4, seed=0).double()
@@ -80,10 +70,10 @@ def main() -> None:
         with torch.no_grad():
             model(ids)
 
-    fwd = best_time(forward, 20)
+    fwd = min_time(forward, 20, warmup=True)
     t = _resolve_target("best_of_k")
-    lm = best_time(lambda: transformer_check(builtin.bon_rl, t, 3, 6, ordered=False, seed=0, tolerance=1e-6), reps)
-    whole = best_time(lambda: check_objective(builtin.bon_rl, target="best_of_k", k=3, n=6), max(1, reps // 2))
+    lm = min_time(lambda: transformer_check(builtin.bon_rl, t, 3, 6, ordered=False, seed=0, tolerance=1e-6), reps, warmup=True)
+    whole = min_time(lambda: check_objective(builtin.bon_rl, target="best_of_k", k=3, n=6), max(1, reps // 2), warmup=True)
     print("2. enumerated transformer check, vocabulary 4, 3 response tokens (64 responses), n=6, one core")
     print(f"   baseline: one forward pass over the 64 responses     {fwd * 1e3:8.2f} ms")
     print(f"   transformer check (model built inside)               {lm:8.3f} s   = {lm / fwd:6.0f} forward passes")

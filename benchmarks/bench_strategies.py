@@ -15,7 +15,6 @@ from __future__ import annotations
 
 import argparse
 import os
-import time
 
 import numpy as np
 import torch
@@ -23,6 +22,8 @@ import torch
 from bonft.credit import bon_rl_credit
 from bonft.estimate import bon_at_k_per_prompt
 from bonft.vote_estimate import vote_at_k_per_prompt, vote_credit, weighted_vote_credit
+
+from _timing import min_time
 
 
 def pools(P: int, n: int, max_answers: int, seed: int = 0):
@@ -37,15 +38,6 @@ def pools(P: int, n: int, max_answers: int, seed: int = 0):
     return ans, scores, (ans == 0).astype(np.float64)
 
 
-def timed(fn, repeats: int = 1) -> float:
-    best = float("inf")
-    for _ in range(repeats):
-        t0 = time.perf_counter()
-        fn()
-        best = min(best, time.perf_counter() - t0)
-    return best
-
-
 def main() -> None:
     ap = argparse.ArgumentParser()
     ap.add_argument("--quick", action="store_true", help="100 prompts instead of 1000 in part 1")
@@ -54,19 +46,19 @@ def main() -> None:
     P = 100 if args.quick else 1000
     ans, s, r = pools(P, 256, 64)
     ks = list(range(1, 257))
-    t_vote = timed(lambda: vote_at_k_per_prompt(ans, r, ks=ks))
-    t_bon = timed(lambda: bon_at_k_per_prompt(s, r, ks=ks), repeats=3)
+    t_vote = min_time(lambda: vote_at_k_per_prompt(ans, r, ks=ks))
+    t_bon = min_time(lambda: bon_at_k_per_prompt(s, r, ks=ks), repeats=3)
     print(f"1. estimators, every k <= 256, {P} prompts x 256 samples, <= 64 answers/prompt "
           f"(mean {np.mean([len(np.unique(a)) for a in ans]):.1f}):")
     print(f"   majority vote (count DP) {t_vote:8.3f} s   best-of-k {t_bon:8.4f} s   ratio {t_vote / t_bon:8.1f}x")
 
     ans, s, r = pools(256, 64, 20, seed=1)
     rt, st = torch.as_tensor(r), torch.as_tensor(s)
-    t_vc = timed(lambda: vote_credit(ans, r, k=8), repeats=2)
-    t_bc = timed(lambda: bon_rl_credit(st, rt, k=8), repeats=5)
+    t_vc = min_time(lambda: vote_credit(ans, r, k=8), repeats=2)
+    t_bc = min_time(lambda: bon_rl_credit(st, rt, k=8), repeats=5)
     print("2. credit, B = 256, n = 64, k = 8 (<= 20 answers/prompt):")
     print(f"   majority vote {t_vc:8.4f} s   best-of-k {t_bc:8.5f} s   ratio {t_vc / t_bc:8.1f}x (goal <= 2x)")
-    t_wc = timed(lambda: weighted_vote_credit(ans, s, r, k=8))
+    t_wc = min_time(lambda: weighted_vote_credit(ans, s, r, k=8))
     print(f"   weighted vote {t_wc:8.4f} s (sampled k-subsets)            ratio {t_wc / t_bc:8.1f}x")
     print(f"load average while running: {os.getloadavg()[0]:.2f} (2 cores shared)")
 
