@@ -487,6 +487,47 @@ def test_per_prompt_seeds_draw_the_exact_law(top_p):
     assert stats.chisquare(counts[:keep], 6000 * q).pvalue > 1e-3  # scipy chi-square
 
 
+def test_one_seed_one_stream_and_the_global_rng():
+    # one prompt: seed=s and seeds=[s] take the same uniforms from the same generator -> the same draw;
+    # seed=None uses torch's global RNG, so torch.manual_seed makes it reproducible
+    model = _tiny("gpt2")
+    a = sample(model, TOK, ["ab"], n=6, max_new_tokens=10, seed=4)
+    b = sample(model, TOK, ["ab"], n=6, max_new_tokens=10, seeds=[4])
+    assert torch.equal(a.reply_tokens, b.reply_tokens)
+    torch.manual_seed(9)
+    c = sample(model, TOK, ["ab"], n=6, max_new_tokens=10)
+    torch.manual_seed(9)
+    d = sample(model, TOK, ["ab"], n=6, max_new_tokens=10)
+    assert torch.equal(c.reply_tokens, d.reply_tokens) and not torch.equal(a.reply_tokens, c.reply_tokens)
+
+
+def test_global_rng_draw_matches_exact_softmax():
+    # seed=None: the inverse-CDF draw with torch's global RNG against the exact softmax (scipy chi-square)
+    model = TableLM(_table({BOS_ID: FIRST}))
+    toks = list(FIRST)
+    p = _softmax(np.array([FIRST[t] for t in toks]))
+    torch.manual_seed(1)
+    first = sample(model, TOK, [""], n=6000, max_new_tokens=1).reply_tokens[0, :, 0].numpy()
+    counts = np.array([(first == t).sum() for t in toks])
+    assert counts.sum() == 6000
+    assert stats.chisquare(counts, 6000 * p).pvalue > 1e-3
+
+
+def test_draw_never_picks_a_token_of_zero_mass(monkeypatch):
+    # -inf log-probs (top-p's cut) have zero mass: never drawn, whatever the uniform, at the edges
+    # u = 2^-53 (the least 1 - torch.rand can be) and u = 1 included; interior uniforms land in the
+    # interval of their token (inverse CDF)
+    from bonft.trainer.generation import _draw
+
+    logp = torch.log(torch.tensor([[0.0, 0.5, 0.0, 0.25, 0.25, 0.0]]))  # mass on tokens 1, 3, 4
+    real_rand = torch.rand
+    for u, want in ((2.0 ** -53, 1), (0.5, 1), (0.5 + 1e-12, 3), (0.75, 3), (0.75 + 1e-12, 4), (1.0, 4)):
+        # _draw takes u = 1 - rand, so rand returns 1 - u
+        monkeypatch.setattr(torch, "rand", lambda *a, u=u, **k: 1.0 - torch.full(a, u, dtype=torch.float64))
+        assert _draw(logp, None, None, 1).tolist() == [want], u
+    monkeypatch.setattr(torch, "rand", real_rand)
+
+
 @pytest.mark.parametrize("arch", ["gpt2", "llama"])
 def test_per_prompt_seeds_do_not_depend_on_the_batch(arch):
     # a prompt's samples depend only on its own seed: alone, in a batch, in another order, in chunks

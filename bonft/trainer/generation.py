@@ -98,19 +98,24 @@ def _log_policy(logits: torch.Tensor, temperature: float, top_p: float) -> torch
 
 @torch.no_grad()
 def _draw(logp: torch.Tensor, generator, generators, n: int) -> torch.Tensor:
-    """One token per row from (R, V) log-probs.
+    """One token per row from (R, V) log-probs: an inverse-CDF lookup of one uniform per row.
 
-    With ``generators`` (one per prompt, each owning ``n`` consecutive rows) the
-    draw is an inverse-CDF lookup of uniforms taken from each prompt's own
-    generator, so a prompt's samples do not depend on which prompts share the batch.
+    Token i is drawn when u falls in (c_{i-1}, c_i], c the cumulative sum of the
+    probabilities (float64, so a token's mass is off by ~1e-16, not by the ~V * 1e-7 of a
+    float32 sum), normalised so that c_V = 1; tokens of zero mass are never drawn. One
+    uniform per row costs far less than ``torch.multinomial``, which draws an exponential
+    per (row, token) (``benchmarks/bench_sampling.py``). Uniforms come from ``generator``
+    (torch's global RNG when None), or with ``generators`` (one per prompt, each owning
+    ``n`` consecutive rows) from each prompt's own generator, so a prompt's samples do not
+    depend on which prompts share the batch.
     """
-    if generators is None:
-        return torch.multinomial(logp.exp(), 1, generator=generator).squeeze(-1)
-    probs = logp.exp()
-    cdf = probs.cumsum(-1)
+    cdf = logp.exp().double().cumsum(-1)  # (R, V)
     cdf = cdf / cdf[:, -1:]  # last entry exactly 1
-    u = torch.cat([1.0 - torch.rand(n, generator=g, device=logp.device) for g in generators])  # (R,) in (0, 1]
-    idx = (cdf < u[:, None]).sum(-1)  # first token whose cumulative mass reaches u; zero-mass tokens never chosen
+    if generators is None:
+        u = 1.0 - torch.rand(logp.shape[0], generator=generator, device=logp.device, dtype=torch.float64)
+    else:
+        u = torch.cat([1.0 - torch.rand(n, generator=g, device=logp.device, dtype=torch.float64) for g in generators])
+    idx = torch.searchsorted(cdf, u[:, None]).squeeze(-1)  # (R,) first token whose cumulative mass reaches u
     return idx.clamp(max=logp.shape[-1] - 1)
 
 
