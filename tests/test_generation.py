@@ -334,6 +334,7 @@ def test_kv_cache_paths_draw_the_same(arch, monkeypatch):
     # log-probs equal to float32 round-off, across prompts of different lengths (left padding), EOS,
     # chunks and top-p.
     model = _gqa_llama() if arch == "llama-gqa" else _tiny(arch.split("-")[0], eos_boost=1.5)
+    monkeypatch.setattr(_pa, "_FIRST_CAPACITY", 2)  # the reply buffer grows 2 -> 4 -> 8 -> max_new_tokens
     checks = []
     monkeypatch.setattr(_pa.decoding, "check", lambda self, f=_pa.decoding.check: checks.append(1) or f(self))
     use = _paths(monkeypatch)

@@ -27,6 +27,7 @@ import threading
 import torch
 
 NAME = "bonft_shared_prefix"
+_FIRST_CAPACITY = 16  # reply tokens the buffer holds before it first doubles
 _local = threading.local()  # .state: the _PrefixState of the decoding step in progress, or None
 
 
@@ -62,8 +63,10 @@ else:
             pk, pv = layer.keys, layer.values  # (P, heads, Tp, head_dim)
             P, H, Tp, d = pk.shape
             self.pk, self.pv, self._tp = pk, pv, Tp
-            self._k = pk.new_empty(P * n, H, extra, d)  # (R, heads, extra, head_dim)
-            self._v = pv.new_empty(P * n, H, extra, pv.shape[-1])
+            self._extra = extra  # reply tokens this layer must hold at most
+            cap = min(extra, _FIRST_CAPACITY)  # the buffer doubles when full (_grow)
+            self._k = pk.new_empty(P * n, H, cap, d)  # (R, heads, capacity, head_dim)
+            self._v = pv.new_empty(P * n, H, cap, pv.shape[-1])
             self._len = 0
             self._state = state
             self.device, self.is_initialized = pk.device, True
@@ -71,13 +74,30 @@ else:
 
         def update(self, key_states, value_states, *args, **kwargs):
             t, s = self._len, key_states.shape[-2]
-            if t + s > self._k.shape[-2]:
+            if t + s > self._extra:
                 raise PrefixUnsupported("reply buffer full")
+            if t + s > self._k.shape[-2]:
+                self._grow(t + s)
             self._k[:, :, t:t + s], self._v[:, :, t:t + s] = key_states, value_states
             self._len = t + s
             self.keys, self.values = self._k[:, :, :t + s], self._v[:, :, :t + s]
             self._state.current = self
             return self.keys, self.values
+
+        def _grow(self, need: int) -> None:
+            """Double the capacity (at least ``need``, at most ``extra``): the rows' replies stay packed.
+
+            Each (row, head) block of the buffer is read whole at every step, so a buffer sized
+            for the longest reply from the start would leave a gap after every block and make the
+            reads strided; doubling keeps at least half of what is read in use, for copies that
+            add up to under twice the final buffer.
+            """
+            cap = min(self._extra, max(need, 2 * self._k.shape[-2]))
+            t = self._len
+            k, v = self._k, self._v
+            self._k = k.new_empty(*k.shape[:2], cap, k.shape[-1])
+            self._v = v.new_empty(*v.shape[:2], cap, v.shape[-1])
+            self._k[:, :, :t], self._v[:, :, :t] = k[:, :, :t], v[:, :, :t]
 
         def get_seq_length(self) -> int:
             return self._tp + self._len
