@@ -57,12 +57,7 @@ def check_ks(ks: Any, n: int, *, name: str = "k") -> tuple[np.ndarray, bool]:
         return np.array([check_k(ks, n, name=name)], dtype=np.int64), True
     if is_tensor(ks):
         ks = ks.tolist()
-    try:
-        items = list(ks)
-    except TypeError:
-        raise TypeError(f"{name} must be an int or a sequence of ints, got {type(ks).__name__}") from None
-    if not items:
-        raise ValueError(f"{name} must not be empty")
+    items = _nonempty_list(name, ks, "an int or a sequence of ints")
     return np.array([check_k(v, n, name=name) for v in items], dtype=np.int64), False
 
 
@@ -191,6 +186,17 @@ def check_same_shape(**arrays: Any) -> tuple[int, ...]:
     return first
 
 
+def _nonempty_list(name: str, x: Any, expected: str) -> list:
+    """``list(x)``, refusing what cannot be listed (``TypeError``) and an empty result (``ValueError``)."""
+    try:
+        items = list(x)
+    except TypeError:
+        raise TypeError(f"{name} must be {expected}, got {type(x).__name__}") from None
+    if not items:
+        raise ValueError(f"{name} must not be empty")
+    return items
+
+
 def check_items(name: str, x: Any, kind: type, what: str) -> list:
     """A non-empty sequence whose items are all ``kind`` (named ``what`` in messages) -> a list.
 
@@ -198,12 +204,7 @@ def check_items(name: str, x: Any, kind: type, what: str) -> list:
     """
     if isinstance(x, str):
         raise TypeError(f"{name} must be a sequence of {what}, got a single str (wrap it in a list)")
-    try:
-        items = list(x)
-    except TypeError:
-        raise TypeError(f"{name} must be a sequence of {what}, got {type(x).__name__}") from None
-    if not items:
-        raise ValueError(f"{name} must not be empty")
+    items = _nonempty_list(name, x, f"a sequence of {what}")
     for i, item in enumerate(items):
         if not isinstance(item, kind):
             raise TypeError(f"{name} must be a sequence of {what}, got {type(item).__name__} at index {i}")

@@ -90,7 +90,7 @@ else:
             Each (row, head) block of the buffer is read whole at every step, so a buffer sized
             for the longest reply from the start would leave a gap after every block and make the
             reads strided; doubling keeps at least half of what is read in use, for copies that
-            add up to under twice the final buffer.
+            add up to less than the final buffer.
             """
             cap = min(self._extra, max(need, 2 * self._k.shape[-2]))
             t = self._len
