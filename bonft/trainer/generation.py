@@ -101,8 +101,9 @@ def _draw(logp: torch.Tensor, generator, generators, n: int) -> torch.Tensor:
     """One token per row from (R, V) log-probs: an inverse-CDF lookup of one uniform per row.
 
     Token i is drawn when u falls in (c_{i-1}, c_i], c the cumulative sum of the
-    probabilities (float64, so a token's mass is off by ~1e-16, not by the ~V * 1e-7 of a
-    float32 sum), normalised so that c_V = 1; tokens of zero mass are never drawn. One
+    probabilities, normalised so that c_V = 1; tokens of zero mass are never drawn. The sum
+    and u are float64: a token's mass is then off by at most ~V * 1e-16 beyond the float32
+    round-off of its own probability, where a float32 sum could be off by ~V * 6e-8. One
     uniform per row costs far less than ``torch.multinomial``, which draws an exponential
     per (row, token) (``benchmarks/bench_sampling.py``). Uniforms come from ``generator``
     (torch's global RNG when None), or with ``generators`` (one per prompt, each owning
