@@ -517,16 +517,14 @@ def test_global_rng_draw_matches_exact_softmax():
 def test_draw_never_picks_a_token_of_zero_mass(monkeypatch):
     # -inf log-probs (top-p's cut) have zero mass: never drawn, whatever the uniform, at the edges
     # u = 2^-53 (the least 1 - torch.rand can be) and u = 1 included; interior uniforms land in the
-    # interval of their token (inverse CDF)
+    # interval of their token (inverse transform sampling; common practice)
     from bonft.trainer.generation import _draw
 
     logp = torch.log(torch.tensor([[0.0, 0.5, 0.0, 0.25, 0.25, 0.0]]))  # mass on tokens 1, 3, 4
-    real_rand = torch.rand
     for u, want in ((2.0 ** -53, 1), (0.5, 1), (0.5 + 1e-12, 3), (0.75, 3), (0.75 + 1e-12, 4), (1.0, 4)):
         # _draw takes u = 1 - rand, so rand returns 1 - u
         monkeypatch.setattr(torch, "rand", lambda *a, u=u, **k: 1.0 - torch.full(a, u, dtype=torch.float64))
         assert _draw(logp, None, None, 1).tolist() == [want], u
-    monkeypatch.setattr(torch, "rand", real_rand)
 
 
 @pytest.mark.parametrize("arch", ["gpt2", "llama"])
