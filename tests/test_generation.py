@@ -150,15 +150,15 @@ def test_loop_stops_when_every_row_is_done():
 def _tiny(arch, eos_boost=0.0):
     model = build_tiny_model(arch, vocab_size=V, layers=1, width=32, heads=2, max_positions=64, seed=1,
                              pad_token_id=PAD_ID, eos_token_id=EOS_ID, bos_token_id=BOS_ID)
-    if eos_boost:  # make EOS likely so that rows stop at different times
+    if eos_boost:  # make EOS likely so that rows stop at different times: a head with a bias (no hook, so
+        # that GPT-2 still qualifies for bonft's own decoding step)
         head = model.get_output_embeddings()
-
-        def boost(_mod, _inp, out):
-            out = out.clone()
-            out[..., EOS_ID] += eos_boost
-            return out
-
-        head.register_forward_hook(boost)
+        biased = torch.nn.Linear(head.in_features, head.out_features, bias=True)
+        biased.weight = head.weight
+        with torch.no_grad():
+            biased.bias.zero_()
+            biased.bias[EOS_ID] = eos_boost
+        model.set_output_embeddings(biased)
     return model
 
 
@@ -311,50 +311,133 @@ def _gqa_llama():
 
 
 def _paths(monkeypatch):
-    """Switches between the three KV caches the sampler can decode on; all must draw the same."""
-    import bonft.trainer._kvcache as kv
-    import bonft.trainer._prefix_attn as pa
+    """Switches between the four ways the sampler can decode; all must draw the same.
+
+    own: bonft's decoding step (stock GPT-2 only) on the shared-prompt cache; shared: the model's own
+    forward calling the shared-prompt attention through the registry; reserved: the prompt cache copied
+    to the n rows with room reserved; stock: transformers' cache grown by torch.cat.
+    """
+    def counted(*args):  # the real step, counting its calls in use.steps
+        step = _FOR_MODEL(*args)
+        return step and (lambda *a: use.steps.append(1) or step(*a))
 
     def use(path):
-        monkeypatch.setattr(pa, "supported", (lambda m, p: False) if path != "shared" else _SUPPORTED)
-        monkeypatch.setattr(kv, "_DynamicLayer", None if path == "stock" else _DYNAMIC)
+        monkeypatch.setattr(_pa, "supported", _SUPPORTED if path in ("own", "shared") else (lambda m, p: False))
+        monkeypatch.setattr(_kv, "_DynamicLayer", None if path == "stock" else _DYNAMIC)
+        monkeypatch.setattr(_ds, "for_model", counted if path == "own" else (lambda *a: None))
+    use.steps = []
     return use
 
 
+import bonft.trainer._decode_step as _ds  # noqa: E402
 import bonft.trainer._kvcache as _kv  # noqa: E402
 import bonft.trainer._prefix_attn as _pa  # noqa: E402
 
-_SUPPORTED, _DYNAMIC = _pa.supported, _kv._DynamicLayer
+_SUPPORTED, _DYNAMIC, _FOR_MODEL = _pa.supported, _kv._DynamicLayer, _ds.for_model
 
 
 @pytest.mark.parametrize("arch", ["gpt2", "llama", "llama-gqa"])
 def test_kv_cache_paths_draw_the_same(arch, monkeypatch):
-    # The shared-prompt cache (one copy of each prompt for its n rows, _prefix_attn), the reserved cache
-    # and transformers' stock cache grown by torch.cat are speed changes only: same seed -> same tokens,
-    # log-probs equal to float32 round-off, across prompts of different lengths (left padding), EOS,
-    # chunks and top-p.
+    # bonft's own GPT-2 decoding step, the shared-prompt cache (one copy of each prompt for its n rows,
+    # _prefix_attn) under the model's own forward, the reserved cache and transformers' stock cache grown
+    # by torch.cat are speed changes only: same seed -> same tokens, log-probs equal to float32 round-off,
+    # across prompts of different lengths (left padding), EOS, chunks and top-p.
     model = _gqa_llama() if arch == "llama-gqa" else _tiny(arch.split("-")[0], eos_boost=1.5)
     monkeypatch.setattr(_pa, "_FIRST_CAPACITY", 2)  # the reply buffer grows 2 -> 4 -> 8 -> max_new_tokens
     checks = []
     monkeypatch.setattr(_pa.decoding, "check", lambda self, f=_pa.decoding.check: checks.append(1) or f(self))
     use = _paths(monkeypatch)
     prompts = ["ab", "c", "dddd", "ef"]
+    paths = ("own", "shared", "reserved", "stock")
     out = {}
-    for path in ("shared", "reserved", "stock"):
+    for path in paths:
         use(path)
-        checks.clear()
+        checks.clear(), use.steps.clear()
         out[path] = [sample(model, TOK, prompts, n=4, max_new_tokens=12, seed=3),
                      sample(model, TOK, prompts, n=3, max_new_tokens=9, top_p=0.8, seeds=[5, 6, 7, 8], batch_size=6)]
-        assert (len(checks) > 0) == (path == "shared")  # the shared path really ran, and only there
+        assert (len(checks) > 0) == (path == "shared")  # each path really ran, and only there
+        assert (len(use.steps) > 0) == (path == "own")
         assert model.config._attn_implementation == "sdpa"  # switched back after decoding
-    for path in ("reserved", "stock"):
-        for a, b in zip(out["shared"], out[path]):
+    for path in paths[1:]:
+        for a, b in zip(out[paths[0]], out[path]):
             assert torch.equal(a.reply_tokens, b.reply_tokens) and torch.equal(a.reply_valid, b.reply_valid)
             assert torch.allclose(a.token_logprobs, b.token_logprobs, atol=1e-5)
-    s = out["shared"][0]
+    s = out[paths[0]][0]
     assert s.reply_valid.sum(-1).min() < 12  # EOS stopped some rows early
     ref = sequence_logprobs(model, s.prompt_tokens, s.prompt_valid, s.reply_tokens, s.reply_valid)
     assert torch.allclose(ref, s.token_logprobs, atol=1e-5)
+
+
+def test_own_decoding_step_only_for_stock_models_without_hooks():
+    # bonft's own step replaces the model's forward only where that forward is transformers' own GPT-2
+    # or Llama code: another architecture, a subclass, a replaced submodule or a hook (on a module or
+    # global) keep the model's forward (common practice: a hook or an adapter must see every call)
+    from transformers import GPTNeoXConfig, GPTNeoXForCausalLM
+    from transformers.models.gpt2.modeling_gpt2 import GPT2LMHeadModel
+
+    def step_for(model):
+        ids, mask = torch.tensor([[1, 4, 5]]), torch.ones(1, 3, dtype=torch.long)
+        past = model(input_ids=ids, attention_mask=mask, use_cache=True).past_key_values
+        return _ds.for_model(model, past, _pa.install(past, mask, 2, 4))
+
+    assert step_for(_tiny("gpt2")) is not None and step_for(_tiny("llama")) is not None
+    neox = GPTNeoXForCausalLM(GPTNeoXConfig(vocab_size=V, hidden_size=32, num_hidden_layers=1, num_attention_heads=2,
+                                            intermediate_size=64, max_position_embeddings=64)).eval()
+    assert step_for(neox) is None
+    model = _tiny("gpt2")
+    handle = model.transformer.h[0].mlp.register_forward_pre_hook(lambda *a: None)
+    assert step_for(model) is None
+    handle.remove()
+    handle = torch.nn.modules.module.register_module_forward_hook(lambda *a: None)
+    try:
+        assert step_for(model) is None
+    finally:
+        handle.remove()
+    assert step_for(model) is not None
+
+    class Mine(GPT2LMHeadModel):
+        pass
+    assert step_for(Mine(model.config).eval()) is None
+    model.transformer.h[0].mlp.c_fc = torch.nn.Sequential(model.transformer.h[0].mlp.c_fc)  # an adapter-like wrapper
+    assert step_for(model) is None
+    model = _tiny("gpt2")
+    model.config.reorder_and_upcast_attn = True
+    assert step_for(model) is None
+    model = _tiny("llama")
+    model.model.layers[0].mlp.act_fn = torch.nn.Sequential(model.model.layers[0].mlp.act_fn)
+    assert step_for(model) is None
+
+
+def test_own_tanh_gelu_is_the_published_formula():
+    # Hendrycks and Gimpel 2016, "Gaussian Error Linear Units", eq. for the tanh approximation:
+    # 0.5 x (1 + tanh(sqrt(2/pi) (x + 0.044715 x^3))), evaluated here in float64 with numpy
+    x = torch.randn(100_000, generator=torch.Generator().manual_seed(0)) * 3
+    xd = x.double().numpy()
+    ref = 0.5 * xd * (1 + np.tanh(np.sqrt(2 / np.pi) * (xd + 0.044715 * xd ** 3)))
+    got = _ds._gelu_tanh(x.clone()).double().numpy()
+    assert np.abs(got - ref).max() < 2e-6  # float32 round-off on values up to |x| ~ 15
+
+
+@pytest.mark.parametrize("activation", ["gelu_new", "gelu_pytorch_tanh", "relu", "gelu"])
+def test_own_decoding_step_draws_what_the_model_forward_draws(activation, monkeypatch):
+    # the tanh GELUs run as x * sigmoid(2 z) (the same function, Hendrycks and Gimpel 2016, in fewer
+    # passes); other activations run the model's own module. Either way: same tokens, log-probs to
+    # float32 round-off, on a wider model than _tiny (4 heads, 2 layers)
+    torch.manual_seed(5)
+    model = build_tiny_model("gpt2", vocab_size=V, layers=2, width=64, heads=4, max_positions=64, seed=3,
+                             pad_token_id=PAD_ID, eos_token_id=EOS_ID, bos_token_id=BOS_ID)
+    model.config.activation_function = activation
+    from transformers.activations import ACT2FN
+    for block in model.transformer.h:
+        block.mlp.act = ACT2FN[activation]
+    use = _paths(monkeypatch)
+    out = {}
+    for path in ("own", "shared"):
+        use(path)
+        out[path] = sample(model, TOK, PROMPTS, n=6, max_new_tokens=16, temperature=1.5, seed=2)
+    assert use.steps
+    assert torch.equal(out["own"].reply_tokens, out["shared"].reply_tokens)
+    torch.testing.assert_close(out["own"].token_logprobs, out["shared"].token_logprobs, atol=1e-5, rtol=0)
 
 
 def test_shared_prompt_cache_only_for_cpu_transformers_models_with_stock_layers():
@@ -383,6 +466,7 @@ def test_model_that_bypasses_the_attention_registry_falls_back(monkeypatch):
     for block in model.transformer.h:
         block.attn.config = copy.copy(model.config)
     use = _paths(monkeypatch)
+    use("shared")  # the model's own forward (bonft's own GPT-2 step would not read the attention config)
     fallbacks = []
     real = _kv._prompt_pass
     monkeypatch.setattr(_kv, "_prompt_pass", lambda *a, **k: fallbacks.append(1) or real(*a, **k))

@@ -47,6 +47,31 @@ class _PrefixState:
         self.broken = False
 
 
+def attend(query: torch.Tensor, layer, bias: torch.Tensor, scale: float) -> torch.Tensor:
+    """Attention of one new token per row over [shared prompt; own reply]: query (R, Hq, 1, d) -> (R, Hkv, g, dv).
+
+    ``layer`` holds the prompt's keys and values once per prompt (``pk``, ``pv``: (P, Hkv, Tp, d))
+    and the rows' replies so far (``keys``, ``values``: (R, Hkv, t, d)); ``bias`` (P, 1, 1, Tp) is 0
+    on prompt tokens and -inf on padding; g = Hq / Hkv query heads share a key head. One softmax
+    runs over both parts, so this is the attention over the concatenated cache up to round-off.
+    """
+    R, Hq, _, d = query.shape
+    P, Hkv, Tp, dv = layer.pv.shape
+    n, g = R // P, Hq // Hkv  # samples per prompt, query heads per key head
+
+    def rows(x):  # (P, Hkv, n*g, ...) -> (R, Hkv, g, ...): prompt layout to row layout
+        return x.reshape(P, Hkv, n, g, *x.shape[3:]).transpose(1, 2).reshape(R, Hkv, g, *x.shape[3:])
+
+    def prompts(x):  # (R, Hkv, g, ...) -> (P, Hkv, n*g, ...)
+        return x.reshape(P, n, Hkv, g, *x.shape[3:]).transpose(1, 2).reshape(P, Hkv, n * g, *x.shape[3:])
+
+    q = query.reshape(R, Hkv, g, d) * scale  # (R, Hq, 1, d) -> (R, Hkv, g, d), scaled once
+    s_p = torch.matmul(prompts(q), layer.pk.transpose(-1, -2)).add_(bias)  # (P, Hkv, n*g, Tp)
+    s_r = torch.matmul(q, layer.keys.transpose(-1, -2))  # (R, Hkv, g, t)
+    w = torch.softmax(torch.cat([rows(s_p), s_r], -1), -1)  # (R, Hkv, g, Tp + t): one softmax over both parts
+    return rows(torch.matmul(prompts(w[..., :Tp]), layer.pv)) + torch.matmul(w[..., Tp:], layer.values)
+
+
 try:  # transformers >= 5: caches are lists of layers, attention goes through a registry
     from transformers import AttentionInterface
     from transformers.masking_utils import AttentionMaskInterface, sdpa_mask as _sdpa_mask
@@ -114,22 +139,8 @@ else:
         st.current = None
         st.calls += 1
         R, Hq, _, d = query.shape
-        P, Hkv, Tp, dv = layer.pv.shape
-        n, g = R // P, Hq // Hkv  # samples per prompt, query heads per key head
-        scale = d ** -0.5 if scaling is None else scaling
-
-        def rows(x):  # (P, Hkv, n*g, ...) -> (R, Hkv, g, ...): prompt layout to row layout
-            return x.reshape(P, Hkv, n, g, *x.shape[3:]).transpose(1, 2).reshape(R, Hkv, g, *x.shape[3:])
-
-        def prompts(x):  # (R, Hkv, g, ...) -> (P, Hkv, n*g, ...)
-            return x.reshape(P, n, Hkv, g, *x.shape[3:]).transpose(1, 2).reshape(P, Hkv, n * g, *x.shape[3:])
-
-        q = query.reshape(R, Hkv, g, d) * scale  # (R, Hq, 1, d) -> (R, Hkv, g, d), scaled once
-        s_p = torch.matmul(prompts(q), layer.pk.transpose(-1, -2)).add_(st.bias)  # (P, Hkv, n*g, Tp)
-        s_r = torch.matmul(q, key.transpose(-1, -2))  # (R, Hkv, g, t)
-        w = torch.softmax(torch.cat([rows(s_p), s_r], -1), -1)  # (R, Hkv, g, Tp + t): one softmax over both parts
-        out = rows(torch.matmul(prompts(w[..., :Tp]), layer.pv)) + torch.matmul(w[..., Tp:], value)  # (R, Hkv, g, dv)
-        return out.reshape(R, 1, Hq, dv), None  # (R, Hkv, g, dv) -> (R, 1, Hq, dv), as sdpa returns it
+        out = attend(query, layer, st.bias, d ** -0.5 if scaling is None else scaling)  # (R, Hkv, g, dv)
+        return out.reshape(R, 1, Hq, out.shape[-1]), None  # (R, Hkv, g, dv) -> (R, 1, Hq, dv), as sdpa returns it
 
     def _mask(*args, **kwargs):
         """No mask for our decoding steps (the bias covers padding); sdpa's mask for other threads."""

@@ -28,7 +28,7 @@ from typing import Sequence
 import torch
 import torch.nn.functional as F
 
-from . import _prefix_attn
+from . import _decode_step, _prefix_attn
 from ._gen_inputs import (
     _check_long, _check_model, _check_prompts, _check_temperature, _check_top_p, _left_pad, _model_device, _rng_state, _set_rng_state, _special_ids,
 )
@@ -139,7 +139,9 @@ def _sample_rows(model, ids, mask, *, temperature, top_p, max_new_tokens, pad_id
     pos = _positions(mask)[:, -1]  # (R,) position of each row's last prompt token
     done = torch.zeros(R, dtype=torch.bool, device=ids.device)
     toks, gmask, lps = [], [], []
-    with (_prefix_attn.decoding(model, state) if state is not None else contextlib.nullcontext()) as shared:
+    step = _decode_step.for_model(model, past, state)  # bonft's own forward for stock GPT-2, else None
+    registry = state is not None and step is None  # the model's own forward, calling our attention
+    with (_prefix_attn.decoding(model, state) if registry else contextlib.nullcontext()) as shared:
         for _ in range(max_new_tokens):
             logp = _log_policy(logits, temperature, top_p)  # (R, V)
             nxt = _draw(logp, generator, generators, n)  # (R,)
@@ -155,6 +157,9 @@ def _sample_rows(model, ids, mask, *, temperature, top_p, max_new_tokens, pad_id
                 break
             mask = full[:, :mask.shape[1] + 1]  # (R, Tp + t + 1)
             pos = pos + 1
+            if step is not None:
+                logits = step(nxt, pos)  # (R, V)
+                continue
             try:
                 out = model(input_ids=nxt[:, None], attention_mask=mask, position_ids=pos[:, None],
                             use_cache=True, **{cache_arg: past})
@@ -192,7 +197,10 @@ def sample(
     model's KV cache; each prompt is run once. On transformers models on the CPU with the stock dynamic
     cache and sdpa or eager attention, the n rows of a prompt share one copy of its keys and values, read by
     bonft's own decoding attention (registered under ``"bonft_shared_prefix"`` and switched on only
-    while decoding); other models get the prompt's cache copied to its n rows. A row stops at EOS;
+    while decoding); other models get the prompt's cache copied to its n rows. On a model that is exactly
+    transformers' ``GPT2LMHeadModel`` (stock submodules, no hooks) the decoding steps run bonft's own
+    forward over the same layers and parameters (``bonft/trainer/_decode_step.py``: less Python per step,
+    the tanh GELU in fewer passes; equal to the model's forward to float32 round-off). A row stops at EOS;
     afterwards it gets the pad id, mask 0 and log-prob 0. Prompts are
     tokenized with the tokenizer's own special tokens and left-padded; the
     attention mask and position ids (counted from each row's first real
