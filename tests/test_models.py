@@ -75,6 +75,18 @@ def test_checkpoint_round_trip(arch, tmp_path):
         torch.testing.assert_close(m3(input_ids=ids).logits, other(input_ids=ids).logits, atol=0, rtol=0)
 
 
+def test_saving_draws_no_transformers_bar_and_restores_the_setting(tmp_path, capfd):
+    # `bonft demo --quiet` promises no progress bars; transformers' save_pretrained draws a
+    # "Writing model shards" bar of its own unless its bars are off
+    from transformers.utils import logging as hf_logging
+
+    model = build_tiny_model("gpt2", vocab_size=V, layers=1, width=32, heads=2, seed=2)
+    assert hf_logging.is_progress_bar_enabled()
+    save_model(model, TOK, tmp_path / "ckpt")
+    assert "Writing model shards" not in capfd.readouterr().err
+    assert hf_logging.is_progress_bar_enabled()  # switched back on after the save
+
+
 def test_plain_transformers_directory_loads(tmp_path):
     model = build_tiny_model("gpt2", vocab_size=V, layers=1, width=32, heads=2)
     model.save_pretrained(tmp_path)

@@ -236,15 +236,9 @@ def save_checkpoint(
     if tmp.exists():
         shutil.rmtree(tmp)
     tmp.mkdir()
-    from transformers.utils import logging as hf_logging
+    from .models import _save_weights
 
-    bars = hf_logging.is_progress_bar_enabled()
-    hf_logging.disable_progress_bar()  # no "Writing model shards" bar in the middle of the trainer's bar
-    try:
-        model.save_pretrained(tmp / "model", safe_serialization=True)
-    finally:
-        if bars:
-            hf_logging.enable_progress_bar()
+    _save_weights(model, tmp / "model")
     tokenizer.save_pretrained(tmp / "tokenizer")
     state = {
         "step": int(step),

@@ -193,6 +193,19 @@ def load_model(path: str | os.PathLike, *, device: str | torch.device | None = N
     return model, tokenizer
 
 
+def _save_weights(model, directory: Path) -> None:
+    """``model.save_pretrained(directory)`` (safetensors) without transformers' "Writing model shards" bar."""
+    from transformers.utils import logging as hf_logging
+
+    bars = hf_logging.is_progress_bar_enabled()
+    hf_logging.disable_progress_bar()  # a bar per save would cut into the trainer's bar and --quiet runs
+    try:
+        model.save_pretrained(directory, safe_serialization=True)
+    finally:
+        if bars:
+            hf_logging.enable_progress_bar()
+
+
 def save_model(model, tokenizer, path: str | os.PathLike) -> Path:
     """Write a bonft checkpoint (``path/model``, ``path/tokenizer``, safetensors) and return ``path``.
 
@@ -206,7 +219,7 @@ def save_model(model, tokenizer, path: str | os.PathLike) -> Path:
     path.parent.mkdir(parents=True, exist_ok=True)
     tmp = Path(tempfile.mkdtemp(prefix=f".{path.name}.tmp-", dir=path.parent))
     try:
-        model.save_pretrained(tmp / "model", safe_serialization=True)
+        _save_weights(model, tmp / "model")
         tokenizer.save_pretrained(tmp / "tokenizer")
         if path.exists():
             old = path.with_name(f".{path.name}.old-{os.getpid()}")
