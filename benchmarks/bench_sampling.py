@@ -12,7 +12,11 @@ shapes (every sampler that runs the model's own forward pays at least these matm
 ceiling / generate is the largest ratio any such sampler can reach, and bonft / ceiling says how
 much of the rest (attention, norms, activations, the draw, Python) is left.
 
-    python benchmarks/bench_sampling.py [--reps 3] [--skip-memory]
+On GPT-2 and Llama models the sampler's decoding steps run bonft's own forward
+(``bonft/trainer/_decode_step.py``); ``--arch llama`` runs the speed rows on Llama models of the
+same sizes (rotary positions, RMSNorm, gated MLP), the memory row stays on GPT-2.
+
+    python benchmarks/bench_sampling.py [--reps 3] [--skip-memory] [--arch gpt2|llama]
 """
 from __future__ import annotations
 
@@ -47,11 +51,11 @@ class NoEos:
         return self._tok.decode(*a, **kw)
 
 
-def build(shape: str):
+def build(shape: str, arch: str = "gpt2"):
     tok = build_tokenizer()
     layers, width, heads = {"tiny": (2, 128, 4), "6x384": (6, 384, 6)}[shape]
     torch.manual_seed(0)
-    model = build_tiny_model("gpt2", vocab_size=len(tok), pad_token_id=tok.pad_token_id, eos_token_id=tok.eos_token_id,
+    model = build_tiny_model(arch, vocab_size=len(tok), pad_token_id=tok.pad_token_id, eos_token_id=tok.eos_token_id,
                              bos_token_id=tok.bos_token_id, layers=layers, width=width, heads=heads, max_positions=160)
     model.eval()
     return model, tok
@@ -108,8 +112,8 @@ def linear_floor(model, tok, prompts, n, T, reps=5) -> float:
     return prompt + (T - 1) * step
 
 
-def speed(shape, P, n, T, reps):
-    model, tok = build(shape)
+def speed(shape, P, n, T, reps, arch="gpt2"):
+    model, tok = build(shape, arch)
     prompts = [ex.prompt for ex in get_task("ledger").split(n_train=P, n_eval=1, seed=0)[0][:P]]
     times = {"generate": [], "bonft": []}
     run_generate(model, tok, prompts[:1], 2, 2, 0), run_bonft(model, tok, prompts[:1], 2, 2, 0)  # warm-up
@@ -150,19 +154,21 @@ def main() -> None:
     ap = argparse.ArgumentParser()
     ap.add_argument("--reps", type=int, default=3)
     ap.add_argument("--skip-memory", action="store_true")
+    ap.add_argument("--arch", default="gpt2", choices=("gpt2", "llama"),
+                    help="model family of the speed rows (issue 11's goals are stated on gpt2)")
     ap.add_argument("--memory-child", default=None, help=argparse.SUPPRESS)
     args = ap.parse_args()
     if args.memory_child:
         return memory_child(args.memory_child)
     torch.set_num_threads(1)
-    print(f"load average at start: {os.getloadavg()[0]:.2f}")
+    print(f"load average at start: {os.getloadavg()[0]:.2f}; speed rows on {args.arch}")
     print("ceiling: samples/s if only the model's linear layers ran (no attention, norms, activations, sampling,")
     print("Python); ceiling / generate is the largest ratio any sampler that runs the model's own layers can reach.")
     print(f"{'model':6s} {'prompts x n x tokens':>22s} {'generate/s':>11s} {'bonft/s':>9s} {'ratio':>6s}  (goal >= 1.5x)"
           f" {'ceiling/s':>10s} {'ceiling/generate':>17s} {'bonft/ceiling':>14s}")
     for shape, P, n, T in (("tiny", 16, 16, 8), ("tiny", 8, 16, 64), ("6x384", 8, 16, 16), ("6x384", 8, 16, 64),
                            ("6x384", 1, 64, 64)):
-        g, b, c = speed(shape, P, n, T, args.reps)
+        g, b, c = speed(shape, P, n, T, args.reps, args.arch)
         print(f"{shape:6s} {f'{P} x {n} x {T}':>22s} {g:11.1f} {b:9.1f} {b / g:5.2f}x"
               f"{'':15s} {c:10.1f} {c / g:16.2f}x {b / c:13.2f}")
     if not args.skip_memory:
