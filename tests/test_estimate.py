@@ -82,6 +82,20 @@ def test_pass_at_k_large_n_matches_chen_stable_product():
     assert got == pytest.approx(want, rel=1e-10)
 
 
+def test_pass_at_k_long_vectors_match_chen_and_name_the_bad_element():
+    # vectors longer than the block size (2**15) go through the block scan and the (pool size, c) table;
+    # reference: Chen et al. 2021 eq. (1) with exact integers on every distinct (n, c)
+    rng = np.random.default_rng(0)
+    n = rng.choice([16, 64, 256], 80_000)
+    c = rng.integers(0, n + 1)
+    got = pass_at_k(n, c, k=8)
+    want = {(a, b): float(chen_pass_at_k(a, b, 8)) for a, b in set(zip(n.tolist(), c.tolist()))}
+    np.testing.assert_allclose(got, [want[a, b] for a, b in zip(n.tolist(), c.tolist())], rtol=1e-12, atol=1e-15)
+    c[70_000] = n[70_000] + 1  # in the third block
+    with pytest.raises(ValueError, match=rf"c must be <= n \(n={n[70_000]}\), got c={n[70_000] + 1}"):
+        pass_at_k(n, c, k=8)
+
+
 def test_pass_at_k_rejects_bad_input():
     with pytest.raises(ValueError, match=r"k must be <= n \(n=8\), got k=16"):
         pass_at_k(8, 2, k=16)
