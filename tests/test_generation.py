@@ -602,7 +602,7 @@ def test_draw_never_picks_a_token_of_zero_mass(monkeypatch):
     # -inf log-probs (top-p's cut) have zero mass: never drawn, whatever the uniform, at the edges
     # u = 2^-53 (the least 1 - torch.rand can be) and u = 1 included; interior uniforms land in the
     # interval of their token (inverse transform sampling; common practice)
-    from bonft.trainer.generation import _draw
+    from bonft.trainer._policy import _draw
 
     logp = torch.log(torch.tensor([[0.0, 0.5, 0.0, 0.25, 0.25, 0.0]]))  # mass on tokens 1, 3, 4
     for u, want in ((2.0 ** -53, 1), (0.5, 1), (0.5 + 1e-12, 3), (0.75, 3), (0.75 + 1e-12, 4), (1.0, 4)):

@@ -26,9 +26,9 @@ from dataclasses import dataclass
 from typing import Sequence
 
 import torch
-import torch.nn.functional as F
 
 from . import _decode_step, _prefix_attn
+from ._policy import _draw, _log_policy
 from ._gen_inputs import (
     _check_long, _check_model, _check_prompts, _check_temperature, _check_top_p, _left_pad, _model_device, _rng_state, _set_rng_state, _special_ids,
 )
@@ -73,51 +73,7 @@ class Samples:
         return self.reply_valid.sum(-1)
 
 
-# ---------------------------------------------------------------- the sampling policy
-
-
-def _log_policy(logits: torch.Tensor, temperature: float, top_p: float) -> torch.Tensor:
-    """(..., V) logits -> (..., V) log pi_T, restricted to the top-p nucleus and renormalised.
-
-    The nucleus is the smallest set of most likely tokens whose pi_T mass
-    reaches ``top_p`` (the most likely token is always kept); the others get -inf.
-    """
-    logp = F.log_softmax(logits.float() / temperature, dim=-1)
-    if top_p >= 1.0:
-        return logp
-    with torch.no_grad():
-        sorted_logp, order = logp.sort(dim=-1, descending=True)
-        mass_before = sorted_logp.exp().cumsum(-1) - sorted_logp.exp()  # mass of strictly more likely tokens
-        drop_sorted = mass_before >= top_p
-        drop = torch.zeros_like(drop_sorted).scatter(-1, order, drop_sorted)
-    return F.log_softmax(logp.masked_fill(drop, float("-inf")), dim=-1)
-
-
 # ---------------------------------------------------------------- sampling
-
-
-@torch.no_grad()
-def _draw(logp: torch.Tensor, generator, generators, n: int) -> torch.Tensor:
-    """One token per row from (R, V) log-probs: an inverse-CDF lookup of one uniform per row.
-
-    Token i is drawn when u falls in (c_{i-1}, c_i], c the cumulative sum of the
-    probabilities, normalised so that c_V = 1; tokens of zero mass are never drawn. The sum
-    and u are float64: a token's mass is then off by at most ~V * 1e-16 beyond the float32
-    round-off of its own probability, where a float32 sum could be off by ~V * 6e-8. One
-    uniform per row costs far less than ``torch.multinomial``, which draws an exponential
-    per (row, token) (``benchmarks/bench_sampling.py``). Uniforms come from ``generator``
-    (torch's global RNG when None), or with ``generators`` (one per prompt, each owning
-    ``n`` consecutive rows) from each prompt's own generator, so a prompt's samples do not
-    depend on which prompts share the batch.
-    """
-    cdf = logp.exp().double().cumsum(-1)  # (R, V)
-    cdf = cdf / cdf[:, -1:]  # last entry exactly 1
-    if generators is None:
-        u = 1.0 - torch.rand(logp.shape[0], generator=generator, device=logp.device, dtype=torch.float64)
-    else:
-        u = torch.cat([1.0 - torch.rand(n, generator=g, device=logp.device, dtype=torch.float64) for g in generators])
-    idx = torch.searchsorted(cdf, u[:, None]).squeeze(-1)  # (R,) first token whose cumulative mass reaches u
-    return idx.clamp(max=logp.shape[-1] - 1)
 
 
 @torch.no_grad()  # sampling never builds a graph; training log-probs come from sequence_logprobs
