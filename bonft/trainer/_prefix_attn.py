@@ -14,11 +14,13 @@ with one softmax over both parts, which is exactly the attention over the concat
 (up to float32 round-off). ``bias`` is 0 on prompt tokens and -inf on left padding; the
 generated positions are never masked, so transformers' own mask is not needed.
 
-It plugs into ``transformers`` through its public attention registry: for the decoding steps
-the model's attention implementation is switched to ours and restored afterwards. Every call
-is checked (the keys must be the very tensor our cache layer returned, with one query); a
-model that does not route its attention through the registry is detected after the first
-step (:class:`PrefixUnsupported`) and the caller falls back to the stock cache.
+:func:`attend` is that computation. bonft's own decoding step (``_decode_step``, stock GPT-2 and
+Llama) calls it directly. Every other model reaches it through transformers' public attention
+registry: for the decoding steps the model's attention implementation is switched to ours and
+restored afterwards. Every call is checked (the keys must be the very tensor our cache layer
+returned, with one query); a model that does not route its attention through the registry is
+detected after the first step (:class:`PrefixUnsupported`) and the caller falls back to the
+stock cache.
 """
 from __future__ import annotations
 
