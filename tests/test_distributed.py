@@ -243,6 +243,21 @@ def test_a_one_rank_group_binds_its_store_to_loopback_only(monkeypatch):
     assert not dist.is_initialized()
 
 
+def test_session_leaves_without_the_barrier_when_the_body_failed(monkeypatch):
+    # on an error path the peers may never reach shutdown's barrier: session must not wait there
+    import bonft.trainer.distributed as d
+
+    calls = []
+    monkeypatch.setattr(d, "shutdown", lambda ctx, **kw: calls.append(kw))
+    monkeypatch.delenv("WORLD_SIZE", raising=False)
+    with pytest.raises(KeyError):
+        with d.session():
+            raise KeyError("boom")
+    with d.session():
+        pass
+    assert calls == [{"wait_for_peers": False}, {}]
+
+
 # ----------------------------------------------------------------------------- real process groups
 def reference_weights() -> dict:
     """One process, plain torch: full-batch mean of the leave-one-out REINFORCE loss (Kool et al. 2019)."""

@@ -58,7 +58,7 @@ def train(cfg: TrainConfig, *, resume: bool = False, progress: bool = True) -> d
     """
     from tqdm.auto import tqdm
 
-    from .distributed import shutdown, step_guard, wrap_model
+    from .distributed import shutdown, step_guard, unwrap_model, wrap_model
 
     if not isinstance(cfg, TrainConfig):
         raise TypeError(f"cfg must be a TrainConfig, got {type(cfg).__name__}")
@@ -104,6 +104,7 @@ def train(cfg: TrainConfig, *, resume: bool = False, progress: bool = True) -> d
     bar.close()
     summary = _finish(run, progress)
     if owns_group:
+        run.model = unwrap_model(run.model)  # no DDP wrapper may outlive the group (see shutdown)
         shutdown(run.ctx)
     return summary
 
