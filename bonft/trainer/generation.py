@@ -95,7 +95,7 @@ def _sample_rows(model, ids, mask, *, temperature, top_p, max_new_tokens, pad_id
     pos = _positions(mask)[:, -1]  # (R,) position of each row's last prompt token
     done = torch.zeros(R, dtype=torch.bool, device=ids.device)
     toks, gmask, lps = [], [], []
-    step = _decode_step.for_model(model, past, state)  # bonft's own forward for stock GPT-2, else None
+    step = _decode_step.for_model(model, past, state)  # bonft's own forward for stock GPT-2 / Llama, else None
     registry = state is not None and step is None  # the model's own forward, calling our attention
     with (_prefix_attn.decoding(model, state) if registry else contextlib.nullcontext()) as shared:
         for _ in range(max_new_tokens):
@@ -154,9 +154,10 @@ def sample(
     cache and sdpa or eager attention, the n rows of a prompt share one copy of its keys and values, read by
     bonft's own decoding attention (registered under ``"bonft_shared_prefix"`` and switched on only
     while decoding); other models get the prompt's cache copied to its n rows. On a model that is exactly
-    transformers' ``GPT2LMHeadModel`` (stock submodules, no hooks) the decoding steps run bonft's own
-    forward over the same layers and parameters (``bonft/trainer/_decode_step.py``: less Python per step,
-    the tanh GELU in fewer passes; equal to the model's forward to float32 round-off). A row stops at EOS;
+    transformers' ``GPT2LMHeadModel`` or ``LlamaForCausalLM`` (stock submodules, no hooks) the decoding
+    steps run bonft's own forward over the same layers and parameters (``bonft/trainer/_decode_step.py``:
+    less Python per step, GPT-2's tanh GELU in fewer passes; equal to the model's forward to float32
+    round-off). A row stops at EOS;
     afterwards it gets the pad id, mask 0 and log-prob 0. Prompts are
     tokenized with the tokenizer's own special tokens and left-padded; the
     attention mask and position ids (counted from each row's first real
