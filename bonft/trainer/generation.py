@@ -111,11 +111,11 @@ def _sample_rows(model, ids, mask, *, temperature, top_p, max_new_tokens, pad_id
                 done = done | (live & (nxt == eos_id))
             if bool(done.all()) or len(toks) == max_new_tokens:
                 break
-            mask = full[:, :mask.shape[1] + 1]  # (R, Tp + t + 1)
             pos = pos + 1
-            if step is not None:
+            if step is not None:  # the shared-prompt bias stands in for the mask
                 logits = step(nxt, pos)  # (R, V)
                 continue
+            mask = full[:, :mask.shape[1] + 1]  # (R, Tp + t + 1)
             try:
                 out = model(input_ids=nxt[:, None], attention_mask=mask, position_ids=pos[:, None],
                             use_cache=True, **{cache_arg: past})
