@@ -313,7 +313,7 @@ def _gqa_llama():
 def _paths(monkeypatch):
     """Switches between the four ways the sampler can decode; all must draw the same.
 
-    own: bonft's decoding step (stock GPT-2 only) on the shared-prompt cache; shared: the model's own
+    own: bonft's decoding step (stock GPT-2 and Llama) on the shared-prompt cache; shared: the model's own
     forward calling the shared-prompt attention through the registry; reserved: the prompt cache copied
     to the n rows with room reserved; stock: transformers' cache grown by torch.cat.
     """
@@ -338,7 +338,7 @@ _SUPPORTED, _DYNAMIC, _FOR_MODEL = _pa.supported, _kv._DynamicLayer, _ds.for_mod
 
 @pytest.mark.parametrize("arch", ["gpt2", "llama", "llama-gqa"])
 def test_kv_cache_paths_draw_the_same(arch, monkeypatch):
-    # bonft's own GPT-2 decoding step, the shared-prompt cache (one copy of each prompt for its n rows,
+    # bonft's own decoding step, the shared-prompt cache (one copy of each prompt for its n rows,
     # _prefix_attn) under the model's own forward, the reserved cache and transformers' stock cache grown
     # by torch.cat are speed changes only: same seed -> same tokens, log-probs equal to float32 round-off,
     # across prompts of different lengths (left padding), EOS, chunks and top-p.
