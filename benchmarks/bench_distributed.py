@@ -33,9 +33,9 @@ def worker(args: argparse.Namespace) -> None:
     torch.set_num_threads(1)
     from bonft.trainer.distributed import (global_mean_scale, init_from_env, prompt_seed, reduce_metrics, sample_per_prompt,
                                    shard_bounds, shutdown, unwrap_model, wrap_model)
-    from bonft.losses import reinforce_loss
+    from bonft.objectives.losses import reinforce_loss
     from bonft.trainer.models import build_tiny_model
-    from bonft.trainer.generation import sequence_logprobs
+    from bonft.generation.sampling import sequence_logprobs
     from bonft.tasks import build_tokenizer
 
     ctx = init_from_env(device="cpu", timeout_s=120)

@@ -24,8 +24,8 @@ import time
 
 import torch
 
-from bonft.credit import bon_rl_credit
-from bonft.losses import (
+from bonft.objectives.credit import bon_rl_credit
+from bonft.objectives.losses import (
     bon_rl_loss, bon_sft_loss, nll_loss, pass_at_k_loss, policy_gradient_loss, reinforce_loss,
 )
 

@@ -18,7 +18,7 @@ import itertools
 import numpy as np
 import torch
 
-from bonft._objcheck_lm import transformer_check
+from bonft.objcheck.transformer import transformer_check
 from bonft.objcheck import _resolve_target, builtin, check_objective
 from bonft.trainer.models import build_tiny_model
 

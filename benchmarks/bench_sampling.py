@@ -13,7 +13,7 @@ ceiling / generate is the largest ratio any such sampler can reach, and bonft / 
 much of the rest (attention, norms, activations, the draw, Python) is left.
 
 On GPT-2 and Llama models the sampler's decoding steps run bonft's own forward
-(``bonft/trainer/_decode_step.py``); ``--arch llama`` runs the speed rows on Llama models of the
+(``bonft/generation/decode_step.py``); ``--arch llama`` runs the speed rows on Llama models of the
 same sizes (rotary positions, RMSNorm, gated MLP), the memory row stays on GPT-2.
 
     python benchmarks/bench_sampling.py [--reps 3] [--skip-memory] [--arch gpt2|llama]
@@ -32,7 +32,7 @@ import types
 import torch
 
 from bonft.tasks import build_tokenizer, get_task
-from bonft.trainer.generation import sample
+from bonft.generation.sampling import sample
 from bonft.trainer.models import build_tiny_model
 
 

@@ -19,9 +19,9 @@ import os
 import numpy as np
 import torch
 
-from bonft.credit import bon_rl_credit
+from bonft.objectives.credit import bon_rl_credit
 from bonft.estimate import bon_at_k_per_prompt
-from bonft.vote_estimate import vote_at_k_per_prompt, vote_credit, weighted_vote_credit
+from bonft.strategies.estimators import vote_at_k_per_prompt, vote_credit, weighted_vote_credit
 
 from _timing import min_time
 

@@ -17,7 +17,7 @@ import time
 import torch
 
 from bonft.trainer.config import from_dict
-from bonft.trainer.generation import sample
+from bonft.generation.sampling import sample
 from bonft.trainer.loop import _one_step, build_run, make_optimizer
 
 

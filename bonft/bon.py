@@ -34,7 +34,7 @@ from typing import Any
 
 import torch
 
-from bonft._checks import (
+from bonft._core.checks import (
     as_float_array,
     check_finite,
     check_int,
@@ -43,8 +43,8 @@ from bonft._checks import (
     check_probs,
     is_tensor,
 )
-from bonft._passk import pass_at_k_prob
-from bonft._ties import first_of_group, group_ids
+from bonft._core.passk import pass_at_k_prob
+from bonft._core.ties import first_of_group, group_ids
 
 __all__ = [
     "softmax_policy",

@@ -34,8 +34,8 @@ from typing import Any, Iterable
 
 import numpy as np
 
-from bonft._checks import as_float_array
-from bonft._jsonl import decode_utf8, parse_object
+from bonft._core.checks import as_float_array
+from bonft._core.jsonl import decode_utf8, parse_object
 
 __all__ = ["SampleTable", "DuplicateRowsWarning", "read_samples", "write_samples", "group_pools", "temperatures_of"]
 

@@ -9,7 +9,7 @@ property tests of your own verifier; and :mod:`bonft.verifiers.probes`:
 For objectives: :func:`check_objective` (:mod:`bonft.objcheck`), its :class:`ObjectiveReport` and
 :class:`ToyPolicy`: is your credit an unbiased gradient of the target it claims?
 """
-from .verifiers.testkit import (  # noqa: F401
+from bonft.verifiers.testkit import (  # noqa: F401
     VerifierReport,
     check_verifier,
     prompts,
@@ -18,7 +18,7 @@ from .verifiers.testkit import (  # noqa: F401
     roc_auc,
     sample_pools,
 )
-from .verifiers.probes import PROBES, CodeTestsReport, probe_code_tests  # noqa: F401
+from bonft.verifiers.probes import PROBES, CodeTestsReport, probe_code_tests  # noqa: F401
 
 __all__ = ["check_objective", "ObjectiveReport", "ToyPolicy", "check_verifier", "read_examples", "VerifierReport", "roc_auc", "prompts", "responses", "sample_pools",
            "probe_code_tests", "CodeTestsReport", "PROBES"]
@@ -27,7 +27,7 @@ __all__ = ["check_objective", "ObjectiveReport", "ToyPolicy", "check_verifier", 
 def __getattr__(name: str):
     """check_objective, ObjectiveReport, ToyPolicy load torch: import them on first use (PEP 562)."""
     if name in ("check_objective", "ObjectiveReport", "ToyPolicy"):
-        from . import objcheck
+        from bonft import objcheck
 
         return getattr(objcheck, name)
     raise AttributeError(f"module {__name__!r} has no attribute {name!r}")

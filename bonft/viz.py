@@ -19,7 +19,7 @@ from typing import Sequence
 
 import numpy as np
 
-from .estimate import CurveSummary
+from bonft.estimate import CurveSummary
 
 __all__ = ["plot_bon_curves", "plot_verifier_check", "plot_plan_heatmap", "plot_plan_curves", "plot_evaluations", "plot_comparison", "plot_objective_check",
            "plot_strategy_curves"]
@@ -313,7 +313,7 @@ def plot_objective_check(report, path) -> str:
 
 
 def plot_strategy_curves(curves: dict, path, *, title: str | None = None) -> str:
-    """V_k against k for each strategy of each labelled :class:`bonft.strategy_curves.StrategyCurves`.
+    """V_k against k for each strategy of each labelled :class:`bonft.strategies.curves.StrategyCurves`.
 
     One panel per label (a temperature, a policy), one line per strategy with its bootstrap band
     (``bonft estimate --strategy ... --plot``, ``bonft plan --strategy ... --plot-dir``).

@@ -50,7 +50,7 @@ def simulate(regime: str, *, prompts: int = 200, n: int = 64, seed: int = 0) -> 
 
 def main(folder: str, figure: str | None = None) -> None:
     from bonft.io import group_pools, read_samples
-    from bonft.strategy_curves import compare_strategies
+    from bonft.strategies.curves import compare_strategies
     from bonft.viz import plot_strategy_curves
 
     os.makedirs(folder, exist_ok=True)

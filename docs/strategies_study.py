@@ -28,7 +28,7 @@ import sys
 
 from bonft.estimate import bootstrap_ci
 from bonft.io import group_pools, read_samples
-from bonft.vote_estimate import strategy_at_k
+from bonft.strategies.estimators import strategy_at_k
 
 NAMES = ["best-of-k", "majority", "weighted", "pass"]
 def main(root: str, trained: list[str]) -> None:

@@ -3,7 +3,7 @@ import numpy as np
 import pytest
 import torch
 
-from bonft._checks import check_finite, check_items, check_k, check_ks, check_probs
+from bonft._core.checks import check_finite, check_items, check_k, check_ks, check_probs
 
 
 def test_check_k_messages():
@@ -30,7 +30,7 @@ def test_check_finite_and_probs():
 
 
 def test_bool_nonnegative_and_binary_messages():
-    from bonft._checks import check_binary, check_bool, check_nonnegative
+    from bonft._core.checks import check_binary, check_bool, check_nonnegative
 
     assert check_bool("return_info", True) is True and check_nonnegative("anchor_weight", 0) == 0.0
     with pytest.raises(TypeError, match=r"return_info must be a bool, got int 1"):
@@ -46,7 +46,7 @@ def test_bool_nonnegative_and_binary_messages():
 
 
 def test_check_real_one_policy_for_every_real_argument():
-    from bonft._checks import check_real
+    from bonft._core.checks import check_real
 
     assert check_real("x", 3) == 3.0 and check_real("x", 0.5, min=0.0, max=1.0) == 0.5
     with pytest.raises(TypeError, match=r"x must be a real number, got bool True"):

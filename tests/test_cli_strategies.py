@@ -113,7 +113,7 @@ def test_null_answers_vote_alone(tmp_path):
     f.write_text("\n".join(json.dumps(r) for r in rows) + "\n")
     _, s, r, a = group_pools(read_samples(f), with_answers=True)
     assert len(set(a[0])) == 3
-    from bonft.vote_estimate import vote_at_k_per_prompt
+    from bonft.strategies.estimators import vote_at_k_per_prompt
 
     assert abs(vote_at_k_per_prompt(a, r, ks=[2])[0, 0] - 1 / 3) < 1e-15
 

@@ -17,7 +17,7 @@ import torch
 from hypothesis import given, settings, strategies as st
 
 from bonft.bon import bon_value, log_bon_distribution, softmax_policy
-from bonft.credit import bon_rl_credit, pass_at_k_credit, pool_value, reinforce_credit, bon_sft_credit
+from bonft.objectives.credit import bon_rl_credit, pass_at_k_credit, pool_value, reinforce_credit, bon_sft_credit
 from bonft.estimate import bon_at_k
 
 TOL = 1e-10
@@ -185,7 +185,7 @@ def test_pass_at_k_credit_unbiased_and_positive_only_estimand(cfg):
     est = expected_estimate(theta, Y, pass_at_k_credit(c, k=k))
     assert np.abs(est - g).max() < TOL, (V, n, k, est, g)
     np.testing.assert_allclose(pass_at_k_credit(c, k=k), bon_rl_credit(c, c, k=k), atol=1e-13)
-    # positive_only (derived in bonft.credit.pass_at_k_credit): k < n estimates
+    # positive_only (derived in bonft.objectives.credit.pass_at_k_credit): k < n estimates
     # grad[(k/(k+1)) pass@(k+1)] = (1-p) grad pass@k; k = n estimates grad pass@k.
     if k < n:
         target = exact_grad(lambda th: k / (k + 1) * pass_at_k_exact(th, good, k + 1), theta)

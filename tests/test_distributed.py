@@ -25,7 +25,7 @@ from hypothesis import strategies as st
 from bonft.trainer.distributed import (DistContext, PeerError, all_gather_objects, barrier, broadcast_object, derive_seed,
                                gather_objects, global_mean_scale, init_from_env, prompt_seed, reduce_metrics,
                                shard_bounds, shard_prompts, shutdown, unwrap_model, wrap_model)
-from bonft.losses import reinforce_loss
+from bonft.objectives.losses import reinforce_loss
 
 SCRIPTS = Path(__file__).parent / "dist_scripts"
 sys.path.insert(0, str(SCRIPTS))
@@ -352,7 +352,7 @@ def tiny_lm():
 
 def test_a_prompts_samples_do_not_depend_on_the_other_prompts_in_the_call(tiny_lm):
     from bonft.trainer.distributed import sample_per_prompt
-    from bonft.trainer.generation import sequence_logprobs
+    from bonft.generation.sampling import sequence_logprobs
 
     model, tok = tiny_lm
     prompts = ["a+b=", "long prompt 12+30=", "x"]

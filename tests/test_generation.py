@@ -1,4 +1,4 @@
-"""Tests of bonft.trainer.generation: the decoding loop and the training forward pass.
+"""Tests of bonft.generation.sampling: the decoding loop and the training forward pass.
 
 References used below:
 - exact next-token law softmax(logits / T) of a model whose logits are a fixed
@@ -17,7 +17,7 @@ import torch
 from scipy import stats
 
 from bonft.trainer.models import build_tiny_model
-from bonft.trainer.generation import Samples, encode_responses, sample, sequence_logprobs
+from bonft.generation.sampling import Samples, encode_responses, sample, sequence_logprobs
 from bonft.tasks.tokenizer import BOS_ID, EOS_ID, PAD_ID, build_tokenizer, char_vocab
 
 TOK = build_tokenizer()
@@ -329,9 +329,9 @@ def _paths(monkeypatch):
     return use
 
 
-import bonft.trainer._decode_step as _ds  # noqa: E402
-import bonft.trainer._kvcache as _kv  # noqa: E402
-import bonft.trainer._prefix_attn as _pa  # noqa: E402
+import bonft.generation.decode_step as _ds  # noqa: E402
+import bonft.generation.kvcache as _kv  # noqa: E402
+import bonft.generation.prefix_attention as _pa  # noqa: E402
 
 _SUPPORTED, _DYNAMIC, _FOR_MODEL = _pa.supported, _kv._DynamicLayer, _ds.for_model
 
@@ -602,7 +602,7 @@ def test_draw_never_picks_a_token_of_zero_mass(monkeypatch):
     # -inf log-probs (top-p's cut) have zero mass: never drawn, whatever the uniform, at the edges
     # u = 2^-53 (the least 1 - torch.rand can be) and u = 1 included; interior uniforms land in the
     # interval of their token (inverse transform sampling; common practice)
-    from bonft.trainer._policy import _draw
+    from bonft.generation.policy import _draw
 
     logp = torch.log(torch.tensor([[0.0, 0.5, 0.0, 0.25, 0.25, 0.0]]))  # mass on tokens 1, 3, 4
     for u, want in ((2.0 ** -53, 1), (0.5, 1), (0.5 + 1e-12, 3), (0.75, 3), (0.75 + 1e-12, 4), (1.0, 4)):

@@ -13,9 +13,9 @@ import torch
 from hypothesis import given, settings, strategies as st
 
 from bonft.bon import bon_value, log_bon_distribution, softmax_policy
-from bonft.credit import bon_rl_credit, bon_sft_credit
+from bonft.objectives.credit import bon_rl_credit, bon_sft_credit
 from bonft.estimate import bon_at_k_per_prompt
-from bonft.losses import bon_rl_loss, bon_sft_loss, nll_loss, pass_at_k_loss, reinforce_loss
+from bonft.objectives.losses import bon_rl_loss, bon_sft_loss, nll_loss, pass_at_k_loss, reinforce_loss
 
 TOL = 1e-10
 
@@ -277,7 +277,7 @@ def test_default_path_reads_no_tensor_value_on_the_host():
     # (O(B n) checks on host arrays only); check_tokens=True is the opt-in that may.
     from torch.overrides import TorchFunctionMode
 
-    from bonft.losses import policy_gradient_loss
+    from bonft.objectives.losses import policy_gradient_loss
 
     reads = {torch.Tensor.__bool__, torch.Tensor.__float__, torch.Tensor.__int__, torch.Tensor.item,
              torch.Tensor.tolist, torch.Tensor.numpy, torch.Tensor.nonzero, torch.nonzero}
@@ -313,8 +313,8 @@ def test_default_path_reads_no_tensor_value_on_the_host():
 
 def test_named_losses_are_their_credit_through_the_core():
     # each named loss = policy_gradient_loss(logprobs, <its credit function>(...)), values and gradients
-    from bonft.credit import pass_at_k_credit, reinforce_credit
-    from bonft.losses import policy_gradient_loss
+    from bonft.objectives.credit import pass_at_k_credit, reinforce_credit
+    from bonft.objectives.losses import policy_gradient_loss
 
     lp0, mask, _ = token_batch(B=3, n=5, T=4)
     rng = np.random.default_rng(1)

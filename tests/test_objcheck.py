@@ -147,7 +147,7 @@ def test_sft_credit_flagged_and_bias_shrinks_with_n():
 
 
 def test_positive_only_estimates_a_shrunk_pass_gradient():
-    # bonft.credit derives: positive-only credit has mean (1 - p) grad pass@k for k < n
+    # bonft.objectives.credit derives: positive-only credit has mean (1 - p) grad pass@k for k < n
     pols = [rand_policy(s, binary=True) for s in range(3)]
     rep = check_objective(builtin.pass_at_k_positive_only, target="pass_at_k", k=2, n=4, policies=pols,
                           transformer=False)

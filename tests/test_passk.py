@@ -12,8 +12,8 @@ import numpy as np
 import pytest
 import torch
 
-from bonft._passk import log_miss, pass_at_k_counts
-from bonft._ustat import count_tables, rank_weights
+from bonft._core.passk import log_miss, pass_at_k_counts
+from bonft._core.ustat import count_tables, rank_weights
 from bonft.estimate import pass_at_k
 
 REL = 1e-12  # issue 14: ~1e-12 relative for any n in int64

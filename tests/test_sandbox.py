@@ -13,8 +13,8 @@ import numpy as np
 import pytest
 
 from bonft.verifiers import CodeRunner, RunResult
-from bonft.verifiers._procs import pids_of as _pids_of
-from bonft.verifiers.sandbox import extract_code
+from bonft.verifiers.sandbox.procs import pids_of as _pids_of
+from bonft.verifiers.sandbox.runner import extract_code
 
 ROOT = os.geteuid() == 0
 OUTSIDE = "/tmp/bonft_sandbox_escape_test.txt"

@@ -186,7 +186,7 @@ def test_the_candidate_cannot_reach_into_the_tests_process():
 
 
 def test_wire_rebuilds_plain_values_and_refuses_anything_else():
-    """The strict decoder of the pipe protocol (bonft/verifiers/_wire.py), in process.
+    """The strict decoder of the pipe protocol (bonft/verifiers/sandbox/wire.py), in process.
 
     Round trips follow the Python docs: float.hex/float.fromhex are exact (incl. inf, nan),
     hex(int) has no digit limit. RFC 8259 section 6: NaN and Infinity are not JSON, so the
@@ -196,7 +196,7 @@ def test_wire_rebuilds_plain_values_and_refuses_anything_else():
     import fractions
     import math
 
-    from bonft.verifiers._wire import WireClosed, WireError, wire_decode, wire_encode, wire_recv, wire_send
+    from bonft.verifiers.sandbox.wire import WireClosed, WireError, wire_decode, wire_encode, wire_recv, wire_send
 
     def no_ref(obj):
         raise TypeError(type(obj).__name__)
@@ -281,7 +281,7 @@ def test_wire_round_trip_and_strictness_properties():
     WireError, never another exception (common practice for strict decoders: a single error type)."""
     from hypothesis import given
 
-    from bonft.verifiers._wire import WireError, wire_decode, wire_encode
+    from bonft.verifiers.sandbox.wire import WireError, wire_decode, wire_encode
 
     def no_ref(obj):
         raise TypeError(type(obj).__name__)

@@ -4,9 +4,9 @@ pass@k and the U-statistic weights have their own file (tests/test_passk.py).
 """
 import numpy as np
 
-from bonft._boot import resample_counts
-from bonft._seeds import derive_seed, float_key
-from bonft._ties import first_of_group, flat_groups, group_ids, tie_means
+from bonft._core.bootstrap import resample_counts
+from bonft._core.seeds import derive_seed, float_key
+from bonft._core.ties import first_of_group, flat_groups, group_ids, tie_means
 
 
 def test_seed_is_the_first_seedsequence_word():

@@ -1,4 +1,4 @@
-"""Inference strategies (bonft.strategies, bonft.vote_estimate) against brute-force enumeration.
+"""Inference strategies (bonft.strategies, bonft.strategies.estimators) against brute-force enumeration.
 
 References used below:
 - the definitions themselves, enumerated: every ordered k-tuple of draws from a small categorical
@@ -20,10 +20,10 @@ import torch
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from bonft import credit as C
+from bonft.objectives import credit as C
 from bonft.strategies import (MajorityVote, WeightedVote, get_strategy, strategy_value, vote_value,
                               weighted_vote_value)
-from bonft.vote_estimate import (strategy_at_k, strategy_credit, vote_at_k_per_prompt, vote_credit,
+from bonft.strategies.estimators import (strategy_at_k, strategy_credit, vote_at_k_per_prompt, vote_credit,
                                  weighted_vote_at_k_per_prompt, weighted_vote_credit)
 
 # a small policy: 6 outcomes, 3 answers with two surface forms each; ties in scores (0.5, 0.2)
@@ -233,7 +233,7 @@ def test_bad_inputs_name_the_argument():
 
 
 def _adapter(logprobs, credit, *, mask=None, return_info=False):
-    """Stand-in for bonft.losses.policy_gradient_loss while it is not there: -mean_b sum_i w_bi log pi."""
+    """Stand-in for bonft.objectives.losses.policy_gradient_loss while it is not there: -mean_b sum_i w_bi log pi."""
     lp = logprobs if logprobs.ndim == 2 else (logprobs * (mask if mask is not None else 1)).sum(-1)
     loss = -(credit * lp).sum(-1).mean()
     return (loss, {"credit_mean": credit.mean().detach()}) if return_info else loss
@@ -248,13 +248,13 @@ def test_strategy_loss_gradient_is_minus_credit(monkeypatch):
     from bonft.strategies import strategy_loss
 
     try:
-        from bonft import losses
+        from bonft.objectives import losses
         ok = hasattr(losses, "policy_gradient_loss")
     except ImportError:  # the core loss module is being rewritten beside this one
         ok = False
     if not ok:
         stub = types.SimpleNamespace(policy_gradient_loss=_adapter)
-        monkeypatch.setitem(sys.modules, "bonft.losses", stub)
+        monkeypatch.setitem(sys.modules, "bonft.objectives.losses", stub)
         monkeypatch.setattr(bonft, "losses", stub, raising=False)
     a = np.array([[0, 1, 1, 2], [3, 3, 1, 1]])
     r = np.array([[1.0, 0.0, 0.0, 1.0], [0.0, 0.0, 1.0, 1.0]])

@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 
 from bonft.trainer.demo import DemoConfig, run_demo
-from bonft.trainer.demo_stats import best_temperatures, paired_bootstrap, per_prompt_curves, study_table, t_interval
+from bonft.trainer.demo.stats import best_temperatures, paired_bootstrap, per_prompt_curves, study_table, t_interval
 
 
 def test_tiny_demo_end_to_end(tmp_path):

@@ -6,7 +6,7 @@ from scipy.special import comb
 
 from bonft.trainer.evaluation import evaluate_policy
 from bonft.trainer.models import build_tiny_model
-from bonft.trainer.generation import sequence_logprobs
+from bonft.generation.sampling import sequence_logprobs
 from bonft.tasks import build_tokenizer, get_task
 
 
@@ -47,7 +47,7 @@ def test_eval_numbers_match_direct_computation(setup):
 
 def test_entropy_estimate_is_mean_negative_logprob(setup):
     tok, model, _, held = setup
-    from bonft.trainer.generation import sample
+    from bonft.generation.sampling import sample
 
     prompts = [e.prompt for e in held[:3]]
     rep, raw = evaluate_policy(model, tok, prompts, verifiers={"exact": lambda p, r: np.zeros(len(r))}, n=4, ks=[1],

@@ -243,7 +243,7 @@ def test_snr_and_placebo_on_two_ranks_match_one_process(tmp_path, monkeypatch):
 
 
 def test_a_registered_objective_trains_like_the_builtin_with_the_same_credit(tmp_path):
-    from bonft import credit as C
+    from bonft.objectives import credit as C
     from bonft.trainer.measure import Stopwatch
     from bonft.trainer.objectives import Objective, register_objective
     from bonft.trainer.steps import rl_step

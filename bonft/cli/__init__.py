@@ -4,6 +4,6 @@ Each command module defines ``HELP`` (one line), ``add_arguments(parser)`` and
 ``run(args) -> int``. Modules import heavy dependencies inside ``run`` so that
 ``bonft --help`` stays fast.
 """
-from .main import COMMANDS, build_parser, main
+from bonft.cli.main import COMMANDS, build_parser, main
 
 __all__ = ["COMMANDS", "build_parser", "main"]

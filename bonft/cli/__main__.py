@@ -1,6 +1,6 @@
 """``python -m bonft.cli ...`` (used under torchrun) runs the ``bonft`` command."""
 import sys
 
-from .main import main
+from bonft.cli.main import main
 
 sys.exit(main())

@@ -4,7 +4,7 @@ from __future__ import annotations
 import argparse
 import os
 
-from ._args import parse_list, write_curve_outputs, write_json_atomic
+from bonft.cli._args import parse_list, write_curve_outputs, write_json_atomic
 
 STRATEGY_HELP = ("comma-separated inference strategies to compare: best-of-k (verifier picks), majority "
                  "(most frequent answer), weighted (answer with the largest total score), pass (oracle); "
@@ -39,8 +39,8 @@ def strategy_names(text: str | None) -> list[str] | None:
 def _curves(table, t, names, ks, args):
     from bonft.estimate import default_ks
     from bonft.io import group_pools
-    from bonft.strategy_curves import compare_strategies
-    from bonft.vote_estimate import MAX_SUBSETS
+    from bonft.strategies.curves import compare_strategies
+    from bonft.strategies.estimators import MAX_SUBSETS
 
     need_answers = any(n in ("majority", "weighted") for n in names)
     if need_answers and table.answers is None:

@@ -27,7 +27,7 @@ def run(args) -> int:
     from bonft.verifiers import CodeRunner
     from bonft.verifiers.probes import read_code_tests
 
-    from ._args import parse_list, write_json_atomic
+    from bonft.cli._args import parse_list, write_json_atomic
 
     if not os.path.isfile(args.tests):
         raise FileNotFoundError(f"TESTS.jsonl must be an existing file, got {args.tests!r}")

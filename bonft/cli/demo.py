@@ -27,8 +27,8 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 def _demo_config(args):
     import dataclasses
 
-    from ..trainer.config import _convert, _parse_scalar
-    from ..trainer.demo import DemoConfig
+    from bonft.trainer.config import _convert, _parse_scalar
+    from bonft.trainer.demo import DemoConfig
 
     dc = DemoConfig(run_dir=args.out, seed=args.seed)
     fields = {f.name: f for f in dataclasses.fields(DemoConfig)}
@@ -53,8 +53,8 @@ def _demo_config(args):
 
 
 def run(args: argparse.Namespace) -> int:
-    from .._checks import check_int
-    from ..trainer.demo import run_demo, run_study
+    from bonft._core.checks import check_int
+    from bonft.trainer.demo import run_demo, run_study
 
     check_int("--seed", args.seed, min=0)
     dc = _demo_config(args)

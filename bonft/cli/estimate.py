@@ -3,8 +3,8 @@ from __future__ import annotations
 
 import argparse
 import os
-from ._strategies import add_strategy_arguments, run_estimate as _run_strategies
-from ._args import add_duplicates_flag, check_boot, parse_list, write_curve_outputs
+from bonft.cli._strategies import add_strategy_arguments, run_estimate as _run_strategies
+from bonft.cli._args import add_duplicates_flag, check_boot, parse_list, write_curve_outputs
 
 HELP = "best-of-k (verifier picks) and oracle pass@k with bootstrap CIs from a pool file (JSONL of scored samples)"
 DESCRIPTION = (

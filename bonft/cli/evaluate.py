@@ -4,7 +4,7 @@ from __future__ import annotations
 import argparse
 import json
 from pathlib import Path
-from ._args import parse_list
+from bonft.cli._args import parse_list
 
 HELP = "evaluate a checkpoint: pass@k and best-of-k (per verifier) with CIs on held-out prompts"
 DESCRIPTION = (
@@ -33,9 +33,9 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 def load_for_eval(args: argparse.Namespace, *, n: int, ks: list[int], temperature: float):
     """The checkpoint's config (its config.toml, else defaults) pointed at the checkpoint, and the Run."""
-    from ..trainer.checkpoint import resolve_checkpoint
-    from ..trainer.config import FIELDS, apply_overrides, from_dict, load_config
-    from ..trainer.loop import build_run
+    from bonft.trainer.checkpoint import resolve_checkpoint
+    from bonft.trainer.config import FIELDS, apply_overrides, from_dict, load_config
+    from bonft.trainer.loop import build_run
 
     ckpt = resolve_checkpoint(args.checkpoint)
     base = load_config(ckpt / "config.toml").to_dict() if (ckpt / "config.toml").is_file() else {}
@@ -59,8 +59,8 @@ def announce(r, *, n: int, temperatures: list[float]) -> None:
 def run(args: argparse.Namespace) -> int:
     import torch
 
-    from .._checks import check_int, check_positive
-    from ..trainer.loop import evaluate_run
+    from bonft._core.checks import check_int, check_positive
+    from bonft.trainer.loop import evaluate_run
 
     n = check_int("--n", args.n, min=1)
     ks = parse_list("--ks", args.ks)
@@ -75,7 +75,7 @@ def run(args: argparse.Namespace) -> int:
     if args.json:
         Path(args.json).write_text(json.dumps({"checkpoint": str(ckpt), **rep.to_dict()}, indent=1))
     if args.plot:
-        from ..viz import plot_evaluations
+        from bonft.viz import plot_evaluations
 
         plot_evaluations([rep.to_dict()], args.plot, title=str(ckpt))
     return 0
@@ -84,7 +84,7 @@ def run(args: argparse.Namespace) -> int:
 def _eval_seeded(r, seed: int):
     from dataclasses import replace
 
-    from ..trainer.loop import evaluate_run
+    from bonft.trainer.loop import evaluate_run
 
     r.cfg = replace(r.cfg, seed=seed)
     return evaluate_run(r, step=-1)

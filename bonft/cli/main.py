@@ -52,7 +52,7 @@ def _user_errors() -> tuple[type, ...]:
     """Exceptions that report a problem with the user's input or environment, not a bug."""
     errors: list[type] = [ValueError, TypeError, OSError, MemoryError, RecursionError]
     if "torch" in sys.modules:  # PeerError is a RuntimeError; import it only when torch is already loaded
-        from ..trainer.distributed import PeerError
+        from bonft.trainer.distributed import PeerError
 
         errors.append(PeerError)
     return tuple(errors)

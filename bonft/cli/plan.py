@@ -4,8 +4,8 @@ from __future__ import annotations
 import argparse
 import json
 import os
-from ._strategies import add_strategy_arguments, run_plan as _run_strategies
-from ._args import add_duplicates_flag, check_boot, parse_list, write_json_atomic
+from bonft.cli._strategies import add_strategy_arguments, run_plan as _run_strategies
+from bonft.cli._args import add_duplicates_flag, check_boot, parse_list, write_json_atomic
 
 HELP = "choose temperature and N: best-of-k value over a temperature x k grid, budgets, doubling gains"
 DESCRIPTION = (
@@ -164,7 +164,7 @@ def run(args) -> int:
         if temps is None:
             raise ValueError("--exact needs temperatures: --temperatures or a 'temperatures' field")
         if args.strategy:
-            from ._strategies import run_plan_exact
+            from bonft.cli._strategies import run_plan_exact
 
             return run_plan_exact(args, spec, temps)
         kw = _plan_kwargs(args)

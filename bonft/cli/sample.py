@@ -3,8 +3,8 @@ from __future__ import annotations
 
 import argparse
 
-from ._args import parse_list
-from .evaluate import add_common, announce, load_for_eval
+from bonft.cli._args import parse_list
+from bonft.cli.evaluate import add_common, announce, load_for_eval
 
 HELP = "sample responses from a checkpoint and write a samples JSONL (input of bonft estimate / bonft plan)"
 DESCRIPTION = (
@@ -26,10 +26,10 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 def run(args: argparse.Namespace) -> int:
     import torch
 
-    from .._checks import check_int, check_positive
-    from ..trainer.evaluation import evaluate_policy
-    from ..io import write_samples
-    from ..trainer.loop import step_seed
+    from bonft._core.checks import check_int, check_positive
+    from bonft.trainer.evaluation import evaluate_policy
+    from bonft.io import write_samples
+    from bonft.trainer.loop import step_seed
 
     n = check_int("--n", args.n, min=1)
     temps = [check_positive("--temperature", t) for t in parse_list("--temperature", args.temperature, float)]

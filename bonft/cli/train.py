@@ -22,8 +22,8 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    from ..trainer.config import load_config
-    from ..trainer.loop import train
+    from bonft.trainer.config import load_config
+    from bonft.trainer.loop import train
 
     overrides = list(args.overrides) + ([f"run_dir={args.out}"] if args.out else [])
     cfg = load_config(args.recipe, overrides)

@@ -6,9 +6,9 @@ T*(k) fit), :mod:`.result` (:class:`PlanResult` and its parts),
 :mod:`.from_model` (draw pools from a model, cached on disk). Figures live in
 :mod:`bonft.viz`. See :mod:`bonft.plan.sweep` for the method and its references.
 """
-from .decisions import fit_best_temperature
-from .result import BudgetChoice, DoublingStep, PlanResult, TemperatureFit
-from .sweep import Pools, plan_exact, plan_pools, plan_samples
+from bonft.plan.decisions import fit_best_temperature
+from bonft.plan.result import BudgetChoice, DoublingStep, PlanResult, TemperatureFit
+from bonft.plan.sweep import Pools, plan_exact, plan_pools, plan_samples
 
 __all__ = [
     "Pools", "PlanResult", "BudgetChoice", "DoublingStep", "TemperatureFit",
@@ -18,7 +18,7 @@ __all__ = [
 
 def __getattr__(name):  # plan_model pulls in torch and the sampler: import it on first use
     if name == "plan_model":
-        from .from_model import plan_model
+        from bonft.plan.from_model import plan_model
 
         return plan_model
     raise AttributeError(f"module 'bonft.plan' has no attribute {name!r}")

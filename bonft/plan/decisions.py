@@ -8,7 +8,7 @@ from typing import Any
 
 import numpy as np
 
-from .result import BudgetChoice, DoublingStep, PlanResult, TemperatureFit
+from bonft.plan.result import BudgetChoice, DoublingStep, PlanResult, TemperatureFit
 
 
 def bootstrap_means(per_prompt: list[np.ndarray], *, paired: bool, n_boot: int, seed: int) -> np.ndarray:
@@ -20,7 +20,7 @@ def bootstrap_means(per_prompt: list[np.ndarray], *, paired: bool, n_boot: int, 
     rng = np.random.default_rng(seed)
     T, K = len(per_prompt), per_prompt[0].shape[1]
 
-    from .._boot import resample_counts
+    from bonft._core.bootstrap import resample_counts
 
     def counts(P: int) -> np.ndarray:
         return resample_counts(rng, P, n_boot)  # (B, P) times each prompt is drawn

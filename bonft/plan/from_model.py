@@ -20,7 +20,7 @@ from typing import Any, Callable, Sequence
 
 import numpy as np
 
-from .._checks import check_fraction, check_int
+from bonft._core.checks import check_fraction, check_int
 
 PROMPT_CHUNK = 16  # prompts per sampling call: the progress bar's step, and part of each chunk's seed
 
@@ -47,7 +47,7 @@ def prompts_fingerprint(prompts: Sequence[str]) -> str:
 
 
 def _seed_for(seed: int, temperature: float, chunk: int) -> int:
-    from .._seeds import derive_seed, float_key
+    from bonft._core.seeds import derive_seed, float_key
 
     return derive_seed(seed, float_key(temperature), chunk, bits=31)
 
@@ -87,10 +87,10 @@ def draw_samples(
     """
     from tqdm.auto import tqdm
 
-    from .sweep import _check_temperatures
-    from ..io import SampleTable, read_samples, write_samples
-    from ..trainer.generation import sample
-    from ..verifiers import score_batch
+    from bonft.plan.sweep import _check_temperatures
+    from bonft.io import SampleTable, read_samples, write_samples
+    from bonft.generation.sampling import sample
+    from bonft.verifiers import score_batch
 
     temps = _check_temperatures(temperatures)
     n = check_int("n", n, min=1)
@@ -191,7 +191,7 @@ def plan_model(
     plan_kwargs: max_k, budget_samples, budget_tokens, confidence, n_boot, min_gain (seed is shared).
     -> (PlanResult, info).
     """
-    from .sweep import plan_samples
+    from bonft.plan.sweep import plan_samples
 
     table, info = draw_samples(model, tokenizer, prompts, verifier, temperatures=temperatures, n=n, seed=seed,
                                top_p=top_p, max_new_tokens=max_new_tokens, batch_size=batch_size,

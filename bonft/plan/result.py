@@ -5,7 +5,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from ..estimate import MIN_BOOT_PROMPTS
+from bonft.estimate import MIN_BOOT_PROMPTS
 
 FIT_CAVEAT = "a fit of this data, not a law"
 
@@ -217,12 +217,12 @@ class PlanResult:
 
     def plot_heatmap(self, path) -> str:
         """PNG of V over (temperature, k), best temperature per k marked; returns the path."""
-        from ..viz import plot_plan_heatmap
+        from bonft.viz import plot_plan_heatmap
 
         return plot_plan_heatmap(self, path)
 
     def plot_curves(self, path) -> str:
         """PNG of V against k at the best and a few other temperatures, with CI bands; returns the path."""
-        from ..viz import plot_plan_curves
+        from bonft.viz import plot_plan_curves
 
         return plot_plan_curves(self, path)

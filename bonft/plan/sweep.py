@@ -27,7 +27,7 @@ Entry points: :func:`plan_samples` (a samples file read with
 :func:`bonft.io.read_samples`), :func:`plan_pools` (arrays per
 temperature), :func:`plan_exact` (a finite outcome set) and
 :func:`bonft.plan.from_model.plan_model` (draw from a model through
-:mod:`bonft.trainer.generation`, cached on disk).
+:mod:`bonft.generation.sampling`, cached on disk).
 """
 from __future__ import annotations
 
@@ -37,9 +37,9 @@ from typing import Any, Mapping, Sequence
 
 import numpy as np
 
-from .._checks import as_float_array, check_finite, check_fraction, check_int, check_positive, check_real
-from .decisions import bootstrap_means, finish, fit_best_temperature
-from .result import BudgetChoice, DoublingStep, PlanResult, TemperatureFit
+from bonft._core.checks import as_float_array, check_finite, check_fraction, check_int, check_positive, check_real
+from bonft.plan.decisions import bootstrap_means, finish, fit_best_temperature
+from bonft.plan.result import BudgetChoice, DoublingStep, PlanResult, TemperatureFit
 
 __all__ = [
     "Pools",
@@ -147,7 +147,7 @@ def plan_pools(
 
     Reference: Chow et al. 2024 (best-of-N value), Chen et al. 2021 (unbiased estimators).
     """
-    from ..estimate import bon_at_k_per_prompt
+    from bonft.estimate import bon_at_k_per_prompt
 
     if not isinstance(pools, Mapping):
         raise TypeError(f"pools must be a mapping {{temperature: Pools}}, got {type(pools).__name__}")
@@ -250,7 +250,7 @@ def plan_samples(
     temperatures: a subset of the temperatures in the table (default: all of them).
     Mean response length per temperature comes from the ``n_tokens`` column when present.
     """
-    from ..io import group_pools, temperatures_of
+    from bonft.io import group_pools, temperatures_of
 
     if getattr(table, "temperatures", None) is None:
         raise ValueError("table must have a temperature column (temperature_field) to plan over temperatures, got none")
@@ -314,7 +314,7 @@ def plan_exact(
     V_k(T) = sum_v pi_bon,T(v) r_v, pi_bon from :func:`bonft.bon.bon_value` (ties broken
     uniformly among the tied top samples). Reference: Chow et al. 2024.
     """
-    from ..bon import bon_value, softmax_policy
+    from bonft.bon import bon_value, softmax_policy
 
     temps = _check_temperatures(temperatures)
     if (logits is None) == (probs is None):
@@ -327,7 +327,7 @@ def plan_exact(
         check_finite("logits", base)
     else:
         base = as_float_array("probs", probs, ndim=(1, 2))
-        from .._checks import check_probs
+        from bonft._core.checks import check_probs
 
         check_probs("probs", base)
     base = base.reshape(-1, base.shape[-1])  # (V,) -> (1, V); (P, V) stays

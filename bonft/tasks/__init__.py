@@ -9,12 +9,12 @@ from __future__ import annotations
 
 from typing import Any
 
-from .base import ExactVerifier, Example, Task, extract_integer
-from .ledger import LedgerPlausibility, LedgerTask
-from .prompts import PromptFileTask, exact_match_verifier, load_prompts_jsonl
-from .refunds import LastDigitCheck, RefundsTask
-from .restock import RestockTask
-from .tokenizer import build_tokenizer
+from bonft.tasks.base import ExactVerifier, Example, Task, extract_integer
+from bonft.tasks.ledger import LedgerPlausibility, LedgerTask
+from bonft.tasks.prompts import PromptFileTask, exact_match_verifier, load_prompts_jsonl
+from bonft.tasks.refunds import LastDigitCheck, RefundsTask
+from bonft.tasks.restock import RestockTask
+from bonft.tasks.tokenizer import build_tokenizer
 
 TASKS: dict[str, type] = {
     "ledger": LedgerTask,

@@ -8,8 +8,8 @@ from typing import Any, Callable, Sequence
 
 import numpy as np
 
-from .._checks import check_int, check_items
-from ..verifiers.base import Verdicts
+from bonft._core.checks import check_int, check_items
+from bonft.verifiers.base import Verdicts
 
 _INT = re.compile(r"-?\d+")
 

@@ -21,7 +21,7 @@ from pathlib import Path
 
 import numpy as np
 
-from bonft._checks import check_int
+from bonft._core.checks import check_int
 
 __all__ = ["EXAMPLE_SAMPLES", "example_samples_path", "ledger_rows"]
 

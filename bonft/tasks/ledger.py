@@ -26,8 +26,8 @@ from __future__ import annotations
 import random
 from typing import Sequence
 
-from .._checks import check_fraction, check_int
-from .base import Example, NumericProxy, Task
+from bonft._core.checks import check_fraction, check_int
+from bonft.tasks.base import Example, NumericProxy, Task
 
 ITEMS = ("lamps", "mugs", "pens", "hats", "bowls", "socks", "jars", "kites")
 

@@ -17,9 +17,9 @@ import random
 from pathlib import Path
 from typing import Sequence
 
-from .._checks import check_int
-from .._jsonl import decode_utf8, parse_object
-from .base import ExactVerifier, Example, Task, _check_examples
+from bonft._core.checks import check_int
+from bonft._core.jsonl import decode_utf8, parse_object
+from bonft.tasks.base import ExactVerifier, Example, Task, _check_examples
 
 
 def normalize_text(response: str) -> str | None:

@@ -17,9 +17,9 @@ from __future__ import annotations
 import random
 from typing import Sequence
 
-from .._checks import check_fraction, check_int
-from .base import Example, NumericProxy, Task
-from .ledger import ITEMS
+from bonft._core.checks import check_fraction, check_int
+from bonft.tasks.base import Example, NumericProxy, Task
+from bonft.tasks.ledger import ITEMS
 
 
 class RefundsTask(Task):

@@ -11,9 +11,9 @@ from __future__ import annotations
 
 import random
 
-from .._checks import check_fraction, check_int
-from .base import Example, Task
-from .ledger import ITEMS
+from bonft._core.checks import check_fraction, check_int
+from bonft.tasks.base import Example, Task
+from bonft.tasks.ledger import ITEMS
 
 
 class RestockTask(Task):

@@ -236,7 +236,7 @@ def save_checkpoint(
     if tmp.exists():
         shutil.rmtree(tmp)
     tmp.mkdir()
-    from .models import _save_weights
+    from bonft.trainer.models import _save_weights
 
     _save_weights(model, tmp / "model")
     tokenizer.save_pretrained(tmp / "tokenizer")

@@ -30,9 +30,9 @@ if sys.version_info >= (3, 11):
 else:  # pragma: no cover - Python 3.10
     import tomli as tomllib
 
-from .._checks import check_choice, check_fraction, check_int, check_positive, check_real
+from bonft._core.checks import check_choice, check_fraction, check_int, check_positive, check_real
 
-from .objectives import OBJECTIVES  # the registry: objective name -> credit function + options
+from bonft.trainer.objectives import OBJECTIVES  # the registry: objective name -> credit function + options
 
 K_SCHEDULES = ("constant", "linear", "geometric")
 OPTIMIZERS = ("adamw", "sgd")
@@ -212,8 +212,8 @@ def check_task_sizes(c: TrainConfig) -> None:
     import collections
     import random
 
-    from ..tasks import get_task
-    from ..tasks.base import family_counts
+    from bonft.tasks import get_task
+    from bonft.tasks.base import family_counts
 
     task = get_task(c.task, **c.task_params)
     shares = task._families()

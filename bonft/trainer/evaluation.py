@@ -22,7 +22,7 @@ from typing import Any, Callable, Sequence
 import numpy as np
 import torch
 
-from ..estimate import MIN_BOOT_PROMPTS
+from bonft.estimate import MIN_BOOT_PROMPTS
 
 
 @dataclass
@@ -132,12 +132,12 @@ def collect_pools(model: Any, tokenizer: Any, prompts: Sequence[str], *, verifie
     (:func:`bonft.trainer.distributed.sample_per_prompt`), so pools collected on
     different ranks are those one process would collect; else one draw from ``seed``.
     """
-    from .generation import sample
-    from ..verifiers.scoring import score_batch
+    from bonft.generation.sampling import sample
+    from bonft.verifiers.scoring import score_batch
 
     P = len(prompts)
     if seeds is not None:
-        from .distributed import sample_per_prompt
+        from bonft.trainer.distributed import sample_per_prompt
 
         smp = sample_per_prompt(model, tokenizer, list(prompts), seeds=seeds, n=n, temperature=temperature,
                                 max_new_tokens=max_new_tokens)
@@ -174,7 +174,7 @@ def merge_pools(parts: Sequence[dict]) -> dict:
 def report_from_pools(raw: dict, *, ks: Sequence[int], temperature: float, seed: int = 0, step: int = 0,
                       confidence: float = 0.95, n_boot: int = 1000, groups: Sequence[str] | None = None) -> EvalReport:
     """The summarising half of :func:`evaluate_policy`: estimators and bootstrap CIs over all pools."""
-    from ..estimate import summarize
+    from bonft.estimate import summarize
 
     rewards, n_tokens = raw["rewards"], raw["n_tokens"]
     P, n = rewards.shape

@@ -37,9 +37,9 @@ import math
 
 import torch
 
-from .config import TrainConfig, to_toml
-from .measure import Stopwatch
-from .steps import (  # noqa: F401  (re-exported: the loop's parts)
+from bonft.trainer.config import TrainConfig, to_toml
+from bonft.trainer.measure import Stopwatch
+from bonft.trainer.steps import (  # noqa: F401  (re-exported: the loop's parts)
     Run, _prompt_batch, build_run, dist_info, encode_pairs, evaluate_run, k_at, lr_at, make_optimizer,
     quiet_transformers, rl_step, sft_step, step_seed,
 )
@@ -58,7 +58,7 @@ def train(cfg: TrainConfig, *, resume: bool = False, progress: bool = True) -> d
     """
     from tqdm.auto import tqdm
 
-    from .distributed import shutdown, step_guard, unwrap_model, wrap_model
+    from bonft.trainer.distributed import shutdown, step_guard, unwrap_model, wrap_model
 
     if not isinstance(cfg, TrainConfig):
         raise TypeError(f"cfg must be a TrainConfig, got {type(cfg).__name__}")
@@ -147,7 +147,7 @@ def _one_step(run: Run, stage: str, s: int) -> dict:
 # ----------------------------------------------------------------------------- setup and restore
 def _check_shares(cfg: TrainConfig, world: int) -> None:
     """Whole prompts, equal shares, equal micro-batches on every rank."""
-    from .distributed import check_divisible
+    from bonft.trainer.distributed import check_divisible
 
     if cfg.rl_steps:
         share = check_divisible("prompts_per_step", cfg.prompts_per_step, world)
@@ -160,9 +160,9 @@ def _check_shares(cfg: TrainConfig, world: int) -> None:
 
 def _restore(run: Run, resume: bool) -> tuple[int, dict | None]:
     """Rank 0 picks the checkpoint (or refuses); every rank loads it. Writes config.toml, trims metrics.jsonl."""
-    from .checkpoint import CheckpointError, latest_checkpoint, load_state, set_rng_state
-    from .distributed import broadcast_object
-    from .models import load_model
+    from bonft.trainer.checkpoint import CheckpointError, latest_checkpoint, load_state, set_rng_state
+    from bonft.trainer.distributed import broadcast_object
+    from bonft.trainer.models import load_model
 
     out, ckpt, problem = run.out, None, None
     if run.is_main:
@@ -196,8 +196,8 @@ def _restore(run: Run, resume: bool) -> tuple[int, dict | None]:
 
 def _enter_stage(run: Run, stage: str, state: dict | None) -> None:
     """A fresh optimizer (its saved state when resuming inside the stage); RL with an anchor: load it."""
-    from .distributed import barrier
-    from .models import load_model, save_model
+    from bonft.trainer.distributed import barrier
+    from bonft.trainer.models import load_model, save_model
 
     run.optimizer = make_optimizer(run, stage)
     if state is not None and state["extra"].get("stage") == stage:
@@ -245,7 +245,7 @@ def _evaluate(run: Run, s: int, progress: bool) -> None:
 
 def _save(run: Run, s: int) -> str:
     """Checkpoint ``step-s``: the weights after s optimizer steps (rank 0 writes)."""
-    from .checkpoint import save_checkpoint
+    from bonft.trainer.checkpoint import save_checkpoint
 
     if run.is_main:
         stage = "sft" if s == 0 or s - 1 < run.cfg.sft_steps else "rl"
@@ -267,7 +267,7 @@ def _finish(run: Run, progress: bool) -> dict:
         summary["evaluations"] = evals = [json.loads(ln) for ln in lines if ln and '"kind": "eval"' in ln]
         (run.out / "summary.json").write_text(json.dumps(summary, indent=1))
         if cfg.plots and evals:
-            from ..viz import plot_evaluations
+            from bonft.viz import plot_evaluations
 
             plot_evaluations(evals, run.out / "curves.png", title=cfg.name)
         if progress:

@@ -71,7 +71,7 @@ class GradientMoments:
 
     def snr(self, ctx=None) -> float:
         """SNR over the prompts added here (and on every rank, with a distributed context ``ctx``)."""
-        from .distributed import all_reduce_
+        from bonft.trainer.distributed import all_reduce_
 
         flat = torch.cat([t.reshape(-1) for t in self.total]) if self.total else torch.zeros(1, dtype=torch.float64)
         stats = torch.tensor([float(self.sq), float(self.count)], dtype=torch.float64)

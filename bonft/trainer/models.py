@@ -19,7 +19,7 @@ from typing import Any
 
 import torch
 
-from .._checks import check_choice, check_int
+from bonft._core.checks import check_choice, check_int
 
 ARCHS = ("gpt2", "llama")
 
@@ -165,10 +165,10 @@ def load_model(path: str | os.PathLike, *, device: str | torch.device | None = N
     if not path.is_dir():
         raise FileNotFoundError(f"path must be a model or checkpoint directory, got {str(path)!r} (not a directory)")
     if not (path / "config.json").is_file() and not (path / "model").is_dir() and (path / "checkpoints").is_dir():
-        from .checkpoint import resolve_checkpoint  # a training run directory: its newest checkpoint
+        from bonft.trainer.checkpoint import resolve_checkpoint  # a training run directory: its newest checkpoint
 
         path = resolve_checkpoint(path)
-    from .checkpoint import is_verified_checkpoint, verify_checkpoint
+    from bonft.trainer.checkpoint import is_verified_checkpoint, verify_checkpoint
 
     if is_verified_checkpoint(path):  # a trainer checkpoint: sizes and hashes against its manifest
         verify_checkpoint(path)

@@ -1,7 +1,7 @@
 """The RL objectives of the trainer: a registry of name -> credit function + options.
 
 Every objective is the same policy-gradient loss with a different per-sample
-credit ``w`` (:mod:`bonft.credit`); for prompt ``b`` with samples ``y_b1..y_bn``
+credit ``w`` (:mod:`bonft.objectives.credit`); for prompt ``b`` with samples ``y_b1..y_bn``
 
 .. math:: \\ell_b = -\\sum_i w_{bi} \\log\\pi(y_{bi})\\ \\ [+\\ \\text{anchor KL}]\\ \\ [-\\ \\log\\pi(y^*_b)\\ \\text{for best\\_of\\_k\\_sft}]
 
@@ -28,8 +28,8 @@ from typing import Callable, Sequence
 import numpy as np
 import torch
 
-from .. import credit as C
-from .. import losses as L
+from bonft.objectives import credit as C
+from bonft.objectives import losses as L
 
 
 @dataclass
@@ -75,8 +75,8 @@ def _pass_value(p: Pools, k: int) -> torch.Tensor:
 
 
 def _vote(name: str) -> tuple[Callable, Callable]:
-    """Credit and pool value of a vote strategy (:mod:`bonft.vote_estimate`), as tensors on the pools' device."""
-    from ..vote_estimate import strategy_at_k, strategy_credit
+    """Credit and pool value of a vote strategy (:mod:`bonft.strategies.estimators`), as tensors on the pools' device."""
+    from bonft.strategies.estimators import strategy_at_k, strategy_credit
 
     def credit(p: Pools, k: int) -> torch.Tensor:
         return strategy_credit(name, p.scores, p.rewards, k=k, answers=p.answers)

@@ -15,9 +15,9 @@ from typing import Any
 import numpy as np
 import torch
 
-from .config import TrainConfig
-from .measure import GradientMoments, Stopwatch
-from .objectives import OBJECTIVES, Pools, policy_loss, shuffle_pools
+from bonft.trainer.config import TrainConfig
+from bonft.trainer.measure import GradientMoments, Stopwatch
+from bonft.trainer.objectives import OBJECTIVES, Pools, policy_loss, shuffle_pools
 
 PLACEBO_STREAM = 5  # prompt_seed stream of the placebo's permutations (0: sampling, 2: evaluation)
 
@@ -46,7 +46,7 @@ def dist_info() -> tuple[int, int]:
 
 def step_seed(seed: int, step: int, rank: int = 0, stream: int = 0) -> int:
     """A 63-bit seed for one (seed, step, rank, stream); independent streams, no collisions in practice."""
-    from .._seeds import derive_seed
+    from bonft._core.seeds import derive_seed
 
     return derive_seed(seed, step, rank, stream)
 
@@ -82,7 +82,7 @@ def encode_pairs(tokenizer: Any, prompts: list[str], responses: list[str], devic
 
     Returns prompt_tokens (B, Tp), prompt_valid (B, Tp), reply_tokens (B, 1, T), reply_valid (B, 1, T).
     """
-    from .generation import encode_responses
+    from bonft.generation.sampling import encode_responses
 
     return tuple(x.to(device) for x in encode_responses(tokenizer, prompts, responses))
 
@@ -115,7 +115,7 @@ class Run:
     @property
     def module(self) -> Any:
         """The plain model (inside DDP on several ranks)."""
-        from .distributed import unwrap_model
+        from bonft.trainer.distributed import unwrap_model
 
         return unwrap_model(self.model)
 
@@ -141,7 +141,7 @@ def _prompt_batch(cfg: TrainConfig, step: int, size: int, n_items: int, rank: in
 
     The block is slots ``shard_bounds(size, rank=rank, world_size=world)`` of the global batch (whole prompts).
     """
-    from .distributed import shard_prompts
+    from bonft.trainer.distributed import shard_prompts
 
     rng = np.random.default_rng(step_seed(cfg.seed, step, 0, stream=1))
     idx = rng.choice(n_items, size=size, replace=size > n_items)
@@ -151,9 +151,9 @@ def _prompt_batch(cfg: TrainConfig, step: int, size: int, n_items: int, rank: in
 # ----------------------------------------------------------------------------- the two steps
 def sft_step(run: Run, step: int, clock: Stopwatch) -> dict:
     """Warm start: NLL (sum over tokens) of reference responses, divided by the global batch size."""
-    from .distributed import reduce_metrics
-    from ..losses import nll_loss
-    from .generation import sequence_logprobs
+    from bonft.trainer.distributed import reduce_metrics
+    from bonft.objectives.losses import nll_loss
+    from bonft.generation.sampling import sequence_logprobs
 
     cfg = run.cfg
     B = cfg.sft_batch_size
@@ -171,7 +171,7 @@ def sft_step(run: Run, step: int, clock: Stopwatch) -> dict:
 
 def _score(run: Run, prompts: list[str], texts: list[list[str]], references: list[str] | None, seeds: list[int]):
     """Score the pools -> Pools on the device (and the verifier's failure count); placebo-shuffled if asked."""
-    from ..verifiers.scoring import score_batch
+    from bonft.verifiers.scoring import score_batch
 
     cfg, n = run.cfg, len(texts[0])
     v = score_batch(run.verifiers["train"], [p for p in prompts for _ in range(n)], [s for row in texts for s in row])
@@ -198,7 +198,7 @@ def _score(run: Run, prompts: list[str], texts: list[list[str]], references: lis
 def _pool_loss(run: Run, model: Any, rows: tuple, expert_rows: tuple | None, credit: torch.Tensor,
                anchor_logp: torch.Tensor | None) -> tuple[torch.Tensor, dict]:
     """Summed loss of the prompts in ``rows`` (prompt_tokens, prompt_valid, reply_tokens, reply_valid)."""
-    from .generation import sequence_logprobs
+    from bonft.generation.sampling import sequence_logprobs
 
     cfg = run.cfg
     # log-probs of the policy that drew the samples: same temperature and top-p
@@ -229,8 +229,8 @@ def rl_step(run: Run, step: int, clock: Stopwatch) -> dict:
 
     With ``snr_every`` due, also the per-prompt gradients of the same samples (``grad_snr``).
     """
-    from .distributed import prompt_seed, reduce_metrics, sample_per_prompt, shard_bounds
-    from .generation import sequence_logprobs
+    from bonft.trainer.distributed import prompt_seed, reduce_metrics, sample_per_prompt, shard_bounds
+    from bonft.generation.sampling import sequence_logprobs
 
     cfg, n, T = run.cfg, run.cfg.n, run.cfg.temperature
     B, obj = cfg.prompts_per_step, OBJECTIVES[cfg.objective]
@@ -280,11 +280,11 @@ def rl_step(run: Run, step: int, clock: Stopwatch) -> dict:
 # ----------------------------------------------------------------------------- setup
 def build_run(cfg: TrainConfig) -> Run:
     """Task, data split, verifiers, model and tokenizer for ``cfg`` (no optimizer yet)."""
-    from .models import build_tiny_model, check_context, load_model
-    from ..tasks import build_tokenizer, get_task
-    from ..verifiers.scoring import load_verifier
+    from bonft.trainer.models import build_tiny_model, check_context, load_model
+    from bonft.tasks import build_tokenizer, get_task
+    from bonft.verifiers.scoring import load_verifier
 
-    from .distributed import init_from_env
+    from bonft.trainer.distributed import init_from_env
 
     ctx = init_from_env(device=cfg.device)  # a process group under torchrun, else one process
     rank, world, device = ctx.rank, ctx.world_size, ctx.device
@@ -326,8 +326,8 @@ def evaluate_run(run: Run, step: int):
     its own seed, so the pools do not depend on the number of ranks); rank 0
     gathers the pools and runs the estimators once on all of them.
     """
-    from .distributed import gather_objects, prompt_seed, shard_bounds
-    from .evaluation import collect_pools, merge_pools, report_from_pools
+    from bonft.trainer.distributed import gather_objects, prompt_seed, shard_bounds
+    from bonft.trainer.evaluation import collect_pools, merge_pools, report_from_pools
 
     cfg = run.cfg
     held = run.eval[: cfg.eval_prompts or len(run.eval)]

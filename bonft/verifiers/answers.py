@@ -31,9 +31,9 @@ from typing import Any, Callable, Mapping, Sequence
 
 import numpy as np
 
-from .._checks import check_nonnegative
-from .base import Verdicts
-from .scoring import check_batch
+from bonft._core.checks import check_nonnegative
+from bonft.verifiers.base import Verdicts
+from bonft.verifiers.scoring import check_batch
 
 _MARKER = re.compile(r"(?:\banswer\s*(?:is\s*:?|:|=)|####)[ \t]*([^\n]*)", re.IGNORECASE)
 # a number not glued to a word or a decimal point on its left

@@ -12,7 +12,7 @@ is a verifier too. :func:`as_verdicts` normalises any return value to
 :class:`Verdicts`. Scores are "higher is better"; best-of-k keeps the sample
 with the highest score. Rewards are what you actually care about (often 0/1).
 
-Caution (reward hacking): best-of-N and the objectives in :mod:`bonft.credit`
+Caution (reward hacking): best-of-N and the objectives in :mod:`bonft.objectives.credit`
 push the policy towards whatever the verifier scores highly. A verifier that
 can be gamed (length, formatting, keywords) will be gamed; check it with
 :func:`bonft.testing.check_verifier` before spending compute.

@@ -12,9 +12,9 @@ from typing import Any, Sequence
 
 import numpy as np
 
-from .._checks import check_int, check_real
-from .base import Verdicts, as_verdicts
-from .scoring import check_batch
+from bonft._core.checks import check_int, check_real
+from bonft.verifiers.base import Verdicts, as_verdicts
+from bonft.verifiers.scoring import check_batch
 
 
 def _check_verifier(name: str, v: Any) -> Any:

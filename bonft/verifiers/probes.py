@@ -42,7 +42,7 @@ import json
 from dataclasses import dataclass, field
 from typing import Mapping
 
-from .sandbox import CodeRunner
+from bonft.verifiers.sandbox.runner import CodeRunner
 
 PROBES = ("equal_to_anything", "constant_reply", "memorised_asserts", "silent_none", "raise_everywhere",
           "echo_expected", "early_exit")

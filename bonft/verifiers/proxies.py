@@ -20,9 +20,9 @@ from typing import Any, Sequence
 
 import numpy as np
 
-from .._checks import check_real
-from .base import Verdicts, as_verdicts
-from .scoring import check_batch
+from bonft._core.checks import check_real
+from bonft.verifiers.base import Verdicts, as_verdicts
+from bonft.verifiers.scoring import check_batch
 
 
 def _real(name: str, value: Any, *, lo: float | None = None, hi: float | None = None) -> float:

@@ -107,6 +107,6 @@ class VerifierReport:
 
     def plot(self, path: str) -> str:
         """Plot best-of-k (verifier's pick) against the oracle as k grows, to ``path`` (PNG); returns ``path``."""
-        from ..viz import plot_verifier_check
+        from bonft.viz import plot_verifier_check
 
         return plot_verifier_check(self, path)

@@ -24,8 +24,8 @@ from typing import Any, Callable, Sequence
 
 import numpy as np
 
-from .._checks import check_real
-from .base import Verdicts, as_verdicts
+from bonft._core.checks import check_real
+from bonft.verifiers.base import Verdicts, as_verdicts
 
 log = logging.getLogger("bonft.verifiers")
 

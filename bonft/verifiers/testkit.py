@@ -34,7 +34,7 @@ from typing import Any, Mapping, Sequence
 
 import numpy as np
 
-from bonft._checks import check_int, check_real
+from bonft._core.checks import check_int, check_real
 from bonft.verifiers.report import VerifierReport, roc_auc
 from bonft.verifiers.scoring import score_batch
 

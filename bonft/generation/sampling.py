@@ -1,0 +1,369 @@
+"""Sampling n responses per prompt from a causal LM, and the matching training forward pass.
+
+:func:`sample` runs its own decoding loop over any ``transformers`` causal LM
+(anything whose ``forward(input_ids, attention_mask=, position_ids=,
+past_key_values=, use_cache=)`` returns ``.logits`` and ``.past_key_values``;
+the newer ``cache=`` / ``.cache`` spelling is used where the model has it),
+so that it controls the log-probs, the random stream and top-p.
+:func:`sequence_logprobs` recomputes the same per-token log-probs with
+gradients in one forward pass; the two agree to float32 round-off.
+
+Which policy the log-probs belong to matters. Sampling at temperature ``T``
+(and top-p ``p``) draws from ``pi_T(y_t | x, y_<t) = softmax(logits / T)``
+(truncated to the nucleus and renormalised when ``p < 1``). A score-function
+(REINFORCE-style) gradient of a best-of-k objective,
+``grad V_k = E[ A(y) * grad log pi_T(y | x) ]``, is unbiased for ``V_k`` of the
+policy that actually drew the samples only when ``log pi_T`` is taken at that
+same ``T`` (and ``p``) -- see Chow et al. 2024, "Inference-Aware Fine-Tuning for
+Best-of-N Sampling in LLMs". Log-probs at ``T = 1`` for samples drawn at
+``T != 1`` give a biased gradient. Both functions therefore take the
+temperature, and ``Samples`` records it.
+"""
+from __future__ import annotations
+
+import contextlib
+from dataclasses import dataclass
+from typing import Sequence
+
+import torch
+
+from bonft.generation import decode_step as _decode_step
+from bonft.generation import prefix_attention as _prefix_attn
+from bonft.generation.policy import _draw, _log_policy
+from bonft.generation.inputs import (
+    _check_long, _check_model, _check_prompts, _check_temperature, _check_top_p, _left_pad, _model_device, _rng_state, _set_rng_state, _special_ids,
+)
+from bonft.generation.kvcache import _accepts, _cache_arg, _cache_of, _decode_cache, _positions, _prompt_pass
+from bonft._core.checks import check_int
+
+
+@dataclass
+class Samples:
+    """n sampled responses for each of B prompts.
+
+    prompt_tokens:     (B, Tp) long, left-padded with the pad id.
+    prompt_valid:    (B, Tp) long, 1 on prompt tokens.
+    reply_tokens:   (B, n, T) long, right-padded with the pad id.
+    reply_valid:  (B, n, T) long, 1 on generated tokens up to and including EOS.
+    token_logprobs: (B, n, T) float, log pi_T of each generated token at the
+                    sampling temperature (top-p renormalised if used), 0 where masked.
+    texts:          B lists of n decoded responses (special tokens removed).
+    temperature:    the sampling temperature T.
+    top_p:          the nucleus mass used (1.0 = none).
+    """
+
+    prompt_tokens: torch.Tensor
+    prompt_valid: torch.Tensor
+    reply_tokens: torch.Tensor
+    reply_valid: torch.Tensor
+    token_logprobs: torch.Tensor
+    texts: list[list[str]]
+    temperature: float
+    top_p: float = 1.0
+
+    @property
+    def n(self) -> int:
+        return int(self.reply_tokens.shape[1])
+
+    def sequence_logprob(self) -> torch.Tensor:
+        """(B, n): log pi_T of each whole response (sum of token log-probs)."""
+        return self.token_logprobs.sum(-1)
+
+    def lengths(self) -> torch.Tensor:
+        """(B, n): number of generated tokens (EOS included)."""
+        return self.reply_valid.sum(-1)
+
+
+# ---------------------------------------------------------------- sampling
+
+
+@torch.no_grad()  # sampling never builds a graph; training log-probs come from sequence_logprobs
+def _sample_rows(model, ids, mask, *, temperature, top_p, max_new_tokens, pad_id, eos_id, generator,
+                 generators=None, n=1, shared_prefix=True):
+    """Decode n samples of each of P prompts. ids, mask: (P, Tp) -> tokens, gen_mask, logprobs: (P*n, t_max).
+
+    ``shared_prefix``: keep one copy of each prompt's KV cache for its n rows (``_prefix_attn``);
+    raises ``PrefixUnsupported`` after the first step if the model does not use it.
+    """
+    cache_arg = _cache_arg(model)
+    past, logits, state = _decode_cache(model, ids, mask, n, max_new_tokens, shared_prefix=shared_prefix)
+    # logits (R, V), R = P*n rows: row p*n + j is sample j of prompt p
+    Tp = mask.shape[1]
+    full = torch.ones((ids.shape[0] * n, Tp + max_new_tokens), dtype=mask.dtype, device=mask.device)
+    full[:, :Tp] = mask.repeat_interleave(n, 0)  # (R, Tp + max_new_tokens): generated positions are all real
+    mask = full[:, :Tp]  # (R, Tp), grows by one column a step as a view
+    R = mask.shape[0]
+    pos = _positions(mask)[:, -1]  # (R,) position of each row's last prompt token
+    done = torch.zeros(R, dtype=torch.bool, device=ids.device)
+    toks, gmask, lps = [], [], []
+    step = _decode_step.for_model(model, past, state)  # bonft's own forward for stock GPT-2 / Llama, else None
+    registry = state is not None and step is None  # the model's own forward, calling our attention
+    with (_prefix_attn.decoding(model, state) if registry else contextlib.nullcontext()) as shared:
+        for _ in range(max_new_tokens):
+            logp = _log_policy(logits, temperature, top_p)  # (R, V)
+            nxt = _draw(logp, generator, generators, n)  # (R,)
+            lp = logp.gather(-1, nxt[:, None]).squeeze(-1)
+            live = ~done
+            nxt = torch.where(live, nxt, torch.full_like(nxt, pad_id))
+            toks.append(nxt)
+            gmask.append(live.long())
+            lps.append(torch.where(live, lp, torch.zeros_like(lp)))
+            if eos_id is not None:
+                done = done | (live & (nxt == eos_id))
+            if bool(done.all()) or len(toks) == max_new_tokens:
+                break
+            pos = pos + 1
+            if step is not None:  # the shared-prompt bias stands in for the mask
+                logits = step(nxt, pos)  # (R, V)
+                continue
+            mask = full[:, :mask.shape[1] + 1]  # (R, Tp + t + 1)
+            try:
+                out = model(input_ids=nxt[:, None], attention_mask=mask, position_ids=pos[:, None],
+                            use_cache=True, **{cache_arg: past})
+            except Exception as e:  # a model that cannot decode on the shared-prompt cache: the caller redoes the chunk
+                if shared and len(toks) == 1:
+                    raise _prefix_attn.PrefixUnsupported(f"the first step failed: {e}") from e
+                raise
+            if shared:
+                shared.check()  # every layer used the shared-prompt attention, else the caller redoes the chunk
+            past, logits = _cache_of(out), out.logits[:, -1, :]
+    return torch.stack(toks, 1), torch.stack(gmask, 1), torch.stack(lps, 1)
+
+
+def sample(
+    model,
+    tokenizer,
+    prompts: Sequence[str],
+    *,
+    n: int,
+    temperature: float = 1.0,
+    top_p: float = 1.0,
+    max_new_tokens: int = 32,
+    seed: int | None = None,
+    seeds: Sequence[int] | None = None,
+    batch_size: int | None = None,
+) -> Samples:
+    """Draw ``n`` responses for each prompt from the temperature-``T`` policy.
+
+    prompts: B strings -> :class:`Samples` with ``reply_tokens (B, n, T)``.
+
+    ``pi_T(y_t | x, y_<t) = softmax(logits_t / T)`` (restricted to the top-p
+    nucleus and renormalised when ``top_p < 1``). Each prompt is repeated n
+    times and the ``B * n`` rows are decoded ``batch_size`` rows at a time
+    (default: all at once; rounded down to whole prompts, at least one) with the
+    model's KV cache; each prompt is run once. On transformers models on the CPU with the stock dynamic
+    cache and sdpa or eager attention, the n rows of a prompt share one copy of its keys and values, read by
+    bonft's own decoding attention (registered under ``"bonft_shared_prefix"`` and switched on only
+    while decoding); other models get the prompt's cache copied to its n rows. On a model that is exactly
+    transformers' ``GPT2LMHeadModel`` or ``LlamaForCausalLM`` (stock submodules, no hooks) the decoding
+    steps run bonft's own forward over the same layers and parameters (``bonft/generation/decode_step.py``:
+    less Python per step, GPT-2's tanh GELU in fewer passes; equal to the model's forward to float32
+    round-off). A row stops at EOS;
+    afterwards it gets the pad id, mask 0 and log-prob 0. Prompts are
+    tokenized with the tokenizer's own special tokens and left-padded; the
+    attention mask and position ids (counted from each row's first real
+    token) make padding invisible to the model.
+
+    Decoding runs under ``torch.no_grad``: the result holds no autograd graph.
+    ``token_logprobs`` are log pi_T at the *sampling* temperature: the policy
+    that drew the samples. Use them (or :func:`sequence_logprobs` at the same
+    ``temperature``) in score-function gradients; otherwise the estimate of
+    ``grad V_k`` at ``T`` is biased (Chow et al. 2024).
+
+    ``seed``: an int makes the draw reproducible (same arguments, same device ->
+    same samples) through a private ``torch.Generator``; ``None`` uses torch's
+    global RNG. ``seeds``: one int per prompt instead; prompt b's responses then
+    depend only on (model, prompt b, seeds[b]), not on the other prompts in the
+    call (up to float round-off of batched kernels), which lets ranks holding
+    different prompts draw what one process would. Chunks then hold whole
+    prompts. The model is put in eval mode while sampling and restored after.
+    """
+    _check_model(model)
+    prompts = _check_prompts(prompts)
+    n = check_int("n", n, min=1)
+    temperature = _check_temperature(temperature)
+    top_p = _check_top_p(top_p)
+    max_new_tokens = check_int("max_new_tokens", max_new_tokens, min=1)
+    if seed is not None:
+        seed = check_int("seed", seed, min=0)
+    if batch_size is not None:
+        batch_size = check_int("batch_size", batch_size, min=1)
+    if seeds is not None:
+        if seed is not None:
+            raise ValueError("give seed or seeds, not both")
+        seeds = [check_int("seeds", v, min=0) for v in seeds]
+        if len(seeds) != len(prompts):
+            raise ValueError(f"seeds must hold one seed per prompt ({len(prompts)} prompts), got {len(seeds)} seeds")
+
+    pad_id, eos_id = _special_ids(tokenizer)
+    rows = [list(tokenizer(p)["input_ids"]) for p in prompts]
+    for i, r in enumerate(rows):
+        if not r:
+            raise ValueError(f"prompts must encode to at least one token, got an empty encoding at index {i}")
+    limit = getattr(getattr(model, "config", None), "max_position_embeddings", None)
+    longest = max(len(r) for r in rows)
+    if isinstance(limit, int) and longest + max_new_tokens > limit:
+        raise ValueError(
+            f"max_new_tokens must be <= {limit - longest} (the model has {limit} positions and the longest "
+            f"prompt takes {longest} tokens), got max_new_tokens={max_new_tokens}"
+        )
+    device = _model_device(model)
+    prompt_tokens, prompt_valid = _left_pad(rows, pad_id)
+    B, Tp = prompt_tokens.shape
+    ids, mask = prompt_tokens.to(device), prompt_valid.to(device)  # (B, Tp); each is expanded to n rows when decoded
+    chunk = n * max(1, (batch_size or B * n) // n)  # rows per decoding chunk, whole prompts
+    generator, generators = None, None
+    if seed is not None:
+        generator = torch.Generator(device=device)
+        generator.manual_seed(seed)
+    if seeds is not None:
+        generators = [torch.Generator(device=device) for _ in seeds]
+        for g, v in zip(generators, seeds):
+            g.manual_seed(v)
+
+    was_training = getattr(model, "training", False)
+    if hasattr(model, "eval"):
+        model.eval()
+    try:
+        parts = []
+        for s in range(0, B * n, chunk):
+            kw = dict(temperature=temperature, top_p=top_p, max_new_tokens=max_new_tokens, pad_id=pad_id,
+                      eos_id=eos_id, generator=generator, n=n,
+                      generators=None if generators is None else generators[s // n:(s + chunk) // n])
+            rows_ids, rows_mask = ids[s // n:(s + chunk) // n], mask[s // n:(s + chunk) // n]
+            rng = _rng_state(generator, kw["generators"], device)
+            try:
+                parts.append(_sample_rows(model, rows_ids, rows_mask, **kw))
+            except _prefix_attn.PrefixUnsupported:  # the model bypassed our attention: redo with the stock cache
+                _set_rng_state(rng, generator, kw["generators"], device)
+                parts.append(_sample_rows(model, rows_ids, rows_mask, shared_prefix=False, **kw))
+    finally:
+        if was_training and hasattr(model, "train"):
+            model.train()
+
+    T = max(p[0].shape[1] for p in parts)
+    resp = torch.full((B * n, T), pad_id, dtype=torch.long, device=device)
+    rmask = torch.zeros((B * n, T), dtype=torch.long, device=device)
+    rlp = torch.zeros((B * n, T), dtype=torch.float32, device=device)
+    r0 = 0
+    for toks, gm, lp in parts:  # chunks may stop at different lengths: right-pad to T
+        r1, t = r0 + toks.shape[0], toks.shape[1]
+        resp[r0:r1, :t], rmask[r0:r1, :t], rlp[r0:r1, :t] = toks, gm, lp
+        r0 = r1
+
+    flat = []
+    for toks, m in zip(resp.tolist(), rmask.tolist()):
+        kept = [t for t, keep in zip(toks, m) if keep and t != eos_id]
+        flat.append(tokenizer.decode(kept, skip_special_tokens=True))
+    texts = [flat[b * n:(b + 1) * n] for b in range(B)]
+    return Samples(
+        prompt_tokens=prompt_tokens.to(device),
+        prompt_valid=prompt_valid.to(device),
+        reply_tokens=resp.view(B, n, T),  # (B*n, T) -> (B, n, T)
+        reply_valid=rmask.view(B, n, T),
+        token_logprobs=rlp.view(B, n, T),
+        texts=texts,
+        temperature=temperature,
+        top_p=top_p,
+    )
+
+
+# ---------------------------------------------------------------- training forward
+
+
+def encode_responses(tokenizer, prompts: Sequence[str], responses, *, add_eos: bool = True):
+    """Token tensors for given texts, in the layout of :class:`Samples` (e.g. for supervised warm-starts).
+
+    prompts: B strings; responses: B lists of n strings (or B strings, n = 1) ->
+    ``(prompt_tokens (B, Tp), prompt_valid (B, Tp), reply_tokens (B, n, T), reply_valid (B, n, T))``,
+    prompts left-padded and tokenized with the tokenizer's special tokens, responses
+    without them, right-padded, each followed by EOS when ``add_eos`` (the tokenizer
+    must have one). ``sequence_logprobs(model, *encode_responses(...))`` is then the
+    log-likelihood of each response.
+    """
+    prompts = _check_prompts(prompts)
+    if isinstance(responses, str):
+        raise TypeError("responses must be a sequence (one entry per prompt), got a single str")
+    responses = list(responses)
+    if len(responses) != len(prompts):
+        raise ValueError(f"responses must have one entry per prompt (len(prompts)={len(prompts)}), got {len(responses)}")
+    groups = [[r] if isinstance(r, str) else list(r) for r in responses]
+    n = len(groups[0])
+    for i, g in enumerate(groups):
+        if len(g) != n or n == 0:
+            raise ValueError(f"responses must give the same number n >= 1 of responses per prompt (n={n}), got {len(g)} at index {i}")
+        for r in g:
+            if not isinstance(r, str):
+                raise TypeError(f"responses must hold str, got {type(r).__name__} at index {i}")
+    pad_id, eos_id = _special_ids(tokenizer)
+    if add_eos and eos_id is None:
+        raise ValueError("add_eos=True needs a tokenizer with an eos token, got eos_token_id=None")
+    prompt_tokens, prompt_valid = _left_pad([list(tokenizer(p)["input_ids"]) for p in prompts], pad_id)
+    rows = [list(tokenizer(r, add_special_tokens=False)["input_ids"]) + ([eos_id] if add_eos else [])
+            for g in groups for r in g]
+    T = max(1, max(len(r) for r in rows))
+    ids = torch.full((len(rows), T), pad_id, dtype=torch.long)
+    mask = torch.zeros((len(rows), T), dtype=torch.long)
+    for i, r in enumerate(rows):
+        ids[i, :len(r)] = torch.tensor(r, dtype=torch.long)
+        mask[i, :len(r)] = 1
+    B = len(prompts)
+    return prompt_tokens, prompt_valid, ids.view(B, n, T), mask.view(B, n, T)  # (B*n, T) -> (B, n, T)
+
+
+def sequence_logprobs(
+    model,
+    prompt_tokens: torch.Tensor,
+    prompt_valid: torch.Tensor,
+    reply_tokens: torch.Tensor,
+    reply_valid: torch.Tensor,
+    *,
+    temperature: float = 1.0,
+    top_p: float = 1.0,
+) -> torch.Tensor:
+    """Per-token log pi_T of given responses, differentiable: (B, Tp), (B, n, T) -> (B, n, T).
+
+    ``out[b, j, t] = log softmax(logits / T)[reply_tokens[b, j, t]]`` given the
+    prompt and the earlier response tokens, 0 where ``reply_valid`` is 0.
+    Each prompt runs once; its KV cache is copied to its n rows and the
+    ``B * n`` responses run on top of it (models without an expandable cache
+    get one pass over ``[prompt_b ; response_bj]`` rows). Position ids count
+    from the first real token, so left padding of prompts and right padding of responses change
+    nothing. With the ``temperature`` (and ``top_p``) used by :func:`sample`
+    this reproduces ``Samples.token_logprobs`` to float32 round-off; use the
+    sampling temperature for unbiased score-function gradients (Chow et al. 2024).
+    Runs in whatever mode the model is in (the tiny models have no dropout).
+    """
+    _check_model(model)
+    _check_long("prompt_tokens", prompt_tokens, 2)
+    _check_long("prompt_valid", prompt_valid, 2)
+    _check_long("reply_tokens", reply_tokens, 3)
+    _check_long("reply_valid", reply_valid, 3)
+    if prompt_valid.shape != prompt_tokens.shape:
+        raise ValueError(f"prompt_valid must have the shape of prompt_tokens {tuple(prompt_tokens.shape)}, got {tuple(prompt_valid.shape)}")
+    if reply_valid.shape != reply_tokens.shape:
+        raise ValueError(f"reply_valid must have the shape of reply_tokens {tuple(reply_tokens.shape)}, got {tuple(reply_valid.shape)}")
+    if reply_tokens.shape[0] != prompt_tokens.shape[0]:
+        raise ValueError(f"reply_tokens must have B={prompt_tokens.shape[0]} rows like prompt_tokens, got {reply_tokens.shape[0]}")
+    temperature = _check_temperature(temperature)
+    top_p = _check_top_p(top_p)
+
+    B, n, T = reply_tokens.shape
+    resp = reply_tokens.reshape(B * n, T)  # (B, n, T) -> (B*n, T): row b*n + j is response j of prompt b
+    mask = torch.cat([prompt_valid.repeat_interleave(n, 0), reply_valid.reshape(B * n, T)], dim=1)  # (B*n, Tp+T)
+    past, first = _prompt_pass(model, prompt_tokens, prompt_valid, n)  # first (B*n, V) predicts response token 0
+    if past is not None:
+        # the prompt ran once per prompt; the responses attend to its copied cache
+        pos = _positions(prompt_valid)[:, -1:].repeat_interleave(n, 0) + 1 + torch.arange(T, device=resp.device)
+        out = model(input_ids=resp, attention_mask=mask, position_ids=pos, use_cache=True,
+                    **{_cache_arg(model): past})
+        logits = torch.cat([first[:, None, :], out.logits[:, :-1, :]], dim=1)  # (B*n, T, V): token t given < t
+    else:
+        ids = torch.cat([prompt_tokens.repeat_interleave(n, 0), resp], dim=1)  # (B*n, Tp+T)
+        kwargs = {"logits_to_keep": T + 1} if _accepts(model, "logits_to_keep") else {}
+        logits = model(input_ids=ids, attention_mask=mask, position_ids=_positions(mask), **kwargs).logits
+        logits = logits[:, -(T + 1):-1, :]  # (B*n, T, V): position Tp-1+t predicts response token t
+    logp = _log_policy(logits, temperature, top_p)
+    tok = logp.gather(-1, reply_tokens.reshape(B * n, T, 1)).squeeze(-1)  # (B*n, T)
+    tok = tok.masked_fill(reply_valid.reshape(B * n, T) == 0, 0.0)
+    return tok.view(B, n, T)  # (B*n, T) -> (B, n, T)

@@ -1,0 +1,139 @@
+"""The transformer part of :func:`bonft.objcheck.check_objective`.
+
+A tiny GPT-2 (``transformers``, built from a config: nothing is downloaded) with a vocabulary of
+``vocab`` tokens answers one fixed prompt token with ``length`` tokens; all ``vocab^length``
+responses are enumerated, so ``pi(y) = prod_t softmax(logits_t)[y_t]`` sums to 1 and the target
+``V(theta)`` is exact. Each response belongs to one of a few score/reward classes.
+
+* exact ``grad V`` by autograd through the model, and central finite differences of ``V`` along
+  random unit directions ``u`` in parameter space: ``(V(theta + h u) - V(theta - h u)) / 2h``;
+* the expected loss gradient, exact: the credit only sees scores and rewards, so with class
+  probabilities ``q_c`` and ``A_c = E[sum_{i: class(y_i) = c} w_i]`` (enumerated over multisets of
+  classes) ``E[sum_i w_i grad log pi(y_i)] = sum_y pi(y) (A_c(y) / q_c(y)) grad log pi(y)``: the
+  gradient of ``policy_gradient_loss`` on all responses with credit ``pi(y) A_c / q_c``;
+* a Monte Carlo mean over pools drawn from the model, projected on each direction through
+  ``d log pi(y) / du`` (central differences), with a 99.9% normal interval.
+"""
+from __future__ import annotations
+
+import itertools
+
+import numpy as np
+import torch
+
+from bonft.objcheck import _multisets, _ordered, _MAX_ROWS, call_credit, value_fn
+from bonft.objcheck.report import MC_Z
+
+
+def _classes(rng: np.random.Generator, N: int, name: str) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Class of each response (N,), class scores (C,), class rewards (C,)."""
+    if name == "pass_at_k":
+        cs = np.array([0.0, 1.0])
+        cr = cs.copy()
+    elif name == "bon_sft":
+        cs, cr = np.array([0.0, 1.0, 2.0]), np.zeros(3)
+    else:
+        cs = np.array([0.0, 0.0, 1.0, 1.0, 2.0, 2.0])  # ties across classes
+        cr = np.round(rng.normal(size=6), 2)
+    C = len(cs)
+    cls = np.concatenate([np.arange(C), rng.integers(0, C, N - C)])
+    return rng.permutation(cls), cs, cr
+
+
+def _loss_value(lp: torch.Tensor, credit: torch.Tensor) -> torch.Tensor:
+    from bonft.objectives.losses import policy_gradient_loss
+
+    out = policy_gradient_loss(lp, credit)
+    return out[0] if isinstance(out, tuple) else out
+
+
+def transformer_check(credit, t, k: int, n: int, *, ordered: bool, seed: int, tolerance: float,
+                      directions: int = 3, mc_pools: int = 400, vocab: int = 4, length: int = 3,
+                      h: float = 1e-4) -> dict:
+    """Exact, finite-difference and Monte Carlo gradients of the target on a tiny transformer (a dict)."""
+    from torch.func import functional_call
+
+    from bonft.trainer.models import build_tiny_model
+
+    model = build_tiny_model("gpt2", vocab_size=vocab, layers=1, width=16, heads=2, max_positions=length + 1,
+                             seed=seed).double()
+    resp = torch.tensor(list(itertools.product(range(vocab), repeat=length)), dtype=torch.long)  # (N, T)
+    N = resp.shape[0]
+    ids = torch.cat([torch.zeros(N, 1, dtype=torch.long), resp], 1)  # one fixed prompt token
+    names, theta = zip(*[(nm, p.detach().clone()) for nm, p in model.named_parameters()])
+
+    def logp_at(params) -> torch.Tensor:  # (N,) sequence log-probs of every response
+        logits = functional_call(model, dict(zip(names, params)), (ids,)).logits[:, :-1]
+        return torch.log_softmax(logits, -1).gather(-1, resp[..., None])[..., 0].sum(-1)
+
+    rng = np.random.default_rng(seed)
+    cls, cs, cr = _classes(rng, N, t.name)
+    scores, rewards = cs[cls], cr[cls]
+    expert = int(rng.integers(N)) if t.name == "bon_sft" else None
+    s_star = float(scores[expert]) if expert is not None else None
+    value = value_fn(t, scores, rewards, expert, k)
+
+    # exact gradient of the target
+    req = [p.clone().requires_grad_() for p in theta]
+    lp = logp_at(req)
+    gV = torch.cat([g.reshape(-1) for g in torch.autograd.grad(value(torch.exp(lp)), req)])
+    lp = lp.detach()
+    pi = torch.exp(lp)
+
+    # random unit directions; finite differences of V and of every log pi(y) along them
+    gen = torch.Generator().manual_seed(seed)
+    U = torch.randn(directions, gV.numel(), generator=gen, dtype=torch.float64)
+    U /= U.norm(dim=1, keepdim=True)
+    fd, D = [], torch.empty(N, directions, dtype=torch.float64)
+    sizes = [p.numel() for p in theta]
+    with torch.no_grad():
+        for d in range(directions):
+            parts = U[d].split(sizes)
+            lp_p = logp_at([p + h * u.view_as(p) for p, u in zip(theta, parts)])
+            lp_m = logp_at([p - h * u.view_as(p) for p, u in zip(theta, parts)])
+            fd.append((float(value(torch.exp(lp_p))) - float(value(torch.exp(lp_m)))) / (2 * h))
+            D[:, d] = (lp_p - lp_m) / (2 * h)
+    exact_dir = (U @ gV).tolist()
+    scale = max(float(gV.norm()), 1e-9)
+
+    # the expected loss gradient, exact over pools of classes
+    q = np.bincount(cls, weights=pi.numpy(), minlength=len(cs))
+    C = len(cs)
+    gE = None
+    if not ordered or C**n <= _MAX_ROWS:
+        Y, logc = (_ordered(C, n), np.zeros(C**n)) if ordered else _multisets(C, n)
+        w = call_credit(credit, t, cs[Y], cr[Y], s_star, k)
+        P = np.exp(logc + np.log(q)[Y].sum(1))
+        A = np.zeros(C)
+        np.add.at(A, Y.ravel(), (P[:, None] * w).ravel())
+        weights = torch.from_numpy(pi.numpy() * (A / q)[cls])[None]  # (1, N)
+        req = [p.clone().requires_grad_() for p in theta]
+        lp_r = logp_at(req)
+        objective = -_loss_value(lp_r[None], weights)
+        if expert is not None:
+            objective = objective + lp_r[expert]  # exact expert term of log pi_bon(y*)
+        gE = torch.cat([g.reshape(-1) for g in torch.autograd.grad(objective, req)])
+
+    # Monte Carlo pools drawn from the model
+    Ymc = torch.multinomial(pi, mc_pools * n, replacement=True, generator=gen).view(mc_pools, n).numpy()
+    w = call_credit(credit, t, scores[Ymc], rewards[Ymc], s_star, k)
+    proj = np.einsum("mi,mid->md", w, D.numpy()[Ymc])
+    if expert is not None:
+        proj = proj + D[expert].numpy()
+    mean, se = proj.mean(0), proj.std(0, ddof=1) / np.sqrt(mc_pools)
+    rows = []
+    for d in range(directions):
+        lo, hi = mean[d] - MC_Z * se[d], mean[d] + MC_Z * se[d]
+        slack = 1e-9 * scale
+        rows.append({"finite_diff": fd[d], "exact": exact_dir[d],
+                     "expected": None if gE is None else float(U[d] @ gE),
+                     "mc_mean": float(mean[d]), "mc_lo": float(lo), "mc_hi": float(hi),
+                     "covered": bool(lo - slack <= fd[d] <= hi + slack)})
+    out = {"vocab": vocab, "length": length, "responses": N, "parameters": int(gV.numel()), "classes": C, "grad_norm": scale,
+           "pools": None if gE is None else int(len(Y)), "mc_pools": mc_pools, "directions": rows,
+           "fd_error": max(abs(a - b) for a, b in zip(fd, exact_dir)) / max(scale, 1e-3),
+           "rel_error": None, "projection": None, "cosine": None}
+    if gE is not None:
+        out.update(rel_error=float((gE - gV).norm()) / scale, projection=float(gE @ gV) / scale**2,
+                   cosine=float(gE @ gV) / scale / max(float(gE.norm()), 1e-300))
+    return out

@@ -1,0 +1,107 @@
+"""Several strategies side by side on the same pools: V_k per strategy with bootstrap CIs over prompts.
+
+Every strategy is estimated on the same prompts and the bootstrap uses one seed, so each
+replicate resamples the same prompts for every strategy (paired intervals, Efron & Tibshirani
+1993). Sampled estimates (weighted vote on large pools) also report their Monte-Carlo standard
+error, averaged over prompts.
+
+References: Efron & Tibshirani 1993 (percentile bootstrap); Hoeffding 1948 (U-statistics);
+Wang et al. 2023 (majority vote); Chow et al. 2024 (best-of-N).
+"""
+from __future__ import annotations
+
+import json
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from bonft.estimate import MIN_BOOT_PROMPTS, bootstrap_ci
+from bonft.strategies import get_strategy
+from bonft.strategies.estimators import MAX_SUBSETS, strategy_at_k
+
+__all__ = ["StrategyCurves", "compare_strategies"]
+
+
+@dataclass
+class StrategyCurves:
+    """``V_k`` of each strategy: ``mean[name], lo[name], hi[name], mc_se[name]``: (K,) arrays; ``per_prompt[name]``: (P, K)."""
+
+    ks: np.ndarray
+    n_prompts: int
+    names: list[str]
+    mean: dict = field(default_factory=dict)
+    lo: dict = field(default_factory=dict)
+    hi: dict = field(default_factory=dict)
+    mc_se: dict = field(default_factory=dict)
+    per_prompt: dict = field(default_factory=dict, repr=False)
+    confidence: float = 0.95
+
+    @property
+    def intervals_valid(self) -> bool:
+        return self.n_prompts >= MIN_BOOT_PROMPTS
+
+    def best(self) -> list[str]:
+        """The servable strategy with the highest mean at each k (``pass`` is an oracle, not servable)."""
+        names = [s for s in self.names if s != "pass"] or self.names
+        return [max(names, key=lambda s: self.mean[s][j]) for j in range(len(self.ks))]
+
+    def table(self) -> str:
+        """One row per k, one column block per strategy (mean and interval), and the best one."""
+        ok = self.intervals_valid
+        w = 26
+        head = f"{'k':>6}  " + "  ".join(f"{s:^{w}}" for s in self.names) + "  best"
+        lines = [f"prompts: {self.n_prompts}   {100 * self.confidence:g}% intervals over prompts", head]
+        for j, (k, b) in enumerate(zip(self.ks, self.best())):
+            cells = []
+            for s in self.names:
+                ci = f"[{self.lo[s][j]:.3f}, {self.hi[s][j]:.3f}]" if ok else "[n/a]"
+                cells.append(f"{self.mean[s][j]:.4f} {ci}".center(w))
+            lines.append(f"{int(k):>6}  " + "  ".join(cells) + f"  {b}")
+        sampled = [s for s in self.names if (self.mc_se[s] > 0).any()]
+        for s in sampled:
+            lines.append(f"{s}: sampled k-subsets where C(n,k) is large; mean Monte-Carlo standard error per "
+                         f"prompt up to {self.mc_se[s].max():.4f}")
+        if not ok:
+            lines.append(f"intervals n/a: {self.n_prompts} prompt(s); a bootstrap over prompts needs at least {MIN_BOOT_PROMPTS}")
+        return "\n".join(lines)
+
+    def to_dict(self) -> dict:
+        d = {"ks": [int(k) for k in self.ks], "n_prompts": int(self.n_prompts), "confidence": self.confidence,
+             "intervals_valid": self.intervals_valid, "best": self.best(), "strategies": {}}
+        for s in self.names:
+            d["strategies"][s] = {key: [float(x) for x in getattr(self, key)[s]] for key in ("mean", "lo", "hi", "mc_se")}
+            d["strategies"][s]["per_prompt"] = np.asarray(self.per_prompt[s], dtype=float).tolist()
+        json.dumps(d, allow_nan=False)
+        return d
+
+
+def compare_strategies(strategies, *, ks, rewards, scores=None, answers=None, confidence=0.95, n_boot=2000, seed=0,
+                       max_subsets=MAX_SUBSETS) -> StrategyCurves:
+    r"""Estimate each strategy on the same pools, with paired bootstrap intervals over prompts.
+
+    Shape: ``rewards, scores, answers (P, n)`` (or lists of per-prompt arrays) -> :class:`StrategyCurves`
+    of ``(K,)`` curves per strategy.
+
+    .. math:: \bar V_k = \frac1P\sum_p \hat V_k^{(p)}
+
+    ``strategies``: names or :class:`bonft.strategies.Strategy` objects. Values are the unbiased
+    per-prompt estimates of :func:`bonft.strategies.estimators.strategy_at_k`; intervals are the paired
+    percentile bootstrap of :func:`bonft.estimate.bootstrap_ci` over prompts.
+
+    References: Efron & Tibshirani 1993; Hoeffding 1948.
+    """
+    sts = [get_strategy(s) for s in strategies]
+    if not sts:
+        raise ValueError("strategies must name at least one strategy, got none")
+    out = None
+    for st in sts:
+        v, se = strategy_at_k(st, ks=list(ks), rewards=rewards, scores=scores, answers=answers,
+                              max_subsets=max_subsets, seed=seed)
+        if out is None:
+            out = StrategyCurves(ks=np.asarray(list(ks)), n_prompts=v.shape[0], names=[], confidence=confidence)
+        m, lo, hi = bootstrap_ci(v, confidence=confidence, n_boot=n_boot, seed=seed)
+        out.names.append(st.name)
+        out.mean[st.name], out.lo[st.name], out.hi[st.name] = m, lo, hi
+        out.mc_se[st.name] = se.mean(0)
+        out.per_prompt[st.name] = v
+    return out

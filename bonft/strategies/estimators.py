@@ -1,0 +1,360 @@
+r"""Unbiased strategy values and per-sample credit from pools of samples.
+
+For one prompt we hold a pool of ``n`` samples, each with an answer key, a verifier score and a
+true reward. The estimate of ``V_k`` averages the served reward over all ``C(n, k)`` k-subsets of
+the pool (a U-statistic, Hoeffding 1948), so it is unbiased for the strategy's value under the
+policy that produced the pool:
+
+.. math:: \hat V_k = \binom nk^{-1}\sum_{|S|=k} f(S)
+
+* majority vote: exact for every ``k <= n`` at once by a dynamic programme over answer counts
+  (:mod:`bonft.strategies.counting`); ``f(S) = sum_a share_a(S) * mean reward of a's samples in S``;
+* weighted vote: exact over all k-subsets while ``C(n, k) <= max_subsets``, otherwise the mean of
+  ``max_subsets`` uniform random k-subsets, still unbiased, with its standard error;
+* best-of-k and pass@k: the closed forms of :mod:`bonft.estimate`.
+
+Credit. With ``kb = min(k, n-1)``, the per-sample credit
+
+.. math::
+    w_i = \frac kn\Big(\mathrm{mean}_{S\ni i,|S|=k} f(S) - \mathrm{mean}_{S\not\ni i,|S|=kb} f(S)\Big)
+        = \hat V_k(\text{pool}) - \hat V_{kb}(\text{pool} \setminus i)
+
+gives ``E[sum_i w_i grad log pi(y_i)] = grad V_k`` exactly: the first term regroups the
+U-statistic of the score-function gradient by sample, the second (a leave-one-out baseline) never
+looks at sample ``i``. The second form holds for ``k < n`` and for ``k = n``
+(``C(n-1, n) = 0``). The sampled weighted-vote credit
+``w_i = mean_m f(S_m)(1{i in S_m} - k/(n-k) 1{i not in S_m})`` is unbiased for the same ``w_i``.
+
+References: Hoeffding 1948 (U-statistics); Kool et al. 2019 (leave-one-out baselines);
+Chow et al. 2024 (best-of-N policy gradients); Walder & Karkhanis 2025 (U-statistic pass@k
+gradients); Wang et al. 2023 (majority vote).
+
+Caution: credit for a vote pushes the policy towards answers the extraction or the verifier
+favours, right or wrong (reward hacking); watch a held-out true reward.
+"""
+from __future__ import annotations
+
+import itertools
+import math
+
+import numpy as np
+import torch
+
+from bonft import estimate as _estimate
+from bonft._core.checks import as_float_array, check_finite, check_int, check_k, check_ks, is_tensor
+from bonft.strategies.counting import pool_vote_sums, vote_credit_batched, weighted_slot_weights
+
+__all__ = [
+    "vote_at_k_per_prompt", "weighted_vote_at_k_per_prompt", "vote_credit", "weighted_vote_credit",
+    "strategy_at_k", "strategy_credit",
+]
+
+_MAX_N_EXACT = 1000  # binomials of the count DP stay inside float64 (2^1000 ~ 1e301)
+MAX_SUBSETS = 4000  # weighted vote: exact over all k-subsets up to this many, else this many sampled
+
+
+# ---------------------------------------------------------------------------- inputs
+
+
+def _out_kind(*xs):
+    """Torch out when an input is a tensor (its device, its floating dtype or float64), else numpy."""
+    for x in xs:
+        if is_tensor(x):
+            return x.device, (x.dtype if x.dtype.is_floating_point else torch.float64)
+    return None
+
+
+def _finish(w: np.ndarray, kind):
+    return w if kind is None else torch.as_tensor(w, dtype=kind[1], device=kind[0])
+
+
+def _rows(name: str, x, *, numeric: bool) -> list[np.ndarray]:
+    """(P, n) array or a list of 1-D per-prompt arrays -> list of 1-D arrays."""
+    if is_tensor(x):
+        x = x.detach().cpu().numpy()
+    if isinstance(x, np.ndarray) and x.ndim == 2:
+        rows = list(x)
+    elif isinstance(x, (list, tuple)) and x and not np.isscalar(x[0]):
+        rows = [r.detach().cpu().numpy() if is_tensor(r) else np.asarray(r) for r in x]
+    else:
+        arr = np.asarray(x)
+        if arr.ndim != 2:
+            raise ValueError(f"{name} must have shape (P, n) or be a list of per-prompt arrays, got shape {arr.shape}")
+        rows = list(arr)
+    out = []
+    for p, r in enumerate(rows):
+        if r.ndim != 1 or len(r) == 0:
+            raise ValueError(f"{name}[{p}] must be a non-empty 1-D pool, got shape {r.shape}")
+        if numeric:
+            r = as_float_array(f"{name}[{p}]", r)
+            check_finite(f"{name}[{p}]", r)
+        out.append(r)
+    return out
+
+
+def _codes(answers: list[np.ndarray]) -> list[np.ndarray]:
+    """Answer keys of any comparable kind -> int codes 0..A-1 per pool."""
+    out = []
+    for p, a in enumerate(answers):
+        try:
+            out.append(np.unique(a, return_inverse=True)[1].reshape(-1))
+        except TypeError:
+            raise TypeError(f"answers[{p}] must hold comparable keys (ints or strings), got dtype {a.dtype}") from None
+    return out
+
+
+def _same_lengths(**pools: list[np.ndarray]) -> None:
+    items = list(pools.items())
+    n0, first = items[0]
+    for name, rows in items[1:]:
+        if len(rows) != len(first):
+            raise ValueError(f"{name} must hold {len(first)} pools like {n0}, got {len(rows)}")
+        for p, (a, b) in enumerate(zip(first, rows)):
+            if len(a) != len(b):
+                raise ValueError(f"{name}[{p}] must have {len(a)} samples like {n0}[{p}], got {len(b)}")
+
+
+# ---------------------------------------------------------------------------- majority vote
+
+
+def _vote_pool(codes: np.ndarray, r: np.ndarray, ks: np.ndarray) -> np.ndarray:
+    """One pool -> (K,) majority-vote values."""
+    counts = np.bincount(codes)
+    rbar = np.bincount(codes, weights=r) / counts
+    d, cls, mult = np.unique(counts, return_inverse=True, return_counts=True)
+    per_class_r = np.bincount(cls.reshape(-1), weights=rbar, minlength=len(d))  # (J,) sum of rbar per class
+    sums = pool_vote_sums(d, mult, per_class_r, int(ks.max()))
+    return sums[ks] / np.array([float(math.comb(len(r), k)) for k in ks])
+
+
+def vote_at_k_per_prompt(answers, rewards, *, ks):
+    r"""Unbiased majority-vote value of every pool.
+
+    Shape: ``answers (P, n), rewards (P, n) -> (P, K)`` (``(P,)`` for an int ``ks``).
+
+    .. math:: \hat V_k = \sum_a \hat P_k(a\ \text{wins})\,\bar r_a,\quad
+              \hat P_k(a\ \text{wins}) = \binom nk^{-1}\sum_{|S|=k}\frac{1\{c_a(S)=\max\}}{\#\{b: c_b(S)=\max\}}
+
+    ``answers`` are any comparable keys (ints, strings); ``rbar_a`` is the mean reward of the
+    pool's samples with answer ``a``. Exact U-statistic over all k-subsets by a dynamic
+    programme over answer counts (every k <= n in one pass); pools up to n = 1000.
+    Ragged pools: lists of 1-D arrays.
+
+    References: Wang et al. 2023 (majority vote); Hoeffding 1948 (U-statistics).
+    """
+    ans = _rows("answers", answers, numeric=False)
+    rew = _rows("rewards", rewards, numeric=True)
+    _same_lengths(answers=ans, rewards=rew)
+    n_min, n_max = min(len(a) for a in ans), max(len(a) for a in ans)
+    if n_max > _MAX_N_EXACT:
+        raise ValueError(f"answers pools must have n <= {_MAX_N_EXACT} for the exact vote estimate, got n={n_max}")
+    ks_arr, scalar = check_ks(ks, n_min, name="ks")
+    out = np.stack([_vote_pool(c, r, ks_arr) for c, r in zip(_codes(ans), rew)])
+    return out[:, 0] if scalar else out
+
+
+def vote_credit(answers, rewards, *, k):
+    r"""Majority-vote credit with a leave-one-out baseline.
+
+    Shape: ``answers (B, n), rewards (B, n) -> credit (B, n)``.
+
+    .. math:: w_i = \hat V_k(\text{pool}) - \hat V_{\min(k,n-1)}(\text{pool}\setminus i)
+
+    ``E[sum_i w_i grad log pi(y_i)] = grad V_k`` exactly (module docstring). Equal rewards give
+    zero credit; ``n = 1`` gives ``w = R``. All pools in one batched count DP: prefix and suffix
+    products over the answers give every leave-one-out value (:func:`bonft.strategies.counting.vote_credit_batched`).
+    numpy/list in -> float64 numpy; torch in -> torch (device, floating dtype of ``rewards``).
+
+    References: Hoeffding 1948; Kool et al. 2019; Wang et al. 2023.
+    """
+    kind = _out_kind(rewards)
+    ans = _rows("answers", answers, numeric=False)
+    rew = _rows("rewards", rewards, numeric=True)
+    _same_lengths(answers=ans, rewards=rew)
+    n = len(rew[0])
+    if any(len(r) != n for r in rew):
+        raise ValueError("rewards must have shape (B, n): every pool the same size for credit")
+    if n > _MAX_N_EXACT:
+        raise ValueError(f"rewards must have n <= {_MAX_N_EXACT} samples per prompt, got n={n}")
+    k = check_k(k, n)
+    if n == 1:
+        return _finish(np.stack(rew), kind)
+    codes = np.stack(_codes(ans))
+    r = np.stack(rew)
+    w = np.zeros_like(r)
+    live = np.flatnonzero(r.max(1) > r.min(1))  # equal rewards serve the same reward whatever wins: w = 0
+    if len(live):
+        codes, r = codes[live], r[live]
+        # chunks of pools keep the (pools, answers, thresholds, nodes, degree) tensors near 20M numbers
+        A = int(codes.max()) + 1
+        size = A * k * ((min(A, k) + 1) // 2) * (k + 1)
+        step = max(1, 20_000_000 // size)
+        w[live] = np.concatenate([vote_credit_batched(codes[i : i + step], r[i : i + step], k)
+                                  for i in range(0, len(r), step)])
+    return _finish(w, kind)
+
+
+# ---------------------------------------------------------------------------- weighted vote
+
+
+def _subsets(n: int, k: int, max_subsets: int, rng) -> tuple[np.ndarray, bool]:
+    """Sample indices (N, k) of all k-subsets (exact) or of max_subsets uniform ones."""
+    if math.comb(n, k) <= max_subsets:
+        return np.array(list(itertools.combinations(range(n), k)), dtype=np.int64).reshape(-1, k), True
+    return np.argpartition(rng.random((max_subsets, n)), k - 1, axis=1)[:, :k], False  # the k smallest of iid keys
+
+
+def _weighted_f(idx: np.ndarray, codes: np.ndarray, s: np.ndarray, r: np.ndarray) -> np.ndarray:
+    """Served reward of a weighted vote on each subset idx (N, k) -> (N,)."""
+    return (weighted_slot_weights(codes[idx], s[idx]) * r[idx]).sum(1)
+
+
+def _check_budget(max_subsets, seed) -> tuple[int, int]:
+    return check_int("max_subsets", max_subsets, min=2), check_int("seed", seed, min=0)
+
+
+def weighted_vote_at_k_per_prompt(answers, scores, rewards, *, ks, max_subsets=MAX_SUBSETS, seed=0):
+    r"""Unbiased verifier-weighted vote value of every pool and its standard error.
+
+    Shape: ``answers, scores, rewards (P, n) -> (values (P, K), stderr (P, K))``. The served answer maximises the total
+    score of its samples among the k. While ``C(n, k) <= max_subsets`` the U-statistic runs
+    over every k-subset (stderr 0); above, over ``max_subsets`` uniform random k-subsets (seeded),
+    unbiased with standard error ``sd(f)/sqrt(max_subsets)``.
+
+    .. math:: \hat V_k = \binom nk^{-1}\sum_{|S|=k} f(S)
+
+    References: Li et al. 2023 (verifier-weighted voting); Hoeffding 1948.
+    """
+    ans = _rows("answers", answers, numeric=False)
+    sc = _rows("scores", scores, numeric=True)
+    rew = _rows("rewards", rewards, numeric=True)
+    _same_lengths(answers=ans, scores=sc, rewards=rew)
+    ks_arr, _ = check_ks(ks, min(len(a) for a in ans), name="ks")
+    max_subsets, seed = _check_budget(max_subsets, seed)
+    rng = np.random.default_rng(seed)
+    val = np.zeros((len(ans), len(ks_arr)))
+    se = np.zeros_like(val)
+    for p, (c, s, r) in enumerate(zip(_codes(ans), sc, rew)):
+        for j, k in enumerate(ks_arr):
+            idx, exact = _subsets(len(r), int(k), max_subsets, rng)
+            f = _weighted_f(idx, c, s, r)
+            val[p, j] = f.mean()
+            se[p, j] = 0.0 if exact else f.std(ddof=1) / math.sqrt(len(f))
+    return val, se
+
+
+def weighted_vote_credit(answers, scores, rewards, *, k, max_subsets=MAX_SUBSETS, seed=0):
+    r"""Weighted-vote credit with a leave-one-out baseline.
+
+    Shape: ``answers, scores, rewards (B, n) -> credit (B, n)``.
+
+    .. math:: w_i = \frac kn\Big(\mathrm{mean}_{S\ni i} f(S) - \mathrm{mean}_{S\not\ni i,|S|=kb} f(S)\Big)
+
+    over every k-subset while ``C(n, k) <= max_subsets``; above, the unbiased sampled form
+    ``w_i = mean_m f(S_m)(1{i in S_m} - k/(n-k) 1{i not in S_m})`` over ``max_subsets``
+    uniform k-subsets. Either way ``E[sum_i w_i grad log pi(y_i)] = grad V_k``.
+
+    References: Kool et al. 2019; Hoeffding 1948; Li et al. 2023.
+    """
+    kind = _out_kind(rewards, scores)
+    ans = _rows("answers", answers, numeric=False)
+    sc = _rows("scores", scores, numeric=True)
+    rew = _rows("rewards", rewards, numeric=True)
+    _same_lengths(answers=ans, scores=sc, rewards=rew)
+    n = len(rew[0])
+    if any(len(r) != n for r in rew):
+        raise ValueError("rewards must have shape (B, n): every pool the same size for credit")
+    k = check_k(k, n)
+    max_subsets, seed = _check_budget(max_subsets, seed)
+    rng = np.random.default_rng(seed)
+    out = np.zeros((len(rew), n))
+    for p, (c, s, r) in enumerate(zip(_codes(ans), sc, rew)):
+        if n == 1:
+            out[p] = r
+            continue
+        idx, exact = _subsets(n, k, max_subsets, rng)
+        f = _weighted_f(idx, c, s, r)
+        sum_with = np.bincount(idx.ravel(), weights=np.repeat(f, k), minlength=n)  # (n,) sum of f over S holding i
+        n_with = np.bincount(idx.ravel(), minlength=n).astype(np.float64)
+        sum_without, n_without = f.sum() - sum_with, len(f) - n_with
+        if not exact:  # k < n here
+            out[p] = (sum_with - (k / (n - k)) * sum_without) / len(f)
+            continue
+        if k < n:
+            without_i = sum_without / n_without
+        else:  # the baseline is the pool without i, all n-1 of it
+            others = np.array([np.delete(np.arange(n), i) for i in range(n)])  # (n, n-1)
+            without_i = _weighted_f(others, c, s, r)
+        out[p] = (k / n) * (sum_with / n_with - without_i)
+    return _finish(out, kind)
+
+
+# ---------------------------------------------------------------------------- any strategy
+
+
+def _need(st, scores, answers) -> None:
+    if st.uses_scores and scores is None:
+        raise ValueError(f"scores must be given for strategy {st.name!r}, got None")
+    if st.uses_answers and answers is None:
+        raise ValueError(f"answers must be given for strategy {st.name!r}, got None")
+
+
+def strategy_at_k(strategy, *, ks, rewards, scores=None, answers=None, max_subsets=MAX_SUBSETS, seed=0):
+    r"""Unbiased ``V_k`` of any strategy for every pool, with the Monte-Carlo standard error.
+
+    Shape: ``rewards, scores, answers (P, n) -> (values (P, K), stderr (P, K))``.
+
+    .. math:: \hat V_k = \binom nk^{-1}\sum_{|S|=k} f(S)
+
+    best-of-k: :func:`bonft.estimate.bon_at_k_per_prompt`; pass: the oracle curve
+    (:func:`bonft.estimate.oracle_at_k_per_prompt`, Chen et al. 2021 for 0/1 rewards);
+    majority: :func:`vote_at_k_per_prompt`; weighted: :func:`weighted_vote_at_k_per_prompt`.
+    stderr is 0 wherever the estimate is exact. ``ks`` must be a sequence.
+
+    References: Hoeffding 1948; Chen et al. 2021; Chow et al. 2024; Wang et al. 2023.
+    """
+    from bonft.strategies import get_strategy
+
+    st = get_strategy(strategy)
+    _need(st, scores, answers)
+    if st.name == "weighted":
+        return weighted_vote_at_k_per_prompt(answers, scores, rewards, ks=ks, max_subsets=max_subsets, seed=seed)
+    if st.name == "majority":
+        v = vote_at_k_per_prompt(answers, rewards, ks=ks)
+    elif st.name == "pass":
+        v = _estimate.oracle_at_k_per_prompt(rewards, ks=ks)
+    else:
+        v = _estimate.bon_at_k_per_prompt(scores, rewards, ks=ks)
+    v = np.asarray(v).reshape(len(v), -1)
+    return v, np.zeros_like(v)
+
+
+def _bon_credit(scores, rewards, *, k):
+    from bonft.objectives.credit import bon_rl_credit
+
+    return bon_rl_credit(scores, rewards, k=k)
+
+
+def strategy_credit(strategy, scores, rewards, *, k, answers=None, max_subsets=MAX_SUBSETS, seed=0):
+    r"""Per-sample credit of any strategy, unbiased for ``grad V_k``, with a leave-one-out baseline.
+
+    Shape: ``scores, rewards, answers (B, n) -> credit (B, n)``.
+
+    .. math:: w_i = \hat V_k(\text{pool}) - \hat V_{\min(k,n-1)}(\text{pool}\setminus i)
+
+    best-of-k: :func:`bonft.objectives.credit.bon_rl_credit`; pass: the same with ``scores = rewards``;
+    majority: :func:`vote_credit`; weighted: :func:`weighted_vote_credit`.
+
+    References: Kool et al. 2019; Chow et al. 2024; Hoeffding 1948.
+    """
+    from bonft.strategies import get_strategy
+
+    st = get_strategy(strategy)
+    _need(st, scores, answers)
+    if st.name == "majority":
+        return vote_credit(answers, rewards, k=k)
+    if st.name == "weighted":
+        return weighted_vote_credit(answers, scores, rewards, k=k, max_subsets=max_subsets, seed=seed)
+    if st.name == "pass":
+        return _bon_credit(rewards, rewards, k=k)
+    return _bon_credit(scores, rewards, k=k)

@@ -1,0 +1,168 @@
+"""Statistics of the demo and the study: per-prompt curves from saved pools, paired intervals.
+
+Every policy of one seed is evaluated on the same held-out prompts with the same
+sampling seeds, so two policies are compared *paired*: per prompt first, then
+averaged. Two kinds of interval:
+
+* over prompts, within one seed: the percentile bootstrap of the mean per-prompt
+  difference (Efron & Tibshirani 1993, ch. 13), resampling prompts;
+* over seeds: the Student-t interval of the mean per-seed difference
+  (each seed has its own warm start, data split and RL runs), ``S - 1`` degrees of freedom.
+
+``pools``: ``{"rewards": (P, n) 0/1, "proxy": (P, n) verifier scores}`` of one policy.
+Per-prompt pass@k is the unbiased estimator of Chen et al. 2021; per-prompt
+best-of-k under the proxy is the U-statistic over all k-subsets with ties shared
+(:func:`bonft.estimate.bon_at_k_per_prompt`; Chow et al. 2024).
+"""
+from __future__ import annotations
+
+import math
+from typing import Mapping, Sequence
+
+import numpy as np
+
+LABELS = {
+    "warm_start": "warm start (before RL)",
+    "loo_reinforce": "leave-one-out REINFORCE",
+    "best_of_k": "best-of-k (proxy verifier)",
+    "pass_at_k": "pass@k unbiased",
+    "pass_at_k_plugin": "pass@k plug-in",
+    "pass_at_k_positive": "pass@k positive-only",
+    "best_of_k_sft": "best-of-k SFT",
+    "pass_at_k_anneal": "pass@k, k annealed 16 -> 1",
+    "placebo": "placebo (pass@k, outcomes shuffled)",
+}
+
+
+def per_prompt_curves(pools: Mapping[str, np.ndarray], ks: Sequence[int]) -> dict[str, np.ndarray]:
+    """pools -> ``{"pass": (P, K), "proxy": (P, K)}``: per-prompt pass@k and proxy best-of-k at each k."""
+    from bonft.estimate import bon_at_k_per_prompt, oracle_at_k_per_prompt
+
+    rewards = np.asarray(pools["rewards"], dtype=float)
+    out = {"pass": np.asarray(oracle_at_k_per_prompt(rewards, ks=list(ks)), dtype=float)}
+    if "proxy" in pools:
+        out["proxy"] = np.asarray(bon_at_k_per_prompt(np.asarray(pools["proxy"], dtype=float), rewards, ks=list(ks)), dtype=float)
+    return out
+
+
+def paired_bootstrap(a: np.ndarray, b: np.ndarray, *, n_boot: int = 2000, seed: int = 0,
+                     confidence: float = 0.95) -> tuple[float, float, float]:
+    """a, b: (P,) per-prompt values on the same prompts -> (mean(a - b), lo, hi), percentile bootstrap over prompts."""
+    d = np.asarray(a, dtype=float) - np.asarray(b, dtype=float)
+    rng = np.random.default_rng(seed)
+    idx = rng.integers(0, len(d), size=(n_boot, len(d)))
+    boot = d[idx].mean(1)
+    alpha = (1 - confidence) / 2
+    return float(d.mean()), float(np.quantile(boot, alpha)), float(np.quantile(boot, 1 - alpha))
+
+
+def bootstrap_mean(a: np.ndarray, *, n_boot: int = 2000, seed: int = 0, confidence: float = 0.95) -> tuple[float, float, float]:
+    """a: (P,) -> (mean, lo, hi), percentile bootstrap over prompts."""
+    return paired_bootstrap(a, np.zeros_like(np.asarray(a, dtype=float)), n_boot=n_boot, seed=seed, confidence=confidence)
+
+
+def t_interval(values: Sequence[float], *, confidence: float = 0.95) -> tuple[float, float, float]:
+    """values: (S,) per-seed numbers -> (mean, lo, hi), Student-t interval with S - 1 degrees of freedom."""
+    from scipy import stats
+
+    v = np.asarray(values, dtype=float)
+    if len(v) < 2:
+        return float(v.mean()), float("nan"), float("nan")
+    half = stats.t.ppf(0.5 + confidence / 2, len(v) - 1) * v.std(ddof=1) / math.sqrt(len(v))
+    return float(v.mean()), float(v.mean() - half), float(v.mean() + half)
+
+
+def _fmt(m: float, lo: float, hi: float, signed: bool = False) -> str:
+    f = "{:+.3f}" if signed else "{:.3f}"
+    if math.isnan(lo):
+        return f.format(m)
+    mark = " *" if signed and (lo > 0 or hi < 0) else ""
+    return f"{f.format(m)} [{f.format(lo)}, {f.format(hi)}]{mark}"
+
+
+def _columns(ks: Sequence[int], has_proxy: bool) -> list[tuple[str, str, int]]:
+    cols = [(f"pass@{k}", "pass", j) for j, k in enumerate(ks)]
+    if has_proxy:
+        cols.append((f"proxy best-of-{ks[-1]}", "proxy", len(ks) - 1))
+    return cols
+
+
+def _head(title: str, cols) -> list[str]:
+    """A markdown table's title line, blank line, header and rule for a policy column plus ``cols``."""
+    return [title, "", "| policy | " + " | ".join(c[0] for c in cols) + " |", "|---" * (len(cols) + 1) + "|"]
+
+
+def seed_table(curves: Mapping[str, Mapping[str, np.ndarray]], ks: Sequence[int], *,
+               baselines: Sequence[str] = ("warm_start", "loo_reinforce"), n_boot: int = 2000, seed: int = 0,
+               confidence: float = 0.95) -> str:
+    """One seed: each policy's mean [bootstrap CI over prompts], then its paired difference from each baseline.
+
+    curves: policy -> :func:`per_prompt_curves`. A ``*`` marks a difference whose interval excludes 0.
+    """
+    names = list(curves)
+    cols = _columns(ks, all("proxy" in c for c in curves.values()))
+    pct = round(100 * confidence)
+    lines = _head(f"Mean over {len(next(iter(curves.values()))['pass'])} held-out prompts [{pct}% bootstrap CI over prompts]", cols)
+    for name in names:
+        cells = [_fmt(*bootstrap_mean(curves[name][kind][:, j], n_boot=n_boot, seed=seed, confidence=confidence))
+                 for _, kind, j in cols]
+        lines.append(f"| {LABELS.get(name, name)} | " + " | ".join(cells) + " |")
+    for base in baselines:
+        if base not in curves:
+            continue
+        lines += [""] + _head(f"Paired difference from {LABELS.get(base, base)} (same prompts; * = interval excludes 0)", cols)
+        for name in names:
+            if name == base:
+                continue
+            cells = [_fmt(*paired_bootstrap(curves[name][kind][:, j], curves[base][kind][:, j], n_boot=n_boot,
+                                            seed=seed, confidence=confidence), signed=True) for _, kind, j in cols]
+            lines.append(f"| {LABELS.get(name, name)} | " + " | ".join(cells) + " |")
+    return "\n".join(lines)
+
+
+def study_table(per_seed: Mapping[int, Mapping[str, Mapping[str, np.ndarray]]], ks: Sequence[int], *,
+                baselines: Sequence[str] = ("warm_start", "loo_reinforce"), confidence: float = 0.95) -> str:
+    """Over seeds: per-seed means, their mean [t-interval], and paired per-seed differences [t-interval].
+
+    per_seed: seed -> policy -> :func:`per_prompt_curves` (the same policies for every seed).
+    """
+    seeds = list(per_seed)
+    names = list(per_seed[seeds[0]])
+    cols = _columns(ks, all("proxy" in c for s in seeds for c in per_seed[s].values()))
+    mean = {(s, n, kind, j): float(per_seed[s][n][kind][:, j].mean()) for s in seeds for n in names for _, kind, j in cols}
+    pct = round(100 * confidence)
+    lines = _head(f"Mean over {len(seeds)} seeds (seeds {', '.join(map(str, seeds))}) [{pct}% Student-t interval over seeds]", cols)
+    for n in names:
+        cells = [_fmt(*t_interval([mean[s, n, kind, j] for s in seeds], confidence=confidence)) for _, kind, j in cols]
+        lines.append(f"| {LABELS.get(n, n)} | " + " | ".join(cells) + " |")
+    for base in baselines:
+        if base not in names:
+            continue
+        lines += [""] + _head(f"Paired difference from {LABELS.get(base, base)}, per seed then over seeds (* = interval excludes 0)", cols)
+        for n in names:
+            if n == base:
+                continue
+            cells = [_fmt(*t_interval([mean[s, n, kind, j] - mean[s, base, kind, j] for s in seeds], confidence=confidence),
+                          signed=True) for _, kind, j in cols]
+            lines.append(f"| {LABELS.get(n, n)} | " + " | ".join(cells) + " |")
+    lines += ["", "Per seed (pass@1 / pass@" + str(ks[-1]) + (f" / proxy best-of-{ks[-1]}" if len(cols) > len(ks) else "") + ")", "",
+              "| policy | " + " | ".join(f"seed {s}" for s in seeds) + " |", "|---" * (len(seeds) + 1) + "|"]
+    for n in names:
+        cells = []
+        for s in seeds:
+            parts = [mean[s, n, "pass", 0], mean[s, n, "pass", len(ks) - 1]]
+            if len(cols) > len(ks):
+                parts.append(mean[s, n, "proxy", len(ks) - 1])
+            cells.append(" / ".join(f"{v:.3f}" for v in parts))
+        lines.append(f"| {LABELS.get(n, n)} | " + " | ".join(cells) + " |")
+    return "\n".join(lines)
+
+
+def best_temperatures(pools_by_temperature: Mapping[float, np.ndarray], ks: Sequence[int], *, n_boot: int = 500,
+                      seed: int = 0) -> dict[int, float]:
+    """rewards at each temperature {T: (P, n)}, the same prompts in the same order -> {k: the planner's best T for pass@k}."""
+    from bonft.plan.sweep import Pools, plan_pools
+
+    pools = {float(t): Pools(scores=np.asarray(r, float), rewards=np.asarray(r, float)) for t, r in pools_by_temperature.items()}
+    res = plan_pools(pools, max_k=max(ks), n_boot=n_boot, seed=seed)
+    return {int(k): float(res.best_temperature[int(k) - 1]) for k in ks}

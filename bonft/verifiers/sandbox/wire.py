@@ -1,0 +1,248 @@
+"""The pipe protocol between the sandboxed solution and the trusted test process.
+
+Shared source: :mod:`bonft.verifiers.sandbox.runner` prepends this file's text to the
+two bootstraps (``candidate.py``, ``judge.py``), which run under a
+possibly different interpreter (Python 3.8+, standard library only), and the
+library imports it for its own checks. No pickle anywhere: only the values
+below cross the boundary, and :func:`wire_decode` rebuilds them as the trusted
+process's own built-in objects, so nothing of the candidate's (a class, an
+``__eq__``, a subclass) survives the trip.
+
+Frame: ASCII decimal length, ``\\n``, then that many bytes of UTF-8 JSON.
+A frame longer than the reader's cap, a bad header or bad JSON is a
+:class:`WireError`; end of file is :class:`WireClosed`.
+
+Values, each a JSON list ``[tag, ...]``::
+
+    ["N"] None               ["b", true] bool          ["i", "-0x1f"] int (hex: no digit limit)
+    ["f", "0x1.8p+1"] float (float.hex; "nan", "inf")  ["c", re, im] complex (float.hex each)
+    ["s", "text"] str        ["y", "base64"] bytes     ["Y", "base64"] bytearray
+    ["l", [v...]] list       ["t", [v...]] tuple       ["S", [v...]] set   ["F", [v...]] frozenset
+    ["d", [[k, v]...]] dict  ["q", num, den] Fraction (hex ints)         ["D", "1.5"] Decimal
+    ["h", ref, "typename"] a reference to an object that stays in the solution's process
+
+Subclasses of these types travel as their base value (a ``Counter`` arrives
+as a ``dict``, an ``int`` subclass as a plain ``int``), numpy scalars as
+their Python value (``numpy.int64(5)`` as ``5``).
+"""
+import base64
+import json
+
+WIRE_MAX_DEPTH = 64
+WIRE_MAX_NODES = 200000
+
+
+class WireError(Exception):
+    """A frame or value that breaks the protocol."""
+
+
+class WireClosed(WireError):
+    """The other end closed its pipe (or its process is gone)."""
+
+
+def wire_send(fd, message):
+    """Write one frame holding ``message`` (a dict of plain JSON) to ``fd``."""
+    import os
+
+    data = json.dumps(message, separators=(",", ":"), allow_nan=False).encode("utf-8")
+    data = b"%d\n" % len(data) + data
+    view = memoryview(data)
+    while view:
+        n = os.write(fd, view)
+        view = view[n:]
+
+
+def _read_exact(fd, n):
+    import os
+
+    parts, left = [], n
+    while left:
+        chunk = os.read(fd, min(left, 1 << 20))
+        if not chunk:
+            raise WireClosed("pipe closed")
+        parts.append(chunk)
+        left -= len(chunk)
+    return b"".join(parts)
+
+
+def wire_recv(fd, cap):
+    """Read one frame from ``fd``: its JSON object (a dict). At most ``cap`` bytes of payload."""
+    import os
+
+    head = b""
+    while True:
+        c = os.read(fd, 1)
+        if not c:
+            raise WireClosed("pipe closed")
+        if c == b"\n":
+            break
+        head += c
+        if len(head) > 12 or not c.isdigit():
+            raise WireError("bad frame header %r" % head[:16])
+    if not head:
+        raise WireError("empty frame header")
+    n = int(head)
+    if n > cap:
+        raise WireError("frame of %d bytes over the %d-byte cap" % (n, cap))
+
+    def no_constants(name):
+        raise WireError("JSON constant %s" % name)
+
+    try:
+        msg = json.loads(_read_exact(fd, n).decode("utf-8"), parse_constant=no_constants)
+    except (ValueError, RecursionError) as e:
+        raise WireError("frame is not JSON: %s" % str(e)[:80]) from None
+    if type(msg) is not dict:
+        raise WireError("frame is a %s, not an object" % type(msg).__name__)
+    return msg
+
+
+# ------------------------------------------------------------------------------- values
+def _hexint(x):
+    return hex(x)
+
+
+def wire_encode(value, ref_of, depth=0):
+    """A plain value as its wire form; other objects through ``ref_of(obj) -> [\"h\", ref, type]``."""
+    if depth > WIRE_MAX_DEPTH:
+        raise ValueError("value nested deeper than %d levels" % WIRE_MAX_DEPTH)
+    d = depth + 1
+    if value is None:
+        return ["N"]
+    if value is True or value is False:
+        return ["b", value]
+    if isinstance(value, int):
+        return ["i", _hexint(int.__index__(value))]
+    if isinstance(value, float):
+        return ["f", float.hex(float.__float__(value))]
+    if isinstance(value, complex):
+        c = complex.__complex__(value) if hasattr(complex, "__complex__") else complex(value.real, value.imag)
+        return ["c", float.hex(c.real), float.hex(c.imag)]
+    if isinstance(value, str):
+        return ["s", str.__str__(value)]
+    if isinstance(value, bytearray):
+        return ["Y", base64.b64encode(bytes(value)).decode("ascii")]
+    if isinstance(value, bytes):
+        return ["y", base64.b64encode(bytes(value)).decode("ascii")]
+    if isinstance(value, list):
+        return ["l", [wire_encode(v, ref_of, d) for v in list.__iter__(value)]]
+    if isinstance(value, tuple):
+        return ["t", [wire_encode(v, ref_of, d) for v in tuple.__iter__(value)]]
+    if isinstance(value, dict):
+        return ["d", [[wire_encode(k, ref_of, d), wire_encode(v, ref_of, d)] for k, v in dict.items(value)]]
+    if isinstance(value, frozenset):
+        return ["F", [wire_encode(v, ref_of, d) for v in frozenset.__iter__(value)]]
+    if isinstance(value, set):
+        return ["S", [wire_encode(v, ref_of, d) for v in set.__iter__(value)]]
+    import sys
+
+    fractions, decimal, numpy = sys.modules.get("fractions"), sys.modules.get("decimal"), sys.modules.get("numpy")
+    if numpy is not None and isinstance(value, numpy.generic):  # a numpy scalar: its Python value
+        item = value.item()
+        if not isinstance(item, numpy.generic):
+            return wire_encode(item, ref_of, d)
+    if fractions is not None and isinstance(value, fractions.Fraction):
+        return ["q", _hexint(int(value.numerator)), _hexint(int(value.denominator))]
+    if decimal is not None and isinstance(value, decimal.Decimal):
+        return ["D", str(decimal.Decimal.__str__(value))]
+    return ref_of(value)
+
+
+def _int_hex(s):
+    if type(s) is not str or len(s) > 1 << 20:
+        raise WireError("bad int")
+    try:
+        return int(s, 16)
+    except ValueError:
+        raise WireError("bad int %r" % s[:20]) from None
+
+
+def _float_hex(s):
+    if type(s) is not str or len(s) > 40:
+        raise WireError("bad float")
+    try:
+        return float.fromhex(s)
+    except (ValueError, OverflowError):
+        raise WireError("bad float %r" % s) from None
+
+
+def _b64(s):
+    if type(s) is not str:
+        raise WireError("bad bytes")
+    try:
+        return base64.b64decode(s.encode("ascii"), validate=True)
+    except (ValueError, UnicodeEncodeError):
+        raise WireError("bad bytes") from None
+
+
+def wire_decode(node, handle, budget=None, depth=0):
+    """Rebuild a wire value with this process's own built-in types; ``handle(ref, typename)`` for refs.
+
+    Strict: anything but the documented forms raises :class:`WireError`.
+    """
+    if budget is None:
+        budget = [WIRE_MAX_NODES]
+    budget[0] -= 1
+    if budget[0] < 0:
+        raise WireError("value has more than %d parts" % WIRE_MAX_NODES)
+    if depth > WIRE_MAX_DEPTH + 1:
+        raise WireError("value nested deeper than %d levels" % WIRE_MAX_DEPTH)
+    if type(node) is not list or not node or type(node[0]) is not str:
+        raise WireError("bad value node")
+    tag, n = node[0], len(node)
+    d = depth + 1
+
+    def items(x):
+        if type(x) is not list:
+            raise WireError("bad %s payload" % tag)
+        return [wire_decode(v, handle, budget, d) for v in x]
+
+    try:
+        if tag == "N" and n == 1:
+            return None
+        if tag == "b" and n == 2 and type(node[1]) is bool:
+            return node[1]
+        if tag == "i" and n == 2:
+            return _int_hex(node[1])
+        if tag == "f" and n == 2:
+            return _float_hex(node[1])
+        if tag == "c" and n == 3:
+            return complex(_float_hex(node[1]), _float_hex(node[2]))
+        if tag == "s" and n == 2 and type(node[1]) is str:
+            return node[1]
+        if tag == "y" and n == 2:
+            return _b64(node[1])
+        if tag == "Y" and n == 2:
+            return bytearray(_b64(node[1]))
+        if tag == "l" and n == 2:
+            return items(node[1])
+        if tag == "t" and n == 2:
+            return tuple(items(node[1]))
+        if tag == "S" and n == 2:
+            return set(items(node[1]))
+        if tag == "F" and n == 2:
+            return frozenset(items(node[1]))
+        if tag == "d" and n == 2 and type(node[1]) is list:
+            out = {}
+            for pair in node[1]:
+                if type(pair) is not list or len(pair) != 2:
+                    raise WireError("bad dict item")
+                out[wire_decode(pair[0], handle, budget, d)] = wire_decode(pair[1], handle, budget, d)
+            return out
+        if tag == "q" and n == 3:
+            import fractions
+
+            return fractions.Fraction(_int_hex(node[1]), _int_hex(node[2]))
+        if tag == "D" and n == 2 and type(node[1]) is str and len(node[1]) < 1 << 16:
+            import decimal
+
+            return decimal.Decimal(node[1])
+        if tag == "h" and n == 3 and type(node[1]) is int and type(node[2]) is str:
+            return handle(node[1], node[2][:200])
+    except TypeError as e:  # unhashable set member or dict key
+        raise WireError("bad %s value: %s" % (tag, e)) from None
+    except (ArithmeticError, ValueError) as e:  # zero denominator, bad Decimal
+        if isinstance(e, WireError):
+            raise
+        raise WireError("bad %s value: %s" % (tag, e)) from None
+    raise WireError("unknown value form %r" % (tag[:8],))
