@@ -3,4 +3,4 @@
 Math modules (:mod:`bonft.bon`, :mod:`bonft.estimate`, :mod:`bonft.objectives.credit`,
 :mod:`bonft.objectives.losses`) import nothing from the trainer; import them directly.
 """
-__version__ = "0.1.0"
+__version__ = "0.3.0"

@@ -105,7 +105,7 @@ def _read_manifest(ckpt: Path) -> dict:
     path = ckpt / MANIFEST
     if not path.is_file():
         raise CheckpointError(f"checkpoint {ckpt} is damaged: no {MANIFEST} (written last; the save did not finish, "
-                              f"or the checkpoint predates bonft 0.2)")
+                              f"or the checkpoint was written by an older format without one)")
     try:
         man = json.loads(path.read_text(encoding="utf-8"))
     except (UnicodeDecodeError, json.JSONDecodeError, RecursionError) as e:
@@ -290,6 +290,6 @@ def load_state(ckpt: str | Path) -> dict:
         found = re.search(r"WeightsUnpickler error:\s*(.+?)\s*(?:Check the documentation|$)", str(e), re.S)
         what = " ".join(found.group(1).split()) if found else type(e).__name__
         raise CheckpointError(f"refusing {path}: it holds objects other than tensors and plain values ({what}); "
-                              f"bonft never unpickles those, since loading them can run code. Was it written by bonft 0.2?") from None
+                              f"bonft never unpickles those, since loading them can run code. Was it written by another program?") from None
     except (RuntimeError, EOFError, OSError) as e:
         raise CheckpointError(f"checkpoint {Path(ckpt)} is damaged: state.pt cannot be read ({e})") from None
