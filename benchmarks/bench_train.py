@@ -32,7 +32,7 @@ def main() -> None:
     torch.set_num_threads(args.threads)
     # the demo's RL step: 16 prompts x 16 samples, the default 0.4 M-parameter tiny GPT-2
     cfg = from_dict(dict(rl_steps=args.steps + 1, prompts_per_step=args.prompts, n=args.n, k=min(8, args.n),
-                         objective="pass_at_k", n_train=256, n_eval=16, run_dir="/tmp/bench_train",
+                         objective="pass_at_k", train_prompts=256, heldout_prompts=16, run_dir="/tmp/bench_train",
                          snr_every=int(args.snr)))
     run = build_run(cfg)
     run.optimizer = make_optimizer(run, "rl")

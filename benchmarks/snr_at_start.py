@@ -20,7 +20,7 @@ from bonft.trainer.loop import build_run, train
 from bonft.trainer.measure import Stopwatch
 from bonft.trainer.steps import rl_step
 
-CASES = [("loo_reinforce", False), ("pass_at_k", False), ("best_of_k", False), ("pass_at_k", True)]
+CASES = [("reinforce", False), ("pass_at_k", False), ("best_of_k", False), ("pass_at_k", True)]
 
 
 def main() -> None:
@@ -40,8 +40,8 @@ def main() -> None:
     warm = str(latest_checkpoint(warm_dir))
     B = args.prompts
     for objective, placebo in CASES:
-        cfg = _base(dc, name="snr", run_dir=str(Path(args.run_dir) / "snr"), start_from=warm, sft_steps=0,
-                    rl_steps=1000, objective=objective, k=1 if objective == "loo_reinforce" else min(8, args.n),
+        cfg = _base(dc, name="snr", run_dir=str(Path(args.run_dir) / "snr"), start_from=warm, warm_start_steps=0,
+                    rl_steps=1000, objective=objective, k=1 if objective == "reinforce" else min(8, args.n),
                     prompts_per_step=B, n=args.n, snr_every=1, placebo=placebo,
                     verifier="proxy" if objective == "best_of_k" else "exact")
         run = build_run(cfg)

@@ -13,7 +13,7 @@ Reproduce (about 15 minutes on 2 busy CPU cores)::
     done
     python docs/strategies_study.py runs/sv majority_vote mv_lr1e3 weighted_vote best_of_k pass_at_k
 
-The stronger warm start: the same with ``--set sft_steps=1200`` on every run (warm, majority_vote,
+The stronger warm start: the same with ``--set warm_start_steps=1200`` on every run (warm, majority_vote,
 pass_at_k) plus a placebo run (``--set placebo=true`` on the majority-vote recipe), sampled alike,
 in a second directory with the placebo's pool file named ``placebo.jsonl``.
 

@@ -205,8 +205,8 @@ def test_a_crafted_pickle_in_state_pt_is_refused_without_running(tmp_path, parts
 
 
 # ----------------------------------------------------------------------------- recovery in a training run
-RECOVERY = dict(layers=1, width=16, heads=2, max_positions=40, n_train=16, n_eval=2, sft_steps=0, rl_steps=3,
-                prompts_per_step=2, n=2, k=2, lr=1e-2, eval_n=2, eval_ks=[1], n_boot=10, log_every=1, save_every=1,
+RECOVERY = dict(layers=1, width=16, heads=2, max_positions=40, train_prompts=16, heldout_prompts=2, warm_start_steps=0, rl_steps=3,
+                prompts_per_step=2, n=2, k=2, lr=1e-2, eval_samples=2, eval_ks=[1], n_boot=10, log_every=1, save_every=1,
                 keep_checkpoints=3, max_new_tokens=4, plots=False, eval_at_start=False, threads=1)
 
 

@@ -23,8 +23,8 @@ import pytest
 from bonft.cli.main import main
 from bonft.trainer.config import from_dict, to_toml
 
-RUN = dict(layers=1, width=16, heads=2, max_positions=40, n_train=16, n_eval=2, sft_steps=0, rl_steps=2,
-           prompts_per_step=2, n=2, k=2, lr=1e-2, eval_n=2, eval_ks=[1], n_boot=10, log_every=1, save_every=1,
+RUN = dict(layers=1, width=16, heads=2, max_positions=40, train_prompts=16, heldout_prompts=2, warm_start_steps=0, rl_steps=2,
+           prompts_per_step=2, n=2, k=2, lr=1e-2, eval_samples=2, eval_ks=[1], n_boot=10, log_every=1, save_every=1,
            keep_checkpoints=2, max_new_tokens=4, plots=False, eval_at_start=False, threads=1)
 
 
@@ -159,8 +159,8 @@ def test_output_path_that_is_a_directory(files):
 def test_recipes(files):
     expect_error(["train", files / "nope.toml"], r"recipe not found: .*nope.toml")
     expect_error(["train", files / "not.toml"], r"not.toml: not valid TOML")
-    expect_error(["train", files / "recipe.toml", "--set", "n_train=100000000"],
-                 r"n_train \+ n_eval asks for 75,000,002 distinct 'easy' prompts of task 'ledger', but it makes about 1\d,\d{3}")
+    expect_error(["train", files / "recipe.toml", "--set", "train_prompts=100000000"],
+                 r"train_prompts \+ heldout_prompts asks for 75,000,002 distinct 'easy' prompts of task 'ledger', but it makes about 1\d,\d{3}")
 
 
 def test_context_too_short_is_refused_before_any_work(files, tmp_path):

@@ -7,8 +7,8 @@ from bonft.cli import main
 from bonft.io import read_samples
 
 RECIPES = sorted((Path(__file__).parent.parent / "recipes").glob("*.toml"))
-SHRINK = ["layers=1", "width=32", "heads=2", "max_positions=48", "n_train=32", "n_eval=4", "sft_steps=2",
-          "sft_batch_size=8", "rl_steps=2", "prompts_per_step=4", "n=16", "eval_n=16", "eval_ks=1,16",
+SHRINK = ["layers=1", "width=32", "heads=2", "max_positions=48", "train_prompts=32", "heldout_prompts=4", "warm_start_steps=2",
+          "warm_start_batch_size=8", "rl_steps=2", "prompts_per_step=4", "n=16", "eval_samples=16", "eval_ks=1,16",
           "eval_every=0", "save_every=0", "plots=false", "n_boot=50", "max_new_tokens=5", "threads=1"]
 
 

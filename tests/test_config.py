@@ -23,12 +23,12 @@ def make(**kw):
         ({"lr": "fast"}, TypeError, r"lr must be a real number, got str 'fast'"),
         ({"n": 2.0}, TypeError, r"n must be an int, got float 2.0"),
         ({"prompts_per_step": 10, "grad_accum": 3}, ValueError, r"prompts_per_step must be divisible by grad_accum \(grad_accum=3\)"),
-        ({"eval_ks": [1, 128]}, ValueError, r"eval_ks must be <= eval_n \(eval_n=64\)"),
+        ({"eval_ks": [1, 128]}, ValueError, r"eval_ks must be <= eval_samples \(eval_samples=64\)"),
         ({"top_p": 1.5}, ValueError, r"top_p must be in \(0, 1\], got top_p=1.5"),
         ({"verifier": "oracle"}, ValueError, r"verifier must be 'exact', 'proxy' or 'module:function', got 'oracle'"),
         ({"k_schedule": "linear"}, ValueError, r"k_schedule='linear' needs k_final >= 1"),
         ({"k_final": 99}, ValueError, r"k_final must be <= n \(n=16\), got k_final=99"),
-        ({"objective": "loo_reinforce", "n": 1, "k": 1}, ValueError, r"n must be >= 2 for a leave-one-out baseline"),
+        ({"objective": "reinforce", "n": 1, "k": 1}, ValueError, r"n must be >= 2 for a leave-one-out baseline"),
         ({"rl_steps": 0}, ValueError, r"nothing to train"),
         ({"plots": "yes"}, TypeError, r"plots must be true or false, got str 'yes'"),
         ({"task": "jsonl"}, ValueError, r"prompts_file must name a JSONL file"),
@@ -97,5 +97,5 @@ def test_recipes_load():
     recipes = sorted((Path(__file__).parent.parent / "recipes").glob("*.toml"))
     assert len(recipes) >= 6
     objectives = {load_config(p).objective for p in recipes}
-    assert objectives == {"loo_reinforce", "best_of_k", "pass_at_k", "pass_at_k_plugin", "pass_at_k_positive", "best_of_k_sft",
+    assert objectives == {"reinforce", "best_of_k", "pass_at_k", "pass_at_k_plugin", "pass_at_k_positive", "best_of_k_sft",
                           "majority_vote"}

@@ -382,10 +382,10 @@ def test_a_prompts_samples_do_not_depend_on_the_other_prompts_in_the_call(tiny_l
 # keys), so Adam turns float round-off there into full-size steps that differ between any two summation orders.
 # RL lr 1e-3 (the config default): Adam's first step moves a weight by lr * g / (|g| + eps), so a gradient
 # that cancels to ~eps keeps float32 noise of order 1e-4 * lr (measured worst 1.4e-6 at lr=1e-2; it scales with lr).
-# Hence sft_lr 3e-3 too: at 1e-2 the warm start's worst weight differed by 1.47e-6 once the prompt pass ran per prompt.
+# Hence warm_start_lr 3e-3 too: at 1e-2 the warm start's worst weight differed by 1.47e-6 once the prompt pass ran per prompt.
 TRAIN_CFG = dict(
-    arch="llama", layers=1, width=32, heads=2, max_positions=48, n_train=64, n_eval=5, sft_steps=2, sft_batch_size=8,
-    sft_lr=3e-3, rl_steps=2, prompts_per_step=4, n=4, k=2, lr=1e-3, eval_n=4, eval_ks=[1, 4], n_boot=50,
+    arch="llama", layers=1, width=32, heads=2, max_positions=48, train_prompts=64, heldout_prompts=5, warm_start_steps=2, warm_start_batch_size=8,
+    warm_start_lr=3e-3, rl_steps=2, prompts_per_step=4, n=4, k=2, lr=1e-3, eval_samples=4, eval_ks=[1, 4], n_boot=50,
     log_every=1, save_every=0, keep_checkpoints=2, max_new_tokens=6, plots=False, eval_at_start=False, threads=1,
     objective="pass_at_k", verifier="toy_verifier:digit_share", correct_threshold=0.2,  # varied rewards from step 1
 )
@@ -441,7 +441,7 @@ def test_a_peer_killed_mid_step_is_named_with_the_step_and_the_intact_checkpoint
 
     monkeypatch.setenv("PYTHONPATH", os.pathsep.join([str(SCRIPTS), os.environ.get("PYTHONPATH", "")]))
     run = tmp_path / "run"
-    cfg = {**TRAIN_CFG, "sft_steps": 0, "rl_steps": 500, "save_every": 1, "run_dir": str(run)}
+    cfg = {**TRAIN_CFG, "warm_start_steps": 0, "rl_steps": 500, "save_every": 1, "run_dir": str(run)}
     (tmp_path / "cfg.json").write_text(json.dumps(cfg))
     procs = launch("train_ranks.py", [0, 1], 2, tmp_path / "cfg.json", extra_env={"BONFT_DIST_TIMEOUT_S": "10"})
     try:

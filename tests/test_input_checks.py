@@ -112,13 +112,13 @@ def test_task_sizes_beyond_what_the_task_makes_are_refused_before_generating():
     exact = _ledger_prompt_count(2, 9)
     assert exact == 16200
     with pytest.raises(ValueError) as err:
-        from_dict({"rl_steps": 1, "n_train": 100_000_000})
+        from_dict({"rl_steps": 1, "train_prompts": 100_000_000})
     msg = str(err.value)
-    assert msg.startswith("n_train + n_eval asks for 75,000,150 distinct 'easy' prompts of task 'ledger', but it makes about ")
+    assert msg.startswith("train_prompts + heldout_prompts asks for 75,000,150 distinct 'easy' prompts of task 'ledger', but it makes about ")
     about = int(msg.split("makes about ")[1].split(" ")[0].replace(",", ""))
     assert 0.9 * exact <= about <= 1.1 * exact  # the Chao1 estimate against the enumerated count
-    from_dict({"rl_steps": 1, "n_train": PROBE_DRAWS})  # small sizes are left to Task.split, which is exact
-    from_dict({"rl_steps": 1, "n_train": 200_000, "task_params": {"max_qty": 99}})  # a wide task has room
+    from_dict({"rl_steps": 1, "train_prompts": PROBE_DRAWS})  # small sizes are left to Task.split, which is exact
+    from_dict({"rl_steps": 1, "train_prompts": 200_000, "task_params": {"max_qty": 99}})  # a wide task has room
 
 
 def test_context_check_names_the_prompt_and_the_fix():

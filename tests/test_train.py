@@ -16,8 +16,8 @@ from bonft.trainer.checkpoint import latest_checkpoint, load_state
 from bonft.trainer.config import from_dict, to_toml
 
 TINY = dict(
-    layers=1, width=32, heads=2, max_positions=48, n_train=64, n_eval=6, sft_steps=4, sft_batch_size=8,
-    sft_lr=1e-2, rl_steps=4, prompts_per_step=4, n=4, k=2, lr=1e-2, eval_n=4, eval_ks=[1, 4], n_boot=50,
+    layers=1, width=32, heads=2, max_positions=48, train_prompts=64, heldout_prompts=6, warm_start_steps=4, warm_start_batch_size=8,
+    warm_start_lr=1e-2, rl_steps=4, prompts_per_step=4, n=4, k=2, lr=1e-2, eval_samples=4, eval_ks=[1, 4], n_boot=50,
     log_every=1, save_every=2, max_new_tokens=6, plots=False, eval_at_start=False, threads=1,
 )
 
@@ -166,10 +166,10 @@ def test_prompt_sharding_keeps_the_global_batch(tmp_path):
 def test_non_finite_step_stops_before_the_update_and_keeps_good_checkpoints(tmp_path, monkeypatch, poison):
     # the bug this guards against: the check used to run after optimizer.step(), so the weights
     # updated by the bad step were saved under the previous step's label and a resume applied it twice
-    ref = tiny(tmp_path, "ref", rl_steps=0, sft_steps=6, save_every=1, keep_checkpoints=10)
+    ref = tiny(tmp_path, "ref", rl_steps=0, warm_start_steps=6, save_every=1, keep_checkpoints=10)
     T.train(ref, progress=False)
     at = lambda out, s: load_file(str(Path(out) / "checkpoints" / f"step-{s:08d}" / "model" / "model.safetensors"))
-    cfg = tiny(tmp_path, "bad", rl_steps=0, sft_steps=6, save_every=2)
+    cfg = tiny(tmp_path, "bad", rl_steps=0, warm_start_steps=6, save_every=2)
     real = T.sft_step
 
     def bad_at_3(run, step, clock):  # the 4th step (0-based step 3) goes wrong

@@ -12,13 +12,13 @@ from bonft.trainer.demo.stats import best_temperatures, paired_bootstrap, per_pr
 
 
 def test_tiny_demo_end_to_end(tmp_path):
-    dc = DemoConfig(run_dir=str(tmp_path / "demo"), n_train=32, n_eval=4, sft_steps=3, sft_batch_size=8, rl_steps=2,
-                    prompts_per_step=4, n=8, k=4, eval_n=8, eval_ks=[1, 8], layers=1, width=32, heads=2,
+    dc = DemoConfig(run_dir=str(tmp_path / "demo"), train_prompts=32, heldout_prompts=4, warm_start_steps=3, warm_start_batch_size=8, rl_steps=2,
+                    prompts_per_step=4, n=8, k=4, eval_samples=8, eval_ks=[1, 8], layers=1, width=32, heads=2,
                     max_new_tokens=4, n_boot=50, threads=1, workers=1, snr_every=1, log_every=1, plan_temperatures=(0.7, 1.3),
                     plan_prompts=4, plan_n=8, plan_policies=("warm_start", "pass_at_k"))
     summary = run_demo(dc, progress=False)
     out = tmp_path / "demo"
-    assert set(summary["results"]) == {"warm_start", "loo_reinforce", "pass_at_k", "placebo"}
+    assert set(summary["results"]) == {"warm_start", "reinforce", "pass_at_k", "placebo"}
     assert (out / "comparison.png").stat().st_size > 0
     md = (out / "comparison.md").read_text()
     assert "Paired difference from warm start" in md and "Paired difference from leave-one-out REINFORCE" in md
@@ -34,7 +34,7 @@ def test_tiny_demo_end_to_end(tmp_path):
     placebo = (out / "placebo" / "config.toml").read_text()
     assert "warm_start/checkpoints/step-00000003" in placebo and "placebo = true" in placebo
     assert 'objective = "pass_at_k"' in placebo and 'optimizer = "sgd"' in placebo
-    for name in ("loo_reinforce", "pass_at_k", "placebo"):
+    for name in ("reinforce", "pass_at_k", "placebo"):
         g = summary["gradients"][name]
         # grad_snr is 0 when no prompt of this tiny run earns credit (the step then only moves by round-off)
         assert g["grad_snr"] >= 0 and g["grad_norm"] > 0 and g["clipped"] == 0.0  # clipping is off by default
@@ -98,7 +98,7 @@ def test_study_table_pairs_by_seed():
     def curves(p1, p32):
         return {"pass": np.array([[p1, p32]] * 4), "proxy": np.array([[p1, p32]] * 4)}
 
-    per_seed = {s: {"warm_start": curves(0.2, 0.6), "loo_reinforce": curves(0.3, 0.6 + 0.01 * s),
+    per_seed = {s: {"warm_start": curves(0.2, 0.6), "reinforce": curves(0.3, 0.6 + 0.01 * s),
                     "pass_at_k": curves(0.25, 0.7 + 0.01 * s)} for s in range(3)}
     table = study_table(per_seed, [1, 32])
     # pass@k - REINFORCE at pass@32 is exactly 0.1 on every seed: a zero-width interval, marked

@@ -65,7 +65,7 @@ def _toy_gradient(name, y, scores, rewards, theta, *, seed=None):
     return g.numpy()
 
 
-@pytest.mark.parametrize("name", ["loo_reinforce", "pass_at_k", "best_of_k", "pass_at_k_positive"])
+@pytest.mark.parametrize("name", ["reinforce", "pass_at_k", "best_of_k", "pass_at_k_positive"])
 def test_placebo_update_has_zero_mean_on_a_fixed_pool(name):
     theta = torch.tensor([0.3, -0.2, 0.5, 0.0, -0.6], dtype=torch.float64)
     y = torch.tensor([0, 1, 2, 2, 3, 4, 0, 2])
@@ -91,7 +91,7 @@ def test_placebo_exact_average_over_all_permutations():
     # brute force over all 6! orders of a 6-sample pool: the mean credit of every sample is the pool's mean
     rewards = np.array([[1.0, 0, 1, 0, 0, 0]])
     scores = np.array([[0.2, 0.9, 0.4, 0.4, 0.1, 0.7]])
-    for name in ("best_of_k", "pass_at_k", "loo_reinforce"):
+    for name in ("best_of_k", "pass_at_k", "reinforce"):
         tot = np.zeros(6)
         for perm in itertools.permutations(range(6)):
             tot += OBJECTIVES[name].credit(pools_of(scores[:, perm], rewards[:, perm]), 3).numpy()[0]
@@ -131,7 +131,7 @@ def _tiny_run(tmp_path, **kw):
     from bonft.trainer.loop import build_run
 
     torch.set_num_threads(1)
-    cfg = from_dict({**dict(layers=1, width=32, heads=2, max_positions=48, n_train=32, n_eval=4, rl_steps=2,
+    cfg = from_dict({**dict(layers=1, width=32, heads=2, max_positions=48, train_prompts=32, heldout_prompts=4, rl_steps=2,
                             prompts_per_step=4, n=4, k=2, max_new_tokens=5, verifier="proxy",
                             run_dir=str(tmp_path / "r")), **kw})
     return build_run(cfg)
@@ -212,8 +212,8 @@ def test_snr_and_placebo_on_two_ranks_match_one_process(tmp_path, monkeypatch):
 
     scripts = Path(__file__).parent / "dist_scripts"
     monkeypatch.syspath_prepend(str(scripts))  # the toy verifier, here and in the ranks
-    cfg = dict(arch="llama", layers=1, width=32, heads=2, max_positions=48, n_train=64, n_eval=4, rl_steps=2,
-               prompts_per_step=4, n=4, k=2, lr=1e-3, eval_n=4, eval_ks=[1, 4], n_boot=50, log_every=1, save_every=0,
+    cfg = dict(arch="llama", layers=1, width=32, heads=2, max_positions=48, train_prompts=64, heldout_prompts=4, rl_steps=2,
+               prompts_per_step=4, n=4, k=2, lr=1e-3, eval_samples=4, eval_ks=[1, 4], n_boot=50, log_every=1, save_every=0,
                max_new_tokens=6, plots=False, eval_at_start=False, objective="pass_at_k", correct_threshold=0.2,
                verifier="toy_verifier:digit_share", snr_every=1, placebo=True)
     (tmp_path / "two.json").write_text(json.dumps({**cfg, "run_dir": str(tmp_path / "two")}))
@@ -255,7 +255,7 @@ def test_a_registered_objective_trains_like_the_builtin_with_the_same_credit(tmp
     register_objective("my_reinforce", Objective(credit=lambda p, k: C.reinforce_credit(p.rewards), value=None, summary="mine"))
     try:
         recs = []
-        for name in ("loo_reinforce", "my_reinforce"):
+        for name in ("reinforce", "my_reinforce"):
             run = _tiny_run(tmp_path, objective=name, reward_source="scores")
             run.verifiers["train"] = lambda ps, rs: np.array([float(len(r) % 2) for r in rs])
             recs.append(rl_step(run, 0, Stopwatch()))

@@ -20,7 +20,7 @@ def add_common(p: argparse.ArgumentParser) -> None:
     p.add_argument("--prompts", type=int, default=0, help="use the first this many held-out prompts (default: all)")
     p.add_argument("--seed", type=int, default=0, help="sampling seed (default: 0)")
     p.add_argument("--set", dest="overrides", action="append", default=[], metavar="KEY=VALUE",
-                   help="override a key of the checkpoint's config, e.g. --set n_eval=500 (repeatable)")
+                   help="override a key of the checkpoint's config, e.g. --set heldout_prompts=500 (repeatable)")
 
 
 def add_arguments(p: argparse.ArgumentParser) -> None:
@@ -34,13 +34,14 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 def load_for_eval(args: argparse.Namespace, *, n: int, ks: list[int], temperature: float):
     """The checkpoint's config (its config.toml, else defaults) pointed at the checkpoint, and the Run."""
     from bonft.trainer.checkpoint import resolve_checkpoint
-    from bonft.trainer.config import FIELDS, apply_overrides, from_dict, load_config
+    from bonft.trainer.config import FIELDS, MODEL_KEYS, apply_overrides, from_dict, read_recipe
     from bonft.trainer.loop import build_run
 
     ckpt = resolve_checkpoint(args.checkpoint)
-    base = load_config(ckpt / "config.toml").to_dict() if (ckpt / "config.toml").is_file() else {}
+    base = read_recipe(ckpt / "config.toml") if (ckpt / "config.toml").is_file() else {}
+    base = {key: v for key, v in base.items() if key not in MODEL_KEYS}  # the model is the checkpoint's
     values = apply_overrides(base, list(args.overrides))
-    values.update(start_from=str(ckpt), eval_n=n, eval_ks=ks, eval_temperature=temperature,
+    values.update(start_from=str(ckpt), eval_samples=n, eval_ks=ks, eval_temperature=temperature,
                   eval_prompts=args.prompts, seed=values.get("seed", FIELDS["seed"].default))
     cfg = from_dict(values)
     return ckpt, cfg, build_run(cfg)

@@ -15,12 +15,20 @@ A recipe is a flat TOML file; tables are only used for ``task_params``::
 
 ``--set key=value`` overrides convert the text to the field's type
 (``--set lr=1e-4``, ``--set eval_ks=1,4,16``, ``--set task_params.hard_share=0.5``).
+
+Deprecated spellings (:data:`DEPRECATED_KEYS`) are still read, with a
+:class:`DeprecatedKeyWarning` naming the new key: ``n_train`` -> ``train_prompts``,
+``n_eval`` -> ``heldout_prompts``, ``eval_n`` -> ``eval_samples``, ``sft_steps`` ->
+``warm_start_steps``, ``sft_batch_size`` -> ``warm_start_batch_size``, ``sft_lr`` ->
+``warm_start_lr``; the objective ``loo_reinforce`` is read as ``reinforce``.
+Giving both spellings of one key is an error.
 """
 from __future__ import annotations
 
 import dataclasses
 import json
 import sys
+import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -35,6 +43,22 @@ from bonft._core.checks import check_choice, check_fraction, check_int, check_po
 from bonft.trainer.objectives import OBJECTIVES  # the registry: objective name -> credit function + options
 
 K_SCHEDULES = ("constant", "linear", "geometric")
+# old spelling -> key: read with a warning naming the key
+DEPRECATED_KEYS = {
+    "n_train": "train_prompts",
+    "n_eval": "heldout_prompts",
+    "eval_n": "eval_samples",
+    "sft_steps": "warm_start_steps",
+    "sft_batch_size": "warm_start_batch_size",
+    "sft_lr": "warm_start_lr",
+}
+DEPRECATED_OBJECTIVES = {"loo_reinforce": "reinforce"}
+# keys that build the tiny model: with start_from the model comes from there and they cannot take effect
+MODEL_KEYS = ("arch", "layers", "width", "heads", "max_positions")
+
+
+class DeprecatedKeyWarning(FutureWarning):
+    """A recipe key or objective under its old spelling (read as the new one)."""
 OPTIMIZERS = ("adamw", "sgd")
 TOKEN_REDUCTIONS = ("sum", "mean")
 
@@ -56,7 +80,7 @@ class TrainConfig:
     device: str = _f("cpu", "'cpu', 'cuda' or 'auto'.", group="run")
     threads: int = _f(1, "torch intra-op threads (>= 1). Tiny models run fastest single-threaded; use the other cores for parallel runs.", group="run")
     # --- model ---
-    start_from: str = _f("", "Start from this model: a bonft checkpoint directory or a local transformers directory. Empty = build a tiny model from the fields below.", group="model")
+    start_from: str = _f("", "Start from this model: a bonft checkpoint directory or a local transformers directory. Empty = build a tiny model from the fields below (setting those together with start_from is an error: the model comes from start_from).", group="model")
     arch: str = _f("gpt2", "Tiny model family when building from scratch: 'gpt2' or 'llama'.", group="model")
     layers: int = _f(2, "Transformer layers of the tiny model.", group="model")
     width: int = _f(128, "Width of the tiny model.", group="model")
@@ -66,19 +90,19 @@ class TrainConfig:
     task: str = _f("ledger", "Built-in task name (see docs/tasks.md), or 'jsonl' to read prompts_file.", group="task")
     task_params: dict = _f({}, "Task knobs passed to get_task(task, **task_params), e.g. [task_params] hard_share = 0.3.", group="task")
     prompts_file: str = _f("", "With task = 'jsonl': local JSONL with 'prompt' and 'answer' fields; trained and evaluated by exact match.", group="task")
-    n_train: int = _f(2000, "Training prompts drawn from the task.", group="task")
-    n_eval: int = _f(200, "Held-out evaluation prompts.", group="task")
+    train_prompts: int = _f(2000, "Training prompts drawn from the task (old spelling: n_train).", group="task")
+    heldout_prompts: int = _f(200, "Held-out evaluation prompts (old spelling: n_eval).", group="task")
     verifier: str = _f("exact", "Verifier that trains: 'exact' (task answer check), 'proxy' (the task's imperfect proxy selects the best sample) or 'module:function'.", group="task")
     # --- warm start (supervised, on reference responses) ---
-    sft_steps: int = _f(0, "Supervised warm-start steps (NLL of the reference responses) before RL. 0 = skip.", group="warm_start")
-    sft_batch_size: int = _f(128, "Prompts per warm-start step.", group="warm_start")
-    sft_lr: float = _f(3e-3, "Warm-start learning rate (AdamW, cosine decay to 10%).", group="warm_start")
+    warm_start_steps: int = _f(0, "Supervised warm-start steps (NLL of the reference responses) before RL. 0 = skip. (old spelling: sft_steps)", group="warm_start")
+    warm_start_batch_size: int = _f(128, "Prompts per warm-start step (old spelling: sft_batch_size).", group="warm_start")
+    warm_start_lr: float = _f(3e-3, "Warm-start learning rate (AdamW, cosine decay to 10%) (old spelling: sft_lr).", group="warm_start")
     # --- RL stage ---
     objective: str = _f("pass_at_k", f"What the RL stage optimises: one of {', '.join(OBJECTIVES)}.", group="rl")
     rl_steps: int = _f(0, "RL optimizer steps. 0 = skip the RL stage.", group="rl")
     prompts_per_step: int = _f(16, "Prompts per RL optimizer step (global, over all ranks).", group="rl")
     n: int = _f(16, "Responses sampled per prompt.", group="rl")
-    k: int = _f(8, "k of best-of-k / pass@k that the objective targets (1 <= k <= n). Ignored by loo_reinforce.", group="rl")
+    k: int = _f(8, "k of best-of-k / pass@k that the objective targets (1 <= k <= n). It has no effect on reinforce, which targets the mean reward (pass@1).", group="rl")
     k_final: int = _f(0, "k at the last RL step when annealing k (e.g. from k=16 toward 1). 0 = keep k constant.", group="rl")
     k_schedule: str = _f("constant", f"How k moves from k to k_final: one of {', '.join(K_SCHEDULES)}.", group="rl")
     temperature: float = _f(1.0, "Sampling temperature of the training samples; log-probs are taken at the same temperature.", group="rl")
@@ -101,10 +125,10 @@ class TrainConfig:
     # --- evaluation ---
     eval_every: int = _f(0, "Evaluate every this many RL steps (and always before and after RL); 0 = only before and after.", group="eval")
     eval_at_start: bool = _f(True, "Evaluate before the first RL step (the 'before' of a before/after comparison).", group="eval")
-    eval_n: int = _f(64, "Samples per held-out prompt at evaluation.", group="eval")
-    eval_ks: list = _f([1, 4, 16, 32], "k values of the best-of-k / pass@k curves (each <= eval_n).", group="eval")
+    eval_samples: int = _f(64, "Samples per held-out prompt at evaluation (old spelling: eval_n).", group="eval")
+    eval_ks: list = _f([1, 4, 16, 32], "k values of the best-of-k / pass@k curves (each <= eval_samples).", group="eval")
     eval_temperature: float = _f(1.0, "Sampling temperature at evaluation.", group="eval")
-    eval_prompts: int = _f(0, "Evaluate on the first this many held-out prompts; 0 = all n_eval.", group="eval")
+    eval_prompts: int = _f(0, "Evaluate on the first this many held-out prompts; 0 = all heldout_prompts.", group="eval")
     confidence: float = _f(0.95, "Confidence level of the bootstrap intervals.", group="eval")
     n_boot: int = _f(1000, "Bootstrap resamples of the intervals.", group="eval")
     # --- checkpoints and logging ---
@@ -119,7 +143,7 @@ class TrainConfig:
     # derived -----------------------------------------------------------------
     @property
     def total_steps(self) -> int:
-        return self.sft_steps + self.rl_steps
+        return self.warm_start_steps + self.rl_steps
 
     def to_dict(self) -> dict:
         return dataclasses.asdict(self)
@@ -145,6 +169,11 @@ def validate(c: TrainConfig) -> None:
             setattr(c, f.name, _nonneg_real(f.name, v))
     if not isinstance(c.task_params, dict):
         raise TypeError(f"task_params must be a table of task knobs, got {type(c.task_params).__name__}")
+    if c.objective in DEPRECATED_OBJECTIVES:
+        new = DEPRECATED_OBJECTIVES[c.objective]
+        warnings.warn(f"objective {c.objective!r} is now called {new!r}; reading it as {new!r}",
+                      DeprecatedKeyWarning, stacklevel=3)
+        c.objective = new
     check_choice("objective", c.objective, tuple(OBJECTIVES))
     check_choice("optimizer", c.optimizer, OPTIMIZERS)
     check_fraction("momentum", c.momentum, open_high=True)
@@ -165,15 +194,20 @@ def validate(c: TrainConfig) -> None:
         raise ValueError(f"k_final must be <= n (n={c.n}), got k_final={c.k_final}")
     if c.k_schedule != "constant" and c.k_final < 1:
         raise ValueError(f"k_schedule={c.k_schedule!r} needs k_final >= 1, got k_final={c.k_final}")
-    if c.objective == "loo_reinforce" and c.n < 2:
+    if c.start_from:
+        for name in MODEL_KEYS:
+            if getattr(c, name) != FIELDS[name].default:
+                raise ValueError(f"{name} must be left unset with start_from (the model comes from {c.start_from!r}), "
+                                 f"got {name}={getattr(c, name)!r}")
+    if c.objective == "reinforce" and c.n < 2:
         raise ValueError(f"n must be >= 2 for a leave-one-out baseline, got n={c.n}")
-    for name in ("threads", "prompts_per_step", "grad_accum", "max_new_tokens", "n_train", "n_eval", "eval_n",
-                 "sft_batch_size", "keep_checkpoints", "layers", "width", "heads", "max_positions", "n_boot"):
+    for name in ("threads", "prompts_per_step", "grad_accum", "max_new_tokens", "train_prompts", "heldout_prompts", "eval_samples",
+                 "warm_start_batch_size", "keep_checkpoints", "layers", "width", "heads", "max_positions", "n_boot"):
         check_int(name, getattr(c, name), min=1)
     check_int("n_boot", c.n_boot, max=1_000_000)  # more replicates cost memory and time and move no interval
     if c.prompts_per_step % c.grad_accum:
         raise ValueError(f"prompts_per_step must be divisible by grad_accum (grad_accum={c.grad_accum}), got prompts_per_step={c.prompts_per_step}")
-    for name in ("lr", "sft_lr", "temperature", "eval_temperature", "adam_eps"):
+    for name in ("lr", "warm_start_lr", "temperature", "eval_temperature", "adam_eps"):
         check_positive(name, getattr(c, name))
     check_fraction("top_p", c.top_p, open_low=True)
     check_fraction("confidence", c.confidence, open_low=True, open_high=True)
@@ -181,15 +215,15 @@ def validate(c: TrainConfig) -> None:
         raise TypeError(f"eval_ks must be a non-empty list of ints, got {c.eval_ks!r}")
     for kk in c.eval_ks:
         check_int("eval_ks", kk, min=1)
-        if kk > c.eval_n:
-            raise ValueError(f"eval_ks must be <= eval_n (eval_n={c.eval_n}), got eval_ks={list(c.eval_ks)}")
+        if kk > c.eval_samples:
+            raise ValueError(f"eval_ks must be <= eval_samples (eval_samples={c.eval_samples}), got eval_ks={list(c.eval_ks)}")
     c.eval_ks = [int(v) for v in c.eval_ks]
-    if c.eval_prompts > c.n_eval:
-        raise ValueError(f"eval_prompts must be <= n_eval (n_eval={c.n_eval}), got eval_prompts={c.eval_prompts}")
+    if c.eval_prompts > c.heldout_prompts:
+        raise ValueError(f"eval_prompts must be <= heldout_prompts (heldout_prompts={c.heldout_prompts}), got eval_prompts={c.eval_prompts}")
     if c.task == "jsonl" and not c.prompts_file:
         raise ValueError("prompts_file must name a JSONL file when task = 'jsonl', got ''")
-    if c.sft_steps == 0 and c.rl_steps == 0 and not c.start_from:
-        raise ValueError("nothing to train: sft_steps and rl_steps are both 0 (set one, e.g. --set rl_steps=100)")
+    if c.warm_start_steps == 0 and c.rl_steps == 0 and not c.start_from:
+        raise ValueError("nothing to train: warm_start_steps and rl_steps are both 0 (set one, e.g. --set rl_steps=100)")
     check_task_sizes(c)
 
 
@@ -197,7 +231,7 @@ PROBE_DRAWS = 50_000  # sizes above this are checked against a probe of the task
 
 
 def check_task_sizes(c: TrainConfig) -> None:
-    """Refuse ``n_train + n_eval`` far beyond the distinct prompts a built-in task can make, before generating.
+    """Refuse ``train_prompts + heldout_prompts`` far beyond the distinct prompts a built-in task can make, before generating.
 
     Small sizes (<= ``PROBE_DRAWS`` per family) pass untouched: generating them
     takes well under a second and ``Task.split`` reports a shortfall exactly.
@@ -207,7 +241,7 @@ def check_task_sizes(c: TrainConfig) -> None:
     f1 seen once, f2 seen twice), a lower bound; a family asked for more than
     twice that is refused. ``task = 'jsonl'`` is checked exactly by the task itself.
     """
-    if c.task == "jsonl" or c.n_train + c.n_eval <= PROBE_DRAWS:
+    if c.task == "jsonl" or c.train_prompts + c.heldout_prompts <= PROBE_DRAWS:
         return
     import collections
     import random
@@ -217,7 +251,7 @@ def check_task_sizes(c: TrainConfig) -> None:
 
     task = get_task(c.task, **c.task_params)
     shares = task._families()
-    c_train, c_eval = family_counts(c.n_train, shares), family_counts(c.n_eval, shares)
+    c_train, c_eval = family_counts(c.train_prompts, shares), family_counts(c.heldout_prompts, shares)
     for fam in shares:
         need = c_train[fam] + c_eval[fam]
         if need <= PROBE_DRAWS:
@@ -228,9 +262,9 @@ def check_task_sizes(c: TrainConfig) -> None:
         richness = len(seen) + f[1] * (f[1] - 1) / (2 * (f[2] + 1))
         if need > 2 * richness:
             raise ValueError(
-                f"n_train + n_eval asks for {need:,} distinct {fam!r} prompts of task {c.task!r}, but it makes about "
-                f"{int(richness):,} ({len(seen):,} distinct in {PROBE_DRAWS:,} draws); lower n_train (now {c.n_train:,}) "
-                f"or n_eval (now {c.n_eval:,}), or widen the task (task_params)")
+                f"train_prompts + heldout_prompts asks for {need:,} distinct {fam!r} prompts of task {c.task!r}, but it makes about "
+                f"{int(richness):,} ({len(seen):,} distinct in {PROBE_DRAWS:,} draws); lower train_prompts (now {c.train_prompts:,}) "
+                f"or heldout_prompts (now {c.heldout_prompts:,}), or widen the task (task_params)")
 
 
 # ---------------------------------------------------------------- loading, overrides
@@ -270,9 +304,29 @@ def _parse_scalar(text: str) -> Any:
         return text
 
 
+def _current_key(key: str, where: str = "") -> str:
+    """A deprecated spelling -> its key, with a warning naming the key; other keys unchanged."""
+    if key in DEPRECATED_KEYS:
+        warnings.warn(f"{where}config key {key!r} is now called {DEPRECATED_KEYS[key]!r}; reading it as "
+                      f"{DEPRECATED_KEYS[key]!r}", DeprecatedKeyWarning, stacklevel=4)
+        return DEPRECATED_KEYS[key]
+    return key
+
+
+def current_keys(values: dict) -> dict:
+    """``values`` with every deprecated key renamed (warning once per key); both spellings of one key is an error."""
+    out = {}
+    for key, v in values.items():
+        new = _current_key(key)
+        if new != key and new in values:
+            raise ValueError(f"{key} and {new} are the same key (old and new spelling), got both; keep {new}")
+        out[new] = v
+    return out
+
+
 def apply_overrides(values: dict, overrides: list[str]) -> dict:
     """Apply ``key=value`` strings to a dict of config values (copied)."""
-    values = dict(values)
+    values = current_keys(dict(values))
     values["task_params"] = dict(values.get("task_params", {}))
     for item in overrides:
         if not isinstance(item, str) or "=" not in item:
@@ -282,6 +336,7 @@ def apply_overrides(values: dict, overrides: list[str]) -> dict:
         if key.startswith("task_params."):
             values["task_params"][key.split(".", 1)[1]] = _parse_scalar(text.strip())
             continue
+        key = _current_key(key, "--set ")
         if key not in FIELDS:
             raise ValueError(f"--set key must be a config field (see docs/training.md), got {key!r}")
         default = FIELDS[key].default if FIELDS[key].default is not dataclasses.MISSING else FIELDS[key].default_factory()
@@ -293,24 +348,34 @@ def from_dict(values: dict) -> TrainConfig:
     """Build and validate a config; unknown keys are an error (typos must not pass silently)."""
     if not isinstance(values, dict):
         raise TypeError(f"config must be a dict, got {type(values).__name__}")
+    values = current_keys(values)
     unknown = sorted(set(values) - set(FIELDS))
     if unknown:
         raise ValueError(f"unknown config key(s) {unknown}; known keys are listed in docs/training.md")
+    if values.get("start_from"):
+        for name in MODEL_KEYS:
+            if name in values:
+                raise ValueError(f"{name} must be left unset with start_from (the model comes from "
+                                 f"{values['start_from']!r}), got {name}={values[name]!r}")
     return TrainConfig(**values)
 
 
 def load_config(path: str | Path | None = None, overrides: list[str] | None = None) -> TrainConfig:
     """Read a TOML recipe (or start from defaults when ``path`` is None) and apply overrides."""
-    values: dict = {}
-    if path is not None:
-        path = Path(path)
-        if not path.is_file():
-            raise FileNotFoundError(f"recipe not found: {path}")
-        try:
-            values = tomllib.loads(path.read_text())
-        except tomllib.TOMLDecodeError as e:
-            raise ValueError(f"{path}: not valid TOML: {e}") from None
+    values = read_recipe(path) if path is not None else {}
     return from_dict(apply_overrides(values, list(overrides or [])))
+
+
+def read_recipe(path: str | Path) -> dict:
+    """The key -> value table of a TOML recipe, deprecated spellings renamed (not yet validated)."""
+    path = Path(path)
+    if not path.is_file():
+        raise FileNotFoundError(f"recipe not found: {path}")
+    try:
+        values = tomllib.loads(path.read_text())
+    except tomllib.TOMLDecodeError as e:
+        raise ValueError(f"{path}: not valid TOML: {e}") from None
+    return current_keys(values)
 
 
 def _toml_value(v: Any) -> str:
@@ -327,6 +392,8 @@ def to_toml(c: TrainConfig) -> str:
     """Serialise a config to TOML that :func:`load_config` reads back to an equal config."""
     lines = []
     for name, v in c.to_dict().items():
+        if c.start_from and name in MODEL_KEYS:
+            continue  # the model comes from start_from
         if name != "task_params":
             lines.append(f"{name} = {_toml_value(v)}")
     lines.append("\n[task_params]")

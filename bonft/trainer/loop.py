@@ -1,6 +1,6 @@
 """The trainer: an optional supervised warm start, then RL on any best-of-N-aware objective.
 
-One run is a sequence of global optimizer steps ``0 .. sft_steps + rl_steps - 1`` in two stages::
+One run is a sequence of global optimizer steps ``0 .. warm_start_steps + rl_steps - 1`` in two stages::
 
     for stage in (warm start, RL):              # each stage starts with a fresh optimizer
         for step in stage:
@@ -73,7 +73,7 @@ def train(cfg: TrainConfig, *, resume: bool = False, progress: bool = True) -> d
     try:
         if start == 0 and _eval_due(cfg, 0):
             _evaluate(run, 0, progress)
-        for stage, end in (("sft", cfg.sft_steps), ("rl", cfg.total_steps)):
+        for stage, end in (("sft", cfg.warm_start_steps), ("rl", cfg.total_steps)):
             if s >= end:
                 continue
             _enter_stage(run, stage, state if s == start else None)
@@ -81,13 +81,13 @@ def train(cfg: TrainConfig, *, resume: bool = False, progress: bool = True) -> d
                 with step_guard(run.ctx, step=step + 1, run_dir=run.out):  # a peer lost mid-step -> PeerError
                     rec = _one_step(run, stage, step)
                 s = step + 1  # the weights are now those of step s
-                if s % cfg.log_every == 0 or s == cfg.total_steps or s == cfg.sft_steps:
+                if s % cfg.log_every == 0 or s == cfg.total_steps or s == cfg.warm_start_steps:
                     _log(run, rec)
                 bar.update(1)
                 bar.set_postfix({key: f"{rec[key]:.3g}" for key in ("loss", "reward", "k") if key in rec}, refresh=False)
                 if _eval_due(cfg, s):
                     _evaluate(run, s, progress)
-                if s == cfg.total_steps or s == cfg.sft_steps or (cfg.save_every and s % cfg.save_every == 0):
+                if s == cfg.total_steps or s == cfg.warm_start_steps or (cfg.save_every and s % cfg.save_every == 0):
                     _save(run, s)
     except NonFiniteStep as err:  # nothing was applied: the weights are still those of step s
         bar.close()
@@ -154,8 +154,8 @@ def _check_shares(cfg: TrainConfig, world: int) -> None:
         if share % cfg.grad_accum:
             raise ValueError(f"prompts_per_step must be divisible by world_size * grad_accum (world_size={world}, "
                              f"grad_accum={cfg.grad_accum}), got prompts_per_step={cfg.prompts_per_step}")
-    if cfg.sft_steps:
-        check_divisible("sft_batch_size", cfg.sft_batch_size, world)
+    if cfg.warm_start_steps:
+        check_divisible("warm_start_batch_size", cfg.warm_start_batch_size, world)
 
 
 def _restore(run: Run, resume: bool) -> tuple[int, dict | None]:
@@ -226,11 +226,11 @@ def _eval_due(cfg: TrainConfig, s: int) -> bool:
         return False
     if s == cfg.total_steps:
         return True
-    if cfg.rl_steps == 0 or s < cfg.sft_steps:
+    if cfg.rl_steps == 0 or s < cfg.warm_start_steps:
         return False
-    if s == cfg.sft_steps:
+    if s == cfg.warm_start_steps:
         return cfg.eval_at_start
-    return bool(cfg.eval_every) and (s - cfg.sft_steps) % cfg.eval_every == 0
+    return bool(cfg.eval_every) and (s - cfg.warm_start_steps) % cfg.eval_every == 0
 
 
 def _evaluate(run: Run, s: int, progress: bool) -> None:
@@ -248,7 +248,7 @@ def _save(run: Run, s: int) -> str:
     from bonft.trainer.checkpoint import save_checkpoint
 
     if run.is_main:
-        stage = "sft" if s == 0 or s - 1 < run.cfg.sft_steps else "rl"
+        stage = "sft" if s == 0 or s - 1 < run.cfg.warm_start_steps else "rl"
         save_checkpoint(run.out, step=s, model=run.module, tokenizer=run.tokenizer, optimizer=run.optimizer,
                         config_toml=to_toml(run.cfg), extra={"stage": stage}, keep=run.cfg.keep_checkpoints)
     return f"checkpoint step-{s:08d}"

@@ -89,7 +89,7 @@ def _vote(name: str) -> tuple[Callable, Callable]:
 
 
 OBJECTIVES: dict[str, Objective] = {
-    "loo_reinforce": Objective(
+    "reinforce": Objective(
         credit=lambda p, k: C.reinforce_credit(p.rewards, baseline="loo"), value=lambda p, k: p.rewards.mean(-1),
         summary="mean reward (pass@1), leave-one-out REINFORCE (Kool et al. 2019): the baseline"),
     "best_of_k": Objective(

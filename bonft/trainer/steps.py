@@ -65,13 +65,13 @@ def k_at(cfg: TrainConfig, rl_step: int) -> int:
 
 def lr_at(cfg: TrainConfig, step: int) -> float:
     """SFT: linear warm-up over 5% then cosine to 10%; RL: linear warm-up then constant."""
-    if step < cfg.sft_steps:
-        warm = max(1, cfg.sft_steps // 20)
+    if step < cfg.warm_start_steps:
+        warm = max(1, cfg.warm_start_steps // 20)
         if step < warm:
-            return cfg.sft_lr * (step + 1) / warm
-        frac = (step - warm) / max(1, cfg.sft_steps - warm)
-        return cfg.sft_lr * (0.1 + 0.9 * 0.5 * (1 + math.cos(math.pi * frac)))
-    rl_step = step - cfg.sft_steps
+            return cfg.warm_start_lr * (step + 1) / warm
+        frac = (step - warm) / max(1, cfg.warm_start_steps - warm)
+        return cfg.warm_start_lr * (0.1 + 0.9 * 0.5 * (1 + math.cos(math.pi * frac)))
+    rl_step = step - cfg.warm_start_steps
     if rl_step < cfg.warmup_steps:
         return cfg.lr * (rl_step + 1) / cfg.warmup_steps
     return cfg.lr
@@ -156,7 +156,7 @@ def sft_step(run: Run, step: int, clock: Stopwatch) -> dict:
     from bonft.generation.sampling import sequence_logprobs
 
     cfg = run.cfg
-    B = cfg.sft_batch_size
+    B = cfg.warm_start_batch_size
     idx = _prompt_batch(cfg, step, B, len(run.train), run.rank, run.world)
     ex = [run.train[i] for i in idx]
     pids, pmask, rids, rmask = encode_pairs(run.tokenizer, [e.prompt for e in ex], [e.reference for e in ex], run.device)
@@ -234,10 +234,10 @@ def rl_step(run: Run, step: int, clock: Stopwatch) -> dict:
 
     cfg, n, T = run.cfg, run.cfg.n, run.cfg.temperature
     B, obj = cfg.prompts_per_step, OBJECTIVES[cfg.objective]
-    k = k_at(cfg, step - cfg.sft_steps)
+    k = k_at(cfg, step - cfg.warm_start_steps)
     idx = _prompt_batch(cfg, step, B, len(run.train), run.rank, run.world)
     slots = np.arange(*shard_bounds(B, rank=run.rank, world_size=run.world))  # positions in the global batch
-    moments = GradientMoments() if cfg.snr_every and (step - cfg.sft_steps) % cfg.snr_every == 0 else None
+    moments = GradientMoments() if cfg.snr_every and (step - cfg.warm_start_steps) % cfg.snr_every == 0 else None
     acc: dict = {}
     for mb, sl in zip(np.array_split(idx, cfg.grad_accum), np.array_split(slots, cfg.grad_accum)):
         ex = [run.train[i] for i in mb]
@@ -290,7 +290,7 @@ def build_run(cfg: TrainConfig) -> Run:
     rank, world, device = ctx.rank, ctx.world_size, ctx.device
     extra = {"path": cfg.prompts_file} if cfg.task == "jsonl" else {}
     task = get_task(cfg.task, **extra, **cfg.task_params)
-    train, held = task.split(n_train=cfg.n_train, n_eval=cfg.n_eval, seed=cfg.seed)
+    train, held = task.split(n_train=cfg.train_prompts, n_eval=cfg.heldout_prompts, seed=cfg.seed)
     everything = list(train) + list(held)
     verifiers = {"exact": task.verifier(everything)}
     proxy = task.proxy_verifier(everything) if hasattr(task, "proxy_verifier") else None
@@ -313,7 +313,7 @@ def build_run(cfg: TrainConfig) -> Run:
             eos_token_id=tokenizer.eos_token_id, bos_token_id=tokenizer.bos_token_id,
         ).to(device)
     check_context(model, tokenizer, [e.prompt for e in everything], max_new_tokens=cfg.max_new_tokens,  # before any work
-                  references=[e.reference for e in train] if cfg.sft_steps else (),
+                  references=[e.reference for e in train] if cfg.warm_start_steps else (),
                   knob="start_from's context" if cfg.start_from else "max_positions")
     return Run(cfg=cfg, out=Path(cfg.run_dir), model=model, tokenizer=tokenizer, task=task, train=list(train),
                eval=list(held), verifiers=verifiers, device=device, rank=rank, world=world, ctx=ctx)
@@ -336,7 +336,7 @@ def evaluate_run(run: Run, step: int):
     raw = None
     if b > a:
         raw = collect_pools(run.module, run.tokenizer, [e.prompt for e in held[a:b]], verifiers=vers,
-                            extract_answer=getattr(run.task, "extract_answer", None), n=cfg.eval_n,
+                            extract_answer=getattr(run.task, "extract_answer", None), n=cfg.eval_samples,
                             temperature=cfg.eval_temperature, max_new_tokens=cfg.max_new_tokens,
                             seeds=[prompt_seed(cfg.seed, step=0, slot=j, stream=2) for j in range(a, b)])
     pools = gather_objects(raw, run.ctx)

@@ -31,7 +31,7 @@ from pathlib import Path
 
 import numpy as np
 
-from bonft.trainer.config import TrainConfig
+from bonft.trainer.config import MODEL_KEYS, TrainConfig
 from bonft.trainer.demo.stats import LABELS, best_temperatures, per_prompt_curves, seed_table, study_table
 
 
@@ -49,7 +49,7 @@ class DemoConfig(TrainConfig):
     run_dir: str = "runs/demo"
     task: str = "refunds"
     task_params: dict = field(default_factory=dict)
-    sft_steps: int = 400
+    warm_start_steps: int = 400
     rl_steps: int = 60
     prompts_per_step: int = 64
     n: int = 32
@@ -63,12 +63,12 @@ class DemoConfig(TrainConfig):
     max_new_tokens: int = 4
     save_every: int = 0
     log_every: int = 1  # every step: grad_snr (measured every snr_every steps) is only in the lines written
-    objectives: tuple = ("loo_reinforce", "pass_at_k", "placebo")
+    objectives: tuple = ("reinforce", "pass_at_k", "placebo")
     workers: int = 2  # stages run in parallel processes, one core each
     plan_temperatures: tuple = (0.6, 0.8, 1.0, 1.2, 1.4)  # the planner's sweep; () = skip it
     plan_prompts: int = 100  # held-out prompts of the sweep (the first ones)
     plan_n: int = 32  # samples per prompt and temperature in the sweep
-    plan_policies: tuple = ("warm_start", "loo_reinforce", "pass_at_k", "best_of_k")
+    plan_policies: tuple = ("warm_start", "reinforce", "pass_at_k", "best_of_k")
     warm_start_clip: float = 1.0  # clip_grad_norm of the warm-start stage (clip_grad_norm is the RL stages')
 
 
@@ -77,6 +77,8 @@ def _base(dc: DemoConfig, **kw) -> TrainConfig:
     values = {f.name: getattr(dc, f.name) for f in fields(TrainConfig)}
     values.update(task_params=dict(dc.task_params), eval_ks=list(dc.eval_ks))
     values.update(kw)
+    if values["start_from"]:  # the model comes from start_from: the tiny model's keys stay unset
+        values.update({name: getattr(TrainConfig, name) for name in MODEL_KEYS})
     return TrainConfig(**values)
 
 
@@ -168,13 +170,13 @@ def objective_config(dc: DemoConfig, objective: str, warm: str, out: Path) -> Tr
     elif objective == "best_of_k":
         extra = {"objective": "best_of_k", "k": dc.k, "verifier": "proxy"}
     else:
-        extra = {"objective": objective, "k": 1 if objective == "loo_reinforce" else dc.k}
-    return _base(dc, name=objective, run_dir=str(out / objective), start_from=warm, sft_steps=0, rl_steps=dc.rl_steps,
+        extra = {"objective": objective, "k": 1 if objective == "reinforce" else dc.k}
+    return _base(dc, name=objective, run_dir=str(out / objective), start_from=warm, warm_start_steps=0, rl_steps=dc.rl_steps,
                  eval_at_start=False, **extra)
 
 
 def warm_config(dc: DemoConfig, out: Path) -> TrainConfig:
-    return _base(dc, name="warm_start", run_dir=str(out / "warm_start"), sft_steps=dc.sft_steps, rl_steps=0,
+    return _base(dc, name="warm_start", run_dir=str(out / "warm_start"), warm_start_steps=dc.warm_start_steps, rl_steps=0,
                  clip_grad_norm=dc.warm_start_clip)
 
 
@@ -197,7 +199,7 @@ def collect_stage_pools(dc: DemoConfig, stage_dir: Path, *, temperature: float, 
     from bonft.trainer.steps import quiet_transformers
 
     task = get_task(dc.task, **dc.task_params)
-    train, held = task.split(n_train=dc.n_train, n_eval=dc.n_eval, seed=dc.seed)
+    train, held = task.split(n_train=dc.train_prompts, n_eval=dc.heldout_prompts, seed=dc.seed)
     held = held[:n_prompts]
     everything = list(train) + list(held)
     vers = {"exact": task.verifier(everything)}
@@ -255,14 +257,14 @@ def temperature_table(dc: DemoConfig, out: Path, names: list[str]) -> tuple[str,
     for name in names:
         if name not in dc.plan_policies or not (out / name / "checkpoints").is_dir():
             continue
-        pools = {t: collect_stage_pools(dc, out / name, temperature=t, n_prompts=min(dc.plan_prompts, dc.n_eval),
+        pools = {t: collect_stage_pools(dc, out / name, temperature=t, n_prompts=min(dc.plan_prompts, dc.heldout_prompts),
                                         n=dc.plan_n)["rewards"] for t in dc.plan_temperatures}
         best[name] = best_temperatures(pools, [k for k in dc.eval_ks if k <= dc.plan_n], seed=dc.seed)
     if not best:
         return "", {}
     ks = list(next(iter(best.values())))
     lines = [f"The planner's best temperature for pass@k (grid {', '.join(f'{t:g}' for t in dc.plan_temperatures)}; "
-             f"{min(dc.plan_prompts, dc.n_eval)} held-out prompts x {dc.plan_n} samples per temperature)", "",
+             f"{min(dc.plan_prompts, dc.heldout_prompts)} held-out prompts x {dc.plan_n} samples per temperature)", "",
              "| policy | " + " | ".join(f"k = {k}" for k in ks) + " |", "|---" * (len(ks) + 1) + "|"]
     for name, b in best.items():
         lines.append(f"| {LABELS.get(name, name)} | " + " | ".join(f"{b[k]:g}" for k in ks) + " |")
@@ -306,7 +308,7 @@ def run_demo(dc: DemoConfig | None = None, *, progress: bool = True) -> dict:
     (out / "summary.json").write_text(json.dumps(summary, indent=1))
     (out / "comparison.md").write_text(report["text"] + "\n\nThe trainer's own evaluations:\n\n" + table + "\n")
     plot_comparison({LABELS.get(k, k): v for k, v in results.items()}, out / "comparison.png",
-                    title=f"{dc.task} task, {dc.n_eval} held-out prompts x {dc.eval_n} samples")
+                    title=f"{dc.task} task, {dc.heldout_prompts} held-out prompts x {dc.eval_samples} samples")
     print("\n" + report["text"])
     print(f"\nwrote {out}/summary.json, {out}/comparison.md, {out}/comparison.png "
           f"({sum(timings.values()):.0f} s)")
@@ -316,7 +318,7 @@ def run_demo(dc: DemoConfig | None = None, *, progress: bool = True) -> dict:
 def demo_report(dc: DemoConfig, out: Path, names: list[str]) -> dict:
     """One seed's tables from the stages in ``out``: paired comparisons, gradient figures, best temperatures."""
     curves = {name: per_prompt_curves(collect_stage_pools(dc, out / name, temperature=dc.eval_temperature,
-                                                          n_prompts=dc.n_eval, n=dc.eval_n), dc.eval_ks)
+                                                          n_prompts=dc.heldout_prompts, n=dc.eval_samples), dc.eval_ks)
               for name in names}
     grads = {name: gradient_summary(out / name) for name in names if name != "warm_start"}
     temps_text, best = temperature_table(dc, out, names)
@@ -352,7 +354,7 @@ def comparison_table(results: dict[str, dict]) -> str:
 
 
 # ----------------------------------------------------------------------------- study
-STUDY_OBJECTIVES = ("loo_reinforce", "pass_at_k", "best_of_k", "pass_at_k_anneal", "placebo")
+STUDY_OBJECTIVES = ("reinforce", "pass_at_k", "best_of_k", "pass_at_k_anneal", "placebo")
 STUDY_SEEDS = (0, 1, 2, 3, 4)  # fixed before looking at any result
 
 
@@ -380,7 +382,7 @@ def run_study(dc: DemoConfig | None = None, *, seeds=STUDY_SEEDS, objectives=STU
     reports = {s: demo_report(d, Path(d.run_dir), names) for s, d in per_dc.items()}
     minutes = (time.perf_counter() - t0) / 60
     text = [f"# Study: {len(seeds)} seeds x ({', '.join(names)})", "",
-            f"{dc.task} task, {dc.n_eval} held-out prompts x {dc.eval_n} samples at T = {dc.eval_temperature:g} per seed; "
+            f"{dc.task} task, {dc.heldout_prompts} held-out prompts x {dc.eval_samples} samples at T = {dc.eval_temperature:g} per seed; "
             f"RL: {dc.rl_steps} steps of {dc.prompts_per_step} prompts x {dc.n} samples, optimizer {dc.optimizer}, lr {dc.lr:g}, "
             f"anchor_weight {dc.anchor_weight:g}, clip_grad_norm {dc.clip_grad_norm:g}. Wall time {minutes:.0f} min.", "",
             study_table({s: r["curves"] for s, r in reports.items()}, dc.eval_ks, confidence=dc.confidence), "",

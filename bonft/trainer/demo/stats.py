@@ -23,7 +23,7 @@ import numpy as np
 
 LABELS = {
     "warm_start": "warm start (before RL)",
-    "loo_reinforce": "leave-one-out REINFORCE",
+    "reinforce": "leave-one-out REINFORCE",
     "best_of_k": "best-of-k (proxy verifier)",
     "pass_at_k": "pass@k unbiased",
     "pass_at_k_plugin": "pass@k plug-in",
@@ -93,7 +93,7 @@ def _head(title: str, cols) -> list[str]:
 
 
 def seed_table(curves: Mapping[str, Mapping[str, np.ndarray]], ks: Sequence[int], *,
-               baselines: Sequence[str] = ("warm_start", "loo_reinforce"), n_boot: int = 2000, seed: int = 0,
+               baselines: Sequence[str] = ("warm_start", "reinforce"), n_boot: int = 2000, seed: int = 0,
                confidence: float = 0.95) -> str:
     """One seed: each policy's mean [bootstrap CI over prompts], then its paired difference from each baseline.
 
@@ -121,7 +121,7 @@ def seed_table(curves: Mapping[str, Mapping[str, np.ndarray]], ks: Sequence[int]
 
 
 def study_table(per_seed: Mapping[int, Mapping[str, Mapping[str, np.ndarray]]], ks: Sequence[int], *,
-                baselines: Sequence[str] = ("warm_start", "loo_reinforce"), confidence: float = 0.95) -> str:
+                baselines: Sequence[str] = ("warm_start", "reinforce"), confidence: float = 0.95) -> str:
     """Over seeds: per-seed means, their mean [t-interval], and paired per-seed differences [t-interval].
 
     per_seed: seed -> policy -> :func:`per_prompt_curves` (the same policies for every seed).
