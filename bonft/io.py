@@ -63,28 +63,21 @@ class SampleTable:
 # ----------------------------------------------------------------------------- reading
 
 
-def _parse_all(lines: list[str]) -> list[dict] | None:
-    """One fast ``json.loads`` over ``[line,line,...]``; None unless it yields one dict per line."""
-    if not lines:
-        return None
+def _parse_lines(name: str, lines: list[str], numbers) -> list[dict]:
+    """Non-blank lines as dicts, each line parsed on its own (a value never spans lines, nor do two share one).
+
+    On any failure the lines are parsed again one by one through :func:`parse_object`, which names the
+    first malformed line. Joining the lines into one JSON array would be faster but is wrong: two lines
+    that are each invalid can join into two valid objects (an unterminated string closed on the next line).
+    """
+    loads = json.loads
     try:
-        rows = json.loads("[" + ",".join(lines) + "]")
-    except (json.JSONDecodeError, RecursionError):
-        return None
-    if len(rows) == len(lines) and set(map(type, rows)) == {dict}:
-        return rows
-    return None
-
-
-def _parse_lines(path: str, lines: list[str], numbers: list[int]) -> list[dict]:
-    """Non-blank lines as dicts; parses line by line only when the fast route fails, to locate the error."""
-    rows = _parse_all(lines)
-    if rows is not None:
-        return rows
-    name = os.path.basename(path)
-    for text, no in zip(lines, numbers):
-        parse_object(text, name, no, "a sample")
-    raise ValueError(f"{name}: could not parse")  # pragma: no cover - the loop above finds the line
+        rows = [loads(t) for t in lines]
+    except (ValueError, RecursionError):  # JSONDecodeError, too many digits, nesting
+        rows = None
+    if rows is None or any(type(r) is not dict for r in rows):
+        rows = [parse_object(text, name, no, "a sample") for text, no in zip(lines, numbers)]
+    return rows
 
 
 def _column(name: str, rows: list[dict], numbers: list[int], field: str, option: str, *, required: bool):
@@ -112,13 +105,32 @@ def _numbers(name, vals, numbers, field, *, allow_bool: bool, integer: bool = Fa
         i = next(i for i, v in enumerate(vals) if type(v) in bad_kinds)
         want = "an integer" if integer else "a number"
         raise ValueError(f"{name} line {numbers[i]}: field {field!r} must be {want}, got {vals[i]!r}")
-    arr = np.array(vals, dtype=np.int64 if integer else np.float64)
+    try:
+        arr = np.array(vals, dtype=np.int64 if integer else np.float64)
+    except OverflowError:  # a JSON integer beyond int64 / float64
+        i = next(i for i, v in enumerate(vals) if not _fits(v, integer))
+        digits = len(str(abs(vals[i])))
+        raise ValueError(f"{name} line {numbers[i]}: field {field!r} must fit in "
+                         f"{'a 64-bit integer (|x| < 2**63)' if integer else 'a float64 (|x| < 1.8e308)'}, "
+                         f"got an integer of {digits} digits") from None
     if not integer:
         bad = ~np.isfinite(arr)
         if bad.any():
             i = int(np.flatnonzero(bad)[0])
-            raise ValueError(f"{name} line {numbers[i]}: field {field!r} must be finite, got {vals[i]!r}")
+            why = "" if vals[i] != vals[i] else " (Infinity, or a number beyond the float64 range |x| < 1.8e308)"
+            raise ValueError(f"{name} line {numbers[i]}: field {field!r} must be finite, got {vals[i]!r}{why}")
     return arr
+
+
+def _fits(v, integer: bool) -> bool:
+    """Whether a JSON number converts to int64 (``integer``) or to a finite float64 without overflow."""
+    if integer:
+        return -(2**63) <= v < 2**63
+    try:
+        float(v)
+    except OverflowError:
+        return False
+    return True
 
 
 DUPLICATES = ("warn", "error", "allow")
@@ -189,14 +201,12 @@ def read_samples(
     lines = text.split("\n")
     if lines and not lines[-1].strip():
         lines.pop()  # the newline that ends the last line
-    numbers = range(1, len(lines) + 1)  # file line number of each entry of ``lines``
-    rows = _parse_all(lines)
-    if rows is None:  # blank lines or an error: drop blanks, keep their numbers, parse again
-        numbers = [i + 1 for i, t in enumerate(lines) if t.strip()]
+    numbers = [i + 1 for i, t in enumerate(lines) if t.strip()]  # file line number of each non-blank line
+    if len(numbers) < len(lines):
         lines = [lines[i - 1] for i in numbers]
-        if not lines:
-            raise ValueError(f"{name}: no samples (the file is empty)")
-        rows = _parse_lines(path, lines, numbers)
+    if not lines:
+        raise ValueError(f"{name}: no samples (the file is empty)")
+    rows = _parse_lines(name, lines, numbers)
 
     ids = _column(name, rows, numbers, prompt_field, "prompt_field", required=True)
     kinds = set(map(type, ids))

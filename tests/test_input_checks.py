@@ -1,4 +1,4 @@
-"""Bad input found before any work, with the file and the line (issue 14): pool files, prompt files,
+"""Bad input found before any work, with the file and the line: pool files, prompt files,
 too few prompts for an interval, task sizes, the model's context, progress on long generation."""
 import json
 import warnings
@@ -52,6 +52,91 @@ def test_negative_token_counts_are_refused_with_the_line(tmp_path):
     with pytest.raises(ValueError, match=r"^t.jsonl line 2: field 'n_tokens' must be >= 0 tokens, got -1$"):
         read_samples(p)
 
+
+
+# Lines that are each malformed but join into valid JSON when glued with commas. The expected error is
+# what Python's own json.loads says of that line alone (the standard library as the reference parser).
+_A = '{"prompt_id": "a", "score": 0.2, "reward": 1'
+_JOIN_TRICKS = [
+    # an unterminated string closed on the next line: two invalid lines, two "valid" rows when joined
+    ([_A + ', "note": "x', '"}, {"prompt_id": "a", "score": 0.9, "reward": 0}'], 1),
+    # an unclosed list closed on the next line
+    ([_A + ', "x": [1', '2]}, {"prompt_id": "a", "score": 0.9, "reward": 0}'], 1),
+    # two objects on one line, made up for by one object split over the next two: the row count matches
+    ([_A + '}, {"prompt_id": "b", "score": 0.5, "reward": 0}', '{"prompt_id": "c", "score": 0.1', '"reward": 1}'], 1),
+    # a valid first line, then an object split over two lines
+    ([_A + "}", '{"prompt_id": "a", "score": 0.9', '"reward": 0}'], 2),
+    # a bare value and a leading comma
+    ([_A + "}", "1", _A + "}"], 2),
+    ([_A + "}", ', ' + _A + "}"], 2),
+]
+
+
+@pytest.mark.parametrize("lines,bad", _JOIN_TRICKS)
+def test_each_line_is_parsed_alone(tmp_path, lines, bad):
+    p = tmp_path / "joined.jsonl"
+    p.write_text("\n".join(lines) + "\n")
+    try:
+        json.loads(lines[bad - 1])
+        want = None
+    except json.JSONDecodeError as e:
+        want = f"not valid JSON ({e.msg.removesuffix(' at')} at column {e.colno})"
+    expected = want or "expected a JSON object (a sample), got int"
+    with pytest.raises(ValueError) as err:
+        read_samples(p)
+    assert str(err.value) == f"joined.jsonl line {bad}: {expected}"
+
+
+def test_the_issue_file_of_two_invalid_lines(tmp_path):
+    p = tmp_path / "two.jsonl"
+    p.write_text(_JOIN_TRICKS[0][0][0] + "\n" + _JOIN_TRICKS[0][0][1] + "\n")
+    with pytest.raises(ValueError, match=r"^two.jsonl line 1: not valid JSON \(Unterminated string starting at column 55\)$"):
+        read_samples(p)
+
+
+def test_blank_lines_keep_the_line_numbers_of_the_rest(tmp_path):
+    p = tmp_path / "b.jsonl"
+    p.write_text("\n" + _A + "}\n\n  \n" + _A + ', "x": [1\n')
+    with pytest.raises(ValueError, match=r"^b.jsonl line 5: not valid JSON"):
+        read_samples(p)
+    p.write_text("\n" + _A + "}\n\n" + _A.replace('"a"', '"b"') + "}\n\n")
+    t = read_samples(p)
+    assert t.prompt_keys.tolist() == ["a", "b"] and t.scores.tolist() == [0.2, 0.2]
+
+
+@pytest.mark.parametrize("value,pattern", [
+    ("9" * 401, r"^n.jsonl line 2: field 'score' must fit in a float64 \(\|x\| < 1.8e308\), got an integer of 401 digits$"),
+    ("-" + "9" * 309, r"^n.jsonl line 2: field 'score' must fit in a float64 \(\|x\| < 1.8e308\), got an integer of 309 digits$"),
+    ("1e400", r"^n.jsonl line 2: field 'score' must be finite, got inf \(Infinity, or a number beyond the float64 range \|x\| < 1.8e308\)$"),
+    ("1" * 5000, r"^n.jsonl line 2: a number too long to read \(Exceeds the limit \(4300 digits\)"),
+])
+def test_scores_that_do_not_fit_a_float_name_file_line_and_field(tmp_path, value, pattern):
+    p = tmp_path / "n.jsonl"
+    p.write_text(_A + "}\n" + _A.replace("0.2", value) + "}\n")
+    with pytest.raises(ValueError, match=pattern):
+        read_samples(p)
+    # IEEE 754 binary64: the largest finite value is (2 - 2**-52) * 2**1023 = 2**1024 - 2**971; an integer rounds
+    # to it (round half to even) below the midpoint 2**1024 - 2**970 and overflows from there on
+    for v, fits in ((2**1024 - 2**970 - 1, True), (2**1024 - 2**970, False)):
+        p.write_text(_A + "}\n" + _A.replace("0.2", str(v)) + "}\n")
+        if fits:
+            assert read_samples(p).scores[1] == 2**1024 - 2**971
+        else:
+            with pytest.raises(ValueError, match=r"^n.jsonl line 2: field 'score' must fit in a float64"):
+                read_samples(p)
+
+
+def test_token_counts_beyond_int64_name_file_line_and_field(tmp_path):
+    p = tmp_path / "t.jsonl"
+    row = '{"prompt_id": 1, "score": 0, "reward": 0, "temperature": 0.7, "n_tokens": %s}\n'
+    p.write_text(row % 4 + row % (10**20))
+    with pytest.raises(ValueError, match=r"^t.jsonl line 2: field 'n_tokens' must fit in a 64-bit integer \(\|x\| < 2\*\*63\), got an integer of 21 digits$"):
+        read_samples(p)
+    p.write_text(row % 4 + row % "1e20")
+    with pytest.raises(ValueError, match=r"^t.jsonl line 2: field 'n_tokens' must be an integer, got 1e\+20$"):
+        read_samples(p)
+    p.write_text(row % 4 + row % (2**63 - 1))
+    assert read_samples(p).n_tokens[1] == 2**63 - 1
 
 # ----------------------------------------------------------------------------- prompt files
 @pytest.mark.parametrize("body,pattern", [

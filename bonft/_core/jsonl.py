@@ -21,9 +21,11 @@ def parse_object(text: str, name: str, no: int, what: str) -> dict:
     try:
         row = json.loads(text)
     except json.JSONDecodeError as e:
-        raise ValueError(f"{name} line {no}: not valid JSON ({e.msg} at column {e.colno})") from None
+        raise ValueError(f"{name} line {no}: not valid JSON ({e.msg.removesuffix(' at')} at column {e.colno})") from None
     except RecursionError:
         raise ValueError(f"{name} line {no}: JSON nested too deeply ({what} is one flat JSON object)") from None
+    except ValueError as e:  # an integer with more digits than Python converts (sys.get_int_max_str_digits)
+        raise ValueError(f"{name} line {no}: a number too long to read ({str(e).split(';')[0]})") from None
     if type(row) is not dict:
         raise ValueError(f"{name} line {no}: expected a JSON object ({what}), got {type(row).__name__}")
     return row
