@@ -130,7 +130,8 @@ def test_token_counts_beyond_int64_name_file_line_and_field(tmp_path):
     p = tmp_path / "t.jsonl"
     row = '{"prompt_id": 1, "score": 0, "reward": 0, "temperature": 0.7, "n_tokens": %s}\n'
     p.write_text(row % 4 + row % (10**20))
-    with pytest.raises(ValueError, match=r"^t.jsonl line 2: field 'n_tokens' must fit in a 64-bit integer \(\|x\| < 2\*\*63\), got an integer of 21 digits$"):
+    with pytest.raises(ValueError, match=r"^t.jsonl line 2: field 'n_tokens' must fit in a 64-bit integer "
+                                         r"\(\|x\| < 2\*\*63\), got an integer of 21 digits$"):
         read_samples(p)
     p.write_text(row % 4 + row % "1e20")
     with pytest.raises(ValueError, match=r"^t.jsonl line 2: field 'n_tokens' must be an integer, got 1e\+20$"):
