@@ -7,6 +7,7 @@ import sys
 import time
 from pathlib import Path
 
+import numpy as np
 import pytest
 import torch
 from safetensors.torch import load_file
@@ -80,6 +81,11 @@ def test_same_seed_same_weights_and_seed_matters(tmp_path, reference):
     again = tiny(tmp_path, "again")
     T.train(again, progress=False)
     assert_same_weights(final_weights(again.run_dir), weights)
+    other = tiny(tmp_path, "other", seed=cfg.seed + 1)  # another init, data order and sampling stream
+    T.train(other, progress=False)
+    changed = final_weights(other.run_dir)
+    assert changed.keys() == weights.keys()
+    assert sum(not torch.equal(changed[key], weights[key]) for key in weights) == len(weights)
 
 
 def _interrupt_at(monkeypatch, cfg, at: int):
@@ -152,7 +158,12 @@ def test_k_schedule(tmp_path, schedule, k, k_final, expect):
 
 def test_step_seeds_differ_by_step_and_rank():
     seeds = {T.step_seed(0, s, r) for s in range(50) for r in range(4)}
-    assert len(seeds) == 200 and T.step_seed(0, 3, 1) == T.step_seed(0, 3, 1)
+    assert len(seeds) == 200
+    # reference: numpy's SeedSequence on the tuple (seed, step, rank, stream), first 64-bit word, top 63 bits
+    # (numpy documentation, "Parallel random number generation")
+    for seed, step, rank in [(0, 3, 1), (7, 0, 0), (2**40, 123456, 3)]:
+        word = int(np.random.SeedSequence([seed, step, rank, 0]).generate_state(1, np.uint64)[0])
+        assert T.step_seed(seed, step, rank) == word >> 1
 
 
 def test_prompt_sharding_keeps_the_global_batch(tmp_path):
