@@ -1,13 +1,13 @@
 """Speed of the estimators and of loading a large samples file, as ratios against baselines in this process.
 
 Goals (issue 11, section 3), interleaved repetitions, medians:
-- bon_at_k_per_prompt for every k in 1..1024 on 1000 x 1024 pools <= 2x one np.sort of the (P, n)
+- best_of_k_per_prompt for every k in 1..1024 on 1000 x 1024 pools <= 2x one np.sort of the (P, n)
   array, or shown why the floor is higher. The rows printed beside it are that floor: every exact
   estimator needs the rewards in score order (an argsort and a gather, already 3-4x an np.sort on
   an AVX-512 machine, where np.sort is vectorised and argsort much less so) and P*K weighted sums
   (one dense BLAS matmul (P, n) @ (n, K); bonft skips the ranks whose weight is below 2^-60).
 - pass_at_k on vectors of (n, c) <= 2x one np.sort of the vector (same floor question).
-- vectorised bon_at_k_per_prompt >= 50x faster than a plain loop over prompts and k with math.comb;
+- vectorised best_of_k_per_prompt >= 50x faster than a plain loop over prompts and k with math.comb;
 - a 10^6-row samples file loads and summarises in seconds (absolute figure, printed).
 
 Run: python benchmarks/bench_estimate.py [--quick]; the load average is printed with the results.
@@ -22,7 +22,7 @@ import time
 
 import numpy as np
 
-from bonft.estimate import bon_at_k_per_prompt, pass_at_k, summarize
+from bonft.estimate import best_of_k_per_prompt, pass_at_k, summarize
 from bonft.io import group_pools, read_samples, write_samples
 
 from _timing import interleaved_medians
@@ -59,16 +59,16 @@ def bench_estimator(P: int, n: int, loop_prompts: int, repeats: int) -> dict:
 
     vec, srt = [math.inf, math.inf], [math.inf, math.inf]
     for _ in range(repeats):  # interleaved, so a burst of load on a shared machine hits both alike
-        vec = np.minimum(vec, best_of(lambda: bon_at_k_per_prompt(S, R, ks=ks), 1))
+        vec = np.minimum(vec, best_of(lambda: best_of_k_per_prompt(S, R, ks=ks), 1))
         srt = np.minimum(srt, best_of(lambda: np.sort(S, axis=1), 1))
     (t_vec, c_vec), (t_sort, c_sort) = vec, srt
     t0 = time.perf_counter()
     ref = loop_bon(S[:loop_prompts], R[:loop_prompts], ks)
     t_loop = (time.perf_counter() - t0) * P / loop_prompts  # timed on a subset, scaled to all P prompts
-    err = float(np.abs(bon_at_k_per_prompt(S[:loop_prompts], R[:loop_prompts], ks=ks) - ref).max())
+    err = float(np.abs(best_of_k_per_prompt(S[:loop_prompts], R[:loop_prompts], ks=ks) - ref).max())
 
     print(f"estimator: {P} prompts x {n} samples, k in {ks}")
-    print(f"  vectorised bon_at_k_per_prompt : {t_vec * 1e3:9.1f} ms wall, {c_vec * 1e3:7.1f} ms CPU  (best of {repeats})")
+    print(f"  vectorised best_of_k_per_prompt : {t_vec * 1e3:9.1f} ms wall, {c_vec * 1e3:7.1f} ms CPU  (best of {repeats})")
     print(f"  one np.sort (floor)            : {t_sort * 1e3:9.1f} ms wall, {c_sort * 1e3:7.1f} ms CPU  (best of {repeats})")
     print(f"  loop + math.comb               : {t_loop * 1e3:9.1f} ms  (timed on {loop_prompts} prompts, x{P / loop_prompts:g})")
     print(f"  loop / vectorised = {t_loop / t_vec:7.1f}x   (goal >= 50x)")
@@ -86,20 +86,20 @@ def bench_all_k(P: int, n: int, repeats: int) -> None:
     ks = list(range(1, n + 1))
     W = rng.random((n, n))
     r_sorted = np.take_along_axis(R, np.argsort(S, axis=1), 1)
-    bon_at_k_per_prompt(S, R, ks=ks)  # the weights of (n, ks) are cached after the first call
+    best_of_k_per_prompt(S, R, ks=ks)  # the weights of (n, ks) are cached after the first call
     fns = {
         "one np.sort of (P, n) (baseline)": lambda: np.sort(S, axis=1),
         "floor: np.argsort + gather": lambda: np.take_along_axis(R, np.argsort(S, axis=1), 1),
         "floor: dense matmul (P,n)@(n,K)": lambda: r_sorted @ W,
-        "bon_at_k_per_prompt, all k": lambda: bon_at_k_per_prompt(S, R, ks=ks),
+        "best_of_k_per_prompt, all k": lambda: best_of_k_per_prompt(S, R, ks=ks),
     }
     t = interleaved_medians(fns, repeats)
     base = t["one np.sort of (P, n) (baseline)"]
     print(f"best-of-k for every k in 1..{n}: {P} prompts x {n} samples, median of {repeats} interleaved")
     for name, v in t.items():
         print(f"  {name:36s} {v * 1e3:9.2f} ms  {v / base:6.2f}x")
-    ratio = t["bon_at_k_per_prompt, all k"] / base
-    print(f"  bon_at_k_per_prompt / np.sort = {ratio:.2f}x (goal <= 2x: {'met' if ratio <= 2 else 'NOT met'}; "
+    ratio = t["best_of_k_per_prompt, all k"] / base
+    print(f"  best_of_k_per_prompt / np.sort = {ratio:.2f}x (goal <= 2x: {'met' if ratio <= 2 else 'NOT met'}; "
           f"the argsort + gather floor alone is {t['floor: np.argsort + gather'] / base:.2f}x)")
 
 
@@ -145,7 +145,7 @@ def bench_file(P: int, n: int) -> None:
     print(f"  write_samples {t_write:6.2f} s | read_samples {t_read:6.2f} s | group_pools {t_group:6.2f} s"
           f" | summarize (2000 boots) {t_sum:6.2f} s")
     print(f"  load + summarise = {t_read + t_group + t_sum:.2f} s wall, {c_load:.2f} s CPU;"
-          f" best-of-{summ.ks[-1]} = {summ.bon_mean[-1]:.4f}")
+          f" best-of-{summ.ks[-1]} = {summ.best_of_k_mean[-1]:.4f}")
 
 
 def main() -> int:

@@ -3,7 +3,7 @@
 Times, in one process: loading the file, the full plan (every k = 1..256 at every
 temperature, 2000 paired bootstrap resamples, best temperature, near-best sets,
 budgets, doubling, fit), the table, the two plots; the estimator's share (the same
-bon_at_k_per_prompt calls timed alone); and as a baseline one np.sort of all the
+best_of_k_per_prompt calls timed alone); and as a baseline one np.sort of all the
 scores (the floor any exact best-of-k estimator pays). Goal: table + plots in
 under 5 s after loading, on a 2-core machine.
 
@@ -29,7 +29,7 @@ def main() -> int:
     ap.add_argument("--boot", type=int, default=2000)
     args = ap.parse_args()
 
-    from bonft.estimate import bon_at_k_per_prompt
+    from bonft.estimate import best_of_k_per_prompt
     from bonft.tasks.examples import ledger_rows
     from bonft.plan import plan_samples
     from bonft.io import group_pools, read_samples, write_samples
@@ -66,7 +66,7 @@ def main() -> int:
         ks = np.arange(1, args.samples + 1)
         t0, c0 = time.perf_counter(), time.process_time()
         for s, r in pools:
-            bon_at_k_per_prompt(s, r, ks=ks)
+            best_of_k_per_prompt(s, r, ks=ks)
         t_est, c_est = time.perf_counter() - t0, time.process_time() - c0
         # baseline: one sort of every pool (the floor of an exact estimator)
         all_scores = np.stack([s for s, _ in pools])  # (T, P, n)

@@ -2,7 +2,7 @@
 
 1. Estimators for every k <= n: 1000 prompts x 256 samples, up to 64 distinct answers per prompt
    (Zipf-like answer frequencies, our own simulation): ``vote_at_k_per_prompt`` (exact count DP)
-   against ``bon_at_k_per_prompt`` (sorted-pool closed form) on the same pools.
+   against ``best_of_k_per_prompt`` (sorted-pool closed form) on the same pools.
    Goal (issue 16): seconds on one core.
 2. Credit for B = 256 prompts, n = 64 samples, k = 8: ``vote_credit`` against ``bon_rl_credit``.
    Goal (issue 16): within 2x the best-of-k credit. For information, ``weighted_vote_credit``
@@ -20,7 +20,7 @@ import numpy as np
 import torch
 
 from bonft.objectives.credit import bon_rl_credit
-from bonft.estimate import bon_at_k_per_prompt
+from bonft.estimate import best_of_k_per_prompt
 from bonft.strategies.estimators import vote_at_k_per_prompt, vote_credit, weighted_vote_credit
 
 from _timing import min_time
@@ -47,7 +47,7 @@ def main() -> None:
     ans, s, r = pools(P, 256, 64)
     ks = list(range(1, 257))
     t_vote = min_time(lambda: vote_at_k_per_prompt(ans, r, ks=ks))
-    t_bon = min_time(lambda: bon_at_k_per_prompt(s, r, ks=ks), repeats=3)
+    t_bon = min_time(lambda: best_of_k_per_prompt(s, r, ks=ks), repeats=3)
     print(f"1. estimators, every k <= 256, {P} prompts x 256 samples, <= 64 answers/prompt "
           f"(mean {np.mean([len(np.unique(a)) for a in ans]):.1f}):")
     print(f"   majority vote (count DP) {t_vote:8.3f} s   best-of-k {t_bon:8.4f} s   ratio {t_vote / t_bon:8.1f}x")

@@ -22,7 +22,7 @@ constant in them.
 
 Caution: best-of-k puts its weight on whatever the verifier ranks highest. A
 policy fine-tuned to raise ``V_k`` against an imperfect verifier learns the
-verifier's blind spots (reward hacking); watch :func:`bon_kl` and evaluate
+verifier's blind spots (reward hacking); watch :func:`best_of_k_kl` and evaluate
 with a held-out check. If the verifier runs model-written code, run it
 sandboxed.
 """
@@ -48,18 +48,18 @@ from bonft._core.ties import first_of_group, group_ids
 
 __all__ = [
     "softmax_policy",
-    "bon_distribution",
-    "log_bon_distribution",
-    "bon_value",
-    "bon_success",
-    "bon_kl",
+    "best_of_k_distribution",
+    "log_best_of_k_distribution",
+    "best_of_k_value",
+    "best_of_k_success",
+    "best_of_k_kl",
 ]
 
 _LN2 = math.log(2.0)
 _TINY = 1e-300  # keeps log(-expm1(x)) finite when x rounds to 0
 
 
-# ----------------------------------------------------------------- validation
+# ----------------------------------------------------------------- validation (shared with bonft.strategies.exact)
 
 
 def _as_tensor(name: str, x: Any, device: torch.device | None) -> torch.Tensor:
@@ -72,8 +72,8 @@ def _as_tensor(name: str, x: Any, device: torch.device | None) -> torch.Tensor:
     return torch.as_tensor(arr, dtype=torch.float64, device=device)
 
 
-def _check_probs(probs: Any) -> tuple[torch.Tensor, bool]:
-    """Returns (probs as float64 tensor, whether to hand back numpy)."""
+def check_policy_probs(probs: Any) -> tuple[torch.Tensor, bool]:
+    """A policy ``probs (..., V)`` checked (finite, non-negative, rows sum to 1) -> (float64 tensor, whether to hand back numpy)."""
     p = _as_tensor("probs", probs, None)
     if p.ndim < 1:
         raise ValueError(f"probs must have at least 1 dimension (..., V), got shape {tuple(p.shape)}")
@@ -82,7 +82,7 @@ def _check_probs(probs: Any) -> tuple[torch.Tensor, bool]:
     return p, not is_tensor(probs)
 
 
-def _check_per_outcome(name: str, x: Any, p: torch.Tensor, *others: torch.Tensor) -> torch.Tensor:
+def check_outcome_values(name: str, x: Any, p: torch.Tensor, *others: torch.Tensor) -> torch.Tensor:
     """scores / rewards: last axis V like probs, leading axes broadcast with probs (and others)."""
     t = _as_tensor(name, x, p.device)
     V = p.shape[-1]
@@ -104,7 +104,8 @@ def _check_k(k: Any) -> int:
     return check_int("k", k, min=1)
 
 
-def _out(t: torch.Tensor, as_numpy: bool):
+def returned_like(t: torch.Tensor, as_numpy: bool):
+    """A result in the caller's kind: numpy (a 0-d result as a numpy scalar) when ``as_numpy``, else the tensor."""
     if not as_numpy:
         return t
     a = t.detach().cpu().numpy()
@@ -197,10 +198,10 @@ def softmax_policy(logits, *, temperature=1.0):
     if bool((zd == -math.inf).all(-1).any()):
         raise ValueError("logits must have at least one finite entry per row, got a row of all -inf")
     probs = torch.softmax(z / T, dim=-1)
-    return _out(probs, not is_tensor(logits))
+    return returned_like(probs, not is_tensor(logits))
 
 
-def bon_distribution(probs, scores, *, k):
+def best_of_k_distribution(probs, scores, *, k):
     r"""Distribution of the outcome best-of-k keeps.
 
     Shape: ``probs (..., V), scores (..., V) or (V,) -> (..., V)`` (leading axes broadcast).
@@ -211,36 +212,36 @@ def bon_distribution(probs, scores, *, k):
 
     References: Chow et al. 2024, "Inference-Aware Fine-Tuning for Best-of-N Sampling in LLMs".
     """
-    p, as_np = _check_probs(probs)
-    s = _check_per_outcome("scores", scores, p)
+    p, as_np = check_policy_probs(probs)
+    s = check_outcome_values("scores", scores, p)
     k = _check_k(k)
     lg, pb = _log_gain(p, s, k)
-    return _out(pb * torch.exp(lg), as_np)
+    return returned_like(pb * torch.exp(lg), as_np)
 
 
-def log_bon_distribution(probs, scores, *, k):
+def log_best_of_k_distribution(probs, scores, *, k):
     r"""``log pi_bon``, ``-inf`` where ``pi_bon = 0``.
 
     Shape: ``probs (..., V), scores (..., V) or (V,) -> (..., V)``.
 
     .. math:: \log\pi_{bon}(v) = \log\pi(v) + k\log F(s_v) + \log\big(1 - (F_<(s_v)/F(s_v))^k\big) - \log P(G_v)
 
-    finite for k up to 10^4 where :func:`bon_distribution` underflows to 0.
+    finite for k up to 10^4 where :func:`best_of_k_distribution` underflows to 0.
 
     References: Chow et al. 2024.
     """
-    p, as_np = _check_probs(probs)
-    s = _check_per_outcome("scores", scores, p)
+    p, as_np = check_policy_probs(probs)
+    s = check_outcome_values("scores", scores, p)
     k = _check_k(k)
     lg, pb = _log_gain(p, s, k)
     nz = pb > 0
     logp = torch.log(torch.where(nz, pb, torch.ones_like(pb)))
     lg_s = torch.where(nz, lg, torch.zeros_like(lg))
     out = torch.where(nz, logp + lg_s, torch.full_like(pb, -math.inf))
-    return _out(out, as_np)
+    return returned_like(out, as_np)
 
 
-def bon_value(probs, scores, rewards, *, k):
+def best_of_k_value(probs, scores, rewards, *, k):
     r"""Expected reward of the outcome best-of-k keeps.
 
     Shape: ``probs (..., V), scores, rewards (..., V) or (V,) -> (...)``.
@@ -248,19 +249,19 @@ def bon_value(probs, scores, rewards, *, k):
     .. math:: V_k = \sum_v \pi_{bon}(v) R_v
 
     k = 1 gives ``E_pi[R]``. When the verifier knows the reward (scores =
-    rewards in {0, 1}) this is ``bon_success(P(R = 1), k=k)``.
+    rewards in {0, 1}) this is ``best_of_k_success(P(R = 1), k=k)``.
 
     References: Chow et al. 2024.
     """
-    p, as_np = _check_probs(probs)
-    s = _check_per_outcome("scores", scores, p)
-    R = _check_per_outcome("rewards", rewards, p, s)
+    p, as_np = check_policy_probs(probs)
+    s = check_outcome_values("scores", scores, p)
+    R = check_outcome_values("rewards", rewards, p, s)
     k = _check_k(k)
     lg, pb = _log_gain(p, s, k)
-    return _out((pb * torch.exp(lg) * R).sum(-1), as_np)
+    return returned_like((pb * torch.exp(lg) * R).sum(-1), as_np)
 
 
-def bon_success(p, *, k):
+def best_of_k_success(p, *, k):
     r"""Chance that at least one of k independent tries succeeds.
 
     Shape: ``p (...) -> (...)``.
@@ -285,10 +286,10 @@ def bon_success(p, *, k):
     out = t if k == 1 else pass_at_k_prob(t, k, torch)
     if scalar:
         return float(out)
-    return _out(out, not is_tensor(p))
+    return returned_like(out, not is_tensor(p))
 
 
-def bon_kl(probs, scores, *, k):
+def best_of_k_kl(probs, scores, *, k):
     r"""KL divergence of the best-of-k policy from the policy, in nats.
 
     Shape: ``probs (..., V), scores (..., V) or (V,) -> (...)``.
@@ -301,10 +302,10 @@ def bon_kl(probs, scores, *, k):
     References: Beirami et al. 2024, "Theoretical guarantees on the best-of-n
     alignment policy"; Chow et al. 2024 for ``pi_bon``.
     """
-    p, as_np = _check_probs(probs)
-    s = _check_per_outcome("scores", scores, p)
+    p, as_np = check_policy_probs(probs)
+    s = check_outcome_values("scores", scores, p)
     k = _check_k(k)
     lg, pb = _log_gain(p, s, k)
     nz = pb > 0
     lg_s = torch.where(nz, lg, torch.zeros_like(lg))  # D's log only where pi > 0 (finite there)
-    return _out((pb * torch.exp(lg_s) * lg_s).sum(-1), as_np)
+    return returned_like((pb * torch.exp(lg_s) * lg_s).sum(-1), as_np)

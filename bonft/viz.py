@@ -49,8 +49,8 @@ def plot_bon_curves(curves: dict, path, *, title: str | None = None) -> str:
         pre = f"{label}: " if label else ""
         color = f"C{j}"
         for mean, lo, hi, what, style in (
-            (c.oracle_mean, c.oracle_lo, c.oracle_hi, "oracle (best true reward among k)", "--"),
-            (c.bon_mean, c.bon_lo, c.bon_hi, "best-of-k (verifier picks)", "-"),
+            (c.pass_at_k_mean, c.pass_at_k_lo, c.pass_at_k_hi, "pass@k (best true reward among k)", "--"),
+            (c.best_of_k_mean, c.best_of_k_lo, c.best_of_k_hi, "best-of-k (verifier picks)", "-"),
         ):
             ax.plot(ks, mean, style, marker="o", color=color, label=pre + what)
             ax.fill_between(ks, lo, hi, color=color, alpha=0.15)

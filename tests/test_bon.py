@@ -26,11 +26,11 @@ from hypothesis import strategies as st
 from scipy import integrate, stats
 
 from bonft.bon import (
-    bon_distribution,
-    bon_kl,
-    bon_success,
-    bon_value,
-    log_bon_distribution,
+    best_of_k_distribution,
+    best_of_k_kl,
+    best_of_k_success,
+    best_of_k_value,
+    log_best_of_k_distribution,
     softmax_policy,
 )
 
@@ -85,14 +85,14 @@ def test_matches_enumeration(V, k, ties):
         "all": np.full(V, 0.3),
         "two_pairs": np.array([1.0, 1.0, 0.0, 0.0, 5.0])[:V],
     }[ties]
-    np.testing.assert_allclose(bon_distribution(p, s, k=k), brute_bon(p, s, k), rtol=1e-12, atol=1e-15)
+    np.testing.assert_allclose(best_of_k_distribution(p, s, k=k), brute_bon(p, s, k), rtol=1e-12, atol=1e-15)
 
 
 def test_matches_enumeration_with_zero_probs_and_batch():
     # reference: direct enumeration, row by row; shared (V,) scores broadcast over the batch
     p = np.array([[0.0, 0.3, 0.0, 0.7], [0.25, 0.25, 0.25, 0.25], [0.0, 0.0, 1.0, 0.0]])
     s = np.array([3.0, 1.0, 1.0, 0.0])
-    got = bon_distribution(p, s, k=3)
+    got = best_of_k_distribution(p, s, k=3)
     assert got.shape == (3, 4)
     for row in range(3):
         np.testing.assert_allclose(got[row], brute_bon(p[row], s, 3), rtol=1e-12, atol=1e-15)
@@ -101,7 +101,7 @@ def test_matches_enumeration_with_zero_probs_and_batch():
 def test_worked_example_by_hand():
     # pi = (0.2, 0.3, 0.5), scores (1, 0, 1), k = 2: top group mass 0.7, so
     # P(top group wins) = 1 - 0.3^2 = 0.91, split 2:5; bottom wins w.p. 0.3^2 (hand computation)
-    got = bon_distribution(np.array([0.2, 0.3, 0.5]), np.array([1.0, 0.0, 1.0]), k=2)
+    got = best_of_k_distribution(np.array([0.2, 0.3, 0.5]), np.array([1.0, 0.0, 1.0]), k=2)
     np.testing.assert_allclose(got, [0.91 * 2 / 7, 0.09, 0.91 * 5 / 7], rtol=1e-14)
 
 
@@ -114,11 +114,11 @@ def test_kl_approaches_bound_for_many_distinct_outcomes(k):
     V = 20000
     p = np.full(V, 1.0 / V)
     s = np.arange(V, dtype=float)
-    kl = bon_kl(p, s, k=k)
+    kl = best_of_k_kl(p, s, k=k)
     assert kl <= kl_bound(k)
     assert kl == pytest.approx(kl_bound(k), abs=2e-3)
     # fewer outcomes -> further from the bound
-    assert bon_kl(np.full(10, 0.1), np.arange(10.0), k=k) < kl
+    assert best_of_k_kl(np.full(10, 0.1), np.arange(10.0), k=k) < kl
 
 
 @settings(max_examples=80)
@@ -126,7 +126,7 @@ def test_kl_approaches_bound_for_many_distinct_outcomes(k):
 def test_kl_never_exceeds_bound(ps, k):
     # Beirami et al. 2024, Theorem 1: KL(pi_bon || pi) <= log k - (k-1)/k
     p, s = ps
-    kl = bon_kl(p, s, k=k)
+    kl = best_of_k_kl(p, s, k=k)
     assert -1e-12 <= kl <= kl_bound(k) + 1e-12
 
 
@@ -135,7 +135,7 @@ def test_kl_matches_direct_sum():
     p = np.array([0.1, 0.4, 0.2, 0.3])
     s = np.array([0.0, 2.0, 2.0, 1.0])
     q = brute_bon(p, s, 3)
-    assert bon_kl(p, s, k=3) == pytest.approx(float(np.sum(q * np.log(q / p))), rel=1e-12)
+    assert best_of_k_kl(p, s, k=3) == pytest.approx(float(np.sum(q * np.log(q / p))), rel=1e-12)
 
 
 # ------------------------------------------------- normal order statistics
@@ -151,7 +151,7 @@ def test_value_approaches_expected_normal_maximum(k, table):
     # the grid error at V = 20000 is below 4e-5 for k <= 10.
     V = 20000
     z = stats.norm.ppf((np.arange(V) + 0.5) / V)
-    got = bon_value(np.full(V, 1.0 / V), z, z, k=k)
+    got = best_of_k_value(np.full(V, 1.0 / V), z, z, k=k)
     assert got == pytest.approx(table, abs=1e-4)
     assert got < quad  # the midpoint grid trims the tails, so it sits below
 
@@ -170,7 +170,7 @@ def test_value_equals_order_statistic_integral_on_grid(k):
 
     edges = np.arange(1, V) / V
     ref = integrate.quad(lambda u: Q(u) * k * u ** (k - 1), 0.0, 1.0, points=edges, limit=400)[0]
-    assert bon_value(np.full(V, 1.0 / V), z, z, k=k) == pytest.approx(ref, rel=1e-10)
+    assert best_of_k_value(np.full(V, 1.0 / V), z, z, k=k) == pytest.approx(ref, rel=1e-10)
 
 
 # ---------------------------------------------------------- binary rewards
@@ -184,21 +184,21 @@ def test_binary_known_reward_equals_success_formula(k):
     r = np.array([1.0, 0.0, 0.0, 1.0])
     p1 = 0.45
     exact = 1 - (1 - Fraction(p1)) ** k
-    assert bon_value(p, r, r, k=k) == pytest.approx(float(exact), rel=1e-12)
-    assert bon_success(p1, k=k) == pytest.approx(float(exact), rel=1e-14)
+    assert best_of_k_value(p, r, r, k=k) == pytest.approx(float(exact), rel=1e-12)
+    assert best_of_k_success(p1, k=k) == pytest.approx(float(exact), rel=1e-14)
 
 
 def test_success_stable_at_tiny_p_and_large_k():
     # binomial theorem: 1 - (1-p)^k = kp - C(k,2) p^2 + ...; at p = 1e-30 the first term is exact to 1e-26
-    assert bon_success(1e-30, k=10_000) == pytest.approx(1e-26, rel=1e-12)
-    assert bon_success(0.0, k=5) == 0.0
-    assert bon_success(1.0, k=5) == 1.0
+    assert best_of_k_success(1e-30, k=10_000) == pytest.approx(1e-26, rel=1e-12)
+    assert best_of_k_success(0.0, k=5) == 0.0
+    assert best_of_k_success(1.0, k=5) == 1.0
     # array / tensor kinds and a gradient at p = 1 (d/dp = k (1-p)^(k-1) = 0 there)
-    a = bon_success(np.array([0.0, 0.5, 1.0]), k=3)
+    a = best_of_k_success(np.array([0.0, 0.5, 1.0]), k=3)
     assert isinstance(a, np.ndarray)
     np.testing.assert_allclose(a, [0.0, 0.875, 1.0], rtol=1e-15)
     t = torch.tensor([0.5, 1.0], dtype=torch.float64, requires_grad=True)
-    bon_success(t, k=3).sum().backward()
+    best_of_k_success(t, k=3).sum().backward()
     np.testing.assert_allclose(t.grad.numpy(), [3 * 0.25, 0.0], rtol=1e-14)  # power rule
 
 
@@ -210,7 +210,7 @@ def test_invariant_to_permuting_outcomes(ps, k, rnd):
     # common practice: outcome labels carry no meaning
     p, s = ps
     perm = np.array(rnd.sample(range(len(p)), len(p)))
-    np.testing.assert_allclose(bon_distribution(p[perm], s[perm], k=k), bon_distribution(p, s, k=k)[perm], rtol=1e-10, atol=1e-15)
+    np.testing.assert_allclose(best_of_k_distribution(p[perm], s[perm], k=k), best_of_k_distribution(p, s, k=k)[perm], rtol=1e-10, atol=1e-15)
 
 
 @given(policy_and_scores(), st.integers(1, 12))
@@ -218,8 +218,8 @@ def test_invariant_to_increasing_transform_of_scores(ps, k):
     # best-of-k uses only the order of the scores (ties included)
     p, s = ps
     t = s**3 + 5 * s - 2.0  # strictly increasing, exact on small integers
-    np.testing.assert_allclose(bon_distribution(p, t, k=k), bon_distribution(p, s, k=k), rtol=1e-13, atol=1e-16)
-    np.testing.assert_allclose(bon_distribution(p, np.exp(s), k=k), bon_distribution(p, s, k=k), rtol=1e-13, atol=1e-16)
+    np.testing.assert_allclose(best_of_k_distribution(p, t, k=k), best_of_k_distribution(p, s, k=k), rtol=1e-13, atol=1e-16)
+    np.testing.assert_allclose(best_of_k_distribution(p, np.exp(s), k=k), best_of_k_distribution(p, s, k=k), rtol=1e-13, atol=1e-16)
 
 
 @settings(max_examples=30)
@@ -227,7 +227,7 @@ def test_invariant_to_increasing_transform_of_scores(ps, k):
 def test_value_nondecreasing_in_k_when_reward_is_score(ps):
     # more draws can only raise the kept maximum (common practice)
     p, s = ps
-    vals = [bon_value(p, s, s, k=k) for k in range(1, 12)]
+    vals = [best_of_k_value(p, s, s, k=k) for k in range(1, 12)]
     assert all(b >= a - 1e-12 for a, b in zip(vals, vals[1:]))
     assert vals[-1] <= s[p > 0].max() + 1e-12
 
@@ -236,9 +236,9 @@ def test_value_nondecreasing_in_k_when_reward_is_score(ps):
 def test_k1_is_mean_reward_and_rows_sum_to_one(ps, rew):
     p, s = ps
     r = np.array(rew[: len(p)])
-    assert bon_value(p, s, r, k=1) == pytest.approx(float(p @ r), abs=1e-12)  # best-of-1 = the policy
+    assert best_of_k_value(p, s, r, k=1) == pytest.approx(float(p @ r), abs=1e-12)  # best-of-1 = the policy
     for k in (1, 2, 9, 300):
-        q = bon_distribution(p, s, k=k)
+        q = best_of_k_distribution(p, s, k=k)
         assert q.sum() == pytest.approx(1.0, abs=1e-12)
         assert (q[p == 0] == 0).all()  # never selects an outcome the policy cannot draw
 
@@ -246,7 +246,7 @@ def test_k1_is_mean_reward_and_rows_sum_to_one(ps, rew):
 @given(policy_and_scores(zeros=False), st.integers(1, 30))
 def test_log_distribution_is_log_of_distribution(ps, k):
     p, s = ps
-    np.testing.assert_allclose(np.exp(log_bon_distribution(p, s, k=k)), bon_distribution(p, s, k=k), rtol=1e-10, atol=1e-300)
+    np.testing.assert_allclose(np.exp(log_best_of_k_distribution(p, s, k=k)), best_of_k_distribution(p, s, k=k), rtol=1e-10, atol=1e-300)
 
 
 # ----------------------------------------------------------------- gradients
@@ -265,19 +265,19 @@ REWARDS = torch.tensor([0.2, -1.0, 3.0, 0.5, 1.0], dtype=torch.float64)
 def test_gradcheck_value_kl_log_through_logits(k):
     # reference: finite differences (torch.autograd.gradcheck)
     l = _logits()
-    f = lambda x: bon_value(softmax_policy(x, temperature=0.7), SCORES, REWARDS, k=k)
+    f = lambda x: best_of_k_value(softmax_policy(x, temperature=0.7), SCORES, REWARDS, k=k)
     assert torch.autograd.gradcheck(f, (l,))
-    assert torch.autograd.gradcheck(lambda x: bon_kl(softmax_policy(x), SCORES, k=k), (l,))
-    assert torch.autograd.gradcheck(lambda x: log_bon_distribution(softmax_policy(x), SCORES, k=k), (l,))
-    assert torch.autograd.gradcheck(lambda x: bon_distribution(softmax_policy(x), SCORES, k=k), (l,))
+    assert torch.autograd.gradcheck(lambda x: best_of_k_kl(softmax_policy(x), SCORES, k=k), (l,))
+    assert torch.autograd.gradcheck(lambda x: log_best_of_k_distribution(softmax_policy(x), SCORES, k=k), (l,))
+    assert torch.autograd.gradcheck(lambda x: best_of_k_distribution(softmax_policy(x), SCORES, k=k), (l,))
 
 
 def test_gradient_wrt_rewards_is_bon_distribution():
     # V_k is linear in the rewards: dV_k / dR = pi_bon
     p = softmax_policy(_logits(1, 5).detach())[0]
     r = REWARDS.clone().requires_grad_(True)
-    bon_value(p, SCORES, r, k=3).backward()
-    torch.testing.assert_close(r.grad, bon_distribution(p, SCORES, k=3), rtol=1e-14, atol=0)
+    best_of_k_value(p, SCORES, r, k=3).backward()
+    torch.testing.assert_close(r.grad, best_of_k_distribution(p, SCORES, k=3), rtol=1e-14, atol=0)
 
 
 def test_gradient_at_zero_probability_outcome():
@@ -285,7 +285,7 @@ def test_gradient_at_zero_probability_outcome():
     # so d pi_bon(1) / dq = k 0.5^(k-1) (power rule)
     k = 4
     p = torch.tensor([0.5, 0.0, 0.5], dtype=torch.float64, requires_grad=True)
-    q = bon_distribution(p, torch.tensor([0.0, 1.0, 2.0]), k=k)
+    q = best_of_k_distribution(p, torch.tensor([0.0, 1.0, 2.0]), k=k)
     assert float(q[1].detach()) == 0.0
     q[1].backward()
     assert float(p.grad[1]) == pytest.approx(k * 0.5 ** (k - 1), rel=1e-14)
@@ -295,7 +295,7 @@ def test_gradient_at_zero_probability_outcome():
 def test_best_of_one_jacobian_is_identity_even_at_zeros():
     # k = 1 keeps the single draw, so pi_bon = pi and d pi_bon / d pi = I (definition)
     p = torch.tensor([0.0, 0.5, 0.5], dtype=torch.float64)
-    jac = torch.autograd.functional.jacobian(lambda x: bon_distribution(x, torch.tensor([0.0, 1.0, 2.0]), k=1), p)
+    jac = torch.autograd.functional.jacobian(lambda x: best_of_k_distribution(x, torch.tensor([0.0, 1.0, 2.0]), k=1), p)
     torch.testing.assert_close(jac, torch.eye(3, dtype=torch.float64), rtol=0, atol=0)
 
 
@@ -306,26 +306,26 @@ def test_large_k_and_tiny_probs_are_finite_and_exact():
     logits = torch.tensor([math.log1p(-2e-30), math.log(1e-30), math.log(1e-30)], dtype=torch.float64, requires_grad=True)
     s = torch.tensor([0.0, 1.0, 2.0])
     p = softmax_policy(logits)
-    lq = log_bon_distribution(p, s, k=k)
+    lq = log_best_of_k_distribution(p, s, k=k)
     np.testing.assert_allclose(lq.detach().numpy()[1:], [math.log(1e-26)] * 2, rtol=1e-12)
     assert float(lq[0].detach()) == pytest.approx(-2e-26, rel=1e-9)
-    loss = lq.sum() + bon_value(p, s, s, k=k) + bon_kl(p, s, k=k) + bon_distribution(p, s, k=k).sum()
+    loss = lq.sum() + best_of_k_value(p, s, s, k=k) + best_of_k_kl(p, s, k=k) + best_of_k_distribution(p, s, k=k).sum()
     loss.backward()
     assert torch.isfinite(logits.grad).all()
     # d log pi_bon(2) / d logit_2 at tiny mass ~ 1 (pi_bon ~ k pi_2 while pi_2 is tiny)
-    g = torch.autograd.grad(log_bon_distribution(softmax_policy(logits), s, k=k)[2], logits)[0]
+    g = torch.autograd.grad(log_best_of_k_distribution(softmax_policy(logits), s, k=k)[2], logits)[0]
     assert float(g[2]) == pytest.approx(1.0, abs=1e-12)
 
 
 def test_underflowing_selection_stays_exact_in_log_space():
     # pi = (1/2, 1/2), scores (0, 1): the low outcome wins only if all k draws are it, 2^-k
     k = 10_000
-    lq = log_bon_distribution(np.array([0.5, 0.5]), np.array([0.0, 1.0]), k=k)
+    lq = log_best_of_k_distribution(np.array([0.5, 0.5]), np.array([0.0, 1.0]), k=k)
     assert lq[0] == pytest.approx(-k * math.log(2), rel=1e-14)
     assert lq[1] == 0.0
-    assert bon_distribution(np.array([0.5, 0.5]), np.array([0.0, 1.0]), k=k)[0] == 0.0  # underflow, no NaN
+    assert best_of_k_distribution(np.array([0.5, 0.5]), np.array([0.0, 1.0]), k=k)[0] == 0.0  # underflow, no NaN
     l = torch.zeros(2, dtype=torch.float64, requires_grad=True)
-    v = bon_value(softmax_policy(l), torch.tensor([0.0, 1.0]), torch.tensor([0.0, 1.0]), k=k)
+    v = best_of_k_value(softmax_policy(l), torch.tensor([0.0, 1.0]), torch.tensor([0.0, 1.0]), k=k)
     v.backward()
     assert torch.isfinite(l.grad).all()
 
@@ -337,12 +337,12 @@ def test_numpy_and_torch_agree_and_kinds_follow_probs():
     p = np.array([[0.1, 0.2, 0.7], [0.5, 0.25, 0.25]])
     s = np.array([1.0, 2.0, 0.0])
     r = np.array([1.0, -1.0, 0.5])
-    a = bon_value(p, s, r, k=3)
-    b = bon_value(torch.tensor(p, dtype=torch.float32), torch.tensor(s), r, k=3)
+    a = best_of_k_value(p, s, r, k=3)
+    b = best_of_k_value(torch.tensor(p, dtype=torch.float32), torch.tensor(s), r, k=3)
     assert isinstance(a, np.ndarray) and a.shape == (2,)
     assert isinstance(b, torch.Tensor) and b.dtype == torch.float64
     np.testing.assert_allclose(b.numpy(), a, rtol=1e-6)  # float32 input rounding only
-    assert isinstance(bon_kl(p[0], s, k=2), np.floating)
+    assert isinstance(best_of_k_kl(p[0], s, k=2), np.floating)
     assert isinstance(softmax_policy([0.0, 1.0]), np.ndarray)
     np.testing.assert_allclose(softmax_policy(np.array([0.0, math.log(3.0)]), temperature=1.0), [0.25, 0.75])
     # temperature divides the logits (softmax definition)
@@ -360,24 +360,24 @@ S3 = np.array([0.0, 1.0, 2.0])
 @pytest.mark.parametrize(
     "call,exc,match",
     [
-        (lambda: bon_distribution(np.array([0.5, 0.7, -0.2]), S3, k=2), ValueError, "probs must be non-negative"),
-        (lambda: bon_distribution(np.array([0.2, 0.3, 0.4]), S3, k=2), ValueError, "probs must sum to 1"),
-        (lambda: bon_distribution(np.array([0.2, np.nan, 0.5]), S3, k=2), ValueError, "probs must be finite"),
-        (lambda: bon_distribution(np.array(1.0), np.array(1.0), k=2), ValueError, "probs must have at least 1 dimension"),
-        (lambda: bon_distribution(np.zeros((2, 0)), np.zeros(0), k=2), ValueError, "probs must not be empty"),
-        (lambda: bon_distribution("abc", S3, k=2), TypeError, "probs must be an array of numbers"),
-        (lambda: bon_distribution(P3, np.array([0.0, np.inf, 1.0]), k=2), ValueError, "scores must be finite"),
-        (lambda: bon_distribution(P3, np.arange(4.0), k=2), ValueError, r"scores must have shape \(\.\.\., V\) with V=3"),
-        (lambda: bon_distribution(np.full((2, 3), 1 / 3), np.zeros((4, 3)), k=2), ValueError, "scores must broadcast"),
-        (lambda: bon_value(P3, S3, np.array([0.0, np.nan, 1.0]), k=2), ValueError, "rewards must be finite"),
-        (lambda: bon_value(P3, S3, np.arange(2.0), k=2), ValueError, "rewards must have shape"),
-        (lambda: bon_value(P3, np.zeros((2, 3)), np.zeros((4, 3)), k=2), ValueError, "rewards must broadcast"),
-        (lambda: bon_value(P3, S3, S3, k=0), ValueError, "k must be >= 1, got k=0"),
-        (lambda: bon_kl(P3, S3, k=2.0), TypeError, "k must be an int, got float"),
-        (lambda: log_bon_distribution(P3, S3, k=True), TypeError, "k must be an int"),
-        (lambda: bon_success(1.5, k=2), ValueError, r"p must be in \[0, 1\]"),
-        (lambda: bon_success(np.array([0.5, np.nan]), k=2), ValueError, "p must be finite"),
-        (lambda: bon_success(0.5, k=-3), ValueError, "k must be >= 1"),
+        (lambda: best_of_k_distribution(np.array([0.5, 0.7, -0.2]), S3, k=2), ValueError, "probs must be non-negative"),
+        (lambda: best_of_k_distribution(np.array([0.2, 0.3, 0.4]), S3, k=2), ValueError, "probs must sum to 1"),
+        (lambda: best_of_k_distribution(np.array([0.2, np.nan, 0.5]), S3, k=2), ValueError, "probs must be finite"),
+        (lambda: best_of_k_distribution(np.array(1.0), np.array(1.0), k=2), ValueError, "probs must have at least 1 dimension"),
+        (lambda: best_of_k_distribution(np.zeros((2, 0)), np.zeros(0), k=2), ValueError, "probs must not be empty"),
+        (lambda: best_of_k_distribution("abc", S3, k=2), TypeError, "probs must be an array of numbers"),
+        (lambda: best_of_k_distribution(P3, np.array([0.0, np.inf, 1.0]), k=2), ValueError, "scores must be finite"),
+        (lambda: best_of_k_distribution(P3, np.arange(4.0), k=2), ValueError, r"scores must have shape \(\.\.\., V\) with V=3"),
+        (lambda: best_of_k_distribution(np.full((2, 3), 1 / 3), np.zeros((4, 3)), k=2), ValueError, "scores must broadcast"),
+        (lambda: best_of_k_value(P3, S3, np.array([0.0, np.nan, 1.0]), k=2), ValueError, "rewards must be finite"),
+        (lambda: best_of_k_value(P3, S3, np.arange(2.0), k=2), ValueError, "rewards must have shape"),
+        (lambda: best_of_k_value(P3, np.zeros((2, 3)), np.zeros((4, 3)), k=2), ValueError, "rewards must broadcast"),
+        (lambda: best_of_k_value(P3, S3, S3, k=0), ValueError, "k must be >= 1, got k=0"),
+        (lambda: best_of_k_kl(P3, S3, k=2.0), TypeError, "k must be an int, got float"),
+        (lambda: log_best_of_k_distribution(P3, S3, k=True), TypeError, "k must be an int"),
+        (lambda: best_of_k_success(1.5, k=2), ValueError, r"p must be in \[0, 1\]"),
+        (lambda: best_of_k_success(np.array([0.5, np.nan]), k=2), ValueError, "p must be finite"),
+        (lambda: best_of_k_success(0.5, k=-3), ValueError, "k must be >= 1"),
         (lambda: softmax_policy(np.zeros(3), temperature=0.0), ValueError, "temperature must be a finite number > 0"),
         (lambda: softmax_policy(np.zeros(3), temperature="hot"), TypeError, "temperature must be a real number"),
         (lambda: softmax_policy(np.array([0.0, np.nan]), temperature=1.0), ValueError, "logits must be finite or -inf"),

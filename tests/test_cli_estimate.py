@@ -22,7 +22,7 @@ def test_example_prints_table_and_writes_json_and_png(tmp_path, capsys):
     assert rc == 0
     assert "temperature 0.6" in text and "temperature 1" in text
     assert text.count("prompts: 200   smallest pool: 16") == 2
-    assert "best-of-k" in text and "oracle" in text and "95% CI" in text
+    assert "best-of-k" in text and "pass@k" in text and "95% CI" in text
     assert open(out_png, "rb").read(8) == b"\x89PNG\r\n\x1a\n"
 
     doc = json.loads(out_json.read_text())
@@ -40,11 +40,11 @@ def test_example_prints_table_and_writes_json_and_png(tmp_path, capsys):
         cells = [v for (t, _), v in correct.items() if t == block["temperature"]]
         for j, k in enumerate(block["ks"]):
             want = sum(chen_pass_at_k(n, c, k) for n, c in cells) / len(cells)
-            assert block["oracle_mean"][j] == pytest.approx(want, rel=1e-10)
-            assert block["oracle_lo"][j] <= want <= block["oracle_hi"][j]
+            assert block["pass_at_k_mean"][j] == pytest.approx(want, rel=1e-10)
+            assert block["pass_at_k_lo"][j] <= want <= block["pass_at_k_hi"][j]
             assert f"{want:.4f}" in text
         # k = 1: the verifier plays no part, both curves are the mean reward
-        assert block["bon_mean"][0] == pytest.approx(block["oracle_mean"][0], abs=1e-12)
+        assert block["best_of_k_mean"][0] == pytest.approx(block["pass_at_k_mean"][0], abs=1e-12)
 
 
 def test_single_temperature_file_with_renamed_fields_and_k(tmp_path, capsys):
@@ -62,7 +62,7 @@ def test_single_temperature_file_with_renamed_fields_and_k(tmp_path, capsys):
     block = json.loads((tmp_path / "o.json").read_text())["blocks"][0]
     assert block["ks"] == [1, 5] and block["temperature"] is None
     # 3 of 5 correct per prompt: pass@1 = 0.6 and pass@5 = 1 (Chen et al. 2021 eq. (1))
-    assert block["oracle_mean"] == pytest.approx([chen_pass_at_k(5, 3, 1), chen_pass_at_k(5, 3, 5)])
+    assert block["pass_at_k_mean"] == pytest.approx([chen_pass_at_k(5, 3, 1), chen_pass_at_k(5, 3, 5)])
 
 
 @pytest.mark.parametrize(

@@ -3,7 +3,7 @@
 Reference for the exact objective: V_k(theta) of a categorical policy is a
 finite sum over k-tuples of outcomes (definition of best-of-k with uniform
 tie-breaking, Chow et al. 2024), differentiated by torch autograd; it is
-cross-checked against bonft.bon.bon_value. Expectations over pools are exact:
+cross-checked against bonft.bon.best_of_k_value. Expectations over pools are exact:
 sum over all V^n sample tuples weighted by their probability
 (itertools.product), and grad log softmax(theta)_y = onehot(y) - softmax(theta)
 (standard softmax identity).
@@ -16,9 +16,9 @@ import pytest
 import torch
 from hypothesis import given, settings, strategies as st
 
-from bonft.bon import bon_value, log_bon_distribution, softmax_policy
+from bonft.bon import best_of_k_value, log_best_of_k_distribution, softmax_policy
 from bonft.objectives.credit import bon_rl_credit, pass_at_k_credit, pool_value, reinforce_credit, bon_sft_credit
-from bonft.estimate import bon_at_k
+from bonft.estimate import best_of_k
 
 TOL = 1e-10
 
@@ -109,7 +109,7 @@ def test_bon_rl_credit_equals_subset_definition(n, data):
             w = bon_rl_credit(s[None], R[None], k=k, baseline=baseline)[0]
             np.testing.assert_allclose(w, subset_credit(s, R, k, baseline == "loo"), atol=1e-13)
         # pool U-statistic against the sorted-rank formula (Chow et al. 2024) in bonft.estimate
-        assert abs(pool_value(s[None], R[None], k=k)[0] - bon_at_k(s, R, k=k)) < 1e-13
+        assert abs(pool_value(s[None], R[None], k=k)[0] - best_of_k(s, R, k=k)) < 1e-13
 
 
 @settings(max_examples=40)
@@ -119,7 +119,7 @@ def test_bon_rl_credit_is_exactly_unbiased(cfg):
     theta, s, R = problem(V, seed)
     Y = all_tuples(V, n)
     g_brute = exact_grad(lambda th: brute_value(th, s, R, k), theta)
-    g_bon = exact_grad(lambda th: bon_value(softmax_policy(th), torch.tensor(s), torch.tensor(R), k=k), theta)
+    g_bon = exact_grad(lambda th: best_of_k_value(softmax_policy(th), torch.tensor(s), torch.tensor(R), k=k), theta)
     np.testing.assert_allclose(g_bon, g_brute, atol=1e-12)  # two independent exact gradients agree
     for baseline in ("loo", "none"):
         w = bon_rl_credit(s[Y], R[Y], k=k, baseline=baseline)
@@ -133,7 +133,7 @@ def test_grad_vk_gradcheck():
     th = torch.tensor(theta, requires_grad=True)
     for k in (1, 2, 5):
         assert torch.autograd.gradcheck(
-            lambda t: bon_value(softmax_policy(t), torch.tensor(s), torch.tensor(R), k=k), (th,))
+            lambda t: best_of_k_value(softmax_policy(t), torch.tensor(s), torch.tensor(R), k=k), (th,))
         assert torch.autograd.gradcheck(lambda t: brute_value(t, s, R, k), (th,))
 
 
@@ -229,7 +229,7 @@ def test_pass_at_k_credit_closed_counts_example():
 def sft_bias(theta, s, y_star, k, n):
     V = len(theta)
     Y = all_tuples(V, n)
-    exact = exact_grad(lambda th: log_bon_distribution(softmax_policy(th), torch.tensor(s), k=k)[y_star], theta)
+    exact = exact_grad(lambda th: log_best_of_k_distribution(softmax_policy(th), torch.tensor(s), k=k)[y_star], theta)
     p = np.exp(theta) / np.exp(theta).sum()
     w = bon_sft_credit(s[Y], np.full(len(Y), s[y_star]), k=k)
     est = (np.eye(V)[y_star] - p) + expected_estimate(theta, Y, w)  # exact expert term + sample term
@@ -310,7 +310,7 @@ def test_large_pools_stay_finite_and_exact():
             assert np.isfinite(w).all(), (k, baseline)
         # sum of no-baseline credit = k * U-statistic; U-statistic by bonft.estimate's rank formula
         v = bon_rl_credit(s, R, k=k, baseline="none").sum() / k
-        assert abs(v - bon_at_k(s[0], R[0], k=k)) < 1e-9, k
+        assert abs(v - best_of_k(s[0], R[0], k=k)) < 1e-9, k
         assert np.isfinite(pass_at_k_credit((R > 0), k=k)).all() and np.isfinite(bon_sft_credit(s, [2000.0], k=k)).all()
     # k = n: every subset is the whole pool, so credit is R_top for all (no baseline) and,
     # with loo, 0 except the top sample, which gets R_top - R_second.

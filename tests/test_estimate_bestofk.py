@@ -1,7 +1,6 @@
-"""bonft.estimate against outside references: exact integer formulas, brute-force
+"""bonft.estimate.bestofk against outside references: exact integer formulas, brute-force
 enumeration of k-subsets, normal order-statistics tables, scipy integration."""
 import itertools
-import json
 import math
 from fractions import Fraction
 
@@ -13,22 +12,16 @@ from hypothesis import strategies as st
 from scipy import integrate, stats
 
 from bonft.estimate import (
-    CurveSummary,
-    bon_at_k,
-    bon_at_k_per_prompt,
-    bootstrap_ci,
-    default_ks,
-    oracle_at_k_per_prompt,
-    pass_at_k,
-    summarize,
+    best_of_k,
+    best_of_k_per_prompt,
+    pass_at_k_per_prompt,
 )
-from bonft.viz import plot_bon_curves
 
 
 # ----------------------------------------------------------------------------- references (independent of bonft)
 
 
-def brute_bon(scores, rewards, k) -> Fraction:
+def brute_best_of_k(scores, rewards, k) -> Fraction:
     """Average over all k-subsets of the reward the verifier keeps, ties split uniformly (exact rationals)."""
     total, count = Fraction(0), 0
     for sub in itertools.combinations(range(len(scores)), k):
@@ -44,81 +37,11 @@ def chen_pass_at_k(n, c, k) -> Fraction:
     return 1 - Fraction(math.comb(n - c, k), math.comb(n, k))
 
 
-# ----------------------------------------------------------------------------- pass@k
-
-
-@pytest.mark.parametrize("n,c", [(1, 0), (1, 1), (5, 2), (10, 3), (20, 0), (20, 20), (30, 7)])
-def test_pass_at_k_equals_chen_formula_and_enumeration(n, c):
-    ks = list(range(1, n + 1))
-    got = pass_at_k(n, c, k=ks)
-    want = [chen_pass_at_k(n, c, k) for k in ks]  # Chen et al. 2021 eq. (1), exact integers
-    np.testing.assert_allclose(got, [float(w) for w in want], rtol=1e-12, atol=1e-14)
-    if n <= 10:
-        # brute force: share of k-subsets holding at least one of the c correct samples (first c indices)
-        for k in ks:
-            subsets = list(itertools.combinations(range(n), k))
-            hits = sum(any(i < c for i in s) for s in subsets)
-            assert got[k - 1] == pytest.approx(hits / len(subsets), abs=1e-12)
-
-
-def test_pass_at_k_broadcasts_and_returns_float_for_scalars():
-    assert isinstance(pass_at_k(10, 3, k=2), float)
-    # Chen et al. 2021 eq. (1): 1 - C(7,2)/C(10,2) = 1 - 21/45 = 8/15
-    assert pass_at_k(10, 3, k=2) == pytest.approx(8 / 15, abs=1e-14)
-    got = pass_at_k(np.array([[10], [20]]), np.array([3, 5]), k=2)
-    want = [[float(chen_pass_at_k(10, 3, 2)), float(chen_pass_at_k(10, 5, 2))],
-            [float(chen_pass_at_k(20, 3, 2)), float(chen_pass_at_k(20, 5, 2))]]
-    np.testing.assert_allclose(got, want, rtol=1e-12)
-    np.testing.assert_allclose(pass_at_k(torch.tensor([10, 20]), torch.tensor([3, 5]), k=4),
-                               [float(chen_pass_at_k(10, 3, 4)), float(chen_pass_at_k(20, 5, 4))], rtol=1e-12)
-
-
-def test_pass_at_k_large_n_matches_chen_stable_product():
-    # Chen et al. 2021, Fig. 3 numerically stable form: 1 - prod_{i=n-c+1}^{n} (1 - k / i)
-    n, c, k = 100_000, 3, 10_000
-    want = 1.0 - np.prod(1.0 - k / np.arange(n - c + 1, n + 1))
-    got = pass_at_k(n, c, k=k)
-    assert math.isfinite(got)
-    assert got == pytest.approx(want, rel=1e-10)
-
-
-def test_pass_at_k_long_vectors_match_chen_and_name_the_bad_element():
-    # vectors longer than the block size (2**15) go through the block scan and the (pool size, c) table;
-    # reference: Chen et al. 2021 eq. (1) with exact integers on every distinct (n, c)
-    rng = np.random.default_rng(0)
-    n = rng.choice([16, 64, 256], 80_000)
-    c = rng.integers(0, n + 1)
-    got = pass_at_k(n, c, k=8)
-    want = {(a, b): float(chen_pass_at_k(a, b, 8)) for a, b in set(zip(n.tolist(), c.tolist()))}
-    np.testing.assert_allclose(got, [want[a, b] for a, b in zip(n.tolist(), c.tolist())], rtol=1e-12, atol=1e-15)
-    c[70_000] = n[70_000] + 1  # in the third block
-    with pytest.raises(ValueError, match=rf"c must be <= n \(n={n[70_000]}\), got c={n[70_000] + 1}"):
-        pass_at_k(n, c, k=8)
-
-
-def test_pass_at_k_rejects_bad_input():
-    with pytest.raises(ValueError, match=r"k must be <= n \(n=8\), got k=16"):
-        pass_at_k(8, 2, k=16)
-    with pytest.raises(ValueError, match=r"k must be >= 1"):
-        pass_at_k(8, 2, k=0)
-    with pytest.raises(ValueError, match=r"c must be <= n \(n=8\), got c=9"):
-        pass_at_k(8, 9, k=1)
-    with pytest.raises(ValueError, match=r"c must be >= 0"):
-        pass_at_k(8, -1, k=1)
-    with pytest.raises(TypeError, match=r"k must hold ints, got dtype float64"):
-        pass_at_k(8, 2, k=1.5)
-    with pytest.raises(ValueError, match=r"must broadcast together"):
-        pass_at_k([8, 9], [1, 2, 3], k=1)
-
-
-# ----------------------------------------------------------------------------- best-of-k vs brute force
-
-
 def test_bon_at_k_worked_example_with_ties():
     # hand-enumerated: scores [0.1, .5, .5, .9, .2], rewards [1, 0, 1, 0, 1]
     s, r = [0.1, 0.5, 0.5, 0.9, 0.2], [1, 0, 1, 0, 1]
-    got = bon_at_k(s, r, k=[1, 2, 3, 4, 5])
-    want = [float(brute_bon(s, r, k)) for k in range(1, 6)]  # brute-force enumeration of k-subsets
+    got = best_of_k(s, r, k=[1, 2, 3, 4, 5])
+    want = [float(brute_best_of_k(s, r, k)) for k in range(1, 6)]  # brute-force enumeration of k-subsets
     np.testing.assert_allclose(got, want, rtol=1e-12, atol=1e-15)
     # k = 2 by hand: 10 pairs; the 4 pairs containing 0.9 give 0; the pair of the two tied .5 gives 1/2;
     # (.1,.5a)=0 (.1,.5b)=1 (.2,.5a)=0 (.2,.5b)=1 (.1,.2)=1 -> (0.5 + 3) / 10 = 0.35
@@ -138,8 +61,8 @@ pools = st.integers(1, 8).flatmap(
 def test_bon_at_k_equals_brute_force_enumeration(pool):
     s, r = pool
     n = len(s)
-    got = bon_at_k(np.array(s, float), np.array(r, float), k=list(range(1, n + 1)))
-    want = [float(brute_bon(s, r, k)) for k in range(1, n + 1)]  # brute force, uniform tie-breaking
+    got = best_of_k(np.array(s, float), np.array(r, float), k=list(range(1, n + 1)))
+    want = [float(brute_best_of_k(s, r, k)) for k in range(1, n + 1)]  # brute force, uniform tie-breaking
     np.testing.assert_allclose(got, want, rtol=1e-10, atol=1e-12)
 
 
@@ -148,7 +71,7 @@ def test_bon_at_k_equals_brute_force_enumeration(pool):
 def test_oracle_with_binary_rewards_is_chen_pass_at_k(pairs):
     r = np.array([b for _, b in pairs], float)
     n, c = len(r), int(r.sum())
-    got = oracle_at_k_per_prompt(r[None, :], ks=list(range(1, n + 1)))[0]
+    got = pass_at_k_per_prompt(r[None, :], ks=list(range(1, n + 1)))[0]
     want = [float(chen_pass_at_k(n, c, k)) for k in range(1, n + 1)]  # Chen et al. 2021 eq. (1)
     np.testing.assert_allclose(got, want, rtol=1e-10, atol=1e-12)
 
@@ -176,7 +99,7 @@ def test_bon_of_normal_draws_matches_expected_maximum():
     P, n = 4000, 20
     x = rng.standard_normal((P, n))
     ks = sorted(HARTER)
-    per = bon_at_k_per_prompt(x, x, ks=ks)  # score = reward: best-of-k keeps the max
+    per = best_of_k_per_prompt(x, x, ks=ks)  # score = reward: best-of-k keeps the max
     mean = per.mean(0)
     se = per.std(0, ddof=1) / math.sqrt(P)
     for j, k in enumerate(ks):
@@ -184,7 +107,7 @@ def test_bon_of_normal_draws_matches_expected_maximum():
         assert abs(mean[j] - HARTER[k]) < 4 * se[j], f"k={k}: {mean[j]:.4f} vs {HARTER[k]} (se {se[j]:.4f})"
         assert abs(mean[j] - expected_max_normal(k)) < 4 * se[j]
     # k = 1 is the sample mean of the rewards
-    np.testing.assert_allclose(bon_at_k_per_prompt(x, x, ks=1), x.mean(1), rtol=1e-12, atol=1e-14)
+    np.testing.assert_allclose(best_of_k_per_prompt(x, x, ks=1), x.mean(1), rtol=1e-12, atol=1e-14)
 
 
 # ----------------------------------------------------------------------------- large n through log-gamma
@@ -195,7 +118,7 @@ def test_large_pool_matches_expected_max_of_k_subset_of_ranks():
     # maximum (e.g. Goodman 1952 on serial-number estimation; "German tank problem")
     n, k = 100_000, 10_000
     ranks = np.random.default_rng(0).permutation(n).astype(float) + 1
-    got = bon_at_k(ranks, ranks, k=[1, 100, k, n])
+    got = best_of_k(ranks, ranks, k=[1, 100, k, n])
     want = [(kk * (n + 1)) / (kk + 1) for kk in (1, 100, k, n)]
     assert np.isfinite(got).all()
     np.testing.assert_allclose(got, want, rtol=1e-9)
@@ -205,7 +128,7 @@ def test_large_pool_binary_matches_chen_stable_product():
     n, k = 100_000, 10_000
     r = np.zeros(n)
     r[[5, 77, 90_000]] = 1.0
-    got = bon_at_k(r, r, k=k)  # oracle: reward as score
+    got = best_of_k(r, r, k=k)  # oracle: reward as score
     # Chen et al. 2021, Fig. 3 stable product
     assert got == pytest.approx(1 - np.prod(1 - k / np.arange(n - 2, n + 1)), rel=1e-9)
 
@@ -220,7 +143,7 @@ def test_large_pool_matches_exact_integer_sum():
     for j, v in value.items():
         r[ranks == j] = v
     exact = sum(v * math.comb(j - 1, k - 1) for j, v in value.items()) / math.comb(n, k)
-    got = bon_at_k(ranks.astype(float), r, k=k)
+    got = best_of_k(ranks.astype(float), r, k=k)
     assert math.isfinite(got) and exact > 0.09
     assert got == pytest.approx(exact, rel=1e-9)
 
@@ -245,17 +168,17 @@ def test_invariant_to_permuting_samples_and_monotone_score_transform(case):
     S, R = np.array(s, float), np.array(r, float)
     P, n = S.shape
     ks = list(range(1, n + 1))
-    base = bon_at_k_per_prompt(S, R, ks=ks)
+    base = best_of_k_per_prompt(S, R, ks=ks)
     perm = np.array([rnd.sample(range(n), n) for _ in range(P)])
-    np.testing.assert_allclose(bon_at_k_per_prompt(np.take_along_axis(S, perm, 1), np.take_along_axis(R, perm, 1), ks=ks),
+    np.testing.assert_allclose(best_of_k_per_prompt(np.take_along_axis(S, perm, 1), np.take_along_axis(R, perm, 1), ks=ks),
                                base, rtol=1e-10, atol=1e-12)
     # strictly increasing transforms keep the verifier's order (and its ties)
-    np.testing.assert_allclose(bon_at_k_per_prompt(np.exp(S / 3.0) * 7 - 2, R, ks=ks), base, rtol=1e-10, atol=1e-12)
-    np.testing.assert_allclose(bon_at_k_per_prompt(S ** 3 + S, R, ks=ks), base, rtol=1e-10, atol=1e-12)
+    np.testing.assert_allclose(best_of_k_per_prompt(np.exp(S / 3.0) * 7 - 2, R, ks=ks), base, rtol=1e-10, atol=1e-12)
+    np.testing.assert_allclose(best_of_k_per_prompt(S ** 3 + S, R, ks=ks), base, rtol=1e-10, atol=1e-12)
     # k = 1: the verifier plays no part, the value is the mean reward
     np.testing.assert_allclose(base[:, 0], R.mean(1), rtol=1e-12, atol=1e-12)
     # with reward = score the value is the expected max, nondecreasing in k, ending at the pool max
-    orc = oracle_at_k_per_prompt(R, ks=ks)
+    orc = pass_at_k_per_prompt(R, ks=ks)
     assert (np.diff(orc, axis=1) >= -1e-12).all()
     np.testing.assert_allclose(orc[:, -1], R.max(1), rtol=1e-12, atol=1e-12)
     # the value always lies in the range of the pool's rewards
@@ -269,20 +192,20 @@ def test_ragged_equals_per_prompt(sizes, seed):
     ss = [np.round(rng.normal(size=m), 1) for m in sizes]  # rounding makes ties
     rr = [rng.integers(0, 3, size=m).astype(float) for m in sizes]
     ks = [1, 2] if min(sizes) >= 2 else [1]
-    got = bon_at_k_per_prompt(ss, rr, ks=ks)
-    want = np.stack([[float(brute_bon(list(s), list(r), k)) for k in ks] for s, r in zip(ss, rr)])
+    got = best_of_k_per_prompt(ss, rr, ks=ks)
+    want = np.stack([[float(brute_best_of_k(list(s), list(r), k)) for k in ks] for s, r in zip(ss, rr)])
     np.testing.assert_allclose(got, want, rtol=1e-10, atol=1e-12)
-    np.testing.assert_allclose(got, np.stack([bon_at_k(s, r, k=ks) for s, r in zip(ss, rr)]), rtol=1e-12)
+    np.testing.assert_allclose(got, np.stack([best_of_k(s, r, k=ks) for s, r in zip(ss, rr)]), rtol=1e-12)
 
 
 def test_list_of_pools_mixes_with_a_2d_array():
     S = np.array([[0.1, 0.4, 0.4], [0.9, 0.2, 0.5]])
     R = np.array([[1.0, 0.0, 1.0], [0.0, 1.0, 1.0]])
-    want = [[float(brute_bon(list(s), list(r), k)) for k in (1, 2)] for s, r in zip(S, R)]  # brute force
-    np.testing.assert_allclose(bon_at_k_per_prompt(list(S), R, ks=[1, 2]), want, rtol=1e-12)
-    np.testing.assert_allclose(bon_at_k_per_prompt(S, [list(r) for r in R], ks=[1, 2]), want, rtol=1e-12)
+    want = [[float(brute_best_of_k(list(s), list(r), k)) for k in (1, 2)] for s, r in zip(S, R)]  # brute force
+    np.testing.assert_allclose(best_of_k_per_prompt(list(S), R, ks=[1, 2]), want, rtol=1e-12)
+    np.testing.assert_allclose(best_of_k_per_prompt(S, [list(r) for r in R], ks=[1, 2]), want, rtol=1e-12)
     with pytest.raises(TypeError, match=r"rewards must be a list of 1-D arrays or a 2-D array"):
-        bon_at_k_per_prompt(list(S), R[0], ks=1)
+        best_of_k_per_prompt(list(S), R[0], ks=1)
 
 
 @given(st.lists(st.tuples(st.integers(0, 5), st.integers(-3, 3), st.integers(0, 2)), min_size=1, max_size=8),
@@ -299,8 +222,8 @@ def test_near_ties_signed_zeros_and_extremes_match_brute_force(items, base):
         s.append([x, -0.0 if sign < 0 else 0.0, float(np.sign(sign)) * 1e308][kind])
     n = len(s)
     r = [float((7 * i) % 5) for i in range(n)]
-    got = bon_at_k(np.array(s), np.array(r), k=list(range(1, n + 1)))
-    want = [float(brute_bon(s, r, k)) for k in range(1, n + 1)]  # brute force with Python float comparisons
+    got = best_of_k(np.array(s), np.array(r), k=list(range(1, n + 1)))
+    want = [float(brute_best_of_k(s, r, k)) for k in range(1, n + 1)]  # brute force with Python float comparisons
     np.testing.assert_allclose(got, want, rtol=1e-10, atol=1e-12)
 
 
@@ -311,7 +234,7 @@ def test_near_ties_in_a_large_pool_match_argsort_reference():
     S = 1.0 + rng.integers(0, 40, size=(P, n)) * np.spacing(1.0)
     R = rng.normal(size=(P, n))
     ks = [1, 3, 50, 600]
-    got = bon_at_k_per_prompt(S, R, ks=ks)
+    got = best_of_k_per_prompt(S, R, ks=ks)
     # reference: stable argsort + tie-group means + exact integer weights C(i, k-1) / C(n, k)
     for p in range(0, P, 37):
         o = np.argsort(S[p], kind="stable")
@@ -326,13 +249,13 @@ def test_near_ties_in_a_large_pool_match_argsort_reference():
 def test_torch_input_and_scalar_k_shapes():
     rng = np.random.default_rng(5)
     S, R = rng.normal(size=(3, 6)), rng.normal(size=(3, 6))
-    a = bon_at_k_per_prompt(S, R, ks=[1, 3])
-    b = bon_at_k_per_prompt(torch.from_numpy(S), torch.from_numpy(R), ks=torch.tensor([1, 3]))
+    a = best_of_k_per_prompt(S, R, ks=[1, 3])
+    b = best_of_k_per_prompt(torch.from_numpy(S), torch.from_numpy(R), ks=torch.tensor([1, 3]))
     np.testing.assert_allclose(a, b, rtol=0, atol=0)
     assert a.shape == (3, 2)
-    assert bon_at_k_per_prompt(S, R, ks=3).shape == (3,)
-    assert isinstance(bon_at_k(S[0], R[0], k=3), float)
-    assert bon_at_k(S[0], R[0], k=[3]).shape == (1,)
+    assert best_of_k_per_prompt(S, R, ks=3).shape == (3,)
+    assert isinstance(best_of_k(S[0], R[0], k=3), float)
+    assert best_of_k(S[0], R[0], k=[3]).shape == (1,)
 
 
 # ----------------------------------------------------------------------------- bad input
@@ -341,119 +264,29 @@ def test_torch_input_and_scalar_k_shapes():
 @pytest.mark.parametrize(
     "call,exc,match",
     [
-        (lambda: bon_at_k([1.0, np.nan], [0, 1], k=1), ValueError, r"scores must be finite, got nan at index \(1,\)"),
-        (lambda: bon_at_k([1.0, 2.0], [0, np.inf], k=1), ValueError, r"rewards must be finite, got inf"),
-        (lambda: bon_at_k([1.0, 2.0], [0, 1], k=0), ValueError, r"k must be >= 1, got k=0"),
-        (lambda: bon_at_k(np.zeros(8), np.zeros(8), k=16), ValueError, r"k must be <= n \(n=8\), got k=16"),
-        (lambda: bon_at_k([1.0, 2.0], [0, 1, 1], k=1), ValueError, r"rewards must have the same shape as scores"),
-        (lambda: bon_at_k([], [], k=1), ValueError, r"scores must not be empty"),
-        (lambda: bon_at_k([1.0], [1.0], k=1.0), TypeError, r"k must be an int or a sequence of ints, got float"),
-        (lambda: bon_at_k("abc", [1.0], k=1), TypeError, r"scores must be an array of numbers"),
-        (lambda: bon_at_k(np.zeros((2, 2)), np.zeros((2, 2)), k=1), ValueError, r"scores must have 1 dimension"),
-        (lambda: bon_at_k_per_prompt(np.zeros((2, 4)), np.zeros((2, 4)), ks=[1, 5]), ValueError,
+        (lambda: best_of_k([1.0, np.nan], [0, 1], k=1), ValueError, r"scores must be finite, got nan at index \(1,\)"),
+        (lambda: best_of_k([1.0, 2.0], [0, np.inf], k=1), ValueError, r"rewards must be finite, got inf"),
+        (lambda: best_of_k([1.0, 2.0], [0, 1], k=0), ValueError, r"k must be >= 1, got k=0"),
+        (lambda: best_of_k(np.zeros(8), np.zeros(8), k=16), ValueError, r"k must be <= n \(n=8\), got k=16"),
+        (lambda: best_of_k([1.0, 2.0], [0, 1, 1], k=1), ValueError, r"rewards must have the same shape as scores"),
+        (lambda: best_of_k([], [], k=1), ValueError, r"scores must not be empty"),
+        (lambda: best_of_k([1.0], [1.0], k=1.0), TypeError, r"k must be an int or a sequence of ints, got float"),
+        (lambda: best_of_k("abc", [1.0], k=1), TypeError, r"scores must be an array of numbers"),
+        (lambda: best_of_k(np.zeros((2, 2)), np.zeros((2, 2)), k=1), ValueError, r"scores must have 1 dimension"),
+        (lambda: best_of_k_per_prompt(np.zeros((2, 4)), np.zeros((2, 4)), ks=[1, 5]), ValueError,
          r"ks must be <= n \(n=4\), got ks=5"),
-        (lambda: bon_at_k_per_prompt([np.zeros(3), np.zeros(2)], [np.zeros(3), np.zeros(3)], ks=1), ValueError,
+        (lambda: best_of_k_per_prompt([np.zeros(3), np.zeros(2)], [np.zeros(3), np.zeros(3)], ks=1), ValueError,
          r"rewards\[1\] must have the same shape as scores\[1\]"),
-        (lambda: bon_at_k_per_prompt([np.zeros(3), np.zeros(2)], [np.zeros(3)], ks=1), ValueError,
+        (lambda: best_of_k_per_prompt([np.zeros(3), np.zeros(2)], [np.zeros(3)], ks=1), ValueError,
          r"rewards must hold one pool per prompt like scores \(2\), got 1"),
-        (lambda: bon_at_k_per_prompt([np.zeros(3), np.zeros(2)], [np.zeros(3), np.zeros(2)], ks=3), ValueError,
+        (lambda: best_of_k_per_prompt([np.zeros(3), np.zeros(2)], [np.zeros(3), np.zeros(2)], ks=3), ValueError,
          r"ks must be <= n \(n=2\), got ks=3"),
-        (lambda: bon_at_k_per_prompt([np.zeros(3), np.array([])], [np.zeros(3), np.array([])], ks=1), ValueError,
+        (lambda: best_of_k_per_prompt([np.zeros(3), np.array([])], [np.zeros(3), np.array([])], ks=1), ValueError,
          r"scores\[1\] must not be empty"),
-        (lambda: bon_at_k_per_prompt(np.zeros((0, 3)), np.zeros((0, 3)), ks=1), ValueError, r"scores must not be empty"),
-        (lambda: bon_at_k_per_prompt(np.zeros((2, 3)), np.zeros((2, 3)), ks=[]), ValueError, r"ks must not be empty"),
-        (lambda: bootstrap_ci(np.zeros((3, 2)), confidence=1.0), ValueError, r"confidence must be in \(0, 1\)"),
-        (lambda: bootstrap_ci(np.zeros((3, 2)), n_boot=0), ValueError, r"n_boot must be >= 1"),
-        (lambda: bootstrap_ci(np.array([1.0, np.nan])), ValueError, r"values must be finite"),
-        (lambda: summarize(np.zeros((2, 3)), np.zeros((2, 3)), ks=[4]), ValueError, r"ks must be <= n \(n=3\), got ks=4"),
+        (lambda: best_of_k_per_prompt(np.zeros((0, 3)), np.zeros((0, 3)), ks=1), ValueError, r"scores must not be empty"),
+        (lambda: best_of_k_per_prompt(np.zeros((2, 3)), np.zeros((2, 3)), ks=[]), ValueError, r"ks must not be empty"),
     ],
 )
 def test_bad_input_names_the_argument(call, exc, match):
     with pytest.raises(exc, match=match):
         call()
-
-
-# ----------------------------------------------------------------------------- bootstrap
-
-
-def test_bootstrap_is_seedable_and_orders_bounds():
-    v = np.random.default_rng(0).normal(size=(50, 3))
-    a, b = bootstrap_ci(v, seed=7, n_boot=500), bootstrap_ci(v, seed=7, n_boot=500)
-    for x, y in zip(a, b):
-        np.testing.assert_array_equal(x, y)
-    c = bootstrap_ci(v, seed=8, n_boot=500)
-    assert not np.array_equal(a[1], c[1])
-    mean, lo, hi = a
-    np.testing.assert_allclose(mean, v.mean(0), rtol=1e-12)
-    assert (lo < mean).all() and (mean < hi).all()
-    # percentile interval width ~ 2 * 1.96 * sd / sqrt(P) for a mean (normal approximation, common practice)
-    want = 2 * 1.96 * v.std(0, ddof=1) / math.sqrt(50)
-    np.testing.assert_allclose(hi - lo, want, rtol=0.2)
-
-
-def test_bootstrap_covers_true_mean_at_nominal_rate():
-    # values ~ N(0.3, 1) per prompt, P = 80: a 90% interval should cover 0.3 in about 90% of repeats
-    repeats, hits = 300, 0
-    for rep in range(repeats):
-        v = np.random.default_rng(1000 + rep).normal(0.3, 1.0, size=80)
-        _, lo, hi = bootstrap_ci(v, confidence=0.9, n_boot=400, seed=rep)
-        hits += lo <= 0.3 <= hi
-    share = hits / repeats
-    # binomial sd of the share at 300 repeats is ~0.017; percentile intervals run slightly narrow at P=80
-    assert 0.84 <= share <= 0.95, f"coverage {share:.3f} ({hits}/{repeats}) for nominal 0.90"
-
-
-def test_bootstrap_single_prompt_and_constant_values():
-    mean, lo, hi = bootstrap_ci(np.full((1, 2), 0.25))
-    np.testing.assert_array_equal(mean, [0.25, 0.25])
-    np.testing.assert_array_equal(lo, mean)
-    np.testing.assert_array_equal(hi, mean)
-
-
-# ----------------------------------------------------------------------------- summary
-
-
-def test_default_ks():
-    assert default_ks(1) == [1]
-    assert default_ks(8) == [1, 2, 4, 8]
-    assert default_ks(12) == [1, 2, 4, 8, 12]
-    with pytest.raises(ValueError, match=r"n_min must be >= 1"):
-        default_ks(0)
-
-
-def test_summarize_binary_rewards_table_dict_and_plot(tmp_path):
-    rng = np.random.default_rng(3)
-    P, n = 40, 12
-    r = (rng.random((P, n)) < rng.random((P, 1))).astype(float)
-    s = r + rng.normal(0, 0.7, (P, n))  # an imperfect verifier
-    summ = summarize(s, r, n_boot=300, seed=1)
-    assert isinstance(summ, CurveSummary)
-    assert list(summ.ks) == [1, 2, 4, 8, 12] and summ.n_prompts == P and summ.n_min == n
-    c = r.sum(1).astype(int)
-    want = np.stack([[float(chen_pass_at_k(n, ci, k)) for k in summ.ks] for ci in c])  # Chen et al. 2021
-    np.testing.assert_allclose(summ.per_prompt_oracle, want, rtol=1e-10, atol=1e-12)
-    np.testing.assert_allclose(summ.oracle_mean, want.mean(0), rtol=1e-10)
-    assert (summ.oracle_mean >= summ.bon_mean - 1e-12).all()  # a verifier cannot beat the oracle
-    assert summ.bon_mean[0] == pytest.approx(r.mean(), abs=1e-12)
-    d = summ.to_dict()
-    back = json.loads(json.dumps(d))
-    assert back["ks"] == [1, 2, 4, 8, 12] and len(back["per_prompt_bon"]) == P
-    assert back["oracle_mean"] == pytest.approx(list(want.mean(0)), rel=1e-10)
-    text = summ.table()
-    assert f"prompts: {P}" in text and f"{summ.bon_mean[-1]:.4f}" in text and "95% CI" in text
-    out = plot_bon_curves({"": summ}, tmp_path / "c.png")
-    assert open(out, "rb").read(8) == b"\x89PNG\r\n\x1a\n"
-    plot_bon_curves({"T=0.6": summ, "T=1": summ}, tmp_path / "two.png")
-    assert (tmp_path / "two.png").stat().st_size > 1000
-    with pytest.raises(TypeError, match=r"curves\['x'\] must be a CurveSummary"):
-        plot_bon_curves({"x": 1}, tmp_path / "bad.png")
-
-
-def test_summarize_ragged_pools():
-    rng = np.random.default_rng(4)
-    ss = [rng.normal(size=m) for m in (5, 9, 5, 7)]
-    rr = [rng.integers(0, 2, size=m).astype(float) for m in (5, 9, 5, 7)]
-    summ = summarize(ss, rr, n_boot=100)
-    assert list(summ.ks) == [1, 2, 4, 5] and summ.n_min == 5
-    want = np.stack([[float(brute_bon(list(s), list(r), k)) for k in (1, 2, 4, 5)] for s, r in zip(ss, rr)])
-    np.testing.assert_allclose(summ.per_prompt_bon, want, rtol=1e-10, atol=1e-12)

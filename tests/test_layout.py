@@ -74,11 +74,11 @@ def test_packages_exist(package):
 
 # ---------------------------------------------------------------- one calling convention (issue 12, section 3)
 DATA_ARGS = {  # the positional (data) parameters of each public function; everything else is keyword-only
-    "bon": {"softmax_policy": ["logits"], "bon_distribution": ["probs", "scores"],
-            "log_bon_distribution": ["probs", "scores"], "bon_value": ["probs", "scores", "rewards"],
-            "bon_success": ["p"], "bon_kl": ["probs", "scores"]},
-    "estimate": {"bon_at_k": ["scores", "rewards"], "bon_at_k_per_prompt": ["scores", "rewards"],
-                 "oracle_at_k_per_prompt": ["rewards"], "pass_at_k": ["n", "c"], "bootstrap_ci": ["values"],
+    "bon": {"softmax_policy": ["logits"], "best_of_k_distribution": ["probs", "scores"],
+            "log_best_of_k_distribution": ["probs", "scores"], "best_of_k_value": ["probs", "scores", "rewards"],
+            "best_of_k_success": ["p"], "best_of_k_kl": ["probs", "scores"]},
+    "estimate": {"best_of_k": ["scores", "rewards"], "best_of_k_per_prompt": ["scores", "rewards"],
+                 "pass_at_k_per_prompt": ["rewards"], "pass_at_k": ["n", "c"], "bootstrap_ci": ["values"],
                  "summarize": ["scores", "rewards"], "default_ks": ["n_min"]},
     "credit": {"bon_rl_credit": ["scores", "rewards"], "pass_at_k_credit": ["correct"],
                "bon_sft_credit": ["scores", "expert_scores"], "reinforce_credit": ["rewards"],

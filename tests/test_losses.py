@@ -12,9 +12,9 @@ import pytest
 import torch
 from hypothesis import given, settings, strategies as st
 
-from bonft.bon import bon_value, log_bon_distribution, softmax_policy
+from bonft.bon import best_of_k_value, log_best_of_k_distribution, softmax_policy
 from bonft.objectives.credit import bon_rl_credit, bon_sft_credit
-from bonft.estimate import bon_at_k_per_prompt
+from bonft.estimate import best_of_k_per_prompt
 from bonft.objectives.losses import bon_rl_loss, bon_sft_loss, nll_loss, pass_at_k_loss, reinforce_loss
 
 TOL = 1e-10
@@ -58,7 +58,7 @@ def test_bon_rl_loss_gradient_is_minus_grad_vk(c):
     theta = rng.normal(size=V)
     s = torch.tensor(rng.integers(0, 3, size=V).astype(float))
     R = torch.tensor(rng.normal(size=V))
-    want = -exact_grad(lambda th: bon_value(softmax_policy(th), s, R, k=k), theta)
+    want = -exact_grad(lambda th: best_of_k_value(softmax_policy(th), s, R, k=k), theta)
     for baseline in ("loo", "none"):
         got = expected_loss_grad(theta, n, lambda lp, Y: bon_rl_loss(
             lp, s[Y], R[Y], k=k, baseline=baseline, reduction="none"))
@@ -94,7 +94,7 @@ def test_bon_sft_loss_gradient_matches_credit_and_bias_shrinks():
     theta = np.array([0.4, -0.1, 0.2, -0.5])
     s = torch.tensor([0.0, 1.0, 1.0, 2.0])
     y_star, k = 1, 3
-    exact = exact_grad(lambda th: log_bon_distribution(softmax_policy(th), s, k=k)[y_star], theta)
+    exact = exact_grad(lambda th: log_best_of_k_distribution(softmax_policy(th), s, k=k)[y_star], theta)
     errs = []
     for n in (3, 4, 5, 6):
         V = len(theta)
@@ -198,7 +198,7 @@ def test_reductions_and_info():
     assert info["zero_credit_frac"] == 0.5  # second prompt: all rewards equal -> no signal
     assert info["credit_mean"] == pytest.approx(float(w.mean()), abs=1e-15)
     # pool value against bonft.estimate's rank formula (Chow et al. 2024)
-    assert info["pool_value"] == pytest.approx(float(bon_at_k_per_prompt(s.numpy(), R.numpy(), ks=3).mean()), abs=1e-14)
+    assert info["pool_value"] == pytest.approx(float(best_of_k_per_prompt(s.numpy(), R.numpy(), ks=3).mean()), abs=1e-14)
     _, pinfo = pass_at_k_loss(lp, R > 0.5, k=2, return_info=True)
     c = (R > 0.5).sum(-1).numpy()
     # unbiased pass@k 1 - C(n-c,k)/C(n,k) (Chen et al. 2021) for n=5, k=2

@@ -137,13 +137,13 @@ def test_large_arrays_share_values_and_stay_exact():
 
 def test_banded_best_of_k_matches_exact_sums():
     # all k in 1..n on n = 300: the banded weighted sums against exact rational sums (fractions)
-    from bonft.estimate import bon_at_k_per_prompt
+    from bonft.estimate import best_of_k_per_prompt
 
     rng = np.random.default_rng(3)
     n = 300
     scores = rng.permutation(n)[None, :].astype(float)
     rewards = rng.integers(0, 5, (1, n)).astype(float)
-    got = bon_at_k_per_prompt(scores, rewards, ks=list(range(1, n + 1)))[0]
+    got = best_of_k_per_prompt(scores, rewards, ks=list(range(1, n + 1)))[0]
     r = rewards[0][np.argsort(scores[0])].astype(int)
     for k in (1, 2, 17, 150, 299, 300):
         want = Fraction(sum(math.comb(i, k - 1) * int(r[i]) for i in range(n)), math.comb(n, k))

@@ -7,9 +7,9 @@ grid and every k <= n it gives the best-of-k value
 
     V_k(T) = E[ reward of the sample with the highest verifier score among k draws at T ]
 
-(from sample pools: the unbiased U-statistic of :func:`bonft.estimate.bon_at_k_per_prompt`,
+(from sample pools: the unbiased U-statistic of :func:`bonft.estimate.best_of_k_per_prompt`,
 averaged over prompts, with a bootstrap CI over prompts; from a finite outcome
-set: the closed form of :func:`bonft.bon.bon_value`), then for each k the best
+set: the closed form of :func:`bonft.bon.best_of_k_value`), then for each k the best
 temperature and the temperatures not significantly worse, the best (T, k) pair
 for a budget of samples or of generated tokens per prompt, the gain of one more
 sample and of doubling N, and a fit of how the best temperature moves with k.
@@ -132,7 +132,7 @@ def plan_pools(
     pools: {temperature: Pools}; at temperature t, scores/rewards (P_t, n_t) -> value (T, K), K = max_k.
 
     V_k(T) = mean over prompts of the unbiased best-of-k U-statistic (all k-subsets
-    of each pool, ties shared; :func:`bonft.estimate.bon_at_k_per_prompt`).
+    of each pool, ties shared; :func:`bonft.estimate.best_of_k_per_prompt`).
     CIs: percentile bootstrap over prompts. When every temperature holds the same
     prompts the resampling is paired (one draw of prompts for all temperatures), so
     differences between temperatures are tested on the same prompts; otherwise each
@@ -147,7 +147,7 @@ def plan_pools(
 
     Reference: Chow et al. 2024 (best-of-N value), Chen et al. 2021 (unbiased estimators).
     """
-    from bonft.estimate import bon_at_k_per_prompt
+    from bonft.estimate import best_of_k_per_prompt
 
     if not isinstance(pools, Mapping):
         raise TypeError(f"pools must be a mapping {{temperature: Pools}}, got {type(pools).__name__}")
@@ -200,7 +200,7 @@ def plan_pools(
     ks = np.arange(1, max_k + 1)
     per_prompt = []  # T arrays of (P_t, K)
     for t, s, r in zip(temps, scores_l, rewards_l):
-        per_prompt.append(np.asarray(bon_at_k_per_prompt(s, r, ks=ks), dtype=np.float64))
+        per_prompt.append(np.asarray(best_of_k_per_prompt(s, r, ks=ks), dtype=np.float64))
 
     # paired when all temperatures hold the same prompt set: align rows by key
     paired = all(k.shape == keys_l[0].shape and set(k.tolist()) == set(keys_l[0].tolist()) for k in keys_l)
@@ -311,10 +311,10 @@ def plan_exact(
     scores, rewards: broadcast against (P, V). lengths: tokens per outcome, for token budgets.
     -> value (T, K), K = max_k, no CIs (exact).
 
-    V_k(T) = sum_v pi_bon,T(v) r_v, pi_bon from :func:`bonft.bon.bon_value` (ties broken
+    V_k(T) = sum_v pi_bon,T(v) r_v, pi_bon from :func:`bonft.bon.best_of_k_value` (ties broken
     uniformly among the tied top samples). Reference: Chow et al. 2024.
     """
-    from bonft.bon import bon_value, softmax_policy
+    from bonft.bon import best_of_k_value, softmax_policy
 
     temps = _check_temperatures(temperatures)
     if (logits is None) == (probs is None):
@@ -363,7 +363,7 @@ def plan_exact(
             z = z - z.max(axis=-1, keepdims=True)
             p_t = np.exp(z) / np.exp(z).sum(axis=-1, keepdims=True)
         for j, k in enumerate(ks):
-            value[i, j] = float(np.mean(bon_value(p_t, s_b, r_b, k=int(k))))
+            value[i, j] = float(np.mean(best_of_k_value(p_t, s_b, r_b, k=int(k))))
         if lens is not None:
             mean_tokens[i] = float(np.mean((p_t * lens).sum(-1)))
     return finish(

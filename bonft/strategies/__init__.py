@@ -62,7 +62,7 @@ _MAX_MULTISETS = 200_000  # weighted vote: count vectors enumerated
 
 def _policy(probs):
     """probs (..., V) -> (float64 tensor (L, V), leading shape, as_numpy)."""
-    p, as_np = _bon._check_probs(probs)
+    p, as_np = _bon.check_policy_probs(probs)
     return p, as_np
 
 
@@ -109,7 +109,7 @@ def vote_value(probs, answers, rewards, *, k):
     p, as_np = _policy(probs)
     V = p.shape[-1]
     codes = _answers_1d(answers, V)
-    R = _bon._check_per_outcome("rewards", rewards, p)
+    R = _bon.check_outcome_values("rewards", rewards, p)
     k = _check_k_exact(k)
     shape = torch.broadcast_shapes(p.shape, R.shape)
     pe, Re = p.expand(shape).reshape(-1, V), R.expand(shape).reshape(-1, V)
@@ -117,7 +117,7 @@ def vote_value(probs, answers, rewards, *, k):
     onehot[torch.arange(V), torch.as_tensor(codes)] = 1.0
     q, qr = pe @ onehot, (pe * Re) @ onehot  # (L, A) answer masses and reward masses
     out = policy_majority_value(q, qr, k).reshape(shape[:-1])
-    return _bon._out(out, as_np)
+    return _bon.returned_like(out, as_np)
 
 
 def _compositions(k: int, V: int) -> np.ndarray:
@@ -149,8 +149,8 @@ def weighted_vote_value(probs, answers, scores, rewards, *, k):
     p, as_np = _policy(probs)
     V = p.shape[-1]
     codes = _answers_1d(answers, V)
-    s = _bon._check_per_outcome("scores", scores, p)
-    R = _bon._check_per_outcome("rewards", rewards, p, s)
+    s = _bon.check_outcome_values("scores", scores, p)
+    R = _bon.check_outcome_values("rewards", rewards, p, s)
     k = check_int("k", k, min=1)
     N = math.comb(k + V - 1, V - 1)
     if N > _MAX_MULTISETS:
@@ -171,7 +171,7 @@ def weighted_vote_value(probs, answers, scores, rewards, *, k):
         wts = torch.as_tensor(weighted_vote_weights(cnt, codes, se[row]), device=p.device)  # (N, V)
         g = wts @ Re[row]  # (N,) served reward of each count vector
         out.append((prob * g).sum())
-    return _bon._out(torch.stack(out).reshape(shape[:-1]), as_np)
+    return _bon.returned_like(torch.stack(out).reshape(shape[:-1]), as_np)
 
 
 # ---------------------------------------------------------------------------- objects
@@ -256,7 +256,7 @@ def strategy_value(strategy, probs, *, k, rewards, scores=None, answers=None):
 
     .. math:: V_k = E_{y_1..y_k \sim \pi}\,[R(\mathrm{sel}(y_1..y_k))]
 
-    best-of-k: :func:`bonft.bon.bon_value`; pass: best-of-k with ``scores = rewards``;
+    best-of-k: :func:`bonft.bon.best_of_k_value`; pass: best-of-k with ``scores = rewards``;
     majority: :func:`vote_value`; weighted: :func:`weighted_vote_value`.
 
     References: Chow et al. 2024; Wang et al. 2023; Li et al. 2023; Chen et al. 2021.
@@ -267,9 +267,9 @@ def strategy_value(strategy, probs, *, k, rewards, scores=None, answers=None):
     if st.uses_answers and answers is None:
         raise ValueError(f"answers must be given for strategy {st.name!r}, got None")
     if st.name == "best-of-k":
-        return _bon.bon_value(probs, scores, rewards, k=k)
+        return _bon.best_of_k_value(probs, scores, rewards, k=k)
     if st.name == "pass":
-        return _bon.bon_value(probs, rewards, rewards, k=k)
+        return _bon.best_of_k_value(probs, rewards, rewards, k=k)
     if st.name == "majority":
         return vote_value(probs, answers, rewards, k=k)
     return weighted_vote_value(probs, answers, scores, rewards, k=k)

@@ -185,17 +185,17 @@ def report_from_pools(raw: dict, *, ks: Sequence[int], temperature: float, seed:
         if name == "exact":
             continue
         s = summarize(sc, rewards, ks=ks, confidence=confidence, n_boot=n_boot, seed=seed)
-        best[name] = _curve(s, "bon")
+        best[name] = _curve(s, "best_of_k")
     by_group = {}
     if groups is not None:
-        per = np.asarray(pass_sum.per_prompt_oracle)  # (P, K)
+        per = np.asarray(pass_sum.per_prompt_pass_at_k)  # (P, K)
         labels = np.asarray([str(g) for g in groups])
         for g in sorted(set(labels.tolist())):
             sel = labels == g
             by_group[g] = {"n_prompts": int(sel.sum()), "pass_at_k": [float(v) for v in per[sel].mean(0)]}
     return EvalReport(
         step=int(step), ks=ks, n_prompts=P, n_samples=n, temperature=float(temperature),
-        pass_at_k=_curve(pass_sum, "oracle"), best_of_k=best,
+        pass_at_k=_curve(pass_sum, "pass_at_k"), best_of_k=best,
         mean_reward=float(rewards.mean()), mean_length=float(n_tokens.mean()),
         distinct_answers=float(raw["distinct"].mean()), entropy=float(-raw["seq_logp"].mean()),
         verifier_failures=int(raw["failures"]), by_group=by_group,

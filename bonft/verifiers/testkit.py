@@ -190,8 +190,8 @@ def check_verifier(
 
     True rewards are the examples' rewards, else the rewards the verifier
     reports (e.g. :class:`~bonft.verifiers.NoisyProxy`); without either there
-    are no curves. The curve uses ``bonft.estimate.bon_at_k_per_prompt`` and
-    ``oracle_at_k_per_prompt`` (all k-subsets of each pool, exactly).
+    are no curves. The curve uses ``bonft.estimate.best_of_k_per_prompt`` and
+    ``pass_at_k_per_prompt`` (all k-subsets of each pool, exactly).
     """
     if not callable(verifier):
         raise TypeError(f"verifier must be callable as verifier(prompts, responses), got {type(verifier).__name__}")
@@ -282,12 +282,12 @@ def check_verifier(
 
     # 6) over-optimisation curve
     if true is not None:
-        from bonft.estimate import bon_at_k_per_prompt, default_ks, oracle_at_k_per_prompt
+        from bonft.estimate import best_of_k_per_prompt, default_ks, pass_at_k_per_prompt
 
         n_min = min(len(t) for t in true)
         kk = default_ks(n_min) if ks is None else list(ks)
-        bon = bon_at_k_per_prompt(scores, true, ks=kk).mean(axis=0)
-        orc = oracle_at_k_per_prompt(true, ks=kk).mean(axis=0)
+        bon = best_of_k_per_prompt(scores, true, ks=kk).mean(axis=0)
+        orc = pass_at_k_per_prompt(true, ks=kk).mean(axis=0)
         rep.ks, rep.bon, rep.oracle = [int(k) for k in kk], [float(x) for x in bon], [float(x) for x in orc]
 
     _problems(rep, max_failure_rate=max_failure_rate, min_auc=min_auc, bend_tol=bend_tol)

@@ -12,7 +12,7 @@ averaged. Two kinds of interval:
 ``pools``: ``{"rewards": (P, n) 0/1, "proxy": (P, n) verifier scores}`` of one policy.
 Per-prompt pass@k is the unbiased estimator of Chen et al. 2021; per-prompt
 best-of-k under the proxy is the U-statistic over all k-subsets with ties shared
-(:func:`bonft.estimate.bon_at_k_per_prompt`; Chow et al. 2024).
+(:func:`bonft.estimate.best_of_k_per_prompt`; Chow et al. 2024).
 """
 from __future__ import annotations
 
@@ -36,12 +36,12 @@ LABELS = {
 
 def per_prompt_curves(pools: Mapping[str, np.ndarray], ks: Sequence[int]) -> dict[str, np.ndarray]:
     """pools -> ``{"pass": (P, K), "proxy": (P, K)}``: per-prompt pass@k and proxy best-of-k at each k."""
-    from bonft.estimate import bon_at_k_per_prompt, oracle_at_k_per_prompt
+    from bonft.estimate import best_of_k_per_prompt, pass_at_k_per_prompt
 
     rewards = np.asarray(pools["rewards"], dtype=float)
-    out = {"pass": np.asarray(oracle_at_k_per_prompt(rewards, ks=list(ks)), dtype=float)}
+    out = {"pass": np.asarray(pass_at_k_per_prompt(rewards, ks=list(ks)), dtype=float)}
     if "proxy" in pools:
-        out["proxy"] = np.asarray(bon_at_k_per_prompt(np.asarray(pools["proxy"], dtype=float), rewards, ks=list(ks)), dtype=float)
+        out["proxy"] = np.asarray(best_of_k_per_prompt(np.asarray(pools["proxy"], dtype=float), rewards, ks=list(ks)), dtype=float)
     return out
 
 
