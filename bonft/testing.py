@@ -8,6 +8,8 @@ property tests of your own verifier; and :mod:`bonft.verifiers.probes`:
 (can they be passed without solving the task?), and its :class:`CodeTestsReport`.
 For objectives: :func:`check_objective` (:mod:`bonft.objcheck`), its :class:`ObjectiveReport` and
 :class:`ToyPolicy`: is your credit an unbiased gradient of the target it claims?
+For a hand-written loop: :func:`check_on_policy` (:mod:`bonft.generation.on_policy`) and its
+:class:`OnPolicyReport`: do the log-probs your loss sees describe the policy that sampled?
 """
 from bonft.verifiers.testkit import (  # noqa: F401
     VerifierReport,
@@ -21,13 +23,17 @@ from bonft.verifiers.testkit import (  # noqa: F401
 from bonft.verifiers.probes import PROBES, CodeTestsReport, probe_code_tests  # noqa: F401
 
 __all__ = ["check_objective", "ObjectiveReport", "ToyPolicy", "check_verifier", "read_examples", "VerifierReport", "roc_auc", "prompts", "responses", "sample_pools",
-           "probe_code_tests", "CodeTestsReport", "PROBES"]
+           "probe_code_tests", "CodeTestsReport", "PROBES", "check_on_policy", "OnPolicyReport"]
 
 
 def __getattr__(name: str):
-    """check_objective, ObjectiveReport, ToyPolicy load torch: import them on first use (PEP 562)."""
+    """check_objective, ObjectiveReport, ToyPolicy, check_on_policy, OnPolicyReport load torch: import them on first use (PEP 562)."""
     if name in ("check_objective", "ObjectiveReport", "ToyPolicy"):
         from bonft import objcheck
 
         return getattr(objcheck, name)
+    if name in ("check_on_policy", "OnPolicyReport"):
+        from bonft.generation import on_policy
+
+        return getattr(on_policy, name)
     raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
