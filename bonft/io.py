@@ -11,7 +11,10 @@ Written by ``bonft sample``, read by ``bonft estimate`` and ``bonft plan``::
   majority and weighted vote count (``bonft.strategies``); surface forms of one answer share it;
   null (no answer could be extracted) votes alone: it gets a key of its own,
 - ``temperature`` (number, optional), ``n_tokens`` (int, optional), ``response`` (str, optional;
-  never read back here, so files with long responses load as fast as short ones).
+  never read back here, so files with long responses load as fast as short ones),
+- ``sample`` (int or str, optional): the sample's index in its prompt's pool; with it, identical
+  samples are told apart and only a repeated (prompt, temperature, sample) counts as a repeated row,
+- ``prompt`` (str, optional): the prompt text, to join rows back to the data (not read here).
 
 Field names can be renamed on reading (``score_field="rm_score"`` ...). Blank
 lines are skipped. A malformed line (bad JSON, nested too deeply, not UTF-8)
@@ -140,22 +143,28 @@ class DuplicateRowsWarning(UserWarning):
     """A samples file repeats some rows exactly."""
 
 
-def _check_duplicates(name: str, lines: list[str], numbers, mode: str) -> None:
-    """Warn or raise when a non-blank line repeats an earlier one exactly (after trimming spaces)."""
-    keys = [t.strip() for t in lines]
+def _check_duplicates(name: str, lines: list[str], numbers, mode: str, indexed: list | None = None) -> None:
+    """Warn or raise when a non-blank line repeats an earlier one exactly (after trimming spaces), or, when rows
+    carry a sample index (``indexed``: one (prompt, temperature, sample) key per row), repeats its key."""
+    keys = [t.strip() for t in lines] if indexed is None else indexed
     extra = len(keys) - len(set(keys))
     if not extra:
         return
-    first: dict[str, int] = {}
+    first: dict = {}
     for key, no in zip(keys, numbers):
         if key in first:
             pair = f"line {no} repeats line {first[key]}"
             break
         first[key] = no
-    msg = (f"{name}: {extra} of {len(keys)} rows repeat an earlier row exactly ({pair}); a file concatenated with "
-           f"itself doubles its pools. If they are distinct samples that happen to be identical (common for "
-           f"rows without a response or a sample index), allow them "
-           f"(duplicates='allow', --allow-duplicates on the command line)")
+    if indexed is not None:
+        msg = (f"{name}: {extra} of {len(keys)} rows repeat the prompt, temperature and sample index of an earlier "
+               f"row ({pair}); a file concatenated with itself doubles its pools. Renumber the sample field, or "
+               f"allow them (duplicates='allow', --allow-duplicates on the command line)")
+    else:
+        msg = (f"{name}: {extra} of {len(keys)} rows repeat an earlier row exactly ({pair}); a file concatenated "
+               f"with itself doubles its pools. If they are distinct samples that happen to be identical (common "
+               f"for rows without a response or a sample index), give each row a sample index (field 'sample') "
+               f"or allow them (duplicates='allow', --allow-duplicates on the command line)")
     if mode == "error":
         raise ValueError(msg)
     warnings.warn(msg, DuplicateRowsWarning, stacklevel=3)
@@ -171,6 +180,7 @@ def read_samples(
     tokens_field: str = "n_tokens",
     duplicates: str = "warn",
     answer_field: str = "answer",
+    sample_field: str = "sample",
 ) -> SampleTable:
     """Load a samples JSONL file into columns.
 
@@ -185,10 +195,13 @@ def read_samples(
     :class:`DuplicateRowsWarning` with their count), ``"error"`` (``ValueError``)
     or ``"allow"`` (distinct samples that happen to be identical, e.g. short
     answers in a file without a sample index; ``bonft sample`` writes one).
+    When every row carries ``sample_field`` (the sample's index in its pool),
+    identical samples with different indices are not repeats: only a row
+    repeating the (prompt, temperature, sample index) of an earlier row is.
     """
     for opt, v in (("prompt_field", prompt_field), ("score_field", score_field), ("reward_field", reward_field),
                    ("temperature_field", temperature_field), ("tokens_field", tokens_field),
-                   ("answer_field", answer_field)):
+                   ("answer_field", answer_field), ("sample_field", sample_field)):
         if not isinstance(v, str) or not v:
             raise TypeError(f"{opt} must be a non-empty str, got {v!r}")
     if duplicates not in DUPLICATES:
@@ -235,8 +248,16 @@ def read_samples(
             raise ValueError(f"{name} line {numbers[bad[0]]}: field {answer_field!r} must be a string, an integer or "
                              f"null, got {answers[bad[0]]!r}")
         answers = np.array([str(v) if v is not None else f"\x00none{no}" for v, no in zip(answers, numbers)], dtype=str)
+    index = _column(name, rows, numbers, sample_field, "sample_field", required=False)
+    if index is not None:
+        bad = [i for i, v in enumerate(index) if isinstance(v, bool) or type(v) not in (str, int)]
+        if bad:
+            raise ValueError(f"{name} line {numbers[bad[0]]}: field {sample_field!r} must be an integer or a string "
+                             f"(the sample's index in its pool), got {index[bad[0]]!r}")
+        at = temps if temps is not None else [None] * len(index)
+        index = [(str(p), None if t is None else float(t), str(v)) for p, t, v in zip(prompt_keys, at, index)]
     if duplicates != "allow":  # after the checks of every field: a malformed file errors first
-        _check_duplicates(name, lines, numbers, duplicates)
+        _check_duplicates(name, lines, numbers, duplicates, index)
     return SampleTable(prompt_keys=prompt_keys, scores=scores, rewards=rewards, temperatures=temps, n_tokens=toks,
                        answers=answers)
 

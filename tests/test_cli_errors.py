@@ -113,9 +113,9 @@ def test_pool_files(files):
 
 
 def test_too_many_bootstrap_replicates(files):
-    expect_error(["estimate", "--example", "--boot", "100000000000"],
-                 r"--boot must be between 1 and 1,000,000 bootstrap replicates, got 100,000,000,000")
-    expect_error(["plan", "--samples", files / "zero_tokens.jsonl", "--boot", "100000000000"], r"--boot must be between 1")
+    expect_error(["estimate", "--example", "--n-boot", "100000000000"],
+                 r"--n-boot must be between 1 and 1,000,000 bootstrap replicates, got 100,000,000,000")
+    expect_error(["plan", "--samples", files / "zero_tokens.jsonl", "--n-boot", "100000000000"], r"--n-boot must be between 1")
     expect_error(["train", files / "recipe.toml", "--set", "n_boot=100000000000"], r"n_boot must be <= 1000000, got n_boot=100000000000")
 
 
@@ -136,8 +136,9 @@ def test_repeated_rows_warn_with_their_count_and_the_flag_silences_it(files):
     assert code == 0 and "Traceback" not in err
     assert err.strip() == ("bonft estimate: warning: twice.jsonl: 4 of 8 rows repeat an earlier row exactly (line 5 repeats "
                            "line 1); a file concatenated with itself doubles its pools. If they are distinct samples that "
-                           "happen to be identical (common for rows without a response or a sample index), allow them "
-                           "(duplicates='allow', --allow-duplicates on the command line)")
+                           "happen to be identical (common for rows without a response or a sample index), give each "
+                           "row a sample index (field 'sample') or allow them (duplicates='allow', --allow-duplicates on "
+                           "the command line)")
     code, out, err = bonft("estimate", files / "twice.jsonl", "--allow-duplicates")
     assert code == 0 and err == ""
 
@@ -166,7 +167,7 @@ def test_recipes(files):
 def test_context_too_short_is_refused_before_any_work(files, tmp_path):
     for arch in ("gpt2", "llama"):
         out = tmp_path / arch
-        expect_error(["train", files / "recipe.toml", "--set", "max_positions=4", "--set", f"arch={arch}", "--out", out],
+        expect_error(["train", files / "recipe.toml", "--set", "max_positions=4", "--set", f"arch={arch}", "--output", out],
                      r"max_positions must fit the longest prompt plus max_new_tokens: prompt '.*' takes \d+ tokens "
                      r"\+ max_new_tokens=4 = \d+ > 4 positions of the model; raise max_positions")
         assert not (out / "checkpoints").exists() and not (out / "metrics.jsonl").exists()
@@ -176,8 +177,8 @@ def test_malformed_prompts_files(files, tmp_path, trained):
     for name, pattern in (("prompts.jsonl", r"prompts.jsonl line 2: not valid JSON \(Expecting ',' delimiter"),
                           ("prompts8.jsonl", r"prompts8.jsonl line 2: not UTF-8 text \(byte 0xe9 at column \d+\)")):
         expect_error(["train", files / "recipe.toml", "--set", "task=jsonl", "--set", f"prompts_file={files / name}",
-                      "--out", tmp_path / name], pattern)
-        expect_error(["plan", "--model", trained, "--prompts", files / name, "--n", "2"], pattern)
+                      "--output", tmp_path / name], pattern)
+        expect_error(["plan", "--model", trained, "--prompts-file", files / name, "--n", "2"], pattern)
 
 
 def test_model_directory_without_its_tokenizer(model_without_tokenizer, trained, tmp_path):
@@ -204,7 +205,7 @@ def test_damaged_newest_checkpoint_falls_back_with_one_warning(trained, tmp_path
     assert [r["sample"] for r in rows] == [0, 1, 0, 1]  # a sample index: identical answers are not repeated rows
     all_bad = damaged_copy(trained, tmp_path / "all_bad", which=("step-00000001", "step-00000002"))
     for cmd in (["eval", all_bad, "--n", "2", "--ks", "1"], ["sample", all_bad, "-o", tmp_path / "t.jsonl"], ["plan", "--model", all_bad, "--task", "ledger"],
-                ["train", all_bad / "config.toml", "--resume", "--out", all_bad]):
+                ["train", all_bad / "config.toml", "--resume", "--output", all_bad]):
         expect_error(cmd, r"no good checkpoint in \S+checkpoints: checkpoint \S+step-00000002 is damaged: .*; "
                           r"checkpoint \S+step-00000001 is damaged: model/model.safetensors has 10 bytes")
 
@@ -227,14 +228,14 @@ def test_resume_refuses_a_crafted_state_pickle(trained, tmp_path):
     data = (ckpt / "state.pt").read_bytes()
     man["files"]["state.pt"] = {"bytes": len(data), "sha256": hashlib.sha256(data).hexdigest()}
     (ckpt / "manifest.json").write_text(json.dumps(man))
-    expect_error(["train", run / "config.toml", "--resume", "--out", run],
+    expect_error(["train", run / "config.toml", "--resume", "--output", run],
                  r"refusing \S+state.pt: it holds objects other than tensors and plain values")
     assert not (tmp_path / "pwned").exists()
 
 
 # ----------------------------------------------------------------------------- a real process
 def test_console_entry_point_closed_pipe_and_errors(files):
-    cmd = f"{sys.executable} -m bonft.cli estimate --example --boot 20 | head -3"
+    cmd = f"{sys.executable} -m bonft.cli estimate --example --n-boot 20 | head -3"
     res = subprocess.run(["bash", "-o", "pipefail", "-c", cmd], capture_output=True, text=True, timeout=120)
     assert "Traceback" not in res.stderr and "BrokenPipeError" not in res.stderr, res.stderr
     assert len(res.stdout.splitlines()) == 3 and res.stdout.startswith("samples: ")

@@ -16,8 +16,8 @@ def chen_pass_at_k(n, c, k):
 
 
 def test_example_prints_table_and_writes_json_and_png(tmp_path, capsys):
-    out_json, out_png = tmp_path / "curves.json", tmp_path / "curves.png"
-    rc = main(["estimate", "--example", "--boot", "300", "--json", str(out_json), "--plot", str(out_png)])
+    out_json, out_png = tmp_path / "curves.json", tmp_path / "plots" / "estimate_curves.png"
+    rc = main(["estimate", "--example", "--n-boot", "300", "--json", str(out_json), "--plot-dir", str(tmp_path / "plots")])
     text = capsys.readouterr().out
     assert rc == 0
     assert "temperature 0.6" in text and "temperature 1" in text
@@ -55,7 +55,7 @@ def test_single_temperature_file_with_renamed_fields_and_k(tmp_path, capsys):
             rows.append({"q": f"q{q}", "rm": (i * 7 + q) % 5 / 4, "ok": int(i % 2 == 0)})
     p.write_text("".join(json.dumps(r) + "\n" for r in rows))
     rc = main(["estimate", str(p), "--prompt-field", "q", "--score-field", "rm", "--reward-field", "ok",
-               "--ks", "1,5", "--boot", "50", "--confidence", "0.8", "--json", str(tmp_path / "o.json")])
+               "--ks", "1,5", "--n-boot", "50", "--confidence", "0.8", "--json", str(tmp_path / "o.json")])
     text = capsys.readouterr().out
     assert rc == 0 and "\ntemperature " not in text  # no temperature column: one block, no header
     assert "80% CI" in text and "prompts: 6   smallest pool: 5" in text
@@ -72,7 +72,7 @@ def test_single_temperature_file_with_renamed_fields_and_k(tmp_path, capsys):
         (["estimate", "--example", "--ks", "1,two"], r"--ks must be comma-separated integers like 1,2,4, got '1,two'"),
         (["estimate", "--example", "--ks", "0,2"], r"--ks must be >= 1, got 0"),
         (["estimate", "--example", "--confidence", "1.5"], r"confidence must be in \(0, 1\), got confidence=1.5"),
-        (["estimate", "--example", "--boot", "0"], r"--boot must be between 1 and 1,000,000 bootstrap replicates, got 0"),
+        (["estimate", "--example", "--n-boot", "0"], r"--n-boot must be between 1 and 1,000,000 bootstrap replicates, got 0"),
         (["estimate", "--example", "x.jsonl"], r"give either POOLS or --example, got both"),
         (["estimate"], r"POOLS must be a pool file \(JSONL of scored samples\) \(or pass --example\)"),
         (["estimate", "nope.jsonl"], r"POOLS file not found: nope.jsonl"),

@@ -46,7 +46,7 @@ def raw_ends(path):
 def test_plan_command_on_samples_file(samples_file, tmp_path, capsys):
     out_json, plots = tmp_path / "plan.json", tmp_path / "plots"
     rc = main(["plan", "--samples", str(samples_file), "--budget-samples", "4", "--budget-tokens", "600",
-               "--boot", "300", "--json", str(out_json), "--plot-dir", str(plots)])
+               "--n-boot", "300", "--json", str(out_json), "--plot-dir", str(plots)])
     text = capsys.readouterr().out
     assert rc == 0, text
     assert "T=0.5" in text and "T=1.2" in text and "budget 4 samples/prompt" in text and "budget 600 tokens/prompt" in text
@@ -110,7 +110,7 @@ def test_plan_command_model_mode_reuses_cache(tmp_path, monkeypatch, capsys):
 
     monkeypatch.setattr(bonft.generation.sampling, "sample", counting)
     common = ["plan", "--model", str(tmp_path / "ckpt"), "--task", "ledger", "--n-prompts", "5", "--n", "3",
-              "--max-new-tokens", "4", "--boot", "100", "--cache", str(tmp_path / "cache"), "--quiet"]
+              "--max-new-tokens", "4", "--n-boot", "100", "--cache", str(tmp_path / "cache"), "--quiet"]
     assert main(common + ["--temperatures", "0.7,1.0", "--json", str(tmp_path / "a.json")]) == 0
     assert sorted(set(calls)) == [0.7, 1.0]
     calls.clear()
@@ -121,3 +121,26 @@ def test_plan_command_model_mode_reuses_cache(tmp_path, monkeypatch, capsys):
     assert b["sampling"]["cached"] == [0.7, 1.0] and b["sampling"]["sampled"] == [1.3]
     np.testing.assert_array_equal(np.asarray(a["value"]), np.asarray(b["value"])[:2])  # same pools reused
     assert "reused T=[0.7, 1.0]" in capsys.readouterr().out
+
+
+def test_plan_model_mode_takes_the_first_n_prompts_of_a_prompts_file(tmp_path, capsys):
+    from bonft.tasks import build_tokenizer
+    from bonft.trainer.models import build_tiny_model, save_model
+
+    tok = build_tokenizer()
+    model = build_tiny_model(vocab_size=len(tok), layers=1, width=32, heads=2, pad_token_id=tok.pad_token_id,
+                             eos_token_id=tok.eos_token_id, bos_token_id=tok.bos_token_id, seed=1)
+    save_model(model, tok, tmp_path / "ckpt")
+    prompts = tmp_path / "prompts.jsonl"
+    prompts.write_text("".join(json.dumps({"prompt": f"add {i} and {i}", "answer": str(2 * i)}) + "\n"
+                               for i in range(9)))
+    argv = ["plan", "--model", str(tmp_path / "ckpt"), "--prompts-file", str(prompts), "--n", "3",
+            "--max-new-tokens", "2", "--n-boot", "50", "--temperatures", "1.0", "--quiet"]
+    assert main(argv + ["--n-prompts", "4", "--json", str(tmp_path / "p.json")]) == 0
+    out = capsys.readouterr().out
+    assert "model mode, 4 prompts" in out  # 4 of the file's 9 prompts were sampled, the table says where from
+    assert json.loads((tmp_path / "p.json").read_text())["mode"] == "model"
+    assert main(argv + ["--n-prompts", "10"]) == 2
+    assert "--n-prompts must be <= the 9 prompts of" in capsys.readouterr().err
+    assert main(["plan", "--samples", str(prompts), "--n-prompts", "4"]) == 2
+    assert "--n-prompts applies to --model only" in capsys.readouterr().err

@@ -58,7 +58,7 @@ def test_answer_field_is_read_and_grouped(tmp_path):
 def test_estimate_strategies_side_by_side(tmp_path, capsys):
     out = tmp_path / "o.json"
     rc = main(["estimate", str(_write(tmp_path / "p.jsonl")), "--strategy", "majority,best-of-k",
-               "--ks", "1,2,3,5", "--boot", "50", "--json", str(out)])
+               "--ks", "1,2,3,5", "--n-boot", "50", "--json", str(out)])
     assert rc == 0
     assert "majority" in capsys.readouterr().out
     d = json.loads(out.read_text())["blocks"][0]["strategies"]
@@ -76,7 +76,7 @@ def _args(f, strategy):
 
     p = argparse.ArgumentParser()
     estimate.add_arguments(p)
-    return p.parse_args([str(f), "--strategy", strategy, "--boot", "50"])
+    return p.parse_args([str(f), "--strategy", strategy, "--n-boot", "50"])
 
 
 def test_strategy_needs_answers_and_known_names(tmp_path):
@@ -92,7 +92,7 @@ def test_strategy_needs_answers_and_known_names(tmp_path):
 def test_plan_strategies_picks_best(tmp_path, capsys):
     out = tmp_path / "plan.json"
     rc = main(["plan", "--samples", str(_write(tmp_path / "p.jsonl")), "--strategy", "majority,best-of-k",
-               "--max-k", "5", "--boot", "50", "--budget-samples", "3", "--json", str(out)])
+               "--max-k", "5", "--n-boot", "50", "--budget-samples", "3", "--json", str(out)])
     assert rc == 0
     rows = json.loads(out.read_text())["best_by_k"]
     for row in rows:

@@ -1,4 +1,5 @@
 """Commands train / eval / sample end to end, and every recipe's objective runs a few tiny steps."""
+import json
 from pathlib import Path
 
 import pytest
@@ -19,7 +20,7 @@ def _set(items):
 @pytest.mark.parametrize("recipe", RECIPES, ids=[p.stem for p in RECIPES])
 def test_every_recipe_runs_tiny(recipe, tmp_path, capsys):
     extra = ["anchor_weight=0.05"] if recipe.stem == "pass_at_k" else []  # the KL-to-start path too
-    rc = main(["train", str(recipe), "--out", str(tmp_path / "r"), "--quiet", *_set(SHRINK + extra)])
+    rc = main(["train", str(recipe), "--output", str(tmp_path / "r"), "--quiet", *_set(SHRINK + extra)])
     assert rc == 0
     assert (tmp_path / "r" / "checkpoints" / "step-00000004" / "model").is_dir()
     assert "run directory" in capsys.readouterr().out
@@ -31,16 +32,28 @@ def test_every_recipe_runs_tiny(recipe, tmp_path, capsys):
 
 def test_eval_and_sample_commands(tmp_path, capsys):
     run = tmp_path / "run"
-    assert main(["train", str(RECIPES[0]), "--out", str(run), "--quiet", *_set(SHRINK)]) == 0
+    assert main(["train", str(RECIPES[0]), "--output", str(run), "--quiet", *_set(SHRINK)]) == 0
     capsys.readouterr()
-    assert main(["eval", str(run), "--n", "8", "--ks", "1,2,8", "--json", str(tmp_path / "e.json")]) == 0
+    assert main(["eval", str(run), "--n", "8", "--ks", "1,2,8", "--json", str(tmp_path / "e.json"),
+                 "--plot-dir", str(tmp_path / "plots")]) == 0
     out = capsys.readouterr().out
     assert "pass@k" in out and "best-of-k proxy" in out and (tmp_path / "e.json").is_file()
+    assert (tmp_path / "plots" / "eval_curves.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
     samples = tmp_path / "s.jsonl"
-    assert main(["sample", str(run), "--n", "4", "--temperature", "0.7,1.0", "-o", str(samples)]) == 0
+    assert main(["sample", str(run), "--n", "4", "--temperatures", "0.7,1.0", "--n-prompts", "3", "-o", str(samples)]) == 0
     table = read_samples(samples)  # the file bonft estimate / bonft plan read
-    assert len(table.scores) == 4 * 4 * 2 and sorted(set(table.temperatures.tolist())) == [0.7, 1.0]
+    assert len(table.scores) == 3 * 4 * 2 and sorted(set(table.temperatures.tolist())) == [0.7, 1.0]
+    # each row carries its prompt's text: the first 3 held-out prompts of the run's split, one text per prompt_id
+    from bonft.tasks import get_task
+    from bonft.trainer.config import load_config
+
+    cfg = load_config(RECIPES[0], SHRINK)
+    _, held = get_task(cfg.task, **cfg.task_params).split(n_train=cfg.train_prompts, n_eval=cfg.heldout_prompts,
+                                                          seed=cfg.seed)
+    rows = [json.loads(line) for line in samples.read_text().splitlines()]
+    assert {(r["prompt_id"], r["prompt"]) for r in rows} == {(b, held[b].prompt) for b in range(3)}
     assert main(["estimate", str(samples)]) == 0
+    assert "repeat" not in capsys.readouterr().err  # identical short responses carry distinct sample indices
 
 
 @pytest.mark.parametrize(
@@ -53,7 +66,7 @@ def test_eval_and_sample_commands(tmp_path, capsys):
     ],
 )
 def test_bad_recipe_values_exit_2(argv, message, tmp_path, capsys):
-    assert main(["train", str(RECIPES[0]), "--out", str(tmp_path / "x"), "--quiet", *argv]) == 2
+    assert main(["train", str(RECIPES[0]), "--output", str(tmp_path / "x"), "--quiet", *argv]) == 2
     assert message in capsys.readouterr().err
 
 

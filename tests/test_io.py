@@ -177,3 +177,36 @@ def test_bundled_example_is_reproducible_and_well_formed():
     assert len(keys) == 200 and {len(x) for x in s} == {16}
     assert set(np.unique(t.rewards)) <= {0.0, 1.0}
     assert os.path.getsize(path) < 700_000
+
+
+def test_identical_samples_with_a_sample_index_are_not_repeated_rows(tmp_path):
+    import warnings
+
+    from bonft.io import DuplicateRowsWarning
+
+    # four identical short answers of one prompt: distinct samples, told apart by their index in the pool
+    rows = [json.dumps({"prompt_id": "a", "sample": i, "score": 0.5, "reward": 1, "response": "7"}) for i in range(4)]
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        assert len(read_samples(write_lines(tmp_path / "indexed.jsonl", rows))) == 4
+    # the same rows under another field name: sample_field names it
+    renamed = [r.replace('"sample"', '"draw"') for r in rows]
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        assert len(read_samples(write_lines(tmp_path / "draw.jsonl", renamed), sample_field="draw")) == 4
+    # without an index they are exact repeats (3 of 4 rows)
+    bare = [json.dumps({"prompt_id": "a", "score": 0.5, "reward": 1, "response": "7"})] * 4
+    with pytest.warns(DuplicateRowsWarning, match=r"3 of 4 rows repeat an earlier row exactly \(line 2 repeats line 1\)"):
+        read_samples(write_lines(tmp_path / "bare.jsonl", bare))
+    # a file concatenated with itself repeats (prompt, temperature, sample) even when a score was rewritten
+    twice = rows + [rows[0].replace('"score": 0.5', '"score": 0.25')]
+    with pytest.warns(DuplicateRowsWarning, match=r"1 of 5 rows repeat the prompt, temperature and sample index of "
+                                                   r"an earlier row \(line 5 repeats line 1\)"):
+        read_samples(write_lines(tmp_path / "twice.jsonl", twice))
+    # the same index at another temperature is another sample
+    other_t = [r.replace('"reward"', '"temperature": %s, "reward"' % t) for t in ("0.7", "1.0") for r in rows]
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        assert len(read_samples(write_lines(tmp_path / "temps.jsonl", other_t))) == 8
+    with pytest.raises(ValueError, match=r"line 1: field 'sample' must be an integer or a string .* got 0.5"):
+        read_samples(write_lines(tmp_path / "bad.jsonl", [rows[0].replace('"sample": 0', '"sample": 0.5')]))

@@ -51,11 +51,18 @@ def write_json_atomic(path: str, obj) -> None:
         raise
 
 
-def write_curve_outputs(args, path: str, blocks: list, curves: dict, plot) -> None:
-    """``--json`` (every block of the table) and ``--plot`` (``plot(curves, out, title=)``) of a curves command."""
+def write_curve_outputs(args, path: str, blocks: list, curves: dict, plot, png: str) -> None:
+    """``--json`` (every block of the table) and ``--plot-dir`` (``plot(curves, DIR/png, title=)``) of a curves command."""
     if args.json:
         write_json_atomic(args.json, {"samples": os.path.abspath(path), "blocks": blocks})
         print(f"wrote {args.json}")
-    if args.plot:
-        plot(curves, args.plot, title=os.path.basename(path))
-        print(f"wrote {args.plot}")
+    if args.plot_dir:
+        os.makedirs(args.plot_dir, exist_ok=True)
+        out = os.path.join(args.plot_dir, png)
+        plot(curves, out, title=os.path.basename(path))
+        print(f"wrote {out}")
+
+
+def add_plot_dir(p, files: str) -> None:
+    """``--plot-dir DIR``: the command's PNG files are written into DIR under fixed names (``files``)."""
+    p.add_argument("--plot-dir", metavar="DIR", default=None, help=f"write {files} into this directory")

@@ -54,7 +54,7 @@ def _curves(table, t, names, ks, args):
         raise ValueError(f"--ks must be in [1, n] with n = {n_min} (the smallest pool), got {ks}")
     use = ks if ks is not None else default_ks(n_min)
     return compare_strategies(names, ks=use, rewards=r, scores=s, answers=a, confidence=args.confidence,
-                              n_boot=args.boot, seed=args.seed,
+                              n_boot=args.n_boot, seed=args.seed,
                               max_subsets=args.max_subsets if args.max_subsets is not None else MAX_SUBSETS)
 
 
@@ -76,7 +76,7 @@ def run_estimate(args, table, path: str, temps: list, ks) -> int:
           "best: the strategy with the highest mean at that k.")
     from bonft.viz import plot_strategy_curves
 
-    write_curve_outputs(args, path, blocks, curves, plot_strategy_curves)
+    write_curve_outputs(args, path, blocks, curves, plot_strategy_curves, "estimate_strategies.png")
     return 0
 
 

@@ -25,7 +25,8 @@ def add_arguments(p) -> None:
     p.add_argument("--seed", type=int, default=0, help="seed of the random policies and the transformer (default 0)")
     p.add_argument("--tolerance", type=float, default=1e-6, help="relative bias that still passes (default 1e-6)")
     p.add_argument("--skip-transformer", action="store_true", help="only the categorical policies (no transformers import)")
-    p.add_argument("--plot", metavar="PATH.png", default=None, help="write estimated vs exact gradient components here")
+    p.add_argument("--plot-dir", metavar="DIR", default=None,
+                   help="write objective_check.png (estimated vs exact gradient components) into this directory")
     p.add_argument("--json", metavar="PATH.json", default=None, help="write the report as JSON here")
 
 
@@ -40,8 +41,11 @@ def run(args) -> int:
                              outcomes=args.outcomes, seed=args.seed, tolerance=args.tolerance,
                              transformer=not args.skip_transformer)
     print(report)
-    if args.plot:
-        print(f"plot: {report.plot(args.plot)}")
+    if args.plot_dir:
+        import os
+
+        os.makedirs(args.plot_dir, exist_ok=True)
+        print(f"plot: {report.plot(os.path.join(args.plot_dir, 'objective_check.png'))}")
     if args.json:
         write_json_atomic(args.json, report.to_dict())
         print(f"json: {args.json}")

@@ -16,9 +16,9 @@ def add_arguments(p) -> None:
     p.add_argument("--examples", required=True, metavar="FILE.jsonl", help="example samples, one JSON object per line")
     p.add_argument("--repeats", type=int, default=2, help="times each sample is scored (default 2)")
     p.add_argument("--threshold", type=float, default=0.5, help="score at or above which a sample counts as accepted")
-    p.add_argument("--timeout", type=float, default=None, help="seconds allowed per verifier call")
+    p.add_argument("--wall-time", type=float, default=None, help="seconds allowed per verifier call (default: no limit)")
     p.add_argument("--max-failure-rate", type=float, default=0.0, help="failure rate that still passes (default 0)")
-    p.add_argument("--plot", metavar="PATH.png", default=None, help="write the best-of-k vs oracle plot here")
+    p.add_argument("--plot-dir", metavar="DIR", default=None, help="write verifier_check.png (best-of-k vs pass@k) into this directory")
     p.add_argument("--json", metavar="PATH.json", default=None, help="write the report as JSON here")
 
 
@@ -41,10 +41,11 @@ def run(args) -> int:
                          f"(byte {raw[e.start]:#04x}); save the file as UTF-8") from None
     verifier = load_verifier(args.verifier)
     report = check_verifier(verifier, read_examples(args.examples), repeats=args.repeats, threshold=args.threshold,
-                            timeout=args.timeout, max_failure_rate=args.max_failure_rate)
+                            timeout=args.wall_time, max_failure_rate=args.max_failure_rate)
     print(report)
-    if args.plot:
-        print(f"plot: {report.plot(args.plot)}")
+    if args.plot_dir:
+        os.makedirs(args.plot_dir, exist_ok=True)
+        print(f"plot: {report.plot(os.path.join(args.plot_dir, 'verifier_check.png'))}")
     if args.json:
         tmp = args.json + ".tmp"
         with open(tmp, "w", encoding="utf-8") as f:

@@ -10,13 +10,13 @@ DESCRIPTION = (
     "same warm start with the same budget, and compare pass@k and proxy-selected best-of-k "
     "(k = 1, 4, 16, 32) on held-out prompts: means with 95%% bootstrap intervals over prompts and paired "
     "differences from the warm start and from REINFORCE; also each run's gradient signal-to-noise and "
-    "the planner's best temperature per k. A rerun reuses finished stages in --out. --study repeats it "
+    "the planner's best temperature per k. A rerun reuses finished stages in --output. --study repeats it "
     "over 5 seeds with best-of-k under the proxy verifier and k annealing too (slow: about an hour)."
 )
 
 
 def add_arguments(p: argparse.ArgumentParser) -> None:
-    p.add_argument("--out", default="runs/demo", help="output directory (default: runs/demo)")
+    p.add_argument("--output", default="runs/demo", metavar="DIR", help="output directory (default: runs/demo)")
     p.add_argument("--seed", type=int, default=0, help="seed of model init, data split and sampling (default: 0)")
     p.add_argument("--set", dest="overrides", action="append", default=[], metavar="KEY=VALUE",
                    help="override a demo knob, e.g. --set rl_steps=300 (see bonft.trainer.demo.DemoConfig)")
@@ -30,7 +30,7 @@ def _demo_config(args):
     from bonft.trainer.config import _convert, _parse_scalar
     from bonft.trainer.demo import DemoConfig
 
-    dc = DemoConfig(run_dir=args.out, seed=args.seed)
+    dc = DemoConfig(run_dir=args.output, seed=args.seed)
     fields = {f.name: f for f in dataclasses.fields(DemoConfig)}
     for item in args.overrides:
         if "=" not in item:

@@ -4,7 +4,7 @@ from __future__ import annotations
 import argparse
 import os
 from bonft.cli._strategies import add_strategy_arguments, run_estimate as _run_strategies
-from bonft.cli._args import add_duplicates_flag, check_boot, parse_list, write_curve_outputs
+from bonft.cli._args import add_duplicates_flag, add_plot_dir, check_boot, parse_list, write_curve_outputs
 
 HELP = "best-of-k (verifier picks) and oracle pass@k with bootstrap CIs from a pool file (JSONL of scored samples)"
 DESCRIPTION = (
@@ -23,14 +23,17 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--reward-field", default="reward", help="field holding the true reward (default: reward)")
     p.add_argument("--temperature-field", default="temperature",
                    help="field holding the sampling temperature, optional in the file (default: temperature)")
+    p.add_argument("--sample-field", default="sample",
+                   help="field holding each sample's index in its pool, optional; with it identical samples are not "
+                        "counted as repeated rows (default: sample)")
     p.add_argument("--ks", default=None, help="comma-separated k values (default: 1,2,4,... up to the smallest pool)")
     p.add_argument("--confidence", type=float, default=0.95, help="confidence level of the intervals (default: 0.95)")
-    p.add_argument("--boot", type=int, default=2000, help="bootstrap replicates (default: 2000)")
+    p.add_argument("--n-boot", type=int, default=2000, help="bootstrap replicates (default: 2000)")
     p.add_argument("--seed", type=int, default=0, help="bootstrap seed (default: 0)")
     add_duplicates_flag(p)
     add_strategy_arguments(p)
     p.add_argument("--json", metavar="OUT.json", default=None, help="also write the curves as JSON")
-    p.add_argument("--plot", metavar="OUT.png", default=None, help="also write a PNG of the curves")
+    add_plot_dir(p, "estimate_curves.png (estimate_strategies.png with --strategy)")
 
 
 def run(args) -> int:
@@ -47,7 +50,7 @@ def run(args) -> int:
     if not os.path.isfile(path):
         raise FileNotFoundError(f"POOLS file not found: {path}")
     ks = parse_list("--ks", args.ks)
-    check_boot("--boot", args.boot)
+    check_boot("--n-boot", args.n_boot)
     if args.seed < 0:
         raise ValueError(f"--seed must be >= 0, got {args.seed}")
     table = read_samples(
@@ -58,6 +61,7 @@ def run(args) -> int:
         temperature_field=args.temperature_field,
         duplicates="allow" if args.allow_duplicates else "warn",
         answer_field=args.answer_field,
+        sample_field=args.sample_field,
     )
     temps = temperatures_of(table)
     print(f"samples: {path} ({len(table)} rows)")
@@ -72,7 +76,7 @@ def run(args) -> int:
         if ks is not None and min(ks) < 1:
             raise ValueError(f"--ks must be >= 1, got {min(ks)}")
         summ = summarize(s, r, ks=ks if ks is not None else default_ks(n_min),
-                         confidence=args.confidence, n_boot=args.boot, seed=args.seed)
+                         confidence=args.confidence, n_boot=args.n_boot, seed=args.seed)
         label = "" if t is None else f"T={t:g}"
         print()
         if t is not None:
@@ -84,6 +88,6 @@ def run(args) -> int:
         blocks.append({"temperature": t if t is not None else (temps[0] if temps else None), **summ.to_dict()})
     print()
     print("best-of-k: reward of the sample the verifier scores highest among k (ties split evenly); "
-          "oracle: best true reward among k (pass@k for 0/1 rewards); gap = oracle - best-of-k.")
-    write_curve_outputs(args, path, blocks, curves, plot_bon_curves)
+          "pass@k: best true reward among k (the chance one of k is correct for 0/1 rewards); gap = pass@k - best-of-k.")
+    write_curve_outputs(args, path, blocks, curves, plot_bon_curves, "estimate_curves.png")
     return 0

@@ -17,7 +17,7 @@ DESCRIPTION = (
 def add_common(p: argparse.ArgumentParser) -> None:
     p.add_argument("checkpoint", help="checkpoint directory (CKPT/model, CKPT/tokenizer) or run directory")
     p.add_argument("--n", type=int, default=64, help="samples per prompt (default: 64)")
-    p.add_argument("--prompts", type=int, default=0, help="use the first this many held-out prompts (default: all)")
+    p.add_argument("--n-prompts", type=int, default=0, help="use the first this many held-out prompts (default: all)")
     p.add_argument("--seed", type=int, default=0, help="sampling seed (default: 0)")
     p.add_argument("--set", dest="overrides", action="append", default=[], metavar="KEY=VALUE",
                    help="override a key of the checkpoint's config, e.g. --set heldout_prompts=500 (repeatable)")
@@ -28,7 +28,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--ks", default="1,4,16,32", help="comma-separated k values, each <= --n (default: 1,4,16,32)")
     p.add_argument("--temperature", type=float, default=1.0, help="sampling temperature (default: 1.0)")
     p.add_argument("--json", metavar="OUT.json", default=None, help="also write the report as JSON")
-    p.add_argument("--plot", metavar="OUT.png", default=None, help="also write a PNG of the curves")
+    p.add_argument("--plot-dir", metavar="DIR", default=None, help="also write eval_curves.png into this directory")
 
 
 def load_for_eval(args: argparse.Namespace, *, n: int, ks: list[int], temperature: float):
@@ -42,7 +42,7 @@ def load_for_eval(args: argparse.Namespace, *, n: int, ks: list[int], temperatur
     base = {key: v for key, v in base.items() if key not in MODEL_KEYS}  # the model is the checkpoint's
     values = apply_overrides(base, list(args.overrides))
     values.update(start_from=str(ckpt), eval_samples=n, eval_ks=ks, eval_temperature=temperature,
-                  eval_prompts=args.prompts, seed=values.get("seed", FIELDS["seed"].default))
+                  eval_prompts=args.n_prompts, seed=values.get("seed", FIELDS["seed"].default))
     cfg = from_dict(values)
     return ckpt, cfg, build_run(cfg)
 
@@ -75,10 +75,11 @@ def run(args: argparse.Namespace) -> int:
     print(f"{ckpt}\n{rep.table()}")
     if args.json:
         Path(args.json).write_text(json.dumps({"checkpoint": str(ckpt), **rep.to_dict()}, indent=1))
-    if args.plot:
+    if args.plot_dir:
         from bonft.viz import plot_evaluations
 
-        plot_evaluations([rep.to_dict()], args.plot, title=str(ckpt))
+        Path(args.plot_dir).mkdir(parents=True, exist_ok=True)
+        print(f"wrote {plot_evaluations([rep.to_dict()], Path(args.plot_dir) / 'eval_curves.png', title=str(ckpt))}")
     return 0
 
 

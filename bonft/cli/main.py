@@ -33,6 +33,7 @@ def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="bonft",
         description="Measure, plan and fine-tune for best-of-N sampling and pass@k.",
+        allow_abbrev=False,
     )
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
     for name, module in COMMANDS.items():
@@ -42,7 +43,8 @@ def build_parser() -> argparse.ArgumentParser:
             if e.name != f"bonft.cli.{module}":
                 raise
             continue
-        p = sub.add_parser(name, help=mod.HELP, description=getattr(mod, "DESCRIPTION", mod.HELP))
+        # allow_abbrev=False: an option is spelled out, so a retired spelling is an error, never a prefix
+        p = sub.add_parser(name, help=mod.HELP, description=getattr(mod, "DESCRIPTION", mod.HELP), allow_abbrev=False)
         mod.add_arguments(p)
         p.set_defaults(_run=mod.run)
     return parser
@@ -60,7 +62,7 @@ def _user_errors() -> tuple[type, ...]:
 
 def _message(e: BaseException) -> str:
     if isinstance(e, MemoryError):
-        return f"out of memory ({e or 'allocation failed'}); lower --boot, --n or the batch sizes"
+        return f"out of memory ({e or 'allocation failed'}); lower --n-boot, --n or the batch sizes"
     if isinstance(e, RecursionError):
         return "input nested too deeply to read (a JSON line or value nested thousands of levels)"
     if isinstance(e, OSError) and e.filename is not None and e.strerror:

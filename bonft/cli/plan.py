@@ -14,7 +14,7 @@ DESCRIPTION = (
     "Reports the best temperature at each k and those not significantly worse, the best (T, k) for a "
     "budget of samples or generated tokens per prompt, the gain of doubling N, and a fit of how the best "
     "temperature moves with k (a fit of this data, not a law). Input: --samples FILE.jsonl (with a "
-    "temperature column), or --model DIR with --task/--prompts and --verifier (sampled and cached), "
+    "temperature column), or --model DIR with --task/--prompts-file and --verifier (sampled and cached), "
     "or --exact FILE.json (a finite outcome set: logits or probs, scores, rewards)."
 )
 
@@ -28,8 +28,10 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
                      help='finite outcome set: {"logits" or "probs", "scores", "rewards", optional "lengths", "temperatures"}')
     m = p.add_argument_group("model mode")
     m.add_argument("--task", default=None, help="built-in task whose held-out prompts to use (e.g. ledger, restock)")
-    m.add_argument("--prompts", metavar="FILE.jsonl", help="your prompts: JSONL with a 'prompt' (and 'answer') field")
-    m.add_argument("--n-prompts", type=int, default=100, help="held-out prompts drawn from --task (default: 100)")
+    m.add_argument("--prompts-file", metavar="FILE.jsonl", help="your prompts: JSONL with a 'prompt' (and 'answer') field")
+    m.add_argument("--n-prompts", type=int, default=None,
+                   help="prompts to sample: held-out prompts drawn from --task (default: 100), or the first this many "
+                        "of --prompts-file (default: all)")
     m.add_argument("--verifier", default="exact",
                    help="exact, proxy (built-in task's imperfect verifier) or module:function (default: exact)")
     m.add_argument("--n", type=int, default=64, help="samples per prompt at each temperature (default: 64)")
@@ -45,6 +47,8 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     f.add_argument("--reward-field", default="reward", help="default: reward")
     f.add_argument("--temperature-field", default="temperature", help="default: temperature")
     f.add_argument("--tokens-field", default="n_tokens", help="response length field, for --budget-tokens (default: n_tokens)")
+    f.add_argument("--sample-field", default="sample",
+                   help="sample index field, optional; identical samples with distinct indices are not repeats (default: sample)")
     add_duplicates_flag(f)
     p.add_argument("--temperatures", default=None,
                    help=f"comma-separated grid (default: all in the file; model mode {DEFAULT_TEMPERATURES})")
@@ -53,7 +57,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--budget-tokens", default=None, help="generated tokens per prompt, comma-separated budgets")
     p.add_argument("--min-gain", type=float, default=0.0, help="doubling N pays while its gain is significantly above this")
     p.add_argument("--confidence", type=float, default=0.95, help="confidence level (default: 0.95)")
-    p.add_argument("--boot", type=int, default=2000, help="bootstrap resamples (default: 2000)")
+    p.add_argument("--n-boot", type=int, default=2000, help="bootstrap replicates (default: 2000)")
     p.add_argument("--seed", type=int, default=0, help="bootstrap and sampling seed (default: 0)")
     p.add_argument("--json", metavar="OUT.json", default=None, help="write the full result as JSON")
     p.add_argument("--plot-dir", metavar="DIR", default=None, help="write plan_heatmap.png and plan_curves.png here")
@@ -63,23 +67,34 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 def _prompts_and_verifier(args):
     """(prompt strings, verifier, verifier name for the cache key) for model mode."""
+    from bonft._core.checks import check_int
     from bonft.tasks import exact_match_verifier, get_task, load_prompts_jsonl
 
-    if (args.task is None) == (args.prompts is None):
-        raise ValueError("model mode needs exactly one of --task NAME or --prompts FILE.jsonl, got "
+    if (args.task is None) == (args.prompts_file is None):
+        raise ValueError("model mode needs exactly one of --task NAME or --prompts-file FILE.jsonl, got "
                          + ("both" if args.task else "neither"))
-    if args.prompts is not None:
-        examples, task = load_prompts_jsonl(args.prompts), None
+    if args.n_prompts is not None:
+        check_int("--n-prompts", args.n_prompts, min=1)
+    if args.prompts_file is not None:
+        examples, task = load_prompts_jsonl(args.prompts_file), None
+        if args.n_prompts is not None:
+            if args.n_prompts > len(examples):
+                raise ValueError(f"--n-prompts must be <= the {len(examples)} prompts of {args.prompts_file}, "
+                                 f"got {args.n_prompts}")
+            examples = examples[: args.n_prompts]
     else:
-        task = get_task(args.task)
-        _, examples = task.split(n_train=0, n_eval=args.n_prompts, seed=args.seed)
+        from bonft._core.checks import check_choice
+        from bonft.tasks import TASKS
+
+        task = get_task(check_choice("--task", args.task, tuple(TASKS)))
+        _, examples = task.split(n_train=0, n_eval=100 if args.n_prompts is None else args.n_prompts, seed=args.seed)
     prompts = [e.prompt for e in examples]
     v = args.verifier
     if v == "exact":
         if task is not None:
             return prompts, task.verifier(examples), f"task:{args.task}:exact"
         if any(e.answer is None for e in examples):
-            raise ValueError("--verifier exact needs an 'answer' field in --prompts; give --verifier module:function")
+            raise ValueError("--verifier exact needs an 'answer' field in --prompts-file; give --verifier module:function")
         return prompts, exact_match_verifier(examples), "prompts:exact"
     if v == "proxy":
         proxy = None if task is None else task.proxy_verifier(examples)
@@ -122,9 +137,14 @@ def run(args) -> int:
         raise ValueError(f"give exactly one of --samples, --model or --exact, got {len(given)}"
                          + (f" ({', '.join('--' + g for g in given)})" if given else ""))
     temps = parse_list("--temperatures", args.temperatures, float)
+    if not args.model:
+        for flag in ("task", "prompts_file", "n_prompts"):
+            if getattr(args, flag) is not None:
+                raise ValueError(f"--{flag.replace('_', '-')} applies to --model only (the prompts to sample), "
+                                 f"got it with --{given[0]}")
     if args.strategy and args.model:
         raise ValueError("--strategy needs --samples FILE.jsonl or --exact FILE.json, got --model")
-    check_boot("--boot", args.boot)
+    check_boot("--n-boot", args.n_boot)
     info = None
     if args.samples:
         from bonft.io import read_samples
@@ -134,14 +154,14 @@ def run(args) -> int:
         table = read_samples(args.samples, prompt_field=args.prompt_field, score_field=args.score_field,
                              reward_field=args.reward_field, temperature_field=args.temperature_field,
                              tokens_field=args.tokens_field, duplicates="allow" if args.allow_duplicates else "warn",
-                             answer_field=args.answer_field)
+                             answer_field=args.answer_field, sample_field=args.sample_field)
         if args.strategy:
             print(f"samples: {args.samples} ({len(table)} rows)")
             return _run_strategies(args, table, temps)
         if args.budget_tokens is not None:
             _check_lengths(args, table)
         print(f"samples: {args.samples} ({len(table)} rows)")
-        res = plan_samples(table, temperatures=temps, confidence=args.confidence, n_boot=args.boot, seed=args.seed,
+        res = plan_samples(table, temperatures=temps, confidence=args.confidence, n_boot=args.n_boot, seed=args.seed,
                            **_plan_kwargs(args))
     elif args.exact:
         if not os.path.isfile(args.exact):
@@ -181,7 +201,7 @@ def run(args) -> int:
         res, info = plan_model(model, tokenizer, prompts, verifier, temperatures=temps, n=args.n, seed=args.seed,
                                top_p=args.top_p, max_new_tokens=args.max_new_tokens, batch_size=args.batch_size,
                                cache_dir=args.cache, verifier_name=vname, progress=not args.quiet,
-                               confidence=args.confidence, n_boot=args.boot, **_plan_kwargs(args))
+                               confidence=args.confidence, n_boot=args.n_boot, **_plan_kwargs(args))
         if args.cache:
             print(f"cache {args.cache}: sampled T={info['sampled']}, reused T={info['cached']}")
     print(res.table())

@@ -9,15 +9,17 @@ from bonft.cli.evaluate import add_common, announce, load_for_eval
 HELP = "sample responses from a checkpoint and write a samples JSONL (input of bonft estimate / bonft plan)"
 DESCRIPTION = (
     "Draw --n responses per held-out prompt at one or more temperatures, score each with a verifier "
-    "(score) and the exact checker (reward), and write one JSON line per response: prompt_id, score, "
-    "reward, temperature, response, n_tokens, answer (the task's extracted answer, for --strategy majority/weighted), and sample (its index in the prompt's pool, so that identical "
+    "(score) and the exact checker (reward), and write one JSON line per response: prompt_id (the prompt's "
+    "position among the run's held-out prompts), prompt (its text, to join rows back to your data), score, "
+    "reward, temperature, response, n_tokens, answer (the task's extracted answer, for --strategy "
+    "majority_vote/weighted_vote), and sample (its index in the prompt's pool, so that identical "
     "responses are not mistaken for repeated rows). Feed the file to `bonft estimate` or `bonft plan`."
 )
 
 
 def add_arguments(p: argparse.ArgumentParser) -> None:
     add_common(p)
-    p.add_argument("--temperature", default="1.0", help="sampling temperature, or a comma-separated list (default: 1.0)")
+    p.add_argument("--temperatures", default="1.0", metavar="T1,T2", help="comma-separated sampling temperatures (default: 1.0)")
     p.add_argument("--verifier", default="auto",
                    help="which verifier fills 'score': exact, proxy or a name of the run's verifiers (default: proxy if the task has one, else exact)")
     p.add_argument("-o", "--output", required=True, help="samples JSONL to write (written atomically)")
@@ -32,7 +34,7 @@ def run(args: argparse.Namespace) -> int:
     from bonft.trainer.loop import step_seed
 
     n = check_int("--n", args.n, min=1)
-    temps = [check_positive("--temperature", t) for t in parse_list("--temperature", args.temperature, float)]
+    temps = [check_positive("--temperatures", t) for t in parse_list("--temperatures", args.temperatures, float)]
     torch.set_num_threads(1)  # tiny models: one thread is fastest
     ckpt, cfg, r = load_for_eval(args, n=n, ks=[1], temperature=temps[0])
     names = [k for k in r.verifiers if k != "train"]
@@ -52,7 +54,7 @@ def run(args: argparse.Namespace) -> int:
         extract = getattr(r.task, "extract_answer", None)
         for b in range(len(held)):
             for i in range(n):
-                rows.append({"prompt_id": b, "sample": i, "score": float(scores[b, i]), "reward": float(raw["rewards"][b, i]),
+                rows.append({"prompt_id": b, "prompt": held[b].prompt, "sample": i, "score": float(scores[b, i]), "reward": float(raw["rewards"][b, i]),
                              "temperature": t, "response": raw["texts"][b][i], "n_tokens": int(raw["n_tokens"][b, i]),
                              **({"answer": extract(raw["texts"][b][i])} if extract is not None else {})})
         print(f"T={t:g}: pass@1 {rep.mean_reward:.3f}, {rep.distinct_answers:.1f} distinct answers/prompt")

@@ -16,7 +16,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("recipe", help="TOML recipe (see recipes/)")
     p.add_argument("--set", dest="overrides", action="append", default=[], metavar="KEY=VALUE",
                    help="override a recipe key, e.g. --set lr=1e-4 --set task_params.hard_share=0.3 (repeatable)")
-    p.add_argument("--out", default=None, help="run directory (overrides run_dir)")
+    p.add_argument("--output", default=None, metavar="DIR", help="run directory (overrides run_dir)")
     p.add_argument("--resume", action="store_true", help="continue from the newest checkpoint in the run directory")
     p.add_argument("--quiet", action="store_true", help="no progress bar or tables")
 
@@ -25,7 +25,7 @@ def run(args: argparse.Namespace) -> int:
     from bonft.trainer.config import load_config
     from bonft.trainer.loop import train
 
-    overrides = list(args.overrides) + ([f"run_dir={args.out}"] if args.out else [])
+    overrides = list(args.overrides) + ([f"run_dir={args.output}"] if args.output else [])
     cfg = load_config(args.recipe, overrides)
     try:
         summary = train(cfg, resume=args.resume, progress=not args.quiet)

@@ -197,6 +197,7 @@ def plan_model(
                                top_p=top_p, max_new_tokens=max_new_tokens, batch_size=batch_size,
                                cache_dir=cache_dir, verifier_name=verifier_name, progress=progress)
     res = plan_samples(table, temperatures=temperatures, seed=seed, **plan_kwargs)
+    res.mode = "model"  # pools drawn here, not read from a samples file
     if info["no_rewards"]:
         res.notes.append("the verifier reported no true rewards: values are of its scores")
     if info["failed"]:

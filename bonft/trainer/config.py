@@ -40,6 +40,7 @@ else:  # pragma: no cover - Python 3.10
 
 from bonft._core.checks import check_choice, check_fraction, check_int, check_positive, check_real
 
+from bonft.tasks import TASKS
 from bonft.trainer.objectives import OBJECTIVES  # the registry: objective name -> credit function + options
 
 K_SCHEDULES = ("constant", "linear", "geometric")
@@ -175,6 +176,7 @@ def validate(c: TrainConfig) -> None:
                       DeprecatedKeyWarning, stacklevel=3)
         c.objective = new
     check_choice("objective", c.objective, tuple(OBJECTIVES))
+    check_choice("task", c.task, tuple(TASKS))
     check_choice("optimizer", c.optimizer, OPTIMIZERS)
     check_fraction("momentum", c.momentum, open_high=True)
     if c.momentum and c.optimizer != "sgd":
