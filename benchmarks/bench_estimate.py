@@ -1,6 +1,6 @@
 """Speed of the estimators and of loading a large samples file, as ratios against baselines in this process.
 
-Goals (issue 11, section 3), interleaved repetitions, medians:
+Goals, interleaved repetitions, medians:
 - best_of_k_per_prompt for every k in 1..1024 on 1000 x 1024 pools <= 2x one np.sort of the (P, n)
   array, or shown why the floor is higher. The rows printed beside it are that floor: every exact
   estimator needs the rewards in score order (an argsort and a gather, already 3-4x an np.sort on

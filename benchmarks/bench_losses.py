@@ -4,7 +4,7 @@
    prompts, n = 64 samples, T = 32 tokens, a ragged bool mask: every bonft
    loss against the five lines a user would otherwise write (the baseline,
    :func:`hand_written_loo`, below). Interleaved repetitions, medians.
-   Goal (issue 11): every loss <= 2x the baseline.
+   Goal: every loss <= 2x the baseline.
 2. Share of a full training step (forward, backward and AdamW step of a tiny
    GPT-2 built from a config, on the B*n responses) taken by computing the
    credit. Goal: < 2%. Sampling the responses is not included; it would only

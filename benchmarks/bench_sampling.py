@@ -3,7 +3,7 @@
 What a user would otherwise call: ``model.generate(..., do_sample=True, top_k=0, top_p=1.0,
 num_return_sequences=n)`` with left padding. Both run under ``torch.no_grad`` (generate does so
 itself), with EOS off and the same number of new tokens, one thread, interleaved repetitions,
-medians. Goals (issue 11): bonft's ``sample`` >= 1.5x generate's samples/s on every shape, and
+medians. Goals: bonft's ``sample`` >= 1.5x generate's samples/s on every shape, and
 peak memory <= generate's for 1 prompt x n = 1024 x 32 tokens on the 6 x 384 model (each method
 measured in a fresh process: peak RSS growth over the loaded model).
 
@@ -155,7 +155,7 @@ def main() -> None:
     ap.add_argument("--reps", type=int, default=3)
     ap.add_argument("--skip-memory", action="store_true")
     ap.add_argument("--arch", default="gpt2", choices=("gpt2", "llama"),
-                    help="model family of the speed rows (issue 11's goals are stated on gpt2)")
+                    help="model family of the speed rows (the goals are stated on gpt2)")
     ap.add_argument("--memory-child", default=None, help=argparse.SUPPRESS)
     args = ap.parse_args()
     if args.memory_child:

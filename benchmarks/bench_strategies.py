@@ -3,9 +3,9 @@
 1. Estimators for every k <= n: 1000 prompts x 256 samples, up to 64 distinct answers per prompt
    (Zipf-like answer frequencies, our own simulation): ``vote_at_k_per_prompt`` (exact count DP)
    against ``best_of_k_per_prompt`` (sorted-pool closed form) on the same pools.
-   Goal (issue 16): seconds on one core.
+   Goal: seconds on one core.
 2. Credit for B = 256 prompts, n = 64 samples, k = 8: ``vote_credit`` against ``bon_rl_credit``.
-   Goal (issue 16): within 2x the best-of-k credit. For information, ``weighted_vote_credit``
+   Goal: within 2x the best-of-k credit. For information, ``weighted_vote_credit``
    (sampled k-subsets, ``MAX_SUBSETS`` per pool) on the same pools.
 
 Run: python benchmarks/bench_strategies.py [--quick]

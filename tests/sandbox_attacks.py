@@ -1,6 +1,6 @@
-"""Candidates that try to forge a ``pass`` or to leave files behind (issue 13).
+"""Candidates that try to forge a ``pass`` or to leave files behind.
 
-Used by tests/test_sandbox_integrity.py and for the before/after table in
+Used by tests/test_sandbox_integrity.py and for the attack table in
 docs/verifiers.md. Each entry is ``name -> (solution, tests)``; every solution
 except ``correct`` and ``audit_hook_off_writes_tmp_shm`` is wrong (``add`` does
 not add), so any ``pass`` among them is a forged verdict; the latter is judged

@@ -62,7 +62,7 @@ def test_check_real_one_policy_for_every_real_argument():
 
 
 def test_verifier_kit_arguments_follow_the_exception_policy():
-    # issue 12: a NaN threshold is a wrong value (ValueError), a str pool size a wrong type (TypeError)
+    # the exception policy: a NaN threshold is a wrong value (ValueError), a str pool size a wrong type (TypeError)
     from bonft.testing import check_verifier
 
     ex = [{"prompt": "p", "responses": ["a", "b"], "labels": [True, False]}]

@@ -1,4 +1,4 @@
-"""Every user error of the command line ends in one clear line on stderr, never a Python traceback (issue 14).
+"""Every user error of the command line ends in one clear line on stderr, never a Python traceback.
 
 Each case runs ``bonft`` the way the console script does (``main(argv)``); an exception escaping
 ``main`` is printed as the interpreter would print it, so "Traceback" in stderr means a raw

@@ -288,7 +288,7 @@ def test_training_mode_is_restored():
 
 
 def test_sampling_builds_no_graph_with_grad_enabled():
-    # issue 11: with autograd on, the returned log-probs must carry no graph (a graph would keep every
+    # with autograd on, the returned log-probs must carry no graph (a graph would keep every
     # decoding step's KV cache alive); training log-probs come from sequence_logprobs instead.
     model = _tiny("gpt2")
     assert torch.is_grad_enabled()

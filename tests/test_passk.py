@@ -16,7 +16,7 @@ from bonft._core.passk import log_miss, pass_at_k_counts
 from bonft._core.ustat import count_tables, rank_weights
 from bonft.estimate import pass_at_k
 
-REL = 1e-12  # issue 14: ~1e-12 relative for any n in int64
+REL = 1e-12  # the stated accuracy: ~1e-12 relative for any n in int64
 
 
 def exact_pass(n, c, k):
@@ -74,8 +74,8 @@ def test_both_large_against_math_comb():
     assert np.max(np.abs(got - want) / np.where(want > 0, want, 1.0)) < REL
 
 
-def test_issue_cases_and_limits():
-    # 10^15 and 10^18 samples, one correct, k = n/10: exactly 1/10 (issue 14)
+def test_huge_pools_and_limits():
+    # 10^15 and 10^18 samples, one correct, k = n/10: exactly 1/10 (C(n-1, k) / C(n, k) = (n-k)/n, by hand)
     assert pass_at_k(10**15, 1, k=10**14) == pytest.approx(0.1, rel=1e-15)
     assert pass_at_k(10**18, 1, k=10**17) == pytest.approx(0.1, rel=1e-15)
     assert pass_at_k(2**63 - 1, 1, k=1) == pytest.approx(1 / (2**63 - 1), rel=1e-15)

@@ -376,7 +376,7 @@ def test_table_without_temperatures_is_refused(tmp_path):
 
 
 def test_too_few_prompts_print_no_interval():
-    # issue 14: a bootstrap over 4 prompts is no confidence interval; the table says n/a instead of a
+    # a bootstrap over 4 prompts is no confidence interval; the table says n/a instead of a
     # zero-width or misleading band, and 12 prompts print the band again
     rng = np.random.default_rng(0)
     few = plan_pools({0.7: Pools(rng.normal(size=(4, 8)), rng.random((4, 8))),

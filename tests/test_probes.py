@@ -1,4 +1,4 @@
-"""The probe kit finds weak unit tests and leaves strong ones alone (issue 13, section 3).
+"""The probe kit finds weak unit tests and leaves strong ones alone.
 
 Which probe should pass which test follows from the test text alone (worked
 out by hand below, beside each case): a test that checks one literal input is

@@ -1,4 +1,4 @@
-"""Issue 13: a verdict the candidate cannot forge, and an OS layer that holds without the Python one.
+"""A verdict the candidate cannot forge, and an OS layer that holds without the Python one.
 
 Every solution in tests/sandbox_attacks.py except ``correct`` is wrong, so a
 ``pass`` among them would be a forged verdict. Expected behaviour of the OS

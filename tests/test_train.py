@@ -175,8 +175,8 @@ def test_prompt_sharding_keeps_the_global_batch(tmp_path):
 
 @pytest.mark.parametrize("poison", ["loss", "gradient"])
 def test_non_finite_step_stops_before_the_update_and_keeps_good_checkpoints(tmp_path, monkeypatch, poison):
-    # the bug this guards against: the check used to run after optimizer.step(), so the weights
-    # updated by the bad step were saved under the previous step's label and a resume applied it twice
+    # the finite check runs before optimizer.step(): a bad step is never applied, and every checkpoint
+    # holds the weights of the step its label names (a resume cannot apply a step twice)
     ref = tiny(tmp_path, "ref", rl_steps=0, warm_start_steps=6, save_every=1, keep_checkpoints=10)
     T.train(ref, progress=False)
     at = lambda out, s: load_file(str(Path(out) / "checkpoints" / f"step-{s:08d}" / "model" / "model.safetensors"))

@@ -60,7 +60,7 @@ def test_entropy_estimate_is_mean_negative_logprob(setup):
 
 
 def test_report_table_prints_no_interval_below_ten_prompts():
-    # issue 14: intervals over fewer than MIN_BOOT_PROMPTS prompts print n/a, with the count
+    # intervals over fewer than MIN_BOOT_PROMPTS prompts print n/a, with the count
     from bonft.trainer.evaluation import EvalReport
 
     curve = {"mean": [0.5, 0.75], "lo": [0.5, 0.75], "hi": [0.5, 0.75]}
