@@ -14,7 +14,8 @@ def python_blocks(text):
 
 
 def test_doc_example_runs_and_updates_the_model():
-    blocks = python_blocks(DOC.read_text().split("## Writing your own objective")[0])  # that one: test_objcheck.py
+    text = DOC.read_text().split("## Writing your own objective")[0]  # that one: test_objcheck.py
+    blocks = python_blocks(text.split("## Is my loop on-policy?")[0])  # that one: test_on_policy.py
     assert len(blocks) == 1, f"expected one python example, found {len(blocks)}"
     ns = {}
     out = io.StringIO()

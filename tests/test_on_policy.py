@@ -246,3 +246,26 @@ def test_bad_model_and_unmodelled_generation_settings(flat):
     model.generation_config.repetition_penalty = 1.3
     with pytest.raises(ValueError, match=r"generation_config sets repetition_penalty=1.3"):
         check_on_policy(model, [[1]], top_k=0)
+
+
+def test_doc_section_shows_the_top_k_trap_and_its_fix():
+    import contextlib
+    import io
+    import pathlib
+    import re
+
+    text = (pathlib.Path(__file__).resolve().parents[1] / "docs" / "objectives.md").read_text()
+    section = text[text.index("## Is my loop on-policy?"):]
+    section = section[:section.index("\n## ", 5)]
+    (block,) = re.findall(r"```python\n(.*?)```", section, flags=re.S)
+    ns, out = {}, io.StringIO()
+    with contextlib.redirect_stdout(out):
+        exec(compile(block, "docs/objectives.md", "exec"), ns)
+    trap, fixed = ns["trap"], ns["fixed"]
+    assert not trap.ok and trap.settings["top_k"] == 50 and fixed.ok and fixed.missing_mass == 0.0
+    # the numbers the prose quotes, and KL = -log(1 - missing mass) per step for a top-k restriction
+    assert f"{trap.missing_mass:.0%}" == "71%" and f"{trap.kl:.2f}" == "1.24"
+    assert "71% of the loss's probability" in section and "1.24 nats" in section
+    steps = torch.cat([d["missing_mass"][d["mask"]] for d in trap.draws])
+    assert trap.kl == pytest.approx((-torch.log1p(-steps)).mean().item(), abs=1e-6)
+    assert "on-policy check: OFF-POLICY" in out.getvalue() and "with top_k=0: ok, missing mass 0.0000" in out.getvalue()
