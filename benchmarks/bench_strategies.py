@@ -1,10 +1,10 @@
 """Cost of the majority-vote estimators and credit against best-of-k, run in the same process.
 
 1. Estimators for every k <= n: 1000 prompts x 256 samples, up to 64 distinct answers per prompt
-   (Zipf-like answer frequencies, our own simulation): ``vote_at_k_per_prompt`` (exact count DP)
+   (Zipf-like answer frequencies, our own simulation): ``majority_vote_per_prompt`` (exact count DP)
    against ``best_of_k_per_prompt`` (sorted-pool closed form) on the same pools.
    Goal: seconds on one core.
-2. Credit for B = 256 prompts, n = 64 samples, k = 8: ``vote_credit`` against ``bon_rl_credit``.
+2. Credit for B = 256 prompts, n = 64 samples, k = 8: ``majority_vote_credit`` against ``bon_rl_credit``.
    Goal: within 2x the best-of-k credit. For information, ``weighted_vote_credit``
    (sampled k-subsets, ``MAX_SUBSETS`` per pool) on the same pools.
 
@@ -21,7 +21,7 @@ import torch
 
 from bonft.objectives.credit import bon_rl_credit
 from bonft.estimate import best_of_k_per_prompt
-from bonft.strategies.estimators import vote_at_k_per_prompt, vote_credit, weighted_vote_credit
+from bonft.strategies.estimators import majority_vote_per_prompt, majority_vote_credit, weighted_vote_credit
 
 from _timing import min_time
 
@@ -46,7 +46,7 @@ def main() -> None:
     P = 100 if args.quick else 1000
     ans, s, r = pools(P, 256, 64)
     ks = list(range(1, 257))
-    t_vote = min_time(lambda: vote_at_k_per_prompt(ans, r, ks=ks))
+    t_vote = min_time(lambda: majority_vote_per_prompt(ans, r, ks=ks))
     t_bon = min_time(lambda: best_of_k_per_prompt(s, r, ks=ks), repeats=3)
     print(f"1. estimators, every k <= 256, {P} prompts x 256 samples, <= 64 answers/prompt "
           f"(mean {np.mean([len(np.unique(a)) for a in ans]):.1f}):")
@@ -54,7 +54,7 @@ def main() -> None:
 
     ans, s, r = pools(256, 64, 20, seed=1)
     rt, st = torch.as_tensor(r), torch.as_tensor(s)
-    t_vc = min_time(lambda: vote_credit(ans, r, k=8), repeats=2)
+    t_vc = min_time(lambda: majority_vote_credit(ans, r, k=8), repeats=2)
     t_bc = min_time(lambda: bon_rl_credit(st, rt, k=8), repeats=5)
     print("2. credit, B = 256, n = 64, k = 8 (<= 20 answers/prompt):")
     print(f"   majority vote {t_vc:8.4f} s   best-of-k {t_bc:8.5f} s   ratio {t_vc / t_bc:8.1f}x (goal <= 2x)")

@@ -49,8 +49,8 @@ def main() -> None:
         for b in range(args.batches):  # batches of steps 100, 101, ...: fresh prompts and samples, same weights
             run.module.zero_grad(set_to_none=True)
             rec = rl_step(run, 100 + b, Stopwatch())
-            snrs.append(rec["grad_snr"])
-            zero.append(rec["info/zero_credit_frac"])
+            snrs.append(rec["grad/snr"])
+            zero.append(1 - rec["pool/with_signal"] if "pool/with_signal" in rec else rec["pool/without_signal"])
             norms.append(float(torch.nn.utils.get_total_norm([p.grad for p in run.module.parameters() if p.grad is not None])))
         med = sorted(snrs)[len(snrs) // 2]
         print(f"{objective + (' placebo' if placebo else ''):22s} B={B} n={args.n}  grad_snr "

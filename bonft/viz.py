@@ -321,12 +321,12 @@ def plot_strategy_curves(curves: dict, path, *, title: str | None = None) -> str
     plt = _plt()
     labels = list(curves)
     fig, axes = plt.subplots(1, len(labels), figsize=(4.6 * len(labels), 3.8), squeeze=False, sharey=True)
-    colors = {"best-of-k": "tab:blue", "majority": "tab:orange", "weighted": "tab:green", "pass": "0.4"}
+    colors = {"best_of_k": "tab:blue", "majority_vote": "tab:orange", "weighted_vote": "tab:green", "pass_at_k": "0.4"}
     for ax, lab in zip(axes[0], labels):
         c = curves[lab]
         ks = np.asarray(c.ks, dtype=float)
         for s in c.names:
-            style = "--" if s == "pass" else "-"
+            style = "--" if s == "pass_at_k" else "-"
             ax.plot(ks, c.mean[s], style, marker="o", ms=3, color=colors.get(s), label=s)
             if c.intervals_valid:
                 ax.fill_between(ks, c.lo[s], c.hi[s], color=colors.get(s), alpha=0.15, lw=0)

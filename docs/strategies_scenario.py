@@ -62,7 +62,7 @@ def main(folder: str, figure: str | None = None) -> None:
                 f.write(json.dumps(row) + "\n")
         if figure:
             _, s, r, a = group_pools(read_samples(path), with_answers=True)
-            curves[regime] = compare_strategies(["best-of-k", "majority", "weighted", "pass"], ks=[1, 2, 4, 8, 16, 32, 64],
+            curves[regime] = compare_strategies(["best_of_k", "majority_vote", "weighted_vote", "pass_at_k"], ks=[1, 2, 4, 8, 16, 32, 64],
                                                 rewards=r, scores=s, answers=a, n_boot=1000)
             print(regime)
             print(curves[regime].table())

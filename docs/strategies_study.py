@@ -28,16 +28,16 @@ import sys
 
 from bonft.estimate import bootstrap_ci
 from bonft.io import group_pools, read_samples
-from bonft.strategies.estimators import strategy_at_k
+from bonft.strategies import strategy_per_prompt
 
-NAMES = ["best-of-k", "majority", "weighted", "pass"]
+NAMES = ["best_of_k", "majority_vote", "weighted_vote", "pass_at_k"]
 def main(root: str, trained: list[str]) -> None:
     policies = ["warm", *trained]
     vals = {}
     for pol in policies:
         keys, s, r, a = group_pools(read_samples(f"{root}/{pol}.jsonl"), with_answers=True)
         for st in NAMES:
-            vals[pol, st] = (keys,) + strategy_at_k(st, ks=[1, 8], rewards=r, scores=s, answers=a)
+            vals[pol, st] = (keys,) + strategy_per_prompt(st, ks=[1, 8], rewards=r, scores=s, answers=a)
     print("| policy | k | " + " | ".join(NAMES) + " |")
     print("|---|---|" + "---|" * len(NAMES))
     for pol in policies:

@@ -57,16 +57,16 @@ def test_answer_field_is_read_and_grouped(tmp_path):
 
 def test_estimate_strategies_side_by_side(tmp_path, capsys):
     out = tmp_path / "o.json"
-    rc = main(["estimate", str(_write(tmp_path / "p.jsonl")), "--strategy", "majority,best-of-k",
+    rc = main(["estimate", str(_write(tmp_path / "p.jsonl")), "--strategy", "majority_vote,best_of_k",
                "--ks", "1,2,3,5", "--n-boot", "50", "--json", str(out)])
     assert rc == 0
-    assert "majority" in capsys.readouterr().out
+    assert "majority_vote" in capsys.readouterr().out
     d = json.loads(out.read_text())["blocks"][0]["strategies"]
     for j, k in enumerate([1, 2, 3, 5]):
         want_m = np.mean([_majority(p, k) for p in POOLS.values()])
         want_b = np.mean([_best_of_k(p, k) for p in POOLS.values()])
-        assert abs(d["majority"]["mean"][j] - want_m) < 1e-12
-        assert abs(d["best-of-k"]["mean"][j] - want_b) < 1e-12
+        assert abs(d["majority_vote"]["mean"][j] - want_m) < 1e-12
+        assert abs(d["best_of_k"]["mean"][j] - want_b) < 1e-12
 
 
 def _args(f, strategy):
@@ -84,21 +84,23 @@ def test_strategy_needs_answers_and_known_names(tmp_path):
 
     f = _write(tmp_path / "p.jsonl", with_answer=False)
     with pytest.raises(ValueError, match="needs an answer field"):
-        estimate.run(_args(f, "majority"))
-    with pytest.raises(ValueError, match="--strategy must list names"):
+        estimate.run(_args(f, "majority_vote"))
+    with pytest.raises(ValueError, match="--strategy must list ids from best_of_k, majority_vote, weighted_vote, pass_at_k, got 'vote'"):
         estimate.run(_args(f, "vote"))
+    with pytest.raises(ValueError, match=r"got 'majority' \(the strategy id is 'majority_vote'\)"):
+        estimate.run(_args(f, "majority"))
 
 
 def test_plan_strategies_picks_best(tmp_path, capsys):
     out = tmp_path / "plan.json"
-    rc = main(["plan", "--samples", str(_write(tmp_path / "p.jsonl")), "--strategy", "majority,best-of-k",
+    rc = main(["plan", "--samples", str(_write(tmp_path / "p.jsonl")), "--strategy", "majority_vote,best_of_k",
                "--max-k", "5", "--n-boot", "50", "--budget-samples", "3", "--json", str(out)])
     assert rc == 0
     rows = json.loads(out.read_text())["best_by_k"]
     for row in rows:
         k = row["k"]
-        vals = {"majority": np.mean([_majority(p, k) for p in POOLS.values()]),
-                "best-of-k": np.mean([_best_of_k(p, k) for p in POOLS.values()])}
+        vals = {"majority_vote": np.mean([_majority(p, k) for p in POOLS.values()]),
+                "best_of_k": np.mean([_best_of_k(p, k) for p in POOLS.values()])}
         assert abs(row["value"] - max(vals.values())) < 1e-12
     assert "budget 3 samples/prompt" in capsys.readouterr().out
 
@@ -113,9 +115,9 @@ def test_null_answers_vote_alone(tmp_path):
     f.write_text("\n".join(json.dumps(r) for r in rows) + "\n")
     _, s, r, a = group_pools(read_samples(f), with_answers=True)
     assert len(set(a[0])) == 3
-    from bonft.strategies.estimators import vote_at_k_per_prompt
+    from bonft.strategies.estimators import majority_vote_per_prompt
 
-    assert abs(vote_at_k_per_prompt(a, r, ks=[2])[0, 0] - 1 / 3) < 1e-15
+    assert abs(majority_vote_per_prompt(a, r, ks=[2])[0, 0] - 1 / 3) < 1e-15
 
 
 def test_plan_exact_strategies(tmp_path):
@@ -125,7 +127,7 @@ def test_plan_exact_strategies(tmp_path):
     f = tmp_path / "e.json"
     f.write_text(json.dumps(spec))
     out = tmp_path / "o.json"
-    rc = main(["plan", "--exact", str(f), "--temperatures", "0.5", "--strategy", "majority,best-of-k",
+    rc = main(["plan", "--exact", str(f), "--temperatures", "0.5", "--strategy", "majority_vote,best_of_k",
                "--max-k", "3", "--json", str(out)])
     assert rc == 0
     z = np.array(spec["logits"]) / 0.5
@@ -138,5 +140,5 @@ def test_plan_exact_strategies(tmp_path):
         win = [a for a in c if c[a] == top]
         want += np.prod(p[list(t)]) * np.mean([np.mean([spec["rewards"][i] for i in t if spec["answers"][i] == a])
                                                 for a in win])
-    got = json.loads(out.read_text())["values"]["majority@T=0.5"][2]
+    got = json.loads(out.read_text())["values"]["majority_vote@T=0.5"][2]
     assert abs(got - want) < 1e-12

@@ -27,7 +27,7 @@ def test_every_recipe_runs_tiny(recipe, tmp_path, capsys):
     if extra:
         assert (tmp_path / "r" / "rl_start" / "model").is_dir()
         lines = (tmp_path / "r" / "metrics.jsonl").read_text()
-        assert '"info/kl"' in lines
+        assert '"anchor/kl"' in lines
 
 
 def test_eval_and_sample_commands(tmp_path, capsys):

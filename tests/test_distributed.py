@@ -422,10 +422,10 @@ def test_two_trainer_processes_end_with_the_one_process_weights(tmp_path, monkey
     one, two_ = lines("one"), lines("two")
     assert [r["kind"] for r in one] == [r["kind"] for r in two_] == ["train"] * 4 + ["eval"]
     for a, b in zip(one[:4], two_[:4]):  # logged numbers are global: reduced over the 2 ranks
-        for key in ("loss", "grad_norm", "reward", "nll_per_token", "verifier_failures"):
+        for key in ("loss", "grad/norm", "reward", "nll_per_token", "verifier_failures"):
             if key in a:
                 assert b[key] == pytest.approx(a[key], rel=1e-5, abs=1e-6), key
-    assert 0 < one[2]["reward"] < 1 and one[2]["grad_norm"] > 0  # the RL steps had a signal
+    assert 0 < one[2]["reward"] < 1 and one[2]["grad/norm"] > 0  # the RL steps had a signal
     # evaluation: 5 held-out prompts split 3 + 2, pooled on rank 0, same report as one process
     ev1, ev2 = one[4], two_[4]
     assert ev2["n_prompts"] == ev1["n_prompts"] == 5

@@ -59,13 +59,13 @@ def test_end_to_end_writes_everything(reference):
     assert train_lines[3]["nll_per_token"] < train_lines[0]["nll_per_token"]
     rl = train_lines[4]
     assert {"time/sample", "time/score", "time/forward", "time/credit", "time/backward", "time/optimizer", "time/step",
-            "samples_per_s", "reward", "k", "grad_norm", "clipped"} <= rl.keys()
-    assert "grad_snr" not in rl  # opt-in (snr_every)
+            "samples_per_s", "reward", "k", "grad/norm", "grad/clipped"} <= rl.keys()
+    assert "grad/snr" not in rl  # opt-in (snr_every)
     # the split adds up to the step: its phases are disjoint parts of time/step
     parts = sum(rl[f"time/{p}"] for p in ("sample", "score", "forward", "credit", "backward", "optimizer"))
     assert parts <= rl["time/step"] and rl["samples_per_s"] == pytest.approx(4 * 4 / rl["time/step"])
-    # clipped says whether the norm before clipping exceeded clip_grad_norm (1.0)
-    assert all(r["clipped"] == int(r["grad_norm"] > 1.0) for r in train_lines)
+    # grad/clipped says whether the norm before clipping exceeded clip_grad_norm (1.0)
+    assert all(r["grad/clipped"] == int(r["grad/norm"] > 1.0) for r in train_lines)
     (ev,) = [r for r in lines if r["kind"] == "eval"]
     assert ev["step"] == 8 and ev["ks"] == [1, 4] and ev["n_prompts"] == 6 and "proxy" in ev["best_of_k"]
     assert 0.0 <= ev["pass_at_k"]["mean"][0] <= ev["pass_at_k"]["mean"][1] <= 1.0  # pass@k grows with k

@@ -157,13 +157,13 @@ def test_snr_uses_the_steps_own_per_prompt_gradients(tmp_path, monkeypatch, obje
     clock = Stopwatch()
     rec = S.rl_step(run, 0, clock)
     (m,) = seen
-    assert m.count == 4 and rec["grad_snr"] == pytest.approx(m.snr()) and 0 < rec["grad_snr"] < 10
+    assert m.count == 4 and rec["grad/snr"] == pytest.approx(m.snr()) and 0 < rec["grad/snr"] < 10
     # the step's gradient is the mean of the per-prompt gradients the SNR is computed from
     params = [p for p in run.module.parameters() if p.requires_grad]
     for p, tot in zip(params, m.total):
         torch.testing.assert_close(p.grad.double(), tot / 4, atol=1e-7, rtol=1e-4)
     assert sum(float(p.grad.abs().sum()) for p in params) > 1e-3  # a real gradient, not zeros
-    assert clock.totals["snr"] > 0 and "grad_snr" not in S.rl_step(_tiny_run(tmp_path, snr_every=2), 1, Stopwatch())
+    assert clock.totals["snr"] > 0 and "grad/snr" not in S.rl_step(_tiny_run(tmp_path, snr_every=2), 1, Stopwatch())
 
 
 def test_placebo_step_moves_credit_not_the_pools(tmp_path):
@@ -177,7 +177,7 @@ def test_placebo_step_moves_credit_not_the_pools(tmp_path):
         recs.append(rl_step(run, 0, Stopwatch()))
     plain, placebo = recs
     # the same samples (same weights and seeds): same reward and pool value, different credit assignment
-    assert placebo["reward"] == plain["reward"] and placebo["info/pool_value"] == pytest.approx(plain["info/pool_value"])
+    assert placebo["reward"] == plain["reward"] and placebo["pool/value"] == pytest.approx(plain["pool/value"])
     assert placebo["loss"] != pytest.approx(plain["loss"])
 
 
@@ -238,7 +238,7 @@ def test_snr_and_placebo_on_two_ranks_match_one_process(tmp_path, monkeypatch):
             for run in ("one", "two")}
     assert len(rows["one"]) == len(rows["two"]) == 2
     for a, b in zip(rows["one"], rows["two"]):
-        assert 0 < a["grad_snr"] < 10 and b["grad_snr"] == pytest.approx(a["grad_snr"], rel=1e-5)
+        assert 0 < a["grad/snr"] < 10 and b["grad/snr"] == pytest.approx(a["grad/snr"], rel=1e-5)
         assert b["loss"] == pytest.approx(a["loss"], rel=1e-5, abs=1e-6) and b["reward"] == pytest.approx(a["reward"])
 
 
@@ -261,6 +261,6 @@ def test_a_registered_objective_trains_like_the_builtin_with_the_same_credit(tmp
             recs.append(rl_step(run, 0, Stopwatch()))
             recs[-1]["grad"] = torch.cat([p.grad.reshape(-1) for p in run.module.parameters() if p.grad is not None])
         assert recs[0]["loss"] == recs[1]["loss"] and torch.equal(recs[0]["grad"], recs[1]["grad"])
-        assert recs[0]["grad"].abs().sum() > 0 and "info/pool_value" not in recs[1]
+        assert recs[0]["grad"].abs().sum() > 0 and "pool/value" not in recs[1]
     finally:
         del OBJECTIVES["my_reinforce"]

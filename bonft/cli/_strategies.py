@@ -6,9 +6,9 @@ import os
 
 from bonft.cli._args import parse_list, write_curve_outputs, write_json_atomic
 
-STRATEGY_HELP = ("comma-separated inference strategies to compare: best-of-k (verifier picks), majority "
-                 "(most frequent answer), weighted (answer with the largest total score), pass (oracle); "
-                 "majority and weighted need an answer field in the file")
+STRATEGY_HELP = ("comma-separated inference strategies to compare: best_of_k (verifier picks), majority_vote "
+                 "(most frequent answer), weighted_vote (answer with the largest total score), pass_at_k (best true "
+                 "reward among k, a ceiling); majority_vote and weighted_vote need an answer field in the file")
 
 
 def add_strategy_arguments(p: argparse.ArgumentParser) -> None:
@@ -29,20 +29,17 @@ def strategy_names(text: str | None) -> list[str] | None:
     for s in names:
         try:
             out.append(get_strategy(s.strip()).name)
-        except ValueError:
-            from bonft.strategies import STRATEGY_NAMES
-
-            raise ValueError(f"--strategy must list names from {', '.join(STRATEGY_NAMES)}, got {s.strip()!r}") from None
+        except ValueError as e:  # get_strategy's message names the id an old spelling stands for
+            raise ValueError(str(e).replace("strategy must be one of", "--strategy must list ids from", 1)) from None
     return list(dict.fromkeys(out))
 
 
 def _curves(table, t, names, ks, args):
     from bonft.estimate import default_ks
     from bonft.io import group_pools
-    from bonft.strategies.curves import compare_strategies
-    from bonft.strategies.estimators import MAX_SUBSETS
+    from bonft.strategies import MAX_SUBSETS, compare_strategies, get_strategy
 
-    need_answers = any(n in ("majority", "weighted") for n in names)
+    need_answers = any(get_strategy(n).uses_answers for n in names)
     if need_answers and table.answers is None:
         raise ValueError(f"--strategy {','.join(names)} needs an answer field ({args.answer_field!r}) on every line "
                          f"of the pool file, got none")
@@ -83,6 +80,7 @@ def run_estimate(args, table, path: str, temps: list, ks) -> int:
 def run_plan(args, table, temps_wanted) -> int:
     """``bonft plan --samples F --strategy ...``: the best (strategy, temperature, k) at each k and per budget."""
     from bonft.io import temperatures_of
+    from bonft.strategies import get_strategy
 
     names = strategy_names(args.strategy)
     temps = temperatures_of(table) or [None]
@@ -94,11 +92,11 @@ def run_plan(args, table, temps_wanted) -> int:
     ks = None if args.max_k is None else list(range(1, args.max_k + 1))
     grid = {t: _curves(table, t if len(temperatures_of(table)) > 1 else None, names, ks, args) for t in temps}
     first = next(iter(grid.values()))
-    print("best servable strategy (pass, the oracle, is a ceiling only):")
+    print("best servable strategy (pass_at_k, the best true reward among k, is a ceiling only):")
     print(f"{'k':>6}  {'best strategy':>14}  {'T':>5}  {'V_k':>7}  {'interval':>17}")
     rows = []
     for j, k in enumerate(first.ks):
-        servable = [s for s in names if s != "pass"] or names  # pass is an oracle
+        servable = [s for s in names if get_strategy(s).servable] or names  # pass_at_k is a ceiling
         best = max(((t, s) for t in grid for s in servable), key=lambda ts: grid[ts[0]].mean[ts[1]][j])
         c = grid[best[0]]
         t_txt = "-" if best[0] is None else f"{best[0]:g}"
@@ -130,13 +128,13 @@ def run_plan_exact(args, spec: dict, temps: list) -> int:
     import numpy as np
 
     from bonft.bon import softmax_policy
-    from bonft.strategies import strategy_value
+    from bonft.strategies import get_strategy, strategy_value
 
     names = strategy_names(args.strategy)
     if "logits" not in spec:
         raise ValueError("--exact with --strategy needs 'logits' (temperatures rescale them), got none")
-    if any(s in ("majority", "weighted") for s in names) and "answers" not in spec:
-        raise ValueError("--exact with --strategy majority/weighted needs an 'answers' field (one key per outcome)")
+    if any(get_strategy(s).uses_answers for s in names) and "answers" not in spec:
+        raise ValueError("--exact with --strategy majority_vote/weighted_vote needs an 'answers' field (one key per outcome)")
     max_k = args.max_k or 64
     grid = {}  # (T, strategy) -> (K,) values, nan where not computable (weighted vote beyond its limit)
     for t in temps:
@@ -150,8 +148,8 @@ def run_plan_exact(args, spec: dict, temps: list) -> int:
                 except ValueError:  # weighted vote: too many count vectors for this k
                     row.append(float("nan"))
             grid[t, s] = np.array(row)
-    servable = [s for s in names if s != "pass"] or names
-    print("exact V_k; best servable strategy (pass, the oracle, is a ceiling only); then each strategy at its best T:")
+    servable = [s for s in names if get_strategy(s).servable] or names
+    print("exact V_k; best servable strategy (pass_at_k is a ceiling only); then each strategy at its best T:")
     print(f"{'k':>6}  {'best strategy':>14}  {'T':>5}  {'V_k':>7}  " + "  ".join(f"{s:>9}" for s in names))
     rows = []
     for j in range(max_k):

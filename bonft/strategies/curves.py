@@ -15,9 +15,9 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from bonft.estimate import MIN_BOOT_PROMPTS, bootstrap_ci
-from bonft.strategies import get_strategy
-from bonft.strategies.estimators import MAX_SUBSETS, strategy_at_k
+from bonft.estimate.intervals import MIN_BOOT_PROMPTS, bootstrap_ci
+from bonft.strategies.base import get_strategy
+from bonft.strategies.estimators import MAX_SUBSETS
 
 __all__ = ["StrategyCurves", "compare_strategies"]
 
@@ -41,8 +41,8 @@ class StrategyCurves:
         return self.n_prompts >= MIN_BOOT_PROMPTS
 
     def best(self) -> list[str]:
-        """The servable strategy with the highest mean at each k (``pass`` is an oracle, not servable)."""
-        names = [s for s in self.names if s != "pass"] or self.names
+        """The servable strategy with the highest mean at each k (``pass_at_k`` is a ceiling, not servable)."""
+        names = [s for s in self.names if get_strategy(s).servable] or self.names
         return [max(names, key=lambda s: self.mean[s][j]) for j in range(len(self.ks))]
 
     def table(self) -> str:
@@ -76,7 +76,7 @@ class StrategyCurves:
 
 
 def compare_strategies(strategies, *, ks, rewards, scores=None, answers=None, confidence=0.95, n_boot=2000, seed=0,
-                       max_subsets=MAX_SUBSETS) -> StrategyCurves:
+                       max_subsets=MAX_SUBSETS, conflicts="error") -> StrategyCurves:
     r"""Estimate each strategy on the same pools, with paired bootstrap intervals over prompts.
 
     Shape: ``rewards, scores, answers (P, n)`` (or lists of per-prompt arrays) -> :class:`StrategyCurves`
@@ -84,8 +84,9 @@ def compare_strategies(strategies, *, ks, rewards, scores=None, answers=None, co
 
     .. math:: \bar V_k = \frac1P\sum_p \hat V_k^{(p)}
 
-    ``strategies``: names or :class:`bonft.strategies.Strategy` objects. Values are the unbiased
-    per-prompt estimates of :func:`bonft.strategies.estimators.strategy_at_k`; intervals are the paired
+    ``strategies``: ids or :class:`bonft.strategies.Strategy` objects. Values are the unbiased
+    per-prompt estimates of :meth:`bonft.strategies.Strategy.estimate` (``max_subsets``, ``seed`` and
+    ``conflicts`` go there); intervals are the paired
     percentile bootstrap of :func:`bonft.estimate.bootstrap_ci` over prompts.
 
     References: Efron & Tibshirani 1993; Hoeffding 1948.
@@ -95,8 +96,8 @@ def compare_strategies(strategies, *, ks, rewards, scores=None, answers=None, co
         raise ValueError("strategies must name at least one strategy, got none")
     out = None
     for st in sts:
-        v, se = strategy_at_k(st, ks=list(ks), rewards=rewards, scores=scores, answers=answers,
-                              max_subsets=max_subsets, seed=seed)
+        v, se = st.estimate(ks=list(ks), rewards=rewards, scores=scores, answers=answers,
+                            max_subsets=max_subsets, seed=seed, conflicts=conflicts)
         if out is None:
             out = StrategyCurves(ks=np.asarray(list(ks)), n_prompts=v.shape[0], names=[], confidence=confidence)
         m, lo, hi = bootstrap_ci(v, confidence=confidence, n_boot=n_boot, seed=seed)

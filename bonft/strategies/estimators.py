@@ -11,7 +11,11 @@ policy that produced the pool:
   (:mod:`bonft.strategies.counting`); ``f(S) = sum_a share_a(S) * mean reward of a's samples in S``;
 * weighted vote: exact over all k-subsets while ``C(n, k) <= max_subsets``, otherwise the mean of
   ``max_subsets`` uniform random k-subsets, still unbiased, with its standard error;
-* best-of-k and pass@k: the closed forms of :mod:`bonft.estimate`.
+* best-of-k and pass@k: the closed forms of :mod:`bonft.estimate.bestofk`.
+
+Each answer carries one reward (``conflicts="error"``, the default) or, with ``conflicts="mean"``,
+the winning answer's samples among the k are served uniformly at random (the mean of their
+rewards); weighted-vote scores are non-negative weights (:mod:`bonft.strategies.exact`).
 
 Credit. With ``kb = min(k, n-1)``, the per-sample credit
 
@@ -40,14 +44,12 @@ import math
 import numpy as np
 import torch
 
-from bonft import estimate as _estimate
-from bonft._core.checks import as_float_array, check_finite, check_int, check_k, check_ks, is_tensor
+from bonft._core.checks import as_float_array, check_choice, check_finite, check_int, check_k, check_ks, is_tensor, torch_out_dtype
 from bonft.strategies.counting import pool_vote_sums, vote_credit_batched, weighted_slot_weights
+from bonft.strategies.exact import CONFLICT_RULES
 
-__all__ = [
-    "vote_at_k_per_prompt", "weighted_vote_at_k_per_prompt", "vote_credit", "weighted_vote_credit",
-    "strategy_at_k", "strategy_credit",
-]
+__all__ = ["majority_vote_per_prompt", "weighted_vote_per_prompt", "majority_vote_credit", "weighted_vote_credit",
+           "MAX_SUBSETS"]
 
 _MAX_N_EXACT = 1000  # binomials of the count DP stay inside float64 (2^1000 ~ 1e301)
 MAX_SUBSETS = 4000  # weighted vote: exact over all k-subsets up to this many, else this many sampled
@@ -57,10 +59,11 @@ MAX_SUBSETS = 4000  # weighted vote: exact over all k-subsets up to this many, e
 
 
 def _out_kind(*xs):
-    """Torch out when an input is a tensor (its device, its floating dtype or float64), else numpy."""
+    """Torch out when an input is a tensor (its device, its floating dtype with half precision widened to float32,
+    or float64), else numpy."""
     for x in xs:
         if is_tensor(x):
-            return x.device, (x.dtype if x.dtype.is_floating_point else torch.float64)
+            return x.device, torch_out_dtype(x)
     return None
 
 
@@ -70,12 +73,13 @@ def _finish(w: np.ndarray, kind):
 
 def _rows(name: str, x, *, numeric: bool) -> list[np.ndarray]:
     """(P, n) array or a list of 1-D per-prompt arrays -> list of 1-D arrays."""
-    if is_tensor(x):
-        x = x.detach().cpu().numpy()
+    if is_tensor(x):  # numbers through the dtype policy (bfloat16 has no numpy type, complex is refused)
+        x = as_float_array(name, x) if numeric else x.detach().cpu().numpy()
     if isinstance(x, np.ndarray) and x.ndim == 2:
         rows = list(x)
     elif isinstance(x, (list, tuple)) and x and not np.isscalar(x[0]):
-        rows = [r.detach().cpu().numpy() if is_tensor(r) else np.asarray(r) for r in x]
+        rows = [(as_float_array(f"{name}[{p}]", r) if numeric else r.detach().cpu().numpy()) if is_tensor(r)
+                else np.asarray(r) for p, r in enumerate(x)]
     else:
         arr = np.asarray(x)
         if arr.ndim != 2:
@@ -114,6 +118,40 @@ def _same_lengths(**pools: list[np.ndarray]) -> None:
                 raise ValueError(f"{name}[{p}] must have {len(a)} samples like {n0}[{p}], got {len(b)}")
 
 
+def _plain(x):
+    """A numpy scalar as the Python value it holds (``'y'``, not ``np.str_('y')``) for messages."""
+    return x.item() if isinstance(x, np.generic) else x
+
+
+def _one_reward_per_answer(codes: list[np.ndarray], answers: list[np.ndarray], rewards: list[np.ndarray],
+                           conflicts, strategy: str) -> None:
+    """Refuse a pool where one answer carries different rewards unless ``conflicts="mean"``."""
+    if check_choice("conflicts", conflicts, CONFLICT_RULES) == "mean":
+        return
+    for p, (c, a, r) in enumerate(zip(codes, answers, rewards)):
+        lo = np.full(int(c.max()) + 1, np.inf)
+        hi = np.full_like(lo, -np.inf)
+        np.minimum.at(lo, c, r)
+        np.maximum.at(hi, c, r)
+        if (hi > lo).any():
+            bad = int(np.flatnonzero(hi > lo)[0])
+            i = int(np.flatnonzero(c == bad)[0])
+            j = int(np.flatnonzero((c == bad) & (r != r[i]))[0])
+            raise ValueError(
+                f"rewards[{p}] must be one value per answer for {strategy}, got answer {_plain(a[i])!r} with rewards "
+                f"{r[i]:g} (sample {i}) and {r[j]:g} (sample {j}); pass conflicts='mean' to serve the mean reward "
+                f"of the answer's samples")
+
+
+def _check_weights(scores: list[np.ndarray]) -> None:
+    """Weighted-vote scores are non-negative weights."""
+    for p, s in enumerate(scores):
+        if (s < 0).any():
+            i = int(np.flatnonzero(s < 0)[0])
+            raise ValueError(f"scores[{p}] must be non-negative weights for weighted_vote (exponentiate "
+                             f"log-probabilities first), got {s[i]:g} at sample {i}")
+
+
 # ---------------------------------------------------------------------------- majority vote
 
 
@@ -127,7 +165,7 @@ def _vote_pool(codes: np.ndarray, r: np.ndarray, ks: np.ndarray) -> np.ndarray:
     return sums[ks] / np.array([float(math.comb(len(r), k)) for k in ks])
 
 
-def vote_at_k_per_prompt(answers, rewards, *, ks):
+def majority_vote_per_prompt(answers, rewards, *, ks, conflicts="error"):
     r"""Unbiased majority-vote value of every pool.
 
     Shape: ``answers (P, n), rewards (P, n) -> (P, K)`` (``(P,)`` for an int ``ks``).
@@ -139,6 +177,9 @@ def vote_at_k_per_prompt(answers, rewards, *, ks):
     pool's samples with answer ``a``. Exact U-statistic over all k-subsets by a dynamic
     programme over answer counts (every k <= n in one pass); pools up to n = 1000.
     Ragged pools: lists of 1-D arrays.
+    ``conflicts``: ``"error"`` (a pool where one answer carries different rewards is refused,
+    naming the prompt and the answer) or ``"mean"`` (the winner's samples are served uniformly,
+    so ``rbar_a`` is their mean reward).
 
     References: Wang et al. 2023 (majority vote); Hoeffding 1948 (U-statistics).
     """
@@ -149,11 +190,13 @@ def vote_at_k_per_prompt(answers, rewards, *, ks):
     if n_max > _MAX_N_EXACT:
         raise ValueError(f"answers pools must have n <= {_MAX_N_EXACT} for the exact vote estimate, got n={n_max}")
     ks_arr, scalar = check_ks(ks, n_min, name="ks")
-    out = np.stack([_vote_pool(c, r, ks_arr) for c, r in zip(_codes(ans), rew)])
+    codes = _codes(ans)
+    _one_reward_per_answer(codes, ans, rew, conflicts, "majority_vote")
+    out = np.stack([_vote_pool(c, r, ks_arr) for c, r in zip(codes, rew)])
     return out[:, 0] if scalar else out
 
 
-def vote_credit(answers, rewards, *, k):
+def majority_vote_credit(answers, rewards, *, k, conflicts="error"):
     r"""Majority-vote credit with a leave-one-out baseline.
 
     Shape: ``answers (B, n), rewards (B, n) -> credit (B, n)``.
@@ -164,6 +207,9 @@ def vote_credit(answers, rewards, *, k):
     zero credit; ``n = 1`` gives ``w = R``. All pools in one batched count DP: prefix and suffix
     products over the answers give every leave-one-out value (:func:`bonft.strategies.counting.vote_credit_batched`).
     numpy/list in -> float64 numpy; torch in -> torch (device, floating dtype of ``rewards``).
+    ``conflicts``: ``"error"`` (a pool where one answer carries different rewards is refused,
+    naming the prompt and the answer) or ``"mean"`` (the winner's samples are served uniformly,
+    so ``rbar_a`` is their mean reward).
 
     References: Hoeffding 1948; Kool et al. 2019; Wang et al. 2023.
     """
@@ -177,9 +223,11 @@ def vote_credit(answers, rewards, *, k):
     if n > _MAX_N_EXACT:
         raise ValueError(f"rewards must have n <= {_MAX_N_EXACT} samples per prompt, got n={n}")
     k = check_k(k, n)
+    codes = _codes(ans)
+    _one_reward_per_answer(codes, ans, rew, conflicts, "majority_vote")
     if n == 1:
         return _finish(np.stack(rew), kind)
-    codes = np.stack(_codes(ans))
+    codes = np.stack(codes)
     r = np.stack(rew)
     w = np.zeros_like(r)
     live = np.flatnonzero(r.max(1) > r.min(1))  # equal rewards serve the same reward whatever wins: w = 0
@@ -213,15 +261,19 @@ def _check_budget(max_subsets, seed) -> tuple[int, int]:
     return check_int("max_subsets", max_subsets, min=2), check_int("seed", seed, min=0)
 
 
-def weighted_vote_at_k_per_prompt(answers, scores, rewards, *, ks, max_subsets=MAX_SUBSETS, seed=0):
+def weighted_vote_per_prompt(answers, scores, rewards, *, ks, max_subsets=MAX_SUBSETS, seed=0, conflicts="error"):
     r"""Unbiased verifier-weighted vote value of every pool and its standard error.
 
-    Shape: ``answers, scores, rewards (P, n) -> (values (P, K), stderr (P, K))``. The served answer maximises the total
-    score of its samples among the k. While ``C(n, k) <= max_subsets`` the U-statistic runs
+    Shape: ``answers, scores, rewards (P, n) -> (values (P, K), stderr (P, K))``. Scores are non-negative
+    weights (a negative one is a ``ValueError``); the served answer maximises the total weight of its
+    samples among the k (totals equal to 1e-12 relative tie, uniformly among the tied answers), and one
+    of its samples is served uniformly. While ``C(n, k) <= max_subsets`` the U-statistic runs
     over every k-subset (stderr 0); above, over ``max_subsets`` uniform random k-subsets (seeded),
     unbiased with standard error ``sd(f)/sqrt(max_subsets)``.
 
     .. math:: \hat V_k = \binom nk^{-1}\sum_{|S|=k} f(S)
+
+    ``conflicts`` as in :func:`majority_vote_per_prompt`.
 
     References: Li et al. 2023 (verifier-weighted voting); Hoeffding 1948.
     """
@@ -231,10 +283,13 @@ def weighted_vote_at_k_per_prompt(answers, scores, rewards, *, ks, max_subsets=M
     _same_lengths(answers=ans, scores=sc, rewards=rew)
     ks_arr, _ = check_ks(ks, min(len(a) for a in ans), name="ks")
     max_subsets, seed = _check_budget(max_subsets, seed)
+    _check_weights(sc)
+    codes = _codes(ans)
+    _one_reward_per_answer(codes, ans, rew, conflicts, "weighted_vote")
     rng = np.random.default_rng(seed)
     val = np.zeros((len(ans), len(ks_arr)))
     se = np.zeros_like(val)
-    for p, (c, s, r) in enumerate(zip(_codes(ans), sc, rew)):
+    for p, (c, s, r) in enumerate(zip(codes, sc, rew)):
         for j, k in enumerate(ks_arr):
             idx, exact = _subsets(len(r), int(k), max_subsets, rng)
             f = _weighted_f(idx, c, s, r)
@@ -243,7 +298,7 @@ def weighted_vote_at_k_per_prompt(answers, scores, rewards, *, ks, max_subsets=M
     return val, se
 
 
-def weighted_vote_credit(answers, scores, rewards, *, k, max_subsets=MAX_SUBSETS, seed=0):
+def weighted_vote_credit(answers, scores, rewards, *, k, max_subsets=MAX_SUBSETS, seed=0, conflicts="error"):
     r"""Weighted-vote credit with a leave-one-out baseline.
 
     Shape: ``answers, scores, rewards (B, n) -> credit (B, n)``.
@@ -252,7 +307,8 @@ def weighted_vote_credit(answers, scores, rewards, *, k, max_subsets=MAX_SUBSETS
 
     over every k-subset while ``C(n, k) <= max_subsets``; above, the unbiased sampled form
     ``w_i = mean_m f(S_m)(1{i in S_m} - k/(n-k) 1{i not in S_m})`` over ``max_subsets``
-    uniform k-subsets. Either way ``E[sum_i w_i grad log pi(y_i)] = grad V_k``.
+    uniform k-subsets. Either way ``E[sum_i w_i grad log pi(y_i)] = grad V_k``. Scores are
+    non-negative weights; ``conflicts`` as in :func:`majority_vote_per_prompt`.
 
     References: Kool et al. 2019; Hoeffding 1948; Li et al. 2023.
     """
@@ -266,9 +322,12 @@ def weighted_vote_credit(answers, scores, rewards, *, k, max_subsets=MAX_SUBSETS
         raise ValueError("rewards must have shape (B, n): every pool the same size for credit")
     k = check_k(k, n)
     max_subsets, seed = _check_budget(max_subsets, seed)
+    _check_weights(sc)
+    codes = _codes(ans)
+    _one_reward_per_answer(codes, ans, rew, conflicts, "weighted_vote")
     rng = np.random.default_rng(seed)
     out = np.zeros((len(rew), n))
-    for p, (c, s, r) in enumerate(zip(_codes(ans), sc, rew)):
+    for p, (c, s, r) in enumerate(zip(codes, sc, rew)):
         if n == 1:
             out[p] = r
             continue
@@ -287,74 +346,3 @@ def weighted_vote_credit(answers, scores, rewards, *, k, max_subsets=MAX_SUBSETS
             without_i = _weighted_f(others, c, s, r)
         out[p] = (k / n) * (sum_with / n_with - without_i)
     return _finish(out, kind)
-
-
-# ---------------------------------------------------------------------------- any strategy
-
-
-def _need(st, scores, answers) -> None:
-    if st.uses_scores and scores is None:
-        raise ValueError(f"scores must be given for strategy {st.name!r}, got None")
-    if st.uses_answers and answers is None:
-        raise ValueError(f"answers must be given for strategy {st.name!r}, got None")
-
-
-def strategy_at_k(strategy, *, ks, rewards, scores=None, answers=None, max_subsets=MAX_SUBSETS, seed=0):
-    r"""Unbiased ``V_k`` of any strategy for every pool, with the Monte-Carlo standard error.
-
-    Shape: ``rewards, scores, answers (P, n) -> (values (P, K), stderr (P, K))``.
-
-    .. math:: \hat V_k = \binom nk^{-1}\sum_{|S|=k} f(S)
-
-    best-of-k: :func:`bonft.estimate.bon_at_k_per_prompt`; pass: the oracle curve
-    (:func:`bonft.estimate.oracle_at_k_per_prompt`, Chen et al. 2021 for 0/1 rewards);
-    majority: :func:`vote_at_k_per_prompt`; weighted: :func:`weighted_vote_at_k_per_prompt`.
-    stderr is 0 wherever the estimate is exact. ``ks`` must be a sequence.
-
-    References: Hoeffding 1948; Chen et al. 2021; Chow et al. 2024; Wang et al. 2023.
-    """
-    from bonft.strategies import get_strategy
-
-    st = get_strategy(strategy)
-    _need(st, scores, answers)
-    if st.name == "weighted":
-        return weighted_vote_at_k_per_prompt(answers, scores, rewards, ks=ks, max_subsets=max_subsets, seed=seed)
-    if st.name == "majority":
-        v = vote_at_k_per_prompt(answers, rewards, ks=ks)
-    elif st.name == "pass":
-        v = _estimate.oracle_at_k_per_prompt(rewards, ks=ks)
-    else:
-        v = _estimate.bon_at_k_per_prompt(scores, rewards, ks=ks)
-    v = np.asarray(v).reshape(len(v), -1)
-    return v, np.zeros_like(v)
-
-
-def _bon_credit(scores, rewards, *, k):
-    from bonft.objectives.credit import bon_rl_credit
-
-    return bon_rl_credit(scores, rewards, k=k)
-
-
-def strategy_credit(strategy, scores, rewards, *, k, answers=None, max_subsets=MAX_SUBSETS, seed=0):
-    r"""Per-sample credit of any strategy, unbiased for ``grad V_k``, with a leave-one-out baseline.
-
-    Shape: ``scores, rewards, answers (B, n) -> credit (B, n)``.
-
-    .. math:: w_i = \hat V_k(\text{pool}) - \hat V_{\min(k,n-1)}(\text{pool}\setminus i)
-
-    best-of-k: :func:`bonft.objectives.credit.bon_rl_credit`; pass: the same with ``scores = rewards``;
-    majority: :func:`vote_credit`; weighted: :func:`weighted_vote_credit`.
-
-    References: Kool et al. 2019; Chow et al. 2024; Hoeffding 1948.
-    """
-    from bonft.strategies import get_strategy
-
-    st = get_strategy(strategy)
-    _need(st, scores, answers)
-    if st.name == "majority":
-        return vote_credit(answers, rewards, k=k)
-    if st.name == "weighted":
-        return weighted_vote_credit(answers, scores, rewards, k=k, max_subsets=max_subsets, seed=seed)
-    if st.name == "pass":
-        return _bon_credit(rewards, rewards, k=k)
-    return _bon_credit(scores, rewards, k=k)

@@ -119,7 +119,7 @@ class TrainConfig:
     clip_grad_norm: float = _f(1.0, "Clip the gradient's global norm to this value; 0 = no clipping.", group="rl")
     anchor_weight: float = _f(0.0, "Weight of the KL penalty to the anchor, the policy at the start of the RL stage (saved in RUN/rl_start); 0 = none.", group="rl")
     placebo: bool = _f(False, "Placebo control: shuffle the outcomes (score and reward together) within each pool before the credit, one seeded permutation per pool. Same credit sizes, zero expected update for leave-one-out credit: what noise alone does to the policy.", group="rl")
-    snr_every: int = _f(0, "Measure the gradient signal-to-noise ratio (metric grad_snr, see docs/training.md) every this many RL steps on the step's own samples; costs one extra forward and backward per prompt. 0 = never.", group="rl")
+    snr_every: int = _f(0, "Measure the gradient signal-to-noise ratio (metric grad/snr, see docs/training.md) every this many RL steps on the step's own samples; costs one extra forward and backward per prompt. 0 = never.", group="rl")
     token_reduction: str = _f("sum", "'sum': sequence log-prob (unbiased policy gradient); 'mean': length-normalised (biased).", group="rl")
     reward_source: str = _f("rewards", "'rewards': train on the verifier's true rewards where it reports them (task labels; the verifier still selects for best_of_k), else its scores; 'scores': train on the verifier's scores only (e.g. against a reward model; with verifier='proxy' this shows reward hacking).", group="rl")
     correct_threshold: float = _f(0.5, "A sample counts as correct for pass@k objectives when its reward is >= this.", group="rl")

@@ -39,6 +39,7 @@ import torch
 
 from bonft.trainer.config import TrainConfig, to_toml
 from bonft.trainer.measure import Stopwatch
+from bonft.trainer.metrics import GRAD_CLIPPED, GRAD_NORM
 from bonft.trainer.steps import (  # noqa: F401  (re-exported: the loop's parts)
     Run, _prompt_batch, build_run, dist_info, encode_pairs, evaluate_run, k_at, lr_at, make_optimizer,
     quiet_transformers, rl_step, sft_step, step_seed,
@@ -137,8 +138,8 @@ def _one_step(run: Run, stage: str, s: int) -> dict:
             run.updating = False
     run.model.eval()
     times = clock.metrics()
-    rec.update({"kind": "train", "stage": stage, "step": s + 1, "lr": lr, "grad_norm": grad_norm,
-                "clipped": int(clipped), **times})
+    rec.update({"kind": "train", "stage": stage, "step": s + 1, "lr": lr, GRAD_NORM: grad_norm,
+                GRAD_CLIPPED: int(clipped), **times})
     if stage == "rl":
         rec["samples_per_s"] = cfg.prompts_per_step * cfg.n / times["time/step"]
     return rec

@@ -76,13 +76,13 @@ def _pass_value(p: Pools, k: int) -> torch.Tensor:
 
 def _vote(name: str) -> tuple[Callable, Callable]:
     """Credit and pool value of a vote strategy (:mod:`bonft.strategies.estimators`), as tensors on the pools' device."""
-    from bonft.strategies.estimators import strategy_at_k, strategy_credit
+    from bonft.strategies.estimators import strategy_per_prompt, strategy_credit
 
     def credit(p: Pools, k: int) -> torch.Tensor:
         return strategy_credit(name, p.scores, p.rewards, k=k, answers=p.answers)
 
     def value(p: Pools, k: int) -> torch.Tensor:
-        v, _ = strategy_at_k(name, ks=[k], rewards=p.rewards, scores=p.scores, answers=p.answers)
+        v, _ = strategy_per_prompt(name, ks=[k], rewards=p.rewards, scores=p.scores, answers=p.answers)
         return torch.as_tensor(v[:, 0], dtype=p.rewards.dtype, device=p.rewards.device)
 
     return credit, value
@@ -108,10 +108,10 @@ OBJECTIVES: dict[str, Objective] = {
         value=None, expert=True,
         summary="best-of-k-aware supervised fine-tuning on reference answers (Chow et al. 2024, BoN-SFT)"),
     "majority_vote": Objective(
-        *_vote("majority"), answers=True,
+        *_vote("majority_vote"), answers=True,
         summary="majority vote over k answers, exact U-statistic credit by a count DP (Wang et al. 2023 self-consistency)"),
     "weighted_vote": Objective(
-        *_vote("weighted"), answers=True,
+        *_vote("weighted_vote"), answers=True,
         summary="verifier-weighted vote over k answers (Li et al. 2023), U-statistic credit (sampled k-subsets when C(n,k) is large)"),
 }
 

@@ -17,6 +17,7 @@ import torch
 
 from bonft.trainer.config import TrainConfig
 from bonft.trainer.measure import GradientMoments, Stopwatch
+from bonft.trainer.metrics import GRAD_SNR, info_metric
 from bonft.trainer.objectives import OBJECTIVES, Pools, policy_loss, shuffle_pools
 
 PLACEBO_STREAM = 5  # prompt_seed stream of the placebo's permutations (0: sampling, 2: evaluation)
@@ -227,7 +228,7 @@ def _add_prompt_gradients(run: Run, moments: GradientMoments, rows: tuple, exper
 def rl_step(run: Run, step: int, clock: Stopwatch) -> dict:
     """Sample n per prompt -> score -> credit -> loss -> backward, over grad_accum micro-batches.
 
-    With ``snr_every`` due, also the per-prompt gradients of the same samples (``grad_snr``).
+    With ``snr_every`` due, also the per-prompt gradients of the same samples (``grad/snr``).
     """
     from bonft.trainer.distributed import prompt_seed, reduce_metrics, sample_per_prompt, shard_bounds
     from bonft.generation.sampling import sequence_logprobs
@@ -270,12 +271,12 @@ def rl_step(run: Run, step: int, clock: Stopwatch) -> dict:
             info["beaten_frac"] = float((pools.scores > pools.expert_scores[:, None]).double().mean())
         for key, val in [("loss", float(loss.detach()) / B), ("reward", float(pools.rewards.mean()) * b / B),
                          ("score", float(pools.scores.mean()) * b / B), ("verifier_failures", failed),
-                         *((f"info/{key}", float(v) * b / B) for key, v in info.items())]:
+                         *((info_metric(key), float(v) * b / B) for key, v in info.items())]:
             acc[key] = acc.get(key, 0.0) + val
     acc = reduce_metrics(acc, run.ctx)  # per-rank parts of global means -> their sum
     acc["k"] = k
     if moments is not None:
-        acc["grad_snr"] = moments.snr(run.ctx)
+        acc[GRAD_SNR] = moments.snr(run.ctx)
     return acc
 # ----------------------------------------------------------------------------- setup
 def build_run(cfg: TrainConfig) -> Run:

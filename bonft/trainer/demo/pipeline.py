@@ -32,6 +32,7 @@ from pathlib import Path
 import numpy as np
 
 from bonft.trainer.config import MODEL_KEYS, TrainConfig
+from bonft.trainer.metrics import GRAD_CLIPPED, GRAD_NORM, GRAD_SNR
 from bonft.trainer.demo.stats import LABELS, best_temperatures, per_prompt_curves, seed_table, study_table
 
 
@@ -62,7 +63,7 @@ class DemoConfig(TrainConfig):
     snr_every: int = 10
     max_new_tokens: int = 4
     save_every: int = 0
-    log_every: int = 1  # every step: grad_snr (measured every snr_every steps) is only in the lines written
+    log_every: int = 1  # every step: grad/snr (measured every snr_every steps) is only in the lines written
     objectives: tuple = ("reinforce", "pass_at_k", "placebo")
     workers: int = 2  # stages run in parallel processes, one core each
     plan_temperatures: tuple = (0.6, 0.8, 1.0, 1.2, 1.4)  # the planner's sweep; () = skip it
@@ -220,7 +221,7 @@ def collect_stage_pools(dc: DemoConfig, stage_dir: Path, *, temperature: float, 
 
 
 def gradient_summary(stage_dir: Path) -> dict:
-    """Medians over the logged RL steps of ``grad_snr`` and ``grad_norm``, the share of clipped steps,
+    """Medians over the logged RL steps of ``grad/snr`` and ``grad/norm``, the share of clipped steps,
     and the training reward of the first and last fifth of the run."""
     path = stage_dir / "metrics.jsonl"
     if not path.is_file():
@@ -229,10 +230,10 @@ def gradient_summary(stage_dir: Path) -> dict:
     if not rows:
         return {}
     fifth = max(1, len(rows) // 5)
-    snr = [r["grad_snr"] for r in rows if "grad_snr" in r]
+    snr = [r[GRAD_SNR] for r in rows if GRAD_SNR in r]
     return {"grad_snr": float(np.median(snr)) if snr else float("nan"),
-            "grad_norm": float(np.median([r["grad_norm"] for r in rows if "grad_norm" in r])),
-            "clipped": float(np.mean([r.get("clipped", 0.0) for r in rows])),
+            "grad_norm": float(np.median([r[GRAD_NORM] for r in rows if GRAD_NORM in r])),
+            "clipped": float(np.mean([r.get(GRAD_CLIPPED, 0.0) for r in rows])),
             "reward_first": float(np.mean([r["reward"] for r in rows[:fifth]])),
             "reward_last": float(np.mean([r["reward"] for r in rows[-fifth:]]))}
 

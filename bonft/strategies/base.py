@@ -1,0 +1,257 @@
+r"""Inference strategies as objects: each one knows its exact value, its pool estimate and its credit.
+
+A strategy draws ``k`` samples from the policy and returns one response:
+
+* :class:`BestOfK` (``best_of_k``) -- the sample the verifier scores highest (ties uniform among
+  the tied samples);
+* :class:`MajorityVote` (``majority_vote``) -- the answer held by the most samples (ties uniform
+  among the tied answers), served as one of that answer's samples chosen uniformly;
+* :class:`WeightedVote` (``weighted_vote``) -- the answer with the largest total verifier score
+  (scores are non-negative weights; ties uniform among the tied answers), served the same way;
+* :class:`PassAtK` (``pass_at_k``) -- the best true reward among the k: pass@k for 0/1 rewards,
+  a ceiling for comparison, not a strategy one can serve.
+
+Each sample carries an *answer key* (the final answer extracted from the response, so that
+surface forms of one answer share a key). For any such rule the served value and its gradient are
+
+.. math::
+    V_k = E[R(\mathrm{sel}(y_1..y_k))],\qquad
+    \nabla V_k = E\Big[R(\mathrm{sel})\sum_{j=1}^k \nabla\log\pi(y_j)\Big]
+
+Every strategy has three methods: :meth:`Strategy.value` (the exact ``V_k`` on a finite outcome
+set, differentiable; :mod:`bonft.bon`, :mod:`bonft.strategies.exact`), :meth:`Strategy.estimate`
+(the unbiased U-statistic of each pool; :mod:`bonft.estimate.bestofk`,
+:mod:`bonft.strategies.estimators`) and :meth:`Strategy.credit` (per-sample credit with a
+leave-one-out baseline, unbiased for ``grad V_k``; :mod:`bonft.objectives.credit`,
+:mod:`bonft.strategies.estimators`). :func:`strategy_value`, :func:`strategy_per_prompt` and
+:func:`strategy_credit` take a strategy or its id.
+
+References: Wang et al. 2023 "Self-Consistency Improves Chain of Thought Reasoning in Language
+Models" (majority vote); Li et al. 2023 "Making Language Models Better Reasoners with
+Step-Aware Verifier" (verifier-weighted vote); Chow et al. 2024 "Inference-Aware Fine-Tuning for
+Best-of-N Sampling in LLMs" (best-of-N objectives and their gradients); Chen et al. 2021 (pass@k).
+
+Caution: a weighted vote or best-of-k policy follows the verifier, and a majority-vote policy
+follows whatever answer extraction calls "the same answer". Training for either exploits their
+mistakes (reward hacking: answers formatted to be extracted, verifier blind spots); keep a
+held-out true reward. If a verifier runs model-written code, run it sandboxed.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from bonft.bon import best_of_k_value
+from bonft.estimate.bestofk import best_of_k_per_prompt, pass_at_k_per_prompt
+from bonft.objectives.credit import best_of_k_credit
+from bonft.strategies.estimators import (
+    MAX_SUBSETS,
+    majority_vote_credit,
+    majority_vote_per_prompt,
+    weighted_vote_credit,
+    weighted_vote_per_prompt,
+)
+from bonft.strategies.exact import majority_vote_value, weighted_vote_value
+
+__all__ = [
+    "Strategy", "BestOfK", "MajorityVote", "WeightedVote", "PassAtK", "STRATEGY_NAMES", "get_strategy",
+    "strategy_value", "strategy_per_prompt", "strategy_credit",
+]
+
+# spellings that name a strategy but are not its id: refused with the id in the message
+_NOT_IDS = {"best-of-k": "best_of_k", "bon": "best_of_k", "majority": "majority_vote", "weighted": "weighted_vote",
+            "pass": "pass_at_k", "oracle": "pass_at_k", "pass@k": "pass_at_k"}
+
+
+@dataclass(frozen=True)
+class Strategy:
+    """An inference-time selection rule over ``k`` samples (see the module docstring).
+
+    ``name`` is the strategy id (code, ``--strategy``, config, JSON); ``uses_answers`` /
+    ``uses_scores`` say which per-sample fields the rule reads; ``servable`` is False for a
+    ceiling that needs the true reward (pass@k). Subclasses implement the three methods.
+    Options a strategy does not read (``max_subsets``, ``seed``, ``conflicts`` for best-of-k)
+    are accepted and unused, so one call serves every strategy.
+    """
+
+    name: str = ""
+    uses_answers: bool = False
+    uses_scores: bool = True
+    servable: bool = True
+
+    def _need(self, scores, answers) -> None:
+        if self.uses_scores and scores is None:
+            raise ValueError(f"scores must be given for strategy {self.name!r}, got None")
+        if self.uses_answers and answers is None:
+            raise ValueError(f"answers must be given for strategy {self.name!r}, got None")
+
+    def value(self, probs, *, k, rewards, scores=None, answers=None, conflicts="error"):
+        """Exact ``V_k`` on a finite outcome set: ``probs (..., V) -> (...)``, differentiable."""
+        raise NotImplementedError
+
+    def estimate(self, *, ks, rewards, scores=None, answers=None, max_subsets=MAX_SUBSETS, seed=0,
+                 conflicts="error"):
+        """Unbiased ``V_k`` of each pool and its Monte-Carlo standard error: ``(P, n) -> ((P, K), (P, K))``."""
+        raise NotImplementedError
+
+    def credit(self, scores, rewards, *, k, answers=None, max_subsets=MAX_SUBSETS, seed=0, conflicts="error"):
+        """Per-sample credit ``(B, n) -> (B, n)``, unbiased for ``grad V_k``, leave-one-out baseline."""
+        raise NotImplementedError
+
+
+def _exact(v) -> tuple[np.ndarray, np.ndarray]:
+    """Closed-form per-prompt values -> ((P, K) values, zero standard errors)."""
+    v = np.asarray(v).reshape(len(v), -1)
+    return v, np.zeros_like(v)
+
+
+@dataclass(frozen=True)
+class BestOfK(Strategy):
+    """The verifier keeps the highest-scoring of k samples (ties uniform among samples)."""
+
+    name: str = "best_of_k"
+
+    def value(self, probs, *, k, rewards, scores=None, answers=None, conflicts="error"):
+        self._need(scores, answers)
+        return best_of_k_value(probs, scores, rewards, k=k)
+
+    def estimate(self, *, ks, rewards, scores=None, answers=None, max_subsets=MAX_SUBSETS, seed=0,
+                 conflicts="error"):
+        self._need(scores, answers)
+        return _exact(best_of_k_per_prompt(scores, rewards, ks=ks))
+
+    def credit(self, scores, rewards, *, k, answers=None, max_subsets=MAX_SUBSETS, seed=0, conflicts="error"):
+        self._need(scores, answers)
+        return best_of_k_credit(scores, rewards, k=k)
+
+
+@dataclass(frozen=True)
+class PassAtK(Strategy):
+    """The best true reward among k samples (pass@k for 0/1 rewards): best-of-k with ``scores = rewards``."""
+
+    name: str = "pass_at_k"
+    uses_scores: bool = False
+    servable: bool = False
+
+    def value(self, probs, *, k, rewards, scores=None, answers=None, conflicts="error"):
+        return best_of_k_value(probs, rewards, rewards, k=k)
+
+    def estimate(self, *, ks, rewards, scores=None, answers=None, max_subsets=MAX_SUBSETS, seed=0,
+                 conflicts="error"):
+        return _exact(pass_at_k_per_prompt(rewards, ks=ks))
+
+    def credit(self, scores, rewards, *, k, answers=None, max_subsets=MAX_SUBSETS, seed=0, conflicts="error"):
+        return best_of_k_credit(rewards, rewards, k=k)
+
+
+@dataclass(frozen=True)
+class MajorityVote(Strategy):
+    """The most frequent answer among k samples (ties uniform among answers); scores unused."""
+
+    name: str = "majority_vote"
+    uses_answers: bool = True
+    uses_scores: bool = False
+
+    def value(self, probs, *, k, rewards, scores=None, answers=None, conflicts="error"):
+        self._need(scores, answers)
+        return majority_vote_value(probs, answers, rewards, k=k, conflicts=conflicts)
+
+    def estimate(self, *, ks, rewards, scores=None, answers=None, max_subsets=MAX_SUBSETS, seed=0,
+                 conflicts="error"):
+        self._need(scores, answers)
+        return _exact(majority_vote_per_prompt(answers, rewards, ks=ks, conflicts=conflicts))
+
+    def credit(self, scores, rewards, *, k, answers=None, max_subsets=MAX_SUBSETS, seed=0, conflicts="error"):
+        self._need(scores, answers)
+        return majority_vote_credit(answers, rewards, k=k, conflicts=conflicts)
+
+
+@dataclass(frozen=True)
+class WeightedVote(Strategy):
+    """The answer with the largest total verifier score (non-negative weights) among k samples."""
+
+    name: str = "weighted_vote"
+    uses_answers: bool = True
+
+    def value(self, probs, *, k, rewards, scores=None, answers=None, conflicts="error"):
+        self._need(scores, answers)
+        return weighted_vote_value(probs, answers, scores, rewards, k=k, conflicts=conflicts)
+
+    def estimate(self, *, ks, rewards, scores=None, answers=None, max_subsets=MAX_SUBSETS, seed=0,
+                 conflicts="error"):
+        self._need(scores, answers)
+        return weighted_vote_per_prompt(answers, scores, rewards, ks=ks, max_subsets=max_subsets, seed=seed,
+                                        conflicts=conflicts)
+
+    def credit(self, scores, rewards, *, k, answers=None, max_subsets=MAX_SUBSETS, seed=0, conflicts="error"):
+        self._need(scores, answers)
+        return weighted_vote_credit(answers, scores, rewards, k=k, max_subsets=max_subsets, seed=seed,
+                                    conflicts=conflicts)
+
+
+_BY_NAME = {s.name: s for s in (BestOfK(), MajorityVote(), WeightedVote(), PassAtK())}
+STRATEGY_NAMES = tuple(_BY_NAME)
+
+
+def get_strategy(strategy) -> Strategy:
+    """A :class:`Strategy` from itself or its id (``best_of_k``, ``majority_vote``, ``weighted_vote``, ``pass_at_k``)."""
+    if isinstance(strategy, Strategy):
+        return strategy
+    if isinstance(strategy, str) and strategy in _BY_NAME:
+        return _BY_NAME[strategy]
+    hint = f" (the strategy id is {_NOT_IDS[strategy]!r})" if isinstance(strategy, str) and strategy in _NOT_IDS else ""
+    raise ValueError(f"strategy must be one of {', '.join(STRATEGY_NAMES)}, got {strategy!r}{hint}")
+
+
+def strategy_value(strategy, probs, *, k, rewards, scores=None, answers=None, conflicts="error"):
+    r"""Exact ``V_k`` of any strategy on a finite outcome set.
+
+    Shape: ``probs (..., V)``, ``scores, rewards (..., V) or (V,)``, ``answers (V,) -> (...)``.
+
+    .. math:: V_k = E_{y_1..y_k \sim \pi}\,[R(\mathrm{sel}(y_1..y_k))]
+
+    :meth:`Strategy.value` of :func:`get_strategy` ``(strategy)``: best_of_k:
+    :func:`bonft.bon.best_of_k_value`; pass_at_k: the same with ``scores = rewards``;
+    majority_vote: :func:`bonft.strategies.exact.majority_vote_value`; weighted_vote:
+    :func:`bonft.strategies.exact.weighted_vote_value`.
+
+    References: Chow et al. 2024; Wang et al. 2023; Li et al. 2023; Chen et al. 2021.
+    """
+    return get_strategy(strategy).value(probs, k=k, rewards=rewards, scores=scores, answers=answers,
+                                        conflicts=conflicts)
+
+
+def strategy_per_prompt(strategy, *, ks, rewards, scores=None, answers=None, max_subsets=MAX_SUBSETS, seed=0,
+                        conflicts="error"):
+    r"""Unbiased ``V_k`` of any strategy for every pool, with the Monte-Carlo standard error.
+
+    Shape: ``rewards, scores, answers (P, n) -> (values (P, K), stderr (P, K))``.
+
+    .. math:: \hat V_k = \binom nk^{-1}\sum_{|S|=k} f(S)
+
+    :meth:`Strategy.estimate`: best_of_k: :func:`bonft.estimate.best_of_k_per_prompt`; pass_at_k:
+    :func:`bonft.estimate.pass_at_k_per_prompt` (Chen et al. 2021 for 0/1 rewards); majority_vote /
+    weighted_vote: :mod:`bonft.strategies.estimators`. stderr is 0 wherever the estimate is exact.
+
+    References: Hoeffding 1948; Chen et al. 2021; Chow et al. 2024; Wang et al. 2023.
+    """
+    return get_strategy(strategy).estimate(ks=ks, rewards=rewards, scores=scores, answers=answers,
+                                           max_subsets=max_subsets, seed=seed, conflicts=conflicts)
+
+
+def strategy_credit(strategy, scores, rewards, *, k, answers=None, max_subsets=MAX_SUBSETS, seed=0,
+                    conflicts="error"):
+    r"""Per-sample credit of any strategy, unbiased for ``grad V_k``, with a leave-one-out baseline.
+
+    Shape: ``scores, rewards, answers (B, n) -> credit (B, n)``.
+
+    .. math:: w_i = \hat V_k(\text{pool}) - \hat V_{\min(k,n-1)}(\text{pool}\setminus i)
+
+    :meth:`Strategy.credit`: best_of_k: :func:`bonft.objectives.credit.best_of_k_credit`; pass_at_k:
+    the same with ``scores = rewards``; majority_vote / weighted_vote: :mod:`bonft.strategies.estimators`.
+
+    References: Kool et al. 2019; Chow et al. 2024; Hoeffding 1948.
+    """
+    return get_strategy(strategy).credit(scores, rewards, k=k, answers=answers, max_subsets=max_subsets, seed=seed,
+                                         conflicts=conflicts)

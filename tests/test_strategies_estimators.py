@@ -1,0 +1,87 @@
+"""Pool rules of the vote estimators (bonft.strategies.estimators): one reward per answer unless a stated
+rule resolves it, and weighted-vote scores as non-negative weights, checked against brute force over every
+k-subset of a pool (the U-statistic's definition, Hoeffding 1948; weighted vote by total score, Li et al. 2023).
+"""
+from __future__ import annotations
+
+import itertools
+
+import numpy as np
+import pytest
+
+from bonft.strategies import (majority_vote_credit, majority_vote_per_prompt, strategy_credit, weighted_vote_credit,
+                              weighted_vote_per_prompt)
+
+
+def _weighted_served(idx, ans, w, rew) -> float:
+    """Reward served by a weighted vote on the samples idx, from the rule as documented: the answer with
+    the largest total weight wins (ties uniform among the tied answers); one of its samples is served."""
+    tot = {}
+    for i in idx:
+        tot[ans[i]] = tot.get(ans[i], 0.0) + w[i]
+    top = max(tot.values())
+    win = [a for a in tot if tot[a] == top]
+    return float(np.mean([np.mean([rew[i] for i in idx if ans[i] == a]) for a in win]))
+
+
+def _brute(ans, w, rew, k) -> float:
+    return float(np.mean([_weighted_served(S, ans, w, rew) for S in itertools.combinations(range(len(rew)), k)]))
+
+
+@pytest.mark.parametrize("seed", range(6))
+def test_weighted_vote_with_non_negative_weights_matches_every_k_subset(seed):
+    # weights include exact zeros (an answer present with total 0 still ties when all totals are 0)
+    # and repeats (ties between answers); one reward per answer
+    rng = np.random.default_rng(seed)
+    n = 9
+    ans = rng.integers(0, 4, n)
+    w = rng.choice([0.0, 0.0, 0.25, 0.5, 1.0, 2.0], n)
+    rew = np.array([1.0, 0.0, 0.5, 0.0])[ans]
+    got, se = weighted_vote_per_prompt([ans], [w], [rew], ks=list(range(1, n + 1)))
+    want = [_brute(ans, w, rew, k) for k in range(1, n + 1)]
+    np.testing.assert_allclose(got[0], want, atol=1e-13)
+    assert (se == 0).all()
+
+
+def test_weighted_vote_all_zero_weights_is_a_uniform_tie():
+    # by hand: every total is 0, so every answer among the k ties: k = 2 of answers (a, a, b) with
+    # rewards (1, 1, 0): {0,1} serves a (1), {0,2} and {1,2} tie a/b (0.5 each) -> V_2 = 2/3
+    v, _ = weighted_vote_per_prompt([["a", "a", "b"]], [[0.0, 0.0, 0.0]], [[1.0, 1.0, 0.0]], ks=[2])
+    assert abs(v[0, 0] - 2 / 3) < 1e-15
+
+
+def test_negative_weights_are_refused_naming_the_argument():
+    with pytest.raises(ValueError, match=r"scores\[1\] must be non-negative weights for weighted_vote "
+                                         r"\(exponentiate log-probabilities first\), got -0.5 at sample 2"):
+        weighted_vote_per_prompt([[0, 1, 1], [0, 0, 1]], [[1.0, 1.0, 1.0], [0.2, 0.1, -0.5]],
+                                 [[1.0, 0.0, 0.0], [1.0, 1.0, 0.0]], ks=[2])
+    with pytest.raises(ValueError, match=r"scores\[0\] must be non-negative"):
+        weighted_vote_credit([[0, 1, 1]], [[-1.0, 1.0, 1.0]], [[1.0, 0.0, 0.0]], k=2)
+
+
+def test_one_answer_with_two_rewards_is_refused_naming_prompt_and_answer():
+    ans = [["7", "7", "3"], ["12", "x", "12", "12"]]
+    rew = [[1.0, 1.0, 0.0], [1.0, 0.0, 1.0, 0.0]]  # prompt 1: answer '12' rewarded 1 and 0
+    msg = (r"rewards\[1\] must be one value per answer for majority_vote, got answer '12' with rewards 1 \(sample 0\) "
+           r"and 0 \(sample 3\); pass conflicts='mean' to serve the mean reward of the answer's samples")
+    with pytest.raises(ValueError, match=msg):
+        majority_vote_per_prompt(ans, rew, ks=[1])
+    square = ([["a", "a", "b"]], [[1.0, 0.0, 1.0]])
+    with pytest.raises(ValueError, match=r"rewards\[0\] must be one value per answer for majority_vote, got answer 'a'"):
+        majority_vote_credit(*square, k=2)
+    with pytest.raises(ValueError, match=r"rewards\[0\] must be one value per answer for weighted_vote, got answer 'a'"):
+        weighted_vote_per_prompt(square[0], [[1.0, 1.0, 1.0]], square[1], ks=[2])
+    with pytest.raises(ValueError, match=r"rewards\[0\] must be one value per answer for weighted_vote"):
+        strategy_credit("weighted_vote", [[1.0, 1.0, 1.0]], square[1], answers=square[0], k=2)
+    with pytest.raises(ValueError, match=r"conflicts must be one of"):
+        majority_vote_per_prompt(*square, ks=[1], conflicts="first")
+
+
+def test_conflicts_mean_serves_the_mean_of_the_winners_samples():
+    # by hand, pool (a, a, b) with rewards (1, 0, 1), k = 2: {0,1} a wins, mean(1, 0) = 0.5; {0,2} and
+    # {1,2} tie a/b, so (1 + 1)/2 = 1 and (0 + 1)/2 = 0.5 -> V_2 = 2/3; k = 1: the mean reward 2/3
+    v = majority_vote_per_prompt([["a", "a", "b"]], [[1.0, 0.0, 1.0]], ks=[1, 2], conflicts="mean")
+    np.testing.assert_allclose(v[0], [2 / 3, 2 / 3], atol=1e-15)
+    w, _ = weighted_vote_per_prompt([["a", "a", "b"]], [[1.0, 1.0, 1.0]], [[1.0, 0.0, 1.0]], ks=[2], conflicts="mean")
+    # weights 1 each: {0,1} a (total 2) wins -> 0.5; {0,2}, {1,2}: totals 1 and 1 tie -> 1 and 0.5
+    assert abs(w[0, 0] - 2 / 3) < 1e-15
