@@ -14,7 +14,6 @@ from typing import Any, Iterable, Sequence
 import numpy as np
 
 
-
 def is_tensor(x: Any) -> bool:
     """True for a torch tensor; never imports torch (a cold import costs seconds)."""
     if not type(x).__module__.startswith("torch"):
@@ -35,6 +34,40 @@ def check_int(name: str, value: Any, *, min: int | None = None, max: int | None 
         raise ValueError(f"{name} must be >= {min}, got {name}={value}")
     if max is not None and value > max:
         raise ValueError(f"{name} must be <= {max}, got {name}={value}")
+    return value
+
+
+# ---------------------------------------------------------------- bounds of the knobs that size work or memory
+# Each is checked before any work, by the API and (through it or the same constant) the command line.
+MAX_BOOT = 1_000_000  # bootstrap replicates: a (replicates x values) table; past this no interval moves measurably
+MAX_SUBSETS_BOUND = 1_000_000  # weighted vote: sampled k-subsets, each drawing n random keys at once
+MAX_POOL = 65_536  # samples per prompt (n, eval_samples): a pool is sampled, scored and credited at once
+MAX_PROMPTS_PER_STEP = 65_536  # prompts per optimizer step
+MAX_SAMPLES_AT_ONCE = 2**20  # responses one micro-batch samples at once ((prompts_per_step / grad_accum) x n)
+SEED_BOUND = 2**63  # seeds in [0, 2**63): what torch.manual_seed and numpy's generators both take as an int64
+
+
+def check_bound(name: str, value: Any, *, max: int, why: str, min: int = 1) -> int:
+    """An int in ``[min, max]`` whose upper bound has a reason: ``n_boot must be <= 1,000,000 (why), got ...``."""
+    value = check_int(name, value, min=min)
+    if value > max:
+        raise ValueError(f"{name} must be <= {max:,} ({why}), got {name}={value:,}")
+    return value
+
+
+def check_n_boot(n_boot: Any, *, name: str = "n_boot", min: int = 1) -> int:
+    """Bootstrap replicates in ``[min, MAX_BOOT]``."""
+    return check_bound(name, n_boot, min=min, max=MAX_BOOT,
+                       why="each replicate is a row of the bootstrap table held in memory; more than this cost time "
+                           "and memory and do not move a percentile interval measurably")
+
+
+def check_seed(seed: Any, *, name: str = "seed") -> int:
+    """A seed in ``[0, 2**63)``: the range torch.manual_seed and numpy's generators both take."""
+    value = check_int(name, seed, min=0)
+    if value >= SEED_BOUND:
+        raise ValueError(f"{name} must be < 2**63 (the int64 range torch and numpy random generators take), "
+                         f"got {name}={value}")
     return value
 
 
@@ -142,21 +175,62 @@ def check_choice(name: str, value: Any, choices: Iterable[str]) -> str:
     return value
 
 
+_KIND_NAMES = {"c": "complex numbers", "U": "strings", "S": "bytes", "M": "dates", "m": "time spans", "V": "raw records"}
+
+
+def _not_real(name: str, what: str, dtype: Any) -> TypeError:
+    return TypeError(f"{name} must hold real numbers, got {what} (dtype {dtype}); convert it explicitly "
+                     f"(e.g. its real part or its absolute value)" if what == "complex numbers" else
+                     f"{name} must hold real numbers, got {what} (dtype {dtype})")
+
+
 def as_float_array(name: str, x: Any, *, ndim: int | Sequence[int] | None = None) -> np.ndarray:
-    """Convert numpy / torch / nested lists to a float64 numpy array (no copy when possible)."""
+    """Convert numpy / torch / nested lists to a float64 numpy array (no copy when possible).
+
+    The one dtype policy of every public boundary: real floating data of any width is accepted and
+    widened to float64 before any arithmetic (float16 and bfloat16 included, so nothing overflows in
+    the narrow type); integers and booleans convert exactly up to 2**53 (functions that document
+    other meanings check them first); complex numbers, strings, bytes, dates and None are refused
+    with a ``TypeError`` naming the argument (never a silent cast that drops the imaginary part).
+    """
     if is_tensor(x):
-        x = x.detach().cpu().numpy()
+        t = x.detach()
+        if t.is_complex():
+            raise _not_real(name, "complex numbers", t.dtype)
+        import torch
+
+        x = t.to(device="cpu", dtype=torch.float64).numpy()  # float16 / bfloat16 have no exact numpy route
     if isinstance(x, (str, bytes)) or x is None:
         raise TypeError(f"{name} must be an array of numbers, got {type(x).__name__}")
     try:
-        arr = np.asarray(x, dtype=np.float64)
-    except (TypeError, ValueError):
-        raise TypeError(f"{name} must be an array of numbers, got {type(x).__name__}") from None
+        arr = np.asarray(x)
+        kind = arr.dtype.kind
+        if kind in _KIND_NAMES:
+            raise _not_real(name, _KIND_NAMES[kind], arr.dtype)
+        arr = arr.astype(np.float64, copy=False)
+    except OverflowError:
+        raise ValueError(f"{name} must hold numbers within the float64 range (|x| < 1.8e308), "
+                         f"got an integer beyond it") from None
+    except (TypeError, ValueError) as e:
+        if str(e).startswith(f"{name} must"):
+            raise
+        raise TypeError(f"{name} must be an array of real numbers, got {type(x).__name__}") from None
     if ndim is not None:
         allowed = (ndim,) if isinstance(ndim, int) else tuple(ndim)
         if arr.ndim not in allowed:
             raise ValueError(f"{name} must have {' or '.join(map(str, allowed))} dimension(s), got shape {tuple(arr.shape)}")
     return arr
+
+
+def torch_out_dtype(x: Any):
+    """The dtype a torch result takes for a torch input ``x``: float32 and float64 kept, the half-precision
+    types widened to float32 (a result computed in float64 may not fit float16: credit of rewards +-6e4
+    is +-1.2e5 > 65504), anything else float64."""
+    import torch
+
+    if x.dtype in (torch.float16, torch.bfloat16):
+        return torch.float32
+    return x.dtype if x.dtype.is_floating_point else torch.float64
 
 
 def check_finite(name: str, x: Any) -> None:

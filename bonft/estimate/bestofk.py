@@ -99,7 +99,8 @@ def pass_at_k_per_prompt(rewards, *, ks):
 
     References: Chen et al. 2021, "Evaluating Large Language Models Trained on Code".
     """
-    if _is_ragged_list(rewards):
+    if _is_ragged_list(rewards):  # checked here, so that a bad pool is named rewards[p], not scores[p]
+        rewards = [as_float_array(f"rewards[{p}]", x, ndim=1) for p, x in enumerate(rewards)]
         return best_of_k_per_prompt(rewards, rewards, ks=ks)
     r = as_float_array("rewards", rewards, ndim=2)
     return best_of_k_per_prompt(r, r, ks=ks)

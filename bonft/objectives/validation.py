@@ -14,7 +14,7 @@ from typing import Any
 
 import numpy as np
 
-from bonft._core.checks import as_float_array, check_finite, check_nonempty, is_tensor
+from bonft._core.checks import as_float_array, check_finite, check_nonempty, is_tensor, torch_out_dtype
 
 
 def as_host(name: str, x: Any, *, ndim: int) -> np.ndarray:
@@ -36,13 +36,11 @@ def as_host(name: str, x: Any, *, ndim: int) -> np.ndarray:
 
 
 def out_kind(*xs: Any):
-    """Output as torch if any input is a tensor (its device, its floating dtype), else numpy float64."""
+    """Output as torch if any input is a tensor (its device, its floating dtype, half precision widened to float32),
+    else numpy float64."""
     for x in xs:
         if is_tensor(x):
-            import torch
-
-            dtype = x.dtype if x.dtype.is_floating_point else torch.float64
-            return True, dtype, x.device
+            return True, torch_out_dtype(x), x.device
     return False, None, None
 
 
