@@ -11,8 +11,10 @@ estimate of the gradient of the objective for that prompt. Credit is plain
 data: nothing here calls autograd. Inputs may be numpy arrays, nested lists or
 torch tensors; a torch input gives a torch output on the same device (dtype of
 the reward-like input when it is floating, else float64), anything else gives
-a float64 numpy array. The maths runs in float64 numpy on the host (see
-:mod:`bonft.objectives.validation`); hyper-parameters are keyword-only.
+a float64 numpy array. The maths runs in float64 numpy on the host: each
+public function checks its inputs once (:mod:`bonft.objectives.validation`)
+and calls a private float64 core below it that trusts them; hyper-parameters
+are keyword-only.
 
 Caution: credit pushes the policy towards whatever the verifier and reward
 prefer. A verifier that can be fooled (a reward model, an incomplete unit-test
@@ -27,20 +29,26 @@ Karkhanis 2025 (U-statistic pass@k gradients).
 """
 from __future__ import annotations
 
-from bonft._core.checks import check_bool, check_choice, check_k
-from bonft.objectives._credit_core import (
-    _bon_rl_core, _bon_sft_core, _correct_pool, _expert_pool, _pass_at_k_core, _reinforce_core, _scored_pool,
-)
-from bonft.objectives.validation import as_host, finish, out_kind
+import functools
 
-__all__ = ["bon_rl_credit", "pass_at_k_credit", "bon_sft_credit", "reinforce_credit", "pool_value"]
+import numpy as np
+
+from bonft._core.checks import check_bool, check_choice, check_k
+from bonft._core.passk import log_miss, pass_at_k_counts
+from bonft._core.ties import first_of_group, flat_groups
+from bonft._core.ustat import count_tables
+from bonft.objectives.validation import (
+    as_host, check_loo_pool, correct_pool, finish, out_kind, reference_pool, scored_pool,
+)
+
+__all__ = ["best_of_k_credit", "pass_at_k_credit", "best_of_k_sft_credit", "reinforce_credit", "pool_value"]
 
 
 # ----------------------------------------------------------------------------
 # public API
 # ----------------------------------------------------------------------------
 
-def bon_rl_credit(scores, rewards, *, k, baseline="loo"):
+def best_of_k_credit(scores, rewards, *, k, baseline="loo"):
     r"""Unbiased credit for the best-of-k value ``V_k`` with a verifier.
 
     Shape: ``scores (B, n), rewards (B, n) -> credit (B, n)``.
@@ -64,10 +72,10 @@ def bon_rl_credit(scores, rewards, *, k, baseline="loo"):
     is leave-one-out REINFORCE (Kool et al. 2019), see :func:`reinforce_credit`.
 
     ``baseline="none"`` drops ``b_i`` (same mean, more variance). With the
-    ``"loo"`` baseline, equal rewards give exactly zero credit when ``n >= 2``.
-    A single sample (``n = 1``) has nobody to leave out: its baseline is 0 and
-    its credit is its reward, which keeps the estimate unbiased (plain
-    REINFORCE) rather than silently returning no signal.
+    ``"loo"`` baseline, equal rewards give exactly zero credit. A single
+    sample (``n = 1``) has nobody to leave out: ``baseline="loo"`` refuses it
+    (``ValueError`` naming n); draw ``n >= 2`` or pass ``baseline="none"``
+    (credit = reward, plain REINFORCE).
 
     Cost: one sort and a few prefix sums per row, O(n log n), no Python loop
     over samples; binomial ratios come from exact tables
@@ -81,10 +89,12 @@ def bon_rl_credit(scores, rewards, *, k, baseline="loo"):
     baseline for free!".
     """
     kind = out_kind(rewards, scores)
-    s, R = _scored_pool(scores, rewards)
+    s, R = scored_pool(scores, rewards)
     k = check_k(k, s.shape[1])
     check_choice("baseline", baseline, ("loo", "none"))
-    return finish(_bon_rl_core(s, R, k, baseline)[0], kind)
+    if baseline == "loo":
+        check_loo_pool(s.shape[1], "best_of_k_credit")
+    return finish(_best_of_k_core(s, R, k, baseline)[0], kind)
 
 
 def pool_value(scores, rewards, *, k):
@@ -94,14 +104,14 @@ def pool_value(scores, rewards, *, k):
 
     .. math:: \hat V_k = \frac{1}{\binom nk}\sum_{|S|=k} E[R_{\mathrm{sel}(S)}]
 
-    Unbiased for ``V_k`` (exact with ties). Same kinds in/out as :func:`bon_rl_credit`.
+    Unbiased for ``V_k`` (exact with ties). Same kinds in/out as :func:`best_of_k_credit`.
 
     References: Chow et al. 2024; Hoeffding 1948 (U-statistics).
     """
     kind = out_kind(rewards, scores)
-    s, R = _scored_pool(scores, rewards)
+    s, R = scored_pool(scores, rewards)
     k = check_k(k, s.shape[1])
-    return finish(_bon_rl_core(s, R, k, "none")[1], kind)
+    return finish(_best_of_k_core(s, R, k, "none")[1], kind)
 
 
 def pass_at_k_credit(correct, *, k, estimator="unbiased", positive_only=False):
@@ -113,7 +123,7 @@ def pass_at_k_credit(correct, *, k, estimator="unbiased", positive_only=False):
         w_i = \frac kn\Big(1 - (1 - c_i)\frac{\binom{n-1-c}{k-1}}{\binom{n-1}{k-1}}
               - \mathrm{pass@}k_{\,b}(\text{others of } i)\Big)
 
-    ``estimator="unbiased"`` (default): :func:`bon_rl_credit` with scores =
+    ``estimator="unbiased"`` (default): :func:`best_of_k_credit` with scores =
     rewards = ``correct``, in closed counts. With ``c`` correct samples,
     the k-subset sums over ``C(n,k)`` are ``k/n`` for a correct sample and
     ``(C(n-1,k-1) - C(n-c-1,k-1))/C(n,k)`` for an incorrect one; the
@@ -141,25 +151,34 @@ def pass_at_k_credit(correct, *, k, estimator="unbiased", positive_only=False):
         zero unbiased credit when the subset is the whole pool).
     With ``estimator="plugin"`` it estimates the same thing consistently.
 
+    Needs ``n >= 2`` (``ValueError`` naming n otherwise): with one sample the
+    unbiased credit has no other sample for its baseline and the plug-in
+    credit is identically zero.
+
     References: Chen et al. 2021, "Evaluating Large Language Models Trained on
     Code"; Walder & Karkhanis 2025; Chow et al. 2024.
     """
     kind = out_kind(correct)
-    c = _correct_pool(correct)
+    c = correct_pool(correct)
     k = check_k(k, c.shape[1])
     check_choice("estimator", estimator, ("unbiased", "plugin"))
     check_bool("positive_only", positive_only)
+    if c.shape[1] < 2:
+        raise ValueError(
+            "n must be >= 2 for pass_at_k_credit (n=1: the unbiased credit's baseline leaves the only sample out "
+            "and the plug-in credit is identically 0); draw n >= 2 samples per prompt or use "
+            "best_of_k_credit(correct, correct, k=1, baseline='none')")
     return finish(_pass_at_k_core(c, k, estimator, positive_only), kind)
 
 
-def bon_sft_credit(scores, expert_scores, *, k, smoothing=1.0):
-    r"""Credit for the policy samples in best-of-k-aware SFT on an expert response.
+def best_of_k_sft_credit(scores, reference_scores, *, k, smoothing=1.0):
+    r"""Credit for the policy samples in best-of-k-aware SFT on a reference response.
 
     Shape: ``scores (B, n)`` verifier scores of the policy samples,
-    ``expert_scores (B,)`` score ``s*`` of each prompt's expert response
+    ``reference_scores (B,)`` score ``s*`` of each prompt's reference (gold) response
     ``-> credit (B, n)``.
 
-    The objective is the log-probability that best-of-k *selects* the expert
+    The objective is the log-probability that best-of-k *selects* the reference
     response ``y*`` (Chow et al. 2024, BoN-SFT):
 
     .. math::
@@ -168,7 +187,7 @@ def bon_sft_credit(scores, expert_scores, *, k, smoothing=1.0):
 
     with ``F = P(s <= s*)`` and ``F_< = P(s < s*)`` under ``pi`` (continuous
     scores: ``h = log k + (k-1) log F``). The ``log pi(y*)`` term is the usual
-    SFT term (see :func:`bonft.objectives.losses.bon_sft_loss`); this function returns
+    SFT term (see :func:`bonft.objectives.losses.best_of_k_sft_loss`); this function returns
     the credit for the policy samples that estimates ``grad h``:
 
       ``w_i = (1/n) [h_F (u_i - mean_{-i} u) + h_<(v_i - mean_{-i} v)]``,
@@ -176,14 +195,14 @@ def bon_sft_credit(scores, expert_scores, *, k, smoothing=1.0):
 
     i.e. ``grad F = E[(1{s <= s*} - F) grad log pi]`` with a leave-one-out
     baseline, and the partial derivatives ``h_F, h_<`` (both >= 0) evaluated
-    at pool estimates. Samples that beat the expert get negative credit,
+    at pool estimates. Samples that beat the reference get negative credit,
     samples below it positive credit.
 
-    Smoothing: the pool estimates count the expert response itself as
+    Smoothing: the pool estimates count the reference response itself as
     ``smoothing`` pseudo-samples at ``s*``:
     ``F_hat = (#{s_i <= s*} + smoothing)/(n + smoothing)``,
     ``F<_hat = #{s_i < s*}/(n + smoothing)``. With ``smoothing > 0`` the
-    estimate is finite even when no sample scores at or below the expert;
+    estimate is finite even when no sample scores at or below the reference;
     ``smoothing=0`` is allowed but such a row raises ``ValueError``.
 
     Bias: a ratio estimator (the derivatives of ``h`` are evaluated at
@@ -194,8 +213,8 @@ def bon_sft_credit(scores, expert_scores, *, k, smoothing=1.0):
     Sampling in LLMs" (BoN-SFT).
     """
     kind = out_kind(scores)
-    s, e, k, smoothing = _expert_pool(scores, expert_scores, k, smoothing)
-    return finish(_bon_sft_core(s, e, k, smoothing), kind)
+    s, e, k, smoothing = reference_pool(scores, reference_scores, k=k, smoothing=smoothing)
+    return finish(_best_of_k_sft_core(s, e, k, smoothing), kind)
 
 
 def reinforce_credit(rewards, *, baseline="loo"):
@@ -206,12 +225,197 @@ def reinforce_credit(rewards, *, baseline="loo"):
     .. math:: w_i = \frac{1}{n}\Big(R_i - \frac{1}{n-1}\sum_{j\ne i}R_j\Big)
 
     Unbiased for ``grad E[R]`` (= ``grad V_1``); identical to
-    ``bon_rl_credit(scores, rewards, k=1)`` for any scores. ``baseline="none"``:
-    ``w_i = R_i/n``. With ``n = 1`` there are no others and the baseline is 0.
+    ``best_of_k_credit(scores, rewards, k=1)`` for any scores. ``baseline="none"``:
+    ``w_i = R_i/n``. With ``n = 1`` there are no others: ``baseline="loo"``
+    raises ``ValueError`` (draw ``n >= 2``, or pass ``baseline="none"``).
 
     References: Kool et al. 2019, "Buy 4 REINFORCE samples, get a baseline for free!".
     """
     kind = out_kind(rewards)
     R = as_host("rewards", rewards, ndim=2)
     check_choice("baseline", baseline, ("loo", "none"))
+    if baseline == "loo":
+        check_loo_pool(R.shape[1], "reinforce_credit")
     return finish(_reinforce_core(R, baseline), kind)
+
+
+# ----------------------------------------------------------------------------
+# float64 numpy cores (inputs checked by the public functions above)
+# ----------------------------------------------------------------------------
+
+def _best_of_k_core(s: np.ndarray, R: np.ndarray, k: int, baseline: str) -> tuple[np.ndarray, np.ndarray]:
+    """Scores, rewards (B, n) -> (credit (B, n), pool U-statistic V_k (B,)).
+
+    Sorted ascending, sample i sits in a tie group G of size m with L samples
+    below. Its k-subset sum splits into subsets whose top group is G (i plus
+    t-1 tied mates plus k-t from below) and subsets whose top group H lies
+    above G (i is one of the k-t from below H). Summing over t with
+    Vandermonde's identity gives, divided by C(n, k),
+      own:   R_i (C(m+L,k) - C(L,k))/m
+           + (sum_G R - R_i) (m C(m+L-1,k-1) - C(m+L,k) + C(L,k)) / (m(m-1))
+      above: sum_{H above G} sum_H R (C(m_H+L_H-1,k-1) - C(L_H-1,k-1)) / m_H.
+    The leave-one-out U-statistic over C(n-1, kb) follows the same way:
+    removing i shrinks G to m-1 and lowers L by one for every group above.
+    Every binomial ratio is a lookup in :func:`bonft._core.ustat.count_tables`.
+    """
+    B, n = s.shape
+    loo = baseline == "loo" and n > 1
+    # flat (B*n,) views throughout: row b occupies [b*n, (b+1)*n); every group lies inside one row
+    fo = (np.argsort(s, axis=-1) + (np.arange(B, dtype=np.int64) * n)[:, None]).ravel()  # ties: any order
+    starts, gid, m = flat_groups(first_of_group(s.ravel().take(fo).reshape(B, n)))  # tie groups, row by row
+    if len(starts) == B * n:  # no tied scores (e.g. a reward model's): each group is one sample
+        return _best_of_k_distinct(R.ravel().take(fo).reshape(B, n), fo, R[:, 0] if loo else np.zeros(B), k, loo)
+    gL = starts % n  # samples strictly below the group in its row
+    gend = gL + m - 1  # last sorted index of the group in its row
+    per_row = np.bincount(starts // n, minlength=B)  # groups per row
+    row_last = np.repeat(np.cumsum(per_row) - 1, per_row)  # (G,) last group of the group's row
+    row_first = row_last - np.repeat(per_row, per_row) + 1
+
+    def above(x):  # (G,) -> sum over the groups above each group in its row
+        cx = np.cumsum(x)
+        return cx[row_last] - cx
+
+    def below(x):  # (G,) -> sum over the groups below each group in its row
+        cx = np.cumsum(x) - x
+        return cx - cx[row_first]
+
+    # loo credit is unchanged by a constant shift of a row's rewards (the k/n terms cancel);
+    # shifting by one of the row's own rewards makes all-equal rewards give exactly 0
+    shift = R[:, 0] if loo else np.zeros(B)
+    sg = shift.take(starts // n)  # (G,) shift of each group's row
+    r = R.ravel().take(fo)  # (B*n,) rewards in score order
+    r -= sg.take(gid)  # equal rewards become exact zeros, so their credit is exactly 0
+    mf = m.astype(np.float64)
+    gsum = np.add.reduceat(r, starts)  # (G,) reward sum of each group
+    Ck, Ck1, Cb = count_tables(n, k)  # entry x+1 for x = -1..n
+    ck_lo, ck_hi, ck1_hi1 = Ck.take(gL + 1), Ck.take(gend + 2), Ck1.take(gend + 1)  # C(L,k), C(L+m,k), C(L+m-1,k-1)
+    a = (ck_hi - ck_lo) / mf  # own reward, top group G
+    c = (mf * ck1_hi1 - ck_hi + ck_lo) / np.maximum(mf * (mf - 1), 1.0)  # each tied mate; m = 1: 0 by Pascal
+    A = (ck1_hi1 - Ck1.take(gL)) / mf  # as a top group over one fixed lower sample
+    # every term is (own reward) x (group coefficient) + (group constant): W_i = r_i alpha_G + beta_G
+    alpha = a - c
+    beta = gsum * c + above(gsum * A)  # tied mates' sum is gsum - r_i
+    group_total = gsum * alpha + mf * beta  # sum of W over the group's members
+    pool = np.add.reduceat(group_total, np.cumsum(per_row) - per_row) / k + shift  # sum_S g(S) = (1/k) sum_i W_i
+    if loo:
+        cb_lo1, cb_lo, cb_hi1, cb_hi = Cb.take(gL), Cb.take(gL + 1), Cb.take(gend + 1), Cb.take(gend + 2)
+        own = (cb_hi1 - cb_lo) / np.maximum(mf - 1, 1.0)  # own group shrinks to m-1; m = 1: 0
+        # groups below keep their L and m; groups above see L-1 below
+        outside = below(gsum * (cb_hi - cb_lo) / mf) + above(gsum * (cb_hi1 - cb_lo1) / mf)
+        kn = k / n  # C(n-1,k-1)/C(n,k)
+        alpha = alpha + kn * own
+        beta = beta - kn * (outside + gsum * own)
+    W = r * alpha.take(gid)
+    W += beta.take(gid)
+    out = np.empty(B * n)
+    out[fo] = W
+    return out.reshape(B, n), pool
+
+
+def _best_of_k_distinct(r: np.ndarray, fo: np.ndarray, shift: np.ndarray, k: int,
+                     loo: bool) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`_best_of_k_core` without ties: rewards in score order (B, n), every group one sample at rank L.
+
+    With m = 1 the tied-mate terms vanish and each coefficient depends on the rank alone:
+    ``W_L = r_L w_k(L) + sum_{j>L} r_j (C(j,k-1) - C(j-1,k-1))/C(n,k)``, minus, with the
+    leave-one-out baseline, ``k/n`` times the same sums over the other n-1 samples.
+    """
+    B, n = r.shape
+    r = r - shift[:, None]  # equal rewards become exact zeros (loo); a no-op shift otherwise
+    Ck, Ck1, Cb = count_tables(n, k)  # entry x+1 for x = -1..n
+    a = Ck[2:] - Ck[1:-1]  # (n,) own reward as the top of the subset: w_k(L)
+    A = Ck1[1:-1] - Ck1[:-2]  # (n,) as one of the k-1 below a higher top
+
+    def above(x):  # sum over the ranks above each rank, per row
+        cx = np.cumsum(x, axis=1)
+        return cx[:, -1:] - cx
+
+    W = r * a
+    W += above(r * A)
+    pool = W.sum(axis=1) / k + shift  # sum_S g(S) = (1/k) sum_i W_i
+    if loo:
+        x = r * (Cb[2:] - Cb[1:-1])  # ranks below keep their place
+        below = np.cumsum(x, axis=1) - x
+        W -= (k / n) * (below + above(r * (Cb[1:-1] - Cb[:-2])))  # ranks above move down by one
+    out = np.empty(B * n)
+    out[fo] = W.ravel()
+    return out.reshape(B, n), pool
+
+
+@functools.lru_cache(maxsize=256)
+def _pass_tables(n: int, k: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(n+1,) tables over c = correct samples in the pool, for the unbiased pass@k credit.
+
+    ``q[c] = C(n-1-c, k-1)/C(n-1, k-1)`` (an incorrect sample's k-1 companions miss every correct
+    one), ``b1[c]``, ``b0[c]``: pass@kb of the other n-1 samples when the sample is correct /
+    incorrect (the leave-one-out baseline, Chen et al. 2021's estimator, ``kb = min(k, n-1)``).
+    Cached per ``(n, k)``: a run asks for the same few.
+    """
+    c = np.arange(n + 1)
+    q = np.exp(log_miss(n - 1, np.minimum(c, n - 1), k - 1))  # only used where c <= n-1
+    if n > 1:
+        kb = min(k, n - 1)
+        b1 = pass_at_k_counts(n - 1, np.maximum(c - 1, 0), kb)
+        b0 = pass_at_k_counts(n - 1, np.minimum(c, n - 1), kb)
+    else:
+        b1 = b0 = np.zeros(n + 1)
+    for t in (q, b1, b0):
+        t.flags.writeable = False
+    return q, b1, b0
+
+
+def _pass_at_k_core(c: np.ndarray, k: int, estimator: str, positive_only: bool) -> np.ndarray:
+    """Binary c (B, n) float64 -> credit (B, n)."""
+    B, n = c.shape
+    tot = c.sum(-1, keepdims=True)  # correct samples per prompt
+    if estimator == "plugin":
+        p = tot / n
+        w = (k / n) * (1 - p) ** (k - 1) * (c - p)
+    else:
+        # subset sums over C(n,k) = (k/n) * share of the C(n-1,k-1) subsets holding i that
+        # succeed: all for a correct sample; for an incorrect one those with a correct mate
+        # among its k-1 companions; minus the leave-one-out baseline (all-equal rows give 0)
+        q, b1, b0 = _pass_tables(n, k)
+        ti = tot.astype(np.int64)
+        w = np.where(c > 0, 1.0 - b1.take(ti), 1.0 - q.take(ti) - b0.take(ti))
+        w *= k / n
+    if positive_only:
+        w = w * c
+    return w
+
+
+def _loo_mean(x: np.ndarray) -> np.ndarray:
+    """(B, n) -> mean of the other n-1 entries per position; 0 when n = 1."""
+    n = x.shape[-1]
+    if n == 1:
+        return np.zeros_like(x)
+    return (x.sum(-1, keepdims=True) - x) / (n - 1)
+
+
+def _best_of_k_sft_core(s: np.ndarray, s_star: np.ndarray, k: int, smoothing: float) -> np.ndarray:
+    """Scores (B, n), reference scores (B,) -> sample credit (B, n)."""
+    B, n = s.shape
+    if k == 1:
+        return np.zeros_like(s)
+    u = (s <= s_star[:, None]).astype(np.float64)  # at or below the reference
+    v = (s < s_star[:, None]).astype(np.float64)  # strictly below
+    F = (u.sum(-1) + smoothing) / (n + smoothing)  # reference counted as `smoothing` pseudo-samples at s*
+    F_ = v.sum(-1) / (n + smoothing)
+    # h = log sum_{j<k} F^j F_^(k-1-j) = (k-1) log F + log sum_{q<k} r^q with r = F_/F <= 1
+    r = (F_ / F)[:, None]
+    q = np.arange(k, dtype=np.float64)  # (k,) powers
+    rq = r ** q  # (B, k)
+    z = rq.sum(-1)
+    h_F = ((k - 1 - q) * rq).sum(-1) / (z * F)  # dh/dF
+    h_F_ = (q[1:] * r ** (q[1:] - 1)).sum(-1) / (z * F)  # dh/dF_
+    # grad F = E[(u - F) grad log pi]; leave-one-out mean as the baseline
+    return (h_F[:, None] * (u - _loo_mean(u)) + h_F_[:, None] * (v - _loo_mean(v))) / n
+
+
+def _reinforce_core(R: np.ndarray, baseline: str) -> np.ndarray:
+    n = R.shape[-1]
+    if baseline == "loo":
+        if n > 1:
+            R = R - R[:, :1]  # same credit, exact zeros for all-equal rewards
+        return (R - _loo_mean(R)) / n
+    return R / n

@@ -1,7 +1,8 @@
-"""PyTorch losses for best-of-N-aware fine-tuning: a credit function + one policy-gradient core.
+"""PyTorch losses for best-of-N-aware fine-tuning: a public credit function + one policy-gradient core.
 
-Every named loss is :func:`policy_gradient_loss` applied to the credit of
-:mod:`bonft.objectives.credit` (no gradient through it), so its gradient is
+Every named loss is, literally, :func:`policy_gradient_loss` applied to the
+credit of :mod:`bonft.objectives.credit` (no gradient through it), plus the
+pool value of that credit in ``info``; its gradient is
 
     -(1/B) * sum_b sum_i w_bi * grad log pi(y_bi)       (reduction="mean")
 
@@ -11,7 +12,11 @@ credit into :func:`policy_gradient_loss` the same way.
 Log-probabilities come either per sequence, ``logprobs: (B, n)``, or per token,
 ``logprobs: (B, n, T)`` with an optional ``mask: (B, n, T)`` (True/1 = response
 token, False/0 = padding). Padding tokens change nothing, even if they hold NaN
-or -inf.
+or -inf. :func:`bonft.objectives.logprobs.token_logprobs` turns a causal LM's
+logits and labels into this layout.
+
+The shared keywords (``**common``) are the fields of
+:class:`bonft.objectives.validation.LossOptions`, written once:
 
 ``token_reduction``:
   * ``"sum"`` (default): the sequence log-prob is the sum of its token
@@ -24,32 +29,70 @@ or -inf.
     ``grad V / E[T]`` (length-normalised, biased). Needs token log-probs.
 
 KL penalty to the anchor (common practice): with ``anchor_logprobs`` of the
-same shape as ``logprobs`` (the starting policy's log-probs of the same
-tokens) the loss adds ``anchor_weight * (1/n) sum_i KL_i`` where ``KL_i``
-aggregates the per-token "k3" estimator ``exp(d) - d - 1``, ``d = anchor -
-logp`` (non-negative; from memory: J. Schulman's 2020 note "Approximating KL
+same shape as ``logprobs`` (the anchor policy's log-probs of the same tokens)
+the loss adds ``anchor_weight * (1/n) sum_i KL_i`` where ``KL_i`` aggregates
+the per-token "k3" estimator ``exp(d) - d - 1``, ``d = anchor - logp``
+(non-negative; from memory: J. Schulman's 2020 note "Approximating KL
 divergence") with the same ``token_reduction``. Its *value* is an unbiased
 estimate of KL(pi || anchor) per token on on-policy samples; its *gradient*
 as a loss has mean ``grad KL(anchor || pi)`` (per token), which also pulls
 ``pi`` towards the anchor.
+
+Sample reuse (several optimizer steps per sampled batch): pass
+``sampling_logprobs``, the log-probs of the same tokens under the policy that
+sampled them (``pi_old``, detached). Each term's credit is then weighted by the
+importance ratio ``r = pi/pi_old`` (detached), so the gradient is
+``-(1/B) sum_b sum_i w_bi r * grad log pi(y_bi)``; at ``r = 1`` it is the
+on-policy gradient exactly. ``ratio_level``:
+  * ``"pool"``: ``r_b = prod_i pi(y_bi)/pi_old(y_bi)``, the likelihood ratio of
+    the whole pool. **Unbiased** for the gradient of the objective under
+    ``pi`` for every credit whose on-policy estimate is (the pool is one draw
+    from ``pi_old^n``); its variance grows with ``n`` and with the distance
+    between the policies.
+  * ``"sequence"`` (default): ``r_bi = pi(y_bi)/pi_old(y_bi)`` per sample.
+    Unbiased for credits that are a per-sample reward minus a baseline from
+    the other samples (``reinforce_credit``, ``best_of_k_credit`` with
+    ``k = 1``); for ``k > 1`` the other members of each subset still come from
+    ``pi_old``, so it is biased (the tests measure how much) and exact only
+    as ``pi_old -> pi``.
+  * ``"token"``: one ratio per token, ``pi(y_t | y_<t)/pi_old(y_t | y_<t)``
+    (the per-token surrogate of Schulman et al. 2017); an approximation,
+    biased even for ``k = 1``.
+``clip_ratio=eps`` (token or sequence level) drops the gradient of a term
+whose ratio has left ``[1 - eps, 1 + eps]`` in the direction its credit
+pushes (credit > 0 and ``r > 1 + eps``, or credit < 0 and ``r < 1 - eps``):
+exactly the gradient of the clipped surrogate ``min(r w, clip(r) w)`` of
+Schulman et al. 2017, "Proximal Policy Optimization Algorithms". Clipping
+trades bias for a bounded step. The loss *value* is ``-sum w * r * log pi``
+with ``r`` detached (equal to the on-policy value at ``r = 1``); its gradient
+is the surrogate's.
 
 ``reduction``: ``"mean"`` divides the per-prompt losses by ``B`` (the number
 of prompts), ``"sum"`` adds them, ``"none"`` returns them, shape ``(B,)``.
 
 Return value: the loss tensor; with ``return_info=True`` a pair ``(loss,
 info)`` where ``info`` maps names to *detached tensors* (no ``float()``, so
-no device sync): ``credit_mean``, ``zero_credit_frac`` (prompts whose credit
-is all zero: no signal), ``pool_value`` (the objective's unbiased pool
-estimate), ``kl`` (per-token k3 value, when ``anchor_logprobs`` is given).
+no device sync): ``pools_with_signal`` (share of prompts whose credit is not
+all zero: the others teach nothing), ``credit_abs_mean`` (mean absolute
+credit: the size of the signal), ``masked_frac`` (share of token positions
+that are padding), ``pool_value`` (named losses: the objective's pool
+estimate), ``kl`` (per-token k3 value, with ``anchor_logprobs``), and with
+``sampling_logprobs`` ``ratio_ess`` (effective sample size of the ratios as
+a share of their count, ``(sum r)^2 / (N sum r^2)``: 1 when on-policy, small
+when a few samples dominate: resample) and ``clip_frac`` (share of terms
+whose gradient the clip dropped, with ``clip_ratio``).
 
-Cost and checks: validation is O(B n) and reads no (B, n, T) tensor; credit
-is computed in float64 numpy on the host (scores and rewards come from
-verifiers) and copied to the log-probs' device once, so the hot path has no
-device sync when scores/rewards are host arrays. ``check_tokens=True`` adds
-the O(B n T) checks (a 0/1 mask, no empty response, finite log-probs under
-the mask; each a sync on an accelerator). Without it a non-finite log-prob
-under the mask gives a non-finite loss (never hidden): check the loss before
-the optimizer step, as the trainer does.
+Cost and checks: the pool checks are O(B n); credit is computed in float64
+numpy on the host (scores and rewards come from verifiers) and copied to the
+log-probs' device once. With a mask, the loss reads one bool back from it: a
+response whose mask row is all zero but whose credit is not would add
+nothing, silently, so it is a ``ValueError`` (free on the CPU, one sync on an
+accelerator). Sample reuse reads one more (the ratios must be finite).
+``check_tokens=True`` adds the O(B n T) checks (a 0/1 mask, no empty
+response at all, finite log-probs under the mask; each a sync on an
+accelerator). Without it a non-finite log-prob under the mask gives a
+non-finite loss (never hidden): check the loss before the optimizer step, as
+the trainer does.
 
 Caution: these losses maximise what the verifier rewards. An imperfect
 verifier (learned reward model, weak unit tests) will be exploited (reward
@@ -62,87 +105,224 @@ import numpy as np
 import torch
 from torch import Tensor
 
-from bonft._core.checks import check_bool, check_choice, check_k
-from bonft.objectives._loss_core import (
-    _REDUCTIONS, _TOKEN_REDUCTIONS, _check_options, _core, _credit_tensor, _finish, _host_info, _lead_shape, _named, _per_prompt,
-    _prepare, _rewards,
+from bonft._core.checks import is_tensor
+from bonft.objectives.credit import (
+    best_of_k_credit, best_of_k_sft_credit, pass_at_k_credit, pool_value, reinforce_credit,
 )
-from bonft._core.passk import pass_at_k_counts
-from bonft.objectives._credit_core import (
-    _bon_rl_core, _bon_sft_core, _correct_pool, _expert_pool, _pass_at_k_core, _reinforce_core, _scored_pool,
+from bonft.objectives.validation import (
+    LossOptions, as_host, check_empty_rows, check_logprobs, check_mask, check_pool_shape, check_ratios,
+    check_sampling_logprobs, check_token_values, credit_tensor,
 )
 
-__all__ = ["policy_gradient_loss", "bon_rl_loss", "pass_at_k_loss", "bon_sft_loss", "reinforce_loss", "nll_loss"]
+__all__ = ["policy_gradient_loss", "best_of_k_loss", "pass_at_k_loss", "best_of_k_sft_loss", "reinforce_loss",
+           "nll_loss"]
+
+_NOT_FOR_NLL = ("anchor_logprobs", "anchor_weight", "sampling_logprobs", "clip_ratio", "ratio_level")
+
 
 # ----------------------------------------------------------------------------
 # the core
 # ----------------------------------------------------------------------------
 
-def policy_gradient_loss(logprobs, credit, *, mask=None, token_reduction="sum", reduction="mean",
-                         anchor_logprobs=None, anchor_weight=0.0, check_tokens=False, return_info=False):
+def policy_gradient_loss(logprobs, credit, **common):
     r"""Policy-gradient loss for a given per-sample credit (the core every named loss wraps).
 
-    Shape: ``logprobs (B, n)`` or ``(B, n, T)`` [+ ``mask (B, n, T)``,
-    ``anchor_logprobs`` like ``logprobs``], ``credit (B, n)`` ``-> loss ()``,
-    or ``(B,)`` with ``reduction="none"``.
+    Shape: ``logprobs (B, n)`` or ``(B, n, T)`` [+ ``mask (B, n, T)``;
+    ``anchor_logprobs`` and ``sampling_logprobs`` like ``logprobs``],
+    ``credit (B, n)`` ``-> loss ()``, or ``(B,)`` with ``reduction="none"``.
 
     .. math::
-        \ell = \frac1B\sum_b\Big(-\sum_i w_{bi}\log\pi(y_{bi})
+        \ell = \frac1B\sum_b\Big(-\sum_i w_{bi}\,\rho_{bi}\log\pi(y_{bi})
                + \beta\,\frac1n\sum_i \mathrm{KL}_{bi}\Big)
 
     ``credit`` (numpy, list or tensor; no gradient flows through it) is any
     weight ``w`` such that ``sum_i w_i grad log pi(y_i)`` estimates the
     gradient you want, e.g. from :mod:`bonft.objectives.credit`; ``beta`` is
-    ``anchor_weight``. Host credit is checked finite (O(B n)); a device
-    tensor only with ``check_tokens=True`` (a sync).
+    ``anchor_weight``; ``rho`` is 1 on-policy and the (detached, optionally
+    clipped) importance ratio with ``sampling_logprobs`` (module docstring).
+    ``**common``: the fields of :class:`~bonft.objectives.validation.LossOptions`
+    (mask, token_reduction, reduction, anchor_logprobs, anchor_weight,
+    sampling_logprobs, clip_ratio, ratio_level, check_tokens, return_info).
+    Host credit is checked finite (O(B n)); a device tensor only with
+    ``check_tokens=True`` (a sync).
 
     References: Williams 1992 (REINFORCE, the score-function gradient);
-    Kool et al. 2019 (leave-one-out baselines).
+    Kool et al. 2019 (leave-one-out baselines); Schulman et al. 2017
+    (the clipped surrogate).
     """
-    anchor_weight = _check_options(token_reduction, reduction, anchor_weight, check_tokens, return_info)
-    lp, m, seq = _prepare("logprobs", logprobs, "mask", mask, token_reduction, 2, check_tokens)
-    w = _credit_tensor(credit, *seq.shape, seq, check_tokens)
-    per_prompt, info = _core(lp, m, seq, w, anchor_logprobs, anchor_weight, token_reduction, check_tokens, return_info)
-    return _finish(per_prompt, reduction, info, return_info)
+    opt = LossOptions.from_keywords("policy_gradient_loss", common)
+    lp = check_logprobs("logprobs", logprobs, seq_ndim=2)
+    m = check_mask("mask", opt.mask, "logprobs", lp, seq_ndim=2)
+    if opt.check_tokens:
+        check_token_values("logprobs", lp, "mask", opt.mask, m)
+    w = credit_tensor(credit, lp, check_device=opt.check_tokens)
+    if m is not None:
+        check_empty_rows("mask", m, None if opt.check_tokens else w)
+    info: dict[str, Tensor] = {}
+    if opt.sampling_logprobs is None:
+        seq = _masked_sum(lp, m)  # (B, n)
+    else:
+        seq = _reweighted_sum(lp, m, w, opt, info)
+    seq = _per_token_scale(seq, lp, m, opt.token_reduction)
+    per_prompt = -(w * seq).sum(-1)  # (B,)
+    if opt.anchor_logprobs is not None:
+        kl_b, kl_tok = _anchor_kl(lp, m, opt)
+        if opt.anchor_weight:
+            per_prompt = per_prompt + opt.anchor_weight * kl_b
+        info["kl"] = kl_tok
+    loss = _reduce(per_prompt, opt.reduction)
+    if not opt.return_info:
+        return loss
+    info["pools_with_signal"] = (w != 0).any(-1).to(w.dtype).mean()
+    info["credit_abs_mean"] = w.abs().mean()
+    info["masked_frac"] = 1 - m.sum().to(w.dtype) / m.numel() if m is not None else w.new_zeros(())
+    return loss, info
+
+
+def _masked_sum(lp: Tensor, m: Tensor | None) -> Tensor:
+    """Token or sequence log-probs -> (B, n) sequence log-probs; padding adds exactly 0, even if NaN."""
+    if lp.ndim == 2:
+        return lp
+    if m is None:
+        return lp.sum(-1)
+    return torch.where(m, lp, 0.0).sum(-1)
+
+
+def _per_token_scale(seq: Tensor, lp: Tensor, m: Tensor | None, token_reduction: str) -> Tensor:
+    """``token_reduction="mean"``: divide by the batch's mean response length."""
+    if token_reduction == "sum":
+        return seq
+    if lp.ndim == seq.ndim:
+        raise ValueError(f"token_reduction='mean' needs token log-probs ({seq.ndim + 1} dimensions), "
+                         f"got logprobs of shape {tuple(lp.shape)}")
+    count = m.sum() if m is not None else torch.tensor(lp.numel(), device=lp.device)
+    return seq * (seq.numel() / count.to(seq.dtype))
+
+
+def _reweighted_sum(lp: Tensor, m: Tensor | None, w: Tensor, opt: LossOptions, info: dict) -> Tensor:
+    """Sequence terms with the importance ratio pi/pi_old (detached, clipped on request) as a coefficient."""
+    old = check_sampling_logprobs(opt.sampling_logprobs, lp)
+    level = opt.ratio_level
+    if level == "token":
+        if lp.ndim == 2:
+            raise ValueError(f"ratio_level='token' needs token log-probs (3 dimensions), "
+                             f"got logprobs of shape {tuple(lp.shape)}; use ratio_level='sequence'")
+        log_ratio = lp.detach() - old
+        if m is not None:
+            log_ratio = torch.where(m, log_ratio, 0.0)  # padding: ratio 1, and masked out below
+        unit_credit = w[..., None]
+    else:
+        log_ratio = _masked_sum(lp.detach(), m) - _masked_sum(old, m)  # (B, n)
+        unit_credit = w
+        if level == "pool":
+            log_ratio = log_ratio.sum(-1, keepdim=True)  # (B, 1)
+            unit_credit = None
+    check_ratios(log_ratio, level)
+    ratio = torch.exp(log_ratio)
+    coef = ratio
+    if opt.clip_ratio is not None:
+        eps = opt.clip_ratio
+        dropped = ((unit_credit > 0) & (ratio > 1 + eps)) | ((unit_credit < 0) & (ratio < 1 - eps))
+        coef = torch.where(dropped, 0.0, ratio)
+        info["clip_frac"] = _unit_mean(dropped.to(ratio.dtype), m if level == "token" else None)
+    r_sum = _unit_mean(ratio, m if level == "token" else None)
+    r2_sum = _unit_mean(ratio * ratio, m if level == "token" else None)
+    info["ratio_ess"] = r_sum * r_sum / r2_sum
+    if level == "token":
+        terms = coef * lp
+        return terms.sum(-1) if m is None else torch.where(m, terms, 0.0).sum(-1)
+    return coef * _masked_sum(lp, m)
+
+
+def _unit_mean(x: Tensor, m: Tensor | None) -> Tensor:
+    """Mean over the ratio's units (masked tokens at token level)."""
+    if m is None:
+        return x.mean()
+    return torch.where(m, x, 0.0).sum() / m.sum()
+
+
+def _anchor_kl(lp: Tensor, m: Tensor | None, opt: LossOptions) -> tuple[Tensor, Tensor]:
+    """k3 estimator exp(d) - d - 1, d = anchor - logp -> per-prompt mean over samples (B,), per-token mean value."""
+    anchor = opt.anchor_logprobs
+    if not is_tensor(anchor):
+        raise TypeError(f"anchor_logprobs must be a torch.Tensor, got {type(anchor).__name__}")
+    if tuple(anchor.shape) != tuple(lp.shape):
+        raise ValueError(f"anchor_logprobs must have the same shape as logprobs {tuple(lp.shape)}, got {tuple(anchor.shape)}")
+    if opt.check_tokens:
+        check_token_values("anchor_logprobs", anchor, "mask", None, m)
+    d = anchor.detach().to(lp.dtype) - lp
+    if m is not None:
+        d = torch.where(m, d, 0.0)  # exp(0) - 0 - 1 = 0 on padding
+    k3 = torch.expm1(d) - d
+    if lp.ndim == 2:  # sequence level: one "token" per sample
+        return k3.mean(-1), k3.detach().mean()
+    per_seq = _per_token_scale(k3.sum(-1), lp, m, opt.token_reduction)  # (B, n)
+    count = m.sum() if m is not None else torch.tensor(k3.numel(), device=k3.device)
+    return per_seq.mean(-1), k3.detach().sum() / count
+
+
+def _reduce(per_prompt: Tensor, reduction: str) -> Tensor:
+    if reduction == "mean":
+        return per_prompt.mean()  # divides by B, the number of prompts
+    if reduction == "sum":
+        return per_prompt.sum()
+    return per_prompt
+
+
+def _host_pool(logprobs, **arrays) -> list[np.ndarray]:
+    """The pool's (B, n) arrays as float64 host arrays (one copy from a device), shaped like logprobs' (B, n)."""
+    out = []
+    for name, x in arrays.items():
+        a = as_host(name, x, ndim=2)
+        check_pool_shape(name, a, logprobs)
+        out.append(a)
+    return out
+
+
+def _with_pool_value(out, value):
+    """Add ``pool_value`` (mean over prompts of ``value()``, (B,)) to the info of a ``(loss, info)`` pair."""
+    if not isinstance(out, tuple):
+        return out
+    loss, info = out
+    v = value()
+    if is_tensor(v):
+        info["pool_value"] = v.detach().to(torch.float64).mean()
+    else:
+        info["pool_value"] = torch.tensor(float(np.mean(v)), dtype=torch.float64)
+    return loss, info
 
 
 # ----------------------------------------------------------------------------
-# named losses: credit function + core
+# named losses: public credit + the core
 # ----------------------------------------------------------------------------
 
-def bon_rl_loss(logprobs, scores, rewards, *, k, baseline="loo", mask=None, token_reduction="sum",
-                reduction="mean", anchor_logprobs=None, anchor_weight=0.0, check_tokens=False, return_info=False):
+def best_of_k_loss(logprobs, scores, rewards, *, k, baseline="loo", **common):
     r"""Best-of-k policy-gradient loss with a verifier.
 
     Shape: ``logprobs (B, n)`` or ``(B, n, T)`` [+ ``mask (B, n, T)``],
     ``scores (B, n), rewards (B, n) -> loss ()`` (``(B,)`` with ``reduction="none"``).
 
     .. math:: \ell = -\frac1B\sum_b\sum_i w_{bi}\,\log\pi(y_{bi}),\quad
-              w = \mathrm{bon\_rl\_credit}(s, R, k)
+              w = \mathrm{best\_of\_k\_credit}(s, R, k)
 
     ``-grad loss`` is an unbiased estimate of ``grad (1/B) sum_b V_k(prompt b)``
-    (``token_reduction="sum"``, no KL); ``k = n`` is BoN-RL-V of Chow et al.
-    2024, ``k = 1`` leave-one-out REINFORCE. ``info["pool_value"]``: mean
-    best-of-k U-statistic of the pools.
+    (``token_reduction="sum"``, no KL, on-policy or reused with
+    ``ratio_level="pool"``); ``k = n`` is BoN-RL-V of Chow et al. 2024,
+    ``k = 1`` leave-one-out REINFORCE. ``**common``: see
+    :func:`policy_gradient_loss`. ``info["pool_value"]``: mean best-of-k
+    U-statistic of the pools (:func:`~bonft.objectives.credit.pool_value`).
 
     Caution: a verifier that can be gamed will be gamed (reward hacking).
 
     References: Chow et al. 2024, "Inference-Aware Fine-Tuning for Best-of-N
     Sampling in LLMs"; Kool et al. 2019.
     """
-    anchor_weight = _check_options(token_reduction, reduction, anchor_weight, check_tokens, return_info)
-    B, n = _lead_shape("logprobs", logprobs, 2)
-    s, R = _scored_pool(scores, rewards, shape=(B, n))
-    k = check_k(k, n)
-    check_choice("baseline", baseline, ("loo", "none"))
-    credit, pool = _bon_rl_core(s, R, k, baseline)
-    return _named(logprobs, credit, mask, token_reduction, reduction, anchor_logprobs, anchor_weight, check_tokens,
-                  return_info, pool_value=pool)
+    s, R = _host_pool(logprobs, scores=scores, rewards=rewards)
+    credit = best_of_k_credit(s, R, k=k, baseline=baseline)
+    return _with_pool_value(policy_gradient_loss(logprobs, credit, **common), lambda: pool_value(s, R, k=k))
 
 
-def pass_at_k_loss(logprobs, correct, *, k, estimator="unbiased", positive_only=False, mask=None,
-                   token_reduction="sum", reduction="mean", anchor_logprobs=None, anchor_weight=0.0,
-                   check_tokens=False, return_info=False):
+def pass_at_k_loss(logprobs, correct, *, k, estimator="unbiased", positive_only=False, **common):
     r"""pass@k policy-gradient loss for a binary reward.
 
     Shape: ``logprobs (B, n)`` or ``(B, n, T)`` [+ ``mask``], ``correct (B, n)``
@@ -155,7 +335,9 @@ def pass_at_k_loss(logprobs, correct, *, k, estimator="unbiased", positive_only=
     ``grad mean_b pass@k``; ``"plugin"``: biased, consistent;
     ``positive_only=True``: estimates ``(1-p) grad pass@k`` for ``k < n`` and
     ``grad pass@k`` for ``k = n`` (see :func:`bonft.objectives.credit.pass_at_k_credit`).
-    ``info["pool_value"]``: mean unbiased pass@k of the pools.
+    ``**common``: see :func:`policy_gradient_loss`. ``info["pool_value"]``:
+    mean unbiased pass@k of the pools (Chen et al. 2021's estimator, the
+    best-of-k U-statistic with scores = rewards = correct).
 
     Caution: when ``correct`` comes from executing model-written code, run
     it in a sandbox; tests that miss cases are exploited (reward hacking).
@@ -163,20 +345,12 @@ def pass_at_k_loss(logprobs, correct, *, k, estimator="unbiased", positive_only=
     References: Chen et al. 2021, "Evaluating Large Language Models Trained
     on Code"; Walder & Karkhanis 2025.
     """
-    anchor_weight = _check_options(token_reduction, reduction, anchor_weight, check_tokens, return_info)
-    B, n = _lead_shape("logprobs", logprobs, 2)
-    c = _correct_pool(correct, shape=(B, n))
-    k = check_k(k, n)
-    check_choice("estimator", estimator, ("unbiased", "plugin"))
-    check_bool("positive_only", positive_only)
-    credit = _pass_at_k_core(c, k, estimator, positive_only)
-    pool = pass_at_k_counts(n, c.sum(-1).astype(np.int64), k) if return_info else None
-    return _named(logprobs, credit, mask, token_reduction, reduction, anchor_logprobs, anchor_weight, check_tokens,
-                  return_info, pool_value=pool)
+    (c,) = _host_pool(logprobs, correct=correct)
+    credit = pass_at_k_credit(c, k=k, estimator=estimator, positive_only=positive_only)
+    return _with_pool_value(policy_gradient_loss(logprobs, credit, **common), lambda: pool_value(c, c, k=k))
 
 
-def reinforce_loss(logprobs, rewards, *, baseline="loo", mask=None, token_reduction="sum", reduction="mean",
-                   anchor_logprobs=None, anchor_weight=0.0, check_tokens=False, return_info=False):
+def reinforce_loss(logprobs, rewards, *, baseline="loo", **common):
     r"""Leave-one-out REINFORCE loss, the best-of-1 case.
 
     Shape: ``logprobs (B, n)`` or ``(B, n, T)`` [+ ``mask``], ``rewards (B, n)
@@ -184,64 +358,68 @@ def reinforce_loss(logprobs, rewards, *, baseline="loo", mask=None, token_reduct
 
     .. math:: \ell = -\frac1B\sum_b\sum_i \frac{R_{bi}-\bar R_{b,-i}}{n}\log\pi(y_{bi})
 
-    ``-grad loss`` is unbiased for ``grad mean_b E[R]``.
+    ``-grad loss`` is unbiased for ``grad mean_b E[R]`` (on-policy, or reused
+    with ``ratio_level="sequence"`` or ``"pool"``); ``n = 1`` needs
+    ``baseline="none"``. ``**common``: see :func:`policy_gradient_loss`.
     ``info["pool_value"]``: mean reward.
 
     References: Kool et al. 2019, "Buy 4 REINFORCE samples, get a baseline for free!".
     """
-    anchor_weight = _check_options(token_reduction, reduction, anchor_weight, check_tokens, return_info)
-    B, n = _lead_shape("logprobs", logprobs, 2)
-    R = _rewards(rewards, (B, n))
-    check_choice("baseline", baseline, ("loo", "none"))
-    credit = _reinforce_core(R, baseline)
-    return _named(logprobs, credit, mask, token_reduction, reduction, anchor_logprobs, anchor_weight, check_tokens,
-                  return_info, pool_value=R)
+    (R,) = _host_pool(logprobs, rewards=rewards)
+    credit = reinforce_credit(R, baseline=baseline)
+    return _with_pool_value(policy_gradient_loss(logprobs, credit, **common), lambda: R.mean(-1))
 
 
-def bon_sft_loss(logprobs, scores, expert_logprobs, expert_scores, *, k, smoothing=1.0, mask=None, expert_mask=None,
-                 token_reduction="sum", reduction="mean", anchor_logprobs=None, anchor_weight=0.0, check_tokens=False,
-                 return_info=False):
-    r"""Best-of-k-aware SFT loss: raise the chance that best-of-k selects the expert response.
+def best_of_k_sft_loss(logprobs, scores, reference_logprobs, reference_scores, *, k, smoothing=1.0,
+                       reference_mask=None, **common):
+    r"""Best-of-k-aware SFT loss: raise the chance that best-of-k selects the reference response.
 
     Shape: ``logprobs (B, n)`` or ``(B, n, T)`` [+ ``mask (B, n, T)``] of n
-    policy samples, ``scores (B, n)``; ``expert_logprobs (B,)`` or ``(B, T)``
-    [+ ``expert_mask (B, T)``], ``expert_scores (B,) -> loss ()`` (``(B,)``
-    with ``reduction="none"``).
+    policy samples, ``scores (B, n)``; ``reference_logprobs (B,)`` or ``(B, T)``
+    [+ ``reference_mask (B, T)``] of each prompt's reference (gold) response,
+    ``reference_scores (B,) -> loss ()`` (``(B,)`` with ``reduction="none"``).
 
     .. math:: \ell_b = -\Big(\log\pi(y^*_b) + \sum_i w_{bi}\log\pi(y_{bi})\Big),\quad
-              w = \mathrm{bon\_sft\_credit}(s, s^*, k)
+              w = \mathrm{best\_of\_k\_sft\_credit}(s, s^*, k)
 
-    ``-grad loss`` estimates ``grad mean_b log pi_bon(y*_b)``: the expert term
-    is exact, the sample term a consistent ratio estimator (biased for finite
-    n; see :func:`bonft.objectives.credit.bon_sft_credit` for the smoothing). ``k = 1``
-    is plain SFT. ``anchor_logprobs`` (shape of ``logprobs``) adds the KL
-    penalty on the policy samples. info adds ``expert_logprob`` (mean expert
-    term) and ``beaten_frac`` (share of samples scoring above the expert).
+    The sample term is :func:`policy_gradient_loss` with that credit (its
+    ``**common`` options apply to the policy samples: ``anchor_logprobs`` and
+    ``sampling_logprobs`` have the shape of ``logprobs``); the reference term
+    is :func:`nll_loss` with the same ``token_reduction`` and ``reduction``.
+    ``-grad loss`` estimates ``grad mean_b log pi_bon(y*_b)``: the reference
+    term is exact, the sample term a consistent ratio estimator (biased for
+    finite n; see :func:`bonft.objectives.credit.best_of_k_sft_credit` for the
+    smoothing). ``k = 1`` is plain SFT. info adds ``reference_logprob`` (mean
+    reference term) and ``beaten_frac`` (share of samples scoring above the
+    reference).
 
-    Caution: the verifier decides which samples "beat" the expert; a gamed
-    verifier pushes the policy away from the expert for the wrong reasons.
+    Caution: the verifier decides which samples "beat" the reference; a gamed
+    verifier pushes the policy away from the reference for the wrong reasons.
 
     References: Chow et al. 2024, "Inference-Aware Fine-Tuning for Best-of-N
     Sampling in LLMs" (BoN-SFT).
     """
-    anchor_weight = _check_options(token_reduction, reduction, anchor_weight, check_tokens, return_info)
-    B, n = _lead_shape("logprobs", logprobs, 2)
-    elp, _, e_seq = _prepare("expert_logprobs", expert_logprobs, "expert_mask", expert_mask, token_reduction, 1,
-                             check_tokens)
-    if e_seq.shape[0] != B:
-        raise ValueError(f"expert_logprobs must have B = {B} rows to match logprobs, got {tuple(elp.shape)}")
-    s, e, k, smoothing = _expert_pool(scores, expert_scores, k, smoothing, shape=(B, n))
-    credit = _bon_sft_core(s, e, k, smoothing)
-    per_prompt, info = _per_prompt(logprobs, credit, mask, token_reduction, anchor_logprobs, anchor_weight,
-                                   check_tokens, return_info)
-    per_prompt = per_prompt - e_seq.to(per_prompt.dtype)
-    if return_info:
-        info["expert_logprob"] = e_seq.detach().mean()
-        _host_info(info, beaten_frac=(s > e[:, None]))
-    return _finish(per_prompt, reduction, info, return_info)
+    opt = LossOptions.from_keywords("best_of_k_sft_loss", common)
+    (s,) = _host_pool(logprobs, scores=scores)
+    e = as_host("reference_scores", reference_scores, ndim=1)
+    B = logprobs.shape[0]
+    ref = check_logprobs("reference_logprobs", reference_logprobs, seq_ndim=1)
+    if ref.shape[0] != B:
+        raise ValueError(f"reference_logprobs must have B = {B} rows to match logprobs, got {tuple(ref.shape)}")
+    credit = best_of_k_sft_credit(s, e, k=k, smoothing=smoothing)
+    ref_opt = LossOptions(mask=reference_mask, token_reduction=opt.token_reduction, reduction=opt.reduction,
+                          check_tokens=opt.check_tokens)
+    ref_loss, _ = _nll("reference_logprobs", ref, "reference_mask", ref_opt)
+    out = policy_gradient_loss(logprobs, credit, **common)
+    if not opt.return_info:
+        return out + ref_loss
+    loss, info = out
+    info["reference_logprob"] = -ref_loss.detach() if opt.reduction == "mean" else -ref_loss.detach().sum() / B
+    info["beaten_frac"] = torch.tensor(float((s > e[:, None]).mean()), dtype=torch.float64)
+    return loss + ref_loss, info
 
 
-def nll_loss(logprobs, *, mask=None, token_reduction="sum", reduction="mean", check_tokens=False, return_info=False):
+def nll_loss(logprobs, **common):
     r"""Negative log-likelihood (plain SFT) of given responses.
 
     Shape: ``logprobs (B,)`` sequence log-probs or ``(B, T)`` token log-probs
@@ -249,23 +427,41 @@ def nll_loss(logprobs, *, mask=None, token_reduction="sum", reduction="mean", ch
 
     .. math:: \ell = -\frac1B\sum_b \log\pi(y_b)
 
-    ``token_reduction="mean"`` divides every token log-prob by the batch's mean
-    response length (see the module docstring). info: ``nll`` (mean per-row
+    ``**common``: ``mask``, ``token_reduction``, ``reduction``,
+    ``check_tokens``, ``return_info`` as in :func:`policy_gradient_loss`;
+    the anchor and ratio options are refused (they cannot take effect on
+    given responses). ``token_reduction="mean"`` divides every token log-prob
+    by the batch's mean response length. A mask row that is all zero is an
+    error (that response would add nothing). info: ``nll`` (mean per-row
     loss), ``tokens`` (response tokens counted).
 
     References: maximum likelihood (common practice).
     """
-    check_choice("token_reduction", token_reduction, _TOKEN_REDUCTIONS)
-    check_choice("reduction", reduction, _REDUCTIONS)
-    check_bool("check_tokens", check_tokens)
-    check_bool("return_info", return_info)
-    lp, m, seq = _prepare("logprobs", logprobs, "mask", mask, token_reduction, 1, check_tokens)
-    per = -seq
-    info: dict[str, Tensor] = {}
-    if return_info:
+    opt = LossOptions.from_keywords("nll_loss", common, refused=_NOT_FOR_NLL)
+    lp = check_logprobs("logprobs", logprobs, seq_ndim=1)
+    loss, per = _nll("logprobs", lp, "mask", opt)
+    if not opt.return_info:
+        return loss
+    if lp.ndim == 1:
+        tokens = torch.tensor(float(lp.shape[0]))
+    else:
+        m = opt.mask
+        tokens = (m != 0).sum().to(torch.float64) if m is not None else torch.tensor(float(lp.numel()))
+    return loss, {"nll": per.detach().mean(), "tokens": tokens}
+
+
+def _nll(name: str, lp: Tensor, mask_name: str, opt: LossOptions) -> tuple[Tensor, Tensor]:
+    """Reduced loss and per-row ``-log pi(y_b)`` (B,) of given responses."""
+    m = check_mask(mask_name, opt.mask, name, lp, seq_ndim=1)
+    if opt.check_tokens:
+        check_token_values(name, lp, mask_name, opt.mask, m)
+    if m is not None:
+        check_empty_rows(mask_name, m, None)
+    seq = lp if lp.ndim == 1 else (lp.sum(-1) if m is None else torch.where(m, lp, 0.0).sum(-1))
+    if opt.token_reduction == "mean":
         if lp.ndim == 1:
-            tokens = torch.tensor(float(lp.shape[0]))
-        else:
-            tokens = m.sum().to(torch.float64) if m is not None else torch.tensor(float(lp.numel()))
-        info = {"nll": per.detach().mean(), "tokens": tokens}
-    return _finish(per, reduction, info, return_info)
+            raise ValueError(f"token_reduction='mean' needs token log-probs (2 dimensions), "
+                             f"got {name} of shape {tuple(lp.shape)}")
+        count = m.sum() if m is not None else torch.tensor(lp.numel(), device=lp.device)
+        seq = seq * (seq.numel() / count.to(seq.dtype))
+    return _reduce(-seq, opt.reduction), -seq

@@ -1,21 +1,40 @@
-"""Input checks and output kinds shared by :mod:`bonft.objectives.credit` and :mod:`bonft.objectives.losses`.
+"""Every input check of :mod:`bonft.objectives`: pools, log-prob tensors and masks, the loss options.
 
 Credit is computed on the host in float64 numpy: scores and rewards come from
 verifiers (host data), the arrays are (B, n) and small, and numpy's per-call
 cost is a fraction of torch's at this size. A torch input gives a torch
 output on its device; a device tensor is copied to the host first (one sync),
 so pass host arrays to keep a training step free of device syncs.
-Validation lives here, apart from the maths: public functions call these once
-at their boundary; the cores trust their inputs. Every check is O(B n).
+
+Public functions call these once at their boundary; the maths trusts its
+inputs. The pool checks are O(B n). The log-prob checks read shapes and
+dtypes only, except those that say otherwise: :func:`check_token_values`
+(``check_tokens=True``, O(B n T)), :func:`check_empty_rows` (reads the mask
+once, see its docstring) and :func:`check_ratios` (reuse only).
 """
 from __future__ import annotations
 
+import dataclasses
+import numbers
 from typing import Any
 
 import numpy as np
+import torch
+from torch import Tensor
 
-from bonft._core.checks import as_float_array, check_finite, check_nonempty, is_tensor, torch_out_dtype
+from bonft._core.checks import (
+    as_float_array, check_binary, check_bool, check_choice, check_finite, check_k, check_nonempty, check_nonnegative,
+    is_tensor, torch_out_dtype,
+)
 
+TOKEN_REDUCTIONS = ("sum", "mean")
+REDUCTIONS = ("none", "mean", "sum")
+RATIO_LEVELS = ("token", "sequence", "pool")
+
+
+# ----------------------------------------------------------------------------
+# host arrays: pools of scores, rewards, correctness
+# ----------------------------------------------------------------------------
 
 def as_host(name: str, x: Any, *, ndim: int) -> np.ndarray:
     """Any array-like -> finite, non-empty float64 numpy array with ``ndim`` dimensions."""
@@ -23,8 +42,6 @@ def as_host(name: str, x: Any, *, ndim: int) -> np.ndarray:
         t = x.detach()
         if t.is_complex():
             raise TypeError(f"{name} must hold real numbers, got dtype {t.dtype}")
-        import torch
-
         x = t.cpu().to(torch.float64).numpy()  # bool, ints, float16/bfloat16 included
     a = as_float_array(name, x)
     if a.ndim != ndim:
@@ -35,7 +52,7 @@ def as_host(name: str, x: Any, *, ndim: int) -> np.ndarray:
     return a
 
 
-def out_kind(*xs: Any):
+def out_kind(*xs: Any) -> tuple[bool, Any, Any]:
     """Output as torch if any input is a tensor (its device, its floating dtype, half precision widened to float32),
     else numpy float64."""
     for x in xs:
@@ -44,10 +61,252 @@ def out_kind(*xs: Any):
     return False, None, None
 
 
-def finish(w: np.ndarray, kind):
+def finish(w: np.ndarray, kind: tuple[bool, Any, Any]):
+    """A float64 host result in the kind :func:`out_kind` chose."""
     as_torch, dtype, device = kind
     if as_torch:
-        import torch
-
         return torch.from_numpy(w).to(device=device, dtype=dtype)
     return w
+
+
+def check_loo_pool(n: int, credit: str) -> None:
+    """A leave-one-out baseline needs someone to leave out: ``n >= 2``."""
+    if n < 2:
+        raise ValueError(
+            f"n must be >= 2 for the leave-one-out baseline of {credit} (n=1: with one sample per prompt there is "
+            f"no other sample to leave out); draw n >= 2 samples per prompt "
+            f"or use baseline='none'")
+
+
+def scored_pool(scores: Any, rewards: Any) -> tuple[np.ndarray, np.ndarray]:
+    """Scores and rewards (B, n) of the same shape as float64 host arrays."""
+    s = as_host("scores", scores, ndim=2)
+    R = as_host("rewards", rewards, ndim=2)
+    if R.shape != s.shape:
+        raise ValueError(f"rewards must have the same shape as scores {tuple(s.shape)}, got {tuple(R.shape)}")
+    return s, R
+
+
+def correct_pool(correct: Any) -> np.ndarray:
+    """0/1 correctness (B, n) as a float64 host array."""
+    c = as_host("correct", correct, ndim=2)
+    check_binary("correct", c)
+    return c
+
+
+def reference_pool(scores: Any, reference_scores: Any, *, k: Any, smoothing: Any) -> tuple[np.ndarray, np.ndarray, int, float]:
+    """Policy scores (B, n), the reference responses' scores (B,), k and smoothing of the SFT credit."""
+    s = as_host("scores", scores, ndim=2)
+    e = as_host("reference_scores", reference_scores, ndim=1)
+    if e.shape[0] != s.shape[0]:
+        raise ValueError(f"reference_scores must have shape (B,) = ({s.shape[0]},) to match scores, got {tuple(e.shape)}")
+    k = check_k(k, s.shape[1])
+    smoothing = check_nonnegative("smoothing", smoothing)
+    if smoothing == 0 and k > 1:  # h is undefined for a row where every sample beats the reference
+        none_below = ~(s <= e[:, None]).any(-1)
+        if none_below.any():
+            b = int(np.flatnonzero(none_below)[0])
+            raise ValueError(
+                f"smoothing=0 needs a sample scoring at or below the reference, got none in row {b}; use smoothing > 0")
+    return s, e, k, smoothing
+
+
+def check_pool_shape(name: str, x: Any, logprobs: Any) -> None:
+    """``x`` (scores, rewards, correct) has the (B, n) leading shape of ``logprobs`` (shape only, nothing read)."""
+    want = tuple(check_logprobs("logprobs", logprobs, seq_ndim=2).shape[:2])
+    got = tuple(x.shape) if hasattr(x, "shape") else np.shape(x)
+    if len(got) == 2 and got != want:
+        raise ValueError(f"{name} must have shape (B, n) of logprobs {want}, got {got}")
+
+
+# ----------------------------------------------------------------------------
+# log-prob tensors and masks
+# ----------------------------------------------------------------------------
+
+def check_logprobs(name: str, lp: Any, *, seq_ndim: int) -> Tensor:
+    """A floating tensor of sequence (``seq_ndim`` dims) or token (``seq_ndim + 1``) log-probs."""
+    if not is_tensor(lp):
+        raise TypeError(f"{name} must be a torch.Tensor, got {type(lp).__name__}")
+    if not lp.dtype.is_floating_point:
+        raise TypeError(f"{name} must be a floating tensor, got dtype {lp.dtype}")
+    if lp.ndim not in (seq_ndim, seq_ndim + 1):
+        raise ValueError(
+            f"{name} must have {seq_ndim} (sequence log-probs) or {seq_ndim + 1} (token log-probs) "
+            f"dimensions, got shape {tuple(lp.shape)}")
+    if lp.numel() == 0:
+        raise ValueError(f"{name} must not be empty")
+    return lp
+
+
+def check_mask(mask_name: str, mask: Any, lp_name: str, lp: Tensor, *, seq_ndim: int) -> Tensor | None:
+    """A bool mask on lp's device (token log-probs) or None (all tokens count); shape and type only."""
+    if mask is None:
+        return None
+    if lp.ndim == seq_ndim:
+        raise ValueError(f"{mask_name} needs token log-probs ({seq_ndim + 1} dimensions), "
+                         f"got {lp_name} of shape {tuple(lp.shape)}")
+    if not is_tensor(mask):
+        raise TypeError(f"{mask_name} must be a torch.Tensor, got {type(mask).__name__}")
+    if tuple(mask.shape) != tuple(lp.shape):
+        raise ValueError(f"{mask_name} must have the same shape as {lp_name} {tuple(lp.shape)}, got {tuple(mask.shape)}")
+    if mask.dtype.is_complex:
+        raise TypeError(f"{mask_name} must be a bool or 0/1 tensor, got dtype {mask.dtype}")
+    m = mask.detach().to(device=lp.device)
+    return m if m.dtype == torch.bool else m != 0
+
+
+def check_token_values(name: str, lp: Tensor, mask_name: str, mask: Any, m: Tensor | None) -> None:
+    """The O(B n T) checks of ``check_tokens=True``: a 0/1 mask, finite log-probs under it."""
+    if m is not None and mask is not None and mask.dtype != torch.bool:
+        check_binary(mask_name, mask.detach())
+    bad = ~torch.isfinite(lp.detach())
+    if m is not None:
+        bad = bad & m
+    if bool(bad.any()):
+        idx = tuple(int(i) for i in torch.nonzero(bad)[0].tolist())
+        where = " where the mask is 1" if m is not None else ""
+        raise ValueError(f"{name} must be finite{where}, got {float(lp.detach()[idx])} at index {idx}")
+
+
+def check_empty_rows(mask_name: str, m: Tensor, weight: Tensor | None) -> None:
+    """No sequence without tokens where it carries weight (all rows when ``weight`` is None).
+
+    Reads one bool back from the mask's device: free for a CPU mask, one sync on an accelerator.
+    A response with credit and no token would contribute 0 to the loss silently.
+    """
+    empty = ~m.any(-1)
+    if weight is not None:
+        empty = empty & (weight != 0)
+    if bool(empty.any()):
+        idx = tuple(int(i) for i in torch.nonzero(empty)[0].tolist())
+        what = "with non-zero credit" if weight is not None else ""
+        raise ValueError(f"{mask_name} must mark at least one token per sequence{' ' + what if what else ''}, "
+                         f"got an all-zero row at index {idx}")
+
+
+def credit_tensor(credit: Any, lp: Tensor, *, check_device: bool) -> Tensor:
+    """Credit (B, n) as a detached tensor on lp's device and dtype; host credit is checked finite (O(B n))."""
+    B, n = lp.shape[:2]
+    if is_tensor(credit):
+        w = credit.detach()
+        if w.dtype.is_complex or w.dtype == torch.bool:
+            raise TypeError(f"credit must hold real numbers, got dtype {w.dtype}")
+        host = w.to(torch.float64).numpy() if w.device.type == "cpu" else None
+    else:
+        try:
+            host = np.asarray(credit, dtype=np.float64)
+        except (TypeError, ValueError):
+            raise TypeError(f"credit must be an array of numbers, got {type(credit).__name__}") from None
+        w = torch.from_numpy(host)
+    if tuple(w.shape) != (B, n):
+        raise ValueError(f"credit must have shape (B, n) = ({B}, {n}) to match logprobs, got {tuple(w.shape)}")
+    if host is not None:
+        check_finite("credit", host)
+    elif check_device:
+        check_finite("credit", w)  # a device tensor: one sync, so only on request
+    return w.to(device=lp.device, dtype=lp.dtype, non_blocking=True)
+
+
+def check_sampling_logprobs(sampling: Any, lp: Tensor) -> Tensor:
+    """Log-probs under the sampling policy: a detached floating tensor of lp's shape (values: :func:`check_ratios`)."""
+    if not is_tensor(sampling):
+        raise TypeError(f"sampling_logprobs must be a torch.Tensor, got {type(sampling).__name__}")
+    if not sampling.dtype.is_floating_point:
+        raise TypeError(f"sampling_logprobs must be a floating tensor, got dtype {sampling.dtype}")
+    if tuple(sampling.shape) != tuple(lp.shape):
+        raise ValueError(f"sampling_logprobs must have the same shape as logprobs {tuple(lp.shape)}, "
+                         f"got {tuple(sampling.shape)}")
+    if sampling.requires_grad:
+        raise ValueError("sampling_logprobs must not require grad (they are the sampling policy's log-probs, "
+                         "a constant of the step), got a tensor attached to the graph; pass sampling_logprobs.detach()")
+    return sampling.to(device=lp.device, dtype=lp.dtype)
+
+
+def check_ratios(log_ratio: Tensor, level: str) -> None:
+    """The log importance ratios ``logprobs - sampling_logprobs`` at ``level`` give finite ratios (one read)."""
+    bad = ~torch.isfinite(torch.exp(log_ratio))
+    if bool(bad.any()):
+        idx = tuple(int(i) for i in torch.nonzero(bad)[0].tolist())
+        raise ValueError(
+            f"sampling_logprobs give a non-finite {level}-level ratio pi/pi_old: logprobs - sampling_logprobs = "
+            f"{float(log_ratio[idx])} at index {idx}; check that both hold log-probs of the same tokens "
+            f"(finite under the mask) and that the policy has not moved this far since sampling")
+
+
+# ----------------------------------------------------------------------------
+# the loss options, written once
+# ----------------------------------------------------------------------------
+
+@dataclasses.dataclass(frozen=True)
+class LossOptions:
+    """The keywords every loss of :mod:`bonft.objectives.losses` shares (its ``**common``).
+
+    mask: ``(B, n, T)`` bool or 0/1, 1 = response token (token log-probs only).
+    token_reduction: ``"sum"`` (unbiased) or ``"mean"`` (divide by the batch's mean response length).
+    reduction: ``"mean"`` over prompts, ``"sum"``, or ``"none"`` (one loss per prompt, ``(B,)``).
+    anchor_logprobs, anchor_weight: the KL term to the anchor policy (weight >= 0; a weight > 0 needs
+    the anchor log-probs, of the shape of ``logprobs``).
+    sampling_logprobs: log-probs of the same tokens under the policy that sampled them (detached,
+    shape of ``logprobs``): the credit is weighted by the importance ratio pi/pi_old.
+    clip_ratio: epsilon of the clipped surrogate (Schulman et al. 2017), > 0; None = no clipping.
+    ratio_level: ``"token"``, ``"sequence"`` (default) or ``"pool"``: where the ratio is taken.
+    check_tokens: add the O(B n T) value checks. return_info: return ``(loss, info)``.
+    """
+
+    mask: Any = None
+    token_reduction: str = "sum"
+    reduction: str = "mean"
+    anchor_logprobs: Any = None
+    anchor_weight: float = 0.0
+    sampling_logprobs: Any = None
+    clip_ratio: float | None = None
+    ratio_level: str | None = None
+    check_tokens: bool = False
+    return_info: bool = False
+
+    def __post_init__(self):
+        check_choice("token_reduction", self.token_reduction, TOKEN_REDUCTIONS)
+        check_choice("reduction", self.reduction, REDUCTIONS)
+        check_bool("check_tokens", self.check_tokens)
+        check_bool("return_info", self.return_info)
+        object.__setattr__(self, "anchor_weight", check_nonnegative("anchor_weight", self.anchor_weight))
+        if self.anchor_weight > 0 and self.anchor_logprobs is None:
+            raise ValueError(f"anchor_weight={self.anchor_weight} needs anchor_logprobs (the anchor policy's "
+                             f"log-probs of the same tokens); without them the KL term cannot be computed")
+        reuse = self.sampling_logprobs is not None
+        if self.ratio_level is not None:
+            check_choice("ratio_level", self.ratio_level, RATIO_LEVELS)
+            if not reuse:
+                raise ValueError(f"ratio_level={self.ratio_level!r} needs sampling_logprobs (the log-probs under the "
+                                 f"policy that sampled); without them there is no ratio")
+        if self.clip_ratio is not None:
+            if isinstance(self.clip_ratio, bool) or not isinstance(self.clip_ratio, numbers.Real):
+                raise TypeError(f"clip_ratio must be a number > 0 or None, got "
+                                f"{type(self.clip_ratio).__name__} {self.clip_ratio!r}")
+            eps = float(self.clip_ratio)
+            if not np.isfinite(eps) or eps <= 0:
+                raise ValueError(f"clip_ratio must be a finite number > 0 (the surrogate keeps ratios in "
+                                 f"[1 - clip_ratio, 1 + clip_ratio]), got clip_ratio={eps}")
+            if not reuse:
+                raise ValueError(f"clip_ratio={eps} needs sampling_logprobs (the log-probs under the policy that "
+                                 f"sampled); without them every ratio is 1 and nothing is clipped")
+            if self.ratio_level == "pool":
+                raise ValueError("clip_ratio applies to ratio_level 'token' or 'sequence', got ratio_level='pool' "
+                                 "(the pool ratio weights every sample's term of a pool; it is not clipped)")
+            object.__setattr__(self, "clip_ratio", eps)
+        if reuse and self.ratio_level is None:
+            object.__setattr__(self, "ratio_level", "sequence")
+
+    @classmethod
+    def from_keywords(cls, where: str, common: dict, *, refused: tuple[str, ...] = ()) -> "LossOptions":
+        """Options from ``**common`` of the function ``where``; unknown keys and ``refused`` ones are errors."""
+        known = {f.name for f in dataclasses.fields(cls)}
+        for key in common:
+            if key not in known:
+                raise TypeError(f"{where} got an unexpected keyword argument {key!r}; the shared options are "
+                                f"{sorted(known - set(refused))}")
+            value = common[key]
+            if key in refused and value is not None and not (isinstance(value, numbers.Real) and value == 0):
+                got = f"a tensor of shape {tuple(value.shape)}" if is_tensor(value) else f"{key}={value!r}"
+                raise ValueError(f"{where} does not take {key} (it has no effect there), got {got}")
+        return cls(**common)
