@@ -24,9 +24,9 @@ import time
 
 import torch
 
-from bonft.objectives.credit import bon_rl_credit
+from bonft.objectives.credit import best_of_k_credit
 from bonft.objectives.losses import (
-    bon_rl_loss, bon_sft_loss, nll_loss, pass_at_k_loss, policy_gradient_loss, reinforce_loss,
+    best_of_k_loss, best_of_k_sft_loss, nll_loss, pass_at_k_loss, policy_gradient_loss, reinforce_loss,
 )
 
 from _timing import interleaved_medians
@@ -69,21 +69,21 @@ def main(argv=None) -> int:
     rewards_np = (torch.rand(B, n) < 0.3).double().numpy()
     rewards = torch.from_numpy(rewards_np).float()
     expert_lp0 = -torch.rand(B, T)
-    expert_scores = torch.randint(0, 8, (B,)).double().numpy()
-    credit = bon_rl_credit(scores_np, rewards_np, k=4)
+    reference_scores = torch.randint(0, 8, (B,)).double().numpy()
+    credit = best_of_k_credit(scores_np, rewards_np, k=4)
 
     base_name = "hand-written leave-one-out (baseline)"
     cases = {
         base_name: lambda lp: hand_written_loo(lp, rewards, mask),
         "reinforce_loss": lambda lp: reinforce_loss(lp, rewards_np, mask=mask),
         "policy_gradient_loss (given credit)": lambda lp: policy_gradient_loss(lp, credit, mask=mask),
-        "bon_rl_loss k=4": lambda lp: bon_rl_loss(lp, scores_np, rewards_np, k=4, mask=mask),
-        "bon_rl_loss k=64 (= n)": lambda lp: bon_rl_loss(lp, scores_np, rewards_np, k=64, mask=mask),
-        "bon_rl_loss k=4, distinct scores": lambda lp: bon_rl_loss(lp, distinct_np, rewards_np, k=4, mask=mask),
+        "best_of_k_loss k=4": lambda lp: best_of_k_loss(lp, scores_np, rewards_np, k=4, mask=mask),
+        "best_of_k_loss k=64 (= n)": lambda lp: best_of_k_loss(lp, scores_np, rewards_np, k=64, mask=mask),
+        "best_of_k_loss k=4, distinct scores": lambda lp: best_of_k_loss(lp, distinct_np, rewards_np, k=4, mask=mask),
         "pass_at_k_loss k=8": lambda lp: pass_at_k_loss(lp, rewards_np, k=8, mask=mask),
         "pass_at_k_loss k=8 plugin": lambda lp: pass_at_k_loss(lp, rewards_np, k=8, estimator="plugin", mask=mask),
-        "bon_sft_loss k=8": lambda lp: bon_sft_loss(lp, scores_np, expert_lp0, expert_scores, k=8, mask=mask),
-        "bon_rl_loss k=4, return_info": lambda lp: bon_rl_loss(lp, scores_np, rewards_np, k=4, mask=mask,
+        "best_of_k_sft_loss k=8": lambda lp: best_of_k_sft_loss(lp, scores_np, expert_lp0, reference_scores, k=8, mask=mask),
+        "best_of_k_loss k=4, return_info": lambda lp: best_of_k_loss(lp, scores_np, rewards_np, k=4, mask=mask,
                                                                return_info=True)[0],
         "nll_loss (B*n rows)": lambda lp: nll_loss(lp.view(B * n, T), mask=mask.view(B * n, T)),
     }
@@ -119,7 +119,7 @@ def main(argv=None) -> int:
         x = ids[b0:b0 + micro].reshape(micro * n, P + T)  # (micro*n, P+T)
         logits = model(x).logits[:, P - 1: -1]  # predictions of the response tokens
         lp = torch.log_softmax(logits, -1).gather(-1, x[:, P:, None])[..., 0]  # (micro*n, T)
-        loss = bon_rl_loss(lp.view(micro, n, T), scores_np[b0:b0 + micro], rewards_np[b0:b0 + micro], k=4,
+        loss = best_of_k_loss(lp.view(micro, n, T), scores_np[b0:b0 + micro], rewards_np[b0:b0 + micro], k=4,
                            mask=mask[b0:b0 + micro], reduction="sum")
         (loss / B).backward()  # accumulate the mean over all B prompts
 
@@ -133,7 +133,7 @@ def main(argv=None) -> int:
     t0 = time.perf_counter()
     train_step()
     t_step = time.perf_counter() - t0
-    t_credit = interleaved_medians({"credit": lambda: bon_rl_credit(scores_np, rewards_np, k=4)}, reps)["credit"]
+    t_credit = interleaved_medians({"credit": lambda: best_of_k_credit(scores_np, rewards_np, k=4)}, reps)["credit"]
     share = t_credit / t_step
     print(f"training step, tiny GPT-2 (width {width}, 2 layers) on B*n={B * n} responses of T={T} "
           f"({B // micro} micro-batches of {micro} prompts):")

@@ -4,7 +4,7 @@
    (Zipf-like answer frequencies, our own simulation): ``majority_vote_per_prompt`` (exact count DP)
    against ``best_of_k_per_prompt`` (sorted-pool closed form) on the same pools.
    Goal: seconds on one core.
-2. Credit for B = 256 prompts, n = 64 samples, k = 8: ``majority_vote_credit`` against ``bon_rl_credit``.
+2. Credit for B = 256 prompts, n = 64 samples, k = 8: ``majority_vote_credit`` against ``best_of_k_credit``.
    Goal: within 2x the best-of-k credit. For information, ``weighted_vote_credit``
    (sampled k-subsets, ``MAX_SUBSETS`` per pool) on the same pools.
 
@@ -19,7 +19,7 @@ import os
 import numpy as np
 import torch
 
-from bonft.objectives.credit import bon_rl_credit
+from bonft.objectives.credit import best_of_k_credit
 from bonft.estimate import best_of_k_per_prompt
 from bonft.strategies.estimators import majority_vote_per_prompt, majority_vote_credit, weighted_vote_credit
 
@@ -55,7 +55,7 @@ def main() -> None:
     ans, s, r = pools(256, 64, 20, seed=1)
     rt, st = torch.as_tensor(r), torch.as_tensor(s)
     t_vc = min_time(lambda: majority_vote_credit(ans, r, k=8), repeats=2)
-    t_bc = min_time(lambda: bon_rl_credit(st, rt, k=8), repeats=5)
+    t_bc = min_time(lambda: best_of_k_credit(st, rt, k=8), repeats=5)
     print("2. credit, B = 256, n = 64, k = 8 (<= 20 answers/prompt):")
     print(f"   majority vote {t_vc:8.4f} s   best-of-k {t_bc:8.5f} s   ratio {t_vc / t_bc:8.1f}x (goal <= 2x)")
     t_wc = min_time(lambda: weighted_vote_credit(ans, s, r, k=8))

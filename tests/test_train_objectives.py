@@ -16,7 +16,7 @@ f64 = lambda x: torch.as_tensor(np.asarray(x), dtype=torch.float64)
 def pools_of(scores, rewards, expert=None, answers=None):
     extra = {} if answers is None else {"answers": answers}  # answer keys: vote objectives only
     return Pools(scores=f64(scores), rewards=f64(rewards), correct=f64(np.asarray(rewards) >= 0.5),
-                 expert_scores=None if expert is None else f64(expert), **extra)
+                 reference_scores=None if expert is None else f64(expert), **extra)
 
 
 @pytest.fixture

@@ -24,7 +24,7 @@ Targets: ``"best_of_k"`` (``V_k``, the expected reward of the best-scored of k d
 random; Chow et al. 2024), ``"pass_at_k"`` (``1 - (1-p)^k``, Chen et al. 2021: 0/1 rewards and the
 verifier is the reward, so the credit is called with ``scores = rewards``), ``"bon_sft"`` (``log
 pi_bon(y*)`` of an expert outcome, Chow et al. 2024; the credit is called as
-``credit(scores, expert_scores, *, k)`` with ``expert_scores: (B,)`` and the exact ``grad log pi(y*)``
+``credit(scores, reference_scores, *, k)`` with ``reference_scores: (B,)`` and the exact ``grad log pi(y*)``
 term is added by the check), or a payoff ``payoff(scores, rewards) -> value`` of a set of k samples,
 ``(M, k), (M, k) -> (M,)`` numpy float64, which must not depend on the order of the k samples.
 
@@ -280,7 +280,7 @@ def check_objective(credit, *, target, k, n, policies=4, outcomes=4, seed=0, tra
     r"""Check that ``credit`` estimates the gradient of ``target`` without bias; report bias and variance.
 
     credit: ``(scores, rewards, *, k) -> w``, ``(B, n), (B, n) -> (B, n)`` (``"bon_sft"``:
-    ``(scores, expert_scores, *, k)`` with ``expert_scores: (B,)``); target: ``"best_of_k"``,
+    ``(scores, reference_scores, *, k)`` with ``reference_scores: (B,)``); target: ``"best_of_k"``,
     ``"pass_at_k"``, ``"bon_sft"`` or a payoff ``(M, k), (M, k) -> (M,)``; policies: how many random
     categorical policies over ``outcomes`` outcomes, or a list of :class:`ToyPolicy`.
 
@@ -331,15 +331,15 @@ def check_objective(credit, *, target, k, n, policies=4, outcomes=4, seed=0, tra
 # ------------------------------------------------------------------ bonft's own objectives, in the checked signature
 
 def _bon_rl(scores, rewards, *, k):
-    from bonft.objectives.credit import bon_rl_credit
+    from bonft.objectives.credit import best_of_k_credit
 
-    return bon_rl_credit(scores, rewards, k=k)
+    return best_of_k_credit(scores, rewards, k=k)
 
 
 def _bon_rl_no_baseline(scores, rewards, *, k):
-    from bonft.objectives.credit import bon_rl_credit
+    from bonft.objectives.credit import best_of_k_credit
 
-    return bon_rl_credit(scores, rewards, k=k, baseline="none")
+    return best_of_k_credit(scores, rewards, k=k, baseline="none")
 
 
 def _pass_at_k(scores, rewards, *, k):
@@ -360,10 +360,10 @@ def _pass_at_k_positive_only(scores, rewards, *, k):
     return pass_at_k_credit(rewards, k=k, positive_only=True)
 
 
-def _bon_sft(scores, expert_scores, *, k):
-    from bonft.objectives.credit import bon_sft_credit
+def _bon_sft(scores, reference_scores, *, k):
+    from bonft.objectives.credit import best_of_k_sft_credit
 
-    return bon_sft_credit(scores, expert_scores, k=k)
+    return best_of_k_sft_credit(scores, reference_scores, k=k)
 
 
 def _reinforce_loo(scores, rewards, *, k):

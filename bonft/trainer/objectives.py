@@ -37,14 +37,14 @@ class Pools:
     """The scored samples of ``b`` prompts, as float64 tensors on the training device.
 
     scores, rewards: (b, n); correct: (b, n) 0/1 (reward >= the correctness threshold);
-    expert_scores: (b,) verifier score of each prompt's reference response (best_of_k_sft only);
+    reference_scores: (b,) verifier score of each prompt's reference response (best_of_k_sft only);
     answers: (b, n) answer keys extracted from the responses (vote objectives only).
     """
 
     scores: torch.Tensor
     rewards: torch.Tensor
     correct: torch.Tensor
-    expert_scores: torch.Tensor | None = None
+    reference_scores: torch.Tensor | None = None
     answers: np.ndarray | None = None
 
 
@@ -93,7 +93,7 @@ OBJECTIVES: dict[str, Objective] = {
         credit=lambda p, k: C.reinforce_credit(p.rewards, baseline="loo"), value=lambda p, k: p.rewards.mean(-1),
         summary="mean reward (pass@1), leave-one-out REINFORCE (Kool et al. 2019): the baseline"),
     "best_of_k": Objective(
-        credit=lambda p, k: C.bon_rl_credit(p.scores, p.rewards, k=k, baseline="loo"),
+        credit=lambda p, k: C.best_of_k_credit(p.scores, p.rewards, k=k, baseline="loo"),
         value=lambda p, k: C.pool_value(p.scores, p.rewards, k=k),
         summary="best-of-k with the training verifier selecting (Chow et al. 2024, BoN-RL)"),
     "pass_at_k": Objective(
@@ -104,7 +104,7 @@ OBJECTIVES: dict[str, Objective] = {
     "pass_at_k_positive": Objective(
         credit=_pass_at_k("unbiased", True), value=_pass_value, summary="pass@k, credit on correct samples only"),
     "best_of_k_sft": Objective(
-        credit=lambda p, k: C.bon_sft_credit(p.scores, p.expert_scores, k=k),
+        credit=lambda p, k: C.best_of_k_sft_credit(p.scores, p.reference_scores, k=k),
         value=None, expert=True,
         summary="best-of-k-aware supervised fine-tuning on reference answers (Chow et al. 2024, BoN-SFT)"),
     "majority_vote": Objective(
@@ -146,18 +146,18 @@ def shuffle_pools(seeds: Sequence[int], *arrays: np.ndarray) -> tuple[np.ndarray
 
 def policy_loss(logprobs: torch.Tensor, credit: torch.Tensor, *, mask: torch.Tensor | None, token_reduction: str,
                 anchor_logprobs: torch.Tensor | None = None, anchor_weight: float = 0.0,
-                expert_logprobs: torch.Tensor | None = None, expert_mask: torch.Tensor | None = None,
+                reference_logprobs: torch.Tensor | None = None, reference_mask: torch.Tensor | None = None,
                 ) -> tuple[torch.Tensor, dict]:
     """Sum over prompts of ``-sum_i w_bi log pi(y_bi)`` (+ anchor KL) (``- log pi(y*_b)`` with an expert).
 
-    logprobs, mask, anchor_logprobs: (b, n, T); credit: (b, n); expert_logprobs, expert_mask: (b, T)
+    logprobs, mask, anchor_logprobs: (b, n, T); credit: (b, n); reference_logprobs, reference_mask: (b, T)
     -> loss (), info (name -> number; ``kl`` when an anchor is given).
     """
     loss, info = L.policy_gradient_loss(logprobs, credit, mask=mask, token_reduction=token_reduction, reduction="sum",
                                         anchor_logprobs=anchor_logprobs, anchor_weight=anchor_weight, return_info=True)
     info = {key: float(v) for key, v in info.items()}
-    if expert_logprobs is not None:
-        nll = L.nll_loss(expert_logprobs, mask=expert_mask, token_reduction=token_reduction, reduction="sum")
+    if reference_logprobs is not None:
+        nll = L.nll_loss(reference_logprobs, mask=reference_mask, token_reduction=token_reduction, reduction="sum")
         loss = loss + nll
-        info["expert_logprob"] = -float(nll.detach()) / expert_logprobs.shape[0]
+        info["expert_logprob"] = -float(nll.detach()) / reference_logprobs.shape[0]
     return loss, info

@@ -191,7 +191,7 @@ def _score(run: Run, prompts: list[str], texts: list[list[str]], references: lis
     expert = None
     if references is not None:
         expert = t(score_batch(run.verifiers["train"], prompts, references).scores)
-    pools = Pools(scores=t(scores), rewards=t(rewards), correct=t(rewards >= cfg.correct_threshold), expert_scores=expert,
+    pools = Pools(scores=t(scores), rewards=t(rewards), correct=t(rewards >= cfg.correct_threshold), reference_scores=expert,
                   answers=answers)
     return pools, v.n_failed
 
@@ -208,7 +208,7 @@ def _pool_loss(run: Run, model: Any, rows: tuple, expert_rows: tuple | None, cre
     if expert_rows is not None:  # (b, 1, T) -> (b, T): the reference response
         e_lp, e_mask = sequence_logprobs(model, *expert_rows)[:, 0], expert_rows[3][:, 0]
     return policy_loss(logp, credit, mask=rows[3], token_reduction=cfg.token_reduction, anchor_logprobs=anchor_logp,
-                       anchor_weight=cfg.anchor_weight, expert_logprobs=e_lp, expert_mask=e_mask)
+                       anchor_weight=cfg.anchor_weight, reference_logprobs=e_lp, reference_mask=e_mask)
 
 
 def _add_prompt_gradients(run: Run, moments: GradientMoments, rows: tuple, expert_rows: tuple | None,
@@ -268,7 +268,7 @@ def rl_step(run: Run, step: int, clock: Stopwatch) -> dict:
                 _add_prompt_gradients(run, moments, rows, expert_rows, credit, anchor_logp)
         info.update({"pool_value": float(value.mean())} if value is not None else {})
         if obj.expert:
-            info["beaten_frac"] = float((pools.scores > pools.expert_scores[:, None]).double().mean())
+            info["beaten_frac"] = float((pools.scores > pools.reference_scores[:, None]).double().mean())
         for key, val in [("loss", float(loss.detach()) / B), ("reward", float(pools.rewards.mean()) * b / B),
                          ("score", float(pools.scores.mean()) * b / B), ("verifier_failures", failed),
                          *((info_metric(key), float(v) * b / B) for key, v in info.items())]:
