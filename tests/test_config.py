@@ -99,3 +99,58 @@ def test_recipes_load():
     objectives = {load_config(p).objective for p in recipes}
     assert objectives == {"reinforce", "best_of_k", "pass_at_k", "pass_at_k_plugin", "pass_at_k_positive", "best_of_k_sft",
                           "majority_vote"}
+
+
+# The renamed keys of 0.3 (CHANGELOG.md): the old spelling is read with a warning naming the new key.
+OLD_KEYS = [("n_train", "train_prompts", 40), ("n_eval", "heldout_prompts", 7), ("eval_n", "eval_samples", 32),
+            ("sft_steps", "warm_start_steps", 3), ("sft_batch_size", "warm_start_batch_size", 16),
+            ("sft_lr", "warm_start_lr", 0.01)]
+
+
+@pytest.mark.parametrize("old, new, value", OLD_KEYS)
+def test_old_key_spelling_is_read_with_a_warning_naming_the_new_key(old, new, value, tmp_path):
+    from bonft.trainer.config import DeprecatedKeyWarning
+
+    with pytest.warns(DeprecatedKeyWarning, match=rf"config key '{old}' is now called '{new}'"):
+        assert getattr(make(**{old: value}), new) == value
+    with pytest.warns(DeprecatedKeyWarning, match=rf"--set config key '{old}' is now called '{new}'"):
+        assert apply_overrides({}, [f"{old}={value}"])[new] == value
+    recipe = tmp_path / "old.toml"
+    recipe.write_text(f"rl_steps = 2\n{old} = {value}\n")
+    with pytest.warns(DeprecatedKeyWarning, match=rf"'{old}' is now called '{new}'"):
+        assert getattr(load_config(recipe), new) == value
+    with pytest.warns(DeprecatedKeyWarning), pytest.raises(
+            ValueError, match=rf"{old} and {new} are the same key \(old and new spelling\), got both; keep {new}"):
+        make(**{old: value, new: value})
+
+
+def test_objective_loo_reinforce_is_read_as_reinforce_with_a_warning():
+    from bonft.trainer.config import DeprecatedKeyWarning
+
+    with pytest.warns(DeprecatedKeyWarning, match=r"objective 'loo_reinforce' is now called 'reinforce'"):
+        assert make(objective="loo_reinforce", k=1).objective == "reinforce"
+
+
+@pytest.mark.parametrize("key, value", [("arch", "llama"), ("layers", 3), ("width", 64), ("heads", 2),
+                                        ("max_positions", 200), ("layers", 2)])
+def test_tiny_model_keys_with_start_from_are_an_error(key, value):
+    # given explicitly in a recipe, even at its default value (layers = 2), the key cannot take effect
+    with pytest.raises(ValueError, match=rf"{key} must be left unset with start_from \(the model comes from 'ckpt'\), "
+                                         rf"got {key}={value!r}"):
+        make(start_from="ckpt", **{key: value})
+    if value != TrainConfig.__dataclass_fields__[key].default:  # the dataclass itself: any non-default value
+        with pytest.raises(ValueError, match=rf"{key} must be left unset with start_from"):
+            TrainConfig(start_from="ckpt", rl_steps=1, **{key: value})
+
+
+def test_a_config_with_start_from_writes_no_tiny_model_keys():
+    text = to_toml(make(start_from="ckpt"))
+    assert 'start_from = "ckpt"' in text
+    assert [ln.split(" =")[0] for ln in text.splitlines() if ln.split(" =")[0] in
+            ("arch", "layers", "width", "heads", "max_positions")] == []
+    assert "layers = 2" in to_toml(make())  # built from scratch: the keys are the model's
+
+
+def test_unknown_task_names_the_task_key():
+    with pytest.raises(ValueError, match=r"^task must be one of \('ledger', 'restock', 'refunds', 'jsonl'\), got 'x'$"):
+        make(task="x")

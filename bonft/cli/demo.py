@@ -27,7 +27,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 def _demo_config(args):
     import dataclasses
 
-    from bonft.trainer.config import _convert, _parse_scalar
+    from bonft.trainer.config import _convert, _current_key, _parse_scalar
     from bonft.trainer.demo import DemoConfig
 
     dc = DemoConfig(run_dir=args.output, seed=args.seed)
@@ -36,6 +36,7 @@ def _demo_config(args):
         if "=" not in item:
             raise ValueError(f"--set expects key=value, got {item!r}")
         key, text = (s.strip() for s in item.split("=", 1))
+        key = _current_key(key, "--set ")
         if key.startswith("task_params."):
             dc.task_params[key.split(".", 1)[1]] = _parse_scalar(text)
         elif key in ("objectives", "plan_policies"):
