@@ -23,8 +23,16 @@ import torch
 from torch import Tensor
 
 from bonft._core.checks import (
-    as_float_array, check_binary, check_bool, check_choice, check_finite, check_k, check_nonempty, check_nonnegative,
-    is_tensor, torch_out_dtype,
+    as_float_array,
+    check_binary,
+    check_bool,
+    check_choice,
+    check_finite,
+    check_k,
+    check_nonempty,
+    check_nonnegative,
+    is_tensor,
+    torch_out_dtype,
 )
 
 TOKEN_REDUCTIONS = ("sum", "mean")
