@@ -21,11 +21,10 @@ import tempfile
 import time
 
 import numpy as np
+from _timing import interleaved_medians
 
 from bonft.estimate import best_of_k_per_prompt, pass_at_k, summarize
 from bonft.io import group_pools, read_samples, write_samples
-
-from _timing import interleaved_medians
 
 
 def best_of(fn, repeats: int) -> tuple[float, float]:

@@ -17,12 +17,11 @@ import itertools
 
 import numpy as np
 import torch
-
-from bonft.objcheck.transformer import transformer_check
-from bonft.objcheck import _resolve_target, builtin, check_objective
-from bonft.trainer.models import build_tiny_model
-
 from _timing import min_time
+
+from bonft.objcheck import _resolve_target, builtin, check_objective
+from bonft.objcheck.transformer import transformer_check
+from bonft.trainer.models import build_tiny_model
 
 
 def enumeration_loop(V=4, n=6, k=3, seed=0):

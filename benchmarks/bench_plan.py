@@ -30,9 +30,9 @@ def main() -> int:
     args = ap.parse_args()
 
     from bonft.estimate import best_of_k_per_prompt
-    from bonft.tasks.examples import ledger_rows
-    from bonft.plan import plan_samples
     from bonft.io import group_pools, read_samples, write_samples
+    from bonft.plan import plan_samples
+    from bonft.tasks.examples import ledger_rows
 
     with tempfile.TemporaryDirectory() as tmp:
         path = os.path.join(tmp, "samples.jsonl")

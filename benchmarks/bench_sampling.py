@@ -27,12 +27,11 @@ import statistics
 import subprocess
 import sys
 import time
-import types
 
 import torch
 
-from bonft.tasks import build_tokenizer, get_task
 from bonft.generation.sampling import sample
+from bonft.tasks import build_tokenizer, get_task
 from bonft.trainer.models import build_tiny_model
 
 

@@ -34,7 +34,6 @@ from bonft.bon import (
     softmax_policy,
 )
 
-
 # --------------------------------------------------------------- references
 
 

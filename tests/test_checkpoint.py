@@ -5,9 +5,16 @@ import numpy as np
 import pytest
 import torch
 
-from bonft.trainer.checkpoint import latest_checkpoint, list_checkpoints, load_state, resolve_checkpoint, save_checkpoint, set_rng_state
-from bonft.trainer.models import build_tiny_model, load_model
 from bonft.tasks.tokenizer import build_tokenizer
+from bonft.trainer.checkpoint import (
+    latest_checkpoint,
+    list_checkpoints,
+    load_state,
+    resolve_checkpoint,
+    save_checkpoint,
+    set_rng_state,
+)
+from bonft.trainer.models import build_tiny_model, load_model
 
 
 @pytest.fixture()

@@ -16,8 +16,8 @@ import pytest
 
 import bonft.generation.sampling
 from bonft.cli import main
-from bonft.tasks.examples import ledger_rows
 from bonft.io import write_samples
+from bonft.tasks.examples import ledger_rows
 
 
 @pytest.fixture()
@@ -94,8 +94,8 @@ def test_plan_command_exact_file(tmp_path, capsys):
 
 
 def test_plan_command_model_mode_reuses_cache(tmp_path, monkeypatch, capsys):
-    from bonft.trainer.models import build_tiny_model, save_model
     from bonft.tasks import build_tokenizer
+    from bonft.trainer.models import build_tiny_model, save_model
 
     tok = build_tokenizer()
     model = build_tiny_model(vocab_size=len(tok), layers=1, width=32, heads=2, pad_token_id=tok.pad_token_id,

@@ -14,11 +14,18 @@ import math
 import numpy as np
 import pytest
 import torch
-from hypothesis import given, settings, strategies as st
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from bonft.bon import best_of_k_value, log_best_of_k_distribution, softmax_policy
-from bonft.objectives.credit import best_of_k_credit, pass_at_k_credit, pool_value, reinforce_credit, best_of_k_sft_credit
 from bonft.estimate import best_of_k
+from bonft.objectives.credit import (
+    best_of_k_credit,
+    best_of_k_sft_credit,
+    pass_at_k_credit,
+    pool_value,
+    reinforce_credit,
+)
 
 TOL = 1e-10
 

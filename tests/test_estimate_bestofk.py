@@ -17,7 +17,6 @@ from bonft.estimate import (
     pass_at_k_per_prompt,
 )
 
-
 # ----------------------------------------------------------------------------- references (independent of bonft)
 
 

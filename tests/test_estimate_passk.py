@@ -4,8 +4,8 @@ import math
 from fractions import Fraction
 
 import numpy as np
-import torch
 import pytest
+import torch
 
 from bonft.estimate import pass_at_k
 

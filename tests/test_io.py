@@ -5,8 +5,8 @@ import os
 import numpy as np
 import pytest
 
-from bonft.tasks.examples import example_samples_path, ledger_rows
 from bonft.io import SampleTable, group_pools, read_samples, temperatures_of, write_samples
+from bonft.tasks.examples import example_samples_path, ledger_rows
 
 
 def write_lines(path, lines):

@@ -10,11 +10,12 @@ import itertools
 import numpy as np
 import pytest
 import torch
-from hypothesis import given, settings, strategies as st
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from bonft.bon import best_of_k_value, log_best_of_k_distribution, softmax_policy
-from bonft.objectives.credit import best_of_k_credit, best_of_k_sft_credit
 from bonft.estimate import best_of_k_per_prompt
+from bonft.objectives.credit import best_of_k_credit, best_of_k_sft_credit
 from bonft.objectives.losses import best_of_k_loss, best_of_k_sft_loss, nll_loss, pass_at_k_loss, reinforce_loss
 
 TOL = 1e-10

@@ -10,8 +10,8 @@ no biases) + 3 * d * 4d (SwiGLU MLP) + 2d (RMSNorms), from Touvron et al.
 import pytest
 import torch
 
-from bonft.trainer.models import build_tiny_model, load_model, pick_device, save_model
 from bonft.tasks.tokenizer import BOS_ID, EOS_ID, PAD_ID, build_tokenizer
+from bonft.trainer.models import build_tiny_model, load_model, pick_device, save_model
 
 TOK = build_tokenizer()
 V = TOK.vocab_size

@@ -19,8 +19,8 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy import stats
 
-from bonft.plan import Pools, fit_best_temperature, plan_exact, plan_pools, plan_samples
 from bonft.io import read_samples, write_samples
+from bonft.plan import Pools, fit_best_temperature, plan_exact, plan_pools, plan_samples
 
 # --------------------------------------------------------------------------- independent references
 

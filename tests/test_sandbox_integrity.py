@@ -9,9 +9,9 @@ tmpfs(5) (a tmpfs lives in memory and its contents vanish when unmounted).
 import os
 
 import pytest
+from sandbox_attacks import ATTACKS, ESCAPE_PATHS
 
 from bonft.verifiers import CodeRunner
-from sandbox_attacks import ATTACKS, ESCAPE_PATHS
 
 ROOT = os.geteuid() == 0
 

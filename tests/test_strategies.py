@@ -21,9 +21,21 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from bonft.objectives import credit as C
-from bonft.strategies import (MajorityVote, WeightedVote, get_strategy, majority_vote_credit, majority_vote_per_prompt,
-                              majority_vote_value, strategy_credit, strategy_loss, strategy_per_prompt, strategy_value,
-                              weighted_vote_credit, weighted_vote_per_prompt, weighted_vote_value)
+from bonft.strategies import (
+    MajorityVote,
+    WeightedVote,
+    get_strategy,
+    majority_vote_credit,
+    majority_vote_per_prompt,
+    majority_vote_value,
+    strategy_credit,
+    strategy_loss,
+    strategy_per_prompt,
+    strategy_value,
+    weighted_vote_credit,
+    weighted_vote_per_prompt,
+    weighted_vote_value,
+)
 
 # a small policy: 6 outcomes, 3 answers with two surface forms each; ties in scores (0.5, 0.2)
 # and in answer counts; rewards differ between two surface forms of answer 0, so the vote calls

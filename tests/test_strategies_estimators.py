@@ -9,8 +9,13 @@ import itertools
 import numpy as np
 import pytest
 
-from bonft.strategies import (majority_vote_credit, majority_vote_per_prompt, strategy_credit, weighted_vote_credit,
-                              weighted_vote_per_prompt)
+from bonft.strategies import (
+    majority_vote_credit,
+    majority_vote_per_prompt,
+    strategy_credit,
+    weighted_vote_credit,
+    weighted_vote_per_prompt,
+)
 
 
 def _weighted_served(idx, ans, w, rew) -> float:

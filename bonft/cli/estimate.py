@@ -3,8 +3,10 @@ from __future__ import annotations
 
 import argparse
 import os
-from bonft.cli._strategies import add_strategy_arguments, run_estimate as _run_strategies
+
 from bonft.cli._args import add_duplicates_flag, add_plot_dir, check_boot, parse_list, write_curve_outputs
+from bonft.cli._strategies import add_strategy_arguments
+from bonft.cli._strategies import run_estimate as _run_strategies
 
 HELP = "best-of-k (verifier picks) and oracle pass@k with bootstrap CIs from a pool file (JSONL of scored samples)"
 DESCRIPTION = (
@@ -38,9 +40,9 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 def run(args) -> int:
     from bonft.estimate import default_ks, summarize
-    from bonft.viz import plot_bon_curves
-    from bonft.tasks.examples import example_samples_path
     from bonft.io import group_pools, read_samples, temperatures_of
+    from bonft.tasks.examples import example_samples_path
+    from bonft.viz import plot_bon_curves
 
     if args.example and args.samples:
         raise ValueError(f"give either POOLS or --example, got both ({args.samples!r} and --example)")

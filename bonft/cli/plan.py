@@ -4,8 +4,10 @@ from __future__ import annotations
 import argparse
 import json
 import os
-from bonft.cli._strategies import add_strategy_arguments, run_plan as _run_strategies
+
 from bonft.cli._args import add_duplicates_flag, check_boot, parse_list, write_json_atomic
+from bonft.cli._strategies import add_strategy_arguments
+from bonft.cli._strategies import run_plan as _run_strategies
 
 HELP = "choose temperature and N: best-of-k value over a temperature x k grid, budgets, doubling gains"
 DESCRIPTION = (
@@ -192,8 +194,8 @@ def run(args) -> int:
         res = plan_exact(logits=spec.get("logits"), probs=spec.get("probs"), scores=spec["scores"],
                          rewards=spec["rewards"], lengths=spec.get("lengths"), temperatures=temps, **kw)
     else:
-        from bonft.trainer.models import load_model, pick_device
         from bonft.plan.from_model import plan_model
+        from bonft.trainer.models import load_model, pick_device
 
         prompts, verifier, vname = _prompts_and_verifier(args)  # the user's files first: errors before a slow load
         model, tokenizer = load_model(args.model, device=pick_device(args.device))

@@ -7,7 +7,6 @@ import torch
 
 from bonft._core.checks import check_fraction, check_items, check_positive
 
-
 # ---------------------------------------------------------------- validation
 
 

@@ -76,9 +76,10 @@ def attend(query: torch.Tensor, layer, bias: torch.Tensor, scale: float) -> torc
 
 try:  # transformers >= 5: caches are lists of layers, attention goes through a registry
     from transformers import AttentionInterface
-    from transformers.masking_utils import AttentionMaskInterface, sdpa_mask as _sdpa_mask
     from transformers.cache_utils import DynamicLayer as _DynamicLayer
     from transformers.integrations.sdpa_attention import sdpa_attention_forward as _sdpa
+    from transformers.masking_utils import AttentionMaskInterface
+    from transformers.masking_utils import sdpa_mask as _sdpa_mask
 except ImportError:  # pragma: no cover - older transformers: the stock cache is used
     _DynamicLayer = None
 else:

@@ -21,7 +21,7 @@ import itertools
 import numpy as np
 import torch
 
-from bonft.objcheck import _multisets, _ordered, _MAX_ROWS, call_credit, value_fn
+from bonft.objcheck import _MAX_ROWS, _multisets, _ordered, call_credit, value_fn
 from bonft.objcheck.report import MC_Z
 
 

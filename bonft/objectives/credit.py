@@ -38,7 +38,13 @@ from bonft._core.passk import log_miss, pass_at_k_counts
 from bonft._core.ties import first_of_group, flat_groups
 from bonft._core.ustat import count_tables
 from bonft.objectives.validation import (
-    as_host, check_loo_pool, correct_pool, finish, out_kind, reference_pool, scored_pool,
+    as_host,
+    check_loo_pool,
+    correct_pool,
+    finish,
+    out_kind,
+    reference_pool,
+    scored_pool,
 )
 
 __all__ = ["best_of_k_credit", "pass_at_k_credit", "best_of_k_sft_credit", "reinforce_credit", "pool_value"]

@@ -107,11 +107,23 @@ from torch import Tensor
 
 from bonft._core.checks import is_tensor
 from bonft.objectives.credit import (
-    best_of_k_credit, best_of_k_sft_credit, pass_at_k_credit, pool_value, reinforce_credit,
+    best_of_k_credit,
+    best_of_k_sft_credit,
+    pass_at_k_credit,
+    pool_value,
+    reinforce_credit,
 )
 from bonft.objectives.validation import (
-    LossOptions, as_host, check_empty_rows, check_logprobs, check_mask, check_pool_shape, check_ratios,
-    check_sampling_logprobs, check_token_values, credit_tensor,
+    LossOptions,
+    as_host,
+    check_empty_rows,
+    check_logprobs,
+    check_mask,
+    check_pool_shape,
+    check_ratios,
+    check_sampling_logprobs,
+    check_token_values,
+    credit_tensor,
 )
 
 __all__ = ["policy_gradient_loss", "best_of_k_loss", "pass_at_k_loss", "best_of_k_sft_loss", "reinforce_loss",

@@ -87,9 +87,9 @@ def draw_samples(
     """
     from tqdm.auto import tqdm
 
-    from bonft.plan.sweep import _check_temperatures
-    from bonft.io import SampleTable, read_samples, write_samples
     from bonft.generation.sampling import sample
+    from bonft.io import SampleTable, read_samples, write_samples
+    from bonft.plan.sweep import _check_temperatures
     from bonft.verifiers import score_batch
 
     temps = _check_temperatures(temperatures)

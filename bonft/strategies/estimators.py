@@ -44,7 +44,16 @@ import math
 import numpy as np
 import torch
 
-from bonft._core.checks import as_float_array, check_choice, check_finite, check_int, check_k, check_ks, is_tensor, torch_out_dtype
+from bonft._core.checks import (
+    as_float_array,
+    check_choice,
+    check_finite,
+    check_int,
+    check_k,
+    check_ks,
+    is_tensor,
+    torch_out_dtype,
+)
 from bonft.strategies.counting import pool_vote_sums, vote_credit_batched, weighted_slot_weights
 from bonft.strategies.exact import CONFLICT_RULES
 

@@ -39,7 +39,6 @@ else:  # pragma: no cover - Python 3.10
     import tomli as tomllib
 
 from bonft._core.checks import check_choice, check_fraction, check_int, check_positive, check_real
-
 from bonft.tasks import TASKS
 from bonft.trainer.objectives import OBJECTIVES  # the registry: objective name -> credit function + options
 

@@ -62,10 +62,10 @@ from typing import Any, Mapping, Sequence
 import numpy as np
 
 from bonft._core.checks import check_int, check_real
+from bonft.verifiers.base import Verdicts
 from bonft.verifiers.sandbox.oslayer import LAYER_NAMES, env, make_preexec, rlimits
 from bonft.verifiers.sandbox.outcome import STATUSES, await_start, classify, collect  # noqa: F401 - STATUSES is public here
 from bonft.verifiers.sandbox.procs import kill_by_cwd, kill_uid, pids_of, user_tasks
-from bonft.verifiers.base import Verdicts
 from bonft.verifiers.scoring import check_batch
 
 _UID_BASE = 1_000_000_000  # sandbox uids: _UID_BASE + 2000 * (random run id) + 2 * worker slot (+ 1: tests)
