@@ -173,6 +173,48 @@ def test_sample_fn_is_checked_against_its_stated_settings(flat):
     assert any("outside the support" in reason for reason in wrong.reasons)
 
 
+def _wrapped_generate(model, input_ids):  # a user's sampler that calls generate without top_k: keeps 50
+    return model.generate(input_ids, attention_mask=torch.ones_like(input_ids), do_sample=True, max_new_tokens=3,
+                          pad_token_id=0)
+
+
+def _multinomial(model, input_ids, steps=3):
+    ids = input_ids
+    for _ in range(steps):
+        ids = torch.cat([ids, torch.multinomial(torch.softmax(model(ids).logits[:, -1], -1), 1)], 1)
+    return ids
+
+
+def test_support_draws_catch_a_sampler_narrower_than_its_stated_settings(flat):
+    # stated: nothing (plain softmax); real: generate's top 50. The drawn tokens all lie in the stated
+    # support, so only the empirical first-step test can see it.
+    blind = check_on_policy(flat, PROMPTS, n=4, sample_fn=_wrapped_generate)
+    assert blind.ok and blind.first_step is None
+    m = 256
+    r = check_on_policy(flat, PROMPTS, n=4, sample_fn=_wrapped_generate, support_draws=m)
+    assert not r.ok and r.first_step["flagged"] == 2 and r.outside_support == 0
+    assert any("narrower than" in reason for reason in r.reasons)
+    unseen, expected = [], []
+    for d, prompt in zip(r.draws, PROMPTS):
+        with torch.no_grad():
+            logits = flat(torch.tensor([prompt])).logits[0, -1].double()
+        p = torch.softmax(logits, -1).numpy()
+        outside_top50 = 1.0 - p[torch.topk(logits, 50).indices.numpy()].sum()
+        f = d["first_step"]
+        # a token outside the top 50 is never drawn: the undrawn loss mass is at least the mass outside them
+        assert f["unseen_loss_mass"] >= outside_top50 - 1e-6 and outside_top50 > 0.5
+        # had the sampler followed q = p, token v is missed by all m draws with probability (1 - p_v)^m
+        assert f["expected"] == pytest.approx(float(np.sum(p * (1.0 - p) ** m)), rel=1e-9)
+        unseen.append(f["unseen_loss_mass"])
+        expected.append(f["expected"])
+    assert r.first_step["unseen_loss_mass"] == pytest.approx(np.mean(unseen))
+    assert r.first_step["expected"] == pytest.approx(np.mean(expected)) and 0.05 < r.first_step["expected"] < 0.3
+    # a sampler that does follow its stated law passes the same test
+    honest = check_on_policy(flat, PROMPTS, n=4, sample_fn=_multinomial, support_draws=m)
+    assert honest.ok and honest.first_step["flagged"] == 0
+    assert abs(honest.first_step["unseen_loss_mass"] - honest.first_step["expected"]) < 4 * honest.first_step["sd"]
+
+
 def test_report_table_dict_and_state(flat):
     flat.train()
     rng = torch.get_rng_state()
@@ -231,9 +273,14 @@ def _shape_lp(model, input_ids, response_ids):
     ({"logprob_fn": _pos_lp}, ValueError, r"logprob_fn must return log-probs \(<= 0\), got a maximum of 1"),
     ({"logprob_fn": _shape_lp}, ValueError, r"logprob_fn must return log-probs of shape \(2, 2\) or \(2, 2, 128\) .* got \(2, 3\)"),
     ({"max_missing_mass": 2.0}, ValueError, r"max_missing_mass must be in \[0, 1\]"),
+    ({"sample_fn": _multinomial, "max_new_tokens": 3}, ValueError, r"max_new_tokens=3 cannot take effect with sample_fn"),
+    ({"probe_batch": 64}, ValueError, r"probe_batch=64 cannot take effect without logprob_fn"),
+    ({"tokenizer": object()}, ValueError, r"tokenizer cannot take effect: prompts are token ids"),
+    ({"prompts": ["ab"], "tokenizer": object()}, TypeError, r"tokenizer must have an encode method"),
+    ({"support_draws": -1}, ValueError, r"support_draws must be >= 0, got support_draws=-1"),
 ])
 def test_bad_input_names_the_argument(flat, kwargs, exc, match):
-    args = {"prompts": [[1, 2]], "n": 2, "max_new_tokens": 2, "top_k": 0, **kwargs}
+    args = {"prompts": [[1, 2]], "n": 2, "top_k": 0, **({} if "sample_fn" in kwargs else {"max_new_tokens": 2}), **kwargs}
     prompts = args.pop("prompts")
     with pytest.raises(exc, match=match):
         check_on_policy(flat, prompts, **args)

@@ -40,6 +40,8 @@ class OnPolicyReport:
     * ``zero_mass_share`` -- share of drawn tokens to which the loss gives probability < ``ZERO_MASS``;
     * ``outside_support`` -- drawn tokens that the stated settings exclude (the sampler is not what
       its settings say);
+    * ``first_step`` -- with ``support_draws``: the empirical first-step test, averaged over prompts
+      (``unseen_loss_mass``, its ``expected`` value and ``sd`` under the stated law, ``flagged`` prompts);
     * ``draws`` -- per prompt: ``input_ids`` (n, P), ``response_ids`` (n, T), ``mask`` (n, T) and the
       per-step ``missing_mass``, ``kl``, ``loss_logprob`` (n, T) tensors.
     """
@@ -55,6 +57,7 @@ class OnPolicyReport:
     outside_support: int
     steps: int
     per_step: list[dict] = field(default_factory=list)
+    first_step: dict | None = None
     draws: list[dict] = field(default_factory=list, repr=False)
 
     @property
@@ -64,7 +67,7 @@ class OnPolicyReport:
     def to_dict(self) -> dict:
         """Plain numbers and strings (``kl`` may be ``inf``); the drawn tensors are left out."""
         keys = ("ok", "verdict", "reasons", "settings", "missing_mass", "max_missing_mass", "kl", "max_kl",
-                "zero_mass_share", "outside_support", "steps", "per_step")
+                "zero_mass_share", "outside_support", "steps", "per_step", "first_step")
         return {k: getattr(self, k) for k in keys}
 
     def __str__(self) -> str:
@@ -79,13 +82,19 @@ class OnPolicyReport:
         rows.append(f"{'all':>5} {self.steps:>6} {self.missing_mass:>13.4f} {self.kl:>18.4f} "
                     f"{round(self.zero_mass_share * self.steps):>16}")
         tail = [f"max per step: missing mass {self.max_missing_mass:.4f}, KL {self.max_kl:.4f}"]
+        if self.first_step:
+            f = self.first_step
+            tail.append(f"first step, {f['draws']} draws per prompt: loss mass on tokens never drawn "
+                        f"{f['unseen_loss_mass']:.4f} (stated law: {f['expected']:.4f} +- {f['sd']:.4f}), "
+                        f"{f['flagged']} of {self.settings['prompts']} prompts flagged")
         tail += [f"- {r}" for r in self.reasons] or ["- the loss's log-probs describe the sampler's policy"]
         return "\n".join([head, *rows, *tail])
 
 
 def check_on_policy(model, prompts, *, tokenizer=None, temperature=None, top_k=None, top_p=None, sample_fn=None,
-                    logprob_fn=None, n: int = 8, max_new_tokens: int = 8, seed: int = 0,
-                    max_missing_mass: float = 1e-3, max_kl: float = 1e-3, probe_batch: int = 4096) -> OnPolicyReport:
+                    logprob_fn=None, n: int = 8, max_new_tokens: int | None = None, seed: int = 0,
+                    max_missing_mass: float = 1e-3, max_kl: float = 1e-3, probe_batch: int | None = None,
+                    support_draws: int = 0) -> OnPolicyReport:
     """Draw ``n`` responses per prompt and compare, at every drawn step, the sampler's next-token
     distribution q with the distribution p whose log-probs the loss will differentiate.
 
@@ -95,7 +104,7 @@ def check_on_policy(model, prompts, *, tokenizer=None, temperature=None, top_k=N
 
     Sampler: ``sample_fn(model, input_ids) -> ids`` given (n, P) prompt ids returns (n, P + T) ids
     (the prompt followed by the response, as ``generate`` returns them). Without it the check calls
-    ``model.generate(input_ids, do_sample=True, max_new_tokens=..., <your settings>)`` passing
+    ``model.generate(input_ids, do_sample=True, max_new_tokens=max_new_tokens (default 8), <your settings>)`` passing
     exactly the settings you give; a setting left as None is left to ``generate``, which takes it
     from ``model.generation_config`` or else its own default (temperature 1, **top_k 50**, top_p 1).
 
@@ -104,14 +113,23 @@ def check_on_policy(model, prompts, *, tokenizer=None, temperature=None, top_k=N
     ``TopKLogitsWarper``, ``TopPLogitsWarper``) with the effective settings. With a ``sample_fn``
     those are the settings you state for it (unstated: temperature 1, no top-k, no top-p); the check
     then verifies that every drawn token lies inside that support (``outside_support`` counts those
-    that do not), but it cannot see a sampler that is *narrower* than its stated settings -- state
-    the settings it really uses. Other ``generation_config`` options that change the distribution
-    (repetition penalty, min-p, ...) are refused with a ValueError.
+    that do not). A sampler *narrower* than its stated settings (say, a ``sample_fn`` that calls
+    ``generate`` without ``top_k`` while you state none) draws only inside the stated support; to
+    catch it, ``support_draws=m`` also *estimates* the first step's support empirically: m more
+    draws per prompt (``generate`` with one new token, or ``sample_fn``), and the loss's mass on the
+    tokens none of them drew is compared with its expectation had the sampler followed the stated law
+    q, ``sum_v p(v) (1 - q(v))^m`` (the chance a token is missed by m independent draws). The
+    variance is bounded by the sum of the per-token variances, since the multinomial's zero-count
+    indicators are negatively associated (Joag-Dev & Proschan 1983); the step is flagged beyond the
+    expectation plus ``max(max_missing_mass, 4 sd)`` (a normal approximation). Its power depends on
+    m: a tail spread thinly over a large vocabulary needs many draws. Other ``generation_config``
+    options that change the distribution (repetition penalty, min-p, ...) are refused with a
+    ValueError.
 
     Loss: ``logprob_fn(model, input_ids, response_ids)`` returns the per-token log-probs the loss
     will see, (n, T) for (n, P) prompt ids and (n, T) responses, or the log-probs of every vocabulary
     token at each step, (n, T, V). For an (n, T) function p is read by probing it with every token at
-    each step (n * V * T rows, ``probe_batch`` rows a call: fine for small vocabularies; return
+    each step (n * V * T rows, ``probe_batch`` rows a call, default 4096: fine for small vocabularies; return
     (n, T, V) for large ones). Default: the full softmax at the sampler's temperature,
     ``log_softmax(logits / temperature)`` -- what a loop that samples with ``top_k=0`` and ``top_p=1``
     should use.
@@ -123,17 +141,24 @@ def check_on_policy(model, prompts, *, tokenizer=None, temperature=None, top_k=N
     """
     if not callable(model):
         raise TypeError(f"model must be a callable causal LM (e.g. a transformers model), got {type(model).__name__}")
-    n = check_int("n", n, min=1)
-    max_new_tokens = check_int("max_new_tokens", max_new_tokens, min=1)
-    seed = check_int("seed", seed)
-    probe_batch = check_int("probe_batch", probe_batch, min=1)
-    max_missing_mass = check_fraction("max_missing_mass", max_missing_mass)
-    max_kl = check_nonnegative("max_kl", max_kl)
     if sample_fn is not None and not callable(sample_fn):
         raise TypeError(f"sample_fn must be callable (model, input_ids) -> ids, got {type(sample_fn).__name__}")
     if logprob_fn is not None and not callable(logprob_fn):
         raise TypeError(f"logprob_fn must be callable (model, input_ids, response_ids) -> log-probs, "
                         f"got {type(logprob_fn).__name__}")
+    n = check_int("n", n, min=1)
+    if max_new_tokens is not None and sample_fn is not None:
+        raise ValueError(f"max_new_tokens={max_new_tokens!r} cannot take effect with sample_fn: "
+                         f"the sampler decides the response length")
+    max_new_tokens = check_int("max_new_tokens", 8 if max_new_tokens is None else max_new_tokens, min=1)
+    seed = check_int("seed", seed)
+    if probe_batch is not None and logprob_fn is None:
+        raise ValueError(f"probe_batch={probe_batch!r} cannot take effect without logprob_fn "
+                         f"(the default log-probs come from one forward pass)")
+    probe_batch = None if probe_batch is None else check_int("probe_batch", probe_batch, min=1)
+    support_draws = check_int("support_draws", support_draws, min=0)
+    max_missing_mass = check_fraction("max_missing_mass", max_missing_mass)
+    max_kl = check_nonnegative("max_kl", max_kl)
     gen_cfg = getattr(model, "generation_config", None)
     if sample_fn is None:
         if not callable(getattr(model, "generate", None)):
@@ -157,6 +182,8 @@ def check_on_policy(model, prompts, *, tokenizer=None, temperature=None, top_k=N
     eff["top_p"] = check_fraction("top_p", eff["top_p"], open_low=True)
     prompt_list = _prompt_ids(prompts, tokenizer)
     eos = _eos_ids(model, gen_cfg)
+    pad = getattr(gen_cfg, "pad_token_id", None)
+    pad = int(pad) if pad is not None else (eos[0] if eos else 0)
 
     settings = {"sampler": "sample_fn" if sample_fn else "model.generate", **eff,
                 "given": {k: v for k, v in given.items() if v is not None},
@@ -169,8 +196,9 @@ def check_on_policy(model, prompts, *, tokenizer=None, temperature=None, top_k=N
     try:
         with torch.no_grad(), torch.random.fork_rng(devices=[device] if device.type == "cuda" else []):
             torch.manual_seed(seed)
-            draws = [_one_prompt(model, torch.tensor([ids] * n, dtype=torch.long, device=device), sample_fn,
-                                 logprob_fn, given, eff, eos, max_new_tokens, probe_batch)
+            sampler = _Sampler(model, sample_fn, given, pad, max_new_tokens)
+            draws = [_one_prompt(model, torch.tensor([ids] * n, dtype=torch.long, device=device), sampler,
+                                 logprob_fn, eff, eos, probe_batch, support_draws)
                      for ids in prompt_list]
     finally:
         if was_training and hasattr(model, "train"):
@@ -181,16 +209,27 @@ def check_on_policy(model, prompts, *, tokenizer=None, temperature=None, top_k=N
 # ---------------------------------------------------------------- one prompt
 
 
-def _one_prompt(model, input_ids, sample_fn, logprob_fn, given, eff, eos, max_new_tokens, probe_batch) -> dict:
+class _Sampler:
+    """The user's sampler, or generate with exactly the settings the user gave."""
+
+    def __init__(self, model, sample_fn, given, pad, max_new_tokens):
+        self.model, self.sample_fn, self.pad, self.max_new_tokens = model, sample_fn, pad, max_new_tokens
+        self.kwargs = {k: v for k, v in given.items() if v is not None}
+        self.name = "sample_fn" if sample_fn else "model.generate"
+
+    def __call__(self, input_ids, max_new_tokens=None) -> torch.Tensor:
+        if self.sample_fn is not None:
+            out = self.sample_fn(self.model, input_ids.clone())
+        else:
+            out = self.model.generate(input_ids, attention_mask=torch.ones_like(input_ids), do_sample=True,
+                                      max_new_tokens=max_new_tokens or self.max_new_tokens, pad_token_id=self.pad,
+                                      **self.kwargs)
+        return _check_ids(self.name, out, input_ids)
+
+
+def _one_prompt(model, input_ids, sampler, logprob_fn, eff, eos, probe_batch, support_draws) -> dict:
     n, P = input_ids.shape
-    if sample_fn is None:
-        kwargs = {k: v for k, v in given.items() if v is not None}
-        pad = eos[0] if eos else 0
-        out = model.generate(input_ids, attention_mask=torch.ones_like(input_ids), do_sample=True,
-                             max_new_tokens=max_new_tokens, pad_token_id=pad, **kwargs)
-    else:
-        out = sample_fn(model, input_ids.clone())
-    out = _check_ids("sample_fn" if sample_fn else "model.generate", out, input_ids)
+    out = sampler(input_ids)
     response = out[:, P:]
     T = response.shape[1]
     mask = torch.ones_like(response, dtype=torch.bool)
@@ -215,8 +254,23 @@ def _one_prompt(model, input_ids, sample_fn, logprob_fn, given, eff, eos, max_ne
     loss_lp = log_p.gather(-1, response[..., None])[..., 0]
     outside = ~in_support.gather(-1, response[..., None])[..., 0]
     norm = p.sum(-1)
+    first = _first_step_support(sampler, input_ids[:1], q[0, 0], p[0, 0], support_draws) if support_draws else None
     return {"input_ids": input_ids, "response_ids": response, "mask": mask, "missing_mass": missing, "kl": kl,
-            "loss_logprob": loss_lp, "outside_support": outside, "loss_total": norm}
+            "loss_logprob": loss_lp, "outside_support": outside, "loss_total": norm, "first_step": first}
+
+
+def _first_step_support(sampler, prompt, q, p, m) -> dict:
+    """m first tokens from the sampler; the loss's mass on the tokens none of them drew, and its
+    expectation and standard deviation (an upper bound) had the sampler drawn from q."""
+    P = prompt.shape[1]
+    first = sampler(prompt.expand(m, P).contiguous(), max_new_tokens=1)[:, P]
+    if int(first.max()) >= q.shape[0]:
+        raise ValueError(f"the sampler returned token id {int(first.max())} outside the vocabulary [0, {q.shape[0]})")
+    unseen = torch.bincount(first, minlength=q.shape[0]) == 0
+    miss = (1.0 - q) ** m  # P(token v never among m independent draws from q)
+    return {"draws": m, "unseen_loss_mass": p[unseen].sum().item(), "expected": (p * miss).sum().item(),
+            "sd": (p * p * miss * (1.0 - miss)).sum().sqrt().item(), "outside_support": int((q[first] == 0).sum()),
+            "first_tokens": first}
 
 
 def _warp(logits, eff) -> torch.Tensor:
@@ -239,7 +293,11 @@ def _loss_table(logprob_fn, model, input_ids, response, V, probe_batch) -> torch
     n, T = response.shape
     first = _check_logprobs(logprob_fn(model, input_ids, response), (n, T), V)
     if first.ndim == 3:
+        if probe_batch is not None:
+            raise ValueError(f"probe_batch={probe_batch} cannot take effect: logprob_fn returns the whole "
+                             f"(n, T, V) table, nothing is probed")
         return first
+    probe_batch = probe_batch or 4096
     table = torch.empty(n, T, V, dtype=torch.float64, device=response.device)
     vocab = torch.arange(V, device=response.device)
     for t in range(T):
@@ -304,13 +362,15 @@ def _prompt_ids(prompts, tokenizer) -> list[list[int]]:
         raise ValueError(f"prompts must be a non-empty list of strings or token-id lists, got {prompts!r:.80}")
     if all(isinstance(p, numbers.Integral) and not isinstance(p, bool) for p in prompts):
         prompts = [list(prompts)]
-    result = []
+    result, encoded = [], False
     for i, p in enumerate(prompts):
         if isinstance(p, str):
             if tokenizer is None:
                 raise ValueError(f"prompts[{i}] is a string: pass tokenizer (with an encode method) or token ids")
+            if not callable(getattr(tokenizer, "encode", None)):
+                raise TypeError(f"tokenizer must have an encode method, got {type(tokenizer).__name__}")
             enc = tokenizer.encode(p)
-            p = list(getattr(enc, "ids", enc))
+            p, encoded = list(getattr(enc, "ids", enc)), True
         if isinstance(p, torch.Tensor):
             p = p.tolist()
         if not isinstance(p, (list, tuple)) or not all(isinstance(t, numbers.Integral) and not isinstance(t, bool)
@@ -321,6 +381,8 @@ def _prompt_ids(prompts, tokenizer) -> list[list[int]]:
         if min(p) < 0:
             raise ValueError(f"prompts[{i}] has a negative token id {min(p)}")
         result.append([int(t) for t in p])
+    if tokenizer is not None and not encoded:
+        raise ValueError("tokenizer cannot take effect: prompts are token ids, not strings")
     return result
 
 
@@ -359,6 +421,13 @@ def _summarise(draws, settings, max_missing_mass, max_kl) -> OnPolicyReport:
     missing, kl = pick["missing_mass"].mean().item(), pick["kl"].mean().item()
     zero_share, outside = zero.double().mean().item(), int(pick["outside_support"].sum())
     norm_err = (pick["loss_total"] - 1).abs().max().item()
+    first = None
+    if draws[0]["first_step"] is not None:
+        fs = [d["first_step"] for d in draws]
+        flagged = sum(f["unseen_loss_mass"] > f["expected"] + max(max_missing_mass, 4 * f["sd"]) for f in fs)
+        first = {"draws": fs[0]["draws"], "flagged": flagged,
+                 **{k: sum(f[k] for f in fs) / len(fs) for k in ("unseen_loss_mass", "expected", "sd")}}
+        outside += sum(f["outside_support"] for f in fs)
     reasons = []
     if missing > max_missing_mass:
         hint = ""
@@ -376,10 +445,15 @@ def _summarise(draws, settings, max_missing_mass, max_kl) -> OnPolicyReport:
         reasons.append(f"{outside} drawn tokens lie outside the support the stated settings give: the sampler "
                        f"does not sample with temperature={settings['temperature']:g}, top_k={settings['top_k']}, "
                        f"top_p={settings['top_p']:g}")
+    if first and first["flagged"]:
+        reasons.append(f"{first['draws']} first tokens per prompt left {first['unseen_loss_mass']:.2%} of the loss's "
+                       f"mass undrawn where the stated law leaves {first['expected']:.2%}: the sampler is narrower "
+                       f"than temperature={settings['temperature']:g}, top_k={settings['top_k']}, "
+                       f"top_p={settings['top_p']:g} (generate keeps the top 50 tokens when top_k is not given)")
     if norm_err > NORM_TOL:
         reasons.append(f"the loss's probabilities over the vocabulary sum to 1 +- {norm_err:.3g} (> {NORM_TOL:g}): "
                        f"logprob_fn does not return normalised log-probs")
     return OnPolicyReport(ok=not reasons, reasons=reasons, settings=settings, missing_mass=missing,
                           max_missing_mass=pick["missing_mass"].max().item(), kl=kl, max_kl=pick["kl"].max().item(),
                           zero_mass_share=zero_share, outside_support=outside, steps=int(m.sum()),
-                          per_step=per_step, draws=draws)
+                          per_step=per_step, first_step=first, draws=draws)
