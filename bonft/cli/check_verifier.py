@@ -6,7 +6,7 @@ DESCRIPTION = (
     "Load a verifier ('module:function' or 'path/to/file.py:function'), score the example pools in "
     "FILE.jsonl (one sample per line: {\"prompt\", \"response\", \"reward\"?, \"label\"?}) several times "
     "and report determinism, failure rate, score range, latency, accuracy / ROC AUC and the best-of-k "
-    "vs oracle curve. Exit status 0 when no problem was found, 1 otherwise. Caution: this imports and "
+    "vs pass@k curve (the best true reward among k). Exit status 0 when no problem was found, 1 otherwise. Caution: this imports and "
     "runs the verifier's code."
 )
 

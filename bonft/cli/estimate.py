@@ -1,4 +1,4 @@
-"""``bonft estimate``: best-of-k and oracle pass@k curves, with CIs, from a samples file."""
+"""``bonft estimate``: best-of-k and pass@k curves, with CIs, from a samples file."""
 from __future__ import annotations
 
 import argparse
@@ -8,11 +8,11 @@ from bonft.cli._args import add_duplicates_flag, add_plot_dir, check_boot, parse
 from bonft.cli._strategies import add_strategy_arguments
 from bonft.cli._strategies import run_estimate as _run_strategies
 
-HELP = "best-of-k (verifier picks) and oracle pass@k with bootstrap CIs from a pool file (JSONL of scored samples)"
+HELP = "best-of-k (verifier picks) and pass@k with bootstrap CIs from a pool file (JSONL of scored samples)"
 DESCRIPTION = (
     "Read a samples file (one JSON object a line: prompt_id, score, reward, optional temperature) "
     "and print, for each k, the unbiased best-of-k value when the verifier picks among k samples, "
-    "and the oracle value (best true reward among k; pass@k for 0/1 rewards), each with a bootstrap "
+    "and pass@k (the best true reward among k; the usual pass@k for 0/1 rewards), each with a bootstrap "
     "confidence interval over prompts. One block per temperature when the file has several. "
     "Try it with --example."
 )
