@@ -7,7 +7,8 @@
 * :mod:`~bonft.generation.kvcache` -- the prompts' forward pass and the caches built from it;
 * :mod:`~bonft.generation.prefix_attention` -- decoding attention over one shared prompt cache;
 * :mod:`~bonft.generation.decode_step` -- bonft's own decoding forward for stock GPT-2 and Llama;
-* :mod:`~bonft.generation.on_policy` -- :func:`check_on_policy`: do a loop's log-probs describe the policy that sampled? (also in :mod:`bonft.testing`).
+* :mod:`~bonft.generation.on_policy` -- :func:`check_on_policy` (also in :mod:`bonft.testing`): do a loop's
+  log-probs describe the policy that sampled?
 
 Used by the trainer and the planner; imports nothing from either.
 """
