@@ -241,7 +241,7 @@ def plot_plan_curves(res, path) -> str:
 
 # ------------------------------------------------------------------ verifier checks
 def plot_verifier_check(report, path) -> str:
-    """A :class:`bonft.verifiers.VerifierReport`: plot best-of-k (verifier's pick) against the oracle as k grows, to ``path`` (PNG); returns ``path``."""
+    """A :class:`bonft.verifiers.VerifierReport`: plot best-of-k (verifier's pick) against pass@k as k grows, to ``path`` (PNG); returns ``path``."""
     import matplotlib
 
     matplotlib.use("Agg")
@@ -249,8 +249,8 @@ def plot_verifier_check(report, path) -> str:
 
     fig, ax = plt.subplots(figsize=(6, 4))
     if report.ks:
-        ax.plot(report.ks, report.oracle, "o--", label="oracle (best true reward among k)")
-        ax.plot(report.ks, report.bon, "o-", label="verifier's pick (true reward)")
+        ax.plot(report.ks, report.pass_at_k, "o--", label="pass@k (best true reward among k)")
+        ax.plot(report.ks, report.best_of_k, "o-", label="verifier's pick (true reward)")
         ax.set_xscale("log", base=2)
         ax.set_xlabel("k (samples per prompt)")
         ax.set_ylabel("mean true reward")

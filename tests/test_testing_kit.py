@@ -37,8 +37,8 @@ def test_a_good_verifier_passes_and_the_report_is_complete(tmp_path):
     # 1 - C(n-c, k)/C(n, k), here n = 8 per pool, c = 5 and 3
     want = [np.mean([1 - comb(8 - c, k) / comb(8, k) for c in (5, 3)]) for k in (1, 2, 4, 8)]
     assert rep.ks == [1, 2, 4, 8]
-    np.testing.assert_allclose(rep.oracle, want, rtol=1e-12)
-    np.testing.assert_allclose(rep.bon, want, rtol=1e-12)
+    np.testing.assert_allclose(rep.pass_at_k, want, rtol=1e-12)
+    np.testing.assert_allclose(rep.best_of_k, want, rtol=1e-12)
     text = str(rep)
     assert "verifier check: OK" in text and "ROC AUC            1.000" in text
     d = rep.to_dict()
@@ -88,7 +88,7 @@ def test_nan_scores_are_counted():
     assert rep.n_nan == 1 and "NaN 1" in rep.problems[0]
 
 
-def test_gameable_length_proxy_bends_down_while_oracle_rises():
+def test_gameable_length_proxy_bends_down_while_pass_at_k_rises():
     # 32 responses per prompt: 8 short correct, 22 short wrong, 2 long wrong.
     # The proxy adds 0.5 per 100 characters, so the long wrong ones outscore everything.
     answers = {f"q{i}": str(i) for i in range(4)}
@@ -101,10 +101,10 @@ def test_gameable_length_proxy_bends_down_while_oracle_rises():
     proxy = NoisyProxy(exact, length_bias=0.5, score_noise=0.01, seed=3)
     rep = check_verifier(proxy, pools)
     assert rep.ks == [1, 2, 4, 8, 16, 32]
-    peak = int(np.argmax(rep.bon))
-    assert 0 < peak < len(rep.ks) - 1, f"best-of-k {rep.bon} should rise, then fall"
-    assert rep.bon[-1] == 0.0, f"at k=32 a long wrong answer is always picked, got {rep.bon[-1]}"
-    assert np.all(np.diff(rep.oracle) > 0) and rep.oracle[-1] == 1.0, f"oracle {rep.oracle} should keep rising"
+    peak = int(np.argmax(rep.best_of_k))
+    assert 0 < peak < len(rep.ks) - 1, f"best-of-k {rep.best_of_k} should rise, then fall"
+    assert rep.best_of_k[-1] == 0.0, f"at k=32 a long wrong answer is always picked, got {rep.best_of_k[-1]}"
+    assert np.all(np.diff(rep.pass_at_k) > 0) and rep.pass_at_k[-1] == 1.0, f"pass@k {rep.pass_at_k} should keep rising"
     msg = next(p for p in rep.problems if p.startswith("over-optimisation"))
     assert re.search(r"peaks at k=\d+ \(0\.\d{3}\) and falls to 0\.000 at k=32", msg), msg
     # the same pools scored by the exact checker: no bend
@@ -119,7 +119,7 @@ def test_bon_curve_matches_brute_force_subsets():
     table = dict(zip(resp, zip(scores, rewards)))
     ver = lambda p, r: Verdicts(scores=[table[x][0] for x in r], rewards=[table[x][1] for x in r])  # noqa: E731
     rep = check_verifier(ver, [{"prompt": "p", "responses": resp}], ks=[1, 2, 3, 5], min_auc=0.0, bend_tol=1.0)
-    for k, got in zip(rep.ks, rep.bon):
+    for k, got in zip(rep.ks, rep.best_of_k):
         subsets = list(itertools.combinations(range(5), k))
         want = np.mean([rewards[max(s, key=lambda i: scores[i])] for s in subsets])
         assert got == pytest.approx(want, abs=1e-12), (k, got, want)

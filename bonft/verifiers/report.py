@@ -31,8 +31,8 @@ def roc_auc(scores: Any, labels: Any) -> float | None:
 class VerifierReport:
     """What :func:`bonft.testing.check_verifier` found. ``ok`` is ``not problems``.
 
-    Curves: ``bon[j]`` is the mean true reward of the verifier's pick among
-    ``ks[j]`` samples, ``oracle[j]`` the best true reward among ``ks[j]``
+    Curves: ``best_of_k[j]`` is the mean true reward of the verifier's pick among
+    ``ks[j]`` samples, ``pass_at_k[j]`` the best true reward among ``ks[j]``
     (pass@k for 0/1 rewards), both averaged over prompts.
     """
 
@@ -57,8 +57,8 @@ class VerifierReport:
     accuracy: float | None = None
     auc: float | None = None
     ks: list[int] = field(default_factory=list)
-    bon: list[float] = field(default_factory=list)
-    oracle: list[float] = field(default_factory=list)
+    best_of_k: list[float] = field(default_factory=list)
+    pass_at_k: list[float] = field(default_factory=list)
     problems: list[str] = field(default_factory=list)
 
     @property
@@ -99,14 +99,14 @@ class VerifierReport:
         lines = ["verifier check: " + ("OK" if self.ok else f"{len(self.problems)} problem(s)")]
         lines += [f"  {k:<{w}}  {v}" for k, v in rows]
         if self.ks:
-            lines.append(f"  {'k':>6}  {'best-of-k':>10}  {'oracle':>8}  {'gap':>7}")
-            for k, b, o in zip(self.ks, self.bon, self.oracle):
+            lines.append(f"  {'k':>6}  {'best-of-k':>10}  {'pass@k':>8}  {'gap':>7}")
+            for k, b, o in zip(self.ks, self.best_of_k, self.pass_at_k):
                 lines.append(f"  {k:>6}  {b:>10.4f}  {o:>8.4f}  {o - b:>7.4f}")
         lines += [f"  PROBLEM: {p}" for p in self.problems]
         return "\n".join(lines)
 
     def plot(self, path: str) -> str:
-        """Plot best-of-k (verifier's pick) against the oracle as k grows, to ``path`` (PNG); returns ``path``."""
+        """Plot best-of-k (verifier's pick) against pass@k as k grows, to ``path`` (PNG); returns ``path``."""
         from bonft.viz import plot_verifier_check
 
         return plot_verifier_check(self, path)

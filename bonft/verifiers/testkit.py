@@ -10,8 +10,8 @@ every number downstream. :func:`check_verifier` measures, on example pools:
 * score range and latency per call;
 * agreement with labels: accuracy at ``threshold`` and ROC AUC;
 * over-optimisation: the true reward of the verifier's best-of-k as k grows,
-  against the oracle (pass@k for 0/1 rewards). Where best-of-k bends down while
-  the oracle keeps rising, larger N selects the verifier's errors -- it is
+  against pass@k (the best true reward among k). Where best-of-k bends down while
+  pass@k keeps rising, larger N selects the verifier's errors -- it is
   being gamed (reward hacking).
 
 Hypothesis strategies (:func:`prompts`, :func:`responses`,
@@ -286,9 +286,9 @@ def check_verifier(
 
         n_min = min(len(t) for t in true)
         kk = default_ks(n_min) if ks is None else list(ks)
-        bon = best_of_k_per_prompt(scores, true, ks=kk).mean(axis=0)
-        orc = pass_at_k_per_prompt(true, ks=kk).mean(axis=0)
-        rep.ks, rep.bon, rep.oracle = [int(k) for k in kk], [float(x) for x in bon], [float(x) for x in orc]
+        bok = best_of_k_per_prompt(scores, true, ks=kk).mean(axis=0)
+        pak = pass_at_k_per_prompt(true, ks=kk).mean(axis=0)
+        rep.ks, rep.best_of_k, rep.pass_at_k = [int(k) for k in kk], [float(x) for x in bok], [float(x) for x in pak]
 
     _problems(rep, max_failure_rate=max_failure_rate, min_auc=min_auc, bend_tol=bend_tol)
     return rep
@@ -315,11 +315,11 @@ def _problems(rep: VerifierReport, *, max_failure_rate: float, min_auc: float, b
             f"({rep.n_positive} correct), accuracy {rep.accuracy:.3f} at threshold {rep.threshold:g}"
         )
     if len(rep.ks) >= 2:
-        peak = int(np.argmax(rep.bon))
-        drop = rep.bon[peak] - rep.bon[-1]
+        peak = int(np.argmax(rep.best_of_k))
+        drop = rep.best_of_k[peak] - rep.best_of_k[-1]
         if peak < len(rep.ks) - 1 and drop > bend_tol:
             rep.problems.append(
-                f"over-optimisation: best-of-k true reward peaks at k={rep.ks[peak]} ({rep.bon[peak]:.3f}) and falls to "
-                f"{rep.bon[-1]:.3f} at k={rep.ks[-1]} while the oracle goes {rep.oracle[peak]:.3f} -> {rep.oracle[-1]:.3f}: "
+                f"over-optimisation: best-of-k true reward peaks at k={rep.ks[peak]} ({rep.best_of_k[peak]:.3f}) and falls to "
+                f"{rep.best_of_k[-1]:.3f} at k={rep.ks[-1]} while pass@k goes {rep.pass_at_k[peak]:.3f} -> {rep.pass_at_k[-1]:.3f}: "
                 "larger N selects the verifier's errors (it is being gamed)"
             )
