@@ -16,7 +16,14 @@ from hypothesis import strategies as st
 from bonft.bon import best_of_k_value, log_best_of_k_distribution, softmax_policy
 from bonft.estimate import best_of_k_per_prompt
 from bonft.objectives.credit import best_of_k_credit, best_of_k_sft_credit
-from bonft.objectives.losses import best_of_k_loss, best_of_k_sft_loss, nll_loss, pass_at_k_loss, reinforce_loss
+from bonft.objectives.losses import (
+    best_of_k_loss,
+    best_of_k_sft_loss,
+    nll_loss,
+    pass_at_k_loss,
+    policy_gradient_loss,
+    reinforce_loss,
+)
 
 TOL = 1e-10
 
@@ -353,3 +360,40 @@ def test_named_losses_are_their_credit_through_the_core():
         policy_gradient_loss(lp0, np.zeros((3, 4)), mask=mask)
     with pytest.raises(ValueError, match=r"credit must be finite, got nan at index \(0, 1\)"):
         policy_gradient_loss(lp0, np.array([[0, np.nan, 0, 0, 0]] * 3), mask=mask)
+
+
+def test_monitors_by_hand():
+    # Hand computation: B = 2 prompts, n = 3, T = 4. Prompt 0 rewards (1, 0, 0): leave-one-out credit
+    # w_i = (R_i - mean of the others)/3 = (1/3, -1/6, -1/6); prompt 1 rewards all equal: credit 0.
+    lp = -torch.ones(2, 3, 4, dtype=torch.float64)
+    mask = torch.ones(2, 3, 4, dtype=torch.bool)
+    mask[0, 1, 2:] = mask[1, 0, 1:] = False  # 5 of 24 positions are padding
+    _, info = reinforce_loss(lp, np.array([[1.0, 0, 0], [0.5, 0.5, 0.5]]), mask=mask, return_info=True)
+    assert float(info["pools_with_signal"]) == 0.5
+    assert float(info["credit_abs_mean"]) == pytest.approx((1 / 3 + 1 / 6 + 1 / 6) / 6, abs=1e-15)
+    assert float(info["masked_frac"]) == pytest.approx(5 / 24, abs=1e-15)
+    assert float(info["pool_value"]) == pytest.approx((1 / 3 + 0.5) / 2, abs=1e-15)
+
+
+def test_empty_responses_and_single_samples_are_errors_by_default():
+    lp, mask, _ = token_batch(B=2, n=3, T=4)
+    R = np.array([[1.0, 0, 0], [0, 1, 1]])
+    empty = mask.clone()
+    empty[1, 2] = False  # a response with credit and no token: it would add nothing, silently
+    with pytest.raises(ValueError, match=r"mask must mark at least one token per sequence with non-zero credit, "
+                                         r"got an all-zero row at index \(1, 2\)"):
+        reinforce_loss(lp, R, mask=empty)
+    with pytest.raises(ValueError, match=r"mask must mark at least one token per sequence with non-zero credit"):
+        policy_gradient_loss(lp, R - 0.5, mask=empty)
+    # the same row with zero credit contributes nothing either way: accepted
+    loss = policy_gradient_loss(lp, np.where(empty.any(-1).numpy(), R - 0.5, 0.0), mask=empty)
+    assert torch.isfinite(loss)
+    with pytest.raises(ValueError, match=r"mask must mark at least one token per sequence, got an all-zero row at index \(1,\)"):
+        nll_loss(lp[:, 0], mask=torch.tensor([[True, True, False, False], [False] * 4]))
+    # leave-one-out with one sample per prompt has nothing to leave out (was a silent zero loss)
+    with pytest.raises(ValueError, match=r"n must be >= 2 for the leave-one-out baseline of reinforce_credit .* "
+                                         r"draw n >= 2 samples per prompt or use baseline='none'"):
+        reinforce_loss(lp[:, :1], R[:, :1], mask=mask[:, :1])
+    with pytest.raises(ValueError, match=r"n must be >= 2 for the leave-one-out baseline of best_of_k_credit"):
+        best_of_k_loss(lp[:, :1], R[:, :1], R[:, :1], k=1, mask=mask[:, :1])
+    assert torch.isfinite(reinforce_loss(lp[:, :1], R[:, :1], mask=mask[:, :1], baseline="none"))
