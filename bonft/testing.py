@@ -1,4 +1,4 @@
-"""Kits for testing what you train against: verifiers (and, later, objectives).
+"""Kits for testing what you train against: verifiers, unit tests used as rewards, objectives, log-probs.
 
 Re-exports :mod:`bonft.verifiers.testkit`: :func:`check_verifier`, its
 :class:`VerifierReport`, :func:`read_examples`, :func:`roc_auc` and hypothesis
@@ -22,8 +22,9 @@ from bonft.verifiers.testkit import (  # noqa: F401
     sample_pools,
 )
 
-__all__ = ["check_objective", "ObjectiveReport", "ToyPolicy", "check_verifier", "read_examples", "VerifierReport", "roc_auc", "prompts", "responses", "sample_pools",
-           "probe_code_tests", "CodeTestsReport", "PROBES", "check_on_policy", "OnPolicyReport"]
+__all__ = ["check_objective", "ObjectiveReport", "ToyPolicy", "check_verifier", "read_examples", "VerifierReport",
+           "roc_auc", "prompts", "responses", "sample_pools", "probe_code_tests", "CodeTestsReport", "PROBES",
+           "check_on_policy", "OnPolicyReport"]
 
 
 def __getattr__(name: str):

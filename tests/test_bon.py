@@ -263,12 +263,12 @@ REWARDS = torch.tensor([0.2, -1.0, 3.0, 0.5, 1.0], dtype=torch.float64)
 @pytest.mark.parametrize("k", [1, 3, 40])
 def test_gradcheck_value_kl_log_through_logits(k):
     # reference: finite differences (torch.autograd.gradcheck)
-    l = _logits()
+    z = _logits()
     f = lambda x: best_of_k_value(softmax_policy(x, temperature=0.7), SCORES, REWARDS, k=k)
-    assert torch.autograd.gradcheck(f, (l,))
-    assert torch.autograd.gradcheck(lambda x: best_of_k_kl(softmax_policy(x), SCORES, k=k), (l,))
-    assert torch.autograd.gradcheck(lambda x: log_best_of_k_distribution(softmax_policy(x), SCORES, k=k), (l,))
-    assert torch.autograd.gradcheck(lambda x: best_of_k_distribution(softmax_policy(x), SCORES, k=k), (l,))
+    assert torch.autograd.gradcheck(f, (z,))
+    assert torch.autograd.gradcheck(lambda x: best_of_k_kl(softmax_policy(x), SCORES, k=k), (z,))
+    assert torch.autograd.gradcheck(lambda x: log_best_of_k_distribution(softmax_policy(x), SCORES, k=k), (z,))
+    assert torch.autograd.gradcheck(lambda x: best_of_k_distribution(softmax_policy(x), SCORES, k=k), (z,))
 
 
 def test_gradient_wrt_rewards_is_bon_distribution():
@@ -323,10 +323,10 @@ def test_underflowing_selection_stays_exact_in_log_space():
     assert lq[0] == pytest.approx(-k * math.log(2), rel=1e-14)
     assert lq[1] == 0.0
     assert best_of_k_distribution(np.array([0.5, 0.5]), np.array([0.0, 1.0]), k=k)[0] == 0.0  # underflow, no NaN
-    l = torch.zeros(2, dtype=torch.float64, requires_grad=True)
-    v = best_of_k_value(softmax_policy(l), torch.tensor([0.0, 1.0]), torch.tensor([0.0, 1.0]), k=k)
+    z = torch.zeros(2, dtype=torch.float64, requires_grad=True)
+    v = best_of_k_value(softmax_policy(z), torch.tensor([0.0, 1.0]), torch.tensor([0.0, 1.0]), k=k)
     v.backward()
-    assert torch.isfinite(l.grad).all()
+    assert torch.isfinite(z.grad).all()
 
 
 # ------------------------------------------------------ kinds and dtypes

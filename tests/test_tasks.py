@@ -21,11 +21,15 @@ def ledger_answer(prompt: str) -> int:
     stock, i, factor = int(w[1]), 2, 1
     while i < len(w) - 1:
         if w[i] == "sold":
-            stock -= int(w[i + 1]); i += 2
+            stock -= int(w[i + 1])
+            i += 2
         elif w[i] == "got":
-            stock += int(w[i + 1]); i += 2
+            stock += int(w[i + 1])
+            i += 2
         else:
-            assert w[i].startswith("x"); factor = int(w[i][1:]); i += 1
+            assert w[i].startswith("x")
+            factor = int(w[i][1:])
+            i += 1
         assert stock >= 0  # a sale never exceeds the stock on hand
     return stock * factor
 
