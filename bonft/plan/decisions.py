@@ -57,7 +57,7 @@ def isotonic(y: np.ndarray) -> np.ndarray:
     return np.concatenate([np.full(int(c), s / c) for s, c in blocks])
 
 
-def finish(*, mode, temps, ks, value, lo, hi, boot, confidence, n_boot, paired, n_prompts, pool_min, mean_tokens,
+def finish(*, mode, temps, ks, value, lo, hi, boot, confidence, n_boot, paired, n_prompts, smallest_pool, mean_tokens,
             b_samples, b_tokens, min_gain, notes) -> PlanResult:
     T, K = value.shape
     best_index = np.argmax(value, axis=0)  # (K,) first maximum, i.e. the lowest such temperature
@@ -115,7 +115,7 @@ def finish(*, mode, temps, ks, value, lo, hi, boot, confidence, n_boot, paired, 
         n_boot=n_boot,
         paired=paired,
         n_prompts=np.asarray(n_prompts),
-        pool_min=pool_min,
+        smallest_pool=smallest_pool,
         mean_tokens=mean_tokens,
         best_index=best_index,
         best_temperature=temps[best_index],

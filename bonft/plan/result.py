@@ -77,6 +77,8 @@ class PlanResult:
     gain_one: (T, K-1) V_{k+1} - V_k for k = 1..K-1. gain_double: (T, K//2) V_2k - V_k for k = 1..K//2.
     doubling: DoublingStep for k = 1, 2, 4, ... at the best temperatures; doubling_stops_at: the
         first such k whose gain is not significantly above ``min_gain`` (None: it kept paying).
+    n_prompts: (T,) prompts at each temperature; smallest_pool: (T,) the smallest pool (samples of one
+        prompt) at each temperature, None in exact mode.
     mean_tokens: (T,) mean generated tokens per response, or None.
     """
 
@@ -90,7 +92,7 @@ class PlanResult:
     n_boot: int
     paired: bool
     n_prompts: np.ndarray
-    pool_min: np.ndarray | None
+    smallest_pool: np.ndarray | None
     mean_tokens: np.ndarray | None
     best_index: np.ndarray
     best_temperature: np.ndarray
@@ -195,7 +197,7 @@ class PlanResult:
             "n_boot": self.n_boot,
             "paired": self.paired,
             "n_prompts": arr(self.n_prompts),
-            "pool_min": arr(self.pool_min),
+            "smallest_pool": arr(self.smallest_pool),
             "mean_tokens": arr(self.mean_tokens),
             "best_temperature": arr(self.best_temperature),
             "near_best": arr(self.near_best),
