@@ -19,7 +19,8 @@ import numpy as np
 import torch
 from _timing import min_time
 
-from bonft.objcheck import _resolve_target, builtin, check_objective
+from bonft.objcheck import builtin, check_objective
+from bonft.objcheck.enumeration import resolve_target
 from bonft.objcheck.transformer import transformer_check
 from bonft.trainer.models import build_tiny_model
 
@@ -30,7 +31,7 @@ def enumeration_loop(V=4, n=6, k=3, seed=0):
     theta, s, r = rng.normal(size=V), rng.integers(0, 3, V).astype(float), rng.normal(size=V)
     p = np.exp(theta) / np.exp(theta).sum()
     Y = np.array(list(itertools.product(range(V), repeat=n)))
-    w = builtin.bon_rl(s[Y], r[Y], k=k)
+    w = builtin.best_of_k(s[Y], r[Y], k=k)
     return np.einsum("m,mi,miv->v", p[Y].prod(-1), w, np.eye(V)[Y] - p)
 
 
@@ -48,9 +49,9 @@ def main() -> None:
 
     base = min_time(enumeration_loop, reps, warmup=True)
     cat = {
-        "bon_rl, best_of_k": lambda: check_objective(builtin.bon_rl, target="best_of_k", k=3, n=6, policies=1,
+        "best_of_k, best_of_k": lambda: check_objective(builtin.best_of_k, target="best_of_k", k=3, n=6, policies=1,
                                                      transformer=False),
-        "bon_rl, user payoff": lambda: check_objective(builtin.bon_rl, target=kept_reward, k=3, n=6, policies=1,
+        "best_of_k, user payoff": lambda: check_objective(builtin.best_of_k, target=kept_reward, k=3, n=6, policies=1,
                                                        transformer=False),
         "pass_at_k_plugin": lambda: check_objective(builtin.pass_at_k_plugin, target="pass_at_k", k=3, n=6,
                                                     policies=1, transformer=False),
@@ -70,9 +71,9 @@ def main() -> None:
             model(ids)
 
     fwd = min_time(forward, 20, warmup=True)
-    t = _resolve_target("best_of_k")
-    lm = min_time(lambda: transformer_check(builtin.bon_rl, t, 3, 6, ordered=False, seed=0, tolerance=1e-6), reps, warmup=True)
-    whole = min_time(lambda: check_objective(builtin.bon_rl, target="best_of_k", k=3, n=6), max(1, reps // 2), warmup=True)
+    t = resolve_target("best_of_k")
+    lm = min_time(lambda: transformer_check(builtin.best_of_k, t, 3, 6, ordered=False, seed=0, tolerance=1e-6), reps, warmup=True)
+    whole = min_time(lambda: check_objective(builtin.best_of_k, target="best_of_k", k=3, n=6), max(1, reps // 2), warmup=True)
     print("2. enumerated transformer check, vocabulary 4, 3 response tokens (64 responses), n=6, one core")
     print(f"   baseline: one forward pass over the 64 responses     {fwd * 1e3:8.2f} ms")
     print(f"   transformer check (model built inside)               {lm:8.3f} s   = {lm / fwd:6.0f} forward passes")

@@ -40,11 +40,11 @@ def brute_estimate(credit, pol, k, n, sft=False):
     V = len(p)
     Y = np.array(list(itertools.product(range(V), repeat=n)))
     S, R = np.asarray(pol.scores, float)[Y], np.asarray(pol.rewards, float)[Y]
-    second = np.full(len(Y), float(pol.scores[pol.expert])) if sft else R
+    second = np.full(len(Y), float(pol.scores[pol.reference])) if sft else R
     w = np.asarray(credit(S, second, k=k), float)
     g = np.einsum("mi,miv->mv", w, np.eye(V)[Y] - p)
     if sft:
-        g = g + np.eye(V)[pol.expert] - p
+        g = g + np.eye(V)[pol.reference] - p
     P = p[Y].prod(-1)
     mean = P @ g
     return mean, P @ ((g - mean) ** 2).sum(1)
@@ -58,8 +58,8 @@ def brute_target_grad(pol, k, target):
     top = s == s.max(-1, keepdims=True)
     th = torch.tensor(np.asarray(pol.logits, float), requires_grad=True)
     P = torch.softmax(th, -1)[torch.from_numpy(Y)].prod(-1)
-    if target == "bon_sft":  # chance that best-of-k keeps an instance of y*
-        sel = torch.from_numpy(((Y == pol.expert) & top).sum(-1) / top.sum(-1))
+    if target == "best_of_k_sft":  # chance that best-of-k keeps an instance of y*
+        sel = torch.from_numpy(((Y == pol.reference) & top).sum(-1) / top.sum(-1))
         val = torch.log((P * sel).sum())
     else:
         val = (P * torch.from_numpy((r * top).sum(-1) / top.sum(-1))).sum()
@@ -75,18 +75,18 @@ def pass_grad(pol, k):
     return k * (1 - pc) ** (k - 1) * p * (good - pc)
 
 
-def rand_policy(seed, V=4, binary=False, expert=None):
+def rand_policy(seed, V=4, binary=False, reference=None):
     rng = np.random.default_rng(seed)
     r = rng.permutation(np.arange(V) % 2).astype(float) if binary else rng.normal(size=V)
     s = r.copy() if binary else rng.permutation(np.arange(V) % 3).astype(float)
-    return ToyPolicy(rng.normal(size=V), s, r, expert)
+    return ToyPolicy(rng.normal(size=V), s, r, reference)
 
 
 # ---------------------------------------------------------------- the built-in objectives
 
 @pytest.mark.parametrize("name,target,k,n", [
-    ("bon_rl", "best_of_k", 2, 4), ("bon_rl", "best_of_k", 3, 3), ("bon_rl", "best_of_k", 1, 5),
-    ("bon_rl_no_baseline", "best_of_k", 2, 5), ("pass_at_k", "pass_at_k", 2, 5), ("pass_at_k", "pass_at_k", 4, 4),
+    ("best_of_k", "best_of_k", 2, 4), ("best_of_k", "best_of_k", 3, 3), ("best_of_k", "best_of_k", 1, 5),
+    ("best_of_k_no_baseline", "best_of_k", 2, 5), ("pass_at_k", "pass_at_k", 2, 5), ("pass_at_k", "pass_at_k", 4, 4),
     ("pass_at_k", "pass_at_k", 4, 8), ("reinforce", "best_of_k", 1, 4)])
 def test_unbiased_builtins_pass(name, target, k, n):
     rep = check_objective(getattr(builtin, name), target=target, k=k, n=n, transformer=False)
@@ -98,7 +98,7 @@ def test_unbiased_builtins_pass(name, target, k, n):
 def test_report_vectors_equal_ordered_enumeration():
     # multisets with multinomial weights (the check) == all V^n ordered tuples (brute force)
     pols = [rand_policy(1), rand_policy(2, V=3)]
-    for name, k, n in (("bon_rl", 2, 4), ("bon_rl_no_baseline", 3, 5)):
+    for name, k, n in (("best_of_k", 2, 4), ("best_of_k_no_baseline", 3, 5)):
         rep = check_objective(getattr(builtin, name), target="best_of_k", k=k, n=n, policies=pols, transformer=False)
         for pol, case in zip(pols, rep.cases):
             mean, var = brute_estimate(getattr(builtin, name), pol, k, n)
@@ -131,15 +131,15 @@ def test_plugin_pass_at_k_flagged_and_bias_shrinks_with_n():
 
 
 def test_sft_credit_flagged_and_bias_shrinks_with_n():
-    # same setting as tests/test_credit.py: expert y* = 1 ties with outcome 2, k = 3
-    pol = ToyPolicy(np.array([0.4, -0.1, 0.2, -0.5]), np.array([0.0, 1, 1, 2]), np.zeros(4), expert=1)
-    exact = brute_target_grad(pol, 3, "bon_sft")
+    # same setting as tests/test_credit.py: reference y* = 1 ties with outcome 2, k = 3
+    pol = ToyPolicy(np.array([0.4, -0.1, 0.2, -0.5]), np.array([0.0, 1, 1, 2]), np.zeros(4), reference=1)
+    exact = brute_target_grad(pol, 3, "best_of_k_sft")
     biases = []
     for n in (3, 4, 5, 6):
-        rep = check_objective(builtin.bon_sft, target="bon_sft", k=3, n=n, policies=[pol], transformer=False)
+        rep = check_objective(builtin.best_of_k_sft, target="best_of_k_sft", k=3, n=n, policies=[pol], transformer=False)
         assert not rep.ok and "biased for log pi_bon(y*) at k=3" in rep.problems[0]
         np.testing.assert_allclose(rep.cases[0]["exact"], exact, atol=1e-12)
-        mean, _ = brute_estimate(builtin.bon_sft, pol, 3, n, sft=True)
+        mean, _ = brute_estimate(builtin.best_of_k_sft, pol, 3, n, sft=True)
         assert abs(rep.max_abs_error - np.abs(mean - exact).max()) < 1e-13
         biases.append(rep.max_abs_error)
     assert all(b1 < b0 for b0, b1 in zip(biases, biases[1:])), biases
@@ -149,13 +149,13 @@ def test_sft_credit_flagged_and_bias_shrinks_with_n():
 def test_positive_only_estimates_a_shrunk_pass_gradient():
     # bonft.objectives.credit derives: positive-only credit has mean (1 - p) grad pass@k for k < n
     pols = [rand_policy(s, binary=True) for s in range(3)]
-    rep = check_objective(builtin.pass_at_k_positive_only, target="pass_at_k", k=2, n=4, policies=pols,
+    rep = check_objective(builtin.pass_at_k_positive, target="pass_at_k", k=2, n=4, policies=pols,
                           transformer=False)
     assert not rep.ok
     for pol, c in zip(pols, rep.cases):
         pc = softmax(pol.logits) @ pol.rewards
         assert abs(c["projection"] - (1 - pc)) < 1e-12 and c["cosine"] > 1 - 1e-12
-    assert check_objective(builtin.pass_at_k_positive_only, target="pass_at_k", k=4, n=4, transformer=False).ok
+    assert check_objective(builtin.pass_at_k_positive, target="pass_at_k", k=4, n=4, transformer=False).ok
 
 
 # ---------------------------------------------------------------- user objectives
@@ -171,8 +171,8 @@ def kept_reward(S, R):
 
 def test_user_payoff_enumeration_matches_closed_form():
     pols = [rand_policy(s) for s in range(3)]
-    a = check_objective(builtin.bon_rl, target="best_of_k", k=3, n=4, policies=pols, transformer=False)
-    b = check_objective(builtin.bon_rl, target=kept_reward, k=3, n=4, policies=pols, transformer=False)
+    a = check_objective(builtin.best_of_k, target="best_of_k", k=3, n=4, policies=pols, transformer=False)
+    b = check_objective(builtin.best_of_k, target=kept_reward, k=3, n=4, policies=pols, transformer=False)
     assert a.ok and b.ok and b.target == "kept_reward"
     for pol, ca, cb in zip(pols, a.cases, b.cases):
         # the user payoff's gradient against autograd over every ordered k-tuple, and against bonft.bon's
@@ -194,11 +194,15 @@ def test_self_including_baseline_is_caught_with_the_right_size():
         assert f"shrinks the exact gradient to {(n - 1) / n:.3f} x" in rep.problems[0]
 
 
-def test_flat_rewards_give_a_zero_gradient_that_passes():
-    flat = ToyPolicy([0.2, -0.4, 0.9], [0.0, 1.0, 1.0], [0.7, 0.7, 0.7])  # V_k does not depend on theta
-    for name in ("bon_rl", "bon_rl_no_baseline"):
+def test_flat_rewards_give_a_zero_gradient_that_is_no_evidence():
+    # V_k does not depend on theta: the credit is unbiased there (zero mean), but the policy shows nothing
+    flat = ToyPolicy([0.2, -0.4, 0.9], [0.0, 1.0, 1.0], [0.7, 0.7, 0.7])
+    for name in ("best_of_k", "best_of_k_no_baseline"):
         rep = check_objective(getattr(builtin, name), target="best_of_k", k=2, n=3, policies=[flat], transformer=False)
-        assert rep.ok and np.abs(rep.cases[0]["exact"]).max() < 1e-15, str(rep)
+        assert np.abs(rep.cases[0]["exact"]).max() < 1e-15 and rep.cases[0]["rel_error"] < 1e-6
+        assert rep.policies_informative == 0 and rep.problems == [
+            "only 0 of 1 given policies have a non-zero gradient of the target (flat: policy 1): a flat target "
+            "cannot show bias"], str(rep)
 
 
 def test_order_dependent_credit_uses_ordered_pools():
@@ -214,7 +218,7 @@ def test_order_dependent_credit_uses_ordered_pools():
 def test_variance_against_leave_one_out_reinforce():
     rep = check_objective(builtin.reinforce, target="best_of_k", k=1, n=4, transformer=False)
     assert abs(rep.variance_ratio - 1) < 1e-12  # k = 1: the same estimator
-    rep = check_objective(builtin.bon_rl, target="best_of_k", k=2, n=4, transformer=False)
+    rep = check_objective(builtin.best_of_k, target="best_of_k", k=2, n=4, transformer=False)
     for c in rep.cases:
         assert c["reinforce_rel_error"] < 1e-12  # the reference is unbiased too
         assert c["variance"] > 0 and c["reinforce_variance"] > 0
@@ -224,7 +228,7 @@ def test_variance_against_leave_one_out_reinforce():
 # ---------------------------------------------------------------- the transformer
 
 def test_transformer_check_unbiased_and_biased():
-    good = check_objective(builtin.bon_rl, target="best_of_k", k=2, n=4, policies=1, mc_pools=300)
+    good = check_objective(builtin.best_of_k, target="best_of_k", k=2, n=4, policies=1, mc_pools=300)
     tr = good.transformer
     assert good.ok, str(good)
     assert tr["responses"] == 64 and tr["rel_error"] < 1e-9 and tr["fd_error"] < 1e-6
@@ -241,7 +245,7 @@ def test_report_outputs(tmp_path):
     d = json.loads(json.dumps(rep.to_dict(), allow_nan=False))
     assert d["ok"] is False and d["max_rel_error"] == pytest.approx(rep.max_rel_error) and len(d["cases"]) == 2
     text = str(rep)
-    assert "rel.bias" in text and "LOO-RF var" in text and text.count("PROBLEM:") == len(rep.problems)
+    assert "relative bias" in text and "leave-one-out REINFORCE variance" in text and "outcomes" in text and text.count("PROBLEM:") == len(rep.problems)
     png = rep.plot(tmp_path / "check.png")
     assert pathlib.Path(png).read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
 
@@ -258,11 +262,11 @@ def test_bad_credit_and_bad_arguments():
     rep = check_objective(broken, target="best_of_k", k=1, n=3, transformer=False)
     assert rep.problems == ["the check could not run: IndexError: index 3 is out of bounds for axis 1 with size 3"]
     with pytest.raises(ValueError, match=r"k must be <= n \(n=3\), got k=4"):
-        check_objective(builtin.bon_rl, target="best_of_k", k=4, n=3)
-    with pytest.raises(ValueError, match=r"target must be one of \('best_of_k', 'pass_at_k', 'bon_sft'\)"):
-        check_objective(builtin.bon_rl, target="pass@k", k=1, n=3)
+        check_objective(builtin.best_of_k, target="best_of_k", k=4, n=3)
+    with pytest.raises(ValueError, match=r"target must be one of \('best_of_k', 'pass_at_k', 'best_of_k_sft'\)"):
+        check_objective(builtin.best_of_k, target="pass@k", k=1, n=3)
     with pytest.raises(TypeError, match=r"credit must be callable"):
-        check_objective("bon_rl", target="best_of_k", k=1, n=3)
+        check_objective("best_of_k", target="best_of_k", k=1, n=3)
     with pytest.raises(ValueError, match=r"policies\[0\].rewards must be 0/1 for target 'pass_at_k'"):
         check_objective(builtin.pass_at_k, target="pass_at_k", k=1, n=2, policies=[rand_policy(0)])
 

@@ -8,7 +8,7 @@ DESCRIPTION = (
     "estimate, computed exactly over every pool of n draws, with the exact gradient of the target on small "
     "categorical policies and on a tiny transformer; report bias, direction and variance against "
     "leave-one-out REINFORCE. Exit status 0 when no problem was found, 1 otherwise. bonft's own credits: "
-    "bonft.objcheck:builtin.NAME (bon_rl, pass_at_k, pass_at_k_plugin, bon_sft, reinforce, ...). "
+    "bonft.objcheck:builtin.NAME (best_of_k, pass_at_k, pass_at_k_plugin, best_of_k_sft, reinforce, ...). "
     "Caution: this imports and runs the module's code."
 )
 
@@ -16,14 +16,18 @@ DESCRIPTION = (
 def add_arguments(p) -> None:
     p.add_argument("credit", help="'module:function' or 'path/to/file.py:function'")
     p.add_argument("--target", required=True,
-                   help="best_of_k, pass_at_k, bon_sft, or 'file.py:payoff' giving the value of a set of k samples, "
+                   help="best_of_k, pass_at_k, best_of_k_sft, or 'file.py:payoff' giving the value of a set of k samples, "
                         "(M, k) scores, (M, k) rewards -> (M,)")
     p.add_argument("--k", type=int, required=True, help="samples the target selects from (best-of-k, pass@k)")
     p.add_argument("--n", type=int, required=True, help="samples per prompt the credit sees")
-    p.add_argument("--policies", type=int, default=4, help="random categorical policies to check (default 4)")
+    p.add_argument("--policies", type=int, default=4,
+                   help="random categorical policies with a non-zero target gradient to check (default 4)")
     p.add_argument("--outcomes", type=int, default=4, help="outcomes of each categorical policy (default 4)")
     p.add_argument("--seed", type=int, default=0, help="seed of the random policies and the transformer (default 0)")
     p.add_argument("--tolerance", type=float, default=1e-6, help="relative bias that still passes (default 1e-6)")
+    p.add_argument("--time-limit", type=float, default=300.0, metavar="SECONDS",
+                   help="seconds the whole check may run; a credit still running then is reported as a failed check "
+                        "naming its policy and pools (default 300)")
     p.add_argument("--skip-transformer", action="store_true", help="only the categorical policies (no transformers import)")
     p.add_argument("--plot-dir", metavar="DIR", default=None,
                    help="write objective_check.png (estimated vs exact gradient components) into this directory")
@@ -39,7 +43,7 @@ def run(args) -> int:
     target = load_verifier(args.target) if ":" in args.target else args.target
     report = check_objective(credit, target=target, k=args.k, n=args.n, policies=args.policies,
                              outcomes=args.outcomes, seed=args.seed, tolerance=args.tolerance,
-                             transformer=not args.skip_transformer)
+                             transformer=not args.skip_transformer, time_limit=args.time_limit)
     print(report)
     if args.plot_dir:
         import os

@@ -27,12 +27,19 @@ class ObjectiveReport:
     ``variance`` = trace Cov(g) over pools, ``reinforce_variance`` of leave-one-out REINFORCE on
     the same target and n, and the vectors ``exact``, ``estimate``, ``finite_diff``).
     ``transformer``: the same figures on a tiny causal LM, with per-direction derivatives.
+    ``policies_requested`` / ``policies_drawn`` / ``policies_informative``: how many categorical policies were
+    asked for, drawn (random ones until enough are informative) and informative (a non-zero target gradient;
+    only those are checked when drawn at random). ``time_limit``: seconds the check may run (None: no limit).
     """
 
     target: str
     k: int
     n: int
     tolerance: float
+    time_limit: float | None = None
+    policies_requested: int = 0
+    policies_drawn: int = 0
+    policies_informative: int = 0
     cases: list[dict] = field(default_factory=list)
     transformer: dict | None = None
     problems: list[str] = field(default_factory=list)
@@ -67,7 +74,7 @@ class ObjectiveReport:
     def judge(self) -> None:
         """Turn the measured figures into problem sentences (called once by check_objective)."""
         what = {"best_of_k": f"the best-of-{self.k} value V_{self.k}", "pass_at_k": f"pass@{self.k}",
-                "bon_sft": f"log pi_bon(y*) at k={self.k}"}.get(self.target, f"the payoff {self.target!r} at k={self.k}")
+                "best_of_k_sft": f"log pi_bon(y*) at k={self.k}"}.get(self.target, f"the payoff {self.target!r} at k={self.k}")
         bad = [c for c in self.cases if c["rel_error"] > self.tolerance]
         if bad:
             c = max(bad, key=lambda c: c["rel_error"])
@@ -118,15 +125,18 @@ class ObjectiveReport:
 
         head = f"objective check: target {self.target}, k={self.k}, n={self.n}: "
         lines = [head + ("OK" if self.ok else f"{len(self.problems)} problem(s)")]
-        cols = f"  {'policy':>6} {'V':>3} {'pools':>6} {'rel.bias':>9} {'max|bias|':>9} {'proj.':>7} " \
-               f"{'cosine':>7} {'FD err':>8} {'variance':>9} {'LOO-RF var':>10} {'ratio':>6}"
+        lines.append(f"  informative policies (non-zero target gradient): {self.policies_informative} of "
+                     f"{self.policies_drawn} drawn ({self.policies_requested} requested)")
+        cols = f"  {'policy':>6} {'outcomes':>8} {'pools':>6} {'relative bias':>13} {'max|bias|':>9} {'projection':>10} " \
+               f"{'cosine':>7} {'finite-difference error':>23} {'variance':>9} " \
+               f"{'leave-one-out REINFORCE variance':>32} {'ratio':>6}"
         lines.append(cols)
         for j, c in enumerate(self.cases, 1):
             rv = c["reinforce_variance"]
             ratio = c["variance"] / rv if rv else None
-            lines.append(f"  {j:>6} {c['outcomes']:>3} {c['pools']:>6} {c['rel_error']:>9.2e} {c['max_abs_error']:>9.2e} "
-                         f"{c['projection']:>7.4f} {c['cosine']:>7.4f} {c['fd_error']:>8.1e} {c['variance']:>9.3g} "
-                         f"{f(rv):>10} {f(ratio):>6}")
+            lines.append(f"  {j:>6} {c['outcomes']:>8} {c['pools']:>6} {c['rel_error']:>13.2e} {c['max_abs_error']:>9.2e} "
+                         f"{c['projection']:>10.4f} {c['cosine']:>7.4f} {c['fd_error']:>23.1e} {c['variance']:>9.3g} "
+                         f"{f(rv):>32} {f(ratio):>6}")
         tr = self.transformer
         if tr:
             exact = f"{tr['pools']} pools exact" if tr["rel_error"] is not None else "pools not enumerable"
@@ -143,6 +153,6 @@ class ObjectiveReport:
 
     def plot(self, path) -> str:
         """Estimated against exact gradient components, to ``path`` (PNG); returns ``path``."""
-        from bonft.viz import plot_objective_check
+        from bonft.viz import plot_objective_check  # loads matplotlib: only when a plot is asked for
 
         return plot_objective_check(self, path)

@@ -20,9 +20,13 @@ import itertools
 
 import numpy as np
 import torch
+from torch.func import functional_call
 
-from bonft.objcheck import _MAX_ROWS, _multisets, _ordered, call_credit, value_fn
+from bonft.objcheck.enumeration import MAX_ROWS, Progress, Target, call_credit, multisets, ordered_tuples, value_fn
 from bonft.objcheck.report import MC_Z
+from bonft.objectives.losses import policy_gradient_loss
+
+__all__ = ["transformer_check"]
 
 
 def _classes(rng: np.random.Generator, N: int, name: str) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -30,7 +34,7 @@ def _classes(rng: np.random.Generator, N: int, name: str) -> tuple[np.ndarray, n
     if name == "pass_at_k":
         cs = np.array([0.0, 1.0])
         cr = cs.copy()
-    elif name == "bon_sft":
+    elif name == "best_of_k_sft":
         cs, cr = np.array([0.0, 1.0, 2.0]), np.zeros(3)
     else:
         cs = np.array([0.0, 0.0, 1.0, 1.0, 2.0, 2.0])  # ties across classes
@@ -41,18 +45,15 @@ def _classes(rng: np.random.Generator, N: int, name: str) -> tuple[np.ndarray, n
 
 
 def _loss_value(lp: torch.Tensor, credit: torch.Tensor) -> torch.Tensor:
-    from bonft.objectives.losses import policy_gradient_loss
-
     out = policy_gradient_loss(lp, credit)
     return out[0] if isinstance(out, tuple) else out
 
 
-def transformer_check(credit, t, k: int, n: int, *, ordered: bool, seed: int, tolerance: float,
+def transformer_check(credit, t: Target, k: int, n: int, *, ordered: bool, seed: int, tolerance: float,
                       directions: int = 3, mc_pools: int = 400, vocab: int = 4, length: int = 3,
-                      h: float = 1e-4) -> dict:
+                      h: float = 1e-4, progress: Progress | None = None) -> dict:
     """Exact, finite-difference and Monte Carlo gradients of the target on a tiny transformer (a dict)."""
-    from torch.func import functional_call
-
+    # imported here: it loads transformers (seconds), which check_objective(transformer=False) never needs
     from bonft.trainer.models import build_tiny_model
 
     model = build_tiny_model("gpt2", vocab_size=vocab, layers=1, width=16, heads=2, max_positions=length + 1,
@@ -69,9 +70,9 @@ def transformer_check(credit, t, k: int, n: int, *, ordered: bool, seed: int, to
     rng = np.random.default_rng(seed)
     cls, cs, cr = _classes(rng, N, t.name)
     scores, rewards = cs[cls], cr[cls]
-    expert = int(rng.integers(N)) if t.name == "bon_sft" else None
-    s_star = float(scores[expert]) if expert is not None else None
-    value = value_fn(t, scores, rewards, expert, k)
+    reference = int(rng.integers(N)) if t.name == "best_of_k_sft" else None
+    s_star = float(scores[reference]) if reference is not None else None
+    value = value_fn(t, scores, rewards, reference, k, progress)
 
     # exact gradient of the target
     req = [p.clone().requires_grad_() for p in theta]
@@ -100,9 +101,9 @@ def transformer_check(credit, t, k: int, n: int, *, ordered: bool, seed: int, to
     q = np.bincount(cls, weights=pi.numpy(), minlength=len(cs))
     C = len(cs)
     gE = None
-    if not ordered or C**n <= _MAX_ROWS:
-        Y, logc = (_ordered(C, n), np.zeros(C**n)) if ordered else _multisets(C, n)
-        w = call_credit(credit, t, cs[Y], cr[Y], s_star, k)
+    if not ordered or C**n <= MAX_ROWS:
+        Y, logc = (ordered_tuples(C, n), np.zeros(C**n)) if ordered else multisets(C, n)
+        w = call_credit(credit, t, cs[Y], cr[Y], s_star, k, progress)
         P = np.exp(logc + np.log(q)[Y].sum(1))
         A = np.zeros(C)
         np.add.at(A, Y.ravel(), (P[:, None] * w).ravel())
@@ -110,16 +111,16 @@ def transformer_check(credit, t, k: int, n: int, *, ordered: bool, seed: int, to
         req = [p.clone().requires_grad_() for p in theta]
         lp_r = logp_at(req)
         objective = -_loss_value(lp_r[None], weights)
-        if expert is not None:
-            objective = objective + lp_r[expert]  # exact expert term of log pi_bon(y*)
+        if reference is not None:
+            objective = objective + lp_r[reference]  # exact reference term of log pi_bon(y*)
         gE = torch.cat([g.reshape(-1) for g in torch.autograd.grad(objective, req)])
 
     # Monte Carlo pools drawn from the model
     Ymc = torch.multinomial(pi, mc_pools * n, replacement=True, generator=gen).view(mc_pools, n).numpy()
-    w = call_credit(credit, t, scores[Ymc], rewards[Ymc], s_star, k)
+    w = call_credit(credit, t, scores[Ymc], rewards[Ymc], s_star, k, progress)
     proj = np.einsum("mi,mid->md", w, D.numpy()[Ymc])
-    if expert is not None:
-        proj = proj + D[expert].numpy()
+    if reference is not None:
+        proj = proj + D[reference].numpy()
     mean, se = proj.mean(0), proj.std(0, ddof=1) / np.sqrt(mc_pools)
     rows = []
     for d in range(directions):

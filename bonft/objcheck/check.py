@@ -1,0 +1,192 @@
+"""Check an objective before training on it: is its credit an unbiased gradient of the target it claims?
+
+A credit function ``credit(scores, rewards, *, k) -> w`` (``(B, n), (B, n) -> (B, n)``) turns a pool of
+``n`` scored samples into weights, and training follows ``sum_i w_i grad log pi(y_i)`` (the loss
+``bonft.objectives.losses.policy_gradient_loss(logprobs, w)``). :func:`check_objective` computes what that
+estimate has as its *mean*, exactly, and compares it with the gradient of the target:
+
+1. **Small categorical policies** (:mod:`bonft.objcheck.categorical`): every pool of ``n`` draws enumerated,
+   the exact target gradient by autograd, checked against central finite differences. Random policies are
+   drawn until the requested number have a non-zero target gradient (a flat target shows no bias).
+2. **A tiny transformer** (:mod:`bonft.objcheck.transformer`): a GPT-2 from a config with all 64 responses
+   enumerated, finite differences along random parameter directions, the exact expected loss gradient and a
+   Monte Carlo interval.
+3. **Variance** against leave-one-out REINFORCE on the same target with the same ``n`` samples.
+
+Targets: ``"best_of_k"`` (``V_k``, the expected reward of the best-scored of k draws, ties broken at
+random; Chow et al. 2024), ``"pass_at_k"`` (``1 - (1-p)^k``, Chen et al. 2021: 0/1 rewards and the
+verifier is the reward, so the credit is called with ``scores = rewards``), ``"best_of_k_sft"``
+(``log pi_bon(y*)`` of a reference outcome, Chow et al. 2024; the credit is called as
+``credit(scores, reference_scores, *, k)`` with ``reference_scores: (B,)`` and the exact
+``grad log pi(y*)`` term is added by the check), or a payoff ``payoff(scores, rewards) -> value`` of a set
+of k samples, ``(M, k), (M, k) -> (M,)`` numpy float64, which must not depend on the order of the k samples.
+
+The credit receives numpy float64 arrays and may return numpy or torch. The enumeration assumes the
+samples are exchangeable (credit permutes with the samples); when it does not, ordered pools are used.
+
+Caution: a check on toy policies shows that the credit estimates the gradient of the target; it cannot
+show that the target is what you want. A verifier that can be fooled is still exploited (reward
+hacking): keep a held-out true reward, and run model-written code only in a sandbox. The check runs the
+credit (and a payoff) you hand it, in this process: load only code you have read.
+"""
+from __future__ import annotations
+
+import contextlib
+import signal
+import threading
+import time
+
+import numpy as np
+
+from bonft._core.checks import check_int, check_k, check_positive
+from bonft.objcheck.categorical import check_policy, categorical_case, random_policy, target_gradient
+from bonft.objcheck.enumeration import Progress, resolve_target
+from bonft.objcheck.report import ObjectiveReport
+from bonft.objcheck.transformer import transformer_check
+
+__all__ = ["check_objective", "CheckTimeout", "DRAWS_PER_POLICY", "FLAT_GRADIENT"]
+
+DRAWS_PER_POLICY = 10  # random policies drawn per requested one before the check gives up on finding signal
+FLAT_GRADIENT = 1e-12  # a target gradient with a smaller norm counts as zero (the policy is not informative)
+
+
+class CheckTimeout(BaseException):
+    """Raised inside the user's code when the time limit passes (a BaseException, so ``except Exception``
+    in the user's credit does not swallow it)."""
+
+
+@contextlib.contextmanager
+def _time_limit(seconds: float | None):
+    """Raise :class:`CheckTimeout` in the main thread after ``seconds`` (SIGALRM and an interval timer).
+
+    A timer already running (a test runner's, say) is saved and re-armed with its remaining time afterwards.
+    """
+    if seconds is None:
+        yield
+        return
+    start = time.monotonic()
+
+    def fire(signum, frame):
+        raise CheckTimeout()
+
+    old_handler = signal.signal(signal.SIGALRM, fire)
+    old_delay, old_interval = signal.setitimer(signal.ITIMER_REAL, seconds)
+    try:
+        yield
+    finally:
+        signal.setitimer(signal.ITIMER_REAL, 0)
+        signal.signal(signal.SIGALRM, old_handler)
+        if old_delay > 0:  # the earlier timer, less the time this check took (at least a moment)
+            signal.setitimer(signal.ITIMER_REAL, max(old_delay - (time.monotonic() - start), 1e-3), old_interval)
+
+
+def _check_time_limit(time_limit) -> float | None:
+    if time_limit is None:
+        return None
+    time_limit = check_positive("time_limit", time_limit)  # finite and > 0
+    if not hasattr(signal, "SIGALRM") or threading.current_thread() is not threading.main_thread():
+        raise ValueError("time_limit needs the main thread of a process with SIGALRM (a POSIX system), got "
+                         f"thread {threading.current_thread().name!r}; pass time_limit=None to check without a limit")
+    return time_limit
+
+
+def check_objective(credit, *, target, k, n, policies=4, outcomes=4, seed=0, transformer=True,
+                    tolerance=1e-6, directions=3, mc_pools=400, time_limit=300.0) -> ObjectiveReport:
+    r"""Check that ``credit`` estimates the gradient of ``target`` without bias; report bias and variance.
+
+    credit: ``(scores, rewards, *, k) -> w``, ``(B, n), (B, n) -> (B, n)`` (``"best_of_k_sft"``:
+    ``(scores, reference_scores, *, k)`` with ``reference_scores: (B,)``); target: ``"best_of_k"``,
+    ``"pass_at_k"``, ``"best_of_k_sft"`` or a payoff ``(M, k), (M, k) -> (M,)``; policies: how many
+    informative random categorical policies over ``outcomes`` outcomes, or a list of
+    :class:`bonft.objcheck.ToyPolicy`.
+
+    .. math:: \mathrm{bias} = \sum_{\text{pools}} P(\text{pool}) \sum_i w_i \nabla\log\pi(y_i) - \nabla V_k(\theta)
+
+    The credit passes when the relative bias ``|bias| / |grad V_k|`` stays within ``tolerance`` on every
+    policy and on the transformer, the exact gradient agrees with finite differences, and the Monte Carlo
+    interval on the transformer covers the finite-difference derivative.
+
+    Evidence: a policy whose target gradient is zero (norm below ``FLAT_GRADIENT``) cannot show bias.
+    Random policies are drawn until ``policies`` of them are informative, at most ``DRAWS_PER_POLICY``
+    times as many; finding fewer is a problem naming how many were found. Given policies are all checked,
+    and a flat one is a problem too. The report states the counts.
+
+    Time limit: the whole check may run ``time_limit`` seconds (None: no limit). A SIGALRM timer in the
+    main thread interrupts the user's credit or payoff where it is; the check then reports a problem
+    naming the policy and the pools the function was working on. Python code is interrupted at once; a
+    long call inside a C extension only when it returns. Needs the main thread on a POSIX system.
+
+    Problems are sentences with the numbers in ``report.problems``; ``report.ok`` is ``not problems``.
+
+    References: Chow et al. 2024 (best-of-k targets); Chen et al. 2021 (pass@k); Kool et al. 2019
+    (leave-one-out REINFORCE).
+    """
+    if not callable(credit):
+        raise TypeError(f"credit must be callable (scores, rewards, *, k) -> credit, got {type(credit).__name__}")
+    t = resolve_target(target)
+    n = check_int("n", n, min=1)
+    k = check_k(k, n)
+    seed = check_int("seed", seed, min=0)
+    tolerance = check_positive("tolerance", tolerance)
+    directions = check_int("directions", directions, min=1)
+    mc_pools = check_int("mc_pools", mc_pools, min=2)
+    time_limit = _check_time_limit(time_limit)
+    if not isinstance(transformer, bool):
+        raise TypeError(f"transformer must be a bool, got {type(transformer).__name__} {transformer!r}")
+    rng = np.random.default_rng(seed)
+    given = isinstance(policies, (list, tuple))
+    if given:
+        if not policies:
+            raise ValueError("policies must not be empty")
+        pols = [check_policy(j, c, t) for j, c in enumerate(policies)]
+        requested, V = len(pols), None
+    else:
+        requested = check_int("policies", policies, min=1)
+        V = check_int("outcomes", outcomes, min=2, max=12)
+        pols = []
+    report = ObjectiveReport(target=t.name, k=k, n=n, tolerance=tolerance, time_limit=time_limit,
+                             policies_requested=requested)
+    progress = Progress()
+    flat: list[int] = []
+    try:
+        with _time_limit(time_limit):
+            j = 0
+            while (j < len(pols)) if given else (report.policies_informative < requested
+                                                 and j < DRAWS_PER_POLICY * requested):
+                pol = pols[j] if given else random_policy(rng, V, t)
+                j += 1
+                report.policies_drawn = j
+                progress.policy = f"policy {j} ({len(pol.logits)} outcomes)"
+                progress.pools = ""
+                grads = target_gradient(t, pol, k, progress)
+                informative = float(np.linalg.norm(grads[0])) > FLAT_GRADIENT
+                report.policies_informative += informative
+                if not informative:
+                    flat.append(j)
+                    if not given:
+                        continue  # a drawn flat policy is skipped: it would pass any credit
+                report.cases.append(categorical_case(credit, t, pol, k, n, seed + len(report.cases), grads=grads,
+                                                     progress=progress))
+            if transformer:
+                progress.policy, progress.pools = "the transformer", ""
+                ordered = any(c["ordered_pools"] for c in report.cases)
+                report.transformer = transformer_check(credit, t, k, n, ordered=ordered, seed=seed, tolerance=tolerance,
+                                                       directions=directions, mc_pools=mc_pools, progress=progress)
+    except CheckTimeout:
+        report.problems.append(
+            f"the {progress.function} did not return within the time limit of {time_limit:g} s: it was working on "
+            f"{progress.describe()} (stopped there; raise time_limit or make the {progress.function} faster)")
+    except Exception as e:  # the user's credit or payoff failed: a finding, reported with what it said
+        report.problems.append(f"the check could not run: {type(e).__name__}: {e}")
+    else:
+        if given and flat:
+            report.problems.append(
+                f"only {report.policies_informative} of {requested} given policies have a non-zero gradient of the "
+                f"target (flat: policy {', '.join(map(str, flat))}): a flat target cannot show bias")
+        elif not given and report.policies_informative < requested:
+            report.problems.append(
+                f"only {report.policies_informative} of {report.policies_drawn} random policies had a non-zero "
+                f"gradient of the target ({requested} requested): too little evidence; the target may be flat for "
+                f"most policies (a thresholded reward?): pass policies=[ToyPolicy(...)] on which it varies")
+    report.judge()
+    return report

@@ -1,0 +1,121 @@
+"""check_objective's guards: a time limit on the user's credit, and enough informative policies.
+
+References: the flat-target argument is the definition of bias (a zero gradient has nothing to
+miss); the informative count is checked against the policies' own rewards (a thresholded payoff
+has a non-zero gradient exactly when some outcome is above the threshold and some below);
+leave-one-out REINFORCE (Kool et al. 2019) is the unbiased credit for k = 1.
+"""
+from __future__ import annotations
+
+import signal
+import threading
+import time
+
+import numpy as np
+import pytest
+
+from bonft.cli.main import main
+from bonft.objcheck import ToyPolicy, builtin, check_objective
+from bonft.objectives.credit import reinforce_credit
+
+
+def never_returns(scores, rewards, *, k):
+    while True:
+        time.sleep(0.01)
+
+
+def test_a_credit_that_never_returns_is_a_failed_check_naming_policy_and_pools():
+    rep = check_objective(never_returns, target="best_of_k", k=2, n=3, transformer=False, time_limit=2.0)
+    assert not rep.ok and len(rep.problems) == 1 and rep.cases == []
+    msg = rep.problems[0]
+    assert msg.startswith("the credit did not return within the time limit of 2 s: it was working on "
+                          "policy 1 (4 outcomes), a batch of 20 pools of n=3 (the first: scores [")  # C(4+2, 3) = 20
+    assert "\n" not in msg and signal.getsignal(signal.SIGALRM) in (signal.SIG_DFL, signal.default_int_handler, None)
+
+
+def test_the_timer_also_stops_a_payoff_and_restores_an_earlier_timer():
+    def slow_payoff(S, R):
+        while True:
+            pass
+
+    signal.signal(signal.SIGALRM, lambda *a: None)
+    signal.setitimer(signal.ITIMER_REAL, 100.0)
+    try:
+        rep = check_objective(builtin.best_of_k, target=slow_payoff, k=2, n=3, transformer=False, time_limit=1.0)
+        left, _ = signal.getitimer(signal.ITIMER_REAL)
+    finally:
+        signal.setitimer(signal.ITIMER_REAL, 0)
+        signal.signal(signal.SIGALRM, signal.SIG_DFL)
+    assert rep.problems[0].startswith("the target payoff did not return within the time limit of 1 s: it was "
+                                      "working on policy 1 (4 outcomes), on 16 sets of k=2 samples")
+    assert 0 < left <= 100.0  # the earlier timer runs on
+
+
+def test_time_limit_is_checked():
+    with pytest.raises(ValueError, match=r"time_limit must be a finite number > 0, got time_limit=0.0"):
+        check_objective(builtin.best_of_k, target="best_of_k", k=1, n=2, time_limit=0)
+    errors = []
+
+    def in_thread():
+        try:
+            check_objective(builtin.best_of_k, target="best_of_k", k=1, n=2, transformer=False)
+        except ValueError as e:
+            errors.append(str(e))
+
+    th = threading.Thread(target=in_thread, name="worker")
+    th.start()
+    th.join()
+    assert errors and errors[0].startswith("time_limit needs the main thread of a process with SIGALRM")
+    # without a limit it runs in a thread
+    out = []
+    th = threading.Thread(target=lambda: out.append(check_objective(builtin.best_of_k, target="best_of_k", k=1, n=2,
+                                                                    transformer=False, time_limit=None).ok))
+    th.start()
+    th.join()
+    assert out == [True]
+
+
+def _above(S, R):
+    """A thresholded payoff of one sample: 1 when its reward exceeds 1.5."""
+    return (R[:, 0] > 1.5).astype(float)
+
+
+def _thresholded_credit(scores, rewards, *, k):
+    return reinforce_credit((rewards > 1.5).astype(float))  # leave-one-out REINFORCE on the payoff: unbiased
+
+
+def test_random_policies_are_drawn_until_enough_are_informative():
+    rep = check_objective(_thresholded_credit, target=_above, k=1, n=3, policies=4, transformer=False)
+    assert rep.ok, str(rep)
+    assert rep.policies_requested == 4 and rep.policies_informative == 4 == len(rep.cases)
+    assert rep.policies_drawn > 4  # most random policies have no reward above 1.5
+    for c in rep.cases:
+        r = np.array(c["exact"])
+        assert np.linalg.norm(r) > 1e-6
+    assert f"informative policies (non-zero target gradient): 4 of {rep.policies_drawn} drawn (4 requested)" in str(rep)
+
+
+def test_a_flat_target_fails_saying_how_many_were_found():
+    never = lambda S, R: (R[:, 0] > 1e9).astype(float)  # noqa: E731  a payoff no policy can move
+    rep = check_objective(_thresholded_credit, target=never, k=1, n=2, policies=3, transformer=False)
+    assert rep.policies_informative == 0 and rep.policies_drawn == 30 and rep.cases == []
+    assert rep.problems == [
+        "only 0 of 30 random policies had a non-zero gradient of the target (3 requested): too little evidence; the "
+        "target may be flat for most policies (a thresholded reward?): pass policies=[ToyPolicy(...)] on which it "
+        "varies"]
+    # given policies: the informative one is checked, the flat one named
+    good = ToyPolicy([0.1, -0.3, 0.2], [0.0, 1.0, 2.0], [0.0, 2.0, 0.0])
+    flat = ToyPolicy([0.1, -0.3, 0.2], [0.0, 1.0, 2.0], [0.0, 1.0, 0.0])
+    rep = check_objective(_thresholded_credit, target=_above, k=1, n=2, policies=[good, flat], transformer=False)
+    assert rep.policies_informative == 1 and len(rep.cases) == 2 and rep.cases[0]["rel_error"] < 1e-12
+    assert rep.problems == ["only 1 of 2 given policies have a non-zero gradient of the target (flat: policy 2): "
+                            "a flat target cannot show bias"]
+
+
+def test_cli_time_limit(tmp_path, capsys):
+    f = tmp_path / "slow.py"
+    f.write_text("import time\ndef credit(scores, rewards, *, k):\n    while True:\n        time.sleep(0.01)\n")
+    rc = main(["check-objective", f"{f}:credit", "--target", "best_of_k", "--k", "1", "--n", "2", "--skip-transformer",
+               "--time-limit", "2"])
+    out = capsys.readouterr().out
+    assert rc == 1 and "PROBLEM: the credit did not return within the time limit of 2 s: it was working on policy 1" in out
