@@ -212,7 +212,7 @@ def test_support_draws_catch_a_sampler_narrower_than_its_stated_settings(flat):
     # a sampler that does follow its stated law passes the same test
     honest = check_on_policy(flat, PROMPTS, n=4, sample_fn=_multinomial, support_draws=m)
     assert honest.ok and honest.first_step["flagged"] == 0
-    assert abs(honest.first_step["unseen_loss_mass"] - honest.first_step["expected"]) < 4 * honest.first_step["sd"]
+    assert abs(honest.first_step["unseen_loss_mass"] - honest.first_step["expected"]) < 4 * honest.first_step["sd_bound"]
 
 
 def test_report_table_dict_and_state(flat):

@@ -41,7 +41,8 @@ class OnPolicyReport:
     * ``outside_support`` -- drawn tokens that the stated settings exclude (the sampler is not what
       its settings say);
     * ``first_step`` -- with ``support_draws``: the empirical first-step test, averaged over prompts
-      (``unseen_loss_mass``, its ``expected`` value and ``sd`` under the stated law, ``flagged`` prompts);
+      (``unseen_loss_mass``; under the stated law its ``expected`` value and ``sd_bound``, an upper
+      bound on its standard deviation; the number of ``flagged`` prompts);
     * ``draws`` -- per prompt: ``input_ids`` (n, P), ``response_ids`` (n, T), ``mask`` (n, T) and the
       per-step ``missing_mass``, ``kl``, ``loss_logprob`` (n, T) tensors.
     """
@@ -85,7 +86,7 @@ class OnPolicyReport:
         if self.first_step:
             f = self.first_step
             tail.append(f"first step, {f['draws']} draws per prompt: loss mass on tokens never drawn "
-                        f"{f['unseen_loss_mass']:.4f} (stated law: {f['expected']:.4f} +- {f['sd']:.4f}), "
+                        f"{f['unseen_loss_mass']:.4f} (stated law: {f['expected']:.4f} +- {f['sd_bound']:.4f}), "
                         f"{f['flagged']} of {self.settings['prompts']} prompts flagged")
         tail += [f"- {r}" for r in self.reasons] or ["- the loss's log-probs describe the sampler's policy"]
         return "\n".join([head, *rows, *tail])
@@ -121,7 +122,7 @@ def check_on_policy(model, prompts, *, tokenizer=None, temperature=None, top_k=N
     q, ``sum_v p(v) (1 - q(v))^m`` (the chance a token is missed by m independent draws). The
     variance is bounded by the sum of the per-token variances, since the multinomial's zero-count
     indicators are negatively associated (Joag-Dev & Proschan 1983); the step is flagged beyond the
-    expectation plus ``max(max_missing_mass, 4 sd)`` (a normal approximation). Its power depends on
+    expectation plus ``max(max_missing_mass, 4 sd_bound)`` (a normal approximation). Its power depends on
     m: a tail spread thinly over a large vocabulary needs many draws. Other ``generation_config``
     options that change the distribution (repetition penalty, min-p, ...) are refused with a
     ValueError.
@@ -269,8 +270,8 @@ def _first_step_support(sampler, prompt, q, p, m) -> dict:
     unseen = torch.bincount(first, minlength=q.shape[0]) == 0
     miss = (1.0 - q) ** m  # P(token v never among m independent draws from q)
     return {"draws": m, "unseen_loss_mass": p[unseen].sum().item(), "expected": (p * miss).sum().item(),
-            "sd": (p * p * miss * (1.0 - miss)).sum().sqrt().item(), "outside_support": int((q[first] == 0).sum()),
-            "first_tokens": first}
+            "sd_bound": (p * p * miss * (1.0 - miss)).sum().sqrt().item(),
+            "outside_support": int((q[first] == 0).sum()), "first_tokens": first}
 
 
 def _warp(logits, eff) -> torch.Tensor:
@@ -424,9 +425,9 @@ def _summarise(draws, settings, max_missing_mass, max_kl) -> OnPolicyReport:
     first = None
     if draws[0]["first_step"] is not None:
         fs = [d["first_step"] for d in draws]
-        flagged = sum(f["unseen_loss_mass"] > f["expected"] + max(max_missing_mass, 4 * f["sd"]) for f in fs)
+        flagged = sum(f["unseen_loss_mass"] > f["expected"] + max(max_missing_mass, 4 * f["sd_bound"]) for f in fs)
         first = {"draws": fs[0]["draws"], "flagged": flagged,
-                 **{k: sum(f[k] for f in fs) / len(fs) for k in ("unseen_loss_mass", "expected", "sd")}}
+                 **{k: sum(f[k] for f in fs) / len(fs) for k in ("unseen_loss_mass", "expected", "sd_bound")}}
         outside += sum(f["outside_support"] for f in fs)
     reasons = []
     if missing > max_missing_mass:
