@@ -4,7 +4,7 @@ verifier, k annealing, the placebo), each seed from its own warm start.
 Writes runs/study/study.md: means over seeds with 95% t-intervals, paired per-seed differences from
 the warm start and from REINFORCE, per-seed values, and each seed's tables (bootstrap intervals over
 prompts, gradient signal-to-noise, the planner's best temperature per k). Slow (about an hour on
-2 CPU cores); the same as `bonft demo --study --out runs/study`. Results: docs/study_results.md.
+2 CPU cores); the same as `bonft demo --study --output runs/study`. Results: docs/study_results.md.
 
     python recipes/study.py [OUT_DIR]
 """
