@@ -87,7 +87,7 @@ def test_each_line_is_parsed_alone(tmp_path, lines, bad):
     assert str(err.value) == f"joined.jsonl line {bad}: {expected}"
 
 
-def test_the_issue_file_of_two_invalid_lines(tmp_path):
+def test_two_invalid_lines_are_never_read_as_two_samples(tmp_path):
     p = tmp_path / "two.jsonl"
     p.write_text(_JOIN_TRICKS[0][0][0] + "\n" + _JOIN_TRICKS[0][0][1] + "\n")
     with pytest.raises(ValueError, match=r"^two.jsonl line 1: not valid JSON \(Unterminated string starting at column 55\)$"):
@@ -239,3 +239,134 @@ def test_step_guard_is_a_no_op_for_one_process():
     with pytest.raises(RuntimeError, match="^boom$"):  # no peers: the error is not relabelled
         with step_guard(DistContext(), step=3, run_dir=None):
             raise RuntimeError("boom")
+
+
+
+# ----------------------------------------------------------------------------- knobs that size work or memory
+def _cli(*argv) -> tuple[int, str]:
+    """(exit status, stderr) of ``bonft ARGV`` run in this process, as the console script runs it."""
+    import contextlib
+    import io
+
+    from bonft.cli.main import main
+
+    out, err = io.StringIO(), io.StringIO()
+    with contextlib.redirect_stdout(out), contextlib.redirect_stderr(err):
+        try:
+            code = main([str(a) for a in argv])
+        except SystemExit as e:
+            code = e.code
+    return code, err.getvalue().strip()
+
+
+def test_max_subsets_is_bounded_in_the_api_and_the_command_line():
+    from bonft.strategies import weighted_vote_credit, weighted_vote_per_prompt
+
+    a, s, r = [[1, 2, 1]], [[1.0, 2.0, 3.0]], [[1.0, 0.0, 1.0]]
+    why = r"\(each sampled subset draws n random keys at once; 10\^6 subsets put the standard error near sd\(f\) / 1000\)"
+    for f in (lambda m: weighted_vote_per_prompt(a, s, r, ks=[2], max_subsets=m),
+              lambda m: weighted_vote_credit(a, s, r, k=2, max_subsets=m)):
+        with pytest.raises(ValueError, match=rf"^max_subsets must be <= 1,000,000 {why}, got max_subsets=1,000,000,000,000$"):
+            f(10**12)
+        f(10**6)  # the bound itself is accepted (C(3, 2) = 3 subsets: exact, nothing sampled)
+    code, err = _cli("estimate", "--example", "--strategy", "weighted_vote", "--max-subsets", 10**12)
+    assert code == 2 and err == ("bonft estimate: error: --max-subsets must be between 2 and 1,000,000 k-subsets (each sampled "
+                                 "subset draws n random keys at once; 10^6 put the standard error near sd / 1000), got "
+                                 "1,000,000,000,000")
+
+
+def test_n_boot_has_the_command_lines_cap_in_the_api():
+    from bonft.estimate import bootstrap_ci
+    from bonft.plan.sweep import Pools, plan_pools
+    from bonft.strategies import compare_strategies
+
+    rng = np.random.default_rng(0)
+    s, r = rng.random((12, 4)), (rng.random((12, 4)) < 0.5).astype(float)
+    pattern = (r"^n_boot must be <= 1,000,000 \(each replicate is a row of the bootstrap table held in memory; more than "
+               r"this cost time and memory and do not move a percentile interval measurably\), got n_boot=20,000,000$")
+    for f in (lambda: summarize(s, r, n_boot=2 * 10**7), lambda: bootstrap_ci(r, n_boot=2 * 10**7),
+              lambda: plan_pools({1.0: Pools(s, r)}, n_boot=2 * 10**7),
+              lambda: compare_strategies(["best_of_k"], ks=[1], rewards=r, scores=s, n_boot=2 * 10**7)):
+        with pytest.raises(ValueError, match=pattern):
+            f()
+    for cmd in (("estimate", "--example"), ("plan", "--samples", "x.jsonl")):
+        code, err = _cli(*cmd, "--n-boot", 2 * 10**7)
+        assert code == 2 and err.endswith("error: --n-boot must be between 1 and 1,000,000 bootstrap replicates, got 20,000,000")
+
+
+def test_seeds_beyond_what_the_generators_take_are_refused():
+    import torch
+
+    with pytest.raises(ValueError, match="Overflow"):  # torch's own limit, the reason for a bound: 2**64 does not fit
+        torch.Generator().manual_seed(2**64)
+    torch.Generator().manual_seed(2**63 - 1)  # the largest seed bonft passes on
+    with pytest.raises(ValueError, match=r"^seed must be < 2\*\*63 \(seeds are kept as int64; torch.manual_seed overflows "
+                                         r"from 2\*\*64\), got seed=1180591620717411303424$"):
+        summarize(np.ones((12, 2)), np.ones((12, 2)), n_boot=10, seed=2**70)
+    code, err = _cli("estimate", "--example", "--seed", 2**70)
+    assert code == 2 and err.endswith("error: --seed must be >= 0 and < 2**63 (seeds are kept as int64; torch.manual_seed "
+                                      "overflows from 2**64), got 1180591620717411303424")
+
+
+@pytest.mark.parametrize("key,value,pattern", [
+    ("seed", 2**70, r"^seed must be < 2\*\*63 \(seeds are kept as int64; torch.manual_seed overflows from 2\*\*64\), got seed=\d+$"),
+    ("threads", 100_000, r"^threads must be <= \d+ \(the cores of this machine, os.cpu_count\(\); more threads than cores only "
+                         r"contend, and the BLAS library fails on very large counts\), got threads=100000$"),
+    ("n", 10**12, r"^n must be <= 65,536 \(samples per prompt: a pool is sampled, scored and credited at once\), "
+                  r"got n=1,000,000,000,000$"),
+    ("eval_samples", 10**6, r"^eval_samples must be <= 65,536 \(samples per prompt"),
+    ("prompts_per_step", 10**12, r"^prompts_per_step must be <= 65,536 \(a step holds every prompt's pool until its "
+                                 r"update\), got prompts_per_step=1,000,000,000,000$"),
+    ("n_boot", 2 * 10**7, r"^n_boot must be <= 1,000,000 \(each replicate is a row of the bootstrap table"),
+])
+def test_config_keys_that_size_work_are_bounded_before_the_run(key, value, pattern):
+    import os
+
+    from bonft.trainer.config import from_dict
+
+    if key == "threads":
+        assert value > (os.cpu_count() or 1)
+    with pytest.raises(ValueError, match=pattern):
+        from_dict({"rl_steps": 1, key: value})
+
+
+def test_config_bounds_the_samples_of_one_micro_batch():
+    from bonft.trainer.config import from_dict
+
+    with pytest.raises(ValueError, match=r"^prompts_per_step / grad_accum x n must be <= 1,048,576 responses \(a micro-batch "
+                                         r"samples them together, each with a row of logits per decoding step\), got 64 / 1 x "
+                                         r"65,536 = 4,194,304; raise grad_accum or lower n$"):
+        from_dict({"rl_steps": 1, "n": 65_536, "prompts_per_step": 64})
+    from_dict({"rl_steps": 1, "n": 65_536, "prompts_per_step": 64, "grad_accum": 4})  # 16 prompts x 65,536 = 2**20
+
+
+def test_config_bounds_hold_on_the_command_line(tmp_path):
+    recipe = tmp_path / "r.toml"
+    recipe.write_text("rl_steps = 1\n")
+    code, err = _cli("train", recipe, "--set", f"seed={2**70}")
+    assert code == 2 and err.startswith("bonft train: error: seed must be < 2**63")
+    code, err = _cli("train", recipe, "--set", "threads=100000")
+    assert code == 2 and err.startswith("bonft train: error: threads must be <= ")
+
+
+def test_planner_sizes_are_bounded_before_any_work():
+    from bonft.plan.from_model import plan_model
+    from bonft.plan.sweep import Pools, plan_exact, plan_pools
+
+    with pytest.raises(ValueError, match=r"^max_k must be <= 65,536 \(one value per k is computed, tabulated and "
+                                         r"bootstrapped\), got max_k=1,000,000,000$"):
+        plan_exact(scores=[1.0, 2.0], rewards=[0.0, 1.0], probs=[0.5, 0.5], temperatures=[1.0], max_k=10**9)
+    rng = np.random.default_rng(0)
+    pools = {t: Pools(rng.random((12, 64)), rng.random((12, 64))) for t in (0.5, 1.0, 1.5)}
+    with pytest.raises(ValueError, match=r"^n_boot x temperatures x max_k must be <= 134,217,728 \(the bootstrap table of "
+                                         r"every resample, temperature and k is held in memory at once, 1 GiB of float64\), "
+                                         r"got 1,000,000 x 3 x 64 = 192,000,000; lower n_boot or max_k$"):
+        plan_pools(pools, n_boot=10**6)
+    # sampling from a model: the knobs are checked before the model is touched (None would fail at the first use)
+    with pytest.raises(ValueError, match=r"^n must be <= 65,536 \(samples per prompt: a pool is sampled, scored and planned "
+                                         r"over at once\), got n=1,000,000,000,000$"):
+        plan_model(None, None, ["a"], lambda p, r: r, temperatures=[1.0], n=10**12)
+    with pytest.raises(ValueError, match=r"^n_boot must be <= 1,000,000"):
+        plan_model(None, None, ["a"], lambda p, r: r, temperatures=[1.0], n=4, n_boot=2 * 10**7)
+    with pytest.raises(ValueError, match=r"^max_k must be <= n \(n=4, the samples drawn per prompt\), got max_k=8$"):
+        plan_model(None, None, ["a"], lambda p, r: r, temperatures=[1.0], n=4, max_k=8)

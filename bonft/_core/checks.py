@@ -44,7 +44,7 @@ MAX_SUBSETS_BOUND = 1_000_000  # weighted vote: sampled k-subsets, each drawing 
 MAX_POOL = 65_536  # samples per prompt (n, eval_samples): a pool is sampled, scored and credited at once
 MAX_PROMPTS_PER_STEP = 65_536  # prompts per optimizer step
 MAX_SAMPLES_AT_ONCE = 2**20  # responses one micro-batch samples at once ((prompts_per_step / grad_accum) x n)
-SEED_BOUND = 2**63  # seeds in [0, 2**63): what torch.manual_seed and numpy's generators both take as an int64
+SEED_BOUND = 2**63  # seeds in [0, 2**63): kept as int64 (torch.manual_seed takes < 2**64, numpy any size)
 
 
 def check_bound(name: str, value: Any, *, max: int, why: str, min: int = 1) -> int:
@@ -63,10 +63,10 @@ def check_n_boot(n_boot: Any, *, name: str = "n_boot", min: int = 1) -> int:
 
 
 def check_seed(seed: Any, *, name: str = "seed") -> int:
-    """A seed in ``[0, 2**63)``: the range torch.manual_seed and numpy's generators both take."""
+    """A seed in ``[0, 2**63)``: an int64, within what torch.manual_seed (< 2**64) and numpy take."""
     value = check_int(name, seed, min=0)
     if value >= SEED_BOUND:
-        raise ValueError(f"{name} must be < 2**63 (the int64 range torch and numpy random generators take), "
+        raise ValueError(f"{name} must be < 2**63 (seeds are kept as int64; torch.manual_seed overflows from 2**64), "
                          f"got {name}={value}")
     return value
 

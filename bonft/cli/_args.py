@@ -5,6 +5,8 @@ import json
 import os
 import tempfile
 
+from bonft._core.checks import MAX_BOOT, MAX_SUBSETS_BOUND, SEED_BOUND
+
 
 def parse_list(flag: str, text: str | None, cast=int) -> list | None:
     """``"1,4,16"`` -> ``[1, 4, 16]``; None stays None. Errors name the flag and the text."""
@@ -20,15 +22,24 @@ def parse_list(flag: str, text: str | None, cast=int) -> list | None:
     return out
 
 
-MAX_BOOT = 1_000_000
-
-
 def check_boot(flag: str, value: int) -> int:
     """Bootstrap replicates in ``[1, MAX_BOOT]``: more cost time and memory (replicates x k values) and do not
     move a percentile interval measurably."""
     if value < 1 or value > MAX_BOOT:
         raise ValueError(f"{flag} must be between 1 and {MAX_BOOT:,} bootstrap replicates, got {value:,}")
     return value
+
+
+def check_sizes(args) -> None:
+    """The knobs that size the work, before any file is read: --n-boot, --seed, --max-subsets (the API's bounds)."""
+    check_boot("--n-boot", args.n_boot)
+    if not 0 <= args.seed < SEED_BOUND:
+        raise ValueError(f"--seed must be >= 0 and < 2**63 (seeds are kept as int64; torch.manual_seed overflows from 2**64), "
+                         f"got {args.seed}")
+    m = getattr(args, "max_subsets", None)
+    if m is not None and not 2 <= m <= MAX_SUBSETS_BOUND:
+        raise ValueError(f"--max-subsets must be between 2 and {MAX_SUBSETS_BOUND:,} k-subsets (each sampled subset "
+                         f"draws n random keys at once; 10^6 put the standard error near sd / 1000), got {m:,}")
 
 
 def add_duplicates_flag(p) -> None:

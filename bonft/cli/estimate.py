@@ -4,7 +4,7 @@ from __future__ import annotations
 import argparse
 import os
 
-from bonft.cli._args import add_duplicates_flag, add_plot_dir, check_boot, parse_list, write_curve_outputs
+from bonft.cli._args import add_duplicates_flag, add_plot_dir, check_sizes, parse_list, write_curve_outputs
 from bonft.cli._strategies import add_strategy_arguments
 from bonft.cli._strategies import run_estimate as _run_strategies
 
@@ -52,7 +52,7 @@ def run(args) -> int:
     if not os.path.isfile(path):
         raise FileNotFoundError(f"POOLS file not found: {path}")
     ks = parse_list("--ks", args.ks)
-    check_boot("--n-boot", args.n_boot)
+    check_sizes(args)
     if args.seed < 0:
         raise ValueError(f"--seed must be >= 0, got {args.seed}")
     table = read_samples(

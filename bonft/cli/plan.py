@@ -5,7 +5,7 @@ import argparse
 import json
 import os
 
-from bonft.cli._args import add_duplicates_flag, check_boot, parse_list, write_json_atomic
+from bonft.cli._args import add_duplicates_flag, check_sizes, parse_list, write_json_atomic
 from bonft.cli._strategies import add_strategy_arguments
 from bonft.cli._strategies import run_plan as _run_strategies
 
@@ -146,7 +146,7 @@ def run(args) -> int:
                                  f"got it with --{given[0]}")
     if args.strategy and args.model:
         raise ValueError("--strategy needs --samples FILE.jsonl or --exact FILE.json, got --model")
-    check_boot("--n-boot", args.n_boot)
+    check_sizes(args)
     info = None
     if args.samples:
         from bonft.io import read_samples

@@ -16,7 +16,16 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from bonft._core.bootstrap import resample_counts
-from bonft._core.checks import as_float_array, check_finite, check_fraction, check_int, check_ks, check_nonempty
+from bonft._core.checks import (
+    as_float_array,
+    check_finite,
+    check_fraction,
+    check_int,
+    check_ks,
+    check_n_boot,
+    check_nonempty,
+    check_seed,
+)
 from bonft.estimate.bestofk import _best_of_k_matrix, _pools, _ragged_best_of_k, _smallest_pool
 
 __all__ = ["bootstrap_ci", "default_ks", "CurveSummary", "summarize", "MIN_BOOT_PROMPTS"]
@@ -43,8 +52,8 @@ def bootstrap_ci(values, *, confidence: float = 0.95, n_boot: int = 2000, seed: 
     check_nonempty("values", v)
     check_finite("values", v)
     confidence = check_fraction("confidence", confidence, open_low=True, open_high=True)
-    n_boot = check_int("n_boot", n_boot, min=1)
-    seed = check_int("seed", seed, min=0)
+    n_boot = check_n_boot(n_boot)
+    seed = check_seed(seed)
     one_d = v.ndim == 1
     V = v[:, None] if one_d else v  # (P,) -> (P, 1)
     P = V.shape[0]
@@ -179,6 +188,7 @@ def summarize(scores, rewards, *, ks=None, confidence: float = 0.95, n_boot: int
     References: Chow et al. 2024 (best-of-k); Chen et al. 2021 (pass@k);
     Efron & Tibshirani 1993 (percentile bootstrap).
     """
+    check_n_boot(n_boot), check_seed(seed)  # before the per-prompt values are computed
     s, r = _pools(scores, rewards)
     smallest = _smallest_pool(s)
     ks_arr, _ = check_ks(default_ks(smallest) if ks is None else ks, smallest, name="ks")

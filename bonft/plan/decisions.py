@@ -10,28 +10,39 @@ import numpy as np
 
 from bonft.plan.result import BudgetChoice, DoublingStep, PlanResult, TemperatureFit
 
+BLOCK_CELLS = 4_000_000  # entries of one block of resampling counts (as bonft.estimate.bootstrap_ci)
+
 
 def bootstrap_means(per_prompt: list[np.ndarray], *, paired: bool, n_boot: int, seed: int) -> np.ndarray:
     """Bootstrap means over prompts: T arrays (P_t, K) -> (n_boot, T, K).
 
     Resampling as a count matrix W (n_boot, P), W[b, i] = times prompt i is drawn in
-    resample b, so one matmul W @ X / P gives every resample's mean of every column.
+    resample b, so one matmul W @ X / P gives every resample's mean of every column. W is
+    drawn in blocks of at most ``BLOCK_CELLS`` entries (one block when n_boot x P fits), so
+    its memory does not grow with n_boot; the (n_boot, T, K) result does (bounded by the caller).
     """
     rng = np.random.default_rng(seed)
     T, K = len(per_prompt), per_prompt[0].shape[1]
 
     from bonft._core.bootstrap import resample_counts
 
-    def counts(P: int) -> np.ndarray:
-        return resample_counts(rng, P, n_boot)  # (B, P) times each prompt is drawn
+    def means(X: np.ndarray, out: np.ndarray) -> None:
+        """out (B, C) = resampled column means of X (P, C), block by block."""
+        P = X.shape[0]
+        step = max(1, min(n_boot, BLOCK_CELLS // P))
+        for b0 in range(0, n_boot, step):
+            b = min(step, n_boot - b0)
+            out[b0 : b0 + b] = resample_counts(rng, P, b) @ X / P  # (b, P) times each prompt is drawn
 
+    out = np.empty((n_boot, T, K))
     if paired:
         P = per_prompt[0].shape[0]
-        X = np.stack(per_prompt, axis=1).reshape(P, T * K)  # (P, T, K) -> (P, T*K)
-        return (counts(P) @ X / P).reshape(n_boot, T, K)  # (B, T*K) -> (B, T, K)
-    out = np.empty((n_boot, T, K))
+        means(np.stack(per_prompt, axis=1).reshape(P, T * K), out.reshape(n_boot, T * K))  # (P, T, K) -> (P, T*K)
+        return out
     for t, v in enumerate(per_prompt):
-        out[:, t, :] = counts(v.shape[0]) @ v / v.shape[0]
+        block = np.empty((n_boot, K))
+        means(v, block)
+        out[:, t, :] = block
     return out
 
 

@@ -20,7 +20,7 @@ from typing import Any, Callable, Sequence
 
 import numpy as np
 
-from bonft._core.checks import check_fraction, check_int
+from bonft._core.checks import MAX_POOL, check_bound, check_fraction, check_int, check_n_boot, check_seed
 
 PROMPT_CHUNK = 16  # prompts per sampling call: the progress bar's step, and part of each chunk's seed
 
@@ -93,8 +93,8 @@ def draw_samples(
     from bonft.verifiers import score_batch
 
     temps = _check_temperatures(temperatures)
-    n = check_int("n", n, min=1)
-    seed = check_int("seed", seed, min=0)
+    n = check_bound("n", n, max=MAX_POOL, why="samples per prompt: a pool is sampled, scored and planned over at once")
+    seed = check_seed(seed)
     top_p = check_fraction("top_p", top_p, open_low=True)
     max_new_tokens = check_int("max_new_tokens", max_new_tokens, min=1)
     if isinstance(prompts, str) or not all(isinstance(p, str) for p in prompts):
@@ -193,6 +193,10 @@ def plan_model(
     """
     from bonft.plan.sweep import plan_samples
 
+    if "n_boot" in plan_kwargs:  # the planner's knobs before any sampling (plan_samples checks them all again)
+        check_n_boot(plan_kwargs["n_boot"], min=10)
+    if plan_kwargs.get("max_k") is not None and check_int("max_k", plan_kwargs["max_k"], min=1) > n:
+        raise ValueError(f"max_k must be <= n (n={n}, the samples drawn per prompt), got max_k={plan_kwargs['max_k']}")
     table, info = draw_samples(model, tokenizer, prompts, verifier, temperatures=temperatures, n=n, seed=seed,
                                top_p=top_p, max_new_tokens=max_new_tokens, batch_size=batch_size,
                                cache_dir=cache_dir, verifier_name=verifier_name, progress=progress)

@@ -37,7 +37,18 @@ from typing import Any, Mapping, Sequence
 
 import numpy as np
 
-from bonft._core.checks import as_float_array, check_finite, check_fraction, check_int, check_positive, check_real
+from bonft._core.checks import (
+    MAX_POOL,
+    as_float_array,
+    check_bound,
+    check_finite,
+    check_fraction,
+    check_int,
+    check_n_boot,
+    check_positive,
+    check_real,
+    check_seed,
+)
 from bonft.plan.decisions import bootstrap_means, finish, fit_best_temperature
 from bonft.plan.result import BudgetChoice, DoublingStep, PlanResult, TemperatureFit
 
@@ -84,6 +95,23 @@ def _check_temperatures(temperatures: Any) -> np.ndarray:
     if len(set(temps)) != len(temps):
         raise ValueError(f"temperatures must be distinct, got {temps}")
     return np.asarray(temps, dtype=np.float64)
+
+
+MAX_BOOT_CELLS = 2**27  # entries of the (n_boot, temperatures, k) bootstrap table: 1 GiB of float64
+
+
+def _check_boot_table(n_boot: int, n_temps: int, max_k: int) -> None:
+    """The bootstrap table (n_boot, T, K) is held in memory at once: at most MAX_BOOT_CELLS entries."""
+    cells = n_boot * n_temps * max_k
+    if cells > MAX_BOOT_CELLS:
+        raise ValueError(
+            f"n_boot x temperatures x max_k must be <= {MAX_BOOT_CELLS:,} (the bootstrap table of every resample, "
+            f"temperature and k is held in memory at once, 1 GiB of float64), got {n_boot:,} x {n_temps} x {max_k} "
+            f"= {cells:,}; lower n_boot or max_k")
+
+
+def _check_max_k(max_k: Any) -> int:
+    return check_bound("max_k", max_k, max=MAX_POOL, why="one value per k is computed, tabulated and bootstrapped")
 
 
 def _check_budgets(name: str, budgets: Any, *, integer: bool) -> list:
@@ -157,9 +185,11 @@ def plan_pools(
         if not isinstance(p, Pools):
             raise TypeError(f"pools[{t:g}] must be a Pools, got {type(p).__name__}")
     confidence = check_fraction("confidence", confidence, open_low=True, open_high=True)
-    n_boot = check_int("n_boot", n_boot, min=10)
-    seed = check_int("seed", seed, min=0)
+    n_boot = check_n_boot(n_boot, min=10)
+    seed = check_seed(seed)
     min_gain = check_real("min_gain", min_gain)
+    if max_k is not None:
+        _check_boot_table(n_boot, len(temps), _check_max_k(max_k))
     b_samples = _check_budgets("budget_samples", budget_samples, integer=True)
     b_tokens = _check_budgets("budget_tokens", budget_tokens, integer=False)
 
@@ -184,7 +214,7 @@ def plan_pools(
     k_cap = int(n_min.min())
     if max_k is None:
         max_k = k_cap
-    max_k = check_int("max_k", max_k, min=1)
+    max_k = _check_max_k(max_k)
     if max_k > k_cap:
         t_small = temps[int(np.argmin(n_min))]
         raise ValueError(
@@ -196,6 +226,7 @@ def plan_pools(
     if b_tokens and mean_tokens is None:
         missing = [f"{t:g}" for t, p in zip(temps, items) if p.mean_tokens is None]
         raise ValueError(f"budget_tokens needs the mean response length at every temperature, missing at {missing} (n_tokens)")
+    _check_boot_table(n_boot, len(temps), max_k)
 
     ks = np.arange(1, max_k + 1)
     per_prompt = []  # T arrays of (P_t, K)
@@ -252,6 +283,9 @@ def plan_samples(
     """
     from bonft.io import group_pools, temperatures_of
 
+    check_n_boot(n_boot, min=10), check_seed(seed)  # the knobs before any work (plan_pools checks them all again)
+    if max_k is not None:
+        _check_max_k(max_k)
     if getattr(table, "temperatures", None) is None:
         raise ValueError("table must have a temperature column (temperature_field) to plan over temperatures, got none")
     present = [float(t) for t in temperatures_of(table)]
@@ -319,7 +353,7 @@ def plan_exact(
     temps = _check_temperatures(temperatures)
     if (logits is None) == (probs is None):
         raise ValueError("plan_exact needs exactly one of logits or probs, got " + ("both" if logits is not None else "neither"))
-    max_k = check_int("max_k", max_k, min=1)
+    max_k = _check_max_k(max_k)
     b_samples = _check_budgets("budget_samples", budget_samples, integer=True)
     b_tokens = _check_budgets("budget_tokens", budget_tokens, integer=False)
     if logits is not None:

@@ -45,12 +45,14 @@ import numpy as np
 import torch
 
 from bonft._core.checks import (
+    MAX_SUBSETS_BOUND,
     as_float_array,
+    check_bound,
     check_choice,
     check_finite,
-    check_int,
     check_k,
     check_ks,
+    check_seed,
     is_tensor,
     torch_out_dtype,
 )
@@ -267,7 +269,8 @@ def _weighted_f(idx: np.ndarray, codes: np.ndarray, s: np.ndarray, r: np.ndarray
 
 
 def _check_budget(max_subsets, seed) -> tuple[int, int]:
-    return check_int("max_subsets", max_subsets, min=2), check_int("seed", seed, min=0)
+    why = "each sampled subset draws n random keys at once; 10^6 subsets put the standard error near sd(f) / 1000"
+    return check_bound("max_subsets", max_subsets, min=2, max=MAX_SUBSETS_BOUND, why=why), check_seed(seed)
 
 
 def weighted_vote_per_prompt(answers, scores, rewards, *, ks, max_subsets=MAX_SUBSETS, seed=0, conflicts="error"):

@@ -205,7 +205,7 @@ def validate(c: TrainConfig) -> None:
     for name in ("threads", "prompts_per_step", "grad_accum", "max_new_tokens", "train_prompts", "heldout_prompts", "eval_samples",
                  "warm_start_batch_size", "keep_checkpoints", "layers", "width", "heads", "max_positions", "n_boot"):
         check_int(name, getattr(c, name), min=1)
-    check_int("n_boot", c.n_boot, max=1_000_000)  # more replicates cost memory and time and move no interval
+    check_work_sizes(c)
     if c.prompts_per_step % c.grad_accum:
         raise ValueError(f"prompts_per_step must be divisible by grad_accum (grad_accum={c.grad_accum}), got prompts_per_step={c.prompts_per_step}")
     for name in ("lr", "warm_start_lr", "temperature", "eval_temperature", "adam_eps"):
@@ -226,6 +226,38 @@ def validate(c: TrainConfig) -> None:
     if c.warm_start_steps == 0 and c.rl_steps == 0 and not c.start_from:
         raise ValueError("nothing to train: warm_start_steps and rl_steps are both 0 (set one, e.g. --set rl_steps=100)")
     check_task_sizes(c)
+
+
+def check_work_sizes(c: TrainConfig) -> None:
+    """The keys that size a step's work or memory, each against its documented bound (bonft._core.checks)."""
+    import os
+
+    from bonft._core.checks import (
+        MAX_POOL,
+        MAX_PROMPTS_PER_STEP,
+        MAX_SAMPLES_AT_ONCE,
+        check_bound,
+        check_n_boot,
+        check_seed,
+    )
+
+    check_seed(c.seed)
+    check_n_boot(c.n_boot)
+    pool = "samples per prompt: a pool is sampled, scored and credited at once"
+    check_bound("n", c.n, max=MAX_POOL, why=pool)
+    check_bound("eval_samples", c.eval_samples, max=MAX_POOL, why=pool)
+    check_bound("prompts_per_step", c.prompts_per_step, max=MAX_PROMPTS_PER_STEP,
+                why="a step holds every prompt's pool until its update")
+    at_once = -(-c.prompts_per_step // c.grad_accum) * c.n
+    if at_once > MAX_SAMPLES_AT_ONCE:
+        raise ValueError(
+            f"prompts_per_step / grad_accum x n must be <= {MAX_SAMPLES_AT_ONCE:,} responses (a micro-batch samples "
+            f"them together, each with a row of logits per decoding step), got {c.prompts_per_step:,} / "
+            f"{c.grad_accum} x {c.n:,} = {at_once:,}; raise grad_accum or lower n")
+    cores = os.cpu_count() or 1
+    if c.threads > cores:
+        raise ValueError(f"threads must be <= {cores} (the cores of this machine, os.cpu_count(); more threads than "
+                         f"cores only contend, and the BLAS library fails on very large counts), got threads={c.threads}")
 
 
 PROBE_DRAWS = 50_000  # sizes above this are checked against a probe of the task before any prompt is kept
