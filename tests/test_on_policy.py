@@ -236,6 +236,16 @@ def test_report_table_dict_and_state(flat):
     assert torch.equal(again.draws[0]["response_ids"], r.draws[0]["response_ids"])
 
 
+def test_prompts_from_a_tokenizer_trained_on_the_spot(flat):
+    from tokenizers import Tokenizer, models, pre_tokenizers
+
+    tok = Tokenizer(models.WordLevel({"[UNK]": 1, "add": 7, "two": 8, "numbers": 9}, unk_token="[UNK]"))
+    tok.pre_tokenizer = pre_tokenizers.Whitespace()
+    r = check_on_policy(flat, ["add two numbers", "two"], tokenizer=tok, n=2, max_new_tokens=2, top_k=0)
+    assert [d["input_ids"][0].tolist() for d in r.draws] == [[7, 8, 9], [8]]  # Encoding.ids, as WordLevel maps them
+    assert r.ok
+
+
 # ---------------------------------------------------------------- bad input
 
 

@@ -450,7 +450,8 @@ def _summarise(draws, settings, max_missing_mass, max_kl) -> OnPolicyReport:
         reasons.append(f"{first['draws']} first tokens per prompt left {first['unseen_loss_mass']:.2%} of the loss's "
                        f"mass undrawn where the stated law leaves {first['expected']:.2%}: the sampler is narrower "
                        f"than temperature={settings['temperature']:g}, top_k={settings['top_k']}, "
-                       f"top_p={settings['top_p']:g} (generate keeps the top 50 tokens when top_k is not given)")
+                       f"top_p={settings['top_p']:g} (generate, when not given top_k, keeps the top "
+                       f"model.generation_config.top_k tokens, else 50)")
     if norm_err > NORM_TOL:
         reasons.append(f"the loss's probabilities over the vocabulary sum to 1 +- {norm_err:.3g} (> {NORM_TOL:g}): "
                        f"logprob_fn does not return normalised log-probs")
