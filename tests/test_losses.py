@@ -390,7 +390,7 @@ def test_empty_responses_and_single_samples_are_errors_by_default():
     assert torch.isfinite(loss)
     with pytest.raises(ValueError, match=r"mask must mark at least one token per sequence, got an all-zero row at index \(1,\)"):
         nll_loss(lp[:, 0], mask=torch.tensor([[True, True, False, False], [False] * 4]))
-    # leave-one-out with one sample per prompt has nothing to leave out (was a silent zero loss)
+    # leave-one-out with one sample per prompt has nothing to leave out: an error, not a silent zero loss
     with pytest.raises(ValueError, match=r"n must be >= 2 for the leave-one-out baseline of reinforce_credit .* "
                                          r"draw n >= 2 samples per prompt or use baseline='none'"):
         reinforce_loss(lp[:, :1], R[:, :1], mask=mask[:, :1])
