@@ -61,6 +61,14 @@ def test_end_to_end_writes_everything(reference):
     assert {"time/sample", "time/score", "time/forward", "time/credit", "time/backward", "time/optimizer", "time/step",
             "samples_per_s", "reward", "k", "grad/norm", "grad/clipped"} <= rl.keys()
     assert "grad/snr" not in rl  # opt-in (snr_every)
+    # every other metric is a plain step figure or carries a prefix saying what it describes (bonft.trainer.metrics);
+    # none falls back to loss/ (a loss statistic the metric table does not name)
+    plain = {"kind", "stage", "step", "lr", "loss", "reward", "score", "k", "verifier_failures", "samples_per_s",
+             "nll_per_token"}
+    prefixes = {"time", "credit", "pool", "grad", "tokens", "anchor", "reference", "ratio"}
+    named = sorted({key for r in train_lines for key in r if key not in plain})
+    assert [key for key in named if key.split("/")[0] not in prefixes] == []
+    assert "pool/value" in rl and "pool/with_signal" in rl and any(key.startswith("credit/") for key in rl)
     # the split adds up to the step: its phases are disjoint parts of time/step
     parts = sum(rl[f"time/{p}"] for p in ("sample", "score", "forward", "credit", "backward", "optimizer"))
     assert parts <= rl["time/step"] and rl["samples_per_s"] == pytest.approx(4 * 4 / rl["time/step"])
