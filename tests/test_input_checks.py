@@ -370,3 +370,22 @@ def test_planner_sizes_are_bounded_before_any_work():
         plan_model(None, None, ["a"], lambda p, r: r, temperatures=[1.0], n=4, n_boot=2 * 10**7)
     with pytest.raises(ValueError, match=r"^max_k must be <= n \(n=4, the samples drawn per prompt\), got max_k=8$"):
         plan_model(None, None, ["a"], lambda p, r: r, temperatures=[1.0], n=4, max_k=8)
+
+
+# ----------------------------------------------------------------------------- recipes
+def test_a_binary_or_non_utf8_recipe_names_the_file(tmp_path):
+    from bonft.trainer.config import load_config
+
+    binary = tmp_path / "model.bin"
+    binary.write_bytes(b"PK\x03\x04" + bytes(range(256)))  # a zip archive's first bytes, then every byte value
+    with pytest.raises(ValueError, match=rf"^recipe {binary} is a binary file \(a NUL byte at offset 4\), not a TOML text recipe$"):
+        load_config(binary)
+    latin = tmp_path / "latin1.toml"
+    latin.write_bytes(b'rl_steps = 1\nname = "caf\xe9"\n')
+    with pytest.raises(ValueError, match=rf"^recipe {latin} is not UTF-8 text \(byte 0xe9 on line 2\): a TOML recipe is UTF-8 "
+                                         r"text; is it the right file\?$"):
+        load_config(latin)
+    code, err = _cli("train", binary)
+    assert code == 2 and err == f"bonft train: error: recipe {binary} is a binary file (a NUL byte at offset 4), not a TOML text recipe"
+    latin.write_bytes('rl_steps = 1\nname = "café"\n'.encode())  # the same recipe in UTF-8 reads
+    assert load_config(latin).name == "café"

@@ -404,8 +404,15 @@ def read_recipe(path: str | Path) -> dict:
     path = Path(path)
     if not path.is_file():
         raise FileNotFoundError(f"recipe not found: {path}")
+    raw = path.read_bytes()
+    if b"\x00" in raw:  # TOML text never holds a NUL byte: a checkpoint, an archive, a model file...
+        raise ValueError(f"recipe {path} is a binary file (a NUL byte at offset {raw.index(0)}), not a TOML text recipe")
     try:
-        values = tomllib.loads(path.read_text())
+        values = tomllib.loads(raw.decode("utf-8"))
+    except UnicodeDecodeError as e:
+        line = raw.count(b"\n", 0, e.start) + 1
+        raise ValueError(f"recipe {path} is not UTF-8 text (byte {raw[e.start]:#04x} on line {line}): a TOML recipe is "
+                         f"UTF-8 text; is it the right file?") from None
     except tomllib.TOMLDecodeError as e:
         raise ValueError(f"{path}: not valid TOML: {e}") from None
     return current_keys(values)
