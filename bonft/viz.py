@@ -1,11 +1,11 @@
 """Every figure bonft draws (matplotlib, Agg backend, PNG).
 
 * :func:`plot_bon_curves` -- best-of-k and oracle pass@k curves of
-  :class:`bonft.estimate.CurveSummary` objects, with their intervals (``bonft estimate --plot``);
+  :class:`bonft.estimate.CurveSummary` objects, with their intervals (``bonft estimate --plot-dir``);
 * :func:`plot_plan_heatmap`, :func:`plot_plan_curves` -- a :class:`bonft.plan.PlanResult`
   over temperature and k (``bonft plan --plot-dir``);
 * :func:`plot_evaluations`, :func:`plot_comparison` -- the trainer's evaluations of one
-  run and of several policies (``bonft train``, ``bonft eval --plot``, ``bonft demo``);
+  run and of several policies (``bonft train``, ``bonft eval --plot-dir``, ``bonft demo``);
 * :func:`plot_verifier_check` -- a verifier check's best-of-k against the oracle;
 * :func:`plot_objective_check` -- an objective check's estimated against exact gradient components.
 
@@ -316,7 +316,7 @@ def plot_strategy_curves(curves: dict, path, *, title: str | None = None) -> str
     """V_k against k for each strategy of each labelled :class:`bonft.strategies.curves.StrategyCurves`.
 
     One panel per label (a temperature, a policy), one line per strategy with its bootstrap band
-    (``bonft estimate --strategy ... --plot``, ``bonft plan --strategy ... --plot-dir``).
+    (``bonft estimate --strategy ... --plot-dir``, ``bonft plan --strategy ... --plot-dir``).
     """
     plt = _plt()
     labels = list(curves)

@@ -174,7 +174,7 @@ def _restore(run: Run, resume: bool) -> tuple[int, dict | None]:
         if resume and ckpt is None and not problem and (out / "summary.json").exists():
             problem = f"--resume: {out} holds a finished run without checkpoints"
         elif not resume and (out / "checkpoints").exists():
-            problem = f"run_dir {str(out)!r} already holds checkpoints; pass --resume or choose another --out"
+            problem = f"run_dir {str(out)!r} already holds checkpoints; pass --resume or choose another --output"
     ckpt, problem = broadcast_object((ckpt, problem), run.ctx)
     if problem:
         raise ValueError(problem)
