@@ -40,7 +40,7 @@ def test_tiny_demo_end_to_end(tmp_path):
         g = summary["gradients"][name]
         rows = [json.loads(ln) for ln in (out / name / "metrics.jsonl").read_text().splitlines()]
         rl = [r for r in rows if r.get("kind") == "train" and r.get("stage") == "rl"]
-        assert [r["step"] for r in rl] == [4, 5] and all(r["grad/clipped"] == 0 for r in rl)
+        assert [r["step"] for r in rl] == [1, 2] and all(r["grad/clipped"] == 0 for r in rl)
         assert g["grad_snr"] == np.median([r["grad/snr"] for r in rl])
         assert g["grad_norm"] == np.median([r["grad/norm"] for r in rl]) and g["clipped"] == 0.0
     assert set(summary["best_temperature"]) == {"warm_start", "pass_at_k"}
