@@ -34,15 +34,8 @@ from typing import Any
 
 import torch
 
-from bonft._core.checks import (
-    as_float_array,
-    check_finite,
-    check_int,
-    check_nonempty,
-    check_positive,
-    check_probs,
-    is_tensor,
-)
+from bonft._core.checks import check_finite, check_int, check_nonempty, check_positive, is_tensor
+from bonft._core.outcomes import as_float64_tensor, check_outcome_values, check_policy_probs, returned_like
 from bonft._core.passk import pass_at_k_prob
 from bonft._core.ties import first_of_group, group_ids
 
@@ -59,57 +52,11 @@ _LN2 = math.log(2.0)
 _TINY = 1e-300  # keeps log(-expm1(x)) finite when x rounds to 0
 
 
-# ----------------------------------------------------------------- validation (shared with bonft.strategies.exact)
-
-
-def _as_tensor(name: str, x: Any, device: torch.device | None) -> torch.Tensor:
-    """float64 tensor; keeps autograd for tensors, converts everything else."""
-    if is_tensor(x):
-        if x.is_complex():
-            raise TypeError(f"{name} must be a real array, got complex tensor of dtype {x.dtype}")
-        return x.to(dtype=torch.float64, device=device if device is not None else x.device)
-    arr = as_float_array(name, x)
-    return torch.as_tensor(arr, dtype=torch.float64, device=device)
-
-
-def check_policy_probs(probs: Any) -> tuple[torch.Tensor, bool]:
-    """A policy ``probs (..., V)`` checked (finite, non-negative, rows sum to 1) -> (float64 tensor, whether to hand back numpy)."""
-    p = _as_tensor("probs", probs, None)
-    if p.ndim < 1:
-        raise ValueError(f"probs must have at least 1 dimension (..., V), got shape {tuple(p.shape)}")
-    check_nonempty("probs", p)
-    check_probs("probs", p)
-    return p, not is_tensor(probs)
-
-
-def check_outcome_values(name: str, x: Any, p: torch.Tensor, *others: torch.Tensor) -> torch.Tensor:
-    """scores / rewards: last axis V like probs, leading axes broadcast with probs (and others)."""
-    t = _as_tensor(name, x, p.device)
-    V = p.shape[-1]
-    if t.ndim < 1 or t.shape[-1] != V:
-        raise ValueError(
-            f"{name} must have shape (..., V) with V={V} like probs {tuple(p.shape)}, got shape {tuple(t.shape)}"
-        )
-    shapes = [p.shape, *(o.shape for o in others)]
-    try:
-        torch.broadcast_shapes(t.shape, *shapes)
-    except RuntimeError:
-        want = " and ".join(str(tuple(sh)) for sh in shapes)
-        raise ValueError(f"{name} must broadcast against probs/scores {want}, got shape {tuple(t.shape)}") from None
-    check_finite(name, t)
-    return t
+# ----------------------------------------------------------------- validation
 
 
 def _check_k(k: Any) -> int:
     return check_int("k", k, min=1)
-
-
-def returned_like(t: torch.Tensor, as_numpy: bool):
-    """A result in the caller's kind: numpy (a 0-d result as a numpy scalar) when ``as_numpy``, else the tensor."""
-    if not as_numpy:
-        return t
-    a = t.detach().cpu().numpy()
-    return a[()] if a.ndim == 0 else a
 
 
 # ----------------------------------------------------------------------- math
@@ -187,7 +134,7 @@ def softmax_policy(logits, *, temperature=1.0):
     References: Bridle 1990 (softmax); temperature sampling is common practice.
     """
     T = check_positive("temperature", temperature)
-    z = _as_tensor("logits", logits, None)
+    z = as_float64_tensor("logits", logits, None)
     if z.ndim < 1:
         raise ValueError(f"logits must have at least 1 dimension (..., V), got shape {tuple(z.shape)}")
     check_nonempty("logits", z)
@@ -277,7 +224,7 @@ def best_of_k_success(p, *, k):
     scalar = isinstance(p, numbers.Real) and not isinstance(p, bool)
     if isinstance(p, bool):
         raise TypeError("p must be a probability (number or array), got bool")
-    t = _as_tensor("p", p, None)
+    t = as_float64_tensor("p", p, None)
     check_finite("p", t)
     td = t.detach()
     if t.numel() and bool(((td < 0) | (td > 1)).any()):

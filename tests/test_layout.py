@@ -11,7 +11,7 @@ from pathlib import Path
 import pytest
 
 PKG = Path(__file__).resolve().parents[1] / "bonft"
-MATH = ("bon", "estimate", "credit", "losses", "strategies", "vote_estimate", "strategy_curves")
+MATH = ("bon", "estimate", "objectives", "strategies")  # modules and packages (every module inside is read)
 BELOW = ("trainer", "plan", "cli", "viz", "tasks")
 
 
@@ -40,10 +40,15 @@ def _closure(names: tuple[str, ...]) -> dict[str, set[str]]:
         mod = todo.pop()
         if mod in seen:
             continue
-        path = PKG.parent / (mod.replace(".", "/") + ".py")
-        if not path.exists():
+        base = PKG.parent / mod.replace(".", "/")
+        if base.with_suffix(".py").exists():
+            path, package = base.with_suffix(".py"), mod.rsplit(".", 1)[0]
+        elif (base / "__init__.py").exists():  # a package: its __init__ and every module in it
+            path, package = base / "__init__.py", mod
+            todo += [f"{mod}.{f.stem}" for f in base.glob("*.py") if f.stem != "__init__"]
+        else:
             continue
-        seen[mod] = _imports(path, mod.rsplit(".", 1)[0])
+        seen[mod] = _imports(path, package)
         todo += [m for m in seen[mod] if m.startswith("bonft.")]
     return seen
 
@@ -77,24 +82,28 @@ DATA_ARGS = {  # the positional (data) parameters of each public function; every
     "bon": {"softmax_policy": ["logits"], "best_of_k_distribution": ["probs", "scores"],
             "log_best_of_k_distribution": ["probs", "scores"], "best_of_k_value": ["probs", "scores", "rewards"],
             "best_of_k_success": ["p"], "best_of_k_kl": ["probs", "scores"]},
-    "estimate": {"best_of_k": ["scores", "rewards"], "best_of_k_per_prompt": ["scores", "rewards"],
-                 "pass_at_k_per_prompt": ["rewards"], "pass_at_k": ["n", "c"], "bootstrap_ci": ["values"],
-                 "summarize": ["scores", "rewards"], "default_ks": ["n_min"]},
-    "credit": {"best_of_k_credit": ["scores", "rewards"], "pass_at_k_credit": ["correct"],
+    "estimate.bestofk": {"best_of_k": ["scores", "rewards"], "best_of_k_per_prompt": ["scores", "rewards"],
+                         "pass_at_k_per_prompt": ["rewards"]},
+    "estimate.passk": {"pass_at_k": ["n", "c"]},
+    "estimate.intervals": {"bootstrap_ci": ["values"], "summarize": ["scores", "rewards"],
+                           "default_ks": ["smallest_pool"]},
+    "objectives.credit": {"best_of_k_credit": ["scores", "rewards"], "pass_at_k_credit": ["correct"],
                "best_of_k_sft_credit": ["scores", "reference_scores"], "reinforce_credit": ["rewards"],
                "pool_value": ["scores", "rewards"]},
-    "losses": {"policy_gradient_loss": ["logprobs", "credit"], "best_of_k_loss": ["logprobs", "scores", "rewards"],
+    "objectives.losses": {"policy_gradient_loss": ["logprobs", "credit"], "best_of_k_loss": ["logprobs", "scores", "rewards"],
                "pass_at_k_loss": ["logprobs", "correct"],
                "best_of_k_sft_loss": ["logprobs", "scores", "reference_logprobs", "reference_scores"],
                "reinforce_loss": ["logprobs", "rewards"], "nll_loss": ["logprobs"]},
-    "strategies": {"vote_value": ["probs", "answers", "rewards"],
-                   "weighted_vote_value": ["probs", "answers", "scores", "rewards"], "get_strategy": ["strategy"],
-                   "strategy_value": ["strategy", "probs"], "strategy_loss": ["logprobs", "scores", "rewards"]},
-    "vote_estimate": {"vote_at_k_per_prompt": ["answers", "rewards"], "vote_credit": ["answers", "rewards"],
-                      "weighted_vote_at_k_per_prompt": ["answers", "scores", "rewards"],
-                      "weighted_vote_credit": ["answers", "scores", "rewards"], "strategy_at_k": ["strategy"],
-                      "strategy_credit": ["strategy", "scores", "rewards"]},
-    "strategy_curves": {"compare_strategies": ["strategies"]},
+    "strategies.base": {"get_strategy": ["strategy"], "strategy_value": ["strategy", "probs"],
+                        "strategy_per_prompt": ["strategy"], "strategy_credit": ["strategy", "scores", "rewards"]},
+    "strategies.exact": {"majority_vote_value": ["probs", "answers", "rewards"],
+                         "weighted_vote_value": ["probs", "answers", "scores", "rewards"]},
+    "strategies.estimators": {"majority_vote_per_prompt": ["answers", "rewards"],
+                              "majority_vote_credit": ["answers", "rewards"],
+                              "weighted_vote_per_prompt": ["answers", "scores", "rewards"],
+                              "weighted_vote_credit": ["answers", "scores", "rewards"]},
+    "strategies.loss": {"strategy_loss": ["logprobs", "scores", "rewards"]},
+    "strategies.curves": {"compare_strategies": ["strategies"]},
 }
 NOT_MATH = {"get_strategy"}  # a name lookup: no shapes, no formula
 
@@ -114,7 +123,7 @@ def test_public_functions_take_hyper_parameters_by_keyword_only(module):
         assert positional == DATA_ARGS[module][name], f"{module}.{name}: positional {positional}"
         rest = [p for p in params if p.name not in positional]
         assert all(p.kind in (p.KEYWORD_ONLY, p.VAR_KEYWORD) for p in rest), f"{module}.{name}: {[(p.name, p.kind) for p in rest]}"
-        if module == "losses" or name == "strategy_loss":  # the loss convention: logprobs first, info only on request
+        if module.endswith("losses") or name == "strategy_loss":  # the loss convention: logprobs first, info only on request
             assert positional[0] == "logprobs" and "return_info" in {p.name for p in rest}, name
 
 

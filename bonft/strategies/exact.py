@@ -32,7 +32,7 @@ import numpy as np
 import torch
 
 from bonft._core.checks import check_choice, check_int, is_tensor
-from bonft.bon import check_outcome_values, check_policy_probs, returned_like
+from bonft._core.outcomes import check_outcome_values, check_policy_probs, returned_like
 from bonft.strategies.counting import policy_majority_value, weighted_vote_weights
 
 __all__ = ["majority_vote_value", "weighted_vote_value", "CONFLICT_RULES"]
