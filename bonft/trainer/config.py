@@ -75,12 +75,19 @@ class TrainConfig:
 
     # --- run ---
     name: str = _f("run", "A label for the run, written into metrics and summaries.", group="run")
-    seed: int = _f(0, "Seed of the run. The RNG of every step is derived from (seed, step, rank), so a resumed run draws what an uninterrupted one would.", group="run")
+    seed: int = _f(0,
+                   "Seed of the run. The RNG of every step is derived from (seed, step, rank), so a resumed run"
+                   " draws what an uninterrupted one would.", group="run")
     run_dir: str = _f("runs/run", "Directory for metrics.jsonl, checkpoints/, plots and summary.json.", group="run")
     device: str = _f("cpu", "'cpu', 'cuda' or 'auto'.", group="run")
-    threads: int = _f(1, "torch intra-op threads (>= 1). Tiny models run fastest single-threaded; use the other cores for parallel runs.", group="run")
+    threads: int = _f(1,
+                      "torch intra-op threads (>= 1). Tiny models run fastest single-threaded; use the other "
+                      "cores for parallel runs.", group="run")
     # --- model ---
-    start_from: str = _f("", "Start from this model: a bonft checkpoint directory or a local transformers directory. Empty = build a tiny model from the fields below (setting those together with start_from is an error: the model comes from start_from).", group="model")
+    start_from: str = _f("",
+                         "Start from this model: a bonft checkpoint directory or a local transformers "
+                         "directory. Empty = build a tiny model from the fields below (setting those together "
+                         "with start_from is an error: the model comes from start_from).", group="model")
     arch: str = _f("gpt2", "Tiny model family when building from scratch: 'gpt2' or 'llama'.", group="model")
     layers: int = _f(2, "Transformer layers of the tiny model.", group="model")
     width: int = _f(128, "Width of the tiny model.", group="model")
@@ -88,51 +95,96 @@ class TrainConfig:
     max_positions: int = _f(96, "Context length of the tiny model (prompt + response tokens).", group="model")
     # --- task ---
     task: str = _f("ledger", "Built-in task name (see docs/tasks.md), or 'jsonl' to read prompts_file.", group="task")
-    task_params: dict = _f({}, "Task knobs passed to get_task(task, **task_params), e.g. [task_params] hard_share = 0.3.", group="task")
-    prompts_file: str = _f("", "With task = 'jsonl': local JSONL with 'prompt' and 'answer' fields; trained and evaluated by exact match.", group="task")
+    task_params: dict = _f({},
+                           "Task knobs passed to get_task(task, **task_params), e.g. [task_params] hard_share ="
+                           " 0.3.", group="task")
+    prompts_file: str = _f("",
+                           "With task = 'jsonl': local JSONL with 'prompt' and 'answer' fields; trained and "
+                           "evaluated by exact match.", group="task")
     train_prompts: int = _f(2000, "Training prompts drawn from the task (old spelling: n_train).", group="task")
     heldout_prompts: int = _f(200, "Held-out evaluation prompts (old spelling: n_eval).", group="task")
-    verifier: str = _f("exact", "Verifier that trains: 'exact' (task answer check), 'proxy' (the task's imperfect proxy selects the best sample) or 'module:function'.", group="task")
+    verifier: str = _f("exact",
+                       "Verifier that trains: 'exact' (task answer check), 'proxy' (the task's imperfect proxy "
+                       "selects the best sample) or 'module:function'.", group="task")
     # --- warm start (supervised, on reference responses) ---
-    warm_start_steps: int = _f(0, "Supervised warm-start steps (NLL of the reference responses) before RL. 0 = skip. (old spelling: sft_steps)", group="warm_start")
-    warm_start_batch_size: int = _f(128, "Prompts per warm-start step (old spelling: sft_batch_size).", group="warm_start")
-    warm_start_lr: float = _f(3e-3, "Warm-start learning rate (AdamW, cosine decay to 10%) (old spelling: sft_lr).", group="warm_start")
+    warm_start_steps: int = _f(0,
+                               "Supervised warm-start steps (NLL of the reference responses) before RL. 0 = "
+                               "skip. (old spelling: sft_steps)", group="warm_start")
+    warm_start_batch_size: int = _f(128,
+                                    "Prompts per warm-start step (old spelling: sft_batch_size).", group="warm_start")
+    warm_start_lr: float = _f(3e-3,
+                              "Warm-start learning rate (AdamW, cosine decay to 10%) (old spelling: sft_lr).", group="warm_start")
     # --- RL stage ---
     objective: str = _f("pass_at_k", f"What the RL stage optimises: one of {', '.join(OBJECTIVES)}.", group="rl")
     rl_steps: int = _f(0, "RL optimizer steps. 0 = skip the RL stage.", group="rl")
     prompts_per_step: int = _f(16, "Prompts per RL optimizer step (global, over all ranks).", group="rl")
     n: int = _f(16, "Responses sampled per prompt.", group="rl")
-    k: int = _f(8, "k of best-of-k / pass@k that the objective targets (1 <= k <= n). It has no effect on reinforce, which targets the mean reward (pass@1).", group="rl")
-    k_final: int = _f(0, "k at the last RL step when annealing k (e.g. from k=16 toward 1). 0 = keep k constant.", group="rl")
+    k: int = _f(8,
+                "k of best-of-k / pass@k that the objective targets (1 <= k <= n). It has no effect on "
+                "reinforce, which targets the mean reward (pass@1).", group="rl")
+    k_final: int = _f(0,
+                      "k at the last RL step when annealing k (e.g. from k=16 toward 1). 0 = keep k constant.", group="rl")
     k_schedule: str = _f("constant", f"How k moves from k to k_final: one of {', '.join(K_SCHEDULES)}.", group="rl")
-    temperature: float = _f(1.0, "Sampling temperature of the training samples; log-probs are taken at the same temperature.", group="rl")
+    temperature: float = _f(1.0,
+                            "Sampling temperature of the training samples; log-probs are taken at the same "
+                            "temperature.", group="rl")
     top_p: float = _f(1.0, "Nucleus sampling threshold of training samples (1 = off).", group="rl")
     max_new_tokens: int = _f(8, "Longest response sampled (tokens, EOS included).", group="rl")
-    lr: float = _f(1e-4, "RL learning rate (constant after warmup_steps). With AdamW keep it well below the warm start's last learning rate: the RL stage starts with fresh moments, whose first steps move every weight by about lr.", group="rl")
+    lr: float = _f(1e-4,
+                   "RL learning rate (constant after warmup_steps). With AdamW keep it well below the warm "
+                   "start's last learning rate: the RL stage starts with fresh moments, whose first steps move "
+                   "every weight by about lr.", group="rl")
     warmup_steps: int = _f(10, "Linear learning-rate warm-up steps of the RL stage.", group="rl")
-    optimizer: str = _f("adamw", f"Optimizer of the RL stage: one of {', '.join(OPTIMIZERS)}. AdamW moves every weight by about lr per step even when the gradient is pure noise; SGD's step shrinks with the gradient. The warm start always uses AdamW.", group="rl")
-    adam_eps: float = _f(1e-8, "AdamW's epsilon in the RL stage (> 0). Large values (e.g. 1e-3) make steps of weights with small, noisy gradients proportional to the gradient, as SGD.", group="rl")
+    optimizer: str = _f("adamw",
+                        f"Optimizer of the RL stage: one of {', '.join(OPTIMIZERS)}. AdamW moves every weight by"
+                        f" about lr per step even when the gradient is pure noise; SGD's step shrinks with the "
+                        f"gradient. The warm start always uses AdamW.", group="rl")
+    adam_eps: float = _f(1e-8,
+                         "AdamW's epsilon in the RL stage (> 0). Large values (e.g. 1e-3) make steps of weights"
+                         " with small, noisy gradients proportional to the gradient, as SGD.", group="rl")
     momentum: float = _f(0.0, "SGD momentum in [0, 1) (optimizer = 'sgd' only).", group="rl")
     weight_decay: float = _f(0.0, "Weight decay (both stages; decoupled for AdamW, L2 for SGD).", group="rl")
     grad_accum: int = _f(1, "Micro-batches per optimizer step; prompts_per_step must divide evenly.", group="rl")
     clip_grad_norm: float = _f(1.0, "Clip the gradient's global norm to this value; 0 = no clipping.", group="rl")
-    anchor_weight: float = _f(0.0, "Weight of the KL penalty to the anchor, the policy at the start of the RL stage (saved in RUN/rl_start); 0 = none.", group="rl")
-    placebo: bool = _f(False, "Placebo control: shuffle the outcomes (score and reward together) within each pool before the credit, one seeded permutation per pool. Same credit sizes, zero expected update for leave-one-out credit: what noise alone does to the policy.", group="rl")
-    snr_every: int = _f(0, "Measure the gradient signal-to-noise ratio (metric grad/snr, see docs/training.md) every this many RL steps on the step's own samples; costs one extra forward and backward per prompt. 0 = never.", group="rl")
-    token_reduction: str = _f("sum", "'sum': sequence log-prob (unbiased policy gradient); 'mean': length-normalised (biased).", group="rl")
-    reward_source: str = _f("rewards", "'rewards': train on the verifier's true rewards where it reports them (task labels; the verifier still selects for best_of_k), else its scores; 'scores': train on the verifier's scores only (e.g. against a reward model; with verifier='proxy' this shows reward hacking).", group="rl")
-    correct_threshold: float = _f(0.5, "A sample counts as correct for pass@k objectives when its reward is >= this.", group="rl")
+    anchor_weight: float = _f(0.0,
+                              "Weight of the KL penalty to the anchor, the policy at the start of the RL stage "
+                              "(saved in RUN/rl_start); 0 = none.", group="rl")
+    placebo: bool = _f(False,
+                       "Placebo control: shuffle the outcomes (score and reward together) within each pool "
+                       "before the credit, one seeded permutation per pool. Same credit sizes, zero expected "
+                       "update for leave-one-out credit: what noise alone does to the policy.", group="rl")
+    snr_every: int = _f(0,
+                        "Measure the gradient signal-to-noise ratio (metric grad/snr, see docs/training.md) "
+                        "every this many RL steps on the step's own samples; costs one extra forward and "
+                        "backward per prompt. 0 = never.", group="rl")
+    token_reduction: str = _f("sum",
+                              "'sum': sequence log-prob (unbiased policy gradient); 'mean': length-normalised "
+                              "(biased).", group="rl")
+    reward_source: str = _f("rewards",
+                            "'rewards': train on the verifier's true rewards where it reports them (task "
+                            "labels; the verifier still selects for best_of_k), else its scores; 'scores': "
+                            "train on the verifier's scores only (e.g. against a reward model; with "
+                            "verifier='proxy' this shows reward hacking).", group="rl")
+    correct_threshold: float = _f(0.5,
+                                  "A sample counts as correct for pass@k objectives when its reward is >= this.", group="rl")
     # --- evaluation ---
-    eval_every: int = _f(0, "Evaluate every this many RL steps (and always before and after RL); 0 = only before and after.", group="eval")
-    eval_at_start: bool = _f(True, "Evaluate before the first RL step (the 'before' of a before/after comparison).", group="eval")
+    eval_every: int = _f(0,
+                         "Evaluate every this many RL steps (and always before and after RL); 0 = only before "
+                         "and after.", group="eval")
+    eval_at_start: bool = _f(True,
+                             "Evaluate before the first RL step (the 'before' of a before/after comparison).", group="eval")
     eval_samples: int = _f(64, "Samples per held-out prompt at evaluation (old spelling: eval_n).", group="eval")
-    eval_ks: list = _f([1, 4, 16, 32], "k values of the best-of-k / pass@k curves (each <= eval_samples).", group="eval")
+    eval_ks: list = _f([1, 4, 16, 32],
+                       "k values of the best-of-k / pass@k curves (each <= eval_samples).", group="eval")
     eval_temperature: float = _f(1.0, "Sampling temperature at evaluation.", group="eval")
-    eval_prompts: int = _f(0, "Evaluate on the first this many held-out prompts; 0 = all heldout_prompts.", group="eval")
+    eval_prompts: int = _f(0,
+                           "Evaluate on the first this many held-out prompts; 0 = all heldout_prompts.", group="eval")
     confidence: float = _f(0.95, "Confidence level of the bootstrap intervals.", group="eval")
     n_boot: int = _f(1000, "Bootstrap resamples of the intervals.", group="eval")
     # --- checkpoints and logging ---
-    save_every: int = _f(100, "Write a checkpoint every this many optimizer steps (both stages); 0 = only at the end and on Ctrl-C.", group="checkpoint")
+    save_every: int = _f(100,
+                         "Write a checkpoint every this many optimizer steps (both stages); 0 = only at the end"
+                         " and on Ctrl-C.", group="checkpoint")
     keep_checkpoints: int = _f(2, "How many recent checkpoints to keep (>= 1).", group="checkpoint")
     log_every: int = _f(10, "Write a metrics line every this many steps.", group="checkpoint")
     plots: bool = _f(True, "Write PNG plots of the evaluation curves.", group="checkpoint")
