@@ -206,7 +206,8 @@ def test_damaged_newest_checkpoint_falls_back_with_one_warning(trained, tmp_path
     rows = [json.loads(ln) for ln in (tmp_path / "s.jsonl").read_text().splitlines()]
     assert [r["sample"] for r in rows] == [0, 1, 0, 1]  # a sample index: identical answers are not repeated rows
     all_bad = damaged_copy(trained, tmp_path / "all_bad", which=("step-00000001", "step-00000002"))
-    for cmd in (["eval", all_bad, "--n", "2", "--ks", "1"], ["sample", all_bad, "-o", tmp_path / "t.jsonl"], ["plan", "--model", all_bad, "--task", "ledger"],
+    for cmd in (["eval", all_bad, "--n", "2", "--ks", "1"], ["sample", all_bad, "-o", tmp_path / "t.jsonl"],
+                ["plan", "--model", all_bad, "--task", "ledger"],
                 ["train", all_bad / "config.toml", "--resume", "--output", all_bad]):
         expect_error(cmd, r"no good checkpoint in \S+checkpoints: checkpoint \S+step-00000002 is damaged: .*; "
                           r"checkpoint \S+step-00000001 is damaged: model/model.safetensors has 10 bytes")

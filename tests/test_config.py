@@ -61,7 +61,8 @@ def test_overrides_convert_types():
     assert c.task_params == {"hard_share": 0.25}
 
 
-@pytest.mark.parametrize("item, match", [("n", r"--set expects key=value, got 'n'"), ("nn=3", r"--set key must be a config field"), ("n=many", r"n must be an int, got 'many'")])
+@pytest.mark.parametrize("item, match", [("n", r"--set expects key=value, got 'n'"), ("nn=3", r"--set key must be a config field"),
+                                         ("n=many", r"n must be an int, got 'many'")])
 def test_bad_overrides(item, match):
     with pytest.raises(ValueError, match=match):
         apply_overrides(BASE, [item])

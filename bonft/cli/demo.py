@@ -20,7 +20,8 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--seed", type=int, default=0, help="seed of model init, data split and sampling (default: 0)")
     p.add_argument("--set", dest="overrides", action="append", default=[], metavar="KEY=VALUE",
                    help="override a demo knob, e.g. --set rl_steps=300 (see bonft.trainer.demo.DemoConfig)")
-    p.add_argument("--study", action="store_true", help="5 seeds x (REINFORCE, pass@k, best-of-k with the proxy, k annealing, placebo); writes study.md")
+    p.add_argument("--study", action="store_true",
+                   help="5 seeds x (REINFORCE, pass@k, best-of-k with the proxy, k annealing, placebo); writes study.md")
     p.add_argument("--quiet", action="store_true", help="no progress bars")
 
 

@@ -4,6 +4,7 @@ from __future__ import annotations
 import argparse
 import json
 from pathlib import Path
+
 from bonft.cli._args import parse_list
 
 HELP = "evaluate a checkpoint: pass@k and best-of-k (per verifier) with CIs on held-out prompts"

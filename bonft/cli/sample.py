@@ -21,7 +21,8 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     add_common(p)
     p.add_argument("--temperatures", default="1.0", metavar="T1,T2", help="comma-separated sampling temperatures (default: 1.0)")
     p.add_argument("--verifier", default="auto",
-                   help="which verifier fills 'score': exact, proxy or a name of the run's verifiers (default: proxy if the task has one, else exact)")
+                   help="which verifier fills 'score': exact, proxy or a name of the run's verifiers "
+                        "(default: proxy if the task has one, else exact)")
     p.add_argument("-o", "--output", required=True, help="samples JSONL to write (written atomically)")
 
 
@@ -29,8 +30,8 @@ def run(args: argparse.Namespace) -> int:
     import torch
 
     from bonft._core.checks import check_int, check_positive
-    from bonft.trainer.evaluation import evaluate_policy
     from bonft.io import write_samples
+    from bonft.trainer.evaluation import evaluate_policy
     from bonft.trainer.loop import step_seed
 
     n = check_int("--n", args.n, min=1)
@@ -54,7 +55,8 @@ def run(args: argparse.Namespace) -> int:
         extract = getattr(r.task, "extract_answer", None)
         for b in range(len(held)):
             for i in range(n):
-                rows.append({"prompt_id": b, "prompt": held[b].prompt, "sample": i, "score": float(scores[b, i]), "reward": float(raw["rewards"][b, i]),
+                rows.append({"prompt_id": b, "prompt": held[b].prompt, "sample": i, "score": float(scores[b, i]),
+                             "reward": float(raw["rewards"][b, i]),
                              "temperature": t, "response": raw["texts"][b][i], "n_tokens": int(raw["n_tokens"][b, i]),
                              **({"answer": extract(raw["texts"][b][i])} if extract is not None else {})})
         print(f"T={t:g}: pass@1 {rep.mean_reward:.3f}, {rep.distinct_answers:.1f} distinct answers/prompt")
