@@ -94,6 +94,7 @@ DATA_ARGS = {  # the positional (data) parameters of each public function; every
                "pass_at_k_loss": ["logprobs", "correct"],
                "best_of_k_sft_loss": ["logprobs", "scores", "reference_logprobs", "reference_scores"],
                "reinforce_loss": ["logprobs", "rewards"], "nll_loss": ["logprobs"]},
+    "objectives.logprobs": {"token_logprobs": ["logits", "labels"]},
     "strategies.base": {"get_strategy": ["strategy"], "strategy_value": ["strategy", "probs"],
                         "strategy_per_prompt": ["strategy"], "strategy_credit": ["strategy", "scores", "rewards"]},
     "strategies.exact": {"majority_vote_value": ["probs", "answers", "rewards"],
@@ -124,7 +125,8 @@ def test_public_functions_take_hyper_parameters_by_keyword_only(module):
         rest = [p for p in params if p.name not in positional]
         assert all(p.kind in (p.KEYWORD_ONLY, p.VAR_KEYWORD) for p in rest), f"{module}.{name}: {[(p.name, p.kind) for p in rest]}"
         if module.endswith("losses") or name == "strategy_loss":  # the loss convention: logprobs first, info only on request
-            assert positional[0] == "logprobs" and "return_info" in {p.name for p in rest}, name
+            shared = any(p.kind == p.VAR_KEYWORD and p.name == "common" for p in rest)  # LossOptions' fields
+            assert positional[0] == "logprobs" and ("return_info" in {p.name for p in rest} or shared), name
 
 
 

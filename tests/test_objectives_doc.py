@@ -32,7 +32,7 @@ def test_own_loop_example_runs_trains_and_reuses():
     ns, out = run_own_loop_example()
     assert re.search(r"step 1: loss=-?\d+\.\d{4} pool V_2=\d\.\d{3} pools with signal=\d\.\d\d \|credit\|=\d\.\d{4} "
                      r"padding=\d\.\d\d\nstep 2 \(reused\): loss=-?\d+\.\d{4} ratio ESS=\d\.\d{3}\n$", out), out
-    B, n, P = ns["B"], ns["n"], ns["P"]
+    B, n = ns["B"], ns["n"]
     info, info2 = ns["info"], ns["info2"]
     assert all(isinstance(v, torch.Tensor) and not v.requires_grad for v in [*info.values(), *info2.values()])
     # the monitors against their definitions on the example's own pools (pool value: bonft.estimate's

@@ -124,7 +124,7 @@ def test_sequence_ratio_is_biased_for_best_of_k_and_the_bias_vanishes_on_policy(
 
 def test_clipping_bias_is_measured_and_zero_inside_the_band():
     # A clipped surrogate is biased when ratios leave the band and exact when they all stay inside.
-    V, n = 3, 3
+    n = 3
     theta = np.array([0.3, -0.5, 0.2])
     R = torch.tensor([1.0, 0.0, 0.5], dtype=torch.float64)
     want = -exact_grad(lambda th: (torch.softmax(th, -1) * R).sum(), theta)

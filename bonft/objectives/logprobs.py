@@ -53,6 +53,9 @@ def token_logprobs(logits, labels, *, temperature=1.0, ignore_index=-100, pool_s
     positions, a temperature that is not a finite number > 0, and a ``pool_size`` that
     does not divide ``N`` (or is given with 4-dimensional logits, where it is the
     second axis already).
+
+    References: the softmax at a temperature (common practice); Williams 1992 (the
+    score-function gradient these log-probs feed).
     """
     if not is_tensor(logits):
         raise TypeError(f"logits must be a torch.Tensor, got {type(logits).__name__}")
