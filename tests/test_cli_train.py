@@ -73,3 +73,13 @@ def test_bad_recipe_values_exit_2(argv, message, tmp_path, capsys):
 def test_eval_bad_ks(tmp_path, capsys):
     assert main(["eval", str(tmp_path), "--n", "4", "--ks", "1,8"]) == 2
     assert "--ks must be <= --n (n=4)" in capsys.readouterr().err
+
+
+def test_old_key_spelling_warns_on_the_command_line(tmp_path, capsys):
+    # the warning names the new key; the run then stops at the next problem (k > n), before any training
+    assert main(["train", str(RECIPES[0]), "--output", str(tmp_path / "x"), "--quiet", "--set", "n_train=40",
+                 "--set", "k=99"]) == 2
+    err = capsys.readouterr().err.splitlines()
+    assert err[0] == ("bonft train: warning: --set config key 'n_train' is now called 'train_prompts'; "
+                      "reading it as 'train_prompts'")
+    assert err[-1].startswith("bonft train: error: k must be <= n")
