@@ -1,4 +1,5 @@
-"""Built-in tasks (a small shop's ledger, its refunds and restock orders), the character tokenizer, user prompt sets.
+"""Built-in tasks (a small shop's ledger, its refunds and restock orders), the character tokenizer, user prompt sets
+(``UserTask``: a JSONL file or a local ``datasets`` dataset with a field map).
 
     task = get_task("ledger", hard_share=0.3)
     train, evals = task.split(n_train=2000, n_eval=200, seed=0)
@@ -15,12 +16,14 @@ from bonft.tasks.prompts import PromptFileTask, exact_match_verifier, load_promp
 from bonft.tasks.refunds import LastDigitCheck, RefundsTask
 from bonft.tasks.restock import RestockTask
 from bonft.tasks.tokenizer import build_tokenizer
+from bonft.tasks.user import UserTask
 
 TASKS: dict[str, type] = {
     "ledger": LedgerTask,
     "restock": RestockTask,
     "refunds": RefundsTask,
     "jsonl": PromptFileTask,
+    "user": UserTask,
 }
 
 
@@ -43,6 +46,6 @@ def get_task(name: str, **params: Any) -> Task:
 
 __all__ = [
     "TASKS", "get_task", "Task", "Example", "ExactVerifier", "extract_integer",
-    "LedgerTask", "LedgerPlausibility", "RefundsTask", "LastDigitCheck", "RestockTask", "PromptFileTask",
+    "LedgerTask", "LedgerPlausibility", "RefundsTask", "LastDigitCheck", "RestockTask", "PromptFileTask", "UserTask",
     "build_tokenizer", "load_prompts_jsonl", "exact_match_verifier",
 ]
