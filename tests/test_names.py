@@ -1,6 +1,6 @@
 """One name per idea: the names a user types (every option of every ``bonft`` sub-command, every recipe key,
 every ``bonft demo --set`` knob, every objective and strategy id) hold no retired spelling and no two
-spellings of one idea.
+spellings of one idea; the command lines in README.md and docs/ use options the commands have.
 
 Three checks, each tested on planted bad names below so that the checker itself is shown to fail:
 
@@ -19,7 +19,9 @@ from __future__ import annotations
 
 import argparse
 import dataclasses
+import re
 from collections import Counter, defaultdict
+from pathlib import Path
 
 import pytest
 
@@ -226,3 +228,45 @@ def test_checker_finds_a_planted_synonym(planted, pair):
         assert found == [] and both == ["group_size/pool: recipe group_size vs recipe pool_width"]
     else:
         assert len(found) == 1 and found[0].startswith(pair + ":") and f"{planted[0]} {planted[1]}" in found[0]
+
+
+# --------------------------------------------------------------------------- command lines in the docs
+ROOT = Path(__file__).resolve().parent.parent
+DOCS = [ROOT / "README.md", *sorted((ROOT / "docs").glob("*.md")), *sorted((ROOT / "docs").glob("*.py")),
+        ROOT / "recipes" / "study.py"]
+
+
+def unknown_options(texts: dict[str, str], parser: argparse.ArgumentParser) -> list[str]:
+    """``--option`` after ``bonft COMMAND`` (same line, continuation lines joined, up to a closing backtick or the
+    next ``bonft``) that COMMAND does not have."""
+    sub = next(a for a in parser._actions if isinstance(a, argparse._SubParsersAction))
+    opts = {c: {o for a in sp._actions for o in a.option_strings} for c, sp in sub.choices.items()}
+    command = re.compile(r"\bbonft (" + "|".join(map(re.escape, sorted(opts, key=len, reverse=True))) + r")\b(.*)")
+    bad = []
+    for name, text in texts.items():
+        lines, i = text.split("\n"), 0
+        while i < len(lines):
+            start, line = i + 1, lines[i]
+            while line.endswith("\\") and i + 1 < len(lines):  # a shell continuation: one command line
+                i += 1
+                line = line[:-1] + " " + lines[i].strip()
+            i += 1
+            for m in command.finditer(line):
+                rest = re.split(r"`|\bbonft ", m.group(2))[0]
+                bad += [f"{name}:{start}: bonft {m.group(1)} {o}"
+                        for o in re.findall(r"(?<![\w-])(--[a-z][a-z0-9-]*)", rest) if o not in opts[m.group(1)]]
+    return bad
+
+
+def test_command_lines_in_the_docs_use_existing_options():
+    texts = {str(p.relative_to(ROOT)): p.read_text(encoding="utf-8") for p in DOCS if p.is_file()}
+    assert len(texts) >= 10 and sum(t.count("bonft ") for t in texts.values()) > 50  # the docs were read
+    assert unknown_options(texts, build_parser()) == []
+
+
+def test_docs_checker_finds_a_planted_old_option():
+    texts = {"a.md": "run `bonft estimate x.jsonl --boot 10` then `bonft plan --samples x.jsonl --n-boot 10`\n"
+                     "$ bonft sample run --n 4 \\\n    --temperature 0.7,1.0 -o s.jsonl\n"
+                     "bonft eval run --n-prompts 5 --plot-dir d --out x"}
+    assert unknown_options(texts, build_parser()) == ["a.md:1: bonft estimate --boot", "a.md:2: bonft sample --temperature",
+                                                       "a.md:4: bonft eval --out"]
