@@ -270,3 +270,18 @@ def test_docs_checker_finds_a_planted_old_option():
                      "bonft eval run --n-prompts 5 --plot-dir d --out x"}
     assert unknown_options(texts, build_parser()) == ["a.md:1: bonft estimate --boot", "a.md:2: bonft sample --temperature",
                                                        "a.md:4: bonft eval --out"]
+
+
+def old_set_keys(texts: dict[str, str]) -> list[str]:
+    """``--set KEY=`` in the docs whose KEY is not a current recipe key or demo knob (an old spelling, a typo)."""
+    keys = {k for _, k in config_names()} | {"key"}  # ``--set key=value``: the placeholder
+    return [f"{name}: --set {k}=" for name, text in texts.items() for k in re.findall(r"--set ([\w.]+)=", text)
+            if k not in keys and not k.startswith("task_params.")]
+
+
+def test_set_overrides_in_the_docs_use_current_keys():
+    texts = {str(p.relative_to(ROOT)): p.read_text(encoding="utf-8") for p in DOCS if p.is_file()}
+    assert sum(t.count("--set ") for t in texts.values()) > 10
+    assert old_set_keys(texts) == []
+    planted = {"b.md": "bonft train r.toml --set sft_steps=100 --set task_params.hard_share=0.3 --set rl_steps=5"}
+    assert old_set_keys(planted) == ["b.md: --set sft_steps="]
