@@ -2,8 +2,9 @@
 
 Each prompt has one correct answer and a few wrong ones; the policy puts mass ``p`` on the
 correct answer and spreads the rest over the wrong answers (Dirichlet). Each sample gets a
-verifier score = answer bias + per-sample noise: the verifier has a consistent opinion of each
-answer (``bias``) and a noisy reading of each sample (``noise``). Three regimes:
+verifier score = exp(answer bias + per-sample noise), a positive vote weight whose logarithm is the
+verifier's margin: it has a consistent opinion of each answer (``bias``) and a noisy reading of each
+sample (``noise``); a weighted vote adds these weights per answer. Three regimes:
 
 * ``plurality``: the correct answer is the most likely one (p ~ 0.45) and the verifier is noisy;
 * ``verifier``: the correct answer is rare (p ~ 0.15) but the verifier reads samples well;
@@ -41,7 +42,7 @@ def simulate(regime: str, *, prompts: int = 200, n: int = 64, seed: int = 0) -> 
         masses = np.clip(masses, 0, None) / np.clip(masses, 0, None).sum()
         bias = np.concatenate([[cfg["gap"]], rng.normal(0.0, 0.3, len(masses) - 1)])  # verifier's view of each answer
         ans = rng.choice(len(masses), size=n, p=masses)
-        score = bias[ans] + cfg["noise"] * rng.normal(size=n)
+        score = np.exp(bias[ans] + cfg["noise"] * rng.normal(size=n))  # a positive vote weight (log: the margin)
         for i in range(n):
             rows.append({"prompt_id": f"{regime[0]}{p:03d}", "i": i, "answer": f"a{ans[i]}",
                          "score": round(float(score[i]), 6), "reward": int(ans[i] == 0)})

@@ -65,6 +65,11 @@ def _served(rule: str, idx, ans, sc, rw) -> float:
     return float(np.mean([np.mean([rw[i] for i in idx if ans[i] == a]) for a in win]))
 
 
+def _mean(rule) -> dict:
+    """The stated rule for an answer with several rewards, where the strategy reads it (votes only)."""
+    return {"conflicts": "mean"} if get_strategy(rule).uses_answers else {}
+
+
 def _brute_value(rule, probs, k):
     return sum(math.prod(probs[i] for i in t) * _served(rule, t, ANS, SC, RW)
                for t in itertools.product(range(len(probs)), repeat=k))
@@ -83,7 +88,7 @@ def _probs():
 def test_exact_value_equals_k_tuple_enumeration(rule, k):
     # reference: the definition, summed over all 6^k ordered k-tuples
     p = _probs()
-    got = strategy_value(rule, p, k=k, rewards=RW, scores=SC, answers=ANS, conflicts="mean")
+    got = strategy_value(rule, p, k=k, rewards=RW, scores=SC, answers=ANS, **_mean(rule))
     assert abs(float(got) - _brute_value(rule, p, k)) < 1e-12
 
 
@@ -186,10 +191,10 @@ def test_credit_expected_gradient_equals_exact_gradient(rule, n):
     onehot = np.eye(6)[pools]  # (P, n, 6): grad_z log pi(y) = e_y - pi
     worst = 0.0
     for k in range(1, n + 1):
-        w = np.asarray(strategy_credit(rule, SC[pools], RW[pools], k=k, answers=ANS[pools], conflicts="mean"))
+        w = np.asarray(strategy_credit(rule, SC[pools], RW[pools], k=k, answers=ANS[pools], **_mean(rule)))
         g_est = np.einsum("p,pn,pnv->v", prob, w, onehot - pnp)
         (g_true,) = torch.autograd.grad(strategy_value(rule, torch.softmax(z, -1), k=k, rewards=RW, scores=SC, answers=ANS,
-                                                       conflicts="mean"), z)
+                                                       **_mean(rule)), z)
         worst = max(worst, float(np.abs(g_est - g_true.numpy()).max()))
     print(f"{rule}, n={n}: max |E[credit gradient] - grad V_k| = {worst:.2e}")
     assert worst < 1e-10
@@ -244,6 +249,20 @@ def test_bad_inputs_name_the_argument():
     with pytest.raises(ValueError, match="rewards\\[0\\] must be finite"):
         majority_vote_credit([[0, 1]], [[1.0, float("nan")]], k=1)
     assert WeightedVote().uses_scores and not MajorityVote().uses_scores
+    # an option the strategy does not read cannot take effect: an error naming who reads it
+    with pytest.raises(ValueError, match=r"conflicts has no effect on best_of_k \(read by majority_vote, weighted_vote\), "
+                                         r"got conflicts='mean'"):
+        strategy_credit("best_of_k", [[0.1, 0.2]], [[1.0, 0.0]], k=1, conflicts="mean")
+    with pytest.raises(ValueError, match=r"max_subsets has no effect on majority_vote \(read by weighted_vote estimates\)"):
+        strategy_per_prompt("majority_vote", ks=[1], rewards=[[1.0, 0.0]], answers=[[0, 1]], max_subsets=10)
+    with pytest.raises(ValueError, match=r"seed has no effect on weighted_vote values"):
+        strategy_value("weighted_vote", _probs(), k=2, rewards=RW, scores=SC, answers=ANS, seed=3, conflicts="mean")
+    with pytest.raises(TypeError, match=r"tolerance is not an option of a strategy"):
+        strategy_credit("majority_vote", None, [[1.0, 0.0]], k=1, answers=[[0, 1]], tolerance=1)
+    from bonft.strategies import compare_strategies
+    with pytest.raises(ValueError, match=r"max_subsets has no effect on best_of_k"):
+        compare_strategies(["best_of_k", "majority_vote"], ks=[1], rewards=[[1.0, 0.0]], scores=[[0.1, 0.2]],
+                           answers=[[0, 1]], max_subsets=10)
 
 
 # ---------------------------------------------------------------------------- loss

@@ -64,21 +64,39 @@ _NOT_IDS = {"best-of-k": "best_of_k", "bon": "best_of_k", "majority": "majority_
             "pass": "pass_at_k", "oracle": "pass_at_k", "pass@k": "pass_at_k"}
 
 
+_DEFAULTS = {"max_subsets": MAX_SUBSETS, "seed": 0, "conflicts": "error"}  # the options a strategy may read
+
+
 @dataclass(frozen=True)
 class Strategy:
     """An inference-time selection rule over ``k`` samples (see the module docstring).
 
     ``name`` is the strategy id (code, ``--strategy``, config, JSON); ``uses_answers`` /
     ``uses_scores`` say which per-sample fields the rule reads; ``servable`` is False for a
-    ceiling that needs the true reward (pass@k). Subclasses implement the three methods.
-    Options a strategy does not read (``max_subsets``, ``seed``, ``conflicts`` for best-of-k)
-    are accepted and unused, so one call serves every strategy.
+    ceiling that needs the true reward (pass@k); ``reads`` names the options its estimate and
+    credit take (``max_subsets``, ``seed``: sampled k-subsets; ``conflicts``: one answer with
+    several rewards). An option the strategy does not read is an error unless it has its default
+    value. Subclasses implement ``_value``, ``_estimate`` and ``_credit``.
     """
 
     name: str = ""
     uses_answers: bool = False
     uses_scores: bool = True
     servable: bool = True
+    reads: tuple = ()
+
+    def options(self, *, exact: bool = False, **given) -> dict:
+        """The options this strategy reads, defaults filled in; an unknown option or a non-default one it
+        does not read is an error (``exact``: for :meth:`value`, which never samples k-subsets)."""
+        reads = tuple(o for o in self.reads if not (exact and o in ("max_subsets", "seed")))
+        for key, val in given.items():
+            if key not in _DEFAULTS:
+                raise TypeError(f"{key} is not an option of a strategy (options: {', '.join(_DEFAULTS)}), got {key}={val!r}")
+            if key not in reads and val != _DEFAULTS[key]:
+                users = [s.name for s in _BY_NAME.values() if key in s.reads]
+                raise ValueError(f"{key} has no effect on {self.name}{' values' if exact else ''} (read by "
+                                 f"{', '.join(users)}{' estimates' if key != 'conflicts' else ''}), got {key}={val!r}")
+        return {key: given.get(key, _DEFAULTS[key]) for key in reads}
 
     def _need(self, scores, answers) -> None:
         if self.uses_scores and scores is None:
@@ -86,18 +104,21 @@ class Strategy:
         if self.uses_answers and answers is None:
             raise ValueError(f"answers must be given for strategy {self.name!r}, got None")
 
-    def value(self, probs, *, k, rewards, scores=None, answers=None, conflicts="error"):
+    def value(self, probs, *, k, rewards, scores=None, answers=None, **options):
         """Exact ``V_k`` on a finite outcome set: ``probs (..., V) -> (...)``, differentiable."""
-        raise NotImplementedError
+        self._need(scores, answers)
+        return self._value(probs, k=k, rewards=rewards, scores=scores, answers=answers,
+                           **self.options(exact=True, **options))
 
-    def estimate(self, *, ks, rewards, scores=None, answers=None, max_subsets=MAX_SUBSETS, seed=0,
-                 conflicts="error"):
+    def estimate(self, *, ks, rewards, scores=None, answers=None, **options):
         """Unbiased ``V_k`` of each pool and its Monte-Carlo standard error: ``(P, n) -> ((P, K), (P, K))``."""
-        raise NotImplementedError
+        self._need(scores, answers)
+        return self._estimate(ks=ks, rewards=rewards, scores=scores, answers=answers, **self.options(**options))
 
-    def credit(self, scores, rewards, *, k, answers=None, max_subsets=MAX_SUBSETS, seed=0, conflicts="error"):
+    def credit(self, scores, rewards, *, k, answers=None, **options):
         """Per-sample credit ``(B, n) -> (B, n)``, unbiased for ``grad V_k``, leave-one-out baseline."""
-        raise NotImplementedError
+        self._need(scores, answers)
+        return self._credit(scores, rewards, k=k, answers=answers, **self.options(**options))
 
 
 def _exact(v) -> tuple[np.ndarray, np.ndarray]:
@@ -112,17 +133,13 @@ class BestOfK(Strategy):
 
     name: str = "best_of_k"
 
-    def value(self, probs, *, k, rewards, scores=None, answers=None, conflicts="error"):
-        self._need(scores, answers)
+    def _value(self, probs, *, k, rewards, scores, answers):
         return best_of_k_value(probs, scores, rewards, k=k)
 
-    def estimate(self, *, ks, rewards, scores=None, answers=None, max_subsets=MAX_SUBSETS, seed=0,
-                 conflicts="error"):
-        self._need(scores, answers)
+    def _estimate(self, *, ks, rewards, scores, answers):
         return _exact(best_of_k_per_prompt(scores, rewards, ks=ks))
 
-    def credit(self, scores, rewards, *, k, answers=None, max_subsets=MAX_SUBSETS, seed=0, conflicts="error"):
-        self._need(scores, answers)
+    def _credit(self, scores, rewards, *, k, answers):
         return best_of_k_credit(scores, rewards, k=k)
 
 
@@ -134,14 +151,13 @@ class PassAtK(Strategy):
     uses_scores: bool = False
     servable: bool = False
 
-    def value(self, probs, *, k, rewards, scores=None, answers=None, conflicts="error"):
+    def _value(self, probs, *, k, rewards, scores, answers):
         return best_of_k_value(probs, rewards, rewards, k=k)
 
-    def estimate(self, *, ks, rewards, scores=None, answers=None, max_subsets=MAX_SUBSETS, seed=0,
-                 conflicts="error"):
+    def _estimate(self, *, ks, rewards, scores, answers):
         return _exact(pass_at_k_per_prompt(rewards, ks=ks))
 
-    def credit(self, scores, rewards, *, k, answers=None, max_subsets=MAX_SUBSETS, seed=0, conflicts="error"):
+    def _credit(self, scores, rewards, *, k, answers):
         return best_of_k_credit(rewards, rewards, k=k)
 
 
@@ -152,18 +168,15 @@ class MajorityVote(Strategy):
     name: str = "majority_vote"
     uses_answers: bool = True
     uses_scores: bool = False
+    reads: tuple = ("conflicts",)
 
-    def value(self, probs, *, k, rewards, scores=None, answers=None, conflicts="error"):
-        self._need(scores, answers)
+    def _value(self, probs, *, k, rewards, scores, answers, conflicts):
         return majority_vote_value(probs, answers, rewards, k=k, conflicts=conflicts)
 
-    def estimate(self, *, ks, rewards, scores=None, answers=None, max_subsets=MAX_SUBSETS, seed=0,
-                 conflicts="error"):
-        self._need(scores, answers)
+    def _estimate(self, *, ks, rewards, scores, answers, conflicts):
         return _exact(majority_vote_per_prompt(answers, rewards, ks=ks, conflicts=conflicts))
 
-    def credit(self, scores, rewards, *, k, answers=None, max_subsets=MAX_SUBSETS, seed=0, conflicts="error"):
-        self._need(scores, answers)
+    def _credit(self, scores, rewards, *, k, answers, conflicts):
         return majority_vote_credit(answers, rewards, k=k, conflicts=conflicts)
 
 
@@ -173,19 +186,16 @@ class WeightedVote(Strategy):
 
     name: str = "weighted_vote"
     uses_answers: bool = True
+    reads: tuple = ("max_subsets", "seed", "conflicts")
 
-    def value(self, probs, *, k, rewards, scores=None, answers=None, conflicts="error"):
-        self._need(scores, answers)
+    def _value(self, probs, *, k, rewards, scores, answers, conflicts):
         return weighted_vote_value(probs, answers, scores, rewards, k=k, conflicts=conflicts)
 
-    def estimate(self, *, ks, rewards, scores=None, answers=None, max_subsets=MAX_SUBSETS, seed=0,
-                 conflicts="error"):
-        self._need(scores, answers)
+    def _estimate(self, *, ks, rewards, scores, answers, max_subsets, seed, conflicts):
         return weighted_vote_per_prompt(answers, scores, rewards, ks=ks, max_subsets=max_subsets, seed=seed,
                                         conflicts=conflicts)
 
-    def credit(self, scores, rewards, *, k, answers=None, max_subsets=MAX_SUBSETS, seed=0, conflicts="error"):
-        self._need(scores, answers)
+    def _credit(self, scores, rewards, *, k, answers, max_subsets, seed, conflicts):
         return weighted_vote_credit(answers, scores, rewards, k=k, max_subsets=max_subsets, seed=seed,
                                     conflicts=conflicts)
 
@@ -204,7 +214,7 @@ def get_strategy(strategy) -> Strategy:
     raise ValueError(f"strategy must be one of {', '.join(STRATEGY_NAMES)}, got {strategy!r}{hint}")
 
 
-def strategy_value(strategy, probs, *, k, rewards, scores=None, answers=None, conflicts="error"):
+def strategy_value(strategy, probs, *, k, rewards, scores=None, answers=None, **options):
     r"""Exact ``V_k`` of any strategy on a finite outcome set.
 
     Shape: ``probs (..., V)``, ``scores, rewards (..., V) or (V,)``, ``answers (V,) -> (...)``.
@@ -218,12 +228,10 @@ def strategy_value(strategy, probs, *, k, rewards, scores=None, answers=None, co
 
     References: Chow et al. 2024; Wang et al. 2023; Li et al. 2023; Chen et al. 2021.
     """
-    return get_strategy(strategy).value(probs, k=k, rewards=rewards, scores=scores, answers=answers,
-                                        conflicts=conflicts)
+    return get_strategy(strategy).value(probs, k=k, rewards=rewards, scores=scores, answers=answers, **options)
 
 
-def strategy_per_prompt(strategy, *, ks, rewards, scores=None, answers=None, max_subsets=MAX_SUBSETS, seed=0,
-                        conflicts="error"):
+def strategy_per_prompt(strategy, *, ks, rewards, scores=None, answers=None, **options):
     r"""Unbiased ``V_k`` of any strategy for every pool, with the Monte-Carlo standard error.
 
     Shape: ``rewards, scores, answers (P, n) -> (values (P, K), stderr (P, K))``.
@@ -233,15 +241,14 @@ def strategy_per_prompt(strategy, *, ks, rewards, scores=None, answers=None, max
     :meth:`Strategy.estimate`: best_of_k: :func:`bonft.estimate.best_of_k_per_prompt`; pass_at_k:
     :func:`bonft.estimate.pass_at_k_per_prompt` (Chen et al. 2021 for 0/1 rewards); majority_vote /
     weighted_vote: :mod:`bonft.strategies.estimators`. stderr is 0 wherever the estimate is exact.
+    ``options``: ``max_subsets``, ``seed``, ``conflicts`` where the strategy reads them (:meth:`Strategy.options`).
 
     References: Hoeffding 1948; Chen et al. 2021; Chow et al. 2024; Wang et al. 2023.
     """
-    return get_strategy(strategy).estimate(ks=ks, rewards=rewards, scores=scores, answers=answers,
-                                           max_subsets=max_subsets, seed=seed, conflicts=conflicts)
+    return get_strategy(strategy).estimate(ks=ks, rewards=rewards, scores=scores, answers=answers, **options)
 
 
-def strategy_credit(strategy, scores, rewards, *, k, answers=None, max_subsets=MAX_SUBSETS, seed=0,
-                    conflicts="error"):
+def strategy_credit(strategy, scores, rewards, *, k, answers=None, **options):
     r"""Per-sample credit of any strategy, unbiased for ``grad V_k``, with a leave-one-out baseline.
 
     Shape: ``scores, rewards, answers (B, n) -> credit (B, n)``.
@@ -253,5 +260,4 @@ def strategy_credit(strategy, scores, rewards, *, k, answers=None, max_subsets=M
 
     References: Kool et al. 2019; Chow et al. 2024; Hoeffding 1948.
     """
-    return get_strategy(strategy).credit(scores, rewards, k=k, answers=answers, max_subsets=max_subsets, seed=seed,
-                                         conflicts=conflicts)
+    return get_strategy(strategy).credit(scores, rewards, k=k, answers=answers, **options)

@@ -94,10 +94,14 @@ def compare_strategies(strategies, *, ks, rewards, scores=None, answers=None, co
     sts = [get_strategy(s) for s in strategies]
     if not sts:
         raise ValueError("strategies must name at least one strategy, got none")
+    given = {"max_subsets": max_subsets, "conflicts": conflicts}
+    for key, val in given.items():  # an option no strategy here reads cannot take effect
+        if not any(key in st.reads for st in sts):
+            sts[0].options(**{key: val})  # its message names the strategies that read it
     out = None
     for st in sts:
-        v, se = st.estimate(ks=list(ks), rewards=rewards, scores=scores, answers=answers,
-                            max_subsets=max_subsets, seed=seed, conflicts=conflicts)
+        opts = {key: val for key, val in {**given, "seed": seed}.items() if key in st.reads}
+        v, se = st.estimate(ks=list(ks), rewards=rewards, scores=scores, answers=answers, **opts)
         if out is None:
             out = StrategyCurves(ks=np.asarray(list(ks)), n_prompts=v.shape[0], names=[], confidence=confidence)
         m, lo, hi = bootstrap_ci(v, confidence=confidence, n_boot=n_boot, seed=seed)

@@ -26,7 +26,8 @@ def strategy_loss(logprobs, scores, rewards, *, strategy, k, answers=None, mask=
               E[-\nabla\ell] = \nabla\,\mathrm{mean}_b V_k
 
     The credit ``w`` is plain data; the loss itself is :func:`bonft.objectives.losses.policy_gradient_loss`
-    (``mask`` and ``options`` such as the anchor KL term go there). info adds ``pool_value``,
+    (``mask`` and ``options`` such as the anchor KL term go there); ``max_subsets``, ``seed`` and
+    ``conflicts`` go to the strategy (an error where it does not read them). info adds ``pool_value``,
     the mean over prompts of the unbiased pool estimate of ``V_k`` (detached).
 
     References: Chow et al. 2024; Kool et al. 2019; Wang et al. 2023.
@@ -36,7 +37,8 @@ def strategy_loss(logprobs, scores, rewards, *, strategy, k, answers=None, mask=
     if not isinstance(logprobs, torch.Tensor):
         raise TypeError(f"logprobs must be a torch tensor (B, n) or (B, n, T), got {type(logprobs).__name__}")
     st = get_strategy(strategy)
-    w = st.credit(scores, rewards, k=k, answers=answers, max_subsets=max_subsets, seed=seed, conflicts=conflicts)
+    opts = st.options(max_subsets=max_subsets, seed=seed, conflicts=conflicts)  # refuses one it does not read
+    w = st.credit(scores, rewards, k=k, answers=answers, **opts)
     w = torch.as_tensor(np.asarray(w.detach().cpu() if isinstance(w, torch.Tensor) else w),
                         dtype=logprobs.dtype, device=logprobs.device)
     if w.shape != logprobs.shape[:2]:
@@ -45,8 +47,7 @@ def strategy_loss(logprobs, scores, rewards, *, strategy, k, answers=None, mask=
     if not return_info:
         return out
     loss, info = out
-    v, _ = st.estimate(ks=[k], rewards=rewards, scores=scores, answers=answers, max_subsets=max_subsets, seed=seed,
-                       conflicts=conflicts)
+    v, _ = st.estimate(ks=[k], rewards=rewards, scores=scores, answers=answers, **opts)
     info = dict(info)
     info["pool_value"] = torch.tensor(float(np.mean(v)), dtype=torch.float64)
     return loss, info
