@@ -285,3 +285,15 @@ def test_set_overrides_in_the_docs_use_current_keys():
     assert old_set_keys(texts) == []
     planted = {"b.md": "bonft train r.toml --set sft_steps=100 --set task_params.hard_share=0.3 --set rl_steps=5"}
     assert old_set_keys(planted) == ["b.md: --set sft_steps="]
+
+
+def test_recipes_use_current_keys_and_objectives():
+    from bonft.trainer.config import FIELDS, tomllib  # tomllib, or tomli on Python 3.10
+    from bonft.trainer.objectives import OBJECTIVES
+
+    recipes = sorted((ROOT / "recipes").glob("*.toml"))
+    assert len(recipes) >= 8
+    for path in recipes:
+        values = tomllib.loads(path.read_text(encoding="utf-8"))
+        assert sorted(set(values) - set(FIELDS)) == [], path.name  # no old spelling (it would load with a warning)
+        assert values.get("objective", "pass_at_k") in OBJECTIVES, path.name
