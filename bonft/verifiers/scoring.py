@@ -7,7 +7,8 @@ time to isolate the bad samples, which get ``failure_score``, ``failed=True``
 and a reason; failures are counted and logged (logger ``bonft.verifiers``).
 
 Caution: :func:`load_verifier` imports and runs the named module or file, with
-the rights of the current process. Only load verifiers you have read.
+the rights of the current process (the working directory, or the file's folder,
+goes first on the import path). Only load verifiers you have read.
 """
 from __future__ import annotations
 
@@ -209,13 +210,29 @@ def _per_sample(verifier: Any, prompts: list[str], responses: list[str], timeout
     return Verdicts(scores=scores, rewards=rewards if has_rewards else None, failed=failed, reasons=reasons)
 
 
+def _import_failure(spec: str, what: str, e: BaseException) -> ValueError:
+    msg = str(e).strip().splitlines()[0] if str(e).strip() else ""
+    return ValueError(f"verifier {spec!r}: importing {what} raised {type(e).__name__}" + (f": {msg}" if msg else ""))
+
+
 def load_verifier(spec: str) -> Callable[..., Any]:
     """Load a verifier from ``"module:name"`` or ``"path/to/file.py:name"``.
 
-    ``name`` may be dotted (``"pkg.mod:Holder.verify"``). If it names a class,
-    the class is instantiated with no arguments. The result must be callable.
+    * ``"module:name"`` imports ``module`` with the current working directory
+      first on the import path, so ``verifier = "myverifier:score"`` finds
+      ``./myverifier.py`` whichever program runs (the ``bonft`` command included).
+    * ``"path/to/file.py:name"`` runs that file as a module with its folder first
+      on the import path (``sys.path``), so the file's own imports of its
+      neighbours (``from helpers import ...``) work.
 
-    Caution: this imports and runs the module's code with your rights.
+    Both folders stay on ``sys.path`` for the rest of the process (a verifier
+    may import lazily). ``name`` may be dotted (``"pkg.mod:Holder.verify"``).
+    If it names a class, the class is instantiated with no arguments. The result
+    must be callable. Every failure is one ``ValueError``/``TypeError`` line
+    naming the spec and the cause (an import error inside the file included).
+
+    Caution: loading a verifier imports and runs its module's code with your
+    rights, as ``python file.py`` would. Only load verifiers you have read.
 
     >>> load_verifier("bonft.verifiers.answers:demo_verifier")  # doctest: +SKIP
     """
@@ -227,18 +244,30 @@ def load_verifier(spec: str) -> Callable[..., Any]:
     if where.endswith(".py") or os.sep in where or "/" in where:
         if not os.path.isfile(where):
             raise FileNotFoundError(f"spec names the file {where!r}, which does not exist")
+        folder = os.path.dirname(os.path.abspath(where))
+        _put_first(folder)
         name = "bonft_user_verifier_" + os.path.splitext(os.path.basename(where))[0]
         mspec = importlib.util.spec_from_file_location(name, where)
         if mspec is None or mspec.loader is None:
             raise ValueError(f"spec names {where!r}, which cannot be imported as a Python file")
         module = importlib.util.module_from_spec(mspec)
         sys.modules[name] = module  # dataclasses / pickling look the module up by name
-        mspec.loader.exec_module(module)
+        try:
+            mspec.loader.exec_module(module)
+        except Exception as e:  # noqa: BLE001 - one line naming the file and the cause
+            sys.modules.pop(name, None)
+            raise _import_failure(spec, f"the file {where!r} (its folder {folder!r} is first on the import path)", e) from e
     else:
+        _put_first(os.getcwd())
         try:
             module = importlib.import_module(where)
         except ModuleNotFoundError as e:
-            raise ValueError(f"spec names the module {where!r}, which cannot be imported ({e})") from None
+            if e.name is not None and (where == e.name or where.startswith(e.name + ".")):
+                raise ValueError(f"spec names the module {where!r}, which cannot be imported ({e}); it is looked up in "
+                                 f"the working directory {os.getcwd()!r} and on the import path") from None
+            raise _import_failure(spec, f"the module {where!r}", e) from e
+        except Exception as e:  # noqa: BLE001
+            raise _import_failure(spec, f"the module {where!r}", e) from e
     obj: Any = module
     for part in attr.split("."):
         try:
@@ -250,3 +279,11 @@ def load_verifier(spec: str) -> Callable[..., Any]:
     if not callable(obj):
         raise TypeError(f"spec must name a callable verifier, got {type(obj).__name__} for {spec!r}")
     return obj
+
+
+def _put_first(folder: str) -> None:
+    """``folder`` first on ``sys.path`` (moved there when already present), caches of importers refreshed."""
+    if folder in sys.path:
+        sys.path.remove(folder)
+    sys.path.insert(0, folder)
+    importlib.invalidate_caches()

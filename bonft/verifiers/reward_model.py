@@ -1,0 +1,128 @@
+"""A local transformers sequence-classification model as a scoring verifier (a reward model).
+
+::
+
+    rm = RewardModel("path/to/reward_model", threshold=0.0, batch_size=32, device="cpu")
+    v = rm(prompts, responses)   # Verdicts(scores = model score, rewards = 1[score >= 0.0])
+
+The directory must hold a model saved with ``save_pretrained`` whose head is a
+sequence classifier (``...ForSequenceClassification``) and its tokenizer. The
+text scored is ``prompt + response`` (the sequence the policy wrote, as it saw
+it), right-padded in batches of ``batch_size``, under ``torch.no_grad()`` in
+eval mode on ``device``; nothing is downloaded.
+
+The score: with one label, the logit; with several, the probability of class
+``label`` (default 1, the "good" class of a two-class head). ``threshold``
+turns scores into 0/1 rewards (``reward = score >= threshold``); without it the
+verdicts carry no rewards, so a trainer trains on the scores and an evaluation
+needs a separate oracle for pass@k.
+
+Caution (reward hacking): a reward model is a learned proxy; the policy will
+find responses it over-scores. Keep an oracle you trust beside it (best-of-k
+under the reward model next to pass@k under the oracle shows the gap).
+"""
+from __future__ import annotations
+
+import os
+from pathlib import Path
+from typing import Sequence
+
+import numpy as np
+
+from bonft._core.checks import check_int, check_real
+from bonft.verifiers.base import Verdicts
+from bonft.verifiers.scoring import check_batch
+
+
+def _no_head(path: Path, why: str) -> ValueError:
+    return ValueError(f"path {str(path)!r} must hold a sequence-classification model (a reward model), but {why}; save one "
+                      "with AutoModelForSequenceClassification(...).save_pretrained(path)")
+
+
+class RewardModel:
+    """Score ``prompt + response`` with a local sequence-classification model; see the module docstring.
+
+    path:       directory with ``config.json``, the weights and the tokenizer.
+    threshold:  None (scores only) or a number: ``rewards = 1.0 where score >= threshold``.
+    batch_size: texts per forward pass.
+    device:     torch device string ("cpu", "cuda", "cuda:1").
+    label:      which class's probability is the score when the head has several labels.
+    max_length: texts are cut to this many tokens (from the left, so the response's end is kept); None = the model's limit.
+    """
+
+    def __init__(self, path: str | os.PathLike, *, threshold: float | None = None, batch_size: int = 32,
+                 device: str = "cpu", label: int | None = None, max_length: int | None = None) -> None:
+        if not isinstance(path, (str, os.PathLike)):
+            raise TypeError(f"path must be a local model directory, got {type(path).__name__}")
+        self.path = Path(path)
+        if not self.path.is_dir():
+            raise ValueError(f"path must be a local model directory, got {str(self.path)!r} (no such directory)")
+        if not (self.path / "config.json").is_file():
+            raise _no_head(self.path, "it has no config.json")
+        self.threshold = None if threshold is None else check_real("threshold", threshold)
+        self.batch_size = check_int("batch_size", batch_size, min=1)
+        if not isinstance(device, str):
+            raise TypeError(f"device must be a torch device string like 'cpu' or 'cuda', got {type(device).__name__}")
+        if max_length is not None:
+            max_length = check_int("max_length", max_length, min=1)
+
+        import torch
+        from transformers import AutoConfig, AutoModelForSequenceClassification, AutoTokenizer
+
+        config = AutoConfig.from_pretrained(str(self.path), local_files_only=True)
+        archs = list(getattr(config, "architectures", None) or [])
+        if not any(a.endswith("ForSequenceClassification") for a in archs):
+            raise _no_head(self.path, f"its config names the architectures {archs or 'none'}")
+        model, info = AutoModelForSequenceClassification.from_pretrained(
+            str(self.path), local_files_only=True, output_loading_info=True)
+        head = [k for k in info.get("missing_keys", []) if k.split(".")[0] in ("score", "classifier")]
+        if head:
+            raise _no_head(self.path, f"its weights lack the classification head ({', '.join(sorted(head)[:3])})")
+        self.num_labels = int(model.config.num_labels)
+        if self.num_labels == 1:
+            if label is not None:
+                raise ValueError(f"label applies to a head with several labels, got label={label} for a head with one")
+        else:
+            label = 1 if label is None else label
+            check_int("label", label, min=0, max=self.num_labels - 1)
+        self.label = label
+        self.tokenizer = AutoTokenizer.from_pretrained(str(self.path), local_files_only=True)
+        if self.tokenizer.pad_token_id is None:
+            if self.tokenizer.eos_token_id is None:
+                raise ValueError(f"path {str(self.path)!r}: the tokenizer has neither a pad nor an eos token to pad batches with")
+            self.tokenizer.pad_token = self.tokenizer.eos_token
+        self.tokenizer.padding_side = "right"
+        self.tokenizer.truncation_side = "left"
+        if model.config.pad_token_id is None:
+            model.config.pad_token_id = self.tokenizer.pad_token_id  # the head reads the last non-pad token
+        limit = getattr(model.config, "max_position_embeddings", None) or getattr(model.config, "n_positions", None)
+        self.max_length = max_length or limit
+        self.device = torch.device(device)
+        self.model = model.to(self.device).eval()
+
+    def score(self, texts: Sequence[str]) -> np.ndarray:
+        """The score of each text, (N,) float64."""
+        import torch
+
+        out = np.zeros(len(texts))
+        with torch.no_grad():
+            for a in range(0, len(texts), self.batch_size):
+                enc = self.tokenizer(list(texts[a:a + self.batch_size]), return_tensors="pt", padding=True,
+                                     truncation=self.max_length is not None, max_length=self.max_length)
+                enc = {k: v.to(self.device) for k, v in enc.items() if k in ("input_ids", "attention_mask")}
+                logits = self.model(**enc).logits.double()  # (b, num_labels)
+                if self.num_labels == 1:
+                    s = logits[:, 0]
+                else:
+                    s = torch.softmax(logits, dim=-1)[:, self.label]
+                out[a:a + len(s)] = s.cpu().numpy()
+        return out
+
+    def __call__(self, prompts: Sequence[str], responses: Sequence[str]) -> Verdicts:
+        prompts, responses = check_batch(prompts, responses)
+        scores = self.score([p + r for p, r in zip(prompts, responses)])
+        rewards = None if self.threshold is None else (scores >= self.threshold).astype(np.float64)
+        return Verdicts(scores=scores, rewards=rewards)
+
+    def __repr__(self) -> str:
+        return f"RewardModel({str(self.path)!r}, threshold={self.threshold})"
