@@ -242,7 +242,7 @@ def gradient_table(per_stage: dict[str, dict], batch: int) -> str:
     """Markdown: the gradient figures of each RL stage (see :func:`gradient_summary`)."""
     lines = [f"Gradient signal-to-noise per RL stage (median over measured steps; pure noise gives about "
              f"1/sqrt({batch}) = {1 / math.sqrt(batch):.3f})", "",
-             "| policy | grad_snr | grad_norm | clipped steps | training reward, first -> last fifth |", "|---|---|---|---|---|"]
+             "| policy | grad/snr | grad/norm | clipped steps | training reward, first -> last fifth |", "|---|---|---|---|---|"]
     for name, g in per_stage.items():
         if g:
             lines.append(f"| {LABELS.get(name, name)} | {g['grad_snr']:.3f} | {g['grad_norm']:.2f} | {g['clipped']:.0%} "
@@ -400,7 +400,7 @@ def _study_gradients(per_seed: dict[int, dict[str, dict]]) -> str:
     seeds = list(per_seed)
     names = list(per_seed[seeds[0]])
     lines = ["Gradient figures, mean over seeds of each run's median", "",
-             "| policy | grad_snr | grad_norm | clipped steps |", "|---|---|---|---|"]
+             "| policy | grad/snr | grad/norm | clipped steps |", "|---|---|---|---|"]
     for n in names:
         g = [per_seed[s][n] for s in seeds if per_seed[s].get(n)]
         if g:
