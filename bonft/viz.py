@@ -1,12 +1,12 @@
 """Every figure bonft draws (matplotlib, Agg backend, PNG).
 
-* :func:`plot_bon_curves` -- best-of-k and oracle pass@k curves of
+* :func:`plot_bon_curves` -- best-of-k and pass@k curves of
   :class:`bonft.estimate.CurveSummary` objects, with their intervals (``bonft estimate --plot-dir``);
 * :func:`plot_plan_heatmap`, :func:`plot_plan_curves` -- a :class:`bonft.plan.PlanResult`
   over temperature and k (``bonft plan --plot-dir``);
 * :func:`plot_evaluations`, :func:`plot_comparison` -- the trainer's evaluations of one
   run and of several policies (``bonft train``, ``bonft eval --plot-dir``, ``bonft demo``);
-* :func:`plot_verifier_check` -- a verifier check's best-of-k against the oracle;
+* :func:`plot_verifier_check` -- a verifier check's best-of-k against pass@k;
 * :func:`plot_objective_check` -- an objective check's estimated against exact gradient components.
 
 matplotlib is imported inside each function, so importing this module is cheap.
@@ -28,7 +28,7 @@ __all__ = ["plot_bon_curves", "plot_verifier_check", "plot_plan_heatmap", "plot_
 # ------------------------------------------------------------------ estimator curves
 
 def plot_bon_curves(curves: dict, path, *, title: str | None = None) -> str:
-    """One PNG with the best-of-k and oracle curves of each labelled :class:`CurveSummary`.
+    """One PNG with the best-of-k and pass@k curves of each labelled :class:`CurveSummary`.
 
     curves: {label: CurveSummary} (e.g. one per temperature); a label prefixes the legend entries.
     """

@@ -21,7 +21,7 @@ Chen et al. 2021 (unbiased pass@k, the binary-reward special case).
 Caution: best-of-N picks whatever the verifier scores highly. A temperature
 that "wins" with a gameable verifier may win by finding its loopholes
 (reward hacking); plan on the true reward where you have it, and look at the
-verifier's gap (``bonft estimate`` shows oracle pass@k beside best-of-k).
+verifier's gap (``bonft estimate`` shows pass@k beside best-of-k).
 
 Entry points: :func:`plan_samples` (a samples file read with
 :func:`bonft.io.read_samples`), :func:`plan_pools` (arrays per

@@ -8,7 +8,7 @@ consistent, so better at k = 1 but less diverse at large k). An imperfect
 verifier scores each answer: it mostly rewards correct balances, but it is
 noisy and also likes long, thorough-looking working, so a long wrong answer
 can outscore a short right one. The true reward is 1 for the right balance.
-The gap between the oracle curve and best-of-k shows that verifier's cost;
+The gap between the pass@k curve and best-of-k shows that verifier's cost;
 fine-tuning against such a verifier would push answers to grow longer
 (reward hacking), which is why both curves are reported.
 

@@ -4,7 +4,7 @@
 scores them with each verifier it is given and summarises with
 :func:`bonft.estimate.summarize`:
 
-* ``pass@k`` -- any of k samples correct (oracle, true rewards; Chen et al. 2021),
+* ``pass@k`` -- any of k samples correct (true rewards; Chen et al. 2021),
 * ``best-of-k[name]`` -- the true reward of the sample that verifier ``name``
   ranks highest among k (Chow et al. 2024), e.g. under the task's imperfect proxy,
 
