@@ -25,8 +25,11 @@ Giving both spellings of one key is an error.
 """
 from __future__ import annotations
 
+import collections
 import dataclasses
 import json
+import os
+import random
 import sys
 import warnings
 from dataclasses import dataclass, field
@@ -38,8 +41,21 @@ if sys.version_info >= (3, 11):
 else:  # pragma: no cover - Python 3.10
     import tomli as tomllib
 
-from bonft._core.checks import check_choice, check_fraction, check_int, check_positive, check_real
-from bonft.tasks import TASKS
+from bonft._core.checks import (
+    MAX_POOL,
+    MAX_PROMPTS_PER_STEP,
+    MAX_SAMPLES_AT_ONCE,
+    check_bound,
+    check_choice,
+    check_fraction,
+    check_int,
+    check_n_boot,
+    check_positive,
+    check_real,
+    check_seed,
+)
+from bonft.tasks import TASKS, get_task
+from bonft.tasks.base import family_counts
 from bonft.trainer.objectives import OBJECTIVES  # the registry: objective name -> credit function + options
 
 K_SCHEDULES = ("constant", "linear", "geometric")
@@ -282,16 +298,6 @@ def validate(c: TrainConfig) -> None:
 
 def check_work_sizes(c: TrainConfig) -> None:
     """The keys that size a step's work or memory, each against its documented bound (bonft._core.checks)."""
-    import os
-
-    from bonft._core.checks import (
-        MAX_POOL,
-        MAX_PROMPTS_PER_STEP,
-        MAX_SAMPLES_AT_ONCE,
-        check_bound,
-        check_n_boot,
-        check_seed,
-    )
 
     check_seed(c.seed)
     check_n_boot(c.n_boot)
@@ -328,12 +334,6 @@ def check_task_sizes(c: TrainConfig) -> None:
     """
     if c.task == "jsonl" or c.train_prompts + c.heldout_prompts <= PROBE_DRAWS:
         return
-    import collections
-    import random
-
-    from bonft.tasks import get_task
-    from bonft.tasks.base import family_counts
-
     task = get_task(c.task, **c.task_params)
     shares = task._families()
     c_train, c_eval = family_counts(c.train_prompts, shares), family_counts(c.heldout_prompts, shares)
