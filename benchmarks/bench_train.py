@@ -18,7 +18,8 @@ import torch
 
 from bonft.trainer.config import from_dict
 from bonft.generation.sampling import sample
-from bonft.trainer.loop import _one_step, build_run, make_optimizer
+from bonft.trainer.loop import _one_step
+from bonft.trainer.run import build_run, make_optimizer
 
 
 def main() -> None:

@@ -15,8 +15,9 @@ from pathlib import Path
 import torch
 
 from bonft.trainer.checkpoint import latest_checkpoint
-from bonft.trainer.demo import DemoConfig, _base
-from bonft.trainer.loop import build_run, train
+from bonft.trainer.demo import DemoConfig, stage_config
+from bonft.trainer.loop import train
+from bonft.trainer.run import build_run
 from bonft.trainer.measure import Stopwatch
 from bonft.trainer.steps import rl_step
 
@@ -35,12 +36,12 @@ def main() -> None:
     warm_dir = Path(args.run_dir) / "warm_start"
     if latest_checkpoint(warm_dir) is None:
         t0 = time.perf_counter()
-        train(_base(dc, name="warm_start", run_dir=str(warm_dir), rl_steps=0, plots=False), progress=False)
+        train(stage_config(dc, name="warm_start", run_dir=str(warm_dir), rl_steps=0, plots=False), progress=False)
         print(f"warm start: {time.perf_counter() - t0:.0f} s")
     warm = str(latest_checkpoint(warm_dir))
     B = args.prompts
     for objective, placebo in CASES:
-        cfg = _base(dc, name="snr", run_dir=str(Path(args.run_dir) / "snr"), start_from=warm, warm_start_steps=0,
+        cfg = stage_config(dc, name="snr", run_dir=str(Path(args.run_dir) / "snr"), start_from=warm, warm_start_steps=0,
                     rl_steps=1000, objective=objective, k=1 if objective == "reinforce" else min(8, args.n),
                     prompts_per_step=B, n=args.n, snr_every=1, placebo=placebo,
                     verifier="proxy" if objective == "best_of_k" else "exact")

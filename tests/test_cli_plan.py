@@ -95,7 +95,8 @@ def test_plan_command_exact_file(tmp_path, capsys):
 
 def test_plan_command_model_mode_reuses_cache(tmp_path, monkeypatch, capsys):
     from bonft.tasks import build_tokenizer
-    from bonft.trainer.models import build_tiny_model, save_model
+    from bonft.trainer.checkpoint import save_model
+    from bonft.trainer.models import build_tiny_model
 
     tok = build_tokenizer()
     model = build_tiny_model(vocab_size=len(tok), layers=1, width=32, heads=2, pad_token_id=tok.pad_token_id,
@@ -125,7 +126,8 @@ def test_plan_command_model_mode_reuses_cache(tmp_path, monkeypatch, capsys):
 
 def test_plan_model_mode_takes_the_first_n_prompts_of_a_prompts_file(tmp_path, capsys):
     from bonft.tasks import build_tokenizer
-    from bonft.trainer.models import build_tiny_model, save_model
+    from bonft.trainer.checkpoint import save_model
+    from bonft.trainer.models import build_tiny_model
 
     tok = build_tokenizer()
     model = build_tiny_model(vocab_size=len(tok), layers=1, width=32, heads=2, pad_token_id=tok.pad_token_id,

@@ -22,10 +22,25 @@ import torch.distributed as dist
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from bonft.trainer.distributed import (DistContext, PeerError, all_gather_objects, barrier, broadcast_object, derive_seed,
-                               gather_objects, global_mean_scale, init_from_env, prompt_seed, reduce_metrics,
-                               shard_bounds, shard_prompts, shutdown, unwrap_model, wrap_model)
 from bonft.objectives.losses import reinforce_loss
+from bonft.trainer.distributed import (
+    DistContext,
+    PeerError,
+    all_gather_objects,
+    barrier,
+    broadcast_object,
+    derive_seed,
+    gather_objects,
+    global_mean_scale,
+    init_from_env,
+    prompt_seed,
+    reduce_metrics,
+    shard_bounds,
+    shard_prompts,
+    shutdown,
+    unwrap_model,
+    wrap_model,
+)
 
 SCRIPTS = Path(__file__).parent / "dist_scripts"
 sys.path.insert(0, str(SCRIPTS))
@@ -90,7 +105,7 @@ def wait_ready(flags: Path, ranks, procs, limit: float = 60.0) -> None:
 def test_shards_keep_groups_whole_disjoint_and_cover_the_batch(world, per_rank, n):
     B = world * per_rank
     rows = np.repeat(np.arange(B), n)  # flat layout: row b*n + i belongs to prompt b
-    shards = [shard_prompts(rows, rank=r, world_size=world, group_size=n) for r in range(world)]
+    shards = [shard_prompts(rows, rank=r, world_size=world, pool_size=n) for r in range(world)]
     owner = {}
     for r, sh in enumerate(shards):
         assert len(sh) == per_rank * n  # equal shares
@@ -123,8 +138,8 @@ def test_shard_prompts_keeps_the_type_and_refuses_bad_input():
     assert shard_prompts(list("abcdef"), rank=2, world_size=3) == ["e", "f"]
     with pytest.raises(ValueError, match=r"prompts_per_step must be divisible by the world size \(world_size=3\).*got prompts_per_step=16; use e.g. 15 or 18"):
         shard_bounds(16, rank=0, world_size=3, name="prompts_per_step")
-    with pytest.raises(ValueError, match=r"items must hold whole groups of group_size=4 rows, got 6 rows"):
-        shard_prompts(list(range(6)), rank=0, world_size=1, group_size=4)
+    with pytest.raises(ValueError, match=r"items must hold whole pools of pool_size=4 rows, got 6 rows"):
+        shard_prompts(list(range(6)), rank=0, world_size=1, pool_size=4)
     with pytest.raises(ValueError, match=r"rank must be < world_size \(world_size=2\), got rank=2"):
         shard_bounds(4, rank=2, world_size=2)
     with pytest.raises(TypeError, match=r"items must be a list, tuple, numpy array or tensor, got str"):
@@ -246,9 +261,10 @@ def test_a_one_rank_group_binds_its_store_to_loopback_only(monkeypatch):
 def test_session_leaves_without_the_barrier_when_the_body_failed(monkeypatch):
     # on an error path the peers may never reach shutdown's barrier: session must not wait there
     import bonft.trainer.distributed as d
+    import bonft.trainer.distributed.group as group
 
     calls = []
-    monkeypatch.setattr(d, "shutdown", lambda ctx, **kw: calls.append(kw))
+    monkeypatch.setattr(group, "shutdown", lambda ctx, **kw: calls.append(kw))
     monkeypatch.delenv("WORLD_SIZE", raising=False)
     with pytest.raises(KeyError):
         with d.session():
@@ -341,8 +357,8 @@ def test_a_rank_whose_peers_never_come_fails_after_the_timeout():
 # ----------------------------------------------------------------------------- sampling by prompt slot
 @pytest.fixture(scope="module")
 def tiny_lm():
-    from bonft.trainer.models import build_tiny_model
     from bonft.tasks import build_tokenizer
+    from bonft.trainer.models import build_tiny_model
 
     tok = build_tokenizer()
     model = build_tiny_model("gpt2", vocab_size=len(tok), layers=1, width=32, heads=2, max_positions=48, seed=0,
@@ -351,17 +367,16 @@ def tiny_lm():
 
 
 def test_a_prompts_samples_do_not_depend_on_the_other_prompts_in_the_call(tiny_lm):
-    from bonft.trainer.distributed import sample_per_prompt
-    from bonft.generation.sampling import sequence_logprobs
+    from bonft.generation import sample, sequence_logprobs
 
     model, tok = tiny_lm
     prompts = ["a+b=", "long prompt 12+30=", "x"]
     seeds = [prompt_seed(0, step=4, slot=j) for j in range(3)]
     kw = dict(n=5, temperature=1.3, max_new_tokens=6)
-    full = sample_per_prompt(model, tok, prompts, seeds=seeds, **kw)
+    full = sample(model, tok, prompts, seeds=seeds, **kw)
     # rank 1 of a 3-rank run holds slot 1 only; a reversed order must not change any prompt's draw either
-    alone = sample_per_prompt(model, tok, prompts[1:2], seeds=seeds[1:2], **kw)
-    rev = sample_per_prompt(model, tok, prompts[::-1], seeds=seeds[::-1], **kw)
+    alone = sample(model, tok, prompts[1:2], seeds=seeds[1:2], **kw)
+    rev = sample(model, tok, prompts[::-1], seeds=seeds[::-1], **kw)
     assert full.texts[1] == alone.texts[0] and rev.texts == full.texts[::-1]
     t = alone.reply_tokens.shape[2]
     assert torch.equal(full.reply_tokens[1, :, :t], alone.reply_tokens[0])
@@ -372,9 +387,9 @@ def test_a_prompts_samples_do_not_depend_on_the_other_prompts_in_the_call(tiny_l
     torch.testing.assert_close(lp, full.token_logprobs, rtol=0, atol=1e-5)
     assert len({tuple(r) for r in full.texts}) == 3  # different slots, different streams
     with pytest.raises(ValueError, match=r"seeds must hold one seed per prompt \(3 prompts\), got 2 seeds"):
-        sample_per_prompt(model, tok, prompts, seeds=seeds[:2], **kw)
+        sample(model, tok, prompts, seeds=seeds[:2], **kw)
     with pytest.raises(TypeError, match=r"prompts must be a sequence of str, got a single str"):
-        sample_per_prompt(model, tok, "a+b=", seeds=seeds[:1], **kw)
+        sample(model, tok, "a+b=", seeds=seeds[:1], **kw)
 
 
 # ----------------------------------------------------------------------------- the trainer on 2 processes

@@ -16,9 +16,9 @@ import pytest
 import torch
 from scipy import stats
 
-from bonft.trainer.models import build_tiny_model
-from bonft.generation.sampling import Samples, encode_responses, sample, sequence_logprobs
+from bonft.generation import Samples, encode_responses, sample, sequence_logprobs
 from bonft.tasks.tokenizer import BOS_ID, EOS_ID, PAD_ID, build_tokenizer, char_vocab
+from bonft.trainer.models import build_tiny_model
 
 TOK = build_tokenizer()
 V = TOK.vocab_size
@@ -648,3 +648,42 @@ def test_shared_prompt_pass_equals_the_plain_forward_with_gradients(arch):
     torch.testing.assert_close(lp, ref, atol=1e-5, rtol=0)
     for a, b in zip(g, g_ref):
         torch.testing.assert_close(a, b, atol=1e-4, rtol=1e-4)
+
+
+# ----------------------------------------------------------------------------- the cache keyword transformers documents
+class _Wrapper(torch.nn.Module):
+    """A model behind ``forward(*args, **kwargs)``, as DDP (``.module``) and peft (``get_base_model()``) present it."""
+
+    def __init__(self, model, via: str):
+        super().__init__()
+        self.inner, self.config, self.via = model, model.config, via
+        if via == "module":
+            self.module = model
+
+    def get_base_model(self):
+        return self.inner
+
+    def forward(self, *args, **kwargs):
+        return self.inner(*args, **kwargs)
+
+
+@pytest.mark.parametrize("arch", ["gpt2", "llama"])
+@pytest.mark.parametrize("via", [None, "module", "get_base_model"])
+def test_sampler_and_training_forward_raise_no_future_warning(arch, via):
+    """transformers 5.x deprecates ``past_key_values=`` in favour of ``cache=`` with a FutureWarning
+    (transformers.utils.deprecation.deprecate_kwarg); sampling and the training forward use the keyword the
+    model's own forward names, through a wrapper too, so they run clean with FutureWarning as an error."""
+    import warnings
+
+    model = build_tiny_model(arch, vocab_size=V, layers=1, width=32, heads=2, max_positions=64, seed=2,
+                             pad_token_id=PAD_ID, eos_token_id=EOS_ID, bos_token_id=BOS_ID)
+    if via is not None:
+        model = _Wrapper(model, via)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", FutureWarning)
+        smp = sample(model, TOK, ["ab+c=", "x"], n=3, max_new_tokens=5, seed=4, temperature=1.2)
+        lp = sequence_logprobs(model, smp.prompt_tokens, smp.prompt_valid, smp.reply_tokens, smp.reply_valid,
+                               temperature=1.2)
+    # the two computations of log pi_T agree to float32 round-off (the sampler's own record is the reference)
+    torch.testing.assert_close(lp, smp.token_logprobs, rtol=0, atol=1e-5)
+    assert int(smp.reply_valid.sum()) >= 6  # every row drew at least one token

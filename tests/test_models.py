@@ -11,7 +11,8 @@ import pytest
 import torch
 
 from bonft.tasks.tokenizer import BOS_ID, EOS_ID, PAD_ID, build_tokenizer
-from bonft.trainer.models import build_tiny_model, load_model, pick_device, save_model
+from bonft.trainer.checkpoint import save_model
+from bonft.trainer.models import build_tiny_model, load_model, pick_device
 
 TOK = build_tokenizer()
 V = TOK.vocab_size

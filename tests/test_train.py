@@ -13,6 +13,8 @@ import torch
 from safetensors.torch import load_file
 
 import bonft.trainer.loop as T
+import bonft.trainer.run as R
+import bonft.trainer.steps as S
 from bonft.trainer.checkpoint import latest_checkpoint, load_state
 from bonft.trainer.config import from_dict, to_toml
 
@@ -98,14 +100,14 @@ def test_same_seed_same_weights_and_seed_matters(tmp_path, reference):
 
 def _interrupt_at(monkeypatch, cfg, at: int):
     """Run ``cfg`` until a Ctrl-C at RL step ``at``; returns the real step function (to restore it)."""
-    real = T.rl_step
+    real = S.rl_step
 
     def interrupt(run, step, clock):
         if step == at:
             raise KeyboardInterrupt
         return real(run, step, clock)
 
-    monkeypatch.setattr(T, "rl_step", interrupt)
+    monkeypatch.setattr(S, "rl_step", interrupt)
     with pytest.raises(KeyboardInterrupt):
         T.train(cfg, progress=False)
     return real
@@ -116,7 +118,7 @@ def test_ctrl_c_writes_checkpoint_and_resume_is_exact(tmp_path, reference, monke
     cfg = tiny(tmp_path, "interrupted", save_every=0)  # only the Ctrl-C checkpoint (and the stage boundary)
     real = _interrupt_at(monkeypatch, cfg, 6)
     assert load_state(latest_checkpoint(cfg.run_dir))["step"] == 6
-    monkeypatch.setattr(T, "rl_step", real)
+    monkeypatch.setattr(S, "rl_step", real)
     T.train(cfg, resume=True, progress=False)
     assert_same_weights(final_weights(cfg.run_dir), weights)
     steps = [json.loads(ln)["step"] for ln in (Path(cfg.run_dir) / "metrics.jsonl").read_text().splitlines()
@@ -161,23 +163,34 @@ def test_refuses_to_overwrite_a_run(tmp_path, reference):
 def test_k_schedule(tmp_path, schedule, k, k_final, expect):
     # geometric: 16 * (1/16)^(t/4) = 16, 8, 4, 2, 1 (hand computed); linear: 16 - 15 t / 4 rounded
     cfg = tiny(tmp_path, rl_steps=5, n=16, k=k, k_final=k_final, k_schedule=schedule)
-    assert [T.k_at(cfg, t) for t in range(5)] == expect
+    assert [R.k_at(cfg, t) for t in range(5)] == expect
 
 
-def test_step_seeds_differ_by_step_and_rank():
-    seeds = {T.step_seed(0, s, r) for s in range(50) for r in range(4)}
+def test_seed_streams_are_named_and_derived_one_way():
+    # the stream values are part of every recorded run: they never change
+    assert {m.name: int(m) for m in R.Stream} == {"SAMPLES": 0, "BATCH": 1, "EVALUATION": 2, "STEP": 3,
+                                                  "SAMPLE_COMMAND": 4, "PLACEBO": 5}
+    seeds = {R.Stream.STEP.seed(0, step=s, rank=r) for s in range(50) for r in range(4)}
     assert len(seeds) == 200
     # reference: numpy's SeedSequence on the tuple (seed, step, rank, stream), first 64-bit word, top 63 bits
-    # (numpy documentation, "Parallel random number generation")
+    # (numpy documentation, "Parallel random number generation"); a prompt's seed puts the tag 0x5EED
+    # before its slot: (seed, step, 0x5EED, slot, stream)
     for seed, step, rank in [(0, 3, 1), (7, 0, 0), (2**40, 123456, 3)]:
-        word = int(np.random.SeedSequence([seed, step, rank, 0]).generate_state(1, np.uint64)[0])
-        assert T.step_seed(seed, step, rank) == word >> 1
+        for stream in R.Stream:
+            word = int(np.random.SeedSequence([seed, step, rank, int(stream)]).generate_state(1, np.uint64)[0])
+            assert stream.seed(seed, step=step, rank=rank) == word >> 1
+            word = int(np.random.SeedSequence([seed, step, 0x5EED, rank, int(stream)]).generate_state(1, np.uint64)[0])
+            assert stream.for_prompt(seed, step=step, slot=rank) == word >> 1
+    # the streams of one (seed, step, rank or slot) never collide
+    assert len({m.seed(3, step=5, rank=1) for m in R.Stream} | {m.for_prompt(3, step=5, slot=1) for m in R.Stream}) == 12
+    with pytest.raises(ValueError, match=r"step must be >= 0, got step=-1"):
+        R.Stream.BATCH.seed(0, step=-1)
 
 
 def test_prompt_sharding_keeps_the_global_batch(tmp_path):
     cfg = tiny(tmp_path)
-    whole = T._prompt_batch(cfg, 5, 8, 64, 0, 1)
-    parts = [T._prompt_batch(cfg, 5, 8, 64, r, 2) for r in range(2)]
+    whole = R.prompt_batch(cfg, 5, 8, 64, 0, 1)
+    parts = [R.prompt_batch(cfg, 5, 8, 64, r, 2) for r in range(2)]
     assert sorted(whole.tolist()) == sorted(parts[0].tolist() + parts[1].tolist())
 
 
@@ -189,7 +202,7 @@ def test_non_finite_step_stops_before_the_update_and_keeps_good_checkpoints(tmp_
     T.train(ref, progress=False)
     at = lambda out, s: load_file(str(Path(out) / "checkpoints" / f"step-{s:08d}" / "model" / "model.safetensors"))
     cfg = tiny(tmp_path, "bad", rl_steps=0, warm_start_steps=6, save_every=2)
-    real = T.sft_step
+    real = S.sft_step
 
     def bad_at_3(run, step, clock):  # the 4th step (0-based step 3) goes wrong
         rec = real(run, step, clock)
@@ -199,13 +212,13 @@ def test_non_finite_step_stops_before_the_update_and_keeps_good_checkpoints(tmp_
             next(run.module.parameters()).grad.view(-1)[0] = float("inf")
         return rec
 
-    monkeypatch.setattr(T, "sft_step", bad_at_3)
+    monkeypatch.setattr(S, "sft_step", bad_at_3)
     with pytest.raises(ValueError, match=rf"step 4 has a non-finite {poison}.*not applied, checkpoint step-00000003"):
         T.train(cfg, progress=False)
     assert sorted(p.name for p in (Path(cfg.run_dir) / "checkpoints").iterdir()) == ["step-00000002", "step-00000003"]
     assert_same_weights(at(cfg.run_dir, 2), at(ref.run_dir, 2))  # the earlier checkpoint is intact
     assert_same_weights(at(cfg.run_dir, 3), at(ref.run_dir, 3))  # and step-3 holds exactly 3 updates
-    monkeypatch.setattr(T, "sft_step", real)
+    monkeypatch.setattr(S, "sft_step", real)
     T.train(cfg, resume=True, progress=False)  # resuming applies each step once
     assert_same_weights(final_weights(cfg.run_dir), at(ref.run_dir, 6))
 
@@ -217,7 +230,7 @@ def test_resume_with_sgd_momentum_is_exact(tmp_path, monkeypatch):
     T.train(whole, progress=False)
     cfg = tiny(tmp_path, "cut", **kw)
     real = _interrupt_at(monkeypatch, cfg, 6)
-    monkeypatch.setattr(T, "rl_step", real)
+    monkeypatch.setattr(S, "rl_step", real)
     state = load_state(latest_checkpoint(cfg.run_dir))
     assert state["step"] == 6 and any("momentum_buffer" in v for v in state["optimizer"]["state"].values())
     T.train(cfg, resume=True, progress=False)

@@ -4,10 +4,10 @@ import pytest
 import torch
 from scipy.special import comb
 
+from bonft.generation import sequence_logprobs
+from bonft.tasks import build_tokenizer, get_task
 from bonft.trainer.evaluation import evaluate_policy
 from bonft.trainer.models import build_tiny_model
-from bonft.generation.sampling import sequence_logprobs
-from bonft.tasks import build_tokenizer, get_task
 
 
 @pytest.fixture(scope="module")

@@ -128,7 +128,7 @@ def test_grad_snr_of_pure_noise_is_one_over_sqrt_B():
 
 
 def _tiny_run(tmp_path, **kw):
-    from bonft.trainer.loop import build_run
+    from bonft.trainer.run import build_run
 
     torch.set_num_threads(1)
     cfg = from_dict({**dict(layers=1, width=32, heads=2, max_positions=48, train_prompts=32, heldout_prompts=4, rl_steps=2,
@@ -182,7 +182,7 @@ def test_placebo_step_moves_credit_not_the_pools(tmp_path):
 
 
 def test_optimizer_choice(tmp_path):
-    from bonft.trainer.steps import make_optimizer
+    from bonft.trainer.run import make_optimizer
 
     run = _tiny_run(tmp_path, optimizer="sgd", lr=0.1)
     assert isinstance(make_optimizer(run, "sft"), torch.optim.AdamW)  # the warm start is always AdamW

@@ -36,7 +36,7 @@ def load_for_eval(args: argparse.Namespace, *, n: int, ks: list[int], temperatur
     """The checkpoint's config (its config.toml, else defaults) pointed at the checkpoint, and the Run."""
     from bonft.trainer.checkpoint import resolve_checkpoint
     from bonft.trainer.config import FIELDS, MODEL_KEYS, apply_overrides, from_dict, read_recipe
-    from bonft.trainer.loop import build_run
+    from bonft.trainer.run import build_run
 
     ckpt = resolve_checkpoint(args.checkpoint)
     base = read_recipe(ckpt / "config.toml") if (ckpt / "config.toml").is_file() else {}
@@ -62,7 +62,7 @@ def run(args: argparse.Namespace) -> int:
     import torch
 
     from bonft._core.checks import check_int, check_positive
-    from bonft.trainer.loop import evaluate_run
+    from bonft.trainer.evaluation import evaluate_run
 
     n = check_int("--n", args.n, min=1)
     ks = parse_list("--ks", args.ks)
@@ -87,7 +87,7 @@ def run(args: argparse.Namespace) -> int:
 def _eval_seeded(r, seed: int):
     from dataclasses import replace
 
-    from bonft.trainer.loop import evaluate_run
+    from bonft.trainer.evaluation import evaluate_run
 
     r.cfg = replace(r.cfg, seed=seed)
     return evaluate_run(r, step=-1)

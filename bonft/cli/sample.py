@@ -32,7 +32,7 @@ def run(args: argparse.Namespace) -> int:
     from bonft._core.checks import check_int, check_positive
     from bonft.io import write_samples
     from bonft.trainer.evaluation import evaluate_policy
-    from bonft.trainer.loop import step_seed
+    from bonft.trainer.run import Stream
 
     n = check_int("--n", args.n, min=1)
     temps = [check_positive("--temperatures", t) for t in parse_list("--temperatures", args.temperatures, float)]
@@ -49,7 +49,7 @@ def run(args: argparse.Namespace) -> int:
         rep, raw = evaluate_policy(
             r.model, r.tokenizer, [e.prompt for e in held], verifiers={"exact": r.verifiers["exact"], which: r.verifiers[which]},
             extract_answer=getattr(r.task, "extract_answer", None), n=n, ks=[1], temperature=t,
-            max_new_tokens=cfg.max_new_tokens, seed=step_seed(args.seed, 0, 0, stream=4), n_boot=10,
+            max_new_tokens=cfg.max_new_tokens, seed=Stream.SAMPLE_COMMAND.seed(args.seed, step=0), n_boot=10,
         )
         scores = raw["scores"][which]
         extract = getattr(r.task, "extract_answer", None)

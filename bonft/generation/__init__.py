@@ -1,7 +1,8 @@
 """Sampling n responses per prompt and the log-probs of responses, with their engine.
 
-* :mod:`~bonft.generation.sampling` -- :func:`sample`, :class:`Samples`, :func:`encode_responses`,
-  :func:`sequence_logprobs` (the training forward);
+* :mod:`~bonft.generation.sampling` -- :func:`sample`, :class:`Samples`;
+* :mod:`~bonft.generation.logprobs` -- :func:`sequence_logprobs` (the training forward) and
+  :func:`encode_responses` (given texts in the sampler's layout);
 * :mod:`~bonft.generation.inputs` -- checks of the sampler's inputs;
 * :mod:`~bonft.generation.policy` -- the tempered / nucleus policy pi_T and its inverse-CDF draw;
 * :mod:`~bonft.generation.kvcache` -- the prompts' forward pass and the caches built from it;
@@ -12,6 +13,7 @@
 
 Used by the trainer and the planner; imports nothing from either.
 """
-from bonft.generation.sampling import Samples, encode_responses, sample, sequence_logprobs
+from bonft.generation.logprobs import encode_responses, sequence_logprobs
+from bonft.generation.sampling import Samples, sample
 
 __all__ = ["Samples", "sample", "encode_responses", "sequence_logprobs"]

@@ -30,6 +30,7 @@ from typing import Callable
 
 import torch
 import torch.nn.functional as F
+from torch.nn.modules import module as _torch_module
 
 from bonft.generation import prefix_attention as _prefix_attn
 
@@ -59,9 +60,7 @@ def _gelu_tanh(x: torch.Tensor) -> torch.Tensor:
 
 def _has_hooks(model) -> bool:
     """Whether any forward hook (global or on a submodule) would run in the model's own forward."""
-    from torch.nn.modules import module as _m
-
-    if _m._global_forward_hooks or _m._global_forward_pre_hooks:
+    if _torch_module._global_forward_hooks or _torch_module._global_forward_pre_hooks:
         return True
     return any(m._forward_hooks or m._forward_pre_hooks for m in model.modules())
 

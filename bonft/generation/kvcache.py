@@ -27,8 +27,25 @@ def _accepts(model, name: str) -> bool:
 
 
 def _cache_arg(model) -> str:
-    """Keyword of the KV cache: ``cache`` in recent transformers, ``past_key_values`` before."""
-    return "cache" if _accepts(model, "cache") else "past_key_values"
+    """Keyword of the KV cache: ``cache`` where the model's forward names it (transformers >= 5.25),
+    ``past_key_values`` before.
+
+    A wrapper whose forward takes ``*args, **kwargs`` (DDP's ``.module``, peft's ``get_base_model()``,
+    a user's own) is looked through to the model inside, so a wrapped model gets the current keyword
+    too and transformers' deprecation of ``past_key_values`` never fires.
+    """
+    seen: set[int] = set()
+    while model is not None and id(model) not in seen:
+        seen.add(id(model))
+        if _accepts(model, "cache"):
+            return "cache"
+        if _accepts(model, "past_key_values"):
+            return "past_key_values"
+        inner = getattr(model, "module", None)
+        if inner is None and callable(getattr(model, "get_base_model", None)):
+            inner = model.get_base_model()
+        model = inner
+    return "past_key_values"
 
 
 def _cache_of(out):

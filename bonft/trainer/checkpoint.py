@@ -16,7 +16,8 @@ are deleted only after the new one is in place, so a crash or ``kill -9`` at
 any moment leaves the previous checkpoint loadable. Leftover ``.tmp-*``
 directories are ignored and cleaned.
 
-Reading checks the manifest (every listed file present, with its size and
+Reading checks the manifest (it lists every file the checkpoint needs and
+holds, no weights are a pickle, every listed file is present with its size and
 hash): :func:`latest_checkpoint` skips a damaged newest checkpoint with a
 :class:`CheckpointWarning` naming it and returns the newest good one, and
 raises :class:`CheckpointError` when checkpoints exist but none is good.
@@ -27,6 +28,7 @@ plain values is refused (:class:`CheckpointError`).
 """
 from __future__ import annotations
 
+import contextlib
 import hashlib
 import json
 import os
@@ -34,12 +36,14 @@ import pickle
 import random
 import re
 import shutil
+import tempfile
 import warnings
 from pathlib import Path
-from typing import Any
+from typing import Any, Iterator
 
 import numpy as np
 import torch
+from transformers.utils import logging as hf_logging
 
 MANIFEST = "manifest.json"
 FORMAT = "bonft-checkpoint/1"
@@ -116,6 +120,37 @@ def _read_manifest(ckpt: Path) -> dict:
 
 
 _VERIFIED: dict[str, tuple] = {}  # checkpoint path -> stat signature of its files when last verified
+NEEDED = ("state.pt", "config.toml", "model/config.json")  # with a model/*.safetensors and a tokenizer/ file
+PICKLE_SUFFIXES = (".bin", ".pt", ".pth", ".pkl", ".pickle", ".ckpt")  # weights formats that unpickle when loaded
+
+
+def _check_complete(ckpt: Path, man: dict) -> None:
+    """The manifest lists every file the checkpoint needs and every file it holds; no pickled weights.
+
+    A manifest that lists less proves nothing about what is loaded, so the checkpoint counts as damaged
+    (and :func:`latest_checkpoint` falls back to an older good one). Weights in a pickle format
+    (``model/pytorch_model.bin``...) are refused whether listed or not: unpickling can run code, and
+    bonft writes weights as safetensors only.
+    """
+    listed = set(man["files"])
+    held = {p.relative_to(ckpt).as_posix() for p in ckpt.rglob("*") if p.is_file() and p.name != MANIFEST}
+    for name in sorted(listed | held):
+        if name.startswith(("model/", "tokenizer/")) and name.endswith(PICKLE_SUFFIXES):
+            raise CheckpointError(f"checkpoint {ckpt} is damaged: refusing {name}, a pickle file (loading it can run "
+                                  f"code); bonft checkpoints hold weights as safetensors only")
+    missing = [n for n in NEEDED if n not in listed]
+    if not any(n.startswith("model/") and n.endswith(".safetensors") for n in listed):
+        missing.append("model/*.safetensors (the weights)")
+    if not any(n.startswith("tokenizer/") for n in listed):
+        missing.append("tokenizer/ (the tokenizer files)")
+    if missing:
+        raise CheckpointError(f"checkpoint {ckpt} is damaged: {MANIFEST} does not list {', '.join(missing)}; a "
+                              f"manifest must list every file the checkpoint needs")
+    extra = sorted(held - listed)
+    if extra:
+        more = f" (and {len(extra) - 1} more)" if len(extra) > 1 else ""
+        raise CheckpointError(f"checkpoint {ckpt} is damaged: {extra[0]}{more} is not in {MANIFEST} (added after the "
+                              f"save, or the manifest was rewritten)")
 
 
 def _signature(ckpt: Path, names) -> tuple:
@@ -129,14 +164,17 @@ def _signature(ckpt: Path, names) -> tuple:
 def verify_checkpoint(ckpt: str | Path, *, only: tuple[str, ...] | None = None) -> Path:
     """Check a checkpoint against its manifest; return its path or raise :class:`CheckpointError`.
 
-    Every file the manifest lists must exist with the listed size and SHA-256
-    (``only``: check just these names). The message names the directory, the
-    file and what is wrong. A result is cached until a file's size or mtime changes.
+    The manifest must list every file the checkpoint needs (``state.pt``, ``config.toml``, the
+    model's config and safetensors weights, the tokenizer) and every file it holds, and no
+    weights may be a pickle; every file it lists must exist with the listed size and SHA-256
+    (``only``: hash just these names). The message names the directory, the file and what is
+    wrong. A result is cached until a file's size or mtime changes.
     """
     ckpt = Path(ckpt)
     if not ckpt.is_dir():
         raise FileNotFoundError(f"checkpoint must be a directory, got {str(ckpt)!r} (no such directory)")
     man = _read_manifest(ckpt)
+    _check_complete(ckpt, man)
     names = [n for n in man["files"] if only is None or n in only]
     if only is not None and len(names) != len(only):
         missing = sorted(set(only) - set(names))
@@ -212,6 +250,53 @@ def resolve_checkpoint(path: str | Path) -> Path:
 
 
 # ----------------------------------------------------------------------------- writing and reading
+# ----------------------------------------------------------------------------- writing weights
+@contextlib.contextmanager
+def quiet_transformers() -> Iterator[None]:
+    """No transformers progress bars ("Loading weights", "Writing model shards") inside the trainer's own bar."""
+    was = hf_logging.is_progress_bar_enabled()
+    hf_logging.disable_progress_bar()
+    try:
+        yield
+    finally:
+        if was:
+            hf_logging.enable_progress_bar()
+
+
+def save_weights(model, directory: str | os.PathLike) -> None:
+    """``model.save_pretrained(directory)`` (safetensors), without a progress bar: the one place weights are written."""
+    with quiet_transformers():  # a bar per save would cut into the trainer's bar and --quiet runs
+        model.save_pretrained(directory, safe_serialization=True)
+
+
+def save_model(model, tokenizer, path: str | os.PathLike) -> Path:
+    """Write a bonft model directory (``path/model``, ``path/tokenizer``, safetensors) and return ``path``.
+
+    The directory is written to a temporary sibling and moved into place only when complete;
+    an existing one at ``path`` is replaced only after the new one is fully on disk, so a crash
+    never leaves neither. Read it back with :func:`bonft.trainer.models.load_model`.
+    """
+    if not isinstance(path, (str, os.PathLike)):
+        raise TypeError(f"path must be a str or os.PathLike, got {type(path).__name__}")
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    tmp = Path(tempfile.mkdtemp(prefix=f".{path.name}.tmp-", dir=path.parent))
+    try:
+        save_weights(model, tmp / "model")
+        tokenizer.save_pretrained(tmp / "tokenizer")
+        if path.exists():
+            old = path.with_name(f".{path.name}.old-{os.getpid()}")
+            os.replace(path, old)
+            os.replace(tmp, path)
+            shutil.rmtree(old, ignore_errors=True)
+        else:
+            os.replace(tmp, path)
+    finally:
+        if tmp.exists():
+            shutil.rmtree(tmp, ignore_errors=True)
+    return path
+
+
 def save_checkpoint(
     run_dir: str | Path,
     *,
@@ -236,20 +321,22 @@ def save_checkpoint(
     if tmp.exists():
         shutil.rmtree(tmp)
     tmp.mkdir()
-    from bonft.trainer.models import _save_weights
-
-    _save_weights(model, tmp / "model")
-    tokenizer.save_pretrained(tmp / "tokenizer")
-    state = {
-        "step": int(step),
-        "optimizer": optimizer.state_dict() if optimizer is not None else None,
-        "rng": rng_state(),
-        "extra": dict(extra or {}),
-    }
-    torch.save(state, tmp / "state.pt")
-    (tmp / "config.toml").write_text(config_toml)
-    _write_manifest(tmp, step)  # last: a directory with a manifest was written completely
-    _fsync_tree(tmp)
+    try:
+        save_weights(model, tmp / "model")
+        tokenizer.save_pretrained(tmp / "tokenizer")
+        state = {
+            "step": int(step),
+            "optimizer": optimizer.state_dict() if optimizer is not None else None,
+            "rng": rng_state(),
+            "extra": dict(extra or {}),
+        }
+        torch.save(state, tmp / "state.pt")
+        (tmp / "config.toml").write_text(config_toml)
+        _write_manifest(tmp, step)  # last: a directory with a manifest was written completely
+        _fsync_tree(tmp)
+    except BaseException:  # a full disk, a kill signal turned exception, Ctrl-C: no half-written folder stays
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise
     if final.exists():  # the same step saved twice (e.g. Ctrl-C right after a periodic save)
         old = root / f"{final.name}.old-{os.getpid()}"
         os.replace(final, old)

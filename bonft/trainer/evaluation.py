@@ -17,12 +17,19 @@ response at the sampling temperature, ``H ~= -(1/(P n)) sum_{b,i} log pi_T(y_bi 
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from typing import Any, Callable, Sequence
+from typing import TYPE_CHECKING, Any, Callable, Sequence
 
 import numpy as np
 import torch
 
-from bonft.estimate import MIN_BOOT_PROMPTS
+from bonft.estimate import MIN_BOOT_PROMPTS, summarize
+from bonft.generation import sample
+from bonft.trainer.distributed import gather_objects, shard_bounds
+from bonft.trainer.run import Stream
+from bonft.verifiers.scoring import score_batch
+
+if TYPE_CHECKING:  # annotations only
+    from bonft.trainer.run import Run
 
 
 @dataclass
@@ -128,19 +135,13 @@ def collect_pools(model: Any, tokenizer: Any, prompts: Sequence[str], *, verifie
     Returns ``raw`` with ``texts`` (P lists of n), ``n_tokens``, ``seq_logp``
     (P, n), ``scores`` (verifier name -> (P, n)), ``rewards`` (P, n) of the
     ``"exact"`` verifier, ``distinct`` (P,) and ``failures``. ``seeds`` (one per
-    prompt) draws each prompt from its own generator
-    (:func:`bonft.trainer.distributed.sample_per_prompt`), so pools collected on
-    different ranks are those one process would collect; else one draw from ``seed``.
+    prompt) draws each prompt from its own generator (``sample(..., seeds=...)``), so
+    pools collected on different ranks are those one process would collect; else one draw from ``seed``.
     """
-    from bonft.generation.sampling import sample
-    from bonft.verifiers.scoring import score_batch
-
     P = len(prompts)
     if seeds is not None:
-        from bonft.trainer.distributed import sample_per_prompt
-
-        smp = sample_per_prompt(model, tokenizer, list(prompts), seeds=seeds, n=n, temperature=temperature,
-                                max_new_tokens=max_new_tokens)
+        smp = sample(model, tokenizer, list(prompts), seeds=seeds, n=n, temperature=temperature,
+                     max_new_tokens=max_new_tokens)
     else:
         smp = sample(model, tokenizer, list(prompts), n=n, temperature=temperature, max_new_tokens=max_new_tokens,
                      seed=seed, batch_size=rows_per_chunk)
@@ -174,8 +175,6 @@ def merge_pools(parts: Sequence[dict]) -> dict:
 def report_from_pools(raw: dict, *, ks: Sequence[int], temperature: float, seed: int = 0, step: int = 0,
                       confidence: float = 0.95, n_boot: int = 1000, groups: Sequence[str] | None = None) -> EvalReport:
     """The summarising half of :func:`evaluate_policy`: estimators and bootstrap CIs over all pools."""
-    from bonft.estimate import summarize
-
     rewards, n_tokens = raw["rewards"], raw["n_tokens"]
     P, n = rewards.shape
     ks = [int(k) for k in ks]
@@ -200,3 +199,28 @@ def report_from_pools(raw: dict, *, ks: Sequence[int], temperature: float, seed:
         distinct_answers=float(raw["distinct"].mean()), entropy=float(-raw["seq_logp"].mean()),
         verifier_failures=int(raw["failures"]), by_group=by_group,
     )
+
+
+def evaluate_run(run: Run, step: int) -> EvalReport | None:
+    """Evaluate on the held-out prompts (same prompts and seeds at every evaluation); None on ranks > 0.
+
+    Each rank samples and scores its block of the held-out prompts (prompt j from
+    its own seed, so the pools do not depend on the number of ranks); rank 0
+    gathers the pools and runs the estimators once on all of them.
+    """
+    cfg = run.cfg
+    held = run.eval[: cfg.eval_prompts or len(run.eval)]
+    vers = {name: v for name, v in run.verifiers.items() if name != "train"}
+    a, b = shard_bounds(len(held), rank=run.rank, world_size=run.world, allow_uneven=True)
+    raw = None
+    if b > a:
+        raw = collect_pools(run.module, run.tokenizer, [e.prompt for e in held[a:b]], verifiers=vers,
+                            extract_answer=getattr(run.task, "extract_answer", None), n=cfg.eval_samples,
+                            temperature=cfg.eval_temperature, max_new_tokens=cfg.max_new_tokens,
+                            seeds=[Stream.EVALUATION.for_prompt(cfg.seed, step=0, slot=j) for j in range(a, b)])
+    pools = gather_objects(raw, run.ctx)
+    if not run.is_main:
+        return None
+    return report_from_pools(merge_pools(pools), ks=cfg.eval_ks, temperature=cfg.eval_temperature,
+                             seed=Stream.EVALUATION.seed(cfg.seed, step=0), step=step, confidence=cfg.confidence,
+                             n_boot=cfg.n_boot, groups=[(e.meta or {}).get("family", "all") for e in held])

@@ -32,18 +32,44 @@ in a sandbox (see :mod:`bonft.verifiers`) and, better, in a disposable VM.
 """
 from __future__ import annotations
 
+import contextlib
 import json
 import math
+import os
+from pathlib import Path
+from typing import Iterator
 
 import torch
+from tqdm.auto import tqdm
 
+from bonft.trainer import steps  # steps.sft_step / steps.rl_step are looked up at each step (tests replace them)
+from bonft.trainer.checkpoint import (
+    CheckpointError,
+    latest_checkpoint,
+    load_state,
+    quiet_transformers,
+    save_checkpoint,
+    save_model,
+    set_rng_state,
+)
 from bonft.trainer.config import TrainConfig, to_toml
+from bonft.trainer.distributed import (
+    DistContext,
+    barrier,
+    broadcast_object,
+    check_divisible,
+    init_from_env,
+    shutdown,
+    step_guard,
+    unwrap_model,
+    wrap_model,
+)
+from bonft.trainer.evaluation import evaluate_run
 from bonft.trainer.measure import Stopwatch
 from bonft.trainer.metrics import GRAD_CLIPPED, GRAD_NORM
-from bonft.trainer.steps import (  # noqa: F401  (re-exported: the loop's parts)
-    Run, _prompt_batch, build_run, dist_info, encode_pairs, evaluate_run, k_at, lr_at, make_optimizer,
-    quiet_transformers, rl_step, sft_step, step_seed,
-)
+from bonft.trainer.models import load_model
+from bonft.trainer.run import Run, Stream, build_run, lr_at, make_optimizer
+from bonft.trainer.rundir import RunDirBusy, WriteFailed, is_write_error, run_lock, write_failed
 
 
 class NonFiniteStep(ValueError):
@@ -56,17 +82,26 @@ def train(cfg: TrainConfig, *, resume: bool = False, progress: bool = True) -> d
     Ctrl-C writes a checkpoint of the last completed step before re-raising ``KeyboardInterrupt``.
     A non-finite loss or gradient stops the run with ``ValueError`` before the optimizer step;
     the checkpoint then written holds the weights of the last good step (the failed step is not applied).
+
+    The run holds the lock of its run directory throughout (:mod:`bonft.trainer.rundir`): a second
+    run on the same directory raises :class:`~bonft.trainer.rundir.RunDirBusy` at once. A file that
+    cannot be written (a full disk) stops the run with :class:`~bonft.trainer.rundir.WriteFailed`,
+    one line naming the path, the space and the last verified checkpoint to resume from.
     """
-    from tqdm.auto import tqdm
-
-    from bonft.trainer.distributed import shutdown, step_guard, unwrap_model, wrap_model
-
     if not isinstance(cfg, TrainConfig):
         raise TypeError(f"cfg must be a TrainConfig, got {type(cfg).__name__}")
     torch.set_num_threads(cfg.threads)
     owns_group = not torch.distributed.is_initialized()
-    run = build_run(cfg)
-    _check_shares(cfg, run.world)
+    ctx = init_from_env(device=cfg.device)  # a process group under torchrun, else one process
+    with _locked(Path(cfg.run_dir), ctx):  # before the set-up: a busy directory is refused at once
+        run = build_run(cfg)  # joins nothing new: init_from_env returns the group joined above
+        _check_shares(cfg, run.world)
+        return _train(run, resume, progress, owns_group)
+
+
+def _train(run: Run, resume: bool, progress: bool, owns_group: bool) -> dict:
+    """The stages and the step loop of :func:`train`, inside the run directory's lock."""
+    cfg = run.cfg
     start, state = _restore(run, resume)
     run.model = wrap_model(run.model, run.ctx)  # several ranks: DDP (copies rank 0's weights to all)
     bar = tqdm(total=cfg.total_steps, initial=start, desc=cfg.name, disable=not (progress and run.is_main), dynamic_ncols=True)
@@ -95,6 +130,9 @@ def train(cfg: TrainConfig, *, resume: bool = False, progress: bool = True) -> d
         if s > start and _finite_weights(run):
             raise ValueError(f"{err}; the update was not applied, {_save(run, s)} holds the last good weights") from None
         raise ValueError(f"{err}; the update was not applied, no checkpoint was written or changed") from None
+    except WriteFailed:
+        bar.close()
+        raise
     except KeyboardInterrupt:
         bar.close()
         if s > start and not run.updating:  # mid optimizer.step(): half-updated weights, do not save
@@ -117,11 +155,11 @@ def _one_step(run: Run, stage: str, s: int) -> dict:
     lr = lr_at(cfg, s)
     for g in run.optimizer.param_groups:
         g["lr"] = lr
-    torch.manual_seed(step_seed(cfg.seed, s, run.rank, stream=3))  # anything else random in the step
+    torch.manual_seed(Stream.STEP.seed(cfg.seed, step=s, rank=run.rank))  # anything else random in the step
     run.model.train()
     run.optimizer.zero_grad(set_to_none=True)
     with clock("step"):
-        rec = (sft_step if stage == "sft" else rl_step)(run, s, clock)  # gradients: the global-batch mean (DDP)
+        rec = (steps.sft_step if stage == "sft" else steps.rl_step)(run, s, clock)  # gradients: the global-batch mean (DDP)
         with clock("optimizer"):
             grads = [p.grad for p in run.module.parameters() if p.grad is not None]
             norm = torch.nn.utils.get_total_norm(grads)  # one device sync per step, for the check
@@ -148,8 +186,6 @@ def _one_step(run: Run, stage: str, s: int) -> dict:
 # ----------------------------------------------------------------------------- setup and restore
 def _check_shares(cfg: TrainConfig, world: int) -> None:
     """Whole prompts, equal shares, equal micro-batches on every rank."""
-    from bonft.trainer.distributed import check_divisible
-
     if cfg.rl_steps:
         share = check_divisible("prompts_per_step", cfg.prompts_per_step, world)
         if share % cfg.grad_accum:
@@ -161,10 +197,6 @@ def _check_shares(cfg: TrainConfig, world: int) -> None:
 
 def _restore(run: Run, resume: bool) -> tuple[int, dict | None]:
     """Rank 0 picks the checkpoint (or refuses); every rank loads it. Writes config.toml, trims metrics.jsonl."""
-    from bonft.trainer.checkpoint import CheckpointError, latest_checkpoint, load_state, set_rng_state
-    from bonft.trainer.distributed import broadcast_object
-    from bonft.trainer.models import load_model
-
     out, ckpt, problem = run.out, None, None
     if run.is_main:
         try:  # a checkpoint error goes to every rank, so none waits out the process-group timeout
@@ -186,27 +218,26 @@ def _restore(run: Run, resume: bool) -> tuple[int, dict | None]:
             run.model, run.tokenizer = load_model(ckpt, device=run.device)
         set_rng_state(state["rng"])
     if run.is_main:
-        out.mkdir(parents=True, exist_ok=True)
-        (out / "config.toml").write_text(to_toml(run.cfg))
+        with _writing(run, out / "config.toml", "the configuration"):
+            (out / "config.toml").write_text(to_toml(run.cfg))
         path, kept = out / "metrics.jsonl", []
         if ckpt is not None and path.exists():  # drop lines of work after the checkpoint (it is redone)
             kept = [ln for ln in path.read_text().splitlines() if ln and json.loads(ln)["step"] <= start]
-        path.write_text("".join(ln + "\n" for ln in kept))
+        with _writing(run, path, "the metrics file"):
+            path.write_text("".join(ln + "\n" for ln in kept))
     return start, state
 
 
 def _enter_stage(run: Run, stage: str, state: dict | None) -> None:
     """A fresh optimizer (its saved state when resuming inside the stage); RL with an anchor: load it."""
-    from bonft.trainer.distributed import barrier
-    from bonft.trainer.models import load_model, save_model
-
     run.optimizer = make_optimizer(run, stage)
     if state is not None and state["extra"].get("stage") == stage:
         run.optimizer.load_state_dict(state["optimizer"])
     if stage == "rl" and run.cfg.anchor_weight > 0:  # the anchor = the policy at the start of RL, kept on disk
         ref_dir = run.out / "rl_start"
         if not (ref_dir / "model").is_dir() and run.is_main:
-            save_model(run.module, run.tokenizer, ref_dir)
+            with _writing(run, ref_dir, "the anchor model", need=_weight_bytes(run)):
+                save_model(run.module, run.tokenizer, ref_dir)
         barrier(run.ctx, what=f"waiting for rank 0 to write {ref_dir}")
         with quiet_transformers():
             run.anchor_model, _ = load_model(ref_dir, device=run.device)
@@ -215,10 +246,23 @@ def _enter_stage(run: Run, stage: str, state: dict | None) -> None:
 
 # ----------------------------------------------------------------------------- log, evaluate, save
 def _log(run: Run, rec: dict) -> None:
-    """One line of metrics.jsonl (rank 0)."""
-    if run.is_main:
-        with open(run.out / "metrics.jsonl", "a") as fh:
-            fh.write(json.dumps(rec) + "\n")
+    """One line of metrics.jsonl (rank 0); a line that cannot be written whole is taken back."""
+    if not run.is_main:
+        return
+    path, data = run.out / "metrics.jsonl", (json.dumps(rec) + "\n").encode()
+    with _writing(run, path, "a metrics line to", need=len(data)):
+        fd = os.open(path, os.O_WRONLY | os.O_APPEND | os.O_CREAT, 0o644)
+        try:
+            size = os.fstat(fd).st_size
+            try:
+                view = memoryview(data)
+                while view:
+                    view = view[os.write(fd, view):]
+            except BaseException:
+                os.ftruncate(fd, size)  # no half line: resuming reads every line as JSON
+                raise
+        finally:
+            os.close(fd)
 
 
 def _eval_due(cfg: TrainConfig, s: int) -> bool:
@@ -235,8 +279,6 @@ def _eval_due(cfg: TrainConfig, s: int) -> bool:
 
 
 def _evaluate(run: Run, s: int, progress: bool) -> None:
-    from tqdm.auto import tqdm
-
     rep = evaluate_run(run, s)  # every rank samples its share; the report is rank 0's
     if rep is not None:
         _log(run, {"kind": "eval", **rep.to_dict()})
@@ -246,13 +288,54 @@ def _evaluate(run: Run, s: int, progress: bool) -> None:
 
 def _save(run: Run, s: int) -> str:
     """Checkpoint ``step-s``: the weights after s optimizer steps (rank 0 writes)."""
-    from bonft.trainer.checkpoint import save_checkpoint
-
     if run.is_main:
         stage = "sft" if s == 0 or s - 1 < run.cfg.warm_start_steps else "rl"
-        save_checkpoint(run.out, step=s, model=run.module, tokenizer=run.tokenizer, optimizer=run.optimizer,
-                        config_toml=to_toml(run.cfg), extra={"stage": stage}, keep=run.cfg.keep_checkpoints)
+        tmp = run.out / "checkpoints" / f"step-{s:08d}.tmp-{os.getpid()}"  # save_checkpoint's folder, removed on failure
+        with _writing(run, run.out / "checkpoints" / f"step-{s:08d}", "the checkpoint", need=_checkpoint_bytes(run),
+                      removed=tmp):
+            save_checkpoint(run.out, step=s, model=run.module, tokenizer=run.tokenizer, optimizer=run.optimizer,
+                            config_toml=to_toml(run.cfg), extra={"stage": stage}, keep=run.cfg.keep_checkpoints)
     return f"checkpoint step-{s:08d}"
+
+
+def _weight_bytes(run: Run) -> int:
+    return sum(p.numel() * p.element_size() for p in run.module.parameters())
+
+
+def _checkpoint_bytes(run: Run) -> int:
+    """About what a checkpoint takes: the weights and the optimizer's tensors (the tokenizer and the rest are small)."""
+    state = run.optimizer.state.values() if run.optimizer is not None else ()
+    return _weight_bytes(run) + sum(v.numel() * v.element_size() for st in state for v in st.values() if torch.is_tensor(v))
+
+
+@contextlib.contextmanager
+def _writing(run: Run, path: Path, what: str, *, need: int | None = None, removed: Path | None = None) -> Iterator[None]:
+    """A write of the run: any failure (a full disk, a quota, a vanished directory) becomes one :class:`WriteFailed` line."""
+    try:
+        yield
+    except BaseException as e:
+        if not is_write_error(e):
+            raise
+        gone = removed if removed is not None and not removed.exists() else None
+        raise write_failed(e, path=path, run_dir=run.out, what=what, need_bytes=need, removed=gone) from e
+
+
+@contextlib.contextmanager
+def _locked(run_dir: Path, ctx: DistContext) -> Iterator[None]:
+    """Rank 0 holds the run directory's lock for the whole run; when it cannot, every rank fails at once."""
+    with contextlib.ExitStack() as stack:
+        problem: Exception | None = None
+        if ctx.is_main:
+            try:
+                stack.enter_context(run_lock(run_dir))
+            except (RunDirBusy, WriteFailed) as e:
+                problem = e
+        text = broadcast_object(None if problem is None else str(problem), ctx)
+        if problem is not None:
+            raise problem
+        if text is not None:
+            raise RunDirBusy(text)
+        yield
 
 
 def _finite_weights(run: Run) -> bool:
@@ -266,11 +349,14 @@ def _finish(run: Run, progress: bool) -> dict:
     if run.is_main:
         lines = (run.out / "metrics.jsonl").read_text().splitlines()
         summary["evaluations"] = evals = [json.loads(ln) for ln in lines if ln and '"kind": "eval"' in ln]
-        (run.out / "summary.json").write_text(json.dumps(summary, indent=1))
+        text = json.dumps(summary, indent=1)
+        with _writing(run, run.out / "summary.json", "the summary", need=len(text)):
+            (run.out / "summary.json").write_text(text)
         if cfg.plots and evals:
-            from bonft.viz import plot_evaluations
+            from bonft.viz import plot_evaluations  # matplotlib: a heavy import, only when a plot is drawn
 
-            plot_evaluations(evals, run.out / "curves.png", title=cfg.name)
+            with _writing(run, run.out / "curves.png", "the plot"):
+                plot_evaluations(evals, run.out / "curves.png", title=cfg.name)
         if progress:
             print(f"{cfg.name}: {cfg.total_steps} steps done; metrics, checkpoints and summary.json in {run.out}")
     return summary

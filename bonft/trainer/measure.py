@@ -13,6 +13,8 @@ from typing import Iterator, Sequence
 
 import torch
 
+from bonft.trainer.distributed import all_reduce_
+
 
 class Stopwatch:
     """Seconds per named phase; on a GPU each phase ends with a device sync so the time is the work's."""
@@ -71,8 +73,6 @@ class GradientMoments:
 
     def snr(self, ctx=None) -> float:
         """SNR over the prompts added here (and on every rank, with a distributed context ``ctx``)."""
-        from bonft.trainer.distributed import all_reduce_
-
         flat = torch.cat([t.reshape(-1) for t in self.total]) if self.total else torch.zeros(1, dtype=torch.float64)
         stats = torch.tensor([float(self.sq), float(self.count)], dtype=torch.float64)
         if ctx is not None and ctx.enabled and ctx.world_size > 1:

@@ -4,22 +4,26 @@ Nothing here downloads: :func:`build_tiny_model` builds a ``transformers``
 config in code and initialises the weights from a seed; :func:`load_model`
 reads a local directory only (``local_files_only=True``).
 
-A bonft checkpoint directory has the layout::
+A bonft model directory has the layout::
 
     CKPT/model/       model.save_pretrained(...)   (config.json, model.safetensors)
     CKPT/tokenizer/   tokenizer.save_pretrained(...)
+
+Writing one (:func:`bonft.trainer.checkpoint.save_model`, and the trainer's checkpoints)
+lives in :mod:`bonft.trainer.checkpoint`, the one place weights are written.
 """
 from __future__ import annotations
 
 import os
-import shutil
-import tempfile
+import pickle
 from pathlib import Path
 from typing import Any
 
 import torch
+from transformers import AutoModelForCausalLM, AutoTokenizer, GPT2Config, GPT2LMHeadModel, LlamaConfig, LlamaForCausalLM
 
 from bonft._core.checks import check_choice, check_int
+from bonft.trainer.checkpoint import is_verified_checkpoint, resolve_checkpoint, verify_checkpoint
 
 ARCHS = ("gpt2", "llama")
 
@@ -79,8 +83,6 @@ def build_tiny_model(
         "eos_token_id": _check_token_id("eos_token_id", eos_token_id, vocab_size),
         "bos_token_id": _check_token_id("bos_token_id", bos_token_id, vocab_size),
     }
-    from transformers import GPT2Config, GPT2LMHeadModel, LlamaConfig, LlamaForCausalLM
-
     if arch == "gpt2":
         config = GPT2Config(
             vocab_size=vocab_size, n_positions=max_positions, resid_pdrop=0.0, embd_pdrop=0.0, attn_pdrop=0.0, **ids,
@@ -154,7 +156,7 @@ def load_model(path: str | os.PathLike, *, device: str | torch.device | None = N
     """``(model, tokenizer)`` from a local directory; never downloads.
 
     ``path`` is a bonft checkpoint (``path/model`` and ``path/tokenizer``
-    sub-directories, see :func:`save_model`), a training run directory (its
+    sub-directories, see :func:`bonft.trainer.checkpoint.save_model`), a training run directory (its
     newest ``checkpoints/step-*``), or a directory written by
     ``save_pretrained`` holding both the model and its tokenizer.
     ``device``: ``None`` -> :func:`pick_device` ``("auto")``. The model is returned in eval mode.
@@ -165,11 +167,7 @@ def load_model(path: str | os.PathLike, *, device: str | torch.device | None = N
     if not path.is_dir():
         raise FileNotFoundError(f"path must be a model or checkpoint directory, got {str(path)!r} (not a directory)")
     if not (path / "config.json").is_file() and not (path / "model").is_dir() and (path / "checkpoints").is_dir():
-        from bonft.trainer.checkpoint import resolve_checkpoint  # a training run directory: its newest checkpoint
-
-        path = resolve_checkpoint(path)
-    from bonft.trainer.checkpoint import is_verified_checkpoint, verify_checkpoint
-
+        path = resolve_checkpoint(path)  # a training run directory: its newest checkpoint
     if is_verified_checkpoint(path):  # a trainer checkpoint: sizes and hashes against its manifest
         verify_checkpoint(path)
     model_dir, tok_dir = _model_dirs(path)
@@ -185,50 +183,15 @@ def load_model(path: str | os.PathLike, *, device: str | torch.device | None = N
         device = pick_device("auto")
     elif not isinstance(device, torch.device):
         raise TypeError(f"device must be None, a str or a torch.device, got {type(device).__name__}")
-    from transformers import AutoModelForCausalLM, AutoTokenizer
+    try:
+        model = AutoModelForCausalLM.from_pretrained(model_dir, local_files_only=True)
+    except pickle.UnpicklingError:  # torch's weights-only loader met objects that could run code
+        from bonft.trainer.checkpoint import PICKLE_SUFFIXES
 
-    model = AutoModelForCausalLM.from_pretrained(model_dir, local_files_only=True)
+        found = sorted(p for p in model_dir.iterdir() if p.name.endswith(PICKLE_SUFFIXES))
+        raise ValueError(f"refusing {found[0] if found else model_dir}: pickled weights holding objects other than "
+                         f"tensors (loading them can run code); bonft loads such files only as plain tensors. Was it "
+                         f"written by another program? Save the model as safetensors") from None
     tokenizer = AutoTokenizer.from_pretrained(tok_dir, local_files_only=True)
     model.to(device).eval()
     return model, tokenizer
-
-
-def _save_weights(model, directory: Path) -> None:
-    """``model.save_pretrained(directory)`` (safetensors) without transformers' "Writing model shards" bar."""
-    from transformers.utils import logging as hf_logging
-
-    bars = hf_logging.is_progress_bar_enabled()
-    hf_logging.disable_progress_bar()  # a bar per save would cut into the trainer's bar and --quiet runs
-    try:
-        model.save_pretrained(directory, safe_serialization=True)
-    finally:
-        if bars:
-            hf_logging.enable_progress_bar()
-
-
-def save_model(model, tokenizer, path: str | os.PathLike) -> Path:
-    """Write a bonft checkpoint (``path/model``, ``path/tokenizer``, safetensors) and return ``path``.
-
-    The checkpoint is written to a temporary sibling directory and moved into
-    place only when complete; an existing checkpoint at ``path`` is replaced
-    only after the new one is fully on disk, so a crash never leaves neither.
-    """
-    if not isinstance(path, (str, os.PathLike)):
-        raise TypeError(f"path must be a str or os.PathLike, got {type(path).__name__}")
-    path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    tmp = Path(tempfile.mkdtemp(prefix=f".{path.name}.tmp-", dir=path.parent))
-    try:
-        _save_weights(model, tmp / "model")
-        tokenizer.save_pretrained(tmp / "tokenizer")
-        if path.exists():
-            old = path.with_name(f".{path.name}.old-{os.getpid()}")
-            os.replace(path, old)
-            os.replace(tmp, path)
-            shutil.rmtree(old, ignore_errors=True)
-        else:
-            os.replace(tmp, path)
-    finally:
-        if tmp.exists():
-            shutil.rmtree(tmp, ignore_errors=True)
-    return path

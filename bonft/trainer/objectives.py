@@ -30,21 +30,25 @@ import torch
 
 from bonft.objectives import credit as C
 from bonft.objectives import losses as L
+from bonft.strategies import strategy_credit, strategy_per_prompt
 
 
 @dataclass
 class Pools:
-    """The scored samples of ``b`` prompts, as float64 tensors on the training device.
+    """The scored samples of ``b`` prompts, as float64 numpy arrays on the host.
 
     scores, rewards: (b, n); correct: (b, n) 0/1 (reward >= the correctness threshold);
     reference_scores: (b,) verifier score of each prompt's reference response (best_of_k_sft only);
     answers: (b, n) answer keys extracted from the responses (vote objectives only).
+
+    Credit functions (:mod:`bonft.objectives.credit`) compute in float64 numpy on the host and
+    return numpy for numpy input; the trainer moves the ``(b, n)`` credit to the training device once.
     """
 
-    scores: torch.Tensor
-    rewards: torch.Tensor
-    correct: torch.Tensor
-    reference_scores: torch.Tensor | None = None
+    scores: np.ndarray
+    rewards: np.ndarray
+    correct: np.ndarray
+    reference_scores: np.ndarray | None = None
     answers: np.ndarray | None = None
 
 
@@ -52,8 +56,10 @@ class Pools:
 class Objective:
     """One entry of the registry: ``credit(pools, k) -> (b, n)``, ``value(pools, k) -> (b,)`` or None.
 
+    Both get host :class:`Pools` and return float64 arrays (numpy, or anything ``torch.as_tensor`` takes).
+
     ``value`` is the pool's own estimate of the targeted quantity (logged as
-    ``info/pool_value``); ``expert``: the loss adds ``-log pi(reference)`` per prompt;
+    ``pool/value``); ``expert``: the loss adds ``-log pi(reference)`` per prompt;
     ``answers``: the pools must carry answer keys (:attr:`Pools.answers`, extracted by the task).
     """
 
@@ -69,21 +75,20 @@ def _pass_at_k(estimator: str, positive_only: bool) -> Callable:
         p.correct, k=k, estimator=estimator, positive_only=positive_only)
 
 
-def _pass_value(p: Pools, k: int) -> torch.Tensor:
+def _pass_value(p: Pools, k: int) -> np.ndarray:
     # selecting by correctness, best-of-k is correct iff one of the k is: the U-statistic is unbiased pass@k
     return C.pool_value(p.correct, p.correct, k=k)
 
 
 def _vote(name: str) -> tuple[Callable, Callable]:
-    """Credit and pool value of a vote strategy (:mod:`bonft.strategies.estimators`), as tensors on the pools' device."""
-    from bonft.strategies.estimators import strategy_per_prompt, strategy_credit
+    """Credit and pool value of a vote strategy (:mod:`bonft.strategies.estimators`), float64 numpy arrays."""
 
-    def credit(p: Pools, k: int) -> torch.Tensor:
+    def credit(p: Pools, k: int) -> np.ndarray:
         return strategy_credit(name, p.scores, p.rewards, k=k, answers=p.answers)
 
-    def value(p: Pools, k: int) -> torch.Tensor:
+    def value(p: Pools, k: int) -> np.ndarray:
         v, _ = strategy_per_prompt(name, ks=[k], rewards=p.rewards, scores=p.scores, answers=p.answers)
-        return torch.as_tensor(v[:, 0], dtype=p.rewards.dtype, device=p.rewards.device)
+        return v[:, 0]
 
     return credit, value
 

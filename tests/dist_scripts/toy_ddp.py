@@ -34,7 +34,7 @@ def make_model():
 
 def run(ctx, scale_mode="right"):
     x, actions, rewards = make_data()
-    # this rank's prompts; a prompt's n rows move together (here rows are prompts, group_size=1)
+    # this rank's prompts; a prompt's n rows move together (here rows are prompts, pool_size=1)
     x, actions, rewards = (shard_prompts(t, rank=ctx.rank, world_size=ctx.world_size) for t in (x, actions, rewards))
     model = wrap_model(make_model(), ctx)
     opt = torch.optim.SGD(model.parameters(), lr=LR)

@@ -1,39 +1,29 @@
-"""The demo: does a best-of-N-aware objective buy pass@k at large k over leave-one-out REINFORCE?
+"""The demo's pipeline: the warm start, the RL stages from it, their evaluation and tables, and the study.
 
-From nothing, on a CPU: build a tiny GPT-2-style model, warm-start it on the
-refunds task's notebook (whose return prompts mostly skip the return: the right
-rule is a rare mode of the warm start), then from that same warm start train
-
-(a) leave-one-out REINFORCE (Kool et al. 2019) -- optimises the mean reward (pass@1),
-(b) a pass@k-aware objective (unbiased pass@k credit, Chen et al. 2021; Walder & Karkhanis 2025), and
-(c) the placebo: (b) with the outcomes shuffled within each pool -- the same credit sizes and no
-    signal, so its drift is what noise alone does to the policy; a gain must exceed it,
-
-with the same prompts per step, samples per prompt and steps, and evaluate every
-policy on the same held-out prompts with the same sampling seeds: pass@k and
-best-of-k under the task's imperfect proxy verifier, each as a mean with a
-bootstrap interval over prompts and as a paired difference from the warm start
-and from REINFORCE; the gradient signal-to-noise of each run; and the planner's
-best sampling temperature per k. Writes ``summary.json``, ``comparison.png`` and
-``comparison.md`` under the output directory; each stage is a normal trainer
-run directory, so it can be inspected with ``bonft eval`` / ``bonft sample``.
-
-:func:`run_study` repeats it over 5 seeds with best-of-k under the proxy and
-k-annealing too, and writes ``study.md`` (intervals over seeds).
+See :mod:`bonft.trainer.demo` for what the demo shows.
 """
 from __future__ import annotations
 
 import json
 import math
+import multiprocessing as mp
 import time
 from dataclasses import dataclass, field, fields, replace
 from pathlib import Path
 
 import numpy as np
+import torch
+from tqdm.auto import tqdm
 
+from bonft.tasks import get_task
+from bonft.trainer.checkpoint import latest_checkpoint, quiet_transformers
 from bonft.trainer.config import MODEL_KEYS, TrainConfig
-from bonft.trainer.metrics import GRAD_CLIPPED, GRAD_NORM, GRAD_SNR
 from bonft.trainer.demo.stats import LABELS, best_temperatures, per_prompt_curves, seed_table, study_table
+from bonft.trainer.evaluation import collect_pools
+from bonft.trainer.loop import train
+from bonft.trainer.metrics import GRAD_CLIPPED, GRAD_NORM, GRAD_SNR
+from bonft.trainer.models import load_model
+from bonft.trainer.run import Stream
 
 
 @dataclass
@@ -73,7 +63,7 @@ class DemoConfig(TrainConfig):
     warm_start_clip: float = 1.0  # clip_grad_norm of the warm-start stage (clip_grad_norm is the RL stages')
 
 
-def _base(dc: DemoConfig, **kw) -> TrainConfig:
+def stage_config(dc: DemoConfig, **kw) -> TrainConfig:
     """A stage's TrainConfig: the demo's values of every trainer key, then the stage's own (``kw``)."""
     values = {f.name: getattr(dc, f.name) for f in fields(TrainConfig)}
     values.update(task_params=dict(dc.task_params), eval_ks=list(dc.eval_ks))
@@ -93,8 +83,6 @@ def _final_eval(run_dir: Path) -> dict | None:
 
 def _stage(cfg: TrainConfig, progress: bool) -> dict:
     """Run one trainer stage, or reuse it when its run directory already holds a finished run."""
-    from bonft.trainer.loop import train
-
     done = _final_eval(Path(cfg.run_dir))
     if done is not None:
         print(f"{cfg.name}: reusing the finished run in {cfg.run_dir}")
@@ -105,8 +93,6 @@ def _stage(cfg: TrainConfig, progress: bool) -> dict:
 
 
 def _stage_in_child(cfg: TrainConfig) -> None:
-    import torch
-
     torch.set_num_threads(cfg.threads)
     _stage(cfg, progress=False)
 
@@ -117,10 +103,6 @@ def _parallel_stages(cfgs: list[TrainConfig], workers: int, progress: bool) -> d
     Ctrl-C reaches the children too (same process group): each writes a checkpoint; rerunning the
     demo resumes them.
     """
-    import multiprocessing as mp
-
-    from tqdm.auto import tqdm
-
     ctx = mp.get_context("spawn")
     pending, running = list(cfgs), []
     total = sum(c.rl_steps for c in cfgs)
@@ -172,12 +154,12 @@ def objective_config(dc: DemoConfig, objective: str, warm: str, out: Path) -> Tr
         extra = {"objective": "best_of_k", "k": dc.k, "verifier": "proxy"}
     else:
         extra = {"objective": objective, "k": 1 if objective == "reinforce" else dc.k}
-    return _base(dc, name=objective, run_dir=str(out / objective), start_from=warm, warm_start_steps=0, rl_steps=dc.rl_steps,
+    return stage_config(dc, name=objective, run_dir=str(out / objective), start_from=warm, warm_start_steps=0, rl_steps=dc.rl_steps,
                  eval_at_start=False, **extra)
 
 
 def warm_config(dc: DemoConfig, out: Path) -> TrainConfig:
-    return _base(dc, name="warm_start", run_dir=str(out / "warm_start"), warm_start_steps=dc.warm_start_steps, rl_steps=0,
+    return stage_config(dc, name="warm_start", run_dir=str(out / "warm_start"), warm_start_steps=dc.warm_start_steps, rl_steps=0,
                  clip_grad_norm=dc.warm_start_clip)
 
 
@@ -192,12 +174,6 @@ def collect_stage_pools(dc: DemoConfig, stage_dir: Path, *, temperature: float, 
     if path.is_file():
         with np.load(path) as z:
             return {key: z[key] for key in z.files}
-    from bonft.tasks import get_task
-    from bonft.trainer.checkpoint import latest_checkpoint
-    from bonft.trainer.distributed import prompt_seed
-    from bonft.trainer.evaluation import collect_pools
-    from bonft.trainer.models import load_model
-    from bonft.trainer.steps import quiet_transformers
 
     task = get_task(dc.task, **dc.task_params)
     train, held = task.split(n_train=dc.train_prompts, n_eval=dc.heldout_prompts, seed=dc.seed)
@@ -212,7 +188,7 @@ def collect_stage_pools(dc: DemoConfig, stage_dir: Path, *, temperature: float, 
     model.eval()
     raw = collect_pools(model, tok, [e.prompt for e in held], verifiers=vers, extract_answer=task.extract_answer, n=n,
                         temperature=temperature, max_new_tokens=dc.max_new_tokens,
-                        seeds=[prompt_seed(dc.seed, step=0, slot=j, stream=2) for j in range(len(held))])
+                        seeds=[Stream.EVALUATION.for_prompt(dc.seed, step=0, slot=j) for j in range(len(held))])
     out = {"rewards": raw["rewards"], "family": np.array([str((e.meta or {}).get("family", "all")) for e in held])}
     if "proxy" in raw["scores"]:
         out["proxy"] = raw["scores"]["proxy"]
@@ -279,8 +255,7 @@ def run_demo(dc: DemoConfig | None = None, *, progress: bool = True) -> dict:
     the warm start and from REINFORCE, the gradient figures, the planner's best temperatures),
     ``comparison.png`` and ``summary.json`` under ``run_dir``.
     """
-    from bonft.viz import plot_comparison
-    from bonft.trainer.checkpoint import latest_checkpoint
+    from bonft.viz import plot_comparison  # matplotlib: a heavy import, only when the demo runs
 
     dc = dc or DemoConfig()
     out = Path(dc.run_dir)
@@ -368,8 +343,6 @@ def run_study(dc: DemoConfig | None = None, *, seeds=STUDY_SEEDS, objectives=STU
     from REINFORCE with t-intervals over seeds, per-seed values, and each seed's own tables (bootstrap
     intervals over prompts, gradient figures, the planner's best temperatures).
     """
-    from bonft.trainer.checkpoint import latest_checkpoint
-
     dc = dc or DemoConfig()
     root = Path(dc.run_dir)
     root.mkdir(parents=True, exist_ok=True)

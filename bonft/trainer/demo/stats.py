@@ -20,6 +20,10 @@ import math
 from typing import Mapping, Sequence
 
 import numpy as np
+from scipy import stats
+
+from bonft.estimate import best_of_k_per_prompt, pass_at_k_per_prompt
+from bonft.plan.sweep import Pools, plan_pools
 
 LABELS = {
     "warm_start": "warm start (before RL)",
@@ -36,8 +40,6 @@ LABELS = {
 
 def per_prompt_curves(pools: Mapping[str, np.ndarray], ks: Sequence[int]) -> dict[str, np.ndarray]:
     """pools -> ``{"pass": (P, K), "proxy": (P, K)}``: per-prompt pass@k and proxy best-of-k at each k."""
-    from bonft.estimate import best_of_k_per_prompt, pass_at_k_per_prompt
-
     rewards = np.asarray(pools["rewards"], dtype=float)
     out = {"pass": np.asarray(pass_at_k_per_prompt(rewards, ks=list(ks)), dtype=float)}
     if "proxy" in pools:
@@ -63,8 +65,6 @@ def bootstrap_mean(a: np.ndarray, *, n_boot: int = 2000, seed: int = 0, confiden
 
 def t_interval(values: Sequence[float], *, confidence: float = 0.95) -> tuple[float, float, float]:
     """values: (S,) per-seed numbers -> (mean, lo, hi), Student-t interval with S - 1 degrees of freedom."""
-    from scipy import stats
-
     v = np.asarray(values, dtype=float)
     if len(v) < 2:
         return float(v.mean()), float("nan"), float("nan")
@@ -161,8 +161,6 @@ def study_table(per_seed: Mapping[int, Mapping[str, Mapping[str, np.ndarray]]], 
 def best_temperatures(pools_by_temperature: Mapping[float, np.ndarray], ks: Sequence[int], *, n_boot: int = 500,
                       seed: int = 0) -> dict[int, float]:
     """rewards at each temperature {T: (P, n)}, the same prompts in the same order -> {k: the planner's best T for pass@k}."""
-    from bonft.plan.sweep import Pools, plan_pools
-
     pools = {float(t): Pools(scores=np.asarray(r, float), rewards=np.asarray(r, float)) for t, r in pools_by_temperature.items()}
     res = plan_pools(pools, max_k=max(ks), n_boot=n_boot, seed=seed)
     return {int(k): float(res.best_temperature[int(k) - 1]) for k in ks}

@@ -8,6 +8,7 @@ from __future__ import annotations
 from typing import Any
 
 from bonft._core.checks import check_choice, check_int
+from bonft._core.seeds import derive_seed as _derive
 
 _PROMPT_STREAM = 0x5EED  # tags prompt_seed entropy apart from derive_seed's
 
@@ -46,23 +47,23 @@ def shard_bounds(n_prompts: int, *, rank: int, world_size: int, allow_uneven: bo
     return start, start + base + (rank < extra)
 
 
-def shard_prompts(items: Any, *, rank: int, world_size: int, group_size: int = 1, allow_uneven: bool = False) -> Any:
-    """This rank's prompts of a global batch, a prompt's ``group_size`` rows kept together.
+def shard_prompts(items: Any, *, rank: int, world_size: int, pool_size: int = 1, allow_uneven: bool = False) -> Any:
+    """This rank's prompts of a global batch, a prompt's ``pool_size`` rows kept together.
 
-    items: a list / tuple / numpy array / tensor whose first axis has ``B * group_size``
-    rows in the library's flat layout (row ``b * group_size + i`` is sample i of
-    prompt b) -> the same type with ``(stop - start) * group_size`` rows, where
-    ``[start, stop) = shard_bounds(B, ...)``. With ``group_size=1`` the rows are prompts.
+    items: a list / tuple / numpy array / tensor whose first axis has ``B * pool_size``
+    rows in the library's flat layout (row ``b * pool_size + i`` is sample i of
+    prompt b) -> the same type with ``(stop - start) * pool_size`` rows, where
+    ``[start, stop) = shard_bounds(B, ...)``. With ``pool_size=1`` the rows are prompts.
     """
-    group_size = check_int("group_size", group_size, min=1)
+    pool_size = check_int("pool_size", pool_size, min=1)
     if isinstance(items, (str, bytes)) or not hasattr(items, "__len__") or not hasattr(items, "__getitem__"):
         raise TypeError(f"items must be a list, tuple, numpy array or tensor, got {type(items).__name__}")
     rows = len(items)
-    if rows % group_size:
-        raise ValueError(f"items must hold whole groups of group_size={group_size} rows, got {rows} rows")
-    start, stop = shard_bounds(rows // group_size, rank=rank, world_size=world_size, allow_uneven=allow_uneven,
+    if rows % pool_size:
+        raise ValueError(f"items must hold whole pools of pool_size={pool_size} rows, got {rows} rows")
+    start, stop = shard_bounds(rows // pool_size, rank=rank, world_size=world_size, allow_uneven=allow_uneven,
                                name="prompts in items")
-    return items[start * group_size: stop * group_size]
+    return items[start * pool_size: stop * pool_size]
 
 
 # ----------------------------------------------------------------------------- loss scale and seeds
@@ -86,8 +87,6 @@ def derive_seed(seed: int, *, step: int, rank: int = 0, stream: int = 0) -> int:
     Different ranks (or streams) get independent streams; the same arguments
     always give the same seed, so a run (and a resumed run) is reproducible.
     """
-    from bonft._core.seeds import derive_seed as _derive
-
     return _derive(*[check_int(nm, v, min=0) for nm, v in (("seed", seed), ("step", step), ("rank", rank), ("stream", stream))])
 
 
@@ -98,7 +97,5 @@ def prompt_seed(seed: int, *, step: int, slot: int, stream: int = 0) -> int:
     rank holds the prompt (so W processes reproduce one process exactly), while
     ranks still draw differently because they hold different slots.
     """
-    from bonft._core.seeds import derive_seed as _derive
-
     vals = [check_int(nm, v, min=0) for nm, v in (("seed", seed), ("step", step), ("slot", slot), ("stream", stream))]
     return _derive(vals[0], vals[1], _PROMPT_STREAM, vals[2], vals[3])

@@ -2,19 +2,21 @@
 from __future__ import annotations
 
 import contextlib
-from typing import TYPE_CHECKING, Any, Iterator
+import time
+import warnings
+from typing import Any, Iterator
 
-if TYPE_CHECKING:
-    from bonft.trainer.distributed import DistContext
+from torch.distributed import distributed_c10d
+
+from bonft.trainer.checkpoint import CheckpointError, latest_checkpoint
+from bonft.trainer.distributed.group import DistContext, PeerError
 
 
 def _default_store() -> Any:
-    from torch.distributed import distributed_c10d
-
     return distributed_c10d._get_default_store()
 
 
-def stopped_ranks(ctx: "DistContext", *, tag: str, wait_s: float | None = None) -> list[int] | None:
+def stopped_ranks(ctx: DistContext, *, tag: str, wait_s: float | None = None) -> list[int] | None:
     """After a failed collective: the ranks that did not answer a roll call on the rendezvous store.
 
     Every surviving rank writes ``bonft/alive/TAG/RANK`` and waits up to ``wait_s``
@@ -23,8 +25,6 @@ def stopped_ranks(ctx: "DistContext", *, tag: str, wait_s: float | None = None) 
     peer), or None when the store itself does not answer (its host stopped:
     rank 0 when bonft served the store, the launcher under torchrun).
     """
-    import time
-
     wait_s = min(ctx.timeout_s, 5.0) if wait_s is None else wait_s
     keys = [f"bonft/alive/{tag}/{r}" for r in range(ctx.world_size)]
     try:
@@ -43,10 +43,6 @@ def stopped_ranks(ctx: "DistContext", *, tag: str, wait_s: float | None = None) 
 def _last_checkpoint_note(run_dir: Any) -> str:
     if run_dir is None:
         return ""
-    import warnings
-
-    from bonft.trainer.checkpoint import CheckpointError, latest_checkpoint
-
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
@@ -60,7 +56,7 @@ def _last_checkpoint_note(run_dir: Any) -> str:
 
 
 @contextlib.contextmanager
-def step_guard(ctx: "DistContext", *, step: int, run_dir: Any = None) -> Iterator[None]:
+def step_guard(ctx: DistContext, *, step: int, run_dir: Any = None) -> Iterator[None]:
     """Around one training step: a peer lost mid-step becomes a :class:`PeerError` saying what happened.
 
     A rank that dies during a step surfaces on the others as a communication
@@ -70,8 +66,6 @@ def step_guard(ctx: "DistContext", *, step: int, run_dir: Any = None) -> Iterato
     metrics.jsonl) and the newest checkpoint of ``run_dir``, verified intact.
     When every rank answers, the original error is re-raised unchanged. One process: no-op.
     """
-    from bonft.trainer.distributed import PeerError
-
     if not ctx.enabled or ctx.world_size == 1:
         yield
         return

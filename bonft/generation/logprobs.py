@@ -1,0 +1,123 @@
+"""The training forward: the per-token log-probs of given responses under pi_T, with gradients.
+
+:func:`sequence_logprobs` recomputes what :func:`bonft.generation.sampling.sample` recorded
+(``Samples.token_logprobs``) in one differentiable forward pass; the two agree to float32
+round-off. :func:`encode_responses` lays out given texts (e.g. reference answers for a warm
+start) as the sampler lays out its samples. See :mod:`bonft.generation.sampling` for why the
+log-probs must be taken at the sampling temperature and top-p.
+"""
+from __future__ import annotations
+
+from typing import Sequence
+
+import torch
+
+from bonft.generation.inputs import (
+    _check_long,
+    _check_model,
+    _check_prompts,
+    _check_temperature,
+    _check_top_p,
+    _left_pad,
+    _special_ids,
+)
+from bonft.generation.kvcache import _accepts, _cache_arg, _positions, _prompt_pass
+from bonft.generation.policy import _log_policy
+
+
+def encode_responses(tokenizer, prompts: Sequence[str], responses, *, add_eos: bool = True):
+    """Token tensors for given texts, in the layout of :class:`Samples` (e.g. for supervised warm-starts).
+
+    prompts: B strings; responses: B lists of n strings (or B strings, n = 1) ->
+    ``(prompt_tokens (B, Tp), prompt_valid (B, Tp), reply_tokens (B, n, T), reply_valid (B, n, T))``,
+    prompts left-padded and tokenized with the tokenizer's special tokens, responses
+    without them, right-padded, each followed by EOS when ``add_eos`` (the tokenizer
+    must have one). ``sequence_logprobs(model, *encode_responses(...))`` is then the
+    log-likelihood of each response.
+    """
+    prompts = _check_prompts(prompts)
+    if isinstance(responses, str):
+        raise TypeError("responses must be a sequence (one entry per prompt), got a single str")
+    responses = list(responses)
+    if len(responses) != len(prompts):
+        raise ValueError(f"responses must have one entry per prompt (len(prompts)={len(prompts)}), got {len(responses)}")
+    groups = [[r] if isinstance(r, str) else list(r) for r in responses]
+    n = len(groups[0])
+    for i, g in enumerate(groups):
+        if len(g) != n or n == 0:
+            raise ValueError(f"responses must give the same number n >= 1 of responses per prompt (n={n}), got {len(g)} at index {i}")
+        for r in g:
+            if not isinstance(r, str):
+                raise TypeError(f"responses must hold str, got {type(r).__name__} at index {i}")
+    pad_id, eos_id = _special_ids(tokenizer)
+    if add_eos and eos_id is None:
+        raise ValueError("add_eos=True needs a tokenizer with an eos token, got eos_token_id=None")
+    prompt_tokens, prompt_valid = _left_pad([list(tokenizer(p)["input_ids"]) for p in prompts], pad_id)
+    rows = [list(tokenizer(r, add_special_tokens=False)["input_ids"]) + ([eos_id] if add_eos else [])
+            for g in groups for r in g]
+    T = max(1, max(len(r) for r in rows))
+    ids = torch.full((len(rows), T), pad_id, dtype=torch.long)
+    mask = torch.zeros((len(rows), T), dtype=torch.long)
+    for i, r in enumerate(rows):
+        ids[i, :len(r)] = torch.tensor(r, dtype=torch.long)
+        mask[i, :len(r)] = 1
+    B = len(prompts)
+    return prompt_tokens, prompt_valid, ids.view(B, n, T), mask.view(B, n, T)  # (B*n, T) -> (B, n, T)
+
+
+def sequence_logprobs(
+    model,
+    prompt_tokens: torch.Tensor,
+    prompt_valid: torch.Tensor,
+    reply_tokens: torch.Tensor,
+    reply_valid: torch.Tensor,
+    *,
+    temperature: float = 1.0,
+    top_p: float = 1.0,
+) -> torch.Tensor:
+    """Per-token log pi_T of given responses, differentiable: (B, Tp), (B, n, T) -> (B, n, T).
+
+    ``out[b, j, t] = log softmax(logits / T)[reply_tokens[b, j, t]]`` given the
+    prompt and the earlier response tokens, 0 where ``reply_valid`` is 0.
+    Each prompt runs once; its KV cache is copied to its n rows and the
+    ``B * n`` responses run on top of it (models without an expandable cache
+    get one pass over ``[prompt_b ; response_bj]`` rows). Position ids count
+    from the first real token, so left padding of prompts and right padding of responses change
+    nothing. With the ``temperature`` (and ``top_p``) used by :func:`sample`
+    this reproduces ``Samples.token_logprobs`` to float32 round-off; use the
+    sampling temperature for unbiased score-function gradients (Chow et al. 2024).
+    Runs in whatever mode the model is in (the tiny models have no dropout).
+    """
+    _check_model(model)
+    _check_long("prompt_tokens", prompt_tokens, 2)
+    _check_long("prompt_valid", prompt_valid, 2)
+    _check_long("reply_tokens", reply_tokens, 3)
+    _check_long("reply_valid", reply_valid, 3)
+    if prompt_valid.shape != prompt_tokens.shape:
+        raise ValueError(f"prompt_valid must have the shape of prompt_tokens {tuple(prompt_tokens.shape)}, got {tuple(prompt_valid.shape)}")
+    if reply_valid.shape != reply_tokens.shape:
+        raise ValueError(f"reply_valid must have the shape of reply_tokens {tuple(reply_tokens.shape)}, got {tuple(reply_valid.shape)}")
+    if reply_tokens.shape[0] != prompt_tokens.shape[0]:
+        raise ValueError(f"reply_tokens must have B={prompt_tokens.shape[0]} rows like prompt_tokens, got {reply_tokens.shape[0]}")
+    temperature = _check_temperature(temperature)
+    top_p = _check_top_p(top_p)
+
+    B, n, T = reply_tokens.shape
+    resp = reply_tokens.reshape(B * n, T)  # (B, n, T) -> (B*n, T): row b*n + j is response j of prompt b
+    mask = torch.cat([prompt_valid.repeat_interleave(n, 0), reply_valid.reshape(B * n, T)], dim=1)  # (B*n, Tp+T)
+    past, first = _prompt_pass(model, prompt_tokens, prompt_valid, n)  # first (B*n, V) predicts response token 0
+    if past is not None:
+        # the prompt ran once per prompt; the responses attend to its copied cache
+        pos = _positions(prompt_valid)[:, -1:].repeat_interleave(n, 0) + 1 + torch.arange(T, device=resp.device)
+        out = model(input_ids=resp, attention_mask=mask, position_ids=pos, use_cache=True,
+                    **{_cache_arg(model): past})
+        logits = torch.cat([first[:, None, :], out.logits[:, :-1, :]], dim=1)  # (B*n, T, V): token t given < t
+    else:
+        ids = torch.cat([prompt_tokens.repeat_interleave(n, 0), resp], dim=1)  # (B*n, Tp+T)
+        kwargs = {"logits_to_keep": T + 1} if _accepts(model, "logits_to_keep") else {}
+        logits = model(input_ids=ids, attention_mask=mask, position_ids=_positions(mask), **kwargs).logits
+        logits = logits[:, -(T + 1):-1, :]  # (B*n, T, V): position Tp-1+t predicts response token t
+    logp = _log_policy(logits, temperature, top_p)
+    tok = logp.gather(-1, reply_tokens.reshape(B * n, T, 1)).squeeze(-1)  # (B*n, T)
+    tok = tok.masked_fill(reply_valid.reshape(B * n, T) == 0, 0.0)
+    return tok.view(B, n, T)  # (B*n, T) -> (B, n, T)
