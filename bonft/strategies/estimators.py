@@ -197,10 +197,10 @@ def majority_vote_per_prompt(answers, rewards, *, ks, conflicts="error"):
     ans = _rows("answers", answers, numeric=False)
     rew = _rows("rewards", rewards, numeric=True)
     _same_lengths(answers=ans, rewards=rew)
-    n_min, n_max = min(len(a) for a in ans), max(len(a) for a in ans)
+    smallest, n_max = min(len(a) for a in ans), max(len(a) for a in ans)
     if n_max > _MAX_N_EXACT:
         raise ValueError(f"answers pools must have n <= {_MAX_N_EXACT} for the exact vote estimate, got n={n_max}")
-    ks_arr, scalar = check_ks(ks, n_min, name="ks")
+    ks_arr, scalar = check_ks(ks, smallest, name="ks")
     codes = _codes(ans)
     _one_reward_per_answer(codes, ans, rew, conflicts, "majority_vote")
     out = np.stack([_vote_pool(c, r, ks_arr) for c, r in zip(codes, rew)])
