@@ -329,6 +329,7 @@ def best_of_k_loss(logprobs, scores, rewards, *, k, baseline="loo", **common):
     References: Chow et al. 2024, "Inference-Aware Fine-Tuning for Best-of-N
     Sampling in LLMs"; Kool et al. 2019.
     """
+    LossOptions.from_keywords("best_of_k_loss", common)  # option errors name this loss, before any work
     s, R = _host_pool(logprobs, scores=scores, rewards=rewards)
     credit = best_of_k_credit(s, R, k=k, baseline=baseline)
     return _with_pool_value(policy_gradient_loss(logprobs, credit, **common), lambda: pool_value(s, R, k=k))
@@ -357,6 +358,7 @@ def pass_at_k_loss(logprobs, correct, *, k, estimator="unbiased", positive_only=
     References: Chen et al. 2021, "Evaluating Large Language Models Trained
     on Code"; Walder & Karkhanis 2025.
     """
+    LossOptions.from_keywords("pass_at_k_loss", common)  # option errors name this loss, before any work
     (c,) = _host_pool(logprobs, correct=correct)
     credit = pass_at_k_credit(c, k=k, estimator=estimator, positive_only=positive_only)
     return _with_pool_value(policy_gradient_loss(logprobs, credit, **common), lambda: pool_value(c, c, k=k))
@@ -377,6 +379,7 @@ def reinforce_loss(logprobs, rewards, *, baseline="loo", **common):
 
     References: Kool et al. 2019, "Buy 4 REINFORCE samples, get a baseline for free!".
     """
+    LossOptions.from_keywords("reinforce_loss", common)  # option errors name this loss, before any work
     (R,) = _host_pool(logprobs, rewards=rewards)
     credit = reinforce_credit(R, baseline=baseline)
     return _with_pool_value(policy_gradient_loss(logprobs, credit, **common), lambda: R.mean(-1))
