@@ -1,0 +1,258 @@
+"""The run directory: one run at a time (an OS lock), and a failed write told in one line.
+
+Common practice, no published source: an advisory ``flock`` on a file in the directory (Linux
+flock(2): the kernel releases it when the holder's last descriptor closes, so also when the
+process dies); a failed write reported with the path, the space and how to continue.
+"""
+import errno
+import json
+import os
+import signal
+import subprocess
+import sys
+import textwrap
+import types
+from pathlib import Path
+
+import pytest
+import torch
+from safetensors.torch import load_file
+
+import bonft.trainer.checkpoint as CK
+import bonft.trainer.loop as T
+import bonft.trainer.steps as S
+from bonft.trainer.checkpoint import latest_checkpoint
+from bonft.trainer.config import from_dict
+from bonft.trainer.distributed import DistContext
+from bonft.trainer.rundir import LOCK_NAME, RunDirBusy, StaleLockWarning, WriteFailed, run_lock
+
+TINY = dict(layers=1, width=32, heads=2, max_positions=48, train_prompts=32, heldout_prompts=4, warm_start_steps=2,
+            warm_start_batch_size=4, warm_start_lr=1e-2, rl_steps=4, prompts_per_step=4, n=4, k=2, lr=1e-2,
+            eval_samples=4, eval_ks=[1, 4], n_boot=20, log_every=1, save_every=2, max_new_tokens=4, plots=False,
+            eval_at_start=False, threads=1)
+
+
+def tiny(root, name="run", **kw):
+    return from_dict({**TINY, "run_dir": str(Path(root) / name), "name": name, **kw})
+
+
+def record(run_dir) -> dict:
+    text = (Path(run_dir) / LOCK_NAME).read_text()
+    return json.loads(text) if text.strip() else {}
+
+
+def weights(run_dir) -> dict:
+    return load_file(str(latest_checkpoint(run_dir) / "model" / "model.safetensors"))
+
+
+# ----------------------------------------------------------------------------- the lock
+HOLDER = textwrap.dedent("""
+    import sys, time
+    from bonft.trainer.rundir import run_lock
+    with run_lock(sys.argv[1]):
+        print("held", flush=True)
+        time.sleep(600)
+""")
+
+
+def test_a_second_process_is_refused_at_once_naming_the_holder(tmp_path):
+    run_dir = tmp_path / "run"
+    child = subprocess.Popen([sys.executable, "-c", HOLDER, str(run_dir)], stdout=subprocess.PIPE, text=True)
+    try:
+        assert child.stdout.readline().strip() == "held"
+        rec = record(run_dir)
+        assert rec["pid"] == child.pid and rec["started"][:4].isdigit()
+        with pytest.raises(RunDirBusy) as err:
+            with run_lock(run_dir):
+                pass
+        msg = str(err.value)
+        assert "\n" not in msg and f"pid {child.pid}" in msg and f"started {rec['started']}" in msg
+        assert "in use by another training run" in msg
+        # the trainer refuses the same way before it reads or writes anything
+        with pytest.raises(RunDirBusy, match=rf"in use by another training run \(pid {child.pid} on host "):
+            T.train(tiny(tmp_path, "run"), resume=True, progress=False)
+        assert sorted(p.name for p in run_dir.iterdir()) == [LOCK_NAME]
+    finally:
+        child.kill()
+        child.wait()
+    # kill -9: the kernel dropped the lock; the record names a dead process and is taken over with a warning
+    assert record(run_dir)["pid"] == child.pid
+    with pytest.warns(StaleLockWarning, match=rf"taking over the lock of pid {child.pid} .* which is no longer running"):
+        with run_lock(run_dir):
+            assert record(run_dir)["pid"] == os.getpid()
+    assert record(run_dir) == {}  # released cleanly: an empty record
+
+
+def test_a_training_run_holds_the_lock_and_releases_it_on_ctrl_c_and_on_a_crash(tmp_path, monkeypatch):
+    cfg = tiny(tmp_path)
+    real = S.rl_step
+    seen = []
+
+    def interrupt(run, step, clock):
+        seen.append(record(cfg.run_dir)["pid"])  # held while the step runs
+        if step == 3:
+            raise KeyboardInterrupt
+        return real(run, step, clock)
+
+    monkeypatch.setattr(S, "rl_step", interrupt)
+    with pytest.raises(KeyboardInterrupt):
+        T.train(cfg, progress=False)
+    assert seen == [os.getpid()] * 2 and record(cfg.run_dir) == {}
+
+    def crash(run, step, clock):
+        raise RuntimeError("a bug in a step")
+
+    monkeypatch.setattr(S, "rl_step", crash)
+    with pytest.raises(RuntimeError, match="a bug in a step"):
+        T.train(cfg, resume=True, progress=False)
+    assert record(cfg.run_dir) == {}
+    monkeypatch.setattr(S, "rl_step", real)
+    summary = T.train(cfg, resume=True, progress=False)  # the same process takes it again: nothing was left held
+    assert summary["steps"] == 6 and record(cfg.run_dir) == {}
+
+
+def test_a_record_from_another_machine_is_refused_and_ranks_above_0_take_no_lock(tmp_path):
+    run_dir = tmp_path / "run"
+    run_dir.mkdir()
+    (run_dir / LOCK_NAME).write_text(json.dumps({"pid": 1, "host": "elsewhere", "started": "2026-01-01T00:00:00+00:00"}))
+    with pytest.raises(RunDirBusy, match=r"locked by a run on another machine \(pid 1 on host elsewhere, started "
+                                         r"2026-01-01T00:00:00\+00:00\); if that run is gone, delete .*run.lock"):
+        with run_lock(run_dir):
+            pass
+    (run_dir / LOCK_NAME).write_text("")
+    with run_lock(run_dir):  # rank 0 holds it ...
+        with T._locked(run_dir, DistContext(rank=1, world_size=2)):  # ... and rank 1 of the same run takes nothing
+            assert record(run_dir)["pid"] == os.getpid()
+
+
+def test_two_trainer_processes_on_one_directory(tmp_path):
+    """The case as a user meets it: a second `train --resume` while the first still runs fails at once."""
+    cfg = tiny(tmp_path, rl_steps=40, save_every=0)
+    (tmp_path / "cfg.json").write_text(json.dumps({**TINY, "rl_steps": 40, "save_every": 0, "run_dir": cfg.run_dir}))
+    script = ("import json, sys\nfrom bonft.trainer.config import from_dict\nfrom bonft.trainer.loop import train\n"
+              "train(from_dict(json.loads(open(sys.argv[1]).read())), progress=False)\n")
+    first = subprocess.Popen([sys.executable, "-c", script, str(tmp_path / "cfg.json")], stderr=subprocess.PIPE, text=True,
+                             env={**os.environ, "OMP_NUM_THREADS": "1"})
+    try:
+        while not (Path(cfg.run_dir) / "metrics.jsonl").is_file():  # the first run is past its set-up
+            assert first.poll() is None, first.stderr.read()
+            os.sched_yield()
+        with pytest.raises(RunDirBusy, match=rf"pid {first.pid} on host .*, started 20"):
+            T.train(cfg, resume=True, progress=False)
+    finally:
+        first.send_signal(signal.SIGINT)
+        first.wait(timeout=300)
+    assert record(cfg.run_dir) == {}  # Ctrl-C: released
+
+
+# ----------------------------------------------------------------------------- failed writes
+def test_a_checkpoint_that_cannot_be_written_is_one_line_and_resume_continues(tmp_path, monkeypatch):
+    ref = tiny(tmp_path, "ref")
+    T.train(ref, progress=False)
+    cfg = tiny(tmp_path, "full")
+    real, calls = torch.save, []
+
+    def full_disk(obj, path, *a, **kw):  # what torch's serializer raises on a full disk
+        calls.append(path)
+        if len(calls) == 2:
+            raise RuntimeError("[enforce fail at inline_container.cc:672] . unexpected pos 576 vs 534")
+        return real(obj, path, *a, **kw)
+
+    monkeypatch.setattr(CK.torch, "save", full_disk)
+    with pytest.raises(WriteFailed) as err:
+        T.train(cfg, progress=False)
+    msg = str(err.value)
+    ckpts = Path(cfg.run_dir) / "checkpoints"
+    assert "\n" not in msg
+    assert msg.startswith(f"could not write the checkpoint {ckpts / 'step-00000004'} (the file stream failed part-way)")
+    assert " needed, " in msg and " free on /" in msg
+    assert f"the unfinished {ckpts / f'step-00000004.tmp-{os.getpid()}'} was removed" in msg
+    assert msg.endswith(f"the last verified checkpoint is {ckpts / 'step-00000002'}; free space and rerun with --resume")
+    assert sorted(p.name for p in ckpts.iterdir()) == ["step-00000002"]  # no temporary folder left
+    monkeypatch.setattr(CK.torch, "save", real)
+    T.train(cfg, resume=True, progress=False)
+    w, r = weights(cfg.run_dir), weights(ref.run_dir)
+    assert all(torch.equal(w[k], r[k]) for k in r)  # nothing was lost: the resumed run ends where the whole one does
+
+
+def test_a_metrics_line_cut_short_is_taken_back(tmp_path, monkeypatch):
+    cfg = tiny(tmp_path)
+    real_write, state = os.write, {"lines": 0}
+
+    class HalfFullDisk(types.SimpleNamespace):
+        def __getattr__(self, name):
+            return getattr(os, name)
+
+        @staticmethod
+        def write(fd, data):
+            state["lines"] += 1
+            if state["lines"] == 3:  # the third line: half of it fits, then the disk is full
+                real_write(fd, bytes(data[: len(data) // 2]))
+                raise OSError(errno.ENOSPC, "No space left on device")
+            return real_write(fd, data)
+
+    monkeypatch.setattr(T, "os", HalfFullDisk())
+    with pytest.raises(WriteFailed, match=r"^could not write a metrics line to .*metrics.jsonl \(No space left on device\); "
+                                          r"about \d+ bytes needed, .* free on /.*; the last verified checkpoint is "
+                                          r".*step-00000002; free space and rerun with --resume$"):
+        T.train(cfg, progress=False)
+    lines = (Path(cfg.run_dir) / "metrics.jsonl").read_text().splitlines()
+    assert [json.loads(ln)["step"] for ln in lines] == [1, 2]  # whole lines only: resume can read them
+    monkeypatch.setattr(T, "os", os)
+    T.train(cfg, resume=True, progress=False)
+    steps = [json.loads(ln)["step"] for ln in (Path(cfg.run_dir) / "metrics.jsonl").read_text().splitlines() if '"train"' in ln]
+    assert steps == [1, 2, 3, 4, 5, 6]
+
+
+def test_a_plot_that_cannot_be_written_names_it(tmp_path, monkeypatch):
+    import bonft.viz
+
+    def no_space(*a, **kw):
+        raise OSError(errno.ENOSPC, "No space left on device")
+
+    monkeypatch.setattr(bonft.viz, "plot_evaluations", no_space)
+    cfg = tiny(tmp_path, plots=True, rl_steps=2)
+    with pytest.raises(WriteFailed, match=r"^could not write the plot .*curves.png \(No space left on device\);.*"
+                                          r"the last verified checkpoint is .*step-00000004; free space and rerun with --resume$"):
+        T.train(cfg, progress=False)
+
+
+@pytest.fixture
+def small_disk(tmp_path):
+    """A tmpfs mounted for the test (needs root; skipped where mounting is not allowed)."""
+    where = tmp_path / "disk"
+    where.mkdir()
+    if os.geteuid() != 0:
+        pytest.skip("mounting a tmpfs needs root")
+    ok = subprocess.run(["mount", "-t", "tmpfs", "-o", "size=64k", "tmpfs", str(where)], capture_output=True)
+    if ok.returncode != 0:
+        pytest.skip(f"cannot mount a tmpfs here: {ok.stderr.decode().strip()}")
+
+    def resize(nbytes: int) -> None:
+        subprocess.run(["mount", "-o", f"remount,size={nbytes}", str(where)], check=True)
+
+    try:
+        yield where, resize
+    finally:
+        subprocess.run(["umount", "-l", str(where)], check=False)
+
+
+def test_a_full_filesystem_stops_the_run_with_one_line_and_rerun_with_resume_finishes(tmp_path, small_disk):
+    where, resize = small_disk
+    ref = tiny(tmp_path, "ref")
+    T.train(ref, progress=False)
+    one = sum(f.stat().st_size for f in (latest_checkpoint(ref.run_dir)).rglob("*") if f.is_file())
+    resize(int(one * 1.5) // 4096 * 4096 + 16 * 4096)  # room for the first checkpoint, not for the second
+    cfg = tiny(where, "run")
+    with pytest.raises(WriteFailed) as err:
+        T.train(cfg, progress=False)
+    msg = str(err.value)
+    ckpts = Path(cfg.run_dir) / "checkpoints"
+    assert "\n" not in msg and msg.startswith(f"could not write the checkpoint {ckpts / 'step-00000004'} (")
+    assert f" free on {where}" in msg and "the unfinished" in msg
+    assert msg.endswith(f"the last verified checkpoint is {ckpts / 'step-00000002'}; free space and rerun with --resume")
+    assert sorted(p.name for p in ckpts.iterdir()) == ["step-00000002"]
+    resize(8 * one + 64 * 4096)  # space freed
+    T.train(cfg, resume=True, progress=False)
+    w, r = weights(cfg.run_dir), weights(ref.run_dir)
+    assert all(torch.equal(w[k], r[k]) for k in r)
