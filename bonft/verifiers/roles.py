@@ -1,0 +1,150 @@
+"""The two jobs a verifier has in a run, named apart: the training verifier and the evaluation oracle.
+
+* The **verifier** scores the samples during training (its scores select the
+  best sample, its rewards -- or scores -- are what the objective credits).
+* The **oracle** gives the rewards that define pass@k in evaluation.
+
+Evaluation reports best-of-k under the verifier (the oracle's reward of the
+sample the verifier ranks first among k) beside pass@k under the oracle, so a
+gap between them -- reward hacking -- stays visible for every task.
+
+Default oracle: for the built-in tasks, the task's exact answer checker; for
+the user's data (``task = "user"`` or ``"jsonl"``), the exact checker when the
+verifier is ``"exact"``, else the verifier itself, whose rewards must then be 0
+or 1 (checked at every evaluation; a reward model without a threshold gives no
+0/1 rewards and needs an explicit oracle).
+
+Names (recipe keys ``verifier`` / ``oracle``, knobs in ``verifier_params`` /
+``oracle_params``): ``"exact"`` (the task's answer check), ``"proxy"`` (a
+built-in task's imperfect proxy), the kinds of
+:data:`bonft.verifiers.kinds.VERIFIER_KINDS` (``"unit_tests"``,
+``"reward_model"``) and ``"module:function"``. Verifiers that read fields of the
+prompt's data row are bound to the rows before any step
+(:func:`bonft.verifiers.fields.bind_rows`).
+
+Caution: loading ``module:function`` runs that module's code, and ``unit_tests``
+runs model-written code in a sandbox that is not a security boundary.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Any, Callable, Sequence
+
+from bonft.verifiers.fields import needed_fields
+from bonft.verifiers.kinds import VERIFIER_KINDS, make_verifier
+from bonft.verifiers.reward_model import RewardModel
+
+TASK_VERIFIERS = ("exact", "proxy")
+USER_DATA_TASKS = ("user", "jsonl")
+
+
+@dataclass
+class Roles:
+    """The verifiers of a run.
+
+    verifier / verifier_name: scores training samples.
+    oracle / oracle_name:     its rewards define pass@k in evaluation.
+    oracle_is_verifier:       the oracle is the training verifier by default, so its rewards must be 0/1.
+    others:                   further verifiers that get a best-of-k row in evaluation (a task's proxy).
+    """
+
+    verifier: Callable
+    verifier_name: str
+    oracle: Callable
+    oracle_name: str
+    oracle_is_verifier: bool = False
+    others: dict = field(default_factory=dict)
+
+    def evaluation_verifiers(self) -> dict[str, Callable]:
+        """name -> verifier for an evaluation: the oracle, the verifier and the others (each once)."""
+        out = {self.oracle_name: self.oracle, self.verifier_name: self.verifier}
+        for name, v in self.others.items():
+            out.setdefault(name, v)
+        return out
+
+
+def _check_spec(key: str, spec: Any, allow_empty: bool = False) -> str:
+    if not isinstance(spec, str):
+        raise TypeError(f"{key} must be a string, got {type(spec).__name__} {spec!r}")
+    if spec == "" and allow_empty:
+        return spec
+    if spec not in TASK_VERIFIERS and spec not in VERIFIER_KINDS and ":" not in spec:
+        raise ValueError(f"{key} must be 'exact', 'proxy', one of {tuple(VERIFIER_KINDS)} or 'module:function', got {spec!r}")
+    return spec
+
+
+def check_spec(key: str, spec: Any, params: Any, *, allow_empty: bool = False) -> None:
+    """Validate a verifier name and its knobs without loading anything (for config validation)."""
+    _check_spec(key, spec, allow_empty)
+    if not isinstance(params, dict):
+        raise TypeError(f"{key}_params must be a table of the {key}'s knobs, got {type(params).__name__}")
+    if params and (spec in TASK_VERIFIERS or spec == ""):
+        what = "the task's own checker" if spec else "the default oracle"
+        raise ValueError(f"{key}_params cannot take effect with {key} = {spec!r} ({what} takes no knobs), got {sorted(params)}")
+
+
+def _make(task: Any, examples: Sequence[Any], key: str, spec: str, params: dict, device: str | None) -> Callable:
+    if spec == "exact":
+        return task.verifier(examples)
+    if spec == "proxy":
+        proxy = task.proxy_verifier(examples) if hasattr(task, "proxy_verifier") else None
+        if proxy is None:
+            raise ValueError(f"{key} = 'proxy' needs a task with a proxy verifier; task {getattr(task, 'name', task)!r} has none")
+        return proxy
+    ver = make_verifier(spec, params, key=key, device=device)
+    if hasattr(task, "bind_verifier"):
+        return task.bind_verifier(ver, examples)
+    need = needed_fields(ver)
+    if need or hasattr(ver, "bind"):
+        raise ValueError(f"{key} = {spec!r} reads fields of each prompt's data row ({', '.join(need) or 'rows'}), which only "
+                         f"task = 'user' has; task {getattr(task, 'name', task)!r} has no rows")
+    return ver
+
+
+def build_roles(task: Any, examples: Sequence[Any], *, verifier: str = "exact", verifier_params: dict | None = None,
+                oracle: str = "", oracle_params: dict | None = None, device: str | None = None) -> Roles:
+    """The training verifier and the evaluation oracle of ``task`` for ``examples`` (train and held-out together).
+
+    oracle: "" picks the default (module docstring). Each is built once; an oracle
+    named and configured as the verifier is the same object (one reward model in memory).
+    """
+    verifier_params, oracle_params = dict(verifier_params or {}), dict(oracle_params or {})
+    check_spec("verifier", verifier, verifier_params)
+    check_spec("oracle", oracle, oracle_params, allow_empty=True)
+    user_data = getattr(task, "name", "") in USER_DATA_TASKS
+    train = _make(task, examples, "verifier", verifier, verifier_params, device)
+    by_default = oracle == ""
+    if by_default:
+        if not user_data or verifier == "exact":
+            oracle = "exact"
+        else:
+            if isinstance(train, RewardModel) and train.threshold is None:
+                raise ValueError(f"oracle must be set: the verifier {verifier!r} gives scores, not 0/1 rewards (no "
+                                 "verifier_params.threshold), so it cannot define pass@k; set oracle = 'exact' (with an "
+                                 "answer_field), 'unit_tests' or 'module:function', or give the reward model a threshold")
+            oracle, oracle_params = verifier, verifier_params
+    if oracle == verifier and oracle_params == verifier_params:
+        orc = train
+    else:
+        orc = _make(task, examples, "oracle", oracle, oracle_params, device)
+    others = {}
+    if not user_data and hasattr(task, "proxy_verifier"):
+        proxy = task.proxy_verifier(examples)
+        if proxy is not None:
+            others["proxy"] = train if verifier == "proxy" else proxy
+    return Roles(verifier=train, verifier_name=verifier, oracle=orc, oracle_name=oracle,
+                 oracle_is_verifier=by_default and orc is train and oracle != "exact", others=others)
+
+
+def check_oracle_rewards(rewards: Any, roles: Roles) -> None:
+    """With the verifier as the default oracle, its rewards must all be 0 or 1 (else pass@k is not defined by it)."""
+    import numpy as np
+
+    if not roles.oracle_is_verifier:
+        return
+    r = np.asarray(rewards, dtype=np.float64)
+    bad = r[(r != 0.0) & (r != 1.0)]
+    if bad.size:
+        raise ValueError(f"oracle must be set: the verifier {roles.verifier_name!r} is the default oracle but gave rewards "
+                         f"other than 0 and 1 ({bad.size} of {r.size}, e.g. {float(bad[0]):.4g}), so it cannot define "
+                         "pass@k; set oracle (e.g. 'exact', 'unit_tests' or 'module:function') to a 0/1 checker")
