@@ -1,6 +1,7 @@
 """Bad input found before any work, with the file and the line: pool files, prompt files,
 too few prompts for an interval, task sizes, the model's context, progress on long generation."""
 import json
+import re
 import warnings
 
 import numpy as np
@@ -389,3 +390,130 @@ def test_a_binary_or_non_utf8_recipe_names_the_file(tmp_path):
     assert code == 2 and err == f"bonft train: error: recipe {binary} is a binary file (a NUL byte at offset 4), not a TOML text recipe"
     latin.write_bytes('rl_steps = 1\nname = "café"\n'.encode())  # the same recipe in UTF-8 reads
     assert load_config(latin).name == "café"
+
+
+# ----------------------------------------------------------------------------- checkpoints
+class _Payload:
+    """A pickle that runs code when loaded: it would create the marker file."""
+
+    def __init__(self, marker):
+        self.marker = str(marker)
+
+    def __reduce__(self):
+        import os
+
+        return (os.system, (f"touch {self.marker}",))
+
+
+def _relist(ckpt, files=None) -> None:
+    """Rewrite a checkpoint's manifest: ``files`` as given, or every file it now holds with its true size and hash."""
+    import hashlib
+
+    man = json.loads((ckpt / "manifest.json").read_text())
+    if files is None:
+        files = {p.relative_to(ckpt).as_posix(): {"bytes": p.stat().st_size, "sha256": hashlib.sha256(p.read_bytes()).hexdigest()}
+                 for p in sorted(ckpt.rglob("*")) if p.is_file() and p.name != "manifest.json"}
+    man["files"] = files
+    (ckpt / "manifest.json").write_text(json.dumps(man))
+
+
+@pytest.fixture(scope="module")
+def two_checkpoints(tmp_path_factory):
+    """A finished tiny run with checkpoints step-1 and step-2 (a source for damaged copies)."""
+    from bonft.trainer.config import from_dict
+    from bonft.trainer.loop import train
+
+    run = tmp_path_factory.mktemp("trained") / "run"
+    cfg = dict(layers=1, width=16, heads=2, max_positions=40, train_prompts=16, heldout_prompts=2, rl_steps=2,
+               prompts_per_step=2, n=2, k=2, lr=1e-2, eval_samples=2, eval_ks=[1], n_boot=10, log_every=1,
+               save_every=1, keep_checkpoints=2, max_new_tokens=4, plots=False, eval_at_start=False, threads=1)
+    train(from_dict({**cfg, "run_dir": str(run)}), progress=False)
+    return run
+
+
+def _copy(run, dest):
+    import shutil
+
+    shutil.copytree(run, dest)
+    return dest, dest / "checkpoints" / "step-00000002"
+
+
+def test_a_manifest_must_list_every_file_the_checkpoint_needs(two_checkpoints, tmp_path):
+    from bonft.trainer.checkpoint import CheckpointError, CheckpointWarning, latest_checkpoint, verify_checkpoint
+
+    run, newest = _copy(two_checkpoints, tmp_path / "empty")
+    _relist(newest, files={})  # a manifest that lists nothing proves nothing
+    with pytest.raises(CheckpointError, match=rf"^checkpoint {newest} is damaged: manifest.json does not list state.pt, "
+                                              r"config.toml, model/config.json, model/\*.safetensors \(the weights\), "
+                                              r"tokenizer/ \(the tokenizer files\); a manifest must list every file the "
+                                              r"checkpoint needs$"):
+        verify_checkpoint(newest)
+    with pytest.warns(CheckpointWarning, match=r"using the newest good checkpoint .*step-00000001 instead"):
+        assert latest_checkpoint(run).name == "step-00000001"
+    man = json.loads((two_checkpoints / "checkpoints" / "step-00000002" / "manifest.json").read_text())["files"]
+    _relist(newest, files={k: v for k, v in man.items() if not k.startswith("tokenizer/")})
+    with pytest.raises(CheckpointError, match=r"does not list tokenizer/ \(the tokenizer files\); a manifest must list"):
+        verify_checkpoint(newest)
+    _relist(newest, files=man)
+    assert verify_checkpoint(newest) == newest  # the written manifest is complete
+    (newest / "model" / "notes.txt").write_text("added later")
+    with pytest.raises(CheckpointError, match=rf"^checkpoint {newest} is damaged: model/notes.txt is not in manifest.json "
+                                              r"\(added after the save, or the manifest was rewritten\)$"):
+        verify_checkpoint(newest)
+
+
+def test_pickled_weights_are_refused_naming_the_file_and_the_older_checkpoint_is_used(two_checkpoints, tmp_path):
+    import pickle
+
+    from bonft.trainer.checkpoint import CheckpointError, CheckpointWarning, latest_checkpoint, verify_checkpoint
+
+    marker = tmp_path / "ran"
+    run, newest = _copy(two_checkpoints, tmp_path / "pickle")
+    (newest / "model" / "model.safetensors").unlink()
+    with open(newest / "model" / "pytorch_model.bin", "wb") as fh:
+        pickle.dump({"w": _Payload(marker)}, fh)
+    _relist(newest)  # the attacker rewrites the manifest too: sizes and hashes match
+    why = r"refusing model/pytorch_model.bin, a pickle file \(loading it can run code\); bonft checkpoints hold weights as safetensors only"
+    with pytest.raises(CheckpointError, match=rf"^checkpoint {newest} is damaged: {why}$"):
+        verify_checkpoint(newest)
+    with pytest.warns(CheckpointWarning, match=rf"{why}; using the newest good checkpoint .*step-00000001 instead"):
+        assert latest_checkpoint(run).name == "step-00000001"
+    for argv, code in ((["eval", run, "--n", "2", "--ks", "1"], 0),
+                       (["eval", newest, "--n", "2", "--ks", "1"], 2),  # named directly: refused, no substitute
+                       (["train", run / "config.toml", "--resume", "--output", run, "--quiet"], 0)):  # last: it saves
+        got, err = _cli(*argv)
+        lines = [ln for ln in err.splitlines() if ln.startswith("bonft ")]
+        assert got == code and "Traceback" not in err, err
+        assert len(lines) == 1 and re.search(why, lines[0]), err
+        if code == 0:
+            assert lines[0].startswith(f"bonft {argv[0]}: warning: checkpoint {newest} is damaged: ")
+    assert not marker.exists()
+
+
+@pytest.mark.filterwarnings("ignore:Detected pickle protocol")  # torch, about the crafted file
+def test_a_model_directory_with_a_crafted_pickle_is_one_line(tmp_path):
+    import pickle
+
+    import torch
+
+    from bonft.tasks import build_tokenizer
+    from bonft.trainer.models import build_tiny_model, load_model
+
+    marker, bare = tmp_path / "ran", tmp_path / "bare"
+    tok = build_tokenizer()
+    model = build_tiny_model("gpt2", vocab_size=len(tok), layers=1, width=16, heads=2)
+    model.save_pretrained(bare / "model")  # a bonft model directory without a manifest (not a training checkpoint)
+    tok.save_pretrained(bare / "tokenizer")
+    (bare / "model" / "model.safetensors").unlink()  # weights as another program may leave them: a pickle of tensors
+    torch.save(model.state_dict(), bare / "model" / "pytorch_model.bin")
+    load_model(bare, device="cpu")  # a plain pickle of tensors loads (torch's weights-only loader accepts it)
+    with open(bare / "model" / "pytorch_model.bin", "wb") as fh:
+        pickle.dump({"w": _Payload(marker)}, fh)
+    pattern = (rf"^refusing {bare / 'model' / 'pytorch_model.bin'}: pickled weights holding objects other than tensors \(loading "
+               r"them can run code\); bonft loads such files only as plain tensors. Was it written by another program\? "
+               r"Save the model as safetensors$")
+    with pytest.raises(ValueError, match=pattern):
+        load_model(bare, device="cpu")
+    code, err = _cli("eval", bare, "--n", "2", "--ks", "1")
+    assert code == 2 and re.match(pattern.replace("^", "^bonft eval: error: ", 1), err.splitlines()[-1]), err
+    assert not marker.exists()

@@ -23,7 +23,7 @@ import torch
 from transformers import AutoModelForCausalLM, AutoTokenizer, GPT2Config, GPT2LMHeadModel, LlamaConfig, LlamaForCausalLM
 
 from bonft._core.checks import check_choice, check_int
-from bonft.trainer.checkpoint import is_verified_checkpoint, resolve_checkpoint, verify_checkpoint
+from bonft.trainer.checkpoint import PICKLE_SUFFIXES, is_verified_checkpoint, resolve_checkpoint, verify_checkpoint
 
 ARCHS = ("gpt2", "llama")
 
@@ -186,8 +186,6 @@ def load_model(path: str | os.PathLike, *, device: str | torch.device | None = N
     try:
         model = AutoModelForCausalLM.from_pretrained(model_dir, local_files_only=True)
     except pickle.UnpicklingError:  # torch's weights-only loader met objects that could run code
-        from bonft.trainer.checkpoint import PICKLE_SUFFIXES
-
         found = sorted(p for p in model_dir.iterdir() if p.name.endswith(PICKLE_SUFFIXES))
         raise ValueError(f"refusing {found[0] if found else model_dir}: pickled weights holding objects other than "
                          f"tensors (loading them can run code); bonft loads such files only as plain tensors. Was it "
