@@ -10,6 +10,7 @@ from Schulman et al. 2017 ("Proximal Policy Optimization Algorithms", eq. 7):
 L = E[min(r A, clip(r, 1 - eps, 1 + eps) A)].
 """
 import itertools
+import math
 
 import numpy as np
 import pytest
@@ -272,3 +273,13 @@ def test_reuse_bad_input_messages():
         nll_loss(lp[:, 0], mask=mask[:, 0], sampling_logprobs=old[:, 0])
     with pytest.raises(ValueError, match=r"anchor_weight=0.1 needs anchor_logprobs"):
         reinforce_loss(lp, R, mask=mask, anchor_weight=0.1)
+
+
+def test_ratio_ess_stays_finite_for_ratios_too_large_to_square():
+    # (sum r)^2 / (N sum r^2) is unchanged by scaling every r (Kish 1965), so e^300 and e^301 give the
+    # same share as 1 and e: (1 + e)^2 / (2 (1 + e^2)), although (e^301)^2 overflows float64
+    lp = torch.zeros(1, 2, dtype=torch.float64)
+    old = torch.tensor([[-300.0, -301.0]], dtype=torch.float64)
+    _, info = reinforce_loss(lp, np.array([[1.0, 0.0]]), sampling_logprobs=old, return_info=True)
+    e = math.e
+    assert float(info["ratio_ess"]) == pytest.approx((1 + e) ** 2 / (2 * (1 + e * e)), rel=1e-14)

@@ -237,13 +237,22 @@ def _reweighted_sum(lp: Tensor, m: Tensor | None, w: Tensor, opt: LossOptions, i
         dropped = ((unit_credit > 0) & (ratio > 1 + eps)) | ((unit_credit < 0) & (ratio < 1 - eps))
         coef = torch.where(dropped, 0.0, ratio)
         info["clip_frac"] = _unit_mean(dropped.to(ratio.dtype), m if level == "token" else None)
-    r_sum = _unit_mean(ratio, m if level == "token" else None)
-    r2_sum = _unit_mean(ratio * ratio, m if level == "token" else None)
-    info["ratio_ess"] = r_sum * r_sum / r2_sum
+    info["ratio_ess"] = _ess(log_ratio, m if level == "token" else None)
     if level == "token":
         terms = coef * lp
         return terms.sum(-1) if m is None else torch.where(m, terms, 0.0).sum(-1)
     return coef * _masked_sum(lp, m)
+
+
+def _ess(log_ratio: Tensor, m: Tensor | None) -> Tensor:
+    """Effective sample size of the ratios as a share of their count, ``(sum r)^2 / (N sum r^2)`` (Kish 1965).
+
+    Scale-free, so computed from ``r / max r``: ratios too large to square stay finite.
+    """
+    top = (log_ratio if m is None else torch.where(m, log_ratio, -torch.inf)).max()
+    rel = torch.exp(log_ratio - top)
+    mean = _unit_mean(rel, m)
+    return mean * mean / _unit_mean(rel * rel, m)
 
 
 def _unit_mean(x: Tensor, m: Tensor | None) -> Tensor:
