@@ -1,0 +1,55 @@
+"""ZeroCreditWatch: one warning when the first 10% of the RL stage had zero credit on every step.
+
+The window sizes are ceil(rl_steps / 10) worked by hand; the metrics fed are written out, not produced by a run.
+"""
+import pytest
+
+from bonft.trainer.zero_credit import ZeroCreditWarning, ZeroCreditWatch
+
+
+def feed(watch, recs):
+    out = []
+    for i, rec in enumerate(recs):
+        out.append(watch.update(i, rec))
+    return out
+
+
+@pytest.mark.parametrize("rl_steps, window", [(1, 1), (10, 1), (11, 2), (25, 3), (100, 10)])
+def test_window_is_the_first_tenth(rl_steps, window):
+    assert ZeroCreditWatch(rl_steps, "reinforce", 0.5).window == window
+
+
+def test_never_rewarded_warns_once_with_the_count():
+    watch = ZeroCreditWatch(25, "pass_at_k", 0.5)
+    zero = {"pool/with_signal": 0.0, "reward": 0.0}
+    with pytest.warns(ZeroCreditWarning) as got:
+        out = feed(watch, [zero] * 6)
+    assert len(got) == 1
+    assert out[:2] == [None, None] and out[3:] == [None] * 3
+    assert out[2].startswith("the credit was zero on every one of the first 3 RL steps (3 of 25, the first 10%")
+    assert "no sample was ever rewarded" in out[2]
+
+
+def test_threshold_never_reached_names_correct_threshold():
+    watch = ZeroCreditWatch(10, "pass_at_k", 0.9)
+    with pytest.warns(ZeroCreditWarning, match=r"mean up to 0.42\) but no sample reached correct_threshold = 0.9"):
+        feed(watch, [{"pool/with_signal": 0.0, "reward": 0.42}])
+
+
+def test_all_equal_pools():
+    watch = ZeroCreditWatch(10, "reinforce", 0.5)
+    with pytest.warns(ZeroCreditWarning, match=r"every pool was all-equal \(mean reward up to 1:"):
+        feed(watch, [{"pool/with_signal": 0.0, "reward": 1.0}])
+
+
+def test_one_step_with_signal_silences_it(recwarn):
+    watch = ZeroCreditWatch(30, "pass_at_k", 0.5)
+    out = feed(watch, [{"pool/with_signal": 0.0, "reward": 0.0}, {"pool/with_signal": 0.0625, "reward": 0.01},
+                       {"pool/with_signal": 0.0, "reward": 0.0}] + [{"pool/with_signal": 0.0, "reward": 0.0}] * 10)
+    assert out == [None] * 13 and not [w for w in recwarn if issubclass(w.category, ZeroCreditWarning)]
+
+
+def test_a_resume_inside_the_window_gives_no_verdict(recwarn):
+    watch = ZeroCreditWatch(30, "pass_at_k", 0.5)
+    assert watch.update(2, {"pool/with_signal": 0.0, "reward": 0.0}) is None  # steps 0 and 1 ran before the resume
+    assert not recwarn.list
