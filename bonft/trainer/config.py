@@ -93,12 +93,12 @@ class TrainConfig:
     name: str = _f("run", "A label for the run, written into metrics and summaries.", group="run")
     seed: int = _f(0,
                    "Seed of the run. The RNG of every step is derived from (seed, step, rank), so a resumed run"
-                   " draws what an uninterrupted one would.", group="run")
+                   " draws what an uninterrupted one would. 0 <= seed < 2**63.", group="run")
     run_dir: str = _f("runs/run", "Directory for metrics.jsonl, checkpoints/, plots and summary.json.", group="run")
     device: str = _f("cpu", "'cpu', 'cuda' or 'auto'.", group="run")
     threads: int = _f(1,
-                      "torch intra-op threads (>= 1). Tiny models run fastest single-threaded; use the other "
-                      "cores for parallel runs.", group="run")
+                      "torch intra-op threads, 1 to the machine's cores (os.cpu_count()). Tiny models run fastest "
+                      "single-threaded; use the other cores for parallel runs.", group="run")
     # --- model ---
     start_from: str = _f("",
                          "Start from this model: a bonft checkpoint directory or a local transformers "
@@ -133,8 +133,9 @@ class TrainConfig:
     # --- RL stage ---
     objective: str = _f("pass_at_k", f"What the RL stage optimises: one of {', '.join(OBJECTIVES)}.", group="rl")
     rl_steps: int = _f(0, "RL optimizer steps. 0 = skip the RL stage.", group="rl")
-    prompts_per_step: int = _f(16, "Prompts per RL optimizer step (global, over all ranks).", group="rl")
-    n: int = _f(16, "Responses sampled per prompt.", group="rl")
+    prompts_per_step: int = _f(16, "Prompts per RL optimizer step (global, over all ranks), <= 65,536; prompts_per_step / grad_accum x n "
+                               "<= 2**20 responses sampled at once.", group="rl")
+    n: int = _f(16, "Responses sampled per prompt, <= 65,536.", group="rl")
     k: int = _f(8,
                 "k of best-of-k / pass@k that the objective targets (1 <= k <= n). It has no effect on "
                 "reinforce, which targets the mean reward (pass@1).", group="rl")
@@ -189,14 +190,15 @@ class TrainConfig:
                          "and after.", group="eval")
     eval_at_start: bool = _f(True,
                              "Evaluate before the first RL step (the 'before' of a before/after comparison).", group="eval")
-    eval_samples: int = _f(64, "Samples per held-out prompt at evaluation (old spelling: eval_n).", group="eval")
+    eval_samples: int = _f(64, "Samples per held-out prompt at evaluation, <= 65,536 (old spelling: eval_n).",
+                          group="eval")
     eval_ks: list = _f([1, 4, 16, 32],
                        "k values of the best-of-k / pass@k curves (each <= eval_samples).", group="eval")
     eval_temperature: float = _f(1.0, "Sampling temperature at evaluation.", group="eval")
     eval_prompts: int = _f(0,
                            "Evaluate on the first this many held-out prompts; 0 = all heldout_prompts.", group="eval")
     confidence: float = _f(0.95, "Confidence level of the bootstrap intervals.", group="eval")
-    n_boot: int = _f(1000, "Bootstrap resamples of the intervals.", group="eval")
+    n_boot: int = _f(1000, "Bootstrap resamples of the intervals, <= 1,000,000.", group="eval")
     # --- checkpoints and logging ---
     save_every: int = _f(100,
                          "Write a checkpoint every this many optimizer steps (both stages); 0 = only at the end"
