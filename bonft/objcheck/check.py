@@ -39,7 +39,7 @@ import time
 import numpy as np
 
 from bonft._core.checks import check_int, check_k, check_positive
-from bonft.objcheck.categorical import check_policy, categorical_case, random_policy, target_gradient
+from bonft.objcheck.categorical import categorical_case, check_policy, random_policy, target_gradient
 from bonft.objcheck.enumeration import Progress, resolve_target
 from bonft.objcheck.report import ObjectiveReport
 from bonft.objcheck.transformer import transformer_check
