@@ -17,8 +17,10 @@ Written by ``bonft sample``, read by ``bonft estimate`` and ``bonft plan``::
 - ``prompt`` (str, optional): the prompt text, to join rows back to the data (not read here).
 
 Field names can be renamed on reading (``score_field="rm_score"`` ...). Blank
-lines are skipped. A malformed line (bad JSON, nested too deeply, not UTF-8)
-raises ``ValueError`` naming the file and line number; rows repeated exactly
+lines are skipped; every other line is parsed on its own (a JSON value never
+spans two lines). A malformed line (bad JSON, nested too deeply, not UTF-8, a
+number beyond float64 or, for ``n_tokens``, beyond int64) raises ``ValueError``
+naming the file, line number and field; rows repeated exactly
 are reported (``duplicates=``). Writing is atomic (temp file + ``os.replace``), so a crash never
 leaves a half-written file in place of a good one.
 
