@@ -31,13 +31,20 @@ def worker(args: argparse.Namespace) -> None:
     import torch
 
     torch.set_num_threads(1)
-    from bonft.generation import sample
-    from bonft.trainer.distributed import (global_mean_scale, init_from_env, prompt_seed, reduce_metrics,
-                                   shard_bounds, shutdown, unwrap_model, wrap_model)
+    from bonft.generation import sample, sequence_logprobs
     from bonft.objectives.losses import reinforce_loss
-    from bonft.trainer.models import build_tiny_model
-    from bonft.generation import sequence_logprobs
     from bonft.tasks import build_tokenizer
+    from bonft.trainer.distributed import (
+        global_mean_scale,
+        init_from_env,
+        prompt_seed,
+        reduce_metrics,
+        shard_bounds,
+        shutdown,
+        unwrap_model,
+        wrap_model,
+    )
+    from bonft.trainer.models import build_tiny_model
 
     ctx = init_from_env(device="cpu", timeout_s=120)
     tok = build_tokenizer()
@@ -57,8 +64,8 @@ def worker(args: argparse.Namespace) -> None:
         smp = sample(unwrap_model(ddp), tok, mine, seeds=[prompt_seed(0, step=s, slot=j) for j in range(start, stop)],
                                 n=n, temperature=1.0, max_new_tokens=args.max_new_tokens)
         rewards = torch.tensor([[float(any(c.isdigit() for c in t)) for t in row] for row in smp.texts])  # (b, n)
-        logp = sequence_logprobs(ddp, smp.prompt_tokens, smp.prompt_valid, smp.reply_tokens, smp.reply_valid)
-        loss = reinforce_loss(logp, rewards, baseline="loo", mask=smp.reply_valid, reduction="sum")
+        logp = sequence_logprobs(ddp, smp.prompt_tokens, smp.prompt_valid, smp.response_tokens, smp.response_valid)
+        loss = reinforce_loss(logp, rewards, baseline="loo", mask=smp.response_valid, reduction="sum")
         (loss * scale).backward()
         opt.step()
 

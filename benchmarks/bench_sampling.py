@@ -78,7 +78,7 @@ def run_generate(model, tok, prompts, n, T, seed):
 
 def run_bonft(model, tok, prompts, n, T, seed):
     s = sample(model, NoEos(tok), prompts, n=n, max_new_tokens=T, seed=seed)
-    assert s.reply_tokens.shape == (len(prompts), n, T)
+    assert s.response_tokens.shape == (len(prompts), n, T)
     return s
 
 

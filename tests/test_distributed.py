@@ -136,7 +136,8 @@ def test_shard_prompts_keeps_the_type_and_refuses_bad_input():
     t = torch.arange(12).reshape(6, 2)
     assert torch.equal(shard_prompts(t, rank=1, world_size=3), t[2:4])
     assert shard_prompts(list("abcdef"), rank=2, world_size=3) == ["e", "f"]
-    with pytest.raises(ValueError, match=r"prompts_per_step must be divisible by the world size \(world_size=3\).*got prompts_per_step=16; use e.g. 15 or 18"):
+    with pytest.raises(ValueError, match=r"prompts_per_step must be divisible by the world size \(world_size=3\).*"
+                                         r"got prompts_per_step=16; use e.g. 15 or 18"):
         shard_bounds(16, rank=0, world_size=3, name="prompts_per_step")
     with pytest.raises(ValueError, match=r"items must hold whole pools of pool_size=4 rows, got 6 rows"):
         shard_prompts(list(range(6)), rank=0, world_size=1, pool_size=4)
@@ -378,11 +379,11 @@ def test_a_prompts_samples_do_not_depend_on_the_other_prompts_in_the_call(tiny_l
     alone = sample(model, tok, prompts[1:2], seeds=seeds[1:2], **kw)
     rev = sample(model, tok, prompts[::-1], seeds=seeds[::-1], **kw)
     assert full.texts[1] == alone.texts[0] and rev.texts == full.texts[::-1]
-    t = alone.reply_tokens.shape[2]
-    assert torch.equal(full.reply_tokens[1, :, :t], alone.reply_tokens[0])
-    assert full.reply_tokens.shape[:2] == (3, 5) and full.prompt_valid.sum(1).tolist() == [5, 19, 2]  # BOS + chars
+    t = alone.response_tokens.shape[2]
+    assert torch.equal(full.response_tokens[1, :, :t], alone.response_tokens[0])
+    assert full.response_tokens.shape[:2] == (3, 5) and full.prompt_valid.sum(1).tolist() == [5, 19, 2]  # BOS + chars
     # the padded batch is a valid Samples: one training forward recomputes the sampler's log-probs
-    lp = sequence_logprobs(model, full.prompt_tokens, full.prompt_valid, full.reply_tokens, full.reply_valid,
+    lp = sequence_logprobs(model, full.prompt_tokens, full.prompt_valid, full.response_tokens, full.response_valid,
                            temperature=1.3)
     torch.testing.assert_close(lp, full.token_logprobs, rtol=0, atol=1e-5)
     assert len({tuple(r) for r in full.texts}) == 3  # different slots, different streams

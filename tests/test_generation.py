@@ -69,7 +69,7 @@ def test_first_token_matches_exact_softmax(temperature, batch_size):
     toks = list(FIRST)
     p = _softmax(np.array([FIRST[t] for t in toks]) / temperature)  # exact softmax(logits / T)
     s = sample(model, TOK, [""] , n=6000, temperature=temperature, max_new_tokens=1, seed=3, batch_size=batch_size)
-    first = s.reply_tokens[0, :, 0].numpy()
+    first = s.response_tokens[0, :, 0].numpy()
     counts = np.array([(first == t).sum() for t in toks])
     assert counts.sum() == 6000  # nothing outside the support
     # Pearson chi-square goodness of fit (scipy.stats.chisquare), 4 d.o.f.
@@ -90,7 +90,7 @@ def test_two_step_sequences_match_product_law():
     pa = _softmax(np.array([-1.0, 1.0]) / 0.8)
     pb = _softmax(np.array([0.2, 0.0]) / 0.8)
     cells = {(a, a): p1[0] * pa[0], (a, b): p1[0] * pa[1], (b, a): p1[1] * pb[0], (b, EOS_ID): p1[1] * pb[1]}
-    pairs = [tuple(r) for r in s.reply_tokens[0].tolist()]
+    pairs = [tuple(r) for r in s.response_tokens[0].tolist()]
     counts = np.array([pairs.count(c) for c in cells])
     assert counts.sum() == 8000
     assert stats.chisquare(counts, 8000 * np.array(list(cells.values()))).pvalue > 1e-3  # scipy chi-square
@@ -107,14 +107,14 @@ def test_top_p_truncates_and_renormalises():
     toks = [CH[c] for c in "vwxyz"]
     model = TableLM(_table({BOS_ID: dict(zip(toks, np.log(probs)))}))
     s = sample(model, TOK, [""], n=6000, top_p=0.8, max_new_tokens=1, seed=5)
-    first = s.reply_tokens[0, :, 0].numpy()
+    first = s.response_tokens[0, :, 0].numpy()
     counts = np.array([(first == t).sum() for t in toks])
     assert counts[3] == 0 and counts[4] == 0
     q = probs[:3] / probs[:3].sum()
     assert stats.chisquare(counts[:3], 6000 * q).pvalue > 1e-3  # scipy chi-square
     np.testing.assert_allclose(s.token_logprobs[0, :, 0].numpy(), np.log(q)[[toks.index(t) for t in first]], atol=1e-5)
     # the training pass with the same top_p gives the same renormalised log-probs
-    lp = sequence_logprobs(model, s.prompt_tokens, s.prompt_valid, s.reply_tokens, s.reply_valid, top_p=0.8)
+    lp = sequence_logprobs(model, s.prompt_tokens, s.prompt_valid, s.response_tokens, s.response_valid, top_p=0.8)
     torch.testing.assert_close(lp, s.token_logprobs, atol=1e-5, rtol=0)
 
 
@@ -123,7 +123,7 @@ def test_eos_stop_lengths_are_geometric_and_masks_are_right():
     a = CH["a"]
     model = TableLM(_table({BOS_ID: {a: 0.0, EOS_ID: 0.0}, a: {a: 0.0, EOS_ID: 0.0}}))
     s = sample(model, TOK, [""], n=4000, max_new_tokens=6, seed=2)
-    ids, mask = s.reply_tokens[0], s.reply_valid[0]
+    ids, mask = s.response_tokens[0], s.response_valid[0]
     L = mask.sum(-1)
     for row, m, ell, text in zip(ids.tolist(), mask.tolist(), L.tolist(), s.texts[0]):
         assert m == [1] * ell + [0] * (len(m) - ell)  # ones, then zeros
@@ -140,7 +140,7 @@ def test_eos_stop_lengths_are_geometric_and_masks_are_right():
 def test_loop_stops_when_every_row_is_done():
     model = TableLM(_table({BOS_ID: {EOS_ID: 0.0}}))
     s = sample(model, TOK, ["", ""], n=3, max_new_tokens=20, seed=0)
-    assert s.reply_tokens.shape == (2, 3, 1) and model.calls == 1
+    assert s.response_tokens.shape == (2, 3, 1) and model.calls == 1
     assert s.texts == [["", "", ""], ["", "", ""]]
 
 
@@ -170,24 +170,24 @@ def test_shapes_masks_and_texts(arch):
     model = _tiny(arch, eos_boost=3.0)
     s = sample(model, TOK, PROMPTS, n=5, max_new_tokens=12, temperature=1.3, seed=0, batch_size=4)
     assert isinstance(s, Samples) and s.n == 5 and s.temperature == 1.3
-    B, n, T = s.reply_tokens.shape
+    B, n, T = s.response_tokens.shape
     assert (B, n) == (3, 5) and 1 <= T <= 12
     assert s.prompt_tokens.shape == s.prompt_valid.shape == (3, len(PROMPTS[2]) + 1)  # + <bos>
     assert s.prompt_valid.sum(-1).tolist() == [len(p) + 1 for p in PROMPTS]
     assert (s.prompt_valid[:, -1] == 1).all()  # left padding: every prompt ends at the right edge
-    m = s.reply_valid
+    m = s.response_valid
     assert ((m[..., 1:] <= m[..., :-1])).all()  # ones then zeros
-    assert (s.reply_tokens[m == 0] == PAD_ID).all()
+    assert (s.response_tokens[m == 0] == PAD_ID).all()
     assert (s.token_logprobs[m == 0] == 0).all() and (s.token_logprobs[m == 1] < 0).all()
-    eos = (s.reply_tokens == EOS_ID) & (m == 1)
+    eos = (s.response_tokens == EOS_ID) & (m == 1)
     L = m.sum(-1)
     stopped = eos.any(-1)
     assert stopped.float().mean() > 0.5  # the EOS boost makes most rows stop
-    last = s.reply_tokens.gather(-1, (L - 1).clamp(min=0)[..., None]).squeeze(-1)
+    last = s.response_tokens.gather(-1, (L - 1).clamp(min=0)[..., None]).squeeze(-1)
     assert (last[stopped] == EOS_ID).all() and (eos.sum(-1) <= 1).all()  # EOS only as the last token
     for b in range(B):
         for j in range(n):
-            toks = [t for t in s.reply_tokens[b, j, : L[b, j]].tolist() if t != EOS_ID]
+            toks = [t for t in s.response_tokens[b, j, : L[b, j]].tolist() if t != EOS_ID]
             assert s.texts[b][j] == TOK.decode(toks, skip_special_tokens=True)
 
 
@@ -197,8 +197,8 @@ def test_seed_reproducible(arch):
     s1 = sample(model, TOK, PROMPTS, n=4, max_new_tokens=8, seed=7)
     s2 = sample(model, TOK, PROMPTS, n=4, max_new_tokens=8, seed=7)
     s3 = sample(model, TOK, PROMPTS, n=4, max_new_tokens=8, seed=8)
-    assert torch.equal(s1.reply_tokens, s2.reply_tokens) and s1.texts == s2.texts
-    assert not torch.equal(s1.reply_tokens, s3.reply_tokens)
+    assert torch.equal(s1.response_tokens, s2.response_tokens) and s1.texts == s2.texts
+    assert not torch.equal(s1.response_tokens, s3.response_tokens)
 
 
 @pytest.mark.parametrize("arch", ["gpt2", "llama"])
@@ -207,7 +207,7 @@ def test_sequence_logprobs_agree_with_sampler(arch, top_p):
     model = _tiny(arch, eos_boost=2.0)
     s = sample(model, TOK, PROMPTS, n=4, max_new_tokens=10, temperature=0.7, top_p=top_p, seed=1)
     model.train()  # no dropout in the tiny models: the mode must not matter
-    lp = sequence_logprobs(model, s.prompt_tokens, s.prompt_valid, s.reply_tokens, s.reply_valid,
+    lp = sequence_logprobs(model, s.prompt_tokens, s.prompt_valid, s.response_tokens, s.response_valid,
                            temperature=0.7, top_p=top_p)
     assert lp.shape == s.token_logprobs.shape and lp.requires_grad
     assert (lp - s.token_logprobs).abs().max().item() < 1e-5
@@ -220,18 +220,18 @@ def test_sequence_logprobs_agree_with_sampler(arch, top_p):
 def test_padding_changes_nothing(arch):
     model = _tiny(arch)
     s = sample(model, TOK, PROMPTS, n=3, max_new_tokens=6, temperature=1.0, seed=4)
-    base = sequence_logprobs(model, s.prompt_tokens, s.prompt_valid, s.reply_tokens, s.reply_valid)
+    base = sequence_logprobs(model, s.prompt_tokens, s.prompt_valid, s.response_tokens, s.response_valid)
     # extra left padding of prompts and extra right padding of responses
     pid = torch.cat([torch.full((3, 5), PAD_ID), s.prompt_tokens], 1)
     pm = torch.cat([torch.zeros(3, 5, dtype=torch.long), s.prompt_valid], 1)
-    rid = torch.cat([s.reply_tokens, torch.full((3, 3, 4), PAD_ID)], 2)
-    rm = torch.cat([s.reply_valid, torch.zeros(3, 3, 4, dtype=torch.long)], 2)
+    rid = torch.cat([s.response_tokens, torch.full((3, 3, 4), PAD_ID)], 2)
+    rm = torch.cat([s.response_valid, torch.zeros(3, 3, 4, dtype=torch.long)], 2)
     padded = sequence_logprobs(model, pid, pm, rid, rm)
     assert (padded[..., :-4] - base).abs().max().item() < 1e-5 and (padded[..., -4:] == 0).all()
     # each prompt alone (no padding at all) gives the same log-probs as in the padded batch
     for b, p in enumerate(PROMPTS):
         ids = torch.tensor([TOK(p)["input_ids"]])
-        alone = sequence_logprobs(model, ids, torch.ones_like(ids), s.reply_tokens[b:b + 1], s.reply_valid[b:b + 1])
+        alone = sequence_logprobs(model, ids, torch.ones_like(ids), s.response_tokens[b:b + 1], s.response_valid[b:b + 1])
         assert (alone[0] - s.token_logprobs[b]).abs().max().item() < 1e-5
 
 
@@ -244,7 +244,7 @@ def test_padded_prompt_has_the_unpadded_next_token_law(arch):
         p = torch.softmax(model(input_ids=ids).logits[0, -1].double(), -1).numpy()  # exact law, unpadded
     # the short prompt sits in a batch with a longer one, so it is left-padded by 23 tokens
     s = sample(model, TOK, [short, PROMPTS[2]], n=2000, max_new_tokens=1, seed=9)
-    counts = np.bincount(s.reply_tokens[0, :, 0].numpy(), minlength=V)
+    counts = np.bincount(s.response_tokens[0, :, 0].numpy(), minlength=V)
     big = p * 2000 >= 5  # chi-square needs expected counts >= 5: pool the rest into one cell
     obs, exp = counts[big], p[big] * 2000
     if (~big).any():
@@ -259,7 +259,7 @@ def test_one_row_at_a_time_equals_batched_law(arch):
     # unpadded model, as in the batched run (the law of each token given the past is the same)
     model = _tiny(arch, eos_boost=2.0)
     s = sample(model, TOK, PROMPTS, n=2, max_new_tokens=8, seed=3, batch_size=1)
-    lp = sequence_logprobs(model, s.prompt_tokens, s.prompt_valid, s.reply_tokens, s.reply_valid)
+    lp = sequence_logprobs(model, s.prompt_tokens, s.prompt_valid, s.response_tokens, s.response_valid)
     assert (lp - s.token_logprobs).abs().max().item() < 1e-5
 
 
@@ -267,7 +267,7 @@ def test_one_row_at_a_time_equals_batched_law(arch):
 def test_encode_responses_reproduces_sampled_tokens(arch):
     model = _tiny(arch, eos_boost=3.0)
     s = sample(model, TOK, PROMPTS, n=4, max_new_tokens=10, seed=6)
-    stopped = ((s.reply_tokens == EOS_ID) & (s.reply_valid == 1)).any(-1)  # (B, n)
+    stopped = ((s.response_tokens == EOS_ID) & (s.response_valid == 1)).any(-1)  # (B, n)
     pid, pm, rid, rm = encode_responses(TOK, PROMPTS, s.texts)
     assert torch.equal(pid, s.prompt_tokens) and torch.equal(pm, s.prompt_valid)
     lp = sequence_logprobs(model, pid, pm, rid, rm).sum(-1)
@@ -294,7 +294,7 @@ def test_sampling_builds_no_graph_with_grad_enabled():
     assert torch.is_grad_enabled()
     s = sample(model, TOK, ["a", "bb"], n=3, max_new_tokens=4, seed=0)
     assert not s.token_logprobs.requires_grad and s.token_logprobs.grad_fn is None
-    lp = sequence_logprobs(model, s.prompt_tokens, s.prompt_valid, s.reply_tokens, s.reply_valid)
+    lp = sequence_logprobs(model, s.prompt_tokens, s.prompt_valid, s.response_tokens, s.response_valid)
     assert lp.requires_grad  # the training forward still has its gradient
     assert torch.allclose(lp.detach(), s.token_logprobs, atol=1e-5)
 
@@ -360,11 +360,11 @@ def test_kv_cache_paths_draw_the_same(arch, monkeypatch):
         assert model.config._attn_implementation == "sdpa"  # switched back after decoding
     for path in paths[1:]:
         for a, b in zip(out[paths[0]], out[path]):
-            assert torch.equal(a.reply_tokens, b.reply_tokens) and torch.equal(a.reply_valid, b.reply_valid)
+            assert torch.equal(a.response_tokens, b.response_tokens) and torch.equal(a.response_valid, b.response_valid)
             assert torch.allclose(a.token_logprobs, b.token_logprobs, atol=1e-5)
     s = out[paths[0]][0]
-    assert s.reply_valid.sum(-1).min() < 12  # EOS stopped some rows early
-    ref = sequence_logprobs(model, s.prompt_tokens, s.prompt_valid, s.reply_tokens, s.reply_valid)
+    assert s.response_valid.sum(-1).min() < 12  # EOS stopped some rows early
+    ref = sequence_logprobs(model, s.prompt_tokens, s.prompt_valid, s.response_tokens, s.response_valid)
     assert torch.allclose(ref, s.token_logprobs, atol=1e-5)
 
 
@@ -436,7 +436,7 @@ def test_own_decoding_step_draws_what_the_model_forward_draws(activation, monkey
         use(path)
         out[path] = sample(model, TOK, PROMPTS, n=6, max_new_tokens=16, temperature=1.5, seed=2)
     assert use.steps
-    assert torch.equal(out["own"].reply_tokens, out["shared"].reply_tokens)
+    assert torch.equal(out["own"].response_tokens, out["shared"].response_tokens)
     torch.testing.assert_close(out["own"].token_logprobs, out["shared"].token_logprobs, atol=1e-5, rtol=0)
 
 
@@ -468,15 +468,15 @@ def test_model_that_bypasses_the_attention_registry_falls_back(monkeypatch):
     use = _paths(monkeypatch)
     use("shared")  # the model's own forward (bonft's own GPT-2 step would not read the attention config)
     fallbacks = []
-    real = _kv._prompt_pass
-    monkeypatch.setattr(_kv, "_prompt_pass", lambda *a, **k: fallbacks.append(1) or real(*a, **k))
+    real = _kv.prompt_pass
+    monkeypatch.setattr(_kv, "prompt_pass", lambda *a, **k: fallbacks.append(1) or real(*a, **k))
     a = sample(model, TOK, ["ab", "c"], n=3, max_new_tokens=8, seed=4)
     b = sample(model, TOK, ["ab", "c"], n=3, max_new_tokens=8, seed=4, batch_size=3)  # two chunks, two redos
     assert len(fallbacks) == 3
     use("stock")
     c = sample(model, TOK, ["ab", "c"], n=3, max_new_tokens=8, seed=4)
     d = sample(model, TOK, ["ab", "c"], n=3, max_new_tokens=8, seed=4, batch_size=3)
-    assert torch.equal(a.reply_tokens, c.reply_tokens) and torch.equal(b.reply_tokens, d.reply_tokens)
+    assert torch.equal(a.response_tokens, c.response_tokens) and torch.equal(b.response_tokens, d.response_tokens)
     assert torch.allclose(a.token_logprobs, c.token_logprobs, atol=1e-5)
     assert model.config._attn_implementation == "sdpa" and not _pa._switched
 
@@ -517,7 +517,7 @@ def test_two_threads_sampling_one_model_draw_what_one_thread_draws():
     for t in threads:
         t.join()
     for a, b in zip(alone, together):
-        assert torch.equal(a.reply_tokens, b.reply_tokens)
+        assert torch.equal(a.response_tokens, b.response_tokens)
         assert torch.allclose(a.token_logprobs, b.token_logprobs, atol=1e-5)
     assert model.config._attn_implementation == "sdpa" and not _pa._switched
 
@@ -545,15 +545,16 @@ def test_bad_input():
         sample(model, TOK, ["a"], n=1, max_new_tokens=0)
     with pytest.raises(ValueError, match=r"batch_size must be >= 1"):
         sample(model, TOK, ["a"], n=1, batch_size=0)
-    with pytest.raises(ValueError, match=r"max_new_tokens must be <= 62 \(the model has 64 positions and the longest prompt takes 2 tokens\), got max_new_tokens=63"):
+    with pytest.raises(ValueError, match=r"max_new_tokens must be <= 62 \(the model has 64 positions and the longest "
+                                         r"prompt takes 2 tokens\), got max_new_tokens=63"):
         sample(model, TOK, ["a"], n=1, max_new_tokens=63)
     ids = torch.ones(2, 3, dtype=torch.long)
     r = torch.ones(2, 1, 2, dtype=torch.long)
     with pytest.raises(ValueError, match=r"temperature must be a finite number > 0"):
         sequence_logprobs(model, ids, ids, r, r, temperature=0.0)
-    with pytest.raises(TypeError, match=r"reply_tokens must be an integer tensor"):
+    with pytest.raises(TypeError, match=r"response_tokens must be an integer tensor"):
         sequence_logprobs(model, ids, ids, r.float(), r)
-    with pytest.raises(ValueError, match=r"reply_tokens must have B=2 rows like prompt_tokens, got 1"):
+    with pytest.raises(ValueError, match=r"response_tokens must have B=2 rows like prompt_tokens, got 1"):
         sequence_logprobs(model, ids, ids, r[:1], r[:1])
 
 
@@ -564,7 +565,7 @@ def test_per_prompt_seeds_draw_the_exact_law(top_p):
     toks = [CH[c] for c in "vwxyz"]
     model = TableLM(_table({BOS_ID: dict(zip(toks, np.log(probs)))}))
     s = sample(model, TOK, ["", ""], n=3000, top_p=top_p, max_new_tokens=1, seeds=[1, 2])
-    first = s.reply_tokens[:, :, 0].reshape(-1).numpy()
+    first = s.response_tokens[:, :, 0].reshape(-1).numpy()
     counts = np.array([(first == t).sum() for t in toks])
     keep = 3 if top_p < 1 else 5  # Holtzman et al. 2020 nucleus, as in test_top_p_truncates_and_renormalises
     assert counts.sum() == 6000 and counts[keep:].sum() == 0
@@ -578,12 +579,12 @@ def test_one_seed_one_stream_and_the_global_rng():
     model = _tiny("gpt2")
     a = sample(model, TOK, ["ab"], n=6, max_new_tokens=10, seed=4)
     b = sample(model, TOK, ["ab"], n=6, max_new_tokens=10, seeds=[4])
-    assert torch.equal(a.reply_tokens, b.reply_tokens)
+    assert torch.equal(a.response_tokens, b.response_tokens)
     torch.manual_seed(9)
     c = sample(model, TOK, ["ab"], n=6, max_new_tokens=10)
     torch.manual_seed(9)
     d = sample(model, TOK, ["ab"], n=6, max_new_tokens=10)
-    assert torch.equal(c.reply_tokens, d.reply_tokens) and not torch.equal(a.reply_tokens, c.reply_tokens)
+    assert torch.equal(c.response_tokens, d.response_tokens) and not torch.equal(a.response_tokens, c.response_tokens)
 
 
 def test_global_rng_draw_matches_exact_softmax():
@@ -592,7 +593,7 @@ def test_global_rng_draw_matches_exact_softmax():
     toks = list(FIRST)
     p = _softmax(np.array([FIRST[t] for t in toks]))
     torch.manual_seed(1)
-    first = sample(model, TOK, [""], n=6000, max_new_tokens=1).reply_tokens[0, :, 0].numpy()
+    first = sample(model, TOK, [""], n=6000, max_new_tokens=1).response_tokens[0, :, 0].numpy()
     counts = np.array([(first == t).sum() for t in toks])
     assert counts.sum() == 6000
     assert stats.chisquare(counts, 6000 * p).pvalue > 1e-3
@@ -602,13 +603,13 @@ def test_draw_never_picks_a_token_of_zero_mass(monkeypatch):
     # -inf log-probs (top-p's cut) have zero mass: never drawn, whatever the uniform, at the edges
     # u = 2^-53 (the least 1 - torch.rand can be) and u = 1 included; interior uniforms land in the
     # interval of their token (inverse transform sampling; common practice)
-    from bonft.generation.policy import _draw
+    from bonft.generation.policy import draw_tokens
 
     logp = torch.log(torch.tensor([[0.0, 0.5, 0.0, 0.25, 0.25, 0.0]]))  # mass on tokens 1, 3, 4
     for u, want in ((2.0 ** -53, 1), (0.5, 1), (0.5 + 1e-12, 3), (0.75, 3), (0.75 + 1e-12, 4), (1.0, 4)):
-        # _draw takes u = 1 - rand, so rand returns 1 - u
+        # draw_tokens takes u = 1 - rand, so rand returns 1 - u
         monkeypatch.setattr(torch, "rand", lambda *a, u=u, **k: 1.0 - torch.full(a, u, dtype=torch.float64))
-        assert _draw(logp, None, None, 1).tolist() == [want], u
+        assert draw_tokens(logp, None, None, 1).tolist() == [want], u
 
 
 @pytest.mark.parametrize("arch", ["gpt2", "llama"])
@@ -635,15 +636,15 @@ def test_shared_prompt_pass_equals_the_plain_forward_with_gradients(arch):
     # the definition of the log-probs; the shared-prefix path must match it, gradients included
     model = _tiny(arch)
     s = sample(model, TOK, PROMPTS, n=4, max_new_tokens=6, seed=1)
-    lp = sequence_logprobs(model, s.prompt_tokens, s.prompt_valid, s.reply_tokens, s.reply_valid)
+    lp = sequence_logprobs(model, s.prompt_tokens, s.prompt_valid, s.response_tokens, s.response_valid)
     g = torch.autograd.grad(lp.sum(), list(model.parameters()))
-    B, n, T = s.reply_tokens.shape
-    ids = torch.cat([s.prompt_tokens.repeat_interleave(n, 0), s.reply_tokens.reshape(B * n, T)], 1)
-    mask = torch.cat([s.prompt_valid.repeat_interleave(n, 0), s.reply_valid.reshape(B * n, T)], 1)
+    B, n, T = s.response_tokens.shape
+    ids = torch.cat([s.prompt_tokens.repeat_interleave(n, 0), s.response_tokens.reshape(B * n, T)], 1)
+    mask = torch.cat([s.prompt_valid.repeat_interleave(n, 0), s.response_valid.reshape(B * n, T)], 1)
     pos = (mask.cumsum(-1) - 1).clamp(min=0)
     logits = model(input_ids=ids, attention_mask=mask, position_ids=pos).logits[:, -(T + 1):-1]
-    ref = torch.log_softmax(logits, -1).gather(-1, s.reply_tokens.reshape(B * n, T, 1)).squeeze(-1)
-    ref = ref.masked_fill(s.reply_valid.reshape(B * n, T) == 0, 0.0).view(B, n, T)
+    ref = torch.log_softmax(logits, -1).gather(-1, s.response_tokens.reshape(B * n, T, 1)).squeeze(-1)
+    ref = ref.masked_fill(s.response_valid.reshape(B * n, T) == 0, 0.0).view(B, n, T)
     g_ref = torch.autograd.grad(ref.sum(), list(model.parameters()))
     torch.testing.assert_close(lp, ref, atol=1e-5, rtol=0)
     for a, b in zip(g, g_ref):
@@ -682,8 +683,8 @@ def test_sampler_and_training_forward_raise_no_future_warning(arch, via):
     with warnings.catch_warnings():
         warnings.simplefilter("error", FutureWarning)
         smp = sample(model, TOK, ["ab+c=", "x"], n=3, max_new_tokens=5, seed=4, temperature=1.2)
-        lp = sequence_logprobs(model, smp.prompt_tokens, smp.prompt_valid, smp.reply_tokens, smp.reply_valid,
+        lp = sequence_logprobs(model, smp.prompt_tokens, smp.prompt_valid, smp.response_tokens, smp.response_valid,
                                temperature=1.2)
     # the two computations of log pi_T agree to float32 round-off (the sampler's own record is the reference)
     torch.testing.assert_close(lp, smp.token_logprobs, rtol=0, atol=1e-5)
-    assert int(smp.reply_valid.sum()) >= 6  # every row drew at least one token
+    assert int(smp.response_valid.sum()) >= 6  # every row drew at least one token

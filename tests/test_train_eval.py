@@ -54,7 +54,7 @@ def test_entropy_estimate_is_mean_negative_logprob(setup):
                                max_new_tokens=4, seed=5, n_boot=20, temperature=0.8)
     smp = sample(model, tok, prompts, n=4, temperature=0.8, max_new_tokens=4, seed=5, batch_size=4096)
     with torch.no_grad():  # recomputed with the training forward pass at the same temperature
-        lp = sequence_logprobs(model, smp.prompt_tokens, smp.prompt_valid, smp.reply_tokens, smp.reply_valid, temperature=0.8)
+        lp = sequence_logprobs(model, smp.prompt_tokens, smp.prompt_valid, smp.response_tokens, smp.response_valid, temperature=0.8)
     assert rep.entropy == pytest.approx(float(-lp.sum(-1).mean()), rel=1e-5)
     assert raw["texts"] == smp.texts
 

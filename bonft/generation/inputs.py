@@ -10,34 +10,34 @@ from bonft._core.checks import check_fraction, check_items, check_positive
 # ---------------------------------------------------------------- validation
 
 
-def _check_model(model) -> None:
+def check_model(model) -> None:
     if not callable(model):
         raise TypeError(f"model must be a callable causal LM (e.g. a transformers model), got {type(model).__name__}")
 
 
-def _check_prompts(prompts) -> list[str]:
+def check_prompts(prompts) -> list[str]:
     return check_items("prompts", prompts, str, "str")
 
 
-def _check_temperature(temperature) -> float:
+def check_temperature(temperature) -> float:
     return check_positive("temperature", temperature)
 
 
-def _check_top_p(top_p) -> float:
+def check_top_p(top_p) -> float:
     return check_fraction("top_p", top_p, open_low=True)
 
 
 # ---------------------------------------------------------------- helpers
 
 
-def _model_device(model) -> torch.device:
+def model_device(model) -> torch.device:
     try:
         return next(model.parameters()).device
     except (AttributeError, StopIteration):
         return torch.device("cpu")
 
 
-def _special_ids(tokenizer) -> tuple[int, int | None]:
+def special_ids(tokenizer) -> tuple[int, int | None]:
     """(pad id, eos id); pad falls back to eos, then 0 (GPT-2 tokenizers have no pad)."""
     eos = tokenizer.eos_token_id
     pad = tokenizer.pad_token_id
@@ -46,7 +46,7 @@ def _special_ids(tokenizer) -> tuple[int, int | None]:
     return int(pad), (None if eos is None else int(eos))
 
 
-def _left_pad(rows: list[list[int]], pad_id: int) -> tuple[torch.Tensor, torch.Tensor]:
+def left_pad(rows: list[list[int]], pad_id: int) -> tuple[torch.Tensor, torch.Tensor]:
     """Left-pad token lists: (B, Tp) ids and (B, Tp) mask."""
     Tp = max(len(r) for r in rows)
     ids = torch.full((len(rows), Tp), pad_id, dtype=torch.long)
@@ -58,7 +58,7 @@ def _left_pad(rows: list[list[int]], pad_id: int) -> tuple[torch.Tensor, torch.T
     return ids, mask
 
 
-def _rng_state(generator, generators, device):
+def rng_state(generator, generators, device):
     """The state of every random stream a draw may use, to replay a chunk exactly."""
     if generators is not None:
         return [g.get_state() for g in generators]
@@ -67,7 +67,7 @@ def _rng_state(generator, generators, device):
     return torch.cuda.get_rng_state(device) if device.type == "cuda" else torch.get_rng_state()
 
 
-def _set_rng_state(state, generator, generators, device) -> None:
+def set_rng_state(state, generator, generators, device) -> None:
     if generators is not None:
         for g, st in zip(generators, state):
             g.set_state(st)
@@ -80,7 +80,7 @@ def _set_rng_state(state, generator, generators, device) -> None:
 
 
 
-def _check_long(name: str, x, ndim: int) -> torch.Tensor:
+def check_long(name: str, x, ndim: int) -> torch.Tensor:
     if not isinstance(x, torch.Tensor):
         raise TypeError(f"{name} must be a torch.Tensor, got {type(x).__name__}")
     if x.dtype.is_floating_point or x.dtype.is_complex:

@@ -14,19 +14,19 @@ import torch
 from bonft.generation import prefix_attention as _prefix_attn
 
 
-def _positions(mask: torch.Tensor) -> torch.Tensor:
+def position_ids(mask: torch.Tensor) -> torch.Tensor:
     """Position ids from an attention mask: 0 at each row's first real token (left padding)."""
     return (mask.cumsum(-1) - 1).clamp(min=0)
 
 
-def _accepts(model, name: str) -> bool:
+def accepts_kwarg(model, name: str) -> bool:
     try:
         return name in inspect.signature(model.forward).parameters
     except (AttributeError, TypeError, ValueError):
         return False
 
 
-def _cache_arg(model) -> str:
+def cache_keyword(model) -> str:
     """Keyword of the KV cache: ``cache`` where the model's forward names it (transformers >= 5.25),
     ``past_key_values`` before.
 
@@ -37,9 +37,9 @@ def _cache_arg(model) -> str:
     seen: set[int] = set()
     while model is not None and id(model) not in seen:
         seen.add(id(model))
-        if _accepts(model, "cache"):
+        if accepts_kwarg(model, "cache"):
             return "cache"
-        if _accepts(model, "past_key_values"):
+        if accepts_kwarg(model, "past_key_values"):
             return "past_key_values"
         inner = getattr(model, "module", None)
         if inner is None and callable(getattr(model, "get_base_model", None)):
@@ -48,18 +48,18 @@ def _cache_arg(model) -> str:
     return "past_key_values"
 
 
-def _cache_of(out):
+def cache_of(out):
     cache = getattr(out, "cache", None)
     return cache if cache is not None else out.past_key_values
 
 
 def _run_prompts(model, ids, mask):
     """One forward pass over P left-padded prompts with the cache on, logits of the last position only."""
-    kwargs = {"logits_to_keep": 1} if _accepts(model, "logits_to_keep") else {}
-    return model(input_ids=ids, attention_mask=mask, position_ids=_positions(mask), use_cache=True, **kwargs)
+    kwargs = {"logits_to_keep": 1} if accepts_kwarg(model, "logits_to_keep") else {}
+    return model(input_ids=ids, attention_mask=mask, position_ids=position_ids(mask), use_cache=True, **kwargs)
 
 
-def _prompt_pass(model, ids, mask, n, *, out=None):
+def prompt_pass(model, ids, mask, n, *, out=None):
     """Run P distinct prompts once and expand to P*n rows: ids, mask (P, Tp) -> (cache, last logits (P*n, V)).
 
     The KV cache of each prompt is copied to its n rows (``batch_repeat_interleave``,
@@ -67,16 +67,16 @@ def _prompt_pass(model, ids, mask, n, *, out=None):
     cannot be expanded get the plain repeated pass. ``out``: the prompts' forward, if already run.
     """
     out = _run_prompts(model, ids, mask) if out is None else out
-    past = _repeat_cache(_cache_of(out), n)
+    past = _repeat_cache(cache_of(out), n)
     if past is not _NO_CACHE:
         return past, out.logits[:, -1, :].repeat_interleave(n, 0)
     # a cache we cannot expand: repeat the prompt rows instead
     rep_ids, rep_mask = ids.repeat_interleave(n, 0), mask.repeat_interleave(n, 0)
-    out = model(input_ids=rep_ids, attention_mask=rep_mask, position_ids=_positions(rep_mask), use_cache=True)
-    return _cache_of(out), out.logits[:, -1, :]
+    out = model(input_ids=rep_ids, attention_mask=rep_mask, position_ids=position_ids(rep_mask), use_cache=True)
+    return cache_of(out), out.logits[:, -1, :]
 
 
-def _decode_cache(model, ids, mask, n, extra, *, shared_prefix=True):
+def decode_cache(model, ids, mask, n, extra, *, shared_prefix=True):
     """The cache a sampler decodes on: ids, mask (P, Tp) -> (cache, logits (P*n, V), shared-prompt state or None).
 
     With ``shared_prefix`` and a model whose cache and attention allow it, each prompt's keys
@@ -84,10 +84,10 @@ def _decode_cache(model, ids, mask, n, extra, *, shared_prefix=True):
     n rows and, for stock dynamic layers, given reserved room for ``extra`` reply tokens.
     """
     out = _run_prompts(model, ids, mask)
-    past = _cache_of(out)
+    past = cache_of(out)
     if shared_prefix and _prefix_attn.supported(model, past):
         return past, out.logits[:, -1, :].repeat_interleave(n, 0), _prefix_attn.install(past, mask, n, extra)
-    past, logits = _prompt_pass(model, ids, mask, n, out=out)
+    past, logits = prompt_pass(model, ids, mask, n, out=out)
     return _reserve(past, extra), logits, None
 
 

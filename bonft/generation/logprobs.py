@@ -13,29 +13,29 @@ from typing import Sequence
 import torch
 
 from bonft.generation.inputs import (
-    _check_long,
-    _check_model,
-    _check_prompts,
-    _check_temperature,
-    _check_top_p,
-    _left_pad,
-    _special_ids,
+    check_long,
+    check_model,
+    check_prompts,
+    check_temperature,
+    check_top_p,
+    left_pad,
+    special_ids,
 )
-from bonft.generation.kvcache import _accepts, _cache_arg, _positions, _prompt_pass
-from bonft.generation.policy import _log_policy
+from bonft.generation.kvcache import accepts_kwarg, cache_keyword, position_ids, prompt_pass
+from bonft.generation.policy import log_policy
 
 
 def encode_responses(tokenizer, prompts: Sequence[str], responses, *, add_eos: bool = True):
     """Token tensors for given texts, in the layout of :class:`Samples` (e.g. for supervised warm-starts).
 
     prompts: B strings; responses: B lists of n strings (or B strings, n = 1) ->
-    ``(prompt_tokens (B, Tp), prompt_valid (B, Tp), reply_tokens (B, n, T), reply_valid (B, n, T))``,
+    ``(prompt_tokens (B, Tp), prompt_valid (B, Tp), response_tokens (B, n, T), response_valid (B, n, T))``,
     prompts left-padded and tokenized with the tokenizer's special tokens, responses
     without them, right-padded, each followed by EOS when ``add_eos`` (the tokenizer
     must have one). ``sequence_logprobs(model, *encode_responses(...))`` is then the
     log-likelihood of each response.
     """
-    prompts = _check_prompts(prompts)
+    prompts = check_prompts(prompts)
     if isinstance(responses, str):
         raise TypeError("responses must be a sequence (one entry per prompt), got a single str")
     responses = list(responses)
@@ -49,10 +49,10 @@ def encode_responses(tokenizer, prompts: Sequence[str], responses, *, add_eos: b
         for r in g:
             if not isinstance(r, str):
                 raise TypeError(f"responses must hold str, got {type(r).__name__} at index {i}")
-    pad_id, eos_id = _special_ids(tokenizer)
+    pad_id, eos_id = special_ids(tokenizer)
     if add_eos and eos_id is None:
         raise ValueError("add_eos=True needs a tokenizer with an eos token, got eos_token_id=None")
-    prompt_tokens, prompt_valid = _left_pad([list(tokenizer(p)["input_ids"]) for p in prompts], pad_id)
+    prompt_tokens, prompt_valid = left_pad([list(tokenizer(p)["input_ids"]) for p in prompts], pad_id)
     rows = [list(tokenizer(r, add_special_tokens=False)["input_ids"]) + ([eos_id] if add_eos else [])
             for g in groups for r in g]
     T = max(1, max(len(r) for r in rows))
@@ -69,16 +69,16 @@ def sequence_logprobs(
     model,
     prompt_tokens: torch.Tensor,
     prompt_valid: torch.Tensor,
-    reply_tokens: torch.Tensor,
-    reply_valid: torch.Tensor,
+    response_tokens: torch.Tensor,
+    response_valid: torch.Tensor,
     *,
     temperature: float = 1.0,
     top_p: float = 1.0,
 ) -> torch.Tensor:
     """Per-token log pi_T of given responses, differentiable: (B, Tp), (B, n, T) -> (B, n, T).
 
-    ``out[b, j, t] = log softmax(logits / T)[reply_tokens[b, j, t]]`` given the
-    prompt and the earlier response tokens, 0 where ``reply_valid`` is 0.
+    ``out[b, j, t] = log softmax(logits / T)[response_tokens[b, j, t]]`` given the
+    prompt and the earlier response tokens, 0 where ``response_valid`` is 0.
     Each prompt runs once; its KV cache is copied to its n rows and the
     ``B * n`` responses run on top of it (models without an expandable cache
     get one pass over ``[prompt_b ; response_bj]`` rows). Position ids count
@@ -88,36 +88,36 @@ def sequence_logprobs(
     sampling temperature for unbiased score-function gradients (Chow et al. 2024).
     Runs in whatever mode the model is in (the tiny models have no dropout).
     """
-    _check_model(model)
-    _check_long("prompt_tokens", prompt_tokens, 2)
-    _check_long("prompt_valid", prompt_valid, 2)
-    _check_long("reply_tokens", reply_tokens, 3)
-    _check_long("reply_valid", reply_valid, 3)
+    check_model(model)
+    check_long("prompt_tokens", prompt_tokens, 2)
+    check_long("prompt_valid", prompt_valid, 2)
+    check_long("response_tokens", response_tokens, 3)
+    check_long("response_valid", response_valid, 3)
     if prompt_valid.shape != prompt_tokens.shape:
         raise ValueError(f"prompt_valid must have the shape of prompt_tokens {tuple(prompt_tokens.shape)}, got {tuple(prompt_valid.shape)}")
-    if reply_valid.shape != reply_tokens.shape:
-        raise ValueError(f"reply_valid must have the shape of reply_tokens {tuple(reply_tokens.shape)}, got {tuple(reply_valid.shape)}")
-    if reply_tokens.shape[0] != prompt_tokens.shape[0]:
-        raise ValueError(f"reply_tokens must have B={prompt_tokens.shape[0]} rows like prompt_tokens, got {reply_tokens.shape[0]}")
-    temperature = _check_temperature(temperature)
-    top_p = _check_top_p(top_p)
+    if response_valid.shape != response_tokens.shape:
+        raise ValueError(f"response_valid must have the shape of response_tokens {tuple(response_tokens.shape)}, got {tuple(response_valid.shape)}")
+    if response_tokens.shape[0] != prompt_tokens.shape[0]:
+        raise ValueError(f"response_tokens must have B={prompt_tokens.shape[0]} rows like prompt_tokens, got {response_tokens.shape[0]}")
+    temperature = check_temperature(temperature)
+    top_p = check_top_p(top_p)
 
-    B, n, T = reply_tokens.shape
-    resp = reply_tokens.reshape(B * n, T)  # (B, n, T) -> (B*n, T): row b*n + j is response j of prompt b
-    mask = torch.cat([prompt_valid.repeat_interleave(n, 0), reply_valid.reshape(B * n, T)], dim=1)  # (B*n, Tp+T)
-    past, first = _prompt_pass(model, prompt_tokens, prompt_valid, n)  # first (B*n, V) predicts response token 0
+    B, n, T = response_tokens.shape
+    resp = response_tokens.reshape(B * n, T)  # (B, n, T) -> (B*n, T): row b*n + j is response j of prompt b
+    mask = torch.cat([prompt_valid.repeat_interleave(n, 0), response_valid.reshape(B * n, T)], dim=1)  # (B*n, Tp+T)
+    past, first = prompt_pass(model, prompt_tokens, prompt_valid, n)  # first (B*n, V) predicts response token 0
     if past is not None:
         # the prompt ran once per prompt; the responses attend to its copied cache
-        pos = _positions(prompt_valid)[:, -1:].repeat_interleave(n, 0) + 1 + torch.arange(T, device=resp.device)
+        pos = position_ids(prompt_valid)[:, -1:].repeat_interleave(n, 0) + 1 + torch.arange(T, device=resp.device)
         out = model(input_ids=resp, attention_mask=mask, position_ids=pos, use_cache=True,
-                    **{_cache_arg(model): past})
+                    **{cache_keyword(model): past})
         logits = torch.cat([first[:, None, :], out.logits[:, :-1, :]], dim=1)  # (B*n, T, V): token t given < t
     else:
         ids = torch.cat([prompt_tokens.repeat_interleave(n, 0), resp], dim=1)  # (B*n, Tp+T)
-        kwargs = {"logits_to_keep": T + 1} if _accepts(model, "logits_to_keep") else {}
-        logits = model(input_ids=ids, attention_mask=mask, position_ids=_positions(mask), **kwargs).logits
+        kwargs = {"logits_to_keep": T + 1} if accepts_kwarg(model, "logits_to_keep") else {}
+        logits = model(input_ids=ids, attention_mask=mask, position_ids=position_ids(mask), **kwargs).logits
         logits = logits[:, -(T + 1):-1, :]  # (B*n, T, V): position Tp-1+t predicts response token t
-    logp = _log_policy(logits, temperature, top_p)
-    tok = logp.gather(-1, reply_tokens.reshape(B * n, T, 1)).squeeze(-1)  # (B*n, T)
-    tok = tok.masked_fill(reply_valid.reshape(B * n, T) == 0, 0.0)
+    logp = log_policy(logits, temperature, top_p)
+    tok = logp.gather(-1, response_tokens.reshape(B * n, T, 1)).squeeze(-1)  # (B*n, T)
+    tok = tok.masked_fill(response_valid.reshape(B * n, T) == 0, 0.0)
     return tok.view(B, n, T)  # (B*n, T) -> (B, n, T)

@@ -5,7 +5,7 @@ import torch
 import torch.nn.functional as F
 
 
-def _log_policy(logits: torch.Tensor, temperature: float, top_p: float) -> torch.Tensor:
+def log_policy(logits: torch.Tensor, temperature: float, top_p: float) -> torch.Tensor:
     """(..., V) logits -> (..., V) log pi_T, restricted to the top-p nucleus and renormalised.
 
     The nucleus is the smallest set of most likely tokens whose pi_T mass
@@ -23,7 +23,7 @@ def _log_policy(logits: torch.Tensor, temperature: float, top_p: float) -> torch
 
 
 @torch.no_grad()
-def _draw(logp: torch.Tensor, generator, generators, n: int) -> torch.Tensor:
+def draw_tokens(logp: torch.Tensor, generator, generators, n: int) -> torch.Tensor:
     """One token per row from (R, V) log-probs: an inverse-CDF lookup of one uniform per row.
 
     Token i is drawn when u falls in (c_{i-1}, c_i], c the cumulative sum of the

@@ -32,39 +32,39 @@ from bonft._core.checks import check_int
 from bonft.generation import decode_step as _decode_step
 from bonft.generation import prefix_attention as _prefix_attn
 from bonft.generation.inputs import (
-    _check_model,
-    _check_prompts,
-    _check_temperature,
-    _check_top_p,
-    _left_pad,
-    _model_device,
-    _rng_state,
-    _set_rng_state,
-    _special_ids,
+    check_model,
+    check_prompts,
+    check_temperature,
+    check_top_p,
+    left_pad,
+    model_device,
+    rng_state,
+    set_rng_state,
+    special_ids,
 )
-from bonft.generation.kvcache import _cache_arg, _cache_of, _decode_cache, _positions
-from bonft.generation.policy import _draw, _log_policy
+from bonft.generation.kvcache import cache_keyword, cache_of, decode_cache, position_ids
+from bonft.generation.policy import draw_tokens, log_policy
 
 
 @dataclass
 class Samples:
     """n sampled responses for each of B prompts.
 
-    prompt_tokens:     (B, Tp) long, left-padded with the pad id.
+    prompt_tokens:   (B, Tp) long, left-padded with the pad id.
     prompt_valid:    (B, Tp) long, 1 on prompt tokens.
-    reply_tokens:   (B, n, T) long, right-padded with the pad id.
-    reply_valid:  (B, n, T) long, 1 on generated tokens up to and including EOS.
-    token_logprobs: (B, n, T) float, log pi_T of each generated token at the
-                    sampling temperature (top-p renormalised if used), 0 where masked.
-    texts:          B lists of n decoded responses (special tokens removed).
-    temperature:    the sampling temperature T.
-    top_p:          the nucleus mass used (1.0 = none).
+    response_tokens: (B, n, T) long, right-padded with the pad id.
+    response_valid:  (B, n, T) long, 1 on generated tokens up to and including EOS.
+    token_logprobs:  (B, n, T) float, log pi_T of each generated token at the
+                     sampling temperature (top-p renormalised if used), 0 where masked.
+    texts:           B lists of n decoded responses (special tokens removed).
+    temperature:     the sampling temperature T.
+    top_p:           the nucleus mass used (1.0 = none).
     """
 
     prompt_tokens: torch.Tensor
     prompt_valid: torch.Tensor
-    reply_tokens: torch.Tensor
-    reply_valid: torch.Tensor
+    response_tokens: torch.Tensor
+    response_valid: torch.Tensor
     token_logprobs: torch.Tensor
     texts: list[list[str]]
     temperature: float
@@ -72,7 +72,7 @@ class Samples:
 
     @property
     def n(self) -> int:
-        return int(self.reply_tokens.shape[1])
+        return int(self.response_tokens.shape[1])
 
     def sequence_logprob(self) -> torch.Tensor:
         """(B, n): log pi_T of each whole response (sum of token log-probs)."""
@@ -80,7 +80,7 @@ class Samples:
 
     def lengths(self) -> torch.Tensor:
         """(B, n): number of generated tokens (EOS included)."""
-        return self.reply_valid.sum(-1)
+        return self.response_valid.sum(-1)
 
 
 # ---------------------------------------------------------------- sampling
@@ -94,23 +94,23 @@ def _sample_rows(model, ids, mask, *, temperature, top_p, max_new_tokens, pad_id
     ``shared_prefix``: keep one copy of each prompt's KV cache for its n rows (``_prefix_attn``);
     raises ``PrefixUnsupported`` after the first step if the model does not use it.
     """
-    cache_arg = _cache_arg(model)
-    past, logits, state = _decode_cache(model, ids, mask, n, max_new_tokens, shared_prefix=shared_prefix)
+    cache_arg = cache_keyword(model)
+    past, logits, state = decode_cache(model, ids, mask, n, max_new_tokens, shared_prefix=shared_prefix)
     # logits (R, V), R = P*n rows: row p*n + j is sample j of prompt p
     Tp = mask.shape[1]
     full = torch.ones((ids.shape[0] * n, Tp + max_new_tokens), dtype=mask.dtype, device=mask.device)
     full[:, :Tp] = mask.repeat_interleave(n, 0)  # (R, Tp + max_new_tokens): generated positions are all real
     mask = full[:, :Tp]  # (R, Tp), grows by one column a step as a view
     R = mask.shape[0]
-    pos = _positions(mask)[:, -1]  # (R,) position of each row's last prompt token
+    pos = position_ids(mask)[:, -1]  # (R,) position of each row's last prompt token
     done = torch.zeros(R, dtype=torch.bool, device=ids.device)
     toks, gmask, lps = [], [], []
     step = _decode_step.for_model(model, past, state)  # bonft's own forward for stock GPT-2 / Llama, else None
     registry = state is not None and step is None  # the model's own forward, calling our attention
     with (_prefix_attn.decoding(model, state) if registry else contextlib.nullcontext()) as shared:
         for _ in range(max_new_tokens):
-            logp = _log_policy(logits, temperature, top_p)  # (R, V)
-            nxt = _draw(logp, generator, generators, n)  # (R,)
+            logp = log_policy(logits, temperature, top_p)  # (R, V)
+            nxt = draw_tokens(logp, generator, generators, n)  # (R,)
             lp = logp.gather(-1, nxt[:, None]).squeeze(-1)
             live = ~done
             nxt = torch.where(live, nxt, torch.full_like(nxt, pad_id))
@@ -135,7 +135,7 @@ def _sample_rows(model, ids, mask, *, temperature, top_p, max_new_tokens, pad_id
                 raise
             if shared:
                 shared.check()  # every layer used the shared-prompt attention, else the caller redoes the chunk
-            past, logits = _cache_of(out), out.logits[:, -1, :]
+            past, logits = cache_of(out), out.logits[:, -1, :]
     return torch.stack(toks, 1), torch.stack(gmask, 1), torch.stack(lps, 1)
 
 
@@ -154,7 +154,7 @@ def sample(
 ) -> Samples:
     """Draw ``n`` responses for each prompt from the temperature-``T`` policy.
 
-    prompts: B strings -> :class:`Samples` with ``reply_tokens (B, n, T)``.
+    prompts: B strings -> :class:`Samples` with ``response_tokens (B, n, T)``.
 
     ``pi_T(y_t | x, y_<t) = softmax(logits_t / T)`` (restricted to the top-p
     nucleus and renormalised when ``top_p < 1``). Each prompt is repeated n
@@ -187,11 +187,11 @@ def sample(
     different prompts draw what one process would. Chunks then hold whole
     prompts. The model is put in eval mode while sampling and restored after.
     """
-    _check_model(model)
-    prompts = _check_prompts(prompts)
+    check_model(model)
+    prompts = check_prompts(prompts)
     n = check_int("n", n, min=1)
-    temperature = _check_temperature(temperature)
-    top_p = _check_top_p(top_p)
+    temperature = check_temperature(temperature)
+    top_p = check_top_p(top_p)
     max_new_tokens = check_int("max_new_tokens", max_new_tokens, min=1)
     if seed is not None:
         seed = check_int("seed", seed, min=0)
@@ -204,7 +204,7 @@ def sample(
         if len(seeds) != len(prompts):
             raise ValueError(f"seeds must hold one seed per prompt ({len(prompts)} prompts), got {len(seeds)} seeds")
 
-    pad_id, eos_id = _special_ids(tokenizer)
+    pad_id, eos_id = special_ids(tokenizer)
     rows = [list(tokenizer(p)["input_ids"]) for p in prompts]
     for i, r in enumerate(rows):
         if not r:
@@ -216,8 +216,8 @@ def sample(
             f"max_new_tokens must be <= {limit - longest} (the model has {limit} positions and the longest "
             f"prompt takes {longest} tokens), got max_new_tokens={max_new_tokens}"
         )
-    device = _model_device(model)
-    prompt_tokens, prompt_valid = _left_pad(rows, pad_id)
+    device = model_device(model)
+    prompt_tokens, prompt_valid = left_pad(rows, pad_id)
     B, Tp = prompt_tokens.shape
     ids, mask = prompt_tokens.to(device), prompt_valid.to(device)  # (B, Tp); each is expanded to n rows when decoded
     chunk = n * max(1, (batch_size or B * n) // n)  # rows per decoding chunk, whole prompts
@@ -240,11 +240,11 @@ def sample(
                       eos_id=eos_id, generator=generator, n=n,
                       generators=None if generators is None else generators[s // n:(s + chunk) // n])
             rows_ids, rows_mask = ids[s // n:(s + chunk) // n], mask[s // n:(s + chunk) // n]
-            rng = _rng_state(generator, kw["generators"], device)
+            rng = rng_state(generator, kw["generators"], device)
             try:
                 parts.append(_sample_rows(model, rows_ids, rows_mask, **kw))
             except _prefix_attn.PrefixUnsupported:  # the model bypassed our attention: redo with the stock cache
-                _set_rng_state(rng, generator, kw["generators"], device)
+                set_rng_state(rng, generator, kw["generators"], device)
                 parts.append(_sample_rows(model, rows_ids, rows_mask, shared_prefix=False, **kw))
     finally:
         if was_training and hasattr(model, "train"):
@@ -268,8 +268,8 @@ def sample(
     return Samples(
         prompt_tokens=prompt_tokens.to(device),
         prompt_valid=prompt_valid.to(device),
-        reply_tokens=resp.view(B, n, T),  # (B*n, T) -> (B, n, T)
-        reply_valid=rmask.view(B, n, T),
+        response_tokens=resp.view(B, n, T),  # (B*n, T) -> (B, n, T)
+        response_valid=rmask.view(B, n, T),
         token_logprobs=rlp.view(B, n, T),
         texts=texts,
         temperature=temperature,

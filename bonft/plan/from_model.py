@@ -143,7 +143,7 @@ def draw_samples(
                          seed=_seed_for(seed, t, c // PROMPT_CHUNK), batch_size=batch_size)
             flat_p = [p for p in part for _ in range(n)]  # (B, n) -> B*n rows, prompt-major
             flat_r = [txt for row in out.texts for txt in row]
-            lengths = out.reply_valid.sum(-1).reshape(-1).tolist()  # (B, n) generated tokens -> B*n
+            lengths = out.response_valid.sum(-1).reshape(-1).tolist()  # (B, n) generated tokens -> B*n
             v = score_batch(verifier, flat_p, flat_r)
             info["failed"] += v.n_failed
             rewards = v.rewards

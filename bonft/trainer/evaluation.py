@@ -147,8 +147,8 @@ def collect_pools(model: Any, tokenizer: Any, prompts: Sequence[str], *, verifie
                      seed=seed, batch_size=rows_per_chunk)
     flat_prompts = [p for p in prompts for _ in range(n)]  # row b*n + i is sample i of prompt b
     flat_texts = [t for row in smp.texts for t in row]
-    raw: dict = {"texts": smp.texts, "n_tokens": smp.reply_valid.sum(-1).cpu().numpy(),  # (P, n)
-                 "seq_logp": (smp.token_logprobs * smp.reply_valid).sum(-1).cpu().double().numpy(),  # (P, n)
+    raw: dict = {"texts": smp.texts, "n_tokens": smp.response_valid.sum(-1).cpu().numpy(),  # (P, n)
+                 "seq_logp": (smp.token_logprobs * smp.response_valid).sum(-1).cpu().double().numpy(),  # (P, n)
                  "scores": {}, "rewards": None, "failures": 0}
     for name, ver in verifiers.items():
         v = score_batch(ver, flat_prompts, flat_texts)

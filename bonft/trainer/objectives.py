@@ -59,14 +59,14 @@ class Objective:
     Both get host :class:`Pools` and return float64 arrays (numpy, or anything ``torch.as_tensor`` takes).
 
     ``value`` is the pool's own estimate of the targeted quantity (logged as
-    ``pool/value``); ``expert``: the loss adds ``-log pi(reference)`` per prompt;
+    ``pool/value``); ``reference``: the loss adds ``-log pi(reference)`` per prompt;
     ``answers``: the pools must carry answer keys (:attr:`Pools.answers`, extracted by the task).
     """
 
     credit: Callable[[Pools, int], torch.Tensor]
     value: Callable[[Pools, int], torch.Tensor] | None
     summary: str
-    expert: bool = False
+    reference: bool = False
     answers: bool = False
 
 
@@ -110,7 +110,7 @@ OBJECTIVES: dict[str, Objective] = {
         credit=_pass_at_k("unbiased", True), value=_pass_value, summary="pass@k, credit on correct samples only"),
     "best_of_k_sft": Objective(
         credit=lambda p, k: C.best_of_k_sft_credit(p.scores, p.reference_scores, k=k),
-        value=None, expert=True,
+        value=None, reference=True,
         summary="best-of-k-aware supervised fine-tuning on reference answers (Chow et al. 2024, BoN-SFT)"),
     "majority_vote": Objective(
         *_vote("majority_vote"), answers=True,
@@ -153,7 +153,7 @@ def policy_loss(logprobs: torch.Tensor, credit: torch.Tensor, *, mask: torch.Ten
                 anchor_logprobs: torch.Tensor | None = None, anchor_weight: float = 0.0,
                 reference_logprobs: torch.Tensor | None = None, reference_mask: torch.Tensor | None = None,
                 ) -> tuple[torch.Tensor, dict]:
-    """Sum over prompts of ``-sum_i w_bi log pi(y_bi)`` (+ anchor KL) (``- log pi(y*_b)`` with an expert).
+    """Sum over prompts of ``-sum_i w_bi log pi(y_bi)`` (+ anchor KL) (``- log pi(y*_b)`` with a reference response).
 
     logprobs, mask, anchor_logprobs: (b, n, T); credit: (b, n); reference_logprobs, reference_mask: (b, T)
     -> loss (), info (name -> number; ``kl`` when an anchor is given).
@@ -164,5 +164,5 @@ def policy_loss(logprobs: torch.Tensor, credit: torch.Tensor, *, mask: torch.Ten
     if reference_logprobs is not None:
         nll = L.nll_loss(reference_logprobs, mask=reference_mask, token_reduction=token_reduction, reduction="sum")
         loss = loss + nll
-        info["expert_logprob"] = -float(nll.detach()) / reference_logprobs.shape[0]
+        info["reference_logprob"] = -float(nll.detach()) / reference_logprobs.shape[0]
     return loss, info

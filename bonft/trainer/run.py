@@ -176,6 +176,6 @@ def prompt_batch(cfg: TrainConfig, step: int, size: int, n_items: int, rank: int
 def encode_pairs(tokenizer: Any, prompts: list[str], responses: list[str], device: torch.device):
     """Prompts as the sampler encodes them, one reference response each (EOS appended).
 
-    Returns prompt_tokens (B, Tp), prompt_valid (B, Tp), reply_tokens (B, 1, T), reply_valid (B, 1, T).
+    Returns prompt_tokens (B, Tp), prompt_valid (B, Tp), response_tokens (B, 1, T), response_valid (B, 1, T).
     """
     return tuple(x.to(device) for x in encode_responses(tokenizer, prompts, responses))

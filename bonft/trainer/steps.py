@@ -67,11 +67,11 @@ def rl_step(run: Run, step: int, clock: Stopwatch) -> dict:
                          max_new_tokens=cfg.max_new_tokens,
                          seeds=[Stream.SAMPLES.for_prompt(cfg.seed, step=step, slot=int(j)) for j in sl])
         with clock("score"):
-            refs = [e.reference for e in ex] if obj.expert else None
+            refs = [e.reference for e in ex] if obj.reference else None
             pools, failed = _score(run, prompts, smp.texts, refs,
                                    [Stream.PLACEBO.for_prompt(cfg.seed, step=step, slot=int(j)) for j in sl])
-        rows = (smp.prompt_tokens, smp.prompt_valid, smp.reply_tokens, smp.reply_valid)
-        expert_rows = encode_pairs(run.tokenizer, prompts, refs, run.device) if obj.expert else None
+        rows = (smp.prompt_tokens, smp.prompt_valid, smp.response_tokens, smp.response_valid)
+        reference_rows = encode_pairs(run.tokenizer, prompts, refs, run.device) if obj.reference else None
         with clock("credit"):  # float64 on the host; the (b, n) credit is the one thing that goes to the device
             credit = torch.as_tensor(obj.credit(pools, k), dtype=torch.float64, device=run.device)
             value = obj.value(pools, k) if obj.value is not None else None
@@ -80,14 +80,14 @@ def rl_step(run: Run, step: int, clock: Stopwatch) -> dict:
             if run.anchor_model is not None:
                 with torch.no_grad():
                     anchor_logp = sequence_logprobs(run.anchor_model, *rows, temperature=T, top_p=cfg.top_p)
-            loss, info = _pool_loss(run, run.model, rows, expert_rows, credit, anchor_logp)
+            loss, info = _pool_loss(run, run.model, rows, reference_rows, credit, anchor_logp)
         with clock("backward"):
             (loss * run.world / B).backward()  # x W/B: DDP averages over W ranks (global_mean_scale)
         if moments is not None:
             with clock("snr"):
-                _add_prompt_gradients(run, moments, rows, expert_rows, credit, anchor_logp)
+                _add_prompt_gradients(run, moments, rows, reference_rows, credit, anchor_logp)
         info.update({"pool_value": _host_mean(value)} if value is not None else {})
-        if obj.expert:
+        if obj.reference:
             info["beaten_frac"] = _host_mean(pools.scores > pools.reference_scores[:, None])
         for key, val in [("loss", float(loss.detach()) / B), ("reward", _host_mean(pools.rewards) * b / B),
                          ("score", _host_mean(pools.scores) * b / B), ("verifier_failures", failed),
@@ -122,28 +122,28 @@ def _score(run: Run, prompts: list[str], texts: list[list[str]], references: lis
         scores, rewards = shuffle_pools(seeds, scores, rewards)
         if answers is not None:  # the same permutation as scores and rewards (same seeds)
             (answers,) = shuffle_pools(seeds, answers)
-    expert = None
+    reference = None
     if references is not None:
-        expert = np.asarray(score_batch(run.verifiers["train"], prompts, references).scores, dtype=np.float64)
+        reference = np.asarray(score_batch(run.verifiers["train"], prompts, references).scores, dtype=np.float64)
     pools = Pools(scores=scores, rewards=rewards, correct=(rewards >= cfg.correct_threshold).astype(np.float64),
-                  reference_scores=expert, answers=answers)
+                  reference_scores=reference, answers=answers)
     return pools, v.n_failed
 
 
-def _pool_loss(run: Run, model, rows: tuple, expert_rows: tuple | None, credit: torch.Tensor,
+def _pool_loss(run: Run, model, rows: tuple, reference_rows: tuple | None, credit: torch.Tensor,
                anchor_logp: torch.Tensor | None) -> tuple[torch.Tensor, dict]:
-    """Summed loss of the prompts in ``rows`` (prompt_tokens, prompt_valid, reply_tokens, reply_valid)."""
+    """Summed loss of the prompts in ``rows`` (prompt_tokens, prompt_valid, response_tokens, response_valid)."""
     cfg = run.cfg
     # log-probs of the policy that drew the samples: same temperature and top-p
     logp = sequence_logprobs(model, *rows, temperature=cfg.temperature, top_p=cfg.top_p)
-    e_lp = e_mask = None
-    if expert_rows is not None:  # (b, 1, T) -> (b, T): the reference response
-        e_lp, e_mask = sequence_logprobs(model, *expert_rows)[:, 0], expert_rows[3][:, 0]
+    ref_lp = ref_mask = None
+    if reference_rows is not None:  # (b, 1, T) -> (b, T): the reference response
+        ref_lp, ref_mask = sequence_logprobs(model, *reference_rows)[:, 0], reference_rows[3][:, 0]
     return policy_loss(logp, credit, mask=rows[3], token_reduction=cfg.token_reduction, anchor_logprobs=anchor_logp,
-                       anchor_weight=cfg.anchor_weight, reference_logprobs=e_lp, reference_mask=e_mask)
+                       anchor_weight=cfg.anchor_weight, reference_logprobs=ref_lp, reference_mask=ref_mask)
 
 
-def _add_prompt_gradients(run: Run, moments: GradientMoments, rows: tuple, expert_rows: tuple | None,
+def _add_prompt_gradients(run: Run, moments: GradientMoments, rows: tuple, reference_rows: tuple | None,
                           credit: torch.Tensor, anchor_logp: torch.Tensor | None) -> None:
     """Each prompt's own gradient of its loss term (one forward + backward per prompt) into ``moments``.
 
@@ -156,5 +156,5 @@ def _add_prompt_gradients(run: Run, moments: GradientMoments, rows: tuple, exper
 
     for j in range(credit.shape[0]):
         anchor_j = anchor_logp[j:j + 1] if anchor_logp is not None else None
-        loss, _ = _pool_loss(run, run.module, one(rows, j), one(expert_rows, j), credit[j:j + 1], anchor_j)
+        loss, _ = _pool_loss(run, run.module, one(rows, j), one(reference_rows, j), credit[j:j + 1], anchor_j)
         moments.add(torch.autograd.grad(loss, params, allow_unused=True, materialize_grads=True))
