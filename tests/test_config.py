@@ -153,5 +153,5 @@ def test_a_config_with_start_from_writes_no_tiny_model_keys():
 
 
 def test_unknown_task_names_the_task_key():
-    with pytest.raises(ValueError, match=r"^task must be one of \('ledger', 'restock', 'refunds', 'jsonl'\), got 'x'$"):
+    with pytest.raises(ValueError, match=r"^task must be one of \('ledger', 'restock', 'refunds', .*\), got 'x'$"):
         make(task="x")
