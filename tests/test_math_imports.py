@@ -121,6 +121,16 @@ def test_the_checker_finds_a_lazy_import_and_a_foreign_private_name(tmp_path):
         "bonft.strategies.exact:4 imports bonft.estimate inside a function without a comment saying why"]
 
 
+ABOVE = ("bonft.trainer", "bonft.plan", "bonft.cli", "bonft.tasks", "bonft.generation", "bonft.verifiers")
+
+
+def test_the_math_layer_imports_nothing_above_it():
+    # DEVELOPERS.md's layers: objcheck may read viz (for its plot); nothing here reads the trainer or the CLI
+    bad = {m: [t for t in GRAPH[m] if t.startswith(ABOVE) or (t == "bonft.viz" and not m.startswith("bonft.objcheck"))]
+           for m in MODULES if _own(m)}
+    assert {m: t for m, t in bad.items() if t} == {}
+
+
 @pytest.mark.parametrize("name", sorted(m for m in MODULES if _own(m)))
 def test_imports_at_the_top_or_a_stated_reason_and_no_foreign_private_names(name):
     assert findings(name, MODULES[name]) == []

@@ -44,6 +44,20 @@ def _classes(rng: np.random.Generator, N: int, name: str) -> tuple[np.ndarray, n
     return rng.permutation(cls), cs, cr
 
 
+def _tiny_gpt2(vocab: int, positions: int, seed: int):
+    """A GPT-2 from a config (1 layer, width 16, 2 heads, no dropout), initialised from ``seed``; nothing is
+    downloaded and the caller's torch RNG is left as it was."""
+    # imported here: transformers takes seconds to load, and check_objective(transformer=False) never needs it
+    from transformers import GPT2Config, GPT2LMHeadModel
+
+    config = GPT2Config(vocab_size=vocab, n_positions=positions, n_embd=16, n_layer=1, n_head=2,
+                        resid_pdrop=0.0, embd_pdrop=0.0, attn_pdrop=0.0, bos_token_id=None, eos_token_id=None)
+    with torch.random.fork_rng(devices=[]):
+        torch.manual_seed(seed)
+        model = GPT2LMHeadModel(config)
+    return model.eval()
+
+
 def _loss_value(lp: torch.Tensor, credit: torch.Tensor) -> torch.Tensor:
     out = policy_gradient_loss(lp, credit)
     return out[0] if isinstance(out, tuple) else out
@@ -53,11 +67,7 @@ def transformer_check(credit, t: Target, k: int, n: int, *, ordered: bool, seed:
                       directions: int = 3, mc_pools: int = 400, vocab: int = 4, length: int = 3,
                       h: float = 1e-4, progress: Progress | None = None) -> dict:
     """Exact, finite-difference and Monte Carlo gradients of the target on a tiny transformer (a dict)."""
-    # imported here: it loads transformers (seconds), which check_objective(transformer=False) never needs
-    from bonft.trainer.models import build_tiny_model
-
-    model = build_tiny_model("gpt2", vocab_size=vocab, layers=1, width=16, heads=2, max_positions=length + 1,
-                             seed=seed).double()
+    model = _tiny_gpt2(vocab, length + 1, seed).double()
     resp = torch.tensor(list(itertools.product(range(vocab), repeat=length)), dtype=torch.long)  # (N, T)
     N = resp.shape[0]
     ids = torch.cat([torch.zeros(N, 1, dtype=torch.long), resp], 1)  # one fixed prompt token
