@@ -146,3 +146,25 @@ def test_bfloat16_in_estimate_equals_float64(name, f, scores, rewards):
     r = torch.tensor(rewards, dtype=torch.bfloat16)
     torch.testing.assert_close(f(s, r).double(), f(s.double(), r.double()), rtol=0, atol=0)
 
+
+
+@pytest.mark.parametrize("dtype", [torch.float16, torch.bfloat16])
+@given(rewards=pools, logp=st.lists(st.floats(min_value=-20.0, max_value=0.0, width=16), min_size=3, max_size=3))
+def test_half_precision_logprobs_give_a_finite_loss_equal_to_float64(dtype, rewards, logp):
+    """Credit (|w| up to 8e4 here) times log-probs passes 65504 in float16: the loss is taken in float32."""
+    r = torch.tensor(rewards, dtype=torch.float64)
+    s = torch.tensor([[1.0, 2.0, 3.0]] * len(rewards), dtype=torch.float64)
+    lp = torch.tensor([logp] * len(rewards), dtype=dtype, requires_grad=True)
+    for loss_fn in (lambda x: obj.best_of_k_loss(x, s, r, k=2), lambda x: obj.reinforce_loss(x, r)):
+        got, want = loss_fn(lp), loss_fn(lp.detach().double())
+        assert got.dtype == torch.float32 and bool(torch.isfinite(got))
+        scale = float(r.abs().max()) * float(lp.detach().double().abs().sum()) + 1e-12  # bounds the summed terms
+        torch.testing.assert_close(got.double(), want, rtol=0, atol=1e-6 * scale)  # float32 rounding: eps 1.2e-7
+        got.backward()  # autograd reaches the caller's half-precision tensor
+        assert lp.grad is not None and lp.grad.dtype == dtype
+        lp.grad = None
+
+
+def test_credit_given_to_a_loss_refuses_complex_naming_it():
+    with pytest.raises(TypeError, match=r"^credit must hold real numbers, got complex numbers"):
+        obj.policy_gradient_loss(torch.zeros(1, 3), np.array([[1j, 0.0, 0.0]]))

@@ -132,7 +132,11 @@ def check_pool_shape(name: str, x: Any, logprobs: Any) -> None:
 # ----------------------------------------------------------------------------
 
 def check_logprobs(name: str, lp: Any, *, seq_ndim: int) -> Tensor:
-    """A floating tensor of sequence (``seq_ndim`` dims) or token (``seq_ndim + 1``) log-probs."""
+    """A floating tensor of sequence (``seq_ndim`` dims) or token (``seq_ndim + 1``) log-probs.
+
+    Half precision comes back widened to float32 (autograd still reaches the caller's tensor): a loss
+    in float16 overflows once credit times log-prob passes 65504 (credit of rewards +-6e4 gave NaN).
+    """
     if not is_tensor(lp):
         raise TypeError(f"{name} must be a torch.Tensor, got {type(lp).__name__}")
     if not lp.dtype.is_floating_point:
@@ -143,7 +147,7 @@ def check_logprobs(name: str, lp: Any, *, seq_ndim: int) -> Tensor:
             f"dimensions, got shape {tuple(lp.shape)}")
     if lp.numel() == 0:
         raise ValueError(f"{name} must not be empty")
-    return lp
+    return lp.float() if lp.dtype in (torch.float16, torch.bfloat16) else lp
 
 
 def check_mask(mask_name: str, mask: Any, lp_name: str, lp: Tensor, *, seq_ndim: int) -> Tensor | None:
@@ -201,10 +205,7 @@ def credit_tensor(credit: Any, lp: Tensor, *, check_device: bool) -> Tensor:
             raise TypeError(f"credit must hold real numbers, got dtype {w.dtype}")
         host = w.to(torch.float64).numpy() if w.device.type == "cpu" else None
     else:
-        try:
-            host = np.asarray(credit, dtype=np.float64)
-        except (TypeError, ValueError):
-            raise TypeError(f"credit must be an array of numbers, got {type(credit).__name__}") from None
+        host = as_float_array("credit", credit)  # the dtype policy: complex refused, not cast
         w = torch.from_numpy(host)
     if tuple(w.shape) != (B, n):
         raise ValueError(f"credit must have shape (B, n) = ({B}, {n}) to match logprobs, got {tuple(w.shape)}")
