@@ -23,13 +23,17 @@ import os
 import time
 
 import torch
+from _timing import interleaved_medians
 
 from bonft.objectives.credit import best_of_k_credit
 from bonft.objectives.losses import (
-    best_of_k_loss, best_of_k_sft_loss, nll_loss, pass_at_k_loss, policy_gradient_loss, reinforce_loss,
+    best_of_k_loss,
+    best_of_k_sft_loss,
+    nll_loss,
+    pass_at_k_loss,
+    policy_gradient_loss,
+    reinforce_loss,
 )
-
-from _timing import interleaved_medians
 
 
 def hand_written_loo(lp, rewards, mask):

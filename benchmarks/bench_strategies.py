@@ -18,12 +18,11 @@ import os
 
 import numpy as np
 import torch
-
-from bonft.objectives.credit import best_of_k_credit
-from bonft.estimate import best_of_k_per_prompt
-from bonft.strategies.estimators import majority_vote_per_prompt, majority_vote_credit, weighted_vote_credit
-
 from _timing import min_time
+
+from bonft.estimate import best_of_k_per_prompt
+from bonft.objectives.credit import best_of_k_credit
+from bonft.strategies.estimators import majority_vote_credit, majority_vote_per_prompt, weighted_vote_credit
 
 
 def pools(P: int, n: int, max_answers: int, seed: int = 0):

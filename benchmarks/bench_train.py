@@ -16,8 +16,8 @@ import time
 
 import torch
 
-from bonft.trainer.config import from_dict
 from bonft.generation.sampling import sample
+from bonft.trainer.config import from_dict
 from bonft.trainer.loop import _one_step
 from bonft.trainer.run import build_run, make_optimizer
 

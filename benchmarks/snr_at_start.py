@@ -17,8 +17,8 @@ import torch
 from bonft.trainer.checkpoint import latest_checkpoint
 from bonft.trainer.demo import DemoConfig, stage_config
 from bonft.trainer.loop import train
-from bonft.trainer.run import build_run
 from bonft.trainer.measure import Stopwatch
+from bonft.trainer.run import build_run
 from bonft.trainer.steps import rl_step
 
 CASES = [("reinforce", False), ("pass_at_k", False), ("best_of_k", False), ("pass_at_k", True)]

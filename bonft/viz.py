@@ -21,8 +21,8 @@ import numpy as np
 
 from bonft.estimate import CurveSummary
 
-__all__ = ["plot_bon_curves", "plot_verifier_check", "plot_plan_heatmap", "plot_plan_curves", "plot_evaluations", "plot_comparison", "plot_objective_check",
-           "plot_strategy_curves"]
+__all__ = ["plot_bon_curves", "plot_verifier_check", "plot_plan_heatmap", "plot_plan_curves", "plot_evaluations",
+           "plot_comparison", "plot_objective_check", "plot_strategy_curves"]
 
 
 # ------------------------------------------------------------------ estimator curves

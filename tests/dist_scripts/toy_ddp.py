@@ -12,9 +12,17 @@ import sys
 
 import torch
 
-from bonft.trainer.distributed import (all_gather_objects, derive_seed, global_mean_scale, init_from_env, shard_prompts,
-                               shutdown, unwrap_model, wrap_model)
 from bonft.objectives.losses import reinforce_loss
+from bonft.trainer.distributed import (
+    all_gather_objects,
+    derive_seed,
+    global_mean_scale,
+    init_from_env,
+    shard_prompts,
+    shutdown,
+    unwrap_model,
+    wrap_model,
+)
 
 B, N, F, A, STEPS, LR = 8, 4, 6, 5, 5, 0.5
 
