@@ -1,13 +1,19 @@
-"""Pool rules of the vote estimators (bonft.strategies.estimators): one reward per answer unless a stated
-rule resolves it, and weighted-vote scores as non-negative weights, checked against brute force over every
-k-subset of a pool (the U-statistic's definition, Hoeffding 1948; weighted vote by total score, Li et al. 2023).
+"""The vote estimators (bonft.strategies.estimators) against brute force over every k-subset of a pool (the
+U-statistic's definition, Hoeffding 1948; majority vote with uniform ties, Wang et al. 2023; weighted vote by
+total score, Li et al. 2023): values, leave-one-out credit, the sampled weighted-vote estimate, one reward per
+answer unless a stated rule resolves it, and weighted-vote scores as non-negative weights.
 """
 from __future__ import annotations
 
 import itertools
+import math
 
 import numpy as np
 import pytest
+import torch
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from strategy_refs import brute_pool, random_pool
 
 from bonft.strategies import (
     majority_vote_credit,
@@ -90,3 +96,67 @@ def test_conflicts_mean_serves_the_mean_of_the_winners_samples():
     w, _ = weighted_vote_per_prompt([["a", "a", "b"]], [[1.0, 1.0, 1.0]], [[1.0, 0.0, 1.0]], ks=[2], conflicts="mean")
     # weights 1 each: {0,1} a (total 2) wins -> 0.5; {0,2}, {1,2}: totals 1 and 1 tie -> 1 and 0.5
     assert abs(w[0, 0] - 2 / 3) < 1e-15
+
+
+# ---------------------------------------------------------------------------- against enumeration
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_majority_estimator_equals_all_k_subsets(seed):
+    # reference: the U-statistic, every k-subset of a pool of 9 for every k
+    a, s, r = random_pool(seed, 9)
+    got = majority_vote_per_prompt([a], [r], ks=range(1, 10), conflicts="mean")[0]
+    want = [brute_pool("majority_vote", a, s, r, k) for k in range(1, 10)]
+    np.testing.assert_allclose(got, want, atol=1e-13)
+
+
+def test_weighted_estimator_exact_and_sampled():
+    # reference: every k-subset; the sampled estimate must sit within 4 standard errors
+    a, s, r = random_pool(3, 10)
+    ks = [1, 3, 6, 10]
+    want = [brute_pool("weighted_vote", a, s, r, k) for k in ks]
+    val, se = weighted_vote_per_prompt([a], [s], [r], ks=ks, conflicts="mean")
+    np.testing.assert_allclose(val[0], want, atol=1e-13)
+    assert (se == 0).all()
+    val, se = weighted_vote_per_prompt([a], [s], [r], ks=[3, 6], max_subsets=60, seed=1, conflicts="mean")
+    assert (se[0] > 0).all() and (np.abs(val[0] - [want[1], want[2]]) < 4 * se[0]).all()
+
+
+@settings(max_examples=30)
+@given(st.lists(st.integers(0, 4), min_size=2, max_size=9), st.integers(0, 2**31 - 1))
+def test_majority_estimator_and_credit_property(answers, seed):
+    # reference: every k-subset (the U-statistic) for the value, and for the credit its definition
+    # w_i = V_k(pool) - V_kb(pool without i), each value by enumeration
+    a = np.array(answers)
+    n = len(a)
+    r = np.random.default_rng(seed).integers(0, 3, n) / 2.0  # ties in rewards too
+    got = majority_vote_per_prompt([a], [r], ks=range(1, n + 1), conflicts="mean")[0]
+    np.testing.assert_allclose(got, [brute_pool("majority_vote", a, a, r, k) for k in range(1, n + 1)], atol=1e-12)
+    k = 1 + seed % n
+    kb = min(k, n - 1)
+    want = [brute_pool("majority_vote", a, a, r, k)
+            - brute_pool("majority_vote", np.delete(a, i), None, np.delete(r, i), kb) for i in range(n)]
+    np.testing.assert_allclose(majority_vote_credit([a], [r], k=k, conflicts="mean")[0], want, atol=1e-12)
+
+
+def test_majority_credit_zero_for_equal_rewards_and_single_sample():
+    # common practice: a leave-one-out baseline gives no signal when every reward is equal
+    a = np.array([[0, 1, 1, 2, 0]])
+    np.testing.assert_allclose(majority_vote_credit(a, np.ones((1, 5)), k=3), 0.0, atol=1e-15)
+    np.testing.assert_allclose(majority_vote_credit([[3]], [[0.7]], k=1), [[0.7]])
+
+
+def test_weighted_credit_sampled_is_unbiased_for_exact():
+    # the sampled credit averaged over seeds approaches the exact credit (all subsets) of the pool
+    a, s, r = random_pool(5, 8)
+    exact = weighted_vote_credit([a], [s], [r], k=3, conflicts="mean")
+    runs = np.stack([weighted_vote_credit([a], [s], [r], k=3, max_subsets=50, seed=q, conflicts="mean") for q in range(200)])
+    sd = runs.std(0) / math.sqrt(len(runs))
+    assert (np.abs(runs.mean(0) - exact) < 5 * sd + 1e-12).all()
+
+
+def test_torch_in_torch_out():
+    a = torch.tensor([[0, 1, 1, 0]])
+    r = torch.tensor([[1.0, 0.0, 0.0, 1.0]], dtype=torch.float32)
+    w = majority_vote_credit(a, r, k=2)
+    assert isinstance(w, torch.Tensor) and w.dtype == torch.float32 and w.shape == (1, 4)

@@ -1,6 +1,6 @@
-"""Exact vote values on a policy (bonft.strategies.exact): the weighted vote's non-negative weights against
-every ordered k-tuple of draws, and the one-reward-per-answer rule (Li et al. 2023, weighted vote by total
-score; Wang et al. 2023, majority vote)."""
+"""Exact values on a policy (bonft.strategies.exact and the by-id strategy_value) against every ordered k-tuple
+of draws: majority vote with uniform ties (Wang et al. 2023), weighted vote by total weight with non-negative
+weights (Li et al. 2023), best-of-k and pass@k; worked cases by hand; the one-reward-per-answer rule."""
 from __future__ import annotations
 
 import itertools
@@ -9,8 +9,9 @@ import math
 import numpy as np
 import pytest
 import torch
+from strategy_refs import ANS, RW, SC, brute_value, mean_rule, policy_probs
 
-from bonft.strategies import majority_vote_value, weighted_vote_value
+from bonft.strategies import majority_vote_value, strategy_value, weighted_vote_value
 
 
 def _brute_weighted(p, ans, w, rew, k) -> float:
@@ -50,3 +51,44 @@ def test_negative_weight_and_conflicting_rewards_are_refused():
     t = torch.tensor([[1.0, 0.0, 0.0], [1.0, 0.0, 1.0]], dtype=torch.float64)  # second row conflicts
     with pytest.raises(ValueError, match="got answer 'y'"):
         majority_vote_value(p, ["x", "y", "y"], t, k=2)
+
+
+# ---------------------------------------------------------------------------- against enumeration
+
+
+@pytest.mark.parametrize("rule", ["majority_vote", "weighted_vote", "best_of_k", "pass_at_k"])
+@pytest.mark.parametrize("k", [1, 2, 3, 5])
+def test_exact_value_equals_k_tuple_enumeration(rule, k):
+    # reference: the definition, summed over all 6^k ordered k-tuples
+    p = policy_probs()
+    got = strategy_value(rule, p, k=k, rewards=RW, scores=SC, answers=ANS, **mean_rule(rule))
+    assert abs(float(got) - brute_value(rule, p, k)) < 1e-12
+
+
+def test_majority_value_batched_and_string_answers():
+    # reference: per-row enumeration; answer keys may be strings
+    p = np.stack([policy_probs(), np.full(6, 1 / 6)])
+    keys = np.array(["7", "7", "x", "x", "y", "y"])
+    got = majority_vote_value(p, keys, RW, k=4, conflicts="mean")
+    want = [brute_value("majority_vote", row, 4) for row in p]
+    np.testing.assert_allclose(got, want, atol=1e-12)
+    assert got.shape == (2,)
+
+
+def test_majority_value_known_case():
+    # by hand: two equally likely answers, k = 2 -> ties half the time, V = E[R] = 0.5 for R = (1, 0)
+    assert abs(float(majority_vote_value([0.5, 0.5], [0, 1], [1.0, 0.0], k=2)) - 0.5) < 1e-15
+    # three draws, answer 0 (correct) with mass p: wins iff it appears >= 2 times -> p^3 + 3p^2(1-p)
+    p = 0.3
+    assert abs(float(majority_vote_value([p, 1 - p], [0, 1], [1.0, 0.0], k=3)) - (p**3 + 3 * p**2 * (1 - p))) < 1e-15
+
+
+def test_weighted_vote_known_cases():
+    # by hand: two outcomes, one answer each, scores 0.9 > 0.4, k = 2: answer 0 wins unless both
+    # draws are outcome 1, so V_2 = 1 - (1 - p)^2 for R = (1, 0)
+    p = 0.3
+    assert abs(float(weighted_vote_value([p, 1 - p], [0, 1], [0.9, 0.4], [1.0, 0.0], k=2)) - (1 - (1 - p) ** 2)) < 1e-15
+    # two samples of answer 1 (0.5 + 0.5) outvote one of answer 0 (0.9); one of each loses to 0.9:
+    # V_2 = P(both draws from answer 1) = 0.5^2
+    v = weighted_vote_value([0.5, 0.25, 0.25], ["x", "y", "y"], [0.9, 0.5, 0.5], [0.0, 1.0, 1.0], k=2)
+    assert abs(float(v) - 0.25) < 1e-15

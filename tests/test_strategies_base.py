@@ -1,0 +1,104 @@
+"""Strategies by id (bonft.strategies.base): values, estimates and credit dispatched on the classes, checked
+against brute force over every k-subset and every ordered pool of draws (Hoeffding 1948; Wang et al. 2023;
+Li et al. 2023; torch.autograd for grad V_k); ids, options and bad input."""
+from __future__ import annotations
+
+import numpy as np
+import pytest
+import torch
+from strategy_refs import ANS, LOGITS, RW, SC, all_pools, brute_pool, mean_rule, policy_probs, random_pool
+
+from bonft.objectives import credit as C
+from bonft.strategies import (
+    MajorityVote,
+    WeightedVote,
+    get_strategy,
+    majority_vote_credit,
+    majority_vote_per_prompt,
+    majority_vote_value,
+    strategy_credit,
+    strategy_per_prompt,
+    strategy_value,
+)
+
+
+def test_strategy_per_prompt_matches_closed_forms():
+    # best-of-k and pass delegate to bonft.estimate; checked against k-subset enumeration
+    a, s, r = random_pool(4, 8)
+    for rule in ("best_of_k", "pass_at_k"):
+        v, se = strategy_per_prompt(rule, ks=[1, 4, 8], rewards=[r], scores=[s], answers=[a])
+        np.testing.assert_allclose(v[0], [brute_pool(rule, a, s, r, k) for k in (1, 4, 8)], atol=1e-13)
+
+
+@pytest.mark.parametrize("rule,n", [("majority_vote", 4), ("majority_vote", 5), ("weighted_vote", 4), ("best_of_k", 4), ("pass_at_k", 4)])
+def test_credit_expected_gradient_equals_exact_gradient(rule, n):
+    # reference: E over every ordered pool of n draws (6^n pools) of sum_i w_i grad log pi(y_i),
+    # against autograd of the exact V_k; max error over k = 1..n below 1e-10
+    pools = all_pools(n)
+    z = torch.tensor(LOGITS, dtype=torch.float64, requires_grad=True)
+    pnp = torch.softmax(z, -1).detach().numpy()
+    prob = np.prod(pnp[pools], axis=1)  # (6^n,)
+    onehot = np.eye(6)[pools]  # (P, n, 6): grad_z log pi(y) = e_y - pi
+    worst = 0.0
+    for k in range(1, n + 1):
+        w = np.asarray(strategy_credit(rule, SC[pools], RW[pools], k=k, answers=ANS[pools], **mean_rule(rule)))
+        g_est = np.einsum("p,pn,pnv->v", prob, w, onehot - pnp)
+        (g_true,) = torch.autograd.grad(strategy_value(rule, torch.softmax(z, -1), k=k, rewards=RW, scores=SC, answers=ANS,
+                                                       **mean_rule(rule)), z)
+        worst = max(worst, float(np.abs(g_est - g_true.numpy()).max()))
+    print(f"{rule}, n={n}: max |E[credit gradient] - grad V_k| = {worst:.2e}")
+    assert worst < 1e-10
+
+
+def test_best_of_k_credit_is_the_library_credit():
+    a, s, r = random_pool(6, 8)
+    np.testing.assert_allclose(strategy_credit("best_of_k", [s], [r], k=3), C.best_of_k_credit([s], [r], k=3), atol=0)
+
+
+def test_bad_inputs_name_the_argument():
+    with pytest.raises(ValueError, match="strategy must be one of"):
+        get_strategy("vote")
+    for old, new in (("majority", "majority_vote"), ("weighted", "weighted_vote"), ("best-of-k", "best_of_k"),
+                     ("pass", "pass_at_k"), ("oracle", "pass_at_k")):
+        with pytest.raises(ValueError, match=rf"got '{old}' \(the strategy id is '{new}'\)"):
+            get_strategy(old)
+    with pytest.raises(ValueError, match="answers must be given"):
+        strategy_value(MajorityVote(), policy_probs(), k=2, rewards=RW)
+    with pytest.raises(ValueError, match=r"k must be <= n \(n=3\)"):
+        majority_vote_credit([[0, 1, 1]], [[1.0, 0, 0]], k=4)
+    with pytest.raises(ValueError, match="rewards\\[0\\] must have 3 samples"):
+        majority_vote_per_prompt([[0, 1, 1]], [[1.0, 0.0]], ks=[1])
+    with pytest.raises(ValueError, match="answers must have shape"):
+        majority_vote_value(policy_probs(), [0, 1], RW, k=2)
+    with pytest.raises(ValueError, match="rewards\\[0\\] must be finite"):
+        majority_vote_credit([[0, 1]], [[1.0, float("nan")]], k=1)
+    assert WeightedVote().uses_scores and not MajorityVote().uses_scores
+    # an option the strategy does not read cannot take effect: an error naming who reads it
+    with pytest.raises(ValueError, match=r"conflicts has no effect on best_of_k \(read by majority_vote, weighted_vote\), "
+                                         r"got conflicts='mean'"):
+        strategy_credit("best_of_k", [[0.1, 0.2]], [[1.0, 0.0]], k=1, conflicts="mean")
+    with pytest.raises(ValueError, match=r"max_subsets has no effect on majority_vote \(read by weighted_vote estimates\)"):
+        strategy_per_prompt("majority_vote", ks=[1], rewards=[[1.0, 0.0]], answers=[[0, 1]], max_subsets=10)
+    with pytest.raises(ValueError, match=r"seed has no effect on weighted_vote values"):
+        strategy_value("weighted_vote", policy_probs(), k=2, rewards=RW, scores=SC, answers=ANS, seed=3, conflicts="mean")
+    with pytest.raises(TypeError, match=r"tolerance is not an option of a strategy"):
+        strategy_credit("majority_vote", None, [[1.0, 0.0]], k=1, answers=[[0, 1]], tolerance=1)
+    from bonft.strategies import compare_strategies
+    with pytest.raises(ValueError, match=r"max_subsets has no effect on best_of_k"):
+        compare_strategies(["best_of_k", "majority_vote"], ks=[1], rewards=[[1.0, 0.0]], scores=[[0.1, 0.2]],
+                           answers=[[0, 1]], max_subsets=10)
+
+
+def test_trainer_registers_vote_objectives():
+    # the registry's majority-vote credit and pool value are the library's, on host pools
+    from bonft.trainer.objectives import OBJECTIVES, Pools
+
+    a = np.array([["3", "3", "4", "5"], ["1", "2", "2", "2"]], dtype=object)
+    r = np.array([[1.0, 1.0, 0.0, 0.0], [1.0, 0.0, 0.0, 0.0]])
+    p = Pools(scores=r.copy(), rewards=r, correct=r, answers=a)
+    obj = OBJECTIVES["majority_vote"]
+    assert obj.answers and not OBJECTIVES["best_of_k"].answers
+    w = np.asarray(obj.credit(p, 3))
+    np.testing.assert_allclose(w, majority_vote_credit(a, r, k=3), atol=0)
+    np.testing.assert_allclose(np.asarray(obj.value(p, 3)), [brute_pool("majority_vote", a[b], r[b], r[b], 3)
+                                                             for b in range(2)], atol=1e-13)
