@@ -109,9 +109,14 @@ def run_lock(run_dir: str | Path, *, hold: bool = True) -> Iterator[Path | None]
             warnings.warn(f"run_dir {str(run_dir)!r}: taking over the lock of {_holder(rec)}, which {why}",
                           StaleLockWarning, stacklevel=3)
         started = datetime.datetime.now(datetime.timezone.utc).isoformat(timespec="seconds")
-        os.ftruncate(fd, 0)
-        os.lseek(fd, 0, os.SEEK_SET)
-        os.write(fd, json.dumps({"pid": os.getpid(), "host": host, "started": started}).encode())
+        data = json.dumps({"pid": os.getpid(), "host": host, "started": started}).encode()
+        try:
+            os.ftruncate(fd, 0)
+            os.lseek(fd, 0, os.SEEK_SET)
+            os.write(fd, data)
+        except OSError as e:
+            fcntl.flock(fd, fcntl.LOCK_UN)
+            raise write_failed(e, path=path, run_dir=run_dir, what="the lock record", need_bytes=len(data)) from None
         try:
             yield path
         finally:
@@ -187,11 +192,8 @@ def _mount_of(path: Path) -> str:
     return str(p)
 
 
-WRITE_ERRORS = (OSError, RuntimeError)  # torch's serializer reports a full disk as a RuntimeError
-
-
 def is_write_error(err: BaseException) -> bool:
-    """An error a write can raise: any OSError, or torch's serializer failing on its stream."""
+    """An error a write can raise: any OSError, or torch's serializer failing on its stream (its RuntimeError)."""
     if isinstance(err, (WriteFailed, RunDirBusy)):
         return False
     if isinstance(err, OSError):
