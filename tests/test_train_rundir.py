@@ -7,7 +7,9 @@ process dies); a failed write reported with the path, the space and how to conti
 import errno
 import json
 import os
+import re
 import signal
+import socket
 import subprocess
 import sys
 import textwrap
@@ -256,3 +258,31 @@ def test_a_full_filesystem_stops_the_run_with_one_line_and_rerun_with_resume_fin
     T.train(cfg, resume=True, progress=False)
     w, r = weights(cfg.run_dir), weights(ref.run_dir)
     assert all(torch.equal(w[k], r[k]) for k in r)
+
+
+def test_the_command_line_shows_one_error_line(tmp_path, monkeypatch, capsys):
+    from bonft.cli.main import main
+    from bonft.trainer.config import to_toml
+
+    cfg = tiny(tmp_path)
+    (tmp_path / "recipe.toml").write_text(to_toml(cfg))
+
+    def full_disk(*a, **kw):
+        raise OSError(errno.ENOSPC, "No space left on device")
+
+    monkeypatch.setattr(CK.torch, "save", full_disk)
+    assert main(["train", str(tmp_path / "recipe.toml"), "--quiet"]) != 0
+    err = [ln for ln in capsys.readouterr().err.splitlines() if ln.strip()]
+    assert len(err) == 1 and err[0].startswith(f"bonft train: error: could not write the checkpoint {cfg.run_dir}/checkpoints/"
+                                               f"step-00000002 (No space left on device); about ")
+    assert err[0].endswith("no checkpoint was written yet; free space and rerun with --resume")
+    # a second run while none holds the directory starts; one while the first holds it is refused in one line
+    monkeypatch.undo()
+    with run_lock(cfg.run_dir):
+        assert main(["train", str(tmp_path / "recipe.toml"), "--quiet", "--resume"]) != 0
+    err = [ln for ln in capsys.readouterr().err.splitlines() if ln.strip()]
+    assert len(err) == 1
+    assert re.fullmatch(rf"bonft train: error: run_dir '{re.escape(cfg.run_dir)}' is in use by another training run "
+                        rf"\(pid {os.getpid()} on host {re.escape(socket.gethostname())}, started "
+                        r"\d{4}-\d\d-\d\dT\d\d:\d\d:\d\d\+00:00\); wait for it to finish, stop it, or choose another "
+                        r"run directory", err[0]), err[0]

@@ -33,7 +33,7 @@ class Stream(enum.IntEnum):
     A stream drawn per rank takes its seed from :meth:`seed` (``derive_seed(seed, step, rank,
     stream)``); a stream drawn per prompt from :meth:`for_prompt` (``prompt_seed(seed, step,
     slot, stream)``, the prompt's slot in the step's global batch, so a prompt draws the same
-    numbers whichever rank holds it). Distinct members never share a seed; the values are part
+    numbers whichever rank holds it). Distinct members give independent seeds; the values are part
     of what makes a run reproducible, so they never change.
     """
 
