@@ -1,4 +1,4 @@
-"""The training verifier and the evaluation oracle, named apart (bonft.verifiers.roles).
+"""The training verifier and the evaluation verifier, named apart (bonft.verifiers.roles).
 
 The rewards asserted here are worked by hand from the rows below (which response passes which prompt's
 check), not computed by the code under test.
@@ -10,7 +10,7 @@ import pytest
 
 from bonft.tasks import get_task
 from bonft.verifiers import CodeRunner, RewardModel
-from bonft.verifiers.roles import build_roles, check_oracle_rewards, check_spec
+from bonft.verifiers.roles import build_roles, check_eval_rewards, check_spec
 
 ROWS = [
     {"q": "jars: 2 + 2", "tests": "assert jars() == 4", "ans": "4"},
@@ -24,21 +24,21 @@ def user_task(tmp_path, rows=ROWS, **kw):
     return get_task("user", data=str(path), prompt_field="q", **kw)
 
 
-def test_builtin_task_keeps_the_exact_oracle_beside_its_proxy():
+def test_builtin_task_keeps_the_exact_checker_beside_its_proxy():
     task = get_task("ledger")
     train, held = task.split(n_train=4, n_eval=2, seed=0)
     roles = build_roles(task, train + held, verifier="proxy")
-    assert (roles.verifier_name, roles.oracle_name, roles.oracle_is_verifier) == ("proxy", "exact", False)
+    assert (roles.verifier_name, roles.eval_verifier_name, roles.eval_is_verifier) == ("proxy", "exact", False)
     assert list(roles.evaluation_verifiers()) == ["exact", "proxy"]
     ex = held[0]
-    v = roles.oracle([ex.prompt, ex.prompt], [ex.answer, str(int(ex.answer) + 1)])
+    v = roles.eval_verifier([ex.prompt, ex.prompt], [ex.answer, str(int(ex.answer) + 1)])
     assert v.rewards.tolist() == [1.0, 0.0]
     exact = build_roles(task, train + held)
-    assert (exact.verifier_name, exact.oracle_name) == ("exact", "exact") and exact.oracle is exact.verifier
+    assert (exact.verifier_name, exact.eval_verifier_name) == ("exact", "exact") and exact.eval_verifier is exact.verifier
     assert list(exact.evaluation_verifiers()) == ["exact", "proxy"]
 
 
-def test_user_function_verifier_is_the_default_oracle_and_must_give_0_1(tmp_path, monkeypatch):
+def test_user_function_verifier_is_the_default_eval_verifier_and_must_give_0_1(tmp_path, monkeypatch):
     (tmp_path / "jar_grader.py").write_text(
         "def grade(prompts, responses, rows):\n"
         "    return [float(r.strip() == row['ans']) for r, row in zip(responses, rows)]\n"
@@ -48,19 +48,19 @@ def test_user_function_verifier_is_the_default_oracle_and_must_give_0_1(tmp_path
     monkeypatch.syspath_prepend(str(tmp_path))
     task = user_task(tmp_path)  # 'ans' is an extra column here, not an answer_field: no exact checker
     roles = build_roles(task, task.examples, verifier="jar_grader:grade")
-    assert roles.oracle is roles.verifier and roles.oracle_is_verifier and roles.oracle_name == "jar_grader:grade"
+    assert roles.eval_verifier is roles.verifier and roles.eval_is_verifier and roles.eval_verifier_name == "jar_grader:grade"
     assert list(roles.evaluation_verifiers()) == ["jar_grader:grade"]
     assert list(roles.verifier(["jars: 3 + 5", "jars: 2 + 2"], ["8", "5"])) == [1.0, 0.0]
-    check_oracle_rewards(np.array([[0.0, 1.0], [1.0, 1.0]]), roles)
+    check_eval_rewards(np.array([[0.0, 1.0], [1.0, 1.0]]), roles)
     soft = build_roles(task, task.examples, verifier="jar_grader:closeness")
-    with pytest.raises(ValueError, match=r"oracle must be set: the verifier 'jar_grader:closeness' is the default oracle but "
-                                         r"gave rewards other than 0 and 1 \(1 of 2, e.g. 0.5\)"):
-        check_oracle_rewards(np.array(soft.verifier(["jars: 3 + 5", "jars: 2 + 2"], ["8", "5"])), soft)
-    named = build_roles(task, task.examples, verifier="jar_grader:closeness", oracle="unit_tests", oracle_params={"wall_time": 3.0})
-    assert isinstance(named.oracle, CodeRunner) and not named.oracle_is_verifier
+    with pytest.raises(ValueError, match=r"eval_verifier must be set: the verifier 'jar_grader:closeness' is the default evaluation verifier "
+                                         r"but gave rewards other than 0 and 1 \(1 of 2, e.g. 0.5\)"):
+        check_eval_rewards(np.array(soft.verifier(["jars: 3 + 5", "jars: 2 + 2"], ["8", "5"])), soft)
+    named = build_roles(task, task.examples, verifier="jar_grader:closeness", eval_verifier="unit_tests", eval_verifier_params={"wall_time": 3.0})
+    assert isinstance(named.eval_verifier, CodeRunner) and not named.eval_is_verifier
     assert list(named.evaluation_verifiers()) == ["unit_tests", "jar_grader:closeness"]
-    assert named.oracle(["jars: 2 + 2", "jars: 3 + 5"], ["def jars(): return 4", "def jars(): return 4"]).scores.tolist() == [1.0, 0.0]
-    check_oracle_rewards(np.array([0.3]), named)  # an oracle named by the user is not held to 0/1
+    assert named.eval_verifier(["jars: 2 + 2", "jars: 3 + 5"], ["def jars(): return 4", "def jars(): return 4"]).scores.tolist() == [1.0, 0.0]
+    check_eval_rewards(np.array([0.3]), named)  # an evaluation verifier named by the user is not held to 0/1
 
 
 def test_exact_needs_answers_and_row_verifiers_need_rows(tmp_path):
@@ -69,41 +69,42 @@ def test_exact_needs_answers_and_row_verifiers_need_rows(tmp_path):
         build_roles(task, task.examples)
     with_answers = user_task(tmp_path, answer_field="ans")
     roles = build_roles(with_answers, with_answers.examples, verifier="unit_tests")
-    assert roles.oracle_name == "unit_tests" and roles.oracle_is_verifier
-    roles = build_roles(with_answers, with_answers.examples, verifier="unit_tests", oracle="exact")
-    assert roles.oracle(["jars: 2 + 2"], [" 4 "]).rewards.tolist() == [1.0]
+    assert roles.eval_verifier_name == "unit_tests" and roles.eval_is_verifier
+    roles = build_roles(with_answers, with_answers.examples, verifier="unit_tests", eval_verifier="exact")
+    assert roles.eval_verifier(["jars: 2 + 2"], [" 4 "]).rewards.tolist() == [1.0]
     ledger = get_task("ledger")
     train, held = ledger.split(n_train=2, n_eval=1)
     with pytest.raises(ValueError, match=r"verifier = 'unit_tests' reads fields of each prompt's data row \(tests\), which only task = 'user' has"):
         build_roles(ledger, train + held, verifier="unit_tests")
-    with pytest.raises(ValueError, match=r"oracle = 'proxy' needs a task with a proxy verifier; task 'user' has none"):
-        build_roles(with_answers, with_answers.examples, oracle="proxy")
+    with pytest.raises(ValueError, match=r"eval_verifier = 'proxy' needs a task with a proxy verifier; task 'user' has none"):
+        build_roles(with_answers, with_answers.examples, eval_verifier="proxy")
 
 
-def test_reward_model_verifier_needs_a_threshold_or_an_oracle(tmp_path):
+def test_reward_model_verifier_needs_a_threshold_or_an_eval_verifier(tmp_path):
     from test_verifiers_user import save_reward_model
 
     save_reward_model(tmp_path / "rm")
     task = user_task(tmp_path, answer_field="ans")
-    with pytest.raises(ValueError, match=r"oracle must be set: the verifier 'reward_model' gives scores, not 0/1 rewards"):
+    with pytest.raises(ValueError, match=r"eval_verifier must be set: the verifier 'reward_model' gives scores, not 0/1 rewards"):
         build_roles(task, task.examples, verifier="reward_model", verifier_params={"path": str(tmp_path / "rm")})
     roles = build_roles(task, task.examples, verifier="reward_model", verifier_params={"path": str(tmp_path / "rm")},
-                        oracle="exact", device="cpu")
-    assert isinstance(roles.verifier, RewardModel) and roles.oracle_name == "exact"
+                        eval_verifier="exact", device="cpu")
+    assert isinstance(roles.verifier, RewardModel) and roles.eval_verifier_name == "exact"
     same = build_roles(task, task.examples, verifier="reward_model", verifier_params={"path": str(tmp_path / "rm"), "threshold": 0.0},
-                       oracle="reward_model", oracle_params={"path": str(tmp_path / "rm"), "threshold": 0.0})
-    assert same.oracle is same.verifier  # one model in memory
+                       eval_verifier="reward_model", eval_verifier_params={"path": str(tmp_path / "rm"), "threshold": 0.0})
+    assert same.eval_verifier is same.verifier  # one model in memory
 
 
 def test_check_spec():
-    check_spec("oracle", "", {}, allow_empty=True)
-    with pytest.raises(ValueError, match=r"oracle must be 'exact', 'proxy', one of \('unit_tests', 'reward_model'\) "
+    check_spec("eval_verifier", "", {}, allow_empty=True)
+    with pytest.raises(ValueError, match=r"eval_verifier must be 'exact', 'proxy', one of \('unit_tests', 'reward_model'\) "
                                          r"or 'module:function', got 'best'"):
-        check_spec("oracle", "best", {})
+        check_spec("eval_verifier", "best", {})
     with pytest.raises(ValueError, match=r"verifier_params cannot take effect with verifier = 'exact' "
                                          r"\(the task's own checker takes no knobs\), got \['path'\]"):
         check_spec("verifier", "exact", {"path": "x"})
-    with pytest.raises(ValueError, match=r"oracle_params cannot take effect with oracle = '' \(the default oracle takes no knobs\)"):
-        check_spec("oracle", "", {"threshold": 1}, allow_empty=True)
+    with pytest.raises(ValueError, match=r"eval_verifier_params cannot take effect with eval_verifier = '' "
+                                         r"\(the default evaluation verifier takes no knobs\)"):
+        check_spec("eval_verifier", "", {"threshold": 1}, allow_empty=True)
     with pytest.raises(TypeError, match=r"verifier_params must be a table"):
         check_spec("verifier", "exact", [1])

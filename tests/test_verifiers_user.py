@@ -123,8 +123,8 @@ def test_verifiers_by_name(tmp_path, clean_path):
     with pytest.raises(TypeError, match=r"verifier_params of 'reward_model' must be among \['path', 'threshold', 'batch_size', "
                                         r"'device', 'label', 'max_length'\], got \['path', 'treshold'\]"):
         make_verifier("reward_model", {"path": str(tmp_path / "rm"), "treshold": 0.0})
-    with pytest.raises(ValueError, match=r"oracle = 'reward_model' needs oracle_params.path"):
-        make_verifier("reward_model", {}, key="oracle")
+    with pytest.raises(ValueError, match=r"eval_verifier = 'reward_model' needs eval_verifier_params.path"):
+        make_verifier("reward_model", {}, key="eval_verifier")
     with pytest.raises(ValueError, match=r"verifier_params cannot take effect with verifier = 'bonft.verifiers:ExactMatch'"):
         make_verifier("bonft.verifiers:ExactMatch", {"x": 1})
     with pytest.raises(ValueError, match=r"verifier must be one of \('unit_tests', 'reward_model'\) or 'module:function', got 'rm'"):

@@ -39,8 +39,8 @@ string; the tokenizer's own start token is not doubled (checked against
 ``prompts``; the raw prompt is in each row under ``prompt_field``.
 
 Caution: a model trained against any verifier learns what that verifier
-accepts (reward hacking); evaluate with an oracle you trust (see
-docs/training.md), and run model-written code only in a sandbox.
+accepts (reward hacking); evaluate with a checker you trust (recipe key ``eval_verifier``,
+see docs/training.md), and run model-written code only in a sandbox.
 """
 from __future__ import annotations
 

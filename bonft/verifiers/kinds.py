@@ -27,7 +27,7 @@ VERIFIER_KINDS: dict[str, type] = {"unit_tests": UnitTests, "reward_model": Rewa
 def make_verifier(spec: str, params: dict | None = None, *, key: str = "verifier", device: str | None = None) -> Callable:
     """The verifier named ``spec`` (a kind of :data:`VERIFIER_KINDS` or ``module:function``) with knobs ``params``.
 
-    key:    the recipe key that named it (for error messages, e.g. ``"oracle"``).
+    key:    the recipe key that named it (for error messages, e.g. ``"eval_verifier"``).
     device: the trainer's device, the default ``device`` of a reward model.
     """
     if not isinstance(spec, str):

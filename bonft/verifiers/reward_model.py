@@ -15,11 +15,11 @@ The score: with one label, the logit; with several, the probability of class
 ``label`` (default 1, the "good" class of a two-class head). ``threshold``
 turns scores into 0/1 rewards (``reward = score >= threshold``); without it the
 verdicts carry no rewards, so a trainer trains on the scores and an evaluation
-needs a separate oracle for pass@k.
+needs a separate evaluation verifier (recipe key ``eval_verifier``) for pass@k.
 
 Caution (reward hacking): a reward model is a learned proxy; the policy will
-find responses it over-scores. Keep an oracle you trust beside it (best-of-k
-under the reward model next to pass@k under the oracle shows the gap).
+find responses it over-scores. Keep a checker you trust beside it (best-of-k
+under the reward model next to pass@k under that checker shows the gap).
 """
 from __future__ import annotations
 
