@@ -13,6 +13,7 @@ import socket
 import subprocess
 import sys
 import textwrap
+import time
 import types
 from pathlib import Path
 
@@ -138,7 +139,7 @@ def test_two_trainer_processes_on_one_directory(tmp_path):
     try:
         while not (Path(cfg.run_dir) / "metrics.jsonl").is_file():  # the first run is past its set-up
             assert first.poll() is None, first.stderr.read()
-            os.sched_yield()
+            time.sleep(0.05)
         with pytest.raises(RunDirBusy, match=rf"pid {first.pid} on host .*, started 20"):
             T.train(cfg, resume=True, progress=False)
     finally:
