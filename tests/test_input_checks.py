@@ -319,6 +319,14 @@ def test_seeds_beyond_what_the_generators_take_are_refused():
     ("prompts_per_step", 10**12, r"^prompts_per_step must be <= 65,536 \(a step holds every prompt's pool until its "
                                  r"update\), got prompts_per_step=1,000,000,000,000$"),
     ("n_boot", 2 * 10**7, r"^n_boot must be <= 1,000,000 \(each replicate is a row of the bootstrap table"),
+    ("warm_start_batch_size", 10**12, r"^warm_start_batch_size must be <= 65,536 \(a warm-start step holds every prompt "
+                                      r"with its reference\), got warm_start_batch_size=1,000,000,000,000$"),
+    # 16 x 2 x 128^2 + (96 + 256) x 128 weights for the defaults layers=2, width=128, max_positions=96
+    ("layers", 10**6, r"^layers, width and max_positions must give a model of <= 1,073,741,824 weights \(4 GiB in float32, "
+                      r"and AdamW holds two more copies\), got about 262,144,045,056 \(16 x layers 1,000,000 x width 128\^2 "
+                      r"\+ max_positions 96 x width\); for a large model use start_from$"),
+    ("width", 10**9, r"^layers, width and max_positions must give a model of <= 1,073,741,824 weights"),
+    ("max_positions", 10**9, r"got about 128,000,557,056 \(16 x layers 2 x width 128\^2 \+ max_positions 1,000,000,000 x"),
 ])
 def test_config_keys_that_size_work_are_bounded_before_the_run(key, value, pattern):
     import os

@@ -106,7 +106,8 @@ class TrainConfig:
                          "with start_from is an error: the model comes from start_from).", group="model")
     arch: str = _f("gpt2", "Tiny model family when building from scratch: 'gpt2' or 'llama'.", group="model")
     layers: int = _f(2, "Transformer layers of the tiny model.", group="model")
-    width: int = _f(128, "Width of the tiny model.", group="model")
+    width: int = _f(128, "Width of the tiny model (with layers and max_positions: at most 2**30 weights).",
+                    group="model")
     heads: int = _f(4, "Attention heads of the tiny model.", group="model")
     max_positions: int = _f(96, "Context length of the tiny model (prompt + response tokens).", group="model")
     # --- task ---
@@ -127,7 +128,8 @@ class TrainConfig:
                                "Supervised warm-start steps (NLL of the reference responses) before RL. 0 = "
                                "skip. (old spelling: sft_steps)", group="warm_start")
     warm_start_batch_size: int = _f(128,
-                                    "Prompts per warm-start step (old spelling: sft_batch_size).", group="warm_start")
+                                    "Prompts per warm-start step, <= 65,536 (old spelling: sft_batch_size).",
+                                    group="warm_start")
     warm_start_lr: float = _f(3e-3,
                               "Warm-start learning rate (AdamW, cosine decay to 10%) (old spelling: sft_lr).", group="warm_start")
     # --- RL stage ---
@@ -298,6 +300,9 @@ def validate(c: TrainConfig) -> None:
     check_task_sizes(c)
 
 
+MAX_TINY_PARAMS = 2**30  # weights of a tiny model built from the recipe's layers / width / max_positions
+
+
 def check_work_sizes(c: TrainConfig) -> None:
     """The keys that size a step's work or memory, each against its documented bound (bonft._core.checks)."""
 
@@ -318,6 +323,15 @@ def check_work_sizes(c: TrainConfig) -> None:
     if c.threads > cores:
         raise ValueError(f"threads must be <= {cores} (the cores of this machine, os.cpu_count(); more threads than "
                          f"cores only contend, and the BLAS library fails on very large counts), got threads={c.threads}")
+    check_bound("warm_start_batch_size", c.warm_start_batch_size, max=MAX_PROMPTS_PER_STEP,
+                why="a warm-start step holds every prompt with its reference")
+    if not c.start_from:  # the tiny model built from scratch: 16 width^2 weights a layer at most (Llama, MLP 4x)
+        params = 16 * c.layers * c.width**2 + (c.max_positions + 256) * c.width
+        if params > MAX_TINY_PARAMS:
+            raise ValueError(
+                f"layers, width and max_positions must give a model of <= {MAX_TINY_PARAMS:,} weights (4 GiB in float32, "
+                f"and AdamW holds two more copies), got about {params:,} (16 x layers {c.layers:,} x width {c.width:,}^2 "
+                f"+ max_positions {c.max_positions:,} x width); for a large model use start_from")
 
 
 PROBE_DRAWS = 50_000  # sizes above this are checked against a probe of the task before any prompt is kept
