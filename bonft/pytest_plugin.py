@@ -26,7 +26,7 @@ def verifier_check():
     """``verifier_check(verifier, examples, *, expect_ok=True, **kw) -> VerifierReport``."""
 
     def run(verifier, examples, *, expect_ok: bool = True, **kw):
-        from bonft.testing import check_verifier
+        from bonft.testing import check_verifier  # loaded when a fixture is used, not at pytest's start
 
         report = check_verifier(verifier, examples, **kw)
         if expect_ok and not report.ok:
@@ -41,7 +41,7 @@ def objective_check():
     """``objective_check(credit, *, target, k, n, expect_ok=True, **kw) -> ObjectiveReport``."""
 
     def run(credit, *, target, k, n, expect_ok: bool = True, **kw):
-        from bonft.testing import check_objective
+        from bonft.testing import check_objective  # loads torch: only when the fixture is used
 
         report = check_objective(credit, target=target, k=k, n=n, **kw)
         if expect_ok and not report.ok:

@@ -30,11 +30,11 @@ __all__ = ["check_objective", "ObjectiveReport", "ToyPolicy", "check_verifier", 
 def __getattr__(name: str):
     """check_objective, ObjectiveReport, ToyPolicy, check_on_policy, OnPolicyReport load torch: import them on first use (PEP 562)."""
     if name in ("check_objective", "ObjectiveReport", "ToyPolicy"):
-        from bonft import objcheck
+        from bonft import objcheck  # loads torch: only on first use
 
         return getattr(objcheck, name)
     if name in ("check_on_policy", "OnPolicyReport"):
-        from bonft.generation import on_policy
+        from bonft.generation import on_policy  # loads torch: only on first use
 
         return getattr(on_policy, name)
     raise AttributeError(f"module {__name__!r} has no attribute {name!r}")

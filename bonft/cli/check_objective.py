@@ -35,7 +35,7 @@ def add_arguments(p) -> None:
 
 
 def run(args) -> int:
-    from bonft.cli._args import write_json_atomic
+    from bonft.cli.options import write_json_atomic
     from bonft.testing import check_objective
     from bonft.verifiers.scoring import load_verifier  # a generic 'module:function' loader
 

@@ -23,7 +23,7 @@ def add_arguments(p) -> None:
 def run(args) -> int:
     import os
 
-    from bonft.cli._args import parse_list, write_json_atomic
+    from bonft.cli.options import parse_list, write_json_atomic
     from bonft.testing import PROBES, probe_code_tests
     from bonft.verifiers import CodeRunner
     from bonft.verifiers.probes import read_code_tests

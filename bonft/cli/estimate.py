@@ -4,9 +4,9 @@ from __future__ import annotations
 import argparse
 import os
 
-from bonft.cli._args import add_duplicates_flag, add_plot_dir, check_sizes, parse_list, write_curve_outputs
-from bonft.cli._strategies import add_strategy_arguments
-from bonft.cli._strategies import run_estimate as _run_strategies
+from bonft.cli.options import add_duplicates_flag, add_plot_dir, check_sizes, parse_list, write_curve_outputs
+from bonft.cli.strategy_tables import add_strategy_arguments
+from bonft.cli.strategy_tables import run_estimate as _run_strategies
 
 HELP = "best-of-k (verifier picks) and pass@k with bootstrap CIs from a pool file (JSONL of scored samples)"
 DESCRIPTION = (

@@ -5,7 +5,7 @@ import argparse
 import json
 from pathlib import Path
 
-from bonft.cli._args import parse_list
+from bonft.cli.options import parse_list
 
 HELP = "evaluate a checkpoint: pass@k and best-of-k (per verifier) with CIs on held-out prompts"
 DESCRIPTION = (
@@ -34,9 +34,15 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 def load_for_eval(args: argparse.Namespace, *, n: int, ks: list[int], temperature: float):
     """The checkpoint's config (its config.toml, else defaults) pointed at the checkpoint, and the Run."""
-    from bonft.trainer.checkpoint import resolve_checkpoint
-    from bonft.trainer.config import FIELDS, MODEL_KEYS, apply_overrides, from_dict, read_recipe
-    from bonft.trainer.run import build_run
+    from bonft.trainer.checkpoint import resolve_checkpoint  # loads torch: only when a command runs
+    from bonft.trainer.config import (  # loads torch: only when a command runs
+        FIELDS,
+        MODEL_KEYS,
+        apply_overrides,
+        from_dict,
+        read_recipe,
+    )
+    from bonft.trainer.run import build_run  # loads torch: only when a command runs
 
     ckpt = resolve_checkpoint(args.checkpoint)
     base = read_recipe(ckpt / "config.toml") if (ckpt / "config.toml").is_file() else {}
@@ -62,7 +68,7 @@ def run(args: argparse.Namespace) -> int:
     import torch
 
     from bonft._core.checks import check_int, check_positive
-    from bonft.trainer.evaluation import evaluate_run
+    from bonft.trainer.evaluation import evaluate_run  # loads torch: only when a command runs
 
     n = check_int("--n", args.n, min=1)
     ks = parse_list("--ks", args.ks)
@@ -87,7 +93,7 @@ def run(args: argparse.Namespace) -> int:
 def _eval_seeded(r, seed: int):
     from dataclasses import replace
 
-    from bonft.trainer.evaluation import evaluate_run
+    from bonft.trainer.evaluation import evaluate_run  # loads torch: only when a command runs
 
     r.cfg = replace(r.cfg, seed=seed)
     return evaluate_run(r, step=-1)

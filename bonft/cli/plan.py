@@ -5,9 +5,12 @@ import argparse
 import json
 import os
 
-from bonft.cli._args import add_duplicates_flag, check_sizes, parse_list, write_json_atomic
-from bonft.cli._strategies import add_strategy_arguments
-from bonft.cli._strategies import run_plan as _run_strategies
+from bonft._core.checks import check_choice, check_int
+from bonft.cli.options import add_duplicates_flag, check_sizes, parse_list, write_json_atomic
+from bonft.cli.strategy_tables import add_strategy_arguments
+from bonft.cli.strategy_tables import run_plan as _run_strategies
+from bonft.tasks import TASKS, exact_match_verifier, get_task, load_prompts_jsonl
+from bonft.verifiers import load_verifier
 
 HELP = "choose temperature and N: best-of-k value over a temperature x k grid, budgets, doubling gains"
 DESCRIPTION = (
@@ -69,9 +72,6 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 def _prompts_and_verifier(args):
     """(prompt strings, verifier, verifier name for the cache key) for model mode."""
-    from bonft._core.checks import check_int
-    from bonft.tasks import exact_match_verifier, get_task, load_prompts_jsonl
-
     if (args.task is None) == (args.prompts_file is None):
         raise ValueError("model mode needs exactly one of --task NAME or --prompts-file FILE.jsonl, got "
                          + ("both" if args.task else "neither"))
@@ -85,9 +85,6 @@ def _prompts_and_verifier(args):
                                  f"got {args.n_prompts}")
             examples = examples[: args.n_prompts]
     else:
-        from bonft._core.checks import check_choice
-        from bonft.tasks import TASKS
-
         task = get_task(check_choice("--task", args.task, tuple(TASKS)))
         _, examples = task.split(n_train=0, n_eval=100 if args.n_prompts is None else args.n_prompts, seed=args.seed)
     prompts = [e.prompt for e in examples]
@@ -105,8 +102,6 @@ def _prompts_and_verifier(args):
         return prompts, proxy, f"task:{args.task}:proxy"
     if ":" not in v:
         raise ValueError(f"--verifier must be exact, proxy or module:function, got {v!r}")
-    from bonft.verifiers import load_verifier
-
     return prompts, load_verifier(v), v
 
 
@@ -186,7 +181,7 @@ def run(args) -> int:
         if temps is None:
             raise ValueError("--exact needs temperatures: --temperatures or a 'temperatures' field")
         if args.strategy:
-            from bonft.cli._strategies import run_plan_exact
+            from bonft.cli.strategy_tables import run_plan_exact
 
             return run_plan_exact(args, spec, temps)
         kw = _plan_kwargs(args)

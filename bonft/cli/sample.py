@@ -3,8 +3,8 @@ from __future__ import annotations
 
 import argparse
 
-from bonft.cli._args import parse_list
 from bonft.cli.evaluate import add_common, announce, load_for_eval
+from bonft.cli.options import parse_list
 
 HELP = "sample responses from a checkpoint and write a samples JSONL (input of bonft estimate / bonft plan)"
 DESCRIPTION = (

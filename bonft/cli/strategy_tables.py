@@ -4,7 +4,12 @@ from __future__ import annotations
 import argparse
 import os
 
-from bonft.cli._args import parse_list, write_curve_outputs, write_json_atomic
+import numpy as np
+
+from bonft.cli.options import parse_list, write_curve_outputs, write_json_atomic
+from bonft.estimate import default_ks
+from bonft.io import group_pools, temperatures_of
+from bonft.viz import plot_strategy_curves
 
 STRATEGY_HELP = ("comma-separated inference strategies to compare: best_of_k (verifier picks), majority_vote "
                  "(most frequent answer), weighted_vote (answer with the largest total score), pass_at_k (best true "
@@ -20,7 +25,7 @@ def add_strategy_arguments(p: argparse.ArgumentParser) -> None:
 
 
 def strategy_names(text: str | None) -> list[str] | None:
-    from bonft.strategies import get_strategy
+    from bonft.strategies import get_strategy  # loads torch: only when a command runs
 
     names = parse_list("--strategy", text, str)
     if names is None:
@@ -35,9 +40,7 @@ def strategy_names(text: str | None) -> list[str] | None:
 
 
 def _curves(table, t, names, ks, args):
-    from bonft.estimate import default_ks
-    from bonft.io import group_pools
-    from bonft.strategies import MAX_SUBSETS, compare_strategies, get_strategy
+    from bonft.strategies import MAX_SUBSETS, compare_strategies, get_strategy  # loads torch: only when a command runs
 
     need_answers = any(get_strategy(n).uses_answers for n in names)
     if need_answers and table.answers is None:
@@ -71,7 +74,6 @@ def run_estimate(args, table, path: str, temps: list, ks) -> int:
     print()
     print("V_k: the unbiased mean reward of what each strategy serves from k samples (all k-subsets of each pool); "
           "best: the strategy with the highest mean at that k.")
-    from bonft.viz import plot_strategy_curves
 
     write_curve_outputs(args, path, blocks, curves, plot_strategy_curves, "estimate_strategies.png")
     return 0
@@ -79,8 +81,7 @@ def run_estimate(args, table, path: str, temps: list, ks) -> int:
 
 def run_plan(args, table, temps_wanted) -> int:
     """``bonft plan --samples F --strategy ...``: the best (strategy, temperature, k) at each k and per budget."""
-    from bonft.io import temperatures_of
-    from bonft.strategies import get_strategy
+    from bonft.strategies import get_strategy  # loads torch: only when a command runs
 
     names = strategy_names(args.strategy)
     temps = temperatures_of(table) or [None]
@@ -115,7 +116,6 @@ def run_plan(args, table, temps_wanted) -> int:
         write_json_atomic(args.json, {"best_by_k": rows, "grid": {str(t): g.to_dict() for t, g in grid.items()}})
         print(f"wrote {args.json}")
     if args.plot_dir:
-        from bonft.viz import plot_strategy_curves
 
         path = os.path.join(args.plot_dir, "plan_strategies.png")
         plot_strategy_curves({("" if t is None else f"T={t:g}"): g for t, g in grid.items()}, path)
@@ -125,10 +125,9 @@ def run_plan(args, table, temps_wanted) -> int:
 
 def run_plan_exact(args, spec: dict, temps: list) -> int:
     """``bonft plan --exact F --strategy ...``: exact V_k of each strategy over temperature x k, the best per k."""
-    import numpy as np
 
-    from bonft.bon import softmax_policy
-    from bonft.strategies import get_strategy, strategy_value
+    from bonft.bon import softmax_policy  # loads torch: only when a command runs
+    from bonft.strategies import get_strategy, strategy_value  # loads torch: only when a command runs
 
     names = strategy_names(args.strategy)
     if "logits" not in spec:

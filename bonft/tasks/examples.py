@@ -22,6 +22,7 @@ from pathlib import Path
 import numpy as np
 
 from bonft._core.checks import check_int
+from bonft.io import write_samples
 
 __all__ = ["EXAMPLE_SAMPLES", "example_samples_path", "ledger_rows"]
 
@@ -69,8 +70,6 @@ def ledger_rows(*, n_prompts: int = 200, n_samples: int = 16, temperatures=(0.6,
 
 
 def main() -> int:
-    from bonft.io import write_samples
-
     os.makedirs(EXAMPLE_SAMPLES.parent, exist_ok=True)
     n = write_samples(EXAMPLE_SAMPLES, ledger_rows())
     print(f"wrote {n} rows to {EXAMPLE_SAMPLES} ({EXAMPLE_SAMPLES.stat().st_size / 1e3:.0f} kB)")

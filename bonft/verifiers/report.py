@@ -8,6 +8,8 @@ from typing import Any
 import numpy as np
 from scipy.stats import rankdata
 
+from bonft.viz import plot_verifier_check
+
 
 def roc_auc(scores: Any, labels: Any) -> float | None:
     """Area under the ROC curve: ``(N,), (N,) bool -> float``, None if a class is empty.
@@ -107,6 +109,4 @@ class VerifierReport:
 
     def plot(self, path: str) -> str:
         """Plot best-of-k (verifier's pick) against pass@k as k grows, to ``path`` (PNG); returns ``path``."""
-        from bonft.viz import plot_verifier_check
-
         return plot_verifier_check(self, path)

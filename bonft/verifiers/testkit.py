@@ -35,6 +35,7 @@ from typing import Any, Mapping, Sequence
 import numpy as np
 
 from bonft._core.checks import check_int, check_real
+from bonft.estimate import best_of_k_per_prompt, default_ks, pass_at_k_per_prompt
 from bonft.verifiers.report import VerifierReport, roc_auc
 from bonft.verifiers.scoring import score_batch
 
@@ -282,8 +283,6 @@ def check_verifier(
 
     # 6) over-optimisation curve
     if true is not None:
-        from bonft.estimate import best_of_k_per_prompt, default_ks, pass_at_k_per_prompt
-
         n_min = min(len(t) for t in true)
         kk = default_ks(n_min) if ks is None else list(ks)
         bok = best_of_k_per_prompt(scores, true, ks=kk).mean(axis=0)
