@@ -18,7 +18,7 @@ __all__ = [
 
 def __getattr__(name):  # plan_model pulls in torch and the sampler: import it on first use
     if name == "plan_model":
-        from bonft.plan.from_model import plan_model
+        from bonft.plan.from_model import plan_model  # torch and the sampler load on first use
 
         return plan_model
     raise AttributeError(f"module 'bonft.plan' has no attribute {name!r}")

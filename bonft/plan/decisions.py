@@ -8,6 +8,7 @@ from typing import Any
 
 import numpy as np
 
+from bonft._core.bootstrap import resample_counts
 from bonft.plan.result import BudgetChoice, DoublingStep, PlanResult, TemperatureFit
 
 BLOCK_CELLS = 4_000_000  # entries of one block of resampling counts (as bonft.estimate.bootstrap_ci)
@@ -23,8 +24,6 @@ def bootstrap_means(per_prompt: list[np.ndarray], *, paired: bool, n_boot: int, 
     """
     rng = np.random.default_rng(seed)
     T, K = len(per_prompt), per_prompt[0].shape[1]
-
-    from bonft._core.bootstrap import resample_counts
 
     def means(X: np.ndarray, out: np.ndarray) -> None:
         """out (B, C) = resampled column means of X (P, C), block by block."""

@@ -19,8 +19,14 @@ from pathlib import Path
 from typing import Any, Callable, Sequence
 
 import numpy as np
+from tqdm.auto import tqdm
 
 from bonft._core.checks import MAX_POOL, check_bound, check_fraction, check_int, check_n_boot, check_seed
+from bonft._core.seeds import derive_seed, float_key
+from bonft.generation.sampling import sample
+from bonft.io import SampleTable, read_samples, write_samples
+from bonft.plan.sweep import _check_temperatures, plan_samples
+from bonft.verifiers import score_batch
 
 PROMPT_CHUNK = 16  # prompts per sampling call: the progress bar's step, and part of each chunk's seed
 
@@ -47,8 +53,6 @@ def prompts_fingerprint(prompts: Sequence[str]) -> str:
 
 
 def _seed_for(seed: int, temperature: float, chunk: int) -> int:
-    from bonft._core.seeds import derive_seed, float_key
-
     return derive_seed(seed, float_key(temperature), chunk, bits=31)
 
 
@@ -85,13 +89,6 @@ def draw_samples(
     verifier_name: part of the cache key (default: the verifier's qualified name); change it
     when the verifier's behaviour changes, or old pools would be reused.
     """
-    from tqdm.auto import tqdm
-
-    from bonft.generation.sampling import sample
-    from bonft.io import SampleTable, read_samples, write_samples
-    from bonft.plan.sweep import _check_temperatures
-    from bonft.verifiers import score_batch
-
     temps = _check_temperatures(temperatures)
     n = check_bound("n", n, max=MAX_POOL, why="samples per prompt: a pool is sampled, scored and planned over at once")
     seed = check_seed(seed)
@@ -191,8 +188,6 @@ def plan_model(
     plan_kwargs: max_k, budget_samples, budget_tokens, confidence, n_boot, min_gain (seed is shared).
     -> (PlanResult, info).
     """
-    from bonft.plan.sweep import plan_samples
-
     if "n_boot" in plan_kwargs:  # the planner's knobs before any sampling (plan_samples checks them all again)
         check_n_boot(plan_kwargs["n_boot"], min=10)
     if plan_kwargs.get("max_k") is not None and check_int("max_k", plan_kwargs["max_k"], min=1) > n:

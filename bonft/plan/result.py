@@ -219,12 +219,12 @@ class PlanResult:
 
     def plot_heatmap(self, path) -> str:
         """PNG of V over (temperature, k), best temperature per k marked; returns the path."""
-        from bonft.viz import plot_plan_heatmap
+        from bonft.viz import plot_plan_heatmap  # matplotlib loads only when a figure is drawn
 
         return plot_plan_heatmap(self, path)
 
     def plot_curves(self, path) -> str:
         """PNG of V against k at the best and a few other temperatures, with CI bands; returns the path."""
-        from bonft.viz import plot_plan_curves
+        from bonft.viz import plot_plan_curves  # matplotlib loads only when a figure is drawn
 
         return plot_plan_curves(self, path)

@@ -46,9 +46,12 @@ from bonft._core.checks import (
     check_int,
     check_n_boot,
     check_positive,
+    check_probs,
     check_real,
     check_seed,
 )
+from bonft.estimate import best_of_k_per_prompt
+from bonft.io import group_pools, temperatures_of
 from bonft.plan.decisions import bootstrap_means, finish, fit_best_temperature
 from bonft.plan.result import BudgetChoice, DoublingStep, PlanResult, TemperatureFit
 
@@ -175,8 +178,6 @@ def plan_pools(
 
     Reference: Chow et al. 2024 (best-of-N value), Chen et al. 2021 (unbiased estimators).
     """
-    from bonft.estimate import best_of_k_per_prompt
-
     if not isinstance(pools, Mapping):
         raise TypeError(f"pools must be a mapping {{temperature: Pools}}, got {type(pools).__name__}")
     temps = _check_temperatures(list(pools.keys()))
@@ -281,8 +282,6 @@ def plan_samples(
     temperatures: a subset of the temperatures in the table (default: all of them).
     Mean response length per temperature comes from the ``n_tokens`` column when present.
     """
-    from bonft.io import group_pools, temperatures_of
-
     check_n_boot(n_boot, min=10), check_seed(seed)  # the knobs before any work (plan_pools checks them all again)
     if max_k is not None:
         _check_max_k(max_k)
@@ -348,7 +347,7 @@ def plan_exact(
     V_k(T) = sum_v pi_bon,T(v) r_v, pi_bon from :func:`bonft.bon.best_of_k_value` (ties broken
     uniformly among the tied top samples). Reference: Chow et al. 2024.
     """
-    from bonft.bon import best_of_k_value, softmax_policy
+    from bonft.bon import best_of_k_value, softmax_policy  # bonft.bon loads torch: only exact mode needs it
 
     temps = _check_temperatures(temperatures)
     if (logits is None) == (probs is None):
@@ -361,8 +360,6 @@ def plan_exact(
         check_finite("logits", base)
     else:
         base = as_float_array("probs", probs, ndim=(1, 2))
-        from bonft._core.checks import check_probs
-
         check_probs("probs", base)
     base = base.reshape(-1, base.shape[-1])  # (V,) -> (1, V); (P, V) stays
     P, V = base.shape
