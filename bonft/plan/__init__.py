@@ -3,7 +3,8 @@
 Modules: :mod:`.sweep` (the temperature x k table from pools, a pool file or a
 finite outcome set), :mod:`.decisions` (paired bootstrap, budget choices, the
 T*(k) fit), :mod:`.result` (:class:`PlanResult` and its parts),
-:mod:`.from_model` (draw pools from a model, cached on disk). Figures live in
+:mod:`.from_model` (draw pools from a model, cached on disk; imported on its own as
+``bonft.plan.from_model``, since it loads torch and the sampler). Figures live in
 :mod:`bonft.viz`. See :mod:`bonft.plan.sweep` for the method and its references.
 """
 from bonft.plan.decisions import fit_best_temperature
@@ -12,13 +13,5 @@ from bonft.plan.sweep import Pools, plan_exact, plan_pools, plan_samples
 
 __all__ = [
     "Pools", "PlanResult", "BudgetChoice", "DoublingStep", "TemperatureFit",
-    "plan_pools", "plan_samples", "plan_exact", "fit_best_temperature", "plan_model",
+    "plan_pools", "plan_samples", "plan_exact", "fit_best_temperature",
 ]
-
-
-def __getattr__(name):  # plan_model pulls in torch and the sampler: import it on first use
-    if name == "plan_model":
-        from bonft.plan.from_model import plan_model  # torch and the sampler load on first use
-
-        return plan_model
-    raise AttributeError(f"module 'bonft.plan' has no attribute {name!r}")
