@@ -2,6 +2,7 @@
 from __future__ import annotations
 
 import argparse
+import dataclasses
 
 HELP = "the built-in demo: REINFORCE vs a pass@k-aware objective vs a placebo from one warm start (~10 min on 2 CPU cores)"
 DESCRIPTION = (
@@ -26,10 +27,8 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 
 def _demo_config(args):
-    import dataclasses
-
-    from bonft.trainer.config import _convert, _current_key, _parse_scalar
-    from bonft.trainer.demo import DemoConfig
+    from bonft.trainer.config import convert_value, current_key, parse_scalar  # torch: only when a command runs
+    from bonft.trainer.demo import DemoConfig  # torch: only when a command runs
 
     dc = DemoConfig(run_dir=args.output, seed=args.seed)
     fields = {f.name: f for f in dataclasses.fields(DemoConfig)}
@@ -37,9 +36,9 @@ def _demo_config(args):
         if "=" not in item:
             raise ValueError(f"--set expects key=value, got {item!r}")
         key, text = (s.strip() for s in item.split("=", 1))
-        key = _current_key(key, "--set ")
+        key = current_key(key, "--set ")
         if key.startswith("task_params."):
-            dc.task_params[key.split(".", 1)[1]] = _parse_scalar(text)
+            dc.task_params[key.split(".", 1)[1]] = parse_scalar(text)
         elif key in ("objectives", "plan_policies"):
             setattr(dc, key, tuple(v.strip() for v in text.split(",") if v.strip()))
         elif key == "plan_temperatures":
@@ -48,7 +47,7 @@ def _demo_config(args):
             except ValueError:
                 raise ValueError(f"plan_temperatures must be a comma-separated list of numbers, got {text!r}") from None
         elif key in fields and key not in ("run_dir", "seed"):
-            setattr(dc, key, _convert(key, text, getattr(dc, key)))
+            setattr(dc, key, convert_value(key, text, getattr(dc, key)))
         else:
             raise ValueError(f"--set key must be a demo knob among {sorted(set(fields) - {'run_dir', 'seed'})}, got {key!r}")
     return dc

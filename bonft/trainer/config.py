@@ -372,7 +372,7 @@ def check_task_sizes(c: TrainConfig) -> None:
 FIELDS = {f.name: f for f in dataclasses.fields(TrainConfig)}
 
 
-def _convert(name: str, text: str, like: Any) -> Any:
+def convert_value(name: str, text: str, like: Any) -> Any:
     """Turn override text into the type of the field's default ``like``."""
     if isinstance(like, bool):
         low = text.strip().lower()
@@ -397,7 +397,7 @@ def _convert(name: str, text: str, like: Any) -> Any:
     return text
 
 
-def _parse_scalar(text: str) -> Any:
+def parse_scalar(text: str) -> Any:
     """Task knob values: TOML-like literals (int, float, bool, quoted or bare string)."""
     try:
         return tomllib.loads(f"v = {text}")["v"]
@@ -405,7 +405,7 @@ def _parse_scalar(text: str) -> Any:
         return text
 
 
-def _current_key(key: str, where: str = "") -> str:
+def current_key(key: str, where: str = "") -> str:
     """A deprecated spelling -> its key, with a warning naming the key; other keys unchanged."""
     if key in DEPRECATED_KEYS:
         warnings.warn(f"{where}config key {key!r} is now called {DEPRECATED_KEYS[key]!r}; reading it as "
@@ -418,7 +418,7 @@ def current_keys(values: dict) -> dict:
     """``values`` with every deprecated key renamed (warning once per key); both spellings of one key is an error."""
     out = {}
     for key, v in values.items():
-        new = _current_key(key)
+        new = current_key(key)
         if new != key and new in values:
             raise ValueError(f"{key} and {new} are the same key (old and new spelling), got both; keep {new}")
         out[new] = v
@@ -435,13 +435,13 @@ def apply_overrides(values: dict, overrides: list[str]) -> dict:
         key, text = item.split("=", 1)
         key = key.strip()
         if key.startswith("task_params."):
-            values["task_params"][key.split(".", 1)[1]] = _parse_scalar(text.strip())
+            values["task_params"][key.split(".", 1)[1]] = parse_scalar(text.strip())
             continue
-        key = _current_key(key, "--set ")
+        key = current_key(key, "--set ")
         if key not in FIELDS:
             raise ValueError(f"--set key must be a config field (see docs/training.md), got {key!r}")
         default = FIELDS[key].default if FIELDS[key].default is not dataclasses.MISSING else FIELDS[key].default_factory()
-        values[key] = _convert(key, text.strip(), default)
+        values[key] = convert_value(key, text.strip(), default)
     return values
 
 
