@@ -105,6 +105,17 @@ def test_blank_lines_keep_the_line_numbers_of_the_rest(tmp_path):
     assert t.prompt_keys.tolist() == ["a", "b"] and t.scores.tolist() == [0.2, 0.2]
 
 
+
+def test_only_newline_ends_a_line(tmp_path):
+    """JSON strings may hold U+2028, U+2029 and U+0085 raw (RFC 8259 escapes only U+0000-U+001F); str.splitlines
+    would cut a line there, so the reader splits on newline alone and reads these two samples whole."""
+    p = tmp_path / "u.jsonl"
+    p.write_text('{"prompt_id": "a\u2028b", "score": 1, "reward": 1, "response": "x\u0085y\u2029"}\n'
+                 '{"prompt_id": "c", "score": 0, "reward": 0}\n', encoding="utf-8")
+    assert "\u2028" in p.read_text(encoding="utf-8")  # written raw, not as an escape
+    t = read_samples(p)
+    assert t.prompt_keys.tolist() == ["a\u2028b", "c"] and t.scores.tolist() == [1.0, 0.0]
+
 @pytest.mark.parametrize("value,pattern", [
     ("9" * 401, r"^n.jsonl line 2: field 'score' must fit in a float64 \(\|x\| < 1.8e308\), got an integer of 401 digits$"),
     ("-" + "9" * 309, r"^n.jsonl line 2: field 'score' must fit in a float64 \(\|x\| < 1.8e308\), got an integer of 309 digits$"),
