@@ -180,3 +180,23 @@ def test_unit_tests_from_the_row_run_in_code_runner(tmp_path):
         bad_task.bind_verifier(UnitTests(), bad_task.examples)
     with pytest.raises(TypeError, match=r"bind it to the rows first"):
         UnitTests()(["a"], ["b"])
+
+
+def test_sampler_and_training_forward_see_the_chat_template_tokens(tmp_path):
+    from bonft.generation import encode_responses, sample
+    from bonft.trainer.models import build_tiny_model
+
+    tok = chat_tokenizer()
+    task = UserTask(data=write_jsonl(tmp_path / "d.jsonl", ROWS), prompt_field="question", chat_template=True,
+                    system="you count jars", tokenizer=tok)
+    model = build_tiny_model("gpt2", vocab_size=len(tok), layers=1, width=16, heads=2, max_positions=96, seed=0,
+                             pad_token_id=tok.pad_token_id, eos_token_id=tok.eos_token_id, bos_token_id=tok.bos_token_id)
+    prompts = [ex.prompt for ex in task.examples]
+    smp = sample(model, tok, prompts, n=2, max_new_tokens=2, seed=0)
+    pids, pvalid, _, _ = encode_responses(tok, prompts, ["1"] * len(prompts))
+    for b, row in enumerate(ROWS):
+        messages = [{"role": "system", "content": "you count jars"}, {"role": "user", "content": row["question"]}]
+        want = tok.apply_chat_template(messages, tokenize=True, add_generation_prompt=True)
+        want = list(want["input_ids"]) if hasattr(want, "keys") else list(want)
+        assert smp.prompt_tokens[b][smp.prompt_valid[b] == 1].tolist() == want  # what the sampler conditioned on
+        assert pids[b][pvalid[b] == 1].tolist() == want  # what the training forward conditions on
