@@ -168,3 +168,26 @@ def test_half_precision_logprobs_give_a_finite_loss_equal_to_float64(dtype, rewa
 def test_credit_given_to_a_loss_refuses_complex_naming_it():
     with pytest.raises(TypeError, match=r"^credit must hold real numbers, got complex numbers"):
         obj.policy_gradient_loss(torch.zeros(1, 3), np.array([[1j, 0.0, 0.0]]))
+
+
+@pytest.mark.parametrize("kind", ["torch float16", "torch bfloat16", "numpy float16"])
+@given(raw=st.lists(st.floats(min_value=0.01, max_value=1.0), min_size=2, max_size=6))
+def test_half_precision_probabilities_are_read_at_their_own_precision(kind, raw):
+    """A policy rounded to float16 / bfloat16 sums to 1 within that type's eps, not 1e-6: it is accepted and
+    renormalised in float64. Reference: best-of-2 with distinct scores picks outcome i (scores ascending) with
+    probability F(i)^2 - F(i-1)^2, F the CDF in score order (the maximum of two iid draws; order statistics)."""
+    q = np.asarray(raw) / np.sum(raw)
+    if kind == "numpy float16":
+        p = q.astype(np.float16)
+        exact = p.astype(np.float64)
+    else:
+        p = torch.tensor(q, dtype=torch.float16 if kind == "torch float16" else torch.bfloat16)
+        exact = p.double().numpy()
+    exact = exact / exact.sum()
+    scores = np.arange(len(raw), dtype=np.float64)
+    F = np.cumsum(exact)
+    want = F**2 - np.concatenate([[0.0], F[:-1]]) ** 2
+    got = bon.best_of_k_distribution(p, scores, k=2)
+    got = got.double().numpy() if isinstance(got, torch.Tensor) else np.asarray(got)
+    np.testing.assert_allclose(got, want, rtol=1e-12, atol=1e-15)
+    assert abs(got.sum() - 1.0) < 1e-12

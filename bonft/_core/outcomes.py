@@ -31,8 +31,21 @@ def check_policy_probs(probs: Any) -> tuple[torch.Tensor, bool]:
     if p.ndim < 1:
         raise ValueError(f"probs must have at least 1 dimension (..., V), got shape {tuple(p.shape)}")
     check_nonempty("probs", p)
-    check_probs("probs", p)
-    return p, not is_tensor(probs)
+    eps = _half_eps(probs)
+    if eps is None:
+        check_probs("probs", p)
+        return p, not is_tensor(probs)
+    # float16 / bfloat16 round every probability (relative error eps / 2): a row sums to 1 within eps only, and is
+    # renormalised in float64 so that the results are those of a distribution
+    check_probs("probs", p, atol=eps)
+    return p / p.sum(-1, keepdim=True), not is_tensor(probs)
+
+
+def _half_eps(x: Any) -> float | None:
+    """Machine epsilon of a float16 / bfloat16 array or tensor, None for any other input."""
+    if is_tensor(x):
+        return torch.finfo(x.dtype).eps if x.dtype in (torch.float16, torch.bfloat16) else None
+    return 2.0**-10 if getattr(getattr(x, "dtype", None), "name", None) == "float16" else None  # IEEE 754 binary16
 
 
 def check_outcome_values(name: str, x: Any, p: torch.Tensor, *others: torch.Tensor) -> torch.Tensor:
