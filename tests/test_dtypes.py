@@ -118,7 +118,7 @@ def test_half_precision_rewards_give_finite_credit_equal_to_float64(name, credit
     torch.testing.assert_close(got.double(), want, rtol=1e-6, atol=1e-6 * float(want.abs().max()) + 1e-12)
 
 
-def test_the_float16_credit_of_the_report():
+def test_float16_rewards_of_6e4_give_the_credit_worked_by_hand():
     """Rewards +-6e4 in float16, k = 2 of 3: the credit of the third sample is 8e4 > 65504, inf in float16.
 
     Worked by hand from the best-of-k credit of Chow et al. 2024 with the leave-one-out baseline: the pairs
