@@ -284,10 +284,12 @@ def test_bad_input_messages():
         reinforce_loss(torch.zeros(2, 3), s, mask=torch.ones(2, 3))
 
 
-def test_default_path_reads_only_the_empty_row_check_on_the_host():
+def test_default_path_reads_one_bool_per_mask_on_the_host():
     # A device sync happens when Python reads a tensor's value (bool, float, int, item, tolist,
     # numpy, nonzero). With host scores/rewards the default path reads exactly one bool per mask
-    # (the all-zero-row check) and nothing without a mask; check_tokens=True is the opt-in for more.
+    # (the all-zero-row check and the finiteness test of the fast path, together) and nothing
+    # without a mask; NaN or an infinity in the padding costs one more read per mask (the where
+    # path's row check); check_tokens=True is the opt-in for more.
     from torch.overrides import TorchFunctionMode
 
     from bonft.objectives.losses import policy_gradient_loss
@@ -305,31 +307,34 @@ def test_default_path_reads_only_the_empty_row_check_on_the_host():
                 self.seen.append(func)
             return func(*args, **(kwargs or {}))
 
-    lp0, mask, lengths = token_batch(B=3, n=4, T=5)
-    seq0 = sliced_sums(lp0, lengths)
+    nan_lp, mask, lengths = token_batch(B=3, n=4, T=5)  # NaN and -inf in the padding
     rng = np.random.default_rng(0)
     s, R = rng.integers(0, 3, (3, 4)).astype(float), (rng.random((3, 4)) < 0.5).astype(float)
     e_lp, e_s = -torch.rand(3, 5, dtype=torch.float64), rng.integers(0, 3, 3).astype(float)
-    calls = [  # (call, masks it is given)
-        (lambda lp, m: best_of_k_loss(lp, s, R, k=2, mask=m, anchor_logprobs=lp0.detach() - 0.1 if m is not None
-                                      else seq0 - 0.1, anchor_weight=0.1, return_info=True), 1),
-        (lambda lp, m: pass_at_k_loss(lp, R, k=2, mask=m, return_info=True), 1),
-        (lambda lp, m: reinforce_loss(lp, R, mask=m, return_info=True), 1),
-        (lambda lp, m: best_of_k_sft_loss(lp, s, e_lp, e_s, k=2, mask=m, reference_mask=None if m is None else m[:, 0],
-                                          return_info=True), 2),
-        (lambda lp, m: policy_gradient_loss(lp, R, mask=m, return_info=True), 1),
-    ]
-    for call, masks in calls:
-        for tokens in (True, False):
-            lp = (lp0 if tokens else seq0).clone().requires_grad_(True)
-            with HostReads() as mode:
-                loss, info = call(lp, mask if tokens else None)
-            loss.backward()
-            assert torch.isfinite(loss) and all(not v.requires_grad for v in info.values())
-            assert mode.seen == ([torch.Tensor.__bool__] * masks if tokens else []), mode.seen
-    with HostReads() as mode:
-        nll_loss(lp0[:, 0], mask=mask[:, 0], return_info=True)
-    assert mode.seen == [torch.Tensor.__bool__]
+    for lp0, nan in ((torch.where(mask, nan_lp, -3.0), False), (nan_lp, True)):
+        seq0 = sliced_sums(lp0, lengths)
+        calls = [  # (call, masks it is given, of which with NaN padding: the reference's padding is finite)
+            (lambda lp, m: best_of_k_loss(lp, s, R, k=2, mask=m, anchor_logprobs=lp0.detach() - 0.1 if m is not None
+                                          else seq0 - 0.1, anchor_weight=0.1, return_info=True), 1, 1),
+            (lambda lp, m: pass_at_k_loss(lp, R, k=2, mask=m, return_info=True), 1, 1),
+            (lambda lp, m: reinforce_loss(lp, R, mask=m, return_info=True), 1, 1),
+            (lambda lp, m: best_of_k_sft_loss(lp, s, e_lp, e_s, k=2, mask=m,
+                                              reference_mask=None if m is None else m[:, 0], return_info=True), 2, 1),
+            (lambda lp, m: policy_gradient_loss(lp, R, mask=m, return_info=True), 1, 1),
+        ]
+        for call, masks, with_nan in calls:
+            for tokens in (True, False):
+                lp = (lp0 if tokens else seq0).clone().requires_grad_(True)
+                with HostReads() as mode:
+                    loss, info = call(lp, mask if tokens else None)
+                loss.backward()
+                assert torch.isfinite(loss) and all(not v.requires_grad for v in info.values())
+                assert torch.isfinite(lp.grad).all()
+                want = [torch.Tensor.__bool__] * ((masks + nan * with_nan) if tokens else 0)
+                assert mode.seen == want, mode.seen
+        with HostReads() as mode:
+            nll_loss(lp0[:, 0], mask=mask[:, 0], return_info=True)
+        assert mode.seen == [torch.Tensor.__bool__] * (1 + nan)
     with HostReads() as mode:  # the opt-in checks read more
         reinforce_loss(lp0, R, mask=mask, check_tokens=True)
     assert len(mode.seen) > 1

@@ -124,6 +124,8 @@ from bonft.objectives.validation import (
     check_sampling_logprobs,
     check_token_values,
     credit_tensor,
+    empty_rows,
+    token_weights,
 )
 
 __all__ = ["policy_gradient_loss", "best_of_k_loss", "pass_at_k_loss", "best_of_k_sft_loss", "reinforce_loss",
@@ -164,54 +166,121 @@ def policy_gradient_loss(logprobs, credit, **common):
     """
     opt = LossOptions.from_keywords("policy_gradient_loss", common)
     lp = check_logprobs("logprobs", logprobs, seq_ndim=2)
-    m = check_mask("mask", opt.mask, "logprobs", lp, seq_ndim=2)
+    mask = check_mask("mask", opt.mask, "logprobs", lp, seq_ndim=2)
     if opt.check_tokens:
-        check_token_values("logprobs", lp, "mask", opt.mask, m)
+        check_token_values("logprobs", lp, "mask", opt.mask, mask)
     w = credit_tensor(credit, lp, check_device=opt.check_tokens)
-    if m is not None:
-        check_empty_rows("mask", m, None if opt.check_tokens else w)
+    if mask is None:
+        loss, info, _ = _policy_gradient(lp, w, None, opt, fast=False)
+    elif opt.sampling_logprobs is not None:  # sample reuse reads its ratios anyway: the where path, checked first
+        check_empty_rows("mask", mask, None if opt.check_tokens else w)
+        loss, info, _ = _policy_gradient(lp, w, _Mask(mask, lp.dtype), opt, fast=False)
+    else:
+        m, weighted = _Mask(mask, lp.dtype), None if opt.check_tokens else w
+        loss, info, checked = _policy_gradient(lp, w, m, opt, fast=True)
+        if bool((~torch.isfinite(checked).all()) | empty_rows(mask, weighted).any()):  # the one read
+            check_empty_rows("mask", mask, weighted)  # an empty row with credit: a ValueError
+            loss, info, _ = _policy_gradient(lp, w, m, opt, fast=False)  # NaN or an infinity: where
+    return (loss, info) if opt.return_info else loss
+
+
+def _policy_gradient(lp: Tensor, w: Tensor, m: "_Mask | None", opt: LossOptions, *, fast: bool):
+    """The loss of :func:`policy_gradient_loss` on checked inputs -> ``(loss, info, per_prompt (B,))``.
+
+    ``fast``: padding is masked by a multiply (exact when it holds finite numbers); otherwise by
+    ``where`` (exact whatever it holds). Every non-finite value met on the fast path reaches
+    ``per_prompt`` (``0 * inf`` and ``w * NaN`` are NaN), so one test of it tells whether the
+    ``where`` path is needed.
+    """
     info: dict[str, Tensor] = {}
     if opt.sampling_logprobs is None:
-        seq = _masked_sum(lp, m)  # (B, n)
+        seq = _masked_sum(lp, m, fast=fast)  # (B, n)
     else:
         seq = _reweighted_sum(lp, m, w, opt, info)
     seq = _per_token_scale(seq, lp, m, opt.token_reduction)
     per_prompt = -(w * seq).sum(-1)  # (B,)
+    checked = per_prompt
     if opt.anchor_logprobs is not None:
-        kl_b, kl_tok = _anchor_kl(lp, m, opt)
+        kl_b, kl_tok = _anchor_kl(lp, m, opt, fast=fast)
         if opt.anchor_weight:
             per_prompt = per_prompt + opt.anchor_weight * kl_b
+        checked = per_prompt + kl_b.detach()  # the KL of the info too, with any weight
         info["kl"] = kl_tok
     loss = _reduce(per_prompt, opt.reduction)
     if not opt.return_info:
-        return loss
+        return loss, None, checked
     info["pools_with_signal"] = (w != 0).any(-1).to(w.dtype).mean()
     info["credit_abs_mean"] = w.abs().mean()
-    info["masked_frac"] = 1 - m.sum().to(w.dtype) / m.numel() if m is not None else w.new_zeros(())
-    return loss, info
+    info["masked_frac"] = 1 - m.count().to(w.dtype) / lp.numel() if m is not None else w.new_zeros(())
+    return loss, info, checked
 
 
-def _masked_sum(lp: Tensor, m: Tensor | None) -> Tensor:
-    """Token or sequence log-probs -> (B, n) sequence log-probs; padding adds exactly 0, even if NaN."""
-    if lp.ndim == 2:
+class _Mask:
+    """A checked mask in the two forms the losses use, each made once and only when needed.
+
+    ``weights``: 1/0 in the log-probs' dtype, for the fast path (a multiply); ``bool``: for the
+    ``where`` that keeps NaN or infinite padding out of the result, made only when the fast path
+    met a non-finite value, and for sample reuse at token level.
+    """
+
+    def __init__(self, mask: Tensor, dtype: torch.dtype):
+        self.mask, self.dtype = mask, dtype
+        self._weights: Tensor | None = None
+        self._bool: Tensor | None = None
+
+    @property
+    def weights(self) -> Tensor:
+        if self._weights is None:
+            self._weights = token_weights(self.mask, self.dtype)
+        return self._weights
+
+    @property
+    def bool(self) -> Tensor:
+        if self._bool is None:
+            self._bool = self.mask if self.mask.dtype == torch.bool else self.mask != 0
+        return self._bool
+
+    def count(self) -> Tensor:
+        """Response tokens, exact (an int64 count of a bool mask, a float64 sum of the weights)."""
+        if self._weights is None and self.mask.dtype == torch.bool:
+            return self.mask.sum()
+        return self.weights.sum(dtype=torch.float64)
+
+    def apply(self, x: Tensor) -> Tensor:
+        """``x`` where the mask is set, exactly 0 elsewhere whatever ``x`` holds there (``where``)."""
+        return torch.where(self.bool, x, 0.0)
+
+
+def _masked_sum(lp: Tensor, m: _Mask | None, *, fast: bool = False, seq_ndim: int = 2) -> Tensor:
+    """Token or sequence log-probs -> (B, n) sequence log-probs.
+
+    ``fast=False``: padding adds exactly 0, even if it holds NaN or an infinity (``where``).
+    ``fast=True``: ``(lp * weights).sum(-1)``, the same sums when the padding holds finite
+    numbers (``x * 0 = 0``) and a non-finite sum otherwise: the caller tests the result once
+    (O(B n)) and recomputes with ``fast=False`` only then. ``seq_ndim``: dimensions of
+    sequence log-probs.
+    """
+    if lp.ndim == seq_ndim:
         return lp
     if m is None:
         return lp.sum(-1)
-    return torch.where(m, lp, 0.0).sum(-1)
+    if fast:
+        return (lp * m.weights).sum(-1)
+    return m.apply(lp).sum(-1)
 
 
-def _per_token_scale(seq: Tensor, lp: Tensor, m: Tensor | None, token_reduction: str) -> Tensor:
+def _per_token_scale(seq: Tensor, lp: Tensor, m: _Mask | None, token_reduction: str) -> Tensor:
     """``token_reduction="mean"``: divide by the batch's mean response length."""
     if token_reduction == "sum":
         return seq
     if lp.ndim == seq.ndim:
         raise ValueError(f"token_reduction='mean' needs token log-probs ({seq.ndim + 1} dimensions), "
                          f"got logprobs of shape {tuple(lp.shape)}")
-    count = m.sum() if m is not None else torch.tensor(lp.numel(), device=lp.device)
+    count = m.count() if m is not None else torch.tensor(lp.numel(), device=lp.device)
     return seq * (seq.numel() / count.to(seq.dtype))
 
 
-def _reweighted_sum(lp: Tensor, m: Tensor | None, w: Tensor, opt: LossOptions, info: dict) -> Tensor:
+def _reweighted_sum(lp: Tensor, m: _Mask | None, w: Tensor, opt: LossOptions, info: dict) -> Tensor:
     """Sequence terms with the importance ratio pi/pi_old (detached, clipped on request) as a coefficient."""
     old = check_sampling_logprobs(opt.sampling_logprobs, lp)
     level = opt.ratio_level
@@ -221,7 +290,7 @@ def _reweighted_sum(lp: Tensor, m: Tensor | None, w: Tensor, opt: LossOptions, i
                              f"got logprobs of shape {tuple(lp.shape)}; use ratio_level='sequence'")
         log_ratio = lp.detach() - old
         if m is not None:
-            log_ratio = torch.where(m, log_ratio, 0.0)  # padding: ratio 1, and masked out below
+            log_ratio = m.apply(log_ratio)  # padding: ratio 1, and masked out below
         unit_credit = w[..., None]
     else:
         log_ratio = _masked_sum(lp.detach(), m) - _masked_sum(old, m)  # (B, n)
@@ -240,45 +309,49 @@ def _reweighted_sum(lp: Tensor, m: Tensor | None, w: Tensor, opt: LossOptions, i
     info["ratio_ess"] = _ess(log_ratio, m if level == "token" else None)
     if level == "token":
         terms = coef * lp
-        return terms.sum(-1) if m is None else torch.where(m, terms, 0.0).sum(-1)
+        return terms.sum(-1) if m is None else m.apply(terms).sum(-1)
     return coef * _masked_sum(lp, m)
 
 
-def _ess(log_ratio: Tensor, m: Tensor | None) -> Tensor:
+def _ess(log_ratio: Tensor, m: _Mask | None) -> Tensor:
     """Effective sample size of the ratios as a share of their count, ``(sum r)^2 / (N sum r^2)`` (Kish 1965).
 
     Scale-free, so computed from ``r / max r``: ratios too large to square stay finite.
     """
-    top = (log_ratio if m is None else torch.where(m, log_ratio, -torch.inf)).max()
+    top = (log_ratio if m is None else torch.where(m.bool, log_ratio, -torch.inf)).max()
     rel = torch.exp(log_ratio - top)
     mean = _unit_mean(rel, m)
     return mean * mean / _unit_mean(rel * rel, m)
 
 
-def _unit_mean(x: Tensor, m: Tensor | None) -> Tensor:
+def _unit_mean(x: Tensor, m: _Mask | None) -> Tensor:
     """Mean over the ratio's units (masked tokens at token level)."""
     if m is None:
         return x.mean()
-    return torch.where(m, x, 0.0).sum() / m.sum()
+    return m.apply(x).sum() / m.bool.sum()
 
 
-def _anchor_kl(lp: Tensor, m: Tensor | None, opt: LossOptions) -> tuple[Tensor, Tensor]:
-    """k3 estimator exp(d) - d - 1, d = anchor - logp -> per-prompt mean over samples (B,), per-token mean value."""
+def _anchor_kl(lp: Tensor, m: _Mask | None, opt: LossOptions, *, fast: bool) -> tuple[Tensor, Tensor]:
+    """k3 estimator exp(d) - d - 1, d = anchor - logp -> per-prompt mean over samples (B,), per-token mean value.
+
+    Padding gives d = 0, so k3 = exp(0) - 0 - 1 = 0 there: ``d * weights`` with ``fast`` (non-finite
+    padding then shows in the result, see :func:`_masked_sum`), ``where`` otherwise.
+    """
     anchor = opt.anchor_logprobs
     if not is_tensor(anchor):
         raise TypeError(f"anchor_logprobs must be a torch.Tensor, got {type(anchor).__name__}")
     if tuple(anchor.shape) != tuple(lp.shape):
         raise ValueError(f"anchor_logprobs must have the same shape as logprobs {tuple(lp.shape)}, got {tuple(anchor.shape)}")
     if opt.check_tokens:
-        check_token_values("anchor_logprobs", anchor, "mask", None, m)
+        check_token_values("anchor_logprobs", anchor, "mask", None, None if m is None else m.mask)
     d = anchor.detach().to(lp.dtype) - lp
     if m is not None:
-        d = torch.where(m, d, 0.0)  # exp(0) - 0 - 1 = 0 on padding
+        d = d * m.weights if fast else m.apply(d)
     k3 = torch.expm1(d) - d
     if lp.ndim == 2:  # sequence level: one "token" per sample
         return k3.mean(-1), k3.detach().mean()
     per_seq = _per_token_scale(k3.sum(-1), lp, m, opt.token_reduction)  # (B, n)
-    count = m.sum() if m is not None else torch.tensor(k3.numel(), device=k3.device)
+    count = m.count() if m is not None else torch.tensor(k3.numel(), device=k3.device)
     return per_seq.mean(-1), k3.detach().sum() / count
 
 
@@ -476,16 +549,18 @@ def nll_loss(logprobs, **common):
 
 def _nll(name: str, lp: Tensor, mask_name: str, opt: LossOptions) -> tuple[Tensor, Tensor]:
     """Reduced loss and per-row ``-log pi(y_b)`` (B,) of given responses."""
-    m = check_mask(mask_name, opt.mask, name, lp, seq_ndim=1)
+    mask = check_mask(mask_name, opt.mask, name, lp, seq_ndim=1)
     if opt.check_tokens:
-        check_token_values(name, lp, mask_name, opt.mask, m)
-    if m is not None:
-        check_empty_rows(mask_name, m, None)
-    seq = lp if lp.ndim == 1 else (lp.sum(-1) if m is None else torch.where(m, lp, 0.0).sum(-1))
+        check_token_values(name, lp, mask_name, opt.mask, mask)
+    m = _Mask(mask, lp.dtype) if mask is not None else None
+    seq = _masked_sum(lp, m, fast=True, seq_ndim=1)
+    if m is not None and bool((~torch.isfinite(seq).all()) | empty_rows(mask, None).any()):  # the one read
+        check_empty_rows(mask_name, mask, None)
+        seq = _masked_sum(lp, m, seq_ndim=1)  # NaN or an infinity in the padding: recomputed with where
     if opt.token_reduction == "mean":
         if lp.ndim == 1:
             raise ValueError(f"token_reduction='mean' needs token log-probs (2 dimensions), "
                              f"got {name} of shape {tuple(lp.shape)}")
-        count = m.sum() if m is not None else torch.tensor(lp.numel(), device=lp.device)
+        count = m.count() if m is not None else torch.tensor(lp.numel(), device=lp.device)
         seq = seq * (seq.numel() / count.to(seq.dtype))
     return _reduce(-seq, opt.reduction), -seq

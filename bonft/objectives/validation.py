@@ -151,7 +151,10 @@ def check_logprobs(name: str, lp: Any, *, seq_ndim: int) -> Tensor:
 
 
 def check_mask(mask_name: str, mask: Any, lp_name: str, lp: Tensor, *, seq_ndim: int) -> Tensor | None:
-    """A bool mask on lp's device (token log-probs) or None (all tokens count); shape and type only."""
+    """The detached mask on lp's device, in its own dtype (token log-probs), or None (all tokens count).
+
+    Shape and type only; any non-zero entry marks a response token (:func:`token_weights`).
+    """
     if mask is None:
         return None
     if lp.ndim == seq_ndim:
@@ -163,32 +166,48 @@ def check_mask(mask_name: str, mask: Any, lp_name: str, lp: Tensor, *, seq_ndim:
         raise ValueError(f"{mask_name} must have the same shape as {lp_name} {tuple(lp.shape)}, got {tuple(mask.shape)}")
     if mask.dtype.is_complex:
         raise TypeError(f"{mask_name} must be a bool or 0/1 tensor, got dtype {mask.dtype}")
-    m = mask.detach().to(device=lp.device)
-    return m if m.dtype == torch.bool else m != 0
+    return mask.detach().to(device=lp.device)
+
+
+def token_weights(mask: Tensor, dtype: torch.dtype) -> Tensor:
+    """A checked mask -> 1 where it is non-zero, 0 elsewhere, in ``dtype``: one pass over the mask.
+
+    The losses multiply token log-probs by these weights (the cheapest masking torch offers: a
+    ``where`` costs about twice a multiply on a CPU) and fall back to ``where`` only when the
+    product is not finite (:func:`bonft.objectives.losses.policy_gradient_loss`).
+    """
+    if mask.dtype == torch.bool:
+        return mask.to(dtype)
+    return torch.ne(mask, 0, out=torch.empty(mask.shape, dtype=dtype, device=mask.device))
 
 
 def check_token_values(name: str, lp: Tensor, mask_name: str, mask: Any, m: Tensor | None) -> None:
-    """The O(B n T) checks of ``check_tokens=True``: a 0/1 mask, finite log-probs under it."""
+    """The O(B n T) checks of ``check_tokens=True``: a 0/1 mask, finite log-probs under it (``m``: the checked mask)."""
     if m is not None and mask is not None and mask.dtype != torch.bool:
         check_binary(mask_name, mask.detach())
     bad = ~torch.isfinite(lp.detach())
     if m is not None:
-        bad = bad & m
+        bad = bad & (m != 0)
     if bool(bad.any()):
         idx = tuple(int(i) for i in torch.nonzero(bad)[0].tolist())
         where = " where the mask is 1" if m is not None else ""
         raise ValueError(f"{name} must be finite{where}, got {float(lp.detach()[idx])} at index {idx}")
 
 
+def empty_rows(m: Tensor, weight: Tensor | None) -> Tensor:
+    """``(..., T)`` checked mask -> bool ``(...)``: rows without a token (and with non-zero ``weight``). Reads nothing."""
+    empty = ~m.any(-1)
+    return empty if weight is None else empty & (weight != 0)
+
+
 def check_empty_rows(mask_name: str, m: Tensor, weight: Tensor | None) -> None:
     """No sequence without tokens where it carries weight (all rows when ``weight`` is None).
 
-    Reads one bool back from the mask's device: free for a CPU mask, one sync on an accelerator.
-    A response with credit and no token would contribute 0 to the loss silently.
+    ``m``: a checked mask of any dtype (non-zero = token). Reads one bool back from the mask's
+    device: free for a CPU mask, one sync on an accelerator. A response with credit and no token
+    would contribute 0 to the loss silently.
     """
-    empty = ~m.any(-1)
-    if weight is not None:
-        empty = empty & (weight != 0)
+    empty = empty_rows(m, weight)
     if bool(empty.any()):
         idx = tuple(int(i) for i in torch.nonzero(empty)[0].tolist())
         what = "with non-zero credit" if weight is not None else ""
