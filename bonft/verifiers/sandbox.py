@@ -47,7 +47,6 @@ import os
 import re
 import resource
 import secrets
-import shutil
 import signal
 import subprocess
 import sys
@@ -64,7 +63,7 @@ import numpy as np
 from .._checks import check_int, check_real
 from ._oslayer import LAYER_NAMES, env, make_preexec, rlimits
 from ._outcome import STATUSES, await_start, classify, collect  # noqa: F401 - STATUSES is public here
-from ._procs import kill_by_cwd, kill_uid, pids_of, user_tasks
+from ._procs import kill_by_cwd, kill_uid, pids_of, remove_tree, user_tasks
 from .base import Verdicts
 from .scoring import check_batch
 
@@ -196,7 +195,7 @@ class CodeRunner:
         self._lock = threading.Lock()
         self._chosen_python: str | None = None
         self._boot_candidate, self._boot_judge = _boot("_sandbox_child.py"), _boot("_judge_child.py")
-        self._mountns = self._root
+        self._mountns = self._pidns = self._root
         try:
             self._libc = ctypes.CDLL(None, use_errno=True)
         except OSError:  # pragma: no cover - non-glibc platforms
@@ -230,6 +229,8 @@ class CodeRunner:
             slot = slots.get()
             try:
                 return self._run_one(job[0], job[1], slot, python)
+            except Exception as e:  # noqa: BLE001 - a runner error ends this candidate, not the batch
+                return RunResult("crashed", f"runner: {type(e).__name__}: {str(e)[:200]}", None, "", "", 0.0)
             finally:
                 slots.put(slot)
 
@@ -256,7 +257,8 @@ class CodeRunner:
         limits = rlimits(cpu_time=self.cpu_time, memory_mb=self.memory_mb, file_size_mb=self.file_size_mb, nproc=nproc)
         pre = make_preexec(limits=limits, uid=uid, libc=self._libc, netns=sandbox and self.isolate_network,
                            mountns=sandbox and self._mountns, workdir=cwd, tmpfs_mb=self.file_size_mb,
-                           report_fd=report_fd)
+                           report_fd=report_fd, pidns=sandbox and self._pidns, ipcns=sandbox and self._root,
+                           deny_userns=sandbox)
         return subprocess.Popen(
             [python, "-s", "-B", "-c", boot, *map(str, fds)], cwd=cwd, env=env(cwd), stdin=subprocess.DEVNULL,
             stdout=subprocess.PIPE, stderr=subprocess.PIPE, pass_fds=fds + ((report_fd,) if report_fd else ()),
@@ -271,9 +273,14 @@ class CodeRunner:
             try:
                 proc = self._spawn(python, self._boot_candidate, fds, workdir, uid, sandbox=True, report_fd=rep_w)
             except subprocess.SubprocessError:
-                if not self._mountns:
+                # preexec failed (MountSetupError): run without the PID namespace, then without the
+                # mount namespace too (once each, for this runner), and say so in os_layers
+                if self._pidns:
+                    self._pidns = False
+                elif self._mountns:
+                    self._mountns = False
+                else:
                     raise
-                self._mountns = False  # preexec failed (MountSetupError): run without it, and say so
                 continue
             finally:
                 os.close(rep_w)
@@ -332,9 +339,13 @@ class CodeRunner:
                 on_candidate_exit=lambda: self._kill(cand, cuid, workdir))
             if verdict and not over:
                 # both processes end by themselves after a verdict (and a candidate that died during
-                # the tests must report its own exit status): a short wait saves a kill sweep
-                grace = 0.5 if verdict.get("status") == "gone" else 0.1
-                end = min(time.monotonic() + grace, t0 + self.wall_time)
+                # the tests must report its own exit status): a short wait saves a kill sweep. A pass
+                # counts only once the candidate's process has ended normally, so wait up to the deadline.
+                now = time.monotonic()
+                if verdict.get("status") == "pass":
+                    end = max(t0 + self.wall_time, now + 0.5)
+                else:
+                    end = min(now + (0.5 if verdict.get("status") == "gone" else 0.1), t0 + self.wall_time)
                 for proc in (judge, cand):
                     try:
                         proc.wait(timeout=max(0.0, end - time.monotonic()))
@@ -345,14 +356,26 @@ class CodeRunner:
                 self._kill(proc, uid, cwd)
             rcs = [proc.wait() for proc, _, _ in procs]
             close(*list(open_fds))
-            shutil.rmtree(workdir, ignore_errors=True)
-            shutil.rmtree(judgedir, ignore_errors=True)
+            left = self._clean(workdir, judgedir)
         wall = time.monotonic() - t0
         stdout = (out["c_out"] + out["j_out"]).decode("utf-8", "replace")
         stderr = (out["c_err"] + out["j_err"]).decode("utf-8", "replace")
         status, reason = classify(verdict, rcs[1], rcs[0], timed_out=timed_out, over=over, wall_time=self.wall_time,
                                   cpu_time=self.cpu_time, file_size_mb=self.file_size_mb)
+        if left:  # what it left could not be removed: this candidate's verdict says so, the batch goes on
+            status, reason = "crashed", f"clean-up failed: {left}" + (f" (verdict was {status})" if status != "crashed" else "")
         return RunResult(status, reason, rcs[1], stdout, stderr, wall, layers)
+
+    @staticmethod
+    def _clean(*dirs: str) -> str | None:
+        """Remove the run's directories (:func:`remove_tree`: no depth limit); None, or what failed."""
+        failed = []
+        for d in dirs:
+            try:
+                remove_tree(d)
+            except Exception as e:  # noqa: BLE001 - one candidate's leftovers never end the batch
+                failed.append(f"{type(e).__name__}: {e}")
+        return "; ".join(failed)[:300] or None
 
     def _kill(self, proc: subprocess.Popen, uid: int | None, workdir: str) -> None:
         try:  # the group outlives its leader while members are left
