@@ -17,7 +17,8 @@ import pytest
 
 from bonft.testing import CodeTestsReport, probe_code_tests
 from bonft.verifiers import CodeRunner
-from bonft.verifiers.probes import asserted_cases, build_probes, read_code_tests, solution_names, write_code_tests
+from bonft.verifiers.probes import (ALL_PROBES, PROBES, asserted_cases, build_probes, read_code_tests, solution_names,
+                                   write_code_tests)
 
 WEAK = {
     # one input, == a literal: the constant 5 and a table {(2, 3): 5} both pass
@@ -75,9 +76,11 @@ def test_weak_tests_are_caught(runner):
     got = {r.prompt: set(r.passed) for r in report.results}
     assert {"constant_reply", "memorised_asserts"} <= got["write add(a, b)"]
     assert not {"silent_none", "raise_everywhere", "equal_to_anything", "echo_expected"} & got["write add(a, b)"]
-    assert {"silent_none", "constant_reply", "memorised_asserts", "equal_to_anything",
-            "echo_expected"} <= got["write sort_list(xs)"]
+    assert {"silent_none", "constant_reply", "memorised_asserts", "echo_expected"} <= got["write sort_list(xs)"]
     assert "raise_everywhere" not in got["write sort_list(xs)"]
+    # CodeRunner accepts only plain return values: the always-equal object is refused even where
+    # the result is never looked at, like an exit
+    assert not any("equal_to_anything" in g for g in got.values())
     assert "raise_everywhere" in got["write halve(x)"]  # the try/except swallowed the failure
     assert not any("early_exit" in g for g in got.values())  # the runner never passes an exit
     assert not report.ok
@@ -136,3 +139,37 @@ def test_check_tests_command_on_the_readme_example(tmp_path, capsys):
     assert main(["check-tests", strong, "--probes", "memorised_asserts,silent_none", "--wall-time", "3"]) == 0
     assert main(["check-tests", str(tmp_path / "none.jsonl")]) == 2
     assert "TESTS.jsonl must be an existing file" in capsys.readouterr().err
+
+
+# Tests that an object with lying operators passes when it runs in one process with them (worked
+# out by hand: x - y, abs(x), x < tol, 3 in x and x.startswith(p) are all the object itself or True),
+# and the same tests with a type check first, which it fails (type(r) is float is False for it).
+IN_PROCESS = {
+    "area, tolerance": "import math\nassert abs(area(1.0) - math.pi) < 1e-9",
+    "area, reversed": "import math\nassert abs(math.pi - area(1.0)) < 1e-9",
+    "divisors, membership": "assert 3 in divisors(6)",
+    "fmt, prefix": "assert fmt(3.14159).startswith('3.14')",
+    "area, typed": "import math\nr = area(1.0)\nassert type(r) is float and abs(r - math.pi) < 1e-9",
+}
+
+
+def test_lying_operators_probe_finds_tests_an_in_process_runner_would_pass():
+    assert "lying_operators" not in PROBES and "lying_operators" in ALL_PROBES  # opt-in
+    report = probe_code_tests(CodeRunner(IN_PROCESS, wall_time=3.0, memory_mb=256), probes=ALL_PROBES)
+    got = {r.prompt: r.passed for r in report.results}
+    assert got == {
+        "area, tolerance": ("lying_operators",),
+        "area, reversed": ("lying_operators",),
+        "divisors, membership": ("lying_operators",),
+        # the literal '3.14' is itself a str that starts with '3.14': one constant passes as well
+        "fmt, prefix": ("constant_reply", "lying_operators"),
+        "area, typed": (),
+    }, str(report)
+    assert report.results[0].statuses["lying_operators"] == ("pass",)
+    assert report.results[4].statuses["lying_operators"] == ("crashed",)  # an AssertionError in process
+    assert "lying_operators                 4/5" in str(report).splitlines()
+    # through CodeRunner itself the same object is refused as a return value
+    runner = CodeRunner({}, wall_time=3.0, memory_mb=256)
+    liar = build_probes(IN_PROCESS["area, tolerance"])["lying_operators"][0]
+    res = runner.run_code([(liar, IN_PROCESS["area, tolerance"])])[0]
+    assert (res.status, res.reason) == ("fail", "unsupported return type: _Liar")
