@@ -195,6 +195,8 @@ def test_fallback_path_without_uid_drop():
         ("import os\nwhile True:\n    os.fork()", "pass"),
     ])
     _check(ok, "pass")
+    # without root only the user-namespace filter (seccomp, unprivileged under no_new_privs) applies
+    assert set(ok.os_layers) <= {"no-userns"}, ok.os_layers
     _check(loop, "timeout")  # its child left the process group; found by its working directory and killed
     _check(bomb, "limit-exceeded", "process limit (max_processes=4)")
     assert _children() == before

@@ -335,3 +335,60 @@ def test_wire_round_trip_and_strictness_properties():
 
     round_trip()
     strict()
+
+
+# ------------------------------------------------------------------------------------------------
+# Second round. Every solution of ATTACKS_2 is wrong; CORRECT_2 solves the same tests, so that a
+# non-pass of an attack is the runner's doing, not a broken test.
+CORRECT_2 = """
+import math
+def area(r):
+    return math.pi * r * r
+def parity(n):
+    return n % 2
+def divisors(n):
+    return [d for d in range(1, n + 1) if n % d == 0]
+def fmt(x):
+    return "%.5f" % x
+def square(x):
+    return x * x
+"""
+
+
+def test_second_round_attacks_get_no_pass():
+    from sandbox_attacks import ATTACKS_2, LYING_TESTS, STOP_ITERATION
+
+    runner = CodeRunner({}, wall_time=3.0, memory_mb=256, workers=4)
+    names = list(ATTACKS_2)
+    controls = [*LYING_TESTS.values(), STOP_ITERATION[1]]
+    results = runner.run_code(list(ATTACKS_2.values()) + [(CORRECT_2, t) for t in controls])
+    r = dict(zip(names, results))
+    assert [c.status for c in results[len(names):]] == ["pass"] * len(controls), results[len(names):]
+    got = {k: (v.status, v.reason) for k, v in r.items()}
+    lie = ("fail", "unsupported return type: Z")
+    assert got == {
+        **{name: lie for name in LYING_TESTS}, "issue_example_three_lies": lie,
+        "lying_str_subclass": ("fail", "unsupported return type: S"),
+        "lying_int_subclass_sub": lie,
+        # the solution's StopIteration reaches the tests as SolutionError: the tests' zip does not end early
+        "stop_iteration_in_map": ("crashed", "SolutionError: StopIteration in the tests"),
+        "reply_ahead_then_segfault": ("crashed", "killed by SIGSEGV after its last reply"),
+    }
+
+
+def test_replies_ahead_of_a_crash_never_pass():
+    """The replies a correct ``add`` would give, written before any request, then a segfault after
+    0-90 ms: the tests' process may read them all and finish, but the candidate's process did not end
+    normally, so the verdict is never pass (signal(7): SIGSEGV is 11). The same replies followed by
+    os._exit(0) pass: the judge accepts them as answers, so the crash alone decides the others."""
+    from sandbox_attacks import reply_ahead
+
+    runner = CodeRunner({}, wall_time=3.0, memory_mb=256, workers=4)
+    reps = 40
+    results = runner.run_code([reply_ahead("segfault", (i % 10) * 10) for i in range(reps)]
+                              + [reply_ahead("exit0", 150)])
+    crashes, control = results[:reps], results[reps]
+    assert sum(c.passed for c in crashes) == 0
+    assert all(c.status == "crashed" and "killed by SIGSEGV" in c.reason and c.returncode == -11 for c in crashes), \
+        [(c.status, c.reason) for c in crashes if "SIGSEGV" not in (c.reason or "")]
+    assert control.status == "pass", (control.reason, control.stderr[-300:])

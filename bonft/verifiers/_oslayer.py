@@ -20,7 +20,8 @@ parent stays behind (as root, so the candidate cannot signal it) only to wait
 for it and end with the same status. When the candidate's process ends, the
 kernel kills and reaps every other process of its namespace: no zombie, orphan
 or daemon outlives the run, and none keeps counting against the uid's process
-limit. Killing the waiter kills the candidate (parent-death signal).
+limit. SIGTERM to the waiter ends the run: it kills its init and reaps it. (A SIGKILL to the waiter
+kills the candidate too, by its parent-death signal, but leaves its exit status to the host's init.)
 """
 from __future__ import annotations
 
@@ -102,13 +103,21 @@ def rlimits(*, cpu_time: float, memory_mb: int, file_size_mb: int, nproc: int) -
 
 
 def _wait_and_mirror(pid: int, libc) -> None:
-    """The waiter of the PID namespace: wait for its init (``pid``), then end the same way. Never returns."""
+    """The waiter of the PID namespace: wait for its init (``pid``), then end the same way. SIGTERM
+    makes it SIGKILL the init first (the runner's way to end a run: the init is reaped here, so it never
+    lingers as a zombie of the sandbox uid, whatever that uid is by then). Never returns."""
     try:
         null = os.open(os.devnull, os.O_RDWR)
         for fd in (0, 1, 2):
             os.dup2(null, fd)
         os.closerange(3, 1 << 16)  # the output pipes, the exec-error pipe: only the candidate holds them
-        _, status = os.waitpid(pid, 0)
+        signal.pthread_sigmask(signal.SIG_BLOCK, [signal.SIGTERM, signal.SIGCHLD])
+        while True:
+            done, status = os.waitpid(pid, os.WNOHANG)
+            if done == pid:
+                break
+            if signal.sigwait([signal.SIGTERM, signal.SIGCHLD]) == signal.SIGTERM:
+                os.kill(pid, signal.SIGKILL)
         if os.WIFSIGNALED(status):
             sig = os.WTERMSIG(status)
             libc.signal(sig, None)  # SIG_DFL

@@ -296,7 +296,7 @@ class CodeRunner:
         workdir = tempfile.mkdtemp(prefix="bonft-sandbox-")
         judgedir = tempfile.mkdtemp(prefix="bonft-tests-")
         t0 = time.monotonic()
-        procs: list[tuple[subprocess.Popen, int | None, str]] = []
+        procs: list[tuple[subprocess.Popen, int | None, str, bool]] = []  # (process, uid, directory, has a waiter)
         pipes = [os.pipe() for _ in range(5)]  # judge cfg, verdict, requests, replies, candidate cfg
         (jcfg_r, jcfg_w), (ver_r, ver_w), (req_r, req_w), (rep_r, rep_w), (ccfg_r, ccfg_w) = pipes
         open_fds = {fd for p in pipes for fd in p}
@@ -323,20 +323,20 @@ class CodeRunner:
                 os.chown(judgedir, juid, juid)
             try:
                 judge = self._spawn(python, self._boot_judge, (jcfg_r, ver_w, req_w, rep_r), judgedir, juid, sandbox=False)
-                procs.append((judge, juid, judgedir))
+                procs.append((judge, juid, judgedir, False))
                 close(jcfg_r, ver_w, req_w, rep_r)
                 feed(jcfg_w, {"tests": tests, "frame_cap": _FRAME_CAP, "same_uid": cuid is None})
                 if cuid is None and not await_start(ver_r, t0 + self.wall_time):
                     raise OSError("the tests' process did not start")
                 cand, layers = self._start_candidate(python, workdir, cuid, (ccfg_r, req_r, rep_w))
-                procs.append((cand, cuid, workdir))
+                procs.append((cand, cuid, workdir, "private-pids" in layers))
                 close(ccfg_r, req_r, rep_w)
             except (OSError, subprocess.SubprocessError) as e:
                 return RunResult("crashed", f"runner: could not start {python}: {e}", None, "", "", 0.0, layers)
             feed(ccfg_w, {"solution": solution, "max_processes": self.max_processes, "frame_cap": _FRAME_CAP})
             out, verdict, timed_out, over = collect(
                 judge, cand, ver_r, deadline=t0 + self.wall_time, cap=self.max_output_bytes, frame_cap=_FRAME_CAP,
-                on_candidate_exit=lambda: self._kill(cand, cuid, workdir))
+                on_candidate_exit=lambda: self._kill(*procs[1]))
             if verdict and not over:
                 # both processes end by themselves after a verdict (and a candidate that died during
                 # the tests must report its own exit status): a short wait saves a kill sweep. A pass
@@ -352,9 +352,9 @@ class CodeRunner:
                     except subprocess.TimeoutExpired:
                         pass
         finally:
-            for proc, uid, cwd in reversed(procs):
-                self._kill(proc, uid, cwd)
-            rcs = [proc.wait() for proc, _, _ in procs]
+            for entry in reversed(procs):
+                self._kill(*entry)
+            rcs = [entry[0].wait() for entry in procs]
             close(*list(open_fds))
             left = self._clean(workdir, judgedir)
         wall = time.monotonic() - t0
@@ -377,7 +377,13 @@ class CodeRunner:
                 failed.append(f"{type(e).__name__}: {e}")
         return "; ".join(failed)[:300] or None
 
-    def _kill(self, proc: subprocess.Popen, uid: int | None, workdir: str) -> None:
+    def _kill(self, proc: subprocess.Popen, uid: int | None, workdir: str, waiter: bool = False) -> None:
+        if waiter:  # a PID namespace: its waiter kills and reaps the namespace's init, then ends itself
+            try:
+                proc.send_signal(signal.SIGTERM)
+                proc.wait(timeout=2.0)
+            except (ProcessLookupError, subprocess.TimeoutExpired):
+                pass
         try:  # the group outlives its leader while members are left
             os.killpg(proc.pid, signal.SIGKILL)
         except (ProcessLookupError, PermissionError):
