@@ -18,10 +18,10 @@ from .verifiers.testkit import (  # noqa: F401
     roc_auc,
     sample_pools,
 )
-from .verifiers.probes import PROBES, CodeTestsReport, probe_code_tests  # noqa: F401
+from .verifiers.probes import ALL_PROBES, PROBES, CodeTestsReport, probe_code_tests  # noqa: F401
 
 __all__ = ["check_objective", "ObjectiveReport", "ToyPolicy", "check_verifier", "read_examples", "VerifierReport", "roc_auc", "prompts", "responses", "sample_pools",
-           "probe_code_tests", "CodeTestsReport", "PROBES"]
+           "probe_code_tests", "CodeTestsReport", "PROBES", "ALL_PROBES"]
 
 
 def __getattr__(name: str):

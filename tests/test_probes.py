@@ -154,7 +154,9 @@ IN_PROCESS = {
 
 
 def test_lying_operators_probe_finds_tests_an_in_process_runner_would_pass():
-    assert "lying_operators" not in PROBES and "lying_operators" in ALL_PROBES  # opt-in
+    from bonft.testing import ALL_PROBES as exported
+
+    assert "lying_operators" not in PROBES and "lying_operators" in ALL_PROBES and exported == ALL_PROBES  # opt-in
     report = probe_code_tests(CodeRunner(IN_PROCESS, wall_time=3.0, memory_mb=256), probes=ALL_PROBES)
     got = {r.prompt: r.passed for r in report.results}
     assert got == {

@@ -10,17 +10,24 @@ The verdict. The candidate's code runs in its own sandboxed process only as a
 callee. The tests run in a second, trusted process (under a uid of its own
 as root; otherwise started first and made non-dumpable) that resolves the solution's names and
 calls its functions over a pair of pipes (:mod:`bonft.verifiers._wire`:
-length-prefixed JSON, capped frames, a strict decoder, no pickle). Only plain
-values come back, rebuilt as the trusted process's own ``int``, ``list``...;
-other objects stay behind as references whose calls are forwarded but whose
-``==`` and truth value are not. The tests' ``assert`` statements are
+length-prefixed JSON, capped frames, a strict decoder, no pickle). A call's
+result is converted to plain data in the candidate's process (exact built-in
+types; anything else is ``fail``, ``unsupported return type: Z``) and rebuilt
+as the trusted process's own ``int``, ``list``...; the solution's functions
+and classes are references the tests can only call. No method or operator of
+a candidate's object runs for the tests, and the solution's exceptions arrive
+as one type, ``SolutionError``. The tests' ``assert`` statements are
 evaluated there, and the verdict travels on a pipe only that process and this
 runner hold. The candidate never sees the tests' text. An exit, crash or
-protocol error of the candidate during the tests is sticky: never ``pass``.
+protocol error of the candidate during the tests is sticky: never ``pass``;
+and a ``pass`` also needs the candidate's process to end with status 0 after
+its last reply.
 
 The sandbox, from the outside in, for each candidate's process:
 
-1. a fresh temporary working directory, removed afterwards;
+1. a fresh temporary working directory, removed afterwards without depth
+   limits (:func:`~bonft.verifiers._procs.remove_tree`); a removal that fails
+   makes that candidate ``crashed`` (``clean-up failed: ...``), not the batch;
 2. a scrubbed environment built from scratch (no inherited variables, so no
    API keys), stdin closed, stdout/stderr captured and capped;
 3. its own session and process group, killed (SIGKILL) at the wall-clock
@@ -29,13 +36,16 @@ The sandbox, from the outside in, for each candidate's process:
 4. resource limits set before exec (``resource.setrlimit``): CPU seconds,
    address space, file size, process count, no core dumps;
 5. when running as root: a private mount namespace in which /tmp, /var/tmp,
-   /dev/shm and /run/lock are fresh tmpfs (gone with the run), a fresh network
+   /dev/shm and /run/lock are fresh tmpfs (gone with the run), a fresh PID
+   namespace with its own /proc (every process the candidate left dies with
+   it), a fresh IPC namespace (System V objects die with it), a fresh network
    namespace with no interfaces, then a drop to an unprivileged uid of its own
    (a per-worker uid in a high range) with ``no_new_privs``. RLIMIT_NPROC is
    not enforced for root, so without this drop the process limit would not
    bite. Not as root none of these exist (``RunResult.os_layers`` says which
    took effect) and the process limit counts all of your user's processes;
-6. inside the interpreter, an audit hook (PEP 578) refusing writes outside
+6. root or not, a seccomp filter refusing user namespaces (``no-userns``);
+7. inside the interpreter, an audit hook (PEP 578) refusing writes outside
    the working directory, network use, signals to other processes and
    process creation beyond ``max_processes``.
 """
@@ -83,9 +93,11 @@ class RunResult:
     stdout, stderr: captured output, each cut at ``max_output_bytes`` (the
             candidate's, then the tests' process's: a failing assertion's traceback).
     os_layers: the OS layers that took effect for this run, from ``own-uid``,
-            ``no-network``, ``private-tmp`` (all three as root on Linux with
-            namespaces; none otherwise -- then the candidate can write to the
-            shared /tmp and use the network, and only the audit hook objects).
+            ``no-network``, ``private-tmp``, ``private-pids``, ``private-ipc``
+            (all as root on Linux with namespaces; none otherwise -- then the
+            candidate can write to the shared /tmp, use the network and leave
+            System V objects, and only the audit hook objects) and
+            ``no-userns`` (the seccomp filter; root or not, x86-64 and ARM64).
     """
 
     status: str
@@ -137,9 +149,13 @@ class CodeRunner:
                       in a separate trusted process; the solution's names
                       (functions, classes, constants) resolve after builtins and
                       the tests' own names, and calls into them are forwarded to
-                      the candidate's process, which returns plain values. The
-                      tests pass when they run to the end; an exit (even status
-                      0), an exception or a limit hit before that is not a pass.
+                      the candidate's process, which must return plain data
+                      (else ``unsupported return type: Z``); its exceptions
+                      arrive as ``SolutionError`` (``e.type_name``,
+                      ``e.message``). The tests pass when they run to the end
+                      and the candidate's process then ends normally; an exit
+                      (even status 0), an exception or a limit hit before that
+                      is not a pass.
     wall_time:        seconds of wall clock per candidate (then SIGKILL -> ``timeout``).
     cpu_time:         CPU seconds (RLIMIT_CPU; SIGXCPU -> ``limit-exceeded``);
                       default ``wall_time + 1`` so that a busy loop reads as a timeout.
