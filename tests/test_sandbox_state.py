@@ -218,3 +218,16 @@ def test_a_hostile_batch_leaves_nothing_and_every_correct_candidate_passes(monke
     assert _sysv_keys() == ipc_before
     assert _processes_of(_runner_uids(runner)) == []
     assert not [p for p in glob.glob("/tmp/bonft_i13_escape*")]
+
+
+def test_signals_keep_their_meaning_in_the_pid_namespace():
+    """The candidate's process is not the namespace's init, which (pid_namespaces(7)) would ignore
+    every signal it has no handler for, SIGXCPU and its own kill(2) included. setrlimit(2): at the
+    RLIMIT_CPU soft limit the process gets SIGXCPU (24); signal(7): SIGTERM is 15, SIGABRT 6."""
+    runner = CodeRunner({}, wall_time=4.0, cpu_time=1, memory_mb=256, workers=3)
+    busy, term, abort = runner.run_code([("while True:\n    pass", "pass"),
+                                         ("import os, signal\nos.kill(os.getpid(), signal.SIGTERM)", "pass"),
+                                         ("import os\nos.abort()", "pass")])
+    assert (busy.status, busy.reason, busy.returncode) == ("limit-exceeded", "cpu time limit 1 s (SIGXCPU)", -24)
+    assert (term.status, term.reason, term.returncode) == ("crashed", "killed by SIGTERM", -15)
+    assert (abort.status, abort.reason, abort.returncode) == ("crashed", "killed by SIGABRT", -6)

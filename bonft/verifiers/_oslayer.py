@@ -14,14 +14,18 @@ flags a filter cannot read, answers ENOSYS and the C library falls back to
 ``m`` private tmp dirs, ``p`` PID namespace, ``i`` IPC namespace, ``n``
 network namespace, ``u`` own uid, ``s`` the user-namespace filter.
 
-The PID namespace: the process Popen started unshares CLONE_NEWPID and forks;
-the child, PID 1 of the new namespace, goes on to exec the candidate, and the
-parent stays behind (as root, so the candidate cannot signal it) only to wait
-for it and end with the same status. When the candidate's process ends, the
-kernel kills and reaps every other process of its namespace: no zombie, orphan
-or daemon outlives the run, and none keeps counting against the uid's process
-limit. SIGTERM to the waiter ends the run: it kills its init and reaps it. (A SIGKILL to the waiter
-kills the candidate too, by its parent-death signal, but leaves its exit status to the host's init.)
+The PID namespace: the process Popen started (the waiter) unshares
+CLONE_NEWPID and forks the namespace's init, which forks the candidate's
+process (PID 2: not an init, so its signals, SIGXCPU and its own kill(2)
+included, act as usual) and then only reaps. Waiter and init stay root, so
+the candidate cannot signal them. When the candidate's process ends, the init
+passes its wait status to the waiter and exits, and the kernel kills and
+reaps every other process of the namespace: no zombie, orphan or daemon
+outlives the run or keeps counting against the uid's process limit; the
+waiter ends the way the candidate's process did. SIGTERM to the waiter ends a
+run: it kills the init (and so the namespace) and reaps it. A SIGKILL to the
+waiter kills the rest too, by parent-death signals, but leaves the init's
+exit status to the host's init.
 """
 from __future__ import annotations
 
@@ -102,22 +106,53 @@ def rlimits(*, cpu_time: float, memory_mb: int, file_size_mb: int, nproc: int) -
     ]
 
 
-def _wait_and_mirror(pid: int, libc) -> None:
-    """The waiter of the PID namespace: wait for its init (``pid``), then end the same way. SIGTERM
-    makes it SIGKILL the init first (the runner's way to end a run: the init is reaped here, so it never
-    lingers as a zombie of the sandbox uid, whatever that uid is by then). Never returns."""
+def _only_fds(*keep: int) -> None:
+    """Point 0, 1, 2 at /dev/null and close every other descriptor but ``keep``: the output pipes and
+    the exec-error pipe must be held by the candidate's process alone, or their readers never see EOF."""
+    null = os.open(os.devnull, os.O_RDWR)
+    for fd in (0, 1, 2):
+        os.dup2(null, fd)
+    low = 3
+    for fd in sorted(keep):
+        os.closerange(low, fd)
+        low = fd + 1
+    os.closerange(low, 1 << 16)
+
+
+def _ns_init(child: int, status_w: int) -> None:
+    """PID 1 of the namespace: reap whatever ends; when ``child`` (the candidate's process) ends, send its
+    wait status on ``status_w`` and exit, and the kernel kills the namespace's other processes. Never returns."""
     try:
-        null = os.open(os.devnull, os.O_RDWR)
-        for fd in (0, 1, 2):
-            os.dup2(null, fd)
-        os.closerange(3, 1 << 16)  # the output pipes, the exec-error pipe: only the candidate holds them
+        _only_fds(status_w)
+        while True:
+            try:
+                pid, status = os.wait()
+            except ChildProcessError:
+                os._exit(0)
+            if pid == child:
+                os.write(status_w, struct.pack("=i", status))
+                os._exit(0)
+    finally:
+        os._exit(255)
+
+
+def _wait_and_mirror(init: int, status_r: int, libc) -> None:
+    """The waiter outside the namespace: wait for its init, then end the way the candidate's process
+    ended (its status comes on ``status_r``; the init's own if none came). SIGTERM makes it SIGKILL the
+    init first: the runner's way to end a run, which takes every process of the namespace with it and
+    leaves no zombie of the sandbox uid behind. Never returns."""
+    try:
+        _only_fds(status_r)
         signal.pthread_sigmask(signal.SIG_BLOCK, [signal.SIGTERM, signal.SIGCHLD])
         while True:
-            done, status = os.waitpid(pid, os.WNOHANG)
-            if done == pid:
+            done, status = os.waitpid(init, os.WNOHANG)
+            if done == init:
                 break
             if signal.sigwait([signal.SIGTERM, signal.SIGCHLD]) == signal.SIGTERM:
-                os.kill(pid, signal.SIGKILL)
+                os.kill(init, signal.SIGKILL)
+        data = os.read(status_r, 4)
+        if len(data) == 4:
+            status = struct.unpack("=i", data)[0]
         if os.WIFSIGNALED(status):
             sig = os.WTERMSIG(status)
             libc.signal(sig, None)  # SIG_DFL
@@ -149,10 +184,17 @@ def make_preexec(*, limits, uid: int | None, libc, netns: bool, mountns: bool, w
         if libc is not None:
             libc.prctl(PR_SET_PDEATHSIG, signal.SIGKILL, 0, 0, 0)
             if pidns and dirs and libc.unshare(CLONE_NEWPID) == 0:
-                pid = os.fork()
-                if pid != 0:
-                    _wait_and_mirror(pid, libc)
+                status_r, status_w = os.pipe()
+                init = os.fork()
+                if init != 0:
+                    _wait_and_mirror(init, status_r, libc)
                 libc.prctl(PR_SET_PDEATHSIG, signal.SIGKILL, 0, 0, 0)  # not inherited across fork
+                child = os.fork()
+                if child != 0:
+                    _ns_init(child, status_w)
+                os.close(status_r)
+                os.close(status_w)
+                libc.prctl(PR_SET_PDEATHSIG, signal.SIGKILL, 0, 0, 0)
                 done += b"p"
         for res, val in limits:
             resource.setrlimit(res, val)
