@@ -252,6 +252,12 @@ def test_wire_rebuilds_plain_values_and_refuses_anything_else():
 
     scalars = wire_decode(wire_encode([np.int64(5), np.float32(0.5), np.bool_(True)], no_ref), None)
     assert scalars == [5, 0.5, True] and [type(x) for x in scalars] == [int, float, bool]
+
+    class Half(np.float64):  # numpy's own scalar types only: a subclass's item() could be anything
+        pass
+
+    with pytest.raises(TypeError, match="Half"):
+        wire_encode(Half(0.5), no_ref)
     assert wire_decode(["h", 7, "Thing"], lambda ref, t: (ref, t)) == (7, "Thing")
     with pytest.raises(TypeError, match="function"):
         wire_encode([len, lambda: 0], no_ref)

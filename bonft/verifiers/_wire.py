@@ -150,8 +150,8 @@ def wire_encode(value, ref_of, depth=0, budget=None):
         return ["d", [[wire_encode(k, ref_of, d, budget), wire_encode(v, ref_of, d, budget)]
                       for k, v in dict.items(value)]]
     fractions, decimal, numpy = sys.modules.get("fractions"), sys.modules.get("decimal"), sys.modules.get("numpy")
-    if numpy is not None and isinstance(value, numpy.generic) and t.__module__ == "numpy":
-        item = value.item()  # numpy's own scalar: its Python value, itself checked as plain data
+    if numpy is not None and t in set(getattr(numpy, "sctypeDict", {}).values()):
+        item = value.item()  # numpy's own scalar type: its Python value, itself checked as plain data
         if type(item) in (bool, int, float, complex, bytes, str):
             return wire_encode(item, ref_of, d, budget)
     if fractions is not None and t is fractions.Fraction:
