@@ -157,14 +157,15 @@ def test_lying_operators_probe_finds_tests_an_in_process_runner_would_pass():
     from bonft.testing import ALL_PROBES as exported
 
     assert "lying_operators" not in PROBES and "lying_operators" in ALL_PROBES and exported == ALL_PROBES  # opt-in
-    report = probe_code_tests(CodeRunner(IN_PROCESS, wall_time=3.0, memory_mb=256), probes=ALL_PROBES)
+    probes = ("memorised_asserts", "silent_none", "lying_operators")
+    report = probe_code_tests(CodeRunner(IN_PROCESS, wall_time=3.0, memory_mb=256), probes=probes)
     got = {r.prompt: r.passed for r in report.results}
+    # no assert compares a call with ==, so the lookup table answers None everywhere, as does silent_none
     assert got == {
         "area, tolerance": ("lying_operators",),
         "area, reversed": ("lying_operators",),
         "divisors, membership": ("lying_operators",),
-        # the literal '3.14' is itself a str that starts with '3.14': one constant passes as well
-        "fmt, prefix": ("constant_reply", "lying_operators"),
+        "fmt, prefix": ("lying_operators",),
         "area, typed": (),
     }, str(report)
     assert report.results[0].statuses["lying_operators"] == ("pass",)
