@@ -234,3 +234,48 @@ def test_signals_keep_their_meaning_in_the_pid_namespace():
     assert (busy.status, busy.reason, busy.returncode) == ("limit-exceeded", "cpu time limit 1 s (SIGXCPU)", -24)
     assert (term.status, term.reason, term.returncode) == ("crashed", "killed by SIGTERM", -15)
     assert (abort.status, abort.reason, abort.returncode) == ("crashed", "killed by SIGABRT", -6)
+
+
+@pytest.mark.skipif(not ROOT, reason="runs the removal as another, unprivileged uid, which needs root to set up")
+def test_remove_tree_without_root_gives_back_rights():
+    """Without CAP_DAC_OVERRIDE a directory of mode 0 cannot be listed or entered, and one without
+    write permission cannot lose entries (path_resolution(7), unlink(2)); the owner may chmod them."""
+    import shutil
+
+    python = shutil.which("python3", path="/usr/bin:/usr/local/bin:/bin")
+    if python is None:
+        pytest.skip("no system python3 the unprivileged uid can run")
+    src = os.path.join(os.path.dirname(os.path.abspath(remove_tree.__code__.co_filename)), "_procs.py")
+    import tempfile
+
+    base = tempfile.mkdtemp(prefix="bonft-rmtree-")  # pytest's tmp_path is not reachable by another uid
+    os.chmod(base, 0o777)
+    script = f"""
+import importlib.util, os
+spec = importlib.util.spec_from_file_location("procs", {src!r})
+procs = importlib.util.module_from_spec(spec)
+spec.loader.exec_module(procs)
+top = os.path.join({base!r}, "work")
+os.makedirs(top + "/a/b/c")
+for d in ("a", "a/b", "a/b/c"):
+    with open(os.path.join(top, d, "f"), "w") as f:
+        f.write("x")
+os.chmod(top + "/a/b/c/f", 0)
+os.chmod(top + "/a/b/c", 0)
+os.chmod(top + "/a/b", 0o500)
+os.chmod(top + "/a", 0)
+try:
+    os.listdir(top + "/a")
+    raise SystemExit("mode 0 did not hold")
+except PermissionError:
+    pass
+procs.remove_tree(top)
+print(os.path.lexists(top))
+"""
+    uid = 65534  # nobody
+    try:
+        out = subprocess.run([python, "-c", script], capture_output=True, text=True, timeout=60,
+                             preexec_fn=lambda: (os.setgid(uid), os.setuid(uid)), env={"PATH": "/usr/bin:/bin"})
+    finally:
+        remove_tree(base)
+    assert (out.returncode, out.stdout.strip()) == (0, "False"), out.stderr[-500:]

@@ -99,6 +99,11 @@ def _unlock(dir_fd: int, name: str | None) -> None:
     _clear_flags(dir_fd)
     if name is None:
         return
+    try:  # a directory without read or search rights: give them back through its parent
+        if stat.S_ISDIR(os.stat(name, dir_fd=dir_fd, follow_symlinks=False).st_mode):
+            os.chmod(name, 0o700, dir_fd=dir_fd)
+    except OSError:
+        pass
     try:
         fd = os.open(name, os.O_RDONLY | os.O_NOFOLLOW | os.O_NONBLOCK | os.O_CLOEXEC, dir_fd=dir_fd)
     except OSError:
