@@ -137,6 +137,8 @@ def test_check_tests_command_on_the_readme_example(tmp_path, capsys):
     assert json.loads(out_json.read_text())["prompts"][1]["passed"] == []
     strong = write_code_tests(str(tmp_path / "strong.jsonl"), {"write sort_list(xs)": STRONG["write sort_list(xs)"]})
     assert main(["check-tests", strong, "--probes", "memorised_asserts,silent_none", "--wall-time", "3"]) == 0
+    # the in-process probe runs when named: the sort_list tests check type(out) is list first, so it fails
+    assert main(["check-tests", strong, "--probes", "lying_operators", "--wall-time", "3"]) == 0
     assert main(["check-tests", str(tmp_path / "none.jsonl")]) == 2
     assert "TESTS.jsonl must be an existing file" in capsys.readouterr().err
 
