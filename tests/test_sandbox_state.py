@@ -31,7 +31,7 @@ def _kernel_allows(flag: int) -> bool:
     return subprocess.run([sys.executable, "-c", code]).returncode == 0
 
 
-NAMESPACES = ROOT and _kernel_allows(0x00020000 | 0x08000000)  # CLONE_NEWNS | CLONE_NEWIPC
+NAMESPACES = ROOT and _kernel_allows(0x00020000 | 0x08000000 | 0x20000000)  # CLONE_NEWNS | CLONE_NEWIPC | CLONE_NEWPID
 
 
 def _sysv_keys() -> dict[str, set[int]]:
