@@ -24,8 +24,11 @@ def _children() -> int:
     """Number of live child processes of this test process (all threads)."""
     n = 0
     for tid in os.listdir("/proc/self/task"):
-        with open(f"/proc/self/task/{tid}/children") as f:
-            n += len(f.read().split())
+        try:
+            with open(f"/proc/self/task/{tid}/children") as f:
+                n += len(f.read().split())
+        except FileNotFoundError:
+            continue  # a thread that ended after the listing: it has no children left
     return n
 
 
