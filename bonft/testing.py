@@ -11,7 +11,7 @@ For objectives: :func:`check_objective` (:mod:`bonft.objcheck`), its :class:`Obj
 For a hand-written loop: :func:`check_on_policy` (:mod:`bonft.generation.on_policy`) and its
 :class:`OnPolicyReport`: do the log-probs your loss sees describe the policy that sampled?
 """
-from bonft.verifiers.probes import PROBES, CodeTestsReport, probe_code_tests  # noqa: F401
+from bonft.verifiers.probes import ALL_PROBES, PROBES, CodeTestsReport, probe_code_tests  # noqa: F401
 from bonft.verifiers.testkit import (  # noqa: F401
     VerifierReport,
     check_verifier,
@@ -24,7 +24,7 @@ from bonft.verifiers.testkit import (  # noqa: F401
 
 __all__ = ["check_objective", "ObjectiveReport", "ToyPolicy", "check_verifier", "read_examples", "VerifierReport",
            "roc_auc", "prompts", "responses", "sample_pools", "probe_code_tests", "CodeTestsReport", "PROBES",
-           "check_on_policy", "OnPolicyReport"]
+           "ALL_PROBES", "check_on_policy", "OnPolicyReport"]
 
 
 def __getattr__(name: str):

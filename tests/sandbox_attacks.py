@@ -128,3 +128,198 @@ ATTACKS = {
     "tested_function_calls_os_exit_0": ("import os\ndef add(a, b):\n    os._exit(0)", TESTS),
     "audit_hook_off_writes_tmp_shm": (AUDIT_OFF, TESTS),
 }
+
+# ------------------------------------------------------------------------------------------------
+# Second round: the candidate's methods deciding an assert, a StopIteration ending the tests' own
+# iteration, replies sent ahead of a crash, state that outlives a run, clean-up that a candidate
+# breaks. Every solution below is wrong (or, for the state and clean-up ones, correct but hostile:
+# judged by what it leaves behind and by the verdicts of the correct candidates around it).
+LYING_OPS = """
+class Z:
+    def __sub__(self, other):
+        return 0.0
+    __rsub__ = __sub__
+    def __xor__(self, other):
+        return 0
+    __rxor__ = __xor__
+    def __contains__(self, item):
+        return True
+    def startswith(self, prefix):
+        return True
+    def endswith(self, suffix):
+        return True
+def area(r):
+    return Z()
+def parity(n):
+    return Z()
+def divisors(n):
+    return Z()
+def fmt(x):
+    return Z()
+"""
+LYING_TESTS = {
+    "lying_sub": "import math\nassert abs(area(1.0) - math.pi) < 1e-9",
+    "lying_rsub": "import math\nassert abs(math.pi - area(1.0)) < 1e-9",
+    "lying_xor": "assert parity(7) ^ 1 == 0",
+    "lying_contains": "assert 3 in divisors(6)\nassert 2 in divisors(6)",
+    "lying_startswith": "assert fmt(3.14159).startswith('3.14')",
+    "lying_endswith": "assert fmt(3.14159).endswith('159')",
+}
+# the issue's own example: all three lies in one solution
+ISSUE_EXAMPLE = (
+    "class Z:\n    def __sub__(self, o): return 0.0\n    def __contains__(self, x): return True\n"
+    "    def startswith(self, p): return True\ndef area(r): return Z()\n",
+    "import math\nassert abs(area(1.0) - math.pi) < 1e-9\nassert 3 in area(2)\nassert area(3).startswith('28.27')\n")
+# a str and an int subclass with lying methods: rejected as return values, not rebuilt
+LYING_STR = "class S(str):\n    def startswith(self, p):\n        return True\ndef fmt(x):\n    return S('nope')\n"
+LYING_INT_SUB = "class Z(int):\n    def __sub__(self, o):\n        return 0\n    __rsub__ = __sub__\ndef area(r):\n    return Z(7)\n"
+# StopIteration from the solution inside a tests-side map(): the zip ends at once, all([]) is True
+STOP_ITERATION = ("def square(x):\n    raise StopIteration\n",
+                  "assert all(r == e for r, e in zip(map(square, [1, 2, 3]), [1, 4, 9]))")
+
+
+def reply_ahead(end: str, delay_ms: int = 0) -> tuple[str, str]:
+    """A solution that writes the replies to ``TESTS`` ahead of the requests (the answers a correct
+    ``add`` would give), then ends with ``end``: ``"segfault"`` (SIGSEGV) or ``"exit0"`` (os._exit(0))."""
+    tail = "ctypes.string_at(0)" if end == "segfault" else "os._exit(0)"
+    src = f"""
+import ctypes, json, os, sys, time
+fd = int(sys.argv[3])
+frames = [{{"ready": True}}]
+for i, v in ((1, ["h", 1, "function"]), (2, ["i", "0x5"]), (3, ["h", 1, "function"]), (4, ["i", "0x0"])):
+    frames.append({{"id": i, "value": v, "back": [], "kwback": []}})
+frames.append({{"id": 5, "refused": None, "limit": None}})
+for m in frames:
+    data = json.dumps(m).encode()
+    os.write(fd, b"%d\\n" % len(data) + data)
+time.sleep({delay_ms / 1000!r})
+{tail}
+"""
+    return src, TESTS
+
+
+# System V IPC objects (shmget(2), msgget(2), semget(2) through ctypes): 3 x 100 MB shared memory
+# segments of mode 0666, a message queue holding a message, a semaphore set
+IPC_KEY = 0x0B0F7A29
+SYSV_IPC = f"""
+import ctypes
+libc = ctypes.CDLL(None, use_errno=True)
+IPC_CREAT = 0o1000
+made = []
+for i in range(3):
+    made.append(libc.shmget({IPC_KEY} + i, 100 << 20, IPC_CREAT | 0o666))
+q = libc.msgget({IPC_KEY}, IPC_CREAT | 0o666)
+class Msg(ctypes.Structure):
+    _fields_ = [("mtype", ctypes.c_long), ("mtext", ctypes.c_char * 16)]
+m = Msg(1, b"left behind")
+libc.msgsnd(q, ctypes.byref(m), 16, 0)
+made += [q, libc.semget({IPC_KEY}, 1, IPC_CREAT | 0o666)]
+def add(a, b):
+    return a + b
+"""
+# a later candidate looks for the queue left by SYSV_IPC and reads its message
+SYSV_READ = f"""
+import ctypes
+libc = ctypes.CDLL(None, use_errno=True)
+class Msg(ctypes.Structure):
+    _fields_ = [("mtype", ctypes.c_long), ("mtext", ctypes.c_char * 16)]
+def peek():
+    q = libc.msgget({IPC_KEY}, 0)
+    if q < 0:
+        return None
+    m = Msg()
+    n = libc.msgrcv(q, ctypes.byref(m), 16, 0, 0o4000)  # IPC_NOWAIT
+    return m.mtext.value.decode() if n >= 0 else "queue found, no message"
+"""
+# user namespaces (user_namespaces(7)): unshare(CLONE_NEWUSER), and the same flag through clone(2)
+USERNS = """
+import ctypes, os
+libc = ctypes.CDLL(None, use_errno=True)
+CLONE_NEWUSER, SIGCHLD = 0x10000000, 17
+def userns():
+    got = []
+    nr = {"x86_64": 56, "aarch64": 220}.get(os.uname().machine)
+    if nr is not None:
+        pid = libc.syscall(nr, CLONE_NEWUSER | SIGCHLD, 0, 0, 0, 0)
+        if pid == 0:
+            os._exit(0)
+        if pid > 0:
+            os.waitpid(pid, 0)
+            got.append("clone")
+    if libc.unshare(CLONE_NEWUSER) == 0:
+        got.append("unshare")
+    return got
+"""
+# five children that exit at once and are never waited for (zombies of the sandbox uid), and one
+# that leaves the process group and sleeps on
+FORKER = """
+import os, time
+for _ in range(5):
+    if os.fork() == 0:
+        os._exit(0)
+if os.fork() == 0:
+    os.setsid()
+    time.sleep(60)
+    os._exit(0)
+def add(a, b):
+    return a + b
+"""
+SIX_THREADS = ("""
+import threading
+def run_threads():
+    gate = threading.Barrier(7)
+    out = []
+    def work(i):
+        gate.wait()
+        out.append(i * i)
+    ts = [threading.Thread(target=work, args=(i,)) for i in range(6)]
+    for t in ts:
+        t.start()
+    gate.wait()
+    for t in ts:
+        t.join()
+    return sorted(out)
+""", "assert run_threads() == [0, 1, 4, 9, 16, 25]")
+# a 3000-deep directory chain in the working directory, made with ctypes (past the audit hook)
+DEEP_DIRS = """
+import ctypes, os
+libc = ctypes.CDLL(None, use_errno=True)
+here = os.open(".", os.O_RDONLY)
+for _ in range(3000):
+    libc.mkdir(b"d", 0o755)
+    libc.chdir(b"d")
+os.fchdir(here)
+def add(a, b):
+    return a + b
+"""
+# files and directories without permissions, a fifo and a socket inode in the working directory
+ODD_FILES = """
+import os, stat
+os.makedirs("locked/inner")
+with open("locked/inner/f", "w") as f:
+    f.write("x")
+os.chmod("locked/inner/f", 0)
+os.chmod("locked/inner", 0)
+os.chmod("locked", 0o111)
+os.mkfifo("pipe")
+os.mknod("sock", stat.S_IFSOCK | 0o600)
+os.symlink("/etc/passwd", "link")
+def add(a, b):
+    return a + b
+"""
+
+ATTACKS_2 = {
+    **{name: (LYING_OPS, tests) for name, tests in LYING_TESTS.items()},
+    "issue_example_three_lies": ISSUE_EXAMPLE,
+    "lying_str_subclass": (LYING_STR, LYING_TESTS["lying_startswith"]),
+    "lying_int_subclass_sub": (LYING_INT_SUB, LYING_TESTS["lying_sub"]),
+    "stop_iteration_in_map": STOP_ITERATION,
+    "reply_ahead_then_segfault": reply_ahead("segfault", 50),
+}
+# hostile but correct: judged by what they leave and by the candidates around them
+HOSTILE_CORRECT = {
+    "sysv_ipc_left_behind": (SYSV_IPC, TESTS),
+    "forks_zombies_and_an_orphan": (FORKER, TESTS),
+    "deep_directory_chain": (DEEP_DIRS, TESTS),
+    "odd_permissions_fifo_socket": (ODD_FILES, TESTS),
+}

@@ -17,7 +17,8 @@ import pytest
 
 from bonft.testing import CodeTestsReport, probe_code_tests
 from bonft.verifiers import CodeRunner
-from bonft.verifiers.probes import asserted_cases, build_probes, read_code_tests, solution_names, write_code_tests
+from bonft.verifiers.probes import (ALL_PROBES, PROBES, asserted_cases, build_probes, read_code_tests, solution_names,
+                                   write_code_tests)
 
 WEAK = {
     # one input, == a literal: the constant 5 and a table {(2, 3): 5} both pass
@@ -75,9 +76,11 @@ def test_weak_tests_are_caught(runner):
     got = {r.prompt: set(r.passed) for r in report.results}
     assert {"constant_reply", "memorised_asserts"} <= got["write add(a, b)"]
     assert not {"silent_none", "raise_everywhere", "equal_to_anything", "echo_expected"} & got["write add(a, b)"]
-    assert {"silent_none", "constant_reply", "memorised_asserts", "equal_to_anything",
-            "echo_expected"} <= got["write sort_list(xs)"]
+    assert {"silent_none", "constant_reply", "memorised_asserts", "echo_expected"} <= got["write sort_list(xs)"]
     assert "raise_everywhere" not in got["write sort_list(xs)"]
+    # CodeRunner accepts only plain return values: the always-equal object is refused even where
+    # the result is never looked at, like an exit
+    assert not any("equal_to_anything" in g for g in got.values())
     assert "raise_everywhere" in got["write halve(x)"]  # the try/except swallowed the failure
     assert not any("early_exit" in g for g in got.values())  # the runner never passes an exit
     assert not report.ok
@@ -110,15 +113,18 @@ def test_probe_arguments_are_validated(tmp_path):
 
 
 def _documented_example() -> str:
-    """The probe example of the README, which docs/verifiers.md must show verbatim."""
+    """The probe example of docs/verifiers.md (test_documented_probe_example_runs runs it whole)."""
     root = Path(__file__).resolve().parents[1]
-    block = re.search(r"```python\n(from bonft.testing import probe_code_tests\n.*?)```",
-                      (root / "README.md").read_text(), re.S).group(1)
-    assert block in (root / "docs" / "verifiers.md").read_text()
-    return block
+    return re.search(r"```python\n(from bonft.testing import probe_code_tests\n.*?)```",
+                     (root / "docs" / "verifiers.md").read_text(), re.S).group(1)
 
 
-def test_check_tests_command_on_the_readme_example(tmp_path, capsys):
+def test_documented_probe_example_runs():
+    # the example's own asserts: the first prompt's test is gamed by a constant and a lookup table, the second by none
+    exec(compile(_documented_example(), "docs/verifiers.md probe example", "exec"), {"__name__": "__doc__"})
+
+
+def test_check_tests_command_on_the_documented_example(tmp_path, capsys):
     from bonft.cli import main
 
     ns = {}
@@ -134,5 +140,44 @@ def test_check_tests_command_on_the_readme_example(tmp_path, capsys):
     assert json.loads(out_json.read_text())["prompts"][1]["passed"] == []
     strong = write_code_tests(str(tmp_path / "strong.jsonl"), {"write sort_list(xs)": STRONG["write sort_list(xs)"]})
     assert main(["check-tests", strong, "--probes", "memorised_asserts,silent_none", "--wall-time", "3"]) == 0
+    # the in-process probe runs when named: the sort_list tests check type(out) is list first, so it fails
+    assert main(["check-tests", strong, "--probes", "lying_operators", "--wall-time", "3"]) == 0
     assert main(["check-tests", str(tmp_path / "none.jsonl")]) == 2
     assert "TESTS.jsonl must be an existing file" in capsys.readouterr().err
+
+
+# Tests that an object with lying operators passes when it runs in one process with them (worked
+# out by hand: x - y, abs(x), x < tol, 3 in x and x.startswith(p) are all the object itself or True),
+# and the same tests with a type check first, which it fails (type(r) is float is False for it).
+IN_PROCESS = {
+    "area, tolerance": "import math\nassert abs(area(1.0) - math.pi) < 1e-9",
+    "area, reversed": "import math\nassert abs(math.pi - area(1.0)) < 1e-9",
+    "divisors, membership": "assert 3 in divisors(6)",
+    "fmt, prefix": "assert fmt(3.14159).startswith('3.14')",
+    "area, typed": "import math\nr = area(1.0)\nassert type(r) is float and abs(r - math.pi) < 1e-9",
+}
+
+
+def test_lying_operators_probe_finds_tests_an_in_process_runner_would_pass():
+    from bonft.testing import ALL_PROBES as exported
+
+    assert "lying_operators" not in PROBES and "lying_operators" in ALL_PROBES and exported == ALL_PROBES  # opt-in
+    probes = ("memorised_asserts", "silent_none", "lying_operators")
+    report = probe_code_tests(CodeRunner(IN_PROCESS, wall_time=3.0, memory_mb=256), probes=probes)
+    got = {r.prompt: r.passed for r in report.results}
+    # no assert compares a call with ==, so the lookup table answers None everywhere, as does silent_none
+    assert got == {
+        "area, tolerance": ("lying_operators",),
+        "area, reversed": ("lying_operators",),
+        "divisors, membership": ("lying_operators",),
+        "fmt, prefix": ("lying_operators",),
+        "area, typed": (),
+    }, str(report)
+    assert report.results[0].statuses["lying_operators"] == ("pass",)
+    assert report.results[4].statuses["lying_operators"] == ("crashed",)  # an AssertionError in process
+    assert "lying_operators                 4/5" in str(report).splitlines()
+    # through CodeRunner itself the same object is refused as a return value
+    runner = CodeRunner({}, wall_time=3.0, memory_mb=256)
+    liar = build_probes(IN_PROCESS["area, tolerance"])["lying_operators"][0]
+    res = runner.run_code([(liar, IN_PROCESS["area, tolerance"])])[0]
+    assert (res.status, res.reason) == ("fail", "unsupported return type: _Liar")

@@ -47,9 +47,10 @@ def test_no_attack_gets_a_pass(attacks):
     assert r["correct"].status == "pass", r["correct"]
     forged = {k: v.reason for k, v in r.items() if v.passed and k not in ("correct", "audit_hook_off_writes_tmp_shm")}
     assert forged == {}
-    # the lying __eq__ never reaches the comparison: the trusted side compares a plain value (or a reference)
-    assert r["lying_eq_object"].status == "fail" and r["lying_eq_object"].reason == "AssertionError"
-    assert r["lying_eq_int_subclass"].status == "fail"  # arrived as the plain int 0
+    # the lying __eq__ never reaches the comparison: only plain data of exact built-in types crosses
+    assert (r["lying_eq_object"].status, r["lying_eq_object"].reason) == ("fail", "unsupported return type: Anything")
+    assert (r["lying_eq_int_subclass"].status, r["lying_eq_int_subclass"].reason) == (
+        "fail", "unsupported return type: Liar")
     assert r["monkeypatch_harness"].status == "fail"  # patched json/os only change what the candidate sends
     assert r["tested_function_raises_SystemExit_0"].status == "fail"
     assert "SystemExit(0) raised by the solution during the tests" in r["tested_function_raises_SystemExit_0"].reason
@@ -68,7 +69,8 @@ def test_files_written_with_the_audit_hook_off_do_not_outlive_the_run(attacks):
         assert "private-tmp" not in res.os_layers  # said so in the result; the files may have landed
         pytest.skip("private /tmp needs root and a kernel that allows mount namespaces")
     # its code is correct, so it passes: the layer below the audit hook is what holds
-    assert res.status == "pass" and set(res.os_layers) == {"private-tmp", "own-uid"} | ({"no-network"} if NET_NS else set())
+    assert res.status == "pass" and set(res.os_layers) == {"private-tmp", "private-pids", "private-ipc", "own-uid",
+                                                           "no-userns"} | ({"no-network"} if NET_NS else set())
     assert left == []
 
 
@@ -97,13 +99,13 @@ class Stack:
         self.items = []
     def push(self, x):
         self.items.append(x)
-    def pop(self):
-        return self.items.pop()
-    def __len__(self):
-        return len(self.items)
+def make_stack():
+    return Stack()
 def squares(n):
     for i in range(n):
         yield i * i
+def squares_list(n):
+    return [i * i for i in range(n)]
 def sort_in_place(xs):
     xs.sort()
 def shout(s):
@@ -115,39 +117,61 @@ def counts(s):
     return collections.Counter(s)
 def len(x):
     return -1
-class Thing:
-    pass
-def thing():
-    return Thing()
 def apply(f, x):
     return f(x)
+def add1(x):
+    return x + 1
+import os
 LIMIT = 10
 """
 
 SEMANTICS = {
-    "objects_stay_behind": "s = Stack()\ns.push(3)\ns.push(4)\nassert s.pop() == 4\nassert len([1]) == 1\n"
-                           "assert s.items == [3]\ns.items = [7]\nassert s.pop() == 7",
-    "iteration": "assert list(squares(4)) == [0, 1, 4, 9]\nassert [x for x in squares(3)] == [0, 1, 4]",
+    "plain_results": "assert squares_list(4) == [0, 1, 4, 9]\nassert len([1]) == 1\nassert LIMIT == 10",
     "mutated_argument": "xs = [3, 1, 2]\nsort_in_place(xs)\nassert xs == [1, 2, 3]",
     "printed_output": "import io, contextlib\nbuf = io.StringIO()\nwith contextlib.redirect_stdout(buf):\n"
                       "    shout('hi')\nassert buf.getvalue() == 'HI\\n'",
-    "exceptions_by_type": "try:\n    parse('x')\nexcept ValueError:\n    pass\nelse:\n    raise AssertionError",
-    "plain_types": "c = counts('aab')\nassert type(c) is dict and c == {'a': 2, 'b': 1}\nassert LIMIT == 10",
-    "truth_of_an_object": "assert thing()",
-    "callable_argument": "assert apply(lambda x: x + 1, 1) == 2",
+    "exceptions_as_one_type": "try:\n    parse('x')\nexcept SolutionError as e:\n    assert e.type_name == 'ValueError'\n"
+                              "    assert str(e).startswith('ValueError: invalid literal')\nelse:\n    raise AssertionError",
+    "builtin_exception_not_raised_as_itself": "try:\n    parse('x')\nexcept ValueError:\n    pass",
+    "stdlib_dict_subclass": "c = counts('aab')\nassert type(c) is dict and c == {'a': 2, 'b': 1}",
+    "solution_functions_as_arguments": "assert apply(add1, 1) == 2",
+    "an_instance": "s = make_stack()",
+    "a_class_instance": "s = Stack()",
+    "a_generator": "assert list(squares(3)) == [0, 1, 4]",
+    "a_module": "assert os.sep == '/'",
+    "attribute_of_a_function": "assert add1.__name__ == 'add1' or add1.x",
+    "truth_of_a_function": "assert add1",
+    "tests_callable_argument": "assert apply(lambda x: x + 1, 1) == 2",
 }
 
 
-def test_forwarded_calls_keep_the_tests_meaning():
+def test_only_plain_values_cross_and_calls_keep_their_meaning():
     runner = CodeRunner({}, wall_time=3.0, memory_mb=256, workers=4)
     r = dict(zip(SEMANTICS, runner.run_code([(STACK, t) for t in SEMANTICS.values()])))
-    for name in ("objects_stay_behind", "iteration", "mutated_argument", "printed_output",
-                 "exceptions_by_type", "plain_types"):
+    for name in ("plain_results", "mutated_argument", "printed_output", "exceptions_as_one_type",
+                 "stdlib_dict_subclass", "solution_functions_as_arguments"):
         assert r[name].status == "pass", (name, r[name].reason, r[name].stderr[-400:])
-    assert r["truth_of_an_object"].status == "crashed"
-    assert "truth value of the solution's Thing object" in r["truth_of_an_object"].reason
-    assert r["callable_argument"].status == "crashed"
-    assert "got function" in r["callable_argument"].reason
+    got = {name: (r[name].status, r[name].reason) for name in SEMANTICS if r[name].status != "pass"}
+    expected = {
+        "builtin_exception_not_raised_as_itself": (
+            "crashed", "SolutionError: ValueError: invalid literal for int() with base 10: 'x' in the tests"),
+        "an_instance": ("fail", "unsupported return type: Stack"),
+        "a_class_instance": ("fail", "unsupported return type: Stack"),
+        "a_generator": ("fail", "unsupported return type: generator"),
+        "a_module": ("fail", "unsupported value: module (the solution's name os)"),
+        "attribute_of_a_function": (
+            "crashed", "AttributeError: __name__: the tests can only call the solution's function, not read its "
+                       "attributes in the tests"),
+        "truth_of_a_function": (  # the reason is cut at 200 characters
+            "crashed", "TypeError: truth value of the solution's function: the tests can only call the solution's "
+                       "functions and classes; their results arrive as plain values (None, bool, int"),
+        "tests_callable_argument": (
+            "crashed", "TypeError: tests can pass only plain values and the solution's own objects into the "
+                       "solution, got function in the tests"),
+    }
+    assert set(got) == set(expected)
+    for name, (status, reason) in expected.items():
+        assert got[name][0] == status and got[name][1].startswith(reason), (name, got[name])
 
 
 REACH = """
@@ -179,10 +203,12 @@ def reach():
 @pytest.mark.skipif(not ROOT, reason="the tests' process has a uid of its own only as root")
 def test_the_candidate_cannot_reach_into_the_tests_process():
     # ptrace(2) "Ptrace access mode checking": another uid and a non-dumpable target -> EPERM;
-    # proc(5): /proc/PID/mem, environ and fd need that same access; kill(2): EPERM across uids
+    # proc(5): /proc/PID/mem, environ and fd need that same access; kill(2): EPERM across uids.
+    # pid_namespaces(7): with a PID namespace and its own /proc the tests' process is not even listed.
     runner = CodeRunner({}, wall_time=3.0, memory_mb=256, workers=1)
-    res = runner.run_code([(REACH, "assert reach() == ['found']")])[0]
+    res = runner.run_code([(REACH, "print(reach())")])[0]
     assert res.status == "pass", (res.reason, res.stderr[-400:])
+    assert res.stdout.strip() == ("[]" if "private-pids" in res.os_layers else "['found']")
 
 
 def test_wire_rebuilds_plain_values_and_refuses_anything_else():
@@ -207,16 +233,31 @@ def test_wire_rebuilds_plain_values_and_refuses_anything_else():
 
         __hash__ = int.__hash__
 
+    class Text(str):
+        pass
+
     value = [None, True, 3 ** 5000, -0.0, math.inf, 1 + 2j, "é", b"\x00", bytearray(b"a"), (1, [2]),
-             {"k": {1, 2}}, frozenset({3}), fractions.Fraction(1, 3), collections.Counter("aab"), Liar(0)]
+             {"k": {1, 2}}, frozenset({3}), fractions.Fraction(1, 3), collections.Counter("aab"),
+             collections.OrderedDict(a=1), collections.defaultdict(int, b=2)]
     back = wire_decode(wire_encode(value, no_ref), None)
-    assert back == value[:-2] + [{"a": 2, "b": 1}, 0]
-    assert type(back[-2]) is dict and type(back[-1]) is int  # subclasses arrive as their base value
+    assert back == value[:-3] + [{"a": 2, "b": 1}, {"a": 1}, {"b": 2}]
+    assert [type(x) for x in back[-3:]] == [dict, dict, dict]  # the three stdlib dicts arrive as dict
+    for sub in (Liar(0), Text("x"), [1, (2, Liar(3))], {"k": Text("v")}):  # other subclasses are not plain data
+        with pytest.raises(TypeError, match="Liar|Text"):
+            wire_encode(sub, no_ref)
+    with pytest.raises(ValueError, match="more than 200000 parts"):
+        wire_encode([0] * 200_001, no_ref)
     assert math.copysign(1, back[3]) == -1 and math.isnan(wire_decode(["f", "nan"], None))
     import numpy as np
 
     scalars = wire_decode(wire_encode([np.int64(5), np.float32(0.5), np.bool_(True)], no_ref), None)
     assert scalars == [5, 0.5, True] and [type(x) for x in scalars] == [int, float, bool]
+
+    class Half(np.float64):  # numpy's own scalar types only: a subclass's item() could be anything
+        pass
+
+    with pytest.raises(TypeError, match="Half"):
+        wire_encode(Half(0.5), no_ref)
     assert wire_decode(["h", 7, "Thing"], lambda ref, t: (ref, t)) == (7, "Thing")
     with pytest.raises(TypeError, match="function"):
         wire_encode([len, lambda: 0], no_ref)
@@ -300,3 +341,60 @@ def test_wire_round_trip_and_strictness_properties():
 
     round_trip()
     strict()
+
+
+# ------------------------------------------------------------------------------------------------
+# Second round. Every solution of ATTACKS_2 is wrong; CORRECT_2 solves the same tests, so that a
+# non-pass of an attack is the runner's doing, not a broken test.
+CORRECT_2 = """
+import math
+def area(r):
+    return math.pi * r * r
+def parity(n):
+    return n % 2
+def divisors(n):
+    return [d for d in range(1, n + 1) if n % d == 0]
+def fmt(x):
+    return "%.5f" % x
+def square(x):
+    return x * x
+"""
+
+
+def test_second_round_attacks_get_no_pass():
+    from sandbox_attacks import ATTACKS_2, LYING_TESTS, STOP_ITERATION
+
+    runner = CodeRunner({}, wall_time=3.0, memory_mb=256, workers=4)
+    names = list(ATTACKS_2)
+    controls = [*LYING_TESTS.values(), STOP_ITERATION[1]]
+    results = runner.run_code(list(ATTACKS_2.values()) + [(CORRECT_2, t) for t in controls])
+    r = dict(zip(names, results))
+    assert [c.status for c in results[len(names):]] == ["pass"] * len(controls), results[len(names):]
+    got = {k: (v.status, v.reason) for k, v in r.items()}
+    lie = ("fail", "unsupported return type: Z")
+    assert got == {
+        **{name: lie for name in LYING_TESTS}, "issue_example_three_lies": lie,
+        "lying_str_subclass": ("fail", "unsupported return type: S"),
+        "lying_int_subclass_sub": lie,
+        # the solution's StopIteration reaches the tests as SolutionError: the tests' zip does not end early
+        "stop_iteration_in_map": ("crashed", "SolutionError: StopIteration in the tests"),
+        "reply_ahead_then_segfault": ("crashed", "killed by SIGSEGV after its last reply"),
+    }
+
+
+def test_replies_ahead_of_a_crash_never_pass():
+    """The replies a correct ``add`` would give, written before any request, then a segfault after
+    0-90 ms: the tests' process may read them all and finish, but the candidate's process did not end
+    normally, so the verdict is never pass (signal(7): SIGSEGV is 11). The same replies followed by
+    os._exit(0) pass: the judge accepts them as answers, so the crash alone decides the others."""
+    from sandbox_attacks import reply_ahead
+
+    runner = CodeRunner({}, wall_time=3.0, memory_mb=256, workers=4)
+    reps = 40
+    results = runner.run_code([reply_ahead("segfault", (i % 10) * 10) for i in range(reps)]
+                              + [reply_ahead("exit0", 150)])
+    crashes, control = results[:reps], results[reps]
+    assert sum(c.passed for c in crashes) == 0
+    assert all(c.status == "crashed" and "killed by SIGSEGV" in c.reason and c.returncode == -11 for c in crashes), \
+        [(c.status, c.reason) for c in crashes if "SIGSEGV" not in (c.reason or "")]
+    assert control.status == "pass", (control.reason, control.stderr[-300:])

@@ -13,7 +13,9 @@ DESCRIPTION = (
 
 def add_arguments(p) -> None:
     p.add_argument("tests", metavar="TESTS.jsonl", help="one {\"prompt\", \"tests\"} object per line")
-    p.add_argument("--probes", default=None, metavar="A,B", help="probes to run (default: all)")
+    p.add_argument("--probes", default=None, metavar="A,B",
+                   help="probes to run (default: all but lying_operators, which runs the tests in process "
+                        "beside a lying object and is run only when named)")
     p.add_argument("--wall-time", type=float, default=5.0, help="seconds per probe candidate (default 5)")
     p.add_argument("--memory-mb", type=int, default=512, help="memory limit per process (default 512)")
     p.add_argument("--workers", type=int, default=None, help="candidates run in parallel (default: up to 4)")

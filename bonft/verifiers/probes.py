@@ -9,10 +9,9 @@ alone (as a policy that saw the tests in its prompt could), defining every
 name the tests take from the solution:
 
 ``equal_to_anything``  every function returns an object whose ``__eq__`` is
-                       always true (and ``__bool__`` true). CodeRunner keeps
-                       such objects in the candidate's process and never lets
-                       them decide a comparison, so this passes only tests
-                       that do not look at results at all.
+                       always true (and ``__bool__`` true). CodeRunner accepts
+                       only plain data as a result (``unsupported return
+                       type``), so this never passes: a check of the runner.
 ``constant_reply``     every function returns one constant: each literal the
                        asserts compare against, and ``True, False, None, 0, 1,
                        "", []``, one candidate per constant.
@@ -28,6 +27,18 @@ name the tests take from the solution:
 ``early_exit``         exits with status 0 at import, or raises SystemExit(0)
                        from every call. CodeRunner never passes an exit; a
                        check of the runner too.
+
+One more probe is not run by default, because CodeRunner cannot be fooled by it:
+
+``lying_operators``    every function returns an object whose operators,
+                       comparisons and methods all say yes (``x - y`` is
+                       itself, ``x < tol``, ``3 in x``, ``x.startswith(...)``
+                       and ``x == y`` are true), and the tests run **in the
+                       same process** as that object, as an in-process
+                       runner (``exec`` of solution and tests together) would
+                       run them. It passes the tests such a runner would let
+                       a wrong solution through; run it (``probes=ALL_PROBES``)
+                       if the same tests are ever run in process.
 
 A probe that passes gets a recommendation (:data:`ADVICE`): hidden inputs
 drawn at random from a seeded generator and compared with a reference,
@@ -46,9 +57,14 @@ from bonft.verifiers.sandbox.runner import CodeRunner
 
 PROBES = ("equal_to_anything", "constant_reply", "memorised_asserts", "silent_none", "raise_everywhere",
           "echo_expected", "early_exit")
+IN_PROCESS_PROBES = ("lying_operators",)  # not run by default: they test an in-process runner, not CodeRunner
+ALL_PROBES = PROBES + IN_PROCESS_PROBES
 ADVICE = {
-    "equal_to_anything": "an object that claims to equal anything passes, so some results are never "
-                         "compared (CodeRunner never lets its __eq__ decide): assert on every result",
+    "equal_to_anything": "an object that claims to equal anything passes: the runner should never allow this "
+                         "(it accepts only plain return values); report it as a bonft bug",
+    "lying_operators": "in one process with the tests, an object whose operators and methods lie passes "
+                       "(CodeRunner refuses it as a return value): check each result's type first "
+                       "(type(r) is float) wherever these tests may run in process",
     "constant_reply": "one constant passes: test several inputs whose expected results differ",
     "memorised_asserts": "a lookup table of the asserted inputs passes: add hidden inputs drawn from a "
                          "seeded random generator and compare with a reference implementation or a property",
@@ -101,7 +117,8 @@ class CodeTestsReport:
                 lines.append(f"ok        {head}: no probe passed")
         n = len(self.results)
         lines += ["", f"{'probe':<20} {'prompts passed':>14}"]
-        for p in PROBES:
+        extra = tuple(p for p in IN_PROCESS_PROBES if any(p in r.statuses for r in self.results))
+        for p in PROBES + extra:
             k = sum(p in r.passed for r in self.results)
             lines.append(f"{p:<20} {f'{k}/{n}':>14}")
         gameable = sum(bool(r.passed) for r in self.results)
@@ -205,6 +222,8 @@ def build_probes(tests: str) -> dict[str, list[str]]:
                 "    def __ne__(self, other):\n        return False\n    def __bool__(self):\n        return True\n"
                 "    __hash__ = object.__hash__\n")
     echo = "\n".join(f"    print({str(v)!r})" for v in lits) or "    pass"
+    in_process = (_LIAR + _define(names, "return _Liar()")
+                  + f"_BONFT_TESTS = {tests!r}\n" + _IN_PROCESS)
     return {
         "equal_to_anything": [_define(names, "return _Anything()", anything)],
         "constant_reply": [_define(names, f"return {c!r}") for c in consts[:_MAX_CONSTANTS]],
@@ -213,7 +232,44 @@ def build_probes(tests: str) -> dict[str, list[str]]:
         "raise_everywhere": [_define(names, "raise ValueError('probe')")],
         "echo_expected": ["".join(f"def {n}(*args, **kwargs):\n{echo}\n" for n in names)],
         "early_exit": ["import os\nos._exit(0)\n", _define(names, "raise SystemExit(0)")],
+        "lying_operators": [in_process],
     }
+
+
+# an object whose every operator, comparison and method says yes (all return itself, which is true)
+_LIAR = """class _Liar:
+    def __eq__(self, other):
+        return True
+    def __ne__(self, other):
+        return False
+    __lt__ = __le__ = __gt__ = __ge__ = __eq__
+    def __bool__(self):
+        return True
+    def __hash__(self):
+        return 0
+    def __contains__(self, item):
+        return True
+    def __iter__(self):
+        return iter(())
+    def __getattr__(self, name):
+        if name.startswith("__"):
+            raise AttributeError(name)
+        return lambda *args, **kwargs: self
+    def _same(self, *args, **kwargs):
+        return self
+    __call__ = __getitem__ = __neg__ = __pos__ = __abs__ = __invert__ = __round__ = _same
+for _op in ("add", "sub", "mul", "truediv", "floordiv", "mod", "pow", "matmul", "lshift", "rshift", "and",
+            "or", "xor"):
+    setattr(_Liar, "__%s__" % _op, _Liar._same)
+    setattr(_Liar, "__r%s__" % _op, _Liar._same)
+"""
+# the tests run in the candidate's own process, next to the liar: what an in-process runner does
+_IN_PROCESS = """def _bonft_in_process():
+    ns = dict(globals(), __name__="__main__")
+    exec(compile(_BONFT_TESTS, "tests.py", "exec"), ns)
+    return True
+"""
+_IN_PROCESS_TESTS = "assert _bonft_in_process() is True"
 
 
 # ----------------------------------------------------------------------------- running
@@ -222,7 +278,8 @@ def probe_code_tests(tests: Mapping[str, str] | CodeRunner, *, probes=PROBES, ru
     """Run the gaming probes against each prompt's tests; ``(P prompts) -> CodeTestsReport``.
 
     tests:  prompt -> test code, or a :class:`CodeRunner` (its tests and limits are used).
-    probes: which probes to run (names from :data:`PROBES`).
+    probes: which probes to run (names from :data:`PROBES`, default; or :data:`ALL_PROBES`, which
+            adds ``lying_operators``: the tests run in process with a lying object).
     runner: the runner to use with a tests mapping (default ``CodeRunner(tests, wall_time=5)``).
 
     Caution: a clean report means these generic probes fail, not that the tests cannot be
@@ -233,8 +290,8 @@ def probe_code_tests(tests: Mapping[str, str] | CodeRunner, *, probes=PROBES, ru
         runner, tests = tests, tests.tests
     if not isinstance(tests, Mapping):
         raise TypeError(f"tests must be a mapping prompt -> test code or a CodeRunner, got {type(tests).__name__}")
-    if isinstance(probes, str) or not all(p in PROBES for p in probes) or not probes:
-        raise ValueError(f"probes must be a non-empty list from {', '.join(PROBES)}, got {probes!r}")
+    if isinstance(probes, str) or not all(p in ALL_PROBES for p in probes) or not probes:
+        raise ValueError(f"probes must be a non-empty list from {', '.join(ALL_PROBES)}, got {probes!r}")
     if runner is None:
         runner = CodeRunner(tests)
     elif not isinstance(runner, CodeRunner):
@@ -243,7 +300,7 @@ def probe_code_tests(tests: Mapping[str, str] | CodeRunner, *, probes=PROBES, ru
     for prompt, code in tests.items():
         for probe, sources in build_probes(code).items():
             if probe in probes:
-                jobs += [(src, code) for src in sources]
+                jobs += [(src, _IN_PROCESS_TESTS if probe in IN_PROCESS_PROBES else code) for src in sources]
                 owners += [(prompt, probe)] * len(sources)
     results = runner.run_code(jobs, progress=progress)
     statuses: dict[str, dict[str, list[str]]] = {p: {} for p in tests}

@@ -9,10 +9,15 @@ applied. This code
   directory, network use, signals to processes other than our own
   descendants, and process creation beyond the budget;
 * runs the solution in a fresh namespace, then serves the trusted test
-  process: it looks up the solution's names, calls its functions and sends
-  back plain values (or references to objects that stay here). It never sees
-  the tests and decides no verdict: everything it says is data, checked by the
-  other side. Its claims can only turn a verdict into a non-pass (``refused``,
+  process: it looks up the solution's names and calls its functions, and
+  converts what they return to plain data here (exact built-in types only,
+  see ``wire.py``); a function or class looked up by name stays here as a
+  reference the tests can only call. Anything else (an instance of the
+  solution's class, a subclass of ``int`` or ``str``, a generator) is
+  ``unsupported return type: Z``, a failed verdict. An exception of the
+  solution travels as its type name and message. It never sees the tests and
+  decides no verdict: everything it says is data, checked by the other side.
+  Its claims can only turn a verdict into a non-pass (``refused``,
   ``limit-exceeded``, an error).
 
 It must stay compatible with Python 3.8+ and import only the standard
@@ -21,7 +26,6 @@ started within the process budget, gets round them.
 """
 import errno
 import io
-import operator
 import os
 import sys
 import traceback
@@ -40,16 +44,6 @@ _PATH_ARGS = {  # event -> indices of path arguments that get written
     "shutil.rmtree": (0,), "shutil.copyfile": (1,), "shutil.copytree": (1,), "shutil.move": (1,),
     "os.chflags": (0,), "os.mkfifo": (0,), "os.mknod": (0,),
 }
-# what the test process may apply to the solution's objects, besides calling them
-_APPLY = {
-    "getitem": operator.getitem, "setitem": operator.setitem, "delitem": operator.delitem,
-    "contains": operator.contains, "len": len, "iter": iter, "next": next, "repr": repr, "str": str,
-    "int": int, "float": float, "index": operator.index, "hash": hash, "neg": operator.neg,
-    "pos": operator.pos, "abs": abs, "invert": operator.invert,
-}
-for _name in ("add", "sub", "mul", "truediv", "floordiv", "mod", "pow", "matmul", "lshift", "rshift",
-              "and_", "or_", "xor"):
-    _APPLY[_name] = getattr(operator, _name)
 _MUTABLE = (list, dict, set, bytearray)
 
 
@@ -155,6 +149,15 @@ class _Tee(io.TextIOBase):
         self.real.flush()
 
 
+class _Unsupported(Exception):
+    """A value that is not plain data where only plain data may go."""
+
+
+def _type_name(obj):
+    name = getattr(type(obj), "__name__", None)
+    return name[:80] if type(name) is str else "object"
+
+
 def _serve(g, req_fd, resp_fd, st, cap, top):
     objs, ids = {}, {}
 
@@ -163,7 +166,10 @@ def _serve(g, req_fd, resp_fd, st, cap, top):
         if key not in ids:
             ids[key] = len(objs) + 1
             objs[ids[key]] = obj
-        return ["h", ids[key], type(obj).__name__]
+        return ["h", ids[key], _type_name(obj)]
+
+    def not_plain(obj):
+        raise _Unsupported(_type_name(obj))
 
     def deref(ref, typename):
         if ref not in objs:
@@ -191,38 +197,44 @@ def _serve(g, req_fd, resp_fd, st, cap, top):
             os._exit(0)
         real_out = sys.stdout
         tee = _Tee(real_out, cap // 4)
-        args = []
+        stage = "return"
         try:
             if op == "get":
+                stage = "name"
                 name = req["name"]
-                if name not in g:
+                if type(name) is not str or name not in g:
                     reply["missing"] = True
                     wire_send(resp_fd, reply)
                     continue
                 value = g[name]
-            else:
+                try:
+                    reply["value"] = wire_encode(value, not_plain)
+                except _Unsupported as e:
+                    if not callable(value):  # a function or class stays here: the tests can only call it
+                        raise _Unsupported("%s (the solution's name %s)" % (e, name[:80])) from None
+                    reply["value"] = ref_of(value)
+            elif op == "call":
+                stage = "argument"
                 args = [dec(a) for a in req.get("args", [])]
                 kwargs = {k: dec(v) for k, v in req.get("kwargs", [])}
+                fn = objs[req["ref"]]
+                stage = "call"
                 sys.stdout = tee
                 try:
-                    if op == "call":
-                        value = objs[req["ref"]](*args, **kwargs)
-                    elif op == "attr":
-                        value = getattr(args[0], req["name"])
-                    elif op == "setattr":
-                        value = setattr(args[0], req["name"], args[1])
-                    elif op == "apply":
-                        value = _APPLY[req["name"]](*args)
-                    else:
-                        raise WireError("unknown request %r" % (op,))
+                    value = fn(*args, **kwargs)
                 finally:
                     sys.stdout = real_out
-                if op == "call":
-                    reply["back"] = [[i, wire_encode(a, ref_of)] for i, a in enumerate(args)
-                                     if type(a) in _MUTABLE]
-                    reply["kwback"] = [[k, wire_encode(v, ref_of)] for k, v in kwargs.items()
-                                       if type(v) in _MUTABLE]
-            reply["value"] = wire_encode(value, ref_of)
+                stage = "return"
+                reply["value"] = wire_encode(value, not_plain)
+                stage = "argument written back"
+                reply["back"] = [[i, wire_encode(a, not_plain)] for i, a in enumerate(args) if type(a) in _MUTABLE]
+                reply["kwback"] = [[k, wire_encode(v, not_plain)] for k, v in kwargs.items() if type(v) in _MUTABLE]
+            else:
+                raise WireError("unknown request %r" % (op,))
+        except _Unsupported as e:
+            what = {"return": "return type", "name": "value",
+                    "argument written back": "value written into an argument"}
+            reply = {"id": rid, "fatal": "fail", "reason": "unsupported %s: %s" % (what.get(stage, stage), e)}
         except (SystemExit, KeyboardInterrupt, GeneratorExit) as e:
             code = getattr(e, "code", None)
             reply = {"id": rid, "fatal": "fail", "reason": "%s%s raised by the solution during the tests" % (
@@ -232,12 +244,18 @@ def _serve(g, req_fd, resp_fd, st, cap, top):
         except BaseException as e:
             if isinstance(e, OSError) and e.errno == errno.EFBIG:
                 reply = {"id": rid, "fatal": "limit-exceeded", "reason": "file size limit (%s)" % _msg(e)}
+            elif stage != "call":  # converting the result (a value too large or too deep, a broken type)
+                reply = {"id": rid, "fatal": "fail", "reason": "unsupported %s: %s" % (
+                    "return value" if stage == "return" else stage, (_type_name(e) + ": " + _msg(e))[:200])}
             else:
-                reply = {"id": rid, "raise": type(e).__name__, "message": _msg(e),
-                         "builtin": type(e).__module__ == "builtins"}
+                try:
+                    message = _msg(e)
+                except BaseException:
+                    message = ""
+                reply = {"id": rid, "raise": _type_name(e), "message": message}
                 try:
                     traceback.print_exc(limit=-3)
-                except Exception:
+                except BaseException:
                     pass
         if os.getpid() != top:
             os._exit(0)  # a child forked during the call: only the top process answers

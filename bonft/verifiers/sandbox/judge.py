@@ -8,10 +8,16 @@ the candidate cannot reach into it. It runs the tests (user code, trusted) and d
 
 * the tests' names resolve to: the tests' own names, then builtins, then the
   solution's globals, fetched over the pipe. A name of the solution arrives as
-  a plain value rebuilt here (:func:`wire_decode`) or as a :class:`Remote`
-  reference whose calls, attributes, items and arithmetic are forwarded;
-  comparisons and truth tests are never forwarded, so the candidate's
-  ``__eq__`` takes no part in an ``assert``;
+  a plain value rebuilt here (:func:`wire_decode`: this process's own
+  ``int``, ``str``, ``list``...) or, for a function or class, as a
+  :class:`Remote` the tests can call and nothing else. A call's result is
+  plain data, rebuilt here, or the verdict fails (``unsupported return
+  type: Z``): no method or operator of an object of the solution ever runs
+  for the tests, so none can decide an ``assert``;
+* an exception raised by the solution's code reaches the tests as
+  :class:`SolutionError` (an ``Exception``, never ``StopIteration``,
+  ``GeneratorExit``, ``KeyboardInterrupt`` or ``SystemExit``, so it cannot
+  end the tests' iterations quietly); an exit is fatal;
 * an exit, a crash, a protocol error or garbage from the candidate is sticky:
   once seen the verdict cannot be ``pass``, even if the tests catch the error;
 * the verdict goes on a pipe only this process and the runner hold.
@@ -36,12 +42,19 @@ class _Fatal(BaseException):
 
 
 class SolutionError(Exception):
-    """An exception of the solution's own class, raised during a call (its type name and message)."""
+    """An exception raised by the solution's code during a call: ``type_name`` (its class's name,
+    e.g. ``"ValueError"``), ``message``; ``str()`` is ``"ValueError: message"``. The one exception
+    type the tests see from the solution, available to them as the name ``SolutionError``."""
+
+    def __init__(self, type_name, message):
+        Exception.__init__(self, "%s: %s" % (type_name, message) if message else type_name)
+        self.type_name, self.message = type_name, message
 
 
 def _plain_only(what):
-    return TypeError("%s: the tests compare plain values only (None, bool, int, float, complex, str, "
-                     "bytes, list, tuple, dict, set, Fraction, Decimal); convert it inside the solution" % what)
+    return TypeError("%s: the tests can only call the solution's functions and classes; their results "
+                     "arrive as plain values (None, bool, int, float, complex, str, bytes, bytearray, list, "
+                     "tuple, dict, set, frozenset, Fraction, Decimal)" % what)
 
 
 class _Conn:
@@ -76,9 +89,14 @@ class _Conn:
         raise TypeError("tests can pass only plain values and the solution's own objects into the solution, "
                         "got %s" % type(obj).__name__)
 
-    def decode(self, node):
+    def decode(self, node, refs=False):
+        def no_ref(ref, typename):
+            raise WireError("a reference where only plain data may go")
+
         try:
-            return wire_decode(node, self.handle)
+            if refs and type(node) is list and node[:1] == ["h"]:
+                return wire_decode(node, self.handle)
+            return wire_decode(node, no_ref)
         except WireError as e:
             self.die("crashed", "the solution's process sent a value outside the protocol (%s)" % e)
 
@@ -104,27 +122,17 @@ class _Conn:
             self.die(status if status in ("fail", "limit-exceeded") else "crashed",
                      reason[:300] if type(reason) is str else "the solution's process gave up")
         if "raise" in rep:
-            raise self.rebuild(rep)
+            name, message = rep.get("raise"), rep.get("message")
+            raise SolutionError(name[:80] if type(name) is str else "Exception",
+                                message[:300] if type(message) is str else "")
         if rep.get("missing") is True and op == "get":
             return _MISSING
         if "value" not in rep:
             self.die("crashed", "the solution's process sent a reply without a value")
-        value = self.decode(rep["value"])
+        value = self.decode(rep["value"], refs=op == "get")
         if op == "call":
             self.write_back(args, rep.get("back"), kwargs or {}, rep.get("kwback"))
         return value
-
-    def rebuild(self, rep):
-        name, message = rep.get("raise"), rep.get("message")
-        name = name[:80] if type(name) is str else "Exception"
-        message = message[:300] if type(message) is str else ""
-        cls = _BUILTINS.get(name)
-        if rep.get("builtin") is True and isinstance(cls, type) and issubclass(cls, Exception):
-            try:
-                return cls(message)
-            except Exception:
-                pass
-        return SolutionError("%s: %s" % (name, message) if message else name)
 
     def write_back(self, args, back, kwargs, kwback):
         """Mutable arguments the solution changed in place: copy its new contents into the tests' objects."""
@@ -149,100 +157,28 @@ class _Conn:
 _conn = None
 
 
-def _apply(name, *args):
-    return _conn.ask("apply", args=args, name=name)
-
-
 class Remote:
-    """An object that stays in the solution's process. Calls, attributes, items, iteration and
-    arithmetic are forwarded; ``==`` is identity and truth tests raise, so its ``__eq__`` and
-    ``__bool__`` never decide an assertion."""
+    """A function or class of the solution: the tests can call it (the call runs in the solution's
+    process and its result comes back as plain data) and nothing else. ``==`` is identity, and its
+    truth value, attributes, items and operators raise ``TypeError``/``AttributeError``."""
 
     __slots__ = ("_bonft_ref", "_bonft_type", "__weakref__")
 
     def __getattr__(self, name):
-        if name.startswith("__") and name.endswith("__"):
-            raise AttributeError(name)
-        return _conn.ask("attr", args=(self,), name=name)
+        raise AttributeError("%s: the tests can only call the solution's %s, not read its attributes"
+                             % (name, self._bonft_type))
 
     def __setattr__(self, name, value):
-        _conn.ask("setattr", args=(self, value), name=name)
+        raise AttributeError("%s: the tests cannot set attributes of the solution's %s" % (name, self._bonft_type))
 
     def __call__(self, *args, **kwargs):
         return _conn.ask("call", args=args, kwargs=kwargs, ref=self._bonft_ref)
 
     def __repr__(self):
-        try:
-            r = _apply("repr", self)
-        except Exception:
-            r = None
-        return r if type(r) is str else "<the solution's %s object>" % self._bonft_type
-
-    def __str__(self):
-        return _apply("str", self)
+        return "<the solution's %s>" % self._bonft_type
 
     def __bool__(self):
-        raise _plain_only("truth value of the solution's %s object" % self._bonft_type)
-
-    def __len__(self):
-        return _apply("len", self)
-
-    def __iter__(self):
-        return _apply("iter", self)
-
-    def __next__(self):
-        return _apply("next", self)
-
-    def __getitem__(self, key):
-        return _apply("getitem", self, key)
-
-    def __setitem__(self, key, value):
-        _apply("setitem", self, key, value)
-
-    def __delitem__(self, key):
-        _apply("delitem", self, key)
-
-    def __contains__(self, item):
-        return _apply("contains", self, item) is True
-
-    def __int__(self):
-        return _apply("int", self)
-
-    def __float__(self):
-        return _apply("float", self)
-
-    def __index__(self):
-        return _apply("index", self)
-
-    def __neg__(self):
-        return _apply("neg", self)
-
-    def __pos__(self):
-        return _apply("pos", self)
-
-    def __abs__(self):
-        return _apply("abs", self)
-
-    def __invert__(self):
-        return _apply("invert", self)
-
-
-def _binary(op):
-    def fwd(self, other):
-        return _apply(op, self, other)
-
-    def rev(self, other):
-        return _apply(op, other, self)
-
-    return fwd, rev
-
-
-for _op in ("add", "sub", "mul", "truediv", "floordiv", "mod", "pow", "matmul", "lshift", "rshift",
-            "and_", "or_", "xor"):
-    _d = _op.rstrip("_")
-    _f, _r = _binary(_op)
-    setattr(Remote, "__%s__" % _d, _f)
-    setattr(Remote, "__r%s__" % _d, _r)
+        raise _plain_only("truth value of the solution's %s" % self._bonft_type)
 
 
 class _Names(dict):
@@ -263,7 +199,7 @@ def _msg(e):
 
 
 def _run_tests(tests):
-    g = _Names(__name__="__main__", __builtins__=_BUILTINS)
+    g = _Names(__name__="__main__", __builtins__=_BUILTINS, SolutionError=SolutionError)
     try:
         exec(compile(tests, "tests.py", "exec"), g)
     except _Fatal:

@@ -98,10 +98,19 @@ def collect(judge, cand, ver_r: int, *, deadline: float, cap: int, frame_cap: in
 
 def classify(verdict: dict, rc: int | None, judge_rc: int | None, *, timed_out: bool, over: str | None,
              wall_time: float, cpu_time: float, file_size_mb: int) -> tuple[str, str | None]:
-    """(status, reason): the output cap, then the tests' verdict, then the clock, then exit statuses."""
+    """(status, reason): the output cap, then the tests' verdict, then the clock, then exit statuses.
+
+    ``pass`` needs all three: the tests' verdict ``pass`` (they ran to their end), the candidate's
+    process ended with status 0 after its last reply, and the tests' process with status 0."""
     if over:
         return "limit-exceeded", over
     status, reason = verdict.get("status"), verdict.get("reason")
+    if status == "pass" and rc != 0:  # a pass needs the candidate's process to end normally after its last reply
+        if rc == -signal.SIGKILL:
+            return "crashed", "the solution's process did not end after its last reply (killed)"
+        return "crashed", _ended(rc, cpu_time, file_size_mb)[1] + " after its last reply"
+    if status == "pass" and judge_rc != 0:
+        return "crashed", f"the tests' process ended with exit status {judge_rc} after its verdict"
     if status in STATUSES:
         return status, reason
     if timed_out:
@@ -109,10 +118,17 @@ def classify(verdict: dict, rc: int | None, judge_rc: int | None, *, timed_out: 
     if status != "gone":
         return "crashed", f"the tests' process ended without a verdict (exit status {judge_rc})"
     if rc is not None and rc < 0:
-        name = signal.Signals(-rc).name if -rc in signal.valid_signals() else f"signal {-rc}"
-        if name == "SIGXCPU":
-            return "limit-exceeded", f"cpu time limit {math.ceil(cpu_time)} s (SIGXCPU)"
-        if name == "SIGXFSZ":
-            return "limit-exceeded", f"file size limit {file_size_mb} MB (SIGXFSZ)"
-        return "crashed", f"killed by {name}"
+        return _ended(rc, cpu_time, file_size_mb)
     return "crashed", f"exited with code {rc} before the tests finished"
+
+
+def _ended(rc: int, cpu_time: float, file_size_mb: int) -> tuple[str, str]:
+    """(status, reason) for a candidate's process that ended with exit status ``rc``."""
+    if rc is None or rc >= 0:
+        return "crashed", f"exited with code {rc}"
+    name = signal.Signals(-rc).name if -rc in signal.valid_signals() else f"signal {-rc}"
+    if name == "SIGXCPU":
+        return "limit-exceeded", f"cpu time limit {math.ceil(cpu_time)} s (SIGXCPU)"
+    if name == "SIGXFSZ":
+        return "limit-exceeded", f"file size limit {file_size_mb} MB (SIGXFSZ)"
+    return "crashed", f"killed by {name}"

@@ -10,17 +10,24 @@ The verdict. The candidate's code runs in its own sandboxed process only as a
 callee. The tests run in a second, trusted process (under a uid of its own
 as root; otherwise started first and made non-dumpable) that resolves the solution's names and
 calls its functions over a pair of pipes (:mod:`bonft.verifiers.sandbox.wire`:
-length-prefixed JSON, capped frames, a strict decoder, no pickle). Only plain
-values come back, rebuilt as the trusted process's own ``int``, ``list``...;
-other objects stay behind as references whose calls are forwarded but whose
-``==`` and truth value are not. The tests' ``assert`` statements are
+length-prefixed JSON, capped frames, a strict decoder, no pickle). A call's
+result is converted to plain data in the candidate's process (exact built-in
+types; anything else is ``fail``, ``unsupported return type: Z``) and rebuilt
+as the trusted process's own ``int``, ``list``...; the solution's functions
+and classes are references the tests can only call. No method or operator of
+a candidate's object runs for the tests, and the solution's exceptions arrive
+as one type, ``SolutionError``. The tests' ``assert`` statements are
 evaluated there, and the verdict travels on a pipe only that process and this
 runner hold. The candidate never sees the tests' text. An exit, crash or
-protocol error of the candidate during the tests is sticky: never ``pass``.
+protocol error of the candidate during the tests is sticky: never ``pass``;
+and a ``pass`` also needs the candidate's process to end with status 0 after
+its last reply.
 
 The sandbox, from the outside in, for each candidate's process:
 
-1. a fresh temporary working directory, removed afterwards;
+1. a fresh temporary working directory, removed afterwards without depth
+   limits (:func:`~bonft.verifiers.sandbox.procs.remove_tree`); a removal that fails
+   makes that candidate ``crashed`` (``clean-up failed: ...``), not the batch;
 2. a scrubbed environment built from scratch (no inherited variables, so no
    API keys), stdin closed, stdout/stderr captured and capped;
 3. its own session and process group, killed (SIGKILL) at the wall-clock
@@ -29,13 +36,16 @@ The sandbox, from the outside in, for each candidate's process:
 4. resource limits set before exec (``resource.setrlimit``): CPU seconds,
    address space, file size, process count, no core dumps;
 5. when running as root: a private mount namespace in which /tmp, /var/tmp,
-   /dev/shm and /run/lock are fresh tmpfs (gone with the run), a fresh network
+   /dev/shm and /run/lock are fresh tmpfs (gone with the run), a fresh PID
+   namespace with its own /proc (every process the candidate left dies with
+   it), a fresh IPC namespace (System V objects die with it), a fresh network
    namespace with no interfaces, then a drop to an unprivileged uid of its own
    (a per-worker uid in a high range) with ``no_new_privs``. RLIMIT_NPROC is
    not enforced for root, so without this drop the process limit would not
    bite. Not as root none of these exist (``RunResult.os_layers`` says which
    took effect) and the process limit counts all of your user's processes;
-6. inside the interpreter, an audit hook (PEP 578) refusing writes outside
+6. root or not, a seccomp filter refusing user namespaces (``no-userns``);
+7. inside the interpreter, an audit hook (PEP 578) refusing writes outside
    the working directory, network use, signals to other processes and
    process creation beyond ``max_processes``.
 """
@@ -47,7 +57,6 @@ import os
 import re
 import resource
 import secrets
-import shutil
 import signal
 import subprocess
 import sys
@@ -65,7 +74,7 @@ from bonft._core.checks import check_int, check_real
 from bonft.verifiers.base import Verdicts
 from bonft.verifiers.sandbox.oslayer import LAYER_NAMES, env, make_preexec, rlimits
 from bonft.verifiers.sandbox.outcome import STATUSES, await_start, classify, collect  # noqa: F401 - STATUSES is public here
-from bonft.verifiers.sandbox.procs import kill_by_cwd, kill_uid, pids_of, user_tasks
+from bonft.verifiers.sandbox.procs import kill_by_cwd, kill_uid, pids_of, remove_tree, user_tasks
 from bonft.verifiers.scoring import check_batch
 
 _UID_BASE = 1_000_000_000  # sandbox uids: _UID_BASE + 2000 * (random run id) + 2 * worker slot (+ 1: tests)
@@ -84,9 +93,11 @@ class RunResult:
     stdout, stderr: captured output, each cut at ``max_output_bytes`` (the
             candidate's, then the tests' process's: a failing assertion's traceback).
     os_layers: the OS layers that took effect for this run, from ``own-uid``,
-            ``no-network``, ``private-tmp`` (all three as root on Linux with
-            namespaces; none otherwise -- then the candidate can write to the
-            shared /tmp and use the network, and only the audit hook objects).
+            ``no-network``, ``private-tmp``, ``private-pids``, ``private-ipc``
+            (all as root on Linux with namespaces; none otherwise -- then the
+            candidate can write to the shared /tmp, use the network and leave
+            System V objects, and only the audit hook objects) and
+            ``no-userns`` (the seccomp filter; root or not, x86-64 and ARM64).
     """
 
     status: str
@@ -138,9 +149,13 @@ class CodeRunner:
                       in a separate trusted process; the solution's names
                       (functions, classes, constants) resolve after builtins and
                       the tests' own names, and calls into them are forwarded to
-                      the candidate's process, which returns plain values. The
-                      tests pass when they run to the end; an exit (even status
-                      0), an exception or a limit hit before that is not a pass.
+                      the candidate's process, which must return plain data
+                      (else ``unsupported return type: Z``); its exceptions
+                      arrive as ``SolutionError`` (``e.type_name``,
+                      ``e.message``). The tests pass when they run to the end
+                      and the candidate's process then ends normally; an exit
+                      (even status 0), an exception or a limit hit before that
+                      is not a pass.
     wall_time:        seconds of wall clock per candidate (then SIGKILL -> ``timeout``).
     cpu_time:         CPU seconds (RLIMIT_CPU; SIGXCPU -> ``limit-exceeded``);
                       default ``wall_time + 1`` so that a busy loop reads as a timeout.
@@ -196,7 +211,7 @@ class CodeRunner:
         self._lock = threading.Lock()
         self._chosen_python: str | None = None
         self._boot_candidate, self._boot_judge = _boot("candidate.py"), _boot("judge.py")
-        self._mountns = self._root
+        self._mountns = self._pidns = self._root
         try:
             self._libc = ctypes.CDLL(None, use_errno=True)
         except OSError:  # pragma: no cover - non-glibc platforms
@@ -230,6 +245,8 @@ class CodeRunner:
             slot = slots.get()
             try:
                 return self._run_one(job[0], job[1], slot, python)
+            except Exception as e:  # noqa: BLE001 - a runner error ends this candidate, not the batch
+                return RunResult("crashed", f"runner: {type(e).__name__}: {str(e)[:200]}", None, "", "", 0.0)
             finally:
                 slots.put(slot)
 
@@ -256,7 +273,8 @@ class CodeRunner:
         limits = rlimits(cpu_time=self.cpu_time, memory_mb=self.memory_mb, file_size_mb=self.file_size_mb, nproc=nproc)
         pre = make_preexec(limits=limits, uid=uid, libc=self._libc, netns=sandbox and self.isolate_network,
                            mountns=sandbox and self._mountns, workdir=cwd, tmpfs_mb=self.file_size_mb,
-                           report_fd=report_fd)
+                           report_fd=report_fd, pidns=sandbox and self._pidns, ipcns=sandbox and self._root,
+                           deny_userns=sandbox)
         return subprocess.Popen(
             [python, "-s", "-B", "-c", boot, *map(str, fds)], cwd=cwd, env=env(cwd), stdin=subprocess.DEVNULL,
             stdout=subprocess.PIPE, stderr=subprocess.PIPE, pass_fds=fds + ((report_fd,) if report_fd else ()),
@@ -271,9 +289,14 @@ class CodeRunner:
             try:
                 proc = self._spawn(python, self._boot_candidate, fds, workdir, uid, sandbox=True, report_fd=rep_w)
             except subprocess.SubprocessError:
-                if not self._mountns:
+                # preexec failed (MountSetupError): run without the PID namespace, then without the
+                # mount namespace too (once each, for this runner), and say so in os_layers
+                if self._pidns:
+                    self._pidns = False
+                elif self._mountns:
+                    self._mountns = False
+                else:
                     raise
-                self._mountns = False  # preexec failed (MountSetupError): run without it, and say so
                 continue
             finally:
                 os.close(rep_w)
@@ -289,7 +312,7 @@ class CodeRunner:
         workdir = tempfile.mkdtemp(prefix="bonft-sandbox-")
         judgedir = tempfile.mkdtemp(prefix="bonft-tests-")
         t0 = time.monotonic()
-        procs: list[tuple[subprocess.Popen, int | None, str]] = []
+        procs: list[tuple[subprocess.Popen, int | None, str, bool]] = []  # (process, uid, directory, has a waiter)
         pipes = [os.pipe() for _ in range(5)]  # judge cfg, verdict, requests, replies, candidate cfg
         (jcfg_r, jcfg_w), (ver_r, ver_w), (req_r, req_w), (rep_r, rep_w), (ccfg_r, ccfg_w) = pipes
         open_fds = {fd for p in pipes for fd in p}
@@ -316,45 +339,67 @@ class CodeRunner:
                 os.chown(judgedir, juid, juid)
             try:
                 judge = self._spawn(python, self._boot_judge, (jcfg_r, ver_w, req_w, rep_r), judgedir, juid, sandbox=False)
-                procs.append((judge, juid, judgedir))
+                procs.append((judge, juid, judgedir, False))
                 close(jcfg_r, ver_w, req_w, rep_r)
                 feed(jcfg_w, {"tests": tests, "frame_cap": _FRAME_CAP, "same_uid": cuid is None})
                 if cuid is None and not await_start(ver_r, t0 + self.wall_time):
                     raise OSError("the tests' process did not start")
                 cand, layers = self._start_candidate(python, workdir, cuid, (ccfg_r, req_r, rep_w))
-                procs.append((cand, cuid, workdir))
+                procs.append((cand, cuid, workdir, "private-pids" in layers))
                 close(ccfg_r, req_r, rep_w)
             except (OSError, subprocess.SubprocessError) as e:
                 return RunResult("crashed", f"runner: could not start {python}: {e}", None, "", "", 0.0, layers)
             feed(ccfg_w, {"solution": solution, "max_processes": self.max_processes, "frame_cap": _FRAME_CAP})
             out, verdict, timed_out, over = collect(
                 judge, cand, ver_r, deadline=t0 + self.wall_time, cap=self.max_output_bytes, frame_cap=_FRAME_CAP,
-                on_candidate_exit=lambda: self._kill(cand, cuid, workdir))
+                on_candidate_exit=lambda: self._kill(*procs[1]))
             if verdict and not over:
                 # both processes end by themselves after a verdict (and a candidate that died during
-                # the tests must report its own exit status): a short wait saves a kill sweep
-                grace = 0.5 if verdict.get("status") == "gone" else 0.1
-                end = min(time.monotonic() + grace, t0 + self.wall_time)
+                # the tests must report its own exit status): a short wait saves a kill sweep. A pass
+                # counts only once the candidate's process has ended normally, so wait up to the deadline.
+                now = time.monotonic()
+                if verdict.get("status") == "pass":
+                    end = max(t0 + self.wall_time, now + 0.5)
+                else:
+                    end = min(now + (0.5 if verdict.get("status") == "gone" else 0.1), t0 + self.wall_time)
                 for proc in (judge, cand):
                     try:
                         proc.wait(timeout=max(0.0, end - time.monotonic()))
                     except subprocess.TimeoutExpired:
                         pass
         finally:
-            for proc, uid, cwd in reversed(procs):
-                self._kill(proc, uid, cwd)
-            rcs = [proc.wait() for proc, _, _ in procs]
+            for entry in reversed(procs):
+                self._kill(*entry)
+            rcs = [entry[0].wait() for entry in procs]
             close(*list(open_fds))
-            shutil.rmtree(workdir, ignore_errors=True)
-            shutil.rmtree(judgedir, ignore_errors=True)
+            left = self._clean(workdir, judgedir)
         wall = time.monotonic() - t0
         stdout = (out["c_out"] + out["j_out"]).decode("utf-8", "replace")
         stderr = (out["c_err"] + out["j_err"]).decode("utf-8", "replace")
         status, reason = classify(verdict, rcs[1], rcs[0], timed_out=timed_out, over=over, wall_time=self.wall_time,
                                   cpu_time=self.cpu_time, file_size_mb=self.file_size_mb)
+        if left:  # what it left could not be removed: this candidate's verdict says so, the batch goes on
+            status, reason = "crashed", f"clean-up failed: {left}" + (f" (verdict was {status})" if status != "crashed" else "")
         return RunResult(status, reason, rcs[1], stdout, stderr, wall, layers)
 
-    def _kill(self, proc: subprocess.Popen, uid: int | None, workdir: str) -> None:
+    @staticmethod
+    def _clean(*dirs: str) -> str | None:
+        """Remove the run's directories (:func:`remove_tree`: no depth limit); None, or what failed."""
+        failed = []
+        for d in dirs:
+            try:
+                remove_tree(d)
+            except Exception as e:  # noqa: BLE001 - one candidate's leftovers never end the batch
+                failed.append(f"{type(e).__name__}: {e}")
+        return "; ".join(failed)[:300] or None
+
+    def _kill(self, proc: subprocess.Popen, uid: int | None, workdir: str, waiter: bool = False) -> None:
+        if waiter:  # a PID namespace: its waiter kills and reaps the namespace's init, then ends itself
+            try:
+                proc.send_signal(signal.SIGTERM)
+                proc.wait(timeout=2.0)
+            except (ProcessLookupError, subprocess.TimeoutExpired):
+                pass
         try:  # the group outlives its leader while members are left
             os.killpg(proc.pid, signal.SIGKILL)
         except (ProcessLookupError, PermissionError):

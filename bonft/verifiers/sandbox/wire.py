@@ -21,9 +21,12 @@ Values, each a JSON list ``[tag, ...]``::
     ["d", [[k, v]...]] dict  ["q", num, den] Fraction (hex ints)         ["D", "1.5"] Decimal
     ["h", ref, "typename"] a reference to an object that stays in the solution's process
 
-Subclasses of these types travel as their base value (a ``Counter`` arrives
-as a ``dict``, an ``int`` subclass as a plain ``int``), numpy scalars as
-their Python value (``numpy.int64(5)`` as ``5``).
+Only these exact types are plain data; a subclass of one of them (``class
+Z(int)``, a ``str`` subclass) is not, and goes to ``ref_of`` like any other
+object. Three standard-library subclasses of ``dict`` travel as a ``dict``
+(``collections.Counter``, ``OrderedDict``, ``defaultdict``: the encoder reads
+their items with ``dict.items``, no method of theirs runs), and numpy's own
+scalar types as their Python value (``numpy.int64(5)`` as ``5``).
 """
 import base64
 import json
@@ -102,48 +105,58 @@ def _hexint(x):
     return hex(x)
 
 
-def wire_encode(value, ref_of, depth=0):
-    """A plain value as its wire form; other objects through ``ref_of(obj) -> [\"h\", ref, type]``."""
+def wire_encode(value, ref_of, depth=0, budget=None):
+    """A plain value as its wire form; any other object through ``ref_of(obj) -> [\"h\", ref, type]``
+    (which may raise instead). Exact types only: see the module docstring. Raises ValueError past
+    :data:`WIRE_MAX_DEPTH` levels or :data:`WIRE_MAX_NODES` parts."""
+    if budget is None:
+        budget = [WIRE_MAX_NODES]
+    budget[0] -= 1
+    if budget[0] < 0:
+        raise ValueError("value has more than %d parts" % WIRE_MAX_NODES)
     if depth > WIRE_MAX_DEPTH:
         raise ValueError("value nested deeper than %d levels" % WIRE_MAX_DEPTH)
     d = depth + 1
+    t = type(value)
     if value is None:
         return ["N"]
-    if value is True or value is False:
+    if t is bool:
         return ["b", value]
-    if isinstance(value, int):
-        return ["i", _hexint(int.__index__(value))]
-    if isinstance(value, float):
-        return ["f", float.hex(float.__float__(value))]
-    if isinstance(value, complex):
-        c = complex.__complex__(value) if hasattr(complex, "__complex__") else complex(value.real, value.imag)
-        return ["c", float.hex(c.real), float.hex(c.imag)]
-    if isinstance(value, str):
-        return ["s", str.__str__(value)]
-    if isinstance(value, bytearray):
+    if t is int:
+        return ["i", _hexint(value)]
+    if t is float:
+        return ["f", float.hex(value)]
+    if t is complex:
+        return ["c", float.hex(value.real), float.hex(value.imag)]
+    if t is str:
+        return ["s", value]
+    if t is bytearray:
         return ["Y", base64.b64encode(bytes(value)).decode("ascii")]
-    if isinstance(value, bytes):
-        return ["y", base64.b64encode(bytes(value)).decode("ascii")]
-    if isinstance(value, list):
-        return ["l", [wire_encode(v, ref_of, d) for v in list.__iter__(value)]]
-    if isinstance(value, tuple):
-        return ["t", [wire_encode(v, ref_of, d) for v in tuple.__iter__(value)]]
-    if isinstance(value, dict):
-        return ["d", [[wire_encode(k, ref_of, d), wire_encode(v, ref_of, d)] for k, v in dict.items(value)]]
-    if isinstance(value, frozenset):
-        return ["F", [wire_encode(v, ref_of, d) for v in frozenset.__iter__(value)]]
-    if isinstance(value, set):
-        return ["S", [wire_encode(v, ref_of, d) for v in set.__iter__(value)]]
+    if t is bytes:
+        return ["y", base64.b64encode(value).decode("ascii")]
+    if t is list:
+        return ["l", [wire_encode(v, ref_of, d, budget) for v in list.__iter__(value)]]
+    if t is tuple:
+        return ["t", [wire_encode(v, ref_of, d, budget) for v in tuple.__iter__(value)]]
+    if t is frozenset:
+        return ["F", [wire_encode(v, ref_of, d, budget) for v in frozenset.__iter__(value)]]
+    if t is set:
+        return ["S", [wire_encode(v, ref_of, d, budget) for v in set.__iter__(value)]]
     import sys
 
+    collections = sys.modules.get("collections")
+    if t is dict or (collections is not None and t in (collections.Counter, collections.OrderedDict,
+                                                       collections.defaultdict)):
+        return ["d", [[wire_encode(k, ref_of, d, budget), wire_encode(v, ref_of, d, budget)]
+                      for k, v in dict.items(value)]]
     fractions, decimal, numpy = sys.modules.get("fractions"), sys.modules.get("decimal"), sys.modules.get("numpy")
-    if numpy is not None and isinstance(value, numpy.generic):  # a numpy scalar: its Python value
-        item = value.item()
-        if not isinstance(item, numpy.generic):
-            return wire_encode(item, ref_of, d)
-    if fractions is not None and isinstance(value, fractions.Fraction):
-        return ["q", _hexint(int(value.numerator)), _hexint(int(value.denominator))]
-    if decimal is not None and isinstance(value, decimal.Decimal):
+    if numpy is not None and t in set(getattr(numpy, "sctypeDict", {}).values()):
+        item = value.item()  # numpy's own scalar type: its Python value, itself checked as plain data
+        if type(item) in (bool, int, float, complex, bytes, str):
+            return wire_encode(item, ref_of, d, budget)
+    if fractions is not None and t is fractions.Fraction:
+        return ["q", _hexint(int.__index__(value.numerator)), _hexint(int.__index__(value.denominator))]
+    if decimal is not None and t is decimal.Decimal:
         return ["D", str(decimal.Decimal.__str__(value))]
     return ref_of(value)
 
