@@ -96,11 +96,19 @@ def best_of_k_credit(scores, rewards, *, k, baseline="loo"):
     """
     kind = out_kind(rewards, scores)
     s, R = scored_pool(scores, rewards)
+    return finish(_best_of_k_credit_host(s, R, k=k, baseline=baseline)[0], kind)
+
+
+def _best_of_k_credit_host(s: np.ndarray, R: np.ndarray, *, k, baseline: str) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`best_of_k_credit` of checked float64 host pools (B, n), with the pool U-statistic (B,) it gets on the way.
+
+    For the losses, which check the pools once against the log-probs: ``k`` and ``baseline`` are checked here.
+    """
     k = check_k(k, s.shape[1])
     check_choice("baseline", baseline, ("loo", "none"))
     if baseline == "loo":
         check_loo_pool(s.shape[1], "best_of_k_credit")
-    return finish(_best_of_k_core(s, R, k, baseline)[0], kind)
+    return _best_of_k_core(s, R, k, baseline)
 
 
 def pool_value(scores, rewards, *, k):
@@ -165,7 +173,12 @@ def pass_at_k_credit(correct, *, k, estimator="unbiased", positive_only=False):
     Code"; Walder & Karkhanis 2025; Chow et al. 2024.
     """
     kind = out_kind(correct)
-    c = correct_pool(correct)
+    return finish(_pass_at_k_credit_host(correct_pool(correct), k=k, estimator=estimator, positive_only=positive_only),
+                  kind)
+
+
+def _pass_at_k_credit_host(c: np.ndarray, *, k, estimator: str, positive_only: bool) -> np.ndarray:
+    """:func:`pass_at_k_credit` of a checked 0/1 float64 host pool (B, n); the options are checked here."""
     k = check_k(k, c.shape[1])
     check_choice("estimator", estimator, ("unbiased", "plugin"))
     check_bool("positive_only", positive_only)
@@ -174,7 +187,7 @@ def pass_at_k_credit(correct, *, k, estimator="unbiased", positive_only=False):
             "n must be >= 2 for pass_at_k_credit (n=1: the unbiased credit's baseline leaves the only sample out "
             "and the plug-in credit is identically 0); draw n >= 2 samples per prompt or use "
             "best_of_k_credit(correct, correct, k=1, baseline='none')")
-    return finish(_pass_at_k_core(c, k, estimator, positive_only), kind)
+    return _pass_at_k_core(c, k, estimator, positive_only)
 
 
 def best_of_k_sft_credit(scores, reference_scores, *, k, smoothing=1.0):
@@ -238,11 +251,15 @@ def reinforce_credit(rewards, *, baseline="loo"):
     References: Kool et al. 2019, "Buy 4 REINFORCE samples, get a baseline for free!".
     """
     kind = out_kind(rewards)
-    R = as_host("rewards", rewards, ndim=2)
+    return finish(_reinforce_credit_host(as_host("rewards", rewards, ndim=2), baseline=baseline), kind)
+
+
+def _reinforce_credit_host(R: np.ndarray, *, baseline: str) -> np.ndarray:
+    """:func:`reinforce_credit` of checked float64 host rewards (B, n); ``baseline`` is checked here."""
     check_choice("baseline", baseline, ("loo", "none"))
     if baseline == "loo":
         check_loo_pool(R.shape[1], "reinforce_credit")
-    return finish(_reinforce_core(R, baseline), kind)
+    return _reinforce_core(R, baseline)
 
 
 # ----------------------------------------------------------------------------

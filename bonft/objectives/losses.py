@@ -105,13 +105,13 @@ import numpy as np
 import torch
 from torch import Tensor
 
-from bonft._core.checks import is_tensor
+from bonft._core.checks import check_binary, is_tensor
+from bonft._core.passk import pass_at_k_counts
 from bonft.objectives.credit import (
-    best_of_k_credit,
+    _best_of_k_credit_host,
+    _pass_at_k_credit_host,
+    _reinforce_credit_host,
     best_of_k_sft_credit,
-    pass_at_k_credit,
-    pool_value,
-    reinforce_credit,
 )
 from bonft.objectives.validation import (
     LossOptions,
@@ -164,7 +164,11 @@ def policy_gradient_loss(logprobs, credit, **common):
     Kool et al. 2019 (leave-one-out baselines); Schulman et al. 2017
     (the clipped surrogate).
     """
-    opt = LossOptions.from_keywords("policy_gradient_loss", common)
+    return _policy_gradient_loss(logprobs, credit, LossOptions.from_keywords("policy_gradient_loss", common))
+
+
+def _policy_gradient_loss(logprobs, credit, opt: LossOptions):
+    """:func:`policy_gradient_loss` with its options checked (the named losses check them under their own name)."""
     lp = check_logprobs("logprobs", logprobs, seq_ndim=2)
     mask = check_mask("mask", opt.mask, "logprobs", lp, seq_ndim=2)
     if opt.check_tokens:
@@ -178,7 +182,7 @@ def policy_gradient_loss(logprobs, credit, **common):
     else:
         m, weighted = _Mask(mask, lp.dtype), None if opt.check_tokens else w
         loss, info, checked = _policy_gradient(lp, w, m, opt, fast=True)
-        if bool((~torch.isfinite(checked).all()) | empty_rows(mask, weighted).any()):  # the one read
+        if bool((~torch.isfinite(checked).all()) | empty_rows(m.weights, weighted, zero_one=True).any()):  # the one read
             check_empty_rows("mask", mask, weighted)  # an empty row with credit: a ValueError
             loss, info, _ = _policy_gradient(lp, w, m, opt, fast=False)  # NaN or an infinity: where
     return (loss, info) if opt.return_info else loss
@@ -374,15 +378,11 @@ def _host_pool(logprobs, **arrays) -> list[np.ndarray]:
 
 
 def _with_pool_value(out, value):
-    """Add ``pool_value`` (mean over prompts of ``value()``, (B,)) to the info of a ``(loss, info)`` pair."""
+    """Add ``pool_value`` (mean over prompts of ``value()``, a (B,) host array) to the info of a ``(loss, info)`` pair."""
     if not isinstance(out, tuple):
         return out
     loss, info = out
-    v = value()
-    if is_tensor(v):
-        info["pool_value"] = v.detach().to(torch.float64).mean()
-    else:
-        info["pool_value"] = torch.tensor(float(np.mean(v)), dtype=torch.float64)
+    info["pool_value"] = torch.tensor(float(np.mean(value())), dtype=torch.float64)
     return loss, info
 
 
@@ -411,10 +411,10 @@ def best_of_k_loss(logprobs, scores, rewards, *, k, baseline="loo", **common):
     References: Chow et al. 2024, "Inference-Aware Fine-Tuning for Best-of-N
     Sampling in LLMs"; Kool et al. 2019.
     """
-    LossOptions.from_keywords("best_of_k_loss", common)  # option errors name this loss, before any work
+    opt = LossOptions.from_keywords("best_of_k_loss", common)  # option errors name this loss, before any work
     s, R = _host_pool(logprobs, scores=scores, rewards=rewards)
-    credit = best_of_k_credit(s, R, k=k, baseline=baseline)
-    return _with_pool_value(policy_gradient_loss(logprobs, credit, **common), lambda: pool_value(s, R, k=k))
+    credit, value = _best_of_k_credit_host(s, R, k=k, baseline=baseline)  # one pass gives both
+    return _with_pool_value(_policy_gradient_loss(logprobs, credit, opt), lambda: value)
 
 
 def pass_at_k_loss(logprobs, correct, *, k, estimator="unbiased", positive_only=False, **common):
@@ -440,10 +440,13 @@ def pass_at_k_loss(logprobs, correct, *, k, estimator="unbiased", positive_only=
     References: Chen et al. 2021, "Evaluating Large Language Models Trained
     on Code"; Walder & Karkhanis 2025.
     """
-    LossOptions.from_keywords("pass_at_k_loss", common)  # option errors name this loss, before any work
+    opt = LossOptions.from_keywords("pass_at_k_loss", common)  # option errors name this loss, before any work
     (c,) = _host_pool(logprobs, correct=correct)
-    credit = pass_at_k_credit(c, k=k, estimator=estimator, positive_only=positive_only)
-    return _with_pool_value(policy_gradient_loss(logprobs, credit, **common), lambda: pool_value(c, c, k=k))
+    check_binary("correct", c)
+    credit = _pass_at_k_credit_host(c, k=k, estimator=estimator, positive_only=positive_only)
+    n = c.shape[1]  # Chen et al. 2021's 1 - C(n-c, k)/C(n, k) of each pool (k was checked with the credit)
+    return _with_pool_value(_policy_gradient_loss(logprobs, credit, opt),
+                            lambda: pass_at_k_counts(n, c.sum(-1).astype(np.int64), int(k)))
 
 
 def reinforce_loss(logprobs, rewards, *, baseline="loo", **common):
@@ -461,10 +464,10 @@ def reinforce_loss(logprobs, rewards, *, baseline="loo", **common):
 
     References: Kool et al. 2019, "Buy 4 REINFORCE samples, get a baseline for free!".
     """
-    LossOptions.from_keywords("reinforce_loss", common)  # option errors name this loss, before any work
+    opt = LossOptions.from_keywords("reinforce_loss", common)  # option errors name this loss, before any work
     (R,) = _host_pool(logprobs, rewards=rewards)
-    credit = reinforce_credit(R, baseline=baseline)
-    return _with_pool_value(policy_gradient_loss(logprobs, credit, **common), lambda: R.mean(-1))
+    credit = _reinforce_credit_host(R, baseline=baseline)
+    return _with_pool_value(_policy_gradient_loss(logprobs, credit, opt), lambda: R.mean(-1))
 
 
 def best_of_k_sft_loss(logprobs, scores, reference_logprobs, reference_scores, *, k, smoothing=1.0,
@@ -507,7 +510,7 @@ def best_of_k_sft_loss(logprobs, scores, reference_logprobs, reference_scores, *
     ref_opt = LossOptions(mask=reference_mask, token_reduction=opt.token_reduction, reduction=opt.reduction,
                           check_tokens=opt.check_tokens)
     ref_loss, _ = _nll("reference_logprobs", ref, "reference_mask", ref_opt)
-    out = policy_gradient_loss(logprobs, credit, **common)
+    out = _policy_gradient_loss(logprobs, credit, opt)
     if not opt.return_info:
         return out + ref_loss
     loss, info = out
@@ -554,7 +557,7 @@ def _nll(name: str, lp: Tensor, mask_name: str, opt: LossOptions) -> tuple[Tenso
         check_token_values(name, lp, mask_name, opt.mask, mask)
     m = _Mask(mask, lp.dtype) if mask is not None else None
     seq = _masked_sum(lp, m, fast=True, seq_ndim=1)
-    if m is not None and bool((~torch.isfinite(seq).all()) | empty_rows(mask, None).any()):  # the one read
+    if m is not None and bool((~torch.isfinite(seq).all()) | empty_rows(m.weights, None, zero_one=True).any()):  # the one read
         check_empty_rows(mask_name, mask, None)
         seq = _masked_sum(lp, m, seq_ndim=1)  # NaN or an infinity in the padding: recomputed with where
     if opt.token_reduction == "mean":
