@@ -39,7 +39,7 @@ def test_builtin_task_keeps_the_exact_checker_beside_its_proxy():
 
 
 def test_user_function_verifier_is_the_default_eval_verifier_and_must_give_0_1(tmp_path, monkeypatch):
-    (tmp_path / "jar_grader.py").write_text(
+    (tmp_path / "shelf_grader_roles.py").write_text(
         "def grade(prompts, responses, rows):\n"
         "    return [float(r.strip() == row['ans']) for r, row in zip(responses, rows)]\n"
         "def closeness(prompts, responses, rows):\n"
@@ -47,18 +47,19 @@ def test_user_function_verifier_is_the_default_eval_verifier_and_must_give_0_1(t
     monkeypatch.chdir(tmp_path)
     monkeypatch.syspath_prepend(str(tmp_path))
     task = user_task(tmp_path)  # 'ans' is an extra column here, not an answer_field: no exact checker
-    roles = build_roles(task, task.examples, verifier="jar_grader:grade")
-    assert roles.eval_verifier is roles.verifier and roles.eval_is_verifier and roles.eval_verifier_name == "jar_grader:grade"
-    assert list(roles.evaluation_verifiers()) == ["jar_grader:grade"]
+    roles = build_roles(task, task.examples, verifier="shelf_grader_roles:grade")
+    assert roles.eval_verifier is roles.verifier and roles.eval_is_verifier and roles.eval_verifier_name == "shelf_grader_roles:grade"
+    assert list(roles.evaluation_verifiers()) == ["shelf_grader_roles:grade"]
     assert list(roles.verifier(["jars: 3 + 5", "jars: 2 + 2"], ["8", "5"])) == [1.0, 0.0]
     check_eval_rewards(np.array([[0.0, 1.0], [1.0, 1.0]]), roles)
-    soft = build_roles(task, task.examples, verifier="jar_grader:closeness")
-    with pytest.raises(ValueError, match=r"eval_verifier must be set: the verifier 'jar_grader:closeness' is the default evaluation verifier "
+    soft = build_roles(task, task.examples, verifier="shelf_grader_roles:closeness")
+    with pytest.raises(ValueError, match=r"eval_verifier must be set: the verifier 'shelf_grader_roles:closeness' is the default evaluation verifier "
                                          r"but gave rewards other than 0 and 1 \(1 of 2, e.g. 0.5\)"):
         check_eval_rewards(np.array(soft.verifier(["jars: 3 + 5", "jars: 2 + 2"], ["8", "5"])), soft)
-    named = build_roles(task, task.examples, verifier="jar_grader:closeness", eval_verifier="unit_tests", eval_verifier_params={"wall_time": 3.0})
+    named = build_roles(task, task.examples, verifier="shelf_grader_roles:closeness", eval_verifier="unit_tests",
+                        eval_verifier_params={"wall_time": 3.0})
     assert isinstance(named.eval_verifier, CodeRunner) and not named.eval_is_verifier
-    assert list(named.evaluation_verifiers()) == ["unit_tests", "jar_grader:closeness"]
+    assert list(named.evaluation_verifiers()) == ["unit_tests", "shelf_grader_roles:closeness"]
     assert named.eval_verifier(["jars: 2 + 2", "jars: 3 + 5"], ["def jars(): return 4", "def jars(): return 4"]).scores.tolist() == [1.0, 0.0]
     check_eval_rewards(np.array([0.3]), named)  # an evaluation verifier named by the user is not held to 0/1
 
