@@ -288,8 +288,8 @@ def test_default_path_reads_one_bool_per_mask_on_the_host():
     # A device sync happens when Python reads a tensor's value (bool, float, int, item, tolist,
     # numpy, nonzero). With host scores/rewards the default path reads exactly one bool per mask
     # (the all-zero-row check and the finiteness test of the fast path, together) and nothing
-    # without a mask; NaN or an infinity in the padding costs one more read per mask (the where
-    # path's row check); check_tokens=True is the opt-in for more.
+    # without a mask; NaN or an infinity in the padding costs two more reads per mask (the exact
+    # row check, then the finiteness test that sends it to where); check_tokens=True reads more.
     from torch.overrides import TorchFunctionMode
 
     from bonft.objectives.losses import policy_gradient_loss
@@ -330,11 +330,11 @@ def test_default_path_reads_one_bool_per_mask_on_the_host():
                 loss.backward()
                 assert torch.isfinite(loss) and all(not v.requires_grad for v in info.values())
                 assert torch.isfinite(lp.grad).all()
-                want = [torch.Tensor.__bool__] * ((masks + nan * with_nan) if tokens else 0)
+                want = [torch.Tensor.__bool__] * ((masks + 2 * nan * with_nan) if tokens else 0)
                 assert mode.seen == want, mode.seen
         with HostReads() as mode:
             nll_loss(lp0[:, 0], mask=mask[:, 0], return_info=True)
-        assert mode.seen == [torch.Tensor.__bool__] * (1 + nan)
+        assert mode.seen == [torch.Tensor.__bool__] * (1 + 2 * nan)
     with HostReads() as mode:  # the opt-in checks read more
         reinforce_loss(lp0, R, mask=mask, check_tokens=True)
     assert len(mode.seen) > 1

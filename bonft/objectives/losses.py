@@ -124,7 +124,6 @@ from bonft.objectives.validation import (
     check_sampling_logprobs,
     check_token_values,
     credit_tensor,
-    empty_rows,
     token_weights,
 )
 
@@ -175,32 +174,48 @@ def _policy_gradient_loss(logprobs, credit, opt: LossOptions):
         check_token_values("logprobs", lp, "mask", opt.mask, mask)
     w = credit_tensor(credit, lp, check_device=opt.check_tokens)
     if mask is None:
-        loss, info, _ = _policy_gradient(lp, w, None, opt, fast=False)
+        loss, info, _, _ = _policy_gradient(lp, w, None, opt, fast=False)
     elif opt.sampling_logprobs is not None:  # sample reuse reads its ratios anyway: the where path, checked first
         check_empty_rows("mask", mask, None if opt.check_tokens else w)
-        loss, info, _ = _policy_gradient(lp, w, _Mask(mask, lp.dtype), opt, fast=False)
+        loss, info, _, _ = _policy_gradient(lp, w, _Mask(mask, lp.dtype), opt, fast=False)
     else:
         m, weighted = _Mask(mask, lp.dtype), None if opt.check_tokens else w
-        loss, info, checked = _policy_gradient(lp, w, m, opt, fast=True)
-        if bool((~torch.isfinite(checked).all()) | empty_rows(m.weights, weighted, zero_one=True).any()):  # the one read
+        loss, info, checked, seq = _policy_gradient(lp, w, m, opt, fast=True)
+        if _needs_a_look(checked, seq, weighted):  # the one read
             check_empty_rows("mask", mask, weighted)  # an empty row with credit: a ValueError
-            loss, info, _ = _policy_gradient(lp, w, m, opt, fast=False)  # NaN or an infinity: where
+            if not bool(torch.isfinite(checked).all()):  # NaN or an infinity: where
+                loss, info, _, _ = _policy_gradient(lp, w, m, opt, fast=False)
     return (loss, info) if opt.return_info else loss
 
 
+def _needs_a_look(checked: Tensor, seq: Tensor, weighted: Tensor | None) -> bool:
+    """One read: is anything in ``checked`` non-finite, or could a row with ``weighted != 0`` be empty?
+
+    An empty row's masked sum is exactly 0, so only rows whose sum is 0 can be empty: testing
+    the (B, n) sums (O(B n)) instead of counting every row's tokens (O(B n T)) leaves the exact
+    count to the rare call where a sum is 0 (a response whose every token had probability 1).
+    """
+    suspect = seq == 0
+    if weighted is not None:
+        suspect = suspect & (weighted != 0)
+    return bool((~torch.isfinite(checked).all()) | suspect.any())
+
+
 def _policy_gradient(lp: Tensor, w: Tensor, m: "_Mask | None", opt: LossOptions, *, fast: bool):
-    """The loss of :func:`policy_gradient_loss` on checked inputs -> ``(loss, info, per_prompt (B,))``.
+    """The loss of :func:`policy_gradient_loss` on checked inputs -> ``(loss, info, checked (B,), sums (B, n))``.
 
     ``fast``: padding is masked by a multiply (exact when it holds finite numbers); otherwise by
     ``where`` (exact whatever it holds). Every non-finite value met on the fast path reaches
-    ``per_prompt`` (``0 * inf`` and ``w * NaN`` are NaN), so one test of it tells whether the
-    ``where`` path is needed.
+    ``checked`` (the per-prompt loss, plus the KL; ``0 * inf`` and ``w * NaN`` are NaN), so one
+    test of it tells whether the ``where`` path is needed. ``sums``: the masked sums of the
+    log-probs, detached (for the empty-row test).
     """
     info: dict[str, Tensor] = {}
     if opt.sampling_logprobs is None:
         seq = _masked_sum(lp, m, fast=fast)  # (B, n)
     else:
         seq = _reweighted_sum(lp, m, w, opt, info)
+    sums = seq.detach()
     seq = _per_token_scale(seq, lp, m, opt.token_reduction)
     per_prompt = -(w * seq).sum(-1)  # (B,)
     checked = per_prompt
@@ -212,11 +227,11 @@ def _policy_gradient(lp: Tensor, w: Tensor, m: "_Mask | None", opt: LossOptions,
         info["kl"] = kl_tok
     loss = _reduce(per_prompt, opt.reduction)
     if not opt.return_info:
-        return loss, None, checked
+        return loss, None, checked, sums
     info["pools_with_signal"] = (w != 0).any(-1).to(w.dtype).mean()
     info["credit_abs_mean"] = w.abs().mean()
     info["masked_frac"] = 1 - m.count().to(w.dtype) / lp.numel() if m is not None else w.new_zeros(())
-    return loss, info, checked
+    return loss, info, checked, sums
 
 
 class _Mask:
@@ -245,10 +260,8 @@ class _Mask:
         return self._bool
 
     def count(self) -> Tensor:
-        """Response tokens, exact (an int64 count of a bool mask, a float64 sum of the weights)."""
-        if self._weights is None and self.mask.dtype == torch.bool:
-            return self.mask.sum()
-        return self.weights.sum(dtype=torch.float64)
+        """Response tokens, exact: each row's count (at most T, exact in any float) summed in float64."""
+        return self.weights.sum(-1).sum(dtype=torch.float64)
 
     def apply(self, x: Tensor) -> Tensor:
         """``x`` where the mask is set, exactly 0 elsewhere whatever ``x`` holds there (``where``)."""
@@ -557,9 +570,10 @@ def _nll(name: str, lp: Tensor, mask_name: str, opt: LossOptions) -> tuple[Tenso
         check_token_values(name, lp, mask_name, opt.mask, mask)
     m = _Mask(mask, lp.dtype) if mask is not None else None
     seq = _masked_sum(lp, m, fast=True, seq_ndim=1)
-    if m is not None and bool((~torch.isfinite(seq).all()) | empty_rows(m.weights, None, zero_one=True).any()):  # the one read
+    if m is not None and _needs_a_look(seq.detach(), seq.detach(), None):  # the one read
         check_empty_rows(mask_name, mask, None)
-        seq = _masked_sum(lp, m, seq_ndim=1)  # NaN or an infinity in the padding: recomputed with where
+        if not bool(torch.isfinite(seq).all()):
+            seq = _masked_sum(lp, m, seq_ndim=1)  # NaN or an infinity in the padding: recomputed with where
     if opt.token_reduction == "mean":
         if lp.ndim == 1:
             raise ValueError(f"token_reduction='mean' needs token log-probs (2 dimensions), "
