@@ -1,0 +1,237 @@
+"""The losses' fast masking (a multiply, with ``where`` only after a non-finite result) against ``where`` masking.
+
+Reference: the masking the losses used before the fast path, restated here on its own in float64:
+padding tokens are taken out with ``torch.where(mask != 0, lp, 0)`` before the sum over tokens, so
+whatever the padding holds (NaN, +-inf) adds exactly 0, and the gradient of
+``-(1/B) sum_b sum_i w_bi seq_bi`` w.r.t. a token log-prob is ``-w_bi/B`` under the mask and 0 on
+padding (the score-function loss of Williams 1992; the k3 KL term of Schulman's 2020 note
+"Approximating KL divergence", from memory). The credits are the public credit functions, which
+the fast path does not change. Property tests (hypothesis, derandomized in conftest.py) draw
+shapes, log-prob dtypes, mask dtypes and values (any non-zero entry marks a token), where NaN and
+infinities sit in the padding, every named loss, token- and sequence-level inputs, both token
+reductions, the anchor KL term and ``return_info``.
+"""
+import numpy as np
+import pytest
+import torch
+from hypothesis import given
+from hypothesis import strategies as st
+
+from bonft.objectives.credit import (
+    best_of_k_credit,
+    best_of_k_sft_credit,
+    pass_at_k_credit,
+    pool_value,
+    reinforce_credit,
+)
+from bonft.objectives.losses import (
+    best_of_k_loss,
+    best_of_k_sft_loss,
+    nll_loss,
+    pass_at_k_loss,
+    policy_gradient_loss,
+    reinforce_loss,
+)
+
+LOSSES = ("reinforce", "pass_at_k", "pass_at_k_plugin", "best_of_k", "best_of_k_sft", "policy_gradient")
+MASK_DTYPES = (torch.bool, torch.float32, torch.float64, torch.int64, torch.uint8)
+PADDING = ("finite", "nan", "-inf", "+inf", "mixed")
+
+
+def where_seq(lp, mask):
+    """The reference masked sum (float64): padding adds exactly 0 whatever it holds."""
+    return torch.where(mask != 0, lp.double(), 0.0).sum(-1)
+
+
+def fill_padding(lp, mask, how, g):
+    """Token log-probs with the padding (mask == 0) holding ``how``."""
+    pad = mask == 0
+    if how == "finite":
+        return torch.where(pad, -50 * torch.rand(lp.shape, generator=g, dtype=lp.dtype), lp)
+    if how == "mixed":
+        pick = torch.randint(0, 3, lp.shape, generator=g)
+        vals = torch.stack([torch.full_like(lp, float("nan")), torch.full_like(lp, -float("inf")),
+                            torch.full_like(lp, float("inf"))])
+        return torch.where(pad, vals.gather(0, pick[None])[0], lp)
+    value = {"nan": float("nan"), "-inf": -float("inf"), "+inf": float("inf")}[how]
+    return torch.where(pad, torch.full_like(lp, value), lp)
+
+
+@st.composite
+def cases(draw):
+    B, n, T = draw(st.integers(1, 4)), draw(st.integers(2, 5)), draw(st.integers(1, 6))
+    seed = draw(st.integers(0, 2**16))
+    return {
+        "B": B, "n": n, "T": T, "seed": seed,
+        "lp_dtype": draw(st.sampled_from((torch.float32, torch.float64))),
+        "mask_dtype": draw(st.sampled_from(MASK_DTYPES)),
+        "padding": draw(st.sampled_from(PADDING)),
+        "loss": draw(st.sampled_from(LOSSES)),
+        "k": draw(st.integers(1, n)),
+        "token_reduction": draw(st.sampled_from(("sum", "mean"))),
+        "reduction": draw(st.sampled_from(("mean", "sum", "none"))),
+        "anchor": draw(st.booleans()),
+        "return_info": draw(st.booleans()),
+        "tokens": draw(st.booleans()),
+    }
+
+
+def make_batch(c):
+    g = torch.Generator().manual_seed(c["seed"])
+    B, n, T = c["B"], c["n"], c["T"]
+    lengths = torch.randint(1, T + 1, (B, n), generator=g)
+    on = torch.arange(T)[None, None] < lengths[..., None]
+    perm = torch.argsort(torch.rand(B, n, T, generator=g), -1)  # tokens need not come first in a row
+    on = on.gather(-1, perm)
+    if c["mask_dtype"] == torch.bool:
+        mask = on
+    elif c["mask_dtype"].is_floating_point:  # any non-zero entry marks a token
+        level = torch.tensor([0.5, 1.0, 2.0, -1.0], dtype=c["mask_dtype"])[torch.randint(0, 4, (B, n, T), generator=g)]
+        mask = torch.where(on, level, 0.0).to(c["mask_dtype"])
+    else:
+        mask = on.to(c["mask_dtype"]) * torch.randint(1, 3, (B, n, T), generator=g).to(c["mask_dtype"])
+    lp = -3 * torch.rand(B, n, T, generator=g, dtype=c["lp_dtype"])
+    lp = fill_padding(lp, mask, c["padding"], g)
+    anchor = fill_padding(lp - 0.3 * torch.rand(B, n, T, generator=g, dtype=c["lp_dtype"]), mask, c["padding"], g)
+    rng = np.random.default_rng(c["seed"])
+    scores = rng.integers(0, 3, (B, n)).astype(float)
+    rewards = (rng.random((B, n)) < 0.5).astype(float)
+    ref_lp = -torch.rand(B, T, generator=g, dtype=c["lp_dtype"])
+    ref_mask = torch.arange(T)[None] < torch.randint(1, T + 1, (B,), generator=g)[:, None]
+    ref_scores = rng.integers(0, 3, B).astype(float)
+    return lp, mask, anchor, scores, rewards, ref_lp, ref_mask, ref_scores
+
+
+def call(c, lp, mask, anchor, scores, rewards, ref_lp, ref_mask, ref_scores, credit):
+    kw = {"reduction": c["reduction"], "return_info": c["return_info"]}
+    if c["tokens"]:
+        kw.update(mask=mask, token_reduction=c["token_reduction"])
+    if c["anchor"]:
+        kw.update(anchor_logprobs=anchor, anchor_weight=0.3)
+    name, k = c["loss"], c["k"]
+    if name == "reinforce":
+        return reinforce_loss(lp, rewards, **kw)
+    if name == "pass_at_k":
+        return pass_at_k_loss(lp, rewards, k=k, **kw)
+    if name == "pass_at_k_plugin":
+        return pass_at_k_loss(lp, rewards, k=k, estimator="plugin", **kw)
+    if name == "best_of_k":
+        return best_of_k_loss(lp, scores, rewards, k=k, **kw)
+    if name == "best_of_k_sft":
+        ref = (ref_lp, {"reference_mask": ref_mask}) if c["tokens"] else (ref_lp.sum(-1), {})
+        return best_of_k_sft_loss(lp, scores, ref[0], ref_scores, k=k, **ref[1], **kw)
+    return policy_gradient_loss(lp, credit, **kw)
+
+
+def reference(c, lp, mask, anchor, scores, rewards, ref_lp, ref_mask, ref_scores, credit):
+    """(per-prompt loss (B,) in float64, gradient w.r.t. lp, info values) by where-masking."""
+    name, k = c["loss"], c["k"]
+    w = {"reinforce": lambda: reinforce_credit(rewards),
+         "pass_at_k": lambda: pass_at_k_credit(rewards, k=k),
+         "pass_at_k_plugin": lambda: pass_at_k_credit(rewards, k=k, estimator="plugin"),
+         "best_of_k": lambda: best_of_k_credit(scores, rewards, k=k),
+         "best_of_k_sft": lambda: best_of_k_sft_credit(scores, ref_scores, k=k),
+         "policy_gradient": lambda: credit}[name]()
+    w = torch.as_tensor(np.asarray(w), dtype=torch.float64)
+    lp64 = lp.detach().double().requires_grad_(True)
+    scale = 1.0
+    if c["tokens"]:
+        seq = where_seq(lp64, mask)
+        if c["token_reduction"] == "mean":
+            scale = seq.numel() / float((mask != 0).sum())
+    else:
+        seq = lp64
+    per_prompt = -(w * seq * scale).sum(-1)
+    info = {}
+    if c["anchor"]:
+        d = anchor.double() - lp64
+        if c["tokens"]:
+            d = torch.where(mask != 0, d, 0.0)
+        k3 = torch.expm1(d) - d
+        kl_seq = k3.sum(-1) * scale if c["tokens"] else k3
+        per_prompt = per_prompt + 0.3 * kl_seq.mean(-1)
+        info["kl"] = float(k3.detach().sum()) / float((mask != 0).sum() if c["tokens"] else k3.numel())
+    if name == "best_of_k_sft":
+        if c["tokens"]:
+            ref_seq = torch.where(ref_mask, ref_lp.double(), 0.0).sum(-1)
+            if c["token_reduction"] == "mean":
+                ref_seq = ref_seq * (ref_seq.numel() / float(ref_mask.sum()))
+        else:
+            ref_seq = ref_lp.double().sum(-1)
+        per_prompt = per_prompt - ref_seq
+    red = {"mean": per_prompt.mean(), "sum": per_prompt.sum(), "none": per_prompt}[c["reduction"]]
+    red.sum().backward()
+    if c["tokens"]:
+        info["masked_frac"] = 1 - float((mask != 0).sum()) / mask.numel()
+    if name == "best_of_k":
+        info["pool_value"] = float(pool_value(scores, rewards, k=k).mean())
+    elif name.startswith("pass_at_k"):
+        info["pool_value"] = float(pool_value(rewards, rewards, k=k).mean())  # Chen et al. 2021 as a U-statistic
+    elif name == "reinforce":
+        info["pool_value"] = float(rewards.mean())
+    return red.detach(), lp64.grad, info
+
+
+@given(cases())
+def test_fast_path_gives_where_masking_results_nan_in_padding_included(c):
+    lp, mask, anchor, scores, rewards, ref_lp, ref_mask, ref_scores = make_batch(c)
+    if not c["tokens"]:  # sequence level: (B, n) log-probs, finite (there is no padding)
+        lp, anchor = where_seq(lp, mask).to(lp.dtype), where_seq(anchor, mask).to(lp.dtype)
+    credit = np.random.default_rng(c["seed"] + 1).normal(size=lp.shape[:2])
+    args = (mask, anchor, scores, rewards, ref_lp, ref_mask, ref_scores, credit)
+    x = lp.clone().requires_grad_(True)
+    out = call(c, x, *args)
+    loss, info = out if c["return_info"] else (out, None)
+    loss.sum().backward()
+    want, want_grad, want_info = reference(c, lp, *args)
+    tol = {"rtol": 1e-5, "atol": 1e-5} if c["lp_dtype"] == torch.float32 else {"rtol": 1e-10, "atol": 1e-10}
+    assert loss.dtype == c["lp_dtype"]
+    torch.testing.assert_close(loss.detach().double(), want, **tol)
+    torch.testing.assert_close(x.grad.double(), want_grad, **tol)
+    assert torch.isfinite(x.grad).all()
+    if c["return_info"]:
+        for key, value in want_info.items():
+            assert float(info[key]) == pytest.approx(value, rel=1e-5, abs=1e-6), key
+
+
+@pytest.mark.parametrize("mask_dtype", MASK_DTYPES)
+@pytest.mark.parametrize("padding", PADDING)
+def test_a_non_finite_log_prob_under_the_mask_still_gives_a_non_finite_loss(mask_dtype, padding):
+    # the fast path's fallback must not hide a bad log-prob of a response token (never hidden)
+    g = torch.Generator().manual_seed(3)
+    lp = -torch.rand(2, 3, 4, generator=g)
+    mask = torch.tensor([1, 1, 0, 0]).repeat(2, 3, 1).to(mask_dtype)
+    lp = fill_padding(lp, mask, padding, g)
+    lp[1, 2, 0] = float("nan")
+    rewards = np.array([[1.0, 0, 0], [0, 1, 0]])
+    assert torch.isnan(reinforce_loss(lp, rewards, mask=mask))
+    assert torch.isnan(nll_loss(lp.view(6, 4), mask=mask.view(6, 4)))
+
+
+@pytest.mark.parametrize("padding", ("finite", "nan"))
+def test_an_empty_row_with_credit_is_an_error_on_both_paths(padding):
+    # an empty row sums to exactly 0 on the fast path: the exact row check runs and names it
+    lp = -torch.rand(2, 3, 4)
+    mask = torch.ones(2, 3, 4, dtype=torch.bool)
+    mask[1, 0] = False
+    lp = fill_padding(lp, mask, padding, torch.Generator().manual_seed(0))
+    rewards = np.array([[1.0, 0, 0], [1.0, 0, 0]])
+    with pytest.raises(ValueError, match=r"mask must mark at least one token per sequence with non-zero credit, "
+                                         r"got an all-zero row at index \(1, 0\)"):
+        reinforce_loss(lp, rewards, mask=mask)
+    rewards[1] = 0.0  # no credit in that row: nothing is lost, no error
+    assert torch.isfinite(reinforce_loss(lp, rewards, mask=mask))
+
+
+def test_a_response_of_certain_tokens_sums_to_zero_and_is_not_an_empty_row():
+    # a row whose log-probs are all 0 (probability 1) sums to 0 like an empty one; the exact count clears it
+    lp = -torch.rand(2, 3, 4)
+    lp[0, 1] = 0.0
+    mask = torch.ones(2, 3, 4)
+    rewards = np.array([[1.0, 0, 0], [1.0, 0, 0]])
+    x = lp.clone().requires_grad_(True)
+    loss = reinforce_loss(x, rewards, mask=mask)
+    loss.backward()
+    w = torch.as_tensor(reinforce_credit(rewards))
+    assert float(loss.detach()) == pytest.approx(float(-(w * lp.double().sum(-1)).sum(-1).mean()), rel=1e-6)
+    torch.testing.assert_close(x.grad, (-w / 2)[..., None].float().expand(2, 3, 4))
