@@ -1,11 +1,13 @@
 """Speed of the estimators and of loading a large samples file, as ratios against baselines in this process.
 
 Goals, interleaved repetitions, medians:
-- best_of_k_per_prompt for every k in 1..1024 on 1000 x 1024 pools <= 2x one np.sort of the (P, n)
-  array, or shown why the floor is higher. The rows printed beside it are that floor: every exact
-  estimator needs the rewards in score order (an argsort and a gather, already 3-4x an np.sort on
-  an AVX-512 machine, where np.sort is vectorised and argsort much less so) and P*K weighted sums
-  (one dense BLAS matmul (P, n) @ (n, K); bonft skips the ranks whose weight is below 2^-60).
+- best_of_k_per_prompt for every k in 1..1024 on 1000 x 1024 pools <= 1.3x its floor, timed in the
+  same process: the sort plus the dense weighted sum that the exact all-k estimator needs, i.e. one
+  np.sort of the (P, n) scores (the rewards must be put in score order) followed by one dense BLAS
+  matmul (P, n) @ (n, K) of the sorted rewards with the (n, K) U-statistic weights (P*K weighted
+  sums). bonft sorts int64 keys that carry each sample's column (one np.sort, no argsort) and skips
+  the ranks whose weight is below 2^-60, so it can beat that floor. The rows beside it: the floor's
+  two parts, and an argsort + gather (what a plain implementation pays instead of the one sort).
 - pass_at_k on vectors of (n, c) <= 2x one np.sort of the vector (same floor question).
 - vectorised best_of_k_per_prompt >= 50x faster than a plain loop over prompts and k with math.comb;
 - a 10^6-row samples file loads and summarises in seconds (absolute figure, printed).
@@ -23,6 +25,7 @@ import time
 import numpy as np
 from _timing import interleaved_medians
 
+from bonft._core.ustat import rank_weights
 from bonft.estimate import best_of_k_per_prompt, pass_at_k, summarize
 from bonft.io import group_pools, read_samples, write_samples
 
@@ -78,28 +81,39 @@ def bench_estimator(P: int, n: int, loop_prompts: int, repeats: int) -> dict:
 
 
 def bench_all_k(P: int, n: int, repeats: int) -> None:
-    """Every k in 1..n against one np.sort of the same array, with the floor rows."""
+    """Every k in 1..n against the floor: one np.sort of the scores plus one dense (P, n) @ (n, K) weighted sum."""
     rng = np.random.default_rng(0)
     S = rng.normal(size=(P, n))
     R = (rng.random((P, n)) < 0.3).astype(float) + 0.1 * S
     ks = list(range(1, n + 1))
-    W = rng.random((n, n))
+    W = np.ascontiguousarray(rank_weights(n, ks).T)  # (n, K) the exact weights C(i, k-1)/C(n, k), dense
     r_sorted = np.take_along_axis(R, np.argsort(S, axis=1), 1)
-    best_of_k_per_prompt(S, R, ks=ks)  # the weights of (n, ks) are cached after the first call
+    err = float(np.abs(best_of_k_per_prompt(S, R, ks=ks) - r_sorted @ W).max())  # also caches bonft's weights
+
+    def floor():
+        np.sort(S, axis=1)
+        return r_sorted @ W
+
     fns = {
-        "one np.sort of (P, n) (baseline)": lambda: np.sort(S, axis=1),
-        "floor: np.argsort + gather": lambda: np.take_along_axis(R, np.argsort(S, axis=1), 1),
-        "floor: dense matmul (P,n)@(n,K)": lambda: r_sorted @ W,
+        "floor: np.sort + dense matmul": floor,
+        "  of which one np.sort of (P, n)": lambda: np.sort(S, axis=1),
+        "  of which dense matmul (P,n)@(n,K)": lambda: r_sorted @ W,
+        "np.argsort + gather (instead of the sort)": lambda: np.take_along_axis(R, np.argsort(S, axis=1), 1),
         "best_of_k_per_prompt, all k": lambda: best_of_k_per_prompt(S, R, ks=ks),
     }
-    t = interleaved_medians(fns, repeats)
-    base = t["one np.sort of (P, n) (baseline)"]
+    wall = interleaved_medians(fns, repeats)
+    cpu = interleaved_medians(fns, repeats, clock=time.process_time)  # counts BLAS helper threads too
     print(f"best-of-k for every k in 1..{n}: {P} prompts x {n} samples, median of {repeats} interleaved")
-    for name, v in t.items():
-        print(f"  {name:36s} {v * 1e3:9.2f} ms  {v / base:6.2f}x")
-    ratio = t["best_of_k_per_prompt, all k"] / base
-    print(f"  best_of_k_per_prompt / np.sort = {ratio:.2f}x (goal <= 2x: {'met' if ratio <= 2 else 'NOT met'}; "
-          f"the argsort + gather floor alone is {t['floor: np.argsort + gather'] / base:.2f}x)")
+    for name in fns:
+        print(f"  {name:42s} {wall[name] * 1e3:9.2f} ms  {wall[name] / wall['floor: np.sort + dense matmul']:6.2f}x"
+              f" {cpu[name] * 1e3:9.2f} ms CPU  {cpu[name] / cpu['floor: np.sort + dense matmul']:6.2f}x")
+    ratio = wall["best_of_k_per_prompt, all k"] / wall["floor: np.sort + dense matmul"]
+    ratio_cpu = cpu["best_of_k_per_prompt, all k"] / cpu["floor: np.sort + dense matmul"]
+    worst = max(ratio, ratio_cpu)
+    print(f"  best_of_k_per_prompt / floor = {ratio:.2f}x wall, {ratio_cpu:.2f}x CPU (goal <= 1.3x: "
+          f"{'met' if worst <= 1.3 else 'NOT met'}); one np.sort alone: "
+          f"{wall['best_of_k_per_prompt, all k'] / wall['  of which one np.sort of (P, n)']:.2f}x; "
+          f"max |bonft - dense floor| = {err:.1e}")
 
 
 def bench_pass_at_k(N: int, repeats: int) -> None:
