@@ -260,8 +260,8 @@ class _Mask:
         return self._bool
 
     def count(self) -> Tensor:
-        """Response tokens, exact: each row's count (at most T, exact in any float) summed in float64."""
-        return self.weights.sum(-1).sum(dtype=torch.float64)
+        """Response tokens as an int64 tensor, exact: each row's count (at most T, exact in any float), summed as int64."""
+        return self.weights.sum(-1).to(torch.int64).sum()
 
     def apply(self, x: Tensor) -> Tensor:
         """``x`` where the mask is set, exactly 0 elsewhere whatever ``x`` holds there (``where``)."""
