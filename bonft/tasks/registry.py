@@ -10,11 +10,13 @@ from bonft.tasks.prompts import PromptFileTask
 from bonft.tasks.refunds import RefundsTask
 from bonft.tasks.restock import RestockTask
 from bonft.tasks.user import UserTask
+from bonft.tasks.workshop import WorkshopTask
 
 TASKS: dict[str, type] = {
     "ledger": LedgerTask,
     "restock": RestockTask,
     "refunds": RefundsTask,
+    "workshop": WorkshopTask,
     "jsonl": PromptFileTask,
     "user": UserTask,
 }
