@@ -284,9 +284,9 @@ def test_bad_input_messages():
         reinforce_loss(torch.zeros(2, 3), s, mask=torch.ones(2, 3))
 
 
-def test_default_path_reads_one_bool_per_mask_on_the_host():
+def test_default_path_reads_once_per_mask_on_the_host():
     # A device sync happens when Python reads a tensor's value (bool, float, int, item, tolist,
-    # numpy, nonzero). With host scores/rewards the default path reads exactly one bool per mask
+    # numpy, nonzero). With host scores/rewards the default path reads exactly once per mask
     # (the all-zero-row check and the finiteness test of the fast path, together) and nothing
     # without a mask; NaN or an infinity in the padding costs two more reads per mask (the exact
     # row check, then the finiteness test that sends it to where); check_tokens=True reads more.
@@ -330,11 +330,10 @@ def test_default_path_reads_one_bool_per_mask_on_the_host():
                 loss.backward()
                 assert torch.isfinite(loss) and all(not v.requires_grad for v in info.values())
                 assert torch.isfinite(lp.grad).all()
-                want = [torch.Tensor.__bool__] * ((masks + 2 * nan * with_nan) if tokens else 0)
-                assert mode.seen == want, mode.seen
+                assert len(mode.seen) == ((masks + 2 * nan * with_nan) if tokens else 0), mode.seen
         with HostReads() as mode:
             nll_loss(lp0[:, 0], mask=mask[:, 0], return_info=True)
-        assert mode.seen == [torch.Tensor.__bool__] * (1 + 2 * nan)
+        assert len(mode.seen) == 1 + 2 * nan, mode.seen
     with HostReads() as mode:  # the opt-in checks read more
         reinforce_loss(lp0, R, mask=mask, check_tokens=True)
     assert len(mode.seen) > 1

@@ -101,6 +101,8 @@ sandbox.
 """
 from __future__ import annotations
 
+import math
+
 import numpy as np
 import torch
 from torch import Tensor
@@ -180,35 +182,44 @@ def _policy_gradient_loss(logprobs, credit, opt: LossOptions):
         loss, info, _, _ = _policy_gradient(lp, w, _Mask(mask, lp.dtype), opt, fast=False)
     else:
         m, weighted = _Mask(mask, lp.dtype), None if opt.check_tokens else w
-        loss, info, checked, seq = _policy_gradient(lp, w, m, opt, fast=True)
-        if _needs_a_look(checked, seq, weighted):  # the one read
+        loss, info, checked, terms = _policy_gradient(lp, w, m, opt, fast=True)
+        if opt.check_tokens:  # every row must hold a token: compare the sums themselves with their count
+            terms, nonzero = terms[1], terms[1].numel()
+        else:  # rows with credit: w * sum is 0 where the sum is 0 or there is no credit
+            terms = terms[0]
+            nonzero = int(np.count_nonzero(credit)) if isinstance(credit, np.ndarray) else torch.count_nonzero(w)
+        if _needs_a_look(checked, terms, nonzero):  # the one read
             check_empty_rows("mask", mask, weighted)  # an empty row with credit: a ValueError
             if not bool(torch.isfinite(checked).all()):  # NaN or an infinity: where
                 loss, info, _, _ = _policy_gradient(lp, w, m, opt, fast=False)
     return (loss, info) if opt.return_info else loss
 
 
-def _needs_a_look(checked: Tensor, seq: Tensor, weighted: Tensor | None) -> bool:
-    """One read: is anything in ``checked`` non-finite, or could a row with ``weighted != 0`` be empty?
+def _needs_a_look(checked: Tensor, terms: Tensor, nonzero) -> bool:
+    """One read: is anything in ``checked`` non-finite, or could a row that must hold a token be empty?
 
-    An empty row's masked sum is exactly 0, so only rows whose sum is 0 can be empty: testing
-    the (B, n) sums (O(B n)) instead of counting every row's tokens (O(B n T)) leaves the exact
-    count to the rare call where a sum is 0 (a response whose every token had probability 1).
+    An empty row's masked sum is exactly 0, so only rows whose sum is 0 can be empty: ``terms``
+    (B, n) are the sums (or credit x sum) and ``nonzero`` (an int or a 0-dim tensor) how many of
+    them are non-zero when no row that matters sums to 0. Testing these (O(B n)) instead of
+    counting every row's tokens (O(B n T)) leaves the exact count to the rare call where a term is
+    0 (a response whose every token had probability 1, or a product that underflows). A
+    non-finite value anywhere makes the sum of ``checked`` non-finite (as may a finite overflow:
+    then the exact path runs for nothing and gives the same result).
     """
-    suspect = seq == 0
-    if weighted is not None:
-        suspect = suspect & (weighted != 0)
-    return bool((~torch.isfinite(checked).all()) | suspect.any())
+    both = torch.stack((checked.sum().double(), (torch.count_nonzero(terms) - nonzero).double()))
+    total, missing = both.tolist()
+    return missing != 0 or not math.isfinite(total)
 
 
 def _policy_gradient(lp: Tensor, w: Tensor, m: "_Mask | None", opt: LossOptions, *, fast: bool):
-    """The loss of :func:`policy_gradient_loss` on checked inputs -> ``(loss, info, checked (B,), sums (B, n))``.
+    """The loss of :func:`policy_gradient_loss` on checked inputs -> ``(loss, info, checked (B,), (w x sums, sums))``.
 
     ``fast``: padding is masked by a multiply (exact when it holds finite numbers); otherwise by
     ``where`` (exact whatever it holds). Every non-finite value met on the fast path reaches
     ``checked`` (the per-prompt loss, plus the KL; ``0 * inf`` and ``w * NaN`` are NaN), so one
     test of it tells whether the ``where`` path is needed. ``sums``: the masked sums of the
-    log-probs, detached (for the empty-row test).
+    log-probs and ``w x sums`` the credit-weighted terms, (B, n) each, detached (for the
+    empty-row test).
     """
     info: dict[str, Tensor] = {}
     if opt.sampling_logprobs is None:
@@ -217,7 +228,8 @@ def _policy_gradient(lp: Tensor, w: Tensor, m: "_Mask | None", opt: LossOptions,
         seq = _reweighted_sum(lp, m, w, opt, info)
     sums = seq.detach()
     seq = _per_token_scale(seq, lp, m, opt.token_reduction)
-    per_prompt = -(w * seq).sum(-1)  # (B,)
+    prod = w * seq
+    per_prompt = -prod.sum(-1)  # (B,)
     checked = per_prompt
     if opt.anchor_logprobs is not None:
         kl_b, kl_tok = _anchor_kl(lp, m, opt, fast=fast)
@@ -227,11 +239,11 @@ def _policy_gradient(lp: Tensor, w: Tensor, m: "_Mask | None", opt: LossOptions,
         info["kl"] = kl_tok
     loss = _reduce(per_prompt, opt.reduction)
     if not opt.return_info:
-        return loss, None, checked, sums
+        return loss, None, checked, (prod.detach(), sums)
     info["pools_with_signal"] = (w != 0).any(-1).to(w.dtype).mean()
     info["credit_abs_mean"] = w.abs().mean()
     info["masked_frac"] = 1 - m.count().to(w.dtype) / lp.numel() if m is not None else w.new_zeros(())
-    return loss, info, checked, sums
+    return loss, info, checked, (prod.detach(), sums)
 
 
 class _Mask:
@@ -570,7 +582,7 @@ def _nll(name: str, lp: Tensor, mask_name: str, opt: LossOptions) -> tuple[Tenso
         check_token_values(name, lp, mask_name, opt.mask, mask)
     m = _Mask(mask, lp.dtype) if mask is not None else None
     seq = _masked_sum(lp, m, fast=True, seq_ndim=1)
-    if m is not None and _needs_a_look(seq.detach(), seq.detach(), None):  # the one read
+    if m is not None and _needs_a_look(seq.detach(), seq.detach(), seq.numel()):  # the one read
         check_empty_rows(mask_name, mask, None)
         if not bool(torch.isfinite(seq).all()):
             seq = _masked_sum(lp, m, seq_ndim=1)  # NaN or an infinity in the padding: recomputed with where
