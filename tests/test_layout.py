@@ -200,6 +200,20 @@ def test_package_init_only_re_exports(package):
         docstring = isinstance(node, ast.Expr) and isinstance(node.value, ast.Constant)
         all_list = isinstance(node, ast.Assign) and [t.id for t in node.targets if isinstance(t, ast.Name)] == ["__all__"]
         assert docstring or all_list or isinstance(node, (ast.ImportFrom, ast.Import)), (package, ast.dump(node)[:80])
+    names = {a.asname or a.name for node in tree.body if isinstance(node, ast.ImportFrom) for a in node.names}
+    exported = [ast.literal_eval(n.value) for n in tree.body if isinstance(n, ast.Assign)]
+    if names - {"annotations"}:  # a package that re-exports lists exactly that in __all__
+        assert exported and sorted(exported[0]) == sorted(names - {"annotations"}), "__all__ lists what is imported"
+
+
+def test_steps_holds_only_the_two_steps():
+    tree = ast.parse(MODULES["bonft.trainer.steps"].read_text())
+    public = sorted(n.name for n in tree.body if isinstance(n, (ast.FunctionDef, ast.ClassDef)) and not n.name.startswith("_"))
+    assert public == ["rl_step", "sft_step"]
+    loop = ast.parse(MODULES["bonft.trainer.loop"].read_text())
+    from_steps = [a.name for n in loop.body if isinstance(n, ast.ImportFrom) and n.module == "bonft.trainer.steps"
+                  for a in n.names]
+    assert from_steps == []  # the loop calls steps.rl_step: a test replaces it where it is defined
 
 
 # ---------------------------------------------------------------- one calling convention
