@@ -337,7 +337,7 @@ class LossOptions:
     @classmethod
     def from_keywords(cls, where: str, common: dict, *, refused: tuple[str, ...] = ()) -> "LossOptions":
         """Options from ``**common`` of the function ``where``; unknown keys and ``refused`` ones are errors."""
-        known = {f.name for f in dataclasses.fields(cls)}
+        known = _OPTION_NAMES
         for key in common:
             if key not in known:
                 raise TypeError(f"{where} got an unexpected keyword argument {key!r}; the shared options are "
@@ -347,3 +347,6 @@ class LossOptions:
                 got = f"a tensor of shape {tuple(value.shape)}" if is_tensor(value) else f"{key}={value!r}"
                 raise ValueError(f"{where} does not take {key} (it has no effect there), got {got}")
         return cls(**common)
+
+
+_OPTION_NAMES = frozenset(f.name for f in dataclasses.fields(LossOptions))  # looked up on every loss call
