@@ -164,20 +164,73 @@ def _wait_and_mirror(init: int, status_r: int, libc) -> None:
         os._exit(255)
 
 
-def make_preexec(*, limits, uid: int | None, libc, netns: bool, mountns: bool, workdir: str,
-                 tmpfs_mb: int, report_fd: int | None, pidns: bool = False, ipcns: bool = False,
-                 deny_userns: bool = False):
-    """The child-side setup; raises :class:`MountSetupError` when the mount or PID namespace half-fails.
-    ``pidns`` needs ``mountns`` (the namespace gets its own /proc)."""
+def layer_plan(*, mountns: bool, tmpfs_mb: int, deny_userns: bool, libc):
+    """What :func:`apply_layers` needs that can be prepared once, before any fork: the private
+    directories, the tmpfs options and the seccomp program (``(dirs, opts, filt)``)."""
     dirs = [os.fsencode(d) for d in private_dirs()] if mountns else []
-    real = os.path.realpath(workdir)
-    bind = next((os.fsencode(real) for d in dirs if real.startswith(os.fsdecode(d) + os.sep)), None)
     opts = b"size=%dk,nr_inodes=4096,mode=1777" % (max(1, tmpfs_mb) << 10)
     filt = userns_filter() if deny_userns and libc is not None else None
     if libc is not None:
         libc.mount.argtypes = [ctypes.c_char_p, ctypes.c_char_p, ctypes.c_char_p, ctypes.c_ulong, ctypes.c_char_p]
         libc.unshare.argtypes = [ctypes.c_int]
         libc.signal.argtypes = [ctypes.c_int, ctypes.c_void_p]
+    return dirs, opts, filt
+
+
+def bind_target(dirs, workdir: str):
+    """The working directory's path when it lives under one of the private ``dirs`` (it is bound back
+    into the fresh tmpfs there), else None."""
+    real = os.path.realpath(workdir)
+    return next((os.fsencode(real) for d in dirs if real.startswith(os.fsdecode(d) + os.sep)), None)
+
+
+def apply_layers(*, limits, uid, libc, netns: bool, ipcns: bool, dirs, bind, opts, filt, done: bytes = b"") -> bytes:
+    """The layers after the PID namespace, in the process that will run the code (cwd = its working
+    directory): resource limits, the private mount namespace (and the PID namespace's own /proc when
+    ``done`` holds ``p``), IPC and network namespaces, the uid drop, ``no_new_privs``, the seccomp
+    filter. Returns ``done`` plus the letters of what took effect; raises :class:`MountSetupError`."""
+    for res, val in limits:
+        resource.setrlimit(res, val)
+    if libc is not None:
+        if dirs and libc.unshare(CLONE_NEWNS) == 0:
+            if libc.mount(None, b"/", None, MS_REC | MS_PRIVATE, None) != 0:
+                raise MountSetupError("mount --make-rprivate / failed")
+            for d in dirs:
+                if libc.mount(b"tmpfs", d, b"tmpfs", MS_NOSUID | MS_NODEV, opts) != 0:
+                    raise MountSetupError("tmpfs on %s failed" % os.fsdecode(d))
+            if bind is not None:  # the working directory lives under a hidden dir: bind it back
+                os.makedirs(bind, 0o700)
+                if libc.mount(b"/proc/self/cwd", bind, None, MS_BIND, None) != 0:
+                    raise MountSetupError("bind of the working directory failed")
+                os.chdir(bind)
+            done += b"m"
+        if b"p" in done:  # the namespace's own /proc: its pids, none of the host's processes
+            if b"m" not in done or libc.mount(b"proc", b"/proc", b"proc", MS_NOSUID | MS_NODEV | MS_NOEXEC,
+                                              None) != 0:
+                raise MountSetupError("/proc for the PID namespace failed")
+        if ipcns and libc.unshare(CLONE_NEWIPC) == 0:
+            done += b"i"
+        if netns and libc.unshare(CLONE_NEWNET) == 0:
+            done += b"n"
+    if uid is not None:
+        os.setgroups([])
+        os.setgid(uid)
+        os.setuid(uid)
+        done += b"u"
+    if libc is not None:
+        libc.prctl(PR_SET_NO_NEW_PRIVS, 1, 0, 0, 0)
+        if filt is not None and libc.prctl(PR_SET_SECCOMP, SECCOMP_MODE_FILTER, ctypes.byref(filt[0]), 0, 0) == 0:
+            done += b"s"
+    return done
+
+
+def make_preexec(*, limits, uid: int | None, libc, netns: bool, mountns: bool, workdir: str,
+                 tmpfs_mb: int, report_fd: int | None, pidns: bool = False, ipcns: bool = False,
+                 deny_userns: bool = False):
+    """The child-side setup; raises :class:`MountSetupError` when the mount or PID namespace half-fails.
+    ``pidns`` needs ``mountns`` (the namespace gets its own /proc)."""
+    dirs, opts, filt = layer_plan(mountns=mountns, tmpfs_mb=tmpfs_mb, deny_userns=deny_userns, libc=libc)
+    bind = bind_target(dirs, workdir)
 
     def fn() -> None:  # runs in the child between fork and exec: no imports, no locks
         done = b""
@@ -196,38 +249,8 @@ def make_preexec(*, limits, uid: int | None, libc, netns: bool, mountns: bool, w
                 os.close(status_w)
                 libc.prctl(PR_SET_PDEATHSIG, signal.SIGKILL, 0, 0, 0)
                 done += b"p"
-        for res, val in limits:
-            resource.setrlimit(res, val)
-        if libc is not None:
-            if dirs and libc.unshare(CLONE_NEWNS) == 0:
-                if libc.mount(None, b"/", None, MS_REC | MS_PRIVATE, None) != 0:
-                    raise MountSetupError("mount --make-rprivate / failed")
-                for d in dirs:
-                    if libc.mount(b"tmpfs", d, b"tmpfs", MS_NOSUID | MS_NODEV, opts) != 0:
-                        raise MountSetupError("tmpfs on %s failed" % os.fsdecode(d))
-                if bind is not None:  # the working directory lives under a hidden dir: bind it back
-                    os.makedirs(bind, 0o700)
-                    if libc.mount(b"/proc/self/cwd", bind, None, MS_BIND, None) != 0:
-                        raise MountSetupError("bind of the working directory failed")
-                    os.chdir(bind)
-                done += b"m"
-            if b"p" in done:  # the namespace's own /proc: its pids, none of the host's processes
-                if b"m" not in done or libc.mount(b"proc", b"/proc", b"proc", MS_NOSUID | MS_NODEV | MS_NOEXEC,
-                                                  None) != 0:
-                    raise MountSetupError("/proc for the PID namespace failed")
-            if ipcns and libc.unshare(CLONE_NEWIPC) == 0:
-                done += b"i"
-            if netns and libc.unshare(CLONE_NEWNET) == 0:
-                done += b"n"
-        if uid is not None:
-            os.setgroups([])
-            os.setgid(uid)
-            os.setuid(uid)
-            done += b"u"
-        if libc is not None:
-            libc.prctl(PR_SET_NO_NEW_PRIVS, 1, 0, 0, 0)
-            if filt is not None and libc.prctl(PR_SET_SECCOMP, SECCOMP_MODE_FILTER, ctypes.byref(filt[0]), 0, 0) == 0:
-                done += b"s"
+        done = apply_layers(limits=limits, uid=uid, libc=libc, netns=netns, ipcns=ipcns, dirs=dirs, bind=bind,
+                            opts=opts, filt=filt, done=done)
         if report_fd is not None:
             os.write(report_fd, done)
             os.close(report_fd)
