@@ -66,6 +66,7 @@ from bonft.trainer.distributed import (
 )
 from bonft.trainer.evaluation import evaluate_run
 from bonft.trainer.measure import Stopwatch
+from bonft.trainer.memory import keep_freed_memory
 from bonft.trainer.metrics import GRAD_CLIPPED, GRAD_NORM
 from bonft.trainer.models import load_model
 from bonft.trainer.run import Run, Stream, build_run, lr_at, make_optimizer
@@ -87,10 +88,15 @@ def train(cfg: TrainConfig, *, resume: bool = False, progress: bool = True) -> d
     run on the same directory raises :class:`~bonft.trainer.rundir.RunDirBusy` at once. A file that
     cannot be written (a full disk) stops the run with :class:`~bonft.trainer.rundir.WriteFailed`,
     one line naming the path, the space and the last verified checkpoint to resume from.
+
+    Process-wide settings: torch's intra-op threads (``cfg.threads``) and, on glibc, the allocator's
+    mmap threshold (:func:`bonft.trainer.memory.keep_freed_memory`: freed tensors are reused, not
+    page-faulted in again at every step; results are unchanged).
     """
     if not isinstance(cfg, TrainConfig):
         raise TypeError(f"cfg must be a TrainConfig, got {type(cfg).__name__}")
     torch.set_num_threads(cfg.threads)
+    keep_freed_memory()  # a step's large tensors come back from the heap, not as fresh page-faulting mmaps
     owns_group = not torch.distributed.is_initialized()
     ctx = init_from_env(device=cfg.device)  # a process group under torchrun, else one process
     with _locked(Path(cfg.run_dir), ctx):  # before the set-up: a busy directory is refused at once
