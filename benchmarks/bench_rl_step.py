@@ -18,7 +18,12 @@ Shapes (goal: bonft >= 1.5x the plain loop's samples/s on both):
 * the demo's RL step: 64 prompts x 32 samples, 4 new tokens, the demo's tiny GPT-2 (2 x 128);
 * a larger one: a 6 x 384 GPT-2, 16 prompts x 16 samples x 32 new tokens.
 
-Run: python benchmarks/bench_rl_step.py [--reps 5] [--shape demo|large|both]
+Process state: the trainer raises glibc's mmap threshold (``bonft.trainer.memory``), so that a
+step's large tensors are reused rather than page-faulted in again at every step; the benchmark
+does the same at the start (both sides run in this one process and share it), or not with
+``--default-malloc`` (then every large tensor of both sides costs page faults).
+
+Run: python benchmarks/bench_rl_step.py [--reps 5] [--shape demo|large|both] [--default-malloc]
 The load average is printed with the results.
 """
 from __future__ import annotations
@@ -35,6 +40,7 @@ from transformers.utils import logging as hf_logging
 
 from bonft.trainer.config import from_dict
 from bonft.trainer.loop import _one_step
+from bonft.trainer.memory import keep_freed_memory
 from bonft.trainer.run import build_run, make_optimizer, prompt_batch
 from bonft.verifiers.scoring import score_batch
 
@@ -137,8 +143,11 @@ def main() -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--reps", type=int, default=5)
     ap.add_argument("--shape", choices=("demo", "large", "both"), default="both")
+    ap.add_argument("--default-malloc", action="store_true", help="leave glibc's mmap threshold as it is")
     args = ap.parse_args()
     torch.set_num_threads(1)
+    kept = False if args.default_malloc else keep_freed_memory()
+    print(f"allocator: {'freed memory kept for reuse, as the trainer sets it' if kept else 'glibc default'}")
     hf_logging.set_verbosity_error()
     load0 = os.getloadavg()[0]
     for shape in (("demo", "large") if args.shape == "both" else (args.shape,)):
