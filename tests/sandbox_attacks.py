@@ -6,6 +6,8 @@ except ``correct`` and ``audit_hook_off_writes_tmp_shm`` is wrong (``add`` does
 not add), so any ``pass`` among them is a forged verdict; the latter is judged
 by the files it leaves behind.
 """
+import contextlib
+
 ESCAPE_TAG = "bonft_i13_escape"
 ESCAPE_PATHS = (f"/tmp/{ESCAPE_TAG}", f"/dev/shm/{ESCAPE_TAG}", f"/var/tmp/{ESCAPE_TAG}")
 TESTS = "assert add(2, 3) == 5\nassert add(-1, 1) == 0"
@@ -323,3 +325,145 @@ HOSTILE_CORRECT = {
     "deep_directory_chain": (DEEP_DIRS, TESTS),
     "odd_permissions_fifo_socket": (ODD_FILES, TESTS),
 }
+
+
+@contextlib.contextmanager
+def runner_mode(pool: bool):
+    """Every ``CodeRunner`` built inside runs one candidate at a time (``pool=False``, two fresh
+    interpreters each) or in a sandbox pool (``pool=True``): the attack tests run in both modes."""
+    from bonft.verifiers import CodeRunner
+
+    defaults = CodeRunner.__init__.__kwdefaults__
+    old = defaults["pool"]
+    defaults["pool"] = pool
+    try:
+        yield pool
+    finally:
+        defaults["pool"] = old
+
+
+def pool_uids(runner) -> set:
+    """The uids of a runner's pool workers' candidates and tests (empty without a started pool)."""
+    return runner.sandbox_pool().uids() if runner.pool and runner._pool is not None else set()
+
+# ------------------------------------------------------------------------------------------------
+# Across candidates of one batch (the sandbox pool forks every candidate from the same worker):
+# each is correct and hostile, and its own tests assert that the attack found nothing, so a
+# ``pass`` means "contained"; a reach into another candidate or the worker fails it.
+def reach_out(targets) -> str:
+    """Signals (kill(-1), the parent, every pid of ``targets``: the pool's workers and this test
+    process, as the host numbers them), /proc/PID/mem opened for writing, environ read, ptrace
+    attach; all through ctypes, past the audit hook. ``hits()`` lists what succeeded."""
+    return f"""
+import ctypes, os
+libc = ctypes.CDLL(None, use_errno=True)
+TARGETS = {sorted(targets)!r}
+def hits():
+    got = []
+    if libc.kill(-1, 9) == 0:
+        got.append("kill(-1)")
+    if libc.kill(os.getppid(), 9) == 0:
+        got.append("kill(ppid=%d)" % os.getppid())
+    for pid in TARGETS + [os.getppid()]:
+        if pid == os.getpid():
+            continue
+        if libc.kill(pid, 0) == 0:
+            got.append("signal %d" % pid)
+        for what, flags in (("mem", os.O_RDWR), ("environ", os.O_RDONLY)):
+            fd = libc.open(("/proc/%d/%s" % (pid, what)).encode(), flags)
+            if fd >= 0:
+                got.append("%s of %d" % (what, pid))
+                if what == "mem":
+                    libc.pwrite(fd, b"\\xcc" * 8, 8, 0x400000)
+                libc.close(fd)
+        if libc.ptrace(16, pid, None, None) == 0:  # PTRACE_ATTACH
+            got.append("ptrace %d" % pid)
+    return got
+"""
+
+
+# what /proc shows: with a PID namespace only the namespace's init (1) and the candidate (2)
+SEE_PROC = "import os\ndef visible():\n    return sorted(int(p) for p in os.listdir('/proc') if p.isdigit())\n"
+CROSS_TAG = "bonft_cross"
+# leaves files, a fifo, a System V queue and a daemon holding an abstract unix socket (ctypes, past the
+# audit hook) for whoever runs next in the same worker
+LEAVE_BEHIND = f"""
+import ctypes, os, time
+libc = ctypes.CDLL(None, use_errno=True)
+for d in ("/tmp", "/dev/shm", "/var/tmp", "/run/lock", "."):
+    p = ("%s/{CROSS_TAG}" % d).encode()
+    fd = libc.open(p, os.O_WRONLY | os.O_CREAT, 0o666)
+    if fd >= 0:
+        libc.write(fd, b"left", 4)
+        libc.close(fd)
+libc.mkfifo(b"/tmp/{CROSS_TAG}_fifo", 0o666)
+libc.msgget({IPC_KEY + 7}, 0o1000 | 0o666)
+
+class Addr(ctypes.Structure):
+    _fields_ = [("family", ctypes.c_ushort), ("path", ctypes.c_char * 108)]
+addr = Addr(1, b"\\0{CROSS_TAG}")
+if os.fork() == 0:
+    os.setsid()
+    s = libc.socket(1, 1, 0)
+    libc.bind(s, ctypes.byref(addr), 2 + 1 + len("{CROSS_TAG}"))
+    libc.listen(s, 4)
+    time.sleep(30)
+    os._exit(0)
+time.sleep(0.2)
+def add(a, b):
+    return a + b
+"""
+FIND_LEFTOVERS = f"""
+import ctypes, os
+libc = ctypes.CDLL(None, use_errno=True)
+class Addr(ctypes.Structure):
+    _fields_ = [("family", ctypes.c_ushort), ("path", ctypes.c_char * 108)]
+def found():
+    got = [p for p in ("/tmp/{CROSS_TAG}", "/dev/shm/{CROSS_TAG}", "/var/tmp/{CROSS_TAG}", "/run/lock/{CROSS_TAG}",
+                       "{CROSS_TAG}", "/tmp/{CROSS_TAG}_fifo") if os.path.lexists(p)]
+    if libc.msgget({IPC_KEY + 7}, 0) >= 0:
+        got.append("msg queue")
+    s = libc.socket(1, 1, 0)
+    if libc.connect(s, ctypes.byref(Addr(1, b"\\0{CROSS_TAG}")), 2 + 1 + len("{CROSS_TAG}")) == 0:
+        got.append("abstract socket")
+    libc.close(s)
+    return got
+"""
+# the descriptors a candidate's process holds: 0, 1, 2 and its two protocol pipes, nothing of a sibling
+FD_LIST = """
+import os
+def fds():
+    out = []
+    for name in os.listdir('/proc/self/fd'):
+        try:
+            out.append((int(name), os.readlink('/proc/self/fd/' + name).split(':')[0]))
+        except OSError:
+            pass  # the listing's own descriptor, closed by now
+    return sorted(out)
+"""
+# counts a byte string in its own readable memory; the needle is joined from parts at run time,
+# so the only copies are the needle's own unless an earlier job's text was left in the memory it
+# was forked from
+MEMORY_SCAN = """
+import os
+def count(parts):
+    needle = "".join(parts).encode()
+    n = 0
+    fd = os.open("/proc/self/mem", os.O_RDONLY)
+    with open("/proc/self/maps") as f:
+        maps = f.read().splitlines()
+    for line in maps:
+        addr, perms = line.split()[:2]
+        lo, hi = (int(x, 16) for x in addr.split("-"))
+        if "r" not in perms or hi - lo > 1 << 28:
+            continue
+        for at in range(lo, hi, 1 << 20):  # 1 MiB at a time, overlapping by the needle's length
+            try:
+                n += os.pread(fd, min(hi - at, (1 << 20) + len(needle) - 1), at).count(needle)
+            except OSError:
+                break
+    os.close(fd)
+    return n
+def add(a, b):
+    return a + b
+"""

@@ -11,6 +11,7 @@ import signal
 
 import numpy as np
 import pytest
+from sandbox_attacks import pool_uids, runner_mode
 
 from bonft.verifiers import CodeRunner, RunResult
 from bonft.verifiers.sandbox.procs import pids_of as _pids_of
@@ -21,19 +22,49 @@ OUTSIDE = "/tmp/bonft_sandbox_escape_test.txt"
 
 
 def _children() -> int:
-    """Number of live child processes of this test process (all threads)."""
+    """Number of live child processes of this test process (all threads), sandbox pool workers
+    (which live as long as their runner) not counted."""
     n = 0
     for tid in os.listdir("/proc/self/task"):
         try:
             with open(f"/proc/self/task/{tid}/children") as f:
-                n += len(f.read().split())
+                pids = f.read().split()
         except FileNotFoundError:
             continue  # a thread that ended after the listing: it has no children left
+        for pid in pids:
+            try:
+                with open(f"/proc/{pid}/cmdline", "rb") as f:
+                    if b"def supervise(" in f.read():
+                        continue
+            except OSError:
+                continue
+            n += 1
     return n
 
 
+def _ppid(pid: int) -> int:
+    try:
+        with open(f"/proc/{pid}/stat") as f:
+            return int(f.read().rsplit(")", 1)[1].split()[1])
+    except (OSError, ValueError, IndexError):
+        return 0
+
+
+def _ours_or_orphan(pid: int) -> bool:
+    """Whether ``pid`` descends from this test process or was left to the host's init: a sandbox
+    process of another program running on the same machine (its ancestors alive) is not ours."""
+    for _ in range(64):
+        pid = _ppid(pid)
+        if pid == os.getpid():
+            return True
+        if pid <= 1:
+            return True
+    return False
+
+
 def _sandbox_processes() -> list[int]:
-    """Live processes still running a sandbox bootstrap (the wire protocol's text is on their command line)."""
+    """Live processes still running a sandbox bootstrap (the wire protocol's text is on their command
+    line) that this test started or that outlived their parents."""
     out = []
     for pid in filter(str.isdigit, os.listdir("/proc")):
         try:
@@ -43,9 +74,16 @@ def _sandbox_processes() -> list[int]:
                 state = f.read().rsplit(")", 1)[1].split()[0]
         except OSError:
             continue
-        if b"def wire_send(" in cmd and state != "Z":
+        if b"def wire_send(" in cmd and state != "Z" and _ours_or_orphan(int(pid)):
             out.append(int(pid))
     return out
+
+
+@pytest.fixture(scope="module", autouse=True, params=[False, True], ids=["one-at-a-time", "pool"])
+def mode(request):
+    """Each test of this file runs with the one-at-a-time runner and with the sandbox pool."""
+    with runner_mode(request.param):
+        yield request.param
 
 
 ATTACKS = {
@@ -115,6 +153,7 @@ def test_fork_bombs_are_contained(attack_results):
     assert _sandbox_processes() == []  # and none escaped to run on
     if ROOT:
         uids = [runner._uid(s) + k for s in range(runner.workers) for k in (0, 1)]  # candidate, tests
+        uids += sorted(pool_uids(runner))
         leftover = {u: _pids_of(u) for u in uids}
         assert all(not v for v in leftover.values()), f"sandbox processes left: {leftover}"
 

@@ -9,7 +9,7 @@ tmpfs(5) (a tmpfs lives in memory and its contents vanish when unmounted).
 import os
 
 import pytest
-from sandbox_attacks import ATTACKS, ESCAPE_PATHS
+from sandbox_attacks import ATTACKS, ESCAPE_PATHS, runner_mode
 
 from bonft.verifiers import CodeRunner
 
@@ -29,8 +29,15 @@ MOUNT_NS = ROOT and _kernel_allows(0x00020000)  # CLONE_NEWNS
 NET_NS = ROOT and _kernel_allows(0x40000000)  # CLONE_NEWNET
 
 
+@pytest.fixture(scope="module", autouse=True, params=[False, True], ids=["one-at-a-time", "pool"])
+def mode(request):
+    """Each test of this file runs with the one-at-a-time runner and with the sandbox pool."""
+    with runner_mode(request.param):
+        yield request.param
+
+
 @pytest.fixture(scope="module")
-def attacks():
+def attacks(mode):
     for p in ESCAPE_PATHS:
         if os.path.exists(p):
             os.remove(p)

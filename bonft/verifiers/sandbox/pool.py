@@ -78,6 +78,10 @@ class SandboxPool:
     own options; :meth:`run` takes ``(solution, tests)`` pairs and returns one result dict
     per pair (the fields of ``RunResult``), in input order. :meth:`floor` runs the same
     isolation for ``n`` processes that do nothing (the cost floor).
+
+    ``layers`` names the OS layers that took effect for the workers' candidates (as
+    ``RunResult.os_layers``), ``missing_layers`` those that could not (without root: all
+    but ``no-userns``; the pool then protects no better than a one-at-a-time run without root).
     """
 
     def __init__(self, *, workers: int, python: str, config: dict, root: bool) -> None:
@@ -98,6 +102,7 @@ class SandboxPool:
             self.close()
             raise
         self.layers = tuple(LAYER_NAMES[c] for c in self._workers[0].layers if c in LAYER_NAMES)
+        self.missing_layers = tuple(n for n in LAYER_NAMES.values() if n not in self.layers)
 
     # -- workers ------------------------------------------------------------------------------
     def uids(self) -> set[int]:
@@ -299,6 +304,9 @@ class SandboxPool:
                     results[w.job] = _result(msg)
                     w.job = None
                 # a frame for no job in flight (a supervisor's duplicate): dropped
+                if msg.get("worker_exits") is True:  # it may have lost its place in the job stream
+                    self._died(w, results, "it stopped after a supervisor's death")
+                    break
 
     def _died(self, w: _Worker, results: list, why: str | None) -> None:
         """The worker ended or broke the protocol: its in-flight candidate gets a verdict naming the

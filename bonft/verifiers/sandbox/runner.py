@@ -245,10 +245,16 @@ class CodeRunner:
 
     def run_code(self, jobs: Sequence[tuple[str, str]], *, progress: bool = False) -> list[RunResult]:
         """Run ``(solution, tests)`` source pairs directly (no prompt lookup)."""
+        jobs = list(jobs)
+        for i, job in enumerate(jobs):
+            if not (isinstance(job, (tuple, list)) and len(job) == 2 and all(isinstance(x, str) for x in job)):
+                got = (f"({', '.join(type(x).__name__ for x in job)})" if isinstance(job, (tuple, list))
+                       else type(job).__name__)
+                raise TypeError(f"jobs[{i}] must be a (solution, tests) pair of str, got {got}")
         python = self._interpreter()
         if self.pool:
             return [RunResult(r["status"], r["reason"], r["returncode"], r["stdout"], r["stderr"], r["wall_s"],
-                              tuple(r["os_layers"])) for r in self.sandbox_pool().run(list(jobs))]
+                              tuple(r["os_layers"])) for r in self.sandbox_pool().run(jobs)]
         slots: Queue[int] = Queue()
         for s in range(self.workers):
             slots.put(s)

@@ -533,7 +533,7 @@ def _main():
                 os._exit(70)
         _, status = os.waitpid(pid, 0)
         if status != 0:  # the supervisor died without its result: say so, then let the pool start a fresh worker
-            wire.wire_send(_RES, {"job": seq, "status": "crashed",
+            wire.wire_send(_RES, {"job": seq, "status": "crashed", "worker_exits": True,
                                   "reason": "runner: the pool worker's supervisor of this candidate ended (%s)"
                                   % _ended(status)})
             os._exit(4)

@@ -1,0 +1,259 @@
+"""The sandbox pool: the verdicts of one-at-a-time runs, and nothing crosses between candidates.
+
+Expected behaviour is taken from the Linux manual pages: pid_namespaces(7) (a process sees and can
+signal only the processes of its own PID namespace and its descendants; /proc mounted in it lists
+only those), kill(2) (kill(-1) reaches every process the caller may signal, itself excepted, and
+a process may signal only processes of its own real or effective uid unless privileged), ptrace(2)
+"Ptrace access mode checking" (another uid -> EPERM; proc(5): /proc/PID/mem and environ need that
+same access), ipc_namespaces(7), mount_namespaces(7) with tmpfs(5), network_namespaces(7) (abstract
+unix socket names belong to a network namespace, unix(7)), and fork(2) (the child gets a copy of the
+parent's memory: hence the worker must never hold a job's text when it forks a candidate).
+"""
+import glob
+import os
+import signal
+import subprocess
+import sys
+import tempfile
+import threading
+import time
+
+import pytest
+from sandbox_attacks import (
+    ATTACKS,
+    ATTACKS_2,
+    FD_LIST,
+    FIND_LEFTOVERS,
+    HOSTILE_CORRECT,
+    LEAVE_BEHIND,
+    MEMORY_SCAN,
+    SEE_PROC,
+    SIX_THREADS,
+    TESTS,
+    reach_out,
+)
+
+from bonft.verifiers import CodeRunner
+
+ROOT = os.geteuid() == 0
+CORRECT = ("def add(a, b):\n    return a + b", TESTS)
+
+
+def _kernel_allows(flag: int) -> bool:
+    code = f"import ctypes, sys; sys.exit(ctypes.CDLL(None).unshare({flag}) != 0)"
+    return subprocess.run([sys.executable, "-c", code]).returncode == 0
+
+
+NAMESPACES = ROOT and _kernel_allows(0x00020000 | 0x08000000 | 0x20000000 | 0x40000000)  # NS | IPC | PID | NET
+needs_ns = pytest.mark.skipif(not NAMESPACES, reason="the cross-candidate layers need root and namespaces")
+
+
+def _processes_of(uids) -> list[tuple[int, int, str]]:
+    out = []
+    for pid in filter(str.isdigit, os.listdir("/proc")):
+        try:
+            with open(f"/proc/{pid}/status") as f:
+                fields = dict(line.split(":", 1) for line in f if ":" in line)
+        except OSError:
+            continue
+        if int(fields["Uid"].split()[0]) in uids:
+            out.append((int(pid), int(fields["Uid"].split()[0]), fields["State"].strip()))
+    return out
+
+
+def _left_dirs(pids) -> list[str]:
+    return [d for p in pids for d in glob.glob(os.path.join(tempfile.gettempdir(), f"bonft-*-{p}.*"))]
+
+
+# the hostile candidates of the three attack files whose verdict does not depend on timing
+RESOURCE = {
+    "infinite_loop": ("while True:\n    pass", "pass"),
+    "memory_bomb": ("x = ' ' * (2 ** 34)", "pass"),
+    "fork_bomb": ("import os\nwhile True:\n    os.fork()", "pass"),
+    "huge_output": ("while True:\n    print('x' * 1000)", "pass"),
+    "segfault": ("import ctypes\nctypes.string_at(0)", "pass"),
+    "exit_3": ("import sys\nsys.exit(3)", "pass"),
+    "sigterm_self": ("import os, signal\nos.kill(os.getpid(), signal.SIGTERM)", "pass"),
+    "abort": ("import os\nos.abort()", "pass"),
+    "kill_parent": ("import os, signal\nos.kill(os.getppid(), signal.SIGTERM)", "pass"),
+    "write_outside": ("open('/tmp/bonft_pool_outside.txt', 'w').write('x')", "pass"),
+    "syntax_error": ("def f(:\n    pass", "pass"),
+    "tests_syntax_error": ("x = 1", "assert ("),
+    "six_threads": SIX_THREADS,
+}
+# timing decides between two statuses or two wordings: compared by status only
+TIMING = {"reply_ahead_then_segfault", "huge_output", "fork_bomb"}
+
+
+def test_a_pool_batch_gives_the_verdicts_of_one_at_a_time_runs():
+    """Every candidate of a mixed batch (honest, wrong, forging, resource-hungry, hostile but correct,
+    each followed by a correct one) gets from the pool the status, reason, exit status and OS
+    layers it gets from the one-at-a-time runner."""
+    hostile = {**ATTACKS, **ATTACKS_2, **RESOURCE,
+               **{k: v for k, v in HOSTILE_CORRECT.items() if k != "deep_directory_chain"}}  # disk-bound: timing
+    jobs, names = [], []
+    for name, job in hostile.items():
+        jobs += [job, CORRECT]
+        names += [name, "correct after " + name]
+    opts = dict(wall_time=4.0, memory_mb=1024, max_processes=8, max_output_bytes=10_000, workers=2)
+    single = CodeRunner({}, **opts).run_code(jobs)
+    with CodeRunner({}, pool=True, **opts) as runner:
+        pooled = runner.run_code(jobs)
+        assert runner.sandbox_pool().restarts == 0
+    diff = {}
+    for name, a, b in zip(names, single, pooled):
+        key_a = (a.status,) if name in TIMING else (a.status, a.reason, a.returncode, a.os_layers)
+        key_b = (b.status,) if name in TIMING else (b.status, b.reason, b.returncode, b.os_layers)
+        if key_a != key_b:
+            diff[name] = (key_a, key_b)
+    assert diff == {}
+    assert [r.status for n, r in zip(names, pooled) if n.startswith("correct after")] == ["pass"] * len(hostile)
+    forged = {n for n, r in zip(names, pooled) if r.passed and not n.startswith("correct")}
+    assert forged <= set(HOSTILE_CORRECT) | {"audit_hook_off_writes_tmp_shm", "six_threads"}, forged
+    assert pooled[names.index("infinite_loop")].reason == "wall time 4 s"
+    assert not os.path.exists("/tmp/bonft_pool_outside.txt")
+
+
+@needs_ns
+def test_a_candidate_cannot_signal_or_reach_into_siblings_the_worker_or_the_caller():
+    """kill(-1), kill(ppid), signals, /proc/PID/mem writes, environ reads and ptrace against the pool's
+    workers, this test process and the parent it sees, while a sibling sleeps in another worker: all
+    fail, the sibling passes and no worker is replaced."""
+    sleeper = ("import time\ntime.sleep(1.5)\ndef add(a, b):\n    return a + b", TESTS)
+    with CodeRunner({}, wall_time=6.0, memory_mb=256, max_processes=4, workers=3, pool=True) as runner:
+        pool = runner.sandbox_pool()
+        workers = pool.worker_pids()
+        attack = (reach_out(workers + [os.getpid()]), "assert hits() == []")
+        see = (SEE_PROC, "assert visible() == [1, 2], visible()")
+        results = runner.run_code([sleeper, attack, attack, see, sleeper, CORRECT])
+        assert [(r.status, r.reason) for r in results] == [("pass", None)] * 6, [r.stderr[-300:] for r in results]
+        assert pool.worker_pids() == workers and pool.restarts == 0
+
+
+@needs_ns
+def test_nothing_a_candidate_leaves_reaches_the_next_one_in_the_same_worker():
+    """One worker: files in its directory and in /tmp, /dev/shm, /var/tmp, /run/lock, a fifo, a System V
+    queue and a daemon holding an abstract unix socket; the next candidate finds none of them, and no
+    process of the pool's uids is left."""
+    with CodeRunner({}, wall_time=4.0, memory_mb=256, max_processes=4, workers=1, pool=True) as runner:
+        leave, find = runner.run_code([(LEAVE_BEHIND, TESTS), (FIND_LEFTOVERS, "assert found() == [], found()")])
+        assert (leave.status, find.status) == ("pass", "pass"), (leave.reason, find.reason, find.stderr[-300:])
+        pool = runner.sandbox_pool()
+        assert _processes_of(pool.uids()) == []
+        assert _left_dirs(pool.worker_pids()) == []
+
+
+@needs_ns
+def test_a_candidate_holds_only_its_own_descriptors():
+    """0, 1, 2 and its two protocol pipes, as in a one-at-a-time run: no descriptor of the worker, the
+    supervisor or a sibling (each could carry another candidate's output or verdict)."""
+    job = (FD_LIST, "print(fds())")
+    single = CodeRunner({}, wall_time=4.0, memory_mb=256, workers=1).run_code([job])[0]
+    with CodeRunner({}, wall_time=4.0, memory_mb=256, workers=2, pool=True) as runner:
+        pooled = runner.run_code([job, job, job])
+    expected = "[(0, '/dev/null'), (1, 'pipe'), (2, 'pipe'), (%d, 'pipe'), (%d, 'pipe')]"
+    for r in [single, *pooled]:
+        assert r.status == "pass", (r.reason, r.stderr[-300:])
+        got = eval(r.stdout.strip())  # noqa: S307 - our own test's printed list
+        assert len(got) == 5 and got[:3] == [(0, "/dev/null"), (1, "pipe"), (2, "pipe")], got
+        assert r.stdout.strip() == expected % (got[3][0], got[4][0])
+
+
+@needs_ns
+def test_no_earlier_job_or_its_own_tests_are_in_a_candidates_memory():
+    """The worker forks each candidate before anyone reads the job: neither the tests and solution of
+    the job before it in the same worker nor its own tests are in the memory it can read."""
+    tag = "%08x" % (os.getpid() * 2654435761 % (1 << 32))
+    earlier = f"# BONFT_EARLIER_{tag}\ndef add(a, b):\n    return a + b  # BONFT_EARLIER_{tag}"
+    earlier_tests = f"# BONFT_EARLIER_{tag}\nassert add(2, 3) == 5"
+    own_tests = (f"# BONFT_OWNTESTS_{tag}\n"
+                 f"print(count(['BONFT_', 'EARLIER_', '{tag}']), count(['BONFT_', 'OWNTESTS_', '{tag}']),"
+                 f" count(['BONFT_', 'NEVERSEEN_', '{tag}']), count(['BONFT_', 'OWNSOLUTION_', '{tag}']))")
+    own_solution = MEMORY_SCAN + f"# BONFT_OWNSOLUTION_{tag}\n"
+    with CodeRunner({}, wall_time=10.0, memory_mb=1024, workers=1, pool=True) as runner:
+        first, scan = runner.run_code([(earlier, earlier_tests), (own_solution, own_tests)])
+    assert first.status == "pass" and scan.status == "pass", (scan.reason, scan.stderr[-300:])
+    earlier_n, own_n, never_n, own_solution_n = map(int, scan.stdout.split())
+    assert never_n >= 1  # the needle's own copies
+    assert own_solution_n > never_n  # the scan finds text that is there: its own solution
+    assert (earlier_n, own_n) == (never_n, never_n)
+
+
+def _child_of(pid: int, timeout: float = 10.0) -> int:
+    """The first child of ``pid`` (the worker's supervisor of the job in flight)."""
+    end = time.monotonic() + timeout
+    while time.monotonic() < end:
+        try:
+            with open(f"/proc/{pid}/task/{pid}/children") as f:
+                kids = f.read().split()
+        except OSError:
+            kids = []
+        if kids:
+            return int(kids[0])
+        time.sleep(0.01)
+    raise AssertionError(f"no supervisor appeared under worker {pid}")
+
+
+@pytest.mark.parametrize("victim", ["worker", "supervisor"])
+def test_a_worker_that_dies_mid_batch_sinks_only_its_candidate(victim):
+    """SIGKILL to the worker (or to the supervisor of its job) while a candidate runs: that candidate
+    gets a ``crashed`` verdict naming the cause (a runner failure, not a score), a fresh worker
+    starts and the rest of the batch passes; nothing of the dead one is left."""
+    sleeper = ("import time\ntime.sleep(3)\ndef add(a, b):\n    return a + b", TESTS)
+    with CodeRunner({}, wall_time=8.0, memory_mb=256, workers=1, pool=True) as runner:
+        pool = runner.sandbox_pool()
+        old = pool.worker_pids()[0]
+
+        def kill() -> None:
+            sup = _child_of(old)
+            time.sleep(0.5)
+            os.kill(old if victim == "worker" else sup, signal.SIGKILL)
+
+        t = threading.Thread(target=kill)
+        t.start()
+        results = runner.run_code([sleeper, CORRECT, CORRECT])
+        t.join()
+        reason = {
+            "worker": "runner: sandbox pool worker 0 failed while running this candidate: it ended (killed by SIGKILL)",
+            "supervisor": "runner: the pool worker's supervisor of this candidate ended (killed by SIGKILL)"}[victim]
+        assert (results[0].status, results[0].reason) == ("crashed", reason)
+        assert [r.status for r in results[1:]] == ["pass", "pass"]
+        assert pool.restarts == 1 and pool.worker_pids() != [old]
+        assert _left_dirs([old]) == []
+        # the dead worker's children die by their parent-death signal; the host's init reaps them
+        end = time.monotonic() + 10
+        while _processes_of(pool.uids()) and time.monotonic() < end:
+            time.sleep(0.05)
+        assert _processes_of(pool.uids()) == []
+
+
+def test_pool_bad_input_and_layers():
+    with pytest.raises(TypeError, match="pool must be True or False, got int"):
+        CodeRunner({}, pool=1)
+    with pytest.raises(ValueError, match=r"sandbox_pool\(\) needs CodeRunner\(\.\.\., pool=True\)"):
+        CodeRunner({}).sandbox_pool()
+    with CodeRunner({}, wall_time=4.0, memory_mb=256, workers=1, pool=True) as runner:
+        with pytest.raises(TypeError, match=r"jobs\[1\] must be a \(solution, tests\) pair of str, got \(bytes, str\)"):
+            runner.run_code([CORRECT, (b"x = 1", "pass")])
+        pool = runner.sandbox_pool()
+        if NAMESPACES:
+            assert set(pool.layers) == {"own-uid", "no-network", "private-tmp", "private-pids", "private-ipc",
+                                        "no-userns"} and pool.missing_layers == ()
+    runner.close()  # closing twice is fine
+    with pytest.raises(RuntimeError, match="the sandbox pool is closed"):
+        pool.run([CORRECT])
+
+
+def test_a_pool_without_root_names_the_layers_it_lacks():
+    """The unprivileged path (forced here): no uid of its own and no namespaces, said in ``layers``,
+    ``missing_layers`` and every result's ``os_layers``; verdicts still come from the tests."""
+    runner = CodeRunner({}, wall_time=4.0, memory_mb=256, max_processes=4, workers=2, pool=True)
+    runner._root = runner._mountns = runner._pidns = False
+    try:
+        ok, bad = runner.run_code([CORRECT, ("def add(a, b):\n    return 0", TESTS)])
+        pool = runner.sandbox_pool()
+        assert {"own-uid", "private-tmp", "private-pids", "private-ipc"} <= set(pool.missing_layers)
+        assert (ok.status, bad.status) == ("pass", "fail")
+        assert set(ok.os_layers) == set(pool.layers) and "own-uid" not in ok.os_layers
+    finally:
+        runner.close()
