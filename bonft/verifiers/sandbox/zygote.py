@@ -212,10 +212,12 @@ class Worker:
             os._exit(127)
 
     def fork_candidate(self, workdir, keep, out_w, err_w, report_w, bare=False):
-        """(pid to wait for, status pipe or None): as root the init of a fresh PID namespace."""
+        """(pid to wait for, status pipe or None): as root the init of a fresh PID namespace. ``bare``
+        (the floor): the process with every layer exits at once, and it is the namespace's PID 1 itself
+        (no init forks it: the fewest processes these layers take)."""
         pid_layer = self.pidns and bool(self.dirs) and self.libc.unshare(oslayer.CLONE_NEWPID) == 0
         status_r = status_w = None
-        if pid_layer:
+        if pid_layer and not bare:
             status_r, status_w = os.pipe()
         pid = os.fork()
         if pid:
@@ -226,7 +228,9 @@ class Worker:
             self.libc.prctl(oslayer.PR_SET_PDEATHSIG, signal.SIGKILL, 0, 0, 0)
             os.setsid()
             done = b""
-            if pid_layer:
+            if pid_layer and bare:
+                done = b"p"
+            elif pid_layer:
                 child = os.fork()
                 if child != 0:
                     oslayer._ns_init(child, status_w)
