@@ -187,7 +187,7 @@ def test_refunds_knob_errors():
 
 def test_get_task_errors():
     assert set(TASKS) >= {"ledger", "restock", "refunds", "jsonl"}
-    with pytest.raises(ValueError, match=r"name must be one of \('ledger', 'restock', 'refunds', 'jsonl', 'user'\), got 'chess'"):
+    with pytest.raises(ValueError, match=r"name must be one of \('ledger', 'restock', 'refunds', 'workshop', 'jsonl', 'user'\), got 'chess'"):
         get_task("chess")
     with pytest.raises(TypeError, match=r"params of task 'ledger' must be among \['n_moves', 'max_qty', 'hard_share', 'max_factor'\]"):
         get_task("ledger", depth=3)

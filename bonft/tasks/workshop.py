@@ -153,7 +153,7 @@ class ProgramJudge:
 
     def __init__(self, *, runner: Any = None, wall_time: float = 5.0, workers: int = 0, cache_size: int = 200_000):
         if runner is None:
-            from bonft.verifiers.sandbox.runner import CodeRunner
+            from bonft.verifiers.sandbox.runner import CodeRunner  # the sandbox loads only when a judge runs programs
 
             runner = CodeRunner({}, wall_time=wall_time, workers=workers or None)
         elif not callable(getattr(runner, "run_code", None)):
