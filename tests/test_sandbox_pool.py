@@ -257,3 +257,20 @@ def test_a_pool_without_root_names_the_layers_it_lacks():
         assert set(ok.os_layers) == set(pool.layers) and "own-uid" not in ok.os_layers
     finally:
         runner.close()
+
+
+def test_a_worker_without_a_result_is_replaced():
+    """A supervisor that sends no result long after its wall time (forced here: the pool's patience set
+    to 0.5 s against a 3 s sleep) is taken for stuck: its candidate gets a runner verdict, the worker is
+    replaced and the batch goes on."""
+    sleeper = ("import time\ntime.sleep(3)\ndef add(a, b):\n    return a + b", TESTS)
+    with CodeRunner({}, wall_time=8.0, memory_mb=256, workers=1, pool=True) as runner:
+        pool = runner.sandbox_pool()
+        pool._patience = 0.5
+        first = runner.run_code([sleeper])[0]
+        assert (first.status, first.reason) == (
+            "crashed", "runner: sandbox pool worker 0 failed while running this candidate: no result 0.5 s after "
+                       "the job was sent")
+        pool._patience = 60.0
+        assert [r.status for r in runner.run_code([CORRECT, CORRECT])] == ["pass", "pass"]
+        assert pool.restarts == 1

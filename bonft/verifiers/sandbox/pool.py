@@ -66,6 +66,7 @@ class _Worker:
         self.inbuf = bytearray()
         self.outbuf = b""
         self.job: int | None = None  # index into the batch
+        self.since = 0.0  # when the job in flight was sent
         self.seq = 0
         self.pid = 0
         self.layers = ""
@@ -89,6 +90,9 @@ class SandboxPool:
         self.root = root
         self.uid0 = _UID_BASE + 2000 * secrets.randbelow(200_000) if root else None
         self.config = dict(config)
+        # the supervisor's own limit is wall_time (then kill, reap, remove two directories): this
+        # much later the worker is taken for stuck, killed and replaced
+        self._patience = float(config.get("wall_time", 5.0)) * 2 + 60.0
         self._workers = [_Worker(s) for s in range(workers)]
         self._lock = threading.Lock()
         self._seq = 0
@@ -240,7 +244,7 @@ class SandboxPool:
                             i = todo.popleft()
                             mode, payload = items[i]
                             self._seq += 1
-                            w.seq, w.job = self._seq, i
+                            w.seq, w.job, w.since = self._seq, i, time.monotonic()
                             head = b"run %d %d\n" % (w.seq, len(payload)) if mode == "run" else b"bare %d\n" % w.seq
                             w.outbuf = head + payload
                             self._push(w)
@@ -248,7 +252,7 @@ class SandboxPool:
                         for i in todo:  # no worker left to run them
                             results[i] = _infra("runner: no sandbox pool worker could be started")
                         break
-                    self._wait(sel, results)
+                    self._wait(sel, results, todo)
             finally:
                 sel.close()
             return results  # type: ignore[return-value]
@@ -264,7 +268,7 @@ class SandboxPool:
                 return
             w.outbuf = w.outbuf[n:]
 
-    def _wait(self, sel: selectors.BaseSelector, results: list) -> None:
+    def _wait(self, sel: selectors.BaseSelector, results: list, todo: deque) -> None:
         busy = [w for w in self._workers if w.job is not None]
         for w in busy:
             sel.register(w.res, selectors.EVENT_READ, w)
@@ -275,7 +279,13 @@ class SandboxPool:
         finally:
             for key in list(sel.get_map().values()):
                 sel.unregister(key.fileobj)
+        late = time.monotonic() - self._patience
+        for w in busy:  # a supervisor ends by itself soon after wall_time: one that does not is stuck
+            if w.job is not None and w.since < late and w.proc is not None:
+                self._died(w, results, f"no result {self._patience:g} s after the job was sent")
         for key, mask in ready:
+            if key.data.job is None or key.data.proc is None:
+                continue
             w = key.data
             if mask & selectors.EVENT_WRITE:
                 self._push(w)
@@ -305,6 +315,9 @@ class SandboxPool:
                     w.job = None
                 # a frame for no job in flight (a supervisor's duplicate): dropped
                 if msg.get("worker_exits") is True:  # it may have lost its place in the job stream
+                    if w.job is not None:  # sent after the worker had stopped reading: it never ran
+                        todo.appendleft(w.job)
+                        w.job = None
                     self._died(w, results, "it stopped after a supervisor's death")
                     break
 
