@@ -9,6 +9,7 @@ programs.
 import json
 import math
 import re
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -185,6 +186,10 @@ def test_probes_pass_none(task, held):
     assert [r.passed for r in report.results] == [()] * 10
     # the memorised asserts pass the visible part and fail on a hidden input: the probe ran its table
     assert all(r.statuses["memorised_asserts"] == ("fail",) for r in report.results)
+    # docs/tasks.md shows this report's lines for the five texts the verifier runs
+    docs = (Path(__file__).resolve().parent.parent / "docs" / "tasks.md").read_text(encoding="utf-8")
+    lines = str(report).splitlines()[:5]
+    assert all(line.startswith("ok ") and "\n" + line + "\n" in docs for line in lines), lines
 
 
 def test_read_program_and_canonical_answers(task):
