@@ -266,6 +266,23 @@ def test_bad_knobs(kwargs, message):
         WorkshopTask(**kwargs)
 
 
+def test_bad_examples_and_responses_are_refused(task, held):
+    from bonft.tasks import Example
+    from bonft.tasks.workshop import ProgramTests
+
+    judge = ProgramJudge(runner=CodeRunner({}, workers=1))
+    with pytest.raises(ValueError, match=r"examples\[0\] must carry meta\['tests'\]"):
+        ProgramTests([Example(prompt="boxes 4: ?", answer="-(-x//4)", reference="x//4", meta={"family": "boxes"})], judge)
+    with pytest.raises(ValueError, match="two different tests for prompt"):
+        e = held[0]
+        ProgramTests([e, Example(e.prompt, e.answer, e.reference, meta={**e.meta, "tests": "assert f(1) == 1\n"})], judge)
+    verify = task.verifier(held)
+    with pytest.raises(TypeError, match=r"responses\[1\] must be a str, got bytes"):
+        verify([held[0].prompt] * 2, ["x", b"x"])
+    with pytest.raises(ValueError, match="responses must have the same length as prompts"):
+        verify([held[0].prompt] * 2, ["x"])
+
+
 def test_a_runner_without_run_code_is_refused():
     with pytest.raises(TypeError, match="runner must have a run_code"):
         ProgramJudge(runner=object())

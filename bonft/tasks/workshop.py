@@ -56,8 +56,9 @@ from typing import Any, Sequence
 import numpy as np
 
 from bonft._core.checks import check_fraction, check_int, check_real
-from bonft.tasks.base import Example, Task, _check_examples, _check_pairs
+from bonft.tasks.base import Example, Task, _check_examples
 from bonft.verifiers.base import Verdicts
+from bonft.verifiers.scoring import check_batch
 
 FAMILIES = ("pieces", "offcut", "cost", "label", "boxes")
 PLAIN = FAMILIES[:-1]
@@ -173,9 +174,9 @@ class ProgramJudge:
         out = set()
         for i, ex in enumerate(_check_examples(examples)):
             tests, visible = (ex.meta or {}).get("tests"), (ex.meta or {}).get("visible")
-            if not isinstance(tests, str) or not isinstance(visible, tuple):
-                raise ValueError(f"examples[{i}] must carry meta['tests'] (str) and meta['visible'] (tuple) as the "
-                                 f"workshop task makes them, got meta keys {sorted(ex.meta or {})}")
+            if not isinstance(tests, str) or not isinstance(visible, tuple) or not visible:
+                raise ValueError(f"examples[{i}] must carry meta['tests'] (str) and meta['visible'] (a non-empty tuple of "
+                                 f"(x, value) pairs) as the workshop task makes them, got meta keys {sorted(ex.meta or {})}")
             if self.tests.get(ex.prompt, tests) != tests:
                 raise ValueError(f"examples give two different tests for prompt {ex.prompt!r}")
             self.tests[ex.prompt], self.visible[ex.prompt] = tests, visible
@@ -193,7 +194,7 @@ class ProgramJudge:
 
     def judge(self, prompts: Sequence[str], responses: Sequence[str], allowed: set[str]):
         """``(N,) -> passed (N,) float, visible share (N,) float, infra failure (N,) bool, reasons``."""
-        prompts, responses = _check_pairs(prompts, responses)
+        prompts, responses = check_batch(prompts, responses)
         for i, p in enumerate(prompts):
             if p not in allowed:
                 raise ValueError(f"prompts[{i}] is not one of the {len(allowed)} prompts this verifier was built for: {p!r}")
