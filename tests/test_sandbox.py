@@ -64,7 +64,19 @@ def _ours_or_orphan(pid: int) -> bool:
 
 def _sandbox_processes() -> list[int]:
     """Live processes still running a sandbox bootstrap (the wire protocol's text is on their command
-    line) that this test started or that outlived their parents."""
+    line) that this test started or that outlived their parents; asked again for up to 5 s while any
+    is listed (another program's sandbox dying on the same machine is briefly an orphan)."""
+    import time
+
+    end = time.monotonic() + 5
+    while True:
+        out = _sandbox_processes_now()
+        if not out or time.monotonic() > end:
+            return out
+        time.sleep(0.1)
+
+
+def _sandbox_processes_now() -> list[int]:
     out = []
     for pid in filter(str.isdigit, os.listdir("/proc")):
         try:

@@ -5,7 +5,6 @@ import errno
 import os
 import signal
 import stat
-import subprocess
 import sys
 
 
@@ -44,6 +43,8 @@ def kill_uid(uid: int) -> None:
             os.kill(-1, signal.SIGKILL)
         except OSError:
             pass
+
+    import subprocess  # here: the pool's workers load this module and fork from it, lighter without
 
     try:
         subprocess.run(["/bin/true"] if os.path.exists("/bin/true") else [sys.executable, "-c", "pass"],

@@ -33,7 +33,6 @@ candidate's process with the same layers and working directory, doing nothing.
 """
 import builtins
 import gc
-import importlib.util
 import os
 import signal
 import struct
@@ -48,20 +47,35 @@ PR_SET_DUMPABLE = 4
 
 
 def _load(name):
-    spec = importlib.util.spec_from_file_location("bonft_sandbox_" + name, os.path.join(_HERE, name + ".py"))
-    mod = importlib.util.module_from_spec(spec)
-    sys.modules[spec.name] = mod
-    spec.loader.exec_module(mod)
+    """The sandbox module ``name`` from its file, without the package (whose imports a worker does not
+    need: every module loaded here is copied into every fork)."""
+    path = os.path.join(_HERE, name + ".py")
+    mod = types.ModuleType("bonft_sandbox_" + name)
+    mod.__file__ = path
+    sys.modules[mod.__name__] = mod
+    with open(path, encoding="utf-8") as f:
+        exec(compile(f.read(), path, "exec"), mod.__dict__)
     return mod
 
 
 wire, oslayer, outcome, procs = _load("wire"), _load("oslayer"), _load("outcome"), _load("procs")
 import ctypes  # noqa: E402 - after the sandbox modules, which import it too
 import json  # noqa: E402
-import tempfile  # noqa: E402
 
-for _name in ("base64", "collections", "decimal", "errno", "fractions", "io", "math", "selectors"):
-    __import__(_name)  # what the bootstraps import: every fork starts with it loaded
+for _name in ("base64", "collections", "errno", "io", "math", "selectors"):
+    __import__(_name)  # what the bootstraps import: every fork starts with it loaded (not fractions or
+    # decimal, which only some candidates need: every page of the worker makes each fork dearer)
+
+
+def _mkdtemp(prefix, where):
+    """A new directory of mode 0700 (tempfile.mkdtemp, without loading tempfile and random)."""
+    while True:
+        path = os.path.join(where, prefix + os.urandom(6).hex())
+        try:
+            os.mkdir(path, 0o700)
+            return path
+        except FileExistsError:
+            continue
 
 
 def _boot_code(name):
@@ -171,7 +185,7 @@ class Worker:
         os.environ.clear()
         os.environ.update(oslayer.env(workdir))
         if "tempfile" in sys.modules:
-            tempfile.tempdir = None  # read from TMPDIR again, as a fresh interpreter would
+            sys.modules["tempfile"].tempdir = None  # read from TMPDIR again, as a fresh interpreter would
         main = types.ModuleType("__main__")
         main.__dict__["__builtins__"] = builtins
         sys.modules["__main__"] = main
@@ -261,8 +275,8 @@ class Worker:
     # -- one job -----------------------------------------------------------------------------
     def _mkdirs(self, seq):
         tag = "%d.%d." % (os.getpid(), seq)
-        workdir = tempfile.mkdtemp(prefix="bonft-sandbox-" + tag, dir=self.tmp)
-        judgedir = tempfile.mkdtemp(prefix="bonft-tests-" + tag, dir=self.tmp)
+        workdir = _mkdtemp("bonft-sandbox-" + tag, self.tmp)
+        judgedir = _mkdtemp("bonft-tests-" + tag, self.tmp)
         if self.root:
             os.chown(workdir, self.cuid, self.cuid)
             os.chown(judgedir, self.juid, self.juid)
