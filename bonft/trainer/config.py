@@ -28,6 +28,7 @@ from __future__ import annotations
 import collections
 import dataclasses
 import json
+import math
 import os
 import random
 import sys
@@ -54,6 +55,7 @@ from bonft._core.checks import (
     check_real,
     check_seed,
 )
+from bonft.objectives.validation import RATIO_LEVELS
 from bonft.tasks import TASKS, get_task
 from bonft.tasks.base import family_counts
 from bonft.trainer.objectives import OBJECTIVES  # the registry: objective name -> credit function + options
@@ -76,6 +78,7 @@ MODEL_KEYS = ("arch", "layers", "width", "heads", "max_positions")
 class DeprecatedKeyWarning(FutureWarning):
     """A recipe key or objective under its old spelling (read as the new one)."""
 OPTIMIZERS = ("adamw", "sgd")
+MAX_UPDATES_PER_BATCH = 64  # updates_per_batch: beyond this a reused batch has drifted far from its sampler
 TOKEN_REDUCTIONS = ("sum", "mean")
 
 
@@ -165,6 +168,19 @@ class TrainConfig:
     weight_decay: float = _f(0.0, "Weight decay (both stages; decoupled for AdamW, L2 for SGD).", group="rl")
     grad_accum: int = _f(1, "Micro-batches per optimizer step; prompts_per_step must divide evenly.", group="rl")
     clip_grad_norm: float = _f(1.0, "Clip the gradient's global norm to this value; 0 = no clipping.", group="rl")
+    updates_per_batch: int = _f(1,
+                                "Optimizer updates per sampled batch, 1..64: the batch is sampled, scored and credited "
+                                "once, then reused with importance ratios pi/pi_old (pi_old = the policy that sampled, "
+                                "from the first update's forward); 1 = on-policy. The learning rate and the step label "
+                                "count sampled batches (step-S holds S batches' updates).", group="rl")
+    ratio_level: str = _f("sequence",
+                          "Where the reuse ratio is taken (updates_per_batch > 1): 'sequence' (one per response), "
+                          "'token' (one per token) or 'pool' (one per prompt's pool; unbiased, no clipping).",
+                          group="rl")
+    clip_ratio: float = _f(0.0,
+                           "Clipped surrogate (Schulman et al. 2017) on reused batches: drop a term's gradient once "
+                           "its ratio leaves [1 - clip_ratio, 1 + clip_ratio] in its credit's direction; 0 = off. "
+                           "Needs updates_per_batch > 1 and ratio_level 'sequence' or 'token'.", group="rl")
     anchor_weight: float = _f(0.0,
                               "Weight of the KL penalty to the anchor, the policy at the start of the RL stage "
                               "(saved in RUN/rl_start); 0 = none.", group="rl")
@@ -278,6 +294,20 @@ def validate(c: TrainConfig) -> None:
                  "warm_start_batch_size", "keep_checkpoints", "layers", "width", "heads", "max_positions", "n_boot"):
         check_int(name, getattr(c, name), min=1)
     check_work_sizes(c)
+    check_int("updates_per_batch", c.updates_per_batch, min=1, max=MAX_UPDATES_PER_BATCH)
+    check_choice("ratio_level", c.ratio_level, RATIO_LEVELS)
+    if isinstance(c.clip_ratio, bool) or not isinstance(c.clip_ratio, (int, float)):
+        raise TypeError(f"clip_ratio must be a number >= 0 (0 = off), got {type(c.clip_ratio).__name__} {c.clip_ratio!r}")
+    if not (math.isfinite(c.clip_ratio) and c.clip_ratio >= 0):
+        raise ValueError(f"clip_ratio must be a finite number >= 0 (0 = off), got clip_ratio={c.clip_ratio}")
+    c.clip_ratio = float(c.clip_ratio)
+    if c.updates_per_batch == 1 and (c.clip_ratio or c.ratio_level != "sequence"):
+        key = "clip_ratio" if c.clip_ratio else "ratio_level"
+        raise ValueError(f"{key} needs updates_per_batch > 1 (with one update per batch every ratio is 1), "
+                         f"got {key}={getattr(c, key)!r} with updates_per_batch=1")
+    if c.clip_ratio and c.ratio_level == "pool":
+        raise ValueError(f"clip_ratio applies to ratio_level 'sequence' or 'token', got ratio_level='pool' with "
+                         f"clip_ratio={c.clip_ratio} (the pool ratio is unbiased unclipped; set clip_ratio=0)")
     if c.prompts_per_step % c.grad_accum:
         raise ValueError(f"prompts_per_step must be divisible by grad_accum (grad_accum={c.grad_accum}), got prompts_per_step={c.prompts_per_step}")
     for name in ("lr", "warm_start_lr", "temperature", "eval_temperature", "adam_eps"):

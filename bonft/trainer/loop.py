@@ -13,7 +13,9 @@ Everything random in a step is drawn from seeds derived from ``(seed, step, rank
 (each prompt's samples from ``(seed, step, global slot of the prompt)``), so a run
 resumed from any checkpoint ends with the same weights as an uninterrupted one (the
 optimizer state and the RNG states are in the checkpoint). A checkpoint labelled
-``step-S`` always holds the weights after exactly S optimizer steps.
+``step-S`` always holds the weights after exactly S steps; an RL step with
+``updates_per_batch = U`` is U optimizer updates on one sampled batch, each after the
+finite check (a checkpoint is never written between them).
 
 Under ``torchrun`` (see docs/scaling.md and :mod:`bonft.trainer.distributed`) the
 trainer joins the process group, wraps the model in DDP and gives each rank a
@@ -133,6 +135,9 @@ def _train(run: Run, resume: bool, progress: bool, owns_group: bool) -> dict:
                     _save(run, s)
     except NonFiniteStep as err:  # nothing was applied: the weights are still those of step s
         bar.close()
+        if run.partial_step:  # a later update of a reused batch: the step's first updates are in the weights
+            raise ValueError(f"{err}; the update was not applied, but earlier updates of the same batch were: "
+                             f"no checkpoint was written, the last one on disk holds the last whole step") from None
         if s > start and _finite_weights(run):
             raise ValueError(f"{err}; the update was not applied, {_save(run, s)} holds the last good weights") from None
         raise ValueError(f"{err}; the update was not applied, no checkpoint was written or changed") from None
@@ -141,7 +146,7 @@ def _train(run: Run, resume: bool, progress: bool, owns_group: bool) -> dict:
         raise
     except KeyboardInterrupt:
         bar.close()
-        if s > start and not run.updating:  # mid optimizer.step(): half-updated weights, do not save
+        if s > start and not run.updating and not run.partial_step:  # half-updated weights, or part of a step's updates: do not save
             _save(run, s)
             if run.is_main:
                 print(f"\ninterrupted: checkpoint of step {s} written to {run.out}/checkpoints; continue with --resume")
@@ -164,22 +169,14 @@ def _one_step(run: Run, stage: str, s: int) -> dict:
     torch.manual_seed(Stream.STEP.seed(cfg.seed, step=s, rank=run.rank))  # anything else random in the step
     run.model.train()
     run.optimizer.zero_grad(set_to_none=True)
-    with clock("step"):
-        rec = (steps.sft_step if stage == "sft" else steps.rl_step)(run, s, clock)  # gradients: the global-batch mean (DDP)
-        with clock("optimizer"):
-            grads = [p.grad for p in run.module.parameters() if p.grad is not None]
-            norm = torch.nn.utils.get_total_norm(grads)  # one device sync per step, for the check
-            grad_norm = float(norm)
-            if not (math.isfinite(rec["loss"]) and math.isfinite(grad_norm)):
-                run.optimizer.zero_grad(set_to_none=True)
-                raise NonFiniteStep(f"step {s + 1} has a non-finite {'loss' if not math.isfinite(rec['loss']) else 'gradient'} "
-                                    f"(loss {rec['loss']}, gradient norm {grad_norm}); lower lr (now {lr:.3g}) or check the verifier")
-            clipped = 0 < cfg.clip_grad_norm < grad_norm
-            if clipped:
-                torch.nn.utils.clip_grads_with_norm_(grads, cfg.clip_grad_norm, norm)
-            run.updating = True  # an interrupt inside optimizer.step() leaves half-updated weights
-            run.optimizer.step()
-            run.updating = False
+    run.apply_update = lambda loss, what="": _apply_update(run, s, lr, loss, clock, what)  # reused batches (rl_step)
+    try:
+        with clock("step"):
+            rec = (steps.sft_step if stage == "sft" else steps.rl_step)(run, s, clock)  # gradients: the global-batch mean (DDP)
+            grad_norm, clipped = _apply_update(run, s, lr, rec["loss"], clock)
+    finally:
+        run.apply_update = None
+    run.partial_step = False  # every update of the step is applied: the weights are those of step s + 1
     run.model.eval()
     times = clock.metrics()
     rec.update({"kind": "train", "stage": stage, "step": s + 1, "lr": lr, GRAD_NORM: grad_norm,
@@ -187,6 +184,30 @@ def _one_step(run: Run, stage: str, s: int) -> dict:
     if stage == "rl":
         rec["samples_per_s"] = cfg.prompts_per_step * cfg.n / times["time/step"]
     return rec
+
+
+def _apply_update(run: Run, s: int, lr: float, loss: float, clock: Stopwatch, what: str = "") -> tuple[float, bool]:
+    """Check the loss and gradient are finite (before anything changes the weights), clip, ``optimizer.step()``.
+
+    -> (gradient norm before clipping, whether it was clipped). ``what`` names an update of a reused
+    batch in the error (``rl_step`` calls this between the updates of one sampled batch).
+    """
+    cfg = run.cfg
+    with clock("optimizer"):
+        grads = [p.grad for p in run.module.parameters() if p.grad is not None]
+        norm = torch.nn.utils.get_total_norm(grads)  # one device sync per update, for the check
+        grad_norm = float(norm)
+        if not (math.isfinite(loss) and math.isfinite(grad_norm)):
+            run.optimizer.zero_grad(set_to_none=True)
+            raise NonFiniteStep(f"step {s + 1}{what} has a non-finite {'loss' if not math.isfinite(loss) else 'gradient'} "
+                                f"(loss {loss}, gradient norm {grad_norm}); lower lr (now {lr:.3g}) or check the verifier")
+        clipped = 0 < cfg.clip_grad_norm < grad_norm
+        if clipped:
+            torch.nn.utils.clip_grads_with_norm_(grads, cfg.clip_grad_norm, norm)
+        run.updating = True  # an interrupt inside optimizer.step() leaves half-updated weights
+        run.optimizer.step()
+        run.updating = False
+    return grad_norm, clipped
 
 
 # ----------------------------------------------------------------------------- setup and restore

@@ -152,14 +152,20 @@ def shuffle_pools(seeds: Sequence[int], *arrays: np.ndarray) -> tuple[np.ndarray
 def policy_loss(logprobs: torch.Tensor, credit: torch.Tensor, *, mask: torch.Tensor | None, token_reduction: str,
                 anchor_logprobs: torch.Tensor | None = None, anchor_weight: float = 0.0,
                 reference_logprobs: torch.Tensor | None = None, reference_mask: torch.Tensor | None = None,
-                ) -> tuple[torch.Tensor, dict]:
+                sampling_logp: torch.Tensor | None = None, clip_ratio: float | None = None,
+                ratio_level: str | None = None) -> tuple[torch.Tensor, dict]:
     """Sum over prompts of ``-sum_i w_bi log pi(y_bi)`` (+ anchor KL) (``- log pi(y*_b)`` with a reference response).
 
-    logprobs, mask, anchor_logprobs: (b, n, T); credit: (b, n); reference_logprobs, reference_mask: (b, T)
-    -> loss (), info (name -> number; ``kl`` when an anchor is given).
+    logprobs, mask, anchor_logprobs, sampling_logp: (b, n, T); credit: (b, n); reference_logprobs,
+    reference_mask: (b, T) -> loss (), info (name -> number; ``kl`` when an anchor is given).
+    With ``sampling_logp`` (a reused batch) each credit is weighted by the importance ratio
+    (:func:`bonft.objectives.losses.policy_gradient_loss`), info adds ``ratio_ess`` (and ``clip_frac``).
     """
+    reuse = {} if sampling_logp is None else dict(sampling_logprobs=sampling_logp, clip_ratio=clip_ratio,
+                                                     ratio_level=ratio_level)
     loss, info = L.policy_gradient_loss(logprobs, credit, mask=mask, token_reduction=token_reduction, reduction="sum",
-                                        anchor_logprobs=anchor_logprobs, anchor_weight=anchor_weight, return_info=True)
+                                        anchor_logprobs=anchor_logprobs, anchor_weight=anchor_weight, return_info=True,
+                                        **reuse)
     info = {key: float(v) for key, v in info.items()}
     if reference_logprobs is not None:
         nll = L.nll_loss(reference_logprobs, mask=reference_mask, token_reduction=token_reduction, reduction="sum")

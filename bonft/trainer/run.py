@@ -105,6 +105,8 @@ class Run:
     anchor_model: Any = None
     ctx: Any = None  # bonft.trainer.distributed.DistContext
     updating: bool = False  # inside optimizer.step(): the weights are half-updated
+    partial_step: bool = False  # some, not all, of a step's updates (updates_per_batch > 1) are in the weights
+    apply_update: Any = None  # during a step: (loss, what) -> (grad norm, clipped); check, clip, optimizer.step()
 
     @property
     def module(self) -> Any:

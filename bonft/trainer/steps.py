@@ -11,6 +11,14 @@ One RL step, for each micro-batch of this rank's prompts::
     -> the credit goes to the device, once
     -> forward (bonft.generation.sequence_logprobs) -> loss (bonft.objectives.losses) -> backward
 
+With ``updates_per_batch = U > 1`` the first update is exactly that (on-policy) and keeps, per
+micro-batch, the samples, the credit, the anchor's log-probs and the log-probs of the policy that
+sampled (detached, from that first forward). Then ``U - 1`` times: apply the update so far
+(``run.apply_update``: the loop's finite check, clip and optimizer step), then forward -> loss with
+``sampling_logprobs`` (importance ratio pi/pi_old, ``ratio_level``, ``clip_ratio``) -> backward on
+the same samples. The loop applies the last update; the step logs the last update's ``loss`` and
+``ratio/...`` monitors and ``grad/norm``, and everything else of the sampled batch.
+
 Scores and rewards stay on the host: credit functions compute there, and only the
 ``(b, n)`` credit crosses to the training device.
 """
@@ -59,6 +67,7 @@ def rl_step(run: Run, step: int, clock: Stopwatch) -> dict:
     slots = np.arange(*shard_bounds(B, rank=run.rank, world_size=run.world))  # positions in the global batch
     moments = GradientMoments() if cfg.snr_every and (step - cfg.warm_start_steps) % cfg.snr_every == 0 else None
     acc: dict = {}
+    kept: list = []  # updates_per_batch > 1: what each micro-batch's later updates reuse
     for mb, sl in zip(np.array_split(idx, cfg.grad_accum), np.array_split(slots, cfg.grad_accum)):
         ex = [run.train[i] for i in mb]
         prompts, b = [e.prompt for e in ex], len(ex)
@@ -80,7 +89,9 @@ def rl_step(run: Run, step: int, clock: Stopwatch) -> dict:
             if run.anchor_model is not None:
                 with torch.no_grad():
                     anchor_logp = sequence_logprobs(run.anchor_model, *rows, temperature=T, top_p=cfg.top_p)
-            loss, info = _pool_loss(run, run.model, rows, reference_rows, credit, anchor_logp)
+            loss, info, logp = _pool_loss(run, run.model, rows, reference_rows, credit, anchor_logp)
+        if cfg.updates_per_batch > 1:  # the sampling policy's log-probs: this first forward, before any update
+            kept.append((rows, reference_rows, credit, anchor_logp, logp.detach()))
         with clock("backward"):
             (loss * run.world / B).backward()  # x W/B: DDP averages over W ranks (global_mean_scale)
         if moments is not None:
@@ -94,10 +105,44 @@ def rl_step(run: Run, step: int, clock: Stopwatch) -> dict:
                          *((info_metric(key), float(v) * b / B) for key, v in info.items())]:
             acc[key] = acc.get(key, 0.0) + val
     acc = reduce_metrics(acc, run.ctx)  # per-rank parts of global means -> their sum
+    if kept:
+        acc.update(_reuse(run, kept, acc["loss"], clock))
     acc["k"] = k
     if moments is not None:
         acc[GRAD_SNR] = moments.snr(run.ctx)
     return acc
+
+
+def _reuse(run: Run, kept: list, loss: float, clock: Stopwatch) -> dict:
+    """Updates 2..U of one sampled batch; the gradient of the last is left for the loop to apply.
+
+    ``kept``: per micro-batch (rows, reference_rows, credit, anchor_logp, sampling_logp);
+    ``loss``: the first update's (global) loss. -> the last update's loss and ratio monitors.
+    """
+    cfg, B, U = run.cfg, run.cfg.prompts_per_step, run.cfg.updates_per_batch
+    clip = cfg.clip_ratio or None
+    out: dict = {}
+    for u in range(1, U):
+        run.apply_update(loss, f" (update {u} of {U} on its sampled batch)")
+        run.partial_step = True
+        run.optimizer.zero_grad(set_to_none=True)
+        part: dict = {}
+        for rows, reference_rows, credit, anchor_logp, old in kept:
+            b = credit.shape[0]
+            with clock("forward"):
+                mb_loss, info, _ = _pool_loss(run, run.model, rows, reference_rows, credit, anchor_logp,
+                                              sampling_logp=old, clip_ratio=clip, ratio_level=cfg.ratio_level)
+            with clock("backward"):
+                (mb_loss * run.world / B).backward()
+            for key, val in [("loss", float(mb_loss.detach()) / B),
+                             *((info_metric(key), float(v) * b / B) for key, v in info.items() if key in _RATIO_INFO)]:
+                part[key] = part.get(key, 0.0) + val
+        out = reduce_metrics(part, run.ctx)
+        loss = out["loss"]
+    return out
+
+
+_RATIO_INFO = ("ratio_ess", "clip_frac")  # what a reused update logs besides its loss
 
 
 def _host_mean(a) -> float:
@@ -131,16 +176,22 @@ def _score(run: Run, prompts: list[str], texts: list[list[str]], references: lis
 
 
 def _pool_loss(run: Run, model, rows: tuple, reference_rows: tuple | None, credit: torch.Tensor,
-               anchor_logp: torch.Tensor | None) -> tuple[torch.Tensor, dict]:
-    """Summed loss of the prompts in ``rows`` (prompt_tokens, prompt_valid, response_tokens, response_valid)."""
+               anchor_logp: torch.Tensor | None, **reuse) -> tuple[torch.Tensor, dict, torch.Tensor]:
+    """Summed loss of the prompts in ``rows`` (prompt_tokens, prompt_valid, response_tokens, response_valid).
+
+    ``reuse``: ``sampling_logp``, ``clip_ratio``, ``ratio_level`` for a reused batch (none: on-policy).
+    -> loss, info, the (b, n, T) log-probs of the responses.
+    """
     cfg = run.cfg
     # log-probs of the policy that drew the samples: same temperature and top-p
     logp = sequence_logprobs(model, *rows, temperature=cfg.temperature, top_p=cfg.top_p)
     ref_lp = ref_mask = None
     if reference_rows is not None:  # (b, 1, T) -> (b, T): the reference response
         ref_lp, ref_mask = sequence_logprobs(model, *reference_rows)[:, 0], reference_rows[3][:, 0]
-    return policy_loss(logp, credit, mask=rows[3], token_reduction=cfg.token_reduction, anchor_logprobs=anchor_logp,
-                       anchor_weight=cfg.anchor_weight, reference_logprobs=ref_lp, reference_mask=ref_mask)
+    loss, info = policy_loss(logp, credit, mask=rows[3], token_reduction=cfg.token_reduction,
+                             anchor_logprobs=anchor_logp, anchor_weight=cfg.anchor_weight,
+                             reference_logprobs=ref_lp, reference_mask=ref_mask, **reuse)
+    return loss, info, logp
 
 
 def _add_prompt_gradients(run: Run, moments: GradientMoments, rows: tuple, reference_rows: tuple | None,
@@ -156,5 +207,5 @@ def _add_prompt_gradients(run: Run, moments: GradientMoments, rows: tuple, refer
 
     for j in range(credit.shape[0]):
         anchor_j = anchor_logp[j:j + 1] if anchor_logp is not None else None
-        loss, _ = _pool_loss(run, run.module, one(rows, j), one(reference_rows, j), credit[j:j + 1], anchor_j)
+        loss, _, _ = _pool_loss(run, run.module, one(rows, j), one(reference_rows, j), credit[j:j + 1], anchor_j)
         moments.add(torch.autograd.grad(loss, params, allow_unused=True, materialize_grads=True))
