@@ -3,7 +3,8 @@
 Three kinds of candidate (our own):
 
 * trivial: ``x = 1`` against ``assert x == 1``;
-* typical: a small function (run-length encoding) against five asserts, one call each;
+* typical: the workshop task's kind (``bonft.tasks.workshop``): a one-line helper against its prompt's
+  two visible asserts and 26 hidden inputs, one call each;
 * hostile: in turn a candidate that hangs (ended at ``wall_time``), one that forks until the
   process limit stops it, and one that allocates past ``memory_mb``.
 
@@ -15,7 +16,7 @@ namespaces, fresh tmpfs, own uid, limits, seccomp filter) in a fresh working dir
 All in one process on the same machine. Goals: the pool at least 250 trivial candidates/s on 2
 cores, and within 2x the floor (pool time per candidate / floor time per candidate <= 2).
 
-Run: python benchmarks/bench_coderunner.py [--quick] [--workers W]
+Run: python benchmarks/bench_coderunner.py [--quick] [--workers W]  (W: default twice the cores)
 Prints candidates/s, CPU ms per candidate (this process and its children), the ratios, and the
 machine's load (``os.getloadavg``) before and after: timings on a shared machine say little.
 """
@@ -26,25 +27,13 @@ import os
 import resource
 import time
 
+from bonft.tasks.workshop import hidden_seed, solution_source, unit_tests
 from bonft.verifiers import CodeRunner
 
 TRIVIAL = ("x = 1", "assert x == 1")
-TYPICAL = ("""
-def encode(s):
-    out = []
-    for ch in s:
-        if out and out[-1][0] == ch:
-            out[-1][1] += 1
-        else:
-            out.append([ch, 1])
-    return [(c, n) for c, n in out]
-""", """
-assert encode("") == []
-assert encode("a") == [("a", 1)]
-assert encode("aab") == [("a", 2), ("b", 1)]
-assert encode("abba") == [("a", 1), ("b", 2), ("a", 1)]
-assert encode("zzzz") == [("z", 4)]
-""")
+# the workshop task's own kind: a one-line helper against its prompt's 2 visible asserts and 26 hidden inputs
+_PROMPT = "boxes 4: f(9)=3 f(6)=2 ?"
+TYPICAL = (solution_source("-(-x//4)"), unit_tests("boxes", 4, [(9, 3), (6, 2)], hidden_seed(_PROMPT)))
 HOSTILE = [
     ("while True:\n    pass", "pass"),
     ("import os\nwhile True:\n    os.fork()", "pass"),
@@ -83,7 +72,8 @@ def measure(fn, n: int, pids=lambda: []) -> tuple[float, float, list]:
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--quick", action="store_true", help="fewer candidates (a smoke run)")
-    ap.add_argument("--workers", type=int, default=2)
+    ap.add_argument("--workers", type=int, default=2 * (os.cpu_count() or 1),
+                    help="workers of both runners (default: twice the cores, the pool's default up to 8)")
     args = ap.parse_args()
     W = args.workers
     n_single, n_pool, n_hostile = (16, 60, 6) if args.quick else (64, 600, 12)

@@ -163,7 +163,8 @@ class CodeRunner:
     file_size_mb:     largest file it may write (RLIMIT_FSIZE).
     max_processes:    processes (and threads) it may have, itself included (RLIMIT_NPROC + audit hook).
     max_output_bytes: stdout and stderr are each cut here; more -> killed, ``limit-exceeded``.
-    workers:          candidates run in parallel (threads driving subprocesses).
+    workers:          candidates run in parallel (threads driving subprocesses; with ``pool=True``
+                      the pool's workers). Default min(4, cores), with ``pool=True`` min(8, 2 x cores).
     python:           interpreter for the candidates. Default: this one, or when
                       running as root one that the unprivileged sandbox uid can
                       execute (e.g. ``/usr/bin/python3`` when this one lives
@@ -205,7 +206,9 @@ class CodeRunner:
         self.file_size_mb = _int("file_size_mb", file_size_mb, lo=0, hi=1 << 20)
         self.max_processes = _int("max_processes", max_processes, lo=1, hi=4096)
         self.max_output_bytes = _int("max_output_bytes", max_output_bytes, lo=1, hi=1 << 30)
-        self.workers = min(4, os.cpu_count() or 1) if workers is None else _int("workers", workers, lo=1, hi=999)
+        if workers is None:  # a pool worker waits on pipes for part of each candidate: twice the cores keep them busy
+            workers = min(8, 2 * (os.cpu_count() or 1)) if pool is True else min(4, os.cpu_count() or 1)
+        self.workers = _int("workers", workers, lo=1, hi=999)
         if python is not None and not isinstance(python, str):
             raise TypeError(f"python must be None or a path to an interpreter, got {type(python).__name__}")
         self.python = python
