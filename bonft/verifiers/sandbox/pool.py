@@ -36,10 +36,12 @@ import tempfile
 import threading
 import time
 from collections import deque
+from glob import glob
 from typing import Sequence
 
 from bonft.verifiers.sandbox.oslayer import LAYER_NAMES, env
 from bonft.verifiers.sandbox.outcome import frame
+from bonft.verifiers.sandbox.procs import remove_tree
 
 _HERE = os.path.dirname(os.path.abspath(__file__))
 _UID_BASE = 1_500_000_000  # pool uids: _UID_BASE + 2000 * (random pool id) + 2 * worker (+ 1: tests)
@@ -191,10 +193,6 @@ class SandboxPool:
         """Directories a dead worker's supervisors left (named after the worker's pid)."""
         if not pid:
             return
-        from glob import glob
-
-        from bonft.verifiers.sandbox.procs import remove_tree
-
         base = tempfile.gettempdir()
         for d in glob(os.path.join(base, f"bonft-sandbox-{pid}.*")) + glob(os.path.join(base, f"bonft-tests-{pid}.*")):
             try:

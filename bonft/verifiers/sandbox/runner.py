@@ -74,6 +74,7 @@ from bonft._core.checks import check_int, check_real
 from bonft.verifiers.base import Verdicts
 from bonft.verifiers.sandbox.oslayer import LAYER_NAMES, env, make_preexec, rlimits
 from bonft.verifiers.sandbox.outcome import STATUSES, await_start, classify, collect  # noqa: F401 - STATUSES is public here
+from bonft.verifiers.sandbox.pool import SandboxPool
 from bonft.verifiers.sandbox.procs import kill_by_cwd, kill_uid, pids_of, remove_tree, user_tasks
 from bonft.verifiers.scoring import check_batch
 
@@ -289,8 +290,6 @@ class CodeRunner:
         python = self._interpreter()
         with self._lock:
             if self._pool is None:
-                from bonft.verifiers.sandbox.pool import SandboxPool
-
                 limits = rlimits(cpu_time=self.cpu_time, memory_mb=self.memory_mb, file_size_mb=self.file_size_mb,
                                  nproc=self.max_processes)
                 config = {"limits": [[r, s, h] for r, (s, h) in limits], "wall_time": self.wall_time,
