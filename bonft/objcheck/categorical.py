@@ -30,7 +30,7 @@ from bonft.objcheck.enumeration import (
     value_fn,
 )
 
-__all__ = ["ToyPolicy", "random_policy", "check_policy", "softmax", "target_gradient", "categorical_case"]
+__all__ = ["ToyPolicy", "random_policy", "check_policy", "softmax", "target_gradient", "categorical_case", "reuse_bias"]
 
 
 @dataclass
@@ -120,11 +120,54 @@ def _reinforce(t: Target, pol: ToyPolicy, p: np.ndarray, k: int, n: int,
     return mean, float(P @ ((g - mean) ** 2).sum(1))
 
 
+def reuse_bias(Y: np.ndarray, logc: np.ndarray, w: np.ndarray, p: np.ndarray, q: np.ndarray, exact: np.ndarray,
+               clip_ratio: float | None, extra: np.ndarray | None = None) -> dict:
+    """Bias of the importance-weighted (and clipped) gradient when the pools come from ``q``, not ``p``.
+
+    Y: (M, n) every pool, logc: (M,) log multiplicities, w: (M, n) the credit, p: (V,) the current policy,
+    q: (V,) the policy that sampled, exact: (V,) the target's gradient at ``p`` (w.r.t. the logits);
+    extra: a term added to every pool's estimate exactly (the reference term of best_of_k_sft).
+
+    Each sample's credit is weighted by its ratio ``r_i = p(y_i)/q(y_i)`` (one draw: sequence = token level),
+    and with ``clip_ratio = eps`` a term is dropped when ``r_i > 1 + eps`` with ``w_i > 0`` or ``r_i < 1 - eps``
+    with ``w_i < 0``: the gradient of the clipped surrogate ``min(r w, clip(r, 1 - eps, 1 + eps) w)``
+    (Schulman et al. 2017). The mean over pools drawn from ``q^n`` is exact (every pool enumerated).
+    -> relative biases ``|E_q[g] - grad V| / |grad V|`` clipped and unclipped, the clipped share of terms
+    (probability-weighted) and the mean estimates.
+    """
+    r = p[Y] / q[Y]  # (M, n)
+    P = np.exp(logc + np.log(q)[Y].sum(1))
+    unclipped = _pool_estimates(Y, w * r, p)
+    out = {"clip_ratio": clip_ratio}
+    if extra is not None:
+        unclipped = unclipped + extra
+    scale = max(float(np.linalg.norm(exact)), 1e-9)
+    mean_u = P @ unclipped
+    out["rel_bias_unclipped"] = float(np.linalg.norm(mean_u - exact)) / scale
+    out["estimate_unclipped"] = mean_u.tolist()
+    out["max_ratio"] = float(r.max())
+    out["min_ratio"] = float(r.min())
+    if clip_ratio is not None:
+        dropped = ((w > 0) & (r > 1 + clip_ratio)) | ((w < 0) & (r < 1 - clip_ratio))
+        clipped = _pool_estimates(Y, np.where(dropped, 0.0, w * r), p)
+        if extra is not None:
+            clipped = clipped + extra
+        mean_c = P @ clipped
+        out["rel_bias_clipped"] = float(np.linalg.norm(mean_c - exact)) / scale
+        out["max_abs_bias_clipped"] = float(np.abs(mean_c - exact).max())
+        out["clip_frac"] = float(P @ dropped.mean(1))
+        out["estimate_clipped"] = mean_c.tolist()
+    return out
+
+
 def categorical_case(credit, t: Target, pol: ToyPolicy, k: int, n: int, seed: int, *,
-                     grads: tuple[np.ndarray, np.ndarray] | None = None, progress: Progress | None = None) -> dict:
+                     grads: tuple[np.ndarray, np.ndarray] | None = None, progress: Progress | None = None,
+                     sampling_logits: np.ndarray | None = None, clip_ratio: float | None = None) -> dict:
     """Everything the check measures on one categorical policy (a dict of numbers and vectors).
 
     ``grads``: the target's exact and finite-difference gradients when already computed (:func:`target_gradient`).
+    ``sampling_logits``: the logits of a policy that sampled the pools instead (sample reuse): adds ``"reuse"``,
+    :func:`reuse_bias` of the importance-weighted gradient, clipped at ``clip_ratio`` if given.
     """
     p = softmax(pol.logits)
     V = len(p)
@@ -144,7 +187,13 @@ def categorical_case(credit, t: Target, pol: ToyPolicy, k: int, n: int, seed: in
     scale = max(float(np.linalg.norm(exact)), 1e-9)  # a zero gradient: errors below 1e-15 still pass
     err = est - exact
     ref = _reinforce(t, pol, p, k, n, progress)
+    reuse = None
+    if sampling_logits is not None:
+        extra = (np.eye(V)[pol.reference] - p) if t.name == "best_of_k_sft" else None
+        reuse = reuse_bias(Y, logc, w, p, softmax(sampling_logits), exact, clip_ratio, extra)
+        reuse["sampling_logits"] = np.asarray(sampling_logits, dtype=np.float64).tolist()
     return {
+        **({"reuse": reuse} if reuse is not None else {}),
         "outcomes": V, "pools": int(len(Y)), "ordered_pools": ordered,
         "rel_error": float(np.linalg.norm(err)) / scale, "max_abs_error": float(np.abs(err).max()),
         "projection": float(est @ exact) / scale**2, "cosine": float(est @ exact) / scale / max(float(np.linalg.norm(est)), 1e-300),

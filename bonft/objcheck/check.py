@@ -90,8 +90,21 @@ def _check_time_limit(time_limit) -> float | None:
     return time_limit
 
 
+def _check_reuse(reuse_shift, clip_ratio) -> tuple[float | None, float | None]:
+    """``reuse_shift``: a finite number > 0 or None; ``clip_ratio``: > 0 or None, and only with a shift."""
+    if reuse_shift is not None:
+        reuse_shift = check_positive("reuse_shift", reuse_shift)
+    if clip_ratio is not None:
+        clip_ratio = check_positive("clip_ratio", clip_ratio)
+        if reuse_shift is None:
+            raise ValueError(f"clip_ratio={clip_ratio:g} needs reuse_shift (how far the sampling policy's logits are "
+                             f"moved from the checked policy's): on-policy every ratio is 1 and nothing is clipped")
+    return reuse_shift, clip_ratio
+
+
 def check_objective(credit, *, target, k, n, policies=4, outcomes=4, seed=0, transformer=True,
-                    tolerance=1e-6, directions=3, mc_pools=400, time_limit=300.0) -> ObjectiveReport:
+                    tolerance=1e-6, directions=3, mc_pools=400, time_limit=300.0, reuse_shift=None,
+                    clip_ratio=None) -> ObjectiveReport:
     r"""Check that ``credit`` estimates the gradient of ``target`` without bias; report bias and variance.
 
     credit: ``(scores, rewards, *, k) -> w``, ``(B, n), (B, n) -> (B, n)`` (``"best_of_k_sft"``:
@@ -118,8 +131,18 @@ def check_objective(credit, *, target, k, n, policies=4, outcomes=4, seed=0, tra
 
     Problems are sentences with the numbers in ``report.problems``; ``report.ok`` is ``not problems``.
 
+    Sample reuse (``reuse_shift``, optionally ``clip_ratio``): on every categorical policy the pools are
+    also enumerated under a sampling policy moved away from it, logits ``theta + reuse_shift * z`` with
+    ``z`` standard normal (drawn from ``seed``), and the mean of the importance-weighted gradient
+    ``sum_i w_i r_i grad log pi(y_i)``, ``r_i = pi(y_i)/pi_old(y_i)``, is compared exactly with the
+    target's gradient at ``theta``; with ``clip_ratio = eps`` also the clipped surrogate's (Schulman et al.
+    2017: a term is dropped once its ratio leaves ``[1 - eps, 1 + eps]`` in its credit's direction).
+    The relative biases are reported per policy (``case["reuse"]``, :attr:`ObjectiveReport.clip_bias`),
+    not judged: clipping is biased by design, and so is the per-sample ratio for credit with k > 1
+    (see :mod:`bonft.objectives.losses`).
+
     References: Chow et al. 2024 (best-of-k targets); Chen et al. 2021 (pass@k); Kool et al. 2019
-    (leave-one-out REINFORCE).
+    (leave-one-out REINFORCE); Schulman et al. 2017 (the clipped surrogate).
     """
     if not callable(credit):
         raise TypeError(f"credit must be callable (scores, rewards, *, k) -> credit, got {type(credit).__name__}")
@@ -131,6 +154,8 @@ def check_objective(credit, *, target, k, n, policies=4, outcomes=4, seed=0, tra
     directions = check_int("directions", directions, min=1)
     mc_pools = check_int("mc_pools", mc_pools, min=2)
     time_limit = _check_time_limit(time_limit)
+    reuse_shift, clip_ratio = _check_reuse(reuse_shift, clip_ratio)
+    reuse_rng = np.random.default_rng([seed, 1])  # its own stream: the rest of the check draws as without reuse
     if not isinstance(transformer, bool):
         raise TypeError(f"transformer must be a bool, got {type(transformer).__name__} {transformer!r}")
     rng = np.random.default_rng(seed)
@@ -145,7 +170,7 @@ def check_objective(credit, *, target, k, n, policies=4, outcomes=4, seed=0, tra
         V = check_int("outcomes", outcomes, min=2, max=12)
         pols = []
     report = ObjectiveReport(target=t.name, k=k, n=n, tolerance=tolerance, time_limit=time_limit,
-                             policies_requested=requested)
+                             policies_requested=requested, reuse_shift=reuse_shift, clip_ratio=clip_ratio)
     progress = Progress()
     flat: list[int] = []
     try:
@@ -165,8 +190,12 @@ def check_objective(credit, *, target, k, n, policies=4, outcomes=4, seed=0, tra
                     flat.append(j)
                     if not given:
                         continue  # a drawn flat policy is skipped: it would pass any credit
+                sampling = None
+                if reuse_shift is not None:
+                    sampling = np.asarray(pol.logits, np.float64) + reuse_shift * reuse_rng.normal(size=len(pol.logits))
                 report.cases.append(categorical_case(credit, t, pol, k, n, seed + len(report.cases), grads=grads,
-                                                     progress=progress))
+                                                     progress=progress, sampling_logits=sampling,
+                                                     clip_ratio=clip_ratio))
             if transformer:
                 progress.policy, progress.pools = "the transformer", ""
                 ordered = any(c["ordered_pools"] for c in report.cases)

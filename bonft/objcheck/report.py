@@ -43,10 +43,25 @@ class ObjectiveReport:
     cases: list[dict] = field(default_factory=list)
     transformer: dict | None = None
     problems: list[str] = field(default_factory=list)
+    reuse_shift: float | None = None
+    clip_ratio: float | None = None
 
     @property
     def ok(self) -> bool:
         return not self.problems
+
+    @property
+    def clip_bias(self) -> float:
+        """Largest relative bias ``|E_old[g_clipped] - grad V| / |grad V|`` of the clipped importance-weighted
+        gradient over the policies (``check_objective(..., reuse_shift=..., clip_ratio=...)``); NaN if not measured."""
+        vals = [c["reuse"]["rel_bias_clipped"] for c in self.cases if c.get("reuse") and "rel_bias_clipped" in c["reuse"]]
+        return max(vals) if vals else math.nan
+
+    @property
+    def reuse_bias(self) -> float:
+        """Largest relative bias of the unclipped importance-weighted gradient (with ``reuse_shift``); NaN if not measured."""
+        vals = [c["reuse"]["rel_bias_unclipped"] for c in self.cases if c.get("reuse")]
+        return max(vals) if vals else math.nan
 
     @property
     def max_rel_error(self) -> float:
@@ -113,8 +128,8 @@ class ObjectiveReport:
         """Plain JSON-able dict with the verdict and the summary figures (None where not computed)."""
         d = asdict(self)
         d.update(ok=self.ok, max_rel_error=self.max_rel_error, max_abs_error=self.max_abs_error,
-                 variance_ratio=self.variance_ratio)
-        for key in ("max_rel_error", "max_abs_error", "variance_ratio"):
+                 variance_ratio=self.variance_ratio, clip_bias=self.clip_bias, reuse_bias=self.reuse_bias)
+        for key in ("max_rel_error", "max_abs_error", "variance_ratio", "clip_bias", "reuse_bias"):
             if isinstance(d[key], float) and not math.isfinite(d[key]):
                 d[key] = None
         return d
@@ -137,6 +152,22 @@ class ObjectiveReport:
             lines.append(f"  {j:>6} {c['outcomes']:>8} {c['pools']:>6} {c['rel_error']:>13.2e} {c['max_abs_error']:>9.2e} "
                          f"{c['projection']:>10.4f} {c['cosine']:>7.4f} {c['fd_error']:>23.1e} {c['variance']:>9.3g} "
                          f"{f(rv):>32} {f(ratio):>6}")
+        if self.reuse_shift is not None:
+            clip = f", clipped at clip_ratio={self.clip_ratio:g}" if self.clip_ratio is not None else ""
+            lines.append(f"  sample reuse: pools drawn from a policy whose logits are moved by {self.reuse_shift:g} x "
+                         f"N(0, 1), importance-weighted{clip} (exact, every pool enumerated)")
+            lines.append(f"  {'policy':>6} {'ratio range':>17} {'relative bias, unclipped':>24} "
+                         f"{'relative bias, clipped':>22} {'clipped share':>13}")
+            for j, c in enumerate(self.cases, 1):
+                u = c.get("reuse")
+                if not u:
+                    continue
+                rng = f"[{u['min_ratio']:.3g}, {u['max_ratio']:.3g}]"
+                lines.append(f"  {j:>6} {rng:>17} {u['rel_bias_unclipped']:>24.3e} "
+                             f"{f(u.get('rel_bias_clipped'), '.3e'):>22} {f(u.get('clip_frac'), '.3f'):>13}")
+            if self.clip_ratio is not None:
+                lines.append(f"  clipping's bias: largest relative bias of the clipped gradient {f(self.clip_bias, '.3g')} "
+                             f"(unclipped: {f(self.reuse_bias, '.3g')})")
         tr = self.transformer
         if tr:
             exact = f"{tr['pools']} pools exact" if tr["rel_error"] is not None else "pools not enumerable"
