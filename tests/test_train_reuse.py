@@ -120,6 +120,33 @@ def test_clip_ratio_logs_the_clipped_share(tmp_path, monkeypatch):
         assert 0 <= r["ratio/clip_frac"] <= 1 and 0 < r["ratio/ess"] <= 1
 
 
+@pytest.mark.parametrize("bad_update", [1, 2])
+def test_a_non_finite_update_of_a_reused_batch_is_refused_before_its_step(tmp_path, monkeypatch, bad_update):
+    # update 1 is the on-policy forward; update 2 the reused one. Neither is applied when non-finite, and once
+    # an earlier update of the batch is in the weights no checkpoint is written (it would hold part of a step).
+    monkeypatch.syspath_prepend(str(SCRIPTS))
+    real_pool_loss, calls = S._pool_loss, []
+
+    def pool_loss(run, model, rows, reference_rows, credit, anchor_logp, **reuse):
+        loss, info, logp = real_pool_loss(run, model, rows, reference_rows, credit, anchor_logp, **reuse)
+        calls.append(bool(reuse))
+        if (bad_update == 2) == bool(reuse) and len(calls) <= 2:
+            loss = loss * float("nan")
+        return loss, info, logp
+
+    monkeypatch.setattr(S, "_pool_loss", pool_loss)
+    steps_taken = []
+    real_apply = T._apply_update
+    monkeypatch.setattr(T, "_apply_update", lambda *a, **kw: (steps_taken.append(1), real_apply(*a, **kw))[1])
+    cfg = toy(tmp_path, f"nan{bad_update}", updates_per_batch=2)
+    with pytest.raises(ValueError, match=rf"step 1 \(update {bad_update} of 2 on its sampled batch\) has a non-finite "
+                                         rf"loss") as err:
+        T.train(cfg, progress=False)
+    assert len(steps_taken) == bad_update  # one check per update; the failing one raised before its optimizer step
+    if bad_update == 2:
+        assert "earlier updates of the same batch were: no checkpoint was written" in str(err.value)
+
+
 @pytest.mark.parametrize("kw, exc, msg", [
     ({"updates_per_batch": 0}, ValueError, r"updates_per_batch must be >= 1, got updates_per_batch=0"),
     ({"updates_per_batch": 65}, ValueError, r"updates_per_batch must be <= 64"),

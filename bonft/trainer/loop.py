@@ -173,7 +173,9 @@ def _one_step(run: Run, stage: str, s: int) -> dict:
     try:
         with clock("step"):
             rec = (steps.sft_step if stage == "sft" else steps.rl_step)(run, s, clock)  # gradients: the global-batch mean (DDP)
-            grad_norm, clipped = _apply_update(run, s, lr, rec["loss"], clock)
+            U = cfg.updates_per_batch if stage == "rl" else 1
+            last = f" (update {U} of {U} on its sampled batch)" if U > 1 else ""
+            grad_norm, clipped = _apply_update(run, s, lr, rec["loss"], clock, last)
     finally:
         run.apply_update = None
     run.partial_step = False  # every update of the step is applied: the weights are those of step s + 1
