@@ -283,6 +283,24 @@ def test_bad_examples_and_responses_are_refused(task, held):
         verify([held[0].prompt] * 2, ["x"])
 
 
+def test_the_sandbox_pool_gives_the_same_verdicts(held):
+    # the oracle's and the proxy's verdicts through CodeRunner(pool=True) equal those of one run per program
+    ex = held[:20]
+    prompts = [e.prompt for e in ex for _ in range(4)]
+    programs = [g for e in ex for g in (e.answer, e.reference, f"x//{e.meta['k']}+1", "7 if x==3 else 0")]
+    got = {}
+    for pool in (False, True):
+        task = WorkshopTask(workers=2, pool=pool)
+        v, p = task.verifier(ex)(prompts, programs), task.proxy_verifier(ex)(prompts, programs)
+        got[pool] = (v.scores.tolist(), p.scores.tolist())
+        if pool:
+            task.judge().runner.close()
+    assert got[True] == got[False]
+    assert sum(got[True][0]) == sum(e.answer == e.reference for e in ex) + 20  # answers, matching notebooks
+    with pytest.raises(TypeError, match="pool must be a bool"):
+        WorkshopTask(pool="yes")
+
+
 def test_a_runner_without_run_code_is_refused():
     with pytest.raises(TypeError, match="runner must have a run_code"):
         ProgramJudge(runner=object())

@@ -55,7 +55,7 @@ from typing import Any, Sequence
 
 import numpy as np
 
-from bonft._core.checks import check_fraction, check_int, check_real
+from bonft._core.checks import check_bool, check_fraction, check_int, check_real
 from bonft.tasks.base import Example, Task, _check_examples
 from bonft.verifiers.base import Verdicts
 from bonft.verifiers.scoring import check_batch
@@ -149,14 +149,15 @@ class ProgramJudge:
     timeouts and runner failures, which are run again when asked again.
 
     runner: an object with ``run_code([(solution, tests), ...]) -> [RunResult]``; default a
-            :class:`~bonft.verifiers.CodeRunner` with ``wall_time`` and ``workers``.
+            :class:`~bonft.verifiers.CodeRunner` with ``wall_time``, ``workers`` and ``pool``.
     """
 
-    def __init__(self, *, runner: Any = None, wall_time: float = 5.0, workers: int = 0, cache_size: int = 200_000):
+    def __init__(self, *, runner: Any = None, wall_time: float = 5.0, workers: int = 0, pool: bool = False,
+                 cache_size: int = 200_000):
         if runner is None:
             from bonft.verifiers.sandbox.runner import CodeRunner  # the sandbox loads only when a judge runs programs
 
-            runner = CodeRunner({}, wall_time=wall_time, workers=workers or None)
+            runner = CodeRunner({}, wall_time=wall_time, workers=workers or None, pool=pool)
         elif not callable(getattr(runner, "run_code", None)):
             raise TypeError(f"runner must have a run_code(jobs) method like CodeRunner, got {type(runner).__name__}")
         self.runner = runner
@@ -275,14 +276,16 @@ class WorkshopTask(Task):
                  rule_share + patch_share <= 1.
     max_k:       k drawn from 2..max_k (default 9).
     wall_time:   seconds each program may run in the sandbox (default 5).
-    workers:     programs run in parallel (0: the runner's default, up to 4).
+    workers:     programs run in parallel (0: the runner's default).
+    pool:        run programs in CodeRunner's sandbox pool (pre-started workers that fork each
+                 program's processes; the same verdicts, many times the throughput) (default False).
     """
 
     name = "workshop"
     description = "write a one-line Python helper judged by unit tests with hidden inputs; the notebook mostly floors boxes"
 
     def __init__(self, *, boxes_share: float = 0.4, rule_share: float = 0.05, patch_share: float = 0.05,
-                 max_k: int = 9, wall_time: float = 5.0, workers: int = 0):
+                 max_k: int = 9, wall_time: float = 5.0, workers: int = 0, pool: bool = False):
         rule_share = check_fraction("rule_share", rule_share)
         patch_share = check_fraction("patch_share", patch_share)
         if rule_share + patch_share > 1.0:
@@ -293,6 +296,7 @@ class WorkshopTask(Task):
             max_k=check_int("max_k", max_k, min=2, max=9),
             wall_time=check_real("wall_time", wall_time, min=0.1),
             workers=check_int("workers", workers, min=0, max=64),
+            pool=check_bool("pool", pool),
         )
         self._judge: ProgramJudge | None = None
 
@@ -331,7 +335,8 @@ class WorkshopTask(Task):
     def judge(self) -> ProgramJudge:
         """The task's sandbox judge, shared by its oracle and proxy (one run per distinct program)."""
         if self._judge is None:
-            self._judge = ProgramJudge(wall_time=self.params["wall_time"], workers=self.params["workers"])
+            self._judge = ProgramJudge(wall_time=self.params["wall_time"], workers=self.params["workers"],
+                                       pool=self.params["pool"])
         return self._judge
 
     def verifier(self, examples: Sequence[Example]) -> ProgramTests:
