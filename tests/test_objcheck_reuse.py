@@ -10,11 +10,13 @@ ch. 9; the leave-one-out baseline does not depend on y_i: Kool et al. 2019), whi
 rounding level.
 """
 import itertools
+import json
 
 import numpy as np
 import pytest
 import torch
 
+from bonft.cli.main import main
 from bonft.objcheck import ToyPolicy, builtin, check_objective
 
 THETA = np.array([0.3, -0.8, 1.1, 0.0])
@@ -135,3 +137,16 @@ def test_reuse_arguments_are_checked():
     plain = check_objective(builtin.reinforce, target="best_of_k", k=1, n=3, transformer=False, time_limit=None)
     assert "reuse" not in plain.cases[0] and "sample reuse" not in str(plain)
     assert plain.to_dict()["clip_bias"] is None
+
+
+def test_cli_reports_the_clip_bias(tmp_path, capsys):
+    base = ["check-objective", "bonft.objcheck:builtin.reinforce", "--target", "best_of_k", "--k", "1", "--n", "3",
+            "--skip-transformer"]
+    assert main(base + ["--reuse-shift", "0.7", "--clip-ratio", "0.2", "--json", str(tmp_path / "r.json")]) == 0
+    out = capsys.readouterr().out
+    want = check_objective(builtin.reinforce, target="best_of_k", k=1, n=3, transformer=False, reuse_shift=0.7,
+                           clip_ratio=0.2, time_limit=None)
+    assert json.loads((tmp_path / "r.json").read_text())["clip_bias"] == want.clip_bias > 1e-3
+    assert f"largest relative bias of the clipped gradient {want.clip_bias:.3g}" in out
+    assert main(base + ["--clip-ratio", "0.2"]) == 2
+    assert "clip_ratio=0.2 needs reuse_shift" in capsys.readouterr().err

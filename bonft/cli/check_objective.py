@@ -28,6 +28,11 @@ def add_arguments(p) -> None:
     p.add_argument("--time-limit", type=float, default=300.0, metavar="SECONDS",
                    help="seconds the whole check may run; a credit still running then is reported as a failed check "
                         "naming its policy and pools (default 300)")
+    p.add_argument("--reuse-shift", type=float, default=None, metavar="S",
+                   help="also measure sample reuse: pools drawn from a policy whose logits are moved by S x N(0, 1), "
+                        "importance-weighted; reports the exact relative bias (not judged)")
+    p.add_argument("--clip-ratio", type=float, default=None, metavar="EPS",
+                   help="with --reuse-shift: also the clipped surrogate's bias (ratios kept in [1 - EPS, 1 + EPS])")
     p.add_argument("--skip-transformer", action="store_true", help="only the categorical policies (no transformers import)")
     p.add_argument("--plot-dir", metavar="DIR", default=None,
                    help="write objective_check.png (estimated vs exact gradient components) into this directory")
@@ -43,7 +48,8 @@ def run(args) -> int:
     target = load_verifier(args.target) if ":" in args.target else args.target
     report = check_objective(credit, target=target, k=args.k, n=args.n, policies=args.policies,
                              outcomes=args.outcomes, seed=args.seed, tolerance=args.tolerance,
-                             transformer=not args.skip_transformer, time_limit=args.time_limit)
+                             transformer=not args.skip_transformer, time_limit=args.time_limit,
+                             reuse_shift=args.reuse_shift, clip_ratio=args.clip_ratio)
     print(report)
     if args.plot_dir:
         import os
