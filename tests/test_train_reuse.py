@@ -17,10 +17,12 @@ from pathlib import Path
 
 import pytest
 import torch
+from safetensors.torch import load_file
 
 import bonft.trainer.loop as T
 import bonft.trainer.steps as S
 from bonft.generation import sequence_logprobs
+from bonft.trainer.checkpoint import latest_checkpoint, load_state
 from bonft.trainer.config import TrainConfig, from_dict
 
 SCRIPTS = Path(__file__).parent / "dist_scripts"  # the toy verifier: varied rewards even for a random model
@@ -162,3 +164,38 @@ def test_bad_reuse_keys_are_errors_naming_the_key(kw, exc, msg):
     with pytest.raises(exc, match=msg):
         TrainConfig(rl_steps=1, **kw)
 
+
+
+def test_ctrl_c_inside_a_reused_batch_keeps_the_last_whole_step_and_resume_is_exact(tmp_path, monkeypatch):
+    # An interrupt between the updates of a batch leaves weights of no step: no checkpoint is written then;
+    # the last one on disk is a whole step, and resuming from it ends with the uninterrupted run's weights.
+    monkeypatch.syspath_prepend(str(SCRIPTS))
+    kw = dict(updates_per_batch=2, rl_steps=3, save_every=1, keep_checkpoints=10)
+    whole = toy(tmp_path, "whole", **kw)
+    T.train(whole, progress=False)
+    cfg = toy(tmp_path, "cut", **kw)
+    real_pool_loss = S._pool_loss
+
+    def pool_loss(run, model, rows, reference_rows, credit, anchor_logp, **reuse):
+        if reuse and len(list((tmp_path / "cut" / "checkpoints").glob("step-*"))) == 1:  # step 2's second update
+            raise KeyboardInterrupt
+        return real_pool_loss(run, model, rows, reference_rows, credit, anchor_logp, **reuse)
+
+    monkeypatch.setattr(S, "_pool_loss", pool_loss)
+    with pytest.raises(KeyboardInterrupt):
+        T.train(cfg, progress=False)
+    assert load_state(latest_checkpoint(cfg.run_dir))["step"] == 1  # not the half-applied step 2
+    assert_weights_equal(_weights(latest_checkpoint(cfg.run_dir)), _weights(Path(whole.run_dir) / "checkpoints" / "step-00000001"))
+    monkeypatch.setattr(S, "_pool_loss", real_pool_loss)
+    T.train(cfg, resume=True, progress=False)
+    assert_weights_equal(_weights(latest_checkpoint(cfg.run_dir)), _weights(latest_checkpoint(whole.run_dir)))
+
+
+def _weights(ckpt):
+    return load_file(str(Path(ckpt) / "model" / "model.safetensors"))
+
+
+def assert_weights_equal(a, b):
+    assert a.keys() == b.keys()
+    for key in a:
+        assert torch.equal(a[key], b[key]), key
