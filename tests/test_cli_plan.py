@@ -14,7 +14,7 @@ from collections import defaultdict
 import numpy as np
 import pytest
 
-import bonft.generation.sampling
+import bonft.plan.from_model
 from bonft.cli import main
 from bonft.io import write_samples
 from bonft.tasks.examples import ledger_rows
@@ -103,13 +103,13 @@ def test_plan_command_model_mode_reuses_cache(tmp_path, monkeypatch, capsys):
                              eos_token_id=tok.eos_token_id, bos_token_id=tok.bos_token_id, seed=1)
     save_model(model, tok, tmp_path / "ckpt")
     calls = []
-    real = bonft.generation.sampling.sample
+    real = bonft.plan.from_model.sample  # the planner's own reference to the sampler
 
     def counting(*a, **kw):
         calls.append(kw["temperature"])
         return real(*a, **kw)
 
-    monkeypatch.setattr(bonft.generation.sampling, "sample", counting)
+    monkeypatch.setattr(bonft.plan.from_model, "sample", counting)
     common = ["plan", "--model", str(tmp_path / "ckpt"), "--task", "ledger", "--n-prompts", "5", "--n", "3",
               "--max-new-tokens", "4", "--n-boot", "100", "--cache", str(tmp_path / "cache"), "--quiet"]
     assert main(common + ["--temperatures", "0.7,1.0", "--json", str(tmp_path / "a.json")]) == 0
