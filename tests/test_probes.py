@@ -17,8 +17,15 @@ import pytest
 
 from bonft.testing import CodeTestsReport, probe_code_tests
 from bonft.verifiers import CodeRunner
-from bonft.verifiers.probes import (ALL_PROBES, PROBES, asserted_cases, build_probes, read_code_tests, solution_names,
-                                   write_code_tests)
+from bonft.verifiers.probes import (
+    ALL_PROBES,
+    PROBES,
+    asserted_cases,
+    build_probes,
+    read_code_tests,
+    solution_names,
+    write_code_tests,
+)
 
 WEAK = {
     # one input, == a literal: the constant 5 and a table {(2, 3): 5} both pass
