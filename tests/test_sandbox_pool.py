@@ -204,9 +204,12 @@ def test_a_worker_that_dies_mid_batch_sinks_only_its_candidate(victim):
         pool = runner.sandbox_pool()
         old = pool.worker_pids()[0]
 
+        seen = []
+
         def kill() -> None:
             sup = _child_of(old)
             time.sleep(0.5)
+            seen.extend(_left_dirs([old]))  # the job's two directories, named after the worker
             os.kill(old if victim == "worker" else sup, signal.SIGKILL)
 
         t = threading.Thread(target=kill)
@@ -219,7 +222,7 @@ def test_a_worker_that_dies_mid_batch_sinks_only_its_candidate(victim):
         assert (results[0].status, results[0].reason) == ("crashed", reason)
         assert [r.status for r in results[1:]] == ["pass", "pass"]
         assert pool.restarts == 1 and pool.worker_pids() != [old]
-        assert _left_dirs([old]) == []
+        assert len(seen) == 2 and _left_dirs([old]) == []
         # the dead worker's children die by their parent-death signal; the host's init reaps them
         end = time.monotonic() + 10
         while _processes_of(pool.uids()) and time.monotonic() < end:

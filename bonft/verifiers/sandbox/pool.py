@@ -194,11 +194,16 @@ class SandboxPool:
         if not pid:
             return
         base = tempfile.gettempdir()
-        for d in glob(os.path.join(base, f"bonft-sandbox-{pid}.*")) + glob(os.path.join(base, f"bonft-tests-{pid}.*")):
-            try:
-                remove_tree(d)
-            except OSError:
-                pass
+        for _ in range(20):  # the dead worker's children die by their parent-death signal: a moment
+            left = glob(os.path.join(base, f"bonft-sandbox-{pid}.*")) + glob(os.path.join(base, f"bonft-tests-{pid}.*"))
+            for d in left:
+                try:
+                    remove_tree(d)
+                except OSError:
+                    pass
+            if not any(os.path.lexists(d) for d in left):
+                return
+            time.sleep(0.05)
 
     def close(self) -> None:
         """Stop every worker (idempotent)."""

@@ -154,6 +154,7 @@ class Worker:
         self.limits = [(int(r), (int(s), int(h))) for r, s, h in cfg["limits"]]
         self.cand_code, self.judge_code = _boot_code("candidate.py"), _boot_code("judge.py")
         self.tmp = cfg["tmp"]
+        self.pid = os.getpid()  # the worker's: its directories carry it, so the pool can sweep them if it dies
         self._plan()
 
     def _plan(self):
@@ -274,7 +275,7 @@ class Worker:
 
     # -- one job -----------------------------------------------------------------------------
     def _mkdirs(self, seq):
-        tag = "%d.%d." % (os.getpid(), seq)
+        tag = "%d.%d." % (self.pid, seq)
         workdir = _mkdtemp("bonft-sandbox-" + tag, self.tmp)
         judgedir = _mkdtemp("bonft-tests-" + tag, self.tmp)
         if self.root:
