@@ -25,7 +25,8 @@ def make(**kw):
         ({"prompts_per_step": 10, "grad_accum": 3}, ValueError, r"prompts_per_step must be divisible by grad_accum \(grad_accum=3\)"),
         ({"eval_ks": [1, 128]}, ValueError, r"eval_ks must be <= eval_samples \(eval_samples=64\)"),
         ({"top_p": 1.5}, ValueError, r"top_p must be in \(0, 1\], got top_p=1.5"),
-        ({"verifier": "oracle"}, ValueError, r"verifier must be 'exact', 'proxy' or 'module:function', got 'oracle'"),
+        ({"verifier": "oracle"}, ValueError, r"verifier must be 'exact', 'proxy', one of \('unit_tests', 'reward_model'\) or "
+                                             r"'module:function', got 'oracle'"),
         ({"k_schedule": "linear"}, ValueError, r"k_schedule='linear' needs k_final >= 1"),
         ({"k_final": 99}, ValueError, r"k_final must be <= n \(n=16\), got k_final=99"),
         ({"objective": "reinforce", "n": 1, "k": 1}, ValueError, r"n must be >= 2 for a leave-one-out baseline"),

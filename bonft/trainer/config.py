@@ -4,7 +4,8 @@ Every field carries its own help text (``field(metadata={"help": ...})``);
 :func:`config_reference` renders them as the markdown table in
 ``docs/training.md`` (a test checks that the doc lists every field).
 
-A recipe is a flat TOML file; tables are only used for ``task_params``::
+A recipe is a flat TOML file; tables are only used for the knobs of the task and of the verifiers
+(``task_params``, ``verifier_params``, ``eval_verifier_params``)::
 
     objective = "pass_at_k"
     k = 8
@@ -14,7 +15,8 @@ A recipe is a flat TOML file; tables are only used for ``task_params``::
     hard_share = 0.3
 
 ``--set key=value`` overrides convert the text to the field's type
-(``--set lr=1e-4``, ``--set eval_ks=1,4,16``, ``--set task_params.hard_share=0.5``).
+(``--set lr=1e-4``, ``--set eval_ks=1,4,16``, ``--set task_params.hard_share=0.5``,
+``--set eval_verifier_params.threshold=0.5``).
 
 Deprecated spellings (:data:`DEPRECATED_KEYS`) are still read, with a
 :class:`DeprecatedKeyWarning` naming the new key: ``n_train`` -> ``train_prompts``,
@@ -59,6 +61,7 @@ from bonft.objectives.validation import RATIO_LEVELS
 from bonft.tasks import TASKS, get_task
 from bonft.tasks.base import family_counts
 from bonft.trainer.objectives import OBJECTIVES  # the registry: objective name -> credit function + options
+from bonft.verifiers.roles import USER_DATA_TASKS, check_spec
 
 K_SCHEDULES = ("constant", "linear", "geometric")
 # old spelling -> key: read with a warning naming the key
@@ -124,8 +127,18 @@ class TrainConfig:
     train_prompts: int = _f(2000, "Training prompts drawn from the task (old spelling: n_train).", group="task")
     heldout_prompts: int = _f(200, "Held-out evaluation prompts (old spelling: n_eval).", group="task")
     verifier: str = _f("exact",
-                       "Verifier that trains: 'exact' (task answer check), 'proxy' (the task's imperfect proxy "
-                       "selects the best sample) or 'module:function'.", group="task")
+                       "Verifier that scores training samples: 'exact' (the task's answer check), 'proxy' (a "
+                       "built-in task's imperfect proxy), 'unit_tests' (each prompt's tests from a field of its "
+                       "row, run sandboxed), 'reward_model' (a local sequence-classification model directory) "
+                       "or 'module:function' (loading runs its code). See docs/your-task.md.", group="task")
+    verifier_params: dict = _f({},
+                               "Knobs of the verifier kind, e.g. [verifier_params] path = 'rm/' and threshold = "
+                               "0.0 for 'reward_model', field = 'tests' for 'unit_tests'.", group="task")
+    eval_verifier: str = _f("",
+                     "Verifier whose rewards define pass@k in evaluation (same names as verifier). Empty = "
+                     "the default: 'exact' for built-in tasks and for verifier = 'exact'; else the verifier "
+                     "itself, whose rewards must then be 0 or 1.", group="task")
+    eval_verifier_params: dict = _f({}, "Knobs of the eval_verifier kind (as verifier_params).", group="task")
     # --- warm start (supervised, on reference responses) ---
     warm_start_steps: int = _f(0,
                                "Supervised warm-start steps (NLL of the reference responses) before RL. 0 = "
@@ -257,6 +270,8 @@ def validate(c: TrainConfig) -> None:
             setattr(c, f.name, _nonneg_real(f.name, v))
     if not isinstance(c.task_params, dict):
         raise TypeError(f"task_params must be a table of task knobs, got {type(c.task_params).__name__}")
+    check_spec("verifier", c.verifier, c.verifier_params)
+    check_spec("eval_verifier", c.eval_verifier, c.eval_verifier_params, allow_empty=True)
     if c.objective in DEPRECATED_OBJECTIVES:
         new = DEPRECATED_OBJECTIVES[c.objective]
         warnings.warn(f"objective {c.objective!r} is now called {new!r}; reading it as {new!r}",
@@ -273,8 +288,6 @@ def validate(c: TrainConfig) -> None:
     check_choice("reward_source", c.reward_source, ("rewards", "scores"))
     check_choice("arch", c.arch, ("gpt2", "llama"))
     check_choice("device", c.device, ("cpu", "cuda", "auto"))
-    if c.verifier not in ("exact", "proxy") and ":" not in c.verifier:
-        raise ValueError(f"verifier must be 'exact', 'proxy' or 'module:function', got {c.verifier!r}")
     check_int("n", c.n, min=1)
     check_int("k", c.k, min=1)
     if c.k > c.n:
@@ -378,7 +391,7 @@ def check_task_sizes(c: TrainConfig) -> None:
     f1 seen once, f2 seen twice), a lower bound; a family asked for more than
     twice that is refused. ``task = 'jsonl'`` is checked exactly by the task itself.
     """
-    if c.task == "jsonl" or c.train_prompts + c.heldout_prompts <= PROBE_DRAWS:
+    if c.task in USER_DATA_TASKS or c.train_prompts + c.heldout_prompts <= PROBE_DRAWS:
         return
     task = get_task(c.task, **c.task_params)
     shares = task._families()
@@ -400,6 +413,7 @@ def check_task_sizes(c: TrainConfig) -> None:
 
 # ---------------------------------------------------------------- loading, overrides
 FIELDS = {f.name: f for f in dataclasses.fields(TrainConfig)}
+TABLES = ("task_params", "verifier_params", "eval_verifier_params")  # the keys holding a table of knobs
 
 
 def convert_value(name: str, text: str, like: Any) -> Any:
@@ -458,14 +472,16 @@ def current_keys(values: dict) -> dict:
 def apply_overrides(values: dict, overrides: list[str]) -> dict:
     """Apply ``key=value`` strings to a dict of config values (copied)."""
     values = current_keys(dict(values))
-    values["task_params"] = dict(values.get("task_params", {}))
+    for table in TABLES:
+        values[table] = dict(values.get(table, {}))
     for item in overrides:
         if not isinstance(item, str) or "=" not in item:
             raise ValueError(f"--set expects key=value, got {item!r}")
         key, text = item.split("=", 1)
         key = key.strip()
-        if key.startswith("task_params."):
-            values["task_params"][key.split(".", 1)[1]] = parse_scalar(text.strip())
+        table, dot, knob = key.partition(".")
+        if dot and table in TABLES:
+            values[table][knob] = parse_scalar(text.strip())
             continue
         key = current_key(key, "--set ")
         if key not in FIELDS:
@@ -532,10 +548,11 @@ def to_toml(c: TrainConfig) -> str:
     for name, v in c.to_dict().items():
         if c.start_from and name in MODEL_KEYS:
             continue  # the model comes from start_from
-        if name != "task_params":
+        if name not in TABLES:
             lines.append(f"{name} = {_toml_value(v)}")
-    lines.append("\n[task_params]")
-    lines += [f"{k} = {_toml_value(v)}" for k, v in c.task_params.items()]
+    for table in TABLES:
+        lines.append(f"\n[{table}]")
+        lines += [f"{k} = {_toml_value(v)}" for k, v in getattr(c, table).items()]
     return "\n".join(lines) + "\n"
 
 

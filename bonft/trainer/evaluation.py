@@ -26,6 +26,7 @@ from bonft.estimate import MIN_BOOT_PROMPTS, summarize
 from bonft.generation import sample
 from bonft.trainer.distributed import gather_objects, shard_bounds
 from bonft.trainer.run import Stream
+from bonft.verifiers.roles import check_eval_rewards
 from bonft.verifiers.scoring import score_batch
 
 if TYPE_CHECKING:  # annotations only
@@ -49,13 +50,27 @@ class EvalReport:
     entropy: float = 0.0  # nats per response, mean -log pi_T(y|x)
     verifier_failures: int = 0
     by_group: dict = field(default_factory=dict)  # prompt group (e.g. task family) -> {"n_prompts", "pass_at_k" means}
+    eval_verifier: str = "exact"  # the verifier whose rewards define pass@k (and every best-of-k row's reward)
+    verifier: str = ""  # the training verifier: its best-of-k row is marked "[verifier]"
 
     def to_dict(self) -> dict:
         return {k: getattr(self, k) for k in self.__dataclass_fields__}
 
     def table(self) -> str:
-        """A small text table: one row per curve, one column per k."""
-        head = f"{'':18}" + "".join(f"{'k=' + str(k):>20}" for k in self.ks)
+        """A small text table: one row per curve, one column per k.
+
+        ``pass@k [eval_verifier: NAME]`` is pass@k under the evaluation verifier's rewards
+        (``[eval_verifier = verifier: NAME]`` when one verifier does both jobs); ``best-of-k NAME
+        [verifier]`` the evaluation verifier's reward of the sample the training verifier ranks first
+        among k (other ``best-of-k NAME`` rows: other verifiers selecting). A gap between the two is
+        reward hacking.
+        """
+        labels = {name: f"best-of-k {name}" + (" [verifier]" if name == self.verifier else "") for name in self.best_of_k}
+        same = self.verifier == self.eval_verifier  # one verifier trains and evaluates: no separate best-of-k row
+        pass_label = f"pass@k [eval_verifier{' = verifier' if same else ''}: {self.eval_verifier}]"
+        width = max([18, len(pass_label) + 2, *(len(v) + 2 for v in labels.values()),
+                     *(len("pass@k " + g) + 2 for g in self.by_group)])
+        head = f"{'':{width}}" + "".join(f"{'k=' + str(k):>20}" for k in self.ks)
         rows = [head]
 
         honest = self.n_prompts >= MIN_BOOT_PROMPTS  # a bootstrap over fewer prompts is no interval
@@ -63,13 +78,13 @@ class EvalReport:
         def row(label: str, c: dict) -> str:
             cells = [f"{m:.3f} [{lo:.3f},{hi:.3f}]" if honest else f"{m:.3f} [n/a]"
                      for m, lo, hi in zip(c["mean"], c["lo"], c["hi"])]
-            return f"{label:18}" + "".join(f"{x:>20}" for x in cells)
+            return f"{label:{width}}" + "".join(f"{x:>20}" for x in cells)
 
-        rows.append(row("pass@k", self.pass_at_k))
+        rows.append(row(pass_label, self.pass_at_k))
         for name, c in self.best_of_k.items():
-            rows.append(row(f"best-of-k {name}", c))
+            rows.append(row(labels[name], c))
         for g, d in self.by_group.items():
-            rows.append(f"{'pass@k ' + g:18}" + "".join(f"{m:>20.3f}" for m in d["pass_at_k"]) + f"   ({d['n_prompts']} prompts)")
+            rows.append(f"{'pass@k ' + g:{width}}" + "".join(f"{m:>20.3f}" for m in d["pass_at_k"]) + f"   ({d['n_prompts']} prompts)")
         rows.append(
             f"distinct answers/prompt {self.distinct_answers:.2f}   entropy {self.entropy:.2f} nats/response   "
             f"length {self.mean_length:.2f} tokens   ({self.n_prompts} prompts x {self.n_samples} samples, T={self.temperature:g})"
@@ -105,12 +120,15 @@ def evaluate_policy(
     n_boot: int = 1000,
     rows_per_chunk: int = 4096,
     groups: Sequence[str] | None = None,
+    eval_verifier: str = "exact",
+    verifier: str | None = None,
 ) -> tuple[EvalReport, dict]:
     """Sample ``n`` responses per prompt and summarise them.
 
-    prompts: P strings. verifiers: name -> verifier; ``"exact"`` must be present
-    and report true rewards (its scores are ignored: pass@k uses the rewards);
-    every other verifier gives a best-of-k row, selecting by its scores.
+    prompts: P strings. verifiers: name -> verifier; ``verifiers[eval_verifier]`` (default
+    ``"exact"``) gives the rewards of pass@k and of every best-of-k row (its rewards,
+    else its scores); every other verifier gives a best-of-k row, selecting by its
+    scores (``verifier``, the training verifier's name, marks its row).
 
     Returns ``(report, raw)``; ``raw`` holds ``texts`` (P lists of n), the
     ``scores``/``rewards`` (P, n) arrays per verifier and ``n_tokens`` (P, n),
@@ -119,9 +137,10 @@ def evaluate_policy(
     validated arguments (the trainer's config, the eval command's options).
     """
     raw = collect_pools(model, tokenizer, prompts, verifiers=verifiers, extract_answer=extract_answer, n=n,
-                        temperature=temperature, max_new_tokens=max_new_tokens, seed=seed, rows_per_chunk=rows_per_chunk)
+                        temperature=temperature, max_new_tokens=max_new_tokens, seed=seed, rows_per_chunk=rows_per_chunk,
+                        eval_verifier=eval_verifier)
     report = report_from_pools(raw, ks=ks, temperature=temperature, seed=seed, step=step, confidence=confidence,
-                               n_boot=n_boot, groups=groups)
+                               n_boot=n_boot, groups=groups, eval_verifier=eval_verifier, verifier=verifier)
     return report, raw
 
 
@@ -129,15 +148,17 @@ def evaluate_policy(
 def collect_pools(model: Any, tokenizer: Any, prompts: Sequence[str], *, verifiers: dict[str, Callable],
                   extract_answer: Callable[[str], Any] | None = None, n: int = 64, temperature: float = 1.0,
                   max_new_tokens: int = 8, seed: int = 0, rows_per_chunk: int = 4096,
-                  seeds: Sequence[int] | None = None) -> dict:
+                  seeds: Sequence[int] | None = None, eval_verifier: str = "exact") -> dict:
     """The sampling and scoring half of :func:`evaluate_policy`: P prompts -> pools of n.
 
     Returns ``raw`` with ``texts`` (P lists of n), ``n_tokens``, ``seq_logp``
     (P, n), ``scores`` (verifier name -> (P, n)), ``rewards`` (P, n) of the
-    ``"exact"`` verifier, ``distinct`` (P,) and ``failures``. ``seeds`` (one per
+    ``eval_verifier`` verifier (its rewards, else its scores), ``distinct`` (P,) and ``failures``. ``seeds`` (one per
     prompt) draws each prompt from its own generator (``sample(..., seeds=...)``), so
     pools collected on different ranks are those one process would collect; else one draw from ``seed``.
     """
+    if eval_verifier not in verifiers:
+        raise ValueError(f"verifiers must hold the evaluation verifier {eval_verifier!r} (its rewards define pass@k), got {sorted(verifiers)}")
     P = len(prompts)
     if seeds is not None:
         smp = sample(model, tokenizer, list(prompts), seeds=seeds, n=n, temperature=temperature,
@@ -154,7 +175,7 @@ def collect_pools(model: Any, tokenizer: Any, prompts: Sequence[str], *, verifie
         v = score_batch(ver, flat_prompts, flat_texts)
         raw["failures"] += v.n_failed
         raw["scores"][name] = v.scores.reshape(P, n)
-        if name == "exact":
+        if name == eval_verifier:
             raw["rewards"] = (v.rewards if v.rewards is not None else v.scores).reshape(P, n)
     if extract_answer is not None:
         raw["distinct"] = np.array([len({extract_answer(t) for t in row}) for row in smp.texts], dtype=float)
@@ -173,15 +194,18 @@ def merge_pools(parts: Sequence[dict]) -> dict:
 
 
 def report_from_pools(raw: dict, *, ks: Sequence[int], temperature: float, seed: int = 0, step: int = 0,
-                      confidence: float = 0.95, n_boot: int = 1000, groups: Sequence[str] | None = None) -> EvalReport:
+                      confidence: float = 0.95, n_boot: int = 1000, groups: Sequence[str] | None = None,
+                      eval_verifier: str = "exact", verifier: str | None = None) -> EvalReport:
     """The summarising half of :func:`evaluate_policy`: estimators and bootstrap CIs over all pools."""
     rewards, n_tokens = raw["rewards"], raw["n_tokens"]
     P, n = rewards.shape
     ks = [int(k) for k in ks]
     pass_sum = summarize(rewards, rewards, ks=ks, confidence=confidence, n_boot=n_boot, seed=seed)
     best = {}
-    for name, sc in raw["scores"].items():
-        if name == "exact":
+    order = sorted(raw["scores"], key=lambda name: name != verifier)  # the training verifier's row first
+    for name in order:
+        sc = raw["scores"][name]
+        if name == eval_verifier:  # the verifier that gives the rewards: its row is pass@k itself
             continue
         s = summarize(sc, rewards, ks=ks, confidence=confidence, n_boot=n_boot, seed=seed)
         best[name] = _curve(s, "best_of_k")
@@ -197,7 +221,7 @@ def report_from_pools(raw: dict, *, ks: Sequence[int], temperature: float, seed:
         pass_at_k=_curve(pass_sum, "pass_at_k"), best_of_k=best,
         mean_reward=float(rewards.mean()), mean_length=float(n_tokens.mean()),
         distinct_answers=float(raw["distinct"].mean()), entropy=float(-raw["seq_logp"].mean()),
-        verifier_failures=int(raw["failures"]), by_group=by_group,
+        verifier_failures=int(raw["failures"]), by_group=by_group, eval_verifier=eval_verifier, verifier=verifier or "",
     )
 
 
@@ -211,16 +235,22 @@ def evaluate_run(run: Run, step: int) -> EvalReport | None:
     cfg = run.cfg
     held = run.eval[: cfg.eval_prompts or len(run.eval)]
     vers = {name: v for name, v in run.verifiers.items() if name != "train"}
+    eval_verifier = run.roles.eval_verifier_name if run.roles is not None else "exact"
+    verifier = run.roles.verifier_name if run.roles is not None else None
     a, b = shard_bounds(len(held), rank=run.rank, world_size=run.world, allow_uneven=True)
     raw = None
     if b > a:
         raw = collect_pools(run.module, run.tokenizer, [e.prompt for e in held[a:b]], verifiers=vers,
                             extract_answer=getattr(run.task, "extract_answer", None), n=cfg.eval_samples,
                             temperature=cfg.eval_temperature, max_new_tokens=cfg.max_new_tokens,
-                            seeds=[Stream.EVALUATION.for_prompt(cfg.seed, step=0, slot=j) for j in range(a, b)])
+                            seeds=[Stream.EVALUATION.for_prompt(cfg.seed, step=0, slot=j) for j in range(a, b)],
+                            eval_verifier=eval_verifier)
     pools = gather_objects(raw, run.ctx)
     if not run.is_main:
         return None
-    return report_from_pools(merge_pools(pools), ks=cfg.eval_ks, temperature=cfg.eval_temperature,
+    merged = merge_pools(pools)
+    if run.roles is not None:
+        check_eval_rewards(merged["rewards"], run.roles)  # the training verifier as default evaluation verifier: 0/1 rewards only
+    return report_from_pools(merged, eval_verifier=eval_verifier, verifier=verifier, ks=cfg.eval_ks, temperature=cfg.eval_temperature,
                              seed=Stream.EVALUATION.seed(cfg.seed, step=0), step=step, confidence=cfg.confidence,
                              n_boot=cfg.n_boot, groups=[(e.meta or {}).get("family", "all") for e in held])

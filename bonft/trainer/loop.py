@@ -73,6 +73,7 @@ from bonft.trainer.metrics import GRAD_CLIPPED, GRAD_NORM
 from bonft.trainer.models import load_model
 from bonft.trainer.run import Run, Stream, build_run, lr_at, make_optimizer
 from bonft.trainer.rundir import RunDirBusy, WriteFailed, is_write_error, run_lock, write_failed
+from bonft.trainer.zero_credit import ZeroCreditWatch
 
 
 class NonFiniteStep(ValueError):
@@ -114,6 +115,7 @@ def _train(run: Run, resume: bool, progress: bool, owns_group: bool) -> dict:
     run.model = wrap_model(run.model, run.ctx)  # several ranks: DDP (copies rank 0's weights to all)
     bar = tqdm(total=cfg.total_steps, initial=start, desc=cfg.name, disable=not (progress and run.is_main), dynamic_ncols=True)
     s = start  # optimizer steps completed = the weights' step label
+    watch = ZeroCreditWatch(cfg.rl_steps, cfg.objective, cfg.correct_threshold)  # warns once if RL starts with no signal
     try:
         if start == 0 and _eval_due(cfg, 0):
             _evaluate(run, 0, progress)
@@ -125,6 +127,8 @@ def _train(run: Run, resume: bool, progress: bool, owns_group: bool) -> dict:
                 with step_guard(run.ctx, step=step + 1, run_dir=run.out):  # a peer lost mid-step -> PeerError
                     rec = _one_step(run, stage, step)
                 s = step + 1  # the weights are now those of step s
+                if stage == "rl" and run.is_main:
+                    watch.update(step - cfg.warm_start_steps, rec)
                 if s % cfg.log_every == 0 or s == cfg.total_steps or s == cfg.warm_start_steps:
                     _log(run, rec)
                 bar.update(1)
@@ -295,9 +299,12 @@ def _log(run: Run, rec: dict) -> None:
 
 
 def _eval_due(cfg: TrainConfig, s: int) -> bool:
-    """Evaluate the weights of step s: at the end, before RL (eval_at_start), every eval_every RL steps."""
+    """Evaluate the weights of step s: at the end, before RL (eval_at_start), every eval_every RL steps.
+
+    A run of no steps (``start_from`` with ``warm_start_steps = rl_steps = 0``) evaluates the starting policy.
+    """
     if cfg.total_steps == 0:
-        return False
+        return s == 0
     if s == cfg.total_steps:
         return True
     if cfg.rl_steps == 0 or s < cfg.warm_start_steps:

@@ -24,7 +24,8 @@ from bonft.trainer.checkpoint import quiet_transformers
 from bonft.trainer.config import TrainConfig
 from bonft.trainer.distributed import derive_seed, init_from_env, prompt_seed, shard_prompts, unwrap_model
 from bonft.trainer.models import build_tiny_model, check_context, load_model
-from bonft.verifiers.scoring import load_verifier
+from bonft.trainer.objectives import OBJECTIVES
+from bonft.verifiers.roles import Roles, build_roles
 
 
 class Stream(enum.IntEnum):
@@ -97,7 +98,7 @@ class Run:
     task: Any
     train: list
     eval: list
-    verifiers: dict  # "train" + evaluation verifiers ("exact", "proxy", user name)
+    verifiers: dict  # "train" + evaluation verifiers by name (the evaluation verifier's, the training verifier's, a task's "proxy")
     device: torch.device
     rank: int = 0
     world: int = 1
@@ -105,6 +106,7 @@ class Run:
     anchor_model: Any = None
     ctx: Any = None  # bonft.trainer.distributed.DistContext
     updating: bool = False  # inside optimizer.step(): the weights are half-updated
+    roles: Roles | None = None  # the training verifier and the evaluation verifier, by name (bonft.verifiers.roles)
     partial_step: bool = False  # some, not all, of a step's updates (updates_per_batch > 1) are in the weights
     apply_update: Any = None  # during a step: (loss, what) -> (grad norm, clipped); check, clip, optimizer.step()
 
@@ -122,20 +124,6 @@ def build_run(cfg: TrainConfig) -> Run:
     """Task, data split, verifiers, model and tokenizer for ``cfg`` (no optimizer yet)."""
     ctx = init_from_env(device=cfg.device)  # a process group under torchrun, else one process
     rank, world, device = ctx.rank, ctx.world_size, ctx.device
-    extra = {"path": cfg.prompts_file} if cfg.task == "jsonl" else {}
-    task = get_task(cfg.task, **extra, **cfg.task_params)
-    train, held = task.split(n_train=cfg.train_prompts, n_eval=cfg.heldout_prompts, seed=cfg.seed)
-    everything = list(train) + list(held)
-    verifiers = {"exact": task.verifier(everything)}
-    proxy = task.proxy_verifier(everything) if hasattr(task, "proxy_verifier") else None
-    if proxy is not None:
-        verifiers["proxy"] = proxy
-    if cfg.verifier in ("exact", "proxy"):
-        if cfg.verifier not in verifiers:
-            raise ValueError(f"verifier='proxy' needs a task with a proxy verifier; task {cfg.task!r} has none")
-        verifiers["train"] = verifiers[cfg.verifier]
-    else:
-        verifiers["train"] = verifiers[cfg.verifier] = load_verifier(cfg.verifier)
     if cfg.start_from:
         with quiet_transformers():
             model, tokenizer = load_model(cfg.start_from, device=device)
@@ -146,11 +134,30 @@ def build_run(cfg: TrainConfig) -> Run:
             max_positions=cfg.max_positions, seed=cfg.seed, pad_token_id=tokenizer.pad_token_id,
             eos_token_id=tokenizer.eos_token_id, bos_token_id=tokenizer.bos_token_id,
         ).to(device)
+    extra = {"path": cfg.prompts_file} if cfg.task == "jsonl" else {}
+    if cfg.task == "user" and cfg.task_params.get("chat_template") is True and "tokenizer" not in cfg.task_params:
+        extra["tokenizer"] = tokenizer  # the chat template of the model that samples
+    task = get_task(cfg.task, **extra, **cfg.task_params)
+    train, held = task.split(n_train=cfg.train_prompts, n_eval=cfg.heldout_prompts, seed=cfg.seed)
+    everything = list(train) + list(held)
+    roles = build_roles(task, everything, verifier=cfg.verifier, verifier_params=cfg.verifier_params,
+                        eval_verifier=cfg.eval_verifier, eval_verifier_params=cfg.eval_verifier_params, device=str(device))
+    verifiers = {"train": roles.verifier, **roles.evaluation_verifiers()}
+    uses = ("warm_start_steps", cfg.warm_start_steps) if cfg.warm_start_steps else None
+    if uses is None and cfg.rl_steps and OBJECTIVES[cfg.objective].reference:
+        uses = ("objective", repr(cfg.objective))
+    unreferenced = [e for e in train if not e.reference]
+    fix = "set warm_start_steps = 0" if uses and uses[0] == "warm_start_steps" else "choose an objective without references"
+    if uses and unreferenced:
+        where = (unreferenced[0].meta or {}).get("where", repr(unreferenced[0].prompt[:60]))
+        raise ValueError(f"{uses[0]} = {uses[1]} trains on reference responses, but {len(unreferenced)} of {len(train)} "
+                         f"training prompts have none (e.g. {where}); set task_params.reference_field to the column "
+                         f"of reference responses, or {fix}")
     check_context(model, tokenizer, [e.prompt for e in everything], max_new_tokens=cfg.max_new_tokens,  # before any work
                   references=[e.reference for e in train] if cfg.warm_start_steps else (),
                   knob="start_from's context" if cfg.start_from else "max_positions")
     return Run(cfg=cfg, out=Path(cfg.run_dir), model=model, tokenizer=tokenizer, task=task, train=list(train),
-               eval=list(held), verifiers=verifiers, device=device, rank=rank, world=world, ctx=ctx)
+               eval=list(held), verifiers=verifiers, device=device, rank=rank, world=world, ctx=ctx, roles=roles)
 
 
 def make_optimizer(run: Run, stage: str) -> torch.optim.Optimizer:
