@@ -1,4 +1,4 @@
-"""``bonft eval CHECKPOINT``: best-of-k / pass@k curves with CIs of a checkpoint on held-out prompts."""
+"""``bonft eval CHECKPOINT``: best-of-k / pass@k curves with CIs of a checkpoint (or a model directory) on held-out prompts."""
 from __future__ import annotations
 
 import argparse
@@ -10,13 +10,18 @@ from bonft.cli.options import parse_list
 HELP = "evaluate a checkpoint: pass@k and best-of-k (per verifier) with CIs on held-out prompts"
 DESCRIPTION = (
     "Sample --n responses for each held-out prompt of the checkpoint's task (the split its run used), "
-    "score them with the exact checker and the task's proxy, and print pass@k and verifier-selected "
-    "best-of-k with bootstrap CIs, plus length and diversity. CHECKPOINT is a checkpoint directory "
-    "or a run directory (its newest checkpoint)."
+    "score them with the evaluation verifier and the training verifier (and a built-in task's proxy), and print pass@k "
+    "under the evaluation verifier and verifier-selected best-of-k with bootstrap CIs, plus length and diversity. "
+    "CHECKPOINT is a checkpoint directory, a run directory (its newest checkpoint) or a plain transformers "
+    "model directory (config.json, weights and tokenizer saved with save_pretrained; its task, verifier and "
+    "eval_verifier then come from --recipe and --set)."
 )
 
 def add_common(p: argparse.ArgumentParser) -> None:
-    p.add_argument("checkpoint", help="checkpoint directory (CKPT/model, CKPT/tokenizer) or run directory")
+    p.add_argument("checkpoint", help="checkpoint directory (CKPT/model, CKPT/tokenizer), run directory or transformers model directory")
+    p.add_argument("--recipe", default=None, metavar="RECIPE.toml",
+                   help="read the task, verifier and eval_verifier keys from this recipe (default: the checkpoint's config.toml; "
+                        "its model keys are ignored: the model is CHECKPOINT's)")
     p.add_argument("--n", type=int, default=64, help="samples per prompt (default: 64)")
     p.add_argument("--n-prompts", type=int, default=0, help="use the first this many held-out prompts (default: all)")
     p.add_argument("--seed", type=int, default=0, help="sampling seed (default: 0)")
@@ -44,8 +49,14 @@ def load_for_eval(args: argparse.Namespace, *, n: int, ks: list[int], temperatur
     )
     from bonft.trainer.run import build_run  # loads torch: only when a command runs
 
-    ckpt = resolve_checkpoint(args.checkpoint)
-    base = read_recipe(ckpt / "config.toml") if (ckpt / "config.toml").is_file() else {}
+    path = Path(args.checkpoint)
+    if (path / "config.json").is_file() and not (path / "model").is_dir():  # a plain transformers model directory
+        ckpt, base = path, {}
+    else:
+        ckpt = resolve_checkpoint(args.checkpoint)
+        base = read_recipe(ckpt / "config.toml") if (ckpt / "config.toml").is_file() else {}
+    if args.recipe is not None:
+        base = read_recipe(args.recipe)
     base = {key: v for key, v in base.items() if key not in MODEL_KEYS}  # the model is the checkpoint's
     values = apply_overrides(base, list(args.overrides))
     values.update(start_from=str(ckpt), eval_samples=n, eval_ks=ks, eval_temperature=temperature,

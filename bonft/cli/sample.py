@@ -9,7 +9,8 @@ from bonft.cli.options import parse_list
 HELP = "sample responses from a checkpoint and write a samples JSONL (input of bonft estimate / bonft plan)"
 DESCRIPTION = (
     "Draw --n responses per held-out prompt at one or more temperatures, score each with a verifier "
-    "(score) and the exact checker (reward), and write one JSON line per response: prompt_id (the prompt's "
+    "(score) and the evaluation verifier (reward: the exact checker for built-in tasks, see the eval_verifier key), "
+    "and write one JSON line per response: prompt_id (the prompt's "
     "position among the run's held-out prompts), prompt (its text, to join rows back to your data), score, "
     "reward, temperature, response, n_tokens, answer (the task's extracted answer, for --strategy "
     "majority_vote/weighted_vote), and sample (its index in the prompt's pool, so that identical "
@@ -22,7 +23,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--temperatures", default="1.0", metavar="T1,T2", help="comma-separated sampling temperatures (default: 1.0)")
     p.add_argument("--verifier", default="auto",
                    help="which verifier fills 'score': exact, proxy or a name of the run's verifiers "
-                        "(default: proxy if the task has one, else exact)")
+                        "(default: proxy if the task has one, else the training verifier)")
     p.add_argument("-o", "--output", required=True, help="samples JSONL to write (written atomically)")
 
 
@@ -39,7 +40,8 @@ def run(args: argparse.Namespace) -> int:
     torch.set_num_threads(1)  # tiny models: one thread is fastest
     ckpt, cfg, r = load_for_eval(args, n=n, ks=[1], temperature=temps[0])
     names = [k for k in r.verifiers if k != "train"]
-    which = args.verifier if args.verifier != "auto" else ("proxy" if "proxy" in names else "exact")
+    eval_verifier = r.roles.eval_verifier_name  # fills 'reward'
+    which = args.verifier if args.verifier != "auto" else ("proxy" if "proxy" in names else r.roles.verifier_name)
     if which not in names:
         raise ValueError(f"--verifier must be one of {names}, got {args.verifier!r}")
     held = r.eval[: cfg.eval_prompts or len(r.eval)]
@@ -47,7 +49,8 @@ def run(args: argparse.Namespace) -> int:
     rows = []
     for t in temps:
         rep, raw = evaluate_policy(
-            r.model, r.tokenizer, [e.prompt for e in held], verifiers={"exact": r.verifiers["exact"], which: r.verifiers[which]},
+            r.model, r.tokenizer, [e.prompt for e in held], verifiers={eval_verifier: r.verifiers[eval_verifier], which: r.verifiers[which]},
+            eval_verifier=eval_verifier,
             extract_answer=getattr(r.task, "extract_answer", None), n=n, ks=[1], temperature=t,
             max_new_tokens=cfg.max_new_tokens, seed=Stream.SAMPLE_COMMAND.seed(args.seed, step=0), n_boot=10,
         )
