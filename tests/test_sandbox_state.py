@@ -226,9 +226,9 @@ def test_a_hostile_batch_leaves_nothing_and_every_correct_candidate_passes(monke
         jobs += [job, CORRECT]
         names += [name, "correct"]
     ipc_before = _sysv_keys()
-    # 8 s: the fork bombs and loops spin 8 processes at a time on a shared machine; a correct candidate
+    # 12 s: the fork bombs, loops and memory bombs spin 8 processes at a time on a shared machine; a correct candidate
     # must not time out for want of CPU (it needs well under 1 s alone)
-    runner = CodeRunner({}, wall_time=8.0, memory_mb=1024, max_processes=8, workers=4)
+    runner = CodeRunner({}, wall_time=12.0, memory_mb=1024, max_processes=8, workers=4)
     results = runner.run_code(jobs)
     after = {names[i - 1]: (r.status, r.reason) for i, r in enumerate(results) if names[i] == "correct"}
     assert {k: v for k, v in after.items() if v[0] != "pass"} == {}  # keyed by the hostile one before it
