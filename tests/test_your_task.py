@@ -120,6 +120,9 @@ def test_zero_credit_warns_and_bad_rows_stop_before_any_step(user_setup, capsys)
     err = capsys.readouterr().err
     assert "bonft train: error: 'jars' row 0: field 'tests' is missing, and verifier UnitTests needs it" in err
     assert len(err.strip().splitlines()) == 1 and not (tmp / "bad" / "checkpoints").exists()
+    assert main(["train", str(recipe), "--output", str(tmp / "soft"), "--quiet", "--set", "eval_verifier="]) != 0
+    assert ("eval_verifier must be set: the verifier 'jar_grader:loose' is the default evaluation verifier but gave "
+            "rewards other than 0 and 1" in capsys.readouterr().err)  # lengths, not 0/1: it cannot define pass@k
     assert main(["train", str(recipe), "--output", str(tmp / "bad2"), "--quiet", "--set", "warm_start_steps=2"]) != 0
     assert ("warm_start_steps = 2 trains on reference responses, but 14 of 14 training prompts have none (e.g. 'jars' row"
             in capsys.readouterr().err)

@@ -24,7 +24,7 @@ import torch
 
 from bonft.estimate import MIN_BOOT_PROMPTS, summarize
 from bonft.generation import sample
-from bonft.trainer.distributed import gather_objects, shard_bounds
+from bonft.trainer.distributed import broadcast_object, gather_objects, shard_bounds
 from bonft.trainer.run import Stream
 from bonft.verifiers.roles import check_eval_rewards
 from bonft.verifiers.scoring import score_batch
@@ -246,11 +246,17 @@ def evaluate_run(run: Run, step: int) -> EvalReport | None:
                             seeds=[Stream.EVALUATION.for_prompt(cfg.seed, step=0, slot=j) for j in range(a, b)],
                             eval_verifier=eval_verifier)
     pools = gather_objects(raw, run.ctx)
+    merged, problem = (merge_pools(pools), None) if run.is_main else (None, None)
+    if run.is_main and run.roles is not None:
+        try:  # the training verifier as the default evaluation verifier: 0/1 rewards only
+            check_eval_rewards(merged["rewards"], run.roles)
+        except ValueError as e:
+            problem = str(e)
+    problem = broadcast_object(problem, run.ctx)  # every rank stops, none waits for a peer that left
+    if problem is not None:
+        raise ValueError(problem)
     if not run.is_main:
         return None
-    merged = merge_pools(pools)
-    if run.roles is not None:
-        check_eval_rewards(merged["rewards"], run.roles)  # the training verifier as default evaluation verifier: 0/1 rewards only
     return report_from_pools(merged, eval_verifier=eval_verifier, verifier=verifier, ks=cfg.eval_ks, temperature=cfg.eval_temperature,
                              seed=Stream.EVALUATION.seed(cfg.seed, step=0), step=step, confidence=cfg.confidence,
                              n_boot=cfg.n_boot, groups=[(e.meta or {}).get("family", "all") for e in held])
