@@ -67,7 +67,7 @@ def curves_ok(ev):
     assert passk[0] == pytest.approx(ev["mean_reward"], abs=1e-12)
 
 
-def test_train_eval_sample_with_a_verifier_and_a_separate_oracle(user_setup, capsys):
+def test_train_eval_sample_with_a_verifier_and_a_separate_eval_verifier(user_setup, capsys):
     tmp, recipe = user_setup
     assert main(["train", str(recipe), "--output", str(tmp / "run"), "--quiet"]) == 0
     summary = json.loads((tmp / "run" / "summary.json").read_text())
