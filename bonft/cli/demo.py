@@ -9,7 +9,7 @@ DESCRIPTION = (
     "Build a tiny GPT-2-style model, warm-start it on the refunds task, then train leave-one-out "
     "REINFORCE, a pass@8-aware objective and its placebo (outcomes shuffled within each pool) from the "
     "same warm start with the same budget, and compare pass@k and proxy-selected best-of-k "
-    "(k = 1, 4, 16, 32) on held-out prompts: means with 95%% bootstrap intervals over prompts and paired "
+    "(k = 1, 4, 16, 32) on held-out prompts: means with 95% bootstrap intervals over prompts and paired "
     "differences from the warm start and from REINFORCE; also each run's gradient signal-to-noise and "
     "the planner's best temperature per k. A rerun reuses finished stages in --output. --study repeats it "
     "over 5 seeds with best-of-k under the proxy verifier and k annealing too (slow: about an hour)."
