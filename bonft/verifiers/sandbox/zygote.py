@@ -371,12 +371,7 @@ class Worker:
             feed(jcfg_w, {"tests": job["tests"], "frame_cap": cfg["frame_cap"], "same_uid": self.cuid is None})
             if self.cuid is None and not outcome.await_start(ver_r, t0 + wall):
                 return {"status": "crashed", "reason": "runner: could not start the tests' process"}
-            done = b""
-            while True:
-                chunk = os.read(lay_r, 256)
-                if not chunk:
-                    break
-                done += chunk
+            done = _read_to_eof(lay_r)
             close(lay_r)
             if done.startswith(b"E"):
                 return {"status": "crashed", "reason": "runner: the sandbox could not be set up: %s"
@@ -442,12 +437,7 @@ class Worker:
             pid, status_r = self.fork_candidate(workdir, (), out_w, out_w, lay_w, bare=True)
             os.close(lay_w)
             os.close(out_w)
-            done = b""
-            while True:
-                chunk = os.read(lay_r, 256)
-                if not chunk:
-                    break
-                done += chunk
+            done = _read_to_eof(lay_r)
             child = _Child(pid, out_r, os.dup(out_r), status_r)
             child.wait()
             child.stdout.close()
@@ -470,12 +460,7 @@ class Worker:
                 finally:
                     os._exit(0)
             os.close(w)
-            done = b""
-            while True:
-                chunk = os.read(r, 4096)
-                if not chunk:
-                    break
-                done += chunk
+            done = _read_to_eof(r)
             os.close(r)
             os.waitpid(pid, 0)
             done = done.decode("utf-8", "replace")
@@ -488,6 +473,16 @@ class Worker:
                 self._plan()
             else:
                 return done
+
+
+def _read_to_eof(fd):
+    """Everything a pipe's writer sends until it closes its end."""
+    parts = []
+    while True:
+        chunk = os.read(fd, 4096)
+        if not chunk:
+            return b"".join(parts)
+        parts.append(chunk)
 
 
 def _read_header():
