@@ -1,6 +1,6 @@
 """Every figure bonft draws (matplotlib, Agg backend, PNG).
 
-* :func:`plot_bon_curves` -- best-of-k and pass@k curves of
+* :func:`plot_best_of_k_curves` -- best-of-k and pass@k curves of
   :class:`bonft.estimate.CurveSummary` objects, with their intervals (``bonft estimate --plot-dir``);
 * :func:`plot_plan_heatmap`, :func:`plot_plan_curves` -- a :class:`bonft.plan.PlanResult`
   over temperature and k (``bonft plan --plot-dir``);
@@ -21,13 +21,13 @@ import numpy as np
 
 from bonft.estimate import CurveSummary
 
-__all__ = ["plot_bon_curves", "plot_verifier_check", "plot_plan_heatmap", "plot_plan_curves", "plot_evaluations",
+__all__ = ["plot_best_of_k_curves", "plot_verifier_check", "plot_plan_heatmap", "plot_plan_curves", "plot_evaluations",
            "plot_comparison", "plot_objective_check", "plot_strategy_curves"]
 
 
 # ------------------------------------------------------------------ estimator curves
 
-def plot_bon_curves(curves: dict, path, *, title: str | None = None) -> str:
+def plot_best_of_k_curves(curves: dict, path, *, title: str | None = None) -> str:
     """One PNG with the best-of-k and pass@k curves of each labelled :class:`CurveSummary`.
 
     curves: {label: CurveSummary} (e.g. one per temperature); a label prefixes the legend entries.

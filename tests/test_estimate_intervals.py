@@ -9,7 +9,7 @@ import numpy as np
 import pytest
 
 from bonft.estimate import CurveSummary, bootstrap_ci, default_ks, summarize
-from bonft.viz import plot_bon_curves
+from bonft.viz import plot_best_of_k_curves
 
 
 def brute_best_of_k(scores, rewards, k) -> Fraction:
@@ -110,12 +110,12 @@ def test_summarize_binary_rewards_table_dict_and_plot(tmp_path):
     assert back["pass_at_k_mean"] == pytest.approx(list(want.mean(0)), rel=1e-10)
     text = summ.table()
     assert f"prompts: {P}" in text and f"{summ.best_of_k_mean[-1]:.4f}" in text and "95% CI" in text
-    out = plot_bon_curves({"": summ}, tmp_path / "c.png")
+    out = plot_best_of_k_curves({"": summ}, tmp_path / "c.png")
     assert open(out, "rb").read(8) == b"\x89PNG\r\n\x1a\n"
-    plot_bon_curves({"T=0.6": summ, "T=1": summ}, tmp_path / "two.png")
+    plot_best_of_k_curves({"T=0.6": summ, "T=1": summ}, tmp_path / "two.png")
     assert (tmp_path / "two.png").stat().st_size > 1000
     with pytest.raises(TypeError, match=r"curves\['x'\] must be a CurveSummary"):
-        plot_bon_curves({"x": 1}, tmp_path / "bad.png")
+        plot_best_of_k_curves({"x": 1}, tmp_path / "bad.png")
 
 
 def test_summarize_ragged_pools():

@@ -160,6 +160,35 @@ def test_no_option_key_or_id_uses_a_retired_spelling():
     assert retired(cli_names(build_parser()) + config_names(), id_names()) == []
 
 
+def api_names() -> list[tuple[str, str]]:
+    """(module, name) for every name bonft's packages and top-level modules export in ``__all__``
+    (a package's ``__init__`` re-exports its parts; the sandbox's worker scripts are not imported)."""
+    import importlib
+    import pkgutil
+
+    import bonft
+
+    out = []
+    for info in pkgutil.walk_packages(bonft.__path__, "bonft."):
+        if not (info.ispkg or info.name.count(".") == 1) or info.name.endswith("__main__"):
+            continue
+        mod = importlib.import_module(info.name)
+        out += [(info.name, n) for n in getattr(mod, "__all__", ())]
+    return out
+
+
+def test_no_exported_python_name_uses_a_retired_word():
+    # ids rules: best_of_k_sft keeps its published name; "bon" and "oracle" are retired everywhere
+    names = api_names()
+    assert len(names) > 100  # the walk reached the packages
+    assert retired([], names) == []
+
+
+def test_checker_finds_a_planted_retired_python_name():
+    assert retired([], [("bonft.viz", "plot_bon_curves")]) == [
+        "bonft.viz: plot_bon_curves uses the retired word 'bon'"]
+
+
 def test_no_two_options_or_keys_spell_one_idea_two_ways():
     names = cli_names(build_parser()) + config_names()
     assert near_duplicates(names) == []

@@ -47,7 +47,7 @@ def test_estimator_curves_draw_best_of_k_and_pass_at_k(tmp_path, closed_figures)
     rewards = (rng.random((P, n)) < 0.4).astype(float)
     scores = rng.integers(0, 3, (P, n)).astype(float)  # ties in scores
     summary = summarize(scores, rewards, ks=ks, n_boot=50, seed=0)
-    path = viz.plot_bon_curves({"T=1": summary}, tmp_path / "curves.png")
+    path = viz.plot_best_of_k_curves({"T=1": summary}, tmp_path / "curves.png")
     assert (tmp_path / "curves.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
     assert path == str(tmp_path / "curves.png")
     (fig,) = closed_figures
@@ -74,6 +74,6 @@ def test_plan_curves_pick_the_best_temperatures_then_spread_over_the_grid():
 
 def test_bad_curves_name_the_argument(tmp_path):
     with pytest.raises(TypeError, match="curves must be a non-empty dict of label -> CurveSummary, got list"):
-        viz.plot_bon_curves([], tmp_path / "x.png")
+        viz.plot_best_of_k_curves([], tmp_path / "x.png")
     with pytest.raises(TypeError, match=r"curves\['a'\] must be a CurveSummary, got dict"):
-        viz.plot_bon_curves({"a": {}}, tmp_path / "x.png")
+        viz.plot_best_of_k_curves({"a": {}}, tmp_path / "x.png")
