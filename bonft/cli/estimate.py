@@ -42,7 +42,7 @@ def run(args) -> int:
     from bonft.estimate import default_ks, summarize
     from bonft.io import group_pools, read_samples, temperatures_of
     from bonft.tasks.examples import example_samples_path
-    from bonft.viz import plot_bon_curves
+    from bonft.viz import plot_best_of_k_curves
 
     if args.example and args.samples:
         raise ValueError(f"give either POOLS or --example, got both ({args.samples!r} and --example)")
@@ -91,5 +91,5 @@ def run(args) -> int:
     print()
     print("best-of-k: reward of the sample the verifier scores highest among k (ties split evenly); "
           "pass@k: best true reward among k (the chance one of k is correct for 0/1 rewards); gap = pass@k - best-of-k.")
-    write_curve_outputs(args, path, blocks, curves, plot_bon_curves, "estimate_curves.png")
+    write_curve_outputs(args, path, blocks, curves, plot_best_of_k_curves, "estimate_curves.png")
     return 0
