@@ -259,3 +259,15 @@ def test_verifier_examples_that_are_not_utf8(files, tmp_path):
 def test_sampling_commands_say_what_they_draw(trained, tmp_path):
     code, out, err = bonft("eval", trained, "--n", "2", "--ks", "1,2")
     assert code == 0 and err == "sampling 2 responses for each of 2 held-out prompts at temperature 1 (4 samples)...\n"
+
+
+@pytest.mark.parametrize("seed", ["-1", str(2**63)])
+def test_every_seed_option_is_bounded_before_any_work(seed, files, trained, tmp_path):
+    # seeds are kept as int64 and torch.manual_seed overflows from 2**64 (torch's documented range)
+    cr = tmp_path / "cr.py"
+    cr.write_text("def credit(scores, rewards, *, k):\n    return rewards\n")
+    for argv in (["estimate", "--example"], ["eval", trained], ["sample", trained, "-o", tmp_path / "s.jsonl"],
+                 ["demo", "--output", tmp_path / "demo"],
+                 ["check-objective", f"{cr}:credit", "--target", "pass_at_k", "--k", "2", "--n", "4"]):
+        expect_error([*argv, f"--seed={seed}"], r"--seed must be >= 0 and < 2\*\*63 .*got " + seed)
+    assert not (tmp_path / "s.jsonl").exists() and not (tmp_path / "demo").exists()

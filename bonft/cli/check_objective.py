@@ -40,8 +40,10 @@ def add_arguments(p) -> None:
 
 
 def run(args) -> int:
-    from bonft.cli.options import write_json_atomic
+    from bonft.cli.options import check_seed, write_json_atomic
     from bonft.testing import check_objective
+
+    check_seed("--seed", args.seed)
     from bonft.verifiers.scoring import load_verifier  # a generic 'module:function' loader
 
     credit = load_verifier(args.credit)

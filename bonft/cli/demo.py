@@ -54,10 +54,10 @@ def _demo_config(args):
 
 
 def run(args: argparse.Namespace) -> int:
-    from bonft._core.checks import check_int
+    from bonft.cli.options import check_seed
     from bonft.trainer.demo import run_demo, run_study
 
-    check_int("--seed", args.seed, min=0)
+    check_seed("--seed", args.seed)
     dc = _demo_config(args)
     try:
         if args.study:

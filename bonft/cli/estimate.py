@@ -53,8 +53,6 @@ def run(args) -> int:
         raise FileNotFoundError(f"POOLS file not found: {path}")
     ks = parse_list("--ks", args.ks)
     check_sizes(args)
-    if args.seed < 0:
-        raise ValueError(f"--seed must be >= 0, got {args.seed}")
     table = read_samples(
         path,
         prompt_field=args.prompt_field,

@@ -5,7 +5,7 @@ import argparse
 import json
 from pathlib import Path
 
-from bonft.cli.options import parse_list
+from bonft.cli.options import check_seed, parse_list
 
 HELP = "evaluate a checkpoint: pass@k and best-of-k (per verifier) with CIs on held-out prompts"
 DESCRIPTION = (
@@ -82,6 +82,7 @@ def run(args: argparse.Namespace) -> int:
     from bonft.trainer.evaluation import evaluate_run  # loads torch: only when a command runs
 
     n = check_int("--n", args.n, min=1)
+    check_seed("--seed", args.seed)
     ks = parse_list("--ks", args.ks)
     if max(ks) > n:
         raise ValueError(f"--ks must be <= --n (n={n}), got --ks={args.ks}")

@@ -30,12 +30,18 @@ def check_boot(flag: str, value: int) -> int:
     return value
 
 
+def check_seed(flag: str, value: int) -> int:
+    """A seed in ``[0, 2**63)``: seeds are kept as int64 and ``torch.manual_seed`` overflows from 2**64."""
+    if not 0 <= value < SEED_BOUND:
+        raise ValueError(f"{flag} must be >= 0 and < 2**63 (seeds are kept as int64; torch.manual_seed overflows "
+                         f"from 2**64), got {value}")
+    return value
+
+
 def check_sizes(args) -> None:
     """The knobs that size the work, before any file is read: --n-boot, --seed, --max-subsets (the API's bounds)."""
     check_boot("--n-boot", args.n_boot)
-    if not 0 <= args.seed < SEED_BOUND:
-        raise ValueError(f"--seed must be >= 0 and < 2**63 (seeds are kept as int64; torch.manual_seed overflows from 2**64), "
-                         f"got {args.seed}")
+    check_seed("--seed", args.seed)
     m = getattr(args, "max_subsets", None)
     if m is not None and not 2 <= m <= MAX_SUBSETS_BOUND:
         raise ValueError(f"--max-subsets must be between 2 and {MAX_SUBSETS_BOUND:,} k-subsets (each sampled subset "

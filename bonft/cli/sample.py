@@ -4,7 +4,7 @@ from __future__ import annotations
 import argparse
 
 from bonft.cli.evaluate import add_common, announce, load_for_eval
-from bonft.cli.options import parse_list
+from bonft.cli.options import check_seed, parse_list
 
 HELP = "sample responses from a checkpoint and write a samples JSONL (input of bonft estimate / bonft plan)"
 DESCRIPTION = (
@@ -36,6 +36,7 @@ def run(args: argparse.Namespace) -> int:
     from bonft.trainer.run import Stream
 
     n = check_int("--n", args.n, min=1)
+    check_seed("--seed", args.seed)
     temps = [check_positive("--temperatures", t) for t in parse_list("--temperatures", args.temperatures, float)]
     torch.set_num_threads(1)  # tiny models: one thread is fastest
     ckpt, cfg, r = load_for_eval(args, n=n, ks=[1], temperature=temps[0])
