@@ -5,36 +5,45 @@ one such process per worker, as root when the caller is, with a scrubbed
 environment. It loads the sandbox's own modules (``wire``, ``oslayer``,
 ``outcome``, ``procs``) from SANDBOX_DIR, compiles the two bootstraps
 (``wire.py`` + ``candidate.py``, ``wire.py`` + ``judge.py``) once, prepares
-the seccomp program, and then only forks. It never reads a candidate's
-solution or tests: it reads a short header per job from its control pipe
-(``run SEQ NBYTES``), forks a supervisor for the job and waits for it. The
-supervisor
+the seccomp program, and then splits in two for good:
 
-1. forks the tests' process (its own session, uid, limits, ``no_new_privs``)
-   and the candidate's: as root it unshares a PID namespace whose init starts
-   the candidate's process (PID 2), which applies the same layers as a
-   one-at-a-time run (:func:`~bonft.verifiers.sandbox.oslayer.apply_layers`:
-   limits, private /tmp, /var/tmp, /dev/shm, /run/lock, its own /proc, IPC and
-   network namespaces, its own uid, ``no_new_privs``, the user-namespace
-   filter) in a fresh working directory and closes every descriptor but its
-   own three pipes and its output;
-2. only then reads the job (NBYTES of JSON) from the control pipe, so neither
-   child holds a byte of it in memory: the candidate's process gets its
-   solution on a pipe, the tests' process its tests on another, as in a
-   one-at-a-time run;
-3. reads both processes' output and the verdict, kills and reaps what is
-   left, removes the two directories, and writes the result frame to the
-   result pipe (``outcome.classify``: the same rules as the runner).
+* the **forker** (the worker process itself, whose pid the pool knows) never
+  reads a job, an output or a verdict: it only receives short commands from
+  the supervisor (``fork SEQ run``, ``killcand SEQ``, ``end SEQ``) on a unix
+  socket of their own. Per job it makes the two directories and the pipes,
+  forks the tests' process (its own session, uid, limits, ``no_new_privs``)
+  and, as root, unshares a PID namespace, forks the namespace's init (which
+  starts the candidate's process as PID 2, with the same layers as a
+  one-at-a-time run, :func:`~bonft.verifiers.sandbox.oslayer.apply_layers`)
+  and joins its own PID namespace again (setns(2), so the next job can
+  unshare a fresh one); it hands the parent ends of the pipes to the
+  supervisor (SCM_RIGHTS, unix(7)), closes its copies, reports each
+  process's exit status as it reaps it, and on ``end`` kills what is left,
+  reaps it and removes the two directories;
+* the **supervisor** (forked once, before any job) reads the jobs from the
+  control pipe, feeds the solution and the tests to the two processes on
+  their pipes, reads both processes' output and the verdict exactly as a
+  one-at-a-time run does (``outcome.collect`` and ``outcome.classify``), and
+  writes the result frame to the result pipe. It **never forks**: every job's
+  text, output and verdict passes through its memory, and no process is ever
+  made from that memory. Every candidate is a fork of the forker, which holds
+  nothing but modules and code. The supervisor is non-dumpable and dies with
+  the forker (parent-death signal).
 
-A supervisor that dies without a result (or a job the worker cannot read)
-gets a ``crashed`` frame naming the cause, and the worker then exits so that
-the pool starts a fresh one. A header ``bare SEQ`` runs the floor: the
-candidate's process with the same layers and working directory, doing nothing.
+So a candidate costs three processes (tests, init, candidate), no interpreter
+start and no per-job supervisor. A supervisor that dies gives its candidate
+in flight a ``crashed`` frame naming the cause (written by the forker, which
+then exits so that the pool starts a fresh worker). A command ``fork SEQ
+bare`` runs the floor: one process of the forker with the candidate's layers
+in a fresh working directory (the PID namespace's PID 1 itself), doing nothing.
 """
+import array
 import builtins
 import gc
 import os
+import select
 import signal
+import socket
 import struct
 import sys
 import time
@@ -88,17 +97,17 @@ def _boot_code(name):
 
 
 class _Child:
-    """A forked child, read like the runner's ``subprocess.Popen``: ``poll``, ``wait``, ``returncode``
-    (minus the signal number when killed), ``stdout``/``stderr`` (its output pipes). For the init of a
-    PID namespace the candidate's own wait status comes on ``status_r`` (the init's otherwise)."""
+    """A child of the forker, read like the runner's ``subprocess.Popen``: ``poll``, ``wait``,
+    ``returncode`` (minus the signal number when killed). For the init of a PID namespace the
+    candidate's own wait status comes on ``status_r`` (the init's otherwise). Its output pipes are
+    the supervisor's: the forker never reads them."""
 
-    def __init__(self, pid, out_r, err_r, status_r=None):
+    def __init__(self, pid, status_r=None):
         self.pid, self.returncode, self._status_r = pid, None, status_r
-        self.stdout, self.stderr = os.fdopen(out_r, "rb", buffering=0), os.fdopen(err_r, "rb", buffering=0)
         try:
-            self._pidfd = os.pidfd_open(pid)
+            self.pidfd = os.pidfd_open(pid)
         except (AttributeError, OSError):
-            self._pidfd = None
+            self.pidfd = None
 
     def _done(self, status):
         if self._status_r is not None:
@@ -115,9 +124,9 @@ class _Child:
             self.returncode = -os.WTERMSIG(status)
         else:
             self.returncode = os.WEXITSTATUS(status) if os.WIFEXITED(status) else 255
-        if self._pidfd is not None:
-            os.close(self._pidfd)
-            self._pidfd = None
+        if self.pidfd is not None:
+            os.close(self.pidfd)
+            self.pidfd = None
 
     def poll(self):
         if self.returncode is None:
@@ -129,18 +138,12 @@ class _Child:
                 self._done(status)
         return self.returncode
 
-    def wait(self, timeout=None):
-        end = None if timeout is None else time.monotonic() + timeout
+    def wait(self):
         while self.poll() is None:
-            left = None if end is None else end - time.monotonic()
-            if left is not None and left <= 0:
-                raise TimeoutError
-            if self._pidfd is not None:
-                import select
-
-                select.select([self._pidfd], [], [], left)
+            if self.pidfd is not None:
+                select.select([self.pidfd], [], [], 1.0)
             else:
-                time.sleep(min(0.002, left) if left is not None else 0.002)
+                time.sleep(0.002)
         return self.returncode
 
 
@@ -155,6 +158,8 @@ class Worker:
         self.cand_code, self.judge_code = _boot_code("candidate.py"), _boot_code("judge.py")
         self.tmp = cfg["tmp"]
         self.pid = os.getpid()  # the worker's: its directories carry it, so the pool can sweep them if it dies
+        self.own_pidns = os.open("/proc/self/ns/pid", os.O_RDONLY | os.O_CLOEXEC) if self.pidns else -1
+        self.libc.setns.argtypes = [ctypes.c_int, ctypes.c_int]
         self._plan()
 
     def _plan(self):
@@ -226,16 +231,33 @@ class Worker:
         finally:
             os._exit(127)
 
+    def _restore_pidns(self):
+        """Join the forker's own PID namespace again after a fork into a fresh one (setns(2)), so the
+        next job can unshare another; a forker that cannot is of no further use."""
+        if self.libc.setns(self.own_pidns, oslayer.CLONE_NEWPID) != 0:
+            os.write(2, b"bonft sandbox worker: setns back to its own PID namespace failed\n")
+            os._exit(5)
+
     def fork_candidate(self, workdir, keep, out_w, err_w, report_w, bare=False):
         """(pid to wait for, status pipe or None): as root the init of a fresh PID namespace. ``bare``
         (the floor): the process with every layer exits at once, and it is the namespace's PID 1 itself
         (no init forks it: the fewest processes these layers take)."""
         pid_layer = self.pidns and bool(self.dirs) and self.libc.unshare(oslayer.CLONE_NEWPID) == 0
         status_r = status_w = None
-        if pid_layer and not bare:
-            status_r, status_w = os.pipe()
-        pid = os.fork()
+        try:
+            if pid_layer and not bare:
+                status_r, status_w = os.pipe()
+            pid = os.fork()
+        except OSError:
+            if pid_layer:
+                self._restore_pidns()
+            for fd in (status_r, status_w):
+                if fd is not None:
+                    os.close(fd)
+            raise
         if pid:
+            if pid_layer:
+                self._restore_pidns()
             if status_w is not None:
                 os.close(status_w)
             return pid, status_r
@@ -274,13 +296,14 @@ class Worker:
             os._exit(127)
 
     # -- one job -----------------------------------------------------------------------------
-    def _mkdirs(self, seq):
+    def _mkdirs(self, seq, judge=True):
         tag = "%d.%d." % (self.pid, seq)
         workdir = _mkdtemp("bonft-sandbox-" + tag, self.tmp)
-        judgedir = _mkdtemp("bonft-tests-" + tag, self.tmp)
+        judgedir = _mkdtemp("bonft-tests-" + tag, self.tmp) if judge else None
         if self.root:
             os.chown(workdir, self.cuid, self.cuid)
-            os.chown(judgedir, self.juid, self.juid)
+            if judgedir is not None:
+                os.chown(judgedir, self.juid, self.juid)
         return workdir, judgedir
 
     def _kill_candidate(self, cand, in_pidns, workdir):
@@ -303,27 +326,15 @@ class Worker:
         else:
             procs.kill_by_cwd(workdir)
 
-    def supervise(self, seq, nbytes):
-        """Run one job (module docstring); returns the result frame."""
-        t0 = time.monotonic()
-        cfg = self.cfg
-        wall = cfg["wall_time"]
-        left = [nbytes]
-
-        def read_job():
-            parts = []
-            while left[0]:
-                chunk = os.read(_CTL, min(left[0], 1 << 20))
-                if not chunk:
-                    raise OSError("the pool's control pipe closed mid-job")
-                parts.append(chunk)
-                left[0] -= len(chunk)
-            return json.loads(b"".join(parts).decode("utf-8"))
-
-        workdir = judgedir = None
+    def run_job(self, seq, sock):
+        """Fork one job's two processes, hand their pipes to the supervisor, report their exits, and on
+        its ``end`` kill what is left, reap it and remove both directories. False when the supervisor
+        is gone (the job's processes are then killed, reaped and removed all the same)."""
         fds = set()
         judge = cand = None
-        in_pidns, layers = False, ()
+        in_pidns = False
+        workdir = judgedir = None
+        alive = True
 
         def pipe():
             r, w = os.pipe()
@@ -334,6 +345,251 @@ class Worker:
             for fd in xs:
                 if fd in fds:
                     fds.discard(fd)
+                    os.close(fd)
+
+        try:
+            try:
+                workdir, judgedir = self._mkdirs(seq)
+                (jcfg_r, jcfg_w), (ver_r, ver_w), (req_r, req_w), (rep_r, rep_w), (ccfg_r, ccfg_w) = [
+                    pipe() for _ in range(5)]
+                (jo_r, jo_w), (je_r, je_w), (co_r, co_w), (ce_r, ce_w), (lay_r, lay_w) = [pipe() for _ in range(5)]
+                judge = _Child(self.fork_judge(judgedir, (jcfg_r, ver_w, req_w, rep_r), jo_w, je_w))
+                cpid, status_r = self.fork_candidate(workdir, (ccfg_r, req_r, rep_w), co_w, ce_w, lay_w)
+                cand = _Child(cpid, status_r)
+                in_pidns = status_r is not None
+                close(jcfg_r, ver_w, req_w, rep_r, ccfg_r, rep_w, jo_w, je_w, co_w, ce_w, lay_w)
+            except OSError as e:
+                alive = _send(sock, b"error %d %s" % (seq, str(e)[:300].encode("utf-8", "replace")))
+            else:
+                theirs = [jcfg_w, ver_r, jo_r, je_r, co_r, ce_r, ccfg_w, lay_r]
+                alive = _send(sock, b"forked %d %d" % (seq, in_pidns), theirs)
+                close(*theirs)
+                told = set()
+                while alive:
+                    for who, p in ((b"j", judge), (b"c", cand)):
+                        if who not in told and p.poll() is not None:
+                            alive = _send(sock, b"exit %d %s %d" % (seq, who, p.returncode))
+                            told.add(who)
+                    waits = [p.pidfd for p in (judge, cand) if p.returncode is None and p.pidfd is not None]
+                    polling = any(p.returncode is None and p.pidfd is None for p in (judge, cand))
+                    ready, _, _ = select.select([sock] + waits, [], [], 0.005 if polling else None)
+                    if sock not in ready:
+                        continue
+                    cmd = _recv(sock)[0].split()
+                    if not cmd:
+                        alive = False
+                    elif cmd[0] == b"killcand":
+                        self._kill_candidate(cand, in_pidns, workdir)
+                    elif cmd[0] == b"end":
+                        break
+        finally:
+            if cand is not None:
+                self._kill_candidate(cand, in_pidns, workdir)
+            if judge is not None:
+                try:
+                    os.killpg(judge.pid, signal.SIGKILL)
+                except (ProcessLookupError, PermissionError):
+                    pass
+            rcs = [p.wait() if p is not None else None for p in (judge, cand)]
+            close(*list(fds))
+            failed = []
+            for d in (workdir, judgedir):
+                if d is not None:
+                    try:
+                        procs.remove_tree(d)
+                    except Exception as e:  # one candidate's leftovers never end the batch
+                        failed.append("%s: %s" % (type(e).__name__, e))
+        if alive and judge is not None:
+            left = "; ".join(failed)[:300].encode("utf-8", "replace")
+            alive = _send(sock, b"ended %d %d %d %s" % (seq, rcs[0], rcs[1], left))
+        return alive
+
+    def bare(self, seq):
+        """The floor: one process with the candidate's layers in a fresh working directory, doing
+        nothing; returns the layers that took effect (or ``E`` and the set-up error)."""
+        workdir, _ = self._mkdirs(seq, judge=False)
+        lay_r, lay_w = os.pipe()
+        out_r, out_w = os.pipe()
+        try:
+            pid, status_r = self.fork_candidate(workdir, (), out_w, out_w, lay_w, bare=True)
+            os.close(lay_w)
+            os.close(out_w)
+            done = _read_to_eof(lay_r)
+            _Child(pid, status_r).wait()
+        finally:
+            os.close(lay_r)
+            os.close(out_r)
+            procs.remove_tree(workdir)
+        return done.decode("utf-8", "replace")
+
+    def probe(self):
+        """Fall back without the PID namespace, then without the mount namespace, while their set-up
+        fails (a container may refuse them even to root); returns the layer letters that took effect.
+        Each try runs in a child, so a namespace the forker could not leave again costs only the child."""
+        while True:
+            r, w = os.pipe()
+            pid = os.fork()
+            if pid == 0:
+                try:
+                    os.write(w, b"ok " + self.bare(0).encode("utf-8"))
+                finally:
+                    os._exit(0)
+            os.close(w)
+            done = _read_to_eof(r).decode("utf-8", "replace")
+            os.close(r)
+            os.waitpid(pid, 0)
+            done = done[3:] if done.startswith("ok ") else "Ethe probe ended without a report"
+            if not done.startswith("E"):
+                return done
+            if self.pidns:
+                self.pidns = False
+            elif self.mountns:
+                self.mountns = False
+                self._plan()
+            else:
+                return done
+
+
+def _send(sock, msg, fds=()):
+    """One message (and descriptors) to the other half; False when it is gone."""
+    try:
+        if fds:
+            sock.sendmsg([msg], [(socket.SOL_SOCKET, socket.SCM_RIGHTS, array.array("i", fds))])
+        else:
+            sock.send(msg)
+        return True
+    except OSError:
+        return False
+
+
+def _recv(sock):
+    """(message, descriptors) from the other half; (b"", []) when it is gone."""
+    try:
+        msg, anc, _, _ = sock.recvmsg(1024, socket.CMSG_SPACE(16 * 4))
+    except OSError:
+        return b"", []
+    fds = array.array("i")
+    for level, kind, data in anc:
+        if level == socket.SOL_SOCKET and kind == socket.SCM_RIGHTS:
+            fds.frombytes(data[:len(data) - len(data) % fds.itemsize])
+    return msg, list(fds)
+
+
+class _Remote:
+    """One of the job's processes as the supervisor sees it: its output pipes and the exit status the
+    forker reports (``poll``, ``wait`` and ``returncode`` as ``subprocess.Popen``'s)."""
+
+    def __init__(self, sup, out_r, err_r):
+        self.sup, self.returncode = sup, None
+        self.stdout, self.stderr = os.fdopen(out_r, "rb", buffering=0), os.fdopen(err_r, "rb", buffering=0)
+
+    def poll(self):
+        if self.returncode is None:
+            self.sup.pump(0)
+        return self.returncode
+
+    def wait(self, timeout=None):
+        end = None if timeout is None else time.monotonic() + timeout
+        while self.returncode is None:
+            left = None if end is None else end - time.monotonic()
+            if left is not None and left <= 0:
+                raise TimeoutError
+            self.sup.pump(left)
+        return self.returncode
+
+
+class Supervisor:
+    """The half of a worker that reads jobs, feeds them, reads outputs and verdicts and writes results;
+    it never forks (module docstring)."""
+
+    def __init__(self, cfg, sock, same_uid):
+        self.cfg, self.sock, self.same_uid = cfg, sock, same_uid
+        self.buf = bytearray()
+        self.seq, self.procs, self.ended = None, {}, None
+
+    def _fill(self):
+        chunk = os.read(_CTL, 1 << 20)
+        if not chunk:
+            raise EOFError
+        self.buf += chunk
+
+    def header(self):
+        while b"\n" not in self.buf:
+            if len(self.buf) > 64:
+                return ["?"]
+            try:
+                self._fill()
+            except EOFError:
+                return None
+        i = self.buf.index(b"\n")
+        head = bytes(self.buf[:i]).decode("ascii", "replace").split()
+        del self.buf[:i + 1]
+        return head
+
+    def payload(self, n):
+        while len(self.buf) < n:
+            try:
+                self._fill()
+            except EOFError:
+                raise OSError("the pool's control pipe closed mid-job") from None
+        data = bytes(self.buf[:n])
+        del self.buf[:n]
+        return data
+
+    def pump(self, timeout):
+        """Read the forker's reports for up to ``timeout`` seconds (None: until one comes)."""
+        r, _, _ = select.select([self.sock], [], [], timeout)
+        while r:
+            msg, fds = _recv(self.sock)
+            for fd in fds:
+                os.close(fd)
+            if not msg:  # the forker is gone: so is every process of the job (parent-death signals)
+                os._exit(9)
+            self._note(msg.split(None, 5))
+            r, _, _ = select.select([self.sock], [], [], 0)
+
+    def _note(self, parts):
+        if len(parts) >= 4 and parts[0] == b"exit" and int(parts[1]) == self.seq and parts[2] in self.procs:
+            self.procs[parts[2]].returncode = int(parts[3])
+        elif len(parts) >= 4 and parts[0] == b"ended" and int(parts[1]) == self.seq:
+            for who, rc in ((b"j", parts[2]), (b"c", parts[3])):
+                if who in self.procs:
+                    self.procs[who].returncode = int(rc)
+            self.ended = (parts[4] if len(parts) > 4 else b"").decode("utf-8", "replace")
+
+    def reply(self, seq):
+        """The forker's answer to ``fork SEQ``: (message parts, descriptors)."""
+        while True:
+            msg, fds = _recv(self.sock)
+            if not msg:
+                os._exit(9)
+            parts = msg.split(None, 2)
+            if parts[0] in (b"forked", b"error", b"bare") and int(parts[1]) == seq:
+                return parts, fds
+            for fd in fds:
+                os.close(fd)
+
+    def supervise(self, seq, nbytes):
+        """Run one job; returns the result frame."""
+        t0 = time.monotonic()
+        cfg = self.cfg
+        wall = cfg["wall_time"]
+        self.seq, self.procs, self.ended = seq, {}, None
+        _send(self.sock, b"fork %d run" % seq)
+        job = json.loads(self.payload(nbytes).decode("utf-8"))
+        parts, fds = self.reply(seq)
+        if parts[0] == b"error":
+            return {"status": "crashed", "reason": "runner: could not start the pool's processes: %s"
+                    % (parts[2] if len(parts) > 2 else b"").decode("utf-8", "replace")}
+        jcfg_w, ver_r, jo_r, je_r, co_r, ce_r, ccfg_w, lay_r = fds
+        mine = {jcfg_w, ver_r, lay_r, ccfg_w}
+        judge = self.procs[b"j"] = _Remote(self, jo_r, je_r)
+        cand = self.procs[b"c"] = _Remote(self, co_r, ce_r)
+
+        def close(*xs):
+            for fd in xs:
+                if fd in mine:
+                    mine.discard(fd)
                     os.close(fd)
 
         def feed(fd, obj):
@@ -347,42 +603,24 @@ class Worker:
             close(fd)
 
         out = {"c_out": b"", "c_err": b"", "j_out": b"", "j_err": b""}
-        verdict, timed_out, over = {}, False, None
+        verdict, timed_out, over, layers, early = {}, False, None, (), None
         try:
-            try:
-                workdir, judgedir = self._mkdirs(seq)
-                (jcfg_r, jcfg_w), (ver_r, ver_w), (req_r, req_w), (rep_r, rep_w), (ccfg_r, ccfg_w) = [
-                    pipe() for _ in range(5)]
-                (jo_r, jo_w), (je_r, je_w), (co_r, co_w), (ce_r, ce_w), (lay_r, lay_w) = [pipe() for _ in range(5)]
-                jpid = self.fork_judge(judgedir, (jcfg_r, ver_w, req_w, rep_r), jo_w, je_w)
-                fds.discard(jo_r)
-                fds.discard(je_r)
-                judge = _Child(jpid, jo_r, je_r)
-                cpid, status_r = self.fork_candidate(workdir, (ccfg_r, req_r, rep_w), co_w, ce_w, lay_w)
-                fds.discard(co_r)
-                fds.discard(ce_r)
-                cand = _Child(cpid, co_r, ce_r, status_r)
-                in_pidns = status_r is not None
-                close(jcfg_r, ver_w, req_w, rep_r, ccfg_r, rep_w, jo_w, je_w, co_w, ce_w, lay_w)
-            except OSError as e:
-                read_job()
-                return {"status": "crashed", "reason": "runner: could not start the pool's processes: %s" % e}
-            job = read_job()  # only now: no child holds a byte of it
-            feed(jcfg_w, {"tests": job["tests"], "frame_cap": cfg["frame_cap"], "same_uid": self.cuid is None})
-            if self.cuid is None and not outcome.await_start(ver_r, t0 + wall):
-                return {"status": "crashed", "reason": "runner: could not start the tests' process"}
+            feed(jcfg_w, {"tests": job["tests"], "frame_cap": cfg["frame_cap"], "same_uid": self.same_uid})
+            if self.same_uid and not outcome.await_start(ver_r, t0 + wall):
+                early = "runner: could not start the tests' process"
+                return
             done = _read_to_eof(lay_r)
             close(lay_r)
             if done.startswith(b"E"):
-                return {"status": "crashed", "reason": "runner: the sandbox could not be set up: %s"
-                        % done[1:].decode("utf-8", "replace")}
+                early = "runner: the sandbox could not be set up: %s" % done[1:].decode("utf-8", "replace")
+                return
             layers = tuple(oslayer.LAYER_NAMES[c] for c in done.decode("ascii", "replace") if c in oslayer.LAYER_NAMES)
             feed(ccfg_w, {"solution": job["solution"], "max_processes": cfg["max_processes"],
                           "frame_cap": cfg["frame_cap"]})
             del job
             out, verdict, timed_out, over = outcome.collect(
                 judge, cand, ver_r, deadline=t0 + wall, cap=cfg["max_output_bytes"], frame_cap=cfg["frame_cap"],
-                on_candidate_exit=lambda: self._kill_candidate(cand, in_pidns, workdir))
+                on_candidate_exit=lambda: _send(self.sock, b"killcand %d" % seq))
             if verdict and not over:  # as the runner: a short wait saves a kill sweep; a pass waits for the end
                 now = time.monotonic()
                 if verdict.get("status") == "pass":
@@ -395,84 +633,54 @@ class Worker:
                     except TimeoutError:
                         pass
         finally:
-            if cand is not None:
-                self._kill_candidate(cand, in_pidns, workdir)
-            if judge is not None:
-                try:
-                    os.killpg(judge.pid, signal.SIGKILL)
-                except (ProcessLookupError, PermissionError):
-                    pass
-            rcs = [p.wait() if p is not None else None for p in (judge, cand)]
+            close(*list(mine))
             for p in (judge, cand):
-                if p is not None:
-                    for f in (p.stdout, p.stderr):
-                        if not f.closed:
-                            f.close()
-            close(*list(fds))
-            failed = []
-            for d in (workdir, judgedir):
-                if d is not None:
-                    try:
-                        procs.remove_tree(d)
-                    except Exception as e:  # one candidate's leftovers never end the batch
-                        failed.append("%s: %s" % (type(e).__name__, e))
-            left_behind = "; ".join(failed)[:300] or None
-        status, reason = outcome.classify(verdict, rcs[1], rcs[0], timed_out=timed_out, over=over, wall_time=wall,
-                                          cpu_time=cfg["cpu_time"], file_size_mb=cfg["file_size_mb"])
-        if left_behind:
-            status, reason = "crashed", "clean-up failed: %s" % left_behind + (
+                for f in (p.stdout, p.stderr):
+                    if not f.closed:
+                        f.close()
+            _send(self.sock, b"end %d" % seq)
+            while self.ended is None:
+                self.pump(None)
+        if early:
+            return {"status": "crashed", "reason": early}
+        status, reason = outcome.classify(verdict, cand.returncode, judge.returncode, timed_out=timed_out, over=over,
+                                          wall_time=wall, cpu_time=cfg["cpu_time"], file_size_mb=cfg["file_size_mb"])
+        if self.ended:
+            status, reason = "crashed", "clean-up failed: %s" % self.ended + (
                 " (verdict was %s)" % status if status != "crashed" else "")
-        return {"status": status, "reason": reason, "returncode": rcs[1],
+        return {"status": status, "reason": reason, "returncode": cand.returncode,
                 "stdout": (out["c_out"] + out["j_out"]).decode("utf-8", "replace"),
                 "stderr": (out["c_err"] + out["j_err"]).decode("utf-8", "replace"),
                 "wall_s": time.monotonic() - t0, "os_layers": list(layers)}
 
     def bare(self, seq):
-        """The floor: the candidate's process with the same layers in a fresh working directory, doing
-        nothing; returns the layers that took effect (or the set-up error)."""
-        workdir, judgedir = self._mkdirs(seq)
-        lay_r, lay_w = os.pipe()
-        out_r, out_w = os.pipe()
-        try:
-            pid, status_r = self.fork_candidate(workdir, (), out_w, out_w, lay_w, bare=True)
-            os.close(lay_w)
-            os.close(out_w)
-            done = _read_to_eof(lay_r)
-            child = _Child(pid, out_r, os.dup(out_r), status_r)
-            child.wait()
-            child.stdout.close()
-            child.stderr.close()
-        finally:
-            os.close(lay_r)
-            procs.remove_tree(workdir)
-            procs.remove_tree(judgedir)
-        return done.decode("utf-8", "replace")
+        _send(self.sock, b"fork %d bare" % seq)
+        parts, fds = self.reply(seq)
+        for fd in fds:
+            os.close(fd)
+        if parts[0] != b"bare":
+            return {"status": "crashed", "reason": "runner: could not start the floor's process"}
+        return {"layers": (parts[2] if len(parts) > 2 else b"").decode("utf-8", "replace")}
 
-    def probe(self):
-        """Fall back without the PID namespace, then without the mount namespace, while their set-up
-        fails (a container may refuse them even to root); returns the layer letters that took effect."""
+    def loop(self):
         while True:
-            r, w = os.pipe()
-            pid = os.fork()  # the PID namespace is unshared in a child: the worker's own children stay in its
-            if pid == 0:
-                try:
-                    os.write(w, self.bare(0).encode("utf-8"))
-                finally:
-                    os._exit(0)
-            os.close(w)
-            done = _read_to_eof(r)
-            os.close(r)
-            os.waitpid(pid, 0)
-            done = done.decode("utf-8", "replace")
-            if not done.startswith("E"):
-                return done
-            if self.pidns:
-                self.pidns = False
-            elif self.mountns:
-                self.mountns = False
-                self._plan()
+            head = self.header()
+            if head is None or head[:1] == ["quit"]:
+                os._exit(0)
+            if len(head) == 3 and head[0] == "run" and head[1].isdigit() and head[2].isdigit():
+                seq, mode = int(head[1]), "run"
+            elif len(head) == 2 and head[0] == "bare" and head[1].isdigit():
+                seq, mode = int(head[1]), "bare"
             else:
-                return done
+                wire.wire_send(_RES, {"job": None, "fatal": "bad job header %r" % " ".join(head)[:60]})
+                os._exit(3)
+            try:
+                res = self.supervise(seq, int(head[2])) if mode == "run" else self.bare(seq)
+            except Exception as e:
+                res = {"status": "crashed", "reason": "runner: %s: %s" % (type(e).__name__, str(e)[:200])}
+                traceback.print_exc()
+            res["job"] = seq
+            wire.wire_send(_RES, res)
 
 
 def _read_to_eof(fd):
@@ -483,19 +691,6 @@ def _read_to_eof(fd):
         if not chunk:
             return b"".join(parts)
         parts.append(chunk)
-
-
-def _read_header():
-    head = b""
-    while True:
-        c = os.read(_CTL, 1)
-        if not c:
-            return None
-        if c == b"\n":
-            return head.decode("ascii", "replace").split()
-        head += c
-        if len(head) > 64:
-            return ["?"]
 
 
 def _ended(status):
@@ -509,44 +704,49 @@ def _ended(status):
 
 
 def _main():
-    ctypes.CDLL(None).prctl(oslayer.PR_SET_PDEATHSIG, signal.SIGKILL, 0, 0, 0)
+    libc = ctypes.CDLL(None)
+    libc.prctl(oslayer.PR_SET_PDEATHSIG, signal.SIGKILL, 0, 0, 0)
     cfg = wire.wire_recv(_CTL, 1 << 20)
     w = Worker(cfg)
     layers = w.probe()
+    ours, theirs = socket.socketpair(socket.AF_UNIX, socket.SOCK_SEQPACKET)
     gc.collect()
     gc.freeze()  # forked children do not copy the pages of objects they never free
+    sup = os.fork()
+    if sup == 0:
+        try:
+            ours.close()
+            libc.prctl(oslayer.PR_SET_PDEATHSIG, signal.SIGKILL, 0, 0, 0)
+            libc.prctl(PR_SET_DUMPABLE, 0, 0, 0, 0)  # no ptrace, no /proc/PID/mem for processes of its uid
+            libc.prctl(15, b"bonft-supervise", 0, 0, 0)  # PR_SET_NAME
+            Supervisor(cfg, theirs, w.cuid is None).loop()
+        finally:
+            os._exit(70)
+    theirs.close()
+    os.close(_CTL)  # the forker reads no job
     wire.wire_send(_RES, {"ready": True, "pid": os.getpid(), "layers": layers, "pidns": w.pidns,
                           "mountns": w.mountns})
+    seq = None
     while True:
-        head = _read_header()
-        if head is None or head[:1] == ["quit"]:
-            os._exit(0)
-        if len(head) == 3 and head[0] == "run" and head[1].isdigit() and head[2].isdigit():
-            seq, mode = int(head[1]), "run"
-        elif len(head) == 2 and head[0] == "bare" and head[1].isdigit():
-            seq, mode = int(head[1]), "bare"
-        else:
-            wire.wire_send(_RES, {"job": None, "fatal": "bad job header %r" % " ".join(head)[:60]})
-            os._exit(3)
-        pid = os.fork()
-        if pid == 0:
-            try:
-                w.libc.prctl(oslayer.PR_SET_PDEATHSIG, signal.SIGKILL, 0, 0, 0)
+        msg, fds = _recv(ours)
+        for fd in fds:
+            os.close(fd)
+        parts = msg.split()
+        alive = bool(parts)
+        if len(parts) == 3 and parts[0] == b"fork" and parts[1].isdigit():
+            seq = int(parts[1])
+            if parts[2] == b"run":
+                alive = w.run_job(seq, ours)
+            else:
                 try:
-                    if mode == "run":
-                        res = w.supervise(seq, int(head[2]))
-                    else:
-                        res = {"layers": w.bare(seq)}
-                except Exception as e:
-                    res = {"status": "crashed", "reason": "runner: %s: %s" % (type(e).__name__, str(e)[:200])}
-                    traceback.print_exc()
-                res["job"] = seq
-                wire.wire_send(_RES, res)
-                os._exit(0)
-            finally:
-                os._exit(70)
-        _, status = os.waitpid(pid, 0)
-        if status != 0:  # the supervisor died without its result: say so, then let the pool start a fresh worker
+                    done = w.bare(seq).encode("utf-8", "replace")
+                except OSError as e:
+                    done = b"E" + str(e).encode("utf-8", "replace")
+                alive = _send(ours, b"bare %d %s" % (seq, done))
+            if alive:
+                seq = None
+        if not alive:  # the supervisor died: say so for its job, then let the pool start a fresh worker
+            _, status = os.waitpid(sup, 0)
             wire.wire_send(_RES, {"job": seq, "status": "crashed", "worker_exits": True,
                                   "reason": "runner: the pool worker's supervisor of this candidate ended (%s)"
                                   % _ended(status)})
