@@ -284,16 +284,20 @@ def test_bad_input_messages():
         reinforce_loss(torch.zeros(2, 3), s, mask=torch.ones(2, 3))
 
 
-def test_default_path_reads_once_per_mask_on_the_host():
-    # A device sync happens when Python reads a tensor's value (bool, float, int, item, tolist,
-    # numpy, nonzero). With host scores/rewards the default path reads exactly once per mask
-    # (the all-zero-row check and the finiteness test of the fast path, together) and nothing
+def test_default_path_reads_once_per_mask_on_the_host(monkeypatch):
+    # On a CPU the small (B, n) checks read the tensors' memory through numpy, which is no sync; the
+    # count below is that of the path an accelerator takes, switched on here. A device sync happens
+    # when Python reads a tensor's value (bool, float, int, item, tolist, numpy, nonzero). With host
+    # scores/rewards the default path reads exactly once per mask (the zero-sum test of the rows
+    # and the finiteness test of the fast path, together) and nothing
     # without a mask; NaN or an infinity in the padding costs two more reads per mask (the exact
     # row check, then the finiteness test that sends it to where); check_tokens=True reads more.
     from torch.overrides import TorchFunctionMode
 
+    from bonft.objectives import losses
     from bonft.objectives.losses import policy_gradient_loss
 
+    monkeypatch.setattr(losses, "_NUMPY_ON_CPU", False)
     reads = {torch.Tensor.__bool__, torch.Tensor.__float__, torch.Tensor.__int__, torch.Tensor.item,
              torch.Tensor.tolist, torch.Tensor.numpy, torch.Tensor.nonzero, torch.nonzero}
 

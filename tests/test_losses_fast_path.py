@@ -14,7 +14,7 @@ reductions, the anchor KL term and ``return_info``.
 import numpy as np
 import pytest
 import torch
-from hypothesis import given
+from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from bonft.objectives.credit import (
@@ -34,7 +34,9 @@ from bonft.objectives.losses import (
 )
 
 LOSSES = ("reinforce", "pass_at_k", "pass_at_k_plugin", "best_of_k", "best_of_k_sft", "policy_gradient")
-MASK_DTYPES = (torch.bool, torch.float32, torch.float64, torch.int64, torch.uint8)
+MASK_DTYPES = (torch.bool, torch.float32, torch.float64, torch.float16, torch.bfloat16, torch.int64, torch.int32,
+               torch.int8, torch.uint8)
+LP_DTYPES = (torch.float32, torch.float64, torch.bfloat16)  # bfloat16 is widened to float32 by the losses
 PADDING = ("finite", "nan", "-inf", "+inf", "mixed")
 
 
@@ -63,7 +65,7 @@ def cases(draw):
     seed = draw(st.integers(0, 2**16))
     return {
         "B": B, "n": n, "T": T, "seed": seed,
-        "lp_dtype": draw(st.sampled_from((torch.float32, torch.float64))),
+        "lp_dtype": draw(st.sampled_from(LP_DTYPES)),
         "mask_dtype": draw(st.sampled_from(MASK_DTYPES)),
         "padding": draw(st.sampled_from(PADDING)),
         "loss": draw(st.sampled_from(LOSSES)),
@@ -87,7 +89,11 @@ def make_batch(c):
         mask = on
     elif c["mask_dtype"].is_floating_point:  # any non-zero entry marks a token
         level = torch.tensor([0.5, 1.0, 2.0, -1.0], dtype=c["mask_dtype"])[torch.randint(0, 4, (B, n, T), generator=g)]
-        mask = torch.where(on, level, 0.0).to(c["mask_dtype"])
+        mask = torch.where(on, level, torch.tensor([0.0, -0.0])[torch.randint(0, 2, (B, n, T), generator=g)])
+        mask = mask.to(c["mask_dtype"])  # -0.0 marks padding like 0.0
+    elif c["mask_dtype"] in (torch.int64, torch.int32):  # 256 and -1 are tokens too (not 0 once cast to a byte)
+        level = torch.tensor([1, 2, 256, -1], dtype=c["mask_dtype"])[torch.randint(0, 4, (B, n, T), generator=g)]
+        mask = torch.where(on, level, 0)
     else:
         mask = on.to(c["mask_dtype"]) * torch.randint(1, 3, (B, n, T), generator=g).to(c["mask_dtype"])
     lp = -3 * torch.rand(B, n, T, generator=g, dtype=c["lp_dtype"])
@@ -157,7 +163,7 @@ def reference(c, lp, mask, anchor, scores, rewards, ref_lp, ref_mask, ref_scores
             if c["token_reduction"] == "mean":
                 ref_seq = ref_seq * (ref_seq.numel() / float(ref_mask.sum()))
         else:
-            ref_seq = ref_lp.double().sum(-1)
+            ref_seq = ref_lp.sum(-1).double()  # the sequence log-probs the loss is given
         per_prompt = per_prompt - ref_seq
     red = {"mean": per_prompt.mean(), "sum": per_prompt.sum(), "none": per_prompt}[c["reduction"]]
     red.sum().backward()
@@ -172,6 +178,7 @@ def reference(c, lp, mask, anchor, scores, rewards, ref_lp, ref_mask, ref_scores
     return red.detach(), lp64.grad, info
 
 
+@settings(max_examples=200)  # derandomized by the profile in conftest.py; more examples: the space is large
 @given(cases())
 def test_fast_path_gives_where_masking_results_nan_in_padding_included(c):
     lp, mask, anchor, scores, rewards, ref_lp, ref_mask, ref_scores = make_batch(c)
@@ -184,10 +191,13 @@ def test_fast_path_gives_where_masking_results_nan_in_padding_included(c):
     loss, info = out if c["return_info"] else (out, None)
     loss.sum().backward()
     want, want_grad, want_info = reference(c, lp, *args)
-    tol = {"rtol": 1e-5, "atol": 1e-5} if c["lp_dtype"] == torch.float32 else {"rtol": 1e-10, "atol": 1e-10}
-    assert loss.dtype == c["lp_dtype"]
+    # bfloat16 log-probs are summed in float32 (exactly widened), their gradient rounded back to bfloat16
+    tol = {"rtol": 1e-10, "atol": 1e-10} if c["lp_dtype"] == torch.float64 else {"rtol": 1e-5, "atol": 1e-5}
+    assert loss.dtype == (torch.float32 if c["lp_dtype"] == torch.bfloat16 else c["lp_dtype"])
+    assert x.grad.dtype == c["lp_dtype"]
     torch.testing.assert_close(loss.detach().double(), want, **tol)
-    torch.testing.assert_close(x.grad.double(), want_grad, **tol)
+    grad_tol = {"rtol": 2 ** -8, "atol": 1e-6} if c["lp_dtype"] == torch.bfloat16 else tol
+    torch.testing.assert_close(x.grad.double(), want_grad, **grad_tol)
     assert torch.isfinite(x.grad).all()
     if c["return_info"]:
         for key, value in want_info.items():
@@ -235,3 +245,47 @@ def test_a_response_of_certain_tokens_sums_to_zero_and_is_not_an_empty_row():
     w = torch.as_tensor(reinforce_credit(rewards))
     assert float(loss.detach()) == pytest.approx(float(-(w * lp.double().sum(-1)).sum(-1).mean()), rel=1e-6)
     torch.testing.assert_close(x.grad, (-w / 2)[..., None].float().expand(2, 3, 4))
+
+
+@pytest.mark.parametrize("mask_dtype", MASK_DTYPES)
+def test_token_weights_are_one_exactly_where_the_mask_is_not_zero(mask_dtype):
+    # reference: the definition "any non-zero entry marks a token", evaluated element by element in Python
+    from bonft.objectives.validation import token_weights
+
+    values = [0, 1, 2, -1, 0.5, 256, -0.0, 1e-30, 65536]
+    if not mask_dtype.is_floating_point and mask_dtype != torch.bool:
+        info = torch.iinfo(mask_dtype)
+        values = [v for v in values if float(v).is_integer() and info.min <= v <= info.max]
+    mask = torch.tensor(values).to(mask_dtype)
+    want = [0.0 if float(v) == 0 else 1.0 for v in mask.tolist()]
+    for dtype in (torch.float32, torch.float64):
+        w = token_weights(mask.view(1, 1, -1), dtype)
+        assert w.dtype == dtype and w.view(-1).tolist() == want, (mask_dtype, mask.tolist(), w.view(-1).tolist())
+    strided = torch.tensor(values[:4] * 2).to(mask_dtype).view(2, 4).t()  # non-contiguous
+    assert token_weights(strided, torch.float32).tolist() == [[0.0 if float(v) == 0 else 1.0 for v in row]
+                                                              for row in strided.tolist()]
+
+
+@pytest.mark.parametrize("mask_dtype", (torch.bool, torch.float32, torch.int64))
+def test_a_second_backward_and_a_differentiable_one_give_the_same_gradient(mask_dtype):
+    # the fast path hands its 0/1 weights over as the gradient on the first backward; a second
+    # backward through the retained graph (and create_graph) must still see the weights, not the gradient
+    g = torch.Generator().manual_seed(5)
+    lp = -torch.rand(3, 4, 6, generator=g, dtype=torch.float64)
+    mask = (torch.rand(3, 4, 6, generator=g) < 0.7)
+    mask[..., 0] = True
+    mask = mask.to(mask_dtype)
+    credit = np.random.default_rng(5).normal(size=(3, 4))
+    want = (-torch.as_tensor(credit)[..., None] / 3 * (mask != 0)).expand(3, 4, 6)  # d/dlp of -(1/B) sum w seq
+    x = lp.clone().requires_grad_(True)
+    loss = policy_gradient_loss(x, credit, mask=mask)
+    (first,) = torch.autograd.grad(loss, x, retain_graph=True)
+    (second,) = torch.autograd.grad(loss, x, retain_graph=True)
+    (third,) = torch.autograd.grad(loss, x, create_graph=True)
+    for got in (first, second, third):
+        torch.testing.assert_close(got, want, rtol=1e-12, atol=1e-15)
+    y = lp.clone().requires_grad_(True)
+    nll = nll_loss(y.view(12, 6), mask=mask.view(12, 6), reduction="sum")
+    nll.backward(retain_graph=True)
+    nll.backward()  # accumulates: twice the gradient of the sum, -1 on every token
+    torch.testing.assert_close(y.grad, -2.0 * (mask != 0).double(), rtol=0, atol=0)

@@ -181,49 +181,56 @@ def _policy_gradient_loss(logprobs, credit, opt: LossOptions):
         check_empty_rows("mask", mask, None if opt.check_tokens else w)
         loss, info, _, _ = _policy_gradient(lp, w, _Mask(mask, lp.dtype), opt, fast=False)
     else:
-        m, weighted = _Mask(mask, lp.dtype), None if opt.check_tokens else w
-        loss, info, checked, terms = _policy_gradient(lp, w, m, opt, fast=True)
-        if opt.check_tokens:  # every row must hold a token: compare the sums themselves with their count
-            terms, nonzero = terms[1], terms[1].numel()
-        else:  # rows with credit: w * sum is 0 where the sum is 0 or there is no credit
-            terms = terms[0]
-            nonzero = int(np.count_nonzero(credit)) if isinstance(credit, np.ndarray) else torch.count_nonzero(w)
-        if _needs_a_look(checked, terms, nonzero):  # the one read
-            check_empty_rows("mask", mask, weighted)  # an empty row with credit: a ValueError
+        m = _Mask(mask, lp.dtype)
+        loss, info, checked, sums = _policy_gradient(lp, w, m, opt, fast=True)
+        if _needs_a_look(checked, sums):  # the one read
+            # an empty row (with credit, or any with check_tokens): a ValueError
+            check_empty_rows("mask", mask, None if opt.check_tokens else w)
             if not bool(torch.isfinite(checked).all()):  # NaN or an infinity: where
                 loss, info, _, _ = _policy_gradient(lp, w, m, opt, fast=False)
     return (loss, info) if opt.return_info else loss
 
 
-def _needs_a_look(checked: Tensor, terms: Tensor, nonzero) -> bool:
-    """One read: is anything in ``checked`` non-finite, or could a row that must hold a token be empty?
+_NUMPY_ON_CPU = True  # the tests switch it off to count the reads of the accelerator path on a CPU
 
-    An empty row's masked sum is exactly 0, so only rows whose sum is 0 can be empty: ``terms``
-    (B, n) are the sums (or credit x sum) and ``nonzero`` (an int or a 0-dim tensor) how many of
-    them are non-zero when no row that matters sums to 0. Testing these (O(B n)) instead of
-    counting every row's tokens (O(B n T)) leaves the exact count to the rare call where a term is
-    0 (a response whose every token had probability 1, or a product that underflows). A
-    non-finite value anywhere makes the sum of ``checked`` non-finite (as may a finite overflow:
-    then the exact path runs for nothing and gives the same result).
+
+def _numpy_view(t: Tensor) -> bool:
+    """Read small (B, n) tensors through numpy (no copy, no sync: the tensor is in host memory)?"""
+    return _NUMPY_ON_CPU and t.device.type == "cpu"
+
+
+def _needs_a_look(checked: Tensor, sums: Tensor) -> bool:
+    """One read: is anything in ``checked`` non-finite, or is a masked sum in ``sums`` exactly 0?
+
+    An empty row's masked sum is exactly 0, so only rows whose sum is 0 can be empty: testing the
+    (B, n) sums (O(B n)) instead of counting every row's tokens (O(B n T)) leaves the exact count
+    to the rare call where a sum is 0 (a response whose every token had probability 1, or sums
+    that cancel). A non-finite value anywhere makes the sum of ``checked`` non-finite (as may a
+    finite overflow: then the exact path runs for nothing and gives the same result). On a CPU
+    both are numpy reductions over the tensors' memory (a torch call costs several times more at
+    this size); elsewhere one tensor of two numbers is read back.
     """
-    both = torch.stack((checked.sum().double(), (torch.count_nonzero(terms) - nonzero).double()))
-    total, missing = both.tolist()
-    return missing != 0 or not math.isfinite(total)
+    if _numpy_view(checked):
+        total = float(checked.detach().numpy().sum())
+        zeros = sums.numel() - np.count_nonzero(sums.numpy())
+    else:
+        total, zeros = torch.stack((checked.detach().sum().double(),
+                                    (sums.numel() - torch.count_nonzero(sums)).double())).tolist()
+    return zeros != 0 or not math.isfinite(total)
 
 
 def _policy_gradient(lp: Tensor, w: Tensor, m: "_Mask | None", opt: LossOptions, *, fast: bool):
-    """The loss of :func:`policy_gradient_loss` on checked inputs -> ``(loss, info, checked (B,), (w x sums, sums))``.
+    """The loss of :func:`policy_gradient_loss` on checked inputs -> ``(loss, info, checked (B,), sums (B, n))``.
 
     ``fast``: padding is masked by a multiply (exact when it holds finite numbers); otherwise by
     ``where`` (exact whatever it holds). Every non-finite value met on the fast path reaches
     ``checked`` (the per-prompt loss, plus the KL; ``0 * inf`` and ``w * NaN`` are NaN), so one
     test of it tells whether the ``where`` path is needed. ``sums``: the masked sums of the
-    log-probs and ``w x sums`` the credit-weighted terms, (B, n) each, detached (for the
-    empty-row test).
+    log-probs, (B, n), detached (for the empty-row test).
     """
     info: dict[str, Tensor] = {}
     if opt.sampling_logprobs is None:
-        seq = _masked_sum(lp, m, fast=fast)  # (B, n)
+        seq = _masked_sum(lp, m, fast=fast, spare=opt.anchor_logprobs is None)  # (B, n): the KL term uses the weights too
     else:
         seq = _reweighted_sum(lp, m, w, opt, info)
     sums = seq.detach()
@@ -239,11 +246,23 @@ def _policy_gradient(lp: Tensor, w: Tensor, m: "_Mask | None", opt: LossOptions,
         info["kl"] = kl_tok
     loss = _reduce(per_prompt, opt.reduction)
     if not opt.return_info:
-        return loss, None, checked, (prod.detach(), sums)
-    info["pools_with_signal"] = (w != 0).any(-1).to(w.dtype).mean()
+        return loss, None, checked, sums
+    info["pools_with_signal"] = _share_with_signal(w)
     info["credit_abs_mean"] = w.abs().mean()
     info["masked_frac"] = 1 - m.count().to(w.dtype) / lp.numel() if m is not None else w.new_zeros(())
-    return loss, info, checked, (prod.detach(), sums)
+    return loss, info, checked, sums
+
+
+def _share_with_signal(w: Tensor) -> Tensor:
+    """Share of the (B, n) credit's rows that hold a non-zero value, in ``w``'s dtype and device.
+
+    On a CPU counted by numpy over the tensor's memory (torch's ``any(-1)`` is slow); ``j / B`` is
+    then rounded once to ``w``'s dtype, the value torch's mean of the 0/1 flags gives.
+    """
+    if _numpy_view(w):
+        rows = np.count_nonzero(w.numpy().any(-1))
+        return torch.tensor(rows / w.shape[0], dtype=w.dtype)
+    return (w != 0).any(-1).to(w.dtype).mean()
 
 
 class _Mask:
@@ -258,6 +277,7 @@ class _Mask:
         self.mask, self.dtype = mask, dtype
         self._weights: Tensor | None = None
         self._bool: Tensor | None = None
+        self._count: Tensor | None = None
 
     @property
     def weights(self) -> Tensor:
@@ -271,31 +291,72 @@ class _Mask:
             self._bool = self.mask if self.mask.dtype == torch.bool else self.mask != 0
         return self._bool
 
+    def take_weights(self) -> Tensor:
+        """The weights, no longer held here (the caller may overwrite them; asked again, they are made anew)."""
+        w, self._weights = self.weights, None
+        return w
+
     def count(self) -> Tensor:
-        """Response tokens as an int64 tensor, exact: each row's count (at most T, exact in any float), summed as int64."""
-        return self.weights.sum(-1).to(torch.int64).sum()
+        """Response tokens as an int64 tensor, exact, made once.
+
+        A sum of 0/1 values whose partial sums are all exact integers of the dtype never rounds, in any
+        order: the whole sum in the weights' dtype when the tensor is that small (one pass, no
+        copy), else each row's count (at most T) summed as int64.
+        """
+        if self._count is None:
+            w = self.weights
+            if w.numel() <= 2 / torch.finfo(w.dtype).eps:  # every integer up to 2**24 (float32) is exact
+                self._count = w.sum().to(torch.int64)
+            else:
+                self._count = w.sum(-1).to(torch.int64).sum()
+        return self._count
 
     def apply(self, x: Tensor) -> Tensor:
         """``x`` where the mask is set, exactly 0 elsewhere whatever ``x`` holds there (``where``)."""
         return torch.where(self.bool, x, 0.0)
 
 
-def _masked_sum(lp: Tensor, m: _Mask | None, *, fast: bool = False, seq_ndim: int = 2) -> Tensor:
+def _masked_sum(lp: Tensor, m: _Mask | None, *, fast: bool = False, spare: bool = False, seq_ndim: int = 2) -> Tensor:
     """Token or sequence log-probs -> (B, n) sequence log-probs.
 
     ``fast=False``: padding adds exactly 0, even if it holds NaN or an infinity (``where``).
     ``fast=True``: ``(lp * weights).sum(-1)``, the same sums when the padding holds finite
     numbers (``x * 0 = 0``) and a non-finite sum otherwise: the caller tests the result once
-    (O(B n)) and recomputes with ``fast=False`` only then. ``seq_ndim``: dimensions of
-    sequence log-probs.
+    (O(B n)) and recomputes with ``fast=False`` only then. ``spare``: nothing else in the graph
+    uses ``m.weights`` (:class:`_WeightedSum`). ``seq_ndim``: dimensions of sequence log-probs.
     """
     if lp.ndim == seq_ndim:
         return lp
     if m is None:
         return lp.sum(-1)
     if fast:
-        return (lp * m.weights).sum(-1)
+        return _WeightedSum.apply(lp, m, spare)
     return m.apply(lp).sum(-1)
+
+
+class _WeightedSum(torch.autograd.Function):
+    """``(lp * weights).sum(-1)`` whose gradient ``g[..., None] * weights`` is written into the weights when they are spare.
+
+    The same numbers as autograd gives for ``(lp * weights).sum(-1)`` (the same products and
+    sums), one full-size tensor fewer per call: the 0/1 weights are made from the mask for this
+    call only, so when nothing else in the graph holds them (``spare``) the backward scales them
+    in place and hands them over as the gradient. A second backward through the same graph
+    (``retain_graph``) remakes them from the mask; a differentiable one (``create_graph``)
+    multiplies out of place.
+    """
+
+    @staticmethod
+    def forward(ctx, lp: Tensor, m: "_Mask", spare: bool) -> Tensor:
+        ctx.m, ctx.spare = m, spare
+        return (lp * m.weights).sum(-1)
+
+    @staticmethod
+    def backward(ctx, grad: Tensor):
+        g = grad.unsqueeze(-1)
+        if ctx.spare and not torch.is_grad_enabled():
+            ctx.spare = False
+            return ctx.m.take_weights().mul_(g), None, None
+        return ctx.m.weights * g, None, None
 
 
 def _per_token_scale(seq: Tensor, lp: Tensor, m: _Mask | None, token_reduction: str) -> Tensor:
@@ -534,7 +595,7 @@ def best_of_k_sft_loss(logprobs, scores, reference_logprobs, reference_scores, *
     credit = best_of_k_sft_credit(s, e, k=k, smoothing=smoothing)
     ref_opt = LossOptions(mask=reference_mask, token_reduction=opt.token_reduction, reduction=opt.reduction,
                           check_tokens=opt.check_tokens)
-    ref_loss, _ = _nll("reference_logprobs", ref, "reference_mask", ref_opt)
+    ref_loss, _, _ = _nll("reference_logprobs", ref, "reference_mask", ref_opt)
     out = _policy_gradient_loss(logprobs, credit, opt)
     if not opt.return_info:
         return out + ref_loss
@@ -564,25 +625,21 @@ def nll_loss(logprobs, **common):
     """
     opt = LossOptions.from_keywords("nll_loss", common, refused=_NOT_FOR_NLL)
     lp = check_logprobs("logprobs", logprobs, seq_ndim=1)
-    loss, per = _nll("logprobs", lp, "mask", opt)
+    loss, per, m = _nll("logprobs", lp, "mask", opt)
     if not opt.return_info:
         return loss
-    if lp.ndim == 1:
-        tokens = torch.tensor(float(lp.shape[0]))
-    else:
-        m = opt.mask
-        tokens = (m != 0).sum().to(torch.float64) if m is not None else torch.tensor(float(lp.numel()))
+    tokens = m.count().to(torch.float64) if m is not None else torch.tensor(float(lp.numel()))
     return loss, {"nll": per.detach().mean(), "tokens": tokens}
 
 
-def _nll(name: str, lp: Tensor, mask_name: str, opt: LossOptions) -> tuple[Tensor, Tensor]:
-    """Reduced loss and per-row ``-log pi(y_b)`` (B,) of given responses."""
+def _nll(name: str, lp: Tensor, mask_name: str, opt: LossOptions) -> tuple[Tensor, Tensor, "_Mask | None"]:
+    """Reduced loss, per-row ``-log pi(y_b)`` (B,) of given responses, and the checked mask (None without one)."""
     mask = check_mask(mask_name, opt.mask, name, lp, seq_ndim=1)
     if opt.check_tokens:
         check_token_values(name, lp, mask_name, opt.mask, mask)
     m = _Mask(mask, lp.dtype) if mask is not None else None
-    seq = _masked_sum(lp, m, fast=True, seq_ndim=1)
-    if m is not None and _needs_a_look(seq.detach(), seq.detach(), seq.numel()):  # the one read
+    seq = _masked_sum(lp, m, fast=True, spare=True, seq_ndim=1)
+    if m is not None and _needs_a_look(seq.detach(), seq.detach()):  # the one read
         check_empty_rows(mask_name, mask, None)
         if not bool(torch.isfinite(seq).all()):
             seq = _masked_sum(lp, m, seq_ndim=1)  # NaN or an infinity in the padding: recomputed with where
@@ -592,4 +649,4 @@ def _nll(name: str, lp: Tensor, mask_name: str, opt: LossOptions) -> tuple[Tenso
                              f"got {name} of shape {tuple(lp.shape)}")
         count = m.count() if m is not None else torch.tensor(lp.numel(), device=lp.device)
         seq = seq * (seq.numel() / count.to(seq.dtype))
-    return _reduce(-seq, opt.reduction), -seq
+    return _reduce(-seq, opt.reduction), -seq, m
