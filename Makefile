@@ -12,7 +12,7 @@ $(VENV)/.installed: pyproject.toml
 	python3 -m venv $(VENV)
 	$(PIP) install -q --upgrade pip
 	$(PIP) install -q torch==2.13.0
-	$(PIP) install -q -e '.[dev]'
+	$(PIP) install -q -e '.[dev,peft]'  # peft: the adapter tests run in CI too
 	touch $@
 
 demo: setup

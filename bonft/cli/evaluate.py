@@ -12,13 +12,15 @@ DESCRIPTION = (
     "Sample --n responses for each held-out prompt of the checkpoint's task (the split its run used), "
     "score them with the evaluation verifier and the training verifier (and a built-in task's proxy), and print pass@k "
     "under the evaluation verifier and verifier-selected best-of-k with bootstrap CIs, plus length and diversity. "
-    "CHECKPOINT is a checkpoint directory, a run directory (its newest checkpoint) or a plain transformers "
+    "CHECKPOINT is a checkpoint directory, a run directory (its newest checkpoint), a plain transformers "
     "model directory (config.json, weights and tokenizer saved with save_pretrained; its task, verifier and "
-    "eval_verifier then come from --recipe and --set)."
+    "eval_verifier then come from --recipe and --set) or a LoRA adapter directory (adapter_config.json; its base "
+    "model is loaded from the directory the adapter records; needs pip install 'bonft[peft]')."
 )
 
 def add_common(p: argparse.ArgumentParser) -> None:
-    p.add_argument("checkpoint", help="checkpoint directory (CKPT/model, CKPT/tokenizer), run directory or transformers model directory")
+    p.add_argument("checkpoint", help="checkpoint directory (CKPT/model, CKPT/tokenizer), run directory, transformers model "
+                                      "directory or LoRA adapter directory")
     p.add_argument("--recipe", default=None, metavar="RECIPE.toml",
                    help="read the task, verifier and eval_verifier keys from this recipe (default: the checkpoint's config.toml; "
                         "its model keys are ignored: the model is CHECKPOINT's)")
@@ -43,6 +45,7 @@ def load_for_eval(args: argparse.Namespace, *, n: int, ks: list[int], temperatur
     from bonft.trainer.config import (  # loads torch: only when a command runs
         FIELDS,
         MODEL_KEYS,
+        TRAINING_MODEL_KEYS,
         apply_overrides,
         from_dict,
         read_recipe,
@@ -50,19 +53,20 @@ def load_for_eval(args: argparse.Namespace, *, n: int, ks: list[int], temperatur
     from bonft.trainer.run import build_run  # loads torch: only when a command runs
 
     path = Path(args.checkpoint)
-    if (path / "config.json").is_file() and not (path / "model").is_dir():  # a plain transformers model directory
+    plain = (path / "config.json").is_file() or (path / "adapter_config.json").is_file()
+    if plain and not (path / "model").is_dir():  # a plain transformers model directory, or a LoRA adapter directory
         ckpt, base = path, {}
     else:
         ckpt = resolve_checkpoint(args.checkpoint)
         base = read_recipe(ckpt / "config.toml") if (ckpt / "config.toml").is_file() else {}
     if args.recipe is not None:
         base = read_recipe(args.recipe)
-    base = {key: v for key, v in base.items() if key not in MODEL_KEYS}  # the model is the checkpoint's
+    base = {key: v for key, v in base.items() if key not in (*MODEL_KEYS, *TRAINING_MODEL_KEYS)}  # the model is the checkpoint's
     values = apply_overrides(base, list(args.overrides))
     values.update(start_from=str(ckpt), eval_samples=n, eval_ks=ks, eval_temperature=temperature,
                   eval_prompts=args.n_prompts, seed=values.get("seed", FIELDS["seed"].default))
     cfg = from_dict(values)
-    return ckpt, cfg, build_run(cfg)
+    return ckpt, cfg, build_run(cfg, training=False)
 
 
 def announce(r, *, n: int, temperatures: list[float]) -> None:

@@ -65,6 +65,14 @@ def encode_responses(tokenizer, prompts: Sequence[str], responses, *, add_eos: b
     return prompt_tokens, prompt_valid, ids.view(B, n, T), mask.view(B, n, T)  # (B*n, T) -> (B, n, T)
 
 
+def recomputes(model) -> bool:
+    """Whether a forward of ``model`` now recomputes activations in backward (gradient checkpointing, Chen et al.
+    2016): transformers then drops the KV cache inside each layer, so the cached prompt pass has nothing to reuse."""
+    if not torch.is_grad_enabled() or not getattr(model, "training", False) or not callable(getattr(model, "modules", None)):
+        return False
+    return any(getattr(m, "gradient_checkpointing", False) is True for m in model.modules())
+
+
 def sequence_logprobs(
     model,
     prompt_tokens: torch.Tensor,
@@ -86,7 +94,8 @@ def sequence_logprobs(
     nothing. With the ``temperature`` (and ``top_p``) used by :func:`sample`
     this reproduces ``Samples.token_logprobs`` to float32 round-off; use the
     sampling temperature for unbiased score-function gradients (Chow et al. 2024).
-    Runs in whatever mode the model is in (the tiny models have no dropout).
+    Runs in whatever mode the model is in (the tiny models have no dropout). A model in training mode that
+    recomputes its activations (:func:`recomputes`) gets the one pass over ``[prompt ; response]`` rows.
     """
     check_model(model)
     check_long("prompt_tokens", prompt_tokens, 2)
@@ -105,7 +114,9 @@ def sequence_logprobs(
     B, n, T = response_tokens.shape
     resp = response_tokens.reshape(B * n, T)  # (B, n, T) -> (B*n, T): row b*n + j is response j of prompt b
     mask = torch.cat([prompt_valid.repeat_interleave(n, 0), response_valid.reshape(B * n, T)], dim=1)  # (B*n, Tp+T)
-    past, first = prompt_pass(model, prompt_tokens, prompt_valid, n)  # first (B*n, V) predicts response token 0
+    past, first = None, None
+    if not recomputes(model):  # with recomputed activations a layer keeps no KV cache: one pass over whole rows
+        past, first = prompt_pass(model, prompt_tokens, prompt_valid, n)  # first (B*n, V) predicts response token 0
     if past is not None:
         # the prompt ran once per prompt; the responses attend to its copied cache
         pos = position_ids(prompt_valid)[:, -1:].repeat_interleave(n, 0) + 1 + torch.arange(T, device=resp.device)
@@ -115,6 +126,8 @@ def sequence_logprobs(
     else:
         ids = torch.cat([prompt_tokens.repeat_interleave(n, 0), resp], dim=1)  # (B*n, Tp+T)
         kwargs = {"logits_to_keep": T + 1} if accepts_kwarg(model, "logits_to_keep") else {}
+        if first is None and recomputes(model):
+            kwargs["use_cache"] = False  # no cache is kept while recomputing (transformers would warn and drop it)
         logits = model(input_ids=ids, attention_mask=mask, position_ids=position_ids(mask), **kwargs).logits
         logits = logits[:, -(T + 1):-1, :]  # (B*n, T, V): position Tp-1+t predicts response token t
     logp = log_policy(logits, temperature, top_p)

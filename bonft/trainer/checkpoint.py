@@ -2,7 +2,8 @@
 
 Layout of one checkpoint ``RUN/checkpoints/step-00000120/``::
 
-    model/         save_pretrained (safetensors)
+    model/         save_pretrained (safetensors); of an adapter run, the adapter only
+                   (adapter_config.json naming the base model, adapter_model.safetensors)
     tokenizer/     save_pretrained
     state.pt       optimizer state, RNG states (torch, numpy, python), step, extra: tensors and plain
                    values only, read with ``torch.load(weights_only=True)``
@@ -120,7 +121,9 @@ def _read_manifest(ckpt: Path) -> dict:
 
 
 _VERIFIED: dict[str, tuple] = {}  # checkpoint path -> stat signature of its files when last verified
-NEEDED = ("state.pt", "config.toml", "model/config.json")  # with a model/*.safetensors and a tokenizer/ file
+NEEDED = ("state.pt", "config.toml")  # with a model/config.json (or adapter_config.json), model/*.safetensors, a tokenizer/ file
+MODEL_CONFIGS = ("model/config.json", "model/adapter_config.json")  # a full model's, an adapter's
+ADAPTER_WEIGHTS = "model/adapter_model.safetensors"
 PICKLE_SUFFIXES = (".bin", ".pt", ".pth", ".pkl", ".pickle", ".ckpt")  # weights formats that unpickle when loaded
 
 
@@ -139,6 +142,9 @@ def _check_complete(ckpt: Path, man: dict) -> None:
             raise CheckpointError(f"checkpoint {ckpt} is damaged: refusing {name}, a pickle file (loading it can run "
                                   f"code); bonft checkpoints hold weights as safetensors only")
     missing = [n for n in NEEDED if n not in listed]
+    config = MODEL_CONFIGS[1] if ADAPTER_WEIGHTS in held | listed else MODEL_CONFIGS[0]  # an adapter run's, a full model's
+    if config not in listed:
+        missing.append(config)
     if not any(n.startswith("model/") and n.endswith(".safetensors") for n in listed):
         missing.append("model/*.safetensors (the weights)")
     if not any(n.startswith("tokenizer/") for n in listed):
@@ -165,7 +171,7 @@ def verify_checkpoint(ckpt: str | Path, *, only: tuple[str, ...] | None = None) 
     """Check a checkpoint against its manifest; return its path or raise :class:`CheckpointError`.
 
     The manifest must list every file the checkpoint needs (``state.pt``, ``config.toml``, the
-    model's config and safetensors weights, the tokenizer) and every file it holds, and no
+    model's config (or an adapter's) and safetensors weights, the tokenizer) and every file it holds, and no
     weights may be a pickle; every file it lists must exist with the listed size and SHA-256
     (``only``: hash just these names). The message names the directory, the file and what is
     wrong. A result is cached until a file's size or mtime changes.

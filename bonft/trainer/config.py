@@ -60,6 +60,7 @@ from bonft._core.checks import (
 from bonft.objectives.validation import RATIO_LEVELS
 from bonft.tasks import TASKS, get_task
 from bonft.tasks.base import family_counts
+from bonft.trainer.adapters import peft_missing
 from bonft.trainer.objectives import OBJECTIVES  # the registry: objective name -> credit function + options
 from bonft.verifiers.roles import USER_DATA_TASKS, check_spec
 
@@ -76,6 +77,11 @@ DEPRECATED_KEYS = {
 DEPRECATED_OBJECTIVES = {"loo_reinforce": "reinforce"}
 # keys that build the tiny model: with start_from the model comes from there and they cannot take effect
 MODEL_KEYS = ("arch", "layers", "width", "heads", "max_positions")
+# keys that shape a new adapter (adapter_rank >= 1); with adapter_from they come from the adapter directory
+ADAPTER_SHAPE_KEYS = ("adapter_rank", "adapter_scale", "adapter_dropout", "adapter_modules")
+# keys of how the policy trains: an evaluation of a checkpoint (its model as saved) drops them
+TRAINING_MODEL_KEYS = (*ADAPTER_SHAPE_KEYS, "adapter_from", "recompute_activations")
+MAX_ADAPTER_RANK = 65_536
 
 
 class DeprecatedKeyWarning(FutureWarning):
@@ -116,6 +122,29 @@ class TrainConfig:
                     group="model")
     heads: int = _f(4, "Attention heads of the tiny model.", group="model")
     max_positions: int = _f(96, "Context length of the tiny model (prompt + response tokens).", group="model")
+    adapter_rank: int = _f(0,
+                           "Train a LoRA adapter (Hu et al. 2021) of this rank on the start_from model, whose own "
+                           "weights stay frozen; checkpoints then hold the adapter only. 0 = train every weight. "
+                           "Needs start_from and peft (pip install 'bonft[peft]'); see 'Adapters and memory' in docs/training.md.",
+                           group="model")
+    adapter_scale: float = _f(1.0,
+                              "Factor on the adapter's update (alpha / rank in Hu et al. 2021): a layer computes "
+                              "W x + adapter_scale * B A x. Needs adapter_rank.", group="model")
+    adapter_dropout: float = _f(0.0,
+                                "Dropout on the adapter's input in training forwards, in [0, 1). > 0 makes the training "
+                                "log-probs differ from the sampler's (which runs without dropout). Needs adapter_rank.",
+                                group="model")
+    adapter_modules: list = _f([],
+                               "Last names of the layers to adapt, e.g. ['q_proj', 'v_proj']; [] = peft's default for "
+                               "the model type. Needs adapter_rank.", group="model", items=str)
+    adapter_from: str = _f("",
+                           "Continue training this adapter directory (peft's save_pretrained, or a checkpoint of an "
+                           "adapter run) on start_from, which must be the base model it records; its rank, scale, "
+                           "dropout and layers come from it.", group="model")
+    recompute_activations: bool = _f(False,
+                                     "Gradient checkpointing (Chen et al. 2016): training forwards keep only each "
+                                     "layer's input and recompute the rest in backward, trading about one more "
+                                     "forward for activation memory; same results to float round-off.", group="model")
     # --- task ---
     task: str = _f("ledger", "Built-in task name (see docs/tasks.md), or 'jsonl' to read prompts_file.", group="task")
     task_params: dict = _f({},
@@ -179,7 +208,10 @@ class TrainConfig:
                          " with small, noisy gradients proportional to the gradient, as SGD.", group="rl")
     momentum: float = _f(0.0, "SGD momentum in [0, 1) (optimizer = 'sgd' only).", group="rl")
     weight_decay: float = _f(0.0, "Weight decay (both stages; decoupled for AdamW, L2 for SGD).", group="rl")
-    grad_accum: int = _f(1, "Micro-batches per optimizer step; prompts_per_step must divide evenly.", group="rl")
+    grad_accum: int = _f(1,
+                         "Micro-batches per optimizer step (whole prompts: a prompt's n samples stay together); "
+                         "prompts_per_step must divide evenly. A step's forward and backward hold one micro-batch's "
+                         "activations at a time.", group="rl")
     clip_grad_norm: float = _f(1.0, "Clip the gradient's global norm to this value; 0 = no clipping.", group="rl")
     updates_per_batch: int = _f(1,
                                 "Optimizer updates per sampled batch, 1..64: the batch is sampled, scored and credited "
@@ -196,7 +228,8 @@ class TrainConfig:
                            "Needs updates_per_batch > 1 and ratio_level 'sequence' or 'token'.", group="rl")
     anchor_weight: float = _f(0.0,
                               "Weight of the KL penalty to the anchor, the policy at the start of the RL stage "
-                              "(saved in RUN/rl_start); 0 = none.", group="rl")
+                              "(saved in RUN/rl_start); with an adapter, the base model with the adapter switched off "
+                              "(nothing saved, no second model). 0 = none.", group="rl")
     placebo: bool = _f(False,
                        "Placebo control: shuffle the outcomes (score and reward together) within each pool "
                        "before the credit, one seeded permutation per pool. Same credit sizes, zero expected "
@@ -301,6 +334,7 @@ def validate(c: TrainConfig) -> None:
             if getattr(c, name) != FIELDS[name].default:
                 raise ValueError(f"{name} must be left unset with start_from (the model comes from {c.start_from!r}), "
                                  f"got {name}={getattr(c, name)!r}")
+    check_adapter(c)
     if c.objective == "reinforce" and c.n < 2:
         raise ValueError(f"n must be >= 2 for a leave-one-out baseline, got n={c.n}")
     for name in ("threads", "prompts_per_step", "grad_accum", "max_new_tokens", "train_prompts", "heldout_prompts", "eval_samples",
@@ -341,6 +375,43 @@ def validate(c: TrainConfig) -> None:
     if c.warm_start_steps == 0 and c.rl_steps == 0 and not c.start_from:
         raise ValueError("nothing to train: warm_start_steps and rl_steps are both 0 (set one, e.g. --set rl_steps=100)")
     check_task_sizes(c)
+
+
+def _is_default(c: TrainConfig, key: str) -> bool:
+    f = FIELDS[key]
+    return getattr(c, key) == (f.default if f.default is not dataclasses.MISSING else f.default_factory())
+
+
+def check_adapter(c: TrainConfig) -> None:
+    """The adapter keys and recompute_activations: each set only where it takes effect."""
+    check_int("adapter_rank", c.adapter_rank, min=0, max=MAX_ADAPTER_RANK)
+    if not math.isfinite(c.adapter_scale) or c.adapter_scale <= 0:
+        raise ValueError(f"adapter_scale must be a finite number > 0, got adapter_scale={c.adapter_scale}")
+    check_fraction("adapter_dropout", c.adapter_dropout, open_high=True)
+    if not isinstance(c.adapter_modules, (list, tuple)) or not all(isinstance(m, str) and m for m in c.adapter_modules):
+        raise TypeError(f"adapter_modules must be a list of layer names (non-empty strings), got {c.adapter_modules!r}")
+    c.adapter_modules = list(c.adapter_modules)
+    if c.adapter_from:
+        for key in ADAPTER_SHAPE_KEYS:
+            if not _is_default(c, key):
+                raise ValueError(f"{key} must be left unset with adapter_from (the adapter's shape comes from "
+                                 f"{c.adapter_from!r}), got {key}={getattr(c, key)!r}")
+    elif not c.adapter_rank:
+        for key in ADAPTER_SHAPE_KEYS[1:]:
+            if not _is_default(c, key):
+                raise ValueError(f"{key} needs adapter_rank >= 1 (it shapes a LoRA adapter, and with adapter_rank = 0 "
+                                 f"every weight trains), got {key}={getattr(c, key)!r}")
+    key = "adapter_from" if c.adapter_from else "adapter_rank"
+    if (c.adapter_rank or c.adapter_from) and not c.start_from:
+        raise ValueError(f"{key} needs start_from (the base model the adapter trains on: a transformers model directory "
+                         f"or a bonft checkpoint), got start_from=''")
+    if c.adapter_rank or c.adapter_from:
+        missing = peft_missing(key)
+        if missing:
+            raise ValueError(missing)
+    if c.recompute_activations and not (c.warm_start_steps or c.rl_steps):
+        raise ValueError("recompute_activations cannot take effect without training steps (warm_start_steps and "
+                         "rl_steps are 0: nothing runs backward); leave it unset for an evaluation")
 
 
 MAX_TINY_PARAMS = 2**30  # weights of a tiny model built from the recipe's layers / width / max_positions
@@ -433,6 +504,8 @@ def convert_value(name: str, text: str, like: Any) -> Any:
             return float(text)
         except ValueError:
             raise ValueError(f"{name} must be a number, got {text!r}") from None
+    if isinstance(like, list) and FIELDS[name].metadata.get("items") is str:
+        return [v.strip().strip("'\"") for v in text.replace("[", "").replace("]", "").split(",") if v.strip()]
     if isinstance(like, list):
         try:
             return [int(v) for v in text.replace("[", "").replace("]", "").split(",") if v.strip()]
@@ -504,6 +577,11 @@ def from_dict(values: dict) -> TrainConfig:
             if name in values:
                 raise ValueError(f"{name} must be left unset with start_from (the model comes from "
                                  f"{values['start_from']!r}), got {name}={values[name]!r}")
+    if not values.get("adapter_rank") and not values.get("adapter_from"):
+        for name in ADAPTER_SHAPE_KEYS[1:]:
+            if name in values:
+                raise ValueError(f"{name} needs adapter_rank >= 1 (it shapes a LoRA adapter, and with adapter_rank = 0 "
+                                 f"every weight trains), got {name}={values[name]!r}")
     return TrainConfig(**values)
 
 
@@ -548,6 +626,8 @@ def to_toml(c: TrainConfig) -> str:
     for name, v in c.to_dict().items():
         if c.start_from and name in MODEL_KEYS:
             continue  # the model comes from start_from
+        if not c.adapter_rank and name in ADAPTER_SHAPE_KEYS[1:]:
+            continue  # no new adapter to shape (setting them is an error then)
         if name not in TABLES:
             lines.append(f"{name} = {_toml_value(v)}")
     for table in TABLES:

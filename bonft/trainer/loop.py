@@ -45,6 +45,7 @@ import torch
 from tqdm.auto import tqdm
 
 from bonft.trainer import steps  # steps.sft_step / steps.rl_step are looked up at each step (tests replace them)
+from bonft.trainer.adapters import AdapterOff, is_adapter_model
 from bonft.trainer.checkpoint import (
     CheckpointError,
     latest_checkpoint,
@@ -70,7 +71,7 @@ from bonft.trainer.evaluation import evaluate_run
 from bonft.trainer.measure import Stopwatch
 from bonft.trainer.memory import keep_freed_memory
 from bonft.trainer.metrics import GRAD_CLIPPED, GRAD_NORM
-from bonft.trainer.models import load_model
+from bonft.trainer.models import load_model, reload_policy
 from bonft.trainer.run import Run, Stream, build_run, lr_at, make_optimizer
 from bonft.trainer.rundir import RunDirBusy, WriteFailed, is_write_error, run_lock, write_failed
 from bonft.trainer.zero_credit import ZeroCreditWatch
@@ -248,7 +249,7 @@ def _restore(run: Run, resume: bool) -> tuple[int, dict | None]:
         state = load_state(ckpt)
         start = state["step"]
         with quiet_transformers():
-            run.model, run.tokenizer = load_model(ckpt, device=run.device)
+            run.model, run.tokenizer = reload_policy(run.model, ckpt, device=run.device)  # an adapter run: its weights only
         set_rng_state(state["rng"])
     if run.is_main:
         with _writing(run, out / "config.toml", "the configuration"):
@@ -266,7 +267,9 @@ def _enter_stage(run: Run, stage: str, state: dict | None) -> None:
     run.optimizer = make_optimizer(run, stage)
     if state is not None and state["extra"].get("stage") == stage:
         run.optimizer.load_state_dict(state["optimizer"])
-    if stage == "rl" and run.cfg.anchor_weight > 0:  # the anchor = the policy at the start of RL, kept on disk
+    if stage == "rl" and run.cfg.anchor_weight > 0 and is_adapter_model(run.module):
+        run.anchor_model = AdapterOff(run.module)  # the base model, the adapter switched off: no second model
+    elif stage == "rl" and run.cfg.anchor_weight > 0:  # the anchor = the policy at the start of RL, kept on disk
         ref_dir = run.out / "rl_start"
         if not (ref_dir / "model").is_dir() and run.is_main:
             with _writing(run, ref_dir, "the anchor model", need=_weight_bytes(run)):

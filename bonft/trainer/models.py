@@ -9,6 +9,10 @@ A bonft model directory has the layout::
     CKPT/model/       model.save_pretrained(...)   (config.json, model.safetensors)
     CKPT/tokenizer/   tokenizer.save_pretrained(...)
 
+A checkpoint of an adapter run (``adapter_rank``, :mod:`bonft.trainer.adapters`) holds the adapter
+only: ``CKPT/model/adapter_config.json`` (naming the base model's directory) and
+``adapter_model.safetensors``; :func:`load_model` loads the base model from there and the adapter on it.
+
 Writing one (:func:`bonft.trainer.checkpoint.save_model`, and the trainer's checkpoints)
 lives in :mod:`bonft.trainer.checkpoint`, the one place weights are written.
 """
@@ -23,6 +27,16 @@ import torch
 from transformers import AutoModelForCausalLM, AutoTokenizer, GPT2Config, GPT2LMHeadModel, LlamaConfig, LlamaForCausalLM
 
 from bonft._core.checks import check_choice, check_int
+from bonft.trainer.adapters import (
+    ADAPTER_CONFIG,
+    adapter_dir,
+    add_adapter,
+    attach_adapter,
+    check_same_base,
+    is_adapter_model,
+    load_adapter_weights,
+    recorded_base,
+)
 from bonft.trainer.checkpoint import PICKLE_SUFFIXES, is_verified_checkpoint, resolve_checkpoint, verify_checkpoint
 
 ARCHS = ("gpt2", "llama")
@@ -144,7 +158,7 @@ def check_context(model, tokenizer, prompts, *, max_new_tokens: int, references=
                              f"{longer}")
 
 
-def _model_dirs(path: Path) -> tuple[Path, Path]:
+def model_dirs(path: Path) -> tuple[Path, Path]:
     """(model dir, tokenizer dir) for a bonft checkpoint or a plain transformers directory."""
     if (path / "model").is_dir():
         tok = path / "tokenizer" if (path / "tokenizer").is_dir() else path / "model"
@@ -152,13 +166,17 @@ def _model_dirs(path: Path) -> tuple[Path, Path]:
     return path, path
 
 
-def load_model(path: str | os.PathLike, *, device: str | torch.device | None = None):
+def load_model(path: str | os.PathLike, *, device: str | torch.device | None = None, trainable: bool = False):
     """``(model, tokenizer)`` from a local directory; never downloads.
 
     ``path`` is a bonft checkpoint (``path/model`` and ``path/tokenizer``
     sub-directories, see :func:`bonft.trainer.checkpoint.save_model`), a training run directory (its
-    newest ``checkpoints/step-*``), or a directory written by
-    ``save_pretrained`` holding both the model and its tokenizer.
+    newest ``checkpoints/step-*``), a directory written by
+    ``save_pretrained`` holding both the model and its tokenizer, or a LoRA adapter directory (peft's
+    ``save_pretrained``, or a checkpoint of an adapter run): its base model is loaded from the directory
+    the adapter records (``base_model_name_or_path``) and the adapter on it (needs peft); the tokenizer
+    is the adapter directory's when it holds one, else the base model's. ``trainable``: the adapter's
+    weights require gradients (a full model's always do).
     ``device``: ``None`` -> :func:`pick_device` ``("auto")``. The model is returned in eval mode.
     """
     if not isinstance(path, (str, os.PathLike)):
@@ -170,19 +188,17 @@ def load_model(path: str | os.PathLike, *, device: str | torch.device | None = N
         path = resolve_checkpoint(path)  # a training run directory: its newest checkpoint
     if is_verified_checkpoint(path):  # a trainer checkpoint: sizes and hashes against its manifest
         verify_checkpoint(path)
-    model_dir, tok_dir = _model_dirs(path)
+    adir = adapter_dir(path)
+    if adir is not None:
+        return _load_with_adapter(path, adir, device, trainable)
+    model_dir, tok_dir = model_dirs(path)
     if not (model_dir / "config.json").is_file():
         raise FileNotFoundError(f"no config.json in {str(model_dir)!r}: path must be a transformers model directory or a bonft checkpoint")
     if not any((tok_dir / f).is_file() for f in _TOKENIZER_FILES):
         where = f"{path / 'tokenizer'}/ or {model_dir}/" if tok_dir == model_dir and model_dir != path else f"{tok_dir}/"
         raise FileNotFoundError(f"no tokenizer for the model in {str(path)!r}: expected tokenizer files "
                                 f"({', '.join(_TOKENIZER_FILES[:2])}) in {where} (save it with tokenizer.save_pretrained)")
-    if isinstance(device, str):
-        device = pick_device(device) if device in ("auto", "cpu", "cuda") else torch.device(device)
-    elif device is None:
-        device = pick_device("auto")
-    elif not isinstance(device, torch.device):
-        raise TypeError(f"device must be None, a str or a torch.device, got {type(device).__name__}")
+    device = _device(device)
     try:
         model = AutoModelForCausalLM.from_pretrained(model_dir, local_files_only=True)
     except pickle.UnpicklingError:  # torch's weights-only loader met objects that could run code
@@ -193,3 +209,127 @@ def load_model(path: str | os.PathLike, *, device: str | torch.device | None = N
     tokenizer = AutoTokenizer.from_pretrained(tok_dir, local_files_only=True)
     model.to(device).eval()
     return model, tokenizer
+
+
+def _device(device) -> torch.device:
+    if isinstance(device, str):
+        return pick_device(device) if device in ("auto", "cpu", "cuda") else torch.device(device)
+    if device is None:
+        return pick_device("auto")
+    if not isinstance(device, torch.device):
+        raise TypeError(f"device must be None, a str or a torch.device, got {type(device).__name__}")
+    return device
+
+
+def _has_tokenizer(d: Path) -> bool:
+    return any((d / f).is_file() for f in _TOKENIZER_FILES)
+
+
+def _load_with_adapter(path: Path, adir: Path, device, trainable: bool):
+    """The base model an adapter records, the adapter on it, and a tokenizer (the adapter's own, else the base's)."""
+    base = recorded_base(adir)
+    where = adir / ADAPTER_CONFIG
+    if not Path(base).is_dir():
+        raise FileNotFoundError(f"adapter {str(path)!r}: its base model {base!r} (base_model_name_or_path in {where}) is "
+                                f"not a directory here; put the base model there or set that field to its directory")
+    if adapter_dir(base) is not None:
+        raise ValueError(f"adapter {str(path)!r}: its base model {base!r} (base_model_name_or_path in {where}) is an "
+                         f"adapter itself; the base must be a full model directory")
+    model, tokenizer = load_model(base, device=device)
+    for tok_dir in (path / "tokenizer", adir):
+        if tok_dir.is_dir() and _has_tokenizer(tok_dir):
+            tokenizer = AutoTokenizer.from_pretrained(tok_dir, local_files_only=True)
+            break
+    model = attach_adapter(model, adir, trainable=trainable, key="adapter")
+    model.to(_device(device)).eval()
+    return model, tokenizer
+
+
+def model_source(path: str | os.PathLike) -> str:
+    """The absolute directory a model is read from: a run directory resolves to its newest checkpoint."""
+    path = Path(path)
+    if path.is_dir() and not (path / "config.json").is_file() and not (path / "model").is_dir() \
+            and (path / "checkpoints").is_dir():
+        path = resolve_checkpoint(path)
+    return str(path.resolve())
+
+
+# ----------------------------------------------------------------------------- the policy the trainer trains
+def policy_model(model, cfg, *, training: bool = True):
+    """The model a run trains: ``model`` (loaded from ``cfg.start_from``, or built) with the recipe's adapter and
+    recompute setting applied.
+
+    ``adapter_rank``: a fresh LoRA adapter, seeded from ``cfg.seed``; ``adapter_from``: that adapter
+    (its recorded base must match ``start_from``, :func:`bonft.trainer.adapters.check_same_base`).
+    ``training=False`` (an evaluation) returns ``model`` as loaded. A ``start_from`` that is an adapter,
+    trained without ``adapter_from``, is an error: its weights would not train.
+    """
+    if not training:
+        return model
+    adapted = is_adapter_model(model)
+    if cfg.adapter_rank or cfg.adapter_from:
+        if adapted:
+            raise ValueError(f"start_from must be the base model with adapter_rank or adapter_from, got the adapter "
+                             f"{cfg.start_from!r}; set adapter_from = {cfg.start_from!r} and start_from = its base "
+                             f"{recorded_base(adapter_dir(cfg.start_from))!r}")
+        if cfg.adapter_from:
+            if adapter_dir(cfg.adapter_from) is None:
+                raise FileNotFoundError(f"adapter_from must be an adapter directory (holding {ADAPTER_CONFIG}) or a "
+                                        f"checkpoint of an adapter run, got {cfg.adapter_from!r}")
+            check_same_base(cfg.adapter_from, cfg.start_from, model.config, model_dir=lambda p: model_dirs(p)[0])
+            model = attach_adapter(model, adapter_dir(cfg.adapter_from), trainable=True, key="adapter_from")
+            model.peft_config["default"].base_model_name_or_path = model_source(cfg.start_from)
+        else:
+            model = add_adapter(model, rank=cfg.adapter_rank, scale=cfg.adapter_scale, dropout=cfg.adapter_dropout,
+                                modules=cfg.adapter_modules, seed=cfg.seed, base_path=model_source(cfg.start_from))
+        model.eval()
+    elif adapted and cfg.warm_start_steps + cfg.rl_steps:
+        raise ValueError(f"start_from {cfg.start_from!r} is a LoRA adapter: to train it further set adapter_from = "
+                         f"{cfg.start_from!r} and start_from = its base {recorded_base(adapter_dir(cfg.start_from))!r}")
+    if cfg.recompute_activations:
+        recompute_activations(model)
+    return model
+
+
+def recompute_activations(model) -> None:
+    """Gradient checkpointing (Chen et al. 2016) on a transformers model (or the base of a peft model)."""
+    base = model.get_base_model() if is_adapter_model(model) else model
+    if not getattr(base, "supports_gradient_checkpointing", False):
+        raise ValueError(f"recompute_activations: the model ({type(base).__name__}) does not support recomputing its "
+                         f"activations (transformers' supports_gradient_checkpointing is False); leave it unset")
+    enable = getattr(base, "activation_checkpointing_enable", None)
+    if enable is not None:  # transformers >= 5.25
+        enable(activation_checkpointing_kwargs={"use_reentrant": False})
+    else:
+        base.gradient_checkpointing_enable(gradient_checkpointing_kwargs={"use_reentrant": False})
+
+
+def is_recomputing(model) -> bool:
+    """Whether any layer of ``model`` recomputes its activations in training forwards."""
+    return any(getattr(m, "gradient_checkpointing", False) for m in model.modules())
+
+
+def reload_policy(model, ckpt: str | os.PathLike, *, device):
+    """``(model, tokenizer)`` holding checkpoint ``ckpt``'s weights, set up as ``model`` (the run's policy) is.
+
+    An adapter run loads the checkpoint's adapter weights into ``model`` itself (the base model is
+    unchanged); a full run loads the checkpoint's model, recomputing its activations when ``model`` did.
+    """
+    ckpt = Path(ckpt)
+    if is_adapter_model(model):
+        adir = adapter_dir(ckpt)
+        if adir is None:
+            raise ValueError(f"checkpoint {ckpt} holds a full model, but this run trains an adapter (adapter_rank or "
+                             f"adapter_from); resume it without the adapter keys, or use another run_dir")
+        if is_verified_checkpoint(ckpt):
+            verify_checkpoint(ckpt)
+        load_adapter_weights(model, adir)
+        tok_dir = ckpt / "tokenizer" if (ckpt / "tokenizer").is_dir() else adir
+        return model, AutoTokenizer.from_pretrained(tok_dir, local_files_only=True)
+    if adapter_dir(ckpt) is not None:
+        raise ValueError(f"checkpoint {ckpt} holds a LoRA adapter, but this run trains every weight; resume it with the "
+                         f"adapter keys it was trained with (see its config.toml)")
+    loaded, tokenizer = load_model(ckpt, device=device)
+    if is_recomputing(model):
+        recompute_activations(loaded)
+    return loaded, tokenizer

@@ -23,7 +23,7 @@ from bonft.tasks import build_tokenizer, get_task
 from bonft.trainer.checkpoint import quiet_transformers
 from bonft.trainer.config import TrainConfig
 from bonft.trainer.distributed import derive_seed, init_from_env, prompt_seed, shard_prompts, unwrap_model
-from bonft.trainer.models import build_tiny_model, check_context, load_model
+from bonft.trainer.models import build_tiny_model, check_context, load_model, policy_model
 from bonft.trainer.objectives import OBJECTIVES
 from bonft.verifiers.roles import Roles, build_roles
 
@@ -120,13 +120,18 @@ class Run:
         return self.rank == 0
 
 
-def build_run(cfg: TrainConfig) -> Run:
-    """Task, data split, verifiers, model and tokenizer for ``cfg`` (no optimizer yet)."""
+def build_run(cfg: TrainConfig, *, training: bool = True) -> Run:
+    """Task, data split, verifiers, model and tokenizer for ``cfg`` (no optimizer yet).
+
+    ``training``: the model is set up to train as the recipe says (an adapter, recomputed activations:
+    :func:`bonft.trainer.models.policy_model`); False (an evaluation) keeps it as loaded.
+    """
     ctx = init_from_env(device=cfg.device)  # a process group under torchrun, else one process
     rank, world, device = ctx.rank, ctx.world_size, ctx.device
     if cfg.start_from:
         with quiet_transformers():
             model, tokenizer = load_model(cfg.start_from, device=device)
+        model = policy_model(model, cfg, training=training)
     else:
         tokenizer = build_tokenizer()
         model = build_tiny_model(
@@ -134,6 +139,7 @@ def build_run(cfg: TrainConfig) -> Run:
             max_positions=cfg.max_positions, seed=cfg.seed, pad_token_id=tokenizer.pad_token_id,
             eos_token_id=tokenizer.eos_token_id, bos_token_id=tokenizer.bos_token_id,
         ).to(device)
+        model = policy_model(model, cfg, training=training)
     extra = {"path": cfg.prompts_file} if cfg.task == "jsonl" else {}
     if cfg.task == "user" and cfg.task_params.get("chat_template") is True and "tokenizer" not in cfg.task_params:
         extra["tokenizer"] = tokenizer  # the chat template of the model that samples
@@ -163,9 +169,10 @@ def build_run(cfg: TrainConfig) -> Run:
 def make_optimizer(run: Run, stage: str) -> torch.optim.Optimizer:
     """The warm start: AdamW; the RL stage: ``cfg.optimizer`` (AdamW with ``adam_eps``, or SGD with ``momentum``).
 
-    The learning rate is set by the loop before every step (:func:`lr_at`).
+    The learning rate is set by the loop before every step (:func:`lr_at`). The weights that train:
+    every weight, or an adapter's (the base model's are frozen).
     """
-    cfg, params = run.cfg, run.module.parameters()
+    cfg, params = run.cfg, [p for p in run.module.parameters() if p.requires_grad]
     if stage == "rl" and cfg.optimizer == "sgd":
         return torch.optim.SGD(params, lr=cfg.lr, momentum=cfg.momentum, weight_decay=cfg.weight_decay)
     eps = cfg.adam_eps if stage == "rl" else 1e-8
