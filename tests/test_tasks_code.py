@@ -8,6 +8,7 @@ programs.
 """
 import json
 import math
+import os
 import re
 from pathlib import Path
 
@@ -297,8 +298,12 @@ def test_the_sandbox_pool_gives_the_same_verdicts(held):
             task.judge().runner.close()
     assert got[True] == got[False]
     assert sum(got[True][0]) == sum(e.answer == e.reference for e in ex) + 20  # answers, matching notebooks
-    with pytest.raises(TypeError, match="pool must be a bool"):
+    with pytest.raises(ValueError, match="pool must be True, False or 'auto', got 'yes'"):
         WorkshopTask(pool="yes")
+    with pytest.raises(TypeError, match="pool must be True, False or 'auto', got int 1"):
+        WorkshopTask(pool=1)
+    # 'auto' (the default) is the pool exactly when running as root
+    assert WorkshopTask().uses_pool is (os.geteuid() == 0) and WorkshopTask(pool=False).uses_pool is False
 
 
 def test_a_runner_without_run_code_is_refused():

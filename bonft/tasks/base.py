@@ -150,6 +150,14 @@ class Task:
 
     name = "task"
     description = ""
+    #: what ``verifier(examples)`` checks and what ``proxy_verifier(examples)`` scores, in a few words
+    #: (the demo's tables name the training and the evaluation verifier with them)
+    verifier_label = "exact answer"
+    proxy_label = "the task's proxy"
+    #: the fewest response tokens (EOS included) that hold every right answer; the demo refuses fewer
+    min_new_tokens = 1
+    #: ``bonft demo --task NAME``'s settings for this task where they differ from DemoConfig's defaults
+    demo_settings: dict = {}
 
     def __init__(self, **params: Any):
         self.params: dict[str, Any] = dict(params)

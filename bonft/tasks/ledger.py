@@ -43,6 +43,7 @@ class LedgerTask(Task):
 
     name = "ledger"
     description = "closing stock of a shop ledger; a 'hard' family multiplies it by a factor"
+    proxy_label = "parity and closeness"
 
     def __init__(self, *, n_moves: int = 2, max_qty: int = 9, hard_share: float = 0.25, max_factor: int = 9):
         super().__init__(

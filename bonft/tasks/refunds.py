@@ -34,6 +34,7 @@ class RefundsTask(Task):
 
     name = "refunds"
     description = "closing stock of a ledger with customer returns; the warm-start notebook mostly skips returns"
+    proxy_label = "last digit, smaller counts first"
 
     def __init__(self, *, n_moves: int = 2, max_qty: int = 9, return_share: float = 0.4, rule_share: float = 0.05):
         super().__init__(

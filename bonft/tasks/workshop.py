@@ -46,6 +46,7 @@ from __future__ import annotations
 
 import ast
 import hashlib
+import os
 import random
 import re
 import secrets
@@ -55,7 +56,7 @@ from typing import Any, Sequence
 
 import numpy as np
 
-from bonft._core.checks import check_bool, check_fraction, check_int, check_real
+from bonft._core.checks import check_fraction, check_int, check_real
 from bonft.tasks.base import Example, Task, _check_examples
 from bonft.verifiers.base import Verdicts
 from bonft.verifiers.scoring import check_batch
@@ -87,6 +88,14 @@ _FLOOR, _PATCH = "x//{k}", "x//{k}+1"  # the notebook's habits on a boxes prompt
 def _truth(family: str, k: int, x: int):
     """The helper's value at x, computed in this process (for the visible examples)."""
     return {"pieces": x // k, "offcut": x % k, "cost": x * k, "label": str(x).zfill(k), "boxes": -(-x // k)}[family]
+
+
+def _check_pool(pool: Any) -> bool | str:
+    if isinstance(pool, str) and pool != "auto":
+        raise ValueError(f"pool must be True, False or 'auto', got {pool!r}")
+    if not isinstance(pool, (bool, str)):
+        raise TypeError(f"pool must be True, False or 'auto', got {type(pool).__name__} {pool!r}")
+    return pool
 
 
 def hidden_seed(prompt: str) -> int:
@@ -278,14 +287,24 @@ class WorkshopTask(Task):
     wall_time:   seconds each program may run in the sandbox (default 5).
     workers:     programs run in parallel (0: the runner's default).
     pool:        run programs in CodeRunner's sandbox pool (pre-started workers that fork each
-                 program's processes; the same verdicts, many times the throughput) (default False).
+                 program's processes; the same verdicts, many times the throughput): True, False or
+                 ``"auto"`` (default: on when this process runs as root, where every OS layer of the
+                 sandbox applies; :attr:`uses_pool` says which).
     """
 
     name = "workshop"
     description = "write a one-line Python helper judged by unit tests with hidden inputs; the notebook mostly floors boxes"
+    verifier_label = "oracle: CodeRunner, all unit tests incl. hidden inputs"
+    proxy_label = "share of the visible asserts passed, shorter programs first"
+    min_new_tokens = 16  # the longest right program, str(x).zfill(9), is 15 characters, then EOS
+    # the workshop demo's budget, fixed before any of its runs was compared (docs/study_results.md):
+    # responses of up to 20 tokens cost about 4x the refunds demo's 4, so RL steps are 32 prompts x 16
+    # samples for 30 steps (pass@8-aware credit at k = 8 of 16), and best-of-k under the proxy runs too
+    demo_settings = {"max_new_tokens": 20, "rl_steps": 30, "prompts_per_step": 32, "n": 16, "k": 8,
+                     "objectives": ("reinforce", "pass_at_k", "best_of_k", "placebo")}
 
     def __init__(self, *, boxes_share: float = 0.4, rule_share: float = 0.05, patch_share: float = 0.05,
-                 max_k: int = 9, wall_time: float = 5.0, workers: int = 0, pool: bool = False):
+                 max_k: int = 9, wall_time: float = 5.0, workers: int = 0, pool: bool | str = "auto"):
         rule_share = check_fraction("rule_share", rule_share)
         patch_share = check_fraction("patch_share", patch_share)
         if rule_share + patch_share > 1.0:
@@ -296,7 +315,7 @@ class WorkshopTask(Task):
             max_k=check_int("max_k", max_k, min=2, max=9),
             wall_time=check_real("wall_time", wall_time, min=0.1),
             workers=check_int("workers", workers, min=0, max=64),
-            pool=check_bool("pool", pool),
+            pool=_check_pool(pool),
         )
         self._judge: ProgramJudge | None = None
 
@@ -332,11 +351,17 @@ class WorkshopTask(Task):
         program = read_program(response)
         return None if program is None else ast.unparse(ast.parse(program, mode="eval"))
 
+    @property
+    def uses_pool(self) -> bool:
+        """Whether programs run in the sandbox pool: ``pool``, with ``"auto"`` read as "running as root"."""
+        pool = self.params["pool"]
+        return os.geteuid() == 0 if pool == "auto" else pool
+
     def judge(self) -> ProgramJudge:
         """The task's sandbox judge, shared by its oracle and proxy (one run per distinct program)."""
         if self._judge is None:
             self._judge = ProgramJudge(wall_time=self.params["wall_time"], workers=self.params["workers"],
-                                       pool=self.params["pool"])
+                                       pool=self.uses_pool)
         return self._judge
 
     def verifier(self, examples: Sequence[Example]) -> ProgramTests:
