@@ -1,16 +1,20 @@
-"""The study: 5 fixed seeds x (warm start, leave-one-out REINFORCE, pass@k, best-of-k with the proxy
-verifier, k annealing, the placebo), each seed from its own warm start.
+"""The study of docs/study_results.md, the same as ``bonft demo --study --output OUT_DIR [OPTIONS]``.
 
-Writes runs/study/study.md: means over seeds with 95% t-intervals, paired per-seed differences from
-the warm start and from REINFORCE, per-seed values, and each seed's tables (bootstrap intervals over
-prompts, gradient signal-to-noise, the planner's best temperature per k). Slow (about an hour on
-2 CPU cores); the same as `bonft demo --study --output runs/study`. Results: docs/study_results.md.
+Every objective (leave-one-out REINFORCE; pass@k with unbiased, plug-in and positive-only credit;
+best-of-k ranked by the proxy verifier; k annealing; plain SFT and BoN-SFT at k = 4, 8, 16) at its own
+best admissible learning rate from a grid fixed in advance, chosen on a validation split where the
+objective's placebo stays within noise of the warm start; then compared on held-out prompts over main
+seeds 0-4 and, apart, replication seeds 5-7. Writes OUT_DIR/study.md (every table docs/study_results.md
+quotes), study.json and frontier.png, with the machine, the commit and the wall time. Slow: hours on
+2 CPU cores (docs/study_results.md gives the estimate); a rerun reuses finished stages.
 
-    python recipes/study.py [OUT_DIR]
+    python recipes/study.py [OUT_DIR] [OPTIONS of bonft demo --study, e.g. --grid-only]
 """
 import sys
 
-from bonft.trainer.demo import STUDY_SEEDS, DemoConfig, run_study
+from bonft.cli import main
 
 if __name__ == "__main__":
-    run_study(DemoConfig(run_dir=sys.argv[1] if len(sys.argv) > 1 else "runs/study"), seeds=STUDY_SEEDS)
+    args = sys.argv[1:]
+    out = args.pop(0) if args and not args[0].startswith("-") else "runs/study"
+    sys.exit(main(["demo", "--study", "--output", out, *args]))

@@ -18,15 +18,15 @@ best sampling temperature per k. Writes ``summary.json``, ``comparison.png`` and
 ``comparison.md`` under the output directory; each stage is a normal trainer
 run directory, so it can be inspected with ``bonft eval`` / ``bonft sample``.
 
-:func:`run_study` repeats it over 5 seeds with best-of-k under the proxy and
-k-annealing too, and writes ``study.md`` (intervals over seeds).
+:func:`run_study` (:mod:`.study`) compares every objective at its own best admissible learning
+rate, chosen on a validation split with a placebo at every grid point, on main and replication
+seeds fixed in advance, and BoN-SFT against plain SFT; it writes ``study.md``, ``study.json`` and
+``frontier.png``.
 
-Parts: :mod:`.pipeline` (the stages, their evaluation and tables, the study) and :mod:`.stats`
-(intervals, paired differences, per-prompt curves). This module only re-exports them.
+Parts: :mod:`.pipeline` (the stages, their evaluation and tables), :mod:`.study` (the study) and
+:mod:`.stats` (intervals, paired differences, per-prompt curves). This module only re-exports them.
 """
 from bonft.trainer.demo.pipeline import (
-    STUDY_OBJECTIVES,
-    STUDY_SEEDS,
     DemoConfig,
     collect_stage_pools,
     comparison_table,
@@ -35,14 +35,22 @@ from bonft.trainer.demo.pipeline import (
     gradient_table,
     objective_config,
     run_demo,
-    run_study,
     stage_config,
     temperature_table,
     warm_config,
 )
+from bonft.trainer.demo.study import (
+    LR_GRID,
+    REPLICATION_SEEDS,
+    STUDY_OBJECTIVES,
+    STUDY_SEEDS,
+    StudyConfig,
+    run_study,
+)
 
 __all__ = [
-    "DemoConfig", "run_demo", "run_study", "STUDY_OBJECTIVES", "STUDY_SEEDS", "stage_config", "warm_config",
+    "DemoConfig", "run_demo", "run_study", "StudyConfig", "STUDY_OBJECTIVES", "STUDY_SEEDS", "REPLICATION_SEEDS", "LR_GRID",
+    "stage_config", "warm_config",
     "objective_config", "collect_stage_pools", "demo_report", "comparison_table", "gradient_summary", "gradient_table",
     "temperature_table",
 ]
