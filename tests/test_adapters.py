@@ -214,6 +214,8 @@ def test_adapter_keys_that_cannot_take_effect_are_errors(setup):
         from_dict({**base, "adapter_rank": 4, "adapter_from": "somewhere"})
     with pytest.raises(TypeError, match=r"^adapter_modules must be a list of layer names"):
         from_dict({**base, "adapter_rank": 4, "adapter_modules": "c_attn"})
+    with pytest.raises(ValueError, match=r"^adapter_rank cannot take effect without training steps"):
+        from_dict({**base, "rl_steps": 0, "adapter_rank": 4})
     cfg = from_dict({**base, "adapter_rank": 2})
     assert cfg.adapter_modules == []
 
@@ -230,6 +232,12 @@ def test_adapter_keys_without_peft_say_how_to_install_it(setup, monkeypatch, cap
     assert err.strip() == ("bonft train: error: adapter_rank needs the optional dependency peft, which is not "
                            "installed: pip install 'bonft[peft]'")
     assert not (tmp / "nopeft").exists()
+    # an adapter directory to evaluate, peft missing: the same advice, one line
+    (tmp / "adapter").mkdir()
+    (tmp / "adapter" / "adapter_config.json").write_text(json.dumps({"peft_type": "LORA", "base_model_name_or_path": "base"}))
+    assert main(["eval", str(tmp / "adapter"), "--recipe", str(tmp / "r.toml"), "--n", "2", "--ks", "1"]) != 0
+    assert capsys.readouterr().err.strip() == ("bonft eval: error: LoRA adapters need the optional dependency peft, "
+                                               "which is not installed: pip install 'bonft[peft]'")
 
 
 def test_bad_adapters_stop_before_any_step_with_one_line(setup, capsys):
@@ -301,3 +309,23 @@ def test_eval_and_sample_accept_an_adapter_directory_and_an_adapter_checkpoint(s
     assert main(["sample", str(ckpt / "model"), "--recipe", str(tmp / "r.toml"), "--n", "2", "-o", str(tmp / "s.jsonl")]) == 0
     rows = [json.loads(x) for x in (tmp / "s.jsonl").read_text().splitlines()]
     assert len(rows) == 8 and all(r["reward"] == float(any(c.isdigit() for c in r["response"])) for r in rows)
+
+
+def test_adapter_from_continues_a_trained_adapter_on_its_base(setup):
+    pytest.importorskip("peft")
+    from bonft.trainer.run import build_run
+
+    first = cfg_of(setup, "first", adapter_rank=4, rl_steps=2)
+    train(first, progress=False)
+    ckpt = newest(first.run_dir)
+    saved = load_file(str(ckpt / "model" / "adapter_model.safetensors"))
+    run = build_run(cfg_of(setup, "next", adapter_from=str(ckpt)))
+    params = {n: p for n, p in run.module.named_parameters() if p.requires_grad}
+    assert len(params) == len(saved) == 2 * LAYERS  # the adapter's factors train, nothing else
+    for key, tensor in saved.items():  # it starts from the saved factors, exactly
+        assert torch.equal(params[key.replace(".weight", ".default.weight")], tensor)
+    # rl_steps = 0 evaluates the adapter as it is: the same pass@k as the first run's last evaluation
+    cfg = cfg_of(setup, "look", adapter_from=str(ckpt), rl_steps=0)
+    evs = train(cfg, progress=False)["evaluations"]
+    last = json.loads((Path(first.run_dir) / "summary.json").read_text())["evaluations"][-1]
+    assert [e["step"] for e in evs] == [0] and evs[0]["pass_at_k"]["mean"] == last["pass_at_k"]["mean"]

@@ -38,6 +38,10 @@ _QUIET = (  # peft's notes on our own set-up, which say nothing the user can act
 )
 
 
+class PeftMissing(ImportError, ValueError):
+    """An adapter was asked for but peft is not installed (an ImportError, and a ValueError: bad input, one line)."""
+
+
 def peft_missing(key: str) -> str | None:
     """None when ``peft`` imports, else the one-line error for ``key`` (which needs it)."""
     try:
@@ -48,11 +52,11 @@ def peft_missing(key: str) -> str | None:
 
 
 def _peft():
-    """The ``peft`` module, or an ImportError saying how to install it."""
+    """The ``peft`` module, or :class:`PeftMissing` saying how to install it."""
     try:
         import peft  # optional dependency: imported only where an adapter is asked for
     except ImportError:
-        raise ImportError(f"LoRA adapters need the optional dependency peft, which is not installed: {PEFT_HINT}") from None
+        raise PeftMissing(f"LoRA adapters need the optional dependency peft, which is not installed: {PEFT_HINT}") from None
     return peft
 
 

@@ -409,6 +409,10 @@ def check_adapter(c: TrainConfig) -> None:
         missing = peft_missing(key)
         if missing:
             raise ValueError(missing)
+    if c.adapter_rank and not (c.warm_start_steps or c.rl_steps):
+        raise ValueError(f"adapter_rank cannot take effect without training steps (warm_start_steps and rl_steps are 0, "
+                         f"and a new adapter starts as the base model itself), got adapter_rank={c.adapter_rank}; to "
+                         f"evaluate a trained adapter use adapter_from or bonft eval ADAPTER_DIR")
     if c.recompute_activations and not (c.warm_start_steps or c.rl_steps):
         raise ValueError("recompute_activations cannot take effect without training steps (warm_start_steps and "
                          "rl_steps are 0: nothing runs backward); leave it unset for an evaluation")
