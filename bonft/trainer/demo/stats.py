@@ -87,22 +87,25 @@ def _columns(ks: Sequence[int], has_proxy: bool) -> list[tuple[str, str, int]]:
     return cols
 
 
-def _head(title: str, cols) -> list[str]:
-    """A markdown table's title line, blank line, header and rule for a policy column plus ``cols``."""
-    return [title, "", "| policy | " + " | ".join(c[0] for c in cols) + " |", "|---" * (len(cols) + 1) + "|"]
+def _head(title: str, cols, caption: str = "") -> list[str]:
+    """A markdown table's title line (and ``caption`` under it), blank line, header and rule for a policy column plus ``cols``."""
+    return [title, *([caption] if caption else []), "", "| policy | " + " | ".join(c[0] for c in cols) + " |",
+            "|---" * (len(cols) + 1) + "|"]
 
 
 def seed_table(curves: Mapping[str, Mapping[str, np.ndarray]], ks: Sequence[int], *,
                baselines: Sequence[str] = ("warm_start", "reinforce"), n_boot: int = 2000, seed: int = 0,
-               confidence: float = 0.95) -> str:
+               confidence: float = 0.95, caption: str = "") -> str:
     """One seed: each policy's mean [bootstrap CI over prompts], then its paired difference from each baseline.
 
     curves: policy -> :func:`per_prompt_curves`. A ``*`` marks a difference whose interval excludes 0.
+    caption: a line under every table's title (e.g. which verifier trains and which evaluates).
     """
     names = list(curves)
     cols = _columns(ks, all("proxy" in c for c in curves.values()))
     pct = round(100 * confidence)
-    lines = _head(f"Mean over {len(next(iter(curves.values()))['pass'])} held-out prompts [{pct}% bootstrap CI over prompts]", cols)
+    lines = _head(f"Mean over {len(next(iter(curves.values()))['pass'])} held-out prompts [{pct}% bootstrap CI over prompts]", cols,
+                  caption)
     for name in names:
         cells = [_fmt(*bootstrap_mean(curves[name][kind][:, j], n_boot=n_boot, seed=seed, confidence=confidence))
                  for _, kind, j in cols]
@@ -110,7 +113,8 @@ def seed_table(curves: Mapping[str, Mapping[str, np.ndarray]], ks: Sequence[int]
     for base in baselines:
         if base not in curves:
             continue
-        lines += [""] + _head(f"Paired difference from {LABELS.get(base, base)} (same prompts; * = interval excludes 0)", cols)
+        lines += [""] + _head(f"Paired difference from {LABELS.get(base, base)} (same prompts; * = interval excludes 0)", cols,
+                              caption)
         for name in names:
             if name == base:
                 continue
@@ -121,31 +125,35 @@ def seed_table(curves: Mapping[str, Mapping[str, np.ndarray]], ks: Sequence[int]
 
 
 def study_table(per_seed: Mapping[int, Mapping[str, Mapping[str, np.ndarray]]], ks: Sequence[int], *,
-                baselines: Sequence[str] = ("warm_start", "reinforce"), confidence: float = 0.95) -> str:
+                baselines: Sequence[str] = ("warm_start", "reinforce"), confidence: float = 0.95, caption: str = "") -> str:
     """Over seeds: per-seed means, their mean [t-interval], and paired per-seed differences [t-interval].
 
     per_seed: seed -> policy -> :func:`per_prompt_curves` (the same policies for every seed).
+    caption: a line under every table's title (e.g. which verifier trains and which evaluates).
     """
     seeds = list(per_seed)
     names = list(per_seed[seeds[0]])
     cols = _columns(ks, all("proxy" in c for s in seeds for c in per_seed[s].values()))
     mean = {(s, n, kind, j): float(per_seed[s][n][kind][:, j].mean()) for s in seeds for n in names for _, kind, j in cols}
     pct = round(100 * confidence)
-    lines = _head(f"Mean over {len(seeds)} seeds (seeds {', '.join(map(str, seeds))}) [{pct}% Student-t interval over seeds]", cols)
+    lines = _head(f"Mean over {len(seeds)} seeds (seeds {', '.join(map(str, seeds))}) [{pct}% Student-t interval over seeds]", cols,
+                  caption)
     for n in names:
         cells = [_fmt(*t_interval([mean[s, n, kind, j] for s in seeds], confidence=confidence)) for _, kind, j in cols]
         lines.append(f"| {LABELS.get(n, n)} | " + " | ".join(cells) + " |")
     for base in baselines:
         if base not in names:
             continue
-        lines += [""] + _head(f"Paired difference from {LABELS.get(base, base)}, per seed then over seeds (* = interval excludes 0)", cols)
+        lines += [""] + _head(f"Paired difference from {LABELS.get(base, base)}, per seed then over seeds (* = interval excludes 0)", cols,
+                              caption)
         for n in names:
             if n == base:
                 continue
             cells = [_fmt(*t_interval([mean[s, n, kind, j] - mean[s, base, kind, j] for s in seeds], confidence=confidence),
                           signed=True) for _, kind, j in cols]
             lines.append(f"| {LABELS.get(n, n)} | " + " | ".join(cells) + " |")
-    lines += ["", "Per seed (pass@1 / pass@" + str(ks[-1]) + (f" / proxy best-of-{ks[-1]}" if len(cols) > len(ks) else "") + ")", "",
+    lines += ["", "Per seed (pass@1 / pass@" + str(ks[-1]) + (f" / proxy best-of-{ks[-1]}" if len(cols) > len(ks) else "") + ")",
+              *([caption] if caption else []), "",
               "| policy | " + " | ".join(f"seed {s}" for s in seeds) + " |", "|---" * (len(seeds) + 1) + "|"]
     for n in names:
         cells = []
