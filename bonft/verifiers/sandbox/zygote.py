@@ -87,13 +87,23 @@ def _mkdtemp(prefix, where):
             continue
 
 
-def _boot_code(name):
+def _boot_module(name):
+    """The ``__main__`` module of a bootstrap (``wire.py`` + ``name``) with everything it defines, made
+    once here: a forked child only calls its ``_main``, as ``python -c`` would at the text's end, instead
+    of building its functions and classes again (each new object is a page copied from the worker)."""
     with open(os.path.join(_HERE, "wire.py"), encoding="utf-8") as f:
         text = f.read()
     with open(os.path.join(_HERE, name), encoding="utf-8") as f:
         text += "\n" + f.read()
+    guard = '\nif __name__ == "__main__":\n'
+    if guard not in text:
+        raise RuntimeError("%s has no main guard" % name)
+    text = text[:text.rindex(guard)]  # the call to _main: made by the forked child
     prelude = "import sys\nif sys.path and sys.path[0] in ('', '.'):\n    del sys.path[0]\n"
-    return compile(prelude + text, "<string>", "exec")
+    mod = types.ModuleType("__main__")
+    mod.__dict__["__builtins__"] = builtins
+    exec(compile(prelude + text, "<string>", "exec"), mod.__dict__)
+    return mod
 
 
 class _Child:
@@ -155,7 +165,7 @@ class Worker:
         self.libc = ctypes.CDLL(None, use_errno=True)
         self.mountns, self.pidns = bool(cfg["mountns"]), bool(cfg["pidns"])
         self.limits = [(int(r), (int(s), int(h))) for r, s, h in cfg["limits"]]
-        self.cand_code, self.judge_code = _boot_code("candidate.py"), _boot_code("judge.py")
+        self.cand_boot, self.judge_boot = _boot_module("candidate.py"), _boot_module("judge.py")
         self.tmp = cfg["tmp"]
         self.pid = os.getpid()  # the worker's: its directories carry it, so the pool can sweep them if it dies
         self.own_pidns = os.open("/proc/self/ns/pid", os.O_RDONLY | os.O_CLOEXEC) if self.pidns else -1
@@ -187,18 +197,16 @@ class Worker:
             low = fd + 1
         os.closerange(low, 1 << 16)
 
-    def _run_boot(self, code, fds, workdir):
+    def _run_boot(self, main, fds, workdir):
         os.environ.clear()
         os.environ.update(oslayer.env(workdir))
         if "tempfile" in sys.modules:
             sys.modules["tempfile"].tempdir = None  # read from TMPDIR again, as a fresh interpreter would
-        main = types.ModuleType("__main__")
-        main.__dict__["__builtins__"] = builtins
         sys.modules["__main__"] = main
         sys.argv = ["-c"] + [str(fd) for fd in fds]
         status = 0
         try:
-            exec(code, main.__dict__)
+            main._main(*fds)
         except SystemExit as e:
             c = e.code
             if c is None or isinstance(c, int):
@@ -227,7 +235,7 @@ class Worker:
             os.chdir(judgedir)
             oslayer.apply_layers(limits=self._limits(), uid=self.juid, libc=self.libc, netns=False, ipcns=False,
                                  dirs=[], bind=None, opts=self.opts, filt=None)
-            self._run_boot(self.judge_code, keep, judgedir)
+            self._run_boot(self.judge_boot, keep, judgedir)
         finally:
             os._exit(127)
 
@@ -291,7 +299,7 @@ class Worker:
             os.close(report_w)
             if bare:
                 os._exit(0)
-            self._run_boot(self.cand_code, keep, workdir)
+            self._run_boot(self.cand_boot, keep, workdir)
         finally:
             os._exit(127)
 
