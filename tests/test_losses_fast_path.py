@@ -289,3 +289,18 @@ def test_a_second_backward_and_a_differentiable_one_give_the_same_gradient(mask_
     nll.backward(retain_graph=True)
     nll.backward()  # accumulates: twice the gradient of the sum, -1 on every token
     torch.testing.assert_close(y.grad, -2.0 * (mask != 0).double(), rtol=0, atol=0)
+
+
+@given(st.integers(1, 5), st.integers(1, 70), st.integers(0, 2**16), st.booleans())
+def test_the_credit_running_sums_are_numpys_cumsum_number_for_number(B, n, seed, signed_zeros):
+    # reference: np.cumsum, whose left-to-right float64 additions the best-of-k credit used before
+    from bonft.objectives.credit import _running_sum
+
+    rng = np.random.default_rng(seed)
+    x = rng.normal(size=(B, n)) * 10.0 ** rng.integers(-300, 300, size=(B, n))  # rounding in every sum
+    if signed_zeros:
+        x[rng.random((B, n)) < 0.5] = -0.0
+    for a in (x, x[:, ::2], x.ravel()):  # rows, a strided view, one flat run
+        got, want = _running_sum(a), np.cumsum(a, axis=-1)
+        assert got.dtype == np.float64 and got.shape == want.shape
+        assert np.array_equal(got, want)  # equal numbers (a leading -0.0 may come back as +0.0: the same value)
