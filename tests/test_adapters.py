@@ -267,6 +267,8 @@ def test_bad_adapters_stop_before_any_step_with_one_line(setup, capsys):
     err = fails("--set", "adapter_rank=2", "--set", "adapter_modules=q_proj,v_proj")
     assert ("adapter_modules names no layer of the start_from model (['q_proj', 'v_proj']); its linear layers are "
             "['c_attn', 'c_fc', 'c_proj', 'lm_head']: name some of those") in err
+    err = fails("--set", "adapter_rank=2", "--set", "adapter_modules=c_attn,v_proj")
+    assert "adapter_modules names ['v_proj'], which the start_from model does not have (its linear layers are" in err
     err = fails("--set", "adapter_rank=40")
     assert "adapter_rank must be <= 32 (the smaller side of the narrowest adapted layer" in err
     err = fails("--set", f"start_from={adapter}")

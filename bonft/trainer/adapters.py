@@ -143,6 +143,9 @@ def add_adapter(model, *, rank: int, scale: float, dropout: float, modules: list
         if len(missing) == len(targets):
             raise ValueError(f"adapter_modules names no layer of the start_from model ({targets}); its linear layers are "
                              f"{found}: name some of those")
+        if missing:  # those names would adapt nothing
+            raise ValueError(f"adapter_modules names {missing}, which the start_from model does not have (its linear "
+                             f"layers are {found}); remove them")
     config = peft.LoraConfig(r=rank, lora_alpha=scale * rank, lora_dropout=dropout, target_modules=targets,
                              task_type="CAUSAL_LM", bias="none", init_lora_weights=True,
                              fan_in_fan_out=_targets_conv1d(model, targets or default.get(model_type)))
