@@ -136,7 +136,7 @@ def arms(sc: StudyConfig) -> list[Arm]:
 def _seed_list(name: str, seeds, *, allow_empty: bool = False) -> tuple:
     if isinstance(seeds, (str, bytes)) or not hasattr(seeds, "__iter__"):
         raise TypeError(f"{name} must be a list of seeds, got {type(seeds).__name__} {seeds!r}")
-    seeds = tuple(check_int(name, s, min=0) for s in seeds)
+    seeds = tuple(check_int(name, s, min=0, max=2**63 - 1) for s in seeds)  # seeds are kept as int64
     if not seeds and not allow_empty:
         raise ValueError(f"{name} must name at least one seed, got an empty list")
     if len(set(seeds)) != len(seeds):
