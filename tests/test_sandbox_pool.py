@@ -180,7 +180,7 @@ def test_no_earlier_job_or_its_own_tests_are_in_a_candidates_memory():
 
 
 def _child_of(pid: int, timeout: float = 10.0) -> int:
-    """The first child of ``pid`` (the worker's supervisor of the job in flight)."""
+    """The first child of ``pid`` (a worker's first child is its supervisor, forked before any job)."""
     end = time.monotonic() + timeout
     while time.monotonic() < end:
         try:
@@ -192,6 +192,83 @@ def _child_of(pid: int, timeout: float = 10.0) -> int:
             return int(kids[0])
         time.sleep(0.01)
     raise AssertionError(f"no supervisor appeared under worker {pid}")
+
+
+def _children(pid: int) -> list[int]:
+    try:
+        with open(f"/proc/{pid}/task/{pid}/children") as f:
+            return [int(x) for x in f.read().split()]
+    except OSError:
+        return []
+
+
+def _alive(pid: int) -> bool:
+    """Whether ``pid`` is a live process (not gone, not a zombie)."""
+    try:
+        with open(f"/proc/{pid}/status") as f:
+            return not next(line for line in f if line.startswith("State:")).split()[1].startswith("Z")
+    except OSError:
+        return False
+
+
+def _uid_of(pid: int) -> int:
+    with open(f"/proc/{pid}/status") as f:
+        return int(next(line for line in f if line.startswith("Uid:")).split()[1])
+
+
+@needs_ns
+def test_a_candidate_is_three_processes_and_the_supervisor_forks_none():
+    """While a candidate sleeps, the worker's children are its supervisor (root, the same one before and
+    after the job), the tests' process (its own uid) and the PID namespace's init (root), whose only
+    child is the candidate's process (its own uid); the supervisor, which reads every job, has no
+    child at any time (fork(2): a child would hold a copy of what it read)."""
+    sleeper = ("import time\ntime.sleep(1.5)\ndef add(a, b):\n    return a + b", TESTS)
+    with CodeRunner({}, wall_time=8.0, memory_mb=256, workers=1, pool=True) as runner:
+        pool = runner.sandbox_pool()
+        runner.run_code([CORRECT])
+        worker = pool.worker_pids()[0]
+        sup = _child_of(worker)
+        assert _children(worker) == [sup] and _children(sup) == []
+        seen = []
+
+        def look() -> None:
+            end = time.monotonic() + 6
+            while time.monotonic() < end and len(_children(worker)) < 3:
+                time.sleep(0.01)
+            time.sleep(0.3)
+            kids = _children(worker)
+            seen.append((kids, {k: _children(k) for k in kids}, {k: _uid_of(k) for k in kids}))
+            seen.append({k: _uid_of(k) for v in seen[0][1].values() for k in v})
+
+        t = threading.Thread(target=look)
+        t.start()
+        res = runner.run_code([sleeper])[0]
+        t.join()
+        assert res.status == "pass", (res.reason, res.stderr[-300:])
+        (kids, grandkids, uids), cand_uids = seen
+        assert len(kids) == 3 and kids[0] == sup, kids
+        judge, init = kids[1], kids[2]
+        cuid = min(pool.uids())
+        assert uids == {sup: 0, judge: cuid + 1, init: 0}, (uids, cuid)
+        assert grandkids[sup] == [] and grandkids[judge] == [] and len(grandkids[init]) == 1
+        assert cand_uids == {grandkids[init][0]: cuid}
+        assert _children(worker) == [sup] and _children(sup) == [] and pool.restarts == 0
+
+
+def test_a_supervisor_that_dies_between_batches_is_replaced_before_the_next():
+    """SIGKILL to an idle worker's supervisor: the next batch runs every candidate on a fresh worker
+    (none is lost or given a runner verdict) and the pool counts one restart."""
+    with CodeRunner({}, wall_time=4.0, memory_mb=256, workers=1, pool=True) as runner:
+        pool = runner.sandbox_pool()
+        old = pool.worker_pids()[0]
+        os.kill(_child_of(old), signal.SIGKILL)
+        end = time.monotonic() + 10
+        while _alive(old) and time.monotonic() < end:  # the worker exits after saying so
+            time.sleep(0.02)
+        assert not _alive(old)
+        results = runner.run_code([CORRECT, ("def add(a, b):\n    return 0", TESTS), CORRECT])
+        assert [(r.status, r.reason is None) for r in results] == [("pass", True), ("fail", False), ("pass", True)]
+        assert pool.restarts == 1 and pool.worker_pids() != [old]
 
 
 @pytest.mark.parametrize("victim", ["worker", "supervisor"])
