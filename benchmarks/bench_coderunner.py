@@ -9,16 +9,23 @@ Three kinds of candidate (our own):
   process limit stops it, and one that allocates past ``memory_mb``.
 
 Each runs through ``CodeRunner`` one candidate at a time (two fresh interpreters per candidate,
-``workers`` in parallel), through ``CodeRunner(pool=True)`` (``workers`` pre-started workers that
-fork both processes of each candidate), and, for the floor, through the pool's ``floor``: a fork of
-the same pre-started worker that applies the candidate's isolation (PID, mount, IPC and network
-namespaces, fresh tmpfs, own uid, limits, seccomp filter) in a fresh working directory and exits.
-All in one process on the same machine. Goals: the pool at least 250 trivial candidates/s on 2
-cores, and within 2x the floor (pool time per candidate / floor time per candidate <= 2).
+``workers`` in parallel) and through ``CodeRunner(pool=True)`` (``workers`` pre-started workers; each
+forks three processes per candidate: the tests' process, the PID namespace's init and the
+candidate's process, and a supervisor per worker, which never forks, feeds and reads them). The
+floor is the pool's ``floor``: one fork of the same pre-started worker that applies the candidate's
+isolation (PID, mount, IPC and network namespaces, fresh tmpfs, own uid, limits, seccomp filter) in a
+fresh working directory and exits. All in one process on the same machine. Goals: the pool at least
+250 trivial candidates/s on 2 cores, and within 2x the floor (pool time per candidate / floor time
+per candidate <= 2).
 
-Run: python benchmarks/bench_coderunner.py [--quick] [--workers W]  (W: default twice the cores)
-Prints candidates/s, CPU ms per candidate (this process and its children), the ratios, and the
-machine's load (``os.getloadavg``) before and after: timings on a shared machine say little.
+Run: python benchmarks/bench_coderunner.py [--quick] [--workers W] [--runs R]  (W: default twice the cores)
+Prints, per run: candidates/s; CPU ms per candidate (user + system time of this process, every
+process it or the pool's workers reaped, and the workers and their supervisors themselves: what 2
+idle cores would have to spend, so candidates per CPU-second is the throughput 1 idle core would
+give); page faults per candidate of the pool's processes (minor faults: mostly copy-on-write copies
+after a fork, and nearly independent of the machine's load); the ratios to the floor; and the load
+average (``os.getloadavg``) before and after. On a shared machine the wall-clock rates say little:
+compare the CPU columns.
 """
 from __future__ import annotations
 
@@ -46,39 +53,52 @@ def _cpu() -> float:
     return s.ru_utime + s.ru_stime + c.ru_utime + c.ru_stime
 
 
-def _tree_cpu(pids: list[int]) -> float:
-    """CPU seconds of live processes and the children they reaped (/proc/PID/stat fields 14-17, proc(5))."""
-    tot = 0
+def _children(pid: int) -> list[int]:
+    try:
+        with open(f"/proc/{pid}/task/{pid}/children") as f:
+            return [int(x) for x in f.read().split()]
+    except OSError:
+        return []
+
+
+def _stat(pid: int) -> list[str]:
+    try:
+        with open(f"/proc/{pid}/stat") as f:
+            return f.read().rsplit(")", 1)[1].split()
+    except OSError:
+        return []
+
+
+def _tree(pids: list[int]) -> tuple[float, int]:
+    """(CPU seconds, minor page faults) of the workers with the children they reaped, and of their live
+    children (the supervisors): proc(5) /proc/PID/stat fields 10-11 (minflt, cminflt) and 14-17."""
+    cpu = faults = 0
     for pid in pids:
-        try:
-            with open(f"/proc/{pid}/stat") as f:
-                fields = f.read().rsplit(")", 1)[1].split()
-        except OSError:
-            continue
-        tot += sum(int(x) for x in fields[11:15])
-    return tot / os.sysconf("SC_CLK_TCK")
+        f = _stat(pid)
+        if f:
+            cpu += sum(int(x) for x in f[11:15])
+            faults += int(f[7]) + int(f[8])
+        for kid in _children(pid):
+            f = _stat(kid)
+            if f:
+                cpu += int(f[11]) + int(f[12])
+                faults += int(f[7])
+    return cpu / os.sysconf("SC_CLK_TCK"), faults
 
 
-def measure(fn, n: int, pids=lambda: []) -> tuple[float, float, list]:
-    """(candidates/s, CPU ms per candidate of this process, its reaped children and ``pids()``, results)."""
-    before = _tree_cpu(pids())
+def measure(fn, n: int, pids=lambda: []) -> tuple[float, float, float, list]:
+    """(candidates/s, CPU ms per candidate, page faults per candidate of ``pids()``'s trees, results)."""
+    cpu0, faults0 = _tree(pids())
     c0, t0 = _cpu(), time.perf_counter()
     out = fn(n)
     dt = time.perf_counter() - t0
-    cpu = _cpu() - c0 + _tree_cpu(pids()) - before
-    return n / dt, 1000 * cpu / n, out
+    cpu1, faults1 = _tree(pids())
+    return n / dt, 1000 * (_cpu() - c0 + cpu1 - cpu0) / n, (faults1 - faults0) / n, out
 
 
-def main() -> None:
-    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("--quick", action="store_true", help="fewer candidates (a smoke run)")
-    ap.add_argument("--workers", type=int, default=2 * (os.cpu_count() or 1),
-                    help="workers of both runners (default: twice the cores, the pool's default up to 8)")
-    args = ap.parse_args()
-    W = args.workers
+def run_once(args, W: int) -> dict:
     n_single, n_pool, n_hostile = (16, 60, 6) if args.quick else (64, 600, 12)
     load0 = os.getloadavg()
-    print(f"cores {os.cpu_count()}, workers {W}, load before {load0[0]:.2f} {load0[1]:.2f} {load0[2]:.2f}")
     opts = dict(wall_time=2.0, memory_mb=256, max_processes=8, workers=W)
     single = CodeRunner({}, **opts)
     single.run_code([TRIVIAL] * W)  # the interpreter probe
@@ -103,27 +123,55 @@ def main() -> None:
                 assert not any(r.passed for r in res), {(r.status, r.reason) for r in res}
             return res
 
-        s_rate, s_cpu, _ = measure(lambda n, rs=rs: batch(n, rs), n_s)
-        p_rate, p_cpu, res = measure(lambda n, rp=rp: batch(n, rp), n_p, rp.sandbox_pool().worker_pids)
-        rows.append((kind, s_rate, s_cpu, p_rate, p_cpu))
+        s_rate, s_cpu, _, _ = measure(lambda n, rs=rs: batch(n, rs), n_s)
+        p_rate, p_cpu, p_flt, res = measure(lambda n, rp=rp: batch(n, rp), n_p, rp.sandbox_pool().worker_pids)
+        rows.append((kind, s_rate, s_cpu, p_rate, p_cpu, p_flt))
         if kind == "hostile":
             print("  hostile verdicts (pool):", sorted({(r.status, r.reason) for r in res}))
-    f_rate, f_cpu, _ = measure(pool.floor, n_pool, pool.worker_pids)
+    f_rate, f_cpu, f_flt, _ = measure(pool.floor, n_pool, pool.worker_pids)
     load1 = os.getloadavg()
-
-    print(f"\n{'candidates':<10} {'one at a time /s':>17} {'cpu ms':>7} {'pool /s':>9} {'cpu ms':>7} "
-          f"{'pool / one':>11}")
-    for kind, s_rate, s_cpu, p_rate, p_cpu in rows:
-        print(f"{kind:<10} {s_rate:>17.1f} {s_cpu:>7.1f} {p_rate:>9.1f} {p_cpu:>7.1f} {p_rate / s_rate:>10.1f}x")
-    print(f"{'floor':<10} {'':>17} {'':>7} {f_rate:>9.1f} {f_cpu:>7.1f}   (bare isolated fork, doing nothing)")
-    trivial = rows[0]
-    ratio = f_rate / trivial[3]
-    print(f"\npool trivial vs floor: {ratio:.2f}x the floor's time per candidate "
-          f"(goal <= 2x: {'met' if ratio <= 2 else 'not met'}); "
-          f"{trivial[3]:.0f} trivial/s (goal >= 250/s on 2 cores: {'met' if trivial[3] >= 250 else 'not met'})")
-    print(f"layers: {', '.join(pool.layers)}; load after {load1[0]:.2f} {load1[1]:.2f} {load1[2]:.2f}")
+    layers = pool.layers
     for r in (pooled, pooled_h):
         r.close()
+
+    print(f"\nload before {load0[0]:.2f} {load0[1]:.2f} {load0[2]:.2f}, after {load1[0]:.2f} {load1[1]:.2f} {load1[2]:.2f}")
+    print(f"{'candidates':<10} {'one at a time /s':>17} {'cpu ms':>7} {'pool /s':>9} {'cpu ms':>7} {'/cpu-s':>7} "
+          f"{'faults':>7} {'pool / one':>11}")
+    for kind, s_rate, s_cpu, p_rate, p_cpu, p_flt in rows:
+        print(f"{kind:<10} {s_rate:>17.1f} {s_cpu:>7.1f} {p_rate:>9.1f} {p_cpu:>7.2f} {1000 / p_cpu:>7.0f} "
+              f"{p_flt:>7.0f} {p_rate / s_rate:>10.1f}x")
+    print(f"{'floor':<10} {'':>17} {'':>7} {f_rate:>9.1f} {f_cpu:>7.2f} {1000 / f_cpu:>7.0f} {f_flt:>7.0f}"
+          f"   (one isolated fork, doing nothing)")
+    trivial = rows[0]
+    ratio, cpu_ratio = f_rate / trivial[3], trivial[4] / f_cpu
+    print(f"\npool trivial vs floor: {ratio:.2f}x the floor's time per candidate, {cpu_ratio:.2f}x its CPU per "
+          f"candidate (goal <= 2x: {'met' if ratio <= 2 else 'not met'}); {trivial[3]:.0f} trivial/s (goal >= "
+          f"250/s on 2 cores: {'met' if trivial[3] >= 250 else 'not met'}; {2000 / trivial[4]:.0f}/s on 2 idle cores "
+          f"by its CPU)")
+    print(f"layers: {', '.join(layers)}")
+    return {"load": load0[0], "rows": rows, "floor": (f_rate, f_cpu, f_flt), "ratio": ratio, "cpu_ratio": cpu_ratio}
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--quick", action="store_true", help="fewer candidates (a smoke run)")
+    ap.add_argument("--workers", type=int, default=2 * (os.cpu_count() or 1),
+                    help="workers of both runners (default: twice the cores, the pool's default up to 8)")
+    ap.add_argument("--runs", type=int, default=1, help="repeat the whole measurement (default 1)")
+    args = ap.parse_args()
+    if args.workers < 1 or args.runs < 1:
+        raise SystemExit(f"--workers and --runs must be >= 1, got {args.workers} and {args.runs}")
+    print(f"cores {os.cpu_count()}, workers {args.workers}")
+    runs = []
+    for i in range(args.runs):
+        print(f"\n== run {i + 1} of {args.runs}")
+        runs.append(run_once(args, args.workers))
+    if args.runs > 1:
+        print("\nsummary (trivial): load before, pool /s, pool CPU ms, floor /s, floor CPU ms, time ratio, CPU ratio")
+        for r in runs:
+            t = r["rows"][0]
+            print(f"  {r['load']:5.2f} {t[3]:7.1f} {t[4]:6.2f} {r['floor'][0]:7.1f} {r['floor'][1]:6.2f} "
+                  f"{r['ratio']:5.2f}x {r['cpu_ratio']:5.2f}x")
 
 
 if __name__ == "__main__":
