@@ -50,7 +50,7 @@ def save_base(path, arch="gpt2", width=WIDTH):
 
 
 @pytest.fixture
-def setup(tmp_path, monkeypatch):
+def user_base(tmp_path, monkeypatch):
     save_base(tmp_path / "base")
     rows = [{"question": f"jars {a}+{b}"} for a in range(1, 6) for b in range(1, 5)]
     datasets.Dataset.from_list(rows).save_to_disk(str(tmp_path / "jars"))
@@ -64,8 +64,8 @@ def setup(tmp_path, monkeypatch):
     return tmp_path, base
 
 
-def cfg_of(setup, name, **kw):
-    tmp, base = setup
+def cfg_of(user_base, name, **kw):
+    tmp, base = user_base
     return from_dict({**base, **kw, "run_dir": str(tmp / name)})
 
 
@@ -79,9 +79,9 @@ def train_lines(run_dir):
             for r in lines if r["kind"] == "train"]
 
 
-def test_an_adapter_trains_its_factors_only_and_checkpoints_only_them(setup):
+def test_an_adapter_trains_its_factors_only_and_checkpoints_only_them(user_base):
     pytest.importorskip("peft")
-    cfg = cfg_of(setup, "a", adapter_rank=4, adapter_scale=2.0)
+    cfg = cfg_of(user_base, "a", adapter_rank=4, adapter_scale=2.0)
     train(cfg, progress=False)
     ckpt = newest(cfg.run_dir)
     assert sorted(p.name for p in (ckpt / "model").iterdir() if p.suffix != ".md") == [
@@ -91,10 +91,10 @@ def test_an_adapter_trains_its_factors_only_and_checkpoints_only_them(setup):
     assert sum(t.numel() for t in saved.values()) == LAYERS * 4 * (WIDTH + 3 * WIDTH) == 1024
     adapter_cfg = json.loads((ckpt / "model" / "adapter_config.json").read_text())
     assert adapter_cfg["r"] == 4 and adapter_cfg["lora_alpha"] == 8.0  # scale 2 = alpha / r
-    assert adapter_cfg["base_model_name_or_path"] == str((setup[0] / "base").resolve())
+    assert adapter_cfg["base_model_name_or_path"] == str((user_base[0] / "base").resolve())
     assert any(float(t.abs().max()) > 0 for k, t in saved.items() if "lora_B" in k)  # the factors moved
     model, _ = load_model(ckpt)
-    base, _ = load_model(setup[0] / "base")
+    base, _ = load_model(user_base[0] / "base")
     inner = dict(model.get_base_model().named_parameters())
     for name, p in base.named_parameters():  # the base weights are frozen: bit for bit the base directory's
         key = name.replace("c_attn.weight", "c_attn.base_layer.weight").replace("c_attn.bias", "c_attn.base_layer.bias")
@@ -104,12 +104,12 @@ def test_an_adapter_trains_its_factors_only_and_checkpoints_only_them(setup):
     assert len(state["optimizer"]["state"]) == len(saved) == 2 * LAYERS
 
 
-def test_resume_of_an_adapter_run_is_bit_identical(setup, monkeypatch):
+def test_resume_of_an_adapter_run_is_bit_identical(user_base, monkeypatch):
     pytest.importorskip("peft")
     kw = dict(adapter_rank=4, save_every=1, keep_checkpoints=10, anchor_weight=0.1)
-    whole = cfg_of(setup, "whole", **kw)
+    whole = cfg_of(user_base, "whole", **kw)
     train(whole, progress=False)
-    cut = cfg_of(setup, "cut", **kw)
+    cut = cfg_of(user_base, "cut", **kw)
     real = S.rl_step
 
     def stop_at_3(run, step, clock):
@@ -132,7 +132,7 @@ def test_resume_of_an_adapter_run_is_bit_identical(setup, monkeypatch):
     assert not (Path(whole.run_dir) / "rl_start").exists()  # no copy of the model for the anchor
 
 
-def test_the_anchor_is_the_base_model_with_the_adapter_off_and_no_second_model(setup):
+def test_the_anchor_is_the_base_model_with_the_adapter_off_and_no_second_model(user_base):
     pytest.importorskip("peft")
     from bonft.trainer.adapters import AdapterOff
     from bonft.trainer.run import build_run
@@ -140,11 +140,11 @@ def test_the_anchor_is_the_base_model_with_the_adapter_off_and_no_second_model(s
     tok = build_tokenizer()
     rows = encode_responses(tok, ["jars 1+2", "jars 3+4"], [["3", "34"], ["7", "x"]])
     with torch.no_grad():
-        base, _ = load_model(setup[0] / "base")
+        base, _ = load_model(user_base[0] / "base")
         want = sequence_logprobs(base, *rows)  # transformers' forward of the untouched base directory
     del base
     gc.collect()
-    run = build_run(cfg_of(setup, "anchor", adapter_rank=4, anchor_weight=0.1))
+    run = build_run(cfg_of(user_base, "anchor", adapter_rank=4, anchor_weight=0.1))
     with torch.no_grad():
         assert torch.equal(sequence_logprobs(run.module, *rows), want)  # B = 0 at the start: the base model (Hu et al.)
         for name, p in run.module.named_parameters():
@@ -158,7 +158,7 @@ def test_the_anchor_is_the_base_model_with_the_adapter_off_and_no_second_model(s
     assert {id(p) for p in anchor.parameters()} == {id(p) for p in run.module.parameters()}
     gc.collect()
     mine = [o for o in gc.get_objects() if issubclass(type(o), PreTrainedModel) and hasattr(o, "lm_head")
-            and Path(o.name_or_path).resolve() == (setup[0] / "base").resolve()]
+            and Path(o.name_or_path).resolve() == (user_base[0] / "base").resolve()]
     assert len(mine) == 1  # one model of the base directory in memory: the policy's, which the anchor shares
 
 
@@ -181,17 +181,17 @@ def test_recomputed_activations_give_the_plain_gradient_and_run():
         torch.testing.assert_close(a, b, rtol=1e-5, atol=1e-6)  # float32 round-off
 
 
-def test_recompute_activations_in_a_run_equals_the_plain_run(setup):
+def test_recompute_activations_in_a_run_equals_the_plain_run(user_base):
     # SGD: an update proportional to the gradient (AdamW's sign-like first steps would magnify round-off
     # in weights whose gradient is near 0)
     kw = dict(rl_steps=2, optimizer="sgd", lr=0.5, clip_grad_norm=0.0)
-    plain = cfg_of(setup, "plain", **kw)
-    again = cfg_of(setup, "again", recompute_activations=True, **kw)
+    plain = cfg_of(user_base, "plain", **kw)
+    again = cfg_of(user_base, "again", recompute_activations=True, **kw)
     train(plain, progress=False)
     train(again, progress=False)
     a, b = load_file(str(newest(plain.run_dir) / "model" / "model.safetensors")), \
         load_file(str(newest(again.run_dir) / "model" / "model.safetensors"))
-    assert any(not torch.equal(a[k], load_file(str(setup[0] / "base" / "model.safetensors"))[k]) for k in a)
+    assert any(not torch.equal(a[k], load_file(str(user_base[0] / "base" / "model.safetensors"))[k]) for k in a)
     for k in a:
         torch.testing.assert_close(a[k], b[k], rtol=1e-5, atol=1e-6)
     la, lb = train_lines(plain.run_dir), train_lines(again.run_dir)
@@ -200,8 +200,8 @@ def test_recompute_activations_in_a_run_equals_the_plain_run(setup):
 
 
 # ----------------------------------------------------------------------------- bad input
-def test_adapter_keys_that_cannot_take_effect_are_errors(setup):
-    tmp, base = setup
+def test_adapter_keys_that_cannot_take_effect_are_errors(user_base):
+    tmp, base = user_base
     with pytest.raises(ValueError, match=r"^adapter_scale needs adapter_rank >= 1 \(it shapes a LoRA adapter"):
         from_dict({**base, "adapter_scale": 1.0})
     with pytest.raises(ValueError, match=r"^adapter_rank needs start_from \(the base model the adapter trains on"):
@@ -220,8 +220,8 @@ def test_adapter_keys_that_cannot_take_effect_are_errors(setup):
     assert cfg.adapter_modules == []
 
 
-def test_adapter_keys_without_peft_say_how_to_install_it(setup, monkeypatch, capsys):
-    tmp, base = setup
+def test_adapter_keys_without_peft_say_how_to_install_it(user_base, monkeypatch, capsys):
+    tmp, base = user_base
     monkeypatch.setitem(sys.modules, "peft", None)  # import peft now raises ImportError
     with pytest.raises(ValueError, match=r"^adapter_rank needs the optional dependency peft, which is not installed: "
                                          r"pip install 'bonft\[peft\]'$"):
@@ -240,11 +240,11 @@ def test_adapter_keys_without_peft_say_how_to_install_it(setup, monkeypatch, cap
                                                "which is not installed: pip install 'bonft[peft]'")
 
 
-def test_bad_adapters_stop_before_any_step_with_one_line(setup, capsys):
+def test_bad_adapters_stop_before_any_step_with_one_line(user_base, capsys):
     pytest.importorskip("peft")
-    tmp, base = setup
+    tmp, base = user_base
     save_base(tmp / "wide", width=64)
-    train(cfg_of(setup, "small", adapter_rank=2, rl_steps=1), progress=False)
+    train(cfg_of(user_base, "small", adapter_rank=2, rl_steps=1), progress=False)
     adapter = newest(tmp / "small")
     capsys.readouterr()
 
@@ -288,10 +288,10 @@ def test_bad_adapters_stop_before_any_step_with_one_line(setup, capsys):
                    f"model there or set that field to its directory")
 
 
-def test_eval_and_sample_accept_an_adapter_directory_and_an_adapter_checkpoint(setup, capsys):
+def test_eval_and_sample_accept_an_adapter_directory_and_an_adapter_checkpoint(user_base, capsys):
     pytest.importorskip("peft")
-    tmp, base = setup
-    cfg = cfg_of(setup, "ev", adapter_rank=4)
+    tmp, base = user_base
+    cfg = cfg_of(user_base, "ev", adapter_rank=4)
     train(cfg, progress=False)
     ckpt = newest(cfg.run_dir)
     capsys.readouterr()
@@ -313,21 +313,21 @@ def test_eval_and_sample_accept_an_adapter_directory_and_an_adapter_checkpoint(s
     assert len(rows) == 8 and all(r["reward"] == float(any(c.isdigit() for c in r["response"])) for r in rows)
 
 
-def test_adapter_from_continues_a_trained_adapter_on_its_base(setup):
+def test_adapter_from_continues_a_trained_adapter_on_its_base(user_base):
     pytest.importorskip("peft")
     from bonft.trainer.run import build_run
 
-    first = cfg_of(setup, "first", adapter_rank=4, rl_steps=2)
+    first = cfg_of(user_base, "first", adapter_rank=4, rl_steps=2)
     train(first, progress=False)
     ckpt = newest(first.run_dir)
     saved = load_file(str(ckpt / "model" / "adapter_model.safetensors"))
-    run = build_run(cfg_of(setup, "next", adapter_from=str(ckpt)))
+    run = build_run(cfg_of(user_base, "next", adapter_from=str(ckpt)))
     params = {n: p for n, p in run.module.named_parameters() if p.requires_grad}
     assert len(params) == len(saved) == 2 * LAYERS  # the adapter's factors train, nothing else
     for key, tensor in saved.items():  # it starts from the saved factors, exactly
         assert torch.equal(params[key.replace(".weight", ".default.weight")], tensor)
     # rl_steps = 0 evaluates the adapter as it is: the same pass@k as the first run's last evaluation
-    cfg = cfg_of(setup, "look", adapter_from=str(ckpt), rl_steps=0)
+    cfg = cfg_of(user_base, "look", adapter_from=str(ckpt), rl_steps=0)
     evs = train(cfg, progress=False)["evaluations"]
     last = json.loads((Path(first.run_dir) / "summary.json").read_text())["evaluations"][-1]
     assert [e["step"] for e in evs] == [0] and evs[0]["pass_at_k"]["mean"] == last["pass_at_k"]["mean"]
