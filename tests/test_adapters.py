@@ -331,3 +331,28 @@ def test_adapter_from_continues_a_trained_adapter_on_its_base(user_base):
     evs = train(cfg, progress=False)["evaluations"]
     last = json.loads((Path(first.run_dir) / "summary.json").read_text())["evaluations"][-1]
     assert [e["step"] for e in evs] == [0] and evs[0]["pass_at_k"]["mean"] == last["pass_at_k"]["mean"]
+
+
+def test_resume_keeps_recomputing_activations(user_base, monkeypatch):
+    # The resumed steps must run the same forward as the uninterrupted run's (the recomputing one, which skips the
+    # cached prompt pass): bit-equal weights fail if the reloaded model lost the setting.
+    kw = dict(recompute_activations=True, save_every=1, keep_checkpoints=10)
+    whole = cfg_of(user_base, "whole", **kw)
+    train(whole, progress=False)
+    cut = cfg_of(user_base, "cut", **kw)
+    real = S.rl_step
+
+    def stop_at_3(run, step, clock):
+        if step == 2:
+            raise KeyboardInterrupt
+        return real(run, step, clock)
+
+    monkeypatch.setattr(S, "rl_step", stop_at_3)
+    with pytest.raises(KeyboardInterrupt):
+        train(cut, progress=False)
+    monkeypatch.setattr(S, "rl_step", real)
+    train(cut, resume=True, progress=False)
+    a = load_file(str(newest(whole.run_dir) / "model" / "model.safetensors"))
+    b = load_file(str(newest(cut.run_dir) / "model" / "model.safetensors"))
+    assert a.keys() == b.keys() and all(torch.equal(a[k], b[k]) for k in a)
+    assert train_lines(whole.run_dir) == train_lines(cut.run_dir)
