@@ -81,7 +81,13 @@ def train_lines(run_dir):
 
 def test_an_adapter_trains_its_factors_only_and_checkpoints_only_them(user_base):
     pytest.importorskip("peft")
+    from bonft.trainer.adapters import trainable_count
+    from bonft.trainer.run import build_run
+
     cfg = cfg_of(user_base, "a", adapter_rank=4, adapter_scale=2.0)
+    # the base: 30,304 weights (counted by torch on the saved model); the adapter: LAYERS x r (d_in + d_out)
+    assert sum(p.numel() for p in load_model(user_base[0] / "base")[0].parameters()) == 30_304
+    assert trainable_count(build_run(cfg).module) == (1024, 30_304 + 1024)
     train(cfg, progress=False)
     ckpt = newest(cfg.run_dir)
     assert sorted(p.name for p in (ckpt / "model").iterdir() if p.suffix != ".md") == [
