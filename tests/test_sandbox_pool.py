@@ -11,6 +11,7 @@ parent's memory: hence the worker must never hold a job's text when it forks a c
 """
 import glob
 import os
+import re
 import signal
 import subprocess
 import sys
@@ -34,6 +35,7 @@ from sandbox_attacks import (
 )
 
 from bonft.verifiers import CodeRunner
+from bonft.verifiers.sandbox.procs import remove_tree
 
 ROOT = os.geteuid() == 0
 CORRECT = ("def add(a, b):\n    return a + b", TESTS)
@@ -305,6 +307,45 @@ def test_a_worker_that_dies_mid_batch_sinks_only_its_candidate(victim):
         while _processes_of(pool.uids()) and time.monotonic() < end:
             time.sleep(0.05)
         assert _processes_of(pool.uids()) == []
+
+
+@needs_ns
+def test_a_directory_the_worker_cannot_remove_sinks_only_its_candidate():
+    """A tmpfs mounted from outside (as root) on a directory the candidate made in its working
+    directory: rmdir(2) fails with EBUSY on a mount point, so that candidate's verdict is ``crashed``
+    naming what could not be removed (its tests had passed: said too), and the next candidate of the
+    same worker passes. The candidate's own mount namespace is private (mount_namespaces(7)): it never
+    sees the mount."""
+    maker = ("import os, time\nos.mkdir('busy')\ntime.sleep(2)\ndef add(a, b):\n    return a + b", TESTS)
+    with CodeRunner({}, wall_time=8.0, memory_mb=256, workers=1, pool=True) as runner:
+        worker = runner.sandbox_pool().worker_pids()[0]
+        mounted, tried = [], []
+
+        def mount() -> None:
+            end = time.monotonic() + 6
+            while time.monotonic() < end and not tried:
+                for d in glob.glob(os.path.join(tempfile.gettempdir(), f"bonft-sandbox-{worker}.*", "busy")):
+                    tried.append(d)
+                    if subprocess.run(["mount", "-t", "tmpfs", "none", d]).returncode == 0:
+                        mounted.append(d)
+                time.sleep(0.01)
+
+        t = threading.Thread(target=mount)
+        t.start()
+        try:
+            first, second = runner.run_code([maker, CORRECT])
+        finally:
+            t.join()
+            for d in mounted:
+                subprocess.run(["umount", d])
+                remove_tree(os.path.dirname(d))
+    if not mounted:
+        pytest.skip("cannot mount a tmpfs here")
+    assert first.status == "crashed", (first.reason, first.stderr[-300:])
+    assert re.fullmatch(r"clean-up failed: OSError: \[Errno 16\] could not remove busy 0 levels below "
+                        r".*/bonft-sandbox-\d+\.\d+\.\w+: Device or resource busy \(verdict was pass\)",
+                        first.reason), first.reason
+    assert (second.status, second.reason) == ("pass", None)
 
 
 def test_pool_bad_input_and_layers():

@@ -8,14 +8,16 @@ credentials and no network.
 
 Each worker is a fresh interpreter (``python -c`` of ``zygote.py``, the
 interpreter the runner chose, a scrubbed environment, as root when the caller
-is) that has loaded what both bootstraps need and then only forks: per job a
-supervisor, which forks the tests' process and the candidate's (in a PID
-namespace of its own as root) with the same layers, limits and uids as a
-one-at-a-time run, and only then reads the job from the pipe. The worker
-never holds a solution or tests, so no candidate forked from it (nor from
-the supervisor, which forks before reading) can find another candidate's
-code or tests in its memory. Worker ``k`` runs one candidate at a time under
-uids of its own (``uid0 + 2k``, tests ``+ 1``).
+is) that has loaded what both bootstraps need and then splits in two: a
+forker, which per job forks the tests' process and the candidate's (in a PID
+namespace of its own as root, through its init) with the same layers, limits
+and uids as a one-at-a-time run, and a supervisor, which reads the jobs,
+feeds the two processes, reads their output and verdict and writes the
+result, and never forks. The forker never holds a solution, tests, output or
+verdict, so no candidate forked from it can find another candidate's code or
+tests in its memory. A candidate costs three processes (tests, init,
+candidate). Worker ``k`` runs one candidate at a time under uids of its own
+(``uid0 + 2k``, tests ``+ 1``).
 
 The parent streams jobs to idle workers over their control pipes and reads
 result frames (the wire protocol of ``wire.py``: length-prefixed JSON, no
@@ -92,8 +94,8 @@ class SandboxPool:
         self.root = root
         self.uid0 = _UID_BASE + 2000 * secrets.randbelow(200_000) if root else None
         self.config = dict(config)
-        # the supervisor's own limit is wall_time (then kill, reap, remove two directories): this
-        # much later the worker is taken for stuck, killed and replaced
+        # a job's own limit is wall_time (then kill, reap, remove two directories): this much later
+        # the worker is taken for stuck, killed and replaced
         self._patience = float(config.get("wall_time", 5.0)) * 2 + 60.0
         self._workers = [_Worker(s) for s in range(workers)]
         self._lock = threading.Lock()
@@ -177,7 +179,7 @@ class SandboxPool:
         if w.proc is not None:
             if kill:
                 try:
-                    os.killpg(w.proc.pid, signal.SIGKILL)  # the worker and any supervisor of it
+                    os.killpg(w.proc.pid, signal.SIGKILL)  # the worker and its supervisor
                 except (ProcessLookupError, PermissionError):
                     pass
             try:
@@ -190,7 +192,7 @@ class SandboxPool:
 
     @staticmethod
     def _sweep(pid: int) -> None:
-        """Directories a dead worker's supervisors left (named after the worker's pid)."""
+        """Directories a dead worker left (named after its pid)."""
         if not pid:
             return
         base = tempfile.gettempdir()
@@ -230,7 +232,8 @@ class SandboxPool:
         return self._batch([("run", p) for p in payloads])
 
     def floor(self, n: int) -> list[dict]:
-        """``n`` processes with the candidate's isolation that do nothing: ``[{"layers": "...", ...}]``."""
+        """``n`` processes with the candidate's isolation that do nothing, each one fork of a worker:
+        ``[{"layers": "...", ...}]``."""
         return self._batch([("bare", b"")] * n)
 
     def _batch(self, items: list[tuple[str, bytes]]) -> list[dict]:
@@ -283,7 +286,7 @@ class SandboxPool:
             for key in list(sel.get_map().values()):
                 sel.unregister(key.fileobj)
         late = time.monotonic() - self._patience
-        for w in busy:  # a supervisor ends by itself soon after wall_time: one that does not is stuck
+        for w in busy:  # a job ends by itself soon after wall_time: a worker whose job does not is stuck
             if w.job is not None and w.since < late and w.proc is not None:
                 self._died(w, results, f"no result {self._patience:g} s after the job was sent")
         for key, mask in ready:

@@ -553,7 +553,7 @@ class Supervisor:
                 os.close(fd)
             if not msg:  # the forker is gone: so is every process of the job (parent-death signals)
                 os._exit(9)
-            self._note(msg.split(None, 5))
+            self._note(msg.split(None, 4))
             r, _, _ = select.select([self.sock], [], [], 0)
 
     def _note(self, parts):
