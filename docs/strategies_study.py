@@ -2,19 +2,19 @@
 
 Reproduce (about 15 minutes on 2 busy CPU cores)::
 
-    bonft train recipes/majority_vote.toml --output runs/sv/warm --set rl_steps=0 --set eval_every=400
-    bonft train recipes/majority_vote.toml --output runs/sv/majority_vote --set eval_every=100
-    bonft train recipes/majority_vote.toml --output runs/sv/mv_lr1e3 --set lr=1e-3 --set rl_steps=300 --set eval_every=100
-    bonft train recipes/majority_vote.toml --output runs/sv/weighted_vote --set objective=weighted_vote --set eval_every=100
-    bonft train recipes/best_of_k.toml     --output runs/sv/best_of_k     --set eval_every=100
-    bonft train recipes/pass_at_k.toml     --output runs/sv/pass_at_k     --set eval_every=100
+    bonft train docs/strategies_ledger.toml --output runs/sv/warm --set rl_steps=0 --set eval_every=400
+    bonft train docs/strategies_ledger.toml --output runs/sv/majority_vote --set eval_every=100
+    bonft train docs/strategies_ledger.toml --output runs/sv/mv_lr1e3 --set lr=1e-3 --set rl_steps=300 --set eval_every=100
+    bonft train docs/strategies_ledger.toml --output runs/sv/weighted_vote --set objective=weighted_vote --set eval_every=100
+    bonft train docs/strategies_ledger.toml --output runs/sv/best_of_k --set objective=best_of_k --set eval_every=100
+    bonft train docs/strategies_ledger.toml --output runs/sv/pass_at_k --set objective=pass_at_k --set eval_every=100
     for p in warm majority_vote mv_lr1e3 weighted_vote best_of_k pass_at_k; do
         bonft sample runs/sv/$p --n 32 --n-prompts 200 -o runs/sv/$p.jsonl
     done
     python docs/strategies_study.py runs/sv majority_vote mv_lr1e3 weighted_vote best_of_k pass_at_k
 
 The stronger warm start: the same with ``--set warm_start_steps=1200`` on every run (warm, majority_vote,
-pass_at_k) plus a placebo run (``--set placebo=true`` on the majority-vote recipe), sampled alike,
+pass_at_k) plus a placebo run (``--set placebo=true`` on the majority-vote run), sampled alike,
 in a second directory with the placebo's pool file named ``placebo.jsonl``.
 
 The runs share the warm start (same seed and supervised stage; their step-400 evaluations

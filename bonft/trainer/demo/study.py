@@ -26,7 +26,7 @@ Design, fixed in code before any result (:class:`StudyConfig`'s defaults):
   (the latter two with their bias measured by :func:`bonft.objcheck.check_objective` at the study's
   k and n, printed beside them); best-of-k ranked by the proxy verifier; pass@k with k annealed
   16 -> 1; and, when ``best_of_k_sft`` is listed, plain SFT (``best_of_k_sft`` at k = 1, whose sample
-  credit is zero: the loss is the references' NLL) against BoN-SFT at each k of ``sft_ks``, every arm
+  credit is zero: the loss is the references' NLL) against BoN-SFT at each k of ``reference_ks``, every arm
   from the same warm start with the same references, steps, prompts and samples.
 
 :func:`run_study` writes ``study.md`` (the tables), ``study.json`` (every number) and ``frontier.png``
@@ -81,7 +81,7 @@ LR_GRID = {
     "pass_at_k_anneal": (0.01, 0.02, 0.04),
     "best_of_k_sft": (0.01, 0.02, 0.04),
 }
-SFT_KS = (4, 8, 16)  # BoN-SFT arms; plain SFT is k = 1
+REFERENCE_KS = (4, 8, 16)  # BoN-SFT arms; plain SFT is k = 1
 VALIDATION_PROMPTS = 200
 TOLERANCE = 0.01  # a placebo difference at most this large counts as within noise whatever its interval
 BINARY_CREDITS = ("pass_at_k", "pass_at_k_plugin", "pass_at_k_positive")  # their bias is measured and printed
@@ -98,7 +98,7 @@ class StudyConfig:
     tune_seeds: tuple = TUNE_SEEDS
     objectives: tuple = STUDY_OBJECTIVES
     lr_grid: dict = field(default_factory=lambda: {k: tuple(v) for k, v in LR_GRID.items()})
-    sft_ks: tuple = SFT_KS
+    reference_ks: tuple = REFERENCE_KS
     validation_prompts: int = VALIDATION_PROMPTS
     tolerance: float = TOLERANCE
     grid_only: bool = False  # stop after the validation grid (tuning seeds only)
@@ -127,7 +127,7 @@ def arms(sc: StudyConfig) -> list[Arm]:
     for obj in sc.objectives:
         if obj == "best_of_k_sft":
             out.append(Arm("sft", obj, k=1, placebo=False))
-            out += [Arm(f"best_of_k_sft-k{k}", obj, k=k, reference="sft") for k in sc.sft_ks]
+            out += [Arm(f"best_of_k_sft-k{k}", obj, k=k, reference="sft") for k in sc.reference_ks]
         else:
             out.append(Arm(obj, obj))
     return out
@@ -185,9 +185,9 @@ def check_study(dc: DemoConfig, sc: StudyConfig) -> None:
         raise ValueError(f"lr_grid has no learning rates for {missing}")
     sc.lr_grid = {o: tuple(float(v) for v in lrs) for o, lrs in sc.lr_grid.items()}
     if "best_of_k_sft" in sc.objectives:
-        sc.sft_ks = tuple(check_int("sft_ks", k, min=2, max=dc.n) for k in sc.sft_ks)
-        if not sc.sft_ks:
-            raise ValueError("sft_ks must name at least one k of BoN-SFT (2 <= k <= n)")
+        sc.reference_ks = tuple(check_int("reference_ks", k, min=2, max=dc.n) for k in sc.reference_ks)
+        if not sc.reference_ks:
+            raise ValueError("reference_ks must name at least one k of BoN-SFT (2 <= k <= n)")
     sc.validation_prompts = check_int("validation_prompts", sc.validation_prompts, min=1)
     sc.tolerance = check_real("tolerance", sc.tolerance, min=0.0)
     if 1 not in dc.eval_ks:
@@ -512,7 +512,7 @@ def run_study(dc: DemoConfig | None = None, sc: StudyConfig | None = None, *, pr
     bias = credit_bias(dc, sc.objectives)
     result = {"design": {"seeds": list(sc.seeds), "replication_seeds": list(sc.replication_seeds),
                          "tune_seeds": list(sc.tune_seeds), "objectives": list(sc.objectives),
-                         "lr_grid": {k: list(v) for k, v in sc.lr_grid.items()}, "sft_ks": list(sc.sft_ks),
+                         "lr_grid": {k: list(v) for k, v in sc.lr_grid.items()}, "reference_ks": list(sc.reference_ks),
                          "validation_prompts": sc.validation_prompts, "tolerance": sc.tolerance},
               "config": {k: (list(v) if isinstance(v, tuple) else v) for k, v in dc.__dict__.items()},
               "grid": grid, "credit_bias": bias}
@@ -550,7 +550,7 @@ def run_study(dc: DemoConfig | None = None, sc: StudyConfig | None = None, *, pr
             f"{dc.heldout_prompts} held-out prompts, {dc.eval_samples} samples per prompt at T = {dc.eval_temperature:g}. "
             f"Every arm: {dc.rl_steps} steps of {dc.prompts_per_step} prompts x {dc.n} samples from the seed's warm start, "
             f"optimizer {dc.optimizer}, anchor_weight {dc.anchor_weight:g}, clip_grad_norm {dc.clip_grad_norm:g}, k = {dc.k} "
-            f"(BoN-SFT: k = {', '.join(map(str, sc.sft_ks))}; plain SFT = BoN-SFT at k = 1). Seeds: main "
+            f"(BoN-SFT: k = {', '.join(map(str, sc.reference_ks))}; plain SFT = BoN-SFT at k = 1). Seeds: main "
             f"{', '.join(map(str, sc.seeds))}; replication {', '.join(map(str, sc.replication_seeds)) or 'none'}; tuning "
             f"{', '.join(map(str, sc.tune_seeds))}.", ""]
     text = "\n".join(head + [s for sec in sections if sec for s in (sec, "")])
