@@ -238,7 +238,8 @@ def _policy_gradient(lp: Tensor, w: Tensor, m: "_Mask | None", opt: LossOptions,
     """
     info: dict[str, Tensor] = {}
     if opt.sampling_logprobs is None:
-        seq = _masked_sum(lp, m, fast=fast, spare=opt.anchor_logprobs is None)  # (B, n): the KL term uses the weights too
+        seq = _masked_sum(lp, m, fast=fast, spare=opt.anchor_logprobs is None,  # the KL term uses the weights too
+                          keep_count=opt.return_info or opt.token_reduction == "mean")  # (B, n)
     else:
         seq = _reweighted_sum(lp, m, w, opt, info)
     sums = seq.detach()
@@ -324,47 +325,58 @@ class _Mask:
         return torch.where(self.bool, x, 0.0)
 
 
-def _masked_sum(lp: Tensor, m: _Mask | None, *, fast: bool = False, spare: bool = False, seq_ndim: int = 2) -> Tensor:
+def _masked_sum(lp: Tensor, m: _Mask | None, *, fast: bool = False, spare: bool = False, keep_count: bool = True,
+                seq_ndim: int = 2) -> Tensor:
     """Token or sequence log-probs -> (B, n) sequence log-probs.
 
     ``fast=False``: padding adds exactly 0, even if it holds NaN or an infinity (``where``).
     ``fast=True``: ``(lp * weights).sum(-1)``, the same sums when the padding holds finite
     numbers (``x * 0 = 0``) and a non-finite sum otherwise: the caller tests the result once
     (O(B n)) and recomputes with ``fast=False`` only then. ``spare``: nothing else in the graph
-    uses ``m.weights`` (:class:`_WeightedSum`). ``seq_ndim``: dimensions of sequence log-probs.
+    uses ``m.weights``; ``keep_count``: ``m.count()`` will be asked for (:class:`_WeightedSum`).
+    ``seq_ndim``: dimensions of sequence log-probs.
     """
     if lp.ndim == seq_ndim:
         return lp
     if m is None:
         return lp.sum(-1)
     if fast:
-        return _WeightedSum.apply(lp, m, spare)
+        return _WeightedSum.apply(lp, m, spare, keep_count)
     return m.apply(lp).sum(-1)
 
 
 class _WeightedSum(torch.autograd.Function):
-    """``(lp * weights).sum(-1)`` whose gradient ``g[..., None] * weights`` is written into the weights when they are spare.
+    """``(lp * weights).sum(-1)`` with gradient ``g[..., None] * weights``, in one full-size buffer when the weights are spare.
 
     The same numbers as autograd gives for ``(lp * weights).sum(-1)`` (the same products and
-    sums), one full-size tensor fewer per call: the 0/1 weights are made from the mask for this
-    call only, so when nothing else in the graph holds them (``spare``) the backward scales them
-    in place and hands them over as the gradient. A second backward through the same graph
-    (``retain_graph``) remakes them from the mask; a differentiable one (``create_graph``)
-    multiplies out of place.
+    sums). When nothing else in the graph needs the 0/1 weights (``spare``), they are made from
+    the mask for this call only, multiplied by ``lp`` in place and summed; the backward makes
+    them again in the same buffer (one pass over the mask), scales them by the incoming gradient
+    and hands the buffer over as the gradient. One full-size tensor per call instead of three
+    (weights, product, gradient): in a fresh process each new one costs its page faults, about
+    as much as the arithmetic. ``keep_count``: count the tokens before the weights are
+    overwritten (``token_reduction="mean"``, ``return_info``). A second backward through the
+    same graph (``retain_graph``) or a differentiable one (``create_graph``) multiplies new
+    weights out of place.
     """
 
     @staticmethod
-    def forward(ctx, lp: Tensor, m: "_Mask", spare: bool) -> Tensor:
-        ctx.m, ctx.spare = m, spare
-        return (lp * m.weights).sum(-1)
+    def forward(ctx, lp: Tensor, m: "_Mask", spare: bool, keep_count: bool) -> Tensor:
+        ctx.m, ctx.buffer = m, None
+        if not spare:
+            return (lp * m.weights).sum(-1)
+        if keep_count:
+            m.count()
+        ctx.buffer = m.take_weights().mul_(lp)
+        return ctx.buffer.sum(-1)
 
     @staticmethod
     def backward(ctx, grad: Tensor):
         g = grad.unsqueeze(-1)
-        if ctx.spare and not torch.is_grad_enabled():
-            ctx.spare = False
-            return ctx.m.take_weights().mul_(g), None, None
-        return ctx.m.weights * g, None, None
+        m, buffer, ctx.buffer = ctx.m, ctx.buffer, None
+        if buffer is None or torch.is_grad_enabled():
+            return m.weights * g, None, None, None
+        return token_weights(m.mask, m.dtype, out=buffer).mul_(g), None, None, None
 
 
 def _per_token_scale(seq: Tensor, lp: Tensor, m: _Mask | None, token_reduction: str) -> Tensor:
@@ -646,7 +658,8 @@ def _nll(name: str, lp: Tensor, mask_name: str, opt: LossOptions) -> tuple[Tenso
     if opt.check_tokens:
         check_token_values(name, lp, mask_name, opt.mask, mask)
     m = _Mask(mask, lp.dtype) if mask is not None else None
-    seq = _masked_sum(lp, m, fast=True, spare=True, seq_ndim=1)
+    seq = _masked_sum(lp, m, fast=True, spare=True, keep_count=opt.return_info or opt.token_reduction == "mean",
+                      seq_ndim=1)
     if m is not None and _needs_a_look(seq.detach(), seq.detach()):  # the one read
         check_empty_rows(mask_name, mask, None)
         if not bool(torch.isfinite(seq).all()):

@@ -169,8 +169,8 @@ def check_mask(mask_name: str, mask: Any, lp_name: str, lp: Tensor, *, seq_ndim:
     return mask.detach().to(device=lp.device)
 
 
-def token_weights(mask: Tensor, dtype: torch.dtype) -> Tensor:
-    """A checked mask -> 1 where it is non-zero, 0 elsewhere, in ``dtype``: a new tensor, one pass over the mask.
+def token_weights(mask: Tensor, dtype: torch.dtype, *, out: Tensor | None = None) -> Tensor:
+    """A checked mask -> 1 where it is non-zero, 0 elsewhere, in ``dtype`` (in ``out`` if given): one pass over the mask.
 
     The losses multiply token log-probs by these weights (the cheapest masking torch offers: a
     ``where`` costs about twice a multiply on a CPU) and fall back to ``where`` only when the
@@ -180,7 +180,8 @@ def token_weights(mask: Tensor, dtype: torch.dtype) -> Tensor:
     straight into the result, an integer one made bool first (comparing a long mask with 0 into
     floats takes 6x longer).
     """
-    out = torch.empty(mask.shape, dtype=dtype, device=mask.device)
+    if out is None:
+        out = torch.empty(mask.shape, dtype=dtype, device=mask.device)
     if mask.dtype.is_floating_point:
         return torch.ne(mask, 0, out=out)
     as_bool = mask if mask.dtype == torch.bool else mask.bool()  # non-zero = token
