@@ -110,10 +110,14 @@ class _Child:
     """A child of the forker, read like the runner's ``subprocess.Popen``: ``poll``, ``wait``,
     ``returncode`` (minus the signal number when killed). For the init of a PID namespace the
     candidate's own wait status comes on ``status_r`` (the init's otherwise). Its output pipes are
-    the supervisor's: the forker never reads them."""
+    the supervisor's: the forker never reads them.
+
+    The exit status is read without reaping (waitid(2) with WNOWAIT); ``reap`` reaps. Until then the
+    ended child stays a zombie, so its pid, and the id of the process group it led, cannot have been
+    given to another process: killing by that number reaches only what is left of this job."""
 
     def __init__(self, pid, status_r=None):
-        self.pid, self.returncode, self._status_r = pid, None, status_r
+        self.pid, self.returncode, self._status_r, self._reaped = pid, None, status_r, False
         try:
             self.pidfd = os.pidfd_open(pid)
         except (AttributeError, OSError):
@@ -141,11 +145,14 @@ class _Child:
     def poll(self):
         if self.returncode is None:
             try:
-                pid, status = os.waitpid(self.pid, os.WNOHANG)
+                info = os.waitid(os.P_PID, self.pid, os.WEXITED | os.WNOHANG | os.WNOWAIT)
             except ChildProcessError:
-                pid, status = self.pid, 255 << 8
-            if pid == self.pid:
-                self._done(status)
+                self._reaped = True
+                self._done(255 << 8)
+                return self.returncode
+            if info is not None:
+                code = info.si_code
+                self._done(info.si_status << 8 if code == os.CLD_EXITED else info.si_status & 0x7F)
         return self.returncode
 
     def wait(self):
@@ -155,6 +162,16 @@ class _Child:
             else:
                 time.sleep(0.002)
         return self.returncode
+
+    def reap(self):
+        """Wait for the child to end, then let its zombie go (and with it its pid)."""
+        self.wait()
+        if not self._reaped:
+            self._reaped = True
+            try:
+                os.waitpid(self.pid, 0)
+            except ChildProcessError:
+                pass
 
 
 class Worker:
@@ -315,16 +332,12 @@ class Worker:
         return workdir, judgedir
 
     def _kill_candidate(self, cand, in_pidns, workdir):
+        """Kill what is left of the candidate (not yet reaped, so its pid is still its own): the
+        namespace's init, or the group, then the uid or the directory."""
         if in_pidns:  # the namespace's init: its end takes every process of the namespace with it
-            try:
-                os.kill(cand.pid, signal.SIGKILL)
-            except ProcessLookupError:
-                pass
+            _kill(cand.pid, signal.SIGKILL)
             return
-        try:
-            os.killpg(cand.pid, signal.SIGKILL)
-        except (ProcessLookupError, PermissionError):
-            pass
+        _killpg(cand.pid)
         if self.cuid is not None:
             for _ in range(50):
                 if not procs.pids_of(self.cuid):
@@ -394,11 +407,11 @@ class Worker:
             if cand is not None:
                 self._kill_candidate(cand, in_pidns, workdir)
             if judge is not None:
-                try:
-                    os.killpg(judge.pid, signal.SIGKILL)
-                except (ProcessLookupError, PermissionError):
-                    pass
+                _killpg(judge.pid)  # what the tests started, too
             rcs = [p.wait() if p is not None else None for p in (judge, cand)]
+            for p in (judge, cand):
+                if p is not None:
+                    p.reap()
             close(*list(fds))
             failed = []
             for d in (workdir, judgedir):
@@ -423,7 +436,7 @@ class Worker:
             os.close(lay_w)
             os.close(out_w)
             done = _read_to_eof(lay_r)
-            _Child(pid, status_r).wait()
+            _Child(pid, status_r).reap()
         finally:
             os.close(lay_r)
             os.close(out_r)
@@ -456,6 +469,20 @@ class Worker:
                 self._plan()
             else:
                 return done
+
+
+def _kill(pid, sig):
+    try:
+        os.kill(pid, sig)
+    except (ProcessLookupError, PermissionError):
+        pass
+
+
+def _killpg(pgid):
+    try:
+        os.killpg(pgid, signal.SIGKILL)
+    except (ProcessLookupError, PermissionError):
+        pass
 
 
 def _send(sock, msg, fds=()):
