@@ -431,8 +431,8 @@ def plot_frontier(grid: dict, warm_val: tuple, held: dict | None, path: Path, K:
     if held:
         ax = axes[0][1]
         for i, (label, (p1, pK)) in enumerate(held.items()):
-            ax.plot(p1, pK, "k*" if i == 0 else "o", ms=12 if i == 0 else 7, label=label,
-                    color=None if i == 0 else colors[(i - 1) % len(colors)])
+            ax.plot(p1, pK, "*" if i == 0 else "o", ms=12 if i == 0 else 7, label=label,
+                    color="k" if i == 0 else colors[(i - 1) % len(colors)])
         ax.set(xlabel="pass@1", ylabel=f"pass@{K}", title="held-out prompts, mean over main seeds: chosen settings")
         ax.legend(fontsize=7)
     fig.tight_layout()
@@ -561,21 +561,38 @@ def run_study(dc: DemoConfig | None = None, sc: StudyConfig | None = None, *, pr
     return text
 
 
+def family_table(per_seed: dict, ks) -> str:
+    """Per prompt family (the task's, e.g. plain / return): pass@1 / pass@K, mean over seeds of each seed's mean."""
+    seeds = list(per_seed)
+    names = list(per_seed[seeds[0]])
+    fams = sorted({str(f) for f in per_seed[seeds[0]][names[0]]["family"]})
+    lines = [f"By prompt family, mean over seeds {', '.join(map(str, seeds))} (pass@1 / pass@{ks[-1]})", "",
+             "| policy | " + " | ".join(fams) + " |", "|---" * (len(fams) + 1) + "|"]
+    for n in names:
+        cells = []
+        for f in fams:
+            vals = [[float(per_seed[s][n]["pass"][per_seed[s][n]["family"] == f, j].mean()) for s in seeds] for j in (0, -1)]
+            cells.append(f"{np.mean(vals[0]):.3f} / {np.mean(vals[1]):.3f}")
+        lines.append(f"| {n} | " + " | ".join(cells) + " |")
+    return "\n".join(lines)
+
+
 def _held_out_tables(dc: DemoConfig, sc: StudyConfig, grid: dict, per: dict, result: dict) -> tuple[list[str], dict]:
     ks = dc.eval_ks
     chosen = grid["chosen"]
     warm_label = STUDY_LABELS["warm_start"]
 
+    def one(d: DemoConfig, key: str) -> dict:
+        pools = collect_stage_pools(d, Path(d.run_dir) / key, temperature=d.eval_temperature, n_prompts=d.heldout_prompts,
+                                    n=d.eval_samples)
+        return {**per_prompt_curves(pools, ks), "family": pools["family"]}
+
     def curves(s: int) -> dict:
         d = per[s]
-        out = {warm_label: per_prompt_curves(collect_stage_pools(d, Path(d.run_dir) / "warm_start", temperature=d.eval_temperature,
-                                                                 n_prompts=d.heldout_prompts, n=d.eval_samples), ks)}
+        out = {warm_label: one(d, "warm_start")}
         for arm in arms(sc):
             for placebo in ((False, True) if arm.placebo else (False,)):
-                key = stage_key(arm, chosen[arm.name]["lr"], placebo)
-                out[chosen_label(arm, chosen[arm.name], placebo)] = per_prompt_curves(
-                    collect_stage_pools(d, Path(d.run_dir) / key, temperature=d.eval_temperature,
-                                        n_prompts=d.heldout_prompts, n=d.eval_samples), ks)
+                out[chosen_label(arm, chosen[arm.name], placebo)] = one(d, stage_key(arm, chosen[arm.name]["lr"], placebo))
         return out
 
     main = {s: curves(s) for s in sc.seeds}
@@ -603,6 +620,7 @@ def _held_out_tables(dc: DemoConfig, sc: StudyConfig, grid: dict, per: dict, res
         if sft:
             out.append(f"## {title}: BoN-SFT against plain SFT (same warm start, references, steps and samples)\n\n"
                        + study_table(subset(per_seed, sft_names), ks, baselines=(sft_names[1],), confidence=dc.confidence))
+    out.append(family_table(main, ks))
     means = {n: [float(np.mean([main[s][n]["pass"][:, j].mean() for s in sc.seeds])) for j in range(len(ks))]
              for n in main[sc.seeds[0]]}
     result["held_out"] = {"main": {str(s): {n: {"pass": c["pass"].mean(0).tolist(),
