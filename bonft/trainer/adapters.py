@@ -247,6 +247,13 @@ class AdapterOff:
     def parameters(self, recurse: bool = True):
         return self.module.parameters(recurse)
 
+    def modules(self):
+        """The wrapped model's modules (code that inspects or patches a model's layers sees the shared ones)."""
+        return self.module.modules()
+
+    def named_modules(self, *args, **kwargs):
+        return self.module.named_modules(*args, **kwargs)
+
     @property
     def config(self):
         return self.module.config
