@@ -114,6 +114,21 @@ def test_a_training_run_holds_the_lock_and_releases_it_on_ctrl_c_and_on_a_crash(
     assert summary["steps"] == 6 and record(cfg.run_dir) == {}
 
 
+def test_a_run_that_fails_before_writing_anything_leaves_no_directory(tmp_path, monkeypatch):
+    # "nothing written" for a set-up error: the directory the lock created goes again (common practice)
+    def broken(cfg, **kw):
+        raise ValueError("a set-up error")
+
+    monkeypatch.setattr(T, "build_run", broken)
+    with pytest.raises(ValueError, match="a set-up error"):
+        T.train(tiny(tmp_path, "new/run"), progress=False)
+    assert list(tmp_path.iterdir()) == [tmp_path / "new"] and list((tmp_path / "new").iterdir()) == []
+    (tmp_path / "kept").mkdir()  # a directory the user made stays, its lock file too (empty: released)
+    with pytest.raises(ValueError, match="a set-up error"):
+        T.train(tiny(tmp_path, "kept"), progress=False)
+    assert [p.name for p in (tmp_path / "kept").iterdir()] == [LOCK_NAME] and record(tmp_path / "kept") == {}
+
+
 def test_a_record_from_another_machine_is_refused_and_ranks_above_0_take_no_lock(tmp_path):
     run_dir = tmp_path / "run"
     run_dir.mkdir()

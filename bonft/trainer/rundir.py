@@ -84,12 +84,14 @@ def run_lock(run_dir: str | Path, *, hold: bool = True) -> Iterator[Path | None]
         yield None
         return
     run_dir = Path(run_dir)
+    created = not run_dir.exists()
     try:
         run_dir.mkdir(parents=True, exist_ok=True)
     except OSError as e:
         raise write_failed(e, path=run_dir, run_dir=None, what="the run directory") from None
     path = run_dir / LOCK_NAME
     fd = os.open(path, os.O_RDWR | os.O_CREAT, 0o644)
+    failed = False
     try:
         try:
             fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
@@ -119,12 +121,20 @@ def run_lock(run_dir: str | Path, *, hold: bool = True) -> Iterator[Path | None]
             raise write_failed(e, path=path, run_dir=run_dir, what="the lock record", need_bytes=len(data)) from None
         try:
             yield path
+        except BaseException:
+            failed = True
+            raise
         finally:
             with contextlib.suppress(OSError):
                 os.ftruncate(fd, 0)  # an empty record: released cleanly
             fcntl.flock(fd, fcntl.LOCK_UN)
     finally:
         os.close(fd)
+        if created and failed:  # a run that failed before writing anything leaves no directory behind
+            with contextlib.suppress(OSError):
+                if [p.name for p in run_dir.iterdir()] == [LOCK_NAME]:
+                    path.unlink()
+                    run_dir.rmdir()
 
 
 # ----------------------------------------------------------------------------- failed writes
