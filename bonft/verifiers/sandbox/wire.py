@@ -43,11 +43,20 @@ class WireClosed(WireError):
     """The other end closed its pipe (or its process is gone)."""
 
 
+def _no_constants(name):
+    raise WireError("JSON constant %s" % name)
+
+
+# made once: json.dumps and json.loads with options build a new encoder or decoder on every call
+_ENCODER = json.JSONEncoder(separators=(",", ":"), allow_nan=False)
+_DECODER = json.JSONDecoder(parse_constant=_no_constants)
+
+
 def wire_send(fd, message):
     """Write one frame holding ``message`` (a dict of plain JSON) to ``fd``."""
     import os
 
-    data = json.dumps(message, separators=(",", ":"), allow_nan=False).encode("utf-8")
+    data = _ENCODER.encode(message).encode("utf-8")
     data = b"%d\n" % len(data) + data
     view = memoryview(data)
     while view:
@@ -88,11 +97,11 @@ def wire_recv(fd, cap):
     if n > cap:
         raise WireError("frame of %d bytes over the %d-byte cap" % (n, cap))
 
-    def no_constants(name):
-        raise WireError("JSON constant %s" % name)
-
     try:
-        msg = json.loads(_read_exact(fd, n).decode("utf-8"), parse_constant=no_constants)
+        text = _read_exact(fd, n).decode("utf-8")
+        if text.startswith("\ufeff"):  # as json.loads
+            raise json.JSONDecodeError("Unexpected UTF-8 BOM (decode using utf-8-sig)", text, 0)
+        msg = _DECODER.decode(text)
     except (ValueError, RecursionError) as e:
         raise WireError("frame is not JSON: %s" % str(e)[:80]) from None
     if type(msg) is not dict:
