@@ -19,14 +19,15 @@ glibc raises its mmap threshold and serves those tensors from the heap. Part 1 r
 child processes, one fresh and one after freeing a 16 MB tensor, and prints both.
 
 Run: python benchmarks/bench_losses.py [--quick] [--no-step] [--state fresh|freed]
-One thread, interleaved repetitions, medians of wall and thread CPU time, and the fastest thread CPU
-time of each (on a shared machine the least disturbed repetition); the load average is printed with
-the results.
+One thread, interleaved repetitions (in a shuffled order each round), medians of wall and thread
+CPU time, and the fastest thread CPU time of each (on a shared machine the least disturbed
+repetition); the load average is printed with the results.
 """
 from __future__ import annotations
 
 import argparse
 import os
+import random
 import statistics
 import subprocess
 import sys
@@ -82,13 +83,21 @@ SPELLINGS = {
 
 
 def interleaved_samples(fns: dict, reps: int) -> tuple[dict, dict]:
-    """Wall and thread CPU time of every call, the functions called in turn (one warm-up each)."""
+    """Wall and thread CPU time of every call, the functions called in turn (one warm-up each).
+
+    The order is shuffled in every round (seeded): a call that follows one which freed large
+    tensors can pay for the heap being trimmed (page faults), so a fixed order would charge that to
+    whichever function comes after the slow baselines.
+    """
     for fn in fns.values():
         fn()
     wall: dict = {name: [] for name in fns}
     cpu: dict = {name: [] for name in fns}
+    order, rng = list(fns), random.Random(0)
     for _ in range(reps):
-        for name, fn in fns.items():
+        rng.shuffle(order)
+        for name in order:
+            fn = fns[name]
             w0, c0 = time.perf_counter(), time.thread_time()
             fn()
             c1, w1 = time.thread_time(), time.perf_counter()
