@@ -27,13 +27,15 @@ from __future__ import annotations
 import numpy as np
 import torch
 
-from bonft.generation import sample, sequence_logprobs
+from bonft.generation import encode_responses, sample, sequence_logprobs
+from bonft.generation.gelu import chunked_tanh_gelu
+from bonft.generation.inputs import left_pad, special_ids
 from bonft.objectives.losses import nll_loss
 from bonft.trainer.distributed import reduce_metrics, shard_bounds
 from bonft.trainer.measure import GradientMoments, Stopwatch
 from bonft.trainer.metrics import GRAD_SNR, info_metric
 from bonft.trainer.objectives import OBJECTIVES, Pools, policy_loss, shuffle_pools
-from bonft.trainer.run import Run, Stream, encode_pairs, k_at, prompt_batch
+from bonft.trainer.run import Run, Stream, k_at, prompt_batch
 from bonft.verifiers.scoring import score_batch
 
 
@@ -43,15 +45,37 @@ def sft_step(run: Run, step: int, clock: Stopwatch) -> dict:
     cfg = run.cfg
     B = cfg.warm_start_batch_size
     idx = prompt_batch(cfg, step, B, len(run.train), run.rank, run.world)
-    ex = [run.train[i] for i in idx]
-    pids, pmask, rids, rmask = encode_pairs(run.tokenizer, [e.prompt for e in ex], [e.reference for e in ex], run.device)
-    with clock("forward"):
+    pids, pmask, rids, rmask = _reference_pairs(run, idx)
+    with clock("forward"), chunked_tanh_gelu(run.model):  # the model's own numbers, fewer trips to memory
         logp = sequence_logprobs(run.model, pids, pmask, rids, rmask)  # (b, 1, T)
         loss = nll_loss(logp[:, 0], mask=rmask[:, 0], token_reduction="sum", reduction="sum")  # (b, 1, T) -> (b, T)
     with clock("backward"):
         (loss * run.world / B).backward()  # x W/B: DDP averages over W ranks (bonft.trainer.distributed.global_mean_scale)
     tot = reduce_metrics({"nll": float(loss.detach()), "tokens": float(rmask.sum())}, run.ctx)
     return {"loss": tot["nll"] / B, "nll_per_token": tot["nll"] / tot["tokens"]}
+
+
+def _reference_pairs(run: Run, idx) -> tuple[torch.Tensor, ...]:
+    """``encode_pairs`` of the training examples ``idx`` (prompt, reference): the same four tensors,
+    from token lists each example's texts are encoded into once per run (the run keeps them), so a
+    warm-start step spends no time in the tokenizer."""
+    tokens = run.__dict__.setdefault("_reference_tokens", {})  # training index -> (prompt ids, reference ids + EOS)
+    new = sorted({int(i) for i in idx} - tokens.keys())
+    if new:
+        p, pv, r, rv = encode_responses(run.tokenizer, [run.train[i].prompt for i in new], [run.train[i].reference for i in new])
+        for j, i in enumerate(new):
+            tokens[i] = (p[j][pv[j] == 1].tolist(), r[j, 0][rv[j, 0] == 1].tolist())
+    pad_id, _ = special_ids(run.tokenizer)
+    rows = [tokens[int(i)] for i in idx]
+    prompt_tokens, prompt_valid = left_pad([pr for pr, _ in rows], pad_id)
+    T = max(1, max(len(rs) for _, rs in rows))  # as encode_responses pads: right, to the longest
+    ids = torch.full((len(rows), T), pad_id, dtype=torch.long)
+    mask = torch.zeros((len(rows), T), dtype=torch.long)
+    for j, (_, rs) in enumerate(rows):
+        ids[j, :len(rs)] = torch.tensor(rs, dtype=torch.long)
+        mask[j, :len(rs)] = 1
+    B = len(rows)
+    return tuple(x.to(run.device) for x in (prompt_tokens, prompt_valid, ids.view(B, 1, T), mask.view(B, 1, T)))
 
 
 # ----------------------------------------------------------------------------- the RL step
@@ -80,11 +104,11 @@ def rl_step(run: Run, step: int, clock: Stopwatch) -> dict:
             pools, failed = _score(run, prompts, smp.texts, refs,
                                    [Stream.PLACEBO.for_prompt(cfg.seed, step=step, slot=int(j)) for j in sl])
         rows = (smp.prompt_tokens, smp.prompt_valid, smp.response_tokens, smp.response_valid)
-        reference_rows = encode_pairs(run.tokenizer, prompts, refs, run.device) if obj.reference else None
+        reference_rows = _reference_pairs(run, mb) if obj.reference else None
         with clock("credit"):  # float64 on the host; the (b, n) credit is the one thing that goes to the device
             credit = torch.as_tensor(obj.credit(pools, k), dtype=torch.float64, device=run.device)
             value = obj.value(pools, k) if obj.value is not None else None
-        with clock("forward"):
+        with clock("forward"), chunked_tanh_gelu(run.model, run.anchor_model):
             anchor_logp = None
             if run.anchor_model is not None:
                 with torch.no_grad():
@@ -129,7 +153,7 @@ def _reuse(run: Run, kept: list, loss: float, clock: Stopwatch) -> dict:
         part: dict = {}
         for rows, reference_rows, credit, anchor_logp, old in kept:
             b = credit.shape[0]
-            with clock("forward"):
+            with clock("forward"), chunked_tanh_gelu(run.model):
                 mb_loss, info, _ = _pool_loss(run, run.model, rows, reference_rows, credit, anchor_logp,
                                               sampling_logp=old, clip_ratio=clip, ratio_level=cfg.ratio_level)
             with clock("backward"):
@@ -207,5 +231,6 @@ def _add_prompt_gradients(run: Run, moments: GradientMoments, rows: tuple, refer
 
     for j in range(credit.shape[0]):
         anchor_j = anchor_logp[j:j + 1] if anchor_logp is not None else None
-        loss, _, _ = _pool_loss(run, run.module, one(rows, j), one(reference_rows, j), credit[j:j + 1], anchor_j)
+        with chunked_tanh_gelu(run.module):
+            loss, _, _ = _pool_loss(run, run.module, one(rows, j), one(reference_rows, j), credit[j:j + 1], anchor_j)
         moments.add(torch.autograd.grad(loss, params, allow_unused=True, materialize_grads=True))

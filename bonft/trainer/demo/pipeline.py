@@ -1,4 +1,4 @@
-"""The demo's pipeline: the warm start, the RL stages from it, their evaluation and tables, and the study.
+"""The demo's pipeline: the warm start, the RL stages from it, their evaluation and tables (the study: :mod:`.study`).
 
 See :mod:`bonft.trainer.demo` for what the demo shows.
 """
@@ -6,19 +6,20 @@ from __future__ import annotations
 
 import json
 import math
-import multiprocessing as mp
+import resource
 import time
-from dataclasses import dataclass, field, fields, replace
+from dataclasses import dataclass, field, fields
 from pathlib import Path
 
 import numpy as np
 import torch
 from tqdm.auto import tqdm
 
-from bonft.tasks import get_task
+from bonft.tasks import TASKS, get_task
 from bonft.trainer.checkpoint import latest_checkpoint, quiet_transformers
 from bonft.trainer.config import MODEL_KEYS, TrainConfig
-from bonft.trainer.demo.stats import LABELS, best_temperatures, per_prompt_curves, seed_table, study_table
+from bonft.trainer.demo.schedule import Workers, run_jobs
+from bonft.trainer.demo.stats import LABELS, best_temperatures, per_prompt_curves, seed_table
 from bonft.trainer.evaluation import collect_pools
 from bonft.trainer.loop import train
 from bonft.trainer.metrics import GRAD_CLIPPED, GRAD_NORM, GRAD_SNR
@@ -35,6 +36,8 @@ class DemoConfig(TrainConfig):
     prompts a warm start answers right about 4% of the time; RL steps of 64 prompts x 32 samples,
     plain SGD at lr 0.02 with no clipping and an anchor (KL to the warm start, weight 0.2), the
     setting under which the placebo run stayed at the warm start. They fit ~10 minutes on 2 CPU cores.
+    Another task brings its own settings (``Task.demo_settings``, e.g. longer responses for a task
+    whose answers are programs): build the config with :meth:`for_task`.
     """
 
     run_dir: str = "runs/demo"
@@ -55,12 +58,53 @@ class DemoConfig(TrainConfig):
     save_every: int = 0
     log_every: int = 1  # every step: grad/snr (measured every snr_every steps) is only in the lines written
     objectives: tuple = ("reinforce", "pass_at_k", "placebo")
-    workers: int = 2  # stages run in parallel processes, one core each
+    workers: int = 3  # RL stages at once, each in a worker process with one torch thread (3 on 2 cores: no core idles)
     plan_temperatures: tuple = (0.6, 0.8, 1.0, 1.2, 1.4)  # the planner's sweep; () = skip it
     plan_prompts: int = 100  # held-out prompts of the sweep (the first ones)
     plan_n: int = 32  # samples per prompt and temperature in the sweep
     plan_policies: tuple = ("warm_start", "reinforce", "pass_at_k", "best_of_k")
     warm_start_clip: float = 1.0  # clip_grad_norm of the warm-start stage (clip_grad_norm is the RL stages')
+
+    @classmethod
+    def for_task(cls, task: str, **overrides) -> "DemoConfig":
+        """The demo's config for ``task``: DemoConfig's defaults, then the task's ``demo_settings``, then
+        ``overrides`` (a knob named in ``overrides`` wins over the task's setting)."""
+        if not isinstance(task, str) or task not in TASKS:
+            raise ValueError(f"task must be one of {tuple(TASKS)}, got {task!r}")
+        return cls(**{**TASKS[task].demo_settings, **overrides, "task": task})
+
+
+def check_demo(dc: DemoConfig) -> None:
+    """What the trainer's own checks cannot know: the room a right answer of the task needs."""
+    task = get_task(dc.task, **dc.task_params)
+    if dc.max_new_tokens < task.min_new_tokens:
+        raise ValueError(f"max_new_tokens must be >= {task.min_new_tokens} for task {dc.task!r} (its longest right "
+                         f"response and EOS; its demo uses {task.demo_settings.get('max_new_tokens', task.min_new_tokens)}), "
+                         f"got max_new_tokens={dc.max_new_tokens}")
+
+
+def training_verifier(objective: str) -> str:
+    """The training verifier of a demo stage: ``proxy`` for best-of-k (it selects), else ``exact`` (the task's oracle)."""
+    return "proxy" if objective == "best_of_k" else "exact"
+
+
+def _verifier_cell(objective: str) -> str:
+    v = training_verifier(objective)
+    return "proxy" if v == "proxy" else f"{v} (the evaluation verifier)"
+
+
+def verifier_caption(dc: DemoConfig, names) -> str:
+    """One line under every table's title: the evaluation verifier, the proxy that picks best-of-k and
+    each RL stage's training verifier, in the task's words."""
+    task = get_task(dc.task, **dc.task_params)
+    by: dict[str, list] = {}
+    for name in names:
+        if name != "warm_start":
+            by.setdefault(training_verifier(name), []).append(LABELS.get(name, name))
+    train = "; ".join(f"{'the proxy verifier' if v == 'proxy' else 'the evaluation verifier'} for {', '.join(ns)}"
+                      for v, ns in by.items())
+    return (f"Evaluation verifier (pass@k, and the reward of each best-of-k pick): {task.verifier_label}. "
+            f"Proxy verifier (picks best-of-k): {task.proxy_label}. Training verifier: {train or 'none (no RL stage)'}.")
 
 
 def stage_config(dc: DemoConfig, **kw) -> TrainConfig:
@@ -92,19 +136,24 @@ def _stage(cfg: TrainConfig, progress: bool) -> dict:
     return _final_eval(Path(cfg.run_dir))
 
 
-def _stage_in_child(cfg: TrainConfig) -> None:
+def _stage_in_child(cfg: TrainConfig, dc: DemoConfig | None = None) -> None:
+    """A worker's job: the stage, then (given ``dc``) the pools the report reads from it (:func:`stage_pools`)."""
     torch.set_num_threads(cfg.threads)
     _stage(cfg, progress=False)
+    if dc is not None:
+        stage_pools(dc, Path(cfg.run_dir))
 
 
-def _parallel_stages(cfgs: list[TrainConfig], workers: int, progress: bool) -> dict:
-    """Run stages in ``workers`` processes (one core each); a parent bar follows their metrics files.
+def _parallel_stages(cfgs: list[TrainConfig], workers: int, progress: bool, *, dc: DemoConfig | None = None,
+                     pool: Workers | None = None, meanwhile=None) -> dict:
+    """Run stages in worker processes, ``workers`` at a time (:mod:`.schedule`); a parent bar follows
+    their metrics files.
 
+    ``dc``: each worker then samples its stage's pools for the report. ``pool``: workers started
+    earlier (their imports done). ``meanwhile``: run here once the stages are handed out.
     Ctrl-C reaches the children too (same process group): each writes a checkpoint; rerunning the
     demo resumes them.
     """
-    ctx = mp.get_context("spawn")
-    pending, running = list(cfgs), []
     total = sum(c.rl_steps for c in cfgs)
     bar = tqdm(total=total, desc="RL stages (parallel)", disable=not progress, dynamic_ncols=True)
 
@@ -117,26 +166,13 @@ def _parallel_stages(cfgs: list[TrainConfig], workers: int, progress: bool) -> d
         steps = [json.loads(ln).get("step", 0) for ln in path.read_text().splitlines() if '"train"' in ln]
         return max(steps, default=0)
 
+    def tick() -> None:
+        bar.n = sum(done_steps(c) for c in cfgs)
+        bar.refresh()
+
     try:
-        while pending or running:
-            while pending and len(running) < workers:
-                c = pending.pop(0)
-                p = ctx.Process(target=_stage_in_child, args=(c,), name=c.name)
-                p.start()
-                running.append((c, p))
-            time.sleep(1.0)
-            for c, p in list(running):
-                if not p.is_alive():
-                    p.join()
-                    if p.exitcode != 0:
-                        raise RuntimeError(f"stage {c.name} failed (exit code {p.exitcode}); see {c.run_dir}")
-                    running.remove((c, p))
-            bar.n = sum(done_steps(c) for c in cfgs)
-            bar.refresh()
-    except BaseException:
-        for _, p in running:
-            p.join(timeout=60)
-        raise
+        run_jobs([(c.name, c.run_dir, _stage_in_child, (c, dc)) for c in cfgs], workers, pool=pool,
+                 meanwhile=meanwhile, tick=tick)
     finally:
         bar.close()
     return {c.name: _final_eval(Path(c.run_dir)) for c in cfgs}
@@ -151,7 +187,7 @@ def objective_config(dc: DemoConfig, objective: str, warm: str, out: Path) -> Tr
     elif objective == "placebo":
         extra = {"objective": "pass_at_k", "k": dc.k, "placebo": True}
     elif objective == "best_of_k":
-        extra = {"objective": "best_of_k", "k": dc.k, "verifier": "proxy"}
+        extra = {"objective": "best_of_k", "k": dc.k, "verifier": training_verifier(objective)}
     else:
         extra = {"objective": objective, "k": 1 if objective == "reinforce" else dc.k}
     return stage_config(dc, name=objective, run_dir=str(out / objective), start_from=warm, warm_start_steps=0, rl_steps=dc.rl_steps,
@@ -196,6 +232,21 @@ def collect_stage_pools(dc: DemoConfig, stage_dir: Path, *, temperature: float, 
     return out
 
 
+def stage_pools(dc: DemoConfig, stage_dir: Path) -> None:
+    """Sample (or find cached) every pool :func:`demo_report` reads from one stage: the held-out pools at
+    the evaluation temperature and, for the planner's policies, the sweep's."""
+    collect_stage_pools(dc, stage_dir, temperature=dc.eval_temperature, n_prompts=dc.heldout_prompts, n=dc.eval_samples)
+    if stage_dir.name in dc.plan_policies and (stage_dir / "checkpoints").is_dir():
+        for t in dc.plan_temperatures:
+            collect_stage_pools(dc, stage_dir, temperature=t, n_prompts=min(dc.plan_prompts, dc.heldout_prompts), n=dc.plan_n)
+
+
+def _cpu_seconds() -> float:
+    """User + system CPU seconds of this process and of its children that have ended."""
+    own, kids = resource.getrusage(resource.RUSAGE_SELF), resource.getrusage(resource.RUSAGE_CHILDREN)
+    return own.ru_utime + own.ru_stime + kids.ru_utime + kids.ru_stime
+
+
 def gradient_summary(stage_dir: Path) -> dict:
     """Medians over the logged RL steps of ``grad/snr`` and ``grad/norm``, the share of clipped steps,
     and the training reward of the first and last fifth of the run."""
@@ -207,26 +258,33 @@ def gradient_summary(stage_dir: Path) -> dict:
         return {}
     fifth = max(1, len(rows) // 5)
     snr = [r[GRAD_SNR] for r in rows if GRAD_SNR in r]
-    return {"grad_snr": float(np.median(snr)) if snr else float("nan"),
+    step_s = [r.get("time/step", 0.0) for r in rows]
+    return {"score_share": sum(r.get("time/score", 0.0) for r in rows) / sum(step_s) if sum(step_s) > 0 else float("nan"),
+            "step_s": float(np.median(step_s)),
+            "grad_snr": float(np.median(snr)) if snr else float("nan"),
             "grad_norm": float(np.median([r[GRAD_NORM] for r in rows if GRAD_NORM in r])),
             "clipped": float(np.mean([r.get(GRAD_CLIPPED, 0.0) for r in rows])),
             "reward_first": float(np.mean([r["reward"] for r in rows[:fifth]])),
             "reward_last": float(np.mean([r["reward"] for r in rows[-fifth:]]))}
 
 
-def gradient_table(per_stage: dict[str, dict], batch: int) -> str:
-    """Markdown: the gradient figures of each RL stage (see :func:`gradient_summary`)."""
+def gradient_table(per_stage: dict[str, dict], batch: int, caption: str = "") -> str:
+    """Markdown: the gradient figures of each RL stage and its training verifier's share of the step's
+    time (``time/score`` over ``time/step``, summed over the logged steps; see :func:`gradient_summary`)."""
     lines = [f"Gradient signal-to-noise per RL stage (median over measured steps; pure noise gives about "
-             f"1/sqrt({batch}) = {1 / math.sqrt(batch):.3f})", "",
-             "| policy | grad/snr | grad/norm | clipped steps | training reward, first -> last fifth |", "|---|---|---|---|---|"]
+             f"1/sqrt({batch}) = {1 / math.sqrt(batch):.3f}), and the training verifier's share of the RL step"]
+    lines += [caption] if caption else []
+    lines += ["", "| policy | training verifier | grad/snr | grad/norm | clipped steps | training reward, first -> last fifth "
+              "| s per step (median) | verifier's share of the step |", "|---|---|---|---|---|---|---|---|"]
     for name, g in per_stage.items():
         if g:
-            lines.append(f"| {LABELS.get(name, name)} | {g['grad_snr']:.3f} | {g['grad_norm']:.2f} | {g['clipped']:.0%} "
-                         f"| {g['reward_first']:.3f} -> {g['reward_last']:.3f} |")
+            lines.append(f"| {LABELS.get(name, name)} | {_verifier_cell(name)} | {g['grad_snr']:.3f} | {g['grad_norm']:.2f} "
+                         f"| {g['clipped']:.0%} | {g['reward_first']:.3f} -> {g['reward_last']:.3f} "
+                         f"| {g.get('step_s', float('nan')):.2f} | {g.get('score_share', float('nan')):.0%} |")
     return "\n".join(lines)
 
 
-def temperature_table(dc: DemoConfig, out: Path, names: list[str]) -> tuple[str, dict]:
+def temperature_table(dc: DemoConfig, out: Path, names: list[str], caption: str = "") -> tuple[str, dict]:
     """The planner's best sampling temperature for pass@k at each k of ``eval_ks``, per policy."""
     if not dc.plan_temperatures:
         return "", {}
@@ -241,7 +299,8 @@ def temperature_table(dc: DemoConfig, out: Path, names: list[str]) -> tuple[str,
         return "", {}
     ks = list(next(iter(best.values())))
     lines = [f"The planner's best temperature for pass@k (grid {', '.join(f'{t:g}' for t in dc.plan_temperatures)}; "
-             f"{min(dc.plan_prompts, dc.heldout_prompts)} held-out prompts x {dc.plan_n} samples per temperature)", "",
+             f"{min(dc.plan_prompts, dc.heldout_prompts)} held-out prompts x {dc.plan_n} samples per temperature)",
+             *([caption] if caption else []), "",
              "| policy | " + " | ".join(f"k = {k}" for k in ks) + " |", "|---" * (len(ks) + 1) + "|"]
     for name, b in best.items():
         lines.append(f"| {LABELS.get(name, name)} | " + " | ".join(f"{b[k]:g}" for k in ks) + " |")
@@ -258,27 +317,38 @@ def run_demo(dc: DemoConfig | None = None, *, progress: bool = True) -> dict:
     from bonft.viz import plot_comparison  # matplotlib: a heavy import, only when the demo runs
 
     dc = dc or DemoConfig()
+    check_demo(dc)
     out = Path(dc.run_dir)
     out.mkdir(parents=True, exist_ok=True)
-    t0 = time.perf_counter()
-    results = {"warm_start": _stage(warm_config(dc, out), progress)}
-    timings = {"warm_start": time.perf_counter() - t0}
-    warm = str(latest_checkpoint(out / "warm_start"))
-    cfgs = [objective_config(dc, obj, warm, out) for obj in dc.objectives]
-    t1 = time.perf_counter()
-    if dc.workers > 1 and len(cfgs) > 1:
-        results.update(_parallel_stages(cfgs, dc.workers, progress))
-    else:
-        for c in cfgs:
-            results[c.name] = _stage(c, progress)
-    timings["rl_stages"] = time.perf_counter() - t1
-    t2 = time.perf_counter()
+    torch.set_num_threads(dc.threads)  # the pools sampled here (a reused warm start never calls train) as in the workers
+    parallel = dc.workers > 1 and len(dc.objectives) > 1
+    # workers started now import torch and transformers on the core the warm start leaves idle
+    pool = Workers(min(dc.workers, len(dc.objectives)), preload=(__name__,)) if parallel else None
+    timings, cpu = {}, {}
+    try:
+        t0, c0 = time.perf_counter(), _cpu_seconds()
+        results = {"warm_start": _stage(warm_config(dc, out), progress)}
+        timings["warm_start"], cpu["warm_start"] = time.perf_counter() - t0, _cpu_seconds() - c0
+        warm = str(latest_checkpoint(out / "warm_start"))
+        cfgs = [objective_config(dc, obj, warm, out) for obj in dc.objectives]
+        t1, c1 = time.perf_counter(), _cpu_seconds()
+        if parallel:  # every worker samples its stage's pools for the report; this process the warm start's meanwhile
+            results.update(_parallel_stages(cfgs, dc.workers, progress, dc=dc, pool=pool,
+                                            meanwhile=lambda: stage_pools(dc, out / "warm_start")))
+        else:
+            for c in cfgs:
+                results[c.name] = _stage(c, progress)
+    finally:
+        if pool is not None:
+            pool.close()
+    timings["rl_stages"], cpu["rl_stages"] = time.perf_counter() - t1, _cpu_seconds() - c1
+    t2, c2 = time.perf_counter(), _cpu_seconds()
     report = demo_report(dc, out, list(results))
-    timings["evaluation"] = time.perf_counter() - t2
+    timings["evaluation"], cpu["evaluation"] = time.perf_counter() - t2, _cpu_seconds() - c2
     table = comparison_table(results)
     summary = {
         "config": {k: (list(v) if isinstance(v, tuple) else v) for k, v in dc.__dict__.items()},
-        "results": results, "seconds": timings, "table": table, "report": report["text"],
+        "results": results, "seconds": timings, "cpu_seconds": cpu, "table": table, "report": report["text"],
         "gradients": report["gradients"], "best_temperature": report["best_temperature"],
     }
     (out / "summary.json").write_text(json.dumps(summary, indent=1))
@@ -297,9 +367,10 @@ def demo_report(dc: DemoConfig, out: Path, names: list[str]) -> dict:
                                                           n_prompts=dc.heldout_prompts, n=dc.eval_samples), dc.eval_ks)
               for name in names}
     grads = {name: gradient_summary(out / name) for name in names if name != "warm_start"}
-    temps_text, best = temperature_table(dc, out, names)
-    parts = [seed_table(curves, dc.eval_ks, n_boot=dc.n_boot, seed=dc.seed, confidence=dc.confidence),
-             gradient_table(grads, dc.prompts_per_step)]
+    caption = verifier_caption(dc, names)
+    temps_text, best = temperature_table(dc, out, names, caption)
+    parts = [seed_table(curves, dc.eval_ks, n_boot=dc.n_boot, seed=dc.seed, confidence=dc.confidence, caption=caption),
+             gradient_table(grads, dc.prompts_per_step, caption)]
     if temps_text:
         parts.append(temps_text)
     return {"text": "\n\n".join(parts), "curves": curves, "gradients": grads, "best_temperature": best}
@@ -326,57 +397,4 @@ def comparison_table(results: dict[str, dict]) -> str:
             cells.append(f"{d['pass_at_k'][0]:.3f} / {d['pass_at_k'][-1]:.3f}" if d else "-")
         cells += [f"{ev['distinct_answers']:.2f}", f"{ev['entropy']:.2f}", f"{ev['mean_length']:.2f}"]
         lines.append("| " + " | ".join(cells) + " |")
-    return "\n".join(lines)
-
-
-# ----------------------------------------------------------------------------- study
-STUDY_OBJECTIVES = ("reinforce", "pass_at_k", "best_of_k", "pass_at_k_anneal", "placebo")
-STUDY_SEEDS = (0, 1, 2, 3, 4)  # fixed before looking at any result
-
-
-def run_study(dc: DemoConfig | None = None, *, seeds=STUDY_SEEDS, objectives=STUDY_OBJECTIVES, progress: bool = False) -> str:
-    """The demo over several seeds; writes ``study.md`` under ``run_dir`` and returns it.
-
-    Each seed has its own warm start (the seed changes the model init, the data split and the held-out
-    prompts). All warm starts run first, then every RL stage of every seed, ``workers`` at a time.
-    ``study.md``: means over seeds with t-intervals, paired per-seed differences from the warm start and
-    from REINFORCE with t-intervals over seeds, per-seed values, and each seed's own tables (bootstrap
-    intervals over prompts, gradient figures, the planner's best temperatures).
-    """
-    dc = dc or DemoConfig()
-    root = Path(dc.run_dir)
-    root.mkdir(parents=True, exist_ok=True)
-    t0 = time.perf_counter()
-    per_dc = {s: replace(dc, seed=s, run_dir=str(root / f"seed{s}"), objectives=tuple(objectives)) for s in seeds}
-    _parallel_stages([warm_config(d, Path(d.run_dir)) for d in per_dc.values()], dc.workers, progress)
-    rl = [objective_config(d, obj, str(latest_checkpoint(Path(d.run_dir) / "warm_start")), Path(d.run_dir))
-          for d in per_dc.values() for obj in objectives]
-    _parallel_stages(rl, dc.workers, progress)
-    names = ["warm_start", *objectives]
-    reports = {s: demo_report(d, Path(d.run_dir), names) for s, d in per_dc.items()}
-    minutes = (time.perf_counter() - t0) / 60
-    text = [f"# Study: {len(seeds)} seeds x ({', '.join(names)})", "",
-            f"{dc.task} task, {dc.heldout_prompts} held-out prompts x {dc.eval_samples} samples at T = {dc.eval_temperature:g} per seed; "
-            f"RL: {dc.rl_steps} steps of {dc.prompts_per_step} prompts x {dc.n} samples, optimizer {dc.optimizer}, lr {dc.lr:g}, "
-            f"anchor_weight {dc.anchor_weight:g}, clip_grad_norm {dc.clip_grad_norm:g}. Wall time {minutes:.0f} min.", "",
-            study_table({s: r["curves"] for s, r in reports.items()}, dc.eval_ks, confidence=dc.confidence), "",
-            _study_gradients({s: r["gradients"] for s, r in reports.items()}), ""]
-    for s, r in reports.items():
-        text += [f"## Seed {s}", "", r["text"], ""]
-    out = "\n".join(text)
-    (root / "study.md").write_text(out)
-    print(out)
-    return out
-
-
-def _study_gradients(per_seed: dict[int, dict[str, dict]]) -> str:
-    seeds = list(per_seed)
-    names = list(per_seed[seeds[0]])
-    lines = ["Gradient figures, mean over seeds of each run's median", "",
-             "| policy | grad/snr | grad/norm | clipped steps |", "|---|---|---|---|"]
-    for n in names:
-        g = [per_seed[s][n] for s in seeds if per_seed[s].get(n)]
-        if g:
-            lines.append(f"| {LABELS.get(n, n)} | {np.mean([x['grad_snr'] for x in g]):.3f} | "
-                         f"{np.mean([x['grad_norm'] for x in g]):.2f} | {np.mean([x['clipped'] for x in g]):.0%} |")
     return "\n".join(lines)
