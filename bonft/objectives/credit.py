@@ -379,6 +379,18 @@ def _running_sum(x: np.ndarray) -> np.ndarray:
 
 
 @functools.lru_cache(maxsize=256)
+def _pass_values(n: int, k: int) -> np.ndarray:
+    """(n+1,) Chen et al. 2021's unbiased pass@k of a pool of n with c correct, for c = 0..n (read-only).
+
+    :func:`bonft._core.passk.pass_at_k_counts` evaluated once per ``(n, k)``: a pool's value is a
+    lookup by its count of correct samples (the same numbers, elementwise, at a fraction of the cost).
+    """
+    v = pass_at_k_counts(n, np.arange(n + 1), k)
+    v.flags.writeable = False
+    return v
+
+
+@functools.lru_cache(maxsize=256)
 def _pass_tables(n: int, k: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """(n+1,) tables over c = correct samples in the pool, for the unbiased pass@k credit.
 

@@ -116,10 +116,10 @@ import torch
 from torch import Tensor
 
 from bonft._core.checks import check_binary, is_tensor
-from bonft._core.passk import pass_at_k_counts
 from bonft.objectives.credit import (
     _best_of_k_credit_host,
     _pass_at_k_credit_host,
+    _pass_values,
     _reinforce_credit_host,
     best_of_k_sft_credit,
 )
@@ -559,7 +559,7 @@ def pass_at_k_loss(logprobs, correct, *, k, estimator="unbiased", positive_only=
     credit = _pass_at_k_credit_host(c, k=k, estimator=estimator, positive_only=positive_only)
     n = c.shape[1]  # Chen et al. 2021's 1 - C(n-c, k)/C(n, k) of each pool (k was checked with the credit)
     return _with_pool_value(_policy_gradient_loss(logprobs, credit, opt),
-                            lambda: pass_at_k_counts(n, c.sum(-1).astype(np.int64), int(k)))
+                            lambda: _pass_values(n, int(k)).take(c.sum(-1).astype(np.int64)))
 
 
 def reinforce_loss(logprobs, rewards, *, baseline="loo", **common):
