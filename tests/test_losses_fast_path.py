@@ -304,3 +304,19 @@ def test_the_credit_running_sums_are_numpys_cumsum_number_for_number(B, n, seed,
         got, want = _running_sum(a), np.cumsum(a, axis=-1)
         assert got.dtype == np.float64 and got.shape == want.shape
         assert np.array_equal(got, want)  # equal numbers (a leading -0.0 may come back as +0.0: the same value)
+
+
+def test_the_pool_values_of_pass_at_k_loss_are_chens_estimator_by_exact_counting():
+    # reference: 1 - C(n-c, k)/C(n, k) (Chen et al. 2021, the unbiased pass@k), in exact integers
+    from math import comb
+
+    from bonft.objectives.credit import _pass_values
+
+    for n in range(1, 41):
+        for k in range(1, n + 1):
+            table = _pass_values(n, k)
+            want = [1 - comb(n - c, k) / comb(n, k) for c in range(n + 1)]
+            np.testing.assert_allclose(table, want, rtol=1e-13, atol=1e-15)
+    rewards = np.array([[1.0, 0, 0, 0], [1, 1, 0, 1], [0, 0, 0, 0]])  # c = 1, 3, 0 of n = 4, k = 2
+    _, info = pass_at_k_loss(-torch.rand(3, 4), rewards, k=2, return_info=True)
+    assert float(info["pool_value"]) == pytest.approx((0.5 + 1.0 + 0.0) / 3, rel=1e-15)  # 1 - C(3,2)/C(4,2) = 1/2
