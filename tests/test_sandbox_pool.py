@@ -181,6 +181,31 @@ def test_no_earlier_job_or_its_own_tests_are_in_a_candidates_memory():
     assert (earlier_n, own_n) == (never_n, never_n)
 
 
+@needs_ns
+def test_no_name_an_earlier_candidate_or_its_tests_left_is_in_a_later_candidates_memory():
+    """File names are data too: a candidate and its tests leave files whose names carry a marker (in the
+    working directory, a subdirectory and the tests' directory); whoever removes them reads the names,
+    so that must be a process no candidate is forked from. The next candidate of the same worker scans
+    its readable memory for the markers and finds only its own needles' copies."""
+    tag = "%08x" % (os.getpid() * 2246822519 % (1 << 32))
+    # many names of several lengths, so that some outlive the allocator's reuse of freed memory
+    leave = (f"import os\nname = 'BONFT_' + 'LEFTNAME_' + '{tag}'\nos.mkdir('sub')\n"
+             "for i in range(40):\n"
+             "    open(name + 'x' * (5 * i) + str(i), 'w').close()\n"
+             "    open(os.path.join('sub', name + 'y' * (4 * i) + str(i)), 'w').close()\n"
+             "def add(a, b):\n    return a + b")
+    leave_tests = (f"for i in range(40):\n    open('BONFT_' + 'TESTSNAME_' + '{tag}' + 'z' * (5 * i) + str(i), 'w').close()\n"
+                   "assert add(2, 3) == 5")
+    scan_tests = (f"print(count(['BONFT_', 'LEFTNAME_', '{tag}']), count(['BONFT_', 'TESTSNAME_', '{tag}']),"
+                  f" count(['BONFT_', 'NEVERNAME_', '{tag}']))")
+    with CodeRunner({}, wall_time=10.0, memory_mb=1024, workers=1, pool=True) as runner:
+        first, scan = runner.run_code([(leave, leave_tests), (MEMORY_SCAN, scan_tests)])
+    assert first.status == "pass" and scan.status == "pass", (first.reason, scan.reason, scan.stderr[-300:])
+    left_n, tests_n, never_n = map(int, scan.stdout.split())
+    assert never_n >= 1  # the needle's own copies
+    assert (left_n, tests_n) == (never_n, never_n)
+
+
 def _child_of(pid: int, timeout: float = 10.0) -> int:
     """The first child of ``pid`` (a worker's first child is its supervisor, forked before any job)."""
     end = time.monotonic() + timeout

@@ -338,19 +338,29 @@ class Worker:
             _kill(cand.pid, signal.SIGKILL)
             return
         _killpg(cand.pid)
-        if self.cuid is not None:
-            for _ in range(50):
-                if not procs.pids_of(self.cuid):
-                    break
-                procs.kill_uid(self.cuid)
-                time.sleep(0.01)
-        else:
-            procs.kill_by_cwd(workdir)
+        # the sweeps read /proc (process names, working directories: a candidate's data), so a child
+        # does them: nothing read enters the memory later candidates are forked from
+        pid = os.fork()
+        if pid == 0:
+            try:
+                if self.cuid is not None:
+                    for _ in range(50):
+                        if not procs.pids_of(self.cuid):
+                            break
+                        procs.kill_uid(self.cuid)
+                        time.sleep(0.01)
+                else:
+                    procs.kill_by_cwd(workdir)
+            finally:
+                os._exit(0)
+        os.waitpid(pid, 0)
 
     def run_job(self, seq, sock):
-        """Fork one job's two processes, hand their pipes to the supervisor, report their exits, and on
-        its ``end`` kill what is left, reap it and remove both directories. False when the supervisor
-        is gone (the job's processes are then killed, reaped and removed all the same)."""
+        """Fork one job's two processes, hand their pipes and directories to the supervisor, report
+        their exits, and on its ``end`` kill what is left and reap it. False when the supervisor is
+        gone (the job's processes are then killed and reaped all the same). The forker never lists a
+        directory a job used: the names a candidate or its tests left there are data, and every later
+        candidate is forked from this process's memory; the supervisor removes them."""
         fds = set()
         judge = cand = None
         in_pidns = False
@@ -383,7 +393,8 @@ class Worker:
                 alive = _send(sock, b"error %d %s" % (seq, str(e)[:300].encode("utf-8", "replace")))
             else:
                 theirs = [jcfg_w, ver_r, jo_r, je_r, co_r, ce_r, ccfg_w, lay_r]
-                alive = forked = _send(sock, b"forked %d %d" % (seq, in_pidns), theirs)
+                dirs = os.fsencode(workdir) + b"\0" + os.fsencode(judgedir)
+                alive = forked = _send(sock, b"forked %d %d %s" % (seq, in_pidns, dirs), theirs)
                 close(*theirs)
                 told = set()
                 while alive:
@@ -413,16 +424,15 @@ class Worker:
                 if p is not None:
                     p.reap()
             close(*list(fds))
-            failed = []
-            for d in (workdir, judgedir):
-                if d is not None:
-                    try:
-                        procs.remove_tree(d)
-                    except Exception as e:  # one candidate's leftovers never end the batch
-                        failed.append("%s: %s" % (type(e).__name__, e))
+            if not forked:  # nothing ran in them: empty (the supervisor removes the others)
+                for d in (workdir, judgedir):
+                    if d is not None:
+                        try:
+                            os.rmdir(d)
+                        except OSError:
+                            pass  # the pool's sweep of this worker's directories takes it
         if alive and forked:
-            left = "; ".join(failed)[:300].encode("utf-8", "replace")
-            alive = _send(sock, b"ended %d %d %d %s" % (seq, rcs[0], rcs[1], left))
+            alive = _send(sock, b"ended %d %d %d" % (seq, rcs[0], rcs[1]))
         return alive
 
     def bare(self, seq):
@@ -590,7 +600,7 @@ class Supervisor:
             for who, rc in ((b"j", parts[2]), (b"c", parts[3])):
                 if who in self.procs:
                     self.procs[who].returncode = int(rc)
-            self.ended = (parts[4] if len(parts) > 4 else b"").decode("utf-8", "replace")
+            self.ended = ""
 
     def reply(self, seq):
         """The forker's answer to ``fork SEQ``: (message parts, descriptors)."""
@@ -619,6 +629,7 @@ class Supervisor:
             return {"status": "crashed", "reason": "runner: could not start the pool's processes: %s"
                     % (parts[2] if len(parts) > 2 else b"").decode("utf-8", "replace")}
         jcfg_w, ver_r, jo_r, je_r, co_r, ce_r, ccfg_w, lay_r = fds
+        dirs = [os.fsdecode(d) for d in (parts[2].split(None, 1) + [b""])[1].split(b"\0") if d]
         mine = {jcfg_w, ver_r, lay_r, ccfg_w}
         judge = self.procs[b"j"] = _Remote(self, jo_r, je_r)
         cand = self.procs[b"c"] = _Remote(self, co_r, ce_r)
@@ -680,6 +691,13 @@ class Supervisor:
             _send(self.sock, b"end %d" % seq)
             while self.ended is None:
                 self.pump(None)
+            failed = []
+            for d in dirs:  # here, not in the forker: it would read the names left in them
+                try:
+                    procs.remove_tree(d)
+                except Exception as e:  # one candidate's leftovers never end the batch
+                    failed.append("%s: %s" % (type(e).__name__, e))
+            self.ended = "; ".join(failed)[:300]
         if early:
             return {"status": "crashed", "reason": early}
         status, reason = outcome.classify(verdict, cand.returncode, judge.returncode, timed_out=timed_out, over=over,
