@@ -48,6 +48,7 @@ import numpy as np
 import torch
 
 from bonft._core.checks import check_int, check_real
+from bonft.objcheck import builtin, check_objective
 from bonft.tasks import get_task
 from bonft.trainer.checkpoint import latest_checkpoint, quiet_transformers
 from bonft.trainer.config import TrainConfig
@@ -279,7 +280,7 @@ def _job(d: DemoConfig, cfg: TrainConfig, pools: tuple, validation_prompts: int)
 
 def _run_jobs(jobs: list[tuple], workers: int, progress: bool, desc: str) -> dict[str, float]:
     """Run ``(d, cfg, pools, validation_prompts)`` jobs ``workers`` at a time (one core each); -> seconds per run dir."""
-    from tqdm.auto import tqdm
+    from tqdm.auto import tqdm  # a progress bar only where jobs run
 
     seconds = {}
     bar = tqdm(total=len(jobs), desc=desc, disable=not progress, dynamic_ncols=True)
@@ -354,8 +355,6 @@ def grid_results(dc: DemoConfig, sc: StudyConfig, curves: dict[str, dict]) -> di
 def credit_bias(dc: DemoConfig, objectives) -> list[dict]:
     """check_objective of each binary pass@k credit in the study, at the study's k and n (4 random policies over
     4 outcomes, exact enumeration): relative bias, projection on the exact gradient, cosine."""
-    from bonft.objcheck import builtin, check_objective
-
     rows = []
     for name in BINARY_CREDITS:
         if name not in objectives:
@@ -407,7 +406,7 @@ def chosen_label(arm: Arm, choice: dict, placebo: bool = False) -> str:
 
 def plot_frontier(grid: dict, warm_val: tuple, held: dict | None, path: Path, K: int) -> None:
     """Left: every grid point on the validation split (filled: admissible); right: chosen settings, held-out means."""
-    import matplotlib
+    import matplotlib  # matplotlib: a heavy import, only when the figure is drawn
 
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
