@@ -386,13 +386,17 @@ class Worker:
                 (jo_r, jo_w), (je_r, je_w), (co_r, co_w), (ce_r, ce_w), (lay_r, lay_w) = [pipe() for _ in range(5)]
                 judge = _Child(self.fork_judge(judgedir, (jcfg_r, ver_w, req_w, rep_r), jo_w, je_w))
                 cpid, status_r = self.fork_candidate(workdir, (ccfg_r, req_r, rep_w), co_w, ce_w, lay_w)
-                cand = _Child(cpid, status_r)
                 in_pidns = status_r is not None
+                if in_pidns:
+                    fds.add(status_r)
+                # with a PID namespace the candidate's own wait status goes to the supervisor, on the
+                # pipe from the init: the forker learns only the init's, which no candidate controls
+                cand = _Child(cpid)
                 close(jcfg_r, ver_w, req_w, rep_r, ccfg_r, rep_w, jo_w, je_w, co_w, ce_w, lay_w)
             except OSError as e:
                 alive = _send(sock, b"error %d %s" % (seq, str(e)[:300].encode("utf-8", "replace")))
             else:
-                theirs = [jcfg_w, ver_r, jo_r, je_r, co_r, ce_r, ccfg_w, lay_r]
+                theirs = [jcfg_w, ver_r, jo_r, je_r, co_r, ce_r, ccfg_w, lay_r] + ([status_r] if in_pidns else [])
                 dirs = os.fsencode(workdir) + b"\0" + os.fsencode(judgedir)
                 alive = forked = _send(sock, b"forked %d %d %s" % (seq, in_pidns, dirs), theirs)
                 close(*theirs)
@@ -550,7 +554,7 @@ class Supervisor:
     def __init__(self, cfg, sock, same_uid):
         self.cfg, self.sock, self.same_uid = cfg, sock, same_uid
         self.buf = bytearray()
-        self.seq, self.procs, self.ended = None, {}, None
+        self.seq, self.procs, self.ended, self.status_r = None, {}, None, None
 
     def _fill(self):
         chunk = os.read(_CTL, 1 << 20)
@@ -594,13 +598,33 @@ class Supervisor:
             r, _, _ = select.select([self.sock], [], [], 0)
 
     def _note(self, parts):
-        if len(parts) >= 4 and parts[0] == b"exit" and int(parts[1]) == self.seq and parts[2] in self.procs:
-            self.procs[parts[2]].returncode = int(parts[3])
+        if len(parts) >= 4 and parts[0] == b"exit" and int(parts[1]) == self.seq:
+            self._exited(parts[2], int(parts[3]))
         elif len(parts) >= 4 and parts[0] == b"ended" and int(parts[1]) == self.seq:
-            for who, rc in ((b"j", parts[2]), (b"c", parts[3])):
-                if who in self.procs:
-                    self.procs[who].returncode = int(rc)
+            self._exited(b"j", int(parts[2]))
+            self._exited(b"c", int(parts[3]))
             self.ended = ""
+
+    def _exited(self, who, rc):
+        """``who`` ended with ``rc``; for the init of a PID namespace the candidate's own wait status
+        comes on the status pipe (the init's, if it sent none)."""
+        proc = self.procs.get(who)
+        if proc is None or proc.returncode is not None:
+            return
+        if who == b"c" and self.status_r is not None:
+            data = b""
+            try:
+                os.set_blocking(self.status_r, False)
+                data = os.read(self.status_r, 4)
+            except OSError:
+                pass
+            os.close(self.status_r)
+            self.status_r = None
+            if len(data) == 4:
+                status = struct.unpack("=i", data)[0]
+                rc = -os.WTERMSIG(status) if os.WIFSIGNALED(status) else (
+                    os.WEXITSTATUS(status) if os.WIFEXITED(status) else 255)
+        proc.returncode = rc
 
     def reply(self, seq):
         """The forker's answer to ``fork SEQ``: (message parts, descriptors)."""
@@ -628,8 +652,11 @@ class Supervisor:
         if parts[0] == b"error":
             return {"status": "crashed", "reason": "runner: could not start the pool's processes: %s"
                     % (parts[2] if len(parts) > 2 else b"").decode("utf-8", "replace")}
-        jcfg_w, ver_r, jo_r, je_r, co_r, ce_r, ccfg_w, lay_r = fds
-        dirs = [os.fsdecode(d) for d in (parts[2].split(None, 1) + [b""])[1].split(b"\0") if d]
+        jcfg_w, ver_r, jo_r, je_r, co_r, ce_r, ccfg_w, lay_r = fds[:8]
+        self.status_r = fds[8] if len(fds) > 8 else None  # the candidate's wait status, from its init
+        pidns_flag, _, dir_list = parts[2].partition(b" ")
+        in_pidns = pidns_flag == b"1"
+        dirs = [os.fsdecode(d) for d in dir_list.split(b"\0") if d]
         mine = {jcfg_w, ver_r, lay_r, ccfg_w}
         judge = self.procs[b"j"] = _Remote(self, jo_r, je_r)
         cand = self.procs[b"c"] = _Remote(self, co_r, ce_r)
@@ -670,7 +697,9 @@ class Supervisor:
             del job
             out, verdict, timed_out, over = outcome.collect(
                 judge, cand, ver_r, deadline=t0 + wall, cap=cfg["max_output_bytes"], frame_cap=cfg["frame_cap"],
-                on_candidate_exit=lambda: _send(self.sock, b"killcand %d" % seq))
+                # with a PID namespace the candidate's end already ended everything it started: the
+                # forker need not hear (and so keep in its memory) how the candidate ended
+                on_candidate_exit=lambda: None if in_pidns else _send(self.sock, b"killcand %d" % seq))
             if verdict and not over:  # as the runner: a short wait saves a kill sweep; a pass waits for the end
                 now = time.monotonic()
                 if verdict.get("status") == "pass":
@@ -691,6 +720,9 @@ class Supervisor:
             _send(self.sock, b"end %d" % seq)
             while self.ended is None:
                 self.pump(None)
+            if self.status_r is not None:  # never read (the forker reported no exit): closed all the same
+                os.close(self.status_r)
+                self.status_r = None
             failed = []
             for d in dirs:  # here, not in the forker: it would read the names left in them
                 try:
