@@ -8,25 +8,27 @@ environment. It loads the sandbox's own modules (``wire``, ``oslayer``,
 the seccomp program, and then splits in two for good:
 
 * the **forker** (the worker process itself, whose pid the pool knows) never
-  reads a job, an output or a verdict: it only receives short commands from
-  the supervisor (``fork SEQ run``, ``killcand SEQ``, ``end SEQ``) on a unix
-  socket of their own. Per job it makes the two directories and the pipes,
+  reads a job, an output, a verdict, a name left in a job's directory or (with
+  a PID namespace) the candidate's exit status: it only receives short
+  commands from the supervisor (``fork SEQ run``, ``end SEQ``; ``killcand
+  SEQ`` without a PID namespace) on a unix socket of their own. Per job it
+  makes the two directories and the pipes,
   forks the tests' process (its own session, uid, limits, ``no_new_privs``)
   and, as root, unshares a PID namespace, forks the namespace's init (which
   starts the candidate's process as PID 2, with the same layers as a
   one-at-a-time run, :func:`~bonft.verifiers.sandbox.oslayer.apply_layers`)
   and joins its own PID namespace again (setns(2), so the next job can
-  unshare a fresh one); it hands the parent ends of the pipes to the
-  supervisor (SCM_RIGHTS, unix(7)), closes its copies, reports each
-  process's exit status as it reaps it, and on ``end`` kills what is left,
-  reaps it and removes the two directories;
+  unshare a fresh one); it hands the parent ends of the pipes (the init's
+  status pipe among them) and the directories' paths to the supervisor
+  (SCM_RIGHTS, unix(7)), closes its copies, reports when each of its two
+  children ends, and on ``end`` kills what is left and reaps it;
 * the **supervisor** (forked once, before any job) reads the jobs from the
   control pipe, feeds the solution and the tests to the two processes on
   their pipes, reads both processes' output and the verdict exactly as a
-  one-at-a-time run does (``outcome.collect`` and ``outcome.classify``), and
-  writes the result frame to the result pipe. It **never forks**: every job's
-  text, output and verdict passes through its memory, and no process is ever
-  made from that memory. Every candidate is a fork of the forker, which holds
+  one-at-a-time run does (``outcome.collect`` and ``outcome.classify``),
+  removes the two directories and writes the result frame to the result
+  pipe. It **never forks**: every job's text, output, verdict and leftover
+  names pass through its memory, and no process is ever made from that memory. Every candidate is a fork of the forker, which holds
   nothing but modules and code. The supervisor is non-dumpable and dies with
   the forker (parent-death signal).
 
