@@ -1,8 +1,10 @@
 """The demo: does a best-of-N-aware objective buy pass@k at large k over leave-one-out REINFORCE?
 
-From nothing, on a CPU: build a tiny GPT-2-style model, warm-start it on the
-refunds task's notebook (whose return prompts mostly skip the return: the right
-rule is a rare mode of the warm start), then from that same warm start train
+From nothing, on a CPU: build a tiny GPT-2-style model, warm-start it on a task's
+notebook (by default refunds, whose return prompts mostly skip the return: the
+right rule is a rare mode of the warm start; ``DemoConfig.for_task("workshop")``
+writes programs judged by unit tests in the sandbox, whose boxes family has such a
+mode, with the task's own settings), then from that same warm start train
 
 (a) leave-one-out REINFORCE (Kool et al. 2019) -- optimises the mean reward (pass@1),
 (b) a pass@k-aware objective (unbiased pass@k credit, Chen et al. 2021; Walder & Karkhanis 2025), and
