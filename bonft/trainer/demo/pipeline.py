@@ -206,26 +206,34 @@ def collect_stage_pools(dc: DemoConfig, stage_dir: Path, *, temperature: float, 
     are the pools of the stage's own final evaluation. Returns ``{"rewards": (P, n), "proxy": (P, n),
     "family": (P,)}`` (``proxy`` only when the task has one).
     """
-    path = stage_dir / f"pools-T{temperature:g}-P{n_prompts}-n{n}.npz"
+    task = get_task(dc.task, **dc.task_params)
+    train, held = task.split(n_train=dc.train_prompts, n_eval=dc.heldout_prompts, seed=dc.seed)
+    return policy_pools(dc, stage_dir, held[:n_prompts], list(train) + list(held[:n_prompts]),
+                        path=stage_dir / f"pools-T{temperature:g}-P{n_prompts}-n{n}.npz", temperature=temperature, n=n,
+                        step=0)
+
+
+def policy_pools(dc: DemoConfig, stage_dir: Path, prompts: list, examples: list, *, path: Path, temperature: float,
+                 n: int, step: int) -> dict:
+    """Pools of the stage's final policy on ``prompts`` (examples), cached in ``path``: ``n`` samples per prompt at
+    ``temperature``, prompt j drawing from the trainer's evaluation seed of (``step``, slot j); the verifiers are
+    the task's over ``examples``. Returns ``{"rewards": (P, n), "proxy": (P, n), "family": (P,)}`` (``proxy``
+    only when the task has one)."""
     if path.is_file():
         with np.load(path) as z:
             return {key: z[key] for key in z.files}
-
     task = get_task(dc.task, **dc.task_params)
-    train, held = task.split(n_train=dc.train_prompts, n_eval=dc.heldout_prompts, seed=dc.seed)
-    held = held[:n_prompts]
-    everything = list(train) + list(held)
-    vers = {"exact": task.verifier(everything)}
-    proxy = task.proxy_verifier(everything)
+    vers = {"exact": task.verifier(examples)}
+    proxy = task.proxy_verifier(examples)
     if proxy is not None:
         vers["proxy"] = proxy
     with quiet_transformers():
         model, tok = load_model(latest_checkpoint(stage_dir), device="cpu")
     model.eval()
-    raw = collect_pools(model, tok, [e.prompt for e in held], verifiers=vers, extract_answer=task.extract_answer, n=n,
-                        temperature=temperature, max_new_tokens=dc.max_new_tokens,
-                        seeds=[Stream.EVALUATION.for_prompt(dc.seed, step=0, slot=j) for j in range(len(held))])
-    out = {"rewards": raw["rewards"], "family": np.array([str((e.meta or {}).get("family", "all")) for e in held])}
+    raw = collect_pools(model, tok, [e.prompt for e in prompts], verifiers=vers, extract_answer=task.extract_answer,
+                        n=n, temperature=temperature, max_new_tokens=dc.max_new_tokens,
+                        seeds=[Stream.EVALUATION.for_prompt(dc.seed, step=step, slot=j) for j in range(len(prompts))])
+    out = {"rewards": raw["rewards"], "family": np.array([str((e.meta or {}).get("family", "all")) for e in prompts])}
     if "proxy" in raw["scores"]:
         out["proxy"] = raw["scores"]["proxy"]
     np.savez_compressed(path, **out)

@@ -50,20 +50,18 @@ import torch
 from bonft._core.checks import check_int, check_real
 from bonft.objcheck import builtin, check_objective
 from bonft.tasks import get_task
-from bonft.trainer.checkpoint import latest_checkpoint, quiet_transformers
+from bonft.trainer.checkpoint import latest_checkpoint
 from bonft.trainer.config import TrainConfig
 from bonft.trainer.demo.pipeline import (
     DemoConfig,
     _stage,
     collect_stage_pools,
     objective_config,
+    policy_pools,
     stage_config,
     warm_config,
 )
 from bonft.trainer.demo.stats import LABELS, _fmt, paired_bootstrap, per_prompt_curves, study_table
-from bonft.trainer.evaluation import collect_pools
-from bonft.trainer.models import load_model
-from bonft.trainer.run import Stream
 
 STUDY_OBJECTIVES = ("reinforce", "pass_at_k", "pass_at_k_plugin", "pass_at_k_positive", "best_of_k",
                     "pass_at_k_anneal", "best_of_k_sft")
@@ -227,27 +225,9 @@ def validation_split(dc: DemoConfig, n: int) -> list:
 def collect_validation_pools(dc: DemoConfig, stage_dir: Path, n_prompts: int) -> dict:
     """Pools of the stage's final policy on the validation split (``eval_samples`` per prompt at the evaluation
     temperature, one sampling seed per prompt, the same for every policy of a seed), cached in the stage directory."""
-    path = stage_dir / f"validation-T{dc.eval_temperature:g}-P{n_prompts}-n{dc.eval_samples}.npz"
-    if path.is_file():
-        with np.load(path) as z:
-            return {key: z[key] for key in z.files}
-    task = get_task(dc.task, **dc.task_params)
     val = validation_split(dc, n_prompts)
-    vers = {"exact": task.verifier(val)}
-    proxy = task.proxy_verifier(val)
-    if proxy is not None:
-        vers["proxy"] = proxy
-    with quiet_transformers():
-        model, tok = load_model(latest_checkpoint(stage_dir), device="cpu")
-    model.eval()
-    raw = collect_pools(model, tok, [e.prompt for e in val], verifiers=vers, extract_answer=task.extract_answer,
-                        n=dc.eval_samples, temperature=dc.eval_temperature, max_new_tokens=dc.max_new_tokens,
-                        seeds=[Stream.EVALUATION.for_prompt(dc.seed, step=1, slot=j) for j in range(len(val))])
-    out = {"rewards": raw["rewards"], "family": np.array([str((e.meta or {}).get("family", "all")) for e in val])}
-    if "proxy" in raw["scores"]:
-        out["proxy"] = raw["scores"]["proxy"]
-    np.savez_compressed(path, **out)
-    return out
+    return policy_pools(dc, stage_dir, val, val, temperature=dc.eval_temperature, n=dc.eval_samples, step=1,
+                        path=stage_dir / f"validation-T{dc.eval_temperature:g}-P{n_prompts}-n{dc.eval_samples}.npz")
 
 
 # ----------------------------------------------------------------------------- stages
