@@ -79,6 +79,21 @@ def train_lines(run_dir):
             for r in lines if r["kind"] == "train"]
 
 
+def stop_before_step_3(cfg, monkeypatch):
+    """Train ``cfg`` until a Ctrl-C arrives in its third RL step (after the checkpoint of step 2)."""
+    real = S.rl_step
+
+    def stop_at_3(run, step, clock):
+        if step == 2:
+            raise KeyboardInterrupt
+        return real(run, step, clock)
+
+    monkeypatch.setattr(S, "rl_step", stop_at_3)
+    with pytest.raises(KeyboardInterrupt):
+        train(cfg, progress=False)
+    monkeypatch.setattr(S, "rl_step", real)
+
+
 def test_an_adapter_trains_its_factors_only_and_checkpoints_only_them(user_base):
     pytest.importorskip("peft")
     from bonft.trainer.adapters import trainable_count
@@ -116,18 +131,8 @@ def test_resume_of_an_adapter_run_is_bit_identical(user_base, monkeypatch):
     whole = cfg_of(user_base, "whole", **kw)
     train(whole, progress=False)
     cut = cfg_of(user_base, "cut", **kw)
-    real = S.rl_step
-
-    def stop_at_3(run, step, clock):
-        if step == 2:
-            raise KeyboardInterrupt
-        return real(run, step, clock)
-
-    monkeypatch.setattr(S, "rl_step", stop_at_3)
-    with pytest.raises(KeyboardInterrupt):
-        train(cut, progress=False)
+    stop_before_step_3(cut, monkeypatch)
     assert newest(cut.run_dir).name == "step-00000002"
-    monkeypatch.setattr(S, "rl_step", real)
     train(cut, resume=True, progress=False)
     a = load_file(str(newest(whole.run_dir) / "model" / "adapter_model.safetensors"))
     b = load_file(str(newest(cut.run_dir) / "model" / "adapter_model.safetensors"))
@@ -346,17 +351,7 @@ def test_resume_keeps_recomputing_activations(user_base, monkeypatch):
     whole = cfg_of(user_base, "whole", **kw)
     train(whole, progress=False)
     cut = cfg_of(user_base, "cut", **kw)
-    real = S.rl_step
-
-    def stop_at_3(run, step, clock):
-        if step == 2:
-            raise KeyboardInterrupt
-        return real(run, step, clock)
-
-    monkeypatch.setattr(S, "rl_step", stop_at_3)
-    with pytest.raises(KeyboardInterrupt):
-        train(cut, progress=False)
-    monkeypatch.setattr(S, "rl_step", real)
+    stop_before_step_3(cut, monkeypatch)
     train(cut, resume=True, progress=False)
     a = load_file(str(newest(whole.run_dir) / "model" / "model.safetensors"))
     b = load_file(str(newest(cut.run_dir) / "model" / "model.safetensors"))
