@@ -280,8 +280,8 @@ class _Mask:
     ``weights``: 1/0 in the log-probs' dtype, for the fast path (a multiply); ``bool``: for the
     ``where`` that keeps NaN or infinite padding out of the result, made only when the fast path
     met a non-finite value, and for sample reuse at token level. An integer mask's weights are
-    made from its bool form, which is kept: the fast path's backward makes the weights again, and
-    a bool mask (a quarter of the memory) converts 3x faster than a long one.
+    made from its bool form, which is kept: a second backward through a retained graph makes the
+    weights again, and a bool mask (a quarter of the memory) converts 3x faster than a long one.
     """
 
     def __init__(self, mask: Tensor, dtype: torch.dtype):
@@ -353,37 +353,35 @@ def _masked_sum(lp: Tensor, m: _Mask | None, *, fast: bool = False, spare: bool 
 
 
 class _WeightedSum(torch.autograd.Function):
-    """``(lp * weights).sum(-1)`` with gradient ``g[..., None] * weights``, in one full-size buffer when the weights are spare.
+    """``(lp * weights).sum(-1)`` with gradient ``g[..., None] * weights``, the weights made once per call.
 
     The same numbers as autograd gives for ``(lp * weights).sum(-1)`` (the same products and
     sums). When nothing else in the graph needs the 0/1 weights (``spare``), they are made from
-    the mask for this call only, multiplied by ``lp`` in place and summed; the backward makes
-    them again in the same buffer (one pass over the mask), scales them by the incoming gradient
-    and hands the buffer over as the gradient. One full-size tensor per call instead of three
-    (weights, product, gradient): in a fresh process each new one costs its page faults, about
-    as much as the arithmetic. ``keep_count``: count the tokens before the weights are
-    overwritten (``token_reduction="mean"``, ``return_info``). A second backward through the
-    same graph (``retain_graph``) or a differentiable one (``create_graph``) multiplies new
-    weights out of place.
+    the mask for this call only and kept for the backward, which scales them by the incoming
+    gradient in place and hands them over as the gradient: one pass over the mask per call (the
+    product is a transient tensor, served from the heap in a training loop). ``keep_count``:
+    count the tokens before the weights are handed over (``token_reduction="mean"``,
+    ``return_info``). A second backward through the same graph (``retain_graph``) or a
+    differentiable one (``create_graph``) multiplies new weights out of place.
     """
 
     @staticmethod
     def forward(ctx, lp: Tensor, m: "_Mask", spare: bool, keep_count: bool) -> Tensor:
-        ctx.m, ctx.buffer = m, None
+        ctx.m, ctx.weights = m, None
         if not spare:
             return (lp * m.weights).sum(-1)
         if keep_count:
             m.count()
-        ctx.buffer = m.take_weights().mul_(lp)
-        return ctx.buffer.sum(-1)
+        ctx.weights = m.take_weights()
+        return (ctx.weights * lp).sum(-1)
 
     @staticmethod
     def backward(ctx, grad: Tensor):
         g = grad.unsqueeze(-1)
-        m, buffer, ctx.buffer = ctx.m, ctx.buffer, None
-        if buffer is None or torch.is_grad_enabled():
+        m, weights, ctx.weights = ctx.m, ctx.weights, None
+        if weights is None or torch.is_grad_enabled():
             return m.weights * g, None, None, None
-        return m.make_weights(out=buffer).mul_(g), None, None, None
+        return weights.mul_(g), None, None, None
 
 
 def _per_token_scale(seq: Tensor, lp: Tensor, m: _Mask | None, token_reduction: str) -> Tensor:
@@ -485,7 +483,10 @@ def _host_pool(logprobs, **arrays) -> list[np.ndarray]:
     out = []
     for name, x in arrays.items():
         a = as_host(name, x, ndim=2)
-        check_pool_shape(name, a, logprobs)
+        if not out:  # logprobs checked once, after the first array (the order of the errors)
+            want = tuple(check_logprobs("logprobs", logprobs, seq_ndim=2).shape[:2])
+        if a.shape != want:
+            check_pool_shape(name, a, logprobs)
         out.append(a)
     return out
 

@@ -55,7 +55,8 @@ def as_host(name: str, x: Any, *, ndim: int) -> np.ndarray:
     if a.ndim != ndim:
         want = "(B, n)" if ndim == 2 else "(B,)"
         raise ValueError(f"{name} must have shape {want} ({ndim} dimension(s)), got shape {tuple(a.shape)}")
-    check_nonempty(name, a)
+    if a.size == 0:
+        check_nonempty(name, a)
     check_finite(name, a)
     return a
 
@@ -309,11 +310,17 @@ class LossOptions:
     return_info: bool = False
 
     def __post_init__(self):
-        check_choice("token_reduction", self.token_reduction, TOKEN_REDUCTIONS)
-        check_choice("reduction", self.reduction, REDUCTIONS)
-        check_bool("check_tokens", self.check_tokens)
-        check_bool("return_info", self.return_info)
-        object.__setattr__(self, "anchor_weight", check_nonnegative("anchor_weight", self.anchor_weight))
+        # the usual values are recognised without a call (every loss call builds one of these)
+        if type(self.token_reduction) is not str or self.token_reduction not in TOKEN_REDUCTIONS:
+            check_choice("token_reduction", self.token_reduction, TOKEN_REDUCTIONS)
+        if type(self.reduction) is not str or self.reduction not in REDUCTIONS:
+            check_choice("reduction", self.reduction, REDUCTIONS)
+        if self.check_tokens is not False and self.check_tokens is not True:
+            check_bool("check_tokens", self.check_tokens)
+        if self.return_info is not False and self.return_info is not True:
+            check_bool("return_info", self.return_info)
+        if type(self.anchor_weight) is not float or not self.anchor_weight == 0.0:
+            object.__setattr__(self, "anchor_weight", check_nonnegative("anchor_weight", self.anchor_weight))
         if self.anchor_weight > 0 and self.anchor_logprobs is None:
             raise ValueError(f"anchor_weight={self.anchor_weight} needs anchor_logprobs (the anchor policy's "
                              f"log-probs of the same tokens); without them the KL term cannot be computed")
