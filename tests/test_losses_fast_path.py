@@ -291,6 +291,33 @@ def test_a_second_backward_and_a_differentiable_one_give_the_same_gradient(mask_
     torch.testing.assert_close(y.grad, -2.0 * (mask != 0).double(), rtol=0, atol=0)
 
 
+@pytest.mark.parametrize("mask_dtype", (torch.bool, torch.float32, torch.float64, torch.int64))
+def test_the_backward_leaves_the_inputs_alone_and_each_call_gets_its_own_gradient(mask_dtype):
+    # the fast path's backward scales its 0/1 weights in place and hands them over as the gradient;
+    # the caller's mask and log-probs must stay as they were, and two calls must not share a tensor
+    # (autograd's contract: a backward returns new tensors; common practice, no source)
+    g = torch.Generator().manual_seed(11)
+    lp = -torch.rand(4, 3, 5, generator=g, dtype=torch.float64)
+    mask = torch.rand(4, 3, 5, generator=g) < 0.6
+    mask[..., 0] = True
+    mask = mask.to(mask_dtype)
+    if mask_dtype.is_floating_point:
+        mask = mask * 2.5  # any non-zero entry marks a token: weights 1, not 2.5
+    mask_before, lp_before = mask.clone(), lp.clone()
+    credit = np.random.default_rng(11).normal(size=(4, 3))
+    grads = []
+    for scale in (1.0, 3.0):  # a second call with another credit: its gradient must not land in the first
+        x = lp.clone().requires_grad_(True)
+        policy_gradient_loss(x, scale * credit, mask=mask, reduction="sum").backward()
+        grads.append(x.grad)
+    assert torch.equal(mask, mask_before) and torch.equal(lp, lp_before)
+    for scale, got in zip((1.0, 3.0), grads):
+        # d/dlp of -sum_b sum_i w_bi sum_t [mask != 0] lp_bit = -w_bi on the tokens, 0 on padding
+        want = (-scale * torch.as_tensor(credit)[..., None] * (mask_before != 0)).expand(4, 3, 5)
+        torch.testing.assert_close(got, want, rtol=1e-15, atol=0)
+    assert grads[0].data_ptr() != grads[1].data_ptr()
+
+
 @given(st.integers(1, 5), st.integers(1, 70), st.integers(0, 2**16), st.booleans())
 def test_the_credit_running_sums_are_numpys_cumsum_number_for_number(B, n, seed, signed_zeros):
     # reference: np.cumsum, whose left-to-right float64 additions the best-of-k credit used before
