@@ -12,8 +12,12 @@ credit into :func:`policy_gradient_loss` the same way.
 Log-probabilities come either per sequence, ``logprobs: (B, n)``, or per token,
 ``logprobs: (B, n, T)`` with an optional ``mask: (B, n, T)`` (True/1 = response
 token, False/0 = padding). Padding tokens change nothing, even if they hold NaN
-or -inf. :func:`bonft.objectives.logprobs.token_logprobs` turns a causal LM's
-logits and labels into this layout.
+or -inf. Any non-zero mask entry marks a token, whatever its dtype: a floating
+mask selects tokens, it does not weight them (0.5 or 2 count as 1; with
+``check_tokens=True`` a mask other than bool or 0/1 is a ``ValueError``). This
+costs one pass over the mask per call, which a loop multiplying by its float mask
+as given does not make. :func:`bonft.objectives.logprobs.token_logprobs` turns a
+causal LM's logits and labels into this layout.
 
 The shared keywords (``**common``) are the fields of
 :class:`bonft.objectives.validation.LossOptions`, written once:
