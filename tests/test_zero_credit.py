@@ -53,3 +53,13 @@ def test_a_resume_inside_the_window_gives_no_verdict(recwarn):
     watch = ZeroCreditWatch(30, "pass_at_k", 0.5)
     assert watch.update(2, {"pool/with_signal": 0.0, "reward": 0.0}) is None  # steps 0 and 1 ran before the resume
     assert not recwarn.list
+
+
+def test_plain_sft_has_no_sample_credit_by_design_and_is_not_watched(recwarn):
+    # best_of_k_sft at k = 1: log pi_bon(y*) = log pi(y*) + log sum_{j<1} F^j F_<^{0-j} = log pi(y*) + log 1
+    # (Chow et al. 2024), so its sample credit is zero on every step while the references' NLL trains.
+    watch = ZeroCreditWatch(10, "best_of_k_sft", 0.5, k=1)
+    assert watch.window == 0
+    assert feed(watch, [{"pool/with_signal": 0.0, "reward": 0.3}] * 10) == [None] * 10 and not recwarn.list
+    with pytest.warns(ZeroCreditWarning):  # BoN-SFT at k = 8 with all-equal pools is still a run without signal
+        feed(ZeroCreditWatch(10, "best_of_k_sft", 0.5, k=8), [{"pool/with_signal": 0.0, "reward": 0.3}])

@@ -116,7 +116,7 @@ def _train(run: Run, resume: bool, progress: bool, owns_group: bool) -> dict:
     run.model = wrap_model(run.model, run.ctx)  # several ranks: DDP (copies rank 0's weights to all)
     bar = tqdm(total=cfg.total_steps, initial=start, desc=cfg.name, disable=not (progress and run.is_main), dynamic_ncols=True)
     s = start  # optimizer steps completed = the weights' step label
-    watch = ZeroCreditWatch(cfg.rl_steps, cfg.objective, cfg.correct_threshold)  # warns once if RL starts with no signal
+    watch = ZeroCreditWatch(cfg.rl_steps, cfg.objective, cfg.correct_threshold, k=cfg.k)  # warns once if RL starts with no signal
     try:
         if start == 0 and _eval_due(cfg, 0):
             _evaluate(run, 0, progress)

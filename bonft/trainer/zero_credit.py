@@ -12,6 +12,9 @@ with the count and the likely cause, read from the steps' metrics:
   ``correct_threshold``: no sample counts as correct;
 * otherwise every pool was all-equal (e.g. every sample rewarded alike), so
   leave-one-out credit is zero.
+
+``best_of_k_sft`` at k = 1 (plain SFT) is never watched: its sample credit is zero by design
+(log of a sum with one term), and its loss is the references' NLL.
 """
 from __future__ import annotations
 
@@ -26,11 +29,13 @@ class ZeroCreditWarning(UserWarning):
 class ZeroCreditWatch:
     """Feed it each RL step's metrics (:meth:`update`); it warns once if the first 10% all had zero credit.
 
-    rl_steps: RL steps of the run; objective: its name; correct_threshold: the config key.
+    rl_steps: RL steps of the run; objective: its name; correct_threshold: the config key; k: the run's k
+    (``best_of_k_sft`` at k = 1 has no sample credit by design: no window, never a warning).
     """
 
-    def __init__(self, rl_steps: int, objective: str, correct_threshold: float) -> None:
-        self.window = max(1, math.ceil(rl_steps / 10)) if rl_steps > 0 else 0
+    def __init__(self, rl_steps: int, objective: str, correct_threshold: float, *, k: int | None = None) -> None:
+        by_design = objective == "best_of_k_sft" and k == 1
+        self.window = max(1, math.ceil(rl_steps / 10)) if rl_steps > 0 and not by_design else 0
         self.rl_steps, self.objective, self.threshold = rl_steps, objective, correct_threshold
         self.seen = 0
         self.silent = True
