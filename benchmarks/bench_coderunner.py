@@ -69,31 +69,36 @@ def _stat(pid: int) -> list[str]:
         return []
 
 
-def _tree(pids: list[int]) -> tuple[float, int]:
-    """(CPU seconds, minor page faults) of the workers with the children they reaped, and of their live
-    children (the supervisors): proc(5) /proc/PID/stat fields 10-11 (minflt, cminflt) and 14-17."""
-    cpu = faults = 0
+def _tree(pids: list[int]) -> tuple[list[float], int]:
+    """([CPU seconds of the workers themselves (the forkers), of the children they reaped (the tests'
+    processes, inits and candidates), of their live children (the supervisors)], minor page faults of
+    all three): proc(5) /proc/PID/stat fields 10-11 (minflt, cminflt) and 14-17."""
+    cpu, faults = [0, 0, 0], 0
     for pid in pids:
         f = _stat(pid)
         if f:
-            cpu += sum(int(x) for x in f[11:15])
+            cpu[0] += int(f[11]) + int(f[12])
+            cpu[1] += int(f[13]) + int(f[14])
             faults += int(f[7]) + int(f[8])
         for kid in _children(pid):
             f = _stat(kid)
             if f:
-                cpu += int(f[11]) + int(f[12])
+                cpu[2] += int(f[11]) + int(f[12])
                 faults += int(f[7])
-    return cpu / os.sysconf("SC_CLK_TCK"), faults
+    return [c / os.sysconf("SC_CLK_TCK") for c in cpu], faults
 
 
-def measure(fn, n: int, pids=lambda: []) -> tuple[float, float, float, list]:
-    """(candidates/s, CPU ms per candidate, page faults per candidate of ``pids()``'s trees, results)."""
+def measure(fn, n: int, pids=lambda: []) -> tuple[float, float, float, list, list[float]]:
+    """(candidates/s, CPU ms per candidate, page faults per candidate of ``pids()``'s trees, results,
+    CPU ms per candidate of [the forkers, their reaped children, the supervisors, this process])."""
     cpu0, faults0 = _tree(pids())
     c0, t0 = _cpu(), time.perf_counter()
     out = fn(n)
     dt = time.perf_counter() - t0
+    c1 = _cpu()
     cpu1, faults1 = _tree(pids())
-    return n / dt, 1000 * (_cpu() - c0 + cpu1 - cpu0) / n, (faults1 - faults0) / n, out
+    parts = [1000 * (b - a) / n for a, b in zip(cpu0, cpu1)] + [1000 * (c1 - c0) / n]
+    return n / dt, sum(parts), (faults1 - faults0) / n, out, parts
 
 
 def run_once(args, W: int) -> dict:
@@ -111,7 +116,7 @@ def run_once(args, W: int) -> dict:
     single_h.run_code([TRIVIAL])
     pooled_h.run_code([TRIVIAL] * W)
 
-    rows = []
+    rows, split = [], {}
     for kind, job, n_s, n_p, rs, rp in (("trivial", [TRIVIAL], n_single, n_pool, single, pooled),
                                         ("typical", [TYPICAL], n_single, n_pool, single, pooled),
                                         ("hostile", HOSTILE, n_hostile, n_hostile, single_h, pooled_h)):
@@ -123,12 +128,13 @@ def run_once(args, W: int) -> dict:
                 assert not any(r.passed for r in res), {(r.status, r.reason) for r in res}
             return res
 
-        s_rate, s_cpu, _, _ = measure(lambda n, rs=rs: batch(n, rs), n_s)
-        p_rate, p_cpu, p_flt, res = measure(lambda n, rp=rp: batch(n, rp), n_p, rp.sandbox_pool().worker_pids)
+        s_rate, s_cpu, _, _, _ = measure(lambda n, rs=rs: batch(n, rs), n_s)
+        p_rate, p_cpu, p_flt, res, parts = measure(lambda n, rp=rp: batch(n, rp), n_p, rp.sandbox_pool().worker_pids)
         rows.append((kind, s_rate, s_cpu, p_rate, p_cpu, p_flt))
+        split[kind] = parts
         if kind == "hostile":
             print("  hostile verdicts (pool):", sorted({(r.status, r.reason) for r in res}))
-    f_rate, f_cpu, f_flt, _ = measure(pool.floor, n_pool, pool.worker_pids)
+    f_rate, f_cpu, f_flt, _, split["floor"] = measure(pool.floor, n_pool, pool.worker_pids)
     load1 = os.getloadavg()
     layers = pool.layers
     for r in (pooled, pooled_h):
@@ -142,12 +148,17 @@ def run_once(args, W: int) -> dict:
               f"{p_flt:>7.0f} {p_rate / s_rate:>10.1f}x")
     print(f"{'floor':<10} {'':>17} {'':>7} {f_rate:>9.1f} {f_cpu:>7.2f} {1000 / f_cpu:>7.0f} {f_flt:>7.0f}"
           f"   (one isolated fork, doing nothing)")
+    print("\nCPU ms per candidate, pool: forkers | their reaped children (tests' process, init, candidate; the "
+          "floor: its one process) | supervisors | this process")
+    for kind, parts in split.items():
+        print(f"  {kind:<8} " + " | ".join(f"{x:5.2f}" for x in parts))
     trivial = rows[0]
     ratio, cpu_ratio = f_rate / trivial[3], trivial[4] / f_cpu
-    print(f"\npool trivial vs floor: {ratio:.2f}x the floor's time per candidate, {cpu_ratio:.2f}x its CPU per "
-          f"candidate (goal <= 2x: {'met' if ratio <= 2 else 'not met'}); {trivial[3]:.0f} trivial/s (goal >= "
-          f"250/s on 2 cores: {'met' if trivial[3] >= 250 else 'not met'}; {2000 / trivial[4]:.0f}/s on 2 idle cores "
-          f"by its CPU)")
+    print(f"\nGOAL pool >= 250 trivial candidates/s on 2 cores: {trivial[3]:.0f}/s -> "
+          f"{'met' if trivial[3] >= 250 else 'NOT MET'} ({2000 / trivial[4]:.0f}/s on 2 idle cores by its CPU, "
+          f"{trivial[4]:.2f} ms per candidate)")
+    print(f"GOAL pool within 2x the floor's time per candidate: {ratio:.2f}x -> {'met' if ratio <= 2 else 'NOT MET'} "
+          f"(CPU per candidate {cpu_ratio:.2f}x the floor's)")
     print(f"layers: {', '.join(layers)}")
     return {"load": load0[0], "rows": rows, "floor": (f_rate, f_cpu, f_flt), "ratio": ratio, "cpu_ratio": cpu_ratio}
 

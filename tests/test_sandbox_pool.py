@@ -282,6 +282,38 @@ def test_a_candidate_is_three_processes_and_the_supervisor_forks_none():
         assert _children(worker) == [sup] and _children(sup) == [] and pool.restarts == 0
 
 
+# prints the environment as Python and as the C library hold it, with the working directory's path
+# (HOME and TMPDIR name it) written <cwd>; the tests' process prints its own the same way
+SHOW_ENV = """import ctypes, os
+def show(tag):
+    cwd = os.getcwd()
+    env = ctypes.POINTER(ctypes.c_char_p).in_dll(ctypes.CDLL(None), "environ")
+    c, i = [], 0
+    while env[i]:
+        c.append(env[i].decode())
+        i += 1
+    print(tag, [(k, '<cwd>' if v == cwd else v) for k, v in os.environ.items()],
+          [x.replace(cwd, '<cwd>') for x in c])
+"""
+
+
+def test_the_environment_is_a_fresh_interpreters():
+    """The candidate's and the tests' environment, as ``os.environ`` (names, values, order) and as the C
+    library's ``environ`` array (environ(7)), are in the pool what a fresh interpreter started by
+    execve(2) with the runner's environment holds in a one-at-a-time run: the pool's forker keeps that
+    environment but for the variables naming the working directory, which each child sets."""
+    job = (SHOW_ENV + "show('solution')\ndef f():\n    return 1", SHOW_ENV + "show('tests')\nassert f() == 1")
+    opts = dict(wall_time=4.0, memory_mb=256, workers=1)
+    single = CodeRunner({}, **opts).run_code([job])[0]
+    with CodeRunner({}, pool=True, **opts) as runner:
+        pooled = runner.run_code([job, job])
+    assert single.status == "pass", (single.reason, single.stderr[-300:])
+    lines = single.stdout.splitlines()
+    assert [line.split()[0] for line in lines] == ["solution", "tests"]
+    assert "('HOME', '<cwd>')" in lines[0] and "'TMPDIR=<cwd>'" in lines[0] and "('PATH', " in lines[1]
+    assert [(r.status, r.stdout) for r in pooled] == [("pass", single.stdout)] * 2
+
+
 def test_a_supervisor_that_dies_between_batches_is_replaced_before_the_next():
     """SIGKILL to an idle worker's supervisor: the next batch runs every candidate on a fresh worker
     (none is lost or given a runner verdict) and the pool counts one restart."""

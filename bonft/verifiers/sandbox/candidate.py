@@ -33,7 +33,15 @@ import traceback
 try:
     wire_send  # noqa: B018 - defined by the wire.py text prepended to this one
 except NameError:  # pragma: no cover - imported directly for inspection
-    from bonft.verifiers.sandbox.wire import WireClosed, WireError, wire_decode, wire_encode, wire_recv, wire_send
+    from bonft.verifiers.sandbox.wire import (
+        WireClosed,
+        WireError,
+        wire_decode,
+        wire_encode,
+        wire_read_all,
+        wire_recv,
+        wire_send,
+    )
 
 _WRITE_FLAGS = os.O_WRONLY | os.O_RDWR | os.O_CREAT | os.O_TRUNC | os.O_APPEND
 _SPAWN = {"os.fork", "os.forkpty", "os.posix_spawn", "os.spawn", "os.exec", "os.system", "subprocess.Popen"}
@@ -267,8 +275,7 @@ def _serve(g, req_fd, resp_fd, st, cap, top):
 def _main(cfg_fd, req_fd, resp_fd):
     import json
 
-    with os.fdopen(cfg_fd, "rb") as f:
-        cfg = json.loads(f.read().decode("utf-8"))
+    cfg = json.loads(wire_read_all(cfg_fd).decode("utf-8"))
     if sys.path and sys.path[0] in ("", os.getcwd()):
         del sys.path[0]  # the working directory is not an import location
     st = {"spawn_left": int(cfg["max_processes"]) - 1, "max_processes": int(cfg["max_processes"]),

@@ -30,7 +30,15 @@ import traceback
 try:
     wire_send  # noqa: B018 - defined by the wire.py text prepended to this one
 except NameError:  # pragma: no cover - imported directly for inspection
-    from bonft.verifiers.sandbox.wire import WireClosed, WireError, wire_decode, wire_encode, wire_recv, wire_send
+    from bonft.verifiers.sandbox.wire import (
+        WireClosed,
+        WireError,
+        wire_decode,
+        wire_encode,
+        wire_read_all,
+        wire_recv,
+        wire_send,
+    )
 
 _NONPASS = ("fail", "crashed", "limit-exceeded", "refused")
 _MISSING = object()
@@ -256,8 +264,7 @@ def _main(cfg_fd, verdict_fd, req_fd, resp_fd):
     import json
 
     global _conn
-    with os.fdopen(cfg_fd, "rb") as f:
-        cfg = json.loads(f.read().decode("utf-8"))
+    cfg = json.loads(wire_read_all(cfg_fd).decode("utf-8"))
     if cfg.get("same_uid"):  # the candidate runs as our uid: shut it out, then let the runner start it
         try:  # PR_SET_DUMPABLE = 4: no ptrace or /proc/PID/mem without CAP_SYS_PTRACE
             import ctypes

@@ -11,7 +11,6 @@ import json
 import math
 import os
 import select
-import selectors
 import signal
 import time
 
@@ -55,11 +54,12 @@ def collect(judge, cand, ver_r: int, *, deadline: float, cap: int, frame_cap: in
     streams = {judge.stdout.fileno(): "j_out", judge.stderr.fileno(): "j_err",
                cand.stdout.fileno(): "c_out", cand.stderr.fileno(): "c_err", ver_r: "verdict"}
     bufs = {name: bytearray() for name in streams.values()}
-    sel = selectors.DefaultSelector()
-    for fd, name in streams.items():
-        sel.register(fd, selectors.EVENT_READ, name)
+    poller = select.poll()  # poll(2): no descriptor of its own and no system call per registration
+    for fd in streams:
+        poller.register(fd, select.POLLIN)
+    live = set(streams)
     timed_out, over, verdict, done_at, cand_exit, called = False, None, None, None, None, False
-    while len(sel.get_map()):
+    while live:
         now = time.monotonic()
         if now >= deadline:
             timed_out = verdict is None
@@ -71,25 +71,26 @@ def collect(judge, cand, ver_r: int, *, deadline: float, cap: int, frame_cap: in
         if verdict is None and cand_exit is not None and now - cand_exit > 0.2 and not called:
             on_candidate_exit()
             called = True
-        for key, _ in sel.select(timeout=min(0.05, deadline - now)):
-            chunk = os.read(key.fd, 65536)
+        for fd, _ in poller.poll(math.ceil(min(0.05, deadline - now) * 1000)):
+            name = streams[fd]
+            chunk = os.read(fd, 65536)
             if not chunk:
-                sel.unregister(key.fd)
-                if key.data == "verdict" and done_at is None:
+                poller.unregister(fd)
+                live.discard(fd)
+                if name == "verdict" and done_at is None:
                     done_at = time.monotonic()
                 continue
-            buf = bufs[key.data]
-            room = (frame_cap if key.data == "verdict" else cap) - len(buf)
+            buf = bufs[name]
+            room = (frame_cap if name == "verdict" else cap) - len(buf)
             buf += chunk[:max(room, 0)]
-            if len(chunk) > room and key.data != "verdict":
-                over = f"{'stdout' if key.data.endswith('out') else 'stderr'} over max_output_bytes={cap}"
-            if key.data == "verdict" and verdict is None:
+            if len(chunk) > room and name != "verdict":
+                over = f"{'stdout' if name.endswith('out') else 'stderr'} over max_output_bytes={cap}"
+            if name == "verdict" and verdict is None:
                 verdict = frame(bytes(buf))
                 if verdict is not None:
                     done_at = time.monotonic()
         if over:
             break
-    sel.close()
     for p in (judge, cand):
         p.stdout.close()
         p.stderr.close()

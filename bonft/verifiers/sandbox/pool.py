@@ -31,7 +31,7 @@ from __future__ import annotations
 import json
 import os
 import secrets
-import selectors
+import select
 import signal
 import subprocess
 import tempfile
@@ -152,8 +152,6 @@ class SandboxPool:
 
     def _read_frame(self, w: _Worker, deadline: float) -> dict | None:
         """Blocking read of one frame during start-up (None at EOF or the deadline)."""
-        import select
-
         while time.monotonic() < deadline:
             msg, rest = _split(w.inbuf)
             if msg is not None:
@@ -242,25 +240,21 @@ class SandboxPool:
                 raise RuntimeError("the sandbox pool is closed")
             results: list[dict | None] = [None] * len(items)
             todo = deque(range(len(items)))
-            sel = selectors.DefaultSelector()
-            try:
-                while todo or any(w.job is not None for w in self._workers):
-                    for w in self._workers:
-                        if w.job is None and todo and w.proc is not None:
-                            i = todo.popleft()
-                            mode, payload = items[i]
-                            self._seq += 1
-                            w.seq, w.job, w.since = self._seq, i, time.monotonic()
-                            head = b"run %d %d\n" % (w.seq, len(payload)) if mode == "run" else b"bare %d\n" % w.seq
-                            w.outbuf = head + payload
-                            self._push(w)
-                    if not any(w.job is not None for w in self._workers):
-                        for i in todo:  # no worker left to run them
-                            results[i] = _infra("runner: no sandbox pool worker could be started")
-                        break
-                    self._wait(sel, results, todo)
-            finally:
-                sel.close()
+            while todo or any(w.job is not None for w in self._workers):
+                for w in self._workers:
+                    if w.job is None and todo and w.proc is not None:
+                        i = todo.popleft()
+                        mode, payload = items[i]
+                        self._seq += 1
+                        w.seq, w.job, w.since = self._seq, i, time.monotonic()
+                        head = b"run %d %d\n" % (w.seq, len(payload)) if mode == "run" else b"bare %d\n" % w.seq
+                        w.outbuf = head + payload
+                        self._push(w)
+                if not any(w.job is not None for w in self._workers):
+                    for i in todo:  # no worker left to run them
+                        results[i] = _infra("runner: no sandbox pool worker could be started")
+                    break
+                self._wait(results, todo)
             return results  # type: ignore[return-value]
 
     def _push(self, w: _Worker) -> None:
@@ -274,30 +268,29 @@ class SandboxPool:
                 return
             w.outbuf = w.outbuf[n:]
 
-    def _wait(self, sel: selectors.BaseSelector, results: list, todo: deque) -> None:
+    def _wait(self, results: list, todo: deque) -> None:
         busy = [w for w in self._workers if w.job is not None]
+        poller, by_fd = select.poll(), {}  # poll(2): registering costs no system call
         for w in busy:
-            sel.register(w.res, selectors.EVENT_READ, w)
+            poller.register(w.res, select.POLLIN)
+            by_fd[w.res] = (w, False)
             if w.outbuf:
-                sel.register(w.ctl, selectors.EVENT_WRITE, w)
-        try:
-            ready = sel.select(timeout=1.0)
-        finally:
-            for key in list(sel.get_map().values()):
-                sel.unregister(key.fileobj)
+                poller.register(w.ctl, select.POLLOUT)
+                by_fd[w.ctl] = (w, True)
+        ready = poller.poll(1000)
         late = time.monotonic() - self._patience
         for w in busy:  # a job ends by itself soon after wall_time: a worker whose job does not is stuck
             if w.job is not None and w.since < late and w.proc is not None:
                 self._died(w, results, f"no result {self._patience:g} s after the job was sent")
-        for key, mask in ready:
-            if key.data.job is None or key.data.proc is None:
+        for fd, _ in ready:
+            w, writing = by_fd[fd]
+            if w.job is None or w.proc is None:
                 continue
-            w = key.data
-            if mask & selectors.EVENT_WRITE:
+            if writing:
                 self._push(w)
                 continue
             try:
-                chunk = os.read(w.res, 1 << 20)
+                chunk = os.read(w.res, 1 << 16)
             except BlockingIOError:
                 continue
             if not chunk:

@@ -64,6 +64,22 @@ def wire_send(fd, message):
         view = view[n:]
 
 
+def wire_read_all(fd):
+    """Everything written to the pipe ``fd`` until its writer closes it; closes ``fd`` (plain reads: a
+    file object would build a buffered reader, pages a forked child must copy)."""
+    import os
+
+    parts = []
+    try:
+        while True:
+            chunk = os.read(fd, 1 << 16)
+            if not chunk:
+                return b"".join(parts)
+            parts.append(chunk)
+    finally:
+        os.close(fd)
+
+
 def _read_exact(fd, n):
     import os
 

@@ -189,7 +189,23 @@ class Worker:
         self.pid = os.getpid()  # the worker's: its directories carry it, so the pool can sweep them if it dies
         self.own_pidns = os.open("/proc/self/ns/pid", os.O_RDONLY | os.O_CLOEXEC) if self.pidns else -1
         self.libc.setns.argtypes = [ctypes.c_int, ctypes.c_int]
+        for name in ("prctl", "unshare", "mount", "setns"):
+            getattr(self.libc, name)  # looked up here, once: a child that first looks one up builds its
+            # function object (about 80 pages copied in every child)
         self._plan()
+        self.env_vary = self._base_env(self.tmp)
+
+    @staticmethod
+    def _base_env(where):
+        """Make the forker's environment a job's (:func:`oslayer.env`) but for the variables naming the
+        working directory, and return those: a child then sets only them, and its ``os.environ`` (keys,
+        values, order) and C environment equal a fresh interpreter's started with ``oslayer.env(workdir)``.
+        Rebuilding the whole environment in every child copied about 70 more pages per process."""
+        one, other = oslayer.env(where), oslayer.env(where + "/x")
+        if list(os.environ.items()) != list(one.items()):  # the pool starts the worker with oslayer.env(tmp)
+            os.environ.clear()
+            os.environ.update(one)
+        return tuple(k for k in one if one[k] != other[k])
 
     def _plan(self):
         self.dirs, self.opts, self.filt = oslayer.layer_plan(
@@ -217,8 +233,9 @@ class Worker:
         os.closerange(low, 1 << 16)
 
     def _run_boot(self, main, fds, workdir):
-        os.environ.clear()
-        os.environ.update(oslayer.env(workdir))
+        env = oslayer.env(workdir)
+        for key in self.env_vary:  # the rest is the forker's own, set once (_base_env): fewer pages copied
+            os.environ[key] = env[key]
         if "tempfile" in sys.modules:
             sys.modules["tempfile"].tempdir = None  # read from TMPDIR again, as a fresh interpreter would
         sys.modules["__main__"] = main
@@ -297,7 +314,7 @@ class Worker:
             elif pid_layer:
                 child = os.fork()
                 if child != 0:
-                    oslayer._ns_init(child, status_w)
+                    _ns_init(child, status_w)
                 os.close(status_r)
                 os.close(status_w)
                 self.libc.prctl(oslayer.PR_SET_PDEATHSIG, signal.SIGKILL, 0, 0, 0)
@@ -487,6 +504,27 @@ class Worker:
                 return done
 
 
+def _ns_init(child, status_w):
+    """PID 1 of a job's PID namespace, as :func:`oslayer._ns_init` (reap whatever ends; when ``child``, the
+    candidate's process, ends, send its wait status on ``status_w`` and exit: the kernel then kills the
+    namespace's other processes), but it only closes descriptors: the forker's 0 and 1 are /dev/null
+    already and 2 is its own stderr (the pool starts it so), and pointing them at /dev/null again copied
+    pages in a process every candidate costs. Never returns."""
+    try:
+        os.closerange(3, status_w)
+        os.closerange(status_w + 1, 1 << 16)
+        while True:
+            try:
+                pid, status = os.wait()
+            except ChildProcessError:
+                os._exit(0)
+            if pid == child:
+                os.write(status_w, struct.pack("=i", status))
+                os._exit(0)
+    finally:
+        os._exit(255)
+
+
 def _kill(pid, sig):
     try:
         os.kill(pid, sig)
@@ -526,13 +564,31 @@ def _recv(sock):
     return msg, list(fds)
 
 
+class _Pipe:
+    """The read end of an output pipe, as ``outcome.collect`` uses a file: ``fileno``, ``close``, ``closed``
+    (a file object would cost an ``fstat`` and a buffered reader per pipe, four per job)."""
+
+    __slots__ = ("fd", "closed")
+
+    def __init__(self, fd):
+        self.fd, self.closed = fd, False
+
+    def fileno(self):
+        return self.fd
+
+    def close(self):
+        if not self.closed:
+            self.closed = True
+            os.close(self.fd)
+
+
 class _Remote:
     """One of the job's processes as the supervisor sees it: its output pipes and the exit status the
     forker reports (``poll``, ``wait`` and ``returncode`` as ``subprocess.Popen``'s)."""
 
     def __init__(self, sup, out_r, err_r):
         self.sup, self.returncode = sup, None
-        self.stdout, self.stderr = os.fdopen(out_r, "rb", buffering=0), os.fdopen(err_r, "rb", buffering=0)
+        self.stdout, self.stderr = _Pipe(out_r), _Pipe(err_r)
 
     def poll(self):
         if self.returncode is None:
@@ -559,7 +615,7 @@ class Supervisor:
         self.seq, self.procs, self.ended, self.status_r = None, {}, None, None
 
     def _fill(self):
-        chunk = os.read(_CTL, 1 << 20)
+        chunk = os.read(_CTL, 1 << 16)  # not 1 MiB: a buffer that large is an mmap and munmap per read
         if not chunk:
             raise EOFError
         self.buf += chunk
