@@ -35,7 +35,7 @@ def tiny(tmp_path, **kw):
 def test_the_task_brings_its_demo_settings():
     dc = DemoConfig.for_task("workshop")
     # the workshop's budget (fixed before any of its runs was compared) and its longer responses
-    assert (dc.max_new_tokens, dc.rl_steps, dc.prompts_per_step, dc.n, dc.k) == (20, 30, 32, 16, 8)
+    assert (dc.max_new_tokens, dc.rl_steps, dc.prompts_per_step, dc.n, dc.k, dc.lr) == (20, 30, 32, 16, 8, 0.02)
     assert dc.objectives == ("reinforce", "pass_at_k", "best_of_k", "placebo") and dc.task == "workshop"
     # a knob given by the caller wins over the task's setting; the refunds demo keeps DemoConfig's defaults
     assert DemoConfig.for_task("workshop", rl_steps=3).rl_steps == 3
