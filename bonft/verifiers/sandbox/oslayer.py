@@ -124,16 +124,22 @@ def _ns_init(child: int, status_w: int) -> None:
     wait status on ``status_w`` and exit, and the kernel kills the namespace's other processes. Never returns."""
     try:
         _only_fds(status_w)
-        while True:
-            try:
-                pid, status = os.wait()
-            except ChildProcessError:
-                os._exit(0)
-            if pid == child:
-                os.write(status_w, struct.pack("=i", status))
-                os._exit(0)
+        reap_until(child, status_w)
     finally:
         os._exit(255)
+
+
+def reap_until(child: int, status_w: int) -> None:
+    """The loop of a PID namespace's init: reap whatever ends; when ``child`` ends, write its wait status
+    to ``status_w`` and exit (0; also when no child is left). Never returns."""
+    while True:
+        try:
+            pid, status = os.wait()
+        except ChildProcessError:
+            os._exit(0)
+        if pid == child:
+            os.write(status_w, struct.pack("=i", status))
+            os._exit(0)
 
 
 def _wait_and_mirror(init: int, status_r: int, libc) -> None:

@@ -513,14 +513,7 @@ def _ns_init(child, status_w):
     try:
         os.closerange(3, status_w)
         os.closerange(status_w + 1, 1 << 16)
-        while True:
-            try:
-                pid, status = os.wait()
-            except ChildProcessError:
-                os._exit(0)
-            if pid == child:
-                os.write(status_w, struct.pack("=i", status))
-                os._exit(0)
+        oslayer.reap_until(child, status_w)
     finally:
         os._exit(255)
 
