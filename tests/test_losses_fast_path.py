@@ -1,15 +1,16 @@
 """The losses' fast masking (a multiply, with ``where`` only after a non-finite result) against ``where`` masking.
 
-Reference: the masking the losses used before the fast path, restated here on its own in float64:
-padding tokens are taken out with ``torch.where(mask != 0, lp, 0)`` before the sum over tokens, so
-whatever the padding holds (NaN, +-inf) adds exactly 0, and the gradient of
-``-(1/B) sum_b sum_i w_bi seq_bi`` w.r.t. a token log-prob is ``-w_bi/B`` under the mask and 0 on
-padding (the score-function loss of Williams 1992; the k3 KL term of Schulman's 2020 note
-"Approximating KL divergence", from memory). The credits are the public credit functions, which
-the fast path does not change. Property tests (hypothesis, derandomized in conftest.py) draw
-shapes, log-prob dtypes, mask dtypes and values (any non-zero entry marks a token), where NaN and
-infinities sit in the padding, every named loss, token- and sequence-level inputs, both token
-reductions, the anchor KL term and ``return_info``.
+Reference: the masking rule written out on its own in float64: padding tokens (mask == 0) are
+taken out with ``torch.where(mask != 0, lp, 0)`` before the sum over tokens, so whatever the
+padding holds (NaN, +-inf) adds exactly 0; a floating mask then multiplies (its entries are token
+weights, as in a hand-written ``(lp * mask).sum(-1)``), a bool or integer one counts each non-zero
+entry once. The gradient of ``-(1/B) sum_b sum_i w_bi seq_bi`` w.r.t. a token log-prob is
+``-w_bi/B`` times the token's weight, 0 on padding (the score-function loss of Williams 1992; the
+k3 KL term of Schulman's 2020 note "Approximating KL divergence", from memory, each token's k3
+times its weight). The credits are the public credit functions, which the fast path does not
+change. Property tests (hypothesis, derandomized in conftest.py) draw shapes, log-prob dtypes, mask
+dtypes and values, where NaN and infinities sit in the padding, every named loss, token- and
+sequence-level inputs, both token reductions, the anchor KL term and ``return_info``.
 """
 import numpy as np
 import pytest
@@ -40,9 +41,14 @@ LP_DTYPES = (torch.float32, torch.float64, torch.bfloat16)  # bfloat16 is widene
 PADDING = ("finite", "nan", "-inf", "+inf", "mixed")
 
 
+def token_weight(mask):
+    """The reference weight of each token (float64): a floating mask as it is, else 1 where non-zero."""
+    return mask.double() if mask.dtype.is_floating_point else (mask != 0).double()
+
+
 def where_seq(lp, mask):
-    """The reference masked sum (float64): padding adds exactly 0 whatever it holds."""
-    return torch.where(mask != 0, lp.double(), 0.0).sum(-1)
+    """The reference masked sum (float64): padding adds exactly 0 whatever it holds, tokens count by weight."""
+    return (torch.where(mask != 0, lp.double(), 0.0) * token_weight(mask)).sum(-1)
 
 
 def fill_padding(lp, mask, how, g):
@@ -87,7 +93,7 @@ def make_batch(c):
     on = on.gather(-1, perm)
     if c["mask_dtype"] == torch.bool:
         mask = on
-    elif c["mask_dtype"].is_floating_point:  # any non-zero entry marks a token
+    elif c["mask_dtype"].is_floating_point:  # token weights, fractional and negative included
         level = torch.tensor([0.5, 1.0, 2.0, -1.0], dtype=c["mask_dtype"])[torch.randint(0, 4, (B, n, T), generator=g)]
         mask = torch.where(on, level, torch.tensor([0.0, -0.0])[torch.randint(0, 2, (B, n, T), generator=g)])
         mask = mask.to(c["mask_dtype"])  # -0.0 marks padding like 0.0
@@ -154,6 +160,8 @@ def reference(c, lp, mask, anchor, scores, rewards, ref_lp, ref_mask, ref_scores
         if c["tokens"]:
             d = torch.where(mask != 0, d, 0.0)
         k3 = torch.expm1(d) - d
+        if c["tokens"]:
+            k3 = k3 * token_weight(mask)
         kl_seq = k3.sum(-1) * scale if c["tokens"] else k3
         per_prompt = per_prompt + 0.3 * kl_seq.mean(-1)
         info["kl"] = float(k3.detach().sum()) / float((mask != 0).sum() if c["tokens"] else k3.numel())
@@ -235,7 +243,7 @@ def test_an_empty_row_with_credit_is_an_error_on_both_paths(padding):
 
 def test_a_response_of_certain_tokens_sums_to_zero_and_is_not_an_empty_row():
     # a row whose log-probs are all 0 (probability 1) sums to 0 like an empty one; the exact count clears it
-    lp = -torch.rand(2, 3, 4)
+    lp = -torch.rand(2, 3, 4, generator=torch.Generator().manual_seed(1))
     lp[0, 1] = 0.0
     mask = torch.ones(2, 3, 4)
     rewards = np.array([[1.0, 0, 0], [1.0, 0, 0]])
@@ -243,7 +251,8 @@ def test_a_response_of_certain_tokens_sums_to_zero_and_is_not_an_empty_row():
     loss = reinforce_loss(x, rewards, mask=mask)
     loss.backward()
     w = torch.as_tensor(reinforce_credit(rewards))
-    assert float(loss.detach()) == pytest.approx(float(-(w * lp.double().sum(-1)).sum(-1).mean()), rel=1e-6)
+    # float32 sums of terms below 1 against float64 ones: within a few float32 roundings
+    assert float(loss.detach()) == pytest.approx(float(-(w * lp.double().sum(-1)).sum(-1).mean()), rel=1e-6, abs=1e-6)
     torch.testing.assert_close(x.grad, (-w / 2)[..., None].float().expand(2, 3, 4))
 
 
@@ -302,7 +311,7 @@ def test_the_backward_leaves_the_inputs_alone_and_each_call_gets_its_own_gradien
     mask[..., 0] = True
     mask = mask.to(mask_dtype)
     if mask_dtype.is_floating_point:
-        mask = mask * 2.5  # any non-zero entry marks a token: weights 1, not 2.5
+        mask = mask * 2.5  # a floating mask weights its tokens: 2.5 each
     mask_before, lp_before = mask.clone(), lp.clone()
     credit = np.random.default_rng(11).normal(size=(4, 3))
     grads = []
@@ -312,8 +321,8 @@ def test_the_backward_leaves_the_inputs_alone_and_each_call_gets_its_own_gradien
         grads.append(x.grad)
     assert torch.equal(mask, mask_before) and torch.equal(lp, lp_before)
     for scale, got in zip((1.0, 3.0), grads):
-        # d/dlp of -sum_b sum_i w_bi sum_t [mask != 0] lp_bit = -w_bi on the tokens, 0 on padding
-        want = (-scale * torch.as_tensor(credit)[..., None] * (mask_before != 0)).expand(4, 3, 5)
+        # d/dlp of -sum_b sum_i w_bi sum_t weight_bit lp_bit = -w_bi weight_bit on the tokens, 0 on padding
+        want = (-scale * torch.as_tensor(credit)[..., None] * token_weight(mask_before)).expand(4, 3, 5)
         torch.testing.assert_close(got, want, rtol=1e-15, atol=0)
     assert grads[0].data_ptr() != grads[1].data_ptr()
 

@@ -12,12 +12,17 @@ credit into :func:`policy_gradient_loss` the same way.
 Log-probabilities come either per sequence, ``logprobs: (B, n)``, or per token,
 ``logprobs: (B, n, T)`` with an optional ``mask: (B, n, T)`` (True/1 = response
 token, False/0 = padding). Padding tokens change nothing, even if they hold NaN
-or -inf. Any non-zero mask entry marks a token, whatever its dtype: a floating
-mask selects tokens, it does not weight them (0.5 or 2 count as 1; with
-``check_tokens=True`` a mask other than bool or 0/1 is a ``ValueError``). This
-costs one pass over the mask per call, which a loop multiplying by its float mask
-as given does not make. :func:`bonft.objectives.logprobs.token_logprobs` turns a
-causal LM's logits and labels into this layout.
+or -inf. A floating mask *multiplies* the token log-probs, as a hand-written
+``(lp * mask).sum(-1)`` does: its entries are token weights (0/1 is plain
+masking, 0.5 halves a token's term; the anchor KL weights each token's k3 the
+same way; sample reuse takes each response's ratio over its marked tokens,
+unweighted). A bool or integer mask selects: any non-zero entry is a token of
+weight 1. Token counts (``token_reduction="mean"``, ``masked_frac``) count the
+non-zero entries, whatever their weight. A NaN or infinite weight is a
+``ValueError`` naming the mask (looked for only once the result is non-finite);
+with ``check_tokens=True`` a mask other than bool or 0/1 is a ``ValueError``.
+:func:`bonft.objectives.logprobs.token_logprobs` turns a causal LM's logits and
+labels into this layout.
 
 The shared keywords (``**common``) are the fields of
 :class:`bonft.objectives.validation.LossOptions`, written once:
@@ -88,17 +93,20 @@ whose gradient the clip dropped, with ``clip_ratio``).
 
 Cost and checks: the pool checks are O(B n); credit is computed in float64
 numpy on the host (scores and rewards come from verifiers) and copied to the
-log-probs' device once. With a mask, padding is taken out by a multiply with
-the mask's 0/1 weights (one conversion of the mask; the backward reuses that
-tensor for the gradient), and one read of two numbers decides the rest: the
+log-probs' device once. With a mask, padding is taken out by a multiply: by a
+floating mask as given (the backward allocates ``mask * g``; the caller's
+tensor is never written), by 0/1 weights made from a bool or integer mask (one
+conversion; the backward reuses that tensor for the gradient); one read of two
+numbers decides the rest: the
 sum of the per-prompt loss (finite?) and how many masked sums are exactly 0.
 A response whose mask row is all zero but whose credit is not would add
 nothing, silently, so it is a ``ValueError``; only a zero sum sends the call
 to that O(B n T) row count. NaN or an infinity in the padding makes the
 multiply's result non-finite (``0 * nan`` is NaN), and only then is the loss
-computed again with ``torch.where`` (about 3-4x the cost of the fast call):
-padding may hold anything, at a price paid only when it holds a non-finite
-value. The read is free on the CPU (numpy looks at the tensors' memory) and
+computed again with ``torch.where`` (about 3-4x the cost of the fast call),
+selecting ``mask != 0`` and then multiplying by a floating mask, so the numbers
+are those of the fast call with finite padding: padding may hold anything, at a
+price paid only when it holds a non-finite value. The read is free on the CPU (numpy looks at the tensors' memory) and
 one sync on an accelerator. Sample reuse masks with ``where`` throughout and
 reads one more (the ratios must be finite). ``check_tokens=True`` adds the
 O(B n T) checks (a 0/1 mask, no empty response at all, finite log-probs under
@@ -191,7 +199,10 @@ def _policy_gradient_loss(logprobs, credit, opt: LossOptions):
         loss, info, _, _ = _policy_gradient(lp, w, None, opt, fast=False)
     elif opt.sampling_logprobs is not None:  # sample reuse reads its ratios anyway: the where path, checked first
         check_empty_rows("mask", mask, None if opt.check_tokens else w)
-        loss, info, _, _ = _policy_gradient(lp, w, _Mask(mask, lp.dtype), opt, fast=False)
+        m = _Mask(mask, lp.dtype)
+        loss, info, checked, _ = _policy_gradient(lp, w, m, opt, fast=False)
+        if m.multiplies and not bool(torch.isfinite(checked).all()):
+            m.check_finite_weights("mask")  # a non-finite weight: a ValueError, not a NaN loss
     else:
         m = _Mask(mask, lp.dtype)
         loss, info, checked, sums = _policy_gradient(lp, w, m, opt, fast=True)
@@ -199,7 +210,9 @@ def _policy_gradient_loss(logprobs, credit, opt: LossOptions):
             # an empty row (with credit, or any with check_tokens): a ValueError
             check_empty_rows("mask", mask, None if opt.check_tokens else w)
             if not bool(torch.isfinite(checked).all()):  # NaN or an infinity: where
-                loss, info, _, _ = _policy_gradient(lp, w, m, opt, fast=False)
+                loss, info, checked, _ = _policy_gradient(lp, w, m, opt, fast=False)
+                if m.multiplies and not bool(torch.isfinite(checked).all()):
+                    m.check_finite_weights("mask")  # a non-finite weight: a ValueError, not a NaN loss
     return (loss, info) if opt.return_info else loss
 
 
@@ -279,17 +292,22 @@ def _share_with_signal(w: Tensor) -> Tensor:
 
 
 class _Mask:
-    """A checked mask in the two forms the losses use, each made once and only when needed.
+    """A checked mask in the forms the losses use, each made once and only when needed.
 
-    ``weights``: 1/0 in the log-probs' dtype, for the fast path (a multiply); ``bool``: for the
-    ``where`` that keeps NaN or infinite padding out of the result, made only when the fast path
-    met a non-finite value, and for sample reuse at token level. An integer mask's weights are
-    made from its bool form, which is kept: a second backward through a retained graph makes the
-    weights again, and a bool mask (a quarter of the memory) converts 3x faster than a long one.
+    A floating mask *multiplies* the token log-probs: its entries are token weights (0/1 masks
+    give plain masking), and the fast path uses the caller's tensor as it is, no conversion (cast
+    once to the log-probs' dtype when the two differ). A bool or integer mask selects: any
+    non-zero entry is a token of weight 1. ``weights``: the multiplier of the fast path (the
+    float mask itself, or 1/0 in the log-probs' dtype); ``bool``: ``mask != 0``, for the ``where``
+    that keeps NaN or infinite padding out of the result, made only when the fast path met a
+    non-finite value, and for sample reuse. An integer mask's weights are made from its bool
+    form, which is kept: a second backward through a retained graph makes the weights again, and
+    a bool mask (a quarter of the memory) converts 3x faster than a long one.
     """
 
     def __init__(self, mask: Tensor, dtype: torch.dtype):
         self.mask, self.dtype = mask, dtype
+        self.multiplies = mask.dtype.is_floating_point
         self._weights: Tensor | None = None
         self._bool: Tensor | None = None
         self._count: Tensor | None = None
@@ -300,15 +318,22 @@ class _Mask:
             self._weights = self.make_weights()
         return self._weights
 
-    def make_weights(self, out: Tensor | None = None) -> Tensor:
-        """New 0/1 weights (in ``out`` if given) from the mask, or from its bool form when it holds integers."""
-        source = self.mask if self.mask.dtype.is_floating_point else self.bool
-        return token_weights(source, self.dtype, out=out)
+    def make_weights(self) -> Tensor:
+        """The multiplier: a floating mask as given (cast to ``dtype`` if it differs), else new 0/1 weights."""
+        if self.multiplies:
+            return self.mask if self.mask.dtype == self.dtype else self.mask.to(self.dtype)
+        return token_weights(self.bool if self.mask.dtype != torch.bool else self.mask, self.dtype)
+
+    @property
+    def owns_weights(self) -> bool:
+        """Are the weights a tensor made here (that a backward may overwrite), not the caller's mask?"""
+        return not (self.multiplies and self.mask.dtype == self.dtype)
 
     @property
     def bool(self) -> Tensor:
         if self._bool is None:
-            self._bool = self.mask.bool()  # non-zero = token (torch's cast: 3x faster than mask != 0 for long)
+            # non-zero = token (torch's cast: 3x faster than mask != 0 for long; NaN casts to True)
+            self._bool = self.mask.bool()
         return self._bool
 
     def take_weights(self) -> Tensor:
@@ -317,23 +342,41 @@ class _Mask:
         return w
 
     def count(self) -> Tensor:
-        """Response tokens as an int64 tensor, exact, made once.
+        """Response tokens (non-zero mask entries, whatever their weight) as an int64 tensor, exact, made once.
 
-        A sum of 0/1 values whose partial sums are all exact integers of the dtype never rounds, in any
-        order: the whole sum in the weights' dtype when the tensor is that small (one pass, no
-        copy), else each row's count (at most T) summed as int64.
+        A floating mask is counted as it is (``count_nonzero``, one read). 0/1 weights: a sum of 0/1
+        values whose partial sums are all exact integers of the dtype never rounds, in any order: the
+        whole sum in the weights' dtype when the tensor is that small (one pass, no copy), else each
+        row's count (at most T) summed as int64.
         """
         if self._count is None:
-            w = self.weights
-            if w.numel() <= 2 / torch.finfo(w.dtype).eps:  # every integer up to 2**24 (float32) is exact
-                self._count = w.sum().to(torch.int64)
+            if self.multiplies:
+                self._count = torch.count_nonzero(self.mask)
             else:
-                self._count = w.sum(-1).to(torch.int64).sum()
+                w = self.weights
+                if w.numel() <= 2 / torch.finfo(w.dtype).eps:  # every integer up to 2**24 (float32) is exact
+                    self._count = w.sum().to(torch.int64)
+                else:
+                    self._count = w.sum(-1).to(torch.int64).sum()
         return self._count
 
-    def apply(self, x: Tensor) -> Tensor:
-        """``x`` where the mask is set, exactly 0 elsewhere whatever ``x`` holds there (``where``)."""
+    def select(self, x: Tensor) -> Tensor:
+        """``x`` where the mask is non-zero, exactly 0 elsewhere whatever ``x`` holds there (``where``)."""
         return torch.where(self.bool, x, 0.0)
+
+    def apply(self, x: Tensor) -> Tensor:
+        """:meth:`select`, then times a floating mask's weights: the fast path's numbers, padding whatever it holds."""
+        y = torch.where(self.bool, x, 0.0)
+        return y * self.weights if self.multiplies else y
+
+    def check_finite_weights(self, name: str) -> None:
+        """A floating mask holds finite weights (read only after a non-finite result): else ``ValueError`` naming it."""
+        if not self.multiplies:
+            return
+        bad = ~torch.isfinite(self.mask)
+        if bool(bad.any()):
+            idx = tuple(int(i) for i in torch.nonzero(bad)[0].tolist())
+            raise ValueError(f"{name} must hold finite token weights, got {float(self.mask[idx])} at index {idx}")
 
 
 def _masked_sum(lp: Tensor, m: _Mask | None, *, fast: bool = False, spare: bool = False, keep_count: bool = True,
@@ -356,14 +399,27 @@ def _masked_sum(lp: Tensor, m: _Mask | None, *, fast: bool = False, spare: bool 
     return m.apply(lp).sum(-1)
 
 
+def _selected_sum(lp: Tensor, m: _Mask | None) -> Tensor:
+    """Token log-probs -> (B, n) sums over the tokens the mask marks, unweighted (``where``; sequence level as is).
+
+    The probability ratio of a response is over its tokens: a floating mask's weights scale the
+    loss terms, not the ratio.
+    """
+    if lp.ndim == 2:
+        return lp
+    return lp.sum(-1) if m is None else m.select(lp).sum(-1)
+
+
 class _WeightedSum(torch.autograd.Function):
     """``(lp * weights).sum(-1)`` with gradient ``g[..., None] * weights``, the weights made once per call.
 
     The same numbers as autograd gives for ``(lp * weights).sum(-1)`` (the same products and
-    sums). When nothing else in the graph needs the 0/1 weights (``spare``), they are made from
-    the mask for this call only and kept for the backward, which scales them by the incoming
-    gradient in place and hands them over as the gradient: one pass over the mask per call (the
-    product is a transient tensor, served from the heap in a training loop). ``keep_count``:
+    sums). A floating mask is the weights as it is: the forward reads it, the backward allocates
+    ``weights * g`` (the caller's tensor is never written). When nothing else in the graph needs
+    the 0/1 weights of a bool or integer mask (``spare``), they are made from the mask for this
+    call only and kept for the backward, which scales them by the incoming gradient in place and
+    hands them over as the gradient: one pass over the mask per call (the product is a transient
+    tensor, served from the heap in a training loop). ``keep_count``:
     count the tokens before the weights are handed over (``token_reduction="mean"``,
     ``return_info``). A second backward through the same graph (``retain_graph``) or a
     differentiable one (``create_graph``) multiplies new weights out of place.
@@ -372,7 +428,7 @@ class _WeightedSum(torch.autograd.Function):
     @staticmethod
     def forward(ctx, lp: Tensor, m: "_Mask", spare: bool, keep_count: bool) -> Tensor:
         ctx.m, ctx.weights = m, None
-        if not spare:
+        if not spare or not m.owns_weights:  # the caller's float mask is never written: the backward allocates
             return (lp * m.weights).sum(-1)
         if keep_count:
             m.count()
@@ -409,10 +465,10 @@ def _reweighted_sum(lp: Tensor, m: _Mask | None, w: Tensor, opt: LossOptions, in
                              f"got logprobs of shape {tuple(lp.shape)}; use ratio_level='sequence'")
         log_ratio = lp.detach() - old
         if m is not None:
-            log_ratio = m.apply(log_ratio)  # padding: ratio 1, and masked out below
+            log_ratio = m.select(log_ratio)  # padding: ratio 1, and masked out below
         unit_credit = w[..., None]
     else:
-        log_ratio = _masked_sum(lp.detach(), m) - _masked_sum(old, m)  # (B, n)
+        log_ratio = _selected_sum(lp.detach(), m) - _selected_sum(old, m)  # (B, n): the responses' ratios
         unit_credit = w
         if level == "pool":
             log_ratio = log_ratio.sum(-1, keepdim=True)  # (B, 1)
@@ -447,14 +503,15 @@ def _unit_mean(x: Tensor, m: _Mask | None) -> Tensor:
     """Mean over the ratio's units (masked tokens at token level)."""
     if m is None:
         return x.mean()
-    return m.apply(x).sum() / m.bool.sum()
+    return m.select(x).sum() / m.bool.sum()
 
 
 def _anchor_kl(lp: Tensor, m: _Mask | None, opt: LossOptions, *, fast: bool) -> tuple[Tensor, Tensor]:
     """k3 estimator exp(d) - d - 1, d = anchor - logp -> per-prompt mean over samples (B,), per-token mean value.
 
     Padding gives d = 0, so k3 = exp(0) - 0 - 1 = 0 there: ``d * weights`` with ``fast`` (non-finite
-    padding then shows in the result, see :func:`_masked_sum`), ``where`` otherwise.
+    padding then shows in the result, see :func:`_masked_sum`), ``where`` otherwise. A floating
+    mask weights each token's k3 instead (``k3 * weights``; on 0/1 masks the same numbers).
     """
     anchor = opt.anchor_logprobs
     if not is_tensor(anchor):
@@ -464,9 +521,11 @@ def _anchor_kl(lp: Tensor, m: _Mask | None, opt: LossOptions, *, fast: bool) -> 
     if opt.check_tokens:
         check_token_values("anchor_logprobs", anchor, "mask", None, None if m is None else m.mask)
     d = anchor.detach().to(lp.dtype) - lp
-    if m is not None:
-        d = d * m.weights if fast else m.apply(d)
+    if m is not None and not (fast and m.multiplies):
+        d = m.select(d) if not fast else d * m.weights
     k3 = torch.expm1(d) - d
+    if m is not None and m.multiplies:
+        k3 = k3 * m.weights  # token weights scale each token's KL (padding: 0, or NaN on the fast path if non-finite)
     if lp.ndim == 2:  # sequence level: one "token" per sample
         return k3.mean(-1), k3.detach().mean()
     per_seq = _per_token_scale(k3.sum(-1), lp, m, opt.token_reduction)  # (B, n)
@@ -676,6 +735,8 @@ def _nll(name: str, lp: Tensor, mask_name: str, opt: LossOptions) -> tuple[Tenso
         check_empty_rows(mask_name, mask, None)
         if not bool(torch.isfinite(seq).all()):
             seq = _masked_sum(lp, m, seq_ndim=1)  # NaN or an infinity in the padding: recomputed with where
+            if m.multiplies and not bool(torch.isfinite(seq).all()):
+                m.check_finite_weights(mask_name)  # a non-finite weight: a ValueError, not a NaN loss
     if opt.token_reduction == "mean":
         if lp.ndim == 1:
             raise ValueError(f"token_reduction='mean' needs token log-probs (2 dimensions), "

@@ -154,7 +154,8 @@ def check_logprobs(name: str, lp: Any, *, seq_ndim: int) -> Tensor:
 def check_mask(mask_name: str, mask: Any, lp_name: str, lp: Tensor, *, seq_ndim: int) -> Tensor | None:
     """The detached mask on lp's device, in its own dtype (token log-probs), or None (all tokens count).
 
-    Shape and type only; any non-zero entry marks a response token (:func:`token_weights`).
+    Shape and type only. A floating mask's entries are token weights (the losses multiply by it); in a
+    bool or integer mask any non-zero entry marks a response token (:func:`token_weights`).
     """
     if mask is None:
         return None
@@ -173,8 +174,9 @@ def check_mask(mask_name: str, mask: Any, lp_name: str, lp: Tensor, *, seq_ndim:
 def token_weights(mask: Tensor, dtype: torch.dtype, *, out: Tensor | None = None) -> Tensor:
     """A checked mask -> 1 where it is non-zero, 0 elsewhere, in ``dtype`` (in ``out`` if given): one pass over the mask.
 
-    The losses multiply token log-probs by these weights (the cheapest masking torch offers: a
-    ``where`` costs about twice a multiply on a CPU) and fall back to ``where`` only when the
+    The losses multiply token log-probs by the weights of a bool or integer mask (the cheapest
+    masking torch offers: a ``where`` costs about twice a multiply on a CPU; a floating mask is
+    used as it is, its entries being token weights) and fall back to ``where`` only when the
     product is not finite (:func:`bonft.objectives.losses.policy_gradient_loss`). Each dtype takes
     the fastest exact conversion torch has on a CPU (measured, B = 256, n = 64, T = 32): a bool
     mask is copied as its bytes (``mask.float()`` takes 7x longer), a floating one compared with 0
@@ -286,7 +288,8 @@ def check_ratios(log_ratio: Tensor, level: str) -> None:
 class LossOptions:
     """The keywords every loss of :mod:`bonft.objectives.losses` shares (its ``**common``).
 
-    mask: ``(B, n, T)`` bool or 0/1, 1 = response token (token log-probs only).
+    mask: ``(B, n, T)``, 0 = padding (token log-probs only): bool or integer, non-zero = response token;
+    floating, token weights that multiply the token log-probs (0/1 = plain masking).
     token_reduction: ``"sum"`` (unbiased) or ``"mean"`` (divide by the batch's mean response length).
     reduction: ``"mean"`` over prompts, ``"sum"``, or ``"none"`` (one loss per prompt, ``(B,)``).
     anchor_logprobs, anchor_weight: the KL term to the anchor policy (weight >= 0; a weight > 0 needs
