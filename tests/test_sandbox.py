@@ -14,11 +14,13 @@ import pytest
 from sandbox_attacks import pool_uids, runner_mode
 
 from bonft.verifiers import CodeRunner, RunResult
+from bonft.verifiers.sandbox.pool import _LOADER
 from bonft.verifiers.sandbox.procs import pids_of as _pids_of
 from bonft.verifiers.sandbox.runner import extract_code
 
 ROOT = os.geteuid() == 0
 OUTSIDE = "/tmp/bonft_sandbox_escape_test.txt"
+_POOL_LOADER = _LOADER.encode()
 
 
 def _children() -> int:
@@ -34,7 +36,7 @@ def _children() -> int:
         for pid in pids:
             try:
                 with open(f"/proc/{pid}/cmdline", "rb") as f:
-                    if b"def supervise(" in f.read():
+                    if _POOL_LOADER in f.read():  # a pool worker's (or its supervisor's) python -c text
                         continue
             except OSError:
                 continue

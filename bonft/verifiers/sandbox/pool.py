@@ -6,7 +6,7 @@ boundary.** The pool applies the layers of a one-at-a-time run
 any. Run model-written code at scale in a disposable container or VM with no
 credentials and no network.
 
-Each worker is a fresh interpreter (``python -c`` of ``zygote.py``, the
+Each worker is a fresh interpreter (``python -c`` of a loader that runs ``zygote.py``, the
 interpreter the runner chose, a scrubbed environment, as root when the caller
 is) that has loaded what both bootstraps need and then splits in two: a
 forker, which per job forks the tests' process and the candidate's (in a PID
@@ -49,6 +49,45 @@ _HERE = os.path.dirname(os.path.abspath(__file__))
 _UID_BASE = 1_500_000_000  # pool uids: _UID_BASE + 2000 * (random pool id) + 2 * worker (+ 1: tests)
 _RESULT_CAP = 64 << 20
 _PRELUDE = "import sys\nif sys.path and sys.path[0] in ('', '.'):\n    del sys.path[0]\n"
+# The worker's ``-c`` text: it compiles zygote.py in a throwaway child and runs the code objects that
+# child sends back (marshal), and so do the modules and bootstraps zygote.py loads (``_compiled``):
+# the parser's scratch memory, which the allocator keeps after a compile (about 1 MB for zygote.py
+# alone), never enters the process that every candidate is forked from.
+_LOADER = """import marshal
+import os
+
+
+def _compiled(sources):
+    \"\"\"The code objects of ``sources`` ((text, filename) pairs), compiled in a child of this process.\"\"\"
+    r, w = os.pipe()
+    pid = os.fork()
+    if pid == 0:
+        try:
+            os.close(r)
+            view = memoryview(marshal.dumps([compile(text, name, "exec") for text, name in sources]))
+            while view:
+                view = view[os.write(w, view):]
+        finally:
+            os._exit(0)
+    os.close(w)
+    parts = []
+    while True:
+        chunk = os.read(r, 1 << 16)
+        if not chunk:
+            break
+        parts.append(chunk)
+    os.close(r)
+    os.waitpid(pid, 0)
+    if not parts:  # the child failed: compile here, to raise its error
+        return [compile(text, name, "exec") for text, name in sources]
+    return marshal.loads(b"".join(parts))
+
+
+with open(os.path.join(sys.argv[1], "zygote.py"), encoding="utf-8") as _f:
+    _zygote = _compiled([(_f.read(), "<string>")])[0]
+del _f
+exec(_zygote)
+"""
 
 
 def _cause(rc: int | None) -> str:
@@ -128,8 +167,7 @@ class SandboxPool:
         cuid = None if self.uid0 is None else self.uid0 + 2 * w.slot
         cfg = dict(self.config, root=self.root, cuid=cuid, juid=None if cuid is None else cuid + 1,
                    tmp=tempfile.gettempdir())
-        with open(os.path.join(_HERE, "zygote.py"), encoding="utf-8") as f:
-            boot = _PRELUDE + f.read()
+        boot = _PRELUDE + _LOADER
         scrubbed = env(tempfile.gettempdir())
         try:
             proc = subprocess.Popen(

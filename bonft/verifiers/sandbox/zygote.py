@@ -1,11 +1,16 @@
-"""Bootstrap of a sandbox pool worker (``python -c <this file> SANDBOX_DIR CTL_FD RESULT_FD``).
+"""Bootstrap of a sandbox pool worker (``python -c <loader> SANDBOX_DIR CTL_FD RESULT_FD``).
 
 Not imported by the library: :class:`~bonft.verifiers.sandbox.pool.SandboxPool` starts
 one such process per worker, as root when the caller is, with a scrubbed
-environment. It loads the sandbox's own modules (``wire``, ``oslayer``,
-``outcome``, ``procs``) from SANDBOX_DIR, compiles the two bootstraps
-(``wire.py`` + ``candidate.py``, ``wire.py`` + ``judge.py``) once, prepares
-the seccomp program, and then splits in two for good:
+environment; its ``-c`` text (``pool._LOADER``) compiles this file in a
+throwaway child and runs the code, and this file uses the loader's
+``_compiled`` in turn for everything else it compiles, so that the parser's
+scratch memory (which the allocator keeps after a compile: 3.6 of the 9.4 MB of
+private memory the worker had when it compiled them itself)
+is never copied into a fork. It loads the sandbox's own modules (``wire``,
+``oslayer``, ``outcome``, ``procs``) from SANDBOX_DIR, builds the two
+bootstraps (``wire.py`` + ``candidate.py``, ``wire.py`` + ``judge.py``) once,
+prepares the seccomp program, and then splits in two for good:
 
 * the **forker** (the worker process itself, whose pid the pool knows) never
   reads a job, an output, a verdict, a name left in a job's directory or (with
@@ -57,23 +62,47 @@ _CTL, _RES = int(sys.argv[2]), int(sys.argv[3])
 PR_SET_DUMPABLE = 4
 
 
+def _read(name):
+    with open(os.path.join(_HERE, name), encoding="utf-8") as f:
+        return f.read()
+
+
+def _boot_text(name):
+    """The text of a bootstrap as ``python -c`` runs it one at a time (``wire.py`` + ``name``), less its
+    final call to ``_main``: a forked child makes that call."""
+    text = _read("wire.py") + "\n" + _read(name)
+    guard = '\nif __name__ == "__main__":\n'
+    if guard not in text:
+        raise RuntimeError("%s has no main guard" % name)
+    prelude = "import sys\nif sys.path and sys.path[0] in ('', '.'):\n    del sys.path[0]\n"
+    return prelude + text[:text.rindex(guard)]
+
+
+_MODULES = ("wire", "oslayer", "outcome", "procs")
+# every text compiled at once, in a child (_compiled: the loader's, in pool.py)
+_CODE = dict(zip(_MODULES + ("candidate.py", "judge.py"), _compiled(  # noqa: F821 - defined by the loader
+    [(_read(m + ".py"), os.path.join(_HERE, m + ".py")) for m in _MODULES]
+    + [(_boot_text(b), "<string>") for b in ("candidate.py", "judge.py")])))
+
+
 def _load(name):
     """The sandbox module ``name`` from its file, without the package (whose imports a worker does not
     need: every module loaded here is copied into every fork)."""
-    path = os.path.join(_HERE, name + ".py")
     mod = types.ModuleType("bonft_sandbox_" + name)
-    mod.__file__ = path
+    mod.__file__ = os.path.join(_HERE, name + ".py")
     sys.modules[mod.__name__] = mod
-    with open(path, encoding="utf-8") as f:
-        exec(compile(f.read(), path, "exec"), mod.__dict__)
+    exec(_CODE.pop(name), mod.__dict__)
     return mod
 
 
 wire, oslayer, outcome, procs = _load("wire"), _load("oslayer"), _load("outcome"), _load("procs")
+# the compiler's own state, made at its first use in a process: made here, once (not in every child
+# that compiles a solution or tests, where it copied about 115 pages of this process)
+compile("x = 1\n", "<string>", "exec")
 import ctypes  # noqa: E402 - after the sandbox modules, which import it too
 import json  # noqa: E402
 
-for _name in ("base64", "collections", "errno", "io", "math", "selectors"):
+for _name in ("base64", "collections", "errno", "io"):
     __import__(_name)  # what the bootstraps import: every fork starts with it loaded (not fractions or
     # decimal, which only some candidates need: every page of the worker makes each fork dearer)
 
@@ -93,18 +122,9 @@ def _boot_module(name):
     """The ``__main__`` module of a bootstrap (``wire.py`` + ``name``) with everything it defines, made
     once here: a forked child only calls its ``_main``, as ``python -c`` would at the text's end, instead
     of building its functions and classes again (each new object is a page copied from the worker)."""
-    with open(os.path.join(_HERE, "wire.py"), encoding="utf-8") as f:
-        text = f.read()
-    with open(os.path.join(_HERE, name), encoding="utf-8") as f:
-        text += "\n" + f.read()
-    guard = '\nif __name__ == "__main__":\n'
-    if guard not in text:
-        raise RuntimeError("%s has no main guard" % name)
-    text = text[:text.rindex(guard)]  # the call to _main: made by the forked child
-    prelude = "import sys\nif sys.path and sys.path[0] in ('', '.'):\n    del sys.path[0]\n"
     mod = types.ModuleType("__main__")
     mod.__dict__["__builtins__"] = builtins
-    exec(compile(prelude + text, "<string>", "exec"), mod.__dict__)
+    exec(_CODE.pop(name), mod.__dict__)
     return mod
 
 
