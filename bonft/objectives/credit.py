@@ -36,7 +36,7 @@ import torch
 
 from bonft._core.checks import check_bool, check_choice, check_k
 from bonft._core.passk import log_miss, pass_at_k_counts
-from bonft._core.ties import first_of_group, flat_groups
+from bonft._core.ties import flat_groups
 from bonft._core.ustat import count_tables
 from bonft.objectives.validation import (
     as_host,
@@ -286,9 +286,13 @@ def _best_of_k_core(s: np.ndarray, R: np.ndarray, k: int, baseline: str) -> tupl
     loo = baseline == "loo" and n > 1
     # flat (B*n,) views throughout: row b occupies [b*n, (b+1)*n); every group lies inside one row
     fo = (np.argsort(s, axis=-1) + (np.arange(B, dtype=np.int64) * n)[:, None]).ravel()  # ties: any order
-    starts, gid, m = flat_groups(first_of_group(s.ravel().take(fo).reshape(B, n)))  # tie groups, row by row
-    if len(starts) == B * n:  # no tied scores (e.g. a reward model's): each group is one sample
+    ss = s.ravel().take(fo).reshape(B, n)  # scores in ascending order
+    rises = ss[:, 1:] != ss[:, :-1]
+    if rises.all():  # no tied scores (e.g. a reward model's): each group is one sample
         return _best_of_k_distinct(R.ravel().take(fo).reshape(B, n), fo, R[:, 0] if loo else np.zeros(B), k, loo)
+    first = np.ones((B, n), dtype=bool)
+    first[:, 1:] = rises  # first_of_group of the sorted scores
+    starts, gid, m = flat_groups(first)  # tie groups, row by row
     gL = starts % n  # samples strictly below the group in its row
     gend = gL + m - 1  # last sorted index of the group in its row
     per_row = np.bincount(starts // n, minlength=B)  # groups per row
@@ -306,9 +310,8 @@ def _best_of_k_core(s: np.ndarray, R: np.ndarray, k: int, baseline: str) -> tupl
     # loo credit is unchanged by a constant shift of a row's rewards (the k/n terms cancel);
     # shifting by one of the row's own rewards makes all-equal rewards give exactly 0
     shift = R[:, 0] if loo else np.zeros(B)
-    sg = shift.take(starts // n)  # (G,) shift of each group's row
-    r = R.ravel().take(fo)  # (B*n,) rewards in score order
-    r -= sg.take(gid)  # equal rewards become exact zeros, so their credit is exactly 0
+    # (B*n,) rewards in score order; equal rewards become exact zeros, so their credit is exactly 0
+    r = (R - R[:, :1] if loo else R).ravel().take(fo)
     mf = m.astype(np.float64)
     gsum = np.add.reduceat(r, starts)  # (G,) reward sum of each group
     Ck, Ck1, Cb = count_tables(n, k)  # entry x+1 for x = -1..n
@@ -340,12 +343,50 @@ def _best_of_k_distinct(r: np.ndarray, fo: np.ndarray, shift: np.ndarray, k: int
                      loo: bool) -> tuple[np.ndarray, np.ndarray]:
     """:func:`_best_of_k_core` without ties: rewards in score order (B, n), every group one sample at rank L.
 
+    The credit is then a fixed linear map of the rewards in score order (:func:`_distinct_sums`):
+    for ``n <= 128`` one product with its (n, n) matrix, cached per ``(n, k, baseline)``
+    (:func:`_distinct_map`; 0.03 ms at (256, 64) against 0.12 ms for the prefix sums), else the
+    prefix sums themselves.
+    """
+    B, n = r.shape
+    r = r - shift[:, None]  # equal rewards become exact zeros (loo); a no-op shift otherwise
+    if n <= _MAP_MAX_N:
+        M, v = _distinct_map(n, k, loo)
+        W = r @ M
+        pool = r @ v
+    else:
+        W, pool = _distinct_sums(r, k, loo)
+    pool += shift
+    out = np.empty(B * n)
+    out[fo] = W.ravel()
+    return out.reshape(B, n), pool
+
+
+_MAP_MAX_N = 128  # above, the (n, n) product costs more than the O(n) prefix sums
+
+
+@functools.lru_cache(maxsize=64)
+def _distinct_map(n: int, k: int, loo: bool) -> tuple[np.ndarray, np.ndarray]:
+    """``(M (n, n), v (n,))`` with ``W = r @ M`` and ``pool = r @ v`` for rewards ``r`` in score order, no ties.
+
+    Row ``j`` of ``M`` is :func:`_distinct_sums` of the unit reward at rank ``j``: the same
+    coefficients (each entry a single table value or 0, or their k/n-scaled difference), summed by
+    the product instead of by running sums. Read-only.
+    """
+    M, v = _distinct_sums(np.eye(n), k, loo)
+    for t in (M, v):
+        t.flags.writeable = False
+    return M, v
+
+
+def _distinct_sums(r: np.ndarray, k: int, loo: bool) -> tuple[np.ndarray, np.ndarray]:
+    """Credit (B, n) in score order and pool U-statistic (B,) of shifted rewards in score order, no ties.
+
     With m = 1 the tied-mate terms vanish and each coefficient depends on the rank alone:
     ``W_L = r_L w_k(L) + sum_{j>L} r_j (C(j,k-1) - C(j-1,k-1))/C(n,k)``, minus, with the
     leave-one-out baseline, ``k/n`` times the same sums over the other n-1 samples.
     """
-    B, n = r.shape
-    r = r - shift[:, None]  # equal rewards become exact zeros (loo); a no-op shift otherwise
+    n = r.shape[1]
     Ck, Ck1, Cb = count_tables(n, k)  # entry x+1 for x = -1..n
     a = Ck[2:] - Ck[1:-1]  # (n,) own reward as the top of the subset: w_k(L)
     A = Ck1[1:-1] - Ck1[:-2]  # (n,) as one of the k-1 below a higher top
@@ -356,14 +397,12 @@ def _best_of_k_distinct(r: np.ndarray, fo: np.ndarray, shift: np.ndarray, k: int
 
     W = r * a
     W += above(r * A)
-    pool = W.sum(axis=1) / k + shift  # sum_S g(S) = (1/k) sum_i W_i
+    pool = W.sum(axis=1) / k  # sum_S g(S) = (1/k) sum_i W_i
     if loo:
         x = r * (Cb[2:] - Cb[1:-1])  # ranks below keep their place
         below = _running_sum(x) - x
         W -= (k / n) * (below + above(r * (Cb[1:-1] - Cb[:-2])))  # ranks above move down by one
-    out = np.empty(B * n)
-    out[fo] = W.ravel()
-    return out.reshape(B, n), pool
+    return W, pool
 
 
 def _running_sum(x: np.ndarray) -> np.ndarray:
@@ -445,25 +484,48 @@ def _best_of_k_sft_core(s: np.ndarray, s_star: np.ndarray, k: int, smoothing: fl
     B, n = s.shape
     if k == 1:
         return np.zeros_like(s)
-    u = (s <= s_star[:, None]).astype(np.float64)  # at or below the reference
-    v = (s < s_star[:, None]).astype(np.float64)  # strictly below
-    F = (u.sum(-1) + smoothing) / (n + smoothing)  # reference counted as `smoothing` pseudo-samples at s*
-    F_ = v.sum(-1) / (n + smoothing)
+    ub = s <= s_star[:, None]  # at or below the reference
+    vb = s < s_star[:, None]  # strictly below
+    U = np.count_nonzero(ub, axis=-1).astype(np.float64)  # exact counts: the sums of the 0/1 indicators
+    V = np.count_nonzero(vb, axis=-1).astype(np.float64)
+    F = (U + smoothing) / (n + smoothing)  # reference counted as `smoothing` pseudo-samples at s*
+    F_ = V / (n + smoothing)
     # h = log sum_{j<k} F^j F_^(k-1-j) = (k-1) log F + log sum_{q<k} r^q with r = F_/F <= 1
     r = (F_ / F)[:, None]
     q = np.arange(k, dtype=np.float64)  # (k,) powers
     rq = r ** q  # (B, k)
     z = rq.sum(-1)
     h_F = ((k - 1 - q) * rq).sum(-1) / (z * F)  # dh/dF
-    h_F_ = (q[1:] * r ** (q[1:] - 1)).sum(-1) / (z * F)  # dh/dF_
-    # grad F = E[(u - F) grad log pi]; leave-one-out mean as the baseline
-    return (h_F[:, None] * (u - _loo_mean(u)) + h_F_[:, None] * (v - _loo_mean(v))) / n
+    h_F_ = (q[1:] * rq[:, :-1]).sum(-1) / (z * F)  # dh/dF_ (r ** (q - 1) for q = 1..k-1: the powers 0..k-2)
+    # grad F = E[(u - F) grad log pi]; leave-one-out mean as the baseline:
+    #   w = (h_F (u - mean_{-i} u) + h_< (v - mean_{-i} v)) / n,
+    # and since v <= u each row holds three values only, (u, v) = (1, 1), (1, 0), (0, 0): each is
+    # computed per row with the same operations as elementwise, then placed (the same numbers)
+    du1, du0 = _loo_centred(U, n)
+    dv1, dv0 = _loo_centred(V, n)
+    t_u1, t_u0, t_v1, t_v0 = h_F * du1, h_F * du0, h_F_ * dv1, h_F_ * dv0
+    table = np.stack(((t_u0 + t_v0) / n, (t_u1 + t_v0) / n, (t_u1 + t_v1) / n), axis=-1)  # (B, 3)
+    which = ub.view(np.uint8) + vb.view(np.uint8)  # 0, 1 or 2 entries of (u, v) are 1
+    return table.ravel().take(which + (3 * np.arange(B))[:, None])
+
+
+def _loo_centred(count: np.ndarray, n: int) -> tuple[np.ndarray, np.ndarray]:
+    """(B,) count of ones in a 0/1 row of n -> ``x - mean_{-i} x`` for an entry x = 1 and x = 0 (:func:`_loo_mean`)."""
+    if n == 1:
+        return np.ones_like(count), np.zeros_like(count)
+    return 1.0 - (count - 1.0) / (n - 1), 0.0 - count / (n - 1)
 
 
 def _reinforce_core(R: np.ndarray, baseline: str) -> np.ndarray:
     n = R.shape[-1]
     if baseline == "loo":
-        if n > 1:
-            R = R - R[:, :1]  # same credit, exact zeros for all-equal rewards
-        return (R - _loo_mean(R)) / n
+        if n == 1:
+            return R / n  # _loo_mean is 0: R - 0 = R
+        R = R - R[:, :1]  # same credit, exact zeros for all-equal rewards
+        # (R - _loo_mean(R)) / n, the same operations in place (two arrays instead of five)
+        w = R.sum(-1, keepdims=True) - R
+        w /= n - 1
+        np.subtract(R, w, out=w)
+        w /= n
+        return w
     return R / n

@@ -15,6 +15,7 @@ once, see its docstring) and :func:`check_ratios` (reuse only).
 from __future__ import annotations
 
 import dataclasses
+import math
 import numbers
 from typing import Any
 
@@ -57,8 +58,16 @@ def as_host(name: str, x: Any, *, ndim: int) -> np.ndarray:
         raise ValueError(f"{name} must have shape {want} ({ndim} dimension(s)), got shape {tuple(a.shape)}")
     if a.size == 0:
         check_nonempty(name, a)
-    check_finite(name, a)
+    _check_finite_host(name, a)
     return a
+
+
+def _check_finite_host(name: str, a: np.ndarray) -> None:
+    """:func:`check_finite` of a float64 host array, by its sum first: finite values sum to a finite number
+    unless the sum overflows, so only a non-finite sum (NaN, an infinity, or an overflow) costs the exact
+    elementwise look that names the first bad entry (one reduction instead of two passes and two copies)."""
+    if not math.isfinite(a.sum()):
+        check_finite(name, a)
 
 
 def out_kind(*xs: Any) -> tuple[bool, Any, Any]:
@@ -248,7 +257,7 @@ def credit_tensor(credit: Any, lp: Tensor, *, check_device: bool) -> Tensor:
     if tuple(w.shape) != (B, n):
         raise ValueError(f"credit must have shape (B, n) = ({B}, {n}) to match logprobs, got {tuple(w.shape)}")
     if host is not None:
-        check_finite("credit", host)
+        _check_finite_host("credit", host)
     elif check_device:
         check_finite("credit", w)  # a device tensor: one sync, so only on request
     return w.to(device=lp.device, dtype=lp.dtype, non_blocking=True)
