@@ -275,8 +275,17 @@ def _policy_gradient(lp: Tensor, w: Tensor, m: "_Mask | None", opt: LossOptions,
         return loss, None, checked, sums
     info["pools_with_signal"] = _share_with_signal(w)
     info["credit_abs_mean"] = w.abs().mean()
-    info["masked_frac"] = 1 - m.count().to(w.dtype) / lp.numel() if m is not None else w.new_zeros(())
+    info["masked_frac"] = _padding_share(m, lp, w.dtype) if m is not None else w.new_zeros(())
     return loss, info, checked, sums
+
+
+def _padding_share(m: "_Mask", lp: Tensor, dtype: torch.dtype) -> Tensor:
+    """``1 - tokens / positions`` in ``dtype``; on a CPU the same float operations on numpy scalars (no torch calls)."""
+    count = m.count()
+    if _numpy_view(count) and dtype in (torch.float32, torch.float64):
+        one = np.float32(1) if dtype == torch.float32 else np.float64(1)  # the dtype's own arithmetic
+        return torch.from_numpy(np.array(one - one.dtype.type(count.item()) / one.dtype.type(lp.numel())))
+    return 1 - count.to(dtype) / lp.numel()
 
 
 def _share_with_signal(w: Tensor) -> Tensor:
