@@ -343,40 +343,47 @@ def _best_of_k_distinct(r: np.ndarray, fo: np.ndarray, shift: np.ndarray, k: int
                      loo: bool) -> tuple[np.ndarray, np.ndarray]:
     """:func:`_best_of_k_core` without ties: rewards in score order (B, n), every group one sample at rank L.
 
-    The credit is then a fixed linear map of the rewards in score order (:func:`_distinct_sums`):
-    for ``n <= 128`` one product with its (n, n) matrix, cached per ``(n, k, baseline)``
-    (:func:`_distinct_map`; 0.03 ms at (256, 64) against 0.12 ms for the prefix sums), else the
-    prefix sums themselves.
+    The credit and the pool value are then a fixed linear map of the rewards in score order
+    (:func:`_distinct_sums`): for ``n <= 64`` products with its (n, n + 1) matrix, cached per
+    ``(n, k, baseline)`` (:func:`_distinct_map`; 0.05 ms at (256, 64) against 0.12 ms for the
+    prefix sums), else the prefix sums themselves. The products go in blocks of rows small enough
+    for the BLAS to run each on the calling thread (OpenBLAS threads a product of more than 2^18
+    multiply-adds): a helper thread waiting for a busy core made the call 10x slower under load.
     """
     B, n = r.shape
     r = r - shift[:, None]  # equal rewards become exact zeros (loo); a no-op shift otherwise
     if n <= _MAP_MAX_N:
-        M, v = _distinct_map(n, k, loo)
-        W = r @ M
-        pool = r @ v
+        M = _distinct_map(n, k, loo)
+        Wp = np.empty((B, n + 1))
+        step = max(1, _ONE_THREAD_MACS // (n * (n + 1)))
+        for i in range(0, B, step):
+            np.matmul(r[i:i + step], M, out=Wp[i:i + step])
+        W, pool = Wp[:, :n], Wp[:, n] + shift
     else:
         W, pool = _distinct_sums(r, k, loo)
-    pool += shift
+        pool += shift
     out = np.empty(B * n)
     out[fo] = W.ravel()
     return out.reshape(B, n), pool
 
 
-_MAP_MAX_N = 128  # above, the (n, n) product costs more than the O(n) prefix sums
+_MAP_MAX_N = 64  # above, the (n, n) products cost about what the O(n) prefix sums do
+_ONE_THREAD_MACS = 2**17  # multiply-adds per product: below OpenBLAS's threading threshold (2^18), with room
 
 
 @functools.lru_cache(maxsize=64)
-def _distinct_map(n: int, k: int, loo: bool) -> tuple[np.ndarray, np.ndarray]:
-    """``(M (n, n), v (n,))`` with ``W = r @ M`` and ``pool = r @ v`` for rewards ``r`` in score order, no ties.
+def _distinct_map(n: int, k: int, loo: bool) -> np.ndarray:
+    """``M (n, n + 1)``: ``r @ M`` is the credit (first n columns) and the pool U-statistic (last) of rewards in
+    score order without ties.
 
     Row ``j`` of ``M`` is :func:`_distinct_sums` of the unit reward at rank ``j``: the same
     coefficients (each entry a single table value or 0, or their k/n-scaled difference), summed by
     the product instead of by running sums. Read-only.
     """
-    M, v = _distinct_sums(np.eye(n), k, loo)
-    for t in (M, v):
-        t.flags.writeable = False
-    return M, v
+    W, v = _distinct_sums(np.eye(n), k, loo)
+    M = np.concatenate([W, v[:, None]], axis=1)
+    M.flags.writeable = False
+    return M
 
 
 def _distinct_sums(r: np.ndarray, k: int, loo: bool) -> tuple[np.ndarray, np.ndarray]:
