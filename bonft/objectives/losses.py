@@ -96,23 +96,23 @@ numpy on the host (scores and rewards come from verifiers) and copied to the
 log-probs' device once. With a mask, padding is taken out by a multiply: by a
 floating mask as given (the backward allocates ``mask * g``; the caller's
 tensor is never written), by 0/1 weights made from a bool or integer mask (one
-conversion; the backward reuses that tensor for the gradient); one read of two
-numbers decides the rest: the
-sum of the per-prompt loss (finite?) and how many masked sums are exactly 0.
-A response whose mask row is all zero but whose credit is not would add
-nothing, silently, so it is a ``ValueError``; only a zero sum sends the call
-to that O(B n T) row count. NaN or an infinity in the padding makes the
-multiply's result non-finite (``0 * nan`` is NaN), and only then is the loss
-computed again with ``torch.where`` (about 3-4x the cost of the fast call),
-selecting ``mask != 0`` and then multiplying by a floating mask, so the numbers
-are those of the fast call with finite padding: padding may hold anything, at a
-price paid only when it holds a non-finite value. The read is free on the CPU (numpy looks at the tensors' memory) and
-one sync on an accelerator. Sample reuse masks with ``where`` throughout and
-reads one more (the ratios must be finite). ``check_tokens=True`` adds the
-O(B n T) checks (a 0/1 mask, no empty response at all, finite log-probs under
-the mask; each a sync on an accelerator). Without it a non-finite log-prob
-under the mask gives a non-finite loss (never hidden): check the loss before
-the optimizer step, as the trainer does.
+conversion; the backward reuses that tensor for the gradient). One read of two
+numbers decides the rest: the sum of the per-prompt loss (finite?) and whether
+a masked sum is exactly 0. A response whose mask row is all zero but whose
+credit is not would add nothing, silently, so it is a ``ValueError``; only a
+zero sum sends the call to that O(B n T) row count. NaN or an infinity in the
+padding makes the multiply's result non-finite (``0 * nan`` is NaN), and only
+then is the loss computed again with ``torch.where`` (about 3-4x the cost of
+the fast call), selecting ``mask != 0`` and then multiplying by a floating
+mask, so the numbers are those of the fast call with finite padding: padding
+may hold anything, at a price paid only when it holds a non-finite value. The
+read is free on the CPU (numpy looks at the tensors' memory) and one sync on an
+accelerator. Sample reuse masks with ``where`` throughout and reads one more
+(the ratios must be finite). ``check_tokens=True`` adds the O(B n T) checks (a
+0/1 mask, no empty response at all, finite log-probs under the mask; each a
+sync on an accelerator). Without it a non-finite log-prob under the mask gives
+a non-finite loss (never hidden): check the loss before the optimizer step, as
+the trainer does.
 
 Caution: these losses maximise what the verifier rewards. An imperfect
 verifier (learned reward model, weak unit tests) will be exploited (reward
