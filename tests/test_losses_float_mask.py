@@ -152,3 +152,22 @@ def test_check_tokens_still_refuses_a_mask_other_than_zero_one():
         reinforce_loss(LP, REWARDS, mask=MASK, check_tokens=True)
     assert float(reinforce_loss(LP, REWARDS, mask=(MASK != 0).double(), check_tokens=True)) == pytest.approx(
         -(0.5 * (-3.0) - 0.5 * (-9.5)), rel=1e-15)  # 0/1: seq = -1 - 2 = -3 and -1.5 - 8 = -9.5
+
+
+def test_the_accelerator_branches_give_the_same_numbers(monkeypatch):
+    # the count of a float mask and masked_frac take torch's route off the CPU (no read back); the
+    # values are those worked out by hand above
+    from bonft.objectives import losses
+
+    monkeypatch.setattr(losses, "_NUMPY_ON_CPU", False)
+    x = LP.clone().requires_grad_(True)
+    loss, info = reinforce_loss(x, REWARDS, mask=MASK, token_reduction="mean", return_info=True)
+    loss.backward()
+    assert float(loss.detach()) == -0.625
+    assert x.grad.tolist() == [[[-0.125, -0.25, 0.0], [0.5, 0.0, 0.0625]]]
+    assert float(info["masked_frac"]) == pytest.approx(2 / 6, abs=1e-15)
+    assert float(info["pools_with_signal"]) == 1.0  # the one prompt's credit (0.5, -0.5) is not all zero
+    mask = MASK.clone()
+    mask[0, 1, 2] = float("nan")
+    with pytest.raises(ValueError, match=r"mask must hold finite token weights, got nan at index \(0, 1, 2\)"):
+        reinforce_loss(LP, REWARDS, mask=mask)
