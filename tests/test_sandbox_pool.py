@@ -35,6 +35,7 @@ from sandbox_attacks import (
 )
 
 from bonft.verifiers import CodeRunner
+from bonft.verifiers.sandbox import pool as pool_module
 from bonft.verifiers.sandbox.procs import remove_tree
 
 ROOT = os.geteuid() == 0
@@ -403,6 +404,25 @@ def test_a_directory_the_worker_cannot_remove_sinks_only_its_candidate():
                         r".*/bonft-sandbox-\d+\.\d+\.\w+: Device or resource busy \(verdict was pass\)",
                         first.reason), first.reason
     assert (second.status, second.reason) == ("pass", None)
+
+
+def test_the_workers_loader_compiles_what_compile_compiles():
+    """A worker compiles nothing itself (the parser's scratch memory would be copied into every fork):
+    its loader's ``_compiled`` has a child compile and send the code back. Reference: the built-in
+    compile() of the same text in this process; code objects compare equal when their bytecode,
+    constants, names, line table and flags are equal (CPython's code comparison)."""
+    ns = {}
+    exec(pool_module._COMPILED, ns)
+    text = "def f(x, *a, k=2):\n    return [i * x for i in range(3)], f'{x!r}', k\nr = f(2)\n"
+    got, other = ns["_compiled"]([(text, "f.py"), ("y = 1 + 2\n", "<string>")])
+    assert got == compile(text, "f.py", "exec") and got.co_filename == "f.py"
+    assert other == compile("y = 1 + 2\n", "<string>", "exec")
+    g = {}
+    exec(got, g)
+    assert g["r"] == ([0, 2, 4], "2", 2)
+    with pytest.raises(SyntaxError) as err:  # the child sends nothing: compiled here, so the error is compile's
+        ns["_compiled"]([("x = 1\n", "a.py"), ("x = (\n", "bad.py")])
+    assert err.value.filename == "bad.py" and err.value.lineno == 1
 
 
 def test_pool_bad_input_and_layers():

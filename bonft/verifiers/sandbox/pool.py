@@ -53,7 +53,7 @@ _PRELUDE = "import sys\nif sys.path and sys.path[0] in ('', '.'):\n    del sys.p
 # child sends back (marshal), and so do the modules and bootstraps zygote.py loads (``_compiled``):
 # the parser's scratch memory, which the allocator keeps after a compile (about 1 MB for zygote.py
 # alone), never enters the process that every candidate is forked from.
-_LOADER = """import marshal
+_COMPILED = """import marshal
 import os
 
 
@@ -81,7 +81,8 @@ def _compiled(sources):
     if not parts:  # the child failed: compile here, to raise its error
         return [compile(text, name, "exec") for text, name in sources]
     return marshal.loads(b"".join(parts))
-
+"""
+_LOADER = _COMPILED + """
 
 with open(os.path.join(sys.argv[1], "zygote.py"), encoding="utf-8") as _f:
     _zygote = _compiled([(_f.read(), "<string>")])[0]
