@@ -14,7 +14,9 @@ forks three processes per candidate: the tests' process, the PID namespace's ini
 candidate's process, and a supervisor per worker, which never forks, feeds and reads them). The
 floor is the pool's ``floor``: one fork of the same pre-started worker that applies the candidate's
 isolation (PID, mount, IPC and network namespaces, fresh tmpfs, own uid, limits, seccomp filter) in a
-fresh working directory and exits. All in one process on the same machine. Goals: the pool at least
+fresh working directory and exits. All in one process on the same machine; the pool's trivial
+candidates and the floor run in six alternating rounds of 100 (three of 20 with --quick), so that a
+drift of the machine's speed between them does not move their ratio. Goals: the pool at least
 250 trivial candidates/s on 2 cores, and within 2x the floor (pool time per candidate / floor time
 per candidate <= 2).
 
@@ -101,6 +103,25 @@ def measure(fn, n: int, pids=lambda: []) -> tuple[float, float, float, list, lis
     return n / dt, sum(parts), (faults1 - faults0) / n, out, parts
 
 
+def interleaved(pool_fn, floor_fn, n: int, rounds: int, pids) -> dict:
+    """The pool's trivial candidates and the floor in alternating rounds of ``n // rounds`` each, so
+    that a drift of the machine's speed (up to a third within minutes on the development machine)
+    weighs on both alike: name -> (candidates/s, CPU ms, faults per candidate, CPU ms per candidate
+    by process), each the total over its rounds."""
+    m = n // rounds
+    acc = {name: [0.0, 0.0, 0.0, [0.0] * 4] for name in ("pool", "floor")}
+    for _ in range(rounds):
+        for name, fn in (("pool", pool_fn), ("floor", floor_fn)):
+            rate, cpu, flt, _, parts = measure(fn, m, pids)
+            a = acc[name]
+            a[0] += m / rate
+            a[1] += cpu * m
+            a[2] += flt * m
+            a[3] = [x + y * m for x, y in zip(a[3], parts)]
+    total = m * rounds
+    return {name: (total / a[0], a[1] / total, a[2] / total, [x / total for x in a[3]]) for name, a in acc.items()}
+
+
 def run_once(args, W: int) -> dict:
     n_single, n_pool, n_hostile = (16, 60, 6) if args.quick else (64, 600, 12)
     load0 = os.getloadavg()
@@ -130,12 +151,20 @@ def run_once(args, W: int) -> dict:
             return res
 
         s_rate, s_cpu, _, _, _ = measure(lambda n, rs=rs: batch(n, rs), n_s)
-        p_rate, p_cpu, p_flt, res, parts = measure(lambda n, rp=rp: batch(n, rp), n_p, rp.sandbox_pool().worker_pids)
+        if kind == "trivial":  # against the floor, in alternating rounds (the time ratio is the goal)
+            both = interleaved(lambda n, rp=rp: batch(n, rp), pool.floor, n_p, 3 if args.quick else 6,
+                               pool.worker_pids)
+            p_rate, p_cpu, p_flt, parts = both["pool"]
+            f_rate, f_cpu, f_flt, floor_split = both["floor"]
+            res = None
+        else:
+            p_rate, p_cpu, p_flt, res, parts = measure(lambda n, rp=rp: batch(n, rp), n_p,
+                                                       rp.sandbox_pool().worker_pids)
         rows.append((kind, s_rate, s_cpu, p_rate, p_cpu, p_flt))
         split[kind] = parts
         if kind == "hostile":
             print("  hostile verdicts (pool):", sorted({(r.status, r.reason) for r in res}))
-    f_rate, f_cpu, f_flt, _, split["floor"] = measure(pool.floor, n_pool, pool.worker_pids)
+    split["floor"] = floor_split
     load1 = os.getloadavg()
     layers = pool.layers
     for r in (pooled, pooled_h):
