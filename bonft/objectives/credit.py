@@ -36,7 +36,7 @@ import torch
 
 from bonft._core.checks import check_bool, check_choice, check_k
 from bonft._core.passk import log_miss, pass_at_k_counts
-from bonft._core.ties import flat_groups
+from bonft._core.ties import first_of_group, flat_groups
 from bonft._core.ustat import count_tables
 from bonft.objectives.validation import (
     as_host,
@@ -286,12 +286,9 @@ def _best_of_k_core(s: np.ndarray, R: np.ndarray, k: int, baseline: str) -> tupl
     loo = baseline == "loo" and n > 1
     # flat (B*n,) views throughout: row b occupies [b*n, (b+1)*n); every group lies inside one row
     fo = (np.argsort(s, axis=-1) + (np.arange(B, dtype=np.int64) * n)[:, None]).ravel()  # ties: any order
-    ss = s.ravel().take(fo).reshape(B, n)  # scores in ascending order
-    rises = ss[:, 1:] != ss[:, :-1]
-    if rises.all():  # no tied scores (e.g. a reward model's): each group is one sample
+    first = first_of_group(s.ravel().take(fo).reshape(B, n))  # tie groups of the sorted scores
+    if first.all():  # no tied scores (e.g. a reward model's): each group is one sample
         return _best_of_k_distinct(R.ravel().take(fo).reshape(B, n), fo, R[:, 0] if loo else np.zeros(B), k, loo)
-    first = np.ones((B, n), dtype=bool)
-    first[:, 1:] = rises  # first_of_group of the sorted scores
     starts, gid, m = flat_groups(first)  # tie groups, row by row
     gL = starts % n  # samples strictly below the group in its row
     gend = gL + m - 1  # last sorted index of the group in its row
@@ -478,14 +475,6 @@ def _pass_at_k_core(c: np.ndarray, k: int, estimator: str, positive_only: bool) 
     return w
 
 
-def _loo_mean(x: np.ndarray) -> np.ndarray:
-    """(B, n) -> mean of the other n-1 entries per position; 0 when n = 1."""
-    n = x.shape[-1]
-    if n == 1:
-        return np.zeros_like(x)
-    return (x.sum(-1, keepdims=True) - x) / (n - 1)
-
-
 def _best_of_k_sft_core(s: np.ndarray, s_star: np.ndarray, k: int, smoothing: float) -> np.ndarray:
     """Scores (B, n), reference scores (B,) -> sample credit (B, n)."""
     B, n = s.shape
@@ -517,7 +506,7 @@ def _best_of_k_sft_core(s: np.ndarray, s_star: np.ndarray, k: int, smoothing: fl
 
 
 def _loo_centred(count: np.ndarray, n: int) -> tuple[np.ndarray, np.ndarray]:
-    """(B,) count of ones in a 0/1 row of n -> ``x - mean_{-i} x`` for an entry x = 1 and x = 0 (:func:`_loo_mean`)."""
+    """(B,) count of ones in a 0/1 row of n -> ``x - mean_{-i} x`` for an entry x = 1 and x = 0 (0 when n = 1)."""
     if n == 1:
         return np.ones_like(count), np.zeros_like(count)
     return 1.0 - (count - 1.0) / (n - 1), 0.0 - count / (n - 1)
@@ -527,9 +516,9 @@ def _reinforce_core(R: np.ndarray, baseline: str) -> np.ndarray:
     n = R.shape[-1]
     if baseline == "loo":
         if n == 1:
-            return R / n  # _loo_mean is 0: R - 0 = R
+            return R / n  # no others: the leave-one-out mean is 0
         R = R - R[:, :1]  # same credit, exact zeros for all-equal rewards
-        # (R - _loo_mean(R)) / n, the same operations in place (two arrays instead of five)
+        # (R - mean_{-i} R) / n with mean_{-i} R = (sum R - R) / (n - 1), in place (two arrays instead of five)
         w = R.sum(-1, keepdims=True) - R
         w /= n - 1
         np.subtract(R, w, out=w)
