@@ -379,7 +379,7 @@ class _Mask:
 
     def apply(self, x: Tensor) -> Tensor:
         """:meth:`select`, then times a floating mask's weights: the fast path's numbers, padding whatever it holds."""
-        y = torch.where(self.bool, x, 0.0)
+        y = self.select(x)
         return y * self.weights if self.multiplies else y
 
     def check_finite_weights(self, name: str) -> None:
