@@ -54,6 +54,17 @@ def test_eval_and_sample_commands(tmp_path, capsys):
     assert {(r["prompt_id"], r["prompt"]) for r in rows} == {(b, held[b].prompt) for b in range(3)}
     assert main(["estimate", str(samples)]) == 0
     assert "repeat" not in capsys.readouterr().err  # identical short responses carry distinct sample indices
+    # the run's final evaluation wrote its samples: bonft estimate on them gives the evaluation's own pass@k
+    final = json.loads((run / "summary.json").read_text())["evaluations"][-1]
+    assert main(["estimate", str(run / "heldout_samples.jsonl"), "--ks", "1,16", "--json", str(tmp_path / "h.json")]) == 0
+    (block,) = json.loads((tmp_path / "h.json").read_text())["blocks"]
+    assert block["pass_at_k_mean"] == pytest.approx(final["pass_at_k"]["mean"], abs=1e-12)
+    held_rows = [json.loads(line) for line in (run / "heldout_samples.jsonl").read_text().splitlines()]
+    assert [(r["prompt_id"], r["sample"]) for r in held_rows] == [(b, i) for b in range(4) for i in range(16)]
+    assert [r["prompt"] for r in held_rows[::16]] == [e.prompt for e in held]
+    # its lengths are the evaluation's (mean tokens per response), its scores every verifier's
+    assert sum(r["n_tokens"] for r in held_rows) / len(held_rows) == pytest.approx(final["mean_length"], abs=1e-12)
+    assert all({"score_exact", "score_proxy"} <= set(r) for r in held_rows)
 
 
 @pytest.mark.parametrize(

@@ -7,11 +7,13 @@ from math import comb
 import numpy as np
 import pytest
 
-from bonft.trainer.demo import DemoConfig, run_demo
+from bonft.tasks import get_task
+from bonft.trainer.demo import DemoConfig, collect_stage_pools, run_demo
+from bonft.trainer.demo.pipeline import policy_pools
 from bonft.trainer.demo.stats import best_temperatures, paired_bootstrap, per_prompt_curves, study_table, t_interval
 
 
-def test_tiny_demo_end_to_end(tmp_path):
+def test_tiny_demo_end_to_end(tmp_path, monkeypatch):
     dc = DemoConfig(run_dir=str(tmp_path / "demo"), train_prompts=32, heldout_prompts=4, warm_start_steps=3, warm_start_batch_size=8, rl_steps=2,
                     prompts_per_step=4, n=8, k=4, eval_samples=8, eval_ks=[1, 8], layers=1, width=32, heads=2,
                     max_new_tokens=4, n_boot=50, threads=1, workers=1, snr_every=1, log_every=1, plan_temperatures=(0.7, 1.3),
@@ -25,11 +27,29 @@ def test_tiny_demo_end_to_end(tmp_path):
     assert "placebo (pass@k, outcomes shuffled)" in md and "best temperature" in md
     for ev in summary["results"].values():  # all evaluated on the same held-out prompts and budget
         assert ev["n_prompts"] == 4 and ev["n_samples"] == 8 and ev["ks"] == [1, 8]
-    # the demo's own pools are the trainer's final evaluation (same policy, same per-prompt seeds)
+    # the demo's own pools are the trainer's final evaluation (same policy, same per-prompt seeds), read
+    # from its samples file: equal, bit for bit, to the pools sampled afresh from the stage's checkpoint
+    task = get_task(dc.task)
+    train, held = task.split(n_train=dc.train_prompts, n_eval=dc.heldout_prompts, seed=dc.seed)
     for name, ev in summary["results"].items():
         pools = np.load(out / name / "pools-T1-P4-n8.npz")
         assert pools["rewards"].mean() == pytest.approx(ev["mean_reward"], abs=1e-12)
         assert pools["rewards"].shape == (4, 8) and pools["proxy"].shape == (4, 8)
+        fresh = policy_pools(dc, out / name, held, list(train) + list(held), path=tmp_path / f"{name}.npz",
+                             temperature=1.0, n=8, step=0)
+        assert np.array_equal(fresh["rewards"], pools["rewards"]) and np.array_equal(fresh["proxy"], pools["proxy"])
+        assert fresh["family"].tolist() == pools["family"].tolist()
+        rows = [json.loads(ln) for ln in (out / name / "heldout_samples.jsonl").read_text().splitlines()]
+        assert [(r["prompt_id"], r["sample"]) for r in rows] == [(j, i) for j in range(4) for i in range(8)]
+        assert [r["prompt"] for r in rows[::8]] == [e.prompt for e in held]
+        assert all(r["temperature"] == 1.0 and r["score_exact"] == r["reward"] for r in rows)
+    # the report's pools come from that file: with sampling switched off they are found all the same
+    monkeypatch.setattr("bonft.trainer.demo.pipeline.collect_pools", lambda *a, **kw: pytest.fail("sampled again"))
+    before = dict(np.load(out / "pass_at_k" / "pools-T1-P4-n8.npz"))
+    (out / "pass_at_k" / "pools-T1-P4-n8.npz").unlink()
+    again = collect_stage_pools(dc, out / "pass_at_k", temperature=1.0, n_prompts=3, n=8)
+    assert np.array_equal(again["rewards"], before["rewards"][:3]) and np.array_equal(again["proxy"], before["proxy"][:3])
+    monkeypatch.undo()
     # the RL stages started from the warm start's checkpoint; the placebo is pass@k with shuffled outcomes
     placebo = (out / "placebo" / "config.toml").read_text()
     assert "warm_start/checkpoints/step-00000003" in placebo and "placebo = true" in placebo

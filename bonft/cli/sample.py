@@ -32,7 +32,7 @@ def run(args: argparse.Namespace) -> int:
 
     from bonft._core.checks import check_int, check_positive
     from bonft.io import write_samples
-    from bonft.trainer.evaluation import evaluate_policy
+    from bonft.trainer.evaluation import evaluate_policy, sample_rows
     from bonft.trainer.run import Stream
 
     n = check_int("--n", args.n, min=1)
@@ -55,14 +55,8 @@ def run(args: argparse.Namespace) -> int:
             extract_answer=getattr(r.task, "extract_answer", None), n=n, ks=[1], temperature=t,
             max_new_tokens=cfg.max_new_tokens, seed=Stream.SAMPLE_COMMAND.seed(args.seed, step=0), n_boot=10,
         )
-        scores = raw["scores"][which]
-        extract = getattr(r.task, "extract_answer", None)
-        for b in range(len(held)):
-            for i in range(n):
-                rows.append({"prompt_id": b, "prompt": held[b].prompt, "sample": i, "score": float(scores[b, i]),
-                             "reward": float(raw["rewards"][b, i]),
-                             "temperature": t, "response": raw["texts"][b][i], "n_tokens": int(raw["n_tokens"][b, i]),
-                             **({"answer": extract(raw["texts"][b][i])} if extract is not None else {})})
+        rows += sample_rows(raw, [e.prompt for e in held], temperature=t, score=which,
+                            extract_answer=getattr(r.task, "extract_answer", None))
         print(f"T={t:g}: pass@1 {rep.mean_reward:.3f}, {rep.distinct_answers:.1f} distinct answers/prompt")
     count = write_samples(args.output, rows)
     print(f"wrote {count} samples ({len(held)} prompts x {n} x {len(temps)} temperature(s), score = {which}) to {args.output}")

@@ -17,6 +17,7 @@ response at the sampling temperature, ``H ~= -(1/(P n)) sum_{b,i} log pi_T(y_bi 
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from pathlib import Path
 from typing import TYPE_CHECKING, Any, Callable, Sequence
 
 import numpy as np
@@ -24,6 +25,7 @@ import torch
 
 from bonft.estimate import MIN_BOOT_PROMPTS, summarize
 from bonft.generation import sample
+from bonft.io import write_samples
 from bonft.trainer.distributed import broadcast_object, gather_objects, shard_bounds
 from bonft.trainer.run import Stream
 from bonft.verifiers.roles import check_eval_rewards
@@ -31,6 +33,9 @@ from bonft.verifiers.scoring import score_batch
 
 if TYPE_CHECKING:  # annotations only
     from bonft.trainer.run import Run
+
+# the run directory's samples file of the final evaluation (every held-out sample, scored by every verifier)
+HELDOUT_SAMPLES = "heldout_samples.jsonl"
 
 
 @dataclass
@@ -184,6 +189,37 @@ def collect_pools(model: Any, tokenizer: Any, prompts: Sequence[str], *, verifie
     return raw
 
 
+def sample_rows(raw: dict, prompts: Sequence[str], *, temperature: float, score: str,
+                extract_answer: Callable[[str], Any] | None = None, every_score: bool = False) -> list[dict]:
+    """Pools of :func:`collect_pools` as the rows of a samples file (:mod:`bonft.io`), prompt-major.
+
+    One row per response: ``prompt_id`` (the prompt's position in ``prompts``), ``prompt``, ``sample``
+    (its index in the pool), ``score`` (verifier ``score``'s), ``reward`` (the evaluation verifier's),
+    ``temperature``, ``response``, ``n_tokens`` and, given ``extract_answer``, ``answer``.
+    ``every_score``: also ``score_<name>`` for every verifier in ``raw["scores"]`` (``bonft estimate
+    --score-field score_proxy`` then ranks by that verifier).
+    """
+    P, n = raw["rewards"].shape
+    if len(prompts) != P:
+        raise ValueError(f"prompts must hold the pools' P = {P} prompts, got {len(prompts)}")
+    if score not in raw["scores"]:
+        raise ValueError(f"score must name one of the pools' verifiers {sorted(raw['scores'])}, got {score!r}")
+    names = sorted(raw["scores"]) if every_score else []
+    rows = []
+    for b in range(P):
+        for i in range(n):
+            text = raw["texts"][b][i]
+            row = {"prompt_id": b, "prompt": prompts[b], "sample": i, "score": float(raw["scores"][score][b, i]),
+                   "reward": float(raw["rewards"][b, i]), "temperature": float(temperature), "response": text,
+                   "n_tokens": int(raw["n_tokens"][b, i])}
+            if extract_answer is not None:
+                row["answer"] = extract_answer(text)
+            for name in names:
+                row[f"score_{name}"] = float(raw["scores"][name][b, i])
+            rows.append(row)
+    return rows
+
+
 def merge_pools(parts: Sequence[dict]) -> dict:
     """Concatenate the ``raw`` pools of :func:`collect_pools` (e.g. gathered from ranks) along prompts."""
     parts = [p for p in parts if p is not None]
@@ -225,12 +261,14 @@ def report_from_pools(raw: dict, *, ks: Sequence[int], temperature: float, seed:
     )
 
 
-def evaluate_run(run: Run, step: int) -> EvalReport | None:
+def evaluate_run(run: Run, step: int, *, samples_to: Path | None = None) -> EvalReport | None:
     """Evaluate on the held-out prompts (same prompts and seeds at every evaluation); None on ranks > 0.
 
     Each rank samples and scores its block of the held-out prompts (prompt j from
     its own seed, so the pools do not depend on the number of ranks); rank 0
-    gathers the pools and runs the estimators once on all of them.
+    gathers the pools and runs the estimators once on all of them. ``samples_to``:
+    rank 0 also writes every sample there as a samples file (:func:`sample_rows`,
+    ``score`` being the training verifier's, ``score_<name>`` every verifier's), atomically.
     """
     cfg = run.cfg
     held = run.eval[: cfg.eval_prompts or len(run.eval)]
@@ -257,6 +295,11 @@ def evaluate_run(run: Run, step: int) -> EvalReport | None:
         raise ValueError(problem)
     if not run.is_main:
         return None
+    if samples_to is not None:
+        rows = sample_rows(merged, [e.prompt for e in held], temperature=cfg.eval_temperature,
+                           score=verifier if verifier in merged["scores"] else eval_verifier,
+                           extract_answer=getattr(run.task, "extract_answer", None), every_score=True)
+        write_samples(samples_to, rows)
     return report_from_pools(merged, eval_verifier=eval_verifier, verifier=verifier, ks=cfg.eval_ks, temperature=cfg.eval_temperature,
                              seed=Stream.EVALUATION.seed(cfg.seed, step=0), step=step, confidence=cfg.confidence,
                              n_boot=cfg.n_boot, groups=[(e.meta or {}).get("family", "all") for e in held])

@@ -67,7 +67,7 @@ from bonft.trainer.distributed import (
     unwrap_model,
     wrap_model,
 )
-from bonft.trainer.evaluation import evaluate_run
+from bonft.trainer.evaluation import HELDOUT_SAMPLES, evaluate_run
 from bonft.trainer.measure import Stopwatch
 from bonft.trainer.memory import keep_freed_memory
 from bonft.trainer.metrics import GRAD_CLIPPED, GRAD_NORM
@@ -318,7 +318,13 @@ def _eval_due(cfg: TrainConfig, s: int) -> bool:
 
 
 def _evaluate(run: Run, s: int, progress: bool) -> None:
-    rep = evaluate_run(run, s)  # every rank samples its share; the report is rank 0's
+    """Evaluate the weights of step s; the final evaluation also writes its samples (``HELDOUT_SAMPLES``)."""
+    path = run.out / HELDOUT_SAMPLES
+    if s != run.cfg.total_steps or not run.is_main:
+        rep = evaluate_run(run, s)  # every rank samples its share; the report is rank 0's
+    else:
+        with _writing(run, path, "the final evaluation's samples"):
+            rep = evaluate_run(run, s, samples_to=path)
     if rep is not None:
         _log(run, {"kind": "eval", **rep.to_dict()})
         if progress:

@@ -15,12 +15,13 @@ import numpy as np
 import torch
 from tqdm.auto import tqdm
 
+from bonft.io import group_pools, read_samples
 from bonft.tasks import TASKS, get_task
 from bonft.trainer.checkpoint import latest_checkpoint, quiet_transformers
-from bonft.trainer.config import MODEL_KEYS, TrainConfig
+from bonft.trainer.config import MODEL_KEYS, TrainConfig, read_recipe
 from bonft.trainer.demo.schedule import Workers, run_jobs
 from bonft.trainer.demo.stats import LABELS, best_temperatures, per_prompt_curves, seed_table
-from bonft.trainer.evaluation import collect_pools
+from bonft.trainer.evaluation import HELDOUT_SAMPLES, collect_pools
 from bonft.trainer.loop import train
 from bonft.trainer.metrics import GRAD_CLIPPED, GRAD_NORM, GRAD_SNR
 from bonft.trainer.models import load_model
@@ -210,9 +211,52 @@ def collect_stage_pools(dc: DemoConfig, stage_dir: Path, *, temperature: float, 
     """
     task = get_task(dc.task, **dc.task_params)
     train, held = task.split(n_train=dc.train_prompts, n_eval=dc.heldout_prompts, seed=dc.seed)
+    path = stage_dir / f"pools-T{temperature:g}-P{n_prompts}-n{n}.npz"
+    if not path.is_file():
+        found = final_eval_pools(dc, stage_dir, held[:n_prompts], temperature=temperature, n=n,
+                                 proxy=task.proxy_verifier(held[:n_prompts]) is not None)
+        if found is not None:
+            np.savez_compressed(path, **found)
+            return found
     return policy_pools(dc, stage_dir, held[:n_prompts], list(train) + list(held[:n_prompts]),
-                        path=stage_dir / f"pools-T{temperature:g}-P{n_prompts}-n{n}.npz", temperature=temperature, n=n,
-                        step=0)
+                        path=path, temperature=temperature, n=n, step=0)
+
+
+# the stage's keys that fix its final evaluation's prompts and samples, besides temperature and n
+_EVAL_KEYS = ("task", "task_params", "seed", "train_prompts", "heldout_prompts", "max_new_tokens")
+
+
+def final_eval_pools(dc: DemoConfig, stage_dir: Path, prompts: list, *, temperature: float, n: int,
+                     proxy: bool) -> dict | None:
+    """The pools :func:`policy_pools` would sample, read from the samples file of the stage's own final
+    evaluation (``HELDOUT_SAMPLES``: the same prompts, seeds, weights and verifiers), or None when the
+    stage has none that matches: a finished run whose last evaluation used the oracle (``exact``) at
+    ``temperature`` with ``n`` samples on at least ``len(prompts)`` prompts, whose config has the
+    demo's values of the keys that fix the prompts and the draws, and whose file holds a
+    ``score_proxy`` field when ``proxy``."""
+    last = _final_eval(stage_dir)
+    file = stage_dir / HELDOUT_SAMPLES
+    if last is None or not file.is_file() or not (stage_dir / "config.toml").is_file():
+        return None
+    if (last.get("eval_verifier") != "exact" or last.get("temperature") != temperature or last.get("n_samples") != n
+            or last.get("n_prompts", 0) < len(prompts)):
+        return None
+    cfg = read_recipe(stage_dir / "config.toml")
+    if any(cfg.get(key) != (dict(dc.task_params) if key == "task_params" else getattr(dc, key)) for key in _EVAL_KEYS):
+        return None
+    fields_ = {"score_field": "score_proxy"} if proxy else {}
+    try:
+        table = read_samples(file, duplicates="allow", **fields_)  # identical responses are distinct samples
+    except ValueError:  # no score_proxy field: sample afresh
+        return None
+    keys, proxies, rewards = group_pools(table)
+    P = len(prompts)
+    if keys[:P] != [str(j) for j in range(P)] or any(len(r) != n for r in rewards[:P]):
+        return None
+    out = {"rewards": np.stack(rewards[:P]), "family": np.array([str((e.meta or {}).get("family", "all")) for e in prompts])}
+    if proxy:
+        out["proxy"] = np.stack(proxies[:P])
+    return out
 
 
 def policy_pools(dc: DemoConfig, stage_dir: Path, prompts: list, examples: list, *, path: Path, temperature: float,
