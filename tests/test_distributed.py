@@ -447,6 +447,50 @@ def test_two_trainer_processes_end_with_the_one_process_weights(tmp_path, monkey
     assert ev2["n_prompts"] == ev1["n_prompts"] == 5
     assert ev2["pass_at_k"] == ev1["pass_at_k"] and ev2["mean_reward"] == pytest.approx(ev1["mean_reward"], abs=1e-12)
     assert sorted(p.name for p in (tmp_path / "two" / "checkpoints").iterdir()) == ["step-00000002", "step-00000004"]
+    # rank 0 writes the final evaluation's samples of every rank's prompts: the one-process file
+    assert (tmp_path / "two" / "heldout_samples.jsonl").read_text() == (tmp_path / "one" / "heldout_samples.jsonl").read_text()
+    assert len((tmp_path / "one" / "heldout_samples.jsonl").read_text().splitlines()) == 5 * 4
+
+
+def test_two_ranks_train_a_lora_adapter_as_one_process_does(tmp_path, monkeypatch):
+    """A LoRA adapter (peft) on a user's base model, warm start then RL on 2 gloo ranks vs 1 process: the
+    adapter weights agree to float32 round-off (DDP averages the adapter's gradients only; the frozen base
+    has none) and the checkpoints hold the adapter alone. Reference: the one-process run, as above."""
+    import json
+
+    pytest.importorskip("peft")
+    from safetensors.torch import load_file
+
+    from bonft.tasks import build_tokenizer
+    from bonft.trainer.config import from_dict
+    from bonft.trainer.loop import train
+    from bonft.trainer.models import build_tiny_model
+
+    tok = build_tokenizer()
+    base = build_tiny_model("llama", vocab_size=len(tok), layers=1, width=32, heads=2, max_positions=48, seed=0,
+                            pad_token_id=tok.pad_token_id, eos_token_id=tok.eos_token_id, bos_token_id=tok.bos_token_id)
+    base.save_pretrained(str(tmp_path / "base"))
+    tok.save_pretrained(str(tmp_path / "base"))
+    monkeypatch.syspath_prepend(str(SCRIPTS))
+    monkeypatch.setenv("PYTHONPATH", os.pathsep.join([str(SCRIPTS), os.environ.get("PYTHONPATH", "")]))
+    model_keys = ("arch", "layers", "width", "heads", "max_positions")
+    cfg = {**{k: v for k, v in TRAIN_CFG.items() if k not in model_keys}, "start_from": str(tmp_path / "base"),
+           "adapter_rank": 4}
+    (tmp_path / "two.json").write_text(json.dumps({**cfg, "run_dir": str(tmp_path / "two")}))
+    procs = launch("train_ranks.py", [0, 1], 2, tmp_path / "two.json")
+    train(from_dict({**cfg, "run_dir": str(tmp_path / "one")}), progress=False)
+    res = finish(procs, limit=300)
+    assert [rc for rc, _, _ in res] == [0, 0], res[0][2][-3000:] + res[1][2][-3000:]
+
+    def adapter(run: str, step: int) -> dict:
+        return load_file(str(tmp_path / run / "checkpoints" / f"step-{step:08d}" / "model" / "adapter_model.safetensors"))
+
+    one, two = adapter("one", 4), adapter("two", 4)
+    assert sorted(one) == sorted(two) and len(one) > 0
+    assert max_diff(two, one) < 1e-6
+    lora_b = [k for k in one if "lora_B" in k]  # B starts at 0 (Hu et al. 2021): non-zero means it trained
+    assert lora_b and max(float(one[k].abs().max()) for k in lora_b) > 1e-4
+    assert not (tmp_path / "two" / "checkpoints" / "step-00000004" / "model" / "model.safetensors").exists()
 
 
 def test_a_peer_killed_mid_step_is_named_with_the_step_and_the_intact_checkpoint(tmp_path, monkeypatch):
