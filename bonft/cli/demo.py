@@ -6,7 +6,7 @@ import dataclasses
 import inspect
 import re
 
-HELP = "the built-in demo: REINFORCE vs a pass@k-aware objective vs a placebo from one warm start (~10 min on 2 CPU cores)"
+HELP = "the built-in demo: REINFORCE vs a pass@k-aware objective vs a placebo from one warm start (about 3.5 min on 2 CPU cores)"
 DESCRIPTION = (
     "Build a tiny GPT-2-style model, warm-start it on a built-in task (--task: refunds by default; workshop "
     "writes one-line Python helpers judged by unit tests in the sandbox, with its own budget and best-of-k under "

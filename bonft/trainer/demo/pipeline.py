@@ -37,7 +37,7 @@ class DemoConfig(TrainConfig):
     prompts a warm start answers right about 4% of the time; RL steps of 64 prompts x 32 samples,
     plain SGD at lr 0.01 with no clipping and an anchor (KL to the warm start, weight 0.2). lr 0.01 is
     the study's choice for pass@k (unbiased) on its validation grid and admissible for REINFORCE too
-    (its placebo within noise of the warm start; at 0.02 neither placebo was). They fit ~10 minutes on
+    (its placebo within noise of the warm start; at 0.02 neither placebo was). They take about 3.5 minutes on
     2 CPU cores.
     Another task brings its own settings (``Task.demo_settings``, e.g. longer responses for a task
     whose answers are programs): build the config with :meth:`for_task`.
