@@ -370,6 +370,40 @@ def test_named_losses_are_their_credit_through_the_core():
         policy_gradient_loss(lp0, np.array([[0, np.nan, 0, 0, 0]] * 3), mask=mask)
 
 
+@pytest.mark.filterwarnings("ignore:overflow encountered:RuntimeWarning", "ignore:invalid value:RuntimeWarning")
+@pytest.mark.parametrize("numpy_on_cpu", [True, False])
+def test_finite_rewards_whose_credit_overflows_are_a_value_error_not_a_nan_loss(numpy_on_cpu, monkeypatch):
+    # IEEE 754 double arithmetic: 1.5e308 - (-1.5e308) = 3e308 exceeds the largest double (1.798e308), so
+    # the leave-one-out credit of these finite rewards overflows: its row sum is +inf and the first
+    # credit (0 - inf/2)/3 = -inf. The named losses check the credit they compute on every path: with the
+    # loss's own read on a CPU (sequence level, the masked fast path), before the loss elsewhere (sample
+    # reuse, an accelerator, simulated by the numpy switch).
+    from bonft.objectives import losses
+
+    monkeypatch.setattr(losses, "_NUMPY_ON_CPU", numpy_on_cpu)
+    R = np.array([[-1.5e308, 1.5e308, 0.0], [0.0, 1.0, 0.0]])
+    lp_tok = -torch.rand(2, 3, 4, generator=torch.Generator().manual_seed(0))
+    mask = torch.ones(2, 3, 4, dtype=torch.bool)
+    mask[:, :, 3] = False
+    cases = [(lp_tok.sum(-1), {}), (lp_tok.sum(-1).double(), {"reduction": "none", "return_info": True}),
+             (lp_tok, {"mask": mask}), (lp_tok, {"mask": mask.float(), "return_info": True}),
+             (lp_tok.sum(-1), {"sampling_logprobs": lp_tok.sum(-1)}), (lp_tok, {"anchor_logprobs": lp_tok})]
+    for lp, kw in cases:
+        with pytest.raises(ValueError, match=r"credit must be finite, got -inf at index \(0, 0\)"):
+            reinforce_loss(lp.clone().requires_grad_(True), R, **kw)
+        with pytest.raises(ValueError, match=r"credit must be finite, got"):  # its tie sums overflow elsewhere
+            best_of_k_loss(lp.clone().requires_grad_(True), np.zeros((2, 3)), R, k=1, **kw)
+    # the error a non-finite credit gives comes before the errors of the other options, as when it was
+    # checked first: here an anchor of the wrong shape
+    with pytest.raises(ValueError, match=r"credit must be finite"):
+        reinforce_loss(lp_tok.sum(-1), R, anchor_logprobs=lp_tok)
+    # a non-finite loss from a non-finite log-prob (finite credit) is returned as it is, not an error
+    lp = lp_tok.sum(-1).clone()
+    lp[1, 1] = -torch.inf
+    loss = reinforce_loss(lp, np.array([[0.0, 1.0, 0.0], [0.0, 1.0, 0.0]]))
+    assert torch.isinf(loss) and float(loss) > 0  # credit 1/3 for the -inf log-prob: -(1/3)(-inf)/2 = +inf
+
+
 def test_monitors_by_hand():
     # Hand computation: B = 2 prompts, n = 3, T = 4. Prompt 0 rewards (1, 0, 0): leave-one-out credit
     # w_i = (R_i - mean of the others)/3 = (1/3, -1/6, -1/6); prompt 1 rewards all equal: credit 0.

@@ -522,6 +522,9 @@ def _reinforce_core(R: np.ndarray, baseline: str) -> np.ndarray:
         w = R.sum(-1, keepdims=True) - R
         w /= n - 1
         np.subtract(R, w, out=w)
-        w /= n
+        if n & (n - 1) == 0:
+            w *= 1.0 / n  # n a power of two: the same exact scaling as the division, at half its cost
+        else:
+            w /= n
         return w
     return R / n

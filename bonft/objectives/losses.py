@@ -136,7 +136,9 @@ from bonft.objectives.credit import (
     best_of_k_sft_credit,
 )
 from bonft.objectives.validation import (
+    _DEFAULT_OPTIONS,
     LossOptions,
+    _check_finite_host,
     as_host,
     check_empty_rows,
     check_logprobs,
@@ -188,14 +190,48 @@ def policy_gradient_loss(logprobs, credit, **common):
     return _policy_gradient_loss(logprobs, credit, LossOptions.from_keywords("policy_gradient_loss", common))
 
 
-def _policy_gradient_loss(logprobs, credit, opt: LossOptions):
-    """:func:`policy_gradient_loss` with its options checked (the named losses check them under their own name)."""
-    lp = check_logprobs("logprobs", logprobs, seq_ndim=2)
+def _policy_gradient_loss(logprobs, credit, opt: LossOptions, *, own: bool = False):
+    """:func:`policy_gradient_loss` with its options checked (the named losses check them under their own name).
+
+    ``own``: ``logprobs`` were checked and ``credit`` is a float64 host array a named loss computed from
+    its checked, finite pools (:func:`_own_credit`): no generic conversion, and on a CPU its finiteness
+    (an overflow of finite rewards can still give an infinity) is looked at only when the loss is not finite.
+    """
+    lp = logprobs if own else check_logprobs("logprobs", logprobs, seq_ndim=2)
     mask = check_mask("mask", opt.mask, "logprobs", lp, seq_ndim=2)
     if opt.check_tokens:
         check_token_values("logprobs", lp, "mask", opt.mask, mask)
-    w = credit_tensor(credit, lp, check_device=opt.check_tokens)
+    if not own:
+        return _checked_credit_loss(lp, mask, credit_tensor(credit, lp, check_device=opt.check_tokens), opt)
+    if not _numpy_view(lp) or opt.sampling_logprobs is not None:  # no read of the loss to share: checked now
+        _check_finite_host("credit", credit)
+        return _checked_credit_loss(lp, mask, _own_credit(credit, lp), opt)
+    try:
+        out = _checked_credit_loss(lp, mask, _own_credit(credit, lp), opt, late=credit)
+    except (TypeError, ValueError):
+        _check_finite_host("credit", credit)  # the error a non-finite credit gives comes first, as when checked first
+        raise
+    if mask is None:  # a non-finite credit makes the loss non-finite (inf * 0 is NaN): one read of host memory
+        loss = out[0] if opt.return_info else out
+        if not math.isfinite(loss.item() if loss.ndim == 0 else float(loss.detach().numpy().sum())):
+            _check_finite_host("credit", credit)
+    return out
+
+
+def _own_credit(credit: np.ndarray, lp: Tensor) -> Tensor:
+    """A float64 host credit the losses computed -> a tensor of lp's dtype on its device (the conversion only)."""
+    w = torch.from_numpy(credit)
+    if lp.device.type == "cpu":  # no device argument: half the cost of the call with one
+        return w if lp.dtype == torch.float64 else w.to(dtype=lp.dtype)
+    return w.to(device=lp.device, dtype=lp.dtype, non_blocking=True)
+
+
+def _checked_credit_loss(lp: Tensor, mask: Tensor | None, w: Tensor, opt: LossOptions, *, late=None):
+    """:func:`_policy_gradient_loss` once the credit is a tensor. ``late``: the own host credit whose finiteness
+    is still to be checked, before anything else, where the one read finds a non-finite value."""
     if mask is None:
+        if lp.ndim == 2 and opt is _DEFAULT_OPTIONS:  # the plain sequence-level loss: _policy_gradient's operations
+            return (-(w * lp).sum(-1)).mean()
         loss, info, _, _ = _policy_gradient(lp, w, None, opt, fast=False)
     elif opt.sampling_logprobs is not None:  # sample reuse reads its ratios anyway: the where path, checked first
         check_empty_rows("mask", mask, None if opt.check_tokens else w)
@@ -207,6 +243,8 @@ def _policy_gradient_loss(logprobs, credit, opt: LossOptions):
         m = _Mask(mask, lp.dtype)
         loss, info, checked, sums = _policy_gradient(lp, w, m, opt, fast=True)
         if _needs_a_look(checked, sums):  # the one read
+            if late is not None:
+                _check_finite_host("credit", late)
             # an empty row (with credit, or any with check_tokens): a ValueError
             check_empty_rows("mask", mask, None if opt.check_tokens else w)
             if not bool(torch.isfinite(checked).all()):  # NaN or an infinity: where
@@ -554,17 +592,19 @@ def _reduce(per_prompt: Tensor, reduction: str) -> Tensor:
     return per_prompt
 
 
-def _host_pool(logprobs, **arrays) -> list[np.ndarray]:
-    """The pool's (B, n) arrays as float64 host arrays (one copy from a device), shaped like logprobs' (B, n)."""
+def _host_pool(logprobs, **arrays) -> tuple[Tensor, list[np.ndarray]]:
+    """The checked log-probs and the pool's (B, n) arrays as float64 host arrays (one copy from a device), shaped
+    like logprobs' (B, n)."""
     out = []
     for name, x in arrays.items():
         a = as_host(name, x, ndim=2)
         if not out:  # logprobs checked once, after the first array (the order of the errors)
-            want = tuple(check_logprobs("logprobs", logprobs, seq_ndim=2).shape[:2])
+            lp = check_logprobs("logprobs", logprobs, seq_ndim=2)
+            want = lp.shape[:2]
         if a.shape != want:
             check_pool_shape(name, a, logprobs)
         out.append(a)
-    return out
+    return lp, out
 
 
 def _with_pool_value(out, value):
@@ -602,9 +642,9 @@ def best_of_k_loss(logprobs, scores, rewards, *, k, baseline="loo", **common):
     Sampling in LLMs"; Kool et al. 2019.
     """
     opt = LossOptions.from_keywords("best_of_k_loss", common)  # option errors name this loss, before any work
-    s, R = _host_pool(logprobs, scores=scores, rewards=rewards)
+    lp, (s, R) = _host_pool(logprobs, scores=scores, rewards=rewards)
     credit, value = _best_of_k_credit_host(s, R, k=k, baseline=baseline)  # one pass gives both
-    return _with_pool_value(_policy_gradient_loss(logprobs, credit, opt), lambda: value)
+    return _with_pool_value(_policy_gradient_loss(lp, credit, opt, own=True), lambda: value)
 
 
 def pass_at_k_loss(logprobs, correct, *, k, estimator="unbiased", positive_only=False, **common):
@@ -631,11 +671,11 @@ def pass_at_k_loss(logprobs, correct, *, k, estimator="unbiased", positive_only=
     on Code"; Walder & Karkhanis 2025.
     """
     opt = LossOptions.from_keywords("pass_at_k_loss", common)  # option errors name this loss, before any work
-    (c,) = _host_pool(logprobs, correct=correct)
+    lp, (c,) = _host_pool(logprobs, correct=correct)
     check_binary("correct", c)
     credit = _pass_at_k_credit_host(c, k=k, estimator=estimator, positive_only=positive_only)
     n = c.shape[1]  # Chen et al. 2021's 1 - C(n-c, k)/C(n, k) of each pool (k was checked with the credit)
-    return _with_pool_value(_policy_gradient_loss(logprobs, credit, opt),
+    return _with_pool_value(_policy_gradient_loss(lp, credit, opt, own=True),
                             lambda: _pass_values(n, int(k)).take(c.sum(-1).astype(np.int64)))
 
 
@@ -655,9 +695,9 @@ def reinforce_loss(logprobs, rewards, *, baseline="loo", **common):
     References: Kool et al. 2019, "Buy 4 REINFORCE samples, get a baseline for free!".
     """
     opt = LossOptions.from_keywords("reinforce_loss", common)  # option errors name this loss, before any work
-    (R,) = _host_pool(logprobs, rewards=rewards)
+    lp, (R,) = _host_pool(logprobs, rewards=rewards)
     credit = _reinforce_credit_host(R, baseline=baseline)
-    return _with_pool_value(_policy_gradient_loss(logprobs, credit, opt), lambda: R.mean(-1))
+    return _with_pool_value(_policy_gradient_loss(lp, credit, opt, own=True), lambda: R.mean(-1))
 
 
 def best_of_k_sft_loss(logprobs, scores, reference_logprobs, reference_scores, *, k, smoothing=1.0,
@@ -690,7 +730,7 @@ def best_of_k_sft_loss(logprobs, scores, reference_logprobs, reference_scores, *
     Sampling in LLMs" (BoN-SFT).
     """
     opt = LossOptions.from_keywords("best_of_k_sft_loss", common)
-    (s,) = _host_pool(logprobs, scores=scores)
+    lp, (s,) = _host_pool(logprobs, scores=scores)
     e = as_host("reference_scores", reference_scores, ndim=1)
     B = logprobs.shape[0]
     ref = check_logprobs("reference_logprobs", reference_logprobs, seq_ndim=1)
@@ -700,7 +740,7 @@ def best_of_k_sft_loss(logprobs, scores, reference_logprobs, reference_scores, *
     ref_opt = LossOptions(mask=reference_mask, token_reduction=opt.token_reduction, reduction=opt.reduction,
                           check_tokens=opt.check_tokens)
     ref_loss, _, _ = _nll("reference_logprobs", ref, "reference_mask", ref_opt)
-    out = _policy_gradient_loss(logprobs, credit, opt)
+    out = _policy_gradient_loss(lp, credit, opt, own=True)
     if not opt.return_info:
         return out + ref_loss
     loss, info = out

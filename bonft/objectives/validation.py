@@ -47,12 +47,15 @@ RATIO_LEVELS = ("token", "sequence", "pool")
 
 def as_host(name: str, x: Any, *, ndim: int) -> np.ndarray:
     """Any array-like -> finite, non-empty float64 numpy array with ``ndim`` dimensions."""
-    if is_tensor(x):
+    if type(x) is np.ndarray and x.dtype == np.float64:  # the usual host pool: as it is, no conversion to try
+        a = x
+    elif is_tensor(x):
         t = x.detach()
         if t.is_complex():
             raise TypeError(f"{name} must hold real numbers, got dtype {t.dtype}")
-        x = t.cpu().to(torch.float64).numpy()  # bool, ints, float16/bfloat16 included
-    a = as_float_array(name, x)
+        a = t.cpu().to(torch.float64).numpy()  # bool, ints, float16/bfloat16 included
+    else:
+        a = as_float_array(name, x)
     if a.ndim != ndim:
         want = "(B, n)" if ndim == 2 else "(B,)"
         raise ValueError(f"{name} must have shape {want} ({ndim} dimension(s)), got shape {tuple(a.shape)}")
@@ -363,6 +366,8 @@ class LossOptions:
     @classmethod
     def from_keywords(cls, where: str, common: dict, *, refused: tuple[str, ...] = ()) -> "LossOptions":
         """Options from ``**common`` of the function ``where``; unknown keys and ``refused`` ones are errors."""
+        if not common:
+            return _DEFAULT_OPTIONS  # frozen: one instance serves every call without options
         known = _OPTION_NAMES
         for key in common:
             if key not in known:
@@ -376,3 +381,4 @@ class LossOptions:
 
 
 _OPTION_NAMES = frozenset(f.name for f in dataclasses.fields(LossOptions))  # looked up on every loss call
+_DEFAULT_OPTIONS = LossOptions()
