@@ -36,6 +36,16 @@ def test_threshold_never_reached_names_correct_threshold():
         feed(watch, [{"pool/with_signal": 0.0, "reward": 0.42}])
 
 
+def test_pass_at_k_pools_all_correct_blame_the_threshold_not_the_rewards():
+    # a mean reward of 2.88 with correct_threshold 0.5: some sample reached the threshold (a mean never
+    # exceeds the largest value), so "no sample reached it" would be false; every pool was all-correct instead
+    watch = ZeroCreditWatch(10, "pass_at_k", 0.5)
+    with pytest.warns(ZeroCreditWarning, match=r"every pool was all-correct or all-wrong at correct_threshold = 0.5 "
+                                               r"\(mean reward up to 2.88\).*raise correct_threshold") as got:
+        feed(watch, [{"pool/with_signal": 0.0, "reward": 2.88}])
+    assert "no sample reached" not in str(got[0].message)
+
+
 def test_all_equal_pools():
     watch = ZeroCreditWatch(10, "reinforce", 0.5)
     with pytest.warns(ZeroCreditWarning, match=r"every pool was all-equal \(mean reward up to 1:"):

@@ -8,8 +8,9 @@ with the count and the likely cause, read from the steps' metrics:
 
 * mean reward 0 on every step: no sample was ever rewarded (the verifier
   rejects everything the starting policy writes);
-* a pass@k objective whose rewards are above 0 but never reach
-  ``correct_threshold``: no sample counts as correct;
+* a pass@k objective whose mean rewards are above 0 but below ``correct_threshold``:
+  no sample counts as correct; at or above it: every pool was all-correct or all-wrong
+  (e.g. a verifier of scores such as lengths, where every sample clears the threshold);
 * otherwise every pool was all-equal (e.g. every sample rewarded alike), so
   leave-one-out credit is zero.
 
@@ -65,10 +66,15 @@ class ZeroCreditWatch:
             cause = ("Likely cause: no sample was ever rewarded (mean reward 0 on every step): the verifier rejects "
                      "everything the starting policy writes; check the verifier on a few samples, warm-start first, or "
                      "raise n")
-        elif self.objective.startswith("pass_at_k"):
+        elif self.objective.startswith("pass_at_k") and top < self.threshold:
             cause = (f"Likely cause: rewards were above 0 (mean up to {top:.3g}) but no sample reached correct_threshold = "
                      f"{self.threshold:g}, so none counts as correct for {self.objective!r}; lower correct_threshold to a "
                      "reward the verifier gives")
+        elif self.objective.startswith("pass_at_k"):  # a mean at or above the threshold: some samples count as correct
+            cause = (f"Likely cause: every pool was all-correct or all-wrong at correct_threshold = {self.threshold:g} "
+                     f"(mean reward up to {top:.3g}), so the pass@k credit is zero; if the verifier gives scores rather "
+                     "than 0/1 rewards, raise correct_threshold to the score that means correct; else raise n or "
+                     "temperature, or use harder prompts")
         else:
             cause = (f"Likely cause: every pool was all-equal (mean reward up to {top:.3g}: every sample of a prompt "
                      "scored alike), so leave-one-out credit is zero; raise n or temperature, or use harder prompts")
