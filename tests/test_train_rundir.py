@@ -235,6 +235,26 @@ def test_a_plot_that_cannot_be_written_names_it(tmp_path, monkeypatch):
         T.train(cfg, progress=False)
 
 
+def test_the_final_samples_file_that_cannot_be_written_warns_and_the_final_checkpoint_is_written(tmp_path, monkeypatch):
+    import bonft.trainer.evaluation as E
+
+    def no_space(path, rows):
+        raise OSError(errno.ENOSPC, "No space left on device")
+
+    monkeypatch.setattr(E, "write_samples", no_space)
+    cfg = tiny(tmp_path, rl_steps=2)
+    with pytest.warns(RuntimeWarning, match=r"^the final evaluation's samples were not written to .*heldout_samples.jsonl "
+                                            r"\(OSError: \[Errno 28\] No space left on device\); the evaluation and the "
+                                            r"checkpoints are not affected$"):
+        T.train(cfg, progress=False)
+    assert latest_checkpoint(cfg.run_dir).name == "step-00000004" and (Path(cfg.run_dir) / "summary.json").is_file()
+    assert not (Path(cfg.run_dir) / "heldout_samples.jsonl").exists()
+    monkeypatch.undo()
+    off = tiny(tmp_path, "off", rl_steps=1, heldout_samples=False)  # the key switches the file off
+    T.train(off, progress=False)
+    assert not (Path(off.run_dir) / "heldout_samples.jsonl").exists() and (Path(off.run_dir) / "summary.json").is_file()
+
+
 @pytest.fixture
 def small_disk(tmp_path):
     """A tmpfs mounted for the test (needs root; skipped where mounting is not allowed)."""

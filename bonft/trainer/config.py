@@ -270,6 +270,9 @@ class TrainConfig:
     keep_checkpoints: int = _f(2, "How many recent checkpoints to keep (>= 1).", group="checkpoint")
     log_every: int = _f(10, "Write a metrics line every this many steps.", group="checkpoint")
     plots: bool = _f(True, "Write PNG plots of the evaluation curves.", group="checkpoint")
+    heldout_samples: bool = _f(True,
+                               "Write every sample of the final evaluation (response, reward, each verifier's score) "
+                               "to heldout_samples.jsonl, the samples file bonft estimate reads.", group="checkpoint")
 
     def __post_init__(self) -> None:
         validate(self)

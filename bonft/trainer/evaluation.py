@@ -16,6 +16,7 @@ response at the sampling temperature, ``H ~= -(1/(P n)) sum_{b,i} log pi_T(y_bi 
 """
 from __future__ import annotations
 
+import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, Callable, Sequence
@@ -268,7 +269,8 @@ def evaluate_run(run: Run, step: int, *, samples_to: Path | None = None) -> Eval
     its own seed, so the pools do not depend on the number of ranks); rank 0
     gathers the pools and runs the estimators once on all of them. ``samples_to``:
     rank 0 also writes every sample there as a samples file (:func:`sample_rows`,
-    ``score`` being the training verifier's, ``score_<name>`` every verifier's), atomically.
+    ``score`` being the training verifier's, ``score_<name>`` every verifier's), atomically;
+    a write that fails (a full disk) is a ``RuntimeWarning`` naming the path and the cause.
     """
     cfg = run.cfg
     held = run.eval[: cfg.eval_prompts or len(run.eval)]
@@ -295,11 +297,16 @@ def evaluate_run(run: Run, step: int, *, samples_to: Path | None = None) -> Eval
         raise ValueError(problem)
     if not run.is_main:
         return None
+    report = report_from_pools(merged, eval_verifier=eval_verifier, verifier=verifier, ks=cfg.eval_ks, temperature=cfg.eval_temperature,
+                             seed=Stream.EVALUATION.seed(cfg.seed, step=0), step=step, confidence=cfg.confidence,
+                             n_boot=cfg.n_boot, groups=[(e.meta or {}).get("family", "all") for e in held])
     if samples_to is not None:
         rows = sample_rows(merged, [e.prompt for e in held], temperature=cfg.eval_temperature,
                            score=verifier if verifier in merged["scores"] else eval_verifier,
                            extract_answer=getattr(run.task, "extract_answer", None), every_score=True)
-        write_samples(samples_to, rows)
-    return report_from_pools(merged, eval_verifier=eval_verifier, verifier=verifier, ks=cfg.eval_ks, temperature=cfg.eval_temperature,
-                             seed=Stream.EVALUATION.seed(cfg.seed, step=0), step=step, confidence=cfg.confidence,
-                             n_boot=cfg.n_boot, groups=[(e.meta or {}).get("family", "all") for e in held])
+        try:  # a by-product: a full disk must not cost the run its final checkpoint, which is written next
+            write_samples(samples_to, rows)
+        except OSError as e:
+            warnings.warn(f"the final evaluation's samples were not written to {samples_to} ({type(e).__name__}: {e}); "
+                          "the evaluation and the checkpoints are not affected", RuntimeWarning, stacklevel=2)
+    return report

@@ -318,13 +318,9 @@ def _eval_due(cfg: TrainConfig, s: int) -> bool:
 
 
 def _evaluate(run: Run, s: int, progress: bool) -> None:
-    """Evaluate the weights of step s; the final evaluation also writes its samples (``HELDOUT_SAMPLES``)."""
-    path = run.out / HELDOUT_SAMPLES
-    if s != run.cfg.total_steps or not run.is_main:
-        rep = evaluate_run(run, s)  # every rank samples its share; the report is rank 0's
-    else:
-        with _writing(run, path, "the final evaluation's samples"):
-            rep = evaluate_run(run, s, samples_to=path)
+    """Evaluate the weights of step s; the final one also writes its samples (``heldout_samples``, rank 0)."""
+    final = s == run.cfg.total_steps and run.cfg.heldout_samples and run.is_main
+    rep = evaluate_run(run, s, samples_to=run.out / HELDOUT_SAMPLES if final else None)  # the report is rank 0's
     if rep is not None:
         _log(run, {"kind": "eval", **rep.to_dict()})
         if progress:
