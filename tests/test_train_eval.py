@@ -70,3 +70,24 @@ def test_report_table_prints_no_interval_below_ten_prompts():
     assert "[0.500,0.500]" not in few.table()
     many = EvalReport(step=0, ks=[1, 4], n_prompts=12, n_samples=4, temperature=1.0, pass_at_k=curve)
     assert "[0.500,0.500]" in many.table() and "n/a" not in many.table()
+
+
+def test_sample_rows_write_the_samples_file_that_read_samples_reads_back(tmp_path):
+    """Pools planted by hand -> rows -> the samples file -> bonft.io's reader: the same numbers, prompt-major."""
+    from bonft.io import group_pools, read_samples, write_samples
+    from bonft.trainer.evaluation import sample_rows
+
+    raw = {"texts": [["7", "8"], ["x", "9"]], "n_tokens": np.array([[2, 2], [2, 3]]),
+           "rewards": np.array([[1.0, 0.0], [0.0, 1.0]]),
+           "scores": {"exact": np.array([[1.0, 0.0], [0.0, 1.0]]), "proxy": np.array([[0.25, 0.75], [0.5, 0.125]])}}
+    rows = list(sample_rows(raw, ["p0", "p1"], temperature=0.7, score="proxy", extract_answer=str.strip, every_score=True))
+    assert rows[3] == {"prompt_id": 1, "prompt": "p1", "sample": 1, "score": 0.125, "reward": 1.0, "temperature": 0.7,
+                       "response": "9", "n_tokens": 3, "answer": "9", "score_exact": 1.0, "score_proxy": 0.125}
+    write_samples(tmp_path / "s.jsonl", sample_rows(raw, ["p0", "p1"], temperature=0.7, score="proxy"))
+    keys, scores, rewards = group_pools(read_samples(tmp_path / "s.jsonl"))
+    assert keys == ["0", "1"] and [s.tolist() for s in scores] == [[0.25, 0.75], [0.5, 0.125]]
+    assert [r.tolist() for r in rewards] == [[1.0, 0.0], [0.0, 1.0]]
+    with pytest.raises(ValueError, match=r"prompts must hold the pools' P = 2 prompts, got 1"):
+        sample_rows(raw, ["p0"], temperature=1.0, score="proxy")
+    with pytest.raises(ValueError, match=r"score must name one of the pools' verifiers \['exact', 'proxy'\], got 'rm'"):
+        sample_rows(raw, ["p0", "p1"], temperature=1.0, score="rm")

@@ -2,6 +2,7 @@
 from __future__ import annotations
 
 import argparse
+import itertools
 
 from bonft.cli.evaluate import add_common, announce, load_for_eval
 from bonft.cli.options import check_seed, parse_list
@@ -55,9 +56,9 @@ def run(args: argparse.Namespace) -> int:
             extract_answer=getattr(r.task, "extract_answer", None), n=n, ks=[1], temperature=t,
             max_new_tokens=cfg.max_new_tokens, seed=Stream.SAMPLE_COMMAND.seed(args.seed, step=0), n_boot=10,
         )
-        rows += sample_rows(raw, [e.prompt for e in held], temperature=t, score=which,
-                            extract_answer=getattr(r.task, "extract_answer", None))
+        rows.append(sample_rows(raw, [e.prompt for e in held], temperature=t, score=which,
+                                extract_answer=getattr(r.task, "extract_answer", None)))
         print(f"T={t:g}: pass@1 {rep.mean_reward:.3f}, {rep.distinct_answers:.1f} distinct answers/prompt")
-    count = write_samples(args.output, rows)
+    count = write_samples(args.output, itertools.chain(*rows))  # one row at a time
     print(f"wrote {count} samples ({len(held)} prompts x {n} x {len(temps)} temperature(s), score = {which}) to {args.output}")
     return 0

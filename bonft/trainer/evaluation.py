@@ -19,7 +19,7 @@ from __future__ import annotations
 import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import TYPE_CHECKING, Any, Callable, Sequence
+from typing import TYPE_CHECKING, Any, Callable, Iterator, Sequence
 
 import numpy as np
 import torch
@@ -191,8 +191,9 @@ def collect_pools(model: Any, tokenizer: Any, prompts: Sequence[str], *, verifie
 
 
 def sample_rows(raw: dict, prompts: Sequence[str], *, temperature: float, score: str,
-                extract_answer: Callable[[str], Any] | None = None, every_score: bool = False) -> list[dict]:
-    """Pools of :func:`collect_pools` as the rows of a samples file (:mod:`bonft.io`), prompt-major.
+                extract_answer: Callable[[str], Any] | None = None, every_score: bool = False) -> Iterator[dict]:
+    """Pools of :func:`collect_pools` as the rows of a samples file (:mod:`bonft.io`), prompt-major, one at a
+    time (a large evaluation is written without holding every row in memory; the arguments are checked first).
 
     One row per response: ``prompt_id`` (the prompt's position in ``prompts``), ``prompt``, ``sample``
     (its index in the pool), ``score`` (verifier ``score``'s), ``reward`` (the evaluation verifier's),
@@ -206,19 +207,21 @@ def sample_rows(raw: dict, prompts: Sequence[str], *, temperature: float, score:
     if score not in raw["scores"]:
         raise ValueError(f"score must name one of the pools' verifiers {sorted(raw['scores'])}, got {score!r}")
     names = sorted(raw["scores"]) if every_score else []
-    rows = []
-    for b in range(P):
-        for i in range(n):
-            text = raw["texts"][b][i]
-            row = {"prompt_id": b, "prompt": prompts[b], "sample": i, "score": float(raw["scores"][score][b, i]),
-                   "reward": float(raw["rewards"][b, i]), "temperature": float(temperature), "response": text,
-                   "n_tokens": int(raw["n_tokens"][b, i])}
-            if extract_answer is not None:
-                row["answer"] = extract_answer(text)
-            for name in names:
-                row[f"score_{name}"] = float(raw["scores"][name][b, i])
-            rows.append(row)
-    return rows
+
+    def rows() -> Iterator[dict]:
+        for b in range(P):
+            for i in range(n):
+                text = raw["texts"][b][i]
+                row = {"prompt_id": b, "prompt": prompts[b], "sample": i, "score": float(raw["scores"][score][b, i]),
+                       "reward": float(raw["rewards"][b, i]), "temperature": float(temperature), "response": text,
+                       "n_tokens": int(raw["n_tokens"][b, i])}
+                if extract_answer is not None:
+                    row["answer"] = extract_answer(text)
+                for name in names:
+                    row[f"score_{name}"] = float(raw["scores"][name][b, i])
+                yield row
+
+    return rows()
 
 
 def merge_pools(parts: Sequence[dict]) -> dict:
