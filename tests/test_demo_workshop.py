@@ -16,10 +16,10 @@ import pytest
 import torch
 
 from bonft.cli import main
+from bonft.estimate.paired import per_prompt_curves
 from bonft.tasks import get_task
 from bonft.trainer.demo import DemoConfig, collect_stage_pools, run_demo
 from bonft.trainer.demo.pipeline import check_demo, verifier_caption
-from bonft.trainer.demo.stats import per_prompt_curves
 from bonft.verifiers.sandbox.runner import CodeRunner
 
 CAPTION = "Evaluation verifier (pass@k, and the reward of each best-of-k pick): oracle: CodeRunner, all unit tests incl. hidden inputs"
@@ -131,7 +131,7 @@ def test_the_oracle_columns_come_from_running_the_tests(tmp_path, monkeypatch):
     assert len(sols) == len({(e.prompt, g) for e, row in zip(held, planted) for g in row[:3]})
     assert not any("x) or (1" in s for s in sols)
     # so on a boxes prompt pass@4 is 1 and best-of-4 under the proxy is 0 (it picks the patch)
-    curves = per_prompt_curves(pools, [1, 4])
+    curves = per_prompt_curves(pools, ks=[1, 4])
     b = [j for j, f in enumerate(fams) if f == "boxes"]
     assert curves["pass"][b, 1].tolist() == [1.0, 1.0] and curves["proxy"][b, 1].tolist() == [0.0, 0.0]
     assert curves["pass"][b, 0].tolist() == [0.25, 0.25]

@@ -224,6 +224,9 @@ DATA_ARGS = {  # the positional (data) parameters of each public function; every
     "estimate.bestofk": {"best_of_k": ["scores", "rewards"], "best_of_k_per_prompt": ["scores", "rewards"],
                          "pass_at_k_per_prompt": ["rewards"]},
     "estimate.passk": {"pass_at_k": ["n", "c"]},
+    "estimate.paired": {"per_prompt_curves": ["pools"], "paired_bootstrap": ["a", "b"], "bootstrap_mean": ["a"],
+                        "paired_comparison": ["curves"], "format_interval": ["m", "lo", "hi"],
+                        "paired_table": ["comparison"]},
     "estimate.intervals": {"bootstrap_ci": ["values"], "summarize": ["scores", "rewards"],
                            "default_ks": ["smallest_pool"]},
     "objectives.credit": {"best_of_k_credit": ["scores", "rewards"], "pass_at_k_credit": ["correct"],
@@ -245,7 +248,7 @@ DATA_ARGS = {  # the positional (data) parameters of each public function; every
     "strategies.loss": {"strategy_loss": ["logprobs", "scores", "rewards"]},
     "strategies.curves": {"compare_strategies": ["strategies"]},
 }
-NOT_MATH = {"get_strategy"}  # a name lookup: no shapes, no formula
+NOT_MATH = {"get_strategy", "format_interval", "paired_table"}  # a name lookup, text formatting: no shapes, no formula
 
 
 @pytest.mark.parametrize("module", sorted(DATA_ARGS))

@@ -7,10 +7,11 @@ from math import comb
 import numpy as np
 import pytest
 
+from bonft.estimate.paired import paired_bootstrap, per_prompt_curves
 from bonft.tasks import get_task
 from bonft.trainer.demo import DemoConfig, collect_stage_pools, run_demo
 from bonft.trainer.demo.pipeline import policy_pools
-from bonft.trainer.demo.stats import best_temperatures, paired_bootstrap, per_prompt_curves, study_table, t_interval
+from bonft.trainer.demo.stats import best_temperatures, study_table, t_interval
 
 
 def test_tiny_demo_end_to_end(tmp_path, monkeypatch):
@@ -97,7 +98,7 @@ def test_paired_bootstrap_agrees_with_scipy():
 def test_per_prompt_curves_match_enumeration():
     rewards = np.array([[1, 0, 0, 0, 1], [0, 0, 0, 0, 0], [1, 1, 1, 0, 1]], dtype=float)
     proxy = np.array([[0.2, 0.9, 0.1, 0.5, 0.3], [0.1, 0.2, 0.3, 0.4, 0.5], [0.5, 0.1, 0.9, 0.95, 0.2]])
-    c = per_prompt_curves({"rewards": rewards, "proxy": proxy}, [1, 2, 5])
+    c = per_prompt_curves({"rewards": rewards, "proxy": proxy}, ks=[1, 2, 5])
     for p in range(3):
         for j, k in enumerate([1, 2, 5]):  # brute force over every k-subset of the pool
             subsets = list(itertools.combinations(range(5), k))

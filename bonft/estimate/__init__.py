@@ -4,12 +4,15 @@
   (:func:`best_of_k`, :func:`best_of_k_per_prompt`, :func:`pass_at_k_per_prompt`);
 * :mod:`bonft.estimate.passk` -- pass@k from (n, c) counts (:func:`pass_at_k`);
 * :mod:`bonft.estimate.intervals` -- bootstrap intervals over prompts and the curve summary
-  (:func:`bootstrap_ci`, :func:`default_ks`, :class:`CurveSummary`, :func:`summarize`).
+  (:func:`bootstrap_ci`, :func:`default_ks`, :class:`CurveSummary`, :func:`summarize`);
+* :mod:`bonft.estimate.paired` -- policies compared on the same prompts: per-prompt curves, paired
+  bootstrap differences and their table (:func:`per_prompt_curves`, :func:`paired_comparison`).
 
 Hyper-parameters (``k``, ``ks``, ...) are keyword-only.
 """
 from bonft.estimate.bestofk import best_of_k, best_of_k_per_prompt, pass_at_k_per_prompt
 from bonft.estimate.intervals import MIN_BOOT_PROMPTS, CurveSummary, bootstrap_ci, default_ks, summarize
+from bonft.estimate.paired import paired_bootstrap, paired_comparison, paired_table, per_prompt_curves
 from bonft.estimate.passk import pass_at_k
 
 __all__ = [
@@ -22,4 +25,8 @@ __all__ = [
     "CurveSummary",
     "summarize",
     "MIN_BOOT_PROMPTS",
+    "per_prompt_curves",
+    "paired_bootstrap",
+    "paired_comparison",
+    "paired_table",
 ]

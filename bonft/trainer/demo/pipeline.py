@@ -15,12 +15,13 @@ import numpy as np
 import torch
 from tqdm.auto import tqdm
 
+from bonft.estimate.paired import per_prompt_curves
 from bonft.io import group_pools, read_samples
 from bonft.tasks import TASKS, get_task
 from bonft.trainer.checkpoint import latest_checkpoint, quiet_transformers
 from bonft.trainer.config import MODEL_KEYS, TrainConfig, read_recipe
 from bonft.trainer.demo.schedule import Workers, run_jobs
-from bonft.trainer.demo.stats import LABELS, best_temperatures, per_prompt_curves, seed_table
+from bonft.trainer.demo.stats import LABELS, best_temperatures, seed_table
 from bonft.trainer.evaluation import HELDOUT_SAMPLES, collect_pools
 from bonft.trainer.loop import train
 from bonft.trainer.metrics import GRAD_CLIPPED, GRAD_NORM, GRAD_SNR
@@ -418,7 +419,7 @@ def run_demo(dc: DemoConfig | None = None, *, progress: bool = True) -> dict:
 def demo_report(dc: DemoConfig, out: Path, names: list[str]) -> dict:
     """One seed's tables from the stages in ``out``: paired comparisons, gradient figures, best temperatures."""
     curves = {name: per_prompt_curves(collect_stage_pools(dc, out / name, temperature=dc.eval_temperature,
-                                                          n_prompts=dc.heldout_prompts, n=dc.eval_samples), dc.eval_ks)
+                                                          n_prompts=dc.heldout_prompts, n=dc.eval_samples), ks=dc.eval_ks)
               for name in names}
     grads = {name: gradient_summary(out / name) for name in names if name != "warm_start"}
     caption = verifier_caption(dc, names)

@@ -22,7 +22,7 @@ from typing import Mapping, Sequence
 import numpy as np
 from scipy import stats
 
-from bonft.estimate import best_of_k_per_prompt, pass_at_k_per_prompt
+from bonft.estimate.paired import format_interval, paired_comparison, paired_table
 from bonft.plan.sweep import Pools, plan_pools
 
 LABELS = {
@@ -38,31 +38,6 @@ LABELS = {
 }
 
 
-def per_prompt_curves(pools: Mapping[str, np.ndarray], ks: Sequence[int]) -> dict[str, np.ndarray]:
-    """pools -> ``{"pass": (P, K), "proxy": (P, K)}``: per-prompt pass@k and proxy best-of-k at each k."""
-    rewards = np.asarray(pools["rewards"], dtype=float)
-    out = {"pass": np.asarray(pass_at_k_per_prompt(rewards, ks=list(ks)), dtype=float)}
-    if "proxy" in pools:
-        out["proxy"] = np.asarray(best_of_k_per_prompt(np.asarray(pools["proxy"], dtype=float), rewards, ks=list(ks)), dtype=float)
-    return out
-
-
-def paired_bootstrap(a: np.ndarray, b: np.ndarray, *, n_boot: int = 2000, seed: int = 0,
-                     confidence: float = 0.95) -> tuple[float, float, float]:
-    """a, b: (P,) per-prompt values on the same prompts -> (mean(a - b), lo, hi), percentile bootstrap over prompts."""
-    d = np.asarray(a, dtype=float) - np.asarray(b, dtype=float)
-    rng = np.random.default_rng(seed)
-    idx = rng.integers(0, len(d), size=(n_boot, len(d)))
-    boot = d[idx].mean(1)
-    alpha = (1 - confidence) / 2
-    return float(d.mean()), float(np.quantile(boot, alpha)), float(np.quantile(boot, 1 - alpha))
-
-
-def bootstrap_mean(a: np.ndarray, *, n_boot: int = 2000, seed: int = 0, confidence: float = 0.95) -> tuple[float, float, float]:
-    """a: (P,) -> (mean, lo, hi), percentile bootstrap over prompts."""
-    return paired_bootstrap(a, np.zeros_like(np.asarray(a, dtype=float)), n_boot=n_boot, seed=seed, confidence=confidence)
-
-
 def t_interval(values: Sequence[float], *, confidence: float = 0.95) -> tuple[float, float, float]:
     """values: (S,) per-seed numbers -> (mean, lo, hi), Student-t interval with S - 1 degrees of freedom."""
     v = np.asarray(values, dtype=float)
@@ -70,14 +45,6 @@ def t_interval(values: Sequence[float], *, confidence: float = 0.95) -> tuple[fl
         return float(v.mean()), float("nan"), float("nan")
     half = stats.t.ppf(0.5 + confidence / 2, len(v) - 1) * v.std(ddof=1) / math.sqrt(len(v))
     return float(v.mean()), float(v.mean() - half), float(v.mean() + half)
-
-
-def _fmt(m: float, lo: float, hi: float, signed: bool = False) -> str:
-    f = "{:+.3f}" if signed else "{:.3f}"
-    if math.isnan(lo):
-        return f.format(m)
-    mark = " *" if signed and (lo > 0 or hi < 0) else ""
-    return f"{f.format(m)} [{f.format(lo)}, {f.format(hi)}]{mark}"
 
 
 def _columns(ks: Sequence[int], has_proxy: bool) -> list[tuple[str, str, int]]:
@@ -96,32 +63,15 @@ def _head(title: str, cols, caption: str = "") -> list[str]:
 def seed_table(curves: Mapping[str, Mapping[str, np.ndarray]], ks: Sequence[int], *,
                baselines: Sequence[str] = ("warm_start", "reinforce"), n_boot: int = 2000, seed: int = 0,
                confidence: float = 0.95, caption: str = "") -> str:
-    """One seed: each policy's mean [bootstrap CI over prompts], then its paired difference from each baseline.
+    """One seed: each policy's mean [bootstrap CI over prompts], then its paired difference from each baseline
+    (:func:`bonft.estimate.paired.paired_comparison` in the demo's names).
 
-    curves: policy -> :func:`per_prompt_curves`. A ``*`` marks a difference whose interval excludes 0.
-    caption: a line under every table's title (e.g. which verifier trains and which evaluates).
+    curves: policy -> :func:`~bonft.estimate.paired.per_prompt_curves`. A ``*`` marks a difference whose
+    interval excludes 0. caption: a line under every table's title (e.g. which verifier trains and which evaluates).
     """
-    names = list(curves)
-    cols = _columns(ks, all("proxy" in c for c in curves.values()))
-    pct = round(100 * confidence)
-    lines = _head(f"Mean over {len(next(iter(curves.values()))['pass'])} held-out prompts [{pct}% bootstrap CI over prompts]", cols,
-                  caption)
-    for name in names:
-        cells = [_fmt(*bootstrap_mean(curves[name][kind][:, j], n_boot=n_boot, seed=seed, confidence=confidence))
-                 for _, kind, j in cols]
-        lines.append(f"| {LABELS.get(name, name)} | " + " | ".join(cells) + " |")
-    for base in baselines:
-        if base not in curves:
-            continue
-        lines += [""] + _head(f"Paired difference from {LABELS.get(base, base)} (same prompts; * = interval excludes 0)", cols,
-                              caption)
-        for name in names:
-            if name == base:
-                continue
-            cells = [_fmt(*paired_bootstrap(curves[name][kind][:, j], curves[base][kind][:, j], n_boot=n_boot,
-                                            seed=seed, confidence=confidence), signed=True) for _, kind, j in cols]
-            lines.append(f"| {LABELS.get(name, name)} | " + " | ".join(cells) + " |")
-    return "\n".join(lines)
+    comp = paired_comparison(curves, ks=ks, baselines=baselines, n_boot=n_boot, seed=seed, confidence=confidence)
+    return paired_table(comp, n_prompts=len(next(iter(curves.values()))["pass"]), labels=LABELS, confidence=confidence,
+                        caption=caption)
 
 
 def study_table(per_seed: Mapping[int, Mapping[str, Mapping[str, np.ndarray]]], ks: Sequence[int], *,
@@ -139,7 +89,7 @@ def study_table(per_seed: Mapping[int, Mapping[str, Mapping[str, np.ndarray]]], 
     lines = _head(f"Mean over {len(seeds)} seeds (seeds {', '.join(map(str, seeds))}) [{pct}% Student-t interval over seeds]", cols,
                   caption)
     for n in names:
-        cells = [_fmt(*t_interval([mean[s, n, kind, j] for s in seeds], confidence=confidence)) for _, kind, j in cols]
+        cells = [format_interval(*t_interval([mean[s, n, kind, j] for s in seeds], confidence=confidence)) for _, kind, j in cols]
         lines.append(f"| {LABELS.get(n, n)} | " + " | ".join(cells) + " |")
     for base in baselines:
         if base not in names:
@@ -149,8 +99,8 @@ def study_table(per_seed: Mapping[int, Mapping[str, Mapping[str, np.ndarray]]], 
         for n in names:
             if n == base:
                 continue
-            cells = [_fmt(*t_interval([mean[s, n, kind, j] - mean[s, base, kind, j] for s in seeds], confidence=confidence),
-                          signed=True) for _, kind, j in cols]
+            cells = [format_interval(*t_interval([mean[s, n, kind, j] - mean[s, base, kind, j] for s in seeds], confidence=confidence),
+                                    signed=True) for _, kind, j in cols]
             lines.append(f"| {LABELS.get(n, n)} | " + " | ".join(cells) + " |")
     lines += ["", "Per seed (pass@1 / pass@" + str(ks[-1]) + (f" / proxy best-of-{ks[-1]}" if len(cols) > len(ks) else "") + ")",
               *([caption] if caption else []), "",

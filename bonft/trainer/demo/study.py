@@ -48,6 +48,7 @@ import numpy as np
 import torch
 
 from bonft._core.checks import check_int, check_real
+from bonft.estimate.paired import format_interval, paired_bootstrap, per_prompt_curves
 from bonft.objcheck import builtin, check_objective
 from bonft.tasks import get_task
 from bonft.trainer.checkpoint import latest_checkpoint
@@ -61,7 +62,7 @@ from bonft.trainer.demo.pipeline import (
     stage_config,
     warm_config,
 )
-from bonft.trainer.demo.stats import LABELS, _fmt, paired_bootstrap, per_prompt_curves, study_table
+from bonft.trainer.demo.stats import LABELS, study_table
 
 STUDY_OBJECTIVES = ("reinforce", "pass_at_k", "pass_at_k_plugin", "pass_at_k_positive", "best_of_k",
                     "pass_at_k_anneal", "best_of_k_sft")
@@ -376,7 +377,7 @@ def grid_table(dc: DemoConfig, sc: StudyConfig, grid: dict) -> str:
              f"| objective | lr | pass@1 | pass@{K} | proxy best-of-{K} | placebo - reference, pass@1 | "
              f"placebo - reference, pass@{K} | admissible | chosen |", "|---" * 9 + "|"]
     for r in grid["rows"]:
-        pl = [_fmt(r[n]["mean"], r[n]["lo"], r[n]["hi"], signed=True) if n in r else "(no placebo)" for n in ("placebo1", "placeboK")]
+        pl = [format_interval(r[n]["mean"], r[n]["lo"], r[n]["hi"], signed=True) if n in r else "(no placebo)" for n in ("placebo1", "placeboK")]
         lines.append(f"| {r['label']} | {r['lr']:g} | {r['pass1']:.3f} | {r['passK']:.3f} | {r['proxyK']:.3f} | {pl[0]} | "
                      f"{pl[1]} | {'yes' if r['admissible'] else 'no'} | {'**yes**' if r['chosen'] else ''} |")
     return "\n".join(lines)
@@ -486,7 +487,7 @@ def run_study(dc: DemoConfig | None = None, sc: StudyConfig | None = None, *, pr
         keys = ["warm_start"] + [stage_key(a, lr, p) for a in arms(sc) for lr in sc.lr_grid[a.objective]
                                  for p in ((False, True) if a.placebo else (False,))]
         for key in keys:
-            c = per_prompt_curves(collect_validation_pools(per[s], Path(per[s].run_dir) / key, sc.validation_prompts), ks)
+            c = per_prompt_curves(collect_validation_pools(per[s], Path(per[s].run_dir) / key, sc.validation_prompts), ks=ks)
             val_curves[key] = {kind: np.concatenate([val_curves[key][kind], v]) if key in val_curves else v for kind, v in c.items()}
     grid = grid_results(dc, sc, val_curves)
     warm_val = (float(val_curves["warm_start"]["pass"][:, 0].mean()), float(val_curves["warm_start"]["pass"][:, -1].mean()))
@@ -567,7 +568,7 @@ def _held_out_tables(dc: DemoConfig, sc: StudyConfig, grid: dict, per: dict, res
     def one(d: DemoConfig, key: str) -> dict:
         pools = collect_stage_pools(d, Path(d.run_dir) / key, temperature=d.eval_temperature, n_prompts=d.heldout_prompts,
                                     n=d.eval_samples)
-        return {**per_prompt_curves(pools, ks), "family": pools["family"]}
+        return {**per_prompt_curves(pools, ks=ks), "family": pools["family"]}
 
     def curves(s: int) -> dict:
         d = per[s]
