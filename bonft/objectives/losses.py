@@ -195,7 +195,8 @@ def _policy_gradient_loss(logprobs, credit, opt: LossOptions, *, own: bool = Fal
 
     ``own``: ``logprobs`` were checked and ``credit`` is a float64 host array a named loss computed from
     its checked, finite pools (:func:`_own_credit`): no generic conversion, and on a CPU its finiteness
-    (an overflow of finite rewards can still give an infinity) is looked at only when the loss is not finite.
+    (an overflow of finite rewards can still give an infinity) is looked at only when the loss is not finite;
+    or a tensor of lp's dtype and device made from finite tables (taken as it is).
     """
     lp = logprobs if own else check_logprobs("logprobs", logprobs, seq_ndim=2)
     mask = check_mask("mask", opt.mask, "logprobs", lp, seq_ndim=2)
@@ -203,6 +204,8 @@ def _policy_gradient_loss(logprobs, credit, opt: LossOptions, *, own: bool = Fal
         check_token_values("logprobs", lp, "mask", opt.mask, mask)
     if not own:
         return _checked_credit_loss(lp, mask, credit_tensor(credit, lp, check_device=opt.check_tokens), opt)
+    if is_tensor(credit):  # made in lp's dtype on its device from finite tables (_pass_at_k_selected): no check
+        return _checked_credit_loss(lp, mask, credit, opt)
     if not _numpy_view(lp) or opt.sampling_logprobs is not None:  # no read of the loss to share: checked now
         _check_finite_host("credit", credit)
         return _checked_credit_loss(lp, mask, _own_credit(credit, lp), opt)
@@ -607,6 +610,15 @@ def _host_pool(logprobs, **arrays) -> tuple[Tensor, list[np.ndarray]]:
     return lp, out
 
 
+def _host_one(logprobs, name: str, x) -> tuple[Tensor, np.ndarray]:
+    """:func:`_host_pool` of one array (the same checks in the same order, without the loop)."""
+    a = as_host(name, x, ndim=2)
+    lp = check_logprobs("logprobs", logprobs, seq_ndim=2)
+    if a.shape != lp.shape[:2]:
+        check_pool_shape(name, a, logprobs)
+    return lp, a
+
+
 def _with_pool_value(out, value):
     """Add ``pool_value`` (mean over prompts of ``value()``, a (B,) host array) to the info of a ``(loss, info)`` pair."""
     if not isinstance(out, tuple):
@@ -671,9 +683,10 @@ def pass_at_k_loss(logprobs, correct, *, k, estimator="unbiased", positive_only=
     on Code"; Walder & Karkhanis 2025.
     """
     opt = LossOptions.from_keywords("pass_at_k_loss", common)  # option errors name this loss, before any work
-    lp, (c,) = _host_pool(logprobs, correct=correct)
+    lp, c = _host_one(logprobs, "correct", correct)
     check_binary("correct", c)
-    credit = _pass_at_k_credit_host(c, k=k, estimator=estimator, positive_only=positive_only)
+    credit = _pass_at_k_credit_host(c, k=k, estimator=estimator, positive_only=positive_only,
+                                    dtype=lp.dtype if lp.device.type == "cpu" else None)
     n = c.shape[1]  # Chen et al. 2021's 1 - C(n-c, k)/C(n, k) of each pool (k was checked with the credit)
     return _with_pool_value(_policy_gradient_loss(lp, credit, opt, own=True),
                             lambda: _pass_values(n, int(k)).take(c.sum(-1).astype(np.int64)))
@@ -695,7 +708,7 @@ def reinforce_loss(logprobs, rewards, *, baseline="loo", **common):
     References: Kool et al. 2019, "Buy 4 REINFORCE samples, get a baseline for free!".
     """
     opt = LossOptions.from_keywords("reinforce_loss", common)  # option errors name this loss, before any work
-    lp, (R,) = _host_pool(logprobs, rewards=rewards)
+    lp, R = _host_one(logprobs, "rewards", rewards)
     credit = _reinforce_credit_host(R, baseline=baseline)
     return _with_pool_value(_policy_gradient_loss(lp, credit, opt, own=True), lambda: R.mean(-1))
 
@@ -730,7 +743,7 @@ def best_of_k_sft_loss(logprobs, scores, reference_logprobs, reference_scores, *
     Sampling in LLMs" (BoN-SFT).
     """
     opt = LossOptions.from_keywords("best_of_k_sft_loss", common)
-    lp, (s,) = _host_pool(logprobs, scores=scores)
+    lp, s = _host_one(logprobs, "scores", scores)
     e = as_host("reference_scores", reference_scores, ndim=1)
     B = logprobs.shape[0]
     ref = check_logprobs("reference_logprobs", reference_logprobs, seq_ndim=1)

@@ -69,7 +69,7 @@ def _check_finite_host(name: str, a: np.ndarray) -> None:
     """:func:`check_finite` of a float64 host array, by its sum first: finite values sum to a finite number
     unless the sum overflows, so only a non-finite sum (NaN, an infinity, or an overflow) costs the exact
     elementwise look that names the first bad entry (one reduction instead of two passes and two copies)."""
-    if not math.isfinite(a.sum()):
+    if not math.isfinite(np.add.reduce(a, axis=None)):  # the reduction of a.sum() without its Python wrapper
         check_finite(name, a)
 
 
