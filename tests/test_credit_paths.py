@@ -11,6 +11,7 @@ from math import comb
 
 import numpy as np
 import pytest
+import torch
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
@@ -95,3 +96,25 @@ def test_best_of_k_sft_credit_matches_its_formula_entry_by_entry(n, k, seed, smo
     got = best_of_k_sft_credit(s, e, k=k, smoothing=smoothing)
     for b in range(3):
         np.testing.assert_allclose(got[b], sft_reference(s[b], e[b], k, smoothing), rtol=1e-12, atol=1e-14)
+
+
+@settings(max_examples=40)
+@given(n=st.integers(2, 70), k_frac=st.floats(0, 1), seed=st.integers(0, 2**31 - 1),
+       dtype=st.sampled_from([torch.float32, torch.float64]))
+def test_pass_at_k_loss_uses_the_public_credit_rounded_once_to_the_log_probs_dtype(n, k_frac, seed, dtype):
+    # pass_at_k_loss makes its unbiased credit in the log-probs' dtype from per-pool values; the gradient of
+    # its reduction="sum" loss w.r.t. sequence log-probs is minus that credit exactly (-sum_i w_i log pi_i,
+    # Williams 1992), so it must equal minus the public float64 credit (checked against exhaustive
+    # enumeration in tests/test_credit.py) converted to the dtype, bit for bit, all-0 and all-1 pools included.
+    from bonft.objectives.credit import pass_at_k_credit
+    from bonft.objectives.losses import pass_at_k_loss
+
+    rng = np.random.default_rng(seed)
+    k = 1 + int(k_frac * (n - 1))
+    c = (rng.random((6, n)) < rng.random((6, 1))) * 1.0
+    c[0], c[1] = 0.0, 1.0
+    lp = torch.from_numpy(-rng.random((6, n)) * 5).to(dtype).requires_grad_(True)
+    pass_at_k_loss(lp, c, k=k, reduction="sum").backward()
+    want = -torch.from_numpy(pass_at_k_credit(c, k=k)).to(dtype)
+    assert torch.equal(lp.grad.view(torch.int64 if dtype == torch.float64 else torch.int32),
+                       want.view(torch.int64 if dtype == torch.float64 else torch.int32))
