@@ -14,7 +14,8 @@ Written by ``bonft sample``, read by ``bonft estimate`` and ``bonft plan``::
   never read back here, so files with long responses load as fast as short ones),
 - ``sample`` (int or str, optional): the sample's index in its prompt's pool; with it, identical
   samples are told apart and only a repeated (prompt, temperature, sample) counts as a repeated row,
-- ``prompt`` (str, optional): the prompt text, to join rows back to the data (not read here).
+- ``prompt`` (str, optional): the prompt text, to join rows back to the data; read (``text_field="prompt"``)
+  only to pair files from different runs by their prompts (``bonft compare``).
 
 Field names can be renamed on reading (``score_field="rm_score"`` ...). Blank
 lines are skipped; every other line is parsed on its own (a JSON value never
@@ -51,7 +52,7 @@ class SampleTable:
 
     prompt_keys: (N,) str keys; scores, rewards: (N,) float64;
     temperatures: (N,) float64 or None when the file has no temperature field;
-    n_tokens: (N,) int64 or None; answers: (N,) str answer keys or None.
+    n_tokens: (N,) int64 or None; answers: (N,) str answer keys or None; prompts: (N,) str prompt texts or None.
     """
 
     prompt_keys: np.ndarray
@@ -60,6 +61,7 @@ class SampleTable:
     temperatures: np.ndarray | None = None
     n_tokens: np.ndarray | None = None
     answers: np.ndarray | None = None
+    prompts: np.ndarray | None = None
 
     def __len__(self) -> int:
         return len(self.scores)
@@ -183,12 +185,14 @@ def read_samples(
     duplicates: str = "warn",
     answer_field: str = "answer",
     sample_field: str = "sample",
+    text_field: str | None = None,
 ) -> SampleTable:
     """Load a samples JSONL file into columns.
 
     ``prompt_field``/``score_field``/``reward_field`` are required on every line;
     ``temperature_field``/``tokens_field``/``answer_field`` are optional but, when present, must be
-    on every line. Raises ``FileNotFoundError`` for a missing file and
+    on every line. ``text_field`` (e.g. ``"prompt"``; default None: not read) fills ``prompts`` when the
+    field is there, a string on every line. Raises ``FileNotFoundError`` for a missing file and
     ``ValueError`` (``samples.jsonl line 17: ...``) for a malformed one: bad JSON,
     JSON nested too deeply, or bytes that are not UTF-8.
 
@@ -203,7 +207,8 @@ def read_samples(
     """
     for opt, v in (("prompt_field", prompt_field), ("score_field", score_field), ("reward_field", reward_field),
                    ("temperature_field", temperature_field), ("tokens_field", tokens_field),
-                   ("answer_field", answer_field), ("sample_field", sample_field)):
+                   ("answer_field", answer_field), ("sample_field", sample_field),
+                   *((("text_field", text_field),) if text_field is not None else ())):
         if not isinstance(v, str) or not v:
             raise TypeError(f"{opt} must be a non-empty str, got {v!r}")
     if duplicates not in DUPLICATES:
@@ -258,10 +263,17 @@ def read_samples(
                              f"(the sample's index in its pool), got {index[bad[0]]!r}")
         at = temps if temps is not None else [None] * len(index)
         index = [(str(p), None if t is None else float(t), str(v)) for p, t, v in zip(prompt_keys, at, index)]
+    texts = _column(name, rows, numbers, text_field, "text_field", required=False) if text_field is not None else None
+    if texts is not None:
+        bad = [i for i, v in enumerate(texts) if type(v) is not str]
+        if bad:
+            raise ValueError(f"{name} line {numbers[bad[0]]}: field {text_field!r} must be a string (the prompt's text), "
+                             f"got {texts[bad[0]]!r}")
+        texts = np.array(texts, dtype=object)
     if duplicates != "allow":  # after the checks of every field: a malformed file errors first
         _check_duplicates(name, lines, numbers, duplicates, index)
     return SampleTable(prompt_keys=prompt_keys, scores=scores, rewards=rewards, temperatures=temps, n_tokens=toks,
-                       answers=answers)
+                       answers=answers, prompts=texts)
 
 
 # ----------------------------------------------------------------------------- writing

@@ -6,6 +6,7 @@
   over temperature and k (``bonft plan --plot-dir``);
 * :func:`plot_evaluations`, :func:`plot_comparison` -- the trainer's evaluations of one
   run and of several policies (``bonft train``, ``bonft eval --plot-dir``, ``bonft demo``);
+* :func:`plot_paired_differences` -- policies on the same prompts and their paired differences (``bonft compare``);
 * :func:`plot_verifier_check` -- a verifier check's best-of-k against pass@k;
 * :func:`plot_objective_check` -- an objective check's estimated against exact gradient components.
 
@@ -22,7 +23,7 @@ import numpy as np
 from bonft.estimate import CurveSummary
 
 __all__ = ["plot_best_of_k_curves", "plot_verifier_check", "plot_plan_heatmap", "plot_plan_curves", "plot_evaluations",
-           "plot_comparison", "plot_objective_check", "plot_strategy_curves"]
+           "plot_comparison", "plot_paired_differences", "plot_objective_check", "plot_strategy_curves"]
 
 
 # ------------------------------------------------------------------ estimator curves
@@ -127,6 +128,40 @@ def plot_comparison(results: dict[str, dict], path: str | Path, *, title: str = 
     ax1.set_ylabel("pass@k (true reward)")
     ax2.set_ylabel("best-of-k, proxy picks (true reward)")
     return _finish(plt, fig, (ax1, ax2), path, title)
+
+
+def plot_paired_differences(comparison: dict, path: str | Path, *, ks: Sequence[int], title: str = "") -> Path:
+    """Policies on the same prompts (:func:`bonft.estimate.paired.paired_comparison`): each one's pass@k (left)
+    and its paired difference from the baseline (right, with a zero line), with their intervals, against k."""
+    plt, fig, (ax1, ax2) = _axes(2)
+    cols = [j for j, (_, kind, _) in enumerate(comparison["columns"]) if kind == "pass"]
+
+    def curve(cells) -> dict:
+        return {key: [cells[j][i] for j in cols] for i, key in enumerate(("mean", "lo", "hi"))}
+
+    colour = {}
+    for name, cells in comparison["means"].items():
+        _band(ax1, ks, curve(cells), name)
+        colour[name] = ax1.lines[-1].get_color()
+    for base, rows in comparison["differences"].items():
+        for name, cells in rows.items():
+            _band(ax2, ks, curve(cells), f"{name} - {base}", color=colour[name])
+    ax2.axhline(0.0, color="black", linewidth=0.8)
+    ax1.set_ylabel("pass@k")
+    ax1.set_ylim(0, 1)
+    ax2.set_ylabel("paired difference in pass@k")
+    for ax in (ax1, ax2):
+        ax.set_xscale("log", base=2)
+        ax.set_xticks(list(ks), [str(k) for k in ks])
+        ax.minorticks_off()
+        ax.set_xlabel("k")
+        ax.grid(alpha=0.3)
+        ax.legend(fontsize=8)
+    fig.suptitle(title)
+    fig.tight_layout()
+    fig.savefig(path, dpi=110)
+    plt.close(fig)
+    return Path(path)
 
 
 # ------------------------------------------------------------------ the planner

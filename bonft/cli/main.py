@@ -19,6 +19,7 @@ import warnings
 COMMANDS = {
     "demo": "demo",
     "estimate": "estimate",
+    "compare": "compare",
     "plan": "plan",
     "train": "train",
     "eval": "evaluate",

@@ -1,0 +1,168 @@
+"""``bonft compare A B ...``: runs evaluated on the same prompts, compared paired (means, differences, intervals)."""
+from __future__ import annotations
+
+import argparse
+import math
+import os
+
+from bonft.cli.options import add_plot_dir, check_sizes, parse_list, write_json_atomic
+
+HELP = "compare runs evaluated on the same held-out prompts: pass@k and best-of-k with paired differences and CIs"
+DESCRIPTION = (
+    "Read two or more samples files, or run directories (each run's heldout_samples.jsonl: every sample of its "
+    "final evaluation), evaluated on the same prompts, and print each one's pass@k and best-of-k (picked by "
+    "--score-field) with bootstrap intervals over prompts, then each one's paired difference from the baseline "
+    "(the first, or --baseline): per prompt first, then averaged, so the prompts' own difficulty cancels. Files "
+    "are paired by prompt id, and by prompt text where the rows carry it: runs evaluated on different prompts (another "
+    "seed's split, other data) are refused. The intervals cover the evaluation's noise, not the training run's: "
+    "a second training seed can move a difference more."
+)
+SAMPLES_FILE = "heldout_samples.jsonl"  # a run directory's (bonft.trainer.evaluation.HELDOUT_SAMPLES, without torch)
+
+
+def add_arguments(p: argparse.ArgumentParser) -> None:
+    p.add_argument("inputs", nargs="+", metavar="RUN_OR_FILE",
+                   help=f"two or more run directories (their {SAMPLES_FILE}) or samples files")
+    p.add_argument("--names", default=None, metavar="A,B",
+                   help="row names, one per input (default: each run directory's or file's name)")
+    p.add_argument("--baseline", default=None, metavar="NAME",
+                   help="the input the others are compared with, by name (default: the first)")
+    p.add_argument("--ks", default=None, help="comma-separated k values (default: 1,2,4,... up to the smallest pool)")
+    p.add_argument("--score-field", default="score",
+                   help="field of the verifier whose pick is best-of-k (default: score, the training verifier's in a "
+                        f"run's {SAMPLES_FILE}, which also has score_NAME for each verifier)")
+    p.add_argument("--reward-field", default="reward", help="field holding the true reward (default: reward)")
+    p.add_argument("--prompt-field", default="prompt_id", help="field holding the prompt id (default: prompt_id)")
+    p.add_argument("--temperature", type=float, default=None,
+                   help="the temperature to compare, when the files hold several (default: their only one)")
+    p.add_argument("--confidence", type=float, default=0.95, help="confidence level of the intervals (default: 0.95)")
+    p.add_argument("--n-boot", type=int, default=2000, help="bootstrap replicates (default: 2000)")
+    p.add_argument("--seed", type=int, default=0, help="bootstrap seed (default: 0)")
+    p.add_argument("--json", metavar="OUT.json", default=None, help="also write the means and differences as JSON")
+    add_plot_dir(p, "compare_curves.png (each input's pass@k and its paired difference from the baseline, against k)")
+
+
+def _resolve(path: str) -> str:
+    """A run directory -> its samples file; a file as it is."""
+    if os.path.isdir(path):
+        file = os.path.join(path, SAMPLES_FILE)
+        if not os.path.isfile(file):
+            raise FileNotFoundError(
+                f"RUN_OR_FILE {path!r} is a directory without {SAMPLES_FILE} (a run's final evaluation writes it, "
+                f"unless heldout_samples = false); write one with `bonft sample {path} -o FILE` and compare FILE")
+        return file
+    if not os.path.isfile(path):
+        raise FileNotFoundError(f"RUN_OR_FILE not found: {path}")
+    return path
+
+
+def _names(args, paths: list[str]) -> list[str]:
+    if args.names is not None:
+        names = [v.strip() for v in args.names.split(",")]
+        if len(names) != len(paths) or not all(names):
+            raise ValueError(f"--names must give one non-empty name per input ({len(paths)}), got {args.names!r}")
+    else:
+        names = [os.path.basename(os.path.normpath(a)) if os.path.isdir(a) else os.path.splitext(os.path.basename(a))[0]
+                 for a in args.inputs]
+    if len(set(names)) < len(names):
+        raise ValueError(f"the inputs' names must differ, got {names}; pass --names A,B,...")
+    return names
+
+
+def _pools(name: str, path: str, args, read_samples, group_pools) -> tuple[list, list, list, dict | None]:
+    """(keys, score pools, reward pools, {key: prompt text} or None) of one input."""
+    table = read_samples(path, prompt_field=args.prompt_field, score_field=args.score_field,
+                         reward_field=args.reward_field, text_field="prompt")
+    keys, scores, rewards = group_pools(table, temperature=args.temperature)
+    texts = None
+    if table.prompts is not None:
+        keep = slice(None) if args.temperature is None else table.temperatures == args.temperature
+        texts = {}
+        for key, text in zip(table.prompt_keys[keep], table.prompts[keep]):
+            if texts.setdefault(str(key), text) != text:
+                raise ValueError(f"{name} ({path}) gives prompt {key} two different texts ({texts[str(key)]!r} and {text!r})")
+    return keys, scores, rewards, texts
+
+
+def _check_paired(names: list[str], inputs: list[tuple]) -> None:
+    """Every input holds the first one's prompts, and where both carry prompt texts, the same texts."""
+    keys0, texts0 = set(inputs[0][0]), inputs[0][3]
+    for name, (keys, _, _, texts) in zip(names[1:], inputs[1:]):
+        only_a, only_b = sorted(keys0 - set(keys)), sorted(set(keys) - keys0)
+        if only_a or only_b:
+            raise ValueError(
+                f"{name} and {names[0]} must hold the same prompts to be compared paired: {len(only_a)} prompt(s) only in "
+                f"{names[0]} (e.g. {only_a[:3]}), {len(only_b)} only in {name} (e.g. {only_b[:3]})")
+        if texts0 is not None and texts is not None:
+            bad = [k for k in inputs[0][0] if texts0[k] != texts[k]]
+            if bad:
+                k = bad[0]
+                raise ValueError(
+                    f"{name} and {names[0]} give prompt {k} different texts ({texts[k]!r} vs {texts0[k]!r}; {len(bad)} of "
+                    f"{len(keys0)} prompts differ): they were evaluated on different prompts (another seed's split or other "
+                    "data), so they cannot be compared paired")
+
+
+def run(args: argparse.Namespace) -> int:
+    from bonft.estimate import MIN_BOOT_PROMPTS, default_ks
+    from bonft.estimate.paired import paired_comparison, paired_table, per_prompt_curves
+    from bonft.io import group_pools, read_samples
+    from bonft.viz import plot_paired_differences
+
+    check_sizes(args)
+    ks = parse_list("--ks", args.ks)
+    if len(args.inputs) < 2:
+        raise ValueError(f"RUN_OR_FILE must name at least 2 inputs to compare, got {len(args.inputs)}")
+    paths = [_resolve(a) for a in args.inputs]
+    names = _names(args, paths)
+    base = args.baseline if args.baseline is not None else names[0]
+    if base not in names:
+        raise ValueError(f"--baseline must be one of the inputs' names {names}, got {base!r}")
+    inputs = [_pools(n, p, args, read_samples, group_pools) for n, p in zip(names, paths)]
+    _check_paired(names, inputs)
+    order = inputs[0][0]  # every input's pools in the first one's prompt order
+    pools = {}
+    for name, (keys, scores, rewards, _) in zip(names, inputs):
+        at = {k: j for j, k in enumerate(keys)}
+        pools[name] = {"proxy": [scores[at[k]] for k in order], "rewards": [rewards[at[k]] for k in order]}
+    n_min = min(len(r) for p in pools.values() for r in p["rewards"])
+    if ks is not None and not 1 <= min(ks) <= max(ks) <= n_min:
+        raise ValueError(f"--ks must be between 1 and the smallest pool (n={n_min}), got {ks}")
+    ks = ks if ks is not None else default_ks(n_min)
+    curves = {name: per_prompt_curves(p, ks=ks) for name, p in pools.items()}
+    P = len(order)
+    intervals = P >= MIN_BOOT_PROMPTS
+    comp = paired_comparison(curves, ks=ks, baselines=[base], n_boot=args.n_boot, seed=args.seed,
+                             confidence=args.confidence, intervals=intervals)
+    for name, path in zip(names, paths):
+        print(f"{name}: {path}")
+    print()
+    caption = f"pass@k: best '{args.reward_field}' among k; best-of-k: the '{args.reward_field}' of the sample '{args.score_field}' ranks first"
+    print(paired_table(comp, n_prompts=P, picker=args.score_field, confidence=args.confidence, caption=caption))
+    print()
+    if not intervals:
+        print(f"intervals n/a: {P} prompt(s); a bootstrap over prompts needs at least {MIN_BOOT_PROMPTS} (see docs/estimate.md)")
+    if any(t is None for *_, t in inputs):
+        print("paired by prompt id alone: " + ", ".join(n for n, (*_, t) in zip(names, inputs) if t is None)
+              + " carries no prompt texts")
+    print("Intervals: percentile bootstrap over prompts, the same prompts resampled for both sides of a difference; "
+          "they cover the evaluation's noise, not the training run's (another training seed can move a difference more).")
+
+    if args.json:
+        def plain(cells):
+            return [[None if isinstance(v, float) and math.isnan(v) else v for v in c] for c in cells]
+
+        write_json_atomic(args.json, {
+            "inputs": dict(zip(names, map(os.path.abspath, paths))), "baseline": base, "ks": ks, "n_prompts": P,
+            "confidence": args.confidence, "n_boot": args.n_boot, "seed": args.seed, "intervals_valid": intervals,
+            "score_field": args.score_field, "reward_field": args.reward_field,
+            "columns": [label if kind == "pass" else f"{args.score_field} {label}" for label, kind, _ in comp["columns"]],
+            "means": {n: plain(c) for n, c in comp["means"].items()},
+            "differences": {b: {n: plain(c) for n, c in rows.items()} for b, rows in comp["differences"].items()}})
+        print(f"wrote {args.json}")
+    if args.plot_dir:
+        os.makedirs(args.plot_dir, exist_ok=True)
+        out = os.path.join(args.plot_dir, "compare_curves.png")
+        plot_paired_differences(comp, out, ks=ks, title=f"{P} prompts, {round(100 * args.confidence)}% bootstrap CI over prompts")
+        print(f"wrote {out}")
+    return 0

@@ -1,0 +1,124 @@
+"""`bonft compare` on planted samples files: the means and paired differences against hand computation.
+
+References: pass@k per prompt is Chen et al. 2021, eq. (1), computed here with exact integers; best-of-n with
+k = n is the reward of the top-scored sample, ties averaged (Chow et al. 2024, the definition); the paired
+difference is the mean of the per-prompt differences (common practice; the interval is a percentile bootstrap,
+checked against scipy in tests/test_train_demo.py).
+"""
+import json
+import math
+import re
+
+import numpy as np
+import pytest
+
+from bonft.cli import main
+
+P, N = 12, 4
+
+
+def chen_pass_at_k(n, c, k):
+    return 1 - math.comb(n - c, k) / math.comb(n, k)
+
+
+def write(path, rewards, scores, *, texts=None, ids=None):
+    """A samples file as bonft writes it: prompt-major rows with sample indices and prompt texts."""
+    with open(path, "w", encoding="utf-8") as f:
+        for p, (rr, ss) in enumerate(zip(rewards, scores)):
+            for i, (r, s) in enumerate(zip(rr, ss)):
+                row = {"prompt_id": p if ids is None else ids[p], "sample": i, "score": s, "reward": r, "temperature": 1.0,
+                       "score_alt": -s}
+                if texts is not False:
+                    row["prompt"] = (texts or [f"jars {q}" for q in range(len(rewards))])[p]
+                f.write(json.dumps(row) + "\n")
+
+
+@pytest.fixture
+def planted(tmp_path):
+    rng = np.random.default_rng(3)
+    base_r = (rng.random((P, N)) < 0.3).astype(int)
+    tuned_r = (rng.random((P, N)) < 0.6).astype(int)
+    base_s, tuned_s = rng.integers(0, 3, (P, N)), rng.integers(0, 3, (P, N))  # ties in the scores
+    (tmp_path / "base").mkdir()  # a run directory: its heldout_samples.jsonl
+    write(tmp_path / "base" / "heldout_samples.jsonl", base_r.tolist(), base_s.tolist())
+    write(tmp_path / "tuned.jsonl", tuned_r.tolist(), tuned_s.tolist())
+    return tmp_path, (base_r, base_s), (tuned_r, tuned_s)
+
+
+def best_of_n(r, s):
+    top = s == s.max()
+    return r[top].mean()  # the top-scored sample's reward, ties averaged
+
+
+def test_means_and_paired_differences_match_hand_computation(planted, capsys):
+    tmp, (br, bs), (tr, ts) = planted
+    out = tmp / "c.json"
+    assert main(["compare", str(tmp / "base"), str(tmp / "tuned.jsonl"), "--ks", "1,2,4", "--json", str(out),
+                 "--plot-dir", str(tmp / "plots")]) == 0
+    text = capsys.readouterr().out
+    assert "| policy | pass@1 | pass@2 | pass@4 | score best-of-4 |" in text and "Paired difference from base" in text
+    doc = json.loads(out.read_text())
+    assert doc["baseline"] == "base" and doc["n_prompts"] == P and doc["intervals_valid"] is True
+    assert doc["columns"] == ["pass@1", "pass@2", "pass@4", "score best-of-4"]
+    hand = {}
+    for name, (r, s) in (("base", (br, bs)), ("tuned", (tr, ts))):
+        hand[name] = [np.mean([chen_pass_at_k(N, int(row.sum()), k) for row in r]) for k in (1, 2, 4)]
+        hand[name].append(np.mean([best_of_n(r[p], s[p]) for p in range(P)]))
+        for (m, lo, hi), want in zip(doc["means"][name], hand[name]):
+            assert m == pytest.approx(want, abs=1e-12) and lo <= m <= hi
+    for (d, lo, hi), a, b in zip(doc["differences"]["base"]["tuned"], hand["tuned"], hand["base"]):
+        assert d == pytest.approx(a - b, abs=1e-12) and lo <= d <= hi
+    assert (tmp / "plots" / "compare_curves.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    # another verifier's pick (a field of its own), a chosen baseline and names
+    assert main(["compare", str(tmp / "base"), str(tmp / "tuned.jsonl"), "--ks", "4", "--score-field", "score_alt",
+                 "--names", "a,b", "--baseline", "b", "--json", str(out)]) == 0
+    doc = json.loads(out.read_text())
+    low = [np.mean([tr[p][ts[p] == ts[p].min()].mean() for p in range(P)])]  # score_alt = -score: the lowest score picks
+    assert doc["means"]["b"][1][0] == pytest.approx(low[0], abs=1e-12) and list(doc["differences"]) == ["b"]
+
+
+def test_too_few_prompts_give_means_without_intervals(tmp_path, capsys):
+    write(tmp_path / "a.jsonl", [[1, 0], [0, 0]], [[1, 2], [0, 1]])
+    write(tmp_path / "b.jsonl", [[1, 1], [0, 1]], [[1, 2], [0, 1]])
+    assert main(["compare", str(tmp_path / "a.jsonl"), str(tmp_path / "b.jsonl"), "--json", str(tmp_path / "c.json")]) == 0
+    assert "intervals n/a: 2 prompt(s); a bootstrap over prompts needs at least 10" in capsys.readouterr().out
+    doc = json.loads((tmp_path / "c.json").read_text())
+    assert doc["intervals_valid"] is False and doc["differences"]["a"]["b"][0] == [0.5, None, None]  # pass@1 0.5 vs 0.25
+
+
+@pytest.mark.parametrize("case, message", [
+    ("other prompts", r"b and a must hold the same prompts to be compared paired: 1 prompt\(s\) only in a \(e.g. \['11'\]\), "
+                      r"1 only in b \(e.g. \['99'\]\)"),
+    ("other texts", r"b and a give prompt 0 different texts \('seed 7 prompt' vs 'jars 0'; 1 of 12 prompts differ\): they "
+                    r"were evaluated on different prompts"),
+    ("one input", r"RUN_OR_FILE must name at least 2 inputs to compare, got 1"),
+    ("same names", r"the inputs' names must differ, got \['a', 'a'\]; pass --names A,B,..."),
+    ("bad baseline", r"--baseline must be one of the inputs' names \['a', 'b'\], got 'c'"),
+    ("bad names", r"--names must give one non-empty name per input \(2\), got 'x'"),
+    ("big k", r"--ks must be between 1 and the smallest pool \(n=4\), got \[1, 8\]"),
+    ("no samples", r"RUN_OR_FILE '.*empty' is a directory without heldout_samples.jsonl .*bonft sample"),
+])
+def test_what_cannot_be_paired_is_refused_naming_why(tmp_path, capsys, case, message):
+    r, s = np.ones((P, N), int).tolist(), np.zeros((P, N), int).tolist()
+    write(tmp_path / "a.jsonl", r, s)
+    b, extra = tmp_path / "b.jsonl", []
+    ids = list(range(P - 1)) + [99] if case == "other prompts" else None
+    texts = ["seed 7 prompt"] + [f"jars {q}" for q in range(1, P)] if case == "other texts" else None
+    write(b, r, s, ids=ids, texts=texts)
+    args = {"one input": [str(tmp_path / "a.jsonl")], "same names": [str(tmp_path / "a.jsonl")] * 2}.get(case, [str(tmp_path / "a.jsonl"), str(b)])
+    extra = {"bad baseline": ["--baseline", "c"], "bad names": ["--names", "x"], "big k": ["--ks", "1,8"]}.get(case, [])
+    if case == "no samples":
+        (tmp_path / "empty").mkdir()
+        args = [str(tmp_path / "empty"), str(b)]
+    assert main(["compare", *args, *extra]) == 2
+    err = capsys.readouterr().err
+    assert err.startswith("bonft compare: error: ")
+    assert re.search(message, err), err
+
+
+def test_files_without_prompt_texts_pair_by_id_and_say_so(tmp_path, capsys):
+    r, s = np.ones((P, N), int).tolist(), np.zeros((P, N), int).tolist()
+    write(tmp_path / "a.jsonl", r, s, texts=False)
+    write(tmp_path / "b.jsonl", r, s)
+    assert main(["compare", str(tmp_path / "a.jsonl"), str(tmp_path / "b.jsonl")]) == 0
+    assert "paired by prompt id alone: a carries no prompt texts" in capsys.readouterr().out
