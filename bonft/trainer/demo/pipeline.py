@@ -233,8 +233,8 @@ def final_eval_pools(dc: DemoConfig, stage_dir: Path, prompts: list, *, temperat
     evaluation (``HELDOUT_SAMPLES``: the same prompts, seeds, weights and verifiers), or None when the
     stage has none that matches: a finished run whose last evaluation used the oracle (``exact``) at
     ``temperature`` with ``n`` samples on at least ``len(prompts)`` prompts, whose config has the
-    demo's values of the keys that fix the prompts and the draws, and whose file holds a
-    ``score_proxy`` field when ``proxy``."""
+    demo's values of the keys that fix the prompts and the draws, and whose file holds these prompts'
+    texts in this order (and a ``score_proxy`` field when ``proxy``)."""
     last = _final_eval(stage_dir)
     file = stage_dir / HELDOUT_SAMPLES
     if last is None or not file.is_file() or not (stage_dir / "config.toml").is_file():
@@ -247,12 +247,17 @@ def final_eval_pools(dc: DemoConfig, stage_dir: Path, prompts: list, *, temperat
         return None
     fields_ = {"score_field": "score_proxy"} if proxy else {}
     try:
-        table = read_samples(file, duplicates="allow", **fields_)  # identical responses are distinct samples
+        table = read_samples(file, duplicates="allow", text_field="prompt", **fields_)  # identical responses: distinct samples
     except ValueError:  # no score_proxy field: sample afresh
         return None
     keys, proxies, rewards = group_pools(table)
     P = len(prompts)
     if keys[:P] != [str(j) for j in range(P)] or any(len(r) != n for r in rewards[:P]):
+        return None
+    first = {}  # each prompt id's text: the file's prompts must be these, in this order
+    for key, text in zip(table.prompt_keys, table.prompts if table.prompts is not None else [None] * len(table)):
+        first.setdefault(key, text)
+    if [first[str(j)] for j in range(P)] != [e.prompt for e in prompts]:
         return None
     out = {"rewards": np.stack(rewards[:P]), "family": np.array([str((e.meta or {}).get("family", "all")) for e in prompts])}
     if proxy:
