@@ -278,6 +278,13 @@ def test_bad_input_messages():
         reinforce_loss(torch.zeros(2, 3), s, anchor_logprobs=torch.zeros(2, 4))
     with pytest.raises(ValueError, match=r"correct must hold only 0/1 \(or booleans\), got 2.0 at index \(0, 0\)"):
         pass_at_k_loss(torch.zeros(2, 3), torch.full((2, 3), 2.0), k=1)
+    # a NaN or an infinity is named as not finite, before the 0/1 check and the log-probs' checks
+    with pytest.raises(ValueError, match=r"correct must be finite, got nan at index \(1, 2\)"):
+        pass_at_k_loss(torch.zeros(2, 3), np.array([[0.5, 1, 0], [0, 1, np.nan]]), k=1)
+    with pytest.raises(ValueError, match=r"correct must be finite, got inf at index \(0, 0\)"):
+        pass_at_k_loss(torch.zeros(2, 3, dtype=torch.long), np.array([[np.inf, 1, 0], [0, 1, 0]]), k=1)
+    with pytest.raises(ValueError, match=r"rewards must be finite, got nan at index \(0, 1\)"):
+        reinforce_loss(torch.zeros(2, 4), np.array([[0, np.nan, 1], [0, 1, 0]]))
     with pytest.raises(ValueError, match=r"reference_scores must have shape \(B,\) = \(2,\) to match scores, got \(3,\)"):
         best_of_k_sft_loss(torch.zeros(2, 3), s, torch.zeros(2), torch.zeros(3), k=1)
     with pytest.raises(ValueError, match=r"mask needs token log-probs \(3 dimensions\), got logprobs of shape \(2, 3\)"):

@@ -613,12 +613,21 @@ def _host_pool(logprobs, **arrays) -> tuple[Tensor, list[np.ndarray]]:
     return lp, out
 
 
-def _host_one(logprobs, name: str, x) -> tuple[Tensor, np.ndarray]:
-    """:func:`_host_pool` of one array (the same checks in the same order, without the loop)."""
-    a = as_host(name, x, ndim=2)
-    lp = check_logprobs("logprobs", logprobs, seq_ndim=2)
-    if a.shape != lp.shape[:2]:
-        check_pool_shape(name, a, logprobs)
+def _host_one(logprobs, name: str, x, *, finite: bool = True) -> tuple[Tensor, np.ndarray]:
+    """:func:`_host_pool` of one array (the same checks in the same order, without the loop).
+
+    ``finite=False``: the caller checks the array's finiteness (a later check subsumes it); the
+    finiteness error still comes before the errors of the log-probs, as with ``finite=True``.
+    """
+    a = as_host(name, x, ndim=2, finite=finite)
+    try:
+        lp = check_logprobs("logprobs", logprobs, seq_ndim=2)
+        if a.shape != lp.shape[:2]:
+            check_pool_shape(name, a, logprobs)
+    except (TypeError, ValueError):
+        if not finite:
+            _check_finite_host(name, a)
+        raise
     return lp, a
 
 
@@ -687,8 +696,12 @@ def pass_at_k_loss(logprobs, correct, *, k, estimator="unbiased", positive_only=
     on Code"; Walder & Karkhanis 2025.
     """
     opt = LossOptions.from_keywords("pass_at_k_loss", common)  # option errors name this loss, before any work
-    lp, c = _host_one(logprobs, "correct", correct)
-    check_binary("correct", c)
+    lp, c = _host_one(logprobs, "correct", correct, finite=False)  # NaN and infinities are not 0/1 either
+    try:
+        check_binary("correct", c)
+    except ValueError:
+        _check_finite_host("correct", c)  # a NaN or an infinity is named as such, as the finiteness check names it
+        raise
     credit = _pass_at_k_credit_host(c, k=k, estimator=estimator, positive_only=positive_only,
                                     dtype=lp.dtype if lp.device.type == "cpu" else None)
     n = c.shape[1]  # Chen et al. 2021's 1 - C(n-c, k)/C(n, k) of each pool (k was checked with the credit)

@@ -45,8 +45,12 @@ RATIO_LEVELS = ("token", "sequence", "pool")
 # host arrays: pools of scores, rewards, correctness
 # ----------------------------------------------------------------------------
 
-def as_host(name: str, x: Any, *, ndim: int) -> np.ndarray:
-    """Any array-like -> finite, non-empty float64 numpy array with ``ndim`` dimensions."""
+def as_host(name: str, x: Any, *, ndim: int, finite: bool = True) -> np.ndarray:
+    """Any array-like -> finite, non-empty float64 numpy array with ``ndim`` dimensions.
+
+    ``finite=False``: the caller checks finiteness itself (with :func:`_check_finite_host`, whose error
+    must then come first wherever another check fails).
+    """
     if type(x) is np.ndarray and x.dtype == np.float64:  # the usual host pool: as it is, no conversion to try
         a = x
     elif is_tensor(x):
@@ -61,7 +65,8 @@ def as_host(name: str, x: Any, *, ndim: int) -> np.ndarray:
         raise ValueError(f"{name} must have shape {want} ({ndim} dimension(s)), got shape {tuple(a.shape)}")
     if a.size == 0:
         check_nonempty(name, a)
-    _check_finite_host(name, a)
+    if finite:
+        _check_finite_host(name, a)
     return a
 
 
