@@ -551,7 +551,7 @@ def _reinforce_core(R: np.ndarray, baseline: str) -> np.ndarray:
             return R / n  # no others: the leave-one-out mean is 0
         R = R - R[:, :1]  # same credit, exact zeros for all-equal rewards
         # (R - mean_{-i} R) / n with mean_{-i} R = (sum R - R) / (n - 1), in place (two arrays instead of five)
-        w = R.sum(-1, keepdims=True) - R
+        w = np.add.reduce(R, axis=-1, keepdims=True) - R  # R.sum(-1, keepdims=True) without its Python wrapper
         w /= n - 1
         np.subtract(R, w, out=w)
         if n & (n - 1) == 0:

@@ -198,6 +198,8 @@ def _policy_gradient_loss(logprobs, credit, opt: LossOptions, *, own: bool = Fal
     (an overflow of finite rewards can still give an infinity) is looked at only when the loss is not finite;
     or a tensor of lp's dtype and device made from finite tables (taken as it is).
     """
+    if own and opt is _DEFAULT_OPTIONS and logprobs.ndim == 2 and _numpy_view(logprobs):
+        return _plain_sequence_loss(logprobs, credit)
     lp = logprobs if own else check_logprobs("logprobs", logprobs, seq_ndim=2)
     mask = check_mask("mask", opt.mask, "logprobs", lp, seq_ndim=2)
     if opt.check_tokens:
@@ -219,6 +221,18 @@ def _policy_gradient_loss(logprobs, credit, opt: LossOptions, *, own: bool = Fal
         if not math.isfinite(loss.item() if loss.ndim == 0 else float(loss.detach().numpy().sum())):
             _check_finite_host("credit", credit)
     return out
+
+
+def _plain_sequence_loss(lp: Tensor, credit) -> Tensor:
+    """The named losses' call without options on (B, n) host log-probs: :func:`_checked_credit_loss`'s operations
+    and its read of the loss (a float64 credit is checked finite only when the loss is not), inline."""
+    if is_tensor(credit):  # made in lp's dtype from finite tables
+        return (-(credit * lp).sum(-1)).mean()
+    w = torch.from_numpy(credit)
+    loss = (-((w if lp.dtype == torch.float64 else w.to(dtype=lp.dtype)) * lp).sum(-1)).mean()
+    if not math.isfinite(loss.item()):
+        _check_finite_host("credit", credit)  # a non-finite credit makes the loss non-finite (inf * 0 is NaN)
+    return loss
 
 
 def _own_credit(credit: np.ndarray, lp: Tensor) -> Tensor:
