@@ -93,7 +93,11 @@ whose gradient the clip dropped, with ``clip_ratio``).
 
 Cost and checks: the pool checks are O(B n); credit is computed in float64
 numpy on the host (scores and rewards come from verifiers) and copied to the
-log-probs' device once. With a mask, padding is taken out by a multiply: by a
+log-probs' device once (on a CPU, ``pass_at_k_loss``'s unbiased credit is each
+pool's two values rounded to the log-probs' dtype, then selected: the same
+numbers). A named loss checks the credit it computed for a NaN or an infinity
+(finite rewards can overflow) on an accelerator before the loss, on a CPU only
+when the loss is not finite: a ``ValueError`` naming the credit either way. With a mask, padding is taken out by a multiply: by a
 floating mask as given (the backward allocates ``mask * g``; the caller's
 tensor is never written), by 0/1 weights made from a bool or integer mask (one
 conversion; the backward reuses that tensor for the gradient). One read of two
