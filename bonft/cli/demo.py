@@ -51,7 +51,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     g.add_argument("--validation-prompts", type=int, metavar="N", help="validation prompts per seed (default: 200)")
     g.add_argument("--grid-only", action="store_true", help="stop after the validation grid on the tuning seeds")
     p.add_argument("--task", default="refunds", metavar="NAME",
-                   help="the demo's task: refunds (default), workshop (code judged by unit tests; 12 min of CPU, 8 on 2 idle cores), ledger or "
+                   help="the demo's task: refunds (default), workshop (code judged by unit tests; 11 min of CPU, under 8 on 2 idle cores), ledger or "
                         "restock; the task's own demo settings apply (bonft.tasks TASKS[NAME].demo_settings), --set wins")
     p.add_argument("--sandbox", choices=("auto", "prestarted", "fresh"), default=None,
                    help="tasks that run programs (workshop): prestarted = CodeRunner's pool of pre-started sandbox "
