@@ -226,7 +226,7 @@ DATA_ARGS = {  # the positional (data) parameters of each public function; every
     "estimate.passk": {"pass_at_k": ["n", "c"]},
     "estimate.paired": {"per_prompt_curves": ["pools"], "paired_bootstrap": ["a", "b"], "bootstrap_mean": ["a"],
                         "paired_comparison": ["curves"], "format_interval": ["m", "lo", "hi"],
-                        "paired_table": ["comparison"]},
+                        "paired_table": ["comparison"], "t_interval": ["values"], "seed_comparison": ["per_seed"]},
     "estimate.intervals": {"bootstrap_ci": ["values"], "summarize": ["scores", "rewards"],
                            "default_ks": ["smallest_pool"]},
     "objectives.credit": {"best_of_k_credit": ["scores", "rewards"], "pass_at_k_credit": ["correct"],

@@ -7,11 +7,11 @@ from math import comb
 import numpy as np
 import pytest
 
-from bonft.estimate.paired import paired_bootstrap, per_prompt_curves
+from bonft.estimate.paired import paired_bootstrap, per_prompt_curves, t_interval
 from bonft.tasks import get_task
 from bonft.trainer.demo import DemoConfig, collect_stage_pools, run_demo
 from bonft.trainer.demo.pipeline import policy_pools
-from bonft.trainer.demo.stats import best_temperatures, study_table, t_interval
+from bonft.trainer.demo.stats import best_temperatures, study_table
 
 
 def test_tiny_demo_end_to_end(tmp_path, monkeypatch):

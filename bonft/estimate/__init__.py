@@ -6,13 +6,21 @@
 * :mod:`bonft.estimate.intervals` -- bootstrap intervals over prompts and the curve summary
   (:func:`bootstrap_ci`, :func:`default_ks`, :class:`CurveSummary`, :func:`summarize`);
 * :mod:`bonft.estimate.paired` -- policies compared on the same prompts: per-prompt curves, paired
-  bootstrap differences and their table (:func:`per_prompt_curves`, :func:`paired_comparison`).
+  bootstrap differences over prompts and Student-t differences over training seeds, and their tables
+  (:func:`per_prompt_curves`, :func:`paired_comparison`, :func:`seed_comparison`).
 
 Hyper-parameters (``k``, ``ks``, ...) are keyword-only.
 """
 from bonft.estimate.bestofk import best_of_k, best_of_k_per_prompt, pass_at_k_per_prompt
 from bonft.estimate.intervals import MIN_BOOT_PROMPTS, CurveSummary, bootstrap_ci, default_ks, summarize
-from bonft.estimate.paired import paired_bootstrap, paired_comparison, paired_table, per_prompt_curves
+from bonft.estimate.paired import (
+    paired_bootstrap,
+    paired_comparison,
+    paired_table,
+    per_prompt_curves,
+    seed_comparison,
+    t_interval,
+)
 from bonft.estimate.passk import pass_at_k
 
 __all__ = [
@@ -29,4 +37,6 @@ __all__ = [
     "paired_bootstrap",
     "paired_comparison",
     "paired_table",
+    "seed_comparison",
+    "t_interval",
 ]

@@ -17,6 +17,7 @@ import math
 from typing import Mapping, Sequence
 
 import numpy as np
+from scipy import stats
 
 from bonft.estimate.bestofk import best_of_k_per_prompt, pass_at_k_per_prompt
 
@@ -105,6 +106,51 @@ def paired_comparison(curves, *, ks, baselines: Sequence[str], n_boot: int = 200
     return {"columns": cols, "means": means, "differences": diffs}
 
 
+def t_interval(values, *, confidence: float = 0.95) -> tuple[float, float, float]:
+    r"""Mean over training seeds and its Student-t interval (``S - 1`` degrees of freedom; NaN bounds when S = 1).
+
+    Shape: ``values (S,) -> (mean, lo, hi)``.
+
+    .. math:: \bar v \pm t_{(1+c)/2,\,S-1}\, \frac{s_v}{\sqrt S}
+
+    References: Student 1908, "The probable error of a mean".
+    """
+    v = np.asarray(values, dtype=float)
+    if len(v) < 2:
+        return float(v.mean()), float("nan"), float("nan")
+    half = stats.t.ppf(0.5 + confidence / 2, len(v) - 1) * v.std(ddof=1) / math.sqrt(len(v))
+    return float(v.mean()), float(v.mean() - half), float(v.mean() + half)
+
+
+def seed_comparison(per_seed, *, ks, baselines: Sequence[str], confidence: float = 0.95) -> dict:
+    r"""Over training seeds: each policy's per-seed mean, their mean [t-interval], and paired per-seed differences.
+
+    Shape: ``per_seed``: seed -> policy -> :func:`per_prompt_curves` (the same policies on every seed; each
+    seed's policies on the same prompts) ``->`` :func:`paired_comparison`'s dict over seeds, plus ``"seeds"``
+    and ``"per_seed"``: policy -> one list of column means per seed.
+
+    .. math:: \bar d = \frac1S\sum_s \big(\bar v_s^{\text{policy}} - \bar v_s^{\text{baseline}}\big),
+              \text{ with its Student-t interval over the } S \text{ seeds}
+
+    Each seed has its own training runs (and, in the demo, its own warm start and data split), so the
+    interval covers the training's noise as well as the evaluation's.
+
+    References: Student 1908 (the t-interval); the paired design as in :func:`paired_comparison`.
+    """
+    seeds = list(per_seed)
+    names = list(per_seed[seeds[0]])
+    cols = [(f"pass@{k}", "pass", j) for j, k in enumerate(ks)]
+    if all("proxy" in c for s in seeds for c in per_seed[s].values()):
+        cols.append((f"best-of-{ks[-1]}", "proxy", len(ks) - 1))
+    mean = {(s, n, kind, j): float(per_seed[s][n][kind][:, j].mean()) for s in seeds for n in names for _, kind, j in cols}
+    means = {n: [t_interval([mean[s, n, kind, j] for s in seeds], confidence=confidence) for _, kind, j in cols]
+             for n in names}
+    diffs = {base: {n: [t_interval([mean[s, n, kind, j] - mean[s, base, kind, j] for s in seeds], confidence=confidence)
+                        for _, kind, j in cols] for n in names if n != base} for base in baselines if base in names}
+    per = {n: [[mean[s, n, kind, j] for _, kind, j in cols] for s in seeds] for n in names}
+    return {"columns": cols, "means": means, "differences": diffs, "seeds": seeds, "per_seed": per}
+
+
 def format_interval(m: float, lo: float, hi: float, *, signed: bool = False) -> str:
     """``0.164 [0.140, 0.189]`` (``signed``: ``+0.020 [-0.005, +0.047]``, `` *`` when the interval excludes 0); the
     mean alone when there is no interval (NaN bounds)."""
@@ -115,9 +161,11 @@ def format_interval(m: float, lo: float, hi: float, *, signed: bool = False) -> 
     return f"{f.format(m)} [{f.format(lo)}, {f.format(hi)}]{mark}"
 
 
-def paired_table(comparison, *, n_prompts: int, labels: Mapping[str, str] | None = None, picker: str = "proxy",
-                 confidence: float = 0.95, caption: str = "", interval_name: str = "bootstrap CI over prompts") -> str:
-    """Markdown of :func:`paired_comparison`: the means, then one table of paired differences per baseline.
+def paired_table(comparison, *, n_prompts: int = 0, labels: Mapping[str, str] | None = None, picker: str = "proxy",
+                 confidence: float = 0.95, caption: str = "") -> str:
+    """Markdown of :func:`paired_comparison` (over the ``n_prompts`` prompts) or of :func:`seed_comparison` (over
+    seeds, then a table of every seed's pass@1 / pass@K / best-of-K): the means, then one table of paired
+    differences per baseline.
 
     labels: policy -> the name a row shows (default: the policy's own); picker: the verifier named in the
     best-of-k column; caption: a line under every table's title (e.g. which verifier trains, which evaluates).
@@ -125,16 +173,30 @@ def paired_table(comparison, *, n_prompts: int, labels: Mapping[str, str] | None
     labels = labels or {}
     cols = comparison["columns"]
     heads = [f"{picker} {label}" if kind == "proxy" else label for label, kind, _ in cols]
+    seeds = comparison.get("seeds")
+    pct = round(100 * confidence)
 
-    def head(title: str) -> list[str]:
-        return [title, *([caption] if caption else []), "", "| policy | " + " | ".join(heads) + " |",
-                "|---" * (len(heads) + 1) + "|"]
+    def head(title: str, columns=heads) -> list[str]:
+        return [title, *([caption] if caption else []), "", "| policy | " + " | ".join(columns) + " |",
+                "|---" * (len(columns) + 1) + "|"]
 
-    lines = head(f"Mean over {n_prompts} held-out prompts [{round(100 * confidence)}% {interval_name}]")
+    if seeds is None:
+        lines = head(f"Mean over {n_prompts} held-out prompts [{pct}% bootstrap CI over prompts]")
+    else:
+        lines = head(f"Mean over {len(seeds)} seeds (seeds {', '.join(map(str, seeds))}) [{pct}% Student-t interval over seeds]")
     for name, cells in comparison["means"].items():
         lines.append(f"| {labels.get(name, name)} | " + " | ".join(format_interval(*c) for c in cells) + " |")
     for base, rows in comparison["differences"].items():
-        lines += [""] + head(f"Paired difference from {labels.get(base, base)} (same prompts; * = interval excludes 0)")
+        how = "(same prompts; * = interval excludes 0)" if seeds is None else ", per seed then over seeds (* = interval excludes 0)"
+        lines += [""] + head(f"Paired difference from {labels.get(base, base)}{' ' if seeds is None else ''}{how}")
         for name, cells in rows.items():
             lines.append(f"| {labels.get(name, name)} | " + " | ".join(format_interval(*c, signed=True) for c in cells) + " |")
+    if seeds is not None:  # every seed's pass@1 / pass@K (/ best-of-K): the spread the interval summarises
+        last = [0, len([c for c in cols if c[1] == "pass"]) - 1] + ([len(cols) - 1] if cols[-1][1] == "proxy" else [])
+        what = " / ".join(heads[j] for j in last)
+        lines += ["", f"Per seed ({what})", *([caption] if caption else []), "",
+                  "| policy | " + " | ".join(f"seed {s}" for s in seeds) + " |", "|---" * (len(seeds) + 1) + "|"]
+        for name, per in comparison["per_seed"].items():
+            lines.append(f"| {labels.get(name, name)} | " + " | ".join(" / ".join(f"{row[j]:.3f}" for j in last) for row in per)
+                         + " |")
     return "\n".join(lines)

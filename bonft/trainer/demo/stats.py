@@ -16,13 +16,11 @@ best-of-k under the proxy is the U-statistic over all k-subsets with ties shared
 """
 from __future__ import annotations
 
-import math
 from typing import Mapping, Sequence
 
 import numpy as np
-from scipy import stats
 
-from bonft.estimate.paired import format_interval, paired_comparison, paired_table
+from bonft.estimate.paired import paired_comparison, paired_table, seed_comparison
 from bonft.plan.sweep import Pools, plan_pools
 
 LABELS = {
@@ -36,28 +34,6 @@ LABELS = {
     "pass_at_k_anneal": "pass@k, k annealed 16 -> 1",
     "placebo": "placebo (pass@k, outcomes shuffled)",
 }
-
-
-def t_interval(values: Sequence[float], *, confidence: float = 0.95) -> tuple[float, float, float]:
-    """values: (S,) per-seed numbers -> (mean, lo, hi), Student-t interval with S - 1 degrees of freedom."""
-    v = np.asarray(values, dtype=float)
-    if len(v) < 2:
-        return float(v.mean()), float("nan"), float("nan")
-    half = stats.t.ppf(0.5 + confidence / 2, len(v) - 1) * v.std(ddof=1) / math.sqrt(len(v))
-    return float(v.mean()), float(v.mean() - half), float(v.mean() + half)
-
-
-def _columns(ks: Sequence[int], has_proxy: bool) -> list[tuple[str, str, int]]:
-    cols = [(f"pass@{k}", "pass", j) for j, k in enumerate(ks)]
-    if has_proxy:
-        cols.append((f"proxy best-of-{ks[-1]}", "proxy", len(ks) - 1))
-    return cols
-
-
-def _head(title: str, cols, caption: str = "") -> list[str]:
-    """A markdown table's title line (and ``caption`` under it), blank line, header and rule for a policy column plus ``cols``."""
-    return [title, *([caption] if caption else []), "", "| policy | " + " | ".join(c[0] for c in cols) + " |",
-            "|---" * (len(cols) + 1) + "|"]
 
 
 def seed_table(curves: Mapping[str, Mapping[str, np.ndarray]], ks: Sequence[int], *,
@@ -76,44 +52,14 @@ def seed_table(curves: Mapping[str, Mapping[str, np.ndarray]], ks: Sequence[int]
 
 def study_table(per_seed: Mapping[int, Mapping[str, Mapping[str, np.ndarray]]], ks: Sequence[int], *,
                 baselines: Sequence[str] = ("warm_start", "reinforce"), confidence: float = 0.95, caption: str = "") -> str:
-    """Over seeds: per-seed means, their mean [t-interval], and paired per-seed differences [t-interval].
+    """Over seeds: per-seed means, their mean [t-interval], and paired per-seed differences [t-interval]
+    (:func:`bonft.estimate.paired.seed_comparison` in the demo's names).
 
-    per_seed: seed -> policy -> :func:`per_prompt_curves` (the same policies for every seed).
+    per_seed: seed -> policy -> :func:`~bonft.estimate.paired.per_prompt_curves` (the same policies for every seed).
     caption: a line under every table's title (e.g. which verifier trains and which evaluates).
     """
-    seeds = list(per_seed)
-    names = list(per_seed[seeds[0]])
-    cols = _columns(ks, all("proxy" in c for s in seeds for c in per_seed[s].values()))
-    mean = {(s, n, kind, j): float(per_seed[s][n][kind][:, j].mean()) for s in seeds for n in names for _, kind, j in cols}
-    pct = round(100 * confidence)
-    lines = _head(f"Mean over {len(seeds)} seeds (seeds {', '.join(map(str, seeds))}) [{pct}% Student-t interval over seeds]", cols,
-                  caption)
-    for n in names:
-        cells = [format_interval(*t_interval([mean[s, n, kind, j] for s in seeds], confidence=confidence)) for _, kind, j in cols]
-        lines.append(f"| {LABELS.get(n, n)} | " + " | ".join(cells) + " |")
-    for base in baselines:
-        if base not in names:
-            continue
-        lines += [""] + _head(f"Paired difference from {LABELS.get(base, base)}, per seed then over seeds (* = interval excludes 0)", cols,
-                              caption)
-        for n in names:
-            if n == base:
-                continue
-            cells = [format_interval(*t_interval([mean[s, n, kind, j] - mean[s, base, kind, j] for s in seeds], confidence=confidence),
-                                    signed=True) for _, kind, j in cols]
-            lines.append(f"| {LABELS.get(n, n)} | " + " | ".join(cells) + " |")
-    lines += ["", "Per seed (pass@1 / pass@" + str(ks[-1]) + (f" / proxy best-of-{ks[-1]}" if len(cols) > len(ks) else "") + ")",
-              *([caption] if caption else []), "",
-              "| policy | " + " | ".join(f"seed {s}" for s in seeds) + " |", "|---" * (len(seeds) + 1) + "|"]
-    for n in names:
-        cells = []
-        for s in seeds:
-            parts = [mean[s, n, "pass", 0], mean[s, n, "pass", len(ks) - 1]]
-            if len(cols) > len(ks):
-                parts.append(mean[s, n, "proxy", len(ks) - 1])
-            cells.append(" / ".join(f"{v:.3f}" for v in parts))
-        lines.append(f"| {LABELS.get(n, n)} | " + " | ".join(cells) + " |")
-    return "\n".join(lines)
+    comp = seed_comparison(per_seed, ks=ks, baselines=baselines, confidence=confidence)
+    return paired_table(comp, labels=LABELS, confidence=confidence, caption=caption)
 
 
 def best_temperatures(pools_by_temperature: Mapping[float, np.ndarray], ks: Sequence[int], *, n_boot: int = 500,
