@@ -58,7 +58,7 @@ def test_means_and_paired_differences_match_hand_computation(planted, capsys):
     text = capsys.readouterr().out
     assert "| policy | pass@1 | pass@2 | pass@4 | score best-of-4 |" in text and "Paired difference from base" in text
     doc = json.loads(out.read_text())
-    assert doc["baseline"] == "base" and doc["n_prompts"] == P and doc["intervals_valid"] is True
+    assert doc["baseline"] == "base" and doc["n_prompts"] == [P] and doc["intervals_valid"] is True
     assert doc["columns"] == ["pass@1", "pass@2", "pass@4", "score best-of-4"]
     hand = {}
     for name, (r, s) in (("base", (br, bs)), ("tuned", (tr, ts))):
@@ -122,3 +122,37 @@ def test_files_without_prompt_texts_pair_by_id_and_say_so(tmp_path, capsys):
     write(tmp_path / "b.jsonl", r, s)
     assert main(["compare", str(tmp_path / "a.jsonl"), str(tmp_path / "b.jsonl")]) == 0
     assert "paired by prompt id alone: a carries no prompt texts" in capsys.readouterr().out
+
+
+def test_one_run_per_training_seed_gives_a_student_t_interval_over_seeds(tmp_path, capsys):
+    """Three seeds, each its own prompts: per-seed pass@1 differences 0.1, 0.2, 0.3 -> mean 0.2, sd 0.1, and
+    t_{0.975, 2} = 4.303 (a t table, Student 1908) gives 0.2 +- 4.303 * 0.1 / sqrt(3)."""
+    runs = {"base": [], "tuned": []}
+    for s, extra in enumerate((4, 8, 12)):  # tuned: 10 + extra correct samples of 40 -> pass@1 0.25 + extra / 40
+        texts = [f"seed {s} prompt {q}" for q in range(10)]
+        base = [[1, 0, 0, 0]] * 10  # 10 of 40: pass@1 0.25
+        tuned = [[1] * min(4, 1 + extra // 10 + (q < extra % 10)) + [0] * (4 - min(4, 1 + extra // 10 + (q < extra % 10)))
+                 for q in range(10)]
+        assert sum(map(sum, tuned)) == 10 + extra
+        for name, rows in (("base", base), ("tuned", tuned)):
+            path = tmp_path / f"{name}-{s}.jsonl"
+            write(path, rows, [[0, 0, 0, 0]] * 10, texts=texts)
+            runs[name].append(str(path))
+    out = tmp_path / "c.json"
+    assert main(["compare", ",".join(runs["base"]), ",".join(runs["tuned"]), "--ks", "1,4", "--names", "base,tuned",
+                 "--json", str(out), "--plot-dir", str(tmp_path / "plots")]) == 0
+    text = capsys.readouterr().out
+    assert "Mean over 3 seeds (seeds 1, 2, 3) [95% Student-t interval over seeds]" in text
+    assert "Paired difference from base, per seed then over seeds" in text and "| tuned | 0.350 / " in text
+    doc = json.loads(out.read_text())
+    assert doc["training_seeds"] == 3 and doc["n_prompts"] == [10, 10, 10] and doc["interval"] == "Student-t over training seeds"
+    d, lo, hi = doc["differences"]["base"]["tuned"][0]
+    half = 4.303 * 0.1 / math.sqrt(3)
+    assert d == pytest.approx(0.2, abs=1e-12) and lo == pytest.approx(0.2 - half, abs=1e-3) and hi == pytest.approx(0.2 + half, abs=1e-3)
+    assert [row[0] for row in doc["per_seed"]["tuned"]] == pytest.approx([0.35, 0.45, 0.55], abs=1e-12)
+    assert (tmp_path / "plots" / "compare_curves.png").is_file()
+    # every input lists one run per seed; a seed whose runs hold other prompts is named
+    assert main(["compare", ",".join(runs["base"]), ",".join(runs["tuned"][:2])]) == 2
+    assert "every input must list the same number of runs (one per training seed), got [3, 2]" in capsys.readouterr().err
+    assert main(["compare", ",".join(runs["base"]), ",".join(runs["tuned"][::-1]), "--names", "a,b"]) == 2
+    assert "training seed 1 of 3: b and a give prompt 0 different texts ('seed 2 prompt 0' vs 'seed 0 prompt 0'" in capsys.readouterr().err

@@ -14,15 +14,17 @@ DESCRIPTION = (
     "--score-field) with bootstrap intervals over prompts, then each one's paired difference from the baseline "
     "(the first, or --baseline): per prompt first, then averaged, so the prompts' own difficulty cancels. Files "
     "are paired by prompt id, and by prompt text where the rows carry it: runs evaluated on different prompts (another "
-    "seed's split, other data) are refused. The intervals cover the evaluation's noise, not the training run's: "
-    "a second training seed can move a difference more."
+    "seed's split, other data) are refused. These intervals cover the evaluation's noise, not the training run's: "
+    "give each input one run per training seed (A1,A2,A3 B1,B2,B3) to get per-seed means and paired differences with a "
+    "Student-t interval over the seeds, which covers both."
 )
 SAMPLES_FILE = "heldout_samples.jsonl"  # a run directory's (bonft.trainer.evaluation.HELDOUT_SAMPLES, without torch)
 
 
 def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("inputs", nargs="+", metavar="RUN_OR_FILE",
-                   help=f"two or more run directories (their {SAMPLES_FILE}) or samples files")
+                   help=f"two or more run directories (their {SAMPLES_FILE}) or samples files; A1,A2,A3 gives one "
+                        "input's runs of several training seeds (every input the same number, the s-th runs paired)")
     p.add_argument("--names", default=None, metavar="A,B",
                    help="row names, one per input (default: each run directory's or file's name)")
     p.add_argument("--baseline", default=None, metavar="NAME",
@@ -56,14 +58,14 @@ def _resolve(path: str) -> str:
     return path
 
 
-def _names(args, paths: list[str]) -> list[str]:
+def _names(args, inputs: list[str], paths: list[str]) -> list[str]:
     if args.names is not None:
         names = [v.strip() for v in args.names.split(",")]
         if len(names) != len(paths) or not all(names):
             raise ValueError(f"--names must give one non-empty name per input ({len(paths)}), got {args.names!r}")
     else:
         names = [os.path.basename(os.path.normpath(a)) if os.path.isdir(a) else os.path.splitext(os.path.basename(a))[0]
-                 for a in args.inputs]
+                 for a in inputs]
     if len(set(names)) < len(names):
         raise ValueError(f"the inputs' names must differ, got {names}; pass --names A,B,...")
     return names
@@ -103,9 +105,19 @@ def _check_paired(names: list[str], inputs: list[tuple]) -> None:
                     "data), so they cannot be compared paired")
 
 
+def _paired_pools(names: list[str], inputs: list[tuple]) -> dict:
+    """Every input's pools in the first input's prompt order: name -> {"proxy": [...], "rewards": [...]}."""
+    order = inputs[0][0]
+    pools = {}
+    for name, (keys, scores, rewards, _) in zip(names, inputs):
+        at = {k: j for j, k in enumerate(keys)}
+        pools[name] = {"proxy": [scores[at[k]] for k in order], "rewards": [rewards[at[k]] for k in order]}
+    return pools
+
+
 def run(args: argparse.Namespace) -> int:
     from bonft.estimate import MIN_BOOT_PROMPTS, default_ks
-    from bonft.estimate.paired import paired_comparison, paired_table, per_prompt_curves
+    from bonft.estimate.paired import paired_comparison, paired_table, per_prompt_curves, seed_comparison
     from bonft.io import group_pools, read_samples
     from bonft.viz import plot_paired_differences
 
@@ -113,56 +125,76 @@ def run(args: argparse.Namespace) -> int:
     ks = parse_list("--ks", args.ks)
     if len(args.inputs) < 2:
         raise ValueError(f"RUN_OR_FILE must name at least 2 inputs to compare, got {len(args.inputs)}")
-    paths = [_resolve(a) for a in args.inputs]
-    names = _names(args, paths)
+    groups = [[part for part in a.split(",") if part] for a in args.inputs]  # one run per training seed
+    S = len(groups[0])
+    if any(len(g) != S for g in groups):
+        raise ValueError(f"RUN_OR_FILE: every input must list the same number of runs (one per training seed), got "
+                         f"{[len(g) for g in groups]}")
+    paths = [[_resolve(a) for a in g] for g in groups]  # [input][seed]
+    names = _names(args, [g[0] for g in groups], [g[0] for g in paths])
     base = args.baseline if args.baseline is not None else names[0]
     if base not in names:
         raise ValueError(f"--baseline must be one of the inputs' names {names}, got {base!r}")
-    inputs = [_pools(n, p, args, read_samples, group_pools) for n, p in zip(names, paths)]
-    _check_paired(names, inputs)
-    order = inputs[0][0]  # every input's pools in the first one's prompt order
-    pools = {}
-    for name, (keys, scores, rewards, _) in zip(names, inputs):
-        at = {k: j for j, k in enumerate(keys)}
-        pools[name] = {"proxy": [scores[at[k]] for k in order], "rewards": [rewards[at[k]] for k in order]}
-    n_min = min(len(r) for p in pools.values() for r in p["rewards"])
+    per_seed, no_text, P = {}, set(), []
+    for s in range(S):
+        inputs = [_pools(n, p[s], args, read_samples, group_pools) for n, p in zip(names, paths)]
+        try:
+            _check_paired(names, inputs)
+        except ValueError as e:
+            raise ValueError(f"training seed {s + 1} of {S}: {e}" if S > 1 else str(e)) from None
+        per_seed[s + 1] = _paired_pools(names, inputs)
+        no_text |= {n for n, (*_, t) in zip(names, inputs) if t is None}
+        P.append(len(inputs[0][0]))
+    n_min = min(len(r) for pools in per_seed.values() for p in pools.values() for r in p["rewards"])
     if ks is not None and not 1 <= min(ks) <= max(ks) <= n_min:
         raise ValueError(f"--ks must be between 1 and the smallest pool (n={n_min}), got {ks}")
     ks = ks if ks is not None else default_ks(n_min)
-    curves = {name: per_prompt_curves(p, ks=ks) for name, p in pools.items()}
-    P = len(order)
-    intervals = P >= MIN_BOOT_PROMPTS
-    comp = paired_comparison(curves, ks=ks, baselines=[base], n_boot=args.n_boot, seed=args.seed,
-                             confidence=args.confidence, intervals=intervals)
-    for name, path in zip(names, paths):
-        print(f"{name}: {path}")
+    curves = {s: {name: per_prompt_curves(p, ks=ks) for name, p in pools.items()} for s, pools in per_seed.items()}
+    intervals = S > 1 or P[0] >= MIN_BOOT_PROMPTS
+    if S == 1:
+        comp = paired_comparison(curves[1], ks=ks, baselines=[base], n_boot=args.n_boot, seed=args.seed,
+                                 confidence=args.confidence, intervals=intervals)
+    else:
+        comp = seed_comparison(curves, ks=ks, baselines=[base], confidence=args.confidence)
+    for name, runs in zip(names, paths):
+        print(f"{name}: {', '.join(runs)}")
+    if S > 1:
+        print(f"training seed s = 1..{S}: the s-th run of every input; {', '.join(map(str, P))} prompts")
     print()
     caption = f"pass@k: best '{args.reward_field}' among k; best-of-k: the '{args.reward_field}' of the sample '{args.score_field}' ranks first"
-    print(paired_table(comp, n_prompts=P, picker=args.score_field, confidence=args.confidence, caption=caption))
+    print(paired_table(comp, n_prompts=P[0], picker=args.score_field, confidence=args.confidence, caption=caption))
     print()
     if not intervals:
-        print(f"intervals n/a: {P} prompt(s); a bootstrap over prompts needs at least {MIN_BOOT_PROMPTS} (see docs/estimate.md)")
-    if any(t is None for *_, t in inputs):
-        print("paired by prompt id alone: " + ", ".join(n for n, (*_, t) in zip(names, inputs) if t is None)
-              + " carries no prompt texts")
-    print("Intervals: percentile bootstrap over prompts, the same prompts resampled for both sides of a difference; "
-          "they cover the evaluation's noise, not the training run's (another training seed can move a difference more).")
+        print(f"intervals n/a: {P[0]} prompt(s); a bootstrap over prompts needs at least {MIN_BOOT_PROMPTS} (see docs/estimate.md)")
+    if no_text:
+        print("paired by prompt id alone: " + ", ".join(n for n in names if n in no_text) + " carries no prompt texts")
+    if S == 1:
+        print("Intervals: percentile bootstrap over prompts, the same prompts resampled for both sides of a difference; "
+              "they cover the evaluation's noise, not the training run's (another training seed can move a difference "
+              "more: give each input one run per seed, A1,A2,A3 B1,B2,B3).")
+    else:
+        print(f"Intervals: Student-t over the {S} training seeds of each seed's mean over its prompts (and of each "
+              "seed's paired difference): they cover the training's noise as well as the evaluation's.")
 
     if args.json:
         def plain(cells):
             return [[None if isinstance(v, float) and math.isnan(v) else v for v in c] for c in cells]
 
         write_json_atomic(args.json, {
-            "inputs": dict(zip(names, map(os.path.abspath, paths))), "baseline": base, "ks": ks, "n_prompts": P,
-            "confidence": args.confidence, "n_boot": args.n_boot, "seed": args.seed, "intervals_valid": intervals,
-            "score_field": args.score_field, "reward_field": args.reward_field,
+            "inputs": {n: [os.path.abspath(x) for x in runs] for n, runs in zip(names, paths)}, "baseline": base,
+            "ks": ks, "n_prompts": P, "training_seeds": S, "interval": "bootstrap over prompts" if S == 1 else
+            "Student-t over training seeds", "confidence": args.confidence, "n_boot": args.n_boot, "seed": args.seed,
+            "intervals_valid": intervals, "score_field": args.score_field, "reward_field": args.reward_field,
             "columns": [label if kind == "pass" else f"{args.score_field} {label}" for label, kind, _ in comp["columns"]],
             "means": {n: plain(c) for n, c in comp["means"].items()},
-            "differences": {b: {n: plain(c) for n, c in rows.items()} for b, rows in comp["differences"].items()}})
+            "differences": {b: {n: plain(c) for n, c in rows.items()} for b, rows in comp["differences"].items()},
+            **({"per_seed": comp["per_seed"]} if S > 1 else {})})
         print(f"wrote {args.json}")
     if args.plot_dir:
         os.makedirs(args.plot_dir, exist_ok=True)
         out = os.path.join(args.plot_dir, "compare_curves.png")
-        plot_paired_differences(comp, out, ks=ks, title=f"{P} prompts, {round(100 * args.confidence)}% bootstrap CI over prompts")
+        what = f"{P[0]} prompts, {round(100 * args.confidence)}% bootstrap CI over prompts" if S == 1 else \
+            f"{S} training seeds, {round(100 * args.confidence)}% Student-t interval over seeds"
+        plot_paired_differences(comp, out, ks=ks, title=what)
         print(f"wrote {out}")
     return 0
