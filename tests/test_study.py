@@ -186,6 +186,9 @@ def test_tiny_study_end_to_end_and_recipe_reproduces_it(tmp_path, capsys):
                 "best_of_k_sft-k2-lr0.05", "best_of_k_sft-k2-placebo-lr0.05"):
         assert (s0 / key / "validation-T1-P5-n16.npz").is_file(), key
     assert not (s0 / "sft-placebo-lr0.05").exists()
+    # the grid's final evaluations are never read: no samples file; a held-out run on another seed writes one
+    assert not list(s0.glob("*-lr*/heldout_samples.jsonl"))
+    assert list(out.glob("seed1/*-lr*/heldout_samples.jsonl"))
     cfg = (s0 / "reinforce-placebo-lr0.2" / "config.toml").read_text()
     assert "placebo = true" in cfg and "lr = 0.2" in cfg and 'objective = "reinforce"' in cfg
     cfg = (s0 / "sft-lr0.05" / "config.toml").read_text()

@@ -478,7 +478,9 @@ def run_study(dc: DemoConfig | None = None, sc: StudyConfig | None = None, *, pr
         for arm in arms(sc):
             for lr in sc.lr_grid[arm.objective]:
                 for placebo in ((False, True) if arm.placebo else (False,)):
-                    jobs.append((per[s], arm_config(per[s], arm, lr, placebo, warm[s]), ("validation",), sc.validation_prompts))
+                    # the grid reads validation pools only: its final evaluations' samples files would go unread
+                    cfg = replace(arm_config(per[s], arm, lr, placebo, warm[s]), heldout_samples=False)
+                    jobs.append((per[s], cfg, ("validation",), sc.validation_prompts))
     stage_seconds["validation_grid"] = _run_jobs(jobs, dc.workers, progress, "validation grid")
     timings["validation_grid"] = time.perf_counter() - t
     ks = _ks(dc)
