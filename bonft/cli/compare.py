@@ -58,11 +58,12 @@ def _resolve(path: str) -> str:
     return path
 
 
-def _names(args, inputs: list[str], paths: list[str]) -> list[str]:
+def _names(args, inputs: list[str]) -> list[str]:
+    """--names, or each input's run directory's or file's name; they must differ."""
     if args.names is not None:
         names = [v.strip() for v in args.names.split(",")]
-        if len(names) != len(paths) or not all(names):
-            raise ValueError(f"--names must give one non-empty name per input ({len(paths)}), got {args.names!r}")
+        if len(names) != len(inputs) or not all(names):
+            raise ValueError(f"--names must give one non-empty name per input ({len(inputs)}), got {args.names!r}")
     else:
         names = [os.path.basename(os.path.normpath(a)) if os.path.isdir(a) else os.path.splitext(os.path.basename(a))[0]
                  for a in inputs]
@@ -71,8 +72,10 @@ def _names(args, inputs: list[str], paths: list[str]) -> list[str]:
     return names
 
 
-def _pools(name: str, path: str, args, read_samples, group_pools) -> tuple[list, list, list, dict | None]:
+def _pools(name: str, path: str, args) -> tuple[list, list, list, dict | None]:
     """(keys, score pools, reward pools, {key: prompt text} or None) of one input."""
+    from bonft.io import group_pools, read_samples  # numpy: only when the command runs
+
     table = read_samples(path, prompt_field=args.prompt_field, score_field=args.score_field,
                          reward_field=args.reward_field, text_field="prompt")
     keys, scores, rewards = group_pools(table, temperature=args.temperature)
@@ -118,7 +121,6 @@ def _paired_pools(names: list[str], inputs: list[tuple]) -> dict:
 def run(args: argparse.Namespace) -> int:
     from bonft.estimate import MIN_BOOT_PROMPTS, default_ks
     from bonft.estimate.paired import paired_comparison, paired_table, per_prompt_curves, seed_comparison
-    from bonft.io import group_pools, read_samples
     from bonft.viz import plot_paired_differences
 
     check_sizes(args)
@@ -131,13 +133,13 @@ def run(args: argparse.Namespace) -> int:
         raise ValueError(f"RUN_OR_FILE: every input must list the same number of runs (one per training seed), got "
                          f"{[len(g) for g in groups]}")
     paths = [[_resolve(a) for a in g] for g in groups]  # [input][seed]
-    names = _names(args, [g[0] for g in groups], [g[0] for g in paths])
+    names = _names(args, [g[0] for g in groups])
     base = args.baseline if args.baseline is not None else names[0]
     if base not in names:
         raise ValueError(f"--baseline must be one of the inputs' names {names}, got {base!r}")
     per_seed, no_text, P = {}, set(), []
     for s in range(S):
-        inputs = [_pools(n, p[s], args, read_samples, group_pools) for n, p in zip(names, paths)]
+        inputs = [_pools(n, p[s], args) for n, p in zip(names, paths)]
         try:
             _check_paired(names, inputs)
         except ValueError as e:
