@@ -1,4 +1,6 @@
 """Held-out evaluation: its numbers against direct computations from the raw samples."""
+import json
+
 import numpy as np
 import pytest
 import torch
@@ -87,6 +89,11 @@ def test_sample_rows_write_the_samples_file_that_read_samples_reads_back(tmp_pat
     keys, scores, rewards = group_pools(read_samples(tmp_path / "s.jsonl"))
     assert keys == ["0", "1"] and [s.tolist() for s in scores] == [[0.25, 0.75], [0.5, 0.125]]
     assert [r.tolist() for r in rewards] == [[1.0, 0.0], [0.0, 1.0]]
+    # an answer that is not a str, an int or None is kept by its str, so bonft.io reads the file back
+    odd = {"7": 7, "8": 2.5, "x": None, "9": (1, 2)}
+    write_samples(tmp_path / "a.jsonl", sample_rows(raw, ["p0", "p1"], temperature=1.0, score="proxy", extract_answer=odd.get))
+    assert read_samples(tmp_path / "a.jsonl").answers[:2].tolist() == ["7", "2.5"]
+    assert [json.loads(line)["answer"] for line in (tmp_path / "a.jsonl").read_text().splitlines()] == [7, "2.5", None, "(1, 2)"]
     with pytest.raises(ValueError, match=r"prompts must hold the pools' P = 2 prompts, got 1"):
         sample_rows(raw, ["p0"], temperature=1.0, score="proxy")
     with pytest.raises(ValueError, match=r"score must name one of the pools' verifiers \['exact', 'proxy'\], got 'rm'"):

@@ -197,7 +197,8 @@ def sample_rows(raw: dict, prompts: Sequence[str], *, temperature: float, score:
 
     One row per response: ``prompt_id`` (the prompt's position in ``prompts``), ``prompt``, ``sample``
     (its index in the pool), ``score`` (verifier ``score``'s), ``reward`` (the evaluation verifier's),
-    ``temperature``, ``response``, ``n_tokens`` and, given ``extract_answer``, ``answer``.
+    ``temperature``, ``response``, ``n_tokens`` and, given ``extract_answer``, ``answer`` (a str, an int or
+    null; another value by its ``str``).
     ``every_score``: also ``score_<name>`` for every verifier in ``raw["scores"]`` (``bonft estimate
     --score-field score_proxy`` then ranks by that verifier).
     """
@@ -216,12 +217,20 @@ def sample_rows(raw: dict, prompts: Sequence[str], *, temperature: float, score:
                        "reward": float(raw["rewards"][b, i]), "temperature": float(temperature), "response": text,
                        "n_tokens": int(raw["n_tokens"][b, i])}
                 if extract_answer is not None:
-                    row["answer"] = extract_answer(text)
+                    row["answer"] = _answer_key(extract_answer(text))
                 for name in names:
                     row[f"score_{name}"] = float(raw["scores"][name][b, i])
                 yield row
 
     return rows()
+
+
+def _answer_key(answer: Any) -> str | int | None:
+    """An extracted answer as the samples file keeps it: a str, an int or null (anything else by its ``str``,
+    which keeps equal answers equal), so that :func:`bonft.io.read_samples` reads every file written here."""
+    if answer is None or isinstance(answer, str) or (isinstance(answer, int) and not isinstance(answer, bool)):
+        return answer
+    return str(answer)
 
 
 def merge_pools(parts: Sequence[dict]) -> dict:
@@ -273,7 +282,8 @@ def evaluate_run(run: Run, step: int, *, samples_to: Path | None = None) -> Eval
     gathers the pools and runs the estimators once on all of them. ``samples_to``:
     rank 0 also writes every sample there as a samples file (:func:`sample_rows`,
     ``score`` being the training verifier's, ``score_<name>`` every verifier's), atomically;
-    a write that fails (a full disk) is a ``RuntimeWarning`` naming the path and the cause.
+    a write that fails (a full disk, a row that is not JSON) is a ``RuntimeWarning`` naming the path and
+    the cause, and the file is left as it was.
     """
     cfg = run.cfg
     held = run.eval[: cfg.eval_prompts or len(run.eval)]
@@ -307,9 +317,9 @@ def evaluate_run(run: Run, step: int, *, samples_to: Path | None = None) -> Eval
         rows = sample_rows(merged, [e.prompt for e in held], temperature=cfg.eval_temperature,
                            score=verifier if verifier in merged["scores"] else eval_verifier,
                            extract_answer=getattr(run.task, "extract_answer", None), every_score=True)
-        try:  # a by-product: a full disk must not cost the run its final checkpoint, which is written next
+        try:  # a by-product: a full disk or an odd row must not cost the run its final checkpoint, written next
             write_samples(samples_to, rows)
-        except OSError as e:
+        except (OSError, ValueError, TypeError) as e:
             warnings.warn(f"the final evaluation's samples were not written to {samples_to} ({type(e).__name__}: {e}); "
                           "the evaluation and the checkpoints are not affected", RuntimeWarning, stacklevel=2)
     return report
