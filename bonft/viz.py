@@ -102,12 +102,17 @@ def plot_evaluations(evals: Sequence[dict], path: str | Path, *, title: str = ""
     return _finish(plt, fig, (ax1, ax2), path, title)
 
 
-def _finish(plt, fig, axes, path, title) -> Path:
-    """Shared styling of the k axes (log2, [0, 1]), then save and close."""
+def _finish(plt, fig, axes, path, title, *, unit=None, ticks=None) -> Path:
+    """Shared styling of the k axes (log2; ``unit``, default all: the axes whose y runs over [0, 1]; ``ticks``:
+    the k values to mark), then save and close."""
     for ax in axes:
         ax.set_xscale("log", base=2)
+        if ticks is not None:
+            ax.set_xticks(list(ticks), [str(k) for k in ticks])
+            ax.minorticks_off()
         ax.set_xlabel("k")
-        ax.set_ylim(0, 1)
+        if unit is None or ax in unit:
+            ax.set_ylim(0, 1)
         ax.grid(alpha=0.3)
         if ax.lines:
             ax.legend(fontsize=8)
@@ -148,20 +153,8 @@ def plot_paired_differences(comparison: dict, path: str | Path, *, ks: Sequence[
             _band(ax2, ks, curve(cells), f"{name} - {base}", color=colour[name])
     ax2.axhline(0.0, color="black", linewidth=0.8)
     ax1.set_ylabel("pass@k")
-    ax1.set_ylim(0, 1)
     ax2.set_ylabel("paired difference in pass@k")
-    for ax in (ax1, ax2):
-        ax.set_xscale("log", base=2)
-        ax.set_xticks(list(ks), [str(k) for k in ks])
-        ax.minorticks_off()
-        ax.set_xlabel("k")
-        ax.grid(alpha=0.3)
-        ax.legend(fontsize=8)
-    fig.suptitle(title)
-    fig.tight_layout()
-    fig.savefig(path, dpi=110)
-    plt.close(fig)
-    return Path(path)
+    return _finish(plt, fig, (ax1, ax2), path, title, unit=(ax1,), ticks=ks)
 
 
 # ------------------------------------------------------------------ the planner
