@@ -156,3 +156,15 @@ def test_one_run_per_training_seed_gives_a_student_t_interval_over_seeds(tmp_pat
     assert "every input must list the same number of runs (one per training seed), got [3, 2]" in capsys.readouterr().err
     assert main(["compare", ",".join(runs["base"]), ",".join(runs["tuned"][::-1]), "--names", "a,b"]) == 2
     assert "training seed 1 of 3: b and a give prompt 0 different texts ('seed 2 prompt 0' vs 'seed 0 prompt 0'" in capsys.readouterr().err
+
+
+def test_inputs_sampled_at_different_temperatures_are_named(tmp_path, capsys):
+    r, s = np.ones((P, N), int).tolist(), np.zeros((P, N), int).tolist()
+    write(tmp_path / "a.jsonl", r, s)
+    write(tmp_path / "b.jsonl", r, s)
+    text = (tmp_path / "b.jsonl").read_text().replace('"temperature": 1.0', '"temperature": 0.7')
+    (tmp_path / "b.jsonl").write_text(text)
+    assert main(["compare", str(tmp_path / "a.jsonl"), str(tmp_path / "b.jsonl")]) == 0
+    out = capsys.readouterr().out
+    assert "a: " in out and "(temperature 1)" in out and "(temperature 0.7)" in out
+    assert "note: the inputs were sampled at different temperatures (0.7, 1)" in out

@@ -72,9 +72,9 @@ def _names(args, inputs: list[str]) -> list[str]:
     return names
 
 
-def _pools(name: str, path: str, args) -> tuple[list, list, list, dict | None]:
-    """(keys, score pools, reward pools, {key: prompt text} or None) of one input."""
-    from bonft.io import group_pools, read_samples  # numpy: only when the command runs
+def _pools(name: str, path: str, args) -> tuple[list, list, list, dict | None, float | None]:
+    """(keys, score pools, reward pools, {key: prompt text} or None, temperature or None) of one input."""
+    from bonft.io import group_pools, read_samples, temperatures_of  # numpy: only when the command runs
 
     table = read_samples(path, prompt_field=args.prompt_field, score_field=args.score_field,
                          reward_field=args.reward_field, text_field="prompt")
@@ -86,13 +86,15 @@ def _pools(name: str, path: str, args) -> tuple[list, list, list, dict | None]:
         for key, text in zip(table.prompt_keys[keep], table.prompts[keep]):
             if texts.setdefault(str(key), text) != text:
                 raise ValueError(f"{name} ({path}) gives prompt {key} two different texts ({texts[str(key)]!r} and {text!r})")
-    return keys, scores, rewards, texts
+    temps = temperatures_of(table)
+    temperature = args.temperature if args.temperature is not None else (temps[0] if temps else None)
+    return keys, scores, rewards, texts, temperature
 
 
 def _check_paired(names: list[str], inputs: list[tuple]) -> None:
     """Every input holds the first one's prompts, and where both carry prompt texts, the same texts."""
     keys0, texts0 = set(inputs[0][0]), inputs[0][3]
-    for name, (keys, _, _, texts) in zip(names[1:], inputs[1:]):
+    for name, (keys, _, _, texts, _) in zip(names[1:], inputs[1:]):
         only_a, only_b = sorted(keys0 - set(keys)), sorted(set(keys) - keys0)
         if only_a or only_b:
             raise ValueError(
@@ -112,7 +114,7 @@ def _paired_pools(names: list[str], inputs: list[tuple]) -> dict:
     """Every input's pools in the first input's prompt order: name -> {"proxy": [...], "rewards": [...]}."""
     order = inputs[0][0]
     pools = {}
-    for name, (keys, scores, rewards, _) in zip(names, inputs):
+    for name, (keys, scores, rewards, _, _) in zip(names, inputs):
         at = {k: j for j, k in enumerate(keys)}
         pools[name] = {"proxy": [scores[at[k]] for k in order], "rewards": [rewards[at[k]] for k in order]}
     return pools
@@ -137,7 +139,7 @@ def run(args: argparse.Namespace) -> int:
     base = args.baseline if args.baseline is not None else names[0]
     if base not in names:
         raise ValueError(f"--baseline must be one of the inputs' names {names}, got {base!r}")
-    per_seed, no_text, P = {}, set(), []
+    per_seed, no_text, P, temps = {}, set(), [], {}
     for s in range(S):
         inputs = [_pools(n, p[s], args) for n, p in zip(names, paths)]
         try:
@@ -145,7 +147,9 @@ def run(args: argparse.Namespace) -> int:
         except ValueError as e:
             raise ValueError(f"training seed {s + 1} of {S}: {e}" if S > 1 else str(e)) from None
         per_seed[s + 1] = _paired_pools(names, inputs)
-        no_text |= {n for n, (*_, t) in zip(names, inputs) if t is None}
+        no_text |= {n for n, inp in zip(names, inputs) if inp[3] is None}
+        for n, inp in zip(names, inputs):
+            temps.setdefault(n, set()).add(inp[4])
         P.append(len(inputs[0][0]))
     n_min = min(len(r) for pools in per_seed.values() for p in pools.values() for r in p["rewards"])
     if ks is not None and not 1 <= min(ks) <= max(ks) <= n_min:
@@ -159,7 +163,8 @@ def run(args: argparse.Namespace) -> int:
     else:
         comp = seed_comparison(curves, ks=ks, baselines=[base], confidence=args.confidence)
     for name, runs in zip(names, paths):
-        print(f"{name}: {', '.join(runs)}")
+        at = sorted(t for t in temps[name] if t is not None)
+        print(f"{name}: {', '.join(runs)}" + (f" (temperature {', '.join(f'{t:g}' for t in at)})" if at else ""))
     if S > 1:
         print(f"training seed s = 1..{S}: the s-th run of every input; {', '.join(map(str, P))} prompts")
     print()
@@ -168,6 +173,10 @@ def run(args: argparse.Namespace) -> int:
     print()
     if not intervals:
         print(f"intervals n/a: {P[0]} prompt(s); a bootstrap over prompts needs at least {MIN_BOOT_PROMPTS} (see docs/estimate.md)")
+    drawn = {t for ts in temps.values() for t in ts if t is not None}
+    if len(drawn) > 1:
+        print(f"note: the inputs were sampled at different temperatures ({', '.join(f'{t:g}' for t in sorted(drawn))}): "
+              "a difference then mixes the policies with their temperatures")
     if no_text:
         print("paired by prompt id alone: " + ", ".join(n for n in names if n in no_text) + " carries no prompt texts")
     if S == 1:
