@@ -231,12 +231,17 @@ def _plain_sequence_loss(lp: Tensor, credit) -> Tensor:
     """The named losses' call without options on (B, n) host log-probs: :func:`_checked_credit_loss`'s operations
     and its read of the loss (a float64 credit is checked finite only when the loss is not), inline."""
     if is_tensor(credit):  # made in lp's dtype from finite tables
-        return (-(credit * lp).sum(-1)).mean()
-    w = torch.from_numpy(credit)
-    loss = (-((w if lp.dtype == torch.float64 else w.to(dtype=lp.dtype)) * lp).sum(-1)).mean()
+        return _plain_loss(credit, lp)
+    loss = _plain_loss(_own_credit(credit, lp), lp)
     if not math.isfinite(loss.item()):
         _check_finite_host("credit", credit)  # a non-finite credit makes the loss non-finite (inf * 0 is NaN)
     return loss
+
+
+def _plain_loss(w: Tensor, lp: Tensor) -> Tensor:
+    """The sequence-level loss without options, :func:`_policy_gradient`'s operations: minus each prompt's
+    credit-weighted sum, averaged over prompts."""
+    return (-(w * lp).sum(-1)).mean()
 
 
 def _own_credit(credit: np.ndarray, lp: Tensor) -> Tensor:
@@ -251,8 +256,8 @@ def _checked_credit_loss(lp: Tensor, mask: Tensor | None, w: Tensor, opt: LossOp
     """:func:`_policy_gradient_loss` once the credit is a tensor. ``late``: the own host credit whose finiteness
     is still to be checked, before anything else, where the one read finds a non-finite value."""
     if mask is None:
-        if lp.ndim == 2 and opt is _DEFAULT_OPTIONS:  # the plain sequence-level loss: _policy_gradient's operations
-            return (-(w * lp).sum(-1)).mean()
+        if lp.ndim == 2 and opt is _DEFAULT_OPTIONS:  # the plain sequence-level loss
+            return _plain_loss(w, lp)
         loss, info, _, _ = _policy_gradient(lp, w, None, opt, fast=False)
     elif opt.sampling_logprobs is not None:  # sample reuse reads its ratios anyway: the where path, checked first
         check_empty_rows("mask", mask, None if opt.check_tokens else w)
@@ -618,21 +623,21 @@ def _reduce(per_prompt: Tensor, reduction: str) -> Tensor:
 
 def _host_pool(logprobs, **arrays) -> tuple[Tensor, list[np.ndarray]]:
     """The checked log-probs and the pool's (B, n) arrays as float64 host arrays (one copy from a device), shaped
-    like logprobs' (B, n)."""
-    out = []
-    for name, x in arrays.items():
+    like logprobs' (B, n): the first array and the log-probs as :func:`_host_one` checks them, then each other."""
+    (name, x), *rest = arrays.items()
+    lp, a = _host_one(logprobs, name, x)
+    out = [a]
+    for name, x in rest:
         a = as_host(name, x, ndim=2)
-        if not out:  # logprobs checked once, after the first array (the order of the errors)
-            lp = check_logprobs("logprobs", logprobs, seq_ndim=2)
-            want = lp.shape[:2]
-        if a.shape != want:
+        if a.shape != lp.shape[:2]:
             check_pool_shape(name, a, logprobs)
         out.append(a)
     return lp, out
 
 
 def _host_one(logprobs, name: str, x, *, finite: bool = True) -> tuple[Tensor, np.ndarray]:
-    """:func:`_host_pool` of one array (the same checks in the same order, without the loop).
+    """One (B, n) pool array as a float64 host array, then the log-probs (checked once, after it: the order of
+    the errors) and the array's shape against theirs.
 
     ``finite=False``: the caller checks the array's finiteness (a later check subsumes it); the
     finiteness error still comes before the errors of the log-probs, as with ``finite=True``.
