@@ -411,6 +411,44 @@ def test_finite_rewards_whose_credit_overflows_are_a_value_error_not_a_nan_loss(
     assert torch.isinf(loss) and float(loss) > 0  # credit 1/3 for the -inf log-prob: -(1/3)(-inf)/2 = +inf
 
 
+@pytest.mark.parametrize("numpy_on_cpu", [True, False])
+def test_finite_credit_beyond_the_logprobs_dtype_is_a_value_error_not_a_nan_loss(numpy_on_cpu, monkeypatch):
+    # IEEE 754 single precision: the largest float32 is 3.4028e38, so a float64 credit of -5e38 (the
+    # leave-one-out credit of rewards (0, 1e39): (0 - 1e39)/2) becomes -inf in the cast to float32 log-probs,
+    # and the loss NaN or an infinity. Every path names the credit instead.
+    from bonft.objectives import losses
+
+    monkeypatch.setattr(losses, "_NUMPY_ON_CPU", numpy_on_cpu)
+    lp_tok = -torch.rand(1, 2, 3, generator=torch.Generator().manual_seed(0))
+    mask = torch.ones(1, 2, 3, dtype=torch.bool)
+    R = np.array([[0.0, 1e39]])
+    cases = [(lp_tok.sum(-1), {}), (lp_tok.sum(-1), {"return_info": True, "reduction": "none"}),
+             (lp_tok, {"mask": mask}), (lp_tok, {"mask": mask.float(), "return_info": True}),
+             (lp_tok.sum(-1), {"sampling_logprobs": lp_tok.sum(-1)}), (lp_tok, {"anchor_logprobs": lp_tok})]
+    msg = r"credit must fit the log-probs' dtype torch.float32 \(\|credit\| <= 3.403e\+38\), got -5e\+38 at index \(0, 0\)"
+    for lp, kw in cases:
+        with pytest.raises(ValueError, match=msg):
+            reinforce_loss(lp.clone().requires_grad_(True), R, **kw)
+        with pytest.raises(ValueError, match=msg):
+            best_of_k_loss(lp.clone().requires_grad_(True), np.zeros((1, 2)), R, k=1, **kw)
+    # a credit of the caller's own: the generic conversion checks the cast too (float16 and bfloat16 as well)
+    with pytest.raises(ValueError, match=r"credit must fit the log-probs' dtype torch.float32 .* got 1e\+300 at index \(0, 1\)"):
+        policy_gradient_loss(lp_tok.sum(-1), np.array([[1.0, 1e300]]))
+    # half-precision log-probs are computed in float32 (a credit of 7e4 > 65504 is no overflow there), so the
+    # limit is float32's for them too
+    assert torch.isfinite(policy_gradient_loss(lp_tok.sum(-1).half(), np.array([[1.0, 7e4]])))
+    for half in (torch.float16, torch.bfloat16):
+        with pytest.raises(ValueError, match=r"dtype torch.float32 .* got 1e\+300"):
+            policy_gradient_loss(lp_tok.sum(-1).to(half), np.array([[1.0, 1e300]]))
+    # the same numbers in float64 log-probs fit: a finite loss, 5e38 * (lp_0 - lp_1) / 1
+    lp64 = lp_tok.sum(-1).double()
+    loss = reinforce_loss(lp64, R)
+    assert torch.isfinite(loss)
+    torch.testing.assert_close(loss, -(-5e38 * lp64[0, 0] + 5e38 * lp64[0, 1]), rtol=1e-15, atol=0)
+    # just inside float32's range: no error, a finite loss
+    assert torch.isfinite(policy_gradient_loss(lp_tok.sum(-1), np.array([[1.0, 3e38]])))
+
+
 def test_monitors_by_hand():
     # Hand computation: B = 2 prompts, n = 3, T = 4. Prompt 0 rewards (1, 0, 0): leave-one-out credit
     # w_i = (R_i - mean of the others)/3 = (1/3, -1/6, -1/6); prompt 1 rewards all equal: credit 0.

@@ -144,6 +144,7 @@ from bonft.objectives.validation import (
     LossOptions,
     _check_finite_host,
     as_host,
+    check_credit_fits,
     check_empty_rows,
     check_logprobs,
     check_mask,
@@ -214,6 +215,7 @@ def _policy_gradient_loss(logprobs, credit, opt: LossOptions, *, own: bool = Fal
         return _checked_credit_loss(lp, mask, credit, opt)
     if not _numpy_view(lp) or opt.sampling_logprobs is not None:  # no read of the loss to share: checked now
         _check_finite_host("credit", credit)
+        check_credit_fits("credit", credit, lp.dtype)
         return _checked_credit_loss(lp, mask, _own_credit(credit, lp), opt)
     try:
         out = _checked_credit_loss(lp, mask, _own_credit(credit, lp), opt, late=credit)
@@ -224,6 +226,7 @@ def _policy_gradient_loss(logprobs, credit, opt: LossOptions, *, own: bool = Fal
         loss = out[0] if opt.return_info else out
         if not math.isfinite(loss.item() if loss.ndim == 0 else float(loss.detach().numpy().sum())):
             _check_finite_host("credit", credit)
+            check_credit_fits("credit", credit, lp.dtype)
     return out
 
 
@@ -235,6 +238,7 @@ def _plain_sequence_loss(lp: Tensor, credit) -> Tensor:
     loss = _plain_loss(_own_credit(credit, lp), lp)
     if not math.isfinite(loss.item()):
         _check_finite_host("credit", credit)  # a non-finite credit makes the loss non-finite (inf * 0 is NaN)
+        check_credit_fits("credit", credit, lp.dtype)  # as does one that overflows lp's dtype
     return loss
 
 
@@ -271,6 +275,7 @@ def _checked_credit_loss(lp: Tensor, mask: Tensor | None, w: Tensor, opt: LossOp
         if _needs_a_look(checked, sums):  # the one read
             if late is not None:
                 _check_finite_host("credit", late)
+                check_credit_fits("credit", late, lp.dtype)
             # an empty row (with credit, or any with check_tokens): a ValueError
             check_empty_rows("mask", mask, None if opt.check_tokens else w)
             if not bool(torch.isfinite(checked).all()):  # NaN or an infinity: where

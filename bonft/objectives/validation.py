@@ -78,6 +78,24 @@ def _check_finite_host(name: str, a: np.ndarray) -> None:
         check_finite(name, a)
 
 
+def check_credit_fits(name: str, host: np.ndarray, dtype: torch.dtype) -> None:
+    """A finite float64 host ``host`` must stay finite once cast to the log-probs' ``dtype``.
+
+    Finite rewards or credit beyond the dtype's range (``|w| > 3.4e38`` in float32, which half-precision
+    log-probs are computed in) become infinities in the cast, and the loss NaN or an infinity; this
+    names the first such entry instead. One pass over ``host``: the losses call it only where a loss came out
+    non-finite, or where nothing else reads the loss.
+    """
+    if dtype == torch.float64 or not dtype.is_floating_point:
+        return
+    big = torch.finfo(dtype).max
+    bad = np.abs(host) > big
+    if bad.any():
+        idx = tuple(int(i) for i in np.argwhere(bad)[0])
+        raise ValueError(f"{name} must fit the log-probs' dtype {dtype} (|{name}| <= {big:.4g}), got {host[idx]:.4g} "
+                         f"at index {idx}: compute the loss in float64 log-probs, or scale the rewards down")
+
+
 def out_kind(*xs: Any) -> tuple[bool, Any, Any]:
     """Output as torch if any input is a tensor (its device, its floating dtype, half precision widened to float32),
     else numpy float64."""
@@ -266,7 +284,12 @@ def credit_tensor(credit: Any, lp: Tensor, *, check_device: bool) -> Tensor:
         raise ValueError(f"credit must have shape (B, n) = ({B}, {n}) to match logprobs, got {tuple(w.shape)}")
     if host is not None:
         _check_finite_host("credit", host)
-    elif check_device:
+        out = w.to(device=lp.device, dtype=lp.dtype, non_blocking=True)
+        # finite host values can overflow a narrower dtype; on a CPU the cast's sum is finite when none did
+        if lp.dtype != torch.float64 and (out.device.type != "cpu" or not math.isfinite(float(out.sum()))):
+            check_credit_fits("credit", host, lp.dtype)
+        return out
+    if check_device:
         check_finite("credit", w)  # a device tensor: one sync, so only on request
     return w.to(device=lp.device, dtype=lp.dtype, non_blocking=True)
 
