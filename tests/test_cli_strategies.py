@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import itertools
 import json
+import math
 from collections import Counter
 
 import numpy as np
@@ -142,3 +143,23 @@ def test_plan_exact_strategies(tmp_path):
                                                 for a in win])
     got = json.loads(out.read_text())["values"]["majority_vote@T=0.5"][2]
     assert abs(got - want) < 1e-12
+
+
+def test_plan_exact_majority_vote_at_the_default_max_k(tmp_path, capsys):
+    # reference: two answers with masses q and 1 - q under softmax(logits); answer "7" (reward 1) wins k draws
+    # with c > k/2 of them and ties at c = k/2 (half the reward): a binomial sum over c (definition)
+    spec = {"logits": [0.5, 0.0, 0.2], "answers": ["7", "7", "3"], "scores": [0.1, 0.2, 0.3], "rewards": [1, 1, 0]}
+    f = tmp_path / "e.json"
+    f.write_text(json.dumps(spec))
+    out = tmp_path / "o.json"
+    assert main(["plan", "--exact", str(f), "--temperatures", "1", "--strategy", "majority_vote",
+                 "--json", str(out)]) == 0
+    capsys.readouterr()
+    got = json.loads(out.read_text())["values"]["majority_vote@T=1"]
+    assert len(got) == 64  # --max-k defaults to 64
+    e = np.exp(spec["logits"])
+    q = (e[0] + e[1]) / e.sum()
+    for k in (21, 64):
+        want = sum(math.comb(k, c) * q**c * (1 - q) ** (k - c) * (1.0 if 2 * c > k else 0.5 if 2 * c == k else 0.0)
+                   for c in range(k + 1))
+        assert abs(got[k - 1] - want) < 1e-12

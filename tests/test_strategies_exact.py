@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import itertools
 import math
+from fractions import Fraction
 
 import numpy as np
 import pytest
@@ -92,3 +93,44 @@ def test_weighted_vote_known_cases():
     # V_2 = P(both draws from answer 1) = 0.5^2
     v = weighted_vote_value([0.5, 0.25, 0.25], ["x", "y", "y"], [0.9, 0.5, 0.5], [0.0, 1.0, 1.0], k=2)
     assert abs(float(v) - 0.25) < 1e-15
+
+
+# ---------------------------------------------------------------------------- k beyond 20 (k! above 2^63)
+
+
+def _majority_by_counts(q, rew, k) -> float:
+    """Majority vote as an exact rational sum over count vectors c ~ Mult(k, q) (one outcome per answer),
+    ties split uniformly: sum_c k!/prod c_a! prod q_a^c_a mean_{a in argmax c} R_a."""
+    q, rew = [Fraction(x) for x in q], [Fraction(x) for x in rew]
+    A, total = len(q), Fraction(0)
+    for bars in itertools.combinations(range(k + A - 1), A - 1):
+        edges = (-1, *bars, k + A - 1)
+        c = [edges[i + 1] - edges[i] - 1 for i in range(A)]
+        win = [a for a in range(A) if c[a] == max(c)]
+        prob = Fraction(math.factorial(k), math.prod(math.factorial(x) for x in c)) * math.prod(
+            qa**ca for qa, ca in zip(q, c))
+        total += prob * sum(rew[a] for a in win) / len(win)
+    return float(total)
+
+
+def test_majority_value_at_k_21_equals_every_ordered_draw():
+    # reference: all 2^21 ordered draws of two answers (bit j set: draw j is answer 0), each with probability
+    # q^c (1-q)^(21-c); answer 0 wins with c > 10.5 (k odd: no ties); R = (1, 0.25)
+    k, q = 21, 0.6
+    draws = np.arange(2**k, dtype=np.int64)
+    c = sum((draws >> j) & 1 for j in range(k))  # draws of answer 0
+    prob = q**c * (1 - q) ** (k - c)
+    want = float((prob * np.where(c > k - c, 1.0, 0.25)).sum())
+    got = float(majority_vote_value([q, 1 - q], [0, 1], [1.0, 0.25], k=k))
+    assert abs(got - want) < 1e-13
+
+
+@pytest.mark.parametrize("q, k", [((0.5, 0.3, 0.2), 21), ((0.5, 0.3, 0.2), 64), ((0.6, 0.4), 150),
+                                  ((0.5, 0.5), 150)])
+def test_majority_value_up_to_k_150_equals_the_multinomial_sum(q, k):
+    # reference: _majority_by_counts, an exact rational sum (Fraction); k = 150 is the documented largest k
+    rew = [1.0, 0.0, 0.5][: len(q)]
+    got = majority_vote_value(list(q), list(range(len(q))), rew, k=k)
+    assert abs(float(got) - _majority_by_counts(q, rew, k)) < 1e-12
+    assert abs(float(strategy_value("majority_vote", list(q), k=k, rewards=rew, answers=list(range(len(q)))))
+               - float(got)) < 1e-15

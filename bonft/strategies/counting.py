@@ -196,7 +196,7 @@ def policy_majority_value(q: torch.Tensor, qr: torch.Tensor, k: int) -> torch.Te
         der = _tmul(der, fb, k) + _tmul(val, hb, k)
         val = _tmul(val, fb, k)
     coef = der[..., k]  # (L, C, U)
-    return math.factorial(k) * (coef * g).sum(-1).sum(-1)
+    return float(math.factorial(k)) * (coef * g).sum(-1).sum(-1)  # k! as a float: a Python int above 2^63 is no tensor scalar
 
 
 # ---------------------------------------------------------------------------- weighted vote
