@@ -89,6 +89,25 @@ def test_bad_inputs_name_the_argument():
                            answers=[[0, 1]], max_subsets=10)
 
 
+def test_compare_strategies_takes_an_int_or_any_iterable_of_ks():
+    # reference: brute_pool, best-of-k over every k-subset of each pool (definition)
+    from bonft.strategies import compare_strategies
+
+    pools = [random_pool(seed, 8) for seed in (4, 5)]
+    s, r = np.stack([p[1] for p in pools]), np.stack([p[2] for p in pools])
+    want = {k: np.mean([brute_pool("best_of_k", a, sp, rp, k) for a, sp, rp in pools]) for k in (1, 3, 8)}
+    got = compare_strategies(["best_of_k"], ks=(k for k in [1, 8]), rewards=r, scores=s, n_boot=20)  # read once
+    assert list(got.ks) == [1, 8] and got.per_prompt["best_of_k"].shape == (2, 2)
+    np.testing.assert_allclose(got.mean["best_of_k"], [want[1], want[8]], atol=1e-13)
+    got = compare_strategies(["best_of_k"], ks=3, rewards=r, scores=s, n_boot=20)
+    assert list(got.ks) == [3]
+    np.testing.assert_allclose(got.mean["best_of_k"], [want[3]], atol=1e-13)
+    with pytest.raises(TypeError, match="ks must be an int or a sequence of ints, got float"):
+        compare_strategies(["best_of_k"], ks=3.0, rewards=r, scores=s)
+    with pytest.raises(ValueError, match="ks must not be empty"):
+        compare_strategies(["best_of_k"], ks=iter([]), rewards=r, scores=s)
+
+
 def test_trainer_registers_vote_objectives():
     # the registry's majority-vote credit and pool value are the library's, on host pools
     from bonft.trainer.objectives import OBJECTIVES, Pools

@@ -11,10 +11,12 @@ Wang et al. 2023 (majority vote); Chow et al. 2024 (best-of-N).
 from __future__ import annotations
 
 import json
+import sys
 from dataclasses import dataclass, field
 
 import numpy as np
 
+from bonft._core.checks import check_ks
 from bonft.estimate.intervals import MIN_BOOT_PROMPTS, bootstrap_ci
 from bonft.strategies.base import get_strategy
 from bonft.strategies.estimators import MAX_SUBSETS
@@ -84,13 +86,15 @@ def compare_strategies(strategies, *, ks, rewards, scores=None, answers=None, co
 
     .. math:: \bar V_k = \frac1P\sum_p \hat V_k^{(p)}
 
-    ``strategies``: ids or :class:`bonft.strategies.Strategy` objects. Values are the unbiased
+    ``strategies``: ids or :class:`bonft.strategies.Strategy` objects. ``ks``: an int or an iterable of
+    ints (read once, so a generator works). Values are the unbiased
     per-prompt estimates of :meth:`bonft.strategies.Strategy.estimate` (``max_subsets``, ``seed`` and
     ``conflicts`` go there); intervals are the paired
     percentile bootstrap of :func:`bonft.estimate.bootstrap_ci` over prompts.
 
     References: Efron & Tibshirani 1993; Hoeffding 1948.
     """
+    ks = [int(k) for k in check_ks(ks, sys.maxsize, name="ks")[0]]  # each k is checked against n by the estimate
     sts = [get_strategy(s) for s in strategies]
     if not sts:
         raise ValueError("strategies must name at least one strategy, got none")
@@ -101,9 +105,9 @@ def compare_strategies(strategies, *, ks, rewards, scores=None, answers=None, co
     out = None
     for st in sts:
         opts = {key: val for key, val in {**given, "seed": seed}.items() if key in st.reads}
-        v, se = st.estimate(ks=list(ks), rewards=rewards, scores=scores, answers=answers, **opts)
+        v, se = st.estimate(ks=ks, rewards=rewards, scores=scores, answers=answers, **opts)
         if out is None:
-            out = StrategyCurves(ks=np.asarray(list(ks)), n_prompts=v.shape[0], names=[], confidence=confidence)
+            out = StrategyCurves(ks=np.asarray(ks), n_prompts=v.shape[0], names=[], confidence=confidence)
         m, lo, hi = bootstrap_ci(v, confidence=confidence, n_boot=n_boot, seed=seed)
         out.names.append(st.name)
         out.mean[st.name], out.lo[st.name], out.hi[st.name] = m, lo, hi
