@@ -14,11 +14,96 @@ al. 2024), both from :mod:`bonft.estimate.bestofk`.
 from __future__ import annotations
 
 import math
-from typing import Mapping, Sequence
+import numbers
+from typing import Any, Mapping, Sequence
 
 import numpy as np
 
+from bonft._core.checks import (
+    as_float_array,
+    check_bool,
+    check_finite,
+    check_fraction,
+    check_int,
+    check_items,
+    check_n_boot,
+    check_nonempty,
+    check_seed,
+)
 from bonft.estimate.bestofk import best_of_k_per_prompt, pass_at_k_per_prompt
+
+# ----------------------------------------------------------------------------- argument checks
+
+
+def _check_ks(ks: Any) -> list[int]:
+    """A non-empty sequence of ints >= 1 (a single int is refused: the curves have one column per k)."""
+    if isinstance(ks, numbers.Integral) and not isinstance(ks, bool):
+        raise TypeError(f"ks must be a sequence of ints (one curve column per k), got int {ks!r}; wrap it in a list")
+    items = check_items("ks", ks, numbers.Integral, "ints")
+    return [check_int(f"ks[{i}]", k, min=1) for i, k in enumerate(items)]
+
+
+def _check_values(name: str, x: Any) -> np.ndarray:
+    """Per-prompt (or per-seed) values: a non-empty finite 1-D array."""
+    v = as_float_array(name, x, ndim=1)
+    check_nonempty(name, v)
+    check_finite(name, v)
+    return v
+
+
+def _check_interval_options(n_boot: Any, seed: Any, confidence: Any) -> None:
+    check_n_boot(n_boot)
+    check_seed(seed)
+    check_fraction("confidence", confidence, open_low=True, open_high=True)
+
+
+def _check_baselines(baselines: Any) -> list[str]:
+    """A sequence of policy names (a single str is refused: it would be read letter by letter)."""
+    if isinstance(baselines, str):
+        raise TypeError(f"baselines must be a sequence of policy names, got a single str {baselines!r} "
+                        f"(wrap it in a list)")
+    try:
+        items = list(baselines)
+    except TypeError:
+        raise TypeError(f"baselines must be a sequence of policy names, got {type(baselines).__name__}") from None
+    for i, b in enumerate(items):
+        if not isinstance(b, str):
+            raise TypeError(f"baselines must be a sequence of policy names (str), got {type(b).__name__} at index {i}")
+    return items
+
+
+def _check_curves(name: str, curves: Any, K: int) -> int:
+    """policy -> {"pass": (P, K)[, "proxy": (P, K)]}, every policy on the same P prompts, K columns (one per k).
+
+    Returns P.
+    """
+    if not isinstance(curves, Mapping):
+        raise TypeError(f"{name} must be a dict of policy -> per_prompt_curves(...), got {type(curves).__name__}")
+    if not curves:
+        raise ValueError(f"{name} must hold at least one policy, got an empty dict")
+    first = None
+    for policy, c in curves.items():
+        where = f"{name}[{policy!r}]"
+        if not isinstance(c, Mapping):
+            raise TypeError(f"{where} must be a dict with 'pass' (and 'proxy') curves, got {type(c).__name__}")
+        if "pass" not in c:
+            raise ValueError(f"{where} must have a 'pass' curve (per_prompt_curves' output), got keys {sorted(map(str, c))}")
+        for kind in ("pass", "proxy"):
+            if kind not in c:
+                continue
+            v = as_float_array(f"{where}[{kind!r}]", c[kind], ndim=2)
+            check_finite(f"{where}[{kind!r}]", v)
+            P, cols = v.shape
+            if cols != K:
+                raise ValueError(f"{where}[{kind!r}] must have one column per k (len(ks)={K}), got shape {v.shape}")
+            if P == 0:
+                raise ValueError(f"{where}[{kind!r}] must hold at least one prompt, got shape {v.shape}")
+            if first is None:
+                first = (where, P)
+            elif P != first[1]:
+                raise ValueError(f"{where}[{kind!r}] must cover as many prompts as {first[0]} (P={first[1]}; paired "
+                                 f"policies are evaluated on the same prompts), got P={P}")
+    return first[1]
 
 
 def per_prompt_curves(pools, *, ks):
@@ -32,8 +117,15 @@ def per_prompt_curves(pools, *, ks):
 
     (sorted by reward, resp. by the picker's score with tied rewards averaged).
 
+    ``pools`` must have ``"rewards"``; ``ks`` is a sequence of ints (``[4]``, not ``4``).
+
     References: Chen et al. 2021 (pass@k); Chow et al. 2024 (best-of-k).
     """
+    if not isinstance(pools, Mapping):
+        raise TypeError(f"pools must be a dict with 'rewards' (and 'proxy'), got {type(pools).__name__}")
+    if "rewards" not in pools:
+        raise ValueError(f"pools must have 'rewards' (the true rewards, (P, n)), got keys {sorted(map(str, pools))}")
+    ks = _check_ks(ks)
     rewards = pools["rewards"]
     rewards = rewards if isinstance(rewards, list) else np.asarray(rewards, dtype=float)
     out = {"pass": np.asarray(pass_at_k_per_prompt(rewards, ks=list(ks)), dtype=float)}
@@ -52,9 +144,17 @@ def paired_bootstrap(a, b, *, n_boot: int = 2000, seed: int = 0, confidence: flo
     .. math:: \bar d = \frac1P\sum_p (a_p - b_p),\qquad [\lo, \hi] = \text{quantiles } \tfrac{1-c}{2},
               \tfrac{1+c}{2} \text{ of } \bar d^{*} \text{ over } n_{boot} \text{ resamples of the prompts}
 
+    ``a`` and ``b``: finite, non-empty, the same length; ``n_boot`` in [1, 1,000,000]; ``seed`` an int >= 0;
+    ``confidence`` in (0, 1).
+
     References: Efron & Tibshirani 1993, "An Introduction to the Bootstrap", ch. 13 (percentile interval).
     """
-    d = np.asarray(a, dtype=float) - np.asarray(b, dtype=float)
+    a, b = _check_values("a", a), _check_values("b", b)
+    if len(b) != len(a):
+        raise ValueError(f"b must hold as many prompts as a (P={len(a)}; paired values, the same prompts in the same "
+                         f"order), got {len(b)}")
+    _check_interval_options(n_boot, seed, confidence)
+    d = a - b
     rng = np.random.default_rng(seed)
     idx = rng.integers(0, len(d), size=(n_boot, len(d)))
     boot = d[idx].mean(1)
@@ -71,7 +171,8 @@ def bootstrap_mean(a, *, n_boot: int = 2000, seed: int = 0, confidence: float = 
 
     References: Efron & Tibshirani 1993, ch. 13.
     """
-    return paired_bootstrap(a, np.zeros_like(np.asarray(a, dtype=float)), n_boot=n_boot, seed=seed, confidence=confidence)
+    a = _check_values("a", a)
+    return paired_bootstrap(a, np.zeros_like(a), n_boot=n_boot, seed=seed, confidence=confidence)
 
 
 def paired_comparison(curves, *, ks, baselines: Sequence[str], n_boot: int = 2000, seed: int = 0,
@@ -86,8 +187,16 @@ def paired_comparison(curves, *, ks, baselines: Sequence[str], n_boot: int = 200
 
     .. math:: \bar d_{\text{policy}} = \frac1P\sum_p \big(v_p^{\text{policy}} - v_p^{\text{baseline}}\big)
 
+    ``ks``: the k of each curve column (as many as the curves have columns); ``baselines``: a sequence of
+    policy names.
+
     References: Efron & Tibshirani 1993, ch. 13 (the paired percentile bootstrap).
     """
+    ks = _check_ks(ks)
+    _check_curves("curves", curves, len(ks))
+    baselines = _check_baselines(baselines)
+    _check_interval_options(n_boot, seed, confidence)
+    check_bool("intervals", intervals)
     names = list(curves)
     cols = [(f"pass@{k}", "pass", j) for j, k in enumerate(ks)]
     if all("proxy" in c for c in curves.values()):
@@ -112,11 +221,14 @@ def t_interval(values, *, confidence: float = 0.95) -> tuple[float, float, float
 
     .. math:: \bar v \pm t_{(1+c)/2,\,S-1}\, \frac{s_v}{\sqrt S}
 
+    ``values``: finite, non-empty; ``confidence`` in (0, 1).
+
     References: Student 1908, "The probable error of a mean".
     """
+    v = _check_values("values", values)
+    confidence = check_fraction("confidence", confidence, open_low=True, open_high=True)
     from scipy import stats  # 0.7 s to import: only where a t-interval is taken, not on every import of bonft.estimate
 
-    v = np.asarray(values, dtype=float)
     if len(v) < 2:
         return float(v.mean()), float("nan"), float("nan")
     half = stats.t.ppf(0.5 + confidence / 2, len(v) - 1) * v.std(ddof=1) / math.sqrt(len(v))
@@ -136,9 +248,23 @@ def seed_comparison(per_seed, *, ks, baselines: Sequence[str], confidence: float
     Each seed has its own training runs (and, in the demo, its own warm start and data split), so the
     interval covers the training's noise as well as the evaluation's.
 
+    ``per_seed`` must not be empty and every seed must hold the same policies.
+
     References: Student 1908 (the t-interval); the paired design as in :func:`paired_comparison`.
     """
+    ks = _check_ks(ks)
+    if not isinstance(per_seed, Mapping):
+        raise TypeError(f"per_seed must be a dict of seed -> policy -> per_prompt_curves(...), got {type(per_seed).__name__}")
+    if not per_seed:
+        raise ValueError("per_seed must hold at least one seed, got an empty dict")
     seeds = list(per_seed)
+    for s in seeds:
+        _check_curves(f"per_seed[{s!r}]", per_seed[s], len(ks))
+        if set(per_seed[s]) != set(per_seed[seeds[0]]):
+            raise ValueError(f"per_seed[{s!r}] must hold the same policies as per_seed[{seeds[0]!r}] "
+                             f"{sorted(map(str, per_seed[seeds[0]]))}, got {sorted(map(str, per_seed[s]))}")
+    baselines = _check_baselines(baselines)
+    check_fraction("confidence", confidence, open_low=True, open_high=True)
     names = list(per_seed[seeds[0]])
     cols = [(f"pass@{k}", "pass", j) for j, k in enumerate(ks)]
     if all("proxy" in c for s in seeds for c in per_seed[s].values()):
