@@ -207,6 +207,51 @@ def test_examples_and_arguments_are_validated(tmp_path):
         read_examples(str(bad))
 
 
+_SAMPLE = {"prompt": "2+2?", "response": "answer: 4"}
+_POOL = {"prompt": "2+2?", "responses": ["answer: 4", "5"]}
+
+
+@pytest.mark.parametrize("examples, message", [
+    # a misspelt key would drop what it holds while the check still reports OK
+    ([{**_POOL, "reward": [1, 0]}], r"examples\[0\] has unknown key 'reward': a pool takes only the keys prompt, "
+                                    r"responses, rewards, labels \(a sample takes prompt, response, reward, label\)"),
+    ([{**_POOL, "rewards": [1, 0], "lables": [1, 0]}], r"examples\[0\] has unknown key 'lables'"),
+    ([{**_SAMPLE, "rewrd": 1}], r"examples\[0\] has unknown key 'rewrd': a sample takes only the keys prompt, response, "
+                                r"reward, label"),
+    ([{**_POOL, "response": "x"}], r"examples\[0\] has unknown key 'response': a pool takes only"),
+    # rewards on some samples only: labels and curves would rest on part of the data
+    ([{**_POOL, "rewards": [1, 0]}, {"prompt": "3*3?", "responses": ["9"]}],
+     r"rewards must come with every sample or with none: 2 of 3 samples have one, examples\[1\] \(prompt '3\*3\?'\) "
+     r"has none"),
+    ([{**_SAMPLE, "reward": 1}, {**_SAMPLE, "response": "5"}],
+     r"2 samples have one, examples\[1\] \(prompt '2\+2\?'\) has none"),
+    ([{**_POOL, "rewards": [1, None]}], r"examples\[0\] rewards must be finite numbers, got None"),
+    ([{"prompt": "p", "responses": [], "rewards": []}],
+     r"examples\[0\]\['responses'\] must hold at least one response, got an empty list \(prompt 'p'\)"),
+])
+def test_example_keys_rewards_and_pools_are_checked(examples, message):
+    with pytest.raises(ValueError, match=message):
+        check_verifier(EXACT, examples)
+
+
+def test_examples_file_with_a_misspelt_key_or_rewards_on_some_lines(tmp_path, capsys):
+    ver = tmp_path / "myver.py"
+    ver.write_text("def score(prompts, responses):\n    return [float('4' in r) for r in responses]\n")
+    cases = {
+        "typo.jsonl": ('{"prompt": "p", "response": "4", "rewrd": 1}\n',
+                       r"typo.jsonl:1 has unknown key 'rewrd': a sample takes only the keys prompt, response, reward, label"),
+        "partial.jsonl": ('{"prompt": "p", "response": "4", "reward": 1}\n\n{"prompt": "p", "response": "5"}\n',
+                          r"partial.jsonl:3 has no reward but line 1 has one: give every sample a reward or none"),
+    }
+    for name, (text, message) in cases.items():
+        (tmp_path / name).write_text(text)
+        with pytest.raises(ValueError, match=message):
+            read_examples(str(tmp_path / name))
+        assert cli_main(["check-verifier", f"{ver}:score", "--examples", str(tmp_path / name)]) == 2
+        err = capsys.readouterr().err
+        assert re.search(message, err) and "Traceback" not in err, err
+
+
 def test_slow_verifier_timeouts_are_counted():
     import time
 

@@ -21,7 +21,10 @@ markers, code fences) for property tests of your own verifier.
 Example pools: a list of dicts, either one pool per prompt
 ``{"prompt": str, "responses": [str, ...], "rewards": [float, ...], "labels": [bool, ...]}``
 or one sample per item ``{"prompt", "response", "reward", "label"}`` (grouped
-by prompt); ``rewards`` and ``labels`` are optional. :func:`read_examples`
+by prompt); ``rewards`` and ``labels`` are optional. Any other key is an error
+(a misspelt ``rewrd`` would otherwise drop the rewards), a pool needs at least
+one response, and rewards come with every sample or with none (with only some,
+labels and curves would silently rest on part of the data). :func:`read_examples`
 reads the per-sample form from JSON Lines.
 """
 from __future__ import annotations
@@ -82,8 +85,12 @@ def sample_pools(n: int = 4, *, max_prompts: int = 3, rewards: bool = True):
 
 # ----------------------------------------------------------------------------- examples
 def read_examples(path: str) -> list[dict]:
-    """Per-sample JSON Lines ``{"prompt", "response", "reward"?, "label"?}`` -> list of dicts."""
+    """Per-sample JSON Lines ``{"prompt", "response", "reward"?, "label"?}`` -> list of dicts.
+
+    A key outside these, or a reward on some lines but not others, is a ``ValueError`` naming the line.
+    """
     out = []
+    with_reward = without_reward = None  # first line of each kind
     with open(path, encoding="utf-8") as f:
         for i, line in enumerate(f, 1):
             if not line.strip():
@@ -94,10 +101,39 @@ def read_examples(path: str) -> list[dict]:
                 raise ValueError(f"{path}:{i}: examples must be JSON objects, got invalid JSON ({e})") from None
             if not isinstance(row, dict):
                 raise ValueError(f"{path}:{i}: examples must be JSON objects, got {type(row).__name__}")
+            _check_keys(row, f"{path}:{i}")
+            if _has_rewards(row):
+                with_reward = with_reward or i
+            else:
+                without_reward = without_reward or i
             out.append(row)
     if not out:
         raise ValueError(f"examples file {path} must hold at least one example, got none")
+    if with_reward and without_reward:
+        raise ValueError(f"{path}:{without_reward} has no reward but line {with_reward} has one: give every "
+                         f"sample a reward or none (the rewards give the labels and the best-of-k curve)")
     return out
+
+
+_POOL_KEYS = ("prompt", "responses", "rewards", "labels")
+_SAMPLE_KEYS = ("prompt", "response", "reward", "label")
+
+
+def _check_keys(ex: Mapping, where: str) -> None:
+    """``ex`` is a pool (has ``responses``) or a sample (has ``response``) with only that form's keys."""
+    form = _POOL_KEYS if "responses" in ex else _SAMPLE_KEYS if "response" in ex else None
+    if form is None:
+        raise ValueError(f"{where} must have a 'responses' list or a 'response', got keys {sorted(map(str, ex))}")
+    unknown = [key for key in ex if key not in form]
+    if unknown:
+        pool = form is _POOL_KEYS
+        other = _SAMPLE_KEYS if pool else _POOL_KEYS
+        raise ValueError(f"{where} has unknown key {unknown[0]!r}: a {'pool' if pool else 'sample'} takes only the keys "
+                         f"{', '.join(form)} (a {'sample' if pool else 'pool'} takes {', '.join(other)})")
+
+
+def _has_rewards(ex: Mapping) -> bool:
+    return ex.get("rewards" if "responses" in ex else "reward") is not None
 
 
 def _pools(examples: Any, labels: Any) -> list[dict]:
@@ -107,9 +143,11 @@ def _pools(examples: Any, labels: Any) -> list[dict]:
     if not examples:
         raise ValueError("examples must not be empty")
     pools: dict[str, dict] = {}
+    n_rewarded, first_without = 0, None  # first_without: (example index, prompt) of the first sample with no reward
     for i, ex in enumerate(examples):
         if not isinstance(ex, Mapping):
             raise TypeError(f"examples[{i}] must be a dict, got {type(ex).__name__}")
+        _check_keys(ex, f"examples[{i}]")
         p = ex.get("prompt")
         if not isinstance(p, str):
             raise TypeError(f"examples[{i}]['prompt'] must be a str, got {type(p).__name__}")
@@ -117,25 +155,36 @@ def _pools(examples: Any, labels: Any) -> list[dict]:
             rs = ex["responses"]
             if isinstance(rs, str) or not isinstance(rs, Sequence) or not all(isinstance(r, str) for r in rs):
                 raise TypeError(f"examples[{i}]['responses'] must be a list of str")
+            if not rs:
+                raise ValueError(f"examples[{i}]['responses'] must hold at least one response, got an empty list "
+                                 f"(prompt {p!r:.40})")
             rw, lb = ex.get("rewards"), ex.get("labels")
             for key, vals in (("rewards", rw), ("labels", lb)):
                 if vals is not None and len(vals) != len(rs):
                     raise ValueError(f"examples[{i}]['{key}'] must have {len(rs)} entries like 'responses', got {len(vals)}")
             items = [(r, None if rw is None else rw[j], None if lb is None else lb[j]) for j, r in enumerate(rs)]
-        elif "response" in ex:
+        else:
             if not isinstance(ex["response"], str):
                 raise TypeError(f"examples[{i}]['response'] must be a str, got {type(ex['response']).__name__}")
             items = [(ex["response"], ex.get("reward"), ex.get("label"))]
-        else:
-            raise ValueError(f"examples[{i}] must have a 'responses' list or a 'response', got keys {sorted(ex)}")
+        rewarded = _has_rewards(ex)
+        if rewarded:
+            n_rewarded += len(items)
+        elif first_without is None:
+            first_without = (i, p)
         pool = pools.setdefault(p, {"prompt": p, "responses": [], "rewards": [], "labels": []})
         for r, rw, lb in items:
-            if rw is not None and (isinstance(rw, str) or not isinstance(rw, numbers.Real) or not math.isfinite(rw)):
+            if rewarded and (isinstance(rw, str) or not isinstance(rw, numbers.Real) or not math.isfinite(rw)):
                 raise ValueError(f"examples[{i}] rewards must be finite numbers, got {rw!r}")
             pool["responses"].append(r)
             pool["rewards"].append(None if rw is None else float(rw))
             pool["labels"].append(None if lb is None else bool(lb))
     out = list(pools.values())
+    if n_rewarded and first_without is not None:
+        i, p = first_without
+        n = sum(len(pool["responses"]) for pool in out)
+        raise ValueError(f"rewards must come with every sample or with none: {n_rewarded} of {n} samples have one, "
+                         f"examples[{i}] (prompt {p!r:.40}) has none")
     if labels is not None:
         if len(labels) != len(out):
             raise ValueError(f"labels must have one list per prompt ({len(out)}), got {len(labels)}")
@@ -174,7 +223,8 @@ def check_verifier(
 ) -> VerifierReport:
     """Test ``verifier`` on example pools; returns a :class:`VerifierReport` (``.ok``, ``.problems``).
 
-    examples:   pools per prompt (see the module docstring).
+    examples:   pools per prompt (see the module docstring); an unknown key, an empty pool or
+                rewards on only some samples is a ValueError.
     labels:     one list of bools per pool (in order of first appearance);
                 default the examples' labels, else ``reward > 0.5``.
     threshold:  a sample is predicted correct when its score is >= threshold.
