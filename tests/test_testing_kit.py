@@ -234,6 +234,18 @@ def test_example_keys_rewards_and_pools_are_checked(examples, message):
         check_verifier(EXACT, examples)
 
 
+@pytest.mark.parametrize("kw, message", [
+    ({"min_auc": 2}, r"min_auc must be a finite number in \[0, 1\], got min_auc=2.0"),
+    ({"min_auc": -0.1}, r"min_auc must be a finite number in \[0, 1\], got min_auc=-0.1"),
+    ({"rtol": -1}, r"rtol must be a finite number >= 0, got rtol=-1.0"),
+    ({"rtol": float("nan")}, r"rtol must be a finite number >= 0, got rtol=nan"),
+    ({"bend_tol": -0.01}, r"bend_tol must be a finite number >= 0, got bend_tol=-0.01"),
+])
+def test_thresholds_are_checked(kw, message):
+    with pytest.raises(ValueError, match=message):
+        check_verifier(EXACT, POOLS, **kw)
+
+
 def test_examples_file_with_a_misspelt_key_or_rewards_on_some_lines(tmp_path, capsys):
     ver = tmp_path / "myver.py"
     ver.write_text("def score(prompts, responses):\n    return [float('4' in r) for r in responses]\n")

@@ -195,10 +195,12 @@ def _pools(examples: Any, labels: Any) -> list[dict]:
     return out
 
 
-def _check_kw(threshold, repeats, timeout, max_failure_rate, min_auc, bend_tol, pool_size) -> None:
-    for name, v in (("threshold", threshold), ("min_auc", min_auc), ("bend_tol", bend_tol)):
-        check_real(name, v)
+def _check_kw(threshold, repeats, timeout, max_failure_rate, min_auc, bend_tol, rtol, pool_size) -> None:
+    check_real("threshold", threshold)
     check_real("max_failure_rate", max_failure_rate, min=0.0, max=1.0)
+    check_real("min_auc", min_auc, min=0.0, max=1.0)  # an AUC lies in [0, 1]: outside, every verifier passes or fails
+    check_real("bend_tol", bend_tol, min=0.0)  # below 0 any peak before the largest k would count as a bend
+    check_real("rtol", rtol, min=0.0)  # below 0 or NaN no two scores would agree
     if check_int("repeats", repeats) < 2:
         raise ValueError(f"repeats must be >= 2 to test determinism, got repeats={repeats}")
     if pool_size is not None:
@@ -237,7 +239,8 @@ def check_verifier(
                 failure rate above ``max_failure_rate``; AUC below ``min_auc``;
                 best-of-k true reward falling more than ``bend_tol`` below its
                 peak at the largest k; scores differing by more than ``rtol``
-                (relative, or 1e-12 absolute) between runs.
+                (relative, or 1e-12 absolute) between runs. ``min_auc`` must lie in
+                [0, 1], ``max_failure_rate`` in [0, 1], ``bend_tol`` and ``rtol`` be >= 0.
 
     True rewards are the examples' rewards, else the rewards the verifier
     reports (e.g. :class:`~bonft.verifiers.NoisyProxy`); without either there
@@ -246,7 +249,7 @@ def check_verifier(
     """
     if not callable(verifier):
         raise TypeError(f"verifier must be callable as verifier(prompts, responses), got {type(verifier).__name__}")
-    _check_kw(threshold, repeats, timeout, max_failure_rate, min_auc, bend_tol, pool_size)
+    _check_kw(threshold, repeats, timeout, max_failure_rate, min_auc, bend_tol, rtol, pool_size)
     pools = _pools(examples, labels)
     if pool_size is not None:
         for pool in pools:
