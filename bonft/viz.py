@@ -14,16 +14,123 @@ matplotlib is imported inside each function, so importing this module is cheap.
 """
 from __future__ import annotations
 
+import numbers
 import os
 from pathlib import Path
-from typing import Sequence
+from typing import Any, Mapping, Sequence
 
 import numpy as np
 
+from bonft._core.checks import as_float_array, check_int, check_items
 from bonft.estimate import CurveSummary
 
 __all__ = ["plot_best_of_k_curves", "plot_verifier_check", "plot_plan_heatmap", "plot_plan_curves", "plot_evaluations",
            "plot_comparison", "plot_paired_differences", "plot_objective_check", "plot_strategy_curves"]
+
+
+# ------------------------------------------------------------------ argument checks (before any figure is made)
+
+
+def _check_path(path: Any) -> str:
+    """A file path to write the figure to: a str or os.PathLike, not an existing directory."""
+    if isinstance(path, bool) or not isinstance(path, (str, os.PathLike)):
+        raise TypeError(f"path must be a file path (str or os.PathLike), got {type(path).__name__} {path!r}")
+    path = os.fspath(path)
+    if not isinstance(path, str):
+        raise TypeError(f"path must be a file path given as str or os.PathLike of str, got {type(path).__name__} {path!r}")
+    if not path:
+        raise ValueError("path must be a file path, got an empty string")
+    if os.path.isdir(path):
+        raise ValueError(f"path must be a file path, got an existing directory: {path}")
+    return path
+
+
+def _check_object(name: str, obj: Any, what: str, attrs: Sequence[str]) -> None:
+    """``obj`` must carry the attributes a figure reads (the layers above viz own the classes)."""
+    missing = [a for a in attrs if not hasattr(obj, a)]
+    if missing:
+        raise TypeError(f"{name} must be {what}, got {type(obj).__name__} (without {', '.join(missing)})")
+
+
+def _check_ks(name: str, ks: Any) -> list[int]:
+    """A non-empty sequence of ints >= 1 (the k axis)."""
+    if isinstance(ks, numbers.Integral) and not isinstance(ks, bool):
+        raise TypeError(f"{name} must be a sequence of ints, got int {ks!r}; wrap it in a list")
+    items = check_items(name, ks, numbers.Integral, "ints")
+    return [check_int(f"{name}[{i}]", k, min=1) for i, k in enumerate(items)]
+
+
+def _check_band(name: str, curve: Any, K: int) -> None:
+    """``{"mean", "lo", "hi"}``, each holding one number per k."""
+    if not isinstance(curve, Mapping):
+        raise TypeError(f"{name} must be a dict with 'mean', 'lo' and 'hi' (one value per k), got {type(curve).__name__}")
+    for key in ("mean", "lo", "hi"):
+        if key not in curve:
+            raise ValueError(f"{name} must have {key!r} (one value per k), got keys {sorted(map(str, curve))}")
+        v = as_float_array(f"{name}[{key!r}]", curve[key], ndim=1)
+        if len(v) != K:
+            raise ValueError(f"{name}[{key!r}] must hold one value per k (len(ks)={K}), got {len(v)}")
+
+
+def _check_evaluation(name: str, ev: Any, keys: Sequence[str]) -> None:
+    """One evaluation dict (``EvalReport.to_dict()``, a ``kind: eval`` line of metrics.jsonl)."""
+    if not isinstance(ev, Mapping):
+        raise TypeError(f"{name} must be an evaluation dict, got {type(ev).__name__}")
+    missing = [k for k in keys if k not in ev]
+    if missing:
+        raise ValueError(f"{name} must have the fields {', '.join(map(repr, keys))} (an evaluation's dict), "
+                         f"missing {', '.join(map(repr, missing))}")
+    K = len(_check_ks(f"{name}['ks']", ev["ks"]))
+    _check_band(f"{name}['pass_at_k']", ev["pass_at_k"], K)
+    if not isinstance(ev["best_of_k"], Mapping):
+        raise TypeError(f"{name}['best_of_k'] must be a dict of verifier -> curve, got {type(ev['best_of_k']).__name__}")
+    for verifier, c in ev["best_of_k"].items():
+        _check_band(f"{name}['best_of_k'][{verifier!r}]", c, K)
+
+
+def _check_comparison(comparison: Any, ks: Any) -> list[int]:
+    """:func:`bonft.estimate.paired.paired_comparison`'s dict, with one pass@k column per k."""
+    if not isinstance(comparison, Mapping):
+        raise TypeError(f"comparison must be paired_comparison's dict, got {type(comparison).__name__}")
+    missing = [k for k in ("columns", "means", "differences") if k not in comparison]
+    if missing:
+        raise ValueError(f"comparison must have 'columns', 'means' and 'differences' (paired_comparison's dict), "
+                         f"missing {', '.join(map(repr, missing))}")
+    ks = _check_ks("ks", ks)
+    cols = comparison["columns"]
+    if isinstance(cols, str) or not isinstance(cols, Sequence) or not all(
+            isinstance(c, Sequence) and not isinstance(c, str) and len(c) == 3 for c in cols):
+        raise TypeError("comparison['columns'] must be a list of (label, kind, column) triples")
+    n_pass = sum(1 for _, kind, _ in cols if kind == "pass")
+    if n_pass != len(ks):
+        raise ValueError(f"ks must give one k per pass@k column of comparison ({n_pass}), got {len(ks)} ks")
+    means = comparison["means"]
+    if not isinstance(means, Mapping) or not means:
+        raise ValueError("comparison['means'] must be a non-empty dict of policy -> cells")
+
+    def cells_ok(where: str, cells: Any) -> None:
+        if (isinstance(cells, str) or not isinstance(cells, Sequence) or len(cells) != len(cols)
+                or not all(isinstance(c, Sequence) and len(c) == 3 for c in cells)):
+            raise ValueError(f"{where} must hold one (mean, lo, hi) per column ({len(cols)})")
+
+    for name, cells in means.items():
+        cells_ok(f"comparison['means'][{name!r}]", cells)
+    diffs = comparison["differences"]
+    if not isinstance(diffs, Mapping):
+        raise TypeError(f"comparison['differences'] must be a dict of baseline -> policy -> cells, got {type(diffs).__name__}")
+    for base, rows in diffs.items():
+        if not isinstance(rows, Mapping):
+            raise TypeError(f"comparison['differences'][{base!r}] must be a dict of policy -> cells, got {type(rows).__name__}")
+        for name, cells in rows.items():
+            if name not in means:
+                raise ValueError(f"comparison['differences'][{base!r}] names policy {name!r}, which is not among "
+                                 f"comparison['means'] {list(means)}")
+            cells_ok(f"comparison['differences'][{base!r}][{name!r}]", cells)
+    return ks
+
+
+_PLAN = "a PlanResult (bonft.plan's result)"
+_PLAN_ATTRS = ("temperatures", "ks", "value", "best_index", "mode")
 
 
 # ------------------------------------------------------------------ estimator curves
@@ -38,12 +145,12 @@ def plot_best_of_k_curves(curves: dict, path, *, title: str | None = None) -> st
     for label, c in curves.items():
         if not isinstance(c, CurveSummary):
             raise TypeError(f"curves[{label!r}] must be a CurveSummary, got {type(c).__name__}")
+    path = _check_path(path)
     import matplotlib
 
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
 
-    path = str(path)
     fig, ax = plt.subplots(figsize=(6.4, 4.2))
     for j, (label, c) in enumerate(curves.items()):
         ks = np.asarray(c.ks)
@@ -91,7 +198,15 @@ def _band(ax, ks, curve: dict, label: str, **kw) -> None:
 
 
 def plot_evaluations(evals: Sequence[dict], path: str | Path, *, title: str = "") -> Path:
-    """One run: pass@k (left) and best-of-k per verifier (right) versus k, one line per evaluation step."""
+    """One run: pass@k (left) and best-of-k per verifier (right) versus k, one line per evaluation step.
+
+    evals: a non-empty list of evaluation dicts (``ks``, ``step``, ``pass_at_k``, ``best_of_k``); path: a file path.
+    """
+    if isinstance(evals, Mapping):
+        raise TypeError("evals must be a list of evaluation dicts, got a single dict (wrap it in a list)")
+    for i, ev in enumerate(check_items("evals", evals, object, "evaluation dicts")):
+        _check_evaluation(f"evals[{i}]", ev, ("ks", "step", "pass_at_k", "best_of_k"))
+    path = _check_path(path)
     plt, fig, (ax1, ax2) = _axes(2)
     for ev in evals:
         _band(ax1, ev["ks"], ev["pass_at_k"], f"step {ev['step']}")
@@ -124,7 +239,17 @@ def _finish(plt, fig, axes, path, title, *, unit=None, ticks=None) -> Path:
 
 
 def plot_comparison(results: dict[str, dict], path: str | Path, *, title: str = "") -> Path:
-    """Several policies (name -> one evaluation dict): pass@k and best-of-k under the proxy, with CIs."""
+    """Several policies (name -> one evaluation dict): pass@k and best-of-k under the proxy, with CIs.
+
+    results: a non-empty dict of name -> evaluation dict (``ks``, ``pass_at_k``, ``best_of_k``); path: a file path.
+    """
+    if not isinstance(results, Mapping):
+        raise TypeError(f"results must be a dict of policy name -> evaluation dict, got {type(results).__name__}")
+    if not results:
+        raise ValueError("results must hold at least one policy, got an empty dict")
+    for name, ev in results.items():
+        _check_evaluation(f"results[{name!r}]", ev, ("ks", "pass_at_k", "best_of_k"))
+    path = _check_path(path)
     plt, fig, (ax1, ax2) = _axes(2)
     for name, ev in results.items():
         _band(ax1, ev["ks"], ev["pass_at_k"], name)
@@ -137,7 +262,11 @@ def plot_comparison(results: dict[str, dict], path: str | Path, *, title: str = 
 
 def plot_paired_differences(comparison: dict, path: str | Path, *, ks: Sequence[int], title: str = "") -> Path:
     """Policies on the same prompts (:func:`bonft.estimate.paired.paired_comparison`): each one's pass@k (left)
-    and its paired difference from the baseline (right, with a zero line), with their intervals, against k."""
+    and its paired difference from the baseline (right, with a zero line), with their intervals, against k.
+
+    ks: the k of each pass@k column of ``comparison``; path: a file path."""
+    ks = _check_comparison(comparison, ks)
+    path = _check_path(path)
     plt, fig, (ax1, ax2) = _axes(2)
     cols = [j for j, (_, kind, _) in enumerate(comparison["columns"]) if kind == "pass"]
 
@@ -189,9 +318,12 @@ def _log2_k_axis(ax, kmax: int) -> None:
 
 
 def plot_plan_heatmap(res, path) -> str:
-    """V over (temperature rows, k columns on a log axis); circles mark the best temperature per k."""
+    """V over (temperature rows, k columns on a log axis); circles mark the best temperature per k.
+
+    res: a :class:`bonft.plan.PlanResult`; path: a file path (missing folders are made)."""
+    _check_object("res", res, _PLAN, (*_PLAN_ATTRS, "best_temperature", "near_best"))
+    path = _out(_check_path(path))
     plt = _plt()
-    path = _out(path)
     T, ks = res.temperatures, res.ks
     # cell edges: k on a log axis (edges at k -/+ 0.5), temperatures at midpoints between grid values
     k_edges = np.concatenate([[0.5], ks + 0.5])
@@ -234,9 +366,12 @@ def curve_temperatures(res, n_other: int = 3) -> list[int]:
 
 
 def plot_plan_curves(res, path) -> str:
-    """V against k (log axis) at the best temperatures and a few others, CI bands in sampling mode."""
+    """V against k (log axis) at the best temperatures and a few others, CI bands in sampling mode.
+
+    res: a :class:`bonft.plan.PlanResult`; path: a file path (missing folders are made)."""
+    _check_object("res", res, _PLAN, (*_PLAN_ATTRS, "lo", "hi", "budgets", "confidence"))
+    path = _out(_check_path(path))
     plt = _plt()
-    path = _out(path)
     fig, ax = plt.subplots(figsize=(7, 4.2), dpi=110)
     ks = res.ks
     for i in curve_temperatures(res):
@@ -269,7 +404,12 @@ def plot_plan_curves(res, path) -> str:
 
 # ------------------------------------------------------------------ verifier checks
 def plot_verifier_check(report, path) -> str:
-    """A :class:`bonft.verifiers.VerifierReport`: plot best-of-k (verifier's pick) against pass@k as k grows, to ``path`` (PNG); returns ``path``."""
+    """A :class:`bonft.verifiers.VerifierReport`: plot best-of-k (verifier's pick) against pass@k as k grows, to ``path`` (PNG); returns ``path``.
+
+    path: a file path (str or os.PathLike, not a directory)."""
+    _check_object("report", report, "a VerifierReport (bonft.testing.check_verifier's result)",
+                  ("ks", "pass_at_k", "best_of_k", "ok", "problems"))
+    path = _check_path(path)
     import matplotlib
 
     matplotlib.use("Agg")
@@ -298,9 +438,11 @@ def plot_objective_check(report, path) -> str:
     """A :class:`bonft.testing.ObjectiveReport`: mean estimated against exact gradient components, each
     divided by the norm of its exact gradient (every categorical policy's logits; the transformer's
     directional derivatives, over their norm, with their Monte Carlo intervals), on the diagonal when the credit is
-    unbiased; to ``path`` (PNG); returns ``path``."""
+    unbiased; to ``path`` (PNG, a file path; missing folders are made); returns ``path``."""
+    _check_object("report", report, "an ObjectiveReport (bonft.testing.check_objective's result)",
+                  ("cases", "transformer", "ok", "problems", "max_rel_error", "target", "k", "n"))
+    path = _out(_check_path(path))
     plt = _plt()
-    path = _out(path)
     fig, ax = plt.subplots(figsize=(5.6, 5.0))
     pts = []
     for j, c in enumerate(report.cases):
@@ -345,7 +487,17 @@ def plot_strategy_curves(curves: dict, path, *, title: str | None = None) -> str
 
     One panel per label (a temperature, a policy), one line per strategy with its bootstrap band
     (``bonft estimate --strategy ... --plot-dir``, ``bonft plan --strategy ... --plot-dir``).
+
+    curves: a non-empty dict of label -> StrategyCurves; path: a file path (missing folders are made).
     """
+    if not isinstance(curves, Mapping):
+        raise TypeError(f"curves must be a dict of label -> StrategyCurves, got {type(curves).__name__}")
+    if not curves:
+        raise ValueError("curves must hold at least one label, got an empty dict")
+    for lab, c in curves.items():
+        _check_object(f"curves[{lab!r}]", c, "a StrategyCurves (bonft.strategies.compare_strategies' result)",
+                      ("ks", "names", "mean", "lo", "hi", "intervals_valid"))
+    path = _check_path(path)
     plt = _plt()
     labels = list(curves)
     fig, axes = plt.subplots(1, len(labels), figsize=(4.6 * len(labels), 3.8), squeeze=False, sharey=True)

@@ -77,3 +77,76 @@ def test_bad_curves_name_the_argument(tmp_path):
         viz.plot_best_of_k_curves([], tmp_path / "x.png")
     with pytest.raises(TypeError, match=r"curves\['a'\] must be a CurveSummary, got dict"):
         viz.plot_best_of_k_curves({"a": {}}, tmp_path / "x.png")
+
+
+def _band(K):
+    return {"mean": [0.5] * K, "lo": [0.4] * K, "hi": [0.6] * K}
+
+
+def _eval(K=2):
+    return {"ks": [1, 2][:K], "step": 3, "pass_at_k": _band(K), "best_of_k": {"proxy": _band(K)}}
+
+
+_PAIRED = {"columns": [("pass@1", "pass", 0), ("pass@2", "pass", 1)], "means": {"A": [(0.1, 0.0, 0.2)] * 2},
+           "differences": {"A": {}}}
+
+
+@pytest.mark.parametrize("call, err, match", [
+    (lambda p: viz.plot_plan_heatmap(None, p), TypeError, r"res must be a PlanResult .*got NoneType"),
+    (lambda p: viz.plot_plan_curves(5, p), TypeError, r"res must be a PlanResult .*got int"),
+    (lambda p: viz.plot_verifier_check(None, p), TypeError, r"report must be a VerifierReport .*got NoneType"),
+    (lambda p: viz.plot_objective_check(None, p), TypeError, r"report must be an ObjectiveReport .*got NoneType"),
+    (lambda p: viz.plot_strategy_curves({"x": 1}, p), TypeError, r"curves\['x'\] must be a StrategyCurves .*got int"),
+    (lambda p: viz.plot_strategy_curves({}, p), ValueError, r"curves must hold at least one label, got an empty dict"),
+    (lambda p: viz.plot_evaluations([{"ks": [1, 2]}], p), ValueError,
+     r"evals\[0\] must have the fields .*missing 'step', 'pass_at_k', 'best_of_k'"),
+    (lambda p: viz.plot_evaluations([], p), ValueError, r"evals must not be empty"),
+    (lambda p: viz.plot_evaluations(_eval(), p), TypeError, r"evals must be a list of evaluation dicts, got a single dict"),
+    (lambda p: viz.plot_evaluations([{**_eval(), "ks": [1, 2, 4]}], p), ValueError,
+     r"evals\[0\]\['pass_at_k'\]\['mean'\] must hold one value per k \(len\(ks\)=3\), got 2"),
+    (lambda p: viz.plot_evaluations([{**_eval(), "ks": [0, 2]}], p), ValueError, r"evals\[0\]\['ks'\]\[0\] must be >= 1"),
+    (lambda p: viz.plot_comparison({"a": {}}, p), ValueError, r"results\['a'\] must have the fields 'ks', 'pass_at_k'"),
+    (lambda p: viz.plot_comparison({}, p), ValueError, r"results must hold at least one policy, got an empty dict"),
+    (lambda p: viz.plot_comparison({"a": {**_eval(), "best_of_k": {"proxy": {"mean": [1, 1]}}}}, p), ValueError,
+     r"results\['a'\]\['best_of_k'\]\['proxy'\] must have 'lo'"),
+    (lambda p: viz.plot_paired_differences({}, p, ks=[1]), ValueError,
+     r"comparison must have 'columns', 'means' and 'differences'"),
+    (lambda p: viz.plot_paired_differences(_PAIRED, p, ks=[1]), ValueError,
+     r"ks must give one k per pass@k column of comparison \(2\), got 1 ks"),
+    (lambda p: viz.plot_paired_differences({**_PAIRED, "differences": {"A": {"B": [(0, 0, 0)] * 2}}}, p, ks=[1, 2]),
+     ValueError, r"comparison\['differences'\]\['A'\] names policy 'B', which is not among"),
+])
+def test_bad_figure_data_is_refused_before_a_figure_is_made(tmp_path, closed_figures, call, err, match):
+    with pytest.raises(err, match=match):
+        call(tmp_path / "x.png")
+    assert closed_figures == [] and list(tmp_path.iterdir()) == []
+
+
+def test_a_good_evaluation_is_still_drawn(tmp_path, closed_figures):
+    out = viz.plot_evaluations([_eval()], tmp_path / "e.png")
+    assert out == tmp_path / "e.png" and out.read_bytes()[:4] == b"\x89PNG"
+    (fig,) = closed_figures
+    np.testing.assert_array_equal(fig.axes[0].lines[0].get_ydata(), [0.5, 0.5])
+
+
+@pytest.mark.parametrize("path, err, match", [
+    (None, TypeError, r"path must be a file path \(str or os.PathLike\), got NoneType None"),
+    (3, TypeError, r"path must be a file path \(str or os.PathLike\), got int 3"),
+    ("", ValueError, r"path must be a file path, got an empty string"),
+    ("DIR", ValueError, r"path must be a file path, got an existing directory: .*figs"),
+])
+@pytest.mark.parametrize("plot", ["best_of_k", "evaluations", "comparison", "paired"])
+def test_the_path_must_be_a_file_path(tmp_path, monkeypatch, closed_figures, plot, path, err, match):
+    folder = tmp_path / "figs"
+    folder.mkdir()
+    monkeypatch.chdir(tmp_path)  # None or a folder used to give None.png / figs.png in the working directory
+    rng = np.random.default_rng(0)
+    summary = summarize(rng.random((6, 2)), (rng.random((6, 2)) < 0.5).astype(float), ks=[1, 2], n_boot=10)
+    draw = {"best_of_k": lambda p: viz.plot_best_of_k_curves({"a": summary}, p),
+            "evaluations": lambda p: viz.plot_evaluations([_eval()], p),
+            "comparison": lambda p: viz.plot_comparison({"a": _eval()}, p),
+            "paired": lambda p: viz.plot_paired_differences(_PAIRED, p, ks=[1, 2])}[plot]
+    with pytest.raises(err, match=match):
+        draw(str(folder) if path == "DIR" else path)
+    assert closed_figures == [] and sorted(p.name for p in tmp_path.iterdir()) == ["figs"]
+    assert list(folder.iterdir()) == []
