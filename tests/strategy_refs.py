@@ -49,6 +49,12 @@ def mean_rule(rule) -> dict:
     return {"conflicts": "mean"} if get_strategy(rule).uses_answers else {}
 
 
+def read_fields(rule, scores, answers) -> dict:
+    """scores and answers as the rule takes them: None for a field it does not read (giving one is an error)."""
+    st = get_strategy(rule)
+    return {"scores": scores if st.uses_scores else None, "answers": answers if st.uses_answers else None}
+
+
 def brute_value(rule, probs, k):
     return sum(math.prod(probs[i] for i in t) * served(rule, t, ANS, SC, RW)
                for t in itertools.product(range(len(probs)), repeat=k))

@@ -6,17 +6,30 @@ from __future__ import annotations
 import numpy as np
 import pytest
 import torch
-from strategy_refs import ANS, LOGITS, RW, SC, all_pools, brute_pool, mean_rule, policy_probs, random_pool
+from strategy_refs import (
+    ANS,
+    LOGITS,
+    RW,
+    SC,
+    all_pools,
+    brute_pool,
+    mean_rule,
+    policy_probs,
+    random_pool,
+    read_fields,
+)
 
 from bonft.objectives import credit as C
 from bonft.strategies import (
     MajorityVote,
     WeightedVote,
+    compare_strategies,
     get_strategy,
     majority_vote_credit,
     majority_vote_per_prompt,
     majority_vote_value,
     strategy_credit,
+    strategy_loss,
     strategy_per_prompt,
     strategy_value,
 )
@@ -26,7 +39,7 @@ def test_strategy_per_prompt_matches_closed_forms():
     # best-of-k and pass delegate to bonft.estimate; checked against k-subset enumeration
     a, s, r = random_pool(4, 8)
     for rule in ("best_of_k", "pass_at_k"):
-        v, se = strategy_per_prompt(rule, ks=[1, 4, 8], rewards=[r], scores=[s], answers=[a])
+        v, se = strategy_per_prompt(rule, ks=[1, 4, 8], rewards=[r], **read_fields(rule, [s], [a]))
         np.testing.assert_allclose(v[0], [brute_pool(rule, a, s, r, k) for k in (1, 4, 8)], atol=1e-13)
 
 
@@ -41,10 +54,11 @@ def test_credit_expected_gradient_equals_exact_gradient(rule, n):
     onehot = np.eye(6)[pools]  # (P, n, 6): grad_z log pi(y) = e_y - pi
     worst = 0.0
     for k in range(1, n + 1):
-        w = np.asarray(strategy_credit(rule, SC[pools], RW[pools], k=k, answers=ANS[pools], **mean_rule(rule)))
+        f = read_fields(rule, SC[pools], ANS[pools])
+        w = np.asarray(strategy_credit(rule, f["scores"], RW[pools], k=k, answers=f["answers"], **mean_rule(rule)))
         g_est = np.einsum("p,pn,pnv->v", prob, w, onehot - pnp)
-        (g_true,) = torch.autograd.grad(strategy_value(rule, torch.softmax(z, -1), k=k, rewards=RW, scores=SC, answers=ANS,
-                                                       **mean_rule(rule)), z)
+        (g_true,) = torch.autograd.grad(strategy_value(rule, torch.softmax(z, -1), k=k, rewards=RW,
+                                                       **read_fields(rule, SC, ANS), **mean_rule(rule)), z)
         worst = max(worst, float(np.abs(g_est - g_true.numpy()).max()))
     print(f"{rule}, n={n}: max |E[credit gradient] - grad V_k| = {worst:.2e}")
     assert worst < 1e-10
@@ -89,10 +103,44 @@ def test_bad_inputs_name_the_argument():
                            answers=[[0, 1]], max_subsets=10)
 
 
+_A, _S, _R = np.array([[0, 1, 1]]), np.array([[0.2, 0.5, 0.1]]), np.array([[1.0, 0.0, 0.0]])
+_LP = torch.zeros(1, 3, dtype=torch.float64)
+
+
+@pytest.mark.parametrize("call, message", [
+    (lambda: strategy_per_prompt("pass_at_k", ks=[1], rewards=_R, scores=_S),
+     r"scores has no effect on pass_at_k \(read by best_of_k, weighted_vote\); pass scores=None, got ndarray of shape "
+     r"\(1, 3\)"),
+    (lambda: strategy_per_prompt("best_of_k", ks=[1], rewards=_R, scores=_S, answers=_A),
+     r"answers has no effect on best_of_k \(read by majority_vote, weighted_vote\); pass answers=None"),
+    (lambda: strategy_value("best_of_k", policy_probs(), k=2, rewards=RW, scores=SC, answers=ANS),
+     r"answers has no effect on best_of_k"),
+    (lambda: strategy_value("pass_at_k", policy_probs(), k=2, rewards=RW, scores=list(SC)),
+     r"scores has no effect on pass_at_k .*got list of length 6"),
+    (lambda: strategy_credit("pass_at_k", _S, _R, k=2), r"scores has no effect on pass_at_k"),
+    (lambda: strategy_loss(_LP, _S, _R, strategy="best_of_k", k=2, answers=_A), r"answers has no effect on best_of_k"),
+    (lambda: strategy_loss(_LP, None, _R, strategy="pass_at_k", k=2, answers=_A), r"answers has no effect on pass_at_k"),
+    (lambda: compare_strategies(["best_of_k", "pass_at_k"], ks=[1], rewards=_R, scores=_S, answers=_A),
+     r"answers has no effect on best_of_k, pass_at_k \(read by majority_vote, weighted_vote\)"),
+    (lambda: compare_strategies(["majority_vote", "pass_at_k"], ks=[1], rewards=_R, scores=_S, answers=_A),
+     r"scores has no effect on majority_vote, pass_at_k \(read by best_of_k, weighted_vote\)"),
+])
+def test_a_field_the_strategy_does_not_read_is_refused(call, message):
+    with pytest.raises(ValueError, match=message):
+        call()
+
+
+def test_compare_strategies_hands_each_strategy_the_fields_it_reads():
+    # reference: brute_pool over every k-subset (definition); scores and answers given once for all four
+    a, s, r = random_pool(3, 6)
+    got = compare_strategies(["best_of_k", "majority_vote", "weighted_vote", "pass_at_k"], ks=[2, 4], rewards=[r],
+                             scores=[s], answers=[a], conflicts="mean", n_boot=20)
+    for rule in got.names:
+        np.testing.assert_allclose(got.mean[rule], [brute_pool(rule, a, s, r, k) for k in (2, 4)], atol=1e-13)
+
+
 def test_compare_strategies_takes_an_int_or_any_iterable_of_ks():
     # reference: brute_pool, best-of-k over every k-subset of each pool (definition)
-    from bonft.strategies import compare_strategies
-
     pools = [random_pool(seed, 8) for seed in (4, 5)]
     s, r = np.stack([p[1] for p in pools]), np.stack([p[2] for p in pools])
     want = {k: np.mean([brute_pool("best_of_k", a, sp, rp, k) for a, sp, rp in pools]) for k in (1, 3, 8)}

@@ -10,7 +10,7 @@ from fractions import Fraction
 import numpy as np
 import pytest
 import torch
-from strategy_refs import ANS, RW, SC, brute_value, mean_rule, policy_probs
+from strategy_refs import ANS, RW, SC, brute_value, mean_rule, policy_probs, read_fields
 
 from bonft.strategies import majority_vote_value, strategy_value, weighted_vote_value
 
@@ -62,7 +62,7 @@ def test_negative_weight_and_conflicting_rewards_are_refused():
 def test_exact_value_equals_k_tuple_enumeration(rule, k):
     # reference: the definition, summed over all 6^k ordered k-tuples
     p = policy_probs()
-    got = strategy_value(rule, p, k=k, rewards=RW, scores=SC, answers=ANS, **mean_rule(rule))
+    got = strategy_value(rule, p, k=k, rewards=RW, **read_fields(rule, SC, ANS), **mean_rule(rule))
     assert abs(float(got) - brute_value(rule, p, k)) < 1e-12
 
 

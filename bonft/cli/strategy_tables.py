@@ -53,6 +53,7 @@ def _curves(table, t, names, ks, args):
     if ks is not None and (max(ks) > n_min or min(ks) < 1):
         raise ValueError(f"--ks must be in [1, n] with n = {n_min} (the smallest pool), got {ks}")
     use = ks if ks is not None else default_ks(n_min)
+    s = s if any(get_strategy(n).uses_scores for n in names) else None
     return compare_strategies(names, ks=use, rewards=r, scores=s, answers=a, confidence=args.confidence,
                               n_boot=args.n_boot, seed=args.seed,
                               max_subsets=args.max_subsets if args.max_subsets is not None else MAX_SUBSETS)
@@ -142,8 +143,10 @@ def run_plan_exact(args, spec: dict, temps: list) -> int:
             row = []
             for k in range(1, max_k + 1):
                 try:
-                    row.append(float(strategy_value(s, probs, k=k, rewards=spec["rewards"], scores=spec["scores"],
-                                                    answers=spec.get("answers"))))
+                    st = get_strategy(s)
+                    row.append(float(strategy_value(st, probs, k=k, rewards=spec["rewards"],
+                                                    scores=spec["scores"] if st.uses_scores else None,
+                                                    answers=spec.get("answers") if st.uses_answers else None)))
                 except ValueError:  # weighted vote: too many count vectors for this k
                     row.append(float("nan"))
             grid[t, s] = np.array(row)

@@ -65,6 +65,23 @@ _NOT_IDS = {"best-of-k": "best_of_k", "bon": "best_of_k", "majority": "majority_
 
 
 _DEFAULTS = {"max_subsets": MAX_SUBSETS, "seed": 0, "conflicts": "error"}  # the options a strategy may read
+# (strategy, field) given but not read, yet accepted: the trainer hands each vote objective its pools' scores
+_ACCEPTED_UNREAD = {("majority_vote", "scores")}
+
+
+def _unread_field(key: str, names: list[str], val) -> ValueError:
+    """The error for a per-sample field (``scores``, ``answers``) that none of the strategies ``names`` reads."""
+    users = [s.name for s in _BY_NAME.values() if getattr(s, f"uses_{key}")]
+    return ValueError(f"{key} has no effect on {', '.join(names)} (read by {', '.join(users)}); pass {key}=None, "
+                      f"got {_describe(val)}")
+
+
+def _describe(x) -> str:
+    """A field's value for a message: its type and shape, not its contents."""
+    shape = getattr(x, "shape", None)
+    if shape is not None:
+        return f"{type(x).__name__} of shape {tuple(shape)}"
+    return f"{type(x).__name__} of length {len(x)}" if hasattr(x, "__len__") else f"{type(x).__name__} {x!r}"
 
 
 @dataclass(frozen=True)
@@ -72,7 +89,8 @@ class Strategy:
     """An inference-time selection rule over ``k`` samples (see the module docstring).
 
     ``name`` is the strategy id (code, ``--strategy``, config, JSON); ``uses_answers`` /
-    ``uses_scores`` say which per-sample fields the rule reads; ``servable`` is False for a
+    ``uses_scores`` say which per-sample fields the rule reads (one it does not read is a ``ValueError``,
+    except the scores a majority vote is handed by the trainer); ``servable`` is False for a
     ceiling that needs the true reward (pass@k); ``reads`` names the options its estimate and
     credit take (``max_subsets``, ``seed``: sampled k-subsets; ``conflicts``: one answer with
     several rewards). An option the strategy does not read is an error unless it has its default
@@ -99,10 +117,12 @@ class Strategy:
         return {key: given.get(key, _DEFAULTS[key]) for key in reads}
 
     def _need(self, scores, answers) -> None:
-        if self.uses_scores and scores is None:
-            raise ValueError(f"scores must be given for strategy {self.name!r}, got None")
-        if self.uses_answers and answers is None:
-            raise ValueError(f"answers must be given for strategy {self.name!r}, got None")
+        """Each per-sample field the rule reads must be given; one it does not read cannot take effect."""
+        for key, val, used in (("scores", scores, self.uses_scores), ("answers", answers, self.uses_answers)):
+            if used and val is None:
+                raise ValueError(f"{key} must be given for strategy {self.name!r}, got None")
+            if not used and val is not None and (self.name, key) not in _ACCEPTED_UNREAD:
+                raise _unread_field(key, [self.name], val)
 
     def value(self, probs, *, k, rewards, scores=None, answers=None, **options):
         """Exact ``V_k`` on a finite outcome set: ``probs (..., V) -> (...)``, differentiable."""
@@ -224,7 +244,8 @@ def strategy_value(strategy, probs, *, k, rewards, scores=None, answers=None, **
     :meth:`Strategy.value` of :func:`get_strategy` ``(strategy)``: best_of_k:
     :func:`bonft.bon.best_of_k_value`; pass_at_k: the same with ``scores = rewards``;
     majority_vote: :func:`bonft.strategies.exact.majority_vote_value`; weighted_vote:
-    :func:`bonft.strategies.exact.weighted_vote_value`.
+    :func:`bonft.strategies.exact.weighted_vote_value`. ``scores`` / ``answers`` the strategy does not read
+    are a ``ValueError`` (:attr:`Strategy.uses_scores`, :attr:`Strategy.uses_answers`).
 
     References: Chow et al. 2024; Wang et al. 2023; Li et al. 2023; Chen et al. 2021.
     """
@@ -241,7 +262,8 @@ def strategy_per_prompt(strategy, *, ks, rewards, scores=None, answers=None, **o
     :meth:`Strategy.estimate`: best_of_k: :func:`bonft.estimate.best_of_k_per_prompt`; pass_at_k:
     :func:`bonft.estimate.pass_at_k_per_prompt` (Chen et al. 2021 for 0/1 rewards); majority_vote /
     weighted_vote: :mod:`bonft.strategies.estimators`. stderr is 0 wherever the estimate is exact.
-    ``options``: ``max_subsets``, ``seed``, ``conflicts`` where the strategy reads them (:meth:`Strategy.options`).
+    ``options``: ``max_subsets``, ``seed``, ``conflicts`` where the strategy reads them (:meth:`Strategy.options`);
+    ``scores`` / ``answers`` likewise (pass_at_k reads neither, best_of_k no answers).
 
     References: Hoeffding 1948; Chen et al. 2021; Chow et al. 2024; Wang et al. 2023.
     """
@@ -257,6 +279,7 @@ def strategy_credit(strategy, scores, rewards, *, k, answers=None, **options):
 
     :meth:`Strategy.credit`: best_of_k: :func:`bonft.objectives.credit.best_of_k_credit`; pass_at_k:
     the same with ``scores = rewards``; majority_vote / weighted_vote: :mod:`bonft.strategies.estimators`.
+    ``scores`` / ``answers`` the strategy does not read are a ``ValueError`` (pass ``None``).
 
     References: Kool et al. 2019; Chow et al. 2024; Hoeffding 1948.
     """

@@ -18,7 +18,7 @@ import numpy as np
 
 from bonft._core.checks import check_ks
 from bonft.estimate.intervals import MIN_BOOT_PROMPTS, bootstrap_ci
-from bonft.strategies.base import get_strategy
+from bonft.strategies.base import _unread_field, get_strategy
 from bonft.strategies.estimators import MAX_SUBSETS
 
 __all__ = ["StrategyCurves", "compare_strategies"]
@@ -86,7 +86,8 @@ def compare_strategies(strategies, *, ks, rewards, scores=None, answers=None, co
 
     .. math:: \bar V_k = \frac1P\sum_p \hat V_k^{(p)}
 
-    ``strategies``: ids or :class:`bonft.strategies.Strategy` objects. ``ks``: an int or an iterable of
+    ``strategies``: ids or :class:`bonft.strategies.Strategy` objects; each gets the fields it reads, and
+    ``scores`` or ``answers`` that none of them reads is an error. ``ks``: an int or an iterable of
     ints (read once, so a generator works). Values are the unbiased
     per-prompt estimates of :meth:`bonft.strategies.Strategy.estimate` (``max_subsets``, ``seed`` and
     ``conflicts`` go there); intervals are the paired
@@ -102,10 +103,14 @@ def compare_strategies(strategies, *, ks, rewards, scores=None, answers=None, co
     for key, val in given.items():  # an option no strategy here reads cannot take effect
         if not any(key in st.reads for st in sts):
             sts[0].options(**{key: val})  # its message names the strategies that read it
+    for key, val in (("scores", scores), ("answers", answers)):  # so can a field none of them reads
+        if val is not None and not any(getattr(st, f"uses_{key}") for st in sts):
+            raise _unread_field(key, [st.name for st in sts], val)
     out = None
     for st in sts:
         opts = {key: val for key, val in {**given, "seed": seed}.items() if key in st.reads}
-        v, se = st.estimate(ks=ks, rewards=rewards, scores=scores, answers=answers, **opts)
+        v, se = st.estimate(ks=ks, rewards=rewards, scores=scores if st.uses_scores else None,
+                            answers=answers if st.uses_answers else None, **opts)
         if out is None:
             out = StrategyCurves(ks=np.asarray(ks), n_prompts=v.shape[0], names=[], confidence=confidence)
         m, lo, hi = bootstrap_ci(v, confidence=confidence, n_boot=n_boot, seed=seed)

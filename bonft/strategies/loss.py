@@ -27,7 +27,8 @@ def strategy_loss(logprobs, scores, rewards, *, strategy, k, answers=None, mask=
 
     The credit ``w`` is plain data; the loss itself is :func:`bonft.objectives.losses.policy_gradient_loss`
     (``mask`` and ``options`` such as the anchor KL term go there); ``max_subsets``, ``seed`` and
-    ``conflicts`` go to the strategy (an error where it does not read them). info adds ``pool_value``,
+    ``conflicts`` go to the strategy (an error where it does not read them, as are ``scores`` /
+    ``answers`` it does not read). info adds ``pool_value``,
     the mean over prompts of the unbiased pool estimate of ``V_k`` (detached).
 
     References: Chow et al. 2024; Kool et al. 2019; Wang et al. 2023.
