@@ -119,6 +119,26 @@ def test_probe_arguments_are_validated(tmp_path):
         read_code_tests(str(bad))
 
 
+@pytest.mark.parametrize("text, message", [
+    # a prompt -> tests mapping keeps one test code per prompt: a second line would replace the first unseen
+    ('{"prompt": "p", "tests": "assert f(1) == 2"}\n\n{"prompt": "q", "tests": "assert g()"}\n'
+     '{"prompt": "p", "tests": "assert f(2) == 3"}\n',
+     r"dup.jsonl lines 1 and 4 both give tests for prompt 'p': each prompt has one test code"),
+    ('{"prompt": "p", "tests": "assert f(1) == 2", "wall_time": 3}\n',
+     r"dup.jsonl line 1 has unknown key 'wall_time': a line takes only the keys prompt, tests"),
+])
+def test_tests_file_with_a_repeated_prompt_or_an_unknown_key(tmp_path, capsys, text, message):
+    from bonft.cli import main
+
+    path = tmp_path / "dup.jsonl"
+    path.write_text(text)
+    with pytest.raises(ValueError, match=message):
+        read_code_tests(str(path))
+    assert main(["check-tests", str(path), "--probes", "constant_reply"]) == 2
+    err = capsys.readouterr().err
+    assert re.search(message, err) and "Traceback" not in err, err
+
+
 def _documented_example() -> str:
     """The probe example of docs/verifiers.md (test_documented_probe_example_runs runs it whole)."""
     root = Path(__file__).resolve().parents[1]

@@ -315,8 +315,13 @@ def probe_code_tests(tests: Mapping[str, str] | CodeRunner, *, probes=PROBES, ru
 
 
 def read_code_tests(path: str) -> dict[str, str]:
-    """Read a tests file: JSON Lines, one ``{"prompt": str, "tests": str}`` per line."""
-    out = {}
+    """Read a tests file: JSON Lines, one ``{"prompt": str, "tests": str}`` per line.
+
+    Another key, or a prompt on two lines, is a ``ValueError`` naming the line(s): the result maps each
+    prompt to one test code, as :class:`CodeRunner` does, so a second line would replace the first unseen.
+    """
+    out: dict[str, str] = {}
+    first_line: dict[str, int] = {}
     with open(path, encoding="utf-8") as f:
         for i, line in enumerate(f, 1):
             if not line.strip():
@@ -327,7 +332,15 @@ def read_code_tests(path: str) -> dict[str, str]:
                 raise ValueError(f"{path} line {i} must be a JSON object, got invalid JSON ({e})") from None
             if not isinstance(rec, dict) or not isinstance(rec.get("prompt"), str) or not isinstance(rec.get("tests"), str):
                 raise ValueError(f"{path} line {i} must be {{\"prompt\": str, \"tests\": str}}, got {line.strip()[:80]}")
-            out[rec["prompt"]] = rec["tests"]
+            extra = sorted(set(rec) - {"prompt", "tests"})
+            if extra:
+                raise ValueError(f"{path} line {i} has unknown key {extra[0]!r}: a line takes only the keys prompt, tests")
+            prompt = rec["prompt"]
+            if prompt in first_line:
+                raise ValueError(f"{path} lines {first_line[prompt]} and {i} both give tests for prompt {prompt!r:.60}: "
+                                 f"each prompt has one test code (join the two into one 'tests' string)")
+            first_line[prompt] = i
+            out[prompt] = rec["tests"]
     return out
 
 
