@@ -84,6 +84,29 @@ def _thresholded_credit(scores, rewards, *, k):
     return reinforce_credit((rewards > 1.5).astype(float))  # leave-one-out REINFORCE on the payoff: unbiased
 
 
+@pytest.mark.parametrize("kw, message", [
+    # settings of a part of the check that does not run would be ignored
+    ({"transformer": False, "directions": 5},
+     r"directions=5 has no effect with transformer=False: it sizes the transformer check, which is skipped"),
+    ({"transformer": False, "mc_pools": 100}, r"mc_pools=100 has no effect with transformer=False"),
+    ({"transformer": False, "policies": [ToyPolicy([0.1, -0.3], [0.0, 1.0], [0.0, 1.0])], "outcomes": 6},
+     r"outcomes=6 has no effect with a list of policies: .*each given ToyPolicy has its own outcomes"),
+    ({"transformer": False, "policies": [ToyPolicy([0.1, -0.3], [0.0, 1.0], [0.0, 1.0], reference=1)]},
+     r"policies\[0\]\.reference=1 has no effect with target 'best_of_k': only target 'best_of_k_sft' uses a "
+     r"reference outcome"),
+])
+def test_settings_that_cannot_take_effect_are_errors(kw, message):
+    with pytest.raises(ValueError, match=message):
+        check_objective(builtin.best_of_k, target="best_of_k", k=2, n=3, **kw)
+
+
+def test_the_defaults_of_the_optional_sizes_are_those_documented():
+    # outcomes=None means 4 outcomes; the same check with outcomes=4 given draws the same policies
+    a = check_objective(builtin.best_of_k, target="best_of_k", k=2, n=3, policies=1, transformer=False)
+    b = check_objective(builtin.best_of_k, target="best_of_k", k=2, n=3, policies=1, outcomes=4, transformer=False)
+    assert a.cases[0]["outcomes"] == b.cases[0]["outcomes"] == 4 and a.to_dict() == b.to_dict()
+
+
 def test_random_policies_are_drawn_until_enough_are_informative():
     rep = check_objective(_thresholded_credit, target=_above, k=1, n=3, policies=4, transformer=False)
     assert rep.ok, str(rep)

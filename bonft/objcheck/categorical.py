@@ -36,7 +36,7 @@ __all__ = ["ToyPolicy", "random_policy", "check_policy", "softmax", "target_grad
 @dataclass
 class ToyPolicy:
     """A categorical policy over V outcomes: ``logits, scores, rewards: (V,)``; ``reference``: outcome
-    index of the reference (gold) response (target ``"best_of_k_sft"`` only)."""
+    index of the reference (gold) response (target ``"best_of_k_sft"`` only; an error with another target)."""
 
     logits: Any
     scores: Any
@@ -69,6 +69,9 @@ def check_policy(j: int, c: Any, t: Target) -> ToyPolicy:
     reference = c.reference
     if t.name == "best_of_k_sft":
         reference = check_int(f"policies[{j}].reference", reference, min=0, max=arrs[0].size - 1)
+    elif reference is not None:
+        raise ValueError(f"policies[{j}].reference={reference!r} has no effect with target {t.name!r}: only target "
+                         f"'best_of_k_sft' uses a reference outcome (log pi_bon(y*)); leave it None")
     return ToyPolicy(*arrs, reference)
 
 

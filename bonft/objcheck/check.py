@@ -102,16 +102,24 @@ def _check_reuse(reuse_shift, clip_ratio) -> tuple[float | None, float | None]:
     return reuse_shift, clip_ratio
 
 
-def check_objective(credit, *, target, k, n, policies=4, outcomes=4, seed=0, transformer=True,
-                    tolerance=1e-6, directions=3, mc_pools=400, time_limit=300.0, reuse_shift=None,
+def _only_with(name: str, value, needs: str, why: str) -> None:
+    """A setting given where it cannot take effect is an error, not ignored."""
+    if value is not None:
+        raise ValueError(f"{name}={value!r} has no effect {needs}: {why}; leave it unset")
+
+
+def check_objective(credit, *, target, k, n, policies=4, outcomes=None, seed=0, transformer=True,
+                    tolerance=1e-6, directions=None, mc_pools=None, time_limit=300.0, reuse_shift=None,
                     clip_ratio=None) -> ObjectiveReport:
     r"""Check that ``credit`` estimates the gradient of ``target`` without bias; report bias and variance.
 
     credit: ``(scores, rewards, *, k) -> w``, ``(B, n), (B, n) -> (B, n)`` (``"best_of_k_sft"``:
     ``(scores, reference_scores, *, k)`` with ``reference_scores: (B,)``); target: ``"best_of_k"``,
     ``"pass_at_k"``, ``"best_of_k_sft"`` or a payoff ``(M, k), (M, k) -> (M,)``; policies: how many
-    informative random categorical policies over ``outcomes`` outcomes, or a list of
-    :class:`bonft.objcheck.ToyPolicy`.
+    informative random categorical policies over ``outcomes`` outcomes (default 4), or a list of
+    :class:`bonft.objcheck.ToyPolicy` (then ``outcomes`` is an error: each policy has its own);
+    directions, mc_pools: finite-difference directions (default 3) and Monte Carlo pools (default 400)
+    of the transformer check, errors with ``transformer=False``.
 
     .. math:: \mathrm{bias} = \sum_{\text{pools}} P(\text{pool}) \sum_i w_i \nabla\log\pi(y_i) - \nabla V_k(\theta)
 
@@ -151,23 +159,30 @@ def check_objective(credit, *, target, k, n, policies=4, outcomes=4, seed=0, tra
     k = check_k(k, n)
     seed = check_int("seed", seed, min=0)
     tolerance = check_positive("tolerance", tolerance)
-    directions = check_int("directions", directions, min=1)
-    mc_pools = check_int("mc_pools", mc_pools, min=2)
+    if not isinstance(transformer, bool):
+        raise TypeError(f"transformer must be a bool, got {type(transformer).__name__} {transformer!r}")
+    if transformer:
+        directions = 3 if directions is None else check_int("directions", directions, min=1)
+        mc_pools = 400 if mc_pools is None else check_int("mc_pools", mc_pools, min=2)
+    else:
+        why = "it sizes the transformer check, which is skipped"
+        _only_with("directions", directions, "with transformer=False", why)
+        _only_with("mc_pools", mc_pools, "with transformer=False", why)
     time_limit = _check_time_limit(time_limit)
     reuse_shift, clip_ratio = _check_reuse(reuse_shift, clip_ratio)
     reuse_rng = np.random.default_rng([seed, 1])  # its own stream: the rest of the check draws as without reuse
-    if not isinstance(transformer, bool):
-        raise TypeError(f"transformer must be a bool, got {type(transformer).__name__} {transformer!r}")
     rng = np.random.default_rng(seed)
     given = isinstance(policies, (list, tuple))
     if given:
         if not policies:
             raise ValueError("policies must not be empty")
+        _only_with("outcomes", outcomes, "with a list of policies",
+                   "it sizes the random policies, and each given ToyPolicy has its own outcomes")
         pols = [check_policy(j, c, t) for j, c in enumerate(policies)]
         requested, V = len(pols), None
     else:
         requested = check_int("policies", policies, min=1)
-        V = check_int("outcomes", outcomes, min=2, max=12)
+        V = 4 if outcomes is None else check_int("outcomes", outcomes, min=2, max=12)
         pols = []
     report = ObjectiveReport(target=t.name, k=k, n=n, tolerance=tolerance, time_limit=time_limit,
                              policies_requested=requested, reuse_shift=reuse_shift, clip_ratio=clip_ratio)
