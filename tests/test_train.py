@@ -1,4 +1,5 @@
 """The trainer end to end on a tiny config: both stages, resume equivalence (Ctrl-C and kill -9)."""
+import dataclasses
 import json
 import os
 import signal
@@ -148,6 +149,54 @@ def test_kill_9_then_resume_is_exact(tmp_path, reference):
     assert load_state(latest_checkpoint(cfg.run_dir))["step"] < 8
     T.train(cfg, resume=True, progress=False)  # in-process: one interpreter start less
     assert_same_weights(final_weights(cfg.run_dir), weights)
+
+
+def test_resume_refuses_a_recipe_that_changes_the_training(tmp_path, reference, monkeypatch):
+    # --resume continues a run with its own settings: a changed objective would mix two runs in one
+    # directory (and rotate the first run's checkpoints away), so it is refused before any step, naming each
+    # changed key with both values; where and how it runs and records may change, a step size (with a
+    # warning), and rl_steps under a constant k (train longer); a refusal leaves the run's files untouched
+    cfg = tiny(tmp_path, "mixed", save_every=0)
+    real = _interrupt_at(monkeypatch, cfg, 6)
+    monkeypatch.setattr(S, "rl_step", real)
+    out = Path(cfg.run_dir)
+    before = {p.name: p.read_bytes() for p in (out / "checkpoints").glob("*/state.pt")}
+    config_before = (out / "config.toml").read_text()
+    changed = tiny(tmp_path, "mixed", save_every=0, objective="reinforce", lr=0.5)
+    with pytest.raises(ValueError, match=r"the recipe changes 1 key\(s\) that shape the training: "
+                                         r"objective: \"pass_at_k\" -> \"reinforce\"\. Resume with"):
+        T.train(changed, resume=True, progress=False)
+    assert {p.name: p.read_bytes() for p in (out / "checkpoints").glob("*/state.pt")} == before
+    assert (out / "config.toml").read_text() == config_before
+    with pytest.raises(ValueError, match=r"k_final: 0 -> 3"):  # k spread over the steps: rl_steps fixed too
+        T.train(tiny(tmp_path, "mixed", save_every=0, k_schedule="linear", k_final=3), resume=True, progress=False)
+    # a new name, checkpoint cadence, more RL steps and a lower lr (as after a non-finite step): resumed, the
+    # step size named in a warning, every step logged once
+    longer = dataclasses.replace(tiny(tmp_path, "mixed", save_every=3, keep_checkpoints=5, rl_steps=6, lr=5e-3),
+                                 name="longer")
+    with pytest.warns(UserWarning, match=r"from step-00000006 with changed step sizes: lr: 0\.01 -> 0\.005"):
+        T.train(longer, resume=True, progress=False)
+    steps = [json.loads(ln)["step"] for ln in (out / "metrics.jsonl").read_text().splitlines() if '"train"' in ln]
+    assert steps == list(range(1, 11))
+
+
+def test_a_training_verifier_that_fails_on_every_sample_stops_the_run_before_the_update(tmp_path, monkeypatch):
+    # a verifier that raises on every sample (here a KeyError, as a missing row field gives) would score every
+    # sample 0: the step would learn nothing from it, and a run would train on the KL anchor alone. The run
+    # stops at the first such step, naming the cause, and keeps the checkpoints written before it
+    from bonft.cli.main import main
+    from bonft.verifiers.scoring import VerifierError
+
+    monkeypatch.chdir(tmp_path)
+    (tmp_path / "broken_grader.py").write_text("def score(prompts, responses):\n    raise KeyError('gold')\n")
+    cfg = tiny(tmp_path, "broken", verifier="broken_grader:score", save_every=0)
+    with pytest.raises(VerifierError, match=r"the training verifier failed on every one of the 16 samples of step 4 "
+                                            r"\(KeyError: 'gold'\), so every sample would be scored 0"):
+        T.train(cfg, progress=False)
+    assert load_state(latest_checkpoint(cfg.run_dir))["step"] == 4  # the warm start's checkpoint, kept
+    recipe = tmp_path / "broken.toml"
+    recipe.write_text(to_toml(tiny(tmp_path, "broken-cli", verifier="broken_grader:score", warm_start_steps=0)))
+    assert main(["train", str(recipe), "--quiet"]) == 2  # a user error, not a traceback
 
 
 def test_refuses_to_overwrite_a_run(tmp_path, reference):

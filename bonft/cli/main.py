@@ -58,6 +58,10 @@ def _user_errors() -> tuple[type, ...]:
         from bonft.trainer.distributed import PeerError
 
         errors.append(PeerError)
+    if "bonft.verifiers.scoring" in sys.modules:  # a verifier that fails on a whole training step
+        from bonft.verifiers.scoring import VerifierError
+
+        errors.append(VerifierError)
     return tuple(errors)
 
 

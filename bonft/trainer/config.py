@@ -643,6 +643,33 @@ def to_toml(c: TrainConfig) -> str:
     return "\n".join(lines) + "\n"
 
 
+# keys a resumed run may change: where and how it runs and records, not what it trains
+RESUMABLE_KEYS = ("name", "run_dir", "device", "threads", "keep_checkpoints", "save_every", "log_every", "plots",
+                  "heldout_samples", "eval_every", "eval_at_start")
+# step sizes a resumed run may lower after a non-finite step (the steps from the checkpoint on use them; a warning)
+RESUME_STEP_KEYS = ("lr", "warm_start_lr", "clip_grad_norm")
+
+
+def resume_changes(saved: TrainConfig, cfg: TrainConfig) -> tuple[list[str], list[str]]:
+    """How ``cfg`` differs from the run's ``saved`` configuration, as ``"key: saved -> new"`` lines:
+    ``(refused, step_sizes)``. ``--resume`` refuses the first (keys that shape the training: task, model,
+    objective, k, n, seeds, sizes) and continues with the second (:data:`RESUME_STEP_KEYS`, e.g. a lower ``lr``
+    after a non-finite step) with a warning.
+
+    A resumed run ends with the weights of an uninterrupted one only when every key that shapes the training
+    is the run's own; :data:`RESUMABLE_KEYS` only move where and how it runs and records. ``rl_steps`` may
+    change (to train longer, or stop earlier) unless a k schedule spreads k over the run's steps.
+    """
+    a, b = saved.to_dict(), cfg.to_dict()
+    free = set(RESUMABLE_KEYS)
+    if cfg.k_schedule == "constant" or cfg.k_final == 0:
+        free.add("rl_steps")
+    changed = [key for key in a if key not in free and a[key] != b.get(key)]
+    line = {key: f"{key}: {_toml_value(a[key])} -> {_toml_value(b.get(key))}" for key in changed}
+    return ([line[key] for key in changed if key not in RESUME_STEP_KEYS],
+            [line[key] for key in changed if key in RESUME_STEP_KEYS])
+
+
 def config_reference() -> str:
     """The markdown table of every config key (used in docs/training.md)."""
     rows = ["| key | default | meaning |", "|---|---|---|"]

@@ -38,6 +38,7 @@ import contextlib
 import json
 import math
 import os
+import warnings
 from pathlib import Path
 from typing import Iterator
 
@@ -55,7 +56,7 @@ from bonft.trainer.checkpoint import (
     save_model,
     set_rng_state,
 )
-from bonft.trainer.config import TrainConfig, to_toml
+from bonft.trainer.config import TrainConfig, load_config, resume_changes, to_toml
 from bonft.trainer.distributed import (
     DistContext,
     barrier,
@@ -235,7 +236,16 @@ def _restore(run: Run, resume: bool) -> tuple[int, dict | None]:
     if run.is_main:
         try:  # a checkpoint error goes to every rank, so none waits out the process-group timeout
             ckpt = latest_checkpoint(out) if resume else None
-        except CheckpointError as e:
+            changed, step_sizes = resume_changes(_saved_config(ckpt), run.cfg) if ckpt is not None else ([], [])
+            if step_sizes and not changed:
+                warnings.warn(f"--resume continues {out} from {ckpt.name} with changed step sizes: "
+                              + "; ".join(step_sizes) + " (the steps from the checkpoint on use them)", stacklevel=2)
+            if changed:
+                problem = (f"--resume continues the run in {out} with its own settings, but the recipe changes "
+                           f"{len(changed)} key(s) that shape the training: " + "; ".join(changed) + ". Resume with "
+                           f"the run's recipe ({out / 'config.toml'}), or start a new run from this checkpoint: "
+                           f"start_from = {str(ckpt)!r} and another --output")
+        except (CheckpointError, ValueError, OSError) as e:  # to every rank, as the problems above
             problem = str(e)
         if resume and ckpt is None and not problem and (out / "summary.json").exists():
             problem = f"--resume: {out} holds a finished run without checkpoints"
@@ -260,6 +270,14 @@ def _restore(run: Run, resume: bool) -> tuple[int, dict | None]:
         with _writing(run, path, "the metrics file"):
             path.write_text("".join(ln + "\n" for ln in kept))
     return start, state
+
+
+def _saved_config(ckpt: Path) -> TrainConfig:
+    """The configuration a checkpoint was written with (its config.toml)."""
+    try:
+        return load_config(ckpt / "config.toml")
+    except (ValueError, OSError) as e:
+        raise ValueError(f"--resume: cannot read the run's configuration {ckpt / 'config.toml'}: {e}") from None
 
 
 def _enter_stage(run: Run, stage: str, state: dict | None) -> None:

@@ -36,7 +36,7 @@ from bonft.trainer.measure import GradientMoments, Stopwatch
 from bonft.trainer.metrics import GRAD_SNR, info_metric
 from bonft.trainer.objectives import OBJECTIVES, Pools, policy_loss, shuffle_pools
 from bonft.trainer.run import Run, Stream, k_at, prompt_batch
-from bonft.verifiers.scoring import score_batch
+from bonft.verifiers.scoring import VerifierError, score_batch
 
 
 # ----------------------------------------------------------------------------- the warm start
@@ -91,6 +91,7 @@ def rl_step(run: Run, step: int, clock: Stopwatch) -> dict:
     slots = np.arange(*shard_bounds(B, rank=run.rank, world_size=run.world))  # positions in the global batch
     moments = GradientMoments() if cfg.snr_every and (step - cfg.warm_start_steps) % cfg.snr_every == 0 else None
     acc: dict = {}
+    reason = ""  # this rank's first reason of a failed verifier call
     kept: list = []  # updates_per_batch > 1: what each micro-batch's later updates reuse
     for mb, sl in zip(np.array_split(idx, cfg.grad_accum), np.array_split(slots, cfg.grad_accum)):
         ex = [run.train[i] for i in mb]
@@ -101,8 +102,9 @@ def rl_step(run: Run, step: int, clock: Stopwatch) -> dict:
                          seeds=[Stream.SAMPLES.for_prompt(cfg.seed, step=step, slot=int(j)) for j in sl])
         with clock("score"):
             refs = [e.reference for e in ex] if obj.reference else None
-            pools, failed = _score(run, prompts, smp.texts, refs,
-                                   [Stream.PLACEBO.for_prompt(cfg.seed, step=step, slot=int(j)) for j in sl])
+            pools, failed, why = _score(run, prompts, smp.texts, refs,
+                                        [Stream.PLACEBO.for_prompt(cfg.seed, step=step, slot=int(j)) for j in sl])
+            reason = reason or why
         rows = (smp.prompt_tokens, smp.prompt_valid, smp.response_tokens, smp.response_valid)
         reference_rows = _reference_pairs(run, mb) if obj.reference else None
         with clock("credit"):  # float64 on the host; the (b, n) credit is the one thing that goes to the device
@@ -129,6 +131,12 @@ def rl_step(run: Run, step: int, clock: Stopwatch) -> dict:
                          *((info_metric(key), float(v) * b / B) for key, v in info.items())]:
             acc[key] = acc.get(key, 0.0) + val
     acc = reduce_metrics(acc, run.ctx)  # per-rank parts of global means -> their sum
+    if acc["verifier_failures"] >= B * n:  # the same sum on every rank: all stop, before the update
+        raise VerifierError(
+            f"the training verifier failed on every one of the {B * n} samples of step {step} "
+            f"({reason or 'on another rank'}), so every sample would be scored 0 and the step would learn "
+            "nothing from the verifier; fix it (bonft check-verifier tests one on a few samples) and continue "
+            "with --resume from the last checkpoint")
     if kept:
         acc.update(_reuse(run, kept, acc["loss"], clock))
     acc["k"] = k
@@ -175,8 +183,9 @@ def _host_mean(a) -> float:
 
 
 def _score(run: Run, prompts: list[str], texts: list[list[str]], references: list[str] | None,
-           seeds: list[int]) -> tuple[Pools, int]:
-    """Score the pools -> host float64 :class:`Pools` (and the verifier's failure count); placebo-shuffled if asked."""
+           seeds: list[int]) -> tuple[Pools, int, str]:
+    """Score the pools -> host float64 :class:`Pools`, the verifier's failure count and its first failure's reason
+    ("" when none failed); placebo-shuffled if asked."""
     cfg, n = run.cfg, len(texts[0])
     v = score_batch(run.verifiers["train"], [p for p in prompts for _ in range(n)], [s for row in texts for s in row])
     scores = np.asarray(v.scores, dtype=np.float64).reshape(len(prompts), n)  # row b*n + i is sample i of prompt b
@@ -196,7 +205,7 @@ def _score(run: Run, prompts: list[str], texts: list[list[str]], references: lis
         reference = np.asarray(score_batch(run.verifiers["train"], prompts, references).scores, dtype=np.float64)
     pools = Pools(scores=scores, rewards=rewards, correct=(rewards >= cfg.correct_threshold).astype(np.float64),
                   reference_scores=reference, answers=answers)
-    return pools, v.n_failed
+    return pools, v.n_failed, next((r for r, f in zip(v.reasons, v.failed) if f and r), "")
 
 
 def _pool_loss(run: Run, model, rows: tuple, reference_rows: tuple | None, credit: torch.Tensor,
