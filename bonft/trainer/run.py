@@ -144,7 +144,11 @@ def build_run(cfg: TrainConfig, *, training: bool = True) -> Run:
     if cfg.task == "user" and cfg.task_params.get("chat_template") is True and "tokenizer" not in cfg.task_params:
         extra["tokenizer"] = tokenizer  # the chat template of the model that samples
     task = get_task(cfg.task, **extra, **cfg.task_params)
-    train, held = task.split(n_train=cfg.train_prompts, n_eval=cfg.heldout_prompts, seed=cfg.seed)
+    try:
+        train, held = task.split(n_train=cfg.train_prompts, n_eval=cfg.heldout_prompts, seed=cfg.seed)
+    except ValueError as e:  # the task names its own arguments: n_train is train_prompts, n_eval heldout_prompts
+        raise ValueError(f"train_prompts = {cfg.train_prompts} and heldout_prompts = {cfg.heldout_prompts} do not fit "
+                         f"task {cfg.task!r} ({e}); lower them in the recipe") from None
     everything = list(train) + list(held)
     roles = build_roles(task, everything, verifier=cfg.verifier, verifier_params=cfg.verifier_params,
                         eval_verifier=cfg.eval_verifier, eval_verifier_params=cfg.eval_verifier_params, device=str(device))
