@@ -155,7 +155,37 @@ def test_one_run_per_training_seed_gives_a_student_t_interval_over_seeds(tmp_pat
     assert main(["compare", ",".join(runs["base"]), ",".join(runs["tuned"][:2])]) == 2
     assert "every input must list the same number of runs (one per training seed), got [3, 2]" in capsys.readouterr().err
     assert main(["compare", ",".join(runs["base"]), ",".join(runs["tuned"][::-1]), "--names", "a,b"]) == 2
-    assert "training seed 1 of 3: b and a give prompt 0 different texts ('seed 2 prompt 0' vs 'seed 0 prompt 0'" in capsys.readouterr().err
+    assert "training seed 1 (1 of 3): b and a give prompt 0 different texts ('seed 2 prompt 0' vs 'seed 0 prompt 0'" in capsys.readouterr().err
+
+
+def test_run_directories_are_labelled_by_their_recorded_training_seeds(tmp_path, capsys):
+    """Runs trained with seeds 7 and 9 (their config.toml) are labelled 7 and 9, not by position; runs whose
+    s-th members record different seeds keep the positions. With 2 seeds, t_{0.975, 1} = 12.706 (a t table)."""
+    runs = {"base": [], "tuned": []}
+    for seed, extra in ((7, 4), (9, 8)):
+        texts = [f"seed {seed} prompt {q}" for q in range(10)]
+        for name, rows in (("base", [[1, 0, 0, 0]] * 10),
+                           ("tuned", [[1, 1, 0, 0]] * (extra // 2) + [[1, 0, 0, 0]] * (10 - extra // 2))):
+            run = tmp_path / f"{name}-s{seed}"
+            run.mkdir()
+            write(run / "heldout_samples.jsonl", rows, [[0, 0, 0, 0]] * 10, texts=texts)
+            (run / "config.toml").write_text(f'name = "{name}"\nseed = {seed}\n')
+            runs[name].append(str(run))
+    out = tmp_path / "c.json"
+    assert main(["compare", ",".join(runs["base"]), ",".join(runs["tuned"]), "--ks", "1", "--names", "base,tuned",
+                 "--json", str(out)]) == 0
+    text = capsys.readouterr().out
+    assert "training seeds 7, 9 (each run's config.toml): the runs of one seed paired; 10, 10 prompts" in text
+    assert "Mean over 2 seeds (seeds 7, 9)" in text and "12.7 standard errors" in text
+    doc = json.loads(out.read_text())
+    assert doc["seed_labels"] == [7, 9]
+    # per-seed pass@1 differences 2/40 and 4/40: mean 0.075, sample sd 0.025 * sqrt(2), standard error 0.025
+    d, lo, hi = doc["differences"]["base"]["tuned"][0]
+    assert d == pytest.approx(0.075, abs=1e-12)
+    assert hi - d == pytest.approx(12.706 * 0.025, abs=1e-3) and d - lo == pytest.approx(12.706 * 0.025, abs=1e-3)
+    # the s-th runs record different seeds (7 beside 9): labelled by position
+    assert main(["compare", ",".join(runs["base"]), ",".join(runs["tuned"][::-1]), "--names", "a,b"]) == 2
+    assert "training seed 1 (1 of 2): b and a give prompt 0 different texts" in capsys.readouterr().err
 
 
 def test_inputs_sampled_at_different_temperatures_are_named(tmp_path, capsys):

@@ -4,6 +4,12 @@ from __future__ import annotations
 import argparse
 import math
 import os
+import sys
+
+if sys.version_info >= (3, 11):
+    import tomllib
+else:  # pragma: no cover - Python 3.10
+    import tomli as tomllib
 
 from bonft.cli.options import add_plot_dir, check_sizes, parse_list, write_json_atomic
 
@@ -42,6 +48,28 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--seed", type=int, default=0, help="bootstrap seed (default: 0)")
     p.add_argument("--json", metavar="OUT.json", default=None, help="also write the means and differences as JSON")
     add_plot_dir(p, "compare_curves.png (each input's pass@k and its paired difference from the baseline, against k)")
+
+
+def _recorded_seed(path: str) -> int | None:
+    """The training seed a run directory's config.toml records; None for a samples file or without one."""
+    try:
+        with open(os.path.join(path, "config.toml"), "rb") as f:
+            seed = tomllib.load(f).get("seed", 0)  # a run's config.toml omits no key; 0 is the default
+    except (OSError, tomllib.TOMLDecodeError):
+        return None
+    return seed if isinstance(seed, int) and not isinstance(seed, bool) else None
+
+
+def _seed_labels(groups: list[list[str]]) -> list[int] | None:
+    """Each seed position's recorded training seed, where the s-th runs of every input record one seed and the
+    positions' seeds differ; else None (the positions 1..S label them)."""
+    labels = []
+    for runs in zip(*groups):
+        seeds = {_recorded_seed(r) if os.path.isdir(r) else None for r in runs}
+        if len(seeds) != 1 or None in seeds:
+            return None
+        labels.append(seeds.pop())
+    return labels if len(set(labels)) == len(labels) else None
 
 
 def _resolve(path: str) -> str:
@@ -139,14 +167,16 @@ def run(args: argparse.Namespace) -> int:
     base = args.baseline if args.baseline is not None else names[0]
     if base not in names:
         raise ValueError(f"--baseline must be one of the inputs' names {names}, got {base!r}")
+    recorded = _seed_labels(groups) if S > 1 else None
+    labels = recorded or list(range(1, S + 1))  # the runs' own seeds where they record them, else positions
     per_seed, no_text, P, temps = {}, set(), [], {}
     for s in range(S):
         inputs = [_pools(n, p[s], args) for n, p in zip(names, paths)]
         try:
             _check_paired(names, inputs)
         except ValueError as e:
-            raise ValueError(f"training seed {s + 1} of {S}: {e}" if S > 1 else str(e)) from None
-        per_seed[s + 1] = _paired_pools(names, inputs)
+            raise ValueError(f"training seed {labels[s]} ({s + 1} of {S}): {e}" if S > 1 else str(e)) from None
+        per_seed[labels[s]] = _paired_pools(names, inputs)
         no_text |= {n for n, inp in zip(names, inputs) if inp[3] is None}
         for n, inp in zip(names, inputs):
             temps.setdefault(n, set()).add(inp[4])
@@ -158,15 +188,19 @@ def run(args: argparse.Namespace) -> int:
     curves = {s: {name: per_prompt_curves(p, ks=ks) for name, p in pools.items()} for s, pools in per_seed.items()}
     intervals = S > 1 or P[0] >= MIN_BOOT_PROMPTS
     if S == 1:
-        comp = paired_comparison(curves[1], ks=ks, baselines=[base], n_boot=args.n_boot, seed=args.seed,
+        comp = paired_comparison(curves[labels[0]], ks=ks, baselines=[base], n_boot=args.n_boot, seed=args.seed,
                                  confidence=args.confidence, intervals=intervals)
     else:
         comp = seed_comparison(curves, ks=ks, baselines=[base], confidence=args.confidence)
     for name, runs in zip(names, paths):
         at = sorted(t for t in temps[name] if t is not None)
         print(f"{name}: {', '.join(runs)}" + (f" (temperature {', '.join(f'{t:g}' for t in at)})" if at else ""))
-    if S > 1:
-        print(f"training seed s = 1..{S}: the s-th run of every input; {', '.join(map(str, P))} prompts")
+    if S > 1 and recorded:
+        print(f"training seeds {', '.join(map(str, recorded))} (each run's config.toml): the runs of one seed paired; "
+              f"{', '.join(map(str, P))} prompts")
+    elif S > 1:
+        print(f"training seed s = 1..{S}: the s-th run of every input (the runs record no common seed); "
+              f"{', '.join(map(str, P))} prompts")
     print()
     caption = f"pass@k: best '{args.reward_field}' among k; best-of-k: the '{args.reward_field}' of the sample '{args.score_field}' ranks first"
     print(paired_table(comp, n_prompts=P[0], picker=args.score_field, confidence=args.confidence, caption=caption))
@@ -185,7 +219,9 @@ def run(args: argparse.Namespace) -> int:
               "more: give each input one run per seed, A1,A2,A3 B1,B2,B3).")
     else:
         print(f"Intervals: Student-t over the {S} training seeds of each seed's mean over its prompts (and of each "
-              "seed's paired difference): they cover the training's noise as well as the evaluation's.")
+              "seed's paired difference): they cover the training's noise as well as the evaluation's."
+              + (" With 2 seeds the interval is the mean +- 12.7 standard errors at 95% (t with 1 degree of freedom) "
+                 "and may pass 0 or 1: 3 seeds or more give a usable one." if S == 2 else ""))
 
     if args.json:
         def plain(cells):
@@ -193,7 +229,7 @@ def run(args: argparse.Namespace) -> int:
 
         write_json_atomic(args.json, {
             "inputs": {n: [os.path.abspath(x) for x in runs] for n, runs in zip(names, paths)}, "baseline": base,
-            "ks": ks, "n_prompts": P, "training_seeds": S, "interval": "bootstrap over prompts" if S == 1 else
+            "ks": ks, "n_prompts": P, "training_seeds": S, "seed_labels": labels, "interval": "bootstrap over prompts" if S == 1 else
             "Student-t over training seeds", "confidence": args.confidence, "n_boot": args.n_boot, "seed": args.seed,
             "intervals_valid": intervals, "score_field": args.score_field, "reward_field": args.reward_field,
             "columns": [label if kind == "pass" else f"{args.score_field} {label}" for label, kind, _ in comp["columns"]],
