@@ -120,6 +120,15 @@ def _log_gain(p: torch.Tensor, s: torch.Tensor, k: int) -> tuple[torch.Tensor, t
 # ------------------------------------------------------------------ public API
 
 
+def _check_scaled(top: torch.Tensor, T: float) -> None:
+    """Each row's largest logit over the temperature must stay finite: past float64's range softmax is NaN."""
+    bad = ~torch.isfinite(top / T)
+    if bool(bad.any()):
+        worst = float(top[bad].abs().max())
+        raise ValueError(f"temperature must keep logits / temperature finite in float64 (|value| <= 1.8e308), got "
+                         f"temperature={T!r} with a row's largest logit {worst:g}: raise the temperature or shift the logits")
+
+
 def softmax_policy(logits, *, temperature=1.0):
     r"""Sampling policy of a softmax at a temperature.
 
@@ -128,7 +137,8 @@ def softmax_policy(logits, *, temperature=1.0):
     .. math:: \pi(v) = \frac{\exp(l_v / T)}{\sum_u \exp(l_u / T)}
 
     Entries of ``-inf`` (masked outcomes) get probability 0; each row needs at
-    least one finite logit. float64, numpy in -> numpy out, torch in -> torch
+    least one finite logit, and its largest logit / temperature must stay within
+    float64 (a ``ValueError`` otherwise). float64, numpy in -> numpy out, torch in -> torch
     out (differentiable).
 
     References: Bridle 1990 (softmax); temperature sampling is common practice.
@@ -144,6 +154,7 @@ def softmax_policy(logits, *, temperature=1.0):
         raise ValueError(f"logits must be finite or -inf, got {float(zd[tuple(bad)])} at index {tuple(bad)}")
     if bool((zd == -math.inf).all(-1).any()):
         raise ValueError("logits must have at least one finite entry per row, got a row of all -inf")
+    _check_scaled(zd.max(-1).values, T)
     probs = torch.softmax(z / T, dim=-1)
     return returned_like(probs, not is_tensor(logits))
 

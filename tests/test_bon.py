@@ -347,6 +347,8 @@ def test_numpy_and_torch_agree_and_kinds_follow_probs():
     # temperature divides the logits (softmax definition)
     np.testing.assert_allclose(softmax_policy(np.array([0.0, 2 * math.log(3.0)]), temperature=2.0), [0.25, 0.75])
     np.testing.assert_allclose(softmax_policy(np.array([0.0, -np.inf])), [1.0, 0.0])
+    # a logit whose quotient underflows to -inf beside a finite largest one has probability exp(-1e309) = 0
+    np.testing.assert_array_equal(softmax_policy(np.array([-1e308, 0.0]), temperature=0.1), [0.0, 1.0])
 
 
 # --------------------------------------------------------------- bad input
@@ -381,6 +383,13 @@ S3 = np.array([0.0, 1.0, 2.0])
         (lambda: softmax_policy(np.zeros(3), temperature="hot"), TypeError, "temperature must be a real number"),
         (lambda: softmax_policy(np.array([0.0, np.nan]), temperature=1.0), ValueError, "logits must be finite or -inf"),
         (lambda: softmax_policy(np.array([[0.0, 1.0], [-np.inf, -np.inf]])), ValueError, "at least one finite entry"),
+        (lambda: softmax_policy([1.0, 2.0], temperature=1e-320), ValueError,
+         r"temperature must keep logits / temperature finite in float64 .*got temperature=1e-320 with a row's largest "
+         r"logit 2"),
+        (lambda: softmax_policy([1e308, -1e308], temperature=0.1), ValueError,
+         r"got temperature=0.1 with a row's largest logit 1e\+308"),
+        (lambda: softmax_policy([[0.0, 0.0], [-3.0, -1.0]], temperature=1e-310), ValueError,
+         r"got temperature=1e-310 with a row's largest logit 1: raise the temperature"),
     ],
 )
 def test_bad_input(call, exc, match):
