@@ -41,6 +41,12 @@ def make(**kw):
         ({"momentum": 1.0, "optimizer": "sgd"}, ValueError, r"momentum must be in \[0, 1\), got momentum=1.0"),
         ({"placebo": 1}, TypeError, r"placebo must be true or false, got int 1"),
         ({"snr_every": -1}, ValueError, r"snr_every must be >= 0, got"),
+        # keys that cannot take effect with the others
+        ({"k_final": 2}, ValueError, r"k_final applies to k_schedule 'linear' or 'geometric' \(with 'constant', k stays 8\), "
+                                     r"got k_final=2 with k_schedule='constant'"),
+        ({"optimizer": "sgd", "adam_eps": 1e-3}, ValueError, r"adam_eps applies to optimizer='adamw' only, got adam_eps=0.001"),
+        ({"task": "user", "prompts_file": "x.jsonl"}, ValueError,
+         r"prompts_file applies to task = 'jsonl' only \(task 'user' takes no prompts file; your own data goes in task_params.data\)"),
     ],
 )
 def test_bad_values_name_the_key(kw, exc, match):

@@ -319,6 +319,8 @@ def validate(c: TrainConfig) -> None:
     check_fraction("momentum", c.momentum, open_high=True)
     if c.momentum and c.optimizer != "sgd":
         raise ValueError(f"momentum applies to optimizer='sgd' only, got momentum={c.momentum} with optimizer={c.optimizer!r}")
+    if c.optimizer == "sgd" and not _is_default(c, "adam_eps"):
+        raise ValueError(f"adam_eps applies to optimizer='adamw' only, got adam_eps={c.adam_eps} with optimizer='sgd'")
     check_choice("k_schedule", c.k_schedule, K_SCHEDULES)
     check_choice("token_reduction", c.token_reduction, TOKEN_REDUCTIONS)
     check_choice("reward_source", c.reward_source, ("rewards", "scores"))
@@ -332,6 +334,9 @@ def validate(c: TrainConfig) -> None:
         raise ValueError(f"k_final must be <= n (n={c.n}), got k_final={c.k_final}")
     if c.k_schedule != "constant" and c.k_final < 1:
         raise ValueError(f"k_schedule={c.k_schedule!r} needs k_final >= 1, got k_final={c.k_final}")
+    if c.k_schedule == "constant" and c.k_final:
+        raise ValueError(f"k_final applies to k_schedule 'linear' or 'geometric' (with 'constant', k stays {c.k}), "
+                         f"got k_final={c.k_final} with k_schedule='constant'")
     if c.start_from:
         for name in MODEL_KEYS:
             if getattr(c, name) != FIELDS[name].default:
@@ -375,6 +380,10 @@ def validate(c: TrainConfig) -> None:
         raise ValueError(f"eval_prompts must be <= heldout_prompts (heldout_prompts={c.heldout_prompts}), got eval_prompts={c.eval_prompts}")
     if c.task == "jsonl" and not c.prompts_file:
         raise ValueError("prompts_file must name a JSONL file when task = 'jsonl', got ''")
+    if c.task != "jsonl" and c.prompts_file:
+        where = "; your own data goes in task_params.data" if c.task == "user" else ""
+        raise ValueError(f"prompts_file applies to task = 'jsonl' only (task {c.task!r} takes no prompts file{where}), "
+                         f"got prompts_file={c.prompts_file!r}")
     if c.warm_start_steps == 0 and c.rl_steps == 0 and not c.start_from:
         raise ValueError("nothing to train: warm_start_steps and rl_steps are both 0 (set one, e.g. --set rl_steps=100)")
     check_task_sizes(c)
