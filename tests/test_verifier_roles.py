@@ -64,6 +64,23 @@ def test_user_function_verifier_is_the_default_eval_verifier_and_must_give_0_1(t
     check_eval_rewards(np.array([0.3]), named)  # an evaluation verifier named by the user is not held to 0/1
 
 
+def test_unit_tests_read_the_tasks_tests_field_unless_their_field_knob_names_another(tmp_path, monkeypatch):
+    # the tests live in a column named 'checks': task_params.tests_field = "checks" is enough for unit_tests
+    (tmp_path / "any_grader_roles.py").write_text("def grade(prompts, responses):\n    return [1.0] * len(prompts)\n")
+    monkeypatch.chdir(tmp_path)
+    monkeypatch.syspath_prepend(str(tmp_path))
+    rows = [{"q": r["q"], "checks": r["tests"]} for r in ROWS]
+    task = user_task(tmp_path, rows, tests_field="checks")
+    roles = build_roles(task, task.examples, verifier="any_grader_roles:grade", eval_verifier="unit_tests",
+                        eval_verifier_params={"wall_time": 3.0})
+    # by hand: jars() == 4 passes the first prompt's test and fails the second's (8)
+    assert roles.eval_verifier(["jars: 2 + 2", "jars: 3 + 5"], ["def jars(): return 4"] * 2).scores.tolist() == [1.0, 0.0]
+    # a field knob of its own wins: 'tests' is no column of these rows, so the error names it
+    with pytest.raises(ValueError, match=r"field 'tests' is missing, and verifier UnitTests needs it"):
+        build_roles(task, task.examples, verifier="any_grader_roles:grade", eval_verifier="unit_tests",
+                    eval_verifier_params={"field": "tests"})
+
+
 def test_exact_needs_answers_and_row_verifiers_need_rows(tmp_path):
     task = user_task(tmp_path)
     with pytest.raises(ValueError, match=r"the exact verifier compares each response with an answer, but answer_field is not set"):

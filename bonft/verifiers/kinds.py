@@ -35,11 +35,12 @@ def make_verifier(spec: str, params: dict | None = None, *, key: str = "verifier
     params = dict(params or {})
     if spec in VERIFIER_KINDS:
         kind = VERIFIER_KINDS[spec]
-        if kind is RewardModel and device is not None:
-            params.setdefault("device", device)
         knobs = [p for p in inspect.signature(kind.__init__).parameters if p not in ("self", "runner_options")]
         if kind is RewardModel and "path" not in params:
-            raise ValueError(f"{key} = 'reward_model' needs {key}_params.path, the model directory; got knobs {sorted(params)}")
+            raise ValueError(f"{key} = 'reward_model' needs {key}_params.path, the model directory; got "
+                             + (f"knobs {sorted(params)}" if params else f"no {key}_params"))
+        if kind is RewardModel and device is not None:
+            params.setdefault("device", device)
         try:
             return kind(**params)
         except TypeError as e:

@@ -95,6 +95,9 @@ def _make(task: Any, examples: Sequence[Any], key: str, spec: str, params: dict,
         if proxy is None:
             raise ValueError(f"{key} = 'proxy' needs a task with a proxy verifier; task {getattr(task, 'name', task)!r} has none")
         return proxy
+    tests_field = (getattr(task, "params", None) or {}).get("tests_field")
+    if spec == "unit_tests" and tests_field and "field" not in params:  # the task's tests column, unless named here
+        params = {**params, "field": tests_field}
     ver = make_verifier(spec, params, key=key, device=device)
     if hasattr(task, "bind_verifier"):
         return task.bind_verifier(ver, examples)
