@@ -10,7 +10,7 @@ Written by ``bonft sample``, read by ``bonft estimate`` and ``bonft plan``::
 - ``answer`` (str, int or null, optional): the final answer extracted from the response, the key that
   majority and weighted vote count (``bonft.strategies``); surface forms of one answer share it;
   null (no answer could be extracted) votes alone: it gets a key of its own,
-- ``temperature`` (number, optional), ``n_tokens`` (int, optional), ``response`` (str, optional;
+- ``temperature`` (number >= 0, optional), ``n_tokens`` (int >= 0, optional), ``response`` (str, optional;
   never read back here, so files with long responses load as fast as short ones),
 - ``sample`` (int or str, optional): the sample's index in its prompt's pool; with it, identical
   samples are told apart and only a repeated (prompt, temperature, sample) counts as a repeated row,
@@ -36,7 +36,7 @@ import os
 import tempfile
 import warnings
 from dataclasses import dataclass
-from typing import Any, Iterable
+from typing import Any, Iterable, Mapping, Sequence
 
 import numpy as np
 
@@ -191,7 +191,7 @@ def read_samples(
 
     ``prompt_field``/``score_field``/``reward_field`` are required on every line;
     ``temperature_field``/``tokens_field``/``answer_field`` are optional but, when present, must be
-    on every line. ``text_field`` (e.g. ``"prompt"``; default None: not read) fills ``prompts`` when the
+    on every line (temperatures and token counts >= 0). ``text_field`` (e.g. ``"prompt"``; default None: not read) fills ``prompts`` when the
     field is there, a string on every line. Raises ``FileNotFoundError`` for a missing file and
     ``ValueError`` (``samples.jsonl line 17: ...``) for a malformed one: bad JSON,
     JSON nested too deeply, or bytes that are not UTF-8.
@@ -242,6 +242,10 @@ def read_samples(
     temps = _column(name, rows, numbers, temperature_field, "temperature_field", required=False)
     if temps is not None:
         temps = _numbers(name, temps, numbers, temperature_field, allow_bool=False)
+        if (temps < 0).any():
+            i = int(np.flatnonzero(temps < 0)[0])
+            raise ValueError(f"{name} line {numbers[i]}: field {temperature_field!r} must be >= 0 (a sampling "
+                             f"temperature), got {float(temps[i])}")
     toks = _column(name, rows, numbers, tokens_field, "tokens_field", required=False)
     if toks is not None:
         toks = _numbers(name, toks, numbers, tokens_field, allow_bool=False, integer=True)
@@ -279,22 +283,86 @@ def read_samples(
 # ----------------------------------------------------------------------------- writing
 
 
+# the optional fields read_samples reads (``prompt`` only with text_field="prompt"): on every row or on none
+_OPTIONAL = ("temperature", "n_tokens", "answer", "sample", "prompt")
+
+
+def _number(i: int, key: str, v: Any, *, allow_bool: bool) -> None:
+    """A JSON number read_samples takes: finite, within float64 (bools only where allowed)."""
+    if (isinstance(v, bool) and not allow_bool) or not isinstance(v, (int, float)):
+        raise TypeError(f"rows[{i}][{key!r}] must be a number, got {type(v).__name__} {v!r}")
+    if isinstance(v, int) and not isinstance(v, bool):
+        try:
+            float(v)
+        except OverflowError:
+            raise ValueError(f"rows[{i}][{key!r}] must fit in a float64 (|x| < 1.8e308), got an integer of "
+                             f"{v.bit_length()} bits") from None
+    elif not math.isfinite(v):
+        raise ValueError(f"rows[{i}][{key!r}] must be finite, got {v!r}")
+
+
 def _check_row(i: int, row: Any) -> None:
+    """Refuse, naming the row and field, whatever :func:`read_samples` would refuse in this row."""
     if not isinstance(row, dict):
         raise TypeError(f"rows[{i}] must be a dict, got {type(row).__name__}")
     for key in ("prompt_id", "score", "reward"):
         if key not in row:
-            raise ValueError(f"rows[{i}] must have the field {key!r}, got fields {sorted(row)}")
+            raise ValueError(f"rows[{i}] must have the field {key!r}, got fields {sorted(map(str, row))}")
     pid = _plain(row["prompt_id"])
     if isinstance(pid, bool) or not isinstance(pid, (str, int)):
         raise TypeError(f"rows[{i}]['prompt_id'] must be a str or int, got {type(pid).__name__}")
-    for key in ("score", "reward", "temperature"):
-        if key in row:
-            v = _plain(row[key])
-            if not isinstance(v, (int, float)) or (key == "score" and isinstance(v, bool)):
-                raise TypeError(f"rows[{i}][{key!r}] must be a number, got {type(v).__name__} {v!r}")
-            if not math.isfinite(v):
-                raise ValueError(f"rows[{i}][{key!r}] must be finite, got {v!r}")
+    _number(i, "score", _plain(row["score"]), allow_bool=False)
+    _number(i, "reward", _plain(row["reward"]), allow_bool=True)
+    if "temperature" in row:
+        t = _plain(row["temperature"])
+        _number(i, "temperature", t, allow_bool=False)
+        if t < 0:
+            raise ValueError(f"rows[{i}]['temperature'] must be >= 0 (a sampling temperature), got {t!r}")
+    if "n_tokens" in row:
+        n = _plain(row["n_tokens"])
+        if isinstance(n, bool) or not isinstance(n, int):
+            raise TypeError(f"rows[{i}]['n_tokens'] must be an int, got {type(n).__name__} {n!r}")
+        if not 0 <= n < 2**63:
+            raise ValueError(f"rows[{i}]['n_tokens'] must be >= 0 and < 2**63 (a token count), got {n}")
+    if "answer" in row:
+        a = _plain(row["answer"])
+        if a is not None and (isinstance(a, bool) or not isinstance(a, (str, int))):
+            raise TypeError(f"rows[{i}]['answer'] must be a str, an int or None, got {type(a).__name__} {a!r}")
+    if "sample" in row:
+        v = _plain(row["sample"])
+        if isinstance(v, bool) or not isinstance(v, (str, int)):
+            raise TypeError(f"rows[{i}]['sample'] must be an int or a str (the sample's index in its pool), "
+                            f"got {type(v).__name__} {v!r}")
+    if "prompt" in row and not isinstance(row["prompt"], str):
+        raise TypeError(f"rows[{i}]['prompt'] must be a str (the prompt's text), got {type(row['prompt']).__name__}")
+
+
+class _RowCheck:
+    """Rows checked one by one (a generator of rows is never held in memory whole): each as :func:`_check_row`,
+    and each with the optional fields the first row has, no more, no fewer."""
+
+    def __init__(self) -> None:
+        self.count = 0
+        self.optional: set[str] = set()
+
+    def __call__(self, row: Any) -> None:
+        i = self.count
+        _check_row(i, row)
+        have = {key for key in _OPTIONAL if key in row}
+        if i == 0:
+            self.optional = have
+        elif have != self.optional:
+            key = next(k for k in _OPTIONAL if (k in have) != (k in self.optional))
+            if key in self.optional:
+                raise ValueError(f"rows[{i}] must have the field {key!r} as rows[0] has (read_samples refuses a field "
+                                 f"on some rows only), got fields {sorted(map(str, row))}")
+            raise ValueError(f"rows[{i}] has the field {key!r}, which rows[0] lacks (read_samples refuses a field "
+                             f"on some rows only); give it to every row or to none")
+        self.count += 1
+
+    def finish(self) -> None:
+        if not self.count:
+            raise ValueError("rows must hold at least one sample, got none (read_samples refuses an empty file)")
 
 
 def _plain(v: Any) -> Any:
@@ -311,12 +379,26 @@ def _json_default(v: Any) -> Any:
 def write_samples(path, rows: Iterable[dict]) -> int:
     """Write ``rows`` (dicts with at least prompt_id, score, reward) as JSONL; returns the row count.
 
-    numpy scalars are written as plain numbers. Atomic: rows go to a temporary
+    numpy scalars are written as plain numbers. A row :func:`read_samples` would
+    refuse raises (``rows[12]['score'] must be finite, got nan``), as do no rows
+    at all and an optional field (temperature, n_tokens, answer, sample, prompt)
+    on some rows only; a list of rows is checked whole before anything is written,
+    a generator row by row (it is never held in memory whole). Atomic: rows go to a temporary
     file in the same folder, which replaces ``path`` only once every row is
-    written and flushed. A bad row raises (``rows[12]['score'] must be finite,
-    got nan``) and leaves ``path`` untouched.
+    written and flushed; a failure leaves ``path`` untouched.
     """
     path = os.fspath(path)
+    if isinstance(rows, (str, bytes, Mapping)):
+        raise TypeError(f"rows must be an iterable of dicts, got {type(rows).__name__}"
+                        + (" (wrap a single row in a list)" if isinstance(rows, Mapping) else ""))
+    if not isinstance(rows, Iterable):
+        raise TypeError(f"rows must be an iterable of dicts, got {type(rows).__name__}")
+    check = _RowCheck()
+    whole = isinstance(rows, Sequence)  # a list is checked whole first; a generator (not held whole) row by row
+    if whole:
+        for row in rows:
+            check(row)
+        check.finish()
     folder = os.path.dirname(os.path.abspath(path))
     fd, tmp = tempfile.mkstemp(prefix=".samples-", suffix=".tmp", dir=folder)
     count = 0
@@ -324,12 +406,14 @@ def write_samples(path, rows: Iterable[dict]) -> int:
         with os.fdopen(fd, "w", encoding="utf-8") as f:
             encode = json.JSONEncoder(separators=(",", ":"), allow_nan=False, default=_json_default).encode
             for i, row in enumerate(rows):
-                _check_row(i, row)
+                if not whole:
+                    check(row)  # before the row is written
                 try:
                     f.write(encode(row) + "\n")
                 except (TypeError, ValueError) as e:
                     raise type(e)(f"rows[{i}] cannot be written as JSON: {e}") from None
                 count += 1
+            check.finish()
             f.flush()
             os.fsync(f.fileno())
         os.replace(tmp, path)

@@ -210,3 +210,59 @@ def test_identical_samples_with_a_sample_index_are_not_repeated_rows(tmp_path):
         assert len(read_samples(write_lines(tmp_path / "temps.jsonl", other_t))) == 8
     with pytest.raises(ValueError, match=r"line 1: field 'sample' must be an integer or a string .* got 0.5"):
         read_samples(write_lines(tmp_path / "bad.jsonl", [rows[0].replace('"sample": 0', '"sample": 0.5')]))
+
+
+@pytest.mark.parametrize("extra, line, err, match", [
+    ({"n_tokens": -3}, '"n_tokens":-3', ValueError, r"rows\[1\]\['n_tokens'\] must be >= 0 .*got -3"),
+    ({"n_tokens": 2.5}, '"n_tokens":2.5', TypeError, r"rows\[1\]\['n_tokens'\] must be an int, got float 2.5"),
+    ({"n_tokens": 2**63}, f'"n_tokens":{2**63}', ValueError, r"rows\[1\]\['n_tokens'\] must be >= 0 and < 2\*\*63"),
+    ({"n_tokens": True}, '"n_tokens":true', TypeError, r"rows\[1\]\['n_tokens'\] must be an int, got bool"),
+    ({"answer": 1.5}, '"answer":1.5', TypeError, r"rows\[1\]\['answer'\] must be a str, an int or None, got float"),
+    ({"answer": True}, '"answer":true', TypeError, r"rows\[1\]\['answer'\] must be a str, an int or None, got bool"),
+    ({"sample": True}, '"sample":true', TypeError, r"rows\[1\]\['sample'\] must be an int or a str .*got bool"),
+    ({"sample": 1.5}, '"sample":1.5', TypeError, r"rows\[1\]\['sample'\] must be an int or a str"),
+    ({"temperature": -1}, '"temperature":-1', ValueError, r"rows\[1\]\['temperature'\] must be >= 0 .*got -1"),
+    ({"temperature": True}, '"temperature":true', TypeError, r"rows\[1\]\['temperature'\] must be a number, got bool"),
+    ({"score": 10**400}, f'"score":{10**400}', ValueError,
+     r"rows\[1\]\['score'\] must fit in a float64 \(\|x\| < 1.8e308\), got an integer of 1329 bits"),
+    ({"reward": -(10**400)}, f'"reward":{-(10**400)}', ValueError, r"rows\[1\]\['reward'\] must fit in a float64"),
+])
+def test_write_refuses_up_front_what_read_refuses(tmp_path, extra, line, err, match):
+    good = {"prompt_id": "a", "score": 0.5, "reward": 1}
+    # read_samples refuses the line the row would become ...
+    # (for score and reward the key repeats: json.loads keeps the last one)
+    p = write_lines(tmp_path / "by_hand.jsonl", [json.dumps(good)[:-1] + "," + line + "}"])
+    with pytest.raises(ValueError, match=r"by_hand.jsonl line 1: field '\w+' must"):
+        read_samples(p)
+    # ... so write_samples refuses the row before writing anything, naming row and field
+    out = tmp_path / "out.jsonl"
+    with pytest.raises(err, match=match):
+        write_samples(out, [good, {**good, **extra}])
+    assert sorted(os.listdir(tmp_path)) == ["by_hand.jsonl"]
+
+
+def test_write_refuses_an_optional_field_on_some_rows_and_no_rows(tmp_path):
+    good = {"prompt_id": "a", "score": 0.5, "reward": 1}
+    p = write_lines(tmp_path / "by_hand.jsonl", [json.dumps({**good, "temperature": 1}), json.dumps(good)])
+    with pytest.raises(ValueError, match=r"line 2: missing field 'temperature'"):
+        read_samples(p)
+    with pytest.raises(ValueError, match=r"rows\[1\] must have the field 'temperature' as rows\[0\] has"):
+        write_samples(tmp_path / "out.jsonl", [{**good, "temperature": 1}, good])
+    with pytest.raises(ValueError, match=r"rows\[1\] has the field 'n_tokens', which rows\[0\] lacks"):
+        write_samples(tmp_path / "out.jsonl", [good, {**good, "n_tokens": 3}])
+    with pytest.raises(ValueError, match=r"rows\[2\] must have the field 'sample' as rows\[0\] has"):  # a generator
+        write_samples(tmp_path / "out.jsonl", ({**good, "sample": i} if i < 2 else good for i in range(3)))
+    with pytest.raises(ValueError, match=r"rows must hold at least one sample, got none"):
+        write_samples(tmp_path / "out.jsonl", iter([]))
+    with pytest.raises(ValueError, match=r"rows must hold at least one sample, got none"):
+        write_samples(tmp_path / "out.jsonl", [])
+    with pytest.raises(TypeError, match=r"rows must be an iterable of dicts, got dict \(wrap a single row in a list\)"):
+        write_samples(tmp_path / "out.jsonl", good)
+    assert sorted(os.listdir(tmp_path)) == ["by_hand.jsonl"]
+
+
+def test_read_refuses_a_negative_temperature(tmp_path):
+    p = write_lines(tmp_path / "t.jsonl", ['{"prompt_id": "a", "score": 1, "reward": 0, "temperature": 0}',
+                                           '{"prompt_id": "a", "score": 1, "reward": 0, "temperature": -0.5}'])
+    with pytest.raises(ValueError, match=r"t.jsonl line 2: field 'temperature' must be >= 0 .*got -0.5"):
+        read_samples(p, duplicates="allow")
