@@ -189,8 +189,9 @@ def test_get_task_errors():
     assert set(TASKS) >= {"ledger", "restock", "refunds", "jsonl"}
     with pytest.raises(ValueError, match=r"name must be one of \('ledger', 'restock', 'refunds', 'workshop', 'jsonl', 'user'\), got 'chess'"):
         get_task("chess")
-    with pytest.raises(TypeError, match=r"params of task 'ledger' must be among \['n_moves', 'max_qty', 'hard_share', 'max_factor'\]"):
-        get_task("ledger", depth=3)
+    with pytest.raises(TypeError, match=r"params of task 'ledger' must be among \['n_moves', 'max_qty', 'hard_share', 'max_factor'\], "
+                                        r"got unknown \['depth'\]$"):  # only the unknown key, not the valid ones beside it
+        get_task("ledger", depth=3, hard_share=0.5)
     with pytest.raises(ValueError, match=r"hard_share must be in \[0, 1\], got hard_share=1.5"):
         get_task("ledger", hard_share=1.5)
     with pytest.raises(ValueError, match=r"max_factor must be >= 2, got max_factor=1"):

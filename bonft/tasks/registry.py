@@ -33,5 +33,6 @@ def get_task(name: str, **params: Any) -> Task:
     except TypeError as e:
         if "unexpected keyword argument" in str(e):
             knobs = [p for p in inspect.signature(TASKS[name].__init__).parameters if p != "self"]
-            raise TypeError(f"params of task {name!r} must be among {knobs}, got {sorted(params)}") from None
+            unknown = sorted(set(params) - set(knobs))
+            raise TypeError(f"params of task {name!r} must be among {knobs}, got unknown {unknown}") from None
         raise
