@@ -23,7 +23,8 @@ spans two lines). A malformed line (bad JSON, nested too deeply, not UTF-8, a
 number beyond float64 or, for ``n_tokens``, beyond int64) raises ``ValueError``
 naming the file, line number and field; rows repeated exactly
 are reported (``duplicates=``). Writing is atomic (temp file + ``os.replace``), so a crash never
-leaves a half-written file in place of a good one.
+leaves a half-written file in place of a good one; the file keeps its mode (a new one gets the
+usual mode from the umask), and a symbolic link is written through (the link stays, its target changes).
 
 Caution: ``response`` may hold model-written code; nothing here runs it, and
 nothing should run it outside a sandbox.
@@ -33,6 +34,7 @@ from __future__ import annotations
 import json
 import math
 import os
+import stat
 import tempfile
 import warnings
 from dataclasses import dataclass
@@ -365,6 +367,20 @@ class _RowCheck:
             raise ValueError("rows must hold at least one sample, got none (read_samples refuses an empty file)")
 
 
+def _umask() -> int:
+    """The process's umask (Linux: read from /proc; elsewhere set and restored at once)."""
+    try:
+        with open("/proc/self/status", encoding="ascii") as f:
+            for line in f:
+                if line.startswith("Umask:"):
+                    return int(line.split()[1], 8)
+    except (OSError, ValueError):
+        pass
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return mask
+
+
 def _plain(v: Any) -> Any:
     """numpy scalars -> Python scalars (what ``json`` writes)."""
     return v.item() if isinstance(v, np.generic) else v
@@ -384,8 +400,10 @@ def write_samples(path, rows: Iterable[dict]) -> int:
     at all and an optional field (temperature, n_tokens, answer, sample, prompt)
     on some rows only; a list of rows is checked whole before anything is written,
     a generator row by row (it is never held in memory whole). Atomic: rows go to a temporary
-    file in the same folder, which replaces ``path`` only once every row is
-    written and flushed; a failure leaves ``path`` untouched.
+    file in the target's folder, which replaces it only once every row is
+    written and flushed; a failure leaves ``path`` untouched. An existing file
+    keeps its mode (a new one: 0o666 less the umask, as ``open`` gives); a
+    symbolic link is written through to its target and stays a link.
     """
     path = os.fspath(path)
     if isinstance(rows, (str, bytes, Mapping)):
@@ -399,8 +417,16 @@ def write_samples(path, rows: Iterable[dict]) -> int:
         for row in rows:
             check(row)
         check.finish()
-    folder = os.path.dirname(os.path.abspath(path))
-    fd, tmp = tempfile.mkstemp(prefix=".samples-", suffix=".tmp", dir=folder)
+    target = os.path.realpath(path)  # a symlink stays one: its target is replaced
+    if os.path.isdir(target):
+        raise ValueError(f"path must be a file path, got a directory: {path}")
+    if not os.path.isdir(os.path.dirname(target)):
+        raise FileNotFoundError(f"path's folder does not exist: {os.path.dirname(target)} (path={path})")
+    try:
+        mode = stat.S_IMODE(os.stat(target).st_mode)
+    except FileNotFoundError:
+        mode = 0o666 & ~_umask()
+    fd, tmp = tempfile.mkstemp(prefix=".samples-", suffix=".tmp", dir=os.path.dirname(target))
     count = 0
     try:
         with os.fdopen(fd, "w", encoding="utf-8") as f:
@@ -415,8 +441,9 @@ def write_samples(path, rows: Iterable[dict]) -> int:
                 count += 1
             check.finish()
             f.flush()
+            os.fchmod(f.fileno(), mode)
             os.fsync(f.fileno())
-        os.replace(tmp, path)
+        os.replace(tmp, target)
     except BaseException:
         if os.path.exists(tmp):
             os.unlink(tmp)

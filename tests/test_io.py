@@ -266,3 +266,36 @@ def test_read_refuses_a_negative_temperature(tmp_path):
                                            '{"prompt_id": "a", "score": 1, "reward": 0, "temperature": -0.5}'])
     with pytest.raises(ValueError, match=r"t.jsonl line 2: field 'temperature' must be >= 0 .*got -0.5"):
         read_samples(p, duplicates="allow")
+
+
+def test_write_keeps_the_mode_and_writes_through_a_link(tmp_path):
+    row = [{"prompt_id": "a", "score": 0.5, "reward": 1}]
+    old = os.umask(0o027)
+    try:
+        fresh = tmp_path / "new.jsonl"
+        write_samples(fresh, row)
+        assert fresh.stat().st_mode & 0o777 == 0o640  # 0o666 less the umask, as open() gives
+    finally:
+        os.umask(old)
+    kept = tmp_path / "kept.jsonl"
+    kept.write_text("")
+    kept.chmod(0o644)
+    write_samples(kept, row)
+    assert kept.stat().st_mode & 0o777 == 0o644 and json.loads(kept.read_text()) == row[0]
+    real = tmp_path / "data" / "real.jsonl"
+    real.parent.mkdir()
+    real.write_text("old\n")
+    link = tmp_path / "link.jsonl"
+    link.symlink_to(real)
+    write_samples(link, row)
+    assert link.is_symlink() and os.readlink(link) == str(real)
+    assert json.loads(real.read_text()) == row[0]
+    assert sorted(os.listdir(real.parent)) == ["real.jsonl"]  # the temporary file lived beside the target
+
+
+def test_write_names_a_directory_or_a_missing_folder(tmp_path):
+    row = [{"prompt_id": "a", "score": 0.5, "reward": 1}]
+    with pytest.raises(ValueError, match=r"path must be a file path, got a directory"):
+        write_samples(tmp_path, row)
+    with pytest.raises(FileNotFoundError, match=r"path's folder does not exist: .*nope"):
+        write_samples(tmp_path / "nope" / "s.jsonl", row)
