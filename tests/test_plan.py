@@ -366,6 +366,62 @@ def test_bad_input_errors():
         plan_exact(logits=LOGITS, scores=SCORES, rewards=REWARDS, temperatures=[1.0, 1.0])
 
 
+_NAN = float("nan")
+
+
+@pytest.mark.parametrize("call, exc, match", [
+    (lambda: fit_best_temperature([], []), ValueError, "ks must not be empty"),
+    (lambda: fit_best_temperature([1, 2, 4], [0.5, 0.7]), ValueError,
+     r"best_temperature must hold one temperature per k \(3\), got 2"),
+    (lambda: fit_best_temperature([4, 2, 1], [0.5, 0.7, 0.9]), ValueError, r"ks must be strictly increasing, got \[4, 2, 1\]"),
+    (lambda: fit_best_temperature([1, 2, 2], [0.5, 0.7, 0.9]), ValueError, "ks must be strictly increasing"),
+    (lambda: fit_best_temperature([0, 1, 2], [0.5, 0.7, 0.9]), ValueError, "ks must be >= 1, got ks=0"),
+    (lambda: fit_best_temperature([-2, 1, 2], [0.5, 0.7, 0.9]), ValueError, "ks must be >= 1, got ks=-2"),
+    (lambda: fit_best_temperature([1.5, 2.5], [0.5, 0.7]), TypeError, "ks must be an int, got float 1.5"),
+    (lambda: fit_best_temperature(1, 0.5), TypeError, "ks must be a sequence of ints, got int 1"),
+    (lambda: fit_best_temperature([1, 2, 4], [_NAN, 0.7, 0.9]), ValueError, "best_temperature must be finite, got nan"),
+    (lambda: fit_best_temperature([1, 2], [0.5, 0.0]), ValueError, "best_temperature must be > 0, got 0 at index 1"),
+    (lambda: plan_pools({1.0: Pools(np.zeros((3, 2)), np.ones((3, 2)), prompt_keys=5)}, n_boot=20), ValueError,
+     r"prompt_keys must be a 1-D sequence of 3 keys at temperature 1, got shape \(\)"),
+    (lambda: plan_pools({1.0: Pools(np.zeros((3, 2)), np.ones((3, 2)), mean_tokens=10.0),
+                         2.0: Pools(np.zeros((3, 2)), np.ones((3, 2)))}, n_boot=20), ValueError,
+     r"mean_tokens must be given at every temperature or at none, got it at \['1'\] but not at \['2'\]"),
+    (lambda: plan_pools({1.0: Pools(np.zeros((3, 2)), np.ones((3, 2)), mean_tokens=_NAN)}, n_boot=20), ValueError,
+     r"mean_tokens \(temperature 1\) must be a finite number > 0, got .*nan"),
+    (lambda: plan_exact(logits=LOGITS, scores=SCORES, rewards=REWARDS, temperatures=GRID, lengths=[1, 2, 3]),
+     ValueError, r"lengths must broadcast against \(2, 4\) outcomes \(tokens per outcome\), got shape \(3,\)"),
+    (lambda: plan_exact(scores=[0, 1], rewards=[0, 1], temperatures=[1.0, 1e-320], probs=[0.4, 0.6], max_k=2),
+     ValueError, r"temperatures must keep log\(probs\) / temperature finite in float64 .*got temperature 1e-320"),
+    (lambda: plan_exact(scores=[0, 1], rewards=[0, 1], temperatures=[1e-320], logits=[0.0, 1.0], max_k=2),
+     ValueError, r"temperatures must keep logits / temperature finite .*got temperature 1e-320 with a row's largest "
+                 r"logit 1"),
+    (lambda: plan_exact(scores=[0, 1], rewards=[0, 1], temperatures=[0.5], logits=[1e308, -1e308], max_k=2),
+     ValueError, r"got temperature 0.5 with a row's largest logit 1e\+308"),
+])
+def test_bad_plan_and_fit_inputs_name_the_argument(call, exc, match):
+    with pytest.raises(exc, match=match):
+        call()
+
+
+def test_tiny_temperature_on_equal_probs_is_still_exact():
+    # log(0.5) / 1e-300 = -6.9e299 stays finite: the tempered policy is uniform, so V_1 = mean reward = 0.5 and
+    # V_2 = 1 - 0.5^2 (definition: the higher-scored outcome has reward 1)
+    res = plan_exact(scores=[0, 1], rewards=[0, 1], temperatures=[1e-300], probs=[0.5, 0.5], max_k=2)
+    np.testing.assert_allclose(res.value, [[0.5, 0.75]], rtol=0, atol=1e-15)
+
+
+def test_token_means_known_at_some_temperatures_are_dropped_from_a_file_without_a_token_budget(tmp_path):
+    # n_tokens 0 at T=1: no mean response length there (plan_samples keeps only a mean > 0)
+    rows = [{"prompt_id": p, "score": float(i), "reward": float(i % 2), "temperature": t,
+             "n_tokens": 5 if t == 0.5 else 0} for t in (0.5, 1.0) for p in range(3) for i in range(2)]
+    write_samples(tmp_path / "s.jsonl", rows)
+    table = read_samples(tmp_path / "s.jsonl")
+    assert plan_samples(table, n_boot=20).mean_tokens is None
+    with pytest.raises(ValueError, match=r"budget_tokens needs the mean response length at every temperature, "
+                                         r"missing at \['1'\]"):
+        plan_samples(table, n_boot=20, budget_tokens=10)
+
+
 def test_table_without_temperatures_is_refused(tmp_path):
     write_samples(tmp_path / "s.jsonl", [{"prompt_id": "a", "score": 1.0, "reward": 1.0}])
     with pytest.raises(ValueError, match="table must have a temperature column"):

@@ -1,14 +1,17 @@
 """Decisions drawn from a (temperature, k) value grid: best temperature, budgets, doubling, the T*(k) fit.
 
-Shared by the sampling and exact modes of :mod:`bonft.plan.sweep`; inputs are trusted (validated there).
+Shared by the sampling and exact modes of :mod:`bonft.plan.sweep`; inputs are trusted (validated there),
+except those of the public :func:`fit_best_temperature`.
 """
 from __future__ import annotations
 
+import sys
 from typing import Any
 
 import numpy as np
 
 from bonft._core.bootstrap import resample_counts
+from bonft._core.checks import as_float_array, check_finite, check_ks
 from bonft.plan.result import BudgetChoice, DoublingStep, PlanResult, TemperatureFit
 
 BLOCK_CELLS = 4_000_000  # entries of one block of resampling counts (as bonft.estimate.bootstrap_ci)
@@ -169,6 +172,23 @@ def _choose(value, lo, hi, boot, confidence, mask, ks, temps, cost, *, kind, bud
     )
 
 
+def _check_fit_points(ks: Any, best_temperature: Any) -> tuple[np.ndarray, np.ndarray]:
+    """ks (K,) ints >= 1, strictly increasing; best_temperature (K,) finite and > 0."""
+    k_arr, scalar = check_ks(ks, sys.maxsize, name="ks")  # a float k (1.5) is refused, not truncated
+    if scalar:
+        raise TypeError(f"ks must be a sequence of ints, got int {ks!r}")
+    if (np.diff(k_arr) <= 0).any():
+        raise ValueError(f"ks must be strictly increasing, got {k_arr.tolist()}")
+    tb = as_float_array("best_temperature", best_temperature, ndim=1)
+    if tb.shape != k_arr.shape:
+        raise ValueError(f"best_temperature must hold one temperature per k ({k_arr.size}), got {tb.size}")
+    check_finite("best_temperature", tb)
+    if (tb <= 0).any():
+        i = int(np.flatnonzero(tb <= 0)[0])
+        raise ValueError(f"best_temperature must be > 0, got {tb[i]:g} at index {i}")
+    return k_arr, tb
+
+
 def fit_best_temperature(ks: Any, best_temperature: Any) -> TemperatureFit:
     """Fit how the best temperature T*(k) moves with log k: a fit of this data, not a law.
 
@@ -177,9 +197,9 @@ def fit_best_temperature(ks: Any, best_temperature: Any) -> TemperatureFit:
     Line: T* ~ a + b log k by least squares, with R^2 = 1 - SS_res / SS_tot and the RMS residual.
     Monotone: isotonic regression of T* on log k (pool-adjacent-violators, :func:`isotonic`),
     increasing or decreasing, whichever leaves the smaller residual.
+    ``ks`` must be ints >= 1 in increasing order, one best temperature (finite, > 0) each.
     """
-    ks = np.asarray(ks, dtype=np.int64)
-    tb = np.asarray(best_temperature, dtype=np.float64)
+    ks, tb = _check_fit_points(ks, best_temperature)
     pick = sorted(set([int(k) for k in ks if (k & (k - 1)) == 0] + [int(ks[-1])]))
     idx = np.searchsorted(ks, pick)
     x, y = np.log(ks[idx].astype(np.float64)), tb[idx]

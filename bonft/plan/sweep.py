@@ -144,6 +144,45 @@ def _as_pool_layout(name: str, x: Any) -> Any:
     return rows
 
 
+def _check_mean_tokens(temps: np.ndarray, items: list, wanted: bool) -> np.ndarray | None:
+    """Mean response length per temperature: at every temperature (each finite, > 0) or at none."""
+    have = [f"{t:g}" for t, p in zip(temps, items) if p.mean_tokens is not None]
+    missing = [f"{t:g}" for t, p in zip(temps, items) if p.mean_tokens is None]
+    if wanted and missing:
+        raise ValueError(f"budget_tokens needs the mean response length at every temperature, missing at {missing} (n_tokens)")
+    if have and missing:
+        raise ValueError(f"mean_tokens must be given at every temperature or at none, got it at {have} but not at {missing}")
+    if not have:
+        return None
+    return np.asarray([check_positive(f"mean_tokens (temperature {t:g})", p.mean_tokens) for t, p in zip(temps, items)])
+
+
+def _check_lengths(lengths: Any, P: int, V: int) -> np.ndarray:
+    """Tokens per outcome: finite, > 0, broadcast against (P, V)."""
+    lens = as_float_array("lengths", lengths)
+    check_finite("lengths", lens)
+    if (lens <= 0).any():
+        raise ValueError(f"lengths must be > 0 tokens, got min {float(lens.min())}")
+    try:
+        return np.broadcast_to(lens, (P, V))
+    except ValueError:
+        raise ValueError(f"lengths must broadcast against ({P}, {V}) outcomes (tokens per outcome), got shape "
+                         f"{tuple(lens.shape)}") from None
+
+
+def _check_tempered(base: np.ndarray, temps: np.ndarray, *, logits: bool) -> None:
+    """Each row's largest logits / temperature (log(probs) / temperature) must stay finite in float64."""
+    top = base.max(axis=-1) if logits else np.log(base.max(axis=-1))  # probs: the largest is > 0 (rows sum to 1)
+    what, one = ("logits", "logit") if logits else ("log(probs)", "log(prob)")
+    for t in temps:
+        with np.errstate(over="ignore"):
+            bad = ~np.isfinite(top / t)
+        if bad.any():
+            raise ValueError(f"temperatures must keep {what} / temperature finite in float64 (|value| <= 1.8e308), got "
+                             f"temperature {float(t)!r} with a row's largest {one} {float(top[bad][0]):g}: raise the "
+                             f"temperature")
+
+
 # --------------------------------------------------------------------------- sample pools
 
 
@@ -172,7 +211,8 @@ def plan_pools(
     max_k:          largest k (default: the smallest pool over all temperatures and prompts).
     budget_samples: samples per prompt; picks the best (T, k) with k <= budget.
     budget_tokens:  generated tokens per prompt; picks the best (T, k) with
-                    k * mean_tokens(T) <= budget (needs ``Pools.mean_tokens``).
+                    k * mean_tokens(T) <= budget (needs ``Pools.mean_tokens``, which is given at
+                    every temperature or at none).
     min_gain:       doubling N "stops paying" at the first k where the gain
                     V_2k - V_k is not significantly above ``min_gain``.
 
@@ -206,6 +246,9 @@ def plan_pools(
         if ns.min() < 1:
             raise ValueError(f"every pool must hold at least one sample, got an empty pool at temperature {t:g}")
         keys = np.arange(ns.size) if p.prompt_keys is None else np.asarray(p.prompt_keys).astype(str)
+        if keys.ndim != 1:
+            raise ValueError(f"prompt_keys must be a 1-D sequence of {ns.size} keys at temperature {t:g}, got shape "
+                             f"{keys.shape}")
         if keys.shape[0] != ns.size:
             raise ValueError(f"prompt_keys must have {ns.size} entries at temperature {t:g}, got {keys.shape[0]}")
         if np.unique(keys).size != keys.size:
@@ -221,12 +264,7 @@ def plan_pools(
         raise ValueError(
             f"max_k must be <= the smallest pool at every temperature (n={k_cap} at temperature {t_small:g}), got max_k={max_k}"
         )
-    mean_tokens = None
-    if all(p.mean_tokens is not None for p in items):
-        mean_tokens = np.asarray([check_positive("mean_tokens", p.mean_tokens) for p in items])
-    if b_tokens and mean_tokens is None:
-        missing = [f"{t:g}" for t, p in zip(temps, items) if p.mean_tokens is None]
-        raise ValueError(f"budget_tokens needs the mean response length at every temperature, missing at {missing} (n_tokens)")
+    mean_tokens = _check_mean_tokens(temps, items, bool(b_tokens))
     _check_boot_table(n_boot, len(temps), max_k)
 
     ks = np.arange(1, max_k + 1)
@@ -309,6 +347,9 @@ def plan_samples(
         else:
             s_pools, r_pools = list(s_pools), list(r_pools)
         pools[float(t)] = Pools(s_pools, r_pools, prompt_keys=np.asarray(keys), mean_tokens=mean_tokens)
+    if budget_tokens is None and any(p.mean_tokens is None for p in pools.values()):
+        for p in pools.values():  # a length known at some temperatures only is not shown (no budget reads it)
+            p.mean_tokens = None
     return plan_pools(
         pools,
         max_k=max_k,
@@ -340,7 +381,8 @@ def plan_exact(
     """Closed-form sweep on a finite outcome set: V_k(T) for the policy softmax(logits / T).
 
     logits or probs: (V,) or (P, V) over outcomes (P prompts averaged with equal weight);
-    probs p are tempered as p^(1/T) / sum p^(1/T) (= softmax(log p / T)).
+    probs p are tempered as p^(1/T) / sum p^(1/T) (= softmax(log p / T)); a temperature at which a row's
+    largest logit (log p) / T leaves float64 is an error.
     scores, rewards: broadcast against (P, V). lengths: tokens per outcome, for token budgets.
     -> value (T, K), K = max_k, no CIs (exact).
 
@@ -372,13 +414,8 @@ def plan_exact(
         except ValueError:
             raise ValueError(f"{name} must broadcast against ({P}, {V}) outcomes, got shape {tuple(x.shape)}") from None
     s_b, r_b = np.broadcast_to(s, (P, V)).copy(), np.broadcast_to(r, (P, V)).copy()
-    lens = None
-    if lengths is not None:
-        lens = as_float_array("lengths", lengths)
-        check_finite("lengths", lens)
-        if (lens <= 0).any():
-            raise ValueError(f"lengths must be > 0 tokens, got min {float(lens.min())}")
-        lens = np.broadcast_to(lens, (P, V))
+    _check_tempered(base, temps, logits=logits is not None)
+    lens = None if lengths is None else _check_lengths(lengths, P, V)
     if b_tokens and lens is None:
         raise ValueError("budget_tokens needs lengths (tokens per outcome) in exact mode, got lengths=None")
 
