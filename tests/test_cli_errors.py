@@ -155,8 +155,41 @@ def test_one_prompt_prints_no_interval(files):
     assert re.search(r"^\s+1\s+0\.5000\s", rows[0]), rows[0]
 
 
-def test_output_path_that_is_a_directory(files):
-    expect_error(["estimate", "--example", "--json", files / "a_dir"], r"(Is a directory|Directory not empty|File exists)")
+def test_output_paths_that_cannot_be_written(files, tmp_path):
+    # the check commands test --json and --plot-dir before any work; estimate through the shared writer
+    (tmp_path / "v.py").write_text("def judge(prompts, responses):\n    return [1.0] * len(responses)\n")
+    (tmp_path / "ex.jsonl").write_text('{"prompt": "a", "response": "1"}\n')
+    (tmp_path / "tests.jsonl").write_text('{"prompt": "p", "tests": "assert f() == 1"}\n')
+    (tmp_path / "cr.py").write_text("def credit(scores, rewards, *, k):\n    return rewards\n")
+    a_file = files / "recipe.toml"
+    commands = [["estimate", "--example", "--n-boot", "20"],
+                ["check-verifier", f"{tmp_path / 'v.py'}:judge", "--examples", tmp_path / "ex.jsonl"],
+                ["check-tests", tmp_path / "tests.jsonl", "--probes", "constant_reply"],
+                ["check-objective", f"{tmp_path / 'cr.py'}:credit", "--target", "pass_at_k", "--k", "1", "--n", "2",
+                 "--skip-transformer"]]
+    for argv in commands:
+        expect_error([*argv, "--json", files / "a_dir"], r"--json must be a file path, got a directory: \S+a_dir$")
+        expect_error([*argv, "--json", a_file / "out.json"],
+                     r"--json must be a file path in a folder, but \S+recipe.toml is a file: \S+recipe.toml/out.json$")
+        if argv[0] != "check-tests":  # it writes no plot
+            expect_error([*argv, "--plot-dir", a_file], r"--plot-dir must be a directory, got a file: \S+recipe.toml$")
+            expect_error([*argv, "--plot-dir", a_file / "plots"],
+                         r"--plot-dir must be a directory path, but \S+recipe.toml is a file: \S+recipe.toml/plots$")
+    assert sorted(os.listdir(files / "a_dir")) == []
+
+
+def test_json_writer_names_the_option_and_path_not_its_temporary_file(tmp_path, monkeypatch):
+    import tempfile
+
+    from bonft.cli.options import write_json_atomic
+
+    def refuse(*args, **kwargs):
+        raise PermissionError(13, "Permission denied", str(tmp_path / ".bonft-x1y2.tmp"))
+
+    monkeypatch.setattr(tempfile, "mkstemp", refuse)
+    with pytest.raises(PermissionError, match=r"^\[Errno 13\] --json cannot be written: Permission denied: ") as e:
+        write_json_atomic(str(tmp_path / "out.json"), {"a": 1})
+    assert e.value.filename == str(tmp_path / "out.json")
 
 
 def test_recipes(files):

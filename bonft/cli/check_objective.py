@@ -40,10 +40,11 @@ def add_arguments(p) -> None:
 
 
 def run(args) -> int:
-    from bonft.cli.options import check_seed, write_json_atomic
+    from bonft.cli.options import check_output_paths, check_seed, make_plot_dir, write_json_atomic
     from bonft.testing import check_objective
 
     check_seed("--seed", args.seed)
+    check_output_paths(args)
     from bonft.verifiers.scoring import load_verifier  # a generic 'module:function' loader
 
     credit = load_verifier(args.credit)
@@ -56,8 +57,7 @@ def run(args) -> int:
     if args.plot_dir:
         import os
 
-        os.makedirs(args.plot_dir, exist_ok=True)
-        print(f"plot: {report.plot(os.path.join(args.plot_dir, 'objective_check.png'))}")
+        print(f"plot: {report.plot(os.path.join(make_plot_dir(args.plot_dir), 'objective_check.png'))}")
     if args.json:
         write_json_atomic(args.json, report.to_dict())
         print(f"json: {args.json}")

@@ -25,11 +25,12 @@ def add_arguments(p) -> None:
 def run(args) -> int:
     import os
 
-    from bonft.cli.options import parse_list, write_json_atomic
+    from bonft.cli.options import check_output_paths, parse_list, write_json_atomic
     from bonft.testing import PROBES, probe_code_tests
     from bonft.verifiers import CodeRunner
     from bonft.verifiers.probes import read_code_tests
 
+    check_output_paths(args)
     if not os.path.isfile(args.tests):
         raise FileNotFoundError(f"TESTS.jsonl must be an existing file, got {args.tests!r}")
     tests = read_code_tests(args.tests)

@@ -23,12 +23,13 @@ def add_arguments(p) -> None:
 
 
 def run(args) -> int:
-    import json
     import os
 
+    from bonft.cli.options import check_output_paths, make_plot_dir, write_json_atomic
     from bonft.testing import check_verifier, read_examples
     from bonft.verifiers import load_verifier
 
+    check_output_paths(args)
     if not os.path.isfile(args.examples):
         raise FileNotFoundError(f"--examples must be an existing JSONL file, got {args.examples!r}")
     with open(args.examples, "rb") as fh:
@@ -44,12 +45,8 @@ def run(args) -> int:
                             timeout=args.wall_time, max_failure_rate=args.max_failure_rate)
     print(report)
     if args.plot_dir:
-        os.makedirs(args.plot_dir, exist_ok=True)
-        print(f"plot: {report.plot(os.path.join(args.plot_dir, 'verifier_check.png'))}")
+        print(f"plot: {report.plot(os.path.join(make_plot_dir(args.plot_dir), 'verifier_check.png'))}")
     if args.json:
-        tmp = args.json + ".tmp"
-        with open(tmp, "w", encoding="utf-8") as f:
-            json.dump(report.to_dict(), f, indent=2)
-        os.replace(tmp, args.json)  # atomic: never a half-written report
+        write_json_atomic(args.json, report.to_dict())  # atomic: never a half-written report
         print(f"json: {args.json}")
     return 0 if report.ok else 1

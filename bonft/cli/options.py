@@ -1,4 +1,4 @@
-"""Small helpers shared by the sub-commands: comma lists and atomic JSON output."""
+"""Small helpers shared by the sub-commands: comma lists, checked output paths and atomic JSON output."""
 from __future__ import annotations
 
 import json
@@ -53,18 +53,67 @@ def add_duplicates_flag(p) -> None:
                    help="accept rows that repeat an earlier row exactly (default: warn with their count)")
 
 
-def write_json_atomic(path: str, obj) -> None:
-    """Write JSON to a temporary file beside ``path``, then rename: a crash never leaves half a file."""
+def _file_above(path: str) -> str | None:
+    """The nearest existing folder above ``path`` when it is not a directory (a file in the way), else None."""
     folder = os.path.dirname(os.path.abspath(path))
-    os.makedirs(folder, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=".bonft-", suffix=".tmp", dir=folder)
+    while not os.path.exists(folder):
+        folder = os.path.dirname(folder)
+    return None if os.path.isdir(folder) else folder
+
+
+def check_json_path(flag: str, path: str) -> None:
+    """``path`` can become a file: not a directory, and no file where one of its folders should be."""
+    if os.path.isdir(path) or path.endswith(("/", os.sep)):
+        raise ValueError(f"{flag} must be a file path, got a directory: {path}")
+    above = _file_above(path)
+    if above is not None:
+        raise ValueError(f"{flag} must be a file path in a folder, but {above} is a file: {path}")
+
+
+def check_plot_dir(flag: str, path: str) -> None:
+    """``path`` is a directory or can become one: not a file, and no file where one of its folders should be."""
+    if os.path.exists(path) and not os.path.isdir(path):
+        raise ValueError(f"{flag} must be a directory, got a file: {path}")
+    above = _file_above(path)
+    if above is not None:
+        raise ValueError(f"{flag} must be a directory path, but {above} is a file: {path}")
+
+
+def check_output_paths(args) -> None:
+    """``--json`` and ``--plot-dir`` of a command, before any work (a wrong path found at the end wastes the run)."""
+    if getattr(args, "json", None):
+        check_json_path("--json", args.json)
+    if getattr(args, "plot_dir", None):
+        check_plot_dir("--plot-dir", args.plot_dir)
+
+
+def make_plot_dir(path: str, flag: str = "--plot-dir") -> str:
+    """Create the ``--plot-dir`` directory (checked first, so a file in the way is one clear error); returns it."""
+    check_plot_dir(flag, path)
+    os.makedirs(path, exist_ok=True)
+    return path
+
+
+def write_json_atomic(path: str, obj, *, flag: str = "--json") -> None:
+    """Write JSON to a temporary file beside ``path``, then rename: a crash never leaves half a file.
+
+    A directory at ``path`` (or a file in place of its folder) is a ``ValueError`` naming ``flag``; a folder
+    that cannot be written is an ``OSError`` naming ``flag`` and ``path`` (not the temporary file).
+    """
+    check_json_path(flag, path)
+    folder = os.path.dirname(os.path.abspath(path))
+    tmp = None
     try:
+        os.makedirs(folder, exist_ok=True)
+        fd, tmp = tempfile.mkstemp(prefix=".bonft-", suffix=".tmp", dir=folder)
         with os.fdopen(fd, "w", encoding="utf-8") as f:
             json.dump(obj, f, indent=1, allow_nan=False)
         os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
+    except BaseException as e:
+        if tmp is not None and os.path.exists(tmp):
             os.unlink(tmp)
+        if isinstance(e, OSError) and e.strerror:
+            raise type(e)(e.errno, f"{flag} cannot be written: {e.strerror}", path) from None
         raise
 
 
@@ -74,7 +123,7 @@ def write_curve_outputs(args, path: str, blocks: list, curves: dict, plot, png: 
         write_json_atomic(args.json, {"samples": os.path.abspath(path), "blocks": blocks})
         print(f"wrote {args.json}")
     if args.plot_dir:
-        os.makedirs(args.plot_dir, exist_ok=True)
+        make_plot_dir(args.plot_dir)
         out = os.path.join(args.plot_dir, png)
         plot(curves, out, title=os.path.basename(path))
         print(f"wrote {out}")
