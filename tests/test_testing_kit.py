@@ -246,6 +246,15 @@ def test_thresholds_are_checked(kw, message):
         check_verifier(EXACT, POOLS, **kw)
 
 
+@pytest.mark.parametrize("kw, message", [
+    ({"n": 0}, r"n must be >= 1, got n=0"),  # pools of no response, which check_verifier refuses
+    ({"max_prompts": 0}, r"max_prompts must be >= 1, got max_prompts=0"),
+])
+def test_sample_pools_sizes_are_checked(kw, message):
+    with pytest.raises(ValueError, match=message):
+        sample_pools(**kw)
+
+
 def test_examples_file_with_a_misspelt_key_or_rewards_on_some_lines(tmp_path, capsys):
     ver = tmp_path / "myver.py"
     ver.write_text("def score(prompts, responses):\n    return [float('4' in r) for r in responses]\n")

@@ -70,8 +70,12 @@ def responses(*, max_size: int = 200):
 
 def sample_pools(n: int = 4, *, max_prompts: int = 3, rewards: bool = True):
     """Hypothesis strategy of example pools: 1..max_prompts dicts ``{"prompt", "responses", "rewards"}``,
-    each with ``n`` responses (and 0/1 rewards when ``rewards``)."""
+    each with ``n`` responses (and 0/1 rewards when ``rewards``); ``n`` and ``max_prompts`` must be >= 1
+    (:func:`check_verifier` refuses an empty pool)."""
     from hypothesis import strategies as st
+
+    check_int("n", n, min=1)
+    check_int("max_prompts", max_prompts, min=1)
 
     def pool(p: str):
         parts = {"prompt": st.just(p), "responses": st.lists(responses(), min_size=n, max_size=n)}
