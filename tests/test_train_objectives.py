@@ -1,6 +1,8 @@
 """The trainer's objective registry, the placebo control, the gradient SNR and the optimizer choice."""
 import itertools
+import json
 import math
+import sys
 
 import numpy as np
 import pytest
@@ -264,3 +266,55 @@ def test_a_registered_objective_trains_like_the_builtin_with_the_same_credit(tmp
         assert recs[0]["grad"].abs().sum() > 0 and "pool/value" not in recs[1]
     finally:
         del OBJECTIVES["my_reinforce"]
+
+
+def test_a_recipe_names_an_objective_of_its_own_by_module_and_it_trains_like_the_builtin(tmp_path, monkeypatch):
+    # `bonft train` cannot call register_objective: a recipe names the Objective by its place ('module:name'),
+    # imported from the working directory when the run starts; same credit as 'reinforce', so the same step
+    from bonft.cli.main import main
+    from bonft.trainer.config import to_toml
+    from bonft.trainer.objectives import resolve_objective
+
+    (tmp_path / "my_objectives_t.py").write_text(
+        "from bonft.objectives import credit as C\n"
+        "from bonft.trainer.objectives import Objective\n"
+        "mine = Objective(credit=lambda p, k: C.reinforce_credit(p.rewards), value=None, summary='mine')\n"
+        "def helper(p, k):\n    return p.rewards\n")
+    (tmp_path / "parity_grader_t.py").write_text("def score(prompts, responses):\n"
+                                                 "    return [float(len(r) % 2) for r in responses]\n")
+    monkeypatch.chdir(tmp_path)
+    monkeypatch.setattr(sys, "path", list(sys.path))
+    spec = "my_objectives_t:mine"
+    try:
+        base = dict(layers=1, width=32, heads=2, max_positions=48, train_prompts=32, heldout_prompts=4, rl_steps=2,
+                    prompts_per_step=4, n=4, k=2, max_new_tokens=5, verifier="parity_grader_t:score", eval_samples=4,
+                    eval_ks=[1, 2], n_boot=20, plots=False, save_every=0, eval_at_start=False, log_every=1)
+        out = {}
+        for name in ("reinforce", spec):
+            cfg = from_dict({**base, "objective": name, "run_dir": str(tmp_path / name.replace(":", "-"))})
+            recipe = tmp_path / f"{name.replace(':', '-')}.toml"
+            recipe.write_text(to_toml(cfg))
+            assert main(["train", str(recipe), "--quiet"]) == 0
+            out[name] = [json.loads(ln)["loss"] for ln in (tmp_path / name.replace(":", "-") / "metrics.jsonl").read_text()
+                         .splitlines() if '"train"' in ln]
+        assert out[spec] == out["reinforce"] and len(out[spec]) == 2 and any(x != 0 for x in out[spec])
+        assert OBJECTIVES[spec] is resolve_objective(spec)  # imported once, then registered under its spec
+        # evaluating the run does not import the objective (here: from a directory with the verifier alone)
+        elsewhere = tmp_path / "elsewhere"
+        elsewhere.mkdir()
+        (elsewhere / "parity_grader_t.py").write_text((tmp_path / "parity_grader_t.py").read_text())
+        monkeypatch.chdir(elsewhere)
+        del OBJECTIVES[spec]
+        assert main(["eval", str(tmp_path / spec.replace(":", "-")), "--n", "2", "--ks", "1"]) == 0
+        assert spec not in OBJECTIVES
+    finally:
+        OBJECTIVES.pop(spec, None)
+    monkeypatch.chdir(tmp_path)
+    with pytest.raises(TypeError, match=r"objective 'my_objectives_t:helper' must name a bonft.trainer.objectives.Objective "
+                                        r"\(credit, value, summary\), got function"):
+        resolve_objective("my_objectives_t:helper")
+    with pytest.raises(ValueError, match=r"spec names 'nothing', but 'my_objectives_t' has no attribute 'nothing'"):
+        resolve_objective("my_objectives_t:nothing")
+    with pytest.raises(ValueError, match=r"objective must be one of \('reinforce', .*\) or 'module:name' naming an Objective "
+                                         r"of your own, got 'ppo'"):
+        from_dict({**base, "objective": "ppo"})

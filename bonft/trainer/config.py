@@ -61,7 +61,10 @@ from bonft.objectives.validation import RATIO_LEVELS
 from bonft.tasks import TASKS, get_task
 from bonft.tasks.base import family_counts
 from bonft.trainer.adapters import peft_missing
-from bonft.trainer.objectives import OBJECTIVES  # the registry: objective name -> credit function + options
+from bonft.trainer.objectives import (  # the registry: objective name -> credit function + options
+    OBJECTIVES,
+    is_objective_spec,
+)
 from bonft.verifiers.roles import USER_DATA_TASKS, check_spec
 
 K_SCHEDULES = ("constant", "linear", "geometric")
@@ -178,7 +181,8 @@ class TrainConfig:
     warm_start_lr: float = _f(3e-3,
                               "Warm-start learning rate (AdamW, cosine decay to 10%) (old spelling: sft_lr).", group="warm_start")
     # --- RL stage ---
-    objective: str = _f("pass_at_k", f"What the RL stage optimises: one of {', '.join(OBJECTIVES)}.", group="rl")
+    objective: str = _f("pass_at_k", f"What the RL stage optimises: one of {', '.join(OBJECTIVES)}, or 'module:name' "
+                        "naming an Objective of your own (docs/training.md, Objectives).", group="rl")
     rl_steps: int = _f(0, "RL optimizer steps. 0 = skip the RL stage.", group="rl")
     prompts_per_step: int = _f(16, "Prompts per RL optimizer step (global, over all ranks), <= 65,536; prompts_per_step / grad_accum x n "
                                "<= 2**20 responses sampled at once.", group="rl")
@@ -313,7 +317,9 @@ def validate(c: TrainConfig) -> None:
         warnings.warn(f"objective {c.objective!r} is now called {new!r}; reading it as {new!r}",
                       DeprecatedKeyWarning, stacklevel=3)
         c.objective = new
-    check_choice("objective", c.objective, tuple(OBJECTIVES))
+    if c.objective not in OBJECTIVES and not is_objective_spec(c.objective):  # a spec is imported by the run
+        raise ValueError(f"objective must be one of {tuple(OBJECTIVES)} or 'module:name' naming an Objective of your "
+                         f"own, got {c.objective!r}")
     check_choice("task", c.task, tuple(TASKS))
     check_choice("optimizer", c.optimizer, OPTIMIZERS)
     check_fraction("momentum", c.momentum, open_high=True)

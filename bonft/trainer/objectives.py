@@ -28,6 +28,7 @@ from typing import Callable, Sequence
 import numpy as np
 import torch
 
+from bonft._core.specs import load_spec
 from bonft.objectives import credit as C
 from bonft.objectives import losses as L
 from bonft.strategies import strategy_credit, strategy_per_prompt
@@ -122,7 +123,9 @@ OBJECTIVES: dict[str, Objective] = {
 
 
 def register_objective(name: str, objective: Objective) -> None:
-    """Add an objective under ``name`` (then ``objective = "name"`` in a recipe selects it)."""
+    """Add an objective under ``name``: then ``objective = "name"`` selects it in a :class:`TrainConfig` built in
+    the same process (:func:`bonft.trainer.train`). A recipe run by the ``bonft`` command names it by its place
+    instead, ``objective = "my_objectives:mine"`` (:func:`resolve_objective`)."""
     if not isinstance(name, str) or not name:
         raise TypeError(f"name must be a non-empty str, got {type(name).__name__} {name!r}")
     if not isinstance(objective, Objective):
@@ -130,6 +133,32 @@ def register_objective(name: str, objective: Objective) -> None:
     if name in OBJECTIVES:
         raise ValueError(f"name must not be taken already, got {name!r} (registered: {sorted(OBJECTIVES)})")
     OBJECTIVES[name] = objective
+
+
+def is_objective_spec(name: str) -> bool:
+    """Does ``name`` look like ``"module:name"`` or ``"path/to/file.py:name"`` (an objective of your own)?"""
+    where, sep, attr = name.rpartition(":")
+    return bool(sep and where and attr)
+
+
+def resolve_objective(name: str) -> Objective:
+    """The objective ``name`` selects: a key of :data:`OBJECTIVES`, or ``"module:name"`` /
+    ``"path/to/file.py:name"`` naming an :class:`Objective` of your own (imported once, with the working
+    directory or the file's folder first on the import path, then registered under ``name``).
+
+    Caution: naming your own objective imports and runs its module's code with your rights.
+    """
+    if name in OBJECTIVES:
+        return OBJECTIVES[name]
+    if not is_objective_spec(name):
+        raise ValueError(f"objective must be one of {tuple(OBJECTIVES)} or 'module:name' naming an Objective of "
+                         f"your own, got {name!r}")
+    obj = load_spec(name, what="objective")
+    if not isinstance(obj, Objective):
+        raise TypeError(f"objective {name!r} must name a bonft.trainer.objectives.Objective (credit, value, summary), "
+                        f"got {type(obj).__name__}")
+    OBJECTIVES[name] = obj
+    return obj
 
 
 def shuffle_pools(seeds: Sequence[int], *arrays: np.ndarray) -> tuple[np.ndarray, ...]:

@@ -24,7 +24,7 @@ from bonft.trainer.checkpoint import quiet_transformers
 from bonft.trainer.config import TrainConfig
 from bonft.trainer.distributed import derive_seed, init_from_env, prompt_seed, shard_prompts, unwrap_model
 from bonft.trainer.models import build_tiny_model, check_context, load_model, policy_model
-from bonft.trainer.objectives import OBJECTIVES
+from bonft.trainer.objectives import OBJECTIVES, resolve_objective
 from bonft.verifiers.roles import Roles, build_roles
 
 
@@ -126,6 +126,8 @@ def build_run(cfg: TrainConfig, *, training: bool = True) -> Run:
     ``training``: the model is set up to train as the recipe says (an adapter, recomputed activations:
     :func:`bonft.trainer.models.policy_model`); False (an evaluation) keeps it as loaded.
     """
+    if training and cfg.rl_steps:
+        resolve_objective(cfg.objective)  # an objective of your own ('module:name'): imported before any work
     ctx = init_from_env(device=cfg.device)  # a process group under torchrun, else one process
     rank, world, device = ctx.rank, ctx.world_size, ctx.device
     if cfg.start_from:
@@ -154,7 +156,7 @@ def build_run(cfg: TrainConfig, *, training: bool = True) -> Run:
                         eval_verifier=cfg.eval_verifier, eval_verifier_params=cfg.eval_verifier_params, device=str(device))
     verifiers = {"train": roles.verifier, **roles.evaluation_verifiers()}
     uses = ("warm_start_steps", cfg.warm_start_steps) if cfg.warm_start_steps else None
-    if uses is None and cfg.rl_steps and OBJECTIVES[cfg.objective].reference:
+    if uses is None and cfg.rl_steps and training and OBJECTIVES[cfg.objective].reference:
         uses = ("objective", repr(cfg.objective))
     unreferenced = [e for e in train if not e.reference]
     fix = "set warm_start_steps = 0" if uses and uses[0] == "warm_start_steps" else "choose an objective without references"

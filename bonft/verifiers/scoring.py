@@ -13,19 +13,16 @@ goes first on the import path). Only load verifiers you have read.
 from __future__ import annotations
 
 import collections
-import importlib
-import importlib.util
 import logging
 import math
 import numbers
-import os
-import sys
 import threading
 from typing import Any, Callable, Sequence
 
 import numpy as np
 
 from bonft._core.checks import check_real
+from bonft._core.specs import load_spec
 from bonft.verifiers.base import Verdicts, as_verdicts
 
 log = logging.getLogger("bonft.verifiers")
@@ -210,13 +207,8 @@ def _per_sample(verifier: Any, prompts: list[str], responses: list[str], timeout
     return Verdicts(scores=scores, rewards=rewards if has_rewards else None, failed=failed, reasons=reasons)
 
 
-def _import_failure(spec: str, what: str, e: BaseException) -> ValueError:
-    msg = str(e).strip().splitlines()[0] if str(e).strip() else ""
-    return ValueError(f"verifier {spec!r}: importing {what} raised {type(e).__name__}" + (f": {msg}" if msg else ""))
-
-
 def load_verifier(spec: str) -> Callable[..., Any]:
-    """Load a verifier from ``"module:name"`` or ``"path/to/file.py:name"``.
+    """Load a verifier from ``"module:name"`` or ``"path/to/file.py:name"`` (:func:`bonft._core.specs.load_spec`).
 
     * ``"module:name"`` imports ``module`` with the current working directory
       first on the import path, so ``verifier = "myverifier:score"`` finds
@@ -236,54 +228,9 @@ def load_verifier(spec: str) -> Callable[..., Any]:
 
     >>> load_verifier("bonft.verifiers.answers:demo_verifier")  # doctest: +SKIP
     """
-    if not isinstance(spec, str):
-        raise TypeError(f"spec must be a str like 'module:function', got {type(spec).__name__}")
-    where, sep, attr = spec.rpartition(":")
-    if not sep or not where or not attr:
-        raise ValueError(f"spec must look like 'module:function' or 'path/to/file.py:function', got {spec!r}")
-    if where.endswith(".py") or os.sep in where or "/" in where:
-        if not os.path.isfile(where):
-            raise FileNotFoundError(f"spec names the file {where!r}, which does not exist")
-        folder = os.path.dirname(os.path.abspath(where))
-        _put_first(folder)
-        name = "bonft_user_verifier_" + os.path.splitext(os.path.basename(where))[0]
-        mspec = importlib.util.spec_from_file_location(name, where)
-        if mspec is None or mspec.loader is None:
-            raise ValueError(f"spec names {where!r}, which cannot be imported as a Python file")
-        module = importlib.util.module_from_spec(mspec)
-        sys.modules[name] = module  # dataclasses / pickling look the module up by name
-        try:
-            mspec.loader.exec_module(module)
-        except Exception as e:  # noqa: BLE001 - one line naming the file and the cause
-            sys.modules.pop(name, None)
-            raise _import_failure(spec, f"the file {where!r} (its folder {folder!r} is first on the import path)", e) from e
-    else:
-        _put_first(os.getcwd())
-        try:
-            module = importlib.import_module(where)
-        except ModuleNotFoundError as e:
-            if e.name is not None and (where == e.name or where.startswith(e.name + ".")):
-                raise ValueError(f"spec names the module {where!r}, which cannot be imported ({e}); it is looked up in "
-                                 f"the working directory {os.getcwd()!r} and on the import path") from None
-            raise _import_failure(spec, f"the module {where!r}", e) from e
-        except Exception as e:  # noqa: BLE001
-            raise _import_failure(spec, f"the module {where!r}", e) from e
-    obj: Any = module
-    for part in attr.split("."):
-        try:
-            obj = getattr(obj, part)
-        except AttributeError:
-            raise ValueError(f"spec names {attr!r}, but {where!r} has no attribute {part!r}") from None
+    obj = load_spec(spec, what="verifier")
     if isinstance(obj, type):
         obj = obj()
     if not callable(obj):
         raise TypeError(f"spec must name a callable verifier, got {type(obj).__name__} for {spec!r}")
     return obj
-
-
-def _put_first(folder: str) -> None:
-    """``folder`` first on ``sys.path`` (moved there when already present), caches of importers refreshed."""
-    if folder in sys.path:
-        sys.path.remove(folder)
-    sys.path.insert(0, folder)
-    importlib.invalidate_caches()
