@@ -77,6 +77,21 @@ def test_single_temperature_file_with_renamed_fields_and_k(tmp_path, capsys):
         (["estimate"], r"POOLS must be a pool file \(JSONL of scored samples\) \(or pass --example\)"),
         (["estimate", "nope.jsonl"], r"POOLS file not found: nope.jsonl"),
         (["estimate", "--example", "--score-field", "rm"], r"missing field 'rm'.*--score-field NAME"),
+        # options that cannot take effect, and list items that are empty
+        (["estimate", "--example", "--ks", "1,,2"], r"--ks must be comma-separated values with none empty, got '1,,2'"),
+        (["estimate", "--example", "--ks", "1,2,"], r"--ks must be comma-separated values with none empty"),
+        (["estimate", "--example", "--strategy", ""], r"--strategy must list at least one value, got ''"),
+        (["estimate", "--example", "--strategy", "best_of_k,,pass_at_k"], r"--strategy must be comma-separated values "
+                                                                         r"with none empty"),
+        (["estimate", "--example", "--max-subsets", "10"], r"--max-subsets applies to --strategy with weighted_vote .*"
+                                                           r"got --max-subsets 10 without --strategy"),
+        (["estimate", "--example", "--strategy", "majority_vote,best_of_k", "--max-subsets", "10"],
+         r"got --max-subsets 10 with --strategy majority_vote,best_of_k"),
+        (["estimate", "--example", "--answer-field", "final"], r"--answer-field applies to --strategy with "
+                                                               r"majority_vote or weighted_vote .*got --answer-field "
+                                                               r"'final' without --strategy"),
+        (["estimate", "--example", "--strategy", "best_of_k,pass_at_k", "--answer-field", "final"],
+         r"got --answer-field 'final' with --strategy best_of_k,pass_at_k"),
     ],
 )
 def test_errors_exit_2_with_a_message(argv, match, capsys):

@@ -9,6 +9,7 @@ from __future__ import annotations
 import itertools
 import json
 import math
+import re
 from collections import defaultdict
 
 import numpy as np
@@ -72,6 +73,41 @@ def test_plan_command_errors(samples_file, tmp_path, capsys):
     assert "--temperatures must be comma-separated numbers" in capsys.readouterr().err
     assert main(["plan", "--samples", str(tmp_path / "missing.jsonl")]) == 2
     assert "--samples file not found" in capsys.readouterr().err
+
+
+@pytest.mark.parametrize("extra, match", [
+    (["--n", "8"], r"--n applies to --model only \(sampling from a model\), got --n 8 with --samples"),
+    (["--device", "cuda"], r"--device applies to --model only .*got --device cuda with --samples"),
+    (["--top-p", "0.5"], r"--top-p applies to --model only .*got --top-p 0.5 with --samples"),
+    (["--cache", "cachedir"], r"--cache applies to --model only .*got --cache cachedir with --samples"),
+    (["--strategy", "best_of_k", "--budget-tokens", "100"], r"--budget-tokens has no effect with --strategy"),
+    (["--strategy", "best_of_k", "--min-gain", "0.1"], r"--min-gain has no effect with --strategy"),
+    (["--max-subsets", "10"], r"--max-subsets applies to --strategy with weighted_vote .*without --strategy"),
+])
+def test_plan_samples_refuses_options_that_cannot_take_effect(samples_file, extra, match, capsys):
+    assert main(["plan", "--samples", str(samples_file), "--n-boot", "50", *extra]) == 2
+    assert re.search(match, capsys.readouterr().err)
+
+
+@pytest.mark.parametrize("extra, match", [
+    (["--n-boot", "50"], r"--n-boot has no effect with --exact \(exact values have no bootstrap intervals\), got "
+                         r"--n-boot 50 with --exact"),
+    (["--confidence", "0.5"], r"--confidence has no effect with --exact .*got --confidence 0.5"),
+    (["--seed", "3"], r"--seed has no effect with --exact"),
+    (["--score-field", "foo"], r"--score-field applies to reading a --samples file, got --score-field foo with --exact"),
+    (["--allow-duplicates"], r"--allow-duplicates applies to reading a --samples file, got --allow-duplicates with"),
+    (["--n", "8"], r"--n applies to --model only .*with --exact"),
+    (["--strategy", "majority_vote", "--answer-field", "a"], r"--answer-field has no effect with --exact \(answers "
+                                                             r"come from the file's 'answers' field\)"),
+    (["--strategy", "weighted_vote", "--max-subsets", "10"], r"--max-subsets has no effect with --exact"),
+    (["--strategy", "best_of_k", "--plot-dir", "plots"], r"--plot-dir has no effect with --exact --strategy"),
+])
+def test_plan_exact_refuses_options_that_cannot_take_effect(tmp_path, extra, match, capsys):
+    spec = tmp_path / "exact.json"
+    spec.write_text(json.dumps({"logits": [0, 1], "scores": [0, 1], "rewards": [0, 1], "answers": ["a", "b"],
+                                "temperatures": [1.0]}))
+    assert main(["plan", "--exact", str(spec), "--max-k", "2", *extra]) == 2
+    assert re.search(match, capsys.readouterr().err)
 
 
 def test_plan_command_exact_file(tmp_path, capsys):

@@ -7,7 +7,7 @@ import os
 
 from bonft._core.checks import check_choice, check_int
 from bonft.cli.options import add_duplicates_flag, check_sizes, parse_list, write_json_atomic
-from bonft.cli.strategy_tables import add_strategy_arguments
+from bonft.cli.strategy_tables import add_strategy_arguments, check_strategy_options
 from bonft.cli.strategy_tables import run_plan as _run_strategies
 from bonft.tasks import TASKS, exact_match_verifier, get_task, load_prompts_jsonl
 from bonft.verifiers import load_verifier
@@ -121,6 +121,35 @@ def _check_lengths(args, table) -> None:
                              f"{args.samples} averages {mean:g} tokens{at}")
 
 
+_MODEL_ONLY = ("verifier", "n", "max_new_tokens", "top_p", "batch_size", "cache", "device")  # sampling from a model
+_FILE_FIELDS = ("prompt_field", "score_field", "reward_field", "temperature_field", "tokens_field", "sample_field",
+                "allow_duplicates")
+_INTERVALS = ("confidence", "n_boot", "seed")
+
+
+def _refuse_inert(args, mode: str, strategies: bool) -> None:
+    """An option given (other than its default) that cannot take effect with this input or --strategy is an error."""
+    p = argparse.ArgumentParser()
+    add_arguments(p)
+    inert = {}
+    if mode != "model":
+        inert.update({d: "applies to --model only (sampling from a model)" for d in _MODEL_ONLY})
+    if mode != "samples":
+        inert.update({d: "applies to reading a --samples file" for d in _FILE_FIELDS})
+    if mode == "exact":
+        inert.update({d: "has no effect with --exact (exact values have no bootstrap intervals)" for d in _INTERVALS})
+    if strategies:
+        why = "has no effect with --strategy (its table picks by sample budget only)"
+        inert.update({"budget_tokens": why, "min_gain": why})
+        if mode == "exact":
+            inert["plot_dir"] = "has no effect with --exact --strategy (it prints and writes --json only)"
+    for dest, why in inert.items():
+        val = getattr(args, dest)
+        if val != p.get_default(dest):
+            flag = "--" + dest.replace("_", "-")
+            raise ValueError(f"{flag} {why}, got {flag if isinstance(val, bool) else f'{flag} {val}'} with --{mode}")
+
+
 def _plan_kwargs(args) -> dict:
     return dict(max_k=args.max_k, budget_samples=parse_list("--budget-samples", args.budget_samples),
                 budget_tokens=parse_list("--budget-tokens", args.budget_tokens, float), min_gain=args.min_gain)
@@ -139,8 +168,10 @@ def run(args) -> int:
             if getattr(args, flag) is not None:
                 raise ValueError(f"--{flag.replace('_', '-')} applies to --model only (the prompts to sample), "
                                  f"got it with --{given[0]}")
-    if args.strategy and args.model:
+    names = check_strategy_options(args, exact=bool(args.exact))
+    if names and args.model:
         raise ValueError("--strategy needs --samples FILE.jsonl or --exact FILE.json, got --model")
+    _refuse_inert(args, given[0], bool(names))
     check_sizes(args)
     info = None
     if args.samples:
@@ -152,7 +183,7 @@ def run(args) -> int:
                              reward_field=args.reward_field, temperature_field=args.temperature_field,
                              tokens_field=args.tokens_field, duplicates="allow" if args.allow_duplicates else "warn",
                              answer_field=args.answer_field, sample_field=args.sample_field)
-        if args.strategy:
+        if names:
             print(f"samples: {args.samples} ({len(table)} rows)")
             return _run_strategies(args, table, temps)
         if args.budget_tokens is not None:
@@ -180,7 +211,7 @@ def run(args) -> int:
         temps = temps or spec.get("temperatures")
         if temps is None:
             raise ValueError("--exact needs temperatures: --temperatures or a 'temperatures' field")
-        if args.strategy:
+        if names:
             from bonft.cli.strategy_tables import run_plan_exact
 
             return run_plan_exact(args, spec, temps)

@@ -16,17 +16,50 @@ STRATEGY_HELP = ("comma-separated inference strategies to compare: best_of_k (ve
                  "reward among k, a ceiling); majority_vote and weighted_vote need an answer field in the file")
 
 
+ANSWER_FIELD = "answer"  # --answer-field's default
+VOTES = ("majority_vote", "weighted_vote")  # the strategies that read answer keys
+
+
 def add_strategy_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--strategy", default=None, metavar="NAMES", help=STRATEGY_HELP)
-    p.add_argument("--answer-field", default="answer",
+    p.add_argument("--answer-field", default=ANSWER_FIELD,
                    help="field holding each sample's extracted answer key (default: answer)")
     p.add_argument("--max-subsets", type=int, default=None,
                    help="weighted vote: exact over all k-subsets up to this many, else this many sampled (default: 4000)")
 
 
+def no_empty_items(flag: str, text: str | None) -> None:
+    """A comma-separated option with an empty item (``1,,2``, ``a,``) is refused, not read as the items left."""
+    if text is not None and text.strip() and any(not v.strip() for v in text.split(",")):
+        raise ValueError(f"{flag} must be comma-separated values with none empty, got {text!r}")
+
+
+def check_strategy_options(args, *, exact: bool = False) -> list[str] | None:
+    """``--strategy`` ids (None without it); ``--answer-field`` and ``--max-subsets`` where no strategy given reads
+    them are errors (``exact``: ``plan --exact``, whose answers come from the file and whose values sample nothing)."""
+    names = strategy_names(args.strategy)
+    given = f"with --strategy {args.strategy}" if names else "without --strategy"
+    if args.answer_field != ANSWER_FIELD:
+        if exact:
+            raise ValueError(f"--answer-field has no effect with --exact (answers come from the file's 'answers' "
+                             f"field), got --answer-field {args.answer_field!r}")
+        if not names or not any(n in VOTES for n in names):
+            raise ValueError(f"--answer-field applies to --strategy with majority_vote or weighted_vote (the answer "
+                             f"key they vote on), got --answer-field {args.answer_field!r} {given}")
+    if args.max_subsets is not None:
+        if exact:
+            raise ValueError(f"--max-subsets has no effect with --exact (exact values sample no k-subsets), got "
+                             f"--max-subsets {args.max_subsets}")
+        if not names or "weighted_vote" not in names:
+            raise ValueError(f"--max-subsets applies to --strategy with weighted_vote (the k-subsets its estimate "
+                             f"samples), got --max-subsets {args.max_subsets} {given}")
+    return names
+
+
 def strategy_names(text: str | None) -> list[str] | None:
     from bonft.strategies import get_strategy  # loads torch: only when a command runs
 
+    no_empty_items("--strategy", text)
     names = parse_list("--strategy", text, str)
     if names is None:
         return None
