@@ -69,6 +69,7 @@ def test_paired_bootstrap_of_a_constant_difference_is_that_constant():
     ({"A": curves(5)}, {"confidence": 2}, ValueError, r"confidence must be in \(0, 1\), got confidence=2"),
     ({"A": curves(5)}, {"n_boot": 0}, ValueError, r"n_boot must be >= 1"),
     ({"A": curves(5)}, {"intervals": 1}, TypeError, r"intervals must be a bool, got int 1"),
+    ({"A": curves(5), "B": curves(5)}, {"baselines": ["Z"]}, ValueError, r"baselines must be among the policies \['A', 'B'\], got 'Z'"),
 ])
 def test_paired_comparison_refuses_bad_arguments(t, kw, err, match):
     args = {"ks": [1, 2], "baselines": ["A"], "n_boot": 10, **kw}
@@ -98,6 +99,11 @@ def test_t_interval_refuses_bad_arguments(values, kw, match):
 def test_seed_comparison_refuses_bad_arguments(per_seed, err, match):
     with pytest.raises(err, match=match):
         seed_comparison(per_seed, ks=[1, 2], baselines=["A"])
+
+
+def test_seed_comparison_refuses_an_unknown_baseline():
+    with pytest.raises(ValueError, match=r"baselines must be among the policies \['A'\], got 'Z'"):
+        seed_comparison({0: {"A": curves(5)}, 1: {"A": curves(5)}}, ks=[1, 2], baselines=["Z"])
 
 
 def test_seed_comparison_takes_seeds_with_different_prompt_counts():

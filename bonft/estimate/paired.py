@@ -57,6 +57,13 @@ def _check_interval_options(n_boot: Any, seed: Any, confidence: Any) -> None:
     check_fraction("confidence", confidence, open_low=True, open_high=True)
 
 
+def _check_known(baselines: list[str], names: list) -> None:
+    """Every baseline is one of the compared policies (an unknown one would give no differences, silently)."""
+    for b in baselines:
+        if b not in names:
+            raise ValueError(f"baselines must be among the policies {[str(n) for n in names]}, got {b!r}")
+
+
 def _check_baselines(baselines: Any) -> list[str]:
     """A sequence of policy names (a single str is refused: it would be read letter by letter)."""
     if isinstance(baselines, str):
@@ -198,6 +205,7 @@ def paired_comparison(curves, *, ks, baselines: Sequence[str], n_boot: int = 200
     _check_interval_options(n_boot, seed, confidence)
     check_bool("intervals", intervals)
     names = list(curves)
+    _check_known(baselines, names)
     cols = [(f"pass@{k}", "pass", j) for j, k in enumerate(ks)]
     if all("proxy" in c for c in curves.values()):
         cols.append((f"best-of-{ks[-1]}", "proxy", len(ks) - 1))
@@ -266,6 +274,7 @@ def seed_comparison(per_seed, *, ks, baselines: Sequence[str], confidence: float
     baselines = _check_baselines(baselines)
     check_fraction("confidence", confidence, open_low=True, open_high=True)
     names = list(per_seed[seeds[0]])
+    _check_known(baselines, names)
     cols = [(f"pass@{k}", "pass", j) for j, k in enumerate(ks)]
     if all("proxy" in c for s in seeds for c in per_seed[s].values()):
         cols.append((f"best-of-{ks[-1]}", "proxy", len(ks) - 1))

@@ -45,6 +45,7 @@ def seed_table(curves: Mapping[str, Mapping[str, np.ndarray]], ks: Sequence[int]
     curves: policy -> :func:`~bonft.estimate.paired.per_prompt_curves`. A ``*`` marks a difference whose
     interval excludes 0. caption: a line under every table's title (e.g. which verifier trains and which evaluates).
     """
+    baselines = [b for b in baselines if b in curves]  # a stage the run left out (e.g. no REINFORCE) is no baseline
     comp = paired_comparison(curves, ks=ks, baselines=baselines, n_boot=n_boot, seed=seed, confidence=confidence)
     return paired_table(comp, n_prompts=len(next(iter(curves.values()))["pass"]), labels=LABELS, confidence=confidence,
                         caption=caption)
@@ -58,6 +59,8 @@ def study_table(per_seed: Mapping[int, Mapping[str, Mapping[str, np.ndarray]]], 
     per_seed: seed -> policy -> :func:`~bonft.estimate.paired.per_prompt_curves` (the same policies for every seed).
     caption: a line under every table's title (e.g. which verifier trains and which evaluates).
     """
+    present = next(iter(per_seed.values()), {})
+    baselines = [b for b in baselines if b in present]  # a stage the study left out is no baseline
     comp = seed_comparison(per_seed, ks=ks, baselines=baselines, confidence=confidence)
     return paired_table(comp, labels=LABELS, confidence=confidence, caption=caption)
 
