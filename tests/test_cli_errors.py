@@ -304,3 +304,22 @@ def test_every_seed_option_is_bounded_before_any_work(seed, files, trained, tmp_
                  ["check-objective", f"{cr}:credit", "--target", "pass_at_k", "--k", "2", "--n", "4"]):
         expect_error([*argv, f"--seed={seed}"], r"--seed must be >= 0 and < 2\*\*63 .*got " + seed)
     assert not (tmp_path / "s.jsonl").exists() and not (tmp_path / "demo").exists()
+
+
+def test_eval_and_compare_check_their_output_paths_before_any_work(trained, tmp_path):
+    # a --plot-dir that is a file, or a --json that is a directory, found only after sampling wastes the run
+    a_file = tmp_path / "taken"
+    a_file.write_text("x")
+    expect_error(["eval", trained, "--n", "2", "--ks", "1", "--plot-dir", a_file],
+                 r"--plot-dir must be a directory, got a file: \S+taken$")
+    expect_error(["eval", trained, "--n", "2", "--ks", "1", "--json", tmp_path],
+                 r"--json must be a file path, got a directory: ")
+    samples = trained / "heldout_samples.jsonl"
+    expect_error(["compare", samples, samples, "--names", "a,b", "--plot-dir", a_file],
+                 r"--plot-dir must be a directory, got a file: \S+taken$")
+    expect_error(["compare", samples, samples, "--names", "a,b", "--json", tmp_path],
+                 r"--json must be a file path, got a directory: ")
+    # and the report still goes where it should: atomically, as JSON
+    code, _, err = bonft("eval", trained, "--n", "2", "--ks", "1", "--json", tmp_path / "e.json")
+    assert code == 0, err
+    assert json.loads((tmp_path / "e.json").read_text())["ks"] == [1]

@@ -11,7 +11,14 @@ if sys.version_info >= (3, 11):
 else:  # pragma: no cover - Python 3.10
     import tomli as tomllib
 
-from bonft.cli.options import add_plot_dir, check_sizes, parse_list, write_json_atomic
+from bonft.cli.options import (
+    add_plot_dir,
+    check_output_paths,
+    check_sizes,
+    make_plot_dir,
+    parse_list,
+    write_json_atomic,
+)
 
 HELP = "compare runs evaluated on the same held-out prompts: pass@k and best-of-k with paired differences and CIs"
 DESCRIPTION = (
@@ -154,6 +161,7 @@ def run(args: argparse.Namespace) -> int:
     from bonft.viz import plot_paired_differences
 
     check_sizes(args)
+    check_output_paths(args)  # before any reading: a wrong --json or --plot-dir found at the end wastes the work
     ks = parse_list("--ks", args.ks)
     if len(args.inputs) < 2:
         raise ValueError(f"RUN_OR_FILE must name at least 2 inputs to compare, got {len(args.inputs)}")
@@ -238,8 +246,7 @@ def run(args: argparse.Namespace) -> int:
             **({"per_seed": comp["per_seed"]} if S > 1 else {})})
         print(f"wrote {args.json}")
     if args.plot_dir:
-        os.makedirs(args.plot_dir, exist_ok=True)
-        out = os.path.join(args.plot_dir, "compare_curves.png")
+        out = os.path.join(make_plot_dir(args.plot_dir), "compare_curves.png")
         what = f"{P[0]} prompts, {round(100 * args.confidence)}% bootstrap CI over prompts" if S == 1 else \
             f"{S} training seeds, {round(100 * args.confidence)}% Student-t interval over seeds"
         plot_paired_differences(comp, out, ks=ks, title=what)

@@ -2,10 +2,9 @@
 from __future__ import annotations
 
 import argparse
-import json
 from pathlib import Path
 
-from bonft.cli.options import check_seed, parse_list
+from bonft.cli.options import check_output_paths, check_seed, make_plot_dir, parse_list, write_json_atomic
 
 HELP = "evaluate a checkpoint: pass@k and best-of-k (per verifier) with CIs on held-out prompts"
 DESCRIPTION = (
@@ -85,6 +84,7 @@ def run(args: argparse.Namespace) -> int:
     from bonft._core.checks import check_int, check_positive
     from bonft.trainer.evaluation import evaluate_run  # loads torch: only when a command runs
 
+    check_output_paths(args)  # before the sampling: a wrong --json or --plot-dir found at the end wastes it
     n = check_int("--n", args.n, min=1)
     check_seed("--seed", args.seed)
     ks = parse_list("--ks", args.ks)
@@ -97,12 +97,12 @@ def run(args: argparse.Namespace) -> int:
     rep = evaluate_run(r, step=-1) if args.seed == 0 else _eval_seeded(r, args.seed)
     print(f"{ckpt}\n{rep.table()}")
     if args.json:
-        Path(args.json).write_text(json.dumps({"checkpoint": str(ckpt), **rep.to_dict()}, indent=1))
+        write_json_atomic(args.json, {"checkpoint": str(ckpt), **rep.to_dict()})
     if args.plot_dir:
         from bonft.viz import plot_evaluations
 
-        Path(args.plot_dir).mkdir(parents=True, exist_ok=True)
-        print(f"wrote {plot_evaluations([rep.to_dict()], Path(args.plot_dir) / 'eval_curves.png', title=str(ckpt))}")
+        out = Path(make_plot_dir(args.plot_dir)) / "eval_curves.png"
+        print(f"wrote {plot_evaluations([rep.to_dict()], out, title=str(ckpt))}")
     return 0
 
 
