@@ -147,3 +147,28 @@ def test_bad_input_messages():
         token_logprobs(logits.view(2, 3, 5, 7), labels.view(2, 3, 5), pool_size=3)
     with pytest.raises(ValueError, match=r"logits must have at least 2 positions .* got T=1"):
         token_logprobs(logits[:, :1], labels[:, :1])
+
+
+def test_narrow_integer_labels_and_nan_sources():
+    logits, labels = batch()
+    ref, mask = token_logprobs(logits, labels)
+    # labels of any integer dtype give the same log-probs (gather needs int64 ids: converted, not an error)
+    small = labels.clamp(min=0).to(torch.uint8)
+    a, _ = token_logprobs(logits, small, ignore_index=0)
+    b, _ = token_logprobs(logits, small.long(), ignore_index=0)
+    assert torch.equal(a, b)
+    assert torch.equal(token_logprobs(logits, labels.to(torch.int32))[0], ref)
+    # IEEE 754 single precision: 3 / 1e-40 overflows to inf, and inf - logsumexp(inf, ...) = inf - inf is NaN;
+    # such a temperature is named instead of returning NaN log-probs
+    with pytest.raises(ValueError, match=r"temperature must leave logits / temperature finite, got temperature=1e-40 "
+                                         r"with largest \|logit\| \d"):
+        token_logprobs(logits, labels, temperature=1e-40)
+    nan = logits.clone()
+    nan[1, 3, 2] = float("nan")
+    with pytest.raises(ValueError, match=r"logits must not hold NaN, got NaN at index \(1, 3, 2\)"):
+        token_logprobs(nan, labels)
+    # a -inf logit (a token the model forbids) is no NaN: its own log-prob is -inf, the others finite
+    forbid = logits.clone()
+    forbid[..., 6] = -float("inf")
+    lp, _ = token_logprobs(forbid, labels)
+    assert not torch.isnan(lp).any()

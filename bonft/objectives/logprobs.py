@@ -52,7 +52,9 @@ def token_logprobs(logits, labels, *, temperature=1.0, ignore_index=-100, pool_s
     outside ``[0, V)`` other than ``ignore_index`` (one read of the labels), fewer than 2
     positions, a temperature that is not a finite number > 0, and a ``pool_size`` that
     does not divide ``N`` (or is given with 4-dimensional logits, where it is the
-    second axis already).
+    second axis already). A NaN log-prob (one read of the result) is an error naming its
+    source: NaN logits, or a temperature so small that ``logits / temperature`` overflows.
+    Labels of any integer dtype are taken.
 
     References: the softmax at a temperature (common practice); Williams 1992 (the
     score-function gradient these log-probs feed).
@@ -91,9 +93,23 @@ def token_logprobs(logits, labels, *, temperature=1.0, ignore_index=-100, pool_s
         z = z.float()
     if temperature != 1.0:
         z = z / temperature
-    picked = z.gather(-1, torch.where(valid, y, 0).unsqueeze(-1)).squeeze(-1)
+    picked = z.gather(-1, torch.where(valid, y, 0).long().unsqueeze(-1)).squeeze(-1)  # gather takes int64 ids
     lp = torch.where(valid, picked - torch.logsumexp(z, -1), 0.0)
+    if bool(torch.isnan(lp).any()):  # one read of the (..., T-1) result; the diagnosis only on this path
+        _explain_nan(logits, temperature)
     return lp.reshape(shape), valid.reshape(shape)
+
+
+def _explain_nan(logits: Tensor, temperature: float) -> None:
+    """A NaN log-prob came from NaN logits or from logits / temperature overflowing (inf - inf): say which."""
+    nan = torch.isnan(logits)
+    if bool(nan.any()):
+        idx = tuple(int(i) for i in torch.nonzero(nan)[0].tolist())
+        raise ValueError(f"logits must not hold NaN, got NaN at index {idx}")
+    top = float(logits.detach().abs().amax())
+    raise ValueError(f"temperature must leave logits / temperature finite, got temperature={temperature:g} with "
+                     f"largest |logit| {top:.4g} (or logits of +-inf): the log-probs would be NaN; sample and score at "
+                     f"a larger temperature")
 
 
 def _output_shape(logits: Tensor, pool_size) -> tuple[int, ...]:
