@@ -70,6 +70,28 @@ def test_csv_parquet_json_and_saved_dataset_match_the_standard_readers(tmp_path)
         UserTask(data=tmp_path / "saved_dict", prompt_field="question")
 
 
+def test_csv_cells_are_read_as_written(tmp_path):
+    # a reader that infers types turns an integer column with a blank cell into floats ('1' -> '1.0'), so the
+    # exact verifier would refuse the right answer; Python's csv module (the reference) keeps the text
+    path = tmp_path / "totals.csv"
+    path.write_text("prompt,total\nx?,1\ny?,\nz?,007\n")
+    task = UserTask(data=str(path), prompt_field="prompt", answer_field="total")
+    with open(path, newline="") as f:
+        assert [ex.meta["fields"] for ex in task.examples] == [dict(r) for r in csv.DictReader(f)]
+    assert [ex.meta["fields"]["total"] for ex in task.examples] == ["1", "", "007"]
+    x = next(ex for ex in task.examples if ex.prompt == "x?")
+    assert task.verifier(task.examples)(["x?"], ["1"]).scores.tolist() == [1.0] and x.meta["where"].endswith("line 2")
+    (tmp_path / "ragged.csv").write_text("prompt,total\nx?,1,2\n")
+    with pytest.raises(ValueError, match=r"ragged.csv' line 2: 3 cells, but the header names 2 columns"):
+        UserTask(data=str(tmp_path / "ragged.csv"), prompt_field="prompt")
+    (tmp_path / "twice.csv").write_text("prompt,prompt\nx?,y?\n")
+    with pytest.raises(ValueError, match=r"twice.csv' line 1: the header must name every column once"):
+        UserTask(data=str(tmp_path / "twice.csv"), prompt_field="prompt")
+    (tmp_path / "latin.csv").write_bytes(b"prompt\ncaf\xe9?\n")
+    with pytest.raises(ValueError, match=r"latin.csv' is not UTF-8 text \(byte 0xe9\)"):
+        UserTask(data=str(tmp_path / "latin.csv"), prompt_field="prompt")
+
+
 def test_field_map_answers_references_and_extra_fields(tmp_path):
     rows = [{"q": "a?", "ans": " 4 ", "ref": "4", "tests": "assert 1", "noise": 1}, {"q": "b?", "ans": 5, "ref": "5", "tests": "x", "noise": 2}]
     task = UserTask(data=write_jsonl(tmp_path / "d.jsonl", rows), prompt_field="q", answer_field="ans",

@@ -44,6 +44,7 @@ see docs/training.md), and run model-written code only in a sandbox.
 """
 from __future__ import annotations
 
+import csv
 import os
 import random
 import tempfile
@@ -55,7 +56,7 @@ from bonft.tasks.base import ExactVerifier, Example, Task, _check_examples
 from bonft.tasks.prompts import _read_jsonl, normalize_text
 from bonft.verifiers.fields import bind_rows
 
-FILE_FORMATS = {".json": "json", ".csv": "csv", ".parquet": "parquet"}
+FILE_FORMATS = {".json": "json", ".parquet": "parquet"}  # read through datasets; .jsonl and .csv: our readers
 
 
 def _is_dataset(obj: Any) -> bool:
@@ -89,6 +90,10 @@ def _load_rows(data: Any, dataset_split: str | None) -> tuple[list[tuple[dict, s
         numbered = _read_jsonl(path)
         cols = sorted(set().union(*(row for _, row in numbered))) if numbered else []
         return [(row, f"{path} line {no}") for no, row in numbered], repr(str(path)), cols
+    if suffix == ".csv":
+        numbered = _read_csv(path)
+        cols = list(numbered[0][1]) if numbered else []
+        return [(row, f"{path} line {no}") for no, row in numbered], repr(str(path)), cols
     if suffix not in FILE_FORMATS:
         raise ValueError(f"data must be a .jsonl, .json, .csv or .parquet file or a saved datasets directory, got {str(path)!r}")
     import datasets
@@ -97,6 +102,35 @@ def _load_rows(data: Any, dataset_split: str | None) -> tuple[list[tuple[dict, s
         ds = datasets.load_dataset(FILE_FORMATS[suffix], data_files=str(path), split="train", cache_dir=cache,
                                    keep_in_memory=True)
         return _dataset_rows(ds, None, repr(str(path)))
+
+
+def _read_csv(path: Path) -> list[tuple[int, dict]]:
+    """``[(line, row)]`` of a CSV file with a header line, every cell the text as written (Python's csv module).
+
+    A reader that infers types changes text: a column of integers with one blank cell becomes floats, so an
+    answer ``1`` would read as ``'1.0'``. Cells stay strings here (a blank one ''); a verifier converts them.
+    """
+    try:
+        with open(path, newline="", encoding="utf-8") as f:
+            reader = csv.reader(f)
+            header = next(reader, None)
+            if header is None:
+                return []
+            if len(set(header)) != len(header) or not all(header):
+                raise ValueError(f"data {str(path)!r} line 1: the header must name every column once, got {header}")
+            out = []
+            for cells in reader:
+                if not cells:
+                    continue  # a blank line
+                if len(cells) != len(header):
+                    raise ValueError(f"data {str(path)!r} line {reader.line_num}: {len(cells)} cells, but the header "
+                                     f"names {len(header)} columns")
+                out.append((reader.line_num, dict(zip(header, cells))))
+    except UnicodeDecodeError as e:
+        raise ValueError(f"data {str(path)!r} is not UTF-8 text (byte {e.object[e.start]:#04x}); save it as UTF-8") from None
+    except csv.Error as e:
+        raise ValueError(f"data {str(path)!r}: not valid CSV ({e})") from None
+    return out
 
 
 def _dataset_rows(ds: Any, dataset_split: str | None, name: str) -> tuple[list[tuple[dict, str]], str, list[str]]:
