@@ -9,7 +9,8 @@
 In a recipe: ``task = "user"`` and the same names under ``[task_params]``.
 
 data:            a ``.jsonl`` file (read line by line; errors name the line), a
-                 ``.json`` / ``.csv`` / ``.parquet`` file (read through
+                 ``.csv`` file (Python's csv module: every cell the text as
+                 written), a ``.json`` / ``.parquet`` file (read through
                  ``datasets``), a directory written by ``Dataset.save_to_disk``
                  (read with ``datasets.load_from_disk``), or, from Python, a
                  ``datasets.Dataset`` / ``DatasetDict`` object. Local only.
