@@ -222,3 +222,16 @@ def test_sampler_and_training_forward_see_the_chat_template_tokens(tmp_path):
         want = list(want["input_ids"]) if hasattr(want, "keys") else list(want)
         assert smp.prompt_tokens[b][smp.prompt_valid[b] == 1].tolist() == want  # what the sampler conditioned on
         assert pids[b][pvalid[b] == 1].tolist() == want  # what the training forward conditions on
+
+
+def test_chat_template_without_the_start_token_the_tokenizer_adds_says_how_to_fix_it(tmp_path):
+    # build_tokenizer adds <bos> to every text; a template that does not render {{ bos_token }} makes the rendered
+    # text one token longer than apply_chat_template's tokens: the error names the start token and both fixes
+    tok = build_tokenizer()
+    tok.chat_template = TEMPLATE.replace("{{ bos_token }}", "")
+    assert "bos_token" not in tok.chat_template
+    path = write_jsonl(tmp_path / "d.jsonl", ROWS)
+    with pytest.raises(ValueError, match=r"the tokenizer adds its start token '<bos>' to every text, but the chat template "
+                                         r"does not render it.*begin the template with \{\{ bos_token \}\}, or make the "
+                                         r"tokenizer not add it \(add_bos_token = false"):
+        UserTask(data=path, prompt_field="question", chat_template=True, tokenizer=tok)

@@ -161,8 +161,17 @@ def _render(tokenizer: Any, text: str, system: str | None) -> str:
     bos = getattr(tokenizer, "bos_token", None)
     if bos and rendered.startswith(bos) and list(tokenizer(rendered[len(bos):])["input_ids"]) == want:
         return rendered[len(bos):]  # the tokenizer adds its start token itself
+    got = list(tokenizer(rendered)["input_ids"])
+    bos_id = getattr(tokenizer, "bos_token_id", None)
+    if bos and bos_id is not None and got == [bos_id] + want:
+        raise ValueError(f"chat_template: the tokenizer adds its start token {bos!r} to every text, but the chat template "
+                         f"does not render it, so the prompt text tokenizes to one token more than the template's "
+                         f"tokens; begin the template with {{{{ bos_token }}}}, or make the tokenizer not add it "
+                         f"(add_bos_token = false in tokenizer_config.json)")
+    at = next((i for i, (a, b) in enumerate(zip(got, want)) if a != b), min(len(got), len(want)))
     raise ValueError("chat_template: the rendered prompt does not tokenize back to apply_chat_template's tokens "
-                     f"(rendered {rendered!r:.80}); this tokenizer's template cannot be used as prompt text")
+                     f"(rendered {rendered!r:.80}; they differ from token {at}: {got[at:at + 3]} against "
+                     f"{want[at:at + 3]}); this tokenizer's template cannot be used as prompt text")
 
 
 def _load_tokenizer(tokenizer: Any) -> Any:
