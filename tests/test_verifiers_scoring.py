@@ -87,6 +87,18 @@ def test_bad_arguments_name_themselves():
         score_batch(picky, ["p"], ["r"], timeout=0)
 
 
+def test_a_verifier_returning_text_is_a_failure_not_a_parsed_score():
+    # "1" from a verifier is a bug (a str where a float belongs); it was parsed to 1.0 without a word
+    with pytest.raises(TypeError, match=r"scores must be numbers, got str '1': a verifier returns floats"):
+        Verdicts(scores=["1", "0"])
+    with pytest.raises(TypeError, match=r"rewards must be numbers, got str 'yes'"):
+        Verdicts(scores=[1.0], rewards=["yes"])
+    v = score_batch(lambda ps, rs: ["1"] * len(rs), ["p"] * 2, ["a", "b"])
+    assert v.n_failed == 2 and v.scores.tolist() == [0.0, 0.0]
+    assert "scores must be numbers, got str '1'" in v.reasons[0]
+    assert Verdicts(scores=[True, 0, 2.5]).scores.tolist() == [1.0, 0.0, 2.5]  # bools and ints are numbers
+
+
 def test_empty_batch():
     assert len(score_batch(picky, [], [])) == 0
 

@@ -25,6 +25,21 @@ from typing import Any, Protocol, Sequence, runtime_checkable
 import numpy as np
 
 
+class _TextNotNumbers(TypeError):
+    """A verifier returned text where numbers belong."""
+
+
+def _numbers(name: str, x: Any) -> np.ndarray:
+    """(N,) float64 of a verifier's numbers; text is refused, not parsed (``"1"`` is a verifier's bug, not a score)."""
+    a = np.asarray(x)
+    if a.dtype.kind in "USO":
+        for v in a.reshape(-1):
+            if isinstance(v, (str, bytes)):
+                text = str(v) if isinstance(v, str) else bytes(v)
+                raise _TextNotNumbers(f"{name} must be numbers, got {type(text).__name__} {text!r}: a verifier returns floats")
+    return np.asarray(a, dtype=np.float64).reshape(-1)
+
+
 @dataclass
 class Verdicts:
     """Scores for a batch of N (prompt, response) pairs.
@@ -42,10 +57,10 @@ class Verdicts:
     reasons: list[str | None] | None = None
 
     def __post_init__(self) -> None:
-        self.scores = np.asarray(self.scores, dtype=np.float64).reshape(-1)
+        self.scores = _numbers("scores", self.scores)
         n = self.scores.shape[0]
         if self.rewards is not None:
-            self.rewards = np.asarray(self.rewards, dtype=np.float64).reshape(-1)
+            self.rewards = _numbers("rewards", self.rewards)
             if self.rewards.shape[0] != n:
                 raise ValueError(f"rewards must have length {n} like scores, got {self.rewards.shape[0]}")
         self.failed = np.zeros(n, dtype=bool) if self.failed is None else np.asarray(self.failed, dtype=bool).reshape(-1)
@@ -78,7 +93,9 @@ def as_verdicts(out: Any, n: int) -> Verdicts:
         v = Verdicts(scores=out[0], rewards=out[1])
     else:
         try:
-            v = Verdicts(scores=np.asarray(out, dtype=np.float64))
+            v = Verdicts(scores=out)
+        except _TextNotNumbers:
+            raise
         except (TypeError, ValueError):
             raise TypeError(
                 f"a verifier must return Verdicts, an array of {n} scores or (scores, rewards), got {type(out).__name__}"
