@@ -386,3 +386,20 @@ def test_bad_input_messages():
         best_of_k_credit("abc", R, k=1)
     with pytest.raises(ValueError, match=r"rewards must not be empty"):
         reinforce_credit(np.zeros((2, 0)))
+
+
+@pytest.mark.filterwarnings("ignore:overflow encountered:RuntimeWarning", "ignore:invalid value:RuntimeWarning")
+def test_finite_inputs_whose_credit_overflows_are_a_value_error_not_nan():
+    # IEEE 754 double arithmetic: 1e308 - (-1e308) = 2e308 exceeds the largest double (1.798e308), so the
+    # leave-one-out credit of these finite rewards is +-inf; 1 / 1e-320 overflows too. Named, never returned.
+    from bonft.objectives.credit import best_of_k_credit, best_of_k_sft_credit, reinforce_credit
+
+    msg = r"credit must be finite, got (-?inf|nan) at index \(0, \d\) from finite inputs"
+    with pytest.raises(ValueError, match=msg):
+        reinforce_credit([[1e308, -1e308]])
+    with pytest.raises(ValueError, match=msg):
+        best_of_k_credit([[0.0, 1.0]], [[1e308, -1e308]], k=1)
+    with pytest.raises(ValueError, match=msg):
+        best_of_k_sft_credit(np.ones((1, 3)), np.zeros(1), k=2, smoothing=1e-320)
+    # large but representable: finite credit, (1e307 - (-1e307)) / 2 = 1e307
+    assert reinforce_credit([[1e307, -1e307]]).tolist() == [[1e307, -1e307]]

@@ -126,7 +126,7 @@ def pool_value(scores, rewards, *, k):
     kind = out_kind(rewards, scores)
     s, R = scored_pool(scores, rewards)
     k = check_k(k, s.shape[1])
-    return finish(_best_of_k_core(s, R, k, "none")[1], kind)
+    return finish(_best_of_k_core(s, R, k, "none")[1], kind, "pool_value")
 
 
 def pass_at_k_credit(correct, *, k, estimator="unbiased", positive_only=False):

@@ -105,8 +105,18 @@ def out_kind(*xs: Any) -> tuple[bool, Any, Any]:
     return False, None, None
 
 
-def finish(w: np.ndarray, kind: tuple[bool, Any, Any]):
-    """A float64 host result in the kind :func:`out_kind` chose."""
+def finish(w: np.ndarray, kind: tuple[bool, Any, Any], name: str = "credit"):
+    """A float64 host result in the kind :func:`out_kind` chose; a non-finite one is a ``ValueError``.
+
+    Finite inputs can still give an infinity or NaN in float64 (rewards near 1e308 whose differences or sums
+    overflow, a smoothing of 1e-320 that divides to infinity): named here, never returned. One reduction.
+    """
+    if not math.isfinite(np.add.reduce(w, axis=None)):
+        bad = ~np.isfinite(w)
+        if bad.any():
+            idx = tuple(int(i) for i in np.argwhere(bad)[0])
+            raise ValueError(f"{name} must be finite, got {w[idx]} at index {idx} from finite inputs: their sums or "
+                             f"differences overflow float64 (values near 1e308, or a divisor near 0); scale them")
     as_torch, dtype, device = kind
     if as_torch:
         return torch.from_numpy(w).to(device=device, dtype=dtype)
