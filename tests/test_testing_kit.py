@@ -214,10 +214,11 @@ _POOL = {"prompt": "2+2?", "responses": ["answer: 4", "5"]}
 @pytest.mark.parametrize("examples, message", [
     # a misspelt key would drop what it holds while the check still reports OK
     ([{**_POOL, "reward": [1, 0]}], r"examples\[0\] has unknown key 'reward': a pool takes only the keys prompt, "
-                                    r"responses, rewards, labels \(a sample takes prompt, response, reward, label\)"),
+                                    r"responses, rewards, labels, row \(a sample takes prompt, response, reward, label, "
+                                    r"row\)"),
     ([{**_POOL, "rewards": [1, 0], "lables": [1, 0]}], r"examples\[0\] has unknown key 'lables'"),
     ([{**_SAMPLE, "rewrd": 1}], r"examples\[0\] has unknown key 'rewrd': a sample takes only the keys prompt, response, "
-                                r"reward, label"),
+                                r"reward, label, row"),
     ([{**_POOL, "response": "x"}], r"examples\[0\] has unknown key 'response': a pool takes only"),
     # rewards on some samples only: labels and curves would rest on part of the data
     ([{**_POOL, "rewards": [1, 0]}, {"prompt": "3*3?", "responses": ["9"]}],
@@ -260,7 +261,8 @@ def test_examples_file_with_a_misspelt_key_or_rewards_on_some_lines(tmp_path, ca
     ver.write_text("def score(prompts, responses):\n    return [float('4' in r) for r in responses]\n")
     cases = {
         "typo.jsonl": ('{"prompt": "p", "response": "4", "rewrd": 1}\n',
-                       r"typo.jsonl:1 has unknown key 'rewrd': a sample takes only the keys prompt, response, reward, label"),
+                       r"typo.jsonl:1 has unknown key 'rewrd': a sample takes only the keys prompt, response, "
+                       r"reward, label, row"),
         "partial.jsonl": ('{"prompt": "p", "response": "4", "reward": 1}\n\n{"prompt": "p", "response": "5"}\n',
                           r"partial.jsonl:3 has no reward but line 1 has one: give every sample a reward or none"),
     }
@@ -285,3 +287,103 @@ def test_slow_verifier_timeouts_are_counted():
     rep = check_verifier(slow_on_long, pools, timeout=0.2)
     assert (rep.n_timeouts, rep.n_exceptions, rep.n_nan) == (1, 0, 0)
     assert "timeouts 1), e.g. timeout after 0.2 s" in rep.problems[0], rep.problems
+
+
+# ----------------------------------------------------------------------------- verifiers that read data rows
+def loose(prompts, responses, rows):
+    """A `rows` grader like the jars one in docs/your-task.md: 1 when the response ends in the total's last digit."""
+    return [float(r.strip()[-1:] == str(row["total"])[-1]) for r, row in zip(responses, rows)]
+
+
+def strict(prompts, responses, rows):
+    return [float(r.strip() == str(row["total"])) for r, row in zip(responses, rows)]
+
+
+# two prompts, three samples each; the reward is 1 for the exact total (hand-written truth)
+JARS = [{"prompt": "jars 3+4", "response": r, "reward": float(r == "7"), "row": {"total": 7}} for r in ("7", "17", "6")]
+JARS += [{"prompt": "jars 9+6", "response": r, "reward": float(r == "15"), "row": {"total": 15}} for r in ("15", "5", "25")]
+
+
+def test_a_rows_grader_is_bound_to_the_examples_rows():
+    rep = check_verifier(loose, JARS, min_auc=0.0)
+    # loose scores 7:1 17:1 6:0 | 15:1 5:1 25:1 against labels 1 0 0 | 1 0 0 (reward > 0.5)
+    # accuracy at 0.5: right on "7", "6", "15" -> 3/6
+    # AUC (Mann & Whitney 1947, pairs positive > negative, ties 1/2): each positive (score 1) against the
+    # negatives 1, 0, 1, 1 gets 0.5 + 1 + 0.5 + 0.5 = 2.5 -> 5 / (2 * 4) = 0.625
+    assert (rep.n_labelled, rep.n_positive, rep.failure_rate) == (6, 2, 0.0)
+    assert rep.accuracy == pytest.approx(0.5) and rep.auc == pytest.approx(0.625)
+    # best-of-k by enumerating the k-subsets, ties broken at random (expected reward among the tied top):
+    # pool 1 scores 1 1 0, rewards 1 0 0: k=2 {7,17} 1/2, {7,6} 1, {17,6} 0 -> 1/2; k=3 -> 1/2
+    # pool 2 scores 1 1 1: every pick is a random one -> 1/3 at each k
+    assert rep.ks == [1, 2, 3]
+    np.testing.assert_allclose(rep.best_of_k, [1 / 3, (1 / 2 + 1 / 3) / 2, (1 / 2 + 1 / 3) / 2], rtol=1e-12)
+    # pass@k with one correct of 3 (Chen et al. 2021): 1 - C(2, k)/C(3, k) = 1/3, 2/3, 1
+    np.testing.assert_allclose(rep.pass_at_k, [1 / 3, 2 / 3, 1.0], rtol=1e-12)
+    # the pool form, rows once per pool: the strict grader agrees with the truth everywhere
+    pools = [{"prompt": p, "responses": rs, "rewards": [float(r == str(t)) for r in rs], "row": {"total": t}}
+             for p, rs, t in (("jars 3+4", ["7", "17", "6"], 7), ("jars 9+6", ["15", "5", "25"], 15))]
+    rep = check_verifier(strict, pools)
+    assert rep.ok and (rep.accuracy, rep.auc) == (1.0, 1.0), str(rep)
+
+
+class TotalsCheck:
+    """A verifier object that declares its fields and is bound to rows (the UnitTests shape)."""
+
+    fields = {"total": "the right total"}
+
+    def bind(self, rows):
+        totals = {p: str(row["total"]) for p, row in rows.items()}
+        return lambda prompts, responses: [float(r == totals[p]) for p, r in zip(prompts, responses)]
+
+    def __call__(self, prompts, responses):
+        raise TypeError("bind me first")
+
+
+def test_a_fields_and_bind_verifier_is_bound_to_the_examples_rows():
+    rep = check_verifier(TotalsCheck(), JARS)
+    assert rep.ok and (rep.accuracy, rep.auc, rep.failure_rate) == (1.0, 1.0, 0.0), str(rep)
+
+
+def _no_row(examples):
+    return [{k: v for k, v in ex.items() if k != "row"} for ex in examples]
+
+
+@pytest.mark.parametrize("verifier, examples, error, message", [
+    (loose, _no_row(JARS), ValueError,
+     r"verifier loose reads each prompt's data row, but examples\[0\] \(prompt 'jars 3\+4'\) has no 'row': give every "
+     r"example its prompt's data fields"),
+    (loose, JARS[:5] + _no_row(JARS[5:]), ValueError, r"but examples\[5\] \(prompt 'jars 9\+6'\) has no 'row'"),
+    (TotalsCheck(), _no_row(JARS), ValueError, r"verifier TotalsCheck reads each .* \"row\": \{\"total\": \.\.\.\}"),
+    (EXACT, [{**_SAMPLE, "row": {"total": 4}}], ValueError,
+     r"examples\[0\] has a 'row', but verifier ExactMatch reads no data rows .* cannot take effect; drop 'row'"),
+    (TotalsCheck(), [{**ex, "row": {"sum": 7}} for ex in JARS], ValueError,
+     r"examples\[0\]: field 'total' is missing, and verifier TotalsCheck needs it \(the right total\); the row has \['sum'\]"),
+    (loose, [*JARS[:1], {**JARS[1], "row": {"total": 8}}], ValueError,
+     r"examples\[1\]\['row'\] differs from examples\[0\]\['row'\] for the same prompt 'jars 3\+4': a prompt has one "
+     r"data row"),
+    (loose, [{**JARS[0], "row": [7]}], TypeError, r"examples\[0\]\['row'\] must be a dict of the prompt's data fields"),
+])
+def test_rows_that_are_missing_superfluous_or_incomplete_are_refused(verifier, examples, error, message):
+    with pytest.raises(error, match=message):
+        check_verifier(verifier, examples)
+
+
+JAR_GRADER = '''
+def loose(prompts, responses, rows):
+    return [float(r.strip()[-1:] == str(row["total"])[-1]) for r, row in zip(responses, rows)]
+
+def plain(prompts, responses):
+    return [float(r.isdigit()) for r in responses]
+'''
+
+
+def test_cli_rows_on_the_examples_lines(tmp_path, capsys):
+    (tmp_path / "jar_grader.py").write_text(JAR_GRADER)
+    (tmp_path / "ex.jsonl").write_text("".join(json.dumps(x) + "\n" for x in JARS))
+    grader, ex = f"{tmp_path / 'jar_grader.py'}", str(tmp_path / "ex.jsonl")
+    assert cli_main(["check-verifier", f"{grader}:loose", "--examples", ex, "--json", str(tmp_path / "r.json")]) == 0
+    rep = json.loads((tmp_path / "r.json").read_text())  # the figures of test_a_rows_grader_is_bound_to_the_examples_rows
+    assert (rep["accuracy"], rep["auc"], rep["failure_rate"], rep["problems"]) == (0.5, 0.625, 0.0, [])
+    capsys.readouterr()
+    assert cli_main(["check-verifier", f"{grader}:plain", "--examples", ex]) == 2
+    assert "examples[0] has a 'row', but verifier plain reads no data rows" in capsys.readouterr().err

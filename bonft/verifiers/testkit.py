@@ -26,6 +26,15 @@ by prompt); ``rewards`` and ``labels`` are optional. Any other key is an error
 one response, and rewards come with every sample or with none (with only some,
 labels and curves would silently rest on part of the data). :func:`read_examples`
 reads the per-sample form from JSON Lines.
+
+A verifier that reads each prompt's data row (a function with a parameter named
+``rows``, or an object with ``fields`` and ``bind(rows)`` such as
+:class:`~bonft.verifiers.fields.UnitTests`) is bound to the examples' rows with
+:func:`~bonft.verifiers.fields.bind_rows`, as the trainer binds it to the data:
+every example then carries ``"row"``, a dict of its prompt's data fields
+(``{"prompt": "jars 3+4", "response": "7", "row": {"total": 7}}``). A
+row-reading verifier with an example lacking its row, a ``row`` given to a
+verifier that reads none, or two rows for one prompt is an error.
 """
 from __future__ import annotations
 
@@ -39,6 +48,7 @@ import numpy as np
 
 from bonft._core.checks import check_int, check_real
 from bonft.estimate import best_of_k_per_prompt, default_ks, pass_at_k_per_prompt
+from bonft.verifiers.fields import _takes_rows, bind_rows, needed_fields
 from bonft.verifiers.report import VerifierReport, roc_auc
 from bonft.verifiers.scoring import score_batch
 
@@ -89,7 +99,7 @@ def sample_pools(n: int = 4, *, max_prompts: int = 3, rewards: bool = True):
 
 # ----------------------------------------------------------------------------- examples
 def read_examples(path: str) -> list[dict]:
-    """Per-sample JSON Lines ``{"prompt", "response", "reward"?, "label"?}`` -> list of dicts.
+    """Per-sample JSON Lines ``{"prompt", "response", "reward"?, "label"?, "row"?}`` -> list of dicts.
 
     A key outside these, or a reward on some lines but not others, is a ``ValueError`` naming the line.
     """
@@ -119,8 +129,8 @@ def read_examples(path: str) -> list[dict]:
     return out
 
 
-_POOL_KEYS = ("prompt", "responses", "rewards", "labels")
-_SAMPLE_KEYS = ("prompt", "response", "reward", "label")
+_POOL_KEYS = ("prompt", "responses", "rewards", "labels", "row")
+_SAMPLE_KEYS = ("prompt", "response", "reward", "label", "row")
 
 
 def _check_keys(ex: Mapping, where: str) -> None:
@@ -199,6 +209,57 @@ def _pools(examples: Any, labels: Any) -> list[dict]:
     return out
 
 
+def _reads_rows(verifier: Any) -> bool:
+    """True for a verifier that :func:`bind_rows` binds to data rows (``bind``, or a parameter named ``rows``)."""
+    return hasattr(verifier, "bind") or _takes_rows(verifier)
+
+
+def _verifier_name(verifier: Any) -> str:
+    return getattr(verifier, "__name__", None) or type(verifier).__name__
+
+
+def _example_rows(examples: Sequence[Mapping]) -> tuple[dict[str, tuple[dict, int]], tuple[int, str] | None,
+                                                        int | None]:
+    """``(prompt -> (row, first example index), (index, prompt) of the first example without a row,
+    index of the first example with one)``; a row that is not a dict, or two rows for one prompt, is an error."""
+    rows: dict[str, tuple[dict, int]] = {}
+    without = with_row = None
+    for i, ex in enumerate(examples):
+        p = ex["prompt"]
+        if "row" not in ex:
+            without = without or (i, p)
+            continue
+        with_row = i if with_row is None else with_row
+        row = ex["row"]
+        if not isinstance(row, Mapping) or not all(isinstance(k, str) for k in row):
+            raise TypeError(f"examples[{i}]['row'] must be a dict of the prompt's data fields (field name -> value), "
+                            f"got {type(row).__name__} {row!r:.60}")
+        if p in rows and rows[p][0] != dict(row):
+            raise ValueError(f"examples[{i}]['row'] differs from examples[{rows[p][1]}]['row'] for the same prompt "
+                             f"{p!r:.40}: a prompt has one data row")
+        rows.setdefault(p, (dict(row), i))
+    return rows, without, with_row
+
+
+def _bind_examples(verifier: Any, examples: Sequence[Mapping]) -> Any:
+    """``verifier`` bound to the examples' rows when it reads rows (as the trainer binds it to the data), else itself."""
+    rows, without, with_row = _example_rows(examples)
+    name = _verifier_name(verifier)
+    if not _reads_rows(verifier):
+        if with_row is not None:
+            raise ValueError(f"examples[{with_row}] has a 'row', but verifier {name} reads no data rows (it has neither "
+                             "a parameter named 'rows' nor fields + bind), so the row cannot take effect; drop 'row'")
+        return verifier
+    if without is not None:
+        i, p = without
+        need = list(needed_fields(verifier))
+        like = ", ".join(f'"{f}": ...' for f in need) if need else '"field": ...'
+        raise ValueError(f"verifier {name} reads each prompt's data row, but examples[{i}] (prompt {p!r:.40}) has no "
+                         f"'row': give every example its prompt's data fields, \"row\": {{{like}}} (on every line of "
+                         "an examples file), or bind the rows of a recipe's data: bonft check-verifier --recipe RECIPE.toml")
+    return bind_rows(verifier, [(p, row, f"examples[{i}]") for p, (row, i) in rows.items()])
+
+
 def _check_kw(threshold, repeats, timeout, max_failure_rate, min_auc, bend_tol, rtol, pool_size) -> None:
     check_real("threshold", threshold)
     check_real("max_failure_rate", max_failure_rate, min=0.0, max=1.0)
@@ -230,7 +291,9 @@ def check_verifier(
     """Test ``verifier`` on example pools; returns a :class:`VerifierReport` (``.ok``, ``.problems``).
 
     examples:   pools per prompt (see the module docstring); an unknown key, an empty pool or
-                rewards on only some samples is a ValueError.
+                rewards on only some samples is a ValueError. With a verifier that reads data rows,
+                every example needs its ``row`` (a dict of fields); a ``row`` for any other verifier is
+                a ValueError.
     labels:     one list of bools per pool (in order of first appearance);
                 default the examples' labels, else ``reward > 0.5``.
     threshold:  a sample is predicted correct when its score is >= threshold.
@@ -251,10 +314,11 @@ def check_verifier(
     are no curves. The curve uses ``bonft.estimate.best_of_k_per_prompt`` and
     ``pass_at_k_per_prompt`` (all k-subsets of each pool, exactly).
     """
-    if not callable(verifier):
+    if not callable(verifier) and not hasattr(verifier, "bind"):
         raise TypeError(f"verifier must be callable as verifier(prompts, responses), got {type(verifier).__name__}")
     _check_kw(threshold, repeats, timeout, max_failure_rate, min_auc, bend_tol, rtol, pool_size)
     pools = _pools(examples, labels)
+    verifier = _bind_examples(verifier, examples)
     if pool_size is not None:
         for pool in pools:
             for key in ("responses", "rewards", "labels"):
