@@ -203,7 +203,7 @@ def test_examples_and_arguments_are_validated(tmp_path):
         check_verifier("exact", POOLS)
     bad = tmp_path / "bad.jsonl"
     bad.write_text('{"prompt": "p", "response": "r"}\nnot json\n')
-    with pytest.raises(ValueError, match=r"bad.jsonl:2: examples must be JSON objects, got invalid JSON"):
+    with pytest.raises(ValueError, match=r"bad.jsonl line 2: not valid JSON \(Expecting value at column 1\)"):
         read_examples(str(bad))
 
 
@@ -261,10 +261,10 @@ def test_examples_file_with_a_misspelt_key_or_rewards_on_some_lines(tmp_path, ca
     ver.write_text("def score(prompts, responses):\n    return [float('4' in r) for r in responses]\n")
     cases = {
         "typo.jsonl": ('{"prompt": "p", "response": "4", "rewrd": 1}\n',
-                       r"typo.jsonl:1 has unknown key 'rewrd': a sample takes only the keys prompt, response, "
+                       r"typo.jsonl line 1 has unknown key 'rewrd': a sample takes only the keys prompt, response, "
                        r"reward, label, row"),
         "partial.jsonl": ('{"prompt": "p", "response": "4", "reward": 1}\n\n{"prompt": "p", "response": "5"}\n',
-                          r"partial.jsonl:3 has no reward but line 1 has one: give every sample a reward or none"),
+                          r"partial.jsonl line 3 has no reward but line 1 has one: give every sample a reward or none"),
     }
     for name, (text, message) in cases.items():
         (tmp_path / name).write_text(text)
@@ -366,6 +366,36 @@ def _no_row(examples):
 def test_rows_that_are_missing_superfluous_or_incomplete_are_refused(verifier, examples, error, message):
     with pytest.raises(error, match=message):
         check_verifier(verifier, examples)
+
+
+@pytest.mark.parametrize("content, message", [
+    (b'{"prompt": "p", "response": "4"}\n{"prompt": "\xff", "response": "5"}\n',
+     r"ex.jsonl line 2: not UTF-8 text \(byte 0xff at column 13\); save the file as UTF-8"),
+    (b'{"prompt": "p", "response": "4"}\n' + b"[" * 100_000 + b"]" * 100_000 + b"\n",
+     r"ex.jsonl line 2: JSON nested too deeply \(an example is one flat JSON object\)"),
+    (b'[1, 2]\n', r"ex.jsonl line 1: expected a JSON object \(an example\), got list"),
+    (b'{"prompt_id": 0, "prompt": "p", "response": "4", "reward": 1, "scroe": 0.5}\n',
+     r"ex.jsonl line 1 has unknown key 'scroe': a samples-file line \(it has 'prompt_id'\) takes the keys"),
+    (b'{"prompt_id": 0, "response": "4", "reward": 1, "score": 0.5}\n',
+     r"ex.jsonl line 1 is a samples-file line \(it has 'prompt_id'\) without 'prompt'"),
+])
+def test_examples_files_that_cannot_be_read_name_the_line(tmp_path, content, message):
+    (tmp_path / "ex.jsonl").write_bytes(content)
+    with pytest.raises(ValueError, match=message):
+        read_examples(str(tmp_path / "ex.jsonl"))
+
+
+def test_a_runs_samples_file_is_read_as_examples(tmp_path):
+    # the lines bonft.trainer.evaluation.sample_rows writes for a run's heldout_samples.jsonl
+    lines = [{"prompt_id": 0, "prompt": "jars 3+4", "sample": i, "score": 1.0, "reward": float(r == "7"),
+              "temperature": 1.0, "response": r, "n_tokens": 2, "answer": r, "score_jar_grader:loose": 1.0}
+             for i, r in enumerate(["7", "17"])]
+    # a JSON string may hold U+2028 unescaped: it is not a line break here
+    lines.append({"prompt_id": 1, "prompt": "jars 9+6", "sample": 0, "score": 0.0, "reward": 0.0, "response": "1\u20285"})
+    (tmp_path / "s.jsonl").write_text("\n".join(json.dumps(x, ensure_ascii=False) for x in lines) + "\n", encoding="utf-8")
+    assert read_examples(str(tmp_path / "s.jsonl")) == [
+        {"prompt": "jars 3+4", "response": "7", "reward": 1.0}, {"prompt": "jars 3+4", "response": "17", "reward": 0.0},
+        {"prompt": "jars 9+6", "response": "1\u20285", "reward": 0.0}]
 
 
 JAR_GRADER = '''

@@ -38,7 +38,6 @@ verifier that reads none, or two rows for one prompt is an error.
 """
 from __future__ import annotations
 
-import json
 import math
 import numbers
 import time
@@ -47,6 +46,7 @@ from typing import Any, Mapping, Sequence
 import numpy as np
 
 from bonft._core.checks import check_int, check_real
+from bonft._core.jsonl import decode_utf8, parse_object
 from bonft.estimate import best_of_k_per_prompt, default_ks, pass_at_k_per_prompt
 from bonft.verifiers.fields import _takes_rows, bind_rows, needed_fields
 from bonft.verifiers.report import VerifierReport, roc_auc
@@ -101,32 +101,51 @@ def sample_pools(n: int = 4, *, max_prompts: int = 3, rewards: bool = True):
 def read_examples(path: str) -> list[dict]:
     """Per-sample JSON Lines ``{"prompt", "response", "reward"?, "label"?, "row"?}`` -> list of dicts.
 
-    A key outside these, or a reward on some lines but not others, is a ``ValueError`` naming the line.
+    A line with ``prompt_id`` is a line of a samples file (``bonft sample``, a run's
+    ``heldout_samples.jsonl``): its ``prompt``, ``response`` and ``reward`` are read; its other keys
+    (``prompt_id``, ``sample``, ``score``, ``score_<name>``, ``temperature``, ``n_tokens``, ``answer``)
+    describe the run and are left aside. Bytes that are not UTF-8, a line that is not one JSON object
+    (or is nested too deeply), a key outside these, or a reward on some lines but not others is a
+    ``ValueError`` naming the file and line.
     """
+    with open(path, "rb") as f:
+        text = decode_utf8(f.read(), str(path))
     out = []
     with_reward = without_reward = None  # first line of each kind
-    with open(path, encoding="utf-8") as f:
-        for i, line in enumerate(f, 1):
-            if not line.strip():
-                continue
-            try:
-                row = json.loads(line)
-            except ValueError as e:
-                raise ValueError(f"{path}:{i}: examples must be JSON objects, got invalid JSON ({e})") from None
-            if not isinstance(row, dict):
-                raise ValueError(f"{path}:{i}: examples must be JSON objects, got {type(row).__name__}")
-            _check_keys(row, f"{path}:{i}")
-            if _has_rewards(row):
-                with_reward = with_reward or i
-            else:
-                without_reward = without_reward or i
-            out.append(row)
+    for i, line in enumerate(text.split("\n"), 1):  # only "\n" ends a line: a JSON string may hold U+2028
+        if not line.strip():
+            continue
+        row = parse_object(line, str(path), i, "an example")
+        where = f"{path} line {i}"
+        row = _from_samples_file(row, where) if "prompt_id" in row else row
+        _check_keys(row, where)
+        if _has_rewards(row):
+            with_reward = with_reward or i
+        else:
+            without_reward = without_reward or i
+        out.append(row)
     if not out:
         raise ValueError(f"examples file {path} must hold at least one example, got none")
     if with_reward and without_reward:
-        raise ValueError(f"{path}:{without_reward} has no reward but line {with_reward} has one: give every "
+        raise ValueError(f"{path} line {without_reward} has no reward but line {with_reward} has one: give every "
                          f"sample a reward or none (the rewards give the labels and the best-of-k curve)")
     return out
+
+
+_SAMPLES_FILE_KEYS = ("prompt_id", "prompt", "response", "reward", "sample", "score", "temperature", "n_tokens", "answer")
+
+
+def _from_samples_file(row: dict, where: str) -> dict:
+    """A samples-file line (it has ``prompt_id``) -> an example ``{"prompt", "response", "reward"?}``."""
+    unknown = [k for k in row if k not in _SAMPLES_FILE_KEYS and not k.startswith("score_")]
+    if unknown:
+        raise ValueError(f"{where} has unknown key {unknown[0]!r}: a samples-file line (it has 'prompt_id') takes "
+                         f"the keys {', '.join(_SAMPLES_FILE_KEYS)} and score_<verifier>")
+    for key in ("prompt", "response"):
+        if key not in row:
+            raise ValueError(f"{where} is a samples-file line (it has 'prompt_id') without {key!r}: the verifier is "
+                             f"called with each sample's prompt and response text, so both are needed")
+    return {k: row[k] for k in ("prompt", "response", "reward") if k in row}
 
 
 _POOL_KEYS = ("prompt", "responses", "rewards", "labels", "row")
