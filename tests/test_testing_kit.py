@@ -417,3 +417,113 @@ def test_cli_rows_on_the_examples_lines(tmp_path, capsys):
     capsys.readouterr()
     assert cli_main(["check-verifier", f"{grader}:plain", "--examples", ex]) == 2
     assert "examples[0] has a 'row', but verifier plain reads no data rows" in capsys.readouterr().err
+
+
+def test_cli_without_recipe_loads_no_torch(tmp_path):
+    import subprocess
+    import sys
+
+    (tmp_path / "jar_grader.py").write_text(JAR_GRADER)
+    (tmp_path / "ex.jsonl").write_text("".join(json.dumps(x) + "\n" for x in JARS))
+    code = ("import sys; from bonft.cli import main; "
+            f"c = main(['check-verifier', 'jar_grader:loose', '--examples', {str(tmp_path / 'ex.jsonl')!r}]); "
+            "print(c, 'torch' in sys.modules, 'transformers' in sys.modules)")
+    res = subprocess.run([sys.executable, "-c", code], cwd=tmp_path, capture_output=True, text=True, timeout=120)
+    assert res.stdout.strip().splitlines()[-1] == "0 False False", res.stdout + res.stderr
+
+
+@pytest.fixture
+def jars_recipe(tmp_path, monkeypatch):
+    """Ten prompts in a JSONL file, a `rows` grader module in the working directory and a recipe splitting
+    them 5 + 3 (two prompts in neither part)."""
+    data = [{"question": f"jars {a}+{b}", "total": a + b} for a in (1, 2) for b in range(1, 6)]
+    (tmp_path / "jars.jsonl").write_text("".join(json.dumps(x) + "\n" for x in data))
+    (tmp_path / "jar_grader.py").write_text(JAR_GRADER)
+    monkeypatch.chdir(tmp_path)
+    recipe = tmp_path / "mine.toml"
+    recipe.write_text('task = "user"\nverifier = "jar_grader:loose"\nrl_steps = 1\ntrain_prompts = 5\nheldout_prompts = 3\nseed = 4\n'
+                      '[task_params]\ndata = "jars.jsonl"\nprompt_field = "question"\n')
+    return recipe, {x["question"]: x["total"] for x in data}
+
+
+def test_cli_recipe_binds_the_rows_of_the_trainers_split(jars_recipe, tmp_path, capsys):
+    from bonft.trainer.config import load_config
+    from bonft.trainer.run import build_run
+
+    recipe, totals = jars_recipe
+    run = build_run(load_config(recipe), training=False)  # the trainer's own split: its held-out prompts
+    held = [e.prompt for e in run.eval]
+    assert len(held) == 3 and len({e.prompt for e in run.train + run.eval}) == 8
+    # a heldout_samples.jsonl of these prompts: per prompt the total (right), total + 10 (same last digit,
+    # wrong) and total + 1 (wrong); loose scores 1 1 0 against rewards 1 0 0
+    lines = []
+    for b, p in enumerate(held):
+        t = totals[p]
+        for i, r in enumerate([str(t), str(t + 10), str(t + 1)]):
+            lines.append({"prompt_id": b, "prompt": p, "sample": i, "score": 0.0, "reward": float(r == str(t)),
+                          "temperature": 1.0, "response": r, "n_tokens": 1})
+    samples = tmp_path / "heldout_samples.jsonl"
+    samples.write_text("".join(json.dumps(x) + "\n" for x in lines))
+    argv = ["check-verifier", "jar_grader:loose", "--examples", str(samples), "--recipe", str(recipe)]
+    assert cli_main([*argv, "--json", str(tmp_path / "r.json")]) == 0
+    rep = json.loads((tmp_path / "r.json").read_text())
+    # 3 positives (score 1) against 6 negatives (three 1s, three 0s): each positive 3 * 0.5 + 3 * 1 = 4.5,
+    # AUC = 13.5 / 18 = 0.75 (Mann & Whitney 1947); accuracy: right on the total and on total + 1 -> 6/9
+    assert (rep["n_prompts"], rep["n_samples"], rep["failure_rate"]) == (3, 9, 0.0)
+    assert rep["auc"] == pytest.approx(0.75) and rep["accuracy"] == pytest.approx(2 / 3)
+    # k-subsets of (1 1 0 | rewards 1 0 0): k=2 -> (1/2 + 1 + 0)/3 = 1/2, k=3 -> 1/2; pass@k 1/3, 2/3, 1
+    np.testing.assert_allclose(rep["best_of_k"], [1 / 3, 1 / 2, 1 / 2], rtol=1e-12)
+    np.testing.assert_allclose(rep["pass_at_k"], [1 / 3, 2 / 3, 1.0], rtol=1e-12)
+    capsys.readouterr()
+    # without --recipe the grader has no rows: refused, not scored as 100% failures
+    assert cli_main(argv[:4]) == 2
+    assert "verifier loose reads each prompt's data row, but examples[0]" in capsys.readouterr().err
+
+
+def test_cli_recipe_refusals(jars_recipe, tmp_path, capsys):
+    from bonft.tasks import get_task
+
+    recipe, totals = jars_recipe
+    train, held = get_task("user", data="jars.jsonl", prompt_field="question").split(n_train=5, n_eval=3, seed=4)
+    outside = sorted(set(totals) - {e.prompt for e in train + held})
+    assert len(outside) == 2
+
+    def run(lines, verifier="jar_grader:loose", recipe=recipe):
+        (tmp_path / "ex.jsonl").write_text("".join(json.dumps(x) + "\n" for x in lines))
+        code = cli_main(["check-verifier", verifier, "--examples", str(tmp_path / "ex.jsonl"), "--recipe", str(recipe)])
+        return code, capsys.readouterr().err
+
+    good = [{"prompt": held[0].prompt, "response": "3"}]
+    code, err = run(good + [{"prompt": outside[0], "response": "3"}])
+    assert code == 2 and f"the prompt {outside[0]!r} (example 2) has no row in recipe" in err, err
+    code, err = run([{**good[0], "row": {"total": 3}}])
+    assert code == 2 and "gives rows of its own (example 1 has 'row'): use one or the other" in err, err
+    code, err = run(good, verifier="jar_grader:plain")
+    assert code == 2 and "--recipe cannot take effect: verifier jar_grader:plain reads no data rows" in err, err
+    (tmp_path / "ledger.toml").write_text('task = "ledger"\nrl_steps = 1\ntrain_prompts = 5\nheldout_prompts = 3\n')
+    code, err = run(good, recipe=tmp_path / "ledger.toml")
+    assert code == 2 and "but recipe" in err and "has task = 'ledger', which has no rows: drop --recipe" in err, err
+
+
+def test_cli_recipe_with_a_chat_template_matches_the_rendered_prompts(jars_recipe, tmp_path, capsys):
+    from bonft.tasks import build_tokenizer, get_task
+
+    recipe, totals = jars_recipe
+    tok = build_tokenizer()
+    tok.chat_template = ("{{ bos_token }}{% for m in messages %}{{ m['role'] }}: {{ m['content'] }}\n{% endfor %}"
+                         "{% if add_generation_prompt %}assistant: {% endif %}")
+    tok.save_pretrained(str(tmp_path / "tok"))  # start_from's tokenizer is all --recipe reads: no weights here
+    recipe.write_text('start_from = "tok"\n' + recipe.read_text() + 'chat_template = true\nsystem = "count jars"\n')
+    _, held = get_task("user", data="jars.jsonl", prompt_field="question", chat_template=True, system="count jars",
+                       tokenizer=tok).split(n_train=5, n_eval=3, seed=4)
+    raw = held[0].meta["fields"]["question"]
+    assert held[0].prompt.startswith("system: count jars\nuser: jars ") and held[0].prompt != raw
+    t = totals[raw]
+    lines = [{"prompt": held[0].prompt, "response": r, "reward": float(r == str(t))} for r in (str(t), str(t + 1))]
+    (tmp_path / "ex.jsonl").write_text("".join(json.dumps(x) + "\n" for x in lines))
+    argv = ["check-verifier", "jar_grader:loose", "--examples", str(tmp_path / "ex.jsonl"), "--recipe", str(recipe)]
+    assert cli_main([*argv, "--json", str(tmp_path / "r.json")]) == 0
+    assert json.loads((tmp_path / "r.json").read_text())["auc"] == 1.0  # loose scores 1 0 against rewards 1 0
+    (tmp_path / "ex.jsonl").write_text(json.dumps({"prompt": raw, "response": "3"}) + "\n")  # the prompt as in the data
+    assert cli_main(argv) == 2
+    assert f"the prompt {raw!r} (example 1) has no row in recipe" in capsys.readouterr().err

@@ -4,16 +4,26 @@ from __future__ import annotations
 HELP = "test a verifier for determinism, failures, agreement with labels and over-optimisation"
 DESCRIPTION = (
     "Load a verifier ('module:function' or 'path/to/file.py:function'), score the example pools in "
-    "FILE.jsonl (one sample per line: {\"prompt\", \"response\", \"reward\"?, \"label\"?}) several times "
+    "FILE.jsonl (one sample per line: {\"prompt\", \"response\", \"reward\"?, \"label\"?, \"row\"?}, or a samples "
+    "file such as a run's heldout_samples.jsonl) several times "
     "and report determinism, failure rate, score range, latency, accuracy / ROC AUC and the best-of-k "
-    "vs pass@k curve (the best true reward among k). Exit status 0 when no problem was found, 1 otherwise. Caution: this imports and "
-    "runs the verifier's code."
+    "vs pass@k curve (the best true reward among k). A verifier that reads each prompt's data row (a parameter "
+    "named 'rows', or fields + bind) gets the rows of the lines' \"row\" objects, or with --recipe the rows of the "
+    "recipe's data, bound as training binds them. Exit status 0 when no problem was found, 1 otherwise. Caution: "
+    "this imports and runs the verifier's code."
 )
+
+# the tokenizer files bonft.trainer.models.load_model looks for in a directory
+_TOKENIZER_FILES = ("tokenizer_config.json", "tokenizer.json", "vocab.json", "tokenizer.model", "vocab.txt")
 
 
 def add_arguments(p) -> None:
     p.add_argument("verifier", help="'module:function' or 'path/to/file.py:function'")
     p.add_argument("--examples", required=True, metavar="FILE.jsonl", help="example samples, one JSON object per line")
+    p.add_argument("--recipe", default=None, metavar="RECIPE.toml",
+                   help="bind a verifier that reads data rows to the rows of this recipe's task data (the prompts "
+                        "the trainer builds from task, task_params, train_prompts, heldout_prompts and seed; a run's "
+                        "config.toml works), so the prompts of the run's heldout_samples.jsonl find their rows")
     p.add_argument("--repeats", type=int, default=2, help="times each sample is scored (default 2)")
     p.add_argument("--threshold", type=float, default=0.5, help="score at or above which a sample counts as accepted")
     p.add_argument("--wall-time", type=float, default=None, help="seconds allowed per verifier call (default: no limit)")
@@ -40,8 +50,13 @@ def run(args) -> int:
         line = raw.count(b"\n", 0, e.start) + 1
         raise ValueError(f"--examples file {args.examples} line {line}: not UTF-8 text "
                          f"(byte {raw[e.start]:#04x}); save the file as UTF-8") from None
+    if args.recipe is not None and not os.path.isfile(args.recipe):
+        raise FileNotFoundError(f"--recipe must be an existing TOML recipe, got {args.recipe!r}")
     verifier = load_verifier(args.verifier)
-    report = check_verifier(verifier, read_examples(args.examples), repeats=args.repeats, threshold=args.threshold,
+    examples = read_examples(args.examples)
+    if args.recipe is not None:
+        verifier = bind_recipe_rows(verifier, args.verifier, args.recipe, examples, args.examples)
+    report = check_verifier(verifier, examples, repeats=args.repeats, threshold=args.threshold,
                             timeout=args.wall_time, max_failure_rate=args.max_failure_rate)
     print(report)
     if args.plot_dir:
@@ -50,3 +65,70 @@ def run(args) -> int:
         write_json_atomic(args.json, report.to_dict())  # atomic: never a half-written report
         print(f"json: {args.json}")
     return 0 if report.ok else 1
+
+
+def bind_recipe_rows(verifier, spec: str, recipe: str, examples: list[dict], examples_path: str):
+    """``verifier`` bound to the rows of ``recipe``'s task data, as the trainer binds it (``build_run``):
+    the task from ``task`` / ``task_params`` (with start_from's tokenizer when ``chat_template`` is true),
+    split by ``train_prompts``, ``heldout_prompts`` and ``seed``, then ``task.bind_verifier(verifier, train + held)``.
+
+    An example carrying its own ``row``, a task without data rows, a verifier that reads no rows and a
+    prompt of the examples missing from the split are errors.
+    """
+    from bonft.tasks import get_task  # reads the data: only with --recipe
+    from bonft.trainer.config import load_config  # loads torch: only with --recipe
+
+    with_row = next((i for i, ex in enumerate(examples) if "row" in ex), None)
+    if with_row is not None:
+        raise ValueError(f"--recipe binds the rows of the recipe's data, but {examples_path} gives rows of its own "
+                         f"(example {with_row + 1} has 'row'): use one or the other")
+    cfg = load_config(recipe)
+    extra = {"path": cfg.prompts_file} if cfg.task == "jsonl" else {}
+    if cfg.task == "user" and cfg.task_params.get("chat_template") is True and "tokenizer" not in cfg.task_params:
+        extra["tokenizer"] = _recipe_tokenizer(cfg)  # the chat template of the model that samples
+    task = get_task(cfg.task, **extra, **cfg.task_params)
+    if not hasattr(task, "bind_verifier"):
+        raise ValueError(f"--recipe binds the data rows of task = 'user', but recipe {recipe} has task = {cfg.task!r}, "
+                         "which has no rows: drop --recipe")
+    try:
+        train, held = task.split(n_train=cfg.train_prompts, n_eval=cfg.heldout_prompts, seed=cfg.seed)
+    except ValueError as e:  # the task names its own arguments: n_train is train_prompts, n_eval heldout_prompts
+        raise ValueError(f"train_prompts = {cfg.train_prompts} and heldout_prompts = {cfg.heldout_prompts} do not fit "
+                         f"task {cfg.task!r} ({e}); lower them in the recipe") from None
+    everything = list(train) + list(held)
+    bound = task.bind_verifier(verifier, everything)
+    if bound is verifier:
+        raise ValueError(f"--recipe cannot take effect: verifier {spec} reads no data rows (it has neither a parameter "
+                         "named 'rows' nor fields + bind); drop --recipe")
+    known = {e.prompt for e in everything}
+    for i, ex in enumerate(examples):
+        if ex["prompt"] not in known:
+            raise ValueError(f"{examples_path}: the prompt {ex['prompt']!r:.80} (example {i + 1}) has no row in recipe "
+                             f"{recipe}'s data: it is not among the {len(everything)} prompts its task, "
+                             f"train_prompts + heldout_prompts and seed = {cfg.seed} give (with chat_template, as "
+                             "rendered); check the examples of a run against that run's recipe")
+    return bound
+
+
+def _recipe_tokenizer(cfg):
+    """The tokenizer ``build_run`` hands the task: start_from's, found as ``load_model`` finds it (an adapter
+    directory's own, else its base model's) but without loading the weights; bonft's own without start_from."""
+    from pathlib import Path
+
+    if not cfg.start_from:
+        from bonft.tasks import build_tokenizer  # the tiny model's tokenizer: only with --recipe
+
+        return build_tokenizer()
+    from transformers import AutoTokenizer  # only with --recipe
+
+    from bonft.trainer.adapters import adapter_dir, recorded_base  # loads torch: only with --recipe
+    from bonft.trainer.models import model_dirs, model_source  # loads torch: only with --recipe
+
+    path = Path(model_source(cfg.start_from))
+    adir = adapter_dir(path)
+    dirs = [path / "tokenizer", adir, model_dirs(Path(recorded_base(adir)))[1]] if adir else [model_dirs(path)[1]]
+    for d in dirs:
+        if d.is_dir() and any((d / f).is_file() for f in _TOKENIZER_FILES):
+            return AutoTokenizer.from_pretrained(str(d), local_files_only=True)
+    raise FileNotFoundError(f"start_from {cfg.start_from!r} of the recipe has no tokenizer (looked in "
+                            f"{', '.join(str(d) for d in dirs)}); chat_template = true renders prompts with it")
