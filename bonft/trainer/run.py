@@ -120,6 +120,24 @@ class Run:
         return self.rank == 0
 
 
+def task_split(cfg: TrainConfig, tokenizer: Any = None) -> tuple[Any, list, list]:
+    """``(task, training prompts, held-out prompts)`` of ``cfg``, as every run of it draws them.
+
+    ``tokenizer``: the sampling model's, whose chat template renders a user task's prompts when
+    ``task_params.chat_template`` is true (and ``task_params`` names no tokenizer of its own).
+    """
+    extra = {"path": cfg.prompts_file} if cfg.task == "jsonl" else {}
+    if cfg.task == "user" and cfg.task_params.get("chat_template") is True and "tokenizer" not in cfg.task_params:
+        extra["tokenizer"] = tokenizer  # the chat template of the model that samples
+    task = get_task(cfg.task, **extra, **cfg.task_params)
+    try:
+        train, held = task.split(n_train=cfg.train_prompts, n_eval=cfg.heldout_prompts, seed=cfg.seed)
+    except ValueError as e:  # the task names its own arguments: n_train is train_prompts, n_eval heldout_prompts
+        raise ValueError(f"train_prompts = {cfg.train_prompts} and heldout_prompts = {cfg.heldout_prompts} do not fit "
+                         f"task {cfg.task!r} ({e}); lower them in the recipe") from None
+    return task, list(train), list(held)
+
+
 def build_run(cfg: TrainConfig, *, training: bool = True) -> Run:
     """Task, data split, verifiers, model and tokenizer for ``cfg`` (no optimizer yet).
 
@@ -142,15 +160,7 @@ def build_run(cfg: TrainConfig, *, training: bool = True) -> Run:
             eos_token_id=tokenizer.eos_token_id, bos_token_id=tokenizer.bos_token_id,
         ).to(device)
         model = policy_model(model, cfg, training=training)
-    extra = {"path": cfg.prompts_file} if cfg.task == "jsonl" else {}
-    if cfg.task == "user" and cfg.task_params.get("chat_template") is True and "tokenizer" not in cfg.task_params:
-        extra["tokenizer"] = tokenizer  # the chat template of the model that samples
-    task = get_task(cfg.task, **extra, **cfg.task_params)
-    try:
-        train, held = task.split(n_train=cfg.train_prompts, n_eval=cfg.heldout_prompts, seed=cfg.seed)
-    except ValueError as e:  # the task names its own arguments: n_train is train_prompts, n_eval heldout_prompts
-        raise ValueError(f"train_prompts = {cfg.train_prompts} and heldout_prompts = {cfg.heldout_prompts} do not fit "
-                         f"task {cfg.task!r} ({e}); lower them in the recipe") from None
+    task, train, held = task_split(cfg, tokenizer)
     everything = list(train) + list(held)
     roles = build_roles(task, everything, verifier=cfg.verifier, verifier_params=cfg.verifier_params,
                         eval_verifier=cfg.eval_verifier, eval_verifier_params=cfg.eval_verifier_params, device=str(device))
