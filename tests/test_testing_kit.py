@@ -388,7 +388,7 @@ def test_examples_files_that_cannot_be_read_name_the_line(tmp_path, content, mes
 def test_a_runs_samples_file_is_read_as_examples(tmp_path):
     # the lines bonft.trainer.evaluation.sample_rows writes for a run's heldout_samples.jsonl
     lines = [{"prompt_id": 0, "prompt": "jars 3+4", "sample": i, "score": 1.0, "reward": float(r == "7"),
-              "temperature": 1.0, "response": r, "n_tokens": 2, "answer": r, "score_jar_grader:loose": 1.0}
+              "temperature": 1.0, "response": r, "n_tokens": 2, "answer": r, "score_kit_jar_grader:loose": 1.0}
              for i, r in enumerate(["7", "17"])]
     # a JSON string may hold U+2028 unescaped: it is not a line break here
     lines.append({"prompt_id": 1, "prompt": "jars 9+6", "sample": 0, "score": 0.0, "reward": 0.0, "response": "1\u20285"})
@@ -408,9 +408,9 @@ def plain(prompts, responses):
 
 
 def test_cli_rows_on_the_examples_lines(tmp_path, capsys):
-    (tmp_path / "jar_grader.py").write_text(JAR_GRADER)
+    (tmp_path / "kit_jar_grader.py").write_text(JAR_GRADER)
     (tmp_path / "ex.jsonl").write_text("".join(json.dumps(x) + "\n" for x in JARS))
-    grader, ex = f"{tmp_path / 'jar_grader.py'}", str(tmp_path / "ex.jsonl")
+    grader, ex = f"{tmp_path / 'kit_jar_grader.py'}", str(tmp_path / "ex.jsonl")
     assert cli_main(["check-verifier", f"{grader}:loose", "--examples", ex, "--json", str(tmp_path / "r.json")]) == 0
     rep = json.loads((tmp_path / "r.json").read_text())  # the figures of test_a_rows_grader_is_bound_to_the_examples_rows
     assert (rep["accuracy"], rep["auc"], rep["failure_rate"], rep["problems"]) == (0.5, 0.625, 0.0, [])
@@ -423,10 +423,10 @@ def test_cli_without_recipe_loads_no_torch(tmp_path):
     import subprocess
     import sys
 
-    (tmp_path / "jar_grader.py").write_text(JAR_GRADER)
+    (tmp_path / "kit_jar_grader.py").write_text(JAR_GRADER)
     (tmp_path / "ex.jsonl").write_text("".join(json.dumps(x) + "\n" for x in JARS))
     code = ("import sys; from bonft.cli import main; "
-            f"c = main(['check-verifier', 'jar_grader:loose', '--examples', {str(tmp_path / 'ex.jsonl')!r}]); "
+            f"c = main(['check-verifier', 'kit_jar_grader:loose', '--examples', {str(tmp_path / 'ex.jsonl')!r}]); "
             "print(c, 'torch' in sys.modules, 'transformers' in sys.modules)")
     res = subprocess.run([sys.executable, "-c", code], cwd=tmp_path, capture_output=True, text=True, timeout=120)
     assert res.stdout.strip().splitlines()[-1] == "0 False False", res.stdout + res.stderr
@@ -438,10 +438,10 @@ def jars_recipe(tmp_path, monkeypatch):
     them 5 + 3 (two prompts in neither part)."""
     data = [{"question": f"jars {a}+{b}", "total": a + b} for a in (1, 2) for b in range(1, 6)]
     (tmp_path / "jars.jsonl").write_text("".join(json.dumps(x) + "\n" for x in data))
-    (tmp_path / "jar_grader.py").write_text(JAR_GRADER)
+    (tmp_path / "kit_jar_grader.py").write_text(JAR_GRADER)
     monkeypatch.chdir(tmp_path)
     recipe = tmp_path / "mine.toml"
-    recipe.write_text('task = "user"\nverifier = "jar_grader:loose"\nrl_steps = 1\ntrain_prompts = 5\nheldout_prompts = 3\nseed = 4\n'
+    recipe.write_text('task = "user"\nverifier = "kit_jar_grader:loose"\nrl_steps = 1\ntrain_prompts = 5\nheldout_prompts = 3\nseed = 4\n'
                       '[task_params]\ndata = "jars.jsonl"\nprompt_field = "question"\n')
     return recipe, {x["question"]: x["total"] for x in data}
 
@@ -464,7 +464,7 @@ def test_cli_recipe_binds_the_rows_of_the_trainers_split(jars_recipe, tmp_path, 
                           "temperature": 1.0, "response": r, "n_tokens": 1})
     samples = tmp_path / "heldout_samples.jsonl"
     samples.write_text("".join(json.dumps(x) + "\n" for x in lines))
-    argv = ["check-verifier", "jar_grader:loose", "--examples", str(samples), "--recipe", str(recipe)]
+    argv = ["check-verifier", "kit_jar_grader:loose", "--examples", str(samples), "--recipe", str(recipe)]
     assert cli_main([*argv, "--json", str(tmp_path / "r.json")]) == 0
     rep = json.loads((tmp_path / "r.json").read_text())
     # 3 positives (score 1) against 6 negatives (three 1s, three 0s): each positive 3 * 0.5 + 3 * 1 = 4.5,
@@ -488,7 +488,7 @@ def test_cli_recipe_refusals(jars_recipe, tmp_path, capsys):
     outside = sorted(set(totals) - {e.prompt for e in train + held})
     assert len(outside) == 2
 
-    def run(lines, verifier="jar_grader:loose", recipe=recipe):
+    def run(lines, verifier="kit_jar_grader:loose", recipe=recipe):
         (tmp_path / "ex.jsonl").write_text("".join(json.dumps(x) + "\n" for x in lines))
         code = cli_main(["check-verifier", verifier, "--examples", str(tmp_path / "ex.jsonl"), "--recipe", str(recipe)])
         return code, capsys.readouterr().err
@@ -498,8 +498,8 @@ def test_cli_recipe_refusals(jars_recipe, tmp_path, capsys):
     assert code == 2 and f"the prompt {outside[0]!r} (example 2) has no row in recipe" in err, err
     code, err = run([{**good[0], "row": {"total": 3}}])
     assert code == 2 and "gives rows of its own (example 1 has 'row'): use one or the other" in err, err
-    code, err = run(good, verifier="jar_grader:plain")
-    assert code == 2 and "--recipe cannot take effect: verifier jar_grader:plain reads no data rows" in err, err
+    code, err = run(good, verifier="kit_jar_grader:plain")
+    assert code == 2 and "--recipe cannot take effect: verifier kit_jar_grader:plain reads no data rows" in err, err
     (tmp_path / "ledger.toml").write_text('task = "ledger"\nrl_steps = 1\ntrain_prompts = 5\nheldout_prompts = 3\n')
     code, err = run(good, recipe=tmp_path / "ledger.toml")
     assert code == 2 and "but recipe" in err and "has task = 'ledger', which has no rows: drop --recipe" in err, err
@@ -521,7 +521,7 @@ def test_cli_recipe_with_a_chat_template_matches_the_rendered_prompts(jars_recip
     t = totals[raw]
     lines = [{"prompt": held[0].prompt, "response": r, "reward": float(r == str(t))} for r in (str(t), str(t + 1))]
     (tmp_path / "ex.jsonl").write_text("".join(json.dumps(x) + "\n" for x in lines))
-    argv = ["check-verifier", "jar_grader:loose", "--examples", str(tmp_path / "ex.jsonl"), "--recipe", str(recipe)]
+    argv = ["check-verifier", "kit_jar_grader:loose", "--examples", str(tmp_path / "ex.jsonl"), "--recipe", str(recipe)]
     assert cli_main([*argv, "--json", str(tmp_path / "r.json")]) == 0
     assert json.loads((tmp_path / "r.json").read_text())["auc"] == 1.0  # loose scores 1 0 against rewards 1 0
     (tmp_path / "ex.jsonl").write_text(json.dumps({"prompt": raw, "response": "3"}) + "\n")  # the prompt as in the data

@@ -75,26 +75,18 @@ def bind_recipe_rows(verifier, spec: str, recipe: str, examples: list[dict], exa
     An example carrying its own ``row``, a task without data rows, a verifier that reads no rows and a
     prompt of the examples missing from the split are errors.
     """
-    from bonft.tasks import get_task  # reads the data: only with --recipe
     from bonft.trainer.config import load_config  # loads torch: only with --recipe
+    from bonft.trainer.run import task_split  # loads torch: only with --recipe
 
     with_row = next((i for i, ex in enumerate(examples) if "row" in ex), None)
     if with_row is not None:
         raise ValueError(f"--recipe binds the rows of the recipe's data, but {examples_path} gives rows of its own "
                          f"(example {with_row + 1} has 'row'): use one or the other")
     cfg = load_config(recipe)
-    extra = {"path": cfg.prompts_file} if cfg.task == "jsonl" else {}
-    if cfg.task == "user" and cfg.task_params.get("chat_template") is True and "tokenizer" not in cfg.task_params:
-        extra["tokenizer"] = _recipe_tokenizer(cfg)  # the chat template of the model that samples
-    task = get_task(cfg.task, **extra, **cfg.task_params)
-    if not hasattr(task, "bind_verifier"):
+    if cfg.task != "user":
         raise ValueError(f"--recipe binds the data rows of task = 'user', but recipe {recipe} has task = {cfg.task!r}, "
                          "which has no rows: drop --recipe")
-    try:
-        train, held = task.split(n_train=cfg.train_prompts, n_eval=cfg.heldout_prompts, seed=cfg.seed)
-    except ValueError as e:  # the task names its own arguments: n_train is train_prompts, n_eval heldout_prompts
-        raise ValueError(f"train_prompts = {cfg.train_prompts} and heldout_prompts = {cfg.heldout_prompts} do not fit "
-                         f"task {cfg.task!r} ({e}); lower them in the recipe") from None
+    task, train, held = task_split(cfg, _recipe_tokenizer(cfg))
     everything = list(train) + list(held)
     bound = task.bind_verifier(verifier, everything)
     if bound is verifier:
@@ -111,24 +103,14 @@ def bind_recipe_rows(verifier, spec: str, recipe: str, examples: list[dict], exa
 
 
 def _recipe_tokenizer(cfg):
-    """The tokenizer ``build_run`` hands the task: start_from's, found as ``load_model`` finds it (an adapter
-    directory's own, else its base model's) but without loading the weights; bonft's own without start_from."""
-    from pathlib import Path
-
+    """The tokenizer ``build_run`` hands the task when ``chat_template`` is true (start_from's, read without the
+    weights; bonft's own without start_from); None when no template renders the prompts."""
+    if cfg.task_params.get("chat_template") is not True or "tokenizer" in cfg.task_params:
+        return None
     if not cfg.start_from:
         from bonft.tasks import build_tokenizer  # the tiny model's tokenizer: only with --recipe
 
         return build_tokenizer()
-    from transformers import AutoTokenizer  # only with --recipe
+    from bonft.trainer.models import load_tokenizer  # loads torch: only with --recipe
 
-    from bonft.trainer.adapters import adapter_dir, recorded_base  # loads torch: only with --recipe
-    from bonft.trainer.models import model_dirs, model_source  # loads torch: only with --recipe
-
-    path = Path(model_source(cfg.start_from))
-    adir = adapter_dir(path)
-    dirs = [path / "tokenizer", adir, model_dirs(Path(recorded_base(adir)))[1]] if adir else [model_dirs(path)[1]]
-    for d in dirs:
-        if d.is_dir() and any((d / f).is_file() for f in _TOKENIZER_FILES):
-            return AutoTokenizer.from_pretrained(str(d), local_files_only=True)
-    raise FileNotFoundError(f"start_from {cfg.start_from!r} of the recipe has no tokenizer (looked in "
-                            f"{', '.join(str(d) for d in dirs)}); chat_template = true renders prompts with it")
+    return load_tokenizer(cfg.start_from)

@@ -194,10 +194,7 @@ def load_model(path: str | os.PathLike, *, device: str | torch.device | None = N
     model_dir, tok_dir = model_dirs(path)
     if not (model_dir / "config.json").is_file():
         raise FileNotFoundError(f"no config.json in {str(model_dir)!r}: path must be a transformers model directory or a bonft checkpoint")
-    if not any((tok_dir / f).is_file() for f in _TOKENIZER_FILES):
-        where = f"{path / 'tokenizer'}/ or {model_dir}/" if tok_dir == model_dir and model_dir != path else f"{tok_dir}/"
-        raise FileNotFoundError(f"no tokenizer for the model in {str(path)!r}: expected tokenizer files "
-                                f"({', '.join(_TOKENIZER_FILES[:2])}) in {where} (save it with tokenizer.save_pretrained)")
+    tokenizer = _tokenizer_in(path, model_dir, tok_dir)
     device = _device(device)
     try:
         model = AutoModelForCausalLM.from_pretrained(model_dir, local_files_only=True)
@@ -206,9 +203,43 @@ def load_model(path: str | os.PathLike, *, device: str | torch.device | None = N
         raise ValueError(f"refusing {found[0] if found else model_dir}: pickled weights holding objects other than "
                          f"tensors (loading them can run code); bonft loads such files only as plain tensors. Was it "
                          f"written by another program? Save the model as safetensors") from None
-    tokenizer = AutoTokenizer.from_pretrained(tok_dir, local_files_only=True)
     model.to(device).eval()
     return model, tokenizer
+
+
+def load_tokenizer(path: str | os.PathLike):
+    """The tokenizer :func:`load_model` would return for ``path``, without reading the weights (nor checking them
+    against a checkpoint's manifest): e.g. to render a user task's prompts with the model's chat template."""
+    if not isinstance(path, (str, os.PathLike)):
+        raise TypeError(f"path must be a str or os.PathLike, got {type(path).__name__}")
+    path = Path(path)
+    if not path.is_dir():
+        raise FileNotFoundError(f"path must be a model or checkpoint directory, got {str(path)!r} (not a directory)")
+    if not (path / "config.json").is_file() and not (path / "model").is_dir() and (path / "checkpoints").is_dir():
+        path = resolve_checkpoint(path)  # a training run directory: its newest checkpoint
+    adir = adapter_dir(path)
+    if adir is not None:
+        own = _adapter_tokenizer(path, adir)
+        return own if own is not None else load_tokenizer(recorded_base(adir))
+    model_dir, tok_dir = model_dirs(path)
+    return _tokenizer_in(path, model_dir, tok_dir)
+
+
+def _tokenizer_in(path: Path, model_dir: Path, tok_dir: Path):
+    """The tokenizer saved in ``tok_dir`` (a checkpoint's tokenizer/, else the model directory), or a clear error."""
+    if not any((tok_dir / f).is_file() for f in _TOKENIZER_FILES):
+        where = f"{path / 'tokenizer'}/ or {model_dir}/" if tok_dir == model_dir and model_dir != path else f"{tok_dir}/"
+        raise FileNotFoundError(f"no tokenizer for the model in {str(path)!r}: expected tokenizer files "
+                                f"({', '.join(_TOKENIZER_FILES[:2])}) in {where} (save it with tokenizer.save_pretrained)")
+    return AutoTokenizer.from_pretrained(tok_dir, local_files_only=True)
+
+
+def _adapter_tokenizer(path: Path, adir: Path):
+    """An adapter directory's own tokenizer (a checkpoint's tokenizer/, else the adapter directory's), or None."""
+    for tok_dir in (path / "tokenizer", adir):
+        if tok_dir.is_dir() and _has_tokenizer(tok_dir):
+            return AutoTokenizer.from_pretrained(tok_dir, local_files_only=True)
+    return None
 
 
 def _device(device) -> torch.device:
@@ -236,10 +267,7 @@ def _load_with_adapter(path: Path, adir: Path, device, trainable: bool):
         raise ValueError(f"adapter {str(path)!r}: its base model {base!r} (base_model_name_or_path in {where}) is an "
                          f"adapter itself; the base must be a full model directory")
     model, tokenizer = load_model(base, device=device)
-    for tok_dir in (path / "tokenizer", adir):
-        if tok_dir.is_dir() and _has_tokenizer(tok_dir):
-            tokenizer = AutoTokenizer.from_pretrained(tok_dir, local_files_only=True)
-            break
+    tokenizer = _adapter_tokenizer(path, adir) or tokenizer
     model = attach_adapter(model, adir, trainable=trainable, key="adapter")
     model.to(_device(device)).eval()
     return model, tokenizer
