@@ -65,8 +65,6 @@ _NOT_IDS = {"best-of-k": "best_of_k", "bon": "best_of_k", "majority": "majority_
 
 
 _DEFAULTS = {"max_subsets": MAX_SUBSETS, "seed": 0, "conflicts": "error"}  # the options a strategy may read
-# (strategy, field) given but not read, yet accepted: the trainer hands each vote objective its pools' scores
-_ACCEPTED_UNREAD = {("majority_vote", "scores")}
 
 
 def _unread_field(key: str, names: list[str], val) -> ValueError:
@@ -89,9 +87,8 @@ class Strategy:
     """An inference-time selection rule over ``k`` samples (see the module docstring).
 
     ``name`` is the strategy id (code, ``--strategy``, config, JSON); ``uses_answers`` /
-    ``uses_scores`` say which per-sample fields the rule reads (one it does not read is a ``ValueError``,
-    except the scores a majority vote is handed by the trainer); ``servable`` is False for a
-    ceiling that needs the true reward (pass@k); ``reads`` names the options its estimate and
+    ``uses_scores`` say which per-sample fields the rule reads (one it does not read is a ``ValueError``);
+    ``servable`` is False for a ceiling that needs the true reward (pass@k); ``reads`` names the options its estimate and
     credit take (``max_subsets``, ``seed``: sampled k-subsets; ``conflicts``: one answer with
     several rewards). An option the strategy does not read is an error unless it has its default
     value. Subclasses implement ``_value``, ``_estimate`` and ``_credit``.
@@ -121,7 +118,7 @@ class Strategy:
         for key, val, used in (("scores", scores, self.uses_scores), ("answers", answers, self.uses_answers)):
             if used and val is None:
                 raise ValueError(f"{key} must be given for strategy {self.name!r}, got None")
-            if not used and val is not None and (self.name, key) not in _ACCEPTED_UNREAD:
+            if not used and val is not None:
                 raise _unread_field(key, [self.name], val)
 
     def value(self, probs, *, k, rewards, scores=None, answers=None, **options):

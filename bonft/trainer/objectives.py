@@ -31,7 +31,7 @@ import torch
 from bonft._core.specs import load_spec
 from bonft.objectives import credit as C
 from bonft.objectives import losses as L
-from bonft.strategies import strategy_credit, strategy_per_prompt
+from bonft.strategies import get_strategy, strategy_credit, strategy_per_prompt
 
 
 @dataclass
@@ -84,11 +84,14 @@ def _pass_value(p: Pools, k: int) -> np.ndarray:
 def _vote(name: str) -> tuple[Callable, Callable]:
     """Credit and pool value of a vote strategy (:mod:`bonft.strategies.estimators`), float64 numpy arrays."""
 
+    reads_scores = get_strategy(name).uses_scores  # a majority vote reads no scores: handing it some is an error
+
     def credit(p: Pools, k: int) -> np.ndarray:
-        return strategy_credit(name, p.scores, p.rewards, k=k, answers=p.answers)
+        return strategy_credit(name, p.scores if reads_scores else None, p.rewards, k=k, answers=p.answers)
 
     def value(p: Pools, k: int) -> np.ndarray:
-        v, _ = strategy_per_prompt(name, ks=[k], rewards=p.rewards, scores=p.scores, answers=p.answers)
+        v, _ = strategy_per_prompt(name, ks=[k], rewards=p.rewards, scores=p.scores if reads_scores else None,
+                                   answers=p.answers)
         return v[:, 0]
 
     return credit, value
