@@ -71,6 +71,11 @@ def test_plan_command_errors(samples_file, tmp_path, capsys):
     assert "max_k must be <= the smallest pool at every temperature (n=12" in capsys.readouterr().err
     assert main(["plan", "--samples", str(samples_file), "--temperatures", "0.5,x"]) == 2
     assert "--temperatures must be comma-separated numbers" in capsys.readouterr().err
+    # every list option reads its items one way (parse_list): an empty item is an error, never dropped
+    assert main(["plan", "--samples", str(samples_file), "--temperatures", "0.7,,1.0"]) == 2
+    assert "--temperatures must be comma-separated values with none empty, got '0.7,,1.0'" in capsys.readouterr().err
+    assert main(["plan", "--samples", str(samples_file), "--budget-samples", "4,"]) == 2
+    assert "--budget-samples must be comma-separated values with none empty" in capsys.readouterr().err
     assert main(["plan", "--samples", str(tmp_path / "missing.jsonl")]) == 2
     assert "--samples file not found" in capsys.readouterr().err
 

@@ -5,7 +5,7 @@ import argparse
 import os
 
 from bonft.cli.options import add_duplicates_flag, add_plot_dir, check_sizes, parse_list, write_curve_outputs
-from bonft.cli.strategy_tables import add_strategy_arguments, check_strategy_options, no_empty_items
+from bonft.cli.strategy_tables import add_strategy_arguments, check_strategy_options
 from bonft.cli.strategy_tables import run_estimate as _run_strategies
 
 HELP = "best-of-k (verifier picks) and pass@k with bootstrap CIs from a pool file (JSONL of scored samples)"
@@ -51,7 +51,6 @@ def run(args) -> int:
     path = example_samples_path() if args.example else args.samples
     if not os.path.isfile(path):
         raise FileNotFoundError(f"POOLS file not found: {path}")
-    no_empty_items("--ks", args.ks)
     ks = parse_list("--ks", args.ks)
     names = check_strategy_options(args)
     check_sizes(args)

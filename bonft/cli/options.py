@@ -8,10 +8,17 @@ import tempfile
 from bonft._core.checks import MAX_BOOT, MAX_SUBSETS_BOUND, SEED_BOUND
 
 
+def no_empty_items(flag: str, text: str | None) -> None:
+    """A comma-separated option with an empty item (``1,,2``, ``a,``) is refused, not read as the items left."""
+    if text is not None and text.strip() and any(not v.strip() for v in text.split(",")):
+        raise ValueError(f"{flag} must be comma-separated values with none empty, got {text!r}")
+
+
 def parse_list(flag: str, text: str | None, cast=int) -> list | None:
-    """``"1,4,16"`` -> ``[1, 4, 16]``; None stays None. Errors name the flag and the text."""
+    """``"1,4,16"`` -> ``[1, 4, 16]``; None stays None; an empty item is an error. Errors name the flag and the text."""
     if text is None:
         return None
+    no_empty_items(flag, text)
     try:
         out = [cast(v) for v in text.split(",") if v.strip()]
     except ValueError:

@@ -6,7 +6,7 @@ import os
 
 import numpy as np
 
-from bonft.cli.options import parse_list, write_curve_outputs, write_json_atomic
+from bonft.cli.options import no_empty_items, parse_list, write_curve_outputs, write_json_atomic
 from bonft.estimate import default_ks
 from bonft.io import group_pools, temperatures_of
 from bonft.viz import plot_strategy_curves
@@ -26,12 +26,6 @@ def add_strategy_arguments(p: argparse.ArgumentParser) -> None:
                    help="field holding each sample's extracted answer key (default: answer)")
     p.add_argument("--max-subsets", type=int, default=None,
                    help="weighted vote: exact over all k-subsets up to this many, else this many sampled (default: 4000)")
-
-
-def no_empty_items(flag: str, text: str | None) -> None:
-    """A comma-separated option with an empty item (``1,,2``, ``a,``) is refused, not read as the items left."""
-    if text is not None and text.strip() and any(not v.strip() for v in text.split(",")):
-        raise ValueError(f"{flag} must be comma-separated values with none empty, got {text!r}")
 
 
 def check_strategy_options(args, *, exact: bool = False) -> list[str] | None:
