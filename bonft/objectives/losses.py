@@ -210,7 +210,15 @@ def _policy_gradient_loss(logprobs, credit, opt: LossOptions, *, own: bool = Fal
     if opt.check_tokens:
         check_token_values("logprobs", lp, "mask", opt.mask, mask)
     if not own:
-        return _checked_credit_loss(lp, mask, credit_tensor(credit, lp, check_device=opt.check_tokens), opt)
+        w, host = credit_tensor(credit, lp, check_device=opt.check_tokens)
+        if host is not None and lp.dtype != torch.float64 and lp.device.type != "cpu":
+            check_credit_fits("credit", host, lp.dtype)  # no read of a device: one pass over the host copy
+        out = _checked_credit_loss(lp, mask, w, opt)
+        if host is not None and lp.dtype != torch.float64 and lp.device.type == "cpu":
+            loss = out[0] if opt.return_info else out  # finite host credit overflows the cast only to +-inf
+            if not math.isfinite(loss.item() if loss.ndim == 0 else float(loss.detach().numpy().sum())):
+                check_credit_fits("credit", host, lp.dtype)
+        return out
     if is_tensor(credit):  # made in lp's dtype on its device from finite tables (_pass_at_k_selected): no check
         return _checked_credit_loss(lp, mask, credit, opt)
     if not _numpy_view(lp) or opt.sampling_logprobs is not None:  # no read of the loss to share: checked now

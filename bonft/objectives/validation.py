@@ -279,8 +279,10 @@ def check_empty_rows(mask_name: str, m: Tensor, weight: Tensor | None) -> None:
                          f"got an all-zero row at index {idx}")
 
 
-def credit_tensor(credit: Any, lp: Tensor, *, check_device: bool) -> Tensor:
-    """Credit (B, n) as a detached tensor on lp's device and dtype; host credit is checked finite (O(B n))."""
+def credit_tensor(credit: Any, lp: Tensor, *, check_device: bool) -> tuple[Tensor, np.ndarray | None]:
+    """Credit (B, n) as a detached tensor on lp's device and dtype, and its float64 host copy (None for a device
+    tensor); host credit is checked finite (O(B n)). Whether it fits lp's dtype (:func:`check_credit_fits`) is
+    the caller's look, where the loss comes out non-finite."""
     B, n = lp.shape[:2]
     if is_tensor(credit):
         w = credit.detach()
@@ -294,14 +296,9 @@ def credit_tensor(credit: Any, lp: Tensor, *, check_device: bool) -> Tensor:
         raise ValueError(f"credit must have shape (B, n) = ({B}, {n}) to match logprobs, got {tuple(w.shape)}")
     if host is not None:
         _check_finite_host("credit", host)
-        out = w.to(device=lp.device, dtype=lp.dtype, non_blocking=True)
-        # finite host values can overflow a narrower dtype; on a CPU the cast's sum is finite when none did
-        if lp.dtype != torch.float64 and (out.device.type != "cpu" or not math.isfinite(float(out.sum()))):
-            check_credit_fits("credit", host, lp.dtype)
-        return out
-    if check_device:
+    elif check_device:
         check_finite("credit", w)  # a device tensor: one sync, so only on request
-    return w.to(device=lp.device, dtype=lp.dtype, non_blocking=True)
+    return w.to(device=lp.device, dtype=lp.dtype, non_blocking=True), host
 
 
 def check_sampling_logprobs(sampling: Any, lp: Tensor) -> Tensor:
