@@ -179,13 +179,7 @@ def load_model(path: str | os.PathLike, *, device: str | torch.device | None = N
     weights require gradients (a full model's always do).
     ``device``: ``None`` -> :func:`pick_device` ``("auto")``. The model is returned in eval mode.
     """
-    if not isinstance(path, (str, os.PathLike)):
-        raise TypeError(f"path must be a str or os.PathLike, got {type(path).__name__}")
-    path = Path(path)
-    if not path.is_dir():
-        raise FileNotFoundError(f"path must be a model or checkpoint directory, got {str(path)!r} (not a directory)")
-    if not (path / "config.json").is_file() and not (path / "model").is_dir() and (path / "checkpoints").is_dir():
-        path = resolve_checkpoint(path)  # a training run directory: its newest checkpoint
+    path = _model_path(path)
     if is_verified_checkpoint(path):  # a trainer checkpoint: sizes and hashes against its manifest
         verify_checkpoint(path)
     adir = adapter_dir(path)
@@ -207,9 +201,8 @@ def load_model(path: str | os.PathLike, *, device: str | torch.device | None = N
     return model, tokenizer
 
 
-def load_tokenizer(path: str | os.PathLike):
-    """The tokenizer :func:`load_model` would return for ``path``, without reading the weights (nor checking them
-    against a checkpoint's manifest): e.g. to render a user task's prompts with the model's chat template."""
+def _model_path(path) -> Path:
+    """A model, checkpoint or adapter directory as given, or a training run directory's newest checkpoint."""
     if not isinstance(path, (str, os.PathLike)):
         raise TypeError(f"path must be a str or os.PathLike, got {type(path).__name__}")
     path = Path(path)
@@ -217,6 +210,13 @@ def load_tokenizer(path: str | os.PathLike):
         raise FileNotFoundError(f"path must be a model or checkpoint directory, got {str(path)!r} (not a directory)")
     if not (path / "config.json").is_file() and not (path / "model").is_dir() and (path / "checkpoints").is_dir():
         path = resolve_checkpoint(path)  # a training run directory: its newest checkpoint
+    return path
+
+
+def load_tokenizer(path: str | os.PathLike):
+    """The tokenizer :func:`load_model` would return for ``path``, without reading the weights (nor checking them
+    against a checkpoint's manifest): e.g. to render a user task's prompts with the model's chat template."""
+    path = _model_path(path)
     adir = adapter_dir(path)
     if adir is not None:
         own = _adapter_tokenizer(path, adir)
