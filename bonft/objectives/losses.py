@@ -216,7 +216,7 @@ def _policy_gradient_loss(logprobs, credit, opt: LossOptions, *, own: bool = Fal
         out = _checked_credit_loss(lp, mask, w, opt)
         if host is not None and lp.dtype != torch.float64 and lp.device.type == "cpu":
             loss = out[0] if opt.return_info else out  # finite host credit overflows the cast only to +-inf
-            if not math.isfinite(loss.item() if loss.ndim == 0 else float(loss.detach().numpy().sum())):
+            if not _finite_loss(loss):
                 check_credit_fits("credit", host, lp.dtype)
         return out
     if is_tensor(credit):  # made in lp's dtype on its device from finite tables (_pass_at_k_selected): no check
@@ -232,10 +232,15 @@ def _policy_gradient_loss(logprobs, credit, opt: LossOptions, *, own: bool = Fal
         raise
     if mask is None:  # a non-finite credit makes the loss non-finite (inf * 0 is NaN): one read of host memory
         loss = out[0] if opt.return_info else out
-        if not math.isfinite(loss.item() if loss.ndim == 0 else float(loss.detach().numpy().sum())):
+        if not _finite_loss(loss):
             _check_finite_host("credit", credit)
             check_credit_fits("credit", credit, lp.dtype)
     return out
+
+
+def _finite_loss(loss: Tensor) -> bool:
+    """One read of a host loss (a scalar, or its (B,) sum with ``reduction="none"``): is it finite?"""
+    return math.isfinite(loss.item() if loss.ndim == 0 else float(loss.detach().numpy().sum()))
 
 
 def _plain_sequence_loss(lp: Tensor, credit) -> Tensor:
