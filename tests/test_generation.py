@@ -688,3 +688,30 @@ def test_sampler_and_training_forward_raise_no_future_warning(arch, via):
     # the two computations of log pi_T agree to float32 round-off (the sampler's own record is the reference)
     torch.testing.assert_close(lp, smp.token_logprobs, rtol=0, atol=1e-5)
     assert int(smp.response_valid.sum()) >= 6  # every row drew at least one token
+
+
+def test_padding_and_output_type_are_checked():
+    # the last prompt position predicts the first response token: a right-padded prompt would be scored from
+    # a pad token (wrong log-probs, no error), so prompts must be left-padded and responses right-padded
+    model = _tiny("gpt2")
+    ids = torch.tensor([[5, 6, 7], [8, 9, 10]])
+    r = torch.ones(2, 2, 3, dtype=torch.long)
+    left = torch.tensor([[0, 1, 1], [1, 1, 1]])
+    assert sequence_logprobs(model, ids, left, r, r).shape == (2, 2, 3)
+    with pytest.raises(ValueError, match=r"prompt_valid must mark left-padded prompts .* got row 0 = \[1, 1, 0\]"):
+        sequence_logprobs(model, ids, torch.tensor([[1, 1, 0], [1, 1, 1]]), r, r)
+    holes = r.clone()
+    holes[1, 0] = torch.tensor([1, 0, 1])
+    with pytest.raises(ValueError, match=r"response_valid must mark right-padded responses .* at index \(1, 0, 2\)"):
+        sequence_logprobs(model, ids, left, r, holes)
+
+    class TupleOut(torch.nn.Module):  # a forward that returns (logits,) instead of a ModelOutput
+        def __init__(self):
+            super().__init__()
+            self.inner, self.config = model, model.config
+
+        def forward(self, **kw):
+            return (self.inner(**kw).logits,)
+
+    with pytest.raises(TypeError, match=r"model must return a transformers ModelOutput with .logits .* got tuple"):
+        sequence_logprobs(TupleOut(), ids, left, r, r)

@@ -48,8 +48,17 @@ def cache_keyword(model) -> str:
     return "past_key_values"
 
 
+def checked_output(out):
+    """A forward's output, which must carry ``.logits`` (a transformers ``ModelOutput``): a plain tuple is refused."""
+    if not hasattr(out, "logits"):
+        raise TypeError(f"model must return a transformers ModelOutput with .logits (and .past_key_values when asked "
+                        f"for a cache), as transformers' causal LMs do, got {type(out).__name__}; a forward that "
+                        f"returns a tuple can be wrapped to return CausalLMOutputWithPast(logits=..., past_key_values=...)")
+    return out
+
+
 def cache_of(out):
-    cache = getattr(out, "cache", None)
+    cache = getattr(checked_output(out), "cache", None)
     return cache if cache is not None else out.past_key_values
 
 

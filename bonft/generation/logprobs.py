@@ -21,7 +21,7 @@ from bonft.generation.inputs import (
     left_pad,
     special_ids,
 )
-from bonft.generation.kvcache import accepts_kwarg, cache_keyword, position_ids, prompt_pass
+from bonft.generation.kvcache import accepts_kwarg, cache_keyword, checked_output, position_ids, prompt_pass
 from bonft.generation.policy import log_policy
 
 
@@ -73,6 +73,27 @@ def recomputes(model) -> bool:
     return any(getattr(m, "gradient_checkpointing", False) is True for m in model.modules())
 
 
+def check_padding(prompt_valid: torch.Tensor, response_valid: torch.Tensor) -> None:
+    """Prompts left-padded (each row ``0..0 1..1``, ending in a real token), responses right-padded (``1..1 0..0``).
+
+    The prompt's last position predicts the first response token, and positions count from the first real
+    token: a right-padded prompt would be scored from a pad (wrong numbers, no error). One read of both masks.
+    """
+    pv, rv = prompt_valid != 0, response_valid != 0
+    bad = torch.stack(((pv[:, 1:] < pv[:, :-1]).any() | (~pv[:, -1]).any() if pv.shape[1] else torch.tensor(True),
+                       (rv[..., 1:] > rv[..., :-1]).any() if rv.shape[-1] > 1 else torch.tensor(False, device=rv.device)))
+    prompt_bad, response_bad = bad.tolist()
+    if prompt_bad:
+        row = next(i for i in range(pv.shape[0]) if pv.shape[1] == 0 or not pv[i, -1] or (pv[i, 1:] < pv[i, :-1]).any())
+        raise ValueError(f"prompt_valid must mark left-padded prompts (each row 0..0 1..1, ending in a real token: the "
+                         f"last prompt position predicts the first response token), got row {row} = "
+                         f"{pv[row].long().tolist()[:16]}; pad prompts on the left (tokenizer.padding_side = 'left')")
+    if response_bad:
+        idx = tuple(int(i) for i in torch.nonzero(rv[..., 1:] > rv[..., :-1])[0].tolist())
+        raise ValueError(f"response_valid must mark right-padded responses (each row 1..1 0..0), got a 1 after a 0 at "
+                         f"index {idx[:-1] + (idx[-1] + 1,)}")
+
+
 def sequence_logprobs(
     model,
     prompt_tokens: torch.Tensor,
@@ -94,7 +115,10 @@ def sequence_logprobs(
     nothing. With the ``temperature`` (and ``top_p``) used by :func:`sample`
     this reproduces ``Samples.token_logprobs`` to float32 round-off; use the
     sampling temperature for unbiased score-function gradients (Chow et al. 2024).
-    Runs in whatever mode the model is in (the tiny models have no dropout). A model in training mode that
+    Prompts must be left-padded and responses right-padded (``prompt_valid`` rows ``0..0 1..1``,
+    ``response_valid`` rows ``1..1 0..0``; anything else is a ``ValueError``: one read of the masks).
+    Runs in whatever mode the model is in: a model with active dropout in training mode scores another
+    policy than :func:`sample`, which decodes in eval mode. A model in training mode that
     recomputes its activations (:func:`recomputes`) gets the one pass over ``[prompt ; response]`` rows.
     """
     check_model(model)
@@ -110,6 +134,7 @@ def sequence_logprobs(
         raise ValueError(f"response_tokens must have B={prompt_tokens.shape[0]} rows like prompt_tokens, got {response_tokens.shape[0]}")
     temperature = check_temperature(temperature)
     top_p = check_top_p(top_p)
+    check_padding(prompt_valid, response_valid)
 
     B, n, T = response_tokens.shape
     resp = response_tokens.reshape(B * n, T)  # (B, n, T) -> (B*n, T): row b*n + j is response j of prompt b
@@ -128,7 +153,7 @@ def sequence_logprobs(
         kwargs = {"logits_to_keep": T + 1} if accepts_kwarg(model, "logits_to_keep") else {}
         if first is None and recomputes(model):
             kwargs["use_cache"] = False  # no cache is kept while recomputing (transformers would warn and drop it)
-        logits = model(input_ids=ids, attention_mask=mask, position_ids=position_ids(mask), **kwargs).logits
+        logits = checked_output(model(input_ids=ids, attention_mask=mask, position_ids=position_ids(mask), **kwargs)).logits
         logits = logits[:, -(T + 1):-1, :]  # (B*n, T, V): position Tp-1+t predicts response token t
     logp = log_policy(logits, temperature, top_p)
     tok = logp.gather(-1, response_tokens.reshape(B * n, T, 1)).squeeze(-1)  # (B*n, T)
