@@ -168,6 +168,10 @@ def test_resume_refuses_a_recipe_that_changes_the_training(tmp_path, reference, 
         T.train(changed, resume=True, progress=False)
     assert {p.name: p.read_bytes() for p in (out / "checkpoints").glob("*/state.pt")} == before
     assert (out / "config.toml").read_text() == config_before
+    # fewer steps than the checkpoint already holds: the run would report 5 steps with weights of 6
+    with pytest.raises(ValueError, match=r"rl_steps = 1 ends the run at step 5, but its newest checkpoint "
+                                         r"step-00000006 is at step 6"):
+        T.train(tiny(tmp_path, "mixed", save_every=0, rl_steps=1), resume=True, progress=False)
     with pytest.raises(ValueError, match=r"k_final: 0 -> 3"):  # k spread over the steps: rl_steps fixed too
         T.train(tiny(tmp_path, "mixed", save_every=0, k_schedule="linear", k_final=3), resume=True, progress=False)
     # a new name, checkpoint cadence, more RL steps and a lower lr (as after a non-finite step): resumed, the

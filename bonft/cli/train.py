@@ -2,6 +2,7 @@
 from __future__ import annotations
 
 import argparse
+import os
 
 HELP = "fine-tune a model for best-of-N / pass@k from a TOML recipe (warm start + RL)"
 DESCRIPTION = (
@@ -31,5 +32,6 @@ def run(args: argparse.Namespace) -> int:
         summary = train(cfg, resume=args.resume, progress=not args.quiet)
     except KeyboardInterrupt:
         return 130
-    print(f"run directory: {summary['run_dir']}")
+    if os.environ.get("RANK", "0") == "0":  # under torchrun only rank 0 reports, as only rank 0 writes
+        print(f"run directory: {summary['run_dir']}")
     return 0

@@ -240,6 +240,10 @@ def _restore(run: Run, resume: bool) -> tuple[int, dict | None]:
             if step_sizes and not changed:
                 warnings.warn(f"--resume continues {out} from {ckpt.name} with changed step sizes: "
                               + "; ".join(step_sizes) + " (the steps from the checkpoint on use them)", stacklevel=2)
+            total = run.cfg.warm_start_steps + run.cfg.rl_steps
+            if ckpt is not None and not changed and _step_of(ckpt) > total:
+                changed = [f"rl_steps = {run.cfg.rl_steps} ends the run at step {total}, but its newest checkpoint "
+                           f"{ckpt.name} is at step {_step_of(ckpt)}"]
             if changed:
                 problem = (f"--resume continues the run in {out} with its own settings, but the recipe changes "
                            f"{len(changed)} key(s) that shape the training: " + "; ".join(changed) + ". Resume with "
@@ -270,6 +274,11 @@ def _restore(run: Run, resume: bool) -> tuple[int, dict | None]:
         with _writing(run, path, "the metrics file"):
             path.write_text("".join(ln + "\n" for ln in kept))
     return start, state
+
+
+def _step_of(ckpt: Path) -> int:
+    """The optimizer steps behind a checkpoint, from its name (``step-00000181``)."""
+    return int(ckpt.name.rsplit("-", 1)[1])
 
 
 def _saved_config(ckpt: Path) -> TrainConfig:
