@@ -137,3 +137,30 @@ def test_load_model_accepts_a_run_directory(tmp_path):
     with pytest.raises(FileNotFoundError, match="no checkpoint in"):
         (tmp_path / "empty" / "checkpoints").mkdir(parents=True)
         load_model(tmp_path / "empty", device="cpu")
+
+
+def test_a_start_from_model_with_dropout_trains_without_it(tmp_path):
+    # GPT2Config's defaults put dropout 0.1 on embeddings, attention and residuals: in training mode two
+    # forwards of the same text then differ, so the training log-probs would be another policy than the
+    # sampler's (which decodes in eval mode). policy_model sets every rate outside a LoRA adapter to 0, says so,
+    # and then a training-mode forward equals the eval-mode one
+    from transformers import GPT2Config, GPT2LMHeadModel
+
+    from bonft.trainer.config import from_dict
+    from bonft.trainer.models import policy_model
+
+    torch.manual_seed(0)
+    model = GPT2LMHeadModel(GPT2Config(vocab_size=40, n_positions=16, n_embd=16, n_layer=1, n_head=2,
+                                       bos_token_id=0, eos_token_id=1))
+    ids = torch.randint(2, 40, (2, 6))
+    model.train()
+    assert not torch.equal(model(ids).logits, model(ids).logits)  # dropout is active
+    (tmp_path / "m").mkdir()
+    cfg = from_dict({"start_from": str(tmp_path / "m"), "rl_steps": 1, "run_dir": str(tmp_path / "r")})
+    with pytest.warns(UserWarning, match=r"start_from's model has active dropout \(.*p=0.1.*\): set to 0 for training"):
+        trained = policy_model(model, cfg)
+    trained.train()
+    a = trained(ids).logits
+    trained.eval()
+    torch.testing.assert_close(a, trained(ids).logits, rtol=0, atol=0)
+    assert model.config.resid_pdrop == 0.1  # the config (what a checkpoint saves) is untouched

@@ -20,6 +20,7 @@ from __future__ import annotations
 
 import os
 import pickle
+import warnings
 from pathlib import Path
 from typing import Any
 
@@ -314,9 +315,36 @@ def policy_model(model, cfg, *, training: bool = True):
     elif adapted and cfg.warm_start_steps + cfg.rl_steps:
         raise ValueError(f"start_from {cfg.start_from!r} is a LoRA adapter: to train it further set adapter_from = "
                          f"{cfg.start_from!r} and start_from = its base {recorded_base(adapter_dir(cfg.start_from))!r}")
+    switched = switch_off_dropout(model)
+    if switched:
+        warnings.warn(f"start_from's model has active dropout ({', '.join(switched[:3])}{', ...' if len(switched) > 3 else ''}): "
+                      f"set to 0 for training, since the sampler decodes without dropout and the policy gradient "
+                      f"needs the log-probs of the policy that sampled (adapter_dropout is the adapter's own)",
+                      stacklevel=2)
     if cfg.recompute_activations:
         recompute_activations(model)
     return model
+
+
+_DROPOUT_ATTRS = ("attention_dropout", "attn_dropout", "dropout_p")  # rates some attention layers hold as floats
+
+
+def switch_off_dropout(model) -> list[str]:
+    """Set every dropout rate of ``model`` outside a LoRA adapter to 0 (in memory; its config is untouched):
+    ``nn.Dropout`` layers and the float rates attention layers pass to their kernels. Returns what was > 0."""
+    switched = []
+    for name, module in model.named_modules():
+        if "lora_" in name:
+            continue  # the adapter's dropout is a recipe key of its own (adapter_dropout)
+        if isinstance(module, torch.nn.Dropout) and module.p > 0:
+            switched.append(f"{name or 'model'} p={module.p:g}")
+            module.p = 0.0
+        for attr in _DROPOUT_ATTRS:
+            rate = getattr(module, attr, None)
+            if isinstance(rate, float) and rate > 0:
+                switched.append(f"{name}.{attr}={rate:g}")
+                setattr(module, attr, 0.0)
+    return switched
 
 
 def recompute_activations(model) -> None:
