@@ -322,3 +322,15 @@ def test_the_command_line_shows_one_error_line(tmp_path, monkeypatch, capsys):
                         rf"\(pid {os.getpid()} on host {re.escape(socket.gethostname())}, started "
                         r"\d{4}-\d\d-\d\dT\d\d:\d\d:\d\d\+00:00\); wait for it to finish, stop it, or choose another "
                         r"run directory", err[0]), err[0]
+
+
+def test_a_write_that_fails_for_another_reason_than_space_does_not_blame_the_disk():
+    # EEXIST (a file where the run directory goes) and EISDIR (a directory where a file goes) have nothing to do
+    # with free space: the message names the cause and leaves the free space out; ENOSPC keeps it
+    from bonft.trainer.rundir import write_failed
+
+    msg = str(write_failed(OSError(errno.EEXIST, "File exists"), path="/x/afile", run_dir=None, what="the run directory"))
+    assert msg == "could not write the run directory /x/afile (File exists); fix what blocks /x/afile (File exists) and rerun with --resume"
+    full = str(write_failed(OSError(errno.ENOSPC, "No space left on device"), path="/tmp/x", run_dir=None,
+                            what="the summary", need_bytes=2048))
+    assert "about 2.0 kB needed" in full and " free on " in full and full.endswith("; free space and rerun with --resume")

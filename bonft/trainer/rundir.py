@@ -176,9 +176,11 @@ def write_failed(err: BaseException, *, path: str | Path, run_dir: str | Path | 
     cause = _cause(err)
     if isinstance(err, RuntimeError) and need_bytes and free is not None and free < need_bytes:
         cause = "no space left on the device"  # torch's stream error on a disk that cannot hold the file
+    # a stream error without an errno (torch's writer) is most likely a full disk; an OSError says what it is
+    full = not isinstance(err, OSError) or getattr(err, "errno", None) in (errno.ENOSPC, errno.EDQUOT)
     parts = [f"could not write {what} {path} ({cause})"]
     space = [f"about {_size(need_bytes)} needed" if need_bytes else "", f"{_size(free)} free" if free is not None else ""]
-    if any(space):
+    if any(space) and full:  # a file in the way or a permission: the free space is no cause
         parts.append(", ".join(s for s in space if s) + f" on {_mount_of(path)}")
     if removed is not None:
         parts.append(f"the unfinished {removed} was removed")
@@ -190,7 +192,7 @@ def write_failed(err: BaseException, *, path: str | Path, run_dir: str | Path | 
         except CheckpointError:
             ckpt = None
         parts.append(f"the last verified checkpoint is {ckpt}" if ckpt is not None else "no checkpoint was written yet")
-    parts.append("free space and rerun with --resume")
+    parts.append(("free space" if full else f"fix what blocks {path} ({cause})") + " and rerun with --resume")
     return WriteFailed("; ".join(parts))
 
 
