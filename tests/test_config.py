@@ -41,6 +41,7 @@ def make(**kw):
         ({"momentum": 1.0, "optimizer": "sgd"}, ValueError, r"momentum must be in \[0, 1\), got momentum=1.0"),
         ({"placebo": 1}, TypeError, r"placebo must be true or false, got int 1"),
         ({"snr_every": -1}, ValueError, r"snr_every must be >= 0, got"),
+        ({"eval_ks": [1, 1, 4]}, ValueError, r"eval_ks must not repeat a k .*got eval_ks=\[1, 1, 4\]"),
         # keys that cannot take effect with the others
         ({"k_final": 2}, ValueError, r"k_final applies to k_schedule 'linear' or 'geometric' \(with 'constant', k stays 8\), "
                                      r"got k_final=2 with k_schedule='constant'"),
@@ -69,7 +70,9 @@ def test_overrides_convert_types():
 
 
 @pytest.mark.parametrize("item, match", [("n", r"--set expects key=value, got 'n'"), ("nn=3", r"--set key must be a config field"),
-                                         ("n=many", r"n must be an int, got 'many'")])
+                                         ("n=many", r"n must be an int, got 'many'"),
+                                         ("eval_ks=1,,4", r"eval_ks must be a comma-separated list with no empty item, got '1,,4'"),
+                                         ("eval_ks=[1,4,]", r"eval_ks must be a comma-separated list with no empty item")])
 def test_bad_overrides(item, match):
     with pytest.raises(ValueError, match=match):
         apply_overrides(BASE, [item])

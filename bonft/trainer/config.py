@@ -382,6 +382,8 @@ def validate(c: TrainConfig) -> None:
         if kk > c.eval_samples:
             raise ValueError(f"eval_ks must be <= eval_samples (eval_samples={c.eval_samples}), got eval_ks={list(c.eval_ks)}")
     c.eval_ks = [int(v) for v in c.eval_ks]
+    if len(set(c.eval_ks)) < len(c.eval_ks):
+        raise ValueError(f"eval_ks must not repeat a k (each is one column of every evaluation), got eval_ks={c.eval_ks}")
     if c.eval_prompts > c.heldout_prompts:
         raise ValueError(f"eval_prompts must be <= heldout_prompts (heldout_prompts={c.heldout_prompts}), got eval_prompts={c.eval_prompts}")
     if c.task == "jsonl" and not c.prompts_file:
@@ -526,6 +528,9 @@ def convert_value(name: str, text: str, like: Any) -> Any:
             return float(text)
         except ValueError:
             raise ValueError(f"{name} must be a number, got {text!r}") from None
+    if isinstance(like, list) and any(not v.strip() for v in text.replace("[", "").replace("]", "").split(",")) \
+            and text.replace("[", "").replace("]", "").strip():
+        raise ValueError(f"{name} must be a comma-separated list with no empty item, got {text!r}")
     if isinstance(like, list) and FIELDS[name].metadata.get("items") is str:
         return [v.strip().strip("'\"") for v in text.replace("[", "").replace("]", "").split(",") if v.strip()]
     if isinstance(like, list):
