@@ -113,7 +113,7 @@ def test_zero_credit_warns_and_bad_rows_stop_before_any_step(user_setup, capsys)
     assert main(["train", str(recipe), "--output", str(tmp / "silent"), "--quiet", "--set", "verifier=jar_grader:never",
                  "--set", "eval_at_start=false"]) == 0
     err = capsys.readouterr().err  # the command prints each warning once on stderr
-    assert err.count("the credit was zero on every one of the first 1 RL step (1 of 2, the first 10%") == 1
+    assert err.count("the credit was zero on every one of the first 1 RL step (1 of 2: the first 10%, rounded up to whole steps") == 1
     assert "no sample was ever rewarded" in err
     with pytest.warns(ZeroCreditWarning):  # through the Python API: a warning of its own class
         from bonft.trainer.config import load_config

@@ -26,7 +26,7 @@ def test_never_rewarded_warns_once_with_the_count():
         out = feed(watch, [zero] * 6)
     assert len(got) == 1
     assert out[:2] == [None, None] and out[3:] == [None] * 3
-    assert out[2].startswith("the credit was zero on every one of the first 3 RL steps (3 of 25, the first 10%")
+    assert out[2].startswith("the credit was zero on every one of the first 3 RL steps (3 of 25: the first 10%, rounded up to whole steps")
     assert "no sample was ever rewarded" in out[2]
 
 

@@ -61,7 +61,7 @@ class ZeroCreditWatch:
     def _message(self) -> str:
         w, top = self.window, max(self.rewards)
         head = (f"the credit was zero on every one of the first {w} RL step{'s' if w > 1 else ''} "
-                f"({w} of {self.rl_steps}, the first 10%; pool/with_signal = 0): the policy gradient did nothing. ")
+                f"({w} of {self.rl_steps}: the first 10%, rounded up to whole steps; pool/with_signal = 0): the policy gradient did nothing. ")
         if top == 0.0:
             cause = ("Likely cause: no sample was ever rewarded (mean reward 0 on every step): the verifier rejects "
                      "everything the starting policy writes; check the verifier on a few samples, warm-start first, or "
