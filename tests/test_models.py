@@ -100,7 +100,7 @@ def test_pick_device():
     assert pick_device("cpu") == torch.device("cpu")
     assert pick_device("auto") == torch.device("cuda" if torch.cuda.is_available() else "cpu")
     if not torch.cuda.is_available():
-        with pytest.raises(ValueError, match=r"preference='cuda' needs a CUDA device"):
+        with pytest.raises(ValueError, match=r"device 'cuda' needs a CUDA device"):
             pick_device("cuda")
     with pytest.raises(ValueError, match=r"preference must be one of \('auto', 'cpu', 'cuda'\), got 'gpu'"):
         pick_device("gpu")

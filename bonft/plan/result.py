@@ -172,7 +172,7 @@ class PlanResult:
         f = self.fit
         r2 = "undefined (constant)" if f.r2 is None else f"{f.r2:.3f}"
         lines.append(
-            f"best temperature vs log k ({f.caveat}): T* ~ {f.intercept:.3f} + {f.slope:+.3f} log k, "
+            f"best temperature vs log k ({f.caveat}): T* ~ {f.intercept:.3f} {'-' if f.slope < 0 else '+'} {abs(f.slope):.3f} log k, "
             f"R^2 {r2}, RMS residual {f.rmse:.3f}; monotone fit {f.monotone_direction}, RMS {f.monotone_rmse:.3f}"
         )
         lines += [f"note: {n}" for n in self.notes]

@@ -47,7 +47,8 @@ def pick_device(preference: str = "auto") -> torch.device:
     """``"auto"``: cuda when available, else cpu; ``"cpu"``; ``"cuda"`` (error if absent)."""
     check_choice("preference", preference, ("auto", "cpu", "cuda"))
     if preference == "cuda" and not torch.cuda.is_available():
-        raise ValueError("preference='cuda' needs a CUDA device, but torch.cuda.is_available() is False")
+        raise ValueError("device 'cuda' needs a CUDA device, but torch.cuda.is_available() is False; use "
+                         "device = 'cpu' or 'auto'")
     if preference == "auto":
         return torch.device("cuda" if torch.cuda.is_available() else "cpu")
     return torch.device(preference)
