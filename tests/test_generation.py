@@ -715,3 +715,22 @@ def test_padding_and_output_type_are_checked():
 
     with pytest.raises(TypeError, match=r"model must return a transformers ModelOutput with .logits .* got tuple"):
         sequence_logprobs(TupleOut(), ids, left, r, r)
+
+
+def test_rows_end_at_every_end_token_the_model_names():
+    # generate ends a row at any id of generation_config.eos_token_id (an int or a list); sample ends it there
+    # too, beside the tokenizer's EOS: a model with an end-of-turn token of its own would otherwise be sampled,
+    # scored and credited past the point where it is served
+    model = _tiny("gpt2")
+    plain = sample(model, TOK, ["ab", "cd"], n=8, max_new_tokens=12, seed=3)
+    toks, valid = plain.response_tokens.reshape(16, -1), plain.response_valid.reshape(16, -1)
+    drawn = [t for row, m in zip(toks.tolist(), valid.tolist()) for t, v in zip(row, m) if v and t != EOS_ID]
+    stop = max(set(drawn), key=drawn.count)  # a token this model draws often
+    model.generation_config.eos_token_id = [EOS_ID, stop]
+    got = sample(model, TOK, ["ab", "cd"], n=8, max_new_tokens=12, seed=3)
+    toks, valid = got.response_tokens.reshape(16, -1), got.response_valid.reshape(16, -1)
+    for row, m in zip(toks.tolist(), valid.tolist()):
+        kept = [t for t, v in zip(row, m) if v]
+        ends = [i for i, t in enumerate(kept) if t in (EOS_ID, stop)]
+        assert not ends or ends[0] == len(kept) - 1  # nothing after the first end token
+    assert any(row[m.index(0) - 1 if 0 in m else -1] == stop for row, m in zip(toks.tolist(), valid.tolist()))

@@ -46,6 +46,17 @@ def special_ids(tokenizer) -> tuple[int, int | None]:
     return int(pad), (None if eos is None else int(eos))
 
 
+def stop_ids(model, eos_id: int | None) -> tuple[int, ...]:
+    """The tokens that end a response: the tokenizer's EOS, then every id of the model's
+    ``generation_config.eos_token_id`` (an int or a list, as ``generate`` reads it)."""
+    ids = [] if eos_id is None else [int(eos_id)]
+    extra = getattr(getattr(model, "generation_config", None), "eos_token_id", None)
+    for e in (extra if isinstance(extra, (list, tuple)) else [] if extra is None else [extra]):
+        if int(e) not in ids:
+            ids.append(int(e))
+    return tuple(ids)
+
+
 def left_pad(rows: list[list[int]], pad_id: int) -> tuple[torch.Tensor, torch.Tensor]:
     """Left-pad token lists: (B, Tp) ids and (B, Tp) mask."""
     Tp = max(len(r) for r in rows)

@@ -41,6 +41,7 @@ from bonft.generation.inputs import (
     rng_state,
     set_rng_state,
     special_ids,
+    stop_ids,
 )
 from bonft.generation.kvcache import cache_keyword, cache_of, decode_cache, position_ids
 from bonft.generation.policy import draw_tokens, log_policy
@@ -87,7 +88,7 @@ class Samples:
 
 
 @torch.no_grad()  # sampling never builds a graph; training log-probs come from sequence_logprobs
-def _sample_rows(model, ids, mask, *, temperature, top_p, max_new_tokens, pad_id, eos_id, generator,
+def _sample_rows(model, ids, mask, *, temperature, top_p, max_new_tokens, pad_id, stops, generator,
                  generators=None, n=1, shared_prefix=True):
     """Decode n samples of each of P prompts. ids, mask: (P, Tp) -> tokens, gen_mask, logprobs: (P*n, t_max).
 
@@ -117,8 +118,10 @@ def _sample_rows(model, ids, mask, *, temperature, top_p, max_new_tokens, pad_id
             toks.append(nxt)
             gmask.append(live.long())
             lps.append(torch.where(live, lp, torch.zeros_like(lp)))
-            if eos_id is not None:
-                done = done | (live & (nxt == eos_id))
+            if len(stops) == 1:
+                done = done | (live & (nxt == stops[0]))
+            elif stops:  # several end tokens (the tokenizer's and the model's generation_config's)
+                done = done | (live & torch.isin(nxt, torch.tensor(stops, device=nxt.device)))
             if bool(done.all()) or len(toks) == max_new_tokens:
                 break
             pos = pos + 1
@@ -205,6 +208,7 @@ def sample(
             raise ValueError(f"seeds must hold one seed per prompt ({len(prompts)} prompts), got {len(seeds)} seeds")
 
     pad_id, eos_id = special_ids(tokenizer)
+    stops = stop_ids(model, eos_id)  # a row ends at the tokenizer's EOS or any the model's generation_config names
     rows = [list(tokenizer(p)["input_ids"]) for p in prompts]
     for i, r in enumerate(rows):
         if not r:
@@ -237,7 +241,7 @@ def sample(
         parts = []
         for s in range(0, B * n, chunk):
             kw = dict(temperature=temperature, top_p=top_p, max_new_tokens=max_new_tokens, pad_id=pad_id,
-                      eos_id=eos_id, generator=generator, n=n,
+                      stops=stops, generator=generator, n=n,
                       generators=None if generators is None else generators[s // n:(s + chunk) // n])
             rows_ids, rows_mask = ids[s // n:(s + chunk) // n], mask[s // n:(s + chunk) // n]
             rng = rng_state(generator, kw["generators"], device)
@@ -262,7 +266,7 @@ def sample(
 
     flat = []
     for toks, m in zip(resp.tolist(), rmask.tolist()):
-        kept = [t for t, keep in zip(toks, m) if keep and t != eos_id]
+        kept = [t for t, keep in zip(toks, m) if keep and t not in stops]
         flat.append(tokenizer.decode(kept, skip_special_tokens=True))
     texts = [flat[b * n:(b + 1) * n] for b in range(B)]
     return Samples(
