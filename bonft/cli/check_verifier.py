@@ -13,8 +13,6 @@ DESCRIPTION = (
     "this imports and runs the verifier's code."
 )
 
-# the tokenizer files bonft.trainer.models.load_model looks for in a directory
-_TOKENIZER_FILES = ("tokenizer_config.json", "tokenizer.json", "vocab.json", "tokenizer.model", "vocab.txt")
 
 
 def add_arguments(p) -> None:
@@ -77,6 +75,7 @@ def bind_recipe_rows(verifier, spec: str, recipe: str, examples: list[dict], exa
     """
     from bonft.trainer.config import load_config  # loads torch: only with --recipe
     from bonft.trainer.run import task_split  # loads torch: only with --recipe
+    from bonft.verifiers.fields import reads_rows
 
     with_row = next((i for i, ex in enumerate(examples) if "row" in ex), None)
     if with_row is not None:
@@ -86,12 +85,12 @@ def bind_recipe_rows(verifier, spec: str, recipe: str, examples: list[dict], exa
     if cfg.task != "user":
         raise ValueError(f"--recipe binds the data rows of task = 'user', but recipe {recipe} has task = {cfg.task!r}, "
                          "which has no rows: drop --recipe")
+    if not reads_rows(verifier):
+        raise ValueError(f"--recipe cannot take effect: verifier {spec} reads no data rows (it has neither a parameter "
+                         "named 'rows' nor fields + bind); drop --recipe")
     task, train, held = task_split(cfg, _recipe_tokenizer(cfg))
     everything = list(train) + list(held)
     bound = task.bind_verifier(verifier, everything)
-    if bound is verifier:
-        raise ValueError(f"--recipe cannot take effect: verifier {spec} reads no data rows (it has neither a parameter "
-                         "named 'rows' nor fields + bind); drop --recipe")
     known = {e.prompt for e in everything}
     for i, ex in enumerate(examples):
         if ex["prompt"] not in known:

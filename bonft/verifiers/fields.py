@@ -58,6 +58,11 @@ def _takes_rows(fn: Any) -> bool:
     return "rows" in params
 
 
+def reads_rows(verifier: Any) -> bool:
+    """Does :func:`bind_rows` bind ``verifier`` to data rows (it has ``bind``, or a parameter named ``rows``)?"""
+    return hasattr(verifier, "bind") or _takes_rows(verifier)
+
+
 def bind_rows(verifier: Any, rows: Sequence[tuple[str, Mapping[str, Any], str]]) -> Callable:
     """``verifier`` ready to score the prompts of ``rows``.
 

@@ -48,7 +48,7 @@ import numpy as np
 from bonft._core.checks import check_int, check_real
 from bonft._core.jsonl import decode_utf8, parse_object
 from bonft.estimate import best_of_k_per_prompt, default_ks, pass_at_k_per_prompt
-from bonft.verifiers.fields import _takes_rows, bind_rows, needed_fields
+from bonft.verifiers.fields import bind_rows, needed_fields, reads_rows
 from bonft.verifiers.report import VerifierReport, roc_auc
 from bonft.verifiers.scoring import score_batch
 
@@ -228,11 +228,6 @@ def _pools(examples: Any, labels: Any) -> list[dict]:
     return out
 
 
-def _reads_rows(verifier: Any) -> bool:
-    """True for a verifier that :func:`bind_rows` binds to data rows (``bind``, or a parameter named ``rows``)."""
-    return hasattr(verifier, "bind") or _takes_rows(verifier)
-
-
 def _verifier_name(verifier: Any) -> str:
     return getattr(verifier, "__name__", None) or type(verifier).__name__
 
@@ -264,7 +259,7 @@ def _bind_examples(verifier: Any, examples: Sequence[Mapping]) -> Any:
     """``verifier`` bound to the examples' rows when it reads rows (as the trainer binds it to the data), else itself."""
     rows, without, with_row = _example_rows(examples)
     name = _verifier_name(verifier)
-    if not _reads_rows(verifier):
+    if not reads_rows(verifier):
         if with_row is not None:
             raise ValueError(f"examples[{with_row}] has a 'row', but verifier {name} reads no data rows (it has neither "
                              "a parameter named 'rows' nor fields + bind), so the row cannot take effect; drop 'row'")
