@@ -4,13 +4,8 @@ from __future__ import annotations
 import argparse
 import math
 import os
-import sys
 
-if sys.version_info >= (3, 11):
-    import tomllib
-else:  # pragma: no cover - Python 3.10
-    import tomli as tomllib
-
+from bonft._core.toml import tomllib
 from bonft.cli.options import (
     add_plot_dir,
     check_output_paths,

@@ -33,16 +33,10 @@ import json
 import math
 import os
 import random
-import sys
 import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
-
-if sys.version_info >= (3, 11):
-    import tomllib
-else:  # pragma: no cover - Python 3.10
-    import tomli as tomllib
 
 from bonft._core.checks import (
     MAX_POOL,
@@ -57,6 +51,7 @@ from bonft._core.checks import (
     check_real,
     check_seed,
 )
+from bonft._core.toml import tomllib
 from bonft.objectives.validation import RATIO_LEVELS
 from bonft.tasks import TASKS, get_task
 from bonft.tasks.base import family_counts
