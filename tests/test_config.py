@@ -69,6 +69,15 @@ def test_overrides_convert_types():
     assert c.task_params == {"hard_share": 0.25}
 
 
+def test_quoted_string_overrides_read_as_in_a_recipe():
+    # a recipe line `name = 'x y'` and `--set name='x y'` give the same value (TOML 1.0's literal and basic strings)
+    v = apply_overrides(BASE, ["name='x y'", 'run_dir="runs/a b"', "objective=best_of_k", "verifier='exact'"])
+    assert (v["name"], v["run_dir"], v["objective"], v["verifier"]) == ("x y", "runs/a b", "best_of_k", "exact")
+    assert apply_overrides(BASE, ['name="tab\\there"'])["name"] == "tab\there"  # a basic string's escape, as TOML reads it
+    with pytest.raises(ValueError, match=r"name must be a string; a quoted one is read as TOML .*not a valid TOML string"):
+        apply_overrides(BASE, ['name="a"b"'])
+
+
 @pytest.mark.parametrize("item, match", [("n", r"--set expects key=value, got 'n'"), ("nn=3", r"--set key must be a config field"),
                                          ("n=many", r"n must be an int, got 'many'"),
                                          ("eval_ks=1,,4", r"eval_ks must be a comma-separated list with no empty item, got '1,,4'"),

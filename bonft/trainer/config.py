@@ -533,6 +533,12 @@ def convert_value(name: str, text: str, like: Any) -> Any:
             return [int(v) for v in text.replace("[", "").replace("]", "").split(",") if v.strip()]
         except ValueError:
             raise ValueError(f"{name} must be a comma-separated list of ints, got {text!r}") from None
+    if len(text) >= 2 and text[0] == text[-1] and text[0] in "'\"":  # a TOML string, as a recipe would write it
+        try:
+            return tomllib.loads(f"v = {text}")["v"]
+        except tomllib.TOMLDecodeError:
+            raise ValueError(f"{name} must be a string; a quoted one is read as TOML (as in a recipe), got {text!r}, "
+                             f"which is not a valid TOML string") from None
     return text
 
 
