@@ -42,6 +42,14 @@ def _check_path(path: Any) -> str:
         raise ValueError("path must be a file path, got an empty string")
     if os.path.isdir(path):
         raise ValueError(f"path must be a file path, got an existing directory: {path}")
+    from matplotlib.backend_bases import FigureCanvasBase  # the formats savefig writes (png, pdf, svg, ...)
+
+    kinds = FigureCanvasBase.get_supported_filetypes()
+    ext = os.path.splitext(path)[1][1:].lower()
+    if ext not in kinds:
+        what = f"the extension .{ext}, which matplotlib cannot write" if ext else "no extension (matplotlib would add .png)"
+        raise ValueError(f"path must end in a figure format's extension ({', '.join('.' + e for e in sorted(kinds))}), "
+                         f"got {path!r} with {what}")
     return path
 
 
@@ -174,7 +182,7 @@ def plot_best_of_k_curves(curves: dict, path, *, title: str | None = None) -> st
     ax.grid(alpha=0.3)
     ax.legend(fontsize=8)
     fig.tight_layout()
-    fig.savefig(path, dpi=100)
+    fig.savefig(_out(path), dpi=100)
     plt.close(fig)
     return path
 
@@ -229,11 +237,11 @@ def _finish(plt, fig, axes, path, title, *, unit=None, ticks=None) -> Path:
         if unit is None or ax in unit:
             ax.set_ylim(0, 1)
         ax.grid(alpha=0.3)
-        if ax.lines:
+        if ax.get_legend_handles_labels()[1]:  # a lone zero line has no label: no empty legend
             ax.legend(fontsize=8)
     fig.suptitle(title)
     fig.tight_layout()
-    fig.savefig(path, dpi=110)
+    fig.savefig(_out(path), dpi=110)
     plt.close(fig)
     return Path(path)
 
@@ -428,7 +436,7 @@ def plot_verifier_check(report, path) -> str:
     status = "OK" if report.ok else "; ".join(p.split(":")[0] for p in report.problems)
     ax.set_title(f"verifier check: {status}", fontsize=9)
     fig.tight_layout()
-    fig.savefig(path, dpi=100)
+    fig.savefig(_out(path), dpi=100)
     plt.close(fig)
     return str(path)
 

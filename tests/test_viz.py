@@ -134,8 +134,11 @@ def test_a_good_evaluation_is_still_drawn(tmp_path, closed_figures):
     (3, TypeError, r"path must be a file path \(str or os.PathLike\), got int 3"),
     ("", ValueError, r"path must be a file path, got an empty string"),
     ("DIR", ValueError, r"path must be a file path, got an existing directory: .*figs"),
+    # savefig adds .png to a bare name (matplotlib's savefig.format), so the returned path would name no file
+    ("curves", ValueError, r"path must end in a figure format's extension \(.*\.png.*\), got 'curves' with no extension"),
+    ("curves.txt", ValueError, r"got 'curves.txt' with the extension .txt, which matplotlib cannot write"),
 ])
-@pytest.mark.parametrize("plot", ["best_of_k", "evaluations", "comparison", "paired"])
+@pytest.mark.parametrize("plot", ["best_of_k", "evaluations", "comparison", "paired", "verifier", "strategy"])
 def test_the_path_must_be_a_file_path(tmp_path, monkeypatch, closed_figures, plot, path, err, match):
     folder = tmp_path / "figs"
     folder.mkdir()
@@ -145,8 +148,40 @@ def test_the_path_must_be_a_file_path(tmp_path, monkeypatch, closed_figures, plo
     draw = {"best_of_k": lambda p: viz.plot_best_of_k_curves({"a": summary}, p),
             "evaluations": lambda p: viz.plot_evaluations([_eval()], p),
             "comparison": lambda p: viz.plot_comparison({"a": _eval()}, p),
-            "paired": lambda p: viz.plot_paired_differences(_PAIRED, p, ks=[1, 2])}[plot]
+            "paired": lambda p: viz.plot_paired_differences(_PAIRED, p, ks=[1, 2]),
+            "verifier": lambda p: viz.plot_verifier_check(_verifier_report(), p),
+            "strategy": lambda p: viz.plot_strategy_curves({"T=1": _strategy_curves()}, p)}[plot]
     with pytest.raises(err, match=match):
         draw(str(folder) if path == "DIR" else path)
     assert closed_figures == [] and sorted(p.name for p in tmp_path.iterdir()) == ["figs"]
     assert list(folder.iterdir()) == []
+
+
+@pytest.mark.parametrize("plot", ["best_of_k", "evaluations", "comparison", "paired", "verifier", "strategy"])
+def test_every_figure_makes_its_missing_folders(tmp_path, plot):
+    rng = np.random.default_rng(0)
+    summary = summarize(rng.random((6, 2)), (rng.random((6, 2)) < 0.5).astype(float), ks=[1, 2], n_boot=10)
+    draw = {"best_of_k": lambda p: viz.plot_best_of_k_curves({"a": summary}, p),
+            "evaluations": lambda p: viz.plot_evaluations([_eval()], p),
+            "comparison": lambda p: viz.plot_comparison({"a": _eval()}, p),
+            "paired": lambda p: viz.plot_paired_differences(_PAIRED, p, ks=[1, 2]),
+            "verifier": lambda p: viz.plot_verifier_check(_verifier_report(), p),
+            "strategy": lambda p: viz.plot_strategy_curves({"T=1": _strategy_curves()}, p)}[plot]
+    out = tmp_path / "a" / "b" / "fig.png"
+    draw(out)
+    assert out.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"  # the PNG signature (PNG specification, section 5.2)
+
+
+def _verifier_report():
+    from bonft.testing import check_verifier
+    from bonft.verifiers import ExactMatch
+
+    pools = [{"prompt": "2+2?", "responses": ["answer: 4", "answer: 5", "4", "x"], "rewards": [1, 0, 1, 0]}]
+    return check_verifier(ExactMatch({"2+2?": "4"}), pools, repeats=2)
+
+
+def _strategy_curves():
+    from bonft.strategies import compare_strategies
+
+    rng = np.random.default_rng(0)
+    return compare_strategies(["best_of_k"], ks=[1, 2], rewards=rng.random((5, 4)), scores=rng.random((5, 4)), n_boot=10)
