@@ -165,6 +165,37 @@ def test_plan_command_model_mode_reuses_cache(tmp_path, monkeypatch, capsys):
     assert "reused T=[0.7, 1.0]" in capsys.readouterr().out
 
 
+def test_plan_model_mode_samples_as_long_as_the_run_did(tmp_path, monkeypatch, capsys):
+    # a bonft run records max_new_tokens (bonft sample and eval use it); a plain model directory records none
+    import bonft.plan.from_model
+    from bonft.tasks import build_tokenizer
+    from bonft.trainer.checkpoint import save_checkpoint, save_model
+    from bonft.trainer.config import TrainConfig, to_toml
+    from bonft.trainer.models import build_tiny_model
+
+    tok = build_tokenizer()
+    model = build_tiny_model(vocab_size=len(tok), layers=1, width=32, heads=2, pad_token_id=tok.pad_token_id,
+                             eos_token_id=tok.eos_token_id, bos_token_id=tok.bos_token_id, seed=1)
+    save_checkpoint(tmp_path / "run", step=1, model=model, tokenizer=tok, optimizer=None,
+                    config_toml=to_toml(TrainConfig(max_new_tokens=3, rl_steps=1)))
+    save_model(model, tok, tmp_path / "plain")
+    lengths = []
+    real = bonft.plan.from_model.sample
+
+    def recording(*a, **kw):
+        lengths.append(kw["max_new_tokens"])
+        return real(*a, **kw)
+
+    monkeypatch.setattr(bonft.plan.from_model, "sample", recording)
+    common = ["--task", "ledger", "--n-prompts", "2", "--n", "2", "--n-boot", "20", "--temperatures", "1.0", "--quiet"]
+    for model_dir, extra, want, whence in [("run", [], 3, "the run's, from"), ("plain", [], 32, "the default for a model"),
+                                           ("run", ["--max-new-tokens", "5"], 5, "--max-new-tokens")]:
+        lengths.clear()
+        assert main(["plan", "--model", str(tmp_path / model_dir), *common, *extra]) == 0
+        assert set(lengths) == {want}, (model_dir, lengths)
+        assert f"max_new_tokens {want} ({whence}" in capsys.readouterr().out
+
+
 def test_plan_model_mode_takes_the_first_n_prompts_of_a_prompts_file(tmp_path, capsys):
     from bonft.tasks import build_tokenizer
     from bonft.trainer.checkpoint import save_model
@@ -187,3 +218,5 @@ def test_plan_model_mode_takes_the_first_n_prompts_of_a_prompts_file(tmp_path, c
     assert "--n-prompts must be <= the 9 prompts of" in capsys.readouterr().err
     assert main(["plan", "--samples", str(prompts), "--n-prompts", "4"]) == 2
     assert "--n-prompts applies to --model only" in capsys.readouterr().err
+    assert main(["plan", "--samples", str(prompts), "--quiet"]) == 2  # only model mode has a progress bar to hide
+    assert "--quiet applies to --model only (sampling from a model), got --quiet with --samples" in capsys.readouterr().err

@@ -4,6 +4,7 @@ from __future__ import annotations
 import argparse
 import json
 import os
+from pathlib import Path
 
 from bonft._core.checks import check_choice, check_int
 from bonft.cli.options import add_duplicates_flag, check_sizes, parse_list, write_json_atomic
@@ -24,6 +25,7 @@ DESCRIPTION = (
 )
 
 DEFAULT_TEMPERATURES = "0.4,0.7,1.0,1.3"
+PLAIN_MAX_NEW_TOKENS = 32  # --max-new-tokens for a model directory that records none (not a bonft checkpoint)
 
 def add_arguments(p: argparse.ArgumentParser) -> None:
     src = p.add_argument_group("input (one of)")
@@ -40,7 +42,9 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     m.add_argument("--verifier", default="exact",
                    help="exact, proxy (built-in task's imperfect verifier) or module:function (default: exact)")
     m.add_argument("--n", type=int, default=64, help="samples per prompt at each temperature (default: 64)")
-    m.add_argument("--max-new-tokens", type=int, default=32, help="longest response in tokens (default: 32)")
+    m.add_argument("--max-new-tokens", type=int, default=None,
+                   help="longest response in tokens (default: a bonft checkpoint's or run's own max_new_tokens, "
+                        f"else {PLAIN_MAX_NEW_TOKENS})")
     m.add_argument("--top-p", type=float, default=1.0, help="nucleus mass, 1 = none (default: 1.0)")
     m.add_argument("--batch-size", type=int, default=None, help="rows per generation chunk (default: all)")
     m.add_argument("--cache", metavar="DIR", default=None,
@@ -66,7 +70,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--seed", type=int, default=0, help="bootstrap and sampling seed (default: 0)")
     p.add_argument("--json", metavar="OUT.json", default=None, help="write the full result as JSON")
     p.add_argument("--plot-dir", metavar="DIR", default=None, help="write plan_heatmap.png and plan_curves.png here")
-    p.add_argument("--quiet", action="store_true", help="no progress bar")
+    p.add_argument("--quiet", action="store_true", help="no progress bar while sampling (model mode)")
     add_strategy_arguments(p)
 
 
@@ -105,6 +109,22 @@ def _prompts_and_verifier(args):
     return prompts, load_verifier(v), v
 
 
+def _max_new_tokens(args) -> tuple[int, str]:
+    """--max-new-tokens, else the one a bonft checkpoint (or a run's newest) was trained and evaluated with, as
+    ``bonft sample`` and ``bonft eval`` use it, else :data:`PLAIN_MAX_NEW_TOKENS`; and where it came from."""
+    from bonft.trainer.checkpoint import latest_checkpoint  # loads torch: only when a command runs
+    from bonft.trainer.config import FIELDS, read_recipe
+
+    if args.max_new_tokens is not None:
+        return check_int("--max-new-tokens", args.max_new_tokens, min=1), "--max-new-tokens"
+    path = Path(args.model)
+    ckpt = path if (path / "model").is_dir() else latest_checkpoint(path)  # load_model verifies it, once
+    recipe = None if ckpt is None else ckpt / "config.toml"
+    if recipe is None or not recipe.is_file():  # a plain model or adapter directory, or a bare save_model
+        return PLAIN_MAX_NEW_TOKENS, "the default for a model directory that records none"
+    return int(read_recipe(recipe).get("max_new_tokens", FIELDS["max_new_tokens"].default)), f"the run's, from {recipe}"
+
+
 def _check_lengths(args, table) -> None:
     """--budget-tokens needs positive mean response lengths at every temperature of the file."""
     import numpy as np
@@ -121,7 +141,7 @@ def _check_lengths(args, table) -> None:
                              f"{args.samples} averages {mean:g} tokens{at}")
 
 
-_MODEL_ONLY = ("verifier", "n", "max_new_tokens", "top_p", "batch_size", "cache", "device")  # sampling from a model
+_MODEL_ONLY = ("verifier", "n", "max_new_tokens", "top_p", "batch_size", "cache", "device", "quiet")  # sampling from a model
 _FILE_FIELDS = ("prompt_field", "score_field", "reward_field", "temperature_field", "tokens_field", "sample_field",
                 "allow_duplicates")
 _INTERVALS = ("confidence", "n_boot", "seed")
@@ -224,10 +244,12 @@ def run(args) -> int:
         from bonft.trainer.models import load_model, pick_device
 
         prompts, verifier, vname = _prompts_and_verifier(args)  # the user's files first: errors before a slow load
+        max_new_tokens, whence = _max_new_tokens(args)
+        print(f"max_new_tokens {max_new_tokens} ({whence})")
         model, tokenizer = load_model(args.model, device=pick_device(args.device))
         temps = temps or parse_list("--temperatures", DEFAULT_TEMPERATURES, float)
         res, info = plan_model(model, tokenizer, prompts, verifier, temperatures=temps, n=args.n, seed=args.seed,
-                               top_p=args.top_p, max_new_tokens=args.max_new_tokens, batch_size=args.batch_size,
+                               top_p=args.top_p, max_new_tokens=max_new_tokens, batch_size=args.batch_size,
                                cache_dir=args.cache, verifier_name=vname, progress=not args.quiet,
                                confidence=args.confidence, n_boot=args.n_boot, **_plan_kwargs(args))
         if args.cache:
