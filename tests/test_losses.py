@@ -275,7 +275,9 @@ def test_bad_input_messages():
     with pytest.raises(ValueError, match=r"token_reduction='mean' needs token log-probs \(3 dimensions\), got logprobs of shape \(2, 3\)"):
         reinforce_loss(torch.zeros(2, 3), s, token_reduction="mean")
     with pytest.raises(ValueError, match=r"anchor_logprobs must have the same shape as logprobs \(2, 3\), got \(2, 4\)"):
-        reinforce_loss(torch.zeros(2, 3), s, anchor_logprobs=torch.zeros(2, 4))
+        reinforce_loss(torch.zeros(2, 3), s, anchor_logprobs=torch.zeros(2, 4), anchor_weight=0.1)
+    with pytest.raises(ValueError, match=r"anchor_logprobs has no effect with anchor_weight=0 and return_info=False"):
+        reinforce_loss(torch.zeros(2, 3), s, anchor_logprobs=torch.zeros(2, 3))  # a forgotten weight: no KL at all
     with pytest.raises(ValueError, match=r"correct must hold only 0/1 \(or booleans\), got 2.0 at index \(0, 0\)"):
         pass_at_k_loss(torch.zeros(2, 3), torch.full((2, 3), 2.0), k=1)
     # a NaN or an infinity is named as not finite, before the 0/1 check and the log-probs' checks
@@ -394,7 +396,7 @@ def test_finite_rewards_whose_credit_overflows_are_a_value_error_not_a_nan_loss(
     mask[:, :, 3] = False
     cases = [(lp_tok.sum(-1), {}), (lp_tok.sum(-1).double(), {"reduction": "none", "return_info": True}),
              (lp_tok, {"mask": mask}), (lp_tok, {"mask": mask.float(), "return_info": True}),
-             (lp_tok.sum(-1), {"sampling_logprobs": lp_tok.sum(-1)}), (lp_tok, {"anchor_logprobs": lp_tok})]
+             (lp_tok.sum(-1), {"sampling_logprobs": lp_tok.sum(-1)}), (lp_tok, {"anchor_logprobs": lp_tok, "anchor_weight": 0.1})]
     for lp, kw in cases:
         with pytest.raises(ValueError, match=r"credit must be finite, got -inf at index \(0, 0\)"):
             reinforce_loss(lp.clone().requires_grad_(True), R, **kw)
@@ -403,7 +405,7 @@ def test_finite_rewards_whose_credit_overflows_are_a_value_error_not_a_nan_loss(
     # the error a non-finite credit gives comes before the errors of the other options, as when it was
     # checked first: here an anchor of the wrong shape
     with pytest.raises(ValueError, match=r"credit must be finite"):
-        reinforce_loss(lp_tok.sum(-1), R, anchor_logprobs=lp_tok)
+        reinforce_loss(lp_tok.sum(-1), R, anchor_logprobs=lp_tok, anchor_weight=0.1)
     # a non-finite loss from a non-finite log-prob (finite credit) is returned as it is, not an error
     lp = lp_tok.sum(-1).clone()
     lp[1, 1] = -torch.inf
@@ -424,7 +426,7 @@ def test_finite_credit_beyond_the_logprobs_dtype_is_a_value_error_not_a_nan_loss
     R = np.array([[0.0, 1e39]])
     cases = [(lp_tok.sum(-1), {}), (lp_tok.sum(-1), {"return_info": True, "reduction": "none"}),
              (lp_tok, {"mask": mask}), (lp_tok, {"mask": mask.float(), "return_info": True}),
-             (lp_tok.sum(-1), {"sampling_logprobs": lp_tok.sum(-1)}), (lp_tok, {"anchor_logprobs": lp_tok})]
+             (lp_tok.sum(-1), {"sampling_logprobs": lp_tok.sum(-1)}), (lp_tok, {"anchor_logprobs": lp_tok, "anchor_weight": 0.1})]
     msg = r"credit must fit the log-probs' dtype torch.float32 \(\|credit\| <= 3.403e\+38\), got -5e\+38 at index \(0, 0\)"
     for lp, kw in cases:
         with pytest.raises(ValueError, match=msg):

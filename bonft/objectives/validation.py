@@ -374,6 +374,10 @@ class LossOptions:
         if self.anchor_weight > 0 and self.anchor_logprobs is None:
             raise ValueError(f"anchor_weight={self.anchor_weight} needs anchor_logprobs (the anchor policy's "
                              f"log-probs of the same tokens); without them the KL term cannot be computed")
+        if self.anchor_logprobs is not None and self.anchor_weight == 0 and not self.return_info:
+            raise ValueError("anchor_logprobs has no effect with anchor_weight=0 and return_info=False: set "
+                             "anchor_weight > 0 for the KL penalty, or return_info=True to report the KL (info['kl']) "
+                             "without adding it to the loss")
         reuse = self.sampling_logprobs is not None
         if self.ratio_level is not None:
             check_choice("ratio_level", self.ratio_level, RATIO_LEVELS)
