@@ -65,6 +65,17 @@ def test_eval_and_sample_commands(tmp_path, capsys):
     # its lengths are the evaluation's (mean tokens per response), its scores every verifier's
     assert sum(r["n_tokens"] for r in held_rows) / len(held_rows) == pytest.approx(final["mean_length"], abs=1e-12)
     assert all({"score_exact", "score_proxy"} <= set(r) for r in held_rows)
+    # a --set that cannot change what eval / sample draw or report is refused before the model loads
+    capsys.readouterr()
+    for cmd in (["eval", str(run), "--ks", "1"], ["sample", str(run), "-o", str(tmp_path / "x.jsonl")]):
+        assert main([*cmd, "--n", "4", "--set", "rl_steps=5"]) == 2
+        assert "--set rl_steps cannot take effect when sampling a checkpoint (it shapes training only)" in capsys.readouterr().err
+        assert main([*cmd, "--n", "4", "--set", "eval_samples=9"]) == 2
+        assert "--set eval_samples has no effect here: --n sets it" in capsys.readouterr().err
+        assert main([*cmd, "--n", "4", "--n-prompts", "500"]) == 2  # the split holds 4 held-out prompts
+        assert "--n-prompts must be <= the held-out prompts of the split (4), got 500" in capsys.readouterr().err
+    assert not (tmp_path / "x.jsonl").exists()
+    assert main(["eval", str(run), "--n", "4", "--ks", "1", "--set", "max_new_tokens=2", "--set", "n_boot=50"]) == 0
 
 
 @pytest.mark.parametrize(

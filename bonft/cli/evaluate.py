@@ -61,11 +61,41 @@ def load_for_eval(args: argparse.Namespace, *, n: int, ks: list[int], temperatur
     if args.recipe is not None:
         base = read_recipe(args.recipe)
     base = {key: v for key, v in base.items() if key not in (*MODEL_KEYS, *TRAINING_MODEL_KEYS)}  # the model is the checkpoint's
+    check_eval_overrides(args.overrides)
     values = apply_overrides(base, list(args.overrides))
+    heldout = values.get("heldout_prompts", FIELDS["heldout_prompts"].default)
+    if args.n_prompts > heldout:
+        raise ValueError(f"--n-prompts must be <= the held-out prompts of the split ({heldout}), got {args.n_prompts}; "
+                         f"--set heldout_prompts={args.n_prompts} draws more")
     values.update(start_from=str(ckpt), eval_samples=n, eval_ks=ks, eval_temperature=temperature,
                   eval_prompts=args.n_prompts, seed=values.get("seed", FIELDS["seed"].default))
     cfg = from_dict(values)
     return ckpt, cfg, build_run(cfg, training=False)
+
+
+# the config keys a --set can change in bonft eval / sample: which prompts (the task and its split), how they are
+# scored, how long and on what device the responses are drawn, and the intervals; the rest only shape training
+EVAL_KEYS = ("task", "task_params", "prompts_file", "train_prompts", "heldout_prompts", "verifier", "verifier_params",
+             "eval_verifier", "eval_verifier_params", "seed", "device", "max_new_tokens", "confidence", "n_boot")
+_FLAG_KEYS = {"eval_samples": "--n", "eval_ks": "--ks", "eval_temperature": "--temperature(s)", "eval_prompts": "--n-prompts",
+              "threads": "the command itself (one thread)"}
+
+
+def check_eval_overrides(overrides) -> None:
+    """Each ``--set KEY=VALUE`` of bonft eval / sample must name a key that takes effect there (:data:`EVAL_KEYS`)."""
+    from bonft.trainer.config import current_key  # loads torch: only when a command runs
+
+    for item in overrides:
+        if "=" not in item:
+            continue  # apply_overrides names the missing '='
+        key = current_key(item.split("=", 1)[0].strip(), "--set ")
+        table = key.partition(".")[0]
+        if table in EVAL_KEYS:
+            continue
+        if key in _FLAG_KEYS:
+            raise ValueError(f"--set {key} has no effect here: {_FLAG_KEYS[key]} sets it, got --set {item}")
+        raise ValueError(f"--set {key} cannot take effect when sampling a checkpoint (it shapes training only); the keys "
+                         f"that do are {', '.join(EVAL_KEYS)}; got --set {item}")
 
 
 def announce(r, *, n: int, temperatures: list[float]) -> None:
