@@ -9,6 +9,7 @@ import numpy as np
 import pytest
 
 from bonft.estimate import CurveSummary, bootstrap_ci, default_ks, summarize
+from bonft.estimate.intervals import all_equal_bound
 from bonft.viz import plot_best_of_k_curves
 
 
@@ -77,6 +78,88 @@ def test_bootstrap_single_prompt_and_constant_values():
     np.testing.assert_array_equal(mean, [0.25, 0.25])
     np.testing.assert_array_equal(lo, mean)
     np.testing.assert_array_equal(hi, mean)
+
+
+@pytest.mark.parametrize("P,conf,want", [
+    # Clopper & Pearson 1934, 0 successes of P: upper limit 1 - (alpha/2)^(1/P), written out by hand
+    (20, 0.95, 1 - 0.025 ** (1 / 20)),  # 0.16843
+    (1, 0.95, 0.975),
+    (100, 0.90, 1 - 0.05 ** (1 / 100)),
+])
+def test_all_at_a_bound_gives_the_clopper_pearson_interval(P, conf, want):
+    assert all_equal_bound(P, conf) == pytest.approx(want, rel=1e-12)
+    mean, lo, hi = bootstrap_ci(np.zeros((P, 2)), confidence=conf, bounds=(0, 1))
+    np.testing.assert_array_equal(lo, [0, 0])
+    np.testing.assert_allclose(hi, want, rtol=1e-12)
+    mean, lo, hi = bootstrap_ci(np.full(P, 3.0), confidence=conf, bounds=(-1, 3))  # all at hi: the mirror image
+    assert (mean, hi) == (3.0, 3.0) and lo == pytest.approx(3.0 - 4 * want, rel=1e-12)
+
+
+def test_all_at_a_bound_matches_the_rule_of_three():
+    # "rule of three" (Hanley & Lippman-Hand 1983): 3/P approximates the one-sided 95% limit for 0 of P;
+    # the one-sided 95% limit is the two-sided 90% one
+    for P in (50, 200, 1000):
+        assert all_equal_bound(P, 0.90) == pytest.approx(3 / P, rel=0.08)
+
+
+def test_all_at_a_bound_covers_a_population_at_the_limit():
+    # Coverage simulation (fixed seed). The exact interval [0, w] of an all-zero column misses the mean mu only
+    # when mu > w, and P draws are then all 0 with chance (1 - mu)^P < (1 - w)^P = 0.025 for Bernoulli(mu) (the
+    # worst case of the Markov step) and less for any other population on [0, 1] with that mean.
+    P, conf, repeats = 20, 0.95, 20000
+    w = all_equal_bound(P, conf)
+    _, lo, hi = bootstrap_ci(np.zeros(P), confidence=conf, bounds=(0, 1))
+    assert (lo, hi) == (0.0, pytest.approx(w, rel=1e-12))
+    rng = np.random.default_rng(11)
+    for mu in (w * 0.999, w * 1.001, 0.3):
+        bern = rng.random((repeats, P)) < mu  # Bernoulli(mu)
+        zinf = (rng.random((repeats, P)) < 2 * mu) * rng.random((repeats, P))  # 0 or Uniform(0, 1): mean mu
+        for draws in (bern, zinf):
+            all_zero = (draws == 0).all(axis=1).mean()
+            missed = all_zero if mu > hi else 0.0  # the all-zero draws are the only ones given this interval
+            assert missed <= 0.025 + 4 * math.sqrt(0.025 * 0.975 / repeats), (mu, missed)
+    # just outside the limit the Bernoulli population misses at the nominal 2.5%: the bound is tight, not loose
+    share = ((rng.random((repeats, P)) < w * 1.001) == 0).all(axis=1).mean()
+    assert abs(share - 0.025) <= 4 * math.sqrt(0.025 * 0.975 / repeats), share
+
+
+def test_bootstrap_bounds_are_checked():
+    with pytest.raises(ValueError, match=r"values must lie within bounds \[0, 1\], got 1.5"):
+        bootstrap_ci(np.array([0.0, 1.5]), bounds=(0, 1))
+    with pytest.raises(ValueError, match=r"bounds must be \(lo, hi\) with lo < hi"):
+        bootstrap_ci(np.zeros(3), bounds=(1, 0))
+    with pytest.raises(TypeError, match=r"bounds must be None or a pair"):
+        bootstrap_ci(np.zeros(3), bounds=1)
+
+
+def test_bounds_leave_columns_with_spread_unchanged():
+    v = np.random.default_rng(5).random((30, 3))
+    for x, y in zip(bootstrap_ci(v, n_boot=300, seed=2), bootstrap_ci(v, n_boot=300, seed=2, bounds=(0, 1))):
+        np.testing.assert_array_equal(x, y)
+
+
+def test_summary_of_all_zero_rewards_has_an_exact_interval():
+    P = 20
+    summ = summarize(np.random.default_rng(0).random((P, 4)), np.zeros((P, 4)), n_boot=200)
+    assert summ.bounds == (0.0, 1.0)
+    np.testing.assert_allclose(summ.pass_at_k_hi, 1 - 0.025 ** (1 / P), rtol=1e-12)  # Clopper & Pearson 1934
+    assert "[0.0000, 0.1684]" in summ.table() and "no spread" not in summ.table()
+    assert "zero_spread_note" not in summ.to_dict()
+
+
+def test_summary_flags_zero_spread_where_the_range_is_unknown():
+    P = 20
+    summ = summarize(np.zeros((P, 4)), np.full((P, 4), 2.0), n_boot=200)  # rewards beyond [0, 1]
+    assert summ.bounds is None
+    text = summ.table()
+    assert "no spread" in text and "[2.0000, 2.0000]" not in text
+    assert "no interval for best-of-k k=1" in text and "the value range is unknown" in text
+    d = summ.to_dict()
+    assert d["bounds"] is None and d["pass_at_k_no_interval"] == [True, True, True]
+    assert "not confidence intervals" in d["zero_spread_note"]
+    # in [0, 1] but not at a bound: still no interval, and said so
+    text = summarize(np.zeros((P, 4)), np.full((P, 4), 0.5), n_boot=200).table()
+    assert "no spread" in text and "at neither bound 0 or 1" in text
 
 
 # ----------------------------------------------------------------------------- summary

@@ -11,6 +11,7 @@ References: Efron & Tibshirani 1993, "An Introduction to the Bootstrap"
 from __future__ import annotations
 
 import json
+import math
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -24,14 +25,48 @@ from bonft._core.checks import (
     check_ks,
     check_n_boot,
     check_nonempty,
+    check_real,
     check_seed,
 )
 from bonft.estimate.bestofk import _best_of_k_matrix, _pools, _ragged_best_of_k, _smallest_pool
 
-__all__ = ["bootstrap_ci", "default_ks", "CurveSummary", "summarize", "MIN_BOOT_PROMPTS"]
+__all__ = ["bootstrap_ci", "all_equal_bound", "zero_spread", "default_ks", "CurveSummary", "summarize", "MIN_BOOT_PROMPTS"]
 
 
-def bootstrap_ci(values, *, confidence: float = 0.95, n_boot: int = 2000, seed: int = 0):
+def _check_bounds(bounds) -> tuple[float, float] | None:
+    """None, or ``(lo, hi)`` two finite numbers with ``lo < hi``."""
+    if bounds is None:
+        return None
+    if not isinstance(bounds, (tuple, list)) or len(bounds) != 2:
+        raise TypeError(f"bounds must be None or a pair (lo, hi), got {type(bounds).__name__} {bounds!r}")
+    lo, hi = check_real("bounds[0]", bounds[0]), check_real("bounds[1]", bounds[1])
+    if not lo < hi:
+        raise ValueError(f"bounds must be (lo, hi) with lo < hi, got bounds={tuple(bounds)!r}")
+    return lo, hi
+
+
+def all_equal_bound(P: int, confidence: float) -> float:
+    r"""Width, as a share of ``hi - lo``, of the exact interval for a mean whose P values all sit at one bound.
+
+    .. math:: 1 - \big(\tfrac{1-c}{2}\big)^{1/P}
+
+    For values in ``[lo, hi]`` with mean ``mu``, Markov's inequality gives ``P(X = lo) <= 1 - t`` with
+    ``t = (mu - lo)/(hi - lo)``, so P values all at ``lo`` have chance at most ``(1 - t)^P``; solving
+    ``(1 - t)^P = (1 - c)/2`` bounds ``t`` for ANY distribution on ``[lo, hi]``. It is the Clopper & Pearson
+    1934 upper limit for 0 successes in P trials (0.168 for P = 20 at 95%; the "rule of three" ``3/P``
+    approximates its one-sided 95% form).
+    """
+    return -math.expm1(math.log((1.0 - confidence) / 2.0) / P)
+
+
+def zero_spread(values) -> np.ndarray:
+    """``(P, K) -> (K,)`` bool: the columns whose P values are all equal (a bootstrap interval of width 0)."""
+    v = np.asarray(values, dtype=float)
+    v = v[:, None] if v.ndim == 1 else v
+    return (v == v[:1]).all(axis=0)
+
+
+def bootstrap_ci(values, *, confidence: float = 0.95, n_boot: int = 2000, seed: int = 0, bounds=None):
     r"""Percentile bootstrap over prompts.
 
     Shape: ``values (P, K) -> (mean (K,), lo (K,), hi (K,))``; ``(P,)`` gives three floats.
@@ -46,7 +81,17 @@ def bootstrap_ci(values, *, confidence: float = 0.95, n_boot: int = 2000, seed: 
     Resampling is vectorised (counts matrix @ values, :mod:`bonft._core.bootstrap`), in
     chunks to bound memory.
 
-    References: Efron & Tibshirani 1993, "An Introduction to the Bootstrap".
+    Zero spread. A column whose P values are all equal gives every replicate the same mean: the
+    percentile interval has width 0 and covers nothing it does not already see (with P = 1 this is
+    every column). ``bounds=(lo, hi)`` states that every value lies in ``[lo, hi]`` (pass@k and
+    best-of-k of rewards in [0, 1]: ``(0, 1)``; values outside raise ``ValueError``): a column all at
+    ``lo`` then gets the exact interval ``[lo, lo + (hi - lo) w]`` with ``w =`` :func:`all_equal_bound`
+    (valid for any distribution on ``[lo, hi]``; Clopper & Pearson 1934), a column all at ``hi`` the
+    mirror image; every other column is the percentile interval. ``bounds=None`` (the range is
+    unknown) leaves such columns at width 0: callers flag them with :func:`zero_spread`.
+
+    References: Efron & Tibshirani 1993, "An Introduction to the Bootstrap"; Clopper & Pearson 1934,
+    "The use of confidence or fiducial limits illustrated in the case of the binomial".
     """
     v = as_float_array("values", values, ndim=(1, 2))
     check_nonempty("values", v)
@@ -54,6 +99,10 @@ def bootstrap_ci(values, *, confidence: float = 0.95, n_boot: int = 2000, seed: 
     confidence = check_fraction("confidence", confidence, open_low=True, open_high=True)
     n_boot = check_n_boot(n_boot)
     seed = check_seed(seed)
+    bounds = _check_bounds(bounds)
+    if bounds is not None and ((v < bounds[0]) | (v > bounds[1])).any():
+        bad = float(v[(v < bounds[0]) | (v > bounds[1])][0])
+        raise ValueError(f"values must lie within bounds [{bounds[0]:g}, {bounds[1]:g}], got {bad!r}")
     one_d = v.ndim == 1
     V = v[:, None] if one_d else v  # (P,) -> (P, 1)
     P = V.shape[0]
@@ -68,6 +117,13 @@ def bootstrap_ci(values, *, confidence: float = 0.95, n_boot: int = 2000, seed: 
     mean = V.mean(axis=0)
     # a replicate mean cannot stray outside the data range, but keep lo <= mean <= hi exact
     lo, hi = np.minimum(lo, mean), np.maximum(hi, mean)
+    if bounds is not None:
+        b_lo, b_hi = bounds
+        flat = zero_spread(V)
+        w = (b_hi - b_lo) * all_equal_bound(P, confidence)
+        at_lo, at_hi = flat & (mean == b_lo), flat & (mean == b_hi)
+        hi = np.where(at_lo, b_lo + w, hi)
+        lo = np.where(at_hi, b_hi - w, lo)
     if one_d:
         return float(mean[0]), float(lo[0]), float(hi[0])
     return mean, lo, hi
@@ -108,6 +164,9 @@ class CurveSummary:
     best_of_k_mean / _lo / _hi: best-of-k mean and bootstrap interval (K,);
     pass_at_k_mean / _lo / _hi: the best true reward among k (pass@k for 0/1 rewards) (K,).
     per_prompt_best_of_k, per_prompt_pass_at_k: (P, K).
+    bounds: ``(lo, hi)`` every per-prompt value lies in (``(0, 1)`` when every reward does), or None when
+    unknown; a column whose P values are all equal has no bootstrap interval (width 0): at a known bound it
+    gets the exact interval of :func:`bootstrap_ci`, otherwise :meth:`table` and :meth:`to_dict` say so.
     """
 
     ks: np.ndarray
@@ -124,6 +183,27 @@ class CurveSummary:
     confidence: float = 0.95
     n_boot: int = 2000
     seed: int = 0
+    bounds: tuple[float, float] | None = None
+
+    def no_interval(self, which: str) -> np.ndarray:
+        """``which`` = ``"best_of_k"`` or ``"pass_at_k"`` -> (K,) bool: the columns whose values have zero spread
+        over prompts and sit at no known bound, so that their ``_lo``/``_hi`` are the mean, not an interval."""
+        per = np.asarray(getattr(self, f"per_prompt_{which}"), dtype=float)
+        flat = zero_spread(per)
+        if self.bounds is not None:
+            mean = np.asarray(getattr(self, f"{which}_mean"), dtype=float)
+            flat &= (mean != self.bounds[0]) & (mean != self.bounds[1])
+        return flat
+
+    def _zero_spread_note(self) -> str | None:
+        cols = [f"{label} k={int(k)}" for which, label in (("best_of_k", "best-of-k"), ("pass_at_k", "pass@k"))
+                for k, bad in zip(self.ks, self.no_interval(which)) if bad]
+        if not cols or not self.intervals_valid:
+            return None
+        why = ("the value range is unknown" if self.bounds is None else
+               f"the common value is at neither bound {self.bounds[0]:g} or {self.bounds[1]:g}")
+        return (f"no interval for {', '.join(cols)}: every prompt has the same value, so every bootstrap replicate "
+                f"does too, and {why} (see docs/estimate.md)")
 
     @property
     def intervals_valid(self) -> bool:
@@ -136,16 +216,22 @@ class CurveSummary:
         head = f"{'k':>6}  {'best-of-k':>9}  {pct + ' CI':>17}  {'pass@k':>7}  {pct + ' CI':>17}  {'gap':>7}"
         lines = [f"prompts: {self.n_prompts}   smallest pool: {self.smallest_pool}", head]
         ok = self.intervals_valid
+        flat_b, flat_o = self.no_interval("best_of_k"), self.no_interval("pass_at_k")
 
-        def ci(lo: float, hi: float) -> str:
-            return f"[{lo:.4f}, {hi:.4f}]" if ok else f"{'n/a':^16}"
+        def ci(lo: float, hi: float, flat: bool) -> str:
+            if not ok:
+                return f"{'n/a':^16}"
+            return f"{'no spread':^16}" if flat else f"[{lo:.4f}, {hi:.4f}]"
 
         for j, k in enumerate(self.ks):
             b, o = self.best_of_k_mean[j], self.pass_at_k_mean[j]
             lines.append(
-                f"{int(k):>6}  {b:>9.4f}  {ci(self.best_of_k_lo[j], self.best_of_k_hi[j])}"
-                f"  {o:>7.4f}  {ci(self.pass_at_k_lo[j], self.pass_at_k_hi[j])}  {o - b:>7.4f}"
+                f"{int(k):>6}  {b:>9.4f}  {ci(self.best_of_k_lo[j], self.best_of_k_hi[j], flat_b[j])}"
+                f"  {o:>7.4f}  {ci(self.pass_at_k_lo[j], self.pass_at_k_hi[j], flat_o[j])}  {o - b:>7.4f}"
             )
+        note = self._zero_spread_note()
+        if note:
+            lines.append(note)
         if not ok:
             lines.append(f"intervals n/a: {self.n_prompts} prompt(s); a bootstrap over prompts needs at least "
                          f"{MIN_BOOT_PROMPTS} (see docs/estimate.md)")
@@ -161,7 +247,13 @@ class CurveSummary:
             "n_boot": int(self.n_boot),
             "seed": int(self.seed),
             "intervals_valid": self.intervals_valid,
+            "bounds": None if self.bounds is None else [float(b) for b in self.bounds],
+            "best_of_k_no_interval": [bool(x) for x in self.no_interval("best_of_k")],
+            "pass_at_k_no_interval": [bool(x) for x in self.no_interval("pass_at_k")],
         }
+        note = self._zero_spread_note()
+        if note:
+            d["zero_spread_note"] = note + "; their *_lo/*_hi equal the mean and are not confidence intervals"
         if not self.intervals_valid:
             d["intervals_note"] = (f"{self.n_prompts} prompt(s): a bootstrap over prompts needs at least "
                                    f"{MIN_BOOT_PROMPTS}; the *_lo/*_hi values are not confidence intervals")
@@ -185,6 +277,11 @@ def summarize(scores, rewards, *, ks=None, confidence: float = 0.95, n_boot: int
     ``ks``: int, sequence, or None for :func:`default_ks` of the smallest pool. Both curves use
     one bootstrap seed, so each replicate resamples the same prompts for both.
 
+    When every reward lies in [0, 1], every per-prompt value does too (each is an average of rewards), and
+    the intervals use ``bounds=(0, 1)`` (:func:`bootstrap_ci`): a column where every prompt scores 0 (or 1)
+    gets the exact Clopper & Pearson 1934 interval instead of a zero-width one. The assumption is only that
+    range; otherwise ``bounds`` is None and :meth:`CurveSummary.table` flags zero-spread columns.
+
     References: Chow et al. 2024 (best-of-k); Chen et al. 2021 (pass@k);
     Efron & Tibshirani 1993 (percentile bootstrap).
     """
@@ -196,10 +293,13 @@ def summarize(scores, rewards, *, ks=None, confidence: float = 0.95, n_boot: int
         best, top = _ragged_best_of_k(s, r, ks_arr), _ragged_best_of_k(r, r, ks_arr)
     else:
         best, top = _best_of_k_matrix(s, r, ks_arr), _best_of_k_matrix(r, r, ks_arr)
-    bm, bl, bh = bootstrap_ci(best, confidence=confidence, n_boot=n_boot, seed=seed)
-    pm, pl, ph = bootstrap_ci(top, confidence=confidence, n_boot=n_boot, seed=seed)
+    rows = r if isinstance(r, list) else [r]
+    bounds = (0.0, 1.0) if all(x.min() >= 0 and x.max() <= 1 for x in rows) else None
+    bm, bl, bh = bootstrap_ci(best, confidence=confidence, n_boot=n_boot, seed=seed, bounds=bounds)
+    pm, pl, ph = bootstrap_ci(top, confidence=confidence, n_boot=n_boot, seed=seed, bounds=bounds)
     return CurveSummary(
         ks=ks_arr, n_prompts=len(s), smallest_pool=smallest,
         best_of_k_mean=bm, best_of_k_lo=bl, best_of_k_hi=bh, pass_at_k_mean=pm, pass_at_k_lo=pl, pass_at_k_hi=ph,
         per_prompt_best_of_k=best, per_prompt_pass_at_k=top, confidence=confidence, n_boot=n_boot, seed=seed,
+        bounds=bounds,
     )
