@@ -41,7 +41,8 @@ def ledger_rows(*, n_prompts: int = 200, n_samples: int = 16, temperatures=(0.6,
     success probability is ``sigmoid(a_p / T - 0.8 (T - 0.6))``. Answer length
     ``n_tokens`` ~ N(110, 20) if right, N(150, 45) if wrong (floored at 20).
     Verifier score = ``sigmoid(1.3 * right + 0.012 * (n_tokens - 120) + N(0, 0.8^2))``,
-    rounded to 4 decimals (so a few scores tie, as real verifier scores do).
+    rounded to 4 decimals (so a few scores tie, as real verifier scores do). ``sample`` is the row's index in
+    its pool, so two draws that happen to agree in every field are not read as a repeated row.
     """
     n_prompts = check_int("n_prompts", n_prompts, min=1)
     n_samples = check_int("n_samples", n_samples, min=1)
@@ -65,6 +66,7 @@ def ledger_rows(*, n_prompts: int = 200, n_samples: int = 16, temperatures=(0.6,
                     "score": float(score[i, j]),
                     "reward": int(right[i, j]),
                     "n_tokens": int(length[i, j]),
+                    "sample": j,  # its index in the pool: equal rows of one pool are distinct draws, not repeats
                 })
     return rows
 
