@@ -131,3 +131,62 @@ def test_verifiers_by_name(tmp_path, clean_path):
         make_verifier("rm")
     with pytest.raises(ValueError, match=r"wall_time"):
         make_verifier("unit_tests", {"wall_time": -1.0})
+
+
+def save_qwen_reward_model(path, *, config_pad_id, tokenizer_pad=True):
+    """A tiny Qwen2 two-class reward model beside a character-level tokenizer with no BOS token ("<pad>" = 0,
+    "</s>" = 1); the model's config names ``config_pad_id`` as its pad id."""
+    from tokenizers import Tokenizer, models, pre_tokenizers
+    from transformers import PreTrainedTokenizerFast, Qwen2Config, Qwen2ForSequenceClassification
+
+    words = ["<pad>", "</s>", "<unk>"] + list("abcdefghijklmnopqrstuvwxyz0123456789+-=?:. ")
+    core = Tokenizer(models.WordLevel(vocab={w: i for i, w in enumerate(words)}, unk_token="<unk>"))
+    core.pre_tokenizer = pre_tokenizers.Split(pattern="", behavior="isolated")
+    tok = PreTrainedTokenizerFast(tokenizer_object=core, eos_token="</s>", unk_token="<unk>",
+                                  **({"pad_token": "<pad>"} if tokenizer_pad else {}))
+    cfg = Qwen2Config(vocab_size=len(words), hidden_size=32, intermediate_size=64, num_hidden_layers=2,
+                      num_attention_heads=4, num_key_value_heads=2, max_position_embeddings=128, num_labels=2,
+                      pad_token_id=config_pad_id, eos_token_id=1)
+    torch.manual_seed(1)
+    model = Qwen2ForSequenceClassification(cfg)
+    model.save_pretrained(str(path))
+    tok.save_pretrained(str(path))
+    return model.eval(), tok
+
+
+def test_reward_model_scores_do_not_depend_on_the_batch_when_the_config_names_another_pad_id(tmp_path):
+    # The model's config says pad = 1 ("</s>"), the tokenizer pads with 0 ("<pad>"): a shorter text of a batch
+    # must still be scored at its own last token, as alone (reference: the model's forward pass on each text
+    # alone, no padding, softmax in numpy).
+    model, _ = save_qwen_reward_model(tmp_path / "rm", config_pad_id=1)
+    tok = __import__("transformers").AutoTokenizer.from_pretrained(str(tmp_path / "rm"))  # as saved and read back
+    texts = ["2+2? answer: 4", "2+2? answer: 5", "2+2? answer: 4 " + "very " * 20, "2+2? 4"]
+    logits = np.array([direct_logits(model, tok, t) for t in texts])
+    want = np.exp(logits[:, 1]) / np.exp(logits).sum(1)
+    rm = RewardModel(tmp_path / "rm", batch_size=8)
+    batched = rm.score(texts)
+    alone = np.array([rm.score([t])[0] for t in texts])
+    np.testing.assert_allclose(batched, alone, rtol=0, atol=1e-6)
+    np.testing.assert_allclose(batched, want, rtol=0, atol=1e-6)
+    assert np.ptp(batched) > 1e-3  # the texts get different scores: the comparison can tell them apart
+
+
+def test_reward_model_input_errors_name_the_cause(tmp_path):
+    save_qwen_reward_model(tmp_path / "rm", config_pad_id=0)
+    rm = RewardModel(tmp_path / "rm")
+    with pytest.raises(ValueError, match=r"texts\[1\] = '' gives no tokens .*nothing to score"):
+        rm.score(["2+2", ""])
+    if not torch.cuda.is_available():
+        with pytest.raises(ValueError, match=r"device='cuda', but torch sees no CUDA device on this machine; use device='cpu'"):
+            RewardModel(tmp_path / "rm", device="cuda")
+    with pytest.raises(ValueError, match=r"device must be a torch device string like 'cpu'.*got 'gpu0'"):
+        RewardModel(tmp_path / "rm", device="gpu0")
+    # a tokenizer saved without a pad token gets one added past the model's vocabulary (id 46 of 46 tokens)
+    save_qwen_reward_model(tmp_path / "nopad", config_pad_id=None, tokenizer_pad=False)
+    tok = __import__("transformers").AutoTokenizer.from_pretrained(str(tmp_path / "nopad"))
+    if tok.pad_token_id == 46:
+        with pytest.raises(ValueError, match=r"the tokenizer's pad token .* has id 46, but the model's "
+                                             r"vocabulary has 46 tokens \(ids 0..45\); save the tokenizer with a pad token"):
+            RewardModel(tmp_path / "nopad")
+    else:  # a transformers that adds no pad token: batches are padded with the eos token, inside the vocabulary
+        assert RewardModel(tmp_path / "nopad").score(["2+2", "2+2? 4"]).shape == (2,)

@@ -9,7 +9,9 @@ The directory must hold a model saved with ``save_pretrained`` whose head is a
 sequence classifier (``...ForSequenceClassification``) and its tokenizer. The
 text scored is ``prompt + response`` (the sequence the policy wrote, as it saw
 it), right-padded in batches of ``batch_size``, under ``torch.no_grad()`` in
-eval mode on ``device``; nothing is downloaded.
+eval mode on ``device``; nothing is downloaded. The model's ``pad_token_id`` is set
+to the tokenizer's (the id the batches are padded with), so the head reads each
+text's last real token and a score does not depend on the batch it came in.
 
 The score: with one label, the logit; with several, the probability of class
 ``label`` (default 1, the "good" class of a two-class head). ``threshold``
@@ -39,13 +41,43 @@ def _no_head(path: Path, why: str) -> ValueError:
                       "with AutoModelForSequenceClassification(...).save_pretrained(path)")
 
 
+def _device(device: str):
+    """``torch.device(device)``, checked to exist on this machine."""
+    import torch
+
+    try:
+        dev = torch.device(device)
+    except RuntimeError as e:
+        raise ValueError(f"device must be a torch device string like 'cpu', 'cuda' or 'cuda:1', got {device!r} ({e})") from None
+    if dev.type == "cuda":
+        count = torch.cuda.device_count() if torch.cuda.is_available() else 0
+        if count == 0:
+            raise ValueError(f"device={device!r}, but torch sees no CUDA device on this machine; use device='cpu'")
+        if dev.index is not None and dev.index >= count:
+            raise ValueError(f"device={device!r}, but torch sees {count} CUDA device(s) (cuda:0..cuda:{count - 1})")
+    return dev
+
+
+def _check_tokens(enc, start: int, texts: Sequence[str], vocab_size: int) -> None:
+    """Every text of the batch has a token, and every token id has an embedding."""
+    lengths = enc["attention_mask"].sum(-1)
+    if (lengths == 0).any():
+        i = start + int((lengths == 0).nonzero()[0, 0])
+        raise ValueError(f"texts[{i}] = {texts[i]!r:.60} gives no tokens (an empty prompt + response): "
+                         "the reward model has nothing to score")
+    top = int(enc["input_ids"].max())
+    if top >= vocab_size:
+        raise ValueError(f"the tokenizer gives token id {top}, but the model's vocabulary has {vocab_size} tokens: "
+                         "the tokenizer saved beside the model does not match it")
+
+
 class RewardModel:
     """Score ``prompt + response`` with a local sequence-classification model; see the module docstring.
 
     path:       directory with ``config.json``, the weights and the tokenizer.
     threshold:  None (scores only) or a number: ``rewards = 1.0 where score >= threshold``.
     batch_size: texts per forward pass.
-    device:     torch device string ("cpu", "cuda", "cuda:1").
+    device:     torch device string ("cpu", "cuda", "cuda:1"); a CUDA device this machine lacks is a ValueError.
     label:      which class's probability is the score when the head has several labels.
     max_length: texts are cut to this many tokens (from the left, so the response's end is kept); None = the model's limit.
     """
@@ -66,9 +98,9 @@ class RewardModel:
         if max_length is not None:
             max_length = check_int("max_length", max_length, min=1)
 
-        import torch
         from transformers import AutoConfig, AutoModelForSequenceClassification, AutoTokenizer
 
+        self.device = _device(device)
         config = AutoConfig.from_pretrained(str(self.path), local_files_only=True)
         archs = list(getattr(config, "architectures", None) or [])
         if not any(a.endswith("ForSequenceClassification") for a in archs):
@@ -93,15 +125,23 @@ class RewardModel:
             self.tokenizer.pad_token = self.tokenizer.eos_token
         self.tokenizer.padding_side = "right"
         self.tokenizer.truncation_side = "left"
-        if model.config.pad_token_id is None:
-            model.config.pad_token_id = self.tokenizer.pad_token_id  # the head reads the last non-pad token
+        self.vocab_size = int(model.get_input_embeddings().num_embeddings)
+        pad = int(self.tokenizer.pad_token_id)
+        if pad >= self.vocab_size:
+            raise ValueError(f"path {str(self.path)!r}: the tokenizer's pad token {self.tokenizer.pad_token!r} has id {pad}, "
+                             f"but the model's vocabulary has {self.vocab_size} tokens (ids 0..{self.vocab_size - 1}); "
+                             "save the tokenizer with a pad token the model knows (for instance "
+                             "tokenizer.pad_token = tokenizer.eos_token) or resize the model's embeddings")
+        # The head reads the rightmost token that is not the pad id: it must be the id the batches are padded
+        # with, or a shorter text of a batch is scored at a pad position.
+        model.config.pad_token_id = pad
+        model.config.get_text_config().pad_token_id = pad
         limit = getattr(model.config, "max_position_embeddings", None) or getattr(model.config, "n_positions", None)
         self.max_length = max_length or limit
-        self.device = torch.device(device)
         self.model = model.to(self.device).eval()
 
     def score(self, texts: Sequence[str]) -> np.ndarray:
-        """The score of each text, (N,) float64."""
+        """The score of each text, (N,) float64; a text that gives no tokens (``""`` without a BOS token) is a ValueError."""
         import torch
 
         out = np.zeros(len(texts))
@@ -109,6 +149,7 @@ class RewardModel:
             for a in range(0, len(texts), self.batch_size):
                 enc = self.tokenizer(list(texts[a:a + self.batch_size]), return_tensors="pt", padding=True,
                                      truncation=self.max_length is not None, max_length=self.max_length)
+                _check_tokens(enc, a, texts, self.vocab_size)
                 enc = {k: v.to(self.device) for k, v in enc.items() if k in ("input_ids", "attention_mask")}
                 logits = self.model(**enc).logits.double()  # (b, num_labels)
                 if self.num_labels == 1:
