@@ -86,6 +86,22 @@ def test_too_few_prompts_give_means_without_intervals(tmp_path, capsys):
     assert doc["intervals_valid"] is False and doc["differences"]["a"]["b"][0] == [0.5, None, None]  # pass@1 0.5 vs 0.25
 
 
+def test_policies_that_solve_nothing_get_an_exact_interval_not_a_zero_width_one(tmp_path, capsys):
+    # every reward 0 on 20 prompts: each mean gets [0, 1 - 0.025^(1/20)] = [0, 0.168] (Clopper & Pearson 1934, 0 of
+    # 20, two-sided 95%); the paired difference is 0 on every prompt, which no bootstrap can put an interval on
+    zeros = [[0] * N for _ in range(20)]
+    write(tmp_path / "a.jsonl", zeros, [[float(i) for i in range(N)]] * 20)
+    write(tmp_path / "b.jsonl", zeros, [[float(i) for i in range(N)]] * 20)
+    assert main(["compare", str(tmp_path / "a.jsonl"), str(tmp_path / "b.jsonl"), "--ks", "1,4", "--n-boot", "200",
+                 "--json", str(tmp_path / "c.json")]) == 0
+    out = capsys.readouterr().out
+    assert "0.000 [0.000, 0.168]" in out and "[0.000, 0.000]" not in out and "[+0.000, +0.000]" not in out
+    assert "no interval for b - a pass@1, b - a pass@4, b - a best-of-4" in out
+    doc = json.loads((tmp_path / "c.json").read_text())
+    assert doc["means"]["a"][0][2] == pytest.approx(1 - 0.025 ** (1 / 20), rel=1e-12)
+    assert doc["differences"]["a"]["b"][0] == [0.0, None, None] and "b - a pass@1" in doc["no_interval"]
+
+
 @pytest.mark.parametrize("case, message", [
     ("other prompts", r"b and a must hold the same prompts to be compared paired: 1 prompt\(s\) only in a \(e.g. \['11'\]\), "
                       r"1 only in b \(e.g. \['99'\]\)"),

@@ -1,5 +1,7 @@
 """bonft.estimate.paired: bad arguments are refused with the argument's name (the numbers themselves are
 checked against scipy, a t table and brute-force enumeration in test_train_demo.py)."""
+import math
+
 import numpy as np
 import pytest
 
@@ -7,6 +9,7 @@ from bonft.estimate.paired import (
     bootstrap_mean,
     paired_bootstrap,
     paired_comparison,
+    paired_table,
     per_prompt_curves,
     seed_comparison,
     t_interval,
@@ -123,3 +126,21 @@ def test_seed_comparison_takes_seeds_with_different_prompt_counts():
 def test_per_prompt_curves_refuses_bad_arguments(pools, ks, err, match):
     with pytest.raises(err, match=match):
         per_prompt_curves(pools, ks=ks)
+
+
+def test_paired_comparison_gives_no_zero_width_interval():
+    # two policies that solve nothing on 20 prompts: each mean is at the bound 0 of rewards in [0, 1] and gets the
+    # exact interval [0, 1 - 0.025^(1/20)] (Clopper & Pearson 1934, 0 of 20); their difference has no spread
+    P = 20
+    curves = {"a": {"pass": np.zeros((P, 2))}, "b": {"pass": np.zeros((P, 2))}}
+    comp = paired_comparison(curves, ks=[1, 4], baselines=["a"], n_boot=200, bounds=(0, 1))
+    m, lo, hi = comp["means"]["b"][0]
+    assert (m, lo) == (0.0, 0.0) and hi == pytest.approx(1 - 0.025 ** (1 / P), rel=1e-12)
+    d, lo, hi = comp["differences"]["a"]["b"][1]
+    assert d == 0.0 and math.isnan(lo) and math.isnan(hi)
+    assert comp["no_spread"] == ["b - a pass@1", "b - a pass@4"]
+    text = paired_table(comp, n_prompts=P)
+    assert "0.000 [0.000, 0.168]" in text and "no interval for b - a pass@1, b - a pass@4" in text
+    # without a known range the means have no interval either, and are listed
+    comp = paired_comparison(curves, ks=[1, 4], baselines=["a"], n_boot=200)
+    assert math.isnan(comp["means"]["a"][0][1]) and "a pass@1" in comp["no_spread"]

@@ -191,8 +191,9 @@ def run(args: argparse.Namespace) -> int:
     curves = {s: {name: per_prompt_curves(p, ks=ks) for name, p in pools.items()} for s, pools in per_seed.items()}
     intervals = S > 1 or P[0] >= MIN_BOOT_PROMPTS
     if S == 1:
+        unit = all(0 <= r.min() and r.max() <= 1 for p in per_seed[labels[0]].values() for r in p["rewards"])
         comp = paired_comparison(curves[labels[0]], ks=ks, baselines=[base], n_boot=args.n_boot, seed=args.seed,
-                                 confidence=args.confidence, intervals=intervals)
+                                 confidence=args.confidence, intervals=intervals, bounds=(0, 1) if unit else None)
     else:
         comp = seed_comparison(curves, ks=ks, baselines=[base], confidence=args.confidence)
     for name, runs in zip(names, paths):
@@ -238,7 +239,9 @@ def run(args: argparse.Namespace) -> int:
             "columns": [label if kind == "pass" else f"{args.score_field} {label}" for label, kind, _ in comp["columns"]],
             "means": {n: plain(c) for n, c in comp["means"].items()},
             "differences": {b: {n: plain(c) for n, c in rows.items()} for b, rows in comp["differences"].items()},
-            **({"per_seed": comp["per_seed"]} if S > 1 else {})})
+            **({"per_seed": comp["per_seed"]} if S > 1 else {}),
+            **({"no_interval": comp["no_spread"], "no_interval_note": "every prompt has the same value (or difference) "
+                "in these cells, so a bootstrap gives no interval: their bounds are null"} if comp.get("no_spread") else {})})
         print(f"wrote {args.json}")
     if args.plot_dir:
         out = os.path.join(make_plot_dir(args.plot_dir), "compare_curves.png")

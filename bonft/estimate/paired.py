@@ -31,6 +31,7 @@ from bonft._core.checks import (
     check_seed,
 )
 from bonft.estimate.bestofk import best_of_k_per_prompt, pass_at_k_per_prompt
+from bonft.estimate.intervals import _check_bounds, bootstrap_ci
 
 # ----------------------------------------------------------------------------- argument checks
 
@@ -183,7 +184,7 @@ def bootstrap_mean(a, *, n_boot: int = 2000, seed: int = 0, confidence: float = 
 
 
 def paired_comparison(curves, *, ks, baselines: Sequence[str], n_boot: int = 2000, seed: int = 0,
-                      confidence: float = 0.95, intervals: bool = True) -> dict:
+                      confidence: float = 0.95, intervals: bool = True, bounds=None) -> dict:
     r"""Every policy's mean with its interval, and its paired difference from each baseline.
 
     Shape: ``curves``: policy -> :func:`per_prompt_curves` (every policy on the same P prompts) ``->``
@@ -197,6 +198,11 @@ def paired_comparison(curves, *, ks, baselines: Sequence[str], n_boot: int = 200
     ``ks``: the k of each curve column (as many as the curves have columns); ``baselines``: a sequence of
     policy names.
 
+    A cell whose per-prompt values (or differences) are all equal has no bootstrap interval (every replicate
+    is the same): its lo and hi are NaN and ``"no_spread"`` lists it, except a mean at a bound of
+    ``bounds=(lo, hi)`` (the range every per-prompt value lies in, ``(0, 1)`` for rewards in [0, 1]), which
+    gets the exact interval of :func:`bonft.estimate.bootstrap_ci` (Clopper & Pearson 1934).
+
     References: Efron & Tibshirani 1993, ch. 13 (the paired percentile bootstrap).
     """
     ks = _check_ks(ks)
@@ -204,6 +210,7 @@ def paired_comparison(curves, *, ks, baselines: Sequence[str], n_boot: int = 200
     baselines = _check_baselines(baselines)
     _check_interval_options(n_boot, seed, confidence)
     check_bool("intervals", intervals)
+    bounds = _check_bounds(bounds)
     names = list(curves)
     _check_known(baselines, names)
     cols = [(f"pass@{k}", "pass", j) for j, k in enumerate(ks)]
@@ -211,15 +218,24 @@ def paired_comparison(curves, *, ks, baselines: Sequence[str], n_boot: int = 200
         cols.append((f"best-of-{ks[-1]}", "proxy", len(ks) - 1))
     boot = dict(n_boot=n_boot, seed=seed, confidence=confidence)
 
-    def cell(a, b=None):
-        if intervals:
-            return paired_bootstrap(a, np.zeros_like(a) if b is None else b, **boot)
-        return float(np.mean(a - (0 if b is None else b))), math.nan, math.nan
+    no_spread: list[str] = []
 
-    means = {n: [cell(curves[n][kind][:, j]) for _, kind, j in cols] for n in names}
-    diffs = {base: {n: [cell(curves[n][kind][:, j], curves[base][kind][:, j]) for _, kind, j in cols]
+    def cell(where: str, a, b=None):
+        if not intervals:
+            return float(np.mean(a - (0 if b is None else b))), math.nan, math.nan
+        d = a if b is None else a - b
+        if not (d == d[0]).all():
+            return paired_bootstrap(a, np.zeros_like(a) if b is None else b, **boot)
+        if b is None and bounds is not None and d[0] in bounds:
+            return bootstrap_ci(d, confidence=confidence, n_boot=1, seed=seed, bounds=bounds)
+        no_spread.append(where)
+        return float(d[0]), math.nan, math.nan
+
+    means = {n: [cell(f"{n} {label}", curves[n][kind][:, j]) for label, kind, j in cols] for n in names}
+    diffs = {base: {n: [cell(f"{n} - {base} {label}", curves[n][kind][:, j], curves[base][kind][:, j])
+                        for label, kind, j in cols]
                     for n in names if n != base} for base in baselines if base in curves}
-    return {"columns": cols, "means": means, "differences": diffs}
+    return {"columns": cols, "means": means, "differences": diffs, "no_spread": no_spread}
 
 
 def t_interval(values, *, confidence: float = 0.95) -> tuple[float, float, float]:
@@ -327,6 +343,9 @@ def paired_table(comparison, *, n_prompts: int = 0, labels: Mapping[str, str] | 
         lines += [""] + head(f"Paired difference from {labels.get(base, base)}{' ' if seeds is None else ''}{how}")
         for name, cells in rows.items():
             lines.append(f"| {labels.get(name, name)} | " + " | ".join(format_interval(*c, signed=True) for c in cells) + " |")
+    if comparison.get("no_spread"):
+        lines += ["", "no interval for " + ", ".join(comparison["no_spread"]) + ": every prompt has the same value (or "
+                  "difference), so every bootstrap replicate does too (see docs/estimate.md)"]
     if seeds is not None:  # every seed's pass@1 / pass@K (/ best-of-K): the spread the interval summarises
         last = [0, len([c for c in cols if c[1] == "pass"]) - 1] + ([len(cols) - 1] if cols[-1][1] == "proxy" else [])
         what = " / ".join(heads[j] for j in last)
