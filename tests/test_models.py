@@ -96,6 +96,44 @@ def test_plain_transformers_directory_loads(tmp_path):
     assert type(m2).__name__ == "GPT2LMHeadModel" and tok2.decode(tok2("x y")["input_ids"], skip_special_tokens=True) == "x y"
 
 
+def test_a_half_precision_model_loads_in_float32_with_a_warning(tmp_path):
+    # bfloat16 keeps 8 significant bits (IEEE 754-style layout, 7 stored): 1 + 2^-9 rounds back to 1, so an update
+    # 1/512 of a weight is lost in it; bonft upcasts a half-precision model it loads
+    import warnings
+
+    from bonft.trainer.models import ModelLoadWarning
+
+    assert torch.tensor(1.0 + 2.0 ** -9, dtype=torch.bfloat16).item() == 1.0
+    model = build_tiny_model("llama", vocab_size=V, layers=1, width=32, heads=2).to(torch.bfloat16)
+    model.save_pretrained(tmp_path)
+    TOK.save_pretrained(tmp_path)
+    with pytest.warns(ModelLoadWarning, match=r"weights are saved in bfloat16; bonft loads them as float32"):
+        m2, _ = load_model(tmp_path, device=torch.device("cpu"))
+    assert {p.dtype for p in m2.parameters()} == {torch.float32}
+    for (name, p), q in zip(model.named_parameters(), m2.parameters()):
+        assert torch.equal(p.float(), q), name  # the saved values, exactly (bfloat16 -> float32 is exact)
+    model.float().save_pretrained(tmp_path / "f32")
+    TOK.save_pretrained(tmp_path / "f32")
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", ModelLoadWarning)  # a float32 model with default settings: no warning
+        load_model(tmp_path / "f32", device=torch.device("cpu"))
+
+
+def test_saved_sampling_settings_that_bonft_does_not_read_are_named(tmp_path):
+    from transformers import GenerationConfig
+
+    from bonft.trainer.models import ModelLoadWarning
+
+    model = build_tiny_model("llama", vocab_size=V, layers=1, width=32, heads=2)
+    model.generation_config = GenerationConfig(do_sample=True, temperature=0.3, top_k=3, top_p=0.8,
+                                               repetition_penalty=1.3, eos_token_id=EOS_ID)
+    model.save_pretrained(tmp_path)
+    TOK.save_pretrained(tmp_path)
+    with pytest.warns(ModelLoadWarning, match=r"generation_config sets temperature=0.3, top_p=0.8, top_k=3, "
+                                              r"repetition_penalty=1.3, which bonft does not read"):
+        load_model(tmp_path, device=torch.device("cpu"))
+
+
 def test_pick_device():
     assert pick_device("cpu") == torch.device("cpu")
     assert pick_device("auto") == torch.device("cuda" if torch.cuda.is_available() else "cpu")

@@ -199,8 +199,53 @@ def load_model(path: str | os.PathLike, *, device: str | torch.device | None = N
         raise ValueError(f"refusing {found[0] if found else model_dir}: pickled weights holding objects other than "
                          f"tensors (loading them can run code); bonft loads such files only as plain tensors. Was it "
                          f"written by another program? Save the model as safetensors") from None
+    model = _in_float32(model, model_dir)
+    _note_generation_settings(model, model_dir)
     model.to(device).eval()
     return model, tokenizer
+
+
+class ModelLoadWarning(UserWarning):
+    """A model was loaded other than as saved (its precision), or with saved settings bonft does not read."""
+
+
+def _in_float32(model, model_dir: Path):
+    """The model in float32: bonft trains, samples and scores in float32. A model saved in half precision
+    (most published checkpoints are bfloat16) would otherwise train in it: a bfloat16 weight keeps 8 bits of
+    mantissa, so an update much smaller than the weight rounds away, and its log-probs differ from float32's by
+    about 1e-2 nats."""
+    kinds = sorted({str(p.dtype).removeprefix("torch.") for p in model.parameters()
+                    if p.is_floating_point() and p.dtype != torch.float32})
+    if kinds:
+        warnings.warn(f"{model_dir}: the model's weights are saved in {', '.join(kinds)}; bonft loads them as float32 "
+                      f"(it trains, samples and scores in float32: in half precision most small updates round away); "
+                      f"its checkpoints are float32", ModelLoadWarning, stacklevel=3)
+        model = model.float()
+    return model
+
+
+# what a saved generation_config may set that bonft's sampler does not read: it draws at the recipe's or the
+# command's temperature and top_p (bonft.generation.sample), with no top-k, penalty, beam or length rule of the file
+_SAMPLING_KEYS = ("temperature", "top_p", "top_k", "min_p", "typical_p", "epsilon_cutoff", "eta_cutoff",
+                  "repetition_penalty", "no_repeat_ngram_size", "num_beams", "length_penalty", "bad_words_ids",
+                  "suppress_tokens", "begin_suppress_tokens", "sequence_bias", "forced_bos_token_id",
+                  "forced_eos_token_id", "max_length", "max_new_tokens", "min_length", "min_new_tokens")
+
+
+def _note_generation_settings(model, model_dir: Path) -> None:
+    """Warn once per load when the model's saved generation settings differ from what bonft samples with."""
+    gen = getattr(model, "generation_config", None)
+    if gen is None:
+        return
+    diff = gen.to_diff_dict()
+    unread = {key: diff[key] for key in _SAMPLING_KEYS if key in diff}
+    if diff.get("do_sample") is False:
+        unread = {"do_sample": False, **unread}
+    if unread:
+        said = ", ".join(f"{key}={value!r}" for key, value in unread.items())
+        warnings.warn(f"{model_dir}: its generation_config sets {said}, which bonft does not read: it samples at the "
+                      f"recipe's (or the command's) temperature and top_p, with no top-k, penalty or length rule of "
+                      f"the model's; set temperature and top_p to what you serve with", ModelLoadWarning, stacklevel=3)
 
 
 def _model_path(path) -> Path:
