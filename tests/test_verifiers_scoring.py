@@ -133,3 +133,23 @@ def test_load_verifier_errors(tmp_path):
         load_verifier(str(tmp_path / "missing.py") + ":f")
     with pytest.raises(TypeError, match="must name a callable verifier, got Logger"):
         load_verifier("bonft.verifiers.scoring:log")
+
+
+@pytest.mark.parametrize("returned, match", [
+    (lambda ps, rs: 0.7, r"returned a single number 0.7 as scores for 3 \(prompt, response\) pairs: return a list of 3 scores"),
+    (lambda ps, rs: np.full((1, len(rs)), 0.5), r"returned scores of shape \(1, 3\) for 3 .*return a flat list of 3 scores"),
+    (lambda ps, rs: [[1.0] for _ in rs], r"returned scores of shape \(3, 1\) for 3 "),
+    (lambda ps, rs: ([1.0] * len(rs), np.ones((len(rs), 1))), r"returned rewards of shape \(3, 1\) for 3 "),
+])
+def test_a_lone_number_or_a_2d_array_is_refused_not_spread(returned, match):
+    # A lone 0.7 for 3 samples was copied to every sample, and a (1, N) array flattened, without a word.
+    with pytest.raises(VerifierError, match=match):
+        score_batch(returned, ["p"] * 3, ["a", "b", "c"], strict=True)
+    v = score_batch(returned, ["p"] * 3, ["a", "b", "c"])  # one at a time, each call is refused the same way
+    assert v.failed.tolist() == [True] * 3 and v.scores.tolist() == [0.0] * 3
+    assert "for 1 (prompt, response) pair: return a" in v.reasons[0]
+
+
+def test_a_verifier_returning_none_names_it():
+    with pytest.raises(VerifierError, match=r"returned None as scores for 2 \(prompt, response\) pairs \(a missing return\?\)"):
+        score_batch(lambda ps, rs: None, ["p"] * 2, ["a", "b"], strict=True)

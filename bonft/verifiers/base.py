@@ -85,13 +85,37 @@ class Verifier(Protocol):
     def __call__(self, prompts: Sequence[str], responses: Sequence[str]) -> Any: ...
 
 
+def _check_flat(name: str, x: Any, n: int) -> None:
+    """A verifier's scores (or rewards) must be one number per pair: a flat sequence, not a lone number nor a 2-D array."""
+    try:
+        shape = np.shape(x)
+    except ValueError:  # ragged nesting: Verdicts refuses it with its own message
+        return
+    pairs = f"{n} (prompt, response) pair" + ("" if n == 1 else "s")
+    if x is None:
+        raise TypeError(f"the verifier returned None as {name} for {pairs} (a missing return?): return a list of {n} numbers")
+    if len(shape) == 0 and hasattr(x, "__float__"):  # a Python, numpy or torch number
+        raise ValueError(f"the verifier returned a single number {x!r:.30} as {name} for {pairs}: "
+                         f"return a list of {n} {name[:-1] if n == 1 else name}, one per pair")
+    if len(shape) > 1:
+        raise ValueError(f"the verifier returned {name} of shape {shape} for {pairs}: "
+                         f"return a flat list of {n} {name[:-1] if n == 1 else name}, one per pair")
+
+
 def as_verdicts(out: Any, n: int) -> Verdicts:
-    """Normalise a verifier's return value (Verdicts, array of scores, or (scores, rewards))."""
+    """Normalise a verifier's return value (Verdicts, array of scores, or (scores, rewards)).
+
+    Raw scores and rewards must be flat, one number per pair: a lone number or a 2-D array is a ValueError.
+    """
     if isinstance(out, Verdicts):
         v = out
     elif isinstance(out, tuple) and len(out) == 2:
+        _check_flat("scores", out[0], n)
+        if out[1] is not None:
+            _check_flat("rewards", out[1], n)
         v = Verdicts(scores=out[0], rewards=out[1])
     else:
+        _check_flat("scores", out, n)
         try:
             v = Verdicts(scores=out)
         except _TextNotNumbers:
