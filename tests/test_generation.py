@@ -287,6 +287,21 @@ def test_training_mode_is_restored():
     assert model.training
 
 
+@pytest.mark.parametrize("arch", ["gpt2", "llama"])
+@pytest.mark.parametrize("bad", [float("nan"), float("inf")])
+def test_a_model_with_non_finite_logits_is_an_error_not_a_sample(arch, bad):
+    # a NaN (or +inf) logit makes the row's cumulative mass NaN: searchsorted then returns V, which a clamp
+    # turned into the last token with log-prob NaN, and bonft eval printed a table of such samples
+    model = _tiny(arch)
+    with torch.no_grad():
+        model.get_output_embeddings().weight[5, 0] = bad
+    model.train()
+    with pytest.raises(ValueError, match=r"the model's next-token log-probs are not finite in 3 of 3 rows \(first: row 0, "
+                                         r"sample 0 of prompt 0 of this chunk\): its logits hold NaN or inf"):
+        sample(model, TOK, ["ab"], n=3, max_new_tokens=2, seed=0)
+    assert model.training  # its mode restored after the error
+
+
 def test_sampling_builds_no_graph_with_grad_enabled():
     # with autograd on, the returned log-probs must carry no graph (a graph would keep every
     # decoding step's KV cache alive); training log-probs come from sequence_logprobs instead.

@@ -37,7 +37,15 @@ def draw_tokens(logp: torch.Tensor, generator, generators, n: int) -> torch.Tens
     depend on which prompts share the batch.
     """
     cdf = logp.exp().double().cumsum(-1)  # (R, V)
-    cdf = cdf / cdf[:, -1:]  # last entry exactly 1
+    total = cdf[:, -1:]  # (R, 1): 1 up to round-off, NaN when a logit is NaN or +inf
+    ok = torch.isfinite(total) & (total > 0)
+    if not bool(ok.all()):  # one read per step
+        bad = (~ok).nonzero()[:, 0]
+        raise ValueError(f"the model's next-token log-probs are not finite in {bad.numel()} of {logp.shape[0]} rows "
+                         f"(first: row {int(bad[0])}, sample {int(bad[0]) % n} of prompt {int(bad[0]) // n} of this "
+                         f"chunk): its logits hold NaN or inf; check the weights (torch.isfinite on each parameter) "
+                         f"and the inputs")
+    cdf = cdf / total  # last entry exactly 1
     if generators is None:
         u = 1.0 - torch.rand(logp.shape[0], generator=generator, device=logp.device, dtype=torch.float64)
     else:
