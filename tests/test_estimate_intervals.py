@@ -9,7 +9,7 @@ import numpy as np
 import pytest
 
 from bonft.estimate import CurveSummary, bootstrap_ci, default_ks, summarize
-from bonft.estimate.intervals import all_equal_bound
+from bonft.estimate.intervals import _all_equal_bound
 from bonft.viz import plot_best_of_k_curves
 
 
@@ -87,7 +87,7 @@ def test_bootstrap_single_prompt_and_constant_values():
     (100, 0.90, 1 - 0.05 ** (1 / 100)),
 ])
 def test_all_at_a_bound_gives_the_clopper_pearson_interval(P, conf, want):
-    assert all_equal_bound(P, conf) == pytest.approx(want, rel=1e-12)
+    assert _all_equal_bound(P, conf) == pytest.approx(want, rel=1e-12)
     mean, lo, hi = bootstrap_ci(np.zeros((P, 2)), confidence=conf, bounds=(0, 1))
     np.testing.assert_array_equal(lo, [0, 0])
     np.testing.assert_allclose(hi, want, rtol=1e-12)
@@ -99,7 +99,7 @@ def test_all_at_a_bound_matches_the_rule_of_three():
     # "rule of three" (Hanley & Lippman-Hand 1983): 3/P approximates the one-sided 95% limit for 0 of P;
     # the one-sided 95% limit is the two-sided 90% one
     for P in (50, 200, 1000):
-        assert all_equal_bound(P, 0.90) == pytest.approx(3 / P, rel=0.08)
+        assert _all_equal_bound(P, 0.90) == pytest.approx(3 / P, rel=0.08)
 
 
 def test_all_at_a_bound_covers_a_population_at_the_limit():
@@ -107,7 +107,7 @@ def test_all_at_a_bound_covers_a_population_at_the_limit():
     # when mu > w, and P draws are then all 0 with chance (1 - mu)^P < (1 - w)^P = 0.025 for Bernoulli(mu) (the
     # worst case of the Markov step) and less for any other population on [0, 1] with that mean.
     P, conf, repeats = 20, 0.95, 20000
-    w = all_equal_bound(P, conf)
+    w = _all_equal_bound(P, conf)
     _, lo, hi = bootstrap_ci(np.zeros(P), confidence=conf, bounds=(0, 1))
     assert (lo, hi) == (0.0, pytest.approx(w, rel=1e-12))
     rng = np.random.default_rng(11)

@@ -30,7 +30,7 @@ from bonft._core.checks import (
 )
 from bonft.estimate.bestofk import _best_of_k_matrix, _pools, _ragged_best_of_k, _smallest_pool
 
-__all__ = ["bootstrap_ci", "all_equal_bound", "zero_spread", "default_ks", "CurveSummary", "summarize", "MIN_BOOT_PROMPTS"]
+__all__ = ["bootstrap_ci", "default_ks", "CurveSummary", "summarize", "MIN_BOOT_PROMPTS"]
 
 
 def _check_bounds(bounds) -> tuple[float, float] | None:
@@ -45,7 +45,7 @@ def _check_bounds(bounds) -> tuple[float, float] | None:
     return lo, hi
 
 
-def all_equal_bound(P: int, confidence: float) -> float:
+def _all_equal_bound(P: int, confidence: float) -> float:
     r"""Width, as a share of ``hi - lo``, of the exact interval for a mean whose P values all sit at one bound.
 
     .. math:: 1 - \big(\tfrac{1-c}{2}\big)^{1/P}
@@ -59,7 +59,7 @@ def all_equal_bound(P: int, confidence: float) -> float:
     return -math.expm1(math.log((1.0 - confidence) / 2.0) / P)
 
 
-def zero_spread(values) -> np.ndarray:
+def _zero_spread(values) -> np.ndarray:
     """``(P, K) -> (K,)`` bool: the columns whose P values are all equal (a bootstrap interval of width 0)."""
     v = np.asarray(values, dtype=float)
     v = v[:, None] if v.ndim == 1 else v
@@ -85,10 +85,10 @@ def bootstrap_ci(values, *, confidence: float = 0.95, n_boot: int = 2000, seed: 
     percentile interval has width 0 and covers nothing it does not already see (with P = 1 this is
     every column). ``bounds=(lo, hi)`` states that every value lies in ``[lo, hi]`` (pass@k and
     best-of-k of rewards in [0, 1]: ``(0, 1)``; values outside raise ``ValueError``): a column all at
-    ``lo`` then gets the exact interval ``[lo, lo + (hi - lo) w]`` with ``w =`` :func:`all_equal_bound`
+    ``lo`` then gets the exact interval ``[lo, lo + (hi - lo) w]`` with ``w = 1 - ((1 - c)/2)^(1/P)``
     (valid for any distribution on ``[lo, hi]``; Clopper & Pearson 1934), a column all at ``hi`` the
     mirror image; every other column is the percentile interval. ``bounds=None`` (the range is
-    unknown) leaves such columns at width 0: callers flag them with :func:`zero_spread`.
+    unknown) leaves such columns at width 0 (:meth:`CurveSummary.no_interval` names them).
 
     References: Efron & Tibshirani 1993, "An Introduction to the Bootstrap"; Clopper & Pearson 1934,
     "The use of confidence or fiducial limits illustrated in the case of the binomial".
@@ -119,8 +119,8 @@ def bootstrap_ci(values, *, confidence: float = 0.95, n_boot: int = 2000, seed: 
     lo, hi = np.minimum(lo, mean), np.maximum(hi, mean)
     if bounds is not None:
         b_lo, b_hi = bounds
-        flat = zero_spread(V)
-        w = (b_hi - b_lo) * all_equal_bound(P, confidence)
+        flat = _zero_spread(V)
+        w = (b_hi - b_lo) * _all_equal_bound(P, confidence)
         at_lo, at_hi = flat & (mean == b_lo), flat & (mean == b_hi)
         hi = np.where(at_lo, b_lo + w, hi)
         lo = np.where(at_hi, b_hi - w, lo)
@@ -189,7 +189,7 @@ class CurveSummary:
         """``which`` = ``"best_of_k"`` or ``"pass_at_k"`` -> (K,) bool: the columns whose values have zero spread
         over prompts and sit at no known bound, so that their ``_lo``/``_hi`` are the mean, not an interval."""
         per = np.asarray(getattr(self, f"per_prompt_{which}"), dtype=float)
-        flat = zero_spread(per)
+        flat = _zero_spread(per)
         if self.bounds is not None:
             mean = np.asarray(getattr(self, f"{which}_mean"), dtype=float)
             flat &= (mean != self.bounds[0]) & (mean != self.bounds[1])
