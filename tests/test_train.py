@@ -276,6 +276,27 @@ def test_non_finite_step_stops_before_the_update_and_keeps_good_checkpoints(tmp_
     assert_same_weights(final_weights(cfg.run_dir), at(ref.run_dir, 6))
 
 
+def test_a_broken_starting_model_is_named_as_the_cause_of_a_non_finite_first_step(tmp_path):
+    # no update has happened yet, so "lower lr" would be the wrong advice: the weights were loaded with a NaN
+    from bonft.tasks.tokenizer import build_tokenizer
+    from bonft.trainer.checkpoint import save_model
+    from bonft.trainer.models import build_tiny_model
+
+    tok = build_tokenizer()
+    model = build_tiny_model(vocab_size=len(tok), layers=1, width=32, heads=2, max_positions=48, seed=0,
+                             pad_token_id=tok.pad_token_id, eos_token_id=tok.eos_token_id, bos_token_id=tok.bos_token_id)
+    with torch.no_grad():
+        model.transformer.h[0].mlp.c_fc.weight[0, 0] = float("nan")
+    save_model(model, tok, tmp_path / "broken")
+    keys = {k: v for k, v in TINY.items() if k not in ("layers", "width", "heads", "max_positions")}
+    cfg = from_dict({**keys, "start_from": str(tmp_path / "broken"), "rl_steps": 0, "warm_start_steps": 2,
+                     "run_dir": str(tmp_path / "run")})
+    with pytest.raises(ValueError, match=r"step 1 has a non-finite loss \(loss nan, gradient norm nan\): the model's "
+                                         r"weights already hold NaN or inf before this update, in 1 tensor\(s\) "
+                                         r"\(transformer.h.0.mlp.c_fc.weight\); the starting model is broken"):
+        T.train(cfg, progress=False)
+
+
 def test_resume_with_sgd_momentum_is_exact(tmp_path, monkeypatch):
     # the momentum buffers travel in the checkpoint like AdamW's moments (placebo on: its permutations too)
     kw = dict(optimizer="sgd", momentum=0.9, lr=0.05, placebo=True, save_every=0)

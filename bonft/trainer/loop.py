@@ -207,8 +207,14 @@ def _apply_update(run: Run, s: int, lr: float, loss: float, clock: Stopwatch, wh
         grad_norm = float(norm)
         if not (math.isfinite(loss) and math.isfinite(grad_norm)):
             run.optimizer.zero_grad(set_to_none=True)
-            raise NonFiniteStep(f"step {s + 1}{what} has a non-finite {'loss' if not math.isfinite(loss) else 'gradient'} "
-                                f"(loss {loss}, gradient norm {grad_norm}); lower lr (now {lr:.3g}) or check the verifier")
+            head = f"step {s + 1}{what} has a non-finite {'loss' if not math.isfinite(loss) else 'gradient'} " \
+                   f"(loss {loss}, gradient norm {grad_norm})"
+            broken = [name for name, p in run.module.named_parameters() if not bool(torch.isfinite(p).all())]
+            if broken:  # no update has made them so (each is checked first): the model was loaded that way
+                raise NonFiniteStep(f"{head}: the model's weights already hold NaN or inf before this update, in "
+                                    f"{len(broken)} tensor(s) ({', '.join(broken[:3])}{', ...' if len(broken) > 3 else ''}); "
+                                    f"the starting model is broken (start_from, or the checkpoint resumed)")
+            raise NonFiniteStep(f"{head}; lower lr (now {lr:.3g}) or check the verifier")
         clipped = 0 < cfg.clip_grad_norm < grad_norm
         if clipped:
             torch.nn.utils.clip_grads_with_norm_(grads, cfg.clip_grad_norm, norm)
