@@ -188,13 +188,16 @@ def read_samples(
     answer_field: str = "answer",
     sample_field: str = "sample",
     text_field: str | None = None,
+    temperature_required: bool = False,
 ) -> SampleTable:
     """Load a samples JSONL file into columns.
 
     ``prompt_field``/``score_field``/``reward_field`` are required on every line;
     ``temperature_field``/``tokens_field``/``answer_field`` are optional but, when present, must be
     on every line (temperatures and token counts >= 0). ``text_field`` (e.g. ``"prompt"``; default None: not read) fills ``prompts`` when the
-    field is there, a string on every line. Raises ``FileNotFoundError`` for a missing file and
+    field is there, a string on every line. ``temperature_required=True`` makes ``temperature_field``
+    required on every line (a field named on purpose that is missing would otherwise pool every
+    temperature into one pool). Raises ``FileNotFoundError`` for a missing file and
     ``ValueError`` (``samples.jsonl line 17: ...``) for a malformed one: bad JSON,
     JSON nested too deeply, or bytes that are not UTF-8.
 
@@ -215,6 +218,9 @@ def read_samples(
             raise TypeError(f"{opt} must be a non-empty str, got {v!r}")
     if duplicates not in DUPLICATES:
         raise ValueError(f"duplicates must be one of {DUPLICATES}, got {duplicates!r}")
+    if not isinstance(temperature_required, bool):
+        raise TypeError(f"temperature_required must be a bool, got {type(temperature_required).__name__} "
+                        f"{temperature_required!r}")
     path = os.fspath(path)
     name = os.path.basename(path)
     with open(path, "rb") as f:
@@ -241,7 +247,7 @@ def read_samples(
                       numbers, score_field, allow_bool=False)
     rewards = _numbers(name, _column(name, rows, numbers, reward_field, "reward_field", required=True),
                        numbers, reward_field, allow_bool=True)
-    temps = _column(name, rows, numbers, temperature_field, "temperature_field", required=False)
+    temps = _column(name, rows, numbers, temperature_field, "temperature_field", required=temperature_required)
     if temps is not None:
         temps = _numbers(name, temps, numbers, temperature_field, allow_bool=False)
         if (temps < 0).any():

@@ -299,3 +299,17 @@ def test_write_names_a_directory_or_a_missing_folder(tmp_path):
         write_samples(tmp_path, row)
     with pytest.raises(FileNotFoundError, match=r"path's folder does not exist: .*nope"):
         write_samples(tmp_path / "nope" / "s.jsonl", row)
+
+
+def test_a_required_temperature_field_must_exist(tmp_path):
+    # a file at T = 0.7 and 1.0 read through a misnamed field would pool both temperatures into one pool
+    p = tmp_path / "two.jsonl"
+    p.write_text("".join(json.dumps({"prompt_id": q, "score": i, "reward": i % 2, "temperature": t}) + "\n"
+                         for t in (0.7, 1.0) for q in range(2) for i in range(3)))
+    assert read_samples(p, temperature_field="nosuch").temperatures is None  # optional: absent from every line
+    with pytest.raises(ValueError, match=r"two.jsonl line 1: missing field 'nosuch' \(fields there: prompt_id, reward, "
+                                         r"score, temperature\); .*temperature_field=NAME"):
+        read_samples(p, temperature_field="nosuch", temperature_required=True)
+    assert temperatures_of(read_samples(p, temperature_required=True)) == [0.7, 1.0]
+    with pytest.raises(TypeError, match=r"temperature_required must be a bool, got str 'yes'"):
+        read_samples(p, temperature_required="yes")
