@@ -112,6 +112,7 @@ def test_policies_that_solve_nothing_get_an_exact_interval_not_a_zero_width_one(
     ("bad baseline", r"--baseline must be one of the inputs' names \['a', 'b'\], got 'c'"),
     ("bad names", r"--names must give one non-empty name per input \(2\), got 'x'"),
     ("big k", r"--ks must be between 1 and the smallest pool \(n=4\), got \[1, 8\]"),
+    ("repeated k", r"--ks must not repeat a k .*got '2,1,2' \(k=2 more than once\)"),
     ("no samples", r"RUN_OR_FILE '.*empty' is a directory without heldout_samples.jsonl .*bonft sample"),
 ])
 def test_what_cannot_be_paired_is_refused_naming_why(tmp_path, capsys, case, message):
@@ -122,7 +123,8 @@ def test_what_cannot_be_paired_is_refused_naming_why(tmp_path, capsys, case, mes
     texts = ["seed 7 prompt"] + [f"jars {q}" for q in range(1, P)] if case == "other texts" else None
     write(b, r, s, ids=ids, texts=texts)
     args = {"one input": [str(tmp_path / "a.jsonl")], "same names": [str(tmp_path / "a.jsonl")] * 2}.get(case, [str(tmp_path / "a.jsonl"), str(b)])
-    extra = {"bad baseline": ["--baseline", "c"], "bad names": ["--names", "x"], "big k": ["--ks", "1,8"]}.get(case, [])
+    extra = {"bad baseline": ["--baseline", "c"], "bad names": ["--names", "x"], "big k": ["--ks", "1,8"],
+             "repeated k": ["--ks", "2,1,2"]}.get(case, [])
     if case == "no samples":
         (tmp_path / "empty").mkdir()
         args = [str(tmp_path / "empty"), str(b)]

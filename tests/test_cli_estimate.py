@@ -77,6 +77,10 @@ def test_single_temperature_file_with_renamed_fields_and_k(tmp_path, capsys):
         (["estimate"], r"POOLS must be a pool file \(JSONL of scored samples\) \(or pass --example\)"),
         (["estimate", "nope.jsonl"], r"POOLS file not found: nope.jsonl"),
         (["estimate", "--example", "--score-field", "rm"], r"missing field 'rm'.*--score-field NAME"),
+        # a temperature field named on purpose must exist: the example holds T = 0.6 and 1.0, which would be pooled
+        (["estimate", "--example", "--temperature-field", "nosuch"],
+         r"example_samples.jsonl line 1: missing field 'nosuch'.*--temperature-field NAME"),
+        (["estimate", "--example", "--ks", "2,1,2"], r"--ks must not repeat a k .*got '2,1,2' \(k=2 more than once\)"),
         # options that cannot take effect, and list items that are empty
         (["estimate", "--example", "--ks", "1,,2"], r"--ks must be comma-separated values with none empty, got '1,,2'"),
         (["estimate", "--example", "--ks", "1,2,"], r"--ks must be comma-separated values with none empty"),
@@ -99,3 +103,28 @@ def test_errors_exit_2_with_a_message(argv, match, capsys):
     err = capsys.readouterr().err
     assert err.startswith("bonft estimate: error: ")
     assert re.search(match, err), err
+
+
+def test_a_run_directory_is_read_through_its_heldout_samples(tmp_path, capsys):
+    run = tmp_path / "mine"
+    run.mkdir()
+    rows = [{"prompt_id": q, "sample": i, "score": float(i), "reward": int(i < 2), "temperature": 1.0}
+            for q in range(3) for i in range(4)]
+    (run / "heldout_samples.jsonl").write_text("".join(json.dumps(r) + "\n" for r in rows))
+    assert main(["estimate", str(run), "--n-boot", "50"]) == 0
+    out = capsys.readouterr().out
+    assert f"samples: {run / 'heldout_samples.jsonl'} (12 rows)" in out
+    # 2 of 4 correct per prompt: pass@2 = 1 - C(2,2)/C(4,2) = 5/6 (Chen et al. 2021 eq. (1))
+    assert f"{chen_pass_at_k(4, 2, 2):.4f}" in out
+    (tmp_path / "empty").mkdir()
+    assert main(["estimate", str(tmp_path / "empty")]) == 2
+    assert "is a directory without heldout_samples.jsonl" in capsys.readouterr().err
+
+
+def test_the_default_temperature_field_stays_optional(tmp_path, capsys):
+    p = tmp_path / "t.jsonl"
+    p.write_text("".join(json.dumps({"prompt_id": q, "score": i, "reward": i % 2}) + "\n"
+                         for q in range(3) for i in range(4)))
+    assert main(["estimate", str(p), "--n-boot", "50"]) == 0  # no temperature column: one block
+    assert main(["estimate", str(p), "--n-boot", "50", "--temperature-field", "temperature"]) == 2
+    assert "missing field 'temperature'" in capsys.readouterr().err

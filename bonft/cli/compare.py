@@ -158,6 +158,10 @@ def run(args: argparse.Namespace) -> int:
     check_sizes(args)
     check_output_paths(args)  # before any reading: a wrong --json or --plot-dir found at the end wastes the work
     ks = parse_list("--ks", args.ks)
+    repeated = sorted({k for k in ks if ks.count(k) > 1}) if ks is not None else []
+    if repeated:
+        raise ValueError(f"--ks must not repeat a k (each is one column of the table), got {args.ks!r} "
+                         f"(k={repeated[0]} more than once)")
     if len(args.inputs) < 2:
         raise ValueError(f"RUN_OR_FILE must name at least 2 inputs to compare, got {len(args.inputs)}")
     groups = [[part for part in a.split(",") if part] for a in args.inputs]  # one run per training seed

@@ -8,6 +8,8 @@ from bonft.cli.options import add_duplicates_flag, add_plot_dir, check_sizes, pa
 from bonft.cli.strategy_tables import add_strategy_arguments, check_strategy_options
 from bonft.cli.strategy_tables import run_estimate as _run_strategies
 
+SAMPLES_FILE = "heldout_samples.jsonl"  # a run directory's (bonft.trainer.evaluation.HELDOUT_SAMPLES, without torch)
+
 HELP = "best-of-k (verifier picks) and pass@k with bootstrap CIs from a pool file (JSONL of scored samples)"
 DESCRIPTION = (
     "Read a samples file (one JSON object a line: prompt_id, score, reward, optional temperature) "
@@ -18,13 +20,15 @@ DESCRIPTION = (
 )
 
 def add_arguments(p: argparse.ArgumentParser) -> None:
-    p.add_argument("samples", nargs="?", help="samples JSONL file (omit with --example)")
+    p.add_argument("samples", nargs="?",
+                   help=f"samples JSONL file, or a run directory (its {SAMPLES_FILE}) (omit with --example)")
     p.add_argument("--example", action="store_true", help="use the bundled ledger-puzzle example file")
     p.add_argument("--prompt-field", default="prompt_id", help="field holding the prompt id (default: prompt_id)")
     p.add_argument("--score-field", default="score", help="field holding the verifier score (default: score)")
     p.add_argument("--reward-field", default="reward", help="field holding the true reward (default: reward)")
-    p.add_argument("--temperature-field", default="temperature",
-                   help="field holding the sampling temperature, optional in the file (default: temperature)")
+    p.add_argument("--temperature-field", default=None,
+                   help="field holding the sampling temperature (default: temperature, optional in the file; a field "
+                        "named here must be on every line)")
     p.add_argument("--sample-field", default="sample",
                    help="field holding each sample's index in its pool, optional; with it identical samples are not "
                         "counted as repeated rows (default: sample)")
@@ -49,9 +53,19 @@ def run(args) -> int:
     if not args.example and not args.samples:
         raise ValueError("POOLS must be a pool file (JSONL of scored samples) (or pass --example), got nothing")
     path = example_samples_path() if args.example else args.samples
+    if os.path.isdir(path):  # a run directory: its final evaluation's samples, as bonft compare reads it
+        run_dir, path = path, os.path.join(path, SAMPLES_FILE)
+        if not os.path.isfile(path):
+            raise FileNotFoundError(
+                f"POOLS {run_dir!r} is a directory without {SAMPLES_FILE} (a run's final evaluation writes it, unless "
+                f"heldout_samples = false); write one with `bonft sample {run_dir} -o FILE` and estimate FILE")
     if not os.path.isfile(path):
         raise FileNotFoundError(f"POOLS file not found: {path}")
     ks = parse_list("--ks", args.ks)
+    repeated = sorted({k for k in ks if ks.count(k) > 1}) if ks is not None else []
+    if repeated:
+        raise ValueError(f"--ks must not repeat a k (each is one row of the table), got {args.ks!r} "
+                         f"(k={repeated[0]} more than once)")
     names = check_strategy_options(args)
     check_sizes(args)
     table = read_samples(
@@ -59,7 +73,8 @@ def run(args) -> int:
         prompt_field=args.prompt_field,
         score_field=args.score_field,
         reward_field=args.reward_field,
-        temperature_field=args.temperature_field,
+        temperature_field=args.temperature_field or "temperature",
+        temperature_required=args.temperature_field is not None,
         duplicates="allow" if args.allow_duplicates else "warn",
         answer_field=args.answer_field,
         sample_field=args.sample_field,
