@@ -64,10 +64,36 @@ def test_batch_order_dependence_is_flagged():
     def position_bias(prompts, responses):  # the first sample of each batch gets a bonus
         return [1.0 if i == 0 else 0.0 for i in range(len(responses))]
 
-    rep = check_verifier(position_bias, POOLS)
-    # reversing the batch moves the bonus from the first to the last sample of each pool: 2 changes per pool
-    assert rep.n_nondeterministic == 4, str(rep)
-    assert "non-deterministic: 4 of 16 re-scored samples (25.0%)" in rep.problems[0]
+    rep = check_verifier(position_bias, POOLS, repeats=3)
+    # run 2 reverses the batch, moving the bonus from the first to the last sample of each pool: 2 changes per
+    # pool; run 3 scores each sample alone, where every sample is first: the 7 others of each pool change
+    assert rep.n_nondeterministic == 4 + 14, str(rep)
+    assert "non-deterministic: 18 of 32 re-scored samples (56.2%)" in rep.problems[0]
+    assert check_verifier(position_bias, POOLS).n_nondeterministic == 14  # repeats=2: the run alone only
+
+
+def test_a_score_that_depends_on_the_batch_make_up_is_flagged():
+    # Like a reward model reading a pad position: the score depends on the batch's longest text, which
+    # reversing the batch keeps; scoring each sample alone gives another score.
+    def padded(prompts, responses):
+        width = max(len(r) for r in responses)
+        return [len(r) / width for r in responses]
+
+    rep = check_verifier(padded, POOLS)
+    # alone every score is 1.0; in its pool a sample scores len / longest, 1.0 only for the longest: "answer: 22"
+    # and "answer: 4." (10 characters) in pool 1, "answer: nine" (12) in pool 2, so 16 - 3 samples change
+    assert rep.n_nondeterministic == 13, str(rep)
+    assert re.search(r"non-deterministic: 13 of 16 .* in the first batch then 1 alone", rep.problems[0]), rep.problems
+
+
+@pytest.mark.parametrize("reward, which", [(0.0, "none correct"), (1.0, "none wrong")])
+def test_one_sided_labels_are_a_problem_not_ok(reward, which):
+    # 0 correct of 16: no ROC AUC and a flat zero curve; the check said OK
+    samples = [{"prompt": p["prompt"], "response": r, "reward": reward} for p in POOLS for r in p["responses"]]
+    rep = check_verifier(EXACT, samples)
+    assert not rep.ok and rep.auc is None
+    assert any(re.match(rf"one-sided labels: {16 * int(reward)} of 16 labelled samples are correct, {which}, so "
+                        r"agreement .* cannot be judged", p) for p in rep.problems), rep.problems
 
 
 def test_crashing_verifier_is_flagged_with_the_rate():

@@ -3,8 +3,8 @@
 A verifier that crashes, is non-deterministic, or can be gamed silently ruins
 every number downstream. :func:`check_verifier` measures, on example pools:
 
-* determinism: every sample scored ``repeats`` times (later runs in a
-  different batch order) must get the same score;
+* determinism: every sample scored ``repeats`` times (middle runs in
+  reverse batch order, the last one sample per call) must get the same score;
 * failures: exceptions, NaN and timeouts (through
   :func:`bonft.verifiers.score_batch`), as a rate;
 * score range and latency per call;
@@ -311,8 +311,9 @@ def check_verifier(
     labels:     one list of bools per pool (in order of first appearance);
                 default the examples' labels, else ``reward > 0.5``.
     threshold:  a sample is predicted correct when its score is >= threshold.
-    repeats:    times each sample is scored (>= 2); runs after the first
-                reverse the batch order, so batch-dependent scores show up.
+    repeats:    times each sample is scored (>= 2): the first run scores each pool in one call, the
+                runs between reverse the batch order, the last scores each sample alone, so scores
+                that depend on the batch's order or make-up (padding) show up.
     ks:         best-of-k curve points; default 1, 2, 4, ... up to the smallest pool.
     pool_size:  use at most this many responses per prompt (the first ones).
     timeout:    seconds per verifier call, passed to :func:`bonft.verifiers.score_batch`.
@@ -338,12 +339,16 @@ def check_verifier(
             for key in ("responses", "rewards", "labels"):
                 pool[key] = pool[key][:pool_size]
 
-    # 1) score every pool `repeats` times, one call per pool; later runs in reverse order
+    # 1) score every pool `repeats` times: the first run one call per pool, the runs between in reverse order,
+    #    the last one sample per call (a batch of one), so order- and batch-dependent scores both show up
     runs: list[list[Any]] = []
-    latencies: list[float] = []
+    latencies: list[float] = []  # of the whole-pool calls
     for rep in range(repeats):
         per_pool = []
         for pool in pools:
+            if rep == repeats - 1:
+                per_pool.append(_score_alone(verifier, pool, timeout))
+                continue
             rs = pool["responses"] if rep == 0 else pool["responses"][::-1]
             t0 = time.perf_counter()
             v = score_batch(verifier, [pool["prompt"]] * len(rs), rs, timeout=timeout)
@@ -359,14 +364,16 @@ def check_verifier(
     rep = VerifierReport(n_prompts=len(pools), n_samples=n, repeats=repeats, n_nondeterministic=0, threshold=float(threshold))
 
     # 2) determinism
-    for later in runs[1:]:
+    for r, later in enumerate(runs[1:], 1):
+        how = "alone" if r == repeats - 1 else "in the batch reversed"
         for pool, a, b in zip(pools, first, later):
             same = np.isclose(a.scores, b.scores, rtol=rtol, atol=1e-12) & (a.failed == b.failed)
             for j in np.flatnonzero(~same):
                 rep.n_nondeterministic += 1
                 if len(rep.nondeterministic_examples) < 3:
                     rep.nondeterministic_examples.append({"prompt": pool["prompt"][:80], "response": pool["responses"][j][:80],
-                                                          "first": float(a.scores[j]), "again": float(b.scores[j])})
+                                                          "first": float(a.scores[j]), "again": float(b.scores[j]),
+                                                          "again_scored": how})
     # 3) failures (first run)
     for v in first:
         for j in np.flatnonzero(v.failed):
@@ -388,7 +395,7 @@ def check_verifier(
     lat = np.array(latencies) * 1000.0
     rep.latency_ms_per_call = float(lat.mean())
     rep.latency_ms_p95 = float(np.percentile(lat, 95))
-    rep.latency_ms_per_sample = float(lat.sum() / (n * repeats))
+    rep.latency_ms_per_sample = float(lat.sum() / (n * (repeats - 1)))
 
     # true rewards: the examples', else the verifier's own
     true: list[np.ndarray] | None = []
@@ -428,13 +435,24 @@ def check_verifier(
     return rep
 
 
+def _score_alone(verifier: Any, pool: Mapping, timeout: float | None):
+    """The pool's samples scored one per call, as a Verdicts of the pool (a score must not depend on its batch)."""
+    from bonft.verifiers.base import Verdicts
+
+    vs = [score_batch(verifier, [pool["prompt"]], [r], timeout=timeout) for r in pool["responses"]]
+    rewards = None if any(v.rewards is None for v in vs) else np.concatenate([v.rewards for v in vs])
+    return Verdicts(scores=np.concatenate([v.scores for v in vs]), rewards=rewards,
+                    failed=np.concatenate([v.failed for v in vs]), reasons=[v.reasons[0] for v in vs])
+
+
 def _problems(rep: VerifierReport, *, max_failure_rate: float, min_auc: float, bend_tol: float) -> None:
     n = rep.n_samples
     if rep.n_nondeterministic:
         e = rep.nondeterministic_examples[0]
         rep.problems.append(
             f"non-deterministic: {rep.n_nondeterministic} of {n * (rep.repeats - 1)} re-scored samples "
-            f"({rep.n_nondeterministic / (n * (rep.repeats - 1)):.1%}) changed score, e.g. {e['first']:.6g} then {e['again']:.6g}"
+            f"({rep.n_nondeterministic / (n * (rep.repeats - 1)):.1%}) changed score, e.g. {e['first']:.6g} in the "
+            f"first batch then {e['again']:.6g} {e['again_scored']}"
         )
     if rep.failure_rate > max_failure_rate:
         rep.problems.append(
@@ -443,6 +461,13 @@ def _problems(rep: VerifierReport, *, max_failure_rate: float, min_auc: float, b
         )
     if n > 1 and rep.score_min == rep.score_max:
         rep.problems.append(f"constant scores: all {n} samples score {rep.score_min:g}, so best-of-k cannot select")
+    if rep.n_labelled and rep.n_positive in (0, rep.n_labelled):
+        which = "correct" if rep.n_positive == 0 else "wrong"
+        rep.problems.append(
+            f"one-sided labels: {rep.n_positive} of {rep.n_labelled} labelled samples are correct, none {which}, so "
+            "agreement with the labels (ROC AUC) and over-optimisation (best-of-k against pass@k) cannot be judged; "
+            "give examples with both correct and wrong responses"
+        )
     if rep.auc is not None and rep.auc < min_auc:
         rep.problems.append(
             f"low agreement: ROC AUC {rep.auc:.3f} < min_auc={min_auc:g} on {rep.n_labelled} labelled samples "
