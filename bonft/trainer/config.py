@@ -191,8 +191,9 @@ class TrainConfig:
     temperature: float = _f(1.0,
                             "Sampling temperature of the training samples; log-probs are taken at the same "
                             "temperature.", group="rl")
-    top_p: float = _f(1.0, "Nucleus sampling threshold of training samples (1 = off); evaluation draws from the whole "
-                      "distribution at eval_temperature.", group="rl")
+    top_p: float = _f(1.0, "Nucleus sampling threshold of training samples (1 = off). Evaluation, `bonft eval` and "
+                      "`bonft sample` draw from the whole distribution (no nucleus) at `eval_temperature` or the "
+                      "command's temperature.", group="rl")
     max_new_tokens: int = _f(8, "Longest response sampled (tokens, EOS included).", group="rl")
     lr: float = _f(1e-4,
                    "RL learning rate (constant after warmup_steps). With AdamW keep it well below the warm "
