@@ -282,10 +282,30 @@ def test_torch_input_and_scalar_k_shapes():
          r"ks must be <= n \(n=2\), got ks=3"),
         (lambda: best_of_k_per_prompt([np.zeros(3), np.array([])], [np.zeros(3), np.array([])], ks=1), ValueError,
          r"scores\[1\] must not be empty"),
-        (lambda: best_of_k_per_prompt(np.zeros((0, 3)), np.zeros((0, 3)), ks=1), ValueError, r"scores must not be empty"),
+        (lambda: best_of_k_per_prompt(np.zeros((0, 3)), np.zeros((0, 3)), ks=1), ValueError,
+         r"scores must hold at least one prompt's pool, got no prompts"),
+        (lambda: best_of_k_per_prompt([], [], ks=[1]), ValueError, r"scores must hold at least one prompt's pool, got no prompts"),
+        (lambda: best_of_k_per_prompt(np.zeros(0), np.zeros(0), ks=[1]), ValueError, r"got no prompts"),
         (lambda: best_of_k_per_prompt(np.zeros((2, 3)), np.zeros((2, 3)), ks=[]), ValueError, r"ks must not be empty"),
+        # integers beyond 2**53 round as float64 (2**53 + 1 -> 2**53) and would tie: refused, not mis-ranked
+        (lambda: best_of_k(np.array([2**53, 2**53 + 1, 0]), [1, 0, 0], k=2), ValueError,
+         r"scores must be integers of magnitude <= 2\*\*53 .*got 9007199254740993"),
+        (lambda: best_of_k([2**53, 2**53 + 1, 0], [1, 0, 0], k=2), ValueError, r"got 9007199254740993"),
+        (lambda: best_of_k(torch.tensor([2**53, 2**53 + 1, 0]), [1, 0, 0], k=2), ValueError, r"got 9007199254740993"),
+        (lambda: best_of_k([2**70, 0], [1, 0], k=1), ValueError, r"got 1180591620717411303424"),
+        (lambda: best_of_k_per_prompt(np.array([[-(2**53) - 1, 0]]), np.zeros((1, 2)), ks=1), ValueError,
+         r"scores must be integers of magnitude <= 2\*\*53 .*got -9007199254740993"),
+        (lambda: best_of_k_per_prompt([np.array([3, 2**60])], [np.zeros(2)], ks=1), ValueError,
+         r"scores\[0\] must be integers of magnitude <= 2\*\*53"),
     ],
 )
 def test_bad_input_names_the_argument(call, exc, match):
     with pytest.raises(exc, match=match):
         call()
+
+
+def test_integer_scores_up_to_2_53_are_ranked_exactly():
+    # brute-force enumeration of the C(3, 2) = 3 pairs: {2**53, 2**53 - 1} and {2**53, 0} keep the reward-1 sample,
+    # {2**53 - 1, 0} keeps a reward-0 one: best-of-2 = 2/3
+    assert best_of_k(np.array([2**53, 2**53 - 1, 0]), [1, 0, 0], k=2) == pytest.approx(2 / 3, rel=1e-15)
+    assert best_of_k([-(2**53), 3, 0], [1, 0, 0], k=2) == 0.0  # the lowest score is never kept

@@ -39,7 +39,7 @@ from typing import Any
 
 import numpy as np
 
-from bonft._core.checks import as_float_array, check_finite, check_ks, check_nonempty, check_same_shape
+from bonft._core.checks import as_float_array, check_finite, check_ks, check_nonempty, check_same_shape, is_tensor
 from bonft._core.ties import first_of_group, tie_means
 from bonft._core.ustat import weighted_ranks
 
@@ -58,6 +58,7 @@ def best_of_k(scores, rewards, *, k):
 
     samples sorted ascending by score, ``rbar`` the mean reward of the tied
     group (uniform tie-breaking). ``k``: int in [1, n], or a sequence of them.
+    Integer scores must lie within +-2**53 (compared as float64; larger ones raise ``ValueError``).
 
     References: Chow et al. 2024, "Inference-Aware Fine-Tuning for Best-of-N
     Sampling in LLMs"; pass@k special case: Chen et al. 2021.
@@ -172,8 +173,35 @@ def _best_of_k_matrix(scores: np.ndarray, rewards: np.ndarray, ks: np.ndarray) -
 # ----------------------------------------------------------------------------- validation helpers
 
 
+_EXACT_INT = 2**53  # float64 holds every integer of magnitude <= 2**53; 2**53 + 1 rounds to 2**53
+
+
+def _check_exact_ints(name: str, x: Any) -> None:
+    """Integer scores beyond +-2**53 are refused: as float64 neighbours would tie and the picks change."""
+    if is_tensor(x):
+        if x.dtype.is_floating_point or x.dtype.is_complex or str(x.dtype) == "torch.bool":
+            return
+        x = x.detach().cpu().numpy()
+    try:
+        a = np.asarray(x)
+    except (TypeError, ValueError):
+        return  # ragged or not numbers: as_float_array names the problem
+    if a.dtype.kind in "iu" and a.size:
+        lo, hi = int(a.min()), int(a.max())
+        bad = hi if hi > _EXACT_INT else lo if lo < -_EXACT_INT else None
+    elif a.dtype == object:
+        bad = next((int(v) for v in a.ravel() if isinstance(v, numbers.Integral) and not isinstance(v, bool)
+                    and abs(int(v)) > _EXACT_INT), None)
+    else:
+        return
+    if bad is not None:
+        raise ValueError(f"{name} must be integers of magnitude <= 2**53 (scores are compared as float64, where larger "
+                         f"integers round and neighbours tie), got {bad}; rank them first (e.g. scipy.stats.rankdata)")
+
+
 def _pool_pair(scores: Any, rewards: Any, *, name_s: str = "scores", name_r: str = "rewards"):
     """One prompt's pool -> two finite (n,) float64 arrays."""
+    _check_exact_ints(name_s, scores)
     s = as_float_array(name_s, scores, ndim=1)
     r = as_float_array(name_r, rewards, ndim=1)
     check_same_shape(**{name_s: s, name_r: r})
@@ -189,6 +217,9 @@ def _is_ragged_list(x: Any) -> bool:
 
 def _pools(scores: Any, rewards: Any) -> tuple[list[np.ndarray], list[np.ndarray]] | tuple[np.ndarray, np.ndarray]:
     """Validate per-prompt pools: a 2-D pair of arrays, or two lists of 1-D arrays."""
+    for name, x in (("scores", scores), ("rewards", rewards)):
+        if isinstance(x, (list, tuple)) and not x or tuple(getattr(x, "shape", (1,)))[:1] == (0,):
+            raise ValueError(f"{name} must hold at least one prompt's pool, got no prompts")
     if _is_ragged_list(scores) or _is_ragged_list(rewards):
         pair = []
         for name, x in (("scores", scores), ("rewards", rewards)):
@@ -211,6 +242,7 @@ def _pools(scores: Any, rewards: Any) -> tuple[list[np.ndarray], list[np.ndarray
             ss.append(s)
             rr.append(r)
         return ss, rr
+    _check_exact_ints("scores", scores)
     s = as_float_array("scores", scores, ndim=2)
     r = as_float_array("rewards", rewards, ndim=2)
     check_same_shape(scores=s, rewards=r)
