@@ -44,6 +44,14 @@ def test_pass_at_k_broadcasts_and_returns_float_for_scalars():
                                [float(chen_pass_at_k(10, 3, 4)), float(chen_pass_at_k(20, 5, 4))], rtol=1e-12)
 
 
+def test_pass_at_k_of_no_correct_sample_is_plus_zero():
+    # Chen et al. 2021 eq. (1) with c = 0: 1 - C(n, k)/C(n, k) = 0, printed as 0.0, never -0.0
+    assert math.copysign(1.0, pass_at_k(10, 0, k=3)) == 1.0
+    assert not np.signbit(pass_at_k(np.array([10, 10, 5000]), np.array([0, 0, 0]), k=3)).any()
+    big = pass_at_k(np.full(5000, 10), np.zeros(5000, dtype=int), k=3)  # the shared-table path for long vectors
+    assert not np.signbit(big).any()
+
+
 def test_pass_at_k_large_n_matches_chen_stable_product():
     # Chen et al. 2021, Fig. 3 numerically stable form: 1 - prod_{i=n-c+1}^{n} (1 - k / i)
     n, c, k = 100_000, 3, 10_000

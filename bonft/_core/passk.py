@@ -107,8 +107,9 @@ def _log_miss(n, c, k, xp, f):
 
 
 def pass_at_k_counts(n, c, k, xp=np):
-    """Unbiased pass@k ``1 - C(n-c, k)/C(n, k)`` (Chen et al. 2021) as ``-expm1(log_miss)``; trusted ints."""
-    return -xp.expm1(log_miss(n, c, k, xp))
+    """Unbiased pass@k ``1 - C(n-c, k)/C(n, k)`` (Chen et al. 2021) as ``0 - expm1(log_miss)``; trusted ints
+    (``0 -``, not a negation: ``-expm1(0)`` is -0.0)."""
+    return 0.0 - xp.expm1(log_miss(n, c, k, xp))
 
 
 def pass_at_k_prob(p, k: int, xp=np):
