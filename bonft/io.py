@@ -43,7 +43,7 @@ from typing import Any, Iterable, Mapping, Sequence
 import numpy as np
 
 from bonft._core.checks import as_float_array
-from bonft._core.jsonl import decode_utf8, parse_object
+from bonft._core.jsonl import decode_utf8, parse_object, unique_object
 
 __all__ = ["SampleTable", "DuplicateRowsWarning", "read_samples", "write_samples", "group_pools", "temperatures_of"]
 
@@ -79,13 +79,13 @@ def _parse_lines(name: str, lines: list[str], numbers) -> list[dict]:
     first malformed line. Joining the lines into one JSON array would be faster but is wrong: two lines
     that are each invalid can join into two valid objects (an unterminated string closed on the next line).
     """
-    loads = json.loads
+    loads = json.JSONDecoder(object_pairs_hook=unique_object).decode  # a key given twice is refused
     try:
         rows = [loads(t) for t in lines]
-    except (ValueError, RecursionError):  # JSONDecodeError, too many digits, nesting
+    except (ValueError, RecursionError):  # JSONDecodeError, a repeated key, too many digits, nesting
         rows = None
     if rows is None or any(type(r) is not dict for r in rows):
-        rows = [parse_object(text, name, no, "a sample") for text, no in zip(lines, numbers)]
+        rows = [parse_object(text, name, no, "a sample", unique_keys=True) for text, no in zip(lines, numbers)]
     return rows
 
 

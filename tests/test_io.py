@@ -91,6 +91,8 @@ def test_renamed_fields(tmp_path):
         ('{"prompt_id": "a", "score": true, "reward": 0}', r"bad.jsonl line 3: field 'score' must be a number, got True"),
         ('{"prompt_id": 1.5, "score": 1, "reward": 0}', r"bad.jsonl line 3: field 'prompt_id' must be a string or an integer"),
         ('{"prompt_id": "a", "score": 1}', r"bad.jsonl line 3: missing field 'reward'.*reward_field=NAME"),
+        ('{"prompt_id": "a", "score": 1, "reward": 0, "score": 3}',
+         r"bad.jsonl line 3: key 'score' appears twice in one object"),
         ('{"prompt_id": "a", "score": 1, "reward": 0, "temperature": 1.0}',
          r"bad.jsonl line 1: missing field 'temperature'.*temperature_field=NAME"),
         ('{"prompt_id": "a", "score": 1, "reward": 0, "n_tokens": 2.5}', r"line 1: missing field 'n_tokens'"),
@@ -230,8 +232,8 @@ def test_identical_samples_with_a_sample_index_are_not_repeated_rows(tmp_path):
 def test_write_refuses_up_front_what_read_refuses(tmp_path, extra, line, err, match):
     good = {"prompt_id": "a", "score": 0.5, "reward": 1}
     # read_samples refuses the line the row would become ...
-    # (for score and reward the key repeats: json.loads keeps the last one)
-    p = write_lines(tmp_path / "by_hand.jsonl", [json.dumps(good)[:-1] + "," + line + "}"])
+    base = {k: v for k, v in good.items() if k not in extra}  # a key given twice is refused on its own
+    p = write_lines(tmp_path / "by_hand.jsonl", [json.dumps(base)[:-1] + "," + line + "}"])
     with pytest.raises(ValueError, match=r"by_hand.jsonl line 1: field '\w+' must"):
         read_samples(p)
     # ... so write_samples refuses the row before writing anything, naming row and field

@@ -15,11 +15,35 @@ def decode_utf8(raw: bytes, name: str) -> str:
                          f"save the file as UTF-8") from None
 
 
-def parse_object(text: str, name: str, no: int, what: str) -> dict:
+class DuplicateKeyError(ValueError):
+    """A JSON object names one key twice (``json`` would keep the last value without a word)."""
+
+    def __init__(self, key: str) -> None:
+        super().__init__(f"duplicate key {key!r}")
+        self.key = key
+
+
+def unique_object(pairs: list) -> dict:
+    """``object_pairs_hook`` for ``json.loads`` that refuses a key given twice in one object."""
+    d = dict(pairs)
+    if len(d) != len(pairs):
+        seen: set = set()
+        for k, _ in pairs:
+            if k in seen:
+                raise DuplicateKeyError(k)
+            seen.add(k)
+    return d
+
+
+def parse_object(text: str, name: str, no: int, what: str, *, unique_keys: bool = False) -> dict:
     """One line -> a dict; bad JSON, JSON nested too deeply or a non-object raise ``ValueError``
-    naming the file and line. ``what`` says what one line holds (``"a sample"``, ``"a prompt"``)."""
+    naming the file and line. ``what`` says what one line holds (``"a sample"``, ``"a prompt"``).
+    ``unique_keys``: a key given twice in one object raises ``ValueError`` naming it (else the last wins)."""
     try:
-        row = json.loads(text)
+        row = json.loads(text, object_pairs_hook=unique_object) if unique_keys else json.loads(text)
+    except DuplicateKeyError as e:
+        raise ValueError(f"{name} line {no}: key {e.key!r} appears twice in one object (which value is meant is "
+                         f"unclear); keep one") from None
     except json.JSONDecodeError as e:
         raise ValueError(f"{name} line {no}: not valid JSON ({e.msg.removesuffix(' at')} at column {e.colno})") from None
     except RecursionError:
