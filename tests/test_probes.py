@@ -208,3 +208,35 @@ def test_lying_operators_probe_finds_tests_an_in_process_runner_would_pass():
     liar = build_probes(IN_PROCESS["area, tolerance"])["lying_operators"][0]
     res = runner.run_code([(liar, IN_PROCESS["area, tolerance"])])[0]
     assert (res.status, res.reason) == ("fail", "unsupported return type: _Liar")
+
+
+def test_tests_that_call_no_solution_function_are_blamed_not_the_runner(tmp_path, capsys):
+    # "assert True" and a test of math alone pass any code, an exit at import included: that is a problem of the
+    # tests; the runner's advice ("report it as a bonft bug") was printed for them
+    from bonft.cli import main
+
+    tests = {"a": "assert True", "b": "import math\nassert math.sqrt(4) == 2"}
+    path = write_code_tests(str(tmp_path / "trivial.jsonl"), tests)
+    assert main(["check-tests", path, "--probes", "constant_reply,early_exit", "--wall-time", "3"]) == 1
+    out = capsys.readouterr().out
+    assert out.count("- the tests call no function of the solution (they read no name it defines): any code passes") == 2
+    assert "bonft bug" not in out, out
+
+
+@pytest.mark.parametrize("code", ["", "   \n", "# to do\n"])
+def test_empty_tests_are_refused(code):
+    with pytest.raises(ValueError, match=r"the tests of prompt 'p' are empty \(no statement, only blanks or comments\): "
+                                         r"any code passes them"):
+        probe_code_tests({"p": code, "q": "assert f(1) == 2"})
+
+
+def test_tests_file_that_is_not_utf8_names_the_line(tmp_path, capsys):
+    from bonft.cli import main
+
+    path = tmp_path / "latin1.jsonl"
+    path.write_bytes(b'{"prompt": "p", "tests": "assert f(1) == 2"}\n{"prompt": "caf\xe9", "tests": "assert g()"}\n')
+    message = r"latin1.jsonl line 2: not UTF-8 text \(byte 0xe9 at column 16\); save the file as UTF-8"
+    with pytest.raises(ValueError, match=message):
+        read_code_tests(str(path))
+    assert main(["check-tests", str(path)]) == 2
+    assert re.search(message, capsys.readouterr().err)

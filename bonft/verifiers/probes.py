@@ -53,6 +53,7 @@ import json
 from dataclasses import dataclass, field
 from typing import Mapping
 
+from bonft._core.jsonl import decode_utf8
 from bonft.verifiers.sandbox.runner import CodeRunner
 
 PROBES = ("equal_to_anything", "constant_reply", "memorised_asserts", "silent_none", "raise_everywhere",
@@ -74,6 +75,8 @@ ADVICE = {
     "echo_expected": "printing the expected literals passes: compare the exact printed output for several inputs",
     "early_exit": "exiting early passes: the runner should never allow this; report it as a bonft bug",
 }
+NO_SOLUTION_CALL = ("the tests call no function of the solution (they read no name it defines): any code passes; "
+                    "a problem of the tests, not of the runner: call the solution's functions in the asserts")
 _DEFAULT_CONSTANTS = (True, False, None, 0, 1, "", [])
 _MAX_CONSTANTS = 12
 
@@ -282,6 +285,9 @@ def probe_code_tests(tests: Mapping[str, str] | CodeRunner, *, probes=PROBES, ru
             adds ``lying_operators``: the tests run in process with a lying object).
     runner: the runner to use with a tests mapping (default ``CodeRunner(tests, wall_time=5)``).
 
+    Tests that read no name of the solution get one advice line, :data:`NO_SOLUTION_CALL` (any code
+    passes them); empty tests (no statement) are a ValueError.
+
     Caution: a clean report means these generic probes fail, not that the tests cannot be
     gamed; a policy under optimisation pressure searches far wider. It runs only our probe
     code, never model output, but it does run your tests.
@@ -296,6 +302,10 @@ def probe_code_tests(tests: Mapping[str, str] | CodeRunner, *, probes=PROBES, ru
         runner = CodeRunner(tests)
     elif not isinstance(runner, CodeRunner):
         raise TypeError(f"runner must be a CodeRunner, got {type(runner).__name__}")
+    for prompt, code in tests.items():
+        if isinstance(code, str) and not ast.parse(code).body:
+            raise ValueError(f"the tests of prompt {prompt!r:.60} are empty (no statement, only blanks or comments): "
+                             "any code passes them; give each prompt asserts that call the solution")
     jobs, owners = [], []
     for prompt, code in tests.items():
         for probe, sources in build_probes(code).items():
@@ -309,38 +319,40 @@ def probe_code_tests(tests: Mapping[str, str] | CodeRunner, *, probes=PROBES, ru
     out = []
     for prompt in tests:
         passed = tuple(p for p in probes if "pass" in statuses[prompt].get(p, ()))
-        out.append(ProbeResult(prompt, passed, {k: tuple(v) for k, v in statuses[prompt].items()},
-                               tuple(ADVICE[p] for p in passed)))
+        # without a name of the solution every candidate passes: the runner's checks are not at fault
+        advice = (NO_SOLUTION_CALL,) if passed and not solution_names(tests[prompt]) else tuple(ADVICE[p] for p in passed)
+        out.append(ProbeResult(prompt, passed, {k: tuple(v) for k, v in statuses[prompt].items()}, advice))
     return CodeTestsReport(out)
 
 
 def read_code_tests(path: str) -> dict[str, str]:
     """Read a tests file: JSON Lines, one ``{"prompt": str, "tests": str}`` per line.
 
-    Another key, or a prompt on two lines, is a ``ValueError`` naming the line(s): the result maps each
+    Bytes that are not UTF-8, another key, or a prompt on two lines is a ``ValueError`` naming the line(s): the result maps each
     prompt to one test code, as :class:`CodeRunner` does, so a second line would replace the first unseen.
     """
     out: dict[str, str] = {}
     first_line: dict[str, int] = {}
-    with open(path, encoding="utf-8") as f:
-        for i, line in enumerate(f, 1):
-            if not line.strip():
-                continue
-            try:
-                rec = json.loads(line)
-            except ValueError as e:
-                raise ValueError(f"{path} line {i} must be a JSON object, got invalid JSON ({e})") from None
-            if not isinstance(rec, dict) or not isinstance(rec.get("prompt"), str) or not isinstance(rec.get("tests"), str):
-                raise ValueError(f"{path} line {i} must be {{\"prompt\": str, \"tests\": str}}, got {line.strip()[:80]}")
-            extra = sorted(set(rec) - {"prompt", "tests"})
-            if extra:
-                raise ValueError(f"{path} line {i} has unknown key {extra[0]!r}: a line takes only the keys prompt, tests")
-            prompt = rec["prompt"]
-            if prompt in first_line:
-                raise ValueError(f"{path} lines {first_line[prompt]} and {i} both give tests for prompt {prompt!r:.60}: "
-                                 f"each prompt has one test code (join the two into one 'tests' string)")
-            first_line[prompt] = i
-            out[prompt] = rec["tests"]
+    with open(path, "rb") as f:
+        text = decode_utf8(f.read(), str(path))
+    for i, line in enumerate(text.split("\n"), 1):  # only "\n" ends a line: a JSON string may hold U+2028
+        if not line.strip():
+            continue
+        try:
+            rec = json.loads(line)
+        except ValueError as e:
+            raise ValueError(f"{path} line {i} must be a JSON object, got invalid JSON ({e})") from None
+        if not isinstance(rec, dict) or not isinstance(rec.get("prompt"), str) or not isinstance(rec.get("tests"), str):
+            raise ValueError(f"{path} line {i} must be {{\"prompt\": str, \"tests\": str}}, got {line.strip()[:80]}")
+        extra = sorted(set(rec) - {"prompt", "tests"})
+        if extra:
+            raise ValueError(f"{path} line {i} has unknown key {extra[0]!r}: a line takes only the keys prompt, tests")
+        prompt = rec["prompt"]
+        if prompt in first_line:
+            raise ValueError(f"{path} lines {first_line[prompt]} and {i} both give tests for prompt {prompt!r:.60}: "
+                             f"each prompt has one test code (join the two into one 'tests' string)")
+        first_line[prompt] = i
+        out[prompt] = rec["tests"]
     return out
 
 
