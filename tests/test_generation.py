@@ -201,14 +201,47 @@ def test_seed_reproducible(arch):
     assert not torch.equal(s1.response_tokens, s3.response_tokens)
 
 
+@pytest.mark.parametrize("top_k, top_p, kept", [(2, 1.0, 2), (3, 1.0, 3), (3, 0.7, 2), (9, 1.0, 5), (3, 0.5, 1)])
+def test_top_k_keeps_the_k_most_likely_then_the_nucleus(top_k, top_p, kept):
+    # top-k sampling (Fan et al. 2018): the k most likely tokens, renormalised; then the top-p nucleus of that
+    # renormalised law (Holtzman et al. 2020). Probabilities 0.5, 0.25, 0.15, 0.07, 0.03: with k = 3 the kept
+    # law is (0.5, 0.25, 0.15) / 0.9; its nucleus at p = 0.7 is the first two (0.556 < 0.7 <= 0.833); at 0.5
+    # the first alone (the most likely token is always kept); k = 9 > 5 tokens keeps all five (worked by hand)
+    probs = np.array([0.5, 0.25, 0.15, 0.07, 0.03])
+    toks = [CH[c] for c in "vwxyz"]
+    model = TableLM(_table({BOS_ID: dict(zip(toks, np.log(probs)))}))
+    s = sample(model, TOK, [""], n=6000, top_k=top_k, top_p=top_p, max_new_tokens=1, seed=5)
+    assert s.top_k == top_k
+    first = s.response_tokens[0, :, 0].numpy()
+    counts = np.array([(first == t).sum() for t in toks])
+    assert counts[kept:].sum() == 0 and counts[:kept].min() > 0
+    q = probs[:kept] / probs[:kept].sum()
+    if kept > 1:
+        assert stats.chisquare(counts[:kept], 6000 * q).pvalue > 1e-3  # scipy chi-square
+    np.testing.assert_allclose(s.token_logprobs[0, :, 0].numpy(), np.log(q)[[toks.index(t) for t in first]], atol=1e-5)
+    lp = sequence_logprobs(model, s.prompt_tokens, s.prompt_valid, s.response_tokens, s.response_valid,
+                           top_k=top_k, top_p=top_p)  # the training pass scores the same truncated law
+    torch.testing.assert_close(lp, s.token_logprobs, atol=1e-5, rtol=0)
+
+
+def test_top_k_keeps_every_token_tied_with_the_kth():
+    # the k-th largest probability is shared by two tokens: both stay (a threshold at the k-th value, as
+    # transformers' top-k warper keeps scores >= it; from memory, common practice)
+    toks = [CH[c] for c in "vwxy"]
+    model = TableLM(_table({BOS_ID: dict(zip(toks, np.log([0.4, 0.2, 0.2, 0.2])))}))
+    s = sample(model, TOK, [""], n=3000, top_k=2, max_new_tokens=1, seed=2)
+    counts = np.array([(s.response_tokens[0, :, 0].numpy() == t).sum() for t in toks])
+    assert stats.chisquare(counts, 3000 * np.array([0.4, 0.2, 0.2, 0.2])).pvalue > 1e-3
+
+
 @pytest.mark.parametrize("arch", ["gpt2", "llama"])
-@pytest.mark.parametrize("top_p", [1.0, 0.9])
-def test_sequence_logprobs_agree_with_sampler(arch, top_p):
+@pytest.mark.parametrize("top_p, top_k", [(1.0, 0), (0.9, 0), (1.0, 5), (0.9, 5)])
+def test_sequence_logprobs_agree_with_sampler(arch, top_p, top_k):
     model = _tiny(arch, eos_boost=2.0)
-    s = sample(model, TOK, PROMPTS, n=4, max_new_tokens=10, temperature=0.7, top_p=top_p, seed=1)
+    s = sample(model, TOK, PROMPTS, n=4, max_new_tokens=10, temperature=0.7, top_p=top_p, top_k=top_k, seed=1)
     model.train()  # no dropout in the tiny models: the mode must not matter
     lp = sequence_logprobs(model, s.prompt_tokens, s.prompt_valid, s.response_tokens, s.response_valid,
-                           temperature=0.7, top_p=top_p)
+                           temperature=0.7, top_p=top_p, top_k=top_k)
     assert lp.shape == s.token_logprobs.shape and lp.requires_grad
     assert (lp - s.token_logprobs).abs().max().item() < 1e-5
     lp.sum().backward()
@@ -552,6 +585,10 @@ def test_bad_input():
     for p in (0.0, 1.5, -0.1):
         with pytest.raises(ValueError, match=r"top_p must be in \(0, 1\]"):
             sample(model, TOK, ["a"], n=1, top_p=p)
+    with pytest.raises(ValueError, match=r"top_k must be >= 0, got top_k=-1"):
+        sample(model, TOK, ["a"], n=1, top_k=-1)
+    with pytest.raises(TypeError, match=r"top_k must be an int"):
+        sample(model, TOK, ["a"], n=1, top_k=2.5)
     with pytest.raises(TypeError, match=r"prompts must be a sequence of str, got a single str"):
         sample(model, TOK, "a", n=1)
     with pytest.raises(ValueError, match=r"prompts must not be empty"):

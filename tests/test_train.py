@@ -276,6 +276,31 @@ def test_non_finite_step_stops_before_the_update_and_keeps_good_checkpoints(tmp_
     assert_same_weights(final_weights(cfg.run_dir), at(ref.run_dir, 6))
 
 
+@pytest.mark.parametrize("top_k, top_p", [(3, 1.0), (3, 0.8)])
+def test_a_truncated_sampling_law_is_trained_on_policy(tmp_path, monkeypatch, top_k, top_p):
+    # the training forward scores the law the samples were drawn from: with top_k (and top_p) its log-probs of
+    # the sampled tokens are the sampler's own, to float32 round-off (an untruncated forward would differ)
+    drawn, scored = [], []
+    real_sample, real_lp = S.sample, S.sequence_logprobs
+
+    def sample(*a, **kw):
+        drawn.append(real_sample(*a, **kw))
+        return drawn[-1]
+
+    def logprobs(model, *rows, **kw):
+        scored.append((kw, real_lp(model, *rows, **kw)))
+        return scored[-1][1]
+
+    monkeypatch.setattr(S, "sample", sample)
+    monkeypatch.setattr(S, "sequence_logprobs", logprobs)
+    T.train(tiny(tmp_path, warm_start_steps=1, rl_steps=1, top_k=top_k, top_p=top_p, temperature=0.8), progress=False)
+    (smp,) = drawn
+    assert (smp.top_k, smp.top_p) == (top_k, top_p)
+    (kw, lp), = [(kw, lp) for kw, lp in scored if kw.get("top_k") == top_k]
+    assert kw == {"temperature": 0.8, "top_p": top_p, "top_k": top_k}
+    torch.testing.assert_close(lp.detach(), smp.token_logprobs, atol=2e-5, rtol=0)
+
+
 def test_a_broken_starting_model_is_named_as_the_cause_of_a_non_finite_first_step(tmp_path):
     # no update has happened yet, so "lower lr" would be the wrong advice: the weights were loaded with a NaN
     from bonft.tasks.tokenizer import build_tokenizer

@@ -5,7 +5,7 @@ from __future__ import annotations
 
 import torch
 
-from bonft._core.checks import check_fraction, check_items, check_positive
+from bonft._core.checks import check_fraction, check_int, check_items, check_positive
 
 # ---------------------------------------------------------------- validation
 
@@ -25,6 +25,10 @@ def check_temperature(temperature) -> float:
 
 def check_top_p(top_p) -> float:
     return check_fraction("top_p", top_p, open_low=True)
+
+
+def check_top_k(top_k) -> int:
+    return check_int("top_k", top_k, min=0)  # 0 = off
 
 
 # ---------------------------------------------------------------- helpers

@@ -17,6 +17,7 @@ from bonft.generation.inputs import (
     check_model,
     check_prompts,
     check_temperature,
+    check_top_k,
     check_top_p,
     left_pad,
     special_ids,
@@ -103,6 +104,7 @@ def sequence_logprobs(
     *,
     temperature: float = 1.0,
     top_p: float = 1.0,
+    top_k: int = 0,
 ) -> torch.Tensor:
     """Per-token log pi_T of given responses, differentiable: (B, Tp), (B, n, T) -> (B, n, T).
 
@@ -112,7 +114,7 @@ def sequence_logprobs(
     ``B * n`` responses run on top of it (models without an expandable cache
     get one pass over ``[prompt_b ; response_bj]`` rows). Position ids count
     from the first real token, so left padding of prompts and right padding of responses change
-    nothing. With the ``temperature`` (and ``top_p``) used by :func:`sample`
+    nothing. With the ``temperature`` (and ``top_k``, ``top_p``) used by :func:`sample`
     this reproduces ``Samples.token_logprobs`` to float32 round-off; use the
     sampling temperature for unbiased score-function gradients (Chow et al. 2024).
     Prompts must be left-padded and responses right-padded (``prompt_valid`` rows ``0..0 1..1``,
@@ -134,6 +136,7 @@ def sequence_logprobs(
         raise ValueError(f"response_tokens must have B={prompt_tokens.shape[0]} rows like prompt_tokens, got {response_tokens.shape[0]}")
     temperature = check_temperature(temperature)
     top_p = check_top_p(top_p)
+    top_k = check_top_k(top_k)
     check_padding(prompt_valid, response_valid)
 
     B, n, T = response_tokens.shape
@@ -155,7 +158,7 @@ def sequence_logprobs(
             kwargs["use_cache"] = False  # no cache is kept while recomputing (transformers would warn and drop it)
         logits = checked_output(model(input_ids=ids, attention_mask=mask, position_ids=position_ids(mask), **kwargs)).logits
         logits = logits[:, -(T + 1):-1, :]  # (B*n, T, V): position Tp-1+t predicts response token t
-    logp = log_policy(logits, temperature, top_p)
+    logp = log_policy(logits, temperature, top_p, top_k)
     tok = logp.gather(-1, response_tokens.reshape(B * n, T, 1)).squeeze(-1)  # (B*n, T)
     tok = tok.masked_fill(response_valid.reshape(B * n, T) == 0, 0.0)
     return tok.view(B, n, T)  # (B*n, T) -> (B, n, T)

@@ -1,17 +1,25 @@
-"""The sampling policy pi_T (temperature, top-p) and one draw from it, shared by the sampler and the training forward."""
+"""The sampling policy pi_T (temperature, top-k, top-p) and one draw from it, shared by the sampler and the training
+forward."""
 from __future__ import annotations
 
 import torch
 import torch.nn.functional as F
 
 
-def log_policy(logits: torch.Tensor, temperature: float, top_p: float) -> torch.Tensor:
-    """(..., V) logits -> (..., V) log pi_T, restricted to the top-p nucleus and renormalised.
+def log_policy(logits: torch.Tensor, temperature: float, top_p: float, top_k: int = 0) -> torch.Tensor:
+    """(..., V) logits -> (..., V) log pi_T, restricted to the top-k tokens, then to the top-p nucleus, renormalised.
 
-    The nucleus is the smallest set of most likely tokens whose pi_T mass
-    reaches ``top_p`` (the most likely token is always kept); the others get -inf.
+    ``top_k`` (0 = off): tokens less likely than the k-th most likely get -inf (tokens tied with it stay),
+    and the rest are renormalised. The nucleus is then the smallest set of most likely tokens whose mass
+    reaches ``top_p`` (the most likely token is always kept); the others get -inf. Temperature, then
+    top-k, then top-p is the order transformers' ``generate`` applies its warpers in (from memory of its
+    logits-processor list; common practice).
     """
     logp = F.log_softmax(logits.float() / temperature, dim=-1)
+    if 0 < top_k < logp.shape[-1]:
+        with torch.no_grad():
+            kth = logp.topk(top_k, dim=-1).values[..., -1:]  # (..., 1): the k-th largest log-prob
+        logp = F.log_softmax(logp.masked_fill(logp < kth, float("-inf")), dim=-1)
     if top_p >= 1.0:
         return logp
     with torch.no_grad():

@@ -35,6 +35,7 @@ from bonft.generation.inputs import (
     check_model,
     check_prompts,
     check_temperature,
+    check_top_k,
     check_top_p,
     left_pad,
     model_device,
@@ -56,10 +57,11 @@ class Samples:
     response_tokens: (B, n, T) long, right-padded with the pad id.
     response_valid:  (B, n, T) long, 1 on generated tokens up to and including EOS.
     token_logprobs:  (B, n, T) float, log pi_T of each generated token at the
-                     sampling temperature (top-p renormalised if used), 0 where masked.
+                     sampling temperature (top-k / top-p renormalised if used), 0 where masked.
     texts:           B lists of n decoded responses (special tokens removed).
     temperature:     the sampling temperature T.
     top_p:           the nucleus mass used (1.0 = none).
+    top_k:           the number of most likely tokens kept (0 = all).
     """
 
     prompt_tokens: torch.Tensor
@@ -70,6 +72,7 @@ class Samples:
     texts: list[list[str]]
     temperature: float
     top_p: float = 1.0
+    top_k: int = 0
 
     @property
     def n(self) -> int:
@@ -88,7 +91,7 @@ class Samples:
 
 
 @torch.no_grad()  # sampling never builds a graph; training log-probs come from sequence_logprobs
-def _sample_rows(model, ids, mask, *, temperature, top_p, max_new_tokens, pad_id, stops, generator,
+def _sample_rows(model, ids, mask, *, temperature, top_p, top_k, max_new_tokens, pad_id, stops, generator,
                  generators=None, n=1, shared_prefix=True):
     """Decode n samples of each of P prompts. ids, mask: (P, Tp) -> tokens, gen_mask, logprobs: (P*n, t_max).
 
@@ -110,7 +113,7 @@ def _sample_rows(model, ids, mask, *, temperature, top_p, max_new_tokens, pad_id
     registry = state is not None and step is None  # the model's own forward, calling our attention
     with (_prefix_attn.decoding(model, state) if registry else contextlib.nullcontext()) as shared:
         for _ in range(max_new_tokens):
-            logp = log_policy(logits, temperature, top_p)  # (R, V)
+            logp = log_policy(logits, temperature, top_p, top_k)  # (R, V)
             nxt = draw_tokens(logp, generator, generators, n)  # (R,)
             lp = logp.gather(-1, nxt[:, None]).squeeze(-1)
             live = ~done
@@ -150,6 +153,7 @@ def sample(
     n: int,
     temperature: float = 1.0,
     top_p: float = 1.0,
+    top_k: int = 0,
     max_new_tokens: int = 32,
     seed: int | None = None,
     seeds: Sequence[int] | None = None,
@@ -159,9 +163,9 @@ def sample(
 
     prompts: B strings -> :class:`Samples` with ``response_tokens (B, n, T)``.
 
-    ``pi_T(y_t | x, y_<t) = softmax(logits_t / T)`` (restricted to the top-p
-    nucleus and renormalised when ``top_p < 1``). Each prompt is repeated n
-    times and the ``B * n`` rows are decoded ``batch_size`` rows at a time
+    ``pi_T(y_t | x, y_<t) = softmax(logits_t / T)`` (restricted to the ``top_k`` most likely tokens when
+    ``top_k > 0``, then to the top-p nucleus when ``top_p < 1``, and renormalised:
+    :func:`bonft.generation.policy.log_policy`). Each prompt is repeated n times and the ``B * n`` rows are decoded ``batch_size`` rows at a time
     (default: all at once; rounded down to whole prompts, at least one) with the
     model's KV cache; each prompt is run once. On transformers models on the CPU with the stock dynamic
     cache and sdpa or eager attention, the n rows of a prompt share one copy of its keys and values, read by
@@ -195,6 +199,7 @@ def sample(
     n = check_int("n", n, min=1)
     temperature = check_temperature(temperature)
     top_p = check_top_p(top_p)
+    top_k = check_top_k(top_k)
     max_new_tokens = check_int("max_new_tokens", max_new_tokens, min=1)
     if seed is not None:
         seed = check_int("seed", seed, min=0)
@@ -240,7 +245,7 @@ def sample(
     try:
         parts = []
         for s in range(0, B * n, chunk):
-            kw = dict(temperature=temperature, top_p=top_p, max_new_tokens=max_new_tokens, pad_id=pad_id,
+            kw = dict(temperature=temperature, top_p=top_p, top_k=top_k, max_new_tokens=max_new_tokens, pad_id=pad_id,
                       stops=stops, generator=generator, n=n,
                       generators=None if generators is None else generators[s // n:(s + chunk) // n])
             rows_ids, rows_mask = ids[s // n:(s + chunk) // n], mask[s // n:(s + chunk) // n]
@@ -278,4 +283,5 @@ def sample(
         texts=texts,
         temperature=temperature,
         top_p=top_p,
+        top_k=top_k,
     )

@@ -194,6 +194,9 @@ class TrainConfig:
     top_p: float = _f(1.0, "Nucleus sampling threshold of training samples (1 = off). Evaluation, `bonft eval` and "
                       "`bonft sample` draw from the whole distribution (no nucleus) at `eval_temperature` or the "
                       "command's temperature.", group="rl")
+    top_k: int = _f(0, "Keep the top_k most likely tokens of the training samples' distribution, renormalised, before "
+                    "top_p (0 = all); the training log-probs score the same truncated law. Evaluation does not truncate.",
+                    group="rl")
     max_new_tokens: int = _f(8, "Longest response sampled (tokens, EOS included).", group="rl")
     lr: float = _f(1e-4,
                    "RL learning rate (constant after warmup_steps). With AdamW keep it well below the warm "
@@ -371,6 +374,7 @@ def validate(c: TrainConfig) -> None:
     for name in ("lr", "warm_start_lr", "temperature", "eval_temperature", "adam_eps"):
         check_positive(name, getattr(c, name))
     check_fraction("top_p", c.top_p, open_low=True)
+    check_int("top_k", c.top_k, min=0)
     check_fraction("confidence", c.confidence, open_low=True, open_high=True)
     if not isinstance(c.eval_ks, (list, tuple)) or not c.eval_ks:
         raise TypeError(f"eval_ks must be a non-empty list of ints, got {c.eval_ks!r}")

@@ -225,7 +225,7 @@ def _in_float32(model, model_dir: Path):
 
 
 # what a saved generation_config may set that bonft's sampler does not read: it draws at the recipe's or the
-# command's temperature and top_p (bonft.generation.sample), with no top-k, penalty, beam or length rule of the file
+# command's temperature, top_k and top_p (bonft.generation.sample), with no penalty, beam or length rule of the file
 _SAMPLING_KEYS = ("temperature", "top_p", "top_k", "min_p", "typical_p", "epsilon_cutoff", "eta_cutoff",
                   "repetition_penalty", "no_repeat_ngram_size", "num_beams", "length_penalty", "bad_words_ids",
                   "suppress_tokens", "begin_suppress_tokens", "sequence_bias", "forced_bos_token_id",
@@ -244,8 +244,8 @@ def _note_generation_settings(model, model_dir: Path) -> None:
     if unread:
         said = ", ".join(f"{key}={value!r}" for key, value in unread.items())
         warnings.warn(f"{model_dir}: its generation_config sets {said}, which bonft does not read: it samples at the "
-                      f"recipe's (or the command's) temperature and top_p, with no top-k, penalty or length rule of "
-                      f"the model's; set temperature and top_p to what you serve with", ModelLoadWarning, stacklevel=3)
+                      f"recipe's (or the command's) temperature, top_k and top_p, with no penalty or length rule of "
+                      f"the model's; set temperature, top_k and top_p to what you serve with", ModelLoadWarning, stacklevel=3)
 
 
 def _model_path(path) -> Path:

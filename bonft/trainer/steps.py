@@ -97,7 +97,7 @@ def rl_step(run: Run, step: int, clock: Stopwatch) -> dict:
         ex = [run.train[i] for i in mb]
         prompts, b = [e.prompt for e in ex], len(ex)
         with clock("sample"):  # one generator per global slot: a prompt draws the same samples whichever rank holds it
-            smp = sample(run.module, run.tokenizer, prompts, n=n, temperature=T, top_p=cfg.top_p,
+            smp = sample(run.module, run.tokenizer, prompts, n=n, temperature=T, top_p=cfg.top_p, top_k=cfg.top_k,
                          max_new_tokens=cfg.max_new_tokens,
                          seeds=[Stream.SAMPLES.for_prompt(cfg.seed, step=step, slot=int(j)) for j in sl])
         with clock("score"):
@@ -114,7 +114,7 @@ def rl_step(run: Run, step: int, clock: Stopwatch) -> dict:
             anchor_logp = None
             if run.anchor_model is not None:
                 with torch.no_grad():
-                    anchor_logp = sequence_logprobs(run.anchor_model, *rows, temperature=T, top_p=cfg.top_p)
+                    anchor_logp = sequence_logprobs(run.anchor_model, *rows, temperature=T, top_p=cfg.top_p, top_k=cfg.top_k)
             loss, info, logp = _pool_loss(run, run.model, rows, reference_rows, credit, anchor_logp)
         if cfg.updates_per_batch > 1:  # the sampling policy's log-probs: this first forward, before any update
             kept.append((rows, reference_rows, credit, anchor_logp, logp.detach()))
@@ -216,8 +216,8 @@ def _pool_loss(run: Run, model, rows: tuple, reference_rows: tuple | None, credi
     -> loss, info, the (b, n, T) log-probs of the responses.
     """
     cfg = run.cfg
-    # log-probs of the policy that drew the samples: same temperature and top-p
-    logp = sequence_logprobs(model, *rows, temperature=cfg.temperature, top_p=cfg.top_p)
+    # log-probs of the policy that drew the samples: same temperature, top-k and top-p
+    logp = sequence_logprobs(model, *rows, temperature=cfg.temperature, top_p=cfg.top_p, top_k=cfg.top_k)
     ref_lp = ref_mask = None
     if reference_rows is not None:  # (b, 1, T) -> (b, T): the reference response
         ref_lp, ref_mask = sequence_logprobs(model, *reference_rows)[:, 0], reference_rows[3][:, 0]
