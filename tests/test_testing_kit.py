@@ -86,13 +86,13 @@ def test_a_score_that_depends_on_the_batch_make_up_is_flagged():
     assert re.search(r"non-deterministic: 13 of 16 .* in the first batch then 1 alone", rep.problems[0]), rep.problems
 
 
-@pytest.mark.parametrize("reward, which", [(0.0, "none correct"), (1.0, "none wrong")])
+@pytest.mark.parametrize("reward, which", [(0.0, "none"), (1.0, "all")])
 def test_one_sided_labels_are_a_problem_not_ok(reward, which):
     # 0 correct of 16: no ROC AUC and a flat zero curve; the check said OK
     samples = [{"prompt": p["prompt"], "response": r, "reward": reward} for p in POOLS for r in p["responses"]]
     rep = check_verifier(EXACT, samples)
     assert not rep.ok and rep.auc is None
-    assert any(re.match(rf"one-sided labels: {16 * int(reward)} of 16 labelled samples are correct, {which}, so "
+    assert any(re.match(rf"one-sided labels: {which} of the 16 labelled samples are correct, so "
                         r"agreement .* cannot be judged", p) for p in rep.problems), rep.problems
 
 
@@ -423,6 +423,30 @@ def test_a_runs_samples_file_is_read_as_examples(tmp_path):
         {"prompt": "jars 3+4", "response": "7", "reward": 1.0}, {"prompt": "jars 3+4", "response": "17", "reward": 0.0},
         {"prompt": "jars 9+6", "response": "1\u20285", "reward": 0.0}]
 
+
+
+def test_a_samples_file_of_several_temperatures_needs_one_chosen(tmp_path, capsys):
+    # bonft sample --temperatures 0.7,1.0 writes both into one file; they were pooled without a word
+    lines = [{"prompt_id": 0, "prompt": "jars 3+4", "sample": i, "score": 1.0, "reward": float(r == "7"),
+              "temperature": t, "response": r} for t in (0.7, 1.0) for i, r in enumerate(["7", "17", "71"])]
+    path = tmp_path / "s.jsonl"
+    path.write_text("".join(json.dumps(x) + "\n" for x in lines))
+    with pytest.raises(ValueError, match=r"s.jsonl holds samples drawn at 2 temperatures, 0.7 \(3 lines\), 1 \(3 lines\): "
+                                         r"pools mixing them .*choose one with --temperature T"):
+        read_examples(str(path))
+    assert [ex["response"] for ex in read_examples(str(path), temperature=1.0)] == ["7", "17", "71"]
+    with pytest.raises(ValueError, match=r"temperature=0.5 matches no line of .*s.jsonl: its samples were drawn at 0.7 "):
+        read_examples(str(path), temperature=0.5)
+    plain = tmp_path / "plain.jsonl"
+    plain.write_text('{"prompt": "jars 3+4", "response": "7", "reward": 1.0}\n')
+    with pytest.raises(ValueError, match=r"plain.jsonl line 1 has no temperature, so choosing a temperature cannot take effect"):
+        read_examples(str(plain), temperature=1.0)
+    grader = tmp_path / "kit_len_grader.py"
+    grader.write_text("def score(prompts, responses):\n    return [float(len(r) == 1) for r in responses]\n")
+    assert cli_main(["check-verifier", f"{grader}:score", "--examples", str(path)]) == 2
+    assert "holds samples drawn at 2 temperatures" in capsys.readouterr().err
+    assert cli_main(["check-verifier", f"{grader}:score", "--examples", str(path), "--temperature", "0.7"]) == 0
+    assert "prompts / samples  1 / 3" in capsys.readouterr().out
 
 JAR_GRADER = '''
 def loose(prompts, responses, rows):

@@ -22,6 +22,8 @@ def add_arguments(p) -> None:
                    help="bind a verifier that reads data rows to the rows of this recipe's task data (the prompts "
                         "the trainer builds from task, task_params, train_prompts, heldout_prompts and seed; a run's "
                         "config.toml works), so the prompts of the run's heldout_samples.jsonl find their rows")
+    p.add_argument("--temperature", type=float, default=None, metavar="T",
+                   help="keep only the samples drawn at this temperature (needed when a samples file holds several)")
     p.add_argument("--repeats", type=int, default=2, help="times each sample is scored (default 2)")
     p.add_argument("--threshold", type=float, default=0.5, help="score at or above which a sample counts as accepted")
     p.add_argument("--wall-time", type=float, default=None, help="seconds allowed per verifier call (default: no limit)")
@@ -51,7 +53,7 @@ def run(args) -> int:
     if args.recipe is not None and not os.path.isfile(args.recipe):
         raise FileNotFoundError(f"--recipe must be an existing TOML recipe, got {args.recipe!r}")
     verifier = load_verifier(args.verifier)
-    examples = read_examples(args.examples)
+    examples = read_examples(args.examples, temperature=args.temperature)
     if args.recipe is not None:
         verifier = bind_recipe_rows(verifier, args.verifier, args.recipe, examples, args.examples)
     report = check_verifier(verifier, examples, repeats=args.repeats, threshold=args.threshold,

@@ -98,7 +98,7 @@ def sample_pools(n: int = 4, *, max_prompts: int = 3, rewards: bool = True):
 
 
 # ----------------------------------------------------------------------------- examples
-def read_examples(path: str) -> list[dict]:
+def read_examples(path: str, *, temperature: float | None = None) -> list[dict]:
     """Per-sample JSON Lines ``{"prompt", "response", "reward"?, "label"?, "row"?}`` -> list of dicts.
 
     A line with ``prompt_id`` is a line of a samples file (``bonft sample``, a run's
@@ -107,16 +107,28 @@ def read_examples(path: str) -> list[dict]:
     describe the run and are left aside. Bytes that are not UTF-8, a line that is not one JSON object
     (or is nested too deeply), a key outside these, or a reward on some lines but not others is a
     ``ValueError`` naming the file and line.
+
+    temperature: keep only the samples-file lines drawn at this temperature. A file holding several
+                 temperatures needs it (pools mixing them would judge no one sampling setting); with it,
+                 a line without ``temperature`` or a temperature the file lacks is a ``ValueError``.
     """
+    if temperature is not None:
+        temperature = check_real("temperature", temperature)
     with open(path, "rb") as f:
         text = decode_utf8(f.read(), str(path))
     out = []
     with_reward = without_reward = None  # first line of each kind
+    temps: dict[float, int] = {}  # temperature -> number of lines
     for i, line in enumerate(text.split("\n"), 1):  # only "\n" ends a line: a JSON string may hold U+2028
         if not line.strip():
             continue
         row = parse_object(line, str(path), i, "an example")
         where = f"{path} line {i}"
+        t = _line_temperature(row, where, temperature is not None)
+        if t is not None:
+            temps[t] = temps.get(t, 0) + 1
+            if temperature is not None and t != temperature:
+                continue
         row = _from_samples_file(row, where) if "prompt_id" in row else row
         _check_keys(row, where)
         if _has_rewards(row):
@@ -124,12 +136,32 @@ def read_examples(path: str) -> list[dict]:
         else:
             without_reward = without_reward or i
         out.append(row)
+    listed = ", ".join(f"{t:g} ({c} lines)" for t, c in sorted(temps.items()))
+    if temperature is None and len(temps) > 1:
+        raise ValueError(f"{path} holds samples drawn at {len(temps)} temperatures, {listed}: pools mixing them "
+                         "judge no one sampling setting; choose one with --temperature T (read_examples(path, "
+                         "temperature=T))")
+    if temperature is not None and temperature not in temps:
+        raise ValueError(f"temperature={temperature:g} matches no line of {path}: its samples were drawn at {listed}")
     if not out:
         raise ValueError(f"examples file {path} must hold at least one example, got none")
     if with_reward and without_reward:
         raise ValueError(f"{path} line {without_reward} has no reward but line {with_reward} has one: give every "
                          f"sample a reward or none (the rewards give the labels and the best-of-k curve)")
     return out
+
+
+def _line_temperature(row: dict, where: str, chosen: bool) -> float | None:
+    """A samples-file line's temperature (None on other lines); with a temperature chosen, every line needs one."""
+    t = row.get("temperature") if "prompt_id" in row else None
+    if t is None:
+        if chosen:
+            raise ValueError(f"{where} has no temperature, so choosing a temperature cannot take effect: it applies "
+                             "to a samples file (bonft sample, a run's heldout_samples.jsonl); drop it")
+        return None
+    if isinstance(t, bool) or not isinstance(t, numbers.Real) or not math.isfinite(t):
+        raise ValueError(f"{where} has temperature {t!r}: a samples file gives a finite number")
+    return float(t)
 
 
 _SAMPLES_FILE_KEYS = ("prompt_id", "prompt", "response", "reward", "sample", "score", "temperature", "n_tokens", "answer")
@@ -462,9 +494,9 @@ def _problems(rep: VerifierReport, *, max_failure_rate: float, min_auc: float, b
     if n > 1 and rep.score_min == rep.score_max:
         rep.problems.append(f"constant scores: all {n} samples score {rep.score_min:g}, so best-of-k cannot select")
     if rep.n_labelled and rep.n_positive in (0, rep.n_labelled):
-        which = "correct" if rep.n_positive == 0 else "wrong"
+        which = "none" if rep.n_positive == 0 else "all"
         rep.problems.append(
-            f"one-sided labels: {rep.n_positive} of {rep.n_labelled} labelled samples are correct, none {which}, so "
+            f"one-sided labels: {which} of the {rep.n_labelled} labelled samples are correct, so "
             "agreement with the labels (ROC AUC) and over-optimisation (best-of-k against pass@k) cannot be judged; "
             "give examples with both correct and wrong responses"
         )
