@@ -220,3 +220,12 @@ def test_plan_model_mode_takes_the_first_n_prompts_of_a_prompts_file(tmp_path, c
     assert "--n-prompts applies to --model only" in capsys.readouterr().err
     assert main(["plan", "--samples", str(prompts), "--quiet"]) == 2  # only model mode has a progress bar to hide
     assert "--quiet applies to --model only (sampling from a model), got --quiet with --samples" in capsys.readouterr().err
+
+
+def test_a_named_temperature_field_must_be_in_the_file(tmp_path, capsys):
+    # a misspelt --temperature-field used to pool every temperature of the file into one pool without a word
+    path = tmp_path / "s.jsonl"
+    write_samples(path, ledger_rows(n_prompts=12, n_samples=4, temperatures=(0.7, 1.0), seed=1))
+    assert main(["plan", "--samples", str(path), "--temperature-field", "temp", "--n-boot", "20"]) == 2
+    assert "'temp'" in capsys.readouterr().err
+    assert main(["plan", "--samples", str(path), "--temperature-field", "temperature", "--n-boot", "20"]) == 0

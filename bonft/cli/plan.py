@@ -54,7 +54,8 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     f.add_argument("--prompt-field", default="prompt_id", help="default: prompt_id")
     f.add_argument("--score-field", default="score", help="default: score")
     f.add_argument("--reward-field", default="reward", help="default: reward")
-    f.add_argument("--temperature-field", default="temperature", help="default: temperature")
+    f.add_argument("--temperature-field", default=None,
+                   help="default: temperature (a field named here must be on every line)")
     f.add_argument("--tokens-field", default="n_tokens", help="response length field, for --budget-tokens (default: n_tokens)")
     f.add_argument("--sample-field", default="sample",
                    help="sample index field, optional; identical samples with distinct indices are not repeats (default: sample)")
@@ -200,7 +201,8 @@ def run(args) -> int:
         if not os.path.isfile(args.samples):
             raise FileNotFoundError(f"--samples file not found: {args.samples}")
         table = read_samples(args.samples, prompt_field=args.prompt_field, score_field=args.score_field,
-                             reward_field=args.reward_field, temperature_field=args.temperature_field,
+                             reward_field=args.reward_field, temperature_field=args.temperature_field or "temperature",
+                             temperature_required=args.temperature_field is not None,  # a field named must be there
                              tokens_field=args.tokens_field, duplicates="allow" if args.allow_duplicates else "warn",
                              answer_field=args.answer_field, sample_field=args.sample_field)
         if names:
