@@ -156,6 +156,21 @@ def test_compare_strategies_takes_an_int_or_any_iterable_of_ks():
         compare_strategies(["best_of_k"], ks=iter([]), rewards=r, scores=s)
 
 
+def test_a_strategy_that_never_wins_gets_an_exact_interval_not_a_zero_width_one():
+    # 20 prompts, every reward 0: each strategy's value is 0 on every prompt. Clopper & Pearson 1934, 0 successes
+    # in P trials, two-sided 95%: [0, 1 - 0.025^(1/P)] = [0, 0.16843] for P = 20 (valid for any law on [0, 1])
+    rng = np.random.default_rng(0)
+    r, s = np.zeros((20, 6)), rng.random((20, 6))
+    a = rng.integers(0, 3, (20, 6)).astype(str)
+    got = compare_strategies(["best_of_k", "majority_vote"], ks=[1, 4], rewards=r, scores=s, answers=a, n_boot=50)
+    for name in ("best_of_k", "majority_vote"):
+        np.testing.assert_array_equal(got.lo[name], [0.0, 0.0])
+        np.testing.assert_allclose(got.hi[name], [1 - 0.025 ** (1 / 20)] * 2, rtol=1e-12)
+        assert abs(got.hi[name][0] - 0.16843) < 1e-5
+    got = compare_strategies(["best_of_k"], ks=[1], rewards=r - 1, scores=s, n_boot=50)  # range unknown: as before
+    assert got.lo["best_of_k"][0] == got.hi["best_of_k"][0] == -1.0
+
+
 def test_trainer_registers_vote_objectives():
     # the registry's majority-vote credit and pool value are the library's, on host pools
     from bonft.trainer.objectives import OBJECTIVES, Pools

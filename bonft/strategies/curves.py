@@ -91,7 +91,8 @@ def compare_strategies(strategies, *, ks, rewards, scores=None, answers=None, co
     ints (read once, so a generator works). Values are the unbiased
     per-prompt estimates of :meth:`bonft.strategies.Strategy.estimate` (``max_subsets``, ``seed`` and
     ``conflicts`` go there); intervals are the paired
-    percentile bootstrap of :func:`bonft.estimate.bootstrap_ci` over prompts.
+    percentile bootstrap of :func:`bonft.estimate.bootstrap_ci` over prompts (with ``bounds=(0, 1)`` when every
+    reward lies in [0, 1], so a strategy that scores 0, or 1, on every prompt gets the exact interval).
 
     References: Efron & Tibshirani 1993; Hoeffding 1948.
     """
@@ -106,6 +107,10 @@ def compare_strategies(strategies, *, ks, rewards, scores=None, answers=None, co
     for key, val in (("scores", scores), ("answers", answers)):  # so can a field none of them reads
         if val is not None and not any(getattr(st, f"uses_{key}") for st in sts):
             raise _unread_field(key, [st.name for st in sts], val)
+    rows = [np.asarray(x, dtype=np.float64) for x in rewards]
+    # every strategy's value is a mean of rewards: with rewards in [0, 1] a column all at 0 (or 1) gets the exact
+    # interval of bootstrap_ci's bounds, not a zero-width one
+    bounds = (0.0, 1.0) if all(x.size == 0 or (x.min() >= 0 and x.max() <= 1) for x in rows) else None
     out = None
     for st in sts:
         opts = {key: val for key, val in {**given, "seed": seed}.items() if key in st.reads}
@@ -113,7 +118,7 @@ def compare_strategies(strategies, *, ks, rewards, scores=None, answers=None, co
                             answers=answers if st.uses_answers else None, **opts)
         if out is None:
             out = StrategyCurves(ks=np.asarray(ks), n_prompts=v.shape[0], names=[], confidence=confidence)
-        m, lo, hi = bootstrap_ci(v, confidence=confidence, n_boot=n_boot, seed=seed)
+        m, lo, hi = bootstrap_ci(v, confidence=confidence, n_boot=n_boot, seed=seed, bounds=bounds)
         out.names.append(st.name)
         out.mean[st.name], out.lo[st.name], out.hi[st.name] = m, lo, hi
         out.mc_se[st.name] = se.mean(0)
