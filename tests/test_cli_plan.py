@@ -179,11 +179,12 @@ def test_plan_model_mode_samples_as_long_as_the_run_did(tmp_path, monkeypatch, c
     save_checkpoint(tmp_path / "run", step=1, model=model, tokenizer=tok, optimizer=None,
                     config_toml=to_toml(TrainConfig(max_new_tokens=3, rl_steps=1)))
     save_model(model, tok, tmp_path / "plain")
-    lengths = []
+    lengths, truncations = [], []
     real = bonft.plan.from_model.sample
 
     def recording(*a, **kw):
         lengths.append(kw["max_new_tokens"])
+        truncations.append(kw["top_k"])
         return real(*a, **kw)
 
     monkeypatch.setattr(bonft.plan.from_model, "sample", recording)
@@ -194,6 +195,12 @@ def test_plan_model_mode_samples_as_long_as_the_run_did(tmp_path, monkeypatch, c
         assert main(["plan", "--model", str(tmp_path / model_dir), *common, *extra]) == 0
         assert set(lengths) == {want}, (model_dir, lengths)
         assert f"max_new_tokens {want} ({whence}" in capsys.readouterr().out
+    assert set(truncations) == {0}
+    truncations.clear()
+    assert main(["plan", "--model", str(tmp_path / "plain"), *common, "--top-k", "3"]) == 0
+    assert set(truncations) == {3}  # the sampler draws from the 3 most likely tokens
+    assert main(["plan", "--samples", str(tmp_path / "none.jsonl"), "--top-k", "3"]) == 2
+    assert "--top-k applies to --model only" in capsys.readouterr().err
 
 
 def test_plan_model_mode_takes_the_first_n_prompts_of_a_prompts_file(tmp_path, capsys):

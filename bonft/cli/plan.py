@@ -46,6 +46,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
                    help="longest response in tokens (default: a bonft checkpoint's or run's own max_new_tokens, "
                         f"else {PLAIN_MAX_NEW_TOKENS})")
     m.add_argument("--top-p", type=float, default=1.0, help="nucleus mass, 1 = none (default: 1.0)")
+    m.add_argument("--top-k", type=int, default=0, help="keep the k most likely tokens, before --top-p; 0 = all (default: 0)")
     m.add_argument("--batch-size", type=int, default=None, help="rows per generation chunk (default: all)")
     m.add_argument("--cache", metavar="DIR", default=None,
                    help="cache of sampled pools, one samples JSONL per (model, prompts, verifier, T, n, seed)")
@@ -142,7 +143,7 @@ def _check_lengths(args, table) -> None:
                              f"{args.samples} averages {mean:g} tokens{at}")
 
 
-_MODEL_ONLY = ("verifier", "n", "max_new_tokens", "top_p", "batch_size", "cache", "device", "quiet")  # sampling from a model
+_MODEL_ONLY = ("verifier", "n", "max_new_tokens", "top_p", "top_k", "batch_size", "cache", "device", "quiet")  # sampling from a model
 _FILE_FIELDS = ("prompt_field", "score_field", "reward_field", "temperature_field", "tokens_field", "sample_field",
                 "allow_duplicates")
 _INTERVALS = ("confidence", "n_boot", "seed")
@@ -251,7 +252,7 @@ def run(args) -> int:
         model, tokenizer = load_model(args.model, device=pick_device(args.device))
         temps = temps or parse_list("--temperatures", DEFAULT_TEMPERATURES, float)
         res, info = plan_model(model, tokenizer, prompts, verifier, temperatures=temps, n=args.n, seed=args.seed,
-                               top_p=args.top_p, max_new_tokens=max_new_tokens, batch_size=args.batch_size,
+                               top_p=args.top_p, top_k=args.top_k, max_new_tokens=max_new_tokens, batch_size=args.batch_size,
                                cache_dir=args.cache, verifier_name=vname, progress=not args.quiet,
                                confidence=args.confidence, n_boot=args.n_boot, **_plan_kwargs(args))
         if args.cache:

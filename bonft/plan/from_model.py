@@ -1,7 +1,7 @@
 """Model mode of the planner: draw pools at a grid of temperatures, score them, cache them on disk.
 
 One samples JSONL file per (model hash, prompts hash, verifier, temperature, n, seed,
-top_p, max_new_tokens) under ``cache_dir``, so a re-run with more temperatures samples
+top_p, top_k, max_new_tokens) under ``cache_dir``, so a re-run with more temperatures samples
 only the new ones. Each temperature gets its own seed derived from ``seed`` and T, so a
 cached pool is the same whichever other temperatures are asked for.
 
@@ -57,10 +57,12 @@ def _seed_for(seed: int, temperature: float, chunk: int) -> int:
 
 
 def cache_file(cache_dir, *, model_hash: str, prompts_hash: str, verifier: str, temperature: float, n: int,
-               seed: int, top_p: float, max_new_tokens: int) -> Path:
+               seed: int, top_p: float, max_new_tokens: int, top_k: int = 0) -> Path:
     """The cache file of one temperature's pools: ``plan-T{T}-n{n}-{key}.jsonl`` (key: sha256 of all the fields)."""
     fields = dict(model=model_hash, prompts=prompts_hash, verifier=verifier, temperature=round(float(temperature), 9),
                   n=n, seed=seed, top_p=round(float(top_p), 9), max_new_tokens=max_new_tokens, chunk=PROMPT_CHUNK)
+    if top_k:  # untruncated pools keep the keys they had before top_k existed
+        fields["top_k"] = top_k
     key = hashlib.sha256(json.dumps(fields, sort_keys=True).encode()).hexdigest()[:16]
     return Path(cache_dir) / f"plan-T{temperature:g}-n{n}-{key}.jsonl"
 
@@ -75,6 +77,7 @@ def draw_samples(
     n: int,
     seed: int = 0,
     top_p: float = 1.0,
+    top_k: int = 0,
     max_new_tokens: int = 32,
     batch_size: int | None = None,
     cache_dir: str | os.PathLike | None = None,
@@ -93,6 +96,7 @@ def draw_samples(
     n = check_bound("n", n, max=MAX_POOL, why="samples per prompt: a pool is sampled, scored and planned over at once")
     seed = check_seed(seed)
     top_p = check_fraction("top_p", top_p, open_low=True)
+    top_k = check_int("top_k", top_k, min=0)
     max_new_tokens = check_int("max_new_tokens", max_new_tokens, min=1)
     if isinstance(prompts, str) or not all(isinstance(p, str) for p in prompts):
         raise TypeError("prompts must be a sequence of strings")
@@ -111,7 +115,8 @@ def draw_samples(
         m_hash, p_hash = model_fingerprint(model, tokenizer), prompts_fingerprint(prompts)
         for t in temps:
             files[float(t)] = cache_file(cache_dir, model_hash=m_hash, prompts_hash=p_hash, verifier=verifier_name,
-                                         temperature=float(t), n=n, seed=seed, top_p=top_p, max_new_tokens=max_new_tokens)
+                                         temperature=float(t), n=n, seed=seed, top_p=top_p, max_new_tokens=max_new_tokens,
+                                         top_k=top_k)
     cols = {k: [] for k in ("prompt_keys", "scores", "rewards", "temperatures", "n_tokens")}
     info = {"sampled": [], "cached": [], "failed": 0, "no_rewards": False, "files": [str(f) for f in files.values()]}
 
@@ -136,7 +141,7 @@ def draw_samples(
         for c in range(0, len(prompts), PROMPT_CHUNK):
             bar.set_description(f"sampling T={t:g}")
             part = prompts[c : c + PROMPT_CHUNK]
-            out = sample(model, tokenizer, part, n=n, temperature=t, top_p=top_p, max_new_tokens=max_new_tokens,
+            out = sample(model, tokenizer, part, n=n, temperature=t, top_p=top_p, top_k=top_k, max_new_tokens=max_new_tokens,
                          seed=_seed_for(seed, t, c // PROMPT_CHUNK), batch_size=batch_size)
             flat_p = [p for p in part for _ in range(n)]  # (B, n) -> B*n rows, prompt-major
             flat_r = [txt for row in out.texts for txt in row]
@@ -176,6 +181,7 @@ def plan_model(
     n: int = 64,
     seed: int = 0,
     top_p: float = 1.0,
+    top_k: int = 0,
     max_new_tokens: int = 32,
     batch_size: int | None = None,
     cache_dir: str | os.PathLike | None = None,
@@ -193,7 +199,7 @@ def plan_model(
     if plan_kwargs.get("max_k") is not None and check_int("max_k", plan_kwargs["max_k"], min=1) > n:
         raise ValueError(f"max_k must be <= n (n={n}, the samples drawn per prompt), got max_k={plan_kwargs['max_k']}")
     table, info = draw_samples(model, tokenizer, prompts, verifier, temperatures=temperatures, n=n, seed=seed,
-                               top_p=top_p, max_new_tokens=max_new_tokens, batch_size=batch_size,
+                               top_p=top_p, top_k=top_k, max_new_tokens=max_new_tokens, batch_size=batch_size,
                                cache_dir=cache_dir, verifier_name=verifier_name, progress=progress)
     res = plan_samples(table, temperatures=temperatures, seed=seed, **plan_kwargs)
     res.mode = "model"  # pools drawn here, not read from a samples file
