@@ -190,3 +190,24 @@ def test_reward_model_input_errors_name_the_cause(tmp_path):
             RewardModel(tmp_path / "nopad")
     else:  # a transformers that adds no pad token: batches are padded with the eos token, inside the vocabulary
         assert RewardModel(tmp_path / "nopad").score(["2+2", "2+2? 4"]).shape == (2,)
+
+
+def test_code_runner_names_another_interpreter_when_it_picks_one(monkeypatch):
+    # As root, a virtual environment the sandbox user cannot run made CodeRunner pick the system's Python without a
+    # word: a correct "import numpy" solution came back crashed (ModuleNotFoundError).
+    from bonft.verifiers import CodeRunner
+
+    runner = CodeRunner({"p": "assert f() == 1"}, wall_time=2.0)
+    monkeypatch.setattr(runner, "_root", True)
+    monkeypatch.setattr(runner, "run_probe", lambda py: "crashed (Permission denied)" if py == sys.executable else None)
+    with pytest.warns(UserWarning, match=r"CodeRunner runs candidates with \S+, not this process's .*\(the sandbox user "
+                                         r"could not run .*\): modules installed only for this one .* pass python= to choose"):
+        chosen = runner._interpreter()
+    assert chosen != sys.executable
+    import warnings
+
+    chosen_runner = CodeRunner({"p": "assert f() == 1"}, wall_time=2.0, python=chosen)  # chosen by hand: no warning
+    monkeypatch.setattr(chosen_runner, "run_probe", lambda py: None)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        assert chosen_runner._interpreter() == chosen

@@ -63,6 +63,7 @@ import sys
 import tempfile
 import threading
 import time
+import warnings
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from queue import Queue
@@ -169,7 +170,7 @@ class CodeRunner:
     python:           interpreter for the candidates. Default: this one, or when
                       running as root one that the unprivileged sandbox uid can
                       execute (e.g. ``/usr/bin/python3`` when this one lives
-                      under ``/root``), found by trying them.
+                      under ``/root``), found by trying them; a UserWarning names it.
     isolate_network:  as root, give each candidate an empty network namespace.
     code_from_fence:  use the last fenced code block of a response when it has one.
     pool:             run candidates in a :class:`~bonft.verifiers.sandbox.pool.SandboxPool`:
@@ -489,6 +490,11 @@ class CodeRunner:
         for py in dict.fromkeys(options):
             r = self.run_probe(py)
             if r is None:
+                if py != sys.executable and self.python is None:
+                    failed = ", ".join(t.split(": ")[0] for t in tried)
+                    warnings.warn(f"CodeRunner runs candidates with {py}, not this process's {sys.executable} (the "
+                                  f"sandbox user could not run {failed}): modules installed only for this one (a "
+                                  "virtual environment's numpy) are missing to candidates; pass python= to choose")
                 return py
             tried.append(f"{py}: {r}")
         raise ValueError("python must be an interpreter the sandbox user can run; tried " + "; ".join(tried))
