@@ -76,6 +76,21 @@ def test_eval_and_sample_commands(tmp_path, capsys):
         assert "--n-prompts must be <= the held-out prompts of the split (4), got 500" in capsys.readouterr().err
     assert not (tmp_path / "x.jsonl").exists()
     assert main(["eval", str(run), "--n", "4", "--ks", "1", "--set", "max_new_tokens=2", "--set", "n_boot=50"]) == 0
+    # the served law: with top_k = 1 only the most likely token is ever kept, so every response of a prompt is the
+    # same and each has probability 1 under the truncated law (entropy exactly 0)
+    capsys.readouterr()
+    assert main(["eval", str(run), "--n", "4", "--ks", "1", "--top-k", "1", "--json", str(tmp_path / "k1.json")]) == 0
+    assert "top_k=1)" in capsys.readouterr().out
+    rep = json.loads((tmp_path / "k1.json").read_text())
+    assert (rep["top_k"], rep["top_p"], rep["distinct_answers"], rep["entropy"]) == (1, 1.0, 1.0, 0.0)
+    assert main(["sample", str(run), "--n", "3", "--top-k", "1", "-o", str(tmp_path / "k1.jsonl")]) == 0
+    by_prompt = {}
+    for line in (tmp_path / "k1.jsonl").read_text().splitlines():
+        r = json.loads(line)
+        by_prompt.setdefault(r["prompt_id"], set()).add(r["response"])
+    assert by_prompt and all(len(v) == 1 for v in by_prompt.values())
+    assert main(["eval", str(run), "--n", "4", "--ks", "1", "--top-p", "1.5"]) == 2
+    assert "--top-p must be in (0, 1], got --top-p=1.5" in capsys.readouterr().err
 
 
 @pytest.mark.parametrize(

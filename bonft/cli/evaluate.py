@@ -26,6 +26,10 @@ def add_common(p: argparse.ArgumentParser) -> None:
     p.add_argument("--n", type=int, default=64, help="samples per prompt (default: 64)")
     p.add_argument("--n-prompts", type=int, default=0, help="use the first this many held-out prompts (default: all)")
     p.add_argument("--seed", type=int, default=0, help="sampling seed (default: 0)")
+    p.add_argument("--top-p", type=float, default=None,
+                   help="nucleus of the samples, as served (default: the run's eval_top_p, else 1 = none)")
+    p.add_argument("--top-k", type=int, default=None,
+                   help="most likely tokens kept, before --top-p, as served (default: the run's eval_top_k, else 0 = all)")
     p.add_argument("--set", dest="overrides", action="append", default=[], metavar="KEY=VALUE",
                    help="override a key of the checkpoint's config, e.g. --set heldout_prompts=500 (repeatable)")
 
@@ -40,6 +44,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 def load_for_eval(args: argparse.Namespace, *, n: int, ks: list[int], temperature: float):
     """The checkpoint's config (its config.toml, else defaults) pointed at the checkpoint, and the Run."""
+    from bonft._core.checks import check_fraction, check_int
     from bonft.trainer.checkpoint import resolve_checkpoint  # loads torch: only when a command runs
     from bonft.trainer.config import (  # loads torch: only when a command runs
         FIELDS,
@@ -69,6 +74,10 @@ def load_for_eval(args: argparse.Namespace, *, n: int, ks: list[int], temperatur
                          f"--set heldout_prompts={args.n_prompts} draws more")
     values.update(start_from=str(ckpt), eval_samples=n, eval_ks=ks, eval_temperature=temperature,
                   eval_prompts=args.n_prompts, seed=values.get("seed", FIELDS["seed"].default))
+    if args.top_p is not None:
+        values["eval_top_p"] = check_fraction("--top-p", args.top_p, open_low=True)
+    if args.top_k is not None:
+        values["eval_top_k"] = check_int("--top-k", args.top_k, min=0)
     cfg = from_dict(values)
     return ckpt, cfg, build_run(cfg, training=False)
 
@@ -78,6 +87,7 @@ def load_for_eval(args: argparse.Namespace, *, n: int, ks: list[int], temperatur
 EVAL_KEYS = ("task", "task_params", "prompts_file", "train_prompts", "heldout_prompts", "verifier", "verifier_params",
              "eval_verifier", "eval_verifier_params", "seed", "device", "max_new_tokens", "confidence", "n_boot")
 _FLAG_KEYS = {"eval_samples": "--n", "eval_ks": "--ks", "eval_temperature": "--temperature(s)", "eval_prompts": "--n-prompts",
+              "eval_top_p": "--top-p", "eval_top_k": "--top-k",
               "threads": "the command itself (one thread)"}
 
 

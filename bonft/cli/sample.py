@@ -53,8 +53,8 @@ def run(args: argparse.Namespace) -> int:
         rep, raw = evaluate_policy(
             r.model, r.tokenizer, [e.prompt for e in held], verifiers={eval_verifier: r.verifiers[eval_verifier], which: r.verifiers[which]},
             eval_verifier=eval_verifier,
-            extract_answer=getattr(r.task, "extract_answer", None), n=n, ks=[1], temperature=t,
-            max_new_tokens=cfg.max_new_tokens, seed=Stream.SAMPLE_COMMAND.seed(args.seed, step=0), n_boot=10,
+            extract_answer=getattr(r.task, "extract_answer", None), n=n, ks=[1], temperature=t, top_p=cfg.eval_top_p,
+            top_k=cfg.eval_top_k, max_new_tokens=cfg.max_new_tokens, seed=Stream.SAMPLE_COMMAND.seed(args.seed, step=0), n_boot=10,
         )
         rows.append(sample_rows(raw, [e.prompt for e in held], temperature=t, score=which,
                                 extract_answer=getattr(r.task, "extract_answer", None)))

@@ -191,11 +191,10 @@ class TrainConfig:
     temperature: float = _f(1.0,
                             "Sampling temperature of the training samples; log-probs are taken at the same "
                             "temperature.", group="rl")
-    top_p: float = _f(1.0, "Nucleus sampling threshold of training samples (1 = off). Evaluation, `bonft eval` and "
-                      "`bonft sample` draw from the whole distribution (no nucleus) at `eval_temperature` or the "
-                      "command's temperature.", group="rl")
+    top_p: float = _f(1.0, "Nucleus sampling threshold of training samples (1 = off); evaluation uses eval_top_p.",
+                      group="rl")
     top_k: int = _f(0, "Keep the top_k most likely tokens of the training samples' distribution, renormalised, before "
-                    "top_p (0 = all); the training log-probs score the same truncated law. Evaluation does not truncate.",
+                    "top_p (0 = all); the training log-probs score the same truncated law. Evaluation uses eval_top_k.",
                     group="rl")
     max_new_tokens: int = _f(8, "Longest response sampled (tokens, EOS included).", group="rl")
     lr: float = _f(1e-4,
@@ -263,6 +262,9 @@ class TrainConfig:
     eval_ks: list = _f([1, 4, 16, 32],
                        "k values of the best-of-k / pass@k curves (each <= eval_samples).", group="eval")
     eval_temperature: float = _f(1.0, "Sampling temperature at evaluation.", group="eval")
+    eval_top_p: float = _f(1.0, "Nucleus of the evaluation samples (1 = none): set it, and eval_top_k, to what you serve "
+                           "with, so that pass@k and best-of-k are those of the served law.", group="eval")
+    eval_top_k: int = _f(0, "Most likely tokens kept in the evaluation samples, before eval_top_p (0 = all).", group="eval")
     eval_prompts: int = _f(0,
                            "Evaluate on the first this many held-out prompts; 0 = all heldout_prompts.", group="eval")
     confidence: float = _f(0.95, "Confidence level of the bootstrap intervals.", group="eval")
@@ -375,6 +377,8 @@ def validate(c: TrainConfig) -> None:
         check_positive(name, getattr(c, name))
     check_fraction("top_p", c.top_p, open_low=True)
     check_int("top_k", c.top_k, min=0)
+    check_fraction("eval_top_p", c.eval_top_p, open_low=True)
+    check_int("eval_top_k", c.eval_top_k, min=0)
     check_fraction("confidence", c.confidence, open_low=True, open_high=True)
     if not isinstance(c.eval_ks, (list, tuple)) or not c.eval_ks:
         raise TypeError(f"eval_ks must be a non-empty list of ints, got {c.eval_ks!r}")

@@ -58,6 +58,8 @@ class EvalReport:
     by_group: dict = field(default_factory=dict)  # prompt group (e.g. task family) -> {"n_prompts", "pass_at_k" means}
     eval_verifier: str = "exact"  # the verifier whose rewards define pass@k (and every best-of-k row's reward)
     verifier: str = ""  # the training verifier: its best-of-k row is marked "[verifier]"
+    top_p: float = 1.0  # the nucleus the samples were drawn from (1 = none)
+    top_k: int = 0  # the most likely tokens kept (0 = all)
 
     def to_dict(self) -> dict:
         return {k: getattr(self, k) for k in self.__dataclass_fields__}
@@ -93,7 +95,8 @@ class EvalReport:
             rows.append(f"{'pass@k ' + g:{width}}" + "".join(f"{m:>20.3f}" for m in d["pass_at_k"]) + f"   ({d['n_prompts']} prompts)")
         rows.append(
             f"distinct answers/prompt {self.distinct_answers:.2f}   entropy {self.entropy:.2f} nats/response   "
-            f"length {self.mean_length:.2f} tokens   ({self.n_prompts} prompts x {self.n_samples} samples, T={self.temperature:g})"
+            f"length {self.mean_length:.2f} tokens   ({self.n_prompts} prompts x {self.n_samples} samples, T={self.temperature:g}"
+            + (f", top_k={self.top_k}" if self.top_k else "") + (f", top_p={self.top_p:g}" if self.top_p < 1 else "") + ")"
         )
         if not honest:
             rows.append(f"intervals n/a: {self.n_prompts} prompt(s); a bootstrap over prompts needs at least {MIN_BOOT_PROMPTS}")
@@ -119,6 +122,8 @@ def evaluate_policy(
     n: int = 64,
     ks: Sequence[int] = (1, 4, 16, 32),
     temperature: float = 1.0,
+    top_p: float = 1.0,
+    top_k: int = 0,
     max_new_tokens: int = 8,
     seed: int = 0,
     step: int = 0,
@@ -143,17 +148,18 @@ def evaluate_policy(
     validated arguments (the trainer's config, the eval command's options).
     """
     raw = collect_pools(model, tokenizer, prompts, verifiers=verifiers, extract_answer=extract_answer, n=n,
-                        temperature=temperature, max_new_tokens=max_new_tokens, seed=seed, rows_per_chunk=rows_per_chunk,
-                        eval_verifier=eval_verifier)
+                        temperature=temperature, top_p=top_p, top_k=top_k, max_new_tokens=max_new_tokens, seed=seed,
+                        rows_per_chunk=rows_per_chunk, eval_verifier=eval_verifier)
     report = report_from_pools(raw, ks=ks, temperature=temperature, seed=seed, step=step, confidence=confidence,
-                               n_boot=n_boot, groups=groups, eval_verifier=eval_verifier, verifier=verifier)
+                               n_boot=n_boot, groups=groups, eval_verifier=eval_verifier, verifier=verifier,
+                               top_p=top_p, top_k=top_k)
     return report, raw
 
 
 @torch.no_grad()
 def collect_pools(model: Any, tokenizer: Any, prompts: Sequence[str], *, verifiers: dict[str, Callable],
                   extract_answer: Callable[[str], Any] | None = None, n: int = 64, temperature: float = 1.0,
-                  max_new_tokens: int = 8, seed: int = 0, rows_per_chunk: int = 4096,
+                  top_p: float = 1.0, top_k: int = 0, max_new_tokens: int = 8, seed: int = 0, rows_per_chunk: int = 4096,
                   seeds: Sequence[int] | None = None, eval_verifier: str = "exact") -> dict:
     """The sampling and scoring half of :func:`evaluate_policy`: P prompts -> pools of n.
 
@@ -167,11 +173,11 @@ def collect_pools(model: Any, tokenizer: Any, prompts: Sequence[str], *, verifie
         raise ValueError(f"verifiers must hold the evaluation verifier {eval_verifier!r} (its rewards define pass@k), got {sorted(verifiers)}")
     P = len(prompts)
     if seeds is not None:
-        smp = sample(model, tokenizer, list(prompts), seeds=seeds, n=n, temperature=temperature,
-                     max_new_tokens=max_new_tokens)
+        smp = sample(model, tokenizer, list(prompts), seeds=seeds, n=n, temperature=temperature, top_p=top_p,
+                     top_k=top_k, max_new_tokens=max_new_tokens)
     else:
-        smp = sample(model, tokenizer, list(prompts), n=n, temperature=temperature, max_new_tokens=max_new_tokens,
-                     seed=seed, batch_size=rows_per_chunk)
+        smp = sample(model, tokenizer, list(prompts), n=n, temperature=temperature, top_p=top_p, top_k=top_k,
+                     max_new_tokens=max_new_tokens, seed=seed, batch_size=rows_per_chunk)
     flat_prompts = [p for p in prompts for _ in range(n)]  # row b*n + i is sample i of prompt b
     flat_texts = [t for row in smp.texts for t in row]
     raw: dict = {"texts": smp.texts, "n_tokens": smp.response_valid.sum(-1).cpu().numpy(),  # (P, n)
@@ -244,7 +250,8 @@ def merge_pools(parts: Sequence[dict]) -> dict:
 
 def report_from_pools(raw: dict, *, ks: Sequence[int], temperature: float, seed: int = 0, step: int = 0,
                       confidence: float = 0.95, n_boot: int = 1000, groups: Sequence[str] | None = None,
-                      eval_verifier: str = "exact", verifier: str | None = None) -> EvalReport:
+                      eval_verifier: str = "exact", verifier: str | None = None, top_p: float = 1.0,
+                      top_k: int = 0) -> EvalReport:
     """The summarising half of :func:`evaluate_policy`: estimators and bootstrap CIs over all pools."""
     rewards, n_tokens = raw["rewards"], raw["n_tokens"]
     P, n = rewards.shape
@@ -271,6 +278,7 @@ def report_from_pools(raw: dict, *, ks: Sequence[int], temperature: float, seed:
         mean_reward=float(rewards.mean()), mean_length=float(n_tokens.mean()),
         distinct_answers=float(raw["distinct"].mean()), entropy=float(-raw["seq_logp"].mean()),
         verifier_failures=int(raw["failures"]), by_group=by_group, eval_verifier=eval_verifier, verifier=verifier or "",
+        top_p=float(top_p), top_k=int(top_k),
     )
 
 
@@ -295,8 +303,8 @@ def evaluate_run(run: Run, step: int, *, samples_to: Path | None = None) -> Eval
     if b > a:
         raw = collect_pools(run.module, run.tokenizer, [e.prompt for e in held[a:b]], verifiers=vers,
                             extract_answer=getattr(run.task, "extract_answer", None), n=cfg.eval_samples,
-                            temperature=cfg.eval_temperature, max_new_tokens=cfg.max_new_tokens,
-                            seeds=[Stream.EVALUATION.for_prompt(cfg.seed, step=0, slot=j) for j in range(a, b)],
+                            temperature=cfg.eval_temperature, top_p=cfg.eval_top_p, top_k=cfg.eval_top_k,
+                            max_new_tokens=cfg.max_new_tokens, seeds=[Stream.EVALUATION.for_prompt(cfg.seed, step=0, slot=j) for j in range(a, b)],
                             eval_verifier=eval_verifier)
     pools = gather_objects(raw, run.ctx)
     merged, problem = (merge_pools(pools), None) if run.is_main else (None, None)
@@ -312,7 +320,8 @@ def evaluate_run(run: Run, step: int, *, samples_to: Path | None = None) -> Eval
         return None
     report = report_from_pools(merged, eval_verifier=eval_verifier, verifier=verifier, ks=cfg.eval_ks, temperature=cfg.eval_temperature,
                              seed=Stream.EVALUATION.seed(cfg.seed, step=0), step=step, confidence=cfg.confidence,
-                             n_boot=cfg.n_boot, groups=[(e.meta or {}).get("family", "all") for e in held])
+                             n_boot=cfg.n_boot, groups=[(e.meta or {}).get("family", "all") for e in held],
+                             top_p=cfg.eval_top_p, top_k=cfg.eval_top_k)
     if samples_to is not None:
         rows = sample_rows(merged, [e.prompt for e in held], temperature=cfg.eval_temperature,
                            score=verifier if verifier in merged["scores"] else eval_verifier,
