@@ -4,6 +4,7 @@ from __future__ import annotations
 import argparse
 from pathlib import Path
 
+from bonft._core.checks import check_fraction, check_int, check_positive
 from bonft.cli.options import check_output_paths, check_seed, make_plot_dir, parse_list, write_json_atomic
 
 HELP = "evaluate a checkpoint: pass@k and best-of-k (per verifier) with CIs on held-out prompts"
@@ -44,7 +45,6 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 def load_for_eval(args: argparse.Namespace, *, n: int, ks: list[int], temperature: float):
     """The checkpoint's config (its config.toml, else defaults) pointed at the checkpoint, and the Run."""
-    from bonft._core.checks import check_fraction, check_int
     from bonft.trainer.checkpoint import resolve_checkpoint  # loads torch: only when a command runs
     from bonft.trainer.config import (  # loads torch: only when a command runs
         FIELDS,
@@ -121,7 +121,6 @@ def announce(r, *, n: int, temperatures: list[float]) -> None:
 def run(args: argparse.Namespace) -> int:
     import torch
 
-    from bonft._core.checks import check_int, check_positive
     from bonft.trainer.evaluation import evaluate_run  # loads torch: only when a command runs
 
     check_output_paths(args)  # before the sampling: a wrong --json or --plot-dir found at the end wastes it

@@ -48,6 +48,7 @@ import numpy as np
 from bonft._core.checks import check_int, check_real
 from bonft._core.jsonl import decode_utf8, parse_object
 from bonft.estimate import best_of_k_per_prompt, default_ks, pass_at_k_per_prompt
+from bonft.verifiers.base import Verdicts
 from bonft.verifiers.fields import bind_rows, needed_fields, reads_rows
 from bonft.verifiers.report import VerifierReport, roc_auc
 from bonft.verifiers.scoring import score_batch
@@ -469,8 +470,6 @@ def check_verifier(
 
 def _score_alone(verifier: Any, pool: Mapping, timeout: float | None):
     """The pool's samples scored one per call, as a Verdicts of the pool (a score must not depend on its batch)."""
-    from bonft.verifiers.base import Verdicts
-
     vs = [score_batch(verifier, [pool["prompt"]], [r], timeout=timeout) for r in pool["responses"]]
     rewards = None if any(v.rewards is None for v in vs) else np.concatenate([v.rewards for v in vs])
     return Verdicts(scores=np.concatenate([v.scores for v in vs]), rewards=rewards,
