@@ -61,6 +61,27 @@ def test_entropy_estimate_is_mean_negative_logprob(setup):
     assert raw["texts"] == smp.texts
 
 
+def test_a_verifier_that_fails_on_every_sample_is_an_error_not_a_row_of_zeros(setup):
+    # an evaluation verifier that cannot run (a missing interpreter, a KeyError) used to print pass@k 0.000 and exit 0
+    from bonft.verifiers.scoring import VerifierError
+
+    tok, model, _, held = setup
+    prompts = [e.prompt for e in held[:3]]
+
+    def broken(p, r):
+        raise KeyError("gold")
+
+    ok = lambda p, r: np.zeros(len(r))  # noqa: E731
+    for verifiers in ({"exact": broken}, {"exact": ok, "proxy": broken}):
+        with pytest.raises(VerifierError, match=r"the verifier '(exact|proxy)' failed on every one of the 12 evaluation "
+                                                r"samples \(.*KeyError.*gold.*\), so its row would read 0"):
+            evaluate_policy(model, tok, prompts, verifiers=verifiers, n=4, ks=[1], max_new_tokens=3, seed=0, n_boot=20)
+    flaky = lambda p, r: [1.0] + [float("nan")] * (len(r) - 1)  # noqa: E731  (11 of 12 fail: counted, not an error)
+    rep, _ = evaluate_policy(model, tok, prompts, verifiers={"exact": flaky}, n=4, ks=[1], max_new_tokens=3, seed=0,
+                             n_boot=20)
+    assert rep.verifier_failures == 11
+
+
 def test_report_table_prints_no_interval_below_ten_prompts():
     # intervals over fewer than MIN_BOOT_PROMPTS prompts print n/a, with the count
     from bonft.trainer.evaluation import EvalReport

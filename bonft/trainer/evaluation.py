@@ -30,7 +30,7 @@ from bonft.io import write_samples
 from bonft.trainer.distributed import broadcast_object, gather_objects, shard_bounds
 from bonft.trainer.run import Stream
 from bonft.verifiers.roles import check_eval_rewards
-from bonft.verifiers.scoring import score_batch
+from bonft.verifiers.scoring import VerifierError, score_batch
 
 if TYPE_CHECKING:  # annotations only
     from bonft.trainer.run import Run
@@ -150,6 +150,7 @@ def evaluate_policy(
     raw = collect_pools(model, tokenizer, prompts, verifiers=verifiers, extract_answer=extract_answer, n=n,
                         temperature=temperature, top_p=top_p, top_k=top_k, max_new_tokens=max_new_tokens, seed=seed,
                         rows_per_chunk=rows_per_chunk, eval_verifier=eval_verifier)
+    check_verdicts(raw)
     report = report_from_pools(raw, ks=ks, temperature=temperature, seed=seed, step=step, confidence=confidence,
                                n_boot=n_boot, groups=groups, eval_verifier=eval_verifier, verifier=verifier,
                                top_p=top_p, top_k=top_k)
@@ -182,10 +183,12 @@ def collect_pools(model: Any, tokenizer: Any, prompts: Sequence[str], *, verifie
     flat_texts = [t for row in smp.texts for t in row]
     raw: dict = {"texts": smp.texts, "n_tokens": smp.response_valid.sum(-1).cpu().numpy(),  # (P, n)
                  "seq_logp": (smp.token_logprobs * smp.response_valid).sum(-1).cpu().double().numpy(),  # (P, n)
-                 "scores": {}, "rewards": None, "failures": 0}
+                 "scores": {}, "rewards": None, "failures": 0, "failed_by": {}, "cause": {}}
     for name, ver in verifiers.items():
         v = score_batch(ver, flat_prompts, flat_texts)
         raw["failures"] += v.n_failed
+        raw["failed_by"][name] = int(v.n_failed)
+        raw["cause"][name] = next((r for r in v.reasons if r), None)
         raw["scores"][name] = v.scores.reshape(P, n)
         if name == eval_verifier:
             raw["rewards"] = (v.rewards if v.rewards is not None else v.scores).reshape(P, n)
@@ -245,7 +248,20 @@ def merge_pools(parts: Sequence[dict]) -> dict:
     cat = {key: np.concatenate([p[key] for p in parts]) for key in ("n_tokens", "seq_logp", "rewards", "distinct")}
     return {**cat, "texts": [row for p in parts for row in p["texts"]],
             "scores": {name: np.concatenate([p["scores"][name] for p in parts]) for name in parts[0]["scores"]},
-            "failures": sum(p["failures"] for p in parts)}
+            "failures": sum(p["failures"] for p in parts),
+            "failed_by": {name: sum(p["failed_by"][name] for p in parts) for name in parts[0]["failed_by"]},
+            "cause": {name: next((p["cause"][name] for p in parts if p["cause"][name]), None) for name in parts[0]["cause"]}}
+
+
+def check_verdicts(raw: dict) -> None:
+    """A verifier that failed on every sample gives a row of zeros that reads as a policy that never succeeds:
+    a ``VerifierError`` naming it and the first cause instead (a share of failures is counted in the report)."""
+    total = int(np.asarray(raw["n_tokens"]).size)
+    for name, failed in raw["failed_by"].items():
+        if total and failed >= total:
+            raise VerifierError(f"the verifier {name!r} failed on every one of the {total} evaluation samples "
+                                f"({raw['cause'][name]}), so its row would read 0 for every prompt as if no response "
+                                f"were right; fix it (bonft check-verifier tests one on a few samples) and evaluate again")
 
 
 def report_from_pools(raw: dict, *, ks: Sequence[int], temperature: float, seed: int = 0, step: int = 0,
@@ -308,14 +324,17 @@ def evaluate_run(run: Run, step: int, *, samples_to: Path | None = None) -> Eval
                             eval_verifier=eval_verifier)
     pools = gather_objects(raw, run.ctx)
     merged, problem = (merge_pools(pools), None) if run.is_main else (None, None)
-    if run.is_main and run.roles is not None:
-        try:  # the training verifier as the default evaluation verifier: 0/1 rewards only
-            check_eval_rewards(merged["rewards"], run.roles)
+    if run.is_main:
+        try:
+            check_verdicts(merged)
+            if run.roles is not None:  # the training verifier as the default evaluation verifier: 0/1 rewards only
+                check_eval_rewards(merged["rewards"], run.roles)
         except ValueError as e:
-            problem = str(e)
-    problem = broadcast_object(problem, run.ctx)  # every rank stops, none waits for a peer that left
-    if problem is not None:
-        raise ValueError(problem)
+            problem = e
+    said = None if problem is None else (type(problem) is VerifierError, str(problem))
+    said = broadcast_object(said, run.ctx)  # every rank stops, none waits for a peer that left
+    if said is not None:
+        raise (VerifierError if said[0] else ValueError)(said[1])
     if not run.is_main:
         return None
     report = report_from_pools(merged, eval_verifier=eval_verifier, verifier=verifier, ks=cfg.eval_ks, temperature=cfg.eval_temperature,
