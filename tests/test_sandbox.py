@@ -221,6 +221,15 @@ def test_extract_code():
     assert extract_code("x = 3") == "x = 3"
 
 
+@pytest.mark.parametrize("code", ["", "   \n\n", "# TODO write tests", "# a\n    # b\n"])
+def test_tests_without_a_statement_are_refused(code):
+    # common practice (no source): code with no statement runs to the end for any solution, so it cannot be a reward
+    with pytest.raises(ValueError, match=r"tests\['p'\] must hold at least one statement, got none \(only blanks or "
+                                         r"comments\): any code would pass"):
+        CodeRunner({"p": code})
+    assert CodeRunner({"p": "# a comment\nassert f() == 1"}).tests == {"p": "# a comment\nassert f() == 1"}
+
+
 def test_runner_arguments_are_validated():
     with pytest.raises(ValueError, match=r"tests\['p'\] must be valid Python, got a SyntaxError at line 1"):
         CodeRunner({"p": "assert ("})

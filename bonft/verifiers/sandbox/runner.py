@@ -51,6 +51,7 @@ The sandbox, from the outside in, for each candidate's process:
 """
 from __future__ import annotations
 
+import ast
 import ctypes
 import json
 import os
@@ -142,6 +143,20 @@ def _int(name: str, value: Any, *, lo: int, hi: int) -> int:
     return check_int(name, value, min=lo, max=hi)
 
 
+def check_tests_code(code: str) -> None:
+    """Refuse test code that is not Python, or has no statement (blank or comments only: any code would pass it).
+
+    The ``ValueError`` message starts with ``must ...``, for the caller to put the prompt in front.
+    """
+    try:
+        tree = compile(code, "tests.py", "exec", ast.PyCF_ONLY_AST)
+    except SyntaxError as e:
+        raise ValueError(f"must be valid Python, got a SyntaxError at line {e.lineno}: {e.msg}") from None
+    if not tree.body:
+        raise ValueError("must hold at least one statement, got none (only blanks or comments): any code would pass "
+                         "these tests; give the prompt asserts that call the solution")
+
+
 class CodeRunner:
     """Run each response as a Python solution against the prompt's unit tests.
 
@@ -157,7 +172,8 @@ class CodeRunner:
                       ``e.message``). The tests pass when they run to the end
                       and the candidate's process then ends normally; an exit
                       (even status 0), an exception or a limit hit before that
-                      is not a pass.
+                      is not a pass. Test code with no statement (blank or
+                      comments only) is a ValueError: any code would pass it.
     wall_time:        seconds of wall clock per candidate (then SIGKILL -> ``timeout``).
     cpu_time:         CPU seconds (RLIMIT_CPU; SIGXCPU -> ``limit-exceeded``);
                       default ``wall_time + 1`` so that a busy loop reads as a timeout.
@@ -198,9 +214,9 @@ class CodeRunner:
             if not isinstance(p, str) or not isinstance(code, str):
                 raise TypeError(f"tests must map str prompts to str test code, got {type(p).__name__} -> {type(code).__name__}")
             try:
-                compile(code, "tests.py", "exec")
-            except SyntaxError as e:
-                raise ValueError(f"tests[{p!r:.40}] must be valid Python, got a SyntaxError at line {e.lineno}: {e.msg}") from None
+                check_tests_code(code)
+            except ValueError as e:
+                raise ValueError(f"tests[{p!r:.40}] {e}") from None
         self.tests = dict(tests)
         self.wall_time = _real("wall_time", wall_time, minimum=0.1)
         self.cpu_time = self.wall_time + 1 if cpu_time is None else _real("cpu_time", cpu_time, minimum=1)
