@@ -204,6 +204,21 @@ def test_unit_tests_from_the_row_run_in_code_runner(tmp_path):
         UnitTests()(["a"], ["b"])
 
 
+@pytest.mark.parametrize("tests, message", [
+    ("# TODO write tests", r"d.jsonl line 2: field 'tests' of prompt 'b' must hold at least one statement, got none "
+                           r"\(only blanks or comments\): any code would pass"),
+    ("   ", r"d.jsonl line 2: field 'tests' of prompt 'b' must hold at least one statement"),
+    (["# one", "# two"], r"d.jsonl line 2: field 'tests' of prompt 'b' must hold at least one statement"),
+    ("assert total(", r"d.jsonl line 2: field 'tests' of prompt 'b' must be valid Python, got a SyntaxError at line 1"),
+    (None, r"d.jsonl line 2: field 'tests' is null, and verifier UnitTests needs it"),
+])
+def test_unit_tests_refuse_rows_any_code_would_pass_naming_the_line(tmp_path, tests, message):
+    rows = [{"q": "a", "tests": "assert total() == 1"}, {"q": "b", "tests": tests}]
+    task = UserTask(data=write_jsonl(tmp_path / "d.jsonl", rows), prompt_field="q")
+    with pytest.raises(ValueError, match=message):
+        task.bind_verifier(UnitTests(field="tests"), task.examples)
+
+
 def test_sampler_and_training_forward_see_the_chat_template_tokens(tmp_path):
     from bonft.generation import encode_responses, sample
     from bonft.trainer.models import build_tiny_model

@@ -24,7 +24,7 @@ from __future__ import annotations
 import inspect
 from typing import Any, Callable, Mapping, Sequence
 
-from bonft.verifiers.sandbox.runner import CodeRunner
+from bonft.verifiers.sandbox.runner import CodeRunner, check_tests_code
 
 
 def needed_fields(verifier: Any) -> dict[str, str]:
@@ -50,12 +50,16 @@ def _label(verifier: Any) -> str:
     return getattr(verifier, "__name__", None) or type(verifier).__name__
 
 
-def _takes_rows(fn: Any) -> bool:
+def _takes(fn: Any, name: str) -> bool:
     try:
         params = inspect.signature(fn).parameters
     except (TypeError, ValueError):
         return False
-    return "rows" in params
+    return name in params
+
+
+def _takes_rows(fn: Any) -> bool:
+    return _takes(fn, "rows")
 
 
 def reads_rows(verifier: Any) -> bool:
@@ -71,7 +75,7 @@ def bind_rows(verifier: Any, rows: Sequence[tuple[str, Mapping[str, Any], str]])
           (``"data.jsonl line 4"``), for error messages.
 
     Every field the verifier needs (:func:`needed_fields`) is checked on every
-    row first; a missing or None value raises ``ValueError`` naming the field,
+    row first; a missing or None (JSON null) value raises ``ValueError`` naming the field,
     the row and why the verifier needs it.
     """
     if not callable(verifier) and not hasattr(verifier, "bind"):
@@ -82,10 +86,13 @@ def bind_rows(verifier: Any, rows: Sequence[tuple[str, Mapping[str, Any], str]])
         for prompt, fields, where in rows:
             if fields.get(f) is None:
                 have = sorted(k for k in fields if fields[k] is not None)
-                raise ValueError(f"{where}: field {f!r} is missing, and verifier {_label(verifier)} needs it ({why}); "
+                state = "is null" if f in fields else "is missing"
+                raise ValueError(f"{where}: field {f!r} {state}, and verifier {_label(verifier)} needs it ({why}); "
                                  f"the row has {have}: add the field to every row or map it (task_params)")
     by_prompt = {p: dict(fields) for p, fields, _ in rows}
     if hasattr(verifier, "bind"):
+        if _takes(verifier.bind, "where"):  # a bind that can name the row of a bad value
+            return verifier.bind(by_prompt, where={p: where for p, _, where in rows})
         return verifier.bind(by_prompt)
     if _takes_rows(verifier):
         def with_rows(prompts: Sequence[str], responses: Sequence[str]) -> Any:
@@ -122,21 +129,25 @@ class UnitTests:
         CodeRunner({}, **self.runner_options)  # bad options fail here, before any data is read
         self.fields = {field: "the prompt's unit tests, Python source with assert statements run against each response"}
 
-    def bind(self, rows: Mapping[str, Mapping[str, Any]]) -> CodeRunner:
-        """The runner for these rows (prompt -> row fields)."""
+    def bind(self, rows: Mapping[str, Mapping[str, Any]], *, where: Mapping[str, str] | None = None) -> CodeRunner:
+        """The runner for these rows (prompt -> row fields). Tests that are not Python or have no statement
+        (blank or comments only: any code would pass) are a ValueError naming the prompt, and the row's
+        place in the data when ``where`` (prompt -> ``"data.jsonl line 4"``) gives it."""
         tests = {}
         for prompt, fields in rows.items():
+            at = f"{where[prompt]}: " if where and prompt in where else ""
             value = fields.get(self.field)
             if isinstance(value, (list, tuple)) and all(isinstance(v, str) for v in value):
                 value = "\n".join(value)
-            if not isinstance(value, str) or not value.strip():
-                raise ValueError(f"field {self.field!r} must hold the prompt's unit tests as Python source (a str or a list "
+            if not isinstance(value, str):
+                raise ValueError(f"{at}field {self.field!r} must hold the prompt's unit tests as Python source (a str or a list "
                                  f"of str), got {type(value).__name__} {value!r:.60} for prompt {prompt!r:.60}")
+            try:
+                check_tests_code(value)
+            except ValueError as e:
+                raise ValueError(f"{at}field {self.field!r} of prompt {prompt!r:.60} {e}") from None
             tests[prompt] = value
-        try:
-            return CodeRunner(tests, **self.runner_options)
-        except ValueError as e:
-            raise ValueError(f"field {self.field!r}: {e}") from None
+        return CodeRunner(tests, **self.runner_options)
 
     def __call__(self, prompts: Sequence[str], responses: Sequence[str]) -> Any:
         raise TypeError(f"UnitTests(field={self.field!r}) reads each prompt's tests from its data row: bind it to the rows "
