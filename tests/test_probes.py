@@ -225,9 +225,53 @@ def test_tests_that_call_no_solution_function_are_blamed_not_the_runner(tmp_path
 
 @pytest.mark.parametrize("code", ["", "   \n", "# to do\n"])
 def test_empty_tests_are_refused(code):
-    with pytest.raises(ValueError, match=r"the tests of prompt 'p' are empty \(no statement, only blanks or comments\): "
-                                         r"any code passes them"):
-        probe_code_tests({"p": code, "q": "assert f(1) == 2"})
+    with pytest.raises(ValueError, match=r"the tests of prompt 'p' must hold at least one statement, got none \(only "
+                                         r"blanks or comments\): any code would pass"):
+        probe_code_tests({"p": code, "q": "assert f(1) == 2"}, runner=CodeRunner({}))
+
+
+# hidden random inputs compared with a reference, the reference called on the same list *after* the solution:
+# CodeRunner copies a list the solution changed in place back into the tests' list (Python's semantics), so a
+# solution that empties it is compared with sum([]) == 0 (worked out by hand)
+_SUM_HEAD = ("assert total([1, 2]) == 3\nassert total([]) == 0\nassert total([0, 3, 4]) == 7\nimport random\n"
+             "def _ref_total(xs):\n    return sum(xs)\nrng = random.Random(7)\nfor _ in range(15):\n"
+             "    args = ([rng.randint(0, 9) for _ in range(rng.randint(0, 5))],)\n")
+_SUM_TAIL = "    assert type(r) is type(e) and r == e, (args, r, e)\n"
+CHANGED = {
+    "reference after the solution": _SUM_HEAD + "    r = total(*args)\n    e = _ref_total(*args)\n" + _SUM_TAIL,
+    "reference first": _SUM_HEAD + "    e = _ref_total(*args)\n    r = total(*args)\n" + _SUM_TAIL,
+    "solution on a copy": _SUM_HEAD + "    r = total(list(args[0]))\n    e = _ref_total(*args)\n" + _SUM_TAIL,
+}
+
+
+def test_tests_that_compute_the_expected_value_from_a_changed_argument_are_caught():
+    runner = CodeRunner(CHANGED, wall_time=3.0, memory_mb=256)
+    honest = runner.run(list(CHANGED), ["def total(xs):\n    return sum(xs)"] * 3)
+    assert [r.status for r in honest] == ["pass"] * 3, [r.reason for r in honest]
+    # the hand-written forgery: memorise the visible asserts, empty the list otherwise
+    forged = "def total(xs):\n    memo = {(1, 2): 3, (): 0, (0, 3, 4): 7}\n    if tuple(xs) in memo:\n" \
+             "        return memo[tuple(xs)]\n    xs.clear()\n    return 0\n"
+    assert [r.status for r in runner.run(list(CHANGED), [forged] * 3)] == ["pass", "fail", "fail"]
+    report = probe_code_tests(runner)
+    got = {r.prompt: r for r in report.results}
+    assert got["reference after the solution"].passed == ("changed_arguments",)
+    assert got["reference after the solution"].advice == (
+        "a solution that empties or overwrites its list/dict/set arguments passes: the tests compute expected values "
+        "from arguments the solution may change: compute the expected value first, or pass copies (r = f(list(xs)))",)
+    assert got["reference first"].passed == () and got["solution on a copy"].passed == ()
+    assert re.search(r"^changed_arguments +1/3$", str(report), re.M), str(report)
+
+
+def test_changed_arguments_is_not_blamed_where_a_constant_already_passes():
+    # results never compared: a constant passes, so changing the list is not what fooled these tests
+    report = probe_code_tests({"p": "total([3, 1, 2])"}, probes=["constant_reply", "changed_arguments"],
+                              runner=CodeRunner({}, wall_time=3.0, memory_mb=256))
+    assert report.results[0].passed == ("constant_reply",)
+    assert "pass" in report.results[0].statuses["changed_arguments"]
+    # a call with no list, dict or set argument raises instead of changing anything
+    one = probe_code_tests({"p": "x = 3\nassert total(x) == 3"}, probes=["changed_arguments"],
+                           runner=CodeRunner({}, wall_time=3.0, memory_mb=256))
+    assert one.results[0].passed == ()
 
 
 def test_tests_file_that_is_not_utf8_names_the_line(tmp_path, capsys):

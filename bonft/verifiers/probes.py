@@ -27,6 +27,19 @@ name the tests take from the solution:
 ``early_exit``         exits with status 0 at import, or raises SystemExit(0)
                        from every call. CodeRunner never passes an exit; a
                        check of the runner too.
+``changed_arguments``  the lookup table of ``memorised_asserts``; any other
+                       call changes every list, dict, set and bytearray
+                       argument in place (empties it, or sets a list to
+                       ``[0]`` / ``[1]``) and returns a constant (as
+                       ``constant_reply``, or that 0 / 1); a call with no such
+                       argument raises. CodeRunner copies an argument changed
+                       in place back into the tests' object (Python's own
+                       semantics), so tests that compute the expected value
+                       from the same object *after* calling the solution
+                       compare with the answer for the changed input. Reported
+                       only where ``constant_reply``, ``memorised_asserts``
+                       and ``silent_none`` (those of them that ran) all fail:
+                       otherwise the change is not what fooled the tests.
 
 One more probe is not run by default, because CodeRunner cannot be fooled by it:
 
@@ -54,10 +67,10 @@ from dataclasses import dataclass, field
 from typing import Mapping
 
 from bonft._core.jsonl import decode_utf8
-from bonft.verifiers.sandbox.runner import CodeRunner
+from bonft.verifiers.sandbox.runner import CodeRunner, check_tests_code
 
 PROBES = ("equal_to_anything", "constant_reply", "memorised_asserts", "silent_none", "raise_everywhere",
-          "echo_expected", "early_exit")
+          "echo_expected", "early_exit", "changed_arguments")
 IN_PROCESS_PROBES = ("lying_operators",)  # not run by default: they test an in-process runner, not CodeRunner
 ALL_PROBES = PROBES + IN_PROCESS_PROBES
 ADVICE = {
@@ -74,7 +87,12 @@ ADVICE = {
                         "exceptions explicitly",
     "echo_expected": "printing the expected literals passes: compare the exact printed output for several inputs",
     "early_exit": "exiting early passes: the runner should never allow this; report it as a bonft bug",
+    "changed_arguments": "a solution that empties or overwrites its list/dict/set arguments passes: the tests "
+                         "compute expected values from arguments the solution may change: compute the expected "
+                         "value first, or pass copies (r = f(list(xs)))",
 }
+# probes that pass without changing any argument: where one of them passes, changed_arguments is not reported
+_WITHOUT_CHANGES = ("constant_reply", "memorised_asserts", "silent_none")
 NO_SOLUTION_CALL = ("the tests call no function of the solution (they read no name it defines): any code passes; "
                     "a problem of the tests, not of the runner: call the solution's functions in the asserts")
 _DEFAULT_CONSTANTS = (True, False, None, 0, 1, "", [])
@@ -221,6 +239,8 @@ def build_probes(tests: str) -> dict[str, list[str]]:
     memo = "".join(
         f"def {n}(*args, **kwargs):\n    return {table.get(n, {})!r}.get(repr((args, tuple(sorted(kwargs.items())))))\n"
         for n in names)
+    changed = [_changing(names, table, "None", repr(c)) for c in consts[:_MAX_CONSTANTS]]
+    changed += [_changing(names, table, fill, fill) for fill in ("0", "1")]
     anything = ("class _Anything:\n    def __eq__(self, other):\n        return True\n"
                 "    def __ne__(self, other):\n        return False\n    def __bool__(self):\n        return True\n"
                 "    __hash__ = object.__hash__\n")
@@ -235,8 +255,38 @@ def build_probes(tests: str) -> dict[str, list[str]]:
         "raise_everywhere": [_define(names, "raise ValueError('probe')")],
         "echo_expected": ["".join(f"def {n}(*args, **kwargs):\n{echo}\n" for n in names)],
         "early_exit": ["import os\nos._exit(0)\n", _define(names, "raise SystemExit(0)")],
+        "changed_arguments": changed,
         "lying_operators": [in_process],
     }
+
+
+# changes every mutable argument in place (CodeRunner copies the change back into the tests' objects)
+_CHANGE = """def _bonft_change(args, kwargs, fill):
+    changed = False
+    for a in list(args) + list(kwargs.values()):
+        if isinstance(a, list):
+            a[:] = [] if fill is None else [fill]
+            changed = True
+        elif isinstance(a, (dict, set, bytearray)):
+            a.clear()
+            changed = True
+    if not changed:
+        raise ValueError("probe: no argument to change")
+"""
+
+
+def _changing(names, table: dict, fill: str, result: str) -> str:
+    """A solution that answers the asserted literal calls from ``table`` and on any other call changes its
+    mutable arguments (emptied, or a list set to ``[fill]``) and returns ``result`` (source literals)."""
+    defs = "".join(
+        f"def {n}(*args, **kwargs):\n"
+        f"    key = repr((args, tuple(sorted(kwargs.items()))))\n"
+        f"    if key in {table.get(n, {})!r}:\n"
+        f"        return {table.get(n, {})!r}[key]\n"
+        f"    _bonft_change(args, kwargs, {fill})\n"
+        f"    return {result}\n"
+        for n in names)
+    return _CHANGE + defs
 
 
 # an object whose every operator, comparison and method says yes (all return itself, which is true)
@@ -286,7 +336,7 @@ def probe_code_tests(tests: Mapping[str, str] | CodeRunner, *, probes=PROBES, ru
     runner: the runner to use with a tests mapping (default ``CodeRunner(tests, wall_time=5)``).
 
     Tests that read no name of the solution get one advice line, :data:`NO_SOLUTION_CALL` (any code
-    passes them); empty tests (no statement) are a ValueError.
+    passes them); tests with no statement (blank or comments only) are a ValueError.
 
     Caution: a clean report means these generic probes fail, not that the tests cannot be
     gamed; a policy under optimisation pressure searches far wider. It runs only our probe
@@ -303,9 +353,11 @@ def probe_code_tests(tests: Mapping[str, str] | CodeRunner, *, probes=PROBES, ru
     elif not isinstance(runner, CodeRunner):
         raise TypeError(f"runner must be a CodeRunner, got {type(runner).__name__}")
     for prompt, code in tests.items():
-        if isinstance(code, str) and not ast.parse(code).body:
-            raise ValueError(f"the tests of prompt {prompt!r:.60} are empty (no statement, only blanks or comments): "
-                             "any code passes them; give each prompt asserts that call the solution")
+        if isinstance(code, str):
+            try:
+                check_tests_code(code)
+            except ValueError as e:
+                raise ValueError(f"the tests of prompt {prompt!r:.60} {e}") from None
     jobs, owners = [], []
     for prompt, code in tests.items():
         for probe, sources in build_probes(code).items():
@@ -319,6 +371,8 @@ def probe_code_tests(tests: Mapping[str, str] | CodeRunner, *, probes=PROBES, ru
     out = []
     for prompt in tests:
         passed = tuple(p for p in probes if "pass" in statuses[prompt].get(p, ()))
+        if any(p in passed for p in _WITHOUT_CHANGES):  # passed without changing an argument: not the change
+            passed = tuple(p for p in passed if p != "changed_arguments")
         # without a name of the solution every candidate passes: the runner's checks are not at fault
         advice = (NO_SOLUTION_CALL,) if passed and not solution_names(tests[prompt]) else tuple(ADVICE[p] for p in passed)
         out.append(ProbeResult(prompt, passed, {k: tuple(v) for k, v in statuses[prompt].items()}, advice))
