@@ -134,6 +134,20 @@ def test_saved_sampling_settings_that_bonft_does_not_read_are_named(tmp_path):
         load_model(tmp_path, device=torch.device("cpu"))
 
 
+def test_text_the_tokenizer_cannot_encode_is_named():
+    # bonft's character tokenizer has no backtick or braces: code fences become '<unk>', which a model can never write
+    import warnings
+
+    from bonft.trainer.models import UnknownTokenWarning, check_vocabulary
+
+    with pytest.warns(UnknownTokenWarning, match=r"^1 of 2 reference responses hold characters the tokenizer encodes as "
+                                                 r"its unknown token '<unk>' \('`' '\{' '\}'; e\.g\. '```python"):
+        check_vocabulary(TOK, ["add 2 and 3", "sum xs"], ["5", "```python\ndef f(xs): return {}\n```"])
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", UnknownTokenWarning)
+        check_vocabulary(TOK, ["add 2 and 3"], ["5"])  # all known: silent
+
+
 def test_pick_device():
     assert pick_device("cpu") == torch.device("cpu")
     assert pick_device("auto") == torch.device("cuda" if torch.cuda.is_available() else "cpu")

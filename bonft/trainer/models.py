@@ -160,6 +160,31 @@ def check_context(model, tokenizer, prompts, *, max_new_tokens: int, references=
                              f"{longer}")
 
 
+class UnknownTokenWarning(UserWarning):
+    """Prompts or reference responses hold text the tokenizer can only encode as its unknown token."""
+
+
+def check_vocabulary(tokenizer, prompts, references=()) -> None:
+    """Warn, naming the characters, when the tokenizer encodes prompts (or warm-start references) with its unknown
+    token: the model reads every such character as one symbol and can never write it (a character tokenizer made
+    for arithmetic meets code's braces and backticks). Silent when the tokenizer has no unknown token."""
+    unk = getattr(tokenizer, "unk_token_id", None)
+    if unk is None:
+        return
+    for kind, texts, special in (("prompts", list(prompts), True), ("reference responses", list(references), False)):
+        if not texts:
+            continue
+        hit = [t for t, ids in zip(texts, tokenizer(texts, add_special_tokens=special)["input_ids"]) if unk in ids]
+        if not hit:
+            continue
+        chars = sorted({c for t in hit[:200] for c in set(t) if unk in tokenizer(c, add_special_tokens=False)["input_ids"]})
+        shown = " ".join(repr(c) for c in chars[:12]) + (" ..." if len(chars) > 12 else "")
+        warnings.warn(f"{len(hit)} of {len(texts)} {kind} hold characters the tokenizer encodes as its unknown token "
+                      f"{tokenizer.unk_token!r} ({shown or 'a sequence it cannot split'}; e.g. {hit[0][:60]!r}): the model "
+                      f"reads each as one symbol and can never write it; use a tokenizer that covers your data",
+                      UnknownTokenWarning, stacklevel=2)
+
+
 def model_dirs(path: Path) -> tuple[Path, Path]:
     """(model dir, tokenizer dir) for a bonft checkpoint or a plain transformers directory."""
     if (path / "model").is_dir():

@@ -23,7 +23,7 @@ from bonft.tasks import build_tokenizer, get_task
 from bonft.trainer.checkpoint import quiet_transformers
 from bonft.trainer.config import TrainConfig
 from bonft.trainer.distributed import derive_seed, init_from_env, prompt_seed, shard_prompts, unwrap_model
-from bonft.trainer.models import build_tiny_model, check_context, load_model, policy_model
+from bonft.trainer.models import build_tiny_model, check_context, check_vocabulary, load_model, policy_model
 from bonft.trainer.objectives import OBJECTIVES, resolve_objective
 from bonft.verifiers.roles import Roles, build_roles
 
@@ -178,6 +178,8 @@ def build_run(cfg: TrainConfig, *, training: bool = True) -> Run:
     check_context(model, tokenizer, [e.prompt for e in everything], max_new_tokens=cfg.max_new_tokens,  # before any work
                   references=[e.reference for e in train] if cfg.warm_start_steps else (),
                   knob="start_from's context" if cfg.start_from else "max_positions")
+    check_vocabulary(tokenizer, [e.prompt for e in everything],
+                     [e.reference for e in train] if cfg.warm_start_steps and training else ())
     return Run(cfg=cfg, out=Path(cfg.run_dir), model=model, tokenizer=tokenizer, task=task, train=list(train),
                eval=list(held), verifiers=verifiers, device=device, rank=rank, world=world, ctx=ctx, roles=roles)
 
