@@ -80,6 +80,13 @@ def test_a_verifier_that_fails_on_every_sample_is_an_error_not_a_row_of_zeros(se
     rep, _ = evaluate_policy(model, tok, prompts, verifiers={"exact": flaky}, n=4, ks=[1], max_new_tokens=3, seed=0,
                              n_boot=20)
     assert rep.verifier_failures == 11
+    from bonft.trainer.evaluation import sample_rows
+
+    _, raw = evaluate_policy(model, tok, prompts, verifiers={"exact": ok, "proxy": flaky}, n=4, ks=[1], max_new_tokens=3,
+                             seed=0, n_boot=20)
+    rows = list(sample_rows(raw, prompts, temperature=1.0, score="proxy"))
+    # the samples file tells a failed verdict (scored 0) from a judged one: the first is proxy's only verdict
+    assert [r.get("failed") for r in rows] == [None] + [["proxy"]] * 11
 
 
 def test_report_table_prints_no_interval_below_ten_prompts():

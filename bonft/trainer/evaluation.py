@@ -183,11 +183,12 @@ def collect_pools(model: Any, tokenizer: Any, prompts: Sequence[str], *, verifie
     flat_texts = [t for row in smp.texts for t in row]
     raw: dict = {"texts": smp.texts, "n_tokens": smp.response_valid.sum(-1).cpu().numpy(),  # (P, n)
                  "seq_logp": (smp.token_logprobs * smp.response_valid).sum(-1).cpu().double().numpy(),  # (P, n)
-                 "scores": {}, "rewards": None, "failures": 0, "failed_by": {}, "cause": {}}
+                 "scores": {}, "rewards": None, "failures": 0, "failed_by": {}, "cause": {}, "failed": {}}
     for name, ver in verifiers.items():
         v = score_batch(ver, flat_prompts, flat_texts)
         raw["failures"] += v.n_failed
         raw["failed_by"][name] = int(v.n_failed)
+        raw["failed"][name] = v.failed.reshape(P, n)  # scored 0 because the verifier failed, not judged 0
         raw["cause"][name] = next((r for r in v.reasons if r), None)
         raw["scores"][name] = v.scores.reshape(P, n)
         if name == eval_verifier:
@@ -207,7 +208,8 @@ def sample_rows(raw: dict, prompts: Sequence[str], *, temperature: float, score:
     One row per response: ``prompt_id`` (the prompt's position in ``prompts``), ``prompt``, ``sample``
     (its index in the pool), ``score`` (verifier ``score``'s), ``reward`` (the evaluation verifier's),
     ``temperature``, ``response``, ``n_tokens`` and, given ``extract_answer``, ``answer`` (a str, an int or
-    null; another value by its ``str``).
+    null; another value by its ``str``), and ``failed`` (the names of the verifiers that failed on it, whose
+    score there is a 0 that judged nothing) on a response where one did.
     ``every_score``: also ``score_<name>`` for every verifier in ``raw["scores"]`` (``bonft estimate
     --score-field score_proxy`` then ranks by that verifier).
     """
@@ -229,6 +231,9 @@ def sample_rows(raw: dict, prompts: Sequence[str], *, temperature: float, score:
                     row["answer"] = _answer_key(extract_answer(text))
                 for name in names:
                     row[f"score_{name}"] = float(raw["scores"][name][b, i])
+                failed = [name for name in sorted(raw.get("failed", {})) if raw["failed"][name][b, i]]
+                if failed:
+                    row["failed"] = failed
                 yield row
 
     return rows()
@@ -250,6 +255,7 @@ def merge_pools(parts: Sequence[dict]) -> dict:
             "scores": {name: np.concatenate([p["scores"][name] for p in parts]) for name in parts[0]["scores"]},
             "failures": sum(p["failures"] for p in parts),
             "failed_by": {name: sum(p["failed_by"][name] for p in parts) for name in parts[0]["failed_by"]},
+            "failed": {name: np.concatenate([p["failed"][name] for p in parts]) for name in parts[0]["failed"]},
             "cause": {name: next((p["cause"][name] for p in parts if p["cause"][name]), None) for name in parts[0]["cause"]}}
 
 
