@@ -129,6 +129,21 @@ def test_a_good_evaluation_is_still_drawn(tmp_path, closed_figures):
     np.testing.assert_array_equal(fig.axes[0].lines[0].get_ydata(), [0.5, 0.5])
 
 
+FIGURES = ["best_of_k", "evaluations", "comparison", "paired", "verifier", "strategy"]
+
+
+def _drawer(plot: str):
+    """path -> the figure ``plot`` drawn there from small valid data."""
+    rng = np.random.default_rng(0)
+    summary = summarize(rng.random((6, 2)), (rng.random((6, 2)) < 0.5).astype(float), ks=[1, 2], n_boot=10)
+    return {"best_of_k": lambda p: viz.plot_best_of_k_curves({"a": summary}, p),
+            "evaluations": lambda p: viz.plot_evaluations([_eval()], p),
+            "comparison": lambda p: viz.plot_comparison({"a": _eval()}, p),
+            "paired": lambda p: viz.plot_paired_differences(_PAIRED, p, ks=[1, 2]),
+            "verifier": lambda p: viz.plot_verifier_check(_verifier_report(), p),
+            "strategy": lambda p: viz.plot_strategy_curves({"T=1": _strategy_curves()}, p)}[plot]
+
+
 @pytest.mark.parametrize("path, err, match", [
     (None, TypeError, r"path must be a file path \(str or os.PathLike\), got NoneType None"),
     (3, TypeError, r"path must be a file path \(str or os.PathLike\), got int 3"),
@@ -138,35 +153,21 @@ def test_a_good_evaluation_is_still_drawn(tmp_path, closed_figures):
     ("curves", ValueError, r"path must end in a figure format's extension \(.*\.png.*\), got 'curves' with no extension"),
     ("curves.txt", ValueError, r"got 'curves.txt' with the extension .txt, which matplotlib cannot write"),
 ])
-@pytest.mark.parametrize("plot", ["best_of_k", "evaluations", "comparison", "paired", "verifier", "strategy"])
+@pytest.mark.parametrize("plot", FIGURES)
 def test_the_path_must_be_a_file_path(tmp_path, monkeypatch, closed_figures, plot, path, err, match):
     folder = tmp_path / "figs"
     folder.mkdir()
     monkeypatch.chdir(tmp_path)  # None or a folder used to give None.png / figs.png in the working directory
-    rng = np.random.default_rng(0)
-    summary = summarize(rng.random((6, 2)), (rng.random((6, 2)) < 0.5).astype(float), ks=[1, 2], n_boot=10)
-    draw = {"best_of_k": lambda p: viz.plot_best_of_k_curves({"a": summary}, p),
-            "evaluations": lambda p: viz.plot_evaluations([_eval()], p),
-            "comparison": lambda p: viz.plot_comparison({"a": _eval()}, p),
-            "paired": lambda p: viz.plot_paired_differences(_PAIRED, p, ks=[1, 2]),
-            "verifier": lambda p: viz.plot_verifier_check(_verifier_report(), p),
-            "strategy": lambda p: viz.plot_strategy_curves({"T=1": _strategy_curves()}, p)}[plot]
+    draw = _drawer(plot)
     with pytest.raises(err, match=match):
         draw(str(folder) if path == "DIR" else path)
     assert closed_figures == [] and sorted(p.name for p in tmp_path.iterdir()) == ["figs"]
     assert list(folder.iterdir()) == []
 
 
-@pytest.mark.parametrize("plot", ["best_of_k", "evaluations", "comparison", "paired", "verifier", "strategy"])
+@pytest.mark.parametrize("plot", FIGURES)
 def test_every_figure_makes_its_missing_folders(tmp_path, plot):
-    rng = np.random.default_rng(0)
-    summary = summarize(rng.random((6, 2)), (rng.random((6, 2)) < 0.5).astype(float), ks=[1, 2], n_boot=10)
-    draw = {"best_of_k": lambda p: viz.plot_best_of_k_curves({"a": summary}, p),
-            "evaluations": lambda p: viz.plot_evaluations([_eval()], p),
-            "comparison": lambda p: viz.plot_comparison({"a": _eval()}, p),
-            "paired": lambda p: viz.plot_paired_differences(_PAIRED, p, ks=[1, 2]),
-            "verifier": lambda p: viz.plot_verifier_check(_verifier_report(), p),
-            "strategy": lambda p: viz.plot_strategy_curves({"T=1": _strategy_curves()}, p)}[plot]
+    draw = _drawer(plot)
     out = tmp_path / "a" / "b" / "fig.png"
     draw(out)
     assert out.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"  # the PNG signature (PNG specification, section 5.2)
