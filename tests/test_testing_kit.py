@@ -577,3 +577,31 @@ def test_cli_recipe_with_a_chat_template_matches_the_rendered_prompts(jars_recip
     (tmp_path / "ex.jsonl").write_text(json.dumps({"prompt": raw, "response": "3"}) + "\n")  # the prompt as in the data
     assert cli_main(argv) == 2
     assert f"the prompt {raw!r} (example 1) has no row in recipe" in capsys.readouterr().err
+
+
+def test_cli_checks_a_built_in_verifier_name_with_the_recipes_knobs(tmp_path, monkeypatch, capsys):
+    # the unit_tests kind a recipe names, with its verifier_params (the tests column is "checks"), bound as training
+    # binds it; per prompt the right total (reward 1) and total + 1 (reward 0): unit tests score 1 and 0, so accuracy
+    # and ROC AUC are 1 (hand count)
+    data = [{"question": f"jars {a}+{b}", "checks": f"assert total() == {a + b}", "total": a + b}
+            for a in (1, 2) for b in range(1, 4)]
+    (tmp_path / "jars.jsonl").write_text("".join(json.dumps(x) + "\n" for x in data))
+    monkeypatch.chdir(tmp_path)
+    recipe = tmp_path / "mine.toml"
+    recipe.write_text('task = "user"\nverifier = "unit_tests"\nrl_steps = 1\ntrain_prompts = 3\nheldout_prompts = 3\n'
+                      '[task_params]\ndata = "jars.jsonl"\nprompt_field = "question"\n'
+                      '[verifier_params]\nfield = "checks"\nwall_time = 3.0\n')
+    lines = [{"prompt": x["question"], "response": f"def total():\n    return {t}", "reward": float(t == x["total"])}
+             for x in data[:2] for t in (x["total"], x["total"] + 1)]
+    (tmp_path / "ex.jsonl").write_text("".join(json.dumps(x) + "\n" for x in lines))
+    argv = ["check-verifier", "unit_tests", "--examples", str(tmp_path / "ex.jsonl")]
+    assert cli_main([*argv, "--recipe", str(recipe), "--json", str(tmp_path / "r.json")]) == 0
+    rep = json.loads((tmp_path / "r.json").read_text())
+    assert (rep["n_samples"], rep["accuracy"], rep["auc"], rep["failure_rate"]) == (4, 1.0, 1.0, 0.0)
+    capsys.readouterr()
+    assert cli_main(argv) == 2
+    assert "verifier 'unit_tests' is a built-in name, built from a recipe's task, data and knobs: give --recipe" \
+        in capsys.readouterr().err
+    assert cli_main(["check-verifier", "unit_test", "--examples", str(tmp_path / "ex.jsonl")]) == 2
+    assert "verifier must be 'module:function', 'path/to/file.py:function' or, with --recipe, one of exact, proxy, " \
+        "unit_tests, reward_model; got 'unit_test'" in capsys.readouterr().err

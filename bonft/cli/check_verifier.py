@@ -3,7 +3,8 @@ from __future__ import annotations
 
 HELP = "test a verifier for determinism, failures, agreement with labels and over-optimisation"
 DESCRIPTION = (
-    "Load a verifier ('module:function' or 'path/to/file.py:function'), score the example pools in "
+    "Load a verifier ('module:function' or 'path/to/file.py:function', or with --recipe a name the recipe keys "
+    "verifier / eval_verifier take: exact, proxy, unit_tests, reward_model), score the example pools in "
     "FILE.jsonl (one sample per line: {\"prompt\", \"response\", \"reward\"?, \"label\"?, \"row\"?}, or a samples "
     "file such as a run's heldout_samples.jsonl) several times "
     "and report determinism, failure rate, score range, latency, accuracy / ROC AUC and the best-of-k "
@@ -16,7 +17,9 @@ DESCRIPTION = (
 
 
 def add_arguments(p) -> None:
-    p.add_argument("verifier", help="'module:function' or 'path/to/file.py:function'")
+    p.add_argument("verifier", help="'module:function' or 'path/to/file.py:function'; with --recipe also a built-in "
+                                    "name (exact, proxy, unit_tests, reward_model) with the recipe's knobs for it "
+                                    "(verifier_params where verifier names it, else eval_verifier_params)")
     p.add_argument("--examples", required=True, metavar="FILE.jsonl", help="example samples, one JSON object per line")
     p.add_argument("--recipe", default=None, metavar="RECIPE.toml",
                    help="bind a verifier that reads data rows to the rows of this recipe's task data (the prompts "
@@ -52,10 +55,22 @@ def run(args) -> int:
                          f"(byte {raw[e.start]:#04x}); save the file as UTF-8") from None
     if args.recipe is not None and not os.path.isfile(args.recipe):
         raise FileNotFoundError(f"--recipe must be an existing TOML recipe, got {args.recipe!r}")
-    verifier = load_verifier(args.verifier)
     examples = read_examples(args.examples, temperature=args.temperature)
-    if args.recipe is not None:
-        verifier = bind_recipe_rows(verifier, args.verifier, args.recipe, examples, args.examples)
+    if ":" not in args.verifier and _builtin(args.verifier):
+        if args.recipe is None:
+            raise ValueError(f"verifier {args.verifier!r} is a built-in name, built from a recipe's task, data and knobs: "
+                             "give --recipe RECIPE.toml (or name a 'module:function')")
+        verifier = recipe_verifier(args.verifier, args.recipe, examples, args.examples)
+    elif ":" not in args.verifier:
+        from bonft.verifiers.roles import TASK_VERIFIERS, VERIFIER_KINDS
+
+        names = ", ".join(TASK_VERIFIERS + tuple(VERIFIER_KINDS))
+        raise ValueError(f"verifier must be 'module:function', 'path/to/file.py:function' or, with --recipe, one of "
+                         f"{names}; got {args.verifier!r}")
+    else:
+        verifier = load_verifier(args.verifier)
+        if args.recipe is not None:
+            verifier = bind_recipe_rows(verifier, args.verifier, args.recipe, examples, args.examples)
     report = check_verifier(verifier, examples, repeats=args.repeats, threshold=args.threshold,
                             timeout=args.wall_time, max_failure_rate=args.max_failure_rate)
     print(report)
@@ -93,6 +108,40 @@ def bind_recipe_rows(verifier, spec: str, recipe: str, examples: list[dict], exa
     task, train, held = task_split(cfg, _recipe_tokenizer(cfg))
     everything = list(train) + list(held)
     bound = task.bind_verifier(verifier, everything)
+    _check_known(examples, everything, recipe, cfg, examples_path)
+    return bound
+
+
+def _builtin(spec: str) -> bool:
+    from bonft.verifiers.roles import TASK_VERIFIERS, VERIFIER_KINDS
+
+    return spec in TASK_VERIFIERS or spec in VERIFIER_KINDS
+
+
+def recipe_verifier(spec: str, recipe: str, examples: list[dict], examples_path: str):
+    """The built-in verifier ``spec`` as a run of ``recipe`` builds it (:func:`bonft.verifiers.roles.named_verifier`
+    on the recipe's task split): its knobs are the recipe's ``verifier_params`` when ``verifier`` names ``spec``,
+    else ``eval_verifier_params`` when ``eval_verifier`` does, else none. An example with its own ``row`` and a
+    prompt missing from the split are errors."""
+    from bonft.trainer.config import load_config  # loads torch: only with --recipe
+    from bonft.trainer.run import task_split  # loads torch: only with --recipe
+    from bonft.verifiers.roles import named_verifier
+
+    with_row = next((i for i, ex in enumerate(examples) if "row" in ex), None)
+    if with_row is not None:
+        raise ValueError(f"--recipe binds the rows of the recipe's data, but {examples_path} gives rows of its own "
+                         f"(example {with_row + 1} has 'row'): use one or the other")
+    cfg = load_config(recipe)
+    key, params = (("verifier", cfg.verifier_params) if cfg.verifier == spec else
+                   ("eval_verifier", cfg.eval_verifier_params) if cfg.eval_verifier == spec else ("verifier", {}))
+    task, train, held = task_split(cfg, _recipe_tokenizer(cfg))
+    everything = list(train) + list(held)
+    verifier = named_verifier(task, everything, spec, params, key=key)
+    _check_known(examples, everything, recipe, cfg, examples_path)
+    return verifier
+
+
+def _check_known(examples: list[dict], everything: list, recipe: str, cfg, examples_path: str) -> None:
     known = {e.prompt for e in everything}
     for i, ex in enumerate(examples):
         if ex["prompt"] not in known:
@@ -100,7 +149,6 @@ def bind_recipe_rows(verifier, spec: str, recipe: str, examples: list[dict], exa
                              f"{recipe}'s data: it is not among the {len(everything)} prompts its task, "
                              f"train_prompts + heldout_prompts and seed = {cfg.seed} give (with chat_template, as "
                              "rendered); check the examples of a run against that run's recipe")
-    return bound
 
 
 def _recipe_tokenizer(cfg):

@@ -108,6 +108,15 @@ def _make(task: Any, examples: Sequence[Any], key: str, spec: str, params: dict,
     return ver
 
 
+def named_verifier(task: Any, examples: Sequence[Any], spec: str, params: dict | None = None, *, key: str = "verifier",
+                   device: str | None = None) -> Callable:
+    """The verifier a recipe names ``spec`` (with knobs ``params``) for ``task``'s ``examples``, built and
+    bound to their data rows as :func:`build_roles` builds it for training (``bonft check-verifier NAME --recipe``)."""
+    params = dict(params or {})
+    check_spec(key, spec, params)
+    return _make(task, examples, key, spec, params, device)
+
+
 def build_roles(task: Any, examples: Sequence[Any], *, verifier: str = "exact", verifier_params: dict | None = None,
                 eval_verifier: str = "", eval_verifier_params: dict | None = None, device: str | None = None) -> Roles:
     """The training verifier and the evaluation verifier of ``task`` for ``examples`` (train and held-out together).
