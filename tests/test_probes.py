@@ -284,3 +284,73 @@ def test_tests_file_that_is_not_utf8_names_the_line(tmp_path, capsys):
         read_code_tests(str(path))
     assert main(["check-tests", str(path)]) == 2
     assert re.search(message, capsys.readouterr().err)
+
+
+def test_check_tests_reads_a_data_file_with_more_columns_through_field_options(tmp_path, capsys):
+    from bonft.cli import main
+
+    # a user's data file as the trainer reads it: prompts, tests and columns of its own
+    rows = [{"prompt": "write add(a, b)", "tests": "assert add(2, 3) == 5", "visible": "assert add(2, 3) == 5",
+             "reference": "def add(a, b):\n    return a + b"},
+            {"prompt": "write sort_list(xs)", "tests": STRONG["write sort_list(xs)"], "visible": "",
+             "reference": HONEST["write sort_list(xs)"]}]
+    path = tmp_path / "code.jsonl"
+    path.write_text("".join(json.dumps(r) + "\n" for r in rows))
+    assert main(["check-tests", str(path), "--probes", "constant_reply"]) == 2
+    err = capsys.readouterr().err
+    assert "line 1 has unknown key 'reference': a line takes only the keys prompt, tests (bonft check-tests reads a " \
+           "data file with more columns through --prompt-field / --tests-field, or a recipe's data through --recipe)" \
+           in err, err
+    assert main(["check-tests", str(path), "--tests-field", "tests", "--probes", "constant_reply",
+                 "--wall-time", "3"]) == 1
+    out = capsys.readouterr().out
+    assert "GAMEABLE  write add(a, b): passed by constant_reply" in out and "ok        write sort_list(xs)" in out
+    # CSV, columns named by the options; a comment-only test names its line (the header is line 1)
+    csv_path = tmp_path / "code.csv"
+    csv_path.write_text('q,checks\nwrite add(a b),"assert add(2, 3) == 5"\nwrite neg(x),# TODO write tests\n')
+    assert main(["check-tests", str(csv_path), "--prompt-field", "q", "--tests-field", "checks"]) == 2
+    assert "code.csv line 3: field 'checks' of prompt 'write neg(x)' must hold at least one statement" \
+        in capsys.readouterr().err
+    csv_path.write_text('q,checks\nwrite add(a b),"assert add(2, 3) == 5"\n')
+    assert main(["check-tests", str(csv_path), "--prompt-field", "q", "--tests-field", "checks",
+                 "--probes", "constant_reply", "--wall-time", "3"]) == 1
+    assert "GAMEABLE  write add(a b): passed by constant_reply" in capsys.readouterr().out
+
+
+def test_check_tests_reads_a_recipes_split_and_tests_column(tmp_path, monkeypatch, capsys):
+    from bonft.cli import main
+    from bonft.tasks import get_task
+
+    # four prompts, a split of 2 + 1 (one prompt in neither part), the tests column named by the verifier's knob
+    data = [{"question": f"jars {a}", "checks": f"assert total() == {a}"} for a in range(1, 5)]
+    (tmp_path / "jars.jsonl").write_text("".join(json.dumps(x) + "\n" for x in data))
+    monkeypatch.chdir(tmp_path)
+    recipe = tmp_path / "mine.toml"
+    recipe.write_text('task = "user"\nverifier = "unit_tests"\nrl_steps = 1\ntrain_prompts = 2\nheldout_prompts = 1\n'
+                      'seed = 3\n[task_params]\ndata = "jars.jsonl"\nprompt_field = "question"\n'
+                      '[verifier_params]\nfield = "checks"\n')
+    train, held = get_task("user", data="jars.jsonl", prompt_field="question").split(n_train=2, n_eval=1, seed=3)
+    out_json = tmp_path / "r.json"
+    assert main(["check-tests", "--recipe", str(recipe), "--probes", "constant_reply", "--wall-time", "3",
+                 "--json", str(out_json)]) == 1
+    report = json.loads(out_json.read_text())
+    assert sorted(r["prompt"] for r in report["prompts"]) == sorted(e.prompt for e in train + held)
+    assert all(r["passed"] == ["constant_reply"] for r in report["prompts"])  # total() == a: the constant a passes
+
+
+@pytest.mark.parametrize("argv, message", [
+    (["t.jsonl", "--recipe", "mine.toml"], r"TESTS and --recipe are two sources of tests, got both"),
+    (["--recipe", "mine.toml", "--tests-field", "checks"],
+     r"--tests-field cannot take effect with --recipe: the recipe's task_params name the columns"),
+    (["--recipe", "mine.toml"], r"recipe mine.toml has task = 'ledger', which has no tests column: drop --recipe"),
+    ([], r"check-tests needs tests: give TESTS.jsonl \(or a data file\) or --recipe RECIPE.toml"),
+    (["data.csv"], r"TESTS must be an existing data file or saved datasets directory, got 'data.csv'"),
+])
+def test_check_tests_source_refusals(tmp_path, monkeypatch, capsys, argv, message):
+    from bonft.cli import main
+
+    monkeypatch.chdir(tmp_path)
+    (tmp_path / "t.jsonl").write_text('{"prompt": "p", "tests": "assert f(1) == 2"}\n')
+    (tmp_path / "mine.toml").write_text('task = "ledger"\nrl_steps = 1\n')
+    assert main(["check-tests", *argv]) == 2
+    assert re.search(message, capsys.readouterr().err)

@@ -400,7 +400,9 @@ def read_code_tests(path: str) -> dict[str, str]:
             raise ValueError(f"{path} line {i} must be {{\"prompt\": str, \"tests\": str}}, got {line.strip()[:80]}")
         extra = sorted(set(rec) - {"prompt", "tests"})
         if extra:
-            raise ValueError(f"{path} line {i} has unknown key {extra[0]!r}: a line takes only the keys prompt, tests")
+            raise ValueError(f"{path} line {i} has unknown key {extra[0]!r}: a line takes only the keys prompt, tests "
+                             "(bonft check-tests reads a data file with more columns through --prompt-field / "
+                             "--tests-field, or a recipe's data through --recipe)")
         prompt = rec["prompt"]
         if prompt in first_line:
             raise ValueError(f"{path} lines {first_line[prompt]} and {i} both give tests for prompt {prompt!r:.60}: "
