@@ -233,6 +233,9 @@ def test_tests_without_a_statement_are_refused(code):
 def test_runner_arguments_are_validated():
     with pytest.raises(ValueError, match=r"tests\['p'\] must be valid Python, got a SyntaxError at line 1"):
         CodeRunner({"p": "assert ("})
+    with pytest.raises(ValueError, match=r"tests\['p'\] must be valid Python, got a SyntaxError at line 2: 'return' "
+                                         r"outside function"):
+        CodeRunner({"p": "assert f(1) == 2\nreturn"})  # parses, but the compiler refuses it (CPython's compile)
     with pytest.raises(TypeError, match="tests must be a mapping"):
         CodeRunner(["assert True"])
     with pytest.raises(ValueError, match="wall_time must be a finite number >= 0.1, got wall_time=0"):

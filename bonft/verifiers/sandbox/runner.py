@@ -149,7 +149,8 @@ def check_tests_code(code: str) -> None:
     The ``ValueError`` message starts with ``must ...``, for the caller to put the prompt in front.
     """
     try:
-        tree = compile(code, "tests.py", "exec", ast.PyCF_ONLY_AST)
+        compile(code, "tests.py", "exec")  # the whole compiler: `return` outside a function is caught only here
+        tree = ast.parse(code, "tests.py")
     except SyntaxError as e:
         raise ValueError(f"must be valid Python, got a SyntaxError at line {e.lineno}: {e.msg}") from None
     if not tree.body:
