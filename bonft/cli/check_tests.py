@@ -55,8 +55,8 @@ def tests_runner(args, options: dict):
     """The CodeRunner holding the tests the arguments name (TESTS.jsonl, a data file or --recipe)."""
     import os
 
-    from bonft.verifiers import CodeRunner
-    from bonft.verifiers.probes import read_code_tests
+    from bonft.verifiers import CodeRunner  # the command's modules load when it runs, not at `bonft --help`
+    from bonft.verifiers.probes import read_code_tests  # (as above)
 
     fields = [f"--{k}" for k in ("prompt-field", "tests-field") if getattr(args, k.replace("-", "_")) is not None]
     if args.recipe is not None:
@@ -86,8 +86,8 @@ def tests_runner(args, options: dict):
 def data_runner(path: str, prompt_field: str, tests_field: str, options: dict):
     """The tests of a data file read as task = 'user' reads it (other columns are the data's own), bound as
     bonft train binds unit_tests: a row without tests, or with tests no code can fail, names its line."""
-    from bonft.tasks.user import UserTask
-    from bonft.verifiers.fields import UnitTests
+    from bonft.tasks.user import UserTask  # reads datasets' formats: only for a data file
+    from bonft.verifiers.fields import UnitTests  # (as above)
 
     task = UserTask(data=path, prompt_field=prompt_field, tests_field=tests_field)
     return task.bind_verifier(UnitTests(field=tests_field, **options), task.examples)
@@ -97,10 +97,10 @@ def recipe_runner(recipe: str, options: dict):
     """The tests of ``recipe``'s training and held-out prompts, as a run binds its unit_tests verifier: the column
     is the ``field`` knob of the recipe's unit_tests verifier (verifier, else eval_verifier), else the task's
     tests_field, else ``tests``."""
-    from bonft.cli.check_verifier import _recipe_tokenizer
+    from bonft.cli.check_verifier import _recipe_tokenizer  # with the trainer's imports: only with --recipe
     from bonft.trainer.config import load_config  # loads torch: only with --recipe
     from bonft.trainer.run import task_split  # loads torch: only with --recipe
-    from bonft.verifiers.roles import named_verifier
+    from bonft.verifiers.roles import named_verifier  # only with --recipe
 
     cfg = load_config(recipe)
     if cfg.task != "user":

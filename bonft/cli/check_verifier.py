@@ -113,7 +113,7 @@ def bind_recipe_rows(verifier, spec: str, recipe: str, examples: list[dict], exa
 
 
 def _builtin(spec: str) -> bool:
-    from bonft.verifiers.roles import TASK_VERIFIERS, VERIFIER_KINDS
+    from bonft.verifiers.roles import TASK_VERIFIERS, VERIFIER_KINDS  # the command's modules load when it runs
 
     return spec in TASK_VERIFIERS or spec in VERIFIER_KINDS
 
@@ -125,7 +125,7 @@ def recipe_verifier(spec: str, recipe: str, examples: list[dict], examples_path:
     prompt missing from the split are errors."""
     from bonft.trainer.config import load_config  # loads torch: only with --recipe
     from bonft.trainer.run import task_split  # loads torch: only with --recipe
-    from bonft.verifiers.roles import named_verifier
+    from bonft.verifiers.roles import named_verifier  # only with --recipe
 
     with_row = next((i for i, ex in enumerate(examples) if "row" in ex), None)
     if with_row is not None:
