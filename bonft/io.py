@@ -45,7 +45,7 @@ import numpy as np
 from bonft._core.checks import as_float_array
 from bonft._core.jsonl import decode_utf8, parse_object, unique_object
 
-__all__ = ["SampleTable", "DuplicateRowsWarning", "read_samples", "write_samples", "group_pools", "temperatures_of"]
+__all__ = ["SampleTable", "DuplicateRowsWarning", "FailedVerdictsWarning", "read_samples", "write_samples", "group_pools", "temperatures_of"]
 
 
 @dataclass
@@ -147,6 +147,22 @@ DUPLICATES = ("warn", "error", "allow")
 
 class DuplicateRowsWarning(UserWarning):
     """A samples file repeats some rows exactly."""
+
+
+class FailedVerdictsWarning(UserWarning):
+    """Rows of a samples file mark a verdict their verifier failed to give (field ``failed``): a 0 that judged nothing."""
+
+
+def _note_failed(name: str, rows: list, numbers: list[int]) -> None:
+    """Warn when rows carry ``failed`` (the verifiers that failed on them, as bonft's own samples files mark it)."""
+    hit = [i for i, r in enumerate(rows) if r.get("failed")]
+    if hit:
+        names = sorted({str(v) for i in hit for v in (rows[i]["failed"] if isinstance(rows[i]["failed"], list)
+                                                      else [rows[i]["failed"]])})
+        warnings.warn(f"{name}: {len(hit)} of {len(rows)} rows mark a verdict their verifier failed to give (field "
+                      f"'failed': {', '.join(names)}; first on line {numbers[hit[0]]}): the 0 there judged nothing but "
+                      f"is counted as a 0; fix the verifier and score again for numbers that mean what they say",
+                      FailedVerdictsWarning, stacklevel=3)
 
 
 def _check_duplicates(name: str, lines: list[str], numbers, mode: str, indexed: list | None = None) -> None:
@@ -284,6 +300,7 @@ def read_samples(
         texts = np.array(texts, dtype=object)
     if duplicates != "allow":  # after the checks of every field: a malformed file errors first
         _check_duplicates(name, lines, numbers, duplicates, index)
+    _note_failed(name, rows, numbers)
     return SampleTable(prompt_keys=prompt_keys, scores=scores, rewards=rewards, temperatures=temps, n_tokens=toks,
                        answers=answers, prompts=texts)
 

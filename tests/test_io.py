@@ -315,3 +315,24 @@ def test_a_required_temperature_field_must_exist(tmp_path):
     assert temperatures_of(read_samples(p, temperature_required=True)) == [0.7, 1.0]
     with pytest.raises(TypeError, match=r"temperature_required must be a bool, got str 'yes'"):
         read_samples(p, temperature_required="yes")
+
+
+def test_rows_with_a_failed_verdict_are_named_when_read(tmp_path):
+    # bonft's own samples files mark a sample a verifier failed on (field 'failed'): its 0 judged nothing
+    import warnings
+
+    from bonft.io import FailedVerdictsWarning
+
+    rows = [{"prompt_id": 0, "score": 0.0, "reward": 0.0, "sample": 0, "failed": ["proxy"]},
+            {"prompt_id": 0, "score": 0.5, "reward": 1.0, "sample": 1},
+            {"prompt_id": 0, "score": 0.0, "reward": 0.0, "sample": 2, "failed": ["exact", "proxy"]}]
+    path = tmp_path / "s.jsonl"
+    write_samples(path, rows)
+    with pytest.warns(FailedVerdictsWarning, match=r"s.jsonl: 2 of 3 rows mark a verdict their verifier failed to give "
+                                                   r"\(field 'failed': exact, proxy; first on line 1\)"):
+        table = read_samples(path)
+    assert table.rewards.tolist() == [0.0, 1.0, 0.0]  # read as they are
+    write_samples(path, rows[1:2])
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", FailedVerdictsWarning)
+        read_samples(path)
