@@ -39,14 +39,16 @@ def main() -> None:
     ks = np.array(KS, dtype=float)
     fixed = lambda q: (lambda rng, P: np.full(P, q))  # noqa: E731
     beta12 = lambda rng, P: rng.beta(1.0, 2.0, size=P)  # noqa: E731
-    rows = [
-        ("p = 0.3 fixed", fixed(0.3), 1 - 0.7 ** ks, 30, None),
-        ("p = 0.3 fixed", fixed(0.3), 1 - 0.7 ** ks, 100, None),
-        ("p ~ Beta(1, 2)", beta12, 1 - 2 / (ks + 2), 40, None),
-        ("p ~ Beta(1, 2)", beta12, 1 - 2 / (ks + 2), 12, None),
-        ("p = 0.01 fixed", fixed(0.01), 1 - 0.99 ** ks, 20, None),
-        ("p = 0.01 fixed", fixed(0.01), 1 - 0.99 ** ks, 20, (0, 1)),
+    # each population without bounds (the plain percentile bootstrap) and with bounds=(0, 1), which summarize,
+    # bonft estimate, compare and the trainer's tables use for rewards in [0, 1]
+    settings = [
+        ("p = 0.3 fixed", fixed(0.3), 1 - 0.7 ** ks, 30),
+        ("p = 0.3 fixed", fixed(0.3), 1 - 0.7 ** ks, 100),
+        ("p ~ Beta(1, 2)", beta12, 1 - 2 / (ks + 2), 40),
+        ("p ~ Beta(1, 2)", beta12, 1 - 2 / (ks + 2), 12),
+        ("p = 0.01 fixed", fixed(0.01), 1 - 0.99 ** ks, 20),
     ]
+    rows = [(*row, bounds) for row in settings for bounds in (None, (0, 1))]
     print(f"95% intervals, n = {N}, {REPEATS} repeats, {N_BOOT} bootstrap replicates; coverage of pass@{KS}")
     for label, draw, true, P, bounds in rows:
         cov = coverage(draw, true, P, seed=7, bounds=bounds)
