@@ -272,6 +272,13 @@ def test_changed_arguments_is_not_blamed_where_a_constant_already_passes():
     one = probe_code_tests({"p": "x = 3\nassert total(x) == 3"}, probes=["changed_arguments"],
                            runner=CodeRunner({}, wall_time=3.0, memory_mb=256))
     assert one.results[0].passed == ()
+    # asked alone, it still runs the probes that pass without a change: integer asserts that a lookup table
+    # answers are not blamed on changed arguments (its advice would be wrong), and the table lists only it
+    sq = probe_code_tests({"p": "assert sq(2) == 4\nassert sq(3) == 9"}, probes=["constant_reply", "changed_arguments"],
+                          runner=CodeRunner({}, wall_time=3.0, memory_mb=256))
+    assert sq.results[0].passed == () and set(sq.results[0].statuses) == {"constant_reply", "changed_arguments"}
+    rows = str(sq).split("prompts passed")[-1]
+    assert "changed_arguments" in rows and "memorised_asserts" not in rows and "silent_none" not in rows
 
 
 def test_tests_file_that_is_not_utf8_names_the_line(tmp_path, capsys):

@@ -38,8 +38,8 @@ name the tests take from the solution:
                        from the same object *after* calling the solution
                        compare with the answer for the changed input. Reported
                        only where ``constant_reply``, ``memorised_asserts``
-                       and ``silent_none`` (those of them that ran) all fail:
-                       otherwise the change is not what fooled the tests.
+                       and ``silent_none`` all fail (they run with it, reported
+                       or not): otherwise the change is not what fooled the tests.
 
 One more probe is not run by default, because CodeRunner cannot be fooled by it:
 
@@ -138,8 +138,8 @@ class CodeTestsReport:
                 lines.append(f"ok        {head}: no probe passed")
         n = len(self.results)
         lines += ["", f"{'probe':<20} {'prompts passed':>14}"]
-        extra = tuple(p for p in IN_PROCESS_PROBES if any(p in r.statuses for r in self.results))
-        for p in PROBES + extra:
+        ran = [p for p in ALL_PROBES if any(p in r.statuses for r in self.results)]  # a probe not run has no row
+        for p in ran:
             k = sum(p in r.passed for r in self.results)
             lines.append(f"{p:<20} {f'{k}/{n}':>14}")
         gameable = sum(bool(r.passed) for r in self.results)
@@ -358,10 +358,12 @@ def probe_code_tests(tests: Mapping[str, str] | CodeRunner, *, probes=PROBES, ru
                 check_tests_code(code)
             except ValueError as e:
                 raise ValueError(f"the tests of prompt {prompt!r:.60} {e}") from None
+    # changed_arguments is told apart from the probes that pass without changing an argument: those run with it
+    run = set(probes) | (set(_WITHOUT_CHANGES) if "changed_arguments" in probes else set())
     jobs, owners = [], []
     for prompt, code in tests.items():
         for probe, sources in build_probes(code).items():
-            if probe in probes:
+            if probe in run:
                 jobs += [(src, _IN_PROCESS_TESTS if probe in IN_PROCESS_PROBES else code) for src in sources]
                 owners += [(prompt, probe)] * len(sources)
     results = runner.run_code(jobs, progress=progress)
@@ -371,11 +373,12 @@ def probe_code_tests(tests: Mapping[str, str] | CodeRunner, *, probes=PROBES, ru
     out = []
     for prompt in tests:
         passed = tuple(p for p in probes if "pass" in statuses[prompt].get(p, ()))
-        if any(p in passed for p in _WITHOUT_CHANGES):  # passed without changing an argument: not the change
+        if any("pass" in statuses[prompt].get(p, ()) for p in _WITHOUT_CHANGES):  # passed unchanged: not the change
             passed = tuple(p for p in passed if p != "changed_arguments")
         # without a name of the solution every candidate passes: the runner's checks are not at fault
         advice = (NO_SOLUTION_CALL,) if passed and not solution_names(tests[prompt]) else tuple(ADVICE[p] for p in passed)
-        out.append(ProbeResult(prompt, passed, {k: tuple(v) for k, v in statuses[prompt].items()}, advice))
+        out.append(ProbeResult(prompt, passed, {k: tuple(v) for k, v in statuses[prompt].items() if k in probes},
+                               advice))
     return CodeTestsReport(out)
 
 
