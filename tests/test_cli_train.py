@@ -83,6 +83,7 @@ def test_eval_and_sample_commands(tmp_path, capsys):
     assert "top_k=1)" in capsys.readouterr().out
     rep = json.loads((tmp_path / "k1.json").read_text())
     assert (rep["top_k"], rep["top_p"], rep["distinct_answers"], rep["entropy"]) == (1, 1.0, 1.0, 0.0)
+    assert str(rep["entropy"]) == "0.0"  # not -0.0 (minus a mean of zeros)
     assert main(["sample", str(run), "--n", "3", "--top-k", "1", "-o", str(tmp_path / "k1.jsonl")]) == 0
     by_prompt = {}
     for line in (tmp_path / "k1.jsonl").read_text().splitlines():

@@ -2,6 +2,7 @@
 from __future__ import annotations
 
 import argparse
+import contextlib
 import json
 import os
 from pathlib import Path
@@ -72,7 +73,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--seed", type=int, default=0, help="bootstrap and sampling seed (default: 0)")
     p.add_argument("--json", metavar="OUT.json", default=None, help="write the full result as JSON")
     p.add_argument("--plot-dir", metavar="DIR", default=None, help="write plan_heatmap.png and plan_curves.png here")
-    p.add_argument("--quiet", action="store_true", help="no progress bar while sampling (model mode)")
+    p.add_argument("--quiet", action="store_true", help="no progress bars while loading and sampling (model mode)")
     add_strategy_arguments(p)
 
 
@@ -244,12 +245,14 @@ def run(args) -> int:
                          rewards=spec["rewards"], lengths=spec.get("lengths"), temperatures=temps, **kw)
     else:
         from bonft.plan.from_model import plan_model
+        from bonft.trainer.checkpoint import quiet_transformers  # loads torch: only in model mode
         from bonft.trainer.models import load_model, pick_device
 
         prompts, verifier, vname = _prompts_and_verifier(args)  # the user's files first: errors before a slow load
         max_new_tokens, whence = _max_new_tokens(args)
         print(f"max_new_tokens {max_new_tokens} ({whence})")
-        model, tokenizer = load_model(args.model, device=pick_device(args.device))
+        with quiet_transformers() if args.quiet else contextlib.nullcontext():  # --quiet: no loading bar either
+            model, tokenizer = load_model(args.model, device=pick_device(args.device))
         temps = temps or parse_list("--temperatures", DEFAULT_TEMPERATURES, float)
         res, info = plan_model(model, tokenizer, prompts, verifier, temperatures=temps, n=args.n, seed=args.seed,
                                top_p=args.top_p, top_k=args.top_k, max_new_tokens=max_new_tokens, batch_size=args.batch_size,

@@ -298,7 +298,7 @@ def report_from_pools(raw: dict, *, ks: Sequence[int], temperature: float, seed:
         step=int(step), ks=ks, n_prompts=P, n_samples=n, temperature=float(temperature),
         pass_at_k=_curve(pass_sum, "pass_at_k"), best_of_k=best,
         mean_reward=float(rewards.mean()), mean_length=float(n_tokens.mean()),
-        distinct_answers=float(raw["distinct"].mean()), entropy=float(-raw["seq_logp"].mean()),
+        distinct_answers=float(raw["distinct"].mean()), entropy=float(-raw["seq_logp"].mean()) + 0.0,
         verifier_failures=int(raw["failures"]), by_group=by_group, eval_verifier=eval_verifier, verifier=verifier or "",
         top_p=float(top_p), top_k=int(top_k),
     )
