@@ -352,12 +352,14 @@ def test_check_tests_reads_a_recipes_split_and_tests_column(tmp_path, monkeypatc
     (["--recipe", "mine.toml"], r"recipe mine.toml has task = 'ledger', which has no tests column: drop --recipe"),
     ([], r"check-tests needs tests: give TESTS.jsonl \(or a data file\) or --recipe RECIPE.toml"),
     (["data.csv"], r"TESTS must be an existing data file or saved datasets directory, got 'data.csv'"),
+    (["q.csv"], r"--prompt-field must name a column of 'q.csv' \(columns: \['question', 'tests'\]\), got 'prompt'"),
 ])
 def test_check_tests_source_refusals(tmp_path, monkeypatch, capsys, argv, message):
     from bonft.cli import main
 
     monkeypatch.chdir(tmp_path)
     (tmp_path / "t.jsonl").write_text('{"prompt": "p", "tests": "assert f(1) == 2"}\n')
+    (tmp_path / "q.csv").write_text('question,tests\n"write f","assert f(1) == 2"\n')  # the option, not the task key
     (tmp_path / "mine.toml").write_text('task = "ledger"\nrl_steps = 1\n')
     assert main(["check-tests", *argv]) == 2
     assert re.search(message, capsys.readouterr().err)

@@ -89,7 +89,14 @@ def data_runner(path: str, prompt_field: str, tests_field: str, options: dict):
     from bonft.tasks.user import UserTask  # reads datasets' formats: only for a data file
     from bonft.verifiers.fields import UnitTests  # (as above)
 
-    task = UserTask(data=path, prompt_field=prompt_field, tests_field=tests_field)
+    try:
+        task = UserTask(data=path, prompt_field=prompt_field, tests_field=tests_field)
+    except ValueError as e:  # the task names its keys; on the command line they are options
+        text = str(e)
+        key = next((k for k in ("prompt_field", "tests_field") if text.startswith(k)), None)
+        if key is None:
+            raise
+        raise ValueError(f"--{key.replace('_', '-')}{text[len(key):]}") from None
     return task.bind_verifier(UnitTests(field=tests_field, **options), task.examples)
 
 
