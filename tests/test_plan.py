@@ -237,6 +237,20 @@ def test_paired_identical_pools_are_never_significantly_different():
     np.testing.assert_allclose(res.value[0], res.value[1])
 
 
+def test_a_temperature_that_solves_nothing_gets_the_exact_interval_not_a_zero_width_one():
+    # 20 prompts that no sample solves at T = 1.4: every per-prompt value is 0 for every k. Clopper & Pearson 1934,
+    # 0 successes in 20, two-sided 95%: [0, 1 - 0.025^(1/20)] = [0, 0.1684]; the other temperature keeps its
+    # percentile interval
+    rng = np.random.default_rng(5)
+    s = rng.normal(size=(20, 6))
+    solved = (rng.random((20, 6)) < 0.4).astype(float)
+    res = plan_pools({0.7: Pools(s, solved), 1.4: Pools(s.copy(), np.zeros((20, 6)))}, n_boot=200, seed=1)
+    np.testing.assert_array_equal(res.value[1], 0.0)
+    np.testing.assert_array_equal(res.lo[1], 0.0)
+    np.testing.assert_allclose(res.hi[1], 1 - 0.025 ** (1 / 20), rtol=1e-12)
+    assert (res.hi[0] > res.lo[0]).all() and (res.hi[0] < 1).all()
+
+
 def test_unpaired_when_prompt_sets_differ():
     rng = np.random.default_rng(4)
     a = Pools(rng.normal(size=(20, 6)), rng.random((20, 6)), prompt_keys=[f"a{i}" for i in range(20)])
