@@ -104,7 +104,7 @@ def recipe_runner(recipe: str, options: dict):
     """The tests of ``recipe``'s training and held-out prompts, as a run binds its unit_tests verifier: the column
     is the ``field`` knob of the recipe's unit_tests verifier (verifier, else eval_verifier), else the task's
     tests_field, else ``tests``."""
-    from bonft.cli.check_verifier import _recipe_tokenizer  # with the trainer's imports: only with --recipe
+    from bonft.cli.check_verifier import _recipe_tokenizer, recipe_knobs  # with the trainer's: only with --recipe
     from bonft.trainer.config import load_config  # loads torch: only with --recipe
     from bonft.trainer.run import task_split  # loads torch: only with --recipe
     from bonft.verifiers.roles import named_verifier  # only with --recipe
@@ -113,8 +113,7 @@ def recipe_runner(recipe: str, options: dict):
     if cfg.task != "user":
         raise ValueError(f"--recipe reads the unit tests of task = 'user' data, but recipe {recipe} has task = "
                          f"{cfg.task!r}, which has no tests column: drop --recipe")
-    knobs = (cfg.verifier_params if cfg.verifier == "unit_tests" else
-             cfg.eval_verifier_params if cfg.eval_verifier == "unit_tests" else {})
+    _, knobs = recipe_knobs(cfg, "unit_tests")
     params = {**({"field": knobs["field"]} if "field" in knobs else {}), **options}
     task, train, held = task_split(cfg, _recipe_tokenizer(cfg))
     return named_verifier(task, list(train) + list(held), "unit_tests", params)

@@ -94,10 +94,7 @@ def bind_recipe_rows(verifier, spec: str, recipe: str, examples: list[dict], exa
     from bonft.trainer.run import task_split  # loads torch: only with --recipe
     from bonft.verifiers.fields import reads_rows
 
-    with_row = next((i for i, ex in enumerate(examples) if "row" in ex), None)
-    if with_row is not None:
-        raise ValueError(f"--recipe binds the rows of the recipe's data, but {examples_path} gives rows of its own "
-                         f"(example {with_row + 1} has 'row'): use one or the other")
+    _refuse_own_rows(examples, examples_path)
     cfg = load_config(recipe)
     if cfg.task != "user":
         raise ValueError(f"--recipe binds the data rows of task = 'user', but recipe {recipe} has task = {cfg.task!r}, "
@@ -127,18 +124,31 @@ def recipe_verifier(spec: str, recipe: str, examples: list[dict], examples_path:
     from bonft.trainer.run import task_split  # loads torch: only with --recipe
     from bonft.verifiers.roles import named_verifier  # only with --recipe
 
-    with_row = next((i for i, ex in enumerate(examples) if "row" in ex), None)
-    if with_row is not None:
-        raise ValueError(f"--recipe binds the rows of the recipe's data, but {examples_path} gives rows of its own "
-                         f"(example {with_row + 1} has 'row'): use one or the other")
+    _refuse_own_rows(examples, examples_path)
     cfg = load_config(recipe)
-    key, params = (("verifier", cfg.verifier_params) if cfg.verifier == spec else
-                   ("eval_verifier", cfg.eval_verifier_params) if cfg.eval_verifier == spec else ("verifier", {}))
+    key, params = recipe_knobs(cfg, spec)
     task, train, held = task_split(cfg, _recipe_tokenizer(cfg))
     everything = list(train) + list(held)
     verifier = named_verifier(task, everything, spec, params, key=key)
     _check_known(examples, everything, recipe, cfg, examples_path)
     return verifier
+
+
+def recipe_knobs(cfg, spec: str) -> tuple[str, dict]:
+    """The recipe key that names the built-in verifier ``spec`` and its knobs: ``verifier_params`` where
+    ``verifier`` names it, else ``eval_verifier_params`` where ``eval_verifier`` does, else none."""
+    if cfg.verifier == spec:
+        return "verifier", dict(cfg.verifier_params)
+    if cfg.eval_verifier == spec:
+        return "eval_verifier", dict(cfg.eval_verifier_params)
+    return "verifier", {}
+
+
+def _refuse_own_rows(examples: list[dict], examples_path: str) -> None:
+    with_row = next((i for i, ex in enumerate(examples) if "row" in ex), None)
+    if with_row is not None:
+        raise ValueError(f"--recipe binds the rows of the recipe's data, but {examples_path} gives rows of its own "
+                         f"(example {with_row + 1} has 'row'): use one or the other")
 
 
 def _check_known(examples: list[dict], everything: list, recipe: str, cfg, examples_path: str) -> None:
