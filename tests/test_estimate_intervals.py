@@ -209,3 +209,11 @@ def test_summarize_ragged_pools():
     assert list(summ.ks) == [1, 2, 4, 5] and summ.smallest_pool == 5
     want = np.stack([[float(brute_best_of_k(list(s), list(r), k)) for k in (1, 2, 4, 5)] for s, r in zip(ss, rr)])
     np.testing.assert_allclose(summ.per_prompt_best_of_k, want, rtol=1e-10, atol=1e-12)
+
+
+def test_reward_bounds_are_known_only_for_rewards_in_the_unit_interval():
+    from bonft.estimate import reward_bounds
+
+    assert reward_bounds(np.array([[0.0, 1.0], [0.5, 1.0]])) == (0.0, 1.0)
+    assert reward_bounds([np.array([0.0]), np.array([1.0, 0.25, 0.0])]) == (0.0, 1.0)  # ragged pools
+    assert reward_bounds(np.array([[0.0, 1.5]])) is None and reward_bounds([np.array([-0.1])]) is None

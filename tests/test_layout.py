@@ -228,7 +228,7 @@ DATA_ARGS = {  # the positional (data) parameters of each public function; every
                         "paired_comparison": ["curves"], "format_interval": ["m", "lo", "hi"],
                         "paired_table": ["comparison"], "t_interval": ["values"], "seed_comparison": ["per_seed"]},
     "estimate.intervals": {"bootstrap_ci": ["values"], "summarize": ["scores", "rewards"],
-                           "default_ks": ["smallest_pool"]},
+                           "default_ks": ["smallest_pool"], "reward_bounds": ["rewards"]},
     "objectives.credit": {"best_of_k_credit": ["scores", "rewards"], "pass_at_k_credit": ["correct"],
                "best_of_k_sft_credit": ["scores", "reference_scores"], "reinforce_credit": ["rewards"],
                "pool_value": ["scores", "rewards"]},

@@ -151,7 +151,7 @@ def _paired_pools(names: list[str], inputs: list[tuple]) -> dict:
 
 
 def run(args: argparse.Namespace) -> int:
-    from bonft.estimate import MIN_BOOT_PROMPTS, default_ks
+    from bonft.estimate import MIN_BOOT_PROMPTS, default_ks, reward_bounds
     from bonft.estimate.paired import paired_comparison, paired_table, per_prompt_curves, seed_comparison
     from bonft.viz import plot_paired_differences
 
@@ -195,9 +195,9 @@ def run(args: argparse.Namespace) -> int:
     curves = {s: {name: per_prompt_curves(p, ks=ks) for name, p in pools.items()} for s, pools in per_seed.items()}
     intervals = S > 1 or P[0] >= MIN_BOOT_PROMPTS
     if S == 1:
-        unit = all(0 <= r.min() and r.max() <= 1 for p in per_seed[labels[0]].values() for r in p["rewards"])
+        bounds = reward_bounds([r for p in per_seed[labels[0]].values() for r in p["rewards"]])
         comp = paired_comparison(curves[labels[0]], ks=ks, baselines=[base], n_boot=args.n_boot, seed=args.seed,
-                                 confidence=args.confidence, intervals=intervals, bounds=(0, 1) if unit else None)
+                                 confidence=args.confidence, intervals=intervals, bounds=bounds)
     else:
         comp = seed_comparison(curves, ks=ks, baselines=[base], confidence=args.confidence)
     for name, runs in zip(names, paths):

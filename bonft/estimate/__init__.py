@@ -4,7 +4,7 @@
   (:func:`best_of_k`, :func:`best_of_k_per_prompt`, :func:`pass_at_k_per_prompt`);
 * :mod:`bonft.estimate.passk` -- pass@k from (n, c) counts (:func:`pass_at_k`);
 * :mod:`bonft.estimate.intervals` -- bootstrap intervals over prompts and the curve summary
-  (:func:`bootstrap_ci`, :func:`default_ks`, :class:`CurveSummary`, :func:`summarize`);
+  (:func:`bootstrap_ci`, :func:`reward_bounds`, :func:`default_ks`, :class:`CurveSummary`, :func:`summarize`);
 * :mod:`bonft.estimate.paired` -- policies compared on the same prompts: per-prompt curves, paired
   bootstrap differences over prompts and Student-t differences over training seeds, and their tables
   (:func:`per_prompt_curves`, :func:`paired_comparison`, :func:`seed_comparison`).
@@ -12,7 +12,7 @@
 Hyper-parameters (``k``, ``ks``, ...) are keyword-only.
 """
 from bonft.estimate.bestofk import best_of_k, best_of_k_per_prompt, pass_at_k_per_prompt
-from bonft.estimate.intervals import MIN_BOOT_PROMPTS, CurveSummary, bootstrap_ci, default_ks, summarize
+from bonft.estimate.intervals import MIN_BOOT_PROMPTS, CurveSummary, bootstrap_ci, default_ks, reward_bounds, summarize
 from bonft.estimate.paired import (
     paired_bootstrap,
     paired_comparison,
@@ -29,6 +29,7 @@ __all__ = [
     "pass_at_k_per_prompt",
     "pass_at_k",
     "bootstrap_ci",
+    "reward_bounds",
     "default_ks",
     "CurveSummary",
     "summarize",

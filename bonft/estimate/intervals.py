@@ -30,7 +30,7 @@ from bonft._core.checks import (
 )
 from bonft.estimate.bestofk import _best_of_k_matrix, _pools, _ragged_best_of_k, _smallest_pool
 
-__all__ = ["bootstrap_ci", "default_ks", "CurveSummary", "summarize", "MIN_BOOT_PROMPTS"]
+__all__ = ["bootstrap_ci", "reward_bounds", "default_ks", "CurveSummary", "summarize", "MIN_BOOT_PROMPTS"]
 
 
 def _check_bounds(bounds) -> tuple[float, float] | None:
@@ -57,6 +57,23 @@ def _all_equal_bound(P: int, confidence: float) -> float:
     approximates its one-sided 95% form).
     """
     return -math.expm1(math.log((1.0 - confidence) / 2.0) / P)
+
+
+def reward_bounds(rewards) -> tuple[float, float] | None:
+    r"""The ``bounds`` of :func:`bootstrap_ci` for best-of-k, pass@k or any strategy's value of these rewards.
+
+    Shape: ``rewards`` an array, or a sequence of arrays (ragged pools) ``-> (0.0, 1.0)`` or None.
+
+    .. math:: \min_i r_i \ge 0 \;\wedge\; \max_i r_i \le 1 \;\Rightarrow\; V_k \in [0, 1]
+
+    Each such value is an average of rewards, so it lies in their range; when a reward lies outside
+    [0, 1] the range is not known from the data and the answer is None.
+
+    References: Clopper & Pearson 1934 (the interval these bounds enable in :func:`bootstrap_ci`).
+    """
+    rows = [rewards] if isinstance(rewards, np.ndarray) else list(rewards)
+    flat = [np.ravel(np.asarray(x, dtype=np.float64)) for x in rows]
+    return (0.0, 1.0) if all(x.size == 0 or (x.min() >= 0 and x.max() <= 1) for x in flat) else None
 
 
 def _zero_spread(values) -> np.ndarray:
@@ -293,8 +310,7 @@ def summarize(scores, rewards, *, ks=None, confidence: float = 0.95, n_boot: int
         best, top = _ragged_best_of_k(s, r, ks_arr), _ragged_best_of_k(r, r, ks_arr)
     else:
         best, top = _best_of_k_matrix(s, r, ks_arr), _best_of_k_matrix(r, r, ks_arr)
-    rows = r if isinstance(r, list) else [r]
-    bounds = (0.0, 1.0) if all(x.min() >= 0 and x.max() <= 1 for x in rows) else None
+    bounds = reward_bounds(r)
     bm, bl, bh = bootstrap_ci(best, confidence=confidence, n_boot=n_boot, seed=seed, bounds=bounds)
     pm, pl, ph = bootstrap_ci(top, confidence=confidence, n_boot=n_boot, seed=seed, bounds=bounds)
     return CurveSummary(

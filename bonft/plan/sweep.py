@@ -50,7 +50,7 @@ from bonft._core.checks import (
     check_real,
     check_seed,
 )
-from bonft.estimate import best_of_k_per_prompt, bootstrap_ci
+from bonft.estimate import best_of_k_per_prompt, bootstrap_ci, reward_bounds
 from bonft.io import group_pools, temperatures_of
 from bonft.plan.decisions import bootstrap_means, finish, fit_best_temperature
 from bonft.plan.result import BudgetChoice, DoublingStep, PlanResult, TemperatureFit
@@ -281,8 +281,7 @@ def plan_pools(
     value = np.stack([v.mean(axis=0) for v in per_prompt])  # (T, K)
     alpha = 1.0 - confidence
     lo, hi = np.quantile(boot, [alpha / 2, 1 - alpha / 2], axis=0)  # (T, K) each
-    flat_rewards = [np.ravel(np.asarray(x, dtype=np.float64)) for r in rewards_l for x in (r if isinstance(r, list) else [r])]
-    if all(x.min() >= 0 and x.max() <= 1 for x in flat_rewards):
+    if reward_bounds([x for r in rewards_l for x in (r if isinstance(r, list) else [r])]) is not None:
         # with rewards in [0, 1], a column where every prompt scores 0 (or 1) has a zero-width percentile interval:
         # bootstrap_ci's exact interval for such a column (Clopper & Pearson 1934) instead; the decisions use `boot`
         for t, v in enumerate(per_prompt):

@@ -17,7 +17,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from bonft._core.checks import check_ks
-from bonft.estimate.intervals import MIN_BOOT_PROMPTS, bootstrap_ci
+from bonft.estimate.intervals import MIN_BOOT_PROMPTS, bootstrap_ci, reward_bounds
 from bonft.strategies.base import _unread_field, get_strategy
 from bonft.strategies.estimators import MAX_SUBSETS
 
@@ -107,10 +107,9 @@ def compare_strategies(strategies, *, ks, rewards, scores=None, answers=None, co
     for key, val in (("scores", scores), ("answers", answers)):  # so can a field none of them reads
         if val is not None and not any(getattr(st, f"uses_{key}") for st in sts):
             raise _unread_field(key, [st.name for st in sts], val)
-    rows = [np.asarray(x, dtype=np.float64) for x in rewards]
     # every strategy's value is a mean of rewards: with rewards in [0, 1] a column all at 0 (or 1) gets the exact
     # interval of bootstrap_ci's bounds, not a zero-width one
-    bounds = (0.0, 1.0) if all(x.size == 0 or (x.min() >= 0 and x.max() <= 1) for x in rows) else None
+    bounds = reward_bounds(rewards if isinstance(rewards, np.ndarray) else [np.asarray(x) for x in rewards])
     out = None
     for st in sts:
         opts = {key: val for key, val in {**given, "seed": seed}.items() if key in st.reads}
