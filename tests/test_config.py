@@ -4,7 +4,8 @@ from pathlib import Path
 
 import pytest
 
-from bonft.trainer.config import TrainConfig, apply_overrides, config_reference, from_dict, load_config, to_toml
+from bonft._core.toml import tomllib
+from bonft.trainer.config import FIELDS, TrainConfig, apply_overrides, config_reference, from_dict, load_config, to_toml
 
 BASE = {"rl_steps": 2}
 
@@ -131,17 +132,18 @@ OLD_KEYS = [("n_train", "train_prompts", 40), ("n_eval", "heldout_prompts", 7), 
 def test_old_key_spelling_is_read_with_a_warning_naming_the_new_key(old, new, value, tmp_path):
     from bonft.trainer.config import DeprecatedKeyWarning
 
+    warm = {} if new == "warm_start_steps" else {"warm_start_steps": 3}  # the warm start's keys need one to take effect
     with pytest.warns(DeprecatedKeyWarning, match=rf"config key '{old}' is now called '{new}'"):
-        assert getattr(make(**{old: value}), new) == value
+        assert getattr(make(**warm, **{old: value}), new) == value
     with pytest.warns(DeprecatedKeyWarning, match=rf"--set config key '{old}' is now called '{new}'"):
         assert apply_overrides({}, [f"{old}={value}"])[new] == value
     recipe = tmp_path / "old.toml"
-    recipe.write_text(f"rl_steps = 2\n{old} = {value}\n")
+    recipe.write_text(f"rl_steps = 2\n{old} = {value}\n" + "".join(f"{k} = {v}\n" for k, v in warm.items()))
     with pytest.warns(DeprecatedKeyWarning, match=rf"'{old}' is now called '{new}'"):
         assert getattr(load_config(recipe), new) == value
     with pytest.warns(DeprecatedKeyWarning), pytest.raises(
             ValueError, match=rf"{old} and {new} are the same key \(old and new spelling\), got both; keep {new}"):
-        make(**{old: value, new: value})
+        make(**warm, **{old: value, new: value})
 
 
 def test_objective_loo_reinforce_is_read_as_reinforce_with_a_warning():
@@ -174,3 +176,44 @@ def test_a_config_with_start_from_writes_no_tiny_model_keys():
 def test_unknown_task_names_the_task_key():
     with pytest.raises(ValueError, match=r"^task must be one of \('ledger', 'restock', 'refunds', .*\), got 'x'$"):
         make(task="x")
+
+
+# A key that cannot take effect is an error, not ignored (the project's rule for every option): the built-in
+# objectives say which keys their credit reads (bonft.trainer.objectives.Objective.reads_k / reads_correct).
+@pytest.mark.parametrize("kw, key", [
+    ({"objective": "reinforce", "k": 4}, "k"),  # reinforce's leave-one-out credit targets the mean reward
+    ({"objective": "reinforce", "k_schedule": "linear", "k_final": 1}, "k_final"),
+    ({"objective": "reinforce", "correct_threshold": 0.7}, "correct_threshold"),
+    ({"objective": "best_of_k", "correct_threshold": 0.7}, "correct_threshold"),  # trains on the rewards themselves
+    ({"objective": "best_of_k_sft", "correct_threshold": 0.7}, "correct_threshold"),
+    ({"objective": "majority_vote", "correct_threshold": 0.7}, "correct_threshold"),
+    ({"warm_start_lr": 1e-3}, "warm_start_lr"),  # warm_start_steps = 0: no warm start runs
+    ({"warm_start_batch_size": 16}, "warm_start_batch_size"),
+])
+def test_a_key_the_run_never_reads_is_refused_naming_it(kw, key):
+    with pytest.raises(ValueError, match=rf"^{key} cannot take effect here \(.*\); leave it unset, got {key}="):
+        make(**kw)
+
+
+def test_keys_are_accepted_where_they_take_effect_and_reinforce_runs_at_k_1():
+    assert make(objective="pass_at_k", correct_threshold=0.7).correct_threshold == 0.7
+    assert make(objective="pass_at_k_positive", correct_threshold=0.7).correct_threshold == 0.7
+    assert make(warm_start_steps=3, warm_start_lr=1e-3, warm_start_batch_size=16).warm_start_lr == 1e-3
+    assert make(objective="mine:objective", correct_threshold=0.7, k=4).k == 4  # an objective of your own may read both
+    # an unset k of reinforce is what it targets, 1, so that k <= n holds with n below the default k of 8
+    cfg = make(objective="reinforce", n=4)
+    assert (cfg.k, FIELDS["k"].default) == (1, 8)
+    assert make(objective="reinforce", k=1).k == 1
+    assert from_dict(tomllib.loads(to_toml(cfg))) == cfg  # the saved recipe reads back to the same run
+
+
+def test_the_demo_leaves_unset_what_each_stage_never_reads(tmp_path):
+    # one demo recipe feeds every stage: its warm-start keys and correct_threshold take effect in some stages only
+    from bonft.trainer.demo.pipeline import DemoConfig, objective_config, warm_config
+
+    dc = DemoConfig(run_dir=str(tmp_path), warm_start_lr=1e-3, warm_start_batch_size=16, correct_threshold=0.7)
+    warm = warm_config(dc, tmp_path)
+    assert (warm.warm_start_lr, warm.warm_start_batch_size) == (1e-3, 16)
+    stages = {name: objective_config(dc, name, str(tmp_path / "w"), tmp_path) for name in ("reinforce", "pass_at_k", "best_of_k")}
+    assert {name: (c.k, c.correct_threshold, c.warm_start_lr, c.warm_start_batch_size) for name, c in stages.items()} == {
+        "reinforce": (1, 0.5, 3e-3, 128), "pass_at_k": (8, 0.7, 3e-3, 128), "best_of_k": (8, 0.5, 3e-3, 128)}

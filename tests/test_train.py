@@ -162,9 +162,9 @@ def test_resume_refuses_a_recipe_that_changes_the_training(tmp_path, reference, 
     out = Path(cfg.run_dir)
     before = {p.name: p.read_bytes() for p in (out / "checkpoints").glob("*/state.pt")}
     config_before = (out / "config.toml").read_text()
-    changed = tiny(tmp_path, "mixed", save_every=0, objective="reinforce", lr=0.5)
-    with pytest.raises(ValueError, match=r"the recipe changes 1 key\(s\) that shape the training: "
-                                         r"objective: \"pass_at_k\" -> \"reinforce\"\. Resume with"):
+    changed = tiny(tmp_path, "mixed", save_every=0, objective="reinforce", k=1, lr=0.5)
+    with pytest.raises(ValueError, match=r"the recipe changes 2 key\(s\) that shape the training: "
+                                         r"objective: \"pass_at_k\" -> \"reinforce\"; k: 2 -> 1\. Resume with"):
         T.train(changed, resume=True, progress=False)
     assert {p.name: p.read_bytes() for p in (out / "checkpoints").glob("*/state.pt")} == before
     assert (out / "config.toml").read_text() == config_before
@@ -199,7 +199,8 @@ def test_a_training_verifier_that_fails_on_every_sample_stops_the_run_before_the
         T.train(cfg, progress=False)
     assert load_state(latest_checkpoint(cfg.run_dir))["step"] == 4  # the warm start's checkpoint, kept
     recipe = tmp_path / "broken.toml"
-    recipe.write_text(to_toml(tiny(tmp_path, "broken-cli", verifier="broken_grader:score", warm_start_steps=0)))
+    recipe.write_text(to_toml(tiny(tmp_path, "broken-cli", verifier="broken_grader:score", warm_start_steps=0,
+                                       warm_start_lr=3e-3, warm_start_batch_size=128)))
     assert main(["train", str(recipe), "--quiet"]) == 2  # a user error, not a traceback
 
 

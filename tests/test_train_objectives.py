@@ -258,7 +258,7 @@ def test_a_registered_objective_trains_like_the_builtin_with_the_same_credit(tmp
     try:
         recs = []
         for name in ("reinforce", "my_reinforce"):
-            run = _tiny_run(tmp_path, objective=name, reward_source="scores")
+            run = _tiny_run(tmp_path, objective=name, reward_source="scores", k=1)  # reinforce reads no k: 1 or unset
             run.verifiers["train"] = lambda ps, rs: np.array([float(len(r) % 2) for r in rs])
             recs.append(rl_step(run, 0, Stopwatch()))
             recs[-1]["grad"] = torch.cat([p.grad.reshape(-1) for p in run.module.parameters() if p.grad is not None])
@@ -287,7 +287,7 @@ def test_a_recipe_names_an_objective_of_its_own_by_module_and_it_trains_like_the
     spec = "my_objectives_t:mine"
     try:
         base = dict(layers=1, width=32, heads=2, max_positions=48, train_prompts=32, heldout_prompts=4, rl_steps=2,
-                    prompts_per_step=4, n=4, k=2, max_new_tokens=5, verifier="parity_grader_t:score", eval_samples=4,
+                    prompts_per_step=4, n=4, k=1, max_new_tokens=5, verifier="parity_grader_t:score", eval_samples=4,
                     eval_ks=[1, 2], n_boot=20, plots=False, save_every=0, eval_at_start=False, log_every=1)
         out = {}
         for name in ("reinforce", spec):

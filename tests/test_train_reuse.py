@@ -27,9 +27,9 @@ from bonft.trainer.config import TrainConfig, from_dict
 
 SCRIPTS = Path(__file__).parent / "dist_scripts"  # the toy verifier: varied rewards even for a random model
 TOY = dict(layers=1, width=32, heads=2, max_positions=48, train_prompts=64, heldout_prompts=6, warm_start_steps=0,
-           rl_steps=2, prompts_per_step=4, n=4, k=2, lr=1e-2, eval_samples=4, eval_ks=[1, 4], n_boot=50, log_every=1,
+           rl_steps=2, prompts_per_step=4, n=4, k=1, lr=1e-2, eval_samples=4, eval_ks=[1, 4], n_boot=50, log_every=1,
            save_every=0, max_new_tokens=6, plots=False, eval_at_start=False, threads=1, objective="reinforce",
-           reward_source="scores", verifier="toy_verifier:digit_share", correct_threshold=0.2, clip_grad_norm=0.0)
+           reward_source="scores", verifier="toy_verifier:digit_share", clip_grad_norm=0.0)
 
 
 def toy(tmp_path, name, **kw):

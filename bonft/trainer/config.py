@@ -171,10 +171,12 @@ class TrainConfig:
                                "Supervised warm-start steps (NLL of the reference responses) before RL. 0 = "
                                "skip. (old spelling: sft_steps)", group="warm_start")
     warm_start_batch_size: int = _f(128,
-                                    "Prompts per warm-start step, <= 65,536 (old spelling: sft_batch_size).",
+                                    "Prompts per warm-start step, <= 65,536; needs warm_start_steps >= 1 (old spelling: "
+                                    "sft_batch_size).",
                                     group="warm_start")
     warm_start_lr: float = _f(3e-3,
-                              "Warm-start learning rate (AdamW, cosine decay to 10%) (old spelling: sft_lr).", group="warm_start")
+                              "Warm-start learning rate (AdamW, cosine decay to 10%); needs warm_start_steps >= 1 (old spelling: "
+                              "sft_lr).", group="warm_start")
     # --- RL stage ---
     objective: str = _f("pass_at_k", f"What the RL stage optimises: one of {', '.join(OBJECTIVES)}, or 'module:name' "
                         "naming an Objective of your own (docs/training.md, Objectives).", group="rl")
@@ -183,8 +185,8 @@ class TrainConfig:
                                "<= 2**20 responses sampled at once.", group="rl")
     n: int = _f(16, "Responses sampled per prompt, <= 65,536.", group="rl")
     k: int = _f(8,
-                "k of best-of-k / pass@k that the objective targets (1 <= k <= n). It has no effect on "
-                "reinforce, which targets the mean reward (pass@1).", group="rl")
+                "k of best-of-k / pass@k that the objective targets (1 <= k <= n). reinforce targets the mean "
+                "reward (pass@1): its k is 1, and setting another is an error.", group="rl")
     k_final: int = _f(0,
                       "k at the last RL step when annealing k (e.g. from k=16 toward 1). 0 = keep k constant.", group="rl")
     k_schedule: str = _f("constant", f"How k moves from k to k_final: one of {', '.join(K_SCHEDULES)}.", group="rl")
@@ -250,7 +252,9 @@ class TrainConfig:
                             "train on the verifier's scores only (e.g. against a reward model; with "
                             "verifier='proxy' this shows reward hacking).", group="rl")
     correct_threshold: float = _f(0.5,
-                                  "A sample counts as correct for pass@k objectives when its reward is >= this.", group="rl")
+                                  "A sample counts as correct for the pass@k objectives (pass_at_k, pass_at_k_plugin, "
+                                  "pass_at_k_positive) when its reward is >= this; the others train on the rewards "
+                                  "themselves, and setting it with them is an error.", group="rl")
     # --- evaluation ---
     eval_every: int = _f(0,
                          "Evaluate every this many RL steps (and always before and after RL); 0 = only before "
@@ -336,6 +340,7 @@ def validate(c: TrainConfig) -> None:
     check_choice("device", c.device, ("cpu", "cuda", "auto"))
     check_int("n", c.n, min=1)
     check_int("k", c.k, min=1)
+    check_read_keys(c)
     if c.k > c.n:
         raise ValueError(f"k must be <= n (n={c.n}), got k={c.k}")
     if c.k_final > c.n:
@@ -400,6 +405,38 @@ def validate(c: TrainConfig) -> None:
     if c.warm_start_steps == 0 and c.rl_steps == 0 and not c.start_from:
         raise ValueError("nothing to train: warm_start_steps and rl_steps are both 0 (set one, e.g. --set rl_steps=100)")
     check_task_sizes(c)
+
+
+def unread_keys(objective: str, warm_start_steps: int) -> dict[str, str]:
+    """The keys a run of ``objective`` with ``warm_start_steps`` never reads, each with why.
+
+    A built-in objective says which keys its credit reads (:class:`bonft.trainer.objectives.Objective`);
+    an objective of your own ('module:name') is assumed to read them all.
+    """
+    out = {}
+    obj = OBJECTIVES.get(objective)
+    if obj is not None and not obj.reads_k:
+        why = f"objective {objective!r} targets the mean reward (pass@1) and reads no k"
+        out.update(k=why, k_final=why, k_schedule=why)
+    if obj is not None and not obj.reads_correct:
+        out["correct_threshold"] = (f"objective {objective!r} trains on the rewards themselves; only pass_at_k, "
+                                    f"pass_at_k_plugin and pass_at_k_positive count a sample correct at a threshold")
+    if warm_start_steps == 0:
+        why = "warm_start_steps = 0 runs no warm start"
+        out.update(warm_start_lr=why, warm_start_batch_size=why)
+    return out
+
+
+def check_read_keys(c: TrainConfig) -> None:
+    """Refuse a key set where it cannot take effect (:func:`unread_keys`); an unset ``k`` of an objective that
+    reads none becomes 1 (what it targets), so that ``k <= n`` holds for any ``n``."""
+    unread = unread_keys(c.objective, c.warm_start_steps)
+    for key, why in unread.items():
+        if _is_default(c, key) or (key == "k" and c.k == 1):
+            continue
+        raise ValueError(f"{key} cannot take effect here ({why}); leave it unset, got {key}={_toml_value(getattr(c, key))}")
+    if "k" in unread:
+        c.k = 1
 
 
 def _is_default(c: TrainConfig, key: str) -> bool:

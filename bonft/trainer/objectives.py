@@ -62,6 +62,9 @@ class Objective:
     ``value`` is the pool's own estimate of the targeted quantity (logged as
     ``pool/value``); ``reference``: the loss adds ``-log pi(reference)`` per prompt;
     ``answers``: the pools must carry answer keys (:attr:`Pools.answers`, extracted by the task).
+    ``reads_k``, ``reads_correct``: the credit reads ``k`` / :attr:`Pools.correct` (so the config keys
+    ``k``, ``k_final``, ``k_schedule`` / ``correct_threshold`` take effect); a config that sets a key its
+    objective does not read is refused. An objective of your own is assumed to read both.
     """
 
     credit: Callable[[Pools, int], torch.Tensor]
@@ -69,6 +72,8 @@ class Objective:
     summary: str
     reference: bool = False
     answers: bool = False
+    reads_k: bool = True
+    reads_correct: bool = True
 
 
 def _pass_at_k(estimator: str, positive_only: bool) -> Callable:
@@ -100,10 +105,11 @@ def _vote(name: str) -> tuple[Callable, Callable]:
 OBJECTIVES: dict[str, Objective] = {
     "reinforce": Objective(
         credit=lambda p, k: C.reinforce_credit(p.rewards, baseline="loo"), value=lambda p, k: p.rewards.mean(-1),
+        reads_k=False, reads_correct=False,
         summary="mean reward (pass@1), leave-one-out REINFORCE (Kool et al. 2019): the baseline"),
     "best_of_k": Objective(
         credit=lambda p, k: C.best_of_k_credit(p.scores, p.rewards, k=k, baseline="loo"),
-        value=lambda p, k: C.pool_value(p.scores, p.rewards, k=k),
+        value=lambda p, k: C.pool_value(p.scores, p.rewards, k=k), reads_correct=False,
         summary="best-of-k with the training verifier selecting (Chow et al. 2024, BoN-RL)"),
     "pass_at_k": Objective(
         credit=_pass_at_k("unbiased", False), value=_pass_value,
@@ -114,13 +120,13 @@ OBJECTIVES: dict[str, Objective] = {
         credit=_pass_at_k("unbiased", True), value=_pass_value, summary="pass@k, credit on correct samples only"),
     "best_of_k_sft": Objective(
         credit=lambda p, k: C.best_of_k_sft_credit(p.scores, p.reference_scores, k=k),
-        value=None, reference=True,
+        value=None, reference=True, reads_correct=False,
         summary="best-of-k-aware supervised fine-tuning on reference answers (Chow et al. 2024, BoN-SFT)"),
     "majority_vote": Objective(
-        *_vote("majority_vote"), answers=True,
+        *_vote("majority_vote"), answers=True, reads_correct=False,
         summary="majority vote over k answers, exact U-statistic credit by a count DP (Wang et al. 2023 self-consistency)"),
     "weighted_vote": Objective(
-        *_vote("weighted_vote"), answers=True,
+        *_vote("weighted_vote"), answers=True, reads_correct=False,
         summary="verifier-weighted vote over k answers (Li et al. 2023), U-statistic credit (sampled k-subsets when C(n,k) is large)"),
 }
 

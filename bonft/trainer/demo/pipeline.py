@@ -19,7 +19,7 @@ from bonft.estimate.paired import per_prompt_curves
 from bonft.io import group_pools, read_samples
 from bonft.tasks import TASKS, get_task
 from bonft.trainer.checkpoint import latest_checkpoint, quiet_transformers
-from bonft.trainer.config import MODEL_KEYS, TrainConfig, read_recipe
+from bonft.trainer.config import MODEL_KEYS, TrainConfig, read_recipe, unread_keys
 from bonft.trainer.demo.schedule import Workers, run_jobs
 from bonft.trainer.demo.stats import LABELS, best_temperatures, seed_table
 from bonft.trainer.evaluation import HELDOUT_SAMPLES, collect_pools
@@ -118,6 +118,8 @@ def stage_config(dc: DemoConfig, **kw) -> TrainConfig:
     values.update(kw)
     if values["start_from"]:  # the model comes from start_from: the tiny model's keys stay unset
         values.update({name: getattr(TrainConfig, name) for name in MODEL_KEYS})
+    # keys the stage never reads (the warm start's in an RL stage, k of reinforce...) stay unset: setting them is an error
+    values.update({name: getattr(TrainConfig, name) for name in unread_keys(values["objective"], values["warm_start_steps"])})
     return TrainConfig(**values)
 
 
@@ -193,7 +195,7 @@ def objective_config(dc: DemoConfig, objective: str, warm: str, out: Path) -> Tr
     elif objective == "best_of_k":
         extra = {"objective": "best_of_k", "k": dc.k, "verifier": training_verifier(objective)}
     else:
-        extra = {"objective": objective, "k": 1 if objective == "reinforce" else dc.k}
+        extra = {"objective": objective, "k": dc.k}
     return stage_config(dc, name=objective, run_dir=str(out / objective), start_from=warm, warm_start_steps=0, rl_steps=dc.rl_steps,
                  eval_at_start=False, **extra)
 
