@@ -79,7 +79,11 @@ def test_reading_the_test_text():
 
 
 def test_weak_tests_are_caught(runner):
-    report = probe_code_tests(WEAK, runner=CodeRunner(WEAK, wall_time=3.0, memory_mb=256))
+    from bonft.verifiers import UncheckedTestsWarning
+
+    with pytest.warns(UncheckedTestsWarning, match=r"^1 of 3 prompts' tests check nothing .*tests\['write sort_list\(xs\)'\]"):
+        weak_runner = CodeRunner(WEAK, wall_time=3.0, memory_mb=256)  # sort_list's tests call it and check nothing
+    report = probe_code_tests(WEAK, runner=weak_runner)
     got = {r.prompt: set(r.passed) for r in report.results}
     assert {"constant_reply", "memorised_asserts"} <= got["write add(a, b)"]
     assert not {"silent_none", "raise_everywhere", "equal_to_anything", "echo_expected"} & got["write add(a, b)"]

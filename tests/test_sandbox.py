@@ -230,6 +230,27 @@ def test_tests_without_a_statement_are_refused(code):
     assert CodeRunner({"p": "# a comment\nassert f() == 1"}).tests == {"p": "# a comment\nassert f() == 1"}
 
 
+@pytest.mark.parametrize("code, checks", [
+    ("f(2)", False), ("print(f(2))\nx = f(3)", False),
+    ("assert f(2) == 4", True), ("if f(2) != 4:\n    raise SystemExit(1)", True),
+    ("def check():\n    assert f(2) == 4\ncheck()", True),  # a helper's body counts
+    ("import unittest\nunittest.TestCase().assertEqual(f(2), 4)", True),  # unittest's assert methods
+    ("import numpy.testing as nt\nnt.assert_allclose(f(2), 4)", True),
+])
+def test_tests_that_check_nothing_are_named_in_a_warning(code, checks, recwarn):
+    # common practice (no source): tests with statements but no check fail a candidate only when it raises or exits
+    from bonft.verifiers import UncheckedTestsWarning
+
+    CodeRunner({"p": code, "q": "assert f(1) == 2"})
+    got = [str(w.message) for w in recwarn if issubclass(w.category, UncheckedTestsWarning)]
+    assert got == ([] if checks else [
+        "1 of 2 prompts' tests check nothing (no assert, no raise, no assert...() or fail() call; the first: tests['p']): "
+        "they fail a candidate only when it raises or exits, so any solution that runs passes them; assert on the "
+        "solution's results (bonft check-tests finds such tests)"])
+    if code == "f(2)":  # why it warns: a wrong solution passes them
+        assert CodeRunner({"p": code}, workers=1)(["p"], ["def f(x):\n    return 0"]).scores.tolist() == [1.0]
+
+
 def test_runner_arguments_are_validated():
     with pytest.raises(ValueError, match=r"tests\['p'\] must be valid Python, got a SyntaxError at line 1"):
         CodeRunner({"p": "assert ("})

@@ -7,12 +7,12 @@ from bonft.verifiers.fields import UnitTests, bind_rows
 from bonft.verifiers.kinds import VERIFIER_KINDS, make_verifier
 from bonft.verifiers.proxies import NoisyProxy
 from bonft.verifiers.reward_model import RewardModel
-from bonft.verifiers.sandbox.runner import CodeRunner, RunResult
+from bonft.verifiers.sandbox.runner import CodeRunner, RunResult, UncheckedTestsWarning
 from bonft.verifiers.scoring import VerifierError, load_verifier, score_batch
 
 __all__ = [
     "Verdicts", "Verifier", "as_verdicts", "VerifierError", "load_verifier", "score_batch",
-    "ExactMatch", "NumericMatch", "extract_answer", "CodeRunner", "RunResult",
+    "ExactMatch", "NumericMatch", "extract_answer", "CodeRunner", "RunResult", "UncheckedTestsWarning",
     "NoisyProxy", "WeightedSum", "MinOf", "Cached",
     "UnitTests", "RewardModel", "bind_rows", "VERIFIER_KINDS", "make_verifier",
 ]

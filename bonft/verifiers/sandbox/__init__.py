@@ -12,6 +12,6 @@
 
 Running model-written code is dangerous: this lowers the risk, it is not a security boundary.
 """
-from bonft.verifiers.sandbox.runner import CodeRunner, RunResult, extract_code
+from bonft.verifiers.sandbox.runner import CodeRunner, RunResult, UncheckedTestsWarning, extract_code
 
-__all__ = ["CodeRunner", "RunResult", "extract_code"]
+__all__ = ["CodeRunner", "RunResult", "UncheckedTestsWarning", "extract_code"]

@@ -143,8 +143,29 @@ def _int(name: str, value: Any, *, lo: int, hi: int) -> int:
     return check_int(name, value, min=lo, max=hi)
 
 
-def check_tests_code(code: str) -> None:
-    """Refuse test code that is not Python, or has no statement (blank or comments only: any code would pass it).
+class UncheckedTestsWarning(UserWarning):
+    """Unit tests that check nothing: no ``assert``, no ``raise`` and no call of an ``assert...`` or ``fail``
+    function anywhere in their code, so they fail a candidate only when it raises or exits, and any
+    solution that runs passes them (a forged reward a trained policy finds)."""
+
+
+def _checks_something(tree: ast.AST) -> bool:
+    """Does the tests' code hold a check: an ``assert`` or ``raise`` statement, or a call of a function named
+    ``assert...`` or ``fail`` (unittest's and numpy.testing's spellings), anywhere, helpers' bodies included?"""
+    for node in ast.walk(tree):
+        if isinstance(node, (ast.Assert, ast.Raise)):
+            return True
+        if isinstance(node, ast.Call):
+            f = node.func
+            name = f.attr if isinstance(f, ast.Attribute) else f.id if isinstance(f, ast.Name) else ""
+            if name.startswith("assert") or name == "fail":
+                return True
+    return False
+
+
+def check_tests_code(code: str) -> bool:
+    """Refuse test code that is not Python, or has no statement (blank or comments only: any code would pass it);
+    return whether it checks anything (:class:`UncheckedTestsWarning`: tests with statements but no check).
 
     The ``ValueError`` message starts with ``must ...``, for the caller to put the prompt in front.
     """
@@ -156,6 +177,7 @@ def check_tests_code(code: str) -> None:
     if not tree.body:
         raise ValueError("must hold at least one statement, got none (only blanks or comments): any code would pass "
                          "these tests; give the prompt asserts that call the solution")
+    return _checks_something(tree)
 
 
 class CodeRunner:
@@ -174,7 +196,9 @@ class CodeRunner:
                       and the candidate's process then ends normally; an exit
                       (even status 0), an exception or a limit hit before that
                       is not a pass. Test code with no statement (blank or
-                      comments only) is a ValueError: any code would pass it.
+                      comments only) is a ValueError: any code would pass it;
+                      code with no check (no assert, raise, assert...() or
+                      fail() call) gives an ``UncheckedTestsWarning``.
     wall_time:        seconds of wall clock per candidate (then SIGKILL -> ``timeout``).
     cpu_time:         CPU seconds (RLIMIT_CPU; SIGXCPU -> ``limit-exceeded``);
                       default ``wall_time + 1`` so that a busy loop reads as a timeout.
@@ -211,13 +235,20 @@ class CodeRunner:
                  isolate_network: bool = True, code_from_fence: bool = True, pool: bool = False) -> None:
         if not isinstance(tests, Mapping):
             raise TypeError(f"tests must be a mapping prompt -> test code, got {type(tests).__name__}")
+        unchecked = []
         for p, code in tests.items():
             if not isinstance(p, str) or not isinstance(code, str):
                 raise TypeError(f"tests must map str prompts to str test code, got {type(p).__name__} -> {type(code).__name__}")
             try:
-                check_tests_code(code)
+                if not check_tests_code(code):
+                    unchecked.append(p)
             except ValueError as e:
                 raise ValueError(f"tests[{p!r:.40}] {e}") from None
+        if unchecked:
+            warnings.warn(f"{len(unchecked)} of {len(tests)} prompts' tests check nothing (no assert, no raise, no "
+                          f"assert...() or fail() call; the first: tests[{unchecked[0]!r:.40}]): they fail a candidate "
+                          f"only when it raises or exits, so any solution that runs passes them; assert on the "
+                          f"solution's results (bonft check-tests finds such tests)", UncheckedTestsWarning, stacklevel=2)
         self.tests = dict(tests)
         self.wall_time = _real("wall_time", wall_time, minimum=0.1)
         self.cpu_time = self.wall_time + 1 if cpu_time is None else _real("cpu_time", cpu_time, minimum=1)
