@@ -1,12 +1,15 @@
 """score_batch isolates failing samples; load_verifier finds verifiers by name."""
 import logging
 import math
+import re
 import time
+import warnings
+from dataclasses import dataclass
 
 import numpy as np
 import pytest
 
-from bonft.verifiers import Verdicts, VerifierError, load_verifier, score_batch
+from bonft.verifiers import BatchFallbackWarning, Verdicts, VerifierError, load_verifier, score_batch
 
 
 def picky(prompts, responses):
@@ -70,6 +73,52 @@ def test_wrong_length_falls_back_per_sample():
     v = score_batch(sometimes_short, ["p"] * 3, ["a", "b", "c"])
     assert calls == [3, 1, 1, 1]
     np.testing.assert_array_equal(v.scores, [2.0, 2.0, 2.0])
+
+
+def oom(prompts, responses):
+    """Runs out of memory on a batch of more than 2; scores len(r) otherwise."""
+    if len(responses) > 2:
+        raise MemoryError()
+    return [float(len(r)) for r in responses]
+
+
+@dataclass
+class Dedup:
+    """One score per distinct response (a dataclass instance: unhashable, remembered by name)."""
+
+    def __call__(self, prompts, responses):
+        return [float(len(r)) for r in dict.fromkeys(responses)]
+
+
+@pytest.mark.parametrize("make, batch, cause", [
+    (lambda: oom, ["a", "bb", "ccc"], "MemoryError"),
+    (Dedup, ["a", "bb", "a"], "ValueError: the verifier returned 2 scores for 3 (prompt, response) pairs"),
+])
+def test_a_broken_batch_call_is_warned_once_and_scored_as_before(make, batch, cause):
+    verifier = make()
+    with pytest.warns(BatchFallbackWarning, match=rf"verifier \S+ failed on a batch of 3 \({re.escape(cause)}\); bonft "
+                                                  r"scored the batch one sample per call though each of its samples "
+                                                  r"scored fine alone: its batched call is broken\. .*\(3 calls "
+                                                  r"instead of 1 here\)"):
+        v = score_batch(verifier, ["p"] * 3, batch)
+    # the one-sample calls give the scores: len(r) of each response (hand-counted)
+    np.testing.assert_array_equal(v.scores, [float(len(r)) for r in batch])
+    assert not v.failed.any() and v.batch_failure == cause
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")  # shown once per verifier (an unhashable one by its name): the second is silent
+        again = score_batch(make() if make is Dedup else verifier, ["p"] * 3, batch)
+        assert again.batch_failure == cause
+        assert score_batch(verifier, ["p"] * 2, ["a", "bb"]).batch_failure is None  # the batch call worked
+
+
+def test_a_batch_fallback_that_isolates_failures_says_so():
+    def crashes_on_boom(prompts, responses):
+        return [1.0 / (r != "boom") for r in responses]
+
+    with pytest.warns(BatchFallbackWarning, match=r"crashes_on_boom failed on a batch of 3 \(ZeroDivisionError: "
+                                                  r"float division by zero\); .* to isolate the 1 sample\(s\) it fails on"):
+        v = score_batch(crashes_on_boom, ["p"] * 3, ["a", "boom", "c"])
+    np.testing.assert_array_equal(v.failed, [False, True, False])
 
 
 def test_bad_arguments_name_themselves():

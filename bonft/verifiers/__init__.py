@@ -8,10 +8,11 @@ from bonft.verifiers.kinds import VERIFIER_KINDS, make_verifier
 from bonft.verifiers.proxies import NoisyProxy
 from bonft.verifiers.reward_model import RewardModel
 from bonft.verifiers.sandbox.runner import CodeRunner, RunResult, UncheckedTestsWarning
-from bonft.verifiers.scoring import VerifierError, load_verifier, score_batch
+from bonft.verifiers.scoring import BatchFallbackWarning, VerifierError, load_verifier, score_batch
 
 __all__ = [
-    "Verdicts", "Verifier", "as_verdicts", "VerifierError", "load_verifier", "score_batch",
+    "Verdicts", "Verifier", "as_verdicts", "VerifierError", "BatchFallbackWarning", "load_verifier",
+    "score_batch",
     "ExactMatch", "NumericMatch", "extract_answer", "CodeRunner", "RunResult", "UncheckedTestsWarning",
     "NoisyProxy", "WeightedSum", "MinOf", "Cached",
     "UnitTests", "RewardModel", "bind_rows", "VERIFIER_KINDS", "make_verifier",

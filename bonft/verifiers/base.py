@@ -49,12 +49,16 @@ class Verdicts:
     failed:   (N,) bool, True where the verifier failed on that sample
               (raised, timed out, returned NaN) and ``scores`` holds the failure score.
     reasons:  length-N list, a short reason string where ``failed`` (else None).
+    batch_failure: set by :func:`bonft.verifiers.score_batch` where the call on the whole batch (of 2
+              or more) failed and the batch was scored one sample per call: the cause, such as
+              ``"MemoryError"`` or ``"ValueError: the verifier returned 2 scores for 3 ..."``; else None.
     """
 
     scores: np.ndarray
     rewards: np.ndarray | None = None
     failed: np.ndarray | None = None
     reasons: list[str | None] | None = None
+    batch_failure: str | None = None
 
     def __post_init__(self) -> None:
         self.scores = _numbers("scores", self.scores)

@@ -5,6 +5,10 @@ A verifier that raises, hangs or returns NaN on one sample must not end a
 long run nor poison an estimate silently: the batch is retried one sample at a
 time to isolate the bad samples, which get ``failure_score``, ``failed=True``
 and a reason; failures are counted and logged (logger ``bonft.verifiers``).
+A verifier whose call on a batch fails while its samples score fine one at a
+time (it runs out of memory on a batch, or returns one score per distinct
+response) costs one call per sample on every batch: the first such fallback of
+each verifier is a :class:`BatchFallbackWarning` naming it and the cause.
 
 Caution: :func:`load_verifier` imports and runs the named module or file, with
 the rights of the current process (the working directory, or the file's folder,
@@ -17,6 +21,8 @@ import logging
 import math
 import numbers
 import threading
+import warnings
+import weakref
 from typing import Any, Callable, Sequence
 
 import numpy as np
@@ -30,6 +36,48 @@ log = logging.getLogger("bonft.verifiers")
 
 class VerifierError(RuntimeError):
     """Raised by :func:`score_batch` with ``strict=True`` when the verifier fails."""
+
+
+class BatchFallbackWarning(UserWarning):
+    """The verifier's call on a whole batch failed and :func:`score_batch` scored it one sample per call.
+
+    Shown once per verifier: training then pays one verifier call per sample on every such batch.
+    """
+
+
+# verifiers whose batch fallback was already shown (by object where it can be weakly referenced, else by name)
+_fallback_shown: weakref.WeakSet = weakref.WeakSet()
+_fallback_shown_names: set[str] = set()
+
+
+def _verifier_name(verifier: Any) -> str:
+    fn = verifier if hasattr(verifier, "__qualname__") else type(verifier)
+    module = getattr(fn, "__module__", None)
+    name = getattr(fn, "__qualname__", None) or type(verifier).__name__
+    return f"{module}.{name}" if module else name
+
+
+def _warn_fallback(verifier: Any, n: int, reason: str, n_failed: int) -> None:
+    """One :class:`BatchFallbackWarning` per verifier: its first batch that was scored one sample per call."""
+    name = _verifier_name(verifier)
+    try:
+        if verifier in _fallback_shown:
+            return
+        _fallback_shown.add(verifier)
+    except TypeError:  # not weakly referenceable: remembered by name
+        if name in _fallback_shown_names:
+            return
+        _fallback_shown_names.add(name)
+    if n_failed:
+        why = f"to isolate the {n_failed} sample(s) it fails on"
+    else:
+        why = "though each of its samples scored fine alone: its batched call is broken"
+    warnings.warn(
+        f"verifier {name} failed on a batch of {n} ({reason}); bonft scored the batch one sample per call {why}. "
+        f"Every batch whose call fails costs one call per sample ({n} calls instead of 1 here); "
+        "this warning is shown once per verifier",
+        BatchFallbackWarning, stacklevel=3,
+    )
 
 
 def check_batch(prompts: Any, responses: Any) -> tuple[list[str], list[str]]:
@@ -118,7 +166,9 @@ def score_batch(
 
     The verifier is called once on the whole batch. If that call raises, times
     out, or returns the wrong number of scores, it is retried one sample at a
-    time. A sample whose call raises or times out, or whose score (or reward)
+    time (``batch_failure`` then holds the cause; the first time for each
+    verifier, a :class:`BatchFallbackWarning` names the verifier and the cause).
+    A sample whose call raises or times out, or whose score (or reward)
     is NaN or infinite, gets ``scores = failure_score`` (and
     ``rewards = failure_score`` when the verifier reports rewards),
     ``failed = True`` and a reason such as ``"ZeroDivisionError: division by
@@ -150,8 +200,12 @@ def score_batch(
     except Exception as e:  # noqa: BLE001
         if strict:
             raise VerifierError(f"the verifier failed on a batch of {n}: {_reason(e)}") from e
-        log.info("verifier failed on a batch of %d (%s); retrying one sample at a time", n, _reason(e))
+        reason = _reason(e)
+        log.info("verifier failed on a batch of %d (%s); retrying one sample at a time", n, reason)
         v = _per_sample(verifier, prompts, responses, timeout, failure_score)
+        if n > 1:
+            v.batch_failure = reason
+            _warn_fallback(verifier, n, reason, v.n_failed)
 
     # non-finite scores / rewards are failures too
     scores = v.scores.copy()
@@ -177,7 +231,7 @@ def score_batch(
     if strict and failed.any():
         i = int(np.argmax(failed))
         raise VerifierError(f"the verifier failed on sample {i}: {reasons[i]}")
-    out = Verdicts(scores=scores, rewards=rewards, failed=failed, reasons=reasons)
+    out = Verdicts(scores=scores, rewards=rewards, failed=failed, reasons=reasons, batch_failure=v.batch_failure)
     if out.n_failed:
         common = collections.Counter(r for r, f in zip(reasons, failed) if f).most_common(3)
         log.warning(
