@@ -7,6 +7,8 @@ leave-one-out REINFORCE (Kool et al. 2019) is the unbiased credit for k = 1.
 """
 from __future__ import annotations
 
+import itertools
+import re
 import signal
 import threading
 import time
@@ -142,3 +144,108 @@ def test_cli_time_limit(tmp_path, capsys):
                "--time-limit", "2"])
     out = capsys.readouterr().out
     assert rc == 1 and "PROBLEM: the credit did not return within the time limit of 2 s: it was working on policy 1" in out
+
+
+# ---------------------------------------------------------------- credits the enumeration cannot stand for
+
+def _loo(scores, rewards, *, k):
+    """Leave-one-out REINFORCE for k = 1, written out (Kool et al. 2019): (R_i - mean of the others) / n."""
+    n = rewards.shape[1]
+    return (rewards - (rewards.sum(1, keepdims=True) - rewards) / (n - 1)) / n
+
+
+def _axis0(scores, rewards, *, k):  # baseline averaged over the batch axis: mixes prompts
+    return (rewards - rewards.mean(0, keepdims=True)) / rewards.shape[1]
+
+
+def _batch_mean(scores, rewards, *, k):  # baseline the mean of the whole batch
+    return (rewards - rewards.mean()) / rewards.shape[1]
+
+
+_tie_rng = np.random.default_rng(5)
+
+
+def _random_ties(scores, rewards, *, k):
+    """Best-of-2 credit for n = 3, w_i = (mean payoff of the 3 pairs) - (payoff of the pair without i) (the
+    U-statistic with a leave-one-out baseline, as in bonft.strategies.estimators), each pair's tie broken by a
+    draw: unbiased on average over the draws, but two calls differ."""
+    B, n = rewards.shape
+    pairs = list(itertools.combinations(range(n), 2))
+    w = np.zeros((B, n))
+    for b in range(B):
+        f = {}
+        for i, j in pairs:
+            top = [m for m in (i, j) if scores[b, m] == max(scores[b, i], scores[b, j])]
+            f[i, j] = rewards[b, _tie_rng.choice(top)]
+        mean = sum(f.values()) / len(pairs)
+        w[b] = [mean - f[tuple(m for m in range(n) if m != i)] for i in range(n)]
+    return w
+
+
+def _batch_projection(credit, pols, n):
+    """Brute force over every batch of two prompts (one policy each, all V^n ordered pools of each): the mean of
+    the credit's gradient estimate for prompt 0 projected on grad E[R] of prompt 0 (k = 1: grad_theta E[R] =
+    p * (r - p.r), the softmax identity). 1 for an unbiased credit."""
+    Ys = [np.array(list(itertools.product(range(len(p.logits)), repeat=n))) for p in pols]
+    ps = [np.exp(p.logits) / np.exp(p.logits).sum() for p in pols]
+    p, r = ps[0], np.asarray(pols[0].rewards, float)
+    est = np.zeros(len(p))
+    for a in Ys[0]:
+        for b in Ys[1]:
+            R = np.stack([np.asarray(pols[0].rewards, float)[a], np.asarray(pols[1].rewards, float)[b]])
+            w = credit(R.copy(), R, k=1)
+            est += ps[0][a].prod() * ps[1][b].prod() * (w[0] @ (np.eye(len(p))[a] - p))
+    exact = p * (r - p @ r)
+    return float(est @ exact / (exact @ exact))
+
+
+def test_a_credit_that_mixes_the_prompts_of_a_batch_is_biased_in_training():
+    # the reason for refusing it: over batches of two prompts its mean misses the gradient, unlike LOO REINFORCE
+    pols = [ToyPolicy(np.array([0.3, -0.2, 0.1]), [0.0, 1.0, 2.0], [1.0, 0.0, 0.5]),
+            ToyPolicy(np.array([-0.4, 0.6, 0.0]), [0.0, 1.0, 2.0], [0.2, 0.9, 0.0])]
+    assert abs(_batch_projection(_loo, pols, 3) - 1) < 1e-12
+    assert abs(_batch_projection(_axis0, pols, 3) - 1) > 0.1
+    assert abs(_batch_projection(_batch_mean, pols, 3) - 1) > 0.1
+
+
+@pytest.mark.parametrize("credit", [_axis0, _batch_mean])
+def test_a_credit_that_mixes_the_pools_of_a_batch_is_refused(credit):
+    rep = check_objective(credit, target="best_of_k", k=1, n=3, transformer=False)
+    assert not rep.ok and rep.cases == [] and len(rep.problems) == 1
+    # C(4 + 2, 3) = 20 pools; pool 0 is three draws of one outcome: alone its baseline is its own reward
+    assert re.match(r"the credit of a pool depends on the other pools of the batch \(pool 0 \(scores \[.*\], "
+                    r"rewards \[.*\]\) alone gives \[0, 0, 0\], in a batch of 20 pools \[", rep.problems[0])
+    assert "compute each pool's credit from its own row" in rep.problems[0]
+
+
+def test_a_credit_that_fails_on_a_pool_alone_is_refused_as_batch_dependent():
+    def batch_std(scores, rewards, *, k):  # normalised by the batch's standard deviation: 0 for a batch of one pool
+        with np.errstate(divide="ignore", invalid="ignore"):
+            return _loo(scores, rewards, k=k) / rewards.std()
+
+    rep = check_objective(batch_std, target="best_of_k", k=1, n=3, transformer=False)
+    assert rep.problems[0].startswith("the credit of a pool depends on the other pools of the batch (pool 0 (")
+    assert "alone fails (ValueError: credit returned -inf at pool 0" in rep.problems[0]
+
+
+def test_a_random_credit_is_refused_as_not_deterministic():
+    rep = check_objective(_random_ties, target="best_of_k", k=2, n=3, transformer=False)
+    assert not rep.ok and rep.cases == [] and len(rep.problems) == 1
+    assert re.match(r"credit is not deterministic: two calls on the same 20 pools differ \(\d+ of them; pool \d+ "
+                    r"\(scores \[", rep.problems[0])
+    assert rep.problems[0].endswith("seed it or average over ties, since the check computes the mean of one credit "
+                                    "per pool")
+
+
+@pytest.mark.parametrize("credit, target, k", [
+    (_loo, "best_of_k", 1), (builtin.best_of_k, "best_of_k", 2), (builtin.pass_at_k, "pass_at_k", 2),
+    (builtin.reinforce, "best_of_k", 1), (builtin.best_of_k_no_baseline, "best_of_k", 3)])
+def test_row_wise_deterministic_credits_still_pass(credit, target, k):
+    rep = check_objective(credit, target=target, k=k, n=4, transformer=False)
+    assert rep.ok, str(rep)
+
+
+def test_the_transformer_runs_after_the_row_checks():
+    rep = check_objective(_loo, target="best_of_k", k=1, n=3, policies=1, directions=1, mc_pools=50)
+    assert rep.ok, str(rep)
+    assert rep.transformer["rel_error"] < 1e-10

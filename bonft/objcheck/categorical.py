@@ -24,6 +24,7 @@ from bonft.objcheck.enumeration import (
     Target,
     call_credit,
     call_payoff,
+    check_credit_rows,
     is_equivariant,
     ordered_tuples,
     pools,
@@ -168,6 +169,9 @@ def categorical_case(credit, t: Target, pol: ToyPolicy, k: int, n: int, seed: in
                      sampling_logits: np.ndarray | None = None, clip_ratio: float | None = None) -> dict:
     """Everything the check measures on one categorical policy (a dict of numbers and vectors).
 
+    A credit that is not deterministic or mixes the pools of a batch raises
+    :class:`bonft.objcheck.enumeration.CreditRefused` (:func:`bonft.objcheck.enumeration.check_credit_rows`).
+
     ``grads``: the target's exact and finite-difference gradients when already computed (:func:`target_gradient`).
     ``sampling_logits``: the logits of a policy that sampled the pools instead (sample reuse): adds ``"reuse"``,
     :func:`reuse_bias` of the importance-weighted gradient, clipped at ``clip_ratio`` if given.
@@ -177,6 +181,7 @@ def categorical_case(credit, t: Target, pol: ToyPolicy, k: int, n: int, seed: in
     s_star = float(pol.scores[pol.reference]) if t.name == "best_of_k_sft" else None
     Y, logc = pools(V, n, ordered=False)
     w = call_credit(credit, t, pol.scores[Y], pol.rewards[Y], s_star, k, progress)
+    check_credit_rows(credit, t, pol.scores[Y], pol.rewards[Y], s_star, k, w, progress)
     ordered = not is_equivariant(credit, t, pol.scores[Y], pol.rewards[Y], s_star, k, w, seed, progress)
     if ordered:
         Y, logc = pools(V, n, ordered=True)

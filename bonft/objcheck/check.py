@@ -40,7 +40,7 @@ import numpy as np
 
 from bonft._core.checks import check_int, check_k, check_positive
 from bonft.objcheck.categorical import categorical_case, check_policy, random_policy, target_gradient
-from bonft.objcheck.enumeration import Progress, resolve_target
+from bonft.objcheck.enumeration import CreditRefused, Progress, resolve_target
 from bonft.objcheck.report import ObjectiveReport
 from bonft.objcheck.transformer import transformer_check
 
@@ -139,6 +139,11 @@ def check_objective(credit, *, target, k, n, policies=4, outcomes=None, seed=0, 
 
     Problems are sentences with the numbers in ``report.problems``; ``report.ok`` is ``not problems``.
 
+    Refused credits: the credit is called twice on the same pools and on a few pools alone; one whose
+    numbers differ between the calls (random tie-breaking: seed it or average over ties) or whose row of a
+    pool depends on the other pools of the batch (a baseline averaged over axis 0 or the whole batch) is a
+    problem saying so, and the check stops there.
+
     Sample reuse (``reuse_shift``, optionally ``clip_ratio``): on every categorical policy the pools are
     also enumerated under a sampling policy moved away from it, logits ``theta + reuse_shift * z`` with
     ``z`` standard normal (drawn from ``seed``), and the mean of the importance-weighted gradient
@@ -220,6 +225,8 @@ def check_objective(credit, *, target, k, n, policies=4, outcomes=None, seed=0, 
         report.problems.append(
             f"the {progress.function} did not return within the time limit of {time_limit:g} s: it was working on "
             f"{progress.describe()} (stopped there; raise time_limit or make the {progress.function} faster)")
+    except CreditRefused as e:  # not deterministic, or mixes the pools of a batch: no mean to compare
+        report.problems.append(str(e))
     except Exception as e:  # the user's credit or payoff failed: a finding, reported with what it said
         report.problems.append(f"the check could not run: {type(e).__name__}: {e}")
     else:

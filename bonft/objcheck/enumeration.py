@@ -7,8 +7,11 @@ target values, and calling the user's credit.
   depends on the order of the samples, every ordered n-tuple;
 * :func:`value_fn` gives the exact target as a differentiable function of the outcome probabilities
   (:mod:`bonft.bon` for the built-in targets, k-tuple enumeration for a payoff);
-* :func:`call_credit` calls the user's credit and checks what it returns; :class:`Progress` records
-  where the check is, so that a credit stopped by the time limit can be named with its policy and pools.
+* :func:`call_credit` calls the user's credit and checks what it returns; :func:`check_credit_rows` refuses
+  (:class:`CreditRefused`) a credit whose numbers the enumeration cannot stand for: one that differs between
+  two calls on the same pools, or one whose row of a pool depends on the other pools of the batch;
+  :class:`Progress` records where the check is, so that a credit stopped by the time limit can be named
+  with its policy and pools.
 
 References: Chow et al. 2024 (best-of-k targets); Chen et al. 2021 (pass@k).
 """
@@ -24,11 +27,16 @@ from scipy.special import gammaln
 
 from bonft.bon import best_of_k_success, best_of_k_value, log_best_of_k_distribution
 
-__all__ = ["TARGETS", "MAX_ROWS", "Target", "Progress", "resolve_target", "call_payoff", "ordered_tuples", "multisets",
-           "pools", "value_fn", "call_credit", "is_equivariant"]
+__all__ = ["TARGETS", "MAX_ROWS", "Target", "Progress", "CreditRefused", "resolve_target", "call_payoff",
+           "ordered_tuples", "multisets", "pools", "value_fn", "call_credit",
+           "check_credit_rows", "is_equivariant"]
 
 TARGETS = ("best_of_k", "pass_at_k", "best_of_k_sft")
 MAX_ROWS = 1 << 18  # largest ordered enumeration (rows) the check will build
+
+
+class CreditRefused(Exception):
+    """The credit has a property that makes its enumerated mean meaningless (the check reports the message)."""
 
 
 @dataclass
@@ -153,6 +161,53 @@ def call_credit(credit: Callable, t: Target, S: np.ndarray, R: np.ndarray, s_sta
         raise ValueError(f"credit returned {w[i]} at pool {i[0]} (scores {S[i[0]].tolist()}, "
                          f"{'reference score ' + str(s_star) if sft else 'rewards ' + str(R[i[0]].tolist())})")
     return w.astype(np.float64)
+
+
+def _differs(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """Rows of two credits (M, n) that differ beyond rounding: (M,) bool."""
+    scale = max(1.0, float(np.abs(a).max(initial=0.0)), float(np.abs(b).max(initial=0.0)))
+    return ~np.isclose(a, b, rtol=1e-9, atol=1e-12 * scale).all(-1)
+
+
+def _nums(x: np.ndarray) -> str:
+    return "[" + ", ".join(f"{v:.4g}" for v in x) + "]"
+
+
+def _pool(t: Target, S: np.ndarray, R: np.ndarray, s_star: float | None, i: int) -> str:
+    second = f"reference score {s_star:g}" if t.name == "best_of_k_sft" else f"rewards {R[i].tolist()}"
+    return f"pool {i} (scores {S[i].tolist()}, {second})"
+
+
+def check_credit_rows(credit: Callable, t: Target, S: np.ndarray, R: np.ndarray, s_star: float | None, k: int,
+                      w: np.ndarray, progress: Progress | None = None, alone: int = 3) -> None:
+    """Refuse (:class:`CreditRefused`) a credit whose enumerated mean would not be that of training.
+
+    ``S, R: (M, n)`` the pools, ``w`` their credit from one call. The credit is called once more on the same
+    pools (a credit that draws random numbers differs: the check would average one draw, not its mean), then
+    on ``alone`` of the pools one at a time: the row of a pool must not depend on the other pools of the
+    batch (a mean or standard deviation over axis 0 mixes prompts, which training does not average away).
+    """
+    w2 = call_credit(credit, t, S, R, s_star, k, progress)
+    bad = np.flatnonzero(_differs(w, w2))
+    if len(bad):
+        i = int(bad[0])
+        raise CreditRefused(
+            f"credit is not deterministic: two calls on the same {len(S)} pools differ ({len(bad)} of them; "
+            f"{_pool(t, S, R, s_star, i)}: {_nums(w[i])}, then {_nums(w2[i])}); seed it or average over ties, "
+            f"since the check computes the mean of one credit per pool")
+    M = len(S)
+    for i in sorted({int(j) for j in np.linspace(0, M - 1, min(alone, M)).round()}):
+        try:
+            wi = call_credit(credit, t, S[i:i + 1], R[i:i + 1], s_star, k, progress)[0]
+            alone_gives = None if not _differs(wi[None], w[i:i + 1])[0] else f"gives {_nums(wi)}"
+        except Exception as e:  # it ran on the whole batch: failing on one pool is a dependence on the others
+            alone_gives = f"fails ({type(e).__name__}: {e})"
+        if alone_gives is not None:
+            raise CreditRefused(
+                f"the credit of a pool depends on the other pools of the batch ({_pool(t, S, R, s_star, i)} alone "
+                f"{alone_gives}, in a batch of {M} pools {_nums(w[i])}): a statistic across the batch (a mean "
+                f"over axis 0, a batch mean or standard deviation) mixes prompts and biases training; compute each "
+                f"pool's credit from its own row")
 
 
 def is_equivariant(credit, t, S, R, s_star, k, w, seed, progress: Progress | None = None) -> bool:
