@@ -249,3 +249,22 @@ def test_the_transformer_runs_after_the_row_checks():
     rep = check_objective(_loo, target="best_of_k", k=1, n=3, policies=1, directions=1, mc_pools=50)
     assert rep.ok, str(rep)
     assert rep.transformer["rel_error"] < 1e-10
+
+
+@pytest.mark.parametrize("kw, message", [
+    # C(V + n - 1, n) multisets per policy (stars and bars), bounded like the ordered pools (MAX_ROWS = 2^18);
+    # the binomials are Python's math.comb
+    ({"n": 40, "outcomes": 12, "transformer": False},
+     r"n=40 with outcomes=12 gives C\(V\+n-1, n\) = C\(51, 40\) = 47,626,016,970 pools to enumerate, more than "
+     r"the check builds \(at most 262,144\); lower n or outcomes"),
+    ({"n": 200, "transformer": False}, r"n=200 with outcomes=4 gives C\(V\+n-1, n\) = C\(203, 200\) = 1,373,701 pools"),
+    # the transformer's six score/reward classes: C(34, 29) = 278,256
+    ({"n": 29, "outcomes": 2}, r"n=29 with the transformer's 6 score/reward classes gives C\(V\+n-1, n\) = "
+                               r"C\(34, 29\) = 278,256 pools to enumerate, .*pass transformer=False"),
+    ({"n": 30, "transformer": False, "policies": [ToyPolicy(np.zeros(2), [0.0, 1.0], [0.0, 1.0]),
+                                                  ToyPolicy(np.zeros(12), np.arange(12.0), np.arange(12.0))]},
+     r"n=30 with policies\[1\]'s 12 outcomes gives C\(V\+n-1, n\) = C\(41, 30\) = 3,159,461,968 pools"),
+])
+def test_too_many_pools_is_an_error_up_front(kw, message):
+    with pytest.raises(ValueError, match=message):  # before any pool is built (it would not fit in memory)
+        check_objective(builtin.best_of_k, target="best_of_k", k=1, **kw)

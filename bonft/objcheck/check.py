@@ -40,9 +40,9 @@ import numpy as np
 
 from bonft._core.checks import check_int, check_k, check_positive
 from bonft.objcheck.categorical import categorical_case, check_policy, random_policy, target_gradient
-from bonft.objcheck.enumeration import CreditRefused, Progress, resolve_target
+from bonft.objcheck.enumeration import CreditRefused, Progress, check_pool_count, resolve_target
 from bonft.objcheck.report import ObjectiveReport
-from bonft.objcheck.transformer import transformer_check
+from bonft.objcheck.transformer import class_scores, transformer_check
 
 __all__ = ["check_objective", "CheckTimeout", "DRAWS_PER_POLICY", "FLAT_GRADIENT"]
 
@@ -142,7 +142,9 @@ def check_objective(credit, *, target, k, n, policies=4, outcomes=None, seed=0, 
     Refused credits: the credit is called twice on the same pools and on a few pools alone; one whose
     numbers differ between the calls (random tie-breaking: seed it or average over ties) or whose row of a
     pool depends on the other pools of the batch (a baseline averaged over axis 0 or the whole batch) is a
-    problem saying so, and the check stops there.
+    problem saying so, and the check stops there. Size: every policy's ``C(V + n - 1, n)`` pools are
+    enumerated (the transformer's with V its 6 score/reward classes, 2 for pass@k, 3 for best_of_k_sft);
+    more than :data:`bonft.objcheck.enumeration.MAX_ROWS` is a ``ValueError`` naming ``n`` and the outcomes.
 
     Sample reuse (``reuse_shift``, optionally ``clip_ratio``): on every categorical policy the pools are
     also enumerated under a sampling policy moved away from it, logits ``theta + reuse_shift * z`` with
@@ -189,6 +191,16 @@ def check_objective(credit, *, target, k, n, policies=4, outcomes=None, seed=0, 
         requested = check_int("policies", policies, min=1)
         V = 4 if outcomes is None else check_int("outcomes", outcomes, min=2, max=12)
         pols = []
+    if given:
+        j = max(range(len(pols)), key=lambda j: len(pols[j].logits))
+        check_pool_count(len(pols[j].logits), n, f"policies[{j}]'s {len(pols[j].logits)} outcomes",
+                         "lower n or give policies with fewer outcomes")
+    else:
+        check_pool_count(V, n, f"outcomes={V}", "lower n or outcomes")
+    if transformer:
+        C = len(class_scores(t.name))
+        check_pool_count(C, n, f"the transformer's {C} score/reward classes",
+                         "lower n, or pass transformer=False (--skip-transformer) to check the categorical policies only")
     report = ObjectiveReport(target=t.name, k=k, n=n, tolerance=tolerance, time_limit=time_limit,
                              policies_requested=requested, reuse_shift=reuse_shift, clip_ratio=clip_ratio)
     progress = Progress()

@@ -18,6 +18,7 @@ References: Chow et al. 2024 (best-of-k targets); Chen et al. 2021 (pass@k).
 from __future__ import annotations
 
 import itertools
+import math
 from dataclasses import dataclass, field
 from typing import Any, Callable
 
@@ -28,11 +29,11 @@ from scipy.special import gammaln
 from bonft.bon import best_of_k_success, best_of_k_value, log_best_of_k_distribution
 
 __all__ = ["TARGETS", "MAX_ROWS", "Target", "Progress", "CreditRefused", "resolve_target", "call_payoff",
-           "ordered_tuples", "multisets", "pools", "value_fn", "call_credit",
+           "ordered_tuples", "multisets", "multiset_count", "check_pool_count", "pools", "value_fn", "call_credit",
            "check_credit_rows", "is_equivariant"]
 
 TARGETS = ("best_of_k", "pass_at_k", "best_of_k_sft")
-MAX_ROWS = 1 << 18  # largest ordered enumeration (rows) the check will build
+MAX_ROWS = 1 << 18  # largest enumeration (rows: ordered tuples or multisets) the check will build
 
 
 class CreditRefused(Exception):
@@ -105,6 +106,21 @@ def multisets(V: int, n: int) -> tuple[np.ndarray, np.ndarray]:
     return Y, gammaln(n + 1) - gammaln(counts + 1).sum(-1)
 
 
+def multiset_count(V: int, n: int) -> int:
+    """Number of multisets of n draws from V outcomes, C(V + n - 1, n)."""
+    return math.comb(V + n - 1, n)
+
+
+def check_pool_count(V: int, n: int, what: str, fix: str) -> None:
+    """A ``ValueError`` when the multisets of n draws from V outcomes are more than :data:`MAX_ROWS`.
+
+    ``what`` names where V comes from (``"outcomes=12"``), ``fix`` says what to lower."""
+    count = multiset_count(V, n)
+    if count > MAX_ROWS:
+        raise ValueError(f"n={n} with {what} gives C(V+n-1, n) = C({V + n - 1}, {n}) = {count:,} pools to enumerate, "
+                         f"more than the check builds (at most {MAX_ROWS:,}); {fix}")
+
+
 def pools(V: int, n: int, ordered: bool) -> tuple[np.ndarray, np.ndarray]:
     """Every pool of n draws from V outcomes, (M, n), with its log multiplicity (M,): multisets or ordered tuples."""
     if ordered:
@@ -113,6 +129,7 @@ def pools(V: int, n: int, ordered: bool) -> tuple[np.ndarray, np.ndarray]:
                              f" to enumerate (at most {MAX_ROWS}); use fewer outcomes or a smaller n")
         Y = ordered_tuples(V, n)
         return Y, np.zeros(len(Y))
+    check_pool_count(V, n, f"{V} outcomes", "use fewer outcomes or a smaller n")
     return multisets(V, n)
 
 

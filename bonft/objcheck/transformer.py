@@ -26,18 +26,26 @@ from bonft.objcheck.enumeration import MAX_ROWS, Progress, Target, call_credit, 
 from bonft.objcheck.report import MC_Z
 from bonft.objectives.losses import policy_gradient_loss
 
-__all__ = ["transformer_check"]
+__all__ = ["transformer_check", "class_scores"]
+
+
+def class_scores(name: str) -> np.ndarray:
+    """Scores of the score/reward classes of the responses for target ``name``: (C,)."""
+    if name == "pass_at_k":
+        return np.array([0.0, 1.0])
+    if name == "best_of_k_sft":
+        return np.array([0.0, 1.0, 2.0])
+    return np.array([0.0, 0.0, 1.0, 1.0, 2.0, 2.0])  # ties across classes
 
 
 def _classes(rng: np.random.Generator, N: int, name: str) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Class of each response (N,), class scores (C,), class rewards (C,)."""
+    cs = class_scores(name)
     if name == "pass_at_k":
-        cs = np.array([0.0, 1.0])
         cr = cs.copy()
     elif name == "best_of_k_sft":
-        cs, cr = np.array([0.0, 1.0, 2.0]), np.zeros(3)
+        cr = np.zeros(3)
     else:
-        cs = np.array([0.0, 0.0, 1.0, 1.0, 2.0, 2.0])  # ties across classes
         cr = np.round(rng.normal(size=6), 2)
     C = len(cs)
     cls = np.concatenate([np.arange(C), rng.integers(0, C, N - C)])
