@@ -109,6 +109,86 @@ def test_crashing_verifier_is_flagged_with_the_rate():
     assert not any(p.startswith("failures") for p in rep2.problems), rep2.problems
 
 
+def _oom(prompts, responses):
+    if len(responses) > 4:
+        raise MemoryError()
+    return EXACT(prompts, responses)
+
+
+def _dedup(prompts, responses):
+    """One score per distinct (prompt, response): 6 scores for the first pool's 8 samples."""
+    ps, rs = zip(*dict.fromkeys(zip(prompts, responses)))
+    return EXACT(list(ps), list(rs))
+
+
+@pytest.mark.parametrize("verifier, repeats, cause", [
+    (_oom, 2, "MemoryError"),
+    (_dedup, 3, "ValueError: the verifier returned 6 scores for 8 (prompt, response) pairs"),
+])
+@pytest.mark.filterwarnings("ignore::bonft.verifiers.BatchFallbackWarning")
+def test_a_broken_batch_call_is_a_problem(verifier, repeats, cause):
+    rep = check_verifier(verifier, POOLS, repeats=repeats)
+    # 2 pools of 8: every whole-pool call (2 per run but the last) fell back to 8 calls, one per sample
+    assert (rep.n_batch_calls, rep.n_batch_fallbacks, rep.batch_fallback_samples) == (
+        2 * (repeats - 1), 2 * (repeats - 1), 16 * (repeats - 1))
+    assert rep.problems == [
+        f"batch calls: the call on the whole pool failed though each sample scored alone passed, e.g. {cause}: every "
+        "pool call fell back to one call per sample (8 times the calls); training scores such batches the same way, "
+        "that much slower"]
+    # the figures are those of the same verifier called one sample at a time
+    good = check_verifier(EXACT, POOLS, repeats=repeats)
+    assert good.ok and (rep.score_min, rep.score_max, rep.auc, rep.best_of_k) == (
+        good.score_min, good.score_max, good.auc, good.best_of_k)
+
+
+@pytest.mark.filterwarnings("ignore::bonft.verifiers.BatchFallbackWarning")
+def test_cli_check_verifier_fails_a_verifier_whose_batch_call_is_broken(tmp_path, capsys):
+    ver = tmp_path / "dedupver.py"
+    ver.write_text("def score(prompts, responses):\n    return [float(r == '4') for r in dict.fromkeys(responses)]\n")
+    ex = tmp_path / "ex.jsonl"
+    rows = [{"prompt": "2+2?", "response": r, "reward": float(r == "4")} for r in ["4", "5", "4"]]
+    ex.write_text("\n".join(json.dumps(r) for r in rows) + "\n")
+    assert cli_main(["check-verifier", f"{ver}:score", "--examples", str(ex)]) == 1
+    assert "returned 2 scores for 3 (prompt, response) pairs: every pool call fell back" in capsys.readouterr().out
+
+
+def test_a_crash_in_one_run_only_is_a_failure_not_a_changed_score():
+    def shy(prompts, responses):
+        if responses == ["x"]:  # "x" of the second pool crashes when scored alone, never in a batch
+            raise RuntimeError("flaky")
+        return EXACT(prompts, responses)
+
+    rep = check_verifier(shy, POOLS)
+    assert rep.n_nondeterministic == 0 and (rep.n_exceptions, rep.n_nan, rep.n_timeouts) == (1, 0, 0)
+    assert rep.failure_examples == ["failed when scored alone: RuntimeError: flaky"]
+    assert rep.problems == ["failures: 6.2% of 16 samples > max_failure_rate=0 (exceptions 1, NaN 0, timeouts 0), "
+                            "e.g. failed when scored alone: RuntimeError: flaky"], rep.problems
+
+
+def test_statistics_leave_out_the_samples_that_failed():
+    ex = [{"prompt": "2+2?", "responses": ["4", "5"], "rewards": [1.0, 0.0]}]
+    rep = check_verifier(lambda p, r: [float("nan")] * len(r), ex)
+    # every sample failed: no score range, no constant scores, no AUC from the stand-in failure score
+    assert rep.n_scored == 0 and rep.n_labelled == 0 and rep.auc is None and np.isnan(rep.score_min)
+    assert rep.problems == ["failures: 100.0% of 2 samples > max_failure_rate=0 (exceptions 0, NaN 2, timeouts 0), "
+                            "e.g. score is nan"], rep.problems
+    assert "score range        n/a (every sample failed)" in str(rep)
+    # NaN on the correct "4"s: the others are "5", "6" (0.3, wrong) and "four" (0.9, right), so the AUC over them
+    # is 1 (the one positive outscores both negatives, by hand); with the failed 4s at score 0 it would be 2/6
+    ex = [{"prompt": "2+2?", "responses": ["4", "5", "6", "4", "four"], "rewards": [1.0, 0.0, 0.0, 1.0, 1.0]}]
+    rep = check_verifier(lambda p, r: [{"4": float("nan"), "four": 0.9}.get(x, 0.3) for x in r], ex)
+    assert (rep.n_scored, rep.n_labelled, rep.n_positive, rep.auc) == (3, 3, 1, 1.0)
+    assert (rep.score_min, rep.score_max) == (0.3, 0.9)
+    assert [p.split(":")[0] for p in rep.problems] == ["failures"], rep.problems
+    rep = check_verifier(lambda p, r: [{"4": float("nan")}.get(x, 0.3) for x in r], ex)
+    assert "constant scores: all 3 samples that did not fail score 0.3, so best-of-k cannot select" in rep.problems
+
+
+def test_the_determinism_line_says_within_one_process():
+    # hash() of a str is salted per process: a check in one process cannot see scores built on it change
+    assert "0 of 16 re-scored samples differ over 2 runs within one process" in str(check_verifier(EXACT, POOLS))
+
+
 def test_nan_scores_are_counted():
     rep = check_verifier(lambda p, r: [float("nan") if x == "x" else 1.0 for x in r], POOLS)
     assert rep.n_nan == 1 and "NaN 1" in rep.problems[0]

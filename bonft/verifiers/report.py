@@ -33,6 +33,13 @@ def roc_auc(scores: Any, labels: Any) -> float | None:
 class VerifierReport:
     """What :func:`bonft.testing.check_verifier` found. ``ok`` is ``not problems``.
 
+    Failures count every sample that failed in any run (``failure_examples`` name the run where it failed only
+    there, e.g. ``"failed when scored alone: RuntimeError: ..."``). Determinism compares the scores of samples
+    that every run scored, within this one process. The score range, constant scores and agreement with the
+    labels use the ``n_scored`` samples the first run scored (a failed sample holds the stand-in failure score).
+    ``n_batch_fallbacks`` of the ``n_batch_calls`` whole-pool calls failed though each of their samples
+    scored alone passed (``batch_fallback_samples`` calls were made for them, one per sample).
+
     Curves: ``best_of_k[j]`` is the mean true reward of the verifier's pick among
     ``ks[j]`` samples, ``pass_at_k[j]`` the best true reward among ``ks[j]``
     (pass@k for 0/1 rewards), both averaged over prompts.
@@ -47,6 +54,11 @@ class VerifierReport:
     n_nan: int = 0
     n_timeouts: int = 0
     failure_examples: list[str] = field(default_factory=list)
+    n_scored: int = 0
+    n_batch_calls: int = 0
+    n_batch_fallbacks: int = 0
+    batch_fallback_samples: int = 0
+    batch_failure_examples: list[str] = field(default_factory=list)
     score_min: float = math.nan
     score_max: float = math.nan
     score_mean: float = math.nan
@@ -88,12 +100,17 @@ class VerifierReport:
         n = self.n_samples
         rows = [
             ("prompts / samples", f"{self.n_prompts} / {n}"),
-            ("determinism", f"{self.n_nondeterministic} of {n} differ over {self.repeats} runs"),
+            ("determinism", f"{self.n_nondeterministic} of {n * (self.repeats - 1)} re-scored samples differ over "
+                            f"{self.repeats} runs within one process"),
             ("failures", f"{self.failure_rate:.1%} (exceptions {self.n_exceptions}, NaN {self.n_nan}, timeouts {self.n_timeouts})"),
-            ("score range", f"[{f(self.score_min)}, {f(self.score_max)}], mean {f(self.score_mean)}"),
+            ("batch calls", f"{self.n_batch_fallbacks} of {self.n_batch_calls} fell back to one call per sample"),
+            ("score range", "n/a (every sample failed)" if self.n_scored == 0 and n else
+                            f"[{f(self.score_min)}, {f(self.score_max)}], mean {f(self.score_mean)}"
+                            + ("" if self.n_scored == n else f" over the {self.n_scored} samples that did not fail")),
             ("latency", f"{f(self.latency_ms_per_call, '.3g')} ms/call (p95 {f(self.latency_ms_p95, '.3g')}), "
                         f"{f(self.latency_ms_per_sample, '.3g')} ms/sample"),
-            ("labelled", f"{self.n_labelled} ({self.n_positive} correct)"),
+            ("labelled", f"{self.n_labelled} ({self.n_positive} correct)"
+                         + ("" if self.n_scored == n else ", samples that failed left out")),
             (f"accuracy @ {self.threshold:g}", f(self.accuracy, ".3f")),
             ("ROC AUC", f(self.auc, ".3f")),
         ]

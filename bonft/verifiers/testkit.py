@@ -4,11 +4,18 @@ A verifier that crashes, is non-deterministic, or can be gamed silently ruins
 every number downstream. :func:`check_verifier` measures, on example pools:
 
 * determinism: every sample scored ``repeats`` times (middle runs in
-  reverse batch order, the last one sample per call) must get the same score;
+  reverse batch order, the last one sample per call) must get the same score,
+  within this one process: a score that depends on Python's ``hash()`` of a
+  str (salted per process unless ``PYTHONHASHSEED`` is set) differs between
+  processes and still passes;
 * failures: exceptions, NaN and timeouts (through
-  :func:`bonft.verifiers.score_batch`), as a rate;
+  :func:`bonft.verifiers.score_batch`), in any run, as a rate;
+* batch calls: a call on a whole pool that fails (or returns the wrong number
+  of scores) while each sample scored alone passes is a problem: score_batch
+  then scores every such batch one sample per call, in training too;
 * score range and latency per call;
-* agreement with labels: accuracy at ``threshold`` and ROC AUC;
+* agreement with labels: accuracy at ``threshold`` and ROC AUC, over the
+  samples that did not fail;
 * over-optimisation: the true reward of the verifier's best-of-k as k grows,
   against pass@k (the best true reward among k). Where best-of-k bends down while
   pass@k keeps rising, larger N selects the verifier's errors -- it is
@@ -346,7 +353,8 @@ def check_verifier(
     threshold:  a sample is predicted correct when its score is >= threshold.
     repeats:    times each sample is scored (>= 2): the first run scores each pool in one call, the
                 runs between reverse the batch order, the last scores each sample alone, so scores
-                that depend on the batch's order or make-up (padding) show up.
+                that depend on the batch's order or make-up (padding) show up. All runs share one
+                process: scores built on the per-process salt of ``hash()`` are not caught.
     ks:         best-of-k curve points; default 1, 2, 4, ... up to the smallest pool.
     pool_size:  use at most this many responses per prompt (the first ones).
     timeout:    seconds per verifier call, passed to :func:`bonft.verifiers.score_batch`.
@@ -376,6 +384,7 @@ def check_verifier(
     #    the last one sample per call (a batch of one), so order- and batch-dependent scores both show up
     runs: list[list[Any]] = []
     latencies: list[float] = []  # of the whole-pool calls
+    batch_calls: list[tuple[Verdicts, int]] = []  # (verdicts, pool size) of the whole-pool calls of 2 or more
     for rep in range(repeats):
         per_pool = []
         for pool in pools:
@@ -386,6 +395,8 @@ def check_verifier(
             t0 = time.perf_counter()
             v = score_batch(verifier, [pool["prompt"]] * len(rs), rs, timeout=timeout)
             latencies.append(time.perf_counter() - t0)
+            if len(rs) > 1:
+                batch_calls.append((v, len(rs)))
             if rep > 0:  # back to the original order
                 v.scores, v.failed = v.scores[::-1], v.failed[::-1]
                 v.rewards = None if v.rewards is None else v.rewards[::-1]
@@ -396,35 +407,44 @@ def check_verifier(
     n = sum(len(p["responses"]) for p in pools)
     rep = VerifierReport(n_prompts=len(pools), n_samples=n, repeats=repeats, n_nondeterministic=0, threshold=float(threshold))
 
-    # 2) determinism
+    # 2) failures of the first run, then determinism: scores compared where both runs scored the sample; a
+    #    sample that failed in a later run only is a failure of that run, named as such
+    for v in first:
+        for j in np.flatnonzero(v.failed):
+            _count_failure(rep, v.reasons[j] or "failed")
+    failed_later = [np.zeros(len(v), dtype=bool) for v in first]
     for r, later in enumerate(runs[1:], 1):
         how = "alone" if r == repeats - 1 else "in the batch reversed"
-        for pool, a, b in zip(pools, first, later):
-            same = np.isclose(a.scores, b.scores, rtol=rtol, atol=1e-12) & (a.failed == b.failed)
-            for j in np.flatnonzero(~same):
+        for i, (pool, a, b) in enumerate(zip(pools, first, later)):
+            both = ~a.failed & ~b.failed
+            same = np.isclose(a.scores, b.scores, rtol=rtol, atol=1e-12)
+            for j in np.flatnonzero(both & ~same):
                 rep.n_nondeterministic += 1
                 if len(rep.nondeterministic_examples) < 3:
                     rep.nondeterministic_examples.append({"prompt": pool["prompt"][:80], "response": pool["responses"][j][:80],
                                                           "first": float(a.scores[j]), "again": float(b.scores[j]),
                                                           "again_scored": how})
-    # 3) failures (first run)
-    for v in first:
-        for j in np.flatnonzero(v.failed):
-            reason = v.reasons[j] or "failed"
-            if reason.startswith("timeout"):
-                rep.n_timeouts += 1
-            elif reason.startswith(("score is", "reward is")):
-                rep.n_nan += 1
-            else:
-                rep.n_exceptions += 1
-            if len(rep.failure_examples) < 3:
-                rep.failure_examples.append(reason)
+            for j in np.flatnonzero(b.failed & ~a.failed & ~failed_later[i]):
+                failed_later[i][j] = True
+                _count_failure(rep, b.reasons[j] or "failed", f"failed when scored {how}: ")
+    # 3) whole-pool calls that failed while each of their samples scored fine one per call: the batched call is
+    #    broken, and score_batch (in training too) pays one call per sample on every such batch
+    rep.n_batch_calls = len(batch_calls)
+    for v, size in batch_calls:
+        if v.batch_failure is not None and not v.failed.any():
+            rep.n_batch_fallbacks += 1
+            rep.batch_fallback_samples += size
+            if len(rep.batch_failure_examples) < 3:
+                rep.batch_failure_examples.append(v.batch_failure)
     # 4) scores and latency
+    # (over the samples the first run scored: a failed sample's score is the stand-in failure_score)
     scores = [v.scores for v in first]
     flat = np.concatenate(scores)
     ok = ~np.concatenate([v.failed for v in first])
-    good = flat[ok] if ok.any() else flat
-    rep.score_min, rep.score_max, rep.score_mean = float(good.min()), float(good.max()), float(good.mean())
+    rep.n_scored = int(ok.sum())
+    if ok.any():
+        good = flat[ok]
+        rep.score_min, rep.score_max, rep.score_mean = float(good.min()), float(good.max()), float(good.mean())
     lat = np.array(latencies) * 1000.0
     rep.latency_ms_per_call = float(lat.mean())
     rep.latency_ms_p95 = float(np.percentile(lat, 95))
@@ -447,7 +467,7 @@ def check_verifier(
         for j, lb in enumerate(pool["labels"]):
             if lb is None and true is not None:
                 lb = bool(true[i][j] > 0.5)
-            if lb is not None:
+            if lb is not None and not first[i].failed[j]:
                 lab_s.append(scores[i][j])
                 lab_y.append(lb)
     if lab_y:
@@ -476,22 +496,44 @@ def _score_alone(verifier: Any, pool: Mapping, timeout: float | None):
                     failed=np.concatenate([v.failed for v in vs]), reasons=[v.reasons[0] for v in vs])
 
 
+def _count_failure(rep: VerifierReport, reason: str, where: str = "") -> None:
+    """Count one failed sample by its reason (score_batch's: ``"timeout after ..."``, ``"score is nan"``, ...)."""
+    if reason.startswith("timeout"):
+        rep.n_timeouts += 1
+    elif reason.startswith(("score is", "reward is")):
+        rep.n_nan += 1
+    else:
+        rep.n_exceptions += 1
+    if len(rep.failure_examples) < 3:
+        rep.failure_examples.append(where + reason)
+
+
 def _problems(rep: VerifierReport, *, max_failure_rate: float, min_auc: float, bend_tol: float) -> None:
     n = rep.n_samples
     if rep.n_nondeterministic:
         e = rep.nondeterministic_examples[0]
         rep.problems.append(
             f"non-deterministic: {rep.n_nondeterministic} of {n * (rep.repeats - 1)} re-scored samples "
-            f"({rep.n_nondeterministic / (n * (rep.repeats - 1)):.1%}) changed score, e.g. {e['first']:.6g} in the "
-            f"first batch then {e['again']:.6g} {e['again_scored']}"
+            f"({rep.n_nondeterministic / (n * (rep.repeats - 1)):.1%}) changed score within one process, e.g. "
+            f"{e['first']:.6g} in the first batch then {e['again']:.6g} {e['again_scored']}"
+        )
+    if rep.n_batch_fallbacks:
+        which = ("every" if rep.n_batch_fallbacks == rep.n_batch_calls
+                 else f"{rep.n_batch_fallbacks} of {rep.n_batch_calls}")
+        rep.problems.append(
+            f"batch calls: the call on the whole pool failed though each sample scored alone passed, e.g. "
+            f"{rep.batch_failure_examples[0]}: {which} pool call fell back to one call per sample "
+            f"({rep.batch_fallback_samples / rep.n_batch_fallbacks:.3g} times the calls); training scores such "
+            "batches the same way, that much slower"
         )
     if rep.failure_rate > max_failure_rate:
         rep.problems.append(
             f"failures: {rep.failure_rate:.1%} of {n} samples > max_failure_rate={max_failure_rate:g} "
             f"(exceptions {rep.n_exceptions}, NaN {rep.n_nan}, timeouts {rep.n_timeouts}), e.g. {rep.failure_examples[0]}"
         )
-    if n > 1 and rep.score_min == rep.score_max:
-        rep.problems.append(f"constant scores: all {n} samples score {rep.score_min:g}, so best-of-k cannot select")
+    if rep.n_scored > 1 and rep.score_min == rep.score_max:
+        which = f"all {n} samples" if rep.n_scored == n else f"all {rep.n_scored} samples that did not fail"
+        rep.problems.append(f"constant scores: {which} score {rep.score_min:g}, so best-of-k cannot select")
     if rep.n_labelled and rep.n_positive in (0, rep.n_labelled):
         which = "none" if rep.n_positive == 0 else "all"
         rep.problems.append(
@@ -501,7 +543,8 @@ def _problems(rep: VerifierReport, *, max_failure_rate: float, min_auc: float, b
         )
     if rep.auc is not None and rep.auc < min_auc:
         rep.problems.append(
-            f"low agreement: ROC AUC {rep.auc:.3f} < min_auc={min_auc:g} on {rep.n_labelled} labelled samples "
+            f"low agreement: ROC AUC {rep.auc:.3f} < min_auc={min_auc:g} on {rep.n_labelled} labelled samples"
+            f"{'' if rep.n_scored == n else ' that did not fail'} "
             f"({rep.n_positive} correct), accuracy {rep.accuracy:.3f} at threshold {rep.threshold:g}"
         )
     if len(rep.ks) >= 2:
