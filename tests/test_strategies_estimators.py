@@ -160,3 +160,59 @@ def test_torch_in_torch_out():
     r = torch.tensor([[1.0, 0.0, 0.0, 1.0]], dtype=torch.float32)
     w = majority_vote_credit(a, r, k=2)
     assert isinstance(w, torch.Tensor) and w.dtype == torch.float32 and w.shape == (1, 4)
+
+
+# ---------------------------------------------------------------------------- missing and NaN answer keys
+
+class _Alone:
+    """A key equal only to itself: a missing answer voting alone, as the samples file's null does."""
+
+
+@pytest.mark.parametrize("answers", [["a", None, "a", None, "b"], np.array(["a", None, "a", None, "b"], dtype=object),
+                                     [None, None, "a", "b", "a"], [None, None, None, None, None]])
+def test_a_missing_answer_votes_alone(answers):
+    # reference: every k-subset, with each None replaced by a key of its own (Counter counts each once)
+    n = len(answers)
+    alone = [_Alone() if v is None else v for v in answers]
+    r = np.array([1.0, 0.0, 1.0, 0.0, 0.5])[:n] if answers[0] is not None else np.array([0.0, 1.0, 0.5, 0.0, 0.5])
+    s = np.array([0.5, 0.9, 0.2, 0.4, 0.7])
+    ks = list(range(1, n + 1))
+    want_mv = [brute_pool("majority_vote", alone, s, r, k) for k in ks]
+    want_wv = [brute_pool("weighted_vote", alone, s, r, k) for k in ks]
+    np.testing.assert_allclose(majority_vote_per_prompt([answers], [r], ks=ks)[0], want_mv, atol=1e-13)
+    np.testing.assert_allclose(weighted_vote_per_prompt([answers], [s], [r], ks=ks)[0][0], want_wv, atol=1e-13)
+    for k in (1, 2, 3):  # the credit's definition: V_k(pool) - V_kb(pool without i), each by enumeration
+        kb = min(k, n - 1)
+        want = [want_mv[k - 1] - brute_pool("majority_vote", alone[:i] + alone[i + 1:], None, np.delete(r, i), kb)
+                for i in range(n)]
+        np.testing.assert_allclose(majority_vote_credit([answers], [r], k=k)[0], want, atol=1e-12)
+        want = [want_wv[k - 1] - brute_pool("weighted_vote", alone[:i] + alone[i + 1:], np.delete(s, i), np.delete(r, i), kb)
+                for i in range(n)]
+        np.testing.assert_allclose(weighted_vote_credit([answers], [s], [r], k=k)[0], want, atol=1e-12)
+
+
+def test_the_auditors_pool_with_missing_answers():
+    # by hand for k = 2 of (a, -, a, -, b), rewards (1, 0, 1, 0, 0): of the 10 pairs only {0, 2} has a
+    # majority (a, served 1); the other 9 tie two answers, served the mean of their rewards: 0.5 for the 6
+    # pairs holding one a, 0 for the 3 others -> (1 + 6 * 0.5) / 10 = 0.4
+    v = majority_vote_per_prompt([["a", None, "a", None, "b"]], [[1.0, 0.0, 1.0, 0.0, 0.0]], ks=[2])
+    assert abs(v[0, 0] - 0.4) < 1e-15
+
+
+@pytest.mark.parametrize("answers", [[1.0, float("nan"), float("nan"), 2.0], np.array([1.0, np.nan, np.nan, 2.0]),
+                                     ["a", float("nan"), float("nan"), "b"], torch.tensor([1.0, float("nan"), 2.0, 1.0])])
+def test_a_nan_answer_key_is_refused(answers):
+    r = [[1.0, 0.0, 0.0, 1.0]]
+    msg = r"answers\[0\] must not hold NaN as an answer key \(NaNs would count as one answer\), got NaN at sample 1; " \
+          r"pass None for a missing answer"
+    for call in (lambda: majority_vote_per_prompt([answers], r, ks=[2]), lambda: majority_vote_credit([answers], r, k=2),
+                 lambda: weighted_vote_per_prompt([answers], [[1.0] * 4], r, ks=[2]),
+                 lambda: weighted_vote_credit([answers], [[1.0] * 4], r, k=2)):
+        with pytest.raises(ValueError, match=msg):
+            call()
+
+
+def test_keys_that_cannot_be_compared_name_the_missing_answer_spelling():
+    with pytest.raises(TypeError, match=r"answers\[0\] must hold comparable keys \(ints or strings, or None for a "
+                                        r"missing answer, which votes alone\), got dtype object"):
+        majority_vote_per_prompt([np.array(["a", 1, "a"], dtype=object)], [[1.0, 0.0, 1.0]], ks=[2])

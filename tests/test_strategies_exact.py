@@ -134,3 +134,16 @@ def test_majority_value_up_to_k_150_equals_the_multinomial_sum(q, k):
     assert abs(float(got) - _majority_by_counts(q, rew, k)) < 1e-12
     assert abs(float(strategy_value("majority_vote", list(q), k=k, rewards=rew, answers=list(range(len(q)))))
                - float(got)) < 1e-15
+
+
+@pytest.mark.parametrize("answers, message", [
+    (["a", None, "b"], r"answers\[1\] must be an answer key, got None: on a finite outcome set every outcome needs one"),
+    (["a", float("nan"), "b"], r"answers\[1\] must be an answer key, got NaN \(NaNs would count as one answer\)"),
+    (np.array([0.0, 1.0, np.nan]), r"answers\[2\] must be an answer key, got NaN"),
+])
+def test_a_missing_or_nan_outcome_key_is_refused(answers, message):
+    p, r = np.array([0.2, 0.3, 0.5]), np.array([1.0, 0.0, 0.0])
+    with pytest.raises(ValueError, match=message):
+        majority_vote_value(p, answers, r, k=2)
+    with pytest.raises(ValueError, match=message):
+        weighted_vote_value(p, answers, np.ones(3), r, k=2)

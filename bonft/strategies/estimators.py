@@ -13,6 +13,8 @@ policy that produced the pool:
   ``max_subsets`` uniform random k-subsets, still unbiased, with its standard error;
 * best-of-k and pass@k: the closed forms of :mod:`bonft.estimate.bestofk`.
 
+Answer keys are ints or strings; ``None`` is a missing answer (no answer could be extracted) and votes
+alone, as ``null`` in a samples file does; a NaN key is refused (NaNs would count as one answer).
 Each answer carries one reward (``conflicts="error"``, the default) or, with ``conflicts="mean"``,
 the winning answer's samples among the k are served uniformly at random (the mean of their
 rewards); weighted-vote scores are non-negative weights (:mod:`bonft.strategies.exact`).
@@ -90,7 +92,7 @@ def _rows(name: str, x, *, numeric: bool) -> list[np.ndarray]:
         rows = list(x)
     elif isinstance(x, (list, tuple)) and x and not np.isscalar(x[0]):
         rows = [(as_float_array(f"{name}[{p}]", r) if numeric else r.detach().cpu().numpy()) if is_tensor(r)
-                else np.asarray(r) for p, r in enumerate(x)]
+                else np.asarray(r) if numeric else _answer_row(f"{name}[{p}]", r) for p, r in enumerate(x)]
     else:
         arr = np.asarray(x)
         if arr.ndim != 2:
@@ -107,14 +109,45 @@ def _rows(name: str, x, *, numeric: bool) -> list[np.ndarray]:
     return out
 
 
+def _missing(name: str, a: np.ndarray) -> np.ndarray:
+    """The missing answers (None) of one pool, (n,) bool; a NaN key is a ``ValueError`` (NaNs would merge)."""
+    if a.dtype.kind in "fc":
+        nan = np.isnan(a)
+    elif a.dtype == object:
+        nan = np.array([isinstance(v, (float, complex, np.floating, np.complexfloating)) and v != v for v in a], bool)
+    else:
+        return np.zeros(len(a), bool)
+    if nan.any():
+        raise ValueError(f"{name} must not hold NaN as an answer key (NaNs would count as one answer), got NaN at "
+                         f"sample {int(np.flatnonzero(nan)[0])}; pass None for a missing answer (it votes alone)")
+    return np.array([v is None for v in a], bool) if a.dtype == object else np.zeros(len(a), bool)
+
+
+def _answer_row(name: str, r) -> np.ndarray:
+    """One pool of answer keys as numpy; a NaN among Python values is refused before numpy turns
+    ``["a", nan]`` into the strings ``["a", "nan"]``."""
+    if not isinstance(r, np.ndarray):
+        raw = np.asarray(r, dtype=object)
+        if raw.ndim == 1:
+            _missing(name, raw)
+    return np.asarray(r)
+
+
 def _codes(answers: list[np.ndarray]) -> list[np.ndarray]:
-    """Answer keys of any comparable kind -> int codes 0..A-1 per pool."""
+    """Answer keys of any comparable kind -> int codes 0..A-1 per pool; each None (a missing answer) gets a code
+    of its own, so it votes alone, as a null answer of the samples file (:mod:`bonft.io`) does."""
     out = []
     for p, a in enumerate(answers):
+        miss = _missing(f"answers[{p}]", a)
+        codes = np.empty(len(a), np.int64)
         try:
-            out.append(np.unique(a, return_inverse=True)[1].reshape(-1))
+            present = np.unique(a[~miss], return_inverse=True)[1].reshape(-1)
         except TypeError:
-            raise TypeError(f"answers[{p}] must hold comparable keys (ints or strings), got dtype {a.dtype}") from None
+            raise TypeError(f"answers[{p}] must hold comparable keys (ints or strings, or None for a missing answer, "
+                            f"which votes alone), got dtype {a.dtype}") from None
+        codes[~miss] = present
+        codes[miss] = (int(present.max()) + 1 if len(present) else 0) + np.arange(int(miss.sum()))
+        out.append(codes)
     return out
 
 
@@ -184,7 +217,8 @@ def majority_vote_per_prompt(answers, rewards, *, ks, conflicts="error"):
     .. math:: \hat V_k = \sum_a \hat P_k(a\ \text{wins})\,\bar r_a,\quad
               \hat P_k(a\ \text{wins}) = \binom nk^{-1}\sum_{|S|=k}\frac{1\{c_a(S)=\max\}}{\#\{b: c_b(S)=\max\}}
 
-    ``answers`` are any comparable keys (ints, strings); ``rbar_a`` is the mean reward of the
+    ``answers`` are any comparable keys (ints, strings); ``None`` is a missing answer and votes alone
+    (a key of its own); a NaN key is a ``ValueError``. ``rbar_a`` is the mean reward of the
     pool's samples with answer ``a``. Exact U-statistic over all k-subsets by a dynamic
     programme over answer counts (every k <= n in one pass); pools up to n = 1000.
     Ragged pools: lists of 1-D arrays.
@@ -218,6 +252,7 @@ def majority_vote_credit(answers, rewards, *, k, conflicts="error"):
     zero credit; ``n = 1`` gives ``w = R``. All pools in one batched count DP: prefix and suffix
     products over the answers give every leave-one-out value (:func:`bonft.strategies.counting.vote_credit_batched`).
     numpy/list in -> float64 numpy; torch in -> torch (device, floating dtype of ``rewards``).
+    ``answers`` as in :func:`majority_vote_per_prompt` (``None`` votes alone, NaN is refused).
     ``conflicts``: ``"error"`` (a pool where one answer carries different rewards is refused,
     naming the prompt and the answer) or ``"mean"`` (the winner's samples are served uniformly,
     so ``rbar_a`` is their mean reward).
@@ -285,7 +320,7 @@ def weighted_vote_per_prompt(answers, scores, rewards, *, ks, max_subsets=MAX_SU
 
     .. math:: \hat V_k = \binom nk^{-1}\sum_{|S|=k} f(S)
 
-    ``conflicts`` as in :func:`majority_vote_per_prompt`.
+    ``answers`` and ``conflicts`` as in :func:`majority_vote_per_prompt` (``None`` votes alone).
 
     References: Li et al. 2023 (verifier-weighted voting); Hoeffding 1948.
     """
@@ -320,7 +355,7 @@ def weighted_vote_credit(answers, scores, rewards, *, k, max_subsets=MAX_SUBSETS
     over every k-subset while ``C(n, k) <= max_subsets``; above, the unbiased sampled form
     ``w_i = mean_m f(S_m)(1{i in S_m} - k/(n-k) 1{i not in S_m})`` over ``max_subsets``
     uniform k-subsets. Either way ``E[sum_i w_i grad log pi(y_i)] = grad V_k``. Scores are
-    non-negative weights; ``conflicts`` as in :func:`majority_vote_per_prompt`.
+    non-negative weights; ``answers`` and ``conflicts`` as in :func:`majority_vote_per_prompt`.
 
     References: Kool et al. 2019; Hoeffding 1948; Li et al. 2023.
     """

@@ -43,10 +43,20 @@ CONFLICT_RULES = ("error", "mean")  # one answer, several rewards: refuse, or se
 
 
 def _answers_1d(answers, V: int) -> tuple[np.ndarray, np.ndarray]:
-    """Outcome answer labels (V,) of any comparable kind -> (distinct keys (A,), int codes (V,))."""
+    """Outcome answer labels (V,) of any comparable kind -> (distinct keys (A,), int codes (V,)); None and NaN
+    are refused (a ``ValueError`` naming the outcome)."""
     a = answers.detach().cpu().numpy() if is_tensor(answers) else np.asarray(answers)
     if a.shape != (V,):
         raise ValueError(f"answers must have shape (V,) = ({V},) with one answer key per outcome, got shape {a.shape}")
+    raw = a if isinstance(answers, np.ndarray) or is_tensor(answers) else np.asarray(answers, dtype=object)
+    for i, v in enumerate(raw):  # Python values: numpy turns ["a", nan] into the strings ["a", "nan"]
+        if v is None:
+            raise ValueError(f"answers[{i}] must be an answer key, got None: on a finite outcome set every outcome needs "
+                             f"one (None votes alone only among the samples of a pool); give outcome {i} a key of its "
+                             f"own, which its repeated draws then share")
+        if isinstance(v, (float, complex, np.floating, np.complexfloating)) and v != v:
+            raise ValueError(f"answers[{i}] must be an answer key, got NaN (NaNs would count as one answer); give "
+                             f"outcome {i} a key of its own")
     try:
         keys, codes = np.unique(a, return_inverse=True)
     except TypeError:
@@ -105,7 +115,8 @@ def majority_vote_value(probs, answers, rewards, *, k, conflicts="error"):
 
     by a dynamic programme over answer counts (:mod:`bonft.strategies.counting`), ``O(A k^3)`` per row for
     ``A`` answers, never enumerating k-tuples. numpy in -> numpy out; torch in -> torch out,
-    differentiable w.r.t. ``probs`` (and ``rewards``). ``k <= 150``. ``conflicts``: ``"error"``
+    differentiable w.r.t. ``probs`` (and ``rewards``). ``k <= 150``. ``answers``: one key per outcome (ints,
+    strings); None or NaN is a ``ValueError`` (on a policy every outcome needs a key). ``conflicts``: ``"error"``
     (an answer whose outcomes carry different rewards is refused) or ``"mean"`` (``Rbar_a`` is the
     probability-weighted mean reward of its outcomes; module docstring).
 
@@ -150,7 +161,7 @@ def weighted_vote_value(probs, answers, scores, rewards, *, k, conflicts="error"
     ``scores`` are non-negative weights (a negative one is a ``ValueError``). The served answer
     depends on weight sums, not only on counts, so this sums over the ``C(k+V-1, V-1)`` count
     vectors of the outcomes (not the ``V^k`` ordered tuples); refused above 200,000 of them.
-    Totals equal to 1e-12 relative tie. ``conflicts`` as in :func:`majority_vote_value`.
+    Totals equal to 1e-12 relative tie. ``answers`` and ``conflicts`` as in :func:`majority_vote_value`.
 
     References: Li et al. 2023, "Making Language Models Better Reasoners with Step-Aware
     Verifier" (verifier-weighted voting); Wang et al. 2023 (majority vote).
