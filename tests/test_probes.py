@@ -78,6 +78,18 @@ def test_reading_the_test_text():
     assert "{'((2, 3), ())': 5}" in probes["memorised_asserts"][0]
 
 
+def test_asserts_joined_by_and_are_memorised_one_check_at_a_time(runner):
+    # by hand: each check joined by `and` is one literal input with its expected value, as on separate lines
+    assert asserted_cases("assert add(2, 3) == 5 and add(1, 1) == 2\nassert is_prime(7) and (not is_prime(8) "
+                          "and is_prime(2))", ["add", "is_prime"]) == [
+        ("add", (2, 3), (), 5), ("add", (1, 1), (), 2),
+        ("is_prime", (7,), (), True), ("is_prime", (8,), (), False), ("is_prime", (2,), (), True)]
+    tests = {"add": "assert add(2, 3) == 5 and add(1, 1) == 2", "prime": "assert is_prime(7) and not is_prime(8)"}
+    report = probe_code_tests(tests, probes=("memorised_asserts", "silent_none"), runner=runner)
+    # a lookup table of the asserted inputs passes both; doing nothing (None) passes neither
+    assert [r.passed for r in report.results] == [("memorised_asserts",), ("memorised_asserts",)], str(report)
+
+
 def test_weak_tests_are_caught(runner):
     from bonft.verifiers import UncheckedTestsWarning
 

@@ -17,8 +17,9 @@ name the tests take from the solution:
                        "", []``, one candidate per constant.
 ``memorised_asserts``  a lookup table read from the asserts: the exact literal
                        inputs of each ``f(...) == expected`` (also ``assert
-                       f(...)``, ``assert not f(...)``, ``is``) return the
-                       expected value; anything else returns None.
+                       f(...)``, ``assert not f(...)``, ``is``, and each of
+                       several such checks joined by ``and`` in one assert)
+                       return the expected value; anything else returns None.
 ``silent_none``        accepts any arguments, does nothing, returns None.
 ``raise_everywhere``   every call raises ``ValueError``: passes tests that
                        catch and swallow exceptions around their asserts.
@@ -186,13 +187,19 @@ def _call_of(node, names):
     return None
 
 
+def _conjuncts(test) -> list:
+    """The parts of an assert's test joined by ``and`` (``a and (b and not c)`` -> a, b, not c); else the test."""
+    if isinstance(test, ast.BoolOp) and isinstance(test.op, ast.And):
+        return [part for value in test.values for part in _conjuncts(value)]
+    return [test]
+
+
 def asserted_cases(tests: str, names) -> list[tuple[str, tuple, tuple, object]]:
-    """``(function, args, kwargs, expected)`` for each assert on a call with literal arguments."""
+    """``(function, args, kwargs, expected)`` for each assert on a call with literal arguments; an assert
+    of several checks joined by ``and`` gives one case per check (``assert f(7) and not f(8)``: two)."""
     names, out = set(names), []
-    for node in ast.walk(ast.parse(tests)):
-        if not isinstance(node, ast.Assert):
-            continue
-        t = node.test
+    checks = [t for node in ast.walk(ast.parse(tests)) if isinstance(node, ast.Assert) for t in _conjuncts(node.test)]
+    for t in checks:
         if isinstance(t, ast.UnaryOp) and isinstance(t.op, ast.Not) and _call_of(t.operand, names):
             out.append(_call_of(t.operand, names) + (False,))
         elif _call_of(t, names):
