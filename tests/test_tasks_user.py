@@ -84,6 +84,13 @@ def test_csv_cells_are_read_as_written(tmp_path):
     (tmp_path / "ragged.csv").write_text("prompt,total\nx?,1,2\n")
     with pytest.raises(ValueError, match=r"ragged.csv' line 2: 3 cells, but the header names 2 columns"):
         UserTask(data=str(tmp_path / "ragged.csv"), prompt_field="prompt")
+    # a quoted cell may hold line breaks (RFC 4180): a row is named by its first line, as an editor shows it
+    (tmp_path / "multi.csv").write_text('prompt,total\n"first\nline?",1\n"two\nthree\nlines?",2\n"bad\nrow?",3,4\n')
+    with pytest.raises(ValueError, match=r"multi.csv' line 7: 3 cells, but the header names 2 columns"):
+        UserTask(data=str(tmp_path / "multi.csv"), prompt_field="prompt")
+    (tmp_path / "multi.csv").write_text('prompt,total\n"first\nline?",1\n\n"two\nthree\nlines?",2\n')
+    task = UserTask(data=str(tmp_path / "multi.csv"), prompt_field="prompt", answer_field="total")
+    assert [ex.meta["where"].rsplit(" ", 2)[-2:] for ex in task.examples] == [["line", "2"], ["line", "5"]]
     (tmp_path / "twice.csv").write_text("prompt,prompt\nx?,y?\n")
     with pytest.raises(ValueError, match=r"twice.csv' line 1: the header must name every column once"):
         UserTask(data=str(tmp_path / "twice.csv"), prompt_field="prompt")

@@ -106,7 +106,8 @@ def _load_rows(data: Any, dataset_split: str | None) -> tuple[list[tuple[dict, s
 
 
 def _read_csv(path: Path) -> list[tuple[int, dict]]:
-    """``[(line, row)]`` of a CSV file with a header line, every cell the text as written (Python's csv module).
+    """``[(line, row)]`` of a CSV file with a header line, every cell the text as written (Python's csv module);
+    ``line``: the row's first line (a quoted cell may hold line breaks).
 
     A reader that infers types changes text: a column of integers with one blank cell becomes floats, so an
     answer ``1`` would read as ``'1.0'``. Cells stay strings here (a blank one ''); a verifier converts them.
@@ -120,13 +121,15 @@ def _read_csv(path: Path) -> list[tuple[int, dict]]:
             if len(set(header)) != len(header) or not all(header):
                 raise ValueError(f"data {str(path)!r} line 1: the header must name every column once, got {header}")
             out = []
+            start = reader.line_num + 1  # a row's first line: a quoted cell may span several
             for cells in reader:
+                line, start = start, reader.line_num + 1
                 if not cells:
                     continue  # a blank line
                 if len(cells) != len(header):
-                    raise ValueError(f"data {str(path)!r} line {reader.line_num}: {len(cells)} cells, but the header "
+                    raise ValueError(f"data {str(path)!r} line {line}: {len(cells)} cells, but the header "
                                      f"names {len(header)} columns")
-                out.append((reader.line_num, dict(zip(header, cells))))
+                out.append((line, dict(zip(header, cells))))
     except UnicodeDecodeError as e:
         raise ValueError(f"data {str(path)!r} is not UTF-8 text (byte {e.object[e.start]:#04x}); save it as UTF-8") from None
     except csv.Error as e:
