@@ -15,6 +15,7 @@ from bonft.estimate import (
     best_of_k,
     best_of_k_per_prompt,
     pass_at_k_per_prompt,
+    summarize,
 )
 
 # ----------------------------------------------------------------------------- references (independent of bonft)
@@ -309,3 +310,64 @@ def test_integer_scores_up_to_2_53_are_ranked_exactly():
     # {2**53 - 1, 0} keeps a reward-0 one: best-of-2 = 2/3
     assert best_of_k(np.array([2**53, 2**53 - 1, 0]), [1, 0, 0], k=2) == pytest.approx(2 / 3, rel=1e-15)
     assert best_of_k([-(2**53), 3, 0], [1, 0, 0], k=2) == 0.0  # the lowest score is never kept
+
+
+# ----------------------------------------------------------------------------- values stay inside the pool's range
+
+
+def test_a_pool_of_ones_gives_exactly_one_for_every_n_and_k():
+    # a mean of rewards that are all 1 is 1 (no rounding can be allowed to show): one row and several rows,
+    # which take different matrix-product paths; the auditor's worst case was n = 29, k = 1 -> 1.0000000000000002
+    for n in range(1, 257):
+        ks = list(range(1, n + 1))
+        for rows in (1, 3):
+            got = pass_at_k_per_prompt(np.ones((rows, n)), ks=ks)
+            assert (got == 1.0).all(), (n, rows, got[got != 1.0][:3])
+
+
+def test_the_auditors_constant_column_gets_the_exact_interval():
+    # 10 prompts x 12 samples, every reward 1, scores j/12: summarize raised "values must lie within bounds [0, 1],
+    # got 1.0000000000000007". Every value is 1; the exact interval for 10 values all at 1 is
+    # [0.025^(1/10), 1] = [0.6915, 1] (Clopper & Pearson 1934, 0 failures in 10 at 95%)
+    s = summarize(np.tile(np.arange(12.0) / 12, (10, 1)), np.ones((10, 12)), ks=[7])
+    assert (s.per_prompt_best_of_k == 1.0).all() and (s.per_prompt_pass_at_k == 1.0).all()
+    assert s.best_of_k_mean[0] == 1.0 and s.best_of_k_hi[0] == 1.0
+    assert s.best_of_k_lo[0] == pytest.approx(0.025 ** (1 / 10), rel=1e-12)
+    assert not s.no_interval("best_of_k").any() and "no spread" not in s.table()
+
+
+@given(st.integers(1, 40), st.integers(0, 2**31 - 1), st.sampled_from([0.1, 1 / 3, -7.25, 1e-300, 3e300]))
+@settings(max_examples=60)
+def test_every_value_lies_in_the_pools_reward_range_and_a_constant_pool_is_exact(n, seed, c):
+    # best-of-k and pass@k are means of the pool's rewards (U-statistic weights sum to 1, hockey-stick identity):
+    # each lies in [min r, max r]; a pool whose rewards all equal c gives c exactly
+    rng = np.random.default_rng(seed)
+    ks = list(range(1, n + 1))
+    scores = rng.integers(0, 4, (3, n)).astype(float)  # ties included
+    r = c * rng.choice([0.5, 1.0, 1.0, 2.0], (3, n))
+    for got in (best_of_k_per_prompt(scores, r, ks=ks), pass_at_k_per_prompt(r, ks=ks)):
+        assert (got >= r.min(1)[:, None]).all() and (got <= r.max(1)[:, None]).all()
+    flat = np.full((3, n), c)
+    assert (best_of_k_per_prompt(scores, flat, ks=ks) == c).all()
+    assert (pass_at_k_per_prompt(flat, ks=ks) == c).all()
+
+
+@pytest.mark.parametrize("rewards, scores, want", [
+    # every reward the largest float64: each value is that reward (the sum of weights times it overflowed to inf)
+    (np.full(6, np.finfo(float).max), np.arange(6.0), [np.finfo(float).max] * 3),
+    (np.full(6, -np.finfo(float).max), np.arange(6.0), [-np.finfo(float).max] * 3),
+    # all scores tied: the served reward is the pool's mean, (3 * 1e308 - 3 * 1e308) / 6 = 0 (was NaN: the sum overflowed)
+    (np.array([1e308, -1e308] * 3), np.zeros(6), [0.0] * 3),
+])
+def test_rewards_at_the_edge_of_float64_give_finite_exact_values(rewards, scores, want):
+    got = best_of_k(scores, rewards, k=[1, 2, 6])
+    np.testing.assert_array_equal(got, want)
+
+
+def test_rewards_of_both_signs_near_the_edge_match_brute_force():
+    # brute-force enumeration of k-subsets in exact rationals; the estimate was inf or NaN
+    s = [0.3, 0.1, 0.9, 0.5, 0.7]
+    r = [1e308, -1.5e308, 1.7e308, -1e308, 5.0]
+    got = best_of_k(s, r, k=[1, 2, 3, 4, 5])
+    want = [float(brute_best_of_k(s, r, k)) for k in range(1, 6)]
+    np.testing.assert_allclose(got, want, rtol=1e-13)

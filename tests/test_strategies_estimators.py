@@ -216,3 +216,34 @@ def test_keys_that_cannot_be_compared_name_the_missing_answer_spelling():
     with pytest.raises(TypeError, match=r"answers\[0\] must hold comparable keys \(ints or strings, or None for a "
                                         r"missing answer, which votes alone\), got dtype object"):
         majority_vote_per_prompt([np.array(["a", 1, "a"], dtype=object)], [[1.0, 0.0, 1.0]], ks=[2])
+
+
+def test_vote_values_lie_in_the_pools_reward_range_and_a_constant_pool_is_exact():
+    # a vote serves one of the pool's rewards, so its value is a mean of them: a pool of equal rewards c gives c
+    # exactly (rounding of the subset counts could show as 0.30000000000000004 for c = 0.3)
+    rng = np.random.default_rng(5)
+    ans = [rng.integers(0, 4, 12) for _ in range(3)]
+    for c in (0.3, 1.0, -2.5):
+        flat = [np.full(12, c)] * 3
+        assert (majority_vote_per_prompt(ans, flat, ks=list(range(1, 13))) == c).all()
+        val, _ = weighted_vote_per_prompt(ans, [rng.random(12) for _ in range(3)], flat, ks=[1, 2, 5, 12])
+        assert (val == c).all()
+
+
+def test_vote_values_scale_with_the_rewards_up_to_the_edge_of_float64():
+    # linearity of expectation: V(a r + b) = a V(r) + b. With n = 200 the subset counts reach C(200, 100) ~ 9e58, so
+    # rewards of 1e260 overflowed to inf in the count programme; the weighted vote's subset mean overflowed at 1e308
+    rng = np.random.default_rng(2)
+    ans = rng.integers(0, 5, 200)
+    r = np.array([0.9, 0.1, 0.5, 0.0, 1.0])[ans]
+    ks = [1, 10, 100, 200]
+    base = majority_vote_per_prompt([ans], [r], ks=ks)
+    np.testing.assert_allclose(majority_vote_per_prompt([ans], [1e260 * r], ks=ks), 1e260 * base, rtol=1e-12)
+    np.testing.assert_allclose(majority_vote_per_prompt([ans], [1e308 * (2 * r - 1)], ks=ks),
+                               1e308 * (2 * base - 1), rtol=1e-12, atol=1e293)
+    w = rng.random(8)
+    a8, r8 = ans[:8], r[:8]
+    v, _ = weighted_vote_per_prompt([a8], [w], [r8], ks=[1, 3, 8])
+    big, _ = weighted_vote_per_prompt([a8], [w], [1.7e308 * r8], ks=[1, 3, 8])
+    assert np.isfinite(big).all()
+    np.testing.assert_allclose(big, 1.7e308 * v, rtol=1e-12)

@@ -73,8 +73,22 @@ def banded_weights(n: int, ks: tuple[int, ...]) -> tuple[tuple[int, int, int, np
     return tuple(bands)
 
 
+def within_pools(values: np.ndarray, lo: np.ndarray, hi: np.ndarray) -> np.ndarray:
+    """Per-pool values ``(P, K)`` clipped in place into each pool's reward range ``[lo_p, hi_p]`` (``(P,)`` each).
+
+    Every per-pool estimate (best-of-k, pass@k, the vote strategies) is a weighted mean of the pool's
+    rewards, so it lies in that range; weights that sum to 1 only up to rounding can step an ulp
+    outside (1.0000000000000007 for a pool of ones), which the clip undoes. The one rule for all of them.
+    """
+    return np.clip(values, lo[:, None], hi[:, None], out=values)
+
+
 def weighted_ranks(r: np.ndarray, ks) -> np.ndarray:
-    """Rewards in ascending score order ``(P, n)`` -> best-of-k values ``(P, K)``: ``sum_i w_k(i) r_(i)``."""
+    """Rewards in ascending score order ``(P, n)`` -> best-of-k values ``(P, K)``: ``sum_i w_k(i) r_(i)``.
+
+    The weights sum to 1 only up to rounding: callers pass rewards shifted by the pool's minimum and
+    clip with :func:`within_pools` (:func:`bonft.estimate.bestofk._best_of_k_matrix`).
+    """
     P, n = r.shape
     ks = np.asarray(ks, dtype=np.int64)
     out = np.empty((P, len(ks)))

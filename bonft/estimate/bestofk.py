@@ -41,7 +41,7 @@ import numpy as np
 
 from bonft._core.checks import as_float_array, check_finite, check_ks, check_nonempty, check_same_shape, is_tensor
 from bonft._core.ties import first_of_group, tie_means
-from bonft._core.ustat import weighted_ranks
+from bonft._core.ustat import weighted_ranks, within_pools
 
 __all__ = ["best_of_k", "best_of_k_per_prompt", "pass_at_k_per_prompt"]
 
@@ -162,12 +162,25 @@ def _sort_rewards_by_score(scores: np.ndarray, rewards: np.ndarray):
 
 def _best_of_k_matrix(scores: np.ndarray, rewards: np.ndarray, ks: np.ndarray) -> np.ndarray:
     """scores, rewards: (P, n) float64, ks: (K,) int -> (P, K) best-of-k values."""
-    P, n = scores.shape
-    r, rows, s_rows = _sort_rewards_by_score(scores, rewards)  # (P, n) rewards in score order
+    big = rewards.size and float(np.abs(rewards).max()) > _HUGE
+    if big:  # near float64's edge a group's sum or a pool's spread would overflow: work at 2^-64 scale (exact)
+        rewards = rewards * _DOWN
+    # shifted by the pool's minimum, a pool of equal rewards is all zeros: its value is that reward exactly
+    lo, hi = rewards.min(axis=1), rewards.max(axis=1)
+    r, rows, s_rows = _sort_rewards_by_score(scores, rewards - lo[:, None])  # (P, n) rewards in score order
     if len(rows):
         # ties: every member of a tied group gets the group's mean reward
         r[rows] = tie_means(r[rows], first_of_group(s_rows))
-    return weighted_ranks(r, ks)  # (P, n) -> (P, K), banded products of the cached weights
+    out = weighted_ranks(r, ks)  # (P, n) -> (P, K), banded products of the cached weights
+    out += lo[:, None]
+    within_pools(out, lo, hi)  # weights summing to 1 +- ulps cannot step outside [min r, max r]
+    if big:
+        out *= 1.0 / _DOWN
+    return out
+
+
+_HUGE = 2.0**960  # rewards above this in magnitude are scaled down before summing
+_DOWN = 2.0**-64  # a power of two: scaling is exact (up to subnormals, far below such rewards' rounding)
 
 
 # ----------------------------------------------------------------------------- validation helpers

@@ -58,6 +58,7 @@ from bonft._core.checks import (
     is_tensor,
     torch_out_dtype,
 )
+from bonft._core.ustat import within_pools
 from bonft.strategies.counting import pool_vote_sums, vote_credit_batched, weighted_slot_weights
 from bonft.strategies.exact import CONFLICT_RULES
 
@@ -199,14 +200,38 @@ def _check_weights(scores: list[np.ndarray]) -> None:
 # ---------------------------------------------------------------------------- majority vote
 
 
+def _unit(r: np.ndarray) -> tuple[np.ndarray, float, float]:
+    """One pool's rewards -> ``(x, lo, half)``: ``x = (r - lo) / (max r - lo)`` in [0, 1], ``half = (max r - lo) / 2``.
+
+    The vote programmes multiply rewards by subset counts up to ``C(1000, 500) ~ 1e299``; on [0, 1] nothing
+    overflows, and :func:`_from_unit` maps a value back without forming ``max r - lo`` (which itself
+    overflows for rewards of +-1e308). A pool of equal rewards gives ``x = 0``.
+    """
+    lo = float(r.min())
+    half = float(r.max()) * 0.5 - lo * 0.5
+    x = (r * 0.5 - lo * 0.5) / half if half > 0 else np.zeros_like(r)
+    return np.minimum(x, 1.0), lo, half
+
+
+def _from_unit(v: np.ndarray, lo: float, half: float) -> np.ndarray:
+    """Values on the unit scale of :func:`_unit` -> the rewards' scale (``lo + 2 half v``, each step finite)."""
+    return lo + half * v + half * v
+
+
+def _pool_ranges(rew: list[np.ndarray]) -> tuple[np.ndarray, np.ndarray]:
+    """The pools' reward ranges: ``(lo (P,), hi (P,))``."""
+    return np.array([r.min() for r in rew]), np.array([r.max() for r in rew])
+
+
 def _vote_pool(codes: np.ndarray, r: np.ndarray, ks: np.ndarray) -> np.ndarray:
     """One pool -> (K,) majority-vote values."""
+    r, lo, half = _unit(r)
     counts = np.bincount(codes)
     rbar = np.bincount(codes, weights=r) / counts
     d, cls, mult = np.unique(counts, return_inverse=True, return_counts=True)
     per_class_r = np.bincount(cls.reshape(-1), weights=rbar, minlength=len(d))  # (J,) sum of rbar per class
     sums = pool_vote_sums(d, mult, per_class_r, int(ks.max()))
-    return sums[ks] / np.array([float(math.comb(len(r), k)) for k in ks])
+    return _from_unit(sums[ks] / np.array([float(math.comb(len(r), k)) for k in ks]), lo, half)
 
 
 def majority_vote_per_prompt(answers, rewards, *, ks, conflicts="error"):
@@ -237,7 +262,7 @@ def majority_vote_per_prompt(answers, rewards, *, ks, conflicts="error"):
     ks_arr, scalar = check_ks(ks, smallest, name="ks")
     codes = _codes(ans)
     _one_reward_per_answer(codes, ans, rew, conflicts, "majority_vote")
-    out = np.stack([_vote_pool(c, r, ks_arr) for c, r in zip(codes, rew)])
+    out = within_pools(np.stack([_vote_pool(c, r, ks_arr) for c, r in zip(codes, rew)]), *_pool_ranges(rew))
     return out[:, 0] if scalar else out
 
 
@@ -337,12 +362,13 @@ def weighted_vote_per_prompt(answers, scores, rewards, *, ks, max_subsets=MAX_SU
     val = np.zeros((len(ans), len(ks_arr)))
     se = np.zeros_like(val)
     for p, (c, s, r) in enumerate(zip(codes, sc, rew)):
+        x, lo, half = _unit(r)  # served rewards summed over subsets stay finite on [0, 1]
         for j, k in enumerate(ks_arr):
             idx, exact = _subsets(len(r), int(k), max_subsets, rng)
-            f = _weighted_f(idx, c, s, r)
-            val[p, j] = f.mean()
-            se[p, j] = 0.0 if exact else f.std(ddof=1) / math.sqrt(len(f))
-    return val, se
+            f = _weighted_f(idx, c, s, x)
+            val[p, j] = _from_unit(f.mean(), lo, half)
+            se[p, j] = 0.0 if exact else (2.0 * f.std(ddof=1) / math.sqrt(len(f))) * half
+    return within_pools(val, *_pool_ranges(rew)), se
 
 
 def weighted_vote_credit(answers, scores, rewards, *, k, max_subsets=MAX_SUBSETS, seed=0, conflicts="error"):
