@@ -5,11 +5,13 @@ import numpy as np
 import pytest
 import torch
 
+import bonft.trainer.checkpoint as CK
 from bonft.tasks.tokenizer import build_tokenizer
 from bonft.trainer.checkpoint import (
     latest_checkpoint,
     list_checkpoints,
     load_state,
+    recover_checkpoints,
     resolve_checkpoint,
     save_checkpoint,
     set_rng_state,
@@ -74,6 +76,39 @@ def test_crash_during_save_keeps_previous(tmp_path, parts, monkeypatch):
     # the next successful save cleans the half-written directory
     save_checkpoint(tmp_path, step=3, model=model, tokenizer=tok, optimizer=opt, config_toml="")
     assert [p.name for p in (tmp_path / "checkpoints").iterdir()] != [] and not list((tmp_path / "checkpoints").glob("*.tmp-*"))
+
+
+def test_a_step_saved_again_is_never_lost_between_its_two_renames(tmp_path, parts, monkeypatch):
+    # a re-save of step 2 moves the old copy aside, then moves the new one in; Ctrl-C between the two
+    # renames puts the old copy back, and a kill there (no handler runs) leaves step-2.old-PID, which the
+    # reader lists as step 2 and recover_checkpoints (the trainer, before resuming) moves back
+    model, tok, opt = parts
+    save_checkpoint(tmp_path, step=2, model=model, tokenizer=tok, optimizer=opt, config_toml="")
+    root = tmp_path / "checkpoints"
+    real, calls = CK.os.replace, []
+
+    def cut(src, dst):
+        calls.append(dst)
+        if len(calls) == 2:  # the new copy's rename: the old one is already aside
+            raise KeyboardInterrupt
+        return real(src, dst)
+
+    monkeypatch.setattr(CK.os, "replace", cut)
+    with pytest.raises(KeyboardInterrupt):
+        save_checkpoint(tmp_path, step=2, model=model, tokenizer=tok, optimizer=opt, config_toml="")
+    monkeypatch.undo()
+    assert sorted(p.name for p in root.iterdir()) == ["step-00000002"]
+    assert latest_checkpoint(tmp_path) == root / "step-00000002"
+    real(root / "step-00000002", root / "step-00000002.old-99999")  # what a kill -9 between the renames leaves
+    assert latest_checkpoint(tmp_path) == root / "step-00000002.old-99999"  # read in its place, verified
+    recover_checkpoints(tmp_path)
+    assert sorted(p.name for p in root.iterdir()) == ["step-00000002"]
+    assert load_state(root / "step-00000002")["step"] == 2
+    # a copy aside whose step is in place is a leftover: removed, as unfinished .tmp- folders are
+    (root / "step-00000002.old-99998").mkdir()
+    (root / "step-00000004.tmp-99997").mkdir()
+    save_checkpoint(tmp_path, step=3, model=model, tokenizer=tok, optimizer=opt, config_toml="")
+    assert sorted(p.name for p in root.iterdir()) == ["step-00000002", "step-00000003"]
 
 
 def test_keep_prunes_oldest_and_resolve(tmp_path, parts):

@@ -15,7 +15,9 @@ files are written and fsync'ed inside ``step-XXXXXXXX.tmp-PID``, the manifest
 last, and the directory is then renamed (atomic on POSIX). Older checkpoints
 are deleted only after the new one is in place, so a crash or ``kill -9`` at
 any moment leaves the previous checkpoint loadable. Leftover ``.tmp-*``
-directories are ignored and cleaned.
+directories are ignored and cleaned; a step saved again moves its previous copy
+aside (``step-S.old-PID``) for the moment between two renames, and a copy left
+there by a kill is read in its place and moved back (:func:`recover_checkpoints`).
 
 Reading checks the manifest (it lists every file the checkpoint needs and
 holds, no weights are a pickle, every listed file is present with its size and
@@ -49,6 +51,7 @@ from transformers.utils import logging as hf_logging
 MANIFEST = "manifest.json"
 FORMAT = "bonft-checkpoint/1"
 _STEP_DIR = re.compile(r"^step-(\d{8})$")
+_OLD_DIR = re.compile(r"^step-(\d{8})\.old-\d+$")  # a checkpoint moved aside while its step is re-saved
 
 
 class CheckpointError(ValueError):
@@ -211,12 +214,48 @@ def is_verified_checkpoint(path: str | Path) -> bool:
 
 # ----------------------------------------------------------------------------- finding checkpoints
 def list_checkpoints(run_dir: str | Path) -> list[Path]:
-    """Checkpoint directories of a run (renamed into place, not yet verified), oldest first."""
+    """Checkpoint directories of a run (renamed into place, not yet verified), oldest first.
+
+    A step whose directory is missing but whose previous copy was moved aside (``step-S.old-PID``:
+    a re-save of step S was cut between its two renames) is listed by that copy.
+    """
     root = Path(run_dir) / "checkpoints"
     if not root.is_dir():
         return []
-    found = [p for p in root.iterdir() if p.is_dir() and _STEP_DIR.match(p.name)]
-    return sorted(found, key=lambda p: int(_STEP_DIR.match(p.name).group(1)))
+    found = {int(m.group(1)): p for p in root.iterdir() if p.is_dir() and (m := _STEP_DIR.match(p.name))}
+    for p in sorted(root.iterdir()):
+        m = _OLD_DIR.match(p.name)
+        if m and p.is_dir():
+            found.setdefault(int(m.group(1)), p)
+    return [found[step] for step in sorted(found)]
+
+
+def recover_checkpoints(run_dir: str | Path) -> None:
+    """Tidy a run's checkpoints after a crash (call it holding the run's lock, before reading them).
+
+    A copy moved aside by a re-save (``step-S.old-PID``) goes back to ``step-S`` when the new one never
+    arrived, and is removed when it did; unfinished ``step-S.tmp-PID`` folders are removed.
+    """
+    root = Path(run_dir) / "checkpoints"
+    if not root.is_dir():
+        return
+    for p in sorted(root.iterdir()):
+        m = _OLD_DIR.match(p.name)
+        if m and p.is_dir():
+            final = root / f"step-{m.group(1)}"
+            if final.exists():
+                shutil.rmtree(p, ignore_errors=True)
+            else:
+                os.replace(p, final)
+        elif ".tmp-" in p.name and p.name.startswith("step-") and p.is_dir():
+            shutil.rmtree(p, ignore_errors=True)
+
+
+def prune_checkpoints(run_dir: str | Path, *, keep: int, upto: int) -> None:
+    """Delete checkpoints of steps <= ``upto`` but the ``keep`` newest of them (newer ones stay; 0 keeps all)."""
+    older = [p for p in list_checkpoints(run_dir) if _STEP_DIR.match(p.name) and int(p.name[5:]) <= upto]
+    for old in older[:-keep]:
+        shutil.rmtree(old, ignore_errors=True)
 
 
 def latest_checkpoint(run_dir: str | Path) -> Path | None:
@@ -344,9 +383,15 @@ def save_checkpoint(
         shutil.rmtree(tmp, ignore_errors=True)
         raise
     if final.exists():  # the same step saved twice (e.g. Ctrl-C right after a periodic save)
-        old = root / f"{final.name}.old-{os.getpid()}"
-        os.replace(final, old)
-        os.replace(tmp, final)
+        old = root / f"{final.name}.old-{os.getpid()}"  # a kill between the renames: list_checkpoints reads it
+        try:
+            os.replace(final, old)
+            os.replace(tmp, final)
+        except BaseException:
+            if not final.exists() and old.exists():
+                os.replace(old, final)
+            shutil.rmtree(tmp, ignore_errors=True)
+            raise
         shutil.rmtree(old, ignore_errors=True)
     else:
         os.replace(tmp, final)
@@ -355,12 +400,8 @@ def save_checkpoint(
         os.fsync(dir_fd)
     finally:
         os.close(dir_fd)
-    older = [p for p in list_checkpoints(run_dir) if int(p.name[5:]) <= step]
-    for old in older[:-keep]:
-        shutil.rmtree(old, ignore_errors=True)
-    for stale in root.glob("*.tmp-*"):  # leftovers of a crashed save
-        if stale != tmp:
-            shutil.rmtree(stale, ignore_errors=True)
+    recover_checkpoints(run_dir)  # leftovers of a crashed save
+    prune_checkpoints(run_dir, keep=keep, upto=step)
     return final
 
 
