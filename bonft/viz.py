@@ -182,7 +182,7 @@ def plot_best_of_k_curves(curves: dict, path, *, title: str | None = None) -> st
     ax.grid(alpha=0.3)
     ax.legend(fontsize=8)
     fig.tight_layout()
-    fig.savefig(_out(path), dpi=100)
+    _save_figure(fig, _out(path), dpi=100)
     plt.close(fig)
     return path
 
@@ -241,7 +241,7 @@ def _finish(plt, fig, axes, path, title, *, unit=None, ticks=None) -> Path:
             ax.legend(fontsize=8)
     fig.suptitle(title)
     fig.tight_layout()
-    fig.savefig(_out(path), dpi=110)
+    _save_figure(fig, _out(path), dpi=110)
     plt.close(fig)
     return Path(path)
 
@@ -314,6 +314,25 @@ def _out(path) -> str:
     return path
 
 
+def _save_figure(fig, path, **kw) -> None:
+    """``fig.savefig`` to a temporary file beside ``path``, then renamed onto it: a full disk or a kill
+    leaves the previous figure (or none), never a cut one. A failed write is an ``OSError`` naming ``path``."""
+    from bonft._core.jsonl import replacing
+
+    path = os.fspath(path)
+    fmt = os.path.splitext(path)[1][1:].lower() or "png"
+    try:
+        with replacing(path, binary=True) as fh:
+            fig.savefig(fh, format=fmt, **kw)
+    except BaseException as e:
+        import matplotlib.pyplot as plt
+
+        plt.close(fig)
+        if not isinstance(e, OSError) or not e.strerror or e.filename == path:
+            raise
+        raise type(e)(e.errno, f"the figure cannot be written: {e.strerror}", path) from None
+
+
 def _log2_k_axis(ax, kmax: int) -> None:
     """k on a log axis with ticks 1, 2, 4, ... labelled as plain numbers (no minor ticks)."""
     from matplotlib.ticker import FixedLocator, NullLocator
@@ -358,7 +377,7 @@ def plot_plan_heatmap(res, path) -> str:
     ax.set_title(f"best-of-k value over (temperature, k), {res.mode} mode")
     ax.legend(loc="upper left", fontsize=8, framealpha=0.8)
     fig.subplots_adjust(left=0.09, right=0.98, bottom=0.12, top=0.92)  # fixed margins: tight_layout costs seconds
-    fig.savefig(path)
+    _save_figure(fig, path)
     plt.close(fig)
     return path
 
@@ -405,7 +424,7 @@ def plot_plan_curves(res, path) -> str:
     ax.grid(alpha=0.3)
     ax.legend(fontsize=8)
     fig.subplots_adjust(left=0.1, right=0.98, bottom=0.12, top=0.92)
-    fig.savefig(path)
+    _save_figure(fig, path)
     plt.close(fig)
     return path
 
@@ -436,7 +455,7 @@ def plot_verifier_check(report, path) -> str:
     status = "OK" if report.ok else "; ".join(p.split(":")[0] for p in report.problems)
     ax.set_title(f"verifier check: {status}", fontsize=9)
     fig.tight_layout()
-    fig.savefig(_out(path), dpi=100)
+    _save_figure(fig, _out(path), dpi=100)
     plt.close(fig)
     return str(path)
 
@@ -482,7 +501,7 @@ def plot_objective_check(report, path) -> str:
     ax.grid(alpha=0.3)
     ax.legend(fontsize=7, loc="upper left")
     fig.subplots_adjust(left=0.14, right=0.97, bottom=0.14, top=0.93)
-    fig.savefig(path, dpi=100)
+    _save_figure(fig, path, dpi=100)
     plt.close(fig)
     return path
 
@@ -529,6 +548,6 @@ def plot_strategy_curves(curves: dict, path, *, title: str | None = None) -> str
         fig.suptitle(title)
     fig.tight_layout()
     path = _out(path)
-    fig.savefig(path, dpi=100)
+    _save_figure(fig, path, dpi=100)
     plt.close(fig)
     return str(path)

@@ -173,6 +173,35 @@ def test_every_figure_makes_its_missing_folders(tmp_path, plot):
     assert out.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"  # the PNG signature (PNG specification, section 5.2)
 
 
+@pytest.mark.parametrize("plot", FIGURES)
+def test_a_figure_that_cannot_be_written_whole_leaves_the_previous_one(tmp_path, monkeypatch, plot):
+    # a full disk part-way through the PNG: the figure goes to a temporary file first, so the previous figure
+    # stays as it was (not a cut PNG), no temporary file is left, and the error names the figure's path
+    import errno
+
+    from matplotlib.figure import Figure
+
+    draw, out = _drawer(plot), tmp_path / "fig.png"
+    draw(out)
+    good = out.read_bytes()
+    real = Figure.savefig
+
+    def half_then_full(self, fname, *a, **kw):
+        if hasattr(fname, "write"):
+            fname.write(good[: len(good) // 2])
+        else:
+            with open(fname, "wb") as fh:
+                fh.write(good[: len(good) // 2])
+        raise OSError(errno.ENOSPC, "No space left on device")
+
+    monkeypatch.setattr(Figure, "savefig", half_then_full)
+    with pytest.raises(OSError, match=r"No space left on device") as err:
+        draw(out)
+    monkeypatch.setattr(Figure, "savefig", real)
+    assert err.value.filename == str(out)
+    assert out.read_bytes() == good and sorted(p.name for p in tmp_path.iterdir()) == ["fig.png"]
+
+
 def _verifier_report():
     from bonft.testing import check_verifier
     from bonft.verifiers import ExactMatch

@@ -1,7 +1,13 @@
-"""Reading JSON Lines files with errors that name the file and the line (the pool file, prompt files)."""
+"""Reading JSON Lines files with errors that name the file and the line (the pool file, prompt files),
+and writing a file atomically (:func:`replacing`)."""
 from __future__ import annotations
 
+import contextlib
 import json
+import os
+import stat
+import tempfile
+from typing import IO, Iterator
 
 
 def decode_utf8(raw: bytes, name: str) -> str:
@@ -53,3 +59,46 @@ def parse_object(text: str, name: str, no: int, what: str, *, unique_keys: bool 
     if type(row) is not dict:
         raise ValueError(f"{name} line {no}: expected a JSON object ({what}), got {type(row).__name__}")
     return row
+
+
+@contextlib.contextmanager
+def replacing(path, *, binary: bool = False) -> Iterator[IO]:
+    """Write ``path`` atomically: yields a temporary file in ``path``'s folder, which replaces ``path``
+    (``os.replace``) only once the body returned and the file is flushed and fsync'ed.
+
+    Any failure, a full disk or Ctrl-C included, removes the temporary file and leaves ``path``
+    as it was: a reader never sees half a file. An existing file keeps its mode (a new one: 0o666
+    less the umask); a symbolic link is written through to its target.
+    """
+    target = os.path.realpath(os.fspath(path))
+    folder = os.path.dirname(target)
+    try:
+        mode = stat.S_IMODE(os.stat(target).st_mode)
+    except FileNotFoundError:
+        umask = os.umask(0)
+        os.umask(umask)
+        mode = 0o666 & ~umask
+    fd, tmp = tempfile.mkstemp(prefix=f".{os.path.basename(target)}.", suffix=".tmp", dir=folder)
+    try:
+        with os.fdopen(fd, "wb" if binary else "w", **({} if binary else {"encoding": "utf-8"})) as fh:
+            yield fh
+            fh.flush()
+            os.fchmod(fh.fileno(), mode)
+            os.fsync(fh.fileno())
+        os.replace(tmp, target)
+    except BaseException:
+        with contextlib.suppress(OSError):
+            os.unlink(tmp)
+        raise
+    with contextlib.suppress(OSError):  # the rename itself on disk (best effort: not every filesystem allows it)
+        dir_fd = os.open(folder, os.O_RDONLY)
+        try:
+            os.fsync(dir_fd)
+        finally:
+            os.close(dir_fd)
+
+
+def replace_text(path, text: str) -> None:
+    """Write ``text`` to ``path`` atomically (:func:`replacing`)."""
+    with replacing(path) as fh:
+        fh.write(text)
