@@ -21,10 +21,12 @@ import contextlib
 import datetime
 import errno
 import fcntl
+import gc
 import json
 import os
 import shutil
 import socket
+import traceback
 import warnings
 from pathlib import Path
 from typing import Iterator
@@ -164,6 +166,17 @@ def _cause(err: BaseException) -> str:
     return text.splitlines()[0][:160] if text else type(err).__name__
 
 
+def _release(err: BaseException) -> None:
+    """Drop what the failed frames hold: a writer still open there keeps its deleted file's space in use."""
+    seen: set[int] = set()
+    while err is not None and id(err) not in seen:
+        seen.add(id(err))
+        if err.__traceback__ is not None:
+            traceback.clear_frames(err.__traceback__)
+        err = err.__cause__ or err.__context__
+    gc.collect()
+
+
 def write_failed(err: BaseException, *, path: str | Path, run_dir: str | Path | None, what: str,
                  need_bytes: int | None = None, removed: str | Path | None = None) -> WriteFailed:
     """The one-line :class:`WriteFailed` for ``err`` while writing ``what`` at ``path`` (raise it ``from None``).
@@ -172,6 +185,7 @@ def write_failed(err: BaseException, *, path: str | Path, run_dir: str | Path | 
     the last verified checkpoint of ``run_dir`` and what to do.
     """
     path = Path(path)
+    _release(err)
     free = _free_bytes(path)
     cause = _cause(err)
     if isinstance(err, RuntimeError) and need_bytes and free is not None and free < need_bytes:
