@@ -344,3 +344,84 @@ def test_a_write_that_fails_for_another_reason_than_space_does_not_blame_the_dis
     full = str(write_failed(OSError(errno.ENOSPC, "No space left on device"), path="/tmp/x", run_dir=None,
                             what="the summary", need_bytes=2048))
     assert "about 2.0 kB needed" in full and " free on " in full and full.endswith("; free space and rerun with --resume")
+
+
+# ----------------------------------------------------------------------------- kills and interrupts at every moment
+def metric_rows(run_dir) -> list[tuple[str, int]]:
+    return [(r["kind"], r["step"]) for r in map(json.loads, (Path(run_dir) / "metrics.jsonl").read_text().splitlines())]
+
+
+WHOLE = [("train", 1), ("train", 2), ("train", 3), ("train", 4), ("eval", 4), ("train", 5), ("train", 6), ("eval", 6)]
+
+
+@pytest.mark.parametrize("limit", ["config", "metrics"])
+def test_a_resume_cut_short_while_it_rewrites_config_and_metrics_leaves_both_whole(tmp_path, limit):
+    # a file-size limit (ulimit -f) stops the write of the configuration, or of the trimmed metrics, part-way:
+    # the files are replaced only once written whole, so both keep their bytes and the next resume finishes
+    cfg = tiny(tmp_path, eval_every=2)
+    T.train(cfg, progress=False)
+    run = Path(cfg.run_dir)
+    shutil.rmtree(run / "checkpoints" / "step-00000006")  # resuming from step 4 trims the metrics
+    (run / "summary.json").unlink()
+    before = {name: (run / name).read_bytes() for name in ("config.toml", "metrics.jsonl")}
+    cap = len(before["config.toml"]) // 2 if limit == "config" else len(before["config.toml"]) + 200
+    assert cap < len(before["metrics.jsonl"]) // 2
+    script = textwrap.dedent(f"""
+        import resource
+        from bonft.trainer.config import load_config
+        from bonft.trainer.loop import train
+        from bonft.trainer.rundir import WriteFailed
+        cfg = load_config({str(run / "config.toml")!r})
+        resource.setrlimit(resource.RLIMIT_FSIZE, ({cap}, {cap}))
+        try:
+            train(cfg, resume=True, progress=False)
+        except WriteFailed as e:
+            print("WRITEFAILED", e)
+    """)
+    out = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True, timeout=300)
+    assert "WRITEFAILED could not write" in out.stdout, out.stdout + out.stderr
+    assert {name: (run / name).read_bytes() for name in before} == before
+    assert not [p.name for p in run.iterdir() if p.name.endswith(".tmp")]  # no temporary file left
+    T.train(cfg, resume=True, progress=False)
+    assert metric_rows(run) == WHOLE
+
+
+def test_a_cut_off_last_metrics_line_is_dropped_with_a_warning_and_a_bad_line_inside_is_named(tmp_path):
+    cfg = tiny(tmp_path, eval_every=2)
+    T.train(cfg, progress=False)
+    run = Path(cfg.run_dir)
+    path = run / "metrics.jsonl"
+    good = path.read_text()
+    lines = good.splitlines()
+    with open(path, "a") as fh:  # a kill (or power loss) in the middle of the next line
+        fh.write('{"kind": "train", "step": 7, "lo')
+    with pytest.warns(UserWarning, match=rf"^{re.escape(str(path))} line {len(lines) + 1}: dropped a cut-off last line "
+                                         r"\(no newline at its end, not valid JSON \(Unterminated string"):
+        T.train(cfg, resume=True, progress=False)
+    assert path.read_text() == good and metric_rows(run) == WHOLE
+    path.write_text("\n".join([lines[0], '{"kind": "train", "st', *lines[1:]]) + "\n")  # a damaged line inside
+    with pytest.raises(ValueError, match=rf"^{re.escape(str(path))} line 2: not valid JSON \(Unterminated string "
+                                         r"starting at column \d+\); repair or delete that line"):
+        T.train(cfg, resume=True, progress=False)
+
+
+def test_a_summary_that_cannot_be_written_leaves_the_previous_one(tmp_path, monkeypatch):
+    import bonft._core.jsonl as J
+
+    cfg = tiny(tmp_path, rl_steps=2)
+    T.train(cfg, progress=False)
+    path = Path(cfg.run_dir) / "summary.json"
+    before = path.read_bytes()
+
+    real = os.fsync
+
+    def no_space(fd):  # the new summary's bytes do not reach the disk (the other files' do)
+        if os.path.basename(os.readlink(f"/proc/self/fd/{fd}")).startswith(".summary.json."):
+            raise OSError(errno.ENOSPC, "No space left on device")
+        return real(fd)
+
+    monkeypatch.setattr(J.os, "fsync", no_space)
+    with pytest.raises(WriteFailed, match=r"^could not write the summary .*summary.json \(No space left on device\)"):
+        T.train(cfg, resume=True, progress=False)
+    monkeypatch.undo()
+    assert path.read_bytes() == before and not list(Path(cfg.run_dir).glob(".*.tmp"))

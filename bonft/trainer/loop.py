@@ -45,6 +45,7 @@ from typing import Iterator
 import torch
 from tqdm.auto import tqdm
 
+from bonft._core.jsonl import decode_utf8, parse_object, replace_text
 from bonft.trainer import steps  # steps.sft_step / steps.rl_step are looked up at each step (tests replace them)
 from bonft.trainer.adapters import AdapterOff, is_adapter_model
 from bonft.trainer.checkpoint import (
@@ -237,7 +238,10 @@ def _check_shares(cfg: TrainConfig, world: int) -> None:
 
 
 def _restore(run: Run, resume: bool) -> tuple[int, dict | None]:
-    """Rank 0 picks the checkpoint (or refuses); every rank loads it. Writes config.toml, trims metrics.jsonl."""
+    """Rank 0 picks the checkpoint (or refuses); every rank loads it. Writes config.toml, trims metrics.jsonl.
+
+    Both files are replaced atomically: a kill at any moment leaves the old file or the new one.
+    """
     out, ckpt, problem = run.out, None, None
     if run.is_main:
         try:  # a checkpoint error goes to every rank, so none waits out the process-group timeout
@@ -273,13 +277,42 @@ def _restore(run: Run, resume: bool) -> tuple[int, dict | None]:
         set_rng_state(state["rng"])
     if run.is_main:
         with _writing(run, out / "config.toml", "the configuration"):
-            (out / "config.toml").write_text(to_toml(run.cfg))
+            replace_text(out / "config.toml", to_toml(run.cfg))
         path, kept = out / "metrics.jsonl", []
         if ckpt is not None and path.exists():  # drop lines of work after the checkpoint (it is redone)
-            kept = [ln for ln in path.read_text().splitlines() if ln and json.loads(ln)["step"] <= start]
+            kept = [ln for ln, row in read_metrics(path) if row["step"] <= start]
         with _writing(run, path, "the metrics file"):
-            path.write_text("".join(ln + "\n" for ln in kept))
+            replace_text(path, "".join(ln + "\n" for ln in kept))
     return start, state
+
+
+def read_metrics(path: Path) -> list[tuple[str, dict]]:
+    """The lines of a run's ``metrics.jsonl`` with their records, in order.
+
+    A cut-off last line (no newline at its end and not valid JSON: the run was stopped while writing
+    it) is dropped with a warning naming the file and the line; any other line that is not a JSON
+    object with a ``step`` is a ``ValueError`` naming the file and the line.
+    """
+    name = str(path)
+    pieces = decode_utf8(path.read_bytes(), name).split("\n")  # the last piece: "" after a final newline
+    rows = []
+    for no, ln in enumerate(pieces, 1):
+        if not ln.strip():
+            continue
+        try:
+            row = parse_object(ln, name, no, "a metrics record")
+        except ValueError as e:
+            if no == len(pieces):
+                detail = str(e).removeprefix(f"{name} line {no}: ")
+                warnings.warn(f"{name} line {no}: dropped a cut-off last line (no newline at its end, {detail}); "
+                              f"it was being written when the run stopped", stacklevel=3)
+                continue
+            raise ValueError(f"{e}; repair or delete that line of the metrics file and rerun with --resume") from None
+        if not isinstance(row.get("step"), int):
+            raise ValueError(f"{name} line {no}: a metrics record must have an integer 'step', got "
+                             f"{row.get('step')!r}; repair or delete that line and rerun with --resume")
+        rows.append((ln, row))
+    return rows
 
 
 def _step_of(ckpt: Path) -> int:
@@ -425,7 +458,7 @@ def _finish(run: Run, progress: bool) -> dict:
         summary["evaluations"] = evals = [json.loads(ln) for ln in lines if ln and '"kind": "eval"' in ln]
         text = json.dumps(summary, indent=1)
         with _writing(run, run.out / "summary.json", "the summary", need=len(text)):
-            (run.out / "summary.json").write_text(text)
+            replace_text(run.out / "summary.json", text)
         if cfg.plots and evals:
             from bonft.viz import plot_evaluations  # matplotlib: a heavy import, only when a plot is drawn
 
