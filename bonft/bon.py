@@ -216,7 +216,28 @@ def best_of_k_value(probs, scores, rewards, *, k):
     R = check_outcome_values("rewards", rewards, p, s)
     k = _check_k(k)
     lg, pb = _log_gain(p, s, k)
-    return returned_like((pb * torch.exp(lg) * R).sum(-1), as_np)
+    return returned_like(_mean_in_range(pb * torch.exp(lg), R), as_np)
+
+
+_HUGE = 2.0**960  # rewards above this in magnitude are summed at 2^-64 scale (exact: a power of two)
+
+
+def _mean_in_range(w: torch.Tensor, R: torch.Tensor) -> torch.Tensor:
+    """``sum_v w_v R_v`` for weights ``w`` summing to 1 (up to rounding) -> a value inside ``[min R, max R]``.
+
+    The value is ``min R + sum_v w_v (R_v - min R)`` clipped into the range, so equal rewards give that reward
+    exactly; the gradient is the plain sum's, with respect to ``w`` and ``R``. Rewards near float64's edge are
+    scaled by 2^-64 first, so neither ``R_v - min R`` nor the sum overflows.
+    """
+    Rd = R.detach()
+    scale = 2.0**-64 if Rd.numel() and float(Rd.abs().max()) > _HUGE else 1.0
+    Rs = R * scale
+    plain = (w * Rs).sum(-1)  # carries the gradient
+    Rs_d, wd = Rs.detach(), w.detach()
+    lo = Rs_d.min(-1, keepdim=True).values
+    shifted = lo.squeeze(-1) + (wd * (Rs_d - lo)).sum(-1)
+    kept = torch.minimum(torch.maximum(shifted, lo.squeeze(-1)), Rs_d.max(-1).values)
+    return (plain + (kept - plain.detach())) / scale
 
 
 def best_of_k_success(p, *, k):

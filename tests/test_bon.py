@@ -395,3 +395,28 @@ S3 = np.array([0.0, 1.0, 2.0])
 def test_bad_input(call, exc, match):
     with pytest.raises(exc, match=match):
         call()
+
+
+@given(policy_and_scores(), st.integers(1, 12), st.sampled_from([0.1, 1.0, -3.7, 1e-300, np.finfo(float).max]))
+@settings(max_examples=60)
+def test_value_lies_in_the_reward_range_and_equal_rewards_are_exact(ps, k, c):
+    # V_k is a mean of the rewards under pi_bon (a distribution): equal rewards c give c exactly (the weights sum to 1
+    # only up to rounding: 1.0000000000000002 * c before, and inf for the largest float64)
+    p, s = ps
+    assert best_of_k_value(p, s, np.full(len(p), c), k=k) == c
+    r = c * np.linspace(0.5, 1.0, len(p))
+    v = best_of_k_value(p, s, r, k=k)
+    assert r.min() <= v <= r.max()
+
+
+def test_rewards_near_the_edge_of_float64_match_enumeration():
+    # every k-tuple enumerated in exact rationals (brute_bon's definition); the value was inf or NaN
+    p, s = np.array([0.1, 0.2, 0.3, 0.4]), np.array([1.0, 0.0, 1.0, 2.0])
+    r = np.array([1e308, -1.5e308, 1.7e308, -1e308])
+    for k in (1, 2, 3):
+        want = Fraction(0)
+        for tup in itertools.product(range(4), repeat=k):
+            top = max(s[t] for t in tup)
+            win = [t for t in tup if s[t] == top]
+            want += math.prod(Fraction(p[t]) for t in tup) * sum(Fraction(r[t]) for t in win) / len(win)
+        assert best_of_k_value(p, s, r, k=k) == pytest.approx(float(want), rel=1e-12)
