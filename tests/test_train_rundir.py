@@ -405,6 +405,84 @@ def test_a_cut_off_last_metrics_line_is_dropped_with_a_warning_and_a_bad_line_in
         T.train(cfg, resume=True, progress=False)
 
 
+@pytest.mark.parametrize("cut", ["after", "inside"])
+def test_ctrl_c_while_a_metrics_line_is_written_keeps_the_line_of_the_step_it_checkpoints(tmp_path, monkeypatch, cut):
+    # Ctrl-C right after the line of step 3 is on disk ("after"), or half-way through it ("inside"): the line is
+    # kept whole, step 3 is checkpointed, and the resumed run neither loses nor repeats a line
+    cfg = tiny(tmp_path, eval_every=2)
+    real_write, pressed = os.write, []
+
+    class CtrlC(types.SimpleNamespace):
+        def __getattr__(self, name):
+            return getattr(os, name)
+
+        @staticmethod
+        def write(fd, data):
+            if b'"step": 3,' in bytes(data) and b'"kind": "train"' in bytes(data) and not pressed:
+                pressed.append(1)
+                if cut == "inside":
+                    real_write(fd, bytes(data[:10]))
+                    raise KeyboardInterrupt
+                real_write(fd, data)
+                raise KeyboardInterrupt
+            return real_write(fd, data)
+
+    monkeypatch.setattr(T, "os", CtrlC())
+    with pytest.raises(KeyboardInterrupt):
+        T.train(cfg, progress=False)
+    monkeypatch.setattr(T, "os", os)
+    assert metric_rows(cfg.run_dir) == WHOLE[:3]
+    assert [p.name for p in (Path(cfg.run_dir) / "checkpoints").iterdir() if p.name == "step-00000003"]
+    T.train(cfg, resume=True, progress=False)
+    assert metric_rows(cfg.run_dir) == WHOLE
+
+
+def test_ctrl_c_between_a_step_and_its_metrics_line_writes_the_line_with_the_checkpoint(tmp_path, monkeypatch):
+    from bonft.trainer.zero_credit import ZeroCreditWatch
+
+    cfg = tiny(tmp_path, eval_every=2)
+
+    def ctrl_c(self, rl_step, rec):  # runs after step 3 is applied, before its line is written
+        raise KeyboardInterrupt
+
+    monkeypatch.setattr(ZeroCreditWatch, "update", ctrl_c)
+    with pytest.raises(KeyboardInterrupt):
+        T.train(cfg, progress=False)
+    assert metric_rows(cfg.run_dir) == WHOLE[:3]
+    assert latest_checkpoint(cfg.run_dir).name == "step-00000003"
+
+
+@pytest.mark.parametrize("at", [4, 6])
+def test_an_evaluation_cut_short_by_ctrl_c_is_redone_on_resume(tmp_path, monkeypatch, at):
+    # the interrupt checkpoints step `at` before its evaluation finished: the resumed run evaluates that step
+    # first (the final one with its samples file), so no evaluation is lost and summary.json lists every one
+    import bonft.trainer.evaluation as E
+
+    ref = tiny(tmp_path, "ref", eval_every=2)
+    T.train(ref, progress=False)
+    cfg = tiny(tmp_path, "cut", eval_every=2)
+    real = E.evaluate_run
+
+    def ctrl_c(run, step, **kw):
+        if step == at:
+            raise KeyboardInterrupt
+        return real(run, step, **kw)
+
+    monkeypatch.setattr(T, "evaluate_run", ctrl_c)
+    with pytest.raises(KeyboardInterrupt):
+        T.train(cfg, progress=False)
+    monkeypatch.undo()
+    assert latest_checkpoint(cfg.run_dir).name == f"step-{at:08d}"
+    assert ("eval", at) not in metric_rows(cfg.run_dir)
+    T.train(cfg, resume=True, progress=False)
+    assert metric_rows(cfg.run_dir) == WHOLE
+    summary = json.loads((Path(cfg.run_dir) / "summary.json").read_text())
+    assert [e["step"] for e in summary["evaluations"]] == [4, 6]
+    same = json.loads((Path(ref.run_dir) / "summary.json").read_text())
+    assert [e["pass_at_k"] for e in summary["evaluations"]] == [e["pass_at_k"] for e in same["evaluations"]]
+    assert (Path(cfg.run_dir) / "heldout_samples.jsonl").read_text() == (Path(ref.run_dir) / "heldout_samples.jsonl").read_text()
+
+
 def test_a_summary_that_cannot_be_written_leaves_the_previous_one(tmp_path, monkeypatch):
     import bonft._core.jsonl as J
 

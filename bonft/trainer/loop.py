@@ -114,14 +114,15 @@ def train(cfg: TrainConfig, *, resume: bool = False, progress: bool = True) -> d
 def _train(run: Run, resume: bool, progress: bool, owns_group: bool) -> dict:
     """The stages and the step loop of :func:`train`, inside the run directory's lock."""
     cfg = run.cfg
-    start, state = _restore(run, resume)
+    start, state, evaluated = _restore(run, resume)
     run.model = wrap_model(run.model, run.ctx)  # several ranks: DDP (copies rank 0's weights to all)
     bar = tqdm(total=cfg.total_steps, initial=start, desc=cfg.name, disable=not (progress and run.is_main), dynamic_ncols=True)
     s = start  # optimizer steps completed = the weights' step label
     watch = ZeroCreditWatch(cfg.rl_steps, cfg.objective, cfg.correct_threshold, k=cfg.k)  # warns once if RL starts with no signal
+    rec = None
     try:
-        if start == 0 and _eval_due(cfg, 0):
-            _evaluate(run, 0, progress)
+        if _eval_due(cfg, start) and not evaluated:  # a fresh run's first one, or one a resumed run's interrupt cut short
+            _evaluate(run, start, progress)
         for stage, end in (("sft", cfg.warm_start_steps), ("rl", cfg.total_steps)):
             if s >= end:
                 continue
@@ -130,9 +131,10 @@ def _train(run: Run, resume: bool, progress: bool, owns_group: bool) -> dict:
                 with step_guard(run.ctx, step=step + 1, run_dir=run.out):  # a peer lost mid-step -> PeerError
                     rec = _one_step(run, stage, step)
                 s = step + 1  # the weights are now those of step s
+                run.partial_step = False
                 if stage == "rl" and run.is_main:
                     watch.update(step - cfg.warm_start_steps, rec)
-                if s % cfg.log_every == 0 or s == cfg.total_steps or s == cfg.warm_start_steps:
+                if _log_due(cfg, s):
                     _log(run, rec)
                 bar.update(1)
                 bar.set_postfix({key: f"{rec[key]:.3g}" for key in ("loss", "reward", "k") if key in rec}, refresh=False)
@@ -154,6 +156,8 @@ def _train(run: Run, resume: bool, progress: bool, owns_group: bool) -> dict:
     except KeyboardInterrupt:
         bar.close()
         if s > start and not run.updating and not run.partial_step:  # half-updated weights, or part of a step's updates: do not save
+            if rec is not None and rec["step"] == s and _log_due(cfg, s):
+                _log_missing(run, rec)  # the interrupt came between the step and its metrics line
             _save(run, s)
             if run.is_main:
                 print(f"\ninterrupted: checkpoint of step {s} written to {run.out}/checkpoints; continue with --resume")
@@ -185,8 +189,7 @@ def _one_step(run: Run, stage: str, s: int) -> dict:
             grad_norm, clipped = _apply_update(run, s, lr, rec["loss"], clock, last)
     finally:
         run.apply_update = None
-    run.partial_step = False  # every update of the step is applied: the weights are those of step s + 1
-    run.model.eval()
+    run.model.eval()  # run.partial_step stays set until the loop counts the step
     times = clock.metrics()
     rec.update({"kind": "train", "stage": stage, "step": s + 1, "lr": lr, GRAD_NORM: grad_norm,
                 GRAD_CLIPPED: int(clipped), **times})
@@ -221,6 +224,7 @@ def _apply_update(run: Run, s: int, lr: float, loss: float, clock: Stopwatch, wh
             torch.nn.utils.clip_grads_with_norm_(grads, cfg.clip_grad_norm, norm)
         run.updating = True  # an interrupt inside optimizer.step() leaves half-updated weights
         run.optimizer.step()
+        run.partial_step = True  # the weights are past step s until the loop counts the step (then cleared)
         run.updating = False
     return grad_norm, clipped
 
@@ -237,12 +241,14 @@ def _check_shares(cfg: TrainConfig, world: int) -> None:
         check_divisible("warm_start_batch_size", cfg.warm_start_batch_size, world)
 
 
-def _restore(run: Run, resume: bool) -> tuple[int, dict | None]:
+def _restore(run: Run, resume: bool) -> tuple[int, dict | None, bool]:
     """Rank 0 picks the checkpoint (or refuses); every rank loads it. Writes config.toml, trims metrics.jsonl.
 
+    -> (step, the checkpoint's state or None, whether metrics.jsonl holds an evaluation of that step).
     Both files are replaced atomically: a kill at any moment leaves the old file or the new one.
     """
-    out, ckpt, problem = run.out, None, None
+    out, ckpt, problem, rows, kept, evaluated = run.out, None, None, [], [], False
+    path = out / "metrics.jsonl"
     if run.is_main:
         try:  # a checkpoint error goes to every rank, so none waits out the process-group timeout
             ckpt = latest_checkpoint(out) if resume else None
@@ -259,13 +265,17 @@ def _restore(run: Run, resume: bool) -> tuple[int, dict | None]:
                            f"{len(changed)} key(s) that shape the training: " + "; ".join(changed) + ". Resume with "
                            f"the run's recipe ({out / 'config.toml'}), or start a new run from this checkpoint: "
                            f"start_from = {str(ckpt)!r} and another --output")
+            rows = read_metrics(path) if ckpt is not None and path.exists() else []
+            if ckpt is not None:  # drop lines of work after the checkpoint (it is redone)
+                kept = [(ln, row) for ln, row in rows if row["step"] <= _step_of(ckpt)]
+                evaluated = any(row.get("kind") == "eval" and row["step"] == _step_of(ckpt) for _, row in kept)
         except (CheckpointError, ValueError, OSError) as e:  # to every rank, as the problems above
             problem = str(e)
         if resume and ckpt is None and not problem and (out / "summary.json").exists():
             problem = f"--resume: {out} holds a finished run without checkpoints"
         elif not resume and (out / "checkpoints").exists():
             problem = f"run_dir {str(out)!r} already holds checkpoints; pass --resume or choose another --output"
-    ckpt, problem = broadcast_object((ckpt, problem), run.ctx)
+    ckpt, problem, evaluated = broadcast_object((ckpt, problem, evaluated), run.ctx)
     if problem:
         raise ValueError(problem)
     start, state = 0, None
@@ -278,12 +288,9 @@ def _restore(run: Run, resume: bool) -> tuple[int, dict | None]:
     if run.is_main:
         with _writing(run, out / "config.toml", "the configuration"):
             replace_text(out / "config.toml", to_toml(run.cfg))
-        path, kept = out / "metrics.jsonl", []
-        if ckpt is not None and path.exists():  # drop lines of work after the checkpoint (it is redone)
-            kept = [ln for ln, row in read_metrics(path) if row["step"] <= start]
         with _writing(run, path, "the metrics file"):
-            replace_text(path, "".join(ln + "\n" for ln in kept))
-    return start, state
+            replace_text(path, "".join(ln + "\n" for ln, _ in kept))
+    return start, state, evaluated
 
 
 def read_metrics(path: Path) -> list[tuple[str, dict]]:
@@ -347,8 +354,17 @@ def _enter_stage(run: Run, stage: str, state: dict | None) -> None:
 
 
 # ----------------------------------------------------------------------------- log, evaluate, save
+def _log_due(cfg: TrainConfig, s: int) -> bool:
+    """Step s's metrics line is written: every log_every steps, at the end of the warm start and of the run."""
+    return s % cfg.log_every == 0 or s == cfg.total_steps or s == cfg.warm_start_steps
+
+
 def _log(run: Run, rec: dict) -> None:
-    """One line of metrics.jsonl (rank 0); a line that cannot be written whole is taken back."""
+    """One line of metrics.jsonl (rank 0), whole or not at all.
+
+    A write that fails part-way (a full disk) takes its part back; Ctrl-C during the write completes
+    the line (the step is done and its checkpoint is written next), and keeps a line written whole.
+    """
     if not run.is_main:
         return
     path, data = run.out / "metrics.jsonl", (json.dumps(rec) + "\n").encode()
@@ -357,14 +373,43 @@ def _log(run: Run, rec: dict) -> None:
         try:
             size = os.fstat(fd).st_size
             try:
-                view = memoryview(data)
-                while view:
-                    view = view[os.write(fd, view):]
+                _write_all(fd, data)
+            except KeyboardInterrupt:
+                done = os.fstat(fd).st_size - size
+                try:
+                    _write_all(fd, data[done:])
+                except BaseException:  # a full disk, a second Ctrl-C: no half line
+                    os.ftruncate(fd, size)
+                    raise
+                raise
             except BaseException:
-                os.ftruncate(fd, size)  # no half line: resuming reads every line as JSON
+                if os.fstat(fd).st_size - size != len(data):
+                    os.ftruncate(fd, size)  # no half line: resuming reads every line as JSON
                 raise
         finally:
             os.close(fd)
+
+
+def _write_all(fd: int, data: bytes) -> None:
+    view = memoryview(data)
+    while view:
+        view = view[os.write(fd, view):]
+
+
+def _log_missing(run: Run, rec: dict) -> None:
+    """Write step ``rec['step']``'s line unless metrics.jsonl already ends with it (or a later one)."""
+    if not run.is_main:
+        return
+    path = run.out / "metrics.jsonl"
+    try:
+        with open(path, "rb") as fh:
+            fh.seek(max(0, os.fstat(fh.fileno()).st_size - (1 << 16)))
+            last = fh.read().rstrip(b"\n").rsplit(b"\n", 1)[-1]
+        logged = json.loads(last)["step"] >= rec["step"] if last else False
+    except (OSError, ValueError, KeyError, TypeError):
+        logged = False
+    if not logged:
+        _log(run, rec)
 
 
 def _eval_due(cfg: TrainConfig, s: int) -> bool:
