@@ -38,6 +38,7 @@ import contextlib
 import json
 import math
 import os
+import shutil
 import warnings
 from pathlib import Path
 from typing import Iterator
@@ -52,7 +53,9 @@ from bonft.trainer.checkpoint import (
     CheckpointError,
     latest_checkpoint,
     load_state,
+    prune_checkpoints,
     quiet_transformers,
+    recover_checkpoints,
     save_checkpoint,
     save_model,
     set_rng_state,
@@ -87,6 +90,8 @@ def train(cfg: TrainConfig, *, resume: bool = False, progress: bool = True) -> d
     """Run (or resume) a training run; returns the summary also written to ``RUN/summary.json``.
 
     Ctrl-C writes a checkpoint of the last completed step before re-raising ``KeyboardInterrupt``.
+    ``resume`` on a ``run_dir`` that does not exist, or that holds metrics but no checkpoint, is a
+    ``ValueError`` (nothing to continue; a fresh start would overwrite the metrics).
     A non-finite loss or gradient stops the run with ``ValueError`` before the optimizer step;
     the checkpoint then written holds the weights of the last good step (the failed step is not applied).
 
@@ -101,6 +106,11 @@ def train(cfg: TrainConfig, *, resume: bool = False, progress: bool = True) -> d
     """
     if not isinstance(cfg, TrainConfig):
         raise TypeError(f"cfg must be a TrainConfig, got {type(cfg).__name__}")
+    if Path(cfg.run_dir).exists() and not Path(cfg.run_dir).is_dir():
+        raise ValueError(f"run_dir {cfg.run_dir!r} is a file, not a directory; choose another --output (or run_dir)")
+    if resume and not Path(cfg.run_dir).is_dir():
+        raise ValueError(f"--resume: run_dir {cfg.run_dir!r} does not exist; check --output (or run_dir), "
+                         f"or drop --resume to start a new run")
     torch.set_num_threads(cfg.threads)
     keep_freed_memory()  # a step's large tensors come back from the heap, not as fresh page-faulting mmaps
     owns_group = not torch.distributed.is_initialized()
@@ -251,6 +261,7 @@ def _restore(run: Run, resume: bool) -> tuple[int, dict | None, bool]:
     path = out / "metrics.jsonl"
     if run.is_main:
         try:  # a checkpoint error goes to every rank, so none waits out the process-group timeout
+            recover_checkpoints(out)  # a re-save cut between its renames, unfinished folders
             ckpt = latest_checkpoint(out) if resume else None
             changed, step_sizes = resume_changes(_saved_config(ckpt), run.cfg) if ckpt is not None else ([], [])
             if step_sizes and not changed:
@@ -265,7 +276,7 @@ def _restore(run: Run, resume: bool) -> tuple[int, dict | None, bool]:
                            f"{len(changed)} key(s) that shape the training: " + "; ".join(changed) + ". Resume with "
                            f"the run's recipe ({out / 'config.toml'}), or start a new run from this checkpoint: "
                            f"start_from = {str(ckpt)!r} and another --output")
-            rows = read_metrics(path) if ckpt is not None and path.exists() else []
+            rows = read_metrics(path) if resume and path.exists() else []
             if ckpt is not None:  # drop lines of work after the checkpoint (it is redone)
                 kept = [(ln, row) for ln, row in rows if row["step"] <= _step_of(ckpt)]
                 evaluated = any(row.get("kind") == "eval" and row["step"] == _step_of(ckpt) for _, row in kept)
@@ -273,6 +284,10 @@ def _restore(run: Run, resume: bool) -> tuple[int, dict | None, bool]:
             problem = str(e)
         if resume and ckpt is None and not problem and (out / "summary.json").exists():
             problem = f"--resume: {out} holds a finished run without checkpoints"
+        elif resume and ckpt is None and not problem and rows:
+            problem = (f"--resume: {out} has no checkpoint to continue from, but its metrics.jsonl holds {len(rows)} "
+                       f"line(s) of a run stopped before its first checkpoint; to start that run again, move or delete "
+                       f"{path} and rerun without --resume (or choose another --output)")
         elif not resume and (out / "checkpoints").exists():
             problem = f"run_dir {str(out)!r} already holds checkpoints; pass --resume or choose another --output"
     ckpt, problem, evaluated = broadcast_object((ckpt, problem, evaluated), run.ctx)
@@ -344,13 +359,31 @@ def _enter_stage(run: Run, stage: str, state: dict | None) -> None:
         run.anchor_model = AdapterOff(run.module)  # the base model, the adapter switched off: no second model
     elif stage == "rl" and run.cfg.anchor_weight > 0:  # the anchor = the policy at the start of RL, kept on disk
         ref_dir = run.out / "rl_start"
-        if not (ref_dir / "model").is_dir() and run.is_main:
-            with _writing(run, ref_dir, "the anchor model", need=_weight_bytes(run)):
-                save_model(run.module, run.tokenizer, ref_dir)
+        starts = state is None or state["extra"].get("stage") != "rl"  # RL begins here (not resumed inside it)
+        if run.is_main:
+            _tidy_anchor(ref_dir)
+            if starts:  # written anew: a folder left by an earlier run in this directory is not this run's anchor
+                with _writing(run, ref_dir, "the anchor model", need=_weight_bytes(run)):
+                    save_model(run.module, run.tokenizer, ref_dir)
         barrier(run.ctx, what=f"waiting for rank 0 to write {ref_dir}")
+        if not (ref_dir / "model").is_dir():
+            raise ValueError(f"--resume: the run's KL anchor {ref_dir} (the policy at the start of RL, read while "
+                             f"anchor_weight > 0) is missing; it cannot be rebuilt from a later checkpoint: restore the "
+                             f"folder, or start a new run")
         with quiet_transformers():
             run.anchor_model, _ = load_model(ref_dir, device=run.device)
         run.anchor_model.requires_grad_(False)
+
+
+def _tidy_anchor(ref_dir: Path) -> None:
+    """Leftovers of a kill while the anchor was written (:func:`save_model`'s temporary and moved-aside folders)."""
+    for tmp in ref_dir.parent.glob(f".{ref_dir.name}.tmp-*"):
+        shutil.rmtree(tmp, ignore_errors=True)
+    for old in sorted(ref_dir.parent.glob(f".{ref_dir.name}.old-*")):
+        if not ref_dir.exists():  # cut between the two renames of a rewrite: the previous copy goes back
+            os.replace(old, ref_dir)
+        else:
+            shutil.rmtree(old, ignore_errors=True)
 
 
 # ----------------------------------------------------------------------------- log, evaluate, save
@@ -504,6 +537,7 @@ def _finish(run: Run, progress: bool) -> dict:
         text = json.dumps(summary, indent=1)
         with _writing(run, run.out / "summary.json", "the summary", need=len(text)):
             replace_text(run.out / "summary.json", text)
+        prune_checkpoints(run.out, keep=cfg.keep_checkpoints, upto=cfg.total_steps)  # a kill before the last prune
         if cfg.plots and evals:
             from bonft.viz import plot_evaluations  # matplotlib: a heavy import, only when a plot is drawn
 
