@@ -483,6 +483,47 @@ def test_an_evaluation_cut_short_by_ctrl_c_is_redone_on_resume(tmp_path, monkeyp
     assert (Path(cfg.run_dir) / "heldout_samples.jsonl").read_text() == (Path(ref.run_dir) / "heldout_samples.jsonl").read_text()
 
 
+def test_a_fresh_run_writes_its_own_anchor_over_one_left_in_the_directory(tmp_path):
+    # an earlier run killed before its first checkpoint left rl_start/ (and a temporary folder): a fresh run in
+    # the same directory starts RL from its own policy, so the anchor is that policy and the first KL is 0
+    other = tiny(tmp_path, "other", anchor_weight=0.5, seed=7, rl_steps=1)
+    T.train(other, progress=False)
+    cfg = tiny(tmp_path, "run", anchor_weight=0.5, keep_checkpoints=5)
+    run = Path(cfg.run_dir)
+    run.mkdir()
+    shutil.copytree(Path(other.run_dir) / "rl_start", run / "rl_start")
+    (run / ".rl_start.tmp-abc123").mkdir()
+    T.train(cfg, progress=False)
+    anchor = load_file(str(run / "rl_start" / "model" / "model.safetensors"))
+    start = load_file(str(run / "checkpoints" / "step-00000002" / "model" / "model.safetensors"))  # the end of the warm start
+    assert anchor.keys() == start.keys() and all(torch.equal(anchor[k], start[k]) for k in start)
+    first = [r for r in map(json.loads, (run / "metrics.jsonl").read_text().splitlines()) if r["step"] == 3][0]
+    assert first["anchor/kl"] == pytest.approx(0.0, abs=1e-6)
+    assert not list(run.glob(".rl_start.*"))
+    # resumed inside RL, the run needs its anchor: a missing one is named, not rebuilt from a later policy
+    shutil.rmtree(run / "checkpoints" / "step-00000006")
+    shutil.rmtree(run / "rl_start")
+    with pytest.raises(ValueError, match=r"^--resume: the run's KL anchor .*rl_start \(the policy at the start of RL"):
+        T.train(cfg, resume=True, progress=False)
+
+
+def test_resume_that_finds_nothing_to_continue_is_refused(tmp_path):
+    cfg = tiny(tmp_path, "typo")
+    with pytest.raises(ValueError, match=r"^--resume: run_dir '.*typo' does not exist; check --output"):
+        T.train(cfg, resume=True, progress=False)
+    assert not Path(cfg.run_dir).exists()
+    Path(cfg.run_dir).mkdir()
+    (Path(cfg.run_dir) / "metrics.jsonl").write_text('{"kind": "train", "step": 1}\n')  # killed before its first checkpoint
+    with pytest.raises(ValueError, match=r"^--resume: .*typo has no checkpoint to continue from, but its metrics.jsonl "
+                                         r"holds 1 line\(s\)"):
+        T.train(cfg, resume=True, progress=False)
+    assert (Path(cfg.run_dir) / "metrics.jsonl").read_text() == '{"kind": "train", "step": 1}\n'
+    afile = tmp_path / "afile"
+    afile.write_text("x")
+    with pytest.raises(ValueError, match=r"^run_dir '.*afile' is a file, not a directory"):
+        T.train(tiny(tmp_path, "afile"), progress=False)
+
+
 def test_a_summary_that_cannot_be_written_leaves_the_previous_one(tmp_path, monkeypatch):
     import bonft._core.jsonl as J
 
