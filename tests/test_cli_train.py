@@ -121,3 +121,35 @@ def test_old_key_spelling_warns_on_the_command_line(tmp_path, capsys):
     assert err[0] == ("bonft train: warning: --set config key 'n_train' is now called 'train_prompts'; "
                       "reading it as 'train_prompts'")
     assert err[-1].startswith("bonft train: error: k must be <= n")
+
+
+def test_sigterm_writes_a_checkpoint_of_the_last_step_and_exits_143(tmp_path, monkeypatch, capsys):
+    # SIGTERM (what a scheduler sends to preempt a job) stops `bonft train` as Ctrl-C does: the last completed
+    # step is checkpointed; 143 = 128 + SIGTERM (15), the shell's status for a process ended by that signal
+    import os
+    import signal
+
+    import bonft.trainer.steps as S
+    from bonft.trainer.checkpoint import latest_checkpoint, load_state
+
+    real = S.rl_step
+
+    def preempted(run, s, clock):
+        if s == 3:  # during the 4th step: 3 steps are done
+            os.kill(os.getpid(), signal.SIGTERM)
+        return real(run, s, clock)
+
+    def unhandled(signum, frame):
+        raise RuntimeError("SIGTERM reached the caller's handler")
+
+    monkeypatch.setattr(S, "rl_step", preempted)
+    old = signal.signal(signal.SIGTERM, unhandled)  # what runs if bonft train does not take SIGTERM itself
+    try:
+        rc = main(["train", str(RECIPES[0]), "--output", str(tmp_path / "r"), "--quiet", *_set(SHRINK)])
+        assert signal.getsignal(signal.SIGTERM) is unhandled  # given back after the run
+    finally:
+        signal.signal(signal.SIGTERM, old)
+    assert rc == 143
+    assert "bonft train: stopped by SIGTERM" in capsys.readouterr().err
+    ckpt = latest_checkpoint(tmp_path / "r")
+    assert ckpt.name == "step-00000003" and load_state(ckpt)["step"] == 3
