@@ -153,3 +153,12 @@ def test_sigterm_writes_a_checkpoint_of_the_last_step_and_exits_143(tmp_path, mo
     assert "bonft train: stopped by SIGTERM" in capsys.readouterr().err
     ckpt = latest_checkpoint(tmp_path / "r")
     assert ckpt.name == "step-00000003" and load_state(ckpt)["step"] == 3
+
+
+def test_sample_checks_its_output_path_before_any_sampling(tmp_path, capsys):
+    # the folder of -o is checked first (the checkpoint named here does not even exist): no sampling is wasted
+    out = tmp_path / "missing" / "s.jsonl"
+    assert main(["sample", str(tmp_path / "no-run"), "-o", str(out)]) == 2
+    assert f"--output's folder does not exist: {tmp_path / 'missing'}" in capsys.readouterr().err
+    assert main(["sample", str(tmp_path / "no-run"), "-o", str(tmp_path)]) == 2
+    assert "--output must be a file path, got a directory" in capsys.readouterr().err

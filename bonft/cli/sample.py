@@ -3,9 +3,10 @@ from __future__ import annotations
 
 import argparse
 import itertools
+import os
 
 from bonft.cli.evaluate import add_common, announce, load_for_eval
-from bonft.cli.options import check_seed, parse_list
+from bonft.cli.options import check_json_path, check_seed, parse_list
 
 HELP = "sample responses from a checkpoint and write a samples JSONL (input of bonft estimate / bonft plan)"
 DESCRIPTION = (
@@ -25,7 +26,8 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--verifier", default="auto",
                    help="which verifier fills 'score': exact, proxy or a name of the run's verifiers "
                         "(default: proxy if the task has one, else the training verifier)")
-    p.add_argument("-o", "--output", required=True, help="samples JSONL to write (written atomically)")
+    p.add_argument("-o", "--output", required=True,
+                   help="samples JSONL to write (written atomically; an existing file is replaced)")
 
 
 def run(args: argparse.Namespace) -> int:
@@ -36,6 +38,7 @@ def run(args: argparse.Namespace) -> int:
     from bonft.trainer.evaluation import evaluate_policy, sample_rows
     from bonft.trainer.run import Stream
 
+    check_output("--output", args.output)  # before the sampling: a wrong path found at the end wastes it
     n = check_int("--n", args.n, min=1)
     check_seed("--seed", args.seed)
     temps = [check_positive("--temperatures", t) for t in parse_list("--temperatures", args.temperatures, float)]
@@ -59,6 +62,19 @@ def run(args: argparse.Namespace) -> int:
         rows.append(sample_rows(raw, [e.prompt for e in held], temperature=t, score=which,
                                 extract_answer=getattr(r.task, "extract_answer", None)))
         print(f"T={t:g}: pass@1 {rep.mean_reward:.3f}, {rep.distinct_answers:.1f} distinct answers/prompt")
-    count = write_samples(args.output, itertools.chain(*rows))  # one row at a time
+    try:
+        count = write_samples(args.output, itertools.chain(*rows))  # one row at a time
+    except OSError as e:  # a full disk: the message names the file, not the temporary one beside it
+        if not e.strerror:
+            raise
+        raise type(e)(e.errno, f"--output cannot be written: {e.strerror}", args.output) from None
     print(f"wrote {count} samples ({len(held)} prompts x {n} x {len(temps)} temperature(s), score = {which}) to {args.output}")
     return 0
+
+
+def check_output(flag: str, path: str) -> None:
+    """``path`` can become a file in an existing folder (the samples file's folder is not created)."""
+    check_json_path(flag, path)
+    folder = os.path.dirname(os.path.realpath(path))
+    if not os.path.isdir(folder):
+        raise FileNotFoundError(f"{flag}'s folder does not exist: {folder} ({flag}={path})")
