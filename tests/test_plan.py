@@ -456,3 +456,41 @@ def test_too_few_prompts_print_no_interval():
     many = plan_pools({0.7: Pools(rng.normal(size=(12, 8)), rng.random((12, 8))),
                        1.0: Pools(rng.normal(size=(12, 8)), rng.random((12, 8)))}, budget_samples=4, n_boot=50)
     assert "n/a" not in many.table()
+
+
+def test_a_column_where_every_prompt_has_the_same_value_prints_no_spread_as_estimate_does():
+    # every score tied, 10 of 30 rewards 1: best-of-k serves a uniform sample, V_k = 1/3 for every prompt and k (the
+    # definition); a bootstrap of equal values has width 0, and 1/3 is at neither bound of [0, 1]: no interval, the
+    # rule of summarize's table ("no spread"); the plan printed "0.3333 [0.3333, 0.3333]"
+    s, r = np.zeros((12, 30)), np.zeros((12, 30))
+    r[:, :10] = 1.0
+    rng = np.random.default_rng(0)
+    res = plan_pools({0.7: Pools(s, r), 1.0: Pools(rng.normal(size=(12, 30)), (rng.random((12, 30)) < 0.1) * 1.0)},
+                     n_boot=200, budget_samples=[4])
+    np.testing.assert_allclose(res.value[0], 1 / 3, rtol=1e-14)
+    assert res.no_interval[0].all() and not res.no_interval[1].any()
+    assert res.to_dict()["no_interval"][0] == [True] * 30
+    table = res.table()
+    assert "0.3333 no spread" in table and "[0.3333, 0.3333]" not in table
+    assert "no spread (T=0.7 k=1,2,4,8,16,30)" in table
+
+
+def test_doubling_gains_at_the_rounding_level_are_not_significant():
+    # all scores tied, 3 of 5 rewards 1: V_k = 3/5 for every k (the definition), so doubling gains exactly 0; the
+    # computed V_1 = 0.6 and V_2 = 0.6000000000000001 differ by one ulp, which was judged a significant gain
+    s, r = np.zeros((12, 5)), np.zeros((12, 5))
+    r[:, :3] = 1.0
+    res = plan_pools({1.0: Pools(s, r)}, n_boot=200)
+    np.testing.assert_allclose(res.value[0], 0.6, rtol=1e-14)
+    assert res.doubling_stops_at == 1
+    assert "doubling stops paying from k=1" in res.table()
+
+
+def test_a_column_of_ones_gets_the_exact_interval_at_every_k(tmp_path):
+    # every reward 1: V_k = 1 exactly at every k (it was 1.0000000000000002 at some k, which lost the exact interval
+    # and made doubling's ulp a significant gain). Clopper & Pearson 1934, 20 of 20: [0.025^(1/20), 1] = [0.8316, 1]
+    rng = np.random.default_rng(1)
+    res = plan_pools({0.5: Pools(rng.normal(size=(20, 29)), np.ones((20, 29)))}, n_boot=200)
+    assert (res.value == 1.0).all() and (res.hi == 1.0).all()
+    np.testing.assert_allclose(res.lo, 0.025 ** (1 / 20), rtol=1e-12)
+    assert res.doubling_stops_at == 1 and all(d.gain == 0.0 for d in res.doubling)

@@ -83,6 +83,18 @@ def _zero_spread(values) -> np.ndarray:
     return (v == v[:1]).all(axis=0)
 
 
+def no_interval_columns(values, bounds) -> np.ndarray:
+    """``(P, K) -> (K,)`` bool: the columns with no interval, those whose P values are all equal at a value that
+    is neither bound of ``bounds`` (any value when ``bounds`` is None). A zero-spread column at a bound gets the
+    exact interval of :func:`bootstrap_ci`; the one rule of summarize's table and the planner's."""
+    v = np.asarray(values, dtype=float)
+    v = v[:, None] if v.ndim == 1 else v
+    flat = _zero_spread(v)
+    if bounds is not None:
+        flat &= (v[0] != bounds[0]) & (v[0] != bounds[1])
+    return flat
+
+
 def bootstrap_ci(values, *, confidence: float = 0.95, n_boot: int = 2000, seed: int = 0, bounds=None):
     r"""Percentile bootstrap over prompts.
 
@@ -205,12 +217,7 @@ class CurveSummary:
     def no_interval(self, which: str) -> np.ndarray:
         """``which`` = ``"best_of_k"`` or ``"pass_at_k"`` -> (K,) bool: the columns whose values have zero spread
         over prompts and sit at no known bound, so that their ``_lo``/``_hi`` are the mean, not an interval."""
-        per = np.asarray(getattr(self, f"per_prompt_{which}"), dtype=float)
-        flat = _zero_spread(per)
-        if self.bounds is not None:
-            mean = np.asarray(getattr(self, f"{which}_mean"), dtype=float)
-            flat &= (mean != self.bounds[0]) & (mean != self.bounds[1])
-        return flat
+        return no_interval_columns(getattr(self, f"per_prompt_{which}"), self.bounds)
 
     def _zero_spread_note(self) -> str | None:
         cols = [f"{label} k={int(k)}" for which, label in (("best_of_k", "best-of-k"), ("pass_at_k", "pass@k"))

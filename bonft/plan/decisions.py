@@ -15,6 +15,9 @@ from bonft._core.checks import as_float_array, check_finite, check_ks
 from bonft.plan.result import BudgetChoice, DoublingStep, PlanResult, TemperatureFit
 
 BLOCK_CELLS = 4_000_000  # entries of one block of resampling counts (as bonft.estimate.bootstrap_ci)
+# relative to the grid's largest |V|: values agree to ~1e-14 relative (bonft._core.ustat), so a doubling gain whose
+# lower bound is within this of min_gain is not significant (two prompts' rounding is no gain)
+ROUNDING = 1e-12
 
 
 def bootstrap_means(per_prompt: list[np.ndarray], *, paired: bool, n_boot: int, seed: int) -> np.ndarray:
@@ -71,7 +74,7 @@ def isotonic(y: np.ndarray) -> np.ndarray:
 
 
 def finish(*, mode, temps, ks, value, lo, hi, boot, confidence, n_boot, paired, n_prompts, smallest_pool, mean_tokens,
-            b_samples, b_tokens, min_gain, notes) -> PlanResult:
+            b_samples, b_tokens, min_gain, notes, no_interval=None) -> PlanResult:
     T, K = value.shape
     best_index = np.argmax(value, axis=0)  # (K,) first maximum, i.e. the lowest such temperature
     cols = np.arange(K)
@@ -108,12 +111,13 @@ def finish(*, mode, temps, ks, value, lo, hi, boot, confidence, n_boot, paired, 
         budgets.append(_choose(value, lo, hi, boot, confidence, mask, ks, temps, cost, kind="tokens", budget=b, note=note))
 
     doubling, stops = [], None
+    rounding = ROUNDING * float(np.abs(value).max())  # a gain this close to min_gain is rounding, not a gain
     k = 1
     while 2 * k <= K:
         t0, t1 = int(best_index[k - 1]), int(best_index[2 * k - 1])
         g, glo, ghi = cell_gap(t1, 2 * k, t0, k)
         doubling.append(DoublingStep(k=k, temperature_k=float(temps[t0]), temperature_2k=float(temps[t1]), gain=g, lo=glo, hi=ghi))
-        if stops is None and (glo if boot is not None else g) <= min_gain:
+        if stops is None and (glo if boot is not None else g) <= min_gain + rounding:
             stops = k
         k *= 2
 
@@ -141,6 +145,7 @@ def finish(*, mode, temps, ks, value, lo, hi, boot, confidence, n_boot, paired, 
         budgets=budgets,
         fit=fit_best_temperature(ks, temps[best_index]),
         notes=list(notes),
+        no_interval=no_interval,
     )
 
 

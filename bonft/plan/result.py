@@ -80,6 +80,9 @@ class PlanResult:
     n_prompts: (T,) prompts at each temperature; smallest_pool: (T,) the smallest pool (samples of one
         prompt) at each temperature, None in exact mode.
     mean_tokens: (T,) mean generated tokens per response, or None.
+    no_interval: (T, K) bool, True where every prompt has the same value at a value that is neither bound of
+        the rewards' range (:func:`bonft.estimate.intervals.no_interval_columns`, the rule of ``bonft estimate``):
+        lo = hi = value there is no interval, and the table prints "no spread"; None in exact mode.
     """
 
     mode: str
@@ -105,6 +108,7 @@ class PlanResult:
     budgets: list
     fit: TemperatureFit
     notes: list = field(default_factory=list)
+    no_interval: np.ndarray | None = None
 
     # ------------------------------------------------------------------ views
     def value_at(self, temperature: float, k: int) -> float:
@@ -142,17 +146,20 @@ class PlanResult:
             for t in range(T.size):
                 mark = "*" if t == b else ("~" if self.near_best[t, j] else " ")
                 cells += f"{self.value[t, j]:>9.4f}{mark}"
-            ci = "" if exact else (" [n/a]" if few else f" [{self.lo[b, j]:.4f}, {self.hi[b, j]:.4f}]")
+            ci = "" if exact else (" [n/a]" if few else self._ci(b, j))
             lines.append(f"{k:>5} {cells}   {T[b]:>6g}  {self.value[b, j]:.4f}{ci}")
         if few:
             lines.append(f"intervals n/a: {int(np.min(self.n_prompts))} prompt(s) at some temperature; a bootstrap over "
                          f"prompts needs at least {MIN_BOOT_PROMPTS} (the choices above are not significance-tested)")
+        flat = self._no_spread_note() if not (exact or few) else None
+        if flat:
+            lines.append(flat)
         if self.mean_tokens is not None:
             lines.append("mean tokens per response: " + ", ".join(f"T={t:g}: {m:.1f}" for t, m in zip(T, self.mean_tokens)))
         for c in self.budgets:
             unit = "samples" if c.kind == "samples" else "tokens"
             cost = "" if c.kind == "samples" else f", ~{c.cost:.0f} tokens"
-            ci = "" if exact else (" [n/a]" if few else f" [{c.lo:.4f}, {c.hi:.4f}]")
+            ci = "" if exact else (" [n/a]" if few else self._ci(int(np.flatnonzero(T == c.temperature)[0]), c.k - 1))
             lines.append(f"budget {c.budget:g} {unit}/prompt: T={c.temperature:g}, k={c.k}{cost} -> V={c.value:.4f}{ci}")
             if c.alternatives:
                 alts = ", ".join(f"(T={t:g}, k={k})" for t, k in c.alternatives[:6])
@@ -177,6 +184,24 @@ class PlanResult:
         )
         lines += [f"note: {n}" for n in self.notes]
         return "\n".join(lines)
+
+    def _ci(self, t: int, j: int) -> str:
+        """The interval of cell (t, j) as the table prints it: ``[lo, hi]``, or ``no spread`` (no interval)."""
+        if self.no_interval is not None and self.no_interval[t, j]:
+            return " no spread"
+        return f" [{self.lo[t, j]:.4f}, {self.hi[t, j]:.4f}]"
+
+    def _no_spread_note(self) -> str | None:
+        """The table's line naming the temperatures and shown k with no interval, or None."""
+        if self.no_interval is None:
+            return None
+        shown = np.asarray(self.table_ks()) - 1
+        cells = [f"T={t:g} k={','.join(str(j + 1) for j in shown if self.no_interval[i, j])}"
+                 for i, t in enumerate(self.temperatures) if self.no_interval[i, shown].any()]
+        if not cells:
+            return None
+        return (f"no spread ({'; '.join(cells)}): every prompt has the same value, so every bootstrap replicate does "
+                f"too, and it is at no known bound of the rewards: no interval (see docs/estimate.md)")
 
     def to_dict(self) -> dict:
         """JSON-able dict (lists, floats, None); CIs are null in exact mode."""
@@ -215,6 +240,7 @@ class PlanResult:
                 "monotone": {"direction": f.monotone_direction, "values": arr(f.monotone), "rmse": f.monotone_rmse},
             },
             "notes": list(self.notes),
+            "no_interval": arr(self.no_interval),
         }
 
     def plot_heatmap(self, path) -> str:

@@ -51,6 +51,7 @@ from bonft._core.checks import (
     check_seed,
 )
 from bonft.estimate import best_of_k_per_prompt, bootstrap_ci, reward_bounds
+from bonft.estimate.intervals import no_interval_columns
 from bonft.io import group_pools, temperatures_of
 from bonft.plan.decisions import bootstrap_means, finish, fit_best_temperature
 from bonft.plan.result import BudgetChoice, DoublingStep, PlanResult, TemperatureFit
@@ -281,14 +282,17 @@ def plan_pools(
     value = np.stack([v.mean(axis=0) for v in per_prompt])  # (T, K)
     alpha = 1.0 - confidence
     lo, hi = np.quantile(boot, [alpha / 2, 1 - alpha / 2], axis=0)  # (T, K) each
-    if reward_bounds([x for r in rewards_l for x in (r if isinstance(r, list) else [r])]) is not None:
+    bounds = reward_bounds([x for r in rewards_l for x in (r if isinstance(r, list) else [r])])
+    if bounds is not None:
         # with rewards in [0, 1], a column where every prompt scores 0 (or 1) has a zero-width percentile interval:
         # bootstrap_ci's exact interval for such a column (Clopper & Pearson 1934) instead; the decisions use `boot`
         for t, v in enumerate(per_prompt):
-            cols = np.flatnonzero((v == v[:1]).all(axis=0) & np.isin(v[0], (0.0, 1.0)))
+            cols = np.flatnonzero((v == v[:1]).all(axis=0) & np.isin(v[0], bounds))
             if cols.size:
                 _, lo[t, cols], hi[t, cols] = bootstrap_ci(v[:, cols], confidence=confidence, n_boot=10, seed=seed,
-                                                          bounds=(0.0, 1.0))
+                                                          bounds=bounds)
+    # any other column where every prompt has the same value has no interval (as in bonft estimate)
+    no_interval = np.stack([no_interval_columns(v, bounds) for v in per_prompt])
     return finish(
         mode="samples",
         temps=temps,
@@ -307,6 +311,7 @@ def plan_pools(
         b_tokens=b_tokens,
         min_gain=min_gain,
         notes=[] if paired else ["prompt sets differ between temperatures: each temperature resampled on its own (unpaired)"],
+        no_interval=no_interval,
     )
 
 
