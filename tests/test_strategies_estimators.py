@@ -247,3 +247,16 @@ def test_vote_values_scale_with_the_rewards_up_to_the_edge_of_float64():
     big, _ = weighted_vote_per_prompt([a8], [w], [1.7e308 * r8], ks=[1, 3, 8])
     assert np.isfinite(big).all()
     np.testing.assert_allclose(big, 1.7e308 * v, rtol=1e-12)
+
+
+@pytest.mark.parametrize("scale", [1e-12, 1e-200, 1e200])
+def test_weighted_vote_estimate_does_not_depend_on_the_scale_of_the_weights(scale):
+    # every k-subset enumerated by _brute at scale 1: the vote compares total weights, so a positive rescale serves
+    # the same answers; totals below ~1e-12 all tied under an absolute tolerance (0.4667 became 0.5 at 1e-12)
+    rng = np.random.default_rng(4)
+    ans, w = rng.integers(0, 3, 8), rng.random(8)
+    rew = np.array([1.0, 0.0, 0.25])[ans]
+    ks = [1, 2, 3, 5, 8]
+    want = [_brute(ans, w, rew, k) for k in ks]
+    got, _ = weighted_vote_per_prompt([ans], [scale * w], [rew], ks=ks)
+    np.testing.assert_allclose(got[0], want, rtol=1e-12)

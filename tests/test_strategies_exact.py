@@ -147,3 +147,14 @@ def test_a_missing_or_nan_outcome_key_is_refused(answers, message):
         majority_vote_value(p, answers, r, k=2)
     with pytest.raises(ValueError, match=message):
         weighted_vote_value(p, answers, np.ones(3), r, k=2)
+
+
+@pytest.mark.parametrize("scale", [1e-12, 1e-200, 1e200])
+def test_weighted_vote_value_does_not_depend_on_the_scale_of_the_weights(scale):
+    # the rule compares total weights, so scores times any positive constant serve the same answers (the definition;
+    # _brute_weighted enumerates it at scale 1). Totals below ~1e-12 all tied under an absolute tolerance:
+    # 0.7455 became 0.5013 at 1e-12
+    p, ans, w, rew = [0.2, 0.3, 0.1, 0.4], [0, 1, 1, 2], [0.9, 0.5, 0.45, 0.2], [1.0, 0.0, 0.0, 0.5]
+    want = _brute_weighted(p, ans, w, rew, 3)
+    assert float(weighted_vote_value(p, ans, w, rew, k=3)) == pytest.approx(want, abs=1e-14)
+    assert float(weighted_vote_value(p, ans, [scale * x for x in w], rew, k=3)) == pytest.approx(want, abs=1e-14)

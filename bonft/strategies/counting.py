@@ -216,7 +216,8 @@ def weighted_slot_weights(a: np.ndarray, s: np.ndarray) -> np.ndarray:
     num = np.bincount(flat, minlength=M * A).reshape(M, A).astype(np.float64)  # samples per answer
     present = num > 0
     tot = np.where(present, np.bincount(flat, weights=s.ravel(), minlength=M * A).reshape(M, A), -np.inf)
-    win = present & np.isclose(tot, tot.max(1, keepdims=True), rtol=1e-12, atol=1e-12)
+    # relative only: any positive rescale of the scores ties the same totals (an absolute floor tied all small ones)
+    win = present & np.isclose(tot, tot.max(1, keepdims=True), rtol=1e-12, atol=0.0)
     share = win / np.where(present, num, 1.0) / win.sum(1, keepdims=True)  # (M, A) per sample of each answer
     return np.take_along_axis(share, a, 1)
 
