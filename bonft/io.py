@@ -10,7 +10,8 @@ Written by ``bonft sample``, read by ``bonft estimate`` and ``bonft plan``::
 - ``answer`` (str, int or null, optional): the final answer extracted from the response, the key that
   majority and weighted vote count (``bonft.strategies``); surface forms of one answer share it;
   null (no answer could be extracted) votes alone: it gets a key of its own,
-- ``temperature`` (number >= 0, optional), ``n_tokens`` (int >= 0, optional), ``response`` (str, optional;
+- ``temperature`` (number >= 0, optional; two temperatures are the same when they are equal as float32, so
+  0.699999988079071, a 0.7 stored as float32, is 0.7: :func:`same_temperature`), ``n_tokens`` (int >= 0, optional), ``response`` (str, optional;
   never read back here, so files with long responses load as fast as short ones),
 - ``sample`` (int or str, optional): the sample's index in its prompt's pool; with it, identical
   samples are told apart and only a repeated (prompt, temperature, sample) counts as a repeated row,
@@ -45,7 +46,8 @@ import numpy as np
 from bonft._core.checks import as_float_array
 from bonft._core.jsonl import decode_utf8, parse_object, unique_object
 
-__all__ = ["SampleTable", "DuplicateRowsWarning", "FailedVerdictsWarning", "read_samples", "write_samples", "group_pools", "temperatures_of"]
+__all__ = ["SampleTable", "DuplicateRowsWarning", "FailedVerdictsWarning", "read_samples", "write_samples", "group_pools",
+           "temperatures_of", "same_temperature", "temperature_label"]
 
 
 @dataclass
@@ -128,7 +130,22 @@ def _numbers(name, vals, numbers, field, *, allow_bool: bool, integer: bool = Fa
             i = int(np.flatnonzero(bad)[0])
             why = "" if vals[i] != vals[i] else " (Infinity, or a number beyond the float64 range |x| < 1.8e308)"
             raise ValueError(f"{name} line {numbers[i]}: field {field!r} must be finite, got {vals[i]!r}{why}")
+        _check_exact_ints(name, vals, arr, numbers, field)
     return arr
+
+
+_EXACT_INT = 2**53  # float64 holds every integer of magnitude <= 2**53; 2**53 + 1 rounds to 2**53
+
+
+def _check_exact_ints(name, vals, arr: np.ndarray, numbers, field) -> None:
+    """A JSON integer beyond +-2**53 is refused: as float64 it rounds, and neighbours (9007199254740993 and
+    9007199254740992) would tie (the Python estimators refuse such scores too)."""
+    for i in np.flatnonzero(np.abs(arr) >= _EXACT_INT):  # candidates only: JSON ints are exact Python ints here
+        v = vals[i]
+        if type(v) is int and abs(v) > _EXACT_INT:
+            raise ValueError(f"{name} line {numbers[i]}: field {field!r} must be an integer of magnitude <= 2**53 "
+                             f"(numbers are read as float64, where larger integers round and neighbours tie), got {v}; "
+                             f"rank them first, or write them as floats if rounding is meant")
 
 
 def _fits(v, integer: bool) -> bool:
@@ -317,11 +334,9 @@ def _number(i: int, key: str, v: Any, *, allow_bool: bool) -> None:
     if (isinstance(v, bool) and not allow_bool) or not isinstance(v, (int, float)):
         raise TypeError(f"rows[{i}][{key!r}] must be a number, got {type(v).__name__} {v!r}")
     if isinstance(v, int) and not isinstance(v, bool):
-        try:
-            float(v)
-        except OverflowError:
-            raise ValueError(f"rows[{i}][{key!r}] must fit in a float64 (|x| < 1.8e308), got an integer of "
-                             f"{v.bit_length()} bits") from None
+        if abs(v) > _EXACT_INT:
+            raise ValueError(f"rows[{i}][{key!r}] must be an integer of magnitude <= 2**53 (read_samples reads float64, "
+                             f"where larger integers round and neighbours tie), got {v}")
     elif not math.isfinite(v):
         raise ValueError(f"rows[{i}][{key!r}] must be finite, got {v!r}")
 
@@ -477,13 +492,33 @@ def write_samples(path, rows: Iterable[dict]) -> int:
 # ----------------------------------------------------------------------------- pools
 
 
+def same_temperature(a, b):
+    """Whether temperatures ``a`` and ``b`` (numbers or arrays, broadcast) are the same: equal as float32.
+
+    The one rule of every command and of :func:`group_pools`: a temperature written as float32 (0.7 stored as
+    0.699999988079071) is the temperature a user types (0.7); float32 keeps 7 significant digits, far finer than
+    any temperature grid. :func:`temperature_label` prints a temperature in a form that matches it.
+    """
+    return np.asarray(a, dtype=np.float32) == np.asarray(b, dtype=np.float32)
+
+
+def temperature_label(t: float) -> str:
+    """A temperature as a user would type it: the shortest decimal that is the same temperature (``'0.7'`` for
+    0.699999988079071, under :func:`same_temperature`)."""
+    return str(np.float32(t))
+
+
 def temperatures_of(table: SampleTable) -> list[float]:
-    """Sorted distinct temperatures in the table ([] when it has no temperature column)."""
+    """Sorted distinct temperatures in the table ([] when it has no temperature column); temperatures that are the
+    same under :func:`same_temperature` count once (the smallest stands for them)."""
     if not isinstance(table, SampleTable):
         raise TypeError(f"table must be a SampleTable, got {type(table).__name__}")
     if table.temperatures is None:
         return []
-    return [float(t) for t in np.unique(table.temperatures)]
+    u = np.unique(table.temperatures)
+    new = np.ones(len(u), dtype=bool)
+    new[1:] = u[1:].astype(np.float32) != u[:-1].astype(np.float32)
+    return [float(t) for t in u[new]]
 
 
 def group_pools(table: SampleTable, *, temperature: float | None = None, with_answers: bool = False):
@@ -495,7 +530,8 @@ def group_pools(table: SampleTable, *, temperature: float | None = None, with_an
     keys: list of prompt ids in order of first appearance; ``score_pools[p]``,
     ``reward_pools[p]``: (n_p,) float64 in file order. With several
     temperatures in the table, ``temperature`` must pick one (pools mixing
-    temperatures would estimate no real sampling setup).
+    temperatures would estimate no real sampling setup). ``temperature`` selects the rows whose temperature is
+    the same under :func:`same_temperature` (equal as float32).
     """
     temps = temperatures_of(table)
     if with_answers and table.answers is None:
@@ -503,17 +539,16 @@ def group_pools(table: SampleTable, *, temperature: float | None = None, with_an
     keep = np.ones(len(table), dtype=bool)
     if temperature is None:
         if len(temps) > 1:
-            raise ValueError(
-                f"temperature must pick one of the table's temperatures {temps} (pools would mix them), got None"
-            )
+            raise ValueError(f"temperature must pick one of the table's temperatures "
+                             f"[{', '.join(map(temperature_label, temps))}] (pools would mix them), got None")
         ids, s, r = table.prompt_keys, table.scores, table.rewards
     else:
         temperature = float(as_float_array("temperature", temperature, ndim=0))
         if table.temperatures is None:
             raise ValueError(f"temperature must be None for a table without temperatures, got {temperature}")
-        keep = table.temperatures == temperature
+        keep = same_temperature(table.temperatures, temperature)
         if not keep.any():
-            raise ValueError(f"temperature must be one of {temps}, got {temperature}")
+            raise ValueError(f"temperature must be one of [{', '.join(map(temperature_label, temps))}], got {temperature!r}")
         ids, s, r = table.prompt_keys[keep], table.scores[keep], table.rewards[keep]
     uniq, first, inv = np.unique(ids, return_index=True, return_inverse=True)
     rank = np.empty(len(uniq), dtype=np.int64)

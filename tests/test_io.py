@@ -5,7 +5,7 @@ import os
 import numpy as np
 import pytest
 
-from bonft.io import SampleTable, group_pools, read_samples, temperatures_of, write_samples
+from bonft.io import SampleTable, group_pools, read_samples, same_temperature, temperatures_of, write_samples
 from bonft.tasks.examples import example_samples_path, ledger_rows
 
 
@@ -226,8 +226,12 @@ def test_identical_samples_with_a_sample_index_are_not_repeated_rows(tmp_path):
     ({"temperature": -1}, '"temperature":-1', ValueError, r"rows\[1\]\['temperature'\] must be >= 0 .*got -1"),
     ({"temperature": True}, '"temperature":true', TypeError, r"rows\[1\]\['temperature'\] must be a number, got bool"),
     ({"score": 10**400}, f'"score":{10**400}', ValueError,
-     r"rows\[1\]\['score'\] must fit in a float64 \(\|x\| < 1.8e308\), got an integer of 1329 bits"),
-    ({"reward": -(10**400)}, f'"reward":{-(10**400)}', ValueError, r"rows\[1\]\['reward'\] must fit in a float64"),
+     r"rows\[1\]\['score'\] must be an integer of magnitude <= 2\*\*53 .*got 1000000"),
+    ({"reward": -(10**400)}, f'"reward":{-(10**400)}', ValueError, r"rows\[1\]\['reward'\] must be an integer of magnitude"),
+    # 2**53 + 1 is no float64: read as 2**53, it would tie with 2**53
+    ({"score": 2**53 + 1}, f'"score":{2**53 + 1}', ValueError,
+     r"rows\[1\]\['score'\] must be an integer of magnitude <= 2\*\*53 .*got 9007199254740993"),
+    ({"reward": -(2**53) - 1}, f'"reward":{-(2**53) - 1}', ValueError, r"rows\[1\]\['reward'\] must be an integer of"),
 ])
 def test_write_refuses_up_front_what_read_refuses(tmp_path, extra, line, err, match):
     good = {"prompt_id": "a", "score": 0.5, "reward": 1}
@@ -336,3 +340,36 @@ def test_rows_with_a_failed_verdict_are_named_when_read(tmp_path):
     with warnings.catch_warnings():
         warnings.simplefilter("error", FailedVerdictsWarning)
         read_samples(path)
+
+
+def test_integers_beyond_2_53_are_refused_naming_the_line(tmp_path):
+    # 9007199254740993 = 2**53 + 1 has no float64: it reads as 9007199254740992, ties with it, and best-of-2 of this
+    # pool came out 0.5 (the higher score holds reward 1: 1.0 by the definition); the Python API refuses such scores
+    rows = ['{"prompt_id": 0, "score": 9007199254740992, "reward": 0}',
+            '{"prompt_id": 0, "score": 9007199254740993, "reward": 1}']
+    with pytest.raises(ValueError, match=r"big.jsonl line 2: field 'score' must be an integer of magnitude <= 2\*\*53 "
+                                         r".*got 9007199254740993"):
+        read_samples(write_lines(tmp_path / "big.jsonl", rows))
+    with pytest.raises(ValueError, match=r"line 1: field 'reward' must be an integer of magnitude <= 2\*\*53"):
+        read_samples(write_lines(tmp_path / "r.jsonl", ['{"prompt_id": 0, "score": 1, "reward": -9007199254740993}']))
+    # 2**53 itself is exact, and a float beyond it is a float (its rounding is the writer's choice)
+    ok = ['{"prompt_id": 0, "score": 9007199254740992, "reward": 0}', '{"prompt_id": 0, "score": 1e20, "reward": 1}']
+    np.testing.assert_array_equal(read_samples(write_lines(tmp_path / "ok.jsonl", ok)).scores, [2.0**53, 1e20])
+
+
+def test_a_temperature_stored_as_float32_is_the_temperature_typed(tmp_path):
+    # 0.699999988079071 is float32(0.7): the same temperature under the one rule (equal as float32); messages print
+    # each temperature as it can be typed
+    t32 = float(np.float32(0.7))
+    rows = [{"prompt_id": p, "score": float(p), "reward": 1, "temperature": t} for t in (t32, 1.0) for p in range(3)]
+    p = tmp_path / "f32.jsonl"
+    write_samples(p, rows)
+    t = read_samples(p)
+    assert temperatures_of(t) == [t32, 1.0]
+    keys, s, _ = group_pools(t, temperature=0.7)
+    assert keys == ["0", "1", "2"] and len(s) == 3
+    with pytest.raises(ValueError, match=r"temperature must be one of \[0.7, 1.0\], got 0.8"):
+        group_pools(t, temperature=0.8)
+    with pytest.raises(ValueError, match=r"temperatures \[0.7, 1.0\] \(pools would mix them\)"):
+        group_pools(t)
+    assert same_temperature(0.7, t32) and not same_temperature(0.7, 0.7001)
