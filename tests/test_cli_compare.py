@@ -216,3 +216,17 @@ def test_inputs_sampled_at_different_temperatures_are_named(tmp_path, capsys):
     out = capsys.readouterr().out
     assert "a: " in out and "(temperature 1)" in out and "(temperature 0.7)" in out
     assert "note: the inputs were sampled at different temperatures (0.7, 1)" in out
+
+
+def test_a_temperature_stored_as_float32_is_selected_by_the_value_typed(tmp_path, capsys):
+    # files whose temperatures were written as float32 (0.699999988079071 for 0.7) and 1.0: --temperature 0.7 picks
+    # the first (it was refused: "temperature must be one of [0.699999988079071, 1.0], got 0.7")
+    r, s = np.ones((P, N), int).tolist(), np.zeros((P, N), int).tolist()
+    for name in ("a", "b"):
+        write(tmp_path / f"{name}.jsonl", r, s)
+        text = (tmp_path / f"{name}.jsonl").read_text()
+        (tmp_path / f"{name}.jsonl").write_text(text + text.replace('"temperature": 1.0', f'"temperature": {float(np.float32(0.7))!r}'))
+    assert main(["compare", str(tmp_path / "a.jsonl"), str(tmp_path / "b.jsonl"), "--temperature", "0.7"]) == 0
+    assert "(temperature 0.7)" in capsys.readouterr().out
+    assert main(["compare", str(tmp_path / "a.jsonl"), str(tmp_path / "b.jsonl")]) == 2
+    assert "temperatures [0.7, 1.0] (pools would mix them)" in capsys.readouterr().err

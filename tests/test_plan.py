@@ -441,8 +441,23 @@ def test_table_without_temperatures_is_refused(tmp_path):
     with pytest.raises(ValueError, match="table must have a temperature column"):
         plan_samples(read_samples(tmp_path / "s.jsonl"))
     table = _pass_at_k_file(tmp_path / "t.jsonl", P=2, n=4)
-    with pytest.raises(ValueError, match=r"temperature 0.7 is not in the samples file \(present: \['0.5', '1.2'\]\)"):
+    with pytest.raises(ValueError, match=r"temperatures must be in the samples file \(present: 0.5, 1.2\), got 0.7"):
         plan_samples(table, temperatures=[0.7])
+
+
+def test_a_temperature_stored_as_float32_is_selected_by_the_value_typed(tmp_path):
+    # 0.699999988079071 is 0.7 written as float32: --temperatures 0.7 selects it (it was "not in the samples file
+    # (present: ['0.7', '1'])"); the values are those of the same pools selected by their stored value
+    t32 = float(np.float32(0.7))
+    rng = np.random.default_rng(2)
+    rows = [{"prompt_id": p, "sample": i, "score": float(rng.random()), "reward": int(rng.random() < 0.4), "temperature": t}
+            for t in (t32, 1.0) for p in range(12) for i in range(4)]
+    write_samples(tmp_path / "f32.jsonl", rows)
+    table = read_samples(tmp_path / "f32.jsonl")
+    typed = plan_samples(table, temperatures=[0.7], n_boot=50)
+    stored = plan_samples(table, temperatures=[t32], n_boot=50)
+    np.testing.assert_array_equal(typed.value, stored.value)
+    assert len(plan_samples(table, n_boot=50).temperatures) == 2
 
 
 def test_too_few_prompts_print_no_interval():

@@ -104,14 +104,19 @@ def _names(args, inputs: list[str]) -> list[str]:
 
 def _pools(name: str, path: str, args) -> tuple[list, list, list, dict | None, float | None]:
     """(keys, score pools, reward pools, {key: prompt text} or None, temperature or None) of one input."""
-    from bonft.io import group_pools, read_samples, temperatures_of  # numpy: only when the command runs
+    from bonft.io import (  # numpy: only when the command runs
+        group_pools,
+        read_samples,
+        same_temperature,
+        temperatures_of,
+    )
 
     table = read_samples(path, prompt_field=args.prompt_field, score_field=args.score_field,
                          reward_field=args.reward_field, text_field="prompt")
     keys, scores, rewards = group_pools(table, temperature=args.temperature)
     texts = None
     if table.prompts is not None:
-        keep = slice(None) if args.temperature is None else table.temperatures == args.temperature
+        keep = slice(None) if args.temperature is None else same_temperature(table.temperatures, args.temperature)
         texts = {}
         for key, text in zip(table.prompt_keys[keep], table.prompts[keep]):
             if texts.setdefault(str(key), text) != text:

@@ -52,7 +52,7 @@ from bonft._core.checks import (
 )
 from bonft.estimate import best_of_k_per_prompt, bootstrap_ci, reward_bounds
 from bonft.estimate.intervals import no_interval_columns
-from bonft.io import group_pools, temperatures_of
+from bonft.io import group_pools, same_temperature, temperature_label, temperatures_of
 from bonft.plan.decisions import bootstrap_means, finish, fit_best_temperature
 from bonft.plan.result import BudgetChoice, DoublingStep, PlanResult, TemperatureFit
 
@@ -344,13 +344,14 @@ def plan_samples(
     temps = _check_temperatures(temperatures)
     pools = {}
     for t in temps:
-        match = [p for p in present if np.isclose(p, t, rtol=0, atol=1e-9)]
+        match = [p for p in present if same_temperature(p, t)]
         if not match:
-            raise ValueError(f"temperature {t:g} is not in the samples file (present: {[f'{p:g}' for p in present]})")
+            raise ValueError(f"temperatures must be in the samples file (present: "
+                             f"{', '.join(temperature_label(p) for p in present)}), got {temperature_label(t)}")
         keys, s_pools, r_pools = group_pools(table, temperature=match[0])
         mean_tokens = None
         if getattr(table, "n_tokens", None) is not None:
-            at_t = np.isclose(np.asarray(table.temperatures, dtype=np.float64), match[0], rtol=0, atol=1e-9)
+            at_t = same_temperature(table.temperatures, match[0])
             toks = np.asarray(table.n_tokens, dtype=np.float64)[at_t]
             if toks.size and np.isfinite(toks).all() and toks.mean() > 0:
                 mean_tokens = float(toks.mean())
