@@ -128,3 +128,25 @@ def test_the_default_temperature_field_stays_optional(tmp_path, capsys):
     assert main(["estimate", str(p), "--n-boot", "50"]) == 0  # no temperature column: one block
     assert main(["estimate", str(p), "--n-boot", "50", "--temperature-field", "temperature"]) == 2
     assert "missing field 'temperature'" in capsys.readouterr().err
+
+
+def test_ks_above_one_short_pool_names_that_prompt(tmp_path, capsys):
+    # every prompt holds 12 samples but 'q7', which holds 1: k <= 1 for all of them, and the error says which prompt
+    rows = [{"prompt_id": f"q{p}", "sample": i, "score": i / 12, "reward": 1} for p in range(10) for i in range(12 if p != 7 else 1)]
+    path = tmp_path / "short.jsonl"
+    path.write_text("".join(json.dumps(r) + "\n" for r in rows))
+    assert main(["estimate", str(path), "--ks", "8"]) == 2
+    err = capsys.readouterr().err
+    assert re.search(r"--ks must be <= the smallest pool \(n=1: prompt 'q7'; the largest holds 12\), got 8", err), err
+
+
+def test_a_column_of_ones_keeps_its_exact_interval(tmp_path, capsys):
+    # 10 prompts x 12 samples, every reward 1, scores j/12, --ks 7: estimate crashed ("values must lie within bounds
+    # [0, 1], got 1.0000000000000007"). Every value is 1: Clopper & Pearson 1934, 10 of 10 at 95%: [0.025^(1/10), 1]
+    rows = [{"prompt_id": p, "sample": j, "score": j / 12, "reward": 1} for p in range(10) for j in range(12)]
+    path = tmp_path / "ones.jsonl"
+    path.write_text("".join(json.dumps(r) + "\n" for r in rows))
+    assert main(["estimate", str(path), "--ks", "1,2,7"]) == 0
+    out = capsys.readouterr().out
+    lo = f"{0.025 ** (1 / 10):.4f}"
+    assert out.count(f"1.0000  [{lo}, 1.0000]") == 6 and "no spread" not in out

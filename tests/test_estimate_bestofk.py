@@ -280,7 +280,7 @@ def test_torch_input_and_scalar_k_shapes():
         (lambda: best_of_k_per_prompt([np.zeros(3), np.zeros(2)], [np.zeros(3)], ks=1), ValueError,
          r"rewards must hold one pool per prompt like scores \(2\), got 1"),
         (lambda: best_of_k_per_prompt([np.zeros(3), np.zeros(2)], [np.zeros(3), np.zeros(2)], ks=3), ValueError,
-         r"ks must be <= n \(n=2\), got ks=3"),
+         r"ks must be <= the smallest pool \(n=2, scores\[1\]; the largest holds 3\), got ks=3"),
         (lambda: best_of_k_per_prompt([np.zeros(3), np.array([])], [np.zeros(3), np.array([])], ks=1), ValueError,
          r"scores\[1\] must not be empty"),
         (lambda: best_of_k_per_prompt(np.zeros((0, 3)), np.zeros((0, 3)), ks=1), ValueError,
@@ -371,3 +371,15 @@ def test_rewards_of_both_signs_near_the_edge_match_brute_force():
     got = best_of_k(s, r, k=[1, 2, 3, 4, 5])
     want = [float(brute_best_of_k(s, r, k)) for k in range(1, 6)]
     np.testing.assert_allclose(got, want, rtol=1e-13)
+
+
+def test_k_above_the_smallest_of_ragged_pools_names_that_pool():
+    # one short pool caps k for every prompt: the error says which one
+    s = [np.arange(5.0), np.zeros(1), np.arange(9.0)]
+    with pytest.raises(ValueError, match=r"ks must be <= the smallest pool \(n=1, scores\[1\]; the largest holds 9\), "
+                                         r"got ks=8"):
+        best_of_k_per_prompt(s, s, ks=[1, 8])
+    with pytest.raises(ValueError, match=r"ks must be <= the smallest pool \(n=1, scores\[1\]"):
+        summarize(s, s, ks=[2])
+    with pytest.raises(ValueError, match=r"ks must be <= n \(n=3\), got ks=4"):  # equal pools: n is every pool's size
+        best_of_k_per_prompt(np.zeros((2, 3)), np.zeros((2, 3)), ks=4)

@@ -344,7 +344,8 @@ def test_bad_input_errors():
         plan_pools({})
     with pytest.raises(ValueError, match="at least one temperature, got an empty grid"):
         plan_exact(logits=LOGITS, scores=SCORES, rewards=REWARDS, temperatures=[])
-    with pytest.raises(ValueError, match=r"max_k must be <= the smallest pool at every temperature \(n=4 at temperature 1\), got max_k=8"):
+    with pytest.raises(ValueError, match=r"max_k must be <= the smallest pool at every temperature \(n=4: prompt '0' at "
+                                         r"temperature 1\), got max_k=8"):
         plan_pools({0.5: _pools(8), 1.0: _pools(4)}, max_k=8)
     with pytest.raises(ValueError, match=r"scores \(temperature 0.5\) must be finite, got nan at index \(2, 3\)"):
         plan_pools({0.5: _pools(nan=True)})
@@ -509,3 +510,21 @@ def test_a_column_of_ones_gets_the_exact_interval_at_every_k(tmp_path):
     assert (res.value == 1.0).all() and (res.hi == 1.0).all()
     np.testing.assert_allclose(res.lo, 0.025 ** (1 / 20), rtol=1e-12)
     assert res.doubling_stops_at == 1 and all(d.gain == 0.0 for d in res.doubling)
+
+
+def test_one_short_pool_that_caps_k_is_named():
+    # 11 prompts of 30 samples and one ('p4') of 6: k stops at 6 for every prompt, and the plan says which prompt
+    rng = np.random.default_rng(6)
+    sizes = [30] * 4 + [6] + [30] * 7
+    s = [rng.normal(size=m) for m in sizes]
+    r = [(rng.random(m) < 0.3) * 1.0 for m in sizes]
+    keys = [f"p{i}" for i in range(12)]
+    res = plan_pools({0.8: Pools(s, r, prompt_keys=keys)}, n_boot=50)
+    assert res.ks[-1] == 6
+    note = "k stops at 6, the smallest pool (prompt 'p4' at temperature 0.8); the median pool there holds 30 samples"
+    assert any(note in n for n in res.notes) and note in res.table()
+    with pytest.raises(ValueError, match=r"max_k must be <= the smallest pool at every temperature \(n=6: prompt 'p4' "
+                                         r"at temperature 0.8\), got max_k=7"):
+        plan_pools({0.8: Pools(s, r, prompt_keys=keys)}, n_boot=50, max_k=7)
+    # equal pools: k stops at their size with no note
+    assert not plan_pools({0.8: Pools(np.zeros((12, 5)), np.zeros((12, 5)))}, n_boot=50).notes

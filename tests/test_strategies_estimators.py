@@ -260,3 +260,10 @@ def test_weighted_vote_estimate_does_not_depend_on_the_scale_of_the_weights(scal
     want = [_brute(ans, w, rew, k) for k in ks]
     got, _ = weighted_vote_per_prompt([ans], [scale * w], [rew], ks=ks)
     np.testing.assert_allclose(got[0], want, rtol=1e-12)
+
+
+def test_k_above_the_smallest_pool_names_that_pool():
+    with pytest.raises(ValueError, match=r"ks must be <= the smallest pool \(n=1, answers\[1\]; the largest holds 3\)"):
+        majority_vote_per_prompt([[1, 2, 3], [1]], [[0.0, 0.0, 0.0], [1.0]], ks=3)
+    with pytest.raises(ValueError, match=r"ks must be <= the smallest pool \(n=2, answers\[0\]"):
+        weighted_vote_per_prompt([[1, 2], [1, 1, 2]], [[1.0, 1.0], [1.0, 1.0, 1.0]], [[0.0, 1.0], [0.0, 0.0, 1.0]], ks=3)

@@ -85,10 +85,17 @@ def run(args) -> int:
         return _run_strategies(args, table, path, temps, ks)
     curves, blocks = {}, []
     for t in temps if len(temps) > 1 else [None]:
-        _, s, r = group_pools(table, temperature=t)
-        n_min = min(len(x) for x in s)
-        if ks is not None and max(ks) > n_min:
+        keys, s, r = group_pools(table, temperature=t)
+        sizes = [len(x) for x in s]
+        n_min = min(sizes)
+        if ks is not None and max(ks) > n_min == max(sizes):
             raise ValueError(f"--ks must be <= the smallest pool (n={n_min}), got {max(ks)}")
+        if ks is not None and max(ks) > n_min:
+            short = keys[sizes.index(n_min)]
+            at = "" if t is None else f" at temperature {t:g}"
+            raise ValueError(f"--ks must be <= the smallest pool (n={n_min}: prompt {short!r}{at}; the largest holds "
+                             f"{max(sizes)}), got {max(ks)}: one short pool caps k for every prompt, so lower --ks or "
+                             f"leave that prompt out")
         if ks is not None and min(ks) < 1:
             raise ValueError(f"--ks must be >= 1, got {min(ks)}")
         summ = summarize(s, r, ks=ks if ks is not None else default_ks(n_min),

@@ -22,13 +22,12 @@ from bonft._core.checks import (
     check_finite,
     check_fraction,
     check_int,
-    check_ks,
     check_n_boot,
     check_nonempty,
     check_real,
     check_seed,
 )
-from bonft.estimate.bestofk import _best_of_k_matrix, _pools, _ragged_best_of_k, _smallest_pool
+from bonft.estimate.bestofk import _best_of_k_matrix, _pools, _ragged_best_of_k, _smallest_pool, check_pool_ks
 
 __all__ = ["bootstrap_ci", "reward_bounds", "default_ks", "CurveSummary", "summarize", "MIN_BOOT_PROMPTS"]
 
@@ -312,7 +311,7 @@ def summarize(scores, rewards, *, ks=None, confidence: float = 0.95, n_boot: int
     check_n_boot(n_boot), check_seed(seed)  # before the per-prompt values are computed
     s, r = _pools(scores, rewards)
     smallest = _smallest_pool(s)
-    ks_arr, _ = check_ks(default_ks(smallest) if ks is None else ks, smallest, name="ks")
+    ks_arr, _ = check_pool_ks(default_ks(smallest) if ks is None else ks, s)
     if isinstance(s, list):
         best, top = _ragged_best_of_k(s, r, ks_arr), _ragged_best_of_k(r, r, ks_arr)
     else:

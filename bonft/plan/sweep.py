@@ -235,7 +235,7 @@ def plan_pools(
     b_samples = _check_budgets("budget_samples", budget_samples, integer=True)
     b_tokens = _check_budgets("budget_tokens", budget_tokens, integer=False)
 
-    scores_l, rewards_l, keys_l, n_min = [], [], [], []
+    scores_l, rewards_l, keys_l, n_min, short = [], [], [], [], []  # short: (smallest pool's key, median size)
     for t, p in zip(temps, items):
         s = _as_pool_layout(f"scores (temperature {t:g})", p.scores)
         r = _as_pool_layout(f"rewards (temperature {t:g})", p.rewards)
@@ -255,16 +255,20 @@ def plan_pools(
         if np.unique(keys).size != keys.size:
             raise ValueError(f"prompt_keys must be distinct at temperature {t:g}")
         scores_l.append(s), rewards_l.append(r), keys_l.append(keys), n_min.append(int(ns.min()))
+        short.append((str(keys[int(np.argmin(ns))]), int(np.median(ns))))
     n_min = np.asarray(n_min, dtype=np.int64)
     k_cap = int(n_min.min())
+    i_small = int(np.argmin(n_min))
+    where = f"prompt {short[i_small][0]!r} at temperature {temps[i_small]:g}"  # the pool that caps k
+    capped = []
     if max_k is None:
         max_k = k_cap
+        if k_cap < short[i_small][1]:  # one short pool caps k for every prompt: say which
+            capped = [f"k stops at {k_cap}, the smallest pool ({where}); the median pool there holds "
+                      f"{short[i_small][1]} samples: leave that prompt out to measure larger k"]
     max_k = _check_max_k(max_k)
     if max_k > k_cap:
-        t_small = temps[int(np.argmin(n_min))]
-        raise ValueError(
-            f"max_k must be <= the smallest pool at every temperature (n={k_cap} at temperature {t_small:g}), got max_k={max_k}"
-        )
+        raise ValueError(f"max_k must be <= the smallest pool at every temperature (n={k_cap}: {where}), got max_k={max_k}")
     mean_tokens = _check_mean_tokens(temps, items, bool(b_tokens))
     _check_boot_table(n_boot, len(temps), max_k)
 
@@ -310,7 +314,8 @@ def plan_pools(
         b_samples=b_samples,
         b_tokens=b_tokens,
         min_gain=min_gain,
-        notes=[] if paired else ["prompt sets differ between temperatures: each temperature resampled on its own (unpaired)"],
+        notes=capped + ([] if paired else ["prompt sets differ between temperatures: each temperature resampled on its own "
+                                           "(unpaired)"]),
         no_interval=no_interval,
     )
 

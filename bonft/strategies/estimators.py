@@ -53,12 +53,12 @@ from bonft._core.checks import (
     check_choice,
     check_finite,
     check_k,
-    check_ks,
     check_seed,
     is_tensor,
     torch_out_dtype,
 )
 from bonft._core.ustat import within_pools
+from bonft.estimate.bestofk import check_pool_ks
 from bonft.strategies.counting import pool_vote_sums, vote_credit_batched, weighted_slot_weights
 from bonft.strategies.exact import CONFLICT_RULES
 
@@ -256,10 +256,10 @@ def majority_vote_per_prompt(answers, rewards, *, ks, conflicts="error"):
     ans = _rows("answers", answers, numeric=False)
     rew = _rows("rewards", rewards, numeric=True)
     _same_lengths(answers=ans, rewards=rew)
-    smallest, n_max = min(len(a) for a in ans), max(len(a) for a in ans)
+    n_max = max(len(a) for a in ans)
     if n_max > _MAX_N_EXACT:
         raise ValueError(f"answers pools must have n <= {_MAX_N_EXACT} for the exact vote estimate, got n={n_max}")
-    ks_arr, scalar = check_ks(ks, smallest, name="ks")
+    ks_arr, scalar = check_pool_ks(ks, ans, pool="answers")
     codes = _codes(ans)
     _one_reward_per_answer(codes, ans, rew, conflicts, "majority_vote")
     out = within_pools(np.stack([_vote_pool(c, r, ks_arr) for c, r in zip(codes, rew)]), *_pool_ranges(rew))
@@ -353,7 +353,7 @@ def weighted_vote_per_prompt(answers, scores, rewards, *, ks, max_subsets=MAX_SU
     sc = _rows("scores", scores, numeric=True)
     rew = _rows("rewards", rewards, numeric=True)
     _same_lengths(answers=ans, scores=sc, rewards=rew)
-    ks_arr, _ = check_ks(ks, min(len(a) for a in ans), name="ks")
+    ks_arr, _ = check_pool_ks(ks, ans, pool="answers")
     max_subsets, seed = _check_budget(max_subsets, seed)
     _check_weights(sc)
     codes = _codes(ans)
