@@ -163,3 +163,41 @@ def test_plan_exact_majority_vote_at_the_default_max_k(tmp_path, capsys):
         want = sum(math.comb(k, c) * q**c * (1 - q) ** (k - c) * (1.0 if 2 * c > k else 0.5 if 2 * c == k else 0.0)
                    for c in range(k + 1))
         assert abs(got[k - 1] - want) < 1e-12
+
+
+class _Terminal:
+    """A stand-in for stderr that says it is a terminal (tqdm draws bars only there)."""
+
+    def __init__(self):
+        self.text = []
+
+    def write(self, s):
+        self.text.append(s)
+
+    def flush(self):
+        pass
+
+    def isatty(self):
+        return True
+
+
+def test_vote_estimates_show_a_progress_bar_on_a_terminal_unless_quiet(tmp_path, monkeypatch, capsys):
+    # bonft plan --strategy weighted_vote on 500 prompts x 200 samples ran for minutes without a sign of life
+    import sys
+
+    from bonft.strategies.estimators import vote_progress, weighted_vote_per_prompt
+
+    a, s, r = [np.array([0, 1, 0])] * 3, [np.ones(3)] * 3, [np.array([1.0, 0.0, 1.0])] * 3
+    term = _Terminal()
+    monkeypatch.setattr(sys, "stderr", term)
+    weighted_vote_per_prompt(a, s, r, ks=[2])
+    assert not term.text  # the Python API draws no bar
+    with vote_progress():
+        weighted_vote_per_prompt(a, s, r, ks=[2])
+    assert "weighted_vote:" in "".join(term.text) and "/3 [" in "".join(term.text)  # a bar over the 3 pools
+    monkeypatch.undo()
+    # the command reads --quiet with --samples --strategy (it refused it: only model mode had a bar)
+    p = _write(tmp_path / "p.jsonl")
+    assert main(["plan", "--samples", str(p), "--strategy", "majority_vote", "--n-boot", "20", "--quiet"]) == 0
+    assert main(["plan", "--samples", str(p), "--n-boot", "20", "--quiet"]) == 2
+    assert "--quiet applies to --model only" in capsys.readouterr().err

@@ -73,7 +73,9 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--seed", type=int, default=0, help="bootstrap and sampling seed (default: 0)")
     p.add_argument("--json", metavar="OUT.json", default=None, help="write the full result as JSON")
     p.add_argument("--plot-dir", metavar="DIR", default=None, help="write plan_heatmap.png and plan_curves.png here")
-    p.add_argument("--quiet", action="store_true", help="no progress bars while loading and sampling (model mode)")
+    p.add_argument("--quiet", action="store_true",
+                   help="no progress bars while loading and sampling (model mode) or estimating votes (--samples with "
+                        "--strategy)")
     add_strategy_arguments(p)
 
 
@@ -157,6 +159,8 @@ def _refuse_inert(args, mode: str, strategies: bool) -> None:
     inert = {}
     if mode != "model":
         inert.update({d: "applies to --model only (sampling from a model)" for d in _MODEL_ONLY})
+        if mode == "samples" and strategies:
+            del inert["quiet"]  # hides the vote estimators' progress bars
     if mode != "samples":
         inert.update({d: "applies to reading a --samples file" for d in _FILE_FIELDS})
     if mode == "exact":
@@ -209,7 +213,10 @@ def run(args) -> int:
                              answer_field=args.answer_field, sample_field=args.sample_field)
         if names:
             print(f"samples: {args.samples} ({len(table)} rows)")
-            return _run_strategies(args, table, temps)
+            from bonft.strategies.estimators import vote_progress  # loads torch: only with --strategy
+
+            with vote_progress(not args.quiet):  # the vote estimators take minutes on large files
+                return _run_strategies(args, table, temps)
         if args.budget_tokens is not None:
             _check_lengths(args, table)
         print(f"samples: {args.samples} ({len(table)} rows)")

@@ -40,6 +40,8 @@ favours, right or wrong (reward hacking); watch a held-out true reward.
 """
 from __future__ import annotations
 
+import contextlib
+import contextvars
 import itertools
 import math
 
@@ -223,6 +225,29 @@ def _pool_ranges(rew: list[np.ndarray]) -> tuple[np.ndarray, np.ndarray]:
     return np.array([r.min() for r in rew]), np.array([r.max() for r in rew])
 
 
+_PROGRESS = contextvars.ContextVar("bonft_vote_progress", default=False)
+
+
+@contextlib.contextmanager
+def vote_progress(enabled: bool = True):
+    """Within this block the vote estimators show a progress bar over pools on stderr (tqdm; only when stderr is a
+    terminal). Off by default: the commands turn it on (``bonft plan --samples F --strategy``, off with --quiet)."""
+    token = _PROGRESS.set(bool(enabled))
+    try:
+        yield
+    finally:
+        _PROGRESS.reset(token)
+
+
+def _pools_bar(rows, desc: str):
+    """``rows`` as they are, or wrapped in a progress bar while :func:`vote_progress` is on."""
+    if not _PROGRESS.get() or len(rows) < 2:
+        return rows
+    from tqdm.auto import tqdm
+
+    return tqdm(rows, desc=desc, unit=" pools", leave=False, disable=None)  # None: off where stderr is no terminal
+
+
 def _vote_pool(codes: np.ndarray, r: np.ndarray, ks: np.ndarray) -> np.ndarray:
     """One pool -> (K,) majority-vote values."""
     r, lo, half = _unit(r)
@@ -262,7 +287,8 @@ def majority_vote_per_prompt(answers, rewards, *, ks, conflicts="error"):
     ks_arr, scalar = check_pool_ks(ks, ans, pool="answers")
     codes = _codes(ans)
     _one_reward_per_answer(codes, ans, rew, conflicts, "majority_vote")
-    out = within_pools(np.stack([_vote_pool(c, r, ks_arr) for c, r in zip(codes, rew)]), *_pool_ranges(rew))
+    values = [_vote_pool(c, r, ks_arr) for c, r in _pools_bar(list(zip(codes, rew)), "majority_vote")]
+    out = within_pools(np.stack(values), *_pool_ranges(rew))
     return out[:, 0] if scalar else out
 
 
@@ -361,7 +387,7 @@ def weighted_vote_per_prompt(answers, scores, rewards, *, ks, max_subsets=MAX_SU
     rng = np.random.default_rng(seed)
     val = np.zeros((len(ans), len(ks_arr)))
     se = np.zeros_like(val)
-    for p, (c, s, r) in enumerate(zip(codes, sc, rew)):
+    for p, (c, s, r) in enumerate(_pools_bar(list(zip(codes, sc, rew)), "weighted_vote")):
         x, lo, half = _unit(r)  # served rewards summed over subsets stay finite on [0, 1]
         for j, k in enumerate(ks_arr):
             idx, exact = _subsets(len(r), int(k), max_subsets, rng)
