@@ -528,3 +528,11 @@ def test_one_short_pool_that_caps_k_is_named():
         plan_pools({0.8: Pools(s, r, prompt_keys=keys)}, n_boot=50, max_k=7)
     # equal pools: k stops at their size with no note
     assert not plan_pools({0.8: Pools(np.zeros((12, 5)), np.zeros((12, 5)))}, n_boot=50).notes
+
+
+def test_exact_mode_with_rewards_at_the_edge_of_float64_is_finite():
+    # every reward the largest float64: V_k is that reward for every policy and k (a mean of equal rewards); the mean
+    # over two prompts overflowed to inf
+    big = np.finfo(float).max
+    res = plan_exact(logits=LOGITS, scores=SCORES, rewards=np.full((2, 4), big), temperatures=[0.5, 1.0], max_k=4)
+    assert (res.value == big).all()

@@ -384,6 +384,13 @@ def plan_samples(
 # --------------------------------------------------------------------------- exact mode
 
 
+def _mean(v: np.ndarray) -> float:
+    """The mean of per-prompt values; near float64's edge at 2^-64 scale (exact), where their sum would overflow."""
+    if float(np.abs(v).max()) > 2.0**1000:
+        return float(np.mean(v * 2.0**-64)) * 2.0**64
+    return float(np.mean(v))
+
+
 def plan_exact(
     *,
     scores: Any,
@@ -450,7 +457,7 @@ def plan_exact(
             z = z - z.max(axis=-1, keepdims=True)
             p_t = np.exp(z) / np.exp(z).sum(axis=-1, keepdims=True)
         for j, k in enumerate(ks):
-            value[i, j] = float(np.mean(best_of_k_value(p_t, s_b, r_b, k=int(k))))
+            value[i, j] = _mean(np.asarray(best_of_k_value(p_t, s_b, r_b, k=int(k))))
         if lens is not None:
             mean_tokens[i] = float(np.mean((p_t * lens).sum(-1)))
     return finish(
