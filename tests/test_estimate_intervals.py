@@ -217,3 +217,18 @@ def test_reward_bounds_are_known_only_for_rewards_in_the_unit_interval():
     assert reward_bounds(np.array([[0.0, 1.0], [0.5, 1.0]])) == (0.0, 1.0)
     assert reward_bounds([np.array([0.0]), np.array([1.0, 0.25, 0.0])]) == (0.0, 1.0)  # ragged pools
     assert reward_bounds(np.array([[0.0, 1.5]])) is None and reward_bounds([np.array([-0.1])]) is None
+
+
+def test_values_near_the_edge_of_float64_give_finite_intervals():
+    # the percentile bootstrap commutes with a positive scale (same seed, same resamples: every replicate mean scales),
+    # so values of +-1.7e308 give 1e300 times the interval of the values / 1e300; their sums overflowed to inf
+    rng = np.random.default_rng(0)
+    v = rng.choice([1.7e308, -1.7e308, 0.0, 1e308], (12, 3))
+    m, lo, hi = bootstrap_ci(v, n_boot=500, seed=2)
+    m1, lo1, hi1 = bootstrap_ci(v / 1e300, n_boot=500, seed=2)
+    for got, want in ((m, m1), (lo, lo1), (hi, hi1)):
+        assert np.isfinite(got).all()
+        np.testing.assert_allclose(got, want * 1e300, rtol=1e-12)
+    s = summarize(rng.random((12, 5)), np.full((12, 5), 1.7e308), ks=[1, 2])
+    assert (s.per_prompt_best_of_k == 1.7e308).all() and (s.per_prompt_pass_at_k == 1.7e308).all()
+    np.testing.assert_allclose([s.best_of_k_mean, s.pass_at_k_hi], 1.7e308, rtol=1e-15)  # a mean of 12 equal values

@@ -152,7 +152,7 @@ def _sort_rewards_by_score(scores: np.ndarray, rewards: np.ndarray):
     if not len(rows):
         return r, rows, None
     s_rows = scores.ravel().take(order[rows])  # (T, n) scores in key order
-    bad = (np.diff(s_rows, axis=1) < 0).any(axis=1)  # near-ties the key could not order
+    bad = (s_rows[:, 1:] < s_rows[:, :-1]).any(axis=1)  # near-ties the key could not order (no subtraction: +-1e308)
     if bad.any():
         redo = rows[bad]
         o = np.argsort(scores[redo], axis=1)

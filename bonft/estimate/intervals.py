@@ -134,15 +134,17 @@ def bootstrap_ci(values, *, confidence: float = 0.95, n_boot: int = 2000, seed: 
     one_d = v.ndim == 1
     V = v[:, None] if one_d else v  # (P,) -> (P, 1)
     P = V.shape[0]
+    scale = 2.0**64 if float(np.abs(V).max()) > 2.0**1000 else 1.0  # near float64's edge the sums would overflow
+    Vs = V / scale if scale != 1.0 else V  # a power of two: exact
     rng = np.random.default_rng(seed)
     means = np.empty((n_boot, V.shape[1]))
     chunk = max(1, min(n_boot, 4_000_000 // P))
     for b0 in range(0, n_boot, chunk):
         b = min(chunk, n_boot - b0)
-        means[b0 : b0 + b] = resample_counts(rng, P, b) @ V / P  # (b, P) counts: one matmul per chunk
+        means[b0 : b0 + b] = resample_counts(rng, P, b) @ Vs / P  # (b, P) counts: one matmul per chunk
     alpha = (1.0 - confidence) / 2.0
-    lo, hi = np.quantile(means, [alpha, 1.0 - alpha], axis=0)
-    mean = V.mean(axis=0)
+    lo, hi = np.quantile(means, [alpha, 1.0 - alpha], axis=0) * scale
+    mean = Vs.mean(axis=0) * scale
     # a replicate mean cannot stray outside the data range, but keep lo <= mean <= hi exact
     lo, hi = np.minimum(lo, mean), np.maximum(hi, mean)
     if bounds is not None:

@@ -30,6 +30,10 @@ def bootstrap_means(per_prompt: list[np.ndarray], *, paired: bool, n_boot: int, 
     """
     rng = np.random.default_rng(seed)
     T, K = len(per_prompt), per_prompt[0].shape[1]
+    if max(float(np.abs(v).max()) for v in per_prompt) > 2.0**1000:  # near float64's edge the sums would overflow
+        out = bootstrap_means([v * 2.0**-64 for v in per_prompt], paired=paired, n_boot=n_boot, seed=seed)
+        out *= 2.0**64  # powers of two: exact
+        return out
 
     def means(X: np.ndarray, out: np.ndarray) -> None:
         """out (B, C) = resampled column means of X (P, C), block by block."""

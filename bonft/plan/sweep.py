@@ -283,7 +283,7 @@ def plan_pools(
         order = [np.argsort(k, kind="stable") for k in keys_l]
         per_prompt = [v[o] for v, o in zip(per_prompt, order)]
     boot = bootstrap_means(per_prompt, paired=paired, n_boot=n_boot, seed=seed)  # (B, T, K)
-    value = np.stack([v.mean(axis=0) for v in per_prompt])  # (T, K)
+    value = np.stack([_mean(v, axis=0) for v in per_prompt])  # (T, K)
     alpha = 1.0 - confidence
     lo, hi = np.quantile(boot, [alpha / 2, 1 - alpha / 2], axis=0)  # (T, K) each
     bounds = reward_bounds([x for r in rewards_l for x in (r if isinstance(r, list) else [r])])
@@ -384,11 +384,11 @@ def plan_samples(
 # --------------------------------------------------------------------------- exact mode
 
 
-def _mean(v: np.ndarray) -> float:
+def _mean(v: np.ndarray, axis=None):
     """The mean of per-prompt values; near float64's edge at 2^-64 scale (exact), where their sum would overflow."""
     if float(np.abs(v).max()) > 2.0**1000:
-        return float(np.mean(v * 2.0**-64)) * 2.0**64
-    return float(np.mean(v))
+        return np.mean(v * 2.0**-64, axis=axis) * 2.0**64
+    return np.mean(v, axis=axis)
 
 
 def plan_exact(
@@ -457,7 +457,7 @@ def plan_exact(
             z = z - z.max(axis=-1, keepdims=True)
             p_t = np.exp(z) / np.exp(z).sum(axis=-1, keepdims=True)
         for j, k in enumerate(ks):
-            value[i, j] = _mean(np.asarray(best_of_k_value(p_t, s_b, r_b, k=int(k))))
+            value[i, j] = float(_mean(np.asarray(best_of_k_value(p_t, s_b, r_b, k=int(k)))))
         if lens is not None:
             mean_tokens[i] = float(np.mean((p_t * lens).sum(-1)))
     return finish(
