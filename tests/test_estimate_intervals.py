@@ -232,3 +232,12 @@ def test_values_near_the_edge_of_float64_give_finite_intervals():
     s = summarize(rng.random((12, 5)), np.full((12, 5), 1.7e308), ks=[1, 2])
     assert (s.per_prompt_best_of_k == 1.7e308).all() and (s.per_prompt_pass_at_k == 1.7e308).all()
     np.testing.assert_allclose([s.best_of_k_mean, s.pass_at_k_hi], 1.7e308, rtol=1e-15)  # a mean of 12 equal values
+
+
+def test_a_confidence_level_is_printed_as_given_never_rounded_to_100():
+    # 0.9999999 was labelled "100% CI", a level no interval has
+    from bonft.estimate.intervals import confidence_label
+
+    assert [confidence_label(c) for c in (0.95, 0.9999999, 0.975, 0.07)] == ["95%", "99.99999%", "97.5%", "7%"]
+    s = summarize(np.zeros((10, 3)), np.tile([0.0, 1.0, 0.5], (10, 1)), ks=[1], confidence=0.9999999, n_boot=50)
+    assert "99.99999% CI" in s.table() and "100%" not in s.table()

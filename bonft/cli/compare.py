@@ -157,6 +157,7 @@ def _paired_pools(names: list[str], inputs: list[tuple]) -> dict:
 
 def run(args: argparse.Namespace) -> int:
     from bonft.estimate import MIN_BOOT_PROMPTS, default_ks, reward_bounds
+    from bonft.estimate.intervals import confidence_label
     from bonft.estimate.paired import paired_comparison, paired_table, per_prompt_curves, seed_comparison
     from bonft.viz import plot_paired_differences
 
@@ -254,8 +255,8 @@ def run(args: argparse.Namespace) -> int:
         print(f"wrote {args.json}")
     if args.plot_dir:
         out = os.path.join(make_plot_dir(args.plot_dir), "compare_curves.png")
-        what = f"{P[0]} prompts, {round(100 * args.confidence)}% bootstrap CI over prompts" if S == 1 else \
-            f"{S} training seeds, {round(100 * args.confidence)}% Student-t interval over seeds"
+        what = f"{P[0]} prompts, {confidence_label(args.confidence)} bootstrap CI over prompts" if S == 1 else \
+            f"{S} training seeds, {confidence_label(args.confidence)} Student-t interval over seeds"
         plot_paired_differences(comp, out, ks=ks, title=what)
         print(f"wrote {out}")
     return 0

@@ -29,7 +29,7 @@ from bonft._core.checks import (
 )
 from bonft.estimate.bestofk import _best_of_k_matrix, _pools, _ragged_best_of_k, _smallest_pool, check_pool_ks
 
-__all__ = ["bootstrap_ci", "reward_bounds", "default_ks", "CurveSummary", "summarize", "MIN_BOOT_PROMPTS"]
+__all__ = ["bootstrap_ci", "reward_bounds", "default_ks", "CurveSummary", "summarize", "MIN_BOOT_PROMPTS", "confidence_label"]
 
 
 def _check_bounds(bounds) -> tuple[float, float] | None:
@@ -73,6 +73,12 @@ def reward_bounds(rewards) -> tuple[float, float] | None:
     rows = [rewards] if isinstance(rewards, np.ndarray) else list(rewards)
     flat = [np.ravel(np.asarray(x, dtype=np.float64)) for x in rows]
     return (0.0, 1.0) if all(x.size == 0 or (x.min() >= 0 and x.max() <= 1) for x in flat) else None
+
+
+def confidence_label(confidence: float) -> str:
+    """A confidence level as a percentage for a table: ``'95%'``, ``'99.99999%'`` for 0.9999999 (never rounded to
+    ``'100%'``, which no interval is), float noise dropped (``100 * 0.07`` prints ``'7%'``)."""
+    return f"{100 * float(confidence):.10g}%"
 
 
 def _zero_spread(values) -> np.ndarray:
@@ -237,7 +243,7 @@ class CurveSummary:
 
     def table(self) -> str:
         """A fixed-width text table: one row per k; intervals print as ``n/a`` below ``MIN_BOOT_PROMPTS`` prompts."""
-        pct = f"{100 * self.confidence:g}%"
+        pct = confidence_label(self.confidence)
         head = f"{'k':>6}  {'best-of-k':>9}  {pct + ' CI':>17}  {'pass@k':>7}  {pct + ' CI':>17}  {'gap':>7}"
         lines = [f"prompts: {self.n_prompts}   smallest pool: {self.smallest_pool}", head]
         ok = self.intervals_valid

@@ -31,7 +31,7 @@ from bonft._core.checks import (
     check_seed,
 )
 from bonft.estimate.bestofk import best_of_k_per_prompt, pass_at_k_per_prompt
-from bonft.estimate.intervals import _check_bounds, bootstrap_ci
+from bonft.estimate.intervals import _check_bounds, bootstrap_ci, confidence_label
 
 # ----------------------------------------------------------------------------- argument checks
 
@@ -326,7 +326,7 @@ def paired_table(comparison, *, n_prompts: int = 0, labels: Mapping[str, str] | 
     cols = comparison["columns"]
     heads = [f"{picker} {label}" if kind == "proxy" else label for label, kind, _ in cols]
     seeds = comparison.get("seeds")
-    pct = round(100 * confidence)
+    pct = confidence_label(confidence)[:-1]
 
     def head(title: str, columns=heads) -> list[str]:
         return [title, *([caption] if caption else []), "", "| policy | " + " | ".join(columns) + " |",

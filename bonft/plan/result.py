@@ -6,6 +6,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from bonft.estimate import MIN_BOOT_PROMPTS
+from bonft.estimate.intervals import confidence_label
 
 FIT_CAVEAT = "a fit of this data, not a law"
 
@@ -135,7 +136,7 @@ class PlanResult:
         T = self.temperatures
         head = f"best-of-k value V_k(T), {self.mode} mode, {int(self.n_prompts.max())} prompts"
         if not exact:
-            head += f", {'paired' if self.paired else 'unpaired'} bootstrap {self.confidence:.0%} CI ({self.n_boot} resamples)"
+            head += f", {'paired' if self.paired else 'unpaired'} bootstrap {confidence_label(self.confidence)} CI ({self.n_boot} resamples)"
         lines = [head, "  * best temperature at k   ~ not significantly worse" if not exact else "  * best temperature at k"]
         cols = "".join(f"{'T=' + format(t, 'g'):>10}" for t in T)
         lines.append(f"{'k':>5} {cols}   {'best T':>6}  {'V at best' + ('' if exact else ' [CI]')}")

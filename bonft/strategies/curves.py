@@ -17,7 +17,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from bonft._core.checks import check_ks
-from bonft.estimate.intervals import MIN_BOOT_PROMPTS, bootstrap_ci, reward_bounds
+from bonft.estimate.intervals import MIN_BOOT_PROMPTS, bootstrap_ci, confidence_label, reward_bounds
 from bonft.strategies.base import _unread_field, get_strategy
 from bonft.strategies.estimators import MAX_SUBSETS
 
@@ -52,7 +52,7 @@ class StrategyCurves:
         ok = self.intervals_valid
         w = 26
         head = f"{'k':>6}  " + "  ".join(f"{s:^{w}}" for s in self.names) + "  best"
-        lines = [f"prompts: {self.n_prompts}   {100 * self.confidence:g}% intervals over prompts", head]
+        lines = [f"prompts: {self.n_prompts}   {confidence_label(self.confidence)} intervals over prompts", head]
         for j, (k, b) in enumerate(zip(self.ks, self.best())):
             cells = []
             for s in self.names:
