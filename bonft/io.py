@@ -19,7 +19,7 @@ Written by ``bonft sample``, read by ``bonft estimate`` and ``bonft plan``::
   only to pair files from different runs by their prompts (``bonft compare``).
 
 Field names can be renamed on reading (``score_field="rm_score"`` ...). Blank
-lines are skipped; every other line is parsed on its own (a JSON value never
+lines are skipped (and a UTF-8 byte-order mark at the start of the file); every other line is parsed on its own (a JSON value never
 spans two lines). A malformed line (bad JSON, nested too deeply, not UTF-8, a
 number beyond float64 or, for ``n_tokens``, beyond int64) raises ``ValueError``
 naming the file, line number and field; rows repeated exactly
@@ -258,6 +258,8 @@ def read_samples(
     name = os.path.basename(path)
     with open(path, "rb") as f:
         raw = f.read()
+    if raw.startswith(b"\xef\xbb\xbf"):  # a UTF-8 byte-order mark (editors on Windows write one): not part of the data
+        raw = raw[3:]
     text = decode_utf8(raw, name)
     lines = text.split("\n")
     if lines and not lines[-1].strip():

@@ -373,3 +373,16 @@ def test_a_temperature_stored_as_float32_is_the_temperature_typed(tmp_path):
     with pytest.raises(ValueError, match=r"temperatures \[0.7, 1.0\] \(pools would mix them\)"):
         group_pools(t)
     assert same_temperature(0.7, t32) and not same_temperature(0.7, 0.7001)
+
+
+def test_a_utf8_byte_order_mark_is_read_past(tmp_path):
+    # editors on Windows start a UTF-8 file with EF BB BF; it was refused as "not valid JSON (Unexpected UTF-8 BOM
+    # (decode using utf-8-sig) ...)", Python's wording
+    p = tmp_path / "bom.jsonl"
+    p.write_bytes(b"\xef\xbb\xbf" + b'{"prompt_id": "a", "score": 0.5, "reward": 1}\n{"prompt_id": "a", "score": 1, "reward": 0}\n')
+    t = read_samples(p)
+    assert list(t.prompt_keys) == ["a", "a"] and list(t.scores) == [0.5, 1.0]
+    # only at the start: inside the file it is a character of a line, refused naming that line
+    p.write_bytes(b'{"prompt_id": "a", "score": 0.5, "reward": 1}\n\xef\xbb\xbf{"prompt_id": "a", "score": 1, "reward": 0}\n')
+    with pytest.raises(ValueError, match=r"bom.jsonl line 2"):
+        read_samples(p)
