@@ -42,6 +42,7 @@ from __future__ import annotations
 
 import contextlib
 import contextvars
+import functools
 import itertools
 import math
 
@@ -342,10 +343,27 @@ def majority_vote_credit(answers, rewards, *, k, conflicts="error"):
 # ---------------------------------------------------------------------------- weighted vote
 
 
+def _all_subsets(n: int, k: int) -> np.ndarray:
+    """Every k-subset of range(n) as a (C(n, k), k) array."""
+    return np.array(list(itertools.combinations(range(n), k)), dtype=np.int64).reshape(-1, k)
+
+
+@functools.lru_cache(maxsize=32)
+def _shared_subsets(n: int, k: int) -> np.ndarray:
+    """:func:`_all_subsets`, read-only and cached: the pools of one size share the table."""
+    out = _all_subsets(n, k)
+    out.flags.writeable = False
+    return out
+
+
+_SHARED_CELLS = 1 << 20  # entries of a table kept in that cache (8 MB at most each)
+
+
 def _subsets(n: int, k: int, max_subsets: int, rng) -> tuple[np.ndarray, bool]:
     """Sample indices (N, k) of all k-subsets (exact) or of max_subsets uniform ones."""
-    if math.comb(n, k) <= max_subsets:
-        return np.array(list(itertools.combinations(range(n), k)), dtype=np.int64).reshape(-1, k), True
+    count = math.comb(n, k)
+    if count <= max_subsets:
+        return (_shared_subsets if count * k <= _SHARED_CELLS else _all_subsets)(n, k), True
     return np.argpartition(rng.random((max_subsets, n)), k - 1, axis=1)[:, :k], False  # the k smallest of iid keys
 
 
