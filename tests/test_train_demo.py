@@ -131,3 +131,23 @@ def test_study_table_pairs_by_seed():
     assert "+0.100 [+0.100, +0.100] *" in table
     # pass@k - warm start at pass@32: 0.10, 0.11, 0.12 -> mean 0.11, sd 0.01, t_{0.975,2} = 4.303
     assert "+0.110 [+0.085, +0.135] *" in table
+
+
+def test_a_demo_stage_stopped_before_its_first_checkpoint_starts_again(tmp_path):
+    # a stage killed while writing its first checkpoint leaves metrics lines, an empty checkpoints/ and an unfinished
+    # checkpoint folder: rerunning the demo has nothing to continue, so the stage runs from step 0 (the trainer
+    # refuses to resume over metrics it cannot continue) and keeps the stopped run's lines aside
+    from bonft.trainer.config import from_dict
+    from bonft.trainer.demo.pipeline import _stage
+
+    out = tmp_path / "stage"
+    (out / "checkpoints" / "step-00000002.tmp-999").mkdir(parents=True)
+    (out / "metrics.jsonl").write_text('{"kind": "train", "step": 1, "loss": 0.5}\n')
+    cfg = from_dict(dict(layers=1, width=32, heads=2, max_positions=48, train_prompts=16, heldout_prompts=2, rl_steps=2,
+                         prompts_per_step=2, n=4, k=2, eval_samples=4, eval_ks=[1, 4], n_boot=20, max_new_tokens=4,
+                         plots=False, save_every=0, log_every=1, threads=1, run_dir=str(out), name="stage"))
+    final = _stage(cfg, progress=False)
+    assert final["step"] == 2 and (out / "metrics.stopped.jsonl").read_text() == '{"kind": "train", "step": 1, "loss": 0.5}\n'
+    assert [p.name for p in (out / "checkpoints").iterdir()] == ["step-00000002"]
+    steps = [json.loads(ln)["step"] for ln in (out / "metrics.jsonl").read_text().splitlines() if '"train"' in ln]
+    assert steps == [1, 2]
