@@ -192,6 +192,23 @@ def test_json_writer_names_the_option_and_path_not_its_temporary_file(tmp_path, 
     assert e.value.filename == str(tmp_path / "out.json")
 
 
+def test_json_writer_keeps_the_previous_file_on_failure_and_the_usual_mode(tmp_path):
+    # common practice (no source): a file is replaced whole or not at all, and with the mode any new file gets
+    # (0o666 less the umask), not the 0o600 of a temporary file
+    import os
+
+    from bonft.cli.options import write_json_atomic
+
+    path = tmp_path / "out.json"
+    write_json_atomic(str(path), {"a": 1})
+    umask = os.umask(0)
+    os.umask(umask)
+    assert (path.stat().st_mode & 0o777, json.loads(path.read_text())) == (0o666 & ~umask, {"a": 1})
+    with pytest.raises(ValueError, match="Out of range float"):
+        write_json_atomic(str(path), {"a": [1.0, float("nan")]})
+    assert json.loads(path.read_text()) == {"a": 1} and [p.name for p in tmp_path.iterdir()] == ["out.json"]
+
+
 def test_recipes(files):
     expect_error(["train", files / "nope.toml"], r"recipe not found: .*nope.toml")
     expect_error(["train", files / "not.toml"], r"not.toml: not valid TOML")

@@ -3,9 +3,9 @@ from __future__ import annotations
 
 import json
 import os
-import tempfile
 
 from bonft._core.checks import MAX_BOOT, MAX_SUBSETS_BOUND, SEED_BOUND
+from bonft._core.jsonl import replacing
 
 
 def no_empty_items(flag: str, text: str | None) -> None:
@@ -102,24 +102,18 @@ def make_plot_dir(path: str, flag: str = "--plot-dir") -> str:
 
 
 def write_json_atomic(path: str, obj, *, flag: str = "--json") -> None:
-    """Write JSON to a temporary file beside ``path``, then rename: a crash never leaves half a file.
+    """Write JSON atomically (:func:`bonft._core.jsonl.replacing`): a crash never leaves half a file.
 
     A directory at ``path`` (or a file in place of its folder) is a ``ValueError`` naming ``flag``; a folder
     that cannot be written is an ``OSError`` naming ``flag`` and ``path`` (not the temporary file).
     """
     check_json_path(flag, path)
-    folder = os.path.dirname(os.path.abspath(path))
-    tmp = None
     try:
-        os.makedirs(folder, exist_ok=True)
-        fd, tmp = tempfile.mkstemp(prefix=".bonft-", suffix=".tmp", dir=folder)
-        with os.fdopen(fd, "w", encoding="utf-8") as f:
+        os.makedirs(os.path.dirname(os.path.abspath(path)), exist_ok=True)
+        with replacing(path) as f:
             json.dump(obj, f, indent=1, allow_nan=False)
-        os.replace(tmp, path)
-    except BaseException as e:
-        if tmp is not None and os.path.exists(tmp):
-            os.unlink(tmp)
-        if isinstance(e, OSError) and e.strerror:
+    except OSError as e:
+        if e.strerror:
             raise type(e)(e.errno, f"{flag} cannot be written: {e.strerror}", path) from None
         raise
 
