@@ -185,14 +185,14 @@ def test_vote_estimates_show_a_progress_bar_on_a_terminal_unless_quiet(tmp_path,
     # bonft plan --strategy weighted_vote on 500 prompts x 200 samples ran for minutes without a sign of life
     import sys
 
-    from bonft.strategies.estimators import vote_progress, weighted_vote_per_prompt
+    from bonft.strategies.estimators import VoteProgress, weighted_vote_per_prompt
 
     a, s, r = [np.array([0, 1, 0])] * 3, [np.ones(3)] * 3, [np.array([1.0, 0.0, 1.0])] * 3
     term = _Terminal()
     monkeypatch.setattr(sys, "stderr", term)
     weighted_vote_per_prompt(a, s, r, ks=[2])
     assert not term.text  # the Python API draws no bar
-    with vote_progress():
+    with VoteProgress():
         weighted_vote_per_prompt(a, s, r, ks=[2])
     assert "weighted_vote:" in "".join(term.text) and "/3 [" in "".join(term.text)  # a bar over the 3 pools
     monkeypatch.undo()

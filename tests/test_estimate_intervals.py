@@ -236,7 +236,7 @@ def test_values_near_the_edge_of_float64_give_finite_intervals():
 
 def test_a_confidence_level_is_printed_as_given_never_rounded_to_100():
     # 0.9999999 was labelled "100% CI", a level no interval has
-    from bonft.estimate.intervals import confidence_label
+    from bonft._core.bootstrap import confidence_label
 
     assert [confidence_label(c) for c in (0.95, 0.9999999, 0.975, 0.07)] == ["95%", "99.99999%", "97.5%", "7%"]
     s = summarize(np.zeros((10, 3)), np.tile([0.0, 1.0, 0.5], (10, 1)), ks=[1], confidence=0.9999999, n_boot=50)

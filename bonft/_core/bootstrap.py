@@ -1,4 +1,5 @@
-"""The one home of the bootstrap's resampling trick (used by :mod:`bonft.estimate` and :mod:`bonft.plan`).
+"""The one home of the bootstrap's resampling trick (used by :mod:`bonft.estimate` and :mod:`bonft.plan`), of the
+rule for columns that have no interval, and of how a confidence level prints.
 
 Resampling P prompts with replacement b times is a count matrix ``W (b, P)``,
 ``W[j, i]`` = times prompt i is drawn in replicate j, so one matmul
@@ -16,3 +17,28 @@ def resample_counts(rng: np.random.Generator, P: int, b: int) -> np.ndarray:
     idx = rng.integers(0, P, size=(b, P))  # (b, P) drawn prompt indices
     flat = (idx + P * np.arange(b)[:, None]).ravel()  # offset row j by j*P to count per row
     return np.bincount(flat, minlength=b * P).reshape(b, P).astype(np.float64)
+
+
+def zero_spread(values) -> np.ndarray:
+    """``(P, K) -> (K,)`` bool: the columns whose P values are all equal (a bootstrap interval of width 0)."""
+    v = np.asarray(values, dtype=float)
+    v = v[:, None] if v.ndim == 1 else v
+    return (v == v[:1]).all(axis=0)
+
+
+def no_interval_columns(values, bounds) -> np.ndarray:
+    """``(P, K) -> (K,)`` bool: the columns with no interval, those whose P values are all equal at a value that
+    is neither bound of ``bounds`` (any value when ``bounds`` is None). A zero-spread column at a bound gets the
+    exact interval of :func:`bonft.estimate.bootstrap_ci`; the one rule of summarize's table and the planner's."""
+    v = np.asarray(values, dtype=float)
+    v = v[:, None] if v.ndim == 1 else v
+    flat = zero_spread(v)
+    if bounds is not None:
+        flat &= (v[0] != bounds[0]) & (v[0] != bounds[1])
+    return flat
+
+
+def confidence_label(confidence: float) -> str:
+    """A confidence level as a percentage for a table: ``'95%'``, ``'99.99999%'`` for 0.9999999 (never rounded to
+    ``'100%'``, which no interval is), float noise dropped (``100 * 0.07`` prints ``'7%'``)."""
+    return f"{100 * float(confidence):.10g}%"

@@ -9,6 +9,7 @@ their boundary; internal helpers trust their inputs.
 from __future__ import annotations
 
 import numbers
+import sys
 from typing import Any, Iterable, Sequence
 
 import numpy as np
@@ -92,6 +93,20 @@ def check_ks(ks: Any, n: int, *, name: str = "k") -> tuple[np.ndarray, bool]:
         ks = ks.tolist()
     items = _nonempty_list(name, ks, "an int or a sequence of ints")
     return np.array([check_k(v, n, name=name) for v in items], dtype=np.int64), False
+
+
+def check_pool_ks(ks: Any, pools, *, name: str = "ks", pool: str = "scores") -> tuple[np.ndarray, bool]:
+    """:func:`check_ks` against the smallest of ``pools`` (a 2-D array or a list of 1-D pools); a k above a ragged
+    list's smallest pool names that pool (``scores[3]``), since one short pool caps k for every prompt."""
+    sizes = [pools.shape[1]] if isinstance(pools, np.ndarray) else [len(x) for x in pools]
+    p = int(np.argmin(sizes))
+    if len(set(sizes)) < 2:
+        return check_ks(ks, sizes[p], name=name)
+    arr, scalar = check_ks(ks, sys.maxsize, name=name)
+    if arr.max() > sizes[p]:
+        raise ValueError(f"{name} must be <= the smallest pool (n={sizes[p]}, {pool}[{p}]; the largest holds "
+                         f"{max(sizes)}), got {name}={int(arr.max())}: lower {name} or leave that pool out")
+    return arr, scalar
 
 
 def check_real(name: str, value: Any, *, min: float | None = None, max: float | None = None) -> float:

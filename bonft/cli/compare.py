@@ -156,8 +156,8 @@ def _paired_pools(names: list[str], inputs: list[tuple]) -> dict:
 
 
 def run(args: argparse.Namespace) -> int:
+    from bonft._core.bootstrap import confidence_label
     from bonft.estimate import MIN_BOOT_PROMPTS, default_ks, reward_bounds
-    from bonft.estimate.intervals import confidence_label
     from bonft.estimate.paired import paired_comparison, paired_table, per_prompt_curves, seed_comparison
     from bonft.viz import plot_paired_differences
 

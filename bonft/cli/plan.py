@@ -213,9 +213,9 @@ def run(args) -> int:
                              answer_field=args.answer_field, sample_field=args.sample_field)
         if names:
             print(f"samples: {args.samples} ({len(table)} rows)")
-            from bonft.strategies.estimators import vote_progress  # loads torch: only with --strategy
+            from bonft.strategies.estimators import VoteProgress  # loads torch: only with --strategy
 
-            with vote_progress(not args.quiet):  # the vote estimators take minutes on large files
+            with VoteProgress(not args.quiet):  # the vote estimators take minutes on large files
                 return _run_strategies(args, table, temps)
         if args.budget_tokens is not None:
             _check_lengths(args, table)

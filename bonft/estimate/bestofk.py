@@ -35,12 +35,19 @@ would learn to game it.
 from __future__ import annotations
 
 import numbers
-import sys
 from typing import Any
 
 import numpy as np
 
-from bonft._core.checks import as_float_array, check_finite, check_ks, check_nonempty, check_same_shape, is_tensor
+from bonft._core.checks import (
+    as_float_array,
+    check_finite,
+    check_ks,
+    check_nonempty,
+    check_pool_ks,
+    check_same_shape,
+    is_tensor,
+)
 from bonft._core.ties import first_of_group, tie_means
 from bonft._core.ustat import weighted_ranks, within_pools
 
@@ -276,20 +283,6 @@ def _ragged_best_of_k(ss: list[np.ndarray], rr: list[np.ndarray], ks: np.ndarray
         R = np.stack([rr[i] for i in idx])
         out[idx] = _best_of_k_matrix(S, R, ks)
     return out
-
-
-def check_pool_ks(ks: Any, pools, *, name: str = "ks", pool: str = "scores") -> tuple[np.ndarray, bool]:
-    """:func:`check_ks` against the smallest of ``pools`` (a 2-D array or a list of 1-D pools); a k above a ragged
-    list's smallest pool names that pool (``scores[3]``), since one short pool caps k for every prompt."""
-    sizes = [pools.shape[1]] if isinstance(pools, np.ndarray) else [len(x) for x in pools]
-    p = int(np.argmin(sizes))
-    if len(set(sizes)) < 2:
-        return check_ks(ks, sizes[p], name=name)
-    arr, scalar = check_ks(ks, sys.maxsize, name=name)
-    if arr.max() > sizes[p]:
-        raise ValueError(f"{name} must be <= the smallest pool (n={sizes[p]}, {pool}[{p}]; the largest holds "
-                         f"{max(sizes)}), got {name}={int(arr.max())}: lower {name} or leave that pool out")
-    return arr, scalar
 
 
 def _smallest_pool(s) -> int:

@@ -16,7 +16,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from bonft._core.bootstrap import resample_counts
+from bonft._core.bootstrap import confidence_label, no_interval_columns, resample_counts, zero_spread
 from bonft._core.checks import (
     as_float_array,
     check_finite,
@@ -24,12 +24,13 @@ from bonft._core.checks import (
     check_int,
     check_n_boot,
     check_nonempty,
+    check_pool_ks,
     check_real,
     check_seed,
 )
-from bonft.estimate.bestofk import _best_of_k_matrix, _pools, _ragged_best_of_k, _smallest_pool, check_pool_ks
+from bonft.estimate.bestofk import _best_of_k_matrix, _pools, _ragged_best_of_k, _smallest_pool
 
-__all__ = ["bootstrap_ci", "reward_bounds", "default_ks", "CurveSummary", "summarize", "MIN_BOOT_PROMPTS", "confidence_label"]
+__all__ = ["bootstrap_ci", "reward_bounds", "default_ks", "CurveSummary", "summarize", "MIN_BOOT_PROMPTS"]
 
 
 def _check_bounds(bounds) -> tuple[float, float] | None:
@@ -73,31 +74,6 @@ def reward_bounds(rewards) -> tuple[float, float] | None:
     rows = [rewards] if isinstance(rewards, np.ndarray) else list(rewards)
     flat = [np.ravel(np.asarray(x, dtype=np.float64)) for x in rows]
     return (0.0, 1.0) if all(x.size == 0 or (x.min() >= 0 and x.max() <= 1) for x in flat) else None
-
-
-def confidence_label(confidence: float) -> str:
-    """A confidence level as a percentage for a table: ``'95%'``, ``'99.99999%'`` for 0.9999999 (never rounded to
-    ``'100%'``, which no interval is), float noise dropped (``100 * 0.07`` prints ``'7%'``)."""
-    return f"{100 * float(confidence):.10g}%"
-
-
-def _zero_spread(values) -> np.ndarray:
-    """``(P, K) -> (K,)`` bool: the columns whose P values are all equal (a bootstrap interval of width 0)."""
-    v = np.asarray(values, dtype=float)
-    v = v[:, None] if v.ndim == 1 else v
-    return (v == v[:1]).all(axis=0)
-
-
-def no_interval_columns(values, bounds) -> np.ndarray:
-    """``(P, K) -> (K,)`` bool: the columns with no interval, those whose P values are all equal at a value that
-    is neither bound of ``bounds`` (any value when ``bounds`` is None). A zero-spread column at a bound gets the
-    exact interval of :func:`bootstrap_ci`; the one rule of summarize's table and the planner's."""
-    v = np.asarray(values, dtype=float)
-    v = v[:, None] if v.ndim == 1 else v
-    flat = _zero_spread(v)
-    if bounds is not None:
-        flat &= (v[0] != bounds[0]) & (v[0] != bounds[1])
-    return flat
 
 
 def bootstrap_ci(values, *, confidence: float = 0.95, n_boot: int = 2000, seed: int = 0, bounds=None):
@@ -155,7 +131,7 @@ def bootstrap_ci(values, *, confidence: float = 0.95, n_boot: int = 2000, seed: 
     lo, hi = np.minimum(lo, mean), np.maximum(hi, mean)
     if bounds is not None:
         b_lo, b_hi = bounds
-        flat = _zero_spread(V)
+        flat = zero_spread(V)
         w = (b_hi - b_lo) * _all_equal_bound(P, confidence)
         at_lo, at_hi = flat & (mean == b_lo), flat & (mean == b_hi)
         hi = np.where(at_lo, b_lo + w, hi)

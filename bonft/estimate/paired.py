@@ -19,6 +19,7 @@ from typing import Any, Mapping, Sequence
 
 import numpy as np
 
+from bonft._core.bootstrap import confidence_label
 from bonft._core.checks import (
     as_float_array,
     check_bool,
@@ -31,7 +32,7 @@ from bonft._core.checks import (
     check_seed,
 )
 from bonft.estimate.bestofk import best_of_k_per_prompt, pass_at_k_per_prompt
-from bonft.estimate.intervals import _check_bounds, bootstrap_ci, confidence_label
+from bonft.estimate.intervals import _check_bounds, bootstrap_ci
 
 # ----------------------------------------------------------------------------- argument checks
 

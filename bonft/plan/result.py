@@ -5,8 +5,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from bonft._core.bootstrap import confidence_label
 from bonft.estimate import MIN_BOOT_PROMPTS
-from bonft.estimate.intervals import confidence_label
 
 FIT_CAVEAT = "a fit of this data, not a law"
 

@@ -37,6 +37,7 @@ from typing import Any, Mapping, Sequence
 
 import numpy as np
 
+from bonft._core.bootstrap import no_interval_columns
 from bonft._core.checks import (
     MAX_POOL,
     as_float_array,
@@ -51,7 +52,6 @@ from bonft._core.checks import (
     check_seed,
 )
 from bonft.estimate import best_of_k_per_prompt, bootstrap_ci, reward_bounds
-from bonft.estimate.intervals import no_interval_columns
 from bonft.io import group_pools, same_temperature, temperature_label, temperatures_of
 from bonft.plan.decisions import bootstrap_means, finish, fit_best_temperature
 from bonft.plan.result import BudgetChoice, DoublingStep, PlanResult, TemperatureFit

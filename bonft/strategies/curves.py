@@ -16,8 +16,9 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from bonft._core.bootstrap import confidence_label
 from bonft._core.checks import check_ks
-from bonft.estimate.intervals import MIN_BOOT_PROMPTS, bootstrap_ci, confidence_label, reward_bounds
+from bonft.estimate.intervals import MIN_BOOT_PROMPTS, bootstrap_ci, reward_bounds
 from bonft.strategies.base import _unread_field, get_strategy
 from bonft.strategies.estimators import MAX_SUBSETS
 

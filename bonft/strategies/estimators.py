@@ -40,7 +40,6 @@ favours, right or wrong (reward hacking); watch a held-out true reward.
 """
 from __future__ import annotations
 
-import contextlib
 import contextvars
 import functools
 import itertools
@@ -56,12 +55,12 @@ from bonft._core.checks import (
     check_choice,
     check_finite,
     check_k,
+    check_pool_ks,
     check_seed,
     is_tensor,
     torch_out_dtype,
 )
 from bonft._core.ustat import within_pools
-from bonft.estimate.bestofk import check_pool_ks
 from bonft.strategies.counting import pool_vote_sums, vote_credit_batched, weighted_slot_weights
 from bonft.strategies.exact import CONFLICT_RULES
 
@@ -229,19 +228,25 @@ def _pool_ranges(rew: list[np.ndarray]) -> tuple[np.ndarray, np.ndarray]:
 _PROGRESS = contextvars.ContextVar("bonft_vote_progress", default=False)
 
 
-@contextlib.contextmanager
-def vote_progress(enabled: bool = True):
-    """Within this block the vote estimators show a progress bar over pools on stderr (tqdm; only when stderr is a
-    terminal). Off by default: the commands turn it on (``bonft plan --samples F --strategy``, off with --quiet)."""
-    token = _PROGRESS.set(bool(enabled))
-    try:
-        yield
-    finally:
-        _PROGRESS.reset(token)
+class VoteProgress:
+    """``with VoteProgress():`` the vote estimators show a progress bar over pools on stderr (tqdm; only when stderr
+    is a terminal). Off by default: the commands turn it on (``bonft plan --samples F --strategy``, off with --quiet);
+    ``VoteProgress(False)`` turns it off inside such a block."""
+
+    def __init__(self, enabled: bool = True) -> None:
+        self.enabled = bool(enabled)
+        self._token = None
+
+    def __enter__(self) -> VoteProgress:
+        self._token = _PROGRESS.set(self.enabled)
+        return self
+
+    def __exit__(self, *exc) -> None:
+        _PROGRESS.reset(self._token)
 
 
 def _pools_bar(rows, desc: str):
-    """``rows`` as they are, or wrapped in a progress bar while :func:`vote_progress` is on."""
+    """``rows`` as they are, or wrapped in a progress bar while :class:`VoteProgress` is on."""
     if not _PROGRESS.get() or len(rows) < 2:
         return rows
     from tqdm.auto import tqdm
