@@ -82,7 +82,7 @@ class PlanResult:
         prompt) at each temperature, None in exact mode.
     mean_tokens: (T,) mean generated tokens per response, or None.
     no_interval: (T, K) bool, True where every prompt has the same value at a value that is neither bound of
-        the rewards' range (:func:`bonft.estimate.intervals.no_interval_columns`, the rule of ``bonft estimate``):
+        the rewards' range (:func:`bonft._core.bootstrap.no_interval_columns`, the rule of ``bonft estimate``):
         lo = hi = value there is no interval, and the table prints "no spread"; None in exact mode.
     """
 
