@@ -12,7 +12,7 @@ Computed without log-gamma: every 64th weight from the top comes from
 :func:`bonft._core.passk.log_miss` (``w_k(i) = (k/n) miss(n-1, n-1-i, k-1)``), the
 ones between from the exact step ``w_k(i-1) = w_k(i) (i-k+1)/i``, so each
 weight carries at most ~64 roundings (relative error < 2e-14, checked against
-``fractions`` in ``tests/test_ustat.py``). Going down from the top, weights
+``fractions`` in ``tests/test_passk.py``). Going down from the top, weights
 underflow to exactly 0 where they are below 1e-308 instead of overflowing
 binomials.
 """
