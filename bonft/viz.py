@@ -22,6 +22,7 @@ from typing import Any, Mapping, Sequence
 import numpy as np
 
 from bonft._core.checks import as_float_array, check_int, check_items
+from bonft._core.jsonl import replacing
 from bonft.estimate import CurveSummary
 
 __all__ = ["plot_best_of_k_curves", "plot_verifier_check", "plot_plan_heatmap", "plot_plan_curves", "plot_evaluations",
@@ -317,8 +318,6 @@ def _out(path) -> str:
 def _save_figure(fig, path, **kw) -> None:
     """``fig.savefig`` to a temporary file beside ``path``, then renamed onto it: a full disk or a kill
     leaves the previous figure (or none), never a cut one. A failed write is an ``OSError`` naming ``path``."""
-    from bonft._core.jsonl import replacing
-
     path = os.fspath(path)
     fmt = os.path.splitext(path)[1][1:].lower() or "png"
     try:
