@@ -170,12 +170,13 @@ def _sort_rewards_by_score(scores: np.ndarray, rewards: np.ndarray):
 
 def _best_of_k_matrix(scores: np.ndarray, rewards: np.ndarray, ks: np.ndarray) -> np.ndarray:
     """scores, rewards: (P, n) float64, ks: (K,) int -> (P, K) best-of-k values."""
-    big = rewards.size and float(np.abs(rewards).max()) > _HUGE
+    lo, hi = rewards.min(axis=1), rewards.max(axis=1)  # (P,) each: every pool's reward range
+    big = rewards.size and max(abs(float(lo.min())), abs(float(hi.max()))) > _HUGE
     if big:  # near float64's edge a group's sum or a pool's spread would overflow: work at 2^-64 scale (exact)
-        rewards = rewards * _DOWN
+        rewards, lo, hi = rewards * _DOWN, lo * _DOWN, hi * _DOWN
+    r, rows, s_rows = _sort_rewards_by_score(scores, rewards)  # (P, n) rewards in score order, a new array
     # shifted by the pool's minimum, a pool of equal rewards is all zeros: its value is that reward exactly
-    lo, hi = rewards.min(axis=1), rewards.max(axis=1)
-    r, rows, s_rows = _sort_rewards_by_score(scores, rewards - lo[:, None])  # (P, n) rewards in score order
+    r -= lo[:, None]
     if len(rows):
         # ties: every member of a tied group gets the group's mean reward
         r[rows] = tie_means(r[rows], first_of_group(s_rows))
