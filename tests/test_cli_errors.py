@@ -114,7 +114,7 @@ def test_pool_files(files):
 
 def test_too_many_bootstrap_replicates(files):
     expect_error(["estimate", "--example", "--n-boot", "100000000000"],
-                 r"--n-boot must be between 1 and 1,000,000 bootstrap replicates, got 100,000,000,000")
+                 r"--n-boot must be between 10 and 1,000,000 bootstrap replicates, got 100,000,000,000")
     expect_error(["plan", "--samples", files / "zero_tokens.jsonl", "--n-boot", "100000000000"], r"--n-boot must be between 1")
     expect_error(["train", files / "recipe.toml", "--set", "n_boot=100000000000"],
                  r"n_boot must be <= 1,000,000 \(each replicate is a row of the bootstrap table held in memory; .*\), "

@@ -72,7 +72,9 @@ def test_single_temperature_file_with_renamed_fields_and_k(tmp_path, capsys):
         (["estimate", "--example", "--ks", "1,two"], r"--ks must be comma-separated integers like 1,2,4, got '1,two'"),
         (["estimate", "--example", "--ks", "0,2"], r"--ks must be >= 1, got 0"),
         (["estimate", "--example", "--confidence", "1.5"], r"confidence must be in \(0, 1\), got confidence=1.5"),
-        (["estimate", "--example", "--n-boot", "0"], r"--n-boot must be between 1 and 1,000,000 bootstrap replicates, got 0"),
+        (["estimate", "--example", "--n-boot", "0"], r"--n-boot must be between 10 and 1,000,000 bootstrap replicates, got 0"),
+        # one replicate printed a "95% CI" (its two percentiles are that replicate): no interval worth the name
+        (["estimate", "--example", "--n-boot", "1"], r"--n-boot must be between 10 and 1,000,000 bootstrap replicates, got 1"),
         (["estimate", "--example", "x.jsonl"], r"give either POOLS or --example, got both"),
         (["estimate"], r"POOLS must be a pool file \(JSONL of scored samples\) \(or pass --example\)"),
         (["estimate", "nope.jsonl"], r"POOLS file not found: nope.jsonl"),

@@ -302,7 +302,7 @@ def test_n_boot_has_the_command_lines_cap_in_the_api():
             f()
     for cmd in (("estimate", "--example"), ("plan", "--samples", "x.jsonl")):
         code, err = _cli(*cmd, "--n-boot", 2 * 10**7)
-        assert code == 2 and err.endswith("error: --n-boot must be between 1 and 1,000,000 bootstrap replicates, got 20,000,000")
+        assert code == 2 and err.endswith("error: --n-boot must be between 10 and 1,000,000 bootstrap replicates, got 20,000,000")
 
 
 def test_seeds_beyond_what_the_generators_take_are_refused():

@@ -41,6 +41,7 @@ def check_int(name: str, value: Any, *, min: int | None = None, max: int | None 
 # ---------------------------------------------------------------- bounds of the knobs that size work or memory
 # Each is checked before any work, by the API and (through it or the same constant) the command line.
 MAX_BOOT = 1_000_000  # bootstrap replicates: a (replicates x values) table; past this no interval moves measurably
+MIN_BOOT = 10  # replicates of a printed interval (commands, recipes, the planner): fewer give no percentile worth the name
 MAX_SUBSETS_BOUND = 1_000_000  # weighted vote: sampled k-subsets, each drawing n random keys at once
 MAX_POOL = 65_536  # samples per prompt (n, eval_samples): a pool is sampled, scored and credited at once
 MAX_PROMPTS_PER_STEP = 65_536  # prompts per optimizer step

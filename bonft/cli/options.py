@@ -4,7 +4,7 @@ from __future__ import annotations
 import json
 import os
 
-from bonft._core.checks import MAX_BOOT, MAX_SUBSETS_BOUND, SEED_BOUND
+from bonft._core.checks import MAX_BOOT, MAX_SUBSETS_BOUND, MIN_BOOT, SEED_BOUND
 from bonft._core.jsonl import replacing
 
 
@@ -30,10 +30,10 @@ def parse_list(flag: str, text: str | None, cast=int) -> list | None:
 
 
 def check_boot(flag: str, value: int) -> int:
-    """Bootstrap replicates in ``[1, MAX_BOOT]``: more cost time and memory (replicates x k values) and do not
-    move a percentile interval measurably."""
-    if value < 1 or value > MAX_BOOT:
-        raise ValueError(f"{flag} must be between 1 and {MAX_BOOT:,} bootstrap replicates, got {value:,}")
+    """Bootstrap replicates in ``[MIN_BOOT, MAX_BOOT]``: fewer give no percentile interval worth printing (one
+    replicate gave a "95% CI"); more cost time and memory (replicates x k values) and do not move one measurably."""
+    if value < MIN_BOOT or value > MAX_BOOT:
+        raise ValueError(f"{flag} must be between {MIN_BOOT} and {MAX_BOOT:,} bootstrap replicates, got {value:,}")
     return value
 
 

@@ -21,7 +21,7 @@ from typing import Any, Callable, Sequence
 import numpy as np
 from tqdm.auto import tqdm
 
-from bonft._core.checks import MAX_POOL, check_bound, check_fraction, check_int, check_n_boot, check_seed
+from bonft._core.checks import MAX_POOL, MIN_BOOT, check_bound, check_fraction, check_int, check_n_boot, check_seed
 from bonft._core.seeds import derive_seed, float_key
 from bonft.generation.sampling import sample
 from bonft.io import SampleTable, read_samples, write_samples
@@ -195,7 +195,7 @@ def plan_model(
     -> (PlanResult, info).
     """
     if "n_boot" in plan_kwargs:  # the planner's knobs before any sampling (plan_samples checks them all again)
-        check_n_boot(plan_kwargs["n_boot"], min=10)
+        check_n_boot(plan_kwargs["n_boot"], min=MIN_BOOT)
     if plan_kwargs.get("max_k") is not None and check_int("max_k", plan_kwargs["max_k"], min=1) > n:
         raise ValueError(f"max_k must be <= n (n={n}, the samples drawn per prompt), got max_k={plan_kwargs['max_k']}")
     table, info = draw_samples(model, tokenizer, prompts, verifier, temperatures=temperatures, n=n, seed=seed,

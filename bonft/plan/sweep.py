@@ -40,6 +40,7 @@ import numpy as np
 from bonft._core.bootstrap import no_interval_columns
 from bonft._core.checks import (
     MAX_POOL,
+    MIN_BOOT,
     as_float_array,
     check_bound,
     check_finite,
@@ -227,7 +228,7 @@ def plan_pools(
         if not isinstance(p, Pools):
             raise TypeError(f"pools[{t:g}] must be a Pools, got {type(p).__name__}")
     confidence = check_fraction("confidence", confidence, open_low=True, open_high=True)
-    n_boot = check_n_boot(n_boot, min=10)
+    n_boot = check_n_boot(n_boot, min=MIN_BOOT)
     seed = check_seed(seed)
     min_gain = check_real("min_gain", min_gain)
     if max_k is not None:
@@ -338,7 +339,7 @@ def plan_samples(
     temperatures: a subset of the temperatures in the table (default: all of them).
     Mean response length per temperature comes from the ``n_tokens`` column when present.
     """
-    check_n_boot(n_boot, min=10), check_seed(seed)  # the knobs before any work (plan_pools checks them all again)
+    check_n_boot(n_boot, min=MIN_BOOT), check_seed(seed)  # the knobs before any work (plan_pools checks them all again)
     if max_k is not None:
         _check_max_k(max_k)
     if getattr(table, "temperatures", None) is None:

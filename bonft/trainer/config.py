@@ -42,6 +42,7 @@ from bonft._core.checks import (
     MAX_POOL,
     MAX_PROMPTS_PER_STEP,
     MAX_SAMPLES_AT_ONCE,
+    MIN_BOOT,
     check_bound,
     check_choice,
     check_fraction,
@@ -272,7 +273,7 @@ class TrainConfig:
     eval_prompts: int = _f(0,
                            "Evaluate on the first this many held-out prompts; 0 = all heldout_prompts.", group="eval")
     confidence: float = _f(0.95, "Confidence level of the bootstrap intervals.", group="eval")
-    n_boot: int = _f(1000, "Bootstrap resamples of the intervals, <= 1,000,000.", group="eval")
+    n_boot: int = _f(1000, "Bootstrap resamples of the intervals, 10 to 1,000,000.", group="eval")
     # --- checkpoints and logging ---
     save_every: int = _f(100,
                          "Write a checkpoint every this many optimizer steps (both stages); 0 = only at the end"
@@ -487,7 +488,7 @@ def check_work_sizes(c: TrainConfig) -> None:
     """The keys that size a step's work or memory, each against its documented bound (bonft._core.checks)."""
 
     check_seed(c.seed)
-    check_n_boot(c.n_boot)
+    check_n_boot(c.n_boot, min=MIN_BOOT)
     pool = "samples per prompt: a pool is sampled, scored and credited at once"
     check_bound("n", c.n, max=MAX_POOL, why=pool)
     check_bound("eval_samples", c.eval_samples, max=MAX_POOL, why=pool)
