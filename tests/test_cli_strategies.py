@@ -201,3 +201,30 @@ def test_vote_estimates_show_a_progress_bar_on_a_terminal_unless_quiet(tmp_path,
     assert main(["plan", "--samples", str(p), "--strategy", "majority_vote", "--n-boot", "20", "--quiet"]) == 0
     assert main(["plan", "--samples", str(p), "--n-boot", "20", "--quiet"]) == 2
     assert "--quiet applies to --model only" in capsys.readouterr().err
+
+
+def test_strategy_plan_selects_a_float32_temperature_by_the_value_typed(tmp_path):
+    # a file that stored 0.7 as float32 (0.699999988079071) holds the temperature 0.7 under the one rule of every
+    # command (equal as float32); the values are the brute-force ones of that temperature's pools
+    rows = [{"prompt_id": p, "i": i, "score": s, "reward": r, "answer": a, "temperature": float(np.float32(t))}
+            for t in (0.7, 1.0) for p, pool in POOLS.items() for i, (a, s, r) in enumerate(pool)]
+    path = tmp_path / "t32.jsonl"
+    path.write_text("\n".join(json.dumps(r) for r in rows) + "\n")
+    out = tmp_path / "plan.json"
+    assert main(["plan", "--samples", str(path), "--strategy", "majority_vote,best_of_k", "--temperatures", "0.7",
+                 "--max-k", "2", "--n-boot", "20", "--json", str(out)]) == 0
+    for row in json.loads(out.read_text())["best_by_k"]:
+        k = row["k"]
+        best = max(np.mean([f(p, k) for p in POOLS.values()]) for f in (_majority, _best_of_k))
+        assert abs(row["value"] - best) < 1e-12 and abs(row["temperature"] - 0.7) < 1e-7
+    assert main(["plan", "--samples", str(path), "--strategy", "best_of_k", "--temperatures", "0.8", "--max-k", "2"]) == 2
+
+
+def test_strategy_ks_above_a_short_pool_names_that_prompt(tmp_path, capsys):
+    rows = [{"prompt_id": p, "i": i, "score": s, "reward": r, "answer": a}
+            for p, pool in POOLS.items() for i, (a, s, r) in enumerate(pool) if not (p == "p2" and i >= 3)]
+    path = tmp_path / "short.jsonl"
+    path.write_text("\n".join(json.dumps(r) for r in rows) + "\n")
+    assert main(["estimate", str(path), "--strategy", "majority_vote", "--ks", "4"]) == 2
+    assert ("--ks must be <= the smallest pool (n=3: prompt 'p2'; the largest holds 5), got 4"
+            in capsys.readouterr().err)

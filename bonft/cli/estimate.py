@@ -4,7 +4,14 @@ from __future__ import annotations
 import argparse
 import os
 
-from bonft.cli.options import add_duplicates_flag, add_plot_dir, check_sizes, parse_list, write_curve_outputs
+from bonft.cli.options import (
+    add_duplicates_flag,
+    add_plot_dir,
+    check_ks_in_pools,
+    check_sizes,
+    parse_list,
+    write_curve_outputs,
+)
 from bonft.cli.strategy_tables import add_strategy_arguments, check_strategy_options
 from bonft.cli.strategy_tables import run_estimate as _run_strategies
 
@@ -86,18 +93,8 @@ def run(args) -> int:
     curves, blocks = {}, []
     for t in temps if len(temps) > 1 else [None]:
         keys, s, r = group_pools(table, temperature=t)
-        sizes = [len(x) for x in s]
-        n_min = min(sizes)
-        if ks is not None and max(ks) > n_min == max(sizes):
-            raise ValueError(f"--ks must be <= the smallest pool (n={n_min}), got {max(ks)}")
-        if ks is not None and max(ks) > n_min:
-            short = keys[sizes.index(n_min)]
-            at = "" if t is None else f" at temperature {t:g}"
-            raise ValueError(f"--ks must be <= the smallest pool (n={n_min}: prompt {short!r}{at}; the largest holds "
-                             f"{max(sizes)}), got {max(ks)}: one short pool caps k for every prompt, so lower --ks or "
-                             f"leave that prompt out")
-        if ks is not None and min(ks) < 1:
-            raise ValueError(f"--ks must be >= 1, got {min(ks)}")
+        check_ks_in_pools(ks, keys, s, t)
+        n_min = min(len(x) for x in s)
         summ = summarize(s, r, ks=ks if ks is not None else default_ks(n_min),
                          confidence=args.confidence, n_boot=args.n_boot, seed=args.seed)
         label = "" if t is None else f"T={t:g}"

@@ -37,6 +37,25 @@ def check_boot(flag: str, value: int) -> int:
     return value
 
 
+def check_ks_in_pools(ks, keys, pools, temperature=None) -> None:
+    """``--ks`` against the pools of a samples file (``keys``: their prompt ids): a k above the smallest pool is
+    refused naming that prompt (and ``temperature``), since one short pool caps k for every prompt."""
+    if ks is None:
+        return
+    if min(ks) < 1:
+        raise ValueError(f"--ks must be >= 1, got {min(ks)}")
+    sizes = [len(x) for x in pools]
+    n_min = min(sizes)
+    if max(ks) > n_min == max(sizes):
+        raise ValueError(f"--ks must be <= the smallest pool (n={n_min}), got {max(ks)}")
+    if max(ks) > n_min:
+        short = keys[sizes.index(n_min)]
+        at = "" if temperature is None else f" at temperature {temperature:g}"
+        raise ValueError(f"--ks must be <= the smallest pool (n={n_min}: prompt {short!r}{at}; the largest holds "
+                         f"{max(sizes)}), got {max(ks)}: one short pool caps k for every prompt, so lower --ks or "
+                         f"leave that prompt out")
+
+
 def check_seed(flag: str, value: int) -> int:
     """A seed in ``[0, 2**63)``: seeds are kept as int64 and ``torch.manual_seed`` overflows from 2**64."""
     if not 0 <= value < SEED_BOUND:

@@ -6,9 +6,9 @@ import os
 
 import numpy as np
 
-from bonft.cli.options import no_empty_items, parse_list, write_curve_outputs, write_json_atomic
+from bonft.cli.options import check_ks_in_pools, no_empty_items, parse_list, write_curve_outputs, write_json_atomic
 from bonft.estimate import default_ks
-from bonft.io import group_pools, temperatures_of
+from bonft.io import group_pools, same_temperature, temperature_label, temperatures_of
 from bonft.viz import plot_strategy_curves
 
 STRATEGY_HELP = ("comma-separated inference strategies to compare: best_of_k (verifier picks), majority_vote "
@@ -76,9 +76,8 @@ def _curves(table, t, names, ks, args):
     pools = group_pools(table, temperature=t, with_answers=need_answers)
     s, r = pools[1], pools[2]
     a = pools[3] if need_answers else None
+    check_ks_in_pools(ks, pools[0], s, t)
     n_min = min(len(x) for x in s)
-    if ks is not None and (max(ks) > n_min or min(ks) < 1):
-        raise ValueError(f"--ks must be in [1, n] with n = {n_min} (the smallest pool), got {ks}")
     use = ks if ks is not None else default_ks(n_min)
     s = s if any(get_strategy(n).uses_scores for n in names) else None
     return compare_strategies(names, ks=use, rewards=r, scores=s, answers=a, confidence=args.confidence,
@@ -113,11 +112,12 @@ def run_plan(args, table, temps_wanted) -> int:
 
     names = strategy_names(args.strategy)
     temps = temperatures_of(table) or [None]
-    if temps_wanted:
-        missing = [t for t in temps_wanted if t not in temps]
+    if temps_wanted:  # a temperature is the file's when equal as float32 (io.same_temperature)
+        missing = [t for t in temps_wanted if not any(same_temperature(t, f) for f in temps if f is not None)]
         if missing:
-            raise ValueError(f"--temperatures must be in the file's {temps}, got {missing}")
-        temps = list(temps_wanted)
+            raise ValueError(f"--temperatures must be in the file's [{', '.join(temperature_label(f) for f in temps if f is not None)}], "
+                             f"got {missing}")
+        temps = [next(f for f in temps if same_temperature(t, f)) for t in temps_wanted]
     ks = None if args.max_k is None else list(range(1, args.max_k + 1))
     grid = {t: _curves(table, t if len(temperatures_of(table)) > 1 else None, names, ks, args) for t in temps}
     first = next(iter(grid.values()))
