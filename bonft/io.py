@@ -35,8 +35,6 @@ from __future__ import annotations
 import json
 import math
 import os
-import stat
-import tempfile
 import warnings
 from dataclasses import dataclass
 from typing import Any, Iterable, Mapping, Sequence
@@ -44,7 +42,7 @@ from typing import Any, Iterable, Mapping, Sequence
 import numpy as np
 
 from bonft._core.checks import as_float_array
-from bonft._core.jsonl import decode_utf8, parse_object, unique_object
+from bonft._core.jsonl import decode_utf8, parse_object, replacing, unique_object
 
 __all__ = ["SampleTable", "DuplicateRowsWarning", "FailedVerdictsWarning", "read_samples", "write_samples", "group_pools",
            "temperatures_of", "same_temperature", "temperature_label"]
@@ -407,20 +405,6 @@ class _RowCheck:
             raise ValueError("rows must hold at least one sample, got none (read_samples refuses an empty file)")
 
 
-def _umask() -> int:
-    """The process's umask (Linux: read from /proc; elsewhere set and restored at once)."""
-    try:
-        with open("/proc/self/status", encoding="ascii") as f:
-            for line in f:
-                if line.startswith("Umask:"):
-                    return int(line.split()[1], 8)
-    except (OSError, ValueError):
-        pass
-    mask = os.umask(0o022)
-    os.umask(mask)
-    return mask
-
-
 def _plain(v: Any) -> Any:
     """numpy scalars -> Python scalars (what ``json`` writes)."""
     return v.item() if isinstance(v, np.generic) else v
@@ -462,32 +446,18 @@ def write_samples(path, rows: Iterable[dict]) -> int:
         raise ValueError(f"path must be a file path, got a directory: {path}")
     if not os.path.isdir(os.path.dirname(target)):
         raise FileNotFoundError(f"path's folder does not exist: {os.path.dirname(target)} (path={path})")
-    try:
-        mode = stat.S_IMODE(os.stat(target).st_mode)
-    except FileNotFoundError:
-        mode = 0o666 & ~_umask()
-    fd, tmp = tempfile.mkstemp(prefix=".samples-", suffix=".tmp", dir=os.path.dirname(target))
     count = 0
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8") as f:
-            encode = json.JSONEncoder(separators=(",", ":"), allow_nan=False, default=_json_default).encode
-            for i, row in enumerate(rows):
-                if not whole:
-                    check(row)  # before the row is written
-                try:
-                    f.write(encode(row) + "\n")
-                except (TypeError, ValueError) as e:
-                    raise type(e)(f"rows[{i}] cannot be written as JSON: {e}") from None
-                count += 1
-            check.finish()
-            f.flush()
-            os.fchmod(f.fileno(), mode)
-            os.fsync(f.fileno())
-        os.replace(tmp, target)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
+    with replacing(path) as f:  # a temporary file beside the target, renamed onto it once whole
+        encode = json.JSONEncoder(separators=(",", ":"), allow_nan=False, default=_json_default).encode
+        for i, row in enumerate(rows):
+            if not whole:
+                check(row)  # before the row is written
+            try:
+                f.write(encode(row) + "\n")
+            except (TypeError, ValueError) as e:
+                raise type(e)(f"rows[{i}] cannot be written as JSON: {e}") from None
+            count += 1
+        check.finish()
     return count
 
 

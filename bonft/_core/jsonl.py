@@ -75,9 +75,7 @@ def replacing(path, *, binary: bool = False) -> Iterator[IO]:
     try:
         mode = stat.S_IMODE(os.stat(target).st_mode)
     except FileNotFoundError:
-        umask = os.umask(0)
-        os.umask(umask)
-        mode = 0o666 & ~umask
+        mode = 0o666 & ~_umask()
     fd, tmp = tempfile.mkstemp(prefix=f".{os.path.basename(target)}.", suffix=".tmp", dir=folder)
     try:
         with os.fdopen(fd, "wb" if binary else "w", **({} if binary else {"encoding": "utf-8"})) as fh:
@@ -96,6 +94,20 @@ def replacing(path, *, binary: bool = False) -> Iterator[IO]:
             os.fsync(dir_fd)
         finally:
             os.close(dir_fd)
+
+
+def _umask() -> int:
+    """The process's umask (Linux: read from /proc; elsewhere set and restored at once: a thread creating a file meanwhile would get it)."""
+    try:
+        with open("/proc/self/status", encoding="ascii") as f:
+            for line in f:
+                if line.startswith("Umask:"):
+                    return int(line.split()[1], 8)
+    except (OSError, ValueError):
+        pass
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return mask
 
 
 def replace_text(path, text: str) -> None:
