@@ -502,6 +502,8 @@ def test_a_peer_killed_mid_step_is_named_with_the_step_and_the_intact_checkpoint
     monkeypatch.setenv("PYTHONPATH", os.pathsep.join([str(SCRIPTS), os.environ.get("PYTHONPATH", "")]))
     run = tmp_path / "run"
     cfg = {**TRAIN_CFG, "warm_start_steps": 0, "rl_steps": 500, "save_every": 1, "run_dir": str(run)}
+    for key in ("warm_start_batch_size", "warm_start_lr"):  # read only with a warm start
+        cfg.pop(key, None)
     (tmp_path / "cfg.json").write_text(json.dumps(cfg))
     procs = launch("train_ranks.py", [0, 1], 2, tmp_path / "cfg.json", extra_env={"BONFT_DIST_TIMEOUT_S": "10"})
     try:
