@@ -228,3 +228,17 @@ def test_strategy_ks_above_a_short_pool_names_that_prompt(tmp_path, capsys):
     assert main(["estimate", str(path), "--strategy", "majority_vote", "--ks", "4"]) == 2
     assert ("--ks must be <= the smallest pool (n=3: prompt 'p2'; the largest holds 5), got 4"
             in capsys.readouterr().err)
+
+
+def test_strategy_plan_with_a_shorter_pool_at_a_later_temperature(tmp_path, capsys):
+    # the k grid is one for every temperature, up to the smallest pool of them all (it was the first temperature's,
+    # and a later temperature's shorter pool crashed the table with an IndexError); a column of one value prints
+    # "no spread", as bonft estimate does
+    rows = [{"prompt_id": f"q{p}", "i": i, "score": float(i), "reward": i % 2, "answer": str(i % 2), "temperature": t}
+            for t in (0.5, 1.0) for p in range(10) for i in range(2 if (t, p) != (1.0, 0) else 1)]
+    path = tmp_path / "short_later.jsonl"
+    path.write_text("\n".join(json.dumps(r) for r in rows) + "\n")
+    assert main(["plan", "--samples", str(path), "--strategy", "best_of_k,majority_vote", "--n-boot", "20"]) == 0
+    out = capsys.readouterr().out
+    table = out[out.index("best servable strategy"):].splitlines()
+    assert len(table) == 3 and table[2].split()[:2] == ["1", "best_of_k"] and table[2].endswith("no spread")

@@ -241,3 +241,22 @@ def test_a_confidence_level_is_printed_as_given_never_rounded_to_100():
     assert [confidence_label(c) for c in (0.95, 0.9999999, 0.975, 0.07)] == ["95%", "99.99999%", "97.5%", "7%"]
     s = summarize(np.zeros((10, 3)), np.tile([0.0, 1.0, 0.5], (10, 1)), ks=[1], confidence=0.9999999, n_boot=50)
     assert "99.99999% CI" in s.table() and "100%" not in s.table()
+
+
+def test_one_value_from_pools_of_different_sizes_has_no_spread_despite_rounding():
+    # rewards alternating 0.2 / 0.9 in pools of 6, 10, 14, 22 and 30 samples: every pool's mean reward is 0.55, which
+    # the estimators give as 0.55, 0.5499999999999999 or 0.5499999999999998 (checked below):
+    # a column of one value up to rounding has no spread, for pass@1 as for best-of-1 (one table printed both ways)
+    from bonft._core.bootstrap import no_interval_columns
+    from bonft.estimate import pass_at_k_per_prompt, summarize
+
+    sizes = [6, 10, 14, 22, 30] * 4
+    rewards = [np.resize([0.2, 0.9], n) for n in sizes]
+    scores = [np.arange(n, dtype=float) for n in sizes]
+    v = pass_at_k_per_prompt(rewards, ks=[1])[:, 0]
+    assert np.abs(v - 0.55).max() <= 4e-16
+    assert len(set(v.tolist())) > 1  # rounding differs between pool sizes
+    assert no_interval_columns(v, (0.0, 1.0)).tolist() == [True]
+    s = summarize(scores, rewards, ks=[1])
+    assert s.no_interval("pass_at_k").tolist() == [True] and s.no_interval("best_of_k").tolist() == [True]
+    assert no_interval_columns(np.array([0.55, 0.5500001]), None).tolist() == [False]  # a real difference stays one

@@ -19,11 +19,19 @@ def resample_counts(rng: np.random.Generator, P: int, b: int) -> np.ndarray:
     return np.bincount(flat, minlength=b * P).reshape(b, P).astype(np.float64)
 
 
+SPREAD_ULPS = 16  # values within this many float64 ulps of the column's largest magnitude count as equal
+
+
 def zero_spread(values) -> np.ndarray:
-    """``(P, K) -> (K,)`` bool: the columns whose P values are all equal (a bootstrap interval of width 0)."""
+    """``(P, K) -> (K,)`` bool: the columns whose P values are all equal (a bootstrap interval of width 0), up to
+    rounding: within :data:`SPREAD_ULPS` ulps of the column's largest magnitude (per-prompt estimates of one
+    value from pools of different sizes differ in their last bits: 0.55 and 0.5499999999999999)."""
     v = np.asarray(values, dtype=float)
     v = v[:, None] if v.ndim == 1 else v
-    return (v == v[:1]).all(axis=0)
+    if not v.size:
+        return np.ones(v.shape[1], dtype=bool)
+    tol = SPREAD_ULPS * np.finfo(float).eps * np.abs(v).max(axis=0)
+    return (np.abs(v - v[:1]) <= tol).all(axis=0)
 
 
 def no_interval_columns(values, bounds) -> np.ndarray:

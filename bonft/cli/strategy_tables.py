@@ -119,7 +119,10 @@ def run_plan(args, table, temps_wanted) -> int:
                              f"got {missing}")
         temps = [next(f for f in temps if same_temperature(t, f)) for t in temps_wanted]
     ks = None if args.max_k is None else list(range(1, args.max_k + 1))
-    grid = {t: _curves(table, t if len(temperatures_of(table)) > 1 else None, names, ks, args) for t in temps}
+    sel = {t: t if len(temperatures_of(table)) > 1 else None for t in temps}  # the pools' temperature filter
+    if ks is None:  # one k grid for every temperature: up to the smallest pool of them all
+        ks = list(default_ks(min(min(len(x) for x in group_pools(table, temperature=sel[t])[1]) for t in temps)))
+    grid = {t: _curves(table, sel[t], names, ks, args) for t in temps}
     first = next(iter(grid.values()))
     print("best servable strategy (pass_at_k, the best true reward among k, is a ceiling only):")
     print(f"{'k':>6}  {'best strategy':>14}  {'T':>5}  {'V_k':>7}  {'interval':>17}")
@@ -128,9 +131,9 @@ def run_plan(args, table, temps_wanted) -> int:
         servable = [s for s in names if get_strategy(s).servable] or names  # pass_at_k is a ceiling
         best = max(((t, s) for t in grid for s in servable), key=lambda ts: grid[ts[0]].mean[ts[1]][j])
         c = grid[best[0]]
-        t_txt = "-" if best[0] is None else f"{best[0]:g}"
-        print(f"{int(k):>6}  {best[1]:>14}  {t_txt:>5}  {c.mean[best[1]][j]:>7.4f}  "
-              f"[{c.lo[best[1]][j]:.4f}, {c.hi[best[1]][j]:.4f}]")
+        t_txt = "-" if best[0] is None else temperature_label(best[0])
+        ci = "no spread" if c.no_interval(best[1])[j] else f"[{c.lo[best[1]][j]:.4f}, {c.hi[best[1]][j]:.4f}]"
+        print(f"{int(k):>6}  {best[1]:>14}  {t_txt:>5}  {c.mean[best[1]][j]:>7.4f}  {ci}")
         rows.append({"k": int(k), "strategy": best[1], "temperature": best[0], "value": float(c.mean[best[1]][j]),
                      "lo": float(c.lo[best[1]][j]), "hi": float(c.hi[best[1]][j])})
     budgets = parse_list("--budget-samples", args.budget_samples) or []
@@ -138,7 +141,8 @@ def run_plan(args, table, temps_wanted) -> int:
         ok = [r for r in rows if r["k"] <= b]
         if ok:
             r = max(ok, key=lambda r: r["value"])
-            print(f"budget {b} samples/prompt: {r['strategy']} at T={r['temperature']} with k={r['k']}: "
+            t_txt = "-" if r["temperature"] is None else temperature_label(r["temperature"])
+            print(f"budget {b} samples/prompt: {r['strategy']} at T={t_txt} with k={r['k']}: "
                   f"V_k = {r['value']:.4f} [{r['lo']:.4f}, {r['hi']:.4f}]")
     if args.json:
         write_json_atomic(args.json, {"best_by_k": rows, "grid": {str(t): g.to_dict() for t, g in grid.items()}})

@@ -16,7 +16,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from bonft._core.bootstrap import confidence_label
+from bonft._core.bootstrap import confidence_label, no_interval_columns
 from bonft._core.checks import check_ks
 from bonft.estimate.intervals import MIN_BOOT_PROMPTS, bootstrap_ci, reward_bounds
 from bonft.strategies.base import _unread_field, get_strategy
@@ -38,6 +38,12 @@ class StrategyCurves:
     mc_se: dict = field(default_factory=dict)
     per_prompt: dict = field(default_factory=dict, repr=False)
     confidence: float = 0.95
+    bounds: tuple | None = None  # the rewards' (0, 1) when every reward is in [0, 1] (:func:`reward_bounds`)
+
+    def no_interval(self, name: str) -> np.ndarray:
+        """``(K,)`` bool: the k whose per-prompt values of ``name`` are all equal at neither bound, where the table
+        prints "no spread" (:func:`bonft._core.bootstrap.no_interval_columns`, the rule of ``bonft estimate``)."""
+        return no_interval_columns(self.per_prompt[name], self.bounds)
 
     @property
     def intervals_valid(self) -> bool:
@@ -57,7 +63,7 @@ class StrategyCurves:
         for j, (k, b) in enumerate(zip(self.ks, self.best())):
             cells = []
             for s in self.names:
-                ci = f"[{self.lo[s][j]:.3f}, {self.hi[s][j]:.3f}]" if ok else "[n/a]"
+                ci = ("no spread" if self.no_interval(s)[j] else f"[{self.lo[s][j]:.3f}, {self.hi[s][j]:.3f}]") if ok else "[n/a]"
                 cells.append(f"{self.mean[s][j]:.4f} {ci}".center(w))
             lines.append(f"{int(k):>6}  " + "  ".join(cells) + f"  {b}")
         sampled = [s for s in self.names if (self.mc_se[s] > 0).any()]
@@ -73,6 +79,7 @@ class StrategyCurves:
              "intervals_valid": self.intervals_valid, "best": self.best(), "strategies": {}}
         for s in self.names:
             d["strategies"][s] = {key: [float(x) for x in getattr(self, key)[s]] for key in ("mean", "lo", "hi", "mc_se")}
+            d["strategies"][s]["no_interval"] = [bool(x) for x in self.no_interval(s)]
             d["strategies"][s]["per_prompt"] = np.asarray(self.per_prompt[s], dtype=float).tolist()
         json.dumps(d, allow_nan=False)
         return d
@@ -117,7 +124,7 @@ def compare_strategies(strategies, *, ks, rewards, scores=None, answers=None, co
         v, se = st.estimate(ks=ks, rewards=rewards, scores=scores if st.uses_scores else None,
                             answers=answers if st.uses_answers else None, **opts)
         if out is None:
-            out = StrategyCurves(ks=np.asarray(ks), n_prompts=v.shape[0], names=[], confidence=confidence)
+            out = StrategyCurves(ks=np.asarray(ks), n_prompts=v.shape[0], names=[], confidence=confidence, bounds=bounds)
         m, lo, hi = bootstrap_ci(v, confidence=confidence, n_boot=n_boot, seed=seed, bounds=bounds)
         out.names.append(st.name)
         out.mean[st.name], out.lo[st.name], out.hi[st.name] = m, lo, hi
