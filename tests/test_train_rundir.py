@@ -507,17 +507,25 @@ def test_a_fresh_run_writes_its_own_anchor_over_one_left_in_the_directory(tmp_pa
         T.train(cfg, resume=True, progress=False)
 
 
-def test_resume_that_finds_nothing_to_continue_is_refused(tmp_path):
+def test_resume_with_nothing_to_continue(tmp_path):
+    # a typo is refused; a run stopped before its first checkpoint (a kill or a full disk while writing it: the
+    # message says "rerun with --resume") starts again from step 0 with its lines kept aside, and ends as a fresh run
     cfg = tiny(tmp_path, "typo")
     with pytest.raises(ValueError, match=r"^--resume: run_dir '.*typo' does not exist; check --output"):
         T.train(cfg, resume=True, progress=False)
     assert not Path(cfg.run_dir).exists()
-    Path(cfg.run_dir).mkdir()
-    (Path(cfg.run_dir) / "metrics.jsonl").write_text('{"kind": "train", "step": 1}\n')  # killed before its first checkpoint
-    with pytest.raises(ValueError, match=r"^--resume: .*typo has no checkpoint to continue from, but its metrics.jsonl "
-                                         r"holds 1 line\(s\)"):
+    out = Path(cfg.run_dir)
+    (out / "checkpoints" / "step-00000002.tmp-999").mkdir(parents=True)  # killed while writing its first checkpoint
+    (out / "metrics.jsonl").write_text('{"kind": "train", "step": 1}\n')
+    with pytest.warns(UserWarning, match=r"has no checkpoint to continue from .* starts again from step 0; the 1 "
+                                         r"metrics line\(s\) it had are kept in .*metrics.stopped.jsonl"):
         T.train(cfg, resume=True, progress=False)
-    assert (Path(cfg.run_dir) / "metrics.jsonl").read_text() == '{"kind": "train", "step": 1}\n'
+    assert (out / "metrics.stopped.jsonl").read_text() == '{"kind": "train", "step": 1}\n'
+    fresh = tiny(tmp_path, "fresh")
+    T.train(fresh, progress=False)
+    strip = lambda p: [{k: v for k, v in json.loads(ln).items() if "time" not in k and "per_s" not in k}  # noqa: E731
+                       for ln in p.read_text().splitlines()]  # every number but the timings
+    assert strip(out / "metrics.jsonl") == strip(Path(fresh.run_dir) / "metrics.jsonl")
     afile = tmp_path / "afile"
     afile.write_text("x")
     with pytest.raises(ValueError, match=r"^run_dir '.*afile' is a file, not a directory"):

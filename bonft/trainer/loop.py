@@ -52,6 +52,7 @@ from bonft.trainer.adapters import AdapterOff, is_adapter_model
 from bonft.trainer.checkpoint import (
     CheckpointError,
     latest_checkpoint,
+    list_checkpoints,
     load_state,
     prune_checkpoints,
     quiet_transformers,
@@ -90,8 +91,9 @@ def train(cfg: TrainConfig, *, resume: bool = False, progress: bool = True) -> d
     """Run (or resume) a training run; returns the summary also written to ``RUN/summary.json``.
 
     Ctrl-C writes a checkpoint of the last completed step before re-raising ``KeyboardInterrupt``.
-    ``resume`` on a ``run_dir`` that does not exist, or that holds metrics but no checkpoint, is a
-    ``ValueError`` (nothing to continue; a fresh start would overwrite the metrics).
+    ``resume`` on a ``run_dir`` that does not exist is a ``ValueError`` (a typo, nothing to continue); on one
+    whose run stopped before its first checkpoint it starts that run again from step 0, with a warning, and
+    keeps the metrics lines it had in ``metrics.stopped.jsonl``.
     A non-finite loss or gradient stops the run with ``ValueError`` before the optimizer step;
     the checkpoint then written holds the weights of the last good step (the failed step is not applied).
 
@@ -251,13 +253,16 @@ def _check_shares(cfg: TrainConfig, world: int) -> None:
         check_divisible("warm_start_batch_size", cfg.warm_start_batch_size, world)
 
 
+STOPPED_METRICS = "metrics.stopped.jsonl"  # the lines of a run that stopped before its first checkpoint
+
+
 def _restore(run: Run, resume: bool) -> tuple[int, dict | None, bool]:
     """Rank 0 picks the checkpoint (or refuses); every rank loads it. Writes config.toml, trims metrics.jsonl.
 
     -> (step, the checkpoint's state or None, whether metrics.jsonl holds an evaluation of that step).
     Both files are replaced atomically: a kill at any moment leaves the old file or the new one.
     """
-    out, ckpt, problem, rows, kept, evaluated = run.out, None, None, [], [], False
+    out, ckpt, problem, rows, kept, evaluated, stopped = run.out, None, None, [], [], False, False
     path = out / "metrics.jsonl"
     if run.is_main:
         try:  # a checkpoint error goes to every rank, so none waits out the process-group timeout
@@ -285,10 +290,8 @@ def _restore(run: Run, resume: bool) -> tuple[int, dict | None, bool]:
         if resume and ckpt is None and not problem and (out / "summary.json").exists():
             problem = f"--resume: {out} holds a finished run without checkpoints"
         elif resume and ckpt is None and not problem and rows:
-            problem = (f"--resume: {out} has no checkpoint to continue from, but its metrics.jsonl holds {len(rows)} "
-                       f"line(s) of a run stopped before its first checkpoint; to start that run again, move or delete "
-                       f"{path} and rerun without --resume (or choose another --output)")
-        elif not resume and (out / "checkpoints").exists():
+            stopped = True  # a run stopped before its first checkpoint: it starts again, its lines kept aside
+        elif not resume and list_checkpoints(out):  # unfinished checkpoint folders were removed above
             problem = f"run_dir {str(out)!r} already holds checkpoints; pass --resume or choose another --output"
     ckpt, problem, evaluated = broadcast_object((ckpt, problem, evaluated), run.ctx)
     if problem:
@@ -300,6 +303,13 @@ def _restore(run: Run, resume: bool) -> tuple[int, dict | None, bool]:
         with quiet_transformers():
             run.model, run.tokenizer = reload_policy(run.model, ckpt, device=run.device)  # an adapter run: its weights only
         set_rng_state(state["rng"])
+    if run.is_main and stopped:
+        aside = out / STOPPED_METRICS
+        with _writing(run, aside, "the stopped run's metrics to"):
+            os.replace(path, aside)
+        warnings.warn(f"--resume: {out} has no checkpoint to continue from (its run stopped before the first one): "
+                      f"it starts again from step 0; the {len(rows)} metrics line(s) it had are kept in {aside}",
+                      stacklevel=3)
     if run.is_main:
         with _writing(run, out / "config.toml", "the configuration"):
             replace_text(out / "config.toml", to_toml(run.cfg))

@@ -18,7 +18,7 @@ from tqdm.auto import tqdm
 from bonft.estimate.paired import per_prompt_curves
 from bonft.io import group_pools, read_samples
 from bonft.tasks import TASKS, get_task
-from bonft.trainer.checkpoint import latest_checkpoint, list_checkpoints, quiet_transformers
+from bonft.trainer.checkpoint import latest_checkpoint, quiet_transformers
 from bonft.trainer.config import MODEL_KEYS, TrainConfig, read_recipe, unread_keys
 from bonft.trainer.demo.schedule import Workers, run_jobs
 from bonft.trainer.demo.stats import LABELS, best_temperatures, seed_table
@@ -138,12 +138,8 @@ def _stage(cfg: TrainConfig, progress: bool) -> dict:
         print(f"{cfg.name}: reusing the finished run in {cfg.run_dir}")
         return done
     out = Path(cfg.run_dir)
-    resume = (out / "checkpoints").exists()  # the trainer tidies what a kill left there, holding the run's lock
-    if resume and not list_checkpoints(out) and (out / "metrics.jsonl").exists():
-        # stopped before its first checkpoint: nothing to continue, so the stage starts again from step 0 (the
-        # trainer refuses to resume over metrics it cannot continue); its metrics lines are kept aside
-        (out / "metrics.jsonl").replace(out / "metrics.stopped.jsonl")
-    train(cfg, resume=resume, progress=progress)
+    # a stage stopped before its first checkpoint starts again from step 0 (the trainer keeps its lines aside)
+    train(cfg, resume=(out / "checkpoints").exists(), progress=progress)
     return _final_eval(out)
 
 
