@@ -552,3 +552,29 @@ def test_a_summary_that_cannot_be_written_leaves_the_previous_one(tmp_path, monk
         T.train(cfg, resume=True, progress=False)
     monkeypatch.undo()
     assert path.read_bytes() == before and not list(Path(cfg.run_dir).glob(".*.tmp"))
+
+
+def test_a_full_disk_while_the_weights_are_written_is_one_line_too(tmp_path, monkeypatch):
+    # safetensors' writer reports a full disk as its own SafetensorError (a plain Exception), not an OSError: with
+    # SGD (no optimizer state) the weights are a checkpoint's largest file, so this is the usual full-disk case
+    from safetensors import SafetensorError
+
+    import bonft.trainer.checkpoint as C
+
+    real, calls = C.save_weights, []
+
+    def full(model, directory):
+        calls.append(directory)
+        if len(calls) == 2:  # the second checkpoint
+            raise SafetensorError("Error while serializing: I/O error: No space left on device (os error 28)")
+        return real(model, directory)
+
+    monkeypatch.setattr(C, "save_weights", full)
+    cfg = tiny(tmp_path, "sgd")
+    with pytest.raises(WriteFailed) as err:
+        T.train(cfg, progress=False)
+    ckpts = Path(cfg.run_dir) / "checkpoints"
+    msg = str(err.value)
+    assert msg.startswith(f"could not write the checkpoint {ckpts / 'step-00000004'} (Error while "
+                          f"serializing: I/O error: No space left on device (os error 28))"), msg
+    assert msg.endswith(f"the last verified checkpoint is {ckpts / 'step-00000002'}; free space and rerun with --resume")

@@ -219,10 +219,13 @@ def _mount_of(path: Path) -> str:
 
 
 def is_write_error(err: BaseException) -> bool:
-    """An error a write can raise: any OSError, or torch's serializer failing on its stream (its RuntimeError)."""
+    """An error a write can raise: any OSError, torch's serializer failing on its stream (its RuntimeError), or
+    safetensors' writer failing on the file (its SafetensorError, a plain Exception quoting the OS error)."""
     if isinstance(err, (WriteFailed, RunDirBusy)):
         return False
     if isinstance(err, OSError):
         return True
     text = str(err)
+    if type(err).__name__ == "SafetensorError":  # "Error while serializing: I/O error: No space left on device (os error 28)"
+        return "I/O error" in text or "os error" in text
     return isinstance(err, RuntimeError) and any(s in text for s in ("inline_container", "iostream", "file write", "PytorchStreamWriter"))
