@@ -502,6 +502,20 @@ def test_doubling_gains_at_the_rounding_level_are_not_significant():
     assert "doubling stops paying from k=1" in res.table()
 
 
+def test_doubling_decisions_do_not_depend_on_an_offset_of_the_rewards():
+    # rewards 1e6 + 1e-7 x {0, 1}: the same plan as rewards {0, 1} scaled by 1e-7, a real gain of ~2.5e-8 at 1->2 is
+    # significant (a threshold of 1e-12 of |V| = 1e-6 called it rounding); the rounding allowance is 8 ulps of
+    # |V| (about 1.9e-9 here) plus 1e-12 of the grid's spread
+    rng = np.random.default_rng(3)
+    r01 = (rng.random((40, 16)) < 0.3).astype(float)
+    s = r01 + rng.normal(size=(40, 16))  # a verifier that ranks right samples higher: best-of-k grows with k
+    base = plan_pools({1.0: Pools(s, r01)}, n_boot=200)
+    shifted = plan_pools({1.0: Pools(s, 1e6 + 1e-7 * r01)}, n_boot=200)
+    np.testing.assert_allclose((shifted.value - 1e6) / 1e-7, base.value, atol=0.01)  # ulps of 1e6 are 1.2e-10
+    assert base.doubling[0].lo > 0.05 and shifted.doubling[0].lo > 0.05 * 1e-7  # 1->2: a gain, by its interval
+    assert base.doubling_stops_at == shifted.doubling_stops_at != 1
+
+
 def test_a_column_of_ones_gets_the_exact_interval_at_every_k(tmp_path):
     # every reward 1: V_k = 1 exactly at every k (it was 1.0000000000000002 at some k, which lost the exact interval
     # and made doubling's ulp a significant gain). Clopper & Pearson 1934, 20 of 20: [0.025^(1/20), 1] = [0.8316, 1]

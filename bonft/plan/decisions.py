@@ -15,9 +15,12 @@ from bonft._core.checks import as_float_array, check_finite, check_ks
 from bonft.plan.result import BudgetChoice, DoublingStep, PlanResult, TemperatureFit
 
 BLOCK_CELLS = 4_000_000  # entries of one block of resampling counts (as bonft.estimate.bootstrap_ci)
-# relative to the grid's largest |V|: values agree to ~1e-14 relative (bonft._core.ustat), so a doubling gain whose
-# lower bound is within this of min_gain is not significant (two prompts' rounding is no gain)
+# a doubling gain whose lower bound is within ROUNDING x (the grid's spread of V) + ULPS float64 ulps of its largest
+# |V| of min_gain is rounding, not a gain: the values are computed from each pool's minimum reward up
+# (bonft._core.ustat), so their error scales with the rewards' spread, plus a few ulps of their size (rewards of
+# 1e6 + {0, 1e-7}: a real gain of 2.5e-8 is above it, a V_2 - V_1 of one ulp at 0.6 is not)
 ROUNDING = 1e-12
+ULPS = 8
 
 
 def bootstrap_means(per_prompt: list[np.ndarray], *, paired: bool, n_boot: int, seed: int) -> np.ndarray:
@@ -115,7 +118,7 @@ def finish(*, mode, temps, ks, value, lo, hi, boot, confidence, n_boot, paired, 
         budgets.append(_choose(value, lo, hi, boot, confidence, mask, ks, temps, cost, kind="tokens", budget=b, note=note))
 
     doubling, stops = [], None
-    rounding = ROUNDING * float(np.abs(value).max())  # a gain this close to min_gain is rounding, not a gain
+    rounding = (ROUNDING * float(np.ptp(value)) + ULPS * np.finfo(float).eps * float(np.abs(value).max()))
     k = 1
     while 2 * k <= K:
         t0, t1 = int(best_index[k - 1]), int(best_index[2 * k - 1])
