@@ -151,3 +151,38 @@ def test_a_demo_stage_stopped_before_its_first_checkpoint_starts_again(tmp_path)
     assert [p.name for p in (out / "checkpoints").iterdir()] == ["step-00000002"]
     steps = [json.loads(ln)["step"] for ln in (out / "metrics.jsonl").read_text().splitlines() if '"train"' in ln]
     assert steps == [1, 2]
+
+
+def test_sigterm_to_the_demo_stops_every_stage_with_a_checkpoint_and_a_rerun_finishes(tmp_path):
+    # a scheduler preempting a job sends SIGTERM to its main process: the demo passes a Ctrl-C on to its stage
+    # workers (each checkpoints its last step, as on Ctrl-C) and exits 143 (128 + SIGTERM); no stage keeps
+    # training after it, and the same command then finishes from the checkpoints
+    import signal
+    import subprocess
+    import sys
+    import time
+
+    out = tmp_path / "demo"
+    tiny = ["train_prompts=32", "heldout_prompts=4", "warm_start_steps=3", "warm_start_batch_size=8", "rl_steps=40",
+            "prompts_per_step=4", "n=8", "k=4", "eval_samples=8", "eval_ks=1,8", "layers=1", "width=32", "heads=2",
+            "max_new_tokens=4", "n_boot=20", "threads=1", "workers=3", "snr_every=0", "log_every=1",
+            "plan_temperatures=0.7,1.3", "plan_prompts=4", "plan_n=8"]
+    cmd = [sys.executable, "-m", "bonft.cli", "demo", "--output", str(out), "--quiet", *[a for t in tiny for a in ("--set", t)]]
+    p = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    metrics = out / "reinforce" / "metrics.jsonl"
+    deadline = time.monotonic() + 240
+    while not (metrics.exists() and metrics.read_text().count('"train"') >= 2) and time.monotonic() < deadline:
+        assert p.poll() is None, p.communicate()
+        time.sleep(0.2)
+    p.send_signal(signal.SIGTERM)
+    stdout, stderr = p.communicate(timeout=240)
+    assert p.returncode == 143 and "stopped by SIGTERM; rerun the same command to continue" in stdout, stderr
+    assert "Traceback" not in stderr
+    step = max(int(c.name[5:]) for c in (out / "reinforce" / "checkpoints").iterdir())
+    size = metrics.stat().st_size
+    time.sleep(2)
+    assert metrics.stat().st_size == size and step >= 2  # nothing trains on after the demo stopped
+    again = subprocess.run(cmd, capture_output=True, text=True, timeout=400)
+    assert again.returncode == 0, again.stderr[-2000:]
+    results = json.loads((out / "summary.json").read_text())["results"]
+    assert set(results) == {"warm_start", "reinforce", "pass_at_k", "placebo"} and results["reinforce"]["step"] == 40

@@ -6,6 +6,8 @@ import dataclasses
 import inspect
 import re
 
+from bonft.cli.interrupts import EXIT_TERMINATED, Terminated, terminate_as_interrupt
+
 HELP = "the built-in demo: REINFORCE vs a pass@k-aware objective vs a placebo from one warm start (about 3.5 min on 2 CPU cores)"
 DESCRIPTION = (
     "Build a tiny GPT-2-style model, warm-start it on a built-in task (--task: refunds by default; workshop "
@@ -172,19 +174,21 @@ def run(args: argparse.Namespace) -> int:
             raise ValueError(f"--set {key} cannot take effect with --study: {NOT_IN_STUDY[key]}")
     dc = _demo_config(args)
     try:
-        if args.study:
-            sc = study_config(args, dc)
-            try:
-                check_study(dc, sc)  # every study knob, before any training
-            except (ValueError, TypeError) as e:  # name the option that sets the knob
-                knob = re.match(r"[a-z_]*", str(e)).group()
-                if knob in OPTION_OF:
-                    raise type(e)(f"{OPTION_OF[knob]}: {e}") from None
-                raise
-            run_study(dc, sc, progress=not args.quiet)
-        else:
-            run_demo(dc, progress=not args.quiet)
-    except KeyboardInterrupt:
-        print("\ninterrupted; rerun the same command to continue (finished stages are reused)")
-        return 130
+        with terminate_as_interrupt(children=True):  # SIGTERM: every stage checkpoints, as on Ctrl-C
+            if args.study:
+                sc = study_config(args, dc)
+                try:
+                    check_study(dc, sc)  # every study knob, before any training
+                except (ValueError, TypeError) as e:  # name the option that sets the knob
+                    knob = re.match(r"[a-z_]*", str(e)).group()
+                    if knob in OPTION_OF:
+                        raise type(e)(f"{OPTION_OF[knob]}: {e}") from None
+                    raise
+                run_study(dc, sc, progress=not args.quiet)
+            else:
+                run_demo(dc, progress=not args.quiet)
+    except KeyboardInterrupt as e:
+        how = "stopped by SIGTERM" if isinstance(e, Terminated) else "interrupted"
+        print(f"\n{how}; rerun the same command to continue (finished stages are reused)")
+        return EXIT_TERMINATED if isinstance(e, Terminated) else 130
     return 0

@@ -2,12 +2,10 @@
 from __future__ import annotations
 
 import argparse
-import contextlib
 import os
-import signal
 import sys
-import threading
-from typing import Iterator
+
+from bonft.cli.interrupts import EXIT_TERMINATED, Terminated, terminate_as_interrupt
 
 HELP = "fine-tune a model for best-of-N / pass@k from a TOML recipe (warm start + RL)"
 DESCRIPTION = (
@@ -35,34 +33,13 @@ def run(args: argparse.Namespace) -> int:
     overrides = list(args.overrides) + ([f"run_dir={args.output}"] if args.output else [])
     cfg = load_config(args.recipe, overrides)
     try:
-        with _terminate_as_interrupt():
+        with terminate_as_interrupt():
             summary = train(cfg, resume=args.resume, progress=not args.quiet)
     except Terminated:
         print("bonft train: stopped by SIGTERM", file=sys.stderr)
-        return 143
+        return EXIT_TERMINATED
     except KeyboardInterrupt:
         return 130
     if os.environ.get("RANK", "0") == "0":  # under torchrun only rank 0 reports, as only rank 0 writes
         print(f"run directory: {summary['run_dir']}")
     return 0
-
-
-class Terminated(KeyboardInterrupt):
-    """SIGTERM, raised like Ctrl-C so that the trainer checkpoints the last completed step before it stops."""
-
-
-@contextlib.contextmanager
-def _terminate_as_interrupt() -> Iterator[None]:
-    """SIGTERM raises :class:`Terminated` in the main thread for the body (every rank under torchrun, as each runs this)."""
-    if threading.current_thread() is not threading.main_thread():
-        yield
-        return
-
-    def handler(signum, frame):
-        raise Terminated("SIGTERM")
-
-    old = signal.signal(signal.SIGTERM, handler)
-    try:
-        yield
-    finally:
-        signal.signal(signal.SIGTERM, old)

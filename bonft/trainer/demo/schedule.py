@@ -31,7 +31,10 @@ def _serve(conn, preload: tuple[str, ...]) -> None:
     if job is None:
         return
     fn, args = job
-    fn(*args)
+    try:
+        fn(*args)
+    except KeyboardInterrupt:  # Ctrl-C, or SIGTERM passed on: the trainer has said what it checkpointed
+        raise SystemExit(130) from None
 
 
 class Workers:
