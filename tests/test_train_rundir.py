@@ -517,10 +517,13 @@ def test_resume_with_nothing_to_continue(tmp_path):
     out = Path(cfg.run_dir)
     (out / "checkpoints" / "step-00000002.tmp-999").mkdir(parents=True)  # killed while writing its first checkpoint
     (out / "metrics.jsonl").write_text('{"kind": "train", "step": 1}\n')
+    (out / ".config.toml.k2x9.tmp").write_text("name = ")  # a kill during an atomic write left its temporary file
+    (out / ".my-notes.tmp").write_text("mine")  # not the run's: stays
     with pytest.warns(UserWarning, match=r"has no checkpoint to continue from .* starts again from step 0; the 1 "
                                          r"metrics line\(s\) it had are kept in .*metrics.stopped.jsonl"):
         T.train(cfg, resume=True, progress=False)
     assert (out / "metrics.stopped.jsonl").read_text() == '{"kind": "train", "step": 1}\n'
+    assert [f.name for f in out.glob(".*.tmp")] == [".my-notes.tmp"]
     fresh = tiny(tmp_path, "fresh")
     T.train(fresh, progress=False)
     strip = lambda p: [{k: v for k, v in json.loads(ln).items() if "time" not in k and "per_s" not in k}  # noqa: E731

@@ -254,6 +254,8 @@ def _check_shares(cfg: TrainConfig, world: int) -> None:
 
 
 STOPPED_METRICS = "metrics.stopped.jsonl"  # the lines of a run that stopped before its first checkpoint
+# the stems of the files a run replaces whole (bonft._core.jsonl.replacing writes ".NAME.<random>.tmp" beside them)
+RUN_FILES = ("config", "metrics", "summary", "curves", "heldout_samples")
 
 
 def _restore(run: Run, resume: bool) -> tuple[int, dict | None, bool]:
@@ -267,6 +269,9 @@ def _restore(run: Run, resume: bool) -> tuple[int, dict | None, bool]:
     if run.is_main:
         try:  # a checkpoint error goes to every rank, so none waits out the process-group timeout
             recover_checkpoints(out)  # a re-save cut between its renames, unfinished folders
+            for leftover in out.glob(".*.tmp"):  # a kill during an atomic write leaves its temporary file
+                if leftover.is_file() and leftover.name.split(".")[1] in RUN_FILES:
+                    leftover.unlink(missing_ok=True)
             ckpt = latest_checkpoint(out) if resume else None
             changed, step_sizes = resume_changes(_saved_config(ckpt), run.cfg) if ckpt is not None else ([], [])
             if step_sizes and not changed:
