@@ -144,3 +144,15 @@ def test_paired_comparison_gives_no_zero_width_interval():
     # without a known range the means have no interval either, and are listed
     comp = paired_comparison(curves, ks=[1, 4], baselines=["a"], n_boot=200)
     assert math.isnan(comp["means"]["a"][0][1]) and "a pass@1" in comp["no_spread"]
+
+
+def test_paired_bootstrap_near_the_edge_of_float64_is_finite_and_exact():
+    # values of 1.7e308: a difference of opposite signs or a sum of 12 of them overflowed to inf/NaN (with only
+    # numpy's warning); at 2^-64 scale the mean is exact, and equals the same computation on values 2^-64 as large
+    from bonft.estimate.paired import paired_bootstrap
+
+    rng = np.random.default_rng(0)
+    a, b = rng.uniform(0.5, 0.9, 12), rng.uniform(-0.9, -0.5, 12)
+    small = paired_bootstrap(a, b, n_boot=200, seed=1)
+    big = paired_bootstrap(a * 2.0**1023, b * 2.0**1023, n_boot=200, seed=1)
+    assert all(np.isfinite(big)) and big == tuple(x * 2.0**1023 for x in small)

@@ -163,12 +163,15 @@ def paired_bootstrap(a, b, *, n_boot: int = 2000, seed: int = 0, confidence: flo
         raise ValueError(f"b must hold as many prompts as a (P={len(a)}; paired values, the same prompts in the same "
                          f"order), got {len(b)}")
     _check_interval_options(n_boot, seed, confidence)
-    d = a - b
+    # near float64's edge a difference or a sum of P values overflows: work at 2^-64 scale (exact for powers of two)
+    scale = 2.0**64 if max(float(np.abs(a).max()), float(np.abs(b).max())) > 2.0**960 else 1.0
+    d = a / scale - b / scale
     rng = np.random.default_rng(seed)
     idx = rng.integers(0, len(d), size=(n_boot, len(d)))
     boot = d[idx].mean(1)
     alpha = (1 - confidence) / 2
-    return float(d.mean()), float(np.quantile(boot, alpha)), float(np.quantile(boot, 1 - alpha))
+    return (float(d.mean() * scale), float(np.quantile(boot, alpha) * scale),
+            float(np.quantile(boot, 1 - alpha) * scale))
 
 
 def bootstrap_mean(a, *, n_boot: int = 2000, seed: int = 0, confidence: float = 0.95) -> tuple[float, float, float]:
