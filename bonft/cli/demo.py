@@ -160,6 +160,7 @@ def study_config(args, dc):
 def run(args: argparse.Namespace) -> int:
     from bonft.cli.options import check_seed
     from bonft.trainer.demo import run_demo, run_study
+    from bonft.trainer.demo.schedule import busy_pids
     from bonft.trainer.demo.study import check_study
 
     if args.seed is not None:
@@ -174,7 +175,7 @@ def run(args: argparse.Namespace) -> int:
             raise ValueError(f"--set {key} cannot take effect with --study: {NOT_IN_STUDY[key]}")
     dc = _demo_config(args)
     try:
-        with terminate_as_interrupt(children=True):  # SIGTERM: every stage checkpoints, as on Ctrl-C
+        with terminate_as_interrupt(children=busy_pids):  # SIGTERM: every running stage checkpoints, as on Ctrl-C
             if args.study:
                 sc = study_config(args, dc)
                 try:

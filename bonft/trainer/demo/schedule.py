@@ -16,7 +16,15 @@ import multiprocessing as mp
 import time
 from typing import Callable
 
-__all__ = ["Workers", "run_jobs"]
+__all__ = ["Workers", "run_jobs", "busy_pids"]
+
+_BUSY: list = []  # the worker processes handed a job (those still alive run it)
+
+
+def busy_pids() -> list[int]:
+    """Process ids of the workers running a job now (each takes SIGINT as Ctrl-C: its stage checkpoints)."""
+    _BUSY[:] = [p for p in _BUSY if p.is_alive()]
+    return [p.pid for p in _BUSY]
 
 
 def _serve(conn, preload: tuple[str, ...]) -> None:
@@ -63,6 +71,8 @@ class Workers:
         """Run ``fn(*args)`` in a worker (``fn`` and ``args`` picklable; ``fn`` a module-level function)."""
         p, send = self._idle.pop(0) if self._idle else self._start()
         p.name = name
+        busy_pids()  # drops the finished ones
+        _BUSY.append(p)
         send.send((fn, args))
         send.close()
         return p
