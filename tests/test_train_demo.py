@@ -170,9 +170,13 @@ def test_sigterm_to_the_demo_stops_every_stage_with_a_checkpoint_and_a_rerun_fin
             "plan_temperatures=0.7,1.3", "plan_prompts=4", "plan_n=8"]
     cmd = [sys.executable, "-m", "bonft.cli", "demo", "--output", str(out), "--quiet", *[a for t in tiny for a in ("--set", t)]]
     p = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
-    metrics = out / "reinforce" / "metrics.jsonl"
+    stages = [out / name for name in ("reinforce", "pass_at_k", "placebo")]
+
+    def training(st):  # past its start-up (a worker still importing may print multiprocessing's traceback)
+        return (st / "metrics.jsonl").exists() and (st / "metrics.jsonl").read_text().count('"train"') >= 2
+
     deadline = time.monotonic() + 240
-    while not (metrics.exists() and metrics.read_text().count('"train"') >= 2) and time.monotonic() < deadline:
+    while not all(training(st) for st in stages) and time.monotonic() < deadline:
         assert p.poll() is None, p.communicate()
         time.sleep(0.2)
     p.send_signal(signal.SIGTERM)
@@ -184,7 +188,6 @@ def test_sigterm_to_the_demo_stops_every_stage_with_a_checkpoint_and_a_rerun_fin
     assert "interrupted: checkpoint of step" in stdout and not training.search(stderr), stderr[-3000:]
     # each running stage checkpoints its last whole step (none when the interrupt comes mid-update, by design:
     # half-updated weights are not saved, and that stage starts again on the rerun)
-    stages = [out / name for name in ("reinforce", "pass_at_k", "placebo")]
     sizes = [(st / "metrics.jsonl").stat().st_size if (st / "metrics.jsonl").exists() else 0 for st in stages]
     time.sleep(2)
     assert sizes == [(st / "metrics.jsonl").stat().st_size if (st / "metrics.jsonl").exists() else 0 for st in stages]
