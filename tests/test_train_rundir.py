@@ -525,7 +525,10 @@ def test_resume_with_nothing_to_continue(tmp_path):
     assert (out / "metrics.stopped.jsonl").read_text() == '{"kind": "train", "step": 1}\n'
     assert [f.name for f in out.glob(".*.tmp")] == [".my-notes.tmp"]
     fresh = tiny(tmp_path, "fresh")
-    T.train(fresh, progress=False)
+    Path(fresh.run_dir).mkdir()  # an existing empty folder: --resume says it starts a new run
+    with pytest.warns(UserWarning, match=r"^--resume: .*fresh holds no run to continue \(no checkpoint, no metrics "
+                                         r"line\): it starts a new run from step 0"):
+        T.train(fresh, resume=True, progress=False)
     strip = lambda p: [{k: v for k, v in json.loads(ln).items() if "time" not in k and "per_s" not in k}  # noqa: E731
                        for ln in p.read_text().splitlines()]  # every number but the timings
     assert strip(out / "metrics.jsonl") == strip(Path(fresh.run_dir) / "metrics.jsonl")

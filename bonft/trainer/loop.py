@@ -93,7 +93,8 @@ def train(cfg: TrainConfig, *, resume: bool = False, progress: bool = True) -> d
     Ctrl-C writes a checkpoint of the last completed step before re-raising ``KeyboardInterrupt``.
     ``resume`` on a ``run_dir`` that does not exist is a ``ValueError`` (a typo, nothing to continue); on one
     whose run stopped before its first checkpoint it starts that run again from step 0, with a warning, and
-    keeps the metrics lines it had in ``metrics.stopped.jsonl``.
+    keeps the metrics lines it had in ``metrics.stopped.jsonl``; on an existing folder that holds no run it
+    starts a new one, with a warning.
     A non-finite loss or gradient stops the run with ``ValueError`` before the optimizer step;
     the checkpoint then written holds the weights of the last good step (the failed step is not applied).
 
@@ -296,6 +297,9 @@ def _restore(run: Run, resume: bool) -> tuple[int, dict | None, bool]:
             problem = f"--resume: {out} holds a finished run without checkpoints"
         elif resume and ckpt is None and not problem and rows:
             stopped = True  # a run stopped before its first checkpoint: it starts again, its lines kept aside
+        elif resume and ckpt is None and not problem:  # an existing folder without a run in it
+            warnings.warn(f"--resume: {out} holds no run to continue (no checkpoint, no metrics line): it starts a "
+                          f"new run from step 0", stacklevel=3)
         elif not resume and list_checkpoints(out):  # unfinished checkpoint folders were removed above
             problem = f"run_dir {str(out)!r} already holds checkpoints; pass --resume or choose another --output"
     ckpt, problem, evaluated = broadcast_object((ckpt, problem, evaluated), run.ctx)
