@@ -88,6 +88,22 @@ def test_saving_draws_no_transformers_bar_and_restores_the_setting(tmp_path, cap
     assert hf_logging.is_progress_bar_enabled()  # switched back on after the save
 
 
+def test_saved_weights_get_the_mode_of_any_new_file(tmp_path):
+    # transformers writes model.safetensors through a private temporary file (0o600): a checkpoint shared with
+    # a group (umask 0o002) or read by another user (0o022) must be readable as its config.json is
+    import os
+
+    model = build_tiny_model("gpt2", vocab_size=V, layers=1, width=32, heads=2, seed=2)
+    for umask in (0o022, 0o002):
+        old = os.umask(umask)
+        try:
+            ckpt = save_model(model, TOK, tmp_path / f"ckpt{umask:o}")
+        finally:
+            os.umask(old)
+        modes = {f.name: f.stat().st_mode & 0o777 for f in (ckpt / "model").iterdir()}
+        assert "model.safetensors" in modes and set(modes.values()) == {0o666 & ~umask}, modes
+
+
 def test_plain_transformers_directory_loads(tmp_path):
     model = build_tiny_model("gpt2", vocab_size=V, layers=1, width=32, heads=2)
     model.save_pretrained(tmp_path)

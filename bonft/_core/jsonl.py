@@ -75,7 +75,7 @@ def replacing(path, *, binary: bool = False) -> Iterator[IO]:
     try:
         mode = stat.S_IMODE(os.stat(target).st_mode)
     except FileNotFoundError:
-        mode = 0o666 & ~_umask()
+        mode = new_file_mode()
     fd, tmp = tempfile.mkstemp(prefix=f".{os.path.basename(target)}.", suffix=".tmp", dir=folder)
     try:
         with os.fdopen(fd, "wb" if binary else "w", **({} if binary else {"encoding": "utf-8"})) as fh:
@@ -94,6 +94,12 @@ def replacing(path, *, binary: bool = False) -> Iterator[IO]:
             os.fsync(dir_fd)
         finally:
             os.close(dir_fd)
+
+
+def new_file_mode() -> int:
+    """The mode ``open()`` gives a new file: 0o666 less the umask (the writers that use a private temporary file,
+    0o600, set it back to this)."""
+    return 0o666 & ~_umask()
 
 
 def _umask() -> int:

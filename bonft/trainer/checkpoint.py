@@ -48,6 +48,8 @@ import numpy as np
 import torch
 from transformers.utils import logging as hf_logging
 
+from bonft._core.jsonl import new_file_mode
+
 MANIFEST = "manifest.json"
 FORMAT = "bonft-checkpoint/1"
 _STEP_DIR = re.compile(r"^step-(\d{8})$")
@@ -312,6 +314,10 @@ def save_weights(model, directory: str | os.PathLike) -> None:
     """``model.save_pretrained(directory)`` (safetensors), without a progress bar: the one place weights are written."""
     with quiet_transformers():  # a bar per save would cut into the trainer's bar and --quiet runs
         model.save_pretrained(directory, safe_serialization=True)
+    mode = new_file_mode()  # the weights file comes out 0o600 (a private temporary file renamed): as any other file
+    for f in Path(directory).iterdir():
+        if f.is_file() and not f.is_symlink():
+            os.chmod(f, mode)
 
 
 def save_model(model, tokenizer, path: str | os.PathLike) -> Path:
