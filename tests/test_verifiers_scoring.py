@@ -115,7 +115,9 @@ def test_a_batch_fallback_that_isolates_failures_says_so():
     def crashes_on_boom(prompts, responses):
         return [1.0 / (r != "boom") for r in responses]
 
-    with pytest.warns(BatchFallbackWarning, match=r"crashes_on_boom failed on a batch of 3 \(ZeroDivisionError: "
+    # named as a user names a verifier (--verifier module:function), the spelling plan's cache key uses too
+    with pytest.warns(BatchFallbackWarning, match=r"verifier test_verifiers_scoring:test_a_batch_fallback_that_isolates_"
+                                                  r"failures_says_so\.<locals>\.crashes_on_boom failed on a batch of 3 \(ZeroDivisionError: "
                                                   r"float division by zero\); .* to isolate the 1 sample\(s\) it fails on"):
         v = score_batch(crashes_on_boom, ["p"] * 3, ["a", "boom", "c"])
     np.testing.assert_array_equal(v.failed, [False, True, False])

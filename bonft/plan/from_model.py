@@ -27,6 +27,7 @@ from bonft.generation.sampling import sample
 from bonft.io import SampleTable, read_samples, write_samples
 from bonft.plan.sweep import _check_temperatures, plan_samples
 from bonft.verifiers import score_batch
+from bonft.verifiers.base import verifier_name as name_of_verifier
 
 PROMPT_CHUNK = 16  # prompts per sampling call: the progress bar's step, and part of each chunk's seed
 
@@ -106,7 +107,7 @@ def draw_samples(
     if not callable(verifier):
         raise TypeError(f"verifier must be callable as verifier(prompts, responses), got {type(verifier).__name__}")
     if verifier_name is None:
-        verifier_name = f"{getattr(verifier, '__module__', '')}:{getattr(verifier, '__qualname__', type(verifier).__qualname__)}"
+        verifier_name = name_of_verifier(verifier)
     ids = [f"p{i}" for i in range(len(prompts))]
 
     files: dict[float, Path] = {}

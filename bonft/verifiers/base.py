@@ -25,6 +25,15 @@ from typing import Any, Protocol, Sequence, runtime_checkable
 import numpy as np
 
 
+def verifier_name(verifier: Any) -> str:
+    """``module:qualname`` of a verifier (a function, or the class of a callable object): the spelling a user
+    gives to name one (``--verifier module:function``), used wherever bonft names a verifier."""
+    fn = verifier if hasattr(verifier, "__qualname__") else type(verifier)
+    module = getattr(fn, "__module__", None)
+    name = getattr(fn, "__qualname__", None) or type(verifier).__name__
+    return f"{module}:{name}" if module else name
+
+
 class _TextNotNumbers(TypeError):
     """A verifier returned text where numbers belong."""
 

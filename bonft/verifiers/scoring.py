@@ -29,7 +29,7 @@ import numpy as np
 
 from bonft._core.checks import check_real
 from bonft._core.specs import load_spec
-from bonft.verifiers.base import Verdicts, as_verdicts
+from bonft.verifiers.base import Verdicts, as_verdicts, verifier_name
 
 log = logging.getLogger("bonft.verifiers")
 
@@ -50,16 +50,9 @@ _fallback_shown: weakref.WeakSet = weakref.WeakSet()
 _fallback_shown_names: set[str] = set()
 
 
-def _verifier_name(verifier: Any) -> str:
-    fn = verifier if hasattr(verifier, "__qualname__") else type(verifier)
-    module = getattr(fn, "__module__", None)
-    name = getattr(fn, "__qualname__", None) or type(verifier).__name__
-    return f"{module}.{name}" if module else name
-
-
 def _warn_fallback(verifier: Any, n: int, reason: str, n_failed: int) -> None:
     """One :class:`BatchFallbackWarning` per verifier: its first batch that was scored one sample per call."""
-    name = _verifier_name(verifier)
+    name = verifier_name(verifier)
     try:
         if verifier in _fallback_shown:
             return
