@@ -111,7 +111,9 @@ def test_policies_that_solve_nothing_get_an_exact_interval_not_a_zero_width_one(
     ("same names", r"the inputs' names must differ, got \['a', 'a'\]; pass --names A,B,..."),
     ("bad baseline", r"--baseline must be one of the inputs' names \['a', 'b'\], got 'c'"),
     ("bad names", r"--names must give one non-empty name per input \(2\), got 'x'"),
-    ("big k", r"--ks must be between 1 and the smallest pool \(n=4\), got \[1, 8\]"),
+    ("big k", r"--ks must be <= the smallest pool \(n=4\), got 8"),
+    ("short pool", r"--ks must be <= the smallest pool \(n=3: prompt '5' in b; the largest holds 4\), got 4: one short "
+                   r"pool caps k for every prompt"),
     ("repeated k", r"--ks must not repeat a k .*got '2,1,2' \(k=2 more than once\)"),
     ("no samples", r"RUN_OR_FILE '.*empty' is a directory without heldout_samples.jsonl .*bonft sample"),
 ])
@@ -121,9 +123,13 @@ def test_what_cannot_be_paired_is_refused_naming_why(tmp_path, capsys, case, mes
     b, extra = tmp_path / "b.jsonl", []
     ids = list(range(P - 1)) + [99] if case == "other prompts" else None
     texts = ["seed 7 prompt"] + [f"jars {q}" for q in range(1, P)] if case == "other texts" else None
-    write(b, r, s, ids=ids, texts=texts)
+    if case == "short pool":  # prompt 5 of b has 3 samples where every other pool has 4
+        r_b, s_b = [row[:-1] if q == 5 else row for q, row in enumerate(r)], [row[:-1] if q == 5 else row for q, row in enumerate(s)]
+        write(b, r_b, s_b, ids=ids, texts=texts)
+    else:
+        write(b, r, s, ids=ids, texts=texts)
     args = {"one input": [str(tmp_path / "a.jsonl")], "same names": [str(tmp_path / "a.jsonl")] * 2}.get(case, [str(tmp_path / "a.jsonl"), str(b)])
-    extra = {"bad baseline": ["--baseline", "c"], "bad names": ["--names", "x"], "big k": ["--ks", "1,8"],
+    extra = {"bad baseline": ["--baseline", "c"], "bad names": ["--names", "x"], "big k": ["--ks", "1,8"], "short pool": ["--ks", "1,4"],
              "repeated k": ["--ks", "2,1,2"]}.get(case, [])
     if case == "no samples":
         (tmp_path / "empty").mkdir()

@@ -8,6 +8,7 @@ import os
 from bonft._core.toml import tomllib
 from bonft.cli.options import (
     add_plot_dir,
+    check_ks_in_pools,
     check_output_paths,
     check_sizes,
     make_plot_dir,
@@ -182,7 +183,7 @@ def run(args: argparse.Namespace) -> int:
         raise ValueError(f"--baseline must be one of the inputs' names {names}, got {base!r}")
     recorded = _seed_labels(groups) if S > 1 else None
     labels = recorded or list(range(1, S + 1))  # the runs' own seeds where they record them, else positions
-    per_seed, no_text, P, temps = {}, set(), [], {}
+    per_seed, orders, no_text, P, temps = {}, {}, set(), [], {}
     for s in range(S):
         inputs = [_pools(n, p[s], args) for n, p in zip(names, paths)]
         try:
@@ -190,13 +191,15 @@ def run(args: argparse.Namespace) -> int:
         except ValueError as e:
             raise ValueError(f"training seed {labels[s]} ({s + 1} of {S}): {e}" if S > 1 else str(e)) from None
         per_seed[labels[s]] = _paired_pools(names, inputs)
+        orders[labels[s]] = inputs[0][0]  # the prompt ids, in the pools' order
         no_text |= {n for n, inp in zip(names, inputs) if inp[3] is None}
         for n, inp in zip(names, inputs):
             temps.setdefault(n, set()).add(inp[4])
         P.append(len(inputs[0][0]))
     n_min = min(len(r) for pools in per_seed.values() for p in pools.values() for r in p["rewards"])
-    if ks is not None and not 1 <= min(ks) <= max(ks) <= n_min:
-        raise ValueError(f"--ks must be between 1 and the smallest pool (n={n_min}), got {ks}")
+    flat = [(key, f"{name}" + (f" (training seed {s})" if S > 1 else ""), r)  # every pool, with where it comes from
+            for s, pools in per_seed.items() for name, p in pools.items() for key, r in zip(orders[s], p["rewards"])]
+    check_ks_in_pools(ks, [f[0] for f in flat], [f[2] for f in flat], sources=[f[1] for f in flat])
     ks = ks if ks is not None else default_ks(n_min)
     curves = {s: {name: per_prompt_curves(p, ks=ks) for name, p in pools.items()} for s, pools in per_seed.items()}
     intervals = S > 1 or P[0] >= MIN_BOOT_PROMPTS

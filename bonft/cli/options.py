@@ -37,9 +37,10 @@ def check_boot(flag: str, value: int) -> int:
     return value
 
 
-def check_ks_in_pools(ks, keys, pools, temperature=None) -> None:
+def check_ks_in_pools(ks, keys, pools, temperature=None, sources=None) -> None:
     """``--ks`` against the pools of a samples file (``keys``: their prompt ids): a k above the smallest pool is
-    refused naming that prompt (and ``temperature``), since one short pool caps k for every prompt."""
+    refused naming that prompt (and ``temperature``, or ``sources[i]``: the input each pool comes from), since one
+    short pool caps k for every prompt."""
     if ks is None:
         return
     if min(ks) < 1:
@@ -49,8 +50,10 @@ def check_ks_in_pools(ks, keys, pools, temperature=None) -> None:
     if max(ks) > n_min == max(sizes):
         raise ValueError(f"--ks must be <= the smallest pool (n={n_min}), got {max(ks)}")
     if max(ks) > n_min:
-        short = keys[sizes.index(n_min)]
+        i = sizes.index(n_min)
+        short = keys[i]
         at = "" if temperature is None else f" at temperature {temperature:g}"
+        at += "" if sources is None else f" in {sources[i]}"
         raise ValueError(f"--ks must be <= the smallest pool (n={n_min}: prompt {short!r}{at}; the largest holds "
                          f"{max(sizes)}), got {max(ks)}: one short pool caps k for every prompt, so lower --ks or "
                          f"leave that prompt out")
