@@ -201,6 +201,15 @@ def test_vote_estimates_show_a_progress_bar_on_a_terminal_unless_quiet(tmp_path,
     assert main(["plan", "--samples", str(p), "--strategy", "majority_vote", "--n-boot", "20", "--quiet"]) == 0
     assert main(["plan", "--samples", str(p), "--n-boot", "20", "--quiet"]) == 2
     assert "--quiet applies to --model only" in capsys.readouterr().err
+    # bonft estimate --strategy draws the same bar on a terminal, and --quiet turns it off
+    for extra, bar in (([], True), (["--quiet"], False)):
+        term = _Terminal()
+        monkeypatch.setattr(sys, "stderr", term)
+        assert main(["estimate", str(p), "--strategy", "weighted_vote", "--n-boot", "20", *extra]) == 0
+        monkeypatch.undo()
+        assert ("weighted_vote:" in "".join(term.text)) == bar, (extra, term.text)
+    assert main(["estimate", str(p), "--n-boot", "20", "--quiet"]) == 2
+    assert "--quiet applies to --strategy only" in capsys.readouterr().err
 
 
 def test_strategy_plan_selects_a_float32_temperature_by_the_value_typed(tmp_path):

@@ -47,6 +47,8 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     add_strategy_arguments(p)
     p.add_argument("--json", metavar="OUT.json", default=None, help="also write the curves as JSON")
     add_plot_dir(p, "estimate_curves.png (estimate_strategies.png with --strategy)")
+    p.add_argument("--quiet", action="store_true",
+                   help="with --strategy: no progress bar while the vote estimators run (a bar on a terminal otherwise)")
 
 
 def run(args) -> int:
@@ -74,6 +76,9 @@ def run(args) -> int:
         raise ValueError(f"--ks must not repeat a k (each is one row of the table), got {args.ks!r} "
                          f"(k={repeated[0]} more than once)")
     names = check_strategy_options(args)
+    if args.quiet and not names:
+        raise ValueError("--quiet applies to --strategy only (the vote estimators' progress bars; without --strategy "
+                         "the command draws none), got --quiet without --strategy")
     check_sizes(args)
     table = read_samples(
         path,
@@ -89,7 +94,10 @@ def run(args) -> int:
     temps = temperatures_of(table)
     print(f"samples: {path} ({len(table)} rows)")
     if names:
-        return _run_strategies(args, table, path, temps, ks)
+        from bonft.strategies.estimators import VoteProgress  # loads torch: only with --strategy
+
+        with VoteProgress(not args.quiet):  # the vote estimators take minutes on large files
+            return _run_strategies(args, table, path, temps, ks)
     curves, blocks = {}, []
     for t in temps if len(temps) > 1 else [None]:
         keys, s, r = group_pools(table, temperature=t)
