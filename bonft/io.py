@@ -165,7 +165,7 @@ class DuplicateRowsWarning(UserWarning):
 
 
 class FailedVerdictsWarning(UserWarning):
-    """Rows of a samples file mark a verdict their verifier failed to give (field ``failed``): a 0 that judged nothing."""
+    """Rows of a samples file mark a verdict their verifier failed to give (field ``failed``): a stand-in that judged nothing."""
 
 
 def _note_failed(name: str, rows: list, numbers: list[int]) -> None:
@@ -175,8 +175,8 @@ def _note_failed(name: str, rows: list, numbers: list[int]) -> None:
         names = sorted({str(v) for i in hit for v in (rows[i]["failed"] if isinstance(rows[i]["failed"], list)
                                                       else [rows[i]["failed"]])})
         warnings.warn(f"{name}: {len(hit)} of {len(rows)} rows mark a verdict their verifier failed to give (field "
-                      f"'failed': {', '.join(names)}; first on line {numbers[hit[0]]}): the 0 there judged nothing but "
-                      f"is counted as a 0; fix the verifier and score again for numbers that mean what they say",
+                      f"'failed': {', '.join(names)}; first on line {numbers[hit[0]]}): the stand-in score there (the "
+                      f"lowest of its batch) judged nothing but is counted; fix the verifier and score again for numbers that mean what they say",
                       FailedVerdictsWarning, stacklevel=3)
 
 

@@ -195,7 +195,7 @@ def test_a_training_verifier_that_fails_on_every_sample_stops_the_run_before_the
     (tmp_path / "broken_grader.py").write_text("def score(prompts, responses):\n    raise KeyError('gold')\n")
     cfg = tiny(tmp_path, "broken", verifier="broken_grader:score", save_every=0)
     with pytest.raises(VerifierError, match=r"the training verifier failed on every one of the 16 samples of step 4 "
-                                            r"\(KeyError: 'gold'\), so every sample would be scored 0"):
+                                            r"\(KeyError: 'gold'\), so every sample would get one stand-in score"):
         T.train(cfg, progress=False)
     assert load_state(latest_checkpoint(cfg.run_dir))["step"] == 4  # the warm start's checkpoint, kept
     recipe = tmp_path / "broken.toml"

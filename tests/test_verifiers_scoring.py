@@ -50,7 +50,7 @@ def test_timeout_marks_the_slow_sample():
     v = score_batch(slow, ["p", "p"], ["fast", "slow"], timeout=0.2)
     np.testing.assert_array_equal(v.failed, [False, True])
     assert v.reasons[1] == "timeout after 0.2 s"
-    assert v.scores[0] == 1.0 and v.scores[1] == 0.0
+    assert v.scores[0] == 1.0 and v.scores[1] == 1.0  # the batch's lowest judged score: never above a judged sample
 
 
 def test_rewards_kept_and_nan_reward_is_a_failure():
@@ -58,9 +58,32 @@ def test_rewards_kept_and_nan_reward_is_a_failure():
         return Verdicts(scores=[0.5, 0.7], rewards=[1.0, float("nan")])
 
     v = score_batch(with_rewards, ["p", "q"], ["a", "b"])
-    np.testing.assert_array_equal(v.rewards, [1.0, 0.0])
+    np.testing.assert_array_equal(v.rewards, [1.0, 1.0])
+    np.testing.assert_array_equal(v.scores, [0.5, 0.5])
     assert v.reasons == [None, "reward is nan"]
     assert not np.isnan(v.scores).any() and not np.isnan(v.rewards).any()
+    v = score_batch(with_rewards, ["p", "q"], ["a", "b"], failure_score=0.0)  # a fixed stand-in, as asked
+    np.testing.assert_array_equal(v.scores, [0.5, 0.0])
+    np.testing.assert_array_equal(v.rewards, [1.0, 0.0])
+
+
+def test_a_failed_sample_never_ranks_above_a_judged_one():
+    # a verifier whose honest scores are negative (a reward model's logits, a negative loss): a response that makes it
+    # raise got the stand-in 0 and won best-of-n, so a policy trained against it learns to crash the verifier
+    def negative(prompts, responses):
+        return [-1.0 - len(r) / 10 if "~" not in r else {}["~"] for r in responses]
+
+    v = score_batch(negative, ["p"] * 4, ["7", "seven", "~", "answer 7"])
+    np.testing.assert_array_equal(v.failed, [False, False, True, False])
+    np.testing.assert_allclose(v.scores, [-1.1, -1.5, -1.8, -1.8])  # the lowest judged score, -1 - 8/10
+    assert int(np.argmax(v.scores)) == 0
+    every = score_batch(negative, ["p"] * 2, ["~", "~~"])
+    np.testing.assert_array_equal(every.scores, [0.0, 0.0])  # nothing judged: a constant batch
+    assert score_batch(negative, ["p"] * 3, ["7", "~", "seven"], failure_score=-9.0).scores[1] == -9.0
+    with pytest.raises(ValueError, match=r"failure_score must be 'lowest' or a finite number, got 'low'"):
+        score_batch(negative, ["p"], ["7"], failure_score="low")
+    with pytest.raises(ValueError, match=r"failure_score must be a finite number"):
+        score_batch(negative, ["p"], ["7"], failure_score=float("nan"))
 
 
 def test_wrong_length_falls_back_per_sample():

@@ -134,7 +134,7 @@ def rl_step(run: Run, step: int, clock: Stopwatch) -> dict:
     if acc["verifier_failures"] >= B * n:  # the same sum on every rank: all stop, before the update
         raise VerifierError(
             f"the training verifier failed on every one of the {B * n} samples of step {step} "
-            f"({reason or 'on another rank'}), so every sample would be scored 0 and the step would learn "
+            f"({reason or 'on another rank'}), so every sample would get one stand-in score and the step would learn "
             "nothing from the verifier; fix it (bonft check-verifier tests one on a few samples) and continue "
             "with --resume from the last checkpoint")
     if kept:

@@ -150,7 +150,7 @@ def score_batch(
     responses: Sequence[str],
     *,
     strict: bool = False,
-    failure_score: float = 0.0,
+    failure_score: float | str = "lowest",
     timeout: float | None = None,
 ) -> Verdicts:
     """Score N (prompt, response) pairs, isolating the samples the verifier fails on.
@@ -162,15 +162,22 @@ def score_batch(
     time (``batch_failure`` then holds the cause; the first time for each
     verifier, a :class:`BatchFallbackWarning` names the verifier and the cause).
     A sample whose call raises or times out, or whose score (or reward)
-    is NaN or infinite, gets ``scores = failure_score`` (and
-    ``rewards = failure_score`` when the verifier reports rewards),
-    ``failed = True`` and a reason such as ``"ZeroDivisionError: division by
-    zero"`` or ``"timeout after 2 s"``. Samples the verifier itself marked
-    failed keep their flag and reason. The number of failures and the most
-    common reasons are logged as a warning on the ``bonft.verifiers`` logger.
+    is NaN or infinite, gets ``failed = True``, a reason such as
+    ``"ZeroDivisionError: division by zero"`` or ``"timeout after 2 s"``, and
+    the stand-in score (and reward, when the verifier reports rewards) that
+    ``failure_score`` names. Samples the verifier itself marked failed keep
+    their flag and reason. The number of failures and the most common reasons
+    are logged as a warning on the ``bonft.verifiers`` logger.
 
     strict:        raise :class:`VerifierError` on the first failure instead.
-    failure_score: the score given to failed samples (finite).
+    failure_score: ``"lowest"`` (default): the lowest score (reward) the
+                   verifier gave a sample of this batch that did not fail, 0.0
+                   when every sample failed. A failure then never ranks above a
+                   judged sample, nor earns more credit than the worst one: a
+                   fixed stand-in such as 0 would beat every judged sample of a
+                   verifier whose scores are negative, and a policy trained
+                   against it would learn to make the verifier fail. A number:
+                   that score and reward (finite), whatever the others are.
     timeout:       seconds allowed for each verifier call (None = no limit).
                    Calls run in a background thread; one that overruns is
                    abandoned, not killed (Python cannot kill threads), so a
@@ -181,7 +188,11 @@ def score_batch(
     prompts, responses = check_batch(prompts, responses)
     if not isinstance(strict, bool):
         raise TypeError(f"strict must be a bool, got {type(strict).__name__} {strict!r}")
-    failure_score = check_real("failure_score", failure_score)
+    lowest = isinstance(failure_score, str) and failure_score == "lowest"
+    if not lowest:
+        if isinstance(failure_score, str):
+            raise ValueError(f"failure_score must be 'lowest' or a finite number, got {failure_score!r}")
+        failure_score = check_real("failure_score", failure_score)
     timeout = _check_timeout(timeout)
     n = len(prompts)
     if n == 0:
@@ -195,7 +206,7 @@ def score_batch(
             raise VerifierError(f"the verifier failed on a batch of {n}: {_reason(e)}") from e
         reason = _reason(e)
         log.info("verifier failed on a batch of %d (%s); retrying one sample at a time", n, reason)
-        v = _per_sample(verifier, prompts, responses, timeout, failure_score)
+        v = _per_sample(verifier, prompts, responses, timeout)
         if n > 1:
             v.batch_failure = reason
             _warn_fallback(verifier, n, reason, v.n_failed)
@@ -215,12 +226,14 @@ def score_batch(
             if strict:
                 raise VerifierError(f"the verifier failed on sample {i}: {bad}")
             failed[i], reasons[i] = True, bad
-        if failed[i]:
-            scores[i] = failure_score
-            if rewards is not None:
-                rewards[i] = failure_score
-            if reasons[i] is None:
-                reasons[i] = "marked failed by the verifier"
+        if failed[i] and reasons[i] is None:
+            reasons[i] = "marked failed by the verifier"
+    if failed.any():
+        judged = ~failed
+        stand_in = (failure_score if not lowest else float(scores[judged].min()) if judged.any() else 0.0)
+        scores[failed] = stand_in
+        if rewards is not None:
+            rewards[failed] = (failure_score if not lowest else float(rewards[judged].min()) if judged.any() else 0.0)
     if strict and failed.any():
         i = int(np.argmax(failed))
         raise VerifierError(f"the verifier failed on sample {i}: {reasons[i]}")
@@ -228,17 +241,18 @@ def score_batch(
     if out.n_failed:
         common = collections.Counter(r for r, f in zip(reasons, failed) if f).most_common(3)
         log.warning(
-            "verifier failed on %d of %d samples (scored %g): %s",
-            out.n_failed, n, failure_score, "; ".join(f"{r} x{c}" for r, c in common),
+            "verifier failed on %d of %d samples (scored %g, %s): %s",
+            out.n_failed, n, float(scores[failed][0]), "the batch's lowest" if lowest else "failure_score",
+            "; ".join(f"{r} x{c}" for r, c in common),
         )
     return out
 
 
-def _per_sample(verifier: Any, prompts: list[str], responses: list[str], timeout: float | None,
-                failure_score: float) -> Verdicts:
+def _per_sample(verifier: Any, prompts: list[str], responses: list[str], timeout: float | None) -> Verdicts:
+    """One call per sample; a failed sample's score and reward are placeholders (0) that the caller replaces."""
     n = len(prompts)
-    scores = np.full(n, failure_score)
-    rewards = np.full(n, failure_score)
+    scores = np.zeros(n)
+    rewards = np.zeros(n)
     has_rewards = False
     failed = np.zeros(n, dtype=bool)
     reasons: list[str | None] = [None] * n
