@@ -181,6 +181,13 @@ def test_reward_model_input_errors_name_the_cause(tmp_path):
             RewardModel(tmp_path / "rm", device="cuda")
     with pytest.raises(ValueError, match=r"device must be a torch device string like 'cpu'.*got 'gpu0'"):
         RewardModel(tmp_path / "rm", device="gpu0")
+    # a max_length past the model's positions was accepted, and every longer text then failed in the forward
+    # pass, scored as a failure (a stand-in that a policy could aim at)
+    save_reward_model(tmp_path / "gpt2rm")  # n_positions=64
+    with pytest.raises(ValueError, match=r"max_length must be <= the model's 64 positions \(max_position_embeddings "
+                                         r"of '.*gpt2rm'\), got max_length=512"):
+        RewardModel(tmp_path / "gpt2rm", max_length=512)
+    assert RewardModel(tmp_path / "gpt2rm", max_length=64).max_length == 64
     # a tokenizer saved without a pad token gets one added past the model's vocabulary (id 46 of 46 tokens)
     save_qwen_reward_model(tmp_path / "nopad", config_pad_id=None, tokenizer_pad=False)
     tok = __import__("transformers").AutoTokenizer.from_pretrained(str(tmp_path / "nopad"))
