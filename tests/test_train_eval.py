@@ -122,6 +122,18 @@ def test_sample_rows_write_the_samples_file_that_read_samples_reads_back(tmp_pat
     write_samples(tmp_path / "a.jsonl", sample_rows(raw, ["p0", "p1"], temperature=1.0, score="proxy", extract_answer=odd.get))
     assert read_samples(tmp_path / "a.jsonl").answers[:2].tolist() == ["7", "2.5"]
     assert [json.loads(line)["answer"] for line in (tmp_path / "a.jsonl").read_text().splitlines()] == [7, "2.5", None, "(1, 2)"]
+    # a response that makes the task's extractor raise (ast.unparse's recursion limit, int's 4300 digits) is a
+    # missing answer, said once per extractor, instead of ending the evaluation or the training step that reads it
+    from bonft.trainer.evaluation import ExtractAnswerWarning
+
+    def fragile(text):
+        return int(text)  # "x" raises ValueError
+
+    with pytest.warns(ExtractAnswerWarning, match=r"extract_answer \(.*fragile\) raised ValueError: invalid literal "
+                                                  r".* on a response starting 'x'; such a response's answer counts as "
+                                                  r"missing \(shown once\)"):
+        rows = list(sample_rows(raw, ["p0", "p1"], temperature=1.0, score="proxy", extract_answer=fragile))
+    assert [r["answer"] for r in rows] == [7, 8, None, 9]
     with pytest.raises(ValueError, match=r"prompts must hold the pools' P = 2 prompts, got 1"):
         sample_rows(raw, ["p0"], temperature=1.0, score="proxy")
     with pytest.raises(ValueError, match=r"score must name one of the pools' verifiers \['exact', 'proxy'\], got 'rm'"):

@@ -194,7 +194,8 @@ def collect_pools(model: Any, tokenizer: Any, prompts: Sequence[str], *, verifie
         if name == eval_verifier:
             raw["rewards"] = (v.rewards if v.rewards is not None else v.scores).reshape(P, n)
     if extract_answer is not None:
-        raw["distinct"] = np.array([len({extract_answer(t) for t in row}) for row in smp.texts], dtype=float)
+        read = answer_reader(extract_answer)
+        raw["distinct"] = np.array([len({read(t) for t in row}) for row in smp.texts], dtype=float)
     else:
         raw["distinct"] = np.array([len(set(row)) for row in smp.texts], dtype=float)
     return raw
@@ -220,6 +221,7 @@ def sample_rows(raw: dict, prompts: Sequence[str], *, temperature: float, score:
     if score not in raw["scores"]:
         raise ValueError(f"score must name one of the pools' verifiers {sorted(raw['scores'])}, got {score!r}")
     names = sorted(raw["scores"]) if every_score else []
+    read = answer_reader(extract_answer)
 
     def rows() -> Iterator[dict]:
         for b in range(P):
@@ -228,8 +230,8 @@ def sample_rows(raw: dict, prompts: Sequence[str], *, temperature: float, score:
                 row = {"prompt_id": b, "prompt": prompts[b], "sample": i, "score": float(raw["scores"][score][b, i]),
                        "reward": float(raw["rewards"][b, i]), "temperature": float(temperature), "response": text,
                        "n_tokens": int(raw["n_tokens"][b, i])}
-                if extract_answer is not None:
-                    row["answer"] = _answer_key(extract_answer(text))
+                if read is not None:
+                    row["answer"] = _answer_key(read(text))
                 for name in names:
                     row[f"score_{name}"] = float(raw["scores"][name][b, i])
                 failed = [name for name in sorted(raw.get("failed", {})) if raw["failed"][name][b, i]]
@@ -238,6 +240,40 @@ def sample_rows(raw: dict, prompts: Sequence[str], *, temperature: float, score:
                 yield row
 
     return rows()
+
+
+class ExtractAnswerWarning(UserWarning):
+    """A task's ``extract_answer`` raised on a model's response: that answer counts as missing (``None``)."""
+
+
+_extract_warned: set[str] = set()
+
+
+def answer_reader(extract: Callable[[str], Any] | None) -> Callable[[str], Any] | None:
+    """``extract`` (a task's ``extract_answer``) made safe to call on any response, or None.
+
+    A response is the model's text, so it can be anything: one that makes the extractor raise (a recursion
+    limit, int's 4300-digit limit, a bug of a task's own) gives ``None``, a missing answer (a vote of its own),
+    instead of ending a training run or an evaluation; the first such response per extractor is an
+    :class:`ExtractAnswerWarning` naming the exception and the response's start, since a task whose extractor
+    raises on most responses should be fixed, not trained on.
+    """
+    if extract is None:
+        return None
+
+    def read(text: str) -> Any:
+        try:
+            return extract(text)
+        except Exception as e:  # noqa: BLE001 - a response must not end the run; said once below
+            name = getattr(extract, "__qualname__", type(extract).__qualname__)
+            if name not in _extract_warned:
+                _extract_warned.add(name)
+                warnings.warn(f"extract_answer ({name}) raised {type(e).__name__}: {str(e)[:120]} on a response "
+                              f"starting {text[:60]!r}; such a response's answer counts as missing (shown once)",
+                              ExtractAnswerWarning, stacklevel=2)
+            return None
+
+    return read
 
 
 def _answer_key(answer: Any) -> str | int | None:

@@ -32,6 +32,7 @@ from bonft.generation.gelu import chunked_tanh_gelu
 from bonft.generation.inputs import left_pad, special_ids
 from bonft.objectives.losses import nll_loss
 from bonft.trainer.distributed import reduce_metrics, shard_bounds
+from bonft.trainer.evaluation import answer_reader
 from bonft.trainer.measure import GradientMoments, Stopwatch
 from bonft.trainer.metrics import GRAD_SNR, info_metric
 from bonft.trainer.objectives import OBJECTIVES, Pools, policy_loss, shuffle_pools
@@ -193,7 +194,7 @@ def _score(run: Run, prompts: list[str], texts: list[list[str]], references: lis
                else np.asarray(v.rewards, np.float64).reshape(scores.shape))
     answers = None
     if OBJECTIVES[cfg.objective].answers:  # vote objectives: a failed extraction votes alone (a key of its own)
-        extract = run.task.extract_answer
+        extract = answer_reader(run.task.extract_answer)  # a response that makes it raise: a missing answer
         answers = np.array([[str(a) if (a := extract(y)) is not None else f"\x00none{i}" for i, y in enumerate(row)]
                             for row in texts], dtype=object)
     if cfg.placebo:
