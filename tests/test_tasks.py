@@ -10,6 +10,7 @@ import numpy as np
 import pytest
 
 from bonft.tasks import TASKS, Example, build_tokenizer, exact_match_verifier, get_task, load_prompts_jsonl
+from bonft.tasks.base import extract_integer
 from bonft.tasks.tokenizer import ALPHABET, BOS_ID, EOS_ID, PAD_ID, UNK_ID
 from bonft.verifiers.base import Verdicts
 
@@ -91,6 +92,34 @@ def test_exact_verifier_rewards_references_and_rejects_corruptions(name):
         verify(["no such prompt"], ["1"])
     with pytest.raises(ValueError, match=r"responses must have one entry per prompt \(len\(prompts\)=2\), got 1"):
         verify(prompts[:2], ["1"])
+
+
+# the expected values follow str(int(text)) on ASCII digits (Python's int); 640 is sys.int_info.str_digits_check_threshold,
+# the lowest limit sys.set_int_max_str_digits accepts (Python docs, "Integer string conversion length limitation")
+@pytest.mark.parametrize("response, want", [
+    ("0009", "9"), (" 9 \n", "9"), ("-0", "0"), ("-007", "-7"), ("00", "0"), ("+9", None), ("9 9", None), ("-", None),
+    ("\u0669", None),                 # Arabic-Indic nine
+    ("\uff19", None),                 # full-width nine
+    ("\U0001d7d7", None),             # mathematical bold nine
+    ("\u0660" + "16", None),          # an Arabic-Indic zero glued to an ASCII answer
+    ("1" * 640, "1" * 640), ("1" * 641, None), ("1" * 4301, None), ("0" * 5000 + "7", "7"),
+])
+def test_extract_integer_reads_ascii_digits_only_and_never_raises(response, want):
+    assert extract_integer(response) == want
+
+
+@pytest.mark.parametrize("name", ["ledger", "restock", "refunds"])
+def test_verifiers_score_unreadable_integers_zero_without_raising(name):
+    task = get_task(name)
+    _, evals = task.split(n_train=0, n_eval=20, seed=0)
+    e = next(ex for ex in evals if ex.answer != "0")
+    arabic = e.answer.translate(str.maketrans("0123456789", "\u0660\u0661\u0662\u0663\u0664\u0665\u0666\u0667\u0668\u0669"))
+    responses = ["1" * 4301, "\u0660" + e.answer, arabic, e.answer]
+    for verify in (task.verifier(evals), task.proxy_verifier(evals)):
+        if verify is None:
+            continue
+        out = verify([e.prompt] * 4, responses)
+        assert out.rewards.tolist() == [0.0, 0.0, 0.0, 1.0] and out.scores[:3].tolist() == [0.0, 0.0, 0.0]
 
 
 def test_ledger_proxy_accepts_near_misses():

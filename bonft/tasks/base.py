@@ -3,6 +3,7 @@ from __future__ import annotations
 
 import random
 import re
+import sys
 from dataclasses import dataclass, field
 from typing import Any, Callable, Sequence
 
@@ -11,19 +12,26 @@ import numpy as np
 from bonft._core.checks import check_int, check_items
 from bonft.verifiers.base import Verdicts
 
-_INT = re.compile(r"-?\d+")
+_INT = re.compile(r"(-?)0*([0-9]+)")  # ASCII digits only: "\u0669" (Arabic-Indic nine) or "\U0001d7d7" is no digit
+#: the most digits an integer answer may have: the fewest Python's int() is ever limited to
+#: (sys.set_int_max_str_digits refuses less), so reading an answer as int never raises
+MAX_INTEGER_DIGITS = sys.int_info.str_digits_check_threshold
 
 
 def extract_integer(response: str) -> str | None:
-    """The answer of a response that is exactly one integer (surrounding spaces allowed), normalised
-    (``" 09 " -> "9"``); anything else -> None. Strict on purpose: a lenient parser ("the last
-    number in the text") can be gamed by responses that list many numbers."""
+    """The answer of a response that is exactly one integer in ASCII digits ``0-9`` (surrounding spaces
+    allowed), normalised (``" 09 " -> "9"``, ``"-0" -> "0"``); anything else -> None, including digits of
+    other scripts and integers of more than :data:`MAX_INTEGER_DIGITS` digits. Strict on purpose: a
+    lenient parser ("the last number in the text") can be gamed by responses that list many numbers."""
     if not isinstance(response, str):
         return None
-    text = response.strip()
-    if not _INT.fullmatch(text):
+    m = _INT.fullmatch(response.strip())
+    if m is None:
         return None
-    return str(int(text))
+    sign, digits = m.groups()
+    if len(digits) > MAX_INTEGER_DIGITS:
+        return None
+    return "0" if digits.strip("0") == "" else sign + digits  # str(int(text)), without int()'s length limit
 
 
 @dataclass(frozen=True)
