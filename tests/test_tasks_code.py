@@ -200,6 +200,11 @@ def test_read_program_and_canonical_answers(task):
     assert read_program("x #note") == "x #note" and solution_source("x #note").count("\n") == 4  # the comment ends at its line
     assert task.extract_answer("x//4") == task.extract_answer(" x // 4") == "x // 4"
     assert task.extract_answer("x//") is None
+    # nesting: 47 unary minus signs give a tree 50 deep (Expression, 47 UnaryOp, Name, its Load context);
+    # 329 of them made ast.unparse raise RecursionError at Python's default limit of 1000 frames
+    assert read_program("-" * 47 + "x") == "-" * 47 + "x" and task.extract_answer("-" * 47 + "x") == "-" * 47 + "x"
+    for deep in ("-" * 48 + "x", "-" * 329 + "x", "~" * 399 + "x", "x" + "+1" * 60):
+        assert read_program(deep) is None and task.extract_answer(deep) is None
 
 
 def test_unparseable_responses_score_zero_without_running(task, held):

@@ -64,6 +64,7 @@ from bonft.verifiers.scoring import check_batch
 FAMILIES = ("pieces", "offcut", "cost", "label", "boxes")
 PLAIN = FAMILIES[:-1]
 MAX_PROGRAM_CHARS = 400  # a longer response is not a program of this task (score 0, never run)
+MAX_PROGRAM_DEPTH = 50  # nor is an expression nested deeper (``-`` * 60 + ``x``): ast.unparse would recurse past its limit
 HIDDEN_RANDOM, HIDDEN_MULTIPLES = 16, 8  # hidden inputs besides 0 and k
 
 # the right program, written as the notebook writes it (the response the oracle passes)
@@ -121,23 +122,39 @@ def unit_tests(family: str, k: int, visible: Sequence[tuple[int, Any]], seed: in
     return "\n".join(lines) + "\n"
 
 
-def read_program(response: str) -> str | None:
-    """The program of a response: its text without surrounding whitespace when that is one line of at
-    most :data:`MAX_PROGRAM_CHARS` characters that parses as a single Python expression, else None.
+def _depth(tree: ast.AST) -> int:
+    """The nesting depth of a syntax tree (1 for a lone name), counted without recursion."""
+    deepest, stack = 0, [(tree, 1)]
+    while stack:
+        node, depth = stack.pop()
+        deepest = max(deepest, depth)
+        stack.extend((child, depth + 1) for child in ast.iter_child_nodes(node))
+    return deepest
 
-    Parsing (``ast.parse(..., mode="eval")``) runs nothing. Requiring a whole expression keeps a
-    response from closing the ``return (...)`` it is placed in (``x) or (1`` is refused).
-    """
+
+def _parse(response: Any) -> tuple[str, ast.Expression] | None:
     if not isinstance(response, str):
         return None
     text = response.strip()
     if not text or "\n" in text or "\r" in text or len(text) > MAX_PROGRAM_CHARS:
         return None
     try:
-        ast.parse(text, mode="eval")
+        tree = ast.parse(text, mode="eval")
     except (SyntaxError, ValueError, RecursionError, MemoryError):
         return None
-    return text
+    return (text, tree) if _depth(tree) <= MAX_PROGRAM_DEPTH else None
+
+
+def read_program(response: str) -> str | None:
+    """The program of a response: its text without surrounding whitespace when that is one line of at
+    most :data:`MAX_PROGRAM_CHARS` characters that parses as a single Python expression nested at most
+    :data:`MAX_PROGRAM_DEPTH` deep, else None.
+
+    Parsing (``ast.parse(..., mode="eval")``) runs nothing. Requiring a whole expression keeps a
+    response from closing the ``return (...)`` it is placed in (``x) or (1`` is refused).
+    """
+    parsed = _parse(response)
+    return None if parsed is None else parsed[0]
 
 
 def solution_source(program: str) -> str:
@@ -348,9 +365,14 @@ class WorkshopTask(Task):
 
     def extract_answer(self, response: str) -> str | None:
         """The response's program in a canonical spelling (``ast.unparse``: ``x // 4`` and ``x//4`` are one
-        answer), or None when it is not one Python expression (:func:`read_program`)."""
-        program = read_program(response)
-        return None if program is None else ast.unparse(ast.parse(program, mode="eval"))
+        answer), or None when it is not one Python expression (:func:`read_program`); never raises."""
+        parsed = _parse(response)
+        if parsed is None:
+            return None
+        try:
+            return ast.unparse(parsed[1])
+        except (RecursionError, ValueError, MemoryError):  # not reached within MAX_PROGRAM_DEPTH; a backstop
+            return None
 
     @property
     def uses_pool(self) -> bool:
