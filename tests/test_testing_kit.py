@@ -74,6 +74,28 @@ def test_float32_rounding_of_a_padded_batch_is_not_non_determinism():
     assert rep.n_nondeterministic == 16  # every score moved by 3e-7 > 1e-8 x 0.9 (and > 1e-8 of itself)
 
 
+def test_a_wrong_response_at_the_top_of_a_pool_is_flagged():
+    # a verifier that reads only the last digit ties "17" with "7": best-of-k picks the wrong one half the time
+    # however large k is, while AUC (0.75 here) and the best-of-k curve (flat, no bend) pass
+    def last_digit(prompts, responses):
+        truth = {"3+4": "7", "9+6": "15"}
+        return [float(r[-1:] == truth[p][-1:]) for p, r in zip(prompts, responses)]
+
+    pools = [{"prompt": "3+4", "responses": ["7", "17", "6", "5"], "rewards": [1, 0, 0, 0]},
+             {"prompt": "9+6", "responses": ["15", "14", "3", "2"], "rewards": [1, 0, 0, 0]}]
+    rep = check_verifier(last_digit, pools)
+    assert (rep.n_pools_mixed, rep.n_wrong_top) == (2, 1) and not rep.ok
+    assert rep.problems == ["wrong at the top: in 1 of 2 pools with responses labelled right and wrong, a wrong one "
+                            "scores at or above every right one (> max_wrong_top=0), e.g. '17' scores 1 for prompt "
+                            "'3+4', the best right response 1: there best-of-k picks a wrong response (a forged pass, "
+                            "or a tie with one) however large k is"]
+    assert check_verifier(last_digit, pools, max_wrong_top=0.5).ok  # 1 of 2 pools is allowed
+    exact = ExactMatch({"3+4": "7", "9+6": "15"})
+    assert check_verifier(exact, pools).n_wrong_top == 0
+    with pytest.raises(ValueError, match=r"max_wrong_top must be a finite number in \[0, 1\], got max_wrong_top=1.5"):
+        check_verifier(exact, pools, max_wrong_top=1.5)
+
+
 def test_batch_order_dependence_is_flagged():
     def position_bias(prompts, responses):  # the first sample of each batch gets a bonus
         return [1.0 if i == 0 else 0.0 for i in range(len(responses))]
@@ -555,9 +577,15 @@ def test_cli_rows_on_the_examples_lines(tmp_path, capsys):
     (tmp_path / "kit_jar_grader.py").write_text(JAR_GRADER)
     (tmp_path / "ex.jsonl").write_text("".join(json.dumps(x) + "\n" for x in JARS))
     grader, ex = f"{tmp_path / 'kit_jar_grader.py'}", str(tmp_path / "ex.jsonl")
-    assert cli_main(["check-verifier", f"{grader}:loose", "--examples", ex, "--json", str(tmp_path / "r.json")]) == 0
+    # loose scores "17" as "7" and "5", "25" as "15": a wrong response at the top of both pools, a problem (exit 1)
+    # unless --max-wrong-top allows it
+    assert cli_main(["check-verifier", f"{grader}:loose", "--examples", ex]) == 1
+    assert "PROBLEM: wrong at the top: in 2 of 2 pools" in capsys.readouterr().out
+    assert cli_main(["check-verifier", f"{grader}:loose", "--examples", ex, "--max-wrong-top", "1",
+                     "--json", str(tmp_path / "r.json")]) == 0
     rep = json.loads((tmp_path / "r.json").read_text())  # the figures of test_a_rows_grader_is_bound_to_the_examples_rows
     assert (rep["accuracy"], rep["auc"], rep["failure_rate"], rep["problems"]) == (0.5, 0.625, 0.0, [])
+    assert (rep["n_pools_mixed"], rep["n_wrong_top"]) == (2, 2)
     capsys.readouterr()
     assert cli_main(["check-verifier", f"{grader}:plain", "--examples", ex]) == 2
     assert "examples[0] has a 'row', but verifier plain reads no data rows" in capsys.readouterr().err
@@ -570,7 +598,8 @@ def test_cli_without_recipe_loads_no_torch(tmp_path):
     (tmp_path / "kit_jar_grader.py").write_text(JAR_GRADER)
     (tmp_path / "ex.jsonl").write_text("".join(json.dumps(x) + "\n" for x in JARS))
     code = ("import sys; from bonft.cli import main; "
-            f"c = main(['check-verifier', 'kit_jar_grader:loose', '--examples', {str(tmp_path / 'ex.jsonl')!r}]); "
+            f"c = main(['check-verifier', 'kit_jar_grader:loose', '--examples', {str(tmp_path / 'ex.jsonl')!r}, "
+            "'--max-wrong-top', '1']); "
             "print(c, 'torch' in sys.modules, 'transformers' in sys.modules)")
     res = subprocess.run([sys.executable, "-c", code], cwd=tmp_path, capture_output=True, text=True, timeout=120)
     assert res.stdout.strip().splitlines()[-1] == "0 False False", res.stdout + res.stderr
@@ -609,7 +638,7 @@ def test_cli_recipe_binds_the_rows_of_the_trainers_split(jars_recipe, tmp_path, 
     samples = tmp_path / "heldout_samples.jsonl"
     samples.write_text("".join(json.dumps(x) + "\n" for x in lines))
     argv = ["check-verifier", "kit_jar_grader:loose", "--examples", str(samples), "--recipe", str(recipe)]
-    assert cli_main([*argv, "--json", str(tmp_path / "r.json")]) == 0
+    assert cli_main([*argv, "--max-wrong-top", "1", "--json", str(tmp_path / "r.json")]) == 0
     rep = json.loads((tmp_path / "r.json").read_text())
     # 3 positives (score 1) against 6 negatives (three 1s, three 0s): each positive 3 * 0.5 + 3 * 1 = 4.5,
     # AUC = 13.5 / 18 = 0.75 (Mann & Whitney 1947); accuracy: right on the total and on total + 1 -> 6/9

@@ -32,6 +32,9 @@ def add_arguments(p) -> None:
     p.add_argument("--threshold", type=float, default=0.5, help="score at or above which a sample counts as accepted")
     p.add_argument("--wall-time", type=float, default=None, help="seconds allowed per verifier call (default: no limit)")
     p.add_argument("--max-failure-rate", type=float, default=0.0, help="failure rate that still passes (default 0)")
+    p.add_argument("--max-wrong-top", type=float, default=0.0,
+                   help="share of the pools with right and wrong responses in which a wrong one may score at or above "
+                        "every right one and still pass (default 0: best-of-k must be able to avoid wrong responses)")
     p.add_argument("--plot-dir", metavar="DIR", default=None, help="write verifier_check.png (best-of-k vs pass@k) into this directory")
     p.add_argument("--json", metavar="PATH.json", default=None, help="write the report as JSON here")
 
@@ -73,7 +76,8 @@ def run(args) -> int:
         if args.recipe is not None:
             verifier = bind_recipe_rows(verifier, args.verifier, args.recipe, examples, args.examples)
     report = check_verifier(verifier, examples, repeats=args.repeats, threshold=args.threshold,
-                            timeout=args.wall_time, max_failure_rate=args.max_failure_rate)
+                            timeout=args.wall_time, max_failure_rate=args.max_failure_rate,
+                            max_wrong_top=args.max_wrong_top)
     print(report)
     if args.plot_dir:
         print(f"plot: {report.plot(os.path.join(make_plot_dir(args.plot_dir), 'verifier_check.png'))}")

@@ -70,6 +70,9 @@ class VerifierReport:
     threshold: float = 0.5
     accuracy: float | None = None
     auc: float | None = None
+    n_pools_mixed: int = 0
+    n_wrong_top: int = 0
+    wrong_top_examples: list[dict] = field(default_factory=list)
     ks: list[int] = field(default_factory=list)
     best_of_k: list[float] = field(default_factory=list)
     pass_at_k: list[float] = field(default_factory=list)
@@ -113,6 +116,8 @@ class VerifierReport:
                          + ("" if self.n_scored == n else ", samples that failed left out")),
             (f"accuracy @ {self.threshold:g}", f(self.accuracy, ".3f")),
             ("ROC AUC", f(self.auc, ".3f")),
+            ("wrong at the top", f"{self.n_wrong_top} of {self.n_pools_mixed} pools with right and wrong responses"
+                                 if self.n_pools_mixed else "n/a (no pool with both right and wrong labelled responses)"),
         ]
         w = max(len(k) for k, _ in rows)
         lines = ["verifier check: " + ("OK" if self.ok else f"{len(self.problems)} problem(s)")]

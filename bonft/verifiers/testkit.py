@@ -15,7 +15,10 @@ every number downstream. :func:`check_verifier` measures, on example pools:
   then scores every such batch one sample per call, in training too;
 * score range and latency per call;
 * agreement with labels: accuracy at ``threshold`` and ROC AUC, over the
-  samples that did not fail;
+  samples that did not fail; and "wrong at the top": pools in which a response
+  labelled wrong scores at or above every response labelled right, where
+  best-of-k picks a wrong response (a forged pass, or a tie with one) however
+  large k is;
 * over-optimisation: the true reward of the verifier's best-of-k as k grows,
   against pass@k (the best true reward among k). Where best-of-k bends down while
   pass@k keeps rising, larger N selects the verifier's errors -- it is
@@ -341,6 +344,7 @@ def check_verifier(
     min_auc: float = 0.6,
     bend_tol: float = 0.02,
     rtol: float = 1e-5,
+    max_wrong_top: float = 0.0,
 ) -> VerifierReport:
     """Test ``verifier`` on example pools; returns a :class:`VerifierReport` (``.ok``, ``.problems``).
 
@@ -358,8 +362,10 @@ def check_verifier(
     ks:         best-of-k curve points; default 1, 2, 4, ... up to the smallest pool.
     pool_size:  use at most this many responses per prompt (the first ones).
     timeout:    seconds per verifier call, passed to :func:`bonft.verifiers.score_batch`.
-    max_failure_rate, min_auc, bend_tol, rtol: what counts as a problem --
-                failure rate above ``max_failure_rate``; AUC below ``min_auc``;
+    max_failure_rate, min_auc, bend_tol, rtol, max_wrong_top: what counts as a problem --
+                failure rate above ``max_failure_rate``; AUC below ``min_auc``; a share above
+                ``max_wrong_top`` (in [0, 1]) of the pools holding responses labelled right and
+                wrong in which a wrong one scores at or above every right one;
                 best-of-k true reward falling more than ``bend_tol`` below its
                 peak at the largest k; scores differing between runs by more than
                 ``rtol`` relative to the score, or to the largest |score| of the first run
@@ -376,6 +382,7 @@ def check_verifier(
     if not callable(verifier) and not hasattr(verifier, "bind"):
         raise TypeError(f"verifier must be callable as verifier(prompts, responses), got {type(verifier).__name__}")
     _check_kw(threshold, repeats, timeout, max_failure_rate, min_auc, bend_tol, rtol, pool_size)
+    check_real("max_wrong_top", max_wrong_top, min=0.0, max=1.0)  # a share of pools
     pools = _pools(examples, labels)
     verifier = _bind_examples(verifier, examples)
     if pool_size is not None:
@@ -476,6 +483,19 @@ def check_verifier(
             if lb is not None and not first[i].failed[j]:
                 lab_s.append(scores[i][j])
                 lab_y.append(lb)
+    for i, pool in enumerate(pools):  # wrong at the top: best-of-k can pick a wrong response however large k is
+        lb = [bool(true[i][j] > 0.5) if x is None and true is not None else x for j, x in enumerate(pool["labels"])]
+        right = [j for j, x in enumerate(lb) if x is True and not first[i].failed[j]]
+        wrong = [j for j, x in enumerate(lb) if x is False and not first[i].failed[j]]
+        if right and wrong:
+            rep.n_pools_mixed += 1
+            best_right = max(scores[i][j] for j in right)
+            top = max(wrong, key=lambda j: scores[i][j])
+            if scores[i][top] >= best_right:
+                rep.n_wrong_top += 1
+                if len(rep.wrong_top_examples) < 3:
+                    rep.wrong_top_examples.append({"prompt": pool["prompt"][:80], "response": pool["responses"][top][:80],
+                                                   "score": float(scores[i][top]), "best_right": float(best_right)})
     if lab_y:
         s_arr, y_arr = np.array(lab_s), np.array(lab_y, dtype=bool)
         rep.n_labelled, rep.n_positive = len(y_arr), int(y_arr.sum())
@@ -490,7 +510,7 @@ def check_verifier(
         pak = pass_at_k_per_prompt(true, ks=kk).mean(axis=0)
         rep.ks, rep.best_of_k, rep.pass_at_k = [int(k) for k in kk], [float(x) for x in bok], [float(x) for x in pak]
 
-    _problems(rep, max_failure_rate=max_failure_rate, min_auc=min_auc, bend_tol=bend_tol)
+    _problems(rep, max_failure_rate=max_failure_rate, min_auc=min_auc, bend_tol=bend_tol, max_wrong_top=max_wrong_top)
     return rep
 
 
@@ -514,7 +534,8 @@ def _count_failure(rep: VerifierReport, reason: str, where: str = "") -> None:
         rep.failure_examples.append(where + reason)
 
 
-def _problems(rep: VerifierReport, *, max_failure_rate: float, min_auc: float, bend_tol: float) -> None:
+def _problems(rep: VerifierReport, *, max_failure_rate: float, min_auc: float, bend_tol: float,
+              max_wrong_top: float) -> None:
     n = rep.n_samples
     if rep.n_nondeterministic:
         e = rep.nondeterministic_examples[0]
@@ -562,3 +583,12 @@ def _problems(rep: VerifierReport, *, max_failure_rate: float, min_auc: float, b
                 f"{rep.best_of_k[-1]:.3f} at k={rep.ks[-1]} while pass@k goes {rep.pass_at_k[peak]:.3f} -> {rep.pass_at_k[-1]:.3f}: "
                 "larger N selects the verifier's errors (it is being gamed)"
             )
+    if rep.n_pools_mixed and rep.n_wrong_top / rep.n_pools_mixed > max_wrong_top:
+        e = rep.wrong_top_examples[0]
+        rep.problems.append(
+            f"wrong at the top: in {rep.n_wrong_top} of {rep.n_pools_mixed} pools with responses labelled right and "
+            f"wrong, a wrong one scores at or above every right one (> max_wrong_top={max_wrong_top:g}), e.g. "
+            f"{e['response']!r} scores {e['score']:.6g} for prompt {e['prompt']!r}, the best right response "
+            f"{e['best_right']:.6g}: there best-of-k picks a wrong response (a forged pass, or a tie with one) "
+            "however large k is"
+        )
