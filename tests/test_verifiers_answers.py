@@ -25,6 +25,27 @@ from bonft.verifiers.answers import canonical_answer, parse_number
         ("the value is −7", "-7"),                    # U+2212 minus sign
         ("the value is ٤٢", None),                    # Arabic-Indic digits are not numbers here (documented choice)
         ("version2 has 3 parts", "3"),                # digits glued to a word are not a number
+        # several markers on one line: the last counts (as the rule says for markers on several lines)
+        ("answer: 12 #### 13", "13"),
+        ("Answer is 12, so the answer = 14.", "14"),
+        ("answer: 12. answer:", None),                # the last marker holds nothing: no answer
+        ("answer:", None), ("####   ", None), ("answer: .", None),
+        # a negated marker is no marker to read from, and no last number is read after it
+        ("the answer is not 12", None),
+        ("The answer isn't 12, it is 13.", None),
+        ("The answer isn\u2019t 12", None),
+        ("the answer isnt 12", None),
+        ("answer is not 12. answer: 13", "13"),
+        ("the answer is nothing", "nothing"),         # 'is' then a word starting with 'not'
+        # dashes and minus-like signs before a number are minus signs
+        ("answer: \u201012", "-12"), ("answer: \u201412", "-12"), ("answer: \u02d712", "-12"),
+        ("answer: \u279612", "-12"), ("answer: \uff0d12", "-12"), ("so \u201312", "-12"),
+        ("\uff21\uff4e\uff53\uff57\uff45\uff52\uff1a \uff14\uff12\uff0e\uff15", "42.5"),  # full-width forms
+        # no fold beyond those: superscripts, fractions and circled digits stay as written
+        ("answer: 2\u00b3", "2\u00b3"), ("answer: 1\u00bd", "1\u00bd"), ("answer: \u2460\u2461", "\u2460\u2461"),
+        ("I get 2\u00b3", None), ("\u00bc", None), ("x is 1\u00bd", None),  # no number glued to them
+        ("it is - 12", None), ("x - 12", None), ("I got 12-13", None),  # a sign cut off: unreadable
+        ("5 - 3 = 2", "2"),
     ],
 )
 def test_extract_answer_default_rule(text, want):
@@ -46,7 +67,13 @@ def test_extract_answer_custom_pattern():
 
 @pytest.mark.parametrize(
     "text, want",
-    [("1,234", 1234.0), ("3/4", 0.75), ("-2.5e1", -25.0), ("x", None), (None, None), ("1/0", None), ("−4", -4.0)],
+    [("1,234", 1234.0), ("3/4", 0.75), ("-2.5e1", -25.0), ("x", None), (None, None), ("1/0", None), ("−4", -4.0),
+     ("x = -7", -7.0), ("42 apples", 42.0), ("\u201012", -12.0), ("\uff11\uff12", 12.0),
+     # exactly one number, its sign attached, no negation before it; otherwise None
+     ("12 or 13", None), ("12-13", None), ("3/4/5", None), ("- 12", None), ("+ 12", None), ("not 12", None),
+     ("n't 12, it is 13", None), ("never 5", None), ("no, 5", None),
+     ("2\u00b3", None), ("\u00bd", None), ("3\u00bd", None), ("1\u2044" + "4", None), ("\u2460\u2461", None),
+     ("\u0664\u0662", None), ("\u06642", None)],
 )
 def test_parse_number(text, want):
     assert parse_number(text) == want
@@ -82,8 +109,11 @@ def test_unknown_prompt_is_a_value_error_and_isolated_by_score_batch():
     v = ExactMatch({"known": "1"})
     with pytest.raises(ValueError, match="prompts must all have an expected answer; 1 do not, e.g. 'unknown'"):
         v(["known", "unknown"], ["1", "1"])
-    out = score_batch(v, ["known", "unknown"], ["answer: 1", "1"])
-    np.testing.assert_array_equal(out.scores, [1, 0])
+    out = score_batch(v, ["known", "unknown", "known"], ["answer: 1", "1", "answer: 2"])
+    np.testing.assert_array_equal(out.scores, [1, 0, 0])  # the failed sample: the batch's lowest score (0)
+    np.testing.assert_array_equal(out.failed, [False, True, False])
+    out = score_batch(v, ["known", "unknown"], ["answer: 1", "1"], failure_score=-1.0)
+    np.testing.assert_array_equal(out.scores, [1, -1])
     np.testing.assert_array_equal(out.failed, [False, True])
 
 
@@ -92,9 +122,48 @@ def test_checker_arguments_are_validated():
         ExactMatch(["a"])
     with pytest.raises(TypeError, match=r"answers\['q'\] must be a str or an int, got float"):
         ExactMatch({"q": 1.5})
-    with pytest.raises(ValueError, match=r"answers\['q'\] must be a finite number, got 'abc'"):
+    with pytest.raises(ValueError, match=r"answers\['q'\] must be a finite number or a str holding exactly one .*got 'abc'"):
         NumericMatch({"q": "abc"})
     with pytest.raises(ValueError, match="abs_tol must be a finite number >= 0, got abs_tol=-1"):
         NumericMatch({"q": 1}, abs_tol=-1)
     with pytest.raises(TypeError, match="normalize must be None or a callable"):
         ExactMatch({"q": "a"}, normalize="lower")
+
+
+@pytest.mark.parametrize(
+    "want, response",
+    [
+        ("12", "The answer isn't 12, it is 13."), ("12", "the answer is not 12"), ("12", "answer: not 12"),
+        ("12", "answer: - 12"), ("12", "answer: \u201012"), ("12", "answer: \u201412"), ("12", "answer: \u02d712"),
+        ("12", "answer: \u279612"), ("12", "answer: 12-13"), ("12", "answer: 12 or 13"), ("12", "answer: \u2460\u2461"),
+        ("23", "answer: 2\u00b3"), ("8", "answer: 2\u00b3"), ("11", "answer: 1\u00bd"), ("1", "answer: \u00bc"),
+        ("4", "\u00bc"), ("12", "answer: 12 #### 13"), ("-12", "answer: - 12"), ("0", "answer:"),
+    ],
+)
+def test_no_checker_reads_a_wrong_or_missing_answer_as_right(want, response):
+    # each response is wrong (or holds no answer) for a careful reader; neither checker may reward it
+    assert ExactMatch({"q": want})(["q"], [response]).scores.tolist() == [0.0]
+    assert NumericMatch({"q": want})(["q"], [response]).scores.tolist() == [0.0]
+
+
+def test_dashes_before_a_number_read_as_minus():
+    numeric, exact = NumericMatch({"q": -12}), ExactMatch({"q": "-12"})
+    responses = ["answer: \u201012", "answer: \u201412", "answer: \u02d712", "answer: \u279612", "answer: \u221212"]
+    assert numeric(["q"] * 5, responses).scores.tolist() == [1.0] * 5
+    assert exact(["q"] * 5, responses).scores.tolist() == [1.0] * 5
+
+
+@pytest.mark.parametrize("answer", ["\u00bd", "3\u00bd", "12 or 13", "2\u00b3", "3/4/5", "- 12", "not 12", "", "  "])
+def test_numeric_answer_table_refuses_what_is_not_one_number(answer):
+    with pytest.raises(ValueError, match=rf"answers\['q'\] must be a finite number or a str holding exactly one .*got {re.escape(repr(answer))}"):
+        NumericMatch({"q": answer})
+
+
+@pytest.mark.parametrize("answer", ["", "   ", "\n"])
+def test_exact_answer_table_refuses_blank_answers(answer):
+    with pytest.raises(ValueError, match=rf"answers\['q'\] must be a non-blank answer .*got {re.escape(repr(answer))}"):
+        ExactMatch({"q": answer})
+    with pytest.raises(ValueError, match=r"answers\['q'\] must be a non-blank answer"):
+        ExactMatch({"q": answer}, normalize=None)
+    with pytest.raises(ValueError, match=r"answers\['q'\] must not normalise to '' .*got '\.', which canonical_answer makes ''"):
+        ExactMatch({"q": "."})

@@ -1,20 +1,34 @@
 """Answer checkers: pull the final answer out of a response and compare it.
 
-Extraction rule (default, ``pattern=None``), applied after Unicode
-normalisation (below):
+Extraction rule (default, ``pattern=None``), applied after the character
+folding below:
 
 1. the text after the **last** answer marker, up to the end of its line --
    markers are ``answer:``, ``answer is``, ``answer =`` (any case, e.g.
-   ``"The final Answer: 42"``) and ``####``; one trailing ``.`` is dropped;
+   ``"The final Answer: 42"``) and ``####``; one trailing ``.`` is dropped.
+   Several markers on one line: the last one counts (``"answer: 12 #### 13"``
+   -> ``"13"``). A negated marker (``answer is not``, ``answer isn't``) that is
+   the last marker means no answer;
 2. otherwise the **last number** in the text (``-3``, ``1,234``, ``2.5``,
    ``1e-3``, ``3/4``);
-3. otherwise ``None`` (the response scores 0).
+3. otherwise ``None`` (the response scores 0). An empty answer
+   (``"answer:"``) is ``None`` too.
 
-Unicode: text is NFKC-normalised first, so full-width digits ``"４２"`` read
-as ``"42"``; the minus sign U+2212 ``"−"`` reads as ``"-"``. Other scripts'
-digits (e.g. Arabic-Indic ``"٤٢"``) are *not* numbers for these checkers:
-only ASCII ``0-9`` after NFKC count. This is a choice, documented so that
-scores do not depend on Python's permissive ``float()``.
+Numbers are ASCII ``0-9``. A number glued to a letter or to a digit of another
+kind (``2³``, ``1½``, ``٤2``, ``7kg``) is not a number, and a sign cut off from
+its number by spaces (``- 12``) makes the number unreadable: neither reads as
+``12``. :func:`parse_number` (and so :class:`NumericMatch`) reads an answer
+only when it holds exactly one number with no ``not`` / ``no`` / ``never``
+before it: ``"12 or 13"``, ``"12-13"`` and ``"not 12"`` are no number.
+
+Characters: full-width forms (U+FF01-U+FF5E) read as their ASCII
+(``"４２"`` -> ``"42"``), the ideographic space as a space, and minus signs and
+dashes (U+2212 ``"−"``, the hyphens and dashes U+2010-U+2015, U+02D7, U+2796
+and the other dash punctuation) as ``-``, so ``"‐12"`` reads as ``-12``. No
+other character is folded: superscripts, fractions (``¼``), circled digits
+and other scripts' digits (``٤٢``) are not numbers for these checkers. This is
+a choice, documented so that scores do not depend on Python's permissive
+``float()`` or on Unicode's compatibility mappings (which read ``2³`` as ``23``).
 
 Caution (reward hacking): these checkers look at one extracted answer, so a
 response cannot win by listing many candidates (only the last counts), but a
@@ -26,7 +40,6 @@ from __future__ import annotations
 import math
 import numbers
 import re
-import unicodedata
 from typing import Any, Callable, Mapping, Sequence
 
 import numpy as np
@@ -35,19 +48,23 @@ from bonft._core.checks import check_nonnegative
 from bonft.verifiers.base import Verdicts
 from bonft.verifiers.scoring import check_batch
 
-_MARKER = re.compile(r"(?:\banswer\s*(?:is\s*:?|:|=)|####)[ \t]*([^\n]*)", re.IGNORECASE)
-# a number not glued to a word or a decimal point on its left
-_NUMBER = re.compile(
-    r"(?<![\w.])[-+]?(?:\d{1,3}(?:,\d{3})+|\d+)(?:\.\d+)?(?:[eE][-+]?\d+)?(?:/\d+)?(?![\w])",
-    re.ASCII,
-)
-_MINUS = {"\u2212": "-", "\u2012": "-", "\u2013": "-", "\ufe63": "-"}
+_MARKER = re.compile(r"\banswer\s*(?:(?P<negated>is\s*not\b|isn['\u2019]?t\b)|is\b\s*:?|:|=)|####", re.IGNORECASE)
+# a number (ASCII digits) not glued to a word character (any script's letters and digits, "³", "½") or a
+# decimal point on either side
+_NUMBER = re.compile(r"(?<![\w.])[-+]?(?:[0-9]{1,3}(?:,[0-9]{3})+|[0-9]+)(?:\.[0-9]+)?(?:[eE][-+]?[0-9]+)?(?:/[0-9]+)?(?!\w)")
+_CUT_SIGN = re.compile(r"[-+]\s*$")  # a sign right before a number but not part of it: "- 12", "x-12"
+_NEGATION = re.compile(r"\b(?:not|no|never)\b|n['\u2019]t\b", re.IGNORECASE)
+# dash punctuation (Unicode category Pd) and minus-like signs: all read as "-"
+_DASHES = ("\u058a\u05be\u1400\u1806\u2010\u2011\u2012\u2013\u2014\u2015\u2e17\u2e1a\u2e3a\u2e3b\u2e40\u2e5d"
+           "\u301c\u3030\u30a0\ufe31\ufe32\ufe58\ufe63\U00010ead"
+           "\u2212\u02d7\u2796\u207b\u208b\u2043")
+_FOLD = {**{cp: cp - 0xFEE0 for cp in range(0xFF01, 0xFF5F)}, 0x3000: " ", **{ord(c): "-" for c in _DASHES}}
 
 
 def unify_text(text: str) -> str:
-    """NFKC-normalise and map Unicode minus signs to ``-``."""
-    text = unicodedata.normalize("NFKC", text)
-    return text.translate(str.maketrans(_MINUS))
+    """Full-width forms as ASCII, the ideographic space as a space, minus signs and dashes as ``-``;
+    nothing else changes (see the module docstring)."""
+    return text.translate(_FOLD)
 
 
 def _check_pattern(pattern: Any) -> re.Pattern[str] | None:
@@ -75,15 +92,21 @@ def _extract(text: str, pattern: re.Pattern[str] | None) -> str | None:
             got = last.group(1)
         else:
             got = last.group(0)
-        return None if got is None else got.strip()
+        return (got or "").strip() or None
     last = None
     for last in _MARKER.finditer(text):
         pass
     if last is not None:
-        got = last.group(1).strip()
-        return got[:-1].rstrip() if got.endswith(".") else got
-    nums = _NUMBER.findall(text)
-    return nums[-1] if nums else None
+        if last.group("negated"):
+            return None
+        got = text[last.end():].split("\n", 1)[0].strip()
+        return (got[:-1].rstrip() if got.endswith(".") else got) or None
+    found = None
+    for found in _NUMBER.finditer(text):
+        pass
+    if found is None or _CUT_SIGN.search(text, 0, found.start()):
+        return None
+    return found.group(0)
 
 
 def extract_answer(text: str, *, pattern: str | re.Pattern[str] | None = None) -> str | None:
@@ -104,11 +127,17 @@ def extract_answer(text: str, *, pattern: str | re.Pattern[str] | None = None) -
 
 
 def parse_number(text: str | None) -> float | None:
-    """The first number in ``text`` as a float (``"1,234"`` -> 1234, ``"3/4"`` -> 0.75), or None."""
+    """The number in ``text`` as a float (``"1,234"`` -> 1234, ``"3/4"`` -> 0.75, ``"x = -2"`` -> -2), or None
+    unless ``text`` holds exactly one number (module docstring: ASCII digits, not glued to a letter or another
+    kind of digit), its sign not cut off by spaces (``"- 12"``) and no ``not`` / ``no`` / ``never`` before it."""
     if text is None:
         return None
-    m = _NUMBER.search(unify_text(text))
-    if m is None:
+    text = unify_text(text)
+    found = list(_NUMBER.finditer(text))
+    if len(found) != 1:
+        return None
+    m = found[0]
+    if _CUT_SIGN.search(text, 0, m.start()) or _NEGATION.search(text, 0, m.start()):
         return None
     tok = m.group(0).replace(",", "")
     if "/" in tok:
@@ -137,11 +166,15 @@ def _check_answers(answers: Any, *, numeric: bool) -> dict[str, Any]:
                 raise TypeError(f"answers[{p!r:.40}] must be a number or a numeric str, got {type(a).__name__}")
             value = parse_number(a) if isinstance(a, str) else float(a)
             if value is None or not math.isfinite(value):
-                raise ValueError(f"answers[{p!r:.40}] must be a finite number, got {a!r}")
+                raise ValueError(f"answers[{p!r:.40}] must be a finite number or a str holding exactly one (ASCII "
+                                 f"digits, such as '1,024' or '-3/4'), got {a!r}")
             out[p] = value
         else:
             if isinstance(a, bool) or not isinstance(a, (str, numbers.Integral)):
                 raise TypeError(f"answers[{p!r:.40}] must be a str or an int, got {type(a).__name__}")
+            if not str(a).strip():
+                raise ValueError(f"answers[{p!r:.40}] must be a non-blank answer (a blank one would reward a response "
+                                 f"with no answer), got {a!r}")
             out[p] = str(a)
     return out
 
@@ -158,7 +191,8 @@ class ExactMatch:
 
     ``prompts, responses: (N,) -> Verdicts(scores (N,), rewards = scores)``.
 
-    answers:   prompt -> expected answer (str or int).
+    answers:   prompt -> expected answer (str or int); a blank one (or one that ``normalize`` makes ``''``) is
+               an error.
     pattern:   extraction regex (see :func:`extract_answer`); None = default rule.
     normalize: applied to both sides before comparing; None = compare as extracted.
     """
@@ -170,6 +204,12 @@ class ExactMatch:
         if normalize is not None and not callable(normalize):
             raise TypeError(f"normalize must be None or a callable str -> str, got {type(normalize).__name__}")
         self.normalize = normalize
+        if normalize is not None:
+            for p, a in self.answers.items():
+                if not normalize(unify_text(a)):
+                    raise ValueError(f"answers[{p!r:.40}] must not normalise to '' (a blank answer would reward a "
+                                     f"response with no answer), got {a!r}, which {getattr(normalize, '__name__', 'normalize')} "
+                                     "makes ''")
 
     def __call__(self, prompts: Sequence[str], responses: Sequence[str]) -> Verdicts:
         prompts, responses = check_batch(prompts, responses)
@@ -182,14 +222,15 @@ class ExactMatch:
 
 
 class NumericMatch:
-    """1 if the first number of the extracted answer is close to the expected value, else 0.
+    """1 if the extracted answer's number (:func:`parse_number`) is close to the expected value, else 0.
 
     ``prompts, responses: (N,) -> Verdicts(scores (N,), rewards = scores)``.
 
     Close means ``|got - want| <= max(rel_tol * max(|got|, |want|), abs_tol)``
-    (:func:`math.isclose`). A response with no number scores 0.
+    (:func:`math.isclose`). A response whose answer is not exactly one number scores 0.
 
-    answers: prompt -> expected number (or a numeric str such as ``"1,024"``).
+    answers: prompt -> expected number, or a str holding exactly one number such as ``"1,024"`` (read by
+             :func:`parse_number`: ``"½"``, ``"2³"`` or ``"12 or 13"`` are errors).
     """
 
     def __init__(self, answers: Mapping[str, float | str], *, abs_tol: float = 1e-6, rel_tol: float = 1e-9,
