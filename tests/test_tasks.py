@@ -276,3 +276,42 @@ def test_jsonl_prompts(tmp_path):
         load_prompts_jsonl(path)
     with pytest.raises(FileNotFoundError, match=r"no such file"):
         load_prompts_jsonl(tmp_path / "absent.jsonl")
+
+
+def test_jsonl_task_refuses_conflicting_duplicates_naming_both_lines(tmp_path):
+    # the user task refuses the same file; the jsonl task kept the first answer and dropped '5' silently
+    path = tmp_path / "dup.jsonl"
+    path.write_text('{"prompt": "2+2", "answer": "4"}\n{"prompt": "2+2", "answer": "5"}\n{"prompt": "3+3", "answer": "6"}\n')
+    with pytest.raises(ValueError, match=r"dup.jsonl line 2: the prompt '2\+2' is also at .*dup.jsonl line 1 with other fields"):
+        get_task("jsonl", path=str(path))
+    path.write_text('{"prompt": "2+2", "answer": "4", "src": "a"}\n{"prompt": "2+2", "answer": "4", "src": "b"}\n')
+    with pytest.raises(ValueError, match=r"dup.jsonl line 2: the prompt '2\+2' is also at"):
+        get_task("jsonl", path=str(path))
+    path.write_text('{"prompt": "2+2", "answer": "4"}\n\n{"prompt": "2+2", "answer": " 4 "}\n{"prompt": "3+3", "answer": 6}\n')
+    task = get_task("jsonl", path=str(path))  # a repeated row with the same fields is read once
+    assert [(e.prompt, e.answer) for e in task.examples] == [("2+2", "4"), ("3+3", "6")]
+
+
+@pytest.mark.parametrize("cell", ['""', '"  "', "null"])
+def test_jsonl_blank_answers_are_missing_and_refused_naming_the_line(tmp_path, cell):
+    path = tmp_path / "blank.jsonl"
+    path.write_text('{"prompt": "a", "answer": "4"}\n{"prompt": "b", "answer": ' + cell + '}\n')
+    assert [e.answer for e in load_prompts_jsonl(path)] == ["4", None]
+    task = get_task("jsonl", path=str(path))
+    with pytest.raises(ValueError, match=r"blank.jsonl line 2: field 'answer' is missing \(absent, null or blank\)"):
+        task.verifier(task.examples)
+    with pytest.raises(ValueError, match=r"examples must all have an answer for an exact verifier, got answer=None at index 1"):
+        exact_match_verifier(load_prompts_jsonl(path))
+    # an Example built by hand with a blank answer would reward the empty response
+    with pytest.raises(ValueError, match=r"examples must all have a non-blank str answer .*got answer='  ' at index 0"):
+        exact_match_verifier([Example(prompt="a", answer="  ", reference="")])
+
+
+@pytest.mark.parametrize("value, shown", [("7.0", "float 7.0"), ("true", "bool True"), ("1e2", "float 100.0")])
+def test_jsonl_float_and_bool_answers_are_refused_naming_the_line(tmp_path, value, shown):
+    path = tmp_path / "t.jsonl"
+    path.write_text('{"prompt": "a", "answer": ' + value + '}\n')
+    with pytest.raises(ValueError, match=rf"t.jsonl line 1: field 'answer' \(the answer\) must be a string or an integer, got {shown}"):
+        load_prompts_jsonl(path)
+    path.write_text('{"prompt": "a", "answer": 7}\n{"prompt": "b", "answer": "true"}\n')
+    assert [e.answer for e in load_prompts_jsonl(path)] == ["7", "true"]

@@ -80,7 +80,11 @@ def test_csv_cells_are_read_as_written(tmp_path):
         assert [ex.meta["fields"] for ex in task.examples] == [dict(r) for r in csv.DictReader(f)]
     assert [ex.meta["fields"]["total"] for ex in task.examples] == ["1", "", "007"]
     x = next(ex for ex in task.examples if ex.prompt == "x?")
-    assert task.verifier(task.examples)(["x?"], ["1"]).scores.tolist() == [1.0] and x.meta["where"].endswith("line 2")
+    assert [ex.answer for ex in task.examples] == ["1", None, "007"]  # a blank cell is a missing answer
+    answered = [ex for ex in task.examples if ex.answer is not None]
+    assert task.verifier(answered)(["x?", "x?"], ["1", ""]).scores.tolist() == [1.0, 0.0] and x.meta["where"].endswith("line 2")
+    with pytest.raises(ValueError, match=r"totals.csv line 3: field 'total' is missing \(absent, null or blank\)"):
+        task.verifier(task.examples)
     (tmp_path / "ragged.csv").write_text("prompt,total\nx?,1,2\n")
     with pytest.raises(ValueError, match=r"ragged.csv' line 2: 3 cells, but the header names 2 columns"):
         UserTask(data=str(tmp_path / "ragged.csv"), prompt_field="prompt")
@@ -132,8 +136,41 @@ def test_bad_data_errors_name_the_field_and_row(tmp_path):
     with pytest.raises(ValueError, match=r"system .* cannot take effect without chat_template = true"):
         UserTask(data=path, prompt_field="q", system="be brief")
     ans = UserTask(data=write_jsonl(tmp_path / "f.jsonl", [{"q": "a", "x": "1"}, {"q": "b"}]), prompt_field="q", answer_field="x")
-    with pytest.raises(ValueError, match=r"f.jsonl line 2: field 'x' is missing, and the exact verifier needs it"):
+    with pytest.raises(ValueError, match=r"f.jsonl line 2: field 'x' is missing \(absent, null or blank\), and the exact verifier needs it"):
         ans.verifier(ans.examples)
+
+
+@pytest.mark.parametrize("cell", ['""', '"   "', '"\\n"', "null"])
+def test_blank_or_null_answers_are_missing_and_never_reward_an_empty_response(tmp_path, cell):
+    # a blank answer would make the empty response right; it is refused as a null one is, naming the line
+    path = tmp_path / "blank.jsonl"
+    path.write_text('{"q": "a", "x": "4"}\n{"q": "b", "x": ' + cell + '}\n')
+    task = UserTask(data=path, prompt_field="q", answer_field="x")
+    assert [ex.answer for ex in task.examples] == ["4", None] and not task.has_answers
+    with pytest.raises(ValueError, match=r"blank.jsonl line 2: field 'x' is missing \(absent, null or blank\)"):
+        task.verifier(task.examples)
+
+
+@pytest.mark.parametrize("value, stored", [("7", "7"), (" 7 ", "7"), (7, "7"), (-12, "-12"), (10**30, "1" + "0" * 30)])
+def test_answers_are_strings_or_integers_in_decimal_text(tmp_path, value, stored):
+    # JSON integers read as their decimal text (json.dumps writes the same digits); the response "7" is right
+    path = write_jsonl(tmp_path / "t.jsonl", [{"q": "a", "x": value}])
+    task = UserTask(data=path, prompt_field="q", answer_field="x")
+    assert task.examples[0].answer == stored == json.dumps(value).strip('" ')
+    assert task.verifier(task.examples)(["a"], [stored]).scores.tolist() == [1.0]
+
+
+@pytest.mark.parametrize("line, shown", [('7.0', "float 7.0"), ('1e2', "float 100.0"), ('true', "bool True"),
+                                         ('[7]', r"list \[7\]"), ('{"v": 7}', r"dict \{'v': 7\}")])
+def test_float_bool_and_other_answers_are_refused_naming_the_line(tmp_path, line, shown):
+    # Python's spelling ('7.0', 'True', '100.0') is no text a right response need match: the file must say
+    path = tmp_path / "t.jsonl"
+    path.write_text('{"q": "a", "x": "4"}\n\n{"q": "b", "x": ' + line + '}\n')
+    with pytest.raises(ValueError, match=rf"t.jsonl line 3: field 'x' \(the answer\) must be a string or an integer, got {shown}; write it as"):
+        UserTask(data=path, prompt_field="q", answer_field="x")
+    # a datasets column of numbers with a fraction is float64 throughout: refused the same way
+    with pytest.raises(ValueError, match=r"the dataset row 0: field 'x' \(the answer\) must be a string or an integer, got float 7.0"):
+        UserTask(data=datasets.Dataset.from_list([{"q": "a", "x": 7}, {"q": "b", "x": 2.5}]), prompt_field="q", answer_field="x")
 
 
 def chat_tokenizer():

@@ -59,6 +59,9 @@ def _answer_table(examples: list[Example]) -> dict[str, str]:
     for i, ex in enumerate(examples):
         if ex.answer is None:
             raise ValueError(f"examples must all have an answer for an exact verifier, got answer=None at index {i} (prompt {ex.prompt!r})")
+        if not isinstance(ex.answer, str) or not ex.answer.strip():
+            raise ValueError(f"examples must all have a non-blank str answer for an exact verifier (a blank one rewards "
+                             f"an empty response), got answer={ex.answer!r} at index {i} (prompt {ex.prompt!r})")
         if table.get(ex.prompt, ex.answer) != ex.answer:
             raise ValueError(f"examples give two answers for prompt {ex.prompt!r}: {table[ex.prompt]!r} and {ex.answer!r}")
         table[ex.prompt] = ex.answer

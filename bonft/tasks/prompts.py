@@ -4,6 +4,9 @@ One JSON object per line, e.g. ``{"prompt": "2+2=", "answer": "4"}``; blank line
 are skipped, and a malformed line (not UTF-8, not JSON, not an object, nested too
 deeply, no prompt) raises ``ValueError`` naming the file and the line. With answers present, :func:`exact_match_verifier` scores a
 response 1 when it equals the answer after trimming and collapsing whitespace.
+An answer is a string or an integer (read as its decimal text, ``7`` -> ``"7"``);
+a null or blank one is a missing answer, and a float, a boolean or any other
+value is an error naming the line (:func:`answer_text`).
 
 Caution: an exact-match verifier is only as good as the answers in the file,
 and a model trained against any verifier learns what that verifier accepts
@@ -12,10 +15,11 @@ checker, never ``exec`` of model output in your own process.
 """
 from __future__ import annotations
 
+import numbers
 import os
 import random
 from pathlib import Path
-from typing import Sequence
+from typing import Any, Sequence
 
 from bonft._core.checks import check_int
 from bonft._core.jsonl import decode_utf8, parse_object
@@ -29,6 +33,23 @@ def normalize_text(response: str) -> str | None:
     return " ".join(response.split())
 
 
+def answer_text(value: Any, where: str, field: str) -> str | None:
+    """A row's answer as the exact checker compares it: a string whitespace-normalised, an integer as its
+    decimal text (``7`` -> ``"7"``), None when missing (null, or a blank string: a blank answer would
+    reward an empty response). A float, a boolean or any other value raises ``ValueError`` naming
+    ``where`` (the file and line): its text is Python's spelling (``7.0``, ``True``, ``100.0`` for
+    ``1e2``), which no right response need match, so the file must spell the answer as a string."""
+    if value is None:
+        return None
+    if isinstance(value, str):
+        return normalize_text(value) or None
+    if isinstance(value, numbers.Integral) and not isinstance(value, bool):
+        return str(int(value))
+    raise ValueError(f"{where}: field {field!r} (the answer) must be a string or an integer, got "
+                     f"{type(value).__name__} {value!r:.60}; write it as the string a right response must "
+                     f"match (e.g. \"7\", \"true\", \"100\")")
+
+
 def load_prompts_jsonl(
     path: str | os.PathLike,
     *,
@@ -38,10 +59,17 @@ def load_prompts_jsonl(
 ) -> list[Example]:
     """Examples from a local JSONL file, in file order.
 
-    ``answer`` is ``str(row[answer_field])`` (whitespace-normalised) or None when the file has no such
-    field; ``reference`` is ``row[reference_field]`` if present, else the answer (else ""); every
-    other field goes to ``meta``.
+    ``answer`` is the row's answer as :func:`answer_text` reads it (None when the file has no such
+    field, or the row's is null or blank; a float or boolean raises ``ValueError`` naming the line);
+    ``reference`` is ``row[reference_field]`` if present, else the answer (else ""); every other field
+    goes to ``meta``.
     """
+    return [ex for _, ex in _load_numbered(path, prompt_field=prompt_field, answer_field=answer_field,
+                                           reference_field=reference_field)]
+
+
+def _load_numbered(path: Any, *, prompt_field: str, answer_field: str, reference_field: str) -> list[tuple[int, Example]]:
+    """``[(line, Example)]`` of :func:`load_prompts_jsonl`."""
     if not isinstance(path, (str, os.PathLike)):
         raise TypeError(f"path must be a str or os.PathLike, got {type(path).__name__}")
     for name, value in (("prompt_field", prompt_field), ("answer_field", answer_field), ("reference_field", reference_field)):
@@ -60,13 +88,11 @@ def load_prompts_jsonl(
         prompt = row.get(prompt_field)
         if not isinstance(prompt, str) or not prompt:
             raise ValueError(f"{path} line {no}: field {prompt_field!r} must be a non-empty string, got {prompt!r}")
-        answer = None
-        if has_answer and row.get(answer_field) is not None:
-            answer = normalize_text(str(row[answer_field]))
+        answer = answer_text(row.get(answer_field), f"{path} line {no}", answer_field) if has_answer else None
         ref = row.get(reference_field) if reference_field in cols else None
         reference = str(ref) if ref is not None else (answer or "")
         meta = {k: v for k, v in row.items() if k not in (prompt_field, answer_field, reference_field)}
-        out.append(Example(prompt=prompt, answer=answer, reference=reference, meta=meta))
+        out.append((no, Example(prompt=prompt, answer=answer, reference=reference, meta=meta)))
     if not out:
         raise ValueError(f"path must hold at least one JSON line, got an empty file {str(path)!r}")
     return out
@@ -88,7 +114,9 @@ class PromptFileTask(Task):
     """A user's JSONL prompt set as a task (``get_task("jsonl", path=...)``).
 
     ``split`` shuffles the file's examples with ``seed`` and takes eval first,
-    then train (disjoint by position; duplicate prompts in the file are dropped).
+    then train (disjoint by position). A line repeating a prompt with the same fields is read once; the
+    same prompt with another answer or other fields is an error naming both lines (verifiers look
+    answers up by prompt).
     """
 
     name = "jsonl"
@@ -96,12 +124,20 @@ class PromptFileTask(Task):
 
     def __init__(self, *, path: str | os.PathLike, prompt_field: str = "prompt", answer_field: str = "answer"):
         super().__init__(path=str(path), prompt_field=prompt_field, answer_field=answer_field)
-        rows = load_prompts_jsonl(path, prompt_field=prompt_field, answer_field=answer_field)
-        seen, self.examples = set(), []
-        for ex in rows:
-            if ex.prompt not in seen:
-                seen.add(ex.prompt)
-                self.examples.append(ex)
+        rows = _load_numbered(path, prompt_field=prompt_field, answer_field=answer_field, reference_field="reference")
+        self.examples: list[Example] = []
+        self._where: dict[str, str] = {}
+        first: dict[str, Example] = {}
+        for no, ex in rows:
+            where = f"{path} line {no}"
+            if ex.prompt in first:
+                seen = first[ex.prompt]
+                if (seen.answer, seen.reference, seen.meta) != (ex.answer, ex.reference, ex.meta):
+                    raise ValueError(f"{where}: the prompt {ex.prompt[:60]!r} is also at {self._where[ex.prompt]} with "
+                                     "other fields; verifiers look answers up by prompt, so each prompt needs one row")
+                continue
+            first[ex.prompt], self._where[ex.prompt] = ex, where
+            self.examples.append(ex)
 
     def split(self, *, n_train: int, n_eval: int, seed: int = 0) -> tuple[list[Example], list[Example]]:
         n_train = check_int("n_train", n_train, min=0)
@@ -119,3 +155,13 @@ class PromptFileTask(Task):
 
     def extract_answer(self, response: str) -> str | None:
         return normalize_text(response)
+
+    def verifier(self, examples: Sequence[Example]) -> ExactVerifier:
+        """The exact checker; a prompt without an answer (absent, null or blank) is an error naming its line."""
+        examples = _check_examples(examples)
+        for ex in examples:
+            if ex.answer is None:
+                where = self._where.get(ex.prompt, f"prompt {ex.prompt!r:.60}")
+                raise ValueError(f"{where}: field {self.params['answer_field']!r} is missing (absent, null or blank), "
+                                 "and the exact verifier needs it (it compares each response with the answer)")
+        return ExactVerifier(examples, self.extract_answer)

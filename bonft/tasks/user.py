@@ -16,7 +16,10 @@ data:            a ``.jsonl`` file (read line by line; errors name the line), a
                  ``datasets.Dataset`` / ``DatasetDict`` object. Local only.
 prompt_field:    the column holding the prompt text (the only required field).
 answer_field:    optional column of exact answers (the ``exact`` verifier
-                 compares the whitespace-normalised response with it).
+                 compares the whitespace-normalised response with it): a
+                 string, or an integer read as its decimal text; a null or
+                 blank cell is a missing answer, a float or boolean an error
+                 naming the row (see :func:`~bonft.tasks.prompts.answer_text`).
 reference_field: optional column of full reference responses (what a warm
                  start trains on).
 tests_field:     optional column of unit tests (see
@@ -54,7 +57,7 @@ from typing import Any, Callable, Sequence
 
 from bonft._core.checks import check_int
 from bonft.tasks.base import ExactVerifier, Example, Task, _check_examples
-from bonft.tasks.prompts import _read_jsonl, normalize_text
+from bonft.tasks.prompts import _read_jsonl, answer_text, normalize_text
 from bonft.verifiers.fields import bind_rows
 
 FILE_FORMATS = {".json": "json", ".parquet": "parquet"}  # read through datasets; .jsonl and .csv: our readers
@@ -265,9 +268,7 @@ class UserTask(Task):
                                      "verifiers look rows up by prompt, so each prompt needs one row")
                 continue
             first[raw] = (fields, where)
-            answer = None
-            if answer_field is not None and row.get(answer_field) is not None:
-                answer = normalize_text(str(row[answer_field]))
+            answer = None if answer_field is None else answer_text(row.get(answer_field), where, answer_field)
             reference = ""
             if reference_field is not None and row.get(reference_field) is not None:
                 ref = row[reference_field]
@@ -304,8 +305,8 @@ class UserTask(Task):
                 if field is None:
                     raise ValueError("the exact verifier compares each response with an answer, but answer_field is not set: "
                                      "set answer_field to the column of answers, or name your own verifier")
-                raise ValueError(f"{where}: field {field!r} is missing, and the exact verifier needs it (it compares "
-                                 "each response with the answer); add it or name your own verifier")
+                raise ValueError(f"{where}: field {field!r} is missing (absent, null or blank), and the exact verifier "
+                                 "needs it (it compares each response with the answer); add it or name your own verifier")
         return ExactVerifier(examples, normalize_text)
 
     @property
