@@ -21,7 +21,7 @@ from bonft.verifiers.answers import canonical_answer, parse_number
         ("ratio 3/4", "3/4"),
         ("no digits at all", None),
         ("", None),
-        ("answer is ４２", "42"),                      # full-width digits (NFKC)
+        ("answer is ４２", "42"),                      # full-width digits (folded to ASCII)
         ("the value is −7", "-7"),                    # U+2212 minus sign
         ("the value is ٤٢", None),                    # Arabic-Indic digits are not numbers here (documented choice)
         ("version2 has 3 parts", "3"),                # digits glued to a word are not a number

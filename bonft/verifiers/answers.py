@@ -113,8 +113,8 @@ def extract_answer(text: str, *, pattern: str | re.Pattern[str] | None = None) -
     """The final answer in ``text`` (see the module docstring for the rule), or None.
 
     pattern: a regex; its last match is the answer -- the group named
-             ``answer`` if there is one, else group 1, else the whole match.
-             Matching runs on the NFKC-normalised text.
+             ``answer`` if there is one, else group 1, else the whole match (empty: no answer).
+             Matching runs on the folded text (full-width forms as ASCII, dashes as ``-``).
 
     >>> extract_answer("2 + 2 is 4, so the answer is 4.")
     '4'
@@ -148,7 +148,7 @@ def parse_number(text: str | None) -> float | None:
 
 
 def canonical_answer(text: str) -> str:
-    """Default normalisation for :class:`ExactMatch`: NFKC, minus signs, trim,
+    """Default normalisation for :class:`ExactMatch`: full-width forms, minus signs and dashes folded, trim,
     collapse whitespace, casefold, drop one trailing ``.``."""
     text = " ".join(unify_text(text).split()).casefold()
     return text[:-1].rstrip() if text.endswith(".") else text
