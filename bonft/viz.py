@@ -363,7 +363,7 @@ def plot_plan_heatmap(res, path) -> str:
     mesh = ax.pcolormesh(k_edges, t_edges, res.value[order], cmap="viridis", shading="flat")
     fig.colorbar(mesh, ax=ax, label="best-of-k value V_k(T)")
     ax.plot(ks, res.best_temperature, "o", ms=3 if ks.size > 40 else 5, mfc="white", mec="black", label="best T at k")
-    if res.mode != "exact":
+    if getattr(res, "intervals_valid", res.mode != "exact"):  # no test without intervals (exact, < 10 prompts)
         near_t = [(k, t) for i, t in enumerate(T) for j, k in enumerate(ks) if res.near_best[i, j] and i != res.best_index[j]]
         if near_t:
             nk, nt = zip(*near_t)
@@ -392,7 +392,8 @@ def curve_temperatures(res, n_other: int = 3) -> list[int]:
 
 
 def plot_plan_curves(res, path) -> str:
-    """V against k (log axis) at the best temperatures and a few others, CI bands in sampling mode.
+    """V against k (log axis) at the best temperatures and a few others, CI bands in sampling mode (not with fewer
+    than 10 prompts, where there is no interval).
 
     res: a :class:`bonft.plan.PlanResult`; path: a file path (missing folders are made)."""
     _check_object("res", res, _PLAN, (*_PLAN_ATTRS, "lo", "hi", "budgets", "confidence"))
@@ -400,6 +401,7 @@ def plot_plan_curves(res, path) -> str:
     plt = _plt()
     fig, ax = plt.subplots(figsize=(7, 4.2), dpi=110)
     ks = res.ks
+    bands = getattr(res, "intervals_valid", res.mode != "exact")  # exact mode, or < 10 prompts: no interval to draw
     for i in curve_temperatures(res):
         t = res.temperatures[i]
         label = f"T={t:g}"
@@ -408,7 +410,7 @@ def plot_plan_curves(res, path) -> str:
         elif i == res.best_index[0]:
             label += " (best at k=1)"
         (line,) = ax.plot(ks, res.value[i], lw=1.6, label=label)
-        if res.mode != "exact":
+        if bands:
             ax.fill_between(ks, res.lo[i], res.hi[i], color=line.get_color(), alpha=0.18, lw=0)
     env = res.value[res.best_index, np.arange(ks.size)]
     ax.plot(ks, env, "k--", lw=1, label="best T at each k")
@@ -418,7 +420,7 @@ def plot_plan_curves(res, path) -> str:
     _log2_k_axis(ax, int(ks[-1]))
     ax.set_xlabel("k (samples per prompt)")
     ax.set_ylabel("best-of-k value V_k(T)")
-    band = "" if res.mode == "exact" else f", bands: {res.confidence:.0%} CI over prompts"
+    band = f", bands: {res.confidence:.0%} CI over prompts" if bands else ""
     ax.set_title(f"best-of-k value against k{band}", fontsize=10)
     ax.grid(alpha=0.3)
     ax.legend(fontsize=8)

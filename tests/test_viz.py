@@ -215,3 +215,26 @@ def _strategy_curves():
 
     rng = np.random.default_rng(0)
     return compare_strategies(["best_of_k"], ks=[1, 2], rewards=rng.random((5, 4)), scores=rng.random((5, 4)), n_boot=10)
+
+
+def test_plan_curves_draw_no_bands_and_heatmap_no_marks_without_intervals(closed_figures, tmp_path):
+    # fewer than 10 prompts: no interval (the rule of bonft estimate, docs/estimate.md), so no "95% CI" bands and no
+    # "not significantly worse" dots; 12 prompts draw both (a band is a PolyCollection from fill_between)
+    from matplotlib.collections import PolyCollection
+
+    from bonft.plan import Pools, plan_pools
+
+    rng = np.random.default_rng(0)
+
+    def plan(P):
+        s = rng.integers(0, 2, size=(P, 4)).astype(float)
+        return plan_pools({0.5: Pools(s, s.copy()), 1.0: Pools(s.copy(), s.copy())}, n_boot=50)
+
+    for P, drawn in ((3, False), (12, True)):
+        res = plan(P)
+        viz.plot_plan_curves(res, tmp_path / f"c{P}.png")
+        viz.plot_plan_heatmap(res, tmp_path / f"h{P}.png")
+        curves, heat = closed_figures[-2].axes[0], closed_figures[-1].axes[0]
+        assert any(isinstance(c, PolyCollection) for c in curves.collections) == drawn
+        assert ("CI over prompts" in curves.get_title()) == drawn
+        assert any(ln.get_label() == "not significantly worse" for ln in heat.lines) == drawn

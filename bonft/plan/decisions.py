@@ -86,9 +86,12 @@ def finish(*, mode, temps, ks, value, lo, hi, boot, confidence, n_boot, paired, 
     best_index = np.argmax(value, axis=0)  # (K,) first maximum, i.e. the lowest such temperature
     cols = np.arange(K)
     if boot is None:
-        near = value >= value[best_index, cols][None, :] - 1e-12  # exact: only ties
+        near = value >= value[best_index, cols][None, :] - 1e-12  # exact (or too few prompts to test): only ties
     else:
-        alpha = 1.0 - confidence
+        # the best temperature is picked from the same data as the gaps: each of the T - 1 comparisons at a k is made
+        # at level alpha / (T - 1) (Bonferroni; Dunn 1961), so the truly best temperature is marked worse with
+        # probability <= alpha whichever temperature the data picked
+        alpha = (1.0 - confidence) / max(T - 1, 1)
         diff = boot[:, best_index, cols][:, None, :] - boot  # (B, T, K): best minus each temperature, paired draws
         near = not_worse(diff, alpha)
 
@@ -117,16 +120,20 @@ def finish(*, mode, temps, ks, value, lo, hi, boot, confidence, n_boot, paired, 
         note = None if (mask[:, -1] == False).all() else "budget affords the largest measured k at some temperature: larger N not measured"  # noqa: E712
         budgets.append(_choose(value, lo, hi, boot, confidence, mask, ks, temps, cost, kind="tokens", budget=b, note=note))
 
-    doubling, stops = [], None
+    doubling = []
     rounding = (ROUNDING * float(np.ptp(value)) + ULPS * np.finfo(float).eps * float(np.abs(value).max()))
     k = 1
     while 2 * k <= K:
         t0, t1 = int(best_index[k - 1]), int(best_index[2 * k - 1])
         g, glo, ghi = cell_gap(t1, 2 * k, t0, k)
-        doubling.append(DoublingStep(k=k, temperature_k=float(temps[t0]), temperature_2k=float(temps[t1]), gain=g, lo=glo, hi=ghi))
-        if stops is None and (glo if boot is not None else g) <= min_gain + rounding:
-            stops = k
+        pays = (glo if boot is not None else g) > min_gain + rounding
+        doubling.append(DoublingStep(k=k, temperature_k=float(temps[t0]), temperature_2k=float(temps[t1]), gain=g, lo=glo,
+                                     hi=ghi, pays=bool(pays)))
         k *= 2
+    # doubling stops paying after the last step that pays: from there on no step is (significantly) above min_gain
+    paying = [i for i, d in enumerate(doubling) if d.pays]
+    after = paying[-1] + 1 if paying else 0
+    stops = doubling[after].k if after < len(doubling) else None
 
     return PlanResult(
         mode=mode,
@@ -166,7 +173,10 @@ def _choose(value, lo, hi, boot, confidence, mask, ks, temps, cost, *, kind, bud
     if boot is not None:
         cells = np.argwhere(mask)  # (m, 2) affordable (t, j)
         diff = boot[:, t, j][:, None] - boot[:, cells[:, 0], cells[:, 1]]  # (B, m) chosen minus each affordable cell
-        ok = not_worse(diff, 1 - confidence)
+        # the choice is picked from the same data: m - 1 comparisons, each at level alpha / (m - 1) (Bonferroni;
+        # Dunn 1961), so the truly best affordable cell is among the choice and its alternatives with probability
+        # >= confidence
+        ok = not_worse(diff, (1 - confidence) / max(len(cells) - 1, 1))
         near = [(a, b) for (a, b), keep in zip(cells.tolist(), ok) if keep and (a, b) != (t, j)]
         near.sort(key=lambda ab: -value[ab[0], ab[1]])  # closest to the choice first
         alts = [(float(temps[a]), int(ks[b])) for a, b in near]

@@ -35,7 +35,11 @@ class BudgetChoice:
 
 @dataclass
 class DoublingStep:
-    """Gain of doubling N at the best temperatures: V_2k(T*(2k)) - V_k(T*(k)) with its CI."""
+    """Gain of doubling N at the best temperatures: V_2k(T*(2k)) - V_k(T*(k)) with its CI.
+
+    pays: the gain is significantly above ``min_gain`` (its CI's lower bound is; exact mode or too few prompts for
+    an interval: the gain itself is).
+    """
 
     k: int
     temperature_k: float
@@ -43,6 +47,7 @@ class DoublingStep:
     gain: float
     lo: float
     hi: float
+    pays: bool = True
 
 
 @dataclass
@@ -74,10 +79,12 @@ class PlanResult:
     value, lo, hi: (T, K) V_k(T) and its CI over prompts (lo = hi = value when mode == "exact").
     best_index, best_temperature: (K,) argmax over temperatures per k (ties: lowest temperature).
     near_best: (T, K) bool, True where the temperature is not significantly worse than the best
-        at that k (paired bootstrap of the gap when ``paired``; exact mode: ties only).
+        at that k (paired bootstrap of the gap when ``paired``, each of the T - 1 gaps at level (1 - confidence) /
+        (T - 1), Bonferroni; exact mode and fewer than 10 prompts: ties only).
     gain_one: (T, K-1) V_{k+1} - V_k for k = 1..K-1. gain_double: (T, K//2) V_2k - V_k for k = 1..K//2.
     doubling: DoublingStep for k = 1, 2, 4, ... at the best temperatures; doubling_stops_at: the
-        first such k whose gain is not significantly above ``min_gain`` (None: it kept paying).
+        k after the last step whose gain is significantly above ``min_gain``, so that no step from there on is
+        (None: the last step still pays; 1: none does). Earlier steps may not pay either (``DoublingStep.pays``).
     n_prompts: (T,) prompts at each temperature; smallest_pool: (T,) the smallest pool (samples of one
         prompt) at each temperature, None in exact mode.
     mean_tokens: (T,) mean generated tokens per response, or None.
@@ -112,6 +119,12 @@ class PlanResult:
     no_interval: np.ndarray | None = None
 
     # ------------------------------------------------------------------ views
+    @property
+    def intervals_valid(self) -> bool:
+        """True when lo/hi are confidence intervals: sampling mode with at least MIN_BOOT_PROMPTS prompts at every
+        temperature (fewer: no interval, no significance test, as in ``bonft estimate``). False in exact mode."""
+        return self.mode != "exact" and int(np.min(self.n_prompts)) >= MIN_BOOT_PROMPTS
+
     def value_at(self, temperature: float, k: int) -> float:
         """V_k(T) at one grid cell."""
         t = int(np.argmin(np.abs(self.temperatures - float(temperature))))
@@ -137,7 +150,10 @@ class PlanResult:
         head = f"best-of-k value V_k(T), {self.mode} mode, {int(self.n_prompts.max())} prompts"
         if not exact:
             head += f", {'paired' if self.paired else 'unpaired'} bootstrap {confidence_label(self.confidence)} CI ({self.n_boot} resamples)"
-        lines = [head, "  * best temperature at k   ~ not significantly worse" if not exact else "  * best temperature at k"]
+        legend = "  * best temperature at k"
+        if not (exact or few):
+            legend += "   ~ not significantly worse" + (f" (Bonferroni over {T.size - 1} comparisons)" if T.size > 2 else "")
+        lines = [head, legend]
         cols = "".join(f"{'T=' + format(t, 'g'):>10}" for t in T)
         lines.append(f"{'k':>5} {cols}   {'best T':>6}  {'V at best' + ('' if exact else ' [CI]')}")
         for k in self.table_ks():
@@ -145,13 +161,16 @@ class PlanResult:
             b = int(self.best_index[j])
             cells = ""
             for t in range(T.size):
-                mark = "*" if t == b else ("~" if self.near_best[t, j] else " ")
+                mark = "*" if t == b else ("~" if self.near_best[t, j] and not few else " ")
                 cells += f"{self.value[t, j]:>9.4f}{mark}"
             ci = "" if exact else (" [n/a]" if few else self._ci(b, j))
             lines.append(f"{k:>5} {cells}   {T[b]:>6g}  {self.value[b, j]:.4f}{ci}")
         if few:
             lines.append(f"intervals n/a: {int(np.min(self.n_prompts))} prompt(s) at some temperature; a bootstrap over "
                          f"prompts needs at least {MIN_BOOT_PROMPTS} (the choices above are not significance-tested)")
+        if not (exact or few) and T.size > 1:
+            lines.append("V at best is the largest of several estimates: biased upward, its interval covers less than "
+                         "its nominal level (docs/planning.md)")
         flat = self._no_spread_note() if not (exact or few) else None
         if flat:
             lines.append(flat)
@@ -170,13 +189,19 @@ class PlanResult:
                 lines.append(f"    note: {c.note}")
         if self.doubling:
             lines.append("doubling N at the best temperature: " + ", ".join(f"{d.k}->{2 * d.k}: {d.gain:+.4f}" for d in self.doubling))
-            if self.doubling_stops_at is None:
-                lines.append(f"    doubling kept paying (gain > {self.min_gain:g}) up to k={int(self.ks[-1])}")
+            sig = "" if exact or few else " significantly"
+            k = self.doubling_stops_at
+            if k is None:
+                lines.append(f"    doubling kept paying (gain{sig} > {self.min_gain:g}) up to k={int(self.ks[-1])}")
             else:
-                sig = "" if exact else " significantly"
-                k = self.doubling_stops_at
-                g = next(d.gain for d in self.doubling if d.k == k)
-                lines.append(f"    doubling stops paying from k={k}: {k}->{2 * k} gains {g:+.4f}, not{sig} above {self.min_gain:g}")
+                tail = [d for d in self.doubling if d.k >= k]
+                gains = ", ".join(f"{d.k}->{2 * d.k} gains {d.gain:+.4f}" for d in tail)
+                lines.append(f"    doubling stops paying from k={k}: {gains}, "
+                             + (f"not{sig} above" if len(tail) == 1 else f"none{sig} above") + f" {self.min_gain:g}")
+            early = [d for d in self.doubling if not d.pays and (k is None or d.k < k)]
+            if early:
+                lines.append("    (earlier, " + ", ".join(f"{d.k}->{2 * d.k} ({d.gain:+.4f})" for d in early)
+                             + f" {'was' if len(early) == 1 else 'were'} not{sig} above {self.min_gain:g}; later steps were)")
         f = self.fit
         r2 = "undefined (constant)" if f.r2 is None else f"{f.r2:.3f}"
         lines.append(
@@ -205,8 +230,14 @@ class PlanResult:
                 f"too, and it is at no known bound of the rewards: no interval (see docs/estimate.md)")
 
     def to_dict(self) -> dict:
-        """JSON-able dict (lists, floats, None); CIs are null in exact mode."""
+        """JSON-able dict (lists, floats, None); CIs are null in exact mode and, with ``intervals_valid`` false, with
+        fewer than 10 prompts (there the budgets' and doubling steps' lo/hi are null too)."""
         exact = self.mode == "exact"
+        valid = self.intervals_valid
+        few = not (exact or valid)
+
+        def no_ci(d: dict) -> dict:
+            return dict(d, lo=None, hi=None) if few else d
 
         def arr(x):
             return None if x is None else np.asarray(x).tolist()
@@ -217,8 +248,9 @@ class PlanResult:
             "temperatures": arr(self.temperatures),
             "ks": arr(self.ks),
             "value": arr(self.value),
-            "lo": None if exact else arr(self.lo),
-            "hi": None if exact else arr(self.hi),
+            "lo": arr(self.lo) if valid else None,
+            "hi": arr(self.hi) if valid else None,
+            "intervals_valid": valid,
             "confidence": self.confidence,
             "n_boot": self.n_boot,
             "paired": self.paired,
@@ -229,10 +261,10 @@ class PlanResult:
             "near_best": arr(self.near_best),
             "gain_one": arr(self.gain_one),
             "gain_double": arr(self.gain_double),
-            "doubling": [d.__dict__ for d in self.doubling],
+            "doubling": [no_ci(d.__dict__) for d in self.doubling],
             "doubling_stops_at": self.doubling_stops_at,
             "min_gain": self.min_gain,
-            "budgets": [dict(c.__dict__, alternatives=[list(a) for a in c.alternatives]) for c in self.budgets],
+            "budgets": [no_ci(dict(c.__dict__, alternatives=[list(a) for a in c.alternatives])) for c in self.budgets],
             "best_temperature_fit": {
                 "caveat": f.caveat,
                 "ks": arr(f.ks),

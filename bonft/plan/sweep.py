@@ -52,7 +52,7 @@ from bonft._core.checks import (
     check_real,
     check_seed,
 )
-from bonft.estimate import best_of_k_per_prompt, bootstrap_ci, reward_bounds
+from bonft.estimate import MIN_BOOT_PROMPTS, best_of_k_per_prompt, bootstrap_ci, reward_bounds
 from bonft.io import group_pools, same_temperature, temperature_label, temperatures_of
 from bonft.plan.decisions import bootstrap_means, finish, fit_best_temperature
 from bonft.plan.result import BudgetChoice, DoublingStep, PlanResult, TemperatureFit
@@ -305,7 +305,7 @@ def plan_pools(
         value=value,
         lo=lo,
         hi=hi,
-        boot=boot,
+        boot=boot if min(v.shape[0] for v in per_prompt) >= MIN_BOOT_PROMPTS else None,  # too few prompts: no tests
         confidence=confidence,
         n_boot=n_boot,
         paired=paired,
