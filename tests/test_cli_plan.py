@@ -236,3 +236,16 @@ def test_a_named_temperature_field_must_be_in_the_file(tmp_path, capsys):
     assert main(["plan", "--samples", str(path), "--temperature-field", "temp", "--n-boot", "20"]) == 2
     assert "'temp'" in capsys.readouterr().err
     assert main(["plan", "--samples", str(path), "--temperature-field", "temperature", "--n-boot", "20"]) == 0
+
+
+@pytest.mark.parametrize("extra, match", [
+    (["--confidence", "1.5"], r"confidence must be in \(0, 1\)"),
+    (["--budget-samples", "0"], "budget_samples must be >= 1"),
+    (["--budget-tokens", "-1"], "budget_tokens must be a finite number > 0"),
+    (["--min-gain", "nan"], "min_gain must be a finite number"),
+])
+def test_plan_model_mode_refuses_bad_planner_options_before_loading_a_model(tmp_path, extra, match, capsys):
+    # the model directory does not exist: an option error must come first, before any load or sampling
+    argv = ["plan", "--model", str(tmp_path / "no-model"), "--task", "ledger", "--quiet", *extra]
+    assert main(argv) == 2
+    assert re.search(match, capsys.readouterr().err)

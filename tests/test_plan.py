@@ -618,3 +618,24 @@ def test_exact_mode_with_rewards_at_the_edge_of_float64_is_finite():
     big = np.finfo(float).max
     res = plan_exact(logits=LOGITS, scores=SCORES, rewards=np.full((2, 4), big), temperatures=[0.5, 1.0], max_k=4)
     assert (res.value == big).all()
+
+
+@pytest.mark.parametrize("kw, exc, match", [
+    (dict(confidence=1.5), ValueError, r"confidence must be in \(0, 1\), got confidence=1.5"),
+    (dict(budget_samples=0), ValueError, "budget_samples must be >= 1, got budget_samples=0"),
+    (dict(budget_tokens=-1), ValueError, "budget_tokens must be a finite number > 0"),
+    (dict(min_gain=float("nan")), ValueError, "min_gain must be a finite number, got min_gain=nan"),
+    (dict(n_boot=3), ValueError, "n_boot"),
+    (dict(budget_sample=4), TypeError, r"unknown planner option\(s\) \['budget_sample'\]"),
+])
+def test_plan_model_checks_every_planner_option_before_sampling(kw, exc, match, monkeypatch):
+    # a bad option used to be refused only after the whole temperature grid had been sampled
+    import bonft.plan.from_model as fm
+
+    def no_sampling(*a, **k):
+        raise AssertionError("sampled before the options were checked")
+
+    monkeypatch.setattr(fm, "sample", no_sampling)
+    with pytest.raises(exc, match=match):
+        fm.plan_model(None, None, ["a prompt"], lambda p, r: [0.0] * len(r), temperatures=[0.5, 1.0], n=4,
+                      progress=False, **kw)

@@ -184,6 +184,7 @@ def _plan_kwargs(args) -> dict:
 
 def run(args) -> int:
     from bonft.plan import plan_exact, plan_samples
+    from bonft.plan.sweep import check_plan_options
 
     given = [x for x in ("samples", "model", "exact") if getattr(args, x)]
     if len(given) != 1:
@@ -200,6 +201,8 @@ def run(args) -> int:
         raise ValueError("--strategy needs --samples FILE.jsonl or --exact FILE.json, got --model")
     _refuse_inert(args, given[0], bool(names))
     check_sizes(args)
+    # every planner option before any file is read or any model loaded and sampled
+    check_plan_options(confidence=args.confidence, n_boot=args.n_boot, seed=args.seed, **_plan_kwargs(args))
     info = None
     if args.samples:
         from bonft.io import read_samples

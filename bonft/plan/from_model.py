@@ -21,11 +21,11 @@ from typing import Any, Callable, Sequence
 import numpy as np
 from tqdm.auto import tqdm
 
-from bonft._core.checks import MAX_POOL, MIN_BOOT, check_bound, check_fraction, check_int, check_n_boot, check_seed
+from bonft._core.checks import MAX_POOL, check_bound, check_fraction, check_int, check_seed
 from bonft._core.seeds import derive_seed, float_key
 from bonft.generation.sampling import sample
 from bonft.io import SampleTable, read_samples, write_samples
-from bonft.plan.sweep import _check_temperatures, plan_samples
+from bonft.plan.sweep import PLAN_OPTIONS, _check_temperatures, check_plan_options, plan_samples
 from bonft.verifiers import score_batch
 from bonft.verifiers.base import verifier_name as name_of_verifier
 
@@ -192,11 +192,15 @@ def plan_model(
 ):
     """Draw pools from a model (see :func:`draw_samples`), then :func:`bonft.plan.sweep.plan_samples`.
 
-    plan_kwargs: max_k, budget_samples, budget_tokens, confidence, n_boot, min_gain (seed is shared).
+    plan_kwargs: max_k, budget_samples, budget_tokens, confidence, n_boot, min_gain (seed is shared); each is
+    checked, and an unknown keyword refused, before any sampling.
     -> (PlanResult, info).
     """
-    if "n_boot" in plan_kwargs:  # the planner's knobs before any sampling (plan_samples checks them all again)
-        check_n_boot(plan_kwargs["n_boot"], min=MIN_BOOT)
+    unknown = sorted(set(plan_kwargs) - (set(PLAN_OPTIONS) - {"seed"}))
+    if unknown:
+        raise TypeError(f"plan_model got unknown planner option(s) {unknown}; plan_kwargs takes "
+                        f"{', '.join(o for o in PLAN_OPTIONS if o != 'seed')}")
+    check_plan_options(seed=seed, **plan_kwargs)  # the planner's knobs before any sampling
     if plan_kwargs.get("max_k") is not None and check_int("max_k", plan_kwargs["max_k"], min=1) > n:
         raise ValueError(f"max_k must be <= n (n={n}, the samples drawn per prompt), got max_k={plan_kwargs['max_k']}")
     table, info = draw_samples(model, tokenizer, prompts, verifier, temperatures=temperatures, n=n, seed=seed,

@@ -128,6 +128,22 @@ def _check_budgets(name: str, budgets: Any, *, integer: bool) -> list:
     return [check_positive(name, b) for b in items]
 
 
+PLAN_OPTIONS = ("max_k", "budget_samples", "budget_tokens", "confidence", "n_boot", "seed", "min_gain")
+
+
+def check_plan_options(*, max_k: Any = None, budget_samples: Any = None, budget_tokens: Any = None,
+                       confidence: Any = 0.95, n_boot: Any = 2000, seed: Any = 0, min_gain: Any = 0.0) -> None:
+    """The planner's options on their own, before any data is read or sampled (:func:`plan_pools` checks them again)."""
+    check_fraction("confidence", confidence, open_low=True, open_high=True)
+    check_n_boot(n_boot, min=MIN_BOOT)
+    check_seed(seed)
+    check_real("min_gain", min_gain)
+    if max_k is not None:
+        _check_max_k(max_k)
+    _check_budgets("budget_samples", budget_samples, integer=True)
+    _check_budgets("budget_tokens", budget_tokens, integer=False)
+
+
 def _pool_sizes(scores: Any) -> np.ndarray:
     if isinstance(scores, np.ndarray) and scores.ndim == 2:
         return np.full(scores.shape[0], scores.shape[1], dtype=np.int64)
