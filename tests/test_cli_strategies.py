@@ -251,3 +251,42 @@ def test_strategy_plan_with_a_shorter_pool_at_a_later_temperature(tmp_path, caps
     out = capsys.readouterr().out
     table = out[out.index("best servable strategy"):].splitlines()
     assert len(table) == 3 and table[2].split()[:2] == ["1", "best_of_k"] and table[2].endswith("no spread")
+
+
+def test_plan_exact_strategies_on_two_prompts_average_the_prompts(tmp_path, capsys):
+    # the layout docs/planning.md documents: logits (P, V), one row per prompt, prompts weighted equally.
+    # reference: majority vote and best-of-k over every ordered 2-tuple of each prompt's softmax(logits / T),
+    # averaged over the two prompts (definition)
+    spec = {"logits": [[1.5, 0.5, 0.0, -1.0], [1.0, 0.8, 0.0, -1.2]], "scores": [[0.5, 0.2, 0.4, 0.1], [0.3, 0.2, 0.4, 0.9]],
+            "rewards": [[1, 0, 1, 0], [0, 0, 0, 1]], "answers": [["a", "b", "a", "c"], ["x", "y", "z", "w"]]}
+    f, out = tmp_path / "e.json", tmp_path / "o.json"
+    f.write_text(json.dumps(spec))
+    assert main(["plan", "--exact", str(f), "--temperatures", "0.7", "--strategy", "majority_vote,best_of_k",
+                 "--max-k", "2", "--json", str(out)]) == 0
+    capsys.readouterr()
+    want_mv, want_bon = [], []
+    for lg, sc, rw, an in zip(spec["logits"], spec["scores"], spec["rewards"], spec["answers"]):
+        z = np.array(lg) / 0.7
+        p = np.exp(z - z.max())
+        p /= p.sum()
+        mv = bon = 0.0
+        for t in itertools.product(range(4), repeat=2):
+            c = Counter(an[i] for i in t)
+            win = [a for a in c if c[a] == max(c.values())]
+            mv += np.prod(p[list(t)]) * np.mean([np.mean([rw[i] for i in t if an[i] == a]) for a in win])
+            top = max(sc[i] for i in t)
+            bon += np.prod(p[list(t)]) * np.mean([rw[i] for i in t if sc[i] == top])
+        want_mv.append(mv), want_bon.append(bon)
+    got = json.loads(out.read_text())["values"]
+    assert abs(got["majority_vote@T=0.7"][1] - np.mean(want_mv)) < 1e-12
+    assert abs(got["best_of_k@T=0.7"][1] - np.mean(want_bon)) < 1e-12
+
+
+def test_plan_exact_strategies_report_a_conflicting_reward_not_an_empty_table(tmp_path, capsys):
+    # answer 'a' has rewards 1 and 0: strategy_value's own error, which a size-limit handler used to swallow before
+    # failing on "max() arg is an empty sequence"
+    f = tmp_path / "e.json"
+    f.write_text(json.dumps({"logits": [1.5, 0.5, 0.0, -1.0], "scores": [0.5, 0.2, 0.5, 0.1], "rewards": [1, 0, 0, 0],
+                             "answers": ["a", "b", "a", "c"]}))
+    assert main(["plan", "--exact", str(f), "--temperatures", "1", "--strategy", "majority_vote", "--max-k", "3"]) == 2
+    assert "rewards must be one value per answer for majority_vote, got answer 'a'" in capsys.readouterr().err

@@ -118,6 +118,10 @@ def run_plan(args, table, temps_wanted) -> int:
             raise ValueError(f"--temperatures must be in the file's [{', '.join(temperature_label(f) for f in temps if f is not None)}], "
                              f"got {missing}")
         temps = [next(f for f in temps if same_temperature(t, f)) for t in temps_wanted]
+        for i, f in enumerate(temps):
+            if f in temps[:i]:
+                raise ValueError(f"--temperatures must select distinct pools, got {temps_wanted[temps.index(f)]!r} and "
+                                 f"{temps_wanted[i]!r}, both the file's {temperature_label(f)} (equal as float32)")
     ks = None if args.max_k is None else list(range(1, args.max_k + 1))
     sel = {t: t if len(temperatures_of(table)) > 1 else None for t in temps}  # the pools' temperature filter
     if ks is None:  # one k grid for every temperature: up to the smallest pool of them all
@@ -155,6 +159,36 @@ def run_plan(args, table, temps_wanted) -> int:
     return 0
 
 
+def _exact_rows(spec: dict):
+    """The exact spec as P rows: logits (P, V), scores and rewards (P, V), answers P lists (None without them).
+
+    ``logits`` is (V,) or (P, V) (P prompts, weighted equally); scores and rewards broadcast against it; answers
+    are one key per outcome, (V,) shared by every prompt or (P, V)."""
+    from bonft._core.checks import as_float_array
+
+    logits = as_float_array("logits", spec["logits"], ndim=(1, 2))
+    rows = logits.reshape(-1, logits.shape[-1])
+    P, V = rows.shape
+    out = [rows]
+    for key in ("scores", "rewards"):
+        x = as_float_array(key, spec[key])
+        try:
+            out.append(np.broadcast_to(x, (P, V)).copy())
+        except ValueError:
+            raise ValueError(f"{key} must broadcast against the logits' ({P}, {V}) outcomes, got shape "
+                             f"{tuple(x.shape)}") from None
+    answers = spec.get("answers")
+    if answers is None:
+        return (*out, [None] * P)
+    if not isinstance(answers, list) or not answers:
+        raise TypeError(f"answers must be a list of one key per outcome, got {type(answers).__name__}")
+    if all(isinstance(a, list) for a in answers):  # (P, V)
+        if len(answers) != P:
+            raise ValueError(f"answers must hold one row per prompt ({P} rows, as the logits), got {len(answers)}")
+        return (*out, answers)
+    return (*out, [answers] * P)  # (V,): the same keys for every prompt
+
+
 def run_plan_exact(args, spec: dict, temps: list) -> int:
     """``bonft plan --exact F --strategy ...``: exact V_k of each strategy over temperature x k, the best per k."""
 
@@ -167,18 +201,26 @@ def run_plan_exact(args, spec: dict, temps: list) -> int:
     if any(get_strategy(s).uses_answers for s in names) and "answers" not in spec:
         raise ValueError("--exact with --strategy majority_vote/weighted_vote needs an 'answers' field (one key per outcome)")
     max_k = args.max_k or 64
-    grid = {}  # (T, strategy) -> (K,) values, nan where not computable (weighted vote beyond its limit)
+    logits, scores, rewards, answers = _exact_rows(spec)  # one row per prompt, prompts weighted equally
+
+    def value(st, probs, k):  # mean over prompts of the strategy's exact V_k
+        return float(np.mean([strategy_value(st, probs[i], k=k, rewards=rewards[i],
+                                             scores=scores[i] if st.uses_scores else None,
+                                             answers=answers[i] if st.uses_answers else None)
+                              for i in range(len(logits))]))
+
+    grid = {}  # (T, strategy) -> (K,) values, nan where not computable (a vote beyond its k limit)
     for t in temps:
-        probs = softmax_policy(np.asarray(spec["logits"], dtype=float), temperature=t)
+        probs = softmax_policy(logits, temperature=t)
         for s in names:
-            row = []
-            for k in range(1, max_k + 1):
+            st = get_strategy(s)
+            row = [value(st, probs, 1)]  # the file's errors (a conflicting reward, a bad shape) surface here
+            for k in range(2, max_k + 1):
                 try:
-                    st = get_strategy(s)
-                    row.append(float(strategy_value(st, probs, k=k, rewards=spec["rewards"],
-                                                    scores=spec["scores"] if st.uses_scores else None,
-                                                    answers=spec.get("answers") if st.uses_answers else None)))
-                except ValueError:  # weighted vote: too many count vectors for this k
+                    row.append(value(st, probs, k))
+                except ValueError as e:  # the exact vote values' limits on k (float64 factorials, count vectors)
+                    if not str(e).startswith("k must"):
+                        raise
                     row.append(float("nan"))
             grid[t, s] = np.array(row)
     servable = [s for s in names if get_strategy(s).servable] or names
