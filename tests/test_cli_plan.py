@@ -249,3 +249,28 @@ def test_plan_model_mode_refuses_bad_planner_options_before_loading_a_model(tmp_
     argv = ["plan", "--model", str(tmp_path / "no-model"), "--task", "ledger", "--quiet", *extra]
     assert main(argv) == 2
     assert re.search(match, capsys.readouterr().err)
+
+
+@pytest.mark.parametrize("spec, extra, match", [
+    ({"temperatures": [1.0]}, ["--temperatures", "0.5"],
+     r"--exact takes the temperatures once: --temperatures or the file's 'temperatures' field, got both"),
+    ({"temperatures": [1.0], "answers": ["a", "b"]}, [],
+     r"--exact file's 'answers' field is read only by --strategy majority_vote or weighted_vote, got it without"),
+    ({"temperatures": [1.0], "answers": ["a", "b"]}, ["--strategy", "best_of_k"],
+     r"'answers' field is read only by .*got it with --strategy best_of_k"),
+])
+def test_plan_exact_refuses_file_fields_that_cannot_take_effect(tmp_path, spec, extra, match, capsys):
+    # the file's temperatures used to be replaced by --temperatures, and its answers ignored, without a word
+    path = tmp_path / "exact.json"
+    path.write_text(json.dumps({"logits": [0, 1], "scores": [0, 1], "rewards": [0, 1], **spec}))
+    assert main(["plan", "--exact", str(path), "--max-k", "2", *extra]) == 2
+    assert re.search(match, capsys.readouterr().err)
+
+
+@pytest.mark.parametrize("extra", [[], ["--strategy", "best_of_k"]])
+def test_plan_samples_refuses_two_temperatures_that_select_one_pool(samples_file, extra, capsys):
+    # 0.5 and 0.50000001 are equal as float32: both selected the file's T=0.5 pool, planned twice as two columns
+    assert main(["plan", "--samples", str(samples_file), "--temperatures", "0.5,0.50000001", "--n-boot", "20",
+                 *extra]) == 2
+    assert re.search(r"temperatures must select distinct pools, got 0.5 and 0.50000001, both the file's 0.5",
+                     capsys.readouterr().err)

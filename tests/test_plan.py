@@ -639,3 +639,11 @@ def test_plan_model_checks_every_planner_option_before_sampling(kw, exc, match, 
     with pytest.raises(exc, match=match):
         fm.plan_model(None, None, ["a prompt"], lambda p, r: [0.0] * len(r), temperatures=[0.5, 1.0], n=4,
                       progress=False, **kw)
+
+
+def test_plan_samples_refuses_two_temperatures_that_select_one_pool(tmp_path):
+    # 0.5 and 0.50000001 are equal as float32 (io.same_temperature): both would plan the file's T=0.5 pool
+    table = _pass_at_k_file(tmp_path / "s.jsonl", P=12, n=4)
+    with pytest.raises(ValueError, match=r"temperatures must select distinct pools, got 0.5 and 0.50000001, both the "
+                                         r"file's 0.5 \(equal as float32\)"):
+        plan_samples(table, temperatures=[0.5, 0.50000001], n_boot=20)

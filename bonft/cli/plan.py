@@ -9,7 +9,7 @@ from pathlib import Path
 
 from bonft._core.checks import check_choice, check_int
 from bonft.cli.options import add_duplicates_flag, check_sizes, parse_list, write_json_atomic
-from bonft.cli.strategy_tables import add_strategy_arguments, check_strategy_options
+from bonft.cli.strategy_tables import VOTES, add_strategy_arguments, check_strategy_options
 from bonft.cli.strategy_tables import run_plan as _run_strategies
 from bonft.tasks import TASKS, exact_match_verifier, get_task, load_prompts_jsonl
 from bonft.verifiers import load_verifier
@@ -242,9 +242,15 @@ def run(args) -> int:
         for key in ("scores", "rewards"):
             if key not in spec:
                 raise ValueError(f"--exact file must have a {key!r} field")
+        if temps is not None and spec.get("temperatures") is not None:
+            raise ValueError(f"--exact takes the temperatures once: --temperatures or the file's 'temperatures' field, "
+                             f"got both (--temperatures {args.temperatures}, file {spec['temperatures']})")
         temps = temps or spec.get("temperatures")
         if temps is None:
             raise ValueError("--exact needs temperatures: --temperatures or a 'temperatures' field")
+        if "answers" in spec and not any(n in VOTES for n in names or []):
+            raise ValueError("--exact file's 'answers' field is read only by --strategy majority_vote or weighted_vote, "
+                             f"got it {'with --strategy ' + args.strategy if names else 'without --strategy'}")
         if names:
             from bonft.cli.strategy_tables import run_plan_exact
 

@@ -352,7 +352,8 @@ def plan_samples(
     """Plan from a :class:`bonft.io.SampleTable` with a temperature column.
 
     table: rows (prompt_id, score, reward, temperature[, n_tokens]) -> see :func:`plan_pools`.
-    temperatures: a subset of the temperatures in the table (default: all of them).
+    temperatures: a subset of the temperatures in the table (default: all of them); two that select the same
+        pool (equal as float32, as 0.5 and 0.50000001) are an error.
     Mean response length per temperature comes from the ``n_tokens`` column when present.
     """
     check_n_boot(n_boot, min=MIN_BOOT), check_seed(seed)  # the knobs before any work (plan_pools checks them all again)
@@ -364,12 +365,16 @@ def plan_samples(
     if temperatures is None:
         temperatures = present
     temps = _check_temperatures(temperatures)
-    pools = {}
+    pools, taken = {}, {}  # taken: the file's temperature -> the one asked for that selected it
     for t in temps:
         match = [p for p in present if same_temperature(p, t)]
         if not match:
             raise ValueError(f"temperatures must be in the samples file (present: "
                              f"{', '.join(temperature_label(p) for p in present)}), got {temperature_label(t)}")
+        if match[0] in taken:
+            raise ValueError(f"temperatures must select distinct pools, got {taken[match[0]]!r} and {float(t)!r}, both "
+                             f"the file's {temperature_label(match[0])} (equal as float32)")
+        taken[match[0]] = float(t)
         keys, s_pools, r_pools = group_pools(table, temperature=match[0])
         mean_tokens = None
         if getattr(table, "n_tokens", None) is not None:
