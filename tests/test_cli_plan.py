@@ -274,3 +274,34 @@ def test_plan_samples_refuses_two_temperatures_that_select_one_pool(samples_file
                  *extra]) == 2
     assert re.search(r"temperatures must select distinct pools, got 0.5 and 0.50000001, both the file's 0.5",
                      capsys.readouterr().err)
+
+
+def test_a_plan_cache_file_reads_as_a_samples_file_without_a_repeat_warning(tmp_path, capsys):
+    # the cache is bonft's own samples file: its rows carry a sample index, so identical short responses are
+    # distinct samples, not "a file concatenated with itself"; a cache written without the index is still reused
+    import warnings
+
+    from bonft.io import DuplicateRowsWarning
+    from bonft.tasks import build_tokenizer
+    from bonft.trainer.checkpoint import save_model
+    from bonft.trainer.models import build_tiny_model
+
+    tok = build_tokenizer()
+    model = build_tiny_model(vocab_size=len(tok), layers=1, width=32, heads=2, pad_token_id=tok.pad_token_id,
+                             eos_token_id=tok.eos_token_id, bos_token_id=tok.bos_token_id, seed=1)
+    save_model(model, tok, tmp_path / "ckpt")
+    argv = ["plan", "--model", str(tmp_path / "ckpt"), "--task", "ledger", "--n-prompts", "4", "--n", "6",
+            "--max-new-tokens", "1", "--n-boot", "20", "--temperatures", "0.3", "--cache", str(tmp_path / "cache"),
+            "--quiet"]
+    assert main(argv) == 0
+    (cache,) = (tmp_path / "cache").glob("plan-*.jsonl")
+    rows = [json.loads(line) for line in cache.read_text().splitlines()]
+    assert [r["sample"] for r in rows] == list(range(6)) * 4
+    assert len({(r["prompt_id"], r["response"]) for r in rows}) < len(rows)  # 1-token responses repeat
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", DuplicateRowsWarning)
+        assert main(["plan", "--samples", str(cache), "--n-boot", "20"]) == 0
+    cache.write_text("".join(json.dumps({k: v for k, v in r.items() if k != "sample"}) + "\n" for r in rows))
+    capsys.readouterr()
+    assert main(argv) == 0
+    assert "reused T=[0.3]" in capsys.readouterr().out

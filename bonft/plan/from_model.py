@@ -89,7 +89,9 @@ def draw_samples(
 
     prompts: P strings; -> (SampleTable with P * n rows per temperature, info), where
     info = {"sampled": temperatures drawn now, "cached": temperatures read from cache_dir,
-    "failed": verifier failures, "files": cache files}. Prompt ids are "p0", "p1", ... in order.
+    "failed": verifier failures, "files": cache files}. Prompt ids are "p0", "p1", ... in order; each cache row
+    carries its sample index (0 .. n-1, field ``sample``), so identical short responses read as distinct samples
+    (``bonft plan --samples`` on a cache file); caches written without it are read as before.
     verifier_name: part of the cache key (default: the verifier's qualified name); change it
     when the verifier's behaviour changes, or old pools would be reused.
     """
@@ -153,7 +155,8 @@ def draw_samples(
             if rewards is None:  # a verifier without true rewards: plan on its scores
                 info["no_rewards"], rewards = True, v.scores
             for i in range(len(flat_p)):
-                rows.append({"prompt_id": ids[c + i // n], "score": float(v.scores[i]), "reward": float(rewards[i]),
+                rows.append({"prompt_id": ids[c + i // n], "sample": i % n, "score": float(v.scores[i]),
+                             "reward": float(rewards[i]),
                              "temperature": t, "n_tokens": int(lengths[i]), "response": flat_r[i]})
             bar.update(len(part) * n)
         tab = SampleTable(
