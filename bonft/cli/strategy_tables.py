@@ -6,6 +6,7 @@ import os
 
 import numpy as np
 
+from bonft._core.checks import as_float_array
 from bonft.cli.options import check_ks_in_pools, no_empty_items, parse_list, write_curve_outputs, write_json_atomic
 from bonft.estimate import default_ks
 from bonft.io import group_pools, same_temperature, temperature_label, temperatures_of
@@ -164,8 +165,6 @@ def _exact_rows(spec: dict):
 
     ``logits`` is (V,) or (P, V) (P prompts, weighted equally); scores and rewards broadcast against it; answers
     are one key per outcome, (V,) shared by every prompt or (P, V)."""
-    from bonft._core.checks import as_float_array
-
     logits = as_float_array("logits", spec["logits"], ndim=(1, 2))
     rows = logits.reshape(-1, logits.shape[-1])
     P, V = rows.shape
