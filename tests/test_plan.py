@@ -494,6 +494,9 @@ def test_too_few_prompts_make_no_significance_claims_anywhere():
     many = plan_pools({t: Pools(rng.integers(0, 3, size=(12, 4)).astype(float), rng.random((12, 4))) for t in (0.5, 1.0)},
                       n_boot=50)
     assert many.intervals_valid and json.loads(json.dumps(many.to_dict()))["intervals_valid"] is True
+    # the value at the chosen temperature is the largest of 2 estimates: the table says it is biased upward
+    assert "V at best is the largest of several estimates: biased upward" in many.table()
+    assert "V at best is the largest" not in text
 
 
 def _equal_law_runs(reps, temps, P=60, n=8):
