@@ -289,4 +289,8 @@ def test_plan_exact_strategies_report_a_conflicting_reward_not_an_empty_table(tm
     f.write_text(json.dumps({"logits": [1.5, 0.5, 0.0, -1.0], "scores": [0.5, 0.2, 0.5, 0.1], "rewards": [1, 0, 0, 0],
                              "answers": ["a", "b", "a", "c"]}))
     assert main(["plan", "--exact", str(f), "--temperatures", "1", "--strategy", "majority_vote", "--max-k", "3"]) == 2
-    assert "rewards must be one value per answer for majority_vote, got answer 'a'" in capsys.readouterr().err
+    err = capsys.readouterr().err
+    assert "rewards must be one value per answer for majority_vote, got answer 'a'" in err
+    # the command has no conflicts= option: the message says what to change in the file
+    assert "(outcome 2): the --exact file must give the outcomes of one answer one reward (in Python" in err, err
+    assert "; pass conflicts" not in err

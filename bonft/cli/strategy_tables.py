@@ -213,7 +213,14 @@ def run_plan_exact(args, spec: dict, temps: list) -> int:
         probs = softmax_policy(logits, temperature=t)
         for s in names:
             st = get_strategy(s)
-            row = [value(st, probs, 1)]  # the file's errors (a conflicting reward, a bad shape) surface here
+            try:
+                row = [value(st, probs, 1)]  # the file's errors (a conflicting reward, a bad shape) surface here
+            except ValueError as e:  # the command has no conflicts= option: say what to change in the file instead
+                head, sep, _ = str(e).partition("; pass conflicts='mean'")
+                if not sep:
+                    raise
+                raise ValueError(f"{head}: the --exact file must give the outcomes of one answer one reward (in "
+                                 "Python, strategy_value(..., conflicts='mean') serves their mean)") from None
             for k in range(2, max_k + 1):
                 try:
                     row.append(value(st, probs, k))
