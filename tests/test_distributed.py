@@ -452,6 +452,27 @@ def test_two_trainer_processes_end_with_the_one_process_weights(tmp_path, monkey
     assert len((tmp_path / "one" / "heldout_samples.jsonl").read_text().splitlines()) == 5 * 4
 
 
+def test_ranks_started_with_different_configurations_are_refused_naming_the_keys(tmp_path, monkeypatch):
+    # a seed or a learning rate given to one rank only trained two different models under one run (rank 0 saves its
+    # own; DDP copies the weights only at the start), and both ranks exited 0
+    import json
+
+    monkeypatch.setenv("PYTHONPATH", os.pathsep.join([str(SCRIPTS), os.environ.get("PYTHONPATH", "")]))
+    cfg = {**TRAIN_CFG, "run_dir": str(tmp_path / "two")}
+    (tmp_path / "a.json").write_text(json.dumps(cfg))
+    (tmp_path / "b.json").write_text(json.dumps({**cfg, "seed": 1, "lr": 0.5}))
+    port = free_port()
+    procs = launch("train_ranks.py", [0], 2, tmp_path / "a.json", port=port)
+    procs += launch("train_ranks.py", [1], 2, tmp_path / "b.json", port=port)
+    res = finish(procs, limit=120)
+    for rc, _, err in res:  # the same error on every rank, before the run directory is made
+        assert rc != 0
+        assert ("every rank must run the same configuration, but rank 1 of 2 differs from rank 0 in 2 key(s): "
+                "seed = 0 on rank 0, 1 on rank 1; lr = 0.001 on rank 0, 0.5 on rank 1; start every rank with the same "
+                "recipe") in err, err[-2000:]
+    assert not (tmp_path / "two").exists()
+
+
 def test_two_ranks_train_a_lora_adapter_as_one_process_does(tmp_path, monkeypatch):
     """A LoRA adapter (peft) on a user's base model, warm start then RL on 2 gloo ranks vs 1 process: the
     adapter weights agree to float32 round-off (DDP averages the adapter's gradients only; the frozen base

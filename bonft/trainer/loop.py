@@ -35,6 +35,7 @@ in a sandbox (see :mod:`bonft.verifiers`) and, better, in a disposable VM.
 from __future__ import annotations
 
 import contextlib
+import dataclasses
 import json
 import math
 import os
@@ -64,6 +65,7 @@ from bonft.trainer.checkpoint import (
 from bonft.trainer.config import TrainConfig, load_config, resume_changes, to_toml
 from bonft.trainer.distributed import (
     DistContext,
+    all_gather_objects,
     barrier,
     broadcast_object,
     check_divisible,
@@ -118,10 +120,26 @@ def train(cfg: TrainConfig, *, resume: bool = False, progress: bool = True) -> d
     keep_freed_memory()  # a step's large tensors come back from the heap, not as fresh page-faulting mmaps
     owns_group = not torch.distributed.is_initialized()
     ctx = init_from_env(device=cfg.device)  # a process group under torchrun, else one process
+    _check_same_config(cfg, ctx)
     with _locked(Path(cfg.run_dir), ctx):  # before the set-up: a busy directory is refused at once
         run = build_run(cfg)  # joins nothing new: init_from_env returns the group joined above
         _check_shares(cfg, run.world)
         return _train(run, resume, progress, owns_group)
+
+
+def _check_same_config(cfg: TrainConfig, ctx: DistContext) -> None:
+    """Every rank trains with rank 0's configuration: ranks started with different recipes or ``--set`` options
+    (a seed, a learning rate) would train different models under one name while rank 0 saves its own."""
+    if ctx.world_size == 1:
+        return
+    every = all_gather_objects(dataclasses.asdict(cfg), ctx)  # the same list on every rank: all raise, or none
+    for r, other in enumerate(every[1:], 1):
+        diff = [k for k in every[0] if every[0][k] != other.get(k)]
+        if diff:
+            shown = "; ".join(f"{k} = {every[0][k]!r} on rank 0, {other.get(k)!r} on rank {r}" for k in diff[:5])
+            raise ValueError(f"every rank must run the same configuration, but rank {r} of {ctx.world_size} differs from "
+                             f"rank 0 in {len(diff)} key(s): {shown}; start every rank with the same recipe and --set "
+                             "options")
 
 
 def _train(run: Run, resume: bool, progress: bool, owns_group: bool) -> dict:
