@@ -252,6 +252,22 @@ def test_step_guard_is_a_no_op_for_one_process():
             raise RuntimeError("boom")
 
 
+def test_a_peer_lost_during_an_evaluation_is_named_with_the_step(tmp_path, monkeypatch):
+    # a rank killed while the held-out pools were gathered left the others with "gather_object failed; a peer
+    # process probably died": the guard of a training step now covers evaluations, naming the rank and the step
+    from bonft.trainer.distributed import DistContext, PeerError, step_guard, stopping
+
+    calls = []
+    monkeypatch.setattr(stopping, "stopped_ranks", lambda ctx, tag: calls.append(tag) or [1])
+    two = DistContext(rank=0, world_size=2, enabled=True)
+    with pytest.raises(PeerError, match=r"^rank 1 of 2 stopped during the evaluation of step 6; rank 0 noticed it and "
+                                        r"stops too\. No checkpoint was written yet in .*; restart the run\. Cause: "
+                                        r"gather_object failed"):
+        with step_guard(two, step=6, run_dir=tmp_path, evaluation=True):
+            raise RuntimeError("gather_object failed")
+    assert calls == ["eval-6"]  # its own roll call, apart from training step 6's
+
+
 
 # ----------------------------------------------------------------------------- knobs that size work or memory
 def _cli(*argv) -> tuple[int, str]:

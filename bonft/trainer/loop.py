@@ -501,7 +501,8 @@ def _eval_due(cfg: TrainConfig, s: int) -> bool:
 def _evaluate(run: Run, s: int, progress: bool) -> None:
     """Evaluate the weights of step s; the final one also writes its samples (``heldout_samples``, rank 0)."""
     final = s == run.cfg.total_steps and run.cfg.heldout_samples and run.is_main
-    rep = evaluate_run(run, s, samples_to=run.out / HELDOUT_SAMPLES if final else None)  # the report is rank 0's
+    with step_guard(run.ctx, step=s, run_dir=run.out, evaluation=True):  # a peer lost while pools are gathered
+        rep = evaluate_run(run, s, samples_to=run.out / HELDOUT_SAMPLES if final else None)  # the report is rank 0's
     if rep is not None:
         _log(run, {"kind": "eval", **rep.to_dict()})
         if progress:

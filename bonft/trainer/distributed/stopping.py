@@ -56,8 +56,9 @@ def _last_checkpoint_note(run_dir: Any) -> str:
 
 
 @contextlib.contextmanager
-def step_guard(ctx: DistContext, *, step: int, run_dir: Any = None) -> Iterator[None]:
-    """Around one training step: a peer lost mid-step becomes a :class:`PeerError` saying what happened.
+def step_guard(ctx: DistContext, *, step: int, run_dir: Any = None, evaluation: bool = False) -> Iterator[None]:
+    """Around one training step (or, ``evaluation=True``, the evaluation of the weights of ``step``): a peer lost
+    in it becomes a :class:`PeerError` saying what happened.
 
     A rank that dies during a step surfaces on the others as a communication
     error, often from inside ``backward()`` (DDP's gradient all-reduce). On any
@@ -72,11 +73,12 @@ def step_guard(ctx: DistContext, *, step: int, run_dir: Any = None) -> Iterator[
     try:
         yield
     except RuntimeError as e:
-        gone = stopped_ranks(ctx, tag=f"step-{step}")
+        gone = stopped_ranks(ctx, tag=f"{'eval' if evaluation else 'step'}-{step}")
         if gone == []:
             raise
         who = (f"rank {', '.join(map(str, gone))} of {ctx.world_size}" if gone else
                f"rank 0 of {ctx.world_size} (or the launcher: the rendezvous store they serve no longer answers)")
-        raise PeerError(f"{who} stopped during training step {step}; rank {ctx.rank} noticed it and stops too."
+        during = f"the evaluation of step {step}" if evaluation else f"training step {step}"
+        raise PeerError(f"{who} stopped during {during}; rank {ctx.rank} noticed it and stops too."
                         f"{_last_checkpoint_note(run_dir)} Cause: "
                         f"{str(e).strip().splitlines()[0] if str(e).strip() else type(e).__name__}") from e
