@@ -175,8 +175,9 @@ def _note_failed(name: str, rows: list, numbers: list[int]) -> None:
         names = sorted({str(v) for i in hit for v in (rows[i]["failed"] if isinstance(rows[i]["failed"], list)
                                                       else [rows[i]["failed"]])})
         warnings.warn(f"{name}: {len(hit)} of {len(rows)} rows mark a verdict their verifier failed to give (field "
-                      f"'failed': {', '.join(names)}; first on line {numbers[hit[0]]}): the stand-in score there (the "
-                      f"lowest of its batch) judged nothing but is counted; fix the verifier and score again for numbers that mean what they say",
+                      f"'failed': {', '.join(names)}; first on line {numbers[hit[0]]}): the stand-in score there (0, "
+                      f"or its batch's lowest below 0) judged nothing but is counted; fix the verifier and score again for "
+                      f"numbers that mean what they say",
                       FailedVerdictsWarning, stacklevel=3)
 
 

@@ -50,7 +50,7 @@ def test_timeout_marks_the_slow_sample():
     v = score_batch(slow, ["p", "p"], ["fast", "slow"], timeout=0.2)
     np.testing.assert_array_equal(v.failed, [False, True])
     assert v.reasons[1] == "timeout after 0.2 s"
-    assert v.scores[0] == 1.0 and v.scores[1] == 1.0  # the batch's lowest judged score: never above a judged sample
+    assert v.scores[0] == 1.0 and v.scores[1] == 0.0  # 0, or the batch's lowest judged score when that is below 0
 
 
 def test_rewards_kept_and_nan_reward_is_a_failure():
@@ -58,8 +58,8 @@ def test_rewards_kept_and_nan_reward_is_a_failure():
         return Verdicts(scores=[0.5, 0.7], rewards=[1.0, float("nan")])
 
     v = score_batch(with_rewards, ["p", "q"], ["a", "b"])
-    np.testing.assert_array_equal(v.rewards, [1.0, 1.0])
-    np.testing.assert_array_equal(v.scores, [0.5, 0.5])
+    np.testing.assert_array_equal(v.rewards, [1.0, 0.0])  # a failure is never counted right, even when all else is
+    np.testing.assert_array_equal(v.scores, [0.5, 0.0])
     assert v.reasons == [None, "reward is nan"]
     assert not np.isnan(v.scores).any() and not np.isnan(v.rewards).any()
     v = score_batch(with_rewards, ["p", "q"], ["a", "b"], failure_score=0.0)  # a fixed stand-in, as asked

@@ -188,7 +188,7 @@ def collect_pools(model: Any, tokenizer: Any, prompts: Sequence[str], *, verifie
         v = score_batch(ver, flat_prompts, flat_texts)
         raw["failures"] += v.n_failed
         raw["failed_by"][name] = int(v.n_failed)
-        raw["failed"][name] = v.failed.reshape(P, n)  # a stand-in score (the batch's lowest): the verifier judged nothing
+        raw["failed"][name] = v.failed.reshape(P, n)  # a stand-in score (0 or the batch's lowest): judged nothing
         raw["cause"][name] = next((r for r in v.reasons if r), None)
         raw["scores"][name] = v.scores.reshape(P, n)
         if name == eval_verifier:
@@ -210,7 +210,7 @@ def sample_rows(raw: dict, prompts: Sequence[str], *, temperature: float, score:
     (its index in the pool), ``score`` (verifier ``score``'s), ``reward`` (the evaluation verifier's),
     ``temperature``, ``response``, ``n_tokens`` and, given ``extract_answer``, ``answer`` (a str, an int or
     null; another value by its ``str``), and ``failed`` (the names of the verifiers that failed on it, whose
-    score there is a stand-in, the lowest its verifier gave that evaluation, that judged nothing) on a response
+    score there is a stand-in, 0 or the lowest its verifier gave that evaluation, that judged nothing) on a response
     where one did.
     ``every_score``: also ``score_<name>`` for every verifier in ``raw["scores"]`` (``bonft estimate
     --score-field score_proxy`` then ranks by that verifier).

@@ -170,14 +170,17 @@ def score_batch(
     are logged as a warning on the ``bonft.verifiers`` logger.
 
     strict:        raise :class:`VerifierError` on the first failure instead.
-    failure_score: ``"lowest"`` (default): the lowest score (reward) the
-                   verifier gave a sample of this batch that did not fail, 0.0
-                   when every sample failed. A failure then never ranks above a
-                   judged sample, nor earns more credit than the worst one: a
-                   fixed stand-in such as 0 would beat every judged sample of a
-                   verifier whose scores are negative, and a policy trained
-                   against it would learn to make the verifier fail. A number:
-                   that score and reward (finite), whatever the others are.
+    failure_score: ``"lowest"`` (default): 0, or the lowest score (reward)
+                   the verifier gave a sample of this batch that did not fail
+                   when that is below 0. A failure then never ranks above a
+                   judged sample nor earns more reward than the worst one, and
+                   never more than 0: a fixed 0 would beat every judged sample
+                   of a verifier whose scores are negative (a reward model's
+                   logits), and a policy trained against it would learn to make
+                   the verifier fail; the lowest judged value alone would count
+                   a failure as right in a batch whose judged samples are all
+                   right. A number: that score and reward (finite), whatever the
+                   others are.
     timeout:       seconds allowed for each verifier call (None = no limit).
                    Calls run in a background thread; one that overruns is
                    abandoned, not killed (Python cannot kill threads), so a
@@ -230,10 +233,13 @@ def score_batch(
             reasons[i] = "marked failed by the verifier"
     if failed.any():
         judged = ~failed
-        stand_in = (failure_score if not lowest else float(scores[judged].min()) if judged.any() else 0.0)
-        scores[failed] = stand_in
+
+        def stand_in(values: np.ndarray) -> float:  # 0, or the lowest judged value below it
+            return failure_score if not lowest else min(0.0, float(values[judged].min()) if judged.any() else 0.0)
+
+        scores[failed] = stand_in(scores)
         if rewards is not None:
-            rewards[failed] = (failure_score if not lowest else float(rewards[judged].min()) if judged.any() else 0.0)
+            rewards[failed] = stand_in(rewards)
     if strict and failed.any():
         i = int(np.argmax(failed))
         raise VerifierError(f"the verifier failed on sample {i}: {reasons[i]}")
@@ -242,7 +248,7 @@ def score_batch(
         common = collections.Counter(r for r, f in zip(reasons, failed) if f).most_common(3)
         log.warning(
             "verifier failed on %d of %d samples (scored %g, %s): %s",
-            out.n_failed, n, float(scores[failed][0]), "the batch's lowest" if lowest else "failure_score",
+            out.n_failed, n, float(scores[failed][0]), "0 or the batch's lowest" if lowest else "failure_score",
             "; ".join(f"{r} x{c}" for r, c in common),
         )
     return out
