@@ -650,3 +650,29 @@ def test_plan_samples_refuses_two_temperatures_that_select_one_pool(tmp_path):
     with pytest.raises(ValueError, match=r"temperatures must select distinct pools, got 0.5 and 0.50000001, both the "
                                          r"file's 0.5 \(equal as float32\)"):
         plan_samples(table, temperatures=[0.5, 0.50000001], n_boot=20)
+
+
+def test_plan_model_refuses_a_temperature_whose_every_sample_the_verifier_failed_on():
+    # a verifier of negative scores (a log-likelihood) that fails on every sample of one temperature: its stand-in
+    # scores (0) outranked every judged temperature, and the plan recommended the temperature it judged nothing at
+    from bonft.plan.from_model import plan_model
+    from bonft.tasks import build_tokenizer
+    from bonft.trainer.models import build_tiny_model
+    from bonft.verifiers.scoring import VerifierError
+
+    tok = build_tokenizer()
+    model = build_tiny_model("gpt2", vocab_size=len(tok), layers=1, width=32, heads=2, max_positions=48, seed=0,
+                             pad_token_id=tok.pad_token_id, eos_token_id=tok.eos_token_id, bos_token_id=tok.bos_token_id)
+    calls = []
+
+    def down_after_one_batch(prompts, responses):
+        calls.append(len(responses))
+        if len(calls) > 1:
+            raise ConnectionError("scoring service unavailable")
+        return [-3.0 - 0.01 * len(r) for r in responses]
+
+    with pytest.raises(VerifierError, match=r"the verifier failed on every one of the 48 samples of prompts 1-12 at "
+                                            r"temperature 1 \(ConnectionError: scoring service unavailable\), so that "
+                                            r"temperature would be ranked on stand-in scores"):
+        plan_model(model, tok, [f"jars {i}+{i} ?" for i in range(12)], down_after_one_batch, temperatures=(0.7, 1.0),
+                   n=4, max_new_tokens=8, progress=False)

@@ -28,6 +28,7 @@ from bonft.io import SampleTable, read_samples, write_samples
 from bonft.plan.sweep import PLAN_OPTIONS, _check_temperatures, check_plan_options, plan_samples
 from bonft.verifiers import score_batch
 from bonft.verifiers.base import verifier_name as name_of_verifier
+from bonft.verifiers.scoring import VerifierError
 
 PROMPT_CHUNK = 16  # prompts per sampling call: the progress bar's step, and part of each chunk's seed
 
@@ -150,6 +151,12 @@ def draw_samples(
             flat_r = [txt for row in out.texts for txt in row]
             lengths = out.response_valid.sum(-1).reshape(-1).tolist()  # (B, n) generated tokens -> B*n
             v = score_batch(verifier, flat_p, flat_r)
+            if v.n_failed == len(flat_p):  # stand-ins only: the plan would rank a temperature nothing was judged at
+                cause = next((r for r in v.reasons if r), "failed")
+                raise VerifierError(f"the verifier failed on every one of the {len(flat_p)} samples of prompts "
+                                    f"{c + 1}-{c + len(part)} at temperature {t:g} ({cause}), so that temperature would "
+                                    "be ranked on stand-in scores that judged nothing; fix the verifier (bonft "
+                                    "check-verifier tests one on a few samples) and plan again")
             info["failed"] += v.n_failed
             rewards = v.rewards
             if rewards is None:  # a verifier without true rewards: plan on its scores
