@@ -72,6 +72,15 @@ def test_float32_rounding_of_a_padded_batch_is_not_non_determinism():
     assert rep.n_nondeterministic == 0 and not any(p.startswith("non-deterministic") for p in rep.problems)
     rep = check_verifier(padded, POOLS, rtol=1e-8)  # a tighter tolerance, asked for, still sees it
     assert rep.n_nondeterministic == 16  # every score moved by 3e-7 > 1e-8 x 0.9 (and > 1e-8 of itself)
+    # the tolerance follows each pool's median |score|: one large score (1e5 x 1e-5 = 1) must not hide scores that
+    # are drawn afresh on every call (the re-audit: a tolerance from the largest |score| read them as equal)
+    rng = random.Random(1)
+
+    def random_but_one(prompts, responses):
+        return [1e5 if r == "y" else rng.random() for r in responses]
+
+    rep = check_verifier(random_but_one, POOLS)
+    assert rep.n_nondeterministic >= 14, rep.n_nondeterministic  # 15 random scores (pool 2's "y" is steady)
 
 
 def test_a_wrong_response_at_the_top_of_a_pool_is_flagged():
@@ -85,11 +94,22 @@ def test_a_wrong_response_at_the_top_of_a_pool_is_flagged():
              {"prompt": "9+6", "responses": ["15", "14", "3", "2"], "rewards": [1, 0, 0, 0]}]
     rep = check_verifier(last_digit, pools)
     assert (rep.n_pools_mixed, rep.n_wrong_top) == (2, 1) and not rep.ok
-    assert rep.problems == ["wrong at the top: in 1 of 2 pools with responses labelled right and wrong, a wrong one "
-                            "scores at or above every right one (> max_wrong_top=0), e.g. '17' scores 1 for prompt "
-                            "'3+4', the best right response 1: there best-of-k picks a wrong response (a forged pass, "
-                            "or a tie with one) however large k is"]
+    assert rep.pass_fail and rep.problems == [
+        "wrong at the top: in 1 of 2 pools with responses labelled right and wrong, a wrong one scores at or above "
+        "every right one (a pass/fail checker: its scores take two values, so each is a false pass), e.g. '17' scores 1 "
+        "for prompt '3+4', the best right response 1: there best-of-n over the whole pool picks the wrong response (on "
+        "a tie, it may)"]
     assert check_verifier(last_digit, pools, max_wrong_top=0.5).ok  # 1 of 2 pools is allowed
+    # graded scores (a reward model) rank some wrong responses first: counted and shown, a problem only when asked
+    def graded(prompts, responses):
+        return [0.9 if r in ("7", "15") else 0.95 if r == "17" else 0.1 * len(r) for r in responses]
+
+    rep = check_verifier(graded, pools)
+    assert not rep.pass_fail and (rep.n_pools_mixed, rep.n_wrong_top) == (2, 1) and rep.ok, rep.problems
+    assert "wrong at the top   1 of 2 pools with right and wrong responses" in str(rep)
+    rep = check_verifier(graded, pools, max_wrong_top=0.0)
+    assert [p[:63] for p in rep.problems] == ["wrong at the top: in 1 of 2 pools with responses labelled right"]
+    assert "(max_wrong_top=0)" in rep.problems[0]
     exact = ExactMatch({"3+4": "7", "9+6": "15"})
     assert check_verifier(exact, pools).n_wrong_top == 0
     with pytest.raises(ValueError, match=r"max_wrong_top must be a finite number in \[0, 1\], got max_wrong_top=1.5"):

@@ -32,9 +32,10 @@ def add_arguments(p) -> None:
     p.add_argument("--threshold", type=float, default=0.5, help="score at or above which a sample counts as accepted")
     p.add_argument("--wall-time", type=float, default=None, help="seconds allowed per verifier call (default: no limit)")
     p.add_argument("--max-failure-rate", type=float, default=0.0, help="failure rate that still passes (default 0)")
-    p.add_argument("--max-wrong-top", type=float, default=0.0,
+    p.add_argument("--max-wrong-top", type=float, default=None,
                    help="share of the pools with right and wrong responses in which a wrong one may score at or above "
-                        "every right one and still pass (default 0: best-of-k must be able to avoid wrong responses)")
+                        "every right one and still pass (default: 0 for a pass/fail checker, whose scores take two "
+                        "values; no limit for graded scores)")
     p.add_argument("--plot-dir", metavar="DIR", default=None, help="write verifier_check.png (best-of-k vs pass@k) into this directory")
     p.add_argument("--json", metavar="PATH.json", default=None, help="write the report as JSON here")
 

@@ -70,6 +70,7 @@ class VerifierReport:
     threshold: float = 0.5
     accuracy: float | None = None
     auc: float | None = None
+    pass_fail: bool = False
     n_pools_mixed: int = 0
     n_wrong_top: int = 0
     wrong_top_examples: list[dict] = field(default_factory=list)

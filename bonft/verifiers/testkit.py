@@ -344,7 +344,7 @@ def check_verifier(
     min_auc: float = 0.6,
     bend_tol: float = 0.02,
     rtol: float = 1e-5,
-    max_wrong_top: float = 0.0,
+    max_wrong_top: float | None = None,
 ) -> VerifierReport:
     """Test ``verifier`` on example pools; returns a :class:`VerifierReport` (``.ok``, ``.problems``).
 
@@ -365,11 +365,14 @@ def check_verifier(
     max_failure_rate, min_auc, bend_tol, rtol, max_wrong_top: what counts as a problem --
                 failure rate above ``max_failure_rate``; AUC below ``min_auc``; a share above
                 ``max_wrong_top`` (in [0, 1]) of the pools holding responses labelled right and
-                wrong in which a wrong one scores at or above every right one;
+                wrong in which a wrong one scores at or above every right one. ``None`` (default):
+                0 for a pass/fail checker (its scores take two values or fewer: a wrong response
+                at its top is a false pass), no limit for graded scores (a reward model ranks some
+                wrong responses first; AUC and the curve judge it), the count shown either way;
                 best-of-k true reward falling more than ``bend_tol`` below its
                 peak at the largest k; scores differing between runs by more than
-                ``rtol`` relative to the score, or to the largest |score| of the first run
-                (at least 1e-12): a float32 model's score rounds differently in a padded
+                ``rtol`` relative to the score, or to the median |score| of its pool in the
+                first run (at least 1e-12): a float32 model's score rounds differently in a padded
                 batch than alone (RewardModel: up to 3e-7 on scores near 0.06, found
                 "non-deterministic" by a purely relative 1e-6). ``min_auc`` must lie in
                 [0, 1], ``max_failure_rate`` in [0, 1], ``bend_tol`` and ``rtol`` be >= 0.
@@ -382,7 +385,8 @@ def check_verifier(
     if not callable(verifier) and not hasattr(verifier, "bind"):
         raise TypeError(f"verifier must be callable as verifier(prompts, responses), got {type(verifier).__name__}")
     _check_kw(threshold, repeats, timeout, max_failure_rate, min_auc, bend_tol, rtol, pool_size)
-    check_real("max_wrong_top", max_wrong_top, min=0.0, max=1.0)  # a share of pools
+    if max_wrong_top is not None:
+        check_real("max_wrong_top", max_wrong_top, min=0.0, max=1.0)  # a share of pools
     pools = _pools(examples, labels)
     verifier = _bind_examples(verifier, examples)
     if pool_size is not None:
@@ -423,14 +427,15 @@ def check_verifier(
         for j in np.flatnonzero(v.failed):
             _count_failure(rep, v.reasons[j] or "failed")
     failed_later = [np.zeros(len(v), dtype=bool) for v in first]
-    judged = [np.abs(v.scores[~v.failed]) for v in first]
-    scale = max((float(x.max()) for x in judged if x.size), default=0.0)  # rounding scales with the scores' size
-    atol = max(1e-12, rtol * scale)
+    # rounding scales with the size of the scores a sample is batched with: its pool's median |score| (one outlier,
+    # in the pool or elsewhere, must not hide scores that change from call to call)
+    atols = [max(1e-12, rtol * (float(np.median(np.abs(v.scores[~v.failed]))) if (~v.failed).any() else 0.0))
+             for v in first]
     for r, later in enumerate(runs[1:], 1):
         how = "alone" if r == repeats - 1 else "in the batch reversed"
         for i, (pool, a, b) in enumerate(zip(pools, first, later)):
             both = ~a.failed & ~b.failed
-            same = np.isclose(a.scores, b.scores, rtol=rtol, atol=atol)
+            same = np.isclose(a.scores, b.scores, rtol=rtol, atol=atols[i])
             for j in np.flatnonzero(both & ~same):
                 rep.n_nondeterministic += 1
                 if len(rep.nondeterministic_examples) < 3:
@@ -458,6 +463,7 @@ def check_verifier(
     if ok.any():
         good = flat[ok]
         rep.score_min, rep.score_max, rep.score_mean = float(good.min()), float(good.max()), float(good.mean())
+        rep.pass_fail = bool(np.unique(good).size <= 2)  # a checker: its top is "pass"
     lat = np.array(latencies) * 1000.0
     rep.latency_ms_per_call = float(lat.mean())
     rep.latency_ms_p95 = float(np.percentile(lat, 95))
@@ -535,7 +541,7 @@ def _count_failure(rep: VerifierReport, reason: str, where: str = "") -> None:
 
 
 def _problems(rep: VerifierReport, *, max_failure_rate: float, min_auc: float, bend_tol: float,
-              max_wrong_top: float) -> None:
+              max_wrong_top: float | None) -> None:
     n = rep.n_samples
     if rep.n_nondeterministic:
         e = rep.nondeterministic_examples[0]
@@ -583,12 +589,14 @@ def _problems(rep: VerifierReport, *, max_failure_rate: float, min_auc: float, b
                 f"{rep.best_of_k[-1]:.3f} at k={rep.ks[-1]} while pass@k goes {rep.pass_at_k[peak]:.3f} -> {rep.pass_at_k[-1]:.3f}: "
                 "larger N selects the verifier's errors (it is being gamed)"
             )
-    if rep.n_pools_mixed and rep.n_wrong_top / rep.n_pools_mixed > max_wrong_top:
+    limit = max_wrong_top if max_wrong_top is not None else (0.0 if rep.pass_fail else None)
+    if limit is not None and rep.n_pools_mixed and rep.n_wrong_top / rep.n_pools_mixed > limit:
         e = rep.wrong_top_examples[0]
+        why = (f"max_wrong_top={limit:g}" if max_wrong_top is not None else
+               "a pass/fail checker: its scores take two values, so each is a false pass")
         rep.problems.append(
             f"wrong at the top: in {rep.n_wrong_top} of {rep.n_pools_mixed} pools with responses labelled right and "
-            f"wrong, a wrong one scores at or above every right one (> max_wrong_top={max_wrong_top:g}), e.g. "
-            f"{e['response']!r} scores {e['score']:.6g} for prompt {e['prompt']!r}, the best right response "
-            f"{e['best_right']:.6g}: there best-of-k picks a wrong response (a forged pass, or a tie with one) "
-            "however large k is"
+            f"wrong, a wrong one scores at or above every right one ({why}), e.g. {e['response']!r} scores "
+            f"{e['score']:.6g} for prompt {e['prompt']!r}, the best right response {e['best_right']:.6g}: there "
+            "best-of-n over the whole pool picks the wrong response (on a tie, it may)"
         )
