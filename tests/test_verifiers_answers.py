@@ -167,3 +167,70 @@ def test_exact_answer_table_refuses_blank_answers(answer):
         ExactMatch({"q": answer}, normalize=None)
     with pytest.raises(ValueError, match=r"answers\['q'\] must not normalise to '' .*got '\.', which canonical_answer makes ''"):
         ExactMatch({"q": "."})
+
+
+# Hand-written reading cases (common practice, no published source): what a careful reader takes each
+# response to say; a denied, hedged or doubly signed answer is no answer.
+DENIED_12 = [
+    "12 is not the answer.", "The answer != 12", "the answer \u2260 12", "answer\u226012", "The answer cannot be 12.",
+    "The answer isn`t 12", "The answer isn\u02bct 12", "The answer isn\u00b4t 12", "the answer ain't 12",
+    "answer is nt 12", "The answer is NOT 12", "The answer wasn't 12.", "I got 12. That is wrong.",
+    "answer: 12 is wrong", "answer: 12? No.", "answer: \u226012", "answer: != 12", "answer: anything but 12",
+    "answer: 12 (not 13)", "Answer: 12; it is not 13", "answer: -$12", "answer: -(12)", "answer: \u2212(12)",
+    "answer: (-)12", "answer: - $12", "answer: \u2212 $12", "Answer: minus 12", "answer: negative 12",
+    "answer: \u254c12", "answer: ~12", "12 or 13", "12 / 13", "12 (or 13)", "answer: 12 (13)",
+    "The answer is 12 apples and 0 pears.", "answer: 12 (maybe 13)", "It costs -$12", "the result is minus 12",
+]
+
+
+@pytest.mark.parametrize("response", DENIED_12)
+def test_denied_hedged_or_negative_answers_do_not_score_for_12(response):
+    assert ExactMatch({"q": "12"})(["q"], [response]).scores.tolist() == [0.0]
+    assert NumericMatch({"q": 12})(["q"], [response]).scores.tolist() == [0.0]
+
+
+@pytest.mark.parametrize(
+    "text, want",
+    [("-$12", -12.0), ("-(12)", -12.0), ("\u2212 $12", -12.0), ("$-12", -12.0), ("+$12", 12.0),
+     ("minus 12", -12.0), ("negative 12", -12.0), ("Negative $3.5", -3.5),
+     ("-(-12)", None), ("--12", None), ("(-)12", None), ("minus -12", None), ("\u254c12", None), ("~12", None),
+     ("12 is wrong", None), ("12? No.", None), ("anything but 12", None), ("12 (not 13)", None),
+     ("12 (3 \u00d7 4)", 12.0), ("12 because 3 groups of 4 make 12", 12.0), ("12, since 3*4=12", 12.0),
+     ("12 (3 x 4 = 12)", 12.0), ("12 out of 20", 12.0), ("12 (13)", None), ("12 (or 3 x 4)", None),
+     ("12 (maybe 13)", None), ("12 apples and 0 pears", None), ("12, 13", None), ("3*4 => 12", None)],
+)
+def test_parse_number_signs_negations_and_explanations(text, want):
+    assert parse_number(text) == want
+
+
+@pytest.mark.parametrize(
+    "text, want",
+    [("Answer - 12", "12"), ("Answer \u2013 12", "12"), ("Answer \u2014 12", "12"), ("Answer -12", "-12"),
+     ("It costs -$12", "-12"), ("the result is minus 12", "-12"), ("Hence, 12", "12"), ("12 or 13", None),
+     ("12 (or 13)", None), ("12, 13", None), ("12 is not the answer.", None), ("The answer cannot be 12.", None),
+     ("Is it 13? No. It is 12.", "12"), ("The answer isn`t 12", None), ("answer \u2260 12", None),
+     ("Total \u2013 12", None)],  # a spaced dash before the last number may be an operator ("x - 12")
+)
+def test_extract_answer_separator_dash_negation_and_set_off_signs(text, want):
+    assert extract_answer(text) == want
+
+
+@pytest.mark.parametrize(
+    "response",
+    ["Answer \u2013 12", "Answer - 12", "Answer \u2014 12", "The answer is 12 (3 \u00d7 4).",
+     "The answer is 12 because 3 groups of 4 make 12.", "answer: 12 out of 20", "The answer is 12, since 3*4=12.",
+     "Hence, 12"],
+)
+def test_numeric_match_reads_a_separator_dash_and_an_explained_answer(response):
+    assert NumericMatch({"q": 12})(["q"], [response]).scores.tolist() == [1.0]
+
+
+def test_signs_set_off_by_currency_read_as_negative_and_no_stays_an_answer():
+    numeric = NumericMatch({"q": -12})
+    responses = ["answer: -$12", "answer: -(12)", "answer: \u2212 $12", "Answer: minus 12", "It costs -$12",
+                 "answer: -(-12)"]
+    assert numeric(["q"] * 6, responses).scores.tolist() == [1.0] * 5 + [0.0]
+    assert NumericMatch({"q": "-$12"}).answers == {"q": -12.0}
+    assert NumericMatch({"q": "negative 12"}).answers == {"q": -12.0}
+    # a yes/no answer "no" is an answer, not a negation of one (ExactMatch compares the text)
+    assert ExactMatch({"q": "no"})(["q", "q"], ["The answer is no.", "answer: yes"]).scores.tolist() == [1.0, 0.0]

@@ -4,22 +4,53 @@ Extraction rule (default, ``pattern=None``), applied after the character
 folding below:
 
 1. the text after the **last** answer marker, up to the end of its line --
-   markers are ``answer:``, ``answer is``, ``answer =`` (any case, e.g.
-   ``"The final Answer: 42"``) and ``####``; one trailing ``.`` is dropped.
-   Several markers on one line: the last one counts (``"answer: 12 #### 13"``
-   -> ``"13"``). A negated marker (``answer is not``, ``answer isn't``) that is
-   the last marker means no answer;
+   markers are ``answer:``, ``answer is``, ``answer =``, ``answer -`` with a
+   space after the dash (``"Answer - 12"``, ``"Answer – 12"``: the dash is a
+   separator), any case (``"The final Answer: 42"``), and ``####``; one
+   trailing ``.`` is dropped. Several markers on one line: the last one counts
+   (``"answer: 12 #### 13"`` -> ``"13"``). A negated marker (``answer is not``,
+   ``answer is nt``, ``answer isn't`` with any apostrophe -- ``' ’ ‘ ʼ ´ `` and
+   the backtick -- or none, ``answer != ``, ``answer ≠``) that is the last
+   marker means no answer;
 2. otherwise the **last number** in the text (``-3``, ``1,234``, ``2.5``,
-   ``1e-3``, ``3/4``);
+   ``1e-3``, ``3/4``), unless the sentence holding it or anything after it
+   has a negation (below: ``"12 is not the answer."``, ``"The answer cannot be
+   12."``), the number is joined to the number before it by ``or``, ``/`` or
+   ``,`` (``"12 or 13"``), or what stands before it makes it unreadable (below);
+   a sign set off by currency or a bracket, or ``minus`` / ``negative``, is
+   read into it (``"It costs -$12"`` -> ``"-12"``);
 3. otherwise ``None`` (the response scores 0). An empty answer
    (``"answer:"``) is ``None`` too.
 
+Negations: ``not``, ``no``, ``never``, ``nor``, ``cannot``, ``n't`` with any of
+the apostrophes above or none (``isnt``, ``aint``, ``cant``, ``dont`` ...),
+``nt``, ``wrong``, ``incorrect``, ``false``, ``≠``, ``!=``, ``=/=``, ``anything
+but``, ``other than``, ``rather than``, ``instead of``, ``except``.
+
 Numbers are ASCII ``0-9``. A number glued to a letter or to a digit of another
-kind (``2³``, ``1½``, ``٤2``, ``7kg``) is not a number, and a sign cut off from
-its number by spaces (``- 12``) makes the number unreadable: neither reads as
-``12``. :func:`parse_number` (and so :class:`NumericMatch`) reads an answer
-only when it holds exactly one number with no ``not`` / ``no`` / ``never``
-before it: ``"12 or 13"``, ``"12-13"`` and ``"not 12"`` are no number.
+kind (``2³``, ``1½``, ``٤2``, ``7kg``) is not a number. Between the last word
+and a number may stand spaces, currency (``$ € £ ¥ ₹``), brackets, markup
+(``* _ ` # \\``), ``,``, ``=``, ``:`` and arrows (``->``, ``=>``, ``→``); a sign
+there counts only when currency or an opening bracket sets it off from the
+digits (``-$12``, ``-(12)``, ``- $12`` read as ``-12``). Anything else makes
+the number unreadable: a sign cut off by spaces only (``- 12``; also
+``"Total – 12"``, where the dash may be a separator but equally an operator, as
+in ``"x - 12"``) or glued to a word (``x-12``), two signs (``-(-12)``, ``--12``), ``(-)12``, and any other
+character (``~12``, ``≈12``, ``>12``, a box-drawing ``╌12``).
+
+:func:`parse_number` (and so :class:`NumericMatch`, on the extracted answer and
+on the strings of its answer table) reads the first number of the answer,
+with its sign as above, and only when the answer has no negation anywhere
+(``"12 is wrong"``, ``"12? No."``, ``"12 (not 13)"`` are no number) and any
+later number stands in an explanation of the first: ``"out of N"``
+(``"12 out of 20"``), or a bracket or a clause starting with ``because``,
+``since``, ``as``, ``from``, ``by``, ``via``, ``using`` or ``given`` that has no
+``or`` and no hedge (``maybe``, ``perhaps``, ``possibly``, ``probably``,
+``either``, ``alternatively``, ``?``) and repeats the number or derives it by
+arithmetic (``"12 (3 × 4)"``, ``"12 because 3 groups of 4 make 12"``,
+``"12, since 3*4=12"``). A second candidate is no number: ``"12 or 13"``,
+``"12, 13"``, ``"12-13"``, ``"12 (13)"``, ``"12 apples and 0 pears"``.
+``"minus 12"`` and ``"negative 12"`` read as ``-12``.
 
 Characters: full-width forms (U+FF01-U+FF5E) read as their ASCII
 (``"４２"`` -> ``"42"``), the ideographic space as a space, and minus signs and
@@ -48,12 +79,37 @@ from bonft._core.checks import check_nonnegative
 from bonft.verifiers.base import Verdicts
 from bonft.verifiers.scoring import check_batch
 
-_MARKER = re.compile(r"\banswer\s*(?:(?P<negated>is\s*not\b|isn['\u2019]?t\b)|is\b\s*:?|:|=)|####", re.IGNORECASE)
+# apostrophes a writer may type in "isn't": ASCII, curly, modifier letter, acute accent, backtick, prime
+_APOS = "'\u2019\u2018\u02bc\u02bb\u02bd\u00b4`\u2032"
+# a negation: the answer is denied or qualified away ("not 12", "12 is wrong", "!= 12", "anything but 12")
+_NEGATION = re.compile(
+    r"\b(?:not|no|never|nor|cannot|nt|aint|isnt|wasnt|arent|cant|dont|doesnt|wont|wrong|incorrect|false)\b"
+    rf"|n[{_APOS}]t\b|\u2260|!=|=/=|\banything\s+but\b|\bother\s+than\b|\brather\s+than\b|\binstead\s+of\b"
+    r"|\bexcept\b", re.IGNORECASE)
+_MARKER = re.compile(
+    rf"\banswer\s*(?P<negated>is\s*(?:not|nt|never)\b|isn[{_APOS}]?t\b|is\s+n[{_APOS}]t\b|!=|\u2260|=/=)"
+    r"|\banswer\s*(?:is\b\s*:?|:|=|-(?=\s))|####", re.IGNORECASE)
 # a number (ASCII digits) not glued to a word character (any script's letters and digits, "³", "½") or a
 # decimal point on either side
 _NUMBER = re.compile(r"(?<![\w.])[-+]?(?:[0-9]{1,3}(?:,[0-9]{3})+|[0-9]+)(?:\.[0-9]+)?(?:[eE][-+]?[0-9]+)?(?:/[0-9]+)?(?!\w)")
-_CUT_SIGN = re.compile(r"[-+]\s*$")  # a sign right before a number but not part of it: "- 12", "x-12"
-_NEGATION = re.compile(r"\b(?:not|no|never)\b|n['\u2019]t\b", re.IGNORECASE)
+# what may stand between the last word and a number without changing it: spaces, currency, brackets, markup,
+# ",", "=", ":" and arrows ("->", "=>" are read as arrows, not as signs)
+_PLAIN_LEAD = frozenset(" \t\r\n\f\v$\u20ac\u00a3\u00a5\u20b9([{*_,=:\"'`#\\\u2192\u21d2")
+_ARROW = re.compile(r"-+>|=+>")
+_SIGN_WORD = re.compile(r"\b(?:minus|negative)$", re.IGNORECASE)
+_SET_OFF = frozenset(" \t\r\n\f\v$\u20ac\u00a3\u00a5\u20b9([")  # may stand between a sign and its digits
+# the end of a sentence before a number: . ! ? ; followed by a space, or a line break
+_SENTENCE_END = re.compile(r"[.!?;](?=\s)|\n")
+# what joins two candidates: "12 or 13", "12 / 13", "12, 13", "12 (or 13)"
+_JOINED = re.compile(r"\s*[(\[]?\s*(?:,|/|,?\s*\bor\b|\band/or\b)\s*")
+# after the number, what starts an explanation of it: a bracket, or because / since / as / from / by / via /
+# using / given (after an optional comma); "out of N" is a denominator, not a second answer
+_EXPLAINS = re.compile(r"\s*,?\s*(?:[(\[]|(?:because|since|as|from|by|via|using|given)\b)", re.IGNORECASE)
+_OUT_OF = re.compile(r"\s*out\s+of\s+[0-9]+(?:,[0-9]{3})*\s*[.!)]?\s*$", re.IGNORECASE)
+# a second candidate or a hedge inside the explanation: "12 (or 13)", "12 (maybe 13)", "12 (13?)"
+_ALTERNATIVE = re.compile(r"\b(?:or|either|maybe|perhaps|possibly|probably|alternatively)\b|\?", re.IGNORECASE)
+# arithmetic between numbers: the explanation derives the answer ("12 (3 x 4)", "since 3*4=12")
+_DERIVATION = re.compile(r"[0-9)]\s*(?:[-+*/=^\u00d7\u00f7\u00b7xX]|\\times|\\cdot)\s*[0-9(]")
 # dash punctuation (Unicode category Pd) and minus-like signs: all read as "-"
 _DASHES = ("\u058a\u05be\u1400\u1806\u2010\u2011\u2012\u2013\u2014\u2015\u2e17\u2e1a\u2e3a\u2e3b\u2e40\u2e5d"
            "\u301c\u3030\u30a0\ufe31\ufe32\ufe58\ufe63\U00010ead"
@@ -76,6 +132,43 @@ def _check_pattern(pattern: Any) -> re.Pattern[str] | None:
         return re.compile(pattern)
     except re.error as e:
         raise ValueError(f"pattern must be a valid regular expression, got {pattern!r} ({e})") from None
+
+
+def _lead_sign(text: str, m: re.Match[str]) -> int | None:
+    """What the characters between the last word and the number ``m`` do to it: 1 (nothing), -1 (a sign
+    set off by currency or a bracket, ``-$12``, ``-(12)``, or the word ``minus`` / ``negative``), None (the
+    number is unreadable: a sign cut off by spaces ``- 12`` or glued to a word ``x-12``, two signs ``-(-12)``,
+    or a character that may change the number, such as ``~``, ``<`` or a box-drawing dash)."""
+    i = m.start()
+    while i > 0 and not (text[i - 1].isalnum() or text[i - 1] == "_"):
+        i -= 1
+    lead = _ARROW.sub("\u2192", text[i:m.start()])
+    own_sign = m.group(0)[0] in "+-"
+    signs = [k for k, c in enumerate(lead) if c in "+-"]
+    if any(c not in _PLAIN_LEAD and c not in "+-" for c in lead):
+        return None
+    if _SIGN_WORD.search(text, 0, i):  # "minus 12", "negative $12"
+        return -1 if not own_sign and not signs and lead and set(lead) <= _SET_OFF else None
+    if not signs:
+        return 1
+    if own_sign or len(signs) > 1:
+        return None
+    between = lead[signs[0] + 1:]
+    if not between.strip() or not set(between) <= _SET_OFF:  # "- 12", "x-12", "(-)12"
+        return None
+    return -1 if lead[signs[0]] == "-" else 1
+
+
+def _explains(tail: str, first: str) -> bool:
+    """Whether ``tail``, the text after the first number of an answer, explains that number rather than
+    offering a second one: "out of N", or a bracket or a because / since / as ... clause without "or" or a
+    hedge that repeats the number or derives it by arithmetic."""
+    if _OUT_OF.match(tail):
+        return True
+    if not _EXPLAINS.match(tail) or _ALTERNATIVE.search(tail):
+        return False
+    repeated = any(n.group(0).lstrip("+-") == first.lstrip("+-") for n in _NUMBER.finditer(tail))
+    return repeated or bool(_DERIVATION.search(tail))
 
 
 def _extract(text: str, pattern: re.Pattern[str] | None) -> str | None:
@@ -104,9 +197,23 @@ def _extract(text: str, pattern: re.Pattern[str] | None) -> str | None:
     found = None
     for found in _NUMBER.finditer(text):
         pass
-    if found is None or _CUT_SIGN.search(text, 0, found.start()):
+    if found is None:
         return None
-    return found.group(0)
+    sentence = 0
+    for end in _SENTENCE_END.finditer(text, 0, found.start()):
+        sentence = end.end()
+    if _NEGATION.search(text, sentence):  # "12 is not the answer.", "The answer cannot be 12."
+        return None
+    before = None
+    for before in _NUMBER.finditer(text, sentence, found.start()):
+        pass
+    if before is not None and _JOINED.fullmatch(text, before.end(), found.start()):
+        return None
+    sign = _lead_sign(text, found)
+    if sign is None:
+        return None
+    tok = found.group(0)
+    return "-" + tok if sign < 0 else tok
 
 
 def extract_answer(text: str, *, pattern: str | re.Pattern[str] | None = None) -> str | None:
@@ -127,23 +234,28 @@ def extract_answer(text: str, *, pattern: str | re.Pattern[str] | None = None) -
 
 
 def parse_number(text: str | None) -> float | None:
-    """The number in ``text`` as a float (``"1,234"`` -> 1234, ``"3/4"`` -> 0.75, ``"x = -2"`` -> -2), or None
-    unless ``text`` holds exactly one number (module docstring: ASCII digits, not glued to a letter or another
-    kind of digit), its sign not cut off by spaces (``"- 12"``) and no ``not`` / ``no`` / ``never`` before it."""
+    """The number in ``text`` as a float (``"1,234"`` -> 1234, ``"3/4"`` -> 0.75, ``"x = -2"`` -> -2,
+    ``"-$12"`` -> -12), or None unless ``text`` holds one number -- later numbers only in an explanation of it
+    (``"12 (3 x 4)"``, ``"12 because 3*4=12"``, ``"12 out of 20"``) -- with nothing before it that may change it
+    (``"- 12"``, ``"-(-12)"``, ``"~12"``) and no negation anywhere (``not``, ``no``, ``n't``, ``wrong``, ``!=``,
+    ``anything but``; the module docstring lists them)."""
     if text is None:
         return None
     text = unify_text(text)
+    if _NEGATION.search(text):
+        return None
     found = list(_NUMBER.finditer(text))
-    if len(found) != 1:
+    if not found:
         return None
     m = found[0]
-    if _CUT_SIGN.search(text, 0, m.start()) or _NEGATION.search(text, 0, m.start()):
+    sign = _lead_sign(text, m)
+    if sign is None or (len(found) > 1 and not _explains(text[m.end():], m.group(0))):
         return None
     tok = m.group(0).replace(",", "")
     if "/" in tok:
         num, den = tok.split("/")
-        return float(num) / float(den) if float(den) != 0 else None
-    value = float(tok)
+        return sign * float(num) / float(den) if float(den) != 0 else None
+    value = sign * float(tok)
     return value if math.isfinite(value) else None
 
 
@@ -227,10 +339,11 @@ class NumericMatch:
     ``prompts, responses: (N,) -> Verdicts(scores (N,), rewards = scores)``.
 
     Close means ``|got - want| <= max(rel_tol * max(|got|, |want|), abs_tol)``
-    (:func:`math.isclose`). A response whose answer is not exactly one number scores 0.
+    (:func:`math.isclose`). A response whose answer :func:`parse_number` cannot read as one number (two
+    candidates, a negation, an unreadable sign) scores 0.
 
-    answers: prompt -> expected number, or a str holding exactly one number such as ``"1,024"`` (read by
-             :func:`parse_number`: ``"½"``, ``"2³"`` or ``"12 or 13"`` are errors).
+    answers: prompt -> expected number, or a str holding one number such as ``"1,024"`` or ``"-$12"`` (read by
+             :func:`parse_number`: ``"½"``, ``"2³"``, ``"12 or 13"`` or ``"not 12"`` are errors).
     """
 
     def __init__(self, answers: Mapping[str, float | str], *, abs_tol: float = 1e-6, rel_tol: float = 1e-9,
