@@ -101,11 +101,11 @@ _SET_OFF = frozenset(" \t\r\n\f\v$\u20ac\u00a3\u00a5\u20b9([")  # may stand betw
 # the end of a sentence before a number: . ! ? ; followed by a space, or a line break
 _SENTENCE_END = re.compile(r"[.!?;](?=\s)|\n")
 # what joins two candidates: "12 or 13", "12 / 13", "12, 13", "12 (or 13)"
-_JOINED = re.compile(r"\s*[(\[]?\s*(?:,|/|,?\s*\bor\b|\band/or\b)\s*")
+_JOINED = re.compile(r"[(\[]?\s*(?:,|/|(?:,\s*)?or|and/or)")  # matched on the stripped text between them
 # after the number, what starts an explanation of it: a bracket, or because / since / as / from / by / via /
 # using / given (after an optional comma); "out of N" is a denominator, not a second answer
-_EXPLAINS = re.compile(r"\s*,?\s*(?:[(\[]|(?:because|since|as|from|by|via|using|given)\b)", re.IGNORECASE)
-_OUT_OF = re.compile(r"\s*out\s+of\s+[0-9]+(?:,[0-9]{3})*\s*[.!)]?\s*$", re.IGNORECASE)
+_EXPLAINS = re.compile(r"\s*(?:,\s*)?(?:[(\[]|(?:because|since|as|from|by|via|using|given)\b)", re.IGNORECASE)
+_OUT_OF = re.compile(r"\s*out\s+of\s+[0-9]+(?:,[0-9]{3})*\s*(?:[.!)]\s*)?$", re.IGNORECASE)
 # a second candidate or a hedge inside the explanation: "12 (or 13)", "12 (maybe 13)", "12 (13?)"
 _ALTERNATIVE = re.compile(r"\b(?:or|either|maybe|perhaps|possibly|probably|alternatively)\b|\?", re.IGNORECASE)
 # arithmetic between numbers: the explanation derives the answer ("12 (3 x 4)", "since 3*4=12")
@@ -207,7 +207,7 @@ def _extract(text: str, pattern: re.Pattern[str] | None) -> str | None:
     before = None
     for before in _NUMBER.finditer(text, sentence, found.start()):
         pass
-    if before is not None and _JOINED.fullmatch(text, before.end(), found.start()):
+    if before is not None and _JOINED.fullmatch(text[before.end():found.start()].strip()):
         return None
     sign = _lead_sign(text, found)
     if sign is None:
