@@ -50,7 +50,10 @@ later number stands in an explanation of the first: ``"out of N"``
 arithmetic (``"12 (3 × 4)"``, ``"12 because 3 groups of 4 make 12"``,
 ``"12, since 3*4=12"``). A second candidate is no number: ``"12 or 13"``,
 ``"12, 13"``, ``"12-13"``, ``"12 (13)"``, ``"12 apples and 0 pears"``.
-``"minus 12"`` and ``"negative 12"`` read as ``-12``.
+``"minus 12"`` and ``"negative 12"`` read as ``-12`` ("minus" only at the start or
+after ``is``, ``was``, ``be``, ``are``, ``equals``, ``get``, ``got``, ``gives``,
+``makes``, ``answer``, ``:``, ``=``, ``(``, ``,``: ``"5 minus 12"`` and ``"x minus 12"``
+are an operation, so the number is unreadable).
 
 Characters: full-width forms (U+FF01-U+FF5E) read as their ASCII
 (``"４２"`` -> ``"42"``), the ideographic space as a space, and minus signs and
@@ -96,7 +99,9 @@ _NUMBER = re.compile(r"(?<![\w.])[-+]?(?:[0-9]{1,3}(?:,[0-9]{3})+|[0-9]+)(?:\.[0
 # ",", "=", ":" and arrows ("->", "=>" are read as arrows, not as signs)
 _PLAIN_LEAD = frozenset(" \t\r\n\f\v$\u20ac\u00a3\u00a5\u20b9([{*_,=:\"'`#\\\u2192\u21d2")
 _ARROW = re.compile(r"-+>|=+>")
-_SIGN_WORD = re.compile(r"\b(?:minus|negative)$", re.IGNORECASE)
+_SIGN_WORD = re.compile(r"(?<![^\W\d_])(?:minus|negative)$", re.IGNORECASE)
+# "minus" is a sign (not an operation, as in "5 minus 12" or "x minus 12") only at the start or after these
+_UNARY_AFTER = frozenset({"is", "was", "be", "are", "equals", "get", "got", "gives", "makes", "answer"})
 _SET_OFF = frozenset(" \t\r\n\f\v$\u20ac\u00a3\u00a5\u20b9([")  # may stand between a sign and its digits
 # the end of a sentence before a number: . ! ? ; followed by a space, or a line break
 _SENTENCE_END = re.compile(r"[.!?;](?=\s)|\n")
@@ -147,8 +152,13 @@ def _lead_sign(text: str, m: re.Match[str]) -> int | None:
     signs = [k for k, c in enumerate(lead) if c in "+-"]
     if any(c not in _PLAIN_LEAD and c not in "+-" for c in lead):
         return None
-    if _SIGN_WORD.search(text, 0, i):  # "minus 12", "negative $12"
-        return -1 if not own_sign and not signs and lead and set(lead) <= _SET_OFF else None
+    word = _SIGN_WORD.search(text[max(0, i - 8):i])
+    if word:  # "minus 12", "negative $12", "It is minus 12"; not "5 minus 12"
+        before = text[:i - len(word.group(0))].rstrip()
+        prev = re.search(r"[^\W\d_]+$", before[-20:])
+        unary = (word.group(0).lower() == "negative" or not before or before[-1] in ":=([,"
+                 or (prev is not None and prev.group(0).lower() in _UNARY_AFTER))
+        return -1 if unary and not own_sign and not signs and lead and set(lead) <= _SET_OFF else None
     if not signs:
         return 1
     if own_sign or len(signs) > 1:
