@@ -210,7 +210,7 @@ def test_parse_number_signs_negations_and_explanations(text, want):
      ("12 (or 13)", None), ("12, 13", None), ("12 is not the answer.", None), ("The answer cannot be 12.", None),
      ("Is it 13? No. It is 12.", "12"), ("The answer isn`t 12", None), ("answer \u2260 12", None),
      ("It is minus 12", "-12"), ("terminus 12", "12"),
-     ("5 minus 12", None), ("x minus 12", None),  # "minus" between operands is an operation, not a sign
+     ("5 minus 12", None), ("x minus 12", None), ("5 -$12", None),  # "minus" between operands is an operation, not a sign
      ("Total \u2013 12", None)],  # a spaced dash before the last number may be an operator ("x - 12")
 )
 def test_extract_answer_separator_dash_negation_and_set_off_signs(text, want):

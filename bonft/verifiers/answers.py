@@ -32,7 +32,8 @@ kind (``2³``, ``1½``, ``٤2``, ``7kg``) is not a number. Between the last word
 and a number may stand spaces, currency (``$ € £ ¥ ₹``), brackets, markup
 (``* _ ` # \\``), ``,``, ``=``, ``:`` and arrows (``->``, ``=>``, ``→``); a sign
 there counts only when currency or an opening bracket sets it off from the
-digits (``-$12``, ``-(12)``, ``- $12`` read as ``-12``). Anything else makes
+digits (``-$12``, ``-(12)``, ``- $12`` read as ``-12``) and no number stands
+right before it (``5 -$12`` is an operation). Anything else makes
 the number unreadable: a sign cut off by spaces only (``- 12``; also
 ``"Total – 12"``, where the dash may be a separator but equally an operator, as
 in ``"x - 12"``) or glued to a word (``x-12``), two signs (``-(-12)``, ``--12``), ``(-)12``, and any other
@@ -143,7 +144,8 @@ def _lead_sign(text: str, m: re.Match[str]) -> int | None:
     """What the characters between the last word and the number ``m`` do to it: 1 (nothing), -1 (a sign
     set off by currency or a bracket, ``-$12``, ``-(12)``, or the word ``minus`` / ``negative``), None (the
     number is unreadable: a sign cut off by spaces ``- 12`` or glued to a word ``x-12``, two signs ``-(-12)``,
-    or a character that may change the number, such as ``~``, ``<`` or a box-drawing dash)."""
+    a set-off sign right after a number (``5 -$12``, an operation), or a character that may change the number,
+    such as ``~``, ``<`` or a box-drawing dash)."""
     i = m.start()
     while i > 0 and not (text[i - 1].isalnum() or text[i - 1] == "_"):
         i -= 1
@@ -165,6 +167,8 @@ def _lead_sign(text: str, m: re.Match[str]) -> int | None:
         return None
     between = lead[signs[0] + 1:]
     if not between.strip() or not set(between) <= _SET_OFF:  # "- 12", "x-12", "(-)12"
+        return None
+    if not lead[:signs[0]].strip() and i > 0 and text[i - 1].isdigit():  # "5 -$12" is an operation
         return None
     return -1 if lead[signs[0]] == "-" else 1
 
