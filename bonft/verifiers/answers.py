@@ -99,7 +99,7 @@ _NUMBER = re.compile(r"(?<![\w.])[-+]?(?:[0-9]{1,3}(?:,[0-9]{3})+|[0-9]+)(?:\.[0
 # what may stand between the last word and a number without changing it: spaces, currency, brackets, markup,
 # ",", "=", ":" and arrows ("->", "=>" are read as arrows, not as signs)
 _PLAIN_LEAD = frozenset(" \t\r\n\f\v$\u20ac\u00a3\u00a5\u20b9([{*_,=:\"'`#\\\u2192\u21d2")
-_ARROW = re.compile(r"-+>|=+>")
+_ARROW = re.compile(r"(?<!-)-+>|(?<!=)=+>")  # a run starts only at its first character: linear in a run of dashes
 _SIGN_WORD = re.compile(r"(?<![^\W\d_])(?:minus|negative)$", re.IGNORECASE)
 # "minus" is a sign (not an operation, as in "5 minus 12" or "x minus 12") only at the start or after these
 _UNARY_AFTER = frozenset({"is", "was", "be", "are", "equals", "get", "got", "gives", "makes", "answer"})
