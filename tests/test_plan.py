@@ -676,3 +676,23 @@ def test_plan_model_refuses_a_temperature_whose_every_sample_the_verifier_failed
                                             r"temperature would be ranked on stand-in scores"):
         plan_model(model, tok, [f"jars {i}+{i} ?" for i in range(12)], down_after_one_batch, temperatures=(0.7, 1.0),
                    n=4, max_new_tokens=8, progress=False)
+
+
+def test_a_bonferroni_tail_below_the_bootstraps_resolution_is_named_with_the_n_boot_it_needs():
+    # a test read in a tail of alpha/(2m) of n_boot resamples is liberal when few resamples are expected there
+    # (none below 1/n_boot): at n_boot=20 a budget's list left out a truly best cell in 58% of runs while the table
+    # claimed 95%. 2 temperatures x 4 k, budget 4: m = 8 - 1 = 7 comparisons, tail 0.05/14, 10 resamples need
+    # n_boot >= 10 * 14 / 0.05 = 2800 (hand arithmetic); the ~ marks: 1 comparison, tail 0.025, n_boot >= 400
+    rng = np.random.default_rng(3)
+    pools = {t: Pools(rng.normal(size=(12, 4)), rng.random((12, 4))) for t in (0.5, 1.0)}
+    res = plan_pools(pools, budget_samples=4, n_boot=20)
+    assert res.budgets[0].n_compared == 7 and res.budgets[0].n_boot_needed == 2800 and res.n_boot_needed == 400
+    text = res.table()
+    assert "note: budget 4 samples: its 'not significantly worse' list tests 7 comparisons" in text
+    assert "does not deliver the stated 0.95 confidence" in text and "n_boot >= 2,800 does" in text
+    assert "note: the ~ marks test each of 1 comparison in a tail of 0.025" in text and "n_boot >= 400 does" in text
+    d = json.loads(json.dumps(res.to_dict()))
+    assert d["n_boot_needed"] == 400 and d["budgets"][0]["n_boot_needed"] == 2800
+    ok = plan_pools(pools, budget_samples=4, n_boot=2800)
+    assert ok.n_boot_needed is None and ok.budgets[0].n_boot_needed is None and "does not deliver" not in ok.table()
+    assert plan_pools(pools, budget_samples=4, n_boot=2799).budgets[0].n_boot_needed == 2800

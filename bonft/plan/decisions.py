@@ -5,6 +5,7 @@ except those of the public :func:`fit_best_temperature`.
 """
 from __future__ import annotations
 
+import math
 import sys
 from typing import Any
 
@@ -21,6 +22,17 @@ BLOCK_CELLS = 4_000_000  # entries of one block of resampling counts (as bonft.e
 # 1e6 + {0, 1e-7}: a real gain of 2.5e-8 is above it, a V_2 - V_1 of one ulp at 0.6 is not)
 ROUNDING = 1e-12
 ULPS = 8
+# the fewest resamples expected in the tail a percentile test reads (a share alpha/2 of n_boot, alpha Bonferroni-
+# adjusted): with fewer, whether a gap is "significant" turns on a handful of resamples (none at all below 1/n_boot),
+# the test turns liberal and the confidence stops taking effect (a seeded check: 6 temperatures x 32 k at
+# n_boot=20 left a truly best cell out of a budget's list in 58% of runs). 10 is common practice, no single source
+MIN_TAIL = 10
+
+
+def n_boot_needed(alpha: float, n_boot: int) -> int | None:
+    """The n_boot that puts MIN_TAIL resamples in a two-sided test's tail share alpha/2, or None when n_boot does."""
+    need = math.ceil(2 * MIN_TAIL / alpha - 1e-9)
+    return need if n_boot < need else None
 
 
 def bootstrap_means(per_prompt: list[np.ndarray], *, paired: bool, n_boot: int, seed: int) -> np.ndarray:
@@ -85,6 +97,7 @@ def finish(*, mode, temps, ks, value, lo, hi, boot, confidence, n_boot, paired, 
     T, K = value.shape
     best_index = np.argmax(value, axis=0)  # (K,) first maximum, i.e. the lowest such temperature
     cols = np.arange(K)
+    marks_need = None
     if boot is None:
         near = value >= value[best_index, cols][None, :] - 1e-12  # exact (or too few prompts to test): only ties
     else:
@@ -94,6 +107,13 @@ def finish(*, mode, temps, ks, value, lo, hi, boot, confidence, n_boot, paired, 
         alpha = (1.0 - confidence) / max(T - 1, 1)
         diff = boot[:, best_index, cols][:, None, :] - boot  # (B, T, K): best minus each temperature, paired draws
         near = not_worse(diff, alpha)
+        marks_need = n_boot_needed(alpha, n_boot) if T > 1 else None
+        if marks_need is not None:
+            notes = list(notes) + [
+                f"the ~ marks test each of {T - 1} comparison{'s' if T > 2 else ''} in a tail of {alpha / 2:.2g} of the resamples "
+                f"({alpha / 2 * n_boot:.2g} expected of {n_boot}, fewer than {MIN_TAIL}): they do not deliver the stated "
+                f"{confidence:g} confidence (too few temperatures marked ~); n_boot >= {marks_need:,} does"
+                + _table_bound(marks_need, T, K)]
 
     def cell_gap(t1, k1, t0, k0):  # V(t1, k1) - V(t0, k0) with its CI
         g = float(value[t1, k1 - 1] - value[t0, k0 - 1])
@@ -135,6 +155,15 @@ def finish(*, mode, temps, ks, value, lo, hi, boot, confidence, n_boot, paired, 
     after = paying[-1] + 1 if paying else 0
     stops = doubling[after].k if after < len(doubling) else None
 
+    for c in budgets:
+        if c.n_boot_needed is not None:
+            notes = list(notes) + [
+                f"budget {c.budget:g} {c.kind}: its 'not significantly worse' list tests {c.n_compared} comparisons "
+                f"in a tail of {(1 - confidence) / c.n_compared / 2:.2g} of the resamples "
+                f"({(1 - confidence) / c.n_compared / 2 * n_boot:.2g} expected of {n_boot}, fewer than {MIN_TAIL}): it does not "
+                f"deliver the stated {confidence:g} confidence (the list is too short and may leave out a truly best "
+                f"cell); n_boot >= {c.n_boot_needed:,} does" + _table_bound(c.n_boot_needed, T, K)]
+
     return PlanResult(
         mode=mode,
         temperatures=temps,
@@ -160,7 +189,18 @@ def finish(*, mode, temps, ks, value, lo, hi, boot, confidence, n_boot, paired, 
         fit=fit_best_temperature(ks, temps[best_index]),
         notes=list(notes),
         no_interval=no_interval,
+        n_boot_needed=marks_need,
     )
+
+
+def _table_bound(need: int, T: int, K: int) -> str:
+    """The caveat when that n_boot would exceed the bootstrap table's bound (bonft.plan.sweep.MAX_BOOT_CELLS)."""
+    from bonft.plan.sweep import MAX_BOOT_CELLS
+
+    if need * T * K <= MAX_BOOT_CELLS:
+        return ""
+    return (f" (but n_boot x {T} temperatures x {K} k must be <= {MAX_BOOT_CELLS:,}: lower --max-k or use fewer "
+            f"temperatures)")
 
 
 def _choose(value, lo, hi, boot, confidence, mask, ks, temps, cost, *, kind, budget, note) -> BudgetChoice:
@@ -169,14 +209,16 @@ def _choose(value, lo, hi, boot, confidence, mask, ks, temps, cost, *, kind, bud
     top = v.max()
     cand = np.argwhere(v >= top - 1e-12)  # (m, 2) rows (t, j)
     t, j = min(cand.tolist(), key=lambda tj: (cost[tj[0], tj[1]], tj[1], tj[0]))
-    alts = []
+    alts, need, m = [], None, 0
     if boot is not None:
         cells = np.argwhere(mask)  # (m, 2) affordable (t, j)
         diff = boot[:, t, j][:, None] - boot[:, cells[:, 0], cells[:, 1]]  # (B, m) chosen minus each affordable cell
         # the choice is picked from the same data: m - 1 comparisons, each at level alpha / (m - 1) (Bonferroni;
         # Dunn 1961), so the truly best affordable cell is among the choice and its alternatives with probability
         # >= confidence
-        ok = not_worse(diff, (1 - confidence) / max(len(cells) - 1, 1))
+        m = max(len(cells) - 1, 1)
+        ok = not_worse(diff, (1 - confidence) / m)
+        need = n_boot_needed((1 - confidence) / m, diff.shape[0]) if len(cells) > 1 else None
         near = [(a, b) for (a, b), keep in zip(cells.tolist(), ok) if keep and (a, b) != (t, j)]
         near.sort(key=lambda ab: -value[ab[0], ab[1]])  # closest to the choice first
         alts = [(float(temps[a]), int(ks[b])) for a, b in near]
@@ -191,6 +233,8 @@ def _choose(value, lo, hi, boot, confidence, mask, ks, temps, cost, *, kind, bud
         cost=float(cost[t, j]),
         alternatives=alts,
         note=note,
+        n_boot_needed=need,
+        n_compared=m,
     )
 
 

@@ -19,6 +19,9 @@ class BudgetChoice:
     value, lo, hi: V_k(T) of the choice and its CI (lo = hi = value in exact mode).
     cost: samples (kind "samples") or expected generated tokens per prompt (kind "tokens").
     alternatives: other (temperature, k) cells within the budget not significantly worse, best first.
+    n_boot_needed: None when n_boot leaves at least ``bonft.plan.decisions.MIN_TAIL`` resamples in the tail each of
+        the ``n_compared`` comparisons is tested in; else the n_boot that would, and the list does not deliver the
+        stated confidence (too short; the plan's notes say so).
     """
 
     kind: str
@@ -31,6 +34,8 @@ class BudgetChoice:
     cost: float
     alternatives: list = field(default_factory=list)
     note: str | None = None
+    n_boot_needed: int | None = None
+    n_compared: int = 0
 
 
 @dataclass
@@ -91,6 +96,10 @@ class PlanResult:
     no_interval: (T, K) bool, True where every prompt has the same value at a value that is neither bound of
         the rewards' range (:func:`bonft._core.bootstrap.no_interval_columns`, the rule of ``bonft estimate``):
         lo = hi = value there is no interval, and the table prints "no spread"; None in exact mode.
+    n_boot_needed: None when n_boot leaves at least ``bonft.plan.decisions.MIN_TAIL`` resamples in the tail each
+        ``near_best`` comparison is tested in (and in exact mode); else the n_boot that would, and the marks do not
+        deliver the stated confidence (the notes say so). Each budget says the same of its list
+        (``BudgetChoice.n_boot_needed``).
     """
 
     mode: str
@@ -117,6 +126,7 @@ class PlanResult:
     fit: TemperatureFit
     notes: list = field(default_factory=list)
     no_interval: np.ndarray | None = None
+    n_boot_needed: int | None = None
 
     # ------------------------------------------------------------------ views
     @property
@@ -251,6 +261,7 @@ class PlanResult:
             "lo": arr(self.lo) if valid else None,
             "hi": arr(self.hi) if valid else None,
             "intervals_valid": valid,
+            "n_boot_needed": self.n_boot_needed,
             "confidence": self.confidence,
             "n_boot": self.n_boot,
             "paired": self.paired,
