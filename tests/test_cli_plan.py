@@ -243,6 +243,16 @@ def test_a_named_temperature_field_must_be_in_the_file(tmp_path, capsys):
     (["--budget-samples", "0"], "budget_samples must be >= 1"),
     (["--budget-tokens", "-1"], "budget_tokens must be a finite number > 0"),
     (["--min-gain", "nan"], "min_gain must be a finite number"),
+    # options that depend on the grid and --n, known before any sampling
+    (["--n-boot", "1000000"], r"n_boot x temperatures x max_k must be <= 134,217,728 .*got 1,000,000 x 4 x 64"),
+    (["--temperatures", "0.5,0.50000001"], r"temperatures must be distinct as float32 .*got 0.5 and 0.50000001, "
+                                            r"both T=0.5$"),
+    (["--budget-tokens", "0.5"], r"budget_tokens must be >= 1 \(a sampled response costs at least one generated token"),
+    (["--budget-samples", "4,4"], r"budget_samples must not repeat a budget .*got \[4, 4\] \(4 more than once\)"),
+    (["--budget-samples", "8", "--n", "4"], r"budget_samples must be <= n \(n=4, the samples drawn per prompt\): the "
+                                             r"grid cannot reach a larger budget, got budget_samples=8"),
+    (["--budget-samples", "8", "--max-k", "4"], r"budget_samples must be <= max_k \(max_k=4, the largest k planned\)"),
+    (["--device", "cuda:7"], r"--device must be one of \('auto', 'cpu', 'cuda'\), got 'cuda:7'"),
 ])
 def test_plan_model_mode_refuses_bad_planner_options_before_loading_a_model(tmp_path, extra, match, capsys):
     # the model directory does not exist: an option error must come first, before any load or sampling

@@ -630,6 +630,15 @@ def test_exact_mode_with_rewards_at_the_edge_of_float64_is_finite():
     (dict(min_gain=float("nan")), ValueError, "min_gain must be a finite number, got min_gain=nan"),
     (dict(n_boot=3), ValueError, "n_boot"),
     (dict(budget_sample=4), TypeError, r"unknown planner option\(s\) \['budget_sample'\]"),
+    (dict(n_boot=1_000_000, n=128), ValueError, r"n_boot x temperatures x max_k must be <= 134,217,728 .*1,000,000 x 2 x 128"),
+    (dict(temperatures=[0.5, 0.50000001]), ValueError, r"temperatures must be distinct as float32 .*got 0.5 and "
+                                                       r"0.50000001, both T=0.5$"),
+    (dict(budget_tokens=0.5), ValueError, r"budget_tokens must be >= 1 \(a sampled response costs at least one"),
+    (dict(verifier_name=5), TypeError, r"verifier_name must be a str \(part of the cache key\) or None, got int 5"),
+    (dict(budget_samples=[4, 4]), ValueError, r"budget_samples must not repeat a budget .*\(4 more than once\)"),
+    (dict(budget_samples=8), ValueError, r"budget_samples must be <= n \(n=4, the samples drawn per prompt\): the grid "
+                                         r"cannot reach a larger budget, got budget_samples=8"),
+    (dict(budget_samples=4, max_k=2), ValueError, r"budget_samples must be <= max_k \(max_k=2, the largest k planned\)"),
 ])
 def test_plan_model_checks_every_planner_option_before_sampling(kw, exc, match, monkeypatch):
     # a bad option used to be refused only after the whole temperature grid had been sampled
@@ -640,8 +649,8 @@ def test_plan_model_checks_every_planner_option_before_sampling(kw, exc, match, 
 
     monkeypatch.setattr(fm, "sample", no_sampling)
     with pytest.raises(exc, match=match):
-        fm.plan_model(None, None, ["a prompt"], lambda p, r: [0.0] * len(r), temperatures=[0.5, 1.0], n=4,
-                      progress=False, **kw)
+        fm.plan_model(None, None, ["a prompt"], lambda p, r: [0.0] * len(r), **{"temperatures": [0.5, 1.0], "n": 4,
+                      "progress": False, **kw})
 
 
 def test_plan_samples_refuses_two_temperatures_that_select_one_pool(tmp_path):

@@ -260,16 +260,20 @@ def run(args) -> int:
         res = plan_exact(logits=spec.get("logits"), probs=spec.get("probs"), scores=spec["scores"],
                          rewards=spec["rewards"], lengths=spec.get("lengths"), temperatures=temps, **kw)
     else:
-        from bonft.plan.from_model import plan_model
+        from bonft.plan.from_model import check_model_plan, plan_model
         from bonft.trainer.checkpoint import quiet_transformers  # loads torch: only in model mode
         from bonft.trainer.models import load_model, pick_device
 
+        check_choice("--device", args.device, ("auto", "cpu", "cuda"))
+        temps = temps or parse_list("--temperatures", DEFAULT_TEMPERATURES, float)
+        # the options that depend on the grid and --n (a budget the grid cannot reach, the bootstrap table's size)
+        check_model_plan(temps, args.n, seed=args.seed, confidence=args.confidence, n_boot=args.n_boot,
+                         **_plan_kwargs(args))
         prompts, verifier, vname = _prompts_and_verifier(args)  # the user's files first: errors before a slow load
         max_new_tokens, whence = _max_new_tokens(args)
         print(f"max_new_tokens {max_new_tokens} ({whence})")
         with quiet_transformers() if args.quiet else contextlib.nullcontext():  # --quiet: no loading bar either
             model, tokenizer = load_model(args.model, device=pick_device(args.device))
-        temps = temps or parse_list("--temperatures", DEFAULT_TEMPERATURES, float)
         res, info = plan_model(model, tokenizer, prompts, verifier, temperatures=temps, n=args.n, seed=args.seed,
                                top_p=args.top_p, top_k=args.top_k, max_new_tokens=max_new_tokens, batch_size=args.batch_size,
                                cache_dir=args.cache, verifier_name=vname, progress=not args.quiet,

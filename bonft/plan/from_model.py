@@ -24,8 +24,8 @@ from tqdm.auto import tqdm
 from bonft._core.checks import MAX_POOL, check_bound, check_fraction, check_int, check_seed
 from bonft._core.seeds import derive_seed, float_key
 from bonft.generation.sampling import sample
-from bonft.io import SampleTable, read_samples, write_samples
-from bonft.plan.sweep import PLAN_OPTIONS, _check_temperatures, check_plan_options, plan_samples
+from bonft.io import SampleTable, read_samples, same_temperature, temperature_label, write_samples
+from bonft.plan.sweep import PLAN_OPTIONS, _check_boot_table, _check_temperatures, check_plan_options, plan_samples
 from bonft.verifiers import score_batch
 from bonft.verifiers.base import verifier_name as name_of_verifier
 from bonft.verifiers.scoring import VerifierError
@@ -69,6 +69,57 @@ def cache_file(cache_dir, *, model_hash: str, prompts_hash: str, verifier: str, 
     return Path(cache_dir) / f"plan-T{temperature:g}-n{n}-{key}.jsonl"
 
 
+def _check_sampled_temperatures(temperatures: Any) -> np.ndarray:
+    """A grid to sample: temperatures distinct as float32 (a pool's temperature as a samples file stores it,
+    :func:`bonft.io.same_temperature`), or two of them would sample, cache and plan one pool twice."""
+    temps = _check_temperatures(temperatures)
+    for i in range(1, temps.size):
+        same = np.flatnonzero(same_temperature(temps[:i], temps[i]))
+        if same.size:
+            raise ValueError(f"temperatures must be distinct as float32 (the precision a pool's temperature is stored "
+                             f"with), got {float(temps[same[0]])!r} and {float(temps[i])!r}, both "
+                             f"T={temperature_label(temps[i])}")
+    return temps
+
+
+def _check_verifier_name(verifier_name: Any) -> None:
+    if verifier_name is not None and not isinstance(verifier_name, str):
+        raise TypeError(f"verifier_name must be a str (part of the cache key) or None, got "
+                        f"{type(verifier_name).__name__} {verifier_name!r}")
+    if verifier_name is not None and not verifier_name.strip():
+        raise ValueError(f"verifier_name must be a non-empty str (part of the cache key) or None, got {verifier_name!r}")
+
+
+def check_model_plan(temperatures: Any, n: Any, *, verifier_name: Any = None, **plan_kwargs: Any) -> None:
+    """What :func:`plan_model` can check before any model is loaded or sampled: the grid, n, the verifier's name and
+    every planner option, including those that depend on the grid (the bootstrap table's size, a sample budget
+    above the largest k planned, a token budget below one token)."""
+    unknown = sorted(set(plan_kwargs) - set(PLAN_OPTIONS))
+    if unknown:
+        raise TypeError(f"plan_model got unknown planner option(s) {unknown}; plan_kwargs takes "
+                        f"{', '.join(o for o in PLAN_OPTIONS if o != 'seed')}")
+    check_plan_options(**plan_kwargs)  # the planner's knobs on their own
+    temps = _check_sampled_temperatures(temperatures)
+    n = check_bound("n", n, max=MAX_POOL, why="samples per prompt: a pool is sampled, scored and planned over at once")
+    _check_verifier_name(verifier_name)
+    max_k = plan_kwargs.get("max_k")
+    if max_k is not None and max_k > n:
+        raise ValueError(f"max_k must be <= n (n={n}, the samples drawn per prompt), got max_k={max_k}")
+    top, what = (n, f"n (n={n}, the samples drawn per prompt)") if max_k is None else (
+        max_k, f"max_k (max_k={max_k}, the largest k planned)")
+    budgets = plan_kwargs.get("budget_samples")
+    for b in [] if budgets is None else (list(budgets) if isinstance(budgets, (list, tuple, np.ndarray)) else [budgets]):
+        if b > top:
+            raise ValueError(f"budget_samples must be <= {what}: the grid cannot reach a larger budget, got "
+                             f"budget_samples={b}")
+    budgets = plan_kwargs.get("budget_tokens")
+    for b in [] if budgets is None else (list(budgets) if isinstance(budgets, (list, tuple, np.ndarray)) else [budgets]):
+        if float(b) < 1:
+            raise ValueError(f"budget_tokens must be >= 1 (a sampled response costs at least one generated token, its "
+                             f"end-of-sequence), got budget_tokens={float(b):g}")
+    _check_boot_table(plan_kwargs.get("n_boot", 2000), temps.size, top)
+
+
 def draw_samples(
     model: Any,
     tokenizer: Any,
@@ -96,8 +147,9 @@ def draw_samples(
     verifier_name: part of the cache key (default: the verifier's qualified name); change it
     when the verifier's behaviour changes, or old pools would be reused.
     """
-    temps = _check_temperatures(temperatures)
+    temps = _check_sampled_temperatures(temperatures)
     n = check_bound("n", n, max=MAX_POOL, why="samples per prompt: a pool is sampled, scored and planned over at once")
+    _check_verifier_name(verifier_name)
     seed = check_seed(seed)
     top_p = check_fraction("top_p", top_p, open_low=True)
     top_k = check_int("top_k", top_k, min=0)
@@ -203,16 +255,13 @@ def plan_model(
     """Draw pools from a model (see :func:`draw_samples`), then :func:`bonft.plan.sweep.plan_samples`.
 
     plan_kwargs: max_k, budget_samples, budget_tokens, confidence, n_boot, min_gain (seed is shared); each is
-    checked, and an unknown keyword refused, before any sampling.
+    checked, and an unknown keyword refused, before any sampling (:func:`check_model_plan`): a sample budget
+    above max_k (or n), a token budget below 1, temperatures equal as float32 or n_boot x temperatures x max_k
+    above the bootstrap table's bound are errors there.
+    verifier_name: a str or None (see :func:`draw_samples`).
     -> (PlanResult, info).
     """
-    unknown = sorted(set(plan_kwargs) - (set(PLAN_OPTIONS) - {"seed"}))
-    if unknown:
-        raise TypeError(f"plan_model got unknown planner option(s) {unknown}; plan_kwargs takes "
-                        f"{', '.join(o for o in PLAN_OPTIONS if o != 'seed')}")
-    check_plan_options(seed=seed, **plan_kwargs)  # the planner's knobs before any sampling
-    if plan_kwargs.get("max_k") is not None and check_int("max_k", plan_kwargs["max_k"], min=1) > n:
-        raise ValueError(f"max_k must be <= n (n={n}, the samples drawn per prompt), got max_k={plan_kwargs['max_k']}")
+    check_model_plan(temperatures, n, verifier_name=verifier_name, seed=seed, **plan_kwargs)  # before any sampling
     table, info = draw_samples(model, tokenizer, prompts, verifier, temperatures=temperatures, n=n, seed=seed,
                                top_p=top_p, top_k=top_k, max_new_tokens=max_new_tokens, batch_size=batch_size,
                                cache_dir=cache_dir, verifier_name=verifier_name, progress=progress)

@@ -123,9 +123,12 @@ def _check_budgets(name: str, budgets: Any, *, integer: bool) -> list:
     if budgets is None:
         return []
     items = list(budgets) if isinstance(budgets, (list, tuple, np.ndarray)) else [budgets]
-    if integer:
-        return [check_int(name, b, min=1) for b in items]
-    return [check_positive(name, b) for b in items]
+    out = [check_int(name, b, min=1) for b in items] if integer else [check_positive(name, b) for b in items]
+    repeated = sorted({b for b in out if out.count(b) > 1})
+    if repeated:
+        raise ValueError(f"{name} must not repeat a budget (each is one choice of the plan), got {out} "
+                         f"({repeated[0]:g} more than once)")
+    return out
 
 
 PLAN_OPTIONS = ("max_k", "budget_samples", "budget_tokens", "confidence", "n_boot", "seed", "min_gain")
@@ -227,8 +230,8 @@ def plan_pools(
     temperature is resampled on its own.
 
     max_k:          largest k (default: the smallest pool over all temperatures and prompts).
-    budget_samples: samples per prompt; picks the best (T, k) with k <= budget.
-    budget_tokens:  generated tokens per prompt; picks the best (T, k) with
+    budget_samples: samples per prompt; picks the best (T, k) with k <= budget (a repeated budget is an error).
+    budget_tokens:  generated tokens per prompt (a repeated budget is an error); picks the best (T, k) with
                     k * mean_tokens(T) <= budget (needs ``Pools.mean_tokens``, which is given at
                     every temperature or at none).
     min_gain:       doubling N "stops paying" at the first k where the gain
