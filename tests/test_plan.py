@@ -705,3 +705,16 @@ def test_a_bonferroni_tail_below_the_bootstraps_resolution_is_named_with_the_n_b
     ok = plan_pools(pools, budget_samples=4, n_boot=2800)
     assert ok.n_boot_needed is None and ok.budgets[0].n_boot_needed is None and "does not deliver" not in ok.table()
     assert plan_pools(pools, budget_samples=4, n_boot=2799).budgets[0].n_boot_needed == 2800
+
+
+def test_doubling_that_kept_paying_names_the_largest_k_it_tested():
+    # one success in 24 samples per prompt, score = reward: pass@k = 1 - C(23, k) / C(24, k) = k / 24 (Chen et al.
+    # 2021), so every doubling step gains k / 24 > 0 at every prompt. With max_k 24 the last step tested is 8->16:
+    # the sentence said "up to k=24", a k no step reached
+    r = np.zeros((12, 24))
+    r[:, 0] = 1.0
+    res = plan_pools({1.0: Pools(r, r.copy())}, n_boot=200)
+    assert [d.k for d in res.doubling] == [1, 2, 4, 8] and res.doubling_stops_at is None
+    np.testing.assert_allclose([d.gain for d in res.doubling], [1 / 24, 2 / 24, 4 / 24, 8 / 24], rtol=1e-12)
+    text = res.table()
+    assert "doubling kept paying (gain significantly > 0) up to k=16" in text and "up to k=24" not in text

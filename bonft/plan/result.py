@@ -202,7 +202,8 @@ class PlanResult:
             sig = "" if exact or few else " significantly"
             k = self.doubling_stops_at
             if k is None:
-                lines.append(f"    doubling kept paying (gain{sig} > {self.min_gain:g}) up to k={int(self.ks[-1])}")
+                last = 2 * self.doubling[-1].k  # the largest k a doubling step tested (16 with max_k 24)
+                lines.append(f"    doubling kept paying (gain{sig} > {self.min_gain:g}) up to k={last}")
             else:
                 tail = [d for d in self.doubling if d.k >= k]
                 gains = ", ".join(f"{d.k}->{2 * d.k} gains {d.gain:+.4f}" for d in tail)
