@@ -491,6 +491,10 @@ def test_too_few_prompts_make_no_significance_claims_anywhere():
     d = json.loads(json.dumps(res.to_dict()))
     assert d["intervals_valid"] is False and d["lo"] is None and d["hi"] is None
     assert d["budgets"][0]["lo"] is None and all(s["lo"] is None for s in d["doubling"])
+    # the object holds no interval either (NaN), where it held a bootstrap over 3 prompts that its docstring called a CI
+    assert np.isnan(res.lo).all() and np.isnan(res.hi).all() and np.isfinite(res.value).all()
+    assert np.isnan([res.budgets[0].lo, res.budgets[0].hi]).all()
+    assert all(np.isnan([s.lo, s.hi]).all() and np.isfinite(s.gain) for s in res.doubling)
     many = plan_pools({t: Pools(rng.integers(0, 3, size=(12, 4)).astype(float), rng.random((12, 4))) for t in (0.5, 1.0)},
                       n_boot=50)
     assert many.intervals_valid and json.loads(json.dumps(many.to_dict()))["intervals_valid"] is True

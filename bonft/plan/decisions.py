@@ -117,8 +117,8 @@ def finish(*, mode, temps, ks, value, lo, hi, boot, confidence, n_boot, paired, 
 
     def cell_gap(t1, k1, t0, k0):  # V(t1, k1) - V(t0, k0) with its CI
         g = float(value[t1, k1 - 1] - value[t0, k0 - 1])
-        if boot is None:
-            return g, g, g
+        if boot is None:  # exact: the gain is exact; too few prompts: no interval
+            return (g, g, g) if mode == "exact" else (g, float("nan"), float("nan"))
         d = boot[:, t1, k1 - 1] - boot[:, t0, k0 - 1]
         q = np.quantile(d, [(1 - confidence) / 2, 1 - (1 - confidence) / 2])
         return g, float(q[0]), float(q[1])

@@ -16,7 +16,8 @@ class BudgetChoice:
     """The best (temperature, k) under one budget per prompt.
 
     kind: "samples" (k <= budget) or "tokens" (k * mean_tokens(T) <= budget).
-    value, lo, hi: V_k(T) of the choice and its CI (lo = hi = value in exact mode).
+    value, lo, hi: V_k(T) of the choice and its CI (lo = hi = value in exact mode; NaN with fewer than 10 prompts,
+        where there is no interval: ``PlanResult.intervals_valid``).
     cost: samples (kind "samples") or expected generated tokens per prompt (kind "tokens").
     alternatives: other (temperature, k) cells within the budget not significantly worse, best first.
     n_boot_needed: None when n_boot leaves at least ``bonft.plan.decisions.MIN_TAIL`` resamples in the tail each of
@@ -43,7 +44,7 @@ class DoublingStep:
     """Gain of doubling N at the best temperatures: V_2k(T*(2k)) - V_k(T*(k)) with its CI.
 
     pays: the gain is significantly above ``min_gain`` (its CI's lower bound is; exact mode or too few prompts for
-    an interval: the gain itself is).
+    an interval: the gain itself is). lo = hi = gain in exact mode; NaN with fewer than 10 prompts (no interval).
     """
 
     k: int
@@ -81,7 +82,9 @@ class PlanResult:
     """A temperature x k sweep of best-of-k value and the decisions drawn from it.
 
     temperatures: (T,), ks: (K,) = 1..K.
-    value, lo, hi: (T, K) V_k(T) and its CI over prompts (lo = hi = value when mode == "exact").
+    value, lo, hi: (T, K) V_k(T) and its CI over prompts (lo = hi = value when mode == "exact"; NaN, no interval,
+        where ``intervals_valid`` is false in sampling mode: fewer than 10 prompts at some temperature; the budgets'
+        and doubling steps' lo/hi too, and JSON writes null).
     best_index, best_temperature: (K,) argmax over temperatures per k (ties: lowest temperature).
     near_best: (T, K) bool, True where the temperature is not significantly worse than the best
         at that k (paired bootstrap of the gap when ``paired``, each of the T - 1 gaps at level (1 - confidence) /

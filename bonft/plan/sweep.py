@@ -317,6 +317,9 @@ def plan_pools(
                                                           bounds=bounds)
     # any other column where every prompt has the same value has no interval (as in bonft estimate)
     no_interval = np.stack([no_interval_columns(v, bounds) for v in per_prompt])
+    testable = min(v.shape[0] for v in per_prompt) >= MIN_BOOT_PROMPTS
+    if not testable:  # too few prompts for a bootstrap over prompts: no interval (PlanResult.intervals_valid false)
+        lo, hi = np.full_like(value, np.nan), np.full_like(value, np.nan)
     return finish(
         mode="samples",
         temps=temps,
@@ -324,7 +327,7 @@ def plan_pools(
         value=value,
         lo=lo,
         hi=hi,
-        boot=boot if min(v.shape[0] for v in per_prompt) >= MIN_BOOT_PROMPTS else None,  # too few prompts: no tests
+        boot=boot if testable else None,  # too few prompts: no tests
         confidence=confidence,
         n_boot=n_boot,
         paired=paired,
