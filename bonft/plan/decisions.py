@@ -16,6 +16,7 @@ from bonft._core.checks import as_float_array, check_finite, check_ks
 from bonft.plan.result import BudgetChoice, DoublingStep, PlanResult, TemperatureFit
 
 BLOCK_CELLS = 4_000_000  # entries of one block of resampling counts (as bonft.estimate.bootstrap_ci)
+MAX_BOOT_CELLS = 2**27  # entries of the (n_boot, temperatures, k) bootstrap table: 1 GiB of float64
 # a doubling gain whose lower bound is within ROUNDING x (the grid's spread of V) + ULPS float64 ulps of its largest
 # |V| of min_gain is rounding, not a gain: the values are computed from each pool's minimum reward up
 # (bonft._core.ustat), so their error scales with the rewards' spread, plus a few ulps of their size (rewards of
@@ -194,9 +195,7 @@ def finish(*, mode, temps, ks, value, lo, hi, boot, confidence, n_boot, paired, 
 
 
 def _table_bound(need: int, T: int, K: int) -> str:
-    """The caveat when that n_boot would exceed the bootstrap table's bound (bonft.plan.sweep.MAX_BOOT_CELLS)."""
-    from bonft.plan.sweep import MAX_BOOT_CELLS
-
+    """The caveat when that n_boot would exceed the bootstrap table's bound (MAX_BOOT_CELLS)."""
     if need * T * K <= MAX_BOOT_CELLS:
         return ""
     return (f" (but n_boot x {T} temperatures x {K} k must be <= {MAX_BOOT_CELLS:,}: lower --max-k or use fewer "

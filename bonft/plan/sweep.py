@@ -54,7 +54,7 @@ from bonft._core.checks import (
 )
 from bonft.estimate import MIN_BOOT_PROMPTS, best_of_k_per_prompt, bootstrap_ci, reward_bounds
 from bonft.io import group_pools, same_temperature, temperature_label, temperatures_of
-from bonft.plan.decisions import bootstrap_means, finish, fit_best_temperature
+from bonft.plan.decisions import MAX_BOOT_CELLS, bootstrap_means, finish, fit_best_temperature
 from bonft.plan.result import BudgetChoice, DoublingStep, PlanResult, TemperatureFit
 
 __all__ = [
@@ -101,8 +101,6 @@ def _check_temperatures(temperatures: Any) -> np.ndarray:
         raise ValueError(f"temperatures must be distinct, got {temps}")
     return np.asarray(temps, dtype=np.float64)
 
-
-MAX_BOOT_CELLS = 2**27  # entries of the (n_boot, temperatures, k) bootstrap table: 1 GiB of float64
 
 
 def _check_boot_table(n_boot: int, n_temps: int, max_k: int) -> None:
