@@ -142,6 +142,18 @@ def test_ks_above_one_short_pool_names_that_prompt(tmp_path, capsys):
     assert re.search(r"--ks must be <= the smallest pool \(n=1: prompt 'q7'; the largest holds 12\), got 8", err), err
 
 
+def test_ks_above_a_short_pool_at_a_later_temperature_stops_before_any_table(tmp_path, capsys):
+    # the first temperature's table was printed, then the second temperature's short pool stopped the command
+    rows = [{"prompt_id": f"q{p}", "sample": i, "score": i / 12, "reward": i % 2, "temperature": t}
+            for t in (0.7, 1.0) for p in range(10) for i in range(12 if (t, p) != (1.0, 3) else 4)]
+    path = tmp_path / "two.jsonl"
+    path.write_text("".join(json.dumps(r) + "\n" for r in rows))
+    assert main(["estimate", str(path), "--ks", "8", "--n-boot", "50"]) == 2
+    out, err = capsys.readouterr()
+    assert "--ks must be <= the smallest pool (n=4: prompt 'q3' at temperature 1" in err, err
+    assert "temperature 0.7" not in out and "pass@k" not in out, out
+
+
 def test_a_column_of_ones_keeps_its_exact_interval(tmp_path, capsys):
     # 10 prompts x 12 samples, every reward 1, scores j/12, --ks 7: estimate crashed ("values must lie within bounds
     # [0, 1], got 1.0000000000000007"). Every value is 1: Clopper & Pearson 1934, 10 of 10 at 95%: [0.025^(1/10), 1]

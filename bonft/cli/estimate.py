@@ -99,9 +99,10 @@ def run(args) -> int:
         with VoteProgress(not args.quiet):  # the vote estimators take minutes on large files
             return _run_strategies(args, table, path, temps, ks)
     curves, blocks = {}, []
-    for t in temps if len(temps) > 1 else [None]:
-        keys, s, r = group_pools(table, temperature=t)
+    blocks_in = [(t, *group_pools(table, temperature=t)) for t in (temps if len(temps) > 1 else [None])]
+    for t, keys, s, _ in blocks_in:  # every temperature before any table: a short pool at the last stops the first
         check_ks_in_pools(ks, keys, s, t)
+    for t, keys, s, r in blocks_in:
         n_min = min(len(x) for x in s)
         summ = summarize(s, r, ks=ks if ks is not None else default_ks(n_min),
                          confidence=args.confidence, n_boot=args.n_boot, seed=args.seed)
