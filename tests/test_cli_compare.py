@@ -236,3 +236,21 @@ def test_a_temperature_stored_as_float32_is_selected_by_the_value_typed(tmp_path
     assert "(temperature 0.7)" in capsys.readouterr().out
     assert main(["compare", str(tmp_path / "a.jsonl"), str(tmp_path / "b.jsonl")]) == 2
     assert "temperatures [0.7, 1.0] (pools would mix them)" in capsys.readouterr().err
+
+
+def test_without_ks_a_short_pool_that_caps_k_is_named(tmp_path, capsys):
+    # every pool holds 4 samples but prompt 5 of b, which holds 2: k stopped at 2 for every prompt without a word
+    r, s = np.ones((P, N), int).tolist(), np.zeros((P, N), int).tolist()
+    write(tmp_path / "a.jsonl", r, s)
+    write(tmp_path / "b.jsonl", [row[:2] if q == 5 else row for q, row in enumerate(r)],
+          [row[:2] if q == 5 else row for q, row in enumerate(s)])
+    assert main(["compare", str(tmp_path / "a.jsonl"), str(tmp_path / "b.jsonl"), "--n-boot", "50",
+                 "--json", str(tmp_path / "c.json")]) == 0
+    out = capsys.readouterr().out
+    assert ("note: k stops at 2, the smallest pool (prompt '5' in b); the median pool holds 4 samples: leave that "
+            "prompt out, or give --ks, to measure larger k") in out, out
+    doc = json.loads((tmp_path / "c.json").read_text())
+    assert doc["ks"] == [1, 2] and doc["k_capped_note"].startswith("k stops at 2, the smallest pool (prompt '5' in b)")
+    # equal pools: no note
+    assert main(["compare", str(tmp_path / "a.jsonl"), str(tmp_path / "a.jsonl"), "--names", "x,y", "--n-boot", "50"]) == 0
+    assert "k stops at" not in capsys.readouterr().out

@@ -200,6 +200,14 @@ def run(args: argparse.Namespace) -> int:
     flat = [(key, f"{name}" + (f" (training seed {s})" if S > 1 else ""), r)  # every pool, with where it comes from
             for s, pools in per_seed.items() for name, p in pools.items() for key, r in zip(orders[s], p["rewards"])]
     check_ks_in_pools(ks, [f[0] for f in flat], [f[2] for f in flat], sources=[f[1] for f in flat])
+    capped = None  # without --ks, k stops at the smallest pool: say which pool when the others hold more
+    if ks is None:
+        sizes = [len(f[2]) for f in flat]
+        middle = sorted(sizes)[len(sizes) // 2]  # the median pool (the upper one of an even count)
+        if n_min < middle:
+            key, source, _ = flat[sizes.index(n_min)]
+            capped = (f"note: k stops at {n_min}, the smallest pool (prompt {key!r} in {source}); the median pool holds "
+                      f"{middle} samples: leave that prompt out, or give --ks, to measure larger k")
     ks = ks if ks is not None else default_ks(n_min)
     curves = {s: {name: per_prompt_curves(p, ks=ks) for name, p in pools.items()} for s, pools in per_seed.items()}
     intervals = S > 1 or P[0] >= MIN_BOOT_PROMPTS
@@ -224,6 +232,8 @@ def run(args: argparse.Namespace) -> int:
     print()
     if not intervals:
         print(f"intervals n/a: {P[0]} prompt(s); a bootstrap over prompts needs at least {MIN_BOOT_PROMPTS} (see docs/estimate.md)")
+    if capped:
+        print(capped)
     drawn = {t for ts in temps.values() for t in ts if t is not None}
     if len(drawn) > 1:
         print(f"note: the inputs were sampled at different temperatures ({', '.join(f'{t:g}' for t in sorted(drawn))}): "
@@ -248,7 +258,8 @@ def run(args: argparse.Namespace) -> int:
             "inputs": {n: [os.path.abspath(x) for x in runs] for n, runs in zip(names, paths)}, "baseline": base,
             "ks": ks, "n_prompts": P, "training_seeds": S, "seed_labels": labels, "interval": "bootstrap over prompts" if S == 1 else
             "Student-t over training seeds", "confidence": args.confidence, "n_boot": args.n_boot, "seed": args.seed,
-            "intervals_valid": intervals, "score_field": args.score_field, "reward_field": args.reward_field,
+            "intervals_valid": intervals, **({"k_capped_note": capped[len("note: "):]} if capped else {}),
+            "score_field": args.score_field, "reward_field": args.reward_field,
             "columns": [label if kind == "pass" else f"{args.score_field} {label}" for label, kind, _ in comp["columns"]],
             "means": {n: plain(c) for n, c in comp["means"].items()},
             "differences": {b: {n: plain(c) for n, c in rows.items()} for b, rows in comp["differences"].items()},
