@@ -19,7 +19,7 @@ import numbers
 import os
 import random
 from pathlib import Path
-from typing import Any, Sequence
+from typing import Any, Callable, Sequence
 
 from bonft._core.checks import check_int
 from bonft._core.jsonl import decode_utf8, parse_object
@@ -48,6 +48,18 @@ def answer_text(value: Any, where: str, field: str) -> str | None:
     raise ValueError(f"{where}: field {field!r} (the answer) must be a string or an integer, got "
                      f"{type(value).__name__} {value!r:.60}; write it as the string a right response must "
                      f"match (e.g. \"7\", \"true\", \"100\")")
+
+
+def require_answers(examples: Sequence[Example], field: str | None, where: Callable[[Example], str]) -> None:
+    """The exact checker compares each response with its prompt's answer: an example without one (absent, null
+    or blank) is a ``ValueError`` naming ``where(example)`` (its file and line) and the answer ``field``."""
+    for ex in examples:
+        if ex.answer is None:
+            if field is None:
+                raise ValueError("the exact verifier compares each response with an answer, but answer_field is not set: "
+                                 "set answer_field to the column of answers, or name your own verifier")
+            raise ValueError(f"{where(ex)}: field {field!r} is missing (absent, null or blank), and the exact verifier "
+                             "needs it (it compares each response with the answer); add it or name your own verifier")
 
 
 def load_prompts_jsonl(
@@ -159,9 +171,6 @@ class PromptFileTask(Task):
     def verifier(self, examples: Sequence[Example]) -> ExactVerifier:
         """The exact checker; a prompt without an answer (absent, null or blank) is an error naming its line."""
         examples = _check_examples(examples)
-        for ex in examples:
-            if ex.answer is None:
-                where = self._where.get(ex.prompt, f"prompt {ex.prompt!r:.60}")
-                raise ValueError(f"{where}: field {self.params['answer_field']!r} is missing (absent, null or blank), "
-                                 "and the exact verifier needs it (it compares each response with the answer)")
+        require_answers(examples, self.params["answer_field"],
+                        lambda ex: self._where.get(ex.prompt, f"prompt {ex.prompt!r:.60}"))
         return ExactVerifier(examples, self.extract_answer)

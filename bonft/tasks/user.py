@@ -57,7 +57,7 @@ from typing import Any, Callable, Sequence
 
 from bonft._core.checks import check_int
 from bonft.tasks.base import ExactVerifier, Example, Task, _check_examples
-from bonft.tasks.prompts import _read_jsonl, answer_text, normalize_text
+from bonft.tasks.prompts import _read_jsonl, answer_text, normalize_text, require_answers
 from bonft.verifiers.fields import bind_rows
 
 FILE_FORMATS = {".json": "json", ".parquet": "parquet"}  # read through datasets; .jsonl and .csv: our readers
@@ -298,15 +298,8 @@ class UserTask(Task):
     def verifier(self, examples: Sequence[Example]) -> ExactVerifier:
         """The exact checker: reward 1 where the whitespace-normalised response equals the row's answer."""
         examples = _check_examples(examples)
-        field = self.params["answer_field"]
-        for ex in examples:
-            if ex.answer is None:
-                where = (ex.meta or {}).get("where", f"prompt {ex.prompt!r:.60}")
-                if field is None:
-                    raise ValueError("the exact verifier compares each response with an answer, but answer_field is not set: "
-                                     "set answer_field to the column of answers, or name your own verifier")
-                raise ValueError(f"{where}: field {field!r} is missing (absent, null or blank), and the exact verifier "
-                                 "needs it (it compares each response with the answer); add it or name your own verifier")
+        require_answers(examples, self.params["answer_field"],
+                        lambda ex: (ex.meta or {}).get("where", f"prompt {ex.prompt!r:.60}"))
         return ExactVerifier(examples, normalize_text)
 
     @property
