@@ -25,7 +25,14 @@ from bonft._core.checks import MAX_POOL, check_bound, check_fraction, check_int,
 from bonft._core.seeds import derive_seed, float_key
 from bonft.generation.sampling import sample
 from bonft.io import SampleTable, read_samples, same_temperature, temperature_label, write_samples
-from bonft.plan.sweep import PLAN_OPTIONS, _check_boot_table, _check_temperatures, check_plan_options, plan_samples
+from bonft.plan.sweep import (
+    PLAN_OPTIONS,
+    _check_boot_table,
+    _check_budgets,
+    _check_temperatures,
+    check_plan_options,
+    plan_samples,
+)
 from bonft.verifiers import score_batch
 from bonft.verifiers.base import verifier_name as name_of_verifier
 from bonft.verifiers.scoring import VerifierError
@@ -107,13 +114,11 @@ def check_model_plan(temperatures: Any, n: Any, *, verifier_name: Any = None, **
         raise ValueError(f"max_k must be <= n (n={n}, the samples drawn per prompt), got max_k={max_k}")
     top, what = (n, f"n (n={n}, the samples drawn per prompt)") if max_k is None else (
         max_k, f"max_k (max_k={max_k}, the largest k planned)")
-    budgets = plan_kwargs.get("budget_samples")
-    for b in [] if budgets is None else (list(budgets) if isinstance(budgets, (list, tuple, np.ndarray)) else [budgets]):
+    for b in _check_budgets("budget_samples", plan_kwargs.get("budget_samples"), integer=True):
         if b > top:
             raise ValueError(f"budget_samples must be <= {what}: the grid cannot reach a larger budget, got "
                              f"budget_samples={b}")
-    budgets = plan_kwargs.get("budget_tokens")
-    for b in [] if budgets is None else (list(budgets) if isinstance(budgets, (list, tuple, np.ndarray)) else [budgets]):
+    for b in _check_budgets("budget_tokens", plan_kwargs.get("budget_tokens"), integer=False):
         if float(b) < 1:
             raise ValueError(f"budget_tokens must be >= 1 (a sampled response costs at least one generated token, its "
                              f"end-of-sequence), got budget_tokens={float(b):g}")

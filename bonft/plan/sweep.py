@@ -102,7 +102,6 @@ def _check_temperatures(temperatures: Any) -> np.ndarray:
     return np.asarray(temps, dtype=np.float64)
 
 
-
 def _check_boot_table(n_boot: int, n_temps: int, max_k: int) -> None:
     """The bootstrap table (n_boot, T, K) is held in memory at once: at most MAX_BOOT_CELLS entries."""
     cells = n_boot * n_temps * max_k
